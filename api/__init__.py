@@ -1,0 +1,1 @@
+"""stagefit's REST service (Flask); a thin door onto the ``optimizer`` package."""

@@ -1,0 +1,44 @@
+"""Errors raised for bad input, carrying enough detail to fix the input.
+
+Every input error names *where* (a field path, or a file, line and column), the
+*value* that was given and *what would be valid*. The CLI turns any
+:class:`InputError` into exit code 2; the REST service into a 4xx problem+json.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+
+@dataclass(frozen=True)
+class Problem:
+    """One thing wrong with an input: where, the value given, and what is valid."""
+
+    where: str
+    value: object
+    expected: str
+
+    def __str__(self) -> str:
+        return f"{self.where}: got {self.value!r}; {self.expected}"
+
+
+@dataclass
+class InputError(ValueError):
+    """Bad input from a user: one or more :class:`Problem` found together."""
+
+    problems: list[Problem] = field(default_factory=list)
+    title: str = "invalid input"
+
+    def __post_init__(self) -> None:
+        super().__init__(str(self))
+
+    def __str__(self) -> str:
+        if len(self.problems) == 1:
+            return f"{self.title}: {self.problems[0]}"
+        lines = [f"{self.title}: {len(self.problems)} problems"]
+        lines += [f"  - {p}" for p in self.problems]
+        return "\n".join(lines)
+
+    @classmethod
+    def single(cls, where: str, value: object, expected: str, title: str = "invalid input") -> "InputError":
+        """Shortcut for an error with exactly one problem."""
+        return cls([Problem(where, value, expected)], title)

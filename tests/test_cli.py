@@ -1,0 +1,70 @@
+"""The `stagefit` command: exit codes and what a newcomer sees."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from optimizer.cli import EXIT_BAD_INPUT, EXIT_OK, main
+
+SPECS = sorted(Path(__file__).resolve().parent.parent.joinpath("specs").glob("*.yaml"))
+
+
+@pytest.mark.parametrize("spec", SPECS, ids=lambda p: p.name)
+def test_check_accepts_every_example_spec(spec: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["check", str(spec)]) == EXIT_OK
+    assert "valid" in capsys.readouterr().out
+
+
+def test_there_are_at_least_four_example_specs() -> None:
+    assert len(SPECS) >= 4
+
+
+def test_check_reports_every_problem_with_its_path(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    broken = tmp_path / "broken.yaml"
+    broken.write_text(
+        "name: broken\nsupply: 12 Q\ngain: {target: -10, tolerance: 1 dB}\n"
+        "source_impedance: 600\nload_impedance: 47k\nband: [20 kHz, 20 Hz]\nfavourite_colour: blue\n",
+        encoding="utf-8",
+    )
+    assert main(["check", str(broken)]) == EXIT_BAD_INPUT
+    err = capsys.readouterr().err
+    for path in ("supply", "band", "favourite_colour"):
+        assert path in err, err
+    assert "Traceback" not in err
+
+
+def test_check_missing_file_is_bad_input(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["check", str(tmp_path / "nope.yaml")]) == EXIT_BAD_INPUT
+    assert "nope.yaml" in capsys.readouterr().err
+
+
+def test_series_prints_one_decade_of_e12(capsys: pytest.CaptureFixture[str]) -> None:
+    # IEC 60063 E12 (from memory): 1.0 1.2 1.5 1.8 2.2 2.7 3.3 3.9 4.7 5.6 6.8 8.2
+    assert main(["series", "E12", "--decade", "1k"]) == EXIT_OK
+    assert capsys.readouterr().out.split() == [
+        "1k", "1.2k", "1.5k", "1.8k", "2.2k", "2.7k", "3.3k", "3.9k", "4.7k", "5.6k", "6.8k", "8.2k"]
+
+
+def test_series_unknown_name_is_bad_input(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["series", "E13"]) == EXIT_BAD_INPUT
+    assert "E13" in capsys.readouterr().err
+
+
+def test_catalogs_lists_the_shipped_catalogs(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["catalogs", "--format", "json"]) == EXIT_OK
+    names = json.loads(capsys.readouterr().out)
+    assert {"eseries_full", "bench_stock"} <= set(names)
+
+
+def test_unknown_catalog_is_bad_input(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["catalogs", "no_such_shelf"]) == EXIT_BAD_INPUT
+    assert "bench_stock" in capsys.readouterr().err
+
+
+def test_help_exits_cleanly(capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit) as stop:
+        main(["--help"])
+    assert stop.value.code == 0
+    assert "check" in capsys.readouterr().out
