@@ -1,0 +1,108 @@
+"""Transistor parameters and their temperature-dependent relations (SI units).
+
+A :class:`Device` carries the catalog's ratings and the SPICE Gummel-Poon
+parameters that the analytic models use (IS, BF, NF, VAF, RB, CJE, CJC, TF; the
+others at their SPICE defaults). Temperatures are in degrees Celsius.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, fields
+from typing import Mapping
+
+import numpy as np
+
+from optimizer.errors import InputError, Problem
+
+BOLTZMANN = 1.380649e-23  # J/K
+ELEMENTARY_CHARGE = 1.602176634e-19  # C
+KELVIN_OFFSET = 273.15
+SPICE_TNOM_C = 27.0  # SPICE nominal temperature
+SPICE_XTI = 3.0  # SPICE default saturation-current temperature exponent
+SPICE_EG = 1.11  # eV, SPICE default energy gap
+HFE_TEMPCO = 0.005  # per kelvin, common-practice rise of hFE with temperature
+
+SPICE_KEYS = ("IS", "BF", "NF", "VAF", "RB", "CJE", "CJC", "TF")
+
+
+@dataclass(frozen=True)
+class Device:
+    """One transistor type: ratings, hFE spread and SPICE model parameters (SI units)."""
+
+    id: str
+    polarity: str
+    hfe_min: float
+    hfe_typ: float
+    hfe_max: float
+    IS: float  # A
+    BF: float
+    NF: float
+    VAF: float  # V; 0 or inf means no Early effect (SPICE convention)
+    RB: float  # ohm
+    CJE: float  # F
+    CJC: float  # F
+    TF: float  # s
+    vce_sat: float  # V
+    vceo_max: float  # V
+    p_max: float  # W
+
+    @classmethod
+    def from_row(cls, row: Mapping) -> "Device":
+        """Build a device from a catalog row whose keys are the field names."""
+        problems: list[Problem] = []
+        values: dict[str, object] = {}
+        where = f"transistor {row.get('id', '?')!s}"
+        for f in fields(cls):
+            if f.name not in row or row[f.name] is None or (isinstance(row[f.name], float) and math.isnan(row[f.name])):
+                problems.append(Problem(f"{where}.{f.name}", row.get(f.name), "a value is required"))
+                continue
+            if f.name in ("id", "polarity"):
+                values[f.name] = str(row[f.name]).strip()
+                continue
+            try:
+                values[f.name] = float(row[f.name])
+            except (TypeError, ValueError):
+                problems.append(Problem(f"{where}.{f.name}", row[f.name], "a number in SI units"))
+        if not problems:
+            if str(values["polarity"]).lower() != "npn":
+                problems.append(Problem(f"{where}.polarity", values["polarity"], "'npn' (the stage models are npn)"))
+            for name in ("hfe_min", "hfe_typ", "hfe_max", "IS", "BF", "NF", "vceo_max", "p_max"):
+                if not values[name] > 0:
+                    problems.append(Problem(f"{where}.{name}", values[name], "a positive number"))
+            for name in ("RB", "CJE", "CJC", "TF", "vce_sat", "VAF"):
+                if values[name] < 0:
+                    problems.append(Problem(f"{where}.{name}", values[name], "zero or a positive number"))
+            if not problems and not values["hfe_min"] <= values["hfe_typ"] <= values["hfe_max"]:
+                problems.append(Problem(f"{where}.hfe_typ", values["hfe_typ"],
+                                        f"between hfe_min {values['hfe_min']} and hfe_max {values['hfe_max']}"))
+        if problems:
+            raise InputError(problems, title="invalid transistor")
+        values["polarity"] = "npn"
+        return cls(**values)  # type: ignore[arg-type]
+
+    def spice_model(self) -> dict[str, float]:
+        """SPICE .model parameters (keys IS BF NF VAF RB CJE CJC TF)."""
+        return {k: float(getattr(self, k)) for k in SPICE_KEYS}
+
+    @property
+    def inv_vaf(self) -> float:
+        """1/VAF in 1/V (0 when VAF is 0 or infinite, as in SPICE)."""
+        return 0.0 if self.VAF <= 0 or math.isinf(self.VAF) else 1.0 / self.VAF
+
+
+def thermal_voltage(temp_c: float | np.ndarray) -> float | np.ndarray:
+    """kT/q in V at a temperature in degrees Celsius."""
+    return BOLTZMANN * (np.asarray(temp_c, dtype=float) + KELVIN_OFFSET) / ELEMENTARY_CHARGE
+
+
+def saturation_current(IS: float, temp_c: float | np.ndarray) -> float | np.ndarray:
+    """SPICE IS(T) in A: IS*(T/Tnom)^XTI*exp(EG/VT(T)*(T/Tnom-1)), XTI=3, EG=1.11 eV, Tnom=27 C."""
+    t = np.asarray(temp_c, dtype=float) + KELVIN_OFFSET
+    t_nom = SPICE_TNOM_C + KELVIN_OFFSET
+    ratio = t / t_nom
+    return IS * np.exp((ratio - 1.0) * SPICE_EG / thermal_voltage(temp_c) + SPICE_XTI * np.log(ratio))
+
+
+def hfe_temperature_factor(temp_c: float | np.ndarray, ref_c: float = SPICE_TNOM_C) -> float | np.ndarray:
+    """Multiplier of hFE at temp_c relative to ref_c (common practice: about +0.5 %/K)."""
+    return (1.0 + HFE_TEMPCO) ** (np.asarray(temp_c, dtype=float) - ref_c)

@@ -1,0 +1,386 @@
+"""Shared relations of the stage models: bias Newton, small-signal parameters, batched
+nodal analysis, frequency-response corners, noise, swing and distortion.
+
+Everything works on numpy arrays with a leading candidate axis (SI units). The
+transistor is the SPICE Gummel-Poon model with only IS, BF, NF, VAF, RB, CJE, CJC and
+TF set (BR=1, IKF=inf, ISE=0, VAR=inf, RE=RC=0, VJ=0.75 V, MJ=0.33, FC=0.5), in the
+forward-active region; a candidate outside it is flagged, not modelled.
+"""
+from __future__ import annotations
+
+from collections.abc import Callable, Iterable, Sequence
+
+import numpy as np
+
+from optimizer.devices import BOLTZMANN, ELEMENTARY_CHARGE, KELVIN_OFFSET, Device
+
+VJ = 0.75  # V, SPICE default junction potential (VJE = VJC)
+MJ = 0.33  # SPICE default grading coefficient (MJE = MJC)
+FC = 0.5  # SPICE default forward-bias depletion capacitance coefficient
+ACTIVE_MARGIN = 0.1  # V above vce_sat for a transistor to count as active
+G_SHORT = 1e6  # S, a mid-band coupling capacitor or a zero-ohm resistor (moderate: elimination precision)
+R_FLOOR = 1e-3  # ohm, stand-in for a zero source impedance
+SWEEP = (0.1, 1e8)  # Hz, span of the frequency-response search
+COARSE_POINTS = 10  # log-spaced points over SWEEP (one per decade)
+REFINE_STEPS = 5  # interpolation steps per -3 dB crossing
+NOISE_POINTS = 6  # log-spaced frequencies for the in-band noise integral
+NEWTON_ITERATIONS = 8
+THD_SAMPLES = 16  # samples per period of the quasi-static distortion solve (harmonics 2..7)
+THD_ITERATIONS = 6  # Newton steps per sample, warm-started at the quiescent Vbe
+MAX_STEP = 0.1  # V, largest Newton step in Vbe (a guard; steps from above are about NF*VT)
+NEWTON_TOL = 1e-7  # V, residual of the base-loop equation counted as converged
+
+
+# ----------------------------------------------------------------------------- bias
+
+def solve_junction(a: np.ndarray, r_base: np.ndarray, r_emit: np.ndarray, *, i_s: float,
+                   beta: np.ndarray, nvt: float, inv_vaf: float,
+                   vcb0: np.ndarray | float = 0.0, vcb_ic: np.ndarray | float = 0.0,
+                   vcb_ib: np.ndarray | float = 0.0, vcb_vbe: np.ndarray | float = 0.0,
+                   v_start: np.ndarray | None = None, iterations: int = NEWTON_ITERATIONS) -> dict[str, np.ndarray]:
+    """Solve one forward-active transistor's base loop by vectorised damped Newton.
+
+    The loop is ``a = Vbe + r_base*Ib + r_emit*(Ic+Ib)`` (V, ohm), with the Gummel-Poon
+    currents ``If = IS*(exp(Vbe/(NF VT))-1)``, ``Ib = If/BF``, ``Ic = If*(1+Vcb/VAF)`` and
+    the collector-base voltage linear in the unknowns:
+    ``Vcb = vcb0 - vcb_ic*Ic - vcb_ib*Ib - vcb_vbe*Vbe``.
+    Returns vbe, vcb, i_forward (If), ic, ib (A, V) and a boolean ``converged``.
+    A fixed number of iterations is run for every candidate at once; v_start (V) is a
+    warm start near the root (e.g. the quiescent Vbe when solving around an operating point).
+    """
+    a, r_base, r_emit, beta = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (a, r_base, r_emit, beta)))
+    r_ib = r_base / beta + r_emit / beta  # loop resistance per unit If through the base current
+    k_lin = np.maximum(r_ib + r_emit, 1e-3)
+    # The residual is concave and falling in Vbe, so Newton from above never overshoots the root:
+    # start at the smaller of two points above it (Vbe = a, or the Vbe of the largest current a/k).
+    v = np.minimum(a, nvt * np.log1p(np.maximum(a, 0.0) / k_lin / i_s)) if v_start is None else v_start + 0.0 * a
+
+    def currents(v: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        e = i_s * np.expm1(v / nvt)
+        early = (1.0 + (vcb0 - vcb_ib * e / beta - vcb_vbe * v) * inv_vaf) / (1.0 + e * vcb_ic * inv_vaf)
+        ic = e * early
+        return e, ic, a - v - r_ib * e - r_emit * ic, early
+
+    for _ in range(iterations):
+        e, ic, g, early = currents(v)
+        v = v + np.clip(g / (1.0 + (e + i_s) / nvt * (r_ib + r_emit * early)), -MAX_STEP, MAX_STEP)
+    e, ic, g, _ = currents(v)
+    vbe, ib = v, e / beta
+    vcb = vcb0 - vcb_ic * ic - vcb_ib * ib - vcb_vbe * vbe
+    return {"vbe": vbe, "vcb": vcb, "i_forward": e, "ic": ic, "ib": ib,
+            "converged": (np.abs(g) < NEWTON_TOL) & np.isfinite(e) & (e > 0)}
+
+
+def is_active(vce: np.ndarray, ic: np.ndarray, vce_sat: float, converged: np.ndarray) -> np.ndarray:
+    """True where the transistor is forward active: Vce > vce_sat + margin and Ic > 0."""
+    return (vce > vce_sat + ACTIVE_MARGIN) & (ic > 0) & converged
+
+
+# ----------------------------------------------------------------------------- small signal
+
+def depletion_capacitance(c0: float, v: np.ndarray) -> np.ndarray:
+    """SPICE junction depletion capacitance (F) at forward voltage v (V), with FC linearisation."""
+    v = np.asarray(v, dtype=float)
+    lin = c0 / (1.0 - FC) ** (1.0 + MJ) * (1.0 - FC * (1.0 + MJ) + MJ * v / VJ)
+    rev = c0 / (1.0 - np.minimum(v, FC * VJ) / VJ) ** MJ
+    return np.where(v < FC * VJ, rev, lin)
+
+
+def small_signal(bias: dict[str, np.ndarray], device: Device, beta: np.ndarray, nvt: float,
+                 i_s: float) -> dict[str, np.ndarray]:
+    """Hybrid-pi parameters at a bias point (from :func:`solve_junction`).
+
+    gm (S, dIc/dVb'e at fixed Vce), gpi (S, dIb/dVb'e), go (S, dIc/dVce), cpi, cmu (F)
+    rb (ohm, base spreading resistance RB), and the DC ic, ib (A) for the shot noise.
+    """
+    e, vbe, vcb = bias["i_forward"], bias["vbe"], bias["vcb"]
+    inv_vaf = device.inv_vaf
+    gbe = (e + i_s) / nvt
+    go = e * inv_vaf
+    return {"gm": gbe * (1.0 + vcb * inv_vaf) - go, "gpi": gbe / beta, "go": go,
+            "ic": bias["ic"], "ib": bias["ib"],
+            "cpi": device.TF * gbe + depletion_capacitance(device.CJE, vbe),
+            "cmu": depletion_capacitance(device.CJC, -vcb),
+            "rb": np.full_like(e, device.RB)}
+
+
+def ce_midband(ss: dict[str, np.ndarray], r_emit: np.ndarray, r_coll: np.ndarray,
+               r_base_source: np.ndarray) -> dict[str, np.ndarray]:
+    """Closed-form mid-band hybrid-pi stage (exact for the network of the model, caps ignored).
+
+    Emitter to ground through r_emit, collector to AC ground through r_coll (0 allowed),
+    driven at the external base. Returns z_base (ohm, into the base), gain_c (V/V, base
+    to collector), gain_e (V/V, base to emitter), gain_x, gain_x_e (V/V, internal vb'e to
+    collector and to emitter), loop (1+T, the ratio vb'/vb'e), z_coll (ohm, into the collector with r_base_source
+    from the base to ground) and z_emit (ohm, into the emitter, collector at AC ground).
+    """
+    gm, gpi, go, rb = ss["gm"], ss["gpi"], ss["go"], ss["rb"]
+    with np.errstate(divide="ignore", invalid="ignore"):  # go = 0 (no Early effect): z_coll infinite
+        share = go * r_coll / (1.0 + go * r_coll)  # go/(go + 1/r_coll)
+        alpha = ((gpi + gm) - gm * share) / (1.0 / r_emit + go / (1.0 + go * r_coll))  # v_e / v_b'e
+        vb_per_vx = 1.0 + alpha + rb * gpi
+        gain_x = (go * alpha - gm) * r_coll / (1.0 + go * r_coll)
+        rpi = 1.0 / gpi
+        r_b = r_base_source + rb
+        r_p = r_emit * (rpi + r_b) / (r_emit + rpi + r_b)
+        return {"z_base": rb + (1.0 + alpha) * rpi, "gain_c": gain_x / vb_per_vx, "gain_e": alpha / vb_per_vx,
+                "gain_x": gain_x, "gain_x_e": alpha, "loop": 1.0 + alpha,
+                "z_coll": 1.0 / go + r_p + gm / go * r_p * rpi / (rpi + r_b),
+                "z_emit": 1.0 / ((1.0 + gm * rpi) / (rpi + r_b) + go)}
+
+
+def parallel(*rs: np.ndarray) -> np.ndarray:
+    """Parallel combination of resistances (ohm); inf means absent."""
+    g = sum(1.0 / np.asarray(r, dtype=float) for r in rs)
+    return 1.0 / g
+
+
+# ----------------------------------------------------------------------------- nodal analysis
+
+class Network:
+    """A linear network Y(s) = G + s*C for batched nodal analysis over (candidates, freqs).
+
+    Nodes are named; ``None`` is ground. Element values broadcast over a leading candidate
+    axis; :meth:`at` gives the network at complex frequencies s. Structural zeros are skipped
+    in the elimination, so a chain-like node order keeps the work close to the element count.
+    Thermal and shot noise current sources are recorded with the elements that make them.
+    """
+
+    def __init__(self, nodes: Sequence[str], temp_c: float = 27.0) -> None:
+        self.nodes = list(nodes)
+        self.index = {n: i for i, n in enumerate(self.nodes)}
+        self.y: dict[tuple[int, int], np.ndarray] = {}  # S, frequency independent part
+        self.cap: dict[tuple[int, int], np.ndarray] = {}  # F, multiplied by s in :meth:`at`
+        self.noise: list[tuple[str | None, str | None, np.ndarray]] = []
+        self.temp_c = temp_c
+
+    def _stamp(self, part: dict, a: str | None, b: str | None, v: np.ndarray) -> None:
+        ia, ib = (None if n is None else self.index[n] for n in (a, b))
+        for key, sign in (((ia, ia), 1.0), ((ib, ib), 1.0), ((ia, ib), -1.0), ((ib, ia), -1.0)):
+            if key[0] is not None and key[1] is not None:
+                part[key] = part[key] + sign * v if key in part else sign * v
+
+    def admittance(self, a: str | None, b: str | None, y: np.ndarray) -> None:
+        """Two-terminal admittance y (S) between nodes a and b (noiseless)."""
+        self._stamp(self.y, a, b, y)
+
+    def resistor(self, a: str | None, b: str | None, r: np.ndarray) -> None:
+        """Resistor r (ohm, 0 = short) between a and b, with its thermal-noise current."""
+        r = np.asarray(r, dtype=float)
+        with np.errstate(divide="ignore"):
+            self.admittance(a, b, np.where(r > 0, 1.0 / r, G_SHORT))
+            self.noise.append((a, b, np.where(r > 0, thermal_noise(r, self.temp_c), 0.0)))
+
+    def capacitor(self, a: str | None, b: str | None, c: np.ndarray, ac: bool, coupling: bool) -> None:
+        """Capacitor c (F); at mid-band (ac False) a coupling/bypass one is a short, others open."""
+        if ac:
+            self._stamp(self.cap, a, b, c)
+        elif coupling:
+            self.admittance(a, b, np.full_like(np.asarray(c, dtype=float), G_SHORT))
+
+    def vccs(self, p: str | None, n: str | None, cp: str | None, cn: str | None, g: np.ndarray) -> None:
+        """Current g*(v_cp - v_cn) (A) flowing from node p through the source to node n."""
+        for row, sign in ((p, 1.0), (n, -1.0)):
+            for col, s2 in ((cp, 1.0), (cn, -1.0)):
+                if row is not None and col is not None:
+                    key = (self.index[row], self.index[col])
+                    self.y[key] = self.y[key] + sign * s2 * g if key in self.y else sign * s2 * g
+
+    def transistor(self, b: str, c: str | None, e: str | None, ss: dict[str, np.ndarray], ac: bool) -> None:
+        """Hybrid-pi at internal base b: gpi, Cpi b-e; Cmu b-c; gm*vbe and go c-e; shot noise."""
+        self.admittance(b, e, ss["gpi"])
+        if ac:
+            self._stamp(self.cap, b, e, ss["cpi"])
+            self._stamp(self.cap, b, c, ss["cmu"])
+        self.admittance(c, e, ss["go"])
+        self.vccs(c, e, b, e, ss["gm"])
+        self.noise.append((c, e, shot_noise(ss["ic"])))
+        self.noise.append((b, e, shot_noise(ss["ib"])))
+
+    def at(self, s: np.ndarray) -> "Network":
+        """The network at complex frequencies s (rad/s), entries G + s*C."""
+        n = Network(self.nodes, self.temp_c)
+        n.noise = self.noise
+        n.y = {k: self.y.get(k, 0.0) + s * self.cap[k] if k in self.cap else self.y[k]
+               for k in set(self.y) | set(self.cap)}
+        return n
+
+    def transposed(self) -> "Network":
+        """The adjoint network (Y transposed), for all transfers to one node in one solve."""
+        t = Network(self.nodes, self.temp_c)
+        t.noise = self.noise
+        t.y = {(j, i): v for (i, j), v in self.y.items()}
+        return t
+
+    def solve(self, rhs: dict[str, np.ndarray], want: Iterable[str] | None = None) -> dict[str, np.ndarray]:
+        """Node voltages (V) for injected currents rhs (A into each node); all nodes if want is None."""
+        n = len(self.nodes)
+        y = dict(self.y)
+        b: dict[int, np.ndarray] = {self.index[k]: v for k, v in rhs.items()}
+        rows = [sorted(j for (i2, j) in y if i2 == i) for i in range(n)]
+        cols = [sorted(i2 for (i2, j) in y if j == i) for i in range(n)]
+        inv_pivot: dict[int, np.ndarray] = {}
+        for k in range(n - 1):
+            inv_pivot[k] = 1.0 / y[(k, k)]
+            below = [i for i in cols[k] if i > k]
+            right = [j for j in rows[k] if j > k]
+            for i in below:
+                f = y.pop((i, k)) * inv_pivot[k]
+                for j in right:
+                    if (i, j) in y:
+                        y[(i, j)] = y[(i, j)] - f * y[(k, j)]
+                    else:
+                        y[(i, j)] = -f * y[(k, j)]
+                        rows[i].append(j)
+                        cols[j].append(i)
+                if k in b:
+                    b[i] = b[i] - f * b[k] if i in b else -f * b[k]
+        targets = set(range(n)) if want is None else {self.index[w] for w in want}
+        lowest = min(targets)
+        x: dict[int, np.ndarray] = {}
+        for k in range(n - 1, lowest - 1, -1):
+            acc = b.get(k, 0.0)
+            for j in rows[k]:
+                if j > k and j in x:
+                    acc = acc - y[(k, j)] * x[j]
+            x[k] = acc * inv_pivot[k] if k in inv_pivot else acc / y[(k, k)]
+        return {self.nodes[k]: np.asarray(x[k]) for k in targets}
+
+
+# ----------------------------------------------------------------------------- response
+
+def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray,
+                      n: int) -> tuple[np.ndarray, np.ndarray]:
+    """f_low, f_high (Hz) where |H| falls to |reference|/sqrt(2), for n candidates.
+
+    ``response(f)`` maps frequencies of shape (n, k) (Hz) to complex gains (n, k). A
+    one-per-decade log grid over SWEEP brackets each crossing (the last crossing below
+    the mid-band peak, the first above it), then Illinois false position in log f on the dB
+    scale refines both at once. Corners beyond SWEEP are reported at its ends.
+    """
+    grid = np.logspace(np.log10(SWEEP[0]), np.log10(SWEEP[1]), COARSE_POINTS)
+    level = 20.0 * np.log10(np.abs(reference) / np.sqrt(2.0))[:, None]
+    db = 20.0 * np.log10(np.abs(response(np.broadcast_to(grid, (n, grid.size)))) + 1e-300) - level
+    above = db > 0.0
+    peak = np.argmax(db, axis=1)
+    idx = np.arange(grid.size)
+    low_i = np.where(~above & (idx < peak[:, None]), idx, -1).max(axis=1)  # last point below, left of peak
+    high_i = np.where(~above & (idx > peak[:, None]), idx, grid.size).min(axis=1)
+    i_out = np.stack([low_i, high_i], axis=1)  # (n, 2): outside point of each crossing
+    inside = (i_out >= 0) & (i_out < grid.size)
+    i0 = np.clip(i_out, 0, grid.size - 1)
+    i1 = np.clip(i0 + np.array([1, -1]), 0, grid.size - 1)
+    rows = np.arange(n)[:, None]
+    x0, x1 = np.log10(grid[i0]), np.log10(grid[i1])
+    d0, d1 = db[rows, i0], db[rows, i1]
+    last = np.zeros((n, 2), dtype=bool)
+    for _ in range(REFINE_STEPS):  # Illinois false position on both crossings at once
+        xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
+        xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
+        dm = 20.0 * np.log10(np.abs(response(10.0 ** xm)) + 1e-300) - level
+        out_side = dm <= 0.0
+        d1 = np.where(out_side & last, 0.5 * d1, d1)  # an end kept twice: halve its value
+        d0 = np.where(~out_side & ~last, 0.5 * d0, d0)
+        x0, d0 = np.where(out_side, xm, x0), np.where(out_side, dm, d0)
+        x1, d1 = np.where(out_side, x1, xm), np.where(out_side, d1, dm)
+        last = out_side
+    xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
+    corners = np.where(inside, 10.0 ** xm, np.array(SWEEP))
+    return corners[:, 0], corners[:, 1]
+
+
+# ----------------------------------------------------------------------------- noise
+
+def noise_integrals(network: Network, out_node: str, source_node: str,
+                    r_source: np.ndarray, band: tuple[float, float],
+                    temp_c: float) -> tuple[np.ndarray, np.ndarray]:
+    """Equivalent input noise (V rms over band, without the source's own noise) and NF (dB).
+
+    ``network`` is the stage network (AC) with the source resistance (noiseless) and the
+    load in place, evaluated at log-spaced frequencies over the band; its recorded noise current
+    sources (resistors, shot noise) are summed at the output through the adjoint solve,
+    which gives every node's transimpedance z (V/A) to out_node at once. The source is a
+    Norton current vs/r_source into source_node, so the gain is z[source_node]/r_source
+    and the source's own noise is 4kT*r_source. Matches SPICE .noise input-referred total.
+    """
+    f = np.geomspace(band[0], band[1], NOISE_POINTS)[None, :]
+    net = network.at(2j * np.pi * f)
+    z = net.transposed().solve({out_node: np.ones(1)})
+    gain2 = np.abs(z[source_node] / r_source[:, None]) ** 2
+    out = 0.0
+    for a, b, psd in net.noise:
+        h = (z[a] if a is not None else 0.0) - (z[b] if b is not None else 0.0)
+        out = out + psd * np.abs(h) ** 2
+    in_psd = out / gain2
+    ein2 = np.sum(power_law_segments(f, in_psd), axis=1)
+    four_kt = 4.0 * BOLTZMANN * (temp_c + KELVIN_OFFSET)
+    source2 = four_kt * r_source * (band[1] - band[0])
+    return np.sqrt(ein2), 10.0 * np.log10(1.0 + ein2 / source2)
+
+
+def power_law_segments(f: np.ndarray, psd: np.ndarray) -> np.ndarray:
+    """Integral (per segment) of a PSD sampled at log-spaced f, taken as a power law between points.
+
+    Exact for the 1/f^k skirts that coupling corners give the input-referred noise.
+    """
+    f0, f1, s0, s1 = f[..., :-1], f[..., 1:], psd[..., :-1], psd[..., 1:]
+    k = np.log(s1 / s0) / np.log(f1 / f0)
+    ratio = (f1 / f0) ** (k + 1.0)
+    near = np.abs(k + 1.0) < 1e-6
+    with np.errstate(divide="ignore", invalid="ignore"):
+        general = s0 * f0 * (ratio - 1.0) / (k + 1.0)
+    return np.where(near, s0 * f0 * np.log(f1 / f0), general)
+
+
+def thermal_noise(r: np.ndarray, temp_c: float) -> np.ndarray:
+    """Thermal-noise current PSD 4kT/R (A^2/Hz) of a resistor r (ohm)."""
+    return 4.0 * BOLTZMANN * (temp_c + KELVIN_OFFSET) / r
+
+
+def shot_noise(i: np.ndarray) -> np.ndarray:
+    """Shot-noise current PSD 2qI (A^2/Hz) of a DC current i (A)."""
+    return 2.0 * ELEMENTARY_CHARGE * np.abs(i)
+
+
+# ----------------------------------------------------------------------------- swing, distortion
+
+def load_line_limits(ic: np.ndarray, vce: np.ndarray, vce_sat: float, r_ac: np.ndarray,
+                     re_ac: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Peak output (V) before cutoff (Ic*Rac) and before saturation ((Vce-Vce_sat)*Rac/(Rac+Re_ac))."""
+    return ic * r_ac, np.maximum(vce - vce_sat, 0.0) * r_ac / (r_ac + re_ac)
+
+
+def thd_small_signal(v_x_peak: np.ndarray, suppression: np.ndarray, nvt: float,
+                     early_u: np.ndarray | float = 0.0) -> np.ndarray:
+    """Second-harmonic estimate (fraction) of one transistor: v_x/(4 NF VT) * suppression * (1-u)/(1+u).
+
+    v_x (V peak) is the intrinsic base-emitter signal at the output level. suppression
+    is 1/(1+T) of the local feedback (1/(1+gm*Re_ac) for a degenerated stage, giving the
+    v_b/(4 NF VT (1+gm Re_ac)^2) form), or in general gm*|Z_ce->out|/|v_out/v_x| with
+    Z_ce->out the transimpedance from a current in the collector-emitter source to the load.
+    u = go*Rac (about Ic*Rac/VAF) is the Early-effect compression by the collector's own swing (Gummel-Poon
+    Ic proportional to 1 + Vcb/VAF), which cancels part of the exponential's second harmonic.
+    """
+    return np.abs(v_x_peak) / (4.0 * nvt) * suppression * (1.0 - early_u) / (1.0 + early_u)
+
+
+def harmonic_distortion(waveform: np.ndarray, harmonics: int = 9) -> np.ndarray:
+    """THD (fraction) of one period of samples along the last axis: rms of harmonics 2..harmonics
+    over the fundamental."""
+    spectrum = np.abs(np.fft.rfft(waveform, axis=-1))
+    return np.sqrt(np.sum(spectrum[..., 2:harmonics + 1] ** 2, axis=-1)) / spectrum[..., 1]
+
+
+def thd_quasistatic(static_output: Callable[[np.ndarray], np.ndarray], source_peak: np.ndarray,
+                    samples: int = THD_SAMPLES, harmonics: int = 9) -> np.ndarray:
+    """THD (fraction) of the static nonlinear stage over one sine period, per candidate.
+
+    ``static_output(vs)`` maps source voltages (V, shape (candidates, samples)) to load
+    voltages (V); the stage is solved at every sample of every candidate at once and the
+    output's spectrum taken. source_peak (V) has one value per candidate. Harmonics above
+    samples/2 - 1 are not resolved and are left out.
+    """
+    harmonics = min(harmonics, samples // 2 - 1)
+    t = np.arange(samples) / samples
+    vs = np.asarray(source_peak, dtype=float).reshape(-1, 1) * np.sin(2.0 * np.pi * t)
+    return harmonic_distortion(static_output(vs), harmonics)

@@ -1,0 +1,270 @@
+"""The interface every stage topology implements, and the shared evaluation flow.
+
+A topology maps arrays of part values (leading candidate axis, SI units) plus a device
+and the operating conditions to an operating point, metrics and ratings.
+"""
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from dataclasses import dataclass, field
+from typing import Callable, ClassVar
+
+import math
+
+import numpy as np
+
+from optimizer import physics
+from optimizer.devices import Device, saturation_current, thermal_voltage
+from optimizer.errors import InputError, Problem
+
+Parts = dict[str, np.ndarray]
+CHUNK_FAST = 16384  # candidates per block (keeps the working set in cache)
+CHUNK_FULL = 2048
+METRICS = ("gain", "gain_db", "swing_vpp", "input_impedance", "output_impedance", "supply_current",
+           "f_low", "f_high", "thd", "noise_ein_v", "noise_figure_db", "q_power", "part_count")
+
+
+@dataclass(frozen=True)
+class Conditions:
+    """Mid-band operating conditions, SI units (V, ohm, Hz, degrees C, F, V peak-to-peak)."""
+
+    supply: float
+    source_impedance: float
+    load_impedance: float
+    band: tuple[float, float] = (20.0, 20000.0)
+    temperature: float = 27.0
+    load_capacitance: float = 0.0
+    signal_vpp: float = 1.0  # output level at which thd is given
+
+
+@dataclass
+class StageResult:
+    """Metrics (DESIGN.md names), operating point and ratings, each an array over candidates."""
+
+    metrics: dict[str, np.ndarray]
+    operating_point: dict[str, np.ndarray]
+    ratings: dict[str, np.ndarray] = field(default_factory=dict)
+
+
+@dataclass
+class Bias:
+    """A solved operating point: public node voltages/currents and per-transistor small signal."""
+
+    op: dict[str, np.ndarray]
+    small_signal: list[dict[str, np.ndarray]]
+    beta: np.ndarray | None = None  # hFE used (SPICE BF)
+
+
+class Topology(ABC):
+    """One stage topology: its parts and its models."""
+
+    name: ClassVar[str]
+    description: ClassVar[str]
+    resistors: ClassVar[tuple[str, ...]]
+    capacitors: ClassVar[tuple[str, ...]]
+    transistors: ClassVar[int]
+    optional_parts: ClassVar[tuple[str, ...]] = ()  # may be 0 (absent)
+
+    @abstractmethod
+    def operating_point(self, parts: Parts, device: Device, conditions: Conditions,
+                        hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
+        """DC node voltages (V), currents (A), vce (V), active flag and supply_current (A)."""
+
+    @abstractmethod
+    def evaluate(self, parts: Parts, device: Device, conditions: Conditions,
+                 hfe: np.ndarray | float | None = None, *, full: bool = True) -> StageResult:
+        """Metrics, operating point and ratings.
+
+        full=False: the fast core; f_low, f_high and the noise figures are NaN and thd is the
+        small-signal second-harmonic estimate. full=True adds the corners and noise from the
+        nodal network, and thd from the quasi-static solve over one period.
+        """
+
+
+class StageModel(Topology):
+    """Shared evaluation flow; a topology supplies its bias, mid-band, swing, network and ratings."""
+
+    # ---- hooks -------------------------------------------------------------------------
+    @abstractmethod
+    def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float,
+              i_s: float) -> Bias:
+        """Solve the DC operating point."""
+
+    @abstractmethod
+    def _midband(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
+        """gain (V/V), input_impedance, output_impedance (ohm) and hd2_terms.
+
+        hd2_terms lists, per transistor, (v_x per volt at the load, suppression, Early u, sign)
+        for :func:`physics.thd_small_signal`; the signed second harmonics add.
+        """
+
+    @abstractmethod
+    def _swing(self, p: Parts, device: Device, c: Conditions, b: Bias,
+               mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+        """swing_vpp (V) at the load and the largest Vce in operation (V)."""
+
+    @abstractmethod
+    def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
+                 r_source: np.ndarray | None, load: bool) -> physics.Network:
+        """Small-signal network with nodes 'in' (after the source impedance) and 'out' (the load).
+
+        ac False: mid-band (coupling and bypass capacitors short, device and load capacitances
+        open); r_source None: source removed; load False: load removed.
+        """
+
+    @abstractmethod
+    def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
+        """p_<resistor> (W) and v_<capacitor> (V)."""
+
+    # ---- shared flow -------------------------------------------------------------------
+    def check_parts(self, parts: Parts) -> Parts:
+        """Broadcast parts to float arrays over one candidate axis; InputError if any is missing or bad."""
+        needed = self.resistors + self.capacitors
+        problems = [Problem(f"parts.{r}", None, f"{self.name} needs {', '.join(needed)}")
+                    for r in needed if r not in parts]
+        if problems:
+            raise InputError(problems, title=f"parts do not fit topology {self.name}")
+        arrays = np.broadcast_arrays(*(np.atleast_1d(np.asarray(parts[r], dtype=float)) for r in needed))
+        out = dict(zip(needed, (a.ravel() for a in arrays)))
+        for r, a in out.items():
+            bad = ~(a >= 0) if r in self.optional_parts else ~(a > 0)
+            if np.any(bad):
+                raise InputError.single(f"parts.{r}", float(a[bad][0]),
+                                        "a value >= 0" if r in self.optional_parts else "a value > 0",
+                                        title=f"invalid part value for {self.name}")
+        return out
+
+    def _solve(self, parts: Parts, device: Device, conditions: Conditions,
+               hfe: np.ndarray | float | None) -> tuple[Parts, Bias, float]:
+        p = self.check_parts(parts)
+        n = next(iter(p.values())).size
+        beta = np.broadcast_to(np.asarray(device.hfe_typ if hfe is None else hfe, dtype=float), (n,))
+        nvt = device.NF * float(thermal_voltage(conditions.temperature))
+        i_s = float(saturation_current(device.IS, conditions.temperature))
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            b = self._bias(p, device, conditions, beta, nvt, i_s)
+        b.beta = beta
+        return p, b, nvt
+
+    def operating_point(self, parts: Parts, device: Device, conditions: Conditions,
+                        hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
+        return self._solve(parts, device, conditions, hfe)[1].op
+
+    def evaluate(self, parts: Parts, device: Device, conditions: Conditions,
+                 hfe: np.ndarray | float | None = None, *, full: bool = True) -> StageResult:
+        p = self.check_parts(parts)
+        n = next(iter(p.values())).size
+        h = np.broadcast_to(np.asarray(device.hfe_typ if hfe is None else hfe, dtype=float), (n,))
+        step = CHUNK_FULL if full else CHUNK_FAST
+        if n <= step:
+            return self._evaluate(p, device, conditions, h, full)
+        out: StageResult | None = None
+        for i in range(0, n, step):
+            r = self._evaluate({k: v[i:i + step] for k, v in p.items()}, device, conditions, h[i:i + step], full)
+            if out is None:
+                out = StageResult(*({k: np.empty(n, dtype=v.dtype) for k, v in d.items()}
+                                    for d in (r.metrics, r.operating_point, r.ratings)))
+            for whole, part in ((out.metrics, r.metrics), (out.operating_point, r.operating_point),
+                                (out.ratings, r.ratings)):
+                for k, v in part.items():
+                    whole[k][i:i + step] = v
+        return out
+
+    def _evaluate(self, parts: Parts, device: Device, conditions: Conditions,
+                  hfe: np.ndarray, full: bool) -> StageResult:
+        p, b, nvt = self._solve(parts, device, conditions, hfe)
+        r_source = np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            mid = self._midband(p, conditions, b, r_source)
+            # impedances are seen through the coupling capacitors at the band's geometric mean
+            w_mid = 2.0 * np.pi * math.sqrt(conditions.band[0] * conditions.band[1])
+            z_in = np.hypot(mid["input_impedance"], 1.0 / (w_mid * p["c_in"]))
+            z_out = np.hypot(mid["output_impedance"], 1.0 / (w_mid * p["c_out"]))
+            swing, vce_max = self._swing(p, device, conditions, b, mid)
+            gain = mid["gain"]
+            m: dict[str, np.ndarray] = {
+                "gain": gain, "gain_db": 20.0 * np.log10(np.abs(gain)), "swing_vpp": swing,
+                "input_impedance": z_in, "output_impedance": z_out,
+                "supply_current": b.op["supply_current"],
+                "thd": np.abs(sum(sign * physics.thd_small_signal(0.5 * conditions.signal_vpp * vx, sup, nvt, u)
+                                  for vx, sup, u, sign in mid["hd2_terms"])),
+                "q_power": b.op["q_power"],
+                "part_count": self.part_count(p)}
+            nan = np.full_like(gain, np.nan)
+            m.update(f_low=nan, f_high=nan, noise_ein_v=nan, noise_figure_db=nan)
+            if full:
+                m.update(self._full_metrics(p, conditions, b, r_source, gain))
+                m["thd"] = self._thd_static(p, device, conditions, b, nvt, b.beta, gain)
+            ratings = self._ratings(p, conditions, b)
+        ratings["vce_max"] = vce_max
+        return StageResult({k: m[k] for k in METRICS}, b.op, ratings)
+
+    def _full_metrics(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray,
+                      gain: np.ndarray) -> dict[str, np.ndarray]:
+        pc = {k: v[:, None] for k, v in p.items()}
+        ssc = [{k: v[:, None] for k, v in ss.items()} for ss in b.small_signal]
+        rsc = r_source[:, None]
+        net = self._network(pc, c, ssc, True, rsc, True)
+        f_low, f_high = physics.minus_3db_corners(self._response(net, rsc), gain, gain.size)
+        ein, nf = physics.noise_integrals(net, "out", "in", r_source, c.band, c.temperature)
+        return {"f_low": f_low, "f_high": f_high, "noise_ein_v": ein, "noise_figure_db": nf}
+
+    @staticmethod
+    def _response(net: physics.Network, rsc: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+        def h(f: np.ndarray) -> np.ndarray:
+            return net.at(2j * np.pi * f).solve({"in": 1.0 / rsc}, ["out"])["out"]
+        return h
+
+    def frequency_response(self, parts: Parts, device: Device, conditions: Conditions,
+                           freqs: np.ndarray, hfe: np.ndarray | float | None = None) -> np.ndarray:
+        """Complex gain source->load (V/V) at freqs (Hz), shape (candidates, freqs), by full nodal solve."""
+        p, b, _ = self._solve(parts, device, conditions, hfe)
+        pc = {k: v[:, None] for k, v in p.items()}
+        ssc = [{k: v[:, None] for k, v in ss.items()} for ss in b.small_signal]
+        rsc = np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)[:, None]
+        f = np.broadcast_to(np.asarray(freqs, dtype=float)[None, :], (b.op["ic"].size, len(freqs)))
+        return self._response(self._network(pc, conditions, ssc, True, rsc, True), rsc)(f)
+
+    def midband_network(self, parts: Parts, device: Device, conditions: Conditions,
+                        hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
+        """gain (V/V), input_impedance and output_impedance (|Z|, ohm) by full nodal solve at the
+        band's geometric-mean frequency (a check of the closed forms)."""
+        p, b, _ = self._solve(parts, device, conditions, hfe)
+        rs = np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)
+        s = np.array(2j * np.pi * math.sqrt(conditions.band[0] * conditions.band[1]))
+        ss, one = b.small_signal, np.ones_like(rs)
+        h = self._network(p, conditions, ss, True, rs, True).at(s).solve({"in": 1.0 / rs}, ["out"])["out"]
+        z_in = self._network(p, conditions, ss, True, None, True).at(s).solve({"in": one}, ["in"])["in"]
+        z_out = self._network(p, conditions, ss, True, rs, False).at(s).solve({"out": one}, ["out"])["out"]
+        return {"gain": np.copysign(np.abs(h), h.real), "input_impedance": np.abs(z_in),
+                "output_impedance": np.abs(z_out)}
+
+    def part_count(self, p: Parts) -> np.ndarray:
+        """Resistors and capacitors present (optional ones only when non-zero) plus transistors."""
+        n = next(iter(p.values())).size
+        count = np.full(n, float(self.transistors))
+        for r in self.resistors + self.capacitors:
+            count += (p[r] > 0) if r in self.optional_parts else 1.0
+        return count
+
+    @abstractmethod
+    def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
+                      i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+        """Map source voltages (V, (candidates, samples)) to load voltages (V) by the static
+        nonlinear stage equations around the operating point (capacitors hold their DC)."""
+
+    def _thd_static(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
+                    beta: np.ndarray, gain: np.ndarray, samples: int = physics.THD_SAMPLES) -> np.ndarray:
+        i_s = float(saturation_current(device.IS, c.temperature))
+        col = lambda d: {k: np.asarray(v)[:, None] for k, v in d.items()}  # noqa: E731
+        fn = self.static_output(col(p), device, c, Bias(col(b.op), b.small_signal), nvt, i_s, beta[:, None])
+        return physics.thd_quasistatic(fn, 0.5 * c.signal_vpp / np.abs(gain), samples)
+
+    def thd_quasistatic(self, parts: Parts, device: Device, conditions: Conditions,
+                        hfe: np.ndarray | float | None = None, samples: int = 256) -> np.ndarray:
+        """THD (fraction) at conditions.signal_vpp at the load, by static solve + FFT (per candidate)."""
+        p, b, nvt = self._solve(parts, device, conditions, hfe)
+        rs = np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            gain = self._midband(p, conditions, b, rs)["gain"]
+            return self._thd_static(p, device, conditions, b, nvt, b.beta, gain, samples)

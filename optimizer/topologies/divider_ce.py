@@ -1,0 +1,141 @@
+"""divider_ce: common emitter, voltage-divider bias, emitter resistor unbypassed.
+
+Nodes: r_top vcc-base, r_bottom base-gnd, r_collector vcc-collector, r_emitter
+emitter-gnd, c_in source-base, c_out collector-out, load out-gnd.
+"""
+from __future__ import annotations
+
+from typing import Callable
+
+import numpy as np
+
+from optimizer import physics
+from optimizer.devices import Device
+from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
+
+
+class DividerCE(StageModel):
+    name = "divider_ce"
+    description = "common emitter, voltage-divider bias, emitter resistor unbypassed"
+    resistors = ("r_top", "r_bottom", "r_collector", "r_emitter")
+    capacitors = ("c_in", "c_out")
+    transistors = 1
+
+    # emitter network: DC resistance, AC (unbypassed) resistance, DC voltage held by a bypass
+    def _re_dc(self, p: Parts) -> np.ndarray:
+        return p["r_emitter"]
+
+    def _re_ac(self, p: Parts) -> np.ndarray:
+        return p["r_emitter"]
+
+    def _emitter_network(self, net: physics.Network, p: Parts, ac: bool) -> None:
+        net.resistor("emitter", None, p["r_emitter"])
+
+    def _nodes(self) -> tuple[str, ...]:
+        return ("in", "base", "bint", "emitter", "collector", "out")
+
+    def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float,
+              i_s: float) -> Bias:
+        rt, rb, rc, re = p["r_top"], p["r_bottom"], p["r_collector"], self._re_dc(p)
+        vcc = c.supply
+        vth, rth = vcc * rb / (rt + rb), rt * rb / (rt + rb)
+        q = physics.solve_junction(vth, rth + device.RB, re, i_s=i_s, beta=beta, nvt=nvt,
+                                   inv_vaf=device.inv_vaf, vcb0=vcc, vcb_ic=rc + re, vcb_ib=re, vcb_vbe=1.0)
+        ic, ib = q["ic"], q["ib"]
+        v_e = re * (ic + ib)
+        v_base = v_e + q["vbe"] + device.RB * ib
+        v_c = vcc - rc * ic
+        vce = v_c - v_e
+        i_div = (vcc - v_base) / rt
+        op = {"v_base": v_base, "v_collector": v_c, "v_emitter": v_e, "ic": ic, "ib": ib,
+              "i_divider": i_div, "vce": vce, "vbe": q["vbe"],
+              "active": physics.is_active(vce, ic, device.vce_sat, q["converged"]),
+              "supply_current": ic + i_div, "q_power": vce * ic}
+        op.update(self._extra_op(p, ic + ib))
+        return Bias(op, [physics.small_signal(q, device, beta, nvt, i_s)])
+
+    def _extra_op(self, p: Parts, ie: np.ndarray) -> dict[str, np.ndarray]:
+        return {}
+
+    def _midband(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
+        rth = physics.parallel(p["r_top"], p["r_bottom"])
+        r_load = physics.parallel(p["r_collector"], np.full_like(rth, c.load_impedance))
+        m = physics.ce_midband(b.small_signal[0], self._re_ac(p), r_load, physics.parallel(r_source, rth))
+        z_in = physics.parallel(rth, m["z_base"])
+        return {"gain": z_in / (z_in + r_source) * m["gain_c"], "input_impedance": z_in,
+                "output_impedance": physics.parallel(p["r_collector"], m["z_coll"]),
+                "hd2_terms": [(1.0 / np.abs(m["gain_x"]), 1.0 / m["loop"],
+                               b.small_signal[0]["go"] * r_load, 1.0)],
+                "gain_c": m["gain_c"], "r_ac": r_load}
+
+    def _swing(self, p: Parts, device: Device, c: Conditions, b: Bias,
+               mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+        op = b.op
+        cut, sat = physics.load_line_limits(op["ic"], op["vce"], device.vce_sat, mid["r_ac"], self._re_ac(p))
+        vce_max = np.minimum(c.supply, op["v_collector"] + cut) - op.get("v_e2", 0.0)
+        return 2.0 * np.minimum(cut, sat), vce_max
+
+    def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
+                 r_source: np.ndarray | None, load: bool) -> physics.Network:
+        net = physics.Network(self._nodes(), c.temperature)
+        if r_source is not None:
+            net.admittance("in", None, 1.0 / r_source)
+        net.capacitor("in", "base", p["c_in"], ac, True)
+        net.resistor("base", None, p["r_top"])
+        net.resistor("base", None, p["r_bottom"])
+        net.resistor("base", "bint", ss[0]["rb"])
+        net.transistor("bint", "collector", "emitter", ss[0], ac)
+        self._emitter_network(net, p, ac)
+        net.resistor("collector", None, p["r_collector"])
+        net.capacitor("collector", "out", p["c_out"], ac, True)
+        add_load(net, c, ac, load)
+        return net
+
+    def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
+        op = b.op
+        ie = op["ic"] + op["ib"]
+        r = {"p_r_top": (c.supply - op["v_base"]) ** 2 / p["r_top"], "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
+             "p_r_collector": (c.supply - op["v_collector"]) ** 2 / p["r_collector"],
+             "p_r_emitter": ie ** 2 * p["r_emitter"],
+             "v_c_in": op["v_base"], "v_c_out": op["v_collector"]}
+        r.update(self._extra_ratings(p, op, ie))
+        return r
+
+    def _extra_ratings(self, p: Parts, op: dict[str, np.ndarray], ie: np.ndarray) -> dict[str, np.ndarray]:
+        return {}
+
+    def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
+                      i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+        """Load voltage (V) against source voltage (V): the base loop solved at every sample.
+
+        Coupling capacitors hold their DC voltages over the period; the emitter bypass (if
+        any) holds the bypassed node; the collector sees r_collector || load around the
+        quiescent point and flattens at vce_sat.
+        """
+        op = b.op
+        rth = physics.parallel(p["r_top"], p["r_bottom"])
+        vth = c.supply * p["r_bottom"] / (p["r_top"] + p["r_bottom"])
+        rs = max(c.source_impedance, physics.R_FLOOR)
+        r_t = physics.parallel(rth, rs)
+        r_ac = physics.parallel(p["r_collector"], np.full_like(rth, c.load_impedance))
+        re = self._re_ac(p)
+        v_hold = op.get("v_e2", np.zeros_like(rth))
+        ic_q, vc_q = op["ic"], op["v_collector"]
+
+        def out(vs: np.ndarray) -> np.ndarray:
+            a = (vth * rs + (vs + op["v_base"]) * rth) / (rs + rth) - v_hold
+            q = physics.solve_junction(a, r_t + device.RB, re, i_s=i_s, beta=beta, nvt=nvt, inv_vaf=device.inv_vaf,
+                                       vcb0=vc_q + ic_q * r_ac - v_hold, vcb_ic=r_ac + re, vcb_ib=re, vcb_vbe=1.0,
+                                       v_start=op["vbe"], iterations=physics.THD_ITERATIONS)
+            v_e = v_hold + re * (q["ic"] + q["ib"])
+            v_c = np.maximum(vc_q - (q["ic"] - ic_q) * r_ac, v_e + device.vce_sat)
+            return v_c - vc_q
+        return out
+
+
+def add_load(net: physics.Network, c: Conditions, ac: bool, load: bool) -> None:
+    """Load resistance (with its noise) and, in the AC network, load capacitance at node 'out'."""
+    if load and np.isfinite(c.load_impedance):
+        net.resistor("out", None, np.asarray(c.load_impedance, dtype=float))
+    if load and c.load_capacitance > 0:
+        net.capacitor("out", None, np.asarray(c.load_capacitance, dtype=float), ac, False)

@@ -1,0 +1,36 @@
+"""divider_ce_split: divider_ce with the emitter resistor split, r_emitter_dc bypassed.
+
+Nodes: as divider_ce, with emitter -r_emitter- e2 -r_emitter_dc- gnd and c_emitter e2-gnd,
+so the DC bias sees r_emitter + r_emitter_dc and the mid-band gain only r_emitter.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from optimizer import physics
+from optimizer.topologies.base import Parts
+from optimizer.topologies.divider_ce import DividerCE
+
+
+class DividerCESplit(DividerCE):
+    name = "divider_ce_split"
+    description = "common emitter, divider bias, emitter resistor split with the lower part bypassed"
+    resistors = ("r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter_dc")
+    capacitors = ("c_in", "c_out", "c_emitter")
+
+    def _re_dc(self, p: Parts) -> np.ndarray:
+        return p["r_emitter"] + p["r_emitter_dc"]
+
+    def _emitter_network(self, net: physics.Network, p: Parts, ac: bool) -> None:
+        net.resistor("emitter", "e2", p["r_emitter"])
+        net.resistor("e2", None, p["r_emitter_dc"])
+        net.capacitor("e2", None, p["c_emitter"], ac, True)
+
+    def _nodes(self) -> tuple[str, ...]:
+        return ("in", "base", "bint", "emitter", "e2", "collector", "out")
+
+    def _extra_op(self, p: Parts, ie: np.ndarray) -> dict[str, np.ndarray]:
+        return {"v_e2": ie * p["r_emitter_dc"]}
+
+    def _extra_ratings(self, p: Parts, op: dict[str, np.ndarray], ie: np.ndarray) -> dict[str, np.ndarray]:
+        return {"p_r_emitter_dc": ie ** 2 * p["r_emitter_dc"], "v_c_emitter": op["v_e2"]}

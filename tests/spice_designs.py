@@ -1,0 +1,87 @@
+"""The design set the stage models are checked on against ngspice.
+
+Hand-method designs (optimizer.synthesis, unrounded) over all four topologies, supplies
+3.3-30 V, hFE 50-500, collector currents 0.3-3 mA and a range of gains, sources and
+loads: varied enough to exercise every term of the models, and the same designs show
+how far the textbook estimate itself lands from the simulator.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from optimizer.devices import Device
+from optimizer.synthesis import HandRequirements, hand_design
+from optimizer.topologies.base import Conditions
+
+
+@dataclass(frozen=True)
+class CheckDesign:
+    """One design to simulate: topology, parts (ohm, F), device, conditions, and the
+    hand method's own predictions of gain (V/V, signed) and collector current (A)."""
+
+    name: str
+    topology: str
+    parts: dict[str, float]
+    device: Device
+    conditions: Conditions
+    hand_gain: float
+    hand_ic: float
+
+
+def check_device(hfe: float) -> Device:
+    """An invented small-signal NPN with typical parameters (from memory), BF = hfe."""
+    return Device(id=f"check-npn-{hfe:g}", polarity="npn", hfe_min=hfe, hfe_typ=hfe, hfe_max=hfe,
+                  IS=1e-14, BF=hfe, NF=1.0, VAF=100.0, RB=50.0, CJE=10e-12, CJC=4e-12, TF=0.4e-9,
+                  vce_sat=0.2, vceo_max=45.0, p_max=0.5)
+
+
+# (topology, supply V, |gain| V/V, Ic A, hFE, source ohm, load ohm)
+_CASES = [
+    ("divider_ce", 9.0, 8.0, 1.0e-3, 200, 600, 100e3),
+    ("divider_ce", 3.3, 3.0, 0.5e-3, 120, 1e3, 47e3),
+    ("divider_ce", 5.0, 5.0, 1.0e-3, 50, 50, 22e3),
+    ("divider_ce", 12.0, 10.0, 2.0e-3, 300, 600, 10e3),
+    ("divider_ce", 15.0, 15.0, 0.5e-3, 500, 10e3, 100e3),
+    ("divider_ce", 24.0, 20.0, 1.5e-3, 250, 1e3, 47e3),
+    ("divider_ce", 30.0, 6.0, 3.0e-3, 100, 600, 10e3),
+    ("divider_ce", 9.0, 4.0, 0.3e-3, 400, 100e3, 1e6),
+    ("divider_ce_split", 9.0, 10.0, 1.0e-3, 200, 600, 100e3),
+    ("divider_ce_split", 3.3, 4.0, 0.5e-3, 150, 1e3, 47e3),
+    ("divider_ce_split", 5.0, 6.0, 1.0e-3, 60, 50, 22e3),
+    ("divider_ce_split", 12.0, 12.0, 2.0e-3, 300, 600, 10e3),
+    ("divider_ce_split", 15.0, 20.0, 0.5e-3, 500, 10e3, 100e3),
+    ("divider_ce_split", 24.0, 25.0, 1.5e-3, 250, 1e3, 47e3),
+    ("divider_ce_split", 30.0, 8.0, 3.0e-3, 100, 600, 10e3),
+    ("divider_ce_split", 9.0, 5.0, 0.3e-3, 400, 100e3, 1e6),
+    ("feedback_ce", 9.0, 8.0, 1.0e-3, 200, 600, 100e3),
+    ("feedback_ce", 3.3, 3.0, 0.5e-3, 120, 1e3, 47e3),
+    ("feedback_ce", 5.0, 5.0, 1.0e-3, 50, 50, 22e3),
+    ("feedback_ce", 12.0, 10.0, 2.0e-3, 300, 600, 10e3),
+    ("feedback_ce", 15.0, 15.0, 0.5e-3, 500, 10e3, 100e3),
+    ("feedback_ce", 24.0, 20.0, 1.5e-3, 250, 1e3, 47e3),
+    ("feedback_ce", 30.0, 6.0, 3.0e-3, 100, 600, 10e3),
+    ("feedback_ce", 9.0, 4.0, 0.3e-3, 400, 10e3, 1e6),
+    ("ce_follower", 9.0, 8.0, 1.0e-3, 200, 600, 10e3),
+    ("ce_follower", 3.3, 3.0, 0.5e-3, 120, 1e3, 4.7e3),
+    ("ce_follower", 5.0, 5.0, 1.0e-3, 60, 50, 2.2e3),
+    ("ce_follower", 12.0, 10.0, 2.0e-3, 300, 600, 1e3),
+    ("ce_follower", 15.0, 15.0, 0.5e-3, 500, 10e3, 10e3),
+    ("ce_follower", 24.0, 20.0, 1.5e-3, 250, 1e3, 600),
+    ("ce_follower", 30.0, 6.0, 3.0e-3, 100, 600, 2.2e3),
+    ("ce_follower", 9.0, 4.0, 0.5e-3, 400, 10e3, 47e3),
+]
+
+
+def check_designs() -> list[CheckDesign]:
+    """All designs of the ngspice agreement set (32, every topology)."""
+    designs = []
+    for topology, supply, gain, ic, hfe, rs, rl in _CASES:
+        req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
+                               f_low=20.0, collector_current=ic, hfe=hfe)
+        parts = hand_design(topology, req)
+        conditions = Conditions(supply=supply, source_impedance=float(rs), load_impedance=float(rl),
+                                band=(20.0, 20000.0), temperature=27.0)
+        name = f"{topology}-{supply:g}V-A{gain:g}-hfe{hfe}"
+        designs.append(CheckDesign(name, topology, parts, check_device(hfe), conditions,
+                                   hand_gain=-gain, hand_ic=ic))
+    return designs

@@ -1,0 +1,252 @@
+"""ngspice reference harness: simulate a stage's netlist in batch mode and measure it.
+
+Every function takes (topology, parts, model, conditions) as optimizer.netlist.spice_netlist
+does and returns floats in SI units. Each call runs ``ngspice -b`` once or a few times on a
+netlist from optimizer.netlist with a ``.control`` block that prints scalars (``name = value``
+lines, 12 digits) or writes waveforms with ``wrdata`` into a temporary directory.
+A failed run raises SpiceError carrying the netlist and ngspice's output.
+"""
+from __future__ import annotations
+
+import math
+import re
+import shutil
+import subprocess
+import tempfile
+from collections.abc import Mapping
+from pathlib import Path
+from types import SimpleNamespace
+from typing import Any
+
+import numpy as np
+
+from optimizer.netlist import mid_band_frequency, spice_netlist
+
+NGSPICE = shutil.which("ngspice")
+TIMEOUT_S = 60.0
+_FAILED = re.compile(r"^\s*error|simulation interrupted|could not find|singular matrix|"
+                     r"timestep too small", re.IGNORECASE | re.MULTILINE)
+_SCALAR = re.compile(r"^\s*([A-Za-z_][\w]*)\s*=\s*([-+0-9.eE]+|nan|inf)\s*$", re.MULTILINE)
+
+
+class SpiceError(RuntimeError):
+    """ngspice failed or did not print what the harness asked for."""
+
+
+def ngspice_available() -> bool:
+    """True when an ngspice executable is on PATH."""
+    return NGSPICE is not None
+
+
+def _simulate(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+              conditions: Any, control: str, *, elements: str = "", waveforms: tuple[str, ...] = (),
+              amplitude: float = 0.01, frequency: float | None = None,
+              ) -> tuple[dict[str, float], dict[str, np.ndarray]]:
+    """Run one netlist with ``control`` (``{dir}`` = output directory) in ngspice.
+
+    Returns the printed scalars and the arrays of each ``{dir}/<name>.txt`` in ``waveforms``.
+    """
+    if NGSPICE is None:
+        raise SpiceError("ngspice not installed: apt-get install ngspice")
+    with tempfile.TemporaryDirectory(prefix="stagefit-spice-") as tmp:
+        body = control.replace("{dir}", tmp)
+        analyses = f"{elements}\n.control\nset noaskquit\nset numdgt=12\n{body}\nquit\n.endc"
+        netlist = spice_netlist(topology, parts, model, conditions, analyses=analyses,
+                                amplitude=amplitude, frequency=frequency)
+        path = Path(tmp) / "stage.cir"
+        path.write_text(netlist)
+        try:
+            run = subprocess.run([NGSPICE, "-b", str(path)], capture_output=True, text=True,
+                                 timeout=TIMEOUT_S, cwd=tmp)
+        except subprocess.TimeoutExpired as exc:
+            raise SpiceError(f"ngspice timed out after {TIMEOUT_S} s\n{netlist}") from exc
+        if run.returncode != 0 or _FAILED.search(run.stdout + run.stderr):
+            raise SpiceError(_failure(run, netlist, f"exit code {run.returncode}"))
+        scalars = {name: float(value) for name, value in _SCALAR.findall(run.stdout)}
+        try:
+            arrays = {name: np.loadtxt(Path(tmp) / f"{name}.txt", ndmin=2) for name in waveforms}
+        except OSError as exc:
+            raise SpiceError(_failure(run, netlist, f"missing output {exc}")) from exc
+    return scalars, arrays
+
+
+def _failure(run: subprocess.CompletedProcess, netlist: str, why: str) -> str:
+    return (f"ngspice failed ({why})\n--- stderr ---\n{run.stderr[-3000:]}\n"
+            f"--- stdout ---\n{run.stdout[-3000:]}\n--- netlist ---\n{netlist}")
+
+
+def _need(scalars: Mapping[str, float], *names: str) -> list[float]:
+    missing = [n for n in names if n not in scalars]
+    if missing:
+        raise SpiceError(f"ngspice did not report {missing}; got {sorted(scalars)}")
+    return [scalars[n] for n in names]
+
+
+def spice_operating_point(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+                          conditions: Any) -> dict[str, float]:
+    """DC operating point: ic (A, q1; ic2 for q2 of ce_follower), v_base, v_collector,
+    v_emitter (V to ground) and supply_current (A drawn from Vcc)."""
+    follower = topology == "ce_follower"
+    control = ("op\nlet ic = @qq1[ic]\nlet v_base = v(base)\nlet v_collector = v(collector)\n"
+               "let v_emitter = v(emitter)\nlet supply_current = -i(vcc)\n"
+               + ("let ic2 = @qq2[ic]\nprint ic2\n" if follower else "")
+               + "print ic v_base v_collector v_emitter supply_current")
+    scalars, _ = _simulate(topology, parts, model, conditions, control)
+    names = ("ic", "v_base", "v_collector", "v_emitter", "supply_current") + (("ic2",) if follower else ())
+    return dict(zip(names, _need(scalars, *names)))
+
+
+def _complex_gain(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+                  conditions: Any, frequency: float) -> tuple[complex, float]:
+    """V(out)/V(sig) and |V(src)/I(Rs)| (ohm) from a one-point .ac at ``frequency`` Hz."""
+    control = (f"ac lin 1 {frequency!r} {frequency!r}\nlet h = v(out)/v(sig)\n"
+               "let g_re = real(h)\nlet g_im = imag(h)\nlet zin = mag(v(src)/(-i(vsig)))\n"
+               "print g_re g_im zin")
+    scalars, _ = _simulate(topology, parts, model, conditions, control)
+    g_re, g_im, zin = _need(scalars, "g_re", "g_im", "zin")
+    return complex(g_re, g_im), zin
+
+
+def spice_midband(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+                  conditions: Any) -> dict[str, float]:
+    """Mid-band (band's geometric mean) small-signal figures from .ac.
+
+    gain: V(out)/V(sig) as a signed real, |H| with the sign of Re(H) (V/V);
+    input_impedance: |V(src)/I(Rs)|, looking from after the source resistance (ohm);
+    output_impedance: |V(out)| with a 1 A AC current into 'out', Vsig's AC zeroed and the
+    load (RL and CL) removed (ohm).
+    """
+    frequency = mid_band_frequency(conditions)
+    h, zin = _complex_gain(topology, parts, model, conditions, frequency)
+    unloaded = SimpleNamespace(supply=conditions.supply, source_impedance=conditions.source_impedance,
+                               load_impedance=math.inf, load_capacitance=0.0,
+                               temperature=conditions.temperature, band=conditions.band)
+    control = (f"alter @vsig[acmag] = 0\nac lin 1 {frequency!r} {frequency!r}\n"
+               "let zout = mag(v(out))\nprint zout")
+    scalars, _ = _simulate(topology, parts, model, unloaded, control, elements="Itest 0 out DC 0 AC 1")
+    (zout,) = _need(scalars, "zout")
+    return {"gain": math.copysign(abs(h), h.real), "input_impedance": zin, "output_impedance": zout}
+
+
+def _crossing(f: np.ndarray, mag: np.ndarray, level: float) -> float:
+    """First frequency along ``f`` where ``mag`` falls below ``level``, log-interpolated (Hz)."""
+    below = np.nonzero(mag < level)[0]
+    if below.size == 0:
+        return math.nan
+    i = below[0]
+    if i == 0:
+        return float(f[0])
+    x0, x1 = np.log(f[i - 1]), np.log(f[i])
+    y0, y1 = np.log(mag[i - 1]), np.log(mag[i])
+    return float(np.exp(x0 + (np.log(level) - y0) * (x1 - x0) / (y1 - y0)))
+
+
+def spice_response(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+                   conditions: Any) -> dict[str, float]:
+    """-3 dB corners f_low, f_high (Hz) of |V(out)/V(sig)| relative to its value at the band's
+    geometric mean, from .ac dec 100 over 0.01 Hz..1 GHz (nan if no corner in that range)."""
+    control = "ac dec 100 0.01 1e9\nlet h = mag(v(out)/v(sig))\nwrdata {dir}/h.txt h"
+    _, arrays = _simulate(topology, parts, model, conditions, control, waveforms=("h",))
+    f, mag = arrays["h"][:, 0], arrays["h"][:, 1]
+    fm = mid_band_frequency(conditions)
+    ref = float(np.exp(np.interp(np.log(fm), np.log(f), np.log(mag))))
+    above, below = f >= fm, f <= fm
+    level = ref / math.sqrt(2.0)
+    return {"f_low": _crossing(f[below][::-1], mag[below][::-1], level),
+            "f_high": _crossing(f[above], mag[above], level)}
+
+
+# Swing run: one transient whose input sine grows 2 % per cycle from 1 % to 100 % of the
+# supply (referred to the input through the mid-band gain), sampled 72 points per cycle.
+_SWING_START, _SWING_STOP, _SWING_GROWTH, _SWING_SAMPLES = 0.01, 1.0, 0.02, 72
+_PEAK_HALF_WIDTH = 4  # samples (20 degrees) either side of a peak for the curvature gain
+_REFERENCE_PEAKS = 10  # small-signal peaks whose median curvature gain is the reference
+
+
+def spice_swing(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+                conditions: Any) -> float:
+    """Clipping swing at the load, V peak-to-peak, at the band's geometric mean.
+
+    Definition: the input sine's amplitude grows 2 % per cycle. At every input peak the
+    incremental gain is the ratio of the output's to the input's curvature (the value at the
+    peak minus the mean of the values 20 degrees either side). Clipping starts at the first
+    peak, of either polarity, whose incremental gain has fallen below half its small-signal
+    value (the median over the first peaks); the swing is the output's peak-to-peak over the
+    cycle centred on that peak. A hard clip flattens the peak at once, so this is the
+    AC-load-line clip level of the models; a softly compressing side (degenerated cutoff)
+    contributes the level it has reached by then. Resolution ~1 %.
+    """
+    frequency = mid_band_frequency(conditions)
+    h, _ = _complex_gain(topology, parts, model, conditions, frequency)
+    amplitude = _SWING_START * float(conditions.supply) / abs(h)
+    cycles = math.ceil(math.log(_SWING_STOP / _SWING_START) / _SWING_GROWTH)
+    period = 1.0 / frequency
+    step = period / _SWING_SAMPLES
+    theta = -_SWING_GROWTH * frequency  # SIN damping factor; negative grows the amplitude
+    control = (f"alter @vsig[sin] = [ 0 {amplitude!r} {frequency!r} 0 {theta!r} ]\n"
+               f"tran {step!r} {cycles * period!r} 0 {step!r}\nlinearize v(sig) v(out)\n"
+               "wrdata {dir}/w.txt v(sig) v(out)")
+    _, arrays = _simulate(topology, parts, model, conditions, control, waveforms=("w",))
+    v_in, v_out = arrays["w"][:, 1], arrays["w"][:, 3]
+    w = _PEAK_HALF_WIDTH
+    half = _SWING_SAMPLES // 2
+    peaks = np.arange(_SWING_SAMPLES // 4, v_in.size - w, half)  # input peaks at 90, 270 deg
+
+    def curvature(v: np.ndarray) -> np.ndarray:
+        return v[peaks] - 0.5 * (v[peaks - w] + v[peaks + w])
+
+    ratio = curvature(v_out) / curvature(v_in)
+    small_signal = np.median(ratio[:_REFERENCE_PEAKS])
+    clipped = np.nonzero(np.abs(ratio) < 0.5 * abs(small_signal))[0]
+    if clipped.size == 0:
+        raise SpiceError(f"{topology}: no clipping found up to an output of {float(conditions.supply)} V")
+    k = peaks[clipped[0]]
+    cycle = v_out[max(k - half, 0):k + half]
+    return float(cycle.max() - cycle.min())
+
+
+def spice_noise(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+                conditions: Any) -> float:
+    """Equivalent input noise over the band, V rms, referred to the source EMF (Vsig), without
+    the source resistance's own noise (Rsource made noiseless), from .noise dec 50."""
+    low, high = conditions.band
+    control = (f"alter @rsource[noisy] = 0\nnoise v(out) vsig dec 50 {float(low)!r} {float(high)!r}\n"
+               "let ein = inoise_total\nprint ein")
+    scalars, _ = _simulate(topology, parts, model, conditions, control)
+    (ein,) = _need(scalars, "ein")
+    return ein
+
+
+_THD_SETTLE, _THD_CYCLES, _THD_SAMPLES, _THD_HARMONICS = 4, 8, 256, 9
+
+
+def _thd_run(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+             conditions: Any, amplitude: float, frequency: float) -> tuple[float, float]:
+    """(output Vpp, THD fraction of harmonics 2..9) of the last _THD_CYCLES cycles."""
+    period = 1.0 / frequency
+    step = period / _THD_SAMPLES
+    stop = (_THD_SETTLE + _THD_CYCLES) * period
+    control = (f"option reltol=1e-5\n"
+               f"tran {step!r} {stop!r} 0 {step!r}\nlinearize v(out)\nwrdata {{dir}}/o.txt v(out)")
+    _, arrays = _simulate(topology, parts, model, conditions, control, waveforms=("o",),
+                          amplitude=amplitude, frequency=frequency)
+    v = arrays["o"][-_THD_CYCLES * _THD_SAMPLES:, 1]
+    # Hann window over whole cycles: each harmonic sits on bins n*C-1..n*C+1, and the
+    # slow settling of the coupling capacitors stays in bins 0..1.
+    spectrum = np.abs(np.fft.rfft((v - v.mean()) * np.hanning(v.size + 1)[:-1])) ** 2
+    c = _THD_CYCLES
+    power = [spectrum[n * c - 1:n * c + 2].sum() for n in range(1, _THD_HARMONICS + 1)]
+    return float(v.max() - v.min()), float(math.sqrt(sum(power[1:]) / power[0]))
+
+
+def spice_thd(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+              conditions: Any, vpp_out: float, *, frequency: float = 1000.0) -> float:
+    """THD (fraction, harmonics 2..9) of the load voltage at ~``vpp_out`` V peak-to-peak at
+    ``frequency`` Hz: a transient from the operating point, 4 settling then 8 measured cycles;
+    the input is set from the .ac gain, then rescaled once from the measured output Vpp."""
+    h, _ = _complex_gain(topology, parts, model, conditions, frequency)
+    amplitude = 0.5 * vpp_out / abs(h)
+    vpp, thd = _thd_run(topology, parts, model, conditions, amplitude, frequency)
+    if abs(vpp / vpp_out - 1.0) > 0.02:
+        vpp, thd = _thd_run(topology, parts, model, conditions, amplitude * vpp_out / vpp, frequency)
+    return thd
