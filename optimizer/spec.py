@@ -1,0 +1,607 @@
+"""The requirements spec: what a designer asks of one transistor stage.
+
+A spec is written in YAML or JSON with engineering notation in every numeric field
+("12 V", "47k", "20 kHz", "1 %"). :func:`parse_spec` validates it (pydantic v2) into a
+frozen :class:`Spec` holding SI floats (temperatures in °C); every problem found is
+reported together in one :class:`~optimizer.errors.InputError` titled "invalid spec",
+each naming the dotted field path, the value given and what would be valid.
+"""
+from __future__ import annotations
+
+import difflib
+import json
+import math
+from pathlib import Path
+from typing import Annotated, Any, Callable, Literal
+
+import yaml
+from pydantic import (BaseModel, BeforeValidator, ConfigDict, Field, ValidationError,
+                      ValidationInfo, WithJsonSchema, field_validator, model_validator)
+
+from optimizer.errors import InputError, Problem
+from optimizer.eseries import SERIES
+from optimizer.units import format_value, parse_quantity
+
+TOPOLOGY_NAMES = ("divider_ce", "divider_ce_split", "feedback_ce", "ce_follower")
+
+#: Each objective metric with the direction that improves it.
+METRIC_DIRECTIONS = {
+    "supply_current": "minimise", "swing_vpp": "maximise", "gain_error_db": "minimise",
+    "noise_ein_v": "minimise", "thd": "minimise", "cost": "minimise",
+    "part_count": "minimise", "input_impedance": "maximise", "output_impedance": "minimise",
+}
+_DIRECTION_ALIASES = {"minimise": "minimise", "minimize": "minimise", "min": "minimise",
+                      "maximise": "maximise", "maximize": "maximise", "max": "maximise"}
+NOMINAL_TEMPERATURE_C = 27.0
+_TITLE = "invalid spec"
+_JSON_SCHEMA_DRAFT = "https://json-schema.org/draft/2020-12/schema"
+
+
+# --- field types ---------------------------------------------------------------------
+
+def _percent_or_fraction(value: object, where: str) -> float:
+    """A fraction given as a number (0.01) or a percentage ("1 %")."""
+    if isinstance(value, str) and value.strip().endswith("%"):
+        return parse_quantity(value.strip()[:-1], None, where=where) / 100.0
+    return parse_quantity(value, None, where=where)
+
+
+def _quantity(unit: str | None, *, optional: bool = False, allow_negative: bool = False,
+              allow_zero: bool = False, maximum: float | None = None,
+              percent: bool = False, example: str = "") -> Any:
+    """An annotated float field read from engineering notation in ``unit``."""
+
+    def parse(value: object) -> float | None:
+        if value is None and optional:
+            return None
+        if isinstance(value, bool) or not isinstance(value, (str, int, float)):
+            raise ValueError(f"a number or a quantity such as {example!r}")
+        number = (_percent_or_fraction(value, "") if percent else
+                  parse_quantity(value, unit, where="", allow_negative=allow_negative,
+                                 allow_zero=allow_zero))
+        if not allow_zero and number == 0:
+            raise ValueError(f"a value above 0, such as {example!r}")
+        if maximum is not None and number > maximum:
+            raise ValueError(f"at most {format_value(maximum, unit or '')}")
+        return number
+
+    what = f"in {unit}" if unit else "a fraction, or a percentage like '1 %'"
+    alternatives: list[dict] = [{"type": "number"}, {"type": "string"}]
+    if optional:
+        alternatives.append({"type": "null"})
+    schema = {"anyOf": alternatives,
+              "description": f"{what}; engineering notation accepted, e.g. {example!r}"}
+    return Annotated[float | None if optional else float, BeforeValidator(parse),
+                     WithJsonSchema(schema)]
+
+
+def _count(minimum: int, maximum: int, example: str) -> Any:
+    """An integer field that also accepts engineering notation ("2k")."""
+
+    def parse(value: object) -> int:
+        if isinstance(value, bool) or not isinstance(value, (str, int, float)):
+            raise ValueError(f"a whole number from {minimum} to {maximum}")
+        number = parse_quantity(value, None, where="", allow_negative=True)
+        if number != int(number) or not minimum <= number <= maximum:
+            raise ValueError(f"a whole number from {minimum} to {maximum}")
+        return int(number)
+
+    schema = {"anyOf": [{"type": "integer", "minimum": minimum, "maximum": maximum},
+                        {"type": "string"}],
+              "description": f"whole number {minimum}..{maximum}, e.g. {example!r}"}
+    return Annotated[int, BeforeValidator(parse), WithJsonSchema(schema)]
+
+
+def _choice(allowed: tuple[str, ...], label: str) -> Callable[[object], str]:
+    """A validator accepting one of ``allowed`` (case-insensitive), suggesting the closest."""
+
+    def pick(value: object) -> str:
+        by_key = {a.lower(): a for a in allowed}
+        if isinstance(value, str) and value.strip().lower() in by_key:
+            return by_key[value.strip().lower()]
+        raise ValueError(f"one of {', '.join(allowed)}{_suggestion(value, allowed)}")
+
+    pick.__doc__ = f"Validate a {label}."
+    return pick
+
+
+def _suggestion(value: object, allowed: tuple[str, ...] | list[str]) -> str:
+    close = difflib.get_close_matches(str(value), list(allowed), n=1, cutoff=0.5)
+    return f" (did you mean {close[0]!r}?)" if close else ""
+
+
+Ohm = _quantity("ohm", example="47k")
+Farad = _quantity("F", allow_zero=True, example="100p")
+Hertz = _quantity("Hz", example="20 kHz")
+Celsius = _quantity("°C", allow_negative=True, allow_zero=True, example="50 °C")
+Series = Annotated[str, BeforeValidator(_choice(SERIES, "preferred-number series")),
+                   WithJsonSchema({"enum": list(SERIES)})]
+Topology = Annotated[str, BeforeValidator(_choice(TOPOLOGY_NAMES, "topology")),
+                     WithJsonSchema({"enum": list(TOPOLOGY_NAMES)})]
+
+
+def _ordered(low: float, high: float, label: str, unit: str, strict: bool) -> None:
+    """Raise unless low < high (strict) or low <= high."""
+    if low > high or (strict and low == high):
+        word = "below" if strict else "at most"
+        raise ValueError(f"[low, high] with low {word} high ({label}, {unit}); "
+                         f"got {format_value(low, unit)} .. {format_value(high, unit)}")
+
+
+class _Section(BaseModel):
+    """Base of every spec section: frozen, unknown keys forbidden."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+    @classmethod
+    def input_keys(cls) -> tuple[str, ...]:
+        """The keys a user may write in this section."""
+        return tuple(cls.model_fields)
+
+
+# --- sections ------------------------------------------------------------------------
+
+class Gain(_Section):
+    """Required voltage gain, source to load: magnitude (V/V), sign and tolerance (dB).
+
+    Users write ``target`` as signed V/V (-10: inverting) or in dB ("20 dB"), with
+    ``inverting: true|false|null`` when giving a magnitude (null = either sign), and
+    ``tolerance`` in dB ("1 dB") or as a fraction (0.1, "10 %"); default 1 dB. A fraction f
+    becomes 20*log10(1+f) dB, the symmetric dB window inside target*(1 +- f).
+    """
+
+    target: float = Field(description="gain magnitude, V/V")
+    inverting: bool | None = Field(None, description="true: output inverted; null: either")
+    tolerance_db: float = Field(1.0, description="allowed gain error, +- dB")
+
+    @classmethod
+    def input_keys(cls) -> tuple[str, ...]:
+        return ("target", "tolerance", "tolerance_db", "inverting")
+
+    @model_validator(mode="before")
+    @classmethod
+    def _normalise(cls, data: object) -> object:
+        if not isinstance(data, dict):
+            data = {"target": data}
+        data = dict(data)
+        problems: list[Problem] = []
+        if "tolerance" in data and "tolerance_db" in data:
+            problems.append(Problem("tolerance", data["tolerance"],
+                                    "either tolerance or tolerance_db, not both"))
+        elif "tolerance" in data or "tolerance_db" in data:
+            key = "tolerance" if "tolerance" in data else "tolerance_db"
+            try:
+                data["tolerance_db"] = _tolerance_db(data.pop(key), in_db=key == "tolerance_db")
+            except (InputError, ValueError) as exc:
+                problems.append(Problem(key, exc.problems[0].value if isinstance(
+                    exc, InputError) else data.get(key), _expected(exc)))
+        if "target" in data:
+            raw = data["target"]
+            try:
+                signed, in_db = _gain_target(raw)
+                if "inverting" not in data:
+                    data["inverting"] = None if in_db else signed < 0
+                elif signed < 0 and data["inverting"] is not True:
+                    problems.append(Problem("inverting", data["inverting"],
+                                            "true, or omit it: a negative target already "
+                                            "means an inverting stage"))
+                data["target"] = abs(signed)
+            except (InputError, ValueError) as exc:
+                problems.append(Problem("target", raw, _expected(exc)))
+        if problems:
+            raise InputError(problems, _TITLE)
+        return data
+
+    @classmethod
+    def __get_pydantic_json_schema__(cls, core_schema: Any, handler: Any) -> dict:
+        number_or_text = {"anyOf": [{"type": "number"}, {"type": "string"}]}
+        written = {
+            "type": "object", "additionalProperties": False, "required": ["target"],
+            "properties": {
+                "target": {**number_or_text, "description": "signed V/V (-10) or dB ('20 dB')"},
+                "tolerance": {**number_or_text,
+                              "description": "'1 dB', or a fraction (0.1) or '10 %'"},
+                "tolerance_db": {"type": "number", "description": "+- dB"},
+                "inverting": {"type": ["boolean", "null"]},
+            }}
+        return {"title": "Gain", "anyOf": [{"type": "number"}, {"type": "string"}, written],
+                "description": cls.__doc__.split("\n")[0]}
+
+
+def _gain_target(raw: object) -> tuple[float, bool]:
+    """Signed gain in V/V from a number or text, and whether it was given in dB."""
+    if isinstance(raw, bool) or not isinstance(raw, (str, int, float)):
+        raise ValueError("a gain in V/V (e.g. -10) or in dB (e.g. '20 dB')")
+    in_db = isinstance(raw, str) and raw.strip().lower().endswith("db")
+    if in_db:
+        signed = 10 ** (parse_quantity(raw, "dB", where="", allow_negative=True) / 20)
+    else:
+        signed = parse_quantity(raw, "V/V", where="", allow_negative=True)
+    if signed == 0:
+        raise ValueError("a non-zero gain, e.g. -10 or '20 dB'")
+    return signed, in_db
+
+
+def _tolerance_db(raw: object, *, in_db: bool) -> float:
+    """Gain tolerance in dB from '1 dB', a number of dB, or a fraction (0.1, '10 %')."""
+    expected = "a tolerance above 0 and below 20 dB ('1 dB'), or a fraction below 1 (0.1)"
+    if isinstance(raw, bool) or not isinstance(raw, (str, int, float)):
+        raise ValueError(expected)
+    if in_db or (isinstance(raw, str) and raw.strip().lower().endswith("db")):
+        tol = parse_quantity(raw, "dB", where="", allow_negative=True)
+    else:
+        fraction = _percent_or_fraction(raw, "")
+        if not 0 < fraction < 1:
+            raise ValueError(f"{expected}; a fraction of 1 or more lets the gain reach 0")
+        tol = 20 * math.log10(1 + fraction)
+    if not 0 < tol < 20:
+        raise ValueError(f"{expected}; 20 dB or more excludes nothing")
+    return tol
+
+
+class Limits(_Section):
+    """Hard limits the built stage must meet; each optional."""
+
+    input_impedance_min: _quantity("ohm", optional=True, example="100k") = None
+    output_impedance_max: _quantity("ohm", optional=True, example="1k") = None
+    swing_min: _quantity("V", optional=True, example="4 V") = Field(
+        None, description="V peak-to-peak at the load")
+    supply_current_max: _quantity("A", optional=True, example="2 mA") = None
+    thd_max: _quantity(None, optional=True, percent=True, maximum=1.0, example="1 %") = None
+    thd_level: _quantity("V", optional=True, example="2 V") = Field(
+        None, description="output V peak-to-peak at which THD is judged; "
+                          "default half of swing_min, else 1 V")
+    noise_ein_max: _quantity("V", optional=True, example="2 uV") = Field(
+        None, description="equivalent input noise, V rms over the band")
+
+    @model_validator(mode="after")
+    def _thd_level(self) -> "Limits":
+        if self.thd_level is None:
+            default = self.swing_min / 2 if self.swing_min is not None else 1.0
+            object.__setattr__(self, "thd_level", default)
+        elif self.swing_min is not None and self.thd_level > self.swing_min:
+            raise InputError.single("thd_level", self.thd_level,
+                                    f"at most swing_min ({format_value(self.swing_min, 'V')}"
+                                    " peak-to-peak)", _TITLE)
+        return self
+
+
+class Parts(_Section):
+    """Where part values come from: catalog, series, stock and value ranges."""
+
+    catalog: str = "eseries_full"
+    resistor_series: Series = "E24"
+    capacitor_series: Series = "E6"
+    in_stock_only: bool = False
+    resistor_range: tuple[Ohm, Ohm] = Field((10.0, 1e6), description="[low, high] ohm")
+    capacitor_range: tuple[Farad, Farad] = Field((10e-12, 1000e-6), description="[low, high] F")
+    prefer_reuse: bool = False
+
+    @field_validator("resistor_range", "capacitor_range")
+    @classmethod
+    def _range_order(cls, value: tuple[float, float], info: ValidationInfo) -> tuple[float, float]:
+        unit = "ohm" if info.field_name == "resistor_range" else "F"
+        _ordered(*value, info.field_name, unit, strict=False)
+        return value
+
+
+def _objective_input(value: object) -> object:
+    return {"metric": value} if isinstance(value, str) else value
+
+
+class Objective(_Section):
+    """One objective: a metric name and its direction (implied by the metric if omitted)."""
+
+    metric: Annotated[str, BeforeValidator(_choice(tuple(METRIC_DIRECTIONS), "metric"))]
+    direction: Annotated[str | None, BeforeValidator(
+        lambda v: v if v is None else _choice(tuple(_DIRECTION_ALIASES), "direction")(v))] = None
+
+    @model_validator(mode="after")
+    def _direction(self) -> "Objective":
+        implied = METRIC_DIRECTIONS[self.metric]
+        object.__setattr__(self, "direction", _DIRECTION_ALIASES[self.direction or implied])
+        return self
+
+
+ObjectiveItem = Annotated[Objective, BeforeValidator(_objective_input), WithJsonSchema({
+    "anyOf": [{"enum": list(METRIC_DIRECTIONS)},
+              {"type": "object", "additionalProperties": False, "required": ["metric"],
+               "properties": {"metric": {"enum": list(METRIC_DIRECTIONS)},
+                              "direction": {"enum": ["minimise", "maximise",
+                                                     "minimize", "maximize"]}}}]})]
+
+
+class Search(_Section):
+    """Search budget and reproducibility."""
+
+    trials: _count(1, 1_000_000, "2k") = 2000
+    seed: _count(0, 2**32 - 1, "0") = 0
+    batch_size: _count(1, 100_000, "64") = 64
+
+
+def _unique(values: tuple, label: str) -> tuple:
+    if not values:
+        raise ValueError(f"at least one {label}")
+    keys = [v.metric if isinstance(v, Objective) else v for v in values]
+    repeated = sorted({k for k in keys if keys.count(k) > 1})
+    if repeated:
+        raise ValueError(f"each {label} once; repeated: {', '.join(repeated)}")
+    return values
+
+
+class Spec(_Section):
+    """A validated requirements spec; SI floats throughout, temperatures in °C."""
+
+    name: str = Field(min_length=1)
+    description: str | None = None
+    supply: _quantity("V", maximum=100.0, example="12 V") = Field(description="V, above 0, <= 100")
+    gain: Gain
+    source_impedance: _quantity("ohm", allow_zero=True, example="600") = 0.0
+    load_impedance: Ohm
+    load_capacitance: Farad = 0.0
+    band: tuple[Hertz, Hertz] = Field(description="[low, high] Hz")
+    limits: Limits = Field(default_factory=Limits)
+    temperature: tuple[Celsius, Celsius] = Field((0.0, 50.0), description="[low, high] °C")
+    parts: Parts = Field(default_factory=Parts)
+    devices: tuple[str, ...] = ("npn-general",)
+    topologies: tuple[Topology, ...] = TOPOLOGY_NAMES
+    objectives: tuple[ObjectiveItem, ...] = (Objective(metric="supply_current"),
+                                             Objective(metric="swing_vpp"))
+    search: Search = Field(default_factory=Search)
+
+    @field_validator("band")
+    @classmethod
+    def _band_order(cls, value: tuple[float, float]) -> tuple[float, float]:
+        _ordered(*value, "band", "Hz", strict=True)
+        return value
+
+    @field_validator("temperature")
+    @classmethod
+    def _temperature_order(cls, value: tuple[float, float]) -> tuple[float, float]:
+        for t in value:
+            if not -55 <= t <= 150:
+                raise ValueError("temperatures from -55 °C to 150 °C")
+        _ordered(*value, "temperature", "°C", strict=True)
+        return value
+
+    @field_validator("devices")
+    @classmethod
+    def _devices(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        return _unique(value, "device id")
+
+    @field_validator("topologies")
+    @classmethod
+    def _topologies(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        return _unique(value, "topology")
+
+    @field_validator("objectives")
+    @classmethod
+    def _objectives(cls, value: tuple[Objective, ...]) -> tuple[Objective, ...]:
+        return _unique(value, "objective metric")
+
+    @field_validator("limits")
+    @classmethod
+    def _limits_within_supply(cls, limits: Limits, info: ValidationInfo) -> Limits:
+        supply = info.data.get("supply")
+        if supply is None:
+            return limits
+        problems = [Problem(key, value, f"at most the supply ({format_value(supply, 'V')}): "
+                                        "a stage cannot swing more than its supply")
+                    for key, value in (("swing_min", limits.swing_min),
+                                       ("thd_level", limits.thd_level))
+                    if value is not None and value > supply]
+        if problems:
+            raise InputError(problems, _TITLE)
+        return limits
+
+    @property
+    def gain_target_db(self) -> float:
+        """Target gain magnitude in dB."""
+        return 20 * math.log10(self.gain.target)
+
+    @property
+    def objective_directions(self) -> list[tuple[str, str]]:
+        """(metric, "minimise"|"maximise") for each objective, in order."""
+        return [(o.metric, o.direction) for o in self.objectives]
+
+
+# --- errors --------------------------------------------------------------------------
+
+def _expected(exc: Exception) -> str:
+    if isinstance(exc, InputError):
+        return "; ".join(p.expected for p in exc.problems)
+    return str(exc)
+
+
+def _path(loc: tuple) -> str:
+    out = ""
+    for part in loc:
+        out += f"[{part}]" if isinstance(part, int) else (f".{part}" if out else str(part))
+    return out
+
+
+def _section_at(loc: tuple) -> type[_Section] | None:
+    """The section model holding the key at ``loc`` (None if it is not a section)."""
+    cls: type[_Section] = Spec
+    for part in loc:
+        if isinstance(part, int):
+            continue
+        field = cls.model_fields.get(part)
+        if field is None:
+            return None
+        found = _find_section(field.annotation)
+        if found is None:
+            return None
+        cls = found
+    return cls
+
+
+def _find_section(annotation: Any) -> type[_Section] | None:
+    if isinstance(annotation, type) and issubclass(annotation, _Section):
+        return annotation
+    for arg in getattr(annotation, "__args__", ()) + getattr(annotation, "__metadata__", ()):
+        found = _find_section(arg)
+        if found is not None:
+            return found
+    return None
+
+
+_BUILTIN_EXPECTED = {
+    "missing": "a value is required here",
+    "bool_type": "true or false", "bool_parsing": "true or false",
+    "string_type": "text", "string_too_short": "non-empty text",
+    "tuple_type": "a list", "list_type": "a list", "dict_type": "a mapping of keys to values",
+    "model_type": "a mapping of keys to values", "model_attributes_type":
+        "a mapping of keys to values",
+    "too_short": "a list of exactly 2 values [low, high]",
+    "too_long": "a list of exactly 2 values [low, high]",
+}
+
+
+def _problems_from(error: ValidationError) -> list[Problem]:
+    """Translate pydantic's errors into Problems with dotted paths."""
+    problems: list[Problem] = []
+    for err in error.errors():
+        loc, kind, given = tuple(err["loc"]), err["type"], err.get("input")
+        where = _path(loc)
+        cause = err.get("ctx", {}).get("error")
+        if isinstance(cause, InputError):
+            for p in cause.problems:
+                sub = f"{where}.{p.where}" if where and p.where else (where or p.where)
+                problems.append(Problem(sub, p.value if p.where else given, p.expected))
+            continue
+        if kind == "extra_forbidden":
+            section = _section_at(loc[:-1])
+            allowed = list(section.input_keys()) if section else []
+            expected = (f"unknown key {loc[-1]!r}{_suggestion(loc[-1], allowed)}; "
+                        f"allowed keys here: {', '.join(allowed)}")
+        elif cause is not None:
+            expected = str(cause)
+        elif kind in ("too_short", "too_long") and "band" not in where and "range" not in where \
+                and "temperature" not in where:
+            expected = "a longer list" if kind == "too_short" else "a shorter list"
+        else:
+            expected = _BUILTIN_EXPECTED.get(kind, err["msg"][:1].lower() + err["msg"][1:])
+        problems.append(Problem(where or "<spec>", given, expected))
+    return problems
+
+
+# --- public API ----------------------------------------------------------------------
+
+def parse_spec(data: dict, *, source: str = "<spec>") -> Spec:
+    """Validate a spec mapping into a :class:`Spec`; raise InputError with every problem."""
+    if not isinstance(data, dict):
+        raise InputError.single(source, type(data).__name__,
+                                "a mapping of spec keys (name, supply, gain, ...)", _TITLE)
+    try:
+        return Spec.model_validate(data)
+    except ValidationError as exc:
+        raise InputError(_problems_from(exc), f"{_TITLE} ({source})" if source != "<spec>"
+                         else _TITLE) from None
+
+
+def load_spec(path: str | Path) -> Spec:
+    """Read a YAML or JSON spec file and validate it."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError.single(str(path), str(path), f"a readable UTF-8 spec file ({exc})",
+                                "cannot read spec") from None
+    if path.suffix.lower() == ".json" or text.lstrip().startswith("{"):
+        try:
+            data = json.loads(text)
+        except json.JSONDecodeError as exc:
+            raise InputError.single(f"{path}:{exc.lineno}:{exc.colno}", exc.doc[exc.pos:exc.pos
+                                    + 20], f"valid JSON ({exc.msg})", _TITLE) from None
+    else:
+        try:
+            data = yaml.safe_load(text)
+        except yaml.YAMLError as exc:
+            mark = getattr(exc, "problem_mark", None)
+            where = f"{path}:{mark.line + 1}:{mark.column + 1}" if mark else str(path)
+            reason = getattr(exc, "problem", None) or str(exc)
+            raise InputError.single(where, text.splitlines()[mark.line] if mark and
+                                    mark.line < len(text.splitlines()) else "",
+                                    f"valid YAML ({reason})", _TITLE) from None
+    return parse_spec(data, source=str(path))
+
+
+def check_against_catalog(spec: Spec, catalog: Any) -> None:
+    """Check the spec's device ids and series exist in ``catalog``; raise InputError."""
+    problems: list[Problem] = []
+    known = [str(i) for i in catalog.transistors["id"]]
+    for i, device in enumerate(spec.devices):
+        if device not in known:
+            problems.append(Problem(f"devices[{i}]", device, f"a transistor id in catalog "
+                                    f"{spec.parts.catalog!r}: {', '.join(known)}"
+                                    f"{_suggestion(device, known)}"))
+    lookups = {"resistor_series": catalog.resistor_values,
+               "capacitor_series": getattr(catalog, "capacitor_values", None)}
+    for key, lookup in lookups.items():
+        series = getattr(spec.parts, key)
+        if lookup is None:
+            continue
+        try:
+            empty = len(lookup(series=series)) == 0
+        except (KeyError, ValueError):
+            empty = True
+        if empty:
+            problems.append(Problem(f"parts.{key}", series, f"a series with values in catalog "
+                                    f"{spec.parts.catalog!r}"))
+    if problems:
+        raise InputError(problems, "spec does not fit the catalog")
+
+
+def spec_to_dict(spec: Spec) -> dict:
+    """Canonical JSON-ready mapping in SI units (°C for temperature); parse_spec reads it back."""
+    data = spec.model_dump(mode="json")
+    data["gain"] = {"target": spec.gain.target, "inverting": spec.gain.inverting,
+                    "tolerance_db": spec.gain.tolerance_db}
+    return data
+
+
+def spec_json_schema() -> dict:
+    """JSON Schema (draft 2020-12) of the spec as users write it."""
+    schema = Spec.model_json_schema(mode="validation")
+    return {"$schema": _JSON_SCHEMA_DRAFT, **schema}
+
+
+def describe_spec(spec: Spec) -> str:
+    """A readable multi-line listing of the parsed spec, with units."""
+    fv = format_value
+    g = spec.gain
+    sign = {True: "inverting", False: "non-inverting", None: "either sign"}[g.inverting]
+    lines = [f"spec {spec.name}" + (f": {spec.description.strip()}" if spec.description else ""),
+             f"  supply            {fv(spec.supply, 'V')}",
+             f"  gain              {g.target:.4g} V/V ({spec.gain_target_db:.2f} dB), {sign},"
+             f" +-{g.tolerance_db:.2f} dB",
+             f"  source impedance  {fv(spec.source_impedance, 'ohm')}",
+             f"  load              {fv(spec.load_impedance, 'ohm')} || "
+             f"{fv(spec.load_capacitance, 'F')}",
+             f"  band              {fv(spec.band[0], 'Hz')} .. {fv(spec.band[1], 'Hz')}",
+             f"  temperature       {fv(spec.temperature[0], '°C')} .. "
+             f"{fv(spec.temperature[1], '°C')} (nominal {fv(NOMINAL_TEMPERATURE_C, '°C')})"]
+    limit_units = {"input_impedance_min": ("ohm", ""), "output_impedance_max": ("ohm", ""),
+                   "swing_min": ("V", " peak-to-peak"), "supply_current_max": ("A", ""),
+                   "thd_max": ("%", ""), "thd_level": ("V", " peak-to-peak"),
+                   "noise_ein_max": ("V", " rms")}
+    set_limits = [(k, v) for k, v in spec.limits.model_dump().items() if v is not None]
+    lines.append("  limits" + ("" if set_limits else "            none"))
+    for key, value in set_limits:
+        unit, suffix = limit_units[key]
+        shown = f"{100 * value:.3g} %" if unit == "%" else fv(value, unit) + suffix
+        lines.append(f"    {key:<20}{shown}")
+    p = spec.parts
+    lines += [f"  parts             catalog {p.catalog}, resistors {p.resistor_series} "
+              f"{fv(p.resistor_range[0], 'ohm')} .. {fv(p.resistor_range[1], 'ohm')}, "
+              f"capacitors {p.capacitor_series} {fv(p.capacitor_range[0], 'F')} .. "
+              f"{fv(p.capacitor_range[1], 'F')}"
+              + (", in stock only" if p.in_stock_only else "")
+              + (", prefer reuse" if p.prefer_reuse else ""),
+              f"  devices           {', '.join(spec.devices)}",
+              f"  topologies        {', '.join(spec.topologies)}",
+              "  objectives        " + ", ".join(f"{d} {m}" for m, d in spec.objective_directions),
+              f"  search            {spec.search.trials} trials, seed {spec.search.seed}, "
+              f"batch {spec.search.batch_size}"]
+    return "\n".join(lines)
