@@ -1,0 +1,101 @@
+"""Capacitor sizing (joint, not one corner each), worst case and Monte Carlo yield,
+and the hand method used as seeds and baseline."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from optimizer import eseries
+from optimizer.devices import Device
+from optimizer.sizing import size_capacitors
+from optimizer.synthesis import HandRequirements, hand_design, rounded_designs
+from optimizer.tolerance import monte_carlo_yield, worst_case
+from optimizer.topologies import get_topology
+from optimizer.topologies.base import Conditions
+
+DEVICE = Device(id="t-npn", polarity="npn", hfe_min=100, hfe_typ=200, hfe_max=300, IS=1e-14, BF=200,
+                NF=1.0, VAF=100, RB=10, CJE=8e-12, CJC=4e-12, TF=4e-10, vce_sat=0.2, vceo_max=45, p_max=0.5)
+# The common-practice 9 V stage: 75k/10k divider, Rc 10k, Re 1k unbypassed.
+STAGE = {"r_top": np.array([75e3]), "r_bottom": np.array([10e3]), "r_collector": np.array([10e3]),
+         "r_emitter": np.array([1e3])}
+CONDITIONS = Conditions(supply=9.0, source_impedance=600.0, load_impedance=100e3, band=(20.0, 20e3))
+E6_CAPS = eseries.series_values("E6", 1e-9, 1e-3)
+
+
+def _f_low(parts: dict[str, np.ndarray]) -> np.ndarray:
+    return get_topology("divider_ce").evaluate(parts, DEVICE, CONDITIONS, full=True).metrics["f_low"]
+
+
+def test_joint_sizing_meets_the_corner_that_one_corner_each_misses() -> None:
+    topology = get_topology("divider_ce")
+    sized = size_capacitors(topology, STAGE, DEVICE, CONDITIONS, E6_CAPS)
+    assert _f_low({**STAGE, **sized})[0] <= 20.0
+    # Textbook: each capacitor alone at 20 Hz with the resistance it sees (common practice);
+    # the stacked corners then land near 20 * 1.55 = 31 Hz, missing the band.
+    z_in, r_out = 8.5e3 + 600.0, 10e3 + 100e3
+    alone = {"c_in": np.array([1 / (2 * np.pi * 20 * z_in)]), "c_out": np.array([1 / (2 * np.pi * 20 * r_out)])}
+    assert _f_low({**STAGE, **alone})[0] > 28.0
+    # Minimal: no capacitor can go one E6 value lower and still meet the corner.
+    for cap in topology.capacitors:
+        index = np.searchsorted(E6_CAPS, sized[cap][0] * (1 - 1e-9))
+        if index > 0:
+            lower = {**sized, cap: np.array([E6_CAPS[index - 1]])}
+            assert _f_low({**STAGE, **lower})[0] > 20.0
+
+
+def test_sizing_is_vectorised_over_candidates() -> None:
+    topology = get_topology("divider_ce")
+    many = {role: np.repeat(v, 3) * np.array([1.0, 1.5, 2.0]) for role, v in STAGE.items()}
+    together = size_capacitors(topology, many, DEVICE, CONDITIONS, E6_CAPS)
+    for k in range(3):
+        one = size_capacitors(topology, {r: v[k:k + 1] for r, v in many.items()}, DEVICE, CONDITIONS, E6_CAPS)
+        for cap in topology.capacitors:
+            assert together[cap][k] == one[cap][0]
+
+
+def _parts_with_caps() -> dict[str, np.ndarray]:
+    return {**STAGE, "c_in": np.array([10e-6]), "c_out": np.array([10e-6])}
+
+
+def test_worst_case_brackets_the_nominal_design() -> None:
+    topology = get_topology("divider_ce")
+    parts = _parts_with_caps()
+    nominal = topology.evaluate(parts, DEVICE, CONDITIONS).metrics
+    spread = worst_case(topology, parts, DEVICE, CONDITIONS, {r: 0.05 for r in parts}, (0.0, 50.0))
+    for metric in ("gain", "supply_current", "swing_vpp", "input_impedance"):
+        low, high = spread[metric]
+        assert low[0] <= nominal[metric][0] <= high[0]
+        assert high[0] > low[0]
+    # A 5 % divider and hFE 100..300 move the collector current by well over 5 % (common practice).
+    low, high = spread["supply_current"]
+    assert high[0] / low[0] > 1.1
+
+
+def test_yield_is_seeded_and_responds_to_the_limit() -> None:
+    topology = get_topology("divider_ce")
+    parts = {role: np.repeat(v, 2) for role, v in _parts_with_caps().items()}
+    tolerances = {r: 0.05 for r in parts}
+    nominal_gain = abs(topology.evaluate(parts, DEVICE, CONDITIONS).metrics["gain"][0])
+
+    def within(fraction: float):
+        return lambda m: np.abs(np.abs(m["gain"]) / nominal_gain - 1) <= fraction
+
+    loose = monte_carlo_yield(topology, parts, DEVICE, CONDITIONS, tolerances, (0, 50), within(0.5), 400, seed=3)
+    tight = monte_carlo_yield(topology, parts, DEVICE, CONDITIONS, tolerances, (0, 50), within(0.01), 400, seed=3)
+    again = monte_carlo_yield(topology, parts, DEVICE, CONDITIONS, tolerances, (0, 50), within(0.01), 400, seed=3)
+    assert loose[0] == 1.0 and 0.0 < tight[0] < 0.6
+    np.testing.assert_array_equal(tight, again)
+
+
+@pytest.mark.parametrize("topology", ["divider_ce", "divider_ce_split", "feedback_ce", "ce_follower"])
+def test_hand_design_rounds_to_the_series(topology: str) -> None:
+    req = HandRequirements(supply=12.0, gain=10.0, load_impedance=47e3, source_impedance=600.0)
+    parts = hand_design(topology, req)
+    model = get_topology(topology)
+    assert set(parts) == set(model.resistors) | set(model.capacitors)
+    designs = rounded_designs(parts, "E24", "E6")
+    assert 1 < len(designs) <= 16
+    for design in designs:
+        for role, value in design.items():
+            series = "E6" if role.startswith("c_") else "E24"
+            assert eseries.nearest(series, value) == value
