@@ -61,6 +61,64 @@ def _cmd_series(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _parse_settings(settings: Sequence[str]) -> dict[str, float]:
+    from optimizer.units import parse_quantity
+
+    parts = {}
+    for setting in settings:
+        role, sep, text = setting.partition("=")
+        if not sep or not role:
+            raise InputError.single("--set", setting, 'ROLE=VALUE, e.g. "r_top=68k" or "c_in=2.2u"')
+        unit = "F" if role.startswith("c_") else "ohm"
+        parts[role.strip()] = parse_quantity(text.strip(), unit, where=f"--set {role.strip()}")
+    return parts
+
+
+def _cmd_evaluate(args: argparse.Namespace) -> int:
+    from optimizer.candidates import assess
+    from optimizer.catalog import load_catalog
+    from optimizer.spec import check_against_catalog, load_spec
+    from optimizer.units import format_value
+
+    spec = load_spec(args.spec)
+    catalog = load_catalog(spec.parts.catalog)
+    check_against_catalog(spec, catalog)
+    record = assess(spec, catalog, args.topology, _parse_settings(args.set), args.device,
+                    samples=args.samples)
+    if args.format == "json":
+        print(json.dumps(record, indent=2))
+        return EXIT_OK
+    verdict = "meets every limit" if record["feasible"] else "MISSES: " + ", ".join(record["violations"])
+    print(f"{record['topology']} with {record['transistor']['id']}: {verdict}")
+    print("parts:  " + "  ".join(f"{role}={part['label']}" for role, part in record["parts"].items()))
+    units = {"gain": "V/V", "gain_db": "dB", "gain_error_db": "dB", "swing_vpp": "Vpp",
+             "input_impedance": "ohm", "output_impedance": "ohm", "supply_current": "A",
+             "f_low": "Hz", "f_high": "Hz", "noise_ein_v": "V", "noise_figure_db": "dB",
+             "q_power": "W"}
+    print("metrics:")
+    for key, value in record["metrics"].items():
+        unit = units.get(key, "")
+
+        def show(number: float) -> str:
+            if unit in ("V/V", "dB", "") or not number:
+                return f"{number:.4g} {unit}".rstrip()
+            return format_value(number, unit)
+
+        spread = record["worst_case"].get(key)
+        shown = show(value)
+        span = f"   worst case {show(spread[0])} .. {show(spread[1])}" if spread else ""
+        print(f"  {key:<18} {shown}{span}")
+    print("operating point:")
+    for key, value in record["operating_point"].items():
+        print(f"  {key:<18} {value:.4g}")
+    print("ratings (value / limit):")
+    for key, rating in record["ratings"].items():
+        print(f"  {key:<18} {rating['value']:.3g} / {rating['limit']:.3g}")
+    for caution in record["cautions"]:
+        print(f"caution: {caution}")
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the `stagefit` command (sub-commands and options)."""
     parser = argparse.ArgumentParser(
@@ -89,6 +147,16 @@ def build_parser() -> argparse.ArgumentParser:
     series.add_argument("--upto", default=None, help="print up to this value instead of one decade, e.g. 1M")
     series.add_argument("--format", choices=("table", "json"), default="table")
     series.set_defaults(handler=_cmd_series)
+
+    evaluate = sub.add_parser("evaluate", help="metrics, spread, yield and ratings of a design you already have")
+    evaluate.add_argument("spec", help="the spec that sets supply, source, load, band and limits")
+    evaluate.add_argument("--topology", required=True, help="divider_ce, divider_ce_split, feedback_ce or ce_follower")
+    evaluate.add_argument("--set", action="append", default=[], metavar="ROLE=VALUE",
+                          help="a part value, e.g. --set r_top=68k (repeat; capacitors left out are sized)")
+    evaluate.add_argument("--device", default=None, help="transistor id (default: the spec's first device)")
+    evaluate.add_argument("--samples", type=int, default=1000, help="Monte Carlo builds for the yield")
+    evaluate.add_argument("--format", choices=("table", "json"), default="table")
+    evaluate.set_defaults(handler=_cmd_evaluate)
     return parser
 
 

@@ -11,11 +11,16 @@ from __future__ import annotations
 import itertools
 import math
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 from scipy.optimize import brentq
 
 from optimizer import eseries
 from optimizer.errors import InputError
+
+if TYPE_CHECKING:
+    from optimizer.devices import Device
+    from optimizer.spec import Spec
 
 VBE_HAND = 0.65  # V, the textbook's fixed base-emitter drop
 DIVIDER_TO_BASE_CURRENT = 10.0  # divider current / base current (common practice)
@@ -142,3 +147,13 @@ def rounded_designs(parts: dict[str, float], resistor_series: str, capacitor_ser
     choices = [options(role, parts[role]) for role in roles]
     designs = [dict(zip(roles, combo)) for combo in itertools.islice(itertools.product(*choices), limit)]
     return designs
+
+
+def hand_requirements(spec: "Spec", device: "Device") -> HandRequirements:
+    """The hand method's inputs from a spec: collector current half the current budget
+    (1 mA when the spec sets none), the device's typical hFE."""
+    budget = spec.limits.supply_current_max
+    return HandRequirements(supply=spec.supply, gain=spec.gain.target, load_impedance=spec.load_impedance,
+                            source_impedance=spec.source_impedance, f_low=spec.band[0],
+                            collector_current=0.5 * budget if budget else 1e-3,
+                            hfe=device.hfe_typ, vce_sat=device.vce_sat)

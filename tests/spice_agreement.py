@@ -53,7 +53,7 @@ def agreement_rows(design: CheckDesign) -> list[dict]:
     simulated["noise_ein_v"] = spice_noise(*args)
     level = THD_FRACTION_OF_SWING * metrics["swing_vpp"]
     thd_conditions = type(design.conditions)(**{**design.conditions.__dict__, "signal_vpp": level})
-    thd_result = topology.evaluate(parts, design.device, thd_conditions)
+    thd_result = topology.evaluate(parts, design.device, thd_conditions, full=False, thd_solve=True)
     metrics["thd"] = float(np.asarray(thd_result.metrics["thd"])[0])
     simulated["thd"] = spice_thd(*args, vpp_out=level)
 

@@ -180,19 +180,22 @@ def test_quasistatic_thd_agrees_with_estimate_at_low_level(name, rel):
     assert topo.thd_quasistatic(DESIGNS[name], DEVICE, c)[0] == pytest.approx(estimate, rel=rel)
 
 
-def test_full_thd_is_the_quasistatic_solve():
-    # full=True reports the quasi-static FFT (which agreed with ngspice .four within ~3 % on the
-    # shared check designs); at a low level it meets the second-harmonic estimate of the fast path
+def test_thd_solve_opts_into_the_quasistatic_solve():
+    # thd_solve=True reports the quasi-static FFT (which agreed with ngspice .four within ~3 % on the
+    # shared check designs); without it thd is the second-harmonic estimate, full or not, and at a
+    # low level the two meet
     for name in sorted(DESIGNS):
         topo = get_topology(name)
         c = Conditions(supply=12.0, source_impedance=600.0, load_impedance=10e3, signal_vpp=0.3)
-        full = one(topo.evaluate(DESIGNS[name], DEVICE, c), "thd")
-        assert full == pytest.approx(float(topo.thd_quasistatic(DESIGNS[name], DEVICE, c)[0]), rel=0.02), name
+        solved = one(topo.evaluate(DESIGNS[name], DEVICE, c, thd_solve=True), "thd")
+        assert solved == pytest.approx(float(topo.thd_quasistatic(DESIGNS[name], DEVICE, c)[0]), rel=0.02), name
+        estimate = one(topo.evaluate(DESIGNS[name], DEVICE, c, full=False), "thd")
+        assert one(topo.evaluate(DESIGNS[name], DEVICE, c), "thd") == estimate, name
         # the estimate is looser for shunt feedback (its base-side nonlinearity is not in it);
         # the follower's is checked above (its two stages' second harmonics partly cancel)
         rel = {"divider_ce": 0.15, "divider_ce_split": 0.15, "feedback_ce": 0.5}.get(name)
         if rel:
-            assert full == pytest.approx(one(topo.evaluate(DESIGNS[name], DEVICE, c, full=False), "thd"), rel=rel), name
+            assert solved == pytest.approx(estimate, rel=rel), name
 
 
 def test_noise_figure_rises_as_source_impedance_falls():

@@ -72,12 +72,14 @@ class Topology(ABC):
 
     @abstractmethod
     def evaluate(self, parts: Parts, device: Device, conditions: Conditions,
-                 hfe: np.ndarray | float | None = None, *, full: bool = True) -> StageResult:
+                 hfe: np.ndarray | float | None = None, *, full: bool = True,
+                 thd_solve: bool = False) -> StageResult:
         """Metrics, operating point and ratings.
 
-        full=False: the fast core; f_low, f_high and the noise figures are NaN and thd is the
-        small-signal second-harmonic estimate. full=True adds the corners and noise from the
-        nodal network, and thd from the quasi-static solve over one period.
+        full=False: the fast core; f_low, f_high and the noise figures are NaN. full=True adds
+        the corners and noise from the nodal network. thd is the small-signal second-harmonic
+        estimate unless thd_solve=True, which takes it from the quasi-static solve over one
+        period (for the report of a chosen design; about as costly as the rest of full).
         """
 
 
@@ -151,16 +153,18 @@ class StageModel(Topology):
         return self._solve(parts, device, conditions, hfe)[1].op
 
     def evaluate(self, parts: Parts, device: Device, conditions: Conditions,
-                 hfe: np.ndarray | float | None = None, *, full: bool = True) -> StageResult:
+                 hfe: np.ndarray | float | None = None, *, full: bool = True,
+                 thd_solve: bool = False) -> StageResult:
         p = self.check_parts(parts)
         n = next(iter(p.values())).size
         h = np.broadcast_to(np.asarray(device.hfe_typ if hfe is None else hfe, dtype=float), (n,))
         step = CHUNK_FULL if full else CHUNK_FAST
         if n <= step:
-            return self._evaluate(p, device, conditions, h, full)
+            return self._evaluate(p, device, conditions, h, full, thd_solve)
         out: StageResult | None = None
         for i in range(0, n, step):
-            r = self._evaluate({k: v[i:i + step] for k, v in p.items()}, device, conditions, h[i:i + step], full)
+            r = self._evaluate({k: v[i:i + step] for k, v in p.items()}, device, conditions, h[i:i + step], full,
+                               thd_solve)
             if out is None:
                 out = StageResult(*({k: np.empty(n, dtype=v.dtype) for k, v in d.items()}
                                     for d in (r.metrics, r.operating_point, r.ratings)))
@@ -171,7 +175,7 @@ class StageModel(Topology):
         return out
 
     def _evaluate(self, parts: Parts, device: Device, conditions: Conditions,
-                  hfe: np.ndarray, full: bool) -> StageResult:
+                  hfe: np.ndarray, full: bool, thd_solve: bool) -> StageResult:
         p, b, nvt = self._solve(parts, device, conditions, hfe)
         r_source = np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
@@ -194,6 +198,7 @@ class StageModel(Topology):
             m.update(f_low=nan, f_high=nan, noise_ein_v=nan, noise_figure_db=nan)
             if full:
                 m.update(self._full_metrics(p, conditions, b, r_source, gain))
+            if thd_solve:
                 m["thd"] = self._thd_static(p, device, conditions, b, nvt, b.beta, gain)
             ratings = self._ratings(p, conditions, b)
         ratings["vce_max"] = vce_max

@@ -1,0 +1,89 @@
+"""Speed and memory of the stage models (one core).
+
+    .venv/bin/python benchmarks/bench_models.py
+
+Prints candidates per second and peak traced memory for: nominal core metrics of
+divider_ce (target >= 2,000,000/s), the full metric set with frequency response and
+noise (target >= 200,000/s), and Monte Carlo yield with 1,000 samples (target >=
+2,000 candidates/s); writes benchmarks/results/models.md.
+"""
+from __future__ import annotations
+
+import os
+
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ[_var] = "1"  # one core, as the targets are stated
+
+import platform  # noqa: E402
+import time  # noqa: E402
+import tracemalloc  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import numpy as np  # noqa: E402
+
+from optimizer.devices import Device  # noqa: E402
+from optimizer.tolerance import monte_carlo_yield  # noqa: E402
+from optimizer.topologies import get_topology  # noqa: E402
+from optimizer.topologies.base import Conditions  # noqa: E402
+
+ROOT = Path(__file__).resolve().parent.parent
+DEVICE = Device(id="bench-npn", polarity="npn", hfe_min=100, hfe_typ=200, hfe_max=300,
+                IS=1e-14, BF=200, NF=1.0, VAF=100, RB=50, CJE=10e-12, CJC=4e-12, TF=0.4e-9,
+                vce_sat=0.2, vceo_max=45, p_max=0.5)
+CONDITIONS = Conditions(supply=12.0, source_impedance=600.0, load_impedance=47e3)
+
+
+def random_divider_ce(n: int, seed: int = 1) -> dict[str, np.ndarray]:
+    """n random divider_ce designs around workable values (ohm, F)."""
+    rng = np.random.default_rng(seed)
+    return {"r_top": rng.uniform(30e3, 200e3, n), "r_bottom": rng.uniform(5e3, 30e3, n),
+            "r_collector": rng.uniform(2e3, 20e3, n), "r_emitter": rng.uniform(200, 3e3, n),
+            "c_in": np.full(n, 10e-6), "c_out": np.full(n, 10e-6)}
+
+
+def measure(label: str, work, n: int, repeats: int = 3) -> dict:
+    """Best-of-repeats rate (candidates/s) and peak traced memory (MB) of work()."""
+    work()  # warm up
+    best = float("inf")
+    for _ in range(repeats):
+        start = time.perf_counter()
+        work()
+        best = min(best, time.perf_counter() - start)
+    tracemalloc.start()
+    work()
+    peak = tracemalloc.get_traced_memory()[1] / 1e6
+    tracemalloc.stop()
+    return {"label": label, "n": n, "rate": n / best, "seconds": best, "peak_mb": peak}
+
+
+def main() -> None:
+    topology = get_topology("divider_ce")
+    core_n, full_n, mc_n = 1_000_000, 100_000, 1_000
+    core_parts, full_parts, mc_parts = (random_divider_ce(k) for k in (core_n, full_n, mc_n))
+    tolerances = {role: 0.05 for role in core_parts}
+    rows = [
+        measure("core metrics (bias, gain, impedances, swing, current)",
+                lambda: topology.evaluate(core_parts, DEVICE, CONDITIONS, full=False), core_n),
+        measure("full metrics (plus response, noise, thd, ratings)",
+                lambda: topology.evaluate(full_parts, DEVICE, CONDITIONS, full=True), full_n),
+        measure("Monte Carlo yield, 1,000 samples each",
+                lambda: monte_carlo_yield(topology, mc_parts, DEVICE, CONDITIONS, tolerances, (0.0, 50.0),
+                                          lambda m: np.abs(m["gain"]) > 1.0, samples=1000), mc_n,
+                repeats=1),
+    ]
+    targets = [2_000_000, 200_000, 2_000]
+    lines = ["# Stage model speed (divider_ce, one core)", "",
+             f"Machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
+             f"numpy {np.__version__}. Produced by `benchmarks/bench_models.py`.", "",
+             "| what | candidates | candidates/s | target | met | peak memory (MB) |",
+             "| --- | --- | --- | --- | --- | --- |"]
+    for row, target in zip(rows, targets):
+        lines.append(f"| {row['label']} | {row['n']:,} | {row['rate']:,.0f} | {target:,} | "
+                     f"{'yes' if row['rate'] >= target else 'no'} | {row['peak_mb']:.0f} |")
+    text = "\n".join(lines) + "\n"
+    (ROOT / "benchmarks" / "results" / "models.md").write_text(text, encoding="utf-8")
+    print(text)
+
+
+if __name__ == "__main__":
+    main()

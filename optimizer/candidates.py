@@ -1,0 +1,126 @@
+"""A design judged against a spec: the self-contained candidate record of DESIGN.md.
+
+``assess`` takes a topology, part values and a device, sizes any capacitor not given,
+evaluates the stage at nominal temperature, over its worst-case corners and by Monte
+Carlo, checks every hard limit and rating, and returns the candidate JSON (plain dict)
+with cautions for anything near a limit. Used by `stagefit evaluate`, the search's
+shortlist and the REST service alike.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+from optimizer import eseries, scoring
+from optimizer.catalog import Catalog
+from optimizer.devices import Device
+from optimizer.errors import InputError
+from optimizer.sizing import size_capacitors
+from optimizer.spec import Spec
+from optimizer.tolerance import monte_carlo_yield, worst_case
+from optimizer.topologies import get_topology
+from optimizer.topologies.base import Topology
+from optimizer.units import format_value
+
+DEFAULT_POWER_RATING = 0.125  # W, when a value is not in the catalog (common 0805 rating)
+DEFAULT_CAP_VOLTAGE = 16.0  # V, likewise for a capacitor
+HIGH_SUPPLY = 30.0  # V: above this, the usual caution about hazardous voltages
+WORST_CASE_METRICS = ("gain", "swing_vpp", "input_impedance", "supply_current", "f_low")
+
+
+def _check_parts(topology: Topology, parts: dict[str, float]) -> None:
+    known = set(topology.resistors) | set(topology.capacitors)
+    unknown = [role for role in parts if role not in known]
+    if unknown:
+        raise InputError.single(f"--set {unknown[0]}", parts[unknown[0]],
+                                f"a part of {topology.name}: " + ", ".join(sorted(known)))
+    missing = [r for r in topology.resistors if r not in parts]
+    if missing:
+        raise InputError.single(f"--set {missing[0]}", None,
+                                f"every resistor of {topology.name} given: " + ", ".join(topology.resistors))
+
+
+def _part_record(catalog: Catalog, spec: Spec, role: str, value: float) -> dict:
+    kind = "capacitor" if role.startswith("c_") else "resistor"
+    row = catalog.part_for(kind, value)
+    unit = "F" if kind == "capacitor" else ""
+    record = {"value": float(value), "label": format_value(value, unit), "part_id": None}
+    series = spec.parts.capacitor_series if kind == "capacitor" else spec.parts.resistor_series
+    record["tolerance"] = eseries.customary_tolerance(series)
+    record["rating"] = DEFAULT_CAP_VOLTAGE if kind == "capacitor" else DEFAULT_POWER_RATING
+    if row is not None:
+        record["part_id"] = row["part_id"]
+        record["tolerance"] = float(row["tolerance"])
+        record["rating"] = float(row["voltage_rating"] if kind == "capacitor" else row["power_rating"])
+        record["unit_price"] = float(row["unit_price"])
+    return record
+
+
+def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, float],
+           device_id: str | None = None, *, samples: int = 1000, seed: int | None = None) -> dict:
+    """The candidate record (DESIGN.md's candidate JSON plus operating point, ratings,
+    cautions) of one design under ``spec``. Capacitors not in ``parts`` are sized."""
+    topology = get_topology(topology_name)
+    _check_parts(topology, parts)
+    device_id = device_id or spec.devices[0]
+    device = Device.from_row(catalog.transistor(device_id))
+    conditions = scoring.conditions_from_spec(spec)
+    arrays = {role: np.array([float(v)]) for role, v in parts.items()}
+    missing_caps = [c for c in topology.capacitors if c not in parts]
+    if missing_caps:
+        allowed = catalog.capacitor_values(spec.parts.capacitor_series, *spec.parts.capacitor_range,
+                                           in_stock_only=spec.parts.in_stock_only)
+        sized = size_capacitors(topology, {r: arrays[r] for r in topology.resistors}, device,
+                                conditions, allowed)
+        arrays.update({c: sized[c] for c in missing_caps})
+
+    records = {role: _part_record(catalog, spec, role, float(v[0])) for role, v in arrays.items()}
+    rating_limits = {f"p_{r}": records[r]["rating"] for r in topology.resistors if records[r]["value"] > 0}
+    rating_limits.update({f"v_{c}": records[c]["rating"] for c in topology.capacitors})
+    rating_limits.update({"vce_max": device.vceo_max, "q_power": device.p_max})
+
+    result = topology.evaluate(arrays, device, conditions, full=True, thd_solve=True)
+    metrics = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
+    metrics["gain_error_db"] = float(scoring.gain_error_db(spec, np.array([metrics["gain"]]))[0])
+    violations = scoring.limit_violations(spec, result.metrics, result.ratings, rating_limits,
+                                          result.operating_point["active"])
+    tolerances = {role: rec["tolerance"] for role, rec in records.items()}
+
+    def passes(sample: dict[str, np.ndarray]) -> np.ndarray:
+        v = scoring.limit_violations(spec, sample, sample, rating_limits, sample["active"])
+        return scoring.total_violation(v) == 0
+
+    spread = worst_case(topology, arrays, device, conditions, tolerances, tuple(spec.temperature))
+    build_yield = monte_carlo_yield(topology, arrays, device, conditions, tolerances,
+                                    tuple(spec.temperature), passes, samples=samples,
+                                    seed=spec.search.seed if seed is None else seed)
+    cautions = _cautions(spec, result, rating_limits)
+    return {
+        "topology": topology.name,
+        "feasible": bool(scoring.total_violation(violations)[0] == 0),
+        "conditions": {"supply": spec.supply, "source_impedance": spec.source_impedance,
+                       "load_impedance": spec.load_impedance, "band": list(spec.band),
+                       "temperature": list(spec.temperature)},
+        "parts": {role: {k: rec[k] for k in ("value", "label", "part_id")} for role, rec in records.items()},
+        "transistor": {"id": device.id, "polarity": device.polarity, "hfe_min": device.hfe_min,
+                       "hfe_max": device.hfe_max, "model": device.spice_model()},
+        "metrics": {**metrics, "yield": float(build_yield[0])},
+        "operating_point": {k: float(np.asarray(v)[0]) for k, v in result.operating_point.items()},
+        "ratings": {k: {"value": float(np.asarray(result.metrics["q_power"] if k == "q_power"
+                                                  else result.ratings[k])[0]), "limit": float(limit)}
+                    for k, limit in rating_limits.items()},
+        "worst_case": {k: [float(spread[k][0][0]), float(spread[k][1][0])] for k in WORST_CASE_METRICS
+                       if k in spread},
+        "violations": {k: float(v[0]) for k, v in violations.items() if v[0] > 0},
+        "cautions": cautions,
+    }
+
+
+def _cautions(spec: Spec, result, rating_limits: dict[str, float]) -> list[str]:
+    notes = []
+    for key, fraction in scoring.near_ratings(result.ratings, result.metrics, rating_limits).items():
+        notes.append(f"{key} runs at {fraction[0]:.0%} of its rating; check the part before building")
+    if spec.supply > HIGH_SUPPLY:
+        notes.append(f"supply {spec.supply:g} V is above {HIGH_SUPPLY:g} V: treat it as hazardous")
+    notes.append("predicted, not measured: verify the built stage, and follow local electrical "
+                 "codes and licensed practice for anything mains-powered")
+    return notes

@@ -1,0 +1,381 @@
+"""Parts catalogs: resistors, capacitors and transistors with stock, read from CSV.
+
+A catalog is a directory ``parts_catalogs/<name>/`` holding ``resistors.csv``,
+``capacitors.csv``, ``transistors.csv`` and ``catalog.yaml``; the columns and their
+units are documented in ``parts_catalogs/README.md``. Values are SI without prefixes
+(ohm, F, V, W, A, s); a value cell may use engineering notation ("4k7", "100n").
+Every malformed cell of a file is reported at once, each with file, line and column.
+"""
+from __future__ import annotations
+
+import csv
+import functools
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+import yaml
+
+from optimizer import eseries
+from optimizer.errors import InputError, Problem
+from optimizer.units import parse_quantity
+
+CATALOG_DIR: Path = Path(
+    os.environ.get("STAGEFIT_CATALOG_DIR") or Path(__file__).resolve().parent.parent / "parts_catalogs"
+)
+
+_VALUE_RTOL = 1e-6  # two catalog values closer than this (relative) are the same value
+
+
+def _cell_quantity(unit: str, *, positive: bool = True) -> Callable[[str, str], float]:
+    """Parser for a required physical quantity in ``unit`` (SI, no prefix)."""
+
+    def parse(text: str, where: str) -> float:
+        value = parse_quantity(text, unit, where=where)
+        if positive and not value > 0:
+            raise InputError.single(where, text, f"a value above zero, in {unit}")
+        return value
+
+    return parse
+
+
+def _cell_price(text: str, where: str) -> float:
+    value = parse_quantity(text, None, where=where)
+    return value
+
+
+def _cell_tolerance(text: str, where: str) -> float:
+    """Fraction in (0, 0.5]; "1%" is read as 0.01."""
+    expected = "a fraction in (0, 0.5], e.g. 0.05 or 5%"
+    stripped = text.strip()
+    try:
+        value = float(stripped[:-1]) / 100 if stripped.endswith("%") else float(stripped)
+    except ValueError:
+        raise InputError.single(where, text, expected) from None
+    if not 0 < value <= 0.5:
+        raise InputError.single(where, text, expected)
+    return value
+
+
+def _cell_stock(text: str, where: str) -> int | None:
+    """Integer count >= 0; blank means not tracked (unlimited)."""
+    if not text.strip():
+        return None
+    try:
+        value = int(text.strip())
+    except ValueError:
+        value = -1
+    if value < 0:
+        raise InputError.single(where, text, "a whole number >= 0, or blank for not tracked")
+    return value
+
+
+def _cell_text(text: str, where: str) -> str:
+    if not text.strip():
+        raise InputError.single(where, text, "a non-empty text")
+    return text.strip()
+
+
+def _cell_optional_text(text: str, where: str) -> str:
+    return text.strip()
+
+
+def _cell_series(text: str, where: str) -> str:
+    name = text.strip().upper()
+    try:
+        eseries.base_values(name)
+    except (KeyError, ValueError):
+        raise InputError.single(where, text, "an E-series name: E3, E6, E12, E24, E48, E96 or E192") from None
+    return name
+
+
+def _cell_choice(*choices: str) -> Callable[[str, str], str]:
+    def parse(text: str, where: str) -> str:
+        value = text.strip().lower()
+        if value not in choices:
+            raise InputError.single(where, text, "one of " + ", ".join(choices))
+        return value
+
+    return parse
+
+
+def _cell_bool(text: str, where: str) -> bool:
+    value = text.strip().lower()
+    if value not in ("true", "false"):
+        raise InputError.single(where, text, "true or false")
+    return value == "true"
+
+
+_RESISTOR_COLUMNS: dict[str, Callable] = {
+    "part_id": _cell_text,
+    "value": _cell_quantity("ohm"),
+    "series": _cell_series,
+    "tolerance": _cell_tolerance,
+    "power_rating": _cell_quantity("W"),
+    "package": _cell_text,
+    "unit_price": _cell_price,
+    "stock_qty": _cell_stock,
+}
+_CAPACITOR_COLUMNS: dict[str, Callable] = {
+    "part_id": _cell_text,
+    "value": _cell_quantity("F"),
+    "tolerance": _cell_tolerance,
+    "voltage_rating": _cell_quantity("V"),
+    "dielectric": _cell_text,
+    "polarised": _cell_bool,
+    "unit_price": _cell_price,
+    "stock_qty": _cell_stock,
+}
+_TRANSISTOR_COLUMNS: dict[str, Callable] = {
+    "id": _cell_text,
+    "polarity": _cell_choice("npn", "pnp"),
+    "hfe_min": _cell_quantity(""),
+    "hfe_typ": _cell_quantity(""),
+    "hfe_max": _cell_quantity(""),
+    "IS": _cell_quantity("A"),
+    "BF": _cell_quantity(""),
+    "NF": _cell_quantity(""),
+    "VAF": _cell_quantity("V"),
+    "RB": _cell_quantity("ohm", positive=False),
+    "CJE": _cell_quantity("F", positive=False),
+    "CJC": _cell_quantity("F", positive=False),
+    "TF": _cell_quantity("s", positive=False),
+    "vce_sat": _cell_quantity("V"),
+    "vceo_max": _cell_quantity("V"),
+    "p_max": _cell_quantity("W"),
+    "description": _cell_optional_text,
+    "unit_price": _cell_price,
+    "stock_qty": _cell_stock,
+}
+_META_KEYS = ("name", "description", "currency", "real_stock")
+
+
+def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) -> tuple[pd.DataFrame, list[Problem]]:
+    """Read one CSV file; return its rows as a DataFrame and every problem found."""
+    problems: list[Problem] = []
+    with path.open(newline="", encoding="utf-8") as handle:
+        reader = csv.reader(handle)
+        header = [h.strip() for h in next(reader, [])]
+        for name in header:
+            if name not in columns:
+                problems.append(Problem(f"{label} line 1, column {name}", name,
+                                        "a known column: " + ", ".join(columns)))
+        for name in columns:
+            if name not in header:
+                problems.append(Problem(f"{label} line 1, column {name}", None,
+                                        f"a column named {name!r} (required: {', '.join(columns)})"))
+        records: list[dict] = []
+        first_line: dict[str, int] = {}
+        for cells in reader:
+            line = reader.line_num
+            if not any(c.strip() for c in cells):
+                continue
+            if len(cells) != len(header):
+                problems.append(Problem(f"{label} line {line}", len(cells),
+                                        f"{len(header)} fields, as in the header"))
+                continue
+            record: dict = {}
+            for name, text in zip(header, cells):
+                if name not in columns:
+                    continue
+                try:
+                    record[name] = columns[name](text, f"{label} line {line}, column {name}")
+                except InputError as err:
+                    problems.extend(err.problems)
+            if key in record:
+                if record[key] in first_line:
+                    problems.append(Problem(f"{label} line {line}, column {key}", record[key],
+                                            f"a {key} not used before (already on line {first_line[record[key]]})"))
+                else:
+                    first_line[record[key]] = line
+            if {"hfe_min", "hfe_typ", "hfe_max"} <= record.keys():
+                lo, typ, hi = record["hfe_min"], record["hfe_typ"], record["hfe_max"]
+                if lo > hi:
+                    problems.append(Problem(f"{label} line {line}, column hfe_max", hi,
+                                            f"hfe_max >= hfe_min ({lo:g})"))
+                elif not lo <= typ <= hi:
+                    problems.append(Problem(f"{label} line {line}, column hfe_typ", typ,
+                                            f"hfe_typ between hfe_min ({lo:g}) and hfe_max ({hi:g})"))
+            if "series" in record and "value" in record and not _in_series(np.array([record["value"]]), record["series"])[0]:
+                problems.append(Problem(f"{label} line {line}, column value", record["value"],
+                                        f"a value of series {record['series']}"))
+            records.append(record)
+    frame = pd.DataFrame.from_records(records, columns=list(columns))
+    frame["stock_qty"] = frame["stock_qty"].astype("Int64")
+    return frame, problems
+
+
+def _in_series(values: np.ndarray, series: str) -> np.ndarray:
+    """Boolean mask: which ``values`` are members of E-series ``series``."""
+    if values.size == 0:
+        return np.zeros(0, dtype=bool)
+    members = eseries.series_values(series, values.min() * 0.9, values.max() * 1.1)
+    return np.isclose(values[:, None], members[None, :], rtol=_VALUE_RTOL, atol=0).any(axis=1)
+
+
+@dataclass(frozen=True)
+class Catalog:
+    """A loaded parts catalog. Shared through a cache: do not modify the frames."""
+
+    name: str
+    description: str
+    resistors: pd.DataFrame
+    capacitors: pd.DataFrame
+    transistors: pd.DataFrame
+    currency: str = "EUR"
+    real_stock: bool = False
+
+    def _values(self, frame: pd.DataFrame, series: str | None, low: float | None,
+                high: float | None, in_stock_only: bool) -> np.ndarray:
+        rows = frame[_in_stock(frame)] if in_stock_only else frame
+        values = np.unique(rows["value"].to_numpy(dtype=float))
+        if low is not None:
+            values = values[values >= low * (1 - _VALUE_RTOL)]
+        if high is not None:
+            values = values[values <= high * (1 + _VALUE_RTOL)]
+        if series is not None:
+            values = values[_in_series(values, series.upper())]
+        return values
+
+    def resistor_values(self, series: str | None = None, low: float | None = None,
+                        high: float | None = None, in_stock_only: bool = False) -> np.ndarray:
+        """Sorted unique resistor values (ohm), optionally members of ``series`` only
+        (by value, so an E24 row of 4.7 kohm counts as E12), within [low, high] ohm,
+        and only rows with stock (blank stock = unlimited)."""
+        return self._values(self.resistors, series, low, high, in_stock_only)
+
+    def capacitor_values(self, series: str | None = None, low: float | None = None,
+                         high: float | None = None, in_stock_only: bool = False) -> np.ndarray:
+        """Sorted unique capacitor values (F); filters as :meth:`resistor_values`."""
+        return self._values(self.capacitors, series, low, high, in_stock_only)
+
+    def transistor(self, id: str) -> dict:
+        """The transistor row ``id`` as a dict (SI units)."""
+        match = self.transistors[self.transistors["id"] == id]
+        if match.empty:
+            raise InputError.single("transistor", id, "one of " + ", ".join(self.transistors["id"]),
+                                    title=f"unknown transistor in catalog {self.name}")
+        return _row_dict(match.iloc[0])
+
+    def part_for(self, role_kind: str, value: float) -> dict | None:
+        """The cheapest in-stock row of ``role_kind`` ("resistor" or "capacitor") with
+        ``value`` (ohm or F); ties go to the larger stock. None if none is in stock."""
+        frames = {"resistor": self.resistors, "capacitor": self.capacitors}
+        if role_kind not in frames:
+            raise InputError.single("role_kind", role_kind, "resistor or capacitor")
+        frame = frames[role_kind]
+        rows = frame[np.isclose(frame["value"].to_numpy(dtype=float), value, rtol=_VALUE_RTOL, atol=0)
+                     & _in_stock(frame)]
+        if rows.empty:
+            return None
+        order = rows.assign(_stock=rows["stock_qty"].fillna(np.iinfo(np.int64).max))
+        best = order.sort_values(["unit_price", "_stock", "part_id"], ascending=[True, False, True]).iloc[0]
+        return _row_dict(best.drop("_stock"))
+
+    def summary(self) -> dict:
+        """Counts, value ranges (SI), series present, transistor ids and stock totals."""
+        def stock_total(frame: pd.DataFrame) -> int | None:
+            return None if frame["stock_qty"].isna().all() else int(frame["stock_qty"].sum())
+
+        def value_range(frame: pd.DataFrame) -> list[float] | None:
+            return None if frame.empty else [float(frame["value"].min()), float(frame["value"].max())]
+
+        return {
+            "name": self.name,
+            "description": self.description,
+            "currency": self.currency,
+            "real_stock": self.real_stock,
+            "resistors": {"count": len(self.resistors), "unique_values": int(self.resistors["value"].nunique()),
+                          "range": value_range(self.resistors),
+                          "series": sorted(self.resistors["series"].unique(), key=lambda s: int(s[1:])),
+                          "stock_total": stock_total(self.resistors)},
+            "capacitors": {"count": len(self.capacitors), "unique_values": int(self.capacitors["value"].nunique()),
+                           "range": value_range(self.capacitors),
+                           "dielectrics": sorted(self.capacitors["dielectric"].unique()),
+                           "stock_total": stock_total(self.capacitors)},
+            "transistors": {"count": len(self.transistors), "devices": list(self.transistors["id"]),
+                            "stock_total": stock_total(self.transistors)},
+        }
+
+
+def _in_stock(frame: pd.DataFrame) -> np.ndarray:
+    """Rows with stock above zero or stock not tracked (blank = unlimited)."""
+    stock = frame["stock_qty"]
+    return (stock.isna() | (stock.fillna(0) > 0)).to_numpy(dtype=bool)
+
+
+def _row_dict(row: pd.Series) -> dict:
+    """A DataFrame row as plain Python values (missing stock -> None)."""
+    out = {}
+    for key, value in row.items():
+        if pd.isna(value):
+            out[key] = None
+        elif isinstance(value, np.generic):
+            out[key] = value.item()
+        else:
+            out[key] = value
+    return out
+
+
+def _read_meta(path: Path, label: str) -> tuple[dict, list[Problem]]:
+    try:
+        meta = yaml.safe_load(path.read_text(encoding="utf-8"))
+    except yaml.YAMLError as err:
+        return {}, [Problem(label, str(err).splitlines()[0], "valid YAML")]
+    if not isinstance(meta, dict):
+        return {}, [Problem(label, meta, "a mapping with keys " + ", ".join(_META_KEYS))]
+    problems = [Problem(f"{label} key {k}", None, "a value for this key") for k in _META_KEYS if k not in meta]
+    problems += [Problem(f"{label} key {k}", k, "one of the keys " + ", ".join(_META_KEYS))
+                 for k in meta if k not in _META_KEYS]
+    if "real_stock" in meta and not isinstance(meta["real_stock"], bool):
+        problems.append(Problem(f"{label} key real_stock", meta["real_stock"], "true or false"))
+    return meta, problems
+
+
+def load_catalog_dir(path: Path) -> Catalog:
+    """Load and validate the catalog in directory ``path`` (for tests and tools)."""
+    path = Path(path)
+    prefix = f"parts_catalogs/{path.name}"
+    problems: list[Problem] = []
+    files = {"catalog.yaml": None, "resistors.csv": ("part_id", _RESISTOR_COLUMNS),
+             "capacitors.csv": ("part_id", _CAPACITOR_COLUMNS), "transistors.csv": ("id", _TRANSISTOR_COLUMNS)}
+    missing = [name for name in files if not (path / name).is_file()]
+    if missing:
+        raise InputError([Problem(f"{prefix}/{name}", None, "this file must exist") for name in missing],
+                         title="incomplete parts catalog")
+    meta, meta_problems = _read_meta(path / "catalog.yaml", f"{prefix}/catalog.yaml")
+    problems += meta_problems
+    tables = {}
+    for name, (key, columns) in ((n, spec) for n, spec in files.items() if spec):
+        tables[name], found = _read_table(path / name, f"{prefix}/{name}", columns, key)
+        problems += found
+    if problems:
+        raise InputError(problems, title=f"invalid parts catalog {path.name}")
+    return Catalog(name=str(meta["name"]), description=str(meta["description"]).strip(),
+                   resistors=tables["resistors.csv"], capacitors=tables["capacitors.csv"],
+                   transistors=tables["transistors.csv"], currency=str(meta["currency"]),
+                   real_stock=meta["real_stock"])
+
+
+def list_catalogs() -> list[str]:
+    """Names of the catalogs under :data:`CATALOG_DIR`, sorted."""
+    if not CATALOG_DIR.is_dir():
+        return []
+    return sorted(p.name for p in CATALOG_DIR.iterdir() if (p / "catalog.yaml").is_file())
+
+
+def load_catalog(name: str) -> Catalog:
+    """The catalog called ``name`` (a name from :func:`list_catalogs`, never a path)."""
+    known = list_catalogs()
+    if name not in known:
+        raise InputError.single("catalog", name, "one of " + (", ".join(known) or "(no catalogs found)"),
+                                title="unknown parts catalog")
+    return _load_cached(CATALOG_DIR / name)
+
+
+@functools.lru_cache(maxsize=16)
+def _load_cached(path: Path) -> Catalog:
+    return load_catalog_dir(path)

@@ -1,0 +1,58 @@
+"""`stagefit evaluate` on every example spec, with the hand method's design."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from optimizer.catalog import load_catalog
+from optimizer.cli import EXIT_BAD_INPUT, EXIT_OK, main
+from optimizer.devices import Device
+from optimizer.spec import load_spec
+from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
+from optimizer.units import format_rkm
+
+SPECS = sorted(Path(__file__).resolve().parent.parent.joinpath("specs").glob("*.yaml"))
+
+
+def _hand_settings(path: Path) -> tuple[str, list[str]]:
+    spec = load_spec(path)
+    device = Device.from_row(load_catalog(spec.parts.catalog).transistor(spec.devices[0]))
+    topology = spec.topologies[0]
+    parts = hand_design(topology, hand_requirements(spec, device))
+    resistors = {role: v for role, v in parts.items() if not role.startswith("c_")}
+    design = rounded_designs(resistors, spec.parts.resistor_series, spec.parts.capacitor_series)[0]
+    return topology, [f"{role}={format_rkm(value)}" for role, value in design.items()]
+
+
+@pytest.mark.parametrize("path", SPECS, ids=lambda p: p.name)
+def test_evaluate_every_example_spec(path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    topology, settings = _hand_settings(path)
+    args = ["evaluate", str(path), "--topology", topology, "--samples", "200", "--format", "json"]
+    assert main(args + [a for s in settings for a in ("--set", s)]) == EXIT_OK
+    record = json.loads(capsys.readouterr().out)
+    assert record["topology"] == topology
+    assert {"gain", "swing_vpp", "input_impedance", "supply_current", "yield"} <= set(record["metrics"])
+    assert set(record["transistor"]["model"]) == {"IS", "BF", "NF", "VAF", "RB", "CJE", "CJC", "TF"}
+    assert all(part["label"] for part in record["parts"].values())
+    assert 0.0 <= record["metrics"]["yield"] <= 1.0
+    low, high = record["worst_case"]["gain"]
+    assert low <= record["metrics"]["gain"] <= high
+    assert record["feasible"] == (not record["violations"])
+
+
+def test_evaluate_table_shows_cautions(capsys: pytest.CaptureFixture[str]) -> None:
+    topology, settings = _hand_settings(SPECS[0])
+    assert main(["evaluate", str(SPECS[0]), "--topology", topology, "--samples", "100"]
+                + [a for s in settings for a in ("--set", s)]) == EXIT_OK
+    out = capsys.readouterr().out
+    assert "caution:" in out and "worst case" in out
+
+
+@pytest.mark.parametrize(("setting", "named"), [("r_top=12 Q", "r_top"), ("r_nowhere=1k", "r_nowhere"),
+                                                ("r_top", "ROLE=VALUE")])
+def test_evaluate_bad_settings_are_bad_input(setting: str, named: str, capsys: pytest.CaptureFixture[str]) -> None:
+    code = main(["evaluate", str(SPECS[0]), "--topology", "divider_ce", "--set", setting])
+    assert code == EXIT_BAD_INPUT
+    assert named in capsys.readouterr().err
