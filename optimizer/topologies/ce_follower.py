@@ -12,7 +12,7 @@ import numpy as np
 from optimizer import physics
 from optimizer.devices import Device
 from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
-from optimizer.topologies.divider_ce import add_load
+from optimizer.topologies.divider_ce import add_divider_stage, add_load, divider_ratings
 
 BIAS_PASSES = 3  # q1/q2 alternations; they couple only through q2's base current and Early effect
 
@@ -94,15 +94,8 @@ class CEFollower(StageModel):
                  r_source: np.ndarray | None, load: bool) -> physics.Network:
         net = physics.Network(("in", "base", "bint", "emitter", "collector", "bint2", "emitter2", "out"),
                               c.temperature)
-        if r_source is not None:
-            net.admittance("in", None, 1.0 / r_source)
-        net.capacitor("in", "base", p["c_in"], ac, True)
-        net.resistor("base", None, p["r_top"])
-        net.resistor("base", None, p["r_bottom"])
-        net.resistor("base", "bint", ss[0]["rb"])
-        net.transistor("bint", "collector", "emitter", ss[0], ac)
+        add_divider_stage(net, p, ss, ac, r_source)
         net.resistor("emitter", None, p["r_emitter"])
-        net.resistor("collector", None, p["r_collector"])
         net.resistor("collector", "bint2", ss[1]["rb"])
         net.transistor("bint2", None, "emitter2", ss[1], ac)
         net.resistor("emitter2", None, p["r_follower"])
@@ -112,12 +105,10 @@ class CEFollower(StageModel):
 
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         op = b.op
-        return {"p_r_top": (c.supply - op["v_base"]) ** 2 / p["r_top"], "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
-                "p_r_collector": (c.supply - op["v_collector"]) ** 2 / p["r_collector"],
-                "p_r_emitter": (op["ic"] + op["ib"]) ** 2 * p["r_emitter"],
+        return {**divider_ratings(p, c, op),
                 "p_r_follower": op["v_emitter2"] ** 2 / p["r_follower"],
                 "p_q1": op["vce"] * op["ic"], "p_q2": op["vce2"] * op["ic2"],
-                "v_c_in": op["v_base"], "v_c_out": op["v_emitter2"]}
+                "v_c_out": op["v_emitter2"]}
 
     def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
                       i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:

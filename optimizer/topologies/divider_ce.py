@@ -78,15 +78,8 @@ class DividerCE(StageModel):
     def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
                  r_source: np.ndarray | None, load: bool) -> physics.Network:
         net = physics.Network(self._nodes(), c.temperature)
-        if r_source is not None:
-            net.admittance("in", None, 1.0 / r_source)
-        net.capacitor("in", "base", p["c_in"], ac, True)
-        net.resistor("base", None, p["r_top"])
-        net.resistor("base", None, p["r_bottom"])
-        net.resistor("base", "bint", ss[0]["rb"])
-        net.transistor("bint", "collector", "emitter", ss[0], ac)
+        add_divider_stage(net, p, ss, ac, r_source)
         self._emitter_network(net, p, ac)
-        net.resistor("collector", None, p["r_collector"])
         net.capacitor("collector", "out", p["c_out"], ac, True)
         add_load(net, c, ac, load)
         return net
@@ -94,10 +87,7 @@ class DividerCE(StageModel):
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         op = b.op
         ie = op["ic"] + op["ib"]
-        r = {"p_r_top": (c.supply - op["v_base"]) ** 2 / p["r_top"], "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
-             "p_r_collector": (c.supply - op["v_collector"]) ** 2 / p["r_collector"],
-             "p_r_emitter": ie ** 2 * p["r_emitter"],
-             "v_c_in": op["v_base"], "v_c_out": op["v_collector"]}
+        r = {**divider_ratings(p, c, op), "v_c_out": op["v_collector"]}
         r.update(self._extra_ratings(p, op, ie))
         return r
 
@@ -139,3 +129,23 @@ def add_load(net: physics.Network, c: Conditions, ac: bool, load: bool) -> None:
         net.resistor("out", None, np.asarray(c.load_impedance, dtype=float))
     if load and c.load_capacitance > 0:
         net.capacitor("out", None, np.asarray(c.load_capacitance, dtype=float), ac, False)
+
+
+def add_divider_stage(net: physics.Network, p: Parts, ss: list[dict[str, np.ndarray]], ac: bool,
+                      r_source: np.ndarray | None) -> None:
+    """The source, c_in, the bias divider, q1 and r_collector; the emitter side is the caller's."""
+    if r_source is not None:
+        net.admittance("in", None, 1.0 / r_source)
+    net.capacitor("in", "base", p["c_in"], ac, True)
+    net.resistor("base", None, p["r_top"])
+    net.resistor("base", None, p["r_bottom"])
+    net.resistor("base", "bint", ss[0]["rb"])
+    net.transistor("bint", "collector", "emitter", ss[0], ac)
+    net.resistor("collector", None, p["r_collector"])
+
+
+def divider_ratings(p: Parts, c: Conditions, op: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+    """Resistor powers (W) of the divider stage and the DC voltage on c_in (V)."""
+    return {"p_r_top": (c.supply - op["v_base"]) ** 2 / p["r_top"], "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
+            "p_r_collector": (c.supply - op["v_collector"]) ** 2 / p["r_collector"],
+            "p_r_emitter": (op["ic"] + op["ib"]) ** 2 * p["r_emitter"], "v_c_in": op["v_base"]}
