@@ -66,7 +66,7 @@ def main() -> None:
                 lambda: topology.evaluate(core_parts, DEVICE, CONDITIONS, full=False), core_n),
         measure("full metrics (plus response, noise, thd, ratings)",
                 lambda: topology.evaluate(full_parts, DEVICE, CONDITIONS, full=True), full_n),
-        measure("Monte Carlo yield, 1,000 samples each",
+        measure("Monte Carlo yield, 1,000 samples each (core metrics and ratings)",
                 lambda: monte_carlo_yield(topology, mc_parts, DEVICE, CONDITIONS, tolerances, (0.0, 50.0),
                                           lambda m: np.abs(m["gain"]) > 1.0, samples=1000), mc_n,
                 repeats=1),

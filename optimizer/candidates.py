@@ -86,7 +86,7 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
     tolerances = {role: rec["tolerance"] for role, rec in records.items()}
 
     def passes(sample: dict[str, np.ndarray]) -> np.ndarray:
-        v = scoring.limit_violations(spec, sample, sample, rating_limits, sample["active"])
+        v = scoring.limit_violations(spec, sample, sample, rating_limits, sample["active"], core_only=True)
         return scoring.total_violation(v) == 0
 
     spread = worst_case(topology, arrays, device, conditions, tolerances, tuple(spec.temperature))

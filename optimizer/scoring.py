@@ -12,6 +12,7 @@ import numpy as np
 from optimizer.spec import Spec
 from optimizer.topologies.base import Conditions
 
+FULL_MODEL_LIMITS = ("noise_ein_max",)  # besides the band corners, need full=True metrics
 NEAR_RATING = 0.5  # a part past half its rating gets a caution (common practice derating)
 
 
@@ -39,11 +40,13 @@ def _below(value: np.ndarray, maximum: float) -> np.ndarray:
 
 def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[str, np.ndarray],
                      rating_limits: dict[str, float | np.ndarray],
-                     active: np.ndarray) -> dict[str, np.ndarray]:
+                     active: np.ndarray, *, core_only: bool = False) -> dict[str, np.ndarray]:
     """Normalised violation of every hard limit (name -> array, 0 where met).
 
     ``rating_limits`` maps each rating key of the topology (p_<resistor> W,
     v_<capacitor> V) and ``vce_max`` / ``q_power`` to the part's or device's limit.
+    ``core_only`` leaves out the limits that need the full model (band corners and
+    noise), for metrics from the fast core path.
     """
     gain = np.asarray(metrics["gain"])
     out = {"gain": np.maximum(0.0, np.abs(gain_error_db(spec, gain)) - spec.gain.tolerance_db)
@@ -52,8 +55,9 @@ def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[s
         wrong_sign = (gain > 0) if spec.gain.inverting else (gain < 0)
         out["gain_polarity"] = wrong_sign.astype(float)
     out["active"] = (~np.asarray(active, dtype=bool)).astype(float)
-    out["band_low"] = _below(metrics["f_low"], spec.band[0])
-    out["band_high"] = _above(metrics["f_high"], spec.band[1])
+    if not core_only:
+        out["band_low"] = _below(metrics["f_low"], spec.band[0])
+        out["band_high"] = _above(metrics["f_high"], spec.band[1])
     limits = spec.limits
     pairs = [("input_impedance_min", "input_impedance", _above),
              ("output_impedance_max", "output_impedance", _below),
@@ -63,7 +67,7 @@ def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[s
              ("noise_ein_max", "noise_ein_v", _below)]
     for limit_name, metric, judge in pairs:
         limit = getattr(limits, limit_name)
-        if limit is not None:
+        if limit is not None and not (core_only and limit_name in FULL_MODEL_LIMITS):
             out[limit_name] = judge(np.asarray(metrics[metric]), limit)
     for key, limit in rating_limits.items():
         value = metrics["q_power"] if key == "q_power" else ratings[key]
