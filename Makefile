@@ -16,6 +16,9 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	@for spec in specs/*.yaml; do $(BIN)/stagefit check $$spec || exit $$?; echo; done
 	$(BIN)/stagefit catalogs
+	@echo
+	$(BIN)/stagefit evaluate specs/contact_pickup_buffer.yaml --topology divider_ce \
+	    --set r_top=270k --set r_bottom=51k --set r_collector=11k --set r_emitter=1k3
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q

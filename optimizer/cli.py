@@ -30,8 +30,16 @@ def _cmd_check(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_schema(args: argparse.Namespace) -> int:
+    from optimizer.spec import spec_json_schema
+
+    print(json.dumps(spec_json_schema(), indent=2))
+    return EXIT_OK
+
+
 def _cmd_catalogs(args: argparse.Namespace) -> int:
     from optimizer.catalog import list_catalogs, load_catalog
+    from optimizer.units import format_value
 
     names = [args.name] if args.name else list_catalogs()
     summaries = {name: load_catalog(name).summary() for name in names}
@@ -39,9 +47,20 @@ def _cmd_catalogs(args: argparse.Namespace) -> int:
         print(json.dumps(summaries, indent=2, default=str))
         return EXIT_OK
     for name, summary in summaries.items():
-        print(name)
-        for key, value in summary.items():
-            print(f"  {key:<22} {value}")
+        print(f"{name}: {summary['description']}")
+        for kind, unit in (("resistors", "ohm"), ("capacitors", "F"), ("transistors", "")):
+            section = summary[kind]
+            facts = [f"{section['count']} parts"]
+            if section.get("range"):
+                low, high = section["range"]
+                facts.append(f"{section['unique_values']} values {format_value(low, unit)} .. {format_value(high, unit)}")
+            if section.get("series"):
+                facts.append("series " + "/".join(section["series"]))
+            if section.get("devices"):
+                facts.append(", ".join(section["devices"]))
+            stock = section["stock_total"]
+            facts.append("stock not tracked" if stock is None else f"{stock} in stock")
+            print(f"  {kind:<12} " + "; ".join(facts))
     return EXIT_OK
 
 
@@ -136,6 +155,9 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("--format", choices=("table", "json"), default="table")
     check.set_defaults(handler=_cmd_check)
 
+    schema = sub.add_parser("schema", help="print the JSON Schema of a requirements spec")
+    schema.set_defaults(handler=_cmd_schema)
+
     catalogs = sub.add_parser("catalogs", help="list the parts catalogs, or summarise one")
     catalogs.add_argument("name", nargs="?", help="catalog name, e.g. bench_stock")
     catalogs.add_argument("--format", choices=("table", "json"), default="table")
@@ -170,6 +192,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except InputError as error:
         print(f"error: {error}", file=sys.stderr)
         return EXIT_BAD_INPUT
+    except BrokenPipeError:  # output piped into head or similar: not an error
+        sys.stderr.close()
+        return EXIT_OK
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return EXIT_INTERNAL

@@ -591,7 +591,7 @@ def describe_spec(spec: Spec) -> str:
     for key, value in set_limits:
         unit, suffix = limit_units[key]
         shown = f"{100 * value:.3g} %" if unit == "%" else fv(value, unit) + suffix
-        lines.append(f"    {key:<20}{shown}")
+        lines.append(f"    {key:<22}{shown}")
     p = spec.parts
     lines += [f"  parts             catalog {p.catalog}, resistors {p.resistor_series} "
               f"{fv(p.resistor_range[0], 'ohm')} .. {fv(p.resistor_range[1], 'ohm')}, "

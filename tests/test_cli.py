@@ -68,3 +68,9 @@ def test_help_exits_cleanly(capsys: pytest.CaptureFixture[str]) -> None:
         main(["--help"])
     assert stop.value.code == 0
     assert "check" in capsys.readouterr().out
+
+
+def test_schema_is_printed_as_json(capsys: pytest.CaptureFixture[str]) -> None:
+    assert main(["schema"]) == EXIT_OK
+    schema = json.loads(capsys.readouterr().out)
+    assert "supply" in schema["properties"]
