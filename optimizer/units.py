@@ -118,11 +118,12 @@ def format_value(value: float, unit: str = "", *, ascii: bool = False, digits: i
     return f"{number} {prefix}{symbol}" if symbol else f"{number}{prefix}"
 
 
-def format_rkm(value: float, digits: int = 3) -> str:
-    """RKM code of IEC 60062: 4700 -> "4k7", 4.7 -> "4R7", 0.47 -> "R47", 2.2e-6 -> "2u2"."""
+def format_rkm(value: float, digits: int = 3, *, ohms: bool = True) -> str:
+    """RKM code of IEC 60062: 4700 -> "4k7", 4.7 -> "4R7", 0.47 -> "R47"; with
+    ohms=False (capacitance) only prefix letters: 2.2e-6 -> "2u2", 1e-3 -> "1m"."""
     if value <= 0:
         raise InputError.single("value", value, "a positive value for an RKM code")
-    if 1e-3 <= value < 1.0:  # R47: ohms below one keep R as the decimal point
+    if ohms and 1e-3 <= value < 1.0:  # R47: ohms below one keep R as the decimal point
         mantissa, prefix = value, ""
     else:
         mantissa, prefix = _mantissa(float(value), digits)

@@ -7,7 +7,6 @@ Usage: python3 scripts/generate_full_catalog.py [OUT_DIR]
 from __future__ import annotations
 
 import csv
-import math
 import sys
 from pathlib import Path
 
@@ -15,6 +14,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from optimizer.eseries import customary_tolerance, series_values  # noqa: E402
+from optimizer.units import format_rkm  # noqa: E402
 
 CATALOGS = ROOT / "parts_catalogs"
 META = """name: eseries_full
@@ -27,16 +27,6 @@ real_stock: false
 """
 
 
-def letter_code(value: float, digits: int, letters: tuple[tuple[float, str], ...]) -> str:
-    """Letter-and-digit code as in IEC 60062 ("4K7", "4K99", "100N"): the prefix
-    letter stands in for the decimal point."""
-    scale, letter = next(((s, l) for s, l in reversed(letters) if value >= s * 0.9999), letters[0])
-    mantissa = value / scale
-    int_len = int(math.floor(math.log10(mantissa) + 1e-9)) + 1
-    text = f"{round(mantissa * 10 ** max(digits - int_len, 0)):d}"
-    return text + letter if int_len >= digits else text[:int_len] + letter + text[int_len:]
-
-
 def number(value: float, digits: int) -> str:
     """Value rounded to ``digits`` significant figures, written without exponent
     noise ("4700", "4.7e-09")."""
@@ -47,7 +37,7 @@ def resistor_rows() -> list[list[str]]:
     rows = []
     for series, digits, price in (("E24", 2, "0.008"), ("E96", 3, "0.012")):
         for value in series_values(series, 1.0, 10e6):
-            code = letter_code(value, digits, ((1.0, "R"), (1e3, "K"), (1e6, "M")))
+            code = format_rkm(value)
             rows.append([f"R-{series}-{code}", number(value, digits), series,
                          repr(customary_tolerance(series)), "0.25", "0603", price, ""])
     return rows
@@ -58,7 +48,7 @@ def capacitor_rows() -> list[list[str]]:
     ceramics = series_values("E12", 10e-12, 1e-6)
     electrolytics = series_values("E6", 1.01e-6, 1000e-6)
     for value in list(ceramics) + list(electrolytics):
-        code = letter_code(value, 2, ((1e-12, "P"), (1e-9, "N"), (1e-6, "U")))
+        code = format_rkm(value, ohms=False)
         if value <= 1.0001e-9:
             kind, tol, volts, polar, price = "C0G", "0.05", "50", "false", "0.03"
         elif value <= 1.0001e-6:
