@@ -1,0 +1,42 @@
+"""Hard limits as normalised violations: gain window, limits, ratings never silently pass."""
+from __future__ import annotations
+
+import numpy as np
+
+from optimizer.scoring import binding_limit, limit_violations, total_violation
+from optimizer.spec import parse_spec
+
+SPEC = parse_spec({"name": "t", "supply": "12 V", "gain": {"target": -10, "tolerance": "1 dB"},
+                   "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
+                   "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"}})
+
+
+def _metrics(gain: float, swing: float, current: float) -> dict[str, np.ndarray]:
+    return {"gain": np.array([gain]), "swing_vpp": np.array([swing]), "supply_current": np.array([current]),
+            "f_low": np.array([10.0]), "f_high": np.array([1e6]), "input_impedance": np.array([1e4]),
+            "output_impedance": np.array([1e3]), "thd": np.array([1e-3]), "noise_ein_v": np.array([1e-6]),
+            "q_power": np.array([0.01])}
+
+
+def _violations(metrics, power=0.01, rating=0.25):
+    return limit_violations(SPEC, metrics, {"p_r_collector": np.array([power])},
+                            {"p_r_collector": rating, "q_power": 0.5}, np.array([True]))
+
+
+def test_a_design_inside_every_limit_is_feasible() -> None:
+    v = _violations(_metrics(-10.5, 6.0, 1e-3))
+    assert total_violation(v)[0] == 0 and binding_limit(v)[0] == ""
+
+
+def test_gain_outside_its_window_is_normalised_to_the_tolerance() -> None:
+    # -10 V/V +- 1 dB: -13.3 V/V is 2.48 dB high, 1.48 dB past the edge -> violation 1.48.
+    v = _violations(_metrics(-13.3, 6.0, 1e-3))
+    assert np.isclose(v["gain"][0], 20 * np.log10(1.33) - 1.0, rtol=1e-6)
+    assert binding_limit(v)[0] == "gain"
+
+
+def test_wrong_polarity_swing_current_and_rating_are_each_violations() -> None:
+    v = _violations(_metrics(10.0, 2.0, 3e-3), power=0.3)
+    assert v["gain_polarity"][0] == 1.0
+    assert np.isclose(v["swing_min"][0], 0.5) and np.isclose(v["supply_current_max"][0], 0.5)
+    assert np.isclose(v["rating:p_r_collector"][0], 0.2)
