@@ -11,7 +11,7 @@ from optimizer.cli import EXIT_BAD_INPUT, EXIT_OK, main
 from optimizer.devices import Device
 from optimizer.spec import load_spec
 from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
-from optimizer.units import format_rkm
+from optimizer.units import format_rkm, parse_quantity
 
 SPECS = sorted(Path(__file__).resolve().parent.parent.joinpath("specs").glob("*.yaml"))
 
@@ -56,3 +56,20 @@ def test_evaluate_bad_settings_are_bad_input(setting: str, named: str, capsys: p
     code = main(["evaluate", str(SPECS[0]), "--topology", "divider_ce", "--set", setting])
     assert code == EXIT_BAD_INPUT
     assert named in capsys.readouterr().err
+
+
+def test_a_metric_close_to_its_limit_gets_a_caution() -> None:
+    from optimizer.candidates import assess
+    from optimizer.spec import parse_spec, spec_to_dict
+
+    path = SPECS[0]
+    spec = load_spec(path)
+    topology, settings = _hand_settings(path)
+    parts = {role: parse_quantity(value) for role, value in (s.split("=") for s in settings)}
+    catalog = load_catalog(spec.parts.catalog)
+    swing = assess(spec, catalog, topology, parts, samples=50)["metrics"]["swing_vpp"]
+    data = spec_to_dict(spec)
+    data["limits"] = {**{k: v for k, v in data["limits"].items() if v is not None and k != "thd_level"},
+                      "swing_min": 0.95 * swing}
+    near = assess(parse_spec(data), catalog, topology, parts, samples=50)
+    assert any("swing_vpp is within" in note for note in near["cautions"])
