@@ -55,15 +55,37 @@ def solve_junction(a: np.ndarray, r_base: np.ndarray, r_emit: np.ndarray, *, i_s
     # start at the smaller of two points above it (Vbe = a, or the Vbe of the largest current a/k).
     v = np.minimum(a, nvt * np.log1p(np.maximum(a, 0.0) / k_lin / i_s)) if v_start is None else v_start + 0.0 * a
 
+    inv_nvt = 1.0 / nvt
+    c0 = 1.0 + np.asarray(vcb0, dtype=float) * inv_vaf  # Early factor terms, per unit If or Vbe
+    c_ib, c_vbe, c_ic = vcb_ib * inv_vaf / beta, vcb_vbe * inv_vaf, vcb_ic * inv_vaf
+
     def currents(v: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        e = i_s * np.expm1(v / nvt)
-        early = (1.0 + (vcb0 - vcb_ib * e / beta - vcb_vbe * v) * inv_vaf) / (1.0 + e * vcb_ic * inv_vaf)
+        e = v * inv_nvt
+        np.expm1(e, out=e)
+        e *= i_s
+        den = c_ic * e
+        den += 1.0
+        early = c_ib * e
+        early += c_vbe * v
+        np.subtract(c0, early, out=early)
+        early /= den
         ic = e * early
-        return e, ic, a - v - r_ib * e - r_emit * ic, early
+        g = a - v
+        g -= r_ib * e
+        g -= r_emit * ic
+        return e, ic, g, early
 
     for _ in range(iterations):
         e, ic, g, early = currents(v)
-        v = v + np.clip(g / (1.0 + (e + i_s) / nvt * (r_ib + r_emit * early)), -MAX_STEP, MAX_STEP)
+        early *= r_emit
+        early += r_ib
+        e += i_s
+        e *= inv_nvt
+        e *= early
+        e += 1.0
+        g /= e
+        np.clip(g, -MAX_STEP, MAX_STEP, out=g)
+        v = v + g
     e, ic, g, _ = currents(v)
     vbe, ib = v, e / beta
     vcb = vcb0 - vcb_ic * ic - vcb_ib * ib - vcb_vbe * vbe
@@ -201,8 +223,13 @@ class Network:
         """The network at complex frequencies s (rad/s), entries G + s*C."""
         n = Network(self.nodes, self.temp_c)
         n.noise = self.noise
-        n.y = {k: self.y.get(k, 0.0) + s * self.cap[k] if k in self.cap else self.y[k]
-               for k in set(self.y) | set(self.cap)}
+        n.y = dict(self.y)
+        for (i, j), c in self.cap.items():  # C is symmetric (two-terminal stamps): one product per pair
+            if i > j:
+                continue
+            sc = s * c
+            for k in ((i, j),) if i == j else ((i, j), (j, i)):
+                n.y[k] = sc + self.y[k] if k in self.y else sc
         return n
 
     def transposed(self) -> "Network":
@@ -217,8 +244,11 @@ class Network:
         n = len(self.nodes)
         y = dict(self.y)
         b: dict[int, np.ndarray] = {self.index[k]: v for k, v in rhs.items()}
-        rows = [sorted(j for (i2, j) in y if i2 == i) for i in range(n)]
-        cols = [sorted(i2 for (i2, j) in y if j == i) for i in range(n)]
+        rows: list[list[int]] = [[] for _ in range(n)]
+        cols: list[list[int]] = [[] for _ in range(n)]
+        for i2, j in sorted(y):
+            rows[i2].append(j)
+            cols[j].append(i2)
         inv_pivot: dict[int, np.ndarray] = {}
         for k in range(n - 1):
             inv_pivot[k] = 1.0 / y[(k, k)]
@@ -260,7 +290,7 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray], reference: n
     """
     grid = np.logspace(np.log10(SWEEP[0]), np.log10(SWEEP[1]), COARSE_POINTS)
     level = 20.0 * np.log10(np.abs(reference) / np.sqrt(2.0))[:, None]
-    db = 20.0 * np.log10(np.abs(response(np.broadcast_to(grid, (n, grid.size)))) + 1e-300) - level
+    db = 10.0 * np.log10(_magnitude2(response(np.broadcast_to(grid, (n, grid.size)))) + 1e-300) - level
     above = db > 0.0
     peak = np.argmax(db, axis=1)
     idx = np.arange(grid.size)
@@ -277,7 +307,7 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray], reference: n
     for _ in range(REFINE_STEPS):  # Illinois false position on both crossings at once
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
         xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
-        dm = 20.0 * np.log10(np.abs(response(10.0 ** xm)) + 1e-300) - level
+        dm = 10.0 * np.log10(_magnitude2(response(10.0 ** xm)) + 1e-300) - level
         out_side = dm <= 0.0
         d1 = np.where(out_side & last, 0.5 * d1, d1)  # an end kept twice: halve its value
         d0 = np.where(~out_side & ~last, 0.5 * d0, d0)
@@ -306,16 +336,22 @@ def noise_integrals(network: Network, out_node: str, source_node: str,
     f = np.geomspace(band[0], band[1], NOISE_POINTS)[None, :]
     net = network.at(2j * np.pi * f)
     z = net.transposed().solve({out_node: np.ones(1)})
-    gain2 = np.abs(z[source_node] / r_source[:, None]) ** 2
+    gain2 = _magnitude2(z[source_node]) / r_source[:, None] ** 2
     out = 0.0
     for a, b, psd in net.noise:
         h = (z[a] if a is not None else 0.0) - (z[b] if b is not None else 0.0)
-        out = out + psd * np.abs(h) ** 2
+        out = out + psd * _magnitude2(h)
     in_psd = out / gain2
     ein2 = np.sum(power_law_segments(f, in_psd), axis=1)
     four_kt = 4.0 * BOLTZMANN * (temp_c + KELVIN_OFFSET)
     source2 = four_kt * r_source * (band[1] - band[0])
     return np.sqrt(ein2), 10.0 * np.log10(1.0 + ein2 / source2)
+
+
+def _magnitude2(h: np.ndarray | float) -> np.ndarray:
+    """|h|^2 of a complex array (in the squared units of h), without the square root of abs."""
+    h = np.asarray(h)
+    return h.real * h.real + h.imag * h.imag
 
 
 def power_law_segments(f: np.ndarray, psd: np.ndarray) -> np.ndarray:
