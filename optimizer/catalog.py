@@ -42,11 +42,6 @@ def _cell_quantity(unit: str, *, positive: bool = True) -> Callable[[str, str], 
     return parse
 
 
-def _cell_price(text: str, where: str) -> float:
-    value = parse_quantity(text, None, where=where)
-    return value
-
-
 def _cell_tolerance(text: str, where: str) -> float:
     """Fraction in (0, 0.5]; "1%" is read as 0.01."""
     expected = "a fraction in (0, 0.5], e.g. 0.05 or 5%"
@@ -116,7 +111,7 @@ _RESISTOR_COLUMNS: dict[str, Callable] = {
     "tolerance": _cell_tolerance,
     "power_rating": _cell_quantity("W"),
     "package": _cell_text,
-    "unit_price": _cell_price,
+    "unit_price": _cell_quantity(None, positive=False),
     "stock_qty": _cell_stock,
 }
 _CAPACITOR_COLUMNS: dict[str, Callable] = {
@@ -126,7 +121,7 @@ _CAPACITOR_COLUMNS: dict[str, Callable] = {
     "voltage_rating": _cell_quantity("V"),
     "dielectric": _cell_text,
     "polarised": _cell_bool,
-    "unit_price": _cell_price,
+    "unit_price": _cell_quantity(None, positive=False),
     "stock_qty": _cell_stock,
 }
 _TRANSISTOR_COLUMNS: dict[str, Callable] = {
@@ -147,7 +142,7 @@ _TRANSISTOR_COLUMNS: dict[str, Callable] = {
     "vceo_max": _cell_quantity("V"),
     "p_max": _cell_quantity("W"),
     "description": _cell_optional_text,
-    "unit_price": _cell_price,
+    "unit_price": _cell_quantity(None, positive=False),
     "stock_qty": _cell_stock,
 }
 _META_KEYS = ("name", "description", "currency", "real_stock")

@@ -15,6 +15,7 @@ from collections.abc import Mapping
 from typing import Any
 
 from optimizer.errors import InputError, Problem
+from optimizer.units import format_value
 
 MODEL_KEYS: tuple[str, ...] = ("IS", "BF", "NF", "VAF", "RB", "CJE", "CJC", "TF")
 
@@ -82,15 +83,6 @@ def required_parts(topology: str) -> tuple[str, ...]:
         raise InputError.single("topology", topology, f"one of {', '.join(TOPOLOGIES)}",
                                 title="unknown topology")
     return tuple(role for role, _ in _ELEMENTS[topology])
-
-
-def _label(value: float, unit: str) -> str:
-    """Engineering label for a header comment (optimizer.units when it is present)."""
-    try:
-        from optimizer.units import format_value
-    except ImportError:  # units.py is written alongside; plain %g until it lands
-        return f"{value:g} {unit}".strip()
-    return format_value(value, unit=unit, ascii=True)
 
 
 def _check_parts(topology: str, parts: Mapping[str, float]) -> None:
@@ -170,7 +162,7 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
              "* parts (role = designer label, netlist value in ohm or F):"]
     for role in required_parts(topology):
         unit = "F" if role.startswith("c_") else "ohm"
-        lines.append(f"*   {role} = {_label(float(parts[role]), unit)} ({float(parts[role])!r})")
+        lines.append(f"*   {role} = {format_value(float(parts[role]), unit=unit, ascii=True)} ({float(parts[role])!r})")
     lines += [f"*   q1{', q2' if len(_TRANSISTORS[topology]) > 1 else ''} = {device_id}",
               f"* conditions: supply {supply!r} V, source {source!r} ohm, load {load!r} ohm, "
               f"load capacitance {load_c!r} F, {temp!r} degC, band {conditions.band[0]!r}.."
