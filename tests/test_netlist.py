@@ -202,3 +202,13 @@ def test_harness_reports_a_failed_run(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(sh, "NGSPICE", shutil.which("false"))  # a simulator that always fails
     with pytest.raises(sh.SpiceError, match="ngspice failed"):
         sh.spice_operating_point("divider_ce", PARTS, MODEL, conditions())
+
+
+def test_netlist_roles_match_the_model_topologies() -> None:
+    """The netlist wires exactly the parts each model topology declares."""
+    from optimizer.netlist import TOPOLOGIES as NETLIST_TOPOLOGIES, required_parts
+    from optimizer.topologies import TOPOLOGIES
+
+    assert set(NETLIST_TOPOLOGIES) == set(TOPOLOGIES)
+    for name, topology in TOPOLOGIES.items():
+        assert set(required_parts(name)) == set(topology.resistors) | set(topology.capacitors)

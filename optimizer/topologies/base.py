@@ -55,6 +55,11 @@ class Bias:
     beta: np.ndarray | None = None  # hFE used (SPICE BF)
 
 
+def _source_resistance(b: Bias, conditions: Conditions) -> np.ndarray:
+    """Source resistance per candidate (ohm), floored so a zero-ohm source stays solvable."""
+    return np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)
+
+
 class Topology(ABC):
     """One stage topology: its parts and its models."""
 
@@ -136,11 +141,20 @@ class StageModel(Topology):
                                         title=f"invalid part value for {self.name}")
         return out
 
-    def _solve(self, parts: Parts, device: Device, conditions: Conditions,
-               hfe: np.ndarray | float | None) -> tuple[Parts, Bias, float]:
+    @staticmethod
+    def _hfe_array(device: Device, hfe: np.ndarray | float | None, n: int) -> np.ndarray:
+        """hFE per candidate (the device's typical value where none is given)."""
+        return np.broadcast_to(np.asarray(device.hfe_typ if hfe is None else hfe, dtype=float), (n,))
+
+    def _checked_solve(self, parts: Parts, device: Device, conditions: Conditions,
+                       hfe: np.ndarray | float | None) -> tuple[Parts, Bias, float]:
+        """Check the parts, then solve the bias (the entry of the public single-call methods)."""
         p = self.check_parts(parts)
-        n = next(iter(p.values())).size
-        beta = np.broadcast_to(np.asarray(device.hfe_typ if hfe is None else hfe, dtype=float), (n,))
+        return self._solve(p, device, conditions, self._hfe_array(device, hfe, next(iter(p.values())).size))
+
+    def _solve(self, p: Parts, device: Device, conditions: Conditions,
+               beta: np.ndarray) -> tuple[Parts, Bias, float]:
+        """Bias of checked parts ``p`` with hFE ``beta`` (one value per candidate)."""
         nvt = device.NF * float(thermal_voltage(conditions.temperature))
         i_s = float(saturation_current(device.IS, conditions.temperature))
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
@@ -150,14 +164,14 @@ class StageModel(Topology):
 
     def operating_point(self, parts: Parts, device: Device, conditions: Conditions,
                         hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
-        return self._solve(parts, device, conditions, hfe)[1].op
+        return self._checked_solve(parts, device, conditions, hfe)[1].op
 
     def evaluate(self, parts: Parts, device: Device, conditions: Conditions,
                  hfe: np.ndarray | float | None = None, *, full: bool = True,
                  thd_solve: bool = False) -> StageResult:
         p = self.check_parts(parts)
         n = next(iter(p.values())).size
-        h = np.broadcast_to(np.asarray(device.hfe_typ if hfe is None else hfe, dtype=float), (n,))
+        h = self._hfe_array(device, hfe, n)
         step = CHUNK_FULL if full else CHUNK_FAST
         if n <= step:
             return self._evaluate(p, device, conditions, h, full, thd_solve)
@@ -176,8 +190,8 @@ class StageModel(Topology):
 
     def _evaluate(self, parts: Parts, device: Device, conditions: Conditions,
                   hfe: np.ndarray, full: bool, thd_solve: bool) -> StageResult:
-        p, b, nvt = self._solve(parts, device, conditions, hfe)
-        r_source = np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)
+        p, b, nvt = self._solve(parts, device, conditions, hfe)  # parts checked by evaluate
+        r_source = _source_resistance(b, conditions)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             mid = self._midband(p, conditions, b, r_source)
             # impedances are seen through the coupling capacitors at the band's geometric mean
@@ -223,10 +237,10 @@ class StageModel(Topology):
     def frequency_response(self, parts: Parts, device: Device, conditions: Conditions,
                            freqs: np.ndarray, hfe: np.ndarray | float | None = None) -> np.ndarray:
         """Complex gain source->load (V/V) at freqs (Hz), shape (candidates, freqs), by full nodal solve."""
-        p, b, _ = self._solve(parts, device, conditions, hfe)
+        p, b, _ = self._checked_solve(parts, device, conditions, hfe)
         pc = {k: v[:, None] for k, v in p.items()}
         ssc = [{k: v[:, None] for k, v in ss.items()} for ss in b.small_signal]
-        rsc = np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)[:, None]
+        rsc = _source_resistance(b, conditions)[:, None]
         f = np.broadcast_to(np.asarray(freqs, dtype=float)[None, :], (b.op["ic"].size, len(freqs)))
         return self._response(self._network(pc, conditions, ssc, True, rsc, True), rsc)(f)
 
@@ -234,8 +248,8 @@ class StageModel(Topology):
                         hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
         """gain (V/V), input_impedance and output_impedance (|Z|, ohm) by full nodal solve at the
         band's geometric-mean frequency (a check of the closed forms)."""
-        p, b, _ = self._solve(parts, device, conditions, hfe)
-        rs = np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)
+        p, b, _ = self._checked_solve(parts, device, conditions, hfe)
+        rs = _source_resistance(b, conditions)
         s = np.array(2j * np.pi * math.sqrt(conditions.band[0] * conditions.band[1]))
         ss, one = b.small_signal, np.ones_like(rs)
         h = self._network(p, conditions, ss, True, rs, True).at(s).solve({"in": 1.0 / rs}, ["out"])["out"]
@@ -268,8 +282,8 @@ class StageModel(Topology):
     def thd_quasistatic(self, parts: Parts, device: Device, conditions: Conditions,
                         hfe: np.ndarray | float | None = None, samples: int = 256) -> np.ndarray:
         """THD (fraction) at conditions.signal_vpp at the load, by static solve + FFT (per candidate)."""
-        p, b, nvt = self._solve(parts, device, conditions, hfe)
-        rs = np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)
+        p, b, nvt = self._checked_solve(parts, device, conditions, hfe)
+        rs = _source_resistance(b, conditions)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             gain = self._midband(p, conditions, b, rs)["gain"]
             return self._thd_static(p, device, conditions, b, nvt, b.beta, gain, samples)
