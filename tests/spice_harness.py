@@ -13,7 +13,7 @@ import re
 import shutil
 import subprocess
 import tempfile
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from pathlib import Path
 from types import SimpleNamespace
 from typing import Any
@@ -41,10 +41,12 @@ def ngspice_available() -> bool:
 def _simulate(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
               conditions: Any, control: str, *, elements: str = "", waveforms: tuple[str, ...] = (),
               amplitude: float = 0.01, frequency: float | None = None,
+              transform: Callable[[str], str] | None = None,
               ) -> tuple[dict[str, float], dict[str, np.ndarray]]:
     """Run one netlist with ``control`` (``{dir}`` = output directory) in ngspice.
 
-    Returns the printed scalars and the arrays of each ``{dir}/<name>.txt`` in ``waveforms``.
+    ``transform`` (netlist text -> netlist text) edits the circuit before the run. Returns
+    the printed scalars and the arrays of each ``{dir}/<name>.txt`` in ``waveforms``.
     """
     if NGSPICE is None:
         raise SpiceError("ngspice not installed: apt-get install ngspice")
@@ -53,6 +55,8 @@ def _simulate(topology: str, parts: Mapping[str, float], model: Mapping[str, flo
         analyses = f"{elements}\n.control\nset noaskquit\nset numdgt=12\n{body}\nquit\n.endc"
         netlist = spice_netlist(topology, parts, model, conditions, analyses=analyses,
                                 amplitude=amplitude, frequency=frequency)
+        if transform is not None:
+            netlist = transform(netlist)
         path = Path(tmp) / "stage.cir"
         path.write_text(netlist)
         try:
@@ -156,53 +160,75 @@ def spice_response(topology: str, parts: Mapping[str, float], model: Mapping[str
             "f_high": _crossing(f[above], mag[above], level)}
 
 
-# Swing run: one transient whose input sine grows 2 % per cycle from 1 % to 100 % of the
-# supply (referred to the input through the mid-band gain), sampled 72 points per cycle.
-_SWING_START, _SWING_STOP, _SWING_GROWTH, _SWING_SAMPLES = 0.01, 1.0, 0.02, 72
-_PEAK_HALF_WIDTH = 4  # samples (20 degrees) either side of a peak for the curvature gain
-_REFERENCE_PEAKS = 10  # small-signal peaks whose median curvature gain is the reference
+# Swing: the clip level as DESIGN.md defines it (the AC load line, coupling and bypass
+# capacitors holding their DC) is measured on the static transfer curve, not on a transient.
+# Why not a transient with a growing sine: at the clip itself the bias does not move (below
+# clipping the mean output stays within a few mV), but a curvature test over a window of a
+# sampled peak only sees a soft clip - a degenerated stage whose saturated collector then
+# follows its emitter in phase, as in feedback_ce - some cycles after the peak has flattened,
+# and by then the saturation's base current has recharged c_in and c_out (the output's mean
+# moved 0.2 V on feedback_ce-9V-A4-hfe400), so the transient read the peak-to-peak of a
+# stage already past the clip with a shifted bias, 10-15 % above the clip level.
+_HELD_CAPACITORS = ("c_in", "c_out", "c_emitter")  # coupling and bypass: a voltage source at their DC
+_SWEEP_POINTS = 4001  # over +-supply/|gain| at the source: ~0.05 % of the supply per step at the load
+_CLIP_GAIN_FRACTION = 0.5  # clipping starts where the incremental gain falls below this share
+
+
+def _hold_capacitors(netlist: str, node_voltages: Mapping[str, float]) -> str:
+    """The netlist with each coupling/bypass capacitor replaced by a DC source of its voltage."""
+    held = {f"c{role}" for role in _HELD_CAPACITORS}  # element names are "C" + role
+    lines = []
+    for line in netlist.splitlines():
+        fields = line.split()
+        if fields and fields[0].lower() in held:
+            name, a, b = fields[:3]
+            drop = node_voltages.get(a, 0.0) - node_voltages.get(b, 0.0)
+            line = f"Vhold_{name[1:]} {a} {b} DC {drop!r}"
+        lines.append(line)
+    return "\n".join(lines) + "\n"
+
+
+def _capacitor_nodes(netlist: str) -> set[str]:
+    held = {f"c{role}" for role in _HELD_CAPACITORS}
+    return {node for line in netlist.splitlines() if (f := line.split()) and f[0].lower() in held
+            for node in f[1:3] if node != "0"}
 
 
 def spice_swing(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
                 conditions: Any) -> float:
-    """Clipping swing at the load, V peak-to-peak, at the band's geometric mean.
+    """Clipping swing at the load, V peak-to-peak: the clip level on the static transfer curve.
 
-    Definition: the input sine's amplitude grows 2 % per cycle. At every input peak the
-    incremental gain is the ratio of the output's to the input's curvature (the value at the
-    peak minus the mean of the values 20 degrees either side). Clipping starts at the first
-    peak, of either polarity, whose incremental gain has fallen below half its small-signal
-    value (the median over the first peaks); the swing is the output's peak-to-peak over the
-    cycle centred on that peak. A hard clip flattens the peak at once, so this is the
-    AC-load-line clip level of the models; a softly compressing side (degenerated cutoff)
-    contributes the level it has reached by then. Resolution ~1 %.
+    An operating point gives the DC across every coupling and bypass capacitor; each is then
+    replaced by a voltage source holding that DC (what the capacitors do over a period at
+    mid-band), and a DC sweep of the signal source over +-supply/|gain| gives the load
+    voltage against the source EMF. Clipping starts at the smallest input, of either
+    polarity, where the incremental gain dVout/dVsig has fallen below half its value at the
+    operating point (or changed sign); the swing is the output's peak-to-peak for an input
+    sine of that amplitude, read off the curve. A hard clip flattens the curve at once, so
+    this is the AC-load-line clip level of the models; a softly compressing side
+    (degenerated cutoff) contributes the level it has reached by then.
     """
-    frequency = mid_band_frequency(conditions)
-    h, _ = _complex_gain(topology, parts, model, conditions, frequency)
-    amplitude = _SWING_START * float(conditions.supply) / abs(h)
-    cycles = math.ceil(math.log(_SWING_STOP / _SWING_START) / _SWING_GROWTH)
-    period = 1.0 / frequency
-    step = period / _SWING_SAMPLES
-    theta = -_SWING_GROWTH * frequency  # SIN damping factor; negative grows the amplitude
-    control = (f"alter @vsig[sin] = [ 0 {amplitude!r} {frequency!r} 0 {theta!r} ]\n"
-               f"tran {step!r} {cycles * period!r} 0 {step!r}\nlinearize v(sig) v(out)\n"
-               "wrdata {dir}/w.txt v(sig) v(out)")
-    _, arrays = _simulate(topology, parts, model, conditions, control, waveforms=("w",))
-    v_in, v_out = arrays["w"][:, 1], arrays["w"][:, 3]
-    w = _PEAK_HALF_WIDTH
-    half = _SWING_SAMPLES // 2
-    peaks = np.arange(_SWING_SAMPLES // 4, v_in.size - w, half)  # input peaks at 90, 270 deg
-
-    def curvature(v: np.ndarray) -> np.ndarray:
-        return v[peaks] - 0.5 * (v[peaks - w] + v[peaks + w])
-
-    ratio = curvature(v_out) / curvature(v_in)
-    small_signal = np.median(ratio[:_REFERENCE_PEAKS])
-    clipped = np.nonzero(np.abs(ratio) < 0.5 * abs(small_signal))[0]
-    if clipped.size == 0:
+    netlist = spice_netlist(topology, parts, model, conditions)
+    nodes = sorted(_capacitor_nodes(netlist))
+    control = "op\n" + "".join(f"let n_{n} = v({n})\nprint n_{n}\n" for n in nodes)
+    scalars, _ = _simulate(topology, parts, model, conditions, control)
+    voltages = dict(zip(nodes, _need(scalars, *(f"n_{n}" for n in nodes))))
+    h, _ = _complex_gain(topology, parts, model, conditions, mid_band_frequency(conditions))
+    span = float(conditions.supply) / abs(h)
+    control = (f"dc vsig {-span!r} {span!r} {2.0 * span / (_SWEEP_POINTS - 1)!r}\n"
+               "wrdata {dir}/d.txt v(out)")
+    _, arrays = _simulate(topology, parts, model, conditions, control, waveforms=("d",),
+                          transform=lambda text: _hold_capacitors(text, voltages))
+    v_in, v_out = arrays["d"][:, 0], arrays["d"][:, 1]
+    slope = np.gradient(v_out, v_in)
+    centre = int(np.argmin(np.abs(v_in)))
+    clipped = slope / slope[centre] < _CLIP_GAIN_FRACTION
+    right = np.nonzero(clipped[centre:])[0]
+    left = np.nonzero(clipped[:centre + 1])[0]
+    if right.size == 0 or left.size == 0:
         raise SpiceError(f"{topology}: no clipping found up to an output of {float(conditions.supply)} V")
-    k = peaks[clipped[0]]
-    cycle = v_out[max(k - half, 0):k + half]
-    return float(cycle.max() - cycle.min())
+    amplitude = min(v_in[centre + right[0]], -v_in[left[-1]])
+    return float(abs(np.interp(amplitude, v_in, v_out) - np.interp(-amplitude, v_in, v_out)))
 
 
 def spice_noise(topology: str, parts: Mapping[str, float], model: Mapping[str, float],

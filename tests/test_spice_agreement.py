@@ -17,14 +17,9 @@ pytestmark = pytest.mark.skipif(shutil.which("ngspice") is None,
                                 reason="ngspice not installed: apt-get install ngspice")
 
 DESIGNS = check_designs()
-# Known gap, tracked in the stage-models issue: on the two most degenerated feedback_ce
-# designs the model's clip level is 12-13 % below ngspice's transient measurement.
-KNOWN_SWING_GAP = {"feedback_ce-3.3V-A3-hfe120", "feedback_ce-9V-A4-hfe400"}
-CASES = [pytest.param(d, marks=pytest.mark.xfail(strict=True, reason="swing 12-13 % below ngspice"))
-         if d.name in KNOWN_SWING_GAP else d for d in DESIGNS]
 
 
-@pytest.mark.parametrize("design", CASES, ids=[d.name for d in DESIGNS])
+@pytest.mark.parametrize("design", DESIGNS, ids=[d.name for d in DESIGNS])
 def test_model_agrees_with_ngspice(design) -> None:
     rows = agreement_rows(design)
     outside = [f"{r['metric']}: model {r['model']:.4g}, ngspice {r['simulator']:.4g}, "
