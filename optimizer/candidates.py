@@ -13,12 +13,12 @@ import numpy as np
 from optimizer import eseries, scoring
 from optimizer.catalog import Catalog
 from optimizer.devices import Device
-from optimizer.errors import InputError
+from optimizer.errors import InputError, Problem
 from optimizer.sizing import size_capacitors
-from optimizer.spec import Spec
+from optimizer.spec import NOMINAL_TEMPERATURE_C, Spec
 from optimizer.tolerance import monte_carlo_yield, worst_case
 from optimizer.topologies import get_topology
-from optimizer.topologies.base import Topology
+from optimizer.topologies.base import Conditions, Topology
 from optimizer.units import format_value
 
 DEFAULT_POWER_RATING = 0.125  # W, when a value is not in the catalog (common 0805 rating)
@@ -104,10 +104,12 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
         "feasible": bool(scoring.total_violation(violations)[0] == 0),
         "conditions": {"supply": spec.supply, "source_impedance": spec.source_impedance,
                        "load_impedance": spec.load_impedance, "band": list(spec.band),
-                       "temperature": list(spec.temperature)},
+                       "temperature": list(spec.temperature), "load_capacitance": conditions.load_capacitance,
+                       "signal_vpp": conditions.signal_vpp},
         "parts": {role: {k: rec[k] for k in ("value", "label", "part_id")} for role, rec in records.items()},
         "transistor": {"id": device.id, "polarity": device.polarity, "hfe_min": device.hfe_min,
-                       "hfe_max": device.hfe_max, "model": device.spice_model()},
+                       "hfe_max": device.hfe_max, "hfe_typ": device.hfe_typ, "vce_sat": device.vce_sat,
+                       "vceo_max": device.vceo_max, "p_max": device.p_max, "model": device.spice_model()},
         "metrics": {**metrics, "yield": float(build_yield[0])},
         "operating_point": {k: float(np.asarray(v)[0]) for k, v in result.operating_point.items()},
         "ratings": {k: {"value": float(np.asarray(result.metrics["q_power"] if k == "q_power"
@@ -137,3 +139,47 @@ def _cautions(spec: Spec, result, rating_limits: dict[str, float]) -> list[str]:
     notes.append("predicted, not measured: verify the built stage, and follow local electrical "
                  "codes and licensed practice for anything mains-powered")
     return notes
+
+
+def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], Device, Conditions]:
+    """Rebuild a candidate's design from its record alone (no spec, no catalog): the topology,
+    its parts as 1-element float arrays by role, the device, and the conditions at the nominal
+    temperature. InputError naming the missing or bad key if the record is incomplete."""
+    def incomplete(problems: list[Problem]) -> InputError:
+        return InputError(problems, title="incomplete candidate record")
+
+    if not isinstance(record, dict):
+        raise incomplete([Problem("candidate", type(record).__name__, "a candidate record (a mapping)")])
+    blocks = {"topology": (str, "a topology name"), "parts": (dict, "a mapping role -> {value, ...}"),
+              "transistor": (dict, "the transistor block with its model"),
+              "conditions": (dict, "supply, source_impedance, load_impedance and band")}
+    problems = [Problem(key, record.get(key), expected) for key, (kind, expected) in blocks.items()
+                if not isinstance(record.get(key), kind)]
+    if problems:
+        raise incomplete(problems)
+    topology = get_topology(record["topology"])
+    parts: dict[str, np.ndarray] = {}
+    for role in topology.resistors + topology.capacitors:
+        entry = record["parts"].get(role)
+        value = entry.get("value") if isinstance(entry, dict) else None
+        try:
+            parts[role] = np.array([float(value)])
+        except (TypeError, ValueError):
+            problems.append(Problem(f"parts.{role}.value", value, f"a number (ohm or F) for {topology.name}"))
+    cond = record["conditions"]
+    numbers: dict[str, float] = {}
+    for key, default in (("supply", None), ("source_impedance", None), ("load_impedance", None),
+                         ("load_capacitance", 0.0), ("signal_vpp", 1.0)):
+        try:
+            numbers[key] = float(cond.get(key, default))
+        except (TypeError, ValueError):
+            problems.append(Problem(f"conditions.{key}", cond.get(key), "a number in SI units"))
+    band = cond.get("band")
+    try:
+        band = (float(band[0]), float(band[1]))
+    except (TypeError, ValueError, IndexError, KeyError):
+        problems.append(Problem("conditions.band", band, "[low, high] in Hz"))
+    if problems:
+        raise incomplete(problems)
+    device = Device.from_record(record["transistor"])
+    return topology, parts, device, Conditions(band=band, temperature=NOMINAL_TEMPERATURE_C, **numbers)

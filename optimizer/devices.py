@@ -80,6 +80,25 @@ class Device:
         values["polarity"] = "npn"
         return cls(**values)  # type: ignore[arg-type]
 
+    @classmethod
+    def from_record(cls, transistor: Mapping) -> "Device":
+        """Rebuild a device from a candidate record's "transistor" block (id, polarity, hfe_min,
+        hfe_typ, hfe_max, vce_sat, vceo_max, p_max and model{IS..TF}), without the catalog."""
+        if not isinstance(transistor, Mapping):
+            raise InputError.single("transistor", transistor, "a mapping (the candidate's transistor block)",
+                                    title="incomplete candidate")
+        model = transistor.get("model")
+        if not isinstance(model, Mapping):
+            raise InputError.single("transistor.model", model, "a mapping with " + ", ".join(SPICE_KEYS),
+                                    title="incomplete candidate")
+        top = [f.name for f in fields(cls) if f.name not in SPICE_KEYS]
+        missing = [Problem(f"transistor.{k}", None, "a value is required") for k in top if k not in transistor]
+        missing += [Problem(f"transistor.model.{k}", None, "a value is required")
+                    for k in SPICE_KEYS if k not in model]
+        if missing:
+            raise InputError(missing, title="incomplete candidate")
+        return cls.from_row({**{k: transistor[k] for k in top}, **{k: model[k] for k in SPICE_KEYS}})
+
     def spice_model(self) -> dict[str, float]:
         """SPICE .model parameters (keys IS BF NF VAF RB CJE CJC TF)."""
         return {k: float(getattr(self, k)) for k in SPICE_KEYS}

@@ -272,12 +272,27 @@ class StageModel(Topology):
         """Map source voltages (V, (candidates, samples)) to load voltages (V) by the static
         nonlinear stage equations around the operating point (capacitors hold their DC)."""
 
-    def _thd_static(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
-                    beta: np.ndarray, gain: np.ndarray, samples: int = physics.THD_SAMPLES) -> np.ndarray:
+    def _static_fn(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
+                   beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+        """:meth:`static_output` of solved candidates, their arrays as columns (candidates, 1)."""
         i_s = float(saturation_current(device.IS, c.temperature))
         col = lambda d: {k: np.asarray(v)[:, None] for k, v in d.items()}  # noqa: E731
-        fn = self.static_output(col(p), device, c, Bias(col(b.op), b.small_signal), nvt, i_s, beta[:, None])
+        return self.static_output(col(p), device, c, Bias(col(b.op), b.small_signal), nvt, i_s, beta[:, None])
+
+    def _thd_static(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
+                    beta: np.ndarray, gain: np.ndarray, samples: int = physics.THD_SAMPLES) -> np.ndarray:
+        fn = self._static_fn(p, device, c, b, nvt, beta)
         return physics.thd_quasistatic(fn, 0.5 * c.signal_vpp / np.abs(gain), samples)
+
+    def static_transfer(self, parts: Parts, device: Device, conditions: Conditions, source_v: np.ndarray,
+                        hfe: np.ndarray | float | None = None) -> np.ndarray:
+        """Load voltage (V, change from quiescent) at each source voltage of ``source_v`` (V, a
+        1-D sweep), per candidate, shape (candidates, samples): the static transfer curve behind
+        the quasi-static THD, clipping included (capacitors hold their DC)."""
+        p, b, nvt = self._checked_solve(parts, device, conditions, hfe)
+        vs = np.asarray(source_v, dtype=float).reshape(1, -1)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            return self._static_fn(p, device, conditions, b, nvt, b.beta)(vs) + 0.0 * b.beta[:, None]
 
     def thd_quasistatic(self, parts: Parts, device: Device, conditions: Conditions,
                         hfe: np.ndarray | float | None = None, samples: int = 256) -> np.ndarray:
