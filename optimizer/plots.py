@@ -1,0 +1,338 @@
+"""Plots of a search and of one candidate: Pareto front, frequency response, transfer curve.
+
+Each function returns the image as bytes ("svg" or "png") and, given ``path``, also writes
+it there. Figures are drawn with matplotlib's object interface on its Agg / SVG renderers
+(no pyplot, no GUI, no global state), so the REST service may call them from any thread.
+Every candidate plot is rebuilt from the candidate record alone
+(:func:`optimizer.candidates.design_from_record`), so it needs neither spec nor catalog.
+"""
+from __future__ import annotations
+
+import io
+import math
+from pathlib import Path
+
+import numpy as np
+from matplotlib.figure import Figure
+
+from optimizer.candidates import design_from_record
+from optimizer.errors import InputError
+from optimizer.units import format_value
+
+FORMATS = ("svg", "png")
+PNG_DPI = 110
+FIGSIZE = (7.2, 4.6)  # inches
+RESPONSE_POINTS = 480  # log-spaced frequencies of the response curve
+TRANSFER_POINTS = 401  # source voltages of the transfer sweep
+TRANSFER_OVERDRIVE = 2.0  # sweep to this multiple of the source level that reaches the clip level
+FLAT_SLOPE = 0.2  # the transfer curve "clips" where its slope falls below this part of mid-scale
+
+#: metric -> (axis name, scale from SI, unit shown)
+METRIC_AXES: dict[str, tuple[str, float, str]] = {
+    "supply_current": ("supply current", 1e3, "mA"),
+    "swing_vpp": ("output swing", 1.0, "Vpp"),
+    "noise_ein_v": ("input noise (EIN)", 1e6, "µV rms"),
+    "noise_figure_db": ("noise figure", 1.0, "dB"),
+    "gain": ("gain", 1.0, "V/V"),
+    "gain_db": ("gain", 1.0, "dB"),
+    "gain_error_db": ("gain error", 1.0, "dB"),
+    "input_impedance": ("input impedance", 1e-3, "kΩ"),
+    "output_impedance": ("output impedance", 1.0, "Ω"),
+    "f_low": ("low -3 dB corner", 1.0, "Hz"),
+    "f_high": ("high -3 dB corner", 1e-3, "kHz"),
+    "thd": ("THD", 100.0, "%"),
+    "q_power": ("transistor dissipation", 1e3, "mW"),
+    "part_count": ("part count", 1.0, "parts"),
+    "unique_values": ("distinct values", 1.0, "values"),
+    "cost": ("cost per unit", 1.0, "currency"),
+    "yield": ("yield", 100.0, "%"),
+}
+_DIRECTIONS = {"minimise": "minimise", "minimize": "minimise", "min": "minimise",
+               "maximise": "maximise", "maximize": "maximise", "max": "maximise"}
+COLOURS = {"feasible": "#1f77b4", "infeasible": "#b0b0b0", "front": "#d62728", "chosen": "#ff9900",
+           "band": "#2ca02c", "model": "#1f77b4", "ideal": "#7f7f7f", "limit": "#d62728", "spec": "#2ca02c"}
+
+
+# ---- output ----------------------------------------------------------------------------
+
+def _check_format(fmt: object) -> str:
+    name = str(fmt).lower().lstrip(".") if isinstance(fmt, str) else fmt
+    if name not in FORMATS:
+        raise InputError.single("format", fmt, "svg or png", title="unknown plot format")
+    return name
+
+
+def _render(fig: Figure, fmt: str, path: str | Path | None) -> bytes:
+    """The figure as bytes (reproducible: no date in the file), also written to ``path``."""
+    buffer = io.BytesIO()
+    metadata = {"Date": None} if fmt == "svg" else {"Software": None}
+    fig.savefig(buffer, format=fmt, dpi=PNG_DPI, metadata=metadata, bbox_inches="tight")
+    data = buffer.getvalue()
+    if path is not None:
+        Path(path).write_bytes(data)
+    return data
+
+
+def _axis_label(metric: str, direction: str | None = None) -> str:
+    name, _, unit = METRIC_AXES.get(metric, (metric.replace("_", " "), 1.0, ""))
+    label = f"{name} ({unit})" if unit else name
+    if direction:
+        label += ", lower is better" if direction == "minimise" else ", higher is better"
+    return label
+
+
+def _scaled(metric: str, values: np.ndarray) -> np.ndarray:
+    return np.asarray(values, dtype=float) * METRIC_AXES.get(metric, ("", 1.0, ""))[1]
+
+
+# ---- Pareto front ----------------------------------------------------------------------
+
+def _check_objectives(objectives: object) -> list[tuple[str, str]]:
+    expected = 'a list of (metric, direction) pairs, e.g. [("supply_current", "minimise")]'
+    try:
+        pairs = [(str(m), _DIRECTIONS[str(d).lower()]) for m, d in objectives]  # type: ignore[union-attr]
+    except (TypeError, ValueError, KeyError):
+        raise InputError.single("objectives", objectives, expected, title="invalid plot objectives") from None
+    if not pairs:
+        raise InputError.single("objectives", objectives, expected, title="invalid plot objectives")
+    return pairs
+
+
+def _metric_matrix(points: list[dict], metrics: list[str]) -> np.ndarray:
+    """(points, metrics) floats; NaN where a point lacks a metric."""
+    out = np.full((len(points), len(metrics)), np.nan)
+    for i, point in enumerate(points):
+        values = point.get("metrics") or {} if isinstance(point, dict) else {}
+        for j, metric in enumerate(metrics):
+            value = values.get(metric)
+            if isinstance(value, (int, float)) and not isinstance(value, bool):
+                out[i, j] = float(value)
+    return out
+
+
+def pareto_mask(values: np.ndarray, directions: list[str], *, chunk: int = 512) -> np.ndarray:
+    """Which rows of ``values`` (points, objectives) are non-dominated (rows with NaN never are).
+
+    One or two objectives: a sort and a running minimum, O(n log n); more: chunked pairwise.
+    """
+    signed = np.asarray(values, dtype=float).reshape(len(values), len(directions))
+    signed = signed * np.array([1.0 if d == "minimise" else -1.0 for d in directions])
+    ok = np.flatnonzero(np.all(np.isfinite(signed), axis=1))
+    mask = np.zeros(len(signed), dtype=bool)
+    rows = signed[ok]
+    if not rows.size:
+        return mask
+    k = rows.shape[1]
+    if k == 1:
+        mask[ok] = rows[:, 0] == rows[:, 0].min()
+    elif k == 2:
+        # unique rows come sorted by (first, second); a group is dominated when an earlier group
+        # reaches its second objective or better (an equal first needs a strictly better second,
+        # which the lexicographic order already gives)
+        unique, inverse = np.unique(rows, axis=0, return_inverse=True)
+        best_before = np.concatenate([[np.inf], np.minimum.accumulate(unique[:-1, 1])])
+        mask[ok] = ~(best_before <= unique[:, 1])[np.ravel(inverse)]
+    else:
+        dominated = np.zeros(len(rows), dtype=bool)
+        for i in range(0, len(rows), chunk):
+            block = rows[i:i + chunk]
+            no_worse = np.all(rows[None, :, :] <= block[:, None, :], axis=2)
+            better = np.any(rows[None, :, :] < block[:, None, :], axis=2)
+            dominated[i:i + chunk] = np.any(no_worse & better, axis=1)
+        mask[ok] = ~dominated
+    return mask
+
+
+def front_plot(points: list[dict], objectives: list[tuple[str, str]], *, chosen: dict | None = None,
+               front: list[dict] | None = None, fmt: str = "svg", path: str | Path | None = None,
+               title: str | None = None) -> bytes:
+    """Scatter of evaluated candidates over the first two objectives (one objective: against
+    evaluation order): feasible and infeasible marked apart, the Pareto front joined (``front``
+    records if given, else the non-dominated feasible points), the ``chosen`` design starred."""
+    fmt = _check_format(fmt)
+    pairs = _check_objectives(objectives)
+    if not isinstance(points, (list, tuple)):
+        raise InputError.single("points", type(points).__name__, "a list of candidate records")
+    shown = pairs[:2]
+    metrics = [m for m, _ in shown]
+    points = list(points)
+    values = _metric_matrix(points, metrics)  # objective columns, SI
+    feasible = np.array([bool(p.get("feasible")) if isinstance(p, dict) else False for p in points], dtype=bool)
+    single = len(shown) == 1
+
+    def to_xy(rows: np.ndarray, index: np.ndarray) -> np.ndarray:
+        """Plot coordinates: (evaluation, objective) for one objective, else the two scaled."""
+        if single:
+            return np.column_stack([index, _scaled(metrics[0], rows[:, 0])])
+        return np.column_stack([_scaled(metrics[0], rows[:, 0]), _scaled(metrics[1], rows[:, 1])])
+
+    xy = to_xy(values, np.arange(len(points), dtype=float))
+    fig = Figure(figsize=FIGSIZE)
+    ax = fig.add_subplot()
+    for mask, key, marker in ((~feasible, "infeasible", "x"), (feasible, "feasible", "o")):
+        if mask.any():
+            ax.scatter(xy[mask, 0], xy[mask, 1], s=14, marker=marker, c=COLOURS[key], alpha=0.7,
+                       label=f"{key} ({int(mask.sum())})", linewidths=1.0).set_gid(key)
+    if front is not None and not single:
+        fxy = to_xy(_metric_matrix(list(front), metrics), np.zeros(len(front)))
+    else:
+        on_front = np.zeros(len(points), dtype=bool)
+        on_front[feasible] = pareto_mask(values[feasible], [d for _, d in shown])
+        fxy = xy[on_front]
+    fxy = fxy[np.all(np.isfinite(fxy), axis=1)]
+    if len(fxy):
+        order = np.argsort(fxy[:, 0], kind="stable")
+        label = f"{'best feasible' if single else 'Pareto front'} ({len(fxy)})"
+        ax.plot(fxy[order, 0], fxy[order, 1], "o" if single else "-o", color=COLOURS["front"], ms=5, lw=1.4,
+                label=label, zorder=3)[0].set_gid("front")
+    if chosen is not None:
+        index = next((i for i, p in enumerate(points) if p is chosen or (isinstance(p, dict) and isinstance(
+            chosen, dict) and p.get("metrics") == chosen.get("metrics"))), np.nan)
+        cxy = to_xy(_metric_matrix([chosen], metrics), np.array([float(index)]))[0]
+        if np.all(np.isfinite(cxy)):
+            rank = chosen.get("rank") if isinstance(chosen, dict) else None
+            ax.scatter([cxy[0]], [cxy[1]], s=180, marker="*", c=COLOURS["chosen"], edgecolors="black", linewidths=0.8,
+                       zorder=4, label="chosen" + (f" (rank {rank})" if rank else "")).set_gid("chosen")
+    if not len(points):
+        ax.text(0.5, 0.5, "no candidates evaluated", ha="center", va="center", transform=ax.transAxes)
+    ax.set_xlabel("evaluation" if single else _axis_label(*shown[0]))
+    ax.set_ylabel(_axis_label(*shown[-1]))
+    note = "" if len(pairs) <= 2 else f" (first 2 of {len(pairs)} objectives shown)"
+    ax.set_title((title or ("Candidates and best feasible" if single else "Candidates and Pareto front")) + note)
+    ax.grid(True, alpha=0.3)
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(loc="best", fontsize=8)
+    return _render(fig, fmt, path)
+
+
+# ---- frequency response ----------------------------------------------------------------
+
+def _crossing(freqs: np.ndarray, db: np.ndarray, level: float, index: np.ndarray) -> float | None:
+    """Frequency (Hz) where db crosses ``level`` between index[0] (inside) and index[1]
+    (outside), linear in log f."""
+    i_in, i_out = int(index[0]), int(index[1])
+    d_in, d_out = db[i_in] - level, db[i_out] - level
+    if d_in == d_out:
+        return None
+    x = math.log10(freqs[i_in]) + (math.log10(freqs[i_out]) - math.log10(freqs[i_in])) * d_in / (d_in - d_out)
+    return 10.0 ** x
+
+
+def response_data(candidate: dict, *, points: int = RESPONSE_POINTS) -> dict:
+    """The response behind :func:`response_plot`: freqs (Hz), gain_db of |H| source->load,
+    reference_db (mid-band gain), the -3 dB corners f_low / f_high found on this curve (Hz,
+    None beyond the sweep) and the band (Hz)."""
+    topology, parts, device, conditions = design_from_record(candidate)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        gain = float(topology.evaluate(parts, device, conditions, full=False).metrics["gain"][0])
+        low = max(min(conditions.band[0], 1.0) / 10.0, 0.01)
+        high = max(conditions.band[1], 1e6) * 100.0
+        freqs = np.logspace(math.log10(low), math.log10(high), points)
+        response = topology.frequency_response(parts, device, conditions, freqs)[0]
+    db = 20.0 * np.log10(np.maximum(np.abs(response), 1e-300))
+    reference = 20.0 * math.log10(abs(gain))
+    level = reference - 10.0 * math.log10(2.0)
+    peak = int(np.argmax(db))
+    below = np.flatnonzero(db < level)
+    left, right = below[below < peak], below[below > peak]
+    f_low = _crossing(freqs, db, level, np.array([left[-1] + 1, left[-1]])) if left.size else None
+    f_high = _crossing(freqs, db, level, np.array([right[0] - 1, right[0]])) if right.size else None
+    return {"freqs": freqs, "gain_db": db, "reference_db": reference, "level_db": level,
+            "f_low": f_low, "f_high": f_high, "band": conditions.band, "topology": topology.name,
+            "gain": gain}
+
+
+def response_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None = None) -> bytes:
+    """|gain| (dB, source to load) against frequency (Hz, log axis), the spec band shaded and
+    the -3 dB points marked."""
+    fmt = _check_format(fmt)
+    data = response_data(candidate)
+    fig = Figure(figsize=FIGSIZE)
+    ax = fig.add_subplot()
+    ax.axvspan(*data["band"], color=COLOURS["band"], alpha=0.12,
+               label=f"band {format_value(data['band'][0], 'Hz')} – {format_value(data['band'][1], 'Hz')}")
+    ax.semilogx(data["freqs"], data["gain_db"], color=COLOURS["model"], lw=1.8, label="|gain| source to load")
+    ax.axhline(data["level_db"], color=COLOURS["ideal"], ls="--", lw=0.9,
+               label=f"-3 dB ({data['level_db']:.1f} dB)")
+    for key, align in (("f_low", "left"), ("f_high", "right")):
+        f = data[key]
+        if f is None:
+            continue
+        marker = ax.plot([f], [data["level_db"]], "o", color=COLOURS["limit"], ms=7, zorder=4)[0]
+        marker.set_gid(f"{key}_marker")
+        ax.axvline(f, color=COLOURS["limit"], lw=0.7, ls=":")
+        ax.annotate(f"{key} {format_value(f, 'Hz')}", (f, data["level_db"]), textcoords="offset points",
+                    xytext=(6 if align == "left" else -6, -16), ha=align, fontsize=9, color=COLOURS["limit"])
+    top = max(float(np.max(data["gain_db"])), data["reference_db"])
+    ax.set_ylim(top - 40.0, top + 6.0)
+    ax.set_xlim(data["freqs"][0], data["freqs"][-1])
+    ax.set_xlabel("frequency (Hz)")
+    ax.set_ylabel("|gain| (dB)")
+    ax.set_title(f"Frequency response: {data['topology']}, mid-band {data['gain']:.3g} V/V "
+                 f"({data['reference_db']:.1f} dB)")
+    ax.grid(True, which="both", alpha=0.25)
+    ax.legend(loc="lower center", fontsize=8)
+    return _render(fig, fmt, path)
+
+
+# ---- transfer curve --------------------------------------------------------------------
+
+def transfer_data(candidate: dict, *, spec_swing: float | None = None, points: int = TRANSFER_POINTS) -> dict:
+    """The DC transfer behind :func:`transfer_plot`: source voltage sweep (V) and load voltage
+    (V, change from quiescent) by the static nonlinear solve, the small-signal straight line,
+    the model's clip level (+/- swing_vpp/2) and where the curve flattens on each side."""
+    topology, parts, device, conditions = design_from_record(candidate)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        metrics = topology.evaluate(parts, device, conditions, full=False).metrics
+    gain, swing = float(metrics["gain"][0]), float(metrics["swing_vpp"][0])
+    reach = max(swing, spec_swing or 0.0, 1e-3) / 2.0
+    peak = TRANSFER_OVERDRIVE * reach / max(abs(gain), 1e-9)
+    vs = np.linspace(-peak, peak, points)
+    out = topology.static_transfer(parts, device, conditions, vs)[0]
+    slope = np.gradient(out, vs)
+    centre = points // 2
+    flat = np.abs(slope) < FLAT_SLOPE * abs(slope[centre])
+    left = np.flatnonzero(flat[:centre])
+    right = np.flatnonzero(flat[centre:]) + centre
+    clips = [(float(vs[i]), float(out[i])) for i in ((left[-1] if left.size else None),
+                                                     (right[0] if right.size else None)) if i is not None]
+    return {"source_v": vs, "output_v": out, "linear_v": gain * vs, "gain": gain, "swing_vpp": swing,
+            "spec_swing": spec_swing, "clips": clips, "topology": topology.name}
+
+
+def transfer_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None = None,
+                  spec_swing: float | None = None) -> bytes:
+    """Load voltage against source voltage (quasi-static sweep) showing where the stage clips:
+    the model's clip level (swing_vpp) and, if given, the spec's required swing (Vpp)."""
+    fmt = _check_format(fmt)
+    if spec_swing is not None and not (isinstance(spec_swing, (int, float)) and spec_swing > 0):
+        raise InputError.single("spec_swing", spec_swing, "a positive swing in V peak-to-peak, or None")
+    data = transfer_data(candidate, spec_swing=spec_swing)
+    vs, out = data["source_v"], data["output_v"]
+    scale, unit = (1e3, "mV") if np.max(np.abs(vs)) < 1.0 else (1.0, "V")
+    x = vs * scale
+    fig = Figure(figsize=FIGSIZE)
+    ax = fig.add_subplot()
+    half = data["swing_vpp"] / 2.0
+    lim = 1.15 * max(np.max(np.abs(out)), half, (spec_swing or 0.0) / 2.0)
+    ax.plot(x, np.clip(data["linear_v"], -lim, lim), color=COLOURS["ideal"], ls=":", lw=1.0,
+            label=f"small-signal gain {data['gain']:.3g} V/V")
+    ax.plot(x, out, color=COLOURS["model"], lw=1.8, label="static transfer (model)")
+    ax.axhspan(-half, half, color=COLOURS["model"], alpha=0.06)
+    for sign in (1, -1):
+        ax.axhline(sign * half, color=COLOURS["limit"], ls="--", lw=0.9,
+                   label=f"clip level, swing {data['swing_vpp']:.2f} Vpp" if sign > 0 else None)
+        if spec_swing:
+            ax.axhline(sign * spec_swing / 2.0, color=COLOURS["spec"], ls="-.", lw=1.0,
+                       label=f"spec swing {spec_swing:.2f} Vpp" if sign > 0 else None)
+    for i, (v, o) in enumerate(data["clips"]):
+        ax.plot([v * scale], [o], "o", color=COLOURS["limit"], ms=6, zorder=4,
+                label=f"clips (slope < {FLAT_SLOPE:.0%})" if i == 0 else None)[0].set_gid(f"clip_{i}")
+    ax.set_ylim(-lim, lim)
+    ax.set_xlim(x[0], x[-1])
+    ax.set_xlabel(f"source voltage ({unit}, change from rest)")
+    ax.set_ylabel("load voltage (V, change from rest)")
+    ax.set_title(f"Transfer curve: {data['topology']}")
+    ax.grid(True, alpha=0.3)
+    ax.legend(loc="upper right" if data["gain"] < 0 else "upper left", fontsize=8)
+    return _render(fig, fmt, path)
