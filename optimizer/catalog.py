@@ -258,17 +258,30 @@ class Catalog:
     def part_for(self, role_kind: str, value: float) -> dict | None:
         """The cheapest in-stock row of ``role_kind`` ("resistor" or "capacitor") with
         ``value`` (ohm or F); ties go to the larger stock. None if none is in stock."""
+        rows = self.parts_for(role_kind, np.array([value]))
+        return None if rows.iloc[0].isna()["part_id"] else _row_dict(rows.iloc[0])
+
+    def parts_for(self, role_kind: str, values: np.ndarray) -> pd.DataFrame:
+        """The row :meth:`part_for` picks for each of ``values``, one frame row per value
+        (all columns missing where no row with that value is in stock)."""
         frames = {"resistor": self.resistors, "capacitor": self.capacitors}
         if role_kind not in frames:
             raise InputError.single("role_kind", role_kind, "resistor or capacitor")
         frame = frames[role_kind]
-        rows = frame[np.isclose(frame["value"].to_numpy(dtype=float), value, rtol=_VALUE_RTOL, atol=0)
-                     & _in_stock(frame)]
-        if rows.empty:
-            return None
-        order = rows.assign(_stock=rows["stock_qty"].fillna(np.iinfo(np.int64).max))
-        best = order.sort_values(["unit_price", "_stock", "part_id"], ascending=[True, False, True]).iloc[0]
-        return _row_dict(best.drop("_stock"))
+        stocked = frame[_in_stock(frame)]
+        best = (stocked.assign(_stock=stocked["stock_qty"].fillna(np.iinfo(np.int64).max))
+                .sort_values(["value", "unit_price", "_stock", "part_id"], ascending=[True, True, False, True])
+                .drop_duplicates("value").drop(columns="_stock").reset_index(drop=True))
+        wanted = np.asarray(values, dtype=float)
+        known = best["value"].to_numpy(dtype=float)
+        if known.size == 0:
+            return best.reindex(range(wanted.size))
+        i = np.clip(np.searchsorted(known, wanted), 1, max(known.size - 1, 1)) if known.size > 1 \
+            else np.zeros(wanted.size, dtype=int)
+        below = np.maximum(i - 1, 0)
+        nearer = np.where(np.abs(known[below] - wanted) <= np.abs(known[i] - wanted), below, i)
+        match = np.isclose(known[nearer], wanted, rtol=_VALUE_RTOL, atol=0)
+        return best.reindex(np.where(match, nearer, -1)).reset_index(drop=True)
 
     def summary(self) -> dict:
         """Counts, value ranges (SI), series present, transistor ids and stock totals."""

@@ -7,6 +7,8 @@ rating is never a silent pass. Arrays over candidates throughout.
 """
 from __future__ import annotations
 
+from typing import Iterable
+
 import numpy as np
 
 from optimizer.spec import Spec
@@ -98,3 +100,102 @@ def near_ratings(ratings: dict[str, np.ndarray], metrics: dict[str, np.ndarray],
         if np.any(fraction > NEAR_RATING):
             out[key] = fraction
     return out
+
+
+# --- desirability: the ranking among designs that meet every hard limit ---------------------
+#
+# score = weighted geometric mean of terms in (0, 1], each 1 at its ideal:
+#   gain        1 - 0.5 * |gain error| / tolerance            (0.5 at the tolerance edge)   weight 2
+#   margin      0.5 + 0.5 * min over set limits of margin/50 % (clipped to 0..1)            weight 1
+#   objective   per spec objective, ref/(ref + x) to minimise, x/(x + ref) to maximise,
+#               with ref the spec's own limit where it sets one (OBJECTIVE_REFERENCES)       weight 2 each
+#   parts       8 / (8 + part_count)                                                        weight 0.5
+#   reuse       4 / (4 + unique_values)                          weight 1 with prefer_reuse, else 0.25
+#   cost        1 / (1 + cost)   (cost in the catalog's currency)                            weight 0.5
+# Designs that miss a limit score -(total normalised violation) instead, so every feasible
+# design ranks above every infeasible one and, among infeasible ones, the nearest miss first.
+# The shortlist's Monte Carlo yield then multiplies the score (search.py).
+
+#: metric -> (spec limit whose value is the reference, fallback reference in SI units)
+OBJECTIVE_REFERENCES = {
+    "supply_current": ("supply_current_max", 1e-3), "swing_vpp": ("swing_min", None),
+    "noise_ein_v": ("noise_ein_max", 1e-6), "thd": ("thd_max", 0.01), "cost": (None, 1.0),
+    "part_count": (None, 8.0), "input_impedance": ("input_impedance_min", None),
+    "output_impedance": ("output_impedance_max", None), "gain_error_db": (None, None),
+}
+WEIGHT_GAIN, WEIGHT_MARGIN, WEIGHT_OBJECTIVE = 2.0, 1.0, 2.0
+WEIGHT_PARTS, WEIGHT_COST = 0.5, 0.5
+WEIGHT_REUSE, WEIGHT_REUSE_PREFERRED = 0.25, 1.0
+MARGIN_FULL = 0.5  # a 50 % margin to every limit counts as fully comfortable
+
+
+def _objective_reference(spec: Spec, metric: str) -> float:
+    limit_name, fallback = OBJECTIVE_REFERENCES[metric]
+    limit = getattr(spec.limits, limit_name) if limit_name else None
+    if limit is not None:
+        return float(limit)
+    if fallback is not None:
+        return fallback
+    return {"swing_vpp": 0.5 * spec.supply, "input_impedance": max(10.0 * spec.source_impedance, 1e4),
+            "output_impedance": max(0.1 * spec.load_impedance, 1.0),
+            "gain_error_db": spec.gain.tolerance_db}[metric]
+
+
+def limit_margins(spec: Spec, metrics: dict[str, np.ndarray]) -> np.ndarray:
+    """Smallest relative margin to any limit the spec sets (inf where it sets none)."""
+    n = np.asarray(metrics["gain"]).shape
+    margin = np.full(n, np.inf)
+    for limit_name, metric, sign in (("input_impedance_min", "input_impedance", 1),
+                                     ("output_impedance_max", "output_impedance", -1),
+                                     ("swing_min", "swing_vpp", 1), ("supply_current_max", "supply_current", -1),
+                                     ("thd_max", "thd", -1), ("noise_ein_max", "noise_ein_v", -1)):
+        limit = getattr(spec.limits, limit_name)
+        if limit is not None:
+            value = np.asarray(metrics[metric], dtype=float)
+            margin = np.minimum(margin, np.nan_to_num(sign * (value - limit) / limit, nan=0.0))
+    return margin
+
+
+def desirability(spec: Spec, metrics: dict[str, np.ndarray], violation: np.ndarray) -> np.ndarray:
+    """The documented score above: in (0, 1] where ``violation`` is 0, else -violation."""
+    gain_err = np.abs(np.asarray(metrics["gain_error_db"], dtype=float))
+    terms = [(1.0 - 0.5 * np.clip(gain_err / spec.gain.tolerance_db, 0.0, 1.0), WEIGHT_GAIN),
+             (0.5 + 0.5 * np.clip(limit_margins(spec, metrics) / MARGIN_FULL, 0.0, 1.0), WEIGHT_MARGIN),
+             (8.0 / (8.0 + np.asarray(metrics["part_count"], dtype=float)), WEIGHT_PARTS),
+             (4.0 / (4.0 + np.asarray(metrics["unique_values"], dtype=float)),
+              WEIGHT_REUSE_PREFERRED if spec.parts.prefer_reuse else WEIGHT_REUSE),
+             (1.0 / (1.0 + np.asarray(metrics["cost"], dtype=float)), WEIGHT_COST)]
+    for metric, direction in spec.objective_directions:
+        x = np.abs(np.nan_to_num(np.asarray(metrics[metric], dtype=float), nan=np.inf))
+        ref = _objective_reference(spec, metric)
+        d = ref / (ref + x) if direction == "minimise" else np.where(np.isfinite(x), x / (x + ref), 0.0)
+        terms.append((d, WEIGHT_OBJECTIVE))
+    weights = sum(w for _, w in terms)
+    with np.errstate(divide="ignore"):
+        log_score = sum(w * np.log(np.clip(d, 1e-12, 1.0)) for d, w in terms) / weights
+    return np.where(violation > 0, -violation, np.exp(log_score))
+
+
+def pareto_mask(values: np.ndarray, directions: Iterable[str]) -> np.ndarray:
+    """Non-dominated rows of ``values`` (points, objectives) under the given directions;
+    of identical points only the first is kept."""
+    sign = np.array([1.0 if d == "minimise" else -1.0 for d in directions])
+    v = np.asarray(values, dtype=float).reshape(len(values), -1) * sign
+    keep = np.zeros(len(v), dtype=bool)
+    if not len(v):
+        return keep
+    order = np.lexsort(v.T[::-1])  # by the first objective, ties by the next
+    if v.shape[1] == 1:
+        keep[order[0]] = True
+        return keep
+    if v.shape[1] == 2:  # one sweep: kept while the second objective strictly improves
+        second = v[order, 1]
+        best_before = np.minimum.accumulate(np.concatenate([[np.inf], second[:-1]]))
+        keep[order[second < best_before]] = True
+        return keep
+    front: list[np.ndarray] = []
+    for i in order:
+        if not any(np.all(f <= v[i]) for f in front):
+            keep[i] = True
+            front.append(v[i])
+    return keep

@@ -30,6 +30,13 @@ def _round_up(values: np.ndarray, allowed: np.ndarray) -> np.ndarray:
     return np.minimum(np.searchsorted(allowed, values * (1 - 1e-9)), allowed.size - 1)
 
 
+def _stacked_f_low(topology: Topology, variants: list[dict[str, np.ndarray]], device: Device,
+                   conditions: Conditions) -> np.ndarray:
+    """f_low of several variants of the same candidates in one vectorised call: shape (variants, n)."""
+    stacked = {r: np.concatenate([v[r] for v in variants]) for r in variants[0]}
+    return _f_low(topology, stacked, device, conditions).reshape(len(variants), -1)
+
+
 def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device: Device,
                     conditions: Conditions, allowed: np.ndarray,
                     f_low_target: float | None = None) -> dict[str, np.ndarray]:
@@ -37,34 +44,33 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
 
     ``resistors`` maps role -> array over candidates. The target defaults to the low
     edge of ``conditions.band``. Where even the largest values miss the target, the
-    largest are returned (the scoring then reports the low corner as violated).
+    largest are returned (the scoring then reports the low corner as violated). Few
+    batches of vectorised model calls: the corner probes, the common factors, one step-down per capacitor.
     """
     target = conditions.band[0] if f_low_target is None else f_low_target
     allowed = np.sort(np.asarray(allowed, dtype=float))
     size = np.broadcast(*resistors.values()).shape
+    resistors = {r: np.broadcast_to(np.asarray(v, dtype=float), size) for r, v in resistors.items()}
     large = {c: np.full(size, _LARGE_CAPACITANCE) for c in topology.capacitors}
 
-    corner_constant = {}
-    for cap in topology.capacitors:
-        constant = np.full(size, np.nan)
-        for probe_value in _PROBE_VALUES:  # until the probe's corner lies inside the sweep
-            probe = {**resistors, **large, cap: np.full(size, probe_value)}
-            f = _f_low(topology, probe, device, conditions)
-            inside = (f > 2.0 * SWEEP[0]) & (f < 0.5 * SWEEP[1]) & np.isnan(constant)
-            constant = np.where(inside, f * probe_value, constant)
-        corner_constant[cap] = np.nan_to_num(constant, nan=allowed[-1] * target)
+    probes = [(cap, value) for cap in topology.capacitors for value in _PROBE_VALUES]
+    f_probe = _stacked_f_low(topology, [{**resistors, **large, cap: np.full(size, value)} for cap, value in probes],
+                             device, conditions)
+    corner_constant = {c: np.full(size, np.nan) for c in topology.capacitors}
+    for (cap, value), f in zip(probes, f_probe):  # the first probe whose corner lies inside the sweep
+        inside = (f > 2.0 * SWEEP[0]) & (f < 0.5 * SWEEP[1]) & np.isnan(corner_constant[cap])
+        corner_constant[cap] = np.where(inside, f * value, corner_constant[cap])
+    corner_constant = {c: np.nan_to_num(k, nan=allowed[-1] * target) for c, k in corner_constant.items()}
 
-    best = {c: np.full(size, allowed.size - 1) for c in topology.capacitors}
-    found = np.zeros(size, dtype=bool)
-    for m in _SCALE_GRID:
-        index = {c: _round_up(m * corner_constant[c] / target, allowed) for c in topology.capacitors}
-        trial = {**resistors, **{c: allowed[i] for c, i in index.items()}}
-        meets = (_f_low(topology, trial, device, conditions) <= target) & ~found
-        for c in topology.capacitors:
-            best[c] = np.where(meets, index[c], best[c])
-        found |= meets
-        if found.all():
-            break
+    scaled = [{c: _round_up(m * corner_constant[c] / target, allowed) for c in topology.capacitors}
+              for m in _SCALE_GRID]
+    f_scaled = _stacked_f_low(topology, [{**resistors, **{c: allowed[i] for c, i in idx.items()}} for idx in scaled],
+                              device, conditions)
+    meets = f_scaled <= target  # (scale factors, n)
+    found = meets.any(axis=0)
+    first = np.where(found, np.argmax(meets, axis=0), 0)
+    best = {c: np.where(found, np.stack([idx[c] for idx in scaled])[first, np.arange(first.size)], allowed.size - 1)
+            for c in topology.capacitors}
 
     for cap in topology.capacitors:  # one step down each, where the target still holds
         lower = np.maximum(best[cap] - 1, 0)

@@ -1,0 +1,168 @@
+"""NeighbourSampler: an Optuna sampler for ordered part-value indices.
+
+Preferred values are ordered, so the designs next to a good design are its series
+neighbours: one resistor a step or two up or down the series. This sampler keeps the best
+designs found so far (the elite) and proposes each new trial as a neighbour of one of
+them, which suits the search far better than treating indices as unordered categories or
+sampling them independently:
+
+- parents: half the time one of the best designs by the search's score (feasible before
+  infeasible, then by score, infeasible ones by their summed violation), half the time a
+  random point of the current Pareto front over the spec's objectives, so both the single
+  best design and the whole front are refined;
+- moves: one to three parameters, each stepped by +-1 (most often), +-2, or up to +-6
+  places along its ordered values; now and then a crossover with another elite design of
+  the same topology, a switch of topology or device (taking the best design known there),
+  or a fresh random design (the global moves that stop the search settling too early);
+- designs already proposed are not proposed again while an untried neighbour is found.
+
+Before any design is finished it samples at random; enqueued seeds are taken as given.
+Seeded, so a search in one process is reproducible. Optuna's interface: one class, the
+plan of each trial made in ``before_trial`` and handed out in ``sample_independent``.
+"""
+from __future__ import annotations
+
+from typing import Any, Callable
+
+import numpy as np
+from optuna.distributions import BaseDistribution, CategoricalDistribution, IntDistribution
+from optuna.samplers import BaseSampler, RandomSampler
+from optuna.study import Study
+from optuna.trial import FrozenTrial, TrialState
+
+from optimizer.scoring import pareto_mask
+
+ELITE_SIZE = 16
+PARENT_FROM_FRONT = 0.5
+P_RANDOM, P_SWITCH, P_CROSSOVER = 0.05, 0.08, 0.15
+MOVE_COUNTS, MOVE_COUNT_P = (1, 2, 3), (0.5, 0.3, 0.2)
+STEPS, STEP_P = (1, 2, 3, 4, 5, 6), (0.55, 0.25, 0.08, 0.05, 0.04, 0.03)
+RETRIES = 12
+
+
+class NeighbourSampler(BaseSampler):
+    """Propose neighbours (along ordered indices) of the best and the front designs.
+
+    ``rank_key(trial)`` orders finished trials best first; ``group_of(params)`` names the
+    conditional group of a parameter set (the topology), ``group_params(group)`` the
+    parameter names of that group with their distributions.
+    """
+
+    def __init__(self, rank_key: Callable[[FrozenTrial], tuple], directions: list[str],
+                 group_params: Callable[[dict[str, Any]], dict[str, BaseDistribution]],
+                 seed: int | None = None) -> None:
+        self._rng = np.random.default_rng(seed)
+        self._random = RandomSampler(seed=seed)
+        self._rank_key = rank_key
+        self._directions = directions
+        self._group_params = group_params
+        self._plans: dict[int, dict[str, Any]] = {}
+        self._seen: set[tuple] = set()
+        self._cache_count = -1
+        self._elite: list[FrozenTrial] = []
+        self._front: list[FrozenTrial] = []
+
+    # ---- Optuna's interface --------------------------------------------------------------
+    def infer_relative_search_space(self, study: Study, trial: FrozenTrial) -> dict[str, BaseDistribution]:
+        return {}
+
+    def sample_relative(self, study: Study, trial: FrozenTrial,
+                        search_space: dict[str, BaseDistribution]) -> dict[str, Any]:
+        return {}
+
+    def before_trial(self, study: Study, trial: FrozenTrial) -> None:
+        if "fixed_params" in trial.system_attrs:
+            self._seen.add(self._key(trial.system_attrs["fixed_params"]))
+            return
+        self._refresh(study)
+        if self._elite:
+            self._plans[trial._trial_id] = self._propose()
+
+    def sample_independent(self, study: Study, trial: FrozenTrial, param_name: str,
+                           param_distribution: BaseDistribution) -> Any:
+        plan = self._plans.get(trial._trial_id, {})
+        if param_name in plan and _fits(param_distribution, plan[param_name]):
+            return plan[param_name]
+        return self._random.sample_independent(study, trial, param_name, param_distribution)
+
+    def after_trial(self, study: Study, trial: FrozenTrial, state: TrialState,
+                    values: list[float] | None) -> None:
+        self._plans.pop(trial._trial_id, None)
+        self._seen.add(self._key(trial.params))
+
+    # ---- the elite and the front ---------------------------------------------------------
+    def _refresh(self, study: Study) -> None:
+        done = study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
+        if len(done) == self._cache_count:
+            return
+        self._cache_count = len(done)
+        for t in done:
+            self._seen.add(self._key(t.params))
+        ranked = sorted(done, key=self._rank_key)
+        self._elite = ranked[:ELITE_SIZE]
+        feasible = [t for t in done if self._rank_key(t)[0] == 0]
+        keep = pareto_mask(np.array([t.values for t in feasible]), self._directions) if feasible else []
+        self._front = [t for t, k in zip(feasible, keep) if k]
+
+    def _propose(self) -> dict[str, Any]:
+        if self._rng.random() < P_RANDOM:
+            return {}
+        for _ in range(RETRIES):
+            plan = self._mutate(dict(self._parent().params))
+            if self._key(plan) not in self._seen:
+                self._seen.add(self._key(plan))
+                return plan
+        return plan
+
+    def _parent(self) -> FrozenTrial:
+        if self._front and self._rng.random() < PARENT_FROM_FRONT:
+            return self._front[self._rng.integers(len(self._front))]
+        # a tournament of two among the elite, biased to the better
+        i, j = self._rng.integers(len(self._elite), size=2)
+        return self._elite[min(i, j)]
+
+    def _mutate(self, params: dict[str, Any]) -> dict[str, Any]:
+        space = self._group_params(params)
+        r = self._rng.random()
+        if r < P_SWITCH:
+            switchable = [n for n, d in space.items() if isinstance(d, CategoricalDistribution) and len(d.choices) > 1]
+            if switchable:
+                name = switchable[self._rng.integers(len(switchable))]
+                choices = [c for c in space[name].choices if c != params[name]]
+                params[name] = choices[self._rng.integers(len(choices))]
+                same = [t for t in self._elite_all() if t.params.get(name) == params[name]]
+                if same:  # carry over the best design known with that choice
+                    params = {**dict(same[0].params), name: params[name]}
+                return params
+        elif r < P_SWITCH + P_CROSSOVER:
+            mates = [t for t in self._elite if self._group_params(t.params).keys() == space.keys()]
+            if len(mates) > 1:
+                mate = mates[self._rng.integers(len(mates))]
+                for name in space:
+                    if self._rng.random() < 0.5 and name in mate.params:
+                        params[name] = mate.params[name]
+                return params
+        steppable = [n for n, d in space.items() if isinstance(d, IntDistribution) and d.high > d.low]
+        if not steppable:
+            return params
+        count = min(int(self._rng.choice(MOVE_COUNTS, p=MOVE_COUNT_P)), len(steppable))
+        for name in self._rng.choice(steppable, size=count, replace=False):
+            d = space[name]
+            step = int(self._rng.choice(STEPS, p=STEP_P)) * (1 if self._rng.random() < 0.5 else -1)
+            params[name] = int(np.clip(params.get(name, d.low) + step, d.low, d.high))
+        return params
+
+    def _elite_all(self) -> list[FrozenTrial]:
+        return self._elite + self._front
+
+    @staticmethod
+    def _key(params: dict[str, Any]) -> tuple:
+        return tuple(sorted(params.items()))
+
+
+def _fits(distribution: BaseDistribution, value: Any) -> bool:
+    if isinstance(distribution, IntDistribution):
+        return isinstance(value, (int, np.integer)) and distribution.low <= value <= distribution.high
+    if isinstance(distribution, CategoricalDistribution):
+        return value in distribution.choices
+    return False

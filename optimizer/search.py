@@ -1,0 +1,623 @@
+"""The search: a spec and a catalog become an Optuna study over stock values and topologies.
+
+Flow: :class:`SearchSpace` (ordered indices into each resistor's allowed values, the
+topology, the device) -> a batch of trials asked from Optuna -> one vectorised evaluation
+per (topology, device) group (:func:`evaluate_designs`: capacitors sized after the
+resistors, every metric, hard limits and ratings as normalised violations, the
+desirability score) -> told back with the spec's objectives and one constraint (the summed
+violation, 0 = feasible) -> ranking and Pareto front.
+
+A stored study is the whole record: the spec, status and budget are study user attrs and
+every design's metrics, violations and score are the trial's user attr ``record``, so the
+CLI, the REST service and remote workers read the same storage. Reproducible with a seed:
+the same spec, seed and budget give the same trials in a single process.
+"""
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import time
+import uuid
+from dataclasses import dataclass, field
+from datetime import datetime, timezone
+from typing import Callable, Iterable
+
+import numpy as np
+import optuna
+import pandas as pd
+from optuna.storages import BaseStorage
+from optuna.trial import TrialState
+
+from optimizer import scoring
+from optimizer.scoring import pareto_mask
+from optimizer.catalog import Catalog, load_catalog
+from optimizer.devices import Device
+from optimizer.errors import InputError
+from optimizer.sampler import NeighbourSampler
+from optimizer.sizing import size_capacitors
+from optimizer.spec import Spec, check_against_catalog, parse_spec, spec_to_dict
+from optimizer.storage import open_storage
+from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
+from optimizer.topologies import get_topology
+from optimizer.topologies.base import METRICS
+from optimizer.units import format_value
+
+optuna.logging.set_verbosity(optuna.logging.WARNING)
+
+STATUSES = ("queued", "running", "done", "failed", "cancelled")
+SHORTLIST_SAMPLES = 500  # Monte Carlo builds for each shortlisted design's yield
+SHORTLIST_SIZE = 20  # designs given the full assessment (worst case, yield) when a search finishes
+FRONT_LIMIT = 40  # front points that carry a yield figure
+BAD_OBJECTIVE = 1e12  # stand-in for a metric the model cannot give (e.g. a stage that is not active)
+ABSENT_RATING = 1e30  # W: the rating of a part left out (never binds)
+ABSENT = -1  # index of an optional part left out (feedback_ce without an emitter resistor)
+
+__all__ = ["SearchSpace", "SearchResult", "open_storage", "create_search", "run_search", "load_search",
+           "search_status", "list_searches", "cancel_search", "delete_search", "extend_search", "search",
+           "evaluate_designs", "evaluate_group", "rank_records", "pareto_mask"]
+
+
+# ----------------------------------------------------------------------------- search space
+
+@dataclass(frozen=True)
+class PartTable:
+    """Allowed values of one kind of part (sorted, SI) with the catalog row chosen for each."""
+
+    values: np.ndarray
+    part_id: np.ndarray  # object array of str
+    tolerance: np.ndarray  # fraction
+    rating: np.ndarray  # W for resistors, V for capacitors
+    unit_price: np.ndarray
+
+    @classmethod
+    def from_catalog(cls, catalog: Catalog, kind: str, values: np.ndarray) -> "PartTable":
+        rows = catalog.parts_for(kind, values)
+        rating_key = "power_rating" if kind == "resistor" else "voltage_rating"
+        return cls(values=np.asarray(values, dtype=float), part_id=rows["part_id"].to_numpy(dtype=object),
+                   tolerance=rows["tolerance"].to_numpy(dtype=float),
+                   rating=rows[rating_key].to_numpy(dtype=float),
+                   unit_price=rows["unit_price"].to_numpy(dtype=float))
+
+    def index_of(self, values: np.ndarray) -> np.ndarray:
+        """Index of the nearest allowed value (by ratio) for each of ``values``."""
+        v = np.asarray(values, dtype=float)
+        i = np.clip(np.searchsorted(self.values, v), 1, self.values.size - 1)
+        lower_closer = np.abs(np.log(v / self.values[i - 1])) <= np.abs(np.log(self.values[i] / v))
+        return np.where(lower_closer, i - 1, i) if self.values.size > 1 else np.zeros_like(i)
+
+
+@dataclass(frozen=True)
+class Design:
+    """One point of the space: topology, device id and resistor indices by role (ABSENT = left out)."""
+
+    topology: str
+    device: str
+    resistors: tuple[tuple[str, int], ...]
+
+
+@dataclass
+class SearchSpace:
+    """What a spec may choose from in a catalog, and how a trial picks from it."""
+
+    spec: Spec
+    catalog: Catalog
+    resistors: PartTable
+    capacitors: PartTable
+    devices: dict[str, Device]
+    device_price: dict[str, float]
+    topologies: tuple[str, ...]
+
+    @classmethod
+    def build(cls, spec: Spec, catalog: Catalog | None = None) -> "SearchSpace":
+        """The space of ``spec`` in its catalog (``spec.parts.catalog`` by default, and then
+        cached per spec); InputError if it is empty."""
+        if catalog is not None:
+            return cls._build(spec, catalog)
+        key = json.dumps(spec_to_dict(spec), sort_keys=True)
+        if key not in _SPACES:
+            _SPACES[key] = cls._build(spec, load_catalog(spec.parts.catalog))
+        return _SPACES[key]
+
+    @classmethod
+    def _build(cls, spec: Spec, catalog: Catalog) -> "SearchSpace":
+        check_against_catalog(spec, catalog)
+        p = spec.parts
+        r_values = catalog.resistor_values(p.resistor_series, *p.resistor_range, in_stock_only=p.in_stock_only)
+        c_values = catalog.capacitor_values(p.capacitor_series, *p.capacitor_range, in_stock_only=p.in_stock_only)
+        stock_note = " in stock" if p.in_stock_only else ""
+        if r_values.size < 2:
+            raise InputError.single("parts.resistor_range", list(p.resistor_range),
+                                    f"a range holding at least two {p.resistor_series} resistors{stock_note} "
+                                    f"in catalog {catalog.name!r}", title="empty search space")
+        if c_values.size < 1:
+            raise InputError.single("parts.capacitor_range", list(p.capacitor_range),
+                                    f"a range holding at least one {p.capacitor_series} capacitor{stock_note} "
+                                    f"in catalog {catalog.name!r}", title="empty search space")
+        devices = {d: Device.from_row(catalog.transistor(d)) for d in spec.devices}
+        prices = {d: float(catalog.transistor(d).get("unit_price") or 0.0) for d in spec.devices}
+        return cls(spec, catalog, PartTable.from_catalog(catalog, "resistor", r_values),
+                   PartTable.from_catalog(catalog, "capacitor", c_values), devices, prices, tuple(spec.topologies))
+
+    # ---- trials <-> designs ----------------------------------------------------------
+    def suggest(self, trial: optuna.Trial) -> Design:
+        """Ask ``trial`` for a design (parameters: topology, device, <topology>.<role> indices)."""
+        topology = (trial.suggest_categorical("topology", list(self.topologies)) if len(self.topologies) > 1
+                    else self.topologies[0])
+        device = (trial.suggest_categorical("device", list(self.devices)) if len(self.devices) > 1
+                  else next(iter(self.devices)))
+        model = get_topology(topology)
+        top = self.resistors.values.size - 1
+        chosen = tuple((role, trial.suggest_int(f"{topology}.{role}",
+                                                ABSENT if role in model.optional_parts else 0, top))
+                       for role in model.resistors)
+        return Design(topology, device, chosen)
+
+    def distributions(self, params: dict[str, object]) -> dict[str, optuna.distributions.BaseDistribution]:
+        """The parameters (with their distributions) of the topology that ``params`` chose."""
+        topology = str(params.get("topology", self.topologies[0]))
+        model = get_topology(topology)
+        top = self.resistors.values.size - 1
+        out: dict[str, optuna.distributions.BaseDistribution] = {}
+        if len(self.topologies) > 1:
+            out["topology"] = optuna.distributions.CategoricalDistribution(list(self.topologies))
+        if len(self.devices) > 1:
+            out["device"] = optuna.distributions.CategoricalDistribution(list(self.devices))
+        for role in model.resistors:
+            out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(
+                ABSENT if role in model.optional_parts else 0, top)
+        return out
+
+    def params_of(self, design: Design) -> dict[str, object]:
+        """Trial parameters that reproduce ``design`` (for enqueueing seeds)."""
+        params: dict[str, object] = {f"{design.topology}.{role}": int(i) for role, i in design.resistors}
+        if len(self.topologies) > 1:
+            params["topology"] = design.topology
+        if len(self.devices) > 1:
+            params["device"] = design.device
+        return params
+
+    def seeds(self) -> list[Design]:
+        """The hand method's designs for every topology and device, rounded both ways to the
+        series (its series neighbours), as search seeds."""
+        out: list[Design] = []
+        for topology in self.topologies:
+            model = get_topology(topology)
+            for device_id, device in self.devices.items():
+                try:
+                    hand = hand_design(topology, hand_requirements(self.spec, device))
+                except (InputError, ValueError, ZeroDivisionError):
+                    continue  # the hand method has no answer for this spec: no seed
+                resistors = {r: v for r, v in hand.items() if r in model.resistors}
+                if not all(np.isfinite(v) and v > 0 for v in resistors.values()):
+                    continue
+                for rounded in rounded_designs(resistors, self.spec.parts.resistor_series,
+                                               self.spec.parts.capacitor_series, limit=16):
+                    idx = self.resistors.index_of(np.array([rounded[r] for r in model.resistors]))
+                    out.append(Design(topology, device_id, tuple(zip(model.resistors, (int(i) for i in idx)))))
+        return list(dict.fromkeys(out))
+
+
+_SPACES: dict[str, SearchSpace] = {}
+
+
+# ----------------------------------------------------------------------------- evaluation
+
+def _unique_values(values: np.ndarray) -> np.ndarray:
+    """Distinct non-zero values per row of ``values`` (candidates, parts)."""
+    s = np.sort(np.where(values > 0, values, np.nan), axis=1)
+    distinct = np.ones_like(s, dtype=bool)
+    distinct[:, 1:] = ~np.isclose(s[:, 1:], s[:, :-1], rtol=1e-9)
+    return (distinct & np.isfinite(s)).sum(axis=1).astype(float)
+
+
+FULL_ONLY_OPTIMISTIC = {"f_low": 0.0, "f_high": np.inf, "noise_ein_v": 0.0, "noise_figure_db": 0.0}
+
+
+def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index: dict[str, np.ndarray],
+                   *, full: bool = True) -> dict:
+    """Metrics, violations, score and objective values of designs of one topology and device,
+    given as resistor indices by role (arrays; ABSENT = optional part left out).
+
+    ``full=False`` is the optimistic bound the exhaustive oracle prunes with: no capacitor
+    sizing (``c_in`` the smallest allowed value, which maximises the input impedance seen
+    through it, the others the largest), the limits that need the full model counted as
+    met, the full-model metrics at their ideal, capacitors at the cheapest price adding no
+    new value. Every figure it gives is at least as good as the sized design's."""
+    spec, topology, device = space.spec, get_topology(topology_name), space.devices[device_id]
+    rt, ct = space.resistors, space.capacitors
+    conditions = scoring.conditions_from_spec(spec)
+    present = {r: i != ABSENT for r, i in index.items()}
+    resistors = {r: np.where(present[r], rt.values[np.maximum(i, 0)], 0.0) for r, i in index.items()}
+    n = next(iter(resistors.values())).size
+    if full:
+        caps = size_capacitors(topology, resistors, device, conditions, ct.values)
+    else:
+        caps = {c: np.full(n, ct.values[0] if c == "c_in" else ct.values[-1]) for c in topology.capacitors}
+    cap_index = {c: ct.index_of(v) for c, v in caps.items()}
+    result = topology.evaluate({**resistors, **caps}, device, conditions, full=full)
+
+    rating_limits: dict[str, np.ndarray | float] = {
+        f"p_{r}": np.where(present[r], rt.rating[np.maximum(i, 0)], ABSENT_RATING) for r, i in index.items()}
+    rating_limits.update({f"v_{c}": ct.rating[i] if full else ABSENT_RATING for c, i in cap_index.items()})
+    rating_limits.update({"vce_max": device.vceo_max, "q_power": device.p_max})
+    metrics = {k: np.asarray(v, dtype=float) for k, v in result.metrics.items()}
+    if not full:
+        metrics.update({k: np.full(n, v) for k, v in FULL_ONLY_OPTIMISTIC.items()})
+    violations = scoring.limit_violations(spec, metrics, result.ratings, rating_limits,
+                                          result.operating_point["active"], core_only=not full)
+    total = np.nan_to_num(scoring.total_violation(violations), nan=1e6)
+
+    metrics["gain_error_db"] = scoring.gain_error_db(spec, metrics["gain"])
+    cap_prices = [ct.unit_price[i] for i in cap_index.values()] if full else \
+        [np.full(n, np.nanmin(ct.unit_price))] * len(caps)
+    metrics["cost"] = (sum(np.where(present[r], rt.unit_price[np.maximum(i, 0)], 0.0) for r, i in index.items())
+                       + sum(cap_prices) + topology.transistors * space.device_price[device_id])
+    counted = list(resistors.values()) + (list(caps.values()) if full else [])
+    metrics["unique_values"] = _unique_values(np.stack(counted, axis=1))
+    score = scoring.desirability(spec, metrics, total)
+    active = np.asarray(result.operating_point["active"], dtype=bool)
+    objective_values = []
+    for metric, direction in spec.objective_directions:
+        v = np.abs(metrics[metric]) if metric == "gain_error_db" else metrics[metric]
+        bad = BAD_OBJECTIVE if direction == "minimise" else -BAD_OBJECTIVE
+        objective_values.append(np.where(np.isfinite(v) & active, v, bad))
+    return {"n": n, "resistors": resistors, "caps": caps, "metrics": metrics, "violations": violations,
+            "total": total, "binding": scoring.binding_limit(violations), "score": score,
+            "objective_values": objective_values}
+
+
+def _finite(x: float) -> float | None:
+    return float(x) if math.isfinite(x) else None
+
+
+def evaluate_designs(space: SearchSpace, designs: list[Design]) -> list[dict]:
+    """Evaluate ``designs`` in one vectorised call per (topology, device) group.
+
+    Returns one JSON-ready record per design: topology, device, parts (role -> value in ohm
+    or F), metrics (DESIGN.md names, SI; None where the model has no figure), violations
+    (limit -> normalised excess, only those > 0), total_violation, binding, feasible, score,
+    objectives (the spec's objective values, finite)."""
+    out: list[dict | None] = [None] * len(designs)
+    groups: dict[tuple[str, str], list[int]] = {}
+    for k, d in enumerate(designs):
+        groups.setdefault((d.topology, d.device), []).append(k)
+    for (topology, device_id), members in groups.items():
+        roles = [r for r, _ in designs[members[0]].resistors]
+        index = {r: np.array([dict(designs[k].resistors)[r] for k in members]) for r in roles}
+        g = evaluate_group(space, topology, device_id, index)
+        for j, k in enumerate(members):
+            metrics = {m: _finite(v[j]) for m, v in g["metrics"].items()}
+            out[k] = {
+                "topology": topology, "device": device_id,
+                "parts": {**{r: float(v[j]) for r, v in g["resistors"].items()},
+                          **{c: float(v[j]) for c, v in g["caps"].items()}},
+                "metrics": metrics,
+                "violations": {name: float(v[j]) for name, v in g["violations"].items() if v[j] > 0},
+                "total_violation": float(g["total"][j]), "binding": str(g["binding"][j]),
+                "feasible": bool(g["total"][j] == 0), "score": float(g["score"][j]),
+                "objectives": [float(v[j]) for v in g["objective_values"]]}
+    return out  # type: ignore[return-value]
+
+
+# ----------------------------------------------------------------------------- ranking
+
+def _design_key(record: dict) -> tuple:
+    return (record["topology"], record["device"], tuple(sorted(record["parts"].items())))
+
+
+def rank_records(records: list[dict]) -> list[dict]:
+    """Distinct designs ranked: feasible by score (high first), then infeasible by total
+    violation (small first); duplicates collapsed."""
+    unique = list({_design_key(r): r for r in records}.values())
+    return sorted(unique, key=lambda r: (not r["feasible"], -r["score"] if r["feasible"] else r["total_violation"]))
+
+
+def _label(role: str, value: float) -> str:
+    return format_value(value, "F" if role.startswith("c_") else "")
+
+
+def candidate_from_record(space: SearchSpace, record: dict) -> dict:
+    """The candidate JSON of DESIGN.md for a trial record (nominal figures; no spread)."""
+    spec = space.spec
+    parts = {}
+    for role, value in record["parts"].items():
+        if value <= 0:
+            continue
+        table = space.capacitors if role.startswith("c_") else space.resistors
+        i = int(table.index_of(np.array([value]))[0])
+        parts[role] = {"value": value, "label": _label(role, value), "part_id": table.part_id[i]}
+    device = space.devices[record["device"]]
+    return {"topology": record["topology"], "feasible": record["feasible"], "score": record["score"],
+            "binding": record["binding"],
+            "conditions": {"supply": spec.supply, "source_impedance": spec.source_impedance,
+                           "load_impedance": spec.load_impedance, "band": list(spec.band),
+                           "temperature": list(spec.temperature)},
+            "parts": parts,
+            "transistor": {"id": device.id, "polarity": device.polarity, "hfe_min": device.hfe_min,
+                           "hfe_max": device.hfe_max, "model": device.spice_model()},
+            "metrics": dict(record["metrics"]), "violations": dict(record["violations"]),
+            "trial": record.get("trial")}
+
+
+def _shortlist_candidate(space: SearchSpace, record: dict, samples: int) -> dict:
+    """The full assessment (worst case, yield, ratings, cautions) of a ranked design."""
+    from optimizer.candidates import assess  # the single place a design is judged in full
+
+    full = assess(space.spec, space.catalog, record["topology"], dict(record["parts"]), record["device"],
+                  samples=samples)
+    full["metrics"].update({k: record["metrics"][k] for k in ("cost", "unique_values") if k in record["metrics"]})
+    full.update(score=record["score"] * (full["metrics"]["yield"] if record["feasible"] else 1.0),
+                nominal_score=record["score"], binding=record["binding"], trial=record.get("trial"))
+    return full
+
+
+# ----------------------------------------------------------------------------- studies
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+def _rank_key(trial: optuna.trial.FrozenTrial) -> tuple[int, float]:
+    """Best first: feasible by score, then infeasible by summed violation."""
+    record = trial.user_attrs.get("record")
+    if not record:
+        return (2, 0.0)
+    return (0, -record["score"]) if record["feasible"] else (1, record["total_violation"])
+
+
+def _sampler(space: SearchSpace, seed_offset: int = 0) -> optuna.samplers.BaseSampler:
+    """Neighbour moves along the ordered indices from the best and the front designs."""
+    return NeighbourSampler(_rank_key, [d for _, d in space.spec.objective_directions], space.distributions,
+                            seed=space.spec.search.seed + seed_offset)
+
+
+def _load(storage: BaseStorage, search_id: str) -> tuple[optuna.Study, Spec]:
+    try:
+        study = optuna.load_study(study_name=search_id, storage=storage, sampler=optuna.samplers.RandomSampler())
+    except KeyError:
+        raise InputError.single("search", search_id, "the id of an existing search",
+                                title="unknown search") from None
+    return study, parse_spec(study.user_attrs["spec"])
+
+
+def create_search(spec: Spec, storage: BaseStorage, *, search_id: str | None = None,
+                  catalog: Catalog | None = None) -> str:
+    """Create the study for ``spec`` (status 'queued'), seeds enqueued; returns its id.
+    The space is built first, so a spec that does not fit its catalog stores nothing."""
+    space = SearchSpace.build(spec, catalog)
+    search_id = search_id or f"s-{uuid.uuid4().hex[:12]}"
+    directions = ["minimize" if d == "minimise" else "maximize" for _, d in spec.objective_directions]
+    study = optuna.create_study(study_name=search_id, storage=storage, directions=directions)
+    for key, value in (("spec", spec_to_dict(spec)), ("budget", spec.search.trials), ("status", "queued"),
+                       ("created", _now()), ("objectives", [list(o) for o in spec.objective_directions])):
+        study.set_user_attr(key, value)
+    for design in space.seeds()[: spec.search.trials]:
+        study.enqueue_trial(space.params_of(design), skip_if_exists=True)
+    return search_id
+
+
+def _counts(study: optuna.Study) -> tuple[int, int]:
+    """(finished, running) trials; failed ones do not count (they are retried)."""
+    states = [t.state for t in study.get_trials(deepcopy=False)]
+    return states.count(TrialState.COMPLETE), states.count(TrialState.RUNNING)
+
+
+def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[], bool] | None = None,
+               progress: Callable[[int, int], None] | None = None, max_batches: int | None = None,
+               seed_offset: int = 0, catalog: Catalog | None = None) -> None:
+    """Run batches (ask, evaluate in one vectorised call, tell) until the budget is met, the
+    search is cancelled or ``should_stop()`` is true. Several processes may share a search:
+    each asks at most the budget left, so it is overshot by less than one batch per runner."""
+    study, spec = _load(storage, search_id)
+    space = SearchSpace.build(spec, catalog)
+    study.sampler = _sampler(space, seed_offset)
+    budget = int(study.user_attrs["budget"])
+    if study.user_attrs.get("status") in ("queued", "failed"):
+        study.set_user_attr("status", "running")
+        study.set_user_attr("started", time.time())
+    batches = 0
+    known: dict[Design, dict] = {}  # designs this runner has evaluated (samplers revisit them)
+    while True:
+        if study.user_attrs.get("status") == "cancelled" or (should_stop and should_stop()):
+            return
+        finished, running = _counts(study)
+        if progress:
+            progress(finished, budget)
+        wanted = min(spec.search.batch_size, budget - finished - running)
+        if wanted <= 0 or (max_batches is not None and batches >= max_batches):
+            break
+        trials = [study.ask() for _ in range(wanted)]
+        designs = [space.suggest(t) for t in trials]
+        try:
+            fresh = list(dict.fromkeys(d for d in designs if d not in known))
+            known.update(zip(fresh, evaluate_designs(space, fresh)))
+            records = [known[d] for d in designs]
+        except Exception:
+            for t in trials:
+                study.tell(t, state=TrialState.FAIL)
+            study.set_user_attr("status", "failed")
+            raise
+        for t, record in zip(trials, records):
+            t.set_user_attr("record", record)
+            t.set_constraint("violation", record["total_violation"])
+            study.tell(t, record["objectives"])
+        batches += 1
+    finished, running = _counts(study)
+    if finished >= budget and running == 0 and study.user_attrs.get("status") == "running":
+        _finish(study, space)
+
+
+def _records(study: optuna.Study) -> list[dict]:
+    out = []
+    for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
+        record = t.user_attrs.get("record")
+        if record:
+            out.append({**record, "trial": t.number})
+    return out
+
+
+def _front(space: SearchSpace, ranked: list[dict]) -> list[dict]:
+    feasible = [r for r in ranked if r["feasible"]]
+    if not feasible:
+        return []
+    directions = [d for _, d in space.spec.objective_directions]
+    mask = pareto_mask(np.array([r["objectives"] for r in feasible]), directions)
+    points = [r for r, keep in zip(feasible, mask) if keep]
+    return sorted(points, key=lambda r: r["objectives"][0])
+
+
+def _summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int) -> dict:
+    ranked = rank_records(_records(study))
+    shortlist = [_shortlist_candidate(space, r, samples) for r in ranked[:top]]
+    order = sorted(range(len(shortlist)), key=lambda k: (not shortlist[k]["feasible"],
+                                                        -shortlist[k]["score"] if shortlist[k]["feasible"]
+                                                        else ranked[k]["total_violation"]))
+    candidates = [shortlist[k] for k in order] + [candidate_from_record(space, r) for r in ranked[top:]]
+    for rank, c in enumerate(candidates, 1):
+        c["rank"] = rank
+    front = []
+    for k, r in enumerate(_front(space, ranked)):
+        c = _shortlist_candidate(space, r, samples) if k < FRONT_LIMIT else candidate_from_record(space, r)
+        c["objectives"] = r["objectives"]
+        front.append(c)
+    return {"candidates": candidates, "front": front, "evaluated": len(ranked)}
+
+
+def _finish(study: optuna.Study, space: SearchSpace) -> None:
+    summary = _summarise(space, study, SHORTLIST_SIZE, SHORTLIST_SAMPLES)
+    study.set_user_attr("ranking", {"candidates": summary["candidates"][:SHORTLIST_SIZE], "front": summary["front"]})
+    study.set_user_attr("finished", _now())
+    study.set_user_attr("elapsed", time.time() - float(study.user_attrs.get("started", time.time())))
+    study.set_user_attr("status", "done")
+
+
+# ----------------------------------------------------------------------------- results
+
+@dataclass
+class SearchResult:
+    """A search's ranked candidates (rank 1 first), Pareto front, status and the study."""
+
+    id: str
+    spec: Spec
+    study: optuna.Study
+    candidates: list[dict]
+    front: list[dict]
+    status: dict = field(default_factory=dict)
+
+    def candidate(self, rank: int) -> dict:
+        """The candidate at ``rank`` (1 = best); InputError if there is none."""
+        if not isinstance(rank, int) or not 1 <= rank <= len(self.candidates):
+            raise InputError.single("rank", rank, f"a rank from 1 to {len(self.candidates)}",
+                                    title="no such candidate")
+        return self.candidates[rank - 1]
+
+    def dataframe(self) -> pd.DataFrame:
+        """One row per ranked candidate: rank, topology, device, part values (SI), metrics."""
+        rows = []
+        for c in self.candidates:
+            row = {"rank": c["rank"], "topology": c["topology"], "device": c["transistor"]["id"],
+                   "feasible": c["feasible"], "score": c["score"], "binding": c.get("binding", "")}
+            row.update({role: p["value"] for role, p in c["parts"].items()})
+            row.update(c["metrics"])
+            rows.append(row)
+        return pd.DataFrame(rows)
+
+
+def search_status(storage: BaseStorage, search_id: str) -> dict:
+    """Status, progress and best so far of a search (JSON-ready)."""
+    study, spec = _load(storage, search_id)
+    attrs = study.user_attrs
+    finished, running = _counts(study)
+    started = attrs.get("started")
+    elapsed = attrs.get("elapsed") if attrs.get("status") == "done" else (time.time() - started if started else 0.0)
+    best = None
+    if attrs.get("ranking"):
+        best = attrs["ranking"]["candidates"][0] if attrs["ranking"]["candidates"] else None
+    else:
+        ranked = rank_records(_records(study))
+        if ranked:
+            best = candidate_from_record(SearchSpace.build(spec), ranked[0])
+            best["rank"] = 1
+    return {"id": search_id, "name": spec.name, "status": attrs.get("status", "queued"),
+            "trials_done": finished, "trials_running": running, "budget": int(attrs["budget"]),
+            "elapsed": float(elapsed or 0.0), "created": attrs.get("created"), "best": best}
+
+
+def load_search(storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SIZE,
+                samples: int = SHORTLIST_SAMPLES) -> SearchResult:
+    """The ranked candidates and front of a stored search (finished or not)."""
+    study, spec = _load(storage, search_id)
+    space = SearchSpace.build(spec)
+    ranking = study.user_attrs.get("ranking")
+    if ranking and top <= len(ranking["candidates"]):
+        summary = {"candidates": list(ranking["candidates"]), "front": ranking["front"]}
+        ranked = rank_records(_records(study))
+        tail = [candidate_from_record(space, r) for r in ranked if _design_key(r) not in
+                {(c["topology"], c["transistor"]["id"], tuple(sorted((k, v["value"]) for k, v in c["parts"].items())))
+                 for c in summary["candidates"]}]
+        for rank, c in enumerate(tail, len(summary["candidates"]) + 1):
+            c["rank"] = rank
+        summary["candidates"] += tail
+    else:
+        summary = _summarise(space, study, top, samples)
+    return SearchResult(search_id, spec, study, summary["candidates"], summary["front"],
+                        search_status(storage, search_id))
+
+
+def list_searches(storage: BaseStorage) -> list[dict]:
+    """Status of every search in ``storage``, newest first (without the best design)."""
+    out = []
+    for s in optuna.get_all_study_summaries(storage, include_best_trial=False):
+        attrs = s.user_attrs
+        if "spec" not in attrs:
+            continue  # not a stagefit search
+        out.append({"id": s.study_name, "name": attrs["spec"].get("name"), "status": attrs.get("status"),
+                    "budget": attrs.get("budget"), "created": attrs.get("created")})
+    return sorted(out, key=lambda s: s.get("created") or "", reverse=True)
+
+
+def cancel_search(storage: BaseStorage, search_id: str) -> None:
+    """Stop a search at its next batch; finished trials are kept."""
+    study, _ = _load(storage, search_id)
+    if study.user_attrs.get("status") in ("queued", "running"):
+        study.set_user_attr("status", "cancelled")
+
+
+def extend_search(storage: BaseStorage, search_id: str, trials: int) -> None:
+    """Raise a search's budget by ``trials`` and queue it again (resume or extend)."""
+    if not isinstance(trials, int) or trials < 1:
+        raise InputError.single("trials", trials, "a whole number of extra trials, 1 or more")
+    study, _ = _load(storage, search_id)
+    study.set_user_attr("budget", int(study.user_attrs["budget"]) + trials)
+    study.set_user_attr("status", "queued")
+
+
+def delete_search(storage: BaseStorage, search_id: str) -> None:
+    """Remove a search and its trials from the storage."""
+    _load(storage, search_id)
+    optuna.delete_study(study_name=search_id, storage=storage)
+
+
+def spec_search_id(spec: Spec) -> str:
+    """A stable id for a spec (its name and a hash of its canonical form): the CLI reuses
+    a finished search of the very same spec instead of running it again."""
+    digest = hashlib.sha256(json.dumps(spec_to_dict(spec), sort_keys=True).encode()).hexdigest()[:10]
+    slug = "".join(ch if ch.isalnum() else "-" for ch in spec.name.lower()).strip("-")[:40] or "spec"
+    return f"{slug}-{digest}"
+
+
+def search(spec: Spec, *, storage: BaseStorage | str | None = None, trials: int | None = None,
+           seed: int | None = None, progress: Callable[[int, int], None] | None = None,
+           top: int = SHORTLIST_SIZE, catalog: Catalog | None = None) -> SearchResult:
+    """Run a whole search in this process and return its ranked result (the Python API).
+    ``storage`` defaults to memory; ``trials`` and ``seed`` override the spec's."""
+    overrides = {k: v for k, v in (("trials", trials), ("seed", seed)) if v is not None}
+    if overrides:
+        data = spec_to_dict(spec)
+        data["search"] = {**data["search"], **overrides}
+        spec = parse_spec(data)
+    store = storage if isinstance(storage, BaseStorage) else open_storage(storage)
+    search_id = create_search(spec, store, catalog=catalog)
+    run_search(store, search_id, progress=progress, catalog=catalog)
+    return load_search(store, search_id, top=top)

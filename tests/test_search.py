@@ -1,0 +1,128 @@
+"""The search: Optuna over ordered part indices, batched vectorised evaluation, ranking."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from optimizer.errors import InputError
+from optimizer.search import (SearchSpace, cancel_search, create_search, evaluate_designs, extend_search,
+                              list_searches, load_search, open_storage, pareto_mask, rank_records, run_search,
+                              search, search_status)
+from optimizer.spec import load_spec, parse_spec
+
+SMALL = {"name": "small", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"},
+         "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
+         "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
+         "topologies": ["divider_ce"], "parts": {"resistor_series": "E6", "resistor_range": ["1k", "100k"]},
+         "search": {"trials": 256, "seed": 3, "batch_size": 64}}
+
+
+def test_seeds_are_the_hand_design_rounded_both_ways() -> None:
+    space = SearchSpace.build(parse_spec(SMALL))
+    seeds = space.seeds()
+    assert seeds and all(d.topology == "divider_ce" for d in seeds)
+    assert len(set(seeds)) == len(seeds)
+
+
+def test_evaluated_records_carry_every_metric_and_a_consistent_verdict() -> None:
+    space = SearchSpace.build(parse_spec(SMALL))
+    records = evaluate_designs(space, space.seeds()[:4])
+    for r in records:
+        assert {"gain", "swing_vpp", "supply_current", "f_low", "cost", "unique_values"} <= set(r["metrics"])
+        assert r["feasible"] == (r["total_violation"] == 0) == (not r["violations"])
+        assert (r["score"] > 0) == r["feasible"]
+        assert set(r["parts"]) == {"r_top", "r_bottom", "r_collector", "r_emitter", "c_in", "c_out"}
+
+
+def test_a_seeded_search_is_reproducible_and_ranked() -> None:
+    spec = parse_spec(SMALL)
+    a, b = search(spec, top=3), search(spec, top=3)
+    assert [c["parts"] for c in a.candidates[:10]] == [c["parts"] for c in b.candidates[:10]]
+    ranks = [c["rank"] for c in a.candidates]
+    assert ranks == list(range(1, len(ranks) + 1))
+    feasible = [c["feasible"] for c in a.candidates]
+    assert feasible == sorted(feasible, reverse=True)  # feasible first
+    assert a.status["trials_done"] == 256 and a.status["status"] == "done"
+    frame = a.dataframe()
+    assert list(frame["rank"][:3]) == [1, 2, 3] and "supply_current" in frame
+
+
+def test_front_points_are_mutually_non_dominated() -> None:
+    result = search(parse_spec(SMALL), top=2)
+    pts = np.array([c["objectives"] for c in result.front])
+    assert len(pts) >= 1
+    assert pareto_mask(pts, ["minimise", "maximise"]).all()
+
+
+def test_pareto_mask_on_a_known_set() -> None:
+    pts = np.array([[1.0, 1.0], [2.0, 3.0], [1.5, 0.5], [3.0, 3.0], [2.0, 3.0]])
+    # minimise x, maximise y: (1,1) and (2,3) are on the front; (3,3) and (1.5,0.5) are dominated
+    assert pareto_mask(pts, ["minimise", "maximise"]).tolist() == [True, True, False, False, False]
+
+
+def test_an_impossible_spec_still_answers_with_the_binding_limit() -> None:
+    spec = parse_spec({**SMALL, "supply": "3.3 V", "limits": {"swing_min": "3 V"}})
+    result = search(spec, top=2)
+    best = result.candidates[0]
+    assert not best["feasible"] and best["binding"]
+    assert best["violations"]
+
+
+def test_journal_storage_resume_extend_and_cancel(tmp_path) -> None:
+    storage = open_storage(tmp_path / "s.journal")
+    spec = parse_spec(SMALL)
+    sid = create_search(spec, storage)
+    assert search_status(storage, sid)["status"] == "queued"
+    run_search(storage, sid, max_batches=1)
+    assert search_status(storage, sid)["trials_done"] == 64
+    run_search(storage, sid)
+    done = search_status(storage, sid)
+    assert done["status"] == "done" and done["trials_done"] == 256 and done["best"]["rank"] == 1
+    extend_search(storage, sid, 64)
+    run_search(storage, sid)
+    assert search_status(storage, sid)["trials_done"] == 320
+    assert [s["id"] for s in list_searches(storage)] == [sid]
+    sid2 = create_search(spec, storage)
+    cancel_search(storage, sid2)
+    run_search(storage, sid2)
+    assert search_status(storage, sid2)["trials_done"] == 0
+    assert load_search(storage, sid, top=3).candidates[0]["rank"] == 1
+
+
+def test_unknown_search_and_bad_rank_are_input_errors(tmp_path) -> None:
+    storage = open_storage(None)
+    with pytest.raises(InputError, match="search"):
+        search_status(storage, "nope")
+    result = search(parse_spec({**SMALL, "search": {"trials": 64}}), storage=storage, top=1)
+    with pytest.raises(InputError, match="rank"):
+        result.candidate(10_000)
+
+
+def test_rank_records_collapses_duplicates() -> None:
+    a = {"topology": "t", "device": "d", "parts": {"r": 1.0}, "feasible": True, "score": 0.5, "total_violation": 0}
+    b = {**a, "parts": {"r": 2.0}, "score": 0.7}
+    c = {**a, "parts": {"r": 3.0}, "feasible": False, "score": -0.1, "total_violation": 0.1}
+    assert [r["parts"]["r"] for r in rank_records([a, c, b, a])] == [2.0, 1.0, 3.0]
+
+
+@pytest.mark.parametrize("name", ["bench_stock_preamp", "battery_sensor_3v3"])
+def test_example_specs_find_a_design_meeting_every_limit(name: str) -> None:
+    result = search(load_spec(f"specs/{name}.yaml"), trials=640, top=1)
+    assert result.candidates[0]["feasible"], result.candidates[0]["violations"]
+
+
+def test_search_finds_the_exhaustive_optimum_and_its_front_is_the_true_front() -> None:
+    # The oracle (optimizer.exhaustive) enumerates all 13**4 E6 combinations of this space.
+    from optimizer.exhaustive import exhaustive
+
+    spec = parse_spec({**SMALL, "search": {"trials": 1024, "seed": 1, "batch_size": 64}})
+    oracle = exhaustive(spec)
+    assert oracle.best["feasible"] and oracle.combinations == 13 ** 4
+    result = search(spec, top=1)
+    best_found = max(c.get("nominal_score", c["score"]) for c in result.candidates)
+    assert best_found >= 0.99 * oracle.best["score"]
+    truth = oracle.front * np.array([1.0, -1.0])  # minimise current, maximise swing
+    for point in result.front:
+        p = np.array(point["objectives"]) * np.array([1.0, -1.0])
+        dominated = np.all(truth <= p + 1e-12, axis=1) & np.any(truth < p - 1e-12, axis=1)
+        assert not dominated.any(), point["objectives"]
