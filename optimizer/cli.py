@@ -138,6 +138,15 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_serve(args: argparse.Namespace) -> int:
+    from api.server import serve  # Flask and waitress are imported only for this command
+
+    config = {k: v for k, v in (("STAGEFIT_WORKERS", args.workers), ("STAGEFIT_STORAGE", args.storage))
+              if v is not None}
+    serve(args.host, args.port, threads=args.threads, config=config)
+    return EXIT_OK
+
+
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the `stagefit` command (sub-commands and options)."""
     parser = argparse.ArgumentParser(
@@ -179,6 +188,15 @@ def build_parser() -> argparse.ArgumentParser:
     evaluate.add_argument("--samples", type=int, default=1000, help="Monte Carlo builds for the yield")
     evaluate.add_argument("--format", choices=("table", "json"), default="table")
     evaluate.set_defaults(handler=_cmd_evaluate)
+
+    serve = sub.add_parser("serve", help="run the REST service (waitress; settings also from STAGEFIT_* variables)")
+    serve.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
+    serve.add_argument("--port", type=int, default=8750, help="port (default 8750; 0 picks a free one)")
+    serve.add_argument("--workers", type=int, default=None, help="searches run at once (STAGEFIT_WORKERS, default 1)")
+    serve.add_argument("--threads", type=int, default=8, help="request threads (default 8)")
+    serve.add_argument("--storage", default=None,
+                       help="Optuna storage URL or journal file (STAGEFIT_STORAGE, default runs/stagefit.journal)")
+    serve.set_defaults(handler=_cmd_serve)
     return parser
 
 

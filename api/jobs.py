@@ -1,0 +1,157 @@
+"""Searches as background jobs inside the server.
+
+A bounded pool of worker threads calls :func:`optimizer.search.run_search` for one search
+at a time each. Nothing about a job lives in this process: the spec, status, budget and
+every finished trial are in the Optuna storage, so on start-up the pool picks up every
+stored search whose status is ``queued`` or ``running`` (a server killed mid-search goes
+on where it stopped, keeping every finished trial). ``run_search`` checks the stored
+status between batches, so a cancelled search stops after the batch in flight; the pool's
+own ``should_stop`` is checked the same way when the server shuts down.
+"""
+from __future__ import annotations
+
+import logging
+import queue
+import threading
+from datetime import datetime
+from typing import Any
+
+log = logging.getLogger("api.jobs")
+RESUMABLE = ("queued", "running")
+STALE_AFTER = 120.0  # s: a trial asked this long ago and never told was lost with its process
+RECHECK = 5.0  # s: how soon a search held up by other runners' trials is looked at again
+
+
+class JobPool:
+    """``workers`` threads running stored searches; ``run=False`` only queues (external
+    workers on the same storage run the trials)."""
+
+    def __init__(self, storage: Any, *, workers: int = 1, run: bool = True,
+                 stale_after: float = STALE_AFTER) -> None:
+        self.storage = storage
+        self.workers = workers
+        self.run = run
+        self.stale_after = stale_after
+        self._queue: queue.Queue[str] = queue.Queue()
+        self._pending: set[str] = set()
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._threads: list[threading.Thread] = []
+
+    def start(self) -> None:
+        """Start the worker threads and queue every resumable stored search."""
+        if not self.run or self._threads:
+            return
+        for i in range(self.workers):
+            thread = threading.Thread(target=self._work, name=f"stagefit-search-{i}", daemon=True)
+            thread.start()
+            self._threads.append(thread)
+        self.resume()
+
+    def resume(self) -> list[str]:
+        """Queue every stored search whose status is queued or running; returns their ids."""
+        from optimizer.search import list_searches
+
+        ids = [s["id"] for s in reversed(list_searches(self.storage)) if s["status"] in RESUMABLE]
+        for search_id in ids:
+            self.submit(search_id)
+        if ids:
+            log.info("resuming %d stored search(es): %s", len(ids), ", ".join(ids))
+        return ids
+
+    def submit(self, search_id: str) -> None:
+        """Queue ``search_id`` unless it is already queued or running here."""
+        if not self.run:
+            return
+        with self._lock:
+            if search_id in self._pending:
+                return
+            self._pending.add(search_id)
+        self._queue.put(search_id)
+
+    def active(self, search_id: str) -> bool:
+        """True while ``search_id`` is queued or running in this pool."""
+        with self._lock:
+            return search_id in self._pending
+
+    def stop(self, timeout: float = 30.0) -> None:
+        """Ask every worker to stop after its batch in flight and wait for them."""
+        self._stop.set()
+        for thread in self._threads:
+            thread.join(timeout)
+        self._threads = []
+
+    def _work(self) -> None:
+        from optimizer.search import run_search
+
+        while not self._stop.is_set():
+            try:
+                search_id = self._queue.get(timeout=0.2)
+            except queue.Empty:
+                continue
+            again: float | None = None
+            try:
+                run_search(self.storage, search_id, should_stop=self._stop.is_set)
+                again = self._held_up(search_id)
+            except Exception:  # a bug or a storage failure: logged, the server goes on
+                log.exception("search %s stopped with an unexpected error", search_id)
+                _mark_failed(self.storage, search_id)
+            finally:
+                with self._lock:
+                    self._pending.discard(search_id)
+            if again is not None and not self._stop.is_set():
+                self._later(search_id, again)
+
+    def _held_up(self, search_id: str) -> float | None:
+        """After run_search returned: None if the search is over (or we are stopping);
+        otherwise it waits on trials still marked running. Those asked more than
+        ``stale_after`` s ago belong to a process that died (a killed server): they are
+        failed so the budget is met by new trials (0 s: retry now); younger ones may be
+        another runner's batch in flight (retry in a few seconds)."""
+        from optuna.trial import TrialState
+
+        if self._stop.is_set():
+            return None
+        study_id = self.storage.get_study_id_from_name(search_id)
+        if self.storage.get_study_user_attrs(study_id).get("status") != "running":
+            return None
+        now = datetime.now()
+        freed, waiting = 0, 0
+        for trial in self.storage.get_all_trials(study_id, deepcopy=False, states=(TrialState.RUNNING,)):
+            started = trial.datetime_start
+            if started is not None and (now - started).total_seconds() >= self.stale_after:
+                try:
+                    self.storage.set_trial_state_values(trial._trial_id, TrialState.FAIL)
+                    freed += 1
+                except RuntimeError:  # told meanwhile by its runner after all
+                    pass
+            else:
+                waiting += 1
+        if freed:
+            log.warning("search %s: %d trial(s) left running by a stopped process were failed and "
+                        "will be asked again", search_id, freed)
+            return 0.0
+        return RECHECK if waiting else None
+
+    def _later(self, search_id: str, delay: float) -> None:
+        if delay <= 0:
+            self.submit(search_id)
+            return
+        timer = threading.Timer(delay, self.submit, args=(search_id,))
+        timer.daemon = True
+        timer.start()
+
+
+def _mark_failed(storage: Any, search_id: str) -> None:
+    """Record status 'failed' on the study (so it is not resumed again and again)."""
+    try:
+        from optimizer import search as search_module
+
+        mark = getattr(search_module, "fail_search", None)
+        if mark is not None:
+            mark(storage, search_id)
+            return
+        study_id = storage.get_study_id_from_name(search_id)
+        storage.set_study_user_attr(study_id, "status", "failed")
+    except Exception:
+        log.exception("could not mark search %s as failed", search_id)

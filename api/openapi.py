@@ -1,0 +1,312 @@
+"""The OpenAPI 3.1 document of the service: every route, parameter, body and response.
+
+The spec body's schema is ``optimizer.spec.spec_json_schema()`` itself (its ``$defs``
+moved under ``components/schemas`` as ``Spec.<name>``), so the document cannot drift from
+what the service validates.
+"""
+from __future__ import annotations
+
+import copy
+import functools
+from typing import Any
+
+from api.problems import PROBLEM_JSON
+
+VERSION = "1.0.0"
+STATUSES = ["queued", "running", "done", "failed", "cancelled"]
+
+
+def _ref(name: str) -> dict:
+    return {"$ref": f"#/components/schemas/{name}"}
+
+
+def _spec_schemas() -> dict[str, Any]:
+    """The spec's JSON Schema as components: Spec plus Spec.<def> for each of its $defs."""
+    from optimizer.spec import spec_json_schema
+
+    schema = copy.deepcopy(spec_json_schema())
+    schema.pop("$schema", None)
+    defs = schema.pop("$defs", {})
+
+    def rewrite(node: Any) -> Any:
+        if isinstance(node, dict):
+            return {k: (f"#/components/schemas/Spec.{v[len('#/$defs/'):]}"
+                        if k == "$ref" and isinstance(v, str) and v.startswith("#/$defs/") else rewrite(v))
+                    for k, v in node.items()}
+        if isinstance(node, list):
+            return [rewrite(v) for v in node]
+        return node
+
+    out = {"Spec": rewrite(schema)}
+    out.update({f"Spec.{name}": rewrite(body) for name, body in defs.items()})
+    return out
+
+
+NUMBER_OR_NULL = {"type": ["number", "null"]}
+PROBLEM_ERRORS = {"400": "the request cannot be read (malformed JSON or YAML, a bad query parameter)",
+                  "401": "a bearer token is required (STAGEFIT_API_TOKEN is set) and was missing or wrong",
+                  "404": "no such search, candidate rank or catalog",
+                  "406": "the Accept header allows none of this route's media types",
+                  "413": "the body is larger than STAGEFIT_MAX_BODY",
+                  "415": "the body's Content-Type is not accepted",
+                  "422": "the body is well-formed but invalid (field paths in errors)",
+                  "501": "this feature is not available in this version"}
+
+
+def _problem(code: str) -> dict:
+    return {"description": PROBLEM_ERRORS[code], "content": {PROBLEM_JSON: {"schema": _ref("Problem")}}}
+
+
+def _responses(ok: dict[str, dict], *errors: str) -> dict:
+    out = dict(ok)
+    for code in ("401", "406", *errors):
+        out[code] = _problem(code)
+    return out
+
+
+def _json(schema: dict, description: str, *, csv: bool = False) -> dict:
+    content = {"application/json": {"schema": schema}}
+    if csv:
+        content["text/csv"] = {"schema": {"type": "string"}}
+    return {"description": description, "content": content}
+
+
+def _param(name: str, where: str, schema: dict, description: str, required: bool = False) -> dict:
+    return {"name": name, "in": where, "required": required or where == "path", "schema": schema,
+            "description": description}
+
+
+SEARCH_ID = _param("search_id", "path", {"type": "string", "minLength": 1}, "the search id")
+RANK = _param("rank", "path", {"type": "integer"}, "candidate rank, 1 = best")
+TOP = _param("top", "query", {"type": "integer", "minimum": 1, "maximum": 1000, "default": 20},
+             "how many ranked candidates to return")
+
+
+def _schemas() -> dict[str, Any]:
+    candidate = {
+        "type": "object",
+        "description": "A self-contained candidate design (DESIGN.md candidate JSON); SI units.",
+        "required": ["topology", "feasible", "parts", "transistor", "metrics"],
+        "properties": {
+            "rank": {"type": "integer"}, "score": NUMBER_OR_NULL, "binding": {"type": "string"},
+            "trial": {"type": "integer"}, "topology": {"type": "string"}, "feasible": {"type": "boolean"},
+            "conditions": {"type": "object"},
+            "parts": {"type": "object", "additionalProperties": {
+                "type": "object", "properties": {"value": NUMBER_OR_NULL, "label": {"type": "string"},
+                                                 "part_id": {"type": ["string", "null"]}}}},
+            "transistor": {"type": "object", "properties": {"id": {"type": "string"},
+                                                            "model": {"type": "object"}}},
+            "metrics": {"type": "object", "additionalProperties": NUMBER_OR_NULL},
+            "operating_point": {"type": "object", "additionalProperties": NUMBER_OR_NULL},
+            "ratings": {"type": "object"},
+            "worst_case": {"type": "object", "additionalProperties": {"type": "array", "items": NUMBER_OR_NULL}},
+            "violations": {"type": "object", "additionalProperties": NUMBER_OR_NULL},
+            "cautions": {"type": "array", "items": {"type": "string"}},
+        },
+    }
+    status = {
+        "type": "object", "required": ["id", "status", "trials_done", "budget", "url"],
+        "properties": {
+            "id": {"type": "string"}, "name": {"type": ["string", "null"]},
+            "status": {"enum": STATUSES}, "trials_done": {"type": "integer", "minimum": 0},
+            "budget": {"type": "integer", "minimum": 0}, "elapsed": NUMBER_OR_NULL,
+            "created": {"type": ["string", "null"]},
+            "best": {"anyOf": [_ref("Candidate"), {"type": "null"}]},
+            "url": {"type": "string", "description": "this search's URL"},
+        },
+    }
+    return {
+        "Problem": {
+            "type": "object", "description": "RFC 9457 problem details",
+            "required": ["type", "title", "status", "detail"],
+            "properties": {
+                "type": {"type": "string"}, "title": {"type": "string"},
+                "status": {"type": "integer"}, "detail": {"type": "string"},
+                "instance": {"type": "string"},
+                "errors": {"type": "array", "items": {
+                    "type": "object", "required": ["field", "expected"],
+                    "properties": {"field": {"type": "string", "description": "path of the bad field"},
+                                   "value": {}, "expected": {"type": "string"}}}},
+            },
+        },
+        "Health": {"type": "object", "required": ["status"],
+                   "properties": {"status": {"const": "ok"}, "queue_only": {"type": "boolean"},
+                                  "workers": {"type": "integer"}}},
+        "Topologies": {"type": "object", "required": ["topologies"], "properties": {"topologies": {
+            "type": "array", "items": {"type": "object", "required": ["name", "resistors", "capacitors"],
+                                       "properties": {"name": {"type": "string"},
+                                                      "description": {"type": "string"},
+                                                      "resistors": {"type": "array", "items": {"type": "string"}},
+                                                      "capacitors": {"type": "array", "items": {"type": "string"}},
+                                                      "optional_parts": {"type": "array",
+                                                                         "items": {"type": "string"}},
+                                                      "transistors": {"type": "integer"}}}}}},
+        "Catalogs": {"type": "object", "required": ["catalogs"], "properties": {"catalogs": {
+            "type": "array", "items": {"type": "object", "required": ["name", "url"],
+                                       "properties": {"name": {"type": "string"},
+                                                      "description": {"type": "string"},
+                                                      "currency": {"type": "string"},
+                                                      "real_stock": {"type": "boolean"},
+                                                      "url": {"type": "string"}}}}}},
+        "Catalog": {"type": "object", "required": ["name", "resistors", "capacitors", "transistors"],
+                    "properties": {"name": {"type": "string"}, "description": {"type": "string"},
+                                   "currency": {"type": "string"}, "real_stock": {"type": "boolean"},
+                                   "resistors": {"type": "object"}, "capacitors": {"type": "object"},
+                                   "transistors": {"type": "object"}}},
+        "Candidate": candidate,
+        "SearchStatus": status,
+        "SearchList": {"type": "object", "required": ["searches", "total", "limit", "offset"],
+                       "properties": {"searches": {"type": "array", "items": _ref("SearchStatus")},
+                                      "total": {"type": "integer"}, "limit": {"type": "integer"},
+                                      "offset": {"type": "integer"}, "next": {"type": ["string", "null"]}}},
+        "SearchResult": {"type": "object", "required": ["search", "candidates"],
+                         "properties": {"search": _ref("SearchStatus"),
+                                        "candidates": {"type": "array", "items": _ref("Candidate")}}},
+        "Front": {"type": "object", "required": ["search", "objectives", "front"],
+                  "properties": {"search": _ref("SearchStatus"),
+                                 "objectives": {"type": "array", "items": {
+                                     "type": "object", "properties": {"metric": {"type": "string"},
+                                                                      "direction": {"type": "string"}}}},
+                                 "front": {"type": "array", "items": _ref("Candidate")}}},
+        "Kit": {"type": "object", "required": ["units", "short", "totals", "lines"],
+                "properties": {"units": {"type": "integer"}, "short": {"type": "boolean"},
+                               "totals": {"type": "object"},
+                               "lines": {"type": "array", "items": {"type": "object"}}}},
+        "EvaluateRequest": {
+            "type": "object", "required": ["spec", "topology", "parts"], "additionalProperties": False,
+            "properties": {
+                "spec": _ref("Spec"),
+                "topology": {"type": "string", "description": "a name from GET /v1/topologies"},
+                "parts": {"type": "object", "description": "role -> value (SI number or engineering "
+                          "notation such as \"68k\", \"2.2u\"); capacitors left out are sized",
+                          "additionalProperties": {"anyOf": [{"type": "number"}, {"type": "string"}]}},
+                "device": {"type": ["string", "null"], "description": "transistor id (default: the "
+                           "spec's first device)"},
+                "samples": {"type": "integer", "minimum": 1, "maximum": 20000, "default": 1000,
+                            "description": "Monte Carlo builds for the yield"}},
+        },
+        **_spec_schemas(),
+    }
+
+
+def _paths() -> dict[str, Any]:
+    svg = {"content": {"image/svg+xml": {"schema": {"type": "string"}}}}
+    spec_body = {"required": True, "description": "a requirements spec (see GET /v1/spec-schema)",
+                 "content": {"application/json": {"schema": _ref("Spec")},
+                             "application/yaml": {"schema": _ref("Spec")}}}
+    return {
+        "/healthz": {"get": {
+            "operationId": "health", "summary": "liveness (never needs a token)", "security": [],
+            "responses": {"200": _json(_ref("Health"), "the service is up")}}},
+        "/v1/openapi.json": {"get": {
+            "operationId": "openapi", "summary": "this document",
+            "responses": _responses({"200": _json({"type": "object"}, "the OpenAPI 3.1 document")})}},
+        "/v1/spec-schema": {"get": {
+            "operationId": "specSchema", "summary": "JSON Schema (2020-12) of a requirements spec",
+            "responses": _responses({"200": {"description": "the schema", "content": {
+                "application/json": {"schema": {"type": "object"}},
+                "application/schema+json": {"schema": {"type": "object"}}}}})}},
+        "/v1/topologies": {"get": {
+            "operationId": "topologies", "summary": "the stage topologies and their parts",
+            "responses": _responses({"200": _json(_ref("Topologies"), "every topology")})}},
+        "/v1/catalogs": {"get": {
+            "operationId": "catalogs", "summary": "the parts catalogs, by name",
+            "responses": _responses({"200": _json(_ref("Catalogs"), "every catalog")})}},
+        "/v1/catalogs/{name}": {"get": {
+            "operationId": "catalog", "summary": "one catalog's summary and transistor models",
+            "parameters": [_param("name", "path", {"type": "string"}, "a catalog name from GET /v1/catalogs")],
+            "responses": _responses({"200": _json(_ref("Catalog"), "the catalog")}, "404")}},
+        "/v1/evaluate": {"post": {
+            "operationId": "evaluate", "summary": "metrics, spread, yield and ratings of a design you have",
+            "requestBody": {"required": True, "content": {"application/json": {
+                "schema": _ref("EvaluateRequest")}}},
+            "responses": _responses({"200": _json(_ref("Candidate"), "the candidate record")},
+                                    "400", "413", "415", "422")}},
+        "/v1/searches": {
+            "post": {
+                "operationId": "createSearch",
+                "summary": "queue a search for a spec (YAML or JSON); its budget is the spec's search.trials",
+                "parameters": [
+                    _param("wait", "query", {"type": "number", "minimum": 0, "maximum": 3600},
+                           "seconds to wait for the result (clamped to STAGEFIT_MAX_WAIT); 200 with the "
+                           "ranked candidates if the search finishes in time, else 202"),
+                    TOP],
+                "requestBody": spec_body,
+                "responses": _responses({
+                    "200": _json(_ref("SearchResult"), "finished within ?wait=: the ranked candidates"),
+                    "202": {"description": "queued (or still running); Location is the search's URL",
+                            "headers": {"Location": {"schema": {"type": "string"},
+                                                     "description": "the search's URL"}},
+                            "content": {"application/json": {"schema": _ref("SearchStatus")}}}},
+                    "400", "413", "415", "422")},
+            "get": {
+                "operationId": "listSearches", "summary": "stored searches, newest first, paged",
+                "parameters": [_param("limit", "query", {"type": "integer", "minimum": 1, "maximum": 200,
+                                                         "default": 50}, "page size"),
+                               _param("offset", "query", {"type": "integer", "minimum": 0, "default": 0},
+                                      "how many to skip")],
+                "responses": _responses({"200": _json(_ref("SearchList"), "one page of searches")}, "400")}},
+        "/v1/searches/{search_id}": {
+            "parameters": [SEARCH_ID],
+            "get": {"operationId": "getSearch", "summary": "status, progress, best so far, elapsed",
+                    "responses": _responses({"200": _json(_ref("SearchStatus"), "the search")}, "404")},
+            "delete": {"operationId": "cancelSearch",
+                       "summary": "cancel (finished trials are kept); ?purge=true deletes the record",
+                       "parameters": [_param("purge", "query", {"type": "boolean"},
+                                             "delete the stored search instead of only cancelling")],
+                       "responses": _responses({"200": _json(_ref("SearchStatus"), "cancelled (or already over)"),
+                                                "204": {"description": "deleted"}}, "400", "404")}},
+        "/v1/searches/{search_id}/candidates": {"get": {
+            "operationId": "candidates", "summary": "ranked candidates (JSON, or CSV with Accept: text/csv)",
+            "parameters": [SEARCH_ID, TOP, _param("feasible", "query", {"type": "boolean"},
+                                                  "only feasible (true) or only infeasible (false)")],
+            "responses": _responses({"200": _json(_ref("SearchResult"), "the ranked list", csv=True)},
+                                    "400", "404")}},
+        "/v1/searches/{search_id}/front": {"get": {
+            "operationId": "front", "summary": "the Pareto front over the spec's objectives",
+            "parameters": [SEARCH_ID],
+            "responses": _responses({"200": _json(_ref("Front"), "front records")}, "404")}},
+        "/v1/searches/{search_id}/front.svg": {"get": {
+            "operationId": "frontPlot", "summary": "the Pareto front as SVG", "parameters": [SEARCH_ID],
+            "responses": _responses({"200": {"description": "SVG plot", **svg}}, "404", "501")}},
+        "/v1/searches/{search_id}/candidates/{rank}": {"get": {
+            "operationId": "candidate", "summary": "one ranked candidate", "parameters": [SEARCH_ID, RANK],
+            "responses": _responses({"200": _json(_ref("Candidate"), "the candidate")}, "404")}},
+        "/v1/searches/{search_id}/candidates/{rank}/bom": {"get": {
+            "operationId": "bom", "summary": "bill of materials for N units (JSON, or CSV with Accept: text/csv)",
+            "parameters": [SEARCH_ID, RANK, _param("units", "query", {"type": "integer", "minimum": 1,
+                                                                      "maximum": 100000, "default": 1},
+                                                   "how many stages to kit")],
+            "responses": _responses({"200": _json(_ref("Kit"), "the kit", csv=True)}, "400", "404")}},
+        "/v1/searches/{search_id}/candidates/{rank}/netlist": {"get": {
+            "operationId": "netlist", "summary": "SPICE netlist of the candidate", "parameters": [SEARCH_ID, RANK],
+            "responses": _responses({"200": {"description": "SPICE netlist",
+                                             "content": {"text/plain": {"schema": {"type": "string"}}}}},
+                                    "404")}},
+        "/v1/searches/{search_id}/candidates/{rank}/response.svg": {"get": {
+            "operationId": "responsePlot", "summary": "frequency response of the candidate as SVG",
+            "parameters": [SEARCH_ID, RANK],
+            "responses": _responses({"200": {"description": "SVG plot", **svg}}, "404", "501")}},
+    }
+
+
+@functools.lru_cache(maxsize=1)
+def _document() -> dict:
+    return {
+        "openapi": "3.1.0",
+        "info": {"title": "stagefit", "version": VERSION,
+                 "description": "Search preferred-value parts and topologies for small-signal transistor "
+                                "stages. Errors are application/problem+json (RFC 9457). When the service "
+                                "has STAGEFIT_API_TOKEN set, every route but /healthz needs "
+                                "Authorization: Bearer <token>."},
+        "servers": [{"url": "/"}],
+        "security": [{}, {"bearer": []}],
+        "paths": _paths(),
+        "components": {"schemas": _schemas(),
+                       "securitySchemes": {"bearer": {"type": "http", "scheme": "bearer"}}},
+    }
+
+
+def openapi_document() -> dict:
+    """The OpenAPI 3.1 document (a fresh copy)."""
+    return copy.deepcopy(_document())
