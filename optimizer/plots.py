@@ -17,6 +17,7 @@ from matplotlib.figure import Figure
 
 from optimizer.candidates import design_from_record
 from optimizer.errors import InputError
+from optimizer.scoring import pareto_mask
 from optimizer.units import format_value
 
 FORMATS = ("svg", "png")
@@ -108,39 +109,6 @@ def _metric_matrix(points: list[dict], metrics: list[str]) -> np.ndarray:
             if isinstance(value, (int, float)) and not isinstance(value, bool):
                 out[i, j] = float(value)
     return out
-
-
-def pareto_mask(values: np.ndarray, directions: list[str], *, chunk: int = 512) -> np.ndarray:
-    """Which rows of ``values`` (points, objectives) are non-dominated (rows with NaN never are).
-
-    One or two objectives: a sort and a running minimum, O(n log n); more: chunked pairwise.
-    """
-    signed = np.asarray(values, dtype=float).reshape(len(values), len(directions))
-    signed = signed * np.array([1.0 if d == "minimise" else -1.0 for d in directions])
-    ok = np.flatnonzero(np.all(np.isfinite(signed), axis=1))
-    mask = np.zeros(len(signed), dtype=bool)
-    rows = signed[ok]
-    if not rows.size:
-        return mask
-    k = rows.shape[1]
-    if k == 1:
-        mask[ok] = rows[:, 0] == rows[:, 0].min()
-    elif k == 2:
-        # unique rows come sorted by (first, second); a group is dominated when an earlier group
-        # reaches its second objective or better (an equal first needs a strictly better second,
-        # which the lexicographic order already gives)
-        unique, inverse = np.unique(rows, axis=0, return_inverse=True)
-        best_before = np.concatenate([[np.inf], np.minimum.accumulate(unique[:-1, 1])])
-        mask[ok] = ~(best_before <= unique[:, 1])[np.ravel(inverse)]
-    else:
-        dominated = np.zeros(len(rows), dtype=bool)
-        for i in range(0, len(rows), chunk):
-            block = rows[i:i + chunk]
-            no_worse = np.all(rows[None, :, :] <= block[:, None, :], axis=2)
-            better = np.any(rows[None, :, :] < block[:, None, :], axis=2)
-            dominated[i:i + chunk] = np.any(no_worse & better, axis=1)
-        mask[ok] = ~dominated
-    return mask
 
 
 def front_plot(points: list[dict], objectives: list[tuple[str, str]], *, chosen: dict | None = None,

@@ -176,26 +176,34 @@ def desirability(spec: Spec, metrics: dict[str, np.ndarray], violation: np.ndarr
     return np.where(violation > 0, -violation, np.exp(log_score))
 
 
-def pareto_mask(values: np.ndarray, directions: Iterable[str]) -> np.ndarray:
-    """Non-dominated rows of ``values`` (points, objectives) under the given directions;
-    of identical points only the first is kept."""
-    sign = np.array([1.0 if d == "minimise" else -1.0 for d in directions])
-    v = np.asarray(values, dtype=float).reshape(len(values), -1) * sign
-    keep = np.zeros(len(v), dtype=bool)
-    if not len(v):
-        return keep
-    order = np.lexsort(v.T[::-1])  # by the first objective, ties by the next
-    if v.shape[1] == 1:
-        keep[order[0]] = True
-        return keep
-    if v.shape[1] == 2:  # one sweep: kept while the second objective strictly improves
-        second = v[order, 1]
-        best_before = np.minimum.accumulate(np.concatenate([[np.inf], second[:-1]]))
-        keep[order[second < best_before]] = True
-        return keep
-    front: list[np.ndarray] = []
-    for i in order:
-        if not any(np.all(f <= v[i]) for f in front):
-            keep[i] = True
-            front.append(v[i])
-    return keep
+def pareto_mask(values: np.ndarray, directions: list[str], *, chunk: int = 512) -> np.ndarray:
+    """Which rows of ``values`` (points, objectives) are non-dominated (rows with NaN never are).
+
+    One or two objectives: a sort and a running minimum, O(n log n); more: chunked pairwise.
+    """
+    signed = np.asarray(values, dtype=float).reshape(len(values), len(directions))
+    signed = signed * np.array([1.0 if d == "minimise" else -1.0 for d in directions])
+    ok = np.flatnonzero(np.all(np.isfinite(signed), axis=1))
+    mask = np.zeros(len(signed), dtype=bool)
+    rows = signed[ok]
+    if not rows.size:
+        return mask
+    k = rows.shape[1]
+    if k == 1:
+        mask[ok] = rows[:, 0] == rows[:, 0].min()
+    elif k == 2:
+        # unique rows come sorted by (first, second); a group is dominated when an earlier group
+        # reaches its second objective or better (an equal first needs a strictly better second,
+        # which the lexicographic order already gives)
+        unique, inverse = np.unique(rows, axis=0, return_inverse=True)
+        best_before = np.concatenate([[np.inf], np.minimum.accumulate(unique[:-1, 1])])
+        mask[ok] = ~(best_before <= unique[:, 1])[np.ravel(inverse)]
+    else:
+        dominated = np.zeros(len(rows), dtype=bool)
+        for i in range(0, len(rows), chunk):
+            block = rows[i:i + chunk]
+            no_worse = np.all(rows[None, :, :] <= block[:, None, :], axis=2)
+            better = np.any(rows[None, :, :] < block[:, None, :], axis=2)
+            dominated[i:i + chunk] = np.any(no_worse & better, axis=1)
+        mask[ok] = ~dominated
+    return mask

@@ -31,6 +31,7 @@ from optuna.trial import TrialState
 
 from optimizer import scoring
 from optimizer.scoring import pareto_mask
+from optimizer.bom import unique_values_array
 from optimizer.catalog import Catalog, load_catalog
 from optimizer.devices import Device
 from optimizer.errors import InputError
@@ -203,14 +204,6 @@ _SPACES: dict[str, SearchSpace] = {}
 
 # ----------------------------------------------------------------------------- evaluation
 
-def _unique_values(values: np.ndarray) -> np.ndarray:
-    """Distinct non-zero values per row of ``values`` (candidates, parts)."""
-    s = np.sort(np.where(values > 0, values, np.nan), axis=1)
-    distinct = np.ones_like(s, dtype=bool)
-    distinct[:, 1:] = ~np.isclose(s[:, 1:], s[:, :-1], rtol=1e-9)
-    return (distinct & np.isfinite(s)).sum(axis=1).astype(float)
-
-
 FULL_ONLY_OPTIMISTIC = {"f_low": 0.0, "f_high": np.inf, "noise_ein_v": 0.0, "noise_figure_db": 0.0}
 
 
@@ -253,8 +246,7 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
         [np.full(n, np.nanmin(ct.unit_price))] * len(caps)
     metrics["cost"] = (sum(np.where(present[r], rt.unit_price[np.maximum(i, 0)], 0.0) for r, i in index.items())
                        + sum(cap_prices) + topology.transistors * space.device_price[device_id])
-    counted = list(resistors.values()) + (list(caps.values()) if full else [])
-    metrics["unique_values"] = _unique_values(np.stack(counted, axis=1))
+    metrics["unique_values"] = unique_values_array({**resistors, **(caps if full else {})}).astype(float)
     score = scoring.desirability(spec, metrics, total)
     active = np.asarray(result.operating_point["active"], dtype=bool)
     objective_values = []
