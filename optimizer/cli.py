@@ -138,6 +138,201 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+# ---- search and kitting -------------------------------------------------------------
+
+TABLE_METRICS = (("gain", "gain", "V/V"), ("swing_vpp", "swing", "Vpp"), ("input_impedance", "Zin", "ohm"),
+                 ("supply_current", "current", "A"), ("yield", "yield", "%"), ("cost", "cost", ""))
+
+
+def _progress_printer(stream=sys.stderr) -> Callable[[int, int], None] | None:
+    """A one-line progress bar on a terminal; nothing when the output is piped."""
+    if not stream.isatty():
+        return None
+
+    def show(done: int, budget: int) -> None:
+        width = 30
+        filled = int(width * done / max(budget, 1))
+        stream.write(f"\r  searching [{'#' * filled}{'.' * (width - filled)}] {done}/{budget} trials")
+        if done >= budget:
+            stream.write("\n")
+        stream.flush()
+    return show
+
+
+def _run_or_reuse(args: argparse.Namespace, spec):
+    """The finished search of ``spec`` in --storage: reused when the very same spec (and seed
+    and budget) was searched before, resumed when it was interrupted, run otherwise."""
+    from optimizer import search as engine
+    from optimizer.spec import parse_spec, spec_to_dict
+
+    overrides = {k: v for k, v in (("trials", args.trials), ("seed", args.seed)) if v is not None}
+    if overrides:
+        data = spec_to_dict(spec)
+        data["search"] = {**data["search"], **overrides}
+        spec = parse_spec(data)
+    storage = engine.open_storage(args.storage)
+    search_id = engine.spec_search_id(spec)
+    known = {s["id"]: s for s in engine.list_searches(storage)}
+    if search_id in known and args.fresh:
+        engine.delete_search(storage, search_id)
+        del known[search_id]
+    if search_id not in known:
+        engine.create_search(spec, storage, search_id=search_id)
+    elif known[search_id]["status"] == "done":
+        print(f"reusing the stored search {search_id} of this spec from {args.storage} (--fresh to run it again)",
+              file=sys.stderr)
+    elif known[search_id]["status"] in ("cancelled", "failed"):
+        engine.extend_search(storage, search_id, 0)  # queue it again; finished trials are kept
+    engine.run_search(storage, search_id, progress=_progress_printer())
+    return engine.load_search(storage, search_id, top=max(args.top, 1))
+
+
+def _short(metric: str, value: float | None, unit: str) -> str:
+    from optimizer.units import format_value
+
+    if value is None:
+        return "-"
+    if unit == "%":
+        return f"{100 * value:.0f} %"
+    if unit in ("V/V", ""):
+        return f"{value:.3g}"
+    return format_value(value, unit)
+
+
+def _table(rows: list[list[str]], markdown: bool = False) -> str:
+    if markdown:
+        lines = ["| " + " | ".join(rows[0]) + " |", "|" + "|".join(" --- " for _ in rows[0]) + "|"]
+        return "\n".join(lines + ["| " + " | ".join(r) + " |" for r in rows[1:]])
+    widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
+    return "\n".join("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows)
+
+
+def _candidate_rows(candidates: list[dict], first: str = "rank") -> list[list[str]]:
+    rows = [[first, "topology", "parts"] + [label for _, label, _ in TABLE_METRICS] + ["verdict"]]
+    for c in candidates:
+        parts = " ".join(f"{role}={p['label']}" for role, p in c["parts"].items())
+        verdict = "meets every limit" if c["feasible"] else f"misses {c.get('binding') or ', '.join(c['violations'])}"
+        rows.append([str(c["rank"]), c["topology"], parts]
+                    + [_short(m, c["metrics"].get(m), unit) for m, _, unit in TABLE_METRICS] + [verdict])
+    return rows
+
+
+def _cmd_search(args: argparse.Namespace) -> int:
+    import numpy as np
+
+    from optimizer.spec import load_spec
+
+    spec = load_spec(args.spec)
+    result = _run_or_reuse(args, spec)
+    shown = result.candidates[: args.top]
+    front = result.front
+    if args.format == "json":
+        print(json.dumps({"search": result.id, "status": result.status["status"],
+                          "candidates": shown, "front": front if args.front else None}, indent=2))
+    elif args.format == "csv":
+        print(result.dataframe().head(args.top).to_csv(index=False), end="")
+    else:
+        markdown = args.format == "markdown"
+        status = result.status
+        print(f"{spec.name}: {status['trials_done']} designs evaluated (search {result.id})")
+        best = shown[0] if shown else None
+        if best and not best["feasible"]:
+            print(_infeasible_summary(spec, best))
+        print(_table(_candidate_rows(shown), markdown))
+        if args.front:
+            picked = sorted(set(np.linspace(0, len(front) - 1, min(len(front), max(args.top, 2))).round().astype(int))) \
+                if front else []
+            note = f", {len(picked)} of them shown, evenly along it" if len(picked) < len(front) else ""
+            print(f"\nPareto front ({' vs '.join(f'{d} {m}' for m, d in spec.objective_directions)}): "
+                  f"{len(front)} designs{note}")
+            print(_table(_candidate_rows([{**front[i], "rank": i + 1} for i in picked], "point"), markdown))
+        if best:
+            for caution in best.get("cautions", []):
+                print(f"caution: {caution}")
+    for target in args.plot:
+        _write_plot(target, result, args.rank)
+    return EXIT_OK
+
+
+def _infeasible_summary(spec, best: dict) -> str:
+    """Why an impossible spec has no answer: the binding limit and how near the best got."""
+    limit = best.get("binding") or next(iter(best["violations"]), "")
+    metric_of = {"swing_min": ("swing_vpp", "V"), "supply_current_max": ("supply_current", "A"),
+                 "input_impedance_min": ("input_impedance", "ohm"), "output_impedance_max": ("output_impedance", "ohm"),
+                 "thd_max": ("thd", ""), "noise_ein_max": ("noise_ein_v", "V"), "gain": ("gain", "V/V")}
+    from optimizer.units import format_value
+
+    if limit in metric_of:
+        metric, unit = metric_of[limit]
+        reached = best["metrics"].get(metric)
+        wanted = spec.gain.target if limit == "gain" else getattr(spec.limits, limit)
+        if reached is not None and unit in ("V/V", ""):
+            return (f"no design meets every limit; {limit} binds: best reaches {abs(reached):.3g}, "
+                    f"the spec asks {wanted:.3g}")
+        if reached is not None:
+            return (f"no design meets every limit; {limit} binds: best reaches {format_value(reached, unit)}, "
+                    f"the spec asks {format_value(wanted, unit)}")
+    return f"no design meets every limit; {limit or 'a limit'} binds (see the violations below)"
+
+
+def _write_plot(target: str, result, rank: int) -> None:
+    from pathlib import Path
+
+    from optimizer import plots
+
+    path = Path(target)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fmt = path.suffix.lower().lstrip(".")
+    if fmt not in ("svg", "png"):
+        raise InputError.single("--plot", target, "a file name ending in .svg or .png")
+    kind = path.stem.lower()
+    chosen = result.candidate(rank)
+    if "front" in kind:
+        points = [dict(c) for c in result.candidates]
+        plots.front_plot(points, [tuple(o) for o in result.spec.objective_directions], chosen=chosen,
+                         front=result.front, fmt=fmt, path=path)
+    elif "response" in kind:
+        plots.response_plot(chosen, fmt=fmt, path=path)
+    elif "transfer" in kind:
+        plots.transfer_plot(chosen, fmt=fmt, path=path, spec_swing=result.spec.limits.swing_min)
+    else:
+        raise InputError.single("--plot", target, "a file named for what it shows: front.svg, "
+                                "response.svg or transfer.svg (or .png)")
+    print(f"wrote {path}", file=sys.stderr)
+
+
+def _cmd_bom(args: argparse.Namespace) -> int:
+    from optimizer.bom import kit
+    from optimizer.catalog import load_catalog
+    from optimizer.spec import load_spec
+
+    spec = load_spec(args.spec)
+    args.top = max(args.rank, 1)
+    result = _run_or_reuse(args, spec)
+    candidate = result.candidate(args.rank)
+    bill = kit(candidate, load_catalog(spec.parts.catalog), args.units)
+    if args.format == "csv":
+        print(bill.to_csv(), end="")
+    elif args.format == "json":
+        print(json.dumps(bill.to_dict(), indent=2))
+    else:
+        t = bill.totals
+        print(f"kit for {args.units} x rank {args.rank} ({candidate['topology']}) of {spec.name}, "
+              f"catalog {spec.parts.catalog}")
+        rows = [["part_id", "value", "roles", "per unit", "total", "stock", "short by", "line price", "note"]]
+        for line in bill.to_dict()["lines"]:
+            rows.append([str(line["part_id"] or "-"), line["label"], line["roles"], str(line["qty_per_unit"]),
+                         str(line["qty_total"]), "untracked" if line["stock"] is None else str(line["stock"]),
+                         str(line["short_by"] or ""), "-" if line["line_price"] is None else f"{line['line_price']:.2f}",
+                         line.get("note") or ""])
+        print(_table(rows))
+        print(f"total {t['parts_total']} parts, {t['cost_total']:.2f} {t['currency']} "
+              f"({t['cost_per_unit']:.2f} per unit)")
+        if bill.short:
+            print(f"STOCK IS SHORT on {t['lines_short']} line(s): order before kitting")
+    return EXIT_OK
+
+
 def _cmd_serve(args: argparse.Namespace) -> int:
     from api.server import serve  # Flask and waitress are imported only for this command
 
@@ -145,6 +340,25 @@ def _cmd_serve(args: argparse.Namespace) -> int:
               if v is not None}
     serve(args.host, args.port, threads=args.threads, config=config)
     return EXIT_OK
+
+
+def _cmd_worker(args: argparse.Namespace) -> int:
+    import logging
+
+    from optimizer.worker import run_worker
+
+    logging.basicConfig(level=logging.INFO, format="%(asctime)s %(name)s %(levelname)s %(message)s")
+    run_worker(args.storage, poll=args.poll, once=args.once)
+    return EXIT_OK
+
+
+def _search_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--storage", default="runs/stagefit.journal",
+                        help="where searches are kept: a journal file (default runs/stagefit.journal) "
+                             "or a database URL such as postgresql://user@host/db")
+    parser.add_argument("--trials", type=int, default=None, help="trial budget (default: the spec's)")
+    parser.add_argument("--seed", type=int, default=None, help="random seed (default: the spec's)")
+    parser.add_argument("--fresh", action="store_true", help="run again even if this spec was searched before")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -189,6 +403,25 @@ def build_parser() -> argparse.ArgumentParser:
     evaluate.add_argument("--format", choices=("table", "json"), default="table")
     evaluate.set_defaults(handler=_cmd_evaluate)
 
+    search = sub.add_parser("search", help="search parts and topologies for a spec; ranked designs and the front")
+    search.add_argument("spec", help="path to a spec file (YAML or JSON)")
+    _search_options(search)
+    search.add_argument("--top", type=int, default=10, help="how many ranked designs to show (default 10)")
+    search.add_argument("--format", choices=("table", "json", "csv", "markdown"), default="table")
+    search.add_argument("--front", action="store_true", help="also print the Pareto front")
+    search.add_argument("--plot", action="append", default=[], metavar="FILE",
+                        help="write front.svg, response.svg or transfer.svg (or .png) of --rank; repeat")
+    search.add_argument("--rank", type=int, default=1, help="the design --plot draws (default 1)")
+    search.set_defaults(handler=_cmd_search)
+
+    bom = sub.add_parser("bom", help="bill of materials and kitting of a ranked design against the catalog's stock")
+    bom.add_argument("spec", help="path to a spec file (YAML or JSON)")
+    bom.add_argument("--rank", type=int, default=1, help="which ranked design (default 1)")
+    bom.add_argument("--units", type=int, default=1, help="how many stages to kit (default 1)")
+    bom.add_argument("--format", choices=("table", "csv", "json"), default="table")
+    _search_options(bom)
+    bom.set_defaults(handler=_cmd_bom)
+
     serve = sub.add_parser("serve", help="run the REST service (waitress; settings also from STAGEFIT_* variables)")
     serve.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
     serve.add_argument("--port", type=int, default=8750, help="port (default 8750; 0 picks a free one)")
@@ -197,6 +430,16 @@ def build_parser() -> argparse.ArgumentParser:
     serve.add_argument("--storage", default=None,
                        help="Optuna storage URL or journal file (STAGEFIT_STORAGE, default runs/stagefit.journal)")
     serve.set_defaults(handler=_cmd_serve)
+
+    worker = sub.add_parser("worker", help="run the trials of searches queued in a shared storage (any number of "
+                            "workers on any number of machines; stops cleanly on SIGTERM/Ctrl-C)")
+    worker.add_argument("--storage", default=os.environ.get("STAGEFIT_STORAGE"),
+                        required=not os.environ.get("STAGEFIT_STORAGE"),
+                        help="storage URL shared with the API server, e.g. postgresql://user:pw@db/stagefit "
+                             "(STAGEFIT_STORAGE)")
+    worker.add_argument("--poll", type=float, default=2.0, help="seconds to wait when there is nothing to do (default 2)")
+    worker.add_argument("--once", action="store_true", help="exit when no stored search has budget left")
+    worker.set_defaults(handler=_cmd_worker)
     return parser
 
 

@@ -163,6 +163,7 @@ def front_plot(points: list[dict], objectives: list[tuple[str, str]], *, chosen:
                        zorder=4, label="chosen" + (f" (rank {rank})" if rank else "")).set_gid("chosen")
     if not len(points):
         ax.text(0.5, 0.5, "no candidates evaluated", ha="center", va="center", transform=ax.transAxes)
+    _zoom_on_feasible(ax, xy, feasible, fxy, single)
     ax.set_xlabel("evaluation" if single else _axis_label(*shown[0]))
     ax.set_ylabel(_axis_label(*shown[-1]))
     note = "" if len(pairs) <= 2 else f" (first 2 of {len(pairs)} objectives shown)"
@@ -171,6 +172,25 @@ def front_plot(points: list[dict], objectives: list[tuple[str, str]], *, chosen:
     if ax.get_legend_handles_labels()[0]:
         ax.legend(loc="best", fontsize=8)
     return _render(fig, fmt, path)
+
+
+def _zoom_on_feasible(ax, xy: np.ndarray, feasible: np.ndarray, fxy: np.ndarray, single: bool) -> None:
+    """Frame the feasible designs and the front (padded), so far-off infeasible designs do not
+    squash them into a corner; how many lie outside the frame is noted."""
+    inside = np.vstack([xy[feasible], fxy]) if len(fxy) else xy[feasible]
+    inside = inside[np.all(np.isfinite(inside), axis=1)]
+    if single or len(inside) < 2:
+        return
+    low, high = inside.min(axis=0), inside.max(axis=0)
+    pad = np.maximum(0.3 * (high - low), 0.05 * np.maximum(np.abs(high), 1e-12))
+    low, high = low - pad, high + pad
+    ax.set_xlim(low[0], high[0])
+    ax.set_ylim(low[1], high[1])
+    finite = xy[np.all(np.isfinite(xy), axis=1)]
+    outside = int((np.any(finite < low, axis=1) | np.any(finite > high, axis=1)).sum())
+    if outside:
+        ax.text(0.01, 0.01, f"{outside} infeasible designs lie outside this view", transform=ax.transAxes,
+                fontsize=7, color="0.4", va="bottom")
 
 
 # ---- frequency response ----------------------------------------------------------------

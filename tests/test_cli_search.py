@@ -1,0 +1,87 @@
+"""`stagefit search` and `stagefit bom`: formats, reuse of a stored search, plots, errors."""
+from __future__ import annotations
+
+import csv
+import io
+import json
+from pathlib import Path
+
+import pytest
+import yaml
+
+from optimizer.cli import EXIT_BAD_INPUT, EXIT_OK, main
+
+SPEC = {"name": "cli search", "supply": "15 V", "gain": {"target": -30, "tolerance": "2 dB"},
+        "source_impedance": "2k2", "load_impedance": "22k", "band": ["20 Hz", "20 kHz"],
+        "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
+        "parts": {"catalog": "bench_stock", "in_stock_only": True, "resistor_series": "E12"},
+        "topologies": ["feedback_ce", "divider_ce"], "search": {"trials": 256, "seed": 5}}
+
+
+@pytest.fixture(scope="module")
+def workspace(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """A spec file and a journal storage with the spec's search already run once."""
+    root = tmp_path_factory.mktemp("cli")
+    (root / "spec.yaml").write_text(yaml.safe_dump(SPEC), encoding="utf-8")
+    assert main(["search", str(root / "spec.yaml"), "--storage", str(root / "s.journal"), "--top", "3"]) == EXIT_OK
+    return root
+
+
+def _run(workspace: Path, capsys: pytest.CaptureFixture[str], *extra: str, command: str = "search") -> tuple[int, str, str]:
+    code = main([command, str(workspace / "spec.yaml"), "--storage", str(workspace / "s.journal"), *extra])
+    out = capsys.readouterr()
+    return code, out.out, out.err
+
+
+def test_table_shows_ranked_designs_and_reuses_the_stored_search(workspace: Path, capsys) -> None:
+    code, out, err = _run(workspace, capsys, "--top", "3", "--front")
+    assert code == EXIT_OK
+    assert "reusing the stored search" in err
+    assert "rank" in out and "Pareto front" in out and "caution:" in out
+    assert out.count("meets every limit") >= 1
+
+
+def test_json_candidates_follow_the_documented_shape(workspace: Path, capsys) -> None:
+    code, out, _ = _run(workspace, capsys, "--format", "json", "--top", "2")
+    assert code == EXIT_OK
+    data = json.loads(out)
+    first = data["candidates"][0]
+    for key in ("rank", "topology", "feasible", "score", "conditions", "parts", "transistor", "metrics",
+                "worst_case", "violations"):
+        assert key in first
+    assert first["rank"] == 1 and set(first["transistor"]["model"]) >= {"IS", "BF", "VAF"}
+    assert all(set(p) >= {"value", "label", "part_id"} for p in first["parts"].values())
+
+
+def test_csv_and_markdown(workspace: Path, capsys) -> None:
+    code, out, _ = _run(workspace, capsys, "--format", "csv", "--top", "4")
+    rows = list(csv.DictReader(io.StringIO(out)))
+    assert code == EXIT_OK and len(rows) == 4 and rows[0]["rank"] == "1" and "supply_current" in rows[0]
+    code, out, _ = _run(workspace, capsys, "--format", "markdown", "--top", "2")
+    assert code == EXIT_OK and out.splitlines()[1].startswith("| rank |")
+
+
+def test_plots_are_written(workspace: Path, capsys) -> None:
+    front, response = workspace / "plots" / "front.svg", workspace / "plots" / "response.png"
+    code, _, _ = _run(workspace, capsys, "--top", "1", "--plot", str(front), "--plot", str(response))
+    assert code == EXIT_OK
+    assert front.read_text(encoding="utf-8").lstrip().startswith("<?xml")
+    assert response.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def test_bad_plot_name_and_rank_are_bad_input(workspace: Path, capsys) -> None:
+    code, _, err = _run(workspace, capsys, "--plot", str(workspace / "x.pdf"))
+    assert code == EXIT_BAD_INPUT and "--plot" in err
+    code, _, err = _run(workspace, capsys, "--plot", str(workspace / "front.svg"), "--rank", "99999")
+    assert code == EXIT_BAD_INPUT and "rank" in err and "Traceback" not in err
+
+
+def test_bom_for_a_kit_of_units(workspace: Path, capsys) -> None:
+    code, out, _ = _run(workspace, capsys, "--rank", "1", "--units", "25", "--format", "csv", command="bom")
+    assert code == EXIT_OK
+    lines = list(csv.DictReader(io.StringIO(out)))
+    assert lines and all(int(row["qty_total"]) == 25 * int(row["qty_per_unit"]) for row in lines)
+    code, out, _ = _run(workspace, capsys, "--units", "3", command="bom")
+    assert code == EXIT_OK and "kit for 3" in out and "total" in out
+    code, _, err = _run(workspace, capsys, "--units", "0", command="bom")
+    assert code == EXIT_BAD_INPUT and "units" in err
