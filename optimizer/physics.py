@@ -8,6 +8,7 @@ forward-active region; a candidate outside it is flagged, not modelled.
 """
 from __future__ import annotations
 
+import threading
 from collections.abc import Callable, Iterable, Sequence
 
 import numpy as np
@@ -22,7 +23,7 @@ G_SHORT = 1e6  # S, a mid-band coupling capacitor or a zero-ohm resistor (modera
 R_FLOOR = 1e-3  # ohm, stand-in for a zero source impedance
 SWEEP = (0.1, 1e8)  # Hz, span of the frequency-response search
 COARSE_POINTS = 10  # log-spaced points over SWEEP (one per decade)
-REFINE_STEPS = 5  # interpolation steps per -3 dB crossing
+REFINE_STEPS = 4  # false-position steps per -3 dB crossing (see minus_3db_corners)
 NOISE_POINTS = 6  # log-spaced frequencies for the in-band noise integral
 NEWTON_ITERATIONS = 8
 THD_SAMPLES = 16  # samples per period of the quasi-static distortion solve (harmonics 2..7)
@@ -175,6 +176,7 @@ class Network:
         self.cap: dict[tuple[int, int], np.ndarray] = {}  # F, multiplied by s in :meth:`at`
         self.noise: list[tuple[str | None, str | None, np.ndarray]] = []
         self.temp_c = temp_c
+        self.s: np.ndarray | None = None  # complex frequencies set by :meth:`at`
 
     def _stamp(self, part: dict, a: str | None, b: str | None, v: np.ndarray) -> None:
         ia, ib = (None if n is None else self.index[n] for n in (a, b))
@@ -220,94 +222,214 @@ class Network:
         self.noise.append((b, e, shot_noise(ss["ib"])))
 
     def at(self, s: np.ndarray) -> "Network":
-        """The network at complex frequencies s (rad/s), entries G + s*C."""
+        """The network at complex frequencies s (rad/s), entries G + s*C.
+
+        Nothing is computed here: the entries are formed by :meth:`solve` straight into its
+        workspace (s broadcasts with the element values, e.g. (frequencies, 1) against
+        (candidates,) gives (frequencies, candidates)).
+        """
         n = Network(self.nodes, self.temp_c)
-        n.noise = self.noise
-        n.y = dict(self.y)
-        for (i, j), c in self.cap.items():  # C is symmetric (two-terminal stamps): one product per pair
-            if i > j:
-                continue
-            sc = s * c
-            for k in ((i, j),) if i == j else ((i, j), (j, i)):
-                n.y[k] = sc + self.y[k] if k in self.y else sc
+        n.noise, n.y, n.cap, n.s = self.noise, self.y, self.cap, np.asarray(s)
         return n
 
     def transposed(self) -> "Network":
         """The adjoint network (Y transposed), for all transfers to one node in one solve."""
         t = Network(self.nodes, self.temp_c)
-        t.noise = self.noise
+        t.noise, t.s = self.noise, self.s
         t.y = {(j, i): v for (i, j), v in self.y.items()}
+        t.cap = {(j, i): v for (i, j), v in self.cap.items()}
         return t
 
     def solve(self, rhs: dict[str, np.ndarray], want: Iterable[str] | None = None) -> dict[str, np.ndarray]:
-        """Node voltages (V) for injected currents rhs (A into each node); all nodes if want is None."""
-        n = len(self.nodes)
-        y = dict(self.y)
-        b: dict[int, np.ndarray] = {self.index[k]: v for k, v in rhs.items()}
-        rows: list[list[int]] = [[] for _ in range(n)]
-        cols: list[list[int]] = [[] for _ in range(n)]
-        for i2, j in sorted(y):
-            rows[i2].append(j)
-            cols[j].append(i2)
-        inv_pivot: dict[int, np.ndarray] = {}
-        for k in range(n - 1):
-            inv_pivot[k] = 1.0 / y[(k, k)]
-            below = [i for i in cols[k] if i > k]
-            right = [j for j in rows[k] if j > k]
-            for i in below:
-                f = y.pop((i, k)) * inv_pivot[k]
-                for j in right:
-                    if (i, j) in y:
-                        y[(i, j)] = y[(i, j)] - f * y[(k, j)]
-                    else:
-                        y[(i, j)] = -f * y[(k, j)]
-                        rows[i].append(j)
-                        cols[j].append(i)
-                if k in b:
-                    b[i] = b[i] - f * b[k] if i in b else -f * b[k]
-        targets = set(range(n)) if want is None else {self.index[w] for w in want}
-        lowest = min(targets)
-        x: dict[int, np.ndarray] = {}
-        for k in range(n - 1, lowest - 1, -1):
-            acc = b.get(k, 0.0)
-            for j in rows[k]:
-                if j > k and j in x:
-                    acc = acc - y[(k, j)] * x[j]
-            x[k] = acc * inv_pivot[k] if k in inv_pivot else acc / y[(k, k)]
-        return {self.nodes[k]: np.asarray(x[k]) for k in targets}
+        """Node voltages (V) for injected currents rhs (A into each node); all nodes if want is None.
+
+        Gaussian elimination in the natural node order over the nonzero entries only, vectorised
+        over the broadcast shape of the entries. The sequence of operations depends only on the
+        network's structure and is planned once (:func:`_elimination_plan`); it then runs in place
+        in a per-thread workspace, so a solve allocates little beyond the voltages it returns.
+        Capacitances count only after :meth:`at` (before it they are open).
+        """
+        caps = self.cap if self.s is not None else {}
+        entries = {k: (self.y.get(k), caps.get(k)) for k in set(self.y) | set(caps)}
+        rhs_idx = {self.index[k]: np.asarray(v) for k, v in rhs.items()}
+        targets = frozenset(range(len(self.nodes)) if want is None else (self.index[w] for w in want))
+        plan = _elimination_plan(len(self.nodes), frozenset(entries), frozenset(rhs_idx), targets)
+        s = self.s
+        imaginary = s is not None and np.iscomplexobj(s) and not np.any(s.real)
+        shapes = [np.shape(v) for pair in entries.values() for v in pair if v is not None]
+        shapes += [np.shape(v) for v in rhs_idx.values()]
+        if caps and s is not None:
+            shapes.append(s.shape)
+            dtype = np.result_type(s, *(v for pair in entries.values() for v in pair if v is not None))
+        else:
+            dtype = np.result_type(*(v for pair in entries.values() for v in pair if v is not None))
+        dtype = np.result_type(dtype, *rhs_idx.values())
+        shape = np.broadcast_shapes(*shapes)
+        work = _workspace(plan.slots + 1, shape, dtype)
+        scratch = work[plan.slots]
+        for key, (g, c) in entries.items():  # fill the matrix entries: G + s*C
+            w = work[plan.slot[key]]
+            if c is None:
+                w[...] = g
+            elif imaginary:
+                w.real = 0.0 if g is None else g
+                np.multiply(s.imag, c, out=w.imag)
+            else:
+                np.multiply(s, c, out=w)
+                if g is not None:
+                    w += g
+        for i, v in rhs_idx.items():
+            work[plan.slot[("b", i)]] = v
+        for op, target, a, b in plan.ops:  # run the plan in place
+            t = work[target]
+            if op == "inv":
+                np.reciprocal(t, out=t)
+            elif op == "scale":
+                t *= work[a]
+            elif op == "sub":  # t -= a*b
+                np.multiply(work[a], work[b], out=scratch)
+                t -= scratch
+            elif op == "zero":
+                t[...] = 0.0
+            else:  # "neg": t = -a*b (a fill-in, or the first term of a node without injection)
+                np.multiply(work[a], work[b], out=t)
+                np.negative(t, out=t)
+        return {self.nodes[k]: work[plan.slot[("x", k)]].copy() for k in targets}
+
+
+class _Plan:
+    """Operations of one elimination: (op, target slot, a slot, b slot); slots index the workspace."""
+
+    def __init__(self) -> None:
+        self.slot: dict = {}
+        self.ops: list[tuple[str, int, int, int]] = []
+
+    @property
+    def slots(self) -> int:
+        return len(set(self.slot.values()))
+
+    def new(self, key: object) -> int:
+        self.slot[key] = self.slots
+        return self.slot[key]
+
+
+_PLANS: dict[tuple, _Plan] = {}
+_WORK = threading.local()
+WORKSPACE_KEEP = 1 << 25  # bytes of solver workspace a thread keeps between solves (larger ones are dropped)
+
+
+def _elimination_plan(n: int, entries: frozenset, rhs: frozenset, targets: frozenset) -> _Plan:
+    """The in-place elimination and back substitution for one structure (cached)."""
+    key = (n, entries, rhs, targets)
+    plan = _PLANS.get(key)
+    if plan is not None:
+        return plan
+    plan = _Plan()
+    for e in sorted(entries):
+        plan.new(e)
+    for i in sorted(rhs):
+        plan.new(("b", i))
+    rows: list[set[int]] = [set() for _ in range(n)]
+    cols: list[set[int]] = [set() for _ in range(n)]
+    for i, j in entries:
+        rows[i].add(j)
+        cols[j].add(i)
+    has_b = set(rhs)
+    for k in range(n):
+        if (k, k) not in plan.slot:
+            raise ValueError(f"node {k} has no diagonal entry")
+        pivot = plan.slot[(k, k)]
+        plan.ops.append(("inv", pivot, -1, -1))  # the pivot slot holds 1/pivot from here on
+        below = sorted(i for i in cols[k] if i > k)
+        right = sorted(j for j in rows[k] if j > k)
+        for i in below:
+            f = plan.slot[(i, k)]
+            plan.ops.append(("scale", f, pivot, -1))
+            for j in right:
+                if (i, j) in plan.slot:
+                    plan.ops.append(("sub", plan.slot[(i, j)], f, plan.slot[(k, j)]))
+                else:
+                    plan.ops.append(("neg", plan.new((i, j)), f, plan.slot[(k, j)]))
+                    rows[i].add(j)
+                    cols[j].add(i)
+            if k in has_b:
+                if i in has_b:
+                    plan.ops.append(("sub", plan.slot[("b", i)], f, plan.slot[("b", k)]))
+                else:
+                    plan.ops.append(("neg", plan.new(("b", i)), f, plan.slot[("b", k)]))
+                    has_b.add(i)
+    for k in range(n - 1, min(targets) - 1, -1):  # back substitution, x[k] held in b[k]'s slot
+        acc = plan.slot.get(("b", k))
+        for j in sorted(rows[k]):
+            if j > k:
+                if acc is None:
+                    acc = plan.new(("b", k))
+                    plan.ops.append(("neg", acc, plan.slot[(k, j)], plan.slot[("x", j)]))
+                else:
+                    plan.ops.append(("sub", acc, plan.slot[(k, j)], plan.slot[("x", j)]))
+        if acc is None:  # no injection and nothing to its right: the node's voltage is zero
+            acc = plan.new(("b", k))
+            plan.ops.append(("zero", acc, -1, -1))
+        plan.ops.append(("scale", acc, plan.slot[(k, k)], -1))
+        plan.slot[("x", k)] = acc
+    _PLANS[key] = plan
+    return plan
+
+
+def _workspace(slots: int, shape: tuple[int, ...], dtype: np.dtype) -> np.ndarray:
+    """Arrays work[0..slots-1] of the given shape: a per-thread buffer reused between solves."""
+    size = slots * int(np.prod(shape, dtype=np.int64))
+    nbytes = size * np.dtype(dtype).itemsize
+    buffers = getattr(_WORK, "buffers", None)
+    if buffers is None:
+        buffers = _WORK.buffers = {}
+    buf = buffers.get(np.dtype(dtype))
+    if buf is None or buf.size < size:
+        buf = np.empty(size, dtype=dtype)
+        if nbytes <= WORKSPACE_KEEP:
+            buffers[np.dtype(dtype)] = buf
+    return buf[:size].reshape((slots, *shape))
 
 
 # ----------------------------------------------------------------------------- response
 
-def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray,
-                      n: int) -> tuple[np.ndarray, np.ndarray]:
-    """f_low, f_high (Hz) where |H| falls to |reference|/sqrt(2), for n candidates.
+def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
+                      reference: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """f_low, f_high (Hz) where |H| falls to |reference|/sqrt(2), one per candidate.
 
-    ``response(f)`` maps frequencies of shape (n, k) (Hz) to complex gains (n, k). A
-    one-per-decade log grid over SWEEP brackets each crossing (the last crossing below
-    the mid-band peak, the first above it), then Illinois false position in log f on the dB
-    scale refines both at once. Corners beyond SWEEP are reported at its ends.
+    ``response(f)`` maps frequencies (Hz) of shape (k, candidates) or (k, 1) to complex gains
+    (k, candidates). A one-per-decade log grid over SWEEP brackets each crossing (the last
+    crossing below the mid-band peak, the first above it), then Illinois false position in
+    log f refines both at once on d = -ln(|ref|^2/|H|^2 - 1), zero at the corner and exactly
+    linear in log f for a maximally flat skirt (|H|^2 = |ref|^2/(1 + (fc/f)^2n), any order n),
+    so a few steps suffice. Corners beyond SWEEP are reported at its ends.
     """
     grid = np.logspace(np.log10(SWEEP[0]), np.log10(SWEEP[1]), COARSE_POINTS)
-    level = 20.0 * np.log10(np.abs(reference) / np.sqrt(2.0))[:, None]
-    db = 10.0 * np.log10(_magnitude2(response(np.broadcast_to(grid, (n, grid.size)))) + 1e-300) - level
+    ref2 = _magnitude2(reference)
+
+    def distance(h: np.ndarray) -> np.ndarray:  # > 0 inside the band, <= 0 beyond the corner
+        return -np.log(np.maximum(ref2 / (_magnitude2(h) + 1e-300) - 1.0, 1e-30))
+
+    db = distance(response(grid[:, None]))  # (k, n)
+    n = db.shape[1]
     above = db > 0.0
-    peak = np.argmax(db, axis=1)
-    idx = np.arange(grid.size)
-    low_i = np.where(~above & (idx < peak[:, None]), idx, -1).max(axis=1)  # last point below, left of peak
-    high_i = np.where(~above & (idx > peak[:, None]), idx, grid.size).min(axis=1)
-    i_out = np.stack([low_i, high_i], axis=1)  # (n, 2): outside point of each crossing
+    peak = np.argmax(db, axis=0)
+    idx = np.arange(grid.size)[:, None]
+    low_i = np.where(~above & (idx < peak), idx, -1).max(axis=0)  # last point below, left of peak
+    high_i = np.where(~above & (idx > peak), idx, grid.size).min(axis=0)
+    i_out = np.stack([low_i, high_i])  # (2, n): outside point of each crossing
     inside = (i_out >= 0) & (i_out < grid.size)
     i0 = np.clip(i_out, 0, grid.size - 1)
-    i1 = np.clip(i0 + np.array([1, -1]), 0, grid.size - 1)
-    rows = np.arange(n)[:, None]
-    x0, x1 = np.log10(grid[i0]), np.log10(grid[i1])
-    d0, d1 = db[rows, i0], db[rows, i1]
-    last = np.zeros((n, 2), dtype=bool)
+    i1 = np.clip(i0 + np.array([[1], [-1]]), 0, grid.size - 1)
+    cols = np.arange(n)
+    log_grid = np.log10(grid)
+    x0, x1 = log_grid[i0], log_grid[i1]
+    d0, d1 = db[i0, cols], db[i1, cols]
+    last = np.zeros((2, n), dtype=bool)
     for _ in range(REFINE_STEPS):  # Illinois false position on both crossings at once
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
         xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
-        dm = 10.0 * np.log10(_magnitude2(response(10.0 ** xm)) + 1e-300) - level
+        dm = distance(response(10.0 ** xm))
         out_side = dm <= 0.0
         d1 = np.where(out_side & last, 0.5 * d1, d1)  # an end kept twice: halve its value
         d0 = np.where(~out_side & ~last, 0.5 * d0, d0)
@@ -315,8 +437,8 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray], reference: n
         x1, d1 = np.where(out_side, x1, xm), np.where(out_side, d1, dm)
         last = out_side
     xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
-    corners = np.where(inside, 10.0 ** xm, np.array(SWEEP))
-    return corners[:, 0], corners[:, 1]
+    corners = np.where(inside, 10.0 ** xm, np.array(SWEEP)[:, None])
+    return corners[0], corners[1]
 
 
 # ----------------------------------------------------------------------------- noise
@@ -327,22 +449,23 @@ def noise_integrals(network: Network, out_node: str, source_node: str,
     """Equivalent input noise (V rms over band, without the source's own noise) and NF (dB).
 
     ``network`` is the stage network (AC) with the source resistance (noiseless) and the
-    load in place, evaluated at log-spaced frequencies over the band; its recorded noise current
+    load in place, element values 1-D over candidates, evaluated at log-spaced frequencies
+    over the band (arrays (frequencies, candidates)); its recorded noise current
     sources (resistors, shot noise) are summed at the output through the adjoint solve,
     which gives every node's transimpedance z (V/A) to out_node at once. The source is a
     Norton current vs/r_source into source_node, so the gain is z[source_node]/r_source
     and the source's own noise is 4kT*r_source. Matches SPICE .noise input-referred total.
     """
-    f = np.geomspace(band[0], band[1], NOISE_POINTS)[None, :]
+    f = np.geomspace(band[0], band[1], NOISE_POINTS)[:, None]
     net = network.at(2j * np.pi * f)
     z = net.transposed().solve({out_node: np.ones(1)})
-    gain2 = _magnitude2(z[source_node]) / r_source[:, None] ** 2
+    gain2 = _magnitude2(z[source_node]) / r_source ** 2
     out = 0.0
     for a, b, psd in net.noise:
         h = (z[a] if a is not None else 0.0) - (z[b] if b is not None else 0.0)
         out = out + psd * _magnitude2(h)
     in_psd = out / gain2
-    ein2 = np.sum(power_law_segments(f, in_psd), axis=1)
+    ein2 = np.sum(power_law_segments(f, in_psd, axis=0), axis=0)
     four_kt = 4.0 * BOLTZMANN * (temp_c + KELVIN_OFFSET)
     source2 = four_kt * r_source * (band[1] - band[0])
     return np.sqrt(ein2), 10.0 * np.log10(1.0 + ein2 / source2)
@@ -354,12 +477,18 @@ def _magnitude2(h: np.ndarray | float) -> np.ndarray:
     return h.real * h.real + h.imag * h.imag
 
 
-def power_law_segments(f: np.ndarray, psd: np.ndarray) -> np.ndarray:
-    """Integral (per segment) of a PSD sampled at log-spaced f, taken as a power law between points.
+def power_law_segments(f: np.ndarray, psd: np.ndarray, axis: int = -1) -> np.ndarray:
+    """Integral (per segment) of a PSD sampled at log-spaced f (along ``axis``, same number of
+    dimensions as psd), taken as a power law between points.
 
     Exact for the 1/f^k skirts that coupling corners give the input-referred noise.
     """
-    f0, f1, s0, s1 = f[..., :-1], f[..., 1:], psd[..., :-1], psd[..., 1:]
+    f, psd = np.asarray(f), np.asarray(psd)
+
+    def part(a: np.ndarray, s: slice) -> np.ndarray:
+        return a[(slice(None),) * (axis % a.ndim) + (s,)]
+    f0, f1 = part(f, slice(None, -1)), part(f, slice(1, None))
+    s0, s1 = part(psd, slice(None, -1)), part(psd, slice(1, None))
     k = np.log(s1 / s0) / np.log(f1 / f0)
     ratio = (f1 / f0) ** (k + 1.0)
     near = np.abs(k + 1.0) < 1e-6

@@ -18,7 +18,7 @@ from typing import Callable
 import numpy as np
 
 from optimizer.devices import Device, hfe_temperature_factor
-from optimizer.topologies.base import Conditions, Topology
+from optimizer.topologies.base import CHUNK_FAST, CHUNK_FULL, Conditions, Topology
 
 TEMPERATURE_BINS = 5  # Monte Carlo temperatures are drawn from this many levels
 
@@ -75,25 +75,40 @@ def monte_carlo_yield(topology: Topology, parts: dict[str, np.ndarray], device: 
 
     By default the builds are judged on the fast core metrics (bias, gain, impedances,
     swing, current, ratings); the band corners and noise, which need ``full=True``, are
-    covered by :func:`worst_case` instead."""
+    covered by :func:`worst_case` instead.
+
+    Each sample's temperature is one of TEMPERATURE_BINS levels, drawn uniformly; the builds
+    of one level are drawn and judged in blocks of candidate rows that fit one evaluation
+    chunk, so every block is one contiguous call (``passes`` sees a block of rows, all of
+    that level's samples) and the working set stays small whatever the candidate count.
+    """
     rng = np.random.default_rng(seed)
-    n = np.asarray(next(iter(parts.values()))).shape[0]
-    drawn = {
-        role: np.asarray(value, dtype=float)[:, None]
-        * (1.0 + rng.uniform(-1.0, 1.0, (n, samples)) * tolerances.get(role, 0.0))
-        for role, value in parts.items()
-    }
-    hfe_nominal = np.exp(rng.uniform(np.log(device.hfe_min), np.log(device.hfe_max), (n, samples)))
+    values = {role: np.asarray(value, dtype=float).reshape(-1) for role, value in parts.items()}
+    n = next(iter(values.values())).shape[0]
     levels = np.linspace(*temperature_range, TEMPERATURE_BINS)
-    level_of_sample = rng.integers(0, TEMPERATURE_BINS, samples)
-    ok = np.zeros((n, samples), dtype=bool)
-    for k, temperature in enumerate(levels):
-        columns = level_of_sample == k
-        if not columns.any():
+    per_level = np.bincount(rng.integers(0, TEMPERATURE_BINS, samples), minlength=TEMPERATURE_BINS)
+    log_hfe = (np.log(device.hfe_min), np.log(device.hfe_max))
+    passed = np.zeros(n)
+    for temperature, m in zip(levels, per_level):
+        if m == 0:
             continue
-        sub_parts = {role: v[:, columns] for role, v in drawn.items()}
-        hfe = hfe_nominal[:, columns] * hfe_temperature_factor(float(temperature))
-        metrics = _evaluate_flat(topology, sub_parts, device,
-                                 replace(conditions, temperature=float(temperature)), hfe, full)
-        ok[:, columns] = passes(metrics) & metrics["active"]
-    return ok.mean(axis=1)
+        at_t = replace(conditions, temperature=float(temperature))
+        hfe_factor = hfe_temperature_factor(float(temperature))
+        rows = max(1, (CHUNK_FULL if full else CHUNK_FAST) // int(m))
+        for i in range(0, n, rows):
+            block = {}
+            for role, v in values.items():
+                tol = tolerances.get(role, 0.0)
+                drawn = rng.uniform(1.0 - tol, 1.0 + tol, (v[i:i + rows].size, m))
+                drawn *= v[i:i + rows, None]
+                block[role] = drawn
+            hfe = rng.uniform(*log_hfe, drawn.shape)
+            np.exp(hfe, out=hfe)
+            hfe *= hfe_factor
+            result = topology.evaluate({r: d.reshape(-1) for r, d in block.items()}, device, at_t,
+                                       hfe=hfe.reshape(-1), full=full)
+            sample = {k: np.asarray(v).reshape(drawn.shape) for k, v in result.metrics.items()}
+            sample.update({k: np.asarray(v).reshape(drawn.shape) for k, v in result.ratings.items()})
+            sample["active"] = np.asarray(result.operating_point["active"]).reshape(drawn.shape)
+            passed[i:i + rows] += np.count_nonzero(passes(sample) & sample["active"], axis=1)
+    return passed / samples
