@@ -145,13 +145,8 @@ class JobPool:
 def _mark_failed(storage: Any, search_id: str) -> None:
     """Record status 'failed' on the study (so it is not resumed again and again)."""
     try:
-        from optimizer import search as search_module
+        from optimizer.search import fail_search
 
-        mark = getattr(search_module, "fail_search", None)
-        if mark is not None:
-            mark(storage, search_id)
-            return
-        study_id = storage.get_study_id_from_name(search_id)
-        storage.set_study_user_attr(study_id, "status", "failed")
+        fail_search(storage, search_id)
     except Exception:
         log.exception("could not mark search %s as failed", search_id)

@@ -10,7 +10,8 @@ Pure computation; no web code lives here (the REST service in ``api`` calls in).
 """
 from optimizer.candidates import assess
 from optimizer.catalog import list_catalogs, load_catalog
+from optimizer.search import search  # the function; the module's names: from optimizer.search import ...
 from optimizer.spec import load_spec, parse_spec
 from optimizer.topologies import TOPOLOGIES, get_topology
 
-__all__ = ["assess", "list_catalogs", "load_catalog", "load_spec", "parse_spec", "TOPOLOGIES", "get_topology"]
+__all__ = ["assess", "search", "list_catalogs", "load_catalog", "load_spec", "parse_spec", "TOPOLOGIES", "get_topology"]

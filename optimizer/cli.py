@@ -162,7 +162,8 @@ def _progress_printer(stream=sys.stderr) -> Callable[[int, int], None] | None:
 def _run_or_reuse(args: argparse.Namespace, spec):
     """The finished search of ``spec`` in --storage: reused when the very same spec (and seed
     and budget) was searched before, resumed when it was interrupted, run otherwise."""
-    from optimizer import search as engine
+    from optimizer.search import (create_search, delete_search, extend_search, list_searches, load_search,
+                                  open_storage, run_search, spec_search_id)
     from optimizer.spec import parse_spec, spec_to_dict
 
     overrides = {k: v for k, v in (("trials", args.trials), ("seed", args.seed)) if v is not None}
@@ -170,21 +171,21 @@ def _run_or_reuse(args: argparse.Namespace, spec):
         data = spec_to_dict(spec)
         data["search"] = {**data["search"], **overrides}
         spec = parse_spec(data)
-    storage = engine.open_storage(args.storage)
-    search_id = engine.spec_search_id(spec)
-    known = {s["id"]: s for s in engine.list_searches(storage)}
+    storage = open_storage(args.storage)
+    search_id = spec_search_id(spec)
+    known = {s["id"]: s for s in list_searches(storage)}
     if search_id in known and args.fresh:
-        engine.delete_search(storage, search_id)
+        delete_search(storage, search_id)
         del known[search_id]
     if search_id not in known:
-        engine.create_search(spec, storage, search_id=search_id)
+        create_search(spec, storage, search_id=search_id)
     elif known[search_id]["status"] == "done":
         print(f"reusing the stored search {search_id} of this spec from {args.storage} (--fresh to run it again)",
               file=sys.stderr)
     elif known[search_id]["status"] in ("cancelled", "failed"):
-        engine.extend_search(storage, search_id, 0)  # queue it again; finished trials are kept
-    engine.run_search(storage, search_id, progress=_progress_printer())
-    return engine.load_search(storage, search_id, top=max(args.top, 1))
+        extend_search(storage, search_id, 0)  # queue it again; finished trials are kept
+    run_search(storage, search_id, progress=_progress_printer())
+    return load_search(storage, search_id, top=max(args.top, 1))
 
 
 def _short(metric: str, value: float | None, unit: str) -> str:

@@ -72,6 +72,9 @@ def exhaustive(spec: Spec, topology: str | None = None, device: str | None = Non
         raise InputError.single("topology", topology, f"one of the spec's topologies: {', '.join(space.topologies)}")
     if device not in space.devices:
         raise InputError.single("device", device, f"one of the spec's devices: {', '.join(space.devices)}")
+    if spec.search.capacitors != "sized":
+        raise InputError.single("search.capacitors", spec.search.capacitors,
+                                "'sized' (the oracle enumerates resistors and sizes the capacitors)")
     model = get_topology(topology)
     n = space.resistors.values.size
     roles = model.resistors

@@ -19,6 +19,7 @@ import json
 import math
 import time
 import uuid
+import warnings
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Callable, Iterable
@@ -38,7 +39,7 @@ from optimizer.errors import InputError
 from optimizer.sampler import NeighbourSampler
 from optimizer.sizing import size_capacitors
 from optimizer.spec import Spec, check_against_catalog, parse_spec, spec_to_dict
-from optimizer.storage import open_storage
+from optimizer.storage import TrialHeartbeat, claim_batch, open_storage
 from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import METRICS
@@ -49,13 +50,13 @@ optuna.logging.set_verbosity(optuna.logging.WARNING)
 STATUSES = ("queued", "running", "done", "failed", "cancelled")
 SHORTLIST_SAMPLES = 500  # Monte Carlo builds for each shortlisted design's yield
 SHORTLIST_SIZE = 20  # designs given the full assessment (worst case, yield) when a search finishes
-FRONT_LIMIT = 40  # front points that carry a yield figure
+FRONT_YIELD_POINTS = 12  # front points (evenly spread along it) that carry a yield figure
 BAD_OBJECTIVE = 1e12  # stand-in for a metric the model cannot give (e.g. a stage that is not active)
 ABSENT_RATING = 1e30  # W: the rating of a part left out (never binds)
 ABSENT = -1  # index of an optional part left out (feedback_ce without an emitter resistor)
 
 __all__ = ["SearchSpace", "SearchResult", "open_storage", "create_search", "run_search", "load_search",
-           "search_status", "list_searches", "cancel_search", "delete_search", "extend_search", "search",
+           "search_status", "list_searches", "cancel_search", "delete_search", "extend_search", "fail_search", "search",
            "evaluate_designs", "evaluate_group", "rank_records", "pareto_mask"]
 
 
@@ -90,11 +91,12 @@ class PartTable:
 
 @dataclass(frozen=True)
 class Design:
-    """One point of the space: topology, device id and resistor indices by role (ABSENT = left out)."""
+    """One point of the space: topology, device id and part indices by role (ABSENT = an optional
+    part left out). Resistors always; capacitors only when the spec searches them."""
 
     topology: str
     device: str
-    resistors: tuple[tuple[str, int], ...]
+    parts: tuple[tuple[str, int], ...]
 
 
 @dataclass
@@ -147,11 +149,8 @@ class SearchSpace:
                     else self.topologies[0])
         device = (trial.suggest_categorical("device", list(self.devices)) if len(self.devices) > 1
                   else next(iter(self.devices)))
-        model = get_topology(topology)
-        top = self.resistors.values.size - 1
-        chosen = tuple((role, trial.suggest_int(f"{topology}.{role}",
-                                                ABSENT if role in model.optional_parts else 0, top))
-                       for role in model.resistors)
+        chosen = tuple((name.split(".", 1)[1], trial.suggest_int(name, d.low, d.high))
+                       for name, d in self.distributions({"topology": topology}).items() if "." in name)
         return Design(topology, device, chosen)
 
     def distributions(self, params: dict[str, object]) -> dict[str, optuna.distributions.BaseDistribution]:
@@ -167,11 +166,14 @@ class SearchSpace:
         for role in model.resistors:
             out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(
                 ABSENT if role in model.optional_parts else 0, top)
+        if self.spec.search.capacitors == "searched":
+            for role in model.capacitors:
+                out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(0, self.capacitors.values.size - 1)
         return out
 
     def params_of(self, design: Design) -> dict[str, object]:
         """Trial parameters that reproduce ``design`` (for enqueueing seeds)."""
-        params: dict[str, object] = {f"{design.topology}.{role}": int(i) for role, i in design.resistors}
+        params: dict[str, object] = {f"{design.topology}.{role}": int(i) for role, i in design.parts}
         if len(self.topologies) > 1:
             params["topology"] = design.topology
         if len(self.devices) > 1:
@@ -189,13 +191,15 @@ class SearchSpace:
                     hand = hand_design(topology, hand_requirements(self.spec, device))
                 except (InputError, ValueError, ZeroDivisionError):
                     continue  # the hand method has no answer for this spec: no seed
-                resistors = {r: v for r, v in hand.items() if r in model.resistors}
-                if not all(np.isfinite(v) and v > 0 for v in resistors.values()):
+                roles = [name.split(".", 1)[1] for name in self.distributions({"topology": topology}) if "." in name]
+                chosen = {r: v for r, v in hand.items() if r in roles}
+                if set(chosen) != set(roles) or not all(np.isfinite(v) and v > 0 for v in chosen.values()):
                     continue
-                for rounded in rounded_designs(resistors, self.spec.parts.resistor_series,
+                for rounded in rounded_designs(chosen, self.spec.parts.resistor_series,
                                                self.spec.parts.capacitor_series, limit=16):
-                    idx = self.resistors.index_of(np.array([rounded[r] for r in model.resistors]))
-                    out.append(Design(topology, device_id, tuple(zip(model.resistors, (int(i) for i in idx)))))
+                    out.append(Design(topology, device_id, tuple(
+                        (r, int((self.capacitors if r.startswith("c_") else self.resistors).index_of(
+                            np.array([rounded[r]]))[0])) for r in roles)))
         return list(dict.fromkeys(out))
 
 
@@ -210,7 +214,8 @@ FULL_ONLY_OPTIMISTIC = {"f_low": 0.0, "f_high": np.inf, "noise_ein_v": 0.0, "noi
 def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index: dict[str, np.ndarray],
                    *, full: bool = True) -> dict:
     """Metrics, violations, score and objective values of designs of one topology and device,
-    given as resistor indices by role (arrays; ABSENT = optional part left out).
+    given as part indices by role (arrays; ABSENT = optional part left out). Capacitors
+    not given are sized after the resistors.
 
     ``full=False`` is the optimistic bound the exhaustive oracle prunes with: no capacitor
     sizing (``c_in`` the smallest allowed value, which maximises the input impedance seen
@@ -220,10 +225,14 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
     spec, topology, device = space.spec, get_topology(topology_name), space.devices[device_id]
     rt, ct = space.resistors, space.capacitors
     conditions = scoring.conditions_from_spec(spec)
+    given_caps = {c: ct.values[i] for c, i in index.items() if c.startswith("c_")}
+    index = {r: i for r, i in index.items() if not r.startswith("c_")}
     present = {r: i != ABSENT for r, i in index.items()}
     resistors = {r: np.where(present[r], rt.values[np.maximum(i, 0)], 0.0) for r, i in index.items()}
     n = next(iter(resistors.values())).size
-    if full:
+    if given_caps:
+        caps = given_caps
+    elif full:
         caps = size_capacitors(topology, resistors, device, conditions, ct.values)
     else:
         caps = {c: np.full(n, ct.values[0] if c == "c_in" else ct.values[-1]) for c in topology.capacitors}
@@ -275,8 +284,8 @@ def evaluate_designs(space: SearchSpace, designs: list[Design]) -> list[dict]:
     for k, d in enumerate(designs):
         groups.setdefault((d.topology, d.device), []).append(k)
     for (topology, device_id), members in groups.items():
-        roles = [r for r, _ in designs[members[0]].resistors]
-        index = {r: np.array([dict(designs[k].resistors)[r] for k in members]) for r in roles}
+        roles = [r for r, _ in designs[members[0]].parts]
+        index = {r: np.array([dict(designs[k].parts)[r] for k in members]) for r in roles}
         g = evaluate_group(space, topology, device_id, index)
         for j, k in enumerate(members):
             metrics = {m: _finite(v[j]) for m, v in g["metrics"].items()}
@@ -400,7 +409,9 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
                seed_offset: int = 0, catalog: Catalog | None = None) -> None:
     """Run batches (ask, evaluate in one vectorised call, tell) until the budget is met, the
     search is cancelled or ``should_stop()`` is true. Several processes may share a search:
-    each asks at most the budget left, so it is overshot by less than one batch per runner."""
+    counting and asking is one claimed step (storage.claim_batch), so together they finish
+    exactly the budget; running trials carry heartbeats and a dead runner's trials are failed
+    and retried at the next batch of any runner (storage.TrialHeartbeat)."""
     study, spec = _load(storage, search_id)
     space = SearchSpace.build(spec, catalog)
     study.sampler = _sampler(space, seed_offset)
@@ -413,27 +424,32 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
     while True:
         if study.user_attrs.get("status") == "cancelled" or (should_stop and should_stop()):
             return
-        finished, running = _counts(study)
-        if progress:
-            progress(finished, budget)
-        wanted = min(spec.search.batch_size, budget - finished - running)
-        if wanted <= 0 or (max_batches is not None and batches >= max_batches):
-            break
-        trials = [study.ask() for _ in range(wanted)]
-        designs = [space.suggest(t) for t in trials]
-        try:
-            fresh = list(dict.fromkeys(d for d in designs if d not in known))
-            known.update(zip(fresh, evaluate_designs(space, fresh)))
-            records = [known[d] for d in designs]
-        except Exception:
-            for t in trials:
-                study.tell(t, state=TrialState.FAIL)
-            study.set_user_attr("status", "failed")
-            raise
-        for t, record in zip(trials, records):
-            t.set_user_attr("record", record)
-            t.set_constraint("violation", record["total_violation"])
-            study.tell(t, record["objectives"])
+        with warnings.catch_warnings():  # Optuna marks the stale-trial check experimental
+            warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
+            optuna.storages.fail_stale_trials(study)  # a dead runner's trials: failed, queued again
+        with TrialHeartbeat(storage) as heartbeat:
+            with claim_batch(storage, search_id):
+                finished, running = _counts(study)
+                if progress:
+                    progress(finished, budget)
+                wanted = min(spec.search.batch_size, budget - finished - running)
+                if wanted <= 0 or (max_batches is not None and batches >= max_batches):
+                    break
+                trials = [heartbeat.add(study.ask()) for _ in range(wanted)]
+            designs = [space.suggest(t) for t in trials]
+            try:
+                fresh = list(dict.fromkeys(d for d in designs if d not in known))
+                known.update(zip(fresh, evaluate_designs(space, fresh)))
+                records = [known[d] for d in designs]
+            except Exception:
+                for t in trials:
+                    study.tell(t, state=TrialState.FAIL)
+                study.set_user_attr("status", "failed")
+                raise
+            for t, record in zip(trials, records):
+                t.set_user_attr("record", record)
+                t.set_constraint("violation", record["total_violation"])
+                study.tell(t, record["objectives"])
         batches += 1
     finished, running = _counts(study)
     if finished >= budget and running == 0 and study.user_attrs.get("status") == "running":
@@ -468,9 +484,11 @@ def _summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int) 
     candidates = [shortlist[k] for k in order] + [candidate_from_record(space, r) for r in ranked[top:]]
     for rank, c in enumerate(candidates, 1):
         c["rank"] = rank
+    points = _front(space, ranked)
+    with_yield = set(np.linspace(0, len(points) - 1, min(len(points), FRONT_YIELD_POINTS)).round().astype(int))
     front = []
-    for k, r in enumerate(_front(space, ranked)):
-        c = _shortlist_candidate(space, r, samples) if k < FRONT_LIMIT else candidate_from_record(space, r)
+    for k, r in enumerate(points):
+        c = _shortlist_candidate(space, r, samples) if k in with_yield else candidate_from_record(space, r)
         c["objectives"] = r["objectives"]
         front.append(c)
     return {"candidates": candidates, "front": front, "evaluated": len(ranked)}
@@ -576,10 +594,16 @@ def cancel_search(storage: BaseStorage, search_id: str) -> None:
         study.set_user_attr("status", "cancelled")
 
 
+def fail_search(storage: BaseStorage, search_id: str) -> None:
+    """Mark a search 'failed' (its runner hit an error); extend_search queues it again."""
+    study, _ = _load(storage, search_id)
+    study.set_user_attr("status", "failed")
+
+
 def extend_search(storage: BaseStorage, search_id: str, trials: int) -> None:
-    """Raise a search's budget by ``trials`` and queue it again (resume or extend)."""
-    if not isinstance(trials, int) or trials < 1:
-        raise InputError.single("trials", trials, "a whole number of extra trials, 1 or more")
+    """Raise a search's budget by ``trials`` (0: as it was) and queue it again (resume or extend)."""
+    if not isinstance(trials, int) or isinstance(trials, bool) or trials < 0:
+        raise InputError.single("trials", trials, "a whole number of extra trials, 0 or more")
     study, _ = _load(storage, search_id)
     study.set_user_attr("budget", int(study.user_attrs["budget"]) + trials)
     study.set_user_attr("status", "queued")

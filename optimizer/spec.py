@@ -312,11 +312,14 @@ ObjectiveItem = Annotated[Objective, BeforeValidator(_objective_input), WithJson
 
 
 class Search(_Section):
-    """Search budget and reproducibility."""
+    """Search budget, reproducibility, and whether capacitors are searched or sized."""
 
     trials: _count(1, 1_000_000, "2k") = 2000
     seed: _count(0, 2**32 - 1, "0") = 0
     batch_size: _count(1, 100_000, "64") = 64
+    capacitors: Literal["sized", "searched"] = Field(
+        "sized", description="sized: the smallest series values meeting the band's low corner, chosen "
+                             "after the resistors; searched: capacitor values are search parameters too")
 
 
 def _unique(values: tuple, label: str) -> tuple:

@@ -8,14 +8,31 @@
   storage, the shared deployment that any number of workers join.
 
 Storages are cached per URL within a process, so the journal is replayed once.
+
+Crash safety in a shared (RDB) storage: every running trial carries a heartbeat
+(:class:`TrialHeartbeat`, recorded as soon as the trial is asked and then every
+``STAGEFIT_HEARTBEAT_INTERVAL`` seconds, default 10); a running trial whose heartbeat is
+older than ``STAGEFIT_GRACE_PERIOD`` seconds (default 30) belonged to a worker that died,
+and the next batch of any worker fails it and queues it again (Optuna's heartbeat check and
+retry callback, at most 3 retries). :func:`claim_batch` makes "count the trials, ask the
+next batch" one step across every process sharing a search, so a budget is met exactly.
 """
 from __future__ import annotations
 
+import fcntl
+import hashlib
+import inspect
+import logging
+import os
 import threading
+import weakref
+from contextlib import contextmanager
 from pathlib import Path
+from typing import Iterator
 
 import optuna
 from optuna.storages import BaseStorage
+from optuna.storages._heartbeat import is_heartbeat_enabled
 
 from optimizer.errors import InputError
 
@@ -23,17 +40,130 @@ DEFAULT_JOURNAL = Path("runs") / "stagefit.journal"
 _RDB_SCHEMES = ("sqlite", "postgresql", "postgres", "mysql")
 _cache: dict[str, BaseStorage] = {}
 _lock = threading.Lock()
+_claim_files: "weakref.WeakKeyDictionary[BaseStorage, Path]" = weakref.WeakKeyDictionary()
+_claim_locks: dict[str, threading.Lock] = {}
+HEARTBEAT_INTERVAL = 10  # s between heartbeats of a running trial (STAGEFIT_HEARTBEAT_INTERVAL)
+GRACE_PERIOD = 30  # s without a heartbeat before a running trial is failed (STAGEFIT_GRACE_PERIOD)
+MAX_RETRY = 3  # times a failed (stale) trial is queued again
+log = logging.getLogger("stagefit.storage")
 
 
 def _journal(path: Path) -> BaseStorage:
     path.parent.mkdir(parents=True, exist_ok=True)
     lock = optuna.storages.journal.JournalFileOpenLock(str(path))
-    return optuna.storages.journal.JournalStorage(
+    storage = optuna.storages.journal.JournalStorage(
         optuna.storages.journal.JournalFileBackend(str(path), lock_obj=lock))
+    _claim_files[storage] = path.with_name(path.name + ".claim")
+    return storage
+
+
+def _seconds(name: str, default: int) -> int:
+    text = os.environ.get(name, "").strip()
+    if not text:
+        return default
+    try:
+        value = int(text)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise InputError.single(name, text, "a whole number of seconds, at least 1")
+    return value
 
 
 def _rdb(url: str) -> BaseStorage:
-    return optuna.storages.RDBStorage(url, engine_kwargs={"pool_pre_ping": True})
+    """RDB storage with heartbeats on running trials and stale trials retried."""
+    interval = _seconds("STAGEFIT_HEARTBEAT_INTERVAL", HEARTBEAT_INTERVAL)
+    grace = _seconds("STAGEFIT_GRACE_PERIOD", max(GRACE_PERIOD, 3 * interval))
+    if grace <= interval:
+        raise InputError.single("STAGEFIT_GRACE_PERIOD", grace,
+                                f"more seconds than STAGEFIT_HEARTBEAT_INTERVAL ({interval})")
+    # Optuna 4.9 renamed the retry callback and its keyword; accept both.
+    retry_cls = getattr(optuna.storages, "RetryHeartbeatStaleTrialCallback", None) \
+        or optuna.storages.RetryFailedTrialCallback
+    keyword = ("heartbeat_stale_trial_callback"
+               if "heartbeat_stale_trial_callback" in inspect.signature(optuna.storages.RDBStorage).parameters
+               else "failed_trial_callback")
+    return optuna.storages.RDBStorage(url, engine_kwargs={"pool_pre_ping": True},
+                                      heartbeat_interval=interval, grace_period=grace,
+                                      **{keyword: retry_cls(max_retry=MAX_RETRY)})
+
+
+@contextmanager
+def claim_batch(storage: BaseStorage, search_id: str) -> Iterator[None]:
+    """Hold the search's claim: one runner at a time counts the trials and asks its batch,
+    across the threads of this process and the processes sharing ``storage`` (a PostgreSQL
+    advisory lock, or a lock file beside a journal), so that parallel runners never ask more
+    trials than the budget has left. A killed holder's claim is released with its connection
+    or file descriptor."""
+    with _lock:
+        local = _claim_locks.setdefault(search_id, threading.Lock())
+    with local:
+        if isinstance(storage, optuna.storages.RDBStorage) and storage.engine.dialect.name == "postgresql":
+            key = int.from_bytes(hashlib.blake2b(search_id.encode(), digest_size=8).digest(), "big", signed=True)
+            conn = storage.engine.connect().execution_options(isolation_level="AUTOCOMMIT")
+            try:
+                conn.exec_driver_sql("SELECT pg_advisory_lock(%(k)s)", {"k": key})
+                try:
+                    yield
+                finally:
+                    conn.exec_driver_sql("SELECT pg_advisory_unlock(%(k)s)", {"k": key})
+            except BaseException:
+                conn.invalidate()  # never hand a connection that may still hold the lock back to the pool
+                raise
+            finally:
+                conn.close()
+        elif storage in _claim_files:
+            with open(_claim_files[storage], "a") as handle:
+                fcntl.flock(handle, fcntl.LOCK_EX)
+                try:
+                    yield
+                finally:
+                    fcntl.flock(handle, fcntl.LOCK_UN)
+        else:  # in memory (one process) or another database: the thread lock is the claim
+            yield
+
+
+class TrialHeartbeat:
+    """Heartbeats for the running trials of one batch, where the storage keeps them (RDB):
+    :meth:`add` records one at once (a trial asked without a heartbeat would never be found
+    stale), and a thread records all of them every heartbeat interval until :meth:`close`.
+    A no-op for storages without heartbeats (journal, memory)."""
+
+    def __init__(self, storage: BaseStorage) -> None:
+        self._storage = storage
+        self._enabled = is_heartbeat_enabled(storage)
+        self._trial_ids: list[int] = []
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def add(self, trial: optuna.Trial) -> optuna.Trial:
+        if self._enabled:
+            self._storage.record_heartbeat(trial._trial_id)
+            self._trial_ids.append(trial._trial_id)
+            if self._thread is None:
+                self._thread = threading.Thread(target=self._beat, name="trial-heartbeat", daemon=True)
+                self._thread.start()
+        return trial
+
+    def _beat(self) -> None:
+        interval = self._storage.get_heartbeat_interval()
+        while not self._stop.wait(interval):
+            for trial_id in list(self._trial_ids):
+                try:
+                    self._storage.record_heartbeat(trial_id)
+                except Exception:  # the database away for a moment: the next beat tries again
+                    log.warning("heartbeat of trial %d not recorded", trial_id, exc_info=True)
+
+    def close(self) -> None:
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join()
+
+    def __enter__(self) -> "TrialHeartbeat":
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
 
 
 def open_storage(url: str | Path | None) -> BaseStorage:

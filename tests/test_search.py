@@ -126,3 +126,21 @@ def test_search_finds_the_exhaustive_optimum_and_its_front_is_the_true_front() -
         p = np.array(point["objectives"]) * np.array([1.0, -1.0])
         dominated = np.all(truth <= p + 1e-12, axis=1) & np.any(truth < p - 1e-12, axis=1)
         assert not dominated.any(), point["objectives"]
+
+
+def test_capacitors_can_be_searched_instead_of_sized() -> None:
+    spec = parse_spec({**SMALL, "search": {"trials": 128, "seed": 2, "capacitors": "searched"},
+                       "parts": {**SMALL["parts"], "capacitor_series": "E3", "capacitor_range": ["10n", "100u"]}})
+    space = SearchSpace.build(spec)
+    assert {"divider_ce.c_in", "divider_ce.c_out"} <= set(space.distributions({}))
+    result = search(spec, top=1)
+    allowed = set(space.capacitors.values.tolist())
+    for c in result.candidates[:20]:
+        assert {c["parts"]["c_in"]["value"], c["parts"]["c_out"]["value"]} <= allowed
+    values = {(c["parts"]["c_in"]["value"], c["parts"]["c_out"]["value"]) for c in result.candidates}
+    assert len(values) > 3  # the capacitors vary from trial to trial
+
+
+def test_bad_search_section_names_the_field() -> None:
+    with pytest.raises(InputError, match="search.capacitors"):
+        parse_spec({**SMALL, "search": {"capacitors": "guessed"}})
