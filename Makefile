@@ -5,7 +5,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test bench clean
+.PHONY: demo test bench clean cluster
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -14,14 +14,23 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 demo: $(STAMP)
-	@for spec in specs/*.yaml; do $(BIN)/stagefit check $$spec || exit $$?; echo; done
-	$(BIN)/stagefit catalogs
+	$(BIN)/stagefit check specs/bench_stock_preamp.yaml
 	@echo
-	$(BIN)/stagefit evaluate specs/contact_pickup_buffer.yaml --topology divider_ce \
-	    --set r_top=270k --set r_bottom=51k --set r_collector=11k --set r_emitter=1k3
+	$(BIN)/stagefit search specs/bench_stock_preamp.yaml --top 5 --front \
+	    --plot runs/front.svg --plot runs/response.svg --plot runs/transfer.svg
+	@echo
+	$(BIN)/stagefit bom specs/bench_stock_preamp.yaml --rank 1 --units 12
+	@echo
+	@echo "the textbook hand design of the same spec, for comparison:"
+	$(BIN)/stagefit evaluate specs/bench_stock_preamp.yaml --topology divider_ce \
+	    --set r_top=270k --set r_bottom=18k --set r_collector=8k2 --set r_emitter=220
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
+
+# PostgreSQL + API server + two workers on this machine, for trying a shared deployment
+cluster: $(STAMP)
+	bash scripts/try_cluster.sh
 
 clean:
 	rm -rf $(VENV) build *.egg-info
