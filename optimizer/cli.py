@@ -140,7 +140,7 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
 
 # ---- search and kitting -------------------------------------------------------------
 
-TABLE_METRICS = (("gain", "gain", "V/V"), ("swing_vpp", "swing", "Vpp"), ("input_impedance", "Zin", "ohm"),
+TABLE_METRICS = (("gain", "gain (V/V)", "V/V"), ("swing_vpp", "swing", "Vpp"), ("input_impedance", "Zin", "ohm"),
                  ("supply_current", "current", "A"), ("yield", "yield", "%"), ("cost", "cost", ""))
 
 
@@ -208,8 +208,9 @@ def _table(rows: list[list[str]], markdown: bool = False) -> str:
     return "\n".join("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows)
 
 
-def _candidate_rows(candidates: list[dict], first: str = "rank") -> list[list[str]]:
-    rows = [[first, "topology", "parts"] + [label for _, label, _ in TABLE_METRICS] + ["verdict"]]
+def _candidate_rows(candidates: list[dict], first: str = "rank", currency: str = "") -> list[list[str]]:
+    labels = [f"{label} ({currency})" if metric == "cost" and currency else label for metric, label, _ in TABLE_METRICS]
+    rows = [[first, "topology", "parts"] + labels + ["verdict"]]
     for c in candidates:
         parts = " ".join(f"{role}={p['label']}" for role, p in c["parts"].items())
         verdict = "meets every limit" if c["feasible"] else f"misses {c.get('binding') or ', '.join(c['violations'])}"
@@ -221,6 +222,7 @@ def _candidate_rows(candidates: list[dict], first: str = "rank") -> list[list[st
 def _cmd_search(args: argparse.Namespace) -> int:
     import numpy as np
 
+    from optimizer.catalog import load_catalog
     from optimizer.spec import load_spec
 
     spec = load_spec(args.spec)
@@ -239,14 +241,15 @@ def _cmd_search(args: argparse.Namespace) -> int:
         best = shown[0] if shown else None
         if best and not best["feasible"]:
             print(_infeasible_summary(spec, best))
-        print(_table(_candidate_rows(shown), markdown))
+        currency = load_catalog(spec.parts.catalog).currency
+        print(_table(_candidate_rows(shown, currency=currency), markdown))
         if args.front:
             picked = sorted(set(np.linspace(0, len(front) - 1, min(len(front), max(args.top, 2))).round().astype(int))) \
                 if front else []
             note = f", {len(picked)} of them shown, evenly along it" if len(picked) < len(front) else ""
             print(f"\nPareto front ({' vs '.join(f'{d} {m}' for m, d in spec.objective_directions)}): "
                   f"{len(front)} designs{note}")
-            print(_table(_candidate_rows([{**front[i], "rank": i + 1} for i in picked], "point"), markdown))
+            print(_table(_candidate_rows([{**front[i], "rank": i + 1} for i in picked], "point", currency), markdown))
         if best:
             for caution in best.get("cautions", []):
                 print(f"caution: {caution}")
@@ -331,6 +334,8 @@ def _cmd_bom(args: argparse.Namespace) -> int:
               f"({t['cost_per_unit']:.2f} per unit)")
         if bill.short:
             print(f"STOCK IS SHORT on {t['lines_short']} line(s): order before kitting")
+        for caution in candidate.get("cautions", []):
+            print(f"caution: {caution}")
     return EXIT_OK
 
 
