@@ -166,7 +166,8 @@ class Network:
     Nodes are named; ``None`` is ground. Element values broadcast over a leading candidate
     axis; :meth:`at` gives the network at complex frequencies s. Structural zeros are skipped
     in the elimination, so a chain-like node order keeps the work close to the element count.
-    Thermal and shot noise current sources are recorded with the elements that make them.
+    Thermal and shot noise current sources are recorded with the elements that make them
+    (their PSDs are formed only when asked for, by :meth:`noise_sources`).
     """
 
     def __init__(self, nodes: Sequence[str], temp_c: float = 27.0) -> None:
@@ -174,15 +175,23 @@ class Network:
         self.index = {n: i for i, n in enumerate(self.nodes)}
         self.y: dict[tuple[int, int], np.ndarray] = {}  # S, frequency independent part
         self.cap: dict[tuple[int, int], np.ndarray] = {}  # F, multiplied by s in :meth:`at`
-        self.noise: list[tuple[str | None, str | None, np.ndarray]] = []
+        self.noise: list[tuple[str | None, str | None, str, np.ndarray]] = []  # (a, b, kind, R or I)
         self.temp_c = temp_c
         self.s: np.ndarray | None = None  # complex frequencies set by :meth:`at`
 
     def _stamp(self, part: dict, a: str | None, b: str | None, v: np.ndarray) -> None:
+        # entries are never changed in place (solve copies them), so a new key may share v
         ia, ib = (None if n is None else self.index[n] for n in (a, b))
-        for key, sign in (((ia, ia), 1.0), ((ib, ib), 1.0), ((ia, ib), -1.0), ((ib, ia), -1.0)):
-            if key[0] is not None and key[1] is not None:
-                part[key] = part[key] + sign * v if key in part else sign * v
+        neg = None
+        for key, diagonal in (((ia, ia), True), ((ib, ib), True), ((ia, ib), False), ((ib, ia), False)):
+            if key[0] is None or key[1] is None:
+                continue
+            if diagonal:
+                part[key] = part[key] + v if key in part else v
+            else:
+                if neg is None:
+                    neg = -np.asarray(v)
+                part[key] = part[key] + neg if key in part else neg
 
     def admittance(self, a: str | None, b: str | None, y: np.ndarray) -> None:
         """Two-terminal admittance y (S) between nodes a and b (noiseless)."""
@@ -193,7 +202,7 @@ class Network:
         r = np.asarray(r, dtype=float)
         with np.errstate(divide="ignore"):
             self.admittance(a, b, np.where(r > 0, 1.0 / r, G_SHORT))
-            self.noise.append((a, b, np.where(r > 0, thermal_noise(r, self.temp_c), 0.0)))
+        self.noise.append((a, b, "thermal", r))
 
     def capacitor(self, a: str | None, b: str | None, c: np.ndarray, ac: bool, coupling: bool) -> None:
         """Capacitor c (F); at mid-band (ac False) a coupling/bypass one is a short, others open."""
@@ -204,11 +213,13 @@ class Network:
 
     def vccs(self, p: str | None, n: str | None, cp: str | None, cn: str | None, g: np.ndarray) -> None:
         """Current g*(v_cp - v_cn) (A) flowing from node p through the source to node n."""
+        neg = -np.asarray(g)
         for row, sign in ((p, 1.0), (n, -1.0)):
             for col, s2 in ((cp, 1.0), (cn, -1.0)):
                 if row is not None and col is not None:
                     key = (self.index[row], self.index[col])
-                    self.y[key] = self.y[key] + sign * s2 * g if key in self.y else sign * s2 * g
+                    v = g if sign * s2 > 0 else neg
+                    self.y[key] = self.y[key] + v if key in self.y else v
 
     def transistor(self, b: str, c: str | None, e: str | None, ss: dict[str, np.ndarray], ac: bool) -> None:
         """Hybrid-pi at internal base b: gpi, Cpi b-e; Cmu b-c; gm*vbe and go c-e; shot noise."""
@@ -218,8 +229,19 @@ class Network:
             self._stamp(self.cap, b, c, ss["cmu"])
         self.admittance(c, e, ss["go"])
         self.vccs(c, e, b, e, ss["gm"])
-        self.noise.append((c, e, shot_noise(ss["ic"])))
-        self.noise.append((b, e, shot_noise(ss["ib"])))
+        self.noise.append((c, e, "shot", ss["ic"]))
+        self.noise.append((b, e, "shot", ss["ib"]))
+
+    def noise_sources(self) -> list[tuple[str | None, str | None, np.ndarray]]:
+        """Noise current sources (from node, to node, PSD in A^2/Hz): resistors' thermal, junctions' shot."""
+        out = []
+        for a, b, kind, x in self.noise:
+            if kind == "thermal":
+                psd = np.where(x > 0, thermal_noise(np.where(x > 0, x, 1.0), self.temp_c), 0.0)
+            else:
+                psd = shot_noise(x)
+            out.append((a, b, psd))
+        return out
 
     def at(self, s: np.ndarray) -> "Network":
         """The network at complex frequencies s (rad/s), entries G + s*C.
@@ -376,6 +398,11 @@ def _elimination_plan(n: int, entries: frozenset, rhs: frozenset, targets: froze
     return plan
 
 
+def clear_workspace() -> None:
+    """Drop this thread's cached solver workspace (its memory is then counted afresh by tracemalloc)."""
+    _WORK.__dict__.pop("buffers", None)
+
+
 def _workspace(slots: int, shape: tuple[int, ...], dtype: np.dtype) -> np.ndarray:
     """Arrays work[0..slots-1] of the given shape: a per-thread buffer reused between solves."""
     size = slots * int(np.prod(shape, dtype=np.int64))
@@ -461,7 +488,7 @@ def noise_integrals(network: Network, out_node: str, source_node: str,
     z = net.transposed().solve({out_node: np.ones(1)})
     gain2 = _magnitude2(z[source_node]) / r_source ** 2
     out = 0.0
-    for a, b, psd in net.noise:
+    for a, b, psd in net.noise_sources():
         h = (z[a] if a is not None else 0.0) - (z[b] if b is not None else 0.0)
         out = out + psd * _magnitude2(h)
     in_psd = out / gain2

@@ -95,6 +95,25 @@ def test_chunked_evaluation_matches_small_batches():
     assert np.isnan(fast["f_low"]).all()
 
 
+@pytest.mark.parametrize("name", sorted(DESIGNS))
+def test_threads_evaluating_at_once_get_the_serial_results(name):
+    # the nodal solver keeps a per-thread workspace: concurrent evaluations (e.g. the REST
+    # service's worker threads) must not see each other's numbers (common practice: a
+    # thread-safe result equals the serial one bit for bit)
+    from concurrent.futures import ThreadPoolExecutor
+
+    topo = get_topology(name)
+    c = Conditions(9.0, 600.0, 47e3)
+    batches = [{k: v * np.random.default_rng(seed).uniform(0.8, 1.25, 3000) for k, v in DESIGNS[name].items()}
+               for seed in range(4)]
+    serial = [topo.evaluate(b, DEVICE, c).metrics for b in batches]
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        threaded = list(pool.map(lambda b: topo.evaluate(b, DEVICE, c).metrics, batches * 2))
+    for i, metrics in enumerate(threaded):
+        for key in ("gain", "f_low", "f_high", "noise_ein_v", "input_impedance"):
+            np.testing.assert_array_equal(metrics[key], serial[i % 4][key])
+
+
 def test_two_equal_coupling_poles_stack_to_31_hz():
     # common practice: two identical first-order high-pass corners at f0 give -3 dB at f0*sqrt(1+sqrt(2))
     topo = get_topology("divider_ce")
