@@ -1,0 +1,503 @@
+"""Search quality and speed against the exhaustive oracle and three baselines (one core).
+
+    .venv/bin/python benchmarks/bench_search.py            # full run -> benchmarks/results/search.md
+    .venv/bin/python benchmarks/bench_search.py --quick    # smoke run: 2 specs, 3 seeds, 500 trials, prints only
+
+The specs are ``benchmarks/specs/*.yaml``: each names one topology and one device, so the
+exhaustive oracle (``optimizer.exhaustive``) covers the very space the search covers, and
+its ``search.trials`` is the budget every method gets. For each spec:
+
+- the oracle: best score and the true Pareto front (its wall time is reported too);
+- our search (``create_search`` + ``run_search``: synthesis seeds, the neighbour sampler,
+  batched evaluation) over 10 seeds, in memory and on a journal file; the search itself
+  and the finishing step (the shortlist's full assessment with Monte Carlo yield, which
+  ``run_search`` runs when the budget is met) are timed apart;
+- the hand method: ``synthesis.hand_design`` rounded to the nearest series value (and to
+  the spec's range), evaluated by ``evaluate_designs``;
+- random search: the same batched loop (``run_search``) with Optuna's RandomSampler and no
+  enqueued seeds;
+- Optuna's default sampler: ``study.optimize`` on ``optuna.create_study(directions=...)``,
+  one design per trial through ``evaluate_designs``, the summed violation through
+  ``trial.set_constraint``, no seeds and no batching.
+
+Figures: how often the best nominal score (the max of each trial's ``record["score"]``,
+not the yield-weighted rank score) is within 1 % of the oracle's; the median wall time;
+the hypervolume of the feasible front relative to the oracle's true front
+(:func:`hypervolume_2d`, written here; the reference point is the oracle front's nadir
+plus 10 % of its span on each axis). Plus the oracle alone on E24 ``divider_ce`` over
+10 ohm..1 Mohm, the peak memory of a 20,000-trial search (a child process's
+``ru_maxrss``), and a cProfile of one search.
+"""
+from __future__ import annotations
+
+import os
+
+if __name__ == "__main__":
+    for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ[_var] = "1"  # one core, as the targets are stated (before numpy is imported)
+
+import argparse  # noqa: E402
+import cProfile  # noqa: E402
+import io  # noqa: E402
+import json  # noqa: E402
+import platform  # noqa: E402
+import pstats  # noqa: E402
+import resource  # noqa: E402
+import statistics  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+import tempfile  # noqa: E402
+import time  # noqa: E402
+from contextlib import contextmanager  # noqa: E402
+from pathlib import Path  # noqa: E402
+from typing import Iterator  # noqa: E402
+from unittest import mock  # noqa: E402
+
+import numpy as np  # noqa: E402
+
+ROOT = Path(__file__).resolve().parent.parent
+if str(ROOT) not in sys.path:
+    sys.path.insert(0, str(ROOT))
+
+import optuna  # noqa: E402
+from optuna.trial import TrialState  # noqa: E402
+
+import optimizer.search  # noqa: E402
+
+search_module = sys.modules["optimizer.search"]  # the module (optimizer.search is also the API function)
+from optimizer.exhaustive import exhaustive  # noqa: E402
+from optimizer.scoring import pareto_mask  # noqa: E402
+from optimizer.search import Design, SearchSpace, create_search, evaluate_designs, open_storage, run_search  # noqa: E402
+from optimizer.spec import Spec, load_spec, parse_spec, spec_to_dict  # noqa: E402
+from optimizer.synthesis import hand_design, hand_requirements, rounded_designs  # noqa: E402
+from optimizer.topologies import get_topology  # noqa: E402
+
+optuna.logging.set_verbosity(optuna.logging.WARNING)
+
+SPECS = ROOT / "benchmarks" / "specs"
+RESULTS = ROOT / "benchmarks" / "results" / "search.md"
+SEEDS = 10
+WITHIN = 0.01  # "optimum found": best score within 1 % of the oracle's
+TARGETS = {"hits": 9, "memory_s": 3.0, "journal_s": 10.0, "hypervolume": 0.98, "oracle_s": 60.0,
+           "peak_mb": 500.0}
+QUICK_SPECS = ("bs_e24_divider_sensor", "bs_e96_feedback_hv")
+ORACLE_SPEC = "bs_e24_divider_mic"  # its E24 divider_ce space, widened to 10 ohm..1 Mohm
+MEMORY_TRIALS = 20_000
+QUICK_TRIALS = 500  # --quick: every method's budget capped here (Optuna's default sampler is slow)
+
+
+# ----------------------------------------------------------------------------- hypervolume
+
+def to_minimise(values: np.ndarray, directions: list[str]) -> np.ndarray:
+    """Objective values (points, objectives) with every maximised axis negated."""
+    sign = np.array([1.0 if d == "minimise" else -1.0 for d in directions])
+    return np.asarray(values, dtype=float).reshape(-1, len(directions)) * sign
+
+
+def hypervolume_2d(points: np.ndarray, reference: np.ndarray) -> float:
+    """Area dominated by ``points`` (n, 2; both axes minimised) and bounded by ``reference``.
+
+    Points beyond the reference on an axis are clipped to it (they add nothing there);
+    dominated and repeated points add nothing. A sweep along the first axis: each point
+    of the staircase owns the slab from its x to the next point's x (the last one to the
+    reference), of height reference_y - y.
+    """
+    p = np.minimum(np.asarray(points, dtype=float).reshape(-1, 2), reference)
+    p = p[np.all(np.isfinite(p), axis=1)]
+    if not len(p):
+        return 0.0
+    p = p[np.lexsort((p[:, 1], p[:, 0]))]
+    stairs, best_y = [], np.inf
+    for x, y in p:
+        if y < best_y:
+            stairs.append((x, y))
+            best_y = y
+    area = 0.0
+    for k, (x, y) in enumerate(stairs):
+        x_next = stairs[k + 1][0] if k + 1 < len(stairs) else reference[0]
+        area += (x_next - x) * (reference[1] - y)
+    return float(area)
+
+
+def reference_point(front: np.ndarray) -> np.ndarray:
+    """The oracle front's nadir plus 10 % of its span on each axis (minimise-space);
+    a zero span (one point) uses 10 % of the nadir's magnitude (or 1)."""
+    nadir, ideal = front.max(axis=0), front.min(axis=0)
+    span = nadir - ideal
+    span = np.where(span > 0, span, np.where(np.abs(nadir) > 0, np.abs(nadir), 1.0))
+    return nadir + 0.1 * span
+
+
+# ----------------------------------------------------------------------------- runs
+
+def with_search(spec: Spec, **overrides: object) -> Spec:
+    """``spec`` with its search section (trials, seed, batch_size) overridden."""
+    data = spec_to_dict(spec)
+    data["search"] = {**data["search"], **overrides}
+    return parse_spec(data)
+
+
+def completed_records(storage, search_id: str) -> list[dict]:
+    study = optuna.load_study(study_name=search_id, storage=storage)
+    return [t.user_attrs["record"] for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
+            if "record" in t.user_attrs]
+
+
+def summarise(records: list[dict], oracle, directions: list[str], ref: np.ndarray | None) -> dict:
+    """Best nominal score, hit (within 1 %), feasible front and its hypervolume ratio."""
+    best = max((r["score"] for r in records), default=-np.inf)
+    target = oracle.best["score"]
+    hit = best >= target - WITHIN * abs(target)
+    feasible = np.array([r["objectives"] for r in records if r["feasible"]]).reshape(-1, len(directions))
+    hv = None
+    if ref is not None:
+        pts = to_minimise(feasible, directions)
+        true = hypervolume_2d(to_minimise(oracle.front, directions), ref)
+        hv = hypervolume_2d(pts[pareto_mask(pts, ["minimise"] * len(directions))], ref) / true if true > 0 else None
+    return {"best": float(best), "hit": bool(hit), "beats_oracle": bool(best > target + 1e-9), "hv": hv,
+            "trials": len(records)}
+
+
+@contextmanager
+def timed_finish() -> Iterator[list[float]]:
+    """Time ``search._finish`` (the shortlist assessment run_search does when the budget is met)."""
+    spent: list[float] = []
+    original = search_module._finish
+
+    def wrapper(study, space):
+        start = time.perf_counter()
+        original(study, space)
+        spent.append(time.perf_counter() - start)
+
+    with mock.patch.object(search_module, "_finish", wrapper):
+        yield spent
+
+
+def run_ours(spec: Spec, seed: int, storage) -> tuple[list[dict], float, float, str]:
+    """Our search (create + run, as search() does) -> records, search seconds, finish seconds."""
+    spec = with_search(spec, seed=seed)
+    with timed_finish() as spent:
+        start = time.perf_counter()
+        search_id = create_search(spec, storage)
+        run_search(storage, search_id)
+        total = time.perf_counter() - start
+    finish = sum(spent)
+    return completed_records(storage, search_id), total - finish, finish, search_id
+
+
+def run_random(spec: Spec, seed: int) -> tuple[list[dict], float]:
+    """The same batched loop (run_search) with Optuna's RandomSampler, no seeds, no finish."""
+    spec = with_search(spec, seed=seed)
+    storage = open_storage(None)
+    with mock.patch.object(SearchSpace, "seeds", lambda self: []), \
+            mock.patch.object(search_module, "_sampler",
+                              lambda space, seed_offset=0: optuna.samplers.RandomSampler(seed=seed)), \
+            mock.patch.object(search_module, "_finish", lambda study, space: None):
+        start = time.perf_counter()
+        search_id = create_search(spec, storage)
+        run_search(storage, search_id)
+        elapsed = time.perf_counter() - start
+    return completed_records(storage, search_id), elapsed
+
+
+def run_default(spec: Spec) -> tuple[list[dict], float]:
+    """Optuna's default sampler, one design per trial, constraints by trial.set_constraint."""
+    space = SearchSpace.build(spec)
+    directions = ["minimize" if d == "minimise" else "maximize" for _, d in spec.objective_directions]
+    records: list[dict] = []
+
+    def objective(trial: optuna.Trial) -> list[float]:
+        record = evaluate_designs(space, [space.suggest(trial)])[0]
+        records.append(record)
+        trial.set_constraint("violation", record["total_violation"])
+        return record["objectives"]
+
+    start = time.perf_counter()
+    study = optuna.create_study(directions=directions)
+    study.optimize(objective, n_trials=spec.search.trials)
+    return records, time.perf_counter() - start
+
+
+def hand_record(spec: Spec) -> tuple[dict, list[str]]:
+    """The hand method rounded to the nearest series value, evaluated; notes where a value
+    fell outside the spec's range (taken to the range's nearest end)."""
+    space = SearchSpace.build(spec)
+    topology, device = spec.topologies[0], spec.devices[0]
+    model = get_topology(topology)
+    raw = hand_design(topology, hand_requirements(spec, space.devices[device]))
+    resistors = {r: raw[r] for r in model.resistors}
+    nearest = rounded_designs(resistors, spec.parts.resistor_series, spec.parts.capacitor_series, limit=1)[0]
+    low, high = space.resistors.values[0], space.resistors.values[-1]
+    notes = [f"{r} {v:.4g} ohm outside the range" for r, v in nearest.items() if not low <= v <= high]
+    idx = space.resistors.index_of(np.array([nearest[r] for r in model.resistors]))
+    design = Design(topology, device, tuple(zip(model.resistors, (int(i) for i in idx))))
+    return evaluate_designs(space, [design])[0], notes
+
+
+# ----------------------------------------------------------------------------- benchmark
+
+def median(xs: list[float]) -> float:
+    return float(statistics.median(xs)) if xs else float("nan")
+
+
+def bench_spec(path: Path, seeds: int, journal_seeds: int, default_seeds: int, random_seeds: int,
+               tmp: Path, budget: int | None = None) -> dict:
+    spec = load_spec(path)
+    if budget is not None:
+        spec = with_search(spec, trials=min(budget, spec.search.trials))
+    directions = [d for _, d in spec.objective_directions]
+    start = time.perf_counter()
+    oracle = exhaustive(spec)
+    oracle_s = time.perf_counter() - start
+    ref = reference_point(to_minimise(oracle.front, directions)) if len(oracle.front) and len(directions) == 2 else None
+    out = {"name": spec.name, "series": spec.parts.resistor_series, "topology": spec.topologies[0],
+           "device": spec.devices[0], "range": spec.parts.resistor_range, "budget": spec.search.trials,
+           "batch": spec.search.batch_size, "oracle": oracle, "oracle_s": oracle_s, "methods": {}}
+    print(f"\n{spec.name}: {spec.parts.resistor_series} {spec.topologies[0]} {spec.devices[0]}, "
+          f"{oracle.combinations:,} combinations, oracle {oracle_s:.1f} s, best {oracle.best['score']:.4f}, "
+          f"front {len(oracle.front)} points; budget {spec.search.trials}", flush=True)
+
+    hand, notes = hand_record(spec)
+    out["methods"]["hand method"] = {"runs": [summarise([hand], oracle, directions, ref)], "times": [0.0],
+                                     "notes": notes, "feasible": hand["feasible"], "binding": hand["binding"]}
+
+    ours, mem_search, mem_finish = [], [], []
+    for seed in range(seeds):
+        records, t_search, t_finish, _ = run_ours(spec, seed, open_storage(None))
+        ours.append(summarise(records, oracle, directions, ref))
+        mem_search.append(t_search)
+        mem_finish.append(t_finish)
+        print(f"  ours seed {seed}: best {ours[-1]['best']:.4f} hit {ours[-1]['hit']} "
+              f"hv {ours[-1]['hv'] if ours[-1]['hv'] is None else round(ours[-1]['hv'], 4)} "
+              f"search {t_search:.2f} s finish {t_finish:.2f} s", flush=True)
+    journal_search, journal_finish = [], []
+    for seed in range(journal_seeds):
+        storage = open_storage(tmp / f"{spec.name}-{seed}.journal")
+        _, t_search, t_finish, _ = run_ours(spec, seed, storage)
+        journal_search.append(t_search)
+        journal_finish.append(t_finish)
+        print(f"  ours journal seed {seed}: search {t_search:.2f} s finish {t_finish:.2f} s", flush=True)
+    out["methods"]["our search"] = {"runs": ours, "times": mem_search}
+    out["timing"] = {"memory_search": mem_search, "memory_finish": mem_finish,
+                     "journal_search": journal_search, "journal_finish": journal_finish}
+
+    runs, times = [], []
+    for seed in range(random_seeds):
+        records, elapsed = run_random(spec, seed)
+        runs.append(summarise(records, oracle, directions, ref))
+        times.append(elapsed)
+    out["methods"]["random search"] = {"runs": runs, "times": times}
+    print(f"  random: hits {sum(r['hit'] for r in runs)}/{len(runs)}, median {median(times):.2f} s", flush=True)
+
+    runs, times = [], []
+    for _ in range(default_seeds):
+        records, elapsed = run_default(spec)
+        runs.append(summarise(records, oracle, directions, ref))
+        times.append(elapsed)
+    out["methods"]["Optuna default"] = {"runs": runs, "times": times}
+    print(f"  default: hits {sum(r['hit'] for r in runs)}/{len(runs)}, median {median(times):.2f} s", flush=True)
+    return out
+
+
+def oracle_alone() -> dict:
+    """The oracle on E24 divider_ce over 10 ohm..1 Mohm (the issue's 60 s target)."""
+    spec = load_spec(SPECS / f"{ORACLE_SPEC}.yaml")
+    data = spec_to_dict(spec)
+    data["parts"] = {**data["parts"], "resistor_range": [10.0, 1e6]}
+    spec = parse_spec(data)
+    start = time.perf_counter()
+    oracle = exhaustive(spec)
+    elapsed = time.perf_counter() - start
+    print(f"\noracle alone, E24 divider_ce 10 ohm..1 Mohm: {elapsed:.1f} s, {oracle.combinations:,} combinations, "
+          f"{oracle.fully_evaluated:,} fully evaluated, best {oracle.best['score']:.4f}", flush=True)
+    return {"seconds": elapsed, "combinations": oracle.combinations, "fully_evaluated": oracle.fully_evaluated,
+            "feasible": oracle.feasible, "best": oracle.best["score"]}
+
+
+def memory_child(spec_path: str, trials: int) -> None:
+    """Child process: one whole search (create, run, finish, load) of ``trials`` in memory."""
+    spec = with_search(load_spec(spec_path), trials=trials)
+    start = time.perf_counter()
+    search_module.search(spec)
+    print(json.dumps({"seconds": time.perf_counter() - start,
+                      "self_maxrss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+
+
+def peak_memory(trials: int) -> dict:
+    """Peak resident memory (MB) of a ``trials``-trial search, run in a child process."""
+    env = {**os.environ, "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+    done = subprocess.run([sys.executable, __file__, "--memory-child", str(SPECS / f"{ORACLE_SPEC}.yaml"),
+                           "--trials", str(trials)], capture_output=True, text=True, env=env, cwd=ROOT, check=True)
+    child = json.loads(done.stdout.strip().splitlines()[-1])
+    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024  # Linux: KiB
+    print(f"\npeak memory of a {trials:,}-trial search: {peak:.0f} MB ({child['seconds']:.1f} s)", flush=True)
+    return {"trials": trials, "peak_mb": peak, "seconds": child["seconds"]}
+
+
+def profile_search(spec_path: Path, budget: int | None = None, top: int = 14) -> dict:
+    """cProfile of one in-memory search (seed 0): where the time goes."""
+    spec = with_search(load_spec(spec_path), seed=0)
+    if budget is not None:
+        spec = with_search(spec, trials=min(budget, spec.search.trials))
+    profiler = cProfile.Profile()
+    storage = open_storage(None)
+    with timed_finish() as spent:
+        profiler.enable()
+        start = time.perf_counter()
+        run_search(storage, create_search(spec, storage))
+        total = time.perf_counter() - start
+        profiler.disable()
+    stream = io.StringIO()
+    stats = pstats.Stats(profiler, stream=stream)
+    stats.sort_stats("cumulative").print_stats(top)
+    rows = []
+    for (filename, line, name), (cc, nc, tt, ct, _) in stats.stats.items():
+        rows.append((ct, tt, nc, f"{Path(filename).name}:{line}({name})"))
+    rows.sort(reverse=True)
+    by_tottime = sorted(rows, key=lambda r: -r[1])[:top]
+    print(f"\nprofile of {spec.name} (seed 0, profiled {total:.2f} s, finish {sum(spent):.2f} s):")
+    for ct, tt, nc, where in by_tottime:
+        print(f"  {tt:7.2f} s own  {ct:7.2f} s cum  {nc:>8} calls  {where}")
+    return {"spec": spec.name, "total": total, "finish": sum(spent), "cumulative": rows[:40],
+            "own": by_tottime}
+
+
+# ----------------------------------------------------------------------------- report
+
+def fmt(x: float | None, spec: str = ".4f") -> str:
+    return "—" if x is None or (isinstance(x, float) and np.isnan(x)) else format(x, spec)
+
+
+def report(results: list[dict], oracle_big: dict | None, memory: dict | None, profile: dict | None,
+           seeds: int, load: tuple[float, float]) -> str:
+    lines = ["# Search benchmark", "",
+             f"Machine: {platform.machine()}, {os.cpu_count()} cores (shared with other engineers' test runs; "
+             f"load average {load[0]:.2f} at the start, {load[1]:.2f} at the end), Python "
+             f"{platform.python_version()}, numpy {np.__version__}, Optuna {optuna.__version__}, single-thread "
+             "BLAS. Produced by `benchmarks/bench_search.py` in one run; figures are medians.", "",
+             "Each spec (`benchmarks/specs/`) names one topology and one device, so the exhaustive oracle "
+             "covers exactly the space searched. \"Hits\" counts runs whose best nominal score (max over "
+             "trials of the trial record's `score`) is within 1 % of the oracle's best. Hypervolume (HV) is "
+             "the feasible front's 2-D hypervolume over the oracle front's (minimise-space, reference = "
+             "oracle nadir + 10 % of its span per axis). Every method gets the spec's budget of trials "
+             "(ours: synthesis seeds count toward it). Time for our search is the search itself "
+             "(create + run) without the finishing shortlist assessment, which is timed apart below.", "",
+             "## Quality", "",
+             "| spec | space | oracle best (time) | budget | method | runs | hits | median best score | "
+             "median HV | median time (s) |",
+             "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
+    for r in results:
+        o = r["oracle"]
+        head = (f"{r['name']} | {r['series']} {r['topology']} {r['device']}, "
+                f"{r['range'][0]:g}..{r['range'][1]:g} ohm, {o.combinations:,} | "
+                f"{o.best['score']:.4f} ({r['oracle_s']:.1f} s) | {r['budget']:,}")
+        for k, (method, m) in enumerate(r["methods"].items()):
+            runs = m["runs"]
+            hvs = [x["hv"] for x in runs if x["hv"] is not None]
+            best = median([x["best"] for x in runs])
+            extra = ""
+            if method == "hand method":
+                extra = " (feasible)" if m["feasible"] else f" (infeasible: {m['binding']})"
+                if m["notes"]:
+                    extra += "; " + ", ".join(m["notes"])
+            cells = [head if k == 0 else " | | |", method, str(len(runs)),
+                     f"{sum(x['hit'] for x in runs)}/{len(runs)}", fmt(best) + extra,
+                     f"{100 * median(hvs):.1f} %" if hvs else "—",
+                     "—" if method == "hand method" else f"{median(m['times']):.2f}"]
+            lines.append("| " + " | ".join(cells) + " |")
+    beaten = [r["name"] for r in results for m in r["methods"].values() for x in m["runs"] if x["beats_oracle"]]
+    if beaten:
+        lines += ["", f"**Oracle beaten** (a run scored above the oracle's best, an oracle bug): {sorted(set(beaten))}"]
+
+    lines += ["", "## Our search: wall time (s, median)", "",
+              "| spec | budget | in memory: search | finish | total | journal file: search | finish | total |",
+              "| --- | --- | --- | --- | --- | --- | --- | --- |"]
+    for r in results:
+        t = r["timing"]
+        ms, mf, js, jf = (median(t[k]) for k in ("memory_search", "memory_finish", "journal_search",
+                                                  "journal_finish"))
+        lines.append(f"| {r['name']} | {r['budget']:,} | {ms:.2f} | {mf:.2f} | "
+                     f"{median([a + b for a, b in zip(t['memory_search'], t['memory_finish'])]):.2f} | "
+                     f"{fmt(js, '.2f')} | {fmt(jf, '.2f')} | "
+                     f"{fmt(median([a + b for a, b in zip(t['journal_search'], t['journal_finish'])]), '.2f')} |")
+
+    lines += ["", "## Targets", ""]
+    hits = [sum(x["hit"] for x in r["methods"]["our search"]["runs"]) for r in results]
+    hv_ours = [median([x["hv"] for x in r["methods"]["our search"]["runs"] if x["hv"] is not None])
+               for r in results]
+    mem = [median(r["timing"]["memory_search"]) for r in results]
+    mem_total = [median([a + b for a, b in zip(r["timing"]["memory_search"], r["timing"]["memory_finish"])])
+                 for r in results]
+    jour_total = [median([a + b for a, b in zip(r["timing"]["journal_search"], r["timing"]["journal_finish"])])
+                  for r in results]
+    yes = lambda ok: "met" if ok else "**missed**"  # noqa: E731
+    hit_text = ", ".join(f"{r['name']} {h}/{seeds}" for r, h in zip(results, hits))
+    lines += ["| target | measured | met |", "| --- | --- | --- |",
+              f"| optimum within 1 % in >= 9 of {seeds} seeds, every spec | "
+              f"{hit_text} | "
+              f"{yes(all(h >= TARGETS['hits'] * seeds / 10 for h in hits))} |",
+              f"| median wall time < 3 s in memory (search itself) | worst {max(mem):.2f} s | "
+              f"{yes(max(mem) < TARGETS['memory_s'])} |",
+              f"| median wall time < 3 s in memory (search + finishing step) | worst {max(mem_total):.2f} s | "
+              f"{yes(max(mem_total) < TARGETS['memory_s'])} |",
+              f"| median wall time < 10 s on the journal file (search + finishing step) | "
+              f"worst {fmt(max(jour_total), '.2f')} s | {yes(max(jour_total) < TARGETS['journal_s'])} |",
+              f"| hypervolume >= 98 % of the oracle front's (median per spec) | "
+              f"worst {100 * min(hv_ours):.1f} % | {yes(min(hv_ours) >= TARGETS['hypervolume'])} |"]
+    if oracle_big:
+        lines.append(f"| oracle alone < 60 s, E24 divider_ce 10 ohm..1 Mohm | {oracle_big['seconds']:.1f} s "
+                     f"({oracle_big['combinations']:,} combinations, {oracle_big['fully_evaluated']:,} fully "
+                     f"evaluated, {oracle_big['feasible']:,} meeting the core limits) | "
+                     f"{yes(oracle_big['seconds'] < TARGETS['oracle_s'])} |")
+    if memory:
+        lines.append(f"| peak memory of a {memory['trials']:,}-trial search < 500 MB | {memory['peak_mb']:.0f} MB "
+                     f"(child ru_maxrss; {memory['seconds']:.1f} s) | {yes(memory['peak_mb'] < TARGETS['peak_mb'])} |")
+    if profile:
+        lines += ["", f"## Where the time goes (cProfile, {profile['spec']}, seed 0, in memory)", "",
+                  f"Profiled run {profile['total']:.2f} s, of which the finishing step {profile['finish']:.2f} s "
+                  "(profiling slows Python-heavy code more than numpy).", "",
+                  "| own time (s) | cumulative (s) | calls | function |", "| --- | --- | --- | --- |"]
+        lines += [f"| {tt:.2f} | {ct:.2f} | {nc:,} | `{where}` |" for ct, tt, nc, where in profile["own"]]
+        lines += ["", "Largest cumulative:", "", "| cumulative (s) | calls | function |", "| --- | --- | --- |"]
+        lines += [f"| {ct:.2f} | {nc:,} | `{where}` |" for ct, tt, nc, where in profile["cumulative"][:18]]
+    return "\n".join(lines) + "\n"
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
+    parser.add_argument("--quick", action="store_true",
+                        help=f"smoke run: 2 specs, 3 seeds, {QUICK_TRIALS} trials, prints only")
+    parser.add_argument("--memory-child", metavar="SPEC", help=argparse.SUPPRESS)
+    parser.add_argument("--trials", type=int, default=MEMORY_TRIALS, help=argparse.SUPPRESS)
+    parser.add_argument("--out", type=Path, default=None, help="results file (default: results/search.md; "
+                        "--quick writes none unless given)")
+    args = parser.parse_args()
+    if args.memory_child:
+        memory_child(args.memory_child, args.trials)
+        return
+    load_start = os.getloadavg()[0]
+    paths = sorted(SPECS.glob("*.yaml"))
+    if args.quick:
+        paths = [p for p in paths if p.stem in QUICK_SPECS]
+        seeds, journal_seeds, default_seeds, random_seeds, budget = 3, 1, 1, 2, QUICK_TRIALS
+    else:
+        seeds, journal_seeds, default_seeds, random_seeds, budget = SEEDS, 3, 1, 5, None
+    results = []
+    with tempfile.TemporaryDirectory(prefix="bench-search-") as tmp:
+        for path in paths:
+            results.append(bench_spec(path, seeds, journal_seeds, default_seeds, random_seeds, Path(tmp), budget))
+    slowest = max(results, key=lambda r: median(r["timing"]["memory_search"]))
+    profile = profile_search(SPECS / f"{slowest['name']}.yaml", budget)
+    oracle_big = None if args.quick else oracle_alone()
+    memory = peak_memory(2_000 if args.quick else MEMORY_TRIALS)
+    text = report(results, oracle_big, memory, profile, seeds, (load_start, os.getloadavg()[0]))
+    print("\n" + text)
+    out = args.out or (None if args.quick else RESULTS)
+    if out:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        out.write_text(text)
+        print(f"wrote {out}")
+
+
+if __name__ == "__main__":
+    main()
