@@ -109,6 +109,7 @@ def _schemas() -> dict[str, Any]:
         "properties": {
             "id": {"type": "string"}, "name": {"type": ["string", "null"]},
             "status": {"enum": STATUSES}, "trials_done": {"type": "integer", "minimum": 0},
+            "trials_running": {"type": "integer", "minimum": 0},
             "budget": {"type": "integer", "minimum": 0}, "elapsed": NUMBER_OR_NULL,
             "created": {"type": ["string", "null"]},
             "best": {"anyOf": [_ref("Candidate"), {"type": "null"}]},

@@ -181,7 +181,7 @@ def _catalog(name: str) -> Any:
     from optimizer.catalog import list_catalogs, load_catalog
 
     if name not in list_catalogs():  # a name from the list, never a path
-        raise _not_found("catalog", name, "one of " + ", ".join(list_catalogs()))
+        raise _not_found("catalog", name, f"no catalog named {name!r}; one of " + ", ".join(list_catalogs()))
     return load_catalog(name)
 
 
@@ -266,18 +266,24 @@ def evaluate() -> Response:
     problems += [Problem(key, None, "a value is required here") for key in ("spec", "topology", "parts")
                  if key not in body]
     if problems:
-        raise ApiProblem(422, "invalid evaluate request", f"{len(problems)} problem(s); see errors",
-                         kind="invalid-input", errors=problems)
-    spec, found = _spec_from(body["spec"], "spec")
+        raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input",
+                         errors=problems)
+    spec = found = topology = None
+    try:  # every problem of the request is reported at once: the spec's, the topology's, the parts'
+        spec, found = _spec_from(body["spec"], "spec")
+    except ApiProblem as problem:
+        problems += problem.errors
     try:
         topology = get_topology(body["topology"])
     except InputError as error:
-        raise _input(error) from None
+        problems += error.problems
     raw_parts = body["parts"]
     if not isinstance(raw_parts, dict) or not raw_parts:
-        raise ApiProblem(422, "invalid evaluate request", "parts: a mapping role -> value, e.g. "
-                         '{"r_top": "68k", "c_in": "2.2u"}', kind="invalid-input",
-                         errors=[Problem("parts", raw_parts, 'a mapping role -> value, e.g. {"r_top": "68k"}')])
+        problems.append(Problem("parts", raw_parts, 'a mapping role -> value, e.g. {"r_top": "68k", "c_in": "2.2u"}'))
+        raw_parts = {}
+    if topology is None:
+        raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input",
+                         errors=problems)
     known = set(topology.resistors) | set(topology.capacitors)
     parts: dict[str, float] = {}
     for role, value in raw_parts.items():
@@ -289,10 +295,11 @@ def evaluate() -> Response:
             parts[role] = parse_quantity(value, "F" if role.startswith("c_") else "ohm", where=f"parts.{role}")
         except InputError as error:
             problems += error.problems
-    problems += [Problem(f"parts.{role}", None, f"every resistor of {topology.name} given: "
-                         + ", ".join(topology.resistors)) for role in topology.resistors if role not in raw_parts]
+    if raw_parts:
+        problems += [Problem(f"parts.{role}", None, f"every resistor of {topology.name} given: "
+                             + ", ".join(topology.resistors)) for role in topology.resistors if role not in raw_parts]
     device = body.get("device")
-    if device is not None and device not in set(found.transistors["id"]):
+    if device is not None and found is not None and device not in set(found.transistors["id"]):
         problems.append(Problem("device", device, f"a transistor of catalog {found.name}: "
                                 + ", ".join(found.transistors["id"])))
     samples = body.get("samples", 1000)

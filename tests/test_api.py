@@ -202,6 +202,9 @@ def test_evaluate_reports_every_problem_with_field_paths(client):
     problem = assert_problem(client.post("/v1/evaluate", json={"spec": bad_spec, "topology": "divider_ce",
                                                                "parts": HAND}), 422)
     assert [e["field"] for e in problem["errors"]] == ["spec.supply"]
+    problem = assert_problem(client.post("/v1/evaluate", json={"spec": bad_spec, "topology": "divider_ce",
+                                                               "parts": {**HAND, "r_top": "-"}}), 422)
+    assert [e["field"] for e in problem["errors"]] == ["spec.supply", "parts.r_top"]  # all at once
     problem = assert_problem(client.post("/v1/evaluate", json={"spec": pickup_spec(), "topology": "tube",
                                                                "parts": HAND}), 422)
     assert problem["errors"][0]["field"] == "topology"
