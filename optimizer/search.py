@@ -39,7 +39,7 @@ from optimizer.errors import InputError
 from optimizer.sampler import NeighbourSampler
 from optimizer.sizing import size_capacitors
 from optimizer.spec import Spec, check_against_catalog, parse_spec, spec_to_dict
-from optimizer.storage import TrialHeartbeat, claim_batch, open_storage
+from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage
 from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import METRICS
@@ -426,7 +426,7 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
             return
         with warnings.catch_warnings():  # Optuna marks the stale-trial check experimental
             warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
-            optuna.storages.fail_stale_trials(study)  # a dead runner's trials: failed, queued again
+            fail_stale_trials(study, storage)  # a dead runner's trials: failed, queued again
         with TrialHeartbeat(storage) as heartbeat:
             with claim_batch(storage, search_id):
                 finished, running = _counts(study)
@@ -562,10 +562,8 @@ def load_search(storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SI
     ranking = study.user_attrs.get("ranking")
     if ranking and top <= len(ranking["candidates"]):
         summary = {"candidates": list(ranking["candidates"]), "front": ranking["front"]}
-        ranked = rank_records(_records(study))
-        tail = [candidate_from_record(space, r) for r in ranked if _design_key(r) not in
-                {(c["topology"], c["transistor"]["id"], tuple(sorted((k, v["value"]) for k, v in c["parts"].items())))
-                 for c in summary["candidates"]}]
+        shortlisted = {c.get("trial") for c in summary["candidates"]}
+        tail = [candidate_from_record(space, r) for r in rank_records(_records(study)) if r["trial"] not in shortlisted]
         for rank, c in enumerate(tail, len(summary["candidates"]) + 1):
             c["rank"] = rank
         summary["candidates"] += tail

@@ -14,7 +14,7 @@ Crash safety in a shared (RDB) storage: every running trial carries a heartbeat
 ``STAGEFIT_HEARTBEAT_INTERVAL`` seconds, default 10); a running trial whose heartbeat is
 older than ``STAGEFIT_GRACE_PERIOD`` seconds (default 30) belonged to a worker that died,
 and the next batch of any worker fails it and queues it again (Optuna's heartbeat check and
-retry callback, at most 3 retries). :func:`claim_batch` makes "count the trials, ask the
+retry callback, at most 3 retries; :func:`fail_stale_trials`). :func:`claim_batch` makes "count the trials, ask the
 next batch" one step across every process sharing a search, so a budget is met exactly.
 """
 from __future__ import annotations
@@ -24,9 +24,12 @@ import hashlib
 import inspect
 import logging
 import os
+import socket
 import threading
+import warnings
 import weakref
 from contextlib import contextmanager
+from datetime import datetime, timedelta
 from pathlib import Path
 from typing import Iterator
 
@@ -46,6 +49,12 @@ HEARTBEAT_INTERVAL = 10  # s between heartbeats of a running trial (STAGEFIT_HEA
 GRACE_PERIOD = 30  # s without a heartbeat before a running trial is failed (STAGEFIT_GRACE_PERIOD)
 MAX_RETRY = 3  # times a failed (stale) trial is queued again
 log = logging.getLogger("stagefit.storage")
+# Heartbeats and their retry callback are marked experimental in Optuna; we rely on them
+# knowingly (tests/test_workers.py checks them), so their warnings are noise here.
+warnings.filterwarnings("ignore", category=optuna.exceptions.ExperimentalWarning,
+                        message=r".*(heartbeat|Retry\w*Callback|fail_stale_trials)")
+# Study.ask warns that heartbeats belong to Study.optimize: our batches record them (TrialHeartbeat).
+warnings.filterwarnings("ignore", message="Heartbeat of storage is supposed to be used with Study.optimize")
 
 
 def _journal(path: Path) -> BaseStorage:
@@ -86,6 +95,38 @@ def _rdb(url: str) -> BaseStorage:
     return optuna.storages.RDBStorage(url, engine_kwargs={"pool_pre_ping": True},
                                       heartbeat_interval=interval, grace_period=grace,
                                       **{keyword: retry_cls(max_retry=MAX_RETRY)})
+
+
+def fail_stale_trials(study: optuna.Study, storage: BaseStorage) -> None:
+    """Fail the running trials of runners that died, and queue them again (Optuna's heartbeat
+    check and retry callback). A runner killed between asking a trial and recording its first
+    heartbeat leaves a running trial Optuna never finds stale; such a trial, older than the
+    grace period (by this machine's clock) and still without a heartbeat, is given one here,
+    so it goes stale and is retried one grace period later. A no-op without heartbeats."""
+    rdb = getattr(storage, "_backend", storage)  # the RDB storage under Optuna's cache
+    if not (isinstance(rdb, optuna.storages.RDBStorage) and is_heartbeat_enabled(rdb)):
+        return
+    from optuna.storages._rdb import models
+    from sqlalchemy.orm import Session
+
+    cutoff = datetime.now() - timedelta(seconds=rdb.grace_period)
+    with Session(rdb.engine) as session:
+        running = (session.query(models.TrialModel)
+                   .outerjoin(models.TrialHeartbeatModel,
+                              models.TrialHeartbeatModel.trial_id == models.TrialModel.trial_id)
+                   .filter(models.TrialModel.study_id == study._study_id,
+                           models.TrialModel.state == optuna.trial.TrialState.RUNNING,
+                           models.TrialHeartbeatModel.trial_id.is_(None)))
+        # datetime_start: this machine's local time (however the Optuna version stores it)
+        unbeaten = [t.trial_id for t in running if t.datetime_start is not None and t.datetime_start < cutoff]
+    for trial_id in unbeaten:
+        rdb.record_heartbeat(trial_id)
+    optuna.storages.fail_stale_trials(study)
+
+
+def runner_id() -> str:
+    """This process as recorded on the trials it runs: host:pid."""
+    return f"{socket.gethostname()}:{os.getpid()}"
 
 
 @contextmanager
@@ -137,8 +178,11 @@ class TrialHeartbeat:
         self._thread: threading.Thread | None = None
 
     def add(self, trial: optuna.Trial) -> optuna.Trial:
+        """Record the trial's first heartbeat and which runner holds it (system attr
+        ``runner``: host:pid), so a dead worker's trials can be told apart."""
         if self._enabled:
             self._storage.record_heartbeat(trial._trial_id)
+            self._storage.set_trial_system_attr(trial._trial_id, "runner", runner_id())
             self._trial_ids.append(trial._trial_id)
             if self._thread is None:
                 self._thread = threading.Thread(target=self._beat, name="trial-heartbeat", daemon=True)
