@@ -5,16 +5,16 @@
 # for the next run; delete that folder to start afresh).
 #
 #   scripts/try_cluster.sh            # or: make cluster
-#   STAGEFIT_WORKERS=4 STAGEFIT_API_PORT=8800 scripts/try_cluster.sh
+#   CLUSTER_WORKERS=4 CLUSTER_API_PORT=8800 scripts/try_cluster.sh
 #
 # Needs .venv (make demo) and PostgreSQL's server binaries (Debian: apt-get install postgresql).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 ROOT=$(pwd)
 
-PG_PORT=${STAGEFIT_PG_PORT:-55432}
-API_PORT=${STAGEFIT_API_PORT:-8750}
-WORKERS=${STAGEFIT_WORKERS:-2}
+PG_PORT=${CLUSTER_PG_PORT:-55432}
+API_PORT=${CLUSTER_API_PORT:-8750}
+WORKERS=${CLUSTER_WORKERS:-2}
 RUN=$ROOT/runs/pg
 BIN=$ROOT/.venv/bin
 DB=stagefit

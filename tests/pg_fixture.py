@@ -116,6 +116,22 @@ class ThrowawayCluster:
             shutil.rmtree(self.root, ignore_errors=True)
 
 
+def stop_processes(procs, timeout: float = 30) -> None:
+    """SIGTERM each process still running (workers finish their batch), then SIGKILL any
+    that has not exited within ``timeout`` seconds."""
+    import signal
+
+    for p in procs:
+        if p.poll() is None:
+            p.send_signal(signal.SIGTERM)
+    for p in procs:
+        try:
+            p.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            p.kill()
+            p.wait(timeout=10)
+
+
 def _unavailable(reason: str):
     if os.environ.get(ENV_REQUIRE) == "1":
         pytest.fail(f"PostgreSQL required ({ENV_REQUIRE}=1) but unavailable: {reason}")

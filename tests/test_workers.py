@@ -35,6 +35,7 @@ from optuna.trial import TrialState
 from optimizer.search import create_search, load_search, open_storage, run_search
 from optimizer.spec import parse_spec, spec_to_dict
 from optimizer.storage import fail_stale_trials
+from pg_fixture import stop_processes
 
 ROOT = Path(__file__).resolve().parent.parent
 STAGEFIT = [sys.executable, "-m", "optimizer.cli"]
@@ -71,18 +72,6 @@ def _env() -> dict:
 def _worker(url: str, log: Path) -> subprocess.Popen:
     return subprocess.Popen([*STAGEFIT, "worker", "--storage", url, "--poll", "0.3"], cwd=ROOT, env=_env(),
                             stdout=log.open("w"), stderr=subprocess.STDOUT, start_new_session=True)
-
-
-def _stop(procs: list[subprocess.Popen]) -> None:
-    for p in procs:
-        if p.poll() is None:
-            p.send_signal(signal.SIGTERM)
-    for p in procs:
-        try:
-            p.wait(timeout=30)
-        except subprocess.TimeoutExpired:
-            p.kill()
-            p.wait(timeout=10)
 
 
 def _trials(url: str, search_id: str) -> list[optuna.trial.FrozenTrial]:
@@ -127,7 +116,7 @@ def _api_server(url: str, log: Path):
             return found and found.group(1)
         yield _wait(address, "the API server to listen", timeout=60)
     finally:
-        _stop([proc])
+        stop_processes([proc])
 
 
 def test_two_workers_and_a_queue_only_server_finish_exactly_the_budget(postgres_url, tmp_path):
@@ -147,7 +136,7 @@ def test_two_workers_and_a_queue_only_server_finish_exactly_the_budget(postgres_
             with urllib.request.urlopen(f"{base}/v1/searches/{search_id}", timeout=30) as response:
                 over_http = json.load(response)
         finally:
-            _stop(procs)
+            stop_processes(procs)
     trials = _trials(postgres_url, search_id)
     states = [t.state for t in trials]
     assert states.count(TrialState.COMPLETE) == spec.search.trials  # exactly the budget
@@ -186,7 +175,7 @@ def test_a_killed_worker_s_trials_are_failed_and_retried(postgres_url, tmp_path)
         assert orphans, "the victim held running trials when it was killed"
         _wait(lambda: _status(postgres_url, search_id) == "done", "the search to finish after the kill", [other])
     finally:
-        _stop(procs)
+        stop_processes(procs)
     trials = {t.number: t for t in _trials(postgres_url, search_id)}
     complete = [t for t in trials.values() if t.state == TrialState.COMPLETE]
     assert len(complete) == spec.search.trials
