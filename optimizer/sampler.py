@@ -14,6 +14,13 @@ sampling them independently:
   places along its ordered values; now and then a crossover with another elite design of
   the same topology, a switch of topology or device (taking the best design known there),
   or a fresh random design (the global moves that stop the search settling too early);
+- coupled moves: two or more indices stepped together by the same amount, which keeps their
+  ratio (a divider's bias point, a gain set by Rc/Re) while scaling the impedance level, a
+  move single steps cannot make without passing through infeasible designs;
+- whenever the best design changes, and for one front point per batch, every neighbour one
+  step away (each parameter +-1, and each pair together +-1) is queued and tried first, so
+  the search does not stop one step short of a local optimum (a pattern search around the
+  incumbents);
 - designs already proposed are not proposed again while an untried neighbour is found.
 
 Before any design is finished it samples at random; enqueued seeds are taken as given.
@@ -38,6 +45,8 @@ P_RANDOM, P_SWITCH, P_CROSSOVER = 0.05, 0.08, 0.15
 MOVE_COUNTS, MOVE_COUNT_P = (1, 2, 3), (0.5, 0.3, 0.2)
 STEPS, STEP_P = (1, 2, 3, 4, 5, 6), (0.55, 0.25, 0.08, 0.05, 0.04, 0.03)
 RETRIES = 12
+P_COUPLED = 0.5  # share of multi-parameter moves that step every chosen index by the same amount
+P_QUEUED = 0.5  # share of proposals taken from the queue of incumbents' neighbours while it lasts
 
 
 class NeighbourSampler(BaseSampler):
@@ -61,6 +70,8 @@ class NeighbourSampler(BaseSampler):
         self._cache_count = -1
         self._elite: list[FrozenTrial] = []
         self._front: list[FrozenTrial] = []
+        self._queue: list[dict[str, Any]] = []
+        self._swept: set[tuple] = set()
 
     # ---- Optuna's interface --------------------------------------------------------------
     def infer_relative_search_space(self, study: Study, trial: FrozenTrial) -> dict[str, BaseDistribution]:
@@ -103,8 +114,36 @@ class NeighbourSampler(BaseSampler):
         feasible = [t for t in done if self._rank_key(t)[0] == 0]
         keep = pareto_mask(np.array([t.values for t in feasible]), self._directions) if feasible else []
         self._front = [t for t, k in zip(feasible, keep) if k]
+        centres = self._elite[:1]
+        if self._front:
+            centres.append(self._front[self._rng.integers(len(self._front))])
+        for centre in centres:
+            self._sweep(dict(centre.params))
+
+    def _sweep(self, params: dict[str, Any]) -> None:
+        """Queue every untried single-step neighbour of ``params`` (once per centre)."""
+        key = self._key(params)
+        if key in self._swept:
+            return
+        self._swept.add(key)
+        ints = [(n, d) for n, d in self._group_params(params).items() if isinstance(d, IntDistribution)]
+        moves = [((n,),) for n, _ in ints] + [((a, b),) for i, (a, _) in enumerate(ints) for b, _ in ints[i + 1:]]
+        bounds = dict(ints)
+        for (names,) in moves:
+            for step in (-1, 1):
+                neighbour = dict(params)
+                for name in names:
+                    neighbour[name] = params.get(name, bounds[name].low) + step
+                inside = all(bounds[n].low <= neighbour[n] <= bounds[n].high for n in names)
+                if inside and self._key(neighbour) not in self._seen:
+                    self._queue.append(neighbour)
 
     def _propose(self) -> dict[str, Any]:
+        while self._queue and self._rng.random() < P_QUEUED:
+            plan = self._queue.pop(0)
+            if self._key(plan) not in self._seen:
+                self._seen.add(self._key(plan))
+                return plan
         if self._rng.random() < P_RANDOM:
             return {}
         for _ in range(RETRIES):
@@ -146,9 +185,12 @@ class NeighbourSampler(BaseSampler):
         if not steppable:
             return params
         count = min(int(self._rng.choice(MOVE_COUNTS, p=MOVE_COUNT_P)), len(steppable))
+        coupled = count > 1 and self._rng.random() < P_COUPLED
+        step = int(self._rng.choice(STEPS, p=STEP_P)) * (1 if self._rng.random() < 0.5 else -1)
         for name in self._rng.choice(steppable, size=count, replace=False):
             d = space[name]
-            step = int(self._rng.choice(STEPS, p=STEP_P)) * (1 if self._rng.random() < 0.5 else -1)
+            if not coupled:
+                step = int(self._rng.choice(STEPS, p=STEP_P)) * (1 if self._rng.random() < 0.5 else -1)
             params[name] = int(np.clip(params.get(name, d.low) + step, d.low, d.high))
         return params
 

@@ -15,6 +15,7 @@ from optimizer.spec import Spec
 from optimizer.topologies.base import Conditions
 
 FULL_MODEL_LIMITS = ("noise_ein_max",)  # besides the band corners, need full=True metrics
+SATURATION_FLOOR = 0.1  # least violation of a saturated stage (graded up by its Vce shortfall)
 NEAR_RATING = 0.5  # a part past half its rating gets a caution (common practice derating)
 
 
@@ -42,13 +43,17 @@ def _below(value: np.ndarray, maximum: float) -> np.ndarray:
 
 def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[str, np.ndarray],
                      rating_limits: dict[str, float | np.ndarray],
-                     active: np.ndarray, *, core_only: bool = False) -> dict[str, np.ndarray]:
+                     active: np.ndarray, *, core_only: bool = False,
+                     vce_headroom: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Normalised violation of every hard limit (name -> array, 0 where met).
 
     ``rating_limits`` maps each rating key of the topology (p_<resistor> W,
     v_<capacitor> V) and ``vce_max`` / ``q_power`` to the part's or device's limit.
     ``core_only`` leaves out the limits that need the full model (band corners and
-    noise), for metrics from the fast core path.
+    noise), for metrics from the fast core path. ``vce_headroom`` (V, the smallest Vce less
+    the saturation voltage and active margin, negative when saturated) grades the violation
+    of a saturated stage by how far it is from active, so a search is led out of saturation;
+    without it, or for any other reason a stage is not active, the violation is 1.
     """
     gain = np.asarray(metrics["gain"])
     out = {"gain": np.maximum(0.0, np.abs(gain_error_db(spec, gain)) - spec.gain.tolerance_db)
@@ -56,7 +61,13 @@ def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[s
     if spec.gain.inverting is not None:
         wrong_sign = (gain > 0) if spec.gain.inverting else (gain < 0)
         out["gain_polarity"] = wrong_sign.astype(float)
-    out["active"] = (~np.asarray(active, dtype=bool)).astype(float)
+    inactive = ~np.asarray(active, dtype=bool)
+    if vce_headroom is None:
+        out["active"] = inactive.astype(float)
+    else:
+        shortfall = np.nan_to_num(-np.asarray(vce_headroom, dtype=float) / spec.supply, nan=np.inf)
+        graded = np.where(shortfall > 0, SATURATION_FLOOR + np.clip(shortfall, 0.0, 1.0), 1.0)
+        out["active"] = np.where(inactive, graded, 0.0)
     if not core_only:
         out["band_low"] = _below(metrics["f_low"], spec.band[0])
         out["band_high"] = _above(metrics["f_high"], spec.band[1])

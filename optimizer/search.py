@@ -30,7 +30,7 @@ import pandas as pd
 from optuna.storages import BaseStorage
 from optuna.trial import TrialState
 
-from optimizer import scoring
+from optimizer import physics, scoring
 from optimizer.scoring import pareto_mask
 from optimizer.bom import unique_values_array
 from optimizer.catalog import Catalog, load_catalog
@@ -39,7 +39,7 @@ from optimizer.errors import InputError
 from optimizer.sampler import NeighbourSampler
 from optimizer.sizing import size_capacitors
 from optimizer.spec import Spec, check_against_catalog, parse_spec, spec_to_dict
-from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage
+from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, sync
 from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import METRICS
@@ -110,6 +110,7 @@ class SearchSpace:
     devices: dict[str, Device]
     device_price: dict[str, float]
     topologies: tuple[str, ...]
+    _distributions: dict[str, dict] = field(default_factory=dict, repr=False)
 
     @classmethod
     def build(cls, spec: Spec, catalog: Catalog | None = None) -> "SearchSpace":
@@ -156,6 +157,11 @@ class SearchSpace:
     def distributions(self, params: dict[str, object]) -> dict[str, optuna.distributions.BaseDistribution]:
         """The parameters (with their distributions) of the topology that ``params`` chose."""
         topology = str(params.get("topology", self.topologies[0]))
+        if topology not in self._distributions:
+            self._distributions[topology] = self._topology_distributions(topology)
+        return self._distributions[topology]
+
+    def _topology_distributions(self, topology: str) -> dict[str, optuna.distributions.BaseDistribution]:
         model = get_topology(topology)
         top = self.resistors.values.size - 1
         out: dict[str, optuna.distributions.BaseDistribution] = {}
@@ -246,8 +252,10 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
     metrics = {k: np.asarray(v, dtype=float) for k, v in result.metrics.items()}
     if not full:
         metrics.update({k: np.full(n, v) for k, v in FULL_ONLY_OPTIMISTIC.items()})
-    violations = scoring.limit_violations(spec, metrics, result.ratings, rating_limits,
-                                          result.operating_point["active"], core_only=not full)
+    op = result.operating_point
+    headroom = np.minimum(op["vce"], op.get("vce2", op["vce"])) - device.vce_sat - physics.ACTIVE_MARGIN
+    violations = scoring.limit_violations(spec, metrics, result.ratings, rating_limits, op["active"],
+                                          core_only=not full, vce_headroom=headroom)
     total = np.nan_to_num(scoring.total_violation(violations), nan=1e6)
 
     metrics["gain_error_db"] = scoring.gain_error_db(spec, metrics["gain"])
@@ -450,6 +458,7 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
                 t.set_user_attr("record", record)
                 t.set_constraint("violation", record["total_violation"])
                 study.tell(t, record["objectives"])
+        sync(storage)  # the batch is on disk
         batches += 1
     finished, running = _counts(study)
     if finished >= budget and running == 0 and study.user_attrs.get("status") == "running":
@@ -576,7 +585,7 @@ def load_search(storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SI
 def list_searches(storage: BaseStorage) -> list[dict]:
     """Status of every search in ``storage``, newest first (without the best design)."""
     out = []
-    for s in optuna.get_all_study_summaries(storage, include_best_trial=False):
+    for s in storage.get_all_studies():  # study records only, no trials read
         attrs = s.user_attrs
         if "spec" not in attrs:
             continue  # not a stagefit search

@@ -22,6 +22,7 @@ from __future__ import annotations
 import fcntl
 import hashlib
 import inspect
+import json
 import logging
 import os
 import socket
@@ -31,11 +32,12 @@ import weakref
 from contextlib import contextmanager
 from datetime import datetime, timedelta
 from pathlib import Path
-from typing import Iterator
+from typing import IO, Iterator
 
 import optuna
 from optuna.storages import BaseStorage
 from optuna.storages._heartbeat import is_heartbeat_enabled
+from optuna.storages.journal._file import BaseJournalFileLock, get_lock_file
 
 from optimizer.errors import InputError
 
@@ -44,6 +46,7 @@ _RDB_SCHEMES = ("sqlite", "postgresql", "postgres", "mysql")
 _cache: dict[str, BaseStorage] = {}
 _lock = threading.Lock()
 _claim_files: "weakref.WeakKeyDictionary[BaseStorage, Path]" = weakref.WeakKeyDictionary()
+_journal_backends: "weakref.WeakKeyDictionary[BaseStorage, _BatchSyncedJournal]" = weakref.WeakKeyDictionary()
 _claim_locks: dict[str, threading.Lock] = {}
 HEARTBEAT_INTERVAL = 10  # s between heartbeats of a running trial (STAGEFIT_HEARTBEAT_INTERVAL)
 GRACE_PERIOD = 30  # s without a heartbeat before a running trial is failed (STAGEFIT_GRACE_PERIOD)
@@ -57,13 +60,62 @@ warnings.filterwarnings("ignore", category=optuna.exceptions.ExperimentalWarning
 warnings.filterwarnings("ignore", message="Heartbeat of storage is supposed to be used with Study.optimize")
 
 
+class _FlockLock(BaseJournalFileLock):
+    """The journal's write lock: ``fcntl.flock`` on a file beside it. Cheaper than Optuna's
+    lock files (no file created and removed per record), and the kernel releases it when its
+    holder dies, so a killed process never leaves the journal locked."""
+
+    def __init__(self, path: Path) -> None:
+        self._path = path
+        self._held = threading.local()  # each thread its own descriptor, so threads exclude each other too
+
+    def acquire(self) -> bool:
+        handle: IO[bytes] = open(self._path, "ab")
+        fcntl.flock(handle, fcntl.LOCK_EX)
+        self._held.handle = handle
+        return True
+
+    def release(self) -> None:
+        handle = getattr(self._held, "handle", None)
+        if handle is not None:
+            self._held.handle = None
+            fcntl.flock(handle, fcntl.LOCK_UN)
+            handle.close()
+
+
+class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
+    """Optuna's journal file, each record flushed to the operating system at once (so a killed
+    process loses nothing it wrote) but forced to disk once per batch (:func:`sync`) rather
+    than once per record: a search writes about eight records per trial, and an fsync each
+    took most of a journal search's time here. A power cut can lose the batch in hand."""
+
+    def append_logs(self, logs: list[dict]) -> None:
+        text = "".join(json.dumps(log, separators=(",", ":")) + "\n" for log in logs)
+        with get_lock_file(self._lock):
+            with open(self._file_path, "ab") as handle:
+                handle.write(text.encode("utf-8"))
+
+    def sync(self) -> None:
+        """Force the journal's records to disk."""
+        with open(self._file_path, "ab") as handle:
+            os.fsync(handle.fileno())
+
+
 def _journal(path: Path) -> BaseStorage:
     path.parent.mkdir(parents=True, exist_ok=True)
-    lock = optuna.storages.journal.JournalFileOpenLock(str(path))
-    storage = optuna.storages.journal.JournalStorage(
-        optuna.storages.journal.JournalFileBackend(str(path), lock_obj=lock))
+    backend = _BatchSyncedJournal(str(path), lock_obj=_FlockLock(path.with_name(path.name + ".lock")))
+    storage = optuna.storages.journal.JournalStorage(backend)
     _claim_files[storage] = path.with_name(path.name + ".claim")
+    _journal_backends[storage] = backend
     return storage
+
+
+def sync(storage: BaseStorage) -> None:
+    """Make what a runner wrote durable (a journal file's once-per-batch fsync; databases
+    commit every write themselves)."""
+    backend = _journal_backends.get(storage)
+    if backend is not None:
+        backend.sync()
 
 
 def _seconds(name: str, default: int) -> int:
