@@ -139,7 +139,7 @@ def with_search(spec: Spec, **overrides: object) -> Spec:
 
 def completed_records(storage, search_id: str) -> list[dict]:
     study = optuna.load_study(study_name=search_id, storage=storage)
-    return [t.user_attrs["record"] for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
+    return [search_module.trial_record(t) for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
             if "record" in t.user_attrs]
 
 

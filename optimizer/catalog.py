@@ -12,6 +12,7 @@ import csv
 import functools
 import os
 from dataclasses import dataclass
+from functools import cached_property
 from pathlib import Path
 from typing import Callable
 
@@ -255,6 +256,17 @@ class Catalog:
                                     title=f"unknown transistor in catalog {self.name}")
         return _row_dict(match.iloc[0])
 
+    @cached_property
+    def _cheapest_in_stock(self) -> dict[str, pd.DataFrame]:
+        """Per kind, the row part_for picks for each value in stock (sorted by value)."""
+        out = {}
+        for kind, frame in (("resistor", self.resistors), ("capacitor", self.capacitors)):
+            stocked = frame[_in_stock(frame)]
+            out[kind] = (stocked.assign(_stock=stocked["stock_qty"].fillna(np.iinfo(np.int64).max))
+                         .sort_values(["value", "unit_price", "_stock", "part_id"], ascending=[True, True, False, True])
+                         .drop_duplicates("value").drop(columns="_stock").reset_index(drop=True))
+        return out
+
     def part_for(self, role_kind: str, value: float) -> dict | None:
         """The cheapest in-stock row of ``role_kind`` ("resistor" or "capacitor") with
         ``value`` (ohm or F); ties go to the larger stock. None if none is in stock."""
@@ -264,14 +276,9 @@ class Catalog:
     def parts_for(self, role_kind: str, values: np.ndarray) -> pd.DataFrame:
         """The row :meth:`part_for` picks for each of ``values``, one frame row per value
         (all columns missing where no row with that value is in stock)."""
-        frames = {"resistor": self.resistors, "capacitor": self.capacitors}
-        if role_kind not in frames:
+        if role_kind not in ("resistor", "capacitor"):
             raise InputError.single("role_kind", role_kind, "resistor or capacitor")
-        frame = frames[role_kind]
-        stocked = frame[_in_stock(frame)]
-        best = (stocked.assign(_stock=stocked["stock_qty"].fillna(np.iinfo(np.int64).max))
-                .sort_values(["value", "unit_price", "_stock", "part_id"], ascending=[True, True, False, True])
-                .drop_duplicates("value").drop(columns="_stock").reset_index(drop=True))
+        best = self._cheapest_in_stock[role_kind]
         wanted = np.asarray(values, dtype=float)
         known = best["value"].to_numpy(dtype=float)
         if known.size == 0:

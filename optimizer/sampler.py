@@ -29,6 +29,7 @@ plan of each trial made in ``before_trial`` and handed out in ``sample_independe
 """
 from __future__ import annotations
 
+import random
 from typing import Any, Callable
 
 import numpy as np
@@ -45,6 +46,7 @@ P_RANDOM, P_SWITCH, P_CROSSOVER = 0.05, 0.08, 0.15
 MOVE_COUNTS, MOVE_COUNT_P = (1, 2, 3), (0.5, 0.3, 0.2)
 STEPS, STEP_P = (1, 2, 3, 4, 5, 6), (0.55, 0.25, 0.08, 0.05, 0.04, 0.03)
 RETRIES = 12
+REFRESH_EVERY = 8  # trials between looks at the finished trials (a batch finishes together anyway)
 P_COUPLED = 0.5  # share of multi-parameter moves that step every chosen index by the same amount
 P_QUEUED = 0.5  # share of proposals taken from the queue of incumbents' neighbours while it lasts
 
@@ -60,17 +62,20 @@ class NeighbourSampler(BaseSampler):
     def __init__(self, rank_key: Callable[[FrozenTrial], tuple], directions: list[str],
                  group_params: Callable[[dict[str, Any]], dict[str, BaseDistribution]],
                  seed: int | None = None) -> None:
-        self._rng = np.random.default_rng(seed)
+        self._py = random.Random(seed)
         self._random = RandomSampler(seed=seed)
-        self._rank_key = rank_key
+        self._rank_of = rank_key
+        self._ranks: dict[int, tuple] = {}
         self._directions = directions
         self._group_params = group_params
         self._plans: dict[int, dict[str, Any]] = {}
         self._seen: set[tuple] = set()
         self._cache_count = -1
+        self._next_refresh = 0
         self._elite: list[FrozenTrial] = []
         self._front: list[FrozenTrial] = []
         self._queue: list[dict[str, Any]] = []
+        self._counted: set[int] = set()  # finished trials already folded into the elite and front
         self._swept: set[tuple] = set()
 
     # ---- Optuna's interface --------------------------------------------------------------
@@ -85,7 +90,9 @@ class NeighbourSampler(BaseSampler):
         if "fixed_params" in trial.system_attrs:
             self._seen.add(self._key(trial.system_attrs["fixed_params"]))
             return
-        self._refresh(study)
+        if trial.number >= self._next_refresh:
+            self._refresh(study)
+            self._next_refresh = trial.number + REFRESH_EVERY
         if self._elite:
             self._plans[trial._trial_id] = self._propose()
 
@@ -103,20 +110,22 @@ class NeighbourSampler(BaseSampler):
 
     # ---- the elite and the front ---------------------------------------------------------
     def _refresh(self, study: Study) -> None:
+        """Fold the trials finished since the last look into the elite and the front."""
         done = study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
         if len(done) == self._cache_count:
             return
+        new = [t for t in done if t._trial_id not in self._counted]
         self._cache_count = len(done)
-        for t in done:
+        self._counted.update(t._trial_id for t in new)
+        for t in new:
             self._seen.add(self._key(t.params))
-        ranked = sorted(done, key=self._rank_key)
-        self._elite = ranked[:ELITE_SIZE]
-        feasible = [t for t in done if self._rank_key(t)[0] == 0]
+        self._elite = sorted(self._elite + new, key=self._rank_key)[:ELITE_SIZE]
+        feasible = self._front + [t for t in new if self._rank_key(t)[0] == 0]
         keep = pareto_mask(np.array([t.values for t in feasible]), self._directions) if feasible else []
         self._front = [t for t, k in zip(feasible, keep) if k]
         centres = self._elite[:1]
         if self._front:
-            centres.append(self._front[self._rng.integers(len(self._front))])
+            centres.append(self._front[self._py.randrange(len(self._front))])
         for centre in centres:
             self._sweep(dict(centre.params))
 
@@ -139,36 +148,39 @@ class NeighbourSampler(BaseSampler):
                     self._queue.append(neighbour)
 
     def _propose(self) -> dict[str, Any]:
-        while self._queue and self._rng.random() < P_QUEUED:
+        while self._queue and self._py.random() < P_QUEUED:
             plan = self._queue.pop(0)
             if self._key(plan) not in self._seen:
                 self._seen.add(self._key(plan))
                 return plan
-        if self._rng.random() < P_RANDOM:
+        if self._py.random() < P_RANDOM:
             return {}
-        for _ in range(RETRIES):
-            plan = self._mutate(dict(self._parent().params))
+        for attempt in range(RETRIES):  # steps grow with each try, out of a well-trodden neighbourhood
+            plan = self._mutate(dict(self._parent().params), reach=1 + attempt // 3)
             if self._key(plan) not in self._seen:
                 self._seen.add(self._key(plan))
                 return plan
         return plan
 
     def _parent(self) -> FrozenTrial:
-        if self._front and self._rng.random() < PARENT_FROM_FRONT:
-            return self._front[self._rng.integers(len(self._front))]
+        if self._front and self._py.random() < PARENT_FROM_FRONT:
+            return self._front[self._py.randrange(len(self._front))]
         # a tournament of two among the elite, biased to the better
-        i, j = self._rng.integers(len(self._elite), size=2)
+        i, j = self._py.randrange(len(self._elite)), self._py.randrange(len(self._elite))
         return self._elite[min(i, j)]
 
-    def _mutate(self, params: dict[str, Any]) -> dict[str, Any]:
+    def _step(self, reach: int) -> int:
+        return self._py.choices(STEPS, STEP_P)[0] * reach * self._py.choice((-1, 1))
+
+    def _mutate(self, params: dict[str, Any], reach: int = 1) -> dict[str, Any]:
         space = self._group_params(params)
-        r = self._rng.random()
+        r = self._py.random()
         if r < P_SWITCH:
             switchable = [n for n, d in space.items() if isinstance(d, CategoricalDistribution) and len(d.choices) > 1]
             if switchable:
-                name = switchable[self._rng.integers(len(switchable))]
+                name = switchable[self._py.randrange(len(switchable))]
                 choices = [c for c in space[name].choices if c != params[name]]
-                params[name] = choices[self._rng.integers(len(choices))]
+                params[name] = choices[self._py.randrange(len(choices))]
                 same = [t for t in self._elite_all() if t.params.get(name) == params[name]]
                 if same:  # carry over the best design known with that choice
                     params = {**dict(same[0].params), name: params[name]}
@@ -176,23 +188,29 @@ class NeighbourSampler(BaseSampler):
         elif r < P_SWITCH + P_CROSSOVER:
             mates = [t for t in self._elite if self._group_params(t.params).keys() == space.keys()]
             if len(mates) > 1:
-                mate = mates[self._rng.integers(len(mates))]
+                mate = mates[self._py.randrange(len(mates))]
                 for name in space:
-                    if self._rng.random() < 0.5 and name in mate.params:
+                    if self._py.random() < 0.5 and name in mate.params:
                         params[name] = mate.params[name]
                 return params
         steppable = [n for n, d in space.items() if isinstance(d, IntDistribution) and d.high > d.low]
         if not steppable:
             return params
-        count = min(int(self._rng.choice(MOVE_COUNTS, p=MOVE_COUNT_P)), len(steppable))
-        coupled = count > 1 and self._rng.random() < P_COUPLED
-        step = int(self._rng.choice(STEPS, p=STEP_P)) * (1 if self._rng.random() < 0.5 else -1)
-        for name in self._rng.choice(steppable, size=count, replace=False):
+        count = min(self._py.choices(MOVE_COUNTS, MOVE_COUNT_P)[0], len(steppable))
+        coupled = count > 1 and self._py.random() < P_COUPLED
+        step = self._step(reach)
+        for name in self._py.sample(steppable, count):
             d = space[name]
             if not coupled:
-                step = int(self._rng.choice(STEPS, p=STEP_P)) * (1 if self._rng.random() < 0.5 else -1)
-            params[name] = int(np.clip(params.get(name, d.low) + step, d.low, d.high))
+                step = self._step(reach)
+            params[name] = min(max(params.get(name, d.low) + step, d.low), d.high)
         return params
+
+    def _rank_key(self, trial: FrozenTrial) -> tuple:
+        """The caller's rank key, worked out once per finished trial."""
+        if trial._trial_id not in self._ranks:
+            self._ranks[trial._trial_id] = self._rank_of(trial)
+        return self._ranks[trial._trial_id]
 
     def _elite_all(self) -> list[FrozenTrial]:
         return self._elite + self._front

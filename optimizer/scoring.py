@@ -66,7 +66,8 @@ def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[s
         out["active"] = inactive.astype(float)
     else:
         shortfall = np.nan_to_num(-np.asarray(vce_headroom, dtype=float) / spec.supply, nan=np.inf)
-        graded = np.where(shortfall > 0, SATURATION_FLOOR + np.clip(shortfall, 0.0, 1.0), 1.0)
+        depth = np.maximum(shortfall, 0.0)
+        graded = np.where(shortfall > 0, SATURATION_FLOOR + depth / (1.0 + depth), 1.0)  # rises without a cap
         out["active"] = np.where(inactive, graded, 0.0)
     if not core_only:
         out["band_low"] = _below(metrics["f_low"], spec.band[0])

@@ -49,15 +49,15 @@ optuna.logging.set_verbosity(optuna.logging.WARNING)
 
 STATUSES = ("queued", "running", "done", "failed", "cancelled")
 SHORTLIST_SAMPLES = 500  # Monte Carlo builds for each shortlisted design's yield
-SHORTLIST_SIZE = 20  # designs given the full assessment (worst case, yield) when a search finishes
-FRONT_YIELD_POINTS = 12  # front points (evenly spread along it) that carry a yield figure
+SHORTLIST_SIZE = 12  # designs given the full assessment (worst case, yield) when a search finishes
+FRONT_YIELD_POINTS = 8  # front points (evenly spread along it) that carry a yield figure
 BAD_OBJECTIVE = 1e12  # stand-in for a metric the model cannot give (e.g. a stage that is not active)
 ABSENT_RATING = 1e30  # W: the rating of a part left out (never binds)
 ABSENT = -1  # index of an optional part left out (feedback_ce without an emitter resistor)
 
 __all__ = ["SearchSpace", "SearchResult", "open_storage", "create_search", "run_search", "load_search",
            "search_status", "list_searches", "cancel_search", "delete_search", "extend_search", "fail_search", "search",
-           "evaluate_designs", "evaluate_group", "rank_records", "pareto_mask"]
+           "evaluate_designs", "evaluate_group", "rank_records", "pareto_mask", "trial_record"]
 
 
 # ----------------------------------------------------------------------------- search space
@@ -367,9 +367,16 @@ def _now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
+def trial_record(trial: optuna.trial.FrozenTrial) -> dict | None:
+    """The design record a finished trial carries (user attr ``record``, kept as JSON text:
+    Optuna deep-copies a trial's attributes on every tell, and text copies for free)."""
+    record = trial.user_attrs.get("record")
+    return json.loads(record) if isinstance(record, str) else record
+
+
 def _rank_key(trial: optuna.trial.FrozenTrial) -> tuple[int, float]:
     """Best first: feasible by score, then infeasible by summed violation."""
-    record = trial.user_attrs.get("record")
+    record = trial_record(trial)
     if not record:
         return (2, 0.0)
     return (0, -record["score"]) if record["feasible"] else (1, record["total_violation"])
@@ -455,7 +462,7 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
                 study.set_user_attr("status", "failed")
                 raise
             for t, record in zip(trials, records):
-                t.set_user_attr("record", record)
+                t.set_user_attr("record", json.dumps(record))
                 t.set_constraint("violation", record["total_violation"])
                 study.tell(t, record["objectives"])
         sync(storage)  # the batch is on disk
@@ -468,7 +475,7 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
 def _records(study: optuna.Study) -> list[dict]:
     out = []
     for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
-        record = t.user_attrs.get("record")
+        record = trial_record(t)
         if record:
             out.append({**record, "trial": t.number})
     return out
@@ -484,13 +491,15 @@ def _front(space: SearchSpace, ranked: list[dict]) -> list[dict]:
     return sorted(points, key=lambda r: r["objectives"][0])
 
 
-def _summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int) -> dict:
+def _summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *, tail: bool = True) -> dict:
+    """The shortlist (``top`` designs fully assessed) and the front; with ``tail`` every other
+    ranked design follows the shortlist as a nominal candidate."""
     ranked = rank_records(_records(study))
     shortlist = [_shortlist_candidate(space, r, samples) for r in ranked[:top]]
     order = sorted(range(len(shortlist)), key=lambda k: (not shortlist[k]["feasible"],
                                                         -shortlist[k]["score"] if shortlist[k]["feasible"]
                                                         else ranked[k]["total_violation"]))
-    candidates = [shortlist[k] for k in order] + [candidate_from_record(space, r) for r in ranked[top:]]
+    candidates = [shortlist[k] for k in order] + [candidate_from_record(space, r) for r in ranked[top:] if tail]
     for rank, c in enumerate(candidates, 1):
         c["rank"] = rank
     points = _front(space, ranked)
@@ -504,8 +513,8 @@ def _summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int) 
 
 
 def _finish(study: optuna.Study, space: SearchSpace) -> None:
-    summary = _summarise(space, study, SHORTLIST_SIZE, SHORTLIST_SAMPLES)
-    study.set_user_attr("ranking", {"candidates": summary["candidates"][:SHORTLIST_SIZE], "front": summary["front"]})
+    summary = _summarise(space, study, SHORTLIST_SIZE, SHORTLIST_SAMPLES, tail=False)
+    study.set_user_attr("ranking", {"candidates": summary["candidates"], "front": summary["front"]})
     study.set_user_attr("finished", _now())
     study.set_user_attr("elapsed", time.time() - float(study.user_attrs.get("started", time.time())))
     study.set_user_attr("status", "done")
