@@ -14,9 +14,12 @@ the enumeration is a branch and bound that stays exact:
 2. combinations are then fully evaluated (capacitors sized) in order of that bound, until
    the next bound cannot beat the best full score found.
 
-Combinations whose gain cannot reach the spec's window even in principle are dropped
-first where the topology has a gain bound (``GAIN_BOUNDS``), but only while a design
-meeting every limit is found; otherwise the whole space is scored.
+The pass is streaming: only the combinations meeting every core limit are kept (memory
+grows with them, not with the space). Where the topology has a gain bound
+(``GAIN_BOUNDS``) only the (r_collector, r_emitter) pairs that can reach the spec's gain
+window are combined with the other roles. When no design meets every limit, the whole space
+is scored again for the nearest miss (the best bounds kept, and a further pass if the bound
+cannot rule out the rest), so the answer stays exact.
 """
 from __future__ import annotations
 
@@ -38,12 +41,15 @@ def _parallel(a: np.ndarray, b: float) -> np.ndarray:
     return a * b / (a + b)
 
 
-#: topology -> upper bound of |gain| (V/V) from its resistors and the load (ohm): the
-#: degenerated stage's gain beta*Rac/(r_pi + (beta+1)*Re) never reaches Rac/Re.
-GAIN_BOUNDS: dict[str, Callable[[dict[str, np.ndarray], float], np.ndarray]] = {
-    "divider_ce": lambda r, load: _parallel(r["r_collector"], load) / r["r_emitter"],
-    "divider_ce_split": lambda r, load: _parallel(r["r_collector"], load) / r["r_emitter"],
+#: topology -> (the resistor roles it reads, upper bound of |gain| (V/V) from those
+#: resistors and the load (ohm)): the degenerated stage's gain beta*Rac/(r_pi + (beta+1)*Re)
+#: never reaches Rac/Re.
+GAIN_BOUNDS: dict[str, tuple[tuple[str, ...], Callable[[dict[str, np.ndarray], float], np.ndarray]]] = {
+    "divider_ce": (("r_collector", "r_emitter"), lambda r, load: _parallel(r["r_collector"], load) / r["r_emitter"]),
+    "divider_ce_split": (("r_collector", "r_emitter"),
+                         lambda r, load: _parallel(r["r_collector"], load) / r["r_emitter"]),
 }
+KEEP_INFEASIBLE = 4096  # designs missing a core limit kept (best bound first) for the no-answer case
 
 
 @dataclass
@@ -57,8 +63,44 @@ class OracleResult:
     feasible: int  # combinations meeting every core limit
 
 
-def _indices(shape: tuple[int, ...], offsets: np.ndarray, start: int, stop: int) -> np.ndarray:
-    return np.stack(np.unravel_index(np.arange(start, stop), shape), axis=1) + offsets
+class _Enumeration:
+    """Every combination of the roles' indices, in chunks; where the topology has a gain
+    bound (and ``prune``), only the (r_collector, r_emitter) pairs that can reach the spec's
+    gain window are combined with the other roles."""
+
+    def __init__(self, space: SearchSpace, spec: Spec, roles: tuple[str, ...], lows: dict[str, int],
+                 prune: bool, topology: str) -> None:
+        n = space.resistors.values.size
+        ranges = {r: np.arange(lows[r], n) for r in roles}
+        bounded: tuple[str, ...] = ()
+        if prune and topology in GAIN_BOUNDS:
+            bounded, bound = GAIN_BOUNDS[topology]
+            grid = np.stack(np.meshgrid(*(ranges[r] for r in bounded), indexing="ij"), axis=-1).reshape(-1, len(bounded))
+            values = {r: space.resistors.values[np.maximum(grid[:, j], 0)] for j, r in enumerate(bounded)}
+            floor = spec.gain.target * 10 ** (-spec.gain.tolerance_db / 20)
+            self._pairs = grid[bound(values, spec.load_impedance) >= floor]
+        else:
+            self._pairs = np.zeros((1, 0), dtype=int)
+        self.roles, self._bounded = roles, bounded
+        self._free = tuple(r for r in roles if r not in bounded)
+        self._free_lows = np.array([lows[r] for r in self._free], dtype=int)
+        self._free_shape = tuple(n - lows[r] for r in self._free)
+        self._free_count = int(np.prod(self._free_shape, dtype=np.int64))
+        self.size = len(self._pairs) * self._free_count
+
+    def chunks(self, chunk: int):
+        """Index arrays (combinations, roles) in the order of ``roles``."""
+        column = {r: j for j, r in enumerate(self.roles)}
+        for start in range(0, self.size, chunk):
+            linear = np.arange(start, min(start + chunk, self.size))
+            out = np.empty((linear.size, len(self.roles)), dtype=int)
+            pair, free = np.divmod(linear, self._free_count)
+            for j, r in enumerate(self._bounded):
+                out[:, column[r]] = self._pairs[pair, j]
+            if self._free:
+                for j, idx in enumerate(np.unravel_index(free, self._free_shape)):
+                    out[:, column[self._free[j]]] = idx + self._free_lows[j]
+            yield out
 
 
 def exhaustive(spec: Spec, topology: str | None = None, device: str | None = None,
@@ -78,54 +120,57 @@ def exhaustive(spec: Spec, topology: str | None = None, device: str | None = Non
     model = get_topology(topology)
     n = space.resistors.values.size
     roles = model.resistors
-    offsets = np.array([ABSENT if r in model.optional_parts else 0 for r in roles])
-    shape = tuple(n - o for o in offsets)
-    total = int(np.prod(shape, dtype=np.int64))
-    gain_floor = spec.gain.target * 10 ** (-spec.gain.tolerance_db / 20)
+    lows = {r: (ABSENT if r in model.optional_parts else 0) for r in roles}
+    total = int(np.prod([n - lows[r] for r in roles], dtype=np.int64))
 
-    def bounds(prune: bool) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
-        kept, optimistic, core_violation, feasible = [], [], [], 0
-        for start in range(0, total, CHUNK):
-            idx = _indices(shape, offsets, start, min(start + CHUNK, total))
-            if prune and topology in GAIN_BOUNDS:
-                values = {r: space.resistors.values[np.maximum(idx[:, j], 0)] for j, r in enumerate(roles)}
-                idx = idx[GAIN_BOUNDS[topology](values, spec.load_impedance) >= gain_floor]
-            if not len(idx):
-                continue
+    def bounds(prune: bool, threshold: float, limit: int | None) -> tuple[np.ndarray, np.ndarray, int]:
+        """One streaming pass of the core model: the combinations whose optimistic score
+        exceeds ``threshold``, at most ``limit`` of them (the best), and the count meeting
+        every core limit."""
+        kept, optimistic, feasible = np.zeros((0, len(roles)), dtype=int), np.zeros(0), 0
+        for idx in _Enumeration(space, spec, roles, lows, prune, topology).chunks(CHUNK):
             g = evaluate_group(space, topology, device, {r: idx[:, j] for j, r in enumerate(roles)}, full=False)
-            kept.append(idx)
-            optimistic.append(g["score"])
-            core_violation.append(g["total"])
             feasible += int((g["total"] == 0).sum())
-        if not kept:
-            return np.zeros((0, len(roles)), dtype=int), np.zeros(0), np.zeros(0), 0
-        return np.concatenate(kept), np.concatenate(optimistic), np.concatenate(core_violation), feasible
+            keep = g["score"] > threshold
+            kept, optimistic = np.concatenate([kept, idx[keep]]), np.concatenate([optimistic, g["score"][keep]])
+            if limit is not None and optimistic.size > 2 * limit:
+                best = np.argpartition(-optimistic, limit)[:limit]
+                kept, optimistic = kept[best], optimistic[best]
+                threshold = max(threshold, float(optimistic.min()))
+        return kept, optimistic, feasible
 
-    idx, optimistic, core_violation, feasible = bounds(prune=True)
-    if feasible == 0:
-        idx, optimistic, core_violation, feasible = bounds(prune=False)
+    def branch_and_bound(idx: np.ndarray, optimistic: np.ndarray) -> bool:
+        """Fully evaluate in order of the bound until none left could beat the best; every
+        design meeting the core limits is evaluated (bound > 0), so the front is exact.
+        True if the bound cut the list short (the rest provably cannot win)."""
+        nonlocal best_score, best, evaluated
+        order = np.argsort(-optimistic, kind="stable")
+        for start in range(0, order.size, FULL_CHUNK):
+            chunk = order[start:start + FULL_CHUNK]
+            if optimistic[chunk[0]] <= 0 and optimistic[chunk[0]] < best_score:
+                return True
+            sub = idx[chunk]
+            g = evaluate_group(space, topology, device, {r: sub[:, j] for j, r in enumerate(roles)}, full=True)
+            evaluated += chunk.size
+            k = int(np.argmax(g["score"]))
+            if g["score"][k] > best_score:
+                best_score, best = float(g["score"][k]), (g, k)
+            ok = g["total"] == 0
+            if ok.any():
+                values = np.stack(g["objective_values"], axis=1)[ok]
+                front_values.append(values[pareto_mask(values, directions)])
+        return False
 
-    # branch and bound: full evaluation in order of the optimistic score. Every design that
-    # meets the core limits (optimistic score > 0) is evaluated, so the front is exact; past
-    # them, only while an infeasible design could still beat the best found.
-    order = np.argsort(-optimistic, kind="stable")
     best_score, best, evaluated = -np.inf, None, 0
     directions = [d for _, d in spec.objective_directions]
     front_values: list[np.ndarray] = []
-    for start in range(0, order.size, FULL_CHUNK):
-        chunk = order[start:start + FULL_CHUNK]
-        if optimistic[chunk[0]] <= 0 and optimistic[chunk[0]] < best_score:
-            break
-        sub = idx[chunk]
-        g = evaluate_group(space, topology, device, {r: sub[:, j] for j, r in enumerate(roles)}, full=True)
-        evaluated += chunk.size
-        k = int(np.argmax(g["score"]))
-        if g["score"][k] > best_score:
-            best_score, best = float(g["score"][k]), (g, k)
-        ok = g["total"] == 0
-        if ok.any():
-            values = np.stack(g["objective_values"], axis=1)[ok]
-            front_values.append(values[pareto_mask(values, directions)])
+    idx, optimistic, feasible = bounds(prune=True, threshold=0.0, limit=None)  # every core-feasible design
+    branch_and_bound(idx, optimistic)
+    if best_score <= 0:  # no design meets every limit: the nearest miss, over the whole space
+        idx, optimistic, _ = bounds(prune=False, threshold=-np.inf, limit=KEEP_INFEASIBLE)
+        if not branch_and_bound(idx, optimistic) and idx.shape[0] == KEEP_INFEASIBLE:
+            idx, optimistic, _ = bounds(prune=False, threshold=best_score, limit=None)
+            branch_and_bound(idx, optimistic)
     if best is None:
         raise InputError.single("spec", spec.name, "a space with at least one combination", title="empty space")
     front = np.concatenate(front_values) if front_values else np.zeros((0, len(directions)))

@@ -144,3 +144,14 @@ def test_capacitors_can_be_searched_instead_of_sized() -> None:
 def test_bad_search_section_names_the_field() -> None:
     with pytest.raises(InputError, match="search.capacitors"):
         parse_spec({**SMALL, "search": {"capacitors": "guessed"}})
+
+
+def test_oracle_answers_an_impossible_spec_with_the_nearest_miss() -> None:
+    from optimizer.exhaustive import exhaustive
+
+    spec = parse_spec({**SMALL, "supply": "3.3 V", "limits": {"swing_min": "3 V"}})
+    oracle = exhaustive(spec)
+    assert not oracle.best["feasible"] and len(oracle.front) == 0 and oracle.best["score"] < 0
+    found = search(spec, trials=1024, top=1).candidates[0]["score"]
+    assert found <= oracle.best["score"] + 1e-12  # nothing beats the oracle's nearest miss
+    assert found >= oracle.best["score"] - 0.05  # and the search comes near it
