@@ -108,6 +108,7 @@ class JobPool:
         ``stale_after`` s ago belong to a process that died (a killed server): they are
         failed so the budget is met by new trials (0 s: retry now); younger ones may be
         another runner's batch in flight (retry in a few seconds)."""
+        from optuna.storages._heartbeat import is_heartbeat_enabled
         from optuna.trial import TrialState
 
         if self._stop.is_set():
@@ -117,9 +118,10 @@ class JobPool:
             return None
         now = datetime.now()
         freed, waiting = 0, 0
+        by_age = not is_heartbeat_enabled(self.storage)  # with heartbeats, run_search fails stale trials itself
         for trial in self.storage.get_all_trials(study_id, deepcopy=False, states=(TrialState.RUNNING,)):
             started = trial.datetime_start
-            if started is not None and (now - started).total_seconds() >= self.stale_after:
+            if by_age and started is not None and (now - started).total_seconds() >= self.stale_after:
                 try:
                     self.storage.set_trial_state_values(trial._trial_id, TrialState.FAIL)
                     freed += 1
