@@ -14,13 +14,14 @@ sampling them independently:
   places along its ordered values; now and then a crossover with another elite design of
   the same topology, a switch of topology or device (taking the best design known there),
   or a fresh random design (the global moves that stop the search settling too early);
-- coupled moves: two or more indices stepped together by the same amount, which keeps their
-  ratio (a divider's bias point, a gain set by Rc/Re) while scaling the impedance level, a
-  move single steps cannot make without passing through infeasible designs;
-- whenever the best design changes, and for one front point per batch, every neighbour one
-  step away (each parameter +-1, and each pair together +-1) is queued and tried first, so
-  the search does not stop one step short of a local optimum (a pattern search around the
-  incumbents);
+- coupled moves: two or more indices (or all of them) stepped together by the same amount,
+  which keeps their ratios (a divider's bias point, a gain set by Rc/Re) while scaling the
+  impedance level and so the current, a move single steps cannot make without passing
+  through infeasible designs;
+- whenever the best design changes, and for the front's two ends and one other front point
+  per batch, every neighbour one step away (each index, each pair, and all indices together,
+  +-1) is queued and tried first, so the search does not stop one step short of a local
+  optimum or of the front's next point (a pattern search around the incumbents);
 - designs already proposed are not proposed again while an untried neighbour is found.
 
 Before any design is finished it samples at random; enqueued seeds are taken as given.
@@ -29,6 +30,7 @@ plan of each trial made in ``before_trial`` and handed out in ``sample_independe
 """
 from __future__ import annotations
 
+import itertools
 import random
 from typing import Any, Callable
 
@@ -47,6 +49,7 @@ MOVE_COUNTS, MOVE_COUNT_P = (1, 2, 3), (0.5, 0.3, 0.2)
 STEPS, STEP_P = (1, 2, 3, 4, 5, 6), (0.55, 0.25, 0.08, 0.05, 0.04, 0.03)
 RETRIES = 12
 REFRESH_EVERY = 8  # trials between looks at the finished trials (a batch finishes together anyway)
+P_SCALE = 0.1  # share of moves that step every index together (gain and bias ratios kept, current scaled)
 P_COUPLED = 0.5  # share of multi-parameter moves that step every chosen index by the same amount
 P_QUEUED = 0.5  # share of proposals taken from the queue of incumbents' neighbours while it lasts
 
@@ -74,6 +77,7 @@ class NeighbourSampler(BaseSampler):
         self._next_refresh = 0
         self._elite: list[FrozenTrial] = []
         self._front: list[FrozenTrial] = []
+        self._crowding: list[float] = []  # parent weights along the front: its gaps and ends first
         self._queue: list[dict[str, Any]] = []
         self._counted: set[int] = set()  # finished trials already folded into the elite and front
         self._swept: set[tuple] = set()
@@ -123,27 +127,29 @@ class NeighbourSampler(BaseSampler):
         feasible = self._front + [t for t in new if self._rank_key(t)[0] == 0]
         keep = pareto_mask(np.array([t.values for t in feasible]), self._directions) if feasible else []
         self._front = [t for t, k in zip(feasible, keep) if k]
+        self._crowding = _crowding_distance(np.array([t.values for t in self._front]))
         centres = self._elite[:1]
-        if self._front:
-            centres.append(self._front[self._py.randrange(len(self._front))])
+        if self._front:  # the front's two ends (they bound its hypervolume) and a random point
+            ends = sorted(self._front, key=lambda t: t.values[0])
+            centres += [ends[0], ends[-1], self._front[self._py.randrange(len(self._front))]]
         for centre in centres:
             self._sweep(dict(centre.params))
 
     def _sweep(self, params: dict[str, Any]) -> None:
-        """Queue every untried single-step neighbour of ``params`` (once per centre)."""
+        """Queue every untried neighbour of ``params`` one step away along each index, each
+        pair of indices and all of them together (+-1), once per centre."""
         key = self._key(params)
         if key in self._swept:
             return
         self._swept.add(key)
         ints = [(n, d) for n, d in self._group_params(params).items() if isinstance(d, IntDistribution)]
-        moves = [((n,),) for n, _ in ints] + [((a, b),) for i, (a, _) in enumerate(ints) for b, _ in ints[i + 1:]]
+        names = [n for n, _ in ints]
+        groups = [(n,) for n in names] + list(itertools.combinations(names, 2)) + [tuple(names)]
         bounds = dict(ints)
-        for (names,) in moves:
+        for group in groups:
             for step in (-1, 1):
-                neighbour = dict(params)
-                for name in names:
-                    neighbour[name] = params.get(name, bounds[name].low) + step
-                inside = all(bounds[n].low <= neighbour[n] <= bounds[n].high for n in names)
+                neighbour = {**params, **{n: params.get(n, bounds[n].low) + step for n in group}}
+                inside = all(bounds[n].low <= neighbour[n] <= bounds[n].high for n in group)
                 if inside and self._key(neighbour) not in self._seen:
                     self._queue.append(neighbour)
 
@@ -164,7 +170,7 @@ class NeighbourSampler(BaseSampler):
 
     def _parent(self) -> FrozenTrial:
         if self._front and self._py.random() < PARENT_FROM_FRONT:
-            return self._front[self._py.randrange(len(self._front))]
+            return self._py.choices(self._front, self._crowding)[0]
         # a tournament of two among the elite, biased to the better
         i, j = self._py.randrange(len(self._elite)), self._py.randrange(len(self._elite))
         return self._elite[min(i, j)]
@@ -196,6 +202,11 @@ class NeighbourSampler(BaseSampler):
         steppable = [n for n, d in space.items() if isinstance(d, IntDistribution) and d.high > d.low]
         if not steppable:
             return params
+        if self._py.random() < P_SCALE:  # every index stepped together: the impedance level scaled
+            step = self._step(reach)
+            for name in steppable:
+                params[name] = min(max(params.get(name, space[name].low) + step, space[name].low), space[name].high)
+            return params
         count = min(self._py.choices(MOVE_COUNTS, MOVE_COUNT_P)[0], len(steppable))
         coupled = count > 1 and self._py.random() < P_COUPLED
         step = self._step(reach)
@@ -218,6 +229,25 @@ class NeighbourSampler(BaseSampler):
     @staticmethod
     def _key(params: dict[str, Any]) -> tuple:
         return tuple(sorted(params.items()))
+
+
+def _crowding_distance(values: np.ndarray) -> list[float]:
+    """NSGA-II's crowding distance of each front point (objective gaps to its neighbours,
+    normalised per objective); the two ends of each objective get twice the largest, so the
+    front is pushed outward and its gaps filled."""
+    if len(values) < 3:
+        return [1.0] * len(values)
+    distance = np.zeros(len(values))
+    ends = np.zeros(len(values), dtype=bool)
+    for k in range(values.shape[1]):
+        order = np.argsort(values[:, k], kind="stable")
+        span = values[order[-1], k] - values[order[0], k]
+        if span > 0:
+            distance[order[1:-1]] += (values[order[2:], k] - values[order[:-2], k]) / span
+        ends[order[[0, -1]]] = True
+    top = distance[~ends].max() if (~ends).any() and distance[~ends].max() > 0 else 1.0
+    distance[ends] = 2.0 * top
+    return list(np.maximum(distance, 1e-3 * top))
 
 
 def _fits(distribution: BaseDistribution, value: Any) -> bool:
