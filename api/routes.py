@@ -7,8 +7,6 @@ leaves a half-made search behind.
 """
 from __future__ import annotations
 
-import csv
-import io
 import json
 import threading
 import time
@@ -473,29 +471,10 @@ def candidates(search_id: str) -> Response:
 
 
 def candidates_csv(records: list[dict]) -> str:
-    """Ranked candidates as a flat table: one row each, part labels and metrics as columns."""
-    roles: list[str] = []
-    metrics: list[str] = []
-    for record in records:
-        roles += [r for r in record.get("parts", {}) if r not in roles]
-        metrics += [m for m in record.get("metrics", {}) if m not in metrics]
-    head = ["rank", "feasible", "score", "binding", "topology", "device"]
-    buffer = io.StringIO()
-    writer = csv.writer(buffer, lineterminator="\n")
-    writer.writerow(head + roles + metrics)
-    for record in records:
-        row = [record.get("rank"), record.get("feasible"), record.get("score"), record.get("binding", ""),
-               record.get("topology"), (record.get("transistor") or {}).get("id")]
-        row += [(record["parts"].get(r) or {}).get("label", "") for r in roles]
-        row += [_cell(record["metrics"].get(m)) for m in metrics]
-        writer.writerow(row)
-    return buffer.getvalue()
+    """Ranked candidates as CSV: part labels and SI metrics as columns."""
+    from optimizer.search import candidates_frame
 
-
-def _cell(value: Any) -> Any:
-    if value is None or (isinstance(value, float) and value != value):
-        return ""
-    return repr(value) if isinstance(value, float) else value
+    return candidates_frame(records, labels=True).to_csv(index=False, lineterminator="\n")
 
 
 def _csv_response(text: str, filename: str) -> Response:

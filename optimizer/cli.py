@@ -223,6 +223,7 @@ def _cmd_search(args: argparse.Namespace) -> int:
     import numpy as np
 
     from optimizer.catalog import load_catalog
+    from optimizer.search import candidates_frame
     from optimizer.spec import load_spec
 
     spec = load_spec(args.spec)
@@ -233,7 +234,7 @@ def _cmd_search(args: argparse.Namespace) -> int:
         print(json.dumps({"search": result.id, "status": result.status["status"],
                           "candidates": shown, "front": front if args.front else None}, indent=2))
     elif args.format == "csv":
-        print(result.dataframe().head(args.top).to_csv(index=False), end="")
+        print(candidates_frame(shown, labels=True).to_csv(index=False), end="")
     else:
         markdown = args.format == "markdown"
         status = result.status

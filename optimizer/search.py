@@ -57,7 +57,7 @@ ABSENT = -1  # index of an optional part left out (feedback_ce without an emitte
 
 __all__ = ["SearchSpace", "SearchResult", "open_storage", "create_search", "run_search", "load_search",
            "search_status", "list_searches", "cancel_search", "delete_search", "extend_search", "fail_search", "search",
-           "evaluate_designs", "evaluate_group", "rank_records", "pareto_mask", "trial_record"]
+           "evaluate_designs", "evaluate_group", "rank_records", "pareto_mask", "trial_record", "candidates_frame"]
 
 
 # ----------------------------------------------------------------------------- search space
@@ -542,14 +542,22 @@ class SearchResult:
 
     def dataframe(self) -> pd.DataFrame:
         """One row per ranked candidate: rank, topology, device, part values (SI), metrics."""
-        rows = []
-        for c in self.candidates:
-            row = {"rank": c["rank"], "topology": c["topology"], "device": c["transistor"]["id"],
-                   "feasible": c["feasible"], "score": c["score"], "binding": c.get("binding", "")}
-            row.update({role: p["value"] for role, p in c["parts"].items()})
-            row.update(c["metrics"])
-            rows.append(row)
-        return pd.DataFrame(rows)
+        return candidates_frame(self.candidates)
+
+
+def candidates_frame(candidates: list[dict], *, labels: bool = False) -> pd.DataFrame:
+    """Ranked candidate records as a flat table, one row each: rank, feasible, score,
+    binding, topology, device, then each part (SI value, or its label such as "68k" with
+    ``labels``) and each metric (SI). The CLI's and the REST service's CSV."""
+    rows = []
+    for c in candidates:
+        row = {"rank": c.get("rank"), "feasible": c.get("feasible"), "score": c.get("score"),
+               "binding": c.get("binding", ""), "topology": c.get("topology"),
+               "device": (c.get("transistor") or {}).get("id")}
+        row.update({role: p["label" if labels else "value"] for role, p in c.get("parts", {}).items()})
+        row.update(c.get("metrics", {}))
+        rows.append(row)
+    return pd.DataFrame(rows)
 
 
 def search_status(storage: BaseStorage, search_id: str) -> dict:
