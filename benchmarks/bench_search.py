@@ -67,7 +67,8 @@ import optimizer.search  # noqa: E402
 search_module = sys.modules["optimizer.search"]  # the module (optimizer.search is also the API function)
 from optimizer.exhaustive import exhaustive  # noqa: E402
 from optimizer.scoring import pareto_mask  # noqa: E402
-from optimizer.search import Design, SearchSpace, create_search, evaluate_designs, open_storage, run_search  # noqa: E402
+from optimizer.search import (Design, SearchSpace, create_search, evaluate_designs, open_storage,  # noqa: E402
+                              run_search, with_search)
 from optimizer.spec import Spec, load_spec, parse_spec, spec_to_dict  # noqa: E402
 from optimizer.synthesis import hand_design, hand_requirements, rounded_designs  # noqa: E402
 from optimizer.topologies import get_topology  # noqa: E402
@@ -129,13 +130,6 @@ def reference_point(front: np.ndarray) -> np.ndarray:
 
 
 # ----------------------------------------------------------------------------- runs
-
-def with_search(spec: Spec, **overrides: object) -> Spec:
-    """``spec`` with its search section (trials, seed, batch_size) overridden."""
-    data = spec_to_dict(spec)
-    data["search"] = {**data["search"], **overrides}
-    return parse_spec(data)
-
 
 def completed_records(storage, search_id: str) -> list[dict]:
     study = optuna.load_study(study_name=search_id, storage=storage)

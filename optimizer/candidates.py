@@ -25,10 +25,6 @@ DEFAULT_POWER_RATING = 0.125  # W, when a value is not in the catalog (common 08
 DEFAULT_CAP_VOLTAGE = 16.0  # V, likewise for a capacitor
 HIGH_SUPPLY = 30.0  # V: above this, the usual caution about hazardous voltages
 NEAR_LIMIT = 0.1  # a metric with less than 10 % margin to a spec limit gets a caution
-# (spec limit, metric, +1 for a minimum, -1 for a maximum)
-LIMIT_METRICS = (("input_impedance_min", "input_impedance", 1), ("output_impedance_max", "output_impedance", -1),
-                 ("swing_min", "swing_vpp", 1), ("supply_current_max", "supply_current", -1),
-                 ("thd_max", "thd", -1), ("noise_ein_max", "noise_ein_v", -1))
 WORST_CASE_METRICS = ("gain", "swing_vpp", "input_impedance", "supply_current", "f_low")
 
 
@@ -127,7 +123,7 @@ def _cautions(spec: Spec, result, rating_limits: dict[str, float]) -> list[str]:
     for key, fraction in scoring.near_ratings(result.ratings, result.metrics, rating_limits).items():
         notes.append(f"{key} runs at {fraction[0]:.0%} of its rating; check the part before building")
     metrics = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
-    for limit_name, metric, sign in LIMIT_METRICS:
+    for limit_name, metric, sign in scoring.LIMIT_METRICS:
         limit = getattr(spec.limits, limit_name)
         if limit is None or not np.isfinite(metrics[metric]):
             continue

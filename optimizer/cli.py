@@ -163,14 +163,9 @@ def _run_or_reuse(args: argparse.Namespace, spec):
     """The finished search of ``spec`` in --storage: reused when the very same spec (and seed
     and budget) was searched before, resumed when it was interrupted, run otherwise."""
     from optimizer.search import (create_search, delete_search, extend_search, list_searches, load_search,
-                                  open_storage, run_search, spec_search_id)
-    from optimizer.spec import parse_spec, spec_to_dict
+                                  open_storage, run_search, spec_search_id, with_search)
 
-    overrides = {k: v for k, v in (("trials", args.trials), ("seed", args.seed)) if v is not None}
-    if overrides:
-        data = spec_to_dict(spec)
-        data["search"] = {**data["search"], **overrides}
-        spec = parse_spec(data)
+    spec = with_search(spec, trials=args.trials, seed=args.seed)
     storage = open_storage(args.storage)
     search_id = spec_search_id(spec)
     known = {s["id"]: s for s in list_searches(storage)}
@@ -262,9 +257,11 @@ def _cmd_search(args: argparse.Namespace) -> int:
 def _infeasible_summary(spec, best: dict) -> str:
     """Why an impossible spec has no answer: the binding limit and how near the best got."""
     limit = best.get("binding") or next(iter(best["violations"]), "")
-    metric_of = {"swing_min": ("swing_vpp", "V"), "supply_current_max": ("supply_current", "A"),
-                 "input_impedance_min": ("input_impedance", "ohm"), "output_impedance_max": ("output_impedance", "ohm"),
-                 "thd_max": ("thd", ""), "noise_ein_max": ("noise_ein_v", "V"), "gain": ("gain", "V/V")}
+    from optimizer.scoring import LIMIT_METRICS
+
+    units = {"swing_vpp": "V", "supply_current": "A", "input_impedance": "ohm", "output_impedance": "ohm",
+             "thd": "", "noise_ein_v": "V", "gain": "V/V"}
+    metric_of = {name: (metric, units[metric]) for name, metric, _ in LIMIT_METRICS} | {"gain": ("gain", "V/V")}
     from optimizer.units import format_value
 
     if limit in metric_of:

@@ -18,6 +18,7 @@ from matplotlib.figure import Figure
 from optimizer.candidates import design_from_record
 from optimizer.errors import InputError
 from optimizer.scoring import pareto_mask
+from optimizer.spec import DIRECTION_ALIASES
 from optimizer.units import format_value
 
 FORMATS = ("svg", "png")
@@ -48,8 +49,6 @@ METRIC_AXES: dict[str, tuple[str, float, str]] = {
     "cost": ("cost per unit", 1.0, "currency"),
     "yield": ("yield", 100.0, "%"),
 }
-_DIRECTIONS = {"minimise": "minimise", "minimize": "minimise", "min": "minimise",
-               "maximise": "maximise", "maximize": "maximise", "max": "maximise"}
 COLOURS = {"feasible": "#1f77b4", "infeasible": "#b0b0b0", "front": "#d62728", "chosen": "#ff9900",
            "band": "#2ca02c", "model": "#1f77b4", "ideal": "#7f7f7f", "limit": "#d62728", "spec": "#2ca02c"}
 
@@ -91,7 +90,7 @@ def _scaled(metric: str, values: np.ndarray) -> np.ndarray:
 def _check_objectives(objectives: object) -> list[tuple[str, str]]:
     expected = 'a list of (metric, direction) pairs, e.g. [("supply_current", "minimise")]'
     try:
-        pairs = [(str(m), _DIRECTIONS[str(d).lower()]) for m, d in objectives]  # type: ignore[union-attr]
+        pairs = [(str(m), DIRECTION_ALIASES[str(d).lower()]) for m, d in objectives]  # type: ignore[union-attr]
     except (TypeError, ValueError, KeyError):
         raise InputError.single("objectives", objectives, expected, title="invalid plot objectives") from None
     if not pairs:

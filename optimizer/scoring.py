@@ -7,14 +7,16 @@ rating is never a silent pass. Arrays over candidates throughout.
 """
 from __future__ import annotations
 
-from typing import Iterable
-
 import numpy as np
 
 from optimizer.spec import Spec
 from optimizer.topologies.base import Conditions
 
-FULL_MODEL_LIMITS = ("noise_ein_max",)  # besides the band corners, need full=True metrics
+FULL_MODEL_LIMITS = ("noise_ein_max",)
+#: each optional spec limit: (limit name, metric it bounds, +1 for a minimum, -1 for a maximum)
+LIMIT_METRICS = (("input_impedance_min", "input_impedance", 1), ("output_impedance_max", "output_impedance", -1),
+                 ("swing_min", "swing_vpp", 1), ("supply_current_max", "supply_current", -1),
+                 ("thd_max", "thd", -1), ("noise_ein_max", "noise_ein_v", -1))  # besides the band corners, need full=True metrics
 SATURATION_FLOOR = 0.1  # least violation of a saturated stage (graded up by its Vce shortfall)
 NEAR_RATING = 0.5  # a part past half its rating gets a caution (common practice derating)
 
@@ -73,13 +75,8 @@ def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[s
         out["band_low"] = _below(metrics["f_low"], spec.band[0])
         out["band_high"] = _above(metrics["f_high"], spec.band[1])
     limits = spec.limits
-    pairs = [("input_impedance_min", "input_impedance", _above),
-             ("output_impedance_max", "output_impedance", _below),
-             ("swing_min", "swing_vpp", _above),
-             ("supply_current_max", "supply_current", _below),
-             ("thd_max", "thd", _below),
-             ("noise_ein_max", "noise_ein_v", _below)]
-    for limit_name, metric, judge in pairs:
+    for limit_name, metric, sign in LIMIT_METRICS:
+        judge = _above if sign > 0 else _below
         limit = getattr(limits, limit_name)
         if limit is not None and not (core_only and limit_name in FULL_MODEL_LIMITS):
             out[limit_name] = judge(np.asarray(metrics[metric]), limit)
@@ -157,10 +154,7 @@ def limit_margins(spec: Spec, metrics: dict[str, np.ndarray]) -> np.ndarray:
     """Smallest relative margin to any limit the spec sets (inf where it sets none)."""
     n = np.asarray(metrics["gain"]).shape
     margin = np.full(n, np.inf)
-    for limit_name, metric, sign in (("input_impedance_min", "input_impedance", 1),
-                                     ("output_impedance_max", "output_impedance", -1),
-                                     ("swing_min", "swing_vpp", 1), ("supply_current_max", "supply_current", -1),
-                                     ("thd_max", "thd", -1), ("noise_ein_max", "noise_ein_v", -1)):
+    for limit_name, metric, sign in LIMIT_METRICS:
         limit = getattr(spec.limits, limit_name)
         if limit is not None:
             value = np.asarray(metrics[metric], dtype=float)

@@ -22,7 +22,7 @@ import uuid
 import warnings
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
-from typing import Callable, Iterable
+from typing import Callable
 
 import numpy as np
 import optuna
@@ -42,7 +42,6 @@ from optimizer.spec import Spec, check_against_catalog, parse_spec, spec_to_dict
 from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, sync
 from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
-from optimizer.topologies.base import METRICS
 from optimizer.units import format_value
 
 optuna.logging.set_verbosity(optuna.logging.WARNING)
@@ -191,7 +190,6 @@ class SearchSpace:
         series (its series neighbours), as search seeds."""
         out: list[Design] = []
         for topology in self.topologies:
-            model = get_topology(topology)
             for device_id, device in self.devices.items():
                 try:
                     hand = hand_design(topology, hand_requirements(self.spec, device))
@@ -563,19 +561,21 @@ def candidates_frame(candidates: list[dict], *, labels: bool = False) -> pd.Data
 def search_status(storage: BaseStorage, search_id: str) -> dict:
     """Status, progress and best so far of a search (JSON-ready)."""
     study, spec = _load(storage, search_id)
+    ranking = study.user_attrs.get("ranking")
+    if ranking:
+        best = ranking["candidates"][0] if ranking["candidates"] else None
+    else:
+        ranked = rank_records(_records(study))
+        best = {**candidate_from_record(SearchSpace.build(spec), ranked[0]), "rank": 1} if ranked else None
+    return _status(study, spec, best)
+
+
+def _status(study: optuna.Study, spec: Spec, best: dict | None) -> dict:
     attrs = study.user_attrs
     finished, running = _counts(study)
     started = attrs.get("started")
     elapsed = attrs.get("elapsed") if attrs.get("status") == "done" else (time.time() - started if started else 0.0)
-    best = None
-    if attrs.get("ranking"):
-        best = attrs["ranking"]["candidates"][0] if attrs["ranking"]["candidates"] else None
-    else:
-        ranked = rank_records(_records(study))
-        if ranked:
-            best = candidate_from_record(SearchSpace.build(spec), ranked[0])
-            best["rank"] = 1
-    return {"id": search_id, "name": spec.name, "status": attrs.get("status", "queued"),
+    return {"id": study.study_name, "name": spec.name, "status": attrs.get("status", "queued"),
             "trials_done": finished, "trials_running": running, "budget": int(attrs["budget"]),
             "elapsed": float(elapsed or 0.0), "created": attrs.get("created"), "best": best}
 
@@ -595,8 +595,8 @@ def load_search(storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SI
         summary["candidates"] += tail
     else:
         summary = _summarise(space, study, top, samples)
-    return SearchResult(search_id, spec, study, summary["candidates"], summary["front"],
-                        search_status(storage, search_id))
+    best = summary["candidates"][0] if summary["candidates"] else None
+    return SearchResult(search_id, spec, study, summary["candidates"], summary["front"], _status(study, spec, best))
 
 
 def list_searches(storage: BaseStorage) -> list[dict]:
@@ -647,16 +647,22 @@ def spec_search_id(spec: Spec) -> str:
     return f"{slug}-{digest}"
 
 
+def with_search(spec: Spec, **overrides: object) -> Spec:
+    """``spec`` with fields of its search section replaced (None leaves a field as it is)."""
+    changed = {k: v for k, v in overrides.items() if v is not None}
+    if not changed:
+        return spec
+    data = spec_to_dict(spec)
+    data["search"] = {**data["search"], **changed}
+    return parse_spec(data)
+
+
 def search(spec: Spec, *, storage: BaseStorage | str | None = None, trials: int | None = None,
            seed: int | None = None, progress: Callable[[int, int], None] | None = None,
            top: int = SHORTLIST_SIZE, catalog: Catalog | None = None) -> SearchResult:
     """Run a whole search in this process and return its ranked result (the Python API).
     ``storage`` defaults to memory; ``trials`` and ``seed`` override the spec's."""
-    overrides = {k: v for k, v in (("trials", trials), ("seed", seed)) if v is not None}
-    if overrides:
-        data = spec_to_dict(spec)
-        data["search"] = {**data["search"], **overrides}
-        spec = parse_spec(data)
+    spec = with_search(spec, trials=trials, seed=seed)
     store = storage if isinstance(storage, BaseStorage) else open_storage(storage)
     search_id = create_search(spec, store, catalog=catalog)
     run_search(store, search_id, progress=progress, catalog=catalog)

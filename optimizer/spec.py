@@ -30,7 +30,7 @@ METRIC_DIRECTIONS = {
     "noise_ein_v": "minimise", "thd": "minimise", "cost": "minimise",
     "part_count": "minimise", "input_impedance": "maximise", "output_impedance": "minimise",
 }
-_DIRECTION_ALIASES = {"minimise": "minimise", "minimize": "minimise", "min": "minimise",
+DIRECTION_ALIASES = {"minimise": "minimise", "minimize": "minimise", "min": "minimise",
                       "maximise": "maximise", "maximize": "maximise", "max": "maximise"}
 NOMINAL_TEMPERATURE_C = 27.0
 _TITLE = "invalid spec"
@@ -294,12 +294,12 @@ class Objective(_Section):
 
     metric: Annotated[str, BeforeValidator(_choice(tuple(METRIC_DIRECTIONS), "metric"))]
     direction: Annotated[str | None, BeforeValidator(
-        lambda v: v if v is None else _choice(tuple(_DIRECTION_ALIASES), "direction")(v))] = None
+        lambda v: v if v is None else _choice(tuple(DIRECTION_ALIASES), "direction")(v))] = None
 
     @model_validator(mode="after")
     def _direction(self) -> "Objective":
         implied = METRIC_DIRECTIONS[self.metric]
-        object.__setattr__(self, "direction", _DIRECTION_ALIASES[self.direction or implied])
+        object.__setattr__(self, "direction", DIRECTION_ALIASES[self.direction or implied])
         return self
 
 
