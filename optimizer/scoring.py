@@ -27,7 +27,8 @@ def conditions_from_spec(spec: Spec, temperature: float = 27.0) -> Conditions:
     return Conditions(supply=spec.supply, source_impedance=spec.source_impedance,
                       load_impedance=spec.load_impedance, band=tuple(spec.band),
                       temperature=temperature, load_capacitance=spec.load_capacitance,
-                      signal_vpp=level)
+                      signal_vpp=level, supply_max=spec.supply_max,
+                      ripple_frequency=spec.supply_ripple.frequency if spec.supply_ripple else 100.0)
 
 
 def gain_error_db(spec: Spec, gain: np.ndarray) -> np.ndarray:

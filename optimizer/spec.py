@@ -33,6 +33,8 @@ METRIC_DIRECTIONS = {
 DIRECTION_ALIASES = {"minimise": "minimise", "minimize": "minimise", "min": "minimise",
                       "maximise": "maximise", "maximize": "maximise", "max": "maximise"}
 NOMINAL_TEMPERATURE_C = 27.0
+DEFAULT_SUPPLY_TOLERANCE = 0.05  # a bare supply voltage is taken as +-5 % (common practice for a regulated rail)
+ROBUSTNESS_BASES = ("yield", "worst_case", "nominal")
 _TITLE = "invalid spec"
 _JSON_SCHEMA_DRAFT = "https://json-schema.org/draft/2020-12/schema"
 
@@ -253,6 +255,12 @@ class Limits(_Section):
                           "default half of swing_min, else 1 V")
     noise_ein_max: _quantity("V", optional=True, example="2 uV") = Field(
         None, description="equivalent input noise, V rms over the band")
+    psrr_min_db: _quantity("dB", optional=True, example="40 dB") = Field(
+        None, description="least supply rejection (dB, supply ripple to load) at the ripple frequency "
+                          "and at mid-band")
+    yield_min: _quantity(None, percent=True, maximum=1.0, example="95 %") = Field(
+        0.95, description="fraction of Monte Carlo builds that must meet every hard limit "
+                          "(robustness: yield)")
 
     @model_validator(mode="after")
     def _thd_level(self) -> "Limits":
@@ -264,6 +272,13 @@ class Limits(_Section):
                                     f"at most swing_min ({format_value(self.swing_min, 'V')}"
                                     " peak-to-peak)", _TITLE)
         return self
+
+
+class Ripple(_Section):
+    """Ripple on the supply rail: peak-to-peak volts at one frequency (Hz)."""
+
+    vpp: _quantity("V", example="50 mV") = Field(description="V peak-to-peak on the rail")
+    frequency: _quantity("Hz", example="100 Hz") = Field(100.0, description="Hz")
 
 
 class Parts(_Section):
@@ -322,6 +337,15 @@ class Search(_Section):
                              "after the resistors; searched: capacitor values are search parameters too")
 
 
+def _scaled(value: object, factor: float) -> object:
+    """``value`` (a voltage as written) times ``factor``, or the value itself when it does not
+    parse (its own validation then reports it)."""
+    try:
+        return parse_quantity(value, "V", where="") * factor  # type: ignore[arg-type]
+    except (InputError, ValueError, TypeError):
+        return value
+
+
 def _unique(values: tuple, label: str) -> tuple:
     if not values:
         raise ValueError(f"at least one {label}")
@@ -335,9 +359,61 @@ def _unique(values: tuple, label: str) -> tuple:
 class Spec(_Section):
     """A validated requirements spec; SI floats throughout, temperatures in °C."""
 
+    @classmethod
+    def input_keys(cls) -> tuple[str, ...]:
+        return tuple(k for k in cls.model_fields if k not in ("supply_min", "supply_max", "supply_range_assumed"))
+
+    @model_validator(mode="before")
+    @classmethod
+    def _supply_range(cls, data: object) -> object:
+        """``supply`` as a number (nominal, +-5 % assumed) or {nominal, min, max}."""
+        if not isinstance(data, dict):
+            return data
+        data = dict(data)
+        for key in ("supply_min", "supply_max", "supply_range_assumed"):
+            if key in data:
+                raise InputError.single(key, data[key], "supply: {nominal, min, max} instead", _TITLE)
+        raw = data.get("supply")
+        if isinstance(raw, dict):
+            unknown = [k for k in raw if k not in ("nominal", "min", "max")]
+            if unknown or "nominal" not in raw:
+                raise InputError.single("supply", raw, "a voltage ('12 V') or {nominal, min, max} with "
+                                        "nominal given (min and max default to -+5 %)", _TITLE)
+            data["supply"] = raw["nominal"]
+            nominal = raw["nominal"]
+            data["supply_min"] = raw.get("min", _scaled(nominal, 1.0 - DEFAULT_SUPPLY_TOLERANCE))
+            data["supply_max"] = raw.get("max", _scaled(nominal, 1.0 + DEFAULT_SUPPLY_TOLERANCE))
+            data["supply_range_assumed"] = "min" not in raw and "max" not in raw
+        elif raw is not None:
+            data["supply_min"] = _scaled(raw, 1.0 - DEFAULT_SUPPLY_TOLERANCE)
+            data["supply_max"] = _scaled(raw, 1.0 + DEFAULT_SUPPLY_TOLERANCE)
+            data["supply_range_assumed"] = True
+        return data
+
+    @model_validator(mode="after")
+    def _supply_order(self) -> "Spec":
+        if not self.supply_min <= self.supply <= self.supply_max:
+            raise InputError.single("supply", {"nominal": self.supply, "min": self.supply_min,
+                                               "max": self.supply_max},
+                                    "min <= nominal <= max", _TITLE)
+        return self
+
     name: str = Field(min_length=1)
     description: str | None = None
-    supply: _quantity("V", maximum=100.0, example="12 V") = Field(description="V, above 0, <= 100")
+    supply: _quantity("V", maximum=100.0, example="12 V") = Field(
+        description="nominal supply, V, above 0, <= 100; written as a number (then +-5 % is assumed) "
+                    "or as {nominal, min, max}")
+    supply_min: _quantity("V", maximum=100.0, example="11.4 V") = Field(
+        description="lowest supply, V (input: supply.min)")
+    supply_max: _quantity("V", maximum=100.0, example="12.6 V") = Field(
+        description="highest supply, V (input: supply.max)")
+    supply_range_assumed: bool = Field(
+        False, description="true when the supply was a bare number and +-5 % was assumed")
+    supply_ripple: Ripple | None = None
+    robustness: Literal["yield", "worst_case", "nominal"] = Field(
+        "yield", description="basis on which a design meets the spec: yield (every hard limit in at "
+                             "least limits.yield_min of Monte Carlo builds), worst_case (at every "
+                             "corner) or nominal (at nominal values only)")
     gain: Gain
     source_impedance: _quantity("ohm", allow_zero=True, example="600") = 0.0
     load_impedance: Ohm
@@ -559,6 +635,10 @@ def check_against_catalog(spec: Spec, catalog: Any) -> None:
 def spec_to_dict(spec: Spec) -> dict:
     """Canonical JSON-ready mapping in SI units (°C for temperature); parse_spec reads it back."""
     data = spec.model_dump(mode="json")
+    for key in ("supply_min", "supply_max", "supply_range_assumed"):
+        data.pop(key)
+    if not spec.supply_range_assumed:
+        data["supply"] = {"nominal": spec.supply, "min": spec.supply_min, "max": spec.supply_max}
     data["gain"] = {"target": spec.gain.target, "inverting": spec.gain.inverting,
                     "tolerance_db": spec.gain.tolerance_db}
     return data
@@ -567,6 +647,15 @@ def spec_to_dict(spec: Spec) -> dict:
 def spec_json_schema() -> dict:
     """JSON Schema (draft 2020-12) of the spec as users write it."""
     schema = Spec.model_json_schema(mode="validation")
+    internal = ("supply_min", "supply_max", "supply_range_assumed")
+    for key in internal:
+        schema["properties"].pop(key, None)
+    schema["required"] = [k for k in schema.get("required", []) if k not in internal]
+    voltage = {"anyOf": [{"type": "number"}, {"type": "string"}]}
+    schema["properties"]["supply"] = {
+        "description": schema["properties"]["supply"]["description"],
+        "anyOf": [*voltage["anyOf"], {"type": "object", "additionalProperties": False, "required": ["nominal"],
+                                      "properties": {"nominal": voltage, "min": voltage, "max": voltage}}]}
     return {"$schema": _JSON_SCHEMA_DRAFT, **schema}
 
 
@@ -576,7 +665,10 @@ def describe_spec(spec: Spec) -> str:
     g = spec.gain
     sign = {True: "inverting", False: "non-inverting", None: "either sign"}[g.inverting]
     lines = [f"spec {spec.name}" + (f": {spec.description.strip()}" if spec.description else ""),
-             f"  supply            {fv(spec.supply, 'V')}",
+             f"  supply            {fv(spec.supply, 'V')} ({fv(spec.supply_min, 'V')} .. "
+             f"{fv(spec.supply_max, 'V')}" + (", +-5 % assumed" if spec.supply_range_assumed else "") + ")"
+             + (f", ripple {fv(spec.supply_ripple.vpp, 'V')} p-p at {fv(spec.supply_ripple.frequency, 'Hz')}"
+                if spec.supply_ripple else ""),
              f"  gain              {g.target:.4g} V/V ({spec.gain_target_db:.2f} dB), {sign},"
              f" +-{g.tolerance_db:.2f} dB",
              f"  source impedance  {fv(spec.source_impedance, 'ohm')}",
@@ -588,12 +680,13 @@ def describe_spec(spec: Spec) -> str:
     limit_units = {"input_impedance_min": ("ohm", ""), "output_impedance_max": ("ohm", ""),
                    "swing_min": ("V", " peak-to-peak"), "supply_current_max": ("A", ""),
                    "thd_max": ("%", ""), "thd_level": ("V", " peak-to-peak"),
-                   "noise_ein_max": ("V", " rms")}
+                   "noise_ein_max": ("V", " rms"), "psrr_min_db": ("dB", ""), "yield_min": ("%", "")}
     set_limits = [(k, v) for k, v in spec.limits.model_dump().items() if v is not None]
     lines.append("  limits" + ("" if set_limits else "            none"))
     for key, value in set_limits:
         unit, suffix = limit_units[key]
-        shown = f"{100 * value:.3g} %" if unit == "%" else fv(value, unit) + suffix
+        shown = (f"{100 * value:.3g} %" if unit == "%" else f"{value:.3g} dB" if unit == "dB"
+                 else fv(value, unit) + suffix)
         lines.append(f"    {key:<22}{shown}")
     p = spec.parts
     lines += [f"  parts             catalog {p.catalog}, resistors {p.resistor_series} "
@@ -604,6 +697,10 @@ def describe_spec(spec: Spec) -> str:
               + (", prefer reuse" if p.prefer_reuse else ""),
               f"  devices           {', '.join(spec.devices)}",
               f"  topologies        {', '.join(spec.topologies)}",
+              "  robustness        " + {"yield": f"yield: every hard limit in at least "
+                                                  f"{100 * spec.limits.yield_min:.3g} % of Monte Carlo builds",
+                                         "worst_case": "worst case: every hard limit at every corner",
+                                         "nominal": "nominal: limits judged at nominal values only"}[spec.robustness],
               "  objectives        " + ", ".join(f"{d} {m}" for m, d in spec.objective_directions),
               f"  search            {spec.search.trials} trials, seed {spec.search.seed}, "
               f"batch {spec.search.batch_size}"]

@@ -141,3 +141,34 @@ def test_json_schema_accepts_examples():
     for path in EXAMPLES:
         validator.validate(yaml.safe_load(path.read_text()))
     assert not validator.is_valid({**BASE, "unknown": 1})
+
+
+def test_supply_range_bare_number_assumes_five_percent():
+    # +-5 % for an unstated regulated rail: common practice
+    spec = parse_spec({**BASE, "supply": "12 V"})
+    assert (spec.supply_min, spec.supply, spec.supply_max) == pytest.approx((11.4, 12.0, 12.6))
+    assert spec.supply_range_assumed
+    assert parse_spec(spec_to_dict(spec)) == spec
+
+
+def test_supply_range_written_out_round_trips():
+    spec = parse_spec({**BASE, "supply": {"nominal": "9 V", "min": "6.5 V", "max": "9.6 V"},
+                       "supply_ripple": {"vpp": "20 mV", "frequency": "120 Hz"}})
+    assert (spec.supply_min, spec.supply, spec.supply_max) == (6.5, 9.0, 9.6)
+    assert not spec.supply_range_assumed
+    assert spec.supply_ripple.frequency == 120.0
+    assert parse_spec(spec_to_dict(spec)) == spec
+
+
+def test_supply_range_out_of_order_names_the_field():
+    with pytest.raises(InputError) as err:
+        parse_spec({**BASE, "supply": {"nominal": 12, "min": 13}})
+    assert err.value.problems[0].where == "supply"
+
+
+def test_robustness_defaults_to_yield_at_95_percent():
+    spec = parse_spec(BASE)
+    assert spec.robustness == "yield" and spec.limits.yield_min == 0.95
+    with pytest.raises(InputError) as err:
+        parse_spec({**BASE, "robustness": "typical"})
+    assert err.value.problems[0].where == "robustness"

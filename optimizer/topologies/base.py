@@ -35,6 +35,13 @@ class Conditions:
     temperature: float = 27.0
     load_capacitance: float = 0.0
     signal_vpp: float = 1.0  # output level at which thd is given
+    supply_max: float | None = None  # V, highest rail (capacitor ratings at power-up); None: supply
+    ripple_frequency: float = 100.0  # Hz, where psrr_db is judged besides mid-band
+
+    @property
+    def rail_max(self) -> float:
+        """Highest supply voltage the parts can see (V)."""
+        return self.supply if self.supply_max is None else max(self.supply, self.supply_max)
 
 
 @dataclass
