@@ -16,7 +16,8 @@ from optimizer.devices import Device
 from optimizer.errors import InputError, Problem
 from optimizer.sizing import size_capacitors
 from optimizer.spec import NOMINAL_TEMPERATURE_C, Spec
-from optimizer.tolerance import monte_carlo_yield, worst_case
+from optimizer.robustness import FINAL_BUILDS, basis_label, judge
+from optimizer.tolerance import worst_case
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions, Topology
 from optimizer.units import format_value
@@ -25,7 +26,8 @@ DEFAULT_POWER_RATING = 0.125  # W, when a value is not in the catalog (common 08
 DEFAULT_CAP_VOLTAGE = 16.0  # V, likewise for a capacitor
 HIGH_SUPPLY = 30.0  # V: above this, the usual caution about hazardous voltages
 NEAR_LIMIT = 0.1  # a metric with less than 10 % margin to a spec limit gets a caution
-WORST_CASE_METRICS = ("gain", "swing_vpp", "input_impedance", "supply_current", "f_low")
+WORST_CASE_METRICS = ("gain", "swing_vpp", "clip_vpp", "input_impedance", "output_impedance", "supply_current",
+                      "f_low", "f_high", "thd", "noise_ein_v", "psrr_db", "ic")
 
 
 def _check_parts(topology: Topology, parts: dict[str, float]) -> None:
@@ -57,9 +59,10 @@ def _part_record(catalog: Catalog, spec: Spec, role: str, value: float) -> dict:
 
 
 def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, float],
-           device_id: str | None = None, *, samples: int = 1000, seed: int | None = None) -> dict:
-    """The candidate record (DESIGN.md's candidate JSON plus operating point, ratings,
-    cautions) of one design under ``spec``. Capacitors not in ``parts`` are sized."""
+           device_id: str | None = None, *, samples: int = FINAL_BUILDS, seed: int | None = None) -> dict:
+    """The candidate record (DESIGN.md's candidate JSON plus operating point and its spread,
+    ratings, worst case, yield, the basis it meets the spec on, cautions) of one design under
+    ``spec``. Capacitors not in ``parts`` are sized."""
     topology = get_topology(topology_name)
     _check_parts(topology, parts)
     device_id = device_id or spec.devices[0]
@@ -70,35 +73,37 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
     if missing_caps:
         allowed = catalog.capacitor_values(spec.parts.capacitor_series, *spec.parts.capacitor_range,
                                            in_stock_only=spec.parts.in_stock_only)
+        tolerances = catalog.parts_for("capacitor", allowed)["tolerance"].to_numpy(dtype=float)
         sized = size_capacitors(topology, {r: arrays[r] for r in topology.resistors}, device,
-                                conditions, allowed)
+                                conditions, allowed, f_low_target=scoring.sizing_target(spec, tolerances))
         arrays.update({c: sized[c] for c in missing_caps})
 
     records = {role: _part_record(catalog, spec, role, float(v[0])) for role, v in arrays.items()}
-    rating_limits = {f"p_{r}": records[r]["rating"] for r in topology.resistors if records[r]["value"] > 0}
-    rating_limits.update({f"v_{c}": records[c]["rating"] for c in topology.capacitors})
-    rating_limits.update({"vce_max": device.vceo_max, "q_power": device.p_max})
+    limits = scoring.rating_limits(spec, {r: records[r]["rating"] for r in topology.resistors if records[r]["value"] > 0},
+                                   {c: records[c]["rating"] for c in topology.capacitors}, device)
 
     result = topology.evaluate(arrays, device, conditions, full=True, thd_solve=True)
     metrics = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
     metrics["gain_error_db"] = float(scoring.gain_error_db(spec, np.array([metrics["gain"]]))[0])
-    violations = scoring.limit_violations(spec, result.metrics, result.ratings, rating_limits,
-                                          result.operating_point["active"])
+    nominal = scoring.limit_violations(spec, result.metrics, result.ratings, limits,
+                                       result.operating_point["active"])
     tolerances = {role: rec["tolerance"] for role, rec in records.items()}
-
-    def passes(sample: dict[str, np.ndarray]) -> np.ndarray:
-        v = scoring.limit_violations(spec, sample, sample, rating_limits, sample["active"], core_only=True)
-        return scoring.total_violation(v) == 0
-
-    spread = worst_case(topology, arrays, device, conditions, tolerances, tuple(spec.temperature))
-    build_yield = monte_carlo_yield(topology, arrays, device, conditions, tolerances,
-                                    tuple(spec.temperature), passes, samples=samples,
-                                    seed=spec.search.seed if seed is None else seed)
-    cautions = _cautions(spec, result, rating_limits)
-    return {
+    judged = judge(spec, topology, arrays, device, conditions, tolerances, limits, nominal,
+                   full=True, builds=samples, seed=seed)
+    spread = worst_case(topology, arrays, device, conditions, tolerances, tuple(spec.temperature),
+                        (spec.supply_min, spec.supply_max))
+    violations = judged.violations
+    feasible = bool(scoring.total_violation(violations)[0] == 0)
+    build_yield = float(judged.yield_fraction[0])
+    metrics.update({"yield": build_yield if np.isfinite(build_yield) else None,
+                    "ic_spread": float(judged.spread["ic_spread"][0])})
+    op = {k: float(np.asarray(v)[0]) for k, v in result.operating_point.items()}
+    record = {
         "topology": topology.name,
-        "feasible": bool(scoring.total_violation(violations)[0] == 0),
-        "conditions": {"supply": spec.supply, "source_impedance": spec.source_impedance,
+        "feasible": feasible,
+        "basis": basis_label(spec, feasible, build_yield, judged.builds),
+        "conditions": {"supply": spec.supply, "supply_range": [spec.supply_min, spec.supply_max],
+                       "source_impedance": spec.source_impedance,
                        "load_impedance": spec.load_impedance, "band": list(spec.band),
                        "temperature": list(spec.temperature), "load_capacitance": conditions.load_capacitance,
                        "signal_vpp": conditions.signal_vpp},
@@ -106,16 +111,23 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
         "transistor": {"id": device.id, "polarity": device.polarity, "hfe_min": device.hfe_min,
                        "hfe_max": device.hfe_max, "hfe_typ": device.hfe_typ, "vce_sat": device.vce_sat,
                        "vceo_max": device.vceo_max, "p_max": device.p_max, "model": device.spice_model()},
-        "metrics": {**metrics, "yield": float(build_yield[0])},
-        "operating_point": {k: float(np.asarray(v)[0]) for k, v in result.operating_point.items()},
+        "metrics": metrics,
+        "operating_point": op,
+        "operating_point_spread": {
+            "ic": [float(judged.spread["ic_low"][0]), op["ic"], float(judged.spread["ic_high"][0])],
+            "v_out_q": [float(judged.spread["v_out_low"][0]), op.get("v_out_q", op["v_collector"]),
+                        float(judged.spread["v_out_high"][0])]},
         "ratings": {k: {"value": float(np.asarray(result.metrics["q_power"] if k == "q_power"
                                                   else result.ratings[k])[0]), "limit": float(limit)}
-                    for k, limit in rating_limits.items()},
+                    for k, limit in limits.items()},
         "worst_case": {k: [float(spread[k][0][0]), float(spread[k][1][0])] for k in WORST_CASE_METRICS
                        if k in spread},
         "violations": {k: float(v[0]) for k, v in violations.items() if v[0] > 0},
-        "cautions": cautions,
+        "cautions": _cautions(spec, result, limits),
     }
+    if not op["active"]:
+        scoring.withhold_small_signal(record)
+    return record
 
 
 def _cautions(spec: Spec, result, rating_limits: dict[str, float]) -> list[str]:

@@ -208,7 +208,12 @@ def _candidate_rows(candidates: list[dict], first: str = "rank", currency: str =
     rows = [[first, "topology", "parts"] + labels + ["verdict"]]
     for c in candidates:
         parts = " ".join(f"{role}={p['label']}" for role, p in c["parts"].items())
-        verdict = "meets every limit" if c["feasible"] else f"misses {c.get('binding') or ', '.join(c['violations'])}"
+        basis = c.get("basis") or {}
+        verdict = basis.get("label") or ("meets every limit" if c["feasible"] else "misses the spec")
+        if not c["feasible"]:
+            verdict += f"; misses {c.get('binding') or ', '.join(c['violations'])}"
+        if c.get("variants", 1) > 1:
+            verdict += f" (+{c['variants'] - 1} near-identical variants)"
         rows.append([str(c["rank"]), c["topology"], parts]
                     + [_short(m, c["metrics"].get(m), unit) for m, _, unit in TABLE_METRICS] + [verdict])
     return rows
@@ -235,10 +240,18 @@ def _cmd_search(args: argparse.Namespace) -> int:
         status = result.status
         print(f"{spec.name}: {status['trials_done']} designs evaluated (search {result.id})")
         best = shown[0] if shown else None
-        if best and not best["feasible"]:
-            print(_infeasible_summary(spec, best))
+        print(f"basis: {_BASIS_TEXT[spec.robustness](spec)}")
+        if result.infeasible:
+            print(result.infeasible["text"])
         currency = load_catalog(spec.parts.catalog).currency
         print(_table(_candidate_rows(shown, currency=currency), markdown))
+        if args.explain:
+            print("\nwhy each ranks where it does: score = weighted geometric mean of these terms "
+                  "(each 1 at its ideal), times the yield of its builds")
+            for c in shown:
+                terms = c.get("score_terms") or {}
+                shown_terms = ", ".join(f"{k} {v:.3f}" for k, v in sorted(terms.items(), key=lambda kv: kv[1]))
+                print(f"  {c['rank']:>3}  score {c['score']:.4g}: {shown_terms or 'no score terms (misses a limit)'}")
         if args.front:
             picked = sorted(set(np.linspace(0, len(front) - 1, min(len(front), max(args.top, 2))).round().astype(int))) \
                 if front else []
@@ -254,27 +267,15 @@ def _cmd_search(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _infeasible_summary(spec, best: dict) -> str:
-    """Why an impossible spec has no answer: the binding limit and how near the best got."""
-    limit = best.get("binding") or next(iter(best["violations"]), "")
-    from optimizer.scoring import LIMIT_METRICS
-
-    units = {"swing_vpp": "V", "supply_current": "A", "input_impedance": "ohm", "output_impedance": "ohm",
-             "thd": "", "noise_ein_v": "V", "gain": "V/V"}
-    metric_of = {name: (metric, units[metric]) for name, metric, _ in LIMIT_METRICS} | {"gain": ("gain", "V/V")}
-    from optimizer.units import format_value
-
-    if limit in metric_of:
-        metric, unit = metric_of[limit]
-        reached = best["metrics"].get(metric)
-        wanted = spec.gain.target if limit == "gain" else getattr(spec.limits, limit)
-        if reached is not None and unit in ("V/V", ""):
-            return (f"no design meets every limit; {limit} binds: best reaches {abs(reached):.3g}, "
-                    f"the spec asks {wanted:.3g}")
-        if reached is not None:
-            return (f"no design meets every limit; {limit} binds: best reaches {format_value(reached, unit)}, "
-                    f"the spec asks {format_value(wanted, unit)}")
-    return f"no design meets every limit; {limit or 'a limit'} binds (see the violations below)"
+_BASIS_TEXT = {
+    "yield": lambda spec: (f"a design meets the spec when every hard limit holds in at least "
+                           f"{100 * spec.limits.yield_min:.3g} % of Monte Carlo builds (part tolerances, hFE "
+                           f"spread, {spec.temperature[0]:g}..{spec.temperature[1]:g} °C, supply "
+                           f"{spec.supply_min:g}..{spec.supply_max:g} V); robustness: yield"),
+    "worst_case": lambda spec: "a design meets the spec when every hard limit holds at every corner; "
+                               "robustness: worst_case",
+    "nominal": lambda spec: "limits judged at nominal values only (robustness: nominal): spread is not checked",
+}
 
 
 def _write_plot(target: str, result, rank: int) -> None:
@@ -413,6 +414,8 @@ def build_parser() -> argparse.ArgumentParser:
     search.add_argument("--top", type=int, default=10, help="how many ranked designs to show (default 10)")
     search.add_argument("--format", choices=("table", "json", "csv", "markdown"), default="table")
     search.add_argument("--front", action="store_true", help="also print the Pareto front")
+    search.add_argument("--explain", action="store_true",
+                        help="print each shown design's score broken down term by term")
     search.add_argument("--plot", action="append", default=[], metavar="FILE",
                         help="write front.svg, response.svg or transfer.svg (or .png) of --rank; repeat")
     search.add_argument("--rank", type=int, default=1, help="the design --plot draws (default 1)")

@@ -9,14 +9,21 @@ from __future__ import annotations
 
 import numpy as np
 
+from optimizer.devices import Device
 from optimizer.spec import Spec
 from optimizer.topologies.base import Conditions
 
-FULL_MODEL_LIMITS = ("noise_ein_max",)
+FULL_MODEL_LIMITS = ("noise_ein_max", "psrr_min_db")
 #: each optional spec limit: (limit name, metric it bounds, +1 for a minimum, -1 for a maximum)
 LIMIT_METRICS = (("input_impedance_min", "input_impedance", 1), ("output_impedance_max", "output_impedance", -1),
                  ("swing_min", "swing_vpp", 1), ("supply_current_max", "supply_current", -1),
-                 ("thd_max", "thd", -1), ("noise_ein_max", "noise_ein_v", -1))  # besides the band corners, need full=True metrics
+                 ("thd_max", "thd", -1), ("noise_ein_max", "noise_ein_v", -1), ("psrr_min_db", "psrr_db", 1))  # besides the band corners, need full=True metrics
+# Derating (common practice, no single source): thick-film chip resistors carry full power to
+# 70 °C ambient and nothing at 155 °C; capacitors are used to 80 % of their rated voltage;
+# a small-signal transistor's dissipation falls linearly from 25 °C to its 150 °C junction limit.
+RESISTOR_FULL_POWER_C, RESISTOR_ZERO_POWER_C = 70.0, 155.0
+CAPACITOR_VOLTAGE_DERATING = 0.8
+TRANSISTOR_DERATE_FROM_C, TRANSISTOR_TJ_MAX_C = 25.0, 150.0
 SATURATION_FLOOR = 0.1  # least violation of a saturated stage (graded up by its Vce shortfall)
 NEAR_RATING = 0.5  # a part past half its rating gets a caution (common practice derating)
 
@@ -29,6 +36,38 @@ def conditions_from_spec(spec: Spec, temperature: float = 27.0) -> Conditions:
                       temperature=temperature, load_capacitance=spec.load_capacitance,
                       signal_vpp=level, supply_max=spec.supply_max,
                       ripple_frequency=spec.supply_ripple.frequency if spec.supply_ripple else 100.0)
+
+
+def sizing_target(spec: Spec, capacitor_tolerances: np.ndarray) -> float:
+    """Low corner (Hz) the capacitors are sized for: the band's low edge less the largest
+    capacitor tolerance, so the corner stays in band with every capacitor at its low edge."""
+    return float(spec.band[0] * (1.0 - float(np.max(capacitor_tolerances, initial=0.0))))
+
+
+def resistor_derating(ambient_c: float) -> float:
+    """Fraction of a resistor's rated power usable at ``ambient_c`` (°C)."""
+    return float(np.clip((RESISTOR_ZERO_POWER_C - ambient_c) / (RESISTOR_ZERO_POWER_C - RESISTOR_FULL_POWER_C),
+                         0.0, 1.0))
+
+
+def transistor_derating(ambient_c: float) -> float:
+    """Fraction of a transistor's rated dissipation usable at ``ambient_c`` (°C)."""
+    return float(np.clip((TRANSISTOR_TJ_MAX_C - ambient_c) / (TRANSISTOR_TJ_MAX_C - TRANSISTOR_DERATE_FROM_C),
+                         0.0, 1.0))
+
+
+def rating_limits(spec: Spec, resistor_ratings: dict[str, float | np.ndarray],
+                  capacitor_ratings: dict[str, float | np.ndarray], device: Device) -> dict[str, float | np.ndarray]:
+    """The derated limit of every rating a topology reports: p_<resistor> (W, the part's rating
+    derated to the spec's highest ambient), v_<capacitor> (V, 80 % of the rated voltage),
+    vce_max (V, the device's Vceo) and q_power (W, the device's dissipation derated to the
+    highest ambient). Ratings of absent parts are left out by the caller."""
+    ambient = float(spec.temperature[1])
+    out: dict[str, float | np.ndarray] = {f"p_{r}": np.asarray(v, dtype=float) * resistor_derating(ambient)
+                                          for r, v in resistor_ratings.items()}
+    out.update({f"v_{c}": np.asarray(v, dtype=float) * CAPACITOR_VOLTAGE_DERATING for c, v in capacitor_ratings.items()})
+    out.update({"vce_max": device.vceo_max, "q_power": device.p_max * transistor_derating(ambient)})
+    return out
 
 
 def gain_error_db(spec: Spec, gain: np.ndarray) -> np.ndarray:
@@ -80,11 +119,28 @@ def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[s
         judge = _above if sign > 0 else _below
         limit = getattr(limits, limit_name)
         if limit is not None and not (core_only and limit_name in FULL_MODEL_LIMITS):
-            out[limit_name] = judge(np.asarray(metrics[metric]), limit)
+            value = metrics[metric] if metric in metrics else np.full(gain.shape, np.nan)
+            out[limit_name] = judge(np.asarray(value), limit)
     for key, limit in rating_limits.items():
         value = metrics["q_power"] if key == "q_power" else ratings[key]
         out[f"rating:{key}"] = _below(np.abs(np.asarray(value)), limit)
     return out
+
+
+#: metrics that describe small-signal behaviour about an operating point: meaningless when the
+#: transistor is saturated or cut off there, so such a design reports none of them
+SMALL_SIGNAL_METRICS = ("gain", "gain_db", "gain_error_db", "input_impedance", "output_impedance", "swing_vpp",
+                        "clip_vpp", "thd", "f_low", "f_high", "noise_ein_v", "noise_figure_db", "psrr_db",
+                        "psrr_ripple_db", "psrr_mid_db")
+NOT_ACTIVE_NOTE = "transistor saturated or cut off at the operating point: no small-signal figures"
+
+
+def withhold_small_signal(record: dict) -> None:
+    """Replace a not-active design's small-signal metrics by None and say why (``note``)."""
+    for key in SMALL_SIGNAL_METRICS:
+        if key in record["metrics"]:
+            record["metrics"][key] = None
+    record["note"] = NOT_ACTIVE_NOTE
 
 
 def total_violation(violations: dict[str, np.ndarray]) -> np.ndarray:
@@ -163,23 +219,32 @@ def limit_margins(spec: Spec, metrics: dict[str, np.ndarray]) -> np.ndarray:
     return margin
 
 
-def desirability(spec: Spec, metrics: dict[str, np.ndarray], violation: np.ndarray) -> np.ndarray:
-    """The documented score above: in (0, 1] where ``violation`` is 0, else -violation."""
+def desirability_terms(spec: Spec, metrics: dict[str, np.ndarray]) -> dict[str, tuple[np.ndarray, float]]:
+    """Each term of the documented score above: name -> (value in (0, 1] per candidate, weight).
+    Objective terms are named after their metric."""
     gain_err = np.abs(np.asarray(metrics["gain_error_db"], dtype=float))
-    terms = [(1.0 - 0.5 * np.clip(gain_err / spec.gain.tolerance_db, 0.0, 1.0), WEIGHT_GAIN),
-             (0.5 + 0.5 * np.clip(limit_margins(spec, metrics) / MARGIN_FULL, 0.0, 1.0), WEIGHT_MARGIN),
-             (8.0 / (8.0 + np.asarray(metrics["part_count"], dtype=float)), WEIGHT_PARTS),
-             (4.0 / (4.0 + np.asarray(metrics["unique_values"], dtype=float)),
-              WEIGHT_REUSE_PREFERRED if spec.parts.prefer_reuse else WEIGHT_REUSE),
-             (1.0 / (1.0 + np.asarray(metrics["cost"], dtype=float)), WEIGHT_COST)]
+    terms = {"gain": (1.0 - 0.5 * np.clip(gain_err / spec.gain.tolerance_db, 0.0, 1.0), WEIGHT_GAIN),
+             "margin": (0.5 + 0.5 * np.clip(limit_margins(spec, metrics) / MARGIN_FULL, 0.0, 1.0), WEIGHT_MARGIN),
+             "parts": (8.0 / (8.0 + np.asarray(metrics["part_count"], dtype=float)), WEIGHT_PARTS),
+             "reuse": (4.0 / (4.0 + np.asarray(metrics["unique_values"], dtype=float)),
+                       WEIGHT_REUSE_PREFERRED if spec.parts.prefer_reuse else WEIGHT_REUSE),
+             "cost": (1.0 / (1.0 + np.asarray(metrics["cost"], dtype=float)), WEIGHT_COST)}
     for metric, direction in spec.objective_directions:
         x = np.abs(np.nan_to_num(np.asarray(metrics[metric], dtype=float), nan=np.inf))
         ref = _objective_reference(spec, metric)
-        d = ref / (ref + x) if direction == "minimise" else np.where(np.isfinite(x), x / (x + ref), 0.0)
-        terms.append((d, WEIGHT_OBJECTIVE))
-    weights = sum(w for _, w in terms)
+        with np.errstate(invalid="ignore"):
+            d = ref / (ref + x) if direction == "minimise" else np.where(np.isfinite(x), x / (x + ref), 0.0)
+        terms[metric] = (d, WEIGHT_OBJECTIVE)
+    return terms
+
+
+def desirability(spec: Spec, metrics: dict[str, np.ndarray], violation: np.ndarray,
+                 terms: dict[str, tuple[np.ndarray, float]] | None = None) -> np.ndarray:
+    """The documented score above: in (0, 1] where ``violation`` is 0, else -violation."""
+    terms = desirability_terms(spec, metrics) if terms is None else terms
+    weights = sum(w for _, w in terms.values())
     with np.errstate(divide="ignore"):
-        log_score = sum(w * np.log(np.clip(d, 1e-12, 1.0)) for d, w in terms) / weights
+        log_score = sum(w * np.log(np.clip(d, 1e-12, 1.0)) for d, w in terms.values()) / weights
     return np.where(violation > 0, -violation, np.exp(log_score))
 
 

@@ -30,7 +30,7 @@ import pandas as pd
 from optuna.storages import BaseStorage
 from optuna.trial import TrialState
 
-from optimizer import physics, scoring
+from optimizer import physics, robustness, scoring
 from optimizer.scoring import pareto_mask
 from optimizer.bom import unique_values_array
 from optimizer.catalog import Catalog, load_catalog
@@ -47,11 +47,13 @@ from optimizer.units import format_value
 optuna.logging.set_verbosity(optuna.logging.WARNING)
 
 STATUSES = ("queued", "running", "done", "failed", "cancelled")
-SHORTLIST_SAMPLES = 500  # Monte Carlo builds for each shortlisted design's yield
+SHORTLIST_SAMPLES = robustness.FINAL_BUILDS  # Monte Carlo builds for each shortlisted design's yield
 SHORTLIST_SIZE = 12  # designs given the full assessment (worst case, yield) when a search finishes
+SHORTLIST_REACH = 24  # most designs assessed in full while looking for SHORTLIST_SIZE that meet the spec
 FRONT_YIELD_POINTS = 8  # front points (evenly spread along it) that carry a yield figure
 BAD_OBJECTIVE = 1e12  # stand-in for a metric the model cannot give (e.g. a stage that is not active)
 ABSENT_RATING = 1e30  # W: the rating of a part left out (never binds)
+SCREEN_WITHIN = 0.5  # designs within this summed violation at nominal get the robustness screen
 ABSENT = -1  # index of an optional part left out (feedback_ce without an emitter resistor)
 
 __all__ = ["SearchSpace", "SearchResult", "open_storage", "create_search", "run_search", "load_search",
@@ -142,6 +144,11 @@ class SearchSpace:
         return cls(spec, catalog, PartTable.from_catalog(catalog, "resistor", r_values),
                    PartTable.from_catalog(catalog, "capacitor", c_values), devices, prices, tuple(spec.topologies))
 
+    @property
+    def sizing_target(self) -> float:
+        """Low corner (Hz) capacitors are sized for (scoring.sizing_target)."""
+        return scoring.sizing_target(self.spec, self.capacitors.tolerance)
+
     # ---- trials <-> designs ----------------------------------------------------------
     def suggest(self, trial: optuna.Trial) -> Design:
         """Ask ``trial`` for a design (parameters: topology, device, <topology>.<role> indices)."""
@@ -216,7 +223,7 @@ FULL_ONLY_OPTIMISTIC = {"f_low": 0.0, "f_high": np.inf, "noise_ein_v": 0.0, "noi
 
 
 def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index: dict[str, np.ndarray],
-                   *, full: bool = True) -> dict:
+                   *, full: bool = True, robust: bool | None = None) -> dict:
     """Metrics, violations, score and objective values of designs of one topology and device,
     given as part indices by role (arrays; ABSENT = optional part left out). Capacitors
     not given are sized after the resistors.
@@ -225,7 +232,13 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
     sizing (``c_in`` the smallest allowed value, which maximises the input impedance seen
     through it, the others the largest), the limits that need the full model counted as
     met, the full-model metrics at their ideal, capacitors at the cheapest price adding no
-    new value. Every figure it gives is at least as good as the sized design's."""
+    new value. Every figure it gives is at least as good as the sized design's.
+
+    ``robust`` (default: with ``full``) adds the spec's robustness screen
+    (robustness.judge on the core metrics with SCREEN_BUILDS builds, or every corner), the
+    bias spread (``ic_spread``) and the screened ``yield``; the screen only adds violations,
+    so leaving it out keeps the bound optimistic."""
+    robust = full if robust is None else robust
     spec, topology, device = space.spec, get_topology(topology_name), space.devices[device_id]
     rt, ct = space.resistors, space.capacitors
     conditions = scoring.conditions_from_spec(spec)
@@ -237,23 +250,41 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
     if given_caps:
         caps = given_caps
     elif full:
-        caps = size_capacitors(topology, resistors, device, conditions, ct.values)
+        caps = size_capacitors(topology, resistors, device, conditions, ct.values,
+                               f_low_target=space.sizing_target)
     else:
         caps = {c: np.full(n, ct.values[0] if c == "c_in" else ct.values[-1]) for c in topology.capacitors}
     cap_index = {c: ct.index_of(v) for c, v in caps.items()}
-    result = topology.evaluate({**resistors, **caps}, device, conditions, full=full)
+    parts = {**resistors, **caps}
+    result = topology.evaluate(parts, device, conditions, full=full)
 
-    rating_limits: dict[str, np.ndarray | float] = {
-        f"p_{r}": np.where(present[r], rt.rating[np.maximum(i, 0)], ABSENT_RATING) for r, i in index.items()}
-    rating_limits.update({f"v_{c}": ct.rating[i] if full else ABSENT_RATING for c, i in cap_index.items()})
-    rating_limits.update({"vce_max": device.vceo_max, "q_power": device.p_max})
+    limits = scoring.rating_limits(
+        spec, {r: np.where(present[r], rt.rating[np.maximum(i, 0)], ABSENT_RATING) for r, i in index.items()},
+        {c: ct.rating[i] if full else ABSENT_RATING for c, i in cap_index.items()}, device)
     metrics = {k: np.asarray(v, dtype=float) for k, v in result.metrics.items()}
     if not full:
         metrics.update({k: np.full(n, v) for k, v in FULL_ONLY_OPTIMISTIC.items()})
     op = result.operating_point
     headroom = np.minimum(op["vce"], op.get("vce2", op["vce"])) - device.vce_sat - physics.ACTIVE_MARGIN
-    violations = scoring.limit_violations(spec, metrics, result.ratings, rating_limits, op["active"],
-                                          core_only=not full, vce_headroom=headroom)
+    nominal = scoring.limit_violations(spec, metrics, result.ratings, limits, op["active"],
+                                       core_only=not full, vce_headroom=headroom)
+    violations = dict(nominal)
+    metrics["yield"], metrics["ic_spread"] = np.full(n, np.nan), np.full(n, np.nan)
+    near = np.flatnonzero(np.nan_to_num(scoring.total_violation(nominal), nan=np.inf) <= SCREEN_WITHIN) \
+        if robust else np.zeros(0, dtype=int)
+    if robust and spec.robustness != "nominal":  # not screened: counted as failing every build
+        violations["yield" if spec.robustness == "yield" else "worst_case"] = np.ones(n)
+    if near.size:  # designs far outside a limit at nominal are not screened
+        tolerances = {**{r: rt.tolerance[np.maximum(i, 0)][near] for r, i in index.items()},
+                      **{c: ct.tolerance[i][near] for c, i in cap_index.items()}}
+        judged = robustness.judge(spec, topology, {k: v[near] for k, v in parts.items()}, device, conditions,
+                                  tolerances, {k: v[near] if np.ndim(v) else v for k, v in limits.items()},
+                                  {k: v[near] for k, v in nominal.items()}, full=False,
+                                  builds=robustness.SCREEN_BUILDS)
+        for k, v in judged.violations.items():
+            violations.setdefault(k, np.zeros(n))[near] = v
+        metrics["yield"][near] = judged.yield_fraction
+        metrics["ic_spread"][near] = judged.spread["ic_spread"]
     total = np.nan_to_num(scoring.total_violation(violations), nan=1e6)
 
     metrics["gain_error_db"] = scoring.gain_error_db(spec, metrics["gain"])
@@ -262,7 +293,8 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
     metrics["cost"] = (sum(np.where(present[r], rt.unit_price[np.maximum(i, 0)], 0.0) for r, i in index.items())
                        + sum(cap_prices) + topology.transistors * space.device_price[device_id])
     metrics["unique_values"] = unique_values_array({**resistors, **(caps if full else {})}).astype(float)
-    score = scoring.desirability(spec, metrics, total)
+    terms = scoring.desirability_terms(spec, metrics)
+    score = scoring.desirability(spec, metrics, total, terms)
     active = np.asarray(result.operating_point["active"], dtype=bool)
     objective_values = []
     for metric, direction in spec.objective_directions:
@@ -271,6 +303,7 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
         objective_values.append(np.where(np.isfinite(v) & active, v, bad))
     return {"n": n, "resistors": resistors, "caps": caps, "metrics": metrics, "violations": violations,
             "total": total, "binding": scoring.binding_limit(violations), "score": score,
+            "score_terms": {name: d for name, (d, _) in terms.items()}, "active": active,
             "objective_values": objective_values}
 
 
@@ -295,15 +328,22 @@ def evaluate_designs(space: SearchSpace, designs: list[Design]) -> list[dict]:
         g = evaluate_group(space, topology, device_id, index)
         for j, k in enumerate(members):
             metrics = {m: _finite(v[j]) for m, v in g["metrics"].items()}
-            out[k] = {
+            feasible = bool(g["total"][j] == 0)
+            record = {
                 "topology": topology, "device": device_id,
                 "parts": {**{r: float(v[j]) for r, v in g["resistors"].items()},
                           **{c: float(v[j]) for c, v in g["caps"].items()}},
                 "metrics": metrics,
                 "violations": {name: float(v[j]) for name, v in g["violations"].items() if v[j] > 0},
                 "total_violation": float(g["total"][j]), "binding": str(g["binding"][j]),
-                "feasible": bool(g["total"][j] == 0), "score": float(g["score"][j]),
+                "feasible": feasible, "score": float(g["score"][j]),
+                "score_terms": {name: round(float(v[j]), 4) for name, v in g["score_terms"].items()},
+                "basis": robustness.basis_label(space.spec, feasible, metrics.get("yield"),
+                                                robustness.SCREEN_BUILDS),
                 "objectives": [float(v[j]) for v in g["objective_values"]]}
+            if not g["active"][j]:
+                scoring.withhold_small_signal(record)
+            out[k] = record
     return out  # type: ignore[return-value]
 
 
@@ -318,6 +358,121 @@ def rank_records(records: list[dict]) -> list[dict]:
     violation (small first); duplicates collapsed."""
     unique = list({_design_key(r): r for r in records}.values())
     return sorted(unique, key=lambda r: (not r["feasible"], -r["score"] if r["feasible"] else r["total_violation"]))
+
+
+NEAR_STEPS = 2  # a role whose value differs by fewer series steps is the same choice
+DISTINCT_ROLES = 2  # designs differing by NEAR_STEPS or more in this many roles are distinct
+
+
+def fold_variants(space: SearchSpace, ranked: list[dict]) -> list[dict]:
+    """``ranked`` with near-identical designs folded into the best of them (which gains a
+    ``variants`` count, itself included). Two designs are distinct when their topology or
+    device differ, or when at least DISTINCT_ROLES roles differ by NEAR_STEPS or more steps
+    of the allowed values; otherwise the later one is a variant of the earlier."""
+    groups: dict[tuple[str, str], list[int]] = {}
+    for k, r in enumerate(ranked):
+        groups.setdefault((r["topology"], r["device"]), []).append(k)
+    steps: dict[int, np.ndarray] = {}
+    for members in groups.values():
+        roles = sorted(ranked[members[0]]["parts"])
+        columns = []
+        for role in roles:
+            table = space.capacitors if role.startswith("c_") else space.resistors
+            v = np.array([ranked[k]["parts"].get(role, 0.0) for k in members])
+            columns.append(np.where(v > 0, table.index_of(np.where(v > 0, v, 1.0)), -10 * NEAR_STEPS))
+        for k, row in zip(members, np.stack(columns, axis=1) if columns else np.zeros((len(members), 0))):
+            steps[k] = row
+    kept: list[dict] = []
+    kept_steps: dict[tuple[str, str], tuple[list[int], list[np.ndarray]]] = {}
+    for k, r in enumerate(ranked):
+        key = (r["topology"], r["device"])
+        positions, rows = kept_steps.setdefault(key, ([], []))
+        if rows:
+            far = np.count_nonzero(np.abs(np.asarray(rows) - steps[k]) >= NEAR_STEPS, axis=1)
+            near = np.flatnonzero(far < DISTINCT_ROLES)
+            if near.size:
+                kept[positions[near[0]]]["variants"] += 1
+                continue
+        positions.append(len(kept))
+        rows.append(steps[k])
+        kept.append({**r, "variants": 1})
+    return kept
+
+
+def _limit_metric(limit: str) -> tuple[str | None, str]:
+    """The metric a limit judges and its unit (for saying what relaxing it would take)."""
+    table = {name: metric for name, metric, _ in scoring.LIMIT_METRICS}
+    table.update({"gain": "gain_db", "band_low": "f_low", "band_high": "f_high", "yield": "yield"})
+    metric = table.get(limit)
+    return metric, METRIC_UNITS.get(metric or "", "")
+
+
+METRIC_UNITS = {"gain_db": "dB", "f_low": "Hz", "f_high": "Hz", "yield": "", "input_impedance": "ohm",
+                "output_impedance": "ohm", "swing_vpp": "V", "supply_current": "A", "thd": "", "noise_ein_v": "V",
+                "psrr_db": "dB"}
+
+
+ROBUSTNESS_LIMITS = ("yield", "worst_case")
+
+
+def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
+    """Why a spec has no answer: the limit whose relaxation alone would give one.
+
+    Among the evaluated designs, those that miss exactly one limit name it; the limit missed
+    by the smallest normalised amount (that limit's own violation) binds, and the best value such a design reaches (at
+    nominal) is what the limit would have to be relaxed to, with a margin for spread. A design
+    missing a limit at nominal also misses the robustness limit; that one is named only
+    when nothing else is missed. Where no design misses only one limit, the pair
+    missed together by the smallest amount binds. Returns {binding: [limits], reached: {limit:
+    value (SI) or None}, unit: {limit: unit}, text}."""
+    best: dict[tuple[str, ...], tuple[float, dict]] = {}
+    for r in ranked:
+        missed = tuple(sorted(k for k in r["violations"] if k not in ROBUSTNESS_LIMITS)) \
+            or tuple(sorted(r["violations"]))  # spread fails what nominal fails: name the limit
+        amount = sum(r["violations"][k] for k in missed)
+        if 1 <= len(missed) <= 2 and (missed not in best or amount < best[missed][0]):
+            best[missed] = (amount, r)
+    for size in (1, 2):
+        options = {k: v for k, v in best.items() if len(k) == size}
+        if options:
+            limits = min(options, key=lambda k: options[k][0])
+            record = options[limits][1]
+            break
+    else:
+        record = ranked[0] if ranked else None
+        limits = (record["binding"],) if record and record["binding"] else ()
+    reached: dict[str, float | None] = {}
+    units: dict[str, str] = {}
+    for limit in limits:
+        metric, units[limit] = _limit_metric(limit)
+        reached[limit] = (record["metrics"].get(metric) if record and metric else None)
+    def show(value: float | None, limit: str) -> str | None:
+        if value is None:
+            return None
+        if limit in ("yield", "thd_max"):
+            return f"{100 * value:.3g} %"
+        return f"{value:.3g} dB" if units[limit] == "dB" else format_value(value, units[limit])
+
+    asked = {name: getattr(spec.limits, name) for name, _, _ in scoring.LIMIT_METRICS}
+    asked.update({"yield": spec.limits.yield_min, "band_low": spec.band[0], "band_high": spec.band[1]})
+    parts = []
+    for limit in limits:
+        if limit == "gain":
+            wanted = f"{spec.gain_target_db:.3g} dB +- {spec.gain.tolerance_db:.2g} dB"
+        else:
+            wanted = show(asked.get(limit), limit)
+        facts = [f"the spec asks {wanted}" if wanted else "", f"the nearest design reaches {show(reached[limit], limit)}"
+                 if reached[limit] is not None else ""]
+        facts = [f for f in facts if f]
+        parts.append(f"{limit} ({'; '.join(facts)})" if facts else limit)
+    if not limits:
+        text = "no design was evaluated"
+    elif len(limits) == 1:
+        text = (f"no design meets every limit; {parts[0]} binds: relaxing it alone (with a margin for spread) "
+                "would give an answer")
+    else:
+        text = f"no design meets every limit, and no single limit is to blame: {' and '.join(parts)} bind together"
+    return {"binding": list(limits), "reached": reached, "unit": units, "text": text}
 
 
 def _label(role: str, value: float) -> str:
@@ -344,18 +499,28 @@ def candidate_from_record(space: SearchSpace, record: dict) -> dict:
             "transistor": {"id": device.id, "polarity": device.polarity, "hfe_min": device.hfe_min,
                            "hfe_max": device.hfe_max, "model": device.spice_model()},
             "metrics": dict(record["metrics"]), "violations": dict(record["violations"]),
+            **{k: record[k] for k in ("basis", "score_terms", "note", "variants") if k in record},
             "trial": record.get("trial")}
 
 
 def _shortlist_candidate(space: SearchSpace, record: dict, samples: int) -> dict:
-    """The full assessment (worst case, yield, ratings, cautions) of a ranked design."""
+    """The full assessment (worst case, yield, ratings, cautions) of a ranked design; its score
+    is the record's times the yield of its builds (on the yield basis)."""
     from optimizer.candidates import assess  # the single place a design is judged in full
 
     full = assess(space.spec, space.catalog, record["topology"], dict(record["parts"]), record["device"],
                   samples=samples)
     full["metrics"].update({k: record["metrics"][k] for k in ("cost", "unique_values") if k in record["metrics"]})
-    full.update(score=record["score"] * (full["metrics"]["yield"] if record["feasible"] else 1.0),
-                nominal_score=record["score"], binding=record["binding"], trial=record.get("trial"))
+    build_yield = full["metrics"].get("yield")
+    terms = dict(record.get("score_terms") or {})
+    if build_yield is not None:
+        terms["yield"] = round(build_yield, 4)
+    violations = full["violations"]
+    total = float(sum(violations.values()))
+    full.update(score=record["score"] * (1.0 if build_yield is None else build_yield) if full["feasible"] else -total,
+                total_violation=total, binding=max(violations, key=violations.get) if violations else "",
+                nominal_score=record["score"], score_terms=terms, trial=record.get("trial"),
+                variants=record.get("variants", 1))
     return full
 
 
@@ -490,14 +655,22 @@ def _front(space: SearchSpace, ranked: list[dict]) -> list[dict]:
 
 
 def _summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *, tail: bool = True) -> dict:
-    """The shortlist (``top`` designs fully assessed) and the front; with ``tail`` every other
-    ranked design follows the shortlist as a nominal candidate."""
-    ranked = rank_records(_records(study))
-    shortlist = [_shortlist_candidate(space, r, samples) for r in ranked[:top]]
-    order = sorted(range(len(shortlist)), key=lambda k: (not shortlist[k]["feasible"],
-                                                        -shortlist[k]["score"] if shortlist[k]["feasible"]
-                                                        else ranked[k]["total_violation"]))
-    candidates = [shortlist[k] for k in order] + [candidate_from_record(space, r) for r in ranked[top:] if tail]
+    """The shortlist and the front; with ``tail`` every other ranked design follows the
+    shortlist as a nominal candidate.
+
+    Ranked designs are assessed in full (worst case, FINAL_BUILDS builds) in rank order until
+    ``top`` of them meet the spec on its basis, or SHORTLIST_REACH designs have been assessed:
+    a design that passed the search's screen but misses on the full assessment drops below
+    every one that meets it."""
+    every = rank_records(_records(study))
+    ranked = fold_variants(space, every)
+    shortlist: list[dict] = []
+    for r in ranked[:max(top, SHORTLIST_REACH)]:
+        shortlist.append(_shortlist_candidate(space, r, samples))
+        if len(shortlist) >= top and sum(c["feasible"] for c in shortlist) >= top:
+            break
+    shortlist.sort(key=lambda c: (not c["feasible"], -c["score"] if c["feasible"] else c["total_violation"]))
+    candidates = shortlist + [candidate_from_record(space, r) for r in ranked[len(shortlist):] if tail]
     for rank, c in enumerate(candidates, 1):
         c["rank"] = rank
     points = _front(space, ranked)
@@ -507,12 +680,15 @@ def _summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, 
         c = _shortlist_candidate(space, r, samples) if k in with_yield else candidate_from_record(space, r)
         c["objectives"] = r["objectives"]
         front.append(c)
-    return {"candidates": candidates, "front": front, "evaluated": len(ranked)}
+    summary = {"candidates": candidates, "front": front, "evaluated": len(ranked)}
+    if not any(c["feasible"] for c in shortlist):
+        summary["infeasible"] = relax_one_limit(space.spec, every)
+    return summary
 
 
 def _finish(study: optuna.Study, space: SearchSpace) -> None:
     summary = _summarise(space, study, SHORTLIST_SIZE, SHORTLIST_SAMPLES, tail=False)
-    study.set_user_attr("ranking", {"candidates": summary["candidates"], "front": summary["front"]})
+    study.set_user_attr("ranking", {k: summary[k] for k in ("candidates", "front", "infeasible") if k in summary})
     study.set_user_attr("finished", _now())
     study.set_user_attr("elapsed", time.time() - float(study.user_attrs.get("started", time.time())))
     study.set_user_attr("status", "done")
@@ -530,6 +706,7 @@ class SearchResult:
     candidates: list[dict]
     front: list[dict]
     status: dict = field(default_factory=dict)
+    infeasible: dict | None = None  # when no design meets the spec: the limit that binds (relax_one_limit)
 
     def candidate(self, rank: int) -> dict:
         """The candidate at ``rank`` (1 = best); InputError if there is none."""
@@ -587,16 +764,19 @@ def load_search(storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SI
     space = SearchSpace.build(spec)
     ranking = study.user_attrs.get("ranking")
     if ranking and top <= len(ranking["candidates"]):
-        summary = {"candidates": list(ranking["candidates"]), "front": ranking["front"]}
+        summary = {k: ranking[k] for k in ("front", "infeasible") if k in ranking}
+        summary["candidates"] = list(ranking["candidates"])
         shortlisted = {c.get("trial") for c in summary["candidates"]}
-        tail = [candidate_from_record(space, r) for r in rank_records(_records(study)) if r["trial"] not in shortlisted]
+        tail = [candidate_from_record(space, r) for r in fold_variants(space, rank_records(_records(study)))
+                if r["trial"] not in shortlisted]
         for rank, c in enumerate(tail, len(summary["candidates"]) + 1):
             c["rank"] = rank
         summary["candidates"] += tail
     else:
         summary = _summarise(space, study, top, samples)
     best = summary["candidates"][0] if summary["candidates"] else None
-    return SearchResult(search_id, spec, study, summary["candidates"], summary["front"], _status(study, spec, best))
+    return SearchResult(search_id, spec, study, summary["candidates"], summary["front"], _status(study, spec, best),
+                        summary.get("infeasible"))
 
 
 def list_searches(storage: BaseStorage) -> list[dict]:

@@ -337,15 +337,6 @@ class Search(_Section):
                              "after the resistors; searched: capacitor values are search parameters too")
 
 
-def _scaled(value: object, factor: float) -> object:
-    """``value`` (a voltage as written) times ``factor``, or the value itself when it does not
-    parse (its own validation then reports it)."""
-    try:
-        return parse_quantity(value, "V", where="") * factor  # type: ignore[arg-type]
-    except (InputError, ValueError, TypeError):
-        return value
-
-
 def _unique(values: tuple, label: str) -> tuple:
     if not values:
         raise ValueError(f"at least one {label}")
@@ -380,18 +371,17 @@ class Spec(_Section):
                 raise InputError.single("supply", raw, "a voltage ('12 V') or {nominal, min, max} with "
                                         "nominal given (min and max default to -+5 %)", _TITLE)
             data["supply"] = raw["nominal"]
-            nominal = raw["nominal"]
-            data["supply_min"] = raw.get("min", _scaled(nominal, 1.0 - DEFAULT_SUPPLY_TOLERANCE))
-            data["supply_max"] = raw.get("max", _scaled(nominal, 1.0 + DEFAULT_SUPPLY_TOLERANCE))
+            data["supply_min"], data["supply_max"] = raw.get("min"), raw.get("max")
             data["supply_range_assumed"] = "min" not in raw and "max" not in raw
         elif raw is not None:
-            data["supply_min"] = _scaled(raw, 1.0 - DEFAULT_SUPPLY_TOLERANCE)
-            data["supply_max"] = _scaled(raw, 1.0 + DEFAULT_SUPPLY_TOLERANCE)
             data["supply_range_assumed"] = True
         return data
 
     @model_validator(mode="after")
     def _supply_order(self) -> "Spec":
+        for key, factor in (("supply_min", 1.0 - DEFAULT_SUPPLY_TOLERANCE), ("supply_max", 1.0 + DEFAULT_SUPPLY_TOLERANCE)):
+            if getattr(self, key) is None:
+                object.__setattr__(self, key, self.supply * factor)
         if not self.supply_min <= self.supply <= self.supply_max:
             raise InputError.single("supply", {"nominal": self.supply, "min": self.supply_min,
                                                "max": self.supply_max},
@@ -403,10 +393,10 @@ class Spec(_Section):
     supply: _quantity("V", maximum=100.0, example="12 V") = Field(
         description="nominal supply, V, above 0, <= 100; written as a number (then +-5 % is assumed) "
                     "or as {nominal, min, max}")
-    supply_min: _quantity("V", maximum=100.0, example="11.4 V") = Field(
-        description="lowest supply, V (input: supply.min)")
-    supply_max: _quantity("V", maximum=100.0, example="12.6 V") = Field(
-        description="highest supply, V (input: supply.max)")
+    supply_min: _quantity("V", optional=True, maximum=100.0, example="11.4 V") = Field(
+        None, description="lowest supply, V (input: supply.min; default nominal -5 %)")
+    supply_max: _quantity("V", optional=True, maximum=100.0, example="12.6 V") = Field(
+        None, description="highest supply, V (input: supply.max; default nominal +5 %)")
     supply_range_assumed: bool = Field(
         False, description="true when the supply was a bare number and +-5 % was assumed")
     supply_ripple: Ripple | None = None

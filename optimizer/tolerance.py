@@ -1,18 +1,24 @@
-"""Spread: worst-case corners and seeded Monte Carlo yield, vectorised across
+"""Spread: worst-case corners, bias spread and seeded Monte Carlo yield, vectorised across
 candidates x samples.
 
 What moves (common practice): every resistor and capacitor within its tolerance, the
-transistor's hFE anywhere in the device's min..max, and the temperature over the spec's
-range, with Vbe falling about 2 mV/K (carried by the device's saturation-current
-temperature law) and hFE rising with temperature (``devices.hfe_temperature_factor``). Monte Carlo draws
-parts uniformly within tolerance (the conservative choice for parts binned by tolerance),
-hFE log-uniformly within min..max and the temperature uniformly over the range, from one
-seed so a yield figure can be reproduced.
+transistor's hFE anywhere in the device's min..max, the temperature over the spec's range,
+with Vbe falling about 2 mV/K (carried by the device's saturation-current temperature law)
+and hFE rising with temperature (``devices.hfe_temperature_factor``), and the supply over
+its min..max. Monte Carlo draws parts uniformly within tolerance (the conservative choice
+for parts binned by tolerance), hFE log-uniformly within min..max, and the temperature and
+the supply uniformly over a few levels of their ranges.
+
+The builds are common random numbers: build k of every candidate uses the same temperature,
+supply, hFE position and, per part role, the same position within the tolerance band
+(:class:`Builds`). So a design's yield does not depend on which other designs it was judged
+with, and two designs are compared on the same builds.
 """
 from __future__ import annotations
 
 import itertools
-from dataclasses import replace
+import zlib
+from dataclasses import dataclass, replace
 from typing import Callable
 
 import numpy as np
@@ -20,95 +26,194 @@ import numpy as np
 from optimizer.devices import Device, hfe_temperature_factor
 from optimizer.topologies.base import CHUNK_FAST, CHUNK_FULL, Conditions, Topology
 
-TEMPERATURE_BINS = 5  # Monte Carlo temperatures are drawn from this many levels
+TEMPERATURE_BINS = 3  # Monte Carlo temperatures are drawn from this many levels (ends and middle)
+SUPPLY_BINS = 3  # and supplies from this many (min, middle, max)
+Tolerance = float | np.ndarray  # fraction, one for all candidates or one per candidate
 
 
-def _evaluate_flat(topology: Topology, parts: dict[str, np.ndarray], device: Device,
-                   conditions: Conditions, hfe: np.ndarray, full: bool = True) -> dict[str, np.ndarray]:
-    """Evaluate arrays of shape (candidates, samples) by flattening them; metrics and
-    ratings come back in the same 2-D shape."""
+@dataclass(frozen=True)
+class Builds:
+    """``samples`` seeded random builds, the same for every candidate.
+
+    temperature (°C) and supply (V) per build, taken from TEMPERATURE_BINS and SUPPLY_BINS
+    levels; hfe_position in [0, 1] (log position between the device's hFE min and max);
+    :meth:`part_position` gives each role's position in [-1, 1] within its tolerance band.
+    """
+
+    samples: int
+    seed: int
+    temperature: np.ndarray
+    supply: np.ndarray
+    hfe_position: np.ndarray
+
+    @classmethod
+    def draw(cls, samples: int, seed: int, temperature_range: tuple[float, float],
+             supply_range: tuple[float, float]) -> "Builds":
+        rng = np.random.default_rng([seed, 0x5EED])
+        t_levels = np.linspace(*temperature_range, TEMPERATURE_BINS)
+        s_levels = np.linspace(*supply_range, SUPPLY_BINS)
+        return cls(samples, seed, t_levels[rng.integers(0, TEMPERATURE_BINS, samples)],
+                   s_levels[rng.integers(0, SUPPLY_BINS, samples)], rng.uniform(0.0, 1.0, samples))
+
+    def part_position(self, role: str) -> np.ndarray:
+        """Position of part ``role`` within its tolerance band in each build, in [-1, 1]."""
+        rng = np.random.default_rng([self.seed, zlib.crc32(role.encode())])
+        return rng.uniform(-1.0, 1.0, self.samples)
+
+    def hfe(self, device: Device) -> np.ndarray:
+        """hFE of each build at its temperature."""
+        log_hfe = np.log(device.hfe_min) + self.hfe_position * np.log(device.hfe_max / device.hfe_min)
+        return np.exp(log_hfe) * hfe_temperature_factor(self.temperature)
+
+    def groups(self) -> list[tuple[float, float, np.ndarray]]:
+        """(temperature, supply, build indices) for each condition that occurs."""
+        keys = np.stack([self.temperature, self.supply], axis=1)
+        unique, inverse = np.unique(keys, axis=0, return_inverse=True)
+        return [(float(t), float(s), np.flatnonzero(np.ravel(inverse) == k)) for k, (t, s) in enumerate(unique)]
+
+
+def _at(conditions: Conditions, temperature: float, supply: float | None = None) -> Conditions:
+    return replace(conditions, temperature=float(temperature),
+                   supply=float(conditions.supply if supply is None else supply))
+
+
+def _flat_result(topology: Topology, parts: dict[str, np.ndarray], device: Device, conditions: Conditions,
+                 hfe: np.ndarray, full: bool) -> dict[str, np.ndarray]:
+    """Evaluate arrays of shape (candidates, samples) flattened; metrics, ratings, 'active' and
+    the operating point's 'ic' come back in the same 2-D shape."""
     shape = hfe.shape
     flat = {role: np.broadcast_to(v, shape).reshape(-1) for role, v in parts.items()}
     result = topology.evaluate(flat, device, conditions, hfe=hfe.reshape(-1), full=full)
     out = {k: np.asarray(v).reshape(shape) for k, v in result.metrics.items()}
     out.update({k: np.asarray(v).reshape(shape) for k, v in result.ratings.items()})
-    out["active"] = np.asarray(result.operating_point["active"]).reshape(shape)
+    op = result.operating_point
+    out["active"] = np.asarray(op["active"]).reshape(shape)
+    out["ic"] = np.asarray(op["ic"]).reshape(shape)
+    out["v_out_q"] = np.asarray(op.get("v_out_q", op["v_collector"])).reshape(shape)
     return out
 
 
+def _column(tolerance: Tolerance, rows: slice | None = None) -> np.ndarray:
+    """A tolerance as a column (candidates, 1) for broadcasting against samples."""
+    t = np.asarray(tolerance, dtype=float)
+    return (t if t.ndim == 0 or rows is None else t[rows]).reshape(-1, 1) if t.ndim else t.reshape(1, 1)
+
+
 def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: Device,
-               conditions: Conditions, tolerances: dict[str, float],
-               temperature_range: tuple[float, float]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
-    """(low, high) of every metric over all corners: each part at +-tolerance, hFE at
-    min and max, temperature at both ends. Arrays over candidates."""
-    roles = list(parts)
+               conditions: Conditions, tolerances: dict[str, Tolerance],
+               temperature_range: tuple[float, float], supply_range: tuple[float, float] | None = None,
+               *, roles: tuple[str, ...] | None = None, full: bool = True
+               ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """(low, high) of every metric, rating, 'ic' and 'v_out_q' over all corners: each part in
+    ``roles`` (default: all) at +-tolerance, hFE at min and max, temperature and supply at
+    both ends. Arrays over candidates. Metrics NaN at a corner (a stage that is not active)
+    are left out of that corner's range; 'active_all' (bool) says whether every corner is active."""
+    roles = tuple(parts) if roles is None else roles
     signs = np.array(list(itertools.product((-1.0, 1.0), repeat=len(roles))))  # (corners, roles)
+    n = np.asarray(next(iter(parts.values()))).shape[0]
+    supplies = (conditions.supply,) if supply_range is None else tuple(supply_range)
     lows: dict[str, np.ndarray] = {}
     highs: dict[str, np.ndarray] = {}
-    for temperature in temperature_range:
-        at_t = replace(conditions, temperature=float(temperature))
+    active_all = np.ones(n, dtype=bool)
+    for temperature, supply in itertools.product(temperature_range, supplies):
+        at = _at(conditions, temperature, supply)
+        corner_parts = {role: np.asarray(v, dtype=float).reshape(-1, 1) * np.ones((1, signs.shape[0]))
+                        for role, v in parts.items()}
+        for j, role in enumerate(roles):
+            corner_parts[role] = corner_parts[role] * (1.0 + signs[None, :, j] * _column(tolerances.get(role, 0.0)))
         for hfe_edge in (device.hfe_min, device.hfe_max):
-            corner_parts = {
-                role: np.asarray(parts[role], dtype=float)[:, None]
-                * (1.0 + signs[None, :, j] * tolerances.get(role, 0.0))
-                for j, role in enumerate(roles)
-            }
-            n = np.asarray(parts[roles[0]]).shape[0]
             hfe = np.full((n, signs.shape[0]), hfe_edge * hfe_temperature_factor(float(temperature)))
-            metrics = _evaluate_flat(topology, corner_parts, device, at_t, hfe)
-            for key, value in metrics.items():
+            values = _flat_result(topology, corner_parts, device, at, hfe, full)
+            active_all &= np.all(values["active"], axis=1)
+            for key, value in values.items():
                 if value.dtype == bool:
                     continue
-                lo, hi = np.nanmin(value, axis=1), np.nanmax(value, axis=1)
+                with np.errstate(invalid="ignore"):
+                    lo, hi = np.nanmin(np.where(np.isnan(value), np.inf, value), axis=1), \
+                        np.nanmax(np.where(np.isnan(value), -np.inf, value), axis=1)
                 lows[key] = lo if key not in lows else np.minimum(lows[key], lo)
                 highs[key] = hi if key not in highs else np.maximum(highs[key], hi)
-    return {key: (lows[key], highs[key]) for key in lows}
+    out = {key: (np.where(np.isfinite(lows[key]), lows[key], np.nan),
+                 np.where(np.isfinite(highs[key]), highs[key], np.nan)) for key in lows}
+    out["active_all"] = (active_all, active_all)
+    return out
+
+
+def bias_spread(topology: Topology, parts: dict[str, np.ndarray], device: Device, conditions: Conditions,
+                tolerances: dict[str, Tolerance], temperature_range: tuple[float, float],
+                supply_range: tuple[float, float]) -> dict[str, np.ndarray]:
+    """Spread of the operating point, per candidate: ``ic_low``, ``ic_high`` (A), ``ic_spread``
+    (max/min Ic) and ``v_out_low``, ``v_out_high`` (V, the quiescent output).
+
+    Corners: hFE, temperature and supply at their ends (8), each with the resistors at the
+    tolerance edge that raises Ic and at the one that lowers it (the sign of dIc/dR at
+    nominal, one probe per resistor): the classical sensitivity-directed worst case, exact
+    where Ic is monotone in each resistor. 8 + 16 operating points per candidate."""
+    p = {role: np.asarray(v, dtype=float).reshape(-1) for role, v in parts.items()}
+    n = next(iter(p.values())).size
+    resistors = [r for r in topology.resistors if r in p]
+    nominal = topology.operating_point(p, device, conditions)["ic"]
+    probes = {r: {**p, r: p[r] * (1.0 + np.maximum(np.asarray(tolerances.get(r, 0.0), dtype=float), 1e-3))}
+              for r in resistors}
+    stacked = {role: np.concatenate([probes[r][role] for r in resistors]) for role in p}
+    raised = topology.operating_point(stacked, device, conditions)["ic"].reshape(len(resistors), n)
+    direction = {r: np.sign(np.nan_to_num(raised[k] - nominal)) for k, r in enumerate(resistors)}
+    up = {role: v * (1.0 + direction[role] * np.asarray(tolerances.get(role, 0.0))) if role in direction else v
+          for role, v in p.items()}
+    down = {role: v * (1.0 - direction[role] * np.asarray(tolerances.get(role, 0.0))) if role in direction else v
+            for role, v in p.items()}
+    both = {role: np.concatenate([up[role], down[role]]) for role in p}
+    ic_low = np.full(n, np.inf)
+    ic_high = np.full(n, -np.inf)
+    v_low, v_high = ic_low.copy(), ic_high.copy()
+    for temperature, supply in itertools.product(temperature_range, supply_range):
+        at = _at(conditions, temperature, supply)
+        for hfe_edge in (device.hfe_min, device.hfe_max):
+            op = topology.operating_point(both, device, at, hfe_edge * hfe_temperature_factor(float(temperature)))
+            ic = np.where(op["active"], op["ic"], np.nan).reshape(2, n)
+            v_out = np.asarray(op.get("v_out_q", op["v_collector"])).reshape(2, n)
+            with np.errstate(invalid="ignore"):
+                ic_low = np.fmin(ic_low, np.nanmin(np.where(np.isnan(ic), np.inf, ic), axis=0))
+                ic_high = np.fmax(ic_high, np.nanmax(np.where(np.isnan(ic), -np.inf, ic), axis=0))
+            v_low, v_high = np.minimum(v_low, v_out.min(axis=0)), np.maximum(v_high, v_out.max(axis=0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        spread = np.where((ic_low > 0) & np.isfinite(ic_high), ic_high / ic_low, np.inf)
+    return {"ic_low": ic_low, "ic_high": ic_high, "ic_spread": spread, "v_out_low": v_low, "v_out_high": v_high}
 
 
 def monte_carlo_yield(topology: Topology, parts: dict[str, np.ndarray], device: Device,
-                      conditions: Conditions, tolerances: dict[str, float],
+                      conditions: Conditions, tolerances: dict[str, Tolerance],
                       temperature_range: tuple[float, float],
-                      passes: Callable[[dict[str, np.ndarray]], np.ndarray],
-                      samples: int = 1000, seed: int = 0, full: bool = False) -> np.ndarray:
-    """Fraction of ``samples`` random builds of each candidate for which ``passes``
-    (metrics and ratings of shape (candidates, samples) -> bool array) holds.
+                      passes: Callable[[dict[str, np.ndarray], slice], np.ndarray],
+                      samples: int = 1000, seed: int = 0, full: bool = False,
+                      supply_range: tuple[float, float] | None = None) -> np.ndarray:
+    """Fraction of ``samples`` random builds (:class:`Builds`) of each candidate for which
+    ``passes(sample, rows)`` holds (``sample``: metrics and ratings of shape (block rows,
+    samples) for the candidates ``rows``, a slice; returns a bool array of that shape) and
+    the transistors are active.
 
-    By default the builds are judged on the fast core metrics (bias, gain, impedances,
-    swing, current, ratings); the band corners and noise, which need ``full=True``, are
-    covered by :func:`worst_case` instead.
-
-    Each sample's temperature is one of TEMPERATURE_BINS levels, drawn uniformly; the builds
-    of one level are drawn and judged in blocks of candidate rows that fit one evaluation
-    chunk, so every block is one contiguous call (``passes`` sees a block of rows, all of
-    that level's samples) and the working set stays small whatever the candidate count.
+    ``full=False`` judges the builds on the fast core metrics (bias, gain, impedances, swing,
+    current, ratings); ``full=True`` adds the band corners, noise and supply rejection.
+    The builds of one condition (temperature, supply) are evaluated in blocks of candidate
+    rows that fit one evaluation chunk, so the working set stays small whatever the count.
     """
-    rng = np.random.default_rng(seed)
+    supply_range = (conditions.supply, conditions.supply) if supply_range is None else supply_range
+    builds = Builds.draw(samples, seed, temperature_range, supply_range)
     values = {role: np.asarray(value, dtype=float).reshape(-1) for role, value in parts.items()}
     n = next(iter(values.values())).shape[0]
-    levels = np.linspace(*temperature_range, TEMPERATURE_BINS)
-    per_level = np.bincount(rng.integers(0, TEMPERATURE_BINS, samples), minlength=TEMPERATURE_BINS)
-    log_hfe = (np.log(device.hfe_min), np.log(device.hfe_max))
+    positions = {role: builds.part_position(role) for role in values}
+    hfe_all = builds.hfe(device)
     passed = np.zeros(n)
-    for temperature, m in zip(levels, per_level):
-        if m == 0:
-            continue
-        at_t = replace(conditions, temperature=float(temperature))
-        hfe_factor = hfe_temperature_factor(float(temperature))
-        rows = max(1, (CHUNK_FULL if full else CHUNK_FAST) // int(m))
+    for temperature, supply, idx in builds.groups():
+        at = _at(conditions, temperature, supply)
+        rows = max(1, (CHUNK_FULL if full else CHUNK_FAST) // idx.size)
         for i in range(0, n, rows):
-            block = {}
-            for role, v in values.items():
-                tol = tolerances.get(role, 0.0)
-                drawn = rng.uniform(1.0 - tol, 1.0 + tol, (v[i:i + rows].size, m))
-                drawn *= v[i:i + rows, None]
-                block[role] = drawn
-            hfe = rng.uniform(*log_hfe, drawn.shape)
-            np.exp(hfe, out=hfe)
-            hfe *= hfe_factor
-            result = topology.evaluate({r: d.reshape(-1) for r, d in block.items()}, device, at_t,
-                                       hfe=hfe.reshape(-1), full=full)
-            sample = {k: np.asarray(v).reshape(drawn.shape) for k, v in result.metrics.items()}
-            sample.update({k: np.asarray(v).reshape(drawn.shape) for k, v in result.ratings.items()})
-            sample["active"] = np.asarray(result.operating_point["active"]).reshape(drawn.shape)
-            passed[i:i + rows] += np.count_nonzero(passes(sample) & sample["active"], axis=1)
+            block = slice(i, min(i + rows, n))
+            drawn = {role: v[block, None] * (1.0 + _column(tolerances.get(role, 0.0), block)
+                                             * positions[role][None, idx])
+                     for role, v in values.items()}
+            shape = (block.stop - block.start, idx.size)
+            hfe = np.broadcast_to(hfe_all[None, idx], shape)
+            sample = _flat_result(topology, drawn, device, at, np.ascontiguousarray(hfe), full)
+            passed[block] += np.count_nonzero(passes(sample, block) & sample["active"], axis=1)
     return passed / samples

@@ -58,7 +58,8 @@ def test_csv_and_markdown(workspace: Path, capsys) -> None:
     rows = list(csv.DictReader(io.StringIO(out)))
     assert code == EXIT_OK and len(rows) == 4 and rows[0]["rank"] == "1" and "supply_current" in rows[0]
     code, out, _ = _run(workspace, capsys, "--format", "markdown", "--top", "2")
-    assert code == EXIT_OK and out.splitlines()[1].startswith("| rank |")
+    lines = out.splitlines()
+    assert code == EXIT_OK and lines[1].startswith("basis: ") and lines[2].startswith("| rank |")
 
 
 def test_plots_are_written(workspace: Path, capsys) -> None:

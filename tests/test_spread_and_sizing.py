@@ -78,7 +78,7 @@ def test_yield_is_seeded_and_responds_to_the_limit() -> None:
     nominal_gain = abs(topology.evaluate(parts, DEVICE, CONDITIONS).metrics["gain"][0])
 
     def within(fraction: float):
-        return lambda m: np.abs(np.abs(m["gain"]) / nominal_gain - 1) <= fraction
+        return lambda m, rows: np.abs(np.abs(m["gain"]) / nominal_gain - 1) <= fraction
 
     loose = monte_carlo_yield(topology, parts, DEVICE, CONDITIONS, tolerances, (0, 50), within(0.5), 400, seed=3)
     tight = monte_carlo_yield(topology, parts, DEVICE, CONDITIONS, tolerances, (0, 50), within(0.01), 400, seed=3)
