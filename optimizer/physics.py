@@ -28,6 +28,9 @@ NOISE_POINTS = 6  # log-spaced frequencies for the in-band noise integral
 NEWTON_ITERATIONS = 8
 THD_SAMPLES = 16  # samples per period of the quasi-static distortion solve (harmonics 2..7)
 THD_ITERATIONS = 6  # Newton steps per sample, warm-started at the quiescent Vbe
+SWING_TOLERANCE = 0.1  # usable swing: both peaks within 10 % of the linear gain times the drive
+SWING_GRID = (0.5, 0.8, 1.0, 1.5, 2.5)  # multiples of the clip-level drive scanned for the first deviation
+SWING_STEPS = 4  # Illinois false-position steps on the drive amplitude after the scan
 MAX_STEP = 0.1  # V, largest Newton step in Vbe (a guard; steps from above are about NF*VT)
 NEWTON_TOL = 1e-7  # V, residual of the base-loop equation counted as converged
 
@@ -540,6 +543,67 @@ def load_line_limits(ic: np.ndarray, vce: np.ndarray, vce_sat: float, r_ac: np.n
                      re_ac: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Peak output (V) before cutoff (Ic*Rac) and before saturation ((Vce-Vce_sat)*Rac/(Rac+Re_ac))."""
     return ic * r_ac, np.maximum(vce - vce_sat, 0.0) * r_ac / (r_ac + re_ac)
+
+
+def usable_swing(static_output: Callable[[np.ndarray], np.ndarray], gain: np.ndarray,
+                 clip_peak: np.ndarray, tolerance: float = SWING_TOLERANCE) -> np.ndarray:
+    """Usable swing (V peak-to-peak at the load): the largest sine whose two peaks are both
+    within ``tolerance`` (10 %) of the linear mid-band gain times the drive.
+
+    ``static_output(vs)`` is the stage's memoryless transfer (source V -> change of the load
+    voltage, V, shape (candidates, samples)); a sine's output peaks are then the outputs at
+    the drive's two peaks, so only +a and -a are solved. The peak deviation
+    d(a) = max over both peaks of |out(+-a)/(+-gain*a) - 1| is scanned at SWING_GRID
+    multiples of the clip-level drive a_clip = clip_peak/(0.9*|gain|) (where a stage that
+    clips hard at the AC load line has fallen 10 % short; the grid runs past it for stages
+    whose static curve clips later), the first scanned amplitude with d > tolerance
+    brackets the crossing with the one before it (d(0) = 0), and Illinois false position
+    on d - tolerance refines it; the swing is out(+a) - out(-a) there, interpolated between
+    the bracket's ends. Where no scanned amplitude deviates (a stage that does not clip
+    within its clip-level drive), the peak-to-peak at the last one is returned.
+    """
+    gain = np.asarray(gain, dtype=float)
+    g = gain[:, None]
+    a_clip = np.asarray(clip_peak, dtype=float) / ((1.0 - tolerance) * np.abs(gain))
+
+    def measure(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(d - tolerance, peak-to-peak) at drive amplitudes a (V, shape (n, k))."""
+        out = static_output(np.concatenate([a, -a], axis=1))
+        k = a.shape[1]
+        lin = g * a
+        up, down = out[:, :k], out[:, k:]
+        dev = np.maximum(np.abs(up / lin - 1.0), np.abs(down / lin + 1.0))
+        return np.where(np.isfinite(dev), dev, np.inf) - tolerance, np.abs(up - down)
+
+    n = gain.size
+    rows = np.arange(n)
+    grid = a_clip[:, None] * np.asarray(SWING_GRID)[None, :]
+    d_grid, pp_grid = measure(grid)
+    over = d_grid > 0.0
+    found = over.any(axis=1)
+    first = np.where(found, np.argmax(over, axis=1), grid.shape[1] - 1)
+    x1, d1, p1 = grid[rows, first], d_grid[rows, first], pp_grid[rows, first]
+    prev = np.maximum(first - 1, 0)
+    start = first == 0
+    x0 = np.where(start, 0.0, grid[rows, prev])
+    d0 = np.where(start, -tolerance, d_grid[rows, prev])
+    p0 = np.where(start, 0.0, pp_grid[rows, prev])
+    d1 = np.minimum(d1, 1.0)  # a non-finite or huge deviation past a hard clip: keep the secant sane
+    side = np.zeros(n)  # +1: the last step moved x1, -1: it moved x0
+    for _ in range(SWING_STEPS):  # Illinois false position, x0 inside (d < 0), x1 outside
+        xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, -1.0, d0 - d1)
+        xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
+        dm, pm = (v[:, 0] for v in measure(xm[:, None]))
+        dm = np.minimum(dm, 1.0)
+        out_side = dm > 0.0
+        d0 = np.where(out_side & (side > 0), 0.5 * d0, d0)  # an end kept twice: halve its value
+        d1 = np.where(~out_side & (side < 0), 0.5 * d1, d1)
+        x1, d1, p1 = (np.where(out_side, new, old) for new, old in ((xm, x1), (dm, d1), (pm, p1)))
+        x0, d0, p0 = (np.where(out_side, old, new) for new, old in ((xm, x0), (dm, d0), (pm, p0)))
+        side = np.where(out_side, 1.0, -1.0)
+    w = d0 / np.where(d0 == d1, -1.0, d0 - d1)  # where d crosses zero between the ends
+    swing = np.where(found, p0 + np.clip(w, 0.0, 1.0) * (p1 - p0), p1)
+    return np.where(np.isfinite(swing) & (np.abs(gain) > 0), swing, 0.0)
 
 
 def thd_small_signal(v_x_peak: np.ndarray, suppression: np.ndarray, nvt: float,

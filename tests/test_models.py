@@ -46,7 +46,7 @@ def test_nine_volt_stage_common_practice():
     assert 8.3e3 < one(r, "input_impedance") < 8.8e3
     assert 8.4 < -one(r, "gain") < 8.9  # common practice: 8.4-8.9 into 100k, not the hand estimate Rc/Re = 10
     unloaded = get_topology("divider_ce").evaluate(NINE_VOLT, DEVICE, Conditions(9.0, 0.0, math.inf))
-    assert 7.4 < one(unloaded, "swing_vpp") < 8.2  # common practice: clips near 8 Vpp unloaded
+    assert 7.4 < one(unloaded, "clip_vpp") < 8.2  # common practice: clips near 8 Vpp unloaded
 
 
 def test_degenerated_bias_point_worked_example():
@@ -168,7 +168,7 @@ def test_swing_follows_ac_load_line():
     op = r.operating_point
     rac = 1 / (1 / 10e3 + 1 / 22e3)
     expect = 2 * min(op["ic"][0] * rac, (op["vce"][0] - 0.2) * rac / (rac + 1e3))
-    assert one(r, "swing_vpp") == pytest.approx(expect, rel=1e-9)
+    assert one(r, "clip_vpp") == pytest.approx(expect, rel=1e-9)
 
 
 def test_second_harmonic_of_nearly_plain_junction():

@@ -20,7 +20,7 @@ from optimizer.errors import InputError, Problem
 Parts = dict[str, np.ndarray]
 CHUNK_FAST = 16384  # candidates per block (keeps the working set in cache)
 CHUNK_FULL = 2048
-METRICS = ("gain", "gain_db", "swing_vpp", "input_impedance", "output_impedance", "supply_current",
+METRICS = ("gain", "gain_db", "swing_vpp", "clip_vpp", "input_impedance", "output_impedance", "supply_current",
            "f_low", "f_high", "thd", "noise_ein_v", "noise_figure_db", "q_power", "part_count")
 
 
@@ -115,7 +115,8 @@ class StageModel(Topology):
     @abstractmethod
     def _swing(self, p: Parts, device: Device, c: Conditions, b: Bias,
                mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
-        """swing_vpp (V) at the load and the largest Vce in operation (V)."""
+        """clip_vpp (V, the hard clip level at the load: 2*min of the AC load line's cutoff and
+        saturation limits) and the largest Vce in operation (V)."""
 
     @abstractmethod
     def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
@@ -205,10 +206,11 @@ class StageModel(Topology):
             w_mid = 2.0 * np.pi * math.sqrt(conditions.band[0] * conditions.band[1])
             z_in = np.hypot(mid["input_impedance"], 1.0 / (w_mid * p["c_in"]))
             z_out = np.hypot(mid["output_impedance"], 1.0 / (w_mid * p["c_out"]))
-            swing, vce_max = self._swing(p, device, conditions, b, mid)
+            clip, vce_max = self._swing(p, device, conditions, b, mid)
             gain = mid["gain"]
+            swing = physics.usable_swing(self._static_fn(p, device, conditions, b, nvt, b.beta), gain, 0.5 * clip)
             m: dict[str, np.ndarray] = {
-                "gain": gain, "gain_db": 20.0 * np.log10(np.abs(gain)), "swing_vpp": swing,
+                "gain": gain, "gain_db": 20.0 * np.log10(np.abs(gain)), "swing_vpp": swing, "clip_vpp": clip,
                 "input_impedance": z_in, "output_impedance": z_out,
                 "supply_current": b.op["supply_current"],
                 "thd": np.abs(sum(sign * physics.thd_small_signal(0.5 * conditions.signal_vpp * vx, sup, nvt, u)

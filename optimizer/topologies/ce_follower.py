@@ -128,10 +128,15 @@ class CEFollower(StageModel):
                                         vcb_ic=rc + re, vcb_ib=re, vcb_vbe=1.0, v_start=op["vbe"],
                                         iterations=physics.THD_ITERATIONS, **kw)
             v_e1 = re * (q1["ic"] + q1["ib"])
-            q2 = physics.solve_junction(c.supply - rc * q1["ic"] - v_e2_th, rc + device.RB, r_e2,
-                                        vcb0=rc * q1["ic"], vcb_ib=-(rc + device.RB), v_start=op["vbe2"],
+            # saturated, q1 takes no more collector current than keeps its collector at v_e1 + vce_sat
+            ic1 = np.minimum(q1["ic"], (c.supply - v_e1 - device.vce_sat) / rc)
+            q2 = physics.solve_junction(c.supply - rc * ic1 - v_e2_th, rc + device.RB, r_e2,
+                                        vcb0=rc * ic1, vcb_ib=-(rc + device.RB), v_start=op["vbe2"],
                                         iterations=physics.THD_ITERATIONS, **kw)
             v_c1 = np.maximum(c.supply - rc * (q1["ic"] + q2["ib"]), v_e1 + device.vce_sat)
-            v_e2 = np.minimum(v_e2_th + r_e2 * (q2["ic"] + q2["ib"]), v_c1 - device.RB * q2["ib"] - q2["vbe"])
+            # the follower cannot lift its emitter above its base less Vbe; cut off, the emitter
+            # rests at the Thevenin voltage of r_follower and the charged c_out (never below it)
+            v_e2 = np.minimum(v_e2_th + r_e2 * (q2["ic"] + q2["ib"]),
+                              np.maximum(v_c1 - device.RB * q2["ib"] - q2["vbe"], v_e2_th))
             return v_e2 - op["v_emitter2"]
         return out
