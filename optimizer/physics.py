@@ -211,8 +211,8 @@ class Network:
         """Capacitor c (F); at mid-band (ac False) a coupling/bypass one is a short, others open."""
         if ac:
             self._stamp(self.cap, a, b, c)
-        elif coupling:
-            self.admittance(a, b, np.full_like(np.asarray(c, dtype=float), G_SHORT))
+        elif coupling:  # a zero capacitor is absent
+            self.admittance(a, b, np.where(np.asarray(c, dtype=float) > 0, G_SHORT, 0.0))
 
     def vccs(self, p: str | None, n: str | None, cp: str | None, cn: str | None, g: np.ndarray) -> None:
         """Current g*(v_cp - v_cn) (A) flowing from node p through the source to node n."""

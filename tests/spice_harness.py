@@ -169,7 +169,7 @@ def spice_response(topology: str, parts: Mapping[str, float], model: Mapping[str
 # and by then the saturation's base current has recharged c_in and c_out (the output's mean
 # moved 0.2 V on feedback_ce-9V-A4-hfe400), so the transient read the peak-to-peak of a
 # stage already past the clip with a shifted bias, 10-15 % above the clip level.
-_HELD_CAPACITORS = ("c_in", "c_out", "c_emitter")  # coupling and bypass: a voltage source at their DC
+_HELD_CAPACITORS = ("c_in", "c_out", "c_emitter", "c_decouple")  # coupling and bypass: a voltage source at their DC
 _SWEEP_POINTS = 6001  # over +-1.5*supply/|gain| at the source: ~0.05 % of the supply per step at the load
 _CLIP_GAIN_FRACTION = 0.5  # clipping starts where the incremental gain falls below this share
 
@@ -314,3 +314,15 @@ def spice_thd(topology: str, parts: Mapping[str, float], model: Mapping[str, flo
     if abs(vpp / vpp_out - 1.0) > 0.02:
         vpp, thd = _thd_run(topology, parts, model, conditions, amplitude * vpp_out / vpp, frequency)
     return thd
+
+
+def spice_psrr(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+               conditions: Any, frequencies: tuple[float, ...]) -> list[float]:
+    """Supply rejection 20*log10(1/|V(out)/V(vcc)|) (dB) at each frequency (Hz), from .ac with
+    AC 1 on the supply source Vcc and the signal source's AC set to 0 (its resistance stays)."""
+    control = "alter @vsig[acmag] = 0\nalter @vcc[acmag] = 1\n"
+    for i, f in enumerate(frequencies):
+        control += (f"ac lin 1 {float(f)!r} {float(f)!r}\nlet r{i} = -20*log10(mag(v(out)/v(vcc)))\n"
+                    f"print r{i}\n")
+    scalars, _ = _simulate(topology, parts, model, conditions, control)
+    return _need(scalars, *(f"r{i}" for i in range(len(frequencies))))

@@ -91,17 +91,20 @@ class CEFollower(StageModel):
         return 2.0 * peak, vce_max
 
     def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool) -> physics.Network:
-        net = physics.Network(("in", "base", "bint", "emitter", "collector", "bint2", "emitter2", "out"),
-                              c.temperature)
-        add_divider_stage(net, p, ss, ac, r_source)
+                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
+        net, rail = self._new_network(("in", "base", "bint", "emitter", "collector", "bint2", "emitter2", "out"),
+                                      p, c, ac, supply)
+        add_divider_stage(net, p, ss, ac, r_source, rail)
         net.resistor("emitter", None, p["r_emitter"])
         net.resistor("collector", "bint2", ss[1]["rb"])
-        net.transistor("bint2", None, "emitter2", ss[1], ac)
+        net.transistor("bint2", rail, "emitter2", ss[1], ac)
         net.resistor("emitter2", None, p["r_follower"])
         net.capacitor("emitter2", "out", p["c_out"], ac, True)
         add_load(net, c, ac, load)
         return net
+
+    def _output_q(self, op: dict[str, np.ndarray]) -> np.ndarray:
+        return op["v_emitter2"]
 
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         op = b.op
