@@ -305,3 +305,35 @@ print inoise_total
     assert one(r, "gain") == pytest.approx(value("g"), rel=0.01)
     source = 4 * 1.380649e-23 * (temp + 273.15) * 600 * (20e3 - 20)  # ngspice includes Rs's own noise
     assert math.sqrt(one(r, "noise_ein_v") ** 2 + source) == pytest.approx(value("inoise_total"), rel=0.03)
+
+
+@pytest.mark.parametrize("name", sorted(DESIGNS))
+def test_capacitor_ratings_see_the_highest_rail(name):
+    # common practice: coupling and decoupling capacitors are rated for the full rail (at power-up,
+    # uncharged, with the output shorted); a bypass capacitor for the highest its node can reach,
+    # here the divider's open-circuit voltage at the highest supply
+    topo = get_topology(name)
+    c = Conditions(supply=9.0, source_impedance=600.0, load_impedance=100e3, supply_max=9.9)
+    r = topo.evaluate({**DESIGNS[name], "r_decouple": 220.0, "c_decouple": 220e-6}, DEVICE, c, full=False)
+    for cap in ("c_in", "c_out", "c_decouple"):
+        assert r.ratings[f"v_{cap}"][0] == pytest.approx(9.9)
+    if name == "divider_ce_split":
+        p = DESIGNS[name]
+        assert r.ratings["v_c_emitter"][0] == pytest.approx(9.9 * p["r_bottom"] / (p["r_top"] + p["r_bottom"]))
+        assert r.ratings["v_c_emitter"][0] > r.operating_point["v_e2"][0]
+    op = r.operating_point
+    assert r.ratings["p_r_decouple"][0] == pytest.approx(op["supply_current"][0] ** 2 * 220.0)
+
+
+@pytest.mark.parametrize("name", sorted(DESIGNS))
+def test_decoupling_drop_is_counted_in_the_bias(name):
+    # Ohm's law at the local supply node: Vloc = Vcc - r_decouple * (the stage's current), and the
+    # stage then biases as if powered from Vloc directly
+    topo = get_topology(name)
+    c = Conditions(supply=9.0, source_impedance=600.0, load_impedance=100e3)
+    op = topo.operating_point({**DESIGNS[name], "r_decouple": 470.0, "c_decouple": 100e-6}, DEVICE, c)
+    v_loc = op["v_supply_local"][0]
+    assert v_loc == pytest.approx(9.0 - 470.0 * op["supply_current"][0], abs=1e-4)  # the secant's 0.1 mV
+    direct = topo.operating_point(DESIGNS[name], DEVICE, dataclasses.replace(c, supply=v_loc))
+    assert op["ic"][0] == pytest.approx(direct["ic"][0], rel=1e-9)
+    assert op["v_out_q"][0] == pytest.approx(direct["v_out_q"][0], rel=1e-9)

@@ -41,9 +41,9 @@ class Conditions:
     ripple_frequency: float = 100.0  # Hz, where psrr_db is judged besides mid-band
 
     @property
-    def rail_max(self) -> float:
-        """Highest supply voltage the parts can see (V)."""
-        return self.supply if self.supply_max is None else max(self.supply, self.supply_max)
+    def rail_max(self) -> float | np.ndarray:
+        """Highest supply voltage the parts can see (V; per candidate when supply is an array)."""
+        return self.supply if self.supply_max is None else np.maximum(self.supply, self.supply_max)
 
 
 @dataclass
@@ -167,7 +167,15 @@ class StageModel(Topology):
 
     @abstractmethod
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
-        """p_<resistor> (W) and v_<capacitor> (V)."""
+        """p_<resistor> (W, I^2 R at the evaluated supply) and v_<capacitor> (V, the largest
+        voltage the capacitor can see: at c.rail_max, at power-up, with the output shorted).
+
+        The rule per role: a coupling capacitor (c_in, c_out) and c_decouple can see the
+        full rail (at power-up, uncharged, one side at a node that may sit at the rail, the
+        other shorted or at ground); a bypass capacitor (c_emitter) sees its node's DC, and
+        the emitter node never rises above the base, whose highest voltage is the bias
+        divider's open-circuit voltage at rail_max (the transistor only pulls the base down).
+        """
 
     @abstractmethod
     def _output_q(self, op: dict[str, np.ndarray]) -> np.ndarray:
@@ -287,6 +295,8 @@ class StageModel(Topology):
             if thd_solve:
                 m["thd"] = self._thd_static(p, device, conditions, b, nvt, b.beta, gain)
             ratings = self._ratings(p, conditions, b)
+            ratings["p_r_decouple"] = b.op["supply_current"] ** 2 * p["r_decouple"]
+            ratings["v_c_decouple"] = np.where(p["c_decouple"] > 0, conditions.rail_max, 0.0) + 0.0 * gain
         ratings["vce_max"] = vce_max
         return StageResult({k: m[k] for k in METRICS}, b.op, ratings)
 

@@ -111,7 +111,7 @@ class CEFollower(StageModel):
         return {**divider_ratings(p, c, op),
                 "p_r_follower": op["v_emitter2"] ** 2 / p["r_follower"],
                 "p_q1": op["vce"] * op["ic"], "p_q2": op["vce2"] * op["ic2"],
-                "v_c_out": op["v_emitter2"]}
+                "v_c_out": np.full_like(op["ic"], c.rail_max)}
 
     def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
                       i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:

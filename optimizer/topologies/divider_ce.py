@@ -90,11 +90,12 @@ class DividerCE(StageModel):
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         op = b.op
         ie = op["ic"] + op["ib"]
-        r = {**divider_ratings(p, c, op), "v_c_out": op["v_collector"]}
-        r.update(self._extra_ratings(p, op, ie))
+        r = {**divider_ratings(p, c, op), "v_c_out": np.full_like(ie, c.rail_max)}
+        r.update(self._extra_ratings(p, c, op, ie))
         return r
 
-    def _extra_ratings(self, p: Parts, op: dict[str, np.ndarray], ie: np.ndarray) -> dict[str, np.ndarray]:
+    def _extra_ratings(self, p: Parts, c: Conditions, op: dict[str, np.ndarray],
+                       ie: np.ndarray) -> dict[str, np.ndarray]:
         return {}
 
     def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
@@ -149,8 +150,10 @@ def add_divider_stage(net: physics.Network, p: Parts, ss: list[dict[str, np.ndar
 
 
 def divider_ratings(p: Parts, c: Conditions, op: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-    """Resistor powers (W) of the divider stage and the DC voltage on c_in (V)."""
+    """Resistor powers (W) of the divider stage and the largest voltage on c_in (V, the rail at
+    its maximum: see StageModel._ratings)."""
     vcc = op["v_supply_local"]
     return {"p_r_top": (vcc - op["v_base"]) ** 2 / p["r_top"], "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
             "p_r_collector": (vcc - op["v_collector"]) ** 2 / p["r_collector"],
-            "p_r_emitter": (op["ic"] + op["ib"]) ** 2 * p["r_emitter"], "v_c_in": op["v_base"]}
+            "p_r_emitter": (op["ic"] + op["ib"]) ** 2 * p["r_emitter"],
+            "v_c_in": np.full_like(vcc, c.rail_max)}

@@ -88,7 +88,8 @@ class FeedbackCE(StageModel):
         op = b.op
         ie = op["ic"] + op["ib"]
         return {"p_r_feedback": op["ib"] ** 2 * p["r_feedback"], "p_r_collector": ie ** 2 * p["r_collector"],
-                "p_r_emitter": ie ** 2 * p["r_emitter"], "v_c_in": op["v_base"], "v_c_out": op["v_collector"]}
+                "p_r_emitter": ie ** 2 * p["r_emitter"],
+                "v_c_in": np.full_like(ie, c.rail_max), "v_c_out": np.full_like(ie, c.rail_max)}
 
     def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
                       i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
