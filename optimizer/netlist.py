@@ -19,6 +19,7 @@ from optimizer.errors import InputError, Problem
 from optimizer.units import format_value
 
 MODEL_KEYS: tuple[str, ...] = ("IS", "BF", "NF", "VAF", "RB", "CJE", "CJC", "TF")
+OPTIONAL_MODEL_KEYS: tuple[str, ...] = ("KF", "AF")  # flicker noise, written when given
 
 # Stand-in for a zero source impedance (SPICE needs a finite resistor), ohm.
 ZERO_SOURCE_RESISTANCE = 1e-3
@@ -120,7 +121,7 @@ def _check_parts(topology: str, parts: Mapping[str, float]) -> None:
 
 def _check_model(model: Mapping[str, float]) -> None:
     problems = [Problem(f"model.{key}", model.get(key), "a finite number")
-                for key in MODEL_KEYS
+                for key in MODEL_KEYS + tuple(k for k in OPTIONAL_MODEL_KEYS if k in model)
                 if not isinstance(model.get(key), (int, float)) or not math.isfinite(model[key])]
     if problems:
         raise InputError(problems, title=f"device model needs {', '.join(MODEL_KEYS)}")
@@ -206,7 +207,7 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
     lines.append(f"Rload out 0 {(load if math.isfinite(load) else OPEN_LOAD_RESISTANCE)!r}")
     if load_c > 0:
         lines.append(f"Cload out 0 {load_c!r}")
-    params = " ".join(f"{key}={float(model[key])!r}" for key in MODEL_KEYS)
+    params = " ".join(f"{key}={float(model[key])!r}" for key in MODEL_KEYS + OPTIONAL_MODEL_KEYS if key in model)
     lines.append(f".model {model_name} NPN({params})")
     if analyses:
         lines.append(analyses.rstrip("\n"))

@@ -2,8 +2,8 @@
 nodal analysis, frequency-response corners, noise, swing and distortion.
 
 Everything works on numpy arrays with a leading candidate axis (SI units). The
-transistor is the SPICE Gummel-Poon model with only IS, BF, NF, VAF, RB, CJE, CJC and
-TF set (BR=1, IKF=inf, ISE=0, VAR=inf, RE=RC=0, VJ=0.75 V, MJ=0.33, FC=0.5), in the
+transistor is the SPICE Gummel-Poon model with only IS, BF, NF, VAF, RB, CJE, CJC,
+TF and the flicker-noise KF, AF set (BR=1, IKF=inf, ISE=0, VAR=inf, RE=RC=0, VJ=0.75 V, MJ=0.33, FC=0.5), in the
 forward-active region; a candidate outside it is flagged, not modelled.
 """
 from __future__ import annotations
@@ -25,6 +25,8 @@ SWEEP = (0.1, 1e8)  # Hz, span of the frequency-response search
 COARSE_POINTS = 10  # log-spaced points over SWEEP (one per decade)
 REFINE_STEPS = 4  # false-position steps per -3 dB crossing (see minus_3db_corners)
 NOISE_POINTS = 6  # log-spaced frequencies for the in-band noise integral
+NOISE_POINTS_FLICKER = 12  # the same where a 1/f source bends the input noise inside the band
+NOISE_REFERENCE_K = 290.0  # K, standard source temperature of the noise figure
 NEWTON_ITERATIONS = 8
 THD_SAMPLES = 16  # samples per period of the quasi-static distortion solve (harmonics 2..7)
 THD_ITERATIONS = 6  # Newton steps per sample, warm-started at the quiescent Vbe
@@ -117,14 +119,15 @@ def small_signal(bias: dict[str, np.ndarray], device: Device, beta: np.ndarray, 
     """Hybrid-pi parameters at a bias point (from :func:`solve_junction`).
 
     gm (S, dIc/dVb'e at fixed Vce), gpi (S, dIb/dVb'e), go (S, dIc/dVce), cpi, cmu (F)
-    rb (ohm, base spreading resistance RB), and the DC ic, ib (A) for the shot noise.
+    rb (ohm, base spreading resistance RB), the DC ic, ib (A) for the shot noise, and
+    flicker = KF*|Ib|^AF (A^2, the base-current flicker PSD times f).
     """
     e, vbe, vcb = bias["i_forward"], bias["vbe"], bias["vcb"]
     inv_vaf = device.inv_vaf
     gbe = (e + i_s) / nvt
     go = e * inv_vaf
     return {"gm": gbe * (1.0 + vcb * inv_vaf) - go, "gpi": gbe / beta, "go": go,
-            "ic": bias["ic"], "ib": bias["ib"],
+            "ic": bias["ic"], "ib": bias["ib"], "flicker": device.KF * np.abs(bias["ib"]) ** device.AF,
             "cpi": device.TF * gbe + depletion_capacitance(device.CJE, vbe),
             "cmu": depletion_capacitance(device.CJC, -vcb),
             "rb": np.full_like(e, device.RB)}
@@ -234,13 +237,18 @@ class Network:
         self.vccs(c, e, b, e, ss["gm"])
         self.noise.append((c, e, "shot", ss["ic"]))
         self.noise.append((b, e, "shot", ss["ib"]))
+        if np.any(ss["flicker"] > 0):  # SPICE: KF*Ib^AF/f between the internal base and the emitter
+            self.noise.append((b, e, "flicker", ss["flicker"]))
 
     def noise_sources(self) -> list[tuple[str | None, str | None, np.ndarray]]:
-        """Noise current sources (from node, to node, PSD in A^2/Hz): resistors' thermal, junctions' shot."""
+        """Noise current sources (from node, to node, PSD in A^2/Hz): resistors' thermal, junctions'
+        shot and flicker (the last needs the frequencies of :meth:`at`)."""
         out = []
         for a, b, kind, x in self.noise:
             if kind == "thermal":
                 psd = np.where(x > 0, thermal_noise(np.where(x > 0, x, 1.0), self.temp_c), 0.0)
+            elif kind == "flicker":
+                psd = x / (np.abs(np.imag(self.s)) / (2.0 * np.pi))
             else:
                 psd = shot_noise(x)
             out.append((a, b, psd))
@@ -474,19 +482,21 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
 # ----------------------------------------------------------------------------- noise
 
 def noise_integrals(network: Network, out_node: str, source_node: str,
-                    r_source: np.ndarray, band: tuple[float, float],
-                    temp_c: float) -> tuple[np.ndarray, np.ndarray]:
-    """Equivalent input noise (V rms over band, without the source's own noise) and NF (dB).
+                    r_source: np.ndarray, band: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+    """Equivalent input noise (V rms over band, without the source's own noise) and NF (dB,
+    referred to the standard 290 K source: 10*log10(1 + ein^2/(4k*290*r_source*B))).
 
     ``network`` is the stage network (AC) with the source resistance (noiseless) and the
     load in place, element values 1-D over candidates, evaluated at log-spaced frequencies
     over the band (arrays (frequencies, candidates)); its recorded noise current
     sources (resistors, shot noise) are summed at the output through the adjoint solve,
     which gives every node's transimpedance z (V/A) to out_node at once. The source is a
-    Norton current vs/r_source into source_node, so the gain is z[source_node]/r_source
-    and the source's own noise is 4kT*r_source. Matches SPICE .noise input-referred total.
+    Norton current vs/r_source into source_node, so the gain is z[source_node]/r_source.
+    The stage's own sources are at the network's temperature; flicker sources (1/f) are integrated on a denser
+    grid. Matches SPICE .noise input-referred total.
     """
-    f = np.geomspace(band[0], band[1], NOISE_POINTS)[:, None]
+    flicker = any(kind == "flicker" for _, _, kind, _ in network.noise)
+    f = np.geomspace(band[0], band[1], NOISE_POINTS_FLICKER if flicker else NOISE_POINTS)[:, None]
     net = network.at(2j * np.pi * f)
     z = net.transposed().solve({out_node: np.ones(1)})
     gain2 = _magnitude2(z[source_node]) / r_source ** 2
@@ -496,8 +506,7 @@ def noise_integrals(network: Network, out_node: str, source_node: str,
         out = out + psd * _magnitude2(h)
     in_psd = out / gain2
     ein2 = np.sum(power_law_segments(f, in_psd, axis=0), axis=0)
-    four_kt = 4.0 * BOLTZMANN * (temp_c + KELVIN_OFFSET)
-    source2 = four_kt * r_source * (band[1] - band[0])
+    source2 = 4.0 * BOLTZMANN * NOISE_REFERENCE_K * r_source * (band[1] - band[0])
     return np.sqrt(ein2), 10.0 * np.log10(1.0 + ein2 / source2)
 
 

@@ -307,7 +307,7 @@ class StageModel(Topology):
         # contiguous: numpy's inner loops then run over thousands of values, not a few frequencies.
         net = self._network(p, c, b.small_signal, True, r_source, True)
         f_low, f_high = physics.minus_3db_corners(self._response(net, r_source), gain)
-        ein, nf = physics.noise_integrals(net, "out", "in", r_source, c.band, c.temperature)
+        ein, nf = physics.noise_integrals(net, "out", "in", r_source, c.band)
         return {"f_low": f_low, "f_high": f_high, "noise_ein_v": ein, "noise_figure_db": nf,
                 **self._psrr(p, c, b, r_source)}
 
