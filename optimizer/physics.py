@@ -31,8 +31,8 @@ NEWTON_ITERATIONS = 8
 THD_SAMPLES = 16  # samples per period of the quasi-static distortion solve (harmonics 2..7)
 THD_ITERATIONS = 6  # Newton steps per sample, warm-started at the quiescent Vbe
 SWING_TOLERANCE = 0.1  # usable swing: both peaks within 10 % of the linear gain times the drive
-SWING_GRID = (0.5, 0.8, 1.0, 1.5, 2.5)  # multiples of the clip-level drive scanned for the first deviation
-SWING_STEPS = 4  # Illinois false-position steps on the drive amplitude after the scan
+SWING_GRID = (0.8, 1.0, 1.6)  # multiples of the clip-level drive scanned for the first deviation
+SWING_STEPS = 3  # Illinois false-position steps on the drive amplitude after the scan
 MAX_STEP = 0.1  # V, largest Newton step in Vbe (a guard; steps from above are about NF*VT)
 NEWTON_TOL = 1e-7  # V, residual of the base-loop equation counted as converged
 

@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 
-from optimizer.netlist import mid_band_frequency, spice_netlist
+from optimizer.netlist import mid_band_frequency, nominal_temperature, spice_netlist
 
 NGSPICE = shutil.which("ngspice")
 TIMEOUT_S = 60.0
@@ -194,7 +194,7 @@ def _capacitor_nodes(netlist: str) -> set[str]:
             for node in f[1:3] if node != "0"}
 
 
-def _held_transfer(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+def held_transfer(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
                    conditions: Any) -> tuple[np.ndarray, np.ndarray, complex]:
     """Static transfer curve (source EMF V, load V) with the capacitors holding their DC, and
     the mid-band .ac gain.
@@ -220,7 +220,13 @@ def _held_transfer(topology: str, parts: Mapping[str, float], model: Mapping[str
 
 def spice_clip(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
                conditions: Any) -> float:
-    """Hard clip level at the load, V peak-to-peak, on the static transfer curve.
+    """Hard clip level at the load, V peak-to-peak, on the static transfer curve (:func:`clip_of`)."""
+    v_in, v_out, _ = held_transfer(topology, parts, model, conditions)
+    return clip_of(topology, v_in, v_out, float(conditions.supply))
+
+
+def clip_of(topology: str, v_in: np.ndarray, v_out: np.ndarray, supply: float) -> float:
+    """Clip level (V peak-to-peak) of a held-capacitor transfer curve.
 
     Clipping starts at the smallest input, of either polarity, where the incremental gain
     dVout/dVsig has fallen below half its value at the operating point (or changed sign);
@@ -229,29 +235,32 @@ def spice_clip(topology: str, parts: Mapping[str, float], model: Mapping[str, fl
     level of the models (clip_vpp); a softly compressing side (degenerated cutoff)
     contributes the level it has reached by then.
     """
-    v_in, v_out, _ = _held_transfer(topology, parts, model, conditions)
     slope = np.gradient(v_out, v_in)
     centre = int(np.argmin(np.abs(v_in)))
     clipped = slope / slope[centre] < _CLIP_GAIN_FRACTION
     right = np.nonzero(clipped[centre:])[0]
     left = np.nonzero(clipped[:centre + 1])[0]
     if right.size == 0 or left.size == 0:
-        raise SpiceError(f"{topology}: no clipping found up to an output of {float(conditions.supply)} V")
+        raise SpiceError(f"{topology}: no clipping found up to an output of {supply} V")
     amplitude = min(v_in[centre + right[0]], -v_in[left[-1]])
     return float(abs(np.interp(amplitude, v_in, v_out) - np.interp(-amplitude, v_in, v_out)))
 
 
 def spice_swing(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                conditions: Any, tolerance: float = 0.1) -> float:
-    """Usable swing at the load, V peak-to-peak, by the 10 % rule (the models' swing_vpp).
+                conditions: Any) -> float:
+    """Usable swing at the load, V peak-to-peak, by the 10 % rule (:func:`swing_of`)."""
+    v_in, v_out, h = held_transfer(topology, parts, model, conditions)
+    return swing_of(topology, v_in, v_out, h)
 
-    On the held-capacitor static transfer curve, the output peaks of a sine of amplitude a
-    at the source are the curve at +a and -a (less the quiescent output); the swing is the
-    peak-to-peak at the smallest a where either peak deviates by more than ``tolerance``
-    from the linear mid-band gain (the .ac gain, signed by its real part) times +-a,
-    interpolated linearly between sweep points.
+
+def swing_of(topology: str, v_in: np.ndarray, v_out: np.ndarray, h: complex, tolerance: float = 0.1) -> float:
+    """Usable swing (V peak-to-peak, the models' swing_vpp) of a held-capacitor transfer curve.
+
+    The output peaks of a sine of amplitude a at the source are the curve at +a and -a (less
+    the quiescent output); the swing is the peak-to-peak at the smallest a where either peak
+    deviates by more than ``tolerance`` from the linear mid-band gain h (the .ac gain, signed
+    by its real part) times +-a, interpolated linearly between sweep points.
     """
-    v_in, v_out, h = _held_transfer(topology, parts, model, conditions)
     gain = math.copysign(abs(h), h.real)
     centre = int(np.argmin(np.abs(v_in)))
     q = np.interp(0.0, v_in, v_out)
@@ -262,7 +271,7 @@ def spice_swing(topology: str, parts: Mapping[str, float], model: Mapping[str, f
     ignore = a < 1e-3 * a[-1]  # the curve's own rounding swamps the ratio at the smallest drives
     over = np.nonzero((dev > 0.0) & ~ignore)[0]
     if over.size == 0:
-        raise SpiceError(f"{topology}: no 10 % deviation found up to a drive of {a[-1]} V")
+        raise SpiceError(f"{topology}: no {tolerance:.0%} deviation found up to a drive of {a[-1]} V")
     i = over[0]
     w = -dev[i - 1] / (dev[i] - dev[i - 1])
     pp = np.abs(up - down)
@@ -326,3 +335,24 @@ def spice_psrr(topology: str, parts: Mapping[str, float], model: Mapping[str, fl
                     f"print r{i}\n")
     scalars, _ = _simulate(topology, parts, model, conditions, control)
     return _need(scalars, *(f"r{i}" for i in range(len(frequencies))))
+
+
+NF_REFERENCE_K = 290.0  # K, the standard noise-figure source temperature
+
+
+def spice_noise_figure(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+                       conditions: Any) -> float:
+    """Noise figure (dB) over the band referred to a source at the standard 290 K, the stage at
+    the circuit temperature T: 10*log10(1 + stage/(source * 290 K/T)) of input-referred noise
+    powers integrated by .noise, the source's own from a run with Rsource noisy (total - stage;
+    ngspice 39 puts every resistor's thermal noise at the circuit temperature, ignoring an
+    instance ``temp``, so the source's power, exactly proportional to T, is scaled to 290 K),
+    the stage alone from :func:`spice_noise` (Rsource noiseless)."""
+    low, high = conditions.band
+    control = (f"noise v(out) vsig dec 50 {float(low)!r} {float(high)!r}\n"
+               "let total = inoise_total\nprint total")
+    scalars, _ = _simulate(topology, parts, model, conditions, control)
+    (total,) = _need(scalars, "total")
+    stage = spice_noise(topology, parts, model, conditions)
+    source_290k = (total ** 2 - stage ** 2) * NF_REFERENCE_K / (nominal_temperature(conditions) + 273.15)
+    return 10.0 * math.log10(1.0 + stage ** 2 / source_290k)

@@ -337,3 +337,20 @@ def test_decoupling_drop_is_counted_in_the_bias(name):
     direct = topo.operating_point(DESIGNS[name], DEVICE, dataclasses.replace(c, supply=v_loc))
     assert op["ic"][0] == pytest.approx(direct["ic"][0], rel=1e-9)
     assert op["v_out_q"][0] == pytest.approx(direct["v_out_q"][0], rel=1e-9)
+
+
+@pytest.mark.parametrize("name", sorted(DESIGNS))
+def test_usable_swing_is_the_ten_percent_point_of_the_static_transfer(name):
+    # the definition (DESIGN.md) applied by brute force: a dense sweep of the drive on the model's own
+    # static transfer, the first amplitude where either peak is 10 % off the linear gain times the drive;
+    # the search by scan and false position must land on it (ngspice agreement: tests/spice_agreement.py)
+    topo = get_topology(name)
+    c = Conditions(supply=12.0, source_impedance=600.0, load_impedance=10e3)
+    r = topo.evaluate(DESIGNS[name], DEVICE, c, full=False)
+    gain, clip = one(r, "gain"), one(r, "clip_vpp")
+    a = np.linspace(0.02, 3.0, 30001) * clip / abs(gain)
+    up = topo.static_transfer(DESIGNS[name], DEVICE, c, a)[0]
+    down = topo.static_transfer(DESIGNS[name], DEVICE, c, -a)[0]
+    deviation = np.maximum(np.abs(up / (gain * a) - 1.0), np.abs(down / (-gain * a) - 1.0))
+    first = int(np.argmax(deviation > 0.1))
+    assert one(r, "swing_vpp") == pytest.approx(abs(up[first] - down[first]), rel=2e-3)
