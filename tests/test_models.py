@@ -354,3 +354,19 @@ def test_usable_swing_is_the_ten_percent_point_of_the_static_transfer(name):
     deviation = np.maximum(np.abs(up / (gain * a) - 1.0), np.abs(down / (-gain * a) - 1.0))
     first = int(np.argmax(deviation > 0.1))
     assert one(r, "swing_vpp") == pytest.approx(abs(up[first] - down[first]), rel=2e-3)
+
+
+@pytest.mark.parametrize("name", sorted(DESIGNS))
+def test_per_candidate_supply_matches_one_supply_at_a_time(name):
+    # supply corners arrive as one supply per candidate: each must give what that supply alone gives
+    topo = get_topology(name)
+    supplies = np.array([8.5, 9.0, 9.5])
+    parts = {**{k: np.full(3, v) for k, v in DESIGNS[name].items()}, "r_decouple": np.array([0.0, 330.0, 330.0]),
+             "c_decouple": np.full(3, 220e-6)}
+    batch = topo.evaluate(parts, DEVICE, Conditions(supplies, 600.0, 10e3, supply_max=9.5))
+    for i, s in enumerate(supplies):
+        alone = topo.evaluate({k: v[i:i + 1] for k, v in parts.items()}, DEVICE, Conditions(s, 600.0, 10e3, supply_max=9.5))
+        for k in ("swing_vpp", "gain", "psrr_db", "noise_figure_db", "emitter_voltage"):
+            # rel 1e-6: a batch holding a decoupling RC puts r_decouple = 0 in as physics.G_SHORT
+            assert batch.metrics[k][i] == pytest.approx(alone.metrics[k][0], rel=1e-6)
+    assert np.allclose(batch.ratings["v_c_in"], 9.5)

@@ -221,7 +221,7 @@ class StageModel(Topology):
         i_s = float(saturation_current(device.IS, conditions.temperature))
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             b = self._bias(p, device, conditions, beta, nvt, i_s)
-            v_local = np.full(beta.shape, float(conditions.supply))
+            v_local = np.broadcast_to(np.asarray(conditions.supply, dtype=float), beta.shape).copy()
             r_dec = p["r_decouple"]
             if np.any(r_dec > 0):
                 # The local supply V = Vcc - r_decouple*I(V), with I the stage's current at V.
