@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import csv
 import functools
+import math
 import os
 from dataclasses import dataclass
 from functools import cached_property
@@ -38,6 +39,21 @@ def _cell_quantity(unit: str, *, positive: bool = True) -> Callable[[str, str], 
         value = parse_quantity(text, unit, where=where)
         if positive and not value > 0:
             raise InputError.single(where, text, f"a value above zero, in {unit}")
+        return value
+
+    return parse
+
+
+def _cell_optional_quantity(unit: str) -> Callable[[str, str], float]:
+    """Parser for an optional quantity >= 0 in ``unit`` (SI, no prefix); an empty cell is NaN (not given)."""
+    required = _cell_quantity(unit, positive=False)
+
+    def parse(text: str, where: str) -> float:
+        if not text.strip():
+            return math.nan
+        value = required(text, where)
+        if value < 0:
+            raise InputError.single(where, text, f"zero or a positive value, in {unit}, or empty")
         return value
 
     return parse
@@ -142,11 +158,14 @@ _TRANSISTOR_COLUMNS: dict[str, Callable] = {
     "vce_sat": _cell_quantity("V"),
     "vceo_max": _cell_quantity("V"),
     "p_max": _cell_quantity("W"),
+    "KF": _cell_optional_quantity(""),  # SPICE flicker-noise coefficient (empty or 0: none)
+    "AF": _cell_optional_quantity(""),  # SPICE flicker-noise exponent (empty: 1)
     "description": _cell_optional_text,
     "unit_price": _cell_quantity(None, positive=False),
     "stock_qty": _cell_stock,
 }
 _META_KEYS = ("name", "description", "currency", "real_stock")
+_OPTIONAL_COLUMNS = frozenset({"KF", "AF"})  # may be left out of the header
 
 
 def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) -> tuple[pd.DataFrame, list[Problem]]:
@@ -160,7 +179,7 @@ def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) 
                 problems.append(Problem(f"{label} line 1, column {name}", name,
                                         "a known column: " + ", ".join(columns)))
         for name in columns:
-            if name not in header:
+            if name not in header and name not in _OPTIONAL_COLUMNS:
                 problems.append(Problem(f"{label} line 1, column {name}", None,
                                         f"a column named {name!r} (required: {', '.join(columns)})"))
         records: list[dict] = []

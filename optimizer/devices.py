@@ -1,8 +1,9 @@
 """Transistor parameters and their temperature-dependent relations (SI units).
 
 A :class:`Device` carries the catalog's ratings and the SPICE Gummel-Poon
-parameters that the analytic models use (IS, BF, NF, VAF, RB, CJE, CJC, TF; the
-others at their SPICE defaults). Temperatures are in degrees Celsius.
+parameters that the analytic models use (IS, BF, NF, VAF, RB, CJE, CJC, TF, and the
+optional flicker-noise KF, AF; the others at their SPICE defaults). Temperatures are in
+degrees Celsius.
 """
 from __future__ import annotations
 
@@ -23,6 +24,7 @@ SPICE_EG = 1.11  # eV, SPICE default energy gap
 HFE_TEMPCO = 0.005  # per kelvin, common-practice rise of hFE with temperature
 
 SPICE_KEYS = ("IS", "BF", "NF", "VAF", "RB", "CJE", "CJC", "TF")
+FLICKER_KEYS = ("KF", "AF")  # optional SPICE flicker-noise parameters (KF 0 = no flicker noise)
 
 
 @dataclass(frozen=True)
@@ -45,6 +47,8 @@ class Device:
     vce_sat: float  # V
     vceo_max: float  # V
     p_max: float  # W
+    KF: float = 0.0  # SPICE flicker-noise coefficient: base-current PSD KF*Ib^AF/f (A^2/Hz); 0 = none
+    AF: float = 1.0  # SPICE flicker-noise exponent
 
     @classmethod
     def from_row(cls, row: Mapping) -> "Device":
@@ -54,7 +58,8 @@ class Device:
         where = f"transistor {row.get('id', '?')!s}"
         for f in fields(cls):
             if f.name not in row or row[f.name] is None or (isinstance(row[f.name], float) and math.isnan(row[f.name])):
-                problems.append(Problem(f"{where}.{f.name}", row.get(f.name), "a value is required"))
+                if f.name not in FLICKER_KEYS:  # those keep their defaults (no flicker noise)
+                    problems.append(Problem(f"{where}.{f.name}", row.get(f.name), "a value is required"))
                 continue
             if f.name in ("id", "polarity"):
                 values[f.name] = str(row[f.name]).strip()
@@ -69,7 +74,7 @@ class Device:
             for name in ("hfe_min", "hfe_typ", "hfe_max", "IS", "BF", "NF", "vceo_max", "p_max"):
                 if not values[name] > 0:
                     problems.append(Problem(f"{where}.{name}", values[name], "a positive number"))
-            for name in ("RB", "CJE", "CJC", "TF", "vce_sat", "VAF"):
+            for name in ("RB", "CJE", "CJC", "TF", "vce_sat", "VAF", *(k for k in FLICKER_KEYS if k in values)):
                 if values[name] < 0:
                     problems.append(Problem(f"{where}.{name}", values[name], "zero or a positive number"))
             if not problems and not values["hfe_min"] <= values["hfe_typ"] <= values["hfe_max"]:
@@ -83,7 +88,7 @@ class Device:
     @classmethod
     def from_record(cls, transistor: Mapping) -> "Device":
         """Rebuild a device from a candidate record's "transistor" block (id, polarity, hfe_min,
-        hfe_typ, hfe_max, vce_sat, vceo_max, p_max and model{IS..TF}), without the catalog."""
+        hfe_typ, hfe_max, vce_sat, vceo_max, p_max and model{IS..TF, optional KF, AF}), without the catalog."""
         if not isinstance(transistor, Mapping):
             raise InputError.single("transistor", transistor, "a mapping (the candidate's transistor block)",
                                     title="incomplete candidate")
@@ -91,17 +96,18 @@ class Device:
         if not isinstance(model, Mapping):
             raise InputError.single("transistor.model", model, "a mapping with " + ", ".join(SPICE_KEYS),
                                     title="incomplete candidate")
-        top = [f.name for f in fields(cls) if f.name not in SPICE_KEYS]
+        top = [f.name for f in fields(cls) if f.name not in SPICE_KEYS + FLICKER_KEYS]
         missing = [Problem(f"transistor.{k}", None, "a value is required") for k in top if k not in transistor]
         missing += [Problem(f"transistor.model.{k}", None, "a value is required")
                     for k in SPICE_KEYS if k not in model]
         if missing:
             raise InputError(missing, title="incomplete candidate")
-        return cls.from_row({**{k: transistor[k] for k in top}, **{k: model[k] for k in SPICE_KEYS}})
+        return cls.from_row({**{k: transistor[k] for k in top},
+                             **{k: model[k] for k in SPICE_KEYS + FLICKER_KEYS if k in model}})
 
     def spice_model(self) -> dict[str, float]:
-        """SPICE .model parameters (keys IS BF NF VAF RB CJE CJC TF)."""
-        return {k: float(getattr(self, k)) for k in SPICE_KEYS}
+        """SPICE .model parameters (keys IS BF NF VAF RB CJE CJC TF KF AF)."""
+        return {k: float(getattr(self, k)) for k in SPICE_KEYS + FLICKER_KEYS}
 
     @property
     def inv_vaf(self) -> float:

@@ -5,7 +5,8 @@ tied to the part roles of DESIGN.md (``Rr_top``, ``Cc_in``, ``Qq1``, ...) and va
 written as plain numbers (``repr`` of the float, SI units, no prefixes) so a reader can check
 them against the candidate. Nodes: ``vcc``, ``sig`` (ideal signal source), ``src`` (after the
 source resistance, feeding ``c_in``), ``base``, ``collector``, ``emitter``, ``e2`` (split
-emitter), ``emitter2`` (follower emitter), ``out`` (the load), ``0`` (ground).
+emitter), ``emitter2`` (follower emitter), ``out`` (the load), ``0`` (ground), and with a
+supply decoupling RC ``vloc`` (the stage's local supply, behind ``r_decouple``).
 """
 from __future__ import annotations
 
@@ -18,6 +19,7 @@ from optimizer.errors import InputError, Problem
 from optimizer.units import format_value
 
 MODEL_KEYS: tuple[str, ...] = ("IS", "BF", "NF", "VAF", "RB", "CJE", "CJC", "TF")
+OPTIONAL_MODEL_KEYS: tuple[str, ...] = ("KF", "AF")  # flicker noise, written when given
 
 # Stand-in for a zero source impedance (SPICE needs a finite resistor), ohm.
 ZERO_SOURCE_RESISTANCE = 1e-3
@@ -74,6 +76,11 @@ _TRANSISTORS: dict[str, tuple[tuple[str, str, str, str], ...]] = {
 # Parts that may be zero (a short) in a topology; all others must be > 0.
 _MAY_BE_ZERO: dict[str, frozenset[str]] = {"feedback_ce": frozenset({"r_emitter"})}
 
+# Optional supply decoupling RC of every topology (absent or 0: the stage sits on the rail).
+# When r_decouple > 0 every element returning to ``vcc`` moves to the local node ``vloc``.
+SUPPLY_ELEMENTS: tuple[tuple[str, str], ...] = (("r_decouple", "Rr_decouple vcc vloc"),
+                                                ("c_decouple", "Cc_decouple vloc 0"))
+
 TOPOLOGIES: tuple[str, ...] = tuple(_ELEMENTS)
 
 
@@ -98,8 +105,14 @@ def _check_parts(topology: str, parts: Mapping[str, float]) -> None:
         if not (isinstance(value, (int, float)) and math.isfinite(value) and floor_ok):
             bound = ">= 0" if role in _MAY_BE_ZERO.get(topology, ()) else "> 0"
             problems.append(Problem(f"parts.{role}", value, f"a finite number {bound} (SI units)"))
+    for role, _ in SUPPLY_ELEMENTS:
+        value = parts.get(role, 0.0)
+        if not (isinstance(value, (int, float)) and math.isfinite(value) and value >= 0):
+            problems.append(Problem(f"parts.{role}", value, "a finite number >= 0 (SI units; 0 = none)"))
+    if parts.get("r_decouple", 0.0) > 0 and not parts.get("c_decouple", 0.0) > 0:
+        problems.append(Problem("parts.c_decouple", parts.get("c_decouple"), "a capacitance > 0 with r_decouple"))
     for role in parts:
-        if role not in needed:
+        if role not in needed and role not in dict(SUPPLY_ELEMENTS):
             problems.append(Problem(f"parts.{role}", parts[role],
                                     f"not a part of {topology}; needed: {', '.join(needed)}"))
     if problems:
@@ -108,7 +121,7 @@ def _check_parts(topology: str, parts: Mapping[str, float]) -> None:
 
 def _check_model(model: Mapping[str, float]) -> None:
     problems = [Problem(f"model.{key}", model.get(key), "a finite number")
-                for key in MODEL_KEYS
+                for key in MODEL_KEYS + tuple(k for k in OPTIONAL_MODEL_KEYS if k in model)
                 if not isinstance(model.get(key), (int, float)) or not math.isfinite(model[key])]
     if problems:
         raise InputError(problems, title=f"device model needs {', '.join(MODEL_KEYS)}")
@@ -156,11 +169,14 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
     temp = nominal_temperature(conditions)
     freq = mid_band_frequency(conditions) if frequency is None else float(frequency)
     model_name = _model_name(device_id)
+    decoupled = float(parts.get("r_decouple", 0.0)) > 0
+    elements = _ELEMENTS[topology] + (SUPPLY_ELEMENTS if decoupled else ())
+    rail = "vloc" if decoupled else "vcc"
 
     lines = [title or f"stagefit {topology} stage, device {device_id}",
              f"* topology: {topology}",
              "* parts (role = designer label, netlist value in ohm or F):"]
-    for role in required_parts(topology):
+    for role, _ in elements:
         unit = "F" if role.startswith("c_") else "ohm"
         lines.append(f"*   {role} = {format_value(float(parts[role]), unit=unit, ascii=True)} ({float(parts[role])!r})")
     lines += [f"*   q1{', q2' if len(_TRANSISTORS[topology]) > 1 else ''} = {device_id}",
@@ -178,18 +194,20 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
               f"Vcc vcc 0 DC {supply!r}",
               f"Vsig sig 0 DC 0 AC 1 SIN(0 {float(amplitude)!r} {freq!r})",
               f"Rsource sig src {(source if source > 0 else ZERO_SOURCE_RESISTANCE)!r}"]
-    for role, element in _ELEMENTS[topology]:
+    for role, element in elements:
         value = float(parts[role])
+        if role not in dict(SUPPLY_ELEMENTS):  # the stage returns to its local supply node
+            element = " ".join(rail if node == "vcc" else node for node in element.split())
         if value == 0:  # a zero resistor is a short: a 0 V source keeps the node and its current
             lines.append(f"V{element[1:]} DC 0")
         else:
             lines.append(f"{element} {value!r}")
     for role, collector, base, emitter in _TRANSISTORS[topology]:
-        lines.append(f"Q{role} {collector} {base} {emitter} {model_name}")
+        lines.append(f"Q{role} {rail if collector == 'vcc' else collector} {base} {emitter} {model_name}")
     lines.append(f"Rload out 0 {(load if math.isfinite(load) else OPEN_LOAD_RESISTANCE)!r}")
     if load_c > 0:
         lines.append(f"Cload out 0 {load_c!r}")
-    params = " ".join(f"{key}={float(model[key])!r}" for key in MODEL_KEYS)
+    params = " ".join(f"{key}={float(model[key])!r}" for key in MODEL_KEYS + OPTIONAL_MODEL_KEYS if key in model)
     lines.append(f".model {model_name} NPN({params})")
     if analyses:
         lines.append(analyses.rstrip("\n"))

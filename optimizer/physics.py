@@ -2,8 +2,8 @@
 nodal analysis, frequency-response corners, noise, swing and distortion.
 
 Everything works on numpy arrays with a leading candidate axis (SI units). The
-transistor is the SPICE Gummel-Poon model with only IS, BF, NF, VAF, RB, CJE, CJC and
-TF set (BR=1, IKF=inf, ISE=0, VAR=inf, RE=RC=0, VJ=0.75 V, MJ=0.33, FC=0.5), in the
+transistor is the SPICE Gummel-Poon model with only IS, BF, NF, VAF, RB, CJE, CJC,
+TF and the flicker-noise KF, AF set (BR=1, IKF=inf, ISE=0, VAR=inf, RE=RC=0, VJ=0.75 V, MJ=0.33, FC=0.5), in the
 forward-active region; a candidate outside it is flagged, not modelled.
 """
 from __future__ import annotations
@@ -25,9 +25,14 @@ SWEEP = (0.1, 1e8)  # Hz, span of the frequency-response search
 COARSE_POINTS = 10  # log-spaced points over SWEEP (one per decade)
 REFINE_STEPS = 4  # false-position steps per -3 dB crossing (see minus_3db_corners)
 NOISE_POINTS = 6  # log-spaced frequencies for the in-band noise integral
+NOISE_POINTS_FLICKER = 12  # the same where a 1/f source bends the input noise inside the band
+NOISE_REFERENCE_K = 290.0  # K, standard source temperature of the noise figure
 NEWTON_ITERATIONS = 8
 THD_SAMPLES = 16  # samples per period of the quasi-static distortion solve (harmonics 2..7)
 THD_ITERATIONS = 6  # Newton steps per sample, warm-started at the quiescent Vbe
+SWING_TOLERANCE = 0.1  # usable swing: both peaks within 10 % of the linear gain times the drive
+SWING_GRID = (0.8, 1.0, 1.6)  # multiples of the clip-level drive scanned for the first deviation
+SWING_STEPS = 3  # Illinois false-position steps on the drive amplitude after the scan
 MAX_STEP = 0.1  # V, largest Newton step in Vbe (a guard; steps from above are about NF*VT)
 NEWTON_TOL = 1e-7  # V, residual of the base-loop equation counted as converged
 
@@ -114,14 +119,15 @@ def small_signal(bias: dict[str, np.ndarray], device: Device, beta: np.ndarray, 
     """Hybrid-pi parameters at a bias point (from :func:`solve_junction`).
 
     gm (S, dIc/dVb'e at fixed Vce), gpi (S, dIb/dVb'e), go (S, dIc/dVce), cpi, cmu (F)
-    rb (ohm, base spreading resistance RB), and the DC ic, ib (A) for the shot noise.
+    rb (ohm, base spreading resistance RB), the DC ic, ib (A) for the shot noise, and
+    flicker = KF*|Ib|^AF (A^2, the base-current flicker PSD times f).
     """
     e, vbe, vcb = bias["i_forward"], bias["vbe"], bias["vcb"]
     inv_vaf = device.inv_vaf
     gbe = (e + i_s) / nvt
     go = e * inv_vaf
     return {"gm": gbe * (1.0 + vcb * inv_vaf) - go, "gpi": gbe / beta, "go": go,
-            "ic": bias["ic"], "ib": bias["ib"],
+            "ic": bias["ic"], "ib": bias["ib"], "flicker": device.KF * np.abs(bias["ib"]) ** device.AF,
             "cpi": device.TF * gbe + depletion_capacitance(device.CJE, vbe),
             "cmu": depletion_capacitance(device.CJC, -vcb),
             "rb": np.full_like(e, device.RB)}
@@ -208,8 +214,8 @@ class Network:
         """Capacitor c (F); at mid-band (ac False) a coupling/bypass one is a short, others open."""
         if ac:
             self._stamp(self.cap, a, b, c)
-        elif coupling:
-            self.admittance(a, b, np.full_like(np.asarray(c, dtype=float), G_SHORT))
+        elif coupling:  # a zero capacitor is absent
+            self.admittance(a, b, np.where(np.asarray(c, dtype=float) > 0, G_SHORT, 0.0))
 
     def vccs(self, p: str | None, n: str | None, cp: str | None, cn: str | None, g: np.ndarray) -> None:
         """Current g*(v_cp - v_cn) (A) flowing from node p through the source to node n."""
@@ -231,13 +237,18 @@ class Network:
         self.vccs(c, e, b, e, ss["gm"])
         self.noise.append((c, e, "shot", ss["ic"]))
         self.noise.append((b, e, "shot", ss["ib"]))
+        if np.any(ss["flicker"] > 0):  # SPICE: KF*Ib^AF/f between the internal base and the emitter
+            self.noise.append((b, e, "flicker", ss["flicker"]))
 
     def noise_sources(self) -> list[tuple[str | None, str | None, np.ndarray]]:
-        """Noise current sources (from node, to node, PSD in A^2/Hz): resistors' thermal, junctions' shot."""
+        """Noise current sources (from node, to node, PSD in A^2/Hz): resistors' thermal, junctions'
+        shot and flicker (the last needs the frequencies of :meth:`at`)."""
         out = []
         for a, b, kind, x in self.noise:
             if kind == "thermal":
                 psd = np.where(x > 0, thermal_noise(np.where(x > 0, x, 1.0), self.temp_c), 0.0)
+            elif kind == "flicker":
+                psd = x / (np.abs(np.imag(self.s)) / (2.0 * np.pi))
             else:
                 psd = shot_noise(x)
             out.append((a, b, psd))
@@ -471,19 +482,21 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
 # ----------------------------------------------------------------------------- noise
 
 def noise_integrals(network: Network, out_node: str, source_node: str,
-                    r_source: np.ndarray, band: tuple[float, float],
-                    temp_c: float) -> tuple[np.ndarray, np.ndarray]:
-    """Equivalent input noise (V rms over band, without the source's own noise) and NF (dB).
+                    r_source: np.ndarray, band: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+    """Equivalent input noise (V rms over band, without the source's own noise) and NF (dB,
+    referred to the standard 290 K source: 10*log10(1 + ein^2/(4k*290*r_source*B))).
 
     ``network`` is the stage network (AC) with the source resistance (noiseless) and the
     load in place, element values 1-D over candidates, evaluated at log-spaced frequencies
     over the band (arrays (frequencies, candidates)); its recorded noise current
     sources (resistors, shot noise) are summed at the output through the adjoint solve,
     which gives every node's transimpedance z (V/A) to out_node at once. The source is a
-    Norton current vs/r_source into source_node, so the gain is z[source_node]/r_source
-    and the source's own noise is 4kT*r_source. Matches SPICE .noise input-referred total.
+    Norton current vs/r_source into source_node, so the gain is z[source_node]/r_source.
+    The stage's own sources are at the network's temperature; flicker sources (1/f) are integrated on a denser
+    grid. Matches SPICE .noise input-referred total.
     """
-    f = np.geomspace(band[0], band[1], NOISE_POINTS)[:, None]
+    flicker = any(kind == "flicker" for _, _, kind, _ in network.noise)
+    f = np.geomspace(band[0], band[1], NOISE_POINTS_FLICKER if flicker else NOISE_POINTS)[:, None]
     net = network.at(2j * np.pi * f)
     z = net.transposed().solve({out_node: np.ones(1)})
     gain2 = _magnitude2(z[source_node]) / r_source ** 2
@@ -493,8 +506,7 @@ def noise_integrals(network: Network, out_node: str, source_node: str,
         out = out + psd * _magnitude2(h)
     in_psd = out / gain2
     ein2 = np.sum(power_law_segments(f, in_psd, axis=0), axis=0)
-    four_kt = 4.0 * BOLTZMANN * (temp_c + KELVIN_OFFSET)
-    source2 = four_kt * r_source * (band[1] - band[0])
+    source2 = 4.0 * BOLTZMANN * NOISE_REFERENCE_K * r_source * (band[1] - band[0])
     return np.sqrt(ein2), 10.0 * np.log10(1.0 + ein2 / source2)
 
 
@@ -540,6 +552,67 @@ def load_line_limits(ic: np.ndarray, vce: np.ndarray, vce_sat: float, r_ac: np.n
                      re_ac: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Peak output (V) before cutoff (Ic*Rac) and before saturation ((Vce-Vce_sat)*Rac/(Rac+Re_ac))."""
     return ic * r_ac, np.maximum(vce - vce_sat, 0.0) * r_ac / (r_ac + re_ac)
+
+
+def usable_swing(static_output: Callable[[np.ndarray], np.ndarray], gain: np.ndarray,
+                 clip_peak: np.ndarray, tolerance: float = SWING_TOLERANCE) -> np.ndarray:
+    """Usable swing (V peak-to-peak at the load): the largest sine whose two peaks are both
+    within ``tolerance`` (10 %) of the linear mid-band gain times the drive.
+
+    ``static_output(vs)`` is the stage's memoryless transfer (source V -> change of the load
+    voltage, V, shape (candidates, samples)); a sine's output peaks are then the outputs at
+    the drive's two peaks, so only +a and -a are solved. The peak deviation
+    d(a) = max over both peaks of |out(+-a)/(+-gain*a) - 1| is scanned at SWING_GRID
+    multiples of the clip-level drive a_clip = clip_peak/(0.9*|gain|) (where a stage that
+    clips hard at the AC load line has fallen 10 % short; the grid runs past it for stages
+    whose static curve clips later), the first scanned amplitude with d > tolerance
+    brackets the crossing with the one before it (d(0) = 0), and Illinois false position
+    on d - tolerance refines it; the swing is out(+a) - out(-a) there, interpolated between
+    the bracket's ends. Where no scanned amplitude deviates (a stage that does not clip
+    within its clip-level drive), the peak-to-peak at the last one is returned.
+    """
+    gain = np.asarray(gain, dtype=float)
+    g = gain[:, None]
+    a_clip = np.asarray(clip_peak, dtype=float) / ((1.0 - tolerance) * np.abs(gain))
+
+    def measure(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(d - tolerance, peak-to-peak) at drive amplitudes a (V, shape (n, k))."""
+        out = static_output(np.concatenate([a, -a], axis=1))
+        k = a.shape[1]
+        lin = g * a
+        up, down = out[:, :k], out[:, k:]
+        dev = np.maximum(np.abs(up / lin - 1.0), np.abs(down / lin + 1.0))
+        return np.where(np.isfinite(dev), dev, np.inf) - tolerance, np.abs(up - down)
+
+    n = gain.size
+    rows = np.arange(n)
+    grid = a_clip[:, None] * np.asarray(SWING_GRID)[None, :]
+    d_grid, pp_grid = measure(grid)
+    over = d_grid > 0.0
+    found = over.any(axis=1)
+    first = np.where(found, np.argmax(over, axis=1), grid.shape[1] - 1)
+    x1, d1, p1 = grid[rows, first], d_grid[rows, first], pp_grid[rows, first]
+    prev = np.maximum(first - 1, 0)
+    start = first == 0
+    x0 = np.where(start, 0.0, grid[rows, prev])
+    d0 = np.where(start, -tolerance, d_grid[rows, prev])
+    p0 = np.where(start, 0.0, pp_grid[rows, prev])
+    d1 = np.minimum(d1, 1.0)  # a non-finite or huge deviation past a hard clip: keep the secant sane
+    side = np.zeros(n)  # +1: the last step moved x1, -1: it moved x0
+    for _ in range(SWING_STEPS):  # Illinois false position, x0 inside (d < 0), x1 outside
+        xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, -1.0, d0 - d1)
+        xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
+        dm, pm = (v[:, 0] for v in measure(xm[:, None]))
+        dm = np.minimum(dm, 1.0)
+        out_side = dm > 0.0
+        d0 = np.where(out_side & (side > 0), 0.5 * d0, d0)  # an end kept twice: halve its value
+        d1 = np.where(~out_side & (side < 0), 0.5 * d1, d1)
+        x1, d1, p1 = (np.where(out_side, new, old) for new, old in ((xm, x1), (dm, d1), (pm, p1)))
+        x0, d0, p0 = (np.where(out_side, old, new) for new, old in ((xm, x0), (dm, d0), (pm, p0)))
+        side = np.where(out_side, 1.0, -1.0)
+    w = d0 / np.where(d0 == d1, -1.0, d0 - d1)  # where d crosses zero between the ends
+    swing = np.where(found, p0 + np.clip(w, 0.0, 1.0) * (p1 - p0), p1)
+    return np.where(np.isfinite(swing) & (np.abs(gain) > 0), swing, 0.0)
 
 
 def thd_small_signal(v_x_peak: np.ndarray, suppression: np.ndarray, nvt: float,

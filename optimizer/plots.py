@@ -267,12 +267,13 @@ def response_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None 
 def transfer_data(candidate: dict, *, spec_swing: float | None = None, points: int = TRANSFER_POINTS) -> dict:
     """The DC transfer behind :func:`transfer_plot`: source voltage sweep (V) and load voltage
     (V, change from quiescent) by the static nonlinear solve, the small-signal straight line,
-    the model's clip level (+/- swing_vpp/2) and where the curve flattens on each side."""
+    the model's clip level (+/- clip_vpp/2), its usable swing (swing_vpp, the 10 % rule) and
+    where the curve flattens on each side."""
     topology, parts, device, conditions = design_from_record(candidate)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         metrics = topology.evaluate(parts, device, conditions, full=False).metrics
-    gain, swing = float(metrics["gain"][0]), float(metrics["swing_vpp"][0])
-    reach = max(swing, spec_swing or 0.0, 1e-3) / 2.0
+    gain, swing, clip = (float(metrics[k][0]) for k in ("gain", "swing_vpp", "clip_vpp"))
+    reach = max(swing, clip, spec_swing or 0.0, 1e-3) / 2.0
     peak = TRANSFER_OVERDRIVE * reach / max(abs(gain), 1e-9)
     vs = np.linspace(-peak, peak, points)
     out = topology.static_transfer(parts, device, conditions, vs)[0]
@@ -284,13 +285,13 @@ def transfer_data(candidate: dict, *, spec_swing: float | None = None, points: i
     clips = [(float(vs[i]), float(out[i])) for i in ((left[-1] if left.size else None),
                                                      (right[0] if right.size else None)) if i is not None]
     return {"source_v": vs, "output_v": out, "linear_v": gain * vs, "gain": gain, "swing_vpp": swing,
-            "spec_swing": spec_swing, "clips": clips, "topology": topology.name}
+            "clip_vpp": clip, "spec_swing": spec_swing, "clips": clips, "topology": topology.name}
 
 
 def transfer_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None = None,
                   spec_swing: float | None = None) -> bytes:
     """Load voltage against source voltage (quasi-static sweep) showing where the stage clips:
-    the model's clip level (swing_vpp) and, if given, the spec's required swing (Vpp)."""
+    the model's clip level (clip_vpp) and, if given, the spec's required swing (Vpp)."""
     fmt = _check_format(fmt)
     if spec_swing is not None and not (isinstance(spec_swing, (int, float)) and spec_swing > 0):
         raise InputError.single("spec_swing", spec_swing, "a positive swing in V peak-to-peak, or None")
@@ -300,7 +301,7 @@ def transfer_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None 
     x = vs * scale
     fig = Figure(figsize=FIGSIZE)
     ax = fig.add_subplot()
-    half = data["swing_vpp"] / 2.0
+    half = data["clip_vpp"] / 2.0
     lim = 1.15 * max(np.max(np.abs(out)), half, (spec_swing or 0.0) / 2.0)
     ax.plot(x, np.clip(data["linear_v"], -lim, lim), color=COLOURS["ideal"], ls=":", lw=1.0,
             label=f"small-signal gain {data['gain']:.3g} V/V")
@@ -308,7 +309,8 @@ def transfer_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None 
     ax.axhspan(-half, half, color=COLOURS["model"], alpha=0.06)
     for sign in (1, -1):
         ax.axhline(sign * half, color=COLOURS["limit"], ls="--", lw=0.9,
-                   label=f"clip level, swing {data['swing_vpp']:.2f} Vpp" if sign > 0 else None)
+                   label=f"clip level {data['clip_vpp']:.2f} Vpp (usable swing {data['swing_vpp']:.2f} Vpp)"
+                   if sign > 0 else None)
         if spec_swing:
             ax.axhline(sign * spec_swing / 2.0, color=COLOURS["spec"], ls="-.", lw=1.0,
                        label=f"spec swing {spec_swing:.2f} Vpp" if sign > 0 else None)

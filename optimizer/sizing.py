@@ -78,3 +78,36 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
         ok = found & (_f_low(topology, trial, device, conditions) <= target)
         best[cap] = np.where(ok, lower, best[cap])
     return {c: allowed[i] for c, i in best.items()}
+
+
+DECOUPLE_CORNER_DECADES = 1.0  # without a PSRR limit: r_decouple*c_decouple corner this many decades below the band
+
+
+def size_decoupling(topology: Topology, parts: dict[str, np.ndarray], device: Device, conditions: Conditions,
+                    allowed: np.ndarray, psrr_min_db: float | None = None) -> np.ndarray:
+    """c_decouple (F) for every candidate, from the sorted ``allowed`` values; 0 where r_decouple is 0.
+
+    ``parts`` holds the stage's resistors and capacitors and r_decouple (ohm, per candidate).
+    With ``psrr_min_db`` (dB): the smallest allowed value whose psrr_ripple_db (at
+    conditions.ripple_frequency) meets it, found by a vectorised bisection over the allowed
+    values (rejection grows with c_decouple); the largest where none does (the scoring then
+    reports the limit as violated). Without it: the smallest allowed value putting the RC
+    corner 1/(2 pi r_decouple c_decouple) a decade below the band's low edge.
+    """
+    allowed = np.sort(np.asarray(allowed, dtype=float))
+    r_dec = np.atleast_1d(np.asarray(parts["r_decouple"], dtype=float))
+    size = np.broadcast(*parts.values()).shape
+    r_dec = np.broadcast_to(r_dec, size)
+    corner = conditions.band[0] / 10.0 ** DECOUPLE_CORNER_DECADES
+    with np.errstate(divide="ignore"):
+        idx = _round_up(1.0 / (2.0 * np.pi * r_dec * corner), allowed)
+    if psrr_min_db is not None:
+        full = {k: np.broadcast_to(np.asarray(v, dtype=float), size) for k, v in parts.items()}
+        lo, hi = np.zeros(size, dtype=int), np.full(size, allowed.size - 1)
+        while np.any(lo < hi):  # smallest index meeting the limit (hi meets it or is the largest)
+            mid = (lo + hi) // 2
+            ok = topology.psrr({**full, "c_decouple": allowed[mid]}, device, conditions)["psrr_ripple_db"] >= psrr_min_db
+            active = lo < hi
+            hi, lo = np.where(active & ok, mid, hi), np.where(active & ~ok, mid + 1, lo)
+        idx = lo
+    return np.where(r_dec > 0, allowed[idx], 0.0)

@@ -5,33 +5,42 @@ benchmarks/spice_agreement.py (writes the committed table).
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 
 import numpy as np
 
 from optimizer.topologies import get_topology
 from spice_designs import CheckDesign
-from spice_harness import (spice_midband, spice_noise, spice_operating_point, spice_response,
-                           spice_swing, spice_thd)
+from spice_harness import (clip_of, held_transfer, spice_midband, spice_noise, spice_noise_figure,
+                           spice_operating_point, spice_psrr, spice_response, spice_thd, swing_of)
 
-# metric -> (tolerance, kind): "rel" relative error, "db" absolute error in dB.
+# metric -> (tolerance, kind): "rel" relative error, "db" ratio in dB, "diff" difference (dB metrics).
 TOLERANCES = {
     "ic": (0.03, "rel"),
     "gain": (0.03, "rel"),
     "input_impedance": (0.05, "rel"),
     "output_impedance": (0.10, "rel"),
-    "swing_vpp": (0.10, "rel"),
+    "swing_vpp": (0.10, "rel"),  # usable swing, the 10 % rule
+    "clip_vpp": (0.10, "rel"),  # hard clip level of the AC load line
     "f_low": (0.10, "rel"),
     "f_high": (0.25, "rel"),
     "noise_ein_v": (1.5, "db"),
+    "noise_ein_flicker": (1.5, "db"),  # noise_ein_v with the device's KF = FLICKER_KF, AF = 1
+    "noise_figure_db": (0.5, "diff"),  # referred to a 290 K source
+    "psrr_ripple_db": (2.0, "diff"),  # at conditions.ripple_frequency (100 Hz)
+    "psrr_mid_db": (2.0, "diff"),  # at the band's geometric mean
     "thd": (0.30, "rel"),
 }
-THD_FRACTION_OF_SWING = 0.3  # "moderate level": 30 % of the clip level
+THD_FRACTION_OF_CLIP = 0.3  # "moderate level": 30 % of the clip level
+FLICKER_KF = 1e-14  # invented, strong enough that 1/f noise dominates the band's low end
 
 
 def _error(model: float, simulated: float, kind: str) -> float:
     if kind == "db":
         return 20.0 * math.log10(model / simulated)
+    if kind == "diff":
+        return model - simulated
     return (model - simulated) / simulated
 
 
@@ -49,9 +58,19 @@ def agreement_rows(design: CheckDesign) -> list[dict]:
     simulated.update({k: v for k, v in spice_midband(*args).items()
                       if k in ("gain", "input_impedance", "output_impedance")})
     simulated.update(spice_response(*args))
-    simulated["swing_vpp"] = spice_swing(*args)
+    v_in, v_out, h = held_transfer(*args)
+    simulated["swing_vpp"] = swing_of(design.topology, v_in, v_out, h)
+    simulated["clip_vpp"] = clip_of(design.topology, v_in, v_out, float(design.conditions.supply))
     simulated["noise_ein_v"] = spice_noise(*args)
-    level = THD_FRACTION_OF_SWING * metrics["swing_vpp"]
+    simulated["noise_figure_db"] = spice_noise_figure(*args)
+    frequencies = (design.conditions.ripple_frequency,
+                   math.sqrt(design.conditions.band[0] * design.conditions.band[1]))
+    simulated["psrr_ripple_db"], simulated["psrr_mid_db"] = spice_psrr(*args, frequencies)
+    flicker = dataclasses.replace(design.device, KF=FLICKER_KF, AF=1.0)
+    metrics["noise_ein_flicker"] = float(topology.evaluate(parts, flicker, design.conditions).metrics["noise_ein_v"][0])
+    simulated["noise_ein_flicker"] = spice_noise(design.topology, design.parts, flicker.spice_model(),
+                                                 design.conditions)
+    level = THD_FRACTION_OF_CLIP * metrics["clip_vpp"]
     thd_conditions = type(design.conditions)(**{**design.conditions.__dict__, "signal_vpp": level})
     thd_result = topology.evaluate(parts, design.device, thd_conditions, full=False, thd_solve=True)
     metrics["thd"] = float(np.asarray(thd_result.metrics["thd"])[0])

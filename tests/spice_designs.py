@@ -9,8 +9,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
+
 from optimizer.devices import Device
+from optimizer.sizing import size_decoupling
 from optimizer.synthesis import HandRequirements, hand_design
+from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
 
 
@@ -72,8 +76,14 @@ _CASES = [
 ]
 
 
+# Designs of _CASES (by index) given a supply decoupling RC: r_decouple dropping this share of
+# the supply at the hand method's current, c_decouple as sized for a corner a decade below the band.
+_DECOUPLED = (0, 9, 16, 24)
+_DECOUPLE_DROP = 0.1
+
+
 def check_designs() -> list[CheckDesign]:
-    """All designs of the ngspice agreement set (32, every topology)."""
+    """All designs of the ngspice agreement set (36, every topology; 4 with a decoupling RC)."""
     designs = []
     for topology, supply, gain, ic, hfe, rs, rl in _CASES:
         req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
@@ -84,4 +94,12 @@ def check_designs() -> list[CheckDesign]:
         name = f"{topology}-{supply:g}V-A{gain:g}-hfe{hfe}"
         designs.append(CheckDesign(name, topology, parts, check_device(hfe), conditions,
                                    hand_gain=-gain, hand_ic=ic))
+    for d in (designs[i] for i in _DECOUPLED):
+        r_dec = _DECOUPLE_DROP * d.conditions.supply / (1.1 * d.hand_ic)
+        parts = {**d.parts, "r_decouple": r_dec}
+        allowed = np.geomspace(1e-6, 1e-2, 41)
+        parts["c_decouple"] = float(size_decoupling(get_topology(d.topology), {k: np.array([v]) for k, v in parts.items()},
+                                                    d.device, d.conditions, allowed)[0])
+        designs.append(CheckDesign(f"{d.name}-rc", d.topology, parts, d.device, d.conditions,
+                                   hand_gain=d.hand_gain, hand_ic=d.hand_ic))
     return designs

@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 
-from optimizer.netlist import mid_band_frequency, spice_netlist
+from optimizer.netlist import mid_band_frequency, nominal_temperature, spice_netlist
 
 NGSPICE = shutil.which("ngspice")
 TIMEOUT_S = 60.0
@@ -169,8 +169,8 @@ def spice_response(topology: str, parts: Mapping[str, float], model: Mapping[str
 # and by then the saturation's base current has recharged c_in and c_out (the output's mean
 # moved 0.2 V on feedback_ce-9V-A4-hfe400), so the transient read the peak-to-peak of a
 # stage already past the clip with a shifted bias, 10-15 % above the clip level.
-_HELD_CAPACITORS = ("c_in", "c_out", "c_emitter")  # coupling and bypass: a voltage source at their DC
-_SWEEP_POINTS = 4001  # over +-supply/|gain| at the source: ~0.05 % of the supply per step at the load
+_HELD_CAPACITORS = ("c_in", "c_out", "c_emitter", "c_decouple")  # coupling and bypass: a voltage source at their DC
+_SWEEP_POINTS = 6001  # over +-1.5*supply/|gain| at the source: ~0.05 % of the supply per step at the load
 _CLIP_GAIN_FRACTION = 0.5  # clipping starts where the incremental gain falls below this share
 
 
@@ -194,19 +194,15 @@ def _capacitor_nodes(netlist: str) -> set[str]:
             for node in f[1:3] if node != "0"}
 
 
-def spice_swing(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                conditions: Any) -> float:
-    """Clipping swing at the load, V peak-to-peak: the clip level on the static transfer curve.
+def held_transfer(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+                   conditions: Any) -> tuple[np.ndarray, np.ndarray, complex]:
+    """Static transfer curve (source EMF V, load V) with the capacitors holding their DC, and
+    the mid-band .ac gain.
 
     An operating point gives the DC across every coupling and bypass capacitor; each is then
     replaced by a voltage source holding that DC (what the capacitors do over a period at
-    mid-band), and a DC sweep of the signal source over +-supply/|gain| gives the load
-    voltage against the source EMF. Clipping starts at the smallest input, of either
-    polarity, where the incremental gain dVout/dVsig has fallen below half its value at the
-    operating point (or changed sign); the swing is the output's peak-to-peak for an input
-    sine of that amplitude, read off the curve. A hard clip flattens the curve at once, so
-    this is the AC-load-line clip level of the models; a softly compressing side
-    (degenerated cutoff) contributes the level it has reached by then.
+    mid-band), and a DC sweep of the signal source over +-1.5*supply/|gain| gives the load
+    voltage against the source EMF.
     """
     netlist = spice_netlist(topology, parts, model, conditions)
     nodes = sorted(_capacitor_nodes(netlist))
@@ -214,21 +210,72 @@ def spice_swing(topology: str, parts: Mapping[str, float], model: Mapping[str, f
     scalars, _ = _simulate(topology, parts, model, conditions, control)
     voltages = dict(zip(nodes, _need(scalars, *(f"n_{n}" for n in nodes))))
     h, _ = _complex_gain(topology, parts, model, conditions, mid_band_frequency(conditions))
-    span = float(conditions.supply) / abs(h)
+    span = 1.5 * float(conditions.supply) / abs(h)
     control = (f"dc vsig {-span!r} {span!r} {2.0 * span / (_SWEEP_POINTS - 1)!r}\n"
                "wrdata {dir}/d.txt v(out)")
     _, arrays = _simulate(topology, parts, model, conditions, control, waveforms=("d",),
                           transform=lambda text: _hold_capacitors(text, voltages))
-    v_in, v_out = arrays["d"][:, 0], arrays["d"][:, 1]
+    return arrays["d"][:, 0], arrays["d"][:, 1], h
+
+
+def spice_clip(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+               conditions: Any) -> float:
+    """Hard clip level at the load, V peak-to-peak, on the static transfer curve (:func:`clip_of`)."""
+    v_in, v_out, _ = held_transfer(topology, parts, model, conditions)
+    return clip_of(topology, v_in, v_out, float(conditions.supply))
+
+
+def clip_of(topology: str, v_in: np.ndarray, v_out: np.ndarray, supply: float) -> float:
+    """Clip level (V peak-to-peak) of a held-capacitor transfer curve.
+
+    Clipping starts at the smallest input, of either polarity, where the incremental gain
+    dVout/dVsig has fallen below half its value at the operating point (or changed sign);
+    the clip level is the output's peak-to-peak for an input sine of that amplitude, read
+    off the curve. A hard clip flattens the curve at once, so this is the AC-load-line clip
+    level of the models (clip_vpp); a softly compressing side (degenerated cutoff)
+    contributes the level it has reached by then.
+    """
     slope = np.gradient(v_out, v_in)
     centre = int(np.argmin(np.abs(v_in)))
     clipped = slope / slope[centre] < _CLIP_GAIN_FRACTION
     right = np.nonzero(clipped[centre:])[0]
     left = np.nonzero(clipped[:centre + 1])[0]
     if right.size == 0 or left.size == 0:
-        raise SpiceError(f"{topology}: no clipping found up to an output of {float(conditions.supply)} V")
+        raise SpiceError(f"{topology}: no clipping found up to an output of {supply} V")
     amplitude = min(v_in[centre + right[0]], -v_in[left[-1]])
     return float(abs(np.interp(amplitude, v_in, v_out) - np.interp(-amplitude, v_in, v_out)))
+
+
+def spice_swing(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+                conditions: Any) -> float:
+    """Usable swing at the load, V peak-to-peak, by the 10 % rule (:func:`swing_of`)."""
+    v_in, v_out, h = held_transfer(topology, parts, model, conditions)
+    return swing_of(topology, v_in, v_out, h)
+
+
+def swing_of(topology: str, v_in: np.ndarray, v_out: np.ndarray, h: complex, tolerance: float = 0.1) -> float:
+    """Usable swing (V peak-to-peak, the models' swing_vpp) of a held-capacitor transfer curve.
+
+    The output peaks of a sine of amplitude a at the source are the curve at +a and -a (less
+    the quiescent output); the swing is the peak-to-peak at the smallest a where either peak
+    deviates by more than ``tolerance`` from the linear mid-band gain h (the .ac gain, signed
+    by its real part) times +-a, interpolated linearly between sweep points.
+    """
+    gain = math.copysign(abs(h), h.real)
+    centre = int(np.argmin(np.abs(v_in)))
+    q = np.interp(0.0, v_in, v_out)
+    a = v_in[centre + 1:]
+    up = np.interp(a, v_in, v_out) - q
+    down = np.interp(-a, v_in, v_out) - q
+    dev = np.maximum(np.abs(up / (gain * a) - 1.0), np.abs(down / (-gain * a) - 1.0)) - tolerance
+    ignore = a < 1e-3 * a[-1]  # the curve's own rounding swamps the ratio at the smallest drives
+    over = np.nonzero((dev > 0.0) & ~ignore)[0]
+    if over.size == 0:
+        raise SpiceError(f"{topology}: no {tolerance:.0%} deviation found up to a drive of {a[-1]} V")
+    i = over[0]
+    w = -dev[i - 1] / (dev[i] - dev[i - 1])
+    pp = np.abs(up - down)
+    return float(pp[i - 1] + w * (pp[i] - pp[i - 1]))
 
 
 def spice_noise(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
@@ -276,3 +323,36 @@ def spice_thd(topology: str, parts: Mapping[str, float], model: Mapping[str, flo
     if abs(vpp / vpp_out - 1.0) > 0.02:
         vpp, thd = _thd_run(topology, parts, model, conditions, amplitude * vpp_out / vpp, frequency)
     return thd
+
+
+def spice_psrr(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+               conditions: Any, frequencies: tuple[float, ...]) -> list[float]:
+    """Supply rejection 20*log10(1/|V(out)/V(vcc)|) (dB) at each frequency (Hz), from .ac with
+    AC 1 on the supply source Vcc and the signal source's AC set to 0 (its resistance stays)."""
+    control = "alter @vsig[acmag] = 0\nalter @vcc[acmag] = 1\n"
+    for i, f in enumerate(frequencies):
+        control += (f"ac lin 1 {float(f)!r} {float(f)!r}\nlet r{i} = -20*log10(mag(v(out)/v(vcc)))\n"
+                    f"print r{i}\n")
+    scalars, _ = _simulate(topology, parts, model, conditions, control)
+    return _need(scalars, *(f"r{i}" for i in range(len(frequencies))))
+
+
+NF_REFERENCE_K = 290.0  # K, the standard noise-figure source temperature
+
+
+def spice_noise_figure(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
+                       conditions: Any) -> float:
+    """Noise figure (dB) over the band referred to a source at the standard 290 K, the stage at
+    the circuit temperature T: 10*log10(1 + stage/(source * 290 K/T)) of input-referred noise
+    powers integrated by .noise, the source's own from a run with Rsource noisy (total - stage;
+    ngspice 39 puts every resistor's thermal noise at the circuit temperature, ignoring an
+    instance ``temp``, so the source's power, exactly proportional to T, is scaled to 290 K),
+    the stage alone from :func:`spice_noise` (Rsource noiseless)."""
+    low, high = conditions.band
+    control = (f"noise v(out) vsig dec 50 {float(low)!r} {float(high)!r}\n"
+               "let total = inoise_total\nprint total")
+    scalars, _ = _simulate(topology, parts, model, conditions, control)
+    (total,) = _need(scalars, "total")
+    stage = spice_noise(topology, parts, model, conditions)
+    source_290k = (total ** 2 - stage ** 2) * NF_REFERENCE_K / (nominal_temperature(conditions) + 273.15)
+    return 10.0 * math.log10(1.0 + stage ** 2 / source_290k)

@@ -156,7 +156,7 @@ def test_unloaded_swing_is_the_load_line_clip(textbook: dict) -> None:
     op = textbook["op"]
     vce = op["v_collector"] - op["v_emitter"]
     hand = 2 * min(op["ic"] * 10e3, (vce - 0.2) * 10e3 / 11e3)
-    swing = sh.spice_swing("divider_ce", PARTS, MODEL, conditions(load_impedance=1e9))
+    swing = sh.spice_clip("divider_ce", PARTS, MODEL, conditions(load_impedance=1e9))
     assert 7.4 < swing < 8.4
     assert swing == pytest.approx(hand, rel=0.10)
 

@@ -148,10 +148,10 @@ def test_transfer_curve_slope_and_clip_level(records: list[dict], index: int) ->
     # at rest the slope is the small-signal gain source -> load
     slope = (out[centre + 1] - out[centre - 1]) / (vs[centre + 1] - vs[centre - 1])
     assert slope == pytest.approx(record["metrics"]["gain"], rel=0.03)
-    # the sweep clips, and the nearer side flattens at the clip level the swing reports
+    # the sweep clips, and the nearer side flattens at the clip level the model reports
     assert len(data["clips"]) >= 1
     nearer = min(abs(o) for _, o in data["clips"])
-    assert nearer == pytest.approx(record["metrics"]["swing_vpp"] / 2, rel=0.1)
+    assert nearer == pytest.approx(record["metrics"]["clip_vpp"] / 2, rel=0.1)
 
 
 def test_transfer_svg_marks_clipping_and_rejects_a_bad_spec_swing(record: dict) -> None:

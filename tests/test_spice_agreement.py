@@ -1,8 +1,11 @@
 """The stage models against ngspice (Debian package) as the reference simulator.
 
-32 hand-method designs over all four topologies, supplies 3.3-30 V and hFE 50-500 are
-simulated through the exported SPICE netlist; every metric must agree within the
-tolerances in spice_agreement.TOLERANCES. Skipped only where ngspice is absent.
+32 hand-method designs over all four topologies, supplies 3.3-30 V and hFE 50-500, and
+four of them again with a supply decoupling RC (bias, swing and supply rejection through
+r_decouple/c_decouple), are simulated through the exported SPICE netlist; every metric
+(bias, gain, impedances, usable swing by the 10 % rule, clip level, corners, white and
+flicker noise, noise figure at 290 K, supply rejection at 100 Hz and mid-band, THD) must
+agree within the tolerances in spice_agreement.TOLERANCES. Skipped only where ngspice is absent.
 """
 from __future__ import annotations
 

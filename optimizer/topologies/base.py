@@ -6,7 +6,7 @@ and the operating conditions to an operating point, metrics and ratings.
 from __future__ import annotations
 
 from abc import ABC, abstractmethod
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Callable, ClassVar
 
 import math
@@ -20,8 +20,10 @@ from optimizer.errors import InputError, Problem
 Parts = dict[str, np.ndarray]
 CHUNK_FAST = 16384  # candidates per block (keeps the working set in cache)
 CHUNK_FULL = 2048
-METRICS = ("gain", "gain_db", "swing_vpp", "input_impedance", "output_impedance", "supply_current",
-           "f_low", "f_high", "thd", "noise_ein_v", "noise_figure_db", "q_power", "part_count")
+METRICS = ("gain", "gain_db", "swing_vpp", "clip_vpp", "input_impedance", "output_impedance", "supply_current",
+           "f_low", "f_high", "thd", "noise_ein_v", "noise_figure_db", "q_power", "part_count",
+           "psrr_db", "psrr_ripple_db", "psrr_mid_db", "emitter_voltage")
+SUPPLY_PARTS = ("r_decouple", "c_decouple")  # optional supply decoupling RC of every stage (0 = direct rail)
 
 
 @dataclass(frozen=True)
@@ -39,9 +41,9 @@ class Conditions:
     ripple_frequency: float = 100.0  # Hz, where psrr_db is judged besides mid-band
 
     @property
-    def rail_max(self) -> float:
-        """Highest supply voltage the parts can see (V)."""
-        return self.supply if self.supply_max is None else max(self.supply, self.supply_max)
+    def rail_max(self) -> float | np.ndarray:
+        """Highest supply voltage the parts can see (V; per candidate when supply is an array)."""
+        return self.supply if self.supply_max is None else np.maximum(self.supply, self.supply_max)
 
 
 @dataclass
@@ -76,11 +78,14 @@ class Topology(ABC):
     capacitors: ClassVar[tuple[str, ...]]
     transistors: ClassVar[int]
     optional_parts: ClassVar[tuple[str, ...]] = ()  # may be 0 (absent)
+    supply_parts: ClassVar[tuple[str, ...]] = SUPPLY_PARTS  # optional everywhere: absent or 0 = direct rail
 
     @abstractmethod
     def operating_point(self, parts: Parts, device: Device, conditions: Conditions,
                         hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
-        """DC node voltages (V), currents (A), vce (V), active flag and supply_current (A)."""
+        """DC node voltages (V), currents (A), vce (V), active flag, supply_current (A),
+        v_supply_local (V, the stage's supply node after r_decouple) and v_out_q (V, the
+        quiescent DC of the output node: the collector, or the follower's emitter)."""
 
     @abstractmethod
     def evaluate(self, parts: Parts, device: Device, conditions: Conditions,
@@ -92,6 +97,15 @@ class Topology(ABC):
         the corners and noise from the nodal network. thd is the small-signal second-harmonic
         estimate unless thd_solve=True, which takes it from the quasi-static solve over one
         period (for the report of a chosen design; about as costly as the rest of full).
+
+        swing_vpp (V peak-to-peak at the load) is the usable swing: the largest sine at the load
+        whose two peaks are both within 10 % of the linear mid-band gain times the drive, found
+        on the stage's static nonlinear transfer (:func:`physics.usable_swing`). clip_vpp (V
+        peak-to-peak) is the hard clip level of the AC load line, 2*min(cutoff, saturation).
+        psrr_ripple_db and psrr_mid_db (dB) are 20*log10(1/|H|) of the small-signal transfer
+        from the supply rail to the load at conditions.ripple_frequency and at the band's
+        geometric mean, psrr_db the smaller (worse) of the two; NaN in the core path.
+        emitter_voltage (V) is the DC across the first stage's emitter resistor(s).
         """
 
 
@@ -115,36 +129,77 @@ class StageModel(Topology):
     @abstractmethod
     def _swing(self, p: Parts, device: Device, c: Conditions, b: Bias,
                mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
-        """swing_vpp (V) at the load and the largest Vce in operation (V)."""
+        """clip_vpp (V, the hard clip level at the load: 2*min of the AC load line's cutoff and
+        saturation limits) and the largest Vce in operation (V)."""
 
     @abstractmethod
     def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool) -> physics.Network:
+                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
         """Small-signal network with nodes 'in' (after the source impedance) and 'out' (the load).
 
         ac False: mid-band (coupling and bypass capacitors short, device and load capacitances
-        open); r_source None: source removed; load False: load removed.
+        open); r_source None: source removed; load False: load removed. Everything that returns
+        to the supply connects to the rail node of :meth:`_new_network` (supply True, or a
+        decoupling RC present: the node 'vcc', held by the supply source, and behind r_decouple
+        the local node 'vloc'; otherwise AC ground).
         """
+
+    @staticmethod
+    def _new_network(nodes: tuple[str, ...], p: Parts, c: Conditions, ac: bool,
+                     supply: bool) -> tuple[physics.Network, str | None]:
+        """A network over ``nodes`` plus the supply nodes, and the node the stage returns to.
+
+        The rail 'vcc' is tied to ground by the supply source's G_SHORT (a current G_SHORT
+        into 'vcc' makes it a 1 V AC source, for the supply rejection); r_decouple runs from
+        'vcc' to 'vloc', c_decouple from 'vloc' to ground (a bypass: a short at mid-band when
+        present). Without a decoupling RC in the batch and without supply, the rail is ground.
+        """
+        decoupled = bool(np.any(p["r_decouple"] > 0))
+        if not (decoupled or supply):
+            return physics.Network(nodes, c.temperature), None
+        net = physics.Network(nodes + (("vloc", "vcc") if decoupled else ("vcc",)), c.temperature)
+        net.admittance("vcc", None, np.full_like(p["r_decouple"], physics.G_SHORT))
+        if not decoupled:
+            return net, "vcc"
+        net.resistor("vcc", "vloc", p["r_decouple"])
+        net.capacitor("vloc", None, p["c_decouple"], ac, True)
+        return net, "vloc"
 
     @abstractmethod
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
-        """p_<resistor> (W) and v_<capacitor> (V)."""
+        """p_<resistor> (W, I^2 R at the evaluated supply) and v_<capacitor> (V, the largest
+        voltage the capacitor can see: at c.rail_max, at power-up, with the output shorted).
+
+        The rule per role: a coupling capacitor (c_in, c_out) and c_decouple can see the
+        full rail (at power-up, uncharged, one side at a node that may sit at the rail, the
+        other shorted or at ground); a bypass capacitor (c_emitter) sees its node's DC, and
+        the emitter node never rises above the base, whose highest voltage is the bias
+        divider's open-circuit voltage at rail_max (the transistor only pulls the base down).
+        """
+
+    @abstractmethod
+    def _output_q(self, op: dict[str, np.ndarray]) -> np.ndarray:
+        """Quiescent DC voltage of the node c_out couples to the load (V)."""
 
     # ---- shared flow -------------------------------------------------------------------
     def check_parts(self, parts: Parts) -> Parts:
-        """Broadcast parts to float arrays over one candidate axis; InputError if any is missing or bad."""
+        """Broadcast parts to float arrays over one candidate axis; InputError if any is missing or bad.
+
+        The supply decoupling parts (r_decouple, c_decouple) may be left out: then 0 (absent)."""
         needed = self.resistors + self.capacitors
         problems = [Problem(f"parts.{r}", None, f"{self.name} needs {', '.join(needed)}")
                     for r in needed if r not in parts]
         if problems:
             raise InputError(problems, title=f"parts do not fit topology {self.name}")
-        arrays = np.broadcast_arrays(*(np.atleast_1d(np.asarray(parts[r], dtype=float)) for r in needed))
-        out = dict(zip(needed, (a.ravel() for a in arrays)))
+        roles = needed + self.supply_parts
+        arrays = np.broadcast_arrays(*(np.atleast_1d(np.asarray(parts.get(r, 0.0), dtype=float)) for r in roles))
+        out = dict(zip(roles, (a.ravel() for a in arrays)))
         for r, a in out.items():
-            bad = ~(a >= 0) if r in self.optional_parts else ~(a > 0)
+            optional = r in self.optional_parts or r in self.supply_parts
+            bad = ~(a >= 0) if optional else ~(a > 0)
             if np.any(bad):
                 raise InputError.single(f"parts.{r}", float(a[bad][0]),
-                                        "a value >= 0" if r in self.optional_parts else "a value > 0",
+                                        "a value >= 0" if optional else "a value > 0",
                                         title=f"invalid part value for {self.name}")
         return out
 
@@ -166,6 +221,21 @@ class StageModel(Topology):
         i_s = float(saturation_current(device.IS, conditions.temperature))
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             b = self._bias(p, device, conditions, beta, nvt, i_s)
+            v_local = np.broadcast_to(np.asarray(conditions.supply, dtype=float), beta.shape).copy()
+            r_dec = p["r_decouple"]
+            if np.any(r_dec > 0):
+                # The local supply V = Vcc - r_decouple*I(V), with I the stage's current at V.
+                # I is nearly linear in V (resistive returns, Vbe moves by mV), so one fixed-point
+                # step and one secant step land on the root: three bias solves in all.
+                i0 = b.op["supply_current"]
+                v1 = conditions.supply - r_dec * i0
+                i1 = self._bias(p, device, replace(conditions, supply=v1), beta, nvt, i_s).op["supply_current"]
+                dv = v1 - v_local
+                slope = np.where(dv != 0, (i1 - i0) / np.where(dv != 0, dv, 1.0), 0.0)
+                v_local = (conditions.supply - r_dec * i1 + r_dec * slope * v1) / (1.0 + r_dec * slope)
+                b = self._bias(p, device, replace(conditions, supply=v_local), beta, nvt, i_s)
+        b.op["v_supply_local"] = v_local
+        b.op["v_out_q"] = self._output_q(b.op)
         b.beta = beta
         return p, b, nvt
 
@@ -199,29 +269,34 @@ class StageModel(Topology):
                   hfe: np.ndarray, full: bool, thd_solve: bool) -> StageResult:
         p, b, nvt = self._solve(parts, device, conditions, hfe)  # parts checked by evaluate
         r_source = _source_resistance(b, conditions)
+        local = replace(conditions, supply=b.op["v_supply_local"])  # the stage's own supply node
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             mid = self._midband(p, conditions, b, r_source)
             # impedances are seen through the coupling capacitors at the band's geometric mean
             w_mid = 2.0 * np.pi * math.sqrt(conditions.band[0] * conditions.band[1])
             z_in = np.hypot(mid["input_impedance"], 1.0 / (w_mid * p["c_in"]))
             z_out = np.hypot(mid["output_impedance"], 1.0 / (w_mid * p["c_out"]))
-            swing, vce_max = self._swing(p, device, conditions, b, mid)
+            clip, vce_max = self._swing(p, device, local, b, mid)
             gain = mid["gain"]
+            swing = physics.usable_swing(self._static_fn(p, device, conditions, b, nvt, b.beta), gain, 0.5 * clip)
             m: dict[str, np.ndarray] = {
-                "gain": gain, "gain_db": 20.0 * np.log10(np.abs(gain)), "swing_vpp": swing,
+                "gain": gain, "gain_db": 20.0 * np.log10(np.abs(gain)), "swing_vpp": swing, "clip_vpp": clip,
                 "input_impedance": z_in, "output_impedance": z_out,
                 "supply_current": b.op["supply_current"],
                 "thd": np.abs(sum(sign * physics.thd_small_signal(0.5 * conditions.signal_vpp * vx, sup, nvt, u)
                                   for vx, sup, u, sign in mid["hd2_terms"])),
-                "q_power": b.op["q_power"],
+                "q_power": b.op["q_power"], "emitter_voltage": b.op["v_emitter"],
                 "part_count": self.part_count(p)}
             nan = np.full_like(gain, np.nan)
-            m.update(f_low=nan, f_high=nan, noise_ein_v=nan, noise_figure_db=nan)
+            m.update(f_low=nan, f_high=nan, noise_ein_v=nan, noise_figure_db=nan, psrr_db=nan, psrr_ripple_db=nan,
+                     psrr_mid_db=nan)
             if full:
                 m.update(self._full_metrics(p, conditions, b, r_source, gain))
             if thd_solve:
                 m["thd"] = self._thd_static(p, device, conditions, b, nvt, b.beta, gain)
             ratings = self._ratings(p, conditions, b)
+            ratings["p_r_decouple"] = b.op["supply_current"] ** 2 * p["r_decouple"]
+            ratings["v_c_decouple"] = np.where(p["c_decouple"] > 0, conditions.rail_max, 0.0) + 0.0 * gain
         ratings["vce_max"] = vce_max
         return StageResult({k: m[k] for k in METRICS}, b.op, ratings)
 
@@ -232,8 +307,26 @@ class StageModel(Topology):
         # contiguous: numpy's inner loops then run over thousands of values, not a few frequencies.
         net = self._network(p, c, b.small_signal, True, r_source, True)
         f_low, f_high = physics.minus_3db_corners(self._response(net, r_source), gain)
-        ein, nf = physics.noise_integrals(net, "out", "in", r_source, c.band, c.temperature)
-        return {"f_low": f_low, "f_high": f_high, "noise_ein_v": ein, "noise_figure_db": nf}
+        ein, nf = physics.noise_integrals(net, "out", "in", r_source, c.band)
+        return {"f_low": f_low, "f_high": f_high, "noise_ein_v": ein, "noise_figure_db": nf,
+                **self._psrr(p, c, b, r_source)}
+
+    def _psrr(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
+        """psrr_ripple_db, psrr_mid_db and psrr_db (the smaller), dB: 20*log10(1/|H|) of the
+        transfer from the rail to the load (signal source quiet, its resistance and the load in place)."""
+        net = self._network(p, c, b.small_signal, True, r_source, True, supply=True)
+        f = np.array([[c.ripple_frequency], [math.sqrt(c.band[0] * c.band[1])]])
+        v = net.at(2j * np.pi * f).solve({"vcc": np.full(1, physics.G_SHORT)}, ["out", "vcc"])
+        rejection = -20.0 * np.log10(np.abs(v["out"] / v["vcc"]))
+        return {"psrr_ripple_db": rejection[0], "psrr_mid_db": rejection[1], "psrr_db": np.minimum(*rejection)}
+
+    def psrr(self, parts: Parts, device: Device, conditions: Conditions,
+             hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
+        """Supply rejection alone (dB): psrr_ripple_db, psrr_mid_db, psrr_db per candidate (see
+        :meth:`evaluate`); the bias and one small network solve, for sizing c_decouple."""
+        p, b, _ = self._checked_solve(parts, device, conditions, hfe)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            return self._psrr(p, conditions, b, _source_resistance(b, conditions))
 
     @staticmethod
     def _response(net: physics.Network, r_source: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
@@ -271,8 +364,8 @@ class StageModel(Topology):
         """Resistors and capacitors present (optional ones only when non-zero) plus transistors."""
         n = next(iter(p.values())).size
         count = np.full(n, float(self.transistors))
-        for r in self.resistors + self.capacitors:
-            count += (p[r] > 0) if r in self.optional_parts else 1.0
+        for r in self.resistors + self.capacitors + self.supply_parts:
+            count += (p[r] > 0) if r in self.optional_parts or r in self.supply_parts else 1.0
         return count
 
     @abstractmethod
@@ -286,7 +379,8 @@ class StageModel(Topology):
         """:meth:`static_output` of solved candidates, their arrays as columns (candidates, 1)."""
         i_s = float(saturation_current(device.IS, c.temperature))
         col = lambda d: {k: np.asarray(v)[:, None] for k, v in d.items()}  # noqa: E731
-        return self.static_output(col(p), device, c, Bias(col(b.op), b.small_signal), nvt, i_s, beta[:, None])
+        local = replace(c, supply=np.asarray(b.op["v_supply_local"])[:, None])  # c_decouple holds it
+        return self.static_output(col(p), device, local, Bias(col(b.op), b.small_signal), nvt, i_s, beta[:, None])
 
     def _thd_static(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
                     beta: np.ndarray, gain: np.ndarray, samples: int = physics.THD_SAMPLES) -> np.ndarray:

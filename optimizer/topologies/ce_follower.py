@@ -91,24 +91,27 @@ class CEFollower(StageModel):
         return 2.0 * peak, vce_max
 
     def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool) -> physics.Network:
-        net = physics.Network(("in", "base", "bint", "emitter", "collector", "bint2", "emitter2", "out"),
-                              c.temperature)
-        add_divider_stage(net, p, ss, ac, r_source)
+                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
+        net, rail = self._new_network(("in", "base", "bint", "emitter", "collector", "bint2", "emitter2", "out"),
+                                      p, c, ac, supply)
+        add_divider_stage(net, p, ss, ac, r_source, rail)
         net.resistor("emitter", None, p["r_emitter"])
         net.resistor("collector", "bint2", ss[1]["rb"])
-        net.transistor("bint2", None, "emitter2", ss[1], ac)
+        net.transistor("bint2", rail, "emitter2", ss[1], ac)
         net.resistor("emitter2", None, p["r_follower"])
         net.capacitor("emitter2", "out", p["c_out"], ac, True)
         add_load(net, c, ac, load)
         return net
+
+    def _output_q(self, op: dict[str, np.ndarray]) -> np.ndarray:
+        return op["v_emitter2"]
 
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         op = b.op
         return {**divider_ratings(p, c, op),
                 "p_r_follower": op["v_emitter2"] ** 2 / p["r_follower"],
                 "p_q1": op["vce"] * op["ic"], "p_q2": op["vce2"] * op["ic2"],
-                "v_c_out": op["v_emitter2"]}
+                "v_c_out": np.full_like(op["ic"], c.rail_max)}
 
     def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
                       i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
@@ -128,10 +131,15 @@ class CEFollower(StageModel):
                                         vcb_ic=rc + re, vcb_ib=re, vcb_vbe=1.0, v_start=op["vbe"],
                                         iterations=physics.THD_ITERATIONS, **kw)
             v_e1 = re * (q1["ic"] + q1["ib"])
-            q2 = physics.solve_junction(c.supply - rc * q1["ic"] - v_e2_th, rc + device.RB, r_e2,
-                                        vcb0=rc * q1["ic"], vcb_ib=-(rc + device.RB), v_start=op["vbe2"],
+            # saturated, q1 takes no more collector current than keeps its collector at v_e1 + vce_sat
+            ic1 = np.minimum(q1["ic"], (c.supply - v_e1 - device.vce_sat) / rc)
+            q2 = physics.solve_junction(c.supply - rc * ic1 - v_e2_th, rc + device.RB, r_e2,
+                                        vcb0=rc * ic1, vcb_ib=-(rc + device.RB), v_start=op["vbe2"],
                                         iterations=physics.THD_ITERATIONS, **kw)
             v_c1 = np.maximum(c.supply - rc * (q1["ic"] + q2["ib"]), v_e1 + device.vce_sat)
-            v_e2 = np.minimum(v_e2_th + r_e2 * (q2["ic"] + q2["ib"]), v_c1 - device.RB * q2["ib"] - q2["vbe"])
+            # the follower cannot lift its emitter above its base less Vbe; cut off, the emitter
+            # rests at the Thevenin voltage of r_follower and the charged c_out (never below it)
+            v_e2 = np.minimum(v_e2_th + r_e2 * (q2["ic"] + q2["ib"]),
+                              np.maximum(v_c1 - device.RB * q2["ib"] - q2["vbe"], v_e2_th))
             return v_e2 - op["v_emitter2"]
         return out

@@ -57,6 +57,9 @@ class DividerCE(StageModel):
     def _extra_op(self, p: Parts, ie: np.ndarray) -> dict[str, np.ndarray]:
         return {}
 
+    def _output_q(self, op: dict[str, np.ndarray]) -> np.ndarray:
+        return op["v_collector"]
+
     def _midband(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
         rth = physics.parallel(p["r_top"], p["r_bottom"])
         r_load = physics.parallel(p["r_collector"], np.full_like(rth, c.load_impedance))
@@ -76,9 +79,9 @@ class DividerCE(StageModel):
         return 2.0 * np.minimum(cut, sat), vce_max
 
     def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool) -> physics.Network:
-        net = physics.Network(self._nodes(), c.temperature)
-        add_divider_stage(net, p, ss, ac, r_source)
+                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
+        net, rail = self._new_network(self._nodes(), p, c, ac, supply)
+        add_divider_stage(net, p, ss, ac, r_source, rail)
         self._emitter_network(net, p, ac)
         net.capacitor("collector", "out", p["c_out"], ac, True)
         add_load(net, c, ac, load)
@@ -87,11 +90,12 @@ class DividerCE(StageModel):
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         op = b.op
         ie = op["ic"] + op["ib"]
-        r = {**divider_ratings(p, c, op), "v_c_out": op["v_collector"]}
-        r.update(self._extra_ratings(p, op, ie))
+        r = {**divider_ratings(p, c, op), "v_c_out": np.full_like(ie, c.rail_max)}
+        r.update(self._extra_ratings(p, c, op, ie))
         return r
 
-    def _extra_ratings(self, p: Parts, op: dict[str, np.ndarray], ie: np.ndarray) -> dict[str, np.ndarray]:
+    def _extra_ratings(self, p: Parts, c: Conditions, op: dict[str, np.ndarray],
+                       ie: np.ndarray) -> dict[str, np.ndarray]:
         return {}
 
     def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
@@ -132,20 +136,24 @@ def add_load(net: physics.Network, c: Conditions, ac: bool, load: bool) -> None:
 
 
 def add_divider_stage(net: physics.Network, p: Parts, ss: list[dict[str, np.ndarray]], ac: bool,
-                      r_source: np.ndarray | None) -> None:
-    """The source, c_in, the bias divider, q1 and r_collector; the emitter side is the caller's."""
+                      r_source: np.ndarray | None, rail: str | None) -> None:
+    """The source, c_in, the bias divider, q1 and r_collector (r_top and r_collector return to
+    ``rail``, None = AC ground); the emitter side is the caller's."""
     if r_source is not None:
         net.admittance("in", None, 1.0 / r_source)
     net.capacitor("in", "base", p["c_in"], ac, True)
-    net.resistor("base", None, p["r_top"])
+    net.resistor("base", rail, p["r_top"])
     net.resistor("base", None, p["r_bottom"])
     net.resistor("base", "bint", ss[0]["rb"])
     net.transistor("bint", "collector", "emitter", ss[0], ac)
-    net.resistor("collector", None, p["r_collector"])
+    net.resistor("collector", rail, p["r_collector"])
 
 
 def divider_ratings(p: Parts, c: Conditions, op: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-    """Resistor powers (W) of the divider stage and the DC voltage on c_in (V)."""
-    return {"p_r_top": (c.supply - op["v_base"]) ** 2 / p["r_top"], "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
-            "p_r_collector": (c.supply - op["v_collector"]) ** 2 / p["r_collector"],
-            "p_r_emitter": (op["ic"] + op["ib"]) ** 2 * p["r_emitter"], "v_c_in": op["v_base"]}
+    """Resistor powers (W) of the divider stage and the largest voltage on c_in (V, the rail at
+    its maximum: see StageModel._ratings)."""
+    vcc = op["v_supply_local"]
+    return {"p_r_top": (vcc - op["v_base"]) ** 2 / p["r_top"], "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
+            "p_r_collector": (vcc - op["v_collector"]) ** 2 / p["r_collector"],
+            "p_r_emitter": (op["ic"] + op["ib"]) ** 2 * p["r_emitter"],
+            "v_c_in": np.full_like(vcc, c.rail_max)}

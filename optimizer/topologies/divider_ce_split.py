@@ -8,7 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 from optimizer import physics
-from optimizer.topologies.base import Parts
+from optimizer.topologies.base import Conditions, Parts
 from optimizer.topologies.divider_ce import DividerCE
 
 
@@ -32,5 +32,8 @@ class DividerCESplit(DividerCE):
     def _extra_op(self, p: Parts, ie: np.ndarray) -> dict[str, np.ndarray]:
         return {"v_e2": ie * p["r_emitter_dc"]}
 
-    def _extra_ratings(self, p: Parts, op: dict[str, np.ndarray], ie: np.ndarray) -> dict[str, np.ndarray]:
-        return {"p_r_emitter_dc": ie ** 2 * p["r_emitter_dc"], "v_c_emitter": op["v_e2"]}
+    def _extra_ratings(self, p: Parts, c: Conditions, op: dict[str, np.ndarray],
+                       ie: np.ndarray) -> dict[str, np.ndarray]:
+        # the bypassed node never rises above the divider's open-circuit voltage at the highest rail
+        return {"p_r_emitter_dc": ie ** 2 * p["r_emitter_dc"],
+                "v_c_emitter": c.rail_max * p["r_bottom"] / (p["r_top"] + p["r_bottom"])}

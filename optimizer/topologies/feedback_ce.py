@@ -67,8 +67,8 @@ class FeedbackCE(StageModel):
         return 2.0 * np.minimum(cut, sat), np.minimum(c.supply, op["v_collector"] + cut)
 
     def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool) -> physics.Network:
-        net = physics.Network(("in", "base", "bint", "emitter", "collector", "out"), c.temperature)
+                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
+        net, rail = self._new_network(("in", "base", "bint", "emitter", "collector", "out"), p, c, ac, supply)
         if r_source is not None:
             net.admittance("in", None, 1.0 / r_source)
         net.capacitor("in", "base", p["c_in"], ac, True)
@@ -76,16 +76,20 @@ class FeedbackCE(StageModel):
         net.resistor("collector", "base", p["r_feedback"])
         net.transistor("bint", "collector", "emitter", ss[0], ac)
         net.resistor("emitter", None, p["r_emitter"])
-        net.resistor("collector", None, p["r_collector"])
+        net.resistor("collector", rail, p["r_collector"])
         net.capacitor("collector", "out", p["c_out"], ac, True)
         add_load(net, c, ac, load)
         return net
+
+    def _output_q(self, op: dict[str, np.ndarray]) -> np.ndarray:
+        return op["v_collector"]
 
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         op = b.op
         ie = op["ic"] + op["ib"]
         return {"p_r_feedback": op["ib"] ** 2 * p["r_feedback"], "p_r_collector": ie ** 2 * p["r_collector"],
-                "p_r_emitter": ie ** 2 * p["r_emitter"], "v_c_in": op["v_base"], "v_c_out": op["v_collector"]}
+                "p_r_emitter": ie ** 2 * p["r_emitter"],
+                "v_c_in": np.full_like(ie, c.rail_max), "v_c_out": np.full_like(ie, c.rail_max)}
 
     def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
                       i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
