@@ -17,7 +17,6 @@ import json
 import os
 import re
 import shutil
-import time
 import urllib.error
 import urllib.request
 from pathlib import Path
@@ -25,6 +24,7 @@ from pathlib import Path
 import pytest
 import yaml
 from test_api_server import live_server  # the suite's one way of starting the real server
+from wcag import contrast_ratio
 
 ROOT = Path(__file__).resolve().parents[1]
 SHOTS = ROOT / "test-artifacts" / "screenshots"
@@ -46,29 +46,6 @@ from selenium.webdriver.support.ui import Select, WebDriverWait  # noqa: E402
 
 #: display unit -> factor to SI (the pages show the plots' units)
 UNIT_TO_SI = {"V/V": 1.0, "Vpp": 1.0, "mA": 1e-3, "kΩ": 1e3, "Ω": 1.0, "dB": 1.0, "%": 1e-2}
-
-
-def relative_luminance(hex_colour: str) -> float:
-    """WCAG 2.x relative luminance of an sRGB colour (W3C WCAG 2.2, definition 'relative
-    luminance': linearise each channel, then 0.2126 R + 0.7152 G + 0.0722 B)."""
-    channels = [int(hex_colour[i:i + 2], 16) / 255 for i in (1, 3, 5)]
-    r, g, b = [c / 12.92 if c <= 0.04045 else ((c + 0.055) / 1.055) ** 2.4 for c in channels]
-    return 0.2126 * r + 0.7152 * g + 0.0722 * b
-
-
-def contrast_ratio(foreground: str, background: str) -> float:
-    """WCAG 2.x contrast ratio (L1 + 0.05) / (L2 + 0.05), L1 the lighter (W3C WCAG 2.2,
-    definition 'contrast ratio'; success criterion 1.4.3 asks 4.5:1 for body text)."""
-    high, low = sorted((relative_luminance(foreground), relative_luminance(background)), reverse=True)
-    return (high + 0.05) / (low + 0.05)
-
-
-def test_contrast_formula_on_published_values():
-    # WCAG 2.x: black on white is the maximum 21:1; #777777 on white is the customary
-    # example of a grey just short of 4.5:1 (4.48:1) -- common practice among contrast checkers
-    assert contrast_ratio("#000000", "#ffffff") == pytest.approx(21.0)
-    assert contrast_ratio("#777777", "#ffffff") == pytest.approx(4.48, abs=0.01)
-    assert contrast_ratio("#ffffff", "#ffffff") == pytest.approx(1.0)
 
 
 # --- fixtures -----------------------------------------------------------------------------
