@@ -24,6 +24,10 @@ demo: $(STAMP)
 	@echo "the textbook hand design of the same spec, for comparison:"
 	$(BIN)/stagefit evaluate specs/bench_stock_preamp.yaml --topology divider_ce \
 	    --set r_top=270k --set r_bottom=18k --set r_collector=8k2 --set r_emitter=220
+	@echo
+	@$(BIN)/python -c "from optimizer.spec import load_spec; from optimizer.search import spec_search_id; \
+	print('to see this search in the browser, run:  $(BIN)/stagefit serve  and open ' \
+	      'http://127.0.0.1:8750/searches/' + spec_search_id(load_spec('specs/bench_stock_preamp.yaml')))"
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q

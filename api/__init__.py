@@ -8,8 +8,8 @@ key given in ``config`` (same names) wins:
                            ``sqlite:///...`` or ``postgresql://...``
                            (default ``<STAGEFIT_DATA_DIR>/stagefit.journal``)
 ``STAGEFIT_DATA_DIR``      directory for the default journal (default ``./runs``)
-``STAGEFIT_API_TOKEN``     when set, every route but ``/healthz`` needs
-                           ``Authorization: Bearer <token>``
+``STAGEFIT_API_TOKEN``     when set, every route but ``/healthz`` and the browser pages'
+                           data-free shells and assets needs ``Authorization: Bearer <token>``
 ``STAGEFIT_MAX_TRIALS``    largest trial budget a posted spec may ask for (default 20000)
 ``STAGEFIT_MAX_BODY``      largest request body in bytes (default 262144)
 ``STAGEFIT_MAX_WAIT``      longest ``?wait=`` in seconds (default 60; longer is clamped)
@@ -129,11 +129,11 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     The background pool (unless queue-only) is started here and resumes every stored
     search that is queued or running; it is ``app.extensions["stagefit"].jobs``.
     """
-    from api import jobs, problems, routes
+    from api import jobs, pages, problems, routes
     from optimizer.storage import open_storage
 
     settings = Settings.load(config)
-    app = Flask("api")
+    app = Flask("api", static_folder=None)  # the pages blueprint serves its own assets
     app.json = _JSONProvider(app)
     app.config["MAX_CONTENT_LENGTH"] = settings.max_body
     problems.register(app)
@@ -146,8 +146,8 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     @app.before_request
     def _authorise() -> None:
         token = settings.api_token
-        if token is None or request.path == "/healthz":
-            return None
+        if token is None or request.path == "/healthz" or request.endpoint in pages.PUBLIC_ENDPOINTS:
+            return None  # the pages' shells and assets carry no data; their data routes need the token
         scheme, _, given = request.headers.get("Authorization", "").partition(" ")
         if scheme.lower() == "bearer" and hmac.compare_digest(given.strip().encode(), token.encode()):
             return None
@@ -160,5 +160,6 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
                         "workers": 0 if settings.queue_only else settings.workers})
 
     app.register_blueprint(routes.blueprint, url_prefix="/v1")
+    app.register_blueprint(pages.blueprint)  # the browser pages (api/pages.py)
     pool.start()
     return app

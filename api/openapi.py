@@ -110,6 +110,8 @@ def _schemas() -> dict[str, Any]:
             "id": {"type": "string"}, "name": {"type": ["string", "null"]},
             "status": {"enum": STATUSES}, "trials_done": {"type": "integer", "minimum": 0},
             "trials_running": {"type": "integer", "minimum": 0},
+            "trials_feasible": {"type": "integer", "minimum": 0,
+                                "description": "finished trials whose design meets every limit"},
             "budget": {"type": "integer", "minimum": 0}, "elapsed": NUMBER_OR_NULL,
             "created": {"type": ["string", "null"]},
             "best": {"anyOf": [_ref("Candidate"), {"type": "null"}]},
@@ -286,6 +288,11 @@ def _paths() -> dict[str, Any]:
                                     "404")}},
         "/v1/searches/{search_id}/candidates/{rank}/response.svg": {"get": {
             "operationId": "responsePlot", "summary": "frequency response of the candidate as SVG",
+            "parameters": [SEARCH_ID, RANK],
+            "responses": _responses({"200": {"description": "SVG plot", **svg}}, "404", "501")}},
+        "/v1/searches/{search_id}/candidates/{rank}/transfer.svg": {"get": {
+            "operationId": "transferPlot",
+            "summary": "static transfer curve of the candidate (load against source voltage) as SVG",
             "parameters": [SEARCH_ID, RANK],
             "responses": _responses({"200": {"description": "SVG plot", **svg}}, "404", "501")}},
     }

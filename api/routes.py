@@ -543,6 +543,14 @@ def response_svg(search_id: str, rank: int) -> Response:
     return Response(_plots().response_plot(record, fmt="svg"), mimetype=SVG)
 
 
+@blueprint.get("/searches/<search_id>/candidates/<int(signed=True):rank>/transfer.svg")
+def transfer_svg(search_id: str, rank: int) -> Response:
+    negotiate((SVG,))
+    record, result = _candidate(search_id, rank)
+    return Response(_plots().transfer_plot(record, fmt="svg", spec_swing=result.spec.limits.swing_min),
+                    mimetype=SVG)
+
+
 @blueprint.get("/searches/<search_id>/front")
 def front(search_id: str) -> Response:
     negotiate((JSON,))

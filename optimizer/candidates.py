@@ -108,9 +108,7 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
                        "temperature": list(spec.temperature), "load_capacitance": conditions.load_capacitance,
                        "signal_vpp": conditions.signal_vpp},
         "parts": {role: {k: rec[k] for k in ("value", "label", "part_id")} for role, rec in records.items()},
-        "transistor": {"id": device.id, "polarity": device.polarity, "hfe_min": device.hfe_min,
-                       "hfe_max": device.hfe_max, "hfe_typ": device.hfe_typ, "vce_sat": device.vce_sat,
-                       "vceo_max": device.vceo_max, "p_max": device.p_max, "model": device.spice_model()},
+        "transistor": device.record(),
         "metrics": metrics,
         "operating_point": op,
         "operating_point_spread": {

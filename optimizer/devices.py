@@ -105,6 +105,11 @@ class Device:
         return cls.from_row({**{k: transistor[k] for k in top},
                              **{k: model[k] for k in SPICE_KEYS + FLICKER_KEYS if k in model}})
 
+    def record(self) -> dict:
+        """The candidate record's "transistor" block (what from_record reads back)."""
+        top = {f.name: getattr(self, f.name) for f in fields(self) if f.name not in SPICE_KEYS}
+        return {**top, "model": self.spice_model()}
+
     def spice_model(self) -> dict[str, float]:
         """SPICE .model parameters (keys IS BF NF VAF RB CJE CJC TF KF AF)."""
         return {k: float(getattr(self, k)) for k in SPICE_KEYS + FLICKER_KEYS}

@@ -17,6 +17,7 @@ from matplotlib.figure import Figure
 
 from optimizer.candidates import design_from_record
 from optimizer.errors import InputError
+from optimizer.palette import PLOT_COLOURS
 from optimizer.scoring import pareto_mask
 from optimizer.spec import DIRECTION_ALIASES
 from optimizer.units import format_value
@@ -49,8 +50,7 @@ METRIC_AXES: dict[str, tuple[str, float, str]] = {
     "cost": ("cost per unit", 1.0, "currency"),
     "yield": ("yield", 100.0, "%"),
 }
-COLOURS = {"feasible": "#1f77b4", "infeasible": "#b0b0b0", "front": "#d62728", "chosen": "#ff9900",
-           "band": "#2ca02c", "model": "#1f77b4", "ideal": "#7f7f7f", "limit": "#d62728", "spec": "#2ca02c"}
+COLOURS = PLOT_COLOURS  # our own colour-blind-safe palette, the same as the browser pages'
 
 
 # ---- output ----------------------------------------------------------------------------

@@ -219,6 +219,25 @@ def limit_margins(spec: Spec, metrics: dict[str, np.ndarray]) -> np.ndarray:
     return margin
 
 
+def limit_table(spec: Spec, metrics: dict[str, float]) -> list[dict]:
+    """Each requirement the spec sets, for one design: the metric, its value and the limit (SI),
+    ``kind`` "min" or "max", and the relative ``margin`` (>= 0: met; as in limit_margins). The
+    gain is judged by its error against the tolerance (dB), the band by its -3 dB corners (Hz)."""
+    rows = [("gain_tolerance", "gain_error_db", "max", spec.gain.tolerance_db,
+             abs(metrics.get("gain_error_db", float("nan")))),
+            ("band_low", "f_low", "max", spec.band[0], metrics.get("f_low")),
+            ("band_high", "f_high", "min", spec.band[1], metrics.get("f_high"))]
+    rows += [(name, metric, "min" if sign > 0 else "max", getattr(spec.limits, name), metrics.get(metric))
+             for name, metric, sign in LIMIT_METRICS if getattr(spec.limits, name) is not None]
+    out = []
+    for name, metric, kind, limit, value in rows:
+        value = float("nan") if value is None else float(value)
+        margin = (value - limit) / limit if kind == "min" else (limit - value) / limit
+        out.append({"limit": name, "metric": metric, "kind": kind, "limit_value": float(limit),
+                    "value": value, "margin": margin if np.isfinite(margin) else None})
+    return out
+
+
 def desirability_terms(spec: Spec, metrics: dict[str, np.ndarray]) -> dict[str, tuple[np.ndarray, float]]:
     """Each term of the documented score above: name -> (value in (0, 1] per candidate, weight).
     Objective terms are named after their metric."""

@@ -496,8 +496,7 @@ def candidate_from_record(space: SearchSpace, record: dict) -> dict:
                            "load_impedance": spec.load_impedance, "band": list(spec.band),
                            "temperature": list(spec.temperature)},
             "parts": parts,
-            "transistor": {"id": device.id, "polarity": device.polarity, "hfe_min": device.hfe_min,
-                           "hfe_max": device.hfe_max, "model": device.spice_model()},
+            "transistor": device.record(),
             "metrics": dict(record["metrics"]), "violations": dict(record["violations"]),
             **{k: record[k] for k in ("basis", "score_terms", "note", "variants") if k in record},
             "trial": record.get("trial")}
@@ -580,6 +579,12 @@ def _counts(study: optuna.Study) -> tuple[int, int]:
     """(finished, running) trials; failed ones do not count (they are retried)."""
     states = [t.state for t in study.get_trials(deepcopy=False)]
     return states.count(TrialState.COMPLETE), states.count(TrialState.RUNNING)
+
+
+def _feasible_count(study: optuna.Study) -> int:
+    """Finished trials whose design meets every limit (stored constraint violation 0)."""
+    return sum(1 for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
+               if t.system_attrs.get("constraints:violation", 1.0) <= 0)
 
 
 def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[], bool] | None = None,
@@ -753,7 +758,8 @@ def _status(study: optuna.Study, spec: Spec, best: dict | None) -> dict:
     started = attrs.get("started")
     elapsed = attrs.get("elapsed") if attrs.get("status") == "done" else (time.time() - started if started else 0.0)
     return {"id": study.study_name, "name": spec.name, "status": attrs.get("status", "queued"),
-            "trials_done": finished, "trials_running": running, "budget": int(attrs["budget"]),
+            "trials_done": finished, "trials_running": running, "trials_feasible": _feasible_count(study),
+            "budget": int(attrs["budget"]),
             "elapsed": float(elapsed or 0.0), "created": attrs.get("created"), "best": best}
 
 
