@@ -42,7 +42,7 @@ def _check_parts(topology: Topology, parts: dict[str, float]) -> None:
 
 def _part_record(catalog: Catalog, spec: Spec, role: str, value: float) -> dict:
     kind = "capacitor" if role.startswith("c_") else "resistor"
-    row = catalog.part_for(kind, value)
+    row = catalog.part_for(kind, value, allow_class2=spec.parts.allow_class2_coupling)
     unit = "F" if kind == "capacitor" else ""
     record = {"value": float(value), "label": format_value(value, unit), "part_id": None}
     series = spec.parts.capacitor_series if kind == "capacitor" else spec.parts.resistor_series
@@ -69,7 +69,8 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
     missing_caps = [c for c in topology.capacitors if c not in parts]
     if missing_caps:
         allowed = catalog.capacitor_values(spec.parts.capacitor_series, *spec.parts.capacitor_range,
-                                           in_stock_only=spec.parts.in_stock_only)
+                                           in_stock_only=spec.parts.in_stock_only,
+                                           allow_class2=spec.parts.allow_class2_coupling)
         sized = size_capacitors(topology, {r: arrays[r] for r in topology.resistors}, device,
                                 conditions, allowed)
         arrays.update({c: sized[c] for c in missing_caps})

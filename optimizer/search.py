@@ -38,11 +38,12 @@ from optimizer.devices import Device
 from optimizer.errors import InputError
 from optimizer.sampler import NeighbourSampler
 from optimizer.sizing import size_capacitors
-from optimizer.spec import Spec, check_against_catalog, parse_spec, spec_to_dict
+from optimizer.spec import Spec, parse_spec, spec_to_dict
 from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, sync
 from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.units import format_value
+from optimizer.validation import validate_spec
 
 optuna.logging.set_verbosity(optuna.logging.WARNING)
 
@@ -72,8 +73,9 @@ class PartTable:
     unit_price: np.ndarray
 
     @classmethod
-    def from_catalog(cls, catalog: Catalog, kind: str, values: np.ndarray) -> "PartTable":
-        rows = catalog.parts_for(kind, values)
+    def from_catalog(cls, catalog: Catalog, kind: str, values: np.ndarray,
+                     allow_class2: bool = False) -> "PartTable":
+        rows = catalog.parts_for(kind, values, allow_class2=allow_class2)
         rating_key = "power_rating" if kind == "resistor" else "voltage_rating"
         return cls(values=np.asarray(values, dtype=float), part_id=rows["part_id"].to_numpy(dtype=object),
                    tolerance=rows["tolerance"].to_numpy(dtype=float),
@@ -124,10 +126,11 @@ class SearchSpace:
 
     @classmethod
     def _build(cls, spec: Spec, catalog: Catalog) -> "SearchSpace":
-        check_against_catalog(spec, catalog)
+        validate_spec(spec, catalog)
         p = spec.parts
         r_values = catalog.resistor_values(p.resistor_series, *p.resistor_range, in_stock_only=p.in_stock_only)
-        c_values = catalog.capacitor_values(p.capacitor_series, *p.capacitor_range, in_stock_only=p.in_stock_only)
+        c_values = catalog.capacitor_values(p.capacitor_series, *p.capacitor_range, in_stock_only=p.in_stock_only,
+                                            allow_class2=p.allow_class2_coupling)
         stock_note = " in stock" if p.in_stock_only else ""
         if r_values.size < 2:
             raise InputError.single("parts.resistor_range", list(p.resistor_range),
@@ -140,7 +143,7 @@ class SearchSpace:
         devices = {d: Device.from_row(catalog.transistor(d)) for d in spec.devices}
         prices = {d: float(catalog.transistor(d).get("unit_price") or 0.0) for d in spec.devices}
         return cls(spec, catalog, PartTable.from_catalog(catalog, "resistor", r_values),
-                   PartTable.from_catalog(catalog, "capacitor", c_values), devices, prices, tuple(spec.topologies))
+                   PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices, tuple(spec.topologies))
 
     # ---- trials <-> designs ----------------------------------------------------------
     def suggest(self, trial: optuna.Trial) -> Design:

@@ -75,6 +75,8 @@ class Topology(ABC):
     resistors: ClassVar[tuple[str, ...]]
     capacitors: ClassVar[tuple[str, ...]]
     transistors: ClassVar[int]
+    inverting: ClassVar[bool]  # True: the mid-band gain source -> load is negative
+    polarities: ClassVar[tuple[str, ...]]  # transistor polarities the stage is drawn for ("npn", "pnp")
     optional_parts: ClassVar[tuple[str, ...]] = ()  # may be 0 (absent)
 
     @abstractmethod
