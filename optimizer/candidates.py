@@ -131,10 +131,20 @@ def _cautions(spec: Spec, result, rating_limits: dict[str, float]) -> list[str]:
         margin = sign * (metrics[metric] - limit) / limit
         if 0 <= margin < NEAR_LIMIT:
             notes.append(f"{metric} is within {margin:.0%} of its limit {limit_name} = {limit:g}")
+    notes.append("predicted, not measured: verify the built stage before relying on it")
+    return notes + hazard_cautions(spec)
+
+
+def hazard_cautions(spec: Spec) -> list[str]:
+    """The shock-hazard caution, only where the supply (above HIGH_SUPPLY) or the scenario
+    (``mains_powered``) calls for it."""
+    notes = []
     if spec.supply > HIGH_SUPPLY:
-        notes.append(f"supply {spec.supply:g} V is above {HIGH_SUPPLY:g} V: treat it as hazardous")
-    notes.append("predicted, not measured: verify the built stage, and follow local electrical "
-                 "codes and licensed practice for anything mains-powered")
+        notes.append(f"supply {spec.supply:g} V is above {HIGH_SUPPLY:g} V: treat it as a shock and energy "
+                     "hazard; follow local electrical codes and licensed practice")
+    if spec.mains_powered:
+        notes.append("mains-powered: the supply is derived from the mains; build and test it only under local "
+                     "electrical codes and licensed practice, with the mains side enclosed and isolated")
     return notes
 
 

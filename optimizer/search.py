@@ -14,7 +14,6 @@ the same spec, seed and budget give the same trials in a single process.
 """
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import time
@@ -38,7 +37,7 @@ from optimizer.devices import Device
 from optimizer.errors import InputError
 from optimizer.sampler import NeighbourSampler
 from optimizer.sizing import size_capacitors
-from optimizer.spec import Spec, parse_spec, spec_to_dict
+from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
 from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, sync
 from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
@@ -645,7 +644,7 @@ def delete_search(storage: BaseStorage, search_id: str) -> None:
 def spec_search_id(spec: Spec) -> str:
     """A stable id for a spec (its name and a hash of its canonical form): the CLI reuses
     a finished search of the very same spec instead of running it again."""
-    digest = hashlib.sha256(json.dumps(spec_to_dict(spec), sort_keys=True).encode()).hexdigest()[:10]
+    digest = spec_digest(spec)
     slug = "".join(ch if ch.isalnum() else "-" for ch in spec.name.lower()).strip("-")[:40] or "spec"
     return f"{slug}-{digest}"
 

@@ -9,6 +9,7 @@ each naming the dotted field path, the value given and what would be valid.
 from __future__ import annotations
 
 import difflib
+import hashlib
 import json
 import math
 from pathlib import Path
@@ -649,6 +650,13 @@ def spec_to_dict(spec: Spec) -> dict:
     data["gain"] = {"target": spec.gain.target, "inverting": spec.gain.inverting,
                     "tolerance_db": spec.gain.tolerance_db}
     return data
+
+
+def spec_digest(spec: Spec) -> str:
+    """First 10 hex digits of the SHA-256 of the spec's canonical JSON: its identity in
+    search ids and on every export (two specs with the same digest ask the same)."""
+    canonical = json.dumps(spec_to_dict(spec), sort_keys=True).encode()
+    return hashlib.sha256(canonical).hexdigest()[:10]
 
 
 def spec_json_schema() -> dict:
