@@ -32,6 +32,8 @@ def _evaluate_flat(topology: Topology, parts: dict[str, np.ndarray], device: Dev
     result = topology.evaluate(flat, device, conditions, hfe=hfe.reshape(-1), full=full)
     out = {k: np.asarray(v).reshape(shape) for k, v in result.metrics.items()}
     out.update({k: np.asarray(v).reshape(shape) for k, v in result.ratings.items()})
+    out.update({k: np.asarray(v).reshape(shape) for k, v in result.operating_point.items()
+                if k.startswith("v_") and k not in out})  # DC node voltages, for their spread
     out["active"] = np.asarray(result.operating_point["active"]).reshape(shape)
     return out
 
@@ -39,7 +41,7 @@ def _evaluate_flat(topology: Topology, parts: dict[str, np.ndarray], device: Dev
 def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: Device,
                conditions: Conditions, tolerances: dict[str, float],
                temperature_range: tuple[float, float]) -> dict[str, tuple[np.ndarray, np.ndarray]]:
-    """(low, high) of every metric over all corners: each part at +-tolerance, hFE at
+    """(low, high) of every metric, rating and DC node voltage (v_base, ...) over all corners: each part at +-tolerance, hFE at
     min and max, temperature at both ends. Arrays over candidates."""
     roles = list(parts)
     signs = np.array(list(itertools.product((-1.0, 1.0), repeat=len(roles))))  # (corners, roles)
