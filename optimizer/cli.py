@@ -240,7 +240,8 @@ def _run_or_reuse(args: argparse.Namespace, spec):
     elif known[search_id]["status"] in ("cancelled", "failed"):
         print(f"resuming the interrupted search {search_id} of this spec from {args.storage}", file=sys.stderr)
         extend_search(storage, search_id, 0)  # queue it again; finished trials are kept
-    run_search(storage, search_id, progress=_progress_printer(quiet=args.quiet))
+    done = search_id in known and known[search_id]["status"] == "done"
+    run_search(storage, search_id, progress=_progress_printer(quiet=args.quiet or done))
     return load_search(storage, search_id, top=max(args.top, 1))
 
 
@@ -302,7 +303,7 @@ def _cmd_search(args: argparse.Namespace) -> int:
         if best and not best["feasible"]:
             print(_infeasible_summary(spec, best))
         if best:
-            print(f"rank 1 basis: {(best.get('basis') or {}).get('label') or 'basis not stated'}")
+            print(f"basis of the first design: {(best.get('basis') or {}).get('label') or 'basis not stated'}")
         print(_table(_candidate_rows(shown, columns, currency=catalog.currency), markdown))
         if args.front:
             picked = sorted(set(np.linspace(0, len(front) - 1, min(len(front), max(args.top, 2))).round().astype(int))) \
