@@ -139,8 +139,9 @@ def hazard_cautions(spec: Spec) -> list[str]:
     """The shock-hazard caution, only where the supply (above HIGH_SUPPLY) or the scenario
     (``mains_powered``) calls for it."""
     notes = []
-    if spec.supply > HIGH_SUPPLY:
-        notes.append(f"supply {spec.supply:g} V is above {HIGH_SUPPLY:g} V: treat it as a shock and energy "
+    highest = max(spec.supply, spec.supply_max)
+    if highest > HIGH_SUPPLY:
+        notes.append(f"supply {highest:g} V is above {HIGH_SUPPLY:g} V: treat it as a shock and energy "
                      "hazard; follow local electrical codes and licensed practice")
     if spec.mains_powered:
         notes.append("mains-powered: the supply is derived from the mains; build and test it only under local "
