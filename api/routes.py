@@ -507,7 +507,7 @@ def bom(search_id: str, rank: int) -> Response:
     kind = negotiate((JSON, CSV))
     units = query_int("units", 1, 1, MAX_UNITS)
     record, result = _candidate(search_id, rank)
-    built = kit(record, _catalog(result.spec.parts.catalog), units)
+    built = kit(record, _catalog(result.spec.parts.catalog), units, result.spec)
     if kind == CSV:
         return _csv_response(built.to_csv(), f"{search_id}-rank{rank}-bom-{units}.csv")
     return jsonify(built.to_dict())
