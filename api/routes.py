@@ -192,7 +192,7 @@ def catalogs() -> Response:
     for name in list_catalogs():
         summary = _catalog(name).summary()
         items.append({"name": name, "description": summary["description"],
-                      "currency": summary["currency"], "real_stock": summary["real_stock"],
+                      "currency": summary["currency"], "stock_tracked": summary["stock_tracked"],
                       "url": url_for("v1.catalog", name=name)})
     return jsonify({"catalogs": items})
 
@@ -231,7 +231,8 @@ EVALUATE_KEYS = ("spec", "topology", "parts", "device", "samples")
 def _spec_from(data: Any, prefix: str = "") -> tuple[Any, Any]:
     """Parse a spec mapping and check it against its catalog: (spec, catalog)."""
     from optimizer.catalog import list_catalogs, load_catalog
-    from optimizer.spec import check_against_catalog, parse_spec
+    from optimizer.spec import parse_spec
+    from optimizer.validation import validate_spec
 
     try:
         spec = parse_spec(data)
@@ -245,7 +246,7 @@ def _spec_from(data: Any, prefix: str = "") -> tuple[Any, Any]:
                                          "one of " + ", ".join(list_catalogs()))])
     found = load_catalog(spec.parts.catalog)
     try:
-        check_against_catalog(spec, found)
+        validate_spec(spec, found)
     except InputError as error:
         raise _input(error, prefix) from None
     return spec, found
@@ -506,7 +507,7 @@ def bom(search_id: str, rank: int) -> Response:
     kind = negotiate((JSON, CSV))
     units = query_int("units", 1, 1, MAX_UNITS)
     record, result = _candidate(search_id, rank)
-    built = kit(record, _catalog(result.spec.parts.catalog), units)
+    built = kit(record, _catalog(result.spec.parts.catalog), units, result.spec)
     if kind == CSV:
         return _csv_response(built.to_csv(), f"{search_id}-rank{rank}-bom-{units}.csv")
     return jsonify(built.to_dict())
@@ -514,14 +515,11 @@ def bom(search_id: str, rank: int) -> Response:
 
 @blueprint.get("/searches/<search_id>/candidates/<int(signed=True):rank>/netlist")
 def netlist(search_id: str, rank: int) -> Response:
-    from optimizer.netlist import spice_netlist
+    from optimizer.netlist import candidate_netlist
 
     negotiate((TEXT,))
-    record, result = _candidate(search_id, rank)
-    parts = {role: part["value"] for role, part in record["parts"].items()}
-    text = spice_netlist(record["topology"], parts, record["transistor"]["model"], result.spec,
-                         device_id=record["transistor"]["id"],
-                         title=f"stagefit search {search_id} rank {rank}: {record['topology']}")
+    record, _ = _candidate(search_id, rank)
+    text = candidate_netlist(record, title=f"stagefit search {search_id} rank {rank}: {record['topology']}")
     response = Response(text, mimetype=TEXT)
     response.headers["Content-Disposition"] = f'inline; filename="{search_id}-rank{rank}.cir"'
     return response

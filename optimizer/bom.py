@@ -1,36 +1,58 @@
 """Bill of materials and kitting of a candidate against a catalog's stock.
 
-``kit(candidate, catalog, units)`` turns a candidate record into one line per distinct part
-(resistors, capacitors and the transistor(s)), with the quantity for ``units`` builds, the
-stock on hand, how many are short and the prices. Roles that use the same value share one
-line, which is why designs that reuse values make short kits. Stock is read as the catalog
-gives it: a blank stock cell means not tracked (never short).
+``kit(candidate, catalog, units, spec)`` turns a candidate record into one line per distinct
+part (resistors, capacitors and the transistor(s)) a buyer can order from and an assembler
+can build from: reference designators, roles, value, tolerance, rating, package, dielectric or
+technology, the orientation of polarised parts, the quantity for ``units`` builds, the stock on
+hand, how many are short and the prices. Roles that use the same value share one line, which
+is why designs that reuse values make short kits. Stock is read as the catalog gives it: a
+blank stock cell means not tracked (never short).
+
+Designators are the netlist's (:func:`optimizer.netlist.designators`): R1.. and C1.. in the
+order of the topology's netlist elements, Q1, Q2; lines are ordered resistors, capacitors,
+transistors, each by its first designator. An electrolytic's ``+`` goes to the terminal at
+the higher DC voltage, computed from the candidate's operating point.
 
 Choice of catalog row for a value: the candidate's own ``part_id`` when it covers the whole
 kit; otherwise the cheapest row of the same value that covers it and is no worse (tolerance
 no wider, rating no lower) than the candidate's part; otherwise the candidate's part (or the
-cheapest row of that value), flagged short.
+cheapest row of that value), flagged short. Capacitor rows that are class-2 ceramics are
+never chosen unless the spec sets ``parts.allow_class2_coupling`` (and then the kit cautions).
+
+Exports carry the design's identity (spec name and digest, catalog, topology, device, rank),
+its basis (the candidate's ``basis`` label, "basis not stated" without one) and its
+cautions: in the JSON as keys, in the CSV as leading ``#`` comment lines before the header.
 """
 from __future__ import annotations
 
 import io
 import math
 import numbers
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
-from optimizer.catalog import Catalog
+from optimizer.candidates import design_from_record
+from optimizer.catalog import Catalog, is_class2
 from optimizer.errors import InputError, Problem
+from optimizer.netlist import dc_node_voltages, designators, element_nodes
+from optimizer.spec import Spec, spec_digest
 from optimizer.topologies import get_topology
 from optimizer.units import format_value
 
 MAX_UNITS = 100_000
 VALUE_RTOL = 1e-6  # two values closer than this (relative) are the same value
 KIND_ORDER = ("resistor", "capacitor", "transistor")
-COLUMNS = ("part_id", "kind", "value", "label", "roles", "qty_per_unit", "qty_total", "stock",
-           "short_by", "unit_price", "line_price", "note")
+COLUMNS = ("designators", "kind", "roles", "part_id", "value", "label", "tolerance", "rating", "package",
+           "technology", "polarised", "orientation", "qty_per_unit", "qty_total", "stock", "short_by",
+           "unit_price", "line_price", "note")
+NO_BASIS = "basis not stated"
+BIAS_FLOOR = 0.1  # V: below this DC across an electrolytic, the bias does not set its orientation
+# What a node is, in words an assembler follows on the board.
+_NODE_WORDS = {"src": "the input (source side)", "out": "the output (load side)", "0": "ground",
+               "vcc": "the supply", "base": "Q1's base", "collector": "Q1's collector",
+               "emitter": "Q1's emitter", "e2": "the emitter resistors' junction", "emitter2": "Q2's emitter"}
 _RATING = {"resistor": "power_rating", "capacitor": "voltage_rating"}
 
 
@@ -42,16 +64,34 @@ class Kit:
     totals: dict
     short: bool
     units: int
+    identity: dict = field(default_factory=dict)
+    basis: str = NO_BASIS
+    cautions: list[str] = field(default_factory=list)
 
-    def to_csv(self) -> str:
-        """The lines as CSV (header + one row per line; empty cell = unknown / not tracked)."""
+    def comment_lines(self) -> list[str]:
+        """The identity, basis and cautions as text lines (the CSV's leading comments)."""
+        ident = self.identity
+        spec = f'spec "{ident["spec"]}" (digest {ident["spec_digest"]})' if ident.get("spec") else "spec not given"
+        rank = f", rank {ident['rank']}" if ident.get("rank") is not None else ""
+        return [f"stagefit BOM: {spec}, catalog {ident.get('catalog')}, {ident.get('topology')} with "
+                f"{ident.get('device')}{rank}, {self.units} unit(s)",
+                f"basis: {self.basis}"] + [f"caution: {c}" for c in self.cautions]
+
+    def to_csv(self, comments: bool = True) -> str:
+        """The lines as CSV: with ``comments`` first the identity, basis and cautions as lines
+        starting with ``#``, then the header and one row per line (empty cell = unknown or
+        not tracked)."""
         buffer = io.StringIO()
+        if comments:
+            buffer.writelines(f"# {line}\n" for line in self.comment_lines())
         self.lines.to_csv(buffer, index=False, lineterminator="\n")
         return buffer.getvalue()
 
     def to_dict(self) -> dict:
-        """JSON-ready: {"units", "short", "totals", "lines": [...]}, with null for unknown values."""
-        return {"units": self.units, "short": self.short, "totals": _plain(self.totals),
+        """JSON-ready: {"design", "basis", "cautions", "units", "short", "totals", "lines": [...]},
+        with null for unknown values."""
+        return {"design": dict(self.identity), "basis": self.basis, "cautions": list(self.cautions),
+                "units": self.units, "short": self.short, "totals": _plain(self.totals),
                 "lines": [_plain(row) for row in self.lines.to_dict(orient="records")]}
 
 
@@ -153,8 +193,41 @@ def _stock(row: pd.Series | None) -> int | None:
     return None if pd.isna(row["stock_qty"]) else int(row["stock_qty"])
 
 
-def _line(kind: str, value: float | None, label: str, roles: list[str], per_unit: int, units: int,
-          row: pd.Series | None, catalog: Catalog, note: str) -> dict:
+def _describe(kind: str, row: pd.Series | None) -> dict:
+    """Tolerance, rating, package and technology of a catalog row, as labels with units."""
+    if row is None:
+        return {"tolerance": "", "rating": "", "package": "", "technology": "", "polarised": False}
+    if kind == "transistor":
+        return {"tolerance": f"hFE {row['hfe_min']:g}..{row['hfe_max']:g}",
+                "rating": f"Vceo {format_value(float(row['vceo_max']), 'V')}, {format_value(float(row['p_max']), 'W')}",
+                "package": "", "technology": f"{str(row['polarity']).upper()} bipolar transistor", "polarised": True}
+    tolerance = f"{100 * float(row['tolerance']):g} %"
+    if kind == "resistor":
+        return {"tolerance": tolerance, "rating": format_value(float(row["power_rating"]), "W"),
+                "package": str(row["package"]), "technology": "", "polarised": False}
+    return {"tolerance": tolerance, "rating": format_value(float(row["voltage_rating"]), "V"), "package": "",
+            "technology": str(row["dielectric"]), "polarised": bool(row["polarised"])}
+
+
+def _orientation(roles: list[str], nodes: dict[str, tuple[str, ...]], volts: dict[str, float],
+                 names: dict[str, str]) -> str:
+    """Which way round a polarised capacitor goes, from the DC voltage at its two nodes."""
+    out = []
+    for role in roles:
+        a, b = nodes[role][:2]
+        high, low = (a, b) if volts[a] >= volts[b] else (b, a)
+        drop = volts[high] - volts[low]
+        if drop < BIAS_FLOOR:
+            out.append(f"{names[role]}: {drop:.2f} V DC across it, no bias to set its polarity: "
+                       "use a bipolar (non-polarised) part")
+        else:
+            out.append(f"{names[role]}: + toward {_NODE_WORDS.get(high, high)} ({volts[high]:.2f} V DC), "
+                       f"- toward {_NODE_WORDS.get(low, low)} ({volts[low]:.2f} V DC)")
+    return "; ".join(out)
+
+
+def _line(kind: str, value: float | None, label: str, roles: list[str], names: dict[str, str], per_unit: int,
+          units: int, row: pd.Series | None, catalog: Catalog, note: str, orientation: str = "") -> dict:
     total = per_unit * units
     stock = _stock(row)
     short_by = 0 if stock is None else max(0, total - int(stock))
@@ -163,8 +236,11 @@ def _line(kind: str, value: float | None, label: str, roles: list[str], per_unit
         note = f"not in catalog {catalog.name}"
     elif short_by:
         note = "; ".join(n for n in (note, f"short by {short_by} (stock {int(stock)})") if n)
-    return {"part_id": None if row is None else str(row[("id" if kind == "transistor" else "part_id")]),
-            "kind": kind, "value": value, "label": label, "roles": ",".join(roles),
+    described = _describe(kind, row)
+    return {"designators": ",".join(names[r] for r in roles), "kind": kind, "roles": ",".join(roles),
+            "part_id": None if row is None else str(row[("id" if kind == "transistor" else "part_id")]),
+            "value": value, "label": label, **described,
+            "orientation": orientation if described["polarised"] and kind == "capacitor" else "",
             "qty_per_unit": per_unit, "qty_total": total, "stock": stock, "short_by": short_by,
             "unit_price": unit_price, "line_price": None if unit_price is None else round(unit_price * total, 6),
             "note": note}
@@ -200,11 +276,33 @@ def _candidate_parts(candidate: dict) -> tuple[list[tuple[str, str, float, str |
     return out, transistor, topology.transistors
 
 
-def kit(candidate: dict, catalog: Catalog, units: int) -> Kit:
-    """The kit for ``units`` builds of ``candidate`` against ``catalog``'s stock."""
+def _node_volts(candidate: dict) -> dict[str, float]:
+    """DC voltage of every node of the candidate's stage, from its nominal operating point."""
+    topology, parts, device, conditions = design_from_record(candidate)
+    op = topology.operating_point(parts, device, conditions)
+    return dc_node_voltages(topology.name, {k: float(np.asarray(v).reshape(-1)[0]) for k, v in op.items()},
+                            conditions.supply)
+
+
+def _class2_cautions(frame: pd.DataFrame) -> list[str]:
+    rows = frame[(frame["kind"] == "capacitor") & frame["technology"].map(is_class2).astype(bool)]
+    return [f"{r.designators} ({r.roles}) is a class-2 ceramic ({r.technology}) in the signal path, allowed by "
+            "parts.allow_class2_coupling: its capacitance falls with DC bias and it adds distortion; "
+            "film or C0G is the usual choice" for r in rows.itertuples()]
+
+
+def kit(candidate: dict, catalog: Catalog, units: int, spec: Spec | None = None) -> Kit:
+    """The kit for ``units`` builds of ``candidate`` against ``catalog``'s stock; ``spec``
+    (the spec it was designed for) names the kit and says whether class-2 ceramics may
+    stand in the signal path (``parts.allow_class2_coupling``; without a spec, never)."""
     units = check_units(units)
     passives, transistor, n_q = _candidate_parts(candidate)
-    frames = {"resistor": catalog.resistors, "capacitor": catalog.capacitors}
+    allow_class2 = bool(spec is not None and spec.parts.allow_class2_coupling)
+    frames = {"resistor": catalog.resistors, "capacitor": catalog.signal_capacitors(allow_class2)}
+    values = {role: value for role, _, value, _ in passives}
+    names = designators(candidate["topology"], values)
+    nodes = element_nodes(candidate["topology"])
+    volts: dict[str, float] | None = None
     groups: dict[tuple[str, float], list[tuple[str, str | None]]] = {}
     for role, kind, value, part_id in passives:
         key = next((k for k in groups if k[0] == kind and math.isclose(k[1], value, rel_tol=VALUE_RTOL)),
@@ -212,20 +310,25 @@ def kit(candidate: dict, catalog: Catalog, units: int) -> Kit:
         groups.setdefault(key, []).append((role, part_id))
     lines = []
     for (kind, value), members in groups.items():
-        roles = [role for role, _ in members]
+        roles = sorted((role for role, _ in members), key=lambda r: int(names[r][1:]))
         wanted = next((pid for _, pid in members if pid), None)
         row, note = _choose_row(_same_value(frames[kind], value), wanted, kind, len(roles) * units)
         label = format_value(value, "F" if kind == "capacitor" else "")
-        lines.append(_line(kind, value, label, roles, len(roles), units, row, catalog, note))
+        orientation = ""
+        if row is not None and kind == "capacitor" and bool(row["polarised"]):
+            volts = volts or _node_volts(candidate)
+            orientation = _orientation(roles, nodes, volts, names)
+        lines.append(_line(kind, value, label, roles, names, len(roles), units, row, catalog, note, orientation))
     rows = catalog.transistors[catalog.transistors["id"] == transistor["id"]]
     roles = [f"q{i + 1}" for i in range(n_q)]
-    lines.append(_line("transistor", None, str(transistor["id"]), roles, n_q, units,
+    lines.append(_line("transistor", None, str(transistor["id"]), roles, names, n_q, units,
                        None if rows.empty else rows.iloc[0], catalog, ""))
     frame = pd.DataFrame.from_records(lines, columns=list(COLUMNS))
     frame["_kind"] = frame["kind"].map(KIND_ORDER.index)
-    frame = frame.sort_values(["_kind", "value"], kind="stable").drop(columns="_kind").reset_index(drop=True)
-    frame = frame.astype({"value": "float64", "stock": "Int64", "unit_price": "float64",
-                          "line_price": "float64"})
+    frame["_first"] = frame["designators"].map(lambda d: int(d.split(",")[0][1:]))
+    frame = frame.sort_values(["_kind", "_first"], kind="stable").drop(columns=["_kind", "_first"])
+    frame = frame.reset_index(drop=True).astype({"value": "float64", "stock": "Int64", "unit_price": "float64",
+                                                 "line_price": "float64"})
     short_lines = int((frame["short_by"] > 0).sum())
     priced = frame["line_price"].notna()
     totals = {"parts_per_unit": int(frame["qty_per_unit"].sum()), "parts_total": int(frame["qty_total"].sum()),
@@ -233,4 +336,10 @@ def kit(candidate: dict, catalog: Catalog, units: int) -> Kit:
               "cost_total": round(float(frame["line_price"][priced].sum()), 6),
               "currency": catalog.currency, "lines": len(frame), "lines_short": short_lines,
               "lines_unpriced": int((~priced).sum()), "catalog": catalog.name}
-    return Kit(lines=frame, totals=totals, short=short_lines > 0, units=units)
+    identity = {"spec": None if spec is None else spec.name, "spec_digest": None if spec is None else spec_digest(spec),
+                "catalog": catalog.name, "topology": candidate["topology"], "device": transistor["id"],
+                "rank": candidate.get("rank")}
+    basis = (candidate.get("basis") or {}).get("label") or NO_BASIS
+    cautions = [str(c) for c in candidate.get("cautions", [])] + _class2_cautions(frame)
+    return Kit(lines=frame, totals=totals, short=short_lines > 0, units=units, identity=identity, basis=basis,
+               cautions=cautions)

@@ -14,7 +14,7 @@ from optimizer import eseries, scoring
 from optimizer.catalog import Catalog
 from optimizer.devices import Device
 from optimizer.errors import InputError, Problem
-from optimizer.sizing import size_capacitors
+from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import NOMINAL_TEMPERATURE_C, Spec
 from optimizer.robustness import FINAL_BUILDS, basis_label, judge
 from optimizer.tolerance import worst_case
@@ -31,7 +31,7 @@ WORST_CASE_METRICS = ("gain", "swing_vpp", "clip_vpp", "input_impedance", "outpu
 
 
 def _check_parts(topology: Topology, parts: dict[str, float]) -> None:
-    known = set(topology.resistors) | set(topology.capacitors)
+    known = set(topology.resistors) | set(topology.capacitors) | set(topology.supply_parts)
     unknown = [role for role in parts if role not in known]
     if unknown:
         raise InputError.single(f"--set {unknown[0]}", parts[unknown[0]],
@@ -44,7 +44,7 @@ def _check_parts(topology: Topology, parts: dict[str, float]) -> None:
 
 def _part_record(catalog: Catalog, spec: Spec, role: str, value: float) -> dict:
     kind = "capacitor" if role.startswith("c_") else "resistor"
-    row = catalog.part_for(kind, value)
+    row = catalog.part_for(kind, value, allow_class2=spec.parts.allow_class2_coupling)
     unit = "F" if kind == "capacitor" else ""
     record = {"value": float(value), "label": format_value(value, unit), "part_id": None}
     series = spec.parts.capacitor_series if kind == "capacitor" else spec.parts.resistor_series
@@ -68,19 +68,27 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
     device_id = device_id or spec.devices[0]
     device = Device.from_row(catalog.transistor(device_id))
     conditions = scoring.conditions_from_spec(spec)
-    arrays = {role: np.array([float(v)]) for role, v in parts.items()}
-    missing_caps = [c for c in topology.capacitors if c not in parts]
+    arrays = {role: np.array([float(v)]) for role, v in parts.items() if float(v) > 0 or role in topology.resistors}
+    decoupled = "r_decouple" in arrays
+    missing_caps = [c for c in topology.capacitors + (("c_decouple",) if decoupled else ()) if c not in arrays]
     if missing_caps:
         allowed = catalog.capacitor_values(spec.parts.capacitor_series, *spec.parts.capacitor_range,
-                                           in_stock_only=spec.parts.in_stock_only)
+                                           in_stock_only=spec.parts.in_stock_only,
+                                           allow_class2=spec.parts.allow_class2_coupling)
         tolerances = catalog.parts_for("capacitor", allowed)["tolerance"].to_numpy(dtype=float)
-        sized = size_capacitors(topology, {r: arrays[r] for r in topology.resistors}, device,
+        held = {"c_decouple": arrays.get("c_decouple", np.array([allowed[-1]]))} if decoupled else {}
+        stage = {r: arrays[r] for r in topology.resistors + topology.supply_parts if r in arrays}
+        sized = size_capacitors(topology, {**stage, **held}, device,
                                 conditions, allowed, f_low_target=scoring.sizing_target(spec, tolerances))
-        arrays.update({c: sized[c] for c in missing_caps})
+        arrays.update({c: sized[c] for c in missing_caps if c in sized})
+        if "c_decouple" in missing_caps:
+            arrays["c_decouple"] = size_decoupling(topology, arrays, device, conditions, allowed,
+                                                   scoring.decoupling_target(spec, tolerances))
 
     records = {role: _part_record(catalog, spec, role, float(v[0])) for role, v in arrays.items()}
-    limits = scoring.rating_limits(spec, {r: records[r]["rating"] for r in topology.resistors if records[r]["value"] > 0},
-                                   {c: records[c]["rating"] for c in topology.capacitors}, device)
+    limits = scoring.rating_limits(spec, {r: rec["rating"] for r, rec in records.items()
+                                          if not r.startswith("c_") and rec["value"] > 0},
+                                   {c: rec["rating"] for c, rec in records.items() if c.startswith("c_")}, device)
 
     result = topology.evaluate(arrays, device, conditions, full=True, thd_solve=True)
     metrics = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
@@ -140,10 +148,21 @@ def _cautions(spec: Spec, result, rating_limits: dict[str, float]) -> list[str]:
         margin = sign * (metrics[metric] - limit) / limit
         if 0 <= margin < NEAR_LIMIT:
             notes.append(f"{metric} is within {margin:.0%} of its limit {limit_name} = {limit:g}")
-    if spec.supply > HIGH_SUPPLY:
-        notes.append(f"supply {spec.supply:g} V is above {HIGH_SUPPLY:g} V: treat it as hazardous")
-    notes.append("predicted, not measured: verify the built stage, and follow local electrical "
-                 "codes and licensed practice for anything mains-powered")
+    notes.append("predicted, not measured: verify the built stage before relying on it")
+    return notes + hazard_cautions(spec)
+
+
+def hazard_cautions(spec: Spec) -> list[str]:
+    """The shock-hazard caution, only where the supply (above HIGH_SUPPLY) or the scenario
+    (``mains_powered``) calls for it."""
+    notes = []
+    highest = max(spec.supply, spec.supply_max)
+    if highest > HIGH_SUPPLY:
+        notes.append(f"supply {highest:g} V is above {HIGH_SUPPLY:g} V: treat it as a shock and energy "
+                     "hazard; follow local electrical codes and licensed practice")
+    if spec.mains_powered:
+        notes.append("mains-powered: the supply is derived from the mains; build and test it only under local "
+                     "electrical codes and licensed practice, with the mains side enclosed and isolated")
     return notes
 
 
@@ -165,7 +184,9 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], D
         raise incomplete(problems)
     topology = get_topology(record["topology"])
     parts: dict[str, np.ndarray] = {}
-    for role in topology.resistors + topology.capacitors:
+    for role in topology.resistors + topology.capacitors + topology.supply_parts:
+        if role in topology.supply_parts and role not in record["parts"]:
+            continue  # no decoupling RC: the stage is on the rail
         entry = record["parts"].get(role)
         value = entry.get("value") if isinstance(entry, dict) else None
         try:

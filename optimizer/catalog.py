@@ -12,8 +12,7 @@ import csv
 import functools
 import math
 import os
-from dataclasses import dataclass
-from functools import cached_property
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
 
@@ -31,6 +30,19 @@ CATALOG_DIR: Path = Path(
 
 _VALUE_RTOL = 1e-6  # two catalog values closer than this (relative) are the same value
 
+#: Continuous rating (W at 70 °C) of a thick-film chip resistor by package (common practice);
+#: a resistor row with a blank power_rating takes its package's, and may not claim more.
+PACKAGE_POWER: dict[str, float] = {"0201": 0.05, "0402": 0.063, "0603": 0.1, "0805": 0.125, "1206": 0.25,
+                                   "1210": 0.5, "2010": 0.75, "2512": 1.0}
+#: Class-2 ceramic dielectrics (EIA RS-198): capacitance moves with DC bias, temperature and age
+#: and the part adds distortion, so by default none sits where the signal develops voltage.
+CLASS2_DIELECTRICS: frozenset[str] = frozenset({"x5r", "x6s", "x7r", "x7s", "x8r", "y5v", "z5u"})
+
+
+def is_class2(dielectric: object) -> bool:
+    """True for a class-2 ceramic dielectric name (X7R, X5R, Y5V, ...; case ignored)."""
+    return str(dielectric).strip().lower() in CLASS2_DIELECTRICS
+
 
 def _cell_quantity(unit: str, *, positive: bool = True) -> Callable[[str, str], float]:
     """Parser for a required physical quantity in ``unit`` (SI, no prefix)."""
@@ -44,16 +56,18 @@ def _cell_quantity(unit: str, *, positive: bool = True) -> Callable[[str, str], 
     return parse
 
 
-def _cell_optional_quantity(unit: str) -> Callable[[str, str], float]:
-    """Parser for an optional quantity >= 0 in ``unit`` (SI, no prefix); an empty cell is NaN (not given)."""
+def _cell_optional_quantity(unit: str, *, positive: bool = False) -> Callable[[str, str], float]:
+    """Parser for an optional quantity in ``unit`` (SI, no prefix), >= 0 (> 0 with ``positive``);
+    an empty cell is NaN (not given)."""
     required = _cell_quantity(unit, positive=False)
 
     def parse(text: str, where: str) -> float:
         if not text.strip():
             return math.nan
         value = required(text, where)
-        if value < 0:
-            raise InputError.single(where, text, f"zero or a positive value, in {unit}, or empty")
+        if value < 0 or (positive and value == 0):
+            raise InputError.single(where, text, f"{'a positive value' if positive else 'zero or a positive value'}"
+                                                 f", in {unit}, or empty")
         return value
 
     return parse
@@ -126,7 +140,7 @@ _RESISTOR_COLUMNS: dict[str, Callable] = {
     "value": _cell_quantity("ohm"),
     "series": _cell_series,
     "tolerance": _cell_tolerance,
-    "power_rating": _cell_quantity("W"),
+    "power_rating": _cell_optional_quantity("W", positive=True),
     "package": _cell_text,
     "unit_price": _cell_quantity(None, positive=False),
     "stock_qty": _cell_stock,
@@ -164,7 +178,7 @@ _TRANSISTOR_COLUMNS: dict[str, Callable] = {
     "unit_price": _cell_quantity(None, positive=False),
     "stock_qty": _cell_stock,
 }
-_META_KEYS = ("name", "description", "currency", "real_stock")
+_META_KEYS = ("name", "description", "currency", "stock_tracked")
 _OPTIONAL_COLUMNS = frozenset({"KF", "AF"})  # may be left out of the header
 
 
@@ -217,10 +231,27 @@ def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) 
             if "series" in record and "value" in record and not _in_series(np.array([record["value"]]), record["series"])[0]:
                 problems.append(Problem(f"{label} line {line}, column value", record["value"],
                                         f"a value of series {record['series']}"))
+            if "package" in record and "power_rating" in columns:
+                problems += _package_power(record, f"{label} line {line}, column power_rating")
             records.append(record)
     frame = pd.DataFrame.from_records(records, columns=list(columns))
     frame["stock_qty"] = frame["stock_qty"].astype("Int64")
     return frame, problems
+
+
+def _package_power(record: dict, where: str) -> list[Problem]:
+    """Fill a blank power_rating from the package; refuse a rating above the package's."""
+    customary = PACKAGE_POWER.get(str(record["package"]).strip().lower())
+    given = record.get("power_rating")
+    if given is None or math.isnan(given):
+        if customary is None:
+            return [Problem(where, "", f"a power rating in W: package {record['package']!r} has no customary "
+                                       f"rating (known: {', '.join(PACKAGE_POWER)})")]
+        record["power_rating"] = customary
+    elif customary is not None and given > customary * (1 + _VALUE_RTOL):
+        return [Problem(where, given, f"at most {customary:g} W, the customary rating of a {record['package']} "
+                                      "chip resistor (common practice); leave it blank to use that")]
+    return []
 
 
 def _in_series(values: np.ndarray, series: str) -> np.ndarray:
@@ -241,7 +272,8 @@ class Catalog:
     capacitors: pd.DataFrame
     transistors: pd.DataFrame
     currency: str = "EUR"
-    real_stock: bool = False
+    stock_tracked: bool = False
+    _picks: dict = field(default_factory=dict, compare=False, repr=False)
 
     def _values(self, frame: pd.DataFrame, series: str | None, low: float | None,
                 high: float | None, in_stock_only: bool) -> np.ndarray:
@@ -263,9 +295,19 @@ class Catalog:
         return self._values(self.resistors, series, low, high, in_stock_only)
 
     def capacitor_values(self, series: str | None = None, low: float | None = None,
-                         high: float | None = None, in_stock_only: bool = False) -> np.ndarray:
-        """Sorted unique capacitor values (F); filters as :meth:`resistor_values`."""
-        return self._values(self.capacitors, series, low, high, in_stock_only)
+                         high: float | None = None, in_stock_only: bool = False,
+                         allow_class2: bool = False) -> np.ndarray:
+        """Sorted unique capacitor values (F); filters as :meth:`resistor_values`. Without
+        ``allow_class2`` only values with a row that is not a class-2 ceramic count (every
+        capacitor of the stages is in the signal path)."""
+        return self._values(self.signal_capacitors(allow_class2), series, low, high, in_stock_only)
+
+    def signal_capacitors(self, allow_class2: bool = False) -> pd.DataFrame:
+        """The capacitor rows that may sit in the signal path: all of them with
+        ``allow_class2``, else every row but the class-2 ceramics."""
+        if allow_class2:
+            return self.capacitors
+        return self.capacitors[~self.capacitors["dielectric"].map(is_class2).astype(bool)]
 
     def transistor(self, id: str) -> dict:
         """The transistor row ``id`` as a dict (SI units)."""
@@ -275,29 +317,33 @@ class Catalog:
                                     title=f"unknown transistor in catalog {self.name}")
         return _row_dict(match.iloc[0])
 
-    @cached_property
-    def _cheapest_in_stock(self) -> dict[str, pd.DataFrame]:
-        """Per kind, the row part_for picks for each value in stock (sorted by value)."""
-        out = {}
-        for kind, frame in (("resistor", self.resistors), ("capacitor", self.capacitors)):
-            stocked = frame[_in_stock(frame)]
-            out[kind] = (stocked.assign(_stock=stocked["stock_qty"].fillna(np.iinfo(np.int64).max))
-                         .sort_values(["value", "unit_price", "_stock", "part_id"], ascending=[True, True, False, True])
-                         .drop_duplicates("value").drop(columns="_stock").reset_index(drop=True))
-        return out
+    def _cheapest_in_stock(self, kind: str, allow_class2: bool) -> pd.DataFrame:
+        """The row part_for picks for each value in stock (sorted by value); cached."""
+        key = (kind, allow_class2 or kind == "resistor")
+        if key not in self._picks:
+            self._picks[key] = self._cheapest(kind, allow_class2)
+        return self._picks[key]
 
-    def part_for(self, role_kind: str, value: float) -> dict | None:
+    def _cheapest(self, kind: str, allow_class2: bool) -> pd.DataFrame:
+        frame = self.resistors if kind == "resistor" else self.signal_capacitors(allow_class2)
+        stocked = frame[_in_stock(frame)]
+        return (stocked.assign(_stock=stocked["stock_qty"].fillna(np.iinfo(np.int64).max))
+                .sort_values(["value", "unit_price", "_stock", "part_id"], ascending=[True, True, False, True])
+                .drop_duplicates("value").drop(columns="_stock").reset_index(drop=True))
+
+    def part_for(self, role_kind: str, value: float, *, allow_class2: bool = False) -> dict | None:
         """The cheapest in-stock row of ``role_kind`` ("resistor" or "capacitor") with
-        ``value`` (ohm or F); ties go to the larger stock. None if none is in stock."""
-        rows = self.parts_for(role_kind, np.array([value]))
+        ``value`` (ohm or F); ties go to the larger stock. No class-2 ceramic unless
+        ``allow_class2``. None if none is in stock."""
+        rows = self.parts_for(role_kind, np.array([value]), allow_class2=allow_class2)
         return None if rows.iloc[0].isna()["part_id"] else _row_dict(rows.iloc[0])
 
-    def parts_for(self, role_kind: str, values: np.ndarray) -> pd.DataFrame:
+    def parts_for(self, role_kind: str, values: np.ndarray, *, allow_class2: bool = False) -> pd.DataFrame:
         """The row :meth:`part_for` picks for each of ``values``, one frame row per value
         (all columns missing where no row with that value is in stock)."""
         if role_kind not in ("resistor", "capacitor"):
             raise InputError.single("role_kind", role_kind, "resistor or capacitor")
-        best = self._cheapest_in_stock[role_kind]
+        best = self._cheapest_in_stock(role_kind, bool(allow_class2))
         wanted = np.asarray(values, dtype=float)
         known = best["value"].to_numpy(dtype=float)
         if known.size == 0:
@@ -321,7 +367,7 @@ class Catalog:
             "name": self.name,
             "description": self.description,
             "currency": self.currency,
-            "real_stock": self.real_stock,
+            "stock_tracked": self.stock_tracked,
             "resistors": {"count": len(self.resistors), "unique_values": int(self.resistors["value"].nunique()),
                           "range": value_range(self.resistors),
                           "series": sorted(self.resistors["series"].unique(), key=lambda s: int(s[1:])),
@@ -364,8 +410,8 @@ def _read_meta(path: Path, label: str) -> tuple[dict, list[Problem]]:
     problems = [Problem(f"{label} key {k}", None, "a value for this key") for k in _META_KEYS if k not in meta]
     problems += [Problem(f"{label} key {k}", k, "one of the keys " + ", ".join(_META_KEYS))
                  for k in meta if k not in _META_KEYS]
-    if "real_stock" in meta and not isinstance(meta["real_stock"], bool):
-        problems.append(Problem(f"{label} key real_stock", meta["real_stock"], "true or false"))
+    if "stock_tracked" in meta and not isinstance(meta["stock_tracked"], bool):
+        problems.append(Problem(f"{label} key stock_tracked", meta["stock_tracked"], "true or false"))
     return meta, problems
 
 
@@ -391,7 +437,7 @@ def load_catalog_dir(path: Path) -> Catalog:
     return Catalog(name=str(meta["name"]), description=str(meta["description"]).strip(),
                    resistors=tables["resistors.csv"], capacitors=tables["capacitors.csv"],
                    transistors=tables["transistors.csv"], currency=str(meta["currency"]),
-                   real_stock=meta["real_stock"])
+                   stock_tracked=meta["stock_tracked"])
 
 
 def list_catalogs() -> list[str]:

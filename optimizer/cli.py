@@ -18,10 +18,11 @@ EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
 
 def _cmd_check(args: argparse.Namespace) -> int:
     from optimizer.catalog import load_catalog
-    from optimizer.spec import check_against_catalog, describe_spec, load_spec, spec_to_dict
+    from optimizer.spec import describe_spec, load_spec, spec_to_dict
+    from optimizer.validation import validate_spec
 
     spec = load_spec(args.spec)
-    check_against_catalog(spec, load_catalog(spec.parts.catalog))
+    validate_spec(spec, load_catalog(spec.parts.catalog))
     if args.format == "json":
         print(json.dumps(spec_to_dict(spec), indent=2))
     else:
@@ -96,12 +97,13 @@ def _parse_settings(settings: Sequence[str]) -> dict[str, float]:
 def _cmd_evaluate(args: argparse.Namespace) -> int:
     from optimizer.candidates import assess
     from optimizer.catalog import load_catalog
-    from optimizer.spec import check_against_catalog, load_spec
-    from optimizer.units import format_value
+    from optimizer.report import show, show_noise
+    from optimizer.spec import load_spec
+    from optimizer.validation import validate_spec
 
     spec = load_spec(args.spec)
     catalog = load_catalog(spec.parts.catalog)
-    check_against_catalog(spec, catalog)
+    validate_spec(spec, catalog)
     record = assess(spec, catalog, args.topology, _parse_settings(args.set), args.device,
                     samples=args.samples)
     if args.format == "json":
@@ -110,29 +112,18 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
     verdict = "meets every limit" if record["feasible"] else "MISSES: " + ", ".join(record["violations"])
     print(f"{record['topology']} with {record['transistor']['id']}: {verdict}")
     print("parts:  " + "  ".join(f"{role}={part['label']}" for role, part in record["parts"].items()))
-    units = {"gain": "V/V", "gain_db": "dB", "gain_error_db": "dB", "swing_vpp": "Vpp",
-             "input_impedance": "ohm", "output_impedance": "ohm", "supply_current": "A",
-             "f_low": "Hz", "f_high": "Hz", "noise_ein_v": "V", "noise_figure_db": "dB",
-             "q_power": "W"}
     print("metrics:")
     for key, value in record["metrics"].items():
-        unit = units.get(key, "")
-
-        def show(number: float) -> str:
-            if unit in ("V/V", "dB", "") or not number:
-                return f"{number:.4g} {unit}".rstrip()
-            return format_value(number, unit)
-
         spread = record["worst_case"].get(key)
-        shown = show(value)
-        span = f"   worst case {show(spread[0])} .. {show(spread[1])}" if spread else ""
+        shown = show_noise(record) if key == "noise_ein_v" else show(key, value, catalog.currency)
+        span = f"   worst case {show(key, spread[0])} .. {show(key, spread[1])}" if spread else ""
         print(f"  {key:<18} {shown}{span}")
     print("operating point:")
     for key, value in record["operating_point"].items():
-        print(f"  {key:<18} {value:.4g}")
-    print("ratings (value / limit):")
+        print(f"  {key:<18} {show(key, value)}")
+    print("ratings (stress / rating):")
     for key, rating in record["ratings"].items():
-        print(f"  {key:<18} {rating['value']:.3g} / {rating['limit']:.3g}")
+        print(f"  {key:<18} {show(key, rating['value'])} / {show(key, rating['limit'])}")
     for caution in record["cautions"]:
         print(f"caution: {caution}")
     return EXIT_OK
@@ -140,21 +131,95 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
 
 # ---- search and kitting -------------------------------------------------------------
 
-TABLE_METRICS = (("gain", "gain (V/V)", "V/V"), ("swing_vpp", "swing", "Vpp"), ("input_impedance", "Zin", "ohm"),
-                 ("supply_current", "current", "A"), ("yield", "yield", "%"), ("cost", "cost", ""))
+#: the ranked table's columns: name -> (heading, cell of a candidate record given the currency)
+def _metric_cell(metric: str) -> Callable[[dict, str], str]:
+    def cell(c: dict, currency: str) -> str:
+        from optimizer.report import show
+
+        return show(metric, (c.get("metrics") or {}).get(metric), currency)
+    return cell
 
 
-def _progress_printer(stream=sys.stderr) -> Callable[[int, int], None] | None:
-    """A one-line progress bar on a terminal; nothing when the output is piped."""
-    if not stream.isatty():
+def _why_cell(c: dict, currency: str) -> str:
+    from optimizer.report import why
+
+    return why(c)
+
+
+def _noise_cell(c: dict, currency: str) -> str:
+    from optimizer.report import show_noise
+
+    return show_noise(c)
+
+
+def _verdict(c: dict, currency: str) -> str:
+    """The basis label ("meets every limit in 97 % of 2,000 builds"), what it misses, and how
+    many near-identical variants were folded into it."""
+    verdict = (c.get("basis") or {}).get("label") or ("meets every limit" if c["feasible"] else "misses the spec")
+    if not c["feasible"]:
+        verdict += f"; misses {c.get('binding') or ', '.join(c['violations'])}"
+    if c.get("variants", 1) > 1:
+        verdict += f" (+{c['variants'] - 1} near-identical variants)"
+    return verdict
+
+
+COLUMNS: dict[str, tuple[str, Callable[[dict, str], str]]] = {
+    "rank": ("rank", lambda c, _: str(c.get("rank", ""))),
+    "topology": ("topology", lambda c, _: str(c["topology"])),
+    "device": ("device", lambda c, _: str((c.get("transistor") or {}).get("id", ""))),
+    "parts": ("parts", lambda c, _: " ".join(f"{role}={p['label']}" for role, p in c["parts"].items())),
+    "gain": ("gain", _metric_cell("gain")),
+    "swing": ("swing", _metric_cell("swing_vpp")),
+    "zin": ("Zin", _metric_cell("input_impedance")),
+    "zout": ("Zout", _metric_cell("output_impedance")),
+    "current": ("current", _metric_cell("supply_current")),
+    "noise": ("noise", _noise_cell),
+    "nf": ("NF", _metric_cell("noise_figure_db")),
+    "thd": ("THD", _metric_cell("thd")),
+    "yield": ("yield", _metric_cell("yield")),
+    "cost": ("cost", _metric_cell("cost")),
+    "why": ("why (top score terms)", _why_cell),
+    "verdict": ("verdict", _verdict),
+}
+DEFAULT_COLUMNS = ("rank", "topology", "device", "parts", "gain", "swing", "zin", "current", "noise", "yield",
+                   "cost", "why", "verdict")
+PROGRESS_EVERY = 5.0  # s between progress lines when stderr is not a terminal
+
+
+def _columns(text: str | None) -> tuple[str, ...]:
+    """The --columns list, checked (before any search runs)."""
+    if text is None:
+        return DEFAULT_COLUMNS
+    names = tuple(n.strip().lower() for n in text.split(",") if n.strip())
+    unknown = [n for n in names if n not in COLUMNS]
+    if unknown or not names:
+        raise InputError.single("--columns", text, "a comma-separated list of: " + ", ".join(COLUMNS))
+    return names
+
+
+def _progress_printer(stream=sys.stderr, quiet: bool = False) -> Callable[[int, int], None] | None:
+    """Progress on stderr: a bar on a terminal; piped or logged, one line every
+    PROGRESS_EVERY seconds; nothing with ``quiet``."""
+    import time
+
+    if quiet:
         return None
+    started = time.monotonic()
+    last = [started - PROGRESS_EVERY]
 
     def show(done: int, budget: int) -> None:
-        width = 30
-        filled = int(width * done / max(budget, 1))
-        stream.write(f"\r  searching [{'#' * filled}{'.' * (width - filled)}] {done}/{budget} trials")
-        if done >= budget:
-            stream.write("\n")
+        if stream.isatty():
+            width = 30
+            filled = int(width * done / max(budget, 1))
+            stream.write(f"\r  searching [{'#' * filled}{'.' * (width - filled)}] {done}/{budget} trials")
+            if done >= budget:
+                stream.write("\n")
+        else:
+            now = time.monotonic()
+            if now - last[0] < PROGRESS_EVERY and done < budget:
+                return
+            last[0] = now
+            stream.write(f"searching: {done}/{budget} trials, {now - started:.0f} s\n")
         stream.flush()
     return show
 
@@ -173,26 +238,18 @@ def _run_or_reuse(args: argparse.Namespace, spec):
         delete_search(storage, search_id)
         del known[search_id]
     if search_id not in known:
+        print(f"no stored search of this spec in {args.storage}: running one ({spec.search.trials} trials)",
+              file=sys.stderr)
         create_search(spec, storage, search_id=search_id)
     elif known[search_id]["status"] == "done":
         print(f"reusing the stored search {search_id} of this spec from {args.storage} (--fresh to run it again)",
               file=sys.stderr)
     elif known[search_id]["status"] in ("cancelled", "failed"):
+        print(f"resuming the interrupted search {search_id} of this spec from {args.storage}", file=sys.stderr)
         extend_search(storage, search_id, 0)  # queue it again; finished trials are kept
-    run_search(storage, search_id, progress=_progress_printer())
+    done = search_id in known and known[search_id]["status"] == "done"
+    run_search(storage, search_id, progress=_progress_printer(quiet=args.quiet or done))
     return load_search(storage, search_id, top=max(args.top, 1))
-
-
-def _short(metric: str, value: float | None, unit: str) -> str:
-    from optimizer.units import format_value
-
-    if value is None:
-        return "-"
-    if unit == "%":
-        return f"{100 * value:.0f} %"
-    if unit in ("V/V", ""):
-        return f"{value:.3g}"
-    return format_value(value, unit)
 
 
 def _table(rows: list[list[str]], markdown: bool = False) -> str:
@@ -203,48 +260,57 @@ def _table(rows: list[list[str]], markdown: bool = False) -> str:
     return "\n".join("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows)
 
 
-def _candidate_rows(candidates: list[dict], first: str = "rank", currency: str = "") -> list[list[str]]:
-    labels = [f"{label} ({currency})" if metric == "cost" and currency else label for metric, label, _ in TABLE_METRICS]
-    rows = [[first, "topology", "parts"] + labels + ["verdict"]]
-    for c in candidates:
-        parts = " ".join(f"{role}={p['label']}" for role, p in c["parts"].items())
-        basis = c.get("basis") or {}
-        verdict = basis.get("label") or ("meets every limit" if c["feasible"] else "misses the spec")
-        if not c["feasible"]:
-            verdict += f"; misses {c.get('binding') or ', '.join(c['violations'])}"
-        if c.get("variants", 1) > 1:
-            verdict += f" (+{c['variants'] - 1} near-identical variants)"
-        rows.append([str(c["rank"]), c["topology"], parts]
-                    + [_short(m, c["metrics"].get(m), unit) for m, _, unit in TABLE_METRICS] + [verdict])
-    return rows
+def _candidate_rows(candidates: list[dict], columns: Sequence[str], first: str = "rank",
+                    currency: str = "") -> list[list[str]]:
+    heads = [first if name == "rank" else COLUMNS[name][0] for name in columns]
+    return [heads] + [[COLUMNS[name][1](c, currency) for name in columns] for c in candidates]
+
+
+def _checked_spec(args: argparse.Namespace):
+    """The spec of ``args.spec``, validated against its catalog and the topologies (exit 2
+    before any trial runs), with the catalog."""
+    from optimizer.catalog import load_catalog
+    from optimizer.spec import load_spec
+    from optimizer.validation import validate_spec
+
+    spec = load_spec(args.spec)
+    catalog = load_catalog(spec.parts.catalog)
+    validate_spec(spec, catalog)
+    return spec, catalog
 
 
 def _cmd_search(args: argparse.Namespace) -> int:
     import numpy as np
 
-    from optimizer.catalog import load_catalog
     from optimizer.search import candidates_frame
-    from optimizer.spec import load_spec
+    from optimizer.spec import spec_digest
 
-    spec = load_spec(args.spec)
+    columns = _columns(args.columns)
+    plots = [(target, _plot_kind(target)) for target in args.plot]  # flags checked before the search
+    spec, catalog = _checked_spec(args)
     result = _run_or_reuse(args, spec)
     shown = result.candidates[: args.top]
     front = result.front
+    best = shown[0] if shown else None
     if args.format == "json":
         print(json.dumps({"search": result.id, "status": result.status["status"],
                           "candidates": shown, "front": front if args.front else None}, indent=2))
     elif args.format == "csv":
+        print(f'# stagefit candidates: spec "{spec.name}" (digest {spec_digest(spec)}), search {result.id}, '
+              f"catalog {catalog.name}; values in SI units (ohm, F, V, A, Hz, W)")
+        if best:
+            print(f"# rank 1 basis: {(best.get('basis') or {}).get('label') or 'basis not stated'}")
+            for caution in best.get("cautions", []):
+                print(f"# caution: {caution}")
         print(candidates_frame(shown, labels=True).to_csv(index=False), end="")
     else:
         markdown = args.format == "markdown"
         status = result.status
         print(f"{spec.name}: {status['trials_done']} designs evaluated (search {result.id})")
-        best = shown[0] if shown else None
         print(f"basis: {_BASIS_TEXT[spec.robustness](spec)}")
         if result.infeasible:
             print(result.infeasible["text"])
-        currency = load_catalog(spec.parts.catalog).currency
-        print(_table(_candidate_rows(shown, currency=currency), markdown))
+        print(_table(_candidate_rows(shown, columns, currency=catalog.currency), markdown))
         if args.explain:
             print("\nwhy each ranks where it does: score = weighted geometric mean of these terms "
                   "(each 1 at its ideal), times the yield of its builds")
@@ -258,12 +324,13 @@ def _cmd_search(args: argparse.Namespace) -> int:
             note = f", {len(picked)} of them shown, evenly along it" if len(picked) < len(front) else ""
             print(f"\nPareto front ({' vs '.join(f'{d} {m}' for m, d in spec.objective_directions)}): "
                   f"{len(front)} designs{note}")
-            print(_table(_candidate_rows([{**front[i], "rank": i + 1} for i in picked], "point", currency), markdown))
+            print(_table(_candidate_rows([{**front[i], "rank": i + 1} for i in picked], columns, "point",
+                                         catalog.currency), markdown))
         if best:
             for caution in best.get("cautions", []):
                 print(f"caution: {caution}")
-    for target in args.plot:
-        _write_plot(target, result, args.rank)
+    for target, kind in plots:
+        _write_plot(target, kind, result, args.rank)
     return EXIT_OK
 
 
@@ -278,42 +345,55 @@ _BASIS_TEXT = {
 }
 
 
-def _write_plot(target: str, result, rank: int) -> None:
+PLOT_KINDS = ("front", "response", "transfer")
+
+
+def _plot_kind(target: str) -> tuple[str, str]:
+    """(kind, format) of a --plot file name, checked before any search runs."""
+    from pathlib import Path
+
+    path = Path(target)
+    fmt = path.suffix.lower().lstrip(".")
+    kind = next((k for k in PLOT_KINDS if k in path.stem.lower()), None)
+    if fmt not in ("svg", "png") or kind is None:
+        raise InputError.single("--plot", target, "a file named for what it shows: front.svg, response.svg or "
+                                "transfer.svg (or .png; e.g. runs/front.svg)")
+    return kind, fmt
+
+
+def _write_plot(target: str, kind_fmt: tuple[str, str], result, rank: int) -> None:
     from pathlib import Path
 
     from optimizer import plots
 
+    kind, fmt = kind_fmt
     path = Path(target)
     path.parent.mkdir(parents=True, exist_ok=True)
-    fmt = path.suffix.lower().lstrip(".")
-    if fmt not in ("svg", "png"):
-        raise InputError.single("--plot", target, "a file name ending in .svg or .png")
-    kind = path.stem.lower()
     chosen = result.candidate(rank)
-    if "front" in kind:
+    if kind == "front":
         points = [dict(c) for c in result.candidates]
         plots.front_plot(points, [tuple(o) for o in result.spec.objective_directions], chosen=chosen,
                          front=result.front, fmt=fmt, path=path)
-    elif "response" in kind:
+    elif kind == "response":
         plots.response_plot(chosen, fmt=fmt, path=path)
-    elif "transfer" in kind:
-        plots.transfer_plot(chosen, fmt=fmt, path=path, spec_swing=result.spec.limits.swing_min)
     else:
-        raise InputError.single("--plot", target, "a file named for what it shows: front.svg, "
-                                "response.svg or transfer.svg (or .png)")
+        plots.transfer_plot(chosen, fmt=fmt, path=path, spec_swing=result.spec.limits.swing_min)
     print(f"wrote {path}", file=sys.stderr)
+
+
+def _ranked(args: argparse.Namespace):
+    """(spec, catalog, candidate at --rank) of a stored or fresh search of ``args.spec``."""
+    spec, catalog = _checked_spec(args)
+    args.top = max(args.rank, 1)
+    result = _run_or_reuse(args, spec)
+    return spec, catalog, result.candidate(args.rank)
 
 
 def _cmd_bom(args: argparse.Namespace) -> int:
     from optimizer.bom import kit
-    from optimizer.catalog import load_catalog
-    from optimizer.spec import load_spec
 
-    spec = load_spec(args.spec)
-    args.top = max(args.rank, 1)
-    result = _run_or_reuse(args, spec)
-    candidate = result.candidate(args.rank)
-    bill = kit(candidate, load_catalog(spec.parts.catalog), args.units)
+    spec, catalog, candidate = _ranked(args)
+    bill = kit(candidate, catalog, args.units, spec)
     if args.format == "csv":
         print(bill.to_csv(), end="")
     elif args.format == "json":
@@ -322,19 +402,63 @@ def _cmd_bom(args: argparse.Namespace) -> int:
         t = bill.totals
         print(f"kit for {args.units} x rank {args.rank} ({candidate['topology']}) of {spec.name}, "
               f"catalog {spec.parts.catalog}")
-        rows = [["part_id", "value", "roles", "per unit", "total", "stock", "short by", "line price", "note"]]
+        print(f"basis: {bill.basis}")
+        rows = [["designators", "value", "tolerance", "rating", "technology", "part_id", "per unit", "total",
+                 "stock", "short by", "line price", "note"]]
         for line in bill.to_dict()["lines"]:
-            rows.append([str(line["part_id"] or "-"), line["label"], line["roles"], str(line["qty_per_unit"]),
+            rows.append([line["designators"], line["label"], line["tolerance"], line["rating"],
+                         line["technology"] or line["package"], str(line["part_id"] or "-"), str(line["qty_per_unit"]),
                          str(line["qty_total"]), "untracked" if line["stock"] is None else str(line["stock"]),
-                         str(line["short_by"] or ""), "-" if line["line_price"] is None else f"{line['line_price']:.2f}",
-                         line.get("note") or ""])
+                         str(line["short_by"] or ""),
+                         "-" if line["line_price"] is None else f"{line['line_price']:.2f} {t['currency']}",
+                         "; ".join(n for n in (line["orientation"], line.get("note") or "") if n)])
         print(_table(rows))
         print(f"total {t['parts_total']} parts, {t['cost_total']:.2f} {t['currency']} "
-              f"({t['cost_per_unit']:.2f} per unit)")
+              f"({t['cost_per_unit']:.2f} {t['currency']} per unit)")
         if bill.short:
             print(f"STOCK IS SHORT on {t['lines_short']} line(s): order before kitting")
-        for caution in candidate.get("cautions", []):
+        for caution in bill.cautions:
             print(f"caution: {caution}")
+    return EXIT_OK
+
+
+def _cmd_netlist(args: argparse.Namespace) -> int:
+    from optimizer.netlist import candidate_netlist
+
+    if args.spec in (None, "-"):
+        if sys.stdin.isatty():
+            raise InputError.single("spec", args.spec, "a spec file, or a candidate record (JSON) on stdin")
+        try:
+            candidate = json.loads(sys.stdin.read())
+        except json.JSONDecodeError as error:
+            raise InputError.single("stdin", error.doc[error.pos:error.pos + 20],
+                                    f"a candidate record in JSON ({error.msg})") from None
+        title = f"stagefit candidate: {candidate.get('topology') if isinstance(candidate, dict) else '?'}"
+    else:
+        spec, _, candidate = _ranked(args)
+        title = f"stagefit {spec.name} rank {args.rank}: {candidate['topology']}"
+    text = candidate_netlist(candidate, title=title)
+    if args.out:
+        from pathlib import Path
+
+        Path(args.out).write_text(text, encoding="utf-8")
+        print(f"wrote {args.out}", file=sys.stderr)
+    else:
+        print(text, end="")
+    return EXIT_OK
+
+
+def _cmd_report(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from optimizer.report import design_sheet
+
+    spec, catalog, candidate = _ranked(args)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    path = out / f"rank{args.rank}.html"
+    path.write_text(design_sheet(candidate, spec, catalog, units=args.units), encoding="utf-8")
+    print(f"wrote {path}", file=sys.stderr)
     return EXIT_OK
 
 
@@ -364,6 +488,7 @@ def _search_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--trials", type=int, default=None, help="trial budget (default: the spec's)")
     parser.add_argument("--seed", type=int, default=None, help="random seed (default: the spec's)")
     parser.add_argument("--fresh", action="store_true", help="run again even if this spec was searched before")
+    parser.add_argument("--quiet", action="store_true", help="no progress report on stderr")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -419,6 +544,9 @@ def build_parser() -> argparse.ArgumentParser:
     search.add_argument("--plot", action="append", default=[], metavar="FILE",
                         help="write front.svg, response.svg or transfer.svg (or .png) of --rank; repeat")
     search.add_argument("--rank", type=int, default=1, help="the design --plot draws (default 1)")
+    search.add_argument("--columns", default=None, metavar="LIST",
+                        help="table columns, comma-separated, from: " + ", ".join(COLUMNS)
+                             + " (default: " + ",".join(DEFAULT_COLUMNS) + ")")
     search.set_defaults(handler=_cmd_search)
 
     bom = sub.add_parser("bom", help="bill of materials and kitting of a ranked design against the catalog's stock")
@@ -428,6 +556,22 @@ def build_parser() -> argparse.ArgumentParser:
     bom.add_argument("--format", choices=("table", "csv", "json"), default="table")
     _search_options(bom)
     bom.set_defaults(handler=_cmd_bom)
+
+    netlist = sub.add_parser("netlist", help="SPICE netlist of a ranked design (or of a candidate JSON on stdin)")
+    netlist.add_argument("spec", nargs="?", default=None,
+                         help="path to a spec file; '-' or none: read a candidate record (JSON) from stdin")
+    netlist.add_argument("--rank", type=int, default=1, help="which ranked design (default 1)")
+    netlist.add_argument("--out", default=None, help="write the netlist to this file (default: stdout)")
+    _search_options(netlist)
+    netlist.set_defaults(handler=_cmd_netlist)
+
+    report = sub.add_parser("report", help="one self-contained HTML design sheet of a ranked design")
+    report.add_argument("spec", help="path to a spec file (YAML or JSON)")
+    report.add_argument("--rank", type=int, default=1, help="which ranked design (default 1)")
+    report.add_argument("--out", required=True, help="directory to write rankN.html into")
+    report.add_argument("--units", type=int, default=1, help="units the sheet's BOM is kitted for (default 1)")
+    _search_options(report)
+    report.set_defaults(handler=_cmd_report)
 
     serve = sub.add_parser("serve", help="run the REST service (waitress; settings also from STAGEFIT_* variables)")
     serve.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")

@@ -1,9 +1,12 @@
 """SPICE netlist of a candidate stage, for checking it in any simulator.
 
 The netlist is plain SPICE3 (ngspice dialect for ``.temp``/``.options``). Element names are
-tied to the part roles of DESIGN.md (``Rr_top``, ``Cc_in``, ``Qq1``, ...) and values are
-written as plain numbers (``repr`` of the float, SI units, no prefixes) so a reader can check
-them against the candidate. Nodes: ``vcc``, ``sig`` (ideal signal source), ``src`` (after the
+the parts' reference designators, the same as the BOM's (:func:`designators`): resistors R1,
+R2, ... and capacitors C1, C2, ... numbered in the order the topology's elements are listed
+below (its signal path from input to output), transistors Q1, Q2; a part left out (value 0)
+gets no designator. A header comment ties each designator to its DESIGN.md role, and values
+are written as plain numbers (``repr`` of the float, SI units, no prefixes) so a reader can
+check them against the candidate. Nodes: ``vcc``, ``sig`` (ideal signal source), ``src`` (after the
 source resistance, feeding ``c_in``), ``base``, ``collector``, ``emitter``, ``e2`` (split
 emitter), ``emitter2`` (follower emitter), ``out`` (the load), ``0`` (ground), and with a
 supply decoupling RC ``vloc`` (the stage's local supply, behind ``r_decouple``).
@@ -12,7 +15,7 @@ from __future__ import annotations
 
 import math
 import re
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 from optimizer.errors import InputError, Problem
@@ -84,6 +87,43 @@ SUPPLY_ELEMENTS: tuple[tuple[str, str], ...] = (("r_decouple", "Rr_decouple vcc 
 TOPOLOGIES: tuple[str, ...] = tuple(_ELEMENTS)
 
 
+def designators(topology: str, parts: Mapping[str, float]) -> dict[str, str]:
+    """Reference designator by role of every present part of ``topology`` (value > 0):
+    resistors R1.. and capacitors C1.. in netlist element order, then transistors Q1, Q2."""
+    required_parts(topology)
+    out: dict[str, str] = {}
+    count = {"R": 0, "C": 0}
+    for role, element in _ELEMENTS[topology] + SUPPLY_ELEMENTS:
+        if float(parts.get(role, 0.0)) > 0:
+            count[element[0]] += 1
+            out[role] = f"{element[0]}{count[element[0]]}"
+    out.update({role: f"Q{i}" for i, (role, *_) in enumerate(_TRANSISTORS[topology], 1)})
+    return out
+
+
+def element_nodes(topology: str) -> dict[str, tuple[str, ...]]:
+    """The nodes of every part by role: (a, b) for a resistor or capacitor, (collector,
+    base, emitter) for a transistor."""
+    required_parts(topology)
+    out = {role: tuple(element.split()[1:3]) for role, element in _ELEMENTS[topology] + SUPPLY_ELEMENTS}
+    out.update({role: tuple(nodes) for role, *nodes in _TRANSISTORS[topology]})
+    return out
+
+
+# Operating-point key of the DC voltage (V to ground) at each node; nodes not listed sit at 0 V
+# (the source side of c_in and the load side of c_out) or at the supply (vcc).
+_NODE_VOLTAGE_KEYS = {"base": "v_base", "collector": "v_collector", "emitter": "v_emitter", "e2": "v_e2",
+                      "emitter2": "v_emitter2"}
+
+
+def dc_node_voltages(topology: str, operating_point: Mapping[str, float], supply: float) -> dict[str, float]:
+    """DC voltage (V to ground) of every node of ``topology`` from a candidate's operating
+    point (keys v_base, v_collector, ...) and the supply (V)."""
+    nodes = {n for pair in element_nodes(topology).values() for n in pair} | {"vcc", "src", "out", "0"}
+    return {n: (float(supply) if n == "vcc" else float(operating_point[_NODE_VOLTAGE_KEYS[n]])
+                if n in _NODE_VOLTAGE_KEYS else 0.0) for n in sorted(nodes)}
+
+
 def required_parts(topology: str) -> tuple[str, ...]:
     """Part roles a topology's netlist needs (raises InputError for an unknown topology)."""
     if topology not in _ELEMENTS:
@@ -150,7 +190,7 @@ def _model_name(device_id: str) -> str:
 def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
                   conditions: Any, *, device_id: str = "q", analyses: str = "",
                   title: str | None = None, amplitude: float = 0.01,
-                  frequency: float | None = None) -> str:
+                  frequency: float | None = None, cautions: Sequence[str] = ()) -> str:
     """SPICE netlist of one stage.
 
     ``parts`` maps role -> value (ohm, F); ``model`` holds the Gummel-Poon NPN keys of
@@ -158,7 +198,8 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
     infinite load is written as OPEN_LOAD_RESISTANCE), load_capacitance (F, 0 = none),
     temperature (degC, or a (low, high) range simulated at its midpoint) and band (Hz).
     The signal source ``Vsig`` is AC 1 and SIN with ``amplitude`` (V peak) at ``frequency``
-    (Hz, default the band's geometric mean). ``analyses`` is inserted before ``.end``.
+    (Hz, default the band's geometric mean). ``analyses`` is inserted before ``.end``;
+    each of ``cautions`` becomes a comment line.
     """
     _check_parts(topology, parts)
     _check_model(model)
@@ -173,22 +214,24 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
     elements = _ELEMENTS[topology] + (SUPPLY_ELEMENTS if decoupled else ())
     rail = "vloc" if decoupled else "vcc"
 
+    names = designators(topology, parts)
     lines = [title or f"stagefit {topology} stage, device {device_id}",
              f"* topology: {topology}",
-             "* parts (role = designer label, netlist value in ohm or F):"]
+             "* parts (designator role = designer label, netlist value in ohm or F):"]
     for role, _ in elements:
         unit = "F" if role.startswith("c_") else "ohm"
-        lines.append(f"*   {role} = {format_value(float(parts[role]), unit=unit, ascii=True)} ({float(parts[role])!r})")
-    lines += [f"*   q1{', q2' if len(_TRANSISTORS[topology]) > 1 else ''} = {device_id}",
+        label = format_value(float(parts[role]), unit=unit, ascii=True)
+        lines.append(f"*   {names.get(role, '(none)'):<4} {role} = {label} ({float(parts[role])!r})"
+                     + ("" if role in names else ": left out, a short"))
+    lines += [f"*   {names[role]:<4} {role} = {device_id}" for role, *_ in _TRANSISTORS[topology]]
+    lines += [
               f"* conditions: supply {supply!r} V, source {source!r} ohm, load {load!r} ohm, "
               f"load capacitance {load_c!r} F, {temp!r} degC, band {conditions.band[0]!r}.."
               f"{conditions.band[1]!r} Hz",
               f"* CAUTION: simulated, not built. Supply {supply!r} V DC: check every part's voltage",
               "* and power rating (capacitors against the DC across them, resistors against I^2R,",
               "* the transistor against Vceo and its dissipation) before applying power.",
-              "* Verify before building; observe local electrical codes.",
-              *(["* Supply above 30 V: treat it as a shock and energy hazard; follow licensed practice."]
-                if supply > 30 else []),
+              *[f"* CAUTION: {note}" for note in cautions],
               f".temp {temp!r}",
               ".options TNOM=27",
               f"Vcc vcc 0 DC {supply!r}",
@@ -196,14 +239,15 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
               f"Rsource sig src {(source if source > 0 else ZERO_SOURCE_RESISTANCE)!r}"]
     for role, element in elements:
         value = float(parts[role])
+        nodes = element.split(maxsplit=1)[1]
         if role not in dict(SUPPLY_ELEMENTS):  # the stage returns to its local supply node
-            element = " ".join(rail if node == "vcc" else node for node in element.split())
+            nodes = " ".join(rail if node == "vcc" else node for node in nodes.split())
         if value == 0:  # a zero resistor is a short: a 0 V source keeps the node and its current
-            lines.append(f"V{element[1:]} DC 0")
+            lines.append(f"Vshort_{role} {nodes} DC 0")
         else:
-            lines.append(f"{element} {value!r}")
+            lines.append(f"{names[role]} {nodes} {value!r}")
     for role, collector, base, emitter in _TRANSISTORS[topology]:
-        lines.append(f"Q{role} {rail if collector == 'vcc' else collector} {base} {emitter} {model_name}")
+        lines.append(f"{names[role]} {rail if collector == 'vcc' else collector} {base} {emitter} {model_name}")
     lines.append(f"Rload out 0 {(load if math.isfinite(load) else OPEN_LOAD_RESISTANCE)!r}")
     if load_c > 0:
         lines.append(f"Cload out 0 {load_c!r}")
@@ -213,3 +257,26 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
         lines.append(analyses.rstrip("\n"))
     lines.append(".end")
     return "\n".join(lines) + "\n"
+
+
+def candidate_netlist(record: dict, *, title: str | None = None) -> str:
+    """The netlist of a candidate record for a reader to simulate: the spec's source and
+    load, ``.temp`` at the nominal temperature, the record's cautions as comments, and the
+    test analyses and an output-impedance test source written commented out (uncomment
+    the ones wanted)."""
+    from optimizer.candidates import design_from_record  # the record -> design rebuild lives there
+
+    topology, parts, device, conditions = design_from_record(record)
+    low, high = conditions.band
+    f_mid = mid_band_frequency(conditions)
+    tests = "\n".join([
+        "* Test analyses and sources (uncomment to run):",
+        "* .op",
+        f"* .ac dec 20 {low / 10!r} {high * 10!r}",
+        f"* .tran {1 / (50 * f_mid)!r} {5 / f_mid!r}",
+        f"* .noise v(out) Vsig dec 20 {low!r} {high!r}",
+        "* Output impedance: set Vsig's AC to 0, uncomment Itest, run .ac and read v(out) in ohm:",
+        "* Itest 0 out AC 1"])
+    return spice_netlist(topology.name, {r: float(v[0]) for r, v in parts.items()}, record["transistor"]["model"],
+                         conditions, device_id=device.id, title=title, analyses=tests,
+                         cautions=[str(c) for c in record.get("cautions", [])])

@@ -22,14 +22,22 @@ PALETTE: dict[str, str] = {
     "amber": "#e3a21a",    # the chosen design, highlights (fill only, never text)
     "mist": "#fbe9bd",     # background of highlighted differences
     "sage": "#8fb9a8",     # the pass band (fill only)
+    "aubergine": "#3b1f4f",  # the Pareto front and the model's curves in plots (darkest plot role)
+    "orange": "#e69f00",   # infeasible designs in plots (light: apart from teal in grey-scale too)
+    "yellow": "#f0e442",   # the chosen design in plots (lightest, drawn with a dark edge)
 }
 
 #: what each plot element is drawn in (keys used by optimizer/plots.py)
+#: (the scatter roles front < feasible < infeasible < chosen rise in lightness, so a grey-scale
+#: print keeps them apart; they differ in marker shape as well)
 PLOT_COLOURS: dict[str, str] = {
-    "feasible": PALETTE["teal"], "infeasible": PALETTE["ochre"], "front": PALETTE["plum"],
-    "chosen": PALETTE["amber"], "band": PALETTE["sage"], "model": PALETTE["teal"],
+    "feasible": PALETTE["teal"], "infeasible": PALETTE["orange"], "front": PALETTE["aubergine"],
+    "chosen": PALETTE["yellow"], "band": PALETTE["sage"], "model": PALETTE["aubergine"],
     "ideal": PALETTE["muted"], "limit": PALETTE["ochre"], "spec": PALETTE["plum"],
 }
+
+#: plot role -> matplotlib marker shape
+MARKERS: dict[str, str] = {"feasible": "o", "infeasible": "x", "front": "D", "chosen": "*", "limit": "s"}
 
 #: text colours and the backgrounds they are set on in the pages
 TEXT_PAIRS: tuple[tuple[str, str], ...] = (

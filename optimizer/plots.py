@@ -17,7 +17,7 @@ from matplotlib.figure import Figure
 
 from optimizer.candidates import design_from_record
 from optimizer.errors import InputError
-from optimizer.palette import PLOT_COLOURS
+from optimizer.palette import MARKERS, PLOT_COLOURS as COLOURS
 from optimizer.scoring import pareto_mask
 from optimizer.spec import DIRECTION_ALIASES
 from optimizer.units import format_value
@@ -50,7 +50,6 @@ METRIC_AXES: dict[str, tuple[str, float, str]] = {
     "cost": ("cost per unit", 1.0, "currency"),
     "yield": ("yield", 100.0, "%"),
 }
-COLOURS = PLOT_COLOURS  # our own colour-blind-safe palette, the same as the browser pages'
 
 
 # ---- output ----------------------------------------------------------------------------
@@ -136,7 +135,8 @@ def front_plot(points: list[dict], objectives: list[tuple[str, str]], *, chosen:
     xy = to_xy(values, np.arange(len(points), dtype=float))
     fig = Figure(figsize=FIGSIZE)
     ax = fig.add_subplot()
-    for mask, key, marker in ((~feasible, "infeasible", "x"), (feasible, "feasible", "o")):
+    for mask, key in ((~feasible, "infeasible"), (feasible, "feasible")):
+        marker = MARKERS[key]
         if mask.any():
             ax.scatter(xy[mask, 0], xy[mask, 1], s=14, marker=marker, c=COLOURS[key], alpha=0.7,
                        label=f"{key} ({int(mask.sum())})", linewidths=1.0).set_gid(key)
@@ -150,7 +150,7 @@ def front_plot(points: list[dict], objectives: list[tuple[str, str]], *, chosen:
     if len(fxy):
         order = np.argsort(fxy[:, 0], kind="stable")
         label = f"{'best feasible' if single else 'Pareto front'} ({len(fxy)})"
-        ax.plot(fxy[order, 0], fxy[order, 1], "o" if single else "-o", color=COLOURS["front"], ms=5, lw=1.4,
+        ax.plot(fxy[order, 0], fxy[order, 1], MARKERS["front"] if single else "-" + MARKERS["front"], color=COLOURS["front"], ms=5, lw=1.4,
                 label=label, zorder=3)[0].set_gid("front")
     if chosen is not None:
         index = next((i for i, p in enumerate(points) if p is chosen or (isinstance(p, dict) and isinstance(
@@ -158,7 +158,7 @@ def front_plot(points: list[dict], objectives: list[tuple[str, str]], *, chosen:
         cxy = to_xy(_metric_matrix([chosen], metrics), np.array([float(index)]))[0]
         if np.all(np.isfinite(cxy)):
             rank = chosen.get("rank") if isinstance(chosen, dict) else None
-            ax.scatter([cxy[0]], [cxy[1]], s=180, marker="*", c=COLOURS["chosen"], edgecolors="black", linewidths=0.8,
+            ax.scatter([cxy[0]], [cxy[1]], s=180, marker=MARKERS["chosen"], c=COLOURS["chosen"], edgecolors="black", linewidths=0.8,
                        zorder=4, label="chosen" + (f" (rank {rank})" if rank else "")).set_gid("chosen")
     if not len(points):
         ax.text(0.5, 0.5, "no candidates evaluated", ha="center", va="center", transform=ax.transAxes)
@@ -245,7 +245,7 @@ def response_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None 
         f = data[key]
         if f is None:
             continue
-        marker = ax.plot([f], [data["level_db"]], "o", color=COLOURS["limit"], ms=7, zorder=4)[0]
+        marker = ax.plot([f], [data["level_db"]], MARKERS["limit"], color=COLOURS["limit"], ms=7, zorder=4)[0]
         marker.set_gid(f"{key}_marker")
         ax.axvline(f, color=COLOURS["limit"], lw=0.7, ls=":")
         ax.annotate(f"{key} {format_value(f, 'Hz')}", (f, data["level_db"]), textcoords="offset points",
@@ -315,7 +315,7 @@ def transfer_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None 
             ax.axhline(sign * spec_swing / 2.0, color=COLOURS["spec"], ls="-.", lw=1.0,
                        label=f"spec swing {spec_swing:.2f} Vpp" if sign > 0 else None)
     for i, (v, o) in enumerate(data["clips"]):
-        ax.plot([v * scale], [o], "o", color=COLOURS["limit"], ms=6, zorder=4,
+        ax.plot([v * scale], [o], MARKERS["limit"], color=COLOURS["limit"], ms=6, zorder=4,
                 label=f"clips (slope < {FLAT_SLOPE:.0%})" if i == 0 else None)[0].set_gid(f"clip_{i}")
     ax.set_ylim(-lim, lim)
     ax.set_xlim(x[0], x[-1])

@@ -44,6 +44,15 @@ def sizing_target(spec: Spec, capacitor_tolerances: np.ndarray) -> float:
     return float(spec.band[0] * (1.0 - float(np.max(capacitor_tolerances, initial=0.0))))
 
 
+def decoupling_target(spec: Spec, capacitor_tolerances: np.ndarray) -> float | None:
+    """Supply rejection (dB) c_decouple is sized for: the spec's least rejection plus the margin
+    that keeps it with the capacitor at its low edge (rejection above the RC corner grows with C)."""
+    if spec.limits.psrr_min_db is None:
+        return None
+    low_edge = 1.0 - float(np.max(capacitor_tolerances, initial=0.0))
+    return float(spec.limits.psrr_min_db - 20.0 * np.log10(max(low_edge, 1e-3)))
+
+
 def resistor_derating(ambient_c: float) -> float:
     """Fraction of a resistor's rated power usable at ``ambient_c`` (°C)."""
     return float(np.clip((RESISTOR_ZERO_POWER_C - ambient_c) / (RESISTOR_ZERO_POWER_C - RESISTOR_FULL_POWER_C),

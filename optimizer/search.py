@@ -14,7 +14,6 @@ the same spec, seed and budget give the same trials in a single process.
 """
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import time
@@ -37,12 +36,13 @@ from optimizer.catalog import Catalog, load_catalog
 from optimizer.devices import Device
 from optimizer.errors import InputError
 from optimizer.sampler import NeighbourSampler
-from optimizer.sizing import size_capacitors
-from optimizer.spec import Spec, check_against_catalog, parse_spec, spec_to_dict
+from optimizer.sizing import size_capacitors, size_decoupling
+from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
 from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, sync
 from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.units import format_value
+from optimizer.validation import validate_spec
 
 optuna.logging.set_verbosity(optuna.logging.WARNING)
 
@@ -74,8 +74,9 @@ class PartTable:
     unit_price: np.ndarray
 
     @classmethod
-    def from_catalog(cls, catalog: Catalog, kind: str, values: np.ndarray) -> "PartTable":
-        rows = catalog.parts_for(kind, values)
+    def from_catalog(cls, catalog: Catalog, kind: str, values: np.ndarray,
+                     allow_class2: bool = False) -> "PartTable":
+        rows = catalog.parts_for(kind, values, allow_class2=allow_class2)
         rating_key = "power_rating" if kind == "resistor" else "voltage_rating"
         return cls(values=np.asarray(values, dtype=float), part_id=rows["part_id"].to_numpy(dtype=object),
                    tolerance=rows["tolerance"].to_numpy(dtype=float),
@@ -126,10 +127,11 @@ class SearchSpace:
 
     @classmethod
     def _build(cls, spec: Spec, catalog: Catalog) -> "SearchSpace":
-        check_against_catalog(spec, catalog)
+        validate_spec(spec, catalog)
         p = spec.parts
         r_values = catalog.resistor_values(p.resistor_series, *p.resistor_range, in_stock_only=p.in_stock_only)
-        c_values = catalog.capacitor_values(p.capacitor_series, *p.capacitor_range, in_stock_only=p.in_stock_only)
+        c_values = catalog.capacitor_values(p.capacitor_series, *p.capacitor_range, in_stock_only=p.in_stock_only,
+                                            allow_class2=p.allow_class2_coupling)
         stock_note = " in stock" if p.in_stock_only else ""
         if r_values.size < 2:
             raise InputError.single("parts.resistor_range", list(p.resistor_range),
@@ -142,7 +144,13 @@ class SearchSpace:
         devices = {d: Device.from_row(catalog.transistor(d)) for d in spec.devices}
         prices = {d: float(catalog.transistor(d).get("unit_price") or 0.0) for d in spec.devices}
         return cls(spec, catalog, PartTable.from_catalog(catalog, "resistor", r_values),
-                   PartTable.from_catalog(catalog, "capacitor", c_values), devices, prices, tuple(spec.topologies))
+                   PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices, tuple(spec.topologies))
+
+    @property
+    def offers_decoupling(self) -> bool:
+        """Whether designs may add a supply decoupling RC (r_decouple, c_decouple): when the spec
+        sets a least supply rejection (limits.psrr_min_db)."""
+        return self.spec.limits.psrr_min_db is not None
 
     @property
     def sizing_target(self) -> float:
@@ -178,6 +186,8 @@ class SearchSpace:
         for role in model.resistors:
             out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(
                 ABSENT if role in model.optional_parts else 0, top)
+        if self.offers_decoupling:  # a supply decoupling RC when the spec asks for rejection
+            out[f"{topology}.r_decouple"] = optuna.distributions.IntDistribution(ABSENT, top)
         if self.spec.search.capacitors == "searched":
             for role in model.capacitors:
                 out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(0, self.capacitors.values.size - 1)
@@ -247,20 +257,28 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
     present = {r: i != ABSENT for r, i in index.items()}
     resistors = {r: np.where(present[r], rt.values[np.maximum(i, 0)], 0.0) for r, i in index.items()}
     n = next(iter(resistors.values())).size
+    decoupled = "r_decouple" in resistors
     if given_caps:
         caps = given_caps
     elif full:
-        caps = size_capacitors(topology, resistors, device, conditions, ct.values,
+        held = {"c_decouple": np.full(n, ct.values[-1])} if decoupled else {}  # a short while the others are sized
+        caps = size_capacitors(topology, {**resistors, **held}, device, conditions, ct.values,
                                f_low_target=space.sizing_target)
     else:
         caps = {c: np.full(n, ct.values[0] if c == "c_in" else ct.values[-1]) for c in topology.capacitors}
-    cap_index = {c: ct.index_of(v) for c, v in caps.items()}
+    if decoupled and "c_decouple" not in caps:
+        caps["c_decouple"] = (size_decoupling(topology, {**resistors, **caps}, device, conditions, ct.values,
+                                              scoring.decoupling_target(spec, ct.tolerance)) if full
+                              else np.where(resistors["r_decouple"] > 0, ct.values[-1], 0.0))
+    cap_present = {c: v > 0 for c, v in caps.items()}
+    cap_index = {c: ct.index_of(np.where(cap_present[c], v, ct.values[0])) for c, v in caps.items()}
     parts = {**resistors, **caps}
     result = topology.evaluate(parts, device, conditions, full=full)
 
     limits = scoring.rating_limits(
         spec, {r: np.where(present[r], rt.rating[np.maximum(i, 0)], ABSENT_RATING) for r, i in index.items()},
-        {c: ct.rating[i] if full else ABSENT_RATING for c, i in cap_index.items()}, device)
+        {c: np.where(cap_present[c], ct.rating[i], ABSENT_RATING) if full else ABSENT_RATING
+         for c, i in cap_index.items()}, device)
     metrics = {k: np.asarray(v, dtype=float) for k, v in result.metrics.items()}
     if not full:
         metrics.update({k: np.full(n, v) for k, v in FULL_ONLY_OPTIMISTIC.items()})
@@ -288,7 +306,7 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
     total = np.nan_to_num(scoring.total_violation(violations), nan=1e6)
 
     metrics["gain_error_db"] = scoring.gain_error_db(spec, metrics["gain"])
-    cap_prices = [ct.unit_price[i] for i in cap_index.values()] if full else \
+    cap_prices = [np.where(cap_present[c], ct.unit_price[i], 0.0) for c, i in cap_index.items()] if full else \
         [np.full(n, np.nanmin(ct.unit_price))] * len(caps)
     metrics["cost"] = (sum(np.where(present[r], rt.unit_price[np.maximum(i, 0)], 0.0) for r, i in index.items())
                        + sum(cap_prices) + topology.transistors * space.device_price[device_id])
@@ -828,7 +846,7 @@ def delete_search(storage: BaseStorage, search_id: str) -> None:
 def spec_search_id(spec: Spec) -> str:
     """A stable id for a spec (its name and a hash of its canonical form): the CLI reuses
     a finished search of the very same spec instead of running it again."""
-    digest = hashlib.sha256(json.dumps(spec_to_dict(spec), sort_keys=True).encode()).hexdigest()[:10]
+    digest = spec_digest(spec)
     slug = "".join(ch if ch.isalnum() else "-" for ch in spec.name.lower()).strip("-")[:40] or "spec"
     return f"{slug}-{digest}"
 

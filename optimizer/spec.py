@@ -9,6 +9,7 @@ each naming the dotted field path, the value given and what would be valid.
 from __future__ import annotations
 
 import difflib
+import hashlib
 import json
 import math
 from pathlib import Path
@@ -35,6 +36,7 @@ DIRECTION_ALIASES = {"minimise": "minimise", "minimize": "minimise", "min": "min
 NOMINAL_TEMPERATURE_C = 27.0
 DEFAULT_SUPPLY_TOLERANCE = 0.05  # a bare supply voltage is taken as +-5 % (common practice for a regulated rail)
 ROBUSTNESS_BASES = ("yield", "worst_case", "nominal")
+SUPPLY_CURRENT_BOUND = 1.0  # A: far above any small-signal stage; a larger limit is a unit slip ("3 MA")
 _TITLE = "invalid spec"
 _JSON_SCHEMA_DRAFT = "https://json-schema.org/draft/2020-12/schema"
 
@@ -50,7 +52,7 @@ def _percent_or_fraction(value: object, where: str) -> float:
 
 def _quantity(unit: str | None, *, optional: bool = False, allow_negative: bool = False,
               allow_zero: bool = False, maximum: float | None = None,
-              percent: bool = False, example: str = "") -> Any:
+              percent: bool = False, example: str = "", hint: str = "") -> Any:
     """An annotated float field read from engineering notation in ``unit``."""
 
     def parse(value: object) -> float | None:
@@ -64,7 +66,7 @@ def _quantity(unit: str | None, *, optional: bool = False, allow_negative: bool 
         if not allow_zero and number == 0:
             raise ValueError(f"a value above 0, such as {example!r}")
         if maximum is not None and number > maximum:
-            raise ValueError(f"at most {format_value(maximum, unit or '')}")
+            raise ValueError(f"at most {format_value(maximum, unit or '')}{hint}")
         return number
 
     what = f"in {unit}" if unit else "a fraction, or a percentage like '1 %'"
@@ -248,7 +250,8 @@ class Limits(_Section):
     output_impedance_max: _quantity("ohm", optional=True, example="1k") = None
     swing_min: _quantity("V", optional=True, example="4 V") = Field(
         None, description="V peak-to-peak at the load")
-    supply_current_max: _quantity("A", optional=True, example="2 mA") = None
+    supply_current_max: _quantity("A", optional=True, maximum=SUPPLY_CURRENT_BOUND, example="2 mA",
+                                  hint=" (a small-signal stage draws mA; M is mega, m is milli)") = None
     thd_max: _quantity(None, optional=True, percent=True, maximum=1.0, example="1 %") = None
     thd_level: _quantity("V", optional=True, example="2 V") = Field(
         None, description="output V peak-to-peak at which THD is judged; "
@@ -291,6 +294,9 @@ class Parts(_Section):
     resistor_range: tuple[Ohm, Ohm] = Field((10.0, 1e6), description="[low, high] ohm")
     capacitor_range: tuple[Farad, Farad] = Field((10e-12, 1000e-6), description="[low, high] F")
     prefer_reuse: bool = False
+    allow_class2_coupling: bool = Field(
+        False, description="true: class-2 ceramics (X7R, X5R, Y5V) may be chosen for capacitors in the signal "
+                           "path (the BOM then cautions); false: film, C0G or electrolytic only")
 
     @field_validator("resistor_range", "capacitor_range")
     @classmethod
@@ -404,6 +410,8 @@ class Spec(_Section):
         "yield", description="basis on which a design meets the spec: yield (every hard limit in at "
                              "least limits.yield_min of Monte Carlo builds), worst_case (at every "
                              "corner) or nominal (at nominal values only)")
+    mains_powered: bool = Field(False, description="true when the stage's supply is derived from the mains: "
+                                                   "its outputs then carry the high-voltage caution")
     gain: Gain
     source_impedance: _quantity("ohm", allow_zero=True, example="600") = 0.0
     load_impedance: Ohm
@@ -632,6 +640,13 @@ def spec_to_dict(spec: Spec) -> dict:
     data["gain"] = {"target": spec.gain.target, "inverting": spec.gain.inverting,
                     "tolerance_db": spec.gain.tolerance_db}
     return data
+
+
+def spec_digest(spec: Spec) -> str:
+    """First 10 hex digits of the SHA-256 of the spec's canonical JSON: its identity in
+    search ids and on every export (two specs with the same digest ask the same)."""
+    canonical = json.dumps(spec_to_dict(spec), sort_keys=True).encode()
+    return hashlib.sha256(canonical).hexdigest()[:10]
 
 
 def spec_json_schema() -> dict:

@@ -87,9 +87,11 @@ def _flat_result(topology: Topology, parts: dict[str, np.ndarray], device: Devic
     out = {k: np.asarray(v).reshape(shape) for k, v in result.metrics.items()}
     out.update({k: np.asarray(v).reshape(shape) for k, v in result.ratings.items()})
     op = result.operating_point
+    out.update({k: np.asarray(v).reshape(shape) for k, v in op.items()
+                if k.startswith("v_") and k not in out})  # DC node voltages (v_out_q among them), for their spread
     out["active"] = np.asarray(op["active"]).reshape(shape)
     out["ic"] = np.asarray(op["ic"]).reshape(shape)
-    out["v_out_q"] = np.asarray(op.get("v_out_q", op["v_collector"])).reshape(shape)
+    out.setdefault("v_out_q", np.asarray(op["v_collector"]).reshape(shape))
     return out
 
 
@@ -104,7 +106,7 @@ def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: Device,
                temperature_range: tuple[float, float], supply_range: tuple[float, float] | None = None,
                *, roles: tuple[str, ...] | None = None, full: bool = True
                ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
-    """(low, high) of every metric, rating, 'ic' and 'v_out_q' over all corners: each part in
+    """(low, high) of every metric, rating, 'ic' and DC node voltage (v_base, v_out_q, ...) over all corners: each part in
     ``roles`` (default: all) at +-tolerance, hFE at min and max, temperature and supply at
     both ends. Arrays over candidates. Metrics NaN at a corner (a stage that is not active)
     are left out of that corner's range; 'active_all' (bool) says whether every corner is active."""

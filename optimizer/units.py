@@ -44,12 +44,17 @@ def _unit_matches(text: str, unit: str | None, rkm_r: bool) -> bool:
     return text in UNITS.get(unit, (unit,)) and not (rkm_r and unit != "ohm")
 
 
+MILLI_OHM_HINT = "milli-ohm? write 1M or 1meg for megohm"
+
+
 def parse_quantity(text: str | float | int, unit: str | None = None, *, where: str = "value",
                    allow_negative: bool = False, allow_zero: bool = True) -> float:
     """The SI value of ``text`` (e.g. "4k7" -> 4700.0, "10 mA" -> 0.01 with unit "A").
 
     A unit in the text must be ``unit`` when that is given; dB values come back as the
-    dB number. Raises InputError naming ``where``, the text and what would be valid.
+    dB number. A resistance with the milli prefix ("1m") is refused: no stage part is a
+    milliohm, and the writer almost always meant mega. Raises InputError naming ``where``,
+    the text and what would be valid.
     """
     def fail(extra: str = "") -> InputError:
         return InputError.single(where, text, _expected(unit) + extra)
@@ -66,6 +71,8 @@ def parse_quantity(text: str | float | int, unit: str | None = None, *, where: s
             sign, whole, letter, fraction, rest = rkm.groups()
             if not _unit_matches(rest.strip(), unit, letter == "R"):
                 raise fail()
+            if letter == "m" and unit == "ohm":
+                raise fail(f"; {MILLI_OHM_HINT}")
             scale = 1.0 if letter == "R" else PREFIXES[letter]
             value = float(f"{sign}{whole or '0'}.{fraction}") * scale
         else:
@@ -76,6 +83,8 @@ def parse_quantity(text: str | float | int, unit: str | None = None, *, where: s
             rest = rest.strip()
             if not _unit_matches(rest, unit, False):
                 raise fail(f"; the unit {rest!r} is not understood here")
+            if prefix == "m" and unit == "ohm":
+                raise fail(f"; {MILLI_OHM_HINT}")
             value = float(number) * PREFIXES[prefix or ""]
     if not math.isfinite(value):
         raise fail("; it must be a finite number")

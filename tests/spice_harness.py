@@ -91,9 +91,9 @@ def spice_operating_point(topology: str, parts: Mapping[str, float], model: Mapp
     """DC operating point: ic (A, q1; ic2 for q2 of ce_follower), v_base, v_collector,
     v_emitter (V to ground) and supply_current (A drawn from Vcc)."""
     follower = topology == "ce_follower"
-    control = ("op\nlet ic = @qq1[ic]\nlet v_base = v(base)\nlet v_collector = v(collector)\n"
+    control = ("op\nlet ic = @q1[ic]\nlet v_base = v(base)\nlet v_collector = v(collector)\n"
                "let v_emitter = v(emitter)\nlet supply_current = -i(vcc)\n"
-               + ("let ic2 = @qq2[ic]\nprint ic2\n" if follower else "")
+               + ("let ic2 = @q2[ic]\nprint ic2\n" if follower else "")
                + "print ic v_base v_collector v_emitter supply_current")
     scalars, _ = _simulate(topology, parts, model, conditions, control)
     names = ("ic", "v_base", "v_collector", "v_emitter", "supply_current") + (("ic2",) if follower else ())
@@ -169,18 +169,23 @@ def spice_response(topology: str, parts: Mapping[str, float], model: Mapping[str
 # and by then the saturation's base current has recharged c_in and c_out (the output's mean
 # moved 0.2 V on feedback_ce-9V-A4-hfe400), so the transient read the peak-to-peak of a
 # stage already past the clip with a shifted bias, 10-15 % above the clip level.
-_HELD_CAPACITORS = ("c_in", "c_out", "c_emitter", "c_decouple")  # coupling and bypass: a voltage source at their DC
+
+
+def _held(element: str) -> bool:
+    """A stage capacitor (C1, C2, ...: coupling and bypass, held at its DC), not the load's."""
+    return element[:1].lower() == "c" and element.lower() != "cload"
+
+
 _SWEEP_POINTS = 6001  # over +-1.5*supply/|gain| at the source: ~0.05 % of the supply per step at the load
 _CLIP_GAIN_FRACTION = 0.5  # clipping starts where the incremental gain falls below this share
 
 
 def _hold_capacitors(netlist: str, node_voltages: Mapping[str, float]) -> str:
     """The netlist with each coupling/bypass capacitor replaced by a DC source of its voltage."""
-    held = {f"c{role}" for role in _HELD_CAPACITORS}  # element names are "C" + role
     lines = []
     for line in netlist.splitlines():
         fields = line.split()
-        if fields and fields[0].lower() in held:
+        if fields and _held(fields[0]):
             name, a, b = fields[:3]
             drop = node_voltages.get(a, 0.0) - node_voltages.get(b, 0.0)
             line = f"Vhold_{name[1:]} {a} {b} DC {drop!r}"
@@ -189,8 +194,7 @@ def _hold_capacitors(netlist: str, node_voltages: Mapping[str, float]) -> str:
 
 
 def _capacitor_nodes(netlist: str) -> set[str]:
-    held = {f"c{role}" for role in _HELD_CAPACITORS}
-    return {node for line in netlist.splitlines() if (f := line.split()) and f[0].lower() in held
+    return {node for line in netlist.splitlines() if (f := line.split()) and _held(f[0])
             for node in f[1:3] if node != "0"}
 
 

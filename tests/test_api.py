@@ -352,8 +352,10 @@ def test_bom_for_25_units(client, done):
     response = client.get(f"{base}?units=25", headers={"Accept": "text/csv"})
     assert response.status_code == 200 and response.mimetype == "text/csv"
     assert "attachment" in response.headers["Content-Disposition"]
-    rows = list(csv.DictReader(io.StringIO(response.data.decode())))
-    assert len(rows) == len(kit["lines"]) and {"part_id", "qty_total"} <= set(rows[0])
+    text = response.data.decode()
+    assert text.startswith("# stagefit BOM: spec ") and f"# basis: {kit['basis']}" in text.splitlines()
+    rows = list(csv.DictReader(line for line in io.StringIO(text) if not line.startswith("#")))
+    assert len(rows) == len(kit["lines"]) and {"designators", "part_id", "qty_total"} <= set(rows[0])
     for units in ("0", "-3", "many", "100001"):
         problem = assert_problem(client.get(f"{base}?units={units}"), 400)
         assert problem["errors"][0]["field"] == "query.units"

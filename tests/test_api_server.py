@@ -82,7 +82,8 @@ def test_round_trip_through_a_real_server(tmp_path):
         assert status == 200 and headers["Content-Type"].startswith("text/csv")
         assert body.decode().splitlines()[0].startswith("rank,")
         status, headers, body = http("GET", f"{url}/candidates/1/bom?units=25", accept="text/csv")
-        assert status == 200 and "part_id" in body.decode().splitlines()[0]
+        header = next(line for line in body.decode().splitlines() if not line.startswith("#"))
+        assert status == 200 and "part_id" in header
         status, headers, body = http("POST", f"{base}/v1/searches", b"{oops", content_type="application/json")
         assert status == 400 and headers["Content-Type"] == "application/problem+json"
         status, headers, body = http("POST", f"{base}/v1/searches", b"x" * 300_000, content_type="application/json")
@@ -110,8 +111,8 @@ def test_readme_script_posts_polls_and_saves_the_bom(tmp_path):
         done = subprocess.run([sys.executable, "-I", str(script), base, str(spec), str(out)], cwd=tmp_path,
                               capture_output=True, text=True, timeout=180)
     assert done.returncode == 0, done.stderr
-    lines = out.read_text().splitlines()
-    assert lines[0].startswith("part_id,kind,value")
+    lines = [line for line in out.read_text().splitlines() if not line.startswith("#")]  # identity, cautions
+    assert lines[0].startswith("designators,kind,roles,part_id,value")
     assert all(",25," in line for line in lines[1:])  # qty_total for 25 units of one-per-unit parts
 
 

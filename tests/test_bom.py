@@ -28,7 +28,10 @@ BENCH = ROOT / "parts_catalogs" / "bench_stock"
 # (DR-R061) holds 25, its 1 % row (DR-R062) 150.
 SHARED = {"r_top": 100e3, "r_bottom": 10e3, "r_collector": 10e3, "r_emitter": 1e3}
 # divider_ce_split: 180 ohm is in no drawer, 1k5's drawer (DR-R030) is empty, 8k2 holds 3.
-SPLIT = {"r_top": 220e3, "r_bottom": 47e3, "r_collector": 8.2e3, "r_emitter": 180, "r_emitter_dc": 1.5e3}
+# Capacitors given, so the lines do not move with the sizing: c_in and c_emitter electrolytics,
+# c_out film.
+SPLIT = {"r_top": 220e3, "r_bottom": 47e3, "r_collector": 8.2e3, "r_emitter": 180, "r_emitter_dc": 1.5e3,
+         "c_in": 2.2e-6, "c_emitter": 100e-6, "c_out": 1e-6}
 
 
 def _csv_rows(name: str, key: str = "part_id") -> dict[str, dict[str, str]]:
@@ -145,9 +148,18 @@ def test_untracked_stock_is_never_short(shared: dict) -> None:
     assert all(line["stock"] is None for line in k.to_dict()["lines"])
 
 
-def test_csv_has_the_header_and_one_row_per_line(split: dict, bench) -> None:
-    k = kit(split, bench, 25)
-    rows = list(csv.reader(io.StringIO(k.to_csv())))
+def test_csv_has_comments_then_the_header_and_one_row_per_line(split: dict, bench, spec) -> None:
+    k = kit(split, bench, 25, spec)
+    text = k.to_csv()
+    comments = [line for line in text.splitlines() if line.startswith("#")]
+    assert text.splitlines()[:len(comments)] == comments  # the comments lead
+    assert comments[0].startswith(f'# stagefit BOM: spec "{spec.name}" (digest ')
+    assert f"# basis: {split['basis']['label']}" in comments
+    unstated = kit({k: v for k, v in split.items() if k != "basis"}, bench, 25, spec).to_csv()
+    assert "# basis: basis not stated" in unstated.splitlines()  # a record that states no basis
+    assert all(f"# caution: {c}" in comments for c in split["cautions"])
+    rows = list(csv.reader(io.StringIO(k.to_csv(comments=False))))
+    assert rows == list(csv.reader(line for line in text.splitlines() if not line.startswith("#")))
     assert rows[0] == list(COLUMNS)
     assert len(rows) == len(k.lines) + 1
     by_roles = {row[COLUMNS.index("roles")]: dict(zip(COLUMNS, row)) for row in rows[1:]}
@@ -192,3 +204,48 @@ def test_unique_values_counts_distinct_passives() -> None:
     counts = unique_values_array({"r_top": np.array([1e3, 1e3]), "r_bottom": np.array([1e3, 2e3]),
                                   "c_in": np.array([1e-6, 1e-6])})
     assert counts.tolist() == [2, 3]
+
+
+def test_designators_follow_the_netlist_and_lines_are_ordered(split: dict, bench) -> None:
+    # divider_ce_split's netlist order: c_in, r_top, r_bottom, r_collector, r_emitter, r_emitter_dc,
+    # c_emitter, c_out (optimizer/netlist.py): R1..R5, C1..C3, then Q1
+    lines = kit(split, bench, 1).to_dict()["lines"]
+    assert [line["designators"] for line in lines] == ["R1", "R2", "R3", "R4", "R5", "C1", "C2", "C3", "Q1"]
+    assert [line["roles"] for line in lines][:5] == ["r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter_dc"]
+    shared_line = _line(kit(assess(load_spec(ROOT / "specs" / "bench_stock_preamp.yaml"), bench, "divider_ce",
+                                   SHARED, samples=20), bench, 1), "r_bottom,r_collector")
+    assert shared_line["designators"] == "R2,R3" and shared_line["qty_per_unit"] == 2
+
+
+def test_electrolytic_plus_side_follows_the_dc_bias(split: dict, bench) -> None:
+    # Common practice: an aluminium electrolytic's + terminal goes to the more positive DC node.
+    # c_in sits between the source (0 V DC) and the base (a divider voltage above 0), c_emitter
+    # between the emitter resistors' junction (above 0) and ground.
+    lines = {line["roles"]: line for line in kit(split, bench, 1).to_dict()["lines"]}
+    op = split["operating_point"]
+    assert lines["c_in"]["technology"] == "aluminium electrolytic" and lines["c_in"]["polarised"]
+    assert lines["c_in"]["orientation"].startswith("C1: + toward Q1's base")
+    assert f"({op['v_base']:.2f} V DC)" in lines["c_in"]["orientation"]
+    assert lines["c_emitter"]["orientation"].startswith("C2: + toward the emitter resistors' junction")
+    assert lines["c_out"]["orientation"] == ""  # film: not polarised
+    assert all(line["rating"] for line in lines.values() if line["part_id"])
+
+
+def test_class2_only_when_the_spec_allows_it_and_then_cautioned(bench, spec) -> None:
+    # bench_stock's 100n: an X7R (cheaper, 300 in the drawer) and a film part; by default the film
+    # one, with allow_class2_coupling the X7R, and the kit says so.
+    from optimizer.spec import parse_spec, spec_to_dict
+
+    assert bench.part_for("capacitor", 100e-9)["dielectric"] == "film"
+    assert bench.part_for("capacitor", 100e-9, allow_class2=True)["dielectric"] == "X7R"
+    allowing = parse_spec({**spec_to_dict(spec), "parts": {**spec_to_dict(spec)["parts"],
+                                                          "allow_class2_coupling": True}})
+    parts = {**SHARED, "c_in": 100e-9, "c_out": 100e-9}
+    default = kit(assess(spec, bench, "divider_ce", parts, samples=20), bench, 1, spec)
+    assert set(default.lines[default.lines["kind"] == "capacitor"]["technology"]) == {"film"}
+    assert not any("class-2" in c for c in default.cautions)
+    allowed = kit(assess(allowing, bench, "divider_ce", parts, samples=20), bench, 1, allowing)
+    assert set(allowed.lines[allowed.lines["kind"] == "capacitor"]["technology"]) == {"X7R"}
+    assert any("class-2 ceramic (X7R)" in c for c in allowed.cautions)
+    assert any("class-2" in line for line in allowed.to_csv().splitlines() if line.startswith("# caution"))
+    assert any("class-2" in c for c in allowed.to_dict()["cautions"])

@@ -55,7 +55,8 @@ def test_json_candidates_follow_the_documented_shape(workspace: Path, capsys) ->
 
 def test_csv_and_markdown(workspace: Path, capsys) -> None:
     code, out, _ = _run(workspace, capsys, "--format", "csv", "--top", "4")
-    rows = list(csv.DictReader(io.StringIO(out)))
+    assert out.startswith("# stagefit candidates: spec ")  # identity, basis and cautions lead as comments
+    rows = list(csv.DictReader(line for line in io.StringIO(out) if not line.startswith("#")))
     assert code == EXIT_OK and len(rows) == 4 and rows[0]["rank"] == "1" and "supply_current" in rows[0]
     code, out, _ = _run(workspace, capsys, "--format", "markdown", "--top", "2")
     lines = out.splitlines()
@@ -80,7 +81,7 @@ def test_bad_plot_name_and_rank_are_bad_input(workspace: Path, capsys) -> None:
 def test_bom_for_a_kit_of_units(workspace: Path, capsys) -> None:
     code, out, _ = _run(workspace, capsys, "--rank", "1", "--units", "25", "--format", "csv", command="bom")
     assert code == EXIT_OK
-    lines = list(csv.DictReader(io.StringIO(out)))
+    lines = list(csv.DictReader(line for line in io.StringIO(out) if not line.startswith("#")))
     assert lines and all(int(row["qty_total"]) == 25 * int(row["qty_per_unit"]) for row in lines)
     code, out, _ = _run(workspace, capsys, "--units", "3", command="bom")
     assert code == EXIT_OK and "kit for 3" in out and "total" in out

@@ -49,13 +49,23 @@ def test_nine_volt_stage_common_practice():
     assert 7.4 < one(unloaded, "clip_vpp") < 8.2  # common practice: clips near 8 Vpp unloaded
 
 
-def test_degenerated_bias_point_worked_example():
-    # handbook worked example, from memory: Vcc 22 V, 39k/3.9k divider, Rc 10k, Re 1.5k, beta 140:
-    # IE ~ 0.85 mA, VCE ~ 12.2 V (hand method with Vbe = 0.7 V; the exact junction gives a little more).
-    parts = dict(r_top=39e3, r_bottom=3.9e3, r_collector=10e3, r_emitter=1.5e3, c_in=10e-6, c_out=10e-6)
-    op = get_topology("divider_ce").operating_point(parts, DEVICE, Conditions(22.0, 0.0, math.inf), hfe=140.0)
-    assert 0.82e-3 < op["ic"][0] + op["ib"][0] < 0.92e-3
-    assert 11.5 < op["vce"][0] < 12.6
+def test_degenerated_bias_point_against_an_independent_solve():
+    # Our own numbers: Vcc 15 V, 47k/8.2k divider, Rc 6.8k, Re 1k, hFE 180. Reference solved here
+    # independently with scipy.optimize.brentq (a general-purpose root finder) on the base loop
+    # Vth = Ib (Rth + RB) + VT ln(Ic/IS) + (Ic + Ib) Re, Ib = Ic/hFE (Thevenin divider, Shockley
+    # junction): Ic = 1.496 mA, Vce = 3.32 V. The model also carries the Early effect, worth a
+    # few tenths of a percent here.
+    from scipy.optimize import brentq
+
+    vcc, rt, rb, rc, re, hfe = 15.0, 47e3, 8.2e3, 6.8e3, 1.0e3, 180.0
+    vt, vth, rth = thermal_voltage(27.0), vcc * rb / (rt + rb), rt * rb / (rt + rb)
+    ic_ref = brentq(lambda ic: vth - ic / hfe * (rth + DEVICE.RB) - vt * math.log(ic / DEVICE.IS)
+                    - ic * (1 + 1 / hfe) * re, 1e-9, vcc / re)
+    vce_ref = vcc - ic_ref * rc - ic_ref * (1 + 1 / hfe) * re
+    parts = dict(r_top=rt, r_bottom=rb, r_collector=rc, r_emitter=re, c_in=10e-6, c_out=10e-6)
+    op = get_topology("divider_ce").operating_point(parts, DEVICE, Conditions(vcc, 0.0, math.inf), hfe=hfe)
+    assert op["ic"][0] == pytest.approx(ic_ref, rel=0.01)
+    assert op["vce"][0] == pytest.approx(vce_ref, rel=0.01)
 
 
 def test_bias_is_not_the_fixed_vbe_or_stiff_divider_shortcut():

@@ -34,17 +34,17 @@ def conditions(**changes: object) -> SimpleNamespace:
 
 def test_every_part_appears_with_its_value_on_its_role_element() -> None:
     text = spice_netlist("divider_ce", PARTS, MODEL, conditions())
-    for line in ("Rr_top vcc base 75000.0", "Rr_bottom base 0 10000.0",
-                 "Rr_collector vcc collector 10000.0", "Rr_emitter emitter 0 1000.0",
-                 "Cc_in src base 1e-05", "Cc_out collector out 1e-05",
-                 "Qq1 collector base emitter q", "Rload out 0 100000.0",
+    for line in ("R1 vcc base 75000.0", "R2 base 0 10000.0",
+                 "R3 vcc collector 10000.0", "R4 emitter 0 1000.0",
+                 "C1 src base 1e-05", "C2 collector out 1e-05",
+                 "Q1 collector base emitter q", "Rload out 0 100000.0",
                  "Vcc vcc 0 DC 9.0", ".temp 27.0", ".options TNOM=27",
                  "Rsource sig src 0.001"):  # Rs 0 -> 1 milliohm stand-in
         assert line in text.splitlines(), line
     assert re.search(r"^Vsig sig 0 DC 0 AC 1 SIN\(0 0\.01 632\.455\d*\)$", text, re.MULTILINE)
     assert "Cload" not in text
     for role in PARTS:
-        assert re.search(rf"^\*\s+{role} = ", text, re.MULTILINE), role
+        assert re.search(rf"^\*\s+[RC]\d\s+{role} = ", text, re.MULTILINE), role
     assert text.rstrip().endswith(".end")
 
 
@@ -54,34 +54,34 @@ def test_model_line_carries_every_key_and_value() -> None:
     assert line.startswith(".model npn_general NPN(")
     for key in MODEL_KEYS:
         assert f"{key}={MODEL[key]!r}" in line
-    assert "Qq1 collector base emitter npn_general" in text
+    assert "Q1 collector base emitter npn_general" in text
 
 
 def test_caution_and_analyses_placement() -> None:
     text = spice_netlist("divider_ce", PARTS, MODEL, conditions(load_capacitance=1e-10),
-                         analyses=".op")
-    assert "verify before building; observe local electrical codes" in text.lower()
+                         analyses=".op", cautions=["supply 48 V is above 30 V: treat it as hazardous"])
+    assert "* CAUTION: supply 48 V is above 30 V: treat it as hazardous" in text.splitlines()
     assert "simulated, not built" in text.lower()
     assert "Supply 9.0 V" in text
     lines = text.splitlines()
     assert lines[-2:] == [".op", ".end"]
     assert "Cload out 0 1e-10" in lines
-    high = spice_netlist("divider_ce", PARTS, MODEL, conditions(supply=48.0))
-    assert "above 30 V" in high and "above 30 V" not in text
+    assert "above 30 V" not in spice_netlist("divider_ce", PARTS, MODEL, conditions())
 
 
 def test_other_topologies_wire_their_parts() -> None:
     split = {**PARTS, "r_emitter": 330.0, "r_emitter_dc": 680.0, "c_emitter": 1e-4}
     text = spice_netlist("divider_ce_split", split, MODEL, conditions())
-    assert {"Rr_emitter emitter e2 330.0", "Rr_emitter_dc e2 0 680.0",
-            "Cc_emitter e2 0 0.0001"} <= set(text.splitlines())
+    assert {"R4 emitter e2 330.0", "R5 e2 0 680.0", "C2 e2 0 0.0001", "C3 collector out 1e-05"} \
+        <= set(text.splitlines())
     fb = {"r_feedback": 470e3, "r_collector": 4.7e3, "r_emitter": 0.0, "c_in": 1e-5, "c_out": 1e-5}
     text = spice_netlist("feedback_ce", fb, MODEL, conditions())
-    assert {"Rr_feedback collector base 470000.0", "Vr_emitter emitter 0 DC 0"} <= set(text.splitlines())
+    assert {"R1 collector base 470000.0", "R2 vcc collector 4700.0", "Vshort_r_emitter emitter 0 DC 0",
+            "C2 collector out 1e-05"} <= set(text.splitlines())
     follower = {**PARTS, "r_follower": 4.7e3}
     text = spice_netlist("ce_follower", follower, MODEL, conditions())
-    assert {"Qq2 vcc collector emitter2 q", "Rr_follower emitter2 0 4700.0",
-            "Cc_out emitter2 out 1e-05"} <= set(text.splitlines())
+    assert {"Q2 vcc collector emitter2 q", "R5 emitter2 0 4700.0",
+            "C2 emitter2 out 1e-05"} <= set(text.splitlines())
 
 
 def test_bad_topology_and_missing_part_are_named() -> None:

@@ -206,3 +206,23 @@ def test_bad_objectives_name_the_field(records: list[dict], objectives: object) 
     with pytest.raises(InputError) as err:
         plots.front_plot(records, objectives)  # type: ignore[arg-type]
     assert err.value.problems[0].where == "objectives"
+
+
+def test_palette_reads_in_greyscale_and_is_used_by_every_plot(records: list[dict]) -> None:
+    # Relative luminance of WCAG 2.1 (sRGB linearised): the scatter roles differ in lightness, so a
+    # greyscale print keeps them apart, and in marker shape as well.
+    from optimizer.palette import MARKERS, PLOT_COLOURS as COLOURS
+
+    def luminance(hex_colour: str) -> float:
+        channels = [int(hex_colour[i:i + 2], 16) / 255 for i in (1, 3, 5)]
+        linear = [c / 12.92 if c <= 0.04045 else ((c + 0.055) / 1.055) ** 2.4 for c in channels]
+        return 0.2126 * linear[0] + 0.7152 * linear[1] + 0.0722 * linear[2]
+
+    roles = ("front", "feasible", "infeasible", "chosen")
+    levels = sorted(luminance(COLOURS[r]) for r in roles)
+    assert all((b + 0.05) / (a + 0.05) >= 1.4 for a, b in zip(levels, levels[1:]))  # contrast ratio steps
+    assert len({MARKERS[r] for r in roles}) == len(roles)
+    svg = plots.front_plot(records, OBJECTIVES, chosen=records[0], fmt="svg").decode().lower()
+    assert COLOURS["front"] in svg and COLOURS["chosen"] in svg
+    assert COLOURS["model"] in plots.response_plot(records[0]).decode().lower()
+    assert COLOURS["limit"] in plots.transfer_plot(records[0]).decode().lower()

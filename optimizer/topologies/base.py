@@ -77,6 +77,8 @@ class Topology(ABC):
     resistors: ClassVar[tuple[str, ...]]
     capacitors: ClassVar[tuple[str, ...]]
     transistors: ClassVar[int]
+    inverting: ClassVar[bool]  # True: the mid-band gain source -> load is negative
+    polarities: ClassVar[tuple[str, ...]]  # transistor polarities the stage is drawn for ("npn", "pnp")
     optional_parts: ClassVar[tuple[str, ...]] = ()  # may be 0 (absent)
     supply_parts: ClassVar[tuple[str, ...]] = SUPPLY_PARTS  # optional everywhere: absent or 0 = direct rail
 

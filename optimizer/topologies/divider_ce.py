@@ -16,6 +16,8 @@ from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
 
 class DividerCE(StageModel):
     name = "divider_ce"
+    inverting = True
+    polarities = ("npn",)
     description = "common emitter, voltage-divider bias, emitter resistor unbypassed"
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter")
     capacitors = ("c_in", "c_out")

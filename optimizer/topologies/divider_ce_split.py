@@ -14,6 +14,8 @@ from optimizer.topologies.divider_ce import DividerCE
 
 class DividerCESplit(DividerCE):
     name = "divider_ce_split"
+    inverting = True
+    polarities = ("npn",)
     description = "common emitter, divider bias, emitter resistor split with the lower part bypassed"
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter_dc")
     capacitors = ("c_in", "c_out", "c_emitter")

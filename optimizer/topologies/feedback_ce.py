@@ -17,6 +17,8 @@ from optimizer.topologies.divider_ce import add_load
 
 class FeedbackCE(StageModel):
     name = "feedback_ce"
+    inverting = True
+    polarities = ("npn",)
     description = "common emitter biased by a collector-to-base feedback resistor"
     resistors = ("r_feedback", "r_collector", "r_emitter")
     capacitors = ("c_in", "c_out")
