@@ -9,6 +9,33 @@ import sys
 from typing import Any, Mapping, TextIO
 
 
+def _problem_channel() -> type:
+    """waitress's connection class whose error responses (a body past its own limit, a
+    malformed request line, headers too large) are problem+json like the app's."""
+    from waitress.channel import HTTPChannel
+    from waitress.task import ErrorTask
+
+    from api.problems import PROBLEM_JSON, problem_body
+
+    class ProblemErrorTask(ErrorTask):
+        def execute(self) -> None:
+            error = self.request.error
+            detail = str(error.body).strip() or error.reason
+            if error.code == 413:
+                detail = "the request body is larger than the service accepts (STAGEFIT_MAX_BODY); send a smaller body"
+            body = problem_body(error.code, error.reason, detail).encode("utf-8")
+            self.status = f"{error.code} {error.reason}"
+            self.response_headers.extend([("Content-Type", PROBLEM_JSON), ("Content-Length", str(len(body)))])
+            self.set_close_on_finish()
+            self.content_length = len(body)
+            self.write(body)
+
+    class ProblemChannel(HTTPChannel):
+        error_task_class = ProblemErrorTask
+
+    return ProblemChannel
+
+
 def serve(host: str = "127.0.0.1", port: int = 8750, *, threads: int = 8,
           config: Mapping[str, Any] | None = None, out: TextIO = sys.stderr) -> None:
     """Serve until SIGINT or SIGTERM; the search pool finishes its batch in flight first.
@@ -25,6 +52,7 @@ def serve(host: str = "127.0.0.1", port: int = 8750, *, threads: int = 8,
                            # buffers a body before the app sees it, so it stops far larger ones
                            max_request_body_size=max(64 * service.settings.max_body, 16 * 2**20),
                            clear_untrusted_proxy_headers=True)
+    server.channel_class = _problem_channel()  # waitress's own refusals as problem+json too
 
     def _stop(signum: int, frame: Any) -> None:
         raise KeyboardInterrupt  # waitress's run() catches it and closes its task threads
