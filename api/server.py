@@ -36,10 +36,32 @@ def _problem_channel() -> type:
     return ProblemChannel
 
 
-def serve(host: str = "127.0.0.1", port: int = 8750, *, threads: int = 8,
-          config: Mapping[str, Any] | None = None, out: TextIO = sys.stderr) -> None:
+def _health_first(threads: int) -> Any:
+    """waitress's task dispatcher with /healthz put at the head of its queue: under load a
+    health check waits for the next free request thread, not behind every queued request
+    (a load balancer that sees health checks time out takes a busy server out of service)."""
+    from waitress.task import ThreadedTaskDispatcher
+
+    class HealthFirst(ThreadedTaskDispatcher):
+        def add_task(self, task: Any) -> None:
+            requests = getattr(task, "requests", None)  # the channel; its first request is the one to serve
+            if requests and getattr(requests[0], "path", None) == "/healthz":
+                with self.lock:
+                    self.queue.appendleft(task)
+                    self.queue_cv.notify()
+                return
+            super().add_task(task)
+
+    dispatcher = HealthFirst()
+    dispatcher.set_thread_count(threads)
+    return dispatcher
+
+
+def serve(host: str = "127.0.0.1", port: int = 8750, *, config: Mapping[str, Any] | None = None,
+          out: TextIO = sys.stderr) -> None:
     """Serve until SIGINT or SIGTERM; the search pool finishes its batch in flight first.
-    Port 0 picks a free port; the address actually bound is printed to ``out``."""
+    Port 0 picks a free port; the address actually bound is printed to ``out``. Request
+    threads: STAGEFIT_THREADS (default 8)."""
     from waitress import create_server
 
     from api import create_app
@@ -47,7 +69,9 @@ def serve(host: str = "127.0.0.1", port: int = 8750, *, threads: int = 8,
     logging.basicConfig(level=logging.INFO, format="%(asctime)s %(levelname)s %(name)s: %(message)s")
     app = create_app(config)
     service = app.extensions["stagefit"]
+    threads = service.settings.threads
     server = create_server(app, host=host, port=port, threads=threads, ident="stagefit",
+                           _dispatcher=_health_first(threads),  # waitress takes its dispatcher here (a test hook in its code)
                            # the app answers 413 (problem+json) past STAGEFIT_MAX_BODY; waitress
                            # buffers a body before the app sees it, so it stops far larger ones
                            max_request_body_size=max(64 * service.settings.max_body, 16 * 2**20),

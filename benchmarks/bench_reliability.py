@@ -324,7 +324,7 @@ def fuzz(examples: int, log=print) -> dict:
 def report(results: dict, args: argparse.Namespace) -> str:
     lines = ["# Reliability: faults, load and hostile input", "",
              f"Machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
-             f"Optuna {optuna.__version__}. Command: `.venv/bin/python benchmarks/bench_reliability.py "
+             f"Optuna {optuna.__version__}. Last command: `.venv/bin/python benchmarks/bench_reliability.py "
              + " ".join(sys.argv[1:]) + "`.", ""]
     if "fuzz" in results:
         f = results["fuzz"]
@@ -338,7 +338,7 @@ def report(results: dict, args: argparse.Namespace) -> str:
     if "chaos" in results:
         c = results["chaos"]
         lines += ["## Chaos (SIGKILL during searches, one torn journal line)", "",
-                  f"{args.searches} searches of {c['budget']} trials on one journal file, run by the server's "
+                  f"{len(c['states'])} searches of {c['budget']} trials on one journal file, run by the server's "
                   f"search thread and a `stagefit worker` together. Kills: server {c['kills']['server']}, worker "
                   f"{c['kills']['worker']} (at random moments, 0.2-1.5 s apart; each restarted at once); once both "
                   f"were down and the journal was cut {c['torn_bytes']} bytes into its last line.", "",
@@ -349,7 +349,8 @@ def report(results: dict, args: argparse.Namespace) -> str:
                   f"{', '.join(str(n) for n in c['per_search'].values())} (budget {c['budget']}) |", ""]
     if "load" in results:
         rows = results["load"]
-        lines += [f"## Load ({args.clients} clients, {args.seconds:g} s, loopback, 8 request threads)", "",
+        setup = results.get("load_setup", {})
+        lines += [f"## Load ({setup.get('clients')} clients, {setup.get('seconds')} s, loopback, 8 request threads)", "",
                   "Each client loops: 15 % `POST /v1/searches?wait=5` (64-trial searches, run by one search "
                   "thread), 40 % status polls, 40 % candidate reads of a finished search, 5 % /healthz; a "
                   "prober opens a new connection for /healthz every 50 ms.", "",
@@ -394,9 +395,17 @@ def main() -> None:
         if "load" not in skip:
             (work / "load").mkdir()
             results["load"] = load(work / "load", clients=args.clients, seconds=args.seconds)
+            results["load_setup"] = {"clients": args.clients, "seconds": args.seconds}
         if "fuzz" not in skip:
             results["fuzz"] = fuzz(args.fuzz_examples)
-    RESULTS.write_text(report(results, args) + "\n")
+    # parts skipped this time keep their last figures (the JSON beside the report)
+    figures = RESULTS.with_suffix(".json")
+    kept = json.loads(figures.read_text()) if figures.exists() else {}
+    kept.update(json.loads(json.dumps(results, default=str)))
+    for row in kept.get("load", {}).values():
+        row["codes"] = {int(k): v for k, v in row["codes"].items()}
+    figures.write_text(json.dumps(kept, indent=1) + "\n")
+    RESULTS.write_text(report(kept, args) + "\n")
     print(f"wrote {RESULTS}")
 
 

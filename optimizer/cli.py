@@ -371,8 +371,9 @@ def _cmd_serve(args: argparse.Namespace) -> int:
 
     config = {k: v for k, v in (("STAGEFIT_WORKERS", args.workers), ("STAGEFIT_STORAGE", args.storage))
               if v is not None}
-    config["STAGEFIT_THREADS"] = args.threads
-    serve(args.host, args.port, threads=args.threads, config=config)
+    if args.threads is not None:
+        config["STAGEFIT_THREADS"] = args.threads
+    serve(args.host, args.port, config=config)
     return EXIT_OK
 
 
@@ -515,9 +516,9 @@ def build_parser() -> argparse.ArgumentParser:
     serve.add_argument("--port", type=_whole(0, 65535), default=8750, help="port (default 8750; 0 picks a free one)")
     serve.add_argument("--workers", type=_whole(1, 64), default=None,
                        help="searches run at once (STAGEFIT_WORKERS, default 1)")
-    serve.add_argument("--threads", type=_whole(2, 1024), default=8,
-                       help="request threads (default 8); at most half of them wait on ?wait= posts "
-                            "(STAGEFIT_MAX_WAITERS), the rest always serve other requests")
+    serve.add_argument("--threads", type=_whole(2, 1024), default=None,
+                       help="request threads (STAGEFIT_THREADS, default 8); at most half of them wait on "
+                            "?wait= posts (STAGEFIT_MAX_WAITERS), the rest always serve other requests")
     serve.add_argument("--storage", default=None,
                        help="Optuna storage URL or journal file (STAGEFIT_STORAGE, default runs/stagefit.journal)")
     serve.set_defaults(handler=_cmd_serve)
