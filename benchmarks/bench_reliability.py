@@ -363,7 +363,12 @@ def report(results: dict, args: argparse.Namespace) -> str:
         fives = sum(v for r in rows.values() for k, v in r["codes"].items() if k >= 500)
         lines += ["", f"/healthz p99 under load: **{probe['p99'] * 1e3:.0f} ms** (target < 200 ms); 5xx answers: "
                   f"**{fives}**. 429s are the job-queue bound (STAGEFIT_MAX_QUEUE) at work; POSTs past "
-                  "STAGEFIT_MAX_WAITERS answer 202 at once instead of holding a request thread.", ""]
+                  "STAGEFIT_MAX_WAITERS answer 202 at once instead of holding a request thread. The other "
+                  f"routes' latency is the queue: {setup.get('clients')} clients without pause, on 2 cores shared "
+                  f"with the clients themselves and a search thread, hold the server at about "
+                  f"{sum(r['n'] for r in rows.values()) / float(setup.get('seconds') or 1):.0f} requests/s, "
+                  "so each waits behind the others (tens of ms each when the server is not saturated: "
+                  "benchmarks/results/api.md).", ""]
     if "memory" in results:
         lines += ["## Memory peak of hostile inputs (target under 200 MB)", "",
                   "| case | answer | peak resident MB | message |", "| --- | --- | --- | --- |"]
