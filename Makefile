@@ -5,7 +5,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test bench clean cluster
+.PHONY: demo test fuzz bench clean cluster
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -31,6 +31,10 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
+
+# the REST fuzz at ten times the CI size (about 25,000 generated requests; benchmarks/results/reliability.md)
+fuzz: $(STAMP)
+	STAGEFIT_FUZZ_EXAMPLES=800 $(BIN)/python -m pytest -q -s tests/test_api_server.py -k fuzz
 
 # PostgreSQL + API server + two workers on this machine, for trying a shared deployment
 cluster: $(STAMP)

@@ -13,6 +13,11 @@ key given in ``config`` (same names) wins:
 ``STAGEFIT_MAX_TRIALS``    largest trial budget a posted spec may ask for (default 20000)
 ``STAGEFIT_MAX_BODY``      largest request body in bytes (default 262144)
 ``STAGEFIT_MAX_WAIT``      longest ``?wait=`` in seconds (default 60; longer is clamped)
+``STAGEFIT_MAX_WAITERS``   requests that may wait (``?wait=``) at once (default half of
+                           ``STAGEFIT_THREADS``); past it a POST answers 202 at once
+``STAGEFIT_MAX_QUEUE``     searches queued or running at once (default 64); past it a
+                           POST answers 429 with Retry-After
+``STAGEFIT_THREADS``       request threads of `stagefit serve` (default 8)
 ``STAGEFIT_WORKERS``       searches run at once by the background pool (default 1)
 ``STAGEFIT_QUEUE_ONLY``    ``1``: only queue searches; external workers run the trials
 ``STAGEFIT_STALE_AFTER``   seconds after which a trial left running by a stopped process
@@ -24,6 +29,7 @@ state lives only in the Optuna storage, so a restarted server resumes what was r
 """
 from __future__ import annotations
 
+import dataclasses
 import hmac
 import math
 import os
@@ -49,6 +55,9 @@ class Settings:
     max_trials: int = 20000
     max_body: int = 256 * 1024
     max_wait: float = 60.0
+    max_waiters: int = 4
+    max_queue: int = 64
+    threads: int = 8
     workers: int = 1
     queue_only: bool = False
     stale_after: float = 120.0
@@ -85,10 +94,19 @@ class Settings:
             max_trials=number("STAGEFIT_MAX_TRIALS", cls.max_trials, int, 1, 10_000_000),
             max_body=number("STAGEFIT_MAX_BODY", cls.max_body, int, 1024, 64 * 1024 * 1024),
             max_wait=number("STAGEFIT_MAX_WAIT", cls.max_wait, float, 0, 3600),
+            max_waiters=number("STAGEFIT_MAX_WAITERS", 0, int, 1, 1024),
+            max_queue=number("STAGEFIT_MAX_QUEUE", cls.max_queue, int, 1, 100_000),
+            threads=number("STAGEFIT_THREADS", cls.threads, int, 2, 1024),
             workers=number("STAGEFIT_WORKERS", cls.workers, int, 1, 64),
             queue_only=queue_only in ("1", "true", "yes", "on"),
             stale_after=number("STAGEFIT_STALE_AFTER", cls.stale_after, float, 0, 86400),
         )
+        if not settings.max_waiters:  # default: half the request threads, the rest stay free
+            settings = dataclasses.replace(settings, max_waiters=max(1, settings.threads // 2))
+        elif settings.max_waiters >= settings.threads:
+            problems.append(InputError.single("STAGEFIT_MAX_WAITERS", settings.max_waiters,
+                                              f"fewer than STAGEFIT_THREADS ({settings.threads}), so requests "
+                                              "that do not wait always find a thread").problems[0])
         if problems:
             raise InputError(problems, title="invalid service settings")
         return settings
@@ -134,13 +152,15 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
 
     settings = Settings.load(config)
     app = Flask("api", static_folder=None)  # the pages blueprint serves its own assets
+    app.url_map.merge_slashes = False  # /v1/searches//candidates is a 404, not a redirect
     app.json = _JSONProvider(app)
     app.config["MAX_CONTENT_LENGTH"] = settings.max_body
     problems.register(app)
 
     storage = open_storage(settings.storage)
     pool = jobs.JobPool(storage, workers=settings.workers, run=not settings.queue_only,
-                        stale_after=settings.stale_after)
+                        stale_after=settings.stale_after, max_queue=settings.max_queue,
+                        max_waiters=settings.max_waiters)
     app.extensions["stagefit"] = routes.Service(settings=settings, storage=storage, jobs=pool)
 
     @app.before_request

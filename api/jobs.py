@@ -7,14 +7,23 @@ stored search whose status is ``queued`` or ``running`` (a server killed mid-sea
 on where it stopped, keeping every finished trial). ``run_search`` checks the stored
 status between batches, so a cancelled search stops after the batch in flight; the pool's
 own ``should_stop`` is checked the same way when the server shuts down.
+
+Bounds: at most ``max_queue`` searches wait or run here (:meth:`JobPool.admit` refuses the
+next one with :class:`QueueFull`, which the service answers 429 with Retry-After), and
+requests waiting for a search to finish (``?wait=``) park on a condition the pool notifies
+when a search stops, at most ``max_waiters`` of them, so request threads stay free for
+everyone else (``/healthz`` always answers).
 """
 from __future__ import annotations
 
 import logging
 import queue
 import threading
+import time
 from datetime import datetime
-from typing import Any
+from typing import Any, Callable
+
+from optimizer.errors import InputError
 
 log = logging.getLogger("api.jobs")
 RESUMABLE = ("queued", "running")
@@ -22,16 +31,28 @@ STALE_AFTER = 120.0  # s: a trial asked this long ago and never told was lost wi
 RECHECK = 5.0  # s: how soon a search held up by other runners' trials is looked at again
 
 
+class QueueFull(Exception):
+    """The pool holds ``max_queue`` searches already; ``retry_after`` is a hint in seconds."""
+
+    def __init__(self, limit: int, retry_after: int) -> None:
+        super().__init__(f"{limit} searches are queued or running here")
+        self.limit, self.retry_after = limit, retry_after
+
+
 class JobPool:
     """``workers`` threads running stored searches; ``run=False`` only queues (external
     workers on the same storage run the trials)."""
 
     def __init__(self, storage: Any, *, workers: int = 1, run: bool = True,
-                 stale_after: float = STALE_AFTER) -> None:
+                 stale_after: float = STALE_AFTER, max_queue: int = 64, max_waiters: int = 4) -> None:
         self.storage = storage
         self.workers = workers
         self.run = run
         self.stale_after = stale_after
+        self.max_queue = max_queue
+        self._reserved = 0
+        self._waiters = threading.BoundedSemaphore(max(1, max_waiters))
+        self._changed = threading.Condition()
         self._queue: queue.Queue[str] = queue.Queue()
         self._pending: set[str] = set()
         self._lock = threading.Lock()
@@ -59,12 +80,54 @@ class JobPool:
             log.info("resuming %d stored search(es): %s", len(ids), ", ".join(ids))
         return ids
 
-    def submit(self, search_id: str) -> None:
-        """Queue ``search_id`` unless it is already queued or running here."""
-        if not self.run:
-            return
+    def admit(self) -> None:
+        """Reserve a place for one new search (QueueFull if ``max_queue`` are queued or
+        running); :meth:`submit` or :meth:`release` settles it."""
         with self._lock:
-            if search_id in self._pending:
+            held = len(self._pending) if self.run else self._stored_queued()
+            if held + self._reserved >= self.max_queue:
+                raise QueueFull(self.max_queue, retry_after=max(5, 5 * (held // max(self.workers, 1))))
+            self._reserved += 1
+
+    def release(self) -> None:
+        """Give back a place reserved by :meth:`admit`."""
+        with self._lock:
+            self._reserved = max(0, self._reserved - 1)
+
+    def _stored_queued(self) -> int:
+        from optimizer.search import list_searches
+
+        return sum(s["status"] == "queued" for s in list_searches(self.storage))
+
+    def wait(self, search_id: str, timeout: float, finished: Callable[[], bool]) -> bool:
+        """Park until ``finished()`` or ``timeout`` s, woken when any search stops here (and
+        every second, for searches run by external workers). False at once, without
+        waiting, when ``max_waiters`` requests wait already."""
+        if timeout <= 0 or not self._waiters.acquire(blocking=False):
+            return finished()
+        try:
+            deadline = time.monotonic() + timeout
+            while not finished():
+                left = deadline - time.monotonic()
+                if left <= 0:
+                    return False
+                with self._changed:
+                    self._changed.wait(min(left, 1.0))
+            return True
+        finally:
+            self._waiters.release()
+
+    def notify(self) -> None:
+        """Wake the waiters (a search stopped, or was cancelled)."""
+        with self._changed:
+            self._changed.notify_all()
+
+    def submit(self, search_id: str, *, reserved: bool = False) -> None:
+        """Queue ``search_id`` unless it is already queued or running here."""
+        with self._lock:
+            if reserved:
+                self._reserved = max(0, self._reserved - 1)
+            if not self.run or search_id in self._pending:
                 return
             self._pending.add(search_id)
         self._queue.put(search_id)
@@ -93,12 +156,15 @@ class JobPool:
             try:
                 run_search(self.storage, search_id, should_stop=self._stop.is_set)
                 again = self._held_up(search_id)
-            except Exception:  # a bug or a storage failure: logged, the server goes on
+            except InputError as error:  # deleted meanwhile, or it cannot run (run_search marked it failed)
+                log.warning("search %s stopped: %s", search_id, error)
+            except Exception as error:  # a bug or a storage failure: logged, the server goes on
                 log.exception("search %s stopped with an unexpected error", search_id)
-                _mark_failed(self.storage, search_id)
+                _mark_failed(self.storage, search_id, f"{type(error).__name__}: {error}")
             finally:
                 with self._lock:
                     self._pending.discard(search_id)
+                self.notify()
             if again is not None and not self._stop.is_set():
                 self._later(search_id, again)
 
@@ -108,8 +174,9 @@ class JobPool:
         ``stale_after`` s ago belong to a process that died (a killed server): they are
         failed so the budget is met by new trials (0 s: retry now); younger ones may be
         another runner's batch in flight (retry in a few seconds)."""
-        from optuna.storages._heartbeat import is_heartbeat_enabled
         from optuna.trial import TrialState
+
+        from optimizer.storage import is_heartbeat_enabled, trial_id
 
         if self._stop.is_set():
             return None
@@ -123,7 +190,7 @@ class JobPool:
             started = trial.datetime_start
             if by_age and started is not None and (now - started).total_seconds() >= self.stale_after:
                 try:
-                    self.storage.set_trial_state_values(trial._trial_id, TrialState.FAIL)
+                    self.storage.set_trial_state_values(trial_id(trial), TrialState.FAIL)
                     freed += 1
                 except RuntimeError:  # told meanwhile by its runner after all
                     pass
@@ -144,11 +211,11 @@ class JobPool:
         timer.start()
 
 
-def _mark_failed(storage: Any, search_id: str) -> None:
-    """Record status 'failed' on the study (so it is not resumed again and again)."""
+def _mark_failed(storage: Any, search_id: str, reason: str) -> None:
+    """Record status 'failed' and its reason on the study (so it is not resumed again and again)."""
     try:
         from optimizer.search import fail_search
 
-        fail_search(storage, search_id)
+        fail_search(storage, search_id, reason)
     except Exception:
         log.exception("could not mark search %s as failed", search_id)

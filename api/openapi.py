@@ -11,6 +11,7 @@ import functools
 from typing import Any
 
 from api.problems import PROBLEM_JSON
+from optimizer.spec import MAX_SAMPLES, MAX_TOP
 
 VERSION = "1.0.0"
 STATUSES = ["queued", "running", "done", "failed", "cancelled"]
@@ -43,14 +44,18 @@ def _spec_schemas() -> dict[str, Any]:
 
 
 NUMBER_OR_NULL = {"type": ["number", "null"]}
-PROBLEM_ERRORS = {"400": "the request cannot be read (malformed JSON or YAML, a bad query parameter)",
+PROBLEM_ERRORS = {"400": "the request cannot be read (malformed JSON or YAML, a document beyond the bounds "
+                         "in this document's description, a bad query parameter)",
                   "401": "a bearer token is required (STAGEFIT_API_TOKEN is set) and was missing or wrong",
                   "404": "no such search, candidate rank or catalog",
                   "406": "the Accept header allows none of this route's media types",
                   "413": "the body is larger than STAGEFIT_MAX_BODY",
                   "415": "the body's Content-Type is not accepted",
                   "422": "the body is well-formed but invalid (field paths in errors)",
-                  "501": "this feature is not available in this version"}
+                  "429": "STAGEFIT_MAX_QUEUE searches are queued or running already; Retry-After says "
+                         "when to try again",
+                  "501": "this feature is not available in this version",
+                  "503": "the search storage is not available (Retry-After says when to try again)"}
 
 
 def _problem(code: str) -> dict:
@@ -59,7 +64,7 @@ def _problem(code: str) -> dict:
 
 def _responses(ok: dict[str, dict], *errors: str) -> dict:
     out = dict(ok)
-    for code in ("401", "406", *errors):
+    for code in ("401", "406", *errors, "503"):
         out[code] = _problem(code)
     return out
 
@@ -78,7 +83,7 @@ def _param(name: str, where: str, schema: dict, description: str, required: bool
 
 SEARCH_ID = _param("search_id", "path", {"type": "string", "minLength": 1}, "the search id")
 RANK = _param("rank", "path", {"type": "integer"}, "candidate rank, 1 = best")
-TOP = _param("top", "query", {"type": "integer", "minimum": 1, "maximum": 1000, "default": 20},
+TOP = _param("top", "query", {"type": "integer", "minimum": 1, "maximum": MAX_TOP, "default": 20},
              "how many ranked candidates to return")
 
 
@@ -114,6 +119,7 @@ def _schemas() -> dict[str, Any]:
                                 "description": "finished trials whose design meets every limit"},
             "budget": {"type": "integer", "minimum": 0}, "elapsed": NUMBER_OR_NULL,
             "created": {"type": ["string", "null"]},
+            "reason": {"type": ["string", "null"], "description": "why a failed search stopped"},
             "best": {"anyOf": [_ref("Candidate"), {"type": "null"}]},
             "url": {"type": "string", "description": "this search's URL"},
         },
@@ -185,11 +191,39 @@ def _schemas() -> dict[str, Any]:
                           "additionalProperties": {"anyOf": [{"type": "number"}, {"type": "string"}]}},
                 "device": {"type": ["string", "null"], "description": "transistor id (default: the "
                            "spec's first device)"},
-                "samples": {"type": "integer", "minimum": 1, "maximum": 20000, "default": 1000,
+                "samples": {"type": "integer", "minimum": 1, "maximum": MAX_SAMPLES, "default": 1000,
                             "description": "Monte Carlo builds for the yield"}},
         },
         **_spec_schemas(),
     }
+
+
+def _links(search_id: str) -> dict:
+    """Links from a created search to what a client does next (schemathesis follows them
+    in its stateful run: create -> poll -> candidates -> delete)."""
+    follow = {"search_id": search_id}
+    return {"GetSearch": {"operationId": "getSearch", "parameters": follow},
+            "GetCandidates": {"operationId": "candidates", "parameters": follow},
+            "GetFront": {"operationId": "front", "parameters": follow},
+            "CancelSearch": {"operationId": "cancelSearch", "parameters": follow}}
+
+
+def limits_text() -> str:
+    """Every bound the service enforces, with its value (the document's description)."""
+    from api import Settings
+    from optimizer import documents
+    from optimizer.spec import MAX_BATCH, MAX_DESCRIPTION, MAX_NAME, MAX_SAMPLES, MAX_TOP, MAX_TRIALS
+
+    return (f"Limits: request body at most STAGEFIT_MAX_BODY bytes (default {Settings.max_body}; 413); "
+            f"a body document at most {documents.MAX_NODES} values, {documents.MAX_DEPTH} levels of "
+            f"nesting and {documents.MAX_ALIASES} YAML aliases, no lone surrogates (400); "
+            f"search.trials at most STAGEFIT_MAX_TRIALS (default {Settings.max_trials}, never above "
+            f"{MAX_TRIALS}); search.batch_size at most {MAX_BATCH}; spec name at most {MAX_NAME} "
+            f"characters, description {MAX_DESCRIPTION} (422); samples at most {MAX_SAMPLES}; "
+            f"?top at most {MAX_TOP}; numbers in ASCII digits only; ?wait= at most STAGEFIT_MAX_WAIT s "
+            f"(default {Settings.max_wait:g}), STAGEFIT_MAX_WAITERS waiting requests at once (default half "
+            f"the request threads, so /healthz always answers); STAGEFIT_MAX_QUEUE searches queued or "
+            f"running (default {Settings.max_queue}; 429 with Retry-After).")
 
 
 def _paths() -> dict[str, Any]:
@@ -231,17 +265,23 @@ def _paths() -> dict[str, Any]:
                 "summary": "queue a search for a spec (YAML or JSON); its budget is the spec's search.trials",
                 "parameters": [
                     _param("wait", "query", {"type": "number", "minimum": 0, "maximum": 3600},
-                           "seconds to wait for the result (clamped to STAGEFIT_MAX_WAIT); 200 with the "
-                           "ranked candidates if the search finishes in time, else 202"),
+                           "seconds to wait for the result (clamped to STAGEFIT_MAX_WAIT, default 60); 200 "
+                           "with the ranked candidates if the search finishes in time, else 202. At most "
+                           "STAGEFIT_MAX_WAITERS requests wait at once (default half the request threads); "
+                           "past that the answer is 202 at once: poll the Location"),
                     TOP],
                 "requestBody": spec_body,
-                "responses": _responses({
-                    "200": _json(_ref("SearchResult"), "finished within ?wait=: the ranked candidates"),
+                "responses": {**_responses({
+                    "200": {**_json(_ref("SearchResult"), "finished within ?wait=: the ranked candidates"),
+                            "links": _links("$response.body#/search/id")},
                     "202": {"description": "queued (or still running); Location is the search's URL",
                             "headers": {"Location": {"schema": {"type": "string"},
                                                      "description": "the search's URL"}},
-                            "content": {"application/json": {"schema": _ref("SearchStatus")}}}},
-                    "400", "413", "415", "422")},
+                            "content": {"application/json": {"schema": _ref("SearchStatus")}},
+                            "links": _links("$response.body#/id")}},
+                    "400", "413", "415", "422"),
+                    "429": {**_problem("429"), "headers": {"Retry-After": {
+                        "schema": {"type": "string"}, "description": "seconds"}}}}},
             "get": {
                 "operationId": "listSearches", "summary": "stored searches, newest first, paged",
                 "parameters": [_param("limit", "query", {"type": "integer", "minimum": 1, "maximum": 200,
@@ -306,7 +346,7 @@ def _document() -> dict:
                  "description": "Search preferred-value parts and topologies for small-signal transistor "
                                 "stages. Errors are application/problem+json (RFC 9457). When the service "
                                 "has STAGEFIT_API_TOKEN set, every route but /healthz needs "
-                                "Authorization: Bearer <token>."},
+                                "Authorization: Bearer <token>. " + limits_text()},
         "servers": [{"url": "/"}],
         "security": [{}, {"bearer": []}],
         "paths": _paths(),

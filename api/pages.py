@@ -304,10 +304,8 @@ def design_fragment(search_id: str, rank: int) -> Response:
 def compare_fragment() -> Response:
     search_id = request.args.get("search", "")
     raw = request.args.get("ranks", "")
-    try:
-        ranks = [int(r) for r in raw.split(",") if r.strip()]
-    except ValueError:
-        ranks = []
+    given = [r.strip() for r in raw.split(",") if r.strip()]
+    ranks = [int(r) for r in given] if all(routes._WHOLE.fullmatch(r) for r in given) else []  # ASCII digits only
     if not 2 <= len(ranks) <= COMPARE_MAX or len(set(ranks)) != len(ranks):
         raise ApiProblem(400, "invalid query parameter", f"query.ranks: got {raw!r}; two or three different "
                          "ranks separated by commas, e.g. 1,2", kind="invalid-query",

@@ -16,7 +16,7 @@ from typing import Any, Iterable
 from flask import Flask, Response, request
 from werkzeug.exceptions import HTTPException
 
-from optimizer.errors import InputError, Problem
+from optimizer.errors import InputError, Problem, StorageError
 
 PROBLEM_JSON = "application/problem+json"
 TYPE_PREFIX = "urn:stagefit:problem:"
@@ -56,31 +56,45 @@ def _detail(title: str, problems: list[Problem]) -> str:
 
 def _plain(value: Any) -> Any:
     """A JSON-safe rendition of a value the user sent (or a repr of it)."""
-    if value is None or isinstance(value, (bool, int, str)):
+    if value is None or isinstance(value, bool):
         return value
+    if isinstance(value, int):
+        return value if abs(value) < 2**63 else _shorten(str(value))
+    if isinstance(value, str):
+        return _shorten(value)
     if isinstance(value, float):
         return value if math.isfinite(value) else str(value)
     if isinstance(value, (list, tuple)):
         return [_plain(v) for v in value][:50]
     if isinstance(value, dict):
         return {str(k): _plain(v) for k, v in list(value.items())[:50]}
-    return repr(value)[:200]
+    return _shorten(repr(value))
+
+
+def _shorten(text: str, most: int = 200) -> str:
+    return text if len(text) <= most else f"{text[:most]}... ({len(text)} characters)"
+
+
+def problem_body(status: int, title: str, detail: str, *, kind: str | None = None,
+                 errors: Iterable[Problem] = ()) -> str:
+    """The problem document as JSON text (``instance`` is the request path, in a request)."""
+    body: dict[str, Any] = {"type": TYPE_PREFIX + kind if kind else "about:blank", "title": title,
+                            "status": status, "detail": detail}
+    if _in_request():
+        body["instance"] = request.path
+    errors = list(errors)
+    if errors:
+        body["errors"] = [{"field": p.where, "value": _plain(p.value), "expected": p.expected}
+                          for p in errors]
+    # ensure_ascii: a lone surrogate the user sent is echoed as an escape, never a UnicodeEncodeError
+    return json.dumps(body)
 
 
 def problem_response(status: int, title: str, detail: str, *, kind: str | None = None,
                      errors: Iterable[Problem] = (), headers: dict[str, str] | None = None) -> Response:
     """Build the problem+json response (``kind`` None means ``about:blank``)."""
-    body: dict[str, Any] = {"type": TYPE_PREFIX + kind if kind else "about:blank", "title": title,
-                            "status": status, "detail": detail}
-    try:
-        body["instance"] = request.path
-    except RuntimeError:  # outside a request
-        pass
-    errors = list(errors)
-    if errors:
-        body["errors"] = [{"field": p.where, "value": _plain(p.value), "expected": p.expected}
-                          for p in errors]
-    response = Response(json.dumps(body, ensure_ascii=False), status=status, mimetype=PROBLEM_JSON)
+    response = Response(problem_body(status, title, detail, kind=kind, errors=errors), status=status,
+                        mimetype=PROBLEM_JSON)
     for key, value in (headers or {}).items():
         response.headers[key] = value
     return response
@@ -138,6 +152,12 @@ def register(app: Flask) -> None:
     def _input_error(error: InputError) -> Response:
         problem = ApiProblem.from_input(error)
         return _api_problem(problem)
+
+    @app.errorhandler(StorageError)
+    def _storage_error(error: StorageError) -> Response:
+        log.error("storage error on %s %s: %s", request.method, request.path, error)
+        return problem_response(503, "Service Unavailable", f"the search storage is not available: {error}",
+                                kind="storage-unavailable", headers={"Retry-After": "30"})
 
     @app.errorhandler(HTTPException)
     def _http_error(error: HTTPException) -> Response:

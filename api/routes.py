@@ -7,19 +7,18 @@ leaves a half-made search behind.
 """
 from __future__ import annotations
 
-import json
+import re
 import threading
-import time
 from collections import OrderedDict
 from dataclasses import dataclass
 from typing import Any
 
-import yaml
 from flask import Blueprint, Response, current_app, jsonify, request, url_for
 
-from api.jobs import JobPool
+from api.jobs import JobPool, QueueFull
 from api.problems import ApiProblem
 from optimizer.errors import InputError, Problem
+from optimizer.spec import MAX_SAMPLES, MAX_TOP
 
 blueprint = Blueprint("v1", __name__)
 
@@ -29,10 +28,7 @@ SVG = "image/svg+xml"
 TEXT = "text/plain"
 YAML_TYPES = ("application/yaml", "application/x-yaml", "text/yaml", "text/x-yaml")
 TERMINAL = ("done", "failed", "cancelled")
-POLL_INTERVAL = 0.1  # s, between status reads while a ?wait= request waits
-MAX_TOP = 1000
 MAX_PAGE = 200
-MAX_SAMPLES = 20000
 
 
 @dataclass
@@ -62,18 +58,11 @@ def negotiate(offered: tuple[str, ...]) -> str:
     return best
 
 
-class _NoAliasLoader(yaml.SafeLoader):
-    """Safe YAML without anchors/aliases (a small body must not expand into a huge one)."""
-
-    def compose_node(self, parent: Any, index: Any) -> Any:
-        if self.check_event(yaml.events.AliasEvent):
-            event = self.peek_event()
-            raise yaml.composer.ComposerError(None, None, "YAML aliases are not accepted", event.start_mark)
-        return super().compose_node(parent, index)
-
-
 def read_body(*, yaml_ok: bool = False) -> dict:
-    """The request body as a mapping: 415 for another content type, 400 if unreadable."""
+    """The request body as a mapping: 415 for another content type, 400 if unreadable or
+    beyond the document bounds (optimizer.documents: the loader the CLI uses too)."""
+    from optimizer.documents import parse_json, parse_yaml
+
     mimetype = request.mimetype
     accepted = (JSON,) + (YAML_TYPES if yaml_ok else ())
     if mimetype not in accepted and not (mimetype.startswith("application/") and mimetype.endswith("+json")):
@@ -87,29 +76,18 @@ def read_body(*, yaml_ok: bool = False) -> dict:
     except UnicodeDecodeError as exc:
         raise ApiProblem(400, "Bad Request", f"the body is not UTF-8 text (byte {exc.start})",
                          kind="malformed-body") from None
-    if mimetype in YAML_TYPES:
-        try:
-            data = yaml.load(text, Loader=_NoAliasLoader)  # noqa: S506 - a SafeLoader subclass
-        except yaml.YAMLError as exc:
-            mark = getattr(exc, "problem_mark", None)
-            where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
-            raise ApiProblem(400, "Bad Request", f"the body is not valid YAML{where}: "
-                             f"{getattr(exc, 'problem', None) or exc}", kind="malformed-body") from None
-    else:
-        try:
-            data = json.loads(text, parse_constant=_reject_constant)
-        except (json.JSONDecodeError, ValueError) as exc:
-            detail = (f"the body is not valid JSON: {exc.msg} at line {exc.lineno}, column {exc.colno}"
-                      if isinstance(exc, json.JSONDecodeError) else f"the body is not valid JSON: {exc}")
-            raise ApiProblem(400, "Bad Request", detail, kind="malformed-body") from None
+    try:
+        data = parse_yaml(text, "<body>") if mimetype in YAML_TYPES else parse_json(text, "<body>")
+    except InputError as error:
+        raise ApiProblem.from_input(error, 400, kind="malformed-body") from None
     if not isinstance(data, dict):
         raise ApiProblem(422, "invalid request body", "the body must be a JSON object",
                          kind="invalid-input", errors=[Problem("<body>", type(data).__name__, "an object")])
     return data
 
 
-def _reject_constant(name: str) -> Any:
-    raise ValueError(f"{name} is not a JSON number")
+_WHOLE = re.compile(r"-?[0-9]{1,12}")  # ASCII digits only: str.isdigit() also takes '²' and '٣'
+_DECIMAL = re.compile(r"[0-9]{1,12}(\.[0-9]{0,9})?|\.[0-9]{1,9}")
 
 
 def query_int(name: str, default: int | None, low: int, high: int) -> int | None:
@@ -118,7 +96,7 @@ def query_int(name: str, default: int | None, low: int, high: int) -> int | None
     if raw is None:
         return default
     text = raw.strip()
-    if not (text.isdigit() or (text.startswith("-") and text[1:].isdigit())) or not low <= int(text) <= high:
+    if not _WHOLE.fullmatch(text) or not low <= int(text) <= high:
         raise _query_problem(name, raw, f"a whole number from {low} to {high}")
     return int(text)
 
@@ -127,13 +105,10 @@ def query_number(name: str, default: float, low: float, high: float) -> float:
     raw = request.args.get(name)
     if raw is None:
         return default
-    try:
-        value = float(raw)
-        if not low <= value <= high:  # also rejects nan
-            raise ValueError
-    except ValueError:
-        raise _query_problem(name, raw, f"a number of seconds from {low:g} to {high:g}") from None
-    return value
+    text = raw.strip()
+    if not _DECIMAL.fullmatch(text) or not low <= float(text) <= high:
+        raise _query_problem(name, raw, f"a number of seconds from {low:g} to {high:g}")
+    return float(text)
 
 
 def query_bool(name: str) -> bool | None:
@@ -298,7 +273,8 @@ def evaluate() -> Response:
         problems += [Problem(f"parts.{role}", None, f"every resistor of {topology.name} given: "
                              + ", ".join(topology.resistors)) for role in topology.resistors if role not in raw_parts]
     device = body.get("device")
-    if device is not None and found is not None and device not in set(found.transistors["id"]):
+    if device is not None and found is not None and (not isinstance(device, str)
+                                                     or device not in set(found.transistors["id"])):
         problems.append(Problem("device", device, f"a transistor of catalog {found.name}: "
                                 + ", ".join(found.transistors["id"])))
     samples = body.get("samples", 1000)
@@ -364,16 +340,27 @@ def create() -> Response:
                          "(STAGEFIT_MAX_TRIALS): ask for fewer trials",
                          kind="budget-too-large",
                          errors=[Problem("search.trials", spec.search.trials, f"at most {limit}")])
+    pool = service().jobs
+    try:
+        pool.admit()
+    except QueueFull as full:
+        raise ApiProblem(429, "Too Many Requests",
+                         f"{full.limit} searches are queued or running on this service (STAGEFIT_MAX_QUEUE); "
+                         f"try again in {full.retry_after} s", kind="queue-full",
+                         headers={"Retry-After": str(full.retry_after)}) from None
     try:
         search_id = create_search(spec, service().storage, catalog=found)
     except InputError as error:
+        pool.release()
         raise _input(error) from None
-    service().jobs.submit(search_id)
-    deadline = time.monotonic() + min(wait, service().settings.max_wait)
-    while _stored_status(search_id) not in TERMINAL and time.monotonic() < deadline:
-        time.sleep(min(POLL_INTERVAL, max(0.0, deadline - time.monotonic())))
+    except BaseException:
+        pool.release()
+        raise
+    pool.submit(search_id, reserved=True)
+    waited = pool.wait(search_id, min(wait, service().settings.max_wait),
+                       lambda: _stored_status(search_id) in TERMINAL)
     status = _status(search_id)
-    if status["status"] == "done" and wait > 0:
+    if status["status"] == "done" and wait > 0 and waited:
         return jsonify(_result_body(search_id, status, top, None)), 200
     response = jsonify(status)
     response.status_code = 202
@@ -452,9 +439,11 @@ def cancel(search_id: str) -> Response:
         cancel_search(service().storage, search_id)
         delete_search(service().storage, search_id)
         _forget(search_id)
+        service().jobs.notify()
         return Response(status=204)
     if status["status"] not in TERMINAL:
         cancel_search(service().storage, search_id)
+        service().jobs.notify()
         status = _status(search_id)
     return jsonify(status)
 

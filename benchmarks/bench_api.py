@@ -40,13 +40,13 @@ RESULTS = ROOT / "benchmarks" / "results" / "api.md"
 class Server:
     """`stagefit serve --port 0` in a subprocess (killed on exit)."""
 
-    def __init__(self, workdir: Path, env: dict[str, str]) -> None:
+    def __init__(self, workdir: Path, env: dict[str, str], *, threads: int = 24, log: str = "server.log") -> None:
         self.storage = workdir / "bench.journal"
-        self.log = workdir / "server.log"
+        self.log = workdir / log
         environment = {k: v for k, v in os.environ.items() if not k.startswith("STAGEFIT_")} | env
         with open(self.log, "w") as out:
             self.proc = subprocess.Popen([sys.executable, "-m", "optimizer.cli", "serve", "--port", "0",
-                                          "--threads", "24", "--storage", str(self.storage)],
+                                          "--threads", str(threads), "--storage", str(self.storage)],
                                          cwd=ROOT, env=environment, stdout=out, stderr=subprocess.STDOUT)
         deadline = time.monotonic() + 60
         while not (found := re.search(r"serving on http://([\d.]+):(\d+)/", self.log.read_text())):

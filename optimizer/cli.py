@@ -1,19 +1,28 @@
 """The `stagefit` command: a thin door onto the optimizer package.
 
-Exit codes: 0 success, 2 bad input (the message says what to change),
-1 internal error (a bug: please report it with the command you ran).
+Exit codes (also in ``stagefit --help`` and the README):
+0 done (search: a design meets every limit), 3 the spec was answered but no design meets
+every limit (the nearest misses are printed, ranked), 2 bad input (one line saying what to
+change), 4 environment or storage error (a file, the disk, the database, a search busy in
+another process), 1 internal error (a bug: please report it with the command you ran).
 """
 from __future__ import annotations
 
 import argparse
 import json
 import os
+import re
 import sys
+import time
 from typing import Callable, Sequence
 
-from optimizer.errors import InputError
+from optimizer.errors import InputError, StorageError
 
-EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT = 0, 1, 2
+EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT, EXIT_INFEASIBLE, EXIT_ENVIRONMENT = 0, 1, 2, 3, 4
+EXIT_CODES = ("exit codes: 0 done (search: a design meets every limit); 3 no design meets every limit "
+              "(the nearest misses are printed, ranked); 2 bad input; 4 environment or storage error "
+              "(file, disk, database, search busy elsewhere); 1 internal error (a bug)")
+BUSY_WAIT = 120.0  # s a run waits for another process's trials in a search it joined
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
@@ -227,8 +236,10 @@ def _progress_printer(stream=sys.stderr, quiet: bool = False) -> Callable[[int, 
 def _run_or_reuse(args: argparse.Namespace, spec):
     """The finished search of ``spec`` in --storage: reused when the very same spec (and seed
     and budget) was searched before, resumed when it was interrupted, run otherwise."""
+    from optuna.exceptions import DuplicatedStudyError
+
     from optimizer.search import (create_search, delete_search, extend_search, list_searches, load_search,
-                                  open_storage, run_search, spec_search_id, with_search)
+                                  open_storage, run_search, search_status, spec_search_id, with_search)
 
     spec = with_search(spec, trials=args.trials, seed=args.seed)
     storage = open_storage(args.storage)
@@ -240,7 +251,10 @@ def _run_or_reuse(args: argparse.Namespace, spec):
     if search_id not in known:
         print(f"no stored search of this spec in {args.storage}: running one ({spec.search.trials} trials)",
               file=sys.stderr)
-        create_search(spec, storage, search_id=search_id)
+        try:
+            create_search(spec, storage, search_id=search_id)
+        except DuplicatedStudyError:  # another stagefit run of this spec created it meanwhile
+            print(f"another run is searching this spec ({search_id}); joining it", file=sys.stderr)
     elif known[search_id]["status"] == "done":
         print(f"reusing the stored search {search_id} of this spec from {args.storage} (--fresh to run it again)",
               file=sys.stderr)
@@ -248,7 +262,18 @@ def _run_or_reuse(args: argparse.Namespace, spec):
         print(f"resuming the interrupted search {search_id} of this spec from {args.storage}", file=sys.stderr)
         extend_search(storage, search_id, 0)  # queue it again; finished trials are kept
     done = search_id in known and known[search_id]["status"] == "done"
-    run_search(storage, search_id, progress=_progress_printer(quiet=args.quiet or done))
+    deadline = time.monotonic() + BUSY_WAIT
+    while True:  # runs sharing a search split its budget; each waits for the others' last trials
+        run_search(storage, search_id, progress=_progress_printer(quiet=args.quiet or done))
+        status = search_status(storage, search_id)
+        if status["status"] in ("done", "failed", "cancelled"):
+            break
+        if time.monotonic() > deadline:
+            raise StorageError(f"search {search_id} is busy: {status['trials_running']} of its trials are "
+                               "held by another process; try again when it has finished")
+        time.sleep(0.5)
+    if status["status"] == "failed":
+        raise StorageError(f"search {search_id} failed: {status.get('reason') or 'see the log'}")
     return load_search(storage, search_id, top=max(args.top, 1))
 
 
@@ -331,6 +356,9 @@ def _cmd_search(args: argparse.Namespace) -> int:
                 print(f"caution: {caution}")
     for target, kind in plots:
         _write_plot(target, kind, result, args.rank)
+    if not shown or not shown[0]["feasible"]:
+        print("no design meets every limit: the nearest misses are listed above, ranked", file=sys.stderr)
+        return EXIT_INFEASIBLE
     return EXIT_OK
 
 
@@ -467,7 +495,9 @@ def _cmd_serve(args: argparse.Namespace) -> int:
 
     config = {k: v for k, v in (("STAGEFIT_WORKERS", args.workers), ("STAGEFIT_STORAGE", args.storage))
               if v is not None}
-    serve(args.host, args.port, threads=args.threads, config=config)
+    if args.threads is not None:
+        config["STAGEFIT_THREADS"] = args.threads
+    serve(args.host, args.port, config=config)
     return EXIT_OK
 
 
@@ -481,27 +511,76 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_storage(args: argparse.Namespace) -> int:
+    from optimizer.storage import check_journal, repair_journal
+
+    if args.action == "check":
+        report = check_journal(args.file)
+        print(report.describe())
+        if not report.clean:
+            print(f"the service skips the damaged lines; `stagefit storage repair {args.file}` rewrites the "
+                  "file without them (stop the service first)", file=sys.stderr)
+        return EXIT_OK if report.clean else EXIT_ENVIRONMENT
+    report = repair_journal(args.file)
+    print(report.describe())
+    if report.backup:
+        print(f"rewrote {report.path} with its {report.records} readable records; the original is kept as "
+              f"{report.backup}")
+    else:
+        print("nothing to repair")
+    return EXIT_OK
+
+
+_WHOLE = re.compile(r"[+-]?[0-9]{1,12}")  # ASCII digits only: int() also takes '٣' and '²'
+
+
+def _whole(low: int, high: int) -> Callable[[str], int]:
+    """An argparse type: a whole number from ``low`` to ``high`` written in ASCII digits."""
+
+    def parse(text: str) -> int:
+        if not _WHOLE.fullmatch(text.strip()) or not low <= int(text) <= high:
+            raise argparse.ArgumentTypeError(f"got {text[:40]!r}; a whole number from {low} to {high}")
+        return int(text)
+
+    parse.__name__ = "whole number"
+    return parse
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with a one-line error (exit code 2) instead of the usage block."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        self.exit(EXIT_BAD_INPUT, f"error: {self.prog}: {message} (see {self.prog} --help)\n")
+
+
 def _search_options(parser: argparse.ArgumentParser) -> None:
+    from optimizer.spec import MAX_TRIALS
+
     parser.add_argument("--storage", default="runs/stagefit.journal",
                         help="where searches are kept: a journal file (default runs/stagefit.journal) "
                              "or a database URL such as postgresql://user@host/db")
-    parser.add_argument("--trials", type=int, default=None, help="trial budget (default: the spec's)")
-    parser.add_argument("--seed", type=int, default=None, help="random seed (default: the spec's)")
+    parser.add_argument("--trials", type=_whole(1, MAX_TRIALS), default=None,
+                        help=f"trial budget, 1 to {MAX_TRIALS} (default: the spec's)")
+    parser.add_argument("--seed", type=_whole(0, 2**32 - 1), default=None, help="random seed (default: the spec's)")
     parser.add_argument("--fresh", action="store_true", help="run again even if this spec was searched before")
     parser.add_argument("--quiet", action="store_true", help="no progress report on stderr")
 
 
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the `stagefit` command (sub-commands and options)."""
-    parser = argparse.ArgumentParser(
-        prog="stagefit",
+    from optimizer.bom import MAX_UNITS
+    from optimizer.spec import MAX_SAMPLES, MAX_TOP
+
+    parser = _Parser(
+        prog="stagefit", formatter_class=argparse.RawDescriptionHelpFormatter,
         description=(
             "Choose the topology and every resistor and capacitor of a small-signal "
             "transistor stage from preferred values you can buy or have in stock."
         ),
-        epilog="Start with: stagefit check specs/contact_pickup_buffer.yaml",
+        epilog="Start with: stagefit check specs/contact_pickup_buffer.yaml\n\n" + EXIT_CODES.replace("; ", "\n  ")
+        .replace("exit codes: ", "exit codes:\n  "),
     )
-    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True, parser_class=_Parser)
 
     check = sub.add_parser("check", help="validate a requirements spec and print it with units")
     check.add_argument("spec", help="path to a spec file (YAML or JSON)")
@@ -529,21 +608,23 @@ def build_parser() -> argparse.ArgumentParser:
     evaluate.add_argument("--set", action="append", default=[], metavar="ROLE=VALUE",
                           help="a part value, e.g. --set r_top=68k (repeat; capacitors left out are sized)")
     evaluate.add_argument("--device", default=None, help="transistor id (default: the spec's first device)")
-    evaluate.add_argument("--samples", type=int, default=1000, help="Monte Carlo builds for the yield")
+    evaluate.add_argument("--samples", type=_whole(1, MAX_SAMPLES), default=1000,
+                          help=f"Monte Carlo builds for the yield, 1 to {MAX_SAMPLES} (default 1000)")
     evaluate.add_argument("--format", choices=("table", "json"), default="table")
     evaluate.set_defaults(handler=_cmd_evaluate)
 
     search = sub.add_parser("search", help="search parts and topologies for a spec; ranked designs and the front")
     search.add_argument("spec", help="path to a spec file (YAML or JSON)")
     _search_options(search)
-    search.add_argument("--top", type=int, default=10, help="how many ranked designs to show (default 10)")
+    search.add_argument("--top", type=_whole(1, MAX_TOP), default=10,
+                        help=f"how many ranked designs to show, 1 to {MAX_TOP} (default 10)")
     search.add_argument("--format", choices=("table", "json", "csv", "markdown"), default="table")
     search.add_argument("--front", action="store_true", help="also print the Pareto front")
     search.add_argument("--explain", action="store_true",
                         help="print each shown design's score broken down term by term")
     search.add_argument("--plot", action="append", default=[], metavar="FILE",
                         help="write front.svg, response.svg or transfer.svg (or .png) of --rank; repeat")
-    search.add_argument("--rank", type=int, default=1, help="the design --plot draws (default 1)")
+    search.add_argument("--rank", type=_whole(1, MAX_TOP), default=1, help="the design --plot draws (default 1)")
     search.add_argument("--columns", default=None, metavar="LIST",
                         help="table columns, comma-separated, from: " + ", ".join(COLUMNS)
                              + " (default: " + ",".join(DEFAULT_COLUMNS) + ")")
@@ -551,8 +632,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     bom = sub.add_parser("bom", help="bill of materials and kitting of a ranked design against the catalog's stock")
     bom.add_argument("spec", help="path to a spec file (YAML or JSON)")
-    bom.add_argument("--rank", type=int, default=1, help="which ranked design (default 1)")
-    bom.add_argument("--units", type=int, default=1, help="how many stages to kit (default 1)")
+    bom.add_argument("--rank", type=_whole(1, MAX_TOP), default=1, help="which ranked design (default 1)")
+    bom.add_argument("--units", type=_whole(1, MAX_UNITS), default=1,
+                     help=f"how many stages to kit, 1 to {MAX_UNITS} (default 1)")
     bom.add_argument("--format", choices=("table", "csv", "json"), default="table")
     _search_options(bom)
     bom.set_defaults(handler=_cmd_bom)
@@ -560,24 +642,28 @@ def build_parser() -> argparse.ArgumentParser:
     netlist = sub.add_parser("netlist", help="SPICE netlist of a ranked design (or of a candidate JSON on stdin)")
     netlist.add_argument("spec", nargs="?", default=None,
                          help="path to a spec file; '-' or none: read a candidate record (JSON) from stdin")
-    netlist.add_argument("--rank", type=int, default=1, help="which ranked design (default 1)")
+    netlist.add_argument("--rank", type=_whole(1, MAX_TOP), default=1, help="which ranked design (default 1)")
     netlist.add_argument("--out", default=None, help="write the netlist to this file (default: stdout)")
     _search_options(netlist)
     netlist.set_defaults(handler=_cmd_netlist)
 
     report = sub.add_parser("report", help="one self-contained HTML design sheet of a ranked design")
     report.add_argument("spec", help="path to a spec file (YAML or JSON)")
-    report.add_argument("--rank", type=int, default=1, help="which ranked design (default 1)")
+    report.add_argument("--rank", type=_whole(1, MAX_TOP), default=1, help="which ranked design (default 1)")
     report.add_argument("--out", required=True, help="directory to write rankN.html into")
-    report.add_argument("--units", type=int, default=1, help="units the sheet's BOM is kitted for (default 1)")
+    report.add_argument("--units", type=_whole(1, MAX_UNITS), default=1,
+                        help=f"units the sheet's BOM is kitted for, 1 to {MAX_UNITS} (default 1)")
     _search_options(report)
     report.set_defaults(handler=_cmd_report)
 
     serve = sub.add_parser("serve", help="run the REST service (waitress; settings also from STAGEFIT_* variables)")
     serve.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
-    serve.add_argument("--port", type=int, default=8750, help="port (default 8750; 0 picks a free one)")
-    serve.add_argument("--workers", type=int, default=None, help="searches run at once (STAGEFIT_WORKERS, default 1)")
-    serve.add_argument("--threads", type=int, default=8, help="request threads (default 8)")
+    serve.add_argument("--port", type=_whole(0, 65535), default=8750, help="port (default 8750; 0 picks a free one)")
+    serve.add_argument("--workers", type=_whole(1, 64), default=None,
+                       help="searches run at once (STAGEFIT_WORKERS, default 1)")
+    serve.add_argument("--threads", type=_whole(2, 1024), default=None,
+                       help="request threads (STAGEFIT_THREADS, default 8); at most half of them wait on "
+                            "?wait= posts (STAGEFIT_MAX_WAITERS), the rest always serve other requests")
     serve.add_argument("--storage", default=None,
                        help="Optuna storage URL or journal file (STAGEFIT_STORAGE, default runs/stagefit.journal)")
     serve.set_defaults(handler=_cmd_serve)
@@ -591,13 +677,24 @@ def build_parser() -> argparse.ArgumentParser:
     worker.add_argument("--poll", type=float, default=2.0, help="seconds to wait when there is nothing to do (default 2)")
     worker.add_argument("--once", action="store_true", help="exit when no stored search has budget left")
     worker.set_defaults(handler=_cmd_worker)
+
+    storage = sub.add_parser("storage", help="check a journal file for damaged records, or repair it "
+                             "(keeps a backup); exit 4 from check when damage is found")
+    storage.add_argument("action", choices=("check", "repair"),
+                         help="check: report damaged lines by byte offset; repair: rewrite the file "
+                              "without them, the original kept as FILE.bak-<time> (stop the service first)")
+    storage.add_argument("file", metavar="FILE", help="the journal file, e.g. runs/stagefit.journal")
+    storage.set_defaults(handler=_cmd_storage)
     return parser
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the process exit code."""
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as done:  # --help (0) or a bad argument (2, one line printed)
+        return done.code if isinstance(done.code, int) else EXIT_BAD_INPUT
     handler: Callable[[argparse.Namespace], int] = args.handler
     try:
         return handler(args)
@@ -610,8 +707,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return EXIT_INTERNAL
-    except Exception as error:  # a bug, not the user's fault
-        if os.environ.get("STAGEFIT_DEBUG"):
+    except Exception as error:
+        if _environmental(error):  # the disk, a file, the database: not the user's input, not a bug
+            print(f"error: {type(error).__name__}: {error}".splitlines()[0], file=sys.stderr)
+            return EXIT_ENVIRONMENT
+        if os.environ.get("STAGEFIT_DEBUG"):  # a bug, not the user's fault
             raise
         print(
             f"internal error: {type(error).__name__}: {error}\n"
@@ -619,6 +719,12 @@ def main(argv: Sequence[str] | None = None) -> int:
             file=sys.stderr,
         )
         return EXIT_INTERNAL
+
+
+def _environmental(error: BaseException) -> bool:
+    """A storage or operating-system failure (exit code 4)."""
+    return isinstance(error, (StorageError, OSError, MemoryError)) or \
+        type(error).__module__.split(".")[0] in ("sqlalchemy", "psycopg")
 
 
 if __name__ == "__main__":

@@ -18,7 +18,11 @@ class Problem:
     expected: str
 
     def __str__(self) -> str:
-        return f"{self.where}: got {self.value!r}; {self.expected}"
+        shown = repr(self.value) if not isinstance(self.value, int) or abs(self.value) < 10**40 \
+            else f"an integer of {len(str(abs(self.value)))} digits"
+        if len(shown) > 120:  # a long value is named, not echoed: the message stays one line
+            shown = f"{shown[:100]}... ({len(shown)} characters)"
+        return f"{self.where}: got {shown}; {self.expected}"
 
 
 @dataclass
@@ -42,3 +46,9 @@ class InputError(ValueError):
     def single(cls, where: str, value: object, expected: str, title: str = "invalid input") -> "InputError":
         """Shortcut for an error with exactly one problem."""
         return cls([Problem(where, value, expected)], title)
+
+
+class StorageError(RuntimeError):
+    """The environment failed us, not the user's input: the storage cannot be read or
+    written (a damaged journal found by ``stagefit storage check``, a full disk, a database
+    away). The CLI turns it into exit code 4, the REST service into a 503 problem."""

@@ -234,6 +234,10 @@ def response_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None 
     the -3 dB points marked."""
     fmt = _check_format(fmt)
     data = response_data(candidate)
+    if not (np.isfinite(data["gain_db"]).all() and math.isfinite(data["reference_db"])):
+        raise InputError.single("response", "not a finite number at some frequency",
+                                "a design whose small-signal response the model can compute "
+                                "(this one's bias or gain does not solve)", title="no response to plot")
     fig = Figure(figsize=FIGSIZE)
     ax = fig.add_subplot()
     ax.axvspan(*data["band"], color=COLOURS["band"], alpha=0.12,

@@ -41,6 +41,7 @@ from optuna.study import Study
 from optuna.trial import FrozenTrial, TrialState
 
 from optimizer.scoring import pareto_mask
+from optimizer.storage import trial_id
 
 ELITE_SIZE = 16
 PARENT_FROM_FRONT = 0.5
@@ -98,18 +99,18 @@ class NeighbourSampler(BaseSampler):
             self._refresh(study)
             self._next_refresh = trial.number + REFRESH_EVERY
         if self._elite:
-            self._plans[trial._trial_id] = self._propose()
+            self._plans[trial_id(trial)] = self._propose()
 
     def sample_independent(self, study: Study, trial: FrozenTrial, param_name: str,
                            param_distribution: BaseDistribution) -> Any:
-        plan = self._plans.get(trial._trial_id, {})
+        plan = self._plans.get(trial_id(trial), {})
         if param_name in plan and _fits(param_distribution, plan[param_name]):
             return plan[param_name]
         return self._random.sample_independent(study, trial, param_name, param_distribution)
 
     def after_trial(self, study: Study, trial: FrozenTrial, state: TrialState,
                     values: list[float] | None) -> None:
-        self._plans.pop(trial._trial_id, None)
+        self._plans.pop(trial_id(trial), None)
         self._seen.add(self._key(trial.params))
 
     # ---- the elite and the front ---------------------------------------------------------
@@ -118,9 +119,9 @@ class NeighbourSampler(BaseSampler):
         done = study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
         if len(done) == self._cache_count:
             return
-        new = [t for t in done if t._trial_id not in self._counted]
+        new = [t for t in done if trial_id(t) not in self._counted]
         self._cache_count = len(done)
-        self._counted.update(t._trial_id for t in new)
+        self._counted.update(trial_id(t) for t in new)
         for t in new:
             self._seen.add(self._key(t.params))
         self._elite = sorted(self._elite + new, key=self._rank_key)[:ELITE_SIZE]
@@ -219,9 +220,9 @@ class NeighbourSampler(BaseSampler):
 
     def _rank_key(self, trial: FrozenTrial) -> tuple:
         """The caller's rank key, worked out once per finished trial."""
-        if trial._trial_id not in self._ranks:
-            self._ranks[trial._trial_id] = self._rank_of(trial)
-        return self._ranks[trial._trial_id]
+        if trial_id(trial) not in self._ranks:
+            self._ranks[trial_id(trial)] = self._rank_of(trial)
+        return self._ranks[trial_id(trial)]
 
     def _elite_all(self) -> list[FrozenTrial]:
         return self._elite + self._front

@@ -574,22 +574,40 @@ def _load(storage: BaseStorage, search_id: str) -> tuple[optuna.Study, Spec]:
     except KeyError:
         raise InputError.single("search", search_id, "the id of an existing search",
                                 title="unknown search") from None
-    return study, parse_spec(study.user_attrs["spec"])
+    attrs = study.user_attrs
+    if not isinstance(attrs.get("spec"), dict) or not isinstance(attrs.get("budget"), int):
+        raise InputError.single("search", search_id, "a search whose record was written in full "
+                                "(its creation was cut short; delete it)", title="incomplete search")
+    return study, parse_spec(attrs["spec"])
 
 
 def create_search(spec: Spec, storage: BaseStorage, *, search_id: str | None = None,
                   catalog: Catalog | None = None) -> str:
     """Create the study for ``spec`` (status 'queued'), seeds enqueued; returns its id.
-    The space is built first, so a spec that does not fit its catalog stores nothing."""
+
+    Everything is checked before anything is stored: the space is built (the spec fits its
+    catalog) and the spec as it will be stored reads back. The status is written last: it is
+    the search record's commit mark, so a creation cut short by a crash leaves a study
+    without a status, which :func:`list_searches` shows as failed, :func:`delete_search`
+    removes and a new creation under the same id replaces."""
     space = SearchSpace.build(spec, catalog)
+    stored = spec_to_dict(spec)
+    parse_spec(stored)  # what is stored must load again (InputError otherwise, nothing written)
     search_id = search_id or f"s-{uuid.uuid4().hex[:12]}"
     directions = ["minimize" if d == "minimise" else "maximize" for _, d in spec.objective_directions]
-    study = optuna.create_study(study_name=search_id, storage=storage, directions=directions)
-    for key, value in (("spec", spec_to_dict(spec)), ("budget", spec.search.trials), ("status", "queued"),
-                       ("created", _now()), ("objectives", [list(o) for o in spec.objective_directions])):
-        study.set_user_attr(key, value)
-    for design in space.seeds()[: spec.search.trials]:
-        study.enqueue_trial(space.params_of(design), skip_if_exists=True)
+    with claim_batch(storage, search_id):  # one creator at a time: a record without status is then never in the making
+        try:
+            if storage.get_study_user_attrs(storage.get_study_id_from_name(search_id)).get("status") is None:
+                optuna.delete_study(study_name=search_id, storage=storage)  # a half-made record: replaced
+        except KeyError:
+            pass
+        study = optuna.create_study(study_name=search_id, storage=storage, directions=directions)
+        for key, value in (("spec", stored), ("budget", spec.search.trials), ("created", _now()),
+                           ("objectives", [list(o) for o in spec.objective_directions])):
+            study.set_user_attr(key, value)
+        for design in space.seeds()[: spec.search.trials]:
+            study.enqueue_trial(space.params_of(design), skip_if_exists=True)
+        study.set_user_attr("status", "queued")  # the commit mark
     return search_id
 
 
@@ -613,8 +631,13 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
     counting and asking is one claimed step (storage.claim_batch), so together they finish
     exactly the budget; running trials carry heartbeats and a dead runner's trials are failed
     and retried at the next batch of any runner (storage.TrialHeartbeat)."""
-    study, spec = _load(storage, search_id)
-    space = SearchSpace.build(spec, catalog)
+    try:
+        study, spec = _load(storage, search_id)
+        space = SearchSpace.build(spec, catalog)
+    except InputError as error:
+        if error.title != "unknown search":  # stored, but it cannot run: say so, never leave it queued
+            fail_search(storage, search_id, f"cannot run: {error}")
+        raise
     study.sampler = _sampler(space, seed_offset)
     budget = int(study.user_attrs["budget"])
     if study.user_attrs.get("status") in ("queued", "failed"):
@@ -642,10 +665,10 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
                 fresh = list(dict.fromkeys(d for d in designs if d not in known))
                 known.update(zip(fresh, evaluate_designs(space, fresh)))
                 records = [known[d] for d in designs]
-            except Exception:
+            except Exception as error:
                 for t in trials:
                     study.tell(t, state=TrialState.FAIL)
-                study.set_user_attr("status", "failed")
+                fail_search(storage, search_id, f"evaluation failed: {type(error).__name__}: {error}")
                 raise
             for t, record in zip(trials, records):
                 t.set_user_attr("record", json.dumps(record))
@@ -759,8 +782,15 @@ def candidates_frame(candidates: list[dict], *, labels: bool = False) -> pd.Data
 
 
 def search_status(storage: BaseStorage, search_id: str) -> dict:
-    """Status, progress and best so far of a search (JSON-ready)."""
-    study, spec = _load(storage, search_id)
+    """Status, progress and best so far of a search (JSON-ready). A stored search that can
+    no longer be read (its creation cut short, or a spec this version rejects) is reported
+    as failed with its reason rather than raising, so it can still be seen and deleted."""
+    try:
+        study, spec = _load(storage, search_id)
+    except InputError as error:
+        if error.title == "unknown search":
+            raise
+        return _unreadable_status(storage, search_id, str(error))
     ranking = study.user_attrs.get("ranking")
     if ranking:
         best = ranking["candidates"][0] if ranking["candidates"] else None
@@ -770,12 +800,24 @@ def search_status(storage: BaseStorage, search_id: str) -> dict:
     return _status(study, spec, best)
 
 
+def _unreadable_status(storage: BaseStorage, search_id: str, why: str) -> dict:
+    attrs = storage.get_study_user_attrs(storage.get_study_id_from_name(search_id))
+    name = attrs.get("spec", {}).get("name") if isinstance(attrs.get("spec"), dict) else None
+    budget = attrs.get("budget")
+    return {"id": search_id, "name": name if isinstance(name, str) else None, "status": "failed",
+            "reason": attrs.get("reason") or f"the stored search cannot be read: {why}",
+            "trials_done": 0, "trials_running": 0, "trials_feasible": 0,
+            "budget": budget if isinstance(budget, int) and not isinstance(budget, bool) else 0,
+            "elapsed": 0.0, "created": attrs.get("created"), "best": None}
+
+
 def _status(study: optuna.Study, spec: Spec, best: dict | None) -> dict:
     attrs = study.user_attrs
     finished, running = _counts(study)
     started = attrs.get("started")
     elapsed = attrs.get("elapsed") if attrs.get("status") == "done" else (time.time() - started if started else 0.0)
-    return {"id": study.study_name, "name": spec.name, "status": attrs.get("status", "queued"),
+    return {"id": study.study_name, "name": spec.name, "status": attrs.get("status") or "failed",
+            "reason": attrs.get("reason") if attrs.get("status") else "its creation was cut short",
             "trials_done": finished, "trials_running": running, "trials_feasible": _feasible_count(study),
             "budget": int(attrs["budget"]),
             "elapsed": float(elapsed or 0.0), "created": attrs.get("created"), "best": best}
@@ -804,28 +846,43 @@ def load_search(storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SI
 
 
 def list_searches(storage: BaseStorage) -> list[dict]:
-    """Status of every search in ``storage``, newest first (without the best design)."""
+    """Status of every search in ``storage``, newest first (without the best design). A
+    search whose creation was cut short (no status yet) is listed as failed."""
     out = []
     for s in storage.get_all_studies():  # study records only, no trials read
         attrs = s.user_attrs
         if "spec" not in attrs:
             continue  # not a stagefit search
-        out.append({"id": s.study_name, "name": attrs["spec"].get("name"), "status": attrs.get("status"),
+        spec = attrs["spec"] if isinstance(attrs["spec"], dict) else {}
+        out.append({"id": s.study_name, "name": spec.get("name"), "status": attrs.get("status") or "failed",
                     "budget": attrs.get("budget"), "created": attrs.get("created")})
     return sorted(out, key=lambda s: s.get("created") or "", reverse=True)
 
 
+def _attrs(storage: BaseStorage, search_id: str) -> tuple[int, dict]:
+    """(study id, user attrs) of a stored search, without reading its spec."""
+    try:
+        study_id = storage.get_study_id_from_name(search_id)
+    except KeyError:
+        raise InputError.single("search", search_id, "the id of an existing search",
+                                title="unknown search") from None
+    return study_id, storage.get_study_user_attrs(study_id)
+
+
 def cancel_search(storage: BaseStorage, search_id: str) -> None:
-    """Stop a search at its next batch; finished trials are kept."""
-    study, _ = _load(storage, search_id)
-    if study.user_attrs.get("status") in ("queued", "running"):
-        study.set_user_attr("status", "cancelled")
+    """Stop a search at its next batch; finished trials are kept. Works in every state
+    (a finished search stays as it is)."""
+    study_id, attrs = _attrs(storage, search_id)
+    if attrs.get("status") in ("queued", "running", None):
+        storage.set_study_user_attr(study_id, "status", "cancelled")
 
 
-def fail_search(storage: BaseStorage, search_id: str) -> None:
-    """Mark a search 'failed' (its runner hit an error); extend_search queues it again."""
-    study, _ = _load(storage, search_id)
-    study.set_user_attr("status", "failed")
+def fail_search(storage: BaseStorage, search_id: str, reason: str = "") -> None:
+    """Mark a search 'failed' with its ``reason`` (its runner hit an error, or it cannot run);
+    extend_search queues it again."""
+    study_id, _ = _attrs(storage, search_id)
+    storage.set_study_user_attr(study_id, "reason", reason[:2000] or "stopped by an unexpected error")
+    storage.set_study_user_attr(study_id, "status", "failed")
 
 
 def extend_search(storage: BaseStorage, search_id: str, trials: int) -> None:
@@ -834,12 +891,13 @@ def extend_search(storage: BaseStorage, search_id: str, trials: int) -> None:
         raise InputError.single("trials", trials, "a whole number of extra trials, 0 or more")
     study, _ = _load(storage, search_id)
     study.set_user_attr("budget", int(study.user_attrs["budget"]) + trials)
+    study.set_user_attr("reason", None)
     study.set_user_attr("status", "queued")
 
 
 def delete_search(storage: BaseStorage, search_id: str) -> None:
-    """Remove a search and its trials from the storage."""
-    _load(storage, search_id)
+    """Remove a search and its trials from the storage, whatever its state."""
+    _attrs(storage, search_id)
     optuna.delete_study(study_name=search_id, storage=storage)
 
 

@@ -15,7 +15,6 @@ import math
 from pathlib import Path
 from typing import Annotated, Any, Callable, Literal
 
-import yaml
 from pydantic import (BaseModel, BeforeValidator, ConfigDict, Field, ValidationError,
                       ValidationInfo, WithJsonSchema, field_validator, model_validator)
 
@@ -34,6 +33,13 @@ METRIC_DIRECTIONS = {
 DIRECTION_ALIASES = {"minimise": "minimise", "minimize": "minimise", "min": "minimise",
                       "maximise": "maximise", "maximize": "maximise", "max": "maximise"}
 NOMINAL_TEMPERATURE_C = 27.0
+# bounds on what a spec may ask for (documented in the README's operations section)
+MAX_TRIALS = 1_000_000  # trials in one search
+MAX_BATCH = 1024  # trials asked and evaluated together (memory grows with it)
+MAX_NAME = 200  # characters in a spec name
+MAX_DESCRIPTION = 4000  # characters in a spec description
+MAX_SAMPLES = 20_000  # Monte Carlo builds of one evaluated design
+MAX_TOP = 1000  # ranked designs shown or returned at once
 DEFAULT_SUPPLY_TOLERANCE = 0.05  # a bare supply voltage is taken as +-5 % (common practice for a regulated rail)
 ROBUSTNESS_BASES = ("yield", "worst_case", "nominal")
 SUPPLY_CURRENT_BOUND = 1.0  # A: far above any small-signal stage; a larger limit is a unit slip ("3 MA")
@@ -255,7 +261,7 @@ class Limits(_Section):
     thd_max: _quantity(None, optional=True, percent=True, maximum=1.0, example="1 %") = None
     thd_level: _quantity("V", optional=True, example="2 V") = Field(
         None, description="output V peak-to-peak at which THD is judged; "
-                          "default half of swing_min, else 1 V")
+                          "default half of swing_min, else 1 V, and at most half the supply")
     noise_ein_max: _quantity("V", optional=True, example="2 uV") = Field(
         None, description="equivalent input noise, V rms over the band")
     psrr_min_db: _quantity("dB", optional=True, example="40 dB") = Field(
@@ -335,9 +341,9 @@ ObjectiveItem = Annotated[Objective, BeforeValidator(_objective_input), WithJson
 class Search(_Section):
     """Search budget, reproducibility, and whether capacitors are searched or sized."""
 
-    trials: _count(1, 1_000_000, "2k") = 2000
+    trials: _count(1, MAX_TRIALS, "2k") = 2000
     seed: _count(0, 2**32 - 1, "0") = 0
-    batch_size: _count(1, 100_000, "64") = 64
+    batch_size: _count(1, MAX_BATCH, "64") = 64
     capacitors: Literal["sized", "searched"] = Field(
         "sized", description="sized: the smallest series values meeting the band's low corner, chosen "
                              "after the resistors; searched: capacitor values are search parameters too")
@@ -394,8 +400,8 @@ class Spec(_Section):
                                     "min <= nominal <= max", _TITLE)
         return self
 
-    name: str = Field(min_length=1)
-    description: str | None = None
+    name: str = Field(min_length=1, max_length=MAX_NAME)
+    description: str | None = Field(None, max_length=MAX_DESCRIPTION)
     supply: _quantity("V", maximum=100.0, example="12 V") = Field(
         description="nominal supply, V, above 0, <= 100; written as a number (then +-5 % is assumed) "
                     "or as {nominal, min, max}")
@@ -417,7 +423,7 @@ class Spec(_Section):
     load_impedance: Ohm
     load_capacitance: Farad = 0.0
     band: tuple[Hertz, Hertz] = Field(description="[low, high] Hz")
-    limits: Limits = Field(default_factory=Limits)
+    limits: Limits = Field(default_factory=Limits, validate_default=True)  # defaults checked against the supply
     temperature: tuple[Celsius, Celsius] = Field((0.0, 50.0), description="[low, high] °C")
     parts: Parts = Field(default_factory=Parts)
     devices: tuple[str, ...] = ("npn-general",)
@@ -462,6 +468,10 @@ class Spec(_Section):
         supply = info.data.get("supply")
         if supply is None:
             return limits
+        if "thd_level" not in limits.model_fields_set and limits.thd_level > supply / 2:
+            # the default level (half of swing_min, else 1 V) judged against this supply too:
+            # a low-voltage stage is judged at half its supply, never at a level it cannot reach
+            object.__setattr__(limits, "thd_level", supply / 2)
         problems = [Problem(key, value, f"at most the supply ({format_value(supply, 'V')}): "
                                         "a stage cannot swing more than its supply")
                     for key, value in (("swing_min", limits.swing_min),
@@ -527,6 +537,7 @@ _BUILTIN_EXPECTED = {
     "missing": "a value is required here",
     "bool_type": "true or false", "bool_parsing": "true or false",
     "string_type": "text", "string_too_short": "non-empty text",
+    "string_too_long": f"text of at most {MAX_NAME} characters (a description: {MAX_DESCRIPTION})",
     "tuple_type": "a list", "list_type": "a list", "dict_type": "a mapping of keys to values",
     "model_type": "a mapping of keys to values", "model_attributes_type":
         "a mapping of keys to values",
@@ -578,29 +589,20 @@ def parse_spec(data: dict, *, source: str = "<spec>") -> Spec:
 
 
 def load_spec(path: str | Path) -> Spec:
-    """Read a YAML or JSON spec file and validate it."""
+    """Read a YAML or JSON spec file and validate it (through the bounded loader of
+    :mod:`optimizer.documents`, the same one the REST service uses)."""
+    from optimizer.documents import MAX_BYTES, parse_document
+
     path = Path(path)
     try:
+        if path.stat().st_size > MAX_BYTES:
+            raise InputError.single(str(path), f"{path.stat().st_size} bytes",
+                                    f"a spec file of at most {MAX_BYTES} bytes", "cannot read spec")
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
         raise InputError.single(str(path), str(path), f"a readable UTF-8 spec file ({exc})",
                                 "cannot read spec") from None
-    if path.suffix.lower() == ".json" or text.lstrip().startswith("{"):
-        try:
-            data = json.loads(text)
-        except json.JSONDecodeError as exc:
-            raise InputError.single(f"{path}:{exc.lineno}:{exc.colno}", exc.doc[exc.pos:exc.pos
-                                    + 20], f"valid JSON ({exc.msg})", _TITLE) from None
-    else:
-        try:
-            data = yaml.safe_load(text)
-        except yaml.YAMLError as exc:
-            mark = getattr(exc, "problem_mark", None)
-            where = f"{path}:{mark.line + 1}:{mark.column + 1}" if mark else str(path)
-            reason = getattr(exc, "problem", None) or str(exc)
-            raise InputError.single(where, text.splitlines()[mark.line] if mark and
-                                    mark.line < len(text.splitlines()) else "",
-                                    f"valid YAML ({reason})", _TITLE) from None
+    data = parse_document(text, str(path), yaml_ok=path.suffix.lower() != ".json")
     return parse_spec(data, source=str(path))
 
 

@@ -27,19 +27,47 @@ import logging
 import os
 import socket
 import threading
+import shutil
 import warnings
 import weakref
 from contextlib import contextmanager
-from datetime import datetime, timedelta
+from dataclasses import dataclass, field
+from datetime import datetime, timedelta, timezone
 from pathlib import Path
 from typing import IO, Iterator
 
 import optuna
 from optuna.storages import BaseStorage
+
+# Every private Optuna name stagefit relies on, in one place (checked against Optuna 4.x-5.x;
+# tests/test_storage.py and tests/test_workers.py exercise each): the heartbeat switch, the
+# journal file lock base and its context manager, the RDB models (stale trials without a
+# heartbeat), the journal backend's file path attribute, the storage under Optuna's cache
+# wrapper, and the ids on Trial / Study objects.
 from optuna.storages._heartbeat import is_heartbeat_enabled
 from optuna.storages.journal._file import BaseJournalFileLock, get_lock_file
 
-from optimizer.errors import InputError
+from optimizer.errors import InputError, StorageError
+
+
+def _rdb_models():  # optuna.storages._rdb.models (imported late: SQLAlchemy is slow to import)
+    from optuna.storages._rdb import models
+    return models
+
+
+def trial_id(trial: "optuna.Trial | optuna.trial.FrozenTrial") -> int:
+    """The storage id of a trial (Optuna's private ``_trial_id``)."""
+    return trial._trial_id
+
+
+def study_id(study: optuna.Study) -> int:
+    """The storage id of a study (Optuna's private ``_study_id``)."""
+    return study._study_id
+
+
+def unwrapped(storage: BaseStorage) -> BaseStorage:
+    """The storage under Optuna's cache wrapper (its private ``_backend``), else itself."""
+    return getattr(storage, "_backend", storage)
 
 DEFAULT_JOURNAL = Path("runs") / "stagefit.journal"
 _RDB_SCHEMES = ("sqlite", "postgresql", "postgres", "mysql")
@@ -83,22 +111,181 @@ class _FlockLock(BaseJournalFileLock):
             handle.close()
 
 
+def _valid_record(line: bytes) -> dict | None:
+    """The journal record on ``line`` (one JSON object with an integer ``op_code`` and a
+    ``worker_id``), or None if the line is damaged."""
+    try:
+        record = json.loads(line)
+    except (ValueError, RecursionError):  # JSONDecodeError, bad UTF-8, absurd nesting
+        return None
+    if (isinstance(record, dict) and isinstance(record.get("op_code"), int)
+            and not isinstance(record.get("op_code"), bool) and isinstance(record.get("worker_id"), str)):
+        return record
+    return None
+
+
 class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
-    """Optuna's journal file, each record flushed to the operating system at once (so a killed
-    process loses nothing it wrote) but forced to disk once per batch (:func:`sync`) rather
-    than once per record: a search writes about eight records per trial, and an fsync each
-    took most of a journal search's time here. A power cut can lose the batch in hand."""
+    """Optuna's journal file, made to survive a crash and to write faster.
+
+    Reading: Optuna's own reader stops at the first damaged line and the whole file is lost
+    to the process. Here a complete line that is not a journal record (torn by a crash or a
+    full disk, then followed by later records) is skipped with a warning naming its byte
+    offset, and every record before and after it is read; an unfinished last line (no
+    newline yet) is left for the next read, since a writer may be in the middle of it.
+    Record numbers count the records read, as Optuna's replay expects.
+
+    Writing: each batch of records is one ``write`` under the lock, flushed to the operating
+    system at once (a killed process loses nothing it wrote) but forced to disk once per
+    search batch (:func:`sync`), not per record: a search writes about eight records per
+    trial, and an fsync each took most of a journal search's time here. A power cut can lose
+    the batch in hand. A file left ending mid-line by a crash gets a newline first, so the
+    torn fragment never swallows the next record."""
+
+    def __init__(self, file_path: str, lock_obj: BaseJournalFileLock | None = None) -> None:
+        super().__init__(file_path, lock_obj)
+        self._path = file_path  # Optuna keeps it as the private _file_path
+        self._resume: dict[int, int] = {0: 0}  # records read -> byte offset just after the last of them
+        self._warned: set[int] = set()
+        self._read_lock = threading.Lock()
+
+    def read_logs(self, log_number_from: int) -> Iterator[dict]:
+        with self._read_lock:
+            offset = self._resume.get(log_number_from)
+        number = log_number_from if offset is not None else 0
+        offset = offset or 0
+        with open(self._path, "rb") as handle:
+            handle.seek(offset)
+            for line in handle:
+                if not line.endswith(b"\n"):
+                    break  # unfinished: a writer is at it, or a crash tore the tail (terminated on the next write)
+                start, offset = offset, offset + len(line)
+                record = _valid_record(line)
+                if record is None:
+                    if start not in self._warned:
+                        self._warned.add(start)
+                        log.warning("journal %s: damaged record at byte offset %d (%d bytes) skipped; "
+                                    "`stagefit storage repair %s` rewrites the file without it",
+                                    self._path, start, len(line), self._path)
+                    with self._read_lock:
+                        self._resume[number] = offset
+                    continue
+                number += 1
+                with self._read_lock:
+                    self._resume[number] = offset
+                if number > log_number_from:
+                    yield record
 
     def append_logs(self, logs: list[dict]) -> None:
         text = "".join(json.dumps(log, separators=(",", ":")) + "\n" for log in logs)
         with get_lock_file(self._lock):
-            with open(self._file_path, "ab") as handle:
+            with open(self._path, "a+b") as handle:
+                if handle.seek(0, os.SEEK_END) > 0:
+                    handle.seek(-1, os.SEEK_END)
+                    if handle.read(1) != b"\n":
+                        text = "\n" + text  # close a line torn by a crash
                 handle.write(text.encode("utf-8"))
 
     def sync(self) -> None:
         """Force the journal's records to disk."""
-        with open(self._file_path, "ab") as handle:
+        with open(self._path, "ab") as handle:
             os.fsync(handle.fileno())
+
+
+@dataclass
+class JournalReport:
+    """What :func:`check_journal` found in a journal file: the readable records, each damaged
+    line (byte offset, length) and an unfinished last line (offset, length) if any."""
+
+    path: Path
+    size: int
+    records: int
+    damaged: list[tuple[int, int]] = field(default_factory=list)
+    torn_tail: tuple[int, int] | None = None
+    backup: Path | None = None
+
+    @property
+    def clean(self) -> bool:
+        return not self.damaged and self.torn_tail is None
+
+    def describe(self) -> str:
+        """One line per finding, for the CLI."""
+        lines = [f"{self.path}: {self.size} bytes, {self.records} readable records, "
+                 + ("no damage" if self.clean else
+                    f"{len(self.damaged) + (self.torn_tail is not None)} damaged line(s)")]
+        lines += [f"  damaged record at byte offset {o} ({n} bytes)" for o, n in self.damaged]
+        if self.torn_tail:
+            lines.append(f"  unfinished last line at byte offset {self.torn_tail[0]} ({self.torn_tail[1]} bytes)")
+        return "\n".join(lines)
+
+
+def _scan(handle: IO[bytes], keep: IO[bytes] | None = None) -> tuple[int, list[tuple[int, int]], tuple[int, int] | None]:
+    """(records, damaged lines, unfinished tail) of a journal; good records copied to ``keep``."""
+    records, damaged, tail, offset = 0, [], None, 0
+    for line in handle:
+        if not line.endswith(b"\n"):
+            tail = (offset, len(line))
+        elif _valid_record(line) is None:
+            damaged.append((offset, len(line)))
+        else:
+            records += 1
+            if keep is not None:
+                keep.write(line)
+        offset += len(line)
+    return records, damaged, tail
+
+
+def _journal_file(path: str | Path) -> Path:
+    found = Path(str(path)[len("journal://"):] if str(path).startswith("journal://") else path)
+    if not found.is_file():
+        raise InputError.single("FILE", str(path), "an existing journal file (e.g. runs/stagefit.journal)")
+    return found
+
+
+def check_journal(path: str | Path) -> JournalReport:
+    """Read a journal file as the service does and report every damaged line."""
+    found = _journal_file(path)
+    try:
+        with open(found, "rb") as handle:
+            records, damaged, tail = _scan(handle)
+        return JournalReport(found, found.stat().st_size, records, damaged, tail)
+    except OSError as exc:
+        raise StorageError(f"cannot read the journal {found}: {exc}") from None
+
+
+def repair_journal(path: str | Path) -> JournalReport:
+    """Rewrite a damaged journal with its readable records only, holding the journal's write
+    lock; the original is kept beside it as ``FILE.bak-<UTC time>``. Stop the service and
+    workers first: a process that had read the damaged file keeps its own view of it.
+    Returns the report of what was dropped (``backup`` set if anything was rewritten)."""
+    report = check_journal(path)
+    if report.clean:
+        return report
+    found = report.path
+    lock = _FlockLock(found.with_name(found.name + ".lock"))
+    lock.acquire()
+    try:
+        stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+        backup = found.with_name(f"{found.name}.bak-{stamp}")
+        temporary = found.with_name(f".{found.name}.repair-{os.getpid()}")
+        shutil.copy2(found, backup)
+        with open(found, "rb") as source, open(temporary, "wb") as target:
+            records, damaged, tail = _scan(source, target)
+            target.flush()
+            os.fsync(target.fileno())
+        os.replace(temporary, found)  # atomic: readers see the old file or the new one
+        directory = os.open(found.parent, os.O_RDONLY)
+        try:
+            os.fsync(directory)
+        finally:
+            os.close(directory)
+    except OSError as exc:
+        raise StorageError(f"cannot repair the journal {found}: {exc}") from None
+    finally:
+        lock.release()
+    with _lock:
+        for key in [k for k, v in _cache.items() if _claim_files.get(v) == found.with_name(found.name + ".claim")]:
+            del _cache[key]  # replayed afresh on next open
+    return JournalReport(found, report.size, records, damaged, tail, backup)
 
 
 def _journal(path: Path) -> BaseStorage:
@@ -155,24 +342,25 @@ def fail_stale_trials(study: optuna.Study, storage: BaseStorage) -> None:
     heartbeat leaves a running trial Optuna never finds stale; such a trial, older than the
     grace period (by this machine's clock) and still without a heartbeat, is given one here,
     so it goes stale and is retried one grace period later. A no-op without heartbeats."""
-    rdb = getattr(storage, "_backend", storage)  # the RDB storage under Optuna's cache
+    rdb = unwrapped(storage)  # the RDB storage under Optuna's cache
     if not (isinstance(rdb, optuna.storages.RDBStorage) and is_heartbeat_enabled(rdb)):
         return
-    from optuna.storages._rdb import models
     from sqlalchemy.orm import Session
+
+    models = _rdb_models()
 
     cutoff = datetime.now() - timedelta(seconds=rdb.grace_period)
     with Session(rdb.engine) as session:
         running = (session.query(models.TrialModel)
                    .outerjoin(models.TrialHeartbeatModel,
                               models.TrialHeartbeatModel.trial_id == models.TrialModel.trial_id)
-                   .filter(models.TrialModel.study_id == study._study_id,
+                   .filter(models.TrialModel.study_id == study_id(study),
                            models.TrialModel.state == optuna.trial.TrialState.RUNNING,
                            models.TrialHeartbeatModel.trial_id.is_(None)))
         # datetime_start: this machine's local time (however the Optuna version stores it)
         unbeaten = [t.trial_id for t in running if t.datetime_start is not None and t.datetime_start < cutoff]
-    for trial_id in unbeaten:
-        rdb.record_heartbeat(trial_id)
+    for number in unbeaten:
+        rdb.record_heartbeat(number)
     optuna.storages.fail_stale_trials(study)
 
 
@@ -233,9 +421,9 @@ class TrialHeartbeat:
         """Record the trial's first heartbeat and which runner holds it (system attr
         ``runner``: host:pid), so a dead worker's trials can be told apart."""
         if self._enabled:
-            self._storage.record_heartbeat(trial._trial_id)
-            self._storage.set_trial_system_attr(trial._trial_id, "runner", runner_id())
-            self._trial_ids.append(trial._trial_id)
+            self._storage.record_heartbeat(trial_id(trial))
+            self._storage.set_trial_system_attr(trial_id(trial), "runner", runner_id())
+            self._trial_ids.append(trial_id(trial))
             if self._thread is None:
                 self._thread = threading.Thread(target=self._beat, name="trial-heartbeat", daemon=True)
                 self._thread.start()
@@ -244,11 +432,11 @@ class TrialHeartbeat:
     def _beat(self) -> None:
         interval = self._storage.get_heartbeat_interval()
         while not self._stop.wait(interval):
-            for trial_id in list(self._trial_ids):
+            for number in list(self._trial_ids):
                 try:
-                    self._storage.record_heartbeat(trial_id)
+                    self._storage.record_heartbeat(number)
                 except Exception:  # the database away for a moment: the next beat tries again
-                    log.warning("heartbeat of trial %d not recorded", trial_id, exc_info=True)
+                    log.warning("heartbeat of trial %d not recorded", number, exc_info=True)
 
     def close(self) -> None:
         self._stop.set()

@@ -24,8 +24,9 @@ _KIND = {"V": "a voltage such as \"12 V\"", "A": "a current such as \"10 mA\"",
          "s": "a time such as \"10 ms\"", "dB": "a level in dB such as \"-3 dB\"",
          "°C": "a temperature such as \"25 °C\"", "V/V": "a ratio such as 10"}
 _PREFIX_RE = "meg|[pnuµμmkKMG]"
-_PLAIN = re.compile(rf"^([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)\s*({_PREFIX_RE})?\s*(.*)$")
-_RKM = re.compile(rf"^([+-]?)(\d*)({_PREFIX_RE}|R)(\d+)\s*(.*)$")
+# re.ASCII: digits are 0-9 only (float() would also take Arabic-Indic or full-width digits)
+_PLAIN = re.compile(rf"^([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)\s*({_PREFIX_RE})?\s*(.*)$", re.ASCII)
+_RKM = re.compile(rf"^([+-]?)(\d*)({_PREFIX_RE}|R)(\d+)\s*(.*)$", re.ASCII)
 _FORMAT_PREFIXES = [(1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"), (1e-6, "µ"),
                     (1e-9, "n"), (1e-12, "p")]
 _SYMBOL = {"ohm": "Ω", "°C": "°C"}
@@ -62,7 +63,10 @@ def parse_quantity(text: str | float | int, unit: str | None = None, *, where: s
     if isinstance(text, bool) or text is None:
         raise fail()
     if isinstance(text, (int, float)):
-        value = float(text)
+        try:
+            value = float(text)
+        except OverflowError:  # an integer beyond any float
+            raise fail("; it must be a finite number") from None
     else:
         raw = str(text).strip()
         value = None

@@ -278,7 +278,10 @@ def test_rejected_posts_store_nothing(tmp_path):
     problem = assert_problem(client.post("/v1/searches", json={**pickup_spec(), "gain": "loud",
                                                                  "band": [20]}), 422)
     assert {"gain", "band"} <= {e["field"].split(".")[0].split("[")[0] for e in problem["errors"]}
-    assert_problem(client.post("/v1/searches", data="a: &x [1]\nb: *x\n", content_type="application/yaml"), 400)
+    assert_problem(client.post("/v1/searches", data="a: &x [1]\nb: *x\n", content_type="application/yaml"), 422)
+    bomb = "a: &a [x,x,x,x,x,x,x,x,x]\n" + "".join(
+        f"{chr(98 + i)}: &{chr(98 + i)} [{', '.join(['*' + chr(97 + i)] * 9)}]\n" for i in range(8))
+    assert_problem(client.post("/v1/searches", data=bomb, content_type="application/yaml"), 400)
     assert_problem(client.post("/v1/searches", data="a: [", content_type="application/yaml"), 400)
     assert_problem(client.post("/v1/searches?wait=soon", json=pickup_spec()), 400)
     assert_problem(client.post("/v1/searches?top=0", json=pickup_spec()), 400)

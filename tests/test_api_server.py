@@ -164,17 +164,48 @@ CHECKS = [schemathesis.checks.not_a_server_error, schemathesis.checks.status_cod
           schemathesis.checks.response_headers_conformance, schemathesis.checks.negative_data_rejection]
 
 
+FUZZ_EXAMPLES = int(os.environ.get("STAGEFIT_FUZZ_EXAMPLES", "80"))  # per operation; `make fuzz` raises it
+CASES = {"stateless": 0, "stateful": 0}
+
+
 @pytest.fixture(scope="module")
 def fuzz_server(tmp_path_factory):
-    """A queue-only server with small limits: fuzzed posts that are valid are stored, not run."""
+    """A server with small limits: valid fuzzed posts are run (32 trials at most, 8 queued at
+    once, so the queue's 429 is exercised too)."""
     tmp = tmp_path_factory.mktemp("fuzz")
-    env = {"STAGEFIT_QUEUE_ONLY": "1", "STAGEFIT_MAX_WAIT": "0.2", "STAGEFIT_MAX_TRIALS": "64"}
+    env = {"STAGEFIT_MAX_WAIT": "0.2", "STAGEFIT_MAX_TRIALS": "32", "STAGEFIT_MAX_QUEUE": "8"}
     with live_server(tmp, tmp / "s.journal", env=env) as (base, _):
         yield base
 
 
 @SCHEMA.parametrize()
-@settings(max_examples=12, deadline=None, phases=[Phase.explicit, Phase.generate],
+@settings(max_examples=FUZZ_EXAMPLES, deadline=None, phases=[Phase.explicit, Phase.generate],
           suppress_health_check=list(HealthCheck), derandomize=True)
 def test_fuzz_against_the_openapi_document(case, fuzz_server):
+    CASES["stateless"] += 1
     case.call_and_validate(base_url=fuzz_server, checks=CHECKS, timeout=30)
+
+
+def test_fuzz_stateful_create_poll_candidates_delete(fuzz_server):
+    """Sequences of calls along the document's links (create -> poll -> candidates / front /
+    a candidate's BOM, netlist and plot -> cancel or delete), every response checked."""
+
+    class Workflow(SCHEMA.as_state_machine()):
+        def get_call_kwargs(self, case):
+            return {"base_url": fuzz_server, "timeout": 30}
+
+        def validate_response(self, response, case, additional_checks=None, **kwargs):
+            CASES["stateful"] += 1
+            case.validate_response(response, checks=CHECKS)
+
+    Workflow.run(settings=settings(max_examples=max(FUZZ_EXAMPLES // 2, 10), stateful_step_count=8,
+                                   deadline=None, suppress_health_check=list(HealthCheck), derandomize=True))
+    assert CASES["stateful"] > 0
+
+
+def test_fuzz_ran_enough_cases():
+    """At least 2,000 generated requests between the two runs (unless only some ran)."""
+    if not CASES["stateless"] or not CASES["stateful"]:
+        pytest.skip("only part of the fuzz ran")
+    print(f"fuzz: {CASES['stateless']} stateless + {CASES['stateful']} stateful cases, no 5xx, no schema violation")
+    assert CASES["stateless"] + CASES["stateful"] >= 2000 * min(FUZZ_EXAMPLES, 80) // 80
