@@ -163,3 +163,52 @@ def test_a_design_near_its_headroom_fails_at_the_lowest_supply() -> None:
     limit = 0.97 * min(nominal_model, nominal_spice)
     assert nominal_model >= limit and nominal_spice >= limit
     assert low_model < limit and low_spice < limit, (low_model, low_spice, limit)
+
+
+@pytest.mark.parametrize("name", ["bench_stock_preamp", "battery_sensor_3v3"])
+def test_rank_one_yield_agrees_with_ngspice_monte_carlo(name: str) -> None:
+    """The rank-1 design of a seeded search, 100 builds (the spec's own tolerances, hFE range,
+    temperature and supply ranges; tolerance.Builds) judged by the model and by ngspice on the
+    limits an operating point and a mid-band AC run measure (gain window, input and output
+    impedance, supply current): the two yields lie within 7 points of each other."""
+    from pathlib import Path
+
+    from optimizer.candidates import design_from_record
+    from optimizer.catalog import load_catalog
+    from optimizer.search import search
+    from optimizer.spec import load_spec
+
+    spec = load_spec(Path(__file__).resolve().parent.parent / "specs" / f"{name}.yaml")
+    best = search(spec, trials=400, seed=3, top=1).candidates[0]
+    topology, parts, device, conditions = design_from_record(best)
+    catalog = load_catalog(spec.parts.catalog)
+    tolerance = {role: float(catalog.part_for("capacitor" if role.startswith("c_") else "resistor",
+                                              float(v[0]))["tolerance"]) for role, v in parts.items() if v[0] > 0}
+    measured = {k: v for k, v in spec.limits.model_dump().items()
+                if k in ("input_impedance_min", "output_impedance_max", "supply_current_max")}
+    judged = spec.model_copy(update={"limits": spec.limits.model_copy(update={
+        k: (v if k in measured else None) for k, v in spec.limits.model_dump().items()
+        if k not in ("yield_min", "thd_level")})})
+    builds = Builds.draw(100, seed=9, temperature_range=tuple(spec.temperature),
+                         supply_range=(spec.supply_min, spec.supply_max))
+    hfe = builds.hfe(device)
+    ours = theirs = 0
+    for k in range(builds.samples):
+        values = {role: float(v[0]) * (1 + tolerance.get(role, 0.0) * builds.part_position(role)[k])
+                  for role, v in parts.items()}
+        at = replace(conditions, temperature=float(builds.temperature[k]), supply=float(builds.supply[k]))
+        result = topology.evaluate({r: np.array([v]) for r, v in values.items()}, device, at, hfe=hfe[k])
+        metrics = {m: np.asarray(v) for m, v in result.metrics.items()}
+        ok = scoring.total_violation(scoring.limit_violations(judged, metrics, result.ratings, {},
+                                                              result.operating_point["active"], core_only=True))[0] == 0
+        ours += int(ok)
+        model = {**device.spice_model(), "BF": float(hfe[k])}
+        spice_values = {r: v for r, v in values.items() if v > 0}
+        op = spice_operating_point(topology.name, spice_values, model, at)
+        mid = spice_midband(topology.name, spice_values, model, at)
+        simulated = {**metrics, "gain": np.array([mid["gain"]]), "input_impedance": np.array([mid["input_impedance"]]),
+                     "output_impedance": np.array([mid["output_impedance"]]),
+                     "supply_current": np.array([op["supply_current"]])}
+        theirs += int(scoring.total_violation(scoring.limit_violations(
+            judged, simulated, result.ratings, {}, result.operating_point["active"], core_only=True))[0] == 0)
+    assert abs(ours - theirs) <= 7, f"{name}: model yield {ours} % vs ngspice {theirs} % of 100 builds"
