@@ -101,7 +101,20 @@ def _schemas() -> dict[str, Any]:
                                                  "part_id": {"type": ["string", "null"]}}}},
             "transistor": {"type": "object", "properties": {"id": {"type": "string"},
                                                             "model": {"type": "object"}}},
-            "metrics": {"type": "object", "additionalProperties": NUMBER_OR_NULL},
+            "metrics": {"type": "object", "additionalProperties": NUMBER_OR_NULL,
+                        "description": "DESIGN.md metric names, SI units; null where the model has no figure (a "
+                                       "transistor not active has no small-signal figures). swing_vpp: usable "
+                                       "swing, the largest sine at the load whose two peaks stay within 10 % of "
+                                       "the linear gain times the drive (V p-p); clip_vpp: hard clip level of the "
+                                       "AC load line (V p-p); yield: fraction of Monte Carlo builds meeting every "
+                                       "hard limit; ic_spread: max/min collector current over the corners"},
+            "basis": {"type": "object", "description": "on what basis the design meets the spec",
+                      "properties": {"kind": {"enum": ["yield", "worst_case", "nominal"]}, "met": {"type": "boolean"},
+                                     "label": {"type": "string"}}},
+            "score_terms": {"type": "object", "additionalProperties": NUMBER_OR_NULL,
+                            "description": "each term of the desirability score, 1 at its ideal"},
+            "variants": {"type": "integer", "description": "near-identical designs folded into this one, itself included"},
+            "note": {"type": "string"},
             "operating_point": {"type": "object", "additionalProperties": NUMBER_OR_NULL},
             "ratings": {"type": "object"},
             "worst_case": {"type": "object", "additionalProperties": {"type": "array", "items": NUMBER_OR_NULL}},

@@ -255,7 +255,8 @@ class Limits(_Section):
     input_impedance_min: _quantity("ohm", optional=True, example="100k") = None
     output_impedance_max: _quantity("ohm", optional=True, example="1k") = None
     swing_min: _quantity("V", optional=True, example="4 V") = Field(
-        None, description="V peak-to-peak at the load")
+        None, description="V peak-to-peak at the load, judged on the usable swing: the largest sine whose "
+                          "two peaks stay within 10 % of the linear gain times the drive")
     supply_current_max: _quantity("A", optional=True, maximum=SUPPLY_CURRENT_BOUND, example="2 mA",
                                   hint=" (a small-signal stage draws mA; M is mega, m is milli)") = None
     thd_max: _quantity(None, optional=True, percent=True, maximum=1.0, example="1 %") = None
