@@ -26,8 +26,9 @@ demo: $(STAMP)
 	    --set r_top=270k --set r_bottom=18k --set r_collector=8k2 --set r_emitter=220
 	@echo
 	@$(BIN)/python -c "from optimizer.spec import load_spec; from optimizer.search import spec_search_id; \
-	print('to see this search in the browser, run:  $(BIN)/stagefit serve  and open ' \
-	      'http://127.0.0.1:8750/searches/' + spec_search_id(load_spec('specs/bench_stock_preamp.yaml')))"
+	sid = spec_search_id(load_spec('specs/bench_stock_preamp.yaml')); \
+	print('the demo search in the browser: http://127.0.0.1:8750/searches/' + sid); \
+	print('start the view with:  $(BIN)/stagefit serve --open ' + sid)"
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q

@@ -58,10 +58,11 @@ def _health_first(threads: int) -> Any:
 
 
 def serve(host: str = "127.0.0.1", port: int = 8750, *, config: Mapping[str, Any] | None = None,
-          out: TextIO = sys.stderr) -> None:
+          out: TextIO = sys.stderr, open_path: str | None = None) -> None:
     """Serve until SIGINT or SIGTERM; the search pool finishes its batch in flight first.
     Port 0 picks a free port; the address actually bound is printed to ``out``. Request
-    threads: STAGEFIT_THREADS (default 8)."""
+    threads: STAGEFIT_THREADS (default 8). ``open_path`` (e.g. "/" or "/searches/ID"): open
+    that page in the user's web browser once the server listens."""
     from waitress import create_server
 
     from api import create_app
@@ -85,6 +86,12 @@ def serve(host: str = "127.0.0.1", port: int = 8750, *, config: Mapping[str, Any
     mode = "queue only" if service.settings.queue_only else f"{service.settings.workers} search worker(s)"
     print(f"stagefit serving on http://{server.effective_host}:{server.effective_port}/ "
           f"(storage {service.settings.storage}; {mode})", file=out, flush=True)
+    if open_path is not None:
+        import webbrowser
+
+        url = f"http://{server.effective_host}:{server.effective_port}{open_path}"
+        if not webbrowser.open(url):
+            print(f"no web browser found here: open {url} yourself", file=out, flush=True)
     try:
         server.run()
     except KeyboardInterrupt:

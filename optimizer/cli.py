@@ -497,7 +497,8 @@ def _cmd_serve(args: argparse.Namespace) -> int:
               if v is not None}
     if args.threads is not None:
         config["STAGEFIT_THREADS"] = args.threads
-    serve(args.host, args.port, config=config)
+    open_path = None if args.open is None else ("/" if args.open == "" else f"/searches/{args.open}")
+    serve(args.host, args.port, config=config, open_path=open_path)
     return EXIT_OK
 
 
@@ -658,6 +659,8 @@ def build_parser() -> argparse.ArgumentParser:
 
     serve = sub.add_parser("serve", help="run the REST service (waitress; settings also from STAGEFIT_* variables)")
     serve.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
+    serve.add_argument("--open", nargs="?", const="", default=None, metavar="SEARCH",
+                       help="open the browser view once serving: the searches list, or the page of search SEARCH")
     serve.add_argument("--port", type=_whole(0, 65535), default=8750, help="port (default 8750; 0 picks a free one)")
     serve.add_argument("--workers", type=_whole(1, 64), default=None,
                        help="searches run at once (STAGEFIT_WORKERS, default 1)")

@@ -73,3 +73,13 @@ def test_schema_is_printed_as_json(capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["schema"]) == EXIT_OK
     schema = json.loads(capsys.readouterr().out)
     assert "supply" in schema["properties"]
+
+
+def test_serve_open_names_the_page_to_open(monkeypatch) -> None:
+    import api.server
+    from optimizer.cli import main
+
+    seen = []
+    monkeypatch.setattr(api.server, "serve", lambda host, port, **kw: seen.append(kw["open_path"]))
+    assert main(["serve", "--open"]) == 0 and main(["serve", "--open", "s-1234"]) == 0 and main(["serve"]) == 0
+    assert seen == ["/", "/searches/s-1234", None]
