@@ -442,6 +442,19 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
     linear in log f for a maximally flat skirt (|H|^2 = |ref|^2/(1 + (fc/f)^2n), any order n),
     so a few steps suffice. Corners beyond SWEEP are reported at its ends.
     """
+    corners = _corners(response, reference, (0, 1))
+    return corners[0], corners[1]
+
+
+def low_3db_corner(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray) -> np.ndarray:
+    """f_low (Hz) alone, as :func:`minus_3db_corners` finds it (the same values): its refinement
+    steps solve one frequency per candidate instead of two (for the capacitor sizing)."""
+    return _corners(response, reference, (0,))[0]
+
+
+def _corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray,
+             sides: tuple[int, ...]) -> np.ndarray:
+    """The -3 dB crossings of :func:`minus_3db_corners` on ``sides`` (0 low, 1 high), shape (sides, candidates)."""
     grid = np.logspace(np.log10(SWEEP[0]), np.log10(SWEEP[1]), COARSE_POINTS)
     ref2 = _magnitude2(reference)
 
@@ -454,17 +467,18 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
     peak = np.argmax(db, axis=0)
     idx = np.arange(grid.size)[:, None]
     low_i = np.where(~above & (idx < peak), idx, -1).max(axis=0)  # last point below, left of peak
-    high_i = np.where(~above & (idx > peak), idx, grid.size).min(axis=0)
-    i_out = np.stack([low_i, high_i])  # (2, n): outside point of each crossing
+    high_i = np.where(~above & (idx > peak), idx, grid.size).min(axis=0) if 1 in sides else low_i
+    rows = list(sides)
+    i_out = np.stack([low_i, high_i])[rows]  # (sides, n): outside point of each crossing
     inside = (i_out >= 0) & (i_out < grid.size)
     i0 = np.clip(i_out, 0, grid.size - 1)
-    i1 = np.clip(i0 + np.array([[1], [-1]]), 0, grid.size - 1)
+    i1 = np.clip(i0 + np.array([[1], [-1]])[rows], 0, grid.size - 1)
     cols = np.arange(n)
     log_grid = np.log10(grid)
     x0, x1 = log_grid[i0], log_grid[i1]
     d0, d1 = db[i0, cols], db[i1, cols]
-    last = np.zeros((2, n), dtype=bool)
-    for _ in range(REFINE_STEPS):  # Illinois false position on both crossings at once
+    last = np.zeros((len(rows), n), dtype=bool)
+    for _ in range(REFINE_STEPS):  # Illinois false position on the crossings at once
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
         xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
         dm = distance(response(10.0 ** xm))
@@ -475,8 +489,7 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
         x1, d1 = np.where(out_side, x1, xm), np.where(out_side, d1, dm)
         last = out_side
     xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
-    corners = np.where(inside, 10.0 ** xm, np.array(SWEEP)[:, None])
-    return corners[0], corners[1]
+    return np.where(inside, 10.0 ** xm, np.array(SWEEP)[rows, None])
 
 
 # ----------------------------------------------------------------------------- noise
