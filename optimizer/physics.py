@@ -65,34 +65,40 @@ def solve_junction(a: np.ndarray, r_base: np.ndarray, r_emit: np.ndarray, *, i_s
     c0 = 1.0 + np.asarray(vcb0, dtype=float) * inv_vaf  # Early factor terms, per unit If or Vbe
     c_ib, c_vbe, c_ic = vcb_ib * inv_vaf / beta, vcb_vbe * inv_vaf, vcb_ic * inv_vaf
 
-    def currents(v: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        e = v * inv_nvt
+    # Work arrays made once and written in place (out=): an iteration allocates nothing.
+    shape = np.broadcast_shapes(np.shape(v), *(np.shape(x) for x in (c0, c_ib, c_vbe, c_ic)))
+    v = np.array(np.broadcast_to(v, shape), dtype=float)
+    e, den, early, g, t = (np.empty_like(v) for _ in range(5))
+
+    def currents(v: np.ndarray) -> None:
+        """e = If, early = Ic/If, t = r_ib + r_emit*early and g = the loop residual, at Vbe = v."""
+        np.multiply(v, inv_nvt, out=e)
         np.expm1(e, out=e)
-        e *= i_s
-        den = c_ic * e
-        den += 1.0
-        early = c_ib * e
-        early += c_vbe * v
+        np.multiply(e, i_s, out=e)
+        np.multiply(c_ic, e, out=den)
+        np.add(den, 1.0, out=den)
+        np.multiply(c_ib, e, out=early)
+        np.multiply(c_vbe, v, out=t)
+        np.add(early, t, out=early)
         np.subtract(c0, early, out=early)
-        early /= den
-        ic = e * early
-        g = a - v
-        g -= r_ib * e
-        g -= r_emit * ic
-        return e, ic, g, early
+        np.divide(early, den, out=early)
+        np.multiply(r_emit, early, out=t)
+        np.add(t, r_ib, out=t)
+        np.subtract(a, v, out=g)
+        np.multiply(e, t, out=den)
+        np.subtract(g, den, out=g)  # a - Vbe - r_ib*If - r_emit*Ic
 
     for _ in range(iterations):
-        e, ic, g, early = currents(v)
-        early *= r_emit
-        early += r_ib
-        e += i_s
-        e *= inv_nvt
-        e *= early
-        e += 1.0
-        g /= e
+        currents(v)
+        np.add(e, i_s, out=den)  # the step g / (1 + (If + IS)/(NF VT) * t)
+        den *= t
+        den *= inv_nvt
+        den += 1.0
+        g /= den
         np.clip(g, -MAX_STEP, MAX_STEP, out=g)
-        v = v + g
-    e, ic, g, _ = currents(v)
+        v += g
+    currents(v)
+    ic = e * early
     vbe, ib = v, e / beta
     vcb = vcb0 - vcb_ic * ic - vcb_ib * ib - vcb_vbe * vbe
     return {"vbe": vbe, "vcb": vcb, "i_forward": e, "ic": ic, "ib": ib,
