@@ -2,10 +2,11 @@
 
     .venv/bin/python benchmarks/bench_models.py
 
-Prints candidates per second and peak memory for: nominal core metrics of divider_ce
-(target >= 2,000,000/s), the full metric set with frequency response and noise (target >=
-200,000/s), and Monte Carlo yield with 1,000 samples (target >= 2,000 candidates/s); writes
-benchmarks/results/models.md.
+Prints candidates per second and peak memory for: nominal core metrics of divider_ce, the
+plain-numpy reference kernel of the same core equations without the usable swing
+(benchmarks/reference_kernel.py, the speed bound; the core's rate is reported as a fraction of
+it, measured in the same run), the full metric set with frequency response and noise, the
+capacitor sizing, and Monte Carlo yield; writes benchmarks/results/models.md.
 
 One core: BLAS/OpenMP pools are limited to one thread before numpy loads and the process is
 pinned to one CPU. The rate is taken on the process's CPU time (best of several runs), so a
@@ -22,14 +23,19 @@ for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
 
 import platform  # noqa: E402
 import resource  # noqa: E402
+import sys  # noqa: E402
 import time  # noqa: E402
 import tracemalloc  # noqa: E402
 from pathlib import Path  # noqa: E402
 
 import numpy as np  # noqa: E402
 
+sys.path.insert(0, str(Path(__file__).resolve().parent.parent))  # the benchmarks package, run as a script
+from benchmarks import reference_kernel  # noqa: E402
 from optimizer import physics  # noqa: E402
 from optimizer.devices import Device  # noqa: E402
+from optimizer.eseries import series_values  # noqa: E402
+from optimizer.sizing import size_capacitors  # noqa: E402
 from optimizer.tolerance import monte_carlo_yield  # noqa: E402
 from optimizer.topologies import get_topology  # noqa: E402
 from optimizer.topologies.base import Conditions  # noqa: E402
@@ -40,15 +46,14 @@ DEVICE = Device(id="bench-npn", polarity="npn", hfe_min=100, hfe_typ=200, hfe_ma
                 vce_sat=0.2, vceo_max=45, p_max=0.5)
 CONDITIONS = Conditions(supply=12.0, source_impedance=600.0, load_impedance=47e3)
 REPEATS = 5
-# CPU rates of the same three rows in the run committed before the usable swing (10 % rule on the
-# static transfer, now in the core path) and the supply rejection solve (full path) were added.
-BEFORE_ISSUE_11 = (5_309_945, 341_584, 5_678)
-SLOWDOWN_CAUSE = (
-    "Cause of the slowdown against the earlier run: the core path now solves the usable swing on the "
-    "static nonlinear transfer (3 drive amplitudes of the scan plus 3 false-position steps, two peaks "
-    "each: 12 base-loop Newton solves of 6 iterations per candidate, against one 8-iteration bias solve "
-    "before); the full path adds the same plus one two-frequency supply-rejection solve of the network "
-    "with the rail as a node. The Monte Carlo yield runs the core path per sample, so it slows like the core.")
+# CPU rates of the rows in the run committed before the usable swing (10 % rule on the static
+# transfer, now in the core path) and the supply rejection solve (full path) were added (None: not measured).
+BEFORE_ISSUE_11 = {"core": 5_309_945, "full": 341_584, "mc1000": 5_678}
+# CPU rates of the rows at the start of issue 16 (kernel speed-ups), measured by this script with the
+# reference row in the same run (machine load 3.2): the figures the speed-ups are judged against.
+BEFORE_ISSUE_16 = {"reference": 5_498_775, "core": 393_310, "full": 120_266, "sizing": 3_665, "mc100": 3_987,
+                   "mc1000": 442}
+TARGETS = {"core": "0.8 of reference", "full": "2x before issue 16"}
 
 
 def pin_one_cpu() -> str:
@@ -87,35 +92,51 @@ def measure(label: str, work, n: int, repeats: int = REPEATS) -> dict:
 def main() -> None:
     pinned = pin_one_cpu()
     topology = get_topology("divider_ce")
-    core_n, full_n, mc_n = 1_000_000, 100_000, 1_000
+    core_n, full_n, size_n, mc_n = 1_000_000, 100_000, 2_000, 1_000
     core_parts, full_parts, mc_parts = (random_divider_ce(k) for k in (core_n, full_n, mc_n))
+    size_parts = {k: v for k, v in random_divider_ce(size_n).items() if not k.startswith("c_")}
+    e12_caps = series_values("E12", 1e-9, 1e-3)
     tolerances = {role: 0.05 for role in core_parts}
-    rows = [
-        measure("core metrics (bias, gain, impedances, usable swing and clip level, current)",
-                lambda: topology.evaluate(core_parts, DEVICE, CONDITIONS, full=False), core_n),
-        measure("full metrics (plus response, noise, supply rejection, thd, ratings)",
-                lambda: topology.evaluate(full_parts, DEVICE, CONDITIONS, full=True), full_n),
-        measure("Monte Carlo yield, 1,000 samples each (core metrics and ratings)",
-                lambda: monte_carlo_yield(topology, mc_parts, DEVICE, CONDITIONS, tolerances, (0.0, 50.0),
-                                          lambda m: np.abs(m["gain"]) > 1.0, samples=1000), mc_n),
-    ]
-    targets = [2_000_000, 200_000, 2_000]
+
+    def yield_of(samples: int):
+        return lambda: monte_carlo_yield(topology, mc_parts, DEVICE, CONDITIONS, tolerances, (0.0, 50.0),
+                                         lambda m, rows: np.abs(m["gain"]) > 1.0, samples=samples,
+                                         supply_range=(11.0, 13.0))
+    rows = {
+        "reference": measure("reference kernel: plain numpy, core equations without the usable swing",
+                             lambda: reference_kernel.core_metrics(core_parts, DEVICE, CONDITIONS), core_n),
+        "core": measure("core metrics (bias, gain, impedances, usable swing and clip level, current)",
+                        lambda: topology.evaluate(core_parts, DEVICE, CONDITIONS, full=False), core_n),
+        "full": measure("full metrics (plus response, noise, supply rejection, thd, ratings)",
+                        lambda: topology.evaluate(full_parts, DEVICE, CONDITIONS, full=True), full_n),
+        "sizing": measure("capacitor sizing (E12 c_in, c_out for the low corner)",
+                          lambda: size_capacitors(topology, size_parts, DEVICE, CONDITIONS, e12_caps), size_n),
+        "mc100": measure("Monte Carlo yield, 100 builds each (as every search trial; 3 temperatures x 3 supplies)",
+                         yield_of(100), mc_n),
+        "mc1000": measure("Monte Carlo yield, 1,000 builds each", yield_of(1000), mc_n),
+    }
+    bound = rows["reference"]["rate"]
     load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
     max_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e3
     lines = ["# Stage model speed (divider_ce, one core)", "",
              f"Machine: {platform.machine()}, {os.cpu_count()} cores (process {pinned}), "
              f"Python {platform.python_version()}, numpy {np.__version__}; load average {load:.1f} "
-             f"during the run. Produced by `benchmarks/bench_models.py`.", "",
+             f"during the run. Produced by `benchmarks/bench_models.py`, every row in the same run.", "",
              "Rates are candidates per CPU second of this process (best of "
              f"{REPEATS}), so other load on a shared machine does not count against them; the",
-             "wall-clock rate of the same runs is beside it. Peak memory is tracemalloc's peak over one run.", "",
-             "| what | candidates | candidates/s (CPU) | before issue 11 (CPU /s) | wall-clock /s | target | met "
-             "| peak memory (MB) |",
-             "| --- | --- | --- | --- | --- | --- | --- | --- |"]
-    for row, target, before in zip(rows, targets, BEFORE_ISSUE_11):
-        lines.append(f"| {row['label']} | {row['n']:,} | {row['rate']:,.0f} | {before:,} | {row['wall_rate']:,.0f} | "
-                     f"{target:,} | {'yes' if row['rate'] >= target else 'no'} | {row['peak_mb']:.0f} |")
-    lines += ["", f"Process peak resident memory over the whole benchmark: {max_rss:.0f} MB.", "", SLOWDOWN_CAUSE]
+             "wall-clock rate of the same runs is beside it. Peak memory is tracemalloc's peak over one run. "
+             "'of reference' is the row's rate over the reference kernel's, measured in this run.", "",
+             "| what | candidates | candidates/s (CPU) | of reference | before issue 16 (CPU /s) | speed-up "
+             "| before issue 11 (CPU /s) | wall-clock /s | target | peak memory (MB) |",
+             "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
+    for key, row in rows.items():
+        before, earlier = BEFORE_ISSUE_16.get(key), BEFORE_ISSUE_11.get(key)
+        lines.append(f"| {row['label']} | {row['n']:,} | {row['rate']:,.0f} | {row['rate'] / bound:.2f} | "
+                     f"{'-' if before is None else f'{before:,}'} | "
+                     f"{'-' if before is None else format(row['rate'] / before, '.2f') + 'x'} | "
+                     f"{'-' if earlier is None else f'{earlier:,}'} | {row['wall_rate']:,.0f} | "
+                     f"{TARGETS.get(key, '-')} | {row['peak_mb']:.0f} |")
+    lines += ["", f"Process peak resident memory over the whole benchmark: {max_rss:.0f} MB."]
     text = "\n".join(lines) + "\n"
     (ROOT / "benchmarks" / "results" / "models.md").write_text(text, encoding="utf-8")
     print(text)

@@ -65,34 +65,40 @@ def solve_junction(a: np.ndarray, r_base: np.ndarray, r_emit: np.ndarray, *, i_s
     c0 = 1.0 + np.asarray(vcb0, dtype=float) * inv_vaf  # Early factor terms, per unit If or Vbe
     c_ib, c_vbe, c_ic = vcb_ib * inv_vaf / beta, vcb_vbe * inv_vaf, vcb_ic * inv_vaf
 
-    def currents(v: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        e = v * inv_nvt
+    # Work arrays made once and written in place (out=): an iteration allocates nothing.
+    shape = np.broadcast_shapes(np.shape(v), *(np.shape(x) for x in (c0, c_ib, c_vbe, c_ic)))
+    v = np.array(np.broadcast_to(v, shape), dtype=float)
+    e, den, early, g, t = (np.empty_like(v) for _ in range(5))
+
+    def currents(v: np.ndarray) -> None:
+        """e = If, early = Ic/If, t = r_ib + r_emit*early and g = the loop residual, at Vbe = v."""
+        np.multiply(v, inv_nvt, out=e)
         np.expm1(e, out=e)
-        e *= i_s
-        den = c_ic * e
-        den += 1.0
-        early = c_ib * e
-        early += c_vbe * v
+        np.multiply(e, i_s, out=e)
+        np.multiply(c_ic, e, out=den)
+        np.add(den, 1.0, out=den)
+        np.multiply(c_ib, e, out=early)
+        np.multiply(c_vbe, v, out=t)
+        np.add(early, t, out=early)
         np.subtract(c0, early, out=early)
-        early /= den
-        ic = e * early
-        g = a - v
-        g -= r_ib * e
-        g -= r_emit * ic
-        return e, ic, g, early
+        np.divide(early, den, out=early)
+        np.multiply(r_emit, early, out=t)
+        np.add(t, r_ib, out=t)
+        np.subtract(a, v, out=g)
+        np.multiply(e, t, out=den)
+        np.subtract(g, den, out=g)  # a - Vbe - r_ib*If - r_emit*Ic
 
     for _ in range(iterations):
-        e, ic, g, early = currents(v)
-        early *= r_emit
-        early += r_ib
-        e += i_s
-        e *= inv_nvt
-        e *= early
-        e += 1.0
-        g /= e
+        currents(v)
+        np.add(e, i_s, out=den)  # the step g / (1 + (If + IS)/(NF VT) * t)
+        den *= t
+        den *= inv_nvt
+        den += 1.0
+        g /= den
         np.clip(g, -MAX_STEP, MAX_STEP, out=g)
-        v = v + g
-    e, ic, g, _ = currents(v)
+        v += g
+    currents(v)
+    ic = e * early
     vbe, ib = v, e / beta
     vcb = vcb0 - vcb_ic * ic - vcb_ib * ib - vcb_vbe * vbe
     return {"vbe": vbe, "vcb": vcb, "i_forward": e, "ic": ic, "ib": ib,
@@ -442,6 +448,19 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
     linear in log f for a maximally flat skirt (|H|^2 = |ref|^2/(1 + (fc/f)^2n), any order n),
     so a few steps suffice. Corners beyond SWEEP are reported at its ends.
     """
+    corners = _corners(response, reference, (0, 1))
+    return corners[0], corners[1]
+
+
+def low_3db_corner(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray) -> np.ndarray:
+    """f_low (Hz) alone, as :func:`minus_3db_corners` finds it (the same values): its refinement
+    steps solve one frequency per candidate instead of two (for the capacitor sizing)."""
+    return _corners(response, reference, (0,))[0]
+
+
+def _corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray,
+             sides: tuple[int, ...]) -> np.ndarray:
+    """The -3 dB crossings of :func:`minus_3db_corners` on ``sides`` (0 low, 1 high), shape (sides, candidates)."""
     grid = np.logspace(np.log10(SWEEP[0]), np.log10(SWEEP[1]), COARSE_POINTS)
     ref2 = _magnitude2(reference)
 
@@ -454,17 +473,18 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
     peak = np.argmax(db, axis=0)
     idx = np.arange(grid.size)[:, None]
     low_i = np.where(~above & (idx < peak), idx, -1).max(axis=0)  # last point below, left of peak
-    high_i = np.where(~above & (idx > peak), idx, grid.size).min(axis=0)
-    i_out = np.stack([low_i, high_i])  # (2, n): outside point of each crossing
+    high_i = np.where(~above & (idx > peak), idx, grid.size).min(axis=0) if 1 in sides else low_i
+    rows = list(sides)
+    i_out = np.stack([low_i, high_i])[rows]  # (sides, n): outside point of each crossing
     inside = (i_out >= 0) & (i_out < grid.size)
     i0 = np.clip(i_out, 0, grid.size - 1)
-    i1 = np.clip(i0 + np.array([[1], [-1]]), 0, grid.size - 1)
+    i1 = np.clip(i0 + np.array([[1], [-1]])[rows], 0, grid.size - 1)
     cols = np.arange(n)
     log_grid = np.log10(grid)
     x0, x1 = log_grid[i0], log_grid[i1]
     d0, d1 = db[i0, cols], db[i1, cols]
-    last = np.zeros((2, n), dtype=bool)
-    for _ in range(REFINE_STEPS):  # Illinois false position on both crossings at once
+    last = np.zeros((len(rows), n), dtype=bool)
+    for _ in range(REFINE_STEPS):  # Illinois false position on the crossings at once
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
         xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
         dm = distance(response(10.0 ** xm))
@@ -475,8 +495,7 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
         x1, d1 = np.where(out_side, x1, xm), np.where(out_side, d1, dm)
         last = out_side
     xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
-    corners = np.where(inside, 10.0 ** xm, np.array(SWEEP)[:, None])
-    return corners[0], corners[1]
+    return np.where(inside, 10.0 ** xm, np.array(SWEEP)[rows, None])
 
 
 # ----------------------------------------------------------------------------- noise

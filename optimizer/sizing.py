@@ -12,8 +12,8 @@ from __future__ import annotations
 import numpy as np
 
 from optimizer.devices import Device
-from optimizer.physics import SWEEP
-from optimizer.topologies.base import Conditions, Topology
+from optimizer.physics import SWEEP, low_3db_corner
+from optimizer.topologies.base import CHUNK_FULL, Conditions, Topology, _source_resistance
 
 _LARGE_CAPACITANCE = 1.0  # F: "a short" at audio frequencies for the corner probe
 _PROBE_VALUES = (1e-6, 1e-8, 1e-10, 1e-4)  # F, tried in turn for each capacitor's own corner
@@ -22,7 +22,22 @@ _SCALE_GRID = np.geomspace(1.0, 16.0, 25)  # common factors m tried, ascending
 
 def _f_low(topology: Topology, parts: dict[str, np.ndarray], device: Device,
            conditions: Conditions) -> np.ndarray:
-    return np.asarray(topology.evaluate(parts, device, conditions, full=True).metrics["f_low"])
+    """The stage's f_low (Hz), the same values as ``evaluate(full=True).metrics["f_low"]``, computed
+    alone: the bias, the closed-form mid-band gain as the reference and the low crossing of the
+    nodal response (no swing, f_high, noise, supply rejection or ratings), in evaluation chunks."""
+    p = topology.check_parts(parts)
+    n = next(iter(p.values())).size
+    beta = topology._hfe_array(device, None, n)
+    out = np.empty(n)
+    for i in range(0, n, CHUNK_FULL):
+        chunk = {k: v[i:i + CHUNK_FULL] for k, v in p.items()}
+        chunk, b, _ = topology._solve(chunk, device, conditions, beta[i:i + CHUNK_FULL])
+        r_source = _source_resistance(b, conditions)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            gain = topology._midband(chunk, conditions, b, r_source)["gain"]
+            net = topology._network(chunk, conditions, b.small_signal, True, r_source, True)
+            out[i:i + CHUNK_FULL] = low_3db_corner(topology._response(net, r_source), gain)
+    return out
 
 
 def _round_up(values: np.ndarray, allowed: np.ndarray) -> np.ndarray:
@@ -53,13 +68,22 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
     resistors = {r: np.broadcast_to(np.asarray(v, dtype=float), size) for r, v in resistors.items()}
     large = {c: np.full(size, _LARGE_CAPACITANCE) for c in topology.capacitors}
 
-    probes = [(cap, value) for cap in topology.capacitors for value in _PROBE_VALUES]
-    f_probe = _stacked_f_low(topology, [{**resistors, **large, cap: np.full(size, value)} for cap, value in probes],
-                             device, conditions)
     corner_constant = {c: np.full(size, np.nan) for c in topology.capacitors}
-    for (cap, value), f in zip(probes, f_probe):  # the first probe whose corner lies inside the sweep
-        inside = (f > 2.0 * SWEEP[0]) & (f < 0.5 * SWEEP[1]) & np.isnan(corner_constant[cap])
-        corner_constant[cap] = np.where(inside, f * value, corner_constant[cap])
+    for value in _PROBE_VALUES:  # each capacitor's first probe whose corner lies inside the sweep
+        pending = {c: np.flatnonzero(np.isnan(k)) for c, k in corner_constant.items()}
+        pending = {c: rows for c, rows in pending.items() if rows.size}
+        if not pending:
+            break
+        variants = [{**{r: v[rows] for r, v in resistors.items()}, **{c: large[c][rows] for c in large},
+                     cap: np.full(rows.size, value)} for cap, rows in pending.items()]
+        f_probe = _f_low(topology, {r: np.concatenate([v[r] for v in variants]) for r in variants[0]},
+                         device, conditions)
+        start = 0
+        for cap, rows in pending.items():
+            f = f_probe[start:start + rows.size]
+            start += rows.size
+            inside = (f > 2.0 * SWEEP[0]) & (f < 0.5 * SWEEP[1])
+            corner_constant[cap][rows[inside]] = f[inside] * value
     corner_constant = {c: np.nan_to_num(k, nan=allowed[-1] * target) for c, k in corner_constant.items()}
 
     scaled = [{c: _round_up(m * corner_constant[c] / target, allowed) for c in topology.capacitors}
@@ -72,12 +96,21 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
     best = {c: np.where(found, np.stack([idx[c] for idx in scaled])[first, np.arange(first.size)], allowed.size - 1)
             for c in topology.capacitors}
 
-    for cap in topology.capacitors:  # one step down each, where the target still holds
-        lower = np.maximum(best[cap] - 1, 0)
-        trial = {**resistors, **{c: allowed[i] for c, i in best.items()}, cap: allowed[lower]}
-        ok = found & (_f_low(topology, trial, device, conditions) <= target)
-        best[cap] = np.where(ok, lower, best[cap])
-    return {c: allowed[i] for c, i in best.items()}
+    # One step down each capacitor in turn, where the target still holds with the earlier steps
+    # taken: every subset of capacitors stepped down is solved in one call, then the turns are
+    # played on the results (the same outcome as one call per capacitor).
+    caps = topology.capacitors
+    subsets = range(1, 1 << len(caps))  # bit j: capacitor j one value lower
+    lower = {c: np.maximum(best[c] - 1, 0) for c in caps}
+    f_sub = _stacked_f_low(topology, [{**resistors, **{c: allowed[lower[c] if mask >> j & 1 else best[c]]
+                                                       for j, c in enumerate(caps)}} for mask in subsets],
+                           device, conditions)
+    taken = np.zeros(size, dtype=int)
+    for j in range(len(caps)):
+        trial = taken | (1 << j)
+        ok = found & (np.take_along_axis(f_sub, (trial - 1)[None], axis=0)[0] <= target)
+        taken = np.where(ok, trial, taken)
+    return {c: allowed[np.where(taken >> j & 1, lower[c], best[c])] for j, c in enumerate(caps)}
 
 
 DECOUPLE_CORNER_DECADES = 1.0  # without a PSRR limit: r_decouple*c_decouple corner this many decades below the band

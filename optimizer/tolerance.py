@@ -65,11 +65,10 @@ class Builds:
         log_hfe = np.log(device.hfe_min) + self.hfe_position * np.log(device.hfe_max / device.hfe_min)
         return np.exp(log_hfe) * hfe_temperature_factor(self.temperature)
 
-    def groups(self) -> list[tuple[float, float, np.ndarray]]:
-        """(temperature, supply, build indices) for each condition that occurs."""
-        keys = np.stack([self.temperature, self.supply], axis=1)
-        unique, inverse = np.unique(keys, axis=0, return_inverse=True)
-        return [(float(t), float(s), np.flatnonzero(np.ravel(inverse) == k)) for k, (t, s) in enumerate(unique)]
+    def groups(self) -> list[tuple[float, np.ndarray]]:
+        """(temperature, build indices) for each temperature that occurs (the supply varies within a
+        group: the models take it per candidate)."""
+        return [(float(t), np.flatnonzero(self.temperature == t)) for t in np.unique(self.temperature)]
 
 
 def _at(conditions: Conditions, temperature: float, supply: float | None = None) -> Conditions:
@@ -196,8 +195,9 @@ def monte_carlo_yield(topology: Topology, parts: dict[str, np.ndarray], device: 
 
     ``full=False`` judges the builds on the fast core metrics (bias, gain, impedances, swing,
     current, ratings); ``full=True`` adds the band corners, noise and supply rejection.
-    The builds of one condition (temperature, supply) are evaluated in blocks of candidate
-    rows that fit one evaluation chunk, so the working set stays small whatever the count.
+    The builds of one temperature (the supply varies per build within it) are evaluated in
+    blocks of candidate rows that fit one evaluation chunk, so the working set stays small
+    whatever the count and a block is one model call.
     """
     supply_range = (conditions.supply, conditions.supply) if supply_range is None else supply_range
     builds = Builds.draw(samples, seed, temperature_range, supply_range)
@@ -206,8 +206,7 @@ def monte_carlo_yield(topology: Topology, parts: dict[str, np.ndarray], device: 
     positions = {role: builds.part_position(role) for role in values}
     hfe_all = builds.hfe(device)
     passed = np.zeros(n)
-    for temperature, supply, idx in builds.groups():
-        at = _at(conditions, temperature, supply)
+    for temperature, idx in builds.groups():  # one call per block of a temperature, the supply per build
         rows = max(1, (CHUNK_FULL if full else CHUNK_FAST) // idx.size)
         for i in range(0, n, rows):
             block = slice(i, min(i + rows, n))
@@ -216,6 +215,8 @@ def monte_carlo_yield(topology: Topology, parts: dict[str, np.ndarray], device: 
                      for role, v in values.items()}
             shape = (block.stop - block.start, idx.size)
             hfe = np.broadcast_to(hfe_all[None, idx], shape)
+            at = replace(conditions, temperature=temperature,
+                         supply=np.broadcast_to(builds.supply[None, idx], shape).reshape(-1))
             sample = _flat_result(topology, drawn, device, at, np.ascontiguousarray(hfe), full)
             passed[block] += np.count_nonzero(passes(sample, block) & sample["active"], axis=1)
     return passed / samples
