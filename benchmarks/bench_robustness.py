@@ -104,7 +104,11 @@ def against_oracle(seeds: int) -> list[str]:
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="1 repeat, 3 seeds, no results file")
+    parser.add_argument("--oracle-only", action="store_true", help="only part 2, printed (no results file)")
     args = parser.parse_args()
+    if args.oracle_only:
+        print("\n".join(against_oracle(3 if args.quick else 10)))
+        return
     load = os.getloadavg()[0]
     head = [f"Machine: {platform.machine()}, {os.cpu_count()} cores (shared; load average {load:.2f} at the start), "
             f"Python {platform.python_version()}, numpy {np.__version__}, Optuna {optuna.__version__}, one thread. "

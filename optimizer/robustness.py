@@ -29,6 +29,7 @@ from optimizer.spec import Spec
 from optimizer.tolerance import Tolerance, bias_spread, monte_carlo_yield, worst_case
 from optimizer.topologies.base import Conditions, Topology
 
+BUILDS_SEED = 20261203  # the builds every design is judged on: fixed, so a verdict does not depend on the search seed
 SCREEN_BUILDS = 100  # builds per design inside the search (the yield must hold on these too)
 FINAL_BUILDS = 2000  # builds of a ranked design's full assessment
 
@@ -84,7 +85,7 @@ def judge(spec: Spec, topology: Topology, parts: dict[str, np.ndarray], device: 
     """Violations of ``parts`` (arrays over candidates) on the spec's robustness basis (or
     ``basis``), given the violations at nominal. ``full=False`` judges spread
     on the fast core metrics (the search's screen), ``full=True`` on every metric. The builds
-    come from ``seed`` (default: the spec's search seed)."""
+    come from ``seed`` (default BUILDS_SEED, the same whatever the search's seed)."""
     basis = basis or spec.robustness
     temperature_range = tuple(spec.temperature)
     supply_range = (spec.supply_min, spec.supply_max)
@@ -99,7 +100,7 @@ def judge(spec: Spec, topology: Topology, parts: dict[str, np.ndarray], device: 
 
         yield_fraction = monte_carlo_yield(topology, parts, device, conditions, tolerances, temperature_range,
                                            passes, samples=builds,
-                                           seed=spec.search.seed if seed is None else seed, full=full,
+                                           seed=BUILDS_SEED if seed is None else seed, full=full,
                                            supply_range=supply_range)
         violations["yield"] = np.maximum(0.0, spec.limits.yield_min - yield_fraction) / spec.limits.yield_min
     elif basis == "worst_case":
