@@ -87,10 +87,13 @@ def show_noise(candidate: dict) -> str:
 
 
 def why(candidate: dict, count: int = 2) -> str:
-    """The strongest terms of the candidate's score ("margin 0.98, cost 0.95"), or "-"."""
-    terms = candidate.get("score_terms") or {}
-    best = sorted(terms.items(), key=lambda kv: -float(kv[1]))[:count]
-    return ", ".join(f"{name} {float(value):.2f}" for name, value in best) or "-"
+    """What lifts and what holds back the candidate's score: its ``count`` strongest terms and
+    its weakest ("margin 1.00, yield 1.00; weakest parts 0.57"), or "-" without score terms."""
+    terms = sorted((candidate.get("score_terms") or {}).items(), key=lambda kv: -float(kv[1]))
+    if not terms:
+        return "-"
+    strong = ", ".join(f"{name} {float(value):.2f}" for name, value in terms[:count])
+    return strong + (f"; weakest {terms[-1][0]} {float(terms[-1][1]):.2f}" if len(terms) > count else "")
 
 
 # ---- design sheet ----------------------------------------------------------------------

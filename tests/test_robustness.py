@@ -158,3 +158,11 @@ def test_a_saturated_design_reports_no_small_signal_gain() -> None:
                     {"r_top": 10e3, "r_bottom": 10e3, "r_collector": 47e3, "r_emitter": 100.0})
     assert record["metrics"]["gain"] is None and record["metrics"]["swing_vpp"] is None
     assert "saturated" in record["note"] and not record["feasible"]
+
+
+def test_the_why_column_names_the_strongest_and_the_weakest_score_terms() -> None:
+    from optimizer.report import why
+
+    record = {"score_terms": {"gain": 0.97, "margin": 1.0, "parts": 0.57, "yield": 0.99}}
+    assert why(record) == "margin 1.00, yield 0.99; weakest parts 0.57"
+    assert why({}) == "-"
