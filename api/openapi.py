@@ -162,7 +162,19 @@ def _schemas() -> dict[str, Any]:
                                                       "capacitors": {"type": "array", "items": {"type": "string"}},
                                                       "optional_parts": {"type": "array",
                                                                          "items": {"type": "string"}},
-                                                      "transistors": {"type": "integer"}}}}}},
+                                                      "transistors": {"type": "integer"},
+                                                      "roles": {"type": "array", "items": {
+                                                          "type": "object", "required": ["name", "kind"],
+                                                          "properties": {
+                                                              "name": {"type": "string"},
+                                                              "kind": {"enum": ["resistor", "capacitor"]},
+                                                              "unit": {"enum": ["ohm", "F"]},
+                                                              "series": {"type": "string"},
+                                                              "optional": {"type": "boolean"}}}},
+                                                      "polarities": {"type": "array",
+                                                                     "items": {"enum": ["npn", "pnp"]}},
+                                                      "supply": {"type": "string"},
+                                                      "gain_sign": {"enum": ["inverting", "non-inverting"]}}}}}},
         "Catalogs": {"type": "object", "required": ["catalogs"], "properties": {"catalogs": {
             "type": "array", "items": {"type": "object", "required": ["name", "url"],
                                        "properties": {"name": {"type": "string"},

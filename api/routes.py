@@ -144,10 +144,7 @@ def topologies() -> Response:
     from optimizer.topologies import TOPOLOGIES
 
     negotiate((JSON,))
-    return jsonify({"topologies": [
-        {"name": t.name, "description": t.description, "resistors": list(t.resistors),
-         "capacitors": list(t.capacitors), "optional_parts": list(t.optional_parts),
-         "transistors": t.transistors} for t in TOPOLOGIES.values()]})
+    return jsonify({"topologies": [t.describe() for t in TOPOLOGIES.values()]})
 
 
 def _catalog(name: str) -> Any:

@@ -12,7 +12,7 @@ its ``search.trials`` is the budget every method gets. For each spec:
   batched evaluation) over 10 seeds, in memory and on a journal file; the search itself
   and the finishing step (the shortlist's full assessment with Monte Carlo yield, which
   ``run_search`` runs when the budget is met) are timed apart;
-- the hand method: ``synthesis.hand_design`` rounded to the nearest series value (and to
+- the hand method: ``Topology.hand_design`` rounded to the nearest series value (and to
   the spec's range), evaluated by ``evaluate_designs``;
 - random search: the same batched loop (``run_search``) with Optuna's RandomSampler and no
   enqueued seeds;
@@ -70,7 +70,7 @@ from optimizer.scoring import pareto_mask  # noqa: E402
 from optimizer.search import (Design, SearchSpace, create_search, evaluate_designs, open_storage,  # noqa: E402
                               run_search, with_search)
 from optimizer.spec import Spec, load_spec, parse_spec, spec_to_dict  # noqa: E402
-from optimizer.synthesis import hand_design, hand_requirements, rounded_designs  # noqa: E402
+from optimizer.synthesis import hand_requirements, rounded_designs  # noqa: E402
 from optimizer.topologies import get_topology  # noqa: E402
 
 optuna.logging.set_verbosity(optuna.logging.WARNING)
@@ -218,7 +218,7 @@ def hand_record(spec: Spec) -> tuple[dict, list[str]]:
     space = SearchSpace.build(spec)
     topology, device = spec.topologies[0], spec.devices[0]
     model = get_topology(topology)
-    raw = hand_design(topology, hand_requirements(spec, space.devices[device]))
+    raw = get_topology(topology).hand_design(hand_requirements(spec, space.devices[device]))
     resistors = {r: raw[r] for r in model.resistors}
     nearest = rounded_designs(resistors, spec.parts.resistor_series, spec.parts.capacitor_series, limit=1)[0]
     low, high = space.resistors.values[0], space.resistors.values[-1]

@@ -90,6 +90,21 @@ def _cmd_series(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _cmd_topologies(args: argparse.Namespace) -> int:
+    from optimizer.topologies import TOPOLOGIES
+
+    described = [t.describe() for t in TOPOLOGIES.values()]
+    if args.format == "json":
+        print(json.dumps({"topologies": described}, indent=2))
+        return EXIT_OK
+    for t in described:
+        print(f"{t['name']}: {t['description']}")
+        print(f"  {t['gain_sign']}; {'/'.join(t['polarities'])} transistors ({t['transistors']}); {t['supply']}")
+        print("  roles: " + ", ".join(f"{r['name']} ({r['kind']}{', optional' if r['optional'] else ''})"
+                                      for r in t["roles"]))
+    return EXIT_OK
+
+
 def _parse_settings(settings: Sequence[str]) -> dict[str, float]:
     from optimizer.units import parse_quantity
 
@@ -571,6 +586,7 @@ def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the `stagefit` command (sub-commands and options)."""
     from optimizer.bom import MAX_UNITS
     from optimizer.spec import MAX_SAMPLES, MAX_TOP
+    from optimizer.topologies import TOPOLOGIES
 
     parser = _Parser(
         prog="stagefit", formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -603,9 +619,15 @@ def build_parser() -> argparse.ArgumentParser:
     series.add_argument("--format", choices=("table", "json"), default="table")
     series.set_defaults(handler=_cmd_series)
 
+    topologies = sub.add_parser("topologies", help="list the stage topologies: description, roles, polarity, "
+                                "supply and gain sign")
+    topologies.add_argument("--format", choices=("table", "json"), default="table")
+    topologies.set_defaults(handler=_cmd_topologies)
+
     evaluate = sub.add_parser("evaluate", help="metrics, spread, yield and ratings of a design you already have")
     evaluate.add_argument("spec", help="the spec that sets supply, source, load, band and limits")
-    evaluate.add_argument("--topology", required=True, help="divider_ce, divider_ce_split, feedback_ce or ce_follower")
+    evaluate.add_argument("--topology", required=True, help="one of " + ", ".join(TOPOLOGIES)
+                          + " (stagefit topologies describes them)")
     evaluate.add_argument("--set", action="append", default=[], metavar="ROLE=VALUE",
                           help="a part value, e.g. --set r_top=68k (repeat; capacitors left out are sized)")
     evaluate.add_argument("--device", default=None, help="transistor id (default: the spec's first device)")

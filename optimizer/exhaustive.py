@@ -16,7 +16,7 @@ the enumeration is a branch and bound that stays exact:
 
 The pass is streaming: only the combinations meeting every core limit are kept (memory
 grows with them, not with the space). Where the topology has a gain bound
-(``GAIN_BOUNDS``) only the (r_collector, r_emitter) pairs that can reach the spec's gain
+(``Topology.gain_bound``) only the (r_collector, r_emitter) pairs that can reach the spec's gain
 window are combined with the other roles. When no design meets every limit, the whole space
 is scored again for the nearest miss (the best bounds kept, and a further pass if the bound
 cannot rule out the rest), so the answer stays exact.
@@ -24,8 +24,6 @@ cannot rule out the rest), so the answer stays exact.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Callable
-
 import numpy as np
 
 from optimizer.errors import InputError
@@ -37,18 +35,6 @@ CHUNK = 200_000  # combinations per vectorised core call
 FULL_CHUNK = 512  # combinations per full evaluation (capacitors sized) in the bound phase
 
 
-def _parallel(a: np.ndarray, b: float) -> np.ndarray:
-    return a * b / (a + b)
-
-
-#: topology -> (the resistor roles it reads, upper bound of |gain| (V/V) from those
-#: resistors and the load (ohm)): the degenerated stage's gain beta*Rac/(r_pi + (beta+1)*Re)
-#: never reaches Rac/Re.
-GAIN_BOUNDS: dict[str, tuple[tuple[str, ...], Callable[[dict[str, np.ndarray], float], np.ndarray]]] = {
-    "divider_ce": (("r_collector", "r_emitter"), lambda r, load: _parallel(r["r_collector"], load) / r["r_emitter"]),
-    "divider_ce_split": (("r_collector", "r_emitter"),
-                         lambda r, load: _parallel(r["r_collector"], load) / r["r_emitter"]),
-}
 KEEP_INFEASIBLE = 4096  # designs missing a core limit kept (best bound first) for the no-answer case
 
 
@@ -73,12 +59,13 @@ class _Enumeration:
         n = space.resistors.values.size
         ranges = {r: np.arange(lows[r], n) for r in roles}
         bounded: tuple[str, ...] = ()
-        if prune and topology in GAIN_BOUNDS:
-            bounded, bound = GAIN_BOUNDS[topology]
+        model = get_topology(topology)
+        if prune and model.gain_bound_roles:
+            bounded = model.gain_bound_roles
             grid = np.stack(np.meshgrid(*(ranges[r] for r in bounded), indexing="ij"), axis=-1).reshape(-1, len(bounded))
             values = {r: space.resistors.values[np.maximum(grid[:, j], 0)] for j, r in enumerate(bounded)}
             floor = spec.gain.target * 10 ** (-spec.gain.tolerance_db / 20)
-            self._pairs = grid[bound(values, spec.load_impedance) >= floor]
+            self._pairs = grid[model.gain_bound(values, spec.load_impedance) >= floor]
         else:
             self._pairs = np.zeros((1, 0), dtype=int)
         self.roles, self._bounded = roles, bounded
@@ -187,4 +174,4 @@ def _record(g: dict, k: int) -> dict:
             "total_violation": float(g["total"][k])}
 
 
-__all__ = ["exhaustive", "OracleResult", "GAIN_BOUNDS"]
+__all__ = ["exhaustive", "OracleResult"]

@@ -6,10 +6,11 @@ R2, ... and capacitors C1, C2, ... numbered in the order the topology's elements
 below (its signal path from input to output), transistors Q1, Q2; a part left out (value 0)
 gets no designator. A header comment ties each designator to its DESIGN.md role, and values
 are written as plain numbers (``repr`` of the float, SI units, no prefixes) so a reader can
-check them against the candidate. Nodes: ``vcc``, ``sig`` (ideal signal source), ``src`` (after the
-source resistance, feeding ``c_in``), ``base``, ``collector``, ``emitter``, ``e2`` (split
-emitter), ``emitter2`` (follower emitter), ``out`` (the load), ``0`` (ground), and with a
-supply decoupling RC ``vloc`` (the stage's local supply, behind ``r_decouple``).
+check them against the candidate. Each topology's template (its elements, transistor pins and
+node voltages) is declared by the topology itself (``Topology.elements``). Nodes: ``vcc``,
+``sig`` (ideal signal source), ``src`` (after the source resistance, feeding ``c_in``), the
+topology's own nodes, ``out`` (the load), ``0`` (ground), and with a supply decoupling RC
+``vloc`` (the stage's local supply, behind ``r_decouple``).
 """
 from __future__ import annotations
 
@@ -19,6 +20,8 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from optimizer.errors import InputError, Problem
+from optimizer.topologies import Topology, get_topology
+from optimizer.topologies.base import SUPPLY_ELEMENTS
 from optimizer.units import format_value
 
 MODEL_KEYS: tuple[str, ...] = ("IS", "BF", "NF", "VAF", "RB", "CJE", "CJC", "TF")
@@ -29,107 +32,51 @@ ZERO_SOURCE_RESISTANCE = 1e-3
 # Stand-in for an absent (infinite) load, ohm: keeps the output node's DC path.
 OPEN_LOAD_RESISTANCE = 1e12
 
-# Element lines per topology: (part role, SPICE element line without its value).
-# ``Q`` lines carry the model name instead of a value and are filled in separately.
-_ELEMENTS: dict[str, tuple[tuple[str, str], ...]] = {
-    "divider_ce": (
-        ("c_in", "Cc_in src base"),
-        ("r_top", "Rr_top vcc base"),
-        ("r_bottom", "Rr_bottom base 0"),
-        ("r_collector", "Rr_collector vcc collector"),
-        ("r_emitter", "Rr_emitter emitter 0"),
-        ("c_out", "Cc_out collector out"),
-    ),
-    "divider_ce_split": (
-        ("c_in", "Cc_in src base"),
-        ("r_top", "Rr_top vcc base"),
-        ("r_bottom", "Rr_bottom base 0"),
-        ("r_collector", "Rr_collector vcc collector"),
-        ("r_emitter", "Rr_emitter emitter e2"),
-        ("r_emitter_dc", "Rr_emitter_dc e2 0"),
-        ("c_emitter", "Cc_emitter e2 0"),
-        ("c_out", "Cc_out collector out"),
-    ),
-    "feedback_ce": (
-        ("c_in", "Cc_in src base"),
-        ("r_feedback", "Rr_feedback collector base"),
-        ("r_collector", "Rr_collector vcc collector"),
-        ("r_emitter", "Rr_emitter emitter 0"),
-        ("c_out", "Cc_out collector out"),
-    ),
-    "ce_follower": (
-        ("c_in", "Cc_in src base"),
-        ("r_top", "Rr_top vcc base"),
-        ("r_bottom", "Rr_bottom base 0"),
-        ("r_collector", "Rr_collector vcc collector"),
-        ("r_emitter", "Rr_emitter emitter 0"),
-        ("r_follower", "Rr_follower emitter2 0"),
-        ("c_out", "Cc_out emitter2 out"),
-    ),
-}
+SUPPLY_ROLES = tuple(role for role, _, _ in SUPPLY_ELEMENTS)
 
-# Transistors per topology: (role, collector, base, emitter).
-_TRANSISTORS: dict[str, tuple[tuple[str, str, str, str], ...]] = {
-    "divider_ce": (("q1", "collector", "base", "emitter"),),
-    "divider_ce_split": (("q1", "collector", "base", "emitter"),),
-    "feedback_ce": (("q1", "collector", "base", "emitter"),),
-    "ce_follower": (("q1", "collector", "base", "emitter"), ("q2", "vcc", "collector", "emitter2")),
-}
 
-# Parts that may be zero (a short) in a topology; all others must be > 0.
-_MAY_BE_ZERO: dict[str, frozenset[str]] = {"feedback_ce": frozenset({"r_emitter"})}
-
-# Optional supply decoupling RC of every topology (absent or 0: the stage sits on the rail).
-# When r_decouple > 0 every element returning to ``vcc`` moves to the local node ``vloc``.
-SUPPLY_ELEMENTS: tuple[tuple[str, str], ...] = (("r_decouple", "Rr_decouple vcc vloc"),
-                                                ("c_decouple", "Cc_decouple vloc 0"))
-
-TOPOLOGIES: tuple[str, ...] = tuple(_ELEMENTS)
+def _elements(topology: Topology, decoupled: bool = True) -> tuple[tuple[str, str, str], ...]:
+    """The topology's netlist template (role, node a, node b), then the supply decoupling RC."""
+    return topology.elements + (SUPPLY_ELEMENTS if decoupled else ())
 
 
 def designators(topology: str, parts: Mapping[str, float]) -> dict[str, str]:
     """Reference designator by role of every present part of ``topology`` (value > 0):
     resistors R1.. and capacitors C1.. in netlist element order, then transistors Q1, Q2."""
-    required_parts(topology)
+    model = get_topology(topology)
     out: dict[str, str] = {}
     count = {"R": 0, "C": 0}
-    for role, element in _ELEMENTS[topology] + SUPPLY_ELEMENTS:
+    for role, _, _ in _elements(model):
         if float(parts.get(role, 0.0)) > 0:
-            count[element[0]] += 1
-            out[role] = f"{element[0]}{count[element[0]]}"
-    out.update({role: f"Q{i}" for i, (role, *_) in enumerate(_TRANSISTORS[topology], 1)})
+            letter = role[0].upper()
+            count[letter] += 1
+            out[role] = f"{letter}{count[letter]}"
+    out.update({role: f"Q{i}" for i, (role, *_) in enumerate(model.transistor_pins, 1)})
     return out
 
 
 def element_nodes(topology: str) -> dict[str, tuple[str, ...]]:
     """The nodes of every part by role: (a, b) for a resistor or capacitor, (collector,
     base, emitter) for a transistor."""
-    required_parts(topology)
-    out = {role: tuple(element.split()[1:3]) for role, element in _ELEMENTS[topology] + SUPPLY_ELEMENTS}
-    out.update({role: tuple(nodes) for role, *nodes in _TRANSISTORS[topology]})
+    model = get_topology(topology)
+    out: dict[str, tuple[str, ...]] = {role: (a, b) for role, a, b in _elements(model)}
+    out.update({role: tuple(nodes) for role, *nodes in model.transistor_pins})
     return out
-
-
-# Operating-point key of the DC voltage (V to ground) at each node; nodes not listed sit at 0 V
-# (the source side of c_in and the load side of c_out) or at the supply (vcc).
-_NODE_VOLTAGE_KEYS = {"base": "v_base", "collector": "v_collector", "emitter": "v_emitter", "e2": "v_e2",
-                      "emitter2": "v_emitter2"}
 
 
 def dc_node_voltages(topology: str, operating_point: Mapping[str, float], supply: float) -> dict[str, float]:
     """DC voltage (V to ground) of every node of ``topology`` from a candidate's operating
-    point (keys v_base, v_collector, ...) and the supply (V)."""
+    point (the keys of the topology's ``node_voltages``) and the supply (V); nodes not listed
+    there sit at 0 V (the source side of c_in and the load side of c_out) or at the supply (vcc)."""
+    keys = get_topology(topology).node_voltages
     nodes = {n for pair in element_nodes(topology).values() for n in pair} | {"vcc", "src", "out", "0"}
-    return {n: (float(supply) if n == "vcc" else float(operating_point[_NODE_VOLTAGE_KEYS[n]])
-                if n in _NODE_VOLTAGE_KEYS else 0.0) for n in sorted(nodes)}
+    return {n: (float(supply) if n == "vcc" else float(operating_point[keys[n]])
+                if n in keys else 0.0) for n in sorted(nodes)}
 
 
 def required_parts(topology: str) -> tuple[str, ...]:
     """Part roles a topology's netlist needs (raises InputError for an unknown topology)."""
-    if topology not in _ELEMENTS:
-        raise InputError.single("topology", topology, f"one of {', '.join(TOPOLOGIES)}",
-                                title="unknown topology")
-    return tuple(role for role, _ in _ELEMENTS[topology])
+    return tuple(role for role, _, _ in get_topology(topology).elements)
 
 
 def _check_parts(topology: str, parts: Mapping[str, float]) -> None:
@@ -141,18 +88,19 @@ def _check_parts(topology: str, parts: Mapping[str, float]) -> None:
                                     f"{topology} needs a value for {role}; needed: {', '.join(needed)}"))
             continue
         value = parts[role]
-        floor_ok = value >= 0 if role in _MAY_BE_ZERO.get(topology, ()) else value > 0
+        may_be_zero = role in get_topology(topology).optional_parts
+        floor_ok = value >= 0 if may_be_zero else value > 0
         if not (isinstance(value, (int, float)) and math.isfinite(value) and floor_ok):
-            bound = ">= 0" if role in _MAY_BE_ZERO.get(topology, ()) else "> 0"
+            bound = ">= 0" if may_be_zero else "> 0"
             problems.append(Problem(f"parts.{role}", value, f"a finite number {bound} (SI units)"))
-    for role, _ in SUPPLY_ELEMENTS:
+    for role in SUPPLY_ROLES:
         value = parts.get(role, 0.0)
         if not (isinstance(value, (int, float)) and math.isfinite(value) and value >= 0):
             problems.append(Problem(f"parts.{role}", value, "a finite number >= 0 (SI units; 0 = none)"))
     if parts.get("r_decouple", 0.0) > 0 and not parts.get("c_decouple", 0.0) > 0:
         problems.append(Problem("parts.c_decouple", parts.get("c_decouple"), "a capacitance > 0 with r_decouple"))
     for role in parts:
-        if role not in needed and role not in dict(SUPPLY_ELEMENTS):
+        if role not in needed and role not in SUPPLY_ROLES:
             problems.append(Problem(f"parts.{role}", parts[role],
                                     f"not a part of {topology}; needed: {', '.join(needed)}"))
     if problems:
@@ -211,19 +159,20 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
     freq = mid_band_frequency(conditions) if frequency is None else float(frequency)
     model_name = _model_name(device_id)
     decoupled = float(parts.get("r_decouple", 0.0)) > 0
-    elements = _ELEMENTS[topology] + (SUPPLY_ELEMENTS if decoupled else ())
+    stage = get_topology(topology)
+    elements = _elements(stage, decoupled)
     rail = "vloc" if decoupled else "vcc"
 
     names = designators(topology, parts)
     lines = [title or f"stagefit {topology} stage, device {device_id}",
              f"* topology: {topology}",
              "* parts (designator role = designer label, netlist value in ohm or F):"]
-    for role, _ in elements:
+    for role, _, _ in elements:
         unit = "F" if role.startswith("c_") else "ohm"
         label = format_value(float(parts[role]), unit=unit, ascii=True)
         lines.append(f"*   {names.get(role, '(none)'):<4} {role} = {label} ({float(parts[role])!r})"
                      + ("" if role in names else ": left out, a short"))
-    lines += [f"*   {names[role]:<4} {role} = {device_id}" for role, *_ in _TRANSISTORS[topology]]
+    lines += [f"*   {names[role]:<4} {role} = {device_id}" for role, *_ in stage.transistor_pins]
     lines += [
               f"* conditions: supply {supply!r} V, source {source!r} ohm, load {load!r} ohm, "
               f"load capacitance {load_c!r} F, {temp!r} degC, band {conditions.band[0]!r}.."
@@ -237,16 +186,16 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
               f"Vcc vcc 0 DC {supply!r}",
               f"Vsig sig 0 DC 0 AC 1 SIN(0 {float(amplitude)!r} {freq!r})",
               f"Rsource sig src {(source if source > 0 else ZERO_SOURCE_RESISTANCE)!r}"]
-    for role, element in elements:
+    for role, a, b in elements:
         value = float(parts[role])
-        nodes = element.split(maxsplit=1)[1]
-        if role not in dict(SUPPLY_ELEMENTS):  # the stage returns to its local supply node
-            nodes = " ".join(rail if node == "vcc" else node for node in nodes.split())
+        nodes = f"{a} {b}"
+        if role not in SUPPLY_ROLES:  # the stage returns to its local supply node
+            nodes = " ".join(rail if node == "vcc" else node for node in (a, b))
         if value == 0:  # a zero resistor is a short: a 0 V source keeps the node and its current
             lines.append(f"Vshort_{role} {nodes} DC 0")
         else:
             lines.append(f"{names[role]} {nodes} {value!r}")
-    for role, collector, base, emitter in _TRANSISTORS[topology]:
+    for role, collector, base, emitter in stage.transistor_pins:
         lines.append(f"{names[role]} {rail if collector == 'vcc' else collector} {base} {emitter} {model_name}")
     lines.append(f"Rload out 0 {(load if math.isfinite(load) else OPEN_LOAD_RESISTANCE)!r}")
     if load_c > 0:

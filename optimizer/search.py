@@ -29,7 +29,7 @@ import pandas as pd
 from optuna.storages import BaseStorage
 from optuna.trial import TrialState
 
-from optimizer import physics, robustness, scoring
+from optimizer import robustness, scoring
 from optimizer.scoring import pareto_mask
 from optimizer.bom import unique_values_array
 from optimizer.catalog import Catalog, load_catalog
@@ -39,7 +39,7 @@ from optimizer.sampler import NeighbourSampler
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
 from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, sync
-from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
+from optimizer.synthesis import hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.units import format_value
 from optimizer.validation import validate_spec
@@ -209,7 +209,7 @@ class SearchSpace:
         for topology in self.topologies:
             for device_id, device in self.devices.items():
                 try:
-                    hand = hand_design(topology, hand_requirements(self.spec, device))
+                    hand = get_topology(topology).hand_design(hand_requirements(self.spec, device))
                 except (InputError, ValueError, ZeroDivisionError):
                     continue  # the hand method has no answer for this spec: no seed
                 roles = [name.split(".", 1)[1] for name in self.distributions({"topology": topology}) if "." in name]
@@ -283,7 +283,7 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
     if not full:
         metrics.update({k: np.full(n, v) for k, v in FULL_ONLY_OPTIMISTIC.items()})
     op = result.operating_point
-    headroom = np.minimum(op["vce"], op.get("vce2", op["vce"])) - device.vce_sat - physics.ACTIVE_MARGIN
+    headroom = topology.headroom(op, device.vce_sat)
     nominal = scoring.limit_violations(spec, metrics, result.ratings, limits, op["active"],
                                        core_only=not full, vce_headroom=headroom)
     violations = dict(nominal)

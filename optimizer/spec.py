@@ -20,9 +20,10 @@ from pydantic import (BaseModel, BeforeValidator, ConfigDict, Field, ValidationE
 
 from optimizer.errors import InputError, Problem
 from optimizer.eseries import SERIES
+from optimizer.topologies import TOPOLOGIES
 from optimizer.units import format_value, parse_quantity
 
-TOPOLOGY_NAMES = ("divider_ce", "divider_ce_split", "feedback_ce", "ce_follower")
+TOPOLOGY_NAMES = tuple(TOPOLOGIES)  # the registered topologies when the package loads: the default list
 
 #: Each objective metric with the direction that improves it.
 METRIC_DIRECTIONS = {
@@ -102,10 +103,12 @@ def _count(minimum: int, maximum: int, example: str) -> Any:
     return Annotated[int, BeforeValidator(parse), WithJsonSchema(schema)]
 
 
-def _choice(allowed: tuple[str, ...], label: str) -> Callable[[object], str]:
-    """A validator accepting one of ``allowed`` (case-insensitive), suggesting the closest."""
+def _choice(choices: tuple[str, ...] | Callable[[], tuple[str, ...]], label: str) -> Callable[[object], str]:
+    """A validator accepting one of ``choices`` (case-insensitive), suggesting the closest;
+    ``choices`` may be a function giving them (read at each validation: a registry)."""
 
     def pick(value: object) -> str:
+        allowed = choices() if callable(choices) else choices
         by_key = {a.lower(): a for a in allowed}
         if isinstance(value, str) and value.strip().lower() in by_key:
             return by_key[value.strip().lower()]
@@ -126,8 +129,14 @@ Hertz = _quantity("Hz", example="20 kHz")
 Celsius = _quantity("°C", allow_negative=True, allow_zero=True, example="50 °C")
 Series = Annotated[str, BeforeValidator(_choice(SERIES, "preferred-number series")),
                    WithJsonSchema({"enum": list(SERIES)})]
-Topology = Annotated[str, BeforeValidator(_choice(TOPOLOGY_NAMES, "topology")),
-                     WithJsonSchema({"enum": list(TOPOLOGY_NAMES)})]
+class _RegisteredTopologies:
+    """JSON Schema of a topology name: an enum of the topologies registered when the schema is made."""
+
+    def __get_pydantic_json_schema__(self, core_schema: Any, handler: Any) -> dict:
+        return {"enum": list(TOPOLOGIES)}
+
+
+Topology = Annotated[str, BeforeValidator(_choice(lambda: tuple(TOPOLOGIES), "topology")), _RegisteredTopologies()]
 
 
 def _ordered(low: float, high: float, label: str, unit: str, strict: bool) -> None:

@@ -13,7 +13,7 @@ import numpy as np
 
 from optimizer.devices import Device
 from optimizer.sizing import size_decoupling
-from optimizer.synthesis import HandRequirements, hand_design
+from optimizer.synthesis import HandRequirements
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
 
@@ -88,7 +88,7 @@ def check_designs() -> list[CheckDesign]:
     for topology, supply, gain, ic, hfe, rs, rl in _CASES:
         req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
                                f_low=20.0, collector_current=ic, hfe=hfe)
-        parts = hand_design(topology, req)
+        parts = get_topology(topology).hand_design(req)
         conditions = Conditions(supply=supply, source_impedance=float(rs), load_impedance=float(rl),
                                 band=(20.0, 20000.0), temperature=27.0)
         name = f"{topology}-{supply:g}V-A{gain:g}-hfe{hfe}"

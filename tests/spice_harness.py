@@ -88,9 +88,11 @@ def _need(scalars: Mapping[str, float], *names: str) -> list[float]:
 
 def spice_operating_point(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
                           conditions: Any) -> dict[str, float]:
-    """DC operating point: ic (A, q1; ic2 for q2 of ce_follower), v_base, v_collector,
-    v_emitter (V to ground) and supply_current (A drawn from Vcc)."""
-    follower = topology == "ce_follower"
+    """DC operating point: ic (A, q1; ic2 for q2 of a two-transistor stage), v_base,
+    v_collector, v_emitter (V to ground) and supply_current (A drawn from Vcc)."""
+    from optimizer.topologies import get_topology
+
+    follower = get_topology(topology).transistors == 2
     control = ("op\nlet ic = @q1[ic]\nlet v_base = v(base)\nlet v_collector = v(collector)\n"
                "let v_emitter = v(emitter)\nlet supply_current = -i(vcc)\n"
                + ("let ic2 = @q2[ic]\nprint ic2\n" if follower else "")

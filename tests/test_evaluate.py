@@ -10,7 +10,8 @@ from optimizer.catalog import load_catalog
 from optimizer.cli import EXIT_BAD_INPUT, EXIT_OK, main
 from optimizer.devices import Device
 from optimizer.spec import load_spec
-from optimizer.synthesis import hand_design, hand_requirements, rounded_designs
+from optimizer.synthesis import hand_requirements, rounded_designs
+from optimizer.topologies import get_topology
 from optimizer.units import format_rkm, parse_quantity
 
 SPECS = sorted(Path(__file__).resolve().parent.parent.joinpath("specs").glob("*.yaml"))
@@ -20,7 +21,7 @@ def _hand_settings(path: Path) -> tuple[str, list[str]]:
     spec = load_spec(path)
     device = Device.from_row(load_catalog(spec.parts.catalog).transistor(spec.devices[0]))
     topology = spec.topologies[0]
-    parts = hand_design(topology, hand_requirements(spec, device))
+    parts = get_topology(topology).hand_design(hand_requirements(spec, device))
     resistors = {role: v for role, v in parts.items() if not role.startswith("c_")}
     design = rounded_designs(resistors, spec.parts.resistor_series, spec.parts.capacitor_series)[0]
     return topology, [f"{role}={format_rkm(value)}" for role, value in design.items()]

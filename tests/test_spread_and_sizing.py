@@ -8,7 +8,7 @@ import pytest
 from optimizer import eseries
 from optimizer.devices import Device
 from optimizer.sizing import size_capacitors
-from optimizer.synthesis import HandRequirements, hand_design, rounded_designs
+from optimizer.synthesis import HandRequirements, rounded_designs
 from optimizer.tolerance import monte_carlo_yield, worst_case
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
@@ -90,7 +90,7 @@ def test_yield_is_seeded_and_responds_to_the_limit() -> None:
 @pytest.mark.parametrize("topology", ["divider_ce", "divider_ce_split", "feedback_ce", "ce_follower"])
 def test_hand_design_rounds_to_the_series(topology: str) -> None:
     req = HandRequirements(supply=12.0, gain=10.0, load_impedance=47e3, source_impedance=600.0)
-    parts = hand_design(topology, req)
+    parts = get_topology(topology).hand_design(req)
     model = get_topology(topology)
     assert set(parts) == set(model.resistors) | set(model.capacitors)
     designs = rounded_designs(parts, "E24", "E6")

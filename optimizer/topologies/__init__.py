@@ -1,14 +1,21 @@
-"""Registry of stage topologies: name -> model instance."""
+"""Registry of stage topologies: name -> model instance.
+
+Every module of this package is imported here, and every :class:`Topology` subclass that
+sets ``name`` registers itself when defined (:func:`base.register`): adding a stage is one
+new module in this folder (docs/adding_a_topology.md), nothing else to edit.
+"""
 from __future__ import annotations
 
-from optimizer.errors import InputError
-from optimizer.topologies.base import Conditions, StageResult, Topology
-from optimizer.topologies.ce_follower import CEFollower
-from optimizer.topologies.divider_ce import DividerCE
-from optimizer.topologies.divider_ce_split import DividerCESplit
-from optimizer.topologies.feedback_ce import FeedbackCE
+import importlib
+import pkgutil
 
-TOPOLOGIES: dict[str, Topology] = {t.name: t for t in (DividerCE(), DividerCESplit(), FeedbackCE(), CEFollower())}
+from optimizer.errors import InputError
+from optimizer.topologies.base import REGISTRY, Conditions, Role, StageResult, Topology, register, unregister
+
+for _module in pkgutil.iter_modules(__path__):
+    importlib.import_module(f"{__name__}.{_module.name}")
+
+TOPOLOGIES: dict[str, Topology] = REGISTRY  # name -> model, in listing order
 
 
 def get_topology(name: str) -> Topology:
@@ -20,4 +27,4 @@ def get_topology(name: str) -> Topology:
                                 title="unknown topology") from None
 
 
-__all__ = ["TOPOLOGIES", "Conditions", "StageResult", "Topology", "get_topology"]
+__all__ = ["TOPOLOGIES", "Conditions", "Role", "StageResult", "Topology", "get_topology", "register", "unregister"]

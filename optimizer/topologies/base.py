@@ -16,6 +16,11 @@ import numpy as np
 from optimizer import physics
 from optimizer.devices import Device, saturation_current, thermal_voltage
 from optimizer.errors import InputError, Problem
+from optimizer.synthesis import HandRequirements
+
+#: the registry: topology name -> model instance, in listing order (see :func:`register`).
+#: Filled by importing the modules of this package (optimizer/topologies/__init__.py).
+REGISTRY: dict[str, "Topology"] = {}
 
 Parts = dict[str, np.ndarray]
 CHUNK_FAST = 16384  # candidates per block (keeps the working set in cache)
@@ -24,6 +29,35 @@ METRICS = ("gain", "gain_db", "swing_vpp", "clip_vpp", "input_impedance", "outpu
            "f_low", "f_high", "thd", "noise_ein_v", "noise_figure_db", "q_power", "part_count",
            "psrr_db", "psrr_ripple_db", "psrr_mid_db", "emitter_voltage")
 SUPPLY_PARTS = ("r_decouple", "c_decouple")  # optional supply decoupling RC of every stage (0 = direct rail)
+# The supply decoupling RC's netlist elements, the same in every stage: (role, node a, node b).
+# With r_decouple > 0 every element of the stage that returns to ``vcc`` moves to ``vloc``.
+SUPPLY_ELEMENTS: tuple[tuple[str, str, str], ...] = (("r_decouple", "vcc", "vloc"), ("c_decouple", "vloc", "0"))
+KINDS = {"r": "resistor", "c": "capacitor"}  # a role's kind from its prefix (DESIGN.md names: r_..., c_...)
+
+
+@dataclass(frozen=True)
+class Role:
+    """One part position of a stage.
+
+    kind "resistor": its value is one of the spec's ``parts.resistor_series`` within
+    ``parts.resistor_range`` (ohm), chosen by the search; kind "capacitor": one of
+    ``parts.capacitor_series`` within ``parts.capacitor_range`` (F), sized after the
+    resistors for the band's low corner (or searched, with ``search.capacitors: searched``).
+    ``optional``: the role may be left out (value 0, a short or no part)."""
+
+    name: str
+    kind: str
+    optional: bool = False
+
+    @property
+    def unit(self) -> str:
+        """SI unit of the role's value."""
+        return "ohm" if self.kind == "resistor" else "F"
+
+    @property
+    def series_field(self) -> str:
+        """The spec field holding the role's preferred-number series."""
+        return f"parts.{self.kind}_series"
 
 
 @dataclass(frozen=True)
@@ -69,18 +103,105 @@ def _source_resistance(b: Bias, conditions: Conditions) -> np.ndarray:
     return np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)
 
 
-class Topology(ABC):
-    """One stage topology: its parts and its models."""
+def register(cls: type["Topology"]) -> type["Topology"]:
+    """Add a concrete topology class to :data:`REGISTRY` (called for every subclass that sets
+    ``name``; a later class of the same name replaces the earlier) and keep the registry in
+    listing order: ``order``, then name. Checks the class's declarations first (TypeError)."""
+    cls.check_declarations()
+    REGISTRY[cls.name] = cls()
+    ordered = sorted(REGISTRY.values(), key=lambda t: (t.order, t.name))
+    REGISTRY.clear()
+    REGISTRY.update((t.name, t) for t in ordered)
+    return cls
 
-    name: ClassVar[str]
-    description: ClassVar[str]
-    resistors: ClassVar[tuple[str, ...]]
-    capacitors: ClassVar[tuple[str, ...]]
+
+def unregister(name: str) -> None:
+    """Remove a topology from :data:`REGISTRY` (tests that define their own)."""
+    REGISTRY.pop(name, None)
+
+
+class Topology(ABC):
+    """One stage topology: everything the program knows about it, in one class.
+
+    A concrete subclass (one module in optimizer/topologies/, see docs/adding_a_topology.md)
+    declares the class attributes below and implements the models; defining it registers it.
+    """
+
+    name: ClassVar[str]  # DESIGN.md name, the spec's ``topologies`` entry
+    description: ClassVar[str]  # one line for help texts, `stagefit topologies` and the docs
+    order: ClassVar[int] = 100  # listing position (spec default order, help, listings): lower first
+    resistors: ClassVar[tuple[str, ...]]  # resistor roles, r_...
+    capacitors: ClassVar[tuple[str, ...]]  # capacitor roles, c_...
     transistors: ClassVar[int]
     inverting: ClassVar[bool]  # True: the mid-band gain source -> load is negative
     polarities: ClassVar[tuple[str, ...]]  # transistor polarities the stage is drawn for ("npn", "pnp")
+    supply: ClassVar[str] = "single positive rail"  # the supply arrangement the stage is drawn for
     optional_parts: ClassVar[tuple[str, ...]] = ()  # may be 0 (absent)
     supply_parts: ClassVar[tuple[str, ...]] = SUPPLY_PARTS  # optional everywhere: absent or 0 = direct rail
+    # SPICE netlist template: every resistor and capacitor as (role, node a, node b) in signal
+    # order from input to output (designators R1.., C1.. follow it), nodes named as in the
+    # module docstring; ``vcc`` is the rail, ``src`` the source side of c_in, ``out`` the load,
+    # ``0`` ground. Transistors as (role, collector, base, emitter), Q1, Q2.. in this order.
+    elements: ClassVar[tuple[tuple[str, str, str], ...]]
+    transistor_pins: ClassVar[tuple[tuple[str, str, str, str], ...]]
+    # operating-point key of the DC voltage of each internal node (others: 0 V, or the rail)
+    node_voltages: ClassVar[dict[str, str]]
+    # operating-point keys of every transistor's Vce (V): the stage's headroom is the least
+    vce_keys: ClassVar[tuple[str, ...]] = ("vce",)
+    # resistor roles :meth:`gain_bound` reads (empty: the topology gives no bound)
+    gain_bound_roles: ClassVar[tuple[str, ...]] = ()
+
+    def __init_subclass__(cls, **kwargs: object) -> None:
+        super().__init_subclass__(**kwargs)
+        if "name" in cls.__dict__:
+            register(cls)
+
+    @classmethod
+    def check_declarations(cls) -> None:
+        """TypeError unless the netlist template wires exactly the declared roles."""
+        roles = set(cls.resistors) | set(cls.capacitors)
+        wired = {role for role, _, _ in cls.elements}
+        if wired != roles or len(wired) != len(cls.elements):
+            raise TypeError(f"topology {cls.name}: elements must list each of {sorted(roles)} once, "
+                            f"got {[r for r, _, _ in cls.elements]}")
+        if len(cls.transistor_pins) != cls.transistors:
+            raise TypeError(f"topology {cls.name}: {cls.transistors} transistors but "
+                            f"{len(cls.transistor_pins)} transistor_pins")
+        bad = [r for r in roles | set(cls.optional_parts) if r[:1] not in KINDS or r[1:2] != "_"]
+        if bad or not set(cls.optional_parts) <= roles:
+            raise TypeError(f"topology {cls.name}: roles are named r_... or c_... and optional_parts "
+                            f"are among them; check {bad or sorted(set(cls.optional_parts) - roles)}")
+
+    @property
+    def roles(self) -> tuple[Role, ...]:
+        """Every part role of the stage, resistors then capacitors (supply decoupling not included)."""
+        return tuple(Role(r, KINDS[r[0]], r in self.optional_parts) for r in self.resistors + self.capacitors)
+
+    def headroom(self, op: dict[str, np.ndarray], vce_sat: float) -> np.ndarray:
+        """The least Vce of the stage's transistors above saturation and the active margin (V)."""
+        vce = np.min([op[k] for k in self.vce_keys], axis=0)
+        return vce - vce_sat - physics.ACTIVE_MARGIN
+
+    def gain_bound(self, resistors: dict[str, np.ndarray], load: float) -> np.ndarray | None:
+        """Upper bound of |gain| (V/V) from the resistors of :attr:`gain_bound_roles` and the
+        load (ohm), for pruning an exhaustive enumeration; None: no bound known."""
+        return None
+
+    def hand_design(self, req: HandRequirements) -> dict[str, float]:
+        """The unrounded textbook design (role -> ohm or F) that seeds the search and is the
+        benchmarks' baseline; InputError when the hand method has no answer (no seed)."""
+        raise InputError.single("topology", self.name, "a topology with a hand method",
+                                title="no hand design")
+
+    def describe(self) -> dict:
+        """JSON-ready summary: description, roles, polarity, supply and gain sign."""
+        return {"name": self.name, "description": self.description,
+                "roles": [{"name": r.name, "kind": r.kind, "unit": r.unit, "series": r.series_field,
+                           "optional": r.optional} for r in self.roles],
+                "resistors": list(self.resistors), "capacitors": list(self.capacitors),
+                "optional_parts": list(self.optional_parts), "transistors": self.transistors,
+                "polarities": list(self.polarities), "supply": self.supply,
+                "gain_sign": "inverting" if self.inverting else "non-inverting"}
 
     @abstractmethod
     def operating_point(self, parts: Parts, device: Device, conditions: Conditions,

@@ -12,7 +12,8 @@ import numpy as np
 from optimizer import physics
 from optimizer.devices import Device
 from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
-from optimizer.topologies.divider_ce import add_divider_stage, add_load, divider_ratings
+from optimizer.synthesis import HandRequirements, coupling_capacitor, parallel
+from optimizer.topologies.divider_ce import add_divider_stage, add_load, divider_hand_design, divider_ratings
 
 BIAS_PASSES = 3  # q1/q2 alternations; they couple only through q2's base current and Early effect
 
@@ -25,6 +26,22 @@ class CEFollower(StageModel):
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter", "r_follower")
     capacitors = ("c_in", "c_out")
     transistors = 2
+    order = 40
+    elements = (("c_in", "src", "base"), ("r_top", "vcc", "base"), ("r_bottom", "base", "0"),
+                ("r_collector", "vcc", "collector"), ("r_emitter", "emitter", "0"), ("r_follower", "emitter2", "0"),
+                ("c_out", "emitter2", "out"))
+    transistor_pins = (("q1", "collector", "base", "emitter"), ("q2", "vcc", "collector", "emitter2"))
+    node_voltages = {"base": "v_base", "collector": "v_collector", "emitter": "v_emitter", "emitter2": "v_emitter2"}
+    vce_keys = ("vce", "vce2")
+
+    def hand_design(self, req: HandRequirements) -> dict[str, float]:
+        # The follower presents ~ hfe * (r_follower || RL) to the first stage.
+        follower_current = 2.0 * req.collector_current
+        r_follower = req.supply / 2.0 / follower_current
+        parts = divider_hand_design(req, req.hfe * parallel(r_follower, req.load_impedance))
+        parts["r_follower"] = r_follower
+        parts["c_out"] = coupling_capacitor(req.load_impedance, req.f_low)
+        return parts
 
     def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float,
               i_s: float) -> Bias:

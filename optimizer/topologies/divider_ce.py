@@ -11,7 +11,20 @@ import numpy as np
 
 from optimizer import physics
 from optimizer.devices import Device
+from optimizer.synthesis import (VBE_HAND, HandRequirements, centred_collector_resistor, coupling_capacitor, divider,
+                                  parallel)
 from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
+
+
+def divider_hand_design(req: HandRequirements, stage_load: float) -> dict[str, float]:
+    """The hand method's divider-biased common emitter driving ``stage_load`` (ohm): r_top,
+    r_bottom, r_collector, r_emitter and c_in (ohm, F); the caller adds its output side."""
+    first = HandRequirements(**{**req.__dict__, "load_impedance": stage_load})
+    rc, re = centred_collector_resistor(first)
+    r_top, r_bottom = divider(req, req.collector_current * re + VBE_HAND)
+    z_in = parallel(parallel(r_top, r_bottom), req.hfe * re)
+    return {"r_top": r_top, "r_bottom": r_bottom, "r_collector": rc, "r_emitter": re,
+            "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low)}
 
 
 class DividerCE(StageModel):
@@ -19,9 +32,25 @@ class DividerCE(StageModel):
     inverting = True
     polarities = ("npn",)
     description = "common emitter, voltage-divider bias, emitter resistor unbypassed"
+    order = 10
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter")
     capacitors = ("c_in", "c_out")
     transistors = 1
+    elements = (("c_in", "src", "base"), ("r_top", "vcc", "base"), ("r_bottom", "base", "0"),
+                ("r_collector", "vcc", "collector"), ("r_emitter", "emitter", "0"), ("c_out", "collector", "out"))
+    transistor_pins = (("q1", "collector", "base", "emitter"),)
+    node_voltages = {"base": "v_base", "collector": "v_collector", "emitter": "v_emitter"}
+    gain_bound_roles = ("r_collector", "r_emitter")
+
+    def gain_bound(self, resistors: dict[str, np.ndarray], load: float) -> np.ndarray:
+        # the degenerated stage's gain beta*Rac/(r_pi + (beta+1)*Re) never reaches Rac/Re
+        rc = resistors["r_collector"]
+        return rc * load / (rc + load) / resistors["r_emitter"]
+
+    def hand_design(self, req: HandRequirements) -> dict[str, float]:
+        parts = divider_hand_design(req, req.load_impedance)
+        parts["c_out"] = coupling_capacitor(parts["r_collector"] + req.load_impedance, req.f_low)
+        return parts
 
     # emitter network: DC resistance, AC (unbypassed) resistance, DC voltage held by a bypass
     def _re_dc(self, p: Parts) -> np.ndarray:

@@ -11,6 +11,7 @@ import numpy as np
 
 from optimizer import physics
 from optimizer.devices import Device
+from optimizer.synthesis import VBE_HAND, HandRequirements, centred_collector_resistor, coupling_capacitor
 from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
 from optimizer.topologies.divider_ce import add_load
 
@@ -22,8 +23,24 @@ class FeedbackCE(StageModel):
     description = "common emitter biased by a collector-to-base feedback resistor"
     resistors = ("r_feedback", "r_collector", "r_emitter")
     capacitors = ("c_in", "c_out")
+    order = 30
     transistors = 1
     optional_parts = ("r_emitter",)
+    elements = (("c_in", "src", "base"), ("r_feedback", "collector", "base"), ("r_collector", "vcc", "collector"),
+                ("r_emitter", "emitter", "0"), ("c_out", "collector", "out"))
+    transistor_pins = (("q1", "collector", "base", "emitter"),)
+    node_voltages = {"base": "v_base", "collector": "v_collector", "emitter": "v_emitter"}
+
+    def hand_design(self, req: HandRequirements) -> dict[str, float]:
+        ic, hfe = req.collector_current, req.hfe
+        rc, re = centred_collector_resistor(req)
+        ib = ic / hfe
+        v_collector = req.supply - (ic + ib) * rc
+        r_feedback = (v_collector - ic * re - VBE_HAND) / ib
+        z_in = hfe * re  # the feedback resistor's Miller share is left out by hand
+        return {"r_feedback": r_feedback, "r_collector": rc, "r_emitter": re,
+                "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low),
+                "c_out": coupling_capacitor(rc + req.load_impedance, req.f_low)}
 
     def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float,
               i_s: float) -> Bias:
