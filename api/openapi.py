@@ -11,6 +11,7 @@ import functools
 from typing import Any
 
 from api.problems import PROBLEM_JSON
+from optimizer.metrics import METRICS
 from optimizer.spec import MAX_SAMPLES, MAX_TOP
 
 VERSION = "1.0.0"
@@ -107,7 +108,9 @@ def _schemas() -> dict[str, Any]:
                                        "swing, the largest sine at the load whose two peaks stay within 10 % of "
                                        "the linear gain times the drive (V p-p); clip_vpp: hard clip level of the "
                                        "AC load line (V p-p); yield: fraction of Monte Carlo builds meeting every "
-                                       "hard limit; ic_spread: max/min collector current over the corners"},
+                                       "hard limit; ic_spread: max/min collector current over the corners",
+                        "properties": {m.key: {**NUMBER_OR_NULL, "description": f"{m.description}"
+                                               + (f" ({m.unit})" if m.unit else "")} for m in METRICS}},
             "basis": {"type": "object", "description": "on what basis the design meets the spec",
                       "properties": {"kind": {"enum": ["yield", "worst_case", "nominal"]}, "met": {"type": "boolean"},
                                      "label": {"type": "string"}}},

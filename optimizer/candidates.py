@@ -14,6 +14,7 @@ from optimizer import eseries, scoring
 from optimizer.catalog import Catalog
 from optimizer.devices import Device
 from optimizer.errors import InputError, Problem
+from optimizer.metrics import LIMIT_METRICS
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import NOMINAL_TEMPERATURE_C, Spec
 from optimizer.robustness import FINAL_BUILDS, basis_label, judge
@@ -141,7 +142,7 @@ def _cautions(spec: Spec, result, rating_limits: dict[str, float]) -> list[str]:
     for key, fraction in scoring.near_ratings(result.ratings, result.metrics, rating_limits).items():
         notes.append(f"{key} runs at {fraction[0]:.0%} of its rating; check the part before building")
     metrics = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
-    for limit_name, metric, sign in scoring.LIMIT_METRICS:
+    for limit_name, metric, sign in LIMIT_METRICS:
         limit = getattr(spec.limits, limit_name)
         if limit is None or not np.isfinite(metrics[metric]):
             continue

@@ -17,6 +17,7 @@ import time
 from typing import Callable, Sequence
 
 from optimizer.errors import InputError, StorageError
+from optimizer.metrics import METRICS
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT, EXIT_INFEASIBLE, EXIT_ENVIRONMENT = 0, 1, 2, 3, 4
 EXIT_CODES = ("exit codes: 0 done (search: a design meets every limit); 3 no design meets every limit "
@@ -187,21 +188,13 @@ def _verdict(c: dict, currency: str) -> str:
     return verdict
 
 
+_CELLS: dict[str, Callable[[dict, str], str]] = {"noise_ein_v": _noise_cell}  # metrics written their own way
 COLUMNS: dict[str, tuple[str, Callable[[dict, str], str]]] = {
     "rank": ("rank", lambda c, _: str(c.get("rank", ""))),
     "topology": ("topology", lambda c, _: str(c["topology"])),
     "device": ("device", lambda c, _: str((c.get("transistor") or {}).get("id", ""))),
     "parts": ("parts", lambda c, _: " ".join(f"{role}={p['label']}" for role, p in c["parts"].items())),
-    "gain": ("gain", _metric_cell("gain")),
-    "swing": ("swing", _metric_cell("swing_vpp")),
-    "zin": ("Zin", _metric_cell("input_impedance")),
-    "zout": ("Zout", _metric_cell("output_impedance")),
-    "current": ("current", _metric_cell("supply_current")),
-    "noise": ("noise", _noise_cell),
-    "nf": ("NF", _metric_cell("noise_figure_db")),
-    "thd": ("THD", _metric_cell("thd")),
-    "yield": ("yield", _metric_cell("yield")),
-    "cost": ("cost", _metric_cell("cost")),
+    **{m.column[0]: (m.column[1], _CELLS.get(m.key) or _metric_cell(m.key)) for m in METRICS if m.column},
     "why": ("why (top score terms)", _why_cell),
     "verdict": ("verdict", _verdict),
 }

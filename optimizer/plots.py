@@ -17,6 +17,7 @@ from matplotlib.figure import Figure
 
 from optimizer.candidates import design_from_record
 from optimizer.errors import InputError
+from optimizer.metrics import METRICS
 from optimizer.palette import MARKERS, PLOT_COLOURS as COLOURS
 from optimizer.scoring import pareto_mask
 from optimizer.spec import DIRECTION_ALIASES
@@ -30,26 +31,8 @@ TRANSFER_POINTS = 401  # source voltages of the transfer sweep
 TRANSFER_OVERDRIVE = 2.0  # sweep to this multiple of the source level that reaches the clip level
 FLAT_SLOPE = 0.2  # the transfer curve "clips" where its slope falls below this part of mid-scale
 
-#: metric -> (axis name, scale from SI, unit shown)
-METRIC_AXES: dict[str, tuple[str, float, str]] = {
-    "supply_current": ("supply current", 1e3, "mA"),
-    "swing_vpp": ("output swing", 1.0, "Vpp"),
-    "noise_ein_v": ("input noise (EIN)", 1e6, "µV rms"),
-    "noise_figure_db": ("noise figure", 1.0, "dB"),
-    "gain": ("gain", 1.0, "V/V"),
-    "gain_db": ("gain", 1.0, "dB"),
-    "gain_error_db": ("gain error", 1.0, "dB"),
-    "input_impedance": ("input impedance", 1e-3, "kΩ"),
-    "output_impedance": ("output impedance", 1.0, "Ω"),
-    "f_low": ("low -3 dB corner", 1.0, "Hz"),
-    "f_high": ("high -3 dB corner", 1e-3, "kHz"),
-    "thd": ("THD", 100.0, "%"),
-    "q_power": ("transistor dissipation", 1e3, "mW"),
-    "part_count": ("part count", 1.0, "parts"),
-    "unique_values": ("distinct values", 1.0, "values"),
-    "cost": ("cost per unit", 1.0, "currency"),
-    "yield": ("yield", 100.0, "%"),
-}
+#: metric -> (axis name, scale from SI, unit shown), from optimizer/metrics.py
+METRIC_AXES: dict[str, tuple[str, float, str]] = {m.key: m.axis for m in METRICS if m.axis}
 
 
 # ---- output ----------------------------------------------------------------------------

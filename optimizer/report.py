@@ -18,20 +18,13 @@ from optimizer.bom import Kit, NO_BASIS, kit
 from optimizer.candidates import assess, design_from_record
 from optimizer.catalog import Catalog
 from optimizer.netlist import dc_node_voltages, designators, element_nodes
-from optimizer.scoring import LIMIT_METRICS
+from optimizer.metrics import LIMIT_METRICS, METRICS
 from optimizer.spec import Spec, spec_digest
 from optimizer.tolerance import worst_case
 from optimizer.units import format_value
 
-#: metric -> (unit for format_value, or a special: "%" fraction shown in %, "dB", "V/V", "count")
-METRIC_UNITS: dict[str, str] = {
-    "gain": "V/V", "gain_db": "dB", "gain_error_db": "dB", "swing_vpp": "V p-p", "clip_vpp": "V p-p",
-    "input_impedance": "ohm", "output_impedance": "ohm", "supply_current": "A", "f_low": "Hz", "f_high": "Hz",
-    "thd": "%", "noise_ein_v": "V rms", "noise_figure_db": "dB", "q_power": "W", "part_count": "parts",
-    "unique_values": "values", "cost": "currency", "yield": "%", "psrr_db": "dB", "psrr_ripple_db": "dB",
-    "psrr_mid_db": "dB", "emitter_voltage": "V",
-    "ic_spread": "max/min",
-}
+#: metric -> how it is written (optimizer/metrics.py ``Metric.shown``)
+METRIC_UNITS: dict[str, str] = {m.key: m.shown for m in METRICS}
 
 
 def _unit_of(key: str) -> str:

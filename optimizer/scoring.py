@@ -10,14 +10,13 @@ from __future__ import annotations
 import numpy as np
 
 from optimizer.devices import Device
+from optimizer.metrics import LIMIT_METRICS
 from optimizer.spec import Spec
 from optimizer.topologies.base import Conditions
 
 FULL_MODEL_LIMITS = ("noise_ein_max", "psrr_min_db")
-#: each optional spec limit: (limit name, metric it bounds, +1 for a minimum, -1 for a maximum)
-LIMIT_METRICS = (("input_impedance_min", "input_impedance", 1), ("output_impedance_max", "output_impedance", -1),
-                 ("swing_min", "swing_vpp", 1), ("supply_current_max", "supply_current", -1),
-                 ("thd_max", "thd", -1), ("noise_ein_max", "noise_ein_v", -1), ("psrr_min_db", "psrr_db", 1))  # besides the band corners, need full=True metrics
+# each optional spec limit (limit name, metric, +1 min / -1 max) is in optimizer/metrics.py; besides the
+# band corners, noise_ein_max and psrr_min_db need the full=True metrics
 # Derating (common practice, no single source): thick-film chip resistors carry full power to
 # 70 °C ambient and nothing at 155 °C; capacitors are used to 80 % of their rated voltage;
 # a small-signal transistor's dissipation falls linearly from 25 °C to its 150 °C junction limit.

@@ -30,6 +30,7 @@ from optuna.storages import BaseStorage
 from optuna.trial import TrialState
 
 from optimizer import robustness, scoring
+from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
 from optimizer.scoring import pareto_mask
 from optimizer.bom import unique_values_array
 from optimizer.catalog import Catalog, load_catalog
@@ -419,15 +420,10 @@ def fold_variants(space: SearchSpace, ranked: list[dict]) -> list[dict]:
 
 def _limit_metric(limit: str) -> tuple[str | None, str]:
     """The metric a limit judges and its unit (for saying what relaxing it would take)."""
-    table = {name: metric for name, metric, _ in scoring.LIMIT_METRICS}
+    table = {name: metric for name, metric, _ in LIMIT_METRICS}
     table.update({"gain": "gain_db", "band_low": "f_low", "band_high": "f_high", "yield": "yield"})
     metric = table.get(limit)
-    return metric, METRIC_UNITS.get(metric or "", "")
-
-
-METRIC_UNITS = {"gain_db": "dB", "f_low": "Hz", "f_high": "Hz", "yield": "", "input_impedance": "ohm",
-                "output_impedance": "ohm", "swing_vpp": "V", "supply_current": "A", "thd": "", "noise_ein_v": "V",
-                "psrr_db": "dB"}
+    return metric, metric_unit(metric or "")
 
 
 ROBUSTNESS_LIMITS = ("yield", "worst_case")
@@ -471,7 +467,7 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
             return f"{100 * value:.3g} %"
         return f"{value:.3g} dB" if units[limit] == "dB" else format_value(value, units[limit])
 
-    asked = {name: getattr(spec.limits, name) for name, _, _ in scoring.LIMIT_METRICS}
+    asked = {name: getattr(spec.limits, name) for name, _, _ in LIMIT_METRICS}
     asked.update({"yield": spec.limits.yield_min, "band_low": spec.band[0], "band_high": spec.band[1]})
     parts = []
     for limit in limits:

@@ -20,17 +20,14 @@ from pydantic import (BaseModel, BeforeValidator, ConfigDict, Field, ValidationE
 
 from optimizer.errors import InputError, Problem
 from optimizer.eseries import SERIES
+from optimizer.metrics import METRICS
 from optimizer.topologies import TOPOLOGIES
 from optimizer.units import format_value, parse_quantity
 
 TOPOLOGY_NAMES = tuple(TOPOLOGIES)  # the registered topologies when the package loads: the default list
 
-#: Each objective metric with the direction that improves it.
-METRIC_DIRECTIONS = {
-    "supply_current": "minimise", "swing_vpp": "maximise", "gain_error_db": "minimise",
-    "noise_ein_v": "minimise", "thd": "minimise", "cost": "minimise",
-    "part_count": "minimise", "input_impedance": "maximise", "output_impedance": "minimise",
-}
+#: Each objective metric with the direction that improves it (from the metrics table).
+METRIC_DIRECTIONS = {m.key: m.direction for m in METRICS if m.direction}
 DIRECTION_ALIASES = {"minimise": "minimise", "minimize": "minimise", "min": "minimise",
                       "maximise": "maximise", "maximize": "maximise", "max": "maximise"}
 NOMINAL_TEMPERATURE_C = 27.0
