@@ -45,6 +45,20 @@ def _spec_schemas() -> dict[str, Any]:
 
 
 NUMBER_OR_NULL = {"type": ["number", "null"]}
+
+
+def _candidate_schemas() -> dict[str, Any]:
+    """The candidate record's schema, generated from its type (optimizer/record.py), as
+    components Candidate and Candidate.<block>; each metric described from the metrics table."""
+    from optimizer.record import candidate_schema
+
+    prefix = "#/components/schemas/Candidate."
+    schemas = candidate_schema(prefix)
+    out = {("Candidate" if name == "Candidate" else f"Candidate.{name}"): body for name, body in schemas.items()}
+    out["Candidate"]["properties"]["metrics"]["properties"] = {
+        m.key: {**NUMBER_OR_NULL, "description": m.description + (f" ({m.unit})" if m.unit else "")}
+        for m in METRICS}
+    return out
 PROBLEM_ERRORS = {"400": "the request cannot be read (malformed JSON or YAML, a document beyond the bounds "
                          "in this document's description, a bad query parameter)",
                   "401": "a bearer token is required (STAGEFIT_API_TOKEN is set) and was missing or wrong",
@@ -89,42 +103,6 @@ TOP = _param("top", "query", {"type": "integer", "minimum": 1, "maximum": MAX_TO
 
 
 def _schemas() -> dict[str, Any]:
-    candidate = {
-        "type": "object",
-        "description": "A self-contained candidate design (DESIGN.md candidate JSON); SI units.",
-        "required": ["topology", "feasible", "parts", "transistor", "metrics"],
-        "properties": {
-            "rank": {"type": "integer"}, "score": NUMBER_OR_NULL, "binding": {"type": "string"},
-            "trial": {"type": "integer"}, "topology": {"type": "string"}, "feasible": {"type": "boolean"},
-            "conditions": {"type": "object"},
-            "parts": {"type": "object", "additionalProperties": {
-                "type": "object", "properties": {"value": NUMBER_OR_NULL, "label": {"type": "string"},
-                                                 "part_id": {"type": ["string", "null"]}}}},
-            "transistor": {"type": "object", "properties": {"id": {"type": "string"},
-                                                            "model": {"type": "object"}}},
-            "metrics": {"type": "object", "additionalProperties": NUMBER_OR_NULL,
-                        "description": "DESIGN.md metric names, SI units; null where the model has no figure (a "
-                                       "transistor not active has no small-signal figures). swing_vpp: usable "
-                                       "swing, the largest sine at the load whose two peaks stay within 10 % of "
-                                       "the linear gain times the drive (V p-p); clip_vpp: hard clip level of the "
-                                       "AC load line (V p-p); yield: fraction of Monte Carlo builds meeting every "
-                                       "hard limit; ic_spread: max/min collector current over the corners",
-                        "properties": {m.key: {**NUMBER_OR_NULL, "description": f"{m.description}"
-                                               + (f" ({m.unit})" if m.unit else "")} for m in METRICS}},
-            "basis": {"type": "object", "description": "on what basis the design meets the spec",
-                      "properties": {"kind": {"enum": ["yield", "worst_case", "nominal"]}, "met": {"type": "boolean"},
-                                     "label": {"type": "string"}}},
-            "score_terms": {"type": "object", "additionalProperties": NUMBER_OR_NULL,
-                            "description": "each term of the desirability score, 1 at its ideal"},
-            "variants": {"type": "integer", "description": "near-identical designs folded into this one, itself included"},
-            "note": {"type": "string"},
-            "operating_point": {"type": "object", "additionalProperties": NUMBER_OR_NULL},
-            "ratings": {"type": "object"},
-            "worst_case": {"type": "object", "additionalProperties": {"type": "array", "items": NUMBER_OR_NULL}},
-            "violations": {"type": "object", "additionalProperties": NUMBER_OR_NULL},
-            "cautions": {"type": "array", "items": {"type": "string"}},
-        },
-    }
     status = {
         "type": "object", "required": ["id", "status", "trials_done", "budget", "url"],
         "properties": {
@@ -190,7 +168,7 @@ def _schemas() -> dict[str, Any]:
                                    "currency": {"type": "string"}, "stock_tracked": {"type": "boolean"},
                                    "resistors": {"type": "object"}, "capacitors": {"type": "object"},
                                    "transistors": {"type": "object"}}},
-        "Candidate": candidate,
+        **_candidate_schemas(),
         "SearchStatus": status,
         "SearchList": {"type": "object", "required": ["searches", "total", "limit", "offset"],
                        "properties": {"searches": {"type": "array", "items": _ref("SearchStatus")},

@@ -3,7 +3,7 @@
 ``assess`` takes a topology, part values and a device, sizes any capacitor not given,
 evaluates the stage at nominal temperature, over its worst-case corners and by Monte
 Carlo, checks every hard limit and rating, and returns the candidate JSON (plain dict)
-with cautions for anything near a limit. Used by `stagefit evaluate`, the search's
+with cautions for anything near a limit, made by ``record.candidate_record``. Used by `stagefit evaluate`, the search's
 shortlist and the REST service alike.
 """
 from __future__ import annotations
@@ -15,13 +15,13 @@ from optimizer.catalog import Catalog
 from optimizer.devices import Device
 from optimizer.errors import InputError, Problem
 from optimizer.metrics import LIMIT_METRICS
+from optimizer.record import candidate_record, part_label, record_conditions
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import NOMINAL_TEMPERATURE_C, Spec
 from optimizer.robustness import FINAL_BUILDS, basis_label, judge
 from optimizer.tolerance import worst_case
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions, Topology
-from optimizer.units import format_value
 
 DEFAULT_POWER_RATING = 0.125  # W, when a value is not in the catalog (common 0805 rating)
 DEFAULT_CAP_VOLTAGE = 16.0  # V, likewise for a capacitor
@@ -46,8 +46,7 @@ def _check_parts(topology: Topology, parts: dict[str, float]) -> None:
 def _part_record(catalog: Catalog, spec: Spec, role: str, value: float) -> dict:
     kind = "capacitor" if role.startswith("c_") else "resistor"
     row = catalog.part_for(kind, value, allow_class2=spec.parts.allow_class2_coupling)
-    unit = "F" if kind == "capacitor" else ""
-    record = {"value": float(value), "label": format_value(value, unit), "part_id": None}
+    record = {"value": float(value), "label": part_label(role, value), "part_id": None}
     series = spec.parts.capacitor_series if kind == "capacitor" else spec.parts.resistor_series
     record["tolerance"] = eseries.customary_tolerance(series)
     record["rating"] = DEFAULT_CAP_VOLTAGE if kind == "capacitor" else DEFAULT_POWER_RATING
@@ -107,34 +106,22 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
     metrics.update({"yield": build_yield if np.isfinite(build_yield) else None,
                     "ic_spread": float(judged.spread["ic_spread"][0])})
     op = {k: float(np.asarray(v)[0]) for k, v in result.operating_point.items()}
-    record = {
-        "topology": topology.name,
-        "feasible": feasible,
-        "basis": basis_label(spec, feasible, build_yield, judged.builds),
-        "conditions": {"supply": spec.supply, "supply_range": [spec.supply_min, spec.supply_max],
-                       "source_impedance": spec.source_impedance,
-                       "load_impedance": spec.load_impedance, "band": list(spec.band),
-                       "temperature": list(spec.temperature), "load_capacitance": conditions.load_capacitance,
-                       "signal_vpp": conditions.signal_vpp},
-        "parts": {role: {k: rec[k] for k in ("value", "label", "part_id")} for role, rec in records.items()},
-        "transistor": device.record(),
-        "metrics": metrics,
-        "operating_point": op,
-        "operating_point_spread": {
+    return candidate_record(
+        topology=topology.name, feasible=feasible,
+        basis=basis_label(spec, feasible, build_yield, judged.builds),
+        conditions=record_conditions(spec),
+        parts={role: {k: rec[k] for k in ("value", "label", "part_id")} for role, rec in records.items()},
+        transistor=device.record(), metrics=metrics, operating_point=op,
+        operating_point_spread={
             "ic": [float(judged.spread["ic_low"][0]), op["ic"], float(judged.spread["ic_high"][0])],
             "v_out_q": [float(judged.spread["v_out_low"][0]), op.get("v_out_q", op["v_collector"]),
                         float(judged.spread["v_out_high"][0])]},
-        "ratings": {k: {"value": float(np.asarray(result.metrics["q_power"] if k == "q_power"
-                                                  else result.ratings[k])[0]), "limit": float(limit)}
-                    for k, limit in limits.items()},
-        "worst_case": {k: [float(spread[k][0][0]), float(spread[k][1][0])] for k in WORST_CASE_METRICS
-                       if k in spread},
-        "violations": {k: float(v[0]) for k, v in violations.items() if v[0] > 0},
-        "cautions": _cautions(spec, result, limits),
-    }
-    if not op["active"]:
-        scoring.withhold_small_signal(record)
-    return record
+        ratings={k: {"value": float(np.asarray(result.metrics["q_power"] if k == "q_power"
+                                               else result.ratings[k])[0]), "limit": float(limit)}
+                 for k, limit in limits.items()},
+        worst_case={k: [float(spread[k][0][0]), float(spread[k][1][0])] for k in WORST_CASE_METRICS if k in spread},
+        violations={k: float(v[0]) for k, v in violations.items() if v[0] > 0},
+        cautions=_cautions(spec, result, limits))
 
 
 def _cautions(spec: Spec, result, rating_limits: dict[str, float]) -> list[str]:

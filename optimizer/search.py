@@ -31,6 +31,7 @@ from optuna.trial import TrialState
 
 from optimizer import robustness, scoring
 from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
+from optimizer.record import candidate_record, part_label, record_conditions
 from optimizer.scoring import pareto_mask
 from optimizer.bom import unique_values_array
 from optimizer.catalog import Catalog, load_catalog
@@ -42,6 +43,7 @@ from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
 from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, sync
 from optimizer.synthesis import hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
+from optimizer.topologies.base import SUPPLY_PARTS
 from optimizer.units import format_value
 from optimizer.validation import validate_spec
 
@@ -489,31 +491,22 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
     return {"binding": list(limits), "reached": reached, "unit": units, "text": text}
 
 
-def _label(role: str, value: float) -> str:
-    return format_value(value, "F" if role.startswith("c_") else "")
-
-
 def candidate_from_record(space: SearchSpace, record: dict) -> dict:
-    """The candidate JSON of DESIGN.md for a trial record (nominal figures; no spread)."""
-    spec = space.spec
+    """The candidate record of a trial record (nominal figures; no spread): the ranked tail
+    and the front points that are not assessed in full. A part left out keeps its role at 0."""
     parts = {}
     for role, value in record["parts"].items():
-        if value <= 0:
-            continue
+        if value <= 0 and role in SUPPLY_PARTS:
+            continue  # no decoupling RC: the stage sits on the rail
         table = space.capacitors if role.startswith("c_") else space.resistors
-        i = int(table.index_of(np.array([value]))[0])
-        parts[role] = {"value": value, "label": _label(role, value), "part_id": table.part_id[i]}
-    device = space.devices[record["device"]]
-    return {"topology": record["topology"], "feasible": record["feasible"], "score": record["score"],
-            "binding": record["binding"],
-            "conditions": {"supply": spec.supply, "source_impedance": spec.source_impedance,
-                           "load_impedance": spec.load_impedance, "band": list(spec.band),
-                           "temperature": list(spec.temperature)},
-            "parts": parts,
-            "transistor": device.record(),
-            "metrics": dict(record["metrics"]), "violations": dict(record["violations"]),
-            **{k: record[k] for k in ("basis", "score_terms", "note", "variants") if k in record},
-            "trial": record.get("trial")}
+        part_id = table.part_id[int(table.index_of(np.array([value]))[0])] if value > 0 else None
+        parts[role] = {"value": value, "label": part_label(role, value), "part_id": part_id}
+    return candidate_record(
+        topology=record["topology"], feasible=record["feasible"], score=record["score"], binding=record["binding"],
+        conditions=record_conditions(space.spec), parts=parts, transistor=space.devices[record["device"]].record(),
+        metrics=dict(record["metrics"]), violations=dict(record["violations"]),
+        **{k: record[k] for k in ("basis", "score_terms", "note", "variants") if k in record},
+        trial=record.get("trial"))
 
 
 def _shortlist_candidate(space: SearchSpace, record: dict, samples: int) -> dict:
@@ -534,7 +527,7 @@ def _shortlist_candidate(space: SearchSpace, record: dict, samples: int) -> dict
                 total_violation=total, binding=max(violations, key=violations.get) if violations else "",
                 nominal_score=record["score"], score_terms=terms, trial=record.get("trial"),
                 variants=record.get("variants", 1))
-    return full
+    return candidate_record(**full)
 
 
 # ----------------------------------------------------------------------------- studies

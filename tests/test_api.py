@@ -466,3 +466,40 @@ def test_openapi_document_is_a_fresh_copy():
     document = openapi_document()
     document["paths"].clear()
     assert openapi_document()["paths"]
+
+
+def test_every_rank_of_a_stored_search_has_its_plots_bom_and_netlist(client):
+    """Every ranked candidate, shortlisted (assessed in full) or not (the nominal tail), is a
+    whole record: its plots, BOM and netlist all answer (rank 13 once answered 422)."""
+    response = client.post("/v1/searches?wait=300", json=pickup_spec(trials=200))
+    assert response.status_code == 200, response.data
+    search_id = response.get_json()["search"]["id"]
+    listed = client.get(f"/v1/searches/{search_id}/candidates?top=200").get_json()
+    ranks = [c["rank"] for c in listed["candidates"]]
+    assert ranks == list(range(1, len(ranks) + 1)) and len(ranks) > 13  # past the shortlist of 12
+    for rank in ranks:
+        base = f"/v1/searches/{search_id}/candidates/{rank}"
+        for path in ("/response.svg", "/transfer.svg", "/bom", "/netlist"):
+            answer = client.get(base + path)
+            assert answer.status_code == 200, (rank, path, answer.data[:600])
+
+
+def test_served_candidates_match_the_schema_generated_from_the_record_type(client, done):
+    """The OpenAPI Candidate schema comes from optimizer.record.Candidate; every record the
+    service serves (shortlisted and tail ranks, front points, the best in the status) fits it,
+    checked by jsonschema (an independent JSON Schema 2020-12 validator)."""
+    import jsonschema
+
+    document = openapi_document()
+    validator = jsonschema.Draft202012Validator({**document, "$ref": "#/components/schemas/Candidate"})
+    search_id = done["search"]["id"]
+    served = client.get(f"/v1/searches/{search_id}/candidates?top=1000").get_json()["candidates"]
+    served += client.get(f"/v1/searches/{search_id}/front").get_json()["front"]
+    served += [client.get(f"/v1/searches/{search_id}/candidates/{len(served) and 1}").get_json(),
+               client.get(f"/v1/searches/{search_id}").get_json()["best"]]
+    assert len(served) > 4
+    for record in served:
+        errors = [e.message for e in validator.iter_errors(record)]
+        assert not errors, (record.get("rank"), errors[:3])
+    # and a record missing a required block does not fit
+    assert list(validator.iter_errors({k: v for k, v in served[0].items() if k != "conditions"}))
