@@ -48,10 +48,7 @@ import subprocess  # noqa: E402
 import sys  # noqa: E402
 import tempfile  # noqa: E402
 import time  # noqa: E402
-from contextlib import contextmanager  # noqa: E402
 from pathlib import Path  # noqa: E402
-from typing import Iterator  # noqa: E402
-from unittest import mock  # noqa: E402
 
 import numpy as np  # noqa: E402
 
@@ -67,8 +64,8 @@ import optimizer.search  # noqa: E402
 search_module = sys.modules["optimizer.search"]  # the module (optimizer.search is also the API function)
 from optimizer.exhaustive import exhaustive  # noqa: E402
 from optimizer.scoring import pareto_mask  # noqa: E402
-from optimizer.search import (Design, SearchSpace, create_search, evaluate_designs, open_storage,  # noqa: E402
-                              run_search, with_search)
+from optimizer.search import (Design, SearchSpace, create_search, evaluate_designs, finish_search,  # noqa: E402
+                              open_storage, run_search, with_search)
 from optimizer.spec import Spec, load_spec, parse_spec, spec_to_dict  # noqa: E402
 from optimizer.synthesis import hand_requirements, rounded_designs  # noqa: E402
 from optimizer.topologies import get_topology  # noqa: E402
@@ -152,45 +149,26 @@ def summarise(records: list[dict], oracle, directions: list[str], ref: np.ndarra
             "trials": len(records)}
 
 
-@contextmanager
-def timed_finish() -> Iterator[list[float]]:
-    """Time ``search._finish`` (the shortlist assessment run_search does when the budget is met)."""
-    spent: list[float] = []
-    original = search_module._finish
-
-    def wrapper(study, space):
-        start = time.perf_counter()
-        original(study, space)
-        spent.append(time.perf_counter() - start)
-
-    with mock.patch.object(search_module, "_finish", wrapper):
-        yield spent
-
-
 def run_ours(spec: Spec, seed: int, storage) -> tuple[list[dict], float, float, str]:
     """Our search (create + run, as search() does) -> records, search seconds, finish seconds."""
     spec = with_search(spec, seed=seed)
-    with timed_finish() as spent:
-        start = time.perf_counter()
-        search_id = create_search(spec, storage)
-        run_search(storage, search_id)
-        total = time.perf_counter() - start
-    finish = sum(spent)
-    return completed_records(storage, search_id), total - finish, finish, search_id
+    start = time.perf_counter()
+    search_id = create_search(spec, storage)
+    run_search(storage, search_id, finish=False)
+    searched = time.perf_counter()
+    finish_search(storage, search_id)  # the shortlist assessment run_search does when the budget is met
+    return completed_records(storage, search_id), searched - start, time.perf_counter() - searched, search_id
 
 
 def run_random(spec: Spec, seed: int) -> tuple[list[dict], float]:
     """The same batched loop (run_search) with Optuna's RandomSampler, no seeds, no finish."""
     spec = with_search(spec, seed=seed)
     storage = open_storage(None)
-    with mock.patch.object(SearchSpace, "seeds", lambda self: []), \
-            mock.patch.object(search_module, "_sampler",
-                              lambda space, seed_offset=0: optuna.samplers.RandomSampler(seed=seed)), \
-            mock.patch.object(search_module, "_finish", lambda study, space: None):
-        start = time.perf_counter()
-        search_id = create_search(spec, storage)
-        run_search(storage, search_id)
-        elapsed = time.perf_counter() - start
+    start = time.perf_counter()
+    search_id = create_search(spec, storage, seeds=False)
+    run_search(storage, search_id, sampler=lambda space, seed_offset=0: optuna.samplers.RandomSampler(seed=seed),
+               finish=False)
+    elapsed = time.perf_counter() - start
     return completed_records(storage, search_id), elapsed
 
 

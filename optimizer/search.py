@@ -40,14 +40,12 @@ from optimizer.errors import InputError
 from optimizer.sampler import NeighbourSampler
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
-from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, sync
+from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, quiet_optuna, sync
 from optimizer.synthesis import hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import SUPPLY_PARTS
 from optimizer.units import format_value
 from optimizer.validation import validate_spec
-
-optuna.logging.set_verbosity(optuna.logging.WARNING)
 
 STATUSES = ("queued", "running", "done", "failed", "cancelled")
 SHORTLIST_SAMPLES = robustness.FINAL_BUILDS  # Monte Carlo builds for each shortlisted design's yield
@@ -59,7 +57,8 @@ ABSENT_RATING = 1e30  # W: the rating of a part left out (never binds)
 SCREEN_WITHIN = 0.5  # designs within this summed violation at nominal get the robustness screen
 ABSENT = -1  # index of an optional part left out (feedback_ce without an emitter resistor)
 
-__all__ = ["SearchSpace", "SearchResult", "open_storage", "create_search", "run_search", "load_search",
+__all__ = ["SearchSpace", "SearchResult", "open_storage", "create_search", "run_search", "finish_search",
+           "neighbour_sampler", "SamplerFactory", "load_search",
            "search_status", "list_searches", "cancel_search", "delete_search", "extend_search", "fail_search", "search",
            "evaluate_designs", "evaluate_group", "rank_records", "pareto_mask", "trial_record", "candidates_frame"]
 
@@ -119,17 +118,9 @@ class SearchSpace:
 
     @classmethod
     def build(cls, spec: Spec, catalog: Catalog | None = None) -> "SearchSpace":
-        """The space of ``spec`` in its catalog (``spec.parts.catalog`` by default, and then
-        cached per spec); InputError if it is empty."""
-        if catalog is not None:
-            return cls._build(spec, catalog)
-        key = json.dumps(spec_to_dict(spec), sort_keys=True)
-        if key not in _SPACES:
-            _SPACES[key] = cls._build(spec, load_catalog(spec.parts.catalog))
-        return _SPACES[key]
-
-    @classmethod
-    def _build(cls, spec: Spec, catalog: Catalog) -> "SearchSpace":
+        """The space of ``spec`` in its catalog (``spec.parts.catalog`` by default); InputError
+        if it is empty."""
+        catalog = catalog if catalog is not None else load_catalog(spec.parts.catalog)
         validate_spec(spec, catalog)
         p = spec.parts
         r_values = catalog.resistor_values(p.resistor_series, *p.resistor_range, in_stock_only=p.in_stock_only)
@@ -225,9 +216,6 @@ class SearchSpace:
                         (r, int((self.capacitors if r.startswith("c_") else self.resistors).index_of(
                             np.array([rounded[r]]))[0])) for r in roles)))
         return list(dict.fromkeys(out))
-
-
-_SPACES: dict[str, SearchSpace] = {}
 
 
 # ----------------------------------------------------------------------------- evaluation
@@ -551,8 +539,13 @@ def _rank_key(trial: optuna.trial.FrozenTrial) -> tuple[int, float]:
     return (0, -record["score"]) if record["feasible"] else (1, record["total_violation"])
 
 
-def _sampler(space: SearchSpace, seed_offset: int = 0) -> optuna.samplers.BaseSampler:
-    """Neighbour moves along the ordered indices from the best and the front designs."""
+#: makes a search's sampler from its space and a seed offset (each runner of a shared search its own)
+SamplerFactory = Callable[[SearchSpace, int], optuna.samplers.BaseSampler]
+
+
+def neighbour_sampler(space: SearchSpace, seed_offset: int = 0) -> optuna.samplers.BaseSampler:
+    """The search's own sampler: neighbour moves along the ordered indices from the best and
+    the front designs."""
     return NeighbourSampler(_rank_key, [d for _, d in space.spec.objective_directions], space.distributions,
                             seed=space.spec.search.seed + seed_offset)
 
@@ -571,14 +564,16 @@ def _load(storage: BaseStorage, search_id: str) -> tuple[optuna.Study, Spec]:
 
 
 def create_search(spec: Spec, storage: BaseStorage, *, search_id: str | None = None,
-                  catalog: Catalog | None = None) -> str:
-    """Create the study for ``spec`` (status 'queued'), seeds enqueued; returns its id.
+                  catalog: Catalog | None = None, seeds: bool = True) -> str:
+    """Create the study for ``spec`` (status 'queued'), the hand method's seeds enqueued
+    (unless ``seeds`` is False: a baseline without them); returns its id.
 
     Everything is checked before anything is stored: the space is built (the spec fits its
     catalog) and the spec as it will be stored reads back. The status is written last: it is
     the search record's commit mark, so a creation cut short by a crash leaves a study
     without a status, which :func:`list_searches` shows as failed, :func:`delete_search`
     removes and a new creation under the same id replaces."""
+    quiet_optuna()
     space = SearchSpace.build(spec, catalog)
     stored = spec_to_dict(spec)
     parse_spec(stored)  # what is stored must load again (InputError otherwise, nothing written)
@@ -594,7 +589,7 @@ def create_search(spec: Spec, storage: BaseStorage, *, search_id: str | None = N
         for key, value in (("spec", stored), ("budget", spec.search.trials), ("created", _now()),
                            ("objectives", [list(o) for o in spec.objective_directions])):
             study.set_user_attr(key, value)
-        for design in space.seeds()[: spec.search.trials]:
+        for design in (space.seeds() if seeds else [])[: spec.search.trials]:
             study.enqueue_trial(space.params_of(design), skip_if_exists=True)
         study.set_user_attr("status", "queued")  # the commit mark
     return search_id
@@ -614,9 +609,12 @@ def _feasible_count(study: optuna.Study) -> int:
 
 def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[], bool] | None = None,
                progress: Callable[[int, int], None] | None = None, max_batches: int | None = None,
-               seed_offset: int = 0, catalog: Catalog | None = None) -> None:
+               seed_offset: int = 0, catalog: Catalog | None = None,
+               sampler: SamplerFactory = neighbour_sampler, finish: bool = True) -> None:
     """Run batches (ask, evaluate in one vectorised call, tell) until the budget is met, the
-    search is cancelled or ``should_stop()`` is true. Several processes may share a search:
+    search is cancelled or ``should_stop()`` is true; then, with ``finish``, rank and assess
+    the shortlist (:func:`finish_search`). ``sampler(space, seed_offset)`` makes the sampler
+    (the benchmarks pass their baselines in). Several processes may share a search:
     counting and asking is one claimed step (storage.claim_batch), so together they finish
     exactly the budget; running trials carry heartbeats and a dead runner's trials are failed
     and retried at the next batch of any runner (storage.TrialHeartbeat)."""
@@ -627,7 +625,8 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
         if error.title != "unknown search":  # stored, but it cannot run: say so, never leave it queued
             fail_search(storage, search_id, f"cannot run: {error}")
         raise
-    study.sampler = _sampler(space, seed_offset)
+    quiet_optuna()
+    study.sampler = sampler(space, seed_offset)
     budget = int(study.user_attrs["budget"])
     if study.user_attrs.get("status") in ("queued", "failed"):
         study.set_user_attr("status", "running")
@@ -665,9 +664,21 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
                 study.tell(t, record["objectives"])
         sync(storage)  # the batch is on disk
         batches += 1
+    if finish:
+        _finish_when_done(study, space, budget)
+
+
+def _finish_when_done(study: optuna.Study, space: SearchSpace, budget: int) -> None:
     finished, running = _counts(study)
     if finished >= budget and running == 0 and study.user_attrs.get("status") == "running":
         _finish(study, space)
+
+
+def finish_search(storage: BaseStorage, search_id: str, *, catalog: Catalog | None = None) -> None:
+    """Rank a search whose budget is spent and assess its shortlist (status 'done'); nothing
+    while trials are still to run. What :func:`run_search` does at its end unless told not to."""
+    study, spec = _load(storage, search_id)
+    _finish_when_done(study, SearchSpace.build(spec, catalog), int(study.user_attrs["budget"]))
 
 
 def _records(study: optuna.Study) -> list[dict]:
@@ -910,11 +921,13 @@ def with_search(spec: Spec, **overrides: object) -> Spec:
 
 def search(spec: Spec, *, storage: BaseStorage | str | None = None, trials: int | None = None,
            seed: int | None = None, progress: Callable[[int, int], None] | None = None,
-           top: int = SHORTLIST_SIZE, catalog: Catalog | None = None) -> SearchResult:
+           top: int = SHORTLIST_SIZE, catalog: Catalog | None = None,
+           sampler: SamplerFactory = neighbour_sampler) -> SearchResult:
     """Run a whole search in this process and return its ranked result (the Python API).
-    ``storage`` defaults to memory; ``trials`` and ``seed`` override the spec's."""
+    ``storage`` defaults to memory; ``trials`` and ``seed`` override the spec's; ``sampler``
+    makes the sampler from the space and a seed offset (default: the neighbour sampler)."""
     spec = with_search(spec, trials=trials, seed=seed)
     store = storage if isinstance(storage, BaseStorage) else open_storage(storage)
     search_id = create_search(spec, store, catalog=catalog)
-    run_search(store, search_id, progress=progress, catalog=catalog)
+    run_search(store, search_id, progress=progress, catalog=catalog, sampler=sampler)
     return load_search(store, search_id, top=top)

@@ -80,6 +80,13 @@ HEARTBEAT_INTERVAL = 10  # s between heartbeats of a running trial (STAGEFIT_HEA
 GRACE_PERIOD = 30  # s without a heartbeat before a running trial is failed (STAGEFIT_GRACE_PERIOD)
 MAX_RETRY = 3  # times a failed (stale) trial is queued again
 log = logging.getLogger("stagefit.storage")
+
+
+def quiet_optuna() -> None:
+    """Optuna logs every told trial at INFO, and a search tells thousands: keep its log to
+    warnings. Called when a search runs (never at import: a program importing stagefit keeps
+    its own logging settings until it runs one)."""
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
 # Heartbeats and their retry callback are marked experimental in Optuna; we rely on them
 # knowingly (tests/test_workers.py checks them), so their warnings are noise here.
 warnings.filterwarnings("ignore", category=optuna.exceptions.ExperimentalWarning,
