@@ -9,12 +9,15 @@ another process), 1 internal error (a bug: please report it with the command you
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import re
+import signal
 import sys
+import threading
 import time
-from typing import Callable, Sequence
+from typing import Callable, Iterator, Sequence
 
 from optimizer.errors import InputError, StorageError
 from optimizer.metrics import METRICS
@@ -246,8 +249,9 @@ def _run_or_reuse(args: argparse.Namespace, spec):
     and budget) was searched before, resumed when it was interrupted, run otherwise."""
     from optuna.exceptions import DuplicatedStudyError
 
-    from optimizer.search import (create_search, delete_search, extend_search, list_searches, load_search,
-                                  open_storage, run_search, search_status, spec_search_id, with_search)
+    from optimizer.search import (INTERRUPTED, create_search, delete_search, extend_search, fail_search,
+                                  list_searches, load_search, open_storage, run_search, search_status,
+                                  spec_search_id, with_search)
 
     spec = with_search(spec, trials=args.trials, seed=args.seed)
     storage = open_storage(args.storage)
@@ -272,7 +276,12 @@ def _run_or_reuse(args: argparse.Namespace, spec):
     done = search_id in known and known[search_id]["status"] == "done"
     deadline = time.monotonic() + BUSY_WAIT
     while True:  # runs sharing a search split its budget; each waits for the others' last trials
-        run_search(storage, search_id, progress=_progress_printer(quiet=args.quiet or done))
+        with _stop_on_ctrl_c() as interrupted:
+            run_search(storage, search_id, progress=_progress_printer(quiet=args.quiet or done),
+                       should_stop=interrupted.is_set)
+        if interrupted.is_set():  # stopped after the batch in hand: no trial left running
+            fail_search(storage, search_id, INTERRUPTED)
+            raise KeyboardInterrupt
         status = search_status(storage, search_id)
         if status["status"] in ("done", "failed", "cancelled"):
             break
@@ -283,6 +292,28 @@ def _run_or_reuse(args: argparse.Namespace, spec):
     if status["status"] == "failed":
         raise StorageError(f"search {search_id} failed: {status.get('reason') or 'see the log'}")
     return load_search(storage, search_id, top=max(args.top, 1))
+
+
+@contextlib.contextmanager
+def _stop_on_ctrl_c() -> Iterator[threading.Event]:
+    """While the block runs, a first Ctrl-C (SIGINT) sets the event (the search stops after
+    the batch in hand, every trial told) and a second one interrupts at once."""
+    interrupted = threading.Event()
+
+    def on_sigint(signum: int, frame: object) -> None:
+        if interrupted.is_set():
+            raise KeyboardInterrupt
+        interrupted.set()
+        print("stopping after the batch in hand (Ctrl-C again to stop at once)", file=sys.stderr)
+
+    if threading.current_thread() is not threading.main_thread():  # signals reach the main thread only
+        yield interrupted
+        return
+    previous = signal.signal(signal.SIGINT, on_sigint)
+    try:
+        yield interrupted
+    finally:
+        signal.signal(signal.SIGINT, previous)
 
 
 def _table(rows: list[list[str]], markdown: bool = False) -> str:
@@ -722,8 +753,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except BrokenPipeError:  # output piped into head or similar: not an error
         sys.stderr.close()
         return EXIT_OK
-    except KeyboardInterrupt:
-        print("interrupted", file=sys.stderr)
+    except KeyboardInterrupt:  # a search marks its running trials failed first (resumable)
+        print("interrupted" + (": the search is kept; run the same command again to resume it"
+                               if args.command == "search" else ""), file=sys.stderr)
         return EXIT_INTERNAL
     except Exception as error:
         if _environmental(error):  # the disk, a file, the database: not the user's input, not a bug

@@ -633,39 +633,62 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
         study.set_user_attr("started", time.time())
     batches = 0
     known: dict[Design, dict] = {}  # designs this runner has evaluated (samplers revisit them)
-    while True:
-        if study.user_attrs.get("status") == "cancelled" or (should_stop and should_stop()):
-            return
-        with warnings.catch_warnings():  # Optuna marks the stale-trial check experimental
-            warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
-            fail_stale_trials(study, storage)  # a dead runner's trials: failed, queued again
-        with TrialHeartbeat(storage) as heartbeat:
-            with claim_batch(storage, search_id):
-                finished, running = _counts(study)
-                if progress:
-                    progress(finished, budget)
-                wanted = min(spec.search.batch_size, budget - finished - running)
-                if wanted <= 0 or (max_batches is not None and batches >= max_batches):
-                    break
-                trials = [heartbeat.add(study.ask()) for _ in range(wanted)]
-            designs = [space.suggest(t) for t in trials]
-            try:
-                fresh = list(dict.fromkeys(d for d in designs if d not in known))
-                known.update(zip(fresh, evaluate_designs(space, fresh)))
-                records = [known[d] for d in designs]
-            except Exception as error:
-                for t in trials:
-                    study.tell(t, state=TrialState.FAIL)
-                fail_search(storage, search_id, f"evaluation failed: {type(error).__name__}: {error}")
-                raise
-            for t, record in zip(trials, records):
-                t.set_user_attr("record", json.dumps(record))
-                t.set_constraint("violation", record["total_violation"])
-                study.tell(t, record["objectives"])
-        sync(storage)  # the batch is on disk
-        batches += 1
+    open_trials: list[optuna.Trial] = []  # asked and not yet told (failed if the run is interrupted)
+    try:
+        while True:
+            if study.user_attrs.get("status") == "cancelled" or (should_stop and should_stop()):
+                return
+            with warnings.catch_warnings():  # Optuna marks the stale-trial check experimental
+                warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
+                fail_stale_trials(study, storage)  # a dead runner's trials: failed, queued again
+            with TrialHeartbeat(storage) as heartbeat:
+                with claim_batch(storage, search_id):
+                    finished, running = _counts(study)
+                    if progress:
+                        progress(finished, budget)
+                    wanted = min(spec.search.batch_size, budget - finished - running)
+                    if wanted <= 0 or (max_batches is not None and batches >= max_batches):
+                        break
+                    open_trials = []
+                    for _ in range(wanted):
+                        open_trials.append(heartbeat.add(study.ask()))
+                trials = list(open_trials)
+                designs = [space.suggest(t) for t in trials]
+                try:
+                    fresh = list(dict.fromkeys(d for d in designs if d not in known))
+                    known.update(zip(fresh, evaluate_designs(space, fresh)))
+                    records = [known[d] for d in designs]
+                except Exception as error:
+                    _fail_trials(study, open_trials)
+                    fail_search(storage, search_id, f"evaluation failed: {type(error).__name__}: {error}")
+                    raise
+                for t, record in zip(trials, records):
+                    t.set_user_attr("record", json.dumps(record))
+                    t.set_constraint("violation", record["total_violation"])
+                    study.tell(t, record["objectives"])
+                    open_trials.remove(t)
+            sync(storage)  # the batch is on disk
+            batches += 1
+    except KeyboardInterrupt:  # Ctrl-C: the batch in hand is failed, the search stays resumable
+        _fail_trials(study, open_trials)
+        fail_search(storage, search_id, INTERRUPTED)
+        sync(storage)
+        raise
     if finish:
         _finish_when_done(study, space, budget)
+
+
+INTERRUPTED = "interrupted (Ctrl-C); finished trials are kept: run the search again to resume it"
+
+
+def _fail_trials(study: optuna.Study, trials: list[optuna.Trial]) -> None:
+    """Tell ``trials`` (asked, not told) failed: they are asked again when the search resumes."""
+    for t in list(trials):
+        try:
+            study.tell(t, state=TrialState.FAIL)
+        except ValueError:  # told already (the interrupt came between its tell and its removal here)
+            pass
+        trials.remove(t)
 
 
 def _finish_when_done(study: optuna.Study, space: SearchSpace, budget: int) -> None:

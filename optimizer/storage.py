@@ -39,34 +39,44 @@ from typing import IO, Iterator
 import optuna
 from optuna.storages import BaseStorage
 
-# Every private Optuna name stagefit relies on, in one place (checked against Optuna 4.x-5.x;
-# tests/test_storage.py and tests/test_workers.py exercise each): the heartbeat switch, the
-# journal file lock base and its context manager, the RDB models (stale trials without a
-# heartbeat), the journal backend's file path attribute, the storage under Optuna's cache
-# wrapper, and the ids on Trial / Study objects.
+# Every private Optuna name stagefit relies on is here and nowhere else, each with why the
+# public API does not suffice (checked against the versions pyproject.toml allows;
+# tests/test_storage_compat.py pins the range, tests/test_workers.py exercises each use).
+# is_heartbeat_enabled: whether a storage records heartbeats; public Optuna only runs
+# heartbeats inside Study.optimize, and our batches (ask/tell) record their own.
 from optuna.storages._heartbeat import is_heartbeat_enabled
+# BaseJournalFileLock, get_lock_file: the journal's lock interface, so the journal can take a
+# kernel flock (released when its holder dies) instead of Optuna's lock files; the public
+# JournalFileBackend accepts a lock object but the base class to write one is private.
 from optuna.storages.journal._file import BaseJournalFileLock, get_lock_file
 
 from optimizer.errors import InputError, StorageError
 
 
-def _rdb_models():  # optuna.storages._rdb.models (imported late: SQLAlchemy is slow to import)
+def _rdb_models():
+    """optuna.storages._rdb.models: stale running trials of an RDB storage without heartbeats
+    are found by one SQL query on the trials table; the public API would read every trial of
+    the study. Imported late: SQLAlchemy is slow to import."""
     from optuna.storages._rdb import models
     return models
 
 
 def trial_id(trial: "optuna.Trial | optuna.trial.FrozenTrial") -> int:
-    """The storage id of a trial (Optuna's private ``_trial_id``)."""
+    """The storage id of a trial (Optuna's private ``_trial_id``): heartbeats and state changes
+    of a trial outside Study.optimize go through the storage, whose public methods take that
+    id, and Trial exposes only its number."""
     return trial._trial_id
 
 
 def study_id(study: optuna.Study) -> int:
-    """The storage id of a study (Optuna's private ``_study_id``)."""
+    """The storage id of a study (Optuna's private ``_study_id``): the storage's public
+    methods take it, and Study exposes only its name (a lookup per call otherwise)."""
     return study._study_id
 
 
 def unwrapped(storage: BaseStorage) -> BaseStorage:
-    """The storage under Optuna's cache wrapper (its private ``_backend``), else itself."""
+    """The storage under Optuna's cache wrapper (its private ``_backend``), else itself: the
+    RDB storage's engine and heartbeat settings are only on the wrapped storage."""
     return getattr(storage, "_backend", storage)
 
 DEFAULT_JOURNAL = Path("runs") / "stagefit.journal"

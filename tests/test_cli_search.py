@@ -87,3 +87,52 @@ def test_bom_for_a_kit_of_units(workspace: Path, capsys) -> None:
     assert code == EXIT_OK and "kit for 3" in out and "total" in out
     code, _, err = _run(workspace, capsys, "--units", "0", command="bom")
     assert code == EXIT_BAD_INPUT and "units" in err
+
+
+def test_ctrl_c_fails_the_running_trials_and_the_search_resumes(tmp_path) -> None:
+    """SIGINT to a running `stagefit search`: the batch in hand is failed (no trial left
+    running, status failed with the reason), and running the command again resumes the
+    search to exactly its budget."""
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    from optimizer.search import open_storage, search_status
+    from optimizer.spec import load_spec
+    from optimizer.search import spec_search_id, with_search
+
+    journal = tmp_path / "runs.journal"
+    spec_file = Path(__file__).resolve().parents[1] / "specs" / "line_driver_24v.yaml"
+    command = [sys.executable, "-m", "optimizer.cli", "search", str(spec_file), "--storage", str(journal),
+               "--trials", "1500", "--seed", "4", "--top", "1", "--format", "json"]
+    search_id = spec_search_id(with_search(load_spec(spec_file), trials=1500, seed=4))
+    run = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        deadline = time.monotonic() + 120
+        while True:  # wait until the search has told some trials
+            assert run.poll() is None, run.communicate()
+            assert time.monotonic() < deadline, "the search did not start"
+            if journal.exists():
+                try:
+                    if search_status(open_storage(str(journal)), search_id)["trials_done"] > 0:
+                        break
+                except Exception:  # noqa: BLE001 (the journal is still being created)
+                    pass
+            time.sleep(0.2)
+        os.kill(run.pid, signal.SIGINT)
+        _, err = run.communicate(timeout=60)
+    finally:
+        if run.poll() is None:
+            run.kill()
+    assert run.returncode == 1 and "run the same command again to resume" in err
+    status = search_status(open_storage(str(journal)), search_id)
+    assert status["status"] == "failed" and "interrupted" in status["reason"]
+    assert status["trials_running"] == 0 and 0 < status["trials_done"] < 1500
+
+    again = subprocess.run(command, capture_output=True, text=True, timeout=600)
+    assert "resuming the interrupted search" in again.stderr
+    assert again.returncode in (0, 3), again.stderr  # 3: no design meets every limit (still an answer)
+    status = search_status(open_storage(str(journal)), search_id)
+    assert status["status"] == "done" and status["trials_done"] == 1500 and status["trials_running"] == 0

@@ -1,0 +1,43 @@
+"""The Optuna boundary: the installed Optuna is inside the range pyproject.toml pins, and
+every private name optimizer/storage.py relies on exists in it."""
+from __future__ import annotations
+
+import sys
+from importlib.metadata import version
+from pathlib import Path
+
+from packaging.requirements import Requirement
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - Python 3.10
+    import tomli as tomllib
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def _optuna_requirement() -> Requirement:
+    project = tomllib.loads((ROOT / "pyproject.toml").read_text(encoding="utf-8"))["project"]
+    return next(Requirement(d) for d in project["dependencies"] if Requirement(d).name == "optuna")
+
+
+def test_optuna_is_pinned_above_and_below_and_the_installed_one_fits() -> None:
+    requirement = _optuna_requirement()
+    operators = {spec.operator for spec in requirement.specifier}
+    assert ">=" in operators and "<" in operators  # a floor and a ceiling
+    assert requirement.specifier.contains(version("optuna"))
+
+
+def test_the_private_names_storage_uses_exist() -> None:
+    import optuna
+
+    from optimizer import storage
+
+    memory = optuna.storages.InMemoryStorage()
+    study = optuna.create_study(storage=memory)
+    trial = study.ask()
+    assert isinstance(storage.trial_id(trial), int) and isinstance(storage.study_id(study), int)
+    assert memory.get_trial(storage.trial_id(trial)).number == trial.number
+    assert storage.is_heartbeat_enabled(memory) is False  # in memory: no heartbeat
+    assert hasattr(storage._rdb_models(), "TrialModel")
+    assert callable(storage.get_lock_file) and isinstance(storage.BaseJournalFileLock, type)
