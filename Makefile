@@ -33,6 +33,12 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
 
+# every benchmark in turn: each prints its figures and rewrites its results file in benchmarks/results/
+# (long: the search and reliability ones take tens of minutes; one alone: make bench BENCHES=models)
+BENCHES ?= bench_models spice_agreement bench_search bench_robustness bench_workers bench_api bench_pages bench_reliability
+bench: $(STAMP)
+	set -e; for b in $(BENCHES); do echo "== benchmarks/$$b.py"; $(BIN)/python benchmarks/$$b.py; done
+
 # the REST fuzz at ten times the CI size (about 25,000 generated requests; benchmarks/results/reliability.md)
 fuzz: $(STAMP)
 	STAGEFIT_FUZZ_EXAMPLES=800 $(BIN)/python -m pytest -q -s tests/test_api_server.py -k fuzz
