@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 
 from optimizer.candidates import design_from_record
-from optimizer.catalog import Catalog, is_class2
+from optimizer.catalog import VALUE_RTOL, Catalog, is_class2
 from optimizer.errors import InputError, Problem
 from optimizer.netlist import dc_node_voltages, designators, element_nodes
 from optimizer.spec import Spec, spec_digest
@@ -42,7 +42,6 @@ from optimizer.topologies import get_topology
 from optimizer.units import format_value
 
 MAX_UNITS = 100_000
-VALUE_RTOL = 1e-6  # two values closer than this (relative) are the same value
 KIND_ORDER = ("resistor", "capacitor", "transistor")
 COLUMNS = ("designators", "kind", "roles", "part_id", "value", "label", "tolerance", "rating", "package",
            "technology", "polarised", "orientation", "qty_per_unit", "qty_total", "stock", "short_by",
@@ -124,34 +123,6 @@ def check_units(units: object) -> int:
     if value is None or not 1 <= value <= MAX_UNITS:
         raise InputError.single("units", units, expected, title="invalid kit size")
     return value
-
-
-def unique_values_array(parts: dict[str, np.ndarray]) -> np.ndarray:
-    """Distinct resistor and capacitor values per candidate (vectorised over a leading axis).
-
-    Roles starting with ``c_`` are capacitors, other non-``q`` roles resistors; a value of 0
-    (an optional part left out) is not a part and does not count.
-    """
-    groups: dict[str, list[np.ndarray]] = {"r": [], "c": []}
-    for role, values in parts.items():
-        if role.startswith("q"):
-            continue
-        groups["c" if role.startswith("c_") else "r"].append(np.atleast_1d(np.asarray(values, dtype=float)))
-    count: np.ndarray | int = 0
-    for arrays in groups.values():
-        if not arrays:
-            continue
-        v = np.sort(np.stack(np.broadcast_arrays(*arrays), axis=-1), axis=-1)
-        present = v > 0
-        new = np.ones_like(present)
-        new[..., 1:] = ~np.isclose(v[..., 1:], v[..., :-1], rtol=VALUE_RTOL, atol=0)
-        count = count + (present & new).sum(axis=-1)
-    return np.asarray(count)
-
-
-def unique_values(parts: dict[str, float]) -> int:
-    """Distinct resistor and capacitor values of one design (0 = absent part, not counted)."""
-    return int(unique_values_array({k: np.array([v], dtype=float) for k, v in parts.items()})[0])
 
 
 # ---- kitting ----------------------------------------------------------------------------

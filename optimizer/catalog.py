@@ -28,7 +28,7 @@ CATALOG_DIR: Path = Path(
     os.environ.get("STAGEFIT_CATALOG_DIR") or Path(__file__).resolve().parent.parent / "parts_catalogs"
 )
 
-_VALUE_RTOL = 1e-6  # two catalog values closer than this (relative) are the same value
+VALUE_RTOL = 1e-6  # two part values closer than this (relative) are the same value
 
 #: Continuous rating (W at 70 °C) of a thick-film chip resistor by package (common practice);
 #: a resistor row with a blank power_rating takes its package's, and may not claim more.
@@ -248,7 +248,7 @@ def _package_power(record: dict, where: str) -> list[Problem]:
             return [Problem(where, "", f"a power rating in W: package {record['package']!r} has no customary "
                                        f"rating (known: {', '.join(PACKAGE_POWER)})")]
         record["power_rating"] = customary
-    elif customary is not None and given > customary * (1 + _VALUE_RTOL):
+    elif customary is not None and given > customary * (1 + VALUE_RTOL):
         return [Problem(where, given, f"at most {customary:g} W, the customary rating of a {record['package']} "
                                       "chip resistor (common practice); leave it blank to use that")]
     return []
@@ -259,7 +259,7 @@ def _in_series(values: np.ndarray, series: str) -> np.ndarray:
     if values.size == 0:
         return np.zeros(0, dtype=bool)
     members = eseries.series_values(series, values.min() * 0.9, values.max() * 1.1)
-    return np.isclose(values[:, None], members[None, :], rtol=_VALUE_RTOL, atol=0).any(axis=1)
+    return np.isclose(values[:, None], members[None, :], rtol=VALUE_RTOL, atol=0).any(axis=1)
 
 
 @dataclass(frozen=True)
@@ -280,9 +280,9 @@ class Catalog:
         rows = frame[_in_stock(frame)] if in_stock_only else frame
         values = np.unique(rows["value"].to_numpy(dtype=float))
         if low is not None:
-            values = values[values >= low * (1 - _VALUE_RTOL)]
+            values = values[values >= low * (1 - VALUE_RTOL)]
         if high is not None:
-            values = values[values <= high * (1 + _VALUE_RTOL)]
+            values = values[values <= high * (1 + VALUE_RTOL)]
         if series is not None:
             values = values[_in_series(values, series.upper())]
         return values
@@ -352,7 +352,7 @@ class Catalog:
             else np.zeros(wanted.size, dtype=int)
         below = np.maximum(i - 1, 0)
         nearer = np.where(np.abs(known[below] - wanted) <= np.abs(known[i] - wanted), below, i)
-        match = np.isclose(known[nearer], wanted, rtol=_VALUE_RTOL, atol=0)
+        match = np.isclose(known[nearer], wanted, rtol=VALUE_RTOL, atol=0)
         return best.reindex(np.where(match, nearer, -1)).reset_index(drop=True)
 
     def summary(self) -> dict:

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from optimizer.catalog import VALUE_RTOL
 from optimizer.devices import Device
 from optimizer.metrics import LIMIT_METRICS
 from optimizer.spec import Spec
@@ -306,3 +307,31 @@ def pareto_mask(values: np.ndarray, directions: list[str], *, chunk: int = 512) 
             dominated[i:i + chunk] = np.any(no_worse & better, axis=1)
         mask[ok] = ~dominated
     return mask
+
+
+def unique_values_array(parts: dict[str, np.ndarray]) -> np.ndarray:
+    """Distinct resistor and capacitor values per candidate (vectorised over a leading axis).
+
+    Roles starting with ``c_`` are capacitors, other non-``q`` roles resistors; a value of 0
+    (an optional part left out) is not a part and does not count.
+    """
+    groups: dict[str, list[np.ndarray]] = {"r": [], "c": []}
+    for role, values in parts.items():
+        if role.startswith("q"):
+            continue
+        groups["c" if role.startswith("c_") else "r"].append(np.atleast_1d(np.asarray(values, dtype=float)))
+    count: np.ndarray | int = 0
+    for arrays in groups.values():
+        if not arrays:
+            continue
+        v = np.sort(np.stack(np.broadcast_arrays(*arrays), axis=-1), axis=-1)
+        present = v > 0
+        new = np.ones_like(present)
+        new[..., 1:] = ~np.isclose(v[..., 1:], v[..., :-1], rtol=VALUE_RTOL, atol=0)
+        count = count + (present & new).sum(axis=-1)
+    return np.asarray(count)
+
+
+def unique_values(parts: dict[str, float]) -> int:
+    """Distinct resistor and capacitor values of one design (0 = absent part, not counted)."""
+    return int(unique_values_array({k: np.array([v], dtype=float) for k, v in parts.items()})[0])

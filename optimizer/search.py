@@ -32,8 +32,7 @@ from optuna.trial import TrialState
 from optimizer import robustness, scoring
 from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
 from optimizer.record import candidate_record, part_label, record_conditions
-from optimizer.scoring import pareto_mask
-from optimizer.bom import unique_values_array
+from optimizer.scoring import pareto_mask, unique_values_array
 from optimizer.catalog import Catalog, load_catalog
 from optimizer.devices import Device
 from optimizer.errors import InputError

@@ -15,7 +15,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from optimizer.bom import COLUMNS, MAX_UNITS, Kit, kit, unique_values, unique_values_array
+from optimizer.bom import COLUMNS, MAX_UNITS, Kit, kit
+from optimizer.scoring import unique_values, unique_values_array
 from optimizer.candidates import assess
 from optimizer.catalog import load_catalog
 from optimizer.errors import InputError
