@@ -33,11 +33,19 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
 
-# every benchmark in turn: each prints its figures and rewrites its results file in benchmarks/results/
-# (long: the search and reliability ones take tens of minutes; one alone: make bench BENCHES=models)
-BENCHES ?= bench_models spice_agreement bench_search bench_robustness bench_workers bench_api bench_pages bench_reliability
+# every benchmark in turn: each prints its figures (target, measured, met).
+# BENCH_MODE=full (default): every benchmark at its full sizes, each rewriting its results file in
+#   benchmarks/results/ (long: the search and reliability ones take tens of minutes);
+# BENCH_MODE=quick: a smoke run for a CI-sized machine (2 cores, under 5 minutes), small sizes, printed only.
+# One alone: make bench BENCHES=bench_models
+BENCH_MODE ?= full
+BENCHES_full := bench_startup bench_models spice_agreement bench_search bench_robustness bench_workers bench_api \
+    bench_pages bench_reliability
+BENCHES_quick := bench_startup bench_search bench_workers
+BENCHES ?= $(BENCHES_$(BENCH_MODE))
 bench: $(STAMP)
-	set -e; for b in $(BENCHES); do echo "== benchmarks/$$b.py"; $(BIN)/python benchmarks/$$b.py; done
+	set -e; for b in $(BENCHES); do echo "== benchmarks/$$b.py (BENCH_MODE=$(BENCH_MODE))"; \
+	    BENCH_MODE=$(BENCH_MODE) $(BIN)/python benchmarks/$$b.py; done
 
 # the REST fuzz at ten times the CI size (about 25,000 generated requests; benchmarks/results/reliability.md)
 fuzz: $(STAMP)

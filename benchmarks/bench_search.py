@@ -40,7 +40,6 @@ import argparse  # noqa: E402
 import cProfile  # noqa: E402
 import io  # noqa: E402
 import json  # noqa: E402
-import platform  # noqa: E402
 import pstats  # noqa: E402
 import resource  # noqa: E402
 import statistics  # noqa: E402
@@ -55,11 +54,13 @@ import numpy as np  # noqa: E402
 ROOT = Path(__file__).resolve().parent.parent
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(ROOT / "benchmarks"))
 
 import optuna  # noqa: E402
 from optuna.trial import TrialState  # noqa: E402
 
 import optimizer.search  # noqa: E402
+from run_facts import RunFacts, bench_mode  # noqa: E402
 
 search_module = sys.modules["optimizer.search"]  # the module (optimizer.search is also the API function)
 from optimizer.exhaustive import exhaustive  # noqa: E402
@@ -172,8 +173,9 @@ def run_random(spec: Spec, seed: int) -> tuple[list[dict], float]:
     return completed_records(storage, search_id), elapsed
 
 
-def run_default(spec: Spec) -> tuple[list[dict], float]:
-    """Optuna's default sampler, one design per trial, constraints by trial.set_constraint."""
+def run_default(spec: Spec, seed: int) -> tuple[list[dict], float]:
+    """Optuna's default sampler (the one create_study picks for these directions, given the
+    seed), one design per trial, constraints by trial.set_constraint."""
     space = SearchSpace.build(spec)
     directions = ["minimize" if d == "minimise" else "maximize" for _, d in spec.objective_directions]
     records: list[dict] = []
@@ -186,6 +188,7 @@ def run_default(spec: Spec) -> tuple[list[dict], float]:
 
     start = time.perf_counter()
     study = optuna.create_study(directions=directions)
+    study.sampler = type(study.sampler)(seed=seed)  # the default's class, seeded: runs are repeatable
     study.optimize(objective, n_trials=spec.search.trials)
     return records, time.perf_counter() - start
 
@@ -262,8 +265,8 @@ def bench_spec(path: Path, seeds: int, journal_seeds: int, default_seeds: int, r
     print(f"  random: hits {sum(r['hit'] for r in runs)}/{len(runs)}, median {median(times):.2f} s", flush=True)
 
     runs, times = [], []
-    for _ in range(default_seeds):
-        records, elapsed = run_default(spec)
+    for seed in range(default_seeds):
+        records, elapsed = run_default(spec, seed)
         runs.append(summarise(records, oracle, directions, ref))
         times.append(elapsed)
     out["methods"]["Optuna default"] = {"runs": runs, "times": times}
@@ -349,12 +352,10 @@ def fmt(x: float | None, spec: str = ".4f") -> str:
 
 
 def report(results: list[dict], oracle_big: dict | None, memory: dict | None, profile: dict | None,
-           seeds: int, load: tuple[float, float]) -> str:
-    lines = ["# Search benchmark", "",
-             f"Machine: {platform.machine()}, {os.cpu_count()} cores (shared with other engineers' test runs; "
-             f"load average {load[0]:.2f} at the start, {load[1]:.2f} at the end), Python "
-             f"{platform.python_version()}, numpy {np.__version__}, Optuna {optuna.__version__}, single-thread "
-             "BLAS. Produced by `benchmarks/bench_search.py` in one run; figures are medians.", "",
+           seeds: int, facts: RunFacts) -> str:
+    lines = ["# Search benchmark", "", *facts.markdown(),
+             "Single-thread BLAS. Produced by `benchmarks/bench_search.py` in one run; figures are medians "
+             "with (min..max) over the runs. Every baseline runs at least 3 seeds.", "",
              "Each spec (`benchmarks/specs/`) names one topology and one device, so the exhaustive oracle "
              "covers exactly the space searched. \"Hits\" counts runs whose best nominal score (max over "
              "trials of the trial record's `score`) is within 1 % of the oracle's best. Hypervolume (HV) is "
@@ -363,8 +364,8 @@ def report(results: list[dict], oracle_big: dict | None, memory: dict | None, pr
              "(ours: synthesis seeds count toward it). Time for our search is the search itself "
              "(create + run) without the finishing shortlist assessment, which is timed apart below.", "",
              "## Quality", "",
-             "| spec | space | oracle best (time) | budget | method | runs | hits | median best score | "
-             "median HV | median time (s) |",
+             "| spec | space | oracle best (time) | budget | method | runs | hits | median best score (min..max) | "
+             "median HV (min..max) | median time, s (min..max) |",
              "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
     for r in results:
         o = r["oracle"]
@@ -380,10 +381,14 @@ def report(results: list[dict], oracle_big: dict | None, memory: dict | None, pr
                 extra = " (feasible)" if m["feasible"] else f" (infeasible: {m['binding']})"
                 if m["notes"]:
                     extra += "; " + ", ".join(m["notes"])
+            bests = [x["best"] for x in runs]
+            spread_best = f" ({min(bests):.4f}..{max(bests):.4f})" if len(runs) > 1 else ""
+            spread_hv = f" ({100 * min(hvs):.1f}..{100 * max(hvs):.1f})" if len(hvs) > 1 else ""
+            spread_t = f" ({min(m['times']):.2f}..{max(m['times']):.2f})" if len(m["times"]) > 1 else ""
             cells = [head if k == 0 else " | | |", method, str(len(runs)),
-                     f"{sum(x['hit'] for x in runs)}/{len(runs)}", fmt(best) + extra,
-                     f"{100 * median(hvs):.1f} %" if hvs else "—",
-                     "—" if method == "hand method" else f"{median(m['times']):.2f}"]
+                     f"{sum(x['hit'] for x in runs)}/{len(runs)}", fmt(best) + spread_best + extra,
+                     f"{100 * median(hvs):.1f} %{spread_hv}" if hvs else "—",
+                     "—" if method == "hand method" else f"{median(m['times']):.2f}{spread_t}"]
             lines.append("| " + " | ".join(cells) + " |")
     beaten = [r["name"] for r in results for m in r["methods"].values() for x in m["runs"] if x["beats_oracle"]]
     if beaten:
@@ -455,13 +460,14 @@ def main() -> None:
     if args.memory_child:
         memory_child(args.memory_child, args.trials)
         return
-    load_start = os.getloadavg()[0]
+    facts = RunFacts.start()
     paths = sorted(SPECS.glob("*.yaml"))
+    args.quick = args.quick or bench_mode() == "quick"
     if args.quick:
         paths = [p for p in paths if p.stem in QUICK_SPECS]
-        seeds, journal_seeds, default_seeds, random_seeds, budget = 3, 1, 1, 2, QUICK_TRIALS
+        seeds, journal_seeds, default_seeds, random_seeds, budget = 3, 1, 3, 3, QUICK_TRIALS
     else:
-        seeds, journal_seeds, default_seeds, random_seeds, budget = SEEDS, 3, 1, 5, None
+        seeds, journal_seeds, default_seeds, random_seeds, budget = SEEDS, 3, 3, 5, None
     results = []
     with tempfile.TemporaryDirectory(prefix="bench-search-") as tmp:
         for path in paths:
@@ -470,7 +476,7 @@ def main() -> None:
     profile = profile_search(SPECS / f"{slowest['name']}.yaml", budget)
     memory = peak_memory(2_000 if args.quick else MEMORY_TRIALS)  # before the big oracle grows this process
     oracle_big = None if args.quick else oracle_alone()
-    text = report(results, oracle_big, memory, profile, seeds, (load_start, os.getloadavg()[0]))
+    text = report(results, oracle_big, memory, profile, seeds, facts)
     print("\n" + text)
     out = args.out or (None if args.quick else RESULTS)
     if out:

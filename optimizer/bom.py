@@ -36,12 +36,12 @@ import pandas as pd
 from optimizer.candidates import design_from_record
 from optimizer.catalog import VALUE_RTOL, Catalog, is_class2
 from optimizer.errors import InputError, Problem
+from optimizer.limits import MAX_UNITS
 from optimizer.netlist import dc_node_voltages, designators, element_nodes
 from optimizer.spec import Spec, spec_digest
 from optimizer.topologies import get_topology
 from optimizer.units import format_value
 
-MAX_UNITS = 100_000
 KIND_ORDER = ("resistor", "capacitor", "transistor")
 COLUMNS = ("designators", "kind", "roles", "part_id", "value", "label", "tolerance", "rating", "package",
            "technology", "polarised", "orientation", "qty_per_unit", "qty_total", "stock", "short_by",

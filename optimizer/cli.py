@@ -594,7 +594,7 @@ class _Parser(argparse.ArgumentParser):
 
 
 def _search_options(parser: argparse.ArgumentParser) -> None:
-    from optimizer.spec import MAX_TRIALS
+    from optimizer.limits import MAX_TRIALS
 
     parser.add_argument("--storage", default="runs/stagefit.journal",
                         help="where searches are kept: a journal file (default runs/stagefit.journal) "
@@ -608,9 +608,7 @@ def _search_options(parser: argparse.ArgumentParser) -> None:
 
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser of the `stagefit` command (sub-commands and options)."""
-    from optimizer.bom import MAX_UNITS
-    from optimizer.spec import MAX_SAMPLES, MAX_TOP
-    from optimizer.topologies import TOPOLOGIES
+    from optimizer.limits import MAX_SAMPLES, MAX_TOP, MAX_UNITS
 
     parser = _Parser(
         prog="stagefit", formatter_class=argparse.RawDescriptionHelpFormatter,
@@ -650,8 +648,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     evaluate = sub.add_parser("evaluate", help="metrics, spread, yield and ratings of a design you already have")
     evaluate.add_argument("spec", help="the spec that sets supply, source, load, band and limits")
-    evaluate.add_argument("--topology", required=True, help="one of " + ", ".join(TOPOLOGIES)
-                          + " (stagefit topologies describes them)")
+    evaluate.add_argument("--topology", required=True, help="a topology name, as `stagefit topologies` lists them")
     evaluate.add_argument("--set", action="append", default=[], metavar="ROLE=VALUE",
                           help="a part value, e.g. --set r_top=68k (repeat; capacitors left out are sized)")
     evaluate.add_argument("--device", default=None, help="transistor id (default: the spec's first device)")

@@ -13,7 +13,6 @@ from __future__ import annotations
 import html
 import math
 
-from optimizer import plots
 from optimizer.bom import Kit, NO_BASIS, kit
 from optimizer.candidates import assess, design_from_record
 from optimizer.catalog import Catalog
@@ -162,6 +161,8 @@ def design_sheet(candidate: dict, spec: Spec, catalog: Catalog, *, units: int = 
     ratings = [[k, show(k, r["value"]), show(k, r["limit"]), f"{100 * r['value'] / r['limit']:.0f} %"]
                for k, r in record.get("ratings", {}).items()]
     bom_rows = [[str("" if v is None else v) for v in line.values()] for line in bill.to_dict()["lines"]]
+    from optimizer import plots  # matplotlib: imported by the one function that draws
+
     response = plots.response_plot(record, fmt="svg").decode()
     transfer = plots.transfer_plot(record, fmt="svg", spec_swing=spec.limits.swing_min).decode()
     cautions = "".join(f"<li>{html.escape(c)}</li>" for c in bill.cautions)

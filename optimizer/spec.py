@@ -19,6 +19,7 @@ from pydantic import (BaseModel, BeforeValidator, ConfigDict, Field, ValidationE
                       ValidationInfo, WithJsonSchema, field_validator, model_validator)
 
 from optimizer.errors import InputError, Problem
+from optimizer.limits import MAX_BATCH, MAX_DESCRIPTION, MAX_NAME, MAX_SAMPLES, MAX_TOP, MAX_TRIALS  # noqa: F401 (re-exported)
 from optimizer.eseries import SERIES
 from optimizer.metrics import METRICS
 from optimizer.topologies import TOPOLOGIES
@@ -31,13 +32,6 @@ METRIC_DIRECTIONS = {m.key: m.direction for m in METRICS if m.direction}
 DIRECTION_ALIASES = {"minimise": "minimise", "minimize": "minimise", "min": "minimise",
                       "maximise": "maximise", "maximize": "maximise", "max": "maximise"}
 NOMINAL_TEMPERATURE_C = 27.0
-# bounds on what a spec may ask for (documented in the README's operations section)
-MAX_TRIALS = 1_000_000  # trials in one search
-MAX_BATCH = 1024  # trials asked and evaluated together (memory grows with it)
-MAX_NAME = 200  # characters in a spec name
-MAX_DESCRIPTION = 4000  # characters in a spec description
-MAX_SAMPLES = 20_000  # Monte Carlo builds of one evaluated design
-MAX_TOP = 1000  # ranked designs shown or returned at once
 DEFAULT_SUPPLY_TOLERANCE = 0.05  # a bare supply voltage is taken as +-5 % (common practice for a regulated rail)
 ROBUSTNESS_BASES = ("yield", "worst_case", "nominal")
 SUPPLY_CURRENT_BOUND = 1.0  # A: far above any small-signal stage; a larger limit is a unit slip ("3 MA")

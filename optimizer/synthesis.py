@@ -14,8 +14,6 @@ import math
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
-from scipy.optimize import brentq
-
 from optimizer import eseries
 from optimizer.errors import InputError
 
@@ -65,7 +63,13 @@ def centred_collector_resistor(req: HandRequirements, r_emitter_dc: float = 0.0)
             f"a supply that can bias {req.collector_current * 1e3:.3g} mA at the centre of the load line",
             title="hand method has no solution",
         )
-    rc = brentq(centre, 1.0, upper, xtol=1e-6)
+    # centre(rc) * (rc + RL) / Ic is the quadratic rc^2 + b*rc + c*RL with c = (Ic*Re_dc - Vcc +
+    # Vce_sat)/Ic < 0 here, so it has exactly one positive root (the one bracketed above);
+    # closed form, so a search's seeds need no SciPy import (tests/test_evaluate.py checks it
+    # against scipy.optimize.brentq on the same function).
+    c = r_emitter_dc - (req.supply - req.vce_sat) / ic
+    b = rl * (2.0 + 1.0 / req.gain) + c
+    rc = (-b + math.sqrt(b * b - 4.0 * c * rl)) / 2.0
     return rc, parallel(rc, rl) / req.gain
 
 

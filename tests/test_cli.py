@@ -83,3 +83,33 @@ def test_serve_open_names_the_page_to_open(monkeypatch) -> None:
     monkeypatch.setattr(api.server, "serve", lambda host, port, **kw: seen.append(kw["open_path"]))
     assert main(["serve", "--open"]) == 0 and main(["serve", "--open", "s-1234"]) == 0 and main(["serve"]) == 0
     assert seen == ["/", "/searches/s-1234", None]
+
+
+def test_help_imports_none_of_the_heavy_libraries() -> None:
+    """`stagefit --help` builds the whole parser without Optuna, SciPy, pandas, pydantic,
+    matplotlib or Flask (start-up time: benchmarks/bench_startup.py). Checked in a fresh
+    interpreter, since this one has imported them already."""
+    import subprocess
+    import sys
+
+    heavy = ("optuna", "scipy", "pandas", "pydantic", "matplotlib", "flask", "sqlalchemy")
+    code = ("import sys\nfrom optimizer.cli import build_parser\nbuild_parser().format_help()\n"
+            f"print(','.join(m for m in {heavy!r} if m in sys.modules))")
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                          cwd=Path(__file__).resolve().parent.parent)
+    assert done.stdout.strip() == "", f"imported for --help: {done.stdout.strip()}"
+
+
+def test_package_names_are_the_api_functions_after_lazy_import() -> None:
+    """optimizer's names load on first use, and `optimizer.search` stays the API function even
+    after the submodule of the same name is imported (as the eager package import gave it)."""
+    import importlib
+
+    import optimizer
+
+    module = importlib.import_module("optimizer.search")
+    assert optimizer.search is module.search and callable(optimizer.search)
+    from optimizer import assess, load_spec  # noqa: F401  (each resolves to its module's function)
+    assert optimizer.assess is importlib.import_module("optimizer.candidates").assess
+    with pytest.raises(AttributeError):
+        optimizer.no_such_name  # noqa: B018

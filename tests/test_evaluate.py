@@ -74,3 +74,26 @@ def test_a_metric_close_to_its_limit_gets_a_caution() -> None:
                       "swing_min": 0.95 * swing}
     near = assess(parse_spec(data), catalog, topology, parts, samples=50)
     assert any("swing_vpp is within" in note for note in near["cautions"])
+
+
+@pytest.mark.parametrize("supply,gain,load,current,r_emitter_dc", [
+    (12.0, 10.0, 47e3, 1e-3, 0.0), (9.0, 3.0, 10e3, 0.5e-3, 470.0), (24.0, 40.0, 2.2e3, 2e-3, 1e3),
+    (5.0, 1.5, 100e3, 0.1e-3, 0.0), (15.0, 20.0, 600.0, 5e-3, 100.0)])
+def test_centred_collector_resistor_matches_a_bracketing_root_finder(supply, gain, load, current,
+                                                                     r_emitter_dc) -> None:
+    """The closed-form centre of the AC load line equals the root scipy.optimize.brentq (a
+    general-purpose reference library) finds of the same centre condition."""
+    from scipy.optimize import brentq
+
+    from optimizer.synthesis import HandRequirements, centred_collector_resistor, parallel
+
+    req = HandRequirements(supply=supply, gain=gain, load_impedance=load, collector_current=current)
+
+    def centre(rc: float) -> float:  # Ic*Rac = Vce_q - Vce_sat, written out again
+        rac = parallel(rc, load)
+        return current * rac - (supply - current * (rc + rac / gain + r_emitter_dc) - req.vce_sat)
+
+    rc, re_ac = centred_collector_resistor(req, r_emitter_dc)
+    expected = brentq(centre, 1.0, supply / current, xtol=1e-9)
+    assert rc == pytest.approx(expected, rel=1e-9)
+    assert re_ac == pytest.approx(parallel(expected, load) / gain, rel=1e-9)

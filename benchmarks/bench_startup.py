@@ -1,0 +1,164 @@
+"""Start-up and end-to-end wall time as a user meets them: process start to last byte.
+
+    .venv/bin/python benchmarks/bench_startup.py               # -> benchmarks/results/startup.md
+    BENCH_MODE=quick .venv/bin/python benchmarks/bench_startup.py   # fewer repeats, one spec, prints only
+
+Every figure is a fresh process timed from outside (``subprocess``, monotonic clock):
+
+- ``stagefit --help``, against a bare ``python -c pass`` on the same interpreter;
+- ``stagefit search`` start-up: process start to its first stderr line ("no stored search
+  of this spec ...: running one"), which it prints after reading and validating the spec
+  and catalog and opening the storage, just before the first trial;
+- ``stagefit search`` end to end on the default storage (a journal file; ``--fresh``),
+  process start to exit with all of stdout read;
+- the library call ``optimizer.search(spec)`` (in memory) end to end in a fresh process,
+  and the time of the call alone as the child measures it.
+
+Each is repeated (median, min..max); the search runs use seeds 0, 1, 2, ... Also the
+largest top-level imports of ``stagefit search`` (``python -X importtime``).
+"""
+from __future__ import annotations
+
+import json
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT / "benchmarks"))
+
+from run_facts import RunFacts, bench_mode  # noqa: E402
+
+RESULTS = ROOT / "benchmarks" / "results" / "startup.md"
+PYTHON = sys.executable
+STAGEFIT = [PYTHON, "-m", "optimizer.cli"]
+TARGETS = {"help": 0.3, "search_startup": 0.8, "end_to_end_4k": 5.0}
+TRIALS = 4000
+SPECS = {"quick": ["specs/contact_pickup_buffer.yaml"],
+         "full": ["specs/contact_pickup_buffer.yaml", "specs/bench_stock_preamp.yaml"]}
+REPEATS = {"quick": 3, "full": 5}
+
+
+def timed(cmd: list[str]) -> tuple[float, float | None, str]:
+    """(seconds to exit with stdout read, seconds to the first stderr line or None, stdout)."""
+    start = time.monotonic()
+    proc = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    first = None
+    err = []
+    for line in proc.stderr:  # stdout is small for these commands: the pipe does not fill
+        if first is None:
+            first = time.monotonic() - start
+        err.append(line)
+    out = proc.stdout.read()
+    code = proc.wait()
+    total = time.monotonic() - start
+    if code not in (0, 3):  # 3: answered, nothing meets every limit
+        raise RuntimeError(f"{' '.join(cmd)} exited {code}: {''.join(err)[-2000:]}")
+    if "Traceback" in "".join(err):
+        raise RuntimeError(f"traceback from {' '.join(cmd)}: {''.join(err)[-2000:]}")
+    return total, first, out
+
+
+def spread(xs: list[float]) -> str:
+    return f"{statistics.median(xs):.2f} ({min(xs):.2f}..{max(xs):.2f}, n={len(xs)})"
+
+
+def library_child(spec: str, trials: int, seed: int) -> list[str]:
+    code = ("import time, json\nstart = time.monotonic()\n"
+            "from optimizer import load_spec, search\nfrom optimizer.search import with_search\n"
+            "imported = time.monotonic()\n"
+            f"result = search(with_search(load_spec({spec!r}), trials={trials}, seed={seed}))\n"
+            "print(json.dumps({'imports': imported - start, 'call': time.monotonic() - imported, "
+            "'best': result.candidates[0]['score']}))")
+    return [PYTHON, "-c", code]
+
+
+def top_imports(spec: str, storage: Path, count: int = 8) -> list[tuple[float, str]]:
+    """The largest top-level imports (cumulative seconds) of one `stagefit search` run."""
+    done = subprocess.run([PYTHON, "-X", "importtime", "-m", "optimizer.cli", "search", spec, "--storage",
+                           str(storage), "--trials", "64", "--fresh", "--quiet"], cwd=ROOT,
+                          capture_output=True, text=True)
+    rows = []
+    for line in done.stderr.splitlines():
+        if not line.startswith("import time:") or "|" not in line:
+            continue
+        _, cumulative, name = line.split("|")
+        if name.startswith(" ") and not name.startswith("  "):  # depth 1: imported by the program itself
+            try:
+                rows.append((int(cumulative) / 1e6, name.strip()))
+            except ValueError:
+                continue
+    return sorted(rows, reverse=True)[:count]
+
+
+def main() -> int:
+    mode = bench_mode()
+    facts = RunFacts.start()
+    repeats = REPEATS[mode]
+    tmp = Path(tempfile.mkdtemp(prefix="bench-startup-"))
+    bare = [timed([PYTHON, "-c", "pass"])[0] for _ in range(repeats + 2)]
+    helps = [timed([*STAGEFIT, "--help"])[0] for _ in range(repeats + 2)]
+    print(f"python -c pass {spread(bare)} s; stagefit --help {spread(helps)} s", flush=True)
+    rows = []
+    for spec in SPECS[mode]:
+        startups, totals, lib_totals, lib_calls, lib_imports = [], [], [], [], []
+        for seed in range(repeats):
+            total, first, _ = timed([*STAGEFIT, "search", spec, "--storage", str(tmp / f"s{seed}.journal"),
+                                     "--trials", str(TRIALS), "--seed", str(seed), "--fresh"])
+            startups.append(first)
+            totals.append(total)
+            lib_total, _, out = timed(library_child(spec, TRIALS, seed))
+            child = json.loads(out.strip().splitlines()[-1])
+            lib_totals.append(lib_total)
+            lib_calls.append(child["call"])
+            lib_imports.append(child["imports"])
+            print(f"  {spec} seed {seed}: CLI start-up {first:.2f} s, end to end {total:.2f} s; "
+                  f"library end to end {lib_total:.2f} s (call {child['call']:.2f} s)", flush=True)
+        rows.append((spec, startups, totals, lib_totals, lib_calls, lib_imports))
+    imports = top_imports(SPECS[mode][0], tmp / "imports.journal")
+
+    met = lambda ok: "met" if ok else "**missed**"  # noqa: E731
+    worst_startup = max(statistics.median(r[1]) for r in rows)
+    worst_total = max(statistics.median(r[2]) for r in rows)
+    lines = ["# Start-up and end-to-end wall time", "",
+             f"`benchmarks/bench_startup.py`, BENCH_MODE={mode}. Every time is a fresh process measured from "
+             "outside, process start to last byte; median (min..max, n runs). Searches: "
+             f"{TRIALS:,} trials, seeds 0..{repeats - 1}, the CLI on a new journal file (its default storage "
+             "kind) with `--fresh`, the library call `optimizer.search(spec)` in memory.", ""]
+    lines += facts.markdown("pandas", "pydantic", "scipy")
+    lines += ["## Targets", "", "| target | measured (s) | met |", "| --- | --- | --- |",
+              f"| `stagefit --help` < {TARGETS['help']} s | {spread(helps)} | "
+              f"{met(statistics.median(helps) < TARGETS['help'])} |",
+              f"| `stagefit search` start-up < {TARGETS['search_startup']} s (worst spec's median) | "
+              f"{worst_startup:.2f} | {met(worst_startup < TARGETS['search_startup'])} |",
+              f"| {TRIALS:,}-trial answer end to end < {TARGETS['end_to_end_4k']} s on the default storage "
+              f"(`stagefit search`, worst spec's median) | {worst_total:.2f} | "
+              f"{met(worst_total < TARGETS['end_to_end_4k'])} |", "",
+              f"For scale: a bare `python -c pass` on this interpreter takes {spread(bare)} s.", "",
+              "## Per spec", "",
+              "| spec | `stagefit search` start-up | `stagefit search` end to end | library: imports | "
+              "library: search() call | library: process end to end |",
+              "| --- | --- | --- | --- | --- | --- |"]
+    for spec, startups, totals, lib_totals, lib_calls, lib_imports in rows:
+        lines.append(f"| {Path(spec).name} | {spread(startups)} | {spread(totals)} | {spread(lib_imports)} | "
+                     f"{spread(lib_calls)} | {spread(lib_totals)} |")
+    lines += ["", "## Largest top-level imports of `stagefit search` (`python -X importtime`, one run)", "",
+              "| cumulative s | module |", "| ---: | --- |"]
+    lines += [f"| {s:.3f} | {name} |" for s, name in imports]
+    lines += ["", "Plotting (matplotlib), the server (Flask, waitress) and SQLAlchemy are imported only by the "
+              "commands that use them; `--help` imports none of Optuna, SciPy, pandas or pydantic "
+              "(tests/test_cli.py checks it). A search needs numpy, pandas (the catalog), pydantic (the "
+              "spec) and Optuna."]
+    text = "\n".join(lines) + "\n"
+    print(text)
+    if mode == "full":  # the quick mode is a smoke run on a CI-sized machine: printed only
+        RESULTS.write_text(text)
+        print(f"wrote {RESULTS}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
