@@ -771,7 +771,7 @@ def main(argv: Sequence[str] | None = None) -> int:
 def _environmental(error: BaseException) -> bool:
     """A storage or operating-system failure (exit code 4)."""
     return isinstance(error, (StorageError, OSError, MemoryError)) or \
-        type(error).__module__.split(".")[0] in ("sqlalchemy", "psycopg")
+        type(error).__module__.split(".")[0] in ("sqlalchemy", "psycopg", "redis", "grpc")
 
 
 if __name__ == "__main__":

@@ -6,6 +6,10 @@
   machine through its file lock; about ten times faster per trial than SQLite here).
 - ``sqlite:///...``, ``postgresql://...`` and any other SQLAlchemy URL: Optuna's RDB
   storage, the shared deployment that any number of workers join.
+- ``redis://host:port/db``: Optuna's journal on a Redis server (:mod:`optimizer.redis_journal`),
+  the fastest shared storage (benchmarks/results/workers.md); ``make cluster`` runs it.
+- ``grpc://host:port``: Optuna's gRPC storage proxy (a server in front of an RDB storage,
+  started with ``optuna.storages.run_grpc_proxy_server``); measured, not chosen.
 
 Storages are cached per URL within a process, so the journal is replayed once.
 
@@ -86,6 +90,7 @@ _lock = threading.Lock()
 _claim_files: "weakref.WeakKeyDictionary[BaseStorage, Path]" = weakref.WeakKeyDictionary()
 _journal_backends: "weakref.WeakKeyDictionary[BaseStorage, _BatchSyncedJournal]" = weakref.WeakKeyDictionary()
 _claim_locks: dict[str, threading.Lock] = {}
+_redis_backends: "weakref.WeakKeyDictionary[BaseStorage, object]" = weakref.WeakKeyDictionary()
 HEARTBEAT_INTERVAL = 10  # s between heartbeats of a running trial (STAGEFIT_HEARTBEAT_INTERVAL)
 GRACE_PERIOD = 30  # s without a heartbeat before a running trial is failed (STAGEFIT_GRACE_PERIOD)
 MAX_RETRY = 3  # times a failed (stale) trial is queued again
@@ -314,6 +319,28 @@ def _journal(path: Path) -> BaseStorage:
     return storage
 
 
+def _redis(url: str) -> BaseStorage:
+    from optimizer.redis_journal import RedisJournal
+
+    backend = RedisJournal(url)
+    storage = optuna.storages.journal.JournalStorage(backend)
+    _redis_backends[storage] = backend
+    return storage
+
+
+def _grpc(url: str) -> BaseStorage:
+    from urllib.parse import urlsplit
+
+    parts = urlsplit(url)
+    try:
+        port = parts.port
+    except ValueError:
+        port = None
+    if not parts.hostname or port is None:
+        raise InputError.single("storage", url, "grpc://host:port, the address of an Optuna gRPC storage proxy")
+    return optuna.storages.GrpcStorageProxy(host=parts.hostname, port=port)
+
+
 def sync(storage: BaseStorage) -> None:
     """Make what a runner wrote durable (a journal file's once-per-batch fsync; databases
     commit every write themselves)."""
@@ -390,7 +417,7 @@ def runner_id() -> str:
 def claim_batch(storage: BaseStorage, search_id: str) -> Iterator[None]:
     """Hold the search's claim: one runner at a time counts the trials and asks its batch,
     across the threads of this process and the processes sharing ``storage`` (a PostgreSQL
-    advisory lock, or a lock file beside a journal), so that parallel runners never ask more
+    advisory lock, a lock file beside a journal, or a lock on the journal's Redis server), so that parallel runners never ask more
     trials than the budget has left. A killed holder's claim is released with its connection
     or file descriptor."""
     with _lock:
@@ -410,6 +437,11 @@ def claim_batch(storage: BaseStorage, search_id: str) -> Iterator[None]:
                 raise
             finally:
                 conn.close()
+        elif storage in _redis_backends:
+            from optimizer.redis_journal import redis_claim
+
+            with redis_claim(_redis_backends[storage], search_id):
+                yield
         elif storage in _claim_files:
             with open(_claim_files[storage], "a") as handle:
                 fcntl.flock(handle, fcntl.LOCK_EX)
@@ -482,9 +514,13 @@ def open_storage(url: str | Path | None) -> BaseStorage:
                 _cache[text] = _journal(Path(text[len("journal://"):]))
             elif scheme in _RDB_SCHEMES:
                 _cache[text] = _rdb(text)
+            elif scheme in ("redis", "rediss"):
+                _cache[text] = _redis(text)
+            elif scheme == "grpc":
+                _cache[text] = _grpc(text)
             elif scheme:
-                raise InputError.single("storage", text, "a journal file path, journal:///path, sqlite:///path "
-                                        "or postgresql://user@host/db")
+                raise InputError.single("storage", text, "a journal file path, journal:///path, sqlite:///path, "
+                                        "postgresql://user@host/db, redis://host:port/db or grpc://host:port")
             else:
                 _cache[text] = _journal(Path(text))
         return _cache[text]

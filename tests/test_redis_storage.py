@@ -1,0 +1,116 @@
+"""The Redis journal (``redis://`` storages, optimizer/redis_journal.py) against a real redis-server.
+
+References outside the project: Optuna's own ``JournalRedisBackend`` reads what ours writes and
+the other way round (same key layout), and a search on Redis ranks exactly as the same search
+in memory. Skipped where Debian's redis-server is absent, unless CI is set (.ci/run installs it).
+"""
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import optuna
+import pytest
+from optuna.trial import TrialState
+
+from optimizer.search import create_search, load_search, open_storage, run_search
+from optimizer.spec import parse_spec
+from pg_fixture import stop_processes
+from redis_fixture import ThrowawayRedis
+
+ROOT = Path(__file__).resolve().parent.parent
+pytestmark = pytest.mark.filterwarnings("ignore::optuna.exceptions.ExperimentalWarning")
+SPEC = {"name": "redis storage check", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"},
+        "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
+        "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
+        "topologies": ["divider_ce"], "parts": {"resistor_series": "E3", "resistor_range": ["1k", "100k"]},
+        "search": {"trials": 96, "seed": 3, "batch_size": 16}}
+
+
+@pytest.fixture(scope="module")
+def redis_url():
+    server = ThrowawayRedis()
+    if server.binary is None:
+        if os.environ.get("CI"):
+            pytest.fail("redis-server required in CI (.ci/run installs Debian's redis-server)")
+        pytest.skip("no redis-server on this machine (Debian: apt-get install redis-server)")
+    url = server.start()
+    try:
+        yield url
+    finally:
+        server.stop()
+
+
+def _db(url: str, number: int) -> str:
+    return url.rsplit("/", 1)[0] + f"/{number}"
+
+
+def test_records_read_back_by_optuna_s_own_backend_and_the_other_way(redis_url):
+    from optimizer.redis_journal import READ_CHUNK, RedisJournal
+
+    ours = RedisJournal(_db(redis_url, 1), prefix="t")
+    theirs = optuna.storages.journal.JournalRedisBackend(_db(redis_url, 1), prefix="t")
+    batch = [{"op_code": 0, "worker_id": "w", "n": i, "text": "é\n\"quoted\""} for i in range(READ_CHUNK + 5)]
+    ours.append_logs(batch[:3])
+    ours.append_logs(batch[3:])  # two appends, more records than one read chunk
+    theirs.append_logs([{"op_code": 1, "worker_id": "x", "n": -1}])
+    expected = batch + [{"op_code": 1, "worker_id": "x", "n": -1}]
+    assert list(theirs.read_logs(0)) == expected
+    assert list(ours.read_logs(0)) == expected
+    assert list(ours.read_logs(READ_CHUNK + 4)) == expected[READ_CHUNK + 4:]
+    assert list(ours.read_logs(len(expected))) == []
+    assert list(RedisJournal(_db(redis_url, 1), prefix="empty").read_logs(0)) == []
+
+
+def test_a_search_on_redis_ranks_as_the_same_search_in_memory(redis_url):
+    spec = parse_spec(SPEC)
+    ranked = {}
+    for name, url in (("memory", None), ("redis", _db(redis_url, 2))):
+        storage = open_storage(url)
+        search_id = create_search(spec, storage)
+        run_search(storage, search_id)
+        ranked[name] = [(c["topology"], {r: p["value"] for r, p in c["parts"].items()}, round(c["score"], 9),
+                         c["feasible"]) for c in load_search(storage, search_id).candidates]
+    assert ranked["memory"] and ranked["memory"] == ranked["redis"]
+
+
+def test_the_claim_excludes_a_second_holder_until_released(redis_url):
+    from optimizer.redis_journal import RedisJournal, redis_claim
+
+    one, other = RedisJournal(_db(redis_url, 3)), RedisJournal(_db(redis_url, 3))
+    with redis_claim(one, "s1"):
+        rival = other.client.lock(":claim:s1", timeout=5)
+        assert not rival.acquire(blocking=False)
+    assert rival.acquire(blocking=False)
+    rival.release()
+
+
+def test_two_worker_processes_finish_exactly_the_budget(redis_url, tmp_path):
+    url = _db(redis_url, 4)
+    spec = parse_spec({**SPEC, "search": {**SPEC["search"], "trials": 128, "batch_size": 8}})
+    search_id = create_search(spec, open_storage(url))
+    logs = [tmp_path / f"worker-{i}.log" for i in (1, 2)]
+    procs = [subprocess.Popen([sys.executable, "-m", "optimizer.cli", "worker", "--storage", url, "--once",
+                               "--poll", "0.2"], cwd=ROOT, stdout=log.open("w"), stderr=subprocess.STDOUT,
+                              env={**os.environ, "PYTHONPATH": str(ROOT)}) for log in logs]
+    try:
+        codes = [p.wait(timeout=600) for p in procs]
+    finally:
+        stop_processes(procs)
+    assert codes == [0, 0], [log.read_text()[-2000:] for log in logs]
+    for log in logs:
+        assert "Traceback" not in log.read_text(), log.read_text()[-2000:]
+    study = optuna.load_study(study_name=search_id, storage=open_storage(url))
+    states = [t.state for t in study.get_trials(deepcopy=False)]
+    assert states.count(TrialState.COMPLETE) == spec.search.trials  # exactly the budget, never more
+    assert TrialState.RUNNING not in states
+    assert study.user_attrs["status"] == "done"
+
+
+def test_a_storage_url_without_a_port_names_the_field():
+    from optimizer.errors import InputError
+
+    with pytest.raises(InputError, match="storage"):
+        open_storage("grpc://nohost")
