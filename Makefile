@@ -51,7 +51,7 @@ bench: $(STAMP)
 fuzz: $(STAMP)
 	STAGEFIT_FUZZ_EXAMPLES=800 $(BIN)/python -m pytest -q -s tests/test_api_server.py -k fuzz
 
-# PostgreSQL + API server + two workers on this machine, for trying a shared deployment
+# Redis (the shared storage) + two workers + one queued search on this machine: trials/s per worker, logs checked
 cluster: $(STAMP)
 	bash scripts/try_cluster.sh
 

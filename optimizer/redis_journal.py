@@ -102,3 +102,37 @@ def redis_claim(journal: RedisJournal, name: str) -> Iterator[None]:
             lock.release()
         except LockError:  # lapsed after CLAIM_TTL (the holder stalled): another runner may hold it now
             pass
+
+
+class RunnerLiveness:
+    """Which runner holds which running trial, and which runners are alive, kept on the Redis
+    server beside the journal (not in it: no journal record per beat). A runner's key
+    ``<prefix>:alive:<runner>`` expires ``grace`` seconds after its last beat; a running trial
+    whose holder's key has expired belonged to a runner that died, and is failed by the next
+    batch of any runner (``storage.fail_stale_trials``), so the search's budget asks a new one."""
+
+    def __init__(self, journal: RedisJournal, runner: str, grace: int) -> None:
+        self._client = journal.client
+        self._prefix = journal.prefix
+        self._runner = runner
+        self._grace = grace
+
+    def hold(self, trial_id: int) -> None:
+        """Record this runner as the holder of ``trial_id`` and that it is alive."""
+        with self._client.pipeline(transaction=False) as pipe:
+            pipe.hset(f"{self._prefix}:holder", str(trial_id), self._runner)
+            pipe.set(f"{self._prefix}:alive:{self._runner}", 1, ex=self._grace)
+            pipe.execute()
+
+    def beat(self) -> None:
+        self._client.set(f"{self._prefix}:alive:{self._runner}", 1, ex=self._grace)
+
+    def dead(self, trial_ids: list[int]) -> list[int]:
+        """The trials among ``trial_ids`` whose recorded holder is no longer alive."""
+        if not trial_ids:
+            return []
+        holders = self._client.hmget(f"{self._prefix}:holder", [str(t) for t in trial_ids])
+        known = [(t, h.decode()) for t, h in zip(trial_ids, holders) if h is not None]
+        runners = sorted({h for _, h in known})
+        alive = dict(zip(runners, self._client.mget([f"{self._prefix}:alive:{r}" for r in runners]))) if runners else {}
+        return [t for t, h in known if alive.get(h) is None]

@@ -385,7 +385,18 @@ def fail_stale_trials(study: optuna.Study, storage: BaseStorage) -> None:
     check and retry callback). A runner killed between asking a trial and recording its first
     heartbeat leaves a running trial Optuna never finds stale; such a trial, older than the
     grace period (by this machine's clock) and still without a heartbeat, is given one here,
-    so it goes stale and is retried one grace period later. A no-op without heartbeats."""
+    so it goes stale and is retried one grace period later. On a journal on Redis, the running
+    trials whose holder's liveness key has expired are failed (the budget asks new ones in
+    their place). A no-op without heartbeats."""
+    liveness = _liveness(storage)
+    if liveness is not None:  # journal on Redis: runners' liveness kept on the server
+        running = study.get_trials(deepcopy=False, states=(optuna.trial.TrialState.RUNNING,))
+        for dead in liveness.dead([trial_id(t) for t in running]):
+            try:
+                storage.set_trial_state_values(dead, optuna.trial.TrialState.FAIL)
+            except (RuntimeError, ValueError):  # finished or failed by another runner meanwhile
+                pass
+        return
     rdb = unwrapped(storage)  # the RDB storage under Optuna's cache
     if not (isinstance(rdb, optuna.storages.RDBStorage) and is_heartbeat_enabled(rdb)):
         return
@@ -406,6 +417,17 @@ def fail_stale_trials(study: optuna.Study, storage: BaseStorage) -> None:
     for number in unbeaten:
         rdb.record_heartbeat(number)
     optuna.storages.fail_stale_trials(study)
+
+
+def _liveness(storage: BaseStorage):
+    """The runner liveness of a journal on Redis (this process as the runner), else None."""
+    backend = _redis_backends.get(storage)
+    if backend is None:
+        return None
+    from optimizer.redis_journal import RunnerLiveness
+
+    interval = _seconds("STAGEFIT_HEARTBEAT_INTERVAL", HEARTBEAT_INTERVAL)
+    return RunnerLiveness(backend, runner_id(), _seconds("STAGEFIT_GRACE_PERIOD", max(GRACE_PERIOD, 3 * interval)))
 
 
 def runner_id() -> str:
@@ -456,12 +478,14 @@ def claim_batch(storage: BaseStorage, search_id: str) -> Iterator[None]:
 class TrialHeartbeat:
     """Heartbeats for the running trials of one batch, where the storage keeps them (RDB):
     :meth:`add` records one at once (a trial asked without a heartbeat would never be found
-    stale), and a thread records all of them every heartbeat interval until :meth:`close`.
-    A no-op for storages without heartbeats (journal, memory)."""
+    stale), and a thread records all of them every heartbeat interval until :meth:`close`. On
+    a journal on Redis, the runner's liveness key on the server instead (:class:`RunnerLiveness`).
+    A no-op for storages without heartbeats (journal file, memory)."""
 
     def __init__(self, storage: BaseStorage) -> None:
         self._storage = storage
         self._enabled = is_heartbeat_enabled(storage)
+        self._liveness = _liveness(storage)
         self._trial_ids: list[int] = []
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
@@ -469,7 +493,12 @@ class TrialHeartbeat:
     def add(self, trial: optuna.Trial) -> optuna.Trial:
         """Record the trial's first heartbeat and which runner holds it (system attr
         ``runner``: host:pid), so a dead worker's trials can be told apart."""
-        if self._enabled:
+        if self._liveness is not None:
+            self._liveness.hold(trial_id(trial))
+            if self._thread is None:
+                self._thread = threading.Thread(target=self._beat, name="trial-heartbeat", daemon=True)
+                self._thread.start()
+        elif self._enabled:
             self._storage.record_heartbeat(trial_id(trial))
             self._storage.set_trial_system_attr(trial_id(trial), "runner", runner_id())
             self._trial_ids.append(trial_id(trial))
@@ -479,6 +508,14 @@ class TrialHeartbeat:
         return trial
 
     def _beat(self) -> None:
+        if self._liveness is not None:
+            interval = _seconds("STAGEFIT_HEARTBEAT_INTERVAL", HEARTBEAT_INTERVAL)
+            while not self._stop.wait(interval):
+                try:
+                    self._liveness.beat()
+                except Exception:  # the server away for a moment: the next beat tries again
+                    log.warning("heartbeat of runner %s not recorded", runner_id(), exc_info=True)
+            return
         interval = self._storage.get_heartbeat_interval()
         while not self._stop.wait(interval):
             for number in list(self._trial_ids):

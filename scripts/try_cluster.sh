@@ -1,105 +1,88 @@
 #!/usr/bin/env bash
-# Try a shared deployment on one machine: PostgreSQL (a throwaway cluster in ./runs/pg),
-# one API server that only queues searches, and two workers that run them, all on
-# 127.0.0.1. Prints the URLs; Ctrl-C stops everything (the database stays in ./runs/pg
-# for the next run; delete that folder to start afresh).
+# A shared deployment on one machine, end to end: a Redis server (Debian's redis-server, data and
+# append-only file in ./runs/redis), CLUSTER_WORKERS `stagefit worker` processes, and one search
+# queued on it. Waits until the workers have finished the search, prints the trials/s of the whole
+# and per worker, checks every log for a traceback, then stops everything it started.
 #
 #   scripts/try_cluster.sh            # or: make cluster
-#   CLUSTER_WORKERS=4 CLUSTER_API_PORT=8800 scripts/try_cluster.sh
+#   CLUSTER_WORKERS=4 CLUSTER_TRIALS=4000 CLUSTER_SPEC=specs/bench_stock_preamp.yaml scripts/try_cluster.sh
+#   CLUSTER_KEEP=1 scripts/try_cluster.sh   # leave Redis running afterwards (for more workers, the API server)
 #
-# Needs .venv (make demo) and PostgreSQL's server binaries (Debian: apt-get install postgresql).
+# Needs .venv (make demo) and redis-server (Debian: apt-get install redis-server).
+# Workers on other machines: DEVELOPERS.md, "Shared deployments".
 set -euo pipefail
 cd "$(dirname "$0")/.."
 ROOT=$(pwd)
 
-PG_PORT=${CLUSTER_PG_PORT:-55432}
-API_PORT=${CLUSTER_API_PORT:-8750}
+PORT=${CLUSTER_REDIS_PORT:-56379}
 WORKERS=${CLUSTER_WORKERS:-2}
-RUN=$ROOT/runs/pg
+SPEC=${CLUSTER_SPEC:-benchmarks/specs/bs_e96_divider_buffer.yaml}  # E96, Monte Carlo screen on
+TRIALS=${CLUSTER_TRIALS:-2000}
+RUN=$ROOT/runs/redis
 BIN=$ROOT/.venv/bin
-DB=stagefit
 
 [ -x "$BIN/stagefit" ] || { echo "no .venv/bin/stagefit: run 'make demo' first" >&2; exit 1; }
-PG_BIN=""
-if compgen -G "/usr/lib/postgresql/*/bin/initdb" >/dev/null; then
-    PG_BIN=/usr/lib/postgresql/$(ls /usr/lib/postgresql | sort -n | tail -n 1)/bin
-elif command -v initdb >/dev/null; then
-    PG_BIN=$(dirname "$(command -v initdb)")
-fi
-[ -n "$PG_BIN" ] || { echo "no PostgreSQL server binaries (initdb): apt-get install postgresql" >&2; exit 1; }
-
-# The server refuses to run as root: as root, run it as the postgres user.
-AS_PG=()
-if [ "$(id -u)" = 0 ]; then AS_PG=(runuser -u postgres --); fi
+command -v redis-server >/dev/null || { echo "no redis-server: apt-get install redis-server" >&2; exit 1; }
 
 mkdir -p "$RUN"
-[ ${#AS_PG[@]} -eq 0 ] || chown postgres "$RUN"
 pids=()
-started_pg=""
+redis_pid=""
 stop_all() {
     trap - INT TERM EXIT
-    echo
-    echo "stopping..."
     for pid in "${pids[@]}"; do kill -TERM "$pid" 2>/dev/null || true; done
     for pid in "${pids[@]}"; do wait "$pid" 2>/dev/null || true; done
-    if [ -n "$started_pg" ]; then
-        "${AS_PG[@]}" "$PG_BIN/pg_ctl" -D "$RUN/data" -m fast -w stop >/dev/null || true
+    if [ -n "$redis_pid" ] && [ -z "${CLUSTER_KEEP:-}" ]; then
+        kill -TERM "$redis_pid" 2>/dev/null || true
+        wait "$redis_pid" 2>/dev/null || true
     fi
-    echo "stopped (database kept in runs/pg)"
 }
 trap stop_all INT TERM EXIT
 
-if [ ! -s "$RUN/data/PG_VERSION" ]; then
-    echo "creating a PostgreSQL cluster in runs/pg/data"
-    "${AS_PG[@]}" "$PG_BIN/initdb" -D "$RUN/data" -U postgres --auth=trust -E UTF8 --locale=C >/dev/null
-fi
-if "${AS_PG[@]}" "$PG_BIN/pg_ctl" -D "$RUN/data" status >/dev/null 2>&1; then
-    echo "PostgreSQL already running in runs/pg/data: reusing it"
-else
-    "${AS_PG[@]}" "$PG_BIN/pg_ctl" -D "$RUN/data" -l "$RUN/server.log" -w \
-        -o "-c listen_addresses=127.0.0.1 -p $PG_PORT -k $RUN" start >/dev/null
-    started_pg=1
-fi
-PSQL=("${AS_PG[@]}" "$PG_BIN/psql" -X -q -h 127.0.0.1 -p "$PG_PORT" -U postgres)
-if [ -z "$("${PSQL[@]}" -d postgres -tAc "SELECT 1 FROM pg_database WHERE datname = '$DB'")" ]; then
-    "${PSQL[@]}" -d postgres -c "CREATE DATABASE $DB"
-fi
+# Redis with the append-only file on (fsync every second): the storage survives a restart.
+redis-server --port "$PORT" --bind 127.0.0.1 --dir "$RUN" --appendonly yes --appendfsync everysec \
+    --save "" --daemonize no --logfile "$RUN/redis.log" &
+redis_pid=$!
+STORAGE="redis://127.0.0.1:$PORT/0"
+for _ in $(seq 1 100); do
+    redis-cli -p "$PORT" ping >/dev/null 2>&1 && break
+    kill -0 "$redis_pid" 2>/dev/null || { echo "redis-server exited; see runs/redis/redis.log" >&2; exit 1; }
+    sleep 0.1
+done
 
-STORAGE="postgresql://postgres@127.0.0.1:$PG_PORT/$DB"
-export STAGEFIT_STORAGE="$STORAGE"
+# One search queued on the shared storage (the workers run it), a fresh seed-0 copy each time.
+SEARCH=$("$BIN/python" - "$STORAGE" "$SPEC" "$TRIALS" <<'PY'
+import sys, uuid
+from optimizer.search import create_search, open_storage, with_search
+from optimizer.spec import load_spec
+storage, spec, trials = sys.argv[1], sys.argv[2], int(sys.argv[3])
+print(create_search(with_search(load_spec(spec), trials=trials, seed=0), open_storage(storage),
+                    search_id=f"cluster-{uuid.uuid4().hex[:8]}"))
+PY
+)
+echo "search $SEARCH ($SPEC, $TRIALS trials) queued on $STORAGE; starting $WORKERS workers"
 
-# The API server only queues searches; the workers run their trials.
-STAGEFIT_QUEUE_ONLY=1 "$BIN/stagefit" serve --storage "$STORAGE" --host 127.0.0.1 --port "$API_PORT" \
-    >"$ROOT/runs/api.log" 2>&1 &
-pids+=($!)
+start=$(date +%s.%N)
 for i in $(seq 1 "$WORKERS"); do
-    "$BIN/stagefit" worker --storage "$STORAGE" >"$ROOT/runs/worker-$i.log" 2>&1 &
+    "$BIN/stagefit" worker --storage "$STORAGE" --once --poll 0.2 >"$ROOT/runs/worker-$i.log" 2>&1 &
     pids+=($!)
 done
+status=0
+for pid in "${pids[@]}"; do wait "$pid" || status=$?; done
+pids=()
+end=$(date +%s.%N)
 
-for _ in $(seq 1 50); do  # up to ~10 s for the API to answer
-    if "$BIN/python" - "$API_PORT" <<'PY' 2>/dev/null
-import sys, urllib.request
-urllib.request.urlopen(f"http://127.0.0.1:{sys.argv[1]}/healthz", timeout=1).read()
+"$BIN/python" - "$STORAGE" "$SEARCH" "$start" "$end" "$WORKERS" "$status" <<'PY'
+import pathlib, sys
+from optimizer.search import open_storage, search_status
+storage, search, start, end, workers, status = sys.argv[1], sys.argv[2], float(sys.argv[3]), float(sys.argv[4]), int(sys.argv[5]), int(sys.argv[6])
+state = search_status(open_storage(storage), search)
+wall = end - start
+done = state["trials_done"]
+logs = sorted(pathlib.Path("runs").glob("worker-*.log"))[:workers]
+bad = [str(p) for p in logs if "Traceback" in p.read_text()]
+print(f"search {search}: {state['status']}, {done} trials in {wall:.1f} s (worker start-up and the "
+      f"finishing step included): {done / wall:.1f} trials/s with {workers} workers, "
+      f"{done / wall / workers:.1f} trials/s per worker")
+print("worker logs: " + ("no traceback" if not bad else "TRACEBACK in " + ", ".join(bad)))
+sys.exit(1 if bad or status or state["status"] != "done" else 0)
 PY
-    then break; fi
-    for pid in "${pids[@]}"; do
-        kill -0 "$pid" 2>/dev/null || { echo "a process exited early; see runs/api.log and runs/worker-*.log" >&2; exit 1; }
-    done
-    sleep 0.2
-done
-
-cat <<EOF
-
-  PostgreSQL  $STORAGE   (data and log in runs/pg)
-  API server  http://127.0.0.1:$API_PORT/v1/   (log: runs/api.log; queues only)
-  workers     $WORKERS x stagefit worker --storage $STORAGE   (logs: runs/worker-N.log)
-
-  Try:  curl -s -X POST -H 'Content-Type: application/yaml' --data-binary @specs/contact_pickup_buffer.yaml \\
-             http://127.0.0.1:$API_PORT/v1/searches
-        curl -s http://127.0.0.1:$API_PORT/v1/searches
-        $BIN/stagefit worker --storage $STORAGE     # one more worker, from any shell
-
-  Ctrl-C stops everything.
-EOF
-wait

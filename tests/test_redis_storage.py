@@ -114,3 +114,33 @@ def test_a_storage_url_without_a_port_names_the_field():
 
     with pytest.raises(InputError, match="storage"):
         open_storage("grpc://nohost")
+
+
+def test_a_killed_worker_s_trials_are_failed_and_the_budget_still_met(redis_url, tmp_path, monkeypatch):
+    """SIGKILL a worker mid-search: its running trials are failed once its liveness key lapses
+    (grace 3 s here) and another runner finishes exactly the budget."""
+    import signal
+    import time
+
+    monkeypatch.setenv("STAGEFIT_HEARTBEAT_INTERVAL", "1")
+    monkeypatch.setenv("STAGEFIT_GRACE_PERIOD", "3")
+    url = _db(redis_url, 5)
+    spec = parse_spec({**SPEC, "search": {**SPEC["search"], "trials": 64, "batch_size": 8}})
+    storage = open_storage(url)
+    search_id = create_search(spec, storage)
+    study = optuna.load_study(study_name=search_id, storage=storage)
+    # a runner that asks a batch, is recorded as its holder, and dies before telling it
+    code = ("import os, optuna\nfrom optimizer.storage import open_storage, TrialHeartbeat\n"
+            f"s = open_storage({url!r})\nst = optuna.load_study(study_name={search_id!r}, storage=s)\n"
+            "hb = TrialHeartbeat(s)\n[hb.add(st.ask()) for _ in range(8)]\nprint('asked', flush=True)\n"
+            "os.kill(os.getpid(), 9)")
+    done = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True,
+                          env={**os.environ, "PYTHONPATH": str(ROOT)}, timeout=300)
+    assert done.returncode == -signal.SIGKILL and "asked" in done.stdout, done.stderr[-2000:]
+    assert sum(t.state == TrialState.RUNNING for t in study.get_trials(deepcopy=False)) == 8
+    time.sleep(4)  # the dead runner's liveness key lapses
+    run_search(storage, search_id)
+    states = [t.state for t in study.get_trials(deepcopy=False)]
+    assert states.count(TrialState.COMPLETE) == spec.search.trials
+    assert states.count(TrialState.FAIL) == 8 and TrialState.RUNNING not in states
+    assert study.user_attrs["status"] == "done"
