@@ -36,7 +36,8 @@ test: $(STAMP)
 # every benchmark in turn: each prints its figures (target, measured, met).
 # BENCH_MODE=full (default): every benchmark at its full sizes, each rewriting its results file in
 #   benchmarks/results/ (long: the search and reliability ones take tens of minutes);
-# BENCH_MODE=quick: a smoke run for a CI-sized machine (2 cores, under 5 minutes), small sizes, printed only.
+# BENCH_MODE=quick: a smoke run for a CI-sized machine (2 cores, under 5 minutes), small sizes (a results file
+#   names the mode it was made in; the quick search benchmark prints only).
 # One alone: make bench BENCHES=bench_models
 BENCH_MODE ?= full
 BENCHES_full := bench_startup bench_models spice_agreement bench_search bench_robustness bench_workers bench_api \
