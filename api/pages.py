@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import math
 from functools import lru_cache
-from pathlib import Path
 from typing import Any
 
 import yaml
@@ -25,6 +24,7 @@ from flask import Blueprint, Response, jsonify, render_template, request, url_fo
 
 from api import routes
 from api.problems import ApiProblem
+from optimizer.bundled import example_names, example_path
 from optimizer.errors import Problem
 
 blueprint = Blueprint("pages", __name__, template_folder="templates", static_folder="static",
@@ -34,7 +34,6 @@ blueprint = Blueprint("pages", __name__, template_folder="templates", static_fol
 PUBLIC_ENDPOINTS = frozenset({"pages.spec_page", "pages.searches_page", "pages.search_page",
                               "pages.design_page", "pages.compare_page", "pages.static",
                               "pages.palette_css"})
-EXAMPLES_DIR = Path(__file__).resolve().parents[1] / "specs"
 TABLE_ROWS = 50  # ranked designs in the search page's table
 FRONT_POINTS = 250  # designs drawn on the search page's front (the front's own points always are)
 LIST_ROWS = 30  # searches on the searches page
@@ -132,16 +131,12 @@ for _filter in (metric_label, metric_text, quantity_text, basis_label):
 
 # --- page shells (public: no data) ---------------------------------------------------------
 
-def _examples() -> list[str]:
-    return sorted(p.stem for p in EXAMPLES_DIR.glob("*.yaml")) if EXAMPLES_DIR.is_dir() else []
-
-
 @blueprint.get("/")
 def spec_page() -> str:
     from optimizer.catalog import list_catalogs
     from optimizer.spec import METRIC_DIRECTIONS
 
-    return render_template("spec.html", fields=SPEC_FIELDS, examples=_examples(), catalogs=list_catalogs(),
+    return render_template("spec.html", fields=SPEC_FIELDS, examples=example_names(), catalogs=list_catalogs(),
                            series=SERIES, metrics=tuple(METRIC_DIRECTIONS), title="New search")
 
 
@@ -192,9 +187,10 @@ def _html(text: str) -> Response:
 @blueprint.get("/ui/examples/<name>")
 def example(name: str) -> Response:
     """An example spec from specs/: its YAML text and the mapping as written."""
-    if name not in _examples():  # a name from the list, never a path
-        raise routes._not_found("example", name, "one of " + ", ".join(_examples()))
-    text = (EXAMPLES_DIR / f"{name}.yaml").read_text(encoding="utf-8")
+    path = example_path(name)  # a name from the list, never a path
+    if path is None:
+        raise routes._not_found("example", name, "one of " + ", ".join(example_names()))
+    text = path.read_text(encoding="utf-8")
     return jsonify({"name": name, "yaml": text, "spec": yaml.safe_load(text)})
 
 

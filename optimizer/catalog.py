@@ -11,7 +11,6 @@ from __future__ import annotations
 import csv
 import functools
 import math
-import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -21,12 +20,11 @@ import pandas as pd
 import yaml
 
 from optimizer import eseries
+from optimizer.bundled import catalog_dir
 from optimizer.errors import InputError, Problem
 from optimizer.units import parse_quantity
 
-CATALOG_DIR: Path = Path(
-    os.environ.get("STAGEFIT_CATALOG_DIR") or Path(__file__).resolve().parent.parent / "parts_catalogs"
-)
+CATALOG_DIR: Path = catalog_dir()  # the checkout's parts_catalogs/ or the installed package's
 
 VALUE_RTOL = 1e-6  # two part values closer than this (relative) are the same value
 

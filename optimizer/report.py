@@ -13,7 +13,6 @@ from __future__ import annotations
 import html
 import math
 
-from optimizer import plots
 from optimizer.bom import Kit, NO_BASIS, kit
 from optimizer.candidates import assess, design_from_record
 from optimizer.catalog import Catalog
@@ -141,6 +140,8 @@ def _margins(candidate: dict, spec: Spec, currency: str) -> list[list[str]]:
 
 def design_sheet(candidate: dict, spec: Spec, catalog: Catalog, *, units: int = 1) -> str:
     """The self-contained HTML design sheet of ``candidate`` (inline SVG plots)."""
+    from optimizer import plots  # matplotlib is the optional [plots] extra: imported only here
+
     record = _full(candidate, spec, catalog)
     bill = kit(record, catalog, units, spec)
     topology, parts, _, _ = design_from_record(record)

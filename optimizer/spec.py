@@ -597,17 +597,22 @@ def parse_spec(data: dict, *, source: str = "<spec>") -> Spec:
 
 def load_spec(path: str | Path) -> Spec:
     """Read a YAML or JSON spec file and validate it (through the bounded loader of
-    :mod:`optimizer.documents`, the same one the REST service uses)."""
+    :mod:`optimizer.documents`, the same one the REST service uses). A bare name that is no
+    file but names a bundled example spec (``"contact_pickup_buffer"``) loads that example."""
+    from optimizer.bundled import example_names, example_path
     from optimizer.documents import MAX_BYTES, parse_document
 
     path = Path(path)
+    if not path.exists() and (example := example_path(str(path))) is not None:
+        path = example
     try:
         if path.stat().st_size > MAX_BYTES:
             raise InputError.single(str(path), f"{path.stat().st_size} bytes",
                                     f"a spec file of at most {MAX_BYTES} bytes", "cannot read spec")
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
-        raise InputError.single(str(path), str(path), f"a readable UTF-8 spec file ({exc})",
+        raise InputError.single(str(path), str(path), f"a readable UTF-8 spec file ({exc}), or the name of a bundled "
+                                f"example: {', '.join(example_names()) or '(none installed)'}",
                                 "cannot read spec") from None
     data = parse_document(text, str(path), yaml_ok=path.suffix.lower() != ".json")
     return parse_spec(data, source=str(path))
