@@ -5,7 +5,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test fuzz bench clean cluster
+.PHONY: demo test lint typecheck fuzz bench clean cluster
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -32,6 +32,15 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
+
+# ruff: the lint rules and the format of pyproject.toml ([tool.ruff])
+lint: $(STAMP)
+	$(BIN)/ruff check .
+	$(BIN)/ruff format --check .
+
+# mypy over the package and the service ([tool.mypy] in pyproject.toml)
+typecheck: $(STAMP)
+	$(BIN)/mypy
 
 # every benchmark in turn: each prints its figures and rewrites its results file in benchmarks/results/
 # (long: the search and reliability ones take tens of minutes; one alone: make bench BENCHES=models)

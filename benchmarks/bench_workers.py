@@ -169,7 +169,7 @@ def main() -> int:
               "user attr, constraint, heartbeat and runner attr is a round trip). Profiled (cProfile, "
               "256 trials, batch 32): ask ~31 %, suggest ~23 %, tell ~16 %, system attrs (constraint, "
               "runner) ~14 %, heartbeats ~5 %, evaluation ~2 %.",
-              f"- Per-trial storage overhead against the journal file: the 'overhead' column "
+              "- Per-trial storage overhead against the journal file: the 'overhead' column "
               "(PostgreSQL minus journal, per trial); the journal keeps the study in memory and appends.",
               f"- Batch size: {best_batch} was fastest in this run (8 and 32 are within the noise of a shared machine; 128 is clearly slower). Small batches pay the per-batch steps "
               "(stale-trial check, counts, claim) more often; large ones pay more, because each ask and "

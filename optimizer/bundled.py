@@ -6,6 +6,7 @@ carries the same files inside the package as ``optimizer/parts_catalogs`` and
 repository). These functions find them in either place: the installed folder when it is there,
 else the checkout's.
 """
+
 from __future__ import annotations
 
 import os

@@ -16,9 +16,9 @@ from optimizer.devices import Device
 from optimizer.errors import InputError, Problem
 from optimizer.metrics import LIMIT_METRICS
 from optimizer.record import candidate_record, part_label, record_conditions
+from optimizer.robustness import FINAL_BUILDS, basis_label, judge
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import NOMINAL_TEMPERATURE_C, Spec
-from optimizer.robustness import FINAL_BUILDS, basis_label, judge
 from optimizer.tolerance import worst_case
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions, Topology

@@ -42,7 +42,7 @@ def is_class2(dielectric: object) -> bool:
     return str(dielectric).strip().lower() in CLASS2_DIELECTRICS
 
 
-def _cell_quantity(unit: str, *, positive: bool = True) -> Callable[[str, str], float]:
+def _cell_quantity(unit: str | None, *, positive: bool = True) -> Callable[[str, str], float]:
     """Parser for a required physical quantity in ``unit`` (SI, no prefix)."""
 
     def parse(text: str, where: str) -> float:
@@ -54,7 +54,7 @@ def _cell_quantity(unit: str, *, positive: bool = True) -> Callable[[str, str], 
     return parse
 
 
-def _cell_optional_quantity(unit: str, *, positive: bool = False) -> Callable[[str, str], float]:
+def _cell_optional_quantity(unit: str | None, *, positive: bool = False) -> Callable[[str, str], float]:
     """Parser for an optional quantity in ``unit`` (SI, no prefix), >= 0 (> 0 with ``positive``);
     an empty cell is NaN (not given)."""
     required = _cell_quantity(unit, positive=False)
@@ -387,7 +387,7 @@ def _in_stock(frame: pd.DataFrame) -> np.ndarray:
 
 def _row_dict(row: pd.Series) -> dict:
     """A DataFrame row as plain Python values (missing stock -> None)."""
-    out = {}
+    out: dict[str, object] = {}
     for key, value in row.items():
         if pd.isna(value):
             out[key] = None

@@ -250,9 +250,20 @@ def _run_or_reuse(args: argparse.Namespace, spec):
     and budget) was searched before, resumed when it was interrupted, run otherwise."""
     from optuna.exceptions import DuplicatedStudyError
 
-    from optimizer.search import (INTERRUPTED, create_search, delete_search, extend_search, fail_search,
-                                  list_searches, load_search, open_storage, run_search, search_status,
-                                  spec_search_id, with_search)
+    from optimizer.search import (
+        INTERRUPTED,
+        create_search,
+        delete_search,
+        extend_search,
+        fail_search,
+        list_searches,
+        load_search,
+        open_storage,
+        run_search,
+        search_status,
+        spec_search_id,
+        with_search,
+    )
 
     spec = with_search(spec, trials=args.trials, seed=args.seed)
     storage = open_storage(args.storage)

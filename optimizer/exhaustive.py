@@ -24,6 +24,7 @@ cannot rule out the rest), so the answer stays exact.
 from __future__ import annotations
 
 from dataclasses import dataclass
+
 import numpy as np
 
 from optimizer.errors import InputError

@@ -13,11 +13,11 @@ from __future__ import annotations
 import html
 import math
 
-from optimizer.bom import Kit, NO_BASIS, kit
+from optimizer.bom import NO_BASIS, Kit, kit
 from optimizer.candidates import assess, design_from_record
 from optimizer.catalog import Catalog
-from optimizer.netlist import dc_node_voltages, designators, element_nodes
 from optimizer.metrics import LIMIT_METRICS, METRICS
+from optimizer.netlist import dc_node_voltages, designators, element_nodes
 from optimizer.spec import Spec, spec_digest
 from optimizer.tolerance import worst_case
 from optimizer.units import format_value

@@ -15,8 +15,17 @@ import math
 from pathlib import Path
 from typing import Annotated, Any, Callable, Literal
 
-from pydantic import (BaseModel, BeforeValidator, ConfigDict, Field, ValidationError,
-                      ValidationInfo, WithJsonSchema, field_validator, model_validator)
+from pydantic import (
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    ValidationError,
+    ValidationInfo,
+    WithJsonSchema,
+    field_validator,
+    model_validator,
+)
 
 from optimizer.errors import InputError, Problem
 from optimizer.eseries import SERIES

@@ -25,9 +25,9 @@ import inspect
 import json
 import logging
 import os
+import shutil
 import socket
 import threading
-import shutil
 import warnings
 import weakref
 from contextlib import contextmanager
@@ -45,6 +45,7 @@ from optuna.storages import BaseStorage
 # is_heartbeat_enabled: whether a storage records heartbeats; public Optuna only runs
 # heartbeats inside Study.optimize, and our batches (ask/tell) record their own.
 from optuna.storages._heartbeat import is_heartbeat_enabled
+
 # BaseJournalFileLock, get_lock_file: the journal's lock interface, so the journal can take a
 # kernel flock (released when its holder dies) instead of Optuna's lock files; the public
 # JournalFileBackend accepts a lock object but the base class to write one is private.

@@ -99,9 +99,8 @@ def test_ctrl_c_fails_the_running_trials_and_the_search_resumes(tmp_path) -> Non
     import sys
     import time
 
-    from optimizer.search import open_storage, search_status
+    from optimizer.search import open_storage, search_status, spec_search_id, with_search
     from optimizer.spec import load_spec
-    from optimizer.search import spec_search_id, with_search
 
     journal = tmp_path / "runs.journal"
     spec_file = Path(__file__).resolve().parents[1] / "specs" / "line_driver_24v.yaml"

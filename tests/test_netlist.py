@@ -12,9 +12,9 @@ from types import SimpleNamespace
 
 import pytest
 
+import spice_harness as sh
 from optimizer.errors import InputError
 from optimizer.netlist import MODEL_KEYS, spice_netlist
-import spice_harness as sh
 
 MODEL = {"IS": 1e-14, "BF": 200.0, "NF": 1.0, "VAF": 100.0, "RB": 10.0,
          "CJE": 8e-12, "CJC": 4e-12, "TF": 4e-10}

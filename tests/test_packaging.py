@@ -6,6 +6,7 @@ index in an isolated build environment) and installed into a fresh virtual envir
 folder; the runtime dependencies come from this test's own environment through a path file, so no
 dependency is downloaded twice.
 """
+
 from __future__ import annotations
 
 import os
@@ -30,20 +31,36 @@ def installed(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path, str
     """(the wheel, the venv's bin folder, the build's output): the wheel built from the checkout and
     installed into a fresh venv outside it."""
     base = tmp_path_factory.mktemp("wheel")
-    built = _run([sys.executable, "-m", "pip", "wheel", "--no-deps", "--quiet", "-w", str(base / "dist"), str(ROOT)],
-                 cwd=base)
+    built = _run(
+        [sys.executable, "-m", "pip", "wheel", "--no-deps", "--quiet", "-w", str(base / "dist"), str(ROOT)], cwd=base
+    )
     assert built.returncode == 0, built.stderr
     (wheel,) = (base / "dist").glob("stagefit-*.whl")
     venv = base / "venv"
     made = _run([sys.executable, "-m", "venv", "--without-pip", str(venv)], cwd=base)
     assert made.returncode == 0, made.stderr
     bin_dir = venv / ("Scripts" if os.name == "nt" else "bin")
-    purelib = Path(_run([str(bin_dir / "python"), "-c", "import sysconfig; print(sysconfig.get_paths()['purelib'])"],
-                        cwd=base).stdout.strip())
+    purelib = Path(
+        _run(
+            [str(bin_dir / "python"), "-c", "import sysconfig; print(sysconfig.get_paths()['purelib'])"], cwd=base
+        ).stdout.strip()
+    )
     # the dependencies: this environment's site-packages, after the venv's own (the wheel's code wins)
     (purelib / "_stagefit_test_deps.pth").write_text(sysconfig.get_paths()["purelib"] + "\n", encoding="utf-8")
-    install = _run([sys.executable, "-m", "pip", "--python", str(bin_dir / "python"), "install", "--no-deps",
-                    "--no-index", str(wheel)], cwd=base)
+    install = _run(
+        [
+            sys.executable,
+            "-m",
+            "pip",
+            "--python",
+            str(bin_dir / "python"),
+            "install",
+            "--no-deps",
+            "--no-index",
+            str(wheel),
+        ],
+        cwd=base,
+    )
     assert install.returncode == 0, install.stderr
     return wheel, bin_dir, built.stdout + built.stderr + install.stdout + install.stderr
 
@@ -54,7 +71,9 @@ def _tracked(folder: str) -> set[str]:
     listed = _run(["git", "ls-files", folder], cwd=ROOT)
     if listed.returncode == 0 and listed.stdout.strip():
         return set(listed.stdout.split())
-    return {str(p.relative_to(ROOT)) for p in (ROOT / folder).rglob("*") if p.is_file() and "__pycache__" not in p.parts}
+    return {
+        str(p.relative_to(ROOT)) for p in (ROOT / folder).rglob("*") if p.is_file() and "__pycache__" not in p.parts
+    }
 
 
 def test_wheel_holds_every_module_catalog_and_example(installed: tuple[Path, Path, str]) -> None:
@@ -67,8 +86,11 @@ def test_wheel_holds_every_module_catalog_and_example(installed: tuple[Path, Pat
     assert expected, "found no source files"
     missing = sorted(expected - names)
     assert not missing, f"not in the wheel: {missing}"
-    assert {"optimizer/parts_catalogs/bench_stock/transistors.csv", "optimizer/specs/contact_pickup_buffer.yaml",
-            "api/templates/spec.html"} <= names
+    assert {
+        "optimizer/parts_catalogs/bench_stock/transistors.csv",
+        "optimizer/specs/contact_pickup_buffer.yaml",
+        "api/templates/spec.html",
+    } <= names
     # the repository holds one copy: nothing was generated into the package folder of the checkout
     assert not (ROOT / "optimizer" / "parts_catalogs").exists() and not (ROOT / "optimizer" / "specs").exists()
 
@@ -79,21 +101,33 @@ def test_build_and_install_print_no_warning_banner(installed: tuple[Path, Path, 
         assert banner not in output, output
 
 
-def test_installed_wheel_searches_a_bundled_spec_by_name(installed: tuple[Path, Path, str],
-                                                          tmp_path: Path) -> None:
+def test_installed_wheel_searches_a_bundled_spec_by_name(installed: tuple[Path, Path, str], tmp_path: Path) -> None:
     _, bin_dir, _ = installed
     where = _run([str(bin_dir / "python"), "-c", "import optimizer; print(optimizer.__file__)"], cwd=tmp_path)
     assert Path(where.stdout.strip()).is_relative_to(bin_dir.parent), where  # the wheel's code, not the checkout's
     catalogs = _run([str(bin_dir / "stagefit"), "catalogs"], cwd=tmp_path)
     assert catalogs.returncode == 0, catalogs.stderr
     assert "bench_stock" in catalogs.stdout and "eseries_full" in catalogs.stdout
-    found = _run([str(bin_dir / "stagefit"), "search", "bench_stock_preamp", "--trials", "48", "--top", "3",
-                  "--quiet", "--storage", str(tmp_path / "searches.journal")], cwd=tmp_path)
+    found = _run(
+        [
+            str(bin_dir / "stagefit"),
+            "search",
+            "bench_stock_preamp",
+            "--trials",
+            "48",
+            "--top",
+            "3",
+            "--quiet",
+            "--storage",
+            str(tmp_path / "searches.journal"),
+        ],
+        cwd=tmp_path,
+    )
     # 0: a design meets the spec; 3: the nearest misses are listed (48 trials may not be enough)
     assert found.returncode in (0, 3), found.stdout + found.stderr
     lines = found.stdout.splitlines()
     header = next(i for i, line in enumerate(lines) if line.startswith("rank"))
-    ranks = [line.split()[0] for line in lines[header + 1:] if line[:1].isdigit()]
+    ranks = [line.split()[0] for line in lines[header + 1 :] if line[:1].isdigit()]
     assert ranks == ["1", "2", "3"], found.stdout
     missing = _run([str(bin_dir / "stagefit"), "check", "no_such_example"], cwd=tmp_path)
     assert missing.returncode == 2 and "contact_pickup_buffer" in missing.stderr, missing.stderr

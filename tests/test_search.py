@@ -5,9 +5,21 @@ import numpy as np
 import pytest
 
 from optimizer.errors import InputError
-from optimizer.search import (SearchSpace, cancel_search, create_search, evaluate_designs, extend_search,
-                              list_searches, load_search, open_storage, pareto_mask, rank_records, run_search,
-                              search, search_status)
+from optimizer.search import (
+    SearchSpace,
+    cancel_search,
+    create_search,
+    evaluate_designs,
+    extend_search,
+    list_searches,
+    load_search,
+    open_storage,
+    pareto_mask,
+    rank_records,
+    run_search,
+    search,
+    search_status,
+)
 from optimizer.spec import load_spec, parse_spec
 
 SMALL = {"name": "small", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"},
