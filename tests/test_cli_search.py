@@ -50,7 +50,7 @@ def test_json_candidates_follow_the_documented_shape(workspace: Path, capsys) ->
                 "worst_case", "violations"):
         assert key in first
     assert first["rank"] == 1 and set(first["transistor"]["model"]) >= {"IS", "BF", "VAF"}
-    assert all(set(p) >= {"value", "label", "part_id"} for p in first["parts"].values())
+    assert first["parts"] and all(set(p) >= {"value", "label", "part_id"} for p in first["parts"].values())
 
 
 def test_csv_and_markdown(workspace: Path, capsys) -> None:
