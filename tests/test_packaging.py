@@ -10,6 +10,7 @@ dependency is downloaded twice.
 from __future__ import annotations
 
 import os
+import shutil
 import subprocess
 import sys
 import sysconfig
@@ -31,8 +32,14 @@ def installed(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path, str
     """(the wheel, the venv's bin folder, the build's output): the wheel built from the checkout and
     installed into a fresh venv outside it."""
     base = tmp_path_factory.mktemp("wheel")
+    # built from the files a clone has (git's list: tracked and not ignored), copied out of the checkout,
+    # so a stray local file or a build/ folder left in the checkout cannot reach the wheel
+    source = base / "source"
+    for name in _source_files():
+        (source / name).parent.mkdir(parents=True, exist_ok=True)
+        shutil.copy2(ROOT / name, source / name)
     built = _run(
-        [sys.executable, "-m", "pip", "wheel", "--no-deps", "--quiet", "-w", str(base / "dist"), str(ROOT)], cwd=base
+        [sys.executable, "-m", "pip", "wheel", "--no-deps", "--quiet", "-w", str(base / "dist"), str(source)], cwd=base
     )
     assert built.returncode == 0, built.stderr
     (wheel,) = (base / "dist").glob("stagefit-*.whl")
@@ -65,15 +72,14 @@ def installed(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, Path, str
     return wheel, bin_dir, built.stdout + built.stderr + install.stdout + install.stderr
 
 
-def _tracked(folder: str) -> set[str]:
-    """Files of ``folder`` in the checkout, as paths relative to the repository root (git's list when
-    this is a git checkout, so stray local files do not count)."""
-    listed = _run(["git", "ls-files", folder], cwd=ROOT)
+def _source_files(folder: str = ".") -> set[str]:
+    """Files of ``folder`` in the checkout as a clone has them, as paths relative to the repository root
+    (git's list of tracked and not-ignored files; every file but caches where git is absent)."""
+    listed = _run(["git", "ls-files", "--cached", "--others", "--exclude-standard", folder], cwd=ROOT)
     if listed.returncode == 0 and listed.stdout.strip():
-        return set(listed.stdout.split())
-    return {
-        str(p.relative_to(ROOT)) for p in (ROOT / folder).rglob("*") if p.is_file() and "__pycache__" not in p.parts
-    }
+        return {name for name in listed.stdout.splitlines() if (ROOT / name).is_file()}
+    skip = {"__pycache__", ".git", ".venv", "build", ".mypy_cache", ".ruff_cache", ".pytest_cache"}
+    return {str(p.relative_to(ROOT)) for p in (ROOT / folder).rglob("*") if p.is_file() and not skip & set(p.parts)}
 
 
 def test_wheel_holds_every_module_catalog_and_example(installed: tuple[Path, Path, str]) -> None:
@@ -81,8 +87,8 @@ def test_wheel_holds_every_module_catalog_and_example(installed: tuple[Path, Pat
     names = set(zipfile.ZipFile(wheel).namelist())
     # hand-built expectation: every source file of the two packages at its own path, the two data folders
     # moved inside the package; a subpackage missing from pyproject.toml's list shows up here
-    expected = {p for p in _tracked("optimizer") | _tracked("api") if not p.endswith(".md")}
-    expected |= {"optimizer/" + p for p in _tracked("parts_catalogs") | _tracked("specs")}
+    expected = {p for p in _source_files("optimizer") | _source_files("api") if not p.endswith(".md")}
+    expected |= {"optimizer/" + p for p in _source_files("parts_catalogs") | _source_files("specs")}
     assert expected, "found no source files"
     missing = sorted(expected - names)
     assert not missing, f"not in the wheel: {missing}"
