@@ -16,10 +16,10 @@ import numpy as np
 import pytest
 
 from optimizer.bom import COLUMNS, MAX_UNITS, Kit, kit
-from optimizer.scoring import unique_values, unique_values_array
 from optimizer.candidates import assess
 from optimizer.catalog import load_catalog
 from optimizer.errors import InputError
+from optimizer.scoring import unique_values, unique_values_array
 from optimizer.spec import load_spec
 
 ROOT = Path(__file__).resolve().parent.parent
