@@ -160,8 +160,9 @@ def design_page(search_id: str, rank: int) -> str:
 
 @blueprint.get("/compare")
 def compare_page() -> str:
+    chosen: dict[str, Any] = request.args.to_dict()  # the designs to compare, passed on to the fragment
     return render_template("shell.html", title="Compare designs",
-                           source=url_for("pages.compare_fragment", **request.args))
+                           source=url_for("pages.compare_fragment", **chosen))
 
 
 @blueprint.get("/palette.css")
@@ -232,11 +233,12 @@ def front_svg(search_id: str, result: Any) -> dict:
         m = c.get("metrics") or {}
         x = m.get(x_metric)
         y = m.get(y_metric) if y_metric else c.get("rank")
-        ok = all(isinstance(v, (int, float)) and math.isfinite(v) for v in (x, y))
-        return (x * _axis(x_metric)[1], y * (_axis(y_metric)[1] if y_metric else 1.0)) if ok else None
+        if not (isinstance(x, (int, float)) and isinstance(y, (int, float)) and math.isfinite(x) and math.isfinite(y)):
+            return None
+        return x * _axis(x_metric)[1], y * (_axis(y_metric)[1] if y_metric else 1.0)
 
-    placed = [(c, coords(c)) for c in shown]
-    placed = [(c, xy) for c, xy in placed if xy is not None and abs(xy[0]) < 1e11 and abs(xy[1]) < 1e11]
+    located = [(c, coords(c)) for c in shown]
+    placed = [(c, xy) for c, xy in located if xy is not None and abs(xy[0]) < 1e11 and abs(xy[1]) < 1e11]
     framing = [xy for c, xy in placed if c.get("feasible")] or [xy for _, xy in placed]
     if not framing:
         return {"points": [], "width": width, "height": height}

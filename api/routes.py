@@ -103,7 +103,7 @@ def _query_value(name: str, default: Any, pattern: re.Pattern[str], convert: Cal
     return convert(text)
 
 
-def query_int(name: str, default: int | None, low: int, high: int) -> int | None:
+def query_int(name: str, default: int, low: int, high: int) -> int:
     """An integer query parameter in [low, high] (400 naming it otherwise)."""
     return _query_value(name, default, _WHOLE, int, low, high, f"a whole number from {low} to {high}")
 
@@ -279,7 +279,7 @@ def evaluate() -> Response:
     samples = body.get("samples", 1000)
     if isinstance(samples, bool) or not isinstance(samples, int) or not 1 <= samples <= MAX_SAMPLES:
         problems.append(Problem("samples", samples, f"a whole number of Monte Carlo builds, 1 to {MAX_SAMPLES}"))
-    if problems:
+    if problems or spec is None or found is None:  # the spec's own problems are among them
         raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input",
                          errors=problems)
     try:
@@ -324,7 +324,7 @@ def _stored_status(search_id: str) -> str | None:
 
 
 @blueprint.post("/searches")
-def create() -> Response:
+def create() -> Response | tuple[Response, int]:
     from optimizer.search import create_search
 
     negotiate((JSON,))

@@ -83,7 +83,7 @@ class Device:
         if problems:
             raise InputError(problems, title="invalid transistor")
         values["polarity"] = "npn"
-        return cls(**values)  # type: ignore[arg-type]
+        return cls(**values)
 
     @classmethod
     def from_record(cls, transistor: Mapping) -> "Device":

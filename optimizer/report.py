@@ -19,7 +19,7 @@ from optimizer.catalog import Catalog
 from optimizer.metrics import LIMIT_METRICS, METRICS
 from optimizer.netlist import dc_node_voltages, designators, element_nodes
 from optimizer.spec import Spec, spec_digest
-from optimizer.tolerance import worst_case
+from optimizer.tolerance import Tolerance, worst_case
 from optimizer.units import format_value
 
 #: metric -> how it is written (optimizer/metrics.py ``Metric.shown``)
@@ -103,7 +103,7 @@ def node_spread(candidate: dict, bill: Kit) -> dict[str, tuple[float, float, flo
     """(min, typ, max) DC voltage of every node over the worst-case corners (V): parts at
     their BOM tolerances, hFE at min and max, both ends of the temperature range."""
     topology, parts, device, conditions = design_from_record(candidate)
-    tolerance = {}
+    tolerance: dict[str, Tolerance] = {}
     for line in bill.lines.itertuples():
         for role in str(line.roles).split(","):
             if line.tolerance and str(line.tolerance).endswith("%"):

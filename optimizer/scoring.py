@@ -86,11 +86,11 @@ def gain_error_db(spec: Spec, gain: np.ndarray) -> np.ndarray:
     return 20.0 * np.log10(np.maximum(np.abs(gain), 1e-12) / spec.gain.target)
 
 
-def _above(value: np.ndarray, minimum: float) -> np.ndarray:
+def _above(value: np.ndarray, minimum: float | np.ndarray) -> np.ndarray:
     return np.maximum(0.0, (minimum - np.nan_to_num(value, nan=-np.inf)) / minimum).clip(max=1e6)
 
 
-def _below(value: np.ndarray, maximum: float) -> np.ndarray:
+def _below(value: np.ndarray, maximum: float | np.ndarray) -> np.ndarray:
     return np.maximum(0.0, (np.nan_to_num(value, nan=np.inf) - maximum) / maximum).clip(max=1e6)
 
 

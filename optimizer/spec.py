@@ -230,7 +230,7 @@ class Gain(_Section):
                 "inverting": {"type": ["boolean", "null"]},
             }}
         return {"title": "Gain", "anyOf": [{"type": "number"}, {"type": "string"}, written],
-                "description": cls.__doc__.split("\n")[0]}
+                "description": (cls.__doc__ or "").split("\n")[0]}
 
 
 def _gain_target(raw: object) -> tuple[float, bool]:
@@ -324,7 +324,7 @@ class Parts(_Section):
     @classmethod
     def _range_order(cls, value: tuple[float, float], info: ValidationInfo) -> tuple[float, float]:
         unit = "ohm" if info.field_name == "resistor_range" else "F"
-        _ordered(*value, info.field_name, unit, strict=False)
+        _ordered(*value, str(info.field_name), unit, strict=False)
         return value
 
 
@@ -505,7 +505,7 @@ class Spec(_Section):
     @property
     def objective_directions(self) -> list[tuple[str, str]]:
         """(metric, "minimise"|"maximise") for each objective, in order."""
-        return [(o.metric, o.direction) for o in self.objectives]
+        return [(o.metric, str(o.direction)) for o in self.objectives]  # the validator has set every direction
 
 
 # --- errors --------------------------------------------------------------------------

@@ -48,7 +48,7 @@ def _unit_matches(text: str, unit: str | None, rkm_r: bool) -> bool:
 MILLI_OHM_HINT = "milli-ohm? write 1M or 1meg for megohm"
 
 
-def parse_quantity(text: str | float | int, unit: str | None = None, *, where: str = "value",
+def parse_quantity(text: object, unit: str | None = None, *, where: str = "value",
                    allow_negative: bool = False, allow_zero: bool = True) -> float:
     """The SI value of ``text`` (e.g. "4k7" -> 4700.0, "10 mA" -> 0.01 with unit "A").
 
