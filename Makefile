@@ -5,7 +5,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test fuzz bench clean cluster
+.PHONY: demo test lint typecheck fuzz bench clean cluster
 
 $(STAMP): pyproject.toml
 	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
@@ -32,6 +32,15 @@ demo: $(STAMP)
 
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
+
+# ruff: the lint rules and the format of pyproject.toml ([tool.ruff])
+lint: $(STAMP)
+	$(BIN)/ruff check .
+	$(BIN)/ruff format --check .
+
+# mypy over the package and the service ([tool.mypy] in pyproject.toml)
+typecheck: $(STAMP)
+	$(BIN)/mypy
 
 # every benchmark in turn: each prints its figures (target, measured, met).
 # BENCH_MODE=full (default): every benchmark at its full sizes, each rewriting its results file in

@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import math
 from functools import lru_cache
-from pathlib import Path
 from typing import Any
 
 import yaml
@@ -25,6 +24,7 @@ from flask import Blueprint, Response, jsonify, render_template, request, url_fo
 
 from api import routes
 from api.problems import ApiProblem
+from optimizer.bundled import example_names, example_path
 from optimizer.errors import Problem
 
 blueprint = Blueprint("pages", __name__, template_folder="templates", static_folder="static",
@@ -34,7 +34,6 @@ blueprint = Blueprint("pages", __name__, template_folder="templates", static_fol
 PUBLIC_ENDPOINTS = frozenset({"pages.spec_page", "pages.searches_page", "pages.search_page",
                               "pages.design_page", "pages.compare_page", "pages.static",
                               "pages.palette_css"})
-EXAMPLES_DIR = Path(__file__).resolve().parents[1] / "specs"
 TABLE_ROWS = 50  # ranked designs in the search page's table
 FRONT_POINTS = 250  # designs drawn on the search page's front (the front's own points always are)
 LIST_ROWS = 30  # searches on the searches page
@@ -132,16 +131,12 @@ for _filter in (metric_label, metric_text, quantity_text, basis_label):
 
 # --- page shells (public: no data) ---------------------------------------------------------
 
-def _examples() -> list[str]:
-    return sorted(p.stem for p in EXAMPLES_DIR.glob("*.yaml")) if EXAMPLES_DIR.is_dir() else []
-
-
 @blueprint.get("/")
 def spec_page() -> str:
     from optimizer.catalog import list_catalogs
     from optimizer.spec import METRIC_DIRECTIONS
 
-    return render_template("spec.html", fields=SPEC_FIELDS, examples=_examples(), catalogs=list_catalogs(),
+    return render_template("spec.html", fields=SPEC_FIELDS, examples=example_names(), catalogs=list_catalogs(),
                            series=SERIES, metrics=tuple(METRIC_DIRECTIONS), title="New search")
 
 
@@ -165,8 +160,9 @@ def design_page(search_id: str, rank: int) -> str:
 
 @blueprint.get("/compare")
 def compare_page() -> str:
+    chosen: dict[str, Any] = request.args.to_dict()  # the designs to compare, passed on to the fragment
     return render_template("shell.html", title="Compare designs",
-                           source=url_for("pages.compare_fragment", **request.args))
+                           source=url_for("pages.compare_fragment", **chosen))
 
 
 @blueprint.get("/palette.css")
@@ -192,9 +188,10 @@ def _html(text: str) -> Response:
 @blueprint.get("/ui/examples/<name>")
 def example(name: str) -> Response:
     """An example spec from specs/: its YAML text and the mapping as written."""
-    if name not in _examples():  # a name from the list, never a path
-        raise routes._not_found("example", name, "one of " + ", ".join(_examples()))
-    text = (EXAMPLES_DIR / f"{name}.yaml").read_text(encoding="utf-8")
+    path = example_path(name)  # a name from the list, never a path
+    if path is None:
+        raise routes._not_found("example", name, "one of " + ", ".join(example_names()))
+    text = path.read_text(encoding="utf-8")
     return jsonify({"name": name, "yaml": text, "spec": yaml.safe_load(text)})
 
 
@@ -236,11 +233,12 @@ def front_svg(search_id: str, result: Any) -> dict:
         m = c.get("metrics") or {}
         x = m.get(x_metric)
         y = m.get(y_metric) if y_metric else c.get("rank")
-        ok = all(isinstance(v, (int, float)) and math.isfinite(v) for v in (x, y))
-        return (x * _axis(x_metric)[1], y * (_axis(y_metric)[1] if y_metric else 1.0)) if ok else None
+        if not (isinstance(x, (int, float)) and isinstance(y, (int, float)) and math.isfinite(x) and math.isfinite(y)):
+            return None
+        return x * _axis(x_metric)[1], y * (_axis(y_metric)[1] if y_metric else 1.0)
 
-    placed = [(c, coords(c)) for c in shown]
-    placed = [(c, xy) for c, xy in placed if xy is not None and abs(xy[0]) < 1e11 and abs(xy[1]) < 1e11]
+    located = [(c, coords(c)) for c in shown]
+    placed = [(c, xy) for c, xy in located if xy is not None and abs(xy[0]) < 1e11 and abs(xy[1]) < 1e11]
     framing = [xy for c, xy in placed if c.get("feasible")] or [xy for _, xy in placed]
     if not framing:
         return {"points": [], "width": width, "height": height}

@@ -11,7 +11,7 @@ import re
 import threading
 from collections import OrderedDict
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Callable
 
 from flask import Blueprint, Response, current_app, jsonify, request, url_for
 
@@ -90,25 +90,27 @@ _WHOLE = re.compile(r"-?[0-9]{1,12}")  # ASCII digits only: str.isdigit() also t
 _DECIMAL = re.compile(r"[0-9]{1,12}(\.[0-9]{0,9})?|\.[0-9]{1,9}")
 
 
-def query_int(name: str, default: int | None, low: int, high: int) -> int | None:
-    """An integer query parameter in [low, high] (400 naming it otherwise)."""
+def _query_value(name: str, default: Any, pattern: re.Pattern[str], convert: Callable[[str], Any],
+                 low: float, high: float, expected: str) -> Any:
+    """Query parameter ``name`` written as ``pattern``, converted and in [low, high] (400 naming it and
+    ``expected`` otherwise); ``default`` when absent."""
     raw = request.args.get(name)
     if raw is None:
         return default
     text = raw.strip()
-    if not _WHOLE.fullmatch(text) or not low <= int(text) <= high:
-        raise _query_problem(name, raw, f"a whole number from {low} to {high}")
-    return int(text)
+    if not pattern.fullmatch(text) or not low <= convert(text) <= high:
+        raise _query_problem(name, raw, expected)
+    return convert(text)
+
+
+def query_int(name: str, default: int, low: int, high: int) -> int:
+    """An integer query parameter in [low, high] (400 naming it otherwise)."""
+    return _query_value(name, default, _WHOLE, int, low, high, f"a whole number from {low} to {high}")
 
 
 def query_number(name: str, default: float, low: float, high: float) -> float:
-    raw = request.args.get(name)
-    if raw is None:
-        return default
-    text = raw.strip()
-    if not _DECIMAL.fullmatch(text) or not low <= float(text) <= high:
-        raise _query_problem(name, raw, f"a number of seconds from {low:g} to {high:g}")
-    return float(text)
+    """A decimal query parameter (seconds) in [low, high] (400 naming it otherwise)."""
+    return _query_value(name, default, _DECIMAL, float, low, high, f"a number of seconds from {low:g} to {high:g}")
 
 
 def query_bool(name: str) -> bool | None:
@@ -277,7 +279,7 @@ def evaluate() -> Response:
     samples = body.get("samples", 1000)
     if isinstance(samples, bool) or not isinstance(samples, int) or not 1 <= samples <= MAX_SAMPLES:
         problems.append(Problem("samples", samples, f"a whole number of Monte Carlo builds, 1 to {MAX_SAMPLES}"))
-    if problems:
+    if problems or spec is None or found is None:  # the spec's own problems are among them
         raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input",
                          errors=problems)
     try:
@@ -322,7 +324,7 @@ def _stored_status(search_id: str) -> str | None:
 
 
 @blueprint.post("/searches")
-def create() -> Response:
+def create() -> Response | tuple[Response, int]:
     from optimizer.search import create_search
 
     negotiate((JSON,))

@@ -31,7 +31,6 @@ import random
 import re
 import signal
 import socket
-import statistics
 import subprocess
 import sys
 import tempfile

@@ -37,12 +37,12 @@ sys.path.insert(0, str(ROOT / "tests"))
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
 import optuna  # noqa: E402
+from run_facts import RunFacts, bench_mode  # noqa: E402
 
 from optimizer.search import create_search, load_search, open_storage, run_search, with_search  # noqa: E402
 from optimizer.spec import load_spec  # noqa: E402
 from pg_fixture import ThrowawayCluster, free_port, reachable, stop_processes, with_database  # noqa: E402
 from redis_fixture import ThrowawayRedis  # noqa: E402
-from run_facts import RunFacts, bench_mode  # noqa: E402
 
 RESULTS = ROOT / "benchmarks" / "results" / "workers.md"
 SPEC = ROOT / "benchmarks" / "specs" / "bs_e96_divider_buffer.yaml"
@@ -91,7 +91,7 @@ def _grpc_proxy(pg_url: str, logdir: Path) -> tuple[subprocess.Popen, str]:
             return proc, url
         except Exception:  # not listening yet
             if proc.poll() is not None:
-                raise RuntimeError((logdir / "grpc.log").read_text()[-2000:])
+                raise RuntimeError((logdir / "grpc.log").read_text()[-2000:]) from None
     raise RuntimeError("the gRPC proxy did not start within 60 s")
 
 

@@ -29,6 +29,7 @@ import io
 import math
 import numbers
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -96,7 +97,7 @@ class Kit:
 
 def _plain(mapping: dict) -> dict:
     """Numpy / pandas scalars as Python values; NaN and pandas NA as None."""
-    out = {}
+    out: dict = {}
     for key, value in mapping.items():
         if value is None or value is pd.NA or (isinstance(value, float) and math.isnan(value)):
             out[key] = None
@@ -117,7 +118,7 @@ def check_units(units: object) -> int:
     elif isinstance(units, numbers.Integral):
         value = int(units)
     elif isinstance(units, numbers.Real) and float(units).is_integer():
-        value = int(units)
+        value = int(float(units))
     elif isinstance(units, str) and units.strip().isdigit():
         value = int(units.strip())
     if value is None or not 1 <= value <= MAX_UNITS:
@@ -206,7 +207,7 @@ def _line(kind: str, value: float | None, label: str, roles: list[str], names: d
     if row is None:
         note = f"not in catalog {catalog.name}"
     elif short_by:
-        note = "; ".join(n for n in (note, f"short by {short_by} (stock {int(stock)})") if n)
+        note = "; ".join(n for n in (note, f"short by {short_by} (stock {stock})") if n)
     described = _describe(kind, row)
     return {"designators": ",".join(names[r] for r in roles), "kind": kind, "roles": ",".join(roles),
             "part_id": None if row is None else str(row[("id" if kind == "transistor" else "part_id")]),
@@ -231,16 +232,16 @@ def _candidate_parts(candidate: dict) -> tuple[list[tuple[str, str, float, str |
                                 "the transistor id"))
     if "topology" not in candidate:
         problems.append(Problem("topology", None, "a topology name"))
-    if problems:
+    if problems or not isinstance(parts, dict) or not isinstance(transistor, dict):
         raise InputError(problems, title="incomplete candidate record")
     topology = get_topology(candidate["topology"])
     out = []
     for role, entry in parts.items():
-        value = entry.get("value") if isinstance(entry, dict) else None
+        given: Any = entry.get("value") if isinstance(entry, dict) else None  # checked by float() below
         try:
-            value = float(value)
+            value = float(given)
         except (TypeError, ValueError):
-            raise InputError.single(f"parts.{role}.value", value, "a number (ohm or F)",
+            raise InputError.single(f"parts.{role}.value", given, "a number (ohm or F)",
                                     title="incomplete candidate record") from None
         if value > 0:  # 0 = an optional part left out
             out.append((role, "capacitor" if role.startswith("c_") else "resistor", value, entry.get("part_id")))

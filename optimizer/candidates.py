@@ -8,6 +8,8 @@ shortlist and the REST service alike.
 """
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 
 from optimizer import eseries, scoring
@@ -16,12 +18,12 @@ from optimizer.devices import Device
 from optimizer.errors import InputError, Problem
 from optimizer.metrics import LIMIT_METRICS
 from optimizer.record import candidate_record, part_label, record_conditions
+from optimizer.robustness import FINAL_BUILDS, basis_label, judge
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import NOMINAL_TEMPERATURE_C, Spec
-from optimizer.robustness import FINAL_BUILDS, basis_label, judge
 from optimizer.tolerance import worst_case
 from optimizer.topologies import get_topology
-from optimizer.topologies.base import Conditions, Topology
+from optimizer.topologies.base import Conditions, StageResult, Topology
 
 DEFAULT_POWER_RATING = 0.125  # W, when a value is not in the catalog (common 0805 rating)
 DEFAULT_CAP_VOLTAGE = 16.0  # V, likewise for a capacitor
@@ -91,7 +93,7 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
                                    {c: rec["rating"] for c, rec in records.items() if c.startswith("c_")}, device)
 
     result = topology.evaluate(arrays, device, conditions, full=True, thd_solve=True)
-    metrics = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
+    metrics: dict[str, float | None] = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
     metrics["gain_error_db"] = float(scoring.gain_error_db(spec, np.array([metrics["gain"]]))[0])
     nominal = scoring.limit_violations(spec, result.metrics, result.ratings, limits,
                                        result.operating_point["active"])
@@ -124,7 +126,7 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
         cautions=_cautions(spec, result, limits))
 
 
-def _cautions(spec: Spec, result, rating_limits: dict[str, float]) -> list[str]:
+def _cautions(spec: Spec, result: StageResult, rating_limits: dict[str, float | np.ndarray]) -> list[str]:
     notes = []
     for key, fraction in scoring.near_ratings(result.ratings, result.metrics, rating_limits).items():
         notes.append(f"{key} runs at {fraction[0]:.0%} of its rating; check the part before building")
@@ -176,7 +178,7 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], D
         if role in topology.supply_parts and role not in record["parts"]:
             continue  # no decoupling RC: the stage is on the rail
         entry = record["parts"].get(role)
-        value = entry.get("value") if isinstance(entry, dict) else None
+        value: Any = entry.get("value") if isinstance(entry, dict) else None  # checked by float() below
         try:
             parts[role] = np.array([float(value)])
         except (TypeError, ValueError):

@@ -11,7 +11,6 @@ from __future__ import annotations
 import csv
 import functools
 import math
-import os
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -21,12 +20,11 @@ import pandas as pd
 import yaml
 
 from optimizer import eseries
+from optimizer.bundled import catalog_dir
 from optimizer.errors import InputError, Problem
 from optimizer.units import parse_quantity
 
-CATALOG_DIR: Path = Path(
-    os.environ.get("STAGEFIT_CATALOG_DIR") or Path(__file__).resolve().parent.parent / "parts_catalogs"
-)
+CATALOG_DIR: Path = catalog_dir()  # the checkout's parts_catalogs/ or the installed package's
 
 VALUE_RTOL = 1e-6  # two part values closer than this (relative) are the same value
 
@@ -44,7 +42,7 @@ def is_class2(dielectric: object) -> bool:
     return str(dielectric).strip().lower() in CLASS2_DIELECTRICS
 
 
-def _cell_quantity(unit: str, *, positive: bool = True) -> Callable[[str, str], float]:
+def _cell_quantity(unit: str | None, *, positive: bool = True) -> Callable[[str, str], float]:
     """Parser for a required physical quantity in ``unit`` (SI, no prefix)."""
 
     def parse(text: str, where: str) -> float:
@@ -56,7 +54,7 @@ def _cell_quantity(unit: str, *, positive: bool = True) -> Callable[[str, str], 
     return parse
 
 
-def _cell_optional_quantity(unit: str, *, positive: bool = False) -> Callable[[str, str], float]:
+def _cell_optional_quantity(unit: str | None, *, positive: bool = False) -> Callable[[str, str], float]:
     """Parser for an optional quantity in ``unit`` (SI, no prefix), >= 0 (> 0 with ``positive``);
     an empty cell is NaN (not given)."""
     required = _cell_quantity(unit, positive=False)
@@ -389,7 +387,7 @@ def _in_stock(frame: pd.DataFrame) -> np.ndarray:
 
 def _row_dict(row: pd.Series) -> dict:
     """A DataFrame row as plain Python values (missing stock -> None)."""
-    out = {}
+    out: dict[str, object] = {}
     for key, value in row.items():
         if pd.isna(value):
             out[key] = None

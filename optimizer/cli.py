@@ -27,6 +27,7 @@ EXIT_CODES = ("exit codes: 0 done (search: a design meets every limit); 3 no des
               "(the nearest misses are printed, ranked); 2 bad input; 4 environment or storage error "
               "(file, disk, database, search busy elsewhere); 1 internal error (a bug)")
 BUSY_WAIT = 120.0  # s a run waits for another process's trials in a search it joined
+SPEC_HELP = "path to a spec file (YAML or JSON), or the name of a bundled example (e.g. contact_pickup_buffer)"
 
 
 def _cmd_check(args: argparse.Namespace) -> int:
@@ -249,9 +250,20 @@ def _run_or_reuse(args: argparse.Namespace, spec):
     and budget) was searched before, resumed when it was interrupted, run otherwise."""
     from optuna.exceptions import DuplicatedStudyError
 
-    from optimizer.search import (INTERRUPTED, create_search, delete_search, extend_search, fail_search,
-                                  list_searches, load_search, open_storage, run_search, search_status,
-                                  spec_search_id, with_search)
+    from optimizer.search import (
+        INTERRUPTED,
+        create_search,
+        delete_search,
+        extend_search,
+        fail_search,
+        list_searches,
+        load_search,
+        open_storage,
+        run_search,
+        search_status,
+        spec_search_id,
+        with_search,
+    )
 
     spec = with_search(spec, trials=args.trials, seed=args.seed)
     storage = open_storage(args.storage)
@@ -622,7 +634,7 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True, parser_class=_Parser)
 
     check = sub.add_parser("check", help="validate a requirements spec and print it with units")
-    check.add_argument("spec", help="path to a spec file (YAML or JSON)")
+    check.add_argument("spec", help=SPEC_HELP)
     check.add_argument("--format", choices=("table", "json"), default="table")
     check.set_defaults(handler=_cmd_check)
 
@@ -658,7 +670,7 @@ def build_parser() -> argparse.ArgumentParser:
     evaluate.set_defaults(handler=_cmd_evaluate)
 
     search = sub.add_parser("search", help="search parts and topologies for a spec; ranked designs and the front")
-    search.add_argument("spec", help="path to a spec file (YAML or JSON)")
+    search.add_argument("spec", help=SPEC_HELP)
     _search_options(search)
     search.add_argument("--top", type=_whole(1, MAX_TOP), default=10,
                         help=f"how many ranked designs to show, 1 to {MAX_TOP} (default 10)")
@@ -675,7 +687,7 @@ def build_parser() -> argparse.ArgumentParser:
     search.set_defaults(handler=_cmd_search)
 
     bom = sub.add_parser("bom", help="bill of materials and kitting of a ranked design against the catalog's stock")
-    bom.add_argument("spec", help="path to a spec file (YAML or JSON)")
+    bom.add_argument("spec", help=SPEC_HELP)
     bom.add_argument("--rank", type=_whole(1, MAX_TOP), default=1, help="which ranked design (default 1)")
     bom.add_argument("--units", type=_whole(1, MAX_UNITS), default=1,
                      help=f"how many stages to kit, 1 to {MAX_UNITS} (default 1)")
@@ -692,7 +704,7 @@ def build_parser() -> argparse.ArgumentParser:
     netlist.set_defaults(handler=_cmd_netlist)
 
     report = sub.add_parser("report", help="one self-contained HTML design sheet of a ranked design")
-    report.add_argument("spec", help="path to a spec file (YAML or JSON)")
+    report.add_argument("spec", help=SPEC_HELP)
     report.add_argument("--rank", type=_whole(1, MAX_TOP), default=1, help="which ranked design (default 1)")
     report.add_argument("--out", required=True, help="directory to write rankN.html into")
     report.add_argument("--units", type=_whole(1, MAX_UNITS), default=1,
@@ -756,7 +768,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return EXIT_INTERNAL
     except Exception as error:
         if _environmental(error):  # the disk, a file, the database: not the user's input, not a bug
-            print(f"error: {type(error).__name__}: {error}".splitlines()[0], file=sys.stderr)
+            print(f"error: {type(error).__name__}: {error}".splitlines()[0] + _extra_hint(error), file=sys.stderr)
             return EXIT_ENVIRONMENT
         if os.environ.get("STAGEFIT_DEBUG"):  # a bug, not the user's fault
             raise
@@ -769,9 +781,20 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 
 def _environmental(error: BaseException) -> bool:
-    """A storage or operating-system failure (exit code 4)."""
-    return isinstance(error, (StorageError, OSError, MemoryError)) or \
+    """A storage or operating-system failure, or an optional dependency not installed (exit code 4)."""
+    return isinstance(error, (StorageError, OSError, MemoryError)) or _extra_hint(error) != "" or \
         type(error).__module__.split(".")[0] in ("sqlalchemy", "psycopg", "redis", "grpc")
+
+
+#: the optional extra (pyproject.toml) that installs each optional import
+OPTIONAL_EXTRAS = {"matplotlib": "plots", "flask": "server", "waitress": "server", "psycopg": "postgres", "redis": "redis"}
+
+
+def _extra_hint(error: BaseException) -> str:
+    """How to install the optional dependency whose import failed, or ""."""
+    if isinstance(error, ModuleNotFoundError) and (error.name or "").split(".")[0] in OPTIONAL_EXTRAS:
+        return f" (install it with: pip install 'stagefit[{OPTIONAL_EXTRAS[(error.name or '').split('.')[0]]}]')"
+    return ""
 
 
 if __name__ == "__main__":

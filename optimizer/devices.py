@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, fields
-from typing import Mapping
+from typing import Any, Mapping
 
 import numpy as np
 
@@ -54,7 +54,7 @@ class Device:
     def from_row(cls, row: Mapping) -> "Device":
         """Build a device from a catalog row whose keys are the field names."""
         problems: list[Problem] = []
-        values: dict[str, object] = {}
+        values: dict[str, Any] = {}  # str for id and polarity, float for the rest
         where = f"transistor {row.get('id', '?')!s}"
         for f in fields(cls):
             if f.name not in row or row[f.name] is None or (isinstance(row[f.name], float) and math.isnan(row[f.name])):
@@ -83,7 +83,7 @@ class Device:
         if problems:
             raise InputError(problems, title="invalid transistor")
         values["polarity"] = "npn"
-        return cls(**values)  # type: ignore[arg-type]
+        return cls(**values)
 
     @classmethod
     def from_record(cls, transistor: Mapping) -> "Device":

@@ -182,6 +182,6 @@ def series_of(value: float) -> str | None:
     if not (np.isfinite(value) and value > 0):
         return None
     for name in SERIES:
-        if abs(nearest(name, value) / value - 1) <= REL_TOL:
+        if abs(float(nearest(name, value)) / value - 1) <= REL_TOL:
             return name
     return None

@@ -24,6 +24,7 @@ cannot rule out the rest), so the answer stays exact.
 from __future__ import annotations
 
 from dataclasses import dataclass
+
 import numpy as np
 
 from optimizer.errors import InputError
@@ -65,7 +66,10 @@ class _Enumeration:
             grid = np.stack(np.meshgrid(*(ranges[r] for r in bounded), indexing="ij"), axis=-1).reshape(-1, len(bounded))
             values = {r: space.resistors.values[np.maximum(grid[:, j], 0)] for j, r in enumerate(bounded)}
             floor = spec.gain.target * 10 ** (-spec.gain.tolerance_db / 20)
-            self._pairs = grid[model.gain_bound(values, spec.load_impedance) >= floor]
+            bound = model.gain_bound(values, spec.load_impedance)
+            if bound is None:  # a developer's slip in the topology's module, not the user's
+                raise TypeError(f"topology {topology} declares gain_bound_roles but its gain_bound() gives no bound")
+            self._pairs = grid[bound >= floor]
         else:
             self._pairs = np.zeros((1, 0), dtype=int)
         self.roles, self._bounded = roles, bounded
@@ -109,6 +113,8 @@ def exhaustive(spec: Spec, topology: str | None = None, device: str | None = Non
     roles = model.resistors
     lows = {r: (ABSENT if r in model.optional_parts else 0) for r in roles}
     total = int(np.prod([n - lows[r] for r in roles], dtype=np.int64))
+    best_score, evaluated = -np.inf, 0  # the best fully evaluated design so far, and how many were evaluated
+    best: tuple[dict, int] | None = None  # (evaluate_group's result, index in it)
 
     def bounds(prune: bool, threshold: float, limit: int | None) -> tuple[np.ndarray, np.ndarray, int]:
         """One streaming pass of the core model: the combinations whose optimistic score
@@ -148,7 +154,6 @@ def exhaustive(spec: Spec, topology: str | None = None, device: str | None = Non
                 front_values.append(values[pareto_mask(values, directions)])
         return False
 
-    best_score, best, evaluated = -np.inf, None, 0
     directions = [d for _, d in spec.objective_directions]
     front_values: list[np.ndarray] = []
     idx, optimistic, feasible = bounds(prune=True, threshold=0.0, limit=None)  # every core-feasible design

@@ -72,7 +72,7 @@ def _scaled(metric: str, values: np.ndarray) -> np.ndarray:
 def _check_objectives(objectives: object) -> list[tuple[str, str]]:
     expected = 'a list of (metric, direction) pairs, e.g. [("supply_current", "minimise")]'
     try:
-        pairs = [(str(m), DIRECTION_ALIASES[str(d).lower()]) for m, d in objectives]  # type: ignore[union-attr]
+        pairs = [(str(m), DIRECTION_ALIASES[str(d).lower()]) for m, d in objectives]  # any input: a non-pair fails below
     except (TypeError, ValueError, KeyError):
         raise InputError.single("objectives", objectives, expected, title="invalid plot objectives") from None
     if not pairs:

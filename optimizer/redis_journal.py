@@ -23,7 +23,7 @@ import time
 from contextlib import contextmanager
 from typing import Any, Iterator
 
-import optuna
+from optuna.storages.journal import BaseJournalBackend
 
 READ_CHUNK = 1000  # records fetched by one MGET
 CLAIM_TTL = 60  # s a claim is held at most (a killed holder's claim lapses then)
@@ -50,10 +50,13 @@ return redis.call('mget', unpack(keys))
 """
 
 
-class RedisJournal(optuna.storages.journal.BaseJournalBackend):
+class RedisJournal(BaseJournalBackend):
     """Journal records on a Redis server (``redis://host:port/db``), appended and read in bulk."""
 
     def __init__(self, url: str, prefix: str = "") -> None:
+        self._connect(url, prefix)
+
+    def _connect(self, url: str, prefix: str) -> None:
         import redis  # imported by the shared deployments that use it
 
         self._url = url
@@ -66,7 +69,7 @@ class RedisJournal(optuna.storages.journal.BaseJournalBackend):
         return {"url": self._url, "prefix": self.prefix}
 
     def __setstate__(self, state: dict[str, Any]) -> None:
-        self.__init__(state["url"], state["prefix"])
+        self._connect(state["url"], state["prefix"])
 
     def append_logs(self, logs: list[dict[str, Any]]) -> None:
         if logs:
@@ -132,7 +135,7 @@ class RunnerLiveness:
         if not trial_ids:
             return []
         holders = self._client.hmget(f"{self._prefix}:holder", [str(t) for t in trial_ids])
-        known = [(t, h.decode()) for t, h in zip(trial_ids, holders) if h is not None]
+        known = [(t, h.decode() if isinstance(h, bytes) else str(h)) for t, h in zip(trial_ids, holders) if h is not None]
         runners = sorted({h for _, h in known})
         alive = dict(zip(runners, self._client.mget([f"{self._prefix}:alive:{r}" for r in runners]))) if runners else {}
         return [t for t, h in known if alive.get(h) is None]

@@ -13,13 +13,13 @@ from __future__ import annotations
 import html
 import math
 
-from optimizer.bom import Kit, NO_BASIS, kit
+from optimizer.bom import NO_BASIS, Kit, kit
 from optimizer.candidates import assess, design_from_record
 from optimizer.catalog import Catalog
-from optimizer.netlist import dc_node_voltages, designators, element_nodes
 from optimizer.metrics import LIMIT_METRICS, METRICS
+from optimizer.netlist import dc_node_voltages, designators, element_nodes
 from optimizer.spec import Spec, spec_digest
-from optimizer.tolerance import worst_case
+from optimizer.tolerance import Tolerance, worst_case
 from optimizer.units import format_value
 
 #: metric -> how it is written (optimizer/metrics.py ``Metric.shown``)
@@ -103,7 +103,7 @@ def node_spread(candidate: dict, bill: Kit) -> dict[str, tuple[float, float, flo
     """(min, typ, max) DC voltage of every node over the worst-case corners (V): parts at
     their BOM tolerances, hFE at min and max, both ends of the temperature range."""
     topology, parts, device, conditions = design_from_record(candidate)
-    tolerance = {}
+    tolerance: dict[str, Tolerance] = {}
     for line in bill.lines.itertuples():
         for role in str(line.roles).split(","):
             if line.tolerance and str(line.tolerance).endswith("%"):
@@ -140,6 +140,8 @@ def _margins(candidate: dict, spec: Spec, currency: str) -> list[list[str]]:
 
 def design_sheet(candidate: dict, spec: Spec, catalog: Catalog, *, units: int = 1) -> str:
     """The self-contained HTML design sheet of ``candidate`` (inline SVG plots)."""
+    from optimizer import plots  # matplotlib is the optional [plots] extra: imported only here
+
     record = _full(candidate, spec, catalog)
     bill = kit(record, catalog, units, spec)
     topology, parts, _, _ = design_from_record(record)
@@ -161,7 +163,6 @@ def design_sheet(candidate: dict, spec: Spec, catalog: Catalog, *, units: int = 
     ratings = [[k, show(k, r["value"]), show(k, r["limit"]), f"{100 * r['value'] / r['limit']:.0f} %"]
                for k, r in record.get("ratings", {}).items()]
     bom_rows = [[str("" if v is None else v) for v in line.values()] for line in bill.to_dict()["lines"]]
-    from optimizer import plots  # matplotlib: imported by the one function that draws
 
     response = plots.response_plot(record, fmt="svg").decode()
     transfer = plots.transfer_plot(record, fmt="svg", spec_swing=spec.limits.swing_min).decode()

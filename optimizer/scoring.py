@@ -7,6 +7,8 @@ rating is never a silent pass. Arrays over candidates throughout.
 """
 from __future__ import annotations
 
+from typing import Mapping
+
 import numpy as np
 
 from optimizer.catalog import VALUE_RTOL
@@ -84,11 +86,11 @@ def gain_error_db(spec: Spec, gain: np.ndarray) -> np.ndarray:
     return 20.0 * np.log10(np.maximum(np.abs(gain), 1e-12) / spec.gain.target)
 
 
-def _above(value: np.ndarray, minimum: float) -> np.ndarray:
+def _above(value: np.ndarray, minimum: float | np.ndarray) -> np.ndarray:
     return np.maximum(0.0, (minimum - np.nan_to_num(value, nan=-np.inf)) / minimum).clip(max=1e6)
 
 
-def _below(value: np.ndarray, maximum: float) -> np.ndarray:
+def _below(value: np.ndarray, maximum: float | np.ndarray) -> np.ndarray:
     return np.maximum(0.0, (np.nan_to_num(value, nan=np.inf) - maximum) / maximum).clip(max=1e6)
 
 
@@ -216,35 +218,51 @@ def _objective_reference(spec: Spec, metric: str) -> float:
             "gain_error_db": spec.gain.tolerance_db}[metric]
 
 
-def limit_margins(spec: Spec, metrics: dict[str, np.ndarray]) -> np.ndarray:
-    """Smallest relative margin to any limit the spec sets (inf where it sets none)."""
-    n = np.asarray(metrics["gain"]).shape
-    margin = np.full(n, np.inf)
-    for limit_name, metric, sign in LIMIT_METRICS:
-        limit = getattr(spec.limits, limit_name)
-        if limit is not None:
-            value = np.asarray(metrics[metric], dtype=float)
-            margin = np.minimum(margin, np.nan_to_num(sign * (value - limit) / limit, nan=0.0))
+#: the requirements every spec sets: the gain window and the band (the rest are its optional limits)
+BASE_REQUIREMENTS = ("gain_tolerance", "band_low", "band_high")
+
+
+def requirements(spec: Spec) -> list[tuple[str, str, int, float]]:
+    """Each requirement the spec sets: (name, metric, +1 at least / -1 at most, limit in SI). The gain
+    is judged by its error against the tolerance (|gain_error_db|, dB), the band by its -3 dB corners (Hz)."""
+    rows = [("gain_tolerance", "gain_error_db", -1, spec.gain.tolerance_db),
+            ("band_low", "f_low", -1, spec.band[0]), ("band_high", "f_high", +1, spec.band[1])]
+    return rows + [(name, metric, sign, getattr(spec.limits, name)) for name, metric, sign in LIMIT_METRICS
+                   if getattr(spec.limits, name) is not None]
+
+
+def requirement_margins(spec: Spec, metrics: Mapping[str, object], *, limits_only: bool = False
+                        ) -> list[tuple[str, str, int, float, np.ndarray, np.ndarray]]:
+    """(name, metric, sign, limit, value, margin) of each requirement: the value judged (NaN where the
+    design has no figure) and the relative margin, sign * (value - limit) / limit (>= 0: met). Arrays
+    over candidates, or 0-d for one design. ``limits_only``: the spec's optional limits alone."""
+    out = []
+    for name, metric, sign, limit in requirements(spec):
+        if limits_only and name in BASE_REQUIREMENTS:
+            continue
+        raw = metrics.get(metric)
+        value = np.asarray(np.nan if raw is None else raw, dtype=float)
+        if name == "gain_tolerance":
+            value = np.abs(value)
+        out.append((name, metric, sign, limit, value, sign * (value - limit) / limit))
+    return out
+
+
+def limit_margins(spec: Spec, metrics: Mapping[str, np.ndarray]) -> np.ndarray:
+    """Smallest relative margin to any of the spec's optional limits (inf where it sets none; a
+    metric without a figure counts as no margin)."""
+    margin = np.full(np.asarray(metrics["gain"]).shape, np.inf)
+    for *_, row_margin in requirement_margins(spec, metrics, limits_only=True):
+        margin = np.minimum(margin, np.nan_to_num(row_margin, nan=0.0))
     return margin
 
 
-def limit_table(spec: Spec, metrics: dict[str, float]) -> list[dict]:
+def limit_table(spec: Spec, metrics: Mapping[str, float | None]) -> list[dict]:
     """Each requirement the spec sets, for one design: the metric, its value and the limit (SI),
-    ``kind`` "min" or "max", and the relative ``margin`` (>= 0: met; as in limit_margins). The
-    gain is judged by its error against the tolerance (dB), the band by its -3 dB corners (Hz)."""
-    rows = [("gain_tolerance", "gain_error_db", "max", spec.gain.tolerance_db,
-             abs(metrics.get("gain_error_db", float("nan")))),
-            ("band_low", "f_low", "max", spec.band[0], metrics.get("f_low")),
-            ("band_high", "f_high", "min", spec.band[1], metrics.get("f_high"))]
-    rows += [(name, metric, "min" if sign > 0 else "max", getattr(spec.limits, name), metrics.get(metric))
-             for name, metric, sign in LIMIT_METRICS if getattr(spec.limits, name) is not None]
-    out = []
-    for name, metric, kind, limit, value in rows:
-        value = float("nan") if value is None else float(value)
-        margin = (value - limit) / limit if kind == "min" else (limit - value) / limit
-        out.append({"limit": name, "metric": metric, "kind": kind, "limit_value": float(limit),
-                    "value": value, "margin": margin if np.isfinite(margin) else None})
-    return out
+    ``kind`` "min" or "max", and the relative ``margin`` (>= 0: met; None where there is no figure)."""
+    return [{"limit": name, "metric": metric, "kind": "min" if sign > 0 else "max", "limit_value": float(limit),
+             "value": float(value), "margin": float(margin) if np.isfinite(margin) else None}
+            for name, metric, sign, limit, value, margin in requirement_margins(spec, metrics)]
 
 
 def desirability_terms(spec: Spec, metrics: dict[str, np.ndarray]) -> dict[str, tuple[np.ndarray, float]]:

@@ -30,13 +30,13 @@ from optuna.storages import BaseStorage
 from optuna.trial import TrialState
 
 from optimizer import robustness, scoring
-from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
-from optimizer.record import candidate_record, part_label, record_conditions
-from optimizer.scoring import pareto_mask, unique_values_array
 from optimizer.catalog import Catalog, load_catalog
 from optimizer.devices import Device
 from optimizer.errors import InputError
+from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
+from optimizer.record import candidate_record, part_label, record_conditions
 from optimizer.sampler import NeighbourSampler
+from optimizer.scoring import pareto_mask, unique_values_array
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
 from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, quiet_optuna, sync

@@ -15,12 +15,21 @@ import math
 from pathlib import Path
 from typing import Annotated, Any, Callable, Literal
 
-from pydantic import (BaseModel, BeforeValidator, ConfigDict, Field, ValidationError,
-                      ValidationInfo, WithJsonSchema, field_validator, model_validator)
+from pydantic import (
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    ValidationError,
+    ValidationInfo,
+    WithJsonSchema,
+    field_validator,
+    model_validator,
+)
 
 from optimizer.errors import InputError, Problem
-from optimizer.limits import MAX_BATCH, MAX_DESCRIPTION, MAX_NAME, MAX_SAMPLES, MAX_TOP, MAX_TRIALS  # noqa: F401 (re-exported)
 from optimizer.eseries import SERIES
+from optimizer.limits import MAX_BATCH, MAX_DESCRIPTION, MAX_NAME, MAX_SAMPLES, MAX_TOP, MAX_TRIALS  # noqa: F401 (re-exported)
 from optimizer.metrics import METRICS
 from optimizer.topologies import TOPOLOGIES
 from optimizer.units import format_value, parse_quantity
@@ -215,7 +224,7 @@ class Gain(_Section):
                 "inverting": {"type": ["boolean", "null"]},
             }}
         return {"title": "Gain", "anyOf": [{"type": "number"}, {"type": "string"}, written],
-                "description": cls.__doc__.split("\n")[0]}
+                "description": (cls.__doc__ or "").split("\n")[0]}
 
 
 def _gain_target(raw: object) -> tuple[float, bool]:
@@ -309,7 +318,7 @@ class Parts(_Section):
     @classmethod
     def _range_order(cls, value: tuple[float, float], info: ValidationInfo) -> tuple[float, float]:
         unit = "ohm" if info.field_name == "resistor_range" else "F"
-        _ordered(*value, info.field_name, unit, strict=False)
+        _ordered(*value, str(info.field_name), unit, strict=False)
         return value
 
 
@@ -490,7 +499,7 @@ class Spec(_Section):
     @property
     def objective_directions(self) -> list[tuple[str, str]]:
         """(metric, "minimise"|"maximise") for each objective, in order."""
-        return [(o.metric, o.direction) for o in self.objectives]
+        return [(o.metric, str(o.direction)) for o in self.objectives]  # the validator has set every direction
 
 
 # --- errors --------------------------------------------------------------------------
@@ -591,17 +600,22 @@ def parse_spec(data: dict, *, source: str = "<spec>") -> Spec:
 
 def load_spec(path: str | Path) -> Spec:
     """Read a YAML or JSON spec file and validate it (through the bounded loader of
-    :mod:`optimizer.documents`, the same one the REST service uses)."""
+    :mod:`optimizer.documents`, the same one the REST service uses). A bare name that is no
+    file but names a bundled example spec (``"contact_pickup_buffer"``) loads that example."""
+    from optimizer.bundled import example_names, example_path
     from optimizer.documents import MAX_BYTES, parse_document
 
     path = Path(path)
+    if not path.exists() and (example := example_path(str(path))) is not None:
+        path = example
     try:
         if path.stat().st_size > MAX_BYTES:
             raise InputError.single(str(path), f"{path.stat().st_size} bytes",
                                     f"a spec file of at most {MAX_BYTES} bytes", "cannot read spec")
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
-        raise InputError.single(str(path), str(path), f"a readable UTF-8 spec file ({exc})",
+        raise InputError.single(str(path), str(path), f"a readable UTF-8 spec file ({exc}), or the name of a bundled "
+                                f"example: {', '.join(example_names()) or '(none installed)'}",
                                 "cannot read spec") from None
     data = parse_document(text, str(path), yaml_ok=path.suffix.lower() != ".json")
     return parse_spec(data, source=str(path))

@@ -29,16 +29,16 @@ import inspect
 import json
 import logging
 import os
+import shutil
 import socket
 import threading
-import shutil
 import warnings
 import weakref
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import IO, Iterator
+from typing import IO, Any, Generator, Iterator
 
 import optuna
 from optuna.storages import BaseStorage
@@ -49,6 +49,7 @@ from optuna.storages import BaseStorage
 # is_heartbeat_enabled: whether a storage records heartbeats; public Optuna only runs
 # heartbeats inside Study.optimize, and our batches (ask/tell) record their own.
 from optuna.storages._heartbeat import is_heartbeat_enabled
+
 # BaseJournalFileLock, get_lock_file: the journal's lock interface, so the journal can take a
 # kernel flock (released when its holder dies) instead of Optuna's lock files; the public
 # JournalFileBackend accepts a lock object but the base class to write one is private.
@@ -170,7 +171,7 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
         self._warned: set[int] = set()
         self._read_lock = threading.Lock()
 
-    def read_logs(self, log_number_from: int) -> Iterator[dict]:
+    def read_logs(self, log_number_from: int) -> Generator[dict[str, Any], None, None]:
         with self._read_lock:
             offset = self._resume.get(log_number_from)
         number = log_number_from if offset is not None else 0

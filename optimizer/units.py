@@ -34,7 +34,7 @@ _ASCII_SYMBOL = {"ohm": "ohm", "°C": "degC"}
 
 
 def _expected(unit: str | None) -> str:
-    return _KIND.get(unit, "a number such as 4700, \"4k7\", \"2.2u\" or \"10 mA\"")
+    return _KIND.get(unit or "", "a number such as 4700, \"4k7\", \"2.2u\" or \"10 mA\"")
 
 
 def _unit_matches(text: str, unit: str | None, rkm_r: bool) -> bool:
@@ -48,7 +48,7 @@ def _unit_matches(text: str, unit: str | None, rkm_r: bool) -> bool:
 MILLI_OHM_HINT = "milli-ohm? write 1M or 1meg for megohm"
 
 
-def parse_quantity(text: str | float | int, unit: str | None = None, *, where: str = "value",
+def parse_quantity(text: object, unit: str | None = None, *, where: str = "value",
                    allow_negative: bool = False, allow_zero: bool = True) -> float:
     """The SI value of ``text`` (e.g. "4k7" -> 4700.0, "10 mA" -> 0.01 with unit "A").
 
@@ -69,7 +69,6 @@ def parse_quantity(text: str | float | int, unit: str | None = None, *, where: s
             raise fail("; it must be a finite number") from None
     else:
         raw = str(text).strip()
-        value = None
         rkm = _RKM.match(raw)
         if rkm and (rkm.group(2) or rkm.group(3) == "R" or rkm.group(3) in PREFIXES):
             sign, whole, letter, fraction, rest = rkm.groups()

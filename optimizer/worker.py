@@ -49,7 +49,7 @@ def work_once(storage, *, should_stop: Callable[[], bool], seed_offset: int = 0)
         seen: list[int] = []  # finished-trial counts at the start of each batch
         try:
             run_search(storage, status["id"], should_stop=should_stop, seed_offset=seed_offset,
-                       progress=lambda finished, budget: seen.append(finished))
+                       progress=lambda finished, budget: seen.append(finished))  # noqa: B023 (called within this run)
         except InputError as exc:  # a search deleted meanwhile, or a stored spec that no longer fits
             log.warning("search %s skipped: %s", status["id"], exc)
             continue

@@ -84,7 +84,7 @@ class ThrowawayCluster:
 
                 pwd.getpwnam("postgres")
             except KeyError:
-                raise RuntimeError("running as root and there is no 'postgres' user to run the server as")
+                raise RuntimeError("running as root and there is no 'postgres' user to run the server as") from None
             if runuser is None:
                 raise RuntimeError("running as root and 'runuser' is missing")
             self.as_user = [runuser, "-u", "postgres", "--"]

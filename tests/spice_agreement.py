@@ -13,8 +13,18 @@ import numpy as np
 from optimizer.metrics import METRICS
 from optimizer.topologies import get_topology
 from spice_designs import CheckDesign
-from spice_harness import (clip_of, held_transfer, spice_midband, spice_noise, spice_noise_figure,
-                           spice_operating_point, spice_psrr, spice_response, spice_thd, swing_of)
+from spice_harness import (
+    clip_of,
+    held_transfer,
+    spice_midband,
+    spice_noise,
+    spice_noise_figure,
+    spice_operating_point,
+    spice_psrr,
+    spice_response,
+    spice_thd,
+    swing_of,
+)
 
 # metric -> (tolerance, kind): "rel" relative error, "db" ratio in dB, "diff" difference (dB metrics).
 # model vs ngspice: the metrics' tolerances from optimizer/metrics.py, plus two that are not metrics

@@ -315,9 +315,11 @@ def test_candidates_json_and_csv(client, done):
     role = next(iter(ranked[0]["parts"]))
     assert rows[0][role] == ranked[0]["parts"][role]["label"]
     assert float(rows[0]["supply_current"]) == pytest.approx(ranked[0]["metrics"]["supply_current"])
-    for flag in (True, False):
+    every = client.get(f"/v1/searches/{search_id}/candidates?top=50").get_json()["candidates"]
+    assert every
+    for flag in (True, False):  # reference: the unfiltered list, filtered here
         only = client.get(f"/v1/searches/{search_id}/candidates?top=50&feasible={str(flag).lower()}").get_json()
-        assert all(c["feasible"] is flag for c in only["candidates"])
+        assert [c["parts"] for c in only["candidates"]] == [c["parts"] for c in every if c["feasible"] is flag]
     assert_problem(client.get(f"/v1/searches/{search_id}/candidates?feasible=maybe"), 400)
     assert_problem(client.get(f"/v1/searches/{search_id}/candidates", headers={"Accept": "image/png"}), 406)
     assert_problem(client.get("/v1/searches/s-nothing-here/candidates"), 404)
@@ -351,7 +353,7 @@ def test_bom_for_25_units(client, done):
     assert response.status_code == 200 and response.mimetype == "application/json"
     kit = response.get_json()
     assert kit["units"] == 25
-    assert all(line["qty_total"] == 25 * line["qty_per_unit"] for line in kit["lines"])
+    assert kit["lines"] and all(line["qty_total"] == 25 * line["qty_per_unit"] for line in kit["lines"])
     response = client.get(f"{base}?units=25", headers={"Accept": "text/csv"})
     assert response.status_code == 200 and response.mimetype == "text/csv"
     assert "attachment" in response.headers["Content-Disposition"]
@@ -369,7 +371,21 @@ def test_front(client, done):
     assert response.status_code == 200 and response.mimetype == "application/json"
     body = response.get_json()
     assert [o["metric"] for o in body["objectives"]] == ["supply_current", "swing_vpp"]
-    assert all(c["feasible"] for c in body["front"])
+    # a search that does find designs meeting its spec (the bench preamp at this budget): its front is
+    # not empty, every point met the spec, and no point dominates another (dominance written out here)
+    spec = yaml.safe_load((ROOT / "specs" / "bench_stock_preamp.yaml").read_text())
+    spec["search"] = {"trials": TRIALS, "seed": 3, "batch_size": 32}
+    posted = client.post("/v1/searches?wait=120", json=spec)
+    assert posted.status_code == 200, posted.data
+    body = client.get(f"/v1/searches/{posted.get_json()['search']['id']}/front").get_json()
+    sense = [1.0 if o["direction"] == "minimise" else -1.0 for o in body["objectives"]]
+    points = [[s * v for s, v in zip(sense, c["objectives"])] for c in body["front"]]  # all minimised
+
+    def dominates(a: list[float], b: list[float]) -> bool:
+        return all(x <= y for x, y in zip(a, b)) and any(x < y for x, y in zip(a, b))
+
+    assert points and all(c["feasible"] for c in body["front"])
+    assert not any(dominates(a, b) for a in points for b in points)
 
 
 def test_cancel_keeps_finished_trials_and_purge_deletes(tmp_path):

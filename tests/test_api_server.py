@@ -113,7 +113,7 @@ def test_readme_script_posts_polls_and_saves_the_bom(tmp_path):
     assert done.returncode == 0, done.stderr
     lines = [line for line in out.read_text().splitlines() if not line.startswith("#")]  # identity, cautions
     assert lines[0].startswith("designators,kind,roles,part_id,value")
-    assert all(",25," in line for line in lines[1:])  # qty_total for 25 units of one-per-unit parts
+    assert len(lines) > 1 and all(",25," in line for line in lines[1:])  # qty_total for 25 units of one-per-unit parts
 
 
 def _finished(storage_path: Path, search_id: str) -> dict[int, tuple]:

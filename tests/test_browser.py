@@ -23,6 +23,7 @@ from pathlib import Path
 
 import pytest
 import yaml
+
 from test_api_server import live_server  # the suite's one way of starting the real server
 from wcag import contrast_ratio
 

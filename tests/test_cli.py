@@ -2,6 +2,8 @@
 from __future__ import annotations
 
 import json
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
@@ -113,3 +115,19 @@ def test_package_names_are_the_api_functions_after_lazy_import() -> None:
     assert optimizer.assess is importlib.import_module("optimizer.candidates").assess
     with pytest.raises(AttributeError):
         optimizer.no_such_name  # noqa: B018
+
+
+def test_check_takes_a_bundled_example_by_name(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                                capsys: pytest.CaptureFixture[str]) -> None:
+    monkeypatch.chdir(tmp_path)  # no such file here: the name is the bundled example's
+    assert main(["check", "contact_pickup_buffer"]) == EXIT_OK
+    assert "valid" in capsys.readouterr().out
+
+
+def test_a_missing_extra_is_named(tmp_path: Path) -> None:
+    # flask made unimportable in a fresh interpreter: `stagefit serve` says which extra brings it (exit 4)
+    code = ("import sys; sys.modules['flask'] = None\n"
+            "from optimizer.cli import main; sys.exit(main(['serve', '--port', '0']))")
+    done = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=120)
+    assert done.returncode == 4, done.stderr
+    assert "stagefit[server]" in done.stderr and "Traceback" not in done.stderr

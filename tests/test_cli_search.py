@@ -50,7 +50,7 @@ def test_json_candidates_follow_the_documented_shape(workspace: Path, capsys) ->
                 "worst_case", "violations"):
         assert key in first
     assert first["rank"] == 1 and set(first["transistor"]["model"]) >= {"IS", "BF", "VAF"}
-    assert all(set(p) >= {"value", "label", "part_id"} for p in first["parts"].values())
+    assert first["parts"] and all(set(p) >= {"value", "label", "part_id"} for p in first["parts"].values())
 
 
 def test_csv_and_markdown(workspace: Path, capsys) -> None:
@@ -99,9 +99,8 @@ def test_ctrl_c_fails_the_running_trials_and_the_search_resumes(tmp_path) -> Non
     import sys
     import time
 
-    from optimizer.search import open_storage, search_status
+    from optimizer.search import open_storage, search_status, spec_search_id, with_search
     from optimizer.spec import load_spec
-    from optimizer.search import spec_search_id, with_search
 
     journal = tmp_path / "runs.journal"
     spec_file = Path(__file__).resolve().parents[1] / "specs" / "line_driver_24v.yaml"

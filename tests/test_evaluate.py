@@ -36,7 +36,7 @@ def test_evaluate_every_example_spec(path: Path, capsys: pytest.CaptureFixture[s
     assert record["topology"] == topology
     assert {"gain", "swing_vpp", "input_impedance", "supply_current", "yield"} <= set(record["metrics"])
     assert set(record["transistor"]["model"]) == {"IS", "BF", "NF", "VAF", "RB", "CJE", "CJC", "TF", "KF", "AF"}
-    assert all(part["label"] for part in record["parts"].values())
+    assert record["parts"] and all(part["label"] for part in record["parts"].values())
     assert 0.0 <= record["metrics"]["yield"] <= 1.0
     low, high = record["worst_case"]["gain"]
     assert low <= record["metrics"]["gain"] <= high

@@ -12,9 +12,9 @@ from types import SimpleNamespace
 
 import pytest
 
+import spice_harness as sh
 from optimizer.errors import InputError
 from optimizer.netlist import MODEL_KEYS, spice_netlist
-import spice_harness as sh
 
 MODEL = {"IS": 1e-14, "BF": 200.0, "NF": 1.0, "VAF": 100.0, "RB": 10.0,
          "CJE": 8e-12, "CJC": 4e-12, "TF": 4e-10}
@@ -204,11 +204,24 @@ def test_harness_reports_a_failed_run(monkeypatch: pytest.MonkeyPatch) -> None:
         sh.spice_operating_point("divider_ce", PARTS, MODEL, conditions())
 
 
-def test_netlist_roles_match_the_model_topologies() -> None:
-    """The netlist wires exactly the parts each model topology declares."""
-    from optimizer.netlist import required_parts
-    from optimizer.topologies import TOPOLOGIES
+#: the parts of the four stages, written out from their circuit descriptions (the design notes' role names)
+STAGE_PARTS = {
+    "divider_ce": {"r_top", "r_bottom", "r_collector", "r_emitter", "c_in", "c_out"},
+    "divider_ce_split": {"r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter_dc", "c_in", "c_out",
+                         "c_emitter"},
+    "feedback_ce": {"r_feedback", "r_collector", "r_emitter", "c_in", "c_out"},
+    "ce_follower": {"r_top", "r_bottom", "r_collector", "r_emitter", "r_follower", "c_in", "c_out"},
+}
 
-    assert len(TOPOLOGIES) >= 4
-    for name, topology in TOPOLOGIES.items():
-        assert set(required_parts(name)) == set(topology.resistors) | set(topology.capacitors)
+
+@pytest.mark.parametrize("name", sorted(STAGE_PARTS))
+def test_netlist_and_model_parts_are_the_circuits_parts(name: str) -> None:
+    """The netlist wires, and the model declares, exactly the parts of the circuit, input to output."""
+    from optimizer.netlist import required_parts
+    from optimizer.topologies import get_topology
+
+    wired = required_parts(name)
+    topology = get_topology(name)
+    assert set(wired) == STAGE_PARTS[name]
+    assert set(topology.resistors) | set(topology.capacitors) == STAGE_PARTS[name]
+    assert (wired[0], wired[-1]) == ("c_in", "c_out")  # signal order: the input coupling first, the output last

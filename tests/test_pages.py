@@ -7,10 +7,10 @@ from html.parser import HTMLParser
 
 import pytest
 import yaml
-from wcag import contrast_ratio
 
 from api import create_app
 from optimizer.palette import PALETTE, PLOT_COLOURS, TEXT_PAIRS
+from wcag import contrast_ratio
 
 TOKEN = "pages-token"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}

@@ -63,7 +63,7 @@ def test_record_rebuilds_its_own_metrics(records: list[dict], index: int) -> Non
     record = records[index]
     topology, parts, device, conditions = design_from_record(record)
     assert topology.name == record["topology"] and conditions.temperature == 27.0
-    assert all(v.shape == (1,) for v in parts.values())
+    assert parts and all(v.shape == (1,) for v in parts.values())
     metrics = topology.evaluate(parts, device, conditions, full=True).metrics
     for key in ("gain", "swing_vpp", "input_impedance", "supply_current", "f_low", "f_high"):
         assert float(metrics[key][0]) == pytest.approx(record["metrics"][key], rel=1e-9), key

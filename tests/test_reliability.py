@@ -12,7 +12,6 @@ import socket
 import threading
 from pathlib import Path
 
-
 ROOT = Path(__file__).resolve().parents[1]
 _spec = importlib.util.spec_from_file_location("bench_reliability", ROOT / "benchmarks" / "bench_reliability.py")
 bench = importlib.util.module_from_spec(_spec)

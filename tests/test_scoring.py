@@ -3,7 +3,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from optimizer.scoring import binding_limit, limit_violations, total_violation
+from optimizer.scoring import binding_limit, limit_margins, limit_table, limit_violations, total_violation
 from optimizer.spec import parse_spec
 
 SPEC = parse_spec({"name": "t", "supply": "12 V", "gain": {"target": -10, "tolerance": "1 dB"},
@@ -40,3 +40,25 @@ def test_wrong_polarity_swing_current_and_rating_are_each_violations() -> None:
     assert v["gain_polarity"][0] == 1.0
     assert np.isclose(v["swing_min"][0], 0.5) and np.isclose(v["supply_current_max"][0], 0.5)
     assert np.isclose(v["rating:p_r_collector"][0], 0.2)
+
+
+def test_limit_table_and_margins_against_a_hand_worked_design() -> None:
+    # worked by hand for SPEC (-10 V/V +- 1 dB, band 20 Hz..20 kHz, swing >= 4 V, current <= 2 mA):
+    # margin = (value - limit)/limit for an "at least", (limit - value)/limit for an "at most"
+    one = {"gain_error_db": -0.5, "f_low": 10.0, "f_high": 1e5, "swing_vpp": 6.0, "supply_current": 1.5e-3}
+    expected = {"gain_tolerance": ("max", 1.0, 0.5, 0.5), "band_low": ("max", 20.0, 10.0, 0.5),
+                "band_high": ("min", 2e4, 1e5, 4.0), "swing_min": ("min", 4.0, 6.0, 0.5),
+                "supply_current_max": ("max", 2e-3, 1.5e-3, 0.25)}
+    table = {row["limit"]: row for row in limit_table(SPEC, one)}
+    assert set(table) == set(expected)
+    for name, (kind, limit, value, margin) in expected.items():
+        row = table[name]
+        assert (row["kind"], row["limit_value"], row["value"]) == (kind, limit, value), row
+        assert np.isclose(row["margin"], margin, rtol=1e-12), row
+    # a withheld figure (a design not active has no swing): no margin, never a crash
+    table = {row["limit"]: row for row in limit_table(SPEC, {**one, "swing_vpp": None, "gain_error_db": None})}
+    assert table["swing_min"]["margin"] is None and table["gain_tolerance"]["margin"] is None
+    # the score's margin term: the smallest over the optional limits only (swing 0.1, current 0.25 here)
+    arrays = {k: np.array([v, v]) for k, v in one.items()} | {"gain": np.array([-10.0, -10.0]),
+                                                               "swing_vpp": np.array([4.4, 6.0])}
+    assert np.allclose(limit_margins(SPEC, arrays), [0.1, 0.25], rtol=1e-12)

@@ -1,14 +1,30 @@
 """The search: Optuna over ordered part indices, batched vectorised evaluation, ranking."""
 from __future__ import annotations
 
+import itertools
+
 import numpy as np
 import pytest
 
 from optimizer.errors import InputError
-from optimizer.search import (SearchSpace, cancel_search, create_search, evaluate_designs, extend_search,
-                              list_searches, load_search, open_storage, pareto_mask, rank_records, run_search,
-                              search, search_status)
+from optimizer.search import (
+    SearchSpace,
+    cancel_search,
+    create_search,
+    evaluate_designs,
+    extend_search,
+    list_searches,
+    load_search,
+    open_storage,
+    pareto_mask,
+    rank_records,
+    run_search,
+    search,
+    search_status,
+)
 from optimizer.spec import load_spec, parse_spec
+from optimizer.synthesis import hand_requirements
+from optimizer.topologies import get_topology
 
 SMALL = {"name": "small", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"},
          "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
@@ -17,11 +33,32 @@ SMALL = {"name": "small", "supply": "12 V", "gain": {"target": -8, "tolerance": 
          "search": {"trials": 256, "seed": 3, "batch_size": 64}}
 
 
+E6_IEC = (1.0, 1.5, 2.2, 3.3, 4.7, 6.8)  # IEC 60063
+
+
 def test_seeds_are_the_hand_design_rounded_both_ways() -> None:
-    space = SearchSpace.build(parse_spec(SMALL))
+    spec = parse_spec(SMALL)
+    space = SearchSpace.build(spec)
+    (device_id, device), = space.devices.items()
+    hand = get_topology("divider_ce").hand_design(hand_requirements(spec, device))
+    roles = ("r_top", "r_bottom", "r_collector", "r_emitter")  # divider_ce's resistors (capacitors are sized)
+    # reference: each resistor's E6 neighbours below and above it (IEC 60063 values over the decades),
+    # held inside the spec's resistor_range (1k..100k), every distinct combination, written out here
+    # rather than taken from the series code
+    ladder = sorted(v * 10.0 ** k for v in E6_IEC for k in range(8))
+    low, high = spec.parts.resistor_range
+    choices = [sorted({min(max(v, low), high) for v in (max(v for v in ladder if v <= hand[r] * (1 + 1e-12)),
+                                                       min(v for v in ladder if v >= hand[r] * (1 - 1e-12)))})
+               for r in roles]
+    expected = [dict(zip(roles, combo)) for combo in itertools.product(*choices)]
     seeds = space.seeds()
-    assert seeds and all(d.topology == "divider_ce" for d in seeds)
-    assert len(set(seeds)) == len(seeds)
+    assert {(d.topology, d.device) for d in seeds} == {("divider_ce", device_id)}
+    got = [{r: float(space.resistors.values[i]) for r, i in d.parts} for d in seeds]
+
+    def key(design: dict[str, float]) -> tuple[float, ...]:
+        return tuple(round(design[r], 6) for r in roles)
+
+    assert sorted(map(key, got)) == sorted(map(key, expected))  # each combination once, nothing else
 
 
 def test_evaluated_records_carry_every_metric_and_a_consistent_verdict() -> None:

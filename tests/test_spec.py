@@ -7,8 +7,7 @@ from pathlib import Path
 import pytest
 
 from optimizer.errors import InputError
-from optimizer.spec import (TOPOLOGY_NAMES, Spec, describe_spec, load_spec, parse_spec,
-                            spec_json_schema, spec_to_dict)
+from optimizer.spec import TOPOLOGY_NAMES, Spec, describe_spec, load_spec, parse_spec, spec_json_schema, spec_to_dict
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLES = sorted((ROOT / "specs").glob("*.yaml"))

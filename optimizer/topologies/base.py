@@ -5,11 +5,10 @@ and the operating conditions to an operating point, metrics and ratings.
 """
 from __future__ import annotations
 
+import math
 from abc import ABC, abstractmethod
 from dataclasses import dataclass, field, replace
 from typing import Callable, ClassVar
-
-import math
 
 import numpy as np
 

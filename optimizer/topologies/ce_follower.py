@@ -11,8 +11,8 @@ import numpy as np
 
 from optimizer import physics
 from optimizer.devices import Device
-from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
 from optimizer.synthesis import HandRequirements, coupling_capacitor, parallel
+from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
 from optimizer.topologies.divider_ce import add_divider_stage, add_load, divider_hand_design, divider_ratings
 
 BIAS_PASSES = 3  # q1/q2 alternations; they couple only through q2's base current and Early effect

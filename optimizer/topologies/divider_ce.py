@@ -11,8 +11,14 @@ import numpy as np
 
 from optimizer import physics
 from optimizer.devices import Device
-from optimizer.synthesis import (VBE_HAND, HandRequirements, centred_collector_resistor, coupling_capacitor, divider,
-                                  parallel)
+from optimizer.synthesis import (
+    VBE_HAND,
+    HandRequirements,
+    centred_collector_resistor,
+    coupling_capacitor,
+    divider,
+    parallel,
+)
 from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
 
 

@@ -8,7 +8,14 @@ from __future__ import annotations
 import numpy as np
 
 from optimizer import physics
-from optimizer.synthesis import VBE_HAND, HandRequirements, centred_collector_resistor, coupling_capacitor, divider, parallel
+from optimizer.synthesis import (
+    VBE_HAND,
+    HandRequirements,
+    centred_collector_resistor,
+    coupling_capacitor,
+    divider,
+    parallel,
+)
 from optimizer.topologies.base import Conditions, Parts
 from optimizer.topologies.divider_ce import DividerCE
 
