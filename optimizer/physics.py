@@ -552,12 +552,13 @@ def power_law_segments(f: np.ndarray, psd: np.ndarray, axis: int = -1) -> np.nda
         return a[(slice(None),) * (axis % a.ndim) + (s,)]
     f0, f1 = part(f, slice(None, -1)), part(f, slice(1, None))
     s0, s1 = part(psd, slice(None, -1)), part(psd, slice(1, None))
-    k = np.log(s1 / s0) / np.log(f1 / f0)
-    ratio = (f1 / f0) ** (k + 1.0)
-    near = np.abs(k + 1.0) < 1e-6
+    # integral of s0 (f/f0)^k from f0 to f1 = (s1 f1 - s0 f0)/(k + 1), as (f1/f0)^k = s1/s0 (no power taken)
+    log_step = np.log(f1 / f0)
+    k1 = np.log(s1 / s0) / log_step + 1.0
+    s0f0 = s0 * f0
     with np.errstate(divide="ignore", invalid="ignore"):
-        general = s0 * f0 * (ratio - 1.0) / (k + 1.0)
-    return np.where(near, s0 * f0 * np.log(f1 / f0), general)
+        general = (s1 * f1 - s0f0) / k1
+    return np.where(np.abs(k1) < 1e-6, s0f0 * log_step, general)
 
 
 def thermal_noise(r: np.ndarray, temp_c: float) -> np.ndarray:

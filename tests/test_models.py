@@ -406,3 +406,14 @@ def test_single_precision_swing_search_keeps_half_a_percent(design):
         mid = 0.5 * (lo + hi)
         lo, hi = (lo, mid) if deviation(np.array([mid]))[0][0] > 0.1 else (mid, hi)
     assert one(r, "swing_vpp") == pytest.approx(deviation(np.array([hi]))[1][0], rel=5e-3)
+
+
+def test_power_law_segments_integrate_power_laws_exactly():
+    # the noise integral's segments against the closed-form integral of c*f^k (calculus: c*(f1^(k+1) -
+    # f0^(k+1))/(k+1), and c*ln(f1/f0) at k = -1), over the band's log-spaced points
+    f = np.geomspace(20.0, 20e3, 6)[:, None]
+    for k in (-2.0, -1.0, -0.5, 0.0, 1.0, 2.0):
+        psd = 3e-18 * f ** k + 0.0 * np.ones((1, 2))
+        got = physics.power_law_segments(f, psd, axis=0).sum(axis=0)
+        exact = 3e-18 * (math.log(f[-1, 0] / f[0, 0]) if k == -1.0 else (f[-1, 0] ** (k + 1) - f[0, 0] ** (k + 1)) / (k + 1))
+        assert got == pytest.approx(np.full(2, exact), rel=1e-9)
