@@ -54,20 +54,25 @@ def solve_junction(a: np.ndarray, r_base: np.ndarray, r_emit: np.ndarray, *, i_s
     A fixed number of iterations is run for every candidate at once; v_start (V) is a
     warm start near the root (e.g. the quiescent Vbe when solving around an operating point).
     """
-    a, r_base, r_emit, beta = np.broadcast_arrays(*(np.asarray(x, dtype=float) for x in (a, r_base, r_emit, beta)))
+    # float64 unless the arrays given are all float32 (the usable-swing search: see StageModel._static_fn)
+    dtype = np.result_type(*(np.asarray(x).dtype for x in (a, r_base, r_emit, beta)
+                             if np.asarray(x).dtype.kind == "f"), np.float32)
+    a, r_base, r_emit, beta = np.broadcast_arrays(*(np.asarray(x, dtype=dtype) for x in (a, r_base, r_emit, beta)))
     r_ib = r_base / beta + r_emit / beta  # loop resistance per unit If through the base current
-    k_lin = np.maximum(r_ib + r_emit, 1e-3)
-    # The residual is concave and falling in Vbe, so Newton from above never overshoots the root:
-    # start at the smaller of two points above it (Vbe = a, or the Vbe of the largest current a/k).
-    v = np.minimum(a, nvt * np.log1p(np.maximum(a, 0.0) / k_lin / i_s)) if v_start is None else v_start + 0.0 * a
+    if v_start is None:
+        # The residual is concave and falling in Vbe, so Newton from above never overshoots the root:
+        # start at the smaller of two points above it (Vbe = a, or the Vbe of the largest current a/k).
+        v = np.minimum(a, nvt * np.log1p(np.maximum(a, 0.0) / np.maximum(r_ib + r_emit, 1e-3) / i_s))
+    else:
+        v = v_start + 0.0 * a
 
     inv_nvt = 1.0 / nvt
-    c0 = 1.0 + np.asarray(vcb0, dtype=float) * inv_vaf  # Early factor terms, per unit If or Vbe
+    c0 = 1.0 + np.asarray(vcb0, dtype=dtype) * inv_vaf  # Early factor terms, per unit If or Vbe
     c_ib, c_vbe, c_ic = vcb_ib * inv_vaf / beta, vcb_vbe * inv_vaf, vcb_ic * inv_vaf
 
     # Work arrays made once and written in place (out=): an iteration allocates nothing.
     shape = np.broadcast_shapes(np.shape(v), *(np.shape(x) for x in (c0, c_ib, c_vbe, c_ic)))
-    v = np.array(np.broadcast_to(v, shape), dtype=float)
+    v = np.array(np.broadcast_to(v, shape), dtype=dtype)
     e, den, early, g, t = (np.empty_like(v) for _ in range(5))
 
     def currents(v: np.ndarray) -> None:
@@ -165,9 +170,9 @@ def ce_midband(ss: dict[str, np.ndarray], r_emit: np.ndarray, r_coll: np.ndarray
 
 
 def parallel(*rs: np.ndarray) -> np.ndarray:
-    """Parallel combination of resistances (ohm); inf means absent."""
-    g = sum(1.0 / np.asarray(r, dtype=float) for r in rs)
-    return 1.0 / g
+    """Parallel combination of resistances (ohm); inf means absent. Float32 arrays stay float32."""
+    g = sum(1.0 / (float(r) if np.ndim(r) == 0 else np.asarray(r, dtype=np.result_type(r, 1.0))) for r in rs)
+    return np.asarray(1.0 / g)
 
 
 # ----------------------------------------------------------------------------- nodal analysis
@@ -547,12 +552,13 @@ def power_law_segments(f: np.ndarray, psd: np.ndarray, axis: int = -1) -> np.nda
         return a[(slice(None),) * (axis % a.ndim) + (s,)]
     f0, f1 = part(f, slice(None, -1)), part(f, slice(1, None))
     s0, s1 = part(psd, slice(None, -1)), part(psd, slice(1, None))
-    k = np.log(s1 / s0) / np.log(f1 / f0)
-    ratio = (f1 / f0) ** (k + 1.0)
-    near = np.abs(k + 1.0) < 1e-6
+    # integral of s0 (f/f0)^k from f0 to f1 = (s1 f1 - s0 f0)/(k + 1), as (f1/f0)^k = s1/s0 (no power taken)
+    log_step = np.log(f1 / f0)
+    k1 = np.log(s1 / s0) / log_step + 1.0
+    s0f0 = s0 * f0
     with np.errstate(divide="ignore", invalid="ignore"):
-        general = s0 * f0 * (ratio - 1.0) / (k + 1.0)
-    return np.where(near, s0 * f0 * np.log(f1 / f0), general)
+        general = (s1 * f1 - s0f0) / k1
+    return np.where(np.abs(k1) < 1e-6, s0f0 * log_step, general)
 
 
 def thermal_noise(r: np.ndarray, temp_c: float) -> np.ndarray:
