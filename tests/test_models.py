@@ -13,6 +13,7 @@ import subprocess
 import numpy as np
 import pytest
 
+from optimizer import physics
 from optimizer.devices import Device, hfe_temperature_factor, saturation_current, thermal_voltage
 from optimizer.errors import InputError
 from optimizer.topologies import TOPOLOGIES, Conditions, get_topology
