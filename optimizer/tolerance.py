@@ -23,7 +23,7 @@ from typing import Callable
 
 import numpy as np
 
-from optimizer.devices import Device, hfe_temperature_factor
+from optimizer.devices import AnyDevice, Device
 from optimizer.topologies.base import CHUNK_FAST, CHUNK_FULL, Conditions, Topology
 
 TEMPERATURE_BINS = 3  # Monte Carlo temperatures are drawn from this many levels (ends and middle)
@@ -60,10 +60,10 @@ class Builds:
         rng = np.random.default_rng([self.seed, zlib.crc32(role.encode())])
         return rng.uniform(-1.0, 1.0, self.samples)
 
-    def hfe(self, device: Device) -> np.ndarray:
-        """hFE of each build at its temperature."""
-        log_hfe = np.log(device.hfe_min) + self.hfe_position * np.log(device.hfe_max / device.hfe_min)
-        return np.exp(log_hfe) * hfe_temperature_factor(self.temperature)
+    def hfe(self, device: AnyDevice) -> np.ndarray:
+        """The device's spread variable in each build at its temperature (hFE for a bipolar
+        transistor, the IDSS/VP position for a JFET: ``device.spread_draw``)."""
+        return device.spread_draw(self.hfe_position, self.temperature)
 
     def groups(self) -> list[tuple[float, np.ndarray]]:
         """(temperature, build indices) for each temperature that occurs (the supply varies within a
@@ -90,7 +90,6 @@ def _flat_result(topology: Topology, parts: dict[str, np.ndarray], device: Devic
                 if k.startswith("v_") and k not in out})  # DC node voltages (v_out_q among them), for their spread
     out["active"] = np.asarray(op["active"]).reshape(shape)
     out["ic"] = np.asarray(op["ic"]).reshape(shape)
-    out.setdefault("v_out_q", np.asarray(op["v_collector"]).reshape(shape))
     return out
 
 
@@ -122,8 +121,8 @@ def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: Device,
                         for role, v in parts.items()}
         for j, role in enumerate(roles):
             corner_parts[role] = corner_parts[role] * (1.0 + signs[None, :, j] * _column(tolerances.get(role, 0.0)))
-        for hfe_edge in (device.hfe_min, device.hfe_max):
-            hfe = np.full((n, signs.shape[0]), hfe_edge * hfe_temperature_factor(float(temperature)))
+        for hfe_edge in device.spread_edges(float(temperature)):
+            hfe = np.full((n, signs.shape[0]), hfe_edge)
             values = _flat_result(topology, corner_parts, device, at, hfe, full)
             active_all &= np.all(values["active"], axis=1)
             for key, value in values.items():
@@ -169,10 +168,10 @@ def bias_spread(topology: Topology, parts: dict[str, np.ndarray], device: Device
     v_low, v_high = ic_low.copy(), ic_high.copy()
     for temperature, supply in itertools.product(temperature_range, supply_range):
         at = _at(conditions, temperature, supply)
-        for hfe_edge in (device.hfe_min, device.hfe_max):
-            op = topology.operating_point(both, device, at, hfe_edge * hfe_temperature_factor(float(temperature)))
+        for hfe_edge in device.spread_edges(float(temperature)):
+            op = topology.operating_point(both, device, at, hfe_edge)
             ic = np.where(op["active"], op["ic"], np.nan).reshape(2, n)
-            v_out = np.asarray(op.get("v_out_q", op["v_collector"])).reshape(2, n)
+            v_out = np.asarray(op["v_out_q"]).reshape(2, n)
             with np.errstate(invalid="ignore"):
                 ic_low = np.fmin(ic_low, np.nanmin(np.where(np.isnan(ic), np.inf, ic), axis=0))
                 ic_high = np.fmax(ic_high, np.nanmax(np.where(np.isnan(ic), -np.inf, ic), axis=0))

@@ -89,9 +89,16 @@ def _need(scalars: Mapping[str, float], *names: str) -> list[float]:
 def spice_operating_point(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
                           conditions: Any) -> dict[str, float]:
     """DC operating point: ic (A, q1; ic2 for q2 of a two-transistor stage), v_base,
-    v_collector, v_emitter (V to ground) and supply_current (A drawn from Vcc)."""
+    v_collector, v_emitter (V to ground) and supply_current (A drawn from Vcc); of a JFET
+    stage: ic (A, j1's drain current), v_gate, v_source and supply_current."""
     from optimizer.topologies import get_topology
 
+    if get_topology(topology).device_kind == "jfet":  # id of j1 as "ic", its nodes by their own names
+        control = ("op\nlet ic = @j1[id]\nlet v_gate = v(gate)\nlet v_source = v(source)\n"
+                   "let supply_current = -i(vcc)\nprint ic v_gate v_source supply_current")
+        scalars, _ = _simulate(topology, parts, model, conditions, control)
+        names = ("ic", "v_gate", "v_source", "supply_current")
+        return dict(zip(names, _need(scalars, *names)))
     follower = get_topology(topology).transistors == 2
     control = ("op\nlet ic = @q1[ic]\nlet v_base = v(base)\nlet v_collector = v(collector)\n"
                "let v_emitter = v(emitter)\nlet supply_current = -i(vcc)\n"

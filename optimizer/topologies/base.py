@@ -136,6 +136,7 @@ class Topology(ABC):
     inverting: ClassVar[bool]  # True: the mid-band gain source -> load is negative
     polarities: ClassVar[tuple[str, ...]]  # transistor polarities the stage is drawn for ("npn", "pnp")
     supply: ClassVar[str] = "single positive rail"  # the supply arrangement the stage is drawn for
+    device_kind: ClassVar[str] = "bjt"  # the kind of device the stage takes (Device.kind / JFET.kind)
     optional_parts: ClassVar[tuple[str, ...]] = ()  # may be 0 (absent)
     supply_parts: ClassVar[tuple[str, ...]] = SUPPLY_PARTS  # optional everywhere: absent or 0 = direct rail
     # SPICE netlist template: every resistor and capacitor as (role, node a, node b) in signal
@@ -328,8 +329,9 @@ class StageModel(Topology):
 
     @staticmethod
     def _hfe_array(device: Device, hfe: np.ndarray | float | None, n: int) -> np.ndarray:
-        """hFE per candidate (the device's typical value where none is given)."""
-        return np.broadcast_to(np.asarray(device.hfe_typ if hfe is None else hfe, dtype=float), (n,))
+        """The device's spread variable per candidate (hFE, or a JFET's IDSS/VP position; the
+        typical device where none is given)."""
+        return np.broadcast_to(np.asarray(device.spread_typ if hfe is None else hfe, dtype=float), (n,))
 
     def _checked_solve(self, parts: Parts, device: Device, conditions: Conditions,
                        hfe: np.ndarray | float | None) -> tuple[Parts, Bias, float]:
