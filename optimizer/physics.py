@@ -249,14 +249,16 @@ class Network:
     def jfet(self, g: str, d: str | None, s: str | None, ss: dict[str, np.ndarray], ac: bool) -> None:
         """JFET small signal (SPICE level 1): gm*vgs and gds d-s, Cgs g-s and Cgd g-d; noise as
         in SPICE, the channel's thermal 8kT*gm/3 (a resistor 3/(2 gm)) and the flicker
-        KF*Id^AF/f d-s, plus the gate current's shot noise 2q*Ig g-s."""
+        KF*Id^AF/f d-s, plus the gate leakage's shot noise 2q*Ig/2 across each of the two
+        reverse-biased gate junctions, g-s and g-d."""
         self.admittance(d, s, ss["gds"])
         self.vccs(d, s, g, s, ss["gm"])
         if ac:
             self._stamp(self.cap, g, s, ss["cgs"])
             self._stamp(self.cap, g, d, ss["cgd"])
         self.noise.append((d, s, "thermal", 1.5 / ss["gm"]))
-        self.noise.append((g, s, "shot", ss["ig"]))
+        self.noise.append((g, s, "shot", 0.5 * ss["ig"]))
+        self.noise.append((g, d, "shot", 0.5 * ss["ig"]))
         if np.any(ss["flicker"] > 0):
             self.noise.append((d, s, "flicker", ss["flicker"]))
 

@@ -14,7 +14,7 @@ import numpy as np
 from optimizer import physics
 from optimizer.synthesis import HandRequirements, coupling_capacitor, jfet_hand_bias, parallel
 from optimizer.topologies.base import Bias, Conditions, Parts
-from optimizer.topologies.jfet_stage import JFETStage
+from optimizer.topologies.jfet_stage import JFETStage, square_law_clip
 
 
 class JFETCommonSource(JFETStage):
@@ -88,10 +88,17 @@ class JFETCommonSource(JFETStage):
 
     def _limits(self, p: Parts, c: Conditions, op: dict[str, np.ndarray],
                 r_ac: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        cut, sat = physics.load_line_limits(op["id"], op["vds"], op["vdsat"], r_ac, p["r_source"])
-        v_dg_max = np.minimum(c.supply, op["v_drain"] + cut) - op["v_gate"]  # drain-gate: the larger of Vds, Vdg
-        return 2.0 * np.minimum(cut, sat), v_dg_max
-
+        # the triode edge: the current rises by dI until Vds_q - dI*(Rac + Rs) meets the
+        # overdrive sqrt((Id + dI)/BETA'), which rises with it (BETA' = Id/x^2 at the operating
+        # point): BETA'*R*y^2 + y - (Vds_q + Id*R) = 0 in y; the cutoff side: square_law_clip
+        r = r_ac + p["r_source"]
+        k_beta = op["id"] / op["vdsat"] ** 2
+        free = op["vds"] + op["id"] * r
+        y = 2.0 * free / (1.0 + np.sqrt(1.0 + 4.0 * k_beta * r * free))
+        di_sat = np.maximum(k_beta * y * y - op["id"], 0.0)
+        clip = square_law_clip(op["id"], op["vdsat"], p["r_source"], r_ac, di_sat)
+        v_dg_max = np.minimum(c.supply, op["v_drain"] + 0.5 * clip) - op["v_gate"]  # drain-gate: the larger of Vds, Vdg
+        return clip, v_dg_max
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         i_d = b.op["id"]
         # the bypassed node never rises above the rail at its maximum

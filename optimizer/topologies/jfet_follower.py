@@ -12,7 +12,7 @@ import numpy as np
 from optimizer import physics
 from optimizer.synthesis import HandRequirements, coupling_capacitor, jfet_hand_bias
 from optimizer.topologies.base import Bias, Conditions, Parts
-from optimizer.topologies.jfet_stage import JFETStage
+from optimizer.topologies.jfet_stage import JFETStage, square_law_clip
 
 
 class JFETFollower(JFETStage):
@@ -69,9 +69,10 @@ class JFETFollower(JFETStage):
 
     def _limits(self, p: Parts, c: Conditions, op: dict[str, np.ndarray],
                 r_ac: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        cut = op["id"] * r_ac  # the source falls until the channel cuts off
-        sat = np.maximum(op["vds"] - op["vdsat"], 0.0)  # it rises until the channel leaves saturation
-        return 2.0 * np.minimum(cut, sat), c.supply - op["v_gate"] + cut
+        # the source rises until the channel leaves saturation, falls toward cutoff (square_law_clip)
+        di_sat = np.maximum(op["vds"] - op["vdsat"], 0.0) / r_ac
+        clip = square_law_clip(op["id"], op["vdsat"], r_ac, r_ac, di_sat)
+        return clip, c.supply - op["v_gate"] + 0.5 * clip
 
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         return {**self._common_ratings(p, c, b), "p_r_follower": b.op["id"] ** 2 * p["r_follower"]}

@@ -13,6 +13,7 @@ VTO, k = 1 + LAMBDA*Vds), solved in closed form and iterated on k (Vds falls wit
 """
 from __future__ import annotations
 
+import math
 from typing import Callable
 
 import numpy as np
@@ -53,6 +54,47 @@ def self_bias(a: np.ndarray, r_bias: np.ndarray, r_total: np.ndarray, supply: np
         vds = supply - i_d * r_total
         k = 1.0 + lam * np.maximum(vds, 0.0)
     return {"x": x, "id": i_d, "vds": vds}
+
+
+def cutoff_drop(i_d: np.ndarray, x: np.ndarray, r_degeneration: np.ndarray) -> np.ndarray:
+    """How far the drain current falls (A) before the square law has halved the stage's
+    incremental gain (the clip criterion of clip_vpp on the cutoff side): with
+    g = 2*sqrt(BETA'*I), the degenerated g/(1 + g*R) falls to half its quiescent value at
+    g' = h/(1 - h*R), h = 0.5*gm/(1 + gm*R); then I' = g'^2/(4*BETA'), BETA' = Id/x^2. An
+    undegenerated stage keeps a quarter of Id (Vgs half-way to pinch-off), a heavily
+    degenerated one falls nearly to cutoff."""
+    gm = 2.0 * i_d / x
+    h = 0.5 * gm / (1.0 + gm * r_degeneration)
+    g = h / (1.0 - h * r_degeneration)
+    return i_d - g * g * x * x / (4.0 * i_d)
+
+
+def _drive(i_d: np.ndarray, x: np.ndarray, r_degeneration: np.ndarray, di: np.ndarray) -> np.ndarray:
+    """Gate drive (V) that moves a degenerated square-law stage's current by di (A)."""
+    return x * (np.sqrt(np.maximum(1.0 + di / i_d, 0.0)) - 1.0) + r_degeneration * di
+
+
+def _current(i_d: np.ndarray, x: np.ndarray, r_degeneration: np.ndarray, v: np.ndarray) -> np.ndarray:
+    """Current change (A) of a degenerated square-law stage driven by v (V) at the gate:
+    with u the new overdrive, BETA'*R*u^2 + u - (x + v + R*Id) = 0 (BETA' = Id/x^2)."""
+    k_beta = i_d / (x * x)
+    free = np.maximum(x + v + r_degeneration * i_d, 0.0)
+    u = 2.0 * free / (1.0 + np.sqrt(1.0 + 4.0 * k_beta * r_degeneration * free))
+    return k_beta * u * u - i_d
+
+
+def square_law_clip(i_d: np.ndarray, x: np.ndarray, r_degeneration: np.ndarray, r_out: np.ndarray,
+                    di_sat: np.ndarray) -> np.ndarray:
+    """clip_vpp (V) of a degenerated square-law stage: the output's peak-to-peak at the gate
+    drive where one side clips, the cutoff side when the incremental gain has halved
+    (:func:`cutoff_drop`), the other at the triode edge (a current rise of di_sat, A); the
+    side not clipping is taken on the square law at the same drive. r_out (ohm) turns the
+    current change into the output's."""
+    di_cut = -cutoff_drop(i_d, x, r_degeneration)
+    a = np.minimum(-_drive(i_d, x, r_degeneration, di_cut), _drive(i_d, x, r_degeneration, di_sat))
+    up = np.minimum(_current(i_d, x, r_degeneration, a), di_sat)
+    down = np.maximum(_current(i_d, x, r_degeneration, -a), di_cut)
+    return (up - down) * r_out
 
 
 class JFETStage(StageModel):
@@ -120,20 +162,29 @@ class JFETStage(StageModel):
         return self._network(p, c, ss, False, r_source, load).solve(rhs, want)
 
     def _midband(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
-        """Gain, impedances and the square-law second-harmonic term by mid-band nodal solves."""
+        """Gain, impedances and the square-law second-harmonic term.
+
+        The gain and the impedances are solved at the band's geometric mean with the device
+        capacitances in place: at megohm levels the gate's Cgd and the bootstrapped Cgs are
+        no longer open there. The input impedance is the gate's and the output impedance the
+        output node's (the shared flow adds c_in and c_out in series); the gain is the signed
+        |H| (sign of its real part). The distortion term comes from the resistive network."""
         ss = b.small_signal
         one = np.ones_like(r_source)
+        s = np.array(2j * np.pi * math.sqrt(c.band[0] * c.band[1]))
+        h = self._network(p, c, ss, True, r_source, True).at(s).solve({"in": 1.0 / r_source}, ["out"])["out"]
+        z_in = self._network(p, c, ss, True, None, True).at(s).solve({"gate": one}, ["gate"])["gate"]
+        z_out = self._network(p, c, ss, True, r_source, False).at(s).solve(
+            {self.output_node: one}, [self.output_node])[self.output_node]
         v = self._solve_mid(p, c, ss, r_source, True, {"in": 1.0 / r_source}, ["out", "gate", "source"])
-        z_in = self._solve_mid(p, c, ss, None, True, {"in": one}, ["in"])["in"]
-        z_out = self._solve_mid(p, c, ss, r_source, False, {"out": one}, ["out"])["out"]
         # the channel's own current (d -> s) to the load: the transimpedance the distortion current sees
         z_ds = self._solve_mid(p, c, ss, r_source, True, self._channel_rhs(one), ["out"])["out"]
-        gain = v["out"]
-        vgs_per_out = np.abs((v["gate"] - v["source"]) / gain)
+        vgs_per_out = np.abs((v["gate"] - v["source"]) / v["out"])
         suppression = ss[0]["gm"] * np.abs(z_ds) * vgs_per_out
         # thd_small_signal's v_x/(4 NF VT) is the square law's v_gs/(4 x): v_x scaled by NF*VT/x (NF = 1)
         nvt = float(thermal_voltage(c.temperature))
-        return {"gain": gain, "input_impedance": z_in, "output_impedance": z_out,
+        return {"gain": np.copysign(np.abs(h), h.real), "input_impedance": np.abs(z_in),
+                "output_impedance": np.abs(z_out),
                 "hd2_terms": [(vgs_per_out * nvt / ss[0]["x"], suppression, self._early_u(p, c, ss), 1.0)]}
 
     def _channel_rhs(self, one: np.ndarray) -> dict[str, np.ndarray]:
