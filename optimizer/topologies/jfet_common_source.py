@@ -75,9 +75,9 @@ class JFETCommonSource(JFETStage):
         return ss[0]["gds"] * physics.parallel(p["r_drain"], np.full_like(ss[0]["gds"], c.load_impedance))
 
     def _stage_network(self, net: physics.Network, p: Parts, ss: list[dict[str, np.ndarray]], ac: bool,
-                       rail: str | None) -> None:
+                       rail: str | None, device_caps: bool) -> None:
         net.resistor("gate", None, p["r_gate"])
-        net.jfet("gate", "drain", "source", ss[0], ac)
+        net.jfet("gate", "drain", "source", ss[0], device_caps)
         net.resistor("source", "s2", p["r_source"])
         net.resistor("s2", None, p["r_source_dc"])
         net.capacitor("s2", None, p["c_source"], ac, True)

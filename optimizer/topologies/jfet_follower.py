@@ -58,9 +58,9 @@ class JFETFollower(JFETStage):
         return ("in", "gate", "source", "tap", "out")
 
     def _stage_network(self, net: physics.Network, p: Parts, ss: list[dict[str, np.ndarray]], ac: bool,
-                       rail: str | None) -> None:
+                       rail: str | None, device_caps: bool) -> None:
         net.resistor("gate", "tap", p["r_gate"])
-        net.jfet("gate", rail, "source", ss[0], ac)
+        net.jfet("gate", rail, "source", ss[0], device_caps)
         net.resistor("source", "tap", p["r_source"])
         net.resistor("tap", None, p["r_follower"])
 

@@ -165,16 +165,18 @@ class JFETStage(StageModel):
         """Gain, impedances and the square-law second-harmonic term.
 
         The gain and the impedances are solved at the band's geometric mean with the device
-        capacitances in place: at megohm levels the gate's Cgd and the bootstrapped Cgs are
-        no longer open there. The input impedance is the gate's and the output impedance the
-        output node's (the shared flow adds c_in and c_out in series); the gain is the signed
-        |H| (sign of its real part). The distortion term comes from the resistive network."""
+        capacitances in place (at megohm levels the gate's Cgd and the bootstrapped Cgs are no
+        longer open there) and the coupling and bypass capacitors short, as in every stage's
+        mid-band. The input impedance is the gate's and the output impedance the output
+        node's (the shared flow adds c_in and c_out in series); the gain is the signed |H|
+        (sign of its real part). The distortion term comes from the resistive network."""
         ss = b.small_signal
         one = np.ones_like(r_source)
         s = np.array(2j * np.pi * math.sqrt(c.band[0] * c.band[1]))
-        h = self._network(p, c, ss, True, r_source, True).at(s).solve({"in": 1.0 / r_source}, ["out"])["out"]
-        z_in = self._network(p, c, ss, True, None, True).at(s).solve({"gate": one}, ["gate"])["gate"]
-        z_out = self._network(p, c, ss, True, r_source, False).at(s).solve(
+        h = self._network(p, c, ss, False, r_source, True, device_caps=True).at(s).solve(
+            {"in": 1.0 / r_source}, ["out"])["out"]
+        z_in = self._network(p, c, ss, False, None, True, device_caps=True).at(s).solve({"gate": one}, ["gate"])["gate"]
+        z_out = self._network(p, c, ss, False, r_source, False, device_caps=True).at(s).solve(
             {self.output_node: one}, [self.output_node])[self.output_node]
         v = self._solve_mid(p, c, ss, r_source, True, {"in": 1.0 / r_source}, ["out", "gate", "source"])
         # the channel's own current (d -> s) to the load: the transimpedance the distortion current sees
@@ -200,8 +202,9 @@ class JFETStage(StageModel):
         raise NotImplementedError
 
     def _stage_network(self, net: physics.Network, p: Parts, ss: list[dict[str, np.ndarray]], ac: bool,
-                       rail: str | None) -> None:
-        """The gate return, the JFET and the source and drain networks (``rail``: see _new_network)."""
+                       rail: str | None, device_caps: bool) -> None:
+        """The gate return, the JFET (its capacitances with ``device_caps``) and the source and
+        drain networks (``rail``: see _new_network)."""
         raise NotImplementedError
 
     def _r_out_dc(self, p: Parts) -> np.ndarray:
@@ -214,12 +217,15 @@ class JFETStage(StageModel):
         raise NotImplementedError
 
     def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
+                 r_source: np.ndarray | None, load: bool, supply: bool = False,
+                 device_caps: bool | None = None) -> physics.Network:
+        """As StageModel._network; ``device_caps`` True with ac False: coupling and bypass
+        capacitors short, the JFET's Cgs and Cgd in place (the mid-band of a megohm stage)."""
         net, rail = self._new_network(self._nodes(), p, c, ac, supply)
         if r_source is not None:
             net.admittance("in", None, 1.0 / r_source)
         net.capacitor("in", "gate", p["c_in"], ac, True)
-        self._stage_network(net, p, ss, ac, rail)
+        self._stage_network(net, p, ss, ac, rail, ac if device_caps is None else device_caps)
         net.capacitor(self.output_node, "out", p["c_out"], ac, True)
         add_load(net, c, ac, load)
         return net
