@@ -2,12 +2,15 @@
 candidates x samples.
 
 What moves (common practice): every resistor and capacitor within its tolerance, the
-transistor's hFE anywhere in the device's min..max, the temperature over the spec's range,
-with Vbe falling about 2 mV/K (carried by the device's saturation-current temperature law)
-and hFE rising with temperature (``devices.hfe_temperature_factor``), and the supply over
-its min..max. Monte Carlo draws parts uniformly within tolerance (the conservative choice
-for parts binned by tolerance), hFE log-uniformly within min..max, and the temperature and
-the supply uniformly over a few levels of their ranges.
+device's own spread (``spread_edges`` for the corners, ``spread_draw`` for Monte Carlo): a
+bipolar transistor's hFE anywhere in its min..max, rising with temperature
+(``devices.hfe_temperature_factor``), a JFET's IDSS and VP together along the line from
+their minima to their maxima (``devices.JFET``); the temperature over the spec's range, with
+Vbe falling about 2 mV/K (carried by the device's saturation-current temperature law) or a
+JFET's VTO and BETA moving by its SPICE TCV and BEX; and the supply over its min..max. Monte
+Carlo draws parts uniformly within tolerance (the conservative choice for parts binned by
+tolerance), hFE log-uniformly within min..max (a JFET uniformly along its line), and the
+temperature and the supply uniformly over a few levels of their ranges.
 
 The builds are common random numbers: build k of every candidate uses the same temperature,
 supply, hFE position and, per part role, the same position within the tolerance band
@@ -36,7 +39,8 @@ class Builds:
     """``samples`` seeded random builds, the same for every candidate.
 
     temperature (°C) and supply (V) per build, taken from TEMPERATURE_BINS and SUPPLY_BINS
-    levels; hfe_position in [0, 1] (log position between the device's hFE min and max);
+    levels; hfe_position in [0, 1] (the device's spread position: log position between hFE min
+    and max, or a JFET's position along its IDSS/VP line);
     :meth:`part_position` gives each role's position in [-1, 1] within its tolerance band.
     """
 
@@ -105,7 +109,8 @@ def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: Device,
                *, roles: tuple[str, ...] | None = None, full: bool = True
                ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """(low, high) of every metric, rating, 'ic' and DC node voltage (v_base, v_out_q, ...) over all corners: each part in
-    ``roles`` (default: all) at +-tolerance, hFE at min and max, temperature and supply at
+    ``roles`` (default: all) at +-tolerance, the device's spread at both ends (hFE min and max, a
+    JFET's lowest and highest IDSS/VP), temperature and supply at
     both ends. Arrays over candidates. Metrics NaN at a corner (a stage that is not active)
     are left out of that corner's range; 'active_all' (bool) says whether every corner is active."""
     roles = tuple(parts) if roles is None else roles

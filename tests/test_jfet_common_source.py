@@ -94,3 +94,24 @@ def test_hand_design_lands_near_its_target() -> None:
                                Conditions(supply=12.0, source_impedance=1e3, load_impedance=47e3), full=False)
     assert abs(-result.metrics["gain"][0] / 10.0 - 1) < 0.3
     assert abs(result.operating_point["id"][0] / min(1e-3, 0.25 * J1.idss_typ) - 1) < 0.3
+
+
+def test_worst_case_and_monte_carlo_draw_the_jfets_own_spread() -> None:
+    """The corners take the IDSS/VP line's two ends (tolerance.worst_case brackets the drain
+    currents of both ends at nominal parts), and Monte Carlo draws positions along it (the
+    builds' currents stay between the two ends at each temperature)."""
+    from optimizer.tolerance import Builds, worst_case
+
+    parts = {k: np.array([v]) for k, v in {"r_gate": 1e6, "r_drain": 4.7e3, "r_source": 330.0, "r_source_dc": 330.0,
+                                            "c_in": 1e-7, "c_out": 1e-5, "c_source": 1e-4}.items()}
+    conditions = Conditions(supply=12.0, source_impedance=1e3, load_impedance=47e3)
+    ends = [float(TOPOLOGY.operating_point(parts, J1, conditions, u)["id"][0]) for u in J1.spread_edges(27.0)]
+    low, high = worst_case(TOPOLOGY, parts, J1, conditions, {}, (27.0, 27.0))["ic"]
+    assert low[0] == pytest.approx(min(ends)) and high[0] == pytest.approx(max(ends))
+    assert max(ends) / min(ends) > 1.5  # the spread is wide: the design problem
+
+    builds = Builds.draw(400, 7, (27.0, 27.0), (12.0, 12.0))
+    u = builds.hfe(J1)
+    assert 0.0 <= u.min() and u.max() <= 1.0 and 0.4 < np.mean(u) < 0.6
+    drawn = TOPOLOGY.operating_point({k: np.repeat(v, u.size) for k, v in parts.items()}, J1, conditions, u)["id"]
+    assert min(ends) * (1 - 1e-9) <= drawn.min() and drawn.max() <= max(ends) * (1 + 1e-9)
