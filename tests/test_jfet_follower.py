@@ -13,12 +13,11 @@ import pytest
 
 from jfet_checks import CORNER_ID_TOLERANCE, corner_errors, designs_of, outside_tolerance
 from optimizer.candidates import design_from_record
-from optimizer.devices import BOLTZMANN, ELEMENTARY_CHARGE, KELVIN_OFFSET, device_from_row
-from optimizer.catalog import load_catalog
+from optimizer.devices import BOLTZMANN, ELEMENTARY_CHARGE, KELVIN_OFFSET
 from optimizer.errors import InputError
 from optimizer.search import SearchSpace, search
 from optimizer.spec import load_spec, parse_spec
-from optimizer.topologies import Conditions, get_topology
+from optimizer.topologies import get_topology
 from spice_agreement import TOLERANCES
 from spice_harness import spice_midband, spice_noise, spice_operating_point
 

@@ -59,8 +59,11 @@ class JFETCommonSource(JFETStage):
     def _r_bias(self, p: Parts) -> np.ndarray:
         return p["r_source"] + p["r_source_dc"]
 
-    def _r_total(self, p: Parts) -> np.ndarray:
-        return p["r_drain"] + p["r_source"] + p["r_source_dc"]
+    def _r_ground(self, p: Parts) -> np.ndarray:
+        return p["r_source"] + p["r_source_dc"]
+
+    def _r_rail(self, p: Parts) -> np.ndarray:
+        return p["r_drain"]
 
     def _gate_return(self, p: Parts, i_d: np.ndarray) -> np.ndarray:
         return 0.0 * i_d

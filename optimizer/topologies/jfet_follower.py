@@ -45,7 +45,7 @@ class JFETFollower(JFETStage):
     def _r_bias(self, p: Parts) -> np.ndarray:
         return p["r_source"]
 
-    def _r_total(self, p: Parts) -> np.ndarray:
+    def _r_ground(self, p: Parts) -> np.ndarray:
         return p["r_source"] + p["r_follower"]
 
     def _gate_return(self, p: Parts, i_d: np.ndarray) -> np.ndarray:

@@ -112,9 +112,13 @@ class JFETStage(StageModel):
         """Resistance (ohm) between the source and the gate's return node (the DC Vgs per Id)."""
         raise NotImplementedError
 
-    def _r_total(self, p: Parts) -> np.ndarray:
-        """Resistance (ohm) the drain current crosses between the rail and ground outside the channel."""
+    def _r_ground(self, p: Parts) -> np.ndarray:
+        """DC resistance (ohm) from the source to ground that the drain current crosses."""
         raise NotImplementedError
+
+    def _r_rail(self, p: Parts) -> np.ndarray:
+        """DC resistance (ohm) from the rail to the drain (0: the drain on the rail)."""
+        return 0.0 * self._r_ground(p)
 
     def _gate_return(self, p: Parts, i_d: np.ndarray) -> np.ndarray:
         """DC voltage (V) of the node r_gate returns to."""
@@ -131,10 +135,11 @@ class JFETStage(StageModel):
         k_beta, vto = device.params(beta, c.temperature)
         ig = device.gate_leakage(c.temperature) + 0.0 * k_beta
         vdd = np.broadcast_to(np.asarray(c.supply, dtype=float), k_beta.shape)
-        r_bias, r_total = self._r_bias(p), self._r_total(p)
-        q = self_bias(ig * p["r_gate"] - vto, r_bias, r_total, vdd, k_beta, device.LAMBDA)
+        r_ground = self._r_ground(p)
+        q = self_bias(ig * p["r_gate"] - vto, self._r_bias(p), r_ground + self._r_rail(p), vdd, k_beta,
+                      device.LAMBDA)
         i_d, x, vds = q["id"], q["x"], q["vds"]
-        v_source = i_d * (r_total - p.get("r_drain", 0.0))
+        v_source = i_d * r_ground
         v_gate = self._gate_return(p, i_d) + ig * p["r_gate"]
         vgs = v_gate - v_source
         k = 1.0 + device.LAMBDA * np.maximum(vds, 0.0)
