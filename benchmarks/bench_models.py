@@ -9,6 +9,12 @@ it, measured in the same run), the full metric set with frequency response and n
 capacitor sizing, and Monte Carlo yield, then issue 16's targets as target / measured / met;
 writes benchmarks/results/models.md.
 
+    .venv/bin/python benchmarks/bench_models.py --topologies
+
+Prints the core and full rates of every registered topology side by side (random designs around
+each stage's hand design; a bipolar stage with the bench NPN, a JFET stage with the bench JFET);
+writes benchmarks/results/models_topologies.md.
+
 One core: BLAS/OpenMP pools are limited to one thread before numpy loads and the process is
 pinned to one CPU. The rate is taken on the process's CPU time (best of several runs), so a
 shared machine's other load does not count against it; the wall-clock rate is shown beside it.
@@ -34,17 +40,21 @@ import numpy as np  # noqa: E402
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))  # the benchmarks package, run as a script
 from benchmarks import reference_kernel  # noqa: E402
 from optimizer import physics  # noqa: E402
-from optimizer.devices import Device  # noqa: E402
+from optimizer.devices import JFET, Device  # noqa: E402
 from optimizer.eseries import series_values  # noqa: E402
 from optimizer.sizing import size_capacitors  # noqa: E402
+from optimizer.synthesis import HandRequirements  # noqa: E402
 from optimizer.tolerance import monte_carlo_yield  # noqa: E402
-from optimizer.topologies import get_topology  # noqa: E402
+from optimizer.topologies import TOPOLOGIES, get_topology  # noqa: E402
 from optimizer.topologies.base import Conditions  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
 DEVICE = Device(id="bench-npn", polarity="npn", hfe_min=100, hfe_typ=200, hfe_max=300,
                 IS=1e-14, BF=200, NF=1.0, VAF=100, RB=50, CJE=10e-12, CJC=4e-12, TF=0.4e-9,
                 vce_sat=0.2, vceo_max=45, p_max=0.5)
+JFET_DEVICE = JFET(id="bench-njf", polarity="njf", idss_min=2e-3, idss_max=6e-3, vp_min=0.5, vp_max=1.5,
+                   vds_max=30.0, p_max=0.3, BETA=4.44e-3, VTO=-0.9, LAMBDA=0.005, CGS=10e-12, CGD=4e-12,
+                   IS=5e-13, KF=1e-18, AF=1.0, TCV=0.0022, BEX=-1.5)
 CONDITIONS = Conditions(supply=12.0, source_impedance=600.0, load_impedance=47e3)
 REPEATS = 5
 # CPU rates of the rows in the run committed before the usable swing (10 % rule on the static
@@ -162,5 +172,46 @@ def main() -> None:
     print(text)
 
 
+def random_around_hand(topology_name: str, n: int, seed: int = 1) -> tuple[dict[str, np.ndarray], Device | JFET]:
+    """n random designs of a topology, each part log-uniform within x0.5..x2 of its hand design
+    (12 V, |gain| 5, 1 mA, 600 ohm into 47k), and the device it is benchmarked with."""
+    topology = get_topology(topology_name)
+    device = JFET_DEVICE if topology.device_kind == "jfet" else DEVICE
+    jfet = {"idss": device.idss_typ, "vp": -device.VTO, "vce_sat": 0.0} if topology.device_kind == "jfet" else {}
+    hand = topology.hand_design(HandRequirements(supply=12.0, gain=5.0, load_impedance=47e3, source_impedance=600.0,
+                                                 f_low=20.0, collector_current=1e-3, **jfet))
+    rng = np.random.default_rng(seed)
+    parts = {role: hand.get(role, 0.0) * np.exp(rng.uniform(np.log(0.5), np.log(2.0), n))
+             for role in topology.resistors + topology.capacitors}
+    return parts, device
+
+
+def topology_table() -> None:
+    """Core and full rates (candidates per CPU second, one core) of every registered topology."""
+    pinned = pin_one_cpu()
+    core_n, full_n = 100_000, 20_000
+    lines = ["# Stage model speed per topology (one core)", "",
+             f"Machine: {platform.machine()}, {os.cpu_count()} cores (process {pinned}), Python "
+             f"{platform.python_version()}, numpy {np.__version__}; load average "
+             f"{os.getloadavg()[0]:.1f} at the start. Produced by `benchmarks/bench_models.py --topologies`.", "",
+             "Designs: each part log-uniform within x0.5..x2 of the stage's hand design (12 V, |gain| 5, "
+             "1 mA, 600 ohm into 47k). Rates are candidates per CPU second, best of "
+             f"{REPEATS}; core = bias, gain, impedances, usable swing, clip, current; full adds the "
+             "response corners, noise, supply rejection and ratings.", "",
+             "| topology | device | core candidates/s (CPU) | full candidates/s (CPU) | core peak memory (MB) |",
+             "| --- | --- | --- | --- | --- |"]
+    for name, topology in TOPOLOGIES.items():
+        core_parts, device = random_around_hand(name, core_n)
+        full_parts = {k: v[:full_n] for k, v in core_parts.items()}
+        core = measure("core", lambda t=topology, p=core_parts, d=device: t.evaluate(p, d, CONDITIONS, full=False),
+                       core_n)
+        full = measure("full", lambda t=topology, p=full_parts, d=device: t.evaluate(p, d, CONDITIONS, full=True),
+                       full_n)
+        lines.append(f"| {name} | {device.id} | {core['rate']:,.0f} | {full['rate']:,.0f} | {core['peak_mb']:.0f} |")
+    text = "\n".join(lines) + "\n"
+    (ROOT / "benchmarks" / "results" / "models_topologies.md").write_text(text, encoding="utf-8")
+    print(text)
+
+
 if __name__ == "__main__":
-    main()
+    topology_table() if "--topologies" in sys.argv[1:] else main()

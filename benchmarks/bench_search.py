@@ -2,6 +2,7 @@
 
     .venv/bin/python benchmarks/bench_search.py            # full run -> benchmarks/results/search.md
     .venv/bin/python benchmarks/bench_search.py --quick    # smoke run: 2 specs, 3 seeds, 500 trials, prints only
+    .venv/bin/python benchmarks/bench_search.py --only bs_e6_jfet_cs,bs_e6_jfet_follower --out benchmarks/results/search_jfet.md
 
 The specs are ``benchmarks/specs/*.yaml``: each names one topology and one device, so the
 exhaustive oracle (``optimizer.exhaustive``) covers the very space the search covers, and
@@ -465,6 +466,10 @@ def main() -> None:
                         help=f"smoke run: 2 specs, 3 seeds, {QUICK_TRIALS} trials, prints only")
     parser.add_argument("--memory-child", metavar="SPEC", help=argparse.SUPPRESS)
     parser.add_argument("--trials", type=int, default=MEMORY_TRIALS, help=argparse.SUPPRESS)
+    parser.add_argument("--only", default=None, metavar="NAMES",
+                        help="comma-separated spec names of benchmarks/specs to run (default: all): our "
+                             "search on all seeds, one journal run, two random-search seeds; skips the "
+                             "large oracle and memory rows")
     parser.add_argument("--out", type=Path, default=None, help="results file (default: results/search.md; "
                         "--quick writes none unless given)")
     args = parser.parse_args()
@@ -474,9 +479,17 @@ def main() -> None:
     facts = RunFacts.start()
     paths = sorted(SPECS.glob("*.yaml"))
     args.quick = args.quick or bench_mode() == "quick"
+    if args.only:
+        wanted = set(args.only.split(","))
+        unknown = wanted - {p.stem for p in paths}
+        if unknown:
+            parser.error(f"--only: no spec {', '.join(sorted(unknown))} in {SPECS}")
+        paths = [p for p in paths if p.stem in wanted]
     if args.quick:
         paths = [p for p in paths if p.stem in QUICK_SPECS]
         seeds, journal_seeds, default_seeds, random_seeds, budget = 3, 1, 3, 3, QUICK_TRIALS
+    elif args.only:  # our search on all 10 seeds, the baselines and the journal timing on fewer
+        seeds, journal_seeds, default_seeds, random_seeds, budget = SEEDS, 1, 1, 2, None
     else:
         seeds, journal_seeds, default_seeds, random_seeds, budget = SEEDS, 3, 3, 5, None
     results = []
@@ -485,8 +498,8 @@ def main() -> None:
             results.append(bench_spec(path, seeds, journal_seeds, default_seeds, random_seeds, Path(tmp), budget))
     slowest = max(results, key=lambda r: median(r["timing"]["memory_search"]))
     profile = profile_search(SPECS / f"{slowest['name']}.yaml", budget)
-    memory = peak_memory(2_000 if args.quick else MEMORY_TRIALS)  # before the big oracle grows this process
-    oracle_big = None if args.quick else oracle_alone()
+    memory = None if args.only else peak_memory(2_000 if args.quick else MEMORY_TRIALS)  # before the big oracle
+    oracle_big = None if args.quick or args.only else oracle_alone()
     text = report(results, oracle_big, memory, profile, seeds, facts)
     print("\n" + text)
     out = args.out or (None if args.quick else RESULTS)

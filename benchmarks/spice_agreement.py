@@ -3,7 +3,8 @@
     .venv/bin/python benchmarks/spice_agreement.py
 
 One row per design and metric: model, ngspice, error, tolerance; for gain and collector
-current also the hand method's own estimate and its error against ngspice.
+current also the hand method's own estimate and its error against ngspice. The JFET stages'
+designs (spice_designs.jfet_check_designs) follow the bipolar ones; their "ic" is the drain current.
 """
 from __future__ import annotations
 
@@ -14,7 +15,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "tests"))
 
 from spice_agreement import agreement_rows  # noqa: E402
-from spice_designs import check_designs  # noqa: E402
+from spice_designs import check_designs, jfet_check_designs  # noqa: E402
 
 
 def _fmt(value: float | None) -> str:
@@ -22,7 +23,7 @@ def _fmt(value: float | None) -> str:
 
 
 def main() -> int:
-    rows = [row for design in check_designs() for row in agreement_rows(design)]
+    rows = [row for design in check_designs() + jfet_check_designs() for row in agreement_rows(design)]
     out = ROOT / "benchmarks" / "results" / "spice_agreement.md"
     lines = [
         "# Stage models against ngspice",

@@ -169,6 +169,11 @@ def _describe(kind: str, row: pd.Series | None) -> dict:
     """Tolerance, rating, package and technology of a catalog row, as labels with units."""
     if row is None:
         return {"tolerance": "", "rating": "", "package": "", "technology": "", "polarised": False}
+    if kind == "transistor" and str(row["polarity"]).lower() == "njf":
+        return {"tolerance": f"IDSS {format_value(float(row['idss_min']), 'A')}..{format_value(float(row['idss_max']), 'A')}, "
+                             f"VP {format_value(float(row['vp_min']), 'V')}..{format_value(float(row['vp_max']), 'V')}",
+                "rating": f"Vds {format_value(float(row['vds_max']), 'V')}, {format_value(float(row['p_max']), 'W')}",
+                "package": "", "technology": "N-channel JFET", "polarised": True}
     if kind == "transistor":
         return {"tolerance": f"hFE {row['hfe_min']:g}..{row['hfe_max']:g}",
                 "rating": f"Vceo {format_value(float(row['vceo_max']), 'V')}, {format_value(float(row['p_max']), 'W')}",

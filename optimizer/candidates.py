@@ -14,7 +14,7 @@ import numpy as np
 
 from optimizer import eseries, scoring
 from optimizer.catalog import Catalog
-from optimizer.devices import Device
+from optimizer.devices import AnyDevice, device_from_record, device_from_row
 from optimizer.errors import InputError, Problem
 from optimizer.metrics import LIMIT_METRICS
 from optimizer.record import candidate_record, part_label, record_conditions
@@ -68,7 +68,7 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
     topology = get_topology(topology_name)
     _check_parts(topology, parts)
     device_id = device_id or spec.devices[0]
-    device = Device.from_row(catalog.transistor(device_id))
+    device = device_from_row(catalog.transistor(device_id))
     conditions = scoring.conditions_from_spec(spec)
     arrays = {role: np.array([float(v)]) for role, v in parts.items() if float(v) > 0 or role in topology.resistors}
     decoupled = "r_decouple" in arrays
@@ -116,7 +116,7 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
         transistor=device.record(), metrics=metrics, operating_point=op,
         operating_point_spread={
             "ic": [float(judged.spread["ic_low"][0]), op["ic"], float(judged.spread["ic_high"][0])],
-            "v_out_q": [float(judged.spread["v_out_low"][0]), op.get("v_out_q", op["v_collector"]),
+            "v_out_q": [float(judged.spread["v_out_low"][0]), op["v_out_q"],
                         float(judged.spread["v_out_high"][0])]},
         ratings={k: {"value": float(np.asarray(result.metrics["q_power"] if k == "q_power"
                                                else result.ratings[k])[0]), "limit": float(limit)}
@@ -156,7 +156,7 @@ def hazard_cautions(spec: Spec) -> list[str]:
     return notes
 
 
-def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], Device, Conditions]:
+def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], AnyDevice, Conditions]:
     """Rebuild a candidate's design from its record alone (no spec, no catalog): the topology,
     its parts as 1-element float arrays by role, the device, and the conditions at the nominal
     temperature. InputError naming the missing or bad key if the record is incomplete."""
@@ -198,5 +198,5 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], D
         problems.append(Problem("conditions.band", band, "[low, high] in Hz"))
     if problems:
         raise incomplete(problems)
-    device = Device.from_record(record["transistor"])
+    device = device_from_record(record["transistor"])
     return topology, parts, device, Conditions(band=band, temperature=NOMINAL_TEMPERATURE_C, **numbers)

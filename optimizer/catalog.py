@@ -11,7 +11,7 @@ from __future__ import annotations
 import csv
 import functools
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable
 
@@ -21,6 +21,7 @@ import yaml
 
 from optimizer import eseries
 from optimizer.bundled import catalog_dir
+from optimizer.devices import JFET
 from optimizer.errors import InputError, Problem
 from optimizer.units import parse_quantity
 
@@ -172,6 +173,47 @@ _TRANSISTOR_COLUMNS: dict[str, Callable] = {
     "p_max": _cell_quantity("W"),
     "KF": _cell_optional_quantity(""),  # SPICE flicker-noise coefficient (empty or 0: none)
     "AF": _cell_optional_quantity(""),  # SPICE flicker-noise exponent (empty: 1)
+    "description": _cell_optional_text,
+    "unit_price": _cell_quantity(None, positive=False),
+    "stock_qty": _cell_stock,
+}
+def _cell_signed(unit: str) -> Callable[[str, str], float]:
+    """Parser for a plain signed number in ``unit`` (SI, no prefix), e.g. a pinch-off voltage -0.9."""
+
+    def parse(text: str, where: str) -> float:
+        try:
+            value = float(text.strip())
+        except ValueError:
+            raise InputError.single(where, text, f"a signed number in {unit or 'plain units'}, e.g. -0.9") from None
+        if not math.isfinite(value):
+            raise InputError.single(where, text, f"a finite signed number in {unit or 'plain units'}")
+        return value
+
+    return parse
+
+
+#: jfets.csv (optional file): n-channel JFETs, IDSS/VP ranges, ratings and SPICE JFET level-1
+#: parameters (devices.JFET); its rows join the transistors table (polarity njf, the BJT
+#: columns empty there), so a spec names a JFET in ``devices`` like any transistor.
+_JFET_COLUMNS: dict[str, Callable] = {
+    "id": _cell_text,
+    "polarity": _cell_choice("njf"),
+    "idss_min": _cell_quantity("A"),
+    "idss_max": _cell_quantity("A"),
+    "vp_min": _cell_quantity("V"),
+    "vp_max": _cell_quantity("V"),
+    "BETA": _cell_quantity("A/V^2"),
+    "VTO": _cell_signed("V"),
+    "LAMBDA": _cell_quantity("1/V", positive=False),
+    "CGS": _cell_quantity("F", positive=False),
+    "CGD": _cell_quantity("F", positive=False),
+    "IS": _cell_quantity("A"),
+    "KF": _cell_optional_quantity(""),
+    "AF": _cell_optional_quantity(""),
+    "TCV": _cell_quantity("V/K", positive=False),
+    "BEX": _cell_signed(""),
+    "vds_max": _cell_quantity("V"),
+    "p_max": _cell_quantity("W"),
     "description": _cell_optional_text,
     "unit_price": _cell_quantity(None, positive=False),
     "stock_qty": _cell_stock,
@@ -430,11 +472,24 @@ def load_catalog_dir(path: Path) -> Catalog:
     for name, (key, columns) in ((n, spec) for n, spec in files.items() if spec):
         tables[name], found = _read_table(path / name, f"{prefix}/{name}", columns, key)
         problems += found
+    transistors = tables.get("transistors.csv")
+    if (path / "jfets.csv").is_file():
+        jfets, found = _read_table(path / "jfets.csv", f"{prefix}/jfets.csv", _JFET_COLUMNS, "id")
+        problems += found
+        for row in ([] if found else jfets.to_dict(orient="records")):
+            try:
+                JFET.from_row(row)  # the typical point inside the ranges, VTO negative
+            except InputError as err:
+                problems += [replace(p, where=f"{prefix}/jfets.csv {p.where}") for p in err.problems]
+        if transistors is not None:
+            clash = set(jfets["id"]) & set(transistors["id"])
+            problems += [Problem(f"{prefix}/jfets.csv id", i, "an id not used in transistors.csv") for i in clash]
+            transistors = pd.concat([transistors, jfets], ignore_index=True)
     if problems:
         raise InputError(problems, title=f"invalid parts catalog {path.name}")
     return Catalog(name=str(meta["name"]), description=str(meta["description"]).strip(),
                    resistors=tables["resistors.csv"], capacitors=tables["capacitors.csv"],
-                   transistors=tables["transistors.csv"], currency=str(meta["currency"]),
+                   transistors=transistors, currency=str(meta["currency"]),
                    stock_tracked=meta["stock_tracked"])
 
 

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, fields
-from typing import Any, Mapping
+from typing import Any, ClassVar, Mapping
 
 import numpy as np
 
@@ -30,6 +30,8 @@ FLICKER_KEYS = ("KF", "AF")  # optional SPICE flicker-noise parameters (KF 0 = n
 @dataclass(frozen=True)
 class Device:
     """One transistor type: ratings, hFE spread and SPICE model parameters (SI units)."""
+
+    kind: ClassVar[str] = "bjt"  # the device kind a topology declares it takes (Topology.device_kind)
 
     id: str
     polarity: str
@@ -119,6 +121,23 @@ class Device:
         """1/VAF in 1/V (0 when VAF is 0 or infinite, as in SPICE)."""
         return 0.0 if self.VAF <= 0 or math.isinf(self.VAF) else 1.0 / self.VAF
 
+    # ---- the device's own spread (tolerance.py draws it; the models take it as ``hfe``) ----
+    @property
+    def spread_typ(self) -> float:
+        """The spread variable at the typical device: hFE typ."""
+        return self.hfe_typ
+
+    def spread_edges(self, temp_c: float) -> tuple[float, float]:
+        """The spread variable at its two worst-case corners at temp_c (degC): hFE min and max."""
+        factor = float(hfe_temperature_factor(temp_c))
+        return self.hfe_min * factor, self.hfe_max * factor
+
+    def spread_draw(self, position: np.ndarray, temp_c: np.ndarray) -> np.ndarray:
+        """The spread variable of Monte Carlo builds at positions in [0, 1]: hFE log-uniform
+        between min and max, times its rise with temperature (degC)."""
+        log_hfe = np.log(self.hfe_min) + position * np.log(self.hfe_max / self.hfe_min)
+        return np.exp(log_hfe) * hfe_temperature_factor(temp_c)
+
 
 def thermal_voltage(temp_c: float | np.ndarray) -> float | np.ndarray:
     """kT/q in V at a temperature in degrees Celsius."""
@@ -136,3 +155,176 @@ def saturation_current(IS: float, temp_c: float | np.ndarray) -> float | np.ndar
 def hfe_temperature_factor(temp_c: float | np.ndarray, ref_c: float = SPICE_TNOM_C) -> float | np.ndarray:
     """Multiplier of hFE at temp_c relative to ref_c (common practice: about +0.5 %/K)."""
     return (1.0 + HFE_TEMPCO) ** (np.asarray(temp_c, dtype=float) - ref_c)
+
+
+# ----------------------------------------------------------------------------- JFETs
+
+JFET_SPICE_KEYS = ("BETA", "VTO", "LAMBDA", "CGS", "CGD", "IS", "KF", "AF", "TCV", "BEX")
+JFET_PB = 1.0  # V, SPICE default gate junction potential (PB)
+JFET_M = 0.5  # grading of the gate junction capacitances (SPICE JFET level 1: square root)
+
+
+@dataclass(frozen=True)
+class JFET:
+    """One n-channel JFET type: IDSS and pinch-off (VP) spread, ratings and SPICE JFET
+    level-1 parameters (SI units).
+
+    Square law in saturation: Id = BETA*(Vgs - VTO)^2*(1 + LAMBDA*Vds), so the typical
+    IDSS = BETA*VTO^2 and VP = -VTO. The spread runs along the trade's line: a part of high
+    IDSS has a high |VP| (both fall out of the same channel doping and width), so one
+    position u in [0, 1] places a part, log-linearly from (idss_min, vp_min) at u = 0
+    through the typical (BETA, VTO) at u = 0.5 to (idss_max, vp_max) at u = 1. Temperature
+    as in SPICE: VTO(T) = VTO - TCV*(T - Tnom), BETA(T) = BETA*(T/Tnom)^BEX; the gate leakage
+    is the two reverse-biased gate junctions, 2*IS(T), IS(T) = IS*exp((T/Tnom - 1)*EG/VT(T))
+    (measured against ngspice's JFET: its gate current at 27 and 77 degC).
+    """
+
+    kind: ClassVar[str] = "jfet"
+    NF: ClassVar[float] = 1.0  # gate junction emission coefficient (SPICE JFET level 1: 1)
+    vce_sat: ClassVar[float] = 0.0  # no fixed saturation voltage: the stages judge Vds against Vgs - VTO
+
+    id: str
+    polarity: str
+    idss_min: float  # A
+    idss_max: float  # A
+    vp_min: float  # V, pinch-off magnitude
+    vp_max: float  # V
+    vds_max: float  # V, drain-source (and gate-drain breakdown BVgss) rating
+    p_max: float  # W
+    BETA: float  # A/V^2
+    VTO: float  # V, negative (n-channel)
+    LAMBDA: float  # 1/V
+    CGS: float  # F, zero-bias gate-source capacitance
+    CGD: float  # F, zero-bias gate-drain capacitance
+    IS: float  # A, gate junction saturation current
+    KF: float = 0.0  # flicker noise: drain-current PSD KF*Id^AF/f (A^2/Hz); 0 = none
+    AF: float = 1.0
+    TCV: float = 0.0  # V/K
+    BEX: float = 0.0
+
+    _NUMBERS = ("idss_min", "idss_max", "vp_min", "vp_max", "vds_max", "p_max", *JFET_SPICE_KEYS)
+
+    @classmethod
+    def from_row(cls, row: Mapping) -> "JFET":
+        """Build a JFET from a catalog row (or a record's flattened block); InputError naming each bad field."""
+        where = f"jfet {row.get('id', '?')!s}"
+        problems: list[Problem] = []
+        values: dict[str, Any] = {"id": str(row.get("id", "")).strip(),
+                                     "polarity": str(row.get("polarity", "")).strip().lower()}
+        optional = {"KF": 0.0, "AF": 1.0, "TCV": 0.0, "BEX": 0.0}
+        for name in cls._NUMBERS:
+            raw = row.get(name)
+            if raw is None or (isinstance(raw, float) and math.isnan(raw)):
+                if name in optional:
+                    values[name] = optional[name]
+                else:
+                    problems.append(Problem(f"{where}.{name}", raw, "a value is required"))
+                continue
+            try:
+                values[name] = float(raw)
+            except (TypeError, ValueError):
+                problems.append(Problem(f"{where}.{name}", raw, "a number in SI units"))
+        if values["polarity"] != "njf":
+            problems.append(Problem(f"{where}.polarity", values["polarity"], "'njf' (the JFET stages are n-channel)"))
+        if not problems:
+            for name in ("idss_min", "idss_max", "vp_min", "vp_max", "vds_max", "p_max", "BETA", "IS", "AF"):
+                if not values[name] > 0:
+                    problems.append(Problem(f"{where}.{name}", values[name], "a positive number"))
+            for name in ("LAMBDA", "CGS", "CGD", "KF"):
+                if values[name] < 0:
+                    problems.append(Problem(f"{where}.{name}", values[name], "zero or a positive number"))
+            if not values["VTO"] < 0:
+                problems.append(Problem(f"{where}.VTO", values["VTO"], "a negative pinch-off voltage (n-channel)"))
+        if not problems:
+            idss, vp = values["BETA"] * values["VTO"] ** 2, -values["VTO"]
+            if not values["idss_min"] <= idss <= values["idss_max"]:
+                problems.append(Problem(f"{where}.BETA", values["BETA"],
+                                        f"BETA*VTO^2 (the typical IDSS, now {idss:.4g} A) between idss_min "
+                                        f"{values['idss_min']} and idss_max {values['idss_max']}"))
+            if not values["vp_min"] <= vp <= values["vp_max"]:
+                problems.append(Problem(f"{where}.VTO", values["VTO"],
+                                        f"-VTO between vp_min {values['vp_min']} and vp_max {values['vp_max']}"))
+        if problems:
+            raise InputError(problems, title="invalid jfet")
+        return cls(**values)
+
+    @classmethod
+    def from_record(cls, transistor: Mapping) -> "JFET":
+        """Rebuild from a candidate record's "transistor" block (ratings, ranges and model{BETA..BEX})."""
+        model = transistor.get("model")
+        if not isinstance(model, Mapping):
+            raise InputError.single("transistor.model", model, "a mapping with " + ", ".join(JFET_SPICE_KEYS),
+                                    title="incomplete candidate")
+        return cls.from_row({**{k: v for k, v in transistor.items() if k != "model"}, **model})
+
+    def record(self) -> dict:
+        """The candidate record's "transistor" block: ratings, ranges, the derived datasheet
+        figures (idss_typ, vp_typ, gfs, ciss, crss in SI units) and the SPICE model."""
+        top = {k: getattr(self, k) for k in ("id", "polarity", "idss_min", "idss_max", "vp_min", "vp_max",
+                                             "vds_max", "p_max")}
+        return {**top, "kind": self.kind, "idss_typ": self.idss_typ, "vp_typ": -self.VTO, "gfs": self.gfs,
+                "ciss": self.CGS + self.CGD, "crss": self.CGD, "model": self.spice_model()}
+
+    def spice_model(self) -> dict[str, float]:
+        """SPICE NJF .model parameters (JFET_SPICE_KEYS)."""
+        return {k: float(getattr(self, k)) for k in JFET_SPICE_KEYS}
+
+    @property
+    def idss_typ(self) -> float:
+        """Typical IDSS (A): BETA*VTO^2."""
+        return self.BETA * self.VTO ** 2
+
+    @property
+    def gfs(self) -> float:
+        """Typical forward transconductance at IDSS (S): 2*BETA*|VTO| = 2*IDSS/VP."""
+        return 2.0 * self.BETA * abs(self.VTO)
+
+    @property
+    def vceo_max(self) -> float:
+        """The voltage rating the ratings table reads (V): here the drain-source rating."""
+        return self.vds_max
+
+    # ---- the device's own spread: u in [0, 1] along the IDSS/VP line, typical at 0.5 ----
+    spread_typ: ClassVar[float] = 0.5
+
+    def spread_edges(self, temp_c: float) -> tuple[float, float]:
+        """The worst-case corners of the spread: the line's ends (lowest IDSS and VP, highest)."""
+        return 0.0, 1.0
+
+    def spread_draw(self, position: np.ndarray, temp_c: np.ndarray) -> np.ndarray:
+        """Monte Carlo builds: the position itself (uniform along the line)."""
+        return np.asarray(position, dtype=float)
+
+    def params(self, u: np.ndarray, temp_c: float | np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(BETA (A/V^2), VTO (V)) of parts at positions u, at temp_c (degC)."""
+        u = np.asarray(u, dtype=float)
+        lo = u <= 0.5
+        w = np.where(lo, 2.0 * u, 2.0 * u - 1.0)
+        idss_a, idss_b = np.where(lo, self.idss_min, self.idss_typ), np.where(lo, self.idss_typ, self.idss_max)
+        vp_a, vp_b = np.where(lo, self.vp_min, -self.VTO), np.where(lo, -self.VTO, self.vp_max)
+        idss = idss_a * (idss_b / idss_a) ** w
+        vp = vp_a * (vp_b / vp_a) ** w
+        t, t_nom = np.asarray(temp_c, dtype=float) + KELVIN_OFFSET, SPICE_TNOM_C + KELVIN_OFFSET
+        beta = idss / vp ** 2 * (t / t_nom) ** self.BEX
+        vto = -vp - self.TCV * (t - t_nom)
+        return beta, vto
+
+    def gate_leakage(self, temp_c: float | np.ndarray) -> np.ndarray:
+        """Gate current (A, out of the gate) of the two reverse-biased gate junctions: 2*IS(T)."""
+        t, t_nom = np.asarray(temp_c, dtype=float) + KELVIN_OFFSET, SPICE_TNOM_C + KELVIN_OFFSET
+        return 2.0 * self.IS * np.exp((t / t_nom - 1.0) * SPICE_EG / thermal_voltage(temp_c))
+
+
+AnyDevice = Device | JFET
+
+
+def device_from_row(row: Mapping) -> AnyDevice:
+    """The device of a catalog row: a JFET for polarity njf, else a bipolar transistor."""
+    return JFET.from_row(row) if str(row.get("polarity", "")).strip().lower() == "njf" else Device.from_row(row)
+
+
+def device_from_record(transistor: Mapping) -> AnyDevice:
+    """The device of a candidate record's "transistor" block (see :func:`device_from_row`)."""
+    if isinstance(transistor, Mapping) and str(transistor.get("polarity", "")).strip().lower() == "njf":
+        return JFET.from_record(transistor)
+    return Device.from_record(transistor)

@@ -26,6 +26,16 @@ from optimizer.units import format_value
 
 MODEL_KEYS: tuple[str, ...] = ("IS", "BF", "NF", "VAF", "RB", "CJE", "CJC", "TF")
 OPTIONAL_MODEL_KEYS: tuple[str, ...] = ("KF", "AF")  # flicker noise, written when given
+# A JFET stage's device (SPICE NJF level 1): required keys, optional ones (flicker, temperature)
+JFET_MODEL_KEYS: tuple[str, ...] = ("BETA", "VTO", "LAMBDA", "CGS", "CGD", "IS")
+JFET_OPTIONAL_MODEL_KEYS: tuple[str, ...] = ("KF", "AF", "TCV", "BEX")
+
+
+def _model_form(stage: Topology) -> tuple[tuple[str, ...], tuple[str, ...], str, str]:
+    """(required keys, optional keys, SPICE model type, designator letter) of a stage's device."""
+    if stage.device_kind == "jfet":
+        return JFET_MODEL_KEYS, JFET_OPTIONAL_MODEL_KEYS, "NJF", "J"
+    return MODEL_KEYS, OPTIONAL_MODEL_KEYS, "NPN", "Q"
 
 # Stand-in for a zero source impedance (SPICE needs a finite resistor), ohm.
 ZERO_SOURCE_RESISTANCE = 1e-3
@@ -51,7 +61,8 @@ def designators(topology: str, parts: Mapping[str, float]) -> dict[str, str]:
             letter = role[0].upper()
             count[letter] += 1
             out[role] = f"{letter}{count[letter]}"
-    out.update({role: f"Q{i}" for i, (role, *_) in enumerate(model.transistor_pins, 1)})
+    letter = _model_form(model)[3]
+    out.update({role: f"{letter}{i}" for i, (role, *_) in enumerate(model.transistor_pins, 1)})
     return out
 
 
@@ -107,12 +118,13 @@ def _check_parts(topology: str, parts: Mapping[str, float]) -> None:
         raise InputError(problems, title=f"parts do not fit topology {topology}")
 
 
-def _check_model(model: Mapping[str, float]) -> None:
+def _check_model(model: Mapping[str, float], stage: Topology) -> None:
+    required, optional, _, _ = _model_form(stage)
     problems = [Problem(f"model.{key}", model.get(key), "a finite number")
-                for key in MODEL_KEYS + tuple(k for k in OPTIONAL_MODEL_KEYS if k in model)
+                for key in required + tuple(k for k in optional if k in model)
                 if not isinstance(model.get(key), (int, float)) or not math.isfinite(model[key])]
     if problems:
-        raise InputError(problems, title=f"device model needs {', '.join(MODEL_KEYS)}")
+        raise InputError(problems, title=f"device model needs {', '.join(required)}")
 
 
 def nominal_temperature(conditions: Any) -> float:
@@ -142,7 +154,7 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
     """SPICE netlist of one stage.
 
     ``parts`` maps role -> value (ohm, F); ``model`` holds the Gummel-Poon NPN keys of
-    MODEL_KEYS; ``conditions`` has supply (V), source_impedance and load_impedance (ohm; an
+    MODEL_KEYS (a JFET stage: the NJF level-1 keys of JFET_MODEL_KEYS, designator J1); ``conditions`` has supply (V), source_impedance and load_impedance (ohm; an
     infinite load is written as OPEN_LOAD_RESISTANCE), load_capacitance (F, 0 = none),
     temperature (degC, or a (low, high) range simulated at its midpoint) and band (Hz).
     The signal source ``Vsig`` is AC 1 and SIN with ``amplitude`` (V peak) at ``frequency``
@@ -150,7 +162,7 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
     each of ``cautions`` becomes a comment line.
     """
     _check_parts(topology, parts)
-    _check_model(model)
+    _check_model(model, get_topology(topology))
     supply = float(conditions.supply)
     source = float(conditions.source_impedance)
     load = float(conditions.load_impedance)
@@ -200,8 +212,9 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
     lines.append(f"Rload out 0 {(load if math.isfinite(load) else OPEN_LOAD_RESISTANCE)!r}")
     if load_c > 0:
         lines.append(f"Cload out 0 {load_c!r}")
-    params = " ".join(f"{key}={float(model[key])!r}" for key in MODEL_KEYS + OPTIONAL_MODEL_KEYS if key in model)
-    lines.append(f".model {model_name} NPN({params})")
+    required, optional, kind, _ = _model_form(stage)
+    params = " ".join(f"{key}={float(model[key])!r}" for key in required + optional if key in model)
+    lines.append(f".model {model_name} {kind}({params})")
     if analyses:
         lines.append(analyses.rstrip("\n"))
     lines.append(".end")

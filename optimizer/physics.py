@@ -13,7 +13,7 @@ from collections.abc import Callable, Iterable, Sequence
 
 import numpy as np
 
-from optimizer.devices import BOLTZMANN, ELEMENTARY_CHARGE, KELVIN_OFFSET, Device
+from optimizer.devices import BOLTZMANN, ELEMENTARY_CHARGE, KELVIN_OFFSET, AnyDevice
 
 VJ = 0.75  # V, SPICE default junction potential (VJE = VJC)
 MJ = 0.33  # SPICE default grading coefficient (MJE = MJC)
@@ -125,7 +125,7 @@ def depletion_capacitance(c0: float, v: np.ndarray) -> np.ndarray:
     return np.where(v < FC * VJ, rev, lin)
 
 
-def small_signal(bias: dict[str, np.ndarray], device: Device, beta: np.ndarray, nvt: float,
+def small_signal(bias: dict[str, np.ndarray], device: AnyDevice, beta: np.ndarray, nvt: float,
                  i_s: float) -> dict[str, np.ndarray]:
     """Hybrid-pi parameters at a bias point (from :func:`solve_junction`).
 
@@ -250,6 +250,22 @@ class Network:
         self.noise.append((b, e, "shot", ss["ib"]))
         if np.any(ss["flicker"] > 0):  # SPICE: KF*Ib^AF/f between the internal base and the emitter
             self.noise.append((b, e, "flicker", ss["flicker"]))
+
+    def jfet(self, g: str, d: str | None, s: str | None, ss: dict[str, np.ndarray], ac: bool) -> None:
+        """JFET small signal (SPICE level 1): gm*vgs and gds d-s, Cgs g-s and Cgd g-d; noise as
+        in SPICE, the channel's thermal 8kT*gm/3 (a resistor 3/(2 gm)) and the flicker
+        KF*Id^AF/f d-s, plus the gate leakage's shot noise 2q*Ig/2 across each of the two
+        reverse-biased gate junctions, g-s and g-d."""
+        self.admittance(d, s, ss["gds"])
+        self.vccs(d, s, g, s, ss["gm"])
+        if ac:
+            self._stamp(self.cap, g, s, ss["cgs"])
+            self._stamp(self.cap, g, d, ss["cgd"])
+        self.noise.append((d, s, "thermal", 1.5 / ss["gm"]))
+        self.noise.append((g, s, "shot", 0.5 * ss["ig"]))
+        self.noise.append((g, d, "shot", 0.5 * ss["ig"]))
+        if np.any(ss["flicker"] > 0):
+            self.noise.append((d, s, "flicker", ss["flicker"]))
 
     def noise_sources(self) -> list[tuple[str | None, str | None, np.ndarray]]:
         """Noise current sources (from node, to node, PSD in A^2/Hz): resistors' thermal, junctions'

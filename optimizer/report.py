@@ -152,10 +152,16 @@ def design_sheet(candidate: dict, spec: Spec, catalog: Catalog, *, units: int = 
     basis = (record.get("basis") or {}).get("label") or NO_BASIS
     verdict = "meets every limit" if record.get("feasible") else "MISSES: " + ", ".join(record.get("violations", {}))
     connections = []
-    for role, name in sorted(names.items(), key=lambda kv: ("RCQ".index(kv[1][0]), int(kv[1][1:]))):
-        label = record["transistor"]["id"] if name.startswith("Q") else record["parts"][role]["label"]
-        ends = " / ".join(f"{pin} {node}" for pin, node in zip(("C", "B", "E"), nodes[role])) \
-            if name.startswith("Q") else f"{nodes[role][0]} – {nodes[role][1]}"
+    transistors = {role for role, *_ in topology.transistor_pins}
+    spread_words = ("IDSS and VP at both ends of their spread" if topology.device_kind == "jfet"
+                    else "hFE at its min and max")
+    pins = ("D", "G", "S") if topology.device_kind == "jfet" else ("C", "B", "E")
+    order = {"R": 0, "C": 1}  # then the transistors (Q.., or J.. for a JFET)
+    for role, name in sorted(names.items(), key=lambda kv: (2 if kv[0] in transistors else order[kv[1][0]],
+                                                             int(kv[1][1:]))):
+        label = record["transistor"]["id"] if role in transistors else record["parts"][role]["label"]
+        ends = " / ".join(f"{pin} {node}" for pin, node in zip(pins, nodes[role])) \
+            if role in transistors else f"{nodes[role][0]} – {nodes[role][1]}"
         connections.append([name, role, label, ends])
     op_rows = [[node, f"{lo:.3f} V", f"{typ:.3f} V", f"{hi:.3f} V"] for node, (lo, typ, hi) in spread.items()]
     op_rows += [[k, "", show(k, v), ""] for k, v in record["operating_point"].items() if not k.startswith("v_")]
@@ -185,7 +191,7 @@ Yield: {show('yield', record['metrics'].get('yield'))} of builds meet every limi
 {_table(list(bill.lines.columns), bom_rows)}
 <h2>Operating point</h2>
 <p>DC node voltages to ground, typical and min/max over the worst-case corners (parts at their tolerance,
-hFE at its min and max, {spec.temperature[0]:g} °C and {spec.temperature[1]:g} °C).</p>
+{spread_words}, {spec.temperature[0]:g} °C and {spec.temperature[1]:g} °C).</p>
 {_table(["node / quantity", "min", "typ", "max"], op_rows)}
 <h2>Metrics and margins</h2>
 {_table(["metric", "value", "spec limit", "margin"], _margins(record, spec, catalog.currency))}

@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from optimizer import scoring
-from optimizer.devices import Device
+from optimizer.devices import AnyDevice
 from optimizer.spec import Spec
 from optimizer.tolerance import Tolerance, bias_spread, monte_carlo_yield, worst_case
 from optimizer.topologies.base import Conditions, Topology
@@ -78,7 +78,7 @@ def _corner_violations(spec: Spec, spread: dict[str, tuple[np.ndarray, np.ndarra
     return {k: np.maximum(a[k], b[k]) for k in a}
 
 
-def judge(spec: Spec, topology: Topology, parts: dict[str, np.ndarray], device: Device, conditions: Conditions,
+def judge(spec: Spec, topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions,
           tolerances: dict[str, Tolerance], limits: dict[str, float | np.ndarray],
           nominal_violations: dict[str, np.ndarray], *, full: bool, builds: int,
           basis: str | None = None, seed: int | None = None) -> Judgement:

@@ -12,7 +12,7 @@ from typing import Mapping
 import numpy as np
 
 from optimizer.catalog import VALUE_RTOL
-from optimizer.devices import Device
+from optimizer.devices import AnyDevice
 from optimizer.metrics import LIMIT_METRICS
 from optimizer.spec import Spec
 from optimizer.topologies.base import Conditions
@@ -68,7 +68,7 @@ def transistor_derating(ambient_c: float) -> float:
 
 
 def rating_limits(spec: Spec, resistor_ratings: dict[str, float | np.ndarray],
-                  capacitor_ratings: dict[str, float | np.ndarray], device: Device) -> dict[str, float | np.ndarray]:
+                  capacitor_ratings: dict[str, float | np.ndarray], device: AnyDevice) -> dict[str, float | np.ndarray]:
     """The derated limit of every rating a topology reports: p_<resistor> (W, the part's rating
     derated to the spec's highest ambient), v_<capacitor> (V, 80 % of the rated voltage),
     vce_max (V, the device's Vceo) and q_power (W, the device's dissipation derated to the

@@ -31,7 +31,7 @@ from optuna.trial import TrialState
 
 from optimizer import robustness, scoring
 from optimizer.catalog import Catalog, load_catalog
-from optimizer.devices import Device
+from optimizer.devices import AnyDevice, device_from_row
 from optimizer.errors import InputError
 from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
 from optimizer.record import candidate_record, part_label, record_conditions
@@ -44,7 +44,7 @@ from optimizer.synthesis import hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import SUPPLY_PARTS
 from optimizer.units import format_value
-from optimizer.validation import validate_spec
+from optimizer.validation import topologies_with_devices, validate_spec
 
 STATUSES = ("queued", "running", "done", "failed", "cancelled")
 SHORTLIST_SAMPLES = robustness.FINAL_BUILDS  # Monte Carlo builds for each shortlisted design's yield
@@ -110,7 +110,7 @@ class SearchSpace:
     catalog: Catalog
     resistors: PartTable
     capacitors: PartTable
-    devices: dict[str, Device]
+    devices: dict[str, AnyDevice]
     device_price: dict[str, float]
     topologies: tuple[str, ...]
     _distributions: dict[str, dict] = field(default_factory=dict, repr=False)
@@ -134,10 +134,11 @@ class SearchSpace:
             raise InputError.single("parts.capacitor_range", list(p.capacitor_range),
                                     f"a range holding at least one {p.capacitor_series} capacitor{stock_note} "
                                     f"in catalog {catalog.name!r}", title="empty search space")
-        devices = {d: Device.from_row(catalog.transistor(d)) for d in spec.devices}
+        devices = {d: device_from_row(catalog.transistor(d)) for d in spec.devices}
         prices = {d: float(catalog.transistor(d).get("unit_price") or 0.0) for d in spec.devices}
         return cls(spec, catalog, PartTable.from_catalog(catalog, "resistor", r_values),
-                   PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices, tuple(spec.topologies))
+                   PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices,
+                   topologies_with_devices(spec, catalog))
 
     @property
     def offers_decoupling(self) -> bool:
@@ -155,8 +156,9 @@ class SearchSpace:
         """Ask ``trial`` for a design (parameters: topology, device, <topology>.<role> indices)."""
         topology = (trial.suggest_categorical("topology", list(self.topologies)) if len(self.topologies) > 1
                     else self.topologies[0])
-        device = (trial.suggest_categorical("device", list(self.devices)) if len(self.devices) > 1
-                  else next(iter(self.devices)))
+        choices = self.devices_for(topology)
+        device = (trial.suggest_categorical(self.device_param(topology), choices) if len(choices) > 1
+                  else choices[0])
         chosen = tuple((name.split(".", 1)[1], trial.suggest_int(name, d.low, d.high))
                        for name, d in self.distributions({"topology": topology}).items() if "." in name)
         return Design(topology, device, chosen)
@@ -174,8 +176,9 @@ class SearchSpace:
         out: dict[str, optuna.distributions.BaseDistribution] = {}
         if len(self.topologies) > 1:
             out["topology"] = optuna.distributions.CategoricalDistribution(list(self.topologies))
-        if len(self.devices) > 1:
-            out["device"] = optuna.distributions.CategoricalDistribution(list(self.devices))
+        choices = self.devices_for(topology)
+        if len(choices) > 1:
+            out[self.device_param(topology)] = optuna.distributions.CategoricalDistribution(choices)
         for role in model.resistors:
             out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(
                 ABSENT if role in model.optional_parts else 0, top)
@@ -191,16 +194,29 @@ class SearchSpace:
         params: dict[str, object] = {f"{design.topology}.{role}": int(i) for role, i in design.parts}
         if len(self.topologies) > 1:
             params["topology"] = design.topology
-        if len(self.devices) > 1:
-            params["device"] = design.device
+        if len(self.devices_for(design.topology)) > 1:
+            params[self.device_param(design.topology)] = design.device
         return params
+
+    def devices_for(self, topology: str) -> list[str]:
+        """The spec's devices that ``topology`` takes (of its device_kind), in the spec's order."""
+        kind = get_topology(topology).device_kind
+        return [d for d, device in self.devices.items() if device.kind == kind]
+
+    @staticmethod
+    def device_param(topology: str) -> str:
+        """The trial parameter choosing the device: ``device`` for bipolar stages, ``device_jfet``
+        for JFET stages (each its own choices, so a JFET stage never draws a bipolar device)."""
+        kind = get_topology(topology).device_kind
+        return "device" if kind == "bjt" else f"device_{kind}"
 
     def seeds(self) -> list[Design]:
         """The hand method's designs for every topology and device, rounded both ways to the
         series (its series neighbours), as search seeds."""
         out: list[Design] = []
         for topology in self.topologies:
-            for device_id, device in self.devices.items():
+            for device_id in self.devices_for(topology):
+                device = self.devices[device_id]
                 try:
                     hand = get_topology(topology).hand_design(hand_requirements(self.spec, device))
                 except (InputError, ValueError, ZeroDivisionError):

@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from optimizer.devices import Device
+from optimizer.devices import AnyDevice
 from optimizer.physics import SWEEP, low_3db_corner
 from optimizer.topologies.base import CHUNK_FULL, Conditions, Topology, _source_resistance
 
@@ -20,7 +20,7 @@ _PROBE_VALUES = (1e-6, 1e-8, 1e-10, 1e-4)  # F, tried in turn for each capacitor
 _SCALE_GRID = np.geomspace(1.0, 16.0, 25)  # common factors m tried, ascending
 
 
-def _f_low(topology: Topology, parts: dict[str, np.ndarray], device: Device,
+def _f_low(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice,
            conditions: Conditions) -> np.ndarray:
     """The stage's f_low (Hz), the same values as ``evaluate(full=True).metrics["f_low"]``, computed
     alone: the bias, the closed-form mid-band gain as the reference and the low crossing of the
@@ -45,14 +45,14 @@ def _round_up(values: np.ndarray, allowed: np.ndarray) -> np.ndarray:
     return np.minimum(np.searchsorted(allowed, values * (1 - 1e-9)), allowed.size - 1)
 
 
-def _stacked_f_low(topology: Topology, variants: list[dict[str, np.ndarray]], device: Device,
+def _stacked_f_low(topology: Topology, variants: list[dict[str, np.ndarray]], device: AnyDevice,
                    conditions: Conditions) -> np.ndarray:
     """f_low of several variants of the same candidates in one vectorised call: shape (variants, n)."""
     stacked = {r: np.concatenate([v[r] for v in variants]) for r in variants[0]}
     return _f_low(topology, stacked, device, conditions).reshape(len(variants), -1)
 
 
-def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device: Device,
+def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device: AnyDevice,
                     conditions: Conditions, allowed: np.ndarray,
                     f_low_target: float | None = None) -> dict[str, np.ndarray]:
     """Capacitor values (F) for every candidate, from the sorted ``allowed`` values.
@@ -116,7 +116,7 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
 DECOUPLE_CORNER_DECADES = 1.0  # without a PSRR limit: r_decouple*c_decouple corner this many decades below the band
 
 
-def size_decoupling(topology: Topology, parts: dict[str, np.ndarray], device: Device, conditions: Conditions,
+def size_decoupling(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions,
                     allowed: np.ndarray, psrr_min_db: float | None = None) -> np.ndarray:
     """c_decouple (F) for every candidate, from the sorted ``allowed`` values; 0 where r_decouple is 0.
 

@@ -15,10 +15,11 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 from optimizer import eseries
+from optimizer.devices import JFET
 from optimizer.errors import InputError
 
 if TYPE_CHECKING:
-    from optimizer.devices import Device
+    from optimizer.devices import AnyDevice
     from optimizer.spec import Spec
 
 VBE_HAND = 0.65  # V, the textbook's fixed base-emitter drop
@@ -37,6 +38,8 @@ class HandRequirements:
     collector_current: float = 1e-3
     hfe: float = 200.0
     vce_sat: float = 0.2
+    idss: float = 0.0  # A, a JFET's typical IDSS (0: a bipolar device)
+    vp: float = 0.0  # V, its typical pinch-off magnitude
 
 
 def parallel(a: float, b: float) -> float:
@@ -105,11 +108,26 @@ def rounded_designs(parts: dict[str, float], resistor_series: str, capacitor_ser
     return designs
 
 
-def hand_requirements(spec: "Spec", device: "Device") -> HandRequirements:
+def jfet_hand_bias(req: HandRequirements) -> tuple[float, float, float, float]:
+    """The hand method's JFET self-bias: drain current IDSS/4 (common practice: the middle of
+    the square law, Vgs = -VP/2; less if the current budget asks), the source resistance
+    |Vgs|/Id from the square law, gm = 2*sqrt(Id*IDSS)/VP, and r_gate 1 Mohm or ten times the
+    source impedance (common practice). Returns (Id A, R_bias ohm, gm S, r_gate ohm)."""
+    if not (req.idss > 0 and req.vp > 0):
+        raise InputError.single("device", "bipolar", "a JFET (IDSS and VP)", title="no hand design")
+    i_d = min(0.25 * req.idss, req.collector_current)
+    vgs = -req.vp * (1.0 - math.sqrt(i_d / req.idss))
+    gm = 2.0 * math.sqrt(i_d * req.idss) / req.vp
+    return i_d, -vgs / i_d, gm, max(1e6, 10.0 * req.source_impedance)
+
+
+def hand_requirements(spec: "Spec", device: "AnyDevice") -> HandRequirements:
     """The hand method's inputs from a spec: collector current half the current budget
-    (1 mA when the spec sets none), the device's typical hFE."""
+    (1 mA when the spec sets none), the device's typical hFE (a JFET's typical IDSS and VP)."""
     budget = spec.limits.supply_current_max
-    return HandRequirements(supply=spec.supply, gain=spec.gain.target, load_impedance=spec.load_impedance,
-                            source_impedance=spec.source_impedance, f_low=spec.band[0],
-                            collector_current=0.5 * budget if budget else 1e-3,
-                            hfe=device.hfe_typ, vce_sat=device.vce_sat)
+    common = dict(supply=spec.supply, gain=spec.gain.target, load_impedance=spec.load_impedance,
+                  source_impedance=spec.source_impedance, f_low=spec.band[0],
+                  collector_current=0.5 * budget if budget else 1e-3)
+    if isinstance(device, JFET):
+        return HandRequirements(**common, idss=device.idss_typ, vp=-device.VTO, vce_sat=0.0)
+    return HandRequirements(**common, hfe=device.hfe_typ, vce_sat=device.vce_sat)

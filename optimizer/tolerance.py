@@ -2,12 +2,15 @@
 candidates x samples.
 
 What moves (common practice): every resistor and capacitor within its tolerance, the
-transistor's hFE anywhere in the device's min..max, the temperature over the spec's range,
-with Vbe falling about 2 mV/K (carried by the device's saturation-current temperature law)
-and hFE rising with temperature (``devices.hfe_temperature_factor``), and the supply over
-its min..max. Monte Carlo draws parts uniformly within tolerance (the conservative choice
-for parts binned by tolerance), hFE log-uniformly within min..max, and the temperature and
-the supply uniformly over a few levels of their ranges.
+device's own spread (``spread_edges`` for the corners, ``spread_draw`` for Monte Carlo): a
+bipolar transistor's hFE anywhere in its min..max, rising with temperature
+(``devices.hfe_temperature_factor``), a JFET's IDSS and VP together along the line from
+their minima to their maxima (``devices.JFET``); the temperature over the spec's range, with
+Vbe falling about 2 mV/K (carried by the device's saturation-current temperature law) or a
+JFET's VTO and BETA moving by its SPICE TCV and BEX; and the supply over its min..max. Monte
+Carlo draws parts uniformly within tolerance (the conservative choice for parts binned by
+tolerance), hFE log-uniformly within min..max (a JFET uniformly along its line), and the
+temperature and the supply uniformly over a few levels of their ranges.
 
 The builds are common random numbers: build k of every candidate uses the same temperature,
 supply, hFE position and, per part role, the same position within the tolerance band
@@ -23,7 +26,7 @@ from typing import Callable
 
 import numpy as np
 
-from optimizer.devices import Device, hfe_temperature_factor
+from optimizer.devices import AnyDevice
 from optimizer.topologies.base import CHUNK_FAST, CHUNK_FULL, Conditions, Topology
 
 TEMPERATURE_BINS = 3  # Monte Carlo temperatures are drawn from this many levels (ends and middle)
@@ -36,7 +39,8 @@ class Builds:
     """``samples`` seeded random builds, the same for every candidate.
 
     temperature (°C) and supply (V) per build, taken from TEMPERATURE_BINS and SUPPLY_BINS
-    levels; hfe_position in [0, 1] (log position between the device's hFE min and max);
+    levels; hfe_position in [0, 1] (the device's spread position: log position between hFE min
+    and max, or a JFET's position along its IDSS/VP line);
     :meth:`part_position` gives each role's position in [-1, 1] within its tolerance band.
     """
 
@@ -60,10 +64,10 @@ class Builds:
         rng = np.random.default_rng([self.seed, zlib.crc32(role.encode())])
         return rng.uniform(-1.0, 1.0, self.samples)
 
-    def hfe(self, device: Device) -> np.ndarray:
-        """hFE of each build at its temperature."""
-        log_hfe = np.log(device.hfe_min) + self.hfe_position * np.log(device.hfe_max / device.hfe_min)
-        return np.exp(log_hfe) * hfe_temperature_factor(self.temperature)
+    def hfe(self, device: AnyDevice) -> np.ndarray:
+        """The device's spread variable in each build at its temperature (hFE for a bipolar
+        transistor, the IDSS/VP position for a JFET: ``device.spread_draw``)."""
+        return device.spread_draw(self.hfe_position, self.temperature)
 
     def groups(self) -> list[tuple[float, np.ndarray]]:
         """(temperature, build indices) for each temperature that occurs (the supply varies within a
@@ -76,7 +80,7 @@ def _at(conditions: Conditions, temperature: float, supply: float | None = None)
                    supply=float(conditions.supply if supply is None else supply))
 
 
-def _flat_result(topology: Topology, parts: dict[str, np.ndarray], device: Device, conditions: Conditions,
+def _flat_result(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions,
                  hfe: np.ndarray, full: bool) -> dict[str, np.ndarray]:
     """Evaluate arrays of shape (candidates, samples) flattened; metrics, ratings, 'active' and
     the operating point's 'ic' come back in the same 2-D shape."""
@@ -90,7 +94,6 @@ def _flat_result(topology: Topology, parts: dict[str, np.ndarray], device: Devic
                 if k.startswith("v_") and k not in out})  # DC node voltages (v_out_q among them), for their spread
     out["active"] = np.asarray(op["active"]).reshape(shape)
     out["ic"] = np.asarray(op["ic"]).reshape(shape)
-    out.setdefault("v_out_q", np.asarray(op["v_collector"]).reshape(shape))
     return out
 
 
@@ -100,13 +103,14 @@ def _column(tolerance: Tolerance, rows: slice | None = None) -> np.ndarray:
     return (t if t.ndim == 0 or rows is None else t[rows]).reshape(-1, 1) if t.ndim else t.reshape(1, 1)
 
 
-def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: Device,
+def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice,
                conditions: Conditions, tolerances: dict[str, Tolerance],
                temperature_range: tuple[float, float], supply_range: tuple[float, float] | None = None,
                *, roles: tuple[str, ...] | None = None, full: bool = True
                ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """(low, high) of every metric, rating, 'ic' and DC node voltage (v_base, v_out_q, ...) over all corners: each part in
-    ``roles`` (default: all) at +-tolerance, hFE at min and max, temperature and supply at
+    ``roles`` (default: all) at +-tolerance, the device's spread at both ends (hFE min and max, a
+    JFET's lowest and highest IDSS/VP), temperature and supply at
     both ends. Arrays over candidates. Metrics NaN at a corner (a stage that is not active)
     are left out of that corner's range; 'active_all' (bool) says whether every corner is active."""
     roles = tuple(parts) if roles is None else roles
@@ -122,8 +126,8 @@ def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: Device,
                         for role, v in parts.items()}
         for j, role in enumerate(roles):
             corner_parts[role] = corner_parts[role] * (1.0 + signs[None, :, j] * _column(tolerances.get(role, 0.0)))
-        for hfe_edge in (device.hfe_min, device.hfe_max):
-            hfe = np.full((n, signs.shape[0]), hfe_edge * hfe_temperature_factor(float(temperature)))
+        for hfe_edge in device.spread_edges(float(temperature)):
+            hfe = np.full((n, signs.shape[0]), hfe_edge)
             values = _flat_result(topology, corner_parts, device, at, hfe, full)
             active_all &= np.all(values["active"], axis=1)
             for key, value in values.items():
@@ -140,7 +144,7 @@ def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: Device,
     return out
 
 
-def bias_spread(topology: Topology, parts: dict[str, np.ndarray], device: Device, conditions: Conditions,
+def bias_spread(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions,
                 tolerances: dict[str, Tolerance], temperature_range: tuple[float, float],
                 supply_range: tuple[float, float]) -> dict[str, np.ndarray]:
     """Spread of the operating point, per candidate: ``ic_low``, ``ic_high`` (A), ``ic_spread``
@@ -169,10 +173,10 @@ def bias_spread(topology: Topology, parts: dict[str, np.ndarray], device: Device
     v_low, v_high = ic_low.copy(), ic_high.copy()
     for temperature, supply in itertools.product(temperature_range, supply_range):
         at = _at(conditions, temperature, supply)
-        for hfe_edge in (device.hfe_min, device.hfe_max):
-            op = topology.operating_point(both, device, at, hfe_edge * hfe_temperature_factor(float(temperature)))
+        for hfe_edge in device.spread_edges(float(temperature)):
+            op = topology.operating_point(both, device, at, hfe_edge)
             ic = np.where(op["active"], op["ic"], np.nan).reshape(2, n)
-            v_out = np.asarray(op.get("v_out_q", op["v_collector"])).reshape(2, n)
+            v_out = np.asarray(op["v_out_q"]).reshape(2, n)
             with np.errstate(invalid="ignore"):
                 ic_low = np.fmin(ic_low, np.nanmin(np.where(np.isnan(ic), np.inf, ic), axis=0))
                 ic_high = np.fmax(ic_high, np.nanmax(np.where(np.isnan(ic), -np.inf, ic), axis=0))
@@ -182,7 +186,7 @@ def bias_spread(topology: Topology, parts: dict[str, np.ndarray], device: Device
     return {"ic_low": ic_low, "ic_high": ic_high, "ic_spread": spread, "v_out_low": v_low, "v_out_high": v_high}
 
 
-def monte_carlo_yield(topology: Topology, parts: dict[str, np.ndarray], device: Device,
+def monte_carlo_yield(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice,
                       conditions: Conditions, tolerances: dict[str, Tolerance],
                       temperature_range: tuple[float, float],
                       passes: Callable[[dict[str, np.ndarray], slice], np.ndarray],

@@ -8,7 +8,9 @@ what would be valid:
 - the spec's device ids and series exist in the catalog (``spec.check_against_catalog``);
 - the sign of the gain can be given by at least one of the spec's topologies (each topology
   declares ``inverting``);
-- each device's polarity is one some eligible topology is drawn for (``polarities``).
+- each device's polarity is one some eligible topology is drawn for (``polarities``);
+- some topology of the spec takes a device of the spec (``device_kind``: JFET stages take
+  JFETs, the others bipolar transistors).
 """
 from __future__ import annotations
 
@@ -20,12 +22,25 @@ from optimizer.topologies import get_topology
 TITLE = "spec cannot be searched"
 
 
-def _gain_sign(spec: Spec) -> list[Problem]:
-    """The gain's sign against the topologies that may give it."""
+def device_kind(catalog: Catalog, device: str) -> str | None:
+    """The kind of catalog device ``device`` ("jfet" for polarity njf, else "bjt"); None if unknown."""
+    rows = catalog.transistors[catalog.transistors["id"] == device]
+    return None if rows.empty else ("jfet" if str(rows.iloc[0]["polarity"]).lower() == "njf" else "bjt")
+
+
+def topologies_with_devices(spec: Spec, catalog: Catalog) -> tuple[str, ...]:
+    """The spec's topologies that some device of the spec can fill (a topology's device_kind
+    matches the device's kind: JFET stages take JFETs, the others bipolar transistors)."""
+    kinds = {device_kind(catalog, d) for d in spec.devices}
+    return tuple(name for name in spec.topologies if get_topology(name).device_kind in kinds)
+
+
+def _gain_sign(spec: Spec, catalog: Catalog) -> list[Problem]:
+    """The gain's sign against the topologies that may give it (with a device of their kind)."""
     wanted = spec.gain.inverting
     if wanted is None:
         return []
-    able = [name for name in spec.topologies if get_topology(name).inverting == wanted]
+    able = [name for name in topologies_with_devices(spec, catalog) if get_topology(name).inverting == wanted]
     if able:
         return []
     sign = "an inverting" if wanted else "a non-inverting"
@@ -33,8 +48,9 @@ def _gain_sign(spec: Spec) -> list[Problem]:
     other = ("write a negative target (e.g. -10) or set gain.inverting: null to accept either sign"
              if not wanted else "set gain.inverting: null to accept either sign")
     return [Problem("gain.target", f"{shown:g}",
-                    f"a gain sign some topology of the spec gives: no topology in the spec "
-                    f"({', '.join(spec.topologies)}) gives {sign} gain; {other}")]
+                    f"a gain sign some topology of the spec gives: no topology in the spec with a device "
+                    f"of its kind ({', '.join(topologies_with_devices(spec, catalog)) or 'none'}) gives "
+                    f"{sign} gain; {other}")]
 
 
 def _polarities(spec: Spec, catalog: Catalog) -> list[Problem]:
@@ -62,6 +78,11 @@ def validate_spec(spec: Spec, catalog: Catalog) -> None:
         check_against_catalog(spec, catalog)
     except InputError as error:
         problems += error.problems
-    problems += _gain_sign(spec) + _polarities(spec, catalog)
+    problems += _gain_sign(spec, catalog) + _polarities(spec, catalog)
+    if not problems and not topologies_with_devices(spec, catalog):
+        problems.append(Problem("devices", list(spec.devices),
+                                f"a device some topology of the spec takes: {', '.join(spec.topologies)} take "
+                                f"{' or '.join(sorted({get_topology(t).device_kind for t in spec.topologies}))} "
+                                "devices (JFET stages take JFETs, polarity njf)"))
     if problems:
         raise InputError(problems, title=TITLE)

@@ -103,3 +103,50 @@ def check_designs() -> list[CheckDesign]:
         designs.append(CheckDesign(f"{d.name}-rc", d.topology, parts, d.device, d.conditions,
                                    hand_gain=d.hand_gain, hand_ic=d.hand_ic))
     return designs
+
+
+# ----------------------------------------------------------------------------- JFET stages
+# (jfet branch) Hand-method designs of jfet_common_source and jfet_follower over the three
+# catalog JFETs, supplies 5-30 V, sources 600 ohm-10 Mohm and loads 2.2k-1M.
+
+# (topology, supply V, |gain| V/V, Id budget A, device id, source ohm, load ohm)
+_JFET_CASES = [
+    ("jfet_common_source", 12.0, 5.0, 1e-3, "SF-J1", 1e3, 47e3),
+    ("jfet_common_source", 9.0, 3.0, 0.5e-3, "SF-J1", 100e3, 100e3),
+    ("jfet_common_source", 24.0, 8.0, 2e-3, "SF-J2", 600, 22e3),
+    ("jfet_common_source", 5.0, 2.0, 0.3e-3, "SF-J3", 1e6, 100e3),
+    ("jfet_common_source", 15.0, 4.0, 1e-3, "SF-J2", 10e3, 10e3),
+    ("jfet_common_source", 30.0, 10.0, 1e-3, "SF-J1", 1e3, 1e6),
+    ("jfet_common_source", 12.0, 20.0, 0.2e-3, "SF-J3", 1e6, 1e6),
+    ("jfet_common_source", 9.0, 1.0, 1e-3, "SF-J2", 47e3, 47e3),
+    ("jfet_follower", 12.0, 1.0, 1e-3, "SF-J1", 1e3, 10e3),
+    ("jfet_follower", 9.0, 1.0, 0.5e-3, "SF-J3", 10e6, 47e3),
+    ("jfet_follower", 24.0, 1.0, 2e-3, "SF-J2", 10e3, 2.2e3),
+    ("jfet_follower", 5.0, 1.0, 0.2e-3, "SF-J3", 1e6, 100e3),
+    ("jfet_follower", 15.0, 1.0, 1e-3, "SF-J2", 100e3, 10e3),
+    ("jfet_follower", 30.0, 1.0, 1e-3, "SF-J1", 10e3, 1e6),
+    ("jfet_follower", 12.0, 1.0, 0.3e-3, "SF-J1", 5e6, 22e3),
+    ("jfet_follower", 9.0, 1.0, 2e-3, "SF-J2", 47e3, 4.7e3),
+]
+
+
+def jfet_check_designs() -> list[CheckDesign]:
+    """The JFET stages' designs of the ngspice agreement set (8 per stage), catalog devices."""
+    from optimizer.catalog import load_catalog
+    from optimizer.devices import device_from_row
+
+    catalog = load_catalog("eseries_full")
+    designs = []
+    for topology, supply, gain, i_d, device_id, rs, rl in _JFET_CASES:
+        device = device_from_row(catalog.transistor(device_id))
+        req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
+                               f_low=20.0, collector_current=i_d, idss=device.idss_typ, vp=-device.VTO,
+                               vce_sat=0.0)
+        parts = get_topology(topology).hand_design(req)
+        conditions = Conditions(supply=supply, source_impedance=float(rs), load_impedance=float(rl),
+                                band=(20.0, 20000.0), temperature=27.0)
+        name = f"{topology}-{supply:g}V-A{gain:g}-{device_id}-rs{rs:g}"
+        hand_gain = -gain if get_topology(topology).inverting else gain
+        designs.append(CheckDesign(name, topology, parts, device, conditions, hand_gain=hand_gain,
+                                   hand_ic=min(i_d, 0.25 * device.idss_typ)))
+    return designs

@@ -89,9 +89,19 @@ def _need(scalars: Mapping[str, float], *names: str) -> list[float]:
 def spice_operating_point(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
                           conditions: Any) -> dict[str, float]:
     """DC operating point: ic (A, q1; ic2 for q2 of a two-transistor stage), v_base,
-    v_collector, v_emitter (V to ground) and supply_current (A drawn from Vcc)."""
+    v_collector, v_emitter (V to ground) and supply_current (A drawn from Vcc); of a JFET
+    stage: ic (A, j1's drain current), v_gate, v_source, v_drain and supply_current."""
     from optimizer.topologies import get_topology
 
+    stage = get_topology(topology)
+    if stage.device_kind == "jfet":  # id of j1 as "ic", its nodes by their own names
+        drain = next(d for role, d, _, _ in stage.transistor_pins if role == "q1")
+        control = ("op\nlet ic = @j1[id]\nlet v_gate = v(gate)\nlet v_source = v(source)\n"
+                   f"let v_drain = v({drain})\nlet supply_current = -i(vcc)\n"
+                   "print ic v_gate v_source v_drain supply_current")
+        scalars, _ = _simulate(topology, parts, model, conditions, control)
+        names = ("ic", "v_gate", "v_source", "v_drain", "supply_current")
+        return dict(zip(names, _need(scalars, *names)))
     follower = get_topology(topology).transistors == 2
     control = ("op\nlet ic = @q1[ic]\nlet v_base = v(base)\nlet v_collector = v(collector)\n"
                "let v_emitter = v(emitter)\nlet supply_current = -i(vcc)\n"
@@ -285,13 +295,14 @@ def swing_of(topology: str, v_in: np.ndarray, v_out: np.ndarray, h: complex, tol
 
 
 def spice_noise(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                conditions: Any) -> float:
+                conditions: Any, elements: str = "") -> float:
     """Equivalent input noise over the band, V rms, referred to the source EMF (Vsig), without
-    the source resistance's own noise (Rsource made noiseless), from .noise dec 50."""
+    the source resistance's own noise (Rsource made noiseless), from .noise dec 50; ``elements``
+    are added to the netlist."""
     low, high = conditions.band
     control = (f"alter @rsource[noisy] = 0\nnoise v(out) vsig dec 50 {float(low)!r} {float(high)!r}\n"
                "let ein = inoise_total\nprint ein")
-    scalars, _ = _simulate(topology, parts, model, conditions, control)
+    scalars, _ = _simulate(topology, parts, model, conditions, control, elements=elements)
     (ein,) = _need(scalars, "ein")
     return ein
 

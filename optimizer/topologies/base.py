@@ -13,7 +13,7 @@ from typing import Callable, ClassVar
 import numpy as np
 
 from optimizer import physics
-from optimizer.devices import Device, saturation_current, thermal_voltage
+from optimizer.devices import AnyDevice, saturation_current, thermal_voltage
 from optimizer.errors import InputError, Problem
 from optimizer.synthesis import HandRequirements
 
@@ -136,6 +136,7 @@ class Topology(ABC):
     inverting: ClassVar[bool]  # True: the mid-band gain source -> load is negative
     polarities: ClassVar[tuple[str, ...]]  # transistor polarities the stage is drawn for ("npn", "pnp")
     supply: ClassVar[str] = "single positive rail"  # the supply arrangement the stage is drawn for
+    device_kind: ClassVar[str] = "bjt"  # the kind of device the stage takes (Device.kind / JFET.kind)
     optional_parts: ClassVar[tuple[str, ...]] = ()  # may be 0 (absent)
     supply_parts: ClassVar[tuple[str, ...]] = SUPPLY_PARTS  # optional everywhere: absent or 0 = direct rail
     # SPICE netlist template: every resistor and capacitor as (role, node a, node b) in signal
@@ -204,14 +205,14 @@ class Topology(ABC):
                 "gain_sign": "inverting" if self.inverting else "non-inverting"}
 
     @abstractmethod
-    def operating_point(self, parts: Parts, device: Device, conditions: Conditions,
+    def operating_point(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                         hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
         """DC node voltages (V), currents (A), vce (V), active flag, supply_current (A),
         v_supply_local (V, the stage's supply node after r_decouple) and v_out_q (V, the
         quiescent DC of the output node: the collector, or the follower's emitter)."""
 
     @abstractmethod
-    def evaluate(self, parts: Parts, device: Device, conditions: Conditions,
+    def evaluate(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                  hfe: np.ndarray | float | None = None, *, full: bool = True,
                  thd_solve: bool = False) -> StageResult:
         """Metrics, operating point and ratings.
@@ -237,7 +238,7 @@ class StageModel(Topology):
 
     # ---- hooks -------------------------------------------------------------------------
     @abstractmethod
-    def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float,
+    def _bias(self, p: Parts, device: AnyDevice, c: Conditions, beta: np.ndarray, nvt: float,
               i_s: float) -> Bias:
         """Solve the DC operating point."""
 
@@ -250,7 +251,7 @@ class StageModel(Topology):
         """
 
     @abstractmethod
-    def _swing(self, p: Parts, device: Device, c: Conditions, b: Bias,
+    def _swing(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias,
                mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
         """clip_vpp (V, the hard clip level at the load: 2*min of the AC load line's cutoff and
         saturation limits) and the largest Vce in operation (V)."""
@@ -327,17 +328,18 @@ class StageModel(Topology):
         return out
 
     @staticmethod
-    def _hfe_array(device: Device, hfe: np.ndarray | float | None, n: int) -> np.ndarray:
-        """hFE per candidate (the device's typical value where none is given)."""
-        return np.broadcast_to(np.asarray(device.hfe_typ if hfe is None else hfe, dtype=float), (n,))
+    def _hfe_array(device: AnyDevice, hfe: np.ndarray | float | None, n: int) -> np.ndarray:
+        """The device's spread variable per candidate (hFE, or a JFET's IDSS/VP position; the
+        typical device where none is given)."""
+        return np.broadcast_to(np.asarray(device.spread_typ if hfe is None else hfe, dtype=float), (n,))
 
-    def _checked_solve(self, parts: Parts, device: Device, conditions: Conditions,
+    def _checked_solve(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                        hfe: np.ndarray | float | None) -> tuple[Parts, Bias, float]:
         """Check the parts, then solve the bias (the entry of the public single-call methods)."""
         p = self.check_parts(parts)
         return self._solve(p, device, conditions, self._hfe_array(device, hfe, next(iter(p.values())).size))
 
-    def _solve(self, p: Parts, device: Device, conditions: Conditions,
+    def _solve(self, p: Parts, device: AnyDevice, conditions: Conditions,
                beta: np.ndarray) -> tuple[Parts, Bias, float]:
         """Bias of checked parts ``p`` with hFE ``beta`` (one value per candidate)."""
         nvt = device.NF * float(thermal_voltage(conditions.temperature))
@@ -362,11 +364,11 @@ class StageModel(Topology):
         b.beta = beta
         return p, b, nvt
 
-    def operating_point(self, parts: Parts, device: Device, conditions: Conditions,
+    def operating_point(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                         hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
         return self._checked_solve(parts, device, conditions, hfe)[1].op
 
-    def evaluate(self, parts: Parts, device: Device, conditions: Conditions,
+    def evaluate(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                  hfe: np.ndarray | float | None = None, *, full: bool = True,
                  thd_solve: bool = False) -> StageResult:
         p = self.check_parts(parts)
@@ -388,7 +390,7 @@ class StageModel(Topology):
                     whole[k][i:i + step] = v
         return out
 
-    def _evaluate(self, parts: Parts, device: Device, conditions: Conditions,
+    def _evaluate(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                   hfe: np.ndarray, full: bool, thd_solve: bool) -> StageResult:
         p, b, nvt = self._solve(parts, device, conditions, hfe)  # parts checked by evaluate
         r_source = _source_resistance(b, conditions)
@@ -443,7 +445,7 @@ class StageModel(Topology):
         rejection = -20.0 * np.log10(np.abs(v["out"] / v["vcc"]))
         return {"psrr_ripple_db": rejection[0], "psrr_mid_db": rejection[1], "psrr_db": np.minimum(*rejection)}
 
-    def psrr(self, parts: Parts, device: Device, conditions: Conditions,
+    def psrr(self, parts: Parts, device: AnyDevice, conditions: Conditions,
              hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
         """Supply rejection alone (dB): psrr_ripple_db, psrr_mid_db, psrr_db per candidate (see
         :meth:`evaluate`); the bias and one small network solve, for sizing c_decouple."""
@@ -460,7 +462,7 @@ class StageModel(Topology):
             return net.at(2j * np.pi * f).solve(drive, ["out"])["out"]
         return h
 
-    def frequency_response(self, parts: Parts, device: Device, conditions: Conditions,
+    def frequency_response(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                            freqs: np.ndarray, hfe: np.ndarray | float | None = None) -> np.ndarray:
         """Complex gain source->load (V/V) at freqs (Hz), shape (candidates, freqs), by full nodal solve."""
         p, b, _ = self._checked_solve(parts, device, conditions, hfe)
@@ -469,7 +471,7 @@ class StageModel(Topology):
         h = self._response(self._network(p, conditions, b.small_signal, True, rs, True), rs)(f)
         return np.ascontiguousarray(np.broadcast_to(h, (f.shape[0], rs.size)).T)
 
-    def midband_network(self, parts: Parts, device: Device, conditions: Conditions,
+    def midband_network(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                         hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
         """gain (V/V), input_impedance and output_impedance (|Z|, ohm) by full nodal solve at the
         band's geometric-mean frequency (a check of the closed forms)."""
@@ -492,12 +494,12 @@ class StageModel(Topology):
         return count
 
     @abstractmethod
-    def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
+    def static_output(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float,
                       i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
         """Map source voltages (V, (candidates, samples)) to load voltages (V) by the static
         nonlinear stage equations around the operating point (capacitors hold their DC)."""
 
-    def _static_fn(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
+    def _static_fn(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float,
                    beta: np.ndarray, dtype: type = np.float64) -> Callable[[np.ndarray], np.ndarray]:
         """:meth:`static_output` of solved candidates, their arrays as columns (candidates, 1).
 
@@ -513,7 +515,7 @@ class StageModel(Topology):
                                 np.asarray(beta, dtype=dtype)[:, None])
         return lambda vs: fn(np.asarray(vs, dtype=dtype))
 
-    def _usable_swing(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float, gain: np.ndarray,
+    def _usable_swing(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, gain: np.ndarray,
                       clip_peak: np.ndarray) -> np.ndarray:
         """swing_vpp (V peak-to-peak at the load) by :func:`physics.usable_swing`, its static solves in
         single precision, then again in double precision for active candidates whose swing is under
@@ -531,12 +533,12 @@ class StageModel(Topology):
             swing[rows] = physics.usable_swing(fn, gain[rows], clip_peak[rows])
         return swing
 
-    def _thd_static(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
+    def _thd_static(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float,
                     beta: np.ndarray, gain: np.ndarray, samples: int = physics.THD_SAMPLES) -> np.ndarray:
         fn = self._static_fn(p, device, c, b, nvt, beta)
         return physics.thd_quasistatic(fn, 0.5 * c.signal_vpp / np.abs(gain), samples)
 
-    def static_transfer(self, parts: Parts, device: Device, conditions: Conditions, source_v: np.ndarray,
+    def static_transfer(self, parts: Parts, device: AnyDevice, conditions: Conditions, source_v: np.ndarray,
                         hfe: np.ndarray | float | None = None) -> np.ndarray:
         """Load voltage (V, change from quiescent) at each source voltage of ``source_v`` (V, a
         1-D sweep), per candidate, shape (candidates, samples): the static transfer curve behind
@@ -546,7 +548,7 @@ class StageModel(Topology):
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             return self._static_fn(p, device, conditions, b, nvt, b.beta)(vs) + 0.0 * b.beta[:, None]
 
-    def thd_quasistatic(self, parts: Parts, device: Device, conditions: Conditions,
+    def thd_quasistatic(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                         hfe: np.ndarray | float | None = None, samples: int = 256) -> np.ndarray:
         """THD (fraction) at conditions.signal_vpp at the load, by static solve + FFT (per candidate)."""
         p, b, nvt = self._checked_solve(parts, device, conditions, hfe)
