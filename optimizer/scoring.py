@@ -18,6 +18,7 @@ from optimizer.spec import Spec
 from optimizer.topologies.base import Conditions
 
 FULL_MODEL_LIMITS = ("noise_ein_max", "psrr_min_db")
+LOOP_LIMITS = ("phase_margin_min_deg",)  # judged only where the stage has an overall loop (metric not NaN)
 # each optional spec limit (limit name, metric, +1 min / -1 max) is in optimizer/metrics.py; besides the
 # band corners, noise_ein_max and psrr_min_db need the full=True metrics
 # Derating (common practice, no single source): thick-film chip resistors carry full power to
@@ -130,8 +131,10 @@ def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[s
         judge = _above if sign > 0 else _below
         limit = getattr(limits, limit_name)
         if limit is not None and not (core_only and limit_name in FULL_MODEL_LIMITS):
-            value = metrics[metric] if metric in metrics else np.full(gain.shape, np.nan)
-            out[limit_name] = judge(np.asarray(value), limit)
+            value = np.asarray(metrics[metric] if metric in metrics else np.full(gain.shape, np.nan))
+            if limit_name in LOOP_LIMITS:
+                value = np.where(np.isnan(value), limit, value)
+            out[limit_name] = judge(value, limit)
     for key, limit in rating_limits.items():
         value = metrics["q_power"] if key == "q_power" else ratings[key]
         out[f"rating:{key}"] = _below(np.abs(np.asarray(value)), limit)
