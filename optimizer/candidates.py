@@ -95,8 +95,8 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
 
     result = topology.evaluate(arrays, device, conditions, full=True, thd_solve=True)
     metrics: dict[str, float | None] = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
-    metrics.update({k: None for k, v in metrics.items() if not math.isfinite(v)})  # no figure (e.g. no loop)
     metrics["gain_error_db"] = float(scoring.gain_error_db(spec, np.array([metrics["gain"]]))[0])
+    metrics.update({k: None for k, v in metrics.items() if not math.isfinite(v)})  # no figure (e.g. no loop)
     nominal = scoring.limit_violations(spec, result.metrics, result.ratings, limits,
                                        result.operating_point["active"])
     tolerances = {role: rec["tolerance"] for role, rec in records.items()}

@@ -229,16 +229,34 @@ class FeedbackPair(StageModel):
         hd2 = []
         for k, (bint, coll, emit) in enumerate((("bint", "collector", "emitter"),
                                                 ("bint2", "collector2", "emitter2"))):
-            gain_x = v["out"] / (v[bint] - v[emit])  # load volts per volt of intrinsic vb'e
-            # transimpedance from a current in the transistor's collector-emitter source to the load
-            err = drive.solve({coll: -one, emit: one}, ["out"])["out"]
-            r_ac = np.abs((v[coll] - v[emit]) / ((v[bint] - v[emit]) * ss[k]["gm"]))  # the collector's AC load
-            hd2.append((1.0 / np.abs(gain_x), ss[k]["gm"] * np.abs(err) / np.abs(gain_x), ss[k]["go"] * r_ac,
-                        np.sign(err)))
+            hd2.append(self._hd2_term(ss[k], drive, v, bint, coll, emit))
         return {"gain": v["out"],
                 "input_impedance": self._network(p, c, ss, False, None, True).solve({"in": one}, ["in"])["in"],
                 "output_impedance": self._network(p, c, ss, False, r_source, False).solve({"out": one}, ["out"])["out"],
                 "hd2_terms": hd2}
+
+    @staticmethod
+    def _hd2_term(ss: dict[str, np.ndarray], drive: physics.Network, v: dict[str, np.ndarray], bint: str,
+                  coll: str, emit: str) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """One transistor's second harmonic at the load per volt of output amplitude, as the
+        (v_x, suppression, Early u, sign) term :func:`physics.thd_small_signal` reads (u = 0: the
+        Early effect is inside the suppression).
+
+        Second-order perturbation of the Gummel-Poon junction: with x = vb'e and y = vcb per volt
+        at the load, If's second harmonic gbe*x^2/(4 NF VT) flows in the collector (times the Early
+        factor, gm + go) and in the base (gpi), and the Early product If*Vcb/VAF adds
+        gbe*x*y/(2 VAF) = go*x*y/(2 NF VT) in the collector; each reaches the load through the
+        closed loop's transimpedance from that branch. q2's base is fed from a high impedance, so
+        its base share and the Early product both matter (they halve its distortion)."""
+        one = np.ones_like(ss["gm"])
+        nvt = ss["ib"] / ss["gpi"]  # NF*VT: ib = If/BF, gpi = (If + IS)/(NF VT BF)
+        x = (v[bint] - v[emit]) / v["out"]
+        y = (v[coll] - v[bint]) / v["out"]
+        z = drive.solve({coll: -one, emit: one}, ["out"])["out"]
+        z_b = drive.solve({bint: -one, emit: one}, ["out"])["out"]
+        h = np.real(x * x / (4.0 * nvt) * ((ss["gm"] + ss["go"]) * z + ss["gpi"] * z_b)
+                    + x * y * ss["go"] / (2.0 * nvt) * z)
+        return np.abs(x), 4.0 * nvt * np.abs(h) / np.abs(x), np.zeros_like(h), np.sign(h)
 
     def loop_gain(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]],
                   r_source: np.ndarray) -> np.ndarray:
