@@ -14,6 +14,12 @@ pinned to one CPU. The rate is taken on the process's CPU time (best of several 
 shared machine's other load does not count against it; the wall-clock rate is shown beside it.
 Peak memory is tracemalloc's peak over one run (numpy reports its buffers to it), with the
 solver's cached workspace dropped first so that it is counted.
+
+    .venv/bin/python benchmarks/bench_models.py --per-topology [NAME ...] [--scale F]
+
+measures instead the core and full rates of every registered topology (or the named ones) on
+random designs around its hand design, and writes benchmarks/results/models_topologies.md
+(``--scale`` shrinks the candidate counts, for a quick look while developing).
 """
 from __future__ import annotations
 
@@ -38,7 +44,8 @@ from optimizer.devices import Device  # noqa: E402
 from optimizer.eseries import series_values  # noqa: E402
 from optimizer.sizing import size_capacitors  # noqa: E402
 from optimizer.tolerance import monte_carlo_yield  # noqa: E402
-from optimizer.topologies import get_topology  # noqa: E402
+from optimizer.synthesis import HandRequirements  # noqa: E402
+from optimizer.topologies import TOPOLOGIES, get_topology  # noqa: E402
 from optimizer.topologies.base import Conditions  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -104,7 +111,48 @@ def measure(label: str, work, n: int, repeats: int = REPEATS) -> dict:
     return {"label": label, "n": n, "rate": n / cpu, "wall_rate": n / wall, "peak_mb": peak}
 
 
+def random_around_hand(name: str, n: int, seed: int = 1) -> dict[str, np.ndarray]:
+    """n random designs of topology ``name``: its hand design for CONDITIONS (gain 10, 1 mA)
+    with each resistor scaled by a log-uniform factor in 1/2..2, capacitors as designed."""
+    rng = np.random.default_rng(seed)
+    req = HandRequirements(supply=CONDITIONS.supply, gain=10.0, load_impedance=CONDITIONS.load_impedance,
+                           source_impedance=CONDITIONS.source_impedance, hfe=DEVICE.hfe_typ)
+    hand = get_topology(name).hand_design(req)
+    return {k: v * (np.exp(rng.uniform(-0.69, 0.69, n)) if k.startswith("r_") else np.ones(n))
+            for k, v in hand.items()}
+
+
+def per_topology(names: list[str], scale: float) -> None:
+    """Core and full rates of each topology in ``names`` (CPU, one core); writes models_topologies.md."""
+    pinned = pin_one_cpu()
+    core_n, full_n = max(1000, int(200_000 * scale)), max(100, int(20_000 * scale))
+    lines = ["# Stage model speed per topology (one core)", "",
+             f"Machine: {platform.machine()}, {os.cpu_count()} cores (process {pinned}), Python "
+             f"{platform.python_version()}, numpy {np.__version__}; load average "
+             f"{os.getloadavg()[0]:.1f}. Produced by `benchmarks/bench_models.py --per-topology`; designs "
+             "are each topology's hand design (12 V, gain 10, 1 mA) with every resistor scaled by 1/2..2 at "
+             "random. Rates are designs per CPU second (best of "
+             f"{REPEATS}).", "",
+             "| topology | core designs/s | full designs/s | core n | full n |", "| --- | --- | --- | --- | --- |"]
+    for name in names:
+        topology = get_topology(name)
+        core_parts, full_parts = random_around_hand(name, core_n), random_around_hand(name, full_n, seed=2)
+        core = measure("core", lambda: topology.evaluate(core_parts, DEVICE, CONDITIONS, full=False), core_n)
+        full = measure("full", lambda: topology.evaluate(full_parts, DEVICE, CONDITIONS, full=True), full_n)
+        lines.append(f"| {name} | {core['rate']:,.0f} | {full['rate']:,.0f} | {core_n:,} | {full_n:,} |")
+        print(lines[-1], flush=True)
+    text = "\n".join(lines) + "\n"
+    (ROOT / "benchmarks" / "results" / "models_topologies.md").write_text(text, encoding="utf-8")
+    print(text)
+
+
 def main() -> None:
+    if "--per-topology" in sys.argv:
+        args = sys.argv[sys.argv.index("--per-topology") + 1:]
+        scale = float(args[args.index("--scale") + 1]) if "--scale" in args else 1.0
+        names = [a for a in args if a in TOPOLOGIES] or list(TOPOLOGIES)
+        per_topology(names, scale)
+        return
     pinned = pin_one_cpu()
     topology = get_topology("divider_ce")
     core_n, full_n, size_n, mc_n = 1_000_000, 100_000, 2_000, 1_000

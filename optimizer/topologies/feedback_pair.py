@@ -24,7 +24,7 @@ from optimizer.synthesis import VBE_HAND, HandRequirements, coupling_capacitor, 
 from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
 from optimizer.topologies.divider_ce import add_divider_stage, add_load, divider_ratings
 
-PAIR_ITERATIONS = 30  # damped 2-D Newton steps of the pair's bias (both junctions at once)
+PAIR_ITERATIONS = 40  # damped 2-D Newton steps of the pair's bias (both junctions at once, from 1 mA)
 CROSSOVER_STEPS = 4  # Newton steps in log frequency refining the loop gain's unity crossing (|T| = 1)
 HAND_EMITTER_MAX = 0.3  # the hand method's highest q1 emitter voltage, a share of the supply
 NO_CROSSOVER_MARGIN = 180.0  # degrees: a loop gain below 1 at every frequency cannot ring
@@ -42,8 +42,9 @@ def solve_pair(a1: np.ndarray, r_base1: np.ndarray, vcc: np.ndarray | float, rc1
     the emitter node (re to ground, rf to the collector2 node) and the collector2 node
     (``g_c2*Vc2 = j_c2 + Ve1/rf - Ic2``: rc2, rf and in the static solve the load, as one
     conductance and current) are linear and are eliminated: ``Ve1 = v0 + k_e*Ie1 - k_c*Ic2``.
-    Gummel-Poon currents as :func:`physics.solve_junction`; the Early factors are taken from the
-    previous step (they move Ic by a fraction of a per cent per volt). Returns per transistor
+    Gummel-Poon currents as :func:`physics.solve_junction`, Vcb to the internal base; each step
+    takes the Early factors from the nodes at its start and its Jacobian includes their
+    dependence on the nodes (left out, the loop's gain slows Newton to linear convergence). Returns per transistor
     the keys small_signal needs (``q1``, ``q2``: vbe, vcb, i_forward, ic, ib) and the node
     voltages v_e1, v_c1, v_e2, v_c2, with ``converged``.
     """
@@ -70,32 +71,43 @@ def solve_pair(a1: np.ndarray, r_base1: np.ndarray, vcc: np.ndarray | float, rc1
         v_e1 = v0 + k_e * (ic1 + ib1) - k_c * ic2
         v_c1 = vcc - rc1 * (ic1 + ib2)
         v_e2 = v_e2_0 + r_e2 * (ic2 + ib2)
-        r1 = a1 - x1 - r_base1 * ib1 - v_e1
-        r2 = v_c1 - x2 - rb * ib2 - v_e2
-        return f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, r1, r2
+        v_c2 = (j_c2 + v_e1 / rf - ic2) / g_c2
+        return f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2
 
     for _ in range(iterations):
-        f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, r1, r2 = state(x1, x2)
-        v_c2 = (j_c2 + v_e1 / rf - ic2) / g_c2
+        # Early factors from the node voltages at this step (Vcb to the internal base), then the residuals
+        f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = state(x1, x2)
         eps1 = 1.0 + (v_c1 - v_e1 - x1) * inv_vaf
         eps2 = 1.0 + (v_c2 - v_e2 - x2) * inv_vaf
+        f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = state(x1, x2)
+        r1 = a1 - x1 - r_base1 * ib1 - v_e1
+        r2 = v_c1 - x2 - rb * ib2 - v_e2
+        # Jacobian of (r1, r2) in (x1, x2), the Early factors' own dependence on the nodes included
         g1, g2 = (f1 + i_s) / nvt, (f2 + i_s) / nvt
-        # Jacobian of (r1, r2) in (x1, x2)
-        j11 = -1.0 - (r_base1 * inv_b + k_e * (eps1 + inv_b)) * g1
-        j12 = k_c * eps2 * g2
-        j21 = -rc1 * eps1 * g1
-        j22 = -1.0 - (rc1 * inv_b + rb * inv_b + r_e2 * (eps2 + inv_b)) * g2
+        a11, a22, b1, b2 = eps1 * g1, eps2 * g2, g1 * inv_b, g2 * inv_b
+        dve1 = (k_e * (a11 + b1), -k_c * a22)
+        dvc2 = (dve1[0] / (rf * g_c2), (dve1[1] / rf - a22) / g_c2)
+        dvcb1 = (-rc1 * a11 - dve1[0] - 1.0, -rc1 * b2 - dve1[1])
+        dvcb2 = (dvc2[0], dvc2[1] - r_e2 * (a22 + b2) - 1.0)
+        e1, e2 = f1 * inv_vaf, f2 * inv_vaf
+        dic1 = (a11 + e1 * dvcb1[0], e1 * dvcb1[1])
+        dic2 = (e2 * dvcb2[0], a22 + e2 * dvcb2[1])
+        j11 = -1.0 - r_base1 * b1 - k_e * (dic1[0] + b1) + k_c * dic2[0]
+        j12 = -k_e * dic1[1] + k_c * dic2[1]
+        j21 = -rc1 * dic1[0] - r_e2 * dic2[0]
+        j22 = -rc1 * (dic1[1] + b2) - 1.0 - rb * b2 - r_e2 * (dic2[1] + b2)
         det = j11 * j22 - j12 * j21
         d1 = (-r1 * j22 + r2 * j12) / det
         d2 = (-r2 * j11 + r1 * j21) / det
         x1 = x1 + np.clip(d1, -physics.MAX_STEP, physics.MAX_STEP)
         x2 = x2 + np.clip(d2, -physics.MAX_STEP, physics.MAX_STEP)
-    f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, r1, r2 = state(x1, x2)
-    v_c2 = (j_c2 + v_e1 / rf - ic2) / g_c2
+    f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = state(x1, x2)
+    r1 = a1 - x1 - r_base1 * ib1 - v_e1
+    r2 = v_c1 - x2 - rb * ib2 - v_e2
     converged = ((np.abs(r1) < physics.NEWTON_TOL) & (np.abs(r2) < physics.NEWTON_TOL)
                  & np.isfinite(f1) & np.isfinite(f2) & (f1 > 0) & (f2 > 0))
-    return {"q1": {"vbe": x1, "vcb": v_c1 - v_e1 - x1 - rb * ib1, "i_forward": f1, "ic": ic1, "ib": ib1},
-            "q2": {"vbe": x2, "vcb": v_c2 - v_e2 - x2 - rb * ib2, "i_forward": f2, "ic": ic2, "ib": ib2},
+    return {"q1": {"vbe": x1, "vcb": v_c1 - v_e1 - x1, "i_forward": f1, "ic": ic1, "ib": ib1},
+            "q2": {"vbe": x2, "vcb": v_c2 - v_e2 - x2, "i_forward": f2, "ic": ic2, "ib": ib2},
             "v_e1": v_e1, "v_c1": v_c1, "v_e2": v_e2, "v_c2": v_c2, "converged": converged}
 
 
