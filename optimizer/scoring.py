@@ -247,7 +247,10 @@ def requirement_margins(spec: Spec, metrics: Mapping[str, object], *, limits_onl
         value = np.asarray(np.nan if raw is None else raw, dtype=float)
         if name == "gain_tolerance":
             value = np.abs(value)
-        out.append((name, metric, sign, limit, value, sign * (value - limit) / limit))
+        margin = sign * (value - limit) / limit
+        if name in LOOP_LIMITS:  # a stage without the loop has no figure and no margin to keep
+            margin = np.where(np.isnan(value), np.inf, margin)
+        out.append((name, metric, sign, limit, value, margin))
     return out
 
 
@@ -265,7 +268,8 @@ def limit_table(spec: Spec, metrics: Mapping[str, float | None]) -> list[dict]:
     ``kind`` "min" or "max", and the relative ``margin`` (>= 0: met; None where there is no figure)."""
     return [{"limit": name, "metric": metric, "kind": "min" if sign > 0 else "max", "limit_value": float(limit),
              "value": float(value), "margin": float(margin) if np.isfinite(margin) else None}
-            for name, metric, sign, limit, value, margin in requirement_margins(spec, metrics)]
+            for name, metric, sign, limit, value, margin in requirement_margins(spec, metrics)
+            if not (name in LOOP_LIMITS and np.all(np.isnan(value)))]  # no loop: not judged
 
 
 def desirability_terms(spec: Spec, metrics: dict[str, np.ndarray]) -> dict[str, tuple[np.ndarray, float]]:

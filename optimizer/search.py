@@ -137,7 +137,9 @@ class SearchSpace:
         devices = {d: Device.from_row(catalog.transistor(d)) for d in spec.devices}
         prices = {d: float(catalog.transistor(d).get("unit_price") or 0.0) for d in spec.devices}
         return cls(spec, catalog, PartTable.from_catalog(catalog, "resistor", r_values),
-                   PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices, tuple(spec.topologies))
+                   PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices,
+                   tuple(t for t in spec.topologies  # only stages that can give the gain's sign
+                         if spec.gain.inverting is None or get_topology(t).inverting == spec.gain.inverting))
 
     @property
     def offers_decoupling(self) -> bool:
