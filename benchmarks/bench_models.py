@@ -9,11 +9,12 @@ it, measured in the same run), the full metric set with frequency response and n
 capacitor sizing, and Monte Carlo yield, then issue 16's targets as target / measured / met;
 writes benchmarks/results/models.md.
 
-    .venv/bin/python benchmarks/bench_models.py --topologies
+    .venv/bin/python benchmarks/bench_models.py --topologies [NAME ...] [--scale F]
 
 Prints the core and full rates of every registered topology side by side (random designs around
 each stage's hand design; a bipolar stage with the bench NPN, a JFET stage with the bench JFET);
-writes benchmarks/results/models_topologies.md.
+writes benchmarks/results/models_topologies.md (NAME: only those topologies; ``--scale`` shrinks
+the candidate counts, for a quick look while developing).
 
 One core: BLAS/OpenMP pools are limited to one thread before numpy loads and the process is
 pinned to one CPU. The rate is taken on the process's CPU time (best of several runs), so a
@@ -186,10 +187,10 @@ def random_around_hand(topology_name: str, n: int, seed: int = 1) -> tuple[dict[
     return parts, device
 
 
-def topology_table() -> None:
-    """Core and full rates (candidates per CPU second, one core) of every registered topology."""
+def topology_table(names: list[str], scale: float = 1.0) -> None:
+    """Core and full rates (candidates per CPU second, one core) of the named registered topologies."""
     pinned = pin_one_cpu()
-    core_n, full_n = 100_000, 20_000
+    core_n, full_n = max(1000, int(100_000 * scale)), max(100, int(20_000 * scale))
     lines = ["# Stage model speed per topology (one core)", "",
              f"Machine: {platform.machine()}, {os.cpu_count()} cores (process {pinned}), Python "
              f"{platform.python_version()}, numpy {np.__version__}; load average "
@@ -200,7 +201,8 @@ def topology_table() -> None:
              "response corners, noise, supply rejection and ratings.", "",
              "| topology | device | core candidates/s (CPU) | full candidates/s (CPU) | core peak memory (MB) |",
              "| --- | --- | --- | --- | --- |"]
-    for name, topology in TOPOLOGIES.items():
+    for name in names:
+        topology = get_topology(name)
         core_parts, device = random_around_hand(name, core_n)
         full_parts = {k: v[:full_n] for k, v in core_parts.items()}
         core = measure("core", lambda t=topology, p=core_parts, d=device: t.evaluate(p, d, CONDITIONS, full=False),
@@ -214,4 +216,9 @@ def topology_table() -> None:
 
 
 if __name__ == "__main__":
-    topology_table() if "--topologies" in sys.argv[1:] else main()
+    if "--topologies" in sys.argv[1:]:
+        args = sys.argv[sys.argv.index("--topologies") + 1:]
+        topology_table([a for a in args if a in TOPOLOGIES] or list(TOPOLOGIES),
+                       float(args[args.index("--scale") + 1]) if "--scale" in args else 1.0)
+    else:
+        main()

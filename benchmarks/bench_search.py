@@ -2,7 +2,7 @@
 
     .venv/bin/python benchmarks/bench_search.py            # full run -> benchmarks/results/search.md
     .venv/bin/python benchmarks/bench_search.py --quick    # smoke run: 2 specs, 3 seeds, 500 trials, prints only
-    .venv/bin/python benchmarks/bench_search.py --only bs_e6_jfet_cs,bs_e6_jfet_follower --out benchmarks/results/search_jfet.md
+    .venv/bin/python benchmarks/bench_search.py --only bs_e3_feedback_pair   # some specs: oracle and our search
 
 The specs are ``benchmarks/specs/*.yaml``: each names one topology and one device, so the
 exhaustive oracle (``optimizer.exhaustive``) covers the very space the search covers, and
@@ -460,36 +460,61 @@ def report(results: list[dict], oracle_big: dict | None, memory: dict | None, pr
     return "\n".join(lines) + "\n"
 
 
+TOPOLOGY_RESULTS = ROOT / "benchmarks" / "results" / "search_topologies.md"
+
+
+def only(names: list[str]) -> None:
+    """The oracle and our search (SEEDS seeds, in memory) on the named benchmark specs; each
+    spec's figures replace its section of results/search_topologies.md."""
+    sections = {}
+    if TOPOLOGY_RESULTS.exists():
+        for block in TOPOLOGY_RESULTS.read_text().split("\n## ")[1:]:
+            sections[block.split("\n", 1)[0]] = "## " + block.rstrip("\n")
+    with tempfile.TemporaryDirectory(prefix="bench-search-") as tmp:
+        for name in names:
+            r = bench_spec(SPECS / f"{name}.yaml", SEEDS, 0, 0, 0, Path(tmp))
+            runs, times = r["methods"]["our search"]["runs"], r["methods"]["our search"]["times"]
+            hits = sum(x["hit"] for x in runs)
+            sections[name] = "\n".join([
+                f"## {name}", "",
+                f"{r['topology']}, {r['device']}, {r['series']} {r['range'][0]:g}..{r['range'][1]:g} ohm: "
+                f"{r['oracle'].combinations:,} combinations, oracle {r['oracle_s']:.1f} s, best score "
+                f"{r['oracle'].best['score']:.4f}. Our search, budget {r['budget']} trials: optimum (best nominal "
+                f"score within {WITHIN:.0%} of the oracle's) found in {hits} of {len(runs)} seeds (target "
+                f"{TARGETS['hits']}), median search {median(times):.2f} s; load average {os.getloadavg()[0]:.1f}.", "",
+                "| seed | best score | hit |", "| --- | --- | --- |",
+                *(f"| {i} | {x['best']:.4f} | {'yes' if x['hit'] else 'no'} |" for i, x in enumerate(runs))])
+    text = ("# Search against the oracle, one small space per topology added later\n\n"
+            "Produced by `benchmarks/bench_search.py --only SPEC ...` (one section per spec).\n\n"
+            + "\n\n".join(sections[k] for k in sorted(sections)) + "\n")
+    TOPOLOGY_RESULTS.write_text(text)
+    print(text)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--quick", action="store_true",
                         help=f"smoke run: 2 specs, 3 seeds, {QUICK_TRIALS} trials, prints only")
     parser.add_argument("--memory-child", metavar="SPEC", help=argparse.SUPPRESS)
     parser.add_argument("--trials", type=int, default=MEMORY_TRIALS, help=argparse.SUPPRESS)
-    parser.add_argument("--only", default=None, metavar="NAMES",
-                        help="comma-separated spec names of benchmarks/specs to run (default: all): our "
-                             "search on all seeds, one journal run, two random-search seeds; skips the "
-                             "large oracle and memory rows")
     parser.add_argument("--out", type=Path, default=None, help="results file (default: results/search.md; "
                         "--quick writes none unless given)")
+    parser.add_argument("--only", nargs="+", metavar="SPEC",
+                        help="only these benchmark specs: the oracle and our search over 10 seeds, no baselines; "
+                             "appends a section to results/search_topologies.md")
     args = parser.parse_args()
     if args.memory_child:
         memory_child(args.memory_child, args.trials)
         return
+    if args.only:
+        only(args.only)
+        return
     facts = RunFacts.start()
     paths = sorted(SPECS.glob("*.yaml"))
     args.quick = args.quick or bench_mode() == "quick"
-    if args.only:
-        wanted = set(args.only.split(","))
-        unknown = wanted - {p.stem for p in paths}
-        if unknown:
-            parser.error(f"--only: no spec {', '.join(sorted(unknown))} in {SPECS}")
-        paths = [p for p in paths if p.stem in wanted]
     if args.quick:
         paths = [p for p in paths if p.stem in QUICK_SPECS]
         seeds, journal_seeds, default_seeds, random_seeds, budget = 3, 1, 3, 3, QUICK_TRIALS
-    elif args.only:  # our search on all 10 seeds, the baselines and the journal timing on fewer
-        seeds, journal_seeds, default_seeds, random_seeds, budget = SEEDS, 1, 1, 2, None
     else:
         seeds, journal_seeds, default_seeds, random_seeds, budget = SEEDS, 3, 3, 5, None
     results = []
@@ -498,8 +523,8 @@ def main() -> None:
             results.append(bench_spec(path, seeds, journal_seeds, default_seeds, random_seeds, Path(tmp), budget))
     slowest = max(results, key=lambda r: median(r["timing"]["memory_search"]))
     profile = profile_search(SPECS / f"{slowest['name']}.yaml", budget)
-    memory = None if args.only else peak_memory(2_000 if args.quick else MEMORY_TRIALS)  # before the big oracle
-    oracle_big = None if args.quick or args.only else oracle_alone()
+    memory = peak_memory(2_000 if args.quick else MEMORY_TRIALS)  # before the big oracle
+    oracle_big = None if args.quick else oracle_alone()
     text = report(results, oracle_big, memory, profile, seeds, facts)
     print("\n" + text)
     out = args.out or (None if args.quick else RESULTS)

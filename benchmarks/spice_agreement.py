@@ -5,6 +5,11 @@
 One row per design and metric: model, ngspice, error, tolerance; for gain and collector
 current also the hand method's own estimate and its error against ngspice. The JFET stages'
 designs (spice_designs.jfet_check_designs) follow the bipolar ones; their "ic" is the drain current.
+
+    .venv/bin/python benchmarks/spice_agreement.py --topology feedback_pair
+
+simulates only that topology's designs and writes them as their own section at the end of the
+table (replacing an earlier section of that topology), leaving the other rows as they are.
 """
 from __future__ import annotations
 
@@ -22,8 +27,38 @@ def _fmt(value: float | None) -> str:
     return "" if value is None else f"{value:.4g}"
 
 
+def all_designs() -> list:
+    """Every check design: the bipolar stages', then the JFET stages'."""
+    return check_designs() + jfet_check_designs()
+
+
+def _row(r: dict) -> str:
+    return (f"| {r['design']} | {r['metric']} | {_fmt(r['model'])} | {_fmt(r['simulator'])} | "
+            f"{r['error']:+.3g} | {r['tolerance']:g} | {'yes' if r['within'] else 'NO'} | "
+            f"{_fmt(r.get('hand'))} | {_fmt(r.get('hand_error'))} |")
+
+
+def topology_section(topology: str) -> int:
+    """Simulate ``topology``'s designs only; their rows replace its section of the table."""
+    rows = [row for design in all_designs() if design.topology == topology for row in agreement_rows(design)]
+    out = ROOT / "benchmarks" / "results" / "spice_agreement.md"
+    marker = f"\n## {topology}\n"
+    text = out.read_text(encoding="utf-8")
+    text = text.split(marker)[0].rstrip("\n") + "\n"
+    failed = [r for r in rows if not r["within"]]
+    lines = [marker.strip(), "", f"Produced by `benchmarks/spice_agreement.py --topology {topology}`.", "",
+             "| design | metric | model | ngspice | error | tolerance | within | hand | hand error |",
+             "| --- | --- | --- | --- | --- | --- | --- | --- | --- |", *map(_row, rows), "",
+             f"Rows: {len(rows)}; outside tolerance: {len(failed)}."]
+    out.write_text(text + "\n" + "\n".join(lines) + "\n", encoding="utf-8")
+    print(lines[-1])
+    return 1 if failed else 0
+
+
 def main() -> int:
-    rows = [row for design in check_designs() + jfet_check_designs() for row in agreement_rows(design)]
+    if "--topology" in sys.argv:
+        return topology_section(sys.argv[sys.argv.index("--topology") + 1])
+    rows = [row for design in all_designs() for row in agreement_rows(design)]
     out = ROOT / "benchmarks" / "results" / "spice_agreement.md"
     lines = [
         "# Stage models against ngspice",
@@ -35,10 +70,7 @@ def main() -> int:
         "| design | metric | model | ngspice | error | tolerance | within | hand | hand error |",
         "| --- | --- | --- | --- | --- | --- | --- | --- | --- |",
     ]
-    for r in rows:
-        lines.append(f"| {r['design']} | {r['metric']} | {_fmt(r['model'])} | {_fmt(r['simulator'])} | "
-                     f"{r['error']:+.3g} | {r['tolerance']:g} | {'yes' if r['within'] else 'NO'} | "
-                     f"{_fmt(r.get('hand'))} | {_fmt(r.get('hand_error'))} |")
+    lines += map(_row, rows)
     failed = [r for r in rows if not r["within"]]
     gain_rows = [r for r in rows if r["metric"] == "gain"]
     lines += ["", f"Rows: {len(rows)}; outside tolerance: {len(failed)}.",

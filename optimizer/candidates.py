@@ -8,6 +8,7 @@ shortlist and the REST service alike.
 """
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numpy as np
@@ -95,6 +96,7 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
     result = topology.evaluate(arrays, device, conditions, full=True, thd_solve=True)
     metrics: dict[str, float | None] = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
     metrics["gain_error_db"] = float(scoring.gain_error_db(spec, np.array([metrics["gain"]]))[0])
+    metrics.update({k: None for k, v in metrics.items() if v is None or not math.isfinite(v)})  # no figure (no loop)
     nominal = scoring.limit_violations(spec, result.metrics, result.ratings, limits,
                                        result.operating_point["active"])
     tolerances = {role: rec["tolerance"] for role, rec in records.items()}

@@ -459,7 +459,7 @@ def _workspace(slots: int, shape: tuple[int, ...], dtype: np.dtype) -> np.ndarra
 # ----------------------------------------------------------------------------- response
 
 def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
-                      reference: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+                      reference: np.ndarray, steps: int = REFINE_STEPS) -> tuple[np.ndarray, np.ndarray]:
     """f_low, f_high (Hz) where |H| falls to |reference|/sqrt(2), one per candidate.
 
     ``response(f)`` maps frequencies (Hz) of shape (k, candidates) or (k, 1) to complex gains
@@ -467,9 +467,10 @@ def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
     crossing below the mid-band peak, the first above it), then Illinois false position in
     log f refines both at once on d = -ln(|ref|^2/|H|^2 - 1), zero at the corner and exactly
     linear in log f for a maximally flat skirt (|H|^2 = |ref|^2/(1 + (fc/f)^2n), any order n),
-    so a few steps suffice. Corners beyond SWEEP are reported at its ends.
+    so a few steps suffice (``steps``; a response peaking inside the bracket, as a feedback loop
+    with a small phase margin does, needs more). Corners beyond SWEEP are reported at its ends.
     """
-    corners = _corners(response, reference, (0, 1))
+    corners = _corners(response, reference, (0, 1), steps)
     return corners[0], corners[1]
 
 
@@ -480,7 +481,7 @@ def low_3db_corner(response: Callable[[np.ndarray], np.ndarray], reference: np.n
 
 
 def _corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray,
-             sides: tuple[int, ...]) -> np.ndarray:
+             sides: tuple[int, ...], steps: int = REFINE_STEPS) -> np.ndarray:
     """The -3 dB crossings of :func:`minus_3db_corners` on ``sides`` (0 low, 1 high), shape (sides, candidates)."""
     grid = np.logspace(np.log10(SWEEP[0]), np.log10(SWEEP[1]), COARSE_POINTS)
     ref2 = _magnitude2(reference)
@@ -505,7 +506,7 @@ def _corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray
     x0, x1 = log_grid[i0], log_grid[i1]
     d0, d1 = db[i0, cols], db[i1, cols]
     last = np.zeros((len(rows), n), dtype=bool)
-    for _ in range(REFINE_STEPS):  # Illinois false position on the crossings at once
+    for _ in range(steps):  # Illinois false position on the crossings at once
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
         xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
         dm = distance(response(10.0 ** xm))

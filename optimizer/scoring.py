@@ -18,6 +18,7 @@ from optimizer.spec import Spec
 from optimizer.topologies.base import Conditions
 
 FULL_MODEL_LIMITS = ("noise_ein_max", "psrr_min_db")
+LOOP_LIMITS = ("phase_margin_min_deg",)  # judged only where the stage has an overall loop (metric not NaN)
 # each optional spec limit (limit name, metric, +1 min / -1 max) is in optimizer/metrics.py; besides the
 # band corners, noise_ein_max and psrr_min_db need the full=True metrics
 # Derating (common practice, no single source): thick-film chip resistors carry full power to
@@ -130,8 +131,10 @@ def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[s
         judge = _above if sign > 0 else _below
         limit = getattr(limits, limit_name)
         if limit is not None and not (core_only and limit_name in FULL_MODEL_LIMITS):
-            value = metrics[metric] if metric in metrics else np.full(gain.shape, np.nan)
-            out[limit_name] = judge(np.asarray(value), limit)
+            value = np.asarray(metrics[metric] if metric in metrics else np.full(gain.shape, np.nan))
+            if limit_name in LOOP_LIMITS:
+                value = np.where(np.isnan(value), limit, value)
+            out[limit_name] = judge(value, limit)
     for key, limit in rating_limits.items():
         value = metrics["q_power"] if key == "q_power" else ratings[key]
         out[f"rating:{key}"] = _below(np.abs(np.asarray(value)), limit)
@@ -244,7 +247,10 @@ def requirement_margins(spec: Spec, metrics: Mapping[str, object], *, limits_onl
         value = np.asarray(np.nan if raw is None else raw, dtype=float)
         if name == "gain_tolerance":
             value = np.abs(value)
-        out.append((name, metric, sign, limit, value, sign * (value - limit) / limit))
+        margin = sign * (value - limit) / limit
+        if name in LOOP_LIMITS:  # a stage without the loop has no figure and no margin to keep
+            margin = np.where(np.isnan(value), np.inf, margin)
+        out.append((name, metric, sign, limit, value, margin))
     return out
 
 
@@ -262,7 +268,8 @@ def limit_table(spec: Spec, metrics: Mapping[str, float | None]) -> list[dict]:
     ``kind`` "min" or "max", and the relative ``margin`` (>= 0: met; None where there is no figure)."""
     return [{"limit": name, "metric": metric, "kind": "min" if sign > 0 else "max", "limit_value": float(limit),
              "value": float(value), "margin": float(margin) if np.isfinite(margin) else None}
-            for name, metric, sign, limit, value, margin in requirement_margins(spec, metrics)]
+            for name, metric, sign, limit, value, margin in requirement_margins(spec, metrics)
+            if not (name in LOOP_LIMITS and np.all(np.isnan(value)))]  # no loop: not judged
 
 
 def desirability_terms(spec: Spec, metrics: dict[str, np.ndarray]) -> dict[str, tuple[np.ndarray, float]]:

@@ -138,7 +138,8 @@ class SearchSpace:
         prices = {d: float(catalog.transistor(d).get("unit_price") or 0.0) for d in spec.devices}
         return cls(spec, catalog, PartTable.from_catalog(catalog, "resistor", r_values),
                    PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices,
-                   topologies_with_devices(spec, catalog))
+                   tuple(t for t in topologies_with_devices(spec, catalog)  # only stages that can give the gain's sign
+                         if spec.gain.inverting is None or get_topology(t).inverting == spec.gain.inverting))
 
     @property
     def offers_decoupling(self) -> bool:

@@ -277,6 +277,10 @@ class Limits(_Section):
     psrr_min_db: _quantity("dB", optional=True, example="40 dB") = Field(
         None, description="least supply rejection (dB, supply ripple to load) at the ripple frequency "
                           "and at mid-band")
+    phase_margin_min_deg: _quantity("deg", optional=True, maximum=180.0, example="45 deg") = Field(
+        45.0, description="least phase margin (degrees) of a stage's overall feedback loop; 45 degrees is "
+                          "common practice (little peaking); null: not judged. Stages without such a loop "
+                          "are not judged")
     yield_min: _quantity(None, percent=True, maximum=1.0, example="95 %") = Field(
         0.95, description="fraction of Monte Carlo builds that must meet every hard limit "
                           "(robustness: yield)")
@@ -702,12 +706,14 @@ def describe_spec(spec: Spec) -> str:
     limit_units = {"input_impedance_min": ("ohm", ""), "output_impedance_max": ("ohm", ""),
                    "swing_min": ("V", " peak-to-peak"), "supply_current_max": ("A", ""),
                    "thd_max": ("%", ""), "thd_level": ("V", " peak-to-peak"),
-                   "noise_ein_max": ("V", " rms"), "psrr_min_db": ("dB", ""), "yield_min": ("%", "")}
+                   "noise_ein_max": ("V", " rms"), "psrr_min_db": ("dB", ""), "yield_min": ("%", ""),
+                   "phase_margin_min_deg": ("deg", "")}
     set_limits = [(k, v) for k, v in spec.limits.model_dump().items() if v is not None]
     lines.append("  limits" + ("" if set_limits else "            none"))
     for key, value in set_limits:
         unit, suffix = limit_units[key]
         shown = (f"{100 * value:.3g} %" if unit == "%" else f"{value:.3g} dB" if unit == "dB"
+                 else f"{value:.3g}°" if unit == "deg"
                  else fv(value, unit) + suffix)
         lines.append(f"    {key:<22}{shown}")
     p = spec.parts

@@ -17,12 +17,13 @@ PREFIXES = {"p": 1e-12, "n": 1e-9, "u": 1e-6, "µ": 1e-6, "μ": 1e-6, "m": 1e-3,
 # unit name -> spellings accepted after the number
 UNITS = {"V": ("V",), "A": ("A",), "Hz": ("Hz", "hz"), "ohm": ("Ω", "ohm", "ohms", "Ohm", "R"),
          "F": ("F",), "W": ("W",), "s": ("s",), "dB": ("dB", "db"), "°C": ("°C", "degC", "C"),
-         "V/V": ("V/V",)}
+         "V/V": ("V/V",), "deg": ("deg", "°")}
 _KIND = {"V": "a voltage such as \"12 V\"", "A": "a current such as \"10 mA\"",
          "Hz": "a frequency such as \"20 kHz\"", "ohm": "a resistance such as \"4k7\", \"47k\" or \"1M\"",
          "F": "a capacitance such as \"100n\" or \"2.2u\"", "W": "a power such as \"0.25 W\"",
          "s": "a time such as \"10 ms\"", "dB": "a level in dB such as \"-3 dB\"",
-         "°C": "a temperature such as \"25 °C\"", "V/V": "a ratio such as 10"}
+         "°C": "a temperature such as \"25 °C\"", "V/V": "a ratio such as 10",
+         "deg": "an angle such as \"45 deg\""}
 _PREFIX_RE = "meg|[pnuµμmkKMG]"
 # re.ASCII: digits are 0-9 only (float() would also take Arabic-Indic or full-width digits)
 _PLAIN = re.compile(rf"^([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)\s*({_PREFIX_RE})?\s*(.*)$", re.ASCII)

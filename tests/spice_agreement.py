@@ -16,6 +16,8 @@ from spice_designs import CheckDesign
 from spice_harness import (
     clip_of,
     held_transfer,
+    phase_margin_of,
+    spice_loop_gain,
     spice_midband,
     spice_noise,
     spice_noise_figure,
@@ -77,9 +79,17 @@ def agreement_rows(design: CheckDesign) -> list[dict]:
     metrics["thd"] = float(np.asarray(thd_result.metrics["thd"])[0])
     simulated["thd"] = spice_thd(*args, vpp_out=level)
 
+    if math.isfinite(metrics["loop_gain"]):  # a stage with an overall loop: opened nowhere, by double injection
+        f, loop = spice_loop_gain(*args)
+        mid = frequencies[1]
+        simulated["loop_gain"] = float(np.interp(np.log(mid), np.log(f), loop.real))
+        simulated["phase_margin_deg"] = phase_margin_of(f, loop, mid)
+
     hand = {"gain": design.hand_gain, "ic": design.hand_ic}
     rows = []
     for metric, (tolerance, kind) in TOLERANCES.items():
+        if metric not in simulated:  # no overall loop: nothing to compare
+            continue
         error = _error(metrics[metric], simulated[metric], kind)
         row = {"design": design.name, "metric": metric, "model": metrics[metric],
                "simulator": simulated[metric], "error": error, "tolerance": tolerance,

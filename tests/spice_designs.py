@@ -83,7 +83,7 @@ _DECOUPLE_DROP = 0.1
 
 
 def check_designs() -> list[CheckDesign]:
-    """All designs of the ngspice agreement set (36, every topology; 4 with a decoupling RC)."""
+    """All designs of the ngspice agreement set (44, every topology; 4 with a decoupling RC)."""
     designs = []
     for topology, supply, gain, ic, hfe, rs, rl in _CASES:
         req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
@@ -102,6 +102,37 @@ def check_designs() -> list[CheckDesign]:
                                                     d.device, d.conditions, allowed)[0])
         designs.append(CheckDesign(f"{d.name}-rc", d.topology, parts, d.device, d.conditions,
                                    hand_gain=d.hand_gain, hand_ic=d.hand_ic))
+    return designs + pair_designs()
+
+
+# ---- feedback_pair (non-inverting series-shunt pair) -------------------------------------------
+# (supply V, gain V/V, q2's Ic A, hFE, source ohm, load ohm, load capacitance F): hand designs of
+# optimizer/topologies/feedback_pair.py; low gains with high hFE give loop gains of 50-65 and,
+# with a cable-like load capacitance, phase margins from about 25 degrees up
+_PAIR_CASES = [
+    (12.0, 10.0, 1.0e-3, 200, 600, 10e3, 0.0),
+    (9.0, 5.0, 0.5e-3, 100, 1e3, 47e3, 0.0),
+    (24.0, 20.0, 2.0e-3, 300, 50, 2.2e3, 0.0),
+    (15.0, 3.0, 1.0e-3, 500, 600, 47e3, 1e-9),
+    (30.0, 3.0, 1.0e-3, 300, 600, 10e3, 2.2e-9),
+    (12.0, 5.0, 2.0e-3, 300, 50, 10e3, 1e-9),
+    (5.0, 4.0, 1.0e-3, 60, 50, 22e3, 0.0),
+    (15.0, 15.0, 0.5e-3, 500, 10e3, 100e3, 330e-12),
+]
+
+
+def pair_designs() -> list[CheckDesign]:
+    """The feedback_pair designs of the agreement set (8; hand gain +target, hand Ic q1's half)."""
+    designs = []
+    for supply, gain, ic, hfe, rs, rl, cl in _PAIR_CASES:
+        req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
+                               f_low=20.0, collector_current=ic, hfe=hfe)
+        parts = get_topology("feedback_pair").hand_design(req)
+        conditions = Conditions(supply=supply, source_impedance=float(rs), load_impedance=float(rl),
+                                band=(20.0, 20000.0), temperature=27.0, load_capacitance=cl)
+        name = f"feedback_pair-{supply:g}V-A{gain:g}-hfe{hfe}" + (f"-CL{cl * 1e9:g}n" if cl else "")
+        designs.append(CheckDesign(name, "feedback_pair", parts, check_device(hfe), conditions,
+                                   hand_gain=gain, hand_ic=0.5 * ic))
     return designs
 
 

@@ -79,8 +79,9 @@ def test_gate_current_shot_noise_agrees_with_ngspice() -> None:
 
 def test_search_pairs_jfet_stages_only_with_jfets() -> None:
     """Every trial of a space holding both kinds draws a device of its topology's kind."""
-    space = SearchSpace.build(load_spec(SPEC))
-    assert {"jfet_follower", "jfet_common_source", "divider_ce"} <= set(space.topologies)
+    space = SearchSpace.build(load_spec(SPEC))  # a non-inverting spec: the JFET follower and bipolar stages
+    assert "jfet_follower" in space.topologies
+    assert any(get_topology(t).device_kind == "bjt" for t in space.topologies)
     study = optuna.create_study(sampler=optuna.samplers.RandomSampler(seed=2))
     kinds = set()
     for _ in range(200):

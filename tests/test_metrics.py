@@ -28,7 +28,8 @@ def test_every_limit_of_the_spec_reads_a_metric() -> None:
     assert dict((name, (metric, sign)) for name, metric, sign in LIMIT_METRICS) == {
         "input_impedance_min": ("input_impedance", 1), "output_impedance_max": ("output_impedance", -1),
         "swing_min": ("swing_vpp", 1), "supply_current_max": ("supply_current", -1), "thd_max": ("thd", -1),
-        "noise_ein_max": ("noise_ein_v", -1), "psrr_min_db": ("psrr_db", 1)}
+        "noise_ein_max": ("noise_ein_v", -1), "psrr_min_db": ("psrr_db", 1),
+        "phase_margin_min_deg": ("phase_margin_deg", 1)}
     assert {name for name, _, _ in LIMIT_METRICS} <= set(Limits.model_fields)
 
 

@@ -27,7 +27,7 @@ CHUNK_FULL = 4096  # the full path's nodal solves run over (frequencies, candida
 SWING_FLOAT32_FLOOR = 0.1  # V peak-to-peak: usable swings below it are re-solved in double precision
 METRICS = ("gain", "gain_db", "swing_vpp", "clip_vpp", "input_impedance", "output_impedance", "supply_current",
            "f_low", "f_high", "thd", "noise_ein_v", "noise_figure_db", "q_power", "part_count",
-           "psrr_db", "psrr_ripple_db", "psrr_mid_db", "emitter_voltage")
+           "psrr_db", "psrr_ripple_db", "psrr_mid_db", "emitter_voltage", "loop_gain", "phase_margin_deg")
 SUPPLY_PARTS = ("r_decouple", "c_decouple")  # optional supply decoupling RC of every stage (0 = direct rail)
 # The supply decoupling RC's netlist elements, the same in every stage: (role, node a, node b).
 # With r_decouple > 0 every element of the stage that returns to ``vcc`` moves to ``vloc``.
@@ -151,6 +151,9 @@ class Topology(ABC):
     vce_keys: ClassVar[tuple[str, ...]] = ("vce",)
     # resistor roles :meth:`gain_bound` reads (empty: the topology gives no bound)
     gain_bound_roles: ClassVar[tuple[str, ...]] = ()
+    # false-position steps refining the -3 dB corners (physics.minus_3db_corners); more where the
+    # response may peak near a corner (an overall feedback loop)
+    corner_steps: ClassVar[int] = physics.REFINE_STEPS
 
     def __init_subclass__(cls, **kwargs: object) -> None:
         super().__init_subclass__(**kwargs)
@@ -415,6 +418,7 @@ class StageModel(Topology):
             nan = np.full_like(gain, np.nan)
             m.update(f_low=nan, f_high=nan, noise_ein_v=nan, noise_figure_db=nan, psrr_db=nan, psrr_ripple_db=nan,
                      psrr_mid_db=nan)
+            m.update(self._loop_metrics(p, conditions, b, r_source))
             if full:
                 m.update(self._full_metrics(p, conditions, b, r_source, gain))
             if thd_solve:
@@ -425,13 +429,19 @@ class StageModel(Topology):
         ratings["vce_max"] = vce_max
         return StageResult({k: m[k] for k in METRICS}, b.op, ratings)
 
+    def _loop_metrics(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
+        """loop_gain (V/V, mid-band) and phase_margin_deg (degrees) of a stage with an overall
+        feedback loop around more than one transistor; NaN (no such loop) by default."""
+        nan = np.full_like(r_source, np.nan)
+        return {"loop_gain": nan, "phase_margin_deg": nan}
+
     def _full_metrics(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray,
                       gain: np.ndarray) -> dict[str, np.ndarray]:
         # Element values stay 1-D over candidates and frequencies run along a leading axis, so
         # every array of the nodal solve is (frequencies, candidates) with the candidates
         # contiguous: numpy's inner loops then run over thousands of values, not a few frequencies.
         net = self._network(p, c, b.small_signal, True, r_source, True)
-        f_low, f_high = physics.minus_3db_corners(self._response(net, r_source), gain)
+        f_low, f_high = physics.minus_3db_corners(self._response(net, r_source), gain, self.corner_steps)
         ein, nf = physics.noise_integrals(net, "out", "in", r_source, c.band)
         return {"f_low": f_low, "f_high": f_high, "noise_ein_v": ein, "noise_figure_db": nf,
                 **self._psrr(p, c, b, r_source)}

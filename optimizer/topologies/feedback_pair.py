@@ -1,0 +1,361 @@
+"""feedback_pair: the two-transistor series-shunt feedback pair, non-inverting.
+
+A divider-biased common emitter (q1) direct-coupled into a second common emitter (q2) whose
+emitter resistor is bypassed; r_feedback returns the output (q2's collector) to q1's emitter,
+so the closed-loop gain is close to 1 + r_feedback/r_emitter.
+
+Nodes: r_top vcc-base, r_bottom base-gnd, c_in src-base, q1 collector-base-emitter,
+r_collector vcc-collector (q1's load, q2's base), r_emitter emitter-gnd, q2
+collector2-collector-emitter2, r_emitter2 emitter2-gnd, c_emitter2 emitter2-gnd (bypass),
+r_collector2 vcc-collector2, r_feedback collector2-emitter, c_out collector2-out, load out-gnd.
+Same device for q1 and q2, drawn NPN on a positive rail.
+"""
+from __future__ import annotations
+
+import math
+from typing import Callable
+
+import numpy as np
+
+from optimizer import physics
+from optimizer.devices import Device
+from optimizer.errors import InputError
+from optimizer.synthesis import VBE_HAND, HandRequirements, coupling_capacitor, divider, parallel
+from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
+from optimizer.topologies.divider_ce import add_divider_stage, add_load, divider_ratings
+
+PAIR_ITERATIONS = 40  # damped 2-D Newton steps of the pair's bias (both junctions at once, from 1 mA)
+CROSSOVER_STEPS = 4  # Newton steps in log frequency refining the loop gain's unity crossing (|T| = 1)
+HAND_EMITTER_MAX = 0.3  # the hand method's highest q1 emitter voltage, a share of the supply
+NO_CROSSOVER_MARGIN = 180.0  # degrees: a loop gain below 1 at every frequency cannot ring
+
+
+def solve_pair(a1: np.ndarray, r_base1: np.ndarray, vcc: np.ndarray | float, rc1: np.ndarray,
+               re: np.ndarray, rf: np.ndarray, g_c2: np.ndarray, j_c2: np.ndarray,
+               v_e2_0: np.ndarray | float, r_e2: np.ndarray | float, *, rb: float, i_s: float,
+               beta: np.ndarray, nvt: float, inv_vaf: float, v_start: tuple[np.ndarray, np.ndarray] | None = None,
+               iterations: int = PAIR_ITERATIONS) -> dict[str, np.ndarray]:
+    """Both forward-active junctions of the pair solved together by damped 2-D Newton (V, A, ohm, S).
+
+    The loops: ``a1 = Vbe1 + r_base1*Ib1 + Ve1`` (q1's base Thevenin, RB included in r_base1),
+    ``Vc1 = Vbe2 + RB*Ib2 + Ve2`` with ``Vc1 = vcc - rc1*(Ic1 + Ib2)``, ``Ve2 = v_e2_0 + r_e2*Ie2``;
+    the emitter node (re to ground, rf to the collector2 node) and the collector2 node
+    (``g_c2*Vc2 = j_c2 + Ve1/rf - Ic2``: rc2, rf and in the static solve the load, as one
+    conductance and current) are linear and are eliminated: ``Ve1 = v0 + k_e*Ie1 - k_c*Ic2``.
+    Gummel-Poon currents as :func:`physics.solve_junction`, Vcb to the internal base; each step
+    takes the Early factors from the nodes at its start and its Jacobian includes their
+    dependence on the nodes (left out, the loop's gain slows Newton to linear convergence). Returns per transistor
+    the keys small_signal needs (``q1``, ``q2``: vbe, vcb, i_forward, ic, ib) and the node
+    voltages v_e1, v_c1, v_e2, v_c2, with ``converged``.
+    """
+    g_e = 1.0 / re + 1.0 / rf - 1.0 / (rf * rf * g_c2)
+    k_e = 1.0 / g_e
+    k_c = k_e / (rf * g_c2)
+    v0 = k_c * j_c2
+    shape = np.broadcast_shapes(*(np.shape(x) for x in (a1, r_base1, vcc, rc1, re, rf, g_c2, j_c2, v_e2_0,
+                                                        r_e2, beta)))
+    if v_start is None:
+        x1 = np.full(shape, nvt * math.log(1e-3 / i_s))
+        x2 = x1.copy()
+    else:
+        x1 = np.broadcast_to(v_start[0], shape).astype(float)
+        x2 = np.broadcast_to(v_start[1], shape).astype(float)
+    eps1 = np.ones(shape)
+    eps2 = np.ones(shape)
+    inv_b = 1.0 / beta
+
+    def state(x1: np.ndarray, x2: np.ndarray) -> tuple[np.ndarray, ...]:
+        f1 = i_s * np.expm1(x1 / nvt)
+        f2 = i_s * np.expm1(x2 / nvt)
+        ic1, ib1, ic2, ib2 = eps1 * f1, f1 * inv_b, eps2 * f2, f2 * inv_b
+        v_e1 = v0 + k_e * (ic1 + ib1) - k_c * ic2
+        v_c1 = vcc - rc1 * (ic1 + ib2)
+        v_e2 = v_e2_0 + r_e2 * (ic2 + ib2)
+        v_c2 = (j_c2 + v_e1 / rf - ic2) / g_c2
+        return f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2
+
+    for _ in range(iterations):
+        # Early factors from the node voltages at this step (Vcb to the internal base), then the residuals
+        f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = state(x1, x2)
+        eps1 = 1.0 + (v_c1 - v_e1 - x1) * inv_vaf
+        eps2 = 1.0 + (v_c2 - v_e2 - x2) * inv_vaf
+        f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = state(x1, x2)
+        r1 = a1 - x1 - r_base1 * ib1 - v_e1
+        r2 = v_c1 - x2 - rb * ib2 - v_e2
+        # Jacobian of (r1, r2) in (x1, x2), the Early factors' own dependence on the nodes included
+        g1, g2 = (f1 + i_s) / nvt, (f2 + i_s) / nvt
+        a11, a22, b1, b2 = eps1 * g1, eps2 * g2, g1 * inv_b, g2 * inv_b
+        dve1 = (k_e * (a11 + b1), -k_c * a22)
+        dvc2 = (dve1[0] / (rf * g_c2), (dve1[1] / rf - a22) / g_c2)
+        dvcb1 = (-rc1 * a11 - dve1[0] - 1.0, -rc1 * b2 - dve1[1])
+        dvcb2 = (dvc2[0], dvc2[1] - r_e2 * (a22 + b2) - 1.0)
+        e1, e2 = f1 * inv_vaf, f2 * inv_vaf
+        dic1 = (a11 + e1 * dvcb1[0], e1 * dvcb1[1])
+        dic2 = (e2 * dvcb2[0], a22 + e2 * dvcb2[1])
+        j11 = -1.0 - r_base1 * b1 - k_e * (dic1[0] + b1) + k_c * dic2[0]
+        j12 = -k_e * dic1[1] + k_c * dic2[1]
+        j21 = -rc1 * dic1[0] - r_e2 * dic2[0]
+        j22 = -rc1 * (dic1[1] + b2) - 1.0 - rb * b2 - r_e2 * (dic2[1] + b2)
+        det = j11 * j22 - j12 * j21
+        d1 = (-r1 * j22 + r2 * j12) / det
+        d2 = (-r2 * j11 + r1 * j21) / det
+        x1 = x1 + np.clip(d1, -physics.MAX_STEP, physics.MAX_STEP)
+        x2 = x2 + np.clip(d2, -physics.MAX_STEP, physics.MAX_STEP)
+    f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = state(x1, x2)
+    r1 = a1 - x1 - r_base1 * ib1 - v_e1
+    r2 = v_c1 - x2 - rb * ib2 - v_e2
+    converged = ((np.abs(r1) < physics.NEWTON_TOL) & (np.abs(r2) < physics.NEWTON_TOL)
+                 & np.isfinite(f1) & np.isfinite(f2) & (f1 > 0) & (f2 > 0))
+    return {"q1": {"vbe": x1, "vcb": v_c1 - v_e1 - x1, "i_forward": f1, "ic": ic1, "ib": ib1},
+            "q2": {"vbe": x2, "vcb": v_c2 - v_e2 - x2, "i_forward": f2, "ic": ic2, "ib": ib2},
+            "v_e1": v_e1, "v_c1": v_c1, "v_e2": v_e2, "v_c2": v_c2, "converged": converged}
+
+
+def loop_phase_margin(t0: np.ndarray, r1: np.ndarray, c1: np.ndarray, r2: np.ndarray, c2: np.ndarray,
+                      c_mu: np.ndarray, gm: np.ndarray, f3: np.ndarray) -> np.ndarray:
+    """Phase margin (degrees) of T(s) = t0*(1 - s*c_mu/gm) / ((1 + s*b1 + s^2*b2)*(1 + s/(2 pi f3))).
+
+    The two dominant poles are those of q2's common-emitter stage with c_mu bridging its input
+    node (r1 ohm, c1 F) and output node (r2, c2): b1 = r1(c1+c_mu) + r2(c2+c_mu) + gm r1 r2 c_mu,
+    b2 = r1 r2 (c1 c2 + c_mu (c1 + c2)) (pole splitting, with c_mu's right-half-plane zero at
+    gm/c_mu); f3 (Hz) is the next pole (q1's emitter node), counted in phase. The unity crossing
+    of the two-pole part is a quadratic in w^2; Newton steps in log w then add the third pole.
+    """
+    b1 = r1 * (c1 + c_mu) + r2 * (c2 + c_mu) + gm * r1 * r2 * c_mu
+    b2 = r1 * r2 * (c1 * c2 + c_mu * (c1 + c2))
+    tz = c_mu / gm
+    # |T|^2 = 1 without the third pole: b2^2 u^2 + (b1^2 - 2 b2 - t0^2 tz^2) u + 1 - t0^2 = 0, u = w^2
+    qb = b1 * b1 - 2.0 * b2 - t0 * t0 * tz * tz
+    qc = 1.0 - t0 * t0
+    u = (-qb + np.sqrt(np.maximum(qb * qb - 4.0 * b2 * b2 * qc, 0.0))) / (2.0 * b2 * b2)
+    w = np.sqrt(np.maximum(u, 1e-30))
+    w3 = 2.0 * np.pi * f3
+
+    def log_mag(w: np.ndarray) -> np.ndarray:
+        num = t0 * t0 * (1.0 + (w * tz) ** 2)
+        den = ((1.0 - w * w * b2) ** 2 + (w * b1) ** 2) * (1.0 + (w / w3) ** 2)
+        return 0.5 * np.log(num / den)
+
+    for _ in range(CROSSOVER_STEPS):  # d ln|T| / d ln w by a small central difference
+        slope = (log_mag(w * 1.01) - log_mag(w / 1.01)) / (2.0 * math.log(1.01))
+        w = w * np.exp(-log_mag(w) / np.where(slope < -1e-3, slope, -1e-3))
+    lag = (np.arctan2(w * b1, 1.0 - w * w * b2) + np.arctan(w * tz) + np.arctan(w / w3))
+    margin = 180.0 - np.degrees(lag)
+    return np.where(t0 > 1.0, margin, NO_CROSSOVER_MARGIN)
+
+
+class FeedbackPair(StageModel):
+    name = "feedback_pair"
+    inverting = False
+    polarities = ("npn",)
+    supplies = ("positive",)
+    device_kind = "bjt"
+    description = "series-shunt feedback pair: two direct-coupled common emitters, gain 1 + r_feedback/r_emitter"
+    order = 50
+    resistors = ("r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter2", "r_collector2", "r_feedback")
+    capacitors = ("c_in", "c_emitter2", "c_out")
+    transistors = 2
+    elements = (("c_in", "src", "base"), ("r_top", "vcc", "base"), ("r_bottom", "base", "0"),
+                ("r_collector", "vcc", "collector"), ("r_emitter", "emitter", "0"),
+                ("r_emitter2", "emitter2", "0"), ("c_emitter2", "emitter2", "0"),
+                ("r_collector2", "vcc", "collector2"), ("r_feedback", "collector2", "emitter"),
+                ("c_out", "collector2", "out"))
+    transistor_pins = (("q1", "collector", "base", "emitter"), ("q2", "collector2", "collector", "emitter2"))
+    node_voltages = {"base": "v_base", "collector": "v_collector", "emitter": "v_emitter",
+                     "emitter2": "v_emitter2", "collector2": "v_collector2"}
+    vce_keys = ("vce", "vce2")
+    gain_bound_roles = ("r_feedback", "r_emitter")
+    corner_steps = 8  # a small phase margin peaks the response inside f_high's bracket
+
+    def gain_bound(self, resistors: dict[str, np.ndarray], load: float) -> np.ndarray:
+        # closed loop A = A_ideal*T/(1+T) seen through the input divider: never above 1 + Rf/Re
+        return 1.0 + resistors["r_feedback"] / resistors["r_emitter"]
+
+    def hand_design(self, req: HandRequirements) -> dict[str, float]:
+        """Textbook pair: q2 at the hand current, q1 at half of it; q1's emitter at a tenth of
+        the supply (raised until r_emitter carries at least three times the feedback current),
+        q1 given max(1 V, a fifth of the supply) of Vce, q2's collector midway between its
+        emitter (plus Vce_sat) and the rail; r_feedback = (gain - 1)*r_emitter. InputError when
+        the emitter would have to sit above 30 % of the supply (a gain too low for the rail)."""
+        ic2 = req.collector_current
+        ic1 = 0.5 * ic2
+        vcc, gain = req.supply, max(req.gain, 1.5)
+        v_e1 = 0.1 * vcc
+        for _ in range(3):
+            v_c1 = v_e1 + max(1.0, 0.2 * vcc)
+            v_e2 = v_c1 - VBE_HAND
+            v_c2 = 0.5 * (vcc + v_e2 + req.vce_sat)
+            v_e1 = min(max(0.1 * vcc, 3.0 * (v_c2 - v_e1) / (gain - 1.0)), HAND_EMITTER_MAX * vcc)
+        r_emitter = (v_e1 - (v_c2 - v_e1) / (gain - 1.0)) / ic1
+        if not r_emitter > 0 or not v_c2 > v_e1:
+            raise InputError.single("gain.target", req.gain,
+                                    f"a gain the hand method can bias on {vcc:g} V (r_feedback's current would "
+                                    "exceed q1's emitter current)", title="hand method has no solution")
+        r_feedback = (gain - 1.0) * r_emitter
+        i_feedback = (v_c2 - v_e1) / r_feedback
+        r_collector2 = (vcc - v_c2) / (ic2 + i_feedback)
+        r_collector = (vcc - v_c1) / (ic1 + ic2 / req.hfe)
+        r_emitter2 = v_e2 / ic2
+        first = HandRequirements(**{**req.__dict__, "collector_current": ic1})
+        r_top, r_bottom = divider(first, v_e1 + VBE_HAND)
+        z_in = parallel(parallel(r_top, r_bottom), req.hfe * r_emitter)
+        r_bypass = parallel(r_emitter2, 0.026 / ic2 + r_collector / req.hfe)
+        return {"r_top": r_top, "r_bottom": r_bottom, "r_collector": r_collector, "r_emitter": r_emitter,
+                "r_emitter2": r_emitter2, "r_collector2": r_collector2, "r_feedback": r_feedback,
+                "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low),
+                "c_emitter2": coupling_capacitor(r_bypass, req.f_low),
+                "c_out": coupling_capacitor(parallel(r_collector2, r_feedback) + req.load_impedance, req.f_low)}
+
+    def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float,
+              i_s: float) -> Bias:
+        rt, rb_, rc1, re, rf = p["r_top"], p["r_bottom"], p["r_collector"], p["r_emitter"], p["r_feedback"]
+        rc2, re2 = p["r_collector2"], p["r_emitter2"]
+        vcc = c.supply
+        vth, rth = vcc * rb_ / (rt + rb_), rt * rb_ / (rt + rb_)
+        q = solve_pair(vth, rth + device.RB, vcc, rc1, re, rf, 1.0 / rc2 + 1.0 / rf, vcc / rc2, 0.0, re2,
+                       rb=device.RB, i_s=i_s, beta=beta, nvt=nvt, inv_vaf=device.inv_vaf)
+        q1, q2 = q["q1"], q["q2"]
+        v_e1, v_c1, v_e2, v_c2 = q["v_e1"], q["v_c1"], q["v_e2"], q["v_c2"]
+        v_base = v_e1 + q1["vbe"] + device.RB * q1["ib"]
+        vce, vce2 = v_c1 - v_e1, v_c2 - v_e2
+        i_div = (vcc - v_base) / rt
+        active = (physics.is_active(vce, q1["ic"], device.vce_sat, q["converged"])
+                  & physics.is_active(vce2, q2["ic"], device.vce_sat, q["converged"]))
+        i_rc2 = (vcc - v_c2) / rc2
+        op = {"v_base": v_base, "v_collector": v_c1, "v_emitter": v_e1, "v_emitter2": v_e2, "v_collector2": v_c2,
+              "ic": q1["ic"], "ib": q1["ib"], "ic2": q2["ic"], "ib2": q2["ib"], "i_divider": i_div,
+              "i_feedback": (v_c2 - v_e1) / rf, "vce": vce, "vce2": vce2, "vbe": q1["vbe"], "vbe2": q2["vbe"],
+              "active": active, "supply_current": i_div + (vcc - v_c1) / rc1 + i_rc2,
+              "q_power": np.maximum(vce * q1["ic"], vce2 * q2["ic"])}
+        return Bias(op, [physics.small_signal(q1, device, beta, nvt, i_s),
+                         physics.small_signal(q2, device, beta, nvt, i_s)])
+
+    def _output_q(self, op: dict[str, np.ndarray]) -> np.ndarray:
+        return op["v_collector2"]
+
+    def _midband(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
+        ss = b.small_signal
+        one = np.ones_like(r_source)
+        drive = self._network(p, c, ss, False, r_source, True)
+        v = drive.solve({"in": 1.0 / r_source})
+        hd2 = []
+        for k, (bint, coll, emit) in enumerate((("bint", "collector", "emitter"),
+                                                ("bint2", "collector2", "emitter2"))):
+            hd2.append(self._hd2_term(ss[k], drive, v, bint, coll, emit))
+        return {"gain": v["out"],
+                "input_impedance": self._network(p, c, ss, False, None, True).solve({"in": one}, ["in"])["in"],
+                "output_impedance": self._network(p, c, ss, False, r_source, False).solve({"out": one}, ["out"])["out"],
+                "hd2_terms": hd2}
+
+    @staticmethod
+    def _hd2_term(ss: dict[str, np.ndarray], drive: physics.Network, v: dict[str, np.ndarray], bint: str,
+                  coll: str, emit: str) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """One transistor's second harmonic at the load per volt of output amplitude, as the
+        (v_x, suppression, Early u, sign) term :func:`physics.thd_small_signal` reads (u = 0: the
+        Early effect is inside the suppression).
+
+        Second-order perturbation of the Gummel-Poon junction: with x = vb'e and y = vcb per volt
+        at the load, If's second harmonic gbe*x^2/(4 NF VT) flows in the collector (times the Early
+        factor, gm + go) and in the base (gpi), and the Early product If*Vcb/VAF adds
+        gbe*x*y/(2 VAF) = go*x*y/(2 NF VT) in the collector; each reaches the load through the
+        closed loop's transimpedance from that branch. q2's base is fed from a high impedance, so
+        its base share and the Early product both matter (they halve its distortion)."""
+        one = np.ones_like(ss["gm"])
+        nvt = ss["ib"] / ss["gpi"]  # NF*VT: ib = If/BF, gpi = (If + IS)/(NF VT BF)
+        x = (v[bint] - v[emit]) / v["out"]
+        y = (v[coll] - v[bint]) / v["out"]
+        z = drive.solve({coll: -one, emit: one}, ["out"])["out"]
+        z_b = drive.solve({bint: -one, emit: one}, ["out"])["out"]
+        h = np.real(x * x / (4.0 * nvt) * ((ss["gm"] + ss["go"]) * z + ss["gpi"] * z_b)
+                    + x * y * ss["go"] / (2.0 * nvt) * z)
+        return np.abs(x), 4.0 * nvt * np.abs(h) / np.abs(x), np.zeros_like(h), np.sign(h)
+
+    def loop_gain(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]],
+                  r_source: np.ndarray) -> np.ndarray:
+        """Mid-band loop gain T (V/V): the return ratio of q2's gm (its source replaced by a unit
+        current, T = -gm2 * the control voltage that current produces), source and load in place."""
+        ss2 = {**ss[1], "gm": np.zeros_like(ss[1]["gm"])}
+        net = self._network(p, c, [ss[0], ss2], False, r_source, True)
+        one = np.ones_like(r_source)
+        v = net.solve({"collector2": -one, "emitter2": one}, ["bint2", "emitter2"])
+        return -ss[1]["gm"] * (v["bint2"] - v["emitter2"])
+
+    def _loop_metrics(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
+        """loop_gain (V/V, mid-band) and phase_margin_deg (degrees) from the two dominant poles."""
+        ss1, ss2 = b.small_signal
+        t0 = self.loop_gain(p, c, b.small_signal, r_source)
+        r_base_src = physics.parallel(r_source, p["r_top"], p["r_bottom"]) + ss1["rb"]
+        # q1 as seen by the loop (driven at its emitter, base at AC ground through the source and
+        # divider): its emitter resistance and its collector's output resistance
+        r_into_e1 = (r_base_src + 1.0 / ss1["gpi"]) / (1.0 + ss1["gm"] / ss1["gpi"])
+        r_e1 = physics.parallel(p["r_emitter"], r_into_e1)
+        # input node of q2: its intrinsic base, fed by r_collector (q1's collector) through RB
+        r1 = physics.parallel(p["r_collector"] + ss2["rb"], 1.0 / ss2["gpi"])
+        c1 = ss2["cpi"] + ss1["cmu"] * p["r_collector"] / (p["r_collector"] + ss2["rb"])
+        load = np.full_like(t0, c.load_impedance)
+        r2 = physics.parallel(p["r_collector2"], load, p["r_feedback"] + r_e1, 1.0 / ss2["go"])
+        c2 = np.full_like(t0, c.load_capacitance)
+        f3 = 1.0 / (2.0 * np.pi * r_e1 * ss1["cpi"])
+        return {"loop_gain": t0,
+                "phase_margin_deg": loop_phase_margin(t0, r1, c1, r2, c2, ss2["cmu"], ss2["gm"], f3)}
+
+    def _swing(self, p: Parts, device: Device, c: Conditions, b: Bias,
+               mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+        op = b.op
+        load = np.full_like(op["ic2"], c.load_impedance)
+        r_ac = physics.parallel(p["r_collector2"], load, p["r_feedback"] + p["r_emitter"])
+        cut, sat = physics.load_line_limits(op["ic2"], op["vce2"], device.vce_sat, r_ac, np.zeros_like(r_ac))
+        vce_max = np.maximum(op["vce"] + np.abs(op["v_emitter"]),
+                             np.minimum(c.supply, op["v_collector2"] + cut) - op["v_emitter2"])
+        return 2.0 * np.minimum(cut, sat), vce_max
+
+    def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
+                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
+        net, rail = self._new_network(("in", "base", "bint", "emitter", "collector", "bint2", "emitter2",
+                                       "collector2", "out"), p, c, ac, supply)
+        add_divider_stage(net, p, ss, ac, r_source, rail)
+        net.resistor("emitter", None, p["r_emitter"])
+        net.resistor("collector", "bint2", ss[1]["rb"])
+        net.transistor("bint2", "collector2", "emitter2", ss[1], ac)
+        net.resistor("emitter2", None, p["r_emitter2"])
+        net.capacitor("emitter2", None, p["c_emitter2"], ac, True)
+        net.resistor("collector2", rail, p["r_collector2"])
+        net.resistor("collector2", "emitter", p["r_feedback"])
+        net.capacitor("collector2", "out", p["c_out"], ac, True)
+        add_load(net, c, ac, load)
+        return net
+
+    def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
+        op = b.op
+        vcc = op["v_supply_local"]
+        rail = np.full_like(op["ic"], c.rail_max)
+        # at power-up with q1 off, r_collector lifts q2's base (and emitter2) towards the rail
+        return {**divider_ratings(p, c, op),
+                "p_r_emitter": op["v_emitter"] ** 2 / p["r_emitter"],
+                "p_r_emitter2": op["v_emitter2"] ** 2 / p["r_emitter2"],
+                "p_r_collector2": (vcc - op["v_collector2"]) ** 2 / p["r_collector2"],
+                "p_r_feedback": (op["v_collector2"] - op["v_emitter"]) ** 2 / p["r_feedback"],
+                "v_c_emitter2": rail, "v_c_out": rail}
+
+    def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
+                      i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+        """Load voltage (V) against source voltage (V): the pair's two loops solved together at
+        every sample; c_in, c_emitter2 and c_out hold their DC (emitter2 held, the load returns
+        to collector2's quiescent voltage); collector2 flattens at emitter2 + vce_sat."""
+        op = b.op
+        rth = physics.parallel(p["r_top"], p["r_bottom"])
+        vth = c.supply * p["r_bottom"] / (p["r_top"] + p["r_bottom"])
+        rs = max(c.source_impedance, physics.R_FLOOR)
+        rc2, rf = p["r_collector2"], p["r_feedback"]
+        g_c2 = 1.0 / rc2 + 1.0 / rf + 1.0 / c.load_impedance
+        j_c2 = c.supply / rc2 + op["v_collector2"] / c.load_impedance
+        kw = {"rb": device.RB, "i_s": i_s, "beta": beta, "nvt": nvt, "inv_vaf": device.inv_vaf}
+
+        def out(vs: np.ndarray) -> np.ndarray:
+            a = (vth * rs + (vs + op["v_base"]) * rth) / (rs + rth)
+            q = solve_pair(a, physics.parallel(rth, rs) + device.RB, c.supply, p["r_collector"], p["r_emitter"], rf,
+                           g_c2, j_c2, op["v_emitter2"], 0.0, v_start=(op["vbe"], op["vbe2"]),
+                           iterations=2 * physics.THD_ITERATIONS, **kw)
+            v_c2 = np.maximum(q["v_c2"], op["v_emitter2"] + device.vce_sat)
+            return v_c2 - op["v_collector2"]
+        return out
