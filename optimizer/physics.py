@@ -24,6 +24,8 @@ R_FLOOR = 1e-3  # ohm, stand-in for a zero source impedance
 SWEEP = (0.1, 1e8)  # Hz, span of the frequency-response search
 COARSE_POINTS = 10  # log-spaced points over SWEEP (one per decade)
 REFINE_STEPS = 4  # false-position steps per -3 dB crossing (see minus_3db_corners)
+PEAK_STEPS = 6  # more steps where a crossing's inside end peaks above the reference (bisected first)
+PEAK_DISTANCE = 60.0  # the corner distance at its clamp: |H| within 1e-26 of, or above, the reference
 NOISE_POINTS = 6  # log-spaced frequencies for the in-band noise integral
 NOISE_POINTS_FLICKER = 12  # the same where a 1/f source bends the input noise inside the band
 NOISE_REFERENCE_K = 290.0  # K, standard source temperature of the noise figure
@@ -484,15 +486,21 @@ def _corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray
     x0, x1 = log_grid[i0], log_grid[i1]
     d0, d1 = db[i0, cols], db[i1, cols]
     last = np.zeros((len(rows), n), dtype=bool)
-    for _ in range(REFINE_STEPS):  # Illinois false position on the crossings at once
+    # An inside end at or above the reference (a response peaking near its corner, as a
+    # bootstrap's) has d at its clamp, where false position would crawl: such a bracket is
+    # bisected in log f until its inside end lies below the reference, with PEAK_STEPS more steps.
+    above_ref = d1 >= PEAK_DISTANCE
+    steps = REFINE_STEPS + (PEAK_STEPS if np.any(above_ref & inside) else 0)
+    for _ in range(steps):  # Illinois false position on the crossings at once
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
-        xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
+        xm = np.where(above_ref, 0.5 * (x0 + x1), np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1)))
         dm = distance(response(10.0 ** xm))
         out_side = dm <= 0.0
-        d1 = np.where(out_side & last, 0.5 * d1, d1)  # an end kept twice: halve its value
-        d0 = np.where(~out_side & ~last, 0.5 * d0, d0)
+        d1 = np.where(out_side & last & ~above_ref, 0.5 * d1, d1)  # an end kept twice: halve its value
+        d0 = np.where(~out_side & ~last & ~above_ref, 0.5 * d0, d0)
         x0, d0 = np.where(out_side, xm, x0), np.where(out_side, dm, d0)
         x1, d1 = np.where(out_side, x1, xm), np.where(out_side, d1, dm)
+        above_ref = np.where(out_side, above_ref, dm >= PEAK_DISTANCE)
         last = out_side
     xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
     return np.where(inside, 10.0 ** xm, np.array(SWEEP)[rows, None])

@@ -89,16 +89,18 @@ def _need(scalars: Mapping[str, float], *names: str) -> list[float]:
 def spice_operating_point(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
                           conditions: Any) -> dict[str, float]:
     """DC operating point: ic (A, q1; ic2 for q2 of a two-transistor stage), v_base,
-    v_collector, v_emitter (V to ground) and supply_current (A drawn from Vcc)."""
+    v_collector, v_emitter (V to ground, those of the stage's nodes) and supply_current (A drawn from Vcc)."""
     from optimizer.topologies import get_topology
 
-    follower = get_topology(topology).transistors == 2
-    control = ("op\nlet ic = @q1[ic]\nlet v_base = v(base)\nlet v_collector = v(collector)\n"
-               "let v_emitter = v(emitter)\nlet supply_current = -i(vcc)\n"
+    stage = get_topology(topology)
+    follower = stage.transistors == 2
+    nodes = tuple(n for n in ("base", "collector", "emitter") if n in stage.node_voltages)  # a follower has no collector node
+    control = ("op\nlet ic = @q1[ic]\n" + "".join(f"let v_{n} = v({n})\n" for n in nodes)
+               + "let supply_current = -i(vcc)\n"
                + ("let ic2 = @q2[ic]\nprint ic2\n" if follower else "")
-               + "print ic v_base v_collector v_emitter supply_current")
+               + f"print ic {' '.join(f'v_{n}' for n in nodes)} supply_current")
     scalars, _ = _simulate(topology, parts, model, conditions, control)
-    names = ("ic", "v_base", "v_collector", "v_emitter", "supply_current") + (("ic2",) if follower else ())
+    names = ("ic", *(f"v_{n}" for n in nodes), "supply_current") + (("ic2",) if follower else ())
     return dict(zip(names, _need(scalars, *names)))
 
 

@@ -396,9 +396,10 @@ class StageModel(Topology):
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             mid = self._midband(p, conditions, b, r_source)
             # impedances are seen through the coupling capacitors at the band's geometric mean
+            # (complex where a stage gives its mid-band impedance at that frequency: a bootstrap)
             w_mid = 2.0 * np.pi * math.sqrt(conditions.band[0] * conditions.band[1])
-            z_in = np.hypot(mid["input_impedance"], 1.0 / (w_mid * p["c_in"]))
-            z_out = np.hypot(mid["output_impedance"], 1.0 / (w_mid * p["c_out"]))
+            z_in = np.abs(mid["input_impedance"] + 1.0 / (1j * w_mid * p["c_in"]))
+            z_out = np.abs(mid["output_impedance"] + 1.0 / (1j * w_mid * p["c_out"]))
             clip, vce_max = self._swing(p, device, local, b, mid)
             gain = mid["gain"]
             swing = physics.usable_swing(self._static_fn(p, device, conditions, b, nvt, b.beta), gain, 0.5 * clip)
