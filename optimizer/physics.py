@@ -32,6 +32,7 @@ NOISE_REFERENCE_K = 290.0  # K, standard source temperature of the noise figure
 NEWTON_ITERATIONS = 8
 THD_SAMPLES = 16  # samples per period of the quasi-static distortion solve (harmonics 2..7)
 THD_ITERATIONS = 6  # Newton steps per sample, warm-started at the quiescent Vbe
+THD_FREQUENCY = 1000.0  # Hz, where a frequency-dependent distortion term is judged (THD quoted at 1 kHz, common practice)
 SWING_TOLERANCE = 0.1  # usable swing: both peaks within 10 % of the linear gain times the drive
 SWING_GRID = (0.8, 1.0, 1.6)  # multiples of the clip-level drive scanned for the first deviation
 SWING_STEPS = 3  # Illinois false-position steps on the drive amplitude after the scan
@@ -120,6 +121,18 @@ def depletion_capacitance(c0: float, v: np.ndarray) -> np.ndarray:
     lin = c0 / (1.0 - FC) ** (1.0 + MJ) * (1.0 - FC * (1.0 + MJ) + MJ * v / VJ)
     rev = c0 / (1.0 - np.minimum(v, FC * VJ) / VJ) ** MJ
     return np.where(v < FC * VJ, rev, lin)
+
+
+def depletion_charge(c0: float, v: np.ndarray) -> np.ndarray:
+    """SPICE junction depletion charge (C) at forward voltage v (V): the integral from 0 V of
+    :func:`depletion_capacitance`, c0*VJ/(1-MJ)*(1 - (1 - v/VJ)^(1-MJ)) below FC*VJ, its
+    linear-capacitance continuation above."""
+    v = np.asarray(v, dtype=float)
+    vf = np.minimum(v, FC * VJ)
+    rev = c0 * VJ / (1.0 - MJ) * (1.0 - (1.0 - vf / VJ) ** (1.0 - MJ))
+    d = np.maximum(v - FC * VJ, 0.0)
+    f = c0 / (1.0 - FC) ** (1.0 + MJ)
+    return rev + f * ((1.0 - FC * (1.0 + MJ)) * d + MJ / (2.0 * VJ) * ((FC * VJ + d) ** 2 - (FC * VJ) ** 2))
 
 
 def small_signal(bias: dict[str, np.ndarray], device: Device, beta: np.ndarray, nvt: float,

@@ -19,7 +19,7 @@ import numpy as np
 from optimizer import physics
 from optimizer.devices import Device
 from optimizer.synthesis import VBE_HAND, HandRequirements, coupling_capacitor, divider, parallel
-from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
+from optimizer.topologies.base import Bias, Conditions, Parts, StageModel, _source_resistance
 from optimizer.topologies.divider_ce import add_load
 
 Ports = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]  # y11, y12, y22, j1, j2
@@ -51,31 +51,35 @@ def follower_loop(ports: tuple[np.ndarray, ...], device: Device, vcc: np.ndarray
     return q
 
 
-def follower_midband(ss: dict[str, np.ndarray], z_source: np.ndarray, g_shunt: np.ndarray,
+def follower_midband(ss: dict[str, np.ndarray], s: complex, z_source: np.ndarray, g_shunt: np.ndarray,
                      g_bootstrap: np.ndarray, g_mid: np.ndarray, y_c: np.ndarray | complex,
                      g_emitter: np.ndarray, g_load: np.ndarray) -> dict[str, np.ndarray]:
-    """Closed-form small-signal follower (exact for the network of the model), complex.
+    """Closed-form small-signal follower at complex frequency s (rad/s), exact for the
+    network of the model (hybrid-pi with rb, Cpi, Cmu).
 
     The base node B has g_shunt (S) to AC ground and g_bootstrap to a node M; M has g_mid to
     AC ground and y_c (S, the bootstrap capacitor's admittance, 0 without one) to the emitter
     E; E has g_emitter (S, without the load) and g_load to ground; q1's collector is at AC
     ground (its go joins g_emitter); the source z_source (ohm, complex: with c_in's reactance)
     drives B. Returns ``a`` (V/V, emitter over base), gain (source to load), z_in (ohm, into B),
-    z_out (ohm, into E, the source in place, the load removed) and
-    vx_per_out (V/V, q1's intrinsic b'e signal per volt at the load).
+    z_out (ohm, into E, the source in place, the load removed) and vx_per_out (V/V, q1's
+    intrinsic b'e signal per volt at the emitter).
     """
-    gpi, gm, rb = ss["gpi"], ss["gm"], ss["rb"]
-    g_p = gpi / (1.0 + rb * gpi)  # base current per volt of vB - vE
-    y_t = (gpi + gm) / (1.0 + rb * gpi)  # emitter current per volt of vB - vE
+    gm, rb = ss["gm"], ss["rb"]
+    y_pi, y_mu = ss["gpi"] + s * ss["cpi"], s * ss["cmu"]
+    d_b = 1.0 + rb * (y_pi + y_mu)  # q1 seen through rb: the internal base eliminated
+    g_p = y_pi / d_b  # base current per volt of vB - vE (Cmu's share is a shunt at B)
+    y_t = (y_pi + gm) / d_b  # emitter current per volt of vB - vE
+    g_shunt = g_shunt + y_mu / d_b
+    g_e = g_emitter + ss["go"] + y_t * rb * y_mu  # the emitter current lost through Cmu
     d = g_bootstrap + g_mid + y_c
     a_m, c_m = g_bootstrap / d, y_c / d  # vM = a_m*vB + c_m*vE
-    g_e = g_emitter + ss["go"]
     a = (y_t + y_c * a_m) / (y_t + y_c * (1.0 - c_m) + g_e + g_load)
     z_in = 1.0 / (g_p * (1.0 - a) + g_bootstrap * (1.0 - a_m - c_m * a) + g_shunt)
     k = (g_p + g_bootstrap * c_m) / (g_p + g_bootstrap * (1.0 - a_m) + g_shunt + 1.0 / z_source)  # vB/vE
     y_out = g_e + y_t * (1.0 - k) + y_c * (1.0 - a_m * k - c_m)
     return {"a": a, "gain": a * z_in / (z_in + z_source), "z_in": z_in, "z_out": 1.0 / y_out,
-            "vx_per_out": (1.0 - a) / a * g_p / gpi}
+            "vx_per_out": ((1.0 - a) / a - rb * y_mu) / d_b}
 
 
 def real_signed(h: np.ndarray) -> np.ndarray:
@@ -149,18 +153,25 @@ class EmitterFollower(StageModel):
         return op["v_emitter"]
 
     def _follower(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
-        # at the band's geometric mean, where the gain and impedances are judged: the source
-        # reaches the base through c_in, whose reactance a follower's output impedance sees
-        w = 2.0 * math.pi * math.sqrt(c.band[0] * c.band[1])
-        g_load = np.full_like(r_source, 1.0 / c.load_impedance)
-        return follower_midband(b.small_signal[0], r_source + 1.0 / (1j * w * p["c_in"]),
-                                *self._mid_admittances(p, c), g_load)
+        """:func:`follower_midband` at the band's geometric mean, where the gain and impedances
+        are judged: the source reaches the base through c_in (whose reactance the output
+        impedance sees), the load (with its capacitance) hangs on the emitter through c_out.
+        Adds z_source (ohm, complex) and the complex gain_c."""
+        s = 2j * math.pi * math.sqrt(c.band[0] * c.band[1])
+        y_load = 1.0 / c.load_impedance + s * c.load_capacitance
+        y_out = s * p["c_out"]
+        z_source = r_source + 1.0 / (s * p["c_in"])
+        m = follower_midband(b.small_signal[0], s, z_source, *self._mid_admittances(p, c),
+                             y_load * y_out / (y_load + y_out))
+        m["gain_c"] = m["gain"] * y_out / (y_load + y_out)
+        m["z_source"] = z_source
+        return m
 
     def _midband(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
         m = self._follower(p, c, b, r_source)
         vx = np.abs(m["vx_per_out"])
         # the follower compresses (the emitter's own current feedback, loop 1 + v_e/v_x)
-        return {"gain": real_signed(m["gain"]), "input_impedance": m["z_in"], "output_impedance": m["z_out"],
+        return {"gain": real_signed(m["gain_c"]), "input_impedance": m["z_in"], "output_impedance": m["z_out"],
                 "hd2_terms": [(vx, vx / (1.0 + vx), 0.0, -1.0)]}
 
     def _swing(self, p: Parts, device: Device, c: Conditions, b: Bias,
@@ -208,18 +219,56 @@ class EmitterFollower(StageModel):
     def _extra_ratings(self, p: Parts, c: Conditions, op: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
         return {}
 
+    def _thd_static(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
+                    beta: np.ndarray, gain: np.ndarray, samples: int = physics.THD_SAMPLES) -> np.ndarray:
+        """THD (fraction) at c.signal_vpp by the nonlinear-current method at physics.THD_FREQUENCY.
+
+        The static solve over one period (capacitors holding their DC) gives q1's waveforms;
+        what its currents do beyond their linearisation at the operating point (collector
+        current beyond gm*vbe + go*vce, base current beyond gpi*vbe) and the current of its
+        collector-base depletion charge (CJC: the base swings with the output against the
+        fixed collector) are harmonic current sources, each carried to the load by the whole
+        stage's network at its own frequency (source, c_in, the bootstrap, the load, the
+        device capacitances). The fundamental is the static one. At a 10 Mohm source the
+        charge term doubles the THD and the bootstrap turns the phase of the rest (ngspice,
+        tests/spice_designs.py); at a low source it is the static FFT again."""
+        harmonics = min(9, samples // 2 - 1)
+        t = np.arange(samples) / samples
+        vs = np.asarray(0.5 * c.signal_vpp / np.abs(gain))[:, None] * np.sin(2.0 * np.pi * t)
+        fn = self._static_fn(p, device, c, b, nvt, beta)
+        q = fn(vs, waves=True)
+        op, ss = b.op, b.small_signal[0]
+        col = lambda k: np.asarray(op[k])[:, None]  # noqa: E731
+        d_vbe, d_ve = q["vbe"] - col("vbe"), q["v_emitter"] - col("v_emitter")
+        i_c = q["ic"] - col("ic") - ss["gm"][:, None] * d_vbe + ss["go"][:, None] * d_ve
+        i_b = q["ib"] - col("ib") - ss["gpi"][:, None] * d_vbe
+        charge = physics.depletion_charge(device.CJC, q["v_emitter"] + q["vbe"] - col("v_supply_local"))
+        spectra = [np.fft.rfft(w, axis=-1)[:, 2:harmonics + 1].T for w in (i_c, i_b, charge)]
+        fundamental = np.abs(np.fft.rfft(fn(vs), axis=-1)[:, 1])
+        f = physics.THD_FREQUENCY * np.arange(2, harmonics + 1)[:, None]
+        s = 2j * math.pi * f
+        c_k, b_k, q_k = spectra
+        q_k = s * q_k  # the charge's current, out of the internal base
+        net = self._network(p, c, b.small_signal, True, _source_resistance(b, c), True)
+        rhs = {"emitter": c_k + b_k, "bint": -b_k - q_k}
+        if "vloc" in net.index:  # behind a decoupling RC the collector current returns to the local rail
+            rhs["vloc"] = -c_k
+        out = net.at(s).solve(rhs, ["out"])["out"]  # (harmonics, candidates)
+        return np.sqrt(np.sum(np.abs(out) ** 2, axis=0)) / fundamental
+
     def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
-                      i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+                      i_s: float, beta: np.ndarray) -> Callable[..., np.ndarray]:
         """Load voltage (V) against source voltage (V): q1's base loop in the held-capacitor
         two-port at every sample. Past cutoff q1 passes no current and the emitter rests where
-        its network holds it; at the other end the emitter stops vce_sat below the rail."""
+        its network holds it; at the other end the emitter stops vce_sat below the rail.
+        ``waves=True``: q1's solution instead (vbe, ic, ib, v_emitter ... per sample)."""
         op = b.op
         vce_sat = device.vce_sat
 
-        def out(vs: np.ndarray) -> np.ndarray:
+        def out(vs: np.ndarray, waves: bool = False) -> np.ndarray | dict[str, np.ndarray]:
             q = follower_loop(two_port(*self._held_ports(p, c, op, vs)), device, c.supply, beta, nvt, i_s,
                               v_start=op["vbe"], iterations=physics.THD_ITERATIONS)
-            return np.minimum(q["v_emitter"], c.supply - vce_sat) - op["v_emitter"]
+            return q if waves else np.minimum(q["v_emitter"], c.supply - vce_sat) - op["v_emitter"]
         return out
 
 
