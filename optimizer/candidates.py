@@ -114,7 +114,7 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
         transistor=device.record(), metrics=metrics, operating_point=op,
         operating_point_spread={
             "ic": [float(judged.spread["ic_low"][0]), op["ic"], float(judged.spread["ic_high"][0])],
-            "v_out_q": [float(judged.spread["v_out_low"][0]), op.get("v_out_q", op["v_collector"]),
+            "v_out_q": [float(judged.spread["v_out_low"][0]), op["v_out_q"],
                         float(judged.spread["v_out_high"][0])]},
         ratings={k: {"value": float(np.asarray(result.metrics["q_power"] if k == "q_power"
                                                else result.ratings[k])[0]), "limit": float(limit)}

@@ -90,7 +90,6 @@ def _flat_result(topology: Topology, parts: dict[str, np.ndarray], device: Devic
                 if k.startswith("v_") and k not in out})  # DC node voltages (v_out_q among them), for their spread
     out["active"] = np.asarray(op["active"]).reshape(shape)
     out["ic"] = np.asarray(op["ic"]).reshape(shape)
-    out.setdefault("v_out_q", np.asarray(op["v_collector"]).reshape(shape))
     return out
 
 
@@ -172,7 +171,7 @@ def bias_spread(topology: Topology, parts: dict[str, np.ndarray], device: Device
         for hfe_edge in (device.hfe_min, device.hfe_max):
             op = topology.operating_point(both, device, at, hfe_edge * hfe_temperature_factor(float(temperature)))
             ic = np.where(op["active"], op["ic"], np.nan).reshape(2, n)
-            v_out = np.asarray(op.get("v_out_q", op["v_collector"])).reshape(2, n)
+            v_out = np.asarray(op["v_out_q"]).reshape(2, n)
             with np.errstate(invalid="ignore"):
                 ic_low = np.fmin(ic_low, np.nanmin(np.where(np.isnan(ic), np.inf, ic), axis=0))
                 ic_high = np.fmax(ic_high, np.nanmax(np.where(np.isnan(ic), -np.inf, ic), axis=0))

@@ -187,6 +187,12 @@ class Topology(ABC):
         load (ohm), for pruning an exhaustive enumeration; None: no bound known."""
         return None
 
+    def capacitor_floors(self, resistors: dict[str, np.ndarray], conditions: Conditions,
+                         f_low: float) -> dict[str, np.ndarray]:
+        """Least values (F) some capacitors keep whatever the stage's low corner needs (capacitor
+        role -> array over candidates), for a capacitor that does other work in band; {}: none."""
+        return {}
+
     def hand_design(self, req: HandRequirements) -> dict[str, float]:
         """The unrounded textbook design (role -> ohm or F) that seeds the search and is the
         benchmarks' baseline; InputError when the hand method has no answer (no seed)."""

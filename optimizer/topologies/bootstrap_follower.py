@@ -47,6 +47,14 @@ class BootstrapFollower(EmitterFollower):
         return {**parts, "r_bootstrap": r_tap, "c_bootstrap": coupling_capacitor(r_tap, req.f_low),
                 "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low)}
 
+    def capacitor_floors(self, resistors: dict[str, np.ndarray], conditions: Conditions,
+                         f_low: float) -> dict[str, np.ndarray]:
+        # The bootstrap lifts the input impedance, which the low corner judges only where the
+        # source is high: c_bootstrap keeps at least its own corner with the divider at the
+        # band's low edge (common practice), so it still works there with any source.
+        r_tap = resistors["r_top"] * resistors["r_bottom"] / (resistors["r_top"] + resistors["r_bottom"])
+        return {"c_bootstrap": coupling_capacitor(r_tap, f_low)}
+
     def _dc_ports(self, p: Parts, c: Conditions) -> Ports:
         r_t, r_b = p["r_top"], p["r_bottom"]
         r_base = r_t * r_b / (r_t + r_b) + p["r_bootstrap"]  # the divider's Thevenin and r_bootstrap

@@ -82,6 +82,19 @@ def follower_midband(ss: dict[str, np.ndarray], s: complex, z_source: np.ndarray
             "vx_per_out": ((1.0 - a) / a - rb * y_mu) / d_b}
 
 
+def add_follower(net: physics.Network, p: Parts, c: Conditions, ss: dict[str, np.ndarray], ac: bool, load: bool,
+                 rail: str | None, nodes: tuple[str, str, str]) -> None:
+    """A follower transistor (small signal ``ss``) from its base node through rb to its
+    internal base, collector on ``rail`` (None = AC ground), r_follower from its emitter to
+    ground, c_out to 'out' and the load; ``nodes`` = (base, internal base, emitter)."""
+    base, bint, emitter = nodes
+    net.resistor(base, bint, ss["rb"])
+    net.transistor(bint, rail, emitter, ss, ac)
+    net.resistor(emitter, None, p["r_follower"])
+    net.capacitor(emitter, "out", p["c_out"], ac, True)
+    add_load(net, c, ac, load)
+
+
 def real_signed(h: np.ndarray) -> np.ndarray:
     """|h| with the sign of its real part (a mid-band gain as the other stages give it)."""
     return np.copysign(np.abs(h), np.real(h))
@@ -191,11 +204,7 @@ class EmitterFollower(StageModel):
             net.admittance("in", None, 1.0 / r_source)
         net.capacitor("in", "base", p["c_in"], ac, True)
         self._bias_network(net, p, ac, rail)
-        net.resistor("base", "bint", ss[0]["rb"])
-        net.transistor("bint", rail, "emitter", ss[0], ac)
-        net.resistor("emitter", None, p["r_follower"])
-        net.capacitor("emitter", "out", p["c_out"], ac, True)
-        add_load(net, c, ac, load)
+        add_follower(net, p, c, ss[0], ac, load, rail, ("base", "bint", "emitter"))
         return net
 
     def _nodes(self) -> tuple[str, ...]:
