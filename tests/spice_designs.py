@@ -1,6 +1,6 @@
 """The design set the stage models are checked on against ngspice.
 
-Hand-method designs (optimizer.synthesis, unrounded) over all four topologies, supplies
+Hand-method designs (optimizer.synthesis, unrounded) over the topologies, supplies
 3.3-30 V, hFE 50-500, collector currents 0.3-3 mA and a range of gains, sources and
 loads: varied enough to exercise every term of the models, and the same designs show
 how far the textbook estimate itself lands from the simulator.
@@ -83,7 +83,7 @@ _DECOUPLE_DROP = 0.1
 
 
 def check_designs() -> list[CheckDesign]:
-    """All designs of the ngspice agreement set (36, every topology; 4 with a decoupling RC)."""
+    """All designs of the ngspice agreement set (52, every topology; 4 with a decoupling RC)."""
     designs = []
     for topology, supply, gain, ic, hfe, rs, rl in _CASES:
         req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
