@@ -1,12 +1,14 @@
 """Speed and memory of the stage models (one core).
 
     .venv/bin/python benchmarks/bench_models.py
+    .venv/bin/python benchmarks/bench_models.py --per-topology   # the per-topology section alone
 
 Prints candidates per second and peak memory for: nominal core metrics of divider_ce, the
 plain-numpy reference kernel of the same core equations without the usable swing
 (benchmarks/reference_kernel.py, the speed bound; the core's rate is reported as a fraction of
 it, measured in the same run), the full metric set with frequency response and noise, the
-capacitor sizing, and Monte Carlo yield; writes benchmarks/results/models.md.
+capacitor sizing, and Monte Carlo yield, then the core and full rates of every registered topology;
+writes benchmarks/results/models.md.
 
 One core: BLAS/OpenMP pools are limited to one thread before numpy loads and the process is
 pinned to one CPU. The rate is taken on the process's CPU time (best of several runs), so a
@@ -37,7 +39,9 @@ from optimizer.devices import Device  # noqa: E402
 from optimizer.eseries import series_values  # noqa: E402
 from optimizer.sizing import size_capacitors  # noqa: E402
 from optimizer.tolerance import monte_carlo_yield  # noqa: E402
-from optimizer.topologies import get_topology  # noqa: E402
+from optimizer.errors import InputError  # noqa: E402
+from optimizer.synthesis import HandRequirements  # noqa: E402
+from optimizer.topologies import TOPOLOGIES, get_topology  # noqa: E402
 from optimizer.topologies.base import Conditions  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -89,8 +93,60 @@ def measure(label: str, work, n: int, repeats: int = REPEATS) -> dict:
     return {"label": label, "n": n, "rate": n / cpu, "wall_rate": n / wall, "peak_mb": peak}
 
 
+# ---- per topology: every registered stage, core and full rates ----------------------------------
+PER_TOPOLOGY_SECTION = "## Per topology"
+PER_TOPOLOGY_N = {"core": 100_000, "full": 10_000}
+HAND_REQUIREMENTS = HandRequirements(supply=12.0, gain=5.0, load_impedance=47e3, source_impedance=600.0,
+                                     f_low=20.0, collector_current=1e-3, hfe=200.0)
+
+
+def around_hand_design(name: str, n: int, seed: int = 1) -> dict[str, np.ndarray] | None:
+    """n designs of a topology scattered around its hand design (resistors x0.7..x1.4, log-uniform;
+    capacitors as the hand method sizes them), or None where the hand method has no answer."""
+    topology = get_topology(name)
+    try:
+        hand = topology.hand_design(HAND_REQUIREMENTS)
+    except InputError:
+        return None
+    rng = np.random.default_rng(seed)
+    return {role: value * (np.exp(rng.uniform(np.log(0.7), np.log(1.4), n)) if role.startswith("r_") else 1.0)
+            + np.zeros(n) for role, value in hand.items()}
+
+
+def per_topology_lines() -> list[str]:
+    """The per-topology section: core and full rates of every registered topology, one core."""
+    lines = [PER_TOPOLOGY_SECTION, "",
+             "Every registered topology on designs scattered around its own hand design (12 V, |gain| 5 where "
+             "the stage has gain, 1 mA, 600 ohm into 47k; resistors x0.7..x1.4), candidates per CPU second "
+             f"(best of {REPEATS}); core: {PER_TOPOLOGY_N['core']:,} designs, full: {PER_TOPOLOGY_N['full']:,}.", "",
+             "| topology | core metrics /s (CPU) | full metrics /s (CPU) | core wall-clock /s | active designs |",
+             "| --- | --- | --- | --- | --- |"]
+    for name in TOPOLOGIES:
+        parts = around_hand_design(name, PER_TOPOLOGY_N["core"])
+        if parts is None:
+            lines.append(f"| {name} | no hand design | | | |")
+            continue
+        topology = get_topology(name)
+        few = {k: v[:PER_TOPOLOGY_N["full"]] for k, v in parts.items()}
+        core = measure(name, lambda: topology.evaluate(parts, DEVICE, CONDITIONS, full=False), PER_TOPOLOGY_N["core"])
+        full = measure(name, lambda: topology.evaluate(few, DEVICE, CONDITIONS, full=True), PER_TOPOLOGY_N["full"])
+        active = float(np.mean(topology.operating_point(few, DEVICE, CONDITIONS)["active"]))
+        lines.append(f"| {name} | {core['rate']:,.0f} | {full['rate']:,.0f} | {core['wall_rate']:,.0f} | "
+                     f"{active:.0%} |")
+        print(lines[-1], flush=True)
+    return lines
+
+
 def main() -> None:
     pinned = pin_one_cpu()
+    if "--per-topology" in sys.argv[1:]:  # this section alone, replacing it in the results file
+        path = ROOT / "benchmarks" / "results" / "models.md"
+        kept = path.read_text(encoding="utf-8").split(PER_TOPOLOGY_SECTION)[0].rstrip("\n")
+        load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+        section = per_topology_lines() + ["", f"Run alone (`--per-topology`), process {pinned}, load average "
+                                              f"{load:.1f}."]
+        path.write_text(kept + "\n\n" + "\n".join(section) + "\n", encoding="utf-8")
+        return
     topology = get_topology("divider_ce")
     core_n, full_n, size_n, mc_n = 1_000_000, 100_000, 2_000, 1_000
     core_parts, full_parts, mc_parts = (random_divider_ce(k) for k in (core_n, full_n, mc_n))
@@ -136,7 +192,8 @@ def main() -> None:
                      f"{'-' if before is None else format(row['rate'] / before, '.2f') + 'x'} | "
                      f"{'-' if earlier is None else f'{earlier:,}'} | {row['wall_rate']:,.0f} | "
                      f"{TARGETS.get(key, '-')} | {row['peak_mb']:.0f} |")
-    lines += ["", f"Process peak resident memory over the whole benchmark: {max_rss:.0f} MB."]
+    lines += ["", f"Process peak resident memory over the whole benchmark: {max_rss:.0f} MB.", ""]
+    lines += per_topology_lines()
     text = "\n".join(lines) + "\n"
     (ROOT / "benchmarks" / "results" / "models.md").write_text(text, encoding="utf-8")
     print(text)

@@ -2,6 +2,7 @@
 
     .venv/bin/python benchmarks/bench_search.py            # full run -> benchmarks/results/search.md
     .venv/bin/python benchmarks/bench_search.py --quick    # smoke run: 2 specs, 3 seeds, 500 trials, prints only
+    .venv/bin/python benchmarks/bench_search.py --only bs_e24_emitter_follower   # some specs alone, prints only
 
 The specs are ``benchmarks/specs/*.yaml``: each names one topology and one device, so the
 exhaustive oracle (``optimizer.exhaustive``) covers the very space the search covers, and
@@ -450,13 +451,18 @@ def main() -> None:
     parser.add_argument("--memory-child", metavar="SPEC", help=argparse.SUPPRESS)
     parser.add_argument("--trials", type=int, default=MEMORY_TRIALS, help=argparse.SUPPRESS)
     parser.add_argument("--out", type=Path, default=None, help="results file (default: results/search.md; "
-                        "--quick writes none unless given)")
+                        "--quick and --only write none unless given)")
+    parser.add_argument("--only", metavar="NAMES", default=None,
+                        help="comma-separated spec names (benchmarks/specs/NAME.yaml): quality and time on those "
+                             "alone, without the big oracle, the memory run and the profile")
     args = parser.parse_args()
     if args.memory_child:
         memory_child(args.memory_child, args.trials)
         return
     load_start = os.getloadavg()[0]
     paths = sorted(SPECS.glob("*.yaml"))
+    if args.only:
+        paths = [p for p in paths if p.stem in args.only.split(",")]
     if args.quick:
         paths = [p for p in paths if p.stem in QUICK_SPECS]
         seeds, journal_seeds, default_seeds, random_seeds, budget = 3, 1, 1, 2, QUICK_TRIALS
@@ -466,13 +472,15 @@ def main() -> None:
     with tempfile.TemporaryDirectory(prefix="bench-search-") as tmp:
         for path in paths:
             results.append(bench_spec(path, seeds, journal_seeds, default_seeds, random_seeds, Path(tmp), budget))
-    slowest = max(results, key=lambda r: median(r["timing"]["memory_search"]))
-    profile = profile_search(SPECS / f"{slowest['name']}.yaml", budget)
-    memory = peak_memory(2_000 if args.quick else MEMORY_TRIALS)  # before the big oracle grows this process
-    oracle_big = None if args.quick else oracle_alone()
+    profile = memory = oracle_big = None
+    if not args.only:
+        slowest = max(results, key=lambda r: median(r["timing"]["memory_search"]))
+        profile = profile_search(SPECS / f"{slowest['name']}.yaml", budget)
+        memory = peak_memory(2_000 if args.quick else MEMORY_TRIALS)  # before the big oracle grows this process
+        oracle_big = None if args.quick else oracle_alone()
     text = report(results, oracle_big, memory, profile, seeds, (load_start, os.getloadavg()[0]))
     print("\n" + text)
-    out = args.out or (None if args.quick else RESULTS)
+    out = args.out or (None if args.quick or args.only else RESULTS)
     if out:
         out.parent.mkdir(parents=True, exist_ok=True)
         out.write_text(text)

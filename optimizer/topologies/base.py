@@ -150,6 +150,11 @@ class Topology(ABC):
     vce_keys: ClassVar[tuple[str, ...]] = ("vce",)
     # resistor roles :meth:`gain_bound` reads (empty: the topology gives no bound)
     gain_bound_roles: ClassVar[tuple[str, ...]] = ()
+    # True: the core metrics with c_in at its smallest and the other capacitors at their largest
+    # are at least as good as the sized design's (mid-band figures that do not depend on the
+    # capacitors), so the exhaustive oracle may prune by them; a stage whose mid-band gain
+    # depends on its capacitors (a follower from a high source, a bootstrap) sets False
+    core_is_bound: ClassVar[bool] = True
 
     def __init_subclass__(cls, **kwargs: object) -> None:
         super().__init_subclass__(**kwargs)

@@ -116,6 +116,7 @@ class EmitterFollower(StageModel):
     transistor_pins = (("q1", "vcc", "base", "emitter"),)
     node_voltages = {"base": "v_base", "emitter": "v_emitter"}
     gain_bound_roles = ("r_follower",)
+    core_is_bound = False  # the mid-band figures see c_in (and a bootstrap's c_bootstrap) at the band's centre
 
     def gain_bound(self, resistors: dict[str, np.ndarray], load: float) -> np.ndarray:
         # the emitter follows the base less a forward-biased junction: |gain| < 1 whatever the parts
