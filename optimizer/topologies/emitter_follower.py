@@ -61,7 +61,7 @@ def follower_midband(ss: dict[str, np.ndarray], s: complex, z_source: np.ndarray
     AC ground and y_c (S, the bootstrap capacitor's admittance, 0 without one) to the emitter
     E; E has g_emitter (S, without the load) and g_load to ground; q1's collector is at AC
     ground (its go joins g_emitter); the source z_source (ohm, complex: with c_in's reactance)
-    drives B. Returns ``a`` (V/V, emitter over base), gain (source to load), z_in (ohm, into B),
+    drives B. Returns ``a`` (V/V, emitter over base), gain (source to emitter), z_in (ohm, into B),
     z_out (ohm, into E, the source in place, the load removed) and vx_per_out (V/V, q1's
     intrinsic b'e signal per volt at the emitter).
     """
@@ -170,7 +170,7 @@ class EmitterFollower(StageModel):
         """:func:`follower_midband` at the band's geometric mean, where the gain and impedances
         are judged: the source reaches the base through c_in (whose reactance the output
         impedance sees), the load (with its capacitance) hangs on the emitter through c_out.
-        Adds z_source (ohm, complex) and the complex gain_c."""
+        Adds gain_c (V/V, complex): source to load."""
         s = 2j * math.pi * math.sqrt(c.band[0] * c.band[1])
         y_load = 1.0 / c.load_impedance + s * c.load_capacitance
         y_out = s * p["c_out"]
@@ -178,7 +178,6 @@ class EmitterFollower(StageModel):
         m = follower_midband(b.small_signal[0], s, z_source, *self._mid_admittances(p, c),
                              y_load * y_out / (y_load + y_out))
         m["gain_c"] = m["gain"] * y_out / (y_load + y_out)
-        m["z_source"] = z_source
         return m
 
     def _midband(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
