@@ -44,7 +44,7 @@ from optimizer.synthesis import hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import SUPPLY_PARTS
 from optimizer.units import format_value
-from optimizer.validation import validate_spec
+from optimizer.validation import sign_eligible, validate_spec
 
 STATUSES = ("queued", "running", "done", "failed", "cancelled")
 SHORTLIST_SAMPLES = robustness.FINAL_BUILDS  # Monte Carlo builds for each shortlisted design's yield
@@ -137,7 +137,8 @@ class SearchSpace:
         devices = {d: Device.from_row(catalog.transistor(d)) for d in spec.devices}
         prices = {d: float(catalog.transistor(d).get("unit_price") or 0.0) for d in spec.devices}
         return cls(spec, catalog, PartTable.from_catalog(catalog, "resistor", r_values),
-                   PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices, tuple(spec.topologies))
+                   PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices,
+                   sign_eligible(spec))  # a topology of the wrong gain sign would only spend trials
 
     @property
     def offers_decoupling(self) -> bool:

@@ -20,13 +20,17 @@ from optimizer.topologies import get_topology
 TITLE = "spec cannot be searched"
 
 
+def sign_eligible(spec: Spec) -> tuple[str, ...]:
+    """The spec's topologies whose gain sign is the spec's (all of them when either sign will do):
+    the ones the search space holds."""
+    wanted = spec.gain.inverting
+    return tuple(name for name in spec.topologies if wanted is None or get_topology(name).inverting == wanted)
+
+
 def _gain_sign(spec: Spec) -> list[Problem]:
     """The gain's sign against the topologies that may give it."""
     wanted = spec.gain.inverting
-    if wanted is None:
-        return []
-    able = [name for name in spec.topologies if get_topology(name).inverting == wanted]
-    if able:
+    if sign_eligible(spec):
         return []
     sign = "an inverting" if wanted else "a non-inverting"
     shown = -spec.gain.target if wanted else spec.gain.target

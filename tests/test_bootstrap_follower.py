@@ -146,7 +146,8 @@ def test_piezo_spec_checks_and_lists_the_followers(capsys: pytest.CaptureFixture
 
 @needs_ngspice
 def test_piezo_search_over_every_topology_ranks_a_follower_first() -> None:
-    # a search over every registered topology (the spec names none) on the 5.6 Mohm piezo source:
+    # a search over every registered topology (the spec names none; the space keeps those that
+    # give its non-inverting gain) on the 5.6 Mohm piezo source:
     # rank 1 meets the spec and is the bootstrapped follower, the only stage here whose input
     # stays above 10 Mohm with a non-inverting gain; its gain, input impedance and supply
     # current re-checked in ngspice (Debian) through its netlist, within the agreement tolerances
