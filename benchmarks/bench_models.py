@@ -1,6 +1,7 @@
 """Speed and memory of the stage models (one core).
 
     .venv/bin/python benchmarks/bench_models.py
+    .venv/bin/python benchmarks/bench_models.py --per-topology   # the per-topology section alone
 
 Prints candidates per second and peak memory for: nominal core metrics of divider_ce, the
 plain-numpy reference kernel of the same core equations without the usable swing

@@ -527,7 +527,7 @@ def main() -> None:
     oracle_big = None if args.quick else oracle_alone()
     text = report(results, oracle_big, memory, profile, seeds, facts)
     print("\n" + text)
-    out = args.out or (None if args.quick else RESULTS)
+    out = args.out or (None if args.quick or args.only else RESULTS)
     if out:
         out.parent.mkdir(parents=True, exist_ok=True)
         out.write_text(text)

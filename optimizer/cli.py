@@ -141,8 +141,11 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
     verdict = "meets every limit" if record["feasible"] else "MISSES: " + ", ".join(record["violations"])
     print(f"{record['topology']} with {record['transistor']['id']}: {verdict}")
     print("parts:  " + "  ".join(f"{role}={part['label']}" for role, part in record["parts"].items()))
-    print("metrics:")
+    absent = [key for key, value in record["metrics"].items() if value is None]
+    print(f"metrics (no figure for this stage: {', '.join(absent)}):" if absent else "metrics:")
     for key, value in record["metrics"].items():
+        if value is None:
+            continue
         spread = record["worst_case"].get(key)
         shown = show_noise(record) if key == "noise_ein_v" else show(key, value, catalog.currency)
         span = f"   worst case {show(key, spread[0])} .. {show(key, spread[1])}" if spread else ""

@@ -14,6 +14,9 @@ the enumeration is a branch and bound that stays exact:
 2. combinations are then fully evaluated (capacitors sized) in order of that bound, until
    the next bound cannot beat the best full score found.
 
+A topology whose core metrics are no such bound (``Topology.core_is_bound`` False: its
+mid-band gain depends on the capacitors) has every combination fully evaluated instead.
+
 The pass is streaming: only the combinations meeting every core limit are kept (memory
 grows with them, not with the space). Where the topology has a gain bound
 (``Topology.gain_bound``) only the (r_collector, r_emitter) pairs that can reach the spec's gain
@@ -156,9 +159,13 @@ def exhaustive(spec: Spec, topology: str | None = None, device: str | None = Non
 
     directions = [d for _, d in spec.objective_directions]
     front_values: list[np.ndarray] = []
-    idx, optimistic, feasible = bounds(prune=True, threshold=0.0, limit=None)  # every core-feasible design
-    branch_and_bound(idx, optimistic)
-    if best_score <= 0:  # no design meets every limit: the nearest miss, over the whole space
+    if not model.core_is_bound:  # no bound from the core: every combination fully evaluated
+        idx, _, feasible = bounds(prune=True, threshold=-np.inf, limit=None)
+        branch_and_bound(idx, np.full(idx.shape[0], np.inf))
+    else:
+        idx, optimistic, feasible = bounds(prune=True, threshold=0.0, limit=None)  # every core-feasible design
+        branch_and_bound(idx, optimistic)
+    if best_score <= 0 and model.core_is_bound:  # no design meets every limit: the nearest miss, over the whole space
         idx, optimistic, _ = bounds(prune=False, threshold=-np.inf, limit=KEEP_INFEASIBLE)
         if not branch_and_bound(idx, optimistic) and idx.shape[0] == KEEP_INFEASIBLE:
             idx, optimistic, _ = bounds(prune=False, threshold=best_score, limit=None)

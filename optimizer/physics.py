@@ -24,12 +24,15 @@ R_FLOOR = 1e-3  # ohm, stand-in for a zero source impedance
 SWEEP = (0.1, 1e8)  # Hz, span of the frequency-response search
 COARSE_POINTS = 10  # log-spaced points over SWEEP (one per decade)
 REFINE_STEPS = 4  # false-position steps per -3 dB crossing (see minus_3db_corners)
+PEAK_STEPS = 6  # more steps where a crossing's inside end peaks above the reference (bisected first)
+PEAK_DISTANCE = 60.0  # the corner distance at its clamp: |H| within 1e-26 of, or above, the reference
 NOISE_POINTS = 6  # log-spaced frequencies for the in-band noise integral
 NOISE_POINTS_FLICKER = 12  # the same where a 1/f source bends the input noise inside the band
 NOISE_REFERENCE_K = 290.0  # K, standard source temperature of the noise figure
 NEWTON_ITERATIONS = 8
 THD_SAMPLES = 16  # samples per period of the quasi-static distortion solve (harmonics 2..7)
 THD_ITERATIONS = 6  # Newton steps per sample, warm-started at the quiescent Vbe
+THD_FREQUENCY = 1000.0  # Hz, where a frequency-dependent distortion term is judged (THD quoted at 1 kHz, common practice)
 SWING_TOLERANCE = 0.1  # usable swing: both peaks within 10 % of the linear gain times the drive
 SWING_GRID = (0.8, 1.0, 1.6)  # multiples of the clip-level drive scanned for the first deviation
 SWING_STEPS = 3  # Illinois false-position steps on the drive amplitude after the scan
@@ -123,6 +126,18 @@ def depletion_capacitance(c0: float, v: np.ndarray) -> np.ndarray:
     lin = c0 / (1.0 - FC) ** (1.0 + MJ) * (1.0 - FC * (1.0 + MJ) + MJ * v / VJ)
     rev = c0 / (1.0 - np.minimum(v, FC * VJ) / VJ) ** MJ
     return np.where(v < FC * VJ, rev, lin)
+
+
+def depletion_charge(c0: float, v: np.ndarray) -> np.ndarray:
+    """SPICE junction depletion charge (C) at forward voltage v (V): the integral from 0 V of
+    :func:`depletion_capacitance`, c0*VJ/(1-MJ)*(1 - (1 - v/VJ)^(1-MJ)) below FC*VJ, its
+    linear-capacitance continuation above."""
+    v = np.asarray(v, dtype=float)
+    vf = np.minimum(v, FC * VJ)
+    rev = c0 * VJ / (1.0 - MJ) * (1.0 - (1.0 - vf / VJ) ** (1.0 - MJ))
+    d = np.maximum(v - FC * VJ, 0.0)
+    f = c0 / (1.0 - FC) ** (1.0 + MJ)
+    return rev + f * ((1.0 - FC * (1.0 + MJ)) * d + MJ / (2.0 * VJ) * ((FC * VJ + d) ** 2 - (FC * VJ) ** 2))
 
 
 def small_signal(bias: dict[str, np.ndarray], device: AnyDevice, beta: np.ndarray, nvt: float,
@@ -506,15 +521,21 @@ def _corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray
     x0, x1 = log_grid[i0], log_grid[i1]
     d0, d1 = db[i0, cols], db[i1, cols]
     last = np.zeros((len(rows), n), dtype=bool)
+    # An inside end at or above the reference (a response peaking near its corner, as a
+    # bootstrap's) has d at its clamp, where false position would crawl: such a bracket is
+    # bisected in log f until its inside end lies below the reference, with PEAK_STEPS more steps.
+    above_ref = d1 >= PEAK_DISTANCE
+    steps = steps + (PEAK_STEPS if np.any(above_ref & inside) else 0)
     for _ in range(steps):  # Illinois false position on the crossings at once
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
-        xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
+        xm = np.where(above_ref, 0.5 * (x0 + x1), np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1)))
         dm = distance(response(10.0 ** xm))
         out_side = dm <= 0.0
-        d1 = np.where(out_side & last, 0.5 * d1, d1)  # an end kept twice: halve its value
-        d0 = np.where(~out_side & ~last, 0.5 * d0, d0)
+        d1 = np.where(out_side & last & ~above_ref, 0.5 * d1, d1)  # an end kept twice: halve its value
+        d0 = np.where(~out_side & ~last & ~above_ref, 0.5 * d0, d0)
         x0, d0 = np.where(out_side, xm, x0), np.where(out_side, dm, d0)
         x1, d1 = np.where(out_side, x1, xm), np.where(out_side, d1, dm)
+        above_ref = np.where(out_side, above_ref, dm >= PEAK_DISTANCE)
         last = out_side
     xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
     return np.where(inside, 10.0 ** xm, np.array(SWEEP)[rows, None])

@@ -69,6 +69,7 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
     large = {c: np.full(size, _LARGE_CAPACITANCE) for c in topology.capacitors}
 
     corner_constant = {c: np.full(size, np.nan) for c in topology.capacitors}
+    f_smallest = {c: np.full(size, np.inf) for c in topology.capacitors}  # f_low with the smallest probe (Hz)
     for value in _PROBE_VALUES:  # each capacitor's first probe whose corner lies inside the sweep
         pending = {c: np.flatnonzero(np.isnan(k)) for c, k in corner_constant.items()}
         pending = {c: rows for c, rows in pending.items() if rows.size}
@@ -82,8 +83,16 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
         for cap, rows in pending.items():
             f = f_probe[start:start + rows.size]
             start += rows.size
+            if value == min(_PROBE_VALUES):
+                f_smallest[cap][rows] = f
             inside = (f > 2.0 * SWEEP[0]) & (f < 0.5 * SWEEP[1])
             corner_constant[cap][rows[inside]] = f[inside] * value
+    # no corner inside the sweep at any probe: a capacitor that does not move the stage's low
+    # corner (below the sweep even at the smallest probe) takes the smallest value, one whose
+    # corner stays above it the largest
+    for cap, k in corner_constant.items():
+        unmoved = np.isnan(k) & (f_smallest[cap] <= 2.0 * SWEEP[0])
+        k[unmoved] = 0.0
     corner_constant = {c: np.nan_to_num(k, nan=allowed[-1] * target) for c, k in corner_constant.items()}
 
     scaled = [{c: _round_up(m * corner_constant[c] / target, allowed) for c in topology.capacitors}
@@ -110,7 +119,9 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
         trial = taken | (1 << j)
         ok = found & (np.take_along_axis(f_sub, (trial - 1)[None], axis=0)[0] <= target)
         taken = np.where(ok, trial, taken)
-    return {c: allowed[np.where(taken >> j & 1, lower[c], best[c])] for j, c in enumerate(caps)}
+    chosen = {c: allowed[np.where(taken >> j & 1, lower[c], best[c])] for j, c in enumerate(caps)}
+    floors = topology.capacitor_floors(resistors, conditions, target)
+    return {c: np.maximum(v, allowed[_round_up(floors[c], allowed)]) if c in floors else v for c, v in chosen.items()}
 
 
 DECOUPLE_CORNER_DECADES = 1.0  # without a PSRR limit: r_decouple*c_decouple corner this many decades below the band

@@ -1,6 +1,6 @@
 """The design set the stage models are checked on against ngspice.
 
-Hand-method designs (optimizer.synthesis, unrounded) over all four topologies, supplies
+Hand-method designs (optimizer.synthesis, unrounded) over the topologies, supplies
 3.3-30 V, hFE 50-500, collector currents 0.3-3 mA and a range of gains, sources and
 loads: varied enough to exercise every term of the models, and the same designs show
 how far the textbook estimate itself lands from the simulator.
@@ -83,7 +83,7 @@ _DECOUPLE_DROP = 0.1
 
 
 def check_designs() -> list[CheckDesign]:
-    """All designs of the ngspice agreement set (44, every topology; 4 with a decoupling RC)."""
+    """All bipolar designs of the ngspice agreement set (60, every bipolar topology; 4 with a decoupling RC)."""
     designs = []
     for topology, supply, gain, ic, hfe, rs, rl in _CASES:
         req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
@@ -102,7 +102,7 @@ def check_designs() -> list[CheckDesign]:
                                                     d.device, d.conditions, allowed)[0])
         designs.append(CheckDesign(f"{d.name}-rc", d.topology, parts, d.device, d.conditions,
                                    hand_gain=d.hand_gain, hand_ic=d.hand_ic))
-    return designs + pair_designs()
+    return designs + pair_designs() + follower_designs()
 
 
 # ---- feedback_pair (non-inverting series-shunt pair) -------------------------------------------
@@ -180,4 +180,44 @@ def jfet_check_designs() -> list[CheckDesign]:
         hand_gain = -gain if get_topology(topology).inverting else gain
         designs.append(CheckDesign(name, topology, parts, device, conditions, hand_gain=hand_gain,
                                    hand_ic=min(i_d, 0.25 * device.idss_typ)))
+    return designs
+
+
+# ---- followers --------------------------------------------------------------------------
+# (topology, supply V, emitter current A, hFE, source ohm, load ohm, load capacitance F):
+# emitter and bootstrapped followers from a 50-ohm line to a 10-Mohm piezo source, each driving
+# a cable; the bootstrapped ones at low current into high loads, where the input impedance
+# reaches megohms.
+_FOLLOWER_CASES = [
+    ("emitter_follower", 9.0, 1.0e-3, 200, 600, 10e3, 1e-9),
+    ("emitter_follower", 3.3, 0.5e-3, 120, 1e3, 4.7e3, 470e-12),
+    ("emitter_follower", 5.0, 2.0e-3, 60, 50, 1e3, 10e-9),
+    ("emitter_follower", 12.0, 5.0e-3, 300, 600, 600, 2.2e-9),
+    ("emitter_follower", 15.0, 0.5e-3, 500, 10e3, 100e3, 220e-12),
+    ("emitter_follower", 24.0, 1.5e-3, 250, 1e3, 2.2e3, 1e-9),
+    ("emitter_follower", 30.0, 3.0e-3, 100, 600, 47e3, 4.7e-9),
+    ("emitter_follower", 9.0, 0.3e-3, 400, 100e3, 1e6, 100e-12),
+    ("bootstrap_follower", 9.0, 0.2e-3, 400, 1e6, 1e6, 100e-12),
+    ("bootstrap_follower", 12.0, 0.3e-3, 300, 4.7e6, 470e3, 220e-12),
+    ("bootstrap_follower", 9.0, 0.1e-3, 500, 10e6, 1e6, 100e-12),
+    ("bootstrap_follower", 15.0, 0.5e-3, 250, 2.2e6, 220e3, 470e-12),
+    ("bootstrap_follower", 24.0, 0.5e-3, 400, 1e6, 1e6, 220e-12),
+    ("bootstrap_follower", 5.0, 0.2e-3, 200, 100e3, 100e3, 220e-12),
+    ("bootstrap_follower", 12.0, 1.0e-3, 150, 10e3, 10e3, 2.2e-9),
+    ("bootstrap_follower", 30.0, 0.3e-3, 500, 5.6e6, 2.2e6, 100e-12),
+]
+
+
+def follower_designs() -> list[CheckDesign]:
+    """The followers' designs of the agreement set (8 per topology), hand method unrounded; the
+    hand gain is the textbook's unity."""
+    designs = []
+    for topology, supply, ie, hfe, rs, rl, cl in _FOLLOWER_CASES:
+        req = HandRequirements(supply=supply, gain=1.0, load_impedance=rl, source_impedance=rs,
+                               f_low=20.0, collector_current=ie, hfe=hfe)
+        conditions = Conditions(supply=supply, source_impedance=float(rs), load_impedance=float(rl),
+                                band=(20.0, 20000.0), temperature=27.0, load_capacitance=cl)
+        designs.append(CheckDesign(f"{topology}-{supply:g}V-I{ie * 1e3:g}mA-hfe{hfe}-rs{rs:g}", topology,
+                                   get_topology(topology).hand_design(req), check_device(hfe), conditions,
+                                   hand_gain=1.0, hand_ic=ie))
     return designs

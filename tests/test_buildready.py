@@ -219,7 +219,8 @@ def _refused(tmp_path: Path, argv: list[str], *needles: str) -> None:
 
 
 def test_positive_gain_with_only_inverting_topologies_is_refused(tmp_path: Path) -> None:
-    _refused(tmp_path, [_spec_file(tmp_path, gain={"target": 30, "tolerance": "1 dB"})],
+    inverting = ["divider_ce", "divider_ce_split", "feedback_ce", "ce_follower"]  # the followers are not
+    _refused(tmp_path, [_spec_file(tmp_path, gain={"target": 30, "tolerance": "1 dB"}, topologies=inverting)],
              "gain.target", "'30'", "no topology in the spec", "non-inverting")
 
 

@@ -34,7 +34,7 @@ def test_at_least_five_examples_load():
     for path in EXAMPLES:
         spec = load_spec(path)
         assert isinstance(spec, Spec)
-        assert 0.5 <= spec.gain.target <= 40  # buffers (followers) sit just under 1
+        assert 0.5 <= spec.gain.target <= 40  # from a follower buffer (just under 1) to a preamp
         assert spec.name in describe_spec(spec)
 
 

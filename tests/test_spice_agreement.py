@@ -1,8 +1,9 @@
 """The stage models against ngspice (Debian package) as the reference simulator.
 
-32 hand-method designs over all four topologies, supplies 3.3-30 V and hFE 50-500, and
+32 hand-method designs over the four common-emitter stages, supplies 3.3-30 V and hFE 50-500,
 four of them again with a supply decoupling RC (bias, swing and supply rejection through
-r_decouple/c_decouple), are simulated through the exported SPICE netlist; every metric
+r_decouple/c_decouple), and 16 emitter and bootstrapped followers (sources from 50 ohm to
+10 Mohm, each driving a cable) are simulated through the exported SPICE netlist; every metric
 (bias, gain, impedances, usable swing by the 10 % rule, clip level, corners, white and
 flicker noise, noise figure at 290 K, supply rejection at 100 Hz and mid-band, THD) must
 agree within the tolerances in spice_agreement.TOLERANCES. Skipped only where ngspice is absent.

@@ -154,6 +154,11 @@ class Topology(ABC):
     # false-position steps refining the -3 dB corners (physics.minus_3db_corners); more where the
     # response may peak near a corner (an overall feedback loop)
     corner_steps: ClassVar[int] = physics.REFINE_STEPS
+    # True: the core metrics with c_in at its smallest and the other capacitors at their largest
+    # are at least as good as the sized design's (mid-band figures that do not depend on the
+    # capacitors), so the exhaustive oracle may prune by them; a stage whose mid-band gain
+    # depends on its capacitors (a follower from a high source, a bootstrap) sets False
+    core_is_bound: ClassVar[bool] = True
 
     def __init_subclass__(cls, **kwargs: object) -> None:
         super().__init_subclass__(**kwargs)
@@ -190,6 +195,12 @@ class Topology(ABC):
         """Upper bound of |gain| (V/V) from the resistors of :attr:`gain_bound_roles` and the
         load (ohm), for pruning an exhaustive enumeration; None: no bound known."""
         return None
+
+    def capacitor_floors(self, resistors: dict[str, np.ndarray], conditions: Conditions,
+                         f_low: float) -> dict[str, np.ndarray]:
+        """Least values (F) some capacitors keep whatever the stage's low corner needs (capacitor
+        role -> array over candidates), for a capacitor that does other work in band; {}: none."""
+        return {}
 
     def hand_design(self, req: HandRequirements) -> dict[str, float]:
         """The unrounded textbook design (role -> ohm or F) that seeds the search and is the
@@ -401,9 +412,10 @@ class StageModel(Topology):
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             mid = self._midband(p, conditions, b, r_source)
             # impedances are seen through the coupling capacitors at the band's geometric mean
+            # (complex where a stage gives its mid-band impedance at that frequency: a bootstrap)
             w_mid = 2.0 * np.pi * math.sqrt(conditions.band[0] * conditions.band[1])
-            z_in = np.hypot(mid["input_impedance"], 1.0 / (w_mid * p["c_in"]))
-            z_out = np.hypot(mid["output_impedance"], 1.0 / (w_mid * p["c_out"]))
+            z_in = np.abs(mid["input_impedance"] + 1.0 / (1j * w_mid * p["c_in"]))
+            z_out = np.abs(mid["output_impedance"] + 1.0 / (1j * w_mid * p["c_out"]))
             clip, vce_max = self._swing(p, device, local, b, mid)
             gain = mid["gain"]
             swing = self._usable_swing(p, device, conditions, b, nvt, gain, 0.5 * clip)
@@ -523,7 +535,7 @@ class StageModel(Topology):
         local = replace(c, supply=np.asarray(b.op["v_supply_local"], dtype=dtype)[:, None])  # c_decouple holds it
         fn = self.static_output(col(p), device, local, Bias(col(b.op), b.small_signal), nvt, i_s,
                                 np.asarray(beta, dtype=dtype)[:, None])
-        return lambda vs: fn(np.asarray(vs, dtype=dtype))
+        return lambda vs, **options: fn(np.asarray(vs, dtype=dtype), **options)  # options: a stage's own (waves=)
 
     def _usable_swing(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, gain: np.ndarray,
                       clip_peak: np.ndarray) -> np.ndarray:

@@ -13,7 +13,8 @@ from optimizer import physics
 from optimizer.devices import Device
 from optimizer.synthesis import HandRequirements, coupling_capacitor, parallel
 from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
-from optimizer.topologies.divider_ce import add_divider_stage, add_load, divider_hand_design, divider_ratings
+from optimizer.topologies.divider_ce import add_divider_stage, divider_hand_design, divider_ratings
+from optimizer.topologies.emitter_follower import add_follower
 
 BIAS_PASSES = 3  # q1/q2 alternations; they couple only through q2's base current and Early effect
 
@@ -115,11 +116,7 @@ class CEFollower(StageModel):
                                       p, c, ac, supply)
         add_divider_stage(net, p, ss, ac, r_source, rail)
         net.resistor("emitter", None, p["r_emitter"])
-        net.resistor("collector", "bint2", ss[1]["rb"])
-        net.transistor("bint2", rail, "emitter2", ss[1], ac)
-        net.resistor("emitter2", None, p["r_follower"])
-        net.capacitor("emitter2", "out", p["c_out"], ac, True)
-        add_load(net, c, ac, load)
+        add_follower(net, p, c, ss[1], ac, load, rail, ("collector", "bint2", "emitter2"))
         return net
 
     def _output_q(self, op: dict[str, np.ndarray]) -> np.ndarray:
