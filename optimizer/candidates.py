@@ -33,13 +33,15 @@ WORST_CASE_METRICS = ("gain", "swing_vpp", "clip_vpp", "input_impedance", "outpu
                       "f_low", "f_high", "thd", "noise_ein_v", "psrr_db", "ic")
 
 
-def _check_parts(topology: Topology, parts: dict[str, float]) -> None:
+def _check_parts(topology: Topology, parts: dict[str, float], split: bool = False) -> None:
+    """InputError unless ``parts`` gives every resistor of ``topology`` (r_top absent on a split
+    supply) and nothing else."""
     known = set(topology.resistors) | set(topology.capacitors) | set(topology.supply_parts)
     unknown = [role for role in parts if role not in known]
     if unknown:
         raise InputError.single(f"--set {unknown[0]}", parts[unknown[0]],
                                 f"a part of {topology.name}: " + ", ".join(sorted(known)))
-    missing = [r for r in topology.resistors if r not in parts]
+    missing = [r for r in topology.resistors if r not in parts and not (split and r == "r_top")]
     if missing:
         raise InputError.single(f"--set {missing[0]}", None,
                                 f"every resistor of {topology.name} given: " + ", ".join(topology.resistors))
@@ -66,7 +68,7 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
     ratings, worst case, yield, the basis it meets the spec on, cautions) of one design under
     ``spec``. Capacitors not in ``parts`` are sized."""
     topology = get_topology(topology_name)
-    _check_parts(topology, parts)
+    _check_parts(topology, parts, spec.supply_arrangement == "split")
     device_id = device_id or spec.devices[0]
     device = Device.from_row(catalog.transistor(device_id))
     conditions = scoring.conditions_from_spec(spec)
@@ -196,7 +198,18 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], D
         band = (float(band[0]), float(band[1]))
     except (TypeError, ValueError, IndexError, KeyError):
         problems.append(Problem("conditions.band", band, "[low, high] in Hz"))
+    rails = cond.get("rails")
+    below = 0.0
+    if rails is not None:
+        try:
+            top, bottom = float(rails[0]), float(rails[1])
+            if not (top >= 0 >= bottom and top > bottom):
+                raise ValueError
+            below = -bottom / (top - bottom)
+        except (TypeError, ValueError, IndexError, KeyError):
+            problems.append(Problem("conditions.rails", rails, "[highest, lowest] rail in V, highest >= 0 >= lowest"))
     if problems:
         raise incomplete(problems)
     device = Device.from_record(record["transistor"])
-    return topology, parts, device, Conditions(band=band, temperature=NOMINAL_TEMPERATURE_C, **numbers)
+    return topology, parts, device, Conditions(band=band, temperature=NOMINAL_TEMPERATURE_C, below_ground=below,
+                                               **numbers)

@@ -408,6 +408,14 @@ def _rail(raw: object, where: str) -> tuple[float, float | None, float | None]:
     return nominal, low, high
 
 
+class _SupplyProblem:
+    """A supply that could not be read, carried to the supply field so that its problem is
+    reported together with the spec's others."""
+
+    def __init__(self, error: InputError) -> None:
+        self.error = error
+
+
 def _read_supply(raw: object) -> dict[str, Any]:
     """The spec's supply fields from its written form (see :data:`_SUPPLY_FORMS`): supply,
     supply_min, supply_max (the span, V; None = nominal -+5 %), supply_range_assumed,
@@ -474,8 +482,19 @@ class Spec(_Section):
                 raise InputError.single(key, data[key], "supply: {nominal, min, max} or {positive, negative} "
                                         "instead", _TITLE)
         if data.get("supply") is not None:
-            data.update(_read_supply(data["supply"]))
+            try:
+                data.update(_read_supply(data["supply"]))
+            except InputError as error:  # reported by the supply field, beside every other problem
+                data["supply"] = _SupplyProblem(error)
         return data
+
+    @field_validator("supply", mode="before")
+    @classmethod
+    def _supply_problem(cls, value: object) -> object:
+        if isinstance(value, _SupplyProblem):
+            raise InputError([Problem(p.where.removeprefix("supply").lstrip("."), p.value, p.expected)
+                              for p in value.error.problems], _TITLE)
+        return value
 
     @model_validator(mode="after")
     def _supply_order(self) -> "Spec":
