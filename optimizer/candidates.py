@@ -150,7 +150,11 @@ def hazard_cautions(spec: Spec) -> list[str]:
     notes = []
     highest = max(spec.supply, spec.supply_max)
     if highest > HIGH_SUPPLY:
-        notes.append(f"supply {highest:g} V is above {HIGH_SUPPLY:g} V: treat it as a shock and energy "
+        top, bottom = spec.rails
+        what = {"positive": f"supply {highest:g} V",
+                "negative": f"negative rail -{highest:g} V",
+                "split": f"split supply +{top:g} V / {bottom:g} V spans up to {highest:g} V in total, which"}
+        notes.append(f"{what[spec.supply_arrangement]} is above {HIGH_SUPPLY:g} V: treat it as a shock and energy "
                      "hazard; follow local electrical codes and licensed practice")
     if spec.mains_powered:
         notes.append("mains-powered: the supply is derived from the mains; build and test it only under local "
@@ -175,17 +179,29 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], D
     if problems:
         raise incomplete(problems)
     topology = get_topology(record["topology"])
+    cond = record["conditions"]
+    rails = cond.get("rails")
+    below = 0.0
+    if rails is not None:
+        try:
+            top, bottom = float(rails[0]), float(rails[1])
+            if not (top >= 0 >= bottom and top > bottom):
+                raise ValueError
+            below = -bottom / (top - bottom)
+        except (TypeError, ValueError, IndexError, KeyError):
+            problems.append(Problem("conditions.rails", rails, "[highest, lowest] rail in V, highest >= 0 >= lowest"))
     parts: dict[str, np.ndarray] = {}
     for role in topology.resistors + topology.capacitors + topology.supply_parts:
         if role in topology.supply_parts and role not in record["parts"]:
             continue  # no decoupling RC: the stage is on the rail
+        if role == "r_top" and 0 < below < 1 and role not in record["parts"]:
+            continue  # a split supply's base returns to ground through r_bottom alone
         entry = record["parts"].get(role)
         value: Any = entry.get("value") if isinstance(entry, dict) else None  # checked by float() below
         try:
             parts[role] = np.array([float(value)])
         except (TypeError, ValueError):
             problems.append(Problem(f"parts.{role}.value", value, f"a number (ohm or F) for {topology.name}"))
-    cond = record["conditions"]
     numbers: dict[str, float] = {}
     for key, default in (("supply", None), ("source_impedance", None), ("load_impedance", None),
                          ("load_capacitance", 0.0), ("signal_vpp", 1.0)):
@@ -198,16 +214,6 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], D
         band = (float(band[0]), float(band[1]))
     except (TypeError, ValueError, IndexError, KeyError):
         problems.append(Problem("conditions.band", band, "[low, high] in Hz"))
-    rails = cond.get("rails")
-    below = 0.0
-    if rails is not None:
-        try:
-            top, bottom = float(rails[0]), float(rails[1])
-            if not (top >= 0 >= bottom and top > bottom):
-                raise ValueError
-            below = -bottom / (top - bottom)
-        except (TypeError, ValueError, IndexError, KeyError):
-            problems.append(Problem("conditions.rails", rails, "[highest, lowest] rail in V, highest >= 0 >= lowest"))
     if problems:
         raise incomplete(problems)
     device = Device.from_record(record["transistor"])

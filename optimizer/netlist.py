@@ -187,6 +187,7 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
     stage = get_topology(topology)
     elements = tuple(e for e in _elements(stage, decoupled) if not (split and e[0] == "r_top"))
     rails = rail_nodes(supply, polarity, below)
+    rails_text = ", ".join(f"{name} {volts!r} V" for name, volts in sorted(set(rails.values())) if name != "0")
     rail = "vloc" if decoupled else rails["vcc"][0]
 
     def node(role: str, n: str) -> str:
@@ -211,7 +212,8 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
               f"* conditions: supply {supply!r} V, source {source!r} ohm, load {load!r} ohm, "
               f"load capacitance {load_c!r} F, {temp!r} degC, band {conditions.band[0]!r}.."
               f"{conditions.band[1]!r} Hz",
-              f"* CAUTION: simulated, not built. Supply {supply!r} V DC: check every part's voltage",
+              f"* CAUTION: simulated, not built. Supply {supply!r} V DC"
+              + ("" if not below else f" in all (rails {rails_text})") + ": check every part's voltage",
               "* and power rating (capacitors against the DC across them, resistors against I^2R,",
               "* the transistor against Vceo and its dissipation) before applying power.",
               *[f"* CAUTION: {note}" for note in cautions],

@@ -40,7 +40,7 @@ from optimizer.scoring import pareto_mask, unique_values_array
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
 from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, quiet_optuna, sync
-from optimizer.synthesis import hand_requirements, rounded_designs
+from optimizer.synthesis import on_split_supply, hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import SUPPLY_PARTS
 from optimizer.units import format_value
@@ -230,9 +230,15 @@ class SearchSpace:
             for device_id in self.devices_of(topology):
                 device = self.devices[device_id]
                 try:
-                    hand = get_topology(topology).hand_design(hand_requirements(self.spec, device))
+                    req = hand_requirements(self.spec, device)
+                    hand = get_topology(topology).hand_design(req)
                 except (InputError, ValueError, ZeroDivisionError):
                     continue  # the hand method has no answer for this spec: no seed
+                if self.spec.supply_arrangement == "split":
+                    below = self.spec.supply_below_ground
+                    hand = on_split_supply(hand, req, below if device.polarity == "npn" else 1.0 - below)
+                    if hand is None:
+                        continue
                 roles = [name.split(".", 1)[1] for name in self.distributions({"topology": topology}) if "." in name]
                 chosen = {r: v for r, v in hand.items() if r in roles}
                 if set(chosen) != set(roles) or not all(np.isfinite(v) and v > 0 for v in chosen.values()):

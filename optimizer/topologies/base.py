@@ -605,11 +605,12 @@ class StageModel(Topology):
                 "output_impedance": np.abs(z_out)}
 
     def part_count(self, p: Parts) -> np.ndarray:
-        """Resistors and capacitors present (optional ones only when non-zero) plus transistors."""
+        """Resistors and capacitors present (value non-zero: an optional part, or r_top on a split
+        supply, may be left out) plus transistors."""
         n = next(iter(p.values())).size
         count = np.full(n, float(self.transistors))
         for r in self.resistors + self.capacitors + self.supply_parts:
-            count += (p[r] > 0) if r in self.optional_parts or r in self.supply_parts else 1.0
+            count += p[r] > 0
         return count
 
     @abstractmethod
