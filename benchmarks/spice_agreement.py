@@ -14,7 +14,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "tests"))
 
 from spice_agreement import agreement_rows  # noqa: E402
-from spice_designs import check_designs  # noqa: E402
+from spice_designs import check_designs, polarity_designs  # noqa: E402
 
 
 def _fmt(value: float | None) -> str:
@@ -22,7 +22,7 @@ def _fmt(value: float | None) -> str:
 
 
 def main() -> int:
-    rows = [row for design in check_designs() for row in agreement_rows(design)]
+    rows = [row for design in check_designs() + polarity_designs() for row in agreement_rows(design)]
     out = ROOT / "benchmarks" / "results" / "spice_agreement.md"
     lines = [
         "# Stage models against ngspice",
