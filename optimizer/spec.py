@@ -397,6 +397,8 @@ def _rail(raw: object, where: str) -> tuple[float, float | None, float | None]:
         except InputError as exc:
             raise InputError([Problem(where + key, value, _expected(exc))], _TITLE) from None
     nominal, low, high = out
+    if nominal is None:
+        raise InputError.single(where, raw, "a voltage, or {nominal, min, max} with a nominal voltage", _TITLE)
     if nominal == 0:
         raise InputError.single(where, raw, "a rail voltage other than 0 V", _TITLE)
     for key, value in ((".min", low), (".max", high)):
