@@ -40,7 +40,7 @@ from optimizer.scoring import pareto_mask, unique_values_array
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
 from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, quiet_optuna, sync
-from optimizer.synthesis import on_split_supply, hand_requirements, rounded_designs
+from optimizer.synthesis import hand_requirements, on_split_supply, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import SUPPLY_PARTS
 from optimizer.units import format_value

@@ -612,7 +612,7 @@ class Spec(_Section):
     def supply_below_ground(self) -> float:
         """Fraction of the supply span below signal ground: 0 on a positive rail, 1 on a
         negative rail, |V-|/(V+ + |V-|) on a split supply (the models' ``Conditions.below_ground``)."""
-        if self.supply_arrangement == "split":
+        if self.supply_arrangement == "split" and self.supply_negative is not None:
             return -self.supply_negative[0] / self.supply
         return 1.0 if self.supply_arrangement == "negative" else 0.0
 
@@ -777,7 +777,7 @@ def spec_to_dict(spec: Spec) -> dict:
         top, bottom = spec.rails
         data["supply"] = -spec.supply if spec.supply_arrangement == "negative" else {"positive": top,
                                                                                       "negative": bottom}
-    elif spec.supply_arrangement == "split":
+    elif spec.supply_arrangement == "split" and spec.supply_negative is not None:
         neg = dict(zip(("nominal", "min", "max"), spec.supply_negative))
         pos = {"nominal": spec.supply + neg["nominal"], "min": spec.supply_min + neg["max"],
                "max": spec.supply_max + neg["min"]}

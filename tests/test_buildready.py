@@ -19,7 +19,6 @@ from pathlib import Path
 import pytest
 import yaml
 
-from optimizer import catalog as catalog_module
 from optimizer.bom import kit
 from optimizer.catalog import is_class2, load_catalog
 from optimizer.cli import main

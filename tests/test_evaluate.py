@@ -10,7 +10,7 @@ from optimizer.catalog import load_catalog
 from optimizer.cli import EXIT_BAD_INPUT, EXIT_OK, main
 from optimizer.devices import Device
 from optimizer.spec import load_spec
-from optimizer.synthesis import hand_requirements, rounded_designs, on_split_supply
+from optimizer.synthesis import hand_requirements, on_split_supply, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.units import format_rkm, parse_quantity
 

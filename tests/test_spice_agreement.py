@@ -17,7 +17,6 @@ import numpy as np
 import pytest
 
 from optimizer.topologies import get_topology
-
 from spice_agreement import agreement_rows, outside_tolerance
 from spice_designs import check_designs, polarity_designs
 from spice_harness import spice_operating_point

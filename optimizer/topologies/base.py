@@ -368,7 +368,7 @@ class StageModel(Topology):
             raise InputError.single("supply", "split", f"one of {', '.join(self.supplies)} for {self.name}",
                                     title=f"{self.name} does not run on a split supply")
         if split:
-            parts = {"r_top": 0.0, **parts}
+            parts = {"r_top": np.zeros(1), **parts}
             if np.any(np.asarray(parts["r_top"], dtype=float) != 0):
                 raise InputError.single("parts.r_top", parts["r_top"], "absent (0) on a split supply: the base "
                                         "returns to ground through r_bottom alone", title=f"invalid part value for {self.name}")
@@ -562,7 +562,9 @@ class StageModel(Topology):
             ripple = (v[rail] if rail else 0.0) - v_ground
             r = -20.0 * np.log10(np.abs((v["out"] - v_ground) / ripple))
             rejection = r if rejection is None else np.minimum(rejection, r)
-        return {"psrr_ripple_db": rejection[0], "psrr_mid_db": rejection[1], "psrr_db": np.minimum(*rejection)}
+        assert rejection is not None  # every arrangement has a rail that is not ground
+        return {"psrr_ripple_db": rejection[0], "psrr_mid_db": rejection[1],
+                "psrr_db": np.minimum(rejection[0], rejection[1])}
 
     def psrr(self, parts: Parts, device: Device, conditions: Conditions,
              hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
