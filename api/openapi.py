@@ -154,7 +154,9 @@ def _schemas() -> dict[str, Any]:
                                                               "optional": {"type": "boolean"}}}},
                                                       "polarities": {"type": "array",
                                                                      "items": {"enum": ["npn", "pnp"]}},
-                                                      "supply": {"type": "string"},
+                                                      "supplies": {"type": "array", "items": {
+                                                          "enum": ["positive", "negative", "split"]}},
+                                                      "device_kind": {"type": "string"},
                                                       "gain_sign": {"enum": ["inverting", "non-inverting"]}}}}}},
         "Catalogs": {"type": "object", "required": ["catalogs"], "properties": {"catalogs": {
             "type": "array", "items": {"type": "object", "required": ["name", "url"],

@@ -258,7 +258,7 @@ def _node_volts(candidate: dict) -> dict[str, float]:
     topology, parts, device, conditions = design_from_record(candidate)
     op = topology.operating_point(parts, device, conditions)
     return dc_node_voltages(topology.name, {k: float(np.asarray(v).reshape(-1)[0]) for k, v in op.items()},
-                            conditions.supply)
+                            conditions.supply, device.polarity, conditions.below_ground)
 
 
 def _class2_cautions(frame: pd.DataFrame) -> list[str]:

@@ -34,13 +34,15 @@ WORST_CASE_METRICS = ("gain", "swing_vpp", "clip_vpp", "input_impedance", "outpu
                       "f_low", "f_high", "thd", "noise_ein_v", "psrr_db", "ic")
 
 
-def _check_parts(topology: Topology, parts: dict[str, float]) -> None:
+def _check_parts(topology: Topology, parts: dict[str, float], split: bool = False) -> None:
+    """InputError unless ``parts`` gives every resistor of ``topology`` (r_top absent on a split
+    supply) and nothing else."""
     known = set(topology.resistors) | set(topology.capacitors) | set(topology.supply_parts)
     unknown = [role for role in parts if role not in known]
     if unknown:
         raise InputError.single(f"--set {unknown[0]}", parts[unknown[0]],
                                 f"a part of {topology.name}: " + ", ".join(sorted(known)))
-    missing = [r for r in topology.resistors if r not in parts]
+    missing = [r for r in topology.resistors if r not in parts and not (split and r == "r_top")]
     if missing:
         raise InputError.single(f"--set {missing[0]}", None,
                                 f"every resistor of {topology.name} given: " + ", ".join(topology.resistors))
@@ -67,7 +69,7 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
     ratings, worst case, yield, the basis it meets the spec on, cautions) of one design under
     ``spec``. Capacitors not in ``parts`` are sized."""
     topology = get_topology(topology_name)
-    _check_parts(topology, parts)
+    _check_parts(topology, parts, spec.supply_arrangement == "split")
     device_id = device_id or spec.devices[0]
     device = device_from_row(catalog.transistor(device_id))
     conditions = scoring.conditions_from_spec(spec)
@@ -150,7 +152,11 @@ def hazard_cautions(spec: Spec) -> list[str]:
     notes = []
     highest = max(spec.supply, spec.supply_max)
     if highest > HIGH_SUPPLY:
-        notes.append(f"supply {highest:g} V is above {HIGH_SUPPLY:g} V: treat it as a shock and energy "
+        top, bottom = spec.rails
+        what = {"positive": f"supply {highest:g} V",
+                "negative": f"negative rail -{highest:g} V",
+                "split": f"split supply +{top:g} V / {bottom:g} V spans up to {highest:g} V in total, which"}
+        notes.append(f"{what[spec.supply_arrangement]} is above {HIGH_SUPPLY:g} V: treat it as a shock and energy "
                      "hazard; follow local electrical codes and licensed practice")
     if spec.mains_powered:
         notes.append("mains-powered: the supply is derived from the mains; build and test it only under local "
@@ -175,17 +181,29 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], A
     if problems:
         raise incomplete(problems)
     topology = get_topology(record["topology"])
+    cond = record["conditions"]
+    rails = cond.get("rails")
+    below = 0.0
+    if rails is not None:
+        try:
+            top, bottom = float(rails[0]), float(rails[1])
+            if not (top >= 0 >= bottom and top > bottom):
+                raise ValueError
+            below = -bottom / (top - bottom)
+        except (TypeError, ValueError, IndexError, KeyError):
+            problems.append(Problem("conditions.rails", rails, "[highest, lowest] rail in V, highest >= 0 >= lowest"))
     parts: dict[str, np.ndarray] = {}
     for role in topology.resistors + topology.capacitors + topology.supply_parts:
         if role in topology.supply_parts and role not in record["parts"]:
             continue  # no decoupling RC: the stage is on the rail
+        if role == "r_top" and 0 < below < 1 and role not in record["parts"]:
+            continue  # a split supply's base returns to ground through r_bottom alone
         entry = record["parts"].get(role)
         value: Any = entry.get("value") if isinstance(entry, dict) else None  # checked by float() below
         try:
             parts[role] = np.array([float(value)])
         except (TypeError, ValueError):
             problems.append(Problem(f"parts.{role}.value", value, f"a number (ohm or F) for {topology.name}"))
-    cond = record["conditions"]
     numbers: dict[str, float] = {}
     for key, default in (("supply", None), ("source_impedance", None), ("load_impedance", None),
                          ("load_capacitance", 0.0), ("signal_vpp", 1.0)):
@@ -201,4 +219,5 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], A
     if problems:
         raise incomplete(problems)
     device = device_from_record(record["transistor"])
-    return topology, parts, device, Conditions(band=band, temperature=NOMINAL_TEMPERATURE_C, **numbers)
+    return topology, parts, device, Conditions(band=band, temperature=NOMINAL_TEMPERATURE_C, below_ground=below,
+                                               **numbers)

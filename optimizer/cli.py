@@ -33,15 +33,16 @@ SPEC_HELP = "path to a spec file (YAML or JSON), or the name of a bundled exampl
 def _cmd_check(args: argparse.Namespace) -> int:
     from optimizer.catalog import load_catalog
     from optimizer.spec import describe_spec, load_spec, spec_to_dict
-    from optimizer.validation import validate_spec
+    from optimizer.validation import eligibility_text, validate_spec
 
     spec = load_spec(args.spec)
-    validate_spec(spec, load_catalog(spec.parts.catalog))
+    verdicts = validate_spec(spec, load_catalog(spec.parts.catalog))
     if args.format == "json":
         print(json.dumps(spec_to_dict(spec), indent=2))
     else:
         print(f"{args.spec}: valid")
         print(describe_spec(spec))
+        print(f"  eligible          {eligibility_text(spec, verdicts)}")
     return EXIT_OK
 
 
@@ -104,7 +105,8 @@ def _cmd_topologies(args: argparse.Namespace) -> int:
         return EXIT_OK
     for t in described:
         print(f"{t['name']}: {t['description']}")
-        print(f"  {t['gain_sign']}; {'/'.join(t['polarities'])} transistors ({t['transistors']}); {t['supply']}")
+        print(f"  {t['gain_sign']}; {'/'.join(t['polarities'])} transistors ({t['transistors']}); "
+              f"supplies: {', '.join(t['supplies'])}")
         print("  roles: " + ", ".join(f"{r['name']} ({r['kind']}{', optional' if r['optional'] else ''})"
                                       for r in t["roles"]))
     return EXIT_OK

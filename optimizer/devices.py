@@ -29,7 +29,10 @@ FLICKER_KEYS = ("KF", "AF")  # optional SPICE flicker-noise parameters (KF 0 = n
 
 @dataclass(frozen=True)
 class Device:
-    """One transistor type: ratings, hFE spread and SPICE model parameters (SI units)."""
+    """One transistor type: ratings, hFE spread and SPICE model parameters (SI units).
+
+    ``polarity`` "npn" or "pnp"; a PNP's parameters are magnitudes (IS, VAF, vce_sat and the
+    ratings as for its NPN mirror image), as in a SPICE .model PNP card."""
 
     kind: ClassVar[str] = "bjt"  # the device kind a topology declares it takes (Topology.device_kind)
 
@@ -71,8 +74,8 @@ class Device:
             except (TypeError, ValueError):
                 problems.append(Problem(f"{where}.{f.name}", row[f.name], "a number in SI units"))
         if not problems:
-            if str(values["polarity"]).lower() != "npn":
-                problems.append(Problem(f"{where}.polarity", values["polarity"], "'npn' (the stage models are npn)"))
+            if str(values["polarity"]).lower() not in ("npn", "pnp"):
+                problems.append(Problem(f"{where}.polarity", values["polarity"], "'npn' or 'pnp'"))
             for name in ("hfe_min", "hfe_typ", "hfe_max", "IS", "BF", "NF", "vceo_max", "p_max"):
                 if not values[name] > 0:
                     problems.append(Problem(f"{where}.{name}", values[name], "a positive number"))
@@ -84,7 +87,7 @@ class Device:
                                         f"between hfe_min {values['hfe_min']} and hfe_max {values['hfe_max']}"))
         if problems:
             raise InputError(problems, title="invalid transistor")
-        values["polarity"] = "npn"
+        values["polarity"] = str(values["polarity"]).lower()
         return cls(**values)
 
     @classmethod

@@ -7,7 +7,9 @@ below (its signal path from input to output), transistors Q1, Q2; a part left ou
 gets no designator. A header comment ties each designator to its DESIGN.md role, and values
 are written as plain numbers (``repr`` of the float, SI units, no prefixes) so a reader can
 check them against the candidate. Each topology's template (its elements, transistor pins and
-node voltages) is declared by the topology itself (``Topology.elements``). Nodes: ``vcc``,
+node voltages) is declared by the topology itself (``Topology.elements``), drawn as NPN on a
+positive rail; a PNP stage, a negative rail or a split supply maps its rails (:func:`rail_nodes`:
+``vcc`` positive rail, ``vee`` negative rail, ``0`` ground). Nodes: ``vcc``,
 ``sig`` (ideal signal source), ``src`` (after the source resistance, feeding ``c_in``), the
 topology's own nodes, ``out`` (the load), ``0`` (ground), and with a supply decoupling RC
 ``vloc`` (the stage's local supply, behind ``r_decouple``).
@@ -75,13 +77,28 @@ def element_nodes(topology: str) -> dict[str, tuple[str, ...]]:
     return out
 
 
-def dc_node_voltages(topology: str, operating_point: Mapping[str, float], supply: float) -> dict[str, float]:
-    """DC voltage (V to ground) of every node of ``topology`` from a candidate's operating
-    point (the keys of the topology's ``node_voltages``) and the supply (V); nodes not listed
-    there sit at 0 V (the source side of c_in and the load side of c_out) or at the supply (vcc)."""
+def rail_nodes(supply: float, polarity: str = "npn", below_ground: float = 0.0) -> dict[str, tuple[str, float]]:
+    """The true node (name, DC volts) of the template's two rails: ``vcc`` (the top of the stage
+    drawn as NPN on a positive rail) and ``0`` (its bottom). A PNP stage is the mirror image, so
+    its template ``vcc`` is the lowest rail; a rail at 0 V is ground ``0``, a positive one
+    ``vcc``, a negative one ``vee``."""
+    top, bottom = float(supply) * (1.0 - below_ground), -float(supply) * below_ground
+    name = lambda v: "0" if v == 0 else "vcc" if v > 0 else "vee"  # noqa: E731
+    frame_top, frame_bottom = (bottom, top) if polarity == "pnp" else (top, bottom)
+    return {"vcc": (name(frame_top), frame_top), "0": (name(frame_bottom), frame_bottom)}
+
+
+def dc_node_voltages(topology: str, operating_point: Mapping[str, float], supply: float,
+                     polarity: str = "npn", below_ground: float = 0.0) -> dict[str, float]:
+    """DC voltage (V to ground) of every node of ``topology``'s template from a candidate's
+    operating point (true volts, the keys of the topology's ``node_voltages``), the supply span
+    (V), the transistor polarity and the supply's below-ground fraction; the template's rails
+    ``vcc`` and ``0`` at their true voltages (:func:`rail_nodes`), the source side of c_in and
+    the load side of c_out at ground."""
     keys = get_topology(topology).node_voltages
+    rails = rail_nodes(supply, polarity, below_ground)
     nodes = {n for pair in element_nodes(topology).values() for n in pair} | {"vcc", "src", "out", "0"}
-    return {n: (float(supply) if n == "vcc" else float(operating_point[keys[n]])
+    return {n: (rails[n][1] if n in rails else float(operating_point[keys[n]])
                 if n in keys else 0.0) for n in sorted(nodes)}
 
 
@@ -90,8 +107,9 @@ def required_parts(topology: str) -> tuple[str, ...]:
     return tuple(role for role, _, _ in get_topology(topology).elements)
 
 
-def _check_parts(topology: str, parts: Mapping[str, float]) -> None:
-    needed = required_parts(topology)
+def _check_parts(topology: str, parts: Mapping[str, float], split: bool = False) -> None:
+    """InputError unless ``parts`` holds every role of the template (r_top absent on a split supply)."""
+    needed = tuple(r for r in required_parts(topology) if not (split and r == "r_top"))
     problems: list[Problem] = []
     for role in needed:
         if role not in parts:
@@ -150,18 +168,26 @@ def _model_name(device_id: str) -> str:
 def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
                   conditions: Any, *, device_id: str = "q", analyses: str = "",
                   title: str | None = None, amplitude: float = 0.01,
-                  frequency: float | None = None, cautions: Sequence[str] = ()) -> str:
+                  frequency: float | None = None, cautions: Sequence[str] = (), polarity: str = "npn") -> str:
     """SPICE netlist of one stage.
 
-    ``parts`` maps role -> value (ohm, F); ``model`` holds the Gummel-Poon NPN keys of
-    MODEL_KEYS (a JFET stage: the NJF level-1 keys of JFET_MODEL_KEYS, designator J1); ``conditions`` has supply (V), source_impedance and load_impedance (ohm; an
+    ``parts`` maps role -> value (ohm, F); ``model`` holds the Gummel-Poon keys of MODEL_KEYS
+    for an NPN or PNP (``polarity``) transistor (a JFET stage: the NJF level-1 keys of
+    JFET_MODEL_KEYS, designator J1); a PNP stage is the NPN template mirrored (its
+    ``vcc`` is the lowest rail, its ``0`` the highest, :func:`rail_nodes`), and on a negative
+    rail or a split supply (``conditions.below_ground``, 0 when absent) the rails are sources
+    ``Vcc`` (positive) and ``Vee`` (negative) against ground ``0``, where the signal source and the
+    load return; on a split supply r_top is left out and r_bottom returns the base to ground.
+    ``conditions`` has supply (V, the span), source_impedance and load_impedance (ohm; an
     infinite load is written as OPEN_LOAD_RESISTANCE), load_capacitance (F, 0 = none),
     temperature (degC, or a (low, high) range simulated at its midpoint) and band (Hz).
     The signal source ``Vsig`` is AC 1 and SIN with ``amplitude`` (V peak) at ``frequency``
     (Hz, default the band's geometric mean). ``analyses`` is inserted before ``.end``;
     each of ``cautions`` becomes a comment line.
     """
-    _check_parts(topology, parts)
+    below = float(getattr(conditions, "below_ground", 0.0))
+    split = 0 < below < 1
+    _check_parts(topology, {r: v for r, v in parts.items() if not (split and r == "r_top" and not v)}, split)
     _check_model(model, get_topology(topology))
     supply = float(conditions.supply)
     source = float(conditions.source_impedance)
@@ -172,8 +198,18 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
     model_name = _model_name(device_id)
     decoupled = float(parts.get("r_decouple", 0.0)) > 0
     stage = get_topology(topology)
-    elements = _elements(stage, decoupled)
-    rail = "vloc" if decoupled else "vcc"
+    elements = tuple(e for e in _elements(stage, decoupled) if not (split and e[0] == "r_top"))
+    rails = rail_nodes(supply, polarity, below)
+    rails_text = ", ".join(f"{name} {volts!r} V" for name, volts in sorted(set(rails.values())) if name != "0")
+    rail = "vloc" if decoupled else rails["vcc"][0]
+
+    def node(role: str, n: str) -> str:
+        """The true node of template node ``n`` of element ``role``."""
+        if split and role == "r_bottom" and n == "0":
+            return "0"  # the ground-referenced base
+        if n == "vcc" and role not in SUPPLY_ROLES:  # the stage returns to its local supply node
+            return rail
+        return rails[n][0] if n in rails else n
 
     names = designators(topology, parts)
     lines = [title or f"stagefit {topology} stage, device {device_id}",
@@ -189,32 +225,31 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
               f"* conditions: supply {supply!r} V, source {source!r} ohm, load {load!r} ohm, "
               f"load capacitance {load_c!r} F, {temp!r} degC, band {conditions.band[0]!r}.."
               f"{conditions.band[1]!r} Hz",
-              f"* CAUTION: simulated, not built. Supply {supply!r} V DC: check every part's voltage",
+              f"* CAUTION: simulated, not built. Supply {supply!r} V DC"
+              + ("" if not below else f" in all (rails {rails_text})") + ": check every part's voltage",
               "* and power rating (capacitors against the DC across them, resistors against I^2R,",
               "* the transistor against Vceo and its dissipation) before applying power.",
               *[f"* CAUTION: {note}" for note in cautions],
               f".temp {temp!r}",
               ".options TNOM=27",
-              f"Vcc vcc 0 DC {supply!r}",
+              *[f"V{name[1:]} {name} 0 DC {volts!r}" for name, volts in sorted(set(rails.values())) if name != "0"],
               f"Vsig sig 0 DC 0 AC 1 SIN(0 {float(amplitude)!r} {freq!r})",
               f"Rsource sig src {(source if source > 0 else ZERO_SOURCE_RESISTANCE)!r}"]
     for role, a, b in elements:
         value = float(parts[role])
-        nodes = f"{a} {b}"
-        if role not in SUPPLY_ROLES:  # the stage returns to its local supply node
-            nodes = " ".join(rail if node == "vcc" else node for node in (a, b))
+        nodes = f"{node(role, a)} {node(role, b)}"
         if value == 0:  # a zero resistor is a short: a 0 V source keeps the node and its current
             lines.append(f"Vshort_{role} {nodes} DC 0")
         else:
             lines.append(f"{names[role]} {nodes} {value!r}")
     for role, collector, base, emitter in stage.transistor_pins:
-        lines.append(f"{names[role]} {rail if collector == 'vcc' else collector} {base} {emitter} {model_name}")
+        lines.append(f"{names[role]} {' '.join(node(role, n) for n in (collector, base, emitter))} {model_name}")
     lines.append(f"Rload out 0 {(load if math.isfinite(load) else OPEN_LOAD_RESISTANCE)!r}")
     if load_c > 0:
         lines.append(f"Cload out 0 {load_c!r}")
     required, optional, kind, _ = _model_form(stage)
     params = " ".join(f"{key}={float(model[key])!r}" for key in required + optional if key in model)
-    lines.append(f".model {model_name} {kind}({params})")
+    lines.append(f".model {model_name} {polarity.upper() if stage.device_kind == 'bjt' else kind}({params})")
     if analyses:
         lines.append(analyses.rstrip("\n"))
     lines.append(".end")
@@ -241,4 +276,4 @@ def candidate_netlist(record: dict, *, title: str | None = None) -> str:
         "* Itest 0 out AC 1"])
     return spice_netlist(topology.name, {r: float(v[0]) for r, v in parts.items()}, record["transistor"]["model"],
                          conditions, device_id=device.id, title=title, analyses=tests,
-                         cautions=[str(c) for c in record.get("cautions", [])])
+                         cautions=[str(c) for c in record.get("cautions", [])], polarity=device.polarity)

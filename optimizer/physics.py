@@ -37,6 +37,7 @@ SWING_TOLERANCE = 0.1  # usable swing: both peaks within 10 % of the linear gain
 SWING_GRID = (0.8, 1.0, 1.6)  # multiples of the clip-level drive scanned for the first deviation
 SWING_STEPS = 3  # Illinois false-position steps on the drive amplitude after the scan
 MAX_STEP = 0.1  # V, largest Newton step in Vbe (a guard; steps from above are about NF*VT)
+SLOW_ITERATIONS = 8  # further Newton steps, only for candidates not yet converged (see solve_junction)
 NEWTON_TOL = 1e-7  # V, residual of the base-loop equation counted as converged
 
 
@@ -96,16 +97,34 @@ def solve_junction(a: np.ndarray, r_base: np.ndarray, r_emit: np.ndarray, *, i_s
         np.multiply(e, t, out=den)
         np.subtract(g, den, out=g)  # a - Vbe - r_ib*If - r_emit*Ic
 
-    for _ in range(iterations):
+    def step(only: np.ndarray | None = None) -> None:
+        """One damped Newton step (on the candidates of ``only``, when given)."""
         currents(v)
         np.add(e, i_s, out=den)  # the step g / (1 + (If + IS)/(NF VT) * t)
-        den *= t
-        den *= inv_nvt
-        den += 1.0
-        g /= den
+        np.multiply(den, t, out=den)
+        np.multiply(den, inv_nvt, out=den)
+        np.add(den, 1.0, out=den)
+        np.divide(g, den, out=g)
         np.clip(g, -MAX_STEP, MAX_STEP, out=g)
-        v += g
+        if only is not None:
+            g[~only] = 0.0
+        np.add(v, g, out=v)
+
+    for _ in range(iterations):
+        step()
     currents(v)
+    # A large DC drop across the emitter resistance with the Early effect on (a split supply's
+    # emitter resistors carry nearly its whole negative rail) slows Newton to a linear rate, as
+    # the step treats Ic/If as fixed: those candidates alone take a few more steps (in a full
+    # bias solve; the warm-started solves of a static transfer keep their own count), while
+    # their collector junction stays reverse biased (a saturated one has no active root).
+    for _ in range(SLOW_ITERATIONS if iterations >= NEWTON_ITERATIONS else 0):
+        vcb = vcb0 - vcb_ic * e * early - vcb_ib * e / beta - vcb_vbe * v
+        slow = ~(np.abs(g) < NEWTON_TOL) & np.isfinite(g) & (vcb > 0)
+        if not slow.any():
+            break
+        step(slow)
+        currents(v)
     ic = e * early
     vbe, ib = v, e / beta
     vcb = vcb0 - vcb_ic * ic - vcb_ib * ib - vcb_vbe * vbe
@@ -210,6 +229,10 @@ class Network:
         self.noise: list[tuple[str | None, str | None, str, np.ndarray]] = []  # (a, b, kind, R or I)
         self.temp_c = temp_c
         self.s: np.ndarray | None = None  # complex frequencies set by :meth:`at`
+        # where the signal source and the load return (None: the reference node), and where a
+        # ground-referenced bias resistor returns; set by the stage when they differ from it
+        self.ground: str | None = None
+        self.bias_ground: str | None = None
 
     def _stamp(self, part: dict, a: str | None, b: str | None, v: np.ndarray) -> None:
         # entries are never changed in place (solve copies them), so a new key may share v

@@ -56,6 +56,9 @@ class RecordConditions(_Block):
     temperature: list[float] = Field(description="[low, high] °C")
     load_capacitance: float
     signal_vpp: float
+    rails: list[float] | None = Field(None, description=(
+        "[highest, lowest] rail, V, true (ground-referenced) volts: given for a negative rail or a split "
+        "supply; absent, the supply is a positive rail [supply, 0]"))
 
 
 class Candidate(_Block):
@@ -98,10 +101,13 @@ def record_conditions(spec: Spec) -> dict:
     """The record's conditions block of ``spec`` (the signal level and load capacitance as
     the models see them)."""
     conditions = scoring.conditions_from_spec(spec)
-    return {"supply": spec.supply, "supply_range": [spec.supply_min, spec.supply_max],
-            "source_impedance": spec.source_impedance, "load_impedance": spec.load_impedance,
-            "band": list(spec.band), "temperature": list(spec.temperature),
-            "load_capacitance": conditions.load_capacitance, "signal_vpp": conditions.signal_vpp}
+    out = {"supply": spec.supply, "supply_range": [spec.supply_min, spec.supply_max],
+           "source_impedance": spec.source_impedance, "load_impedance": spec.load_impedance,
+           "band": list(spec.band), "temperature": list(spec.temperature),
+           "load_capacitance": conditions.load_capacitance, "signal_vpp": conditions.signal_vpp}
+    if spec.supply_arrangement != "positive":
+        out["rails"] = list(spec.rails)
+    return out
 
 
 def part_label(role: str, value: float) -> str:

@@ -110,9 +110,9 @@ def node_spread(candidate: dict, bill: Kit) -> dict[str, tuple[float, float, flo
                 tolerance[role] = float(str(line.tolerance).rstrip(" %")) / 100
     temperature = tuple(candidate["conditions"].get("temperature") or (conditions.temperature,) * 2)
     spread = worst_case(topology, parts, device, conditions, tolerance, (float(temperature[0]), float(temperature[1])))
-    typ = dc_node_voltages(topology.name, candidate["operating_point"], conditions.supply)
-    low = dc_node_voltages(topology.name, {k: float(v[0][0]) for k, v in spread.items()}, conditions.supply)
-    high = dc_node_voltages(topology.name, {k: float(v[1][0]) for k, v in spread.items()}, conditions.supply)
+    typ = dc_node_voltages(topology.name, candidate["operating_point"], conditions.supply, device.polarity, conditions.below_ground)
+    low = dc_node_voltages(topology.name, {k: float(v[0][0]) for k, v in spread.items()}, conditions.supply, device.polarity, conditions.below_ground)
+    high = dc_node_voltages(topology.name, {k: float(v[1][0]) for k, v in spread.items()}, conditions.supply, device.polarity, conditions.below_ground)
     return {node: (low[node], typ[node], high[node]) for node in typ}
 
 

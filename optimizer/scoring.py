@@ -38,7 +38,8 @@ def conditions_from_spec(spec: Spec, temperature: float = 27.0) -> Conditions:
                       load_impedance=spec.load_impedance, band=tuple(spec.band),
                       temperature=temperature, load_capacitance=spec.load_capacitance,
                       signal_vpp=level, supply_max=spec.supply_max,
-                      ripple_frequency=spec.supply_ripple.frequency if spec.supply_ripple else 100.0)
+                      ripple_frequency=spec.supply_ripple.frequency if spec.supply_ripple else 100.0,
+                      below_ground=spec.supply_below_ground)
 
 
 def sizing_target(spec: Spec, capacitor_tolerances: np.ndarray) -> float:

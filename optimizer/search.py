@@ -40,11 +40,11 @@ from optimizer.scoring import pareto_mask, unique_values_array
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
 from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, quiet_optuna, sync
-from optimizer.synthesis import hand_requirements, rounded_designs
+from optimizer.synthesis import hand_requirements, on_split_supply, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import SUPPLY_PARTS
 from optimizer.units import format_value
-from optimizer.validation import topologies_with_devices, validate_spec
+from optimizer.validation import validate_spec
 
 STATUSES = ("queued", "running", "done", "failed", "cancelled")
 SHORTLIST_SAMPLES = robustness.FINAL_BUILDS  # Monte Carlo builds for each shortlisted design's yield
@@ -113,14 +113,33 @@ class SearchSpace:
     devices: dict[str, AnyDevice]
     device_price: dict[str, float]
     topologies: tuple[str, ...]
+    # the devices each topology is built with (validation.eligibility: polarity and kind);
+    # None: every device with every topology
+    pairs: dict[str, tuple[str, ...]] | None = None
     _distributions: dict[str, dict] = field(default_factory=dict, repr=False)
+
+    def devices_of(self, topology: str) -> tuple[str, ...]:
+        """The devices ``topology`` is paired with in this space."""
+        return tuple(self.devices) if self.pairs is None else self.pairs[topology]
+
+    @property
+    def paired(self) -> bool:
+        """True when some topology is built with only some of the devices: the device is then a
+        parameter of its own per topology ("device:<topology>"), not one shared "device"."""
+        return any(set(self.devices_of(t)) != set(self.devices) for t in self.topologies)
+
+    def device_param(self, topology: str) -> str | None:
+        """The trial parameter that picks the device of ``topology`` (None: only one device)."""
+        if self.paired:
+            return f"device:{topology}" if len(self.devices_of(topology)) > 1 else None
+        return "device" if len(self.devices) > 1 else None
 
     @classmethod
     def build(cls, spec: Spec, catalog: Catalog | None = None) -> "SearchSpace":
         """The space of ``spec`` in its catalog (``spec.parts.catalog`` by default); InputError
         if it is empty."""
         catalog = catalog if catalog is not None else load_catalog(spec.parts.catalog)
-        validate_spec(spec, catalog)
+        verdicts = [v for v in validate_spec(spec, catalog) if v.eligible]  # only topologies that can meet it
         p = spec.parts
         r_values = catalog.resistor_values(p.resistor_series, *p.resistor_range, in_stock_only=p.in_stock_only)
         c_values = catalog.capacitor_values(p.capacitor_series, *p.capacitor_range, in_stock_only=p.in_stock_only,
@@ -138,14 +157,15 @@ class SearchSpace:
         prices = {d: float(catalog.transistor(d).get("unit_price") or 0.0) for d in spec.devices}
         return cls(spec, catalog, PartTable.from_catalog(catalog, "resistor", r_values),
                    PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices,
-                   tuple(t for t in topologies_with_devices(spec, catalog)  # only stages that can give the gain's sign
-                         if spec.gain.inverting is None or get_topology(t).inverting == spec.gain.inverting))
+                   tuple(v.topology for v in verdicts), {v.topology: v.devices for v in verdicts})
 
     @property
     def offers_decoupling(self) -> bool:
         """Whether designs may add a supply decoupling RC (r_decouple, c_decouple): when the spec
-        sets a least supply rejection (limits.psrr_min_db)."""
-        return self.spec.limits.psrr_min_db is not None
+        sets a least supply rejection (limits.psrr_min_db) and the RC is drawn for every device's
+        stage: NPN on a positive rail, PNP on a negative one (the rail that is not ground)."""
+        wanted = {"positive": "npn", "negative": "pnp"}.get(self.spec.supply_arrangement)
+        return self.spec.limits.psrr_min_db is not None and all(d.polarity == wanted for d in self.devices.values())
 
     @property
     def sizing_target(self) -> float:
@@ -157,9 +177,9 @@ class SearchSpace:
         """Ask ``trial`` for a design (parameters: topology, device, <topology>.<role> indices)."""
         topology = (trial.suggest_categorical("topology", list(self.topologies)) if len(self.topologies) > 1
                     else self.topologies[0])
-        choices = self.devices_for(topology)
-        device = (trial.suggest_categorical(self.device_param(topology), choices) if len(choices) > 1
-                  else choices[0])
+        name = self.device_param(topology)
+        device = (trial.suggest_categorical(name, list(self.devices_of(topology))) if name
+                  else self.devices_of(topology)[0])
         chosen = tuple((name.split(".", 1)[1], trial.suggest_int(name, d.low, d.high))
                        for name, d in self.distributions({"topology": topology}).items() if "." in name)
         return Design(topology, device, chosen)
@@ -177,10 +197,12 @@ class SearchSpace:
         out: dict[str, optuna.distributions.BaseDistribution] = {}
         if len(self.topologies) > 1:
             out["topology"] = optuna.distributions.CategoricalDistribution(list(self.topologies))
-        choices = self.devices_for(topology)
-        if len(choices) > 1:
-            out[self.device_param(topology)] = optuna.distributions.CategoricalDistribution(choices)
+        name = self.device_param(topology)
+        if name:
+            out[name] = optuna.distributions.CategoricalDistribution(list(self.devices_of(topology)))
         for role in model.resistors:
+            if role == "r_top" and self.spec.supply_arrangement == "split":
+                continue  # a split supply's base returns to ground through r_bottom alone
             out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(
                 ABSENT if role in model.optional_parts else 0, top)
         if self.offers_decoupling:  # a supply decoupling RC when the spec asks for rejection
@@ -195,33 +217,28 @@ class SearchSpace:
         params: dict[str, object] = {f"{design.topology}.{role}": int(i) for role, i in design.parts}
         if len(self.topologies) > 1:
             params["topology"] = design.topology
-        if len(self.devices_for(design.topology)) > 1:
-            params[self.device_param(design.topology)] = design.device
+        name = self.device_param(design.topology)
+        if name:
+            params[name] = design.device
         return params
-
-    def devices_for(self, topology: str) -> list[str]:
-        """The spec's devices that ``topology`` takes (of its device_kind), in the spec's order."""
-        kind = get_topology(topology).device_kind
-        return [d for d, device in self.devices.items() if device.kind == kind]
-
-    @staticmethod
-    def device_param(topology: str) -> str:
-        """The trial parameter choosing the device: ``device`` for bipolar stages, ``device_jfet``
-        for JFET stages (each its own choices, so a JFET stage never draws a bipolar device)."""
-        kind = get_topology(topology).device_kind
-        return "device" if kind == "bjt" else f"device_{kind}"
 
     def seeds(self) -> list[Design]:
         """The hand method's designs for every topology and device, rounded both ways to the
         series (its series neighbours), as search seeds."""
         out: list[Design] = []
         for topology in self.topologies:
-            for device_id in self.devices_for(topology):
+            for device_id in self.devices_of(topology):
                 device = self.devices[device_id]
                 try:
-                    hand = get_topology(topology).hand_design(hand_requirements(self.spec, device))
+                    req = hand_requirements(self.spec, device)
+                    hand = get_topology(topology).hand_design(req)
                 except (InputError, ValueError, ZeroDivisionError):
                     continue  # the hand method has no answer for this spec: no seed
+                if self.spec.supply_arrangement == "split":
+                    below = self.spec.supply_below_ground
+                    hand = on_split_supply(hand, req, below if device.polarity == "npn" else 1.0 - below)
+                    if hand is None:
+                        continue
                 roles = [name.split(".", 1)[1] for name in self.distributions({"topology": topology}) if "." in name]
                 chosen = {r: v for r, v in hand.items() if r in roles}
                 if set(chosen) != set(roles) or not all(np.isfinite(v) and v > 0 for v in chosen.values()):

@@ -13,7 +13,7 @@ import numpy as np
 
 from optimizer.devices import AnyDevice
 from optimizer.physics import SWEEP, low_3db_corner
-from optimizer.topologies.base import CHUNK_FULL, Conditions, Topology, _source_resistance
+from optimizer.topologies.base import CHUNK_FULL, Conditions, Topology, _source_resistance, frame_conditions
 
 _LARGE_CAPACITANCE = 1.0  # F: "a short" at audio frequencies for the corner probe
 _PROBE_VALUES = (1e-6, 1e-8, 1e-10, 1e-4)  # F, tried in turn for each capacitor's own corner
@@ -25,7 +25,8 @@ def _f_low(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice,
     """The stage's f_low (Hz), the same values as ``evaluate(full=True).metrics["f_low"]``, computed
     alone: the bias, the closed-form mid-band gain as the reference and the low crossing of the
     nodal response (no swing, f_high, noise, supply rejection or ratings), in evaluation chunks."""
-    p = topology.check_parts(parts)
+    conditions = frame_conditions(conditions, device)
+    p = topology.check_parts(parts, conditions)
     n = next(iter(p.values())).size
     beta = topology._hfe_array(device, None, n)
     out = np.empty(n)

@@ -373,35 +373,134 @@ def _unique(values: tuple, label: str) -> tuple:
     return values
 
 
+SUPPLY_INTERNAL = ("supply_min", "supply_max", "supply_range_assumed", "supply_arrangement", "supply_negative")
+_SUPPLY_FORMS = ("a positive rail ('12 V' or {nominal, min, max}), a negative rail ('-12 V' or {nominal: -12 V, "
+                 "min: -12.6 V, max: -11.4 V}) or a split supply ('+-12 V' or {positive: 12 V, negative: -12 V})")
+
+
+def _rail(raw: object, where: str) -> tuple[float, float | None, float | None]:
+    """One rail as written: a voltage or {nominal, min, max}; (nominal, min, max) in true
+    (signed) volts, min and max None when not given. InputError naming ``where``."""
+    if isinstance(raw, dict):
+        unknown = [k for k in raw if k not in ("nominal", "min", "max")]
+        if unknown or "nominal" not in raw:
+            raise InputError.single(where, raw, "a voltage or {nominal, min, max} with nominal given "
+                                    "(min and max default to -+5 %)", _TITLE)
+        values = [raw.get(k) for k in ("nominal", "min", "max")]
+    else:
+        values = [raw, None, None]
+    out: list[float | None] = []
+    for key, value in zip(("", ".min", ".max"), values):
+        if value is None:
+            out.append(None)
+            continue
+        if isinstance(value, bool) or not isinstance(value, (str, int, float)):
+            raise InputError.single(where + key, value, "a voltage such as '12 V' or '-12 V'", _TITLE)
+        try:
+            out.append(parse_quantity(value, "V", where=where + key, allow_negative=True))
+        except InputError as exc:
+            raise InputError([Problem(where + key, value, _expected(exc))], _TITLE) from None
+    nominal, low, high = out
+    if nominal is None:
+        raise InputError.single(where, raw, "a voltage, or {nominal, min, max} with a nominal voltage", _TITLE)
+    if nominal == 0:
+        raise InputError.single(where, raw, "a rail voltage other than 0 V", _TITLE)
+    for key, value in ((".min", low), (".max", high)):
+        if value is not None and (value > 0) != (nominal > 0):
+            raise InputError.single(where + key, value, f"the same sign as the nominal {nominal:g} V", _TITLE)
+    if not (low if low is not None else nominal) <= nominal <= (high if high is not None else nominal):
+        raise InputError.single(where, raw, "min <= nominal <= max in true volts (for a negative rail min is the "
+                                "most negative, e.g. {nominal: -12 V, min: -12.6 V, max: -11.4 V})", _TITLE)
+    return nominal, low, high
+
+
+class _SupplyProblem:
+    """A supply that could not be read, carried to the supply field so that its problem is
+    reported together with the spec's others."""
+
+    def __init__(self, error: InputError) -> None:
+        self.error = error
+
+
+def _read_supply(raw: object) -> dict[str, Any]:
+    """The spec's supply fields from its written form (see :data:`_SUPPLY_FORMS`): supply,
+    supply_min, supply_max (the span, V; None = nominal -+5 %), supply_range_assumed,
+    supply_arrangement and, for a split supply, supply_negative (nominal, min, max; V)."""
+    text = raw.strip() if isinstance(raw, str) else ""
+    prefix = next((p for p in ("+/-", "+-", "±") if text.startswith(p)), None)
+    if prefix:
+        text = text[len(prefix):]
+        magnitude = _rail(text.strip(), "supply")[0]
+        if magnitude <= 0:
+            raise InputError.single("supply", raw, "a split supply written '+-12 V' (a positive magnitude)", _TITLE)
+        raw = {"positive": magnitude, "negative": -magnitude}
+    if isinstance(raw, dict) and ("positive" in raw or "negative" in raw):
+        unknown = [k for k in raw if k not in ("positive", "negative")]
+        if unknown or not {"positive", "negative"} <= set(raw):
+            raise InputError.single("supply", raw, "a split supply {positive: 12 V, negative: -12 V} with both "
+                                    "rails and no other key", _TITLE)
+        pos, neg = _rail(raw["positive"], "supply.positive"), _rail(raw["negative"], "supply.negative")
+        if pos[0] < 0:
+            raise InputError.single("supply.positive", raw["positive"], "a voltage above 0 V, e.g. '12 V'", _TITLE)
+        if neg[0] > 0:
+            raise InputError.single("supply.negative", raw["negative"], "a voltage below 0 V, e.g. '-12 V'", _TITLE)
+        assumed = all(r[1] is None and r[2] is None for r in (pos, neg))
+        tol = 1.0 - DEFAULT_SUPPLY_TOLERANCE, 1.0 + DEFAULT_SUPPLY_TOLERANCE
+        pos_range = (pos[1] if pos[1] is not None else pos[0] * tol[0], pos[2] if pos[2] is not None else pos[0] * tol[1])
+        neg_range = (neg[1] if neg[1] is not None else neg[0] * tol[1], neg[2] if neg[2] is not None else neg[0] * tol[0])
+        return {"supply": pos[0] - neg[0], "supply_min": pos_range[0] - neg_range[1],
+                "supply_max": pos_range[1] - neg_range[0], "supply_range_assumed": assumed,
+                "supply_arrangement": "split", "supply_negative": (neg[0], *neg_range)}
+    if isinstance(raw, (dict, str, int, float)) and not isinstance(raw, bool):
+        try:
+            nominal, low, high = _rail(raw, "supply")
+        except InputError as exc:
+            if exc.problems[0].where == "supply" and not isinstance(raw, dict):
+                raise InputError.single("supply", raw, _SUPPLY_FORMS, _TITLE) from None
+            raise
+        if nominal > 0:
+            return {"supply": nominal, "supply_min": low, "supply_max": high,
+                    "supply_range_assumed": low is None and high is None, "supply_arrangement": "positive"}
+        return {"supply": -nominal, "supply_min": None if high is None else -high,
+                "supply_max": None if low is None else -low, "supply_range_assumed": low is None and high is None,
+                "supply_arrangement": "negative"}
+    raise InputError.single("supply", raw, _SUPPLY_FORMS, _TITLE)
+
+
 class Spec(_Section):
     """A validated requirements spec; SI floats throughout, temperatures in °C."""
 
     @classmethod
     def input_keys(cls) -> tuple[str, ...]:
-        return tuple(k for k in cls.model_fields if k not in ("supply_min", "supply_max", "supply_range_assumed"))
+        return tuple(k for k in cls.model_fields if k not in SUPPLY_INTERNAL)
 
     @model_validator(mode="before")
     @classmethod
     def _supply_range(cls, data: object) -> object:
-        """``supply`` as a number (nominal, +-5 % assumed) or {nominal, min, max}."""
+        """``supply`` in one of its written forms (see :func:`_read_supply`) into the span
+        magnitude (supply, supply_min, supply_max), the arrangement and, for a split supply, the
+        negative rail."""
         if not isinstance(data, dict):
             return data
         data = dict(data)
-        for key in ("supply_min", "supply_max", "supply_range_assumed"):
+        for key in SUPPLY_INTERNAL:
             if key in data:
-                raise InputError.single(key, data[key], "supply: {nominal, min, max} instead", _TITLE)
-        raw = data.get("supply")
-        if isinstance(raw, dict):
-            unknown = [k for k in raw if k not in ("nominal", "min", "max")]
-            if unknown or "nominal" not in raw:
-                raise InputError.single("supply", raw, "a voltage ('12 V') or {nominal, min, max} with "
-                                        "nominal given (min and max default to -+5 %)", _TITLE)
-            data["supply"] = raw["nominal"]
-            data["supply_min"], data["supply_max"] = raw.get("min"), raw.get("max")
-            data["supply_range_assumed"] = "min" not in raw and "max" not in raw
-        elif raw is not None:
-            data["supply_range_assumed"] = True
+                raise InputError.single(key, data[key], "supply: {nominal, min, max} or {positive, negative} "
+                                        "instead", _TITLE)
+        if data.get("supply") is not None:
+            try:
+                data.update(_read_supply(data["supply"]))
+            except InputError as error:  # reported by the supply field, beside every other problem
+                data["supply"] = _SupplyProblem(error)
         return data
+
+    @field_validator("supply", mode="before")
+    @classmethod
+    def _supply_problem(cls, value: object) -> object:
+        if isinstance(value, _SupplyProblem):
+            raise InputError([Problem(p.where.removeprefix("supply").lstrip("."), p.value, p.expected)
+                              for p in value.error.problems], _TITLE)
+        return value
 
     @model_validator(mode="after")
     def _supply_order(self) -> "Spec":
@@ -417,14 +516,22 @@ class Spec(_Section):
     name: str = Field(min_length=1, max_length=MAX_NAME)
     description: str | None = Field(None, max_length=MAX_DESCRIPTION)
     supply: _quantity("V", maximum=100.0, example="12 V") = Field(
-        description="nominal supply, V, above 0, <= 100; written as a number (then +-5 % is assumed) "
-                    "or as {nominal, min, max}")
+        description="the supply: a positive rail ('12 V', or {nominal, min, max}; +-5 % assumed for a bare "
+                    "number), a negative rail ('-12 V', or {nominal: -12 V, min: -12.6 V, max: -11.4 V}) or a "
+                    "split supply ('+-12 V', or {positive: 12 V, negative: -12 V}, each rail a voltage or "
+                    "{nominal, min, max}). Internally: the span from the lowest to the highest rail, V, "
+                    "above 0, <= 100")
     supply_min: _quantity("V", optional=True, maximum=100.0, example="11.4 V") = Field(
-        None, description="lowest supply, V (input: supply.min; default nominal -5 %)")
+        None, description="lowest span, V (input: supply.min; default nominal -5 %)")
     supply_max: _quantity("V", optional=True, maximum=100.0, example="12.6 V") = Field(
-        None, description="highest supply, V (input: supply.max; default nominal +5 %)")
+        None, description="highest span, V (input: supply.max; default nominal +5 %)")
     supply_range_assumed: bool = Field(
         False, description="true when the supply was a bare number and +-5 % was assumed")
+    supply_arrangement: Literal["positive", "negative", "split"] = Field(
+        "positive", description="positive rail and ground, negative rail and ground, or split (+ and - rails "
+                                "around ground); from the supply's written form")
+    supply_negative: tuple[float, float, float] | None = Field(
+        None, description="split supply: the negative rail (nominal, min, max), V, true (negative) volts")
     supply_ripple: Ripple | None = None
     robustness: Literal["yield", "worst_case", "nominal"] = Field(
         "yield", description="basis on which a design meets the spec: yield (every hard limit in at "
@@ -504,6 +611,20 @@ class Spec(_Section):
     def objective_directions(self) -> list[tuple[str, str]]:
         """(metric, "minimise"|"maximise") for each objective, in order."""
         return [(o.metric, str(o.direction)) for o in self.objectives]  # the validator has set every direction
+
+    @property
+    def supply_below_ground(self) -> float:
+        """Fraction of the supply span below signal ground: 0 on a positive rail, 1 on a
+        negative rail, |V-|/(V+ + |V-|) on a split supply (the models' ``Conditions.below_ground``)."""
+        if self.supply_arrangement == "split" and self.supply_negative is not None:
+            return -self.supply_negative[0] / self.supply
+        return 1.0 if self.supply_arrangement == "negative" else 0.0
+
+    @property
+    def rails(self) -> tuple[float, float]:
+        """(highest rail, lowest rail), nominal, V, true (ground-referenced) volts."""
+        below = self.supply_below_ground * self.supply
+        return self.supply - below, -below if below else 0.0
 
 
 # --- errors --------------------------------------------------------------------------
@@ -654,9 +775,20 @@ def check_against_catalog(spec: Spec, catalog: Any) -> None:
 def spec_to_dict(spec: Spec) -> dict:
     """Canonical JSON-ready mapping in SI units (°C for temperature); parse_spec reads it back."""
     data = spec.model_dump(mode="json")
-    for key in ("supply_min", "supply_max", "supply_range_assumed"):
+    for key in SUPPLY_INTERNAL:
         data.pop(key)
-    if not spec.supply_range_assumed:
+    if spec.supply_range_assumed and spec.supply_arrangement != "positive":
+        top, bottom = spec.rails
+        data["supply"] = -spec.supply if spec.supply_arrangement == "negative" else {"positive": top,
+                                                                                      "negative": bottom}
+    elif spec.supply_arrangement == "split" and spec.supply_negative is not None:
+        neg = dict(zip(("nominal", "min", "max"), spec.supply_negative))
+        pos = {"nominal": spec.supply + neg["nominal"], "min": spec.supply_min + neg["max"],
+               "max": spec.supply_max + neg["min"]}
+        data["supply"] = {"positive": pos, "negative": neg}
+    elif spec.supply_arrangement == "negative":
+        data["supply"] = {"nominal": -spec.supply, "min": -spec.supply_max, "max": -spec.supply_min}
+    elif not spec.supply_range_assumed:
         data["supply"] = {"nominal": spec.supply, "min": spec.supply_min, "max": spec.supply_max}
     data["gain"] = {"target": spec.gain.target, "inverting": spec.gain.inverting,
                     "tolerance_db": spec.gain.tolerance_db}
@@ -673,16 +805,27 @@ def spec_digest(spec: Spec) -> str:
 def spec_json_schema() -> dict:
     """JSON Schema (draft 2020-12) of the spec as users write it."""
     schema = Spec.model_json_schema(mode="validation")
-    internal = ("supply_min", "supply_max", "supply_range_assumed")
-    for key in internal:
+    for key in SUPPLY_INTERNAL:
         schema["properties"].pop(key, None)
-    schema["required"] = [k for k in schema.get("required", []) if k not in internal]
+    schema["required"] = [k for k in schema.get("required", []) if k not in SUPPLY_INTERNAL]
     voltage = {"anyOf": [{"type": "number"}, {"type": "string"}]}
-    schema["properties"]["supply"] = {
-        "description": schema["properties"]["supply"]["description"],
-        "anyOf": [*voltage["anyOf"], {"type": "object", "additionalProperties": False, "required": ["nominal"],
-                                      "properties": {"nominal": voltage, "min": voltage, "max": voltage}}]}
+    rail = {"anyOf": [*voltage["anyOf"], {"type": "object", "additionalProperties": False, "required": ["nominal"],
+                                          "properties": {"nominal": voltage, "min": voltage, "max": voltage}}]}
+    split = {"type": "object", "additionalProperties": False, "required": ["positive", "negative"],
+             "properties": {"positive": rail, "negative": rail}}
+    schema["properties"]["supply"] = {"description": schema["properties"]["supply"]["description"],
+                                      "anyOf": [*rail["anyOf"], split]}
     return {"$schema": _JSON_SCHEMA_DRAFT, **schema}
+
+
+def _supply_words(spec: Spec) -> str:
+    """The supply as a designer says it: '12 V', '-12 V (negative rail)', '+12 V / -12 V (split, 24 V span)'."""
+    top, bottom = spec.rails
+    if spec.supply_arrangement == "split":
+        return f"+{format_value(top, 'V')} / -{format_value(-bottom, 'V')} (split, {format_value(spec.supply, 'V')} span)"
+    if spec.supply_arrangement == "negative":
+        return f"-{format_value(spec.supply, 'V')} (negative rail)"
+    return format_value(spec.supply, "V")
 
 
 def describe_spec(spec: Spec) -> str:
@@ -691,8 +834,9 @@ def describe_spec(spec: Spec) -> str:
     g = spec.gain
     sign = {True: "inverting", False: "non-inverting", None: "either sign"}[g.inverting]
     lines = [f"spec {spec.name}" + (f": {spec.description.strip()}" if spec.description else ""),
-             f"  supply            {fv(spec.supply, 'V')} ({fv(spec.supply_min, 'V')} .. "
-             f"{fv(spec.supply_max, 'V')}" + (", +-5 % assumed" if spec.supply_range_assumed else "") + ")"
+             f"  supply            {_supply_words(spec)} ({fv(spec.supply_min, 'V')} .. "
+             f"{fv(spec.supply_max, 'V')}" + (" span" if spec.supply_arrangement == "split" else "")
+             + (", +-5 % assumed" if spec.supply_range_assumed else "") + ")"
              + (f", ripple {fv(spec.supply_ripple.vpp, 'V')} p-p at {fv(spec.supply_ripple.frequency, 'Hz')}"
                 if spec.supply_ripple else ""),
              f"  gain              {g.target:.4g} V/V ({spec.gain_target_db:.2f} dB), {sign},"

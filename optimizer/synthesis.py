@@ -131,3 +131,25 @@ def hand_requirements(spec: "Spec", device: "AnyDevice") -> HandRequirements:
     if isinstance(device, JFET):
         return HandRequirements(**common, idss=device.idss_typ, vp=-device.VTO, vce_sat=0.0)
     return HandRequirements(**common, hfe=device.hfe_typ, vce_sat=device.vce_sat)
+
+
+def on_split_supply(hand: dict[str, float], req: HandRequirements, ground: float) -> dict[str, float] | None:
+    """A hand design (drawn as NPN on a positive rail of ``req.supply``, the span) moved to a
+    split supply whose ground sits ``ground`` of the span above the stage's emitter-side rail:
+    the base returns to ground through r_bottom alone, at the divider's Thevenin resistance
+    (r_top dropped), and the DC emitter resistance (r_emitter_dc where part of it is bypassed,
+    else r_emitter) carries the hand current from ground less Vbe and Ib*r_bottom. None when
+    the ground sits too low for the stage's own emitter resistance."""
+    if "r_top" not in hand:
+        return None
+    ic = req.collector_current
+    r_bottom = parallel(hand["r_top"], hand["r_bottom"])
+    r_dc = (ground * req.supply - VBE_HAND - ic / req.hfe * r_bottom) / ic
+    out = {k: v for k, v in hand.items() if k != "r_top"}
+    out["r_bottom"] = r_bottom
+    key = "r_emitter_dc" if "r_emitter_dc" in hand else "r_emitter"
+    value = r_dc - (hand["r_emitter"] if key == "r_emitter_dc" else 0.0)
+    if not value > 0:
+        return None
+    out[key] = value
+    return out

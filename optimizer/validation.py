@@ -1,88 +1,147 @@
 """Checks of a spec against its catalog and the topologies, run before any trial.
 
-One function, :func:`validate_spec`, used by `stagefit check`, the search (so `stagefit
-search`, the Python API and the REST service all refuse the same specs) and the REST
-service's spec check. It reports every problem at once, each naming the field, the value and
-what would be valid:
+:func:`eligibility` says, for a spec and its catalog, which of the spec's topologies can meet
+it and why each other cannot, from the topologies' declarations alone:
 
-- the spec's device ids and series exist in the catalog (``spec.check_against_catalog``);
-- the sign of the gain can be given by at least one of the spec's topologies (each topology
-  declares ``inverting``);
-- each device's polarity is one some eligible topology is drawn for (``polarities``);
-- some topology of the spec takes a device of the spec (``device_kind``: JFET stages take
-  JFETs, the others bipolar transistors).
+- the sign of the gain (``inverting``) against ``gain.inverting``;
+- the supply arrangement (positive, negative or split rail) against ``supplies``;
+- the spec's devices: their polarity (``polarities``) and kind (``device_kind``, "bjt" or
+  "jfet"; a catalog row without a kind is a bipolar transistor).
+
+It is the one place these rules live: `stagefit check` prints its verdicts before any search,
+the search space holds only the eligible topologies, each paired only with its devices, and
+:func:`validate_spec` (used by `stagefit check`, the search, the Python API and the REST
+service's spec check, so all refuse the same specs) refuses a spec no topology can meet,
+reporting every problem at once, each naming the field, the value and what would be valid.
 """
 from __future__ import annotations
+
+from dataclasses import dataclass
+
+import pandas as pd
 
 from optimizer.catalog import Catalog
 from optimizer.errors import InputError, Problem
 from optimizer.spec import Spec, check_against_catalog
-from optimizer.topologies import get_topology
+from optimizer.topologies import Topology, get_topology
 
 TITLE = "spec cannot be searched"
 
 
-def device_kind(catalog: Catalog, device: str) -> str | None:
-    """The kind of catalog device ``device`` ("jfet" for polarity njf, else "bjt"); None if unknown."""
-    rows = catalog.transistors[catalog.transistors["id"] == device]
-    return None if rows.empty else ("jfet" if str(rows.iloc[0]["polarity"]).lower() == "njf" else "bjt")
+@dataclass(frozen=True)
+class Verdict:
+    """Whether one topology can meet a spec: the spec's devices it can be built with, and the
+    reasons it cannot (empty when it can)."""
+
+    topology: str
+    devices: tuple[str, ...]
+    reasons: tuple[str, ...]
+
+    @property
+    def eligible(self) -> bool:
+        """True when nothing rules the topology out."""
+        return not self.reasons
 
 
-def topologies_with_devices(spec: Spec, catalog: Catalog) -> tuple[str, ...]:
-    """The spec's topologies that some device of the spec can fill (a topology's device_kind
-    matches the device's kind: JFET stages take JFETs, the others bipolar transistors)."""
-    kinds = {device_kind(catalog, d) for d in spec.devices}
-    return tuple(name for name in spec.topologies if get_topology(name).device_kind in kinds)
+def device_traits(catalog: Catalog, device: str) -> tuple[str, str]:
+    """(polarity, kind) of a catalog device: polarity "npn", "pnp" (or a JFET's channel), kind
+    "bjt" unless the catalog row says otherwise, "jfet" for an n-channel JFET (polarity njf)."""
+    row = catalog.transistors.set_index("id").loc[device]
+    polarity = str(row["polarity"]).lower()
+    if polarity == "njf":  # the JFETs of jfets.csv join the table with their channel as polarity
+        return polarity, "jfet"
+    kind = row.get("kind", "bjt")
+    return polarity, "bjt" if pd.isna(kind) or not str(kind).strip() else str(kind).lower()
 
 
-def _gain_sign(spec: Spec, catalog: Catalog) -> list[Problem]:
-    """The gain's sign against the topologies that may give it (with a device of their kind)."""
-    wanted = spec.gain.inverting
-    if wanted is None:
+def builds_with(topology: Topology, traits: tuple[str, str]) -> bool:
+    """Whether ``topology`` can be built with a device of these (polarity, kind)."""
+    return traits[1] == topology.device_kind and traits[0] in topology.polarities
+
+
+def _traits_words(polarities: tuple[str, ...], kind: str) -> str:
+    """'npn/pnp', or with the kind when it is not a bipolar transistor ('n-channel jfet')."""
+    return "/".join(polarities) + ("" if kind == "bjt" else f" {kind}")
+
+
+def eligibility(spec: Spec, catalog: Catalog) -> list[Verdict]:
+    """A verdict for each of the spec's topologies, in the spec's order (devices missing from
+    the catalog are left out here; :func:`validate_spec` reports them)."""
+    known = set(str(i) for i in catalog.transistors["id"])
+    traits = {d: device_traits(catalog, d) for d in spec.devices if d in known}
+    verdicts = []
+    for name in spec.topologies:
+        t = get_topology(name)
+        reasons = []
+        if spec.gain.inverting is not None and t.inverting != spec.gain.inverting:
+            reasons.append("inverting" if t.inverting else "non-inverting")
+        if spec.supply_arrangement not in t.supplies:
+            reasons.append(f"no {spec.supply_arrangement} supply: runs on {', '.join(t.supplies)}")
+        devices = tuple(d for d, tr in traits.items() if builds_with(t, tr))
+        if not devices:
+            reasons.append(f"built with {_traits_words(t.polarities, t.device_kind)} devices; the spec's are "
+                           + ", ".join(f"{d} ({_traits_words((tr[0],), tr[1])})" for d, tr in traits.items()))
+        verdicts.append(Verdict(name, devices, tuple(reasons)))
+    return verdicts
+
+
+def eligibility_text(spec: Spec, verdicts: list[Verdict]) -> str:
+    """One line: the gain's sign and the supply, the topologies that can meet the spec and why
+    each other cannot (e.g. "gain -10 is inverting, positive supply: divider_ce, ... can;
+    feedback_pair cannot (non-inverting)")."""
+    g = spec.gain
+    sign = {True: "inverting", False: "non-inverting", None: "either sign"}[g.inverting]
+    shown = f"{-g.target:g}" if g.inverting else f"+{g.target:g}" if g.inverting is False else f"{g.target:g}"
+    can = [v.topology for v in verdicts if v.eligible]
+    cannot = [f"{v.topology} cannot ({'; '.join(v.reasons)})" for v in verdicts if not v.eligible]
+    return (f"gain {shown} is {sign}, {spec.supply_arrangement} supply: "
+            + (f"{', '.join(can)} can" if can else "no topology can") + ("; " if cannot else "") + "; ".join(cannot))
+
+
+def eligible_topologies(spec: Spec, catalog: Catalog) -> tuple[str, ...]:
+    """The spec's topologies that can meet it, in the spec's order."""
+    return tuple(v.topology for v in eligibility(spec, catalog) if v.eligible)
+
+
+def _problems(spec: Spec, verdicts: list[Verdict]) -> list[Problem]:
+    """Why no topology can meet the spec, by field: the gain's sign when that alone rules every
+    topology out, else the whole verdict on ``topologies``."""
+    if any(v.eligible for v in verdicts):
         return []
-    able = [name for name in topologies_with_devices(spec, catalog) if get_topology(name).inverting == wanted]
-    if able:
-        return []
-    sign = "an inverting" if wanted else "a non-inverting"
-    shown = -spec.gain.target if wanted else spec.gain.target
-    other = ("write a negative target (e.g. -10) or set gain.inverting: null to accept either sign"
-             if not wanted else "set gain.inverting: null to accept either sign")
-    return [Problem("gain.target", f"{shown:g}",
-                    f"a gain sign some topology of the spec gives: no topology in the spec with a device "
-                    f"of its kind ({', '.join(topologies_with_devices(spec, catalog)) or 'none'}) gives "
-                    f"{sign} gain; {other}")]
+    if all(v.reasons == ("inverting" if get_topology(v.topology).inverting else "non-inverting",)
+           for v in verdicts):
+        wanted = spec.gain.inverting
+        sign = "an inverting" if wanted else "a non-inverting"
+        shown = -spec.gain.target if wanted else spec.gain.target
+        other = ("write a negative target (e.g. -10) or set gain.inverting: null to accept either sign"
+                 if not wanted else "set gain.inverting: null to accept either sign")
+        return [Problem("gain.target", f"{shown:g}",
+                        f"a gain sign some topology of the spec gives: no topology in the spec "
+                        f"({', '.join(spec.topologies)}) gives {sign} gain; {other}")]
+    return [Problem("topologies", list(spec.topologies),
+                    f"at least one topology that can meet the spec: {eligibility_text(spec, verdicts)}")]
 
 
-def _polarities(spec: Spec, catalog: Catalog) -> list[Problem]:
-    """Each device's polarity against the polarities the spec's topologies are drawn for."""
-    problems = []
-    rows = catalog.transistors.set_index("id")
-    drawn = {name: get_topology(name).polarities for name in spec.topologies}
-    for i, device in enumerate(spec.devices):
-        if device not in rows.index:
-            continue  # reported by check_against_catalog
-        polarity = str(rows.loc[device, "polarity"]).lower()
-        if not any(polarity in p for p in drawn.values()):
-            supported = sorted({p for ps in drawn.values() for p in ps})
-            problems.append(Problem(f"devices[{i}]", device,
-                                    f"a {' or '.join(supported)} transistor: {device} is {polarity}, and no "
-                                    f"topology in the spec ({', '.join(spec.topologies)}) is drawn for "
-                                    f"{polarity} devices"))
-    return problems
-
-
-def validate_spec(spec: Spec, catalog: Catalog) -> None:
-    """Raise InputError (every problem at once) unless ``spec`` can be searched in ``catalog``."""
+def validate_spec(spec: Spec, catalog: Catalog) -> list[Verdict]:
+    """Raise InputError (every problem at once) unless ``spec`` can be searched in ``catalog``;
+    the topologies' verdicts (:func:`eligibility`) when it can."""
     problems: list[Problem] = []
     try:
         check_against_catalog(spec, catalog)
     except InputError as error:
         problems += error.problems
-    problems += _gain_sign(spec, catalog) + _polarities(spec, catalog)
-    if not problems and not topologies_with_devices(spec, catalog):
-        problems.append(Problem("devices", list(spec.devices),
-                                f"a device some topology of the spec takes: {', '.join(spec.topologies)} take "
-                                f"{' or '.join(sorted({get_topology(t).device_kind for t in spec.topologies}))} "
-                                "devices (JFET stages take JFETs, polarity njf)"))
+    verdicts = eligibility(spec, catalog)
+    problems += _problems(spec, verdicts)
+    used = {d for v in verdicts if v.eligible for d in v.devices}
+    if used:  # a device none of the eligible topologies is built with
+        known = set(str(i) for i in catalog.transistors["id"])
+        problems += [Problem(f"devices[{i}]", d, f"a device some eligible topology is built with: {d} is "
+                             f"{_traits_words((device_traits(catalog, d)[0],), device_traits(catalog, d)[1])}, and "
+                             + ", ".join(f"{v.topology} is built with "
+                                         + _traits_words(get_topology(v.topology).polarities,
+                                                         get_topology(v.topology).device_kind)
+                                         for v in verdicts if v.eligible))
+                     for i, d in enumerate(spec.devices) if d in known and d not in used]
     if problems:
         raise InputError(problems, title=TITLE)
+    return verdicts

@@ -55,7 +55,7 @@ def agreement_rows(design: CheckDesign) -> list[dict]:
     metrics = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
     metrics["ic"] = float(np.asarray(result.operating_point["ic"])[0])
 
-    model_card = design.device.spice_model()
+    model_card = {**design.device.spice_model(), "polarity": design.device.polarity}
     args = (design.topology, design.parts, model_card, design.conditions)
     simulated = {"ic": spice_operating_point(*args)["ic"]}
     simulated.update({k: v for k, v in spice_midband(*args).items()
@@ -71,7 +71,7 @@ def agreement_rows(design: CheckDesign) -> list[dict]:
     simulated["psrr_ripple_db"], simulated["psrr_mid_db"] = spice_psrr(*args, frequencies)
     flicker = dataclasses.replace(design.device, KF=FLICKER_KF, AF=1.0)
     metrics["noise_ein_flicker"] = float(topology.evaluate(parts, flicker, design.conditions).metrics["noise_ein_v"][0])
-    simulated["noise_ein_flicker"] = spice_noise(design.topology, design.parts, flicker.spice_model(),
+    simulated["noise_ein_flicker"] = spice_noise(design.topology, design.parts, {**flicker.spice_model(), "polarity": flicker.polarity},
                                                  design.conditions)
     level = THD_FRACTION_OF_CLIP * metrics["clip_vpp"]
     thd_conditions = type(design.conditions)(**{**design.conditions.__dict__, "signal_vpp": level})
@@ -99,3 +99,10 @@ def agreement_rows(design: CheckDesign) -> list[dict]:
             row["hand_error"] = _error(hand[metric], simulated[metric], kind)
         rows.append(row)
     return rows
+
+
+def outside_tolerance(rows: list[dict]) -> list[str]:
+    """A line per row of :func:`agreement_rows` outside its tolerance (empty: all agree)."""
+    return [f"{r['metric']}: model {r['model']:.4g}, ngspice {r['simulator']:.4g}, "
+            f"error {r['error']:+.3g} (tolerance {r['tolerance']:g} {r['kind']})"
+            for r in rows if not r["within"]]

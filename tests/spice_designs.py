@@ -7,13 +7,13 @@ how far the textbook estimate itself lands from the simulator.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from optimizer.devices import Device
 from optimizer.sizing import size_decoupling
-from optimizer.synthesis import HandRequirements
+from optimizer.synthesis import HandRequirements, coupling_capacitor
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
 
@@ -220,4 +220,77 @@ def follower_designs() -> list[CheckDesign]:
         designs.append(CheckDesign(f"{topology}-{supply:g}V-I{ie * 1e3:g}mA-hfe{hfe}-rs{rs:g}", topology,
                                    get_topology(topology).hand_design(req), check_device(hfe), conditions,
                                    hand_gain=1.0, hand_ic=ie))
+    return designs
+
+
+# ---- polarity and supply arrangements: PNP, negative rail, split supply -------------------
+# The same stages drawn as NPN on a positive rail, built with a PNP device (mirrored) and/or
+# on a negative rail (shifted), and on a split supply with a ground-referenced base (r_top
+# absent): the polarity layer of optimizer/topologies/base.py against ngspice.
+
+POLARITY_TOPOLOGIES = ("divider_ce", "divider_ce_split")
+# (V+, V- for divider_ce_split, V- for divider_ce, |gain| for divider_ce_split, Ic A, hFE, source
+# ohm, load ohm): split supplies. divider_ce's r_emitter is its whole emitter resistance, so its
+# gain needs a small negative rail.
+_SPLIT_CASES = [
+    (12.0, -3.0, -3.0, 8.0, 1.0e-3, 200, 600, 100e3),
+    (6.0, -6.0, -1.5, 5.0, 0.5e-3, 120, 1e3, 47e3),
+    (15.0, -15.0, -2.0, 15.0, 1.0e-3, 300, 600, 22e3),
+    (12.0, -12.0, -2.5, 10.0, 2.0e-3, 250, 10e3, 100e3),
+    (9.0, -2.5, -2.5, 4.0, 0.5e-3, 400, 1e3, 47e3),
+    (5.0, -5.0, -1.5, 6.0, 1.0e-3, 60, 50, 22e3),
+    (24.0, -6.0, -6.0, 20.0, 1.5e-3, 250, 1e3, 47e3),
+    (15.0, -4.0, -1.8, 8.0, 3.0e-3, 100, 600, 10e3),
+]
+_VBE_HAND, _BASE_DROP = 0.65, 0.1  # V: the hand method's Vbe and the drop of Ib across r_bottom
+
+
+def split_hand_design(topology: str, v_pos: float, v_neg: float, gain: float, ic: float, hfe: float,
+                      rs: float, rl: float, f_low: float = 20.0) -> tuple[dict[str, float], float]:
+    """The hand method on a split supply (parts in ohm and F, and the signed gain it predicts):
+    the base at ground through r_bottom (Ib dropping _BASE_DROP across it), the emitter
+    resistors carrying Ic from -Vbe to the negative rail, the collector centred between the
+    positive rail and ground; divider_ce's gain is then r_collector||load / r_emitter,
+    divider_ce_split's r_emitter is set for ``gain`` and r_emitter_dc takes the rest."""
+    r_bottom = _BASE_DROP * hfe / ic
+    re_total = (-v_neg - _VBE_HAND - _BASE_DROP) / ic
+    rc = v_pos / (2.0 * ic)
+    rac = rc * rl / (rc + rl)
+    re = re_total if topology == "divider_ce" else rac / gain
+    parts = {"r_bottom": r_bottom, "r_collector": rc, "r_emitter": re,
+             "c_in": coupling_capacitor(r_bottom * hfe * re / (r_bottom + hfe * re) + rs, f_low),
+             "c_out": coupling_capacitor(rc + rl, f_low)}
+    if topology == "divider_ce_split":
+        parts["r_emitter_dc"] = re_total - re
+        parts["c_emitter"] = coupling_capacitor(parts["r_emitter_dc"] * (re + 0.026 / ic)
+                                                / (parts["r_emitter_dc"] + re + 0.026 / ic), f_low)
+    return parts, -rac / re
+
+
+def polarity_designs() -> list[CheckDesign]:
+    """Designs of the two POLARITY_TOPOLOGIES in each arrangement, 8 per topology and kind:
+    PNP (the positive-rail designs of _CASES, on a positive rail and on a negative one in
+    turn), NPN on a negative rail (the same designs), and split supplies (_SPLIT_CASES, NPN
+    and PNP in turn, a PNP's rails mirrored): 48 in all."""
+    base = [d for d in check_designs() if d.topology in POLARITY_TOPOLOGIES and not d.name.endswith("-rc")]
+    designs = []
+    for i, d in enumerate(base):
+        pnp = replace(d.device, id=d.device.id.replace("npn", "pnp"), polarity="pnp")
+        below = float(i % 2)
+        designs.append(replace(d, name=f"{d.name}-pnp-{'negative' if below else 'positive'}", device=pnp,
+                               conditions=replace(d.conditions, below_ground=below)))
+        designs.append(replace(d, name=f"{d.name}-npn-negative", conditions=replace(d.conditions, below_ground=1.0)))
+    for topology in POLARITY_TOPOLOGIES:
+        for i, (v_pos, v_neg_bypassed, v_neg_unbypassed, gain, ic, hfe, rs, rl) in enumerate(_SPLIT_CASES):
+            v_neg = v_neg_unbypassed if topology == "divider_ce" else v_neg_bypassed
+            parts, hand_gain = split_hand_design(topology, v_pos, v_neg, gain, ic, hfe, rs, rl)
+            device = check_device(hfe)
+            span = v_pos - v_neg
+            if i % 2:  # the PNP stage is the mirror image: its emitter side is the positive rail
+                device = replace(device, id=device.id.replace("npn", "pnp"), polarity="pnp")
+                v_pos, v_neg = -v_neg, -v_pos
+            conditions = Conditions(supply=span, source_impedance=float(rs), load_impedance=float(rl),
+                                    band=(20.0, 20000.0), temperature=27.0, below_ground=-v_neg / span)
+            designs.append(CheckDesign(f"{topology}-split+{v_pos:g}/{v_neg:g}V-hfe{hfe}-{device.polarity}", topology,
+                                       parts, device, conditions, hand_gain=hand_gain, hand_ic=ic))
     return designs

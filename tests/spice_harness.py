@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 
-from optimizer.netlist import mid_band_frequency, nominal_temperature, spice_netlist
+from optimizer.netlist import mid_band_frequency, nominal_temperature, rail_nodes, spice_netlist
 
 NGSPICE = shutil.which("ngspice")
 TIMEOUT_S = 60.0
@@ -31,6 +31,21 @@ _SCALAR = re.compile(r"^\s*([A-Za-z_][\w]*)\s*=\s*([-+0-9.eE]+|nan|inf)\s*$", re
 
 class SpiceError(RuntimeError):
     """ngspice failed or did not print what the harness asked for."""
+
+
+def _netlist(topology: str, parts: Mapping[str, float], model: Mapping[str, Any], conditions: Any,
+             **kwargs: Any) -> str:
+    """spice_netlist of the stage; ``model`` may carry the device's "polarity" ("npn" when absent)
+    beside its SPICE keys, so a PNP stage is written with a PNP model and mirrored rails."""
+    card = {k: v for k, v in model.items() if k != "polarity"}
+    return spice_netlist(topology, parts, card, conditions, polarity=str(model.get("polarity", "npn")), **kwargs)
+
+
+def _rails(model: Mapping[str, Any], conditions: Any) -> list[str]:
+    """The supply sources of the netlist (not ground): 'vcc' (positive rail) and/or 'vee' (negative)."""
+    found = rail_nodes(float(conditions.supply), str(model.get("polarity", "npn")),
+                       float(getattr(conditions, "below_ground", 0.0))).values()
+    return sorted({name for name, _ in found if name != "0"})
 
 
 def ngspice_available() -> bool:
@@ -53,8 +68,8 @@ def _simulate(topology: str, parts: Mapping[str, float], model: Mapping[str, flo
     with tempfile.TemporaryDirectory(prefix="stagefit-spice-") as tmp:
         body = control.replace("{dir}", tmp)
         analyses = f"{elements}\n.control\nset noaskquit\nset numdgt=12\n{body}\nquit\n.endc"
-        netlist = spice_netlist(topology, parts, model, conditions, analyses=analyses,
-                                amplitude=amplitude, frequency=frequency)
+        netlist = _netlist(topology, parts, model, conditions, analyses=analyses,
+                           amplitude=amplitude, frequency=frequency)
         if transform is not None:
             netlist = transform(netlist)
         path = Path(tmp) / "stage.cir"
@@ -106,11 +121,13 @@ def spice_operating_point(topology: str, parts: Mapping[str, float], model: Mapp
                           conditions: Any) -> dict[str, float]:
     """DC operating point: ic (A, q1; ic2 for q2 of a two-transistor stage, each read by an
     ammeter in the collector), v_base, v_collector, v_emitter (V to ground, those of the stage's
-    nodes) and supply_current (A drawn from Vcc); of a JFET stage: ic (A, j1's drain current),
+    nodes) and supply_current (A drawn from the positive rail, or sunk by the negative rail when there
+    is no positive one; ic is the collector current's magnitude: a PNP's flows out of its collector); of a JFET stage: ic (A, j1's drain current),
     v_gate, v_source, v_drain and supply_current."""
     from optimizer.topologies import get_topology
 
     stage = get_topology(topology)
+    drawn = "-i(vcc)" if "vcc" in _rails(model, conditions) else "i(vee)"  # a negative rail alone: what it sinks
     if stage.device_kind == "jfet":  # id of j1 as "ic", its nodes by their own names
         drain = next(d for role, d, _, _ in stage.transistor_pins if role == "q1")
         control = ("op\nlet ic = @j1[id]\nlet v_gate = v(gate)\nlet v_source = v(source)\n"
@@ -121,9 +138,9 @@ def spice_operating_point(topology: str, parts: Mapping[str, float], model: Mapp
         return dict(zip(names, _need(scalars, *names)))
     follower = stage.transistors == 2
     nodes = tuple(n for n in ("base", "collector", "emitter") if n in stage.node_voltages)  # a follower has no collector
-    control = ("op\nlet ic = i(vam_q1)\n" + "".join(f"let v_{n} = v({n})\n" for n in nodes)
-               + "let supply_current = -i(vcc)\n"
-               + ("let ic2 = i(vam_q2)\nprint ic2\n" if follower else "")
+    control = ("op\nlet ic = abs(i(vam_q1))\n" + "".join(f"let v_{n} = v({n})\n" for n in nodes)
+               + f"let supply_current = {drawn}\n"
+               + ("let ic2 = abs(i(vam_q2))\nprint ic2\n" if follower else "")
                + f"print ic {' '.join(f'v_{n}' for n in nodes)} supply_current")
     scalars, _ = _simulate(topology, parts, model, conditions, control, transform=_ammeters)
     names = ("ic", *(f"v_{n}" for n in nodes), "supply_current") + (("ic2",) if follower else ())
@@ -154,7 +171,8 @@ def spice_midband(topology: str, parts: Mapping[str, float], model: Mapping[str,
     h, zin = _complex_gain(topology, parts, model, conditions, frequency)
     unloaded = SimpleNamespace(supply=conditions.supply, source_impedance=conditions.source_impedance,
                                load_impedance=math.inf, load_capacitance=0.0,
-                               temperature=conditions.temperature, band=conditions.band)
+                               temperature=conditions.temperature, band=conditions.band,
+                               below_ground=getattr(conditions, "below_ground", 0.0))
     control = (f"alter @vsig[acmag] = 0\nac lin 1 {frequency!r} {frequency!r}\n"
                "let zout = mag(v(out))\nprint zout")
     scalars, _ = _simulate(topology, parts, model, unloaded, control, elements="Itest 0 out DC 0 AC 1")
@@ -238,7 +256,7 @@ def held_transfer(topology: str, parts: Mapping[str, float], model: Mapping[str,
     mid-band), and a DC sweep of the signal source over +-1.5*supply/|gain| gives the load
     voltage against the source EMF.
     """
-    netlist = spice_netlist(topology, parts, model, conditions)
+    netlist = _netlist(topology, parts, model, conditions)
     nodes = sorted(_capacitor_nodes(netlist))
     control = "op\n" + "".join(f"let n_{n} = v({n})\nprint n_{n}\n" for n in nodes)
     scalars, _ = _simulate(topology, parts, model, conditions, control)
@@ -362,14 +380,19 @@ def spice_thd(topology: str, parts: Mapping[str, float], model: Mapping[str, flo
 
 def spice_psrr(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
                conditions: Any, frequencies: tuple[float, ...]) -> list[float]:
-    """Supply rejection 20*log10(1/|V(out)/V(vcc)|) (dB) at each frequency (Hz), from .ac with
-    AC 1 on the supply source Vcc and the signal source's AC set to 0 (its resistance stays)."""
-    control = "alter @vsig[acmag] = 0\nalter @vcc[acmag] = 1\n"
-    for i, f in enumerate(frequencies):
-        control += (f"ac lin 1 {float(f)!r} {float(f)!r}\nlet r{i} = -20*log10(mag(v(out)/v(vcc)))\n"
-                    f"print r{i}\n")
-    scalars, _ = _simulate(topology, parts, model, conditions, control)
-    return _need(scalars, *(f"r{i}" for i in range(len(frequencies))))
+    """Supply rejection 20*log10(1/|V(out)/V(rail)|) (dB) at each frequency (Hz), from .ac with
+    AC 1 on one supply source (Vcc, or Vee on a negative rail) and the signal source's AC set to 0
+    (its resistance stays); with two rails (a split supply) each in turn, the worse counting."""
+    worst: list[float] | None = None
+    for rail in _rails(model, conditions):
+        control = f"alter @vsig[acmag] = 0\nalter @v{rail[1:]}[acmag] = 1\n"
+        for i, f in enumerate(frequencies):
+            control += (f"ac lin 1 {float(f)!r} {float(f)!r}\nlet r{i} = -20*log10(mag(v(out)/v({rail})))\n"
+                        f"print r{i}\n")
+        scalars, _ = _simulate(topology, parts, model, conditions, control)
+        found = _need(scalars, *(f"r{i}" for i in range(len(frequencies))))
+        worst = found if worst is None else [min(a, b) for a, b in zip(worst, found)]
+    return worst
 
 
 NF_REFERENCE_K = 290.0  # K, the standard noise-figure source temperature

@@ -19,13 +19,13 @@ from pathlib import Path
 import pytest
 import yaml
 
-from optimizer import catalog as catalog_module
 from optimizer.bom import kit
 from optimizer.catalog import is_class2, load_catalog
 from optimizer.cli import main
 from optimizer.netlist import candidate_netlist
 from optimizer.search import search
 from optimizer.spec import load_spec, parse_spec
+from optimizer.topologies.divider_ce import DividerCE
 
 ROOT = Path(__file__).resolve().parent.parent
 SPECS = sorted((ROOT / "specs").glob("*.yaml"))
@@ -224,18 +224,16 @@ def test_positive_gain_with_only_inverting_topologies_is_refused(tmp_path: Path)
              "gain.target", "'30'", "no topology in the spec", "non-inverting")
 
 
-def test_pnp_device_is_refused_by_npn_topologies(tmp_path: Path, monkeypatch) -> None:
-    shutil.copytree(ROOT / "parts_catalogs", tmp_path / "catalogs")
-    table = tmp_path / "catalogs" / "bench_stock" / "transistors.csv"
-    line = next(ln for ln in table.read_text().splitlines() if ln.startswith("npn-general,"))
-    table.write_text(table.read_text() + line.replace("npn-general,npn", "pnp-general,pnp", 1) + "\n")
-    monkeypatch.setattr(catalog_module, "CATALOG_DIR", tmp_path / "catalogs")
-    catalog_module._load_cached.cache_clear()
-    try:
-        _refused(tmp_path, [_spec_file(tmp_path, devices=["pnp-general"])], "devices[0]", "pnp-general",
-                 "is pnp", "npn")
-    finally:
-        catalog_module._load_cached.cache_clear()
+def test_split_supply_is_refused_by_a_collector_biased_stage_alone(tmp_path: Path) -> None:
+    # eligibility (optimizer/validation.py): feedback_ce declares no split supply
+    _refused(tmp_path, [_spec_file(tmp_path, supply="+-12 V", topologies=["feedback_ce"])],
+             "topologies", "feedback_ce cannot", "no split supply: runs on positive, negative")
+
+
+def test_pnp_device_is_refused_by_npn_only_topologies(tmp_path: Path, monkeypatch) -> None:
+    monkeypatch.setattr(DividerCE, "polarities", ("npn",))  # as if divider_ce were drawn for npn alone
+    _refused(tmp_path, [_spec_file(tmp_path, devices=["SF-P1"], topologies=["divider_ce"])],
+             "topologies", "divider_ce cannot", "built with npn devices; the spec's are SF-P1 (pnp)")
 
 
 def test_one_milli_ohm_is_refused_with_the_megohm_hint(tmp_path: Path) -> None:

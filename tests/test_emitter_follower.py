@@ -95,7 +95,7 @@ def test_thd_from_a_low_source_is_the_static_fft():
     # (physics.thd_quasistatic, the shared solve every stage uses): the collector-base charge's
     # currents are lost in 600 ohm
     c = Conditions(supply=12.0, source_impedance=600.0, load_impedance=10e3, signal_vpp=4.0)
-    p, b, nvt = TOPO._checked_solve(PARTS, DEVICE, c, None)
+    p, b, nvt, c = TOPO._checked_solve(PARTS, DEVICE, c, None)
     gain = one(TOPO.evaluate(PARTS, DEVICE, c, full=False), "gain")
     static = physics.thd_quasistatic(TOPO._static_fn(p, DEVICE, c, b, nvt, b.beta), np.array([2.0 / gain]))
     assert TOPO.thd_quasistatic(PARTS, DEVICE, c)[0] == pytest.approx(static[0], rel=0.03)

@@ -171,3 +171,46 @@ def test_robustness_defaults_to_yield_at_95_percent():
     with pytest.raises(InputError) as err:
         parse_spec({**BASE, "robustness": "typical"})
     assert err.value.problems[0].where == "robustness"
+
+
+# --- supply arrangements (positive, negative, split) --------------------------------------
+
+@pytest.mark.parametrize("written, arrangement, span, rails", [
+    ("12 V", "positive", (11.4, 12.0, 12.6), (12.0, 0.0)),
+    ("-12 V", "negative", (11.4, 12.0, 12.6), (0.0, -12.0)),
+    ({"nominal": "-12 V", "min": "-12.6 V", "max": "-11 V"}, "negative", (11.0, 12.0, 12.6), (0.0, -12.0)),
+    ("+-12 V", "split", (22.8, 24.0, 25.2), (12.0, -12.0)),
+    ("±15 V", "split", (28.5, 30.0, 31.5), (15.0, -15.0)),
+    ({"positive": "12 V", "negative": {"nominal": -5, "min": -5.5, "max": -4.5}}, "split", (15.9, 17.0, 18.1),
+     (12.0, -5.0)),
+])
+def test_supply_forms_give_span_arrangement_and_rails(written, arrangement, span, rails):
+    # the span's range: both rails at their lowest magnitude together, then at their highest
+    spec = parse_spec({**BASE, "supply": written})
+    assert spec.supply_arrangement == arrangement
+    assert (spec.supply_min, spec.supply, spec.supply_max) == pytest.approx(span)
+    assert spec.rails == pytest.approx(rails)
+    assert parse_spec(spec_to_dict(spec)) == spec  # the canonical form reads back
+
+
+@pytest.mark.parametrize("written, where, expected", [
+    ({"nominal": -12, "min": -11}, "supply", "for a negative rail min is the most negative"),
+    ({"positive": -3, "negative": -12}, "supply.positive", "above 0 V"),
+    ({"positive": 12, "negative": 5}, "supply.negative", "below 0 V"),
+    ({"positive": 12}, "supply", "both rails"),
+    ({"positive": 12, "negative": {"nominal": -12, "min": 3}}, "supply.negative.min", "same sign"),
+    ("abc", "supply", "a split supply ('+-12 V'"),
+    ("0 V", "supply", "a negative rail ('-12 V'"),
+])
+def test_supply_form_errors_name_the_field(written, where, expected):
+    with pytest.raises(InputError) as err:
+        parse_spec({**BASE, "supply": written})
+    problem = err.value.problems[0]
+    assert problem.where == where and expected in problem.expected
+
+
+def test_split_supply_below_ground_fraction():
+    spec = parse_spec({**BASE, "supply": {"positive": "15 V", "negative": "-5 V"}})
+    assert spec.supply_below_ground == pytest.approx(0.25)
+    assert parse_spec({**BASE, "supply": "-9 V"}).supply_below_ground == 1.0
+    assert parse_spec(BASE).supply_below_ground == 0.0

@@ -6,29 +6,33 @@ r_decouple/c_decouple), and 16 emitter and bootstrapped followers (sources from 
 10 Mohm, each driving a cable) are simulated through the exported SPICE netlist; every metric
 (bias, gain, impedances, usable swing by the 10 % rule, clip level, corners, white and
 flicker noise, noise figure at 290 K, supply rejection at 100 Hz and mid-band, THD) must
-agree within the tolerances in spice_agreement.TOLERANCES. Skipped only where ngspice is absent.
+agree within the tolerances in spice_agreement.TOLERANCES. The same checks run on PNP,
+negative-rail and split-supply versions of two stages (the block at the end). Skipped only
+where ngspice is absent.
 """
 from __future__ import annotations
 
 import shutil
 
+import numpy as np
 import pytest
 
-from spice_agreement import agreement_rows
-from spice_designs import check_designs
+from optimizer.topologies import get_topology
+from spice_agreement import agreement_rows, outside_tolerance
+from spice_designs import check_designs, polarity_designs
+from spice_harness import spice_operating_point
 
 pytestmark = pytest.mark.skipif(shutil.which("ngspice") is None,
                                 reason="ngspice not installed: apt-get install ngspice")
 
 DESIGNS = check_designs()
+#  The polarity layer: PNP, negative-rail and split-supply versions of two stages (see below).
+POLARITY_DESIGNS = polarity_designs()
 
 
-@pytest.mark.parametrize("design", DESIGNS, ids=[d.name for d in DESIGNS])
+@pytest.mark.parametrize("design", DESIGNS + POLARITY_DESIGNS, ids=[d.name for d in DESIGNS + POLARITY_DESIGNS])
 def test_model_agrees_with_ngspice(design) -> None:
-    rows = agreement_rows(design)
-    outside = [f"{r['metric']}: model {r['model']:.4g}, ngspice {r['simulator']:.4g}, "
-               f"error {r['error']:+.3g} (tolerance {r['tolerance']:g} {r['kind']})"
-               for r in rows if not r["within"]]
+    outside = outside_tolerance(agreement_rows(design))
     assert not outside, "\n".join(outside)
 
 
@@ -38,3 +42,29 @@ def test_hand_method_is_further_off_than_the_model() -> None:
     model_error = sum(abs(r["error"]) for r in rows) / len(rows)
     hand_error = sum(abs(r["hand_error"]) for r in rows) / len(rows)
     assert model_error < 0.03 < hand_error
+
+
+# ---- polarity layer: PNP stages, negative rails, split supplies -----------------------------
+# divider_ce and divider_ce_split, drawn as NPN on a positive rail, evaluated through the
+# polarity layer of optimizer/topologies/base.py as PNP stages (on a positive and on a negative
+# rail: mirrored, and mirrored and shifted), as NPN stages on a negative rail (shifted) and on
+# split supplies with a ground-referenced base (r_top absent; NPN and PNP), 48 designs in all
+# (tests/spice_designs.polarity_designs). Each is simulated through the exported netlist, with a
+# PNP model card and the true rails (Vcc, Vee against ground), and every metric of the agreement
+# set (bias, gain, impedances, usable swing, clip level, corners, white and flicker noise, noise
+# figure, THD, and supply rejection with the ripple on each rail that carries it, the worse of
+# two on a split supply) must agree within spice_agreement.TOLERANCES. The operating point is
+# compared in true volts: node voltages with their sign.
+
+
+@pytest.mark.parametrize("design", POLARITY_DESIGNS[::6], ids=[d.name for d in POLARITY_DESIGNS[::6]])
+def test_node_voltages_are_true_volts_with_their_sign(design) -> None:
+    # ngspice's .op of the netlist with its true rails (ground at 0 V) against the model's
+    # reported operating point: within 20 mV or 1 % of the span at base, collector and emitter
+    op = get_topology(design.topology).operating_point({k: np.array([v]) for k, v in design.parts.items()},
+                                                       design.device, design.conditions)
+    simulated = spice_operating_point(design.topology, design.parts,
+                                      {**design.device.spice_model(), "polarity": design.device.polarity},
+                                      design.conditions)
+    for key in ("v_base", "v_collector", "v_emitter"):
+        assert float(op[key][0]) == pytest.approx(simulated[key], abs=max(0.02, 0.01 * design.conditions.supply)), key

@@ -73,7 +73,8 @@ def test_a_topology_defined_in_a_test_is_registered_searched_netlisted_and_liste
     listed = {t["name"]: t for t in json.loads(capsys.readouterr().out)["topologies"]}
     assert listed["toy_ce"]["description"] == toy.description
     assert [r["name"] for r in listed["toy_ce"]["roles"]] == list(toy.resistors + toy.capacitors)
-    assert listed["toy_ce"]["gain_sign"] == "inverting" and listed["toy_ce"]["polarities"] == ["npn"]
+    assert listed["toy_ce"]["gain_sign"] == "inverting" and listed["toy_ce"]["polarities"] == ["npn", "pnp"]
+    assert listed["toy_ce"]["supplies"] == ["positive", "negative", "split"]
     assert main(["topologies"]) == EXIT_OK
     assert "toy_ce: toy: divider_ce under another name" in capsys.readouterr().out
 

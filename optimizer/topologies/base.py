@@ -73,11 +73,41 @@ class Conditions:
     signal_vpp: float = 1.0  # output level at which thd is given
     supply_max: float | None = None  # V, highest rail (capacitor ratings at power-up); None: supply
     ripple_frequency: float = 100.0  # Hz, where psrr_db is judged besides mid-band
+    # fraction of the supply span below the signal ground: 0 a positive rail, 1 a negative rail,
+    # between: a split supply (spec.supply_below_ground). The public methods take it in true
+    # terms; inside the models it is the stage's frame's (see :func:`frame_conditions`).
+    below_ground: float = 0.0
 
     @property
     def rail_max(self) -> float | np.ndarray:
         """Highest supply voltage the parts can see (V; per candidate when supply is an array)."""
         return self.supply if self.supply_max is None else np.maximum(self.supply, self.supply_max)
+
+
+SUPPLIES = ("positive", "negative", "split")  # supply arrangements (Topology.supplies)
+POLARITIES = ("npn", "pnp", "njf")
+
+
+def arrangement(below_ground: float) -> str:
+    """The supply arrangement of a below-ground fraction: "positive", "negative" or "split"."""
+    return "positive" if below_ground <= 0 else "negative" if below_ground >= 1 else "split"
+
+
+def frame_conditions(conditions: Conditions, device: AnyDevice) -> Conditions:
+    """The conditions in the frame the stage models compute in: an NPN stage on the span's
+    rails with the signal ground ``below_ground`` of the span above the lowest rail. A PNP stage
+    is the mirror image (every DC voltage negated), so its frame's ground sits at 1 minus the
+    true fraction; a negative rail shifts the frame so the ground is its top rail."""
+    if device.polarity == "pnp":
+        return replace(conditions, below_ground=1.0 - conditions.below_ground)
+    return conditions
+
+
+def true_volts(v_frame: np.ndarray, device: AnyDevice, frame: Conditions) -> np.ndarray:
+    """A DC node voltage of the frame (V above its lowest rail) in true, ground-referenced
+    volts: shifted by the ground's place, negated for a PNP stage."""
+    shifted = v_frame - frame.below_ground * np.asarray(frame.supply) if frame.below_ground else v_frame
+    return -shifted if device.polarity == "pnp" else shifted
 
 
 @dataclass
@@ -134,9 +164,14 @@ class Topology(ABC):
     capacitors: ClassVar[tuple[str, ...]]  # capacitor roles, c_...
     transistors: ClassVar[int]
     inverting: ClassVar[bool]  # True: the mid-band gain source -> load is negative
-    polarities: ClassVar[tuple[str, ...]]  # transistor polarities the stage is drawn for ("npn", "pnp")
-    supply: ClassVar[str] = "single positive rail"  # the supply arrangement the stage is drawn for
-    device_kind: ClassVar[str] = "bjt"  # the kind of device the stage takes (Device.kind / JFET.kind)
+    # transistor polarities the stage runs with ("npn", "pnp"): drawn as NPN, a PNP stage is its
+    # mirror image (the polarity layer of StageModel)
+    polarities: ClassVar[tuple[str, ...]]
+    # supply arrangements the stage runs on, from SUPPLIES: drawn on a positive rail, a negative
+    # rail shifts it; "split" needs the bias divider (r_top, r_bottom): r_top is left out and
+    # r_bottom returns the base to ground
+    supplies: ClassVar[tuple[str, ...]] = ("positive", "negative")
+    device_kind: ClassVar[str] = "bjt"  # the kind of device the stage is built with ("bjt", "jfet")
     optional_parts: ClassVar[tuple[str, ...]] = ()  # may be 0 (absent)
     supply_parts: ClassVar[tuple[str, ...]] = SUPPLY_PARTS  # optional everywhere: absent or 0 = direct rail
     # SPICE netlist template: every resistor and capacitor as (role, node a, node b) in signal
@@ -176,6 +211,10 @@ class Topology(ABC):
         if len(cls.transistor_pins) != cls.transistors:
             raise TypeError(f"topology {cls.name}: {cls.transistors} transistors but "
                             f"{len(cls.transistor_pins)} transistor_pins")
+        if not set(cls.supplies) <= set(SUPPLIES) or not set(cls.polarities) <= set(POLARITIES) or (
+                "split" in cls.supplies and not {"r_top", "r_bottom"} <= set(cls.resistors)):
+            raise TypeError(f"topology {cls.name}: supplies from {SUPPLIES} ('split' with r_top and r_bottom) and "
+                            f"polarities from {POLARITIES}; got {cls.supplies}, {cls.polarities}")
         bad = [r for r in roles | set(cls.optional_parts) if r[:1] not in KINDS or r[1:2] != "_"]
         if bad or not set(cls.optional_parts) <= roles:
             raise TypeError(f"topology {cls.name}: roles are named r_... or c_... and optional_parts "
@@ -209,13 +248,13 @@ class Topology(ABC):
                                 title="no hand design")
 
     def describe(self) -> dict:
-        """JSON-ready summary: description, roles, polarity, supply and gain sign."""
+        """JSON-ready summary: description, roles, polarities, supplies, device kind and gain sign."""
         return {"name": self.name, "description": self.description,
                 "roles": [{"name": r.name, "kind": r.kind, "unit": r.unit, "series": r.series_field,
                            "optional": r.optional} for r in self.roles],
                 "resistors": list(self.resistors), "capacitors": list(self.capacitors),
                 "optional_parts": list(self.optional_parts), "transistors": self.transistors,
-                "polarities": list(self.polarities), "supply": self.supply,
+                "polarities": list(self.polarities), "supplies": list(self.supplies), "device_kind": self.device_kind,
                 "gain_sign": "inverting" if self.inverting else "non-inverting"}
 
     @abstractmethod
@@ -291,12 +330,24 @@ class StageModel(Topology):
         into 'vcc' makes it a 1 V AC source, for the supply rejection); r_decouple runs from
         'vcc' to 'vloc', c_decouple from 'vloc' to ground (a bypass: a short at mid-band when
         present). Without a decoupling RC in the batch and without supply, the rail is ground.
+
+        With supply, the signal ground is where the frame puts it (c.below_ground): the lowest
+        rail (the reference node), the top rail 'vcc' (a negative rail), or on a split supply a
+        node 'gnd' of its own, held by its own G_SHORT, where the source, the load and r_bottom
+        return (net.ground, net.bias_ground).
         """
         decoupled = bool(np.any(p["r_decouple"] > 0))
         if not (decoupled or supply):
             return physics.Network(nodes, c.temperature), None
-        net = physics.Network(nodes + (("vloc", "vcc") if decoupled else ("vcc",)), c.temperature)
+        split = supply and 0 < c.below_ground < 1
+        net = physics.Network(nodes + (("vloc", "vcc") if decoupled else ("vcc",)) + (("gnd",) if split else ()),
+                              c.temperature)
         net.admittance("vcc", None, np.full_like(p["r_decouple"], physics.G_SHORT))
+        if split:
+            net.admittance("gnd", None, np.full_like(p["r_decouple"], physics.G_SHORT))
+            net.ground = net.bias_ground = "gnd"
+        elif supply and c.below_ground >= 1:
+            net.ground = "vcc"
         if not decoupled:
             return net, "vcc"
         net.resistor("vcc", "vloc", p["r_decouple"])
@@ -320,10 +371,21 @@ class StageModel(Topology):
         """Quiescent DC voltage of the node c_out couples to the load (V)."""
 
     # ---- shared flow -------------------------------------------------------------------
-    def check_parts(self, parts: Parts) -> Parts:
+    def check_parts(self, parts: Parts, conditions: Conditions | None = None) -> Parts:
         """Broadcast parts to float arrays over one candidate axis; InputError if any is missing or bad.
 
-        The supply decoupling parts (r_decouple, c_decouple) may be left out: then 0 (absent)."""
+        The supply decoupling parts (r_decouple, c_decouple) may be left out: then 0 (absent).
+        On a split supply (``conditions``) r_top is absent (0 or left out): r_bottom alone returns
+        the base to ground."""
+        split = conditions is not None and arrangement(conditions.below_ground) == "split"
+        if split and "split" not in self.supplies:
+            raise InputError.single("supply", "split", f"one of {', '.join(self.supplies)} for {self.name}",
+                                    title=f"{self.name} does not run on a split supply")
+        if split:
+            parts = {"r_top": np.zeros(1), **parts}
+            if np.any(np.asarray(parts["r_top"], dtype=float) != 0):
+                raise InputError.single("parts.r_top", parts["r_top"], "absent (0) on a split supply: the base "
+                                        "returns to ground through r_bottom alone", title=f"invalid part value for {self.name}")
         needed = self.resistors + self.capacitors
         problems = [Problem(f"parts.{r}", None, f"{self.name} needs {', '.join(needed)}")
                     for r in needed if r not in parts]
@@ -333,7 +395,7 @@ class StageModel(Topology):
         arrays = np.broadcast_arrays(*(np.atleast_1d(np.asarray(parts.get(r, 0.0), dtype=float)) for r in roles))
         out = dict(zip(roles, (a.ravel() for a in arrays)))
         for r, a in out.items():
-            optional = r in self.optional_parts or r in self.supply_parts
+            optional = r in self.optional_parts or r in self.supply_parts or (split and r == "r_top")
             bad = ~(a >= 0) if optional else ~(a > 0)
             if np.any(bad):
                 raise InputError.single(f"parts.{r}", float(a[bad][0]),
@@ -348,14 +410,32 @@ class StageModel(Topology):
         return np.broadcast_to(np.asarray(device.spread_typ if hfe is None else hfe, dtype=float), (n,))
 
     def _checked_solve(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-                       hfe: np.ndarray | float | None) -> tuple[Parts, Bias, float]:
-        """Check the parts, then solve the bias (the entry of the public single-call methods)."""
-        p = self.check_parts(parts)
-        return self._solve(p, device, conditions, self._hfe_array(device, hfe, next(iter(p.values())).size))
+                       hfe: np.ndarray | float | None) -> tuple[Parts, Bias, float, Conditions]:
+        """Check the parts, then solve the bias (the entry of the public single-call methods);
+        the frame's parts, bias and conditions (:func:`frame_conditions`)."""
+        frame = frame_conditions(conditions, device)
+        p = self.check_parts(parts, frame)
+        return (*self._solve(p, device, frame, self._hfe_array(device, hfe, next(iter(p.values())).size)), frame)
+
+    def _frame_parts(self, p: Parts, conditions: Conditions) -> Parts:
+        """The parts as the frame's models see them: on a split supply the ground-referenced
+        r_bottom becomes the divider across the span with the same Thevenin source (ground's
+        place, r_bottom), r_top = r_bottom/g, r_bottom = r_bottom/(1-g), g the ground's fraction
+        of the span: the same DC and, with every rail an AC ground, the same signal and noise."""
+        g = conditions.below_ground
+        if g > 0 and np.any(p["r_decouple"] > 0):
+            raise InputError.single("parts.r_decouple", float(np.max(p["r_decouple"])),
+                                    "0 (absent): a supply decoupling RC is drawn for an NPN stage on a positive "
+                                    "rail or a PNP stage on a negative rail", title=f"invalid part value for {self.name}")
+        if not 0 < g < 1:
+            return p
+        return {**p, "r_top": p["r_bottom"] / g, "r_bottom": p["r_bottom"] / (1.0 - g)}
 
     def _solve(self, p: Parts, device: AnyDevice, conditions: Conditions,
                beta: np.ndarray) -> tuple[Parts, Bias, float]:
-        """Bias of checked parts ``p`` with hFE ``beta`` (one value per candidate)."""
+        """Bias of checked parts ``p`` with hFE ``beta`` (one value per candidate), in the frame
+        of ``conditions`` (:func:`frame_conditions`); the frame's parts (:meth:`_frame_parts`)."""
+        p = self._frame_parts(p, conditions)
         nvt = device.NF * float(thermal_voltage(conditions.temperature))
         i_s = float(saturation_current(device.IS, conditions.temperature))
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
@@ -375,17 +455,33 @@ class StageModel(Topology):
                 b = self._bias(p, device, replace(conditions, supply=v_local), beta, nvt, i_s)
         b.op["v_supply_local"] = v_local
         b.op["v_out_q"] = self._output_q(b.op)
+        if 0 < conditions.below_ground < 1 and "i_divider" in b.op:
+            # split: no r_top; the base current comes from ground through r_bottom, and the supply
+            # current is what the collector-side rail gives (the divider equivalent's share removed)
+            b.op["supply_current"] = b.op["supply_current"] - b.op["i_divider"]
+            b.op["i_divider"] = (conditions.below_ground * conditions.supply - b.op["v_base"]) \
+                * (1.0 / p["r_top"] + 1.0 / p["r_bottom"])
         b.beta = beta
         return p, b, nvt
 
     def operating_point(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                         hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
-        return self._checked_solve(parts, device, conditions, hfe)[1].op
+        _, b, _, frame = self._checked_solve(parts, device, conditions, hfe)
+        return self._true_op(b.op, device, frame)
+
+    def _true_op(self, op: dict[str, np.ndarray], device: AnyDevice, frame: Conditions) -> dict[str, np.ndarray]:
+        """The operating point with its node voltages (and v_supply_local, v_out_q) in true,
+        ground-referenced volts (:func:`true_volts`); vce, vbe and currents stay magnitudes."""
+        if not frame.below_ground and device.polarity != "pnp":
+            return op
+        keys = {*self.node_voltages.values(), "v_supply_local", "v_out_q"}
+        return {k: true_volts(v, device, frame) if k in keys else v for k, v in op.items()}
 
     def evaluate(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                  hfe: np.ndarray | float | None = None, *, full: bool = True,
                  thd_solve: bool = False) -> StageResult:
-        p = self.check_parts(parts)
+        conditions = frame_conditions(conditions, device)
+        p = self.check_parts(parts, conditions)
         n = next(iter(p.values())).size
         h = self._hfe_array(device, hfe, n)
         step = CHUNK_FULL if full else CHUNK_FAST
@@ -406,7 +502,8 @@ class StageModel(Topology):
 
     def _evaluate(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                   hfe: np.ndarray, full: bool, thd_solve: bool) -> StageResult:
-        p, b, nvt = self._solve(parts, device, conditions, hfe)  # parts checked by evaluate
+        """:meth:`evaluate` of one chunk of checked ``parts`` in the frame's ``conditions``."""
+        p, b, nvt = self._solve(parts, device, conditions, hfe)
         r_source = _source_resistance(b, conditions)
         local = replace(conditions, supply=b.op["v_supply_local"])  # the stage's own supply node
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
@@ -426,7 +523,7 @@ class StageModel(Topology):
                 "thd": np.abs(sum(sign * physics.thd_small_signal(0.5 * conditions.signal_vpp * vx, sup, nvt, u)
                                   for vx, sup, u, sign in mid["hd2_terms"])),
                 "q_power": b.op["q_power"], "emitter_voltage": b.op["v_emitter"],
-                "part_count": self.part_count(p)}
+                "part_count": self.part_count(parts)}
             nan = np.full_like(gain, np.nan)
             m.update(f_low=nan, f_high=nan, noise_ein_v=nan, noise_figure_db=nan, psrr_db=nan, psrr_ripple_db=nan,
                      psrr_mid_db=nan)
@@ -436,10 +533,14 @@ class StageModel(Topology):
             if thd_solve:
                 m["thd"] = self._thd_static(p, device, conditions, b, nvt, b.beta, gain)
             ratings = self._ratings(p, conditions, b)
+            if 0 < conditions.below_ground < 1:  # split: r_bottom alone, from the base to ground
+                ratings["p_r_top"] = np.zeros_like(gain)
+                ratings["p_r_bottom"] = (b.op["v_base"] - conditions.below_ground * conditions.supply) ** 2 \
+                    / parts["r_bottom"]
             ratings["p_r_decouple"] = b.op["supply_current"] ** 2 * p["r_decouple"]
             ratings["v_c_decouple"] = np.where(p["c_decouple"] > 0, conditions.rail_max, 0.0) + 0.0 * gain
         ratings["vce_max"] = vce_max
-        return StageResult({k: m[k] for k in METRICS}, b.op, ratings)
+        return StageResult({k: m[k] for k in METRICS}, self._true_op(b.op, device, conditions), ratings)
 
     def _loop_metrics(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
         """loop_gain (V/V, mid-band) and phase_margin_deg (degrees) of a stage with an overall
@@ -460,20 +561,41 @@ class StageModel(Topology):
 
     def _psrr(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
         """psrr_ripple_db, psrr_mid_db and psrr_db (the smaller), dB: 20*log10(1/|H|) of the
-        transfer from the rail to the load (signal source quiet, its resistance and the load in place)."""
+        transfer from the rail to the load (signal source quiet, its resistance and the load in place).
+
+        The ripple rides on each rail that is not the signal ground, relative to that ground: the
+        top rail of a frame grounded at its lowest (a positive NPN or negative PNP stage), the
+        lowest rail of one grounded at its top (a negative NPN or positive PNP stage: the
+        emitter side), each rail of a split supply in turn, the worse one counting. On a split
+        supply r_bottom returns to ground itself here, not through the span-divider equivalent."""
+        g = c.below_ground
+        if 0 < g < 1:
+            p = {**p, "r_top": np.full_like(p["r_top"], np.inf), "r_bottom": physics.parallel(p["r_top"], p["r_bottom"])}
         net = self._network(p, c, b.small_signal, True, r_source, True, supply=True)
         f = np.array([[c.ripple_frequency], [math.sqrt(c.band[0] * c.band[1])]])
-        v = net.at(2j * np.pi * f).solve({"vcc": np.full(1, physics.G_SHORT)}, ["out", "vcc"])
-        rejection = -20.0 * np.log10(np.abs(v["out"] / v["vcc"]))
-        return {"psrr_ripple_db": rejection[0], "psrr_mid_db": rejection[1], "psrr_db": np.minimum(*rejection)}
+        at = net.at(2j * np.pi * f)
+        ground = net.ground
+        drives = ([({"vcc": np.full(1, physics.G_SHORT)}, "vcc")] if g < 1 else []) + \
+                 ([({"vcc": np.full(1, -physics.G_SHORT), **({ground: np.full(1, -physics.G_SHORT)} if ground != "vcc"
+                                                            else {})}, None)] if g > 0 else [])
+        rejection = None
+        for drive, rail in drives:
+            v = at.solve(drive, ["out", "vcc"] + ([ground] if ground and ground != "vcc" else []))
+            v_ground = v[ground] if ground else 0.0
+            ripple = (v[rail] if rail else 0.0) - v_ground
+            r = -20.0 * np.log10(np.abs((v["out"] - v_ground) / ripple))
+            rejection = r if rejection is None else np.minimum(rejection, r)
+        assert rejection is not None  # every arrangement has a rail that is not ground
+        return {"psrr_ripple_db": rejection[0], "psrr_mid_db": rejection[1],
+                "psrr_db": np.minimum(rejection[0], rejection[1])}
 
     def psrr(self, parts: Parts, device: AnyDevice, conditions: Conditions,
              hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
         """Supply rejection alone (dB): psrr_ripple_db, psrr_mid_db, psrr_db per candidate (see
         :meth:`evaluate`); the bias and one small network solve, for sizing c_decouple."""
-        p, b, _ = self._checked_solve(parts, device, conditions, hfe)
+        p, b, _, frame = self._checked_solve(parts, device, conditions, hfe)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            return self._psrr(p, conditions, b, _source_resistance(b, conditions))
+            return self._psrr(p, frame, b, _source_resistance(b, frame))
 
     @staticmethod
     def _response(net: physics.Network, r_source: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
@@ -487,32 +609,33 @@ class StageModel(Topology):
     def frequency_response(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                            freqs: np.ndarray, hfe: np.ndarray | float | None = None) -> np.ndarray:
         """Complex gain source->load (V/V) at freqs (Hz), shape (candidates, freqs), by full nodal solve."""
-        p, b, _ = self._checked_solve(parts, device, conditions, hfe)
-        rs = _source_resistance(b, conditions)
+        p, b, _, frame = self._checked_solve(parts, device, conditions, hfe)
+        rs = _source_resistance(b, frame)
         f = np.asarray(freqs, dtype=float).reshape(-1, 1)
-        h = self._response(self._network(p, conditions, b.small_signal, True, rs, True), rs)(f)
+        h = self._response(self._network(p, frame, b.small_signal, True, rs, True), rs)(f)
         return np.ascontiguousarray(np.broadcast_to(h, (f.shape[0], rs.size)).T)
 
     def midband_network(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                         hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
         """gain (V/V), input_impedance and output_impedance (|Z|, ohm) by full nodal solve at the
         band's geometric-mean frequency (a check of the closed forms)."""
-        p, b, _ = self._checked_solve(parts, device, conditions, hfe)
-        rs = _source_resistance(b, conditions)
-        s = np.array(2j * np.pi * math.sqrt(conditions.band[0] * conditions.band[1]))
+        p, b, _, c = self._checked_solve(parts, device, conditions, hfe)
+        rs = _source_resistance(b, c)
+        s = np.array(2j * np.pi * math.sqrt(c.band[0] * c.band[1]))
         ss, one = b.small_signal, np.ones_like(rs)
-        h = self._network(p, conditions, ss, True, rs, True).at(s).solve({"in": 1.0 / rs}, ["out"])["out"]
-        z_in = self._network(p, conditions, ss, True, None, True).at(s).solve({"in": one}, ["in"])["in"]
-        z_out = self._network(p, conditions, ss, True, rs, False).at(s).solve({"out": one}, ["out"])["out"]
+        h = self._network(p, c, ss, True, rs, True).at(s).solve({"in": 1.0 / rs}, ["out"])["out"]
+        z_in = self._network(p, c, ss, True, None, True).at(s).solve({"in": one}, ["in"])["in"]
+        z_out = self._network(p, c, ss, True, rs, False).at(s).solve({"out": one}, ["out"])["out"]
         return {"gain": np.copysign(np.abs(h), h.real), "input_impedance": np.abs(z_in),
                 "output_impedance": np.abs(z_out)}
 
     def part_count(self, p: Parts) -> np.ndarray:
-        """Resistors and capacitors present (optional ones only when non-zero) plus transistors."""
+        """Resistors and capacitors present (value non-zero: an optional part, or r_top on a split
+        supply, may be left out) plus transistors."""
         n = next(iter(p.values())).size
         count = np.full(n, float(self.transistors))
         for r in self.resistors + self.capacitors + self.supply_parts:
-            count += (p[r] > 0) if r in self.optional_parts or r in self.supply_parts else 1.0
+            count += p[r] > 0
         return count
 
     @abstractmethod
@@ -564,17 +687,19 @@ class StageModel(Topology):
                         hfe: np.ndarray | float | None = None) -> np.ndarray:
         """Load voltage (V, change from quiescent) at each source voltage of ``source_v`` (V, a
         1-D sweep), per candidate, shape (candidates, samples): the static transfer curve behind
-        the quasi-static THD, clipping included (capacitors hold their DC)."""
-        p, b, nvt = self._checked_solve(parts, device, conditions, hfe)
-        vs = np.asarray(source_v, dtype=float).reshape(1, -1)
+        the quasi-static THD, clipping included (capacitors hold their DC). A PNP stage's curve
+        is the mirror image of its frame's: both voltages negated."""
+        p, b, nvt, frame = self._checked_solve(parts, device, conditions, hfe)
+        sign = -1.0 if device.polarity == "pnp" else 1.0
+        vs = sign * np.asarray(source_v, dtype=float).reshape(1, -1)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            return self._static_fn(p, device, conditions, b, nvt, b.beta)(vs) + 0.0 * b.beta[:, None]
+            return sign * self._static_fn(p, device, frame, b, nvt, b.beta)(vs) + 0.0 * b.beta[:, None]
 
     def thd_quasistatic(self, parts: Parts, device: AnyDevice, conditions: Conditions,
                         hfe: np.ndarray | float | None = None, samples: int = 256) -> np.ndarray:
         """THD (fraction) at conditions.signal_vpp at the load, by static solve + FFT (per candidate)."""
-        p, b, nvt = self._checked_solve(parts, device, conditions, hfe)
-        rs = _source_resistance(b, conditions)
+        p, b, nvt, frame = self._checked_solve(parts, device, conditions, hfe)
+        rs = _source_resistance(b, frame)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            gain = self._midband(p, conditions, b, rs)["gain"]
-            return self._thd_static(p, device, conditions, b, nvt, b.beta, gain, samples)
+            gain = self._midband(p, frame, b, rs)["gain"]
+            return self._thd_static(p, device, frame, b, nvt, b.beta, gain, samples)

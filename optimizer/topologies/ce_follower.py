@@ -22,7 +22,8 @@ BIAS_PASSES = 3  # q1/q2 alternations; they couple only through q2's base curren
 class CEFollower(StageModel):
     name = "ce_follower"
     inverting = True
-    polarities = ("npn",)
+    polarities = ("npn", "pnp")
+    supplies = ("positive", "negative", "split")
     description = "divider-biased common emitter direct-coupled into an emitter follower"
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter", "r_follower")
     capacitors = ("c_in", "c_out")

@@ -36,7 +36,8 @@ def divider_hand_design(req: HandRequirements, stage_load: float) -> dict[str, f
 class DividerCE(StageModel):
     name = "divider_ce"
     inverting = True
-    polarities = ("npn",)
+    polarities = ("npn", "pnp")
+    supplies = ("positive", "negative", "split")
     description = "common emitter, voltage-divider bias, emitter resistor unbypassed"
     order = 10
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter")
@@ -165,22 +166,23 @@ class DividerCE(StageModel):
 
 
 def add_load(net: physics.Network, c: Conditions, ac: bool, load: bool) -> None:
-    """Load resistance (with its noise) and, in the AC network, load capacitance at node 'out'."""
+    """Load resistance (with its noise) and, in the AC network, load capacitance from node 'out'
+    to the signal ground."""
     if load and np.isfinite(c.load_impedance):
-        net.resistor("out", None, np.asarray(c.load_impedance, dtype=float))
+        net.resistor("out", net.ground, np.asarray(c.load_impedance, dtype=float))
     if load and c.load_capacitance > 0:
-        net.capacitor("out", None, np.asarray(c.load_capacitance, dtype=float), ac, False)
+        net.capacitor("out", net.ground, np.asarray(c.load_capacitance, dtype=float), ac, False)
 
 
 def add_divider_stage(net: physics.Network, p: Parts, ss: list[dict[str, np.ndarray]], ac: bool,
                       r_source: np.ndarray | None, rail: str | None) -> None:
     """The source, c_in, the bias divider, q1 and r_collector (r_top and r_collector return to
-    ``rail``, None = AC ground); the emitter side is the caller's."""
+    ``rail``, None = AC ground, r_bottom to the network's bias ground); the emitter side is the caller's."""
     if r_source is not None:
-        net.admittance("in", None, 1.0 / r_source)
+        net.admittance("in", net.ground, 1.0 / r_source)
     net.capacitor("in", "base", p["c_in"], ac, True)
     net.resistor("base", rail, p["r_top"])
-    net.resistor("base", None, p["r_bottom"])
+    net.resistor("base", net.bias_ground, p["r_bottom"])
     net.resistor("base", "bint", ss[0]["rb"])
     net.transistor("bint", "collector", "emitter", ss[0], ac)
     net.resistor("collector", rail, p["r_collector"])

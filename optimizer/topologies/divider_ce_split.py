@@ -23,7 +23,8 @@ from optimizer.topologies.divider_ce import DividerCE
 class DividerCESplit(DividerCE):
     name = "divider_ce_split"
     inverting = True
-    polarities = ("npn",)
+    polarities = ("npn", "pnp")
+    supplies = ("positive", "negative", "split")
     description = "common emitter, divider bias, emitter resistor split with the lower part bypassed"
     order = 20
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter_dc")

@@ -19,7 +19,8 @@ from optimizer.topologies.divider_ce import add_load
 class FeedbackCE(StageModel):
     name = "feedback_ce"
     inverting = True
-    polarities = ("npn",)
+    polarities = ("npn", "pnp")
+    supplies = ("positive", "negative")  # biased from its own collector: no ground-referenced base
     description = "common emitter biased by a collector-to-base feedback resistor"
     resistors = ("r_feedback", "r_collector", "r_emitter")
     capacitors = ("c_in", "c_out")
@@ -89,7 +90,7 @@ class FeedbackCE(StageModel):
                  r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
         net, rail = self._new_network(("in", "base", "bint", "emitter", "collector", "out"), p, c, ac, supply)
         if r_source is not None:
-            net.admittance("in", None, 1.0 / r_source)
+            net.admittance("in", net.ground, 1.0 / r_source)
         net.capacitor("in", "base", p["c_in"], ac, True)
         net.resistor("base", "bint", ss[0]["rb"])
         net.resistor("collector", "base", p["r_feedback"])
