@@ -654,7 +654,8 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
         study.set_user_attr("status", "running")
         study.set_user_attr("started", time.time())
     batches = 0
-    known: dict[Design, dict] = {}  # designs this runner has evaluated (samplers revisit them)
+    # designs this runner has evaluated (samplers revisit them): (record as stored, violation, objectives)
+    known: dict[Design, tuple[str, float, list[float]]] = {}
     open_trials: list[optuna.Trial] = []  # asked and not yet told (failed if the run is interrupted)
     try:
         while True:
@@ -678,17 +679,18 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
                     designs = [space.suggest(t) for t in trials]
                 try:
                     fresh = list(dict.fromkeys(d for d in designs if d not in known))
-                    known.update(zip(fresh, evaluate_designs(space, fresh)))
+                    known.update((d, (json.dumps(r), r["total_violation"], r["objectives"]))
+                                 for d, r in zip(fresh, evaluate_designs(space, fresh)))
                     records = [known[d] for d in designs]
                 except Exception as error:
                     _fail_trials(study, open_trials)
                     fail_search(storage, search_id, f"evaluation failed: {type(error).__name__}: {error}")
                     raise
                 with batched_writes(storage):  # ... and one for their records and results
-                    for t, record in zip(trials, records):
-                        t.set_user_attr("record", json.dumps(record))
-                        t.set_constraint("violation", record["total_violation"])
-                        study.tell(t, record["objectives"])
+                    for t, (record, violation, objectives) in zip(trials, records):
+                        t.set_user_attr("record", record)
+                        t.set_constraint("violation", violation)
+                        study.tell(t, objectives)
                         open_trials.remove(t)
             sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
             batches += 1
