@@ -568,13 +568,19 @@ def neighbour_sampler(space: SearchSpace, seed_offset: int = 0) -> optuna.sample
                             seed=space.spec.search.seed + seed_offset)
 
 
+def _stored_attrs(study: optuna.Study) -> dict:
+    """The study's user attrs as the storage holds them, not copied (read them, do not change
+    them): Study.user_attrs deep-copies them, the finished ranking included, on every read."""
+    return study_storage(study).get_study_user_attrs(study_id(study))
+
+
 def _load(storage: BaseStorage, search_id: str) -> tuple[optuna.Study, Spec]:
     try:
         study = optuna.load_study(study_name=search_id, storage=storage, sampler=optuna.samplers.RandomSampler())
     except KeyError:
         raise InputError.single("search", search_id, "the id of an existing search",
                                 title="unknown search") from None
-    attrs = study.user_attrs
+    attrs = _stored_attrs(study)
     if not isinstance(attrs.get("spec"), dict) or not isinstance(attrs.get("budget"), int):
         raise InputError.single("search", search_id, "a search whose record was written in full "
                                 "(its creation was cut short; delete it)", title="incomplete search")
@@ -840,14 +846,17 @@ def search_status(storage: BaseStorage, search_id: str) -> dict:
         if error.title == "unknown search":
             raise
         return _unreadable_status(storage, search_id, str(error))
-    ranking = study.user_attrs.get("ranking")
+    ranking = _stored_attrs(study).get("ranking")
     if ranking:
         best = ranking["candidates"][0] if ranking["candidates"] else None
     else:  # the best so far, kept incrementally: the first of rank_records over every finished trial
-        top = _tally(study, best=True).best
-        record = trial_record(top) if top is not None else None
-        best = {**candidate_from_record(SearchSpace.build(spec), {**record, "trial": top.number}), "rank": 1} \
-            if record else None
+        counted = _tally(study, best=True)
+        top = counted.best
+        if top is not None and counted.memo.get("best", (None,))[0] != top.number:  # a new best: its record
+            record = trial_record(top)
+            counted.memo["best"] = (top.number, {**candidate_from_record(SearchSpace.build(spec), {
+                **record, "trial": top.number}), "rank": 1} if record else None)
+        best = counted.memo["best"][1] if top is not None else None
     return _status(study, spec, best)
 
 
@@ -863,7 +872,7 @@ def _unreadable_status(storage: BaseStorage, search_id: str, why: str) -> dict:
 
 
 def _status(study: optuna.Study, spec: Spec, best: dict | None) -> dict:
-    attrs = study.user_attrs
+    attrs = _stored_attrs(study)
     finished, running = _counts(study)
     started = attrs.get("started")
     elapsed = attrs.get("elapsed") if attrs.get("status") == "done" else (time.time() - started if started else 0.0)

@@ -213,12 +213,12 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
                 number += 1
                 yield number, offset, record
 
-    def read_logs(self, log_number_from: int) -> Iterator[dict]:
-        with self._batch_lock:
-            pending = list(self._pending) if self._held is not None else None
-            base = self._base
-        if pending is not None and log_number_from >= base:  # the file is read already: only the batch's own
-            for _, record in pending[log_number_from - base:]:
+    def read_logs(self, log_number_from: int) -> Generator[dict[str, Any], None, None]:
+        with self._batch_lock:  # a batch's records not read yet (all of them if the file is not read to its end)
+            held, base = self._held is not None, self._base
+            pending = self._pending[max(log_number_from - base, 0):] if held else []
+        if held and log_number_from >= base:  # the file is read already
+            for _, record in pending:
                 yield self._seen({**record})
             return
         number, offset = self._resume if self._resume[0] <= log_number_from else (0, 0)
@@ -228,7 +228,7 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
                     yield self._seen(record)
         finally:
             self._resume = (number, offset)
-        for _, record in pending or ():
+        for _, record in pending:
             yield self._seen({**record})
 
     def _seen(self, record: dict) -> dict:
@@ -399,6 +399,7 @@ class TrialTally:
     _low: int = 0  # every trial numbered below is finished and counted
     _counted: set[int] = field(default_factory=set)  # finished trials numbered _low and up, counted
     _best_key: tuple = ()
+    memo: dict = field(default_factory=dict)  # what a caller derives from the tally (e.g. the best's record)
 
     def update(self) -> "TrialTally":
         """Count the trials finished since the last update; returns itself."""
