@@ -176,8 +176,10 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
     nobody else can append meanwhile), and they are appended in one write when the batch
     closes. A search writes about eight records per trial (its creation, each parameter,
     the record, the constraint, the result); one open, lock and write each was most of a
-    journal search's time. A file left ending mid-line by a crash gets a newline first, so
-    the torn fragment never swallows the next record."""
+    journal search's time. Other threads of this process writing meanwhile join the open
+    batch (waiting for the lock instead would deadlock on Optuna's storage lock), so their
+    records too reach the file when it closes. A file left ending mid-line by a crash gets
+    a newline first, so the torn fragment never swallows the next record."""
 
     def __init__(self, file_path: str, lock_path: str | None = None) -> None:
         self._flock = _FlockLock(Path(lock_path or file_path + ".lock"))
