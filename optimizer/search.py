@@ -18,7 +18,6 @@ import json
 import math
 import time
 import uuid
-import warnings
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Callable
@@ -39,9 +38,20 @@ from optimizer.sampler import NeighbourSampler
 from optimizer.scoring import pareto_mask, unique_values_array
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
-from optimizer.storage import (TrialHeartbeat, TrialTally, batched_writes, claim_batch, open_storage,
-                               SYNC_EVERY, quiet_optuna, recover_stale_trials, study_id, study_storage, sync,
-                               tally)
+from optimizer.storage import (
+    SYNC_EVERY,
+    TrialHeartbeat,
+    TrialTally,
+    batched_writes,
+    claim_batch,
+    open_storage,
+    quiet_optuna,
+    recover_stale_trials,
+    study_id,
+    study_storage,
+    sync,
+    tally,
+)
 from optimizer.synthesis import hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import SUPPLY_PARTS

@@ -45,7 +45,6 @@ from typing import IO, Any, Callable, Container, Generator, Iterator
 
 import optuna
 from optuna.storages import BaseStorage
-from optuna.trial import TrialState
 
 # Every private Optuna name stagefit relies on is here and nowhere else, each with why the
 # public API does not suffice (checked against the versions pyproject.toml allows;
@@ -58,6 +57,7 @@ from optuna.storages._heartbeat import is_heartbeat_enabled
 # (released when its holder dies) instead of Optuna's lock files; the public
 # JournalFileBackend accepts a lock object but the base class to write one is private.
 from optuna.storages.journal._file import BaseJournalFileLock
+from optuna.trial import TrialState
 
 from optimizer.errors import InputError, StorageError
 
@@ -223,13 +223,14 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
             for _, record in pending:
                 yield self._seen({**record})
             return
-        number, offset = self._resume if self._resume[0] <= log_number_from else (0, 0)
+        position = self._resume if self._resume[0] <= log_number_from else (0, 0)  # (records read, byte offset)
         try:
-            for number, offset, record in self._scan(number, offset):
+            for number, offset, record in self._scan(*position):
+                position = (number, offset)
                 if number > log_number_from:
                     yield self._seen(record)
         finally:
-            self._resume = (number, offset)
+            self._resume = position
         for _, record in pending:
             yield self._seen({**record})
 
@@ -272,10 +273,10 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
                 return
             handle: IO[bytes] = open(self._flock.path, "ab")
             fcntl.flock(handle, fcntl.LOCK_EX)
-            number, offset = self._resume
-            for number, offset, _ in self._scan(number, offset):
-                pass
-            self._resume, self._base, self._held = (number, offset), number, handle
+            position = self._resume
+            for number, offset, _ in self._scan(*position):
+                position = (number, offset)
+            self._resume, self._base, self._held = position, position[0], handle
 
     def close_batch(self) -> None:
         """Append the batch's records in one write and release the write lock."""
@@ -366,11 +367,11 @@ def trials_from(storage: BaseStorage, study_id_: int, number: int) -> list[optun
     """The study's trials numbered ``number`` and up, in number order (not copied: do not
     change them), reading none before ``number`` where the storage allows it: Optuna's
     public API returns every trial of a study, which makes anything done per batch over
-    "the trials since last time" quadratic in the search. The journal's replayed trials
-    (its private ``_replay_result``, synced with the file first under the storage's
-    ``_thread_lock``) and the in-memory storage's trial lists (its private ``_studies``,
+    "the trials since last time" quadratic in the search. A journal's replayed trials (a
+    file or a Redis server: its private ``_replay_result``, synced with the backend first
+    under the storage's ``_thread_lock``) and the in-memory storage's trial lists (its private ``_studies``,
     under ``_lock``) are sliced; any other storage gives every trial and is sliced here."""
-    if isinstance(storage, _JournalStorage):
+    if isinstance(storage, optuna.storages.journal.JournalStorage):
         with storage._thread_lock:
             storage._sync_with_backend()
             replay = storage._replay_result

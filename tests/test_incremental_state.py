@@ -12,8 +12,16 @@ import pytest
 from optuna.trial import TrialState
 
 from optimizer.sampler import ELITE_SIZE
-from optimizer.search import (_rank_key, create_search, neighbour_sampler, rank_records, run_search,
-                              search_status, trial_record, with_search)
+from optimizer.search import (
+    _rank_key,
+    create_search,
+    neighbour_sampler,
+    rank_records,
+    run_search,
+    search_status,
+    trial_record,
+    with_search,
+)
 from optimizer.spec import load_spec
 from optimizer.storage import open_storage, study_id, tally
 
