@@ -47,9 +47,10 @@ typecheck: $(STAMP)
 #   benchmarks/results/ (long: the search and reliability ones take tens of minutes);
 # BENCH_MODE=quick: a smoke run for a CI-sized machine (2 cores, under 5 minutes), small sizes (a results file
 #   names the mode it was made in; the quick search benchmark prints only).
+# (bench_scale runs in the full list; its quick mode, 4k and 16k trials: make bench BENCH_MODE=quick BENCHES=bench_scale)
 # One alone: make bench BENCHES=bench_models
 BENCH_MODE ?= full
-BENCHES_full := bench_startup bench_models spice_agreement bench_search bench_robustness bench_workers bench_api \
+BENCHES_full := bench_startup bench_models spice_agreement bench_search bench_scale bench_robustness bench_workers bench_api \
     bench_pages bench_reliability
 BENCHES_quick := bench_startup bench_search bench_workers
 BENCHES ?= $(BENCHES_$(BENCH_MODE))

@@ -20,14 +20,12 @@ import logging
 import queue
 import threading
 import time
-from datetime import datetime
 from typing import Any, Callable
 
 from optimizer.errors import InputError
 
 log = logging.getLogger("api.jobs")
 RESUMABLE = ("queued", "running")
-STALE_AFTER = 120.0  # s: a trial asked this long ago and never told was lost with its process
 RECHECK = 5.0  # s: how soon a search held up by other runners' trials is looked at again
 
 
@@ -44,11 +42,11 @@ class JobPool:
     workers on the same storage run the trials)."""
 
     def __init__(self, storage: Any, *, workers: int = 1, run: bool = True,
-                 stale_after: float = STALE_AFTER, max_queue: int = 64, max_waiters: int = 4) -> None:
+                 stale_after: float | None = None, max_queue: int = 64, max_waiters: int = 4) -> None:
         self.storage = storage
         self.workers = workers
         self.run = run
-        self.stale_after = stale_after
+        self.stale_after = stale_after  # None: storage.STALE_AFTER
         self.max_queue = max_queue
         self._reserved = 0
         self._waiters = threading.BoundedSemaphore(max(1, max_waiters))
@@ -170,35 +168,20 @@ class JobPool:
 
     def _held_up(self, search_id: str) -> float | None:
         """After run_search returned: None if the search is over (or we are stopping);
-        otherwise it waits on trials still marked running. Those asked more than
-        ``stale_after`` s ago belong to a process that died (a killed server): they are
-        failed so the budget is met by new trials (0 s: retry now); younger ones may be
-        another runner's batch in flight (retry in a few seconds)."""
-        from optuna.trial import TrialState
-
-        from optimizer.storage import is_heartbeat_enabled, trial_id
+        otherwise it waits on trials still marked running. Those of a process that died are
+        failed (storage.recover_stale_trials, ``stale_after``) so the budget is met by new
+        trials (0 s: retry now); others may be another runner's batch in flight (retry in a
+        few seconds)."""
+        from optimizer.storage import STALE_AFTER, recover_stale_trials
 
         if self._stop.is_set():
             return None
         study_id = self.storage.get_study_id_from_name(search_id)
         if self.storage.get_study_user_attrs(study_id).get("status") != "running":
             return None
-        now = datetime.now()
-        freed, waiting = 0, 0
-        by_age = not is_heartbeat_enabled(self.storage)  # with heartbeats, run_search fails stale trials itself
-        for trial in self.storage.get_all_trials(study_id, deepcopy=False, states=(TrialState.RUNNING,)):
-            started = trial.datetime_start
-            if by_age and started is not None and (now - started).total_seconds() >= self.stale_after:
-                try:
-                    self.storage.set_trial_state_values(trial_id(trial), TrialState.FAIL)
-                    freed += 1
-                except RuntimeError:  # told meanwhile by its runner after all
-                    pass
-            else:
-                waiting += 1
+        freed, waiting = recover_stale_trials(self.storage, search_id,
+                                              STALE_AFTER if self.stale_after is None else self.stale_after)
         if freed:
-            log.warning("search %s: %d trial(s) left running by a stopped process were failed and "
-                        "will be asked again", search_id, freed)
             return 0.0
         return RECHECK if waiting else None
 

@@ -269,6 +269,7 @@ def _run_or_reuse(args: argparse.Namespace, spec):
         spec_search_id,
         with_search,
     )
+    from optimizer.storage import recover_stale_trials, stale_after_seconds
 
     spec = with_search(spec, trials=args.trials, seed=args.seed)
     storage = open_storage(args.storage)
@@ -302,6 +303,8 @@ def _run_or_reuse(args: argparse.Namespace, spec):
         status = search_status(storage, search_id)
         if status["status"] in ("done", "failed", "cancelled"):
             break
+        if recover_stale_trials(storage, search_id, stale_after_seconds())[0]:
+            continue  # trials left running by a run that died: failed, asked again now
         if time.monotonic() > deadline:
             raise StorageError(f"search {search_id} is busy: {status['trials_running']} of its trials are "
                                "held by another process; try again when it has finished")

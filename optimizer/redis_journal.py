@@ -112,7 +112,7 @@ class RunnerLiveness:
     server beside the journal (not in it: no journal record per beat). A runner's key
     ``<prefix>:alive:<runner>`` expires ``grace`` seconds after its last beat; a running trial
     whose holder's key has expired belonged to a runner that died, and is failed by the next
-    batch of any runner (``storage.fail_stale_trials``), so the search's budget asks a new one."""
+    batch of any runner (``storage.recover_stale_trials``), so the search's budget asks a new one."""
 
     def __init__(self, journal: RedisJournal, runner: str, grace: int) -> None:
         self._client = journal.client

@@ -41,7 +41,7 @@ from optuna.study import Study
 from optuna.trial import FrozenTrial, TrialState
 
 from optimizer.scoring import pareto_mask
-from optimizer.storage import trial_id
+from optimizer.storage import study_id, study_storage, trial_id, trials_from
 
 ELITE_SIZE = 16
 PARENT_FROM_FRONT = 0.5
@@ -74,13 +74,13 @@ class NeighbourSampler(BaseSampler):
         self._group_params = group_params
         self._plans: dict[int, dict[str, Any]] = {}
         self._seen: set[tuple] = set()
-        self._cache_count = -1
         self._next_refresh = 0
         self._elite: list[FrozenTrial] = []
         self._front: list[FrozenTrial] = []
         self._crowding: list[float] = []  # parent weights along the front: its gaps and ends first
         self._queue: list[dict[str, Any]] = []
-        self._counted: set[int] = set()  # finished trials already folded into the elite and front
+        self._low = 0  # every trial numbered below is finished and folded in (or not complete)
+        self._counted: set[int] = set()  # completed trials numbered _low and up, folded in already
         self._swept: set[tuple] = set()
 
     # ---- Optuna's interface --------------------------------------------------------------
@@ -114,14 +114,26 @@ class NeighbourSampler(BaseSampler):
         self._seen.add(self._key(trial.params))
 
     # ---- the elite and the front ---------------------------------------------------------
+    def _finished_since(self, study: Study) -> list[FrozenTrial]:
+        """The trials completed since the last look, in number order, reading only the
+        trials from the first one not yet finished (no rescan of the whole study)."""
+        new, settled = [], True
+        for t in trials_from(study_storage(study), study_id(study), self._low):
+            if t.state == TrialState.COMPLETE and trial_id(t) not in self._counted:
+                new.append(t)
+                self._counted.add(trial_id(t))
+            if settled and t.state.is_finished():
+                self._low = t.number + 1
+                self._counted.discard(trial_id(t))
+            else:
+                settled = False
+        return new
+
     def _refresh(self, study: Study) -> None:
         """Fold the trials finished since the last look into the elite and the front."""
-        done = study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
-        if len(done) == self._cache_count:
+        new = self._finished_since(study)
+        if not new:
             return
-        new = [t for t in done if trial_id(t) not in self._counted]
-        self._cache_count = len(done)
-        self._counted.update(trial_id(t) for t in new)
         for t in new:
             self._seen.add(self._key(t.params))
         self._elite = sorted(self._elite + new, key=self._rank_key)[:ELITE_SIZE]

@@ -18,7 +18,6 @@ import json
 import math
 import time
 import uuid
-import warnings
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Callable
@@ -39,7 +38,20 @@ from optimizer.sampler import NeighbourSampler
 from optimizer.scoring import pareto_mask, unique_values_array
 from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import Spec, parse_spec, spec_digest, spec_to_dict
-from optimizer.storage import TrialHeartbeat, claim_batch, fail_stale_trials, open_storage, quiet_optuna, sync
+from optimizer.storage import (
+    SYNC_EVERY,
+    TrialHeartbeat,
+    TrialTally,
+    batched_writes,
+    claim_batch,
+    open_storage,
+    quiet_optuna,
+    recover_stale_trials,
+    study_id,
+    study_storage,
+    sync,
+    tally,
+)
 from optimizer.synthesis import hand_requirements, on_split_supply, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import SUPPLY_PARTS
@@ -583,13 +595,19 @@ def neighbour_sampler(space: SearchSpace, seed_offset: int = 0) -> optuna.sample
                             seed=space.spec.search.seed + seed_offset)
 
 
+def _stored_attrs(study: optuna.Study) -> dict:
+    """The study's user attrs as the storage holds them, not copied (read them, do not change
+    them): Study.user_attrs deep-copies them, the finished ranking included, on every read."""
+    return study_storage(study).get_study_user_attrs(study_id(study))
+
+
 def _load(storage: BaseStorage, search_id: str) -> tuple[optuna.Study, Spec]:
     try:
         study = optuna.load_study(study_name=search_id, storage=storage, sampler=optuna.samplers.RandomSampler())
     except KeyError:
         raise InputError.single("search", search_id, "the id of an existing search",
                                 title="unknown search") from None
-    attrs = study.user_attrs
+    attrs = _stored_attrs(study)
     if not isinstance(attrs.get("spec"), dict) or not isinstance(attrs.get("budget"), int):
         raise InputError.single("search", search_id, "a search whose record was written in full "
                                 "(its creation was cut short; delete it)", title="incomplete search")
@@ -628,16 +646,20 @@ def create_search(spec: Spec, storage: BaseStorage, *, search_id: str | None = N
     return search_id
 
 
+def _same_design(a: optuna.trial.FrozenTrial, b: optuna.trial.FrozenTrial) -> bool:
+    return a.params == b.params
+
+
+def _tally(study: optuna.Study, *, best: bool = False) -> TrialTally:
+    """Finished (failed ones do not count: they are retried), running and feasible trials,
+    and with ``best`` the best so far (by _rank_key), read incrementally (storage.tally)."""
+    return tally(study_storage(study), study_id(study), *((_rank_key, _same_design) if best else ()))
+
+
 def _counts(study: optuna.Study) -> tuple[int, int]:
-    """(finished, running) trials; failed ones do not count (they are retried)."""
-    states = [t.state for t in study.get_trials(deepcopy=False)]
-    return states.count(TrialState.COMPLETE), states.count(TrialState.RUNNING)
-
-
-def _feasible_count(study: optuna.Study) -> int:
-    """Finished trials whose design meets every limit (stored constraint violation 0)."""
-    return sum(1 for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
-               if t.system_attrs.get("constraints:violation", 1.0) <= 0)
+    """(finished, running) trials."""
+    counted = _tally(study)
+    return counted.complete, counted.running
 
 
 def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[], bool] | None = None,
@@ -665,15 +687,14 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
         study.set_user_attr("status", "running")
         study.set_user_attr("started", time.time())
     batches = 0
-    known: dict[Design, dict] = {}  # designs this runner has evaluated (samplers revisit them)
+    # designs this runner has evaluated (samplers revisit them): (record as stored, violation, objectives)
+    known: dict[Design, tuple[str, float, list[float]]] = {}
     open_trials: list[optuna.Trial] = []  # asked and not yet told (failed if the run is interrupted)
     try:
         while True:
             if study.user_attrs.get("status") == "cancelled" or (should_stop and should_stop()):
                 return
-            with warnings.catch_warnings():  # Optuna marks the stale-trial check experimental
-                warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
-                fail_stale_trials(study, storage)  # a dead runner's trials: failed, queued again
+            recover_stale_trials(storage, study)  # a dead runner's trials (heartbeats): failed, queued again
             with TrialHeartbeat(storage) as heartbeat:
                 with claim_batch(storage, search_id):
                     finished, running = _counts(study)
@@ -683,30 +704,35 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
                     if wanted <= 0 or (max_batches is not None and batches >= max_batches):
                         break
                     open_trials = []
-                    for _ in range(wanted):
-                        open_trials.append(heartbeat.add(study.ask()))
+                    with batched_writes(storage):  # a journal file: one append for the batch's new trials
+                        for _ in range(wanted):
+                            open_trials.append(heartbeat.add(study.ask()))
                 trials = list(open_trials)
-                designs = [space.suggest(t) for t in trials]
+                with batched_writes(storage):  # ... one for their parameters
+                    designs = [space.suggest(t) for t in trials]
                 try:
                     fresh = list(dict.fromkeys(d for d in designs if d not in known))
-                    known.update(zip(fresh, evaluate_designs(space, fresh)))
+                    known.update((d, (json.dumps(r), r["total_violation"], r["objectives"]))
+                                 for d, r in zip(fresh, evaluate_designs(space, fresh)))
                     records = [known[d] for d in designs]
                 except Exception as error:
                     _fail_trials(study, open_trials)
                     fail_search(storage, search_id, f"evaluation failed: {type(error).__name__}: {error}")
                     raise
-                for t, record in zip(trials, records):
-                    t.set_user_attr("record", json.dumps(record))
-                    t.set_constraint("violation", record["total_violation"])
-                    study.tell(t, record["objectives"])
-                    open_trials.remove(t)
-            sync(storage)  # the batch is on disk
+                with batched_writes(storage):  # ... and one for their records and results
+                    for t, (record, violation, objectives) in zip(trials, records):
+                        t.set_user_attr("record", record)
+                        t.set_constraint("violation", violation)
+                        study.tell(t, objectives)
+                        open_trials.remove(t)
+            sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
             batches += 1
     except KeyboardInterrupt:  # Ctrl-C: the batch in hand is failed, the search stays resumable
         _fail_trials(study, open_trials)
         fail_search(storage, search_id, INTERRUPTED)
-        sync(storage)
         raise
+    finally:
+        sync(storage)  # everything this runner wrote is on disk
     if finish:
         _finish_when_done(study, space, budget)
 
@@ -847,12 +873,17 @@ def search_status(storage: BaseStorage, search_id: str) -> dict:
         if error.title == "unknown search":
             raise
         return _unreadable_status(storage, search_id, str(error))
-    ranking = study.user_attrs.get("ranking")
+    ranking = _stored_attrs(study).get("ranking")
     if ranking:
         best = ranking["candidates"][0] if ranking["candidates"] else None
-    else:
-        ranked = rank_records(_records(study))
-        best = {**candidate_from_record(SearchSpace.build(spec), ranked[0]), "rank": 1} if ranked else None
+    else:  # the best so far, kept incrementally: the first of rank_records over every finished trial
+        counted = _tally(study, best=True)
+        top = counted.best
+        if top is not None and counted.memo.get("best", (None,))[0] != top.number:  # a new best: its record
+            record = trial_record(top)
+            counted.memo["best"] = (top.number, {**candidate_from_record(SearchSpace.build(spec), {
+                **record, "trial": top.number}), "rank": 1} if record else None)
+        best = counted.memo["best"][1] if top is not None else None
     return _status(study, spec, best)
 
 
@@ -868,13 +899,13 @@ def _unreadable_status(storage: BaseStorage, search_id: str, why: str) -> dict:
 
 
 def _status(study: optuna.Study, spec: Spec, best: dict | None) -> dict:
-    attrs = study.user_attrs
+    attrs = _stored_attrs(study)
     finished, running = _counts(study)
     started = attrs.get("started")
     elapsed = attrs.get("elapsed") if attrs.get("status") == "done" else (time.time() - started if started else 0.0)
     return {"id": study.study_name, "name": spec.name, "status": attrs.get("status") or "failed",
             "reason": attrs.get("reason") if attrs.get("status") else "its creation was cut short",
-            "trials_done": finished, "trials_running": running, "trials_feasible": _feasible_count(study),
+            "trials_done": finished, "trials_running": running, "trials_feasible": _tally(study).feasible,
             "budget": int(attrs["budget"]),
             "elapsed": float(elapsed or 0.0), "created": attrs.get("created"), "best": best}
 

@@ -18,7 +18,8 @@ Crash safety in a shared (RDB) storage: every running trial carries a heartbeat
 ``STAGEFIT_HEARTBEAT_INTERVAL`` seconds, default 10); a running trial whose heartbeat is
 older than ``STAGEFIT_GRACE_PERIOD`` seconds (default 30) belonged to a worker that died,
 and the next batch of any worker fails it and queues it again (Optuna's heartbeat check and
-retry callback, at most 3 retries; :func:`fail_stale_trials`). :func:`claim_batch` makes "count the trials, ask the
+retry callback, at most 3 retries; :func:`recover_stale_trials`, which also fails a
+trial of a storage without heartbeats once it is ``STAGEFIT_STALE_AFTER`` seconds old). :func:`claim_batch` makes "count the trials, ask the
 next batch" one step across every process sharing a search, so a budget is met exactly.
 """
 from __future__ import annotations
@@ -28,17 +29,19 @@ import hashlib
 import inspect
 import json
 import logging
+import math
 import os
 import shutil
 import socket
 import threading
+import time
 import warnings
 import weakref
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import IO, Any, Generator, Iterator
+from typing import IO, Any, Callable, Container, Generator, Iterator
 
 import optuna
 from optuna.storages import BaseStorage
@@ -50,10 +53,11 @@ from optuna.storages import BaseStorage
 # heartbeats inside Study.optimize, and our batches (ask/tell) record their own.
 from optuna.storages._heartbeat import is_heartbeat_enabled
 
-# BaseJournalFileLock, get_lock_file: the journal's lock interface, so the journal can take a
-# kernel flock (released when its holder dies) instead of Optuna's lock files; the public
+# BaseJournalFileLock: the journal's lock interface, so the journal can take a kernel flock
+# (released when its holder dies) instead of Optuna's lock files; the public
 # JournalFileBackend accepts a lock object but the base class to write one is private.
-from optuna.storages.journal._file import BaseJournalFileLock, get_lock_file
+from optuna.storages.journal._file import BaseJournalFileLock
+from optuna.trial import TrialState
 
 from optimizer.errors import InputError, StorageError
 
@@ -79,6 +83,12 @@ def study_id(study: optuna.Study) -> int:
     return study._study_id
 
 
+def study_storage(study: optuna.Study) -> BaseStorage:
+    """The storage of a study (Optuna's private ``_storage``): a sampler is handed the study
+    only, and reading its trials incrementally (:func:`trials_from`) needs the storage."""
+    return study._storage
+
+
 def unwrapped(storage: BaseStorage) -> BaseStorage:
     """The storage under Optuna's cache wrapper (its private ``_backend``), else itself: the
     RDB storage's engine and heartbeat settings are only on the wrapped storage."""
@@ -95,6 +105,7 @@ _redis_backends: "weakref.WeakKeyDictionary[BaseStorage, object]" = weakref.Weak
 HEARTBEAT_INTERVAL = 10  # s between heartbeats of a running trial (STAGEFIT_HEARTBEAT_INTERVAL)
 GRACE_PERIOD = 30  # s without a heartbeat before a running trial is failed (STAGEFIT_GRACE_PERIOD)
 MAX_RETRY = 3  # times a failed (stale) trial is queued again
+STALE_AFTER = 120.0  # s: without heartbeats, a trial asked this long ago and never told was lost with its process
 log = logging.getLogger("stagefit.storage")
 
 
@@ -117,11 +128,11 @@ class _FlockLock(BaseJournalFileLock):
     holder dies, so a killed process never leaves the journal locked."""
 
     def __init__(self, path: Path) -> None:
-        self._path = path
+        self.path = path
         self._held = threading.local()  # each thread its own descriptor, so threads exclude each other too
 
     def acquire(self) -> bool:
-        handle: IO[bytes] = open(self._path, "ab")
+        handle: IO[bytes] = open(self.path, "ab")
         fcntl.flock(handle, fcntl.LOCK_EX)
         self._held.handle = handle
         return True
@@ -157,25 +168,36 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
     newline yet) is left for the next read, since a writer may be in the middle of it.
     Record numbers count the records read, as Optuna's replay expects.
 
-    Writing: each batch of records is one ``write`` under the lock, flushed to the operating
-    system at once (a killed process loses nothing it wrote) but forced to disk once per
-    search batch (:func:`sync`), not per record: a search writes about eight records per
-    trial, and an fsync each took most of a journal search's time here. A power cut can lose
-    the batch in hand. A file left ending mid-line by a crash gets a newline first, so the
-    torn fragment never swallows the next record."""
+    Writing: records are flushed to the operating system at once (a killed process loses
+    nothing it wrote) but forced to disk once per search batch (:func:`sync`), not per
+    record. Inside :meth:`open_batch` ... :meth:`close_batch` (:func:`batched_writes`) this
+    process holds the journal's write lock and keeps its records in memory: this process's
+    reads see them after the file's records (numbered as if appended, which they will be:
+    nobody else can append meanwhile), and they are appended in one write when the batch
+    closes. A search writes about eight records per trial (its creation, each parameter,
+    the record, the constraint, the result); one open, lock and write each was most of a
+    journal search's time. Other threads of this process writing meanwhile join the open
+    batch (waiting for the lock instead would deadlock on Optuna's storage lock), so their
+    records too reach the file when it closes. A file left ending mid-line by a crash gets
+    a newline first, so the torn fragment never swallows the next record."""
 
-    def __init__(self, file_path: str, lock_obj: BaseJournalFileLock | None = None) -> None:
-        super().__init__(file_path, lock_obj)
+    def __init__(self, file_path: str, lock_path: str | None = None) -> None:
+        self._flock = _FlockLock(Path(lock_path or file_path + ".lock"))
+        super().__init__(file_path, self._flock)
         self._path = file_path  # Optuna keeps it as the private _file_path
-        self._resume: dict[int, int] = {0: 0}  # records read -> byte offset just after the last of them
+        self._resume = (0, 0)  # (records read, byte offset just after the last of them)
         self._warned: set[int] = set()
-        self._read_lock = threading.Lock()
+        self._batch_lock = threading.Lock()  # the batch state, and plain appends against a batch opening
+        self._depth = 0  # batches open in this process (threads may overlap theirs)
+        self._held: IO[bytes] | None = None  # the write lock's descriptor while a batch is open
+        self._pending: list[tuple[bytes, dict]] = []  # the batch's records: (line, record)
+        self._base = 0  # records on file when the batch opened
+        self.waiting_made = 0  # records read that create a waiting (enqueued) trial
+        self._synced = -math.inf  # time.monotonic() of the last fsync
 
-    def read_logs(self, log_number_from: int) -> Generator[dict[str, Any], None, None]:
-        with self._read_lock:
-            offset = self._resume.get(log_number_from)
-        number = log_number_from if offset is not None else 0
-        offset = offset or 0
+    def _scan(self, number: int, offset: int) -> Iterator[tuple[int, int, dict]]:
+        """(record number, byte offset after it, record) of every readable record after
+        ``offset`` (where ``number`` records have been read), to the last complete line."""
         with open(self._path, "rb") as handle:
             handle.seek(offset)
             for line in handle:
@@ -189,29 +211,245 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
                         log.warning("journal %s: damaged record at byte offset %d (%d bytes) skipped; "
                                     "`stagefit storage repair %s` rewrites the file without it",
                                     self._path, start, len(line), self._path)
-                    with self._read_lock:
-                        self._resume[number] = offset
                     continue
                 number += 1
-                with self._read_lock:
-                    self._resume[number] = offset
+                yield number, offset, record
+
+    def read_logs(self, log_number_from: int) -> Generator[dict[str, Any], None, None]:
+        with self._batch_lock:  # a batch's records not read yet (all of them if the file is not read to its end)
+            held, base = self._held is not None, self._base
+            pending = self._pending[max(log_number_from - base, 0):] if held else []
+        if held and log_number_from >= base:  # the file is read already
+            for _, record in pending:
+                yield self._seen({**record})
+            return
+        position = self._resume if self._resume[0] <= log_number_from else (0, 0)  # (records read, byte offset)
+        try:
+            for number, offset, record in self._scan(*position):
+                position = (number, offset)
                 if number > log_number_from:
-                    yield record
+                    yield self._seen(record)
+        finally:
+            self._resume = position
+        for _, record in pending:
+            yield self._seen({**record})
+
+    def _seen(self, record: dict) -> dict:
+        """``record``, counted in :attr:`waiting_made` if it creates a waiting trial (the
+        journal's CREATE_TRIAL record with a WAITING state: an enqueued trial)."""
+        if record["op_code"] == _CREATE_TRIAL and record.get("state") == TrialState.WAITING:
+            self.waiting_made += 1
+        return record
+
+    def _write(self, lines: list[bytes]) -> int:
+        """Append ``lines`` in one write (under the write lock); the file's size after it."""
+        text = b"".join(lines)
+        with open(self._path, "a+b") as handle:
+            if handle.seek(0, os.SEEK_END) > 0:
+                handle.seek(-1, os.SEEK_END)
+                if handle.read(1) != b"\n":
+                    text = b"\n" + text  # close a line torn by a crash
+            handle.write(text)
+            return handle.tell()
 
     def append_logs(self, logs: list[dict]) -> None:
-        text = "".join(json.dumps(log, separators=(",", ":")) + "\n" for log in logs)
-        with get_lock_file(self._lock):
-            with open(self._path, "a+b") as handle:
-                if handle.seek(0, os.SEEK_END) > 0:
-                    handle.seek(-1, os.SEEK_END)
-                    if handle.read(1) != b"\n":
-                        text = "\n" + text  # close a line torn by a crash
-                handle.write(text.encode("utf-8"))
+        lines = [json.dumps(log, separators=(",", ":")).encode("utf-8") + b"\n" for log in logs]
+        with self._batch_lock:
+            if self._held is not None:  # read back as given, not parsed again: as Optuna's in-memory storage does
+                self._pending.extend(zip(lines, logs))
+                return
+            self._flock.acquire()
+            try:
+                self._write(lines)
+            finally:
+                self._flock.release()
 
-    def sync(self) -> None:
-        """Force the journal's records to disk."""
+    def open_batch(self) -> None:
+        """Hold the write lock and keep this process's records in memory until the last open
+        batch closes (:meth:`close_batch`)."""
+        with self._batch_lock:
+            self._depth += 1
+            if self._depth > 1:
+                return
+            handle: IO[bytes] = open(self._flock.path, "ab")
+            fcntl.flock(handle, fcntl.LOCK_EX)
+            position = self._resume
+            for number, offset, _ in self._scan(*position):
+                position = (number, offset)
+            self._resume, self._base, self._held = position, position[0], handle
+
+    def close_batch(self) -> None:
+        """Append the batch's records in one write and release the write lock."""
+        with self._batch_lock:
+            self._depth -= 1
+            if self._depth > 0:
+                return
+            handle, pending = self._held, self._pending
+            self._held, self._pending = None, []
+            try:
+                if pending:
+                    size = self._write([line for line, _ in pending])
+                    if self._resume[0] == self._base:  # this process read the file to its end: go on after the batch
+                        self._resume = (self._base + len(pending), size)
+            finally:
+                assert handle is not None
+                fcntl.flock(handle, fcntl.LOCK_UN)
+                handle.close()
+
+    def sync(self, every: float = 0.0) -> None:
+        """Force the journal's records to disk, unless it was done less than ``every`` s ago."""
+        if time.monotonic() - self._synced < every:
+            return
         with open(self._path, "ab") as handle:
             os.fsync(handle.fileno())
+        self._synced = time.monotonic()
+
+
+_CREATE_TRIAL = 4  # the journal's record code for a new trial (its file format)
+
+
+class _WaitingIndex:
+    """Optuna looks for waiting (enqueued) trials at every ask by reading every trial of the
+    study, which makes a search quadratic in its trials. Waiting trials are made only by
+    enqueueing (the seeds, retried trials), so a storage counts the ones it has seen made
+    (:meth:`_waiting_made`) and, once a look found none waiting, answers that look at once
+    until another is made."""
+
+    def _waiting_made(self, study_id: int) -> int:
+        raise NotImplementedError
+
+    def get_all_trials(self, study_id: int, deepcopy: bool = True,
+                       states: "Container[TrialState] | None" = None) -> list[optuna.trial.FrozenTrial]:
+        if states is None or tuple(states) != (TrialState.WAITING,):
+            return super().get_all_trials(study_id, deepcopy, states)  # type: ignore[misc]
+        made = self._waiting_made(study_id)
+        if self._none_waiting.get(study_id) == made:
+            return []
+        found = super().get_all_trials(study_id, deepcopy, states)  # type: ignore[misc]
+        if not found:
+            self._none_waiting[study_id] = made
+        return found
+
+
+class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
+    """Optuna's journal storage on :class:`_BatchSyncedJournal`, with the waiting-trial look
+    answered from the records read (another process's enqueued trials count too)."""
+
+    def __init__(self, backend: _BatchSyncedJournal) -> None:
+        self._journal = backend
+        self._none_waiting: dict[int, int] = {}
+        super().__init__(backend)
+
+    def _waiting_made(self, study_id: int) -> int:
+        self.get_study_directions(study_id)  # a read: the records other processes wrote meanwhile are read in
+        return self._journal.waiting_made
+
+
+class _MemoryStorage(_WaitingIndex, optuna.storages.InMemoryStorage):
+    """Optuna's in-memory storage with the waiting-trial look answered from the trials
+    enqueued here (nothing else can add to it)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self._none_waiting: dict[int, int] = {}
+        self._made = 0
+
+    def create_new_trial(self, study_id: int, template_trial: "optuna.trial.FrozenTrial | None" = None) -> int:
+        if template_trial is not None and template_trial.state == TrialState.WAITING:
+            self._made += 1
+        return super().create_new_trial(study_id, template_trial)
+
+    def _waiting_made(self, study_id: int) -> int:
+        return self._made
+
+
+def trials_from(storage: BaseStorage, study_id_: int, number: int) -> list[optuna.trial.FrozenTrial]:
+    """The study's trials numbered ``number`` and up, in number order (not copied: do not
+    change them), reading none before ``number`` where the storage allows it: Optuna's
+    public API returns every trial of a study, which makes anything done per batch over
+    "the trials since last time" quadratic in the search. A journal's replayed trials (a
+    file or a Redis server: its private ``_replay_result``, synced with the backend first
+    under the storage's ``_thread_lock``) and the in-memory storage's trial lists (its private ``_studies``,
+    under ``_lock``) are sliced; any other storage gives every trial and is sliced here."""
+    if isinstance(storage, optuna.storages.journal.JournalStorage):
+        with storage._thread_lock:
+            storage._sync_with_backend()
+            replay = storage._replay_result
+            return [replay._trials[t] for t in replay._study_id_to_trial_ids[study_id_][number:]]
+    if isinstance(storage, _MemoryStorage):
+        with storage._lock:
+            return storage._studies[study_id_].trials[number:]
+    return storage.get_all_trials(study_id_, deepcopy=False)[number:]
+
+
+@dataclass
+class TrialTally:
+    """Finished, running and feasible trials of one study and its best trial by ``key``
+    (smallest first), kept up to date by :meth:`update`, which reads only the trials from
+    the first one not yet finished (:func:`trials_from`): a batch's or a status poll's cost
+    does not grow with the search. ``feasible``: constraint ``violation`` at most 0. On
+    equal keys the earlier trial stays best, unless ``same(a, b)`` says the later one is
+    the same design (then the later one, as a ranking that collapses duplicates keeps)."""
+
+    storage: BaseStorage
+    study_id: int
+    key: "Callable[[optuna.trial.FrozenTrial], tuple] | None" = None
+    same: "Callable[[optuna.trial.FrozenTrial, optuna.trial.FrozenTrial], bool] | None" = None
+    complete: int = 0
+    running: int = 0
+    feasible: int = 0
+    best: "optuna.trial.FrozenTrial | None" = None
+    _low: int = 0  # every trial numbered below is finished and counted
+    _counted: set[int] = field(default_factory=set)  # finished trials numbered _low and up, counted
+    _best_key: tuple = ()
+    memo: dict = field(default_factory=dict)  # what a caller derives from the tally (e.g. the best's record)
+
+    def update(self) -> "TrialTally":
+        """Count the trials finished since the last update; returns itself."""
+        running, settled = 0, True
+        for t in trials_from(self.storage, self.study_id, self._low):
+            if t.state.is_finished():
+                if t.number not in self._counted:
+                    self._count(t)
+                if settled:
+                    self._low = t.number + 1
+                    self._counted.discard(t.number)
+                else:
+                    self._counted.add(t.number)
+            else:
+                settled = False
+                running += t.state == optuna.trial.TrialState.RUNNING
+        self.running = running
+        return self
+
+    def _count(self, trial: optuna.trial.FrozenTrial) -> None:
+        if trial.state != optuna.trial.TrialState.COMPLETE:
+            return
+        self.complete += 1
+        self.feasible += trial.system_attrs.get("constraints:violation", 1.0) <= 0
+        if self.key is None:
+            return
+        key = self.key(trial)
+        if self.best is None or key < self._best_key or (
+                key == self._best_key and self.same is not None and self.same(trial, self.best)):
+            self.best, self._best_key = trial, key
+
+
+_tallies: "weakref.WeakKeyDictionary[BaseStorage, dict[tuple, TrialTally]]" = weakref.WeakKeyDictionary()
+
+
+def tally(storage: BaseStorage, study_id_: int, key: "Callable | None" = None,
+          same: "Callable | None" = None) -> TrialTally:
+    """The up-to-date :class:`TrialTally` of a study, kept per storage in this process, so
+    repeated status polls read only what changed since the last one."""
+    with _lock:
+        tallies = _tallies.setdefault(storage, {})
+        kept = tallies.setdefault((study_id_, key, same), TrialTally(storage, study_id_, key, same))
+    with _tally_lock:
+        return kept.update()
+
+
+_tally_lock = threading.Lock()
 
 
 @dataclass
@@ -313,8 +551,8 @@ def repair_journal(path: str | Path) -> JournalReport:
 
 def _journal(path: Path) -> BaseStorage:
     path.parent.mkdir(parents=True, exist_ok=True)
-    backend = _BatchSyncedJournal(str(path), lock_obj=_FlockLock(path.with_name(path.name + ".lock")))
-    storage = optuna.storages.journal.JournalStorage(backend)
+    backend = _BatchSyncedJournal(str(path), str(path.with_name(path.name + ".lock")))
+    storage = _JournalStorage(backend)
     _claim_files[storage] = path.with_name(path.name + ".claim")
     _journal_backends[storage] = backend
     return storage
@@ -342,12 +580,35 @@ def _grpc(url: str) -> BaseStorage:
     return optuna.storages.GrpcStorageProxy(host=parts.hostname, port=port)
 
 
-def sync(storage: BaseStorage) -> None:
-    """Make what a runner wrote durable (a journal file's once-per-batch fsync; databases
-    commit every write themselves)."""
+@contextmanager
+def batched_writes(storage: BaseStorage) -> Iterator[None]:
+    """Within the block, a journal file's records are appended in one write when it ends
+    (the block holds the journal's write lock; reads in this process see the records at
+    once). Databases and memory write as before. Keep the block short: other processes
+    wait for the lock to write."""
+    backend = _journal_backends.get(storage)
+    if backend is None:
+        yield
+        return
+    backend.open_batch()
+    try:
+        yield
+    finally:
+        backend.close_batch()
+
+
+SYNC_EVERY = 1.0  # s: a journal file is forced to disk at most this often while a search runs
+
+
+def sync(storage: BaseStorage, every: float = 0.0) -> None:
+    """Make what a runner wrote durable: a journal file's fsync, skipped if one was done less
+    than ``every`` s ago (a search passes SYNC_EVERY between batches, so a power cut loses
+    at most about a second of trials, and 0 when it stops); databases commit every write
+    themselves. A killed process loses nothing either way: every record is written to the
+    operating system at once."""
     backend = _journal_backends.get(storage)
     if backend is not None:
-        backend.sync()
+        backend.sync(every)
 
 
 def _seconds(name: str, default: int) -> int:
@@ -381,30 +642,81 @@ def _rdb(url: str) -> BaseStorage:
                                       **{keyword: retry_cls(max_retry=MAX_RETRY)})
 
 
-def fail_stale_trials(study: optuna.Study, storage: BaseStorage) -> None:
-    """Fail the running trials of runners that died, and queue them again (Optuna's heartbeat
-    check and retry callback). A runner killed between asking a trial and recording its first
-    heartbeat leaves a running trial Optuna never finds stale; such a trial, older than the
-    grace period (by this machine's clock) and still without a heartbeat, is given one here,
-    so it goes stale and is retried one grace period later. On a journal on Redis, the running
-    trials whose holder's liveness key has expired are failed (the budget asks new ones in
-    their place). A no-op without heartbeats."""
+def recover_stale_trials(storage: BaseStorage, search: "str | optuna.Study",
+                         stale_after: float | None = None) -> tuple[int, int]:
+    """Fail the running trials of runners that died, so the budget is met by new trials; the
+    one place this is done (run_search between batches, and the CLI, the server's job pool
+    and the workers when a search waits on running trials). Returns (trials failed now,
+    trials still running).
+
+    On a journal on Redis, each runner's liveness is kept on the server (:class:`TrialHeartbeat`,
+    :class:`~optimizer.redis_journal.RunnerLiveness`): the running trials whose holder's
+    liveness key has expired are failed (``stale_after`` is not needed there). With
+    heartbeats (a shared RDB storage): Optuna's heartbeat check and retry callback fail
+    and queue again every trial whose heartbeat is older than the grace period. A runner
+    killed between asking a trial and recording its first heartbeat leaves a running trial
+    Optuna never finds stale; such a trial, older than the grace period (by this machine's
+    clock) and still without a heartbeat, is given one here, so it goes stale and is retried
+    one grace period later. Without heartbeats (a journal file, memory), a running trial
+    asked more than ``stale_after`` seconds ago belongs to a process that died (nothing is
+    failed when ``stale_after`` is None: between batches a slow runner cannot be told from a
+    dead one). ``search``: the study, or its name."""
+    study = search if isinstance(search, optuna.Study) else optuna.load_study(
+        study_name=search, storage=storage, sampler=optuna.samplers.RandomSampler())
     liveness = _liveness(storage)
     if liveness is not None:  # journal on Redis: runners' liveness kept on the server
-        running = study.get_trials(deepcopy=False, states=(optuna.trial.TrialState.RUNNING,))
+        running = _running(storage, study)
+        failed = 0
         for dead in liveness.dead([trial_id(t) for t in running]):
             try:
                 storage.set_trial_state_values(dead, optuna.trial.TrialState.FAIL)
+                failed += 1
             except (RuntimeError, ValueError):  # finished or failed by another runner meanwhile
                 pass
-        return
+        _log_failed(study, failed)
+        return failed, len(running) - failed
     rdb = unwrapped(storage)  # the RDB storage under Optuna's cache
-    if not (isinstance(rdb, optuna.storages.RDBStorage) and is_heartbeat_enabled(rdb)):
-        return
+    if isinstance(rdb, optuna.storages.RDBStorage) and is_heartbeat_enabled(rdb):
+        before = _running(storage, study)
+        _fail_unbeaten(study, rdb)
+        with warnings.catch_warnings():  # Optuna marks the stale-trial check experimental
+            warnings.simplefilter("ignore", optuna.exceptions.ExperimentalWarning)
+            optuna.storages.fail_stale_trials(study)
+        after = _running(storage, study)
+        return max(len(before) - len(after), 0), len(after)
+    if stale_after is None:
+        return 0, 0
+    now, failed, waiting = datetime.now(), 0, 0
+    for trial in _running(storage, study):
+        started = trial.datetime_start
+        if started is not None and (now - started).total_seconds() >= stale_after:
+            try:
+                storage.set_trial_state_values(trial_id(trial), optuna.trial.TrialState.FAIL)
+                failed += 1
+            except (RuntimeError, optuna.exceptions.UpdateFinishedTrialError):  # told meanwhile by its runner
+                pass
+        else:
+            waiting += 1
+    _log_failed(study, failed)
+    return failed, waiting
+
+
+def _log_failed(study: optuna.Study, failed: int) -> None:
+    if failed:
+        log.warning("search %s: %d trial(s) left running by a stopped process were failed and will be "
+                    "asked again", study.study_name, failed)
+
+
+def _running(storage: BaseStorage, study: optuna.Study) -> list[optuna.trial.FrozenTrial]:
+    return storage.get_all_trials(study_id(study), deepcopy=False, states=(optuna.trial.TrialState.RUNNING,))
+
+
+def _fail_unbeaten(study: optuna.Study, rdb: optuna.storages.RDBStorage) -> None:
+    """Give a first heartbeat to running trials older than the grace period that have none
+    (their runner died before recording it), so Optuna's check finds them stale."""
     from sqlalchemy.orm import Session
 
     models = _rdb_models()
-
     cutoff = datetime.now() - timedelta(seconds=rdb.grace_period)
     with Session(rdb.engine) as session:
         running = (session.query(models.TrialModel)
@@ -417,7 +729,19 @@ def fail_stale_trials(study: optuna.Study, storage: BaseStorage) -> None:
         unbeaten = [t.trial_id for t in running if t.datetime_start is not None and t.datetime_start < cutoff]
     for number in unbeaten:
         rdb.record_heartbeat(number)
-    optuna.storages.fail_stale_trials(study)
+
+
+def stale_after_seconds() -> float:
+    """Seconds after which a running trial without heartbeats is taken as lost with its
+    process (STAGEFIT_STALE_AFTER, default STALE_AFTER)."""
+    text = os.environ.get("STAGEFIT_STALE_AFTER", "").strip()
+    try:
+        value = float(text) if text else STALE_AFTER
+    except ValueError:
+        value = -1.0
+    if not 0 <= value <= 86400:
+        raise InputError.single("STAGEFIT_STALE_AFTER", text, "a number of seconds from 0 to 86400")
+    return value
 
 
 def _liveness(storage: BaseStorage):
@@ -540,7 +864,7 @@ class TrialHeartbeat:
 def open_storage(url: str | Path | None) -> BaseStorage:
     """The Optuna storage for ``url`` (see the module docstring); cached per URL."""
     if url is None:
-        return optuna.storages.InMemoryStorage()
+        return _MemoryStorage()
     text = str(url).strip()
     if not text:
         raise InputError.single("storage", text, "a journal file path, journal:///path, or a database URL "

@@ -39,6 +39,7 @@ def work_once(storage, *, should_stop: Callable[[], bool], seed_offset: int = 0)
     """One pass over the stored searches; returns the trials finished meanwhile in the
     searches this pass ran batches of (0 = idle: nothing this worker could do)."""
     from optimizer.search import list_searches, run_search
+    from optimizer.storage import recover_stale_trials, stale_after_seconds
 
     done = 0
     for status in list_searches(storage):
@@ -56,6 +57,8 @@ def work_once(storage, *, should_stop: Callable[[], bool], seed_offset: int = 0)
         if len(seen) > 1:  # at least one batch ran here
             log.info("search %s: %d of %d trials finished", status["id"], seen[-1], status["budget"])
             done += max(seen[-1] - seen[0], 1)
+        elif not should_stop():  # held up by running trials: those of a runner that died are asked again
+            done += recover_stale_trials(storage, status["id"], stale_after_seconds())[0]
     return done
 
 

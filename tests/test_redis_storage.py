@@ -144,3 +144,29 @@ def test_a_killed_worker_s_trials_are_failed_and_the_budget_still_met(redis_url,
     assert states.count(TrialState.COMPLETE) == spec.search.trials
     assert states.count(TrialState.FAIL) == 8 and TrialState.RUNNING not in states
     assert study.user_attrs["status"] == "done"
+
+
+def test_recovery_on_redis_goes_by_the_runners_liveness_not_by_age(redis_url):
+    """storage.recover_stale_trials, as the CLI, the server and the workers call it (with an
+    age, here 0 s): on Redis a live runner's trials are kept however old, and a dead runner's
+    (its liveness key lapsed, 1 s here) are failed; it returns (failed, still running)."""
+    import time
+
+    from optimizer.redis_journal import RedisJournal, RunnerLiveness
+    from optimizer.storage import TrialHeartbeat, recover_stale_trials, trial_id
+
+    url = _db(redis_url, 6)
+    storage = open_storage(url)
+    search_id = create_search(parse_spec(SPEC), storage)
+    study = optuna.load_study(study_name=search_id, storage=storage)
+    gone = RunnerLiveness(RedisJournal(url), "gone:1", 1)
+    with TrialHeartbeat(storage) as heartbeat:
+        live = [heartbeat.add(study.ask()).number for _ in range(2)]
+        dead = [study.ask() for _ in range(3)]
+        for trial in dead:
+            gone.hold(trial_id(trial))
+        time.sleep(1.5)
+        assert recover_stale_trials(storage, search_id, 0.0) == (3, 2)
+        states = [t.state for t in study.get_trials(deepcopy=False)]
+    assert [states[n] for n in live] == [TrialState.RUNNING] * 2
+    assert [states[t.number] for t in dead] == [TrialState.FAIL] * 3

@@ -40,4 +40,8 @@ def test_the_private_names_storage_uses_exist() -> None:
     assert memory.get_trial(storage.trial_id(trial)).number == trial.number
     assert storage.is_heartbeat_enabled(memory) is False  # in memory: no heartbeat
     assert hasattr(storage._rdb_models(), "TrialModel")
-    assert callable(storage.get_lock_file) and isinstance(storage.BaseJournalFileLock, type)
+    assert isinstance(storage.BaseJournalFileLock, type)
+    # the journal's record code for a new trial, which the waiting-trial count reads (its file format)
+    from optuna.storages.journal._storage import JournalOperation
+
+    assert storage._CREATE_TRIAL == JournalOperation.CREATE_TRIAL

@@ -34,7 +34,7 @@ from optuna.trial import TrialState
 
 from optimizer.search import create_search, load_search, open_storage, run_search
 from optimizer.spec import parse_spec, spec_to_dict
-from optimizer.storage import fail_stale_trials
+from optimizer.storage import recover_stale_trials
 from pg_fixture import stop_processes
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -214,11 +214,11 @@ def test_a_trial_whose_heartbeat_stopped_or_never_started_is_failed_and_queued_a
     x = {"x": optuna.distributions.FloatDistribution(0, 1)}
     beaten, unbeaten = study.ask(x), study.ask(x)
     storage.record_heartbeat(beaten._trial_id)  # `unbeaten`: its runner died before the first beat
-    fail_stale_trials(study, storage)
+    recover_stale_trials(storage, study)
     assert {t.state for t in study.get_trials(deepcopy=False)} == {TrialState.RUNNING}  # both still fresh
 
     def both_failed():
-        fail_stale_trials(study, storage)
+        recover_stale_trials(storage, study)
         return all(study.get_trials(deepcopy=False)[t.number].state == TrialState.FAIL for t in (beaten, unbeaten))
     _wait(both_failed, "both trials to be failed", timeout=3 * storage.grace_period + 30)
     retries = study.get_trials(deepcopy=False, states=(TrialState.WAITING,))

@@ -1,0 +1,207 @@
+"""Cost of a search as it grows: storage overhead, time per 1,000 trials, status poll,
+reopening, peak memory.
+
+    .venv/bin/python benchmarks/bench_scale.py            # full: 4k, 16k, 20k, 64k, 100k -> results/scale.md
+    .venv/bin/python benchmarks/bench_scale.py --quick    # 4k and 16k, under 5 minutes -> results/scale-quick.md
+                                                          # (or BENCH_MODE=quick, as make bench passes it)
+
+Every search runs in a child process of its own (so its peak memory, VmHWM, is its own) on
+one spec, ``benchmarks/specs/bs_e96_feedback_line.yaml``, seed 0, the budget given:
+
+- journal against memory: the same 4,000-trial search (create + run, without the
+  finishing step) on the default storage (a journal file) and in memory, wall and CPU time;
+  target: journal at most 1.3x memory;
+- time per 1,000 trials: the search on a journal file at each size, wall and CPU
+  (this process's user + system time); target: flat within 20 % from the smallest size to
+  the largest;
+- status poll: ``search_status`` of the search, in the process that ran it (the tally is
+  kept there, as in the server), median of 20 polls; target under 10 ms at 64k trials;
+- reopening: a fresh process opens the journal and reads the search's status
+  (``open_storage`` + ``search_status``); target under 1 s at 20k trials;
+- peak memory of the child running the search; target under 300 MB at 64k trials.
+
+The machine is shared: wall times move with its load (printed with each run), CPU times
+much less; both are recorded.
+"""
+from __future__ import annotations
+
+import os
+
+if __name__ == "__main__":
+    for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ[_var] = "1"  # one core, as the targets are stated (before numpy is imported)
+
+import argparse  # noqa: E402
+import json  # noqa: E402
+import platform  # noqa: E402
+import statistics  # noqa: E402
+import subprocess  # noqa: E402
+import sys  # noqa: E402
+import tempfile  # noqa: E402
+import time  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+from run_facts import bench_mode  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[1]
+SPEC = ROOT / "benchmarks" / "specs" / "bs_e96_feedback_line.yaml"
+RESULTS = ROOT / "benchmarks" / "results"
+QUICK_SIZES = (4000, 16000)
+FULL_SIZES = (4000, 16000, 20000, 64000, 100000)
+TARGETS = {"journal_ratio": 1.3, "flat": 0.20, "poll_ms": 10.0, "poll_at": 64000, "reopen_s": 1.0,
+           "reopen_at": 20000, "peak_mb": 300.0, "peak_at": 64000}
+
+
+def _peak_mb() -> float:
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024
+    return float("nan")
+
+
+def _cpu() -> float:
+    times = os.times()
+    return times.user + times.system
+
+
+def child_search(trials: int, storage: str | None) -> dict:
+    """In a child: one search of ``trials`` (create + run, no finishing step), then status polls."""
+    from optimizer.search import create_search, run_search, search_status, with_search
+    from optimizer.spec import load_spec
+    from optimizer.storage import open_storage
+
+    spec = with_search(load_spec(SPEC), trials=trials, seed=0)
+    store = open_storage(storage)
+    wall, cpu = time.perf_counter(), _cpu()
+    search_id = create_search(spec, store, search_id="scale")
+    run_search(store, search_id, finish=False)
+    wall, cpu = time.perf_counter() - wall, _cpu() - cpu
+    polls = []
+    for _ in range(20):
+        start = time.perf_counter()
+        status = search_status(store, search_id)
+        polls.append(time.perf_counter() - start)
+    assert status["trials_done"] == trials, status
+    return {"trials": trials, "wall": wall, "cpu": cpu, "poll_ms": 1000 * statistics.median(polls[1:]),
+            "first_poll_ms": 1000 * polls[0], "peak_mb": _peak_mb()}
+
+
+def child_reopen(storage: str) -> dict:
+    """In a child: open the stored search and read its status, as a new CLI or server process does."""
+    start = time.perf_counter()
+    from optimizer.search import search_status
+    from optimizer.storage import open_storage
+
+    imported = time.perf_counter()
+    status = search_status(open_storage(storage), "scale")
+    done = time.perf_counter()
+    return {"reopen_s": done - imported, "import_s": imported - start, "trials": status["trials_done"]}
+
+
+def _child(*args: str) -> dict:
+    out = subprocess.run([sys.executable, __file__, *args], capture_output=True, text=True, cwd=ROOT, check=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])
+
+
+def _load() -> float:
+    return os.getloadavg()[0]
+
+
+def run(sizes: tuple[int, ...], out: Path, command: str) -> None:
+    rows, started = [], time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime())
+    with tempfile.TemporaryDirectory() as tmp:
+        load = _load()
+        memory = _child("--child", "4000")
+        journal_4k = _child("--child", "4000", "--storage", f"{tmp}/ratio.journal")
+        print(f"4,000 trials: memory {memory['wall']:.2f} s wall / {memory['cpu']:.2f} s CPU, journal "
+              f"{journal_4k['wall']:.2f} s / {journal_4k['cpu']:.2f} s (load {load:.1f})", flush=True)
+        for n in sizes:
+            load = _load()
+            path = f"{tmp}/s{n}.journal"
+            row = _child("--child", str(n), "--storage", path)
+            row.update(_child("--reopen", path), load=load, size_mb=Path(path).stat().st_size / 1e6)
+            rows.append(row)
+            print(f"{n:,} trials: {1000 * row['wall'] / n:.2f} s wall / {1000 * row['cpu'] / n:.2f} s CPU per 1,000, "
+                  f"poll {row['poll_ms']:.2f} ms, reopen {row['reopen_s']:.2f} s, peak {row['peak_mb']:.0f} MB "
+                  f"(load {load:.1f})", flush=True)
+            report(memory, journal_4k, rows, out, command, started, sizes)  # rewritten after each size
+
+
+def report(memory: dict, journal: dict, rows: list[dict], out: Path, command: str, started: str,
+           sizes: tuple[int, ...]) -> None:
+    import numpy
+    import optuna
+
+    def met(ok: bool | None) -> str:
+        return "n/a" if ok is None else ("met" if ok else "**missed**")
+
+    def at(n: int) -> dict | None:
+        return next((r for r in rows if r["trials"] == n), None)
+
+    per_k = {r["trials"]: (1000 * r["wall"] / r["trials"], 1000 * r["cpu"] / r["trials"]) for r in rows}
+    first, last = per_k[rows[0]["trials"]], per_k[rows[-1]["trials"]]
+    lines = [
+        "# Scale benchmark", "",
+        f"Machine: {platform.machine()}, {os.cpu_count()} cores shared with other developers' runs; "
+        f"Python {platform.python_version()}, numpy {numpy.__version__}, Optuna {optuna.__version__}; "
+        f"started {started}. Command: `{command}`. Spec `benchmarks/specs/{SPEC.name}`, seed 0, one process, "
+        "storage a journal file unless said. Wall times move with the machine's load (given per row); "
+        "CPU time (user + system of the searching process) much less.", "",
+        "## Time per 1,000 trials (journal file, search without its finishing step)", "",
+        "| trials | wall (s) | CPU (s) | wall per 1,000 (s) | CPU per 1,000 (s) | status poll (ms) | first poll (ms) "
+        "| reopen (s) | peak memory (MB) | journal (MB) | load |",
+        "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
+    for r in rows:
+        w, c = per_k[r["trials"]]
+        lines.append(f"| {r['trials']:,} | {r['wall']:.1f} | {r['cpu']:.1f} | {w:.2f} | {c:.2f} | {r['poll_ms']:.2f} | "
+                     f"{r['first_poll_ms']:.1f} | {r['reopen_s']:.2f} | {r['peak_mb']:.0f} | {r['size_mb']:.0f} | "
+                     f"{r['load']:.1f} |")
+    ratio_wall, ratio_cpu = journal["wall"] / memory["wall"], journal["cpu"] / memory["cpu"]
+    poll, reopen, peak = at(TARGETS["poll_at"]), at(TARGETS["reopen_at"]), at(TARGETS["peak_at"])
+    growth_cpu = last[1] / first[1] - 1
+    growth_wall = last[0] / first[0] - 1
+    lines += [
+        "", "## Targets", "",
+        "| target | measured | met |", "| --- | --- | --- |",
+        f"| 4,000-trial search on the journal file at most {TARGETS['journal_ratio']}x the in-memory search | "
+        f"CPU {ratio_cpu:.2f}x ({journal['cpu']:.2f} s / {memory['cpu']:.2f} s); wall {ratio_wall:.2f}x "
+        f"({journal['wall']:.2f} s / {memory['wall']:.2f} s) | {met(ratio_cpu <= TARGETS['journal_ratio'])} (CPU) |",
+        f"| time per 1,000 trials flat within {TARGETS['flat']:.0%}, {rows[0]['trials']:,} to {rows[-1]['trials']:,} "
+        f"trials | CPU {growth_cpu:+.0%}, wall {growth_wall:+.0%} | "
+        f"{met(abs(growth_cpu) <= TARGETS['flat'] if len(rows) > 1 else None)} (CPU) |",
+        f"| status poll under {TARGETS['poll_ms']:.0f} ms at {TARGETS['poll_at']:,} trials | "
+        + (f"{poll['poll_ms']:.2f} ms | {met(poll['poll_ms'] < TARGETS['poll_ms'])} |" if poll else "not run | n/a |"),
+        f"| reopening a stored {TARGETS['reopen_at']:,}-trial search under {TARGETS['reopen_s']:.0f} s | "
+        + (f"{reopen['reopen_s']:.2f} s (open + status, imports apart: {reopen['import_s']:.2f} s) | "
+           f"{met(reopen['reopen_s'] < TARGETS['reopen_s'])} |" if reopen else "not run | n/a |"),
+        f"| a {TARGETS['peak_at']:,}-trial search under {TARGETS['peak_mb']:.0f} MB peak | "
+        + (f"{peak['peak_mb']:.0f} MB | {met(peak['peak_mb'] < TARGETS['peak_mb'])} |" if peak else "not run | n/a |"),
+    ]
+    missing = [n for n in sizes if at(n) is None]
+    if missing:
+        lines += ["", f"Not run (yet): {', '.join(f'{n:,}' for n in missing)} trials."]
+    text = "\n".join(lines) + "\n"
+    out.write_text(text, encoding="utf-8")
+    print("\n" + text + f"\nwritten {out.relative_to(ROOT)}")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="4k and 16k trials only (under 5 minutes)")
+    parser.add_argument("--child", type=int, help=argparse.SUPPRESS)
+    parser.add_argument("--storage", help=argparse.SUPPRESS)
+    parser.add_argument("--reopen", help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.child:
+        print(json.dumps(child_search(args.child, args.storage)))
+    elif args.reopen:
+        print(json.dumps(child_reopen(args.reopen)))
+    else:
+        args.quick = args.quick or bench_mode() == "quick"
+        sizes = QUICK_SIZES if args.quick else FULL_SIZES
+        name = "scale-quick.md" if args.quick else "scale.md"
+        run(sizes, RESULTS / name, "python benchmarks/bench_scale.py" + (" --quick" if args.quick else ""))
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,122 @@
+"""Storage bookkeeping off the hot path: a journal file written in one append per batch
+stays the file Optuna itself reads, and the waiting-trial look answers from its count."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import optuna
+import pytest
+from optuna.trial import TrialState
+
+from optimizer import storage as storage_module
+from optimizer.search import create_search, run_search, with_search
+from optimizer.spec import load_spec
+from optimizer.storage import batched_writes, open_storage
+
+SPEC = Path(__file__).resolve().parents[1] / "benchmarks" / "specs" / "bs_e96_feedback_line.yaml"
+
+
+def _plain_optuna(path: Path) -> optuna.storages.BaseStorage:
+    """The journal as Optuna's own file backend reads it (the reference reader)."""
+    return optuna.storages.JournalStorage(optuna.storages.journal.JournalFileBackend(str(path)))
+
+
+def _trials(store: optuna.storages.BaseStorage, name: str) -> list[tuple]:
+    study = optuna.load_study(study_name=name, storage=store)
+    return [(t.number, t.state, t.params, t.values, t.user_attrs, t.system_attrs)
+            for t in study.get_trials(deepcopy=False)]
+
+
+def test_batched_search_reads_back_the_same_in_optuna_and_in_memory(tmp_path, monkeypatch) -> None:
+    spec = with_search(load_spec(SPEC), trials=300, seed=3)
+    writes: list[int] = []
+    original = storage_module._BatchSyncedJournal._write
+
+    def counted(self, lines):
+        writes.append(len(lines))
+        return original(self, lines)
+
+    monkeypatch.setattr(storage_module._BatchSyncedJournal, "_write", counted)
+    path = tmp_path / "s.journal"
+    journal = open_storage(path)
+    memory = open_storage(None)
+    ids = {}
+    for name, store in (("journal", journal), ("memory", memory)):
+        ids[name] = create_search(spec, store, search_id="same")
+        before = len(writes)
+        run_search(store, ids[name], finish=False)
+        if name == "journal":
+            batches = -(-spec.search.trials // spec.search.batch_size)
+            # per batch: the new trials, their parameters, their results, the status now and then
+            assert len(writes) - before <= 3 * batches + 4
+            assert max(writes) >= spec.search.batch_size  # a batch's records went in one write
+    # Optuna's own reader of the file (not ours) sees what this process saw
+    assert _trials(_plain_optuna(path), "same") == _trials(journal, "same")
+    # and the search on the journal made the very same trials as the one in memory
+    on_file = [(n, s, p, v, u) for n, s, p, v, u, _ in _trials(journal, "same")]
+    in_memory = [(n, s, p, v, u) for n, s, p, v, u, _ in _trials(memory, "same")]
+    assert on_file == in_memory and len(on_file) == spec.search.trials
+
+
+def test_records_in_a_batch_are_seen_here_at_once_and_on_file_when_it_ends(tmp_path) -> None:
+    path = tmp_path / "b.journal"
+    store = open_storage(path)
+    study = optuna.create_study(study_name="b", storage=store)
+    size = path.stat().st_size
+    with batched_writes(store):
+        trial = study.ask()
+        trial.suggest_int("x", 0, 9)
+        trial.set_user_attr("note", "held")
+        assert store.get_trial(storage_module.trial_id(trial)).user_attrs == {"note": "held"}
+        assert path.stat().st_size == size  # nothing written yet
+        other = _plain_optuna(path)  # another process sees the file as it was
+        assert optuna.load_study(study_name="b", storage=other).get_trials() == []
+    study.tell(trial, 1.0)
+    lines = path.read_bytes()[size:].splitlines()
+    assert [json.loads(line)["op_code"] for line in lines][:3] == [4, 5, 8]  # trial, parameter, attribute
+    seen = optuna.load_study(study_name="b", storage=_plain_optuna(path)).get_trials()
+    assert [(t.params, t.user_attrs, t.values) for t in seen] == [({"x": trial.params["x"]}, {"note": "held"}, [1.0])]
+
+
+def test_a_batch_cut_short_by_an_error_still_writes_what_this_process_saw(tmp_path) -> None:
+    path = tmp_path / "e.journal"
+    store = open_storage(path)
+    study = optuna.create_study(study_name="e", storage=store)
+    with pytest.raises(RuntimeError):
+        with batched_writes(store):
+            study.ask().set_user_attr("k", 1)
+            raise RuntimeError("evaluation failed")
+    assert [t.user_attrs for t in optuna.load_study(study_name="e", storage=_plain_optuna(path)).get_trials()] \
+        == [{"k": 1}]
+    study.ask()  # the lock was released: plain writes go on
+    assert len(optuna.load_study(study_name="e", storage=_plain_optuna(path)).get_trials()) == 2
+
+
+@pytest.mark.parametrize("kind", ["memory", "journal"])
+def test_waiting_trials_are_found_after_a_look_found_none(tmp_path, kind) -> None:
+    path = tmp_path / "w.journal"
+    store = open_storage(None if kind == "memory" else path)
+    study = optuna.create_study(study_name="w", storage=store)
+    study.enqueue_trial({"x": 1})
+    assert study.ask().suggest_int("x", 0, 9) == 1
+    study.ask()  # none waiting now: answered from the count
+    assert store.get_all_trials(storage_module.study_id(study), states=(TrialState.WAITING,)) == []
+    # enqueued here, or (journal) by another process writing the same file (its own storage object)
+    maker = study if kind == "memory" else optuna.load_study(study_name="w", storage=storage_module._journal(path))
+    maker.enqueue_trial({"x": 7})
+    assert study.ask().suggest_int("x", 0, 9) == 7
+
+
+def test_a_journal_written_by_plain_optuna_is_read_and_extended(tmp_path) -> None:
+    path = tmp_path / "old.journal"
+    old = optuna.create_study(study_name="old", storage=_plain_optuna(path))
+    old.enqueue_trial({"x": 4})
+    old.optimize(lambda t: t.suggest_int("x", 0, 9) ** 2, n_trials=3)
+    store = open_storage(path)
+    study = optuna.load_study(study_name="old", storage=store)
+    assert [t.value for t in study.get_trials()][0] == 16.0
+    with batched_writes(store):
+        trial = study.ask()
+        study.tell(trial, float(trial.suggest_int("x", 0, 9)))
+    assert len(optuna.load_study(study_name="old", storage=_plain_optuna(path)).get_trials()) == 4
