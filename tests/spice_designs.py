@@ -294,3 +294,22 @@ def polarity_designs() -> list[CheckDesign]:
             designs.append(CheckDesign(f"{topology}-split+{v_pos:g}/{v_neg:g}V-hfe{hfe}-{device.polarity}", topology,
                                        parts, device, conditions, hand_gain=hand_gain, hand_ic=ic))
     return designs
+
+
+# The stages written after the polarity layer (the followers and the feedback pair), each
+# through the same layer: the first two follower and pair designs of the agreement set, the one
+# built with a PNP device on a positive rail (mirrored), the other as NPN on a negative rail
+# (shifted), 12 in all. The followers also run on a split supply (tested in test_polarity.py).
+LATER_POLARITY_TOPOLOGIES = ("emitter_follower", "bootstrap_follower", "feedback_pair")
+
+
+def later_polarity_designs() -> list[CheckDesign]:
+    """Two designs per LATER_POLARITY_TOPOLOGIES stage and arrangement: PNP on a positive rail
+    and NPN on a negative rail."""
+    designs = []
+    for topology in LATER_POLARITY_TOPOLOGIES:
+        for d in [d for d in pair_designs() + follower_designs() if d.topology == topology][:2]:
+            pnp = replace(d.device, id=d.device.id.replace("npn", "pnp"), polarity="pnp")
+            designs.append(replace(d, name=f"{d.name}-pnp-positive", device=pnp))
+            designs.append(replace(d, name=f"{d.name}-npn-negative", conditions=replace(d.conditions, below_ground=1.0)))
+    return designs

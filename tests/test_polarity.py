@@ -18,6 +18,7 @@ from optimizer.errors import InputError
 from optimizer.netlist import spice_netlist
 from optimizer.search import SearchSpace
 from optimizer.spec import parse_spec
+from optimizer.synthesis import HandRequirements
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
 from optimizer.topologies.divider_ce import DividerCE
@@ -54,6 +55,39 @@ def test_mirror_and_shift_keep_every_metric_and_move_the_node_voltages() -> None
     # the ripple of a mirrored stage enters as before; a shifted one takes it on its emitter side
     assert _evaluate(PNP, 1.0).metrics["psrr_db"] == pytest.approx(npn.metrics["psrr_db"], rel=1e-9)
     assert _evaluate(NPN, 1.0).metrics["psrr_db"] < npn.metrics["psrr_db"] - 10.0
+
+
+@pytest.mark.parametrize("name, gain", [("emitter_follower", 1.0), ("bootstrap_follower", 1.0), ("feedback_pair", 5.0)])
+def test_followers_and_pair_mirror_and_shift_like_the_other_stages(name: str, gain: float) -> None:
+    # The same fact of the trade (a mirrored circuit with the other polarity is the same circuit)
+    # for the stages written after the layer: every metric but supply rejection (which rail
+    # carries the ripple changes with the shift) equal to 1e-9, every node voltage moved as
+    # true_volts says; ngspice checks PNP and negative-rail designs in test_spice_agreement.py.
+    topology = get_topology(name)
+    req = HandRequirements(supply=12.0, gain=gain, load_impedance=47e3, source_impedance=10e3, f_low=20.0,
+                           collector_current=1e-3, hfe=200)
+    parts = {k: np.array([v]) for k, v in topology.hand_design(req).items()}
+
+    def evaluate(device: Device, below: float):
+        c = Conditions(supply=12.0, source_impedance=10e3, load_impedance=47e3, load_capacitance=1e-9,
+                       below_ground=below)
+        return topology.evaluate(parts, device, c, thd_solve=True)
+    npn = evaluate(NPN, 0.0)
+    for device, below in ((PNP, 1.0), (NPN, 1.0), (PNP, 0.0)):
+        other = evaluate(device, below)
+        for key, value in npn.metrics.items():
+            if not key.startswith("psrr"):
+                assert other.metrics[key] == pytest.approx(value, rel=1e-9, nan_ok=True), (device.polarity, below, key)
+        sign = -1.0 if device.polarity == "pnp" else 1.0
+        shift = -12.0 * below if device.polarity == "npn" else 12.0 * (1.0 - below)
+        for key in (*topology.node_voltages.values(), "v_out_q"):
+            assert other.operating_point[key] == pytest.approx(sign * npn.operating_point[key] + shift, abs=1e-9)
+        for key in topology.vce_keys:
+            assert other.operating_point[key] == pytest.approx(npn.operating_point[key])  # a magnitude
+        assert other.ratings.keys() == npn.ratings.keys()
+        for key, value in npn.ratings.items():
+            assert other.ratings[key] == pytest.approx(value, rel=1e-9), (device.polarity, below, key)
+    assert evaluate(PNP, 1.0).metrics["psrr_db"] == pytest.approx(npn.metrics["psrr_db"], rel=1e-9)
 
 
 def test_split_supply_base_returns_to_ground_through_r_bottom_alone() -> None:

@@ -36,6 +36,7 @@ class BootstrapFollower(EmitterFollower):
                 ("r_bootstrap", "mid", "base"), ("c_bootstrap", "emitter", "mid"),
                 ("r_follower", "emitter", "0"), ("c_out", "emitter", "out"))
     node_voltages = {"base": "v_base", "mid": "v_mid", "emitter": "v_emitter"}
+    divider_tap = "v_mid"  # r_top and r_bottom meet at the mid node, r_bootstrap feeds the base from it
 
     def hand_design(self, req: HandRequirements) -> dict[str, float]:
         parts = follower_hand_design(req)
@@ -86,7 +87,7 @@ class BootstrapFollower(EmitterFollower):
 
     def _bias_network(self, net: physics.Network, p: Parts, ac: bool, rail: str | None) -> None:
         net.resistor("mid", rail, p["r_top"])
-        net.resistor("mid", None, p["r_bottom"])
+        net.resistor("mid", net.bias_ground, p["r_bottom"])
         net.resistor("mid", "base", p["r_bootstrap"])
         net.capacitor("emitter", "mid", p["c_bootstrap"], ac, True)
 

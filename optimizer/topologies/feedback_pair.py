@@ -147,8 +147,8 @@ def loop_phase_margin(t0: np.ndarray, r1: np.ndarray, c1: np.ndarray, r2: np.nda
 class FeedbackPair(StageModel):
     name = "feedback_pair"
     inverting = False
-    polarities = ("npn",)
-    supplies = ("positive",)
+    polarities = ("npn", "pnp")
+    supplies = ("positive", "negative")
     device_kind = "bjt"
     description = "series-shunt feedback pair: two direct-coupled common emitters, gain 1 + r_feedback/r_emitter"
     order = 50
