@@ -106,6 +106,25 @@ def test_split_supply_base_returns_to_ground_through_r_bottom_alone() -> None:
     assert err.value.problems[0].where == "parts.r_decouple"
 
 
+def test_followers_on_a_split_supply_return_the_divider_tap_to_ground() -> None:
+    # +-6 V, r_top absent: the tap (the base, or a bootstrap's mid node) sits Ib*r_bottom below
+    # ground (Kirchhoff: r_bottom carries the base current alone), r_bootstrap drops Ib again
+    c = Conditions(supply=12.0, source_impedance=1e6, load_impedance=100e3, below_ground=0.5)
+    base = {"r_bottom": 100e3, "r_follower": 27e3, "c_in": 100e-9, "c_out": 10e-6}
+    for name, extra in (("emitter_follower", {}), ("bootstrap_follower", {"r_bootstrap": 100e3, "c_bootstrap": 1e-6})):
+        parts = {k: np.array([v]) for k, v in {**base, **extra}.items()}
+        r = get_topology(name).evaluate(parts, NPN, c)
+        op = {k: float(v[0]) for k, v in r.operating_point.items()}
+        tap = op.get("v_mid", op["v_base"])
+        assert tap == pytest.approx(-op["ib"] * 100e3, rel=1e-6), name
+        assert op["v_base"] == pytest.approx(tap - op["ib"] * extra.get("r_bootstrap", 0.0), rel=1e-6), name
+        assert op["v_emitter"] == pytest.approx(-6.0 + op["ic"] * (1 + 1 / NPN.hfe_typ) * 27e3, rel=0.01), name
+        assert float(r.ratings["p_r_top"][0]) == 0.0
+        assert float(r.ratings["p_r_bottom"][0]) == pytest.approx(tap ** 2 / 100e3, rel=1e-6)
+    floors = get_topology("bootstrap_follower").capacitor_floors({"r_bottom": np.array([100e3])}, c, 20.0)
+    assert floors["c_bootstrap"] == pytest.approx(1.0 / (2 * np.pi * 20.0 * 100e3))
+
+
 def test_netlist_writes_pnp_models_and_true_rails() -> None:
     c = Conditions(supply=12.0, source_impedance=600.0, load_impedance=47e3, below_ground=1.0)
     model = NPN.spice_model()

@@ -7,7 +7,8 @@ r_decouple/c_decouple), and 16 emitter and bootstrapped followers (sources from 
 (bias, gain, impedances, usable swing by the 10 % rule, clip level, corners, white and
 flicker noise, noise figure at 290 K, supply rejection at 100 Hz and mid-band, THD) must
 agree within the tolerances in spice_agreement.TOLERANCES. The same checks run on PNP,
-negative-rail and split-supply versions of two stages (the block at the end). Skipped only
+negative-rail and split-supply versions of two stages (the block at the end), and on PNP,
+negative-rail and split-supply versions of the followers and the feedback pair. Skipped only
 where ngspice is absent.
 """
 from __future__ import annotations
@@ -59,7 +60,8 @@ def test_hand_method_is_further_off_than_the_model() -> None:
 # set (bias, gain, impedances, usable swing, clip level, corners, white and flicker noise, noise
 # figure, THD, and supply rejection with the ripple on each rail that carries it, the worse of
 # two on a split supply) must agree within spice_agreement.TOLERANCES. The operating point is
-# compared in true volts: node voltages with their sign.
+# compared in true volts: node voltages with their sign. The followers and the feedback pair
+# run the same checks on 20 designs of their own (spice_designs.later_polarity_designs).
 
 
 NODE_DESIGNS = POLARITY_DESIGNS[::6] + LATER_POLARITY_DESIGNS

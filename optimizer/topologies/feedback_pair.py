@@ -148,7 +148,7 @@ class FeedbackPair(StageModel):
     name = "feedback_pair"
     inverting = False
     polarities = ("npn", "pnp")
-    supplies = ("positive", "negative")
+    supplies = ("positive", "negative", "split")
     device_kind = "bjt"
     description = "series-shunt feedback pair: two direct-coupled common emitters, gain 1 + r_feedback/r_emitter"
     order = 50
