@@ -153,6 +153,4 @@ def on_split_supply(hand: dict[str, float], req: HandRequirements, ground: float
     if not value > 0:
         return None
     out[key] = value
-    if "r_feedback" in hand:  # a feedback pair keeps its gain ratio r_feedback/r_emitter
-        out["r_feedback"] = hand["r_feedback"] * value / hand["r_emitter"]
     return out

@@ -315,15 +315,7 @@ def later_polarity_designs() -> list[CheckDesign]:
             designs.append(replace(d, name=f"{d.name}-pnp-positive", device=pnp))
             designs.append(replace(d, name=f"{d.name}-npn-negative", conditions=replace(d.conditions, below_ground=1.0)))
             c = d.conditions
-            if topology == "feedback_pair":
-                # the pair on the split supply its divider's Thevenin source stands for: ground
-                # at the divider's open-circuit voltage, r_bottom = r_top || r_bottom (NPN, PNP)
-                r_t, r_b = d.parts["r_top"], d.parts["r_bottom"]
-                parts = {**{k: v for k, v in d.parts.items() if k != "r_top"}, "r_bottom": r_t * r_b / (r_t + r_b)}
-                for device in (d.device, pnp):
-                    below = r_b / (r_t + r_b) if device.polarity == "npn" else r_t / (r_t + r_b)
-                    designs.append(replace(d, name=f"{d.name}-{device.polarity}-split{below:.2f}", parts=parts,
-                                           device=device, conditions=replace(c, below_ground=below)))
+            if "split" not in get_topology(topology).supplies:
                 continue
             req = HandRequirements(supply=c.supply, gain=1.0, load_impedance=c.load_impedance,
                                    source_impedance=c.source_impedance, f_low=c.band[0],

@@ -8,7 +8,8 @@ r_decouple/c_decouple), and 16 emitter and bootstrapped followers (sources from 
 flicker noise, noise figure at 290 K, supply rejection at 100 Hz and mid-band, THD) must
 agree within the tolerances in spice_agreement.TOLERANCES. The same checks run on PNP,
 negative-rail and split-supply versions of two stages (the block at the end), and on PNP,
-negative-rail and split-supply versions of the followers and the feedback pair. Skipped only
+negative-rail (and for the followers split-supply) versions of the followers and the feedback
+pair. Skipped only
 where ngspice is absent.
 """
 from __future__ import annotations
