@@ -20,7 +20,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "tests"))
 
 from spice_agreement import agreement_rows  # noqa: E402
-from spice_designs import check_designs, jfet_check_designs, polarity_designs  # noqa: E402
+from spice_designs import check_designs, jfet_check_designs, later_polarity_designs, polarity_designs  # noqa: E402
 
 
 def _fmt(value: float | None) -> str:
@@ -29,8 +29,9 @@ def _fmt(value: float | None) -> str:
 
 def all_designs() -> list:
     """Every check design: the bipolar stages', the JFET stages', then the PNP, negative-rail and
-    split-supply versions of two bipolar stages."""
-    return check_designs() + jfet_check_designs() + polarity_designs()
+    split-supply versions of two bipolar stages, and the PNP, negative-rail (and the followers'
+    split-supply) versions of the followers and the feedback pair."""
+    return check_designs() + jfet_check_designs() + polarity_designs() + later_polarity_designs()
 
 
 def _row(r: dict) -> str:

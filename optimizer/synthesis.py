@@ -138,7 +138,8 @@ def on_split_supply(hand: dict[str, float], req: HandRequirements, ground: float
     split supply whose ground sits ``ground`` of the span above the stage's emitter-side rail:
     the base returns to ground through r_bottom alone, at the divider's Thevenin resistance
     (r_top dropped), and the DC emitter resistance (r_emitter_dc where part of it is bypassed,
-    else r_emitter) carries the hand current from ground less Vbe and Ib*r_bottom. None when
+    else r_emitter, a follower's r_follower) carries the
+    hand current from ground less Vbe and Ib*r_bottom. None when
     the ground sits too low for the stage's own emitter resistance."""
     if "r_top" not in hand:
         return None
@@ -147,7 +148,7 @@ def on_split_supply(hand: dict[str, float], req: HandRequirements, ground: float
     r_dc = (ground * req.supply - VBE_HAND - ic / req.hfe * r_bottom) / ic
     out = {k: v for k, v in hand.items() if k != "r_top"}
     out["r_bottom"] = r_bottom
-    key = "r_emitter_dc" if "r_emitter_dc" in hand else "r_emitter"
+    key = next(k for k in ("r_emitter_dc", "r_emitter", "r_follower") if k in hand)
     value = r_dc - (hand["r_emitter"] if key == "r_emitter_dc" else 0.0)
     if not value > 0:
         return None

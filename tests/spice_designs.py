@@ -13,7 +13,7 @@ import numpy as np
 
 from optimizer.devices import Device
 from optimizer.sizing import size_decoupling
-from optimizer.synthesis import HandRequirements, coupling_capacitor
+from optimizer.synthesis import HandRequirements, coupling_capacitor, on_split_supply
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
 
@@ -293,4 +293,36 @@ def polarity_designs() -> list[CheckDesign]:
                                     band=(20.0, 20000.0), temperature=27.0, below_ground=-v_neg / span)
             designs.append(CheckDesign(f"{topology}-split+{v_pos:g}/{v_neg:g}V-hfe{hfe}-{device.polarity}", topology,
                                        parts, device, conditions, hand_gain=hand_gain, hand_ic=ic))
+    return designs
+
+
+# The stages written after the polarity layer (the followers and the feedback pair), each
+# through the same layer: the first two follower and pair designs of the agreement set, the one
+# built with a PNP device on a positive rail (mirrored), the other as NPN on a negative rail
+# (shifted); the followers' same designs also on a split supply, moved there by the search's own
+# seed rule (synthesis.on_split_supply: r_top left out, r_follower carrying the hand current
+# from ground less Vbe), NPN with ground mid-span and PNP with ground a third of the span up.
+LATER_POLARITY_TOPOLOGIES = ("emitter_follower", "bootstrap_follower", "feedback_pair")
+
+
+def later_polarity_designs() -> list[CheckDesign]:
+    """Two designs per LATER_POLARITY_TOPOLOGIES stage and arrangement: PNP on a positive rail,
+    NPN on a negative rail and, for the followers, NPN and PNP on a split supply (20 in all)."""
+    designs = []
+    for topology in LATER_POLARITY_TOPOLOGIES:
+        for d in [d for d in pair_designs() + follower_designs() if d.topology == topology][:2]:
+            pnp = replace(d.device, id=d.device.id.replace("npn", "pnp"), polarity="pnp")
+            designs.append(replace(d, name=f"{d.name}-pnp-positive", device=pnp))
+            designs.append(replace(d, name=f"{d.name}-npn-negative", conditions=replace(d.conditions, below_ground=1.0)))
+            c = d.conditions
+            if "split" not in get_topology(topology).supplies:
+                continue
+            req = HandRequirements(supply=c.supply, gain=1.0, load_impedance=c.load_impedance,
+                                   source_impedance=c.source_impedance, f_low=c.band[0],
+                                   collector_current=d.hand_ic, hfe=d.device.hfe_typ)
+            for device, below in ((d.device, 0.5), (pnp, 1.0 / 3.0)):
+                parts = on_split_supply(d.parts, req, below if device.polarity == "npn" else 1.0 - below)
+                assert parts is not None
+                designs.append(replace(d, name=f"{d.name}-{device.polarity}-split{below:.2f}", parts=parts,
+                                       device=device, conditions=replace(c, below_ground=below)))
     return designs

@@ -18,6 +18,7 @@ from optimizer.errors import InputError
 from optimizer.netlist import spice_netlist
 from optimizer.search import SearchSpace
 from optimizer.spec import parse_spec
+from optimizer.synthesis import HandRequirements
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
 from optimizer.topologies.divider_ce import DividerCE
@@ -56,6 +57,39 @@ def test_mirror_and_shift_keep_every_metric_and_move_the_node_voltages() -> None
     assert _evaluate(NPN, 1.0).metrics["psrr_db"] < npn.metrics["psrr_db"] - 10.0
 
 
+@pytest.mark.parametrize("name, gain", [("emitter_follower", 1.0), ("bootstrap_follower", 1.0), ("feedback_pair", 5.0)])
+def test_followers_and_pair_mirror_and_shift_like_the_other_stages(name: str, gain: float) -> None:
+    # The same fact of the trade (a mirrored circuit with the other polarity is the same circuit)
+    # for the stages written after the layer: every metric but supply rejection (which rail
+    # carries the ripple changes with the shift) equal to 1e-9, every node voltage moved as
+    # true_volts says; ngspice checks PNP and negative-rail designs in test_spice_agreement.py.
+    topology = get_topology(name)
+    req = HandRequirements(supply=12.0, gain=gain, load_impedance=47e3, source_impedance=10e3, f_low=20.0,
+                           collector_current=1e-3, hfe=200)
+    parts = {k: np.array([v]) for k, v in topology.hand_design(req).items()}
+
+    def evaluate(device: Device, below: float):
+        c = Conditions(supply=12.0, source_impedance=10e3, load_impedance=47e3, load_capacitance=1e-9,
+                       below_ground=below)
+        return topology.evaluate(parts, device, c, thd_solve=True)
+    npn = evaluate(NPN, 0.0)
+    for device, below in ((PNP, 1.0), (NPN, 1.0), (PNP, 0.0)):
+        other = evaluate(device, below)
+        for key, value in npn.metrics.items():
+            if not key.startswith("psrr"):
+                assert other.metrics[key] == pytest.approx(value, rel=1e-9, nan_ok=True), (device.polarity, below, key)
+        sign = -1.0 if device.polarity == "pnp" else 1.0
+        shift = -12.0 * below if device.polarity == "npn" else 12.0 * (1.0 - below)
+        for key in (*topology.node_voltages.values(), "v_out_q"):
+            assert other.operating_point[key] == pytest.approx(sign * npn.operating_point[key] + shift, abs=1e-9)
+        for key in topology.vce_keys:
+            assert other.operating_point[key] == pytest.approx(npn.operating_point[key])  # a magnitude
+        assert other.ratings.keys() == npn.ratings.keys()
+        for key, value in npn.ratings.items():
+            assert other.ratings[key] == pytest.approx(value, rel=1e-9), (device.polarity, below, key)
+    assert evaluate(PNP, 1.0).metrics["psrr_db"] == pytest.approx(npn.metrics["psrr_db"], rel=1e-9)
+
+
 def test_split_supply_base_returns_to_ground_through_r_bottom_alone() -> None:
     split = {k: v for k, v in PARTS.items() if k != "r_top"} | {"r_bottom": 20e3, "r_emitter": 560.0}
     r = _evaluate(NPN, 0.2, split, supply=15.0)  # +12 V / -3 V
@@ -70,6 +104,25 @@ def test_split_supply_base_returns_to_ground_through_r_bottom_alone() -> None:
     with pytest.raises(InputError) as err:  # a decoupling RC is drawn for the rail that is not ground
         _evaluate(NPN, 1.0, {**PARTS, "r_decouple": 100.0, "c_decouple": 1e-4})
     assert err.value.problems[0].where == "parts.r_decouple"
+
+
+def test_followers_on_a_split_supply_return_the_divider_tap_to_ground() -> None:
+    # +-6 V, r_top absent: the tap (the base, or a bootstrap's mid node) sits Ib*r_bottom below
+    # ground (Kirchhoff: r_bottom carries the base current alone), r_bootstrap drops Ib again
+    c = Conditions(supply=12.0, source_impedance=1e6, load_impedance=100e3, below_ground=0.5)
+    base = {"r_bottom": 100e3, "r_follower": 27e3, "c_in": 100e-9, "c_out": 10e-6}
+    for name, extra in (("emitter_follower", {}), ("bootstrap_follower", {"r_bootstrap": 100e3, "c_bootstrap": 1e-6})):
+        parts = {k: np.array([v]) for k, v in {**base, **extra}.items()}
+        r = get_topology(name).evaluate(parts, NPN, c)
+        op = {k: float(v[0]) for k, v in r.operating_point.items()}
+        tap = op.get("v_mid", op["v_base"])
+        assert tap == pytest.approx(-op["ib"] * 100e3, rel=1e-6), name
+        assert op["v_base"] == pytest.approx(tap - op["ib"] * extra.get("r_bootstrap", 0.0), rel=1e-6), name
+        assert op["v_emitter"] == pytest.approx(-6.0 + op["ic"] * (1 + 1 / NPN.hfe_typ) * 27e3, rel=0.01), name
+        assert float(r.ratings["p_r_top"][0]) == 0.0
+        assert float(r.ratings["p_r_bottom"][0]) == pytest.approx(tap ** 2 / 100e3, rel=1e-6)
+    floors = get_topology("bootstrap_follower").capacitor_floors({"r_bottom": np.array([100e3])}, c, 20.0)
+    assert floors["c_bootstrap"] == pytest.approx(1.0 / (2 * np.pi * 20.0 * 100e3))
 
 
 def test_netlist_writes_pnp_models_and_true_rails() -> None:

@@ -7,7 +7,9 @@ r_decouple/c_decouple), and 16 emitter and bootstrapped followers (sources from 
 (bias, gain, impedances, usable swing by the 10 % rule, clip level, corners, white and
 flicker noise, noise figure at 290 K, supply rejection at 100 Hz and mid-band, THD) must
 agree within the tolerances in spice_agreement.TOLERANCES. The same checks run on PNP,
-negative-rail and split-supply versions of two stages (the block at the end). Skipped only
+negative-rail and split-supply versions of two stages (the block at the end), and on PNP,
+negative-rail (and for the followers split-supply) versions of the followers and the feedback
+pair. Skipped only
 where ngspice is absent.
 """
 from __future__ import annotations
@@ -19,7 +21,7 @@ import pytest
 
 from optimizer.topologies import get_topology
 from spice_agreement import agreement_rows, outside_tolerance
-from spice_designs import check_designs, polarity_designs
+from spice_designs import check_designs, later_polarity_designs, polarity_designs
 from spice_harness import spice_operating_point
 
 pytestmark = pytest.mark.skipif(shutil.which("ngspice") is None,
@@ -28,9 +30,14 @@ pytestmark = pytest.mark.skipif(shutil.which("ngspice") is None,
 DESIGNS = check_designs()
 #  The polarity layer: PNP, negative-rail and split-supply versions of two stages (see below).
 POLARITY_DESIGNS = polarity_designs()
+#  ... and of the followers and the feedback pair (PNP on a positive rail, NPN on a negative one).
+LATER_POLARITY_DESIGNS = later_polarity_designs()
 
 
-@pytest.mark.parametrize("design", DESIGNS + POLARITY_DESIGNS, ids=[d.name for d in DESIGNS + POLARITY_DESIGNS])
+ALL_DESIGNS = DESIGNS + POLARITY_DESIGNS + LATER_POLARITY_DESIGNS
+
+
+@pytest.mark.parametrize("design", ALL_DESIGNS, ids=[d.name for d in ALL_DESIGNS])
 def test_model_agrees_with_ngspice(design) -> None:
     outside = outside_tolerance(agreement_rows(design))
     assert not outside, "\n".join(outside)
@@ -54,10 +61,14 @@ def test_hand_method_is_further_off_than_the_model() -> None:
 # set (bias, gain, impedances, usable swing, clip level, corners, white and flicker noise, noise
 # figure, THD, and supply rejection with the ripple on each rail that carries it, the worse of
 # two on a split supply) must agree within spice_agreement.TOLERANCES. The operating point is
-# compared in true volts: node voltages with their sign.
+# compared in true volts: node voltages with their sign. The followers and the feedback pair
+# run the same checks on 20 designs of their own (spice_designs.later_polarity_designs).
 
 
-@pytest.mark.parametrize("design", POLARITY_DESIGNS[::6], ids=[d.name for d in POLARITY_DESIGNS[::6]])
+NODE_DESIGNS = POLARITY_DESIGNS[::6] + LATER_POLARITY_DESIGNS
+
+
+@pytest.mark.parametrize("design", NODE_DESIGNS, ids=[d.name for d in NODE_DESIGNS])
 def test_node_voltages_are_true_volts_with_their_sign(design) -> None:
     # ngspice's .op of the netlist with its true rails (ground at 0 V) against the model's
     # reported operating point: within 20 mV or 1 % of the span at base, collector and emitter
@@ -66,5 +77,5 @@ def test_node_voltages_are_true_volts_with_their_sign(design) -> None:
     simulated = spice_operating_point(design.topology, design.parts,
                                       {**design.device.spice_model(), "polarity": design.device.polarity},
                                       design.conditions)
-    for key in ("v_base", "v_collector", "v_emitter"):
+    for key in [k for k in ("v_base", "v_collector", "v_emitter") if k in simulated]:  # a follower has no collector
         assert float(op[key][0]) == pytest.approx(simulated[key], abs=max(0.02, 0.01 * design.conditions.supply)), key

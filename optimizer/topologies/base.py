@@ -289,6 +289,10 @@ class Topology(ABC):
 class StageModel(Topology):
     """Shared evaluation flow; a topology supplies its bias, mid-band, swing, network and ratings."""
 
+    # operating-point key of the bias divider's tap (V), where r_top and r_bottom meet: the base,
+    # or the node a bootstrapped bias network feeds the base from
+    divider_tap: ClassVar[str] = "v_base"
+
     # ---- hooks -------------------------------------------------------------------------
     @abstractmethod
     def _bias(self, p: Parts, device: AnyDevice, c: Conditions, beta: np.ndarray, nvt: float,
@@ -459,7 +463,7 @@ class StageModel(Topology):
             # split: no r_top; the base current comes from ground through r_bottom, and the supply
             # current is what the collector-side rail gives (the divider equivalent's share removed)
             b.op["supply_current"] = b.op["supply_current"] - b.op["i_divider"]
-            b.op["i_divider"] = (conditions.below_ground * conditions.supply - b.op["v_base"]) \
+            b.op["i_divider"] = (conditions.below_ground * conditions.supply - b.op[self.divider_tap]) \
                 * (1.0 / p["r_top"] + 1.0 / p["r_bottom"])
         b.beta = beta
         return p, b, nvt
@@ -535,7 +539,7 @@ class StageModel(Topology):
             ratings = self._ratings(p, conditions, b)
             if 0 < conditions.below_ground < 1:  # split: r_bottom alone, from the base to ground
                 ratings["p_r_top"] = np.zeros_like(gain)
-                ratings["p_r_bottom"] = (b.op["v_base"] - conditions.below_ground * conditions.supply) ** 2 \
+                ratings["p_r_bottom"] = (b.op[self.divider_tap] - conditions.below_ground * conditions.supply) ** 2 \
                     / parts["r_bottom"]
             ratings["p_r_decouple"] = b.op["supply_current"] ** 2 * p["r_decouple"]
             ratings["v_c_decouple"] = np.where(p["c_decouple"] > 0, conditions.rail_max, 0.0) + 0.0 * gain

@@ -36,6 +36,7 @@ class BootstrapFollower(EmitterFollower):
                 ("r_bootstrap", "mid", "base"), ("c_bootstrap", "emitter", "mid"),
                 ("r_follower", "emitter", "0"), ("c_out", "emitter", "out"))
     node_voltages = {"base": "v_base", "mid": "v_mid", "emitter": "v_emitter"}
+    divider_tap = "v_mid"  # r_top and r_bottom meet at the mid node, r_bootstrap feeds the base from it
 
     def hand_design(self, req: HandRequirements) -> dict[str, float]:
         parts = follower_hand_design(req)
@@ -52,7 +53,11 @@ class BootstrapFollower(EmitterFollower):
         # The bootstrap lifts the input impedance, which the low corner judges only where the
         # source is high: c_bootstrap keeps at least its own corner with the divider at the
         # band's low edge (common practice), so it still works there with any source.
-        r_tap = resistors["r_top"] * resistors["r_bottom"] / (resistors["r_top"] + resistors["r_bottom"])
+        # On a split supply r_top is absent (0 or left out): the tap is r_bottom alone.
+        r_top, r_bottom = np.broadcast_arrays(np.asarray(resistors.get("r_top", 0.0), dtype=float),
+                                              np.asarray(resistors["r_bottom"], dtype=float))
+        g_top = np.divide(1.0, r_top, out=np.zeros(r_top.shape), where=r_top > 0)
+        r_tap = 1.0 / (g_top + 1.0 / r_bottom)
         return {"c_bootstrap": coupling_capacitor(r_tap, f_low)}
 
     def _dc_ports(self, p: Parts, c: Conditions) -> Ports:
@@ -86,7 +91,7 @@ class BootstrapFollower(EmitterFollower):
 
     def _bias_network(self, net: physics.Network, p: Parts, ac: bool, rail: str | None) -> None:
         net.resistor("mid", rail, p["r_top"])
-        net.resistor("mid", None, p["r_bottom"])
+        net.resistor("mid", net.bias_ground, p["r_bottom"])
         net.resistor("mid", "base", p["r_bootstrap"])
         net.capacitor("emitter", "mid", p["c_bootstrap"], ac, True)
 

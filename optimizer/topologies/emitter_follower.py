@@ -103,8 +103,8 @@ def real_signed(h: np.ndarray) -> np.ndarray:
 class EmitterFollower(StageModel):
     name = "emitter_follower"
     inverting = False
-    polarities = ("npn",)
-    supplies = ("positive",)  # drawn NPN on a positive rail; the polarity layer mirrors or shifts it
+    polarities = ("npn", "pnp")
+    supplies = ("positive", "negative", "split")  # drawn NPN on a positive rail; the polarity layer mirrors or shifts it
     device_kind = "bjt"
     description = "divider-biased emitter follower: gain just under +1, low output impedance"
     order = 50
@@ -201,7 +201,7 @@ class EmitterFollower(StageModel):
                  r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
         net, rail = self._new_network(self._nodes(), p, c, ac, supply)
         if r_source is not None:
-            net.admittance("in", None, 1.0 / r_source)
+            net.admittance("in", net.ground, 1.0 / r_source)
         net.capacitor("in", "base", p["c_in"], ac, True)
         self._bias_network(net, p, ac, rail)
         add_follower(net, p, c, ss[0], ac, load, rail, ("base", "bint", "emitter"))
@@ -212,13 +212,12 @@ class EmitterFollower(StageModel):
 
     def _bias_network(self, net: physics.Network, p: Parts, ac: bool, rail: str | None) -> None:
         net.resistor("base", rail, p["r_top"])
-        net.resistor("base", None, p["r_bottom"])
+        net.resistor("base", net.bias_ground, p["r_bottom"])
 
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         op = b.op
         vcc = op["v_supply_local"]
-        v_div = op.get("v_mid", op["v_base"])  # the divider's tap
-        # a bias network feeding the base through r_bootstrap has its tap at the mid node
+        v_div = op[self.divider_tap]
         r = {"p_r_top": (vcc - v_div) ** 2 / p["r_top"], "p_r_bottom": v_div ** 2 / p["r_bottom"],
              "p_r_follower": op["v_emitter"] ** 2 / p["r_follower"], "p_q1": op["vce"] * op["ic"],
              "v_c_in": np.full_like(vcc, c.rail_max), "v_c_out": np.full_like(vcc, c.rail_max)}

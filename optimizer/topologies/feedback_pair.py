@@ -147,8 +147,10 @@ def loop_phase_margin(t0: np.ndarray, r1: np.ndarray, c1: np.ndarray, r2: np.nda
 class FeedbackPair(StageModel):
     name = "feedback_pair"
     inverting = False
-    polarities = ("npn",)
-    supplies = ("positive",)
+    polarities = ("npn", "pnp")
+    # no split supply: its ground-referenced base puts q1's emitter near ground, far above the hand
+    # method's place for it, and neither the hand seed nor a 500-trial search finds an active pair there
+    supplies = ("positive", "negative")
     device_kind = "bjt"
     description = "series-shunt feedback pair: two direct-coupled common emitters, gain 1 + r_feedback/r_emitter"
     order = 50
