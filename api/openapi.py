@@ -13,6 +13,7 @@ from typing import Any
 from api.problems import PROBLEM_JSON
 from optimizer.metrics import METRICS
 from optimizer.spec import MAX_SAMPLES, MAX_TOP
+from optimizer.topologies.base import POLARITIES, SUPPLIES
 
 VERSION = "1.0.0"
 STATUSES = ["queued", "running", "done", "failed", "cancelled"]
@@ -153,9 +154,9 @@ def _schemas() -> dict[str, Any]:
                                                               "series": {"type": "string"},
                                                               "optional": {"type": "boolean"}}}},
                                                       "polarities": {"type": "array",
-                                                                     "items": {"enum": ["npn", "pnp"]}},
+                                                                     "items": {"enum": list(POLARITIES)}},
                                                       "supplies": {"type": "array", "items": {
-                                                          "enum": ["positive", "negative", "split"]}},
+                                                          "enum": list(SUPPLIES)}},
                                                       "device_kind": {"type": "string"},
                                                       "gain_sign": {"enum": ["inverting", "non-inverting"]}}}}}},
         "Catalogs": {"type": "object", "required": ["catalogs"], "properties": {"catalogs": {
