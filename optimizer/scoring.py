@@ -195,7 +195,7 @@ def near_ratings(ratings: dict[str, np.ndarray], metrics: dict[str, np.ndarray],
 #   cost        1 / (1 + cost)   (cost in the catalog's currency)                            weight 0.5
 # Designs that miss a limit score -(total normalised violation) instead, so every feasible
 # design ranks above every infeasible one and, among infeasible ones, the nearest miss first.
-# The shortlist's Monte Carlo yield then multiplies the score (search.py).
+# The shortlist's Monte Carlo yield then multiplies the score (search/ranking.py).
 
 #: metric -> (spec limit whose value is the reference, fallback reference in SI units)
 OBJECTIVE_REFERENCES = {

@@ -13,9 +13,9 @@ from optuna.trial import TrialState
 
 from optimizer.sampler import ELITE_SIZE
 from optimizer.search import (
-    _rank_key,
     create_search,
     neighbour_sampler,
+    rank_key,
     rank_records,
     run_search,
     search_status,
@@ -56,7 +56,7 @@ def test_sampler_elite_and_front_match_a_recomputation_from_every_trial(store) -
     done = study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
     assert len(done) == 640
     # the elite: the best ELITE_SIZE finished trials by the rank key (ties in trial order)
-    expected_elite = sorted(done, key=lambda t: (_rank_key(t), t.number))[:ELITE_SIZE]
+    expected_elite = sorted(done, key=lambda t: (rank_key(t), t.number))[:ELITE_SIZE]
     assert [t.number for t in sampler._elite] == [t.number for t in expected_elite]
     # the front: every feasible trial no other feasible trial dominates (brute force)
     directions = [d for _, d in spec.objective_directions]
@@ -111,7 +111,7 @@ def test_tally_and_status_match_a_recomputation_after_every_batch(store) -> None
         if checked == 2:  # a runner killed mid-batch: a trial left running, one failed
             study.ask()
             study.tell(study.ask(), state=TrialState.FAIL)
-        counted = tally(store, study_id(study), _rank_key, lambda a, b: a.params == b.params)
+        counted = tally(store, study_id(study), rank_key, lambda a, b: a.params == b.params)
         done, running, feasible, best = _from_scratch(study)
         assert (counted.complete, counted.running, counted.feasible) == (done, running, feasible)
         assert counted.best.number == best

@@ -1,0 +1,231 @@
+"""Ranking designs, folding near-duplicates, the Pareto front, the binding limit of an infeasible
+search and the shortlist's full assessment."""
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import optuna
+
+from optimizer import robustness
+from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
+from optimizer.record import candidate_record, part_label, record_conditions
+from optimizer.scoring import pareto_mask
+from optimizer.search.space import SearchSpace
+from optimizer.spec import Spec
+from optimizer.topologies.base import SUPPLY_PARTS
+from optimizer.units import format_value
+
+SHORTLIST_SAMPLES = robustness.FINAL_BUILDS  # Monte Carlo builds for each shortlisted design's yield
+
+
+
+SHORTLIST_SIZE = 12  # designs given the full assessment (worst case, yield) when a search finishes
+
+
+
+SHORTLIST_REACH = 24  # most designs assessed in full while looking for SHORTLIST_SIZE that meet the spec
+
+
+
+FRONT_YIELD_POINTS = 8  # front points (evenly spread along it) that carry a yield figure
+
+
+
+def _design_key(record: dict) -> tuple:
+    return (record["topology"], record["device"], tuple(sorted(record["parts"].items())))
+
+
+
+def rank_records(records: list[dict]) -> list[dict]:
+    """Distinct designs ranked: feasible by score (high first), then infeasible by total
+    violation (small first); duplicates collapsed."""
+    unique = list({_design_key(r): r for r in records}.values())
+    return sorted(unique, key=lambda r: (not r["feasible"], -r["score"] if r["feasible"] else r["total_violation"]))
+
+
+
+NEAR_STEPS = 2  # a role whose value differs by fewer series steps is the same choice
+
+
+
+DISTINCT_ROLES = 2  # designs differing by NEAR_STEPS or more in this many roles are distinct
+
+
+
+def fold_variants(space: SearchSpace, ranked: list[dict]) -> list[dict]:
+    """``ranked`` with near-identical designs folded into the best of them (which gains a
+    ``variants`` count, itself included). Two designs are distinct when their topology or
+    device differ, or when at least DISTINCT_ROLES roles differ by NEAR_STEPS or more steps
+    of the allowed values; otherwise the later one is a variant of the earlier."""
+    groups: dict[tuple[str, str], list[int]] = {}
+    for k, r in enumerate(ranked):
+        groups.setdefault((r["topology"], r["device"]), []).append(k)
+    steps: dict[int, np.ndarray] = {}
+    for members in groups.values():
+        roles = sorted(ranked[members[0]]["parts"])
+        columns = []
+        for role in roles:
+            table = space.capacitors if role.startswith("c_") else space.resistors
+            v = np.array([ranked[k]["parts"].get(role, 0.0) for k in members])
+            columns.append(np.where(v > 0, table.index_of(np.where(v > 0, v, 1.0)), -10 * NEAR_STEPS))
+        for k, row in zip(members, np.stack(columns, axis=1) if columns else np.zeros((len(members), 0))):
+            steps[k] = row
+    kept: list[dict] = []
+    kept_steps: dict[tuple[str, str], tuple[list[int], list[np.ndarray]]] = {}
+    for k, r in enumerate(ranked):
+        key = (r["topology"], r["device"])
+        positions, rows = kept_steps.setdefault(key, ([], []))
+        if rows:
+            far = np.count_nonzero(np.abs(np.asarray(rows) - steps[k]) >= NEAR_STEPS, axis=1)
+            near = np.flatnonzero(far < DISTINCT_ROLES)
+            if near.size:
+                kept[positions[near[0]]]["variants"] += 1
+                continue
+        positions.append(len(kept))
+        rows.append(steps[k])
+        kept.append({**r, "variants": 1})
+    return kept
+
+
+
+def _limit_metric(limit: str) -> tuple[str | None, str]:
+    """The metric a limit judges and its unit (for saying what relaxing it would take)."""
+    table = {name: metric for name, metric, _ in LIMIT_METRICS}
+    table.update({"gain": "gain_db", "band_low": "f_low", "band_high": "f_high", "yield": "yield"})
+    metric = table.get(limit)
+    return metric, metric_unit(metric or "")
+
+
+
+ROBUSTNESS_LIMITS = ("yield", "worst_case")
+
+
+
+def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
+    """Why a spec has no answer: the limit whose relaxation alone would give one.
+
+    Among the evaluated designs, those that miss exactly one limit name it; the limit missed
+    by the smallest normalised amount (that limit's own violation) binds, and the best value such a design reaches (at
+    nominal) is what the limit would have to be relaxed to, with a margin for spread. A design
+    missing a limit at nominal also misses the robustness limit; that one is named only
+    when nothing else is missed. Where no design misses only one limit, the pair
+    missed together by the smallest amount binds. Returns {binding: [limits], reached: {limit:
+    value (SI) or None}, unit: {limit: unit}, text}."""
+    best: dict[tuple[str, ...], tuple[float, dict]] = {}
+    for r in ranked:
+        missed = tuple(sorted(k for k in r["violations"] if k not in ROBUSTNESS_LIMITS)) \
+            or tuple(sorted(r["violations"]))  # spread fails what nominal fails: name the limit
+        amount = sum(r["violations"][k] for k in missed)
+        if 1 <= len(missed) <= 2 and (missed not in best or amount < best[missed][0]):
+            best[missed] = (amount, r)
+    for size in (1, 2):
+        options = {k: v for k, v in best.items() if len(k) == size}
+        if options:
+            limits = min(options, key=lambda k: options[k][0])
+            record = options[limits][1]
+            break
+    else:
+        record = ranked[0] if ranked else None
+        limits = (record["binding"],) if record and record["binding"] else ()
+    reached: dict[str, float | None] = {}
+    units: dict[str, str] = {}
+    for limit in limits:
+        metric, units[limit] = _limit_metric(limit)
+        reached[limit] = (record["metrics"].get(metric) if record and metric else None)
+    def show(value: float | None, limit: str) -> str | None:
+        if value is None:
+            return None
+        if limit in ("yield", "thd_max"):
+            return f"{100 * value:.3g} %"
+        return f"{value:.3g} dB" if units[limit] == "dB" else format_value(value, units[limit])
+
+    asked = {name: getattr(spec.limits, name) for name, _, _ in LIMIT_METRICS}
+    asked.update({"yield": spec.limits.yield_min, "band_low": spec.band[0], "band_high": spec.band[1]})
+    parts = []
+    for limit in limits:
+        if limit == "gain":
+            wanted = f"{spec.gain_target_db:.3g} dB +- {spec.gain.tolerance_db:.2g} dB"
+        else:
+            wanted = show(asked.get(limit), limit)
+        facts = [f"the spec asks {wanted}" if wanted else "", f"the nearest design reaches {show(reached[limit], limit)}"
+                 if reached[limit] is not None else ""]
+        facts = [f for f in facts if f]
+        parts.append(f"{limit} ({'; '.join(facts)})" if facts else limit)
+    if not limits:
+        text = "no design was evaluated"
+    elif len(limits) == 1:
+        text = (f"no design meets every limit; {parts[0]} binds: relaxing it alone (with a margin for spread) "
+                "would give an answer")
+    else:
+        text = f"no design meets every limit, and no single limit is to blame: {' and '.join(parts)} bind together"
+    return {"binding": list(limits), "reached": reached, "unit": units, "text": text}
+
+
+
+def candidate_from_record(space: SearchSpace, record: dict) -> dict:
+    """The candidate record of a trial record (nominal figures; no spread): the ranked tail
+    and the front points that are not assessed in full. A part left out keeps its role at 0."""
+    parts = {}
+    for role, value in record["parts"].items():
+        if value <= 0 and role in SUPPLY_PARTS:
+            continue  # no decoupling RC: the stage sits on the rail
+        table = space.capacitors if role.startswith("c_") else space.resistors
+        part_id = table.part_id[int(table.index_of(np.array([value]))[0])] if value > 0 else None
+        parts[role] = {"value": value, "label": part_label(role, value), "part_id": part_id}
+    return candidate_record(
+        topology=record["topology"], feasible=record["feasible"], score=record["score"], binding=record["binding"],
+        conditions=record_conditions(space.spec), parts=parts, transistor=space.devices[record["device"]].record(),
+        metrics=dict(record["metrics"]), violations=dict(record["violations"]),
+        **{k: record[k] for k in ("basis", "score_terms", "note", "variants") if k in record},
+        trial=record.get("trial"))
+
+
+
+def shortlist_candidate(space: SearchSpace, record: dict, samples: int) -> dict:
+    """The full assessment (worst case, yield, ratings, cautions) of a ranked design; its score
+    is the record's times the yield of its builds (on the yield basis)."""
+    from optimizer.candidates import assess  # the single place a design is judged in full
+
+    full = assess(space.spec, space.catalog, record["topology"], dict(record["parts"]), record["device"],
+                  samples=samples)
+    full["metrics"].update({k: record["metrics"][k] for k in ("cost", "unique_values") if k in record["metrics"]})
+    build_yield = full["metrics"].get("yield")
+    terms = dict(record.get("score_terms") or {})
+    if build_yield is not None:
+        terms["yield"] = round(build_yield, 4)
+    violations = full["violations"]
+    total = float(sum(violations.values()))
+    full.update(score=record["score"] * (1.0 if build_yield is None else build_yield) if full["feasible"] else -total,
+                total_violation=total, binding=max(violations, key=violations.get) if violations else "",
+                nominal_score=record["score"], score_terms=terms, trial=record.get("trial"),
+                variants=record.get("variants", 1))
+    return candidate_record(**full)
+
+
+
+def trial_record(trial: optuna.trial.FrozenTrial) -> dict | None:
+    """The design record a finished trial carries (user attr ``record``, kept as JSON text:
+    Optuna deep-copies a trial's attributes on every tell, and text copies for free)."""
+    record = trial.user_attrs.get("record")
+    return json.loads(record) if isinstance(record, str) else record
+
+
+
+def rank_key(trial: optuna.trial.FrozenTrial) -> tuple[int, float]:
+    """Best first: feasible by score, then infeasible by summed violation."""
+    record = trial_record(trial)
+    if not record:
+        return (2, 0.0)
+    return (0, -record["score"]) if record["feasible"] else (1, record["total_violation"])
+
+
+
+def front_records(space: SearchSpace, ranked: list[dict]) -> list[dict]:
+    feasible = [r for r in ranked if r["feasible"]]
+    if not feasible:
+        return []
+    directions = [d for _, d in space.spec.objective_directions]
+    mask = pareto_mask(np.array([r["objectives"] for r in feasible]), directions)
+    points = [r for r, keep in zip(feasible, mask) if keep]
+    return sorted(points, key=lambda r: r["objectives"][0])

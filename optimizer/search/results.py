@@ -1,0 +1,188 @@
+"""Stored searches read back: status, the ranked result, listing, cancelling, extending, deleting."""
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import optuna
+import pandas as pd
+from optuna.storages import BaseStorage
+
+from optimizer.errors import InputError
+from optimizer.search.ranking import (
+    SHORTLIST_SAMPLES,
+    SHORTLIST_SIZE,
+    candidate_from_record,
+    fold_variants,
+    rank_records,
+    trial_record,
+)
+from optimizer.search.space import SearchSpace
+from optimizer.search.study import (
+    completed_records,
+    load_study,
+    stored_attrs,
+    study_attrs,
+    summarise,
+    trial_counts,
+    trial_tally,
+)
+from optimizer.spec import Spec
+
+STATUSES = ("queued", "running", "done", "failed", "cancelled")
+
+
+
+@dataclass
+class SearchResult:
+    """A search's ranked candidates (rank 1 first), Pareto front, status and the study."""
+
+    id: str
+    spec: Spec
+    study: optuna.Study
+    candidates: list[dict]
+    front: list[dict]
+    status: dict = field(default_factory=dict)
+    infeasible: dict | None = None  # when no design meets the spec: the limit that binds (relax_one_limit)
+
+    def candidate(self, rank: int) -> dict:
+        """The candidate at ``rank`` (1 = best); InputError if there is none."""
+        if not isinstance(rank, int) or not 1 <= rank <= len(self.candidates):
+            raise InputError.single("rank", rank, f"a rank from 1 to {len(self.candidates)}",
+                                    title="no such candidate")
+        return self.candidates[rank - 1]
+
+    def dataframe(self) -> pd.DataFrame:
+        """One row per ranked candidate: rank, topology, device, part values (SI), metrics."""
+        return candidates_frame(self.candidates)
+
+
+
+def candidates_frame(candidates: list[dict], *, labels: bool = False) -> pd.DataFrame:
+    """Ranked candidate records as a flat table, one row each: rank, feasible, score,
+    binding, topology, device, then each part (SI value, or its label such as "68k" with
+    ``labels``) and each metric (SI). The CLI's and the REST service's CSV."""
+    rows = []
+    for c in candidates:
+        row = {"rank": c.get("rank"), "feasible": c.get("feasible"), "score": c.get("score"),
+               "binding": c.get("binding", ""), "topology": c.get("topology"),
+               "device": (c.get("transistor") or {}).get("id")}
+        row.update({role: p["label" if labels else "value"] for role, p in c.get("parts", {}).items()})
+        row.update(c.get("metrics", {}))
+        rows.append(row)
+    return pd.DataFrame(rows)
+
+
+
+def search_status(storage: BaseStorage, search_id: str) -> dict:
+    """Status, progress and best so far of a search (JSON-ready). A stored search that can
+    no longer be read (its creation cut short, or a spec this version rejects) is reported
+    as failed with its reason rather than raising, so it can still be seen and deleted."""
+    try:
+        study, spec = load_study(storage, search_id)
+    except InputError as error:
+        if error.title == "unknown search":
+            raise
+        return _unreadable_status(storage, search_id, str(error))
+    ranking = study_attrs(study).get("ranking")
+    if ranking:
+        best = ranking["candidates"][0] if ranking["candidates"] else None
+    else:  # the best so far, kept incrementally: the first of rank_records over every finished trial
+        counted = trial_tally(study, best=True)
+        top = counted.best
+        if top is not None and counted.memo.get("best", (None,))[0] != top.number:  # a new best: its record
+            record = trial_record(top)
+            counted.memo["best"] = (top.number, {**candidate_from_record(SearchSpace.build(spec), {
+                **record, "trial": top.number}), "rank": 1} if record else None)
+        best = counted.memo["best"][1] if top is not None else None
+    return _status(study, spec, best)
+
+
+
+def _unreadable_status(storage: BaseStorage, search_id: str, why: str) -> dict:
+    attrs = storage.get_study_user_attrs(storage.get_study_id_from_name(search_id))
+    name = attrs.get("spec", {}).get("name") if isinstance(attrs.get("spec"), dict) else None
+    budget = attrs.get("budget")
+    return {"id": search_id, "name": name if isinstance(name, str) else None, "status": "failed",
+            "reason": attrs.get("reason") or f"the stored search cannot be read: {why}",
+            "trials_done": 0, "trials_running": 0, "trials_feasible": 0,
+            "budget": budget if isinstance(budget, int) and not isinstance(budget, bool) else 0,
+            "elapsed": 0.0, "created": attrs.get("created"), "best": None}
+
+
+
+def _status(study: optuna.Study, spec: Spec, best: dict | None) -> dict:
+    attrs = study_attrs(study)
+    finished, running = trial_counts(study)
+    started = attrs.get("started")
+    elapsed = attrs.get("elapsed") if attrs.get("status") == "done" else (time.time() - started if started else 0.0)
+    return {"id": study.study_name, "name": spec.name, "status": attrs.get("status") or "failed",
+            "reason": attrs.get("reason") if attrs.get("status") else "its creation was cut short",
+            "trials_done": finished, "trials_running": running, "trials_feasible": trial_tally(study).feasible,
+            "budget": int(attrs["budget"]),
+            "elapsed": float(elapsed or 0.0), "created": attrs.get("created"), "best": best}
+
+
+
+def load_search(storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SIZE,
+                samples: int = SHORTLIST_SAMPLES) -> SearchResult:
+    """The ranked candidates and front of a stored search (finished or not)."""
+    study, spec = load_study(storage, search_id)
+    space = SearchSpace.build(spec)
+    ranking = study.user_attrs.get("ranking")
+    if ranking and top <= len(ranking["candidates"]):
+        summary = {k: ranking[k] for k in ("front", "infeasible") if k in ranking}
+        summary["candidates"] = list(ranking["candidates"])
+        shortlisted = {c.get("trial") for c in summary["candidates"]}
+        tail = [candidate_from_record(space, r) for r in fold_variants(space, rank_records(completed_records(study)))
+                if r["trial"] not in shortlisted]
+        for rank, c in enumerate(tail, len(summary["candidates"]) + 1):
+            c["rank"] = rank
+        summary["candidates"] += tail
+    else:
+        summary = summarise(space, study, top, samples)
+    best = summary["candidates"][0] if summary["candidates"] else None
+    return SearchResult(search_id, spec, study, summary["candidates"], summary["front"], _status(study, spec, best),
+                        summary.get("infeasible"))
+
+
+
+def list_searches(storage: BaseStorage) -> list[dict]:
+    """Status of every search in ``storage``, newest first (without the best design). A
+    search whose creation was cut short (no status yet) is listed as failed."""
+    out = []
+    for s in storage.get_all_studies():  # study records only, no trials read
+        attrs = s.user_attrs
+        if "spec" not in attrs:
+            continue  # not a stagefit search
+        spec = attrs["spec"] if isinstance(attrs["spec"], dict) else {}
+        out.append({"id": s.study_name, "name": spec.get("name"), "status": attrs.get("status") or "failed",
+                    "budget": attrs.get("budget"), "created": attrs.get("created")})
+    return sorted(out, key=lambda s: s.get("created") or "", reverse=True)
+
+
+
+def cancel_search(storage: BaseStorage, search_id: str) -> None:
+    """Stop a search at its next batch; finished trials are kept. Works in every state
+    (a finished search stays as it is)."""
+    study_id, attrs = stored_attrs(storage, search_id)
+    if attrs.get("status") in ("queued", "running", None):
+        storage.set_study_user_attr(study_id, "status", "cancelled")
+
+
+
+def extend_search(storage: BaseStorage, search_id: str, trials: int) -> None:
+    """Raise a search's budget by ``trials`` (0: as it was) and queue it again (resume or extend)."""
+    if not isinstance(trials, int) or isinstance(trials, bool) or trials < 0:
+        raise InputError.single("trials", trials, "a whole number of extra trials, 0 or more")
+    study, _ = load_study(storage, search_id)
+    study.set_user_attr("budget", int(study.user_attrs["budget"]) + trials)
+    study.set_user_attr("reason", None)
+    study.set_user_attr("status", "queued")
+
+
+
+def delete_search(storage: BaseStorage, search_id: str) -> None:
+    """Remove a search and its trials from the storage, whatever its state."""
+    stored_attrs(storage, search_id)
+    optuna.delete_study(study_name=search_id, storage=storage)

@@ -1,0 +1,315 @@
+"""The Optuna study: creating a search, running it in batches (ask, evaluate, tell), finishing it."""
+from __future__ import annotations
+
+import json
+import time
+import uuid
+from datetime import datetime, timezone
+from typing import Callable
+
+import numpy as np
+import optuna
+from optuna.storages import BaseStorage
+from optuna.trial import TrialState
+
+from optimizer.catalog import Catalog
+from optimizer.errors import InputError
+from optimizer.sampler import NeighbourSampler
+from optimizer.search.evaluation import evaluate_designs
+from optimizer.search.ranking import (
+    FRONT_YIELD_POINTS,
+    SHORTLIST_REACH,
+    SHORTLIST_SAMPLES,
+    SHORTLIST_SIZE,
+    candidate_from_record,
+    fold_variants,
+    front_records,
+    rank_key,
+    rank_records,
+    relax_one_limit,
+    shortlist_candidate,
+    trial_record,
+)
+from optimizer.search.space import Design, SearchSpace
+from optimizer.spec import Spec, parse_spec, spec_to_dict
+from optimizer.storage import (
+    SYNC_EVERY,
+    TrialHeartbeat,
+    TrialTally,
+    batched_writes,
+    claim_batch,
+    quiet_optuna,
+    recover_stale_trials,
+    study_id,
+    study_storage,
+    sync,
+    tally,
+)
+
+
+def _now() -> str:
+    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+
+
+
+#: makes a search's sampler from its space and a seed offset (each runner of a shared search its own)
+SamplerFactory = Callable[[SearchSpace, int], optuna.samplers.BaseSampler]
+
+
+
+def neighbour_sampler(space: SearchSpace, seed_offset: int = 0) -> optuna.samplers.BaseSampler:
+    """The search's own sampler: neighbour moves along the ordered indices from the best and
+    the front designs."""
+    return NeighbourSampler(rank_key, [d for _, d in space.spec.objective_directions], space.distributions,
+                            seed=space.spec.search.seed + seed_offset)
+
+
+
+def study_attrs(study: optuna.Study) -> dict:
+    """The study's user attrs as the storage holds them, not copied (read them, do not change
+    them): Study.user_attrs deep-copies them, the finished ranking included, on every read."""
+    return study_storage(study).get_study_user_attrs(study_id(study))
+
+
+
+def load_study(storage: BaseStorage, search_id: str) -> tuple[optuna.Study, Spec]:
+    try:
+        study = optuna.load_study(study_name=search_id, storage=storage, sampler=optuna.samplers.RandomSampler())
+    except KeyError:
+        raise InputError.single("search", search_id, "the id of an existing search",
+                                title="unknown search") from None
+    attrs = study_attrs(study)
+    if not isinstance(attrs.get("spec"), dict) or not isinstance(attrs.get("budget"), int):
+        raise InputError.single("search", search_id, "a search whose record was written in full "
+                                "(its creation was cut short; delete it)", title="incomplete search")
+    return study, parse_spec(attrs["spec"])
+
+
+
+def create_search(spec: Spec, storage: BaseStorage, *, search_id: str | None = None,
+                  catalog: Catalog | None = None, seeds: bool = True) -> str:
+    """Create the study for ``spec`` (status 'queued'), the hand method's seeds enqueued
+    (unless ``seeds`` is False: a baseline without them); returns its id.
+
+    Everything is checked before anything is stored: the space is built (the spec fits its
+    catalog) and the spec as it will be stored reads back. The status is written last: it is
+    the search record's commit mark, so a creation cut short by a crash leaves a study
+    without a status, which :func:`list_searches` shows as failed, :func:`delete_search`
+    removes and a new creation under the same id replaces."""
+    quiet_optuna()
+    space = SearchSpace.build(spec, catalog)
+    stored = spec_to_dict(spec)
+    parse_spec(stored)  # what is stored must load again (InputError otherwise, nothing written)
+    search_id = search_id or f"s-{uuid.uuid4().hex[:12]}"
+    directions = ["minimize" if d == "minimise" else "maximize" for _, d in spec.objective_directions]
+    with claim_batch(storage, search_id):  # one creator at a time: a record without status is then never in the making
+        try:
+            if storage.get_study_user_attrs(storage.get_study_id_from_name(search_id)).get("status") is None:
+                optuna.delete_study(study_name=search_id, storage=storage)  # a half-made record: replaced
+        except KeyError:
+            pass
+        study = optuna.create_study(study_name=search_id, storage=storage, directions=directions)
+        for key, value in (("spec", stored), ("budget", spec.search.trials), ("created", _now()),
+                           ("objectives", [list(o) for o in spec.objective_directions])):
+            study.set_user_attr(key, value)
+        for design in (space.seeds() if seeds else [])[: spec.search.trials]:
+            study.enqueue_trial(space.params_of(design), skip_if_exists=True)
+        study.set_user_attr("status", "queued")  # the commit mark
+    return search_id
+
+
+
+def _same_design(a: optuna.trial.FrozenTrial, b: optuna.trial.FrozenTrial) -> bool:
+    return a.params == b.params
+
+
+
+def trial_tally(study: optuna.Study, *, best: bool = False) -> TrialTally:
+    """Finished (failed ones do not count: they are retried), running and feasible trials,
+    and with ``best`` the best so far (by rank_key), read incrementally (storage.tally)."""
+    return tally(study_storage(study), study_id(study), *((rank_key, _same_design) if best else ()))
+
+
+
+def trial_counts(study: optuna.Study) -> tuple[int, int]:
+    """(finished, running) trials."""
+    counted = trial_tally(study)
+    return counted.complete, counted.running
+
+
+
+def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[], bool] | None = None,
+               progress: Callable[[int, int], None] | None = None, max_batches: int | None = None,
+               seed_offset: int = 0, catalog: Catalog | None = None,
+               sampler: SamplerFactory = neighbour_sampler, finish: bool = True) -> None:
+    """Run batches (ask, evaluate in one vectorised call, tell) until the budget is met, the
+    search is cancelled or ``should_stop()`` is true; then, with ``finish``, rank and assess
+    the shortlist (:func:`finish_search`). ``sampler(space, seed_offset)`` makes the sampler
+    (the benchmarks pass their baselines in). Several processes may share a search:
+    counting and asking is one claimed step (storage.claim_batch), so together they finish
+    exactly the budget; running trials carry heartbeats and a dead runner's trials are failed
+    and retried at the next batch of any runner (storage.TrialHeartbeat)."""
+    try:
+        study, spec = load_study(storage, search_id)
+        space = SearchSpace.build(spec, catalog)
+    except InputError as error:
+        if error.title != "unknown search":  # stored, but it cannot run: say so, never leave it queued
+            fail_search(storage, search_id, f"cannot run: {error}")
+        raise
+    quiet_optuna()
+    study.sampler = sampler(space, seed_offset)
+    budget = int(study.user_attrs["budget"])
+    if study.user_attrs.get("status") in ("queued", "failed"):
+        study.set_user_attr("status", "running")
+        study.set_user_attr("started", time.time())
+    batches = 0
+    # designs this runner has evaluated (samplers revisit them): (record as stored, violation, objectives)
+    known: dict[Design, tuple[str, float, list[float]]] = {}
+    open_trials: list[optuna.Trial] = []  # asked and not yet told (failed if the run is interrupted)
+    try:
+        while True:
+            if study.user_attrs.get("status") == "cancelled" or (should_stop and should_stop()):
+                return
+            recover_stale_trials(storage, study)  # a dead runner's trials (heartbeats): failed, queued again
+            with TrialHeartbeat(storage) as heartbeat:
+                with claim_batch(storage, search_id):
+                    finished, running = trial_counts(study)
+                    if progress:
+                        progress(finished, budget)
+                    wanted = min(spec.search.batch_size, budget - finished - running)
+                    if wanted <= 0 or (max_batches is not None and batches >= max_batches):
+                        break
+                    open_trials = []
+                    with batched_writes(storage):  # a journal file: one append for the batch's new trials
+                        for _ in range(wanted):
+                            open_trials.append(heartbeat.add(study.ask()))
+                trials = list(open_trials)
+                with batched_writes(storage):  # ... one for their parameters
+                    designs = [space.suggest(t) for t in trials]
+                try:
+                    fresh = list(dict.fromkeys(d for d in designs if d not in known))
+                    known.update((d, (json.dumps(r), r["total_violation"], r["objectives"]))
+                                 for d, r in zip(fresh, evaluate_designs(space, fresh)))
+                    records = [known[d] for d in designs]
+                except Exception as error:
+                    _fail_trials(study, open_trials)
+                    fail_search(storage, search_id, f"evaluation failed: {type(error).__name__}: {error}")
+                    raise
+                with batched_writes(storage):  # ... and one for their records and results
+                    for t, (record, violation, objectives) in zip(trials, records):
+                        t.set_user_attr("record", record)
+                        t.set_constraint("violation", violation)
+                        study.tell(t, objectives)
+                        open_trials.remove(t)
+            sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
+            batches += 1
+    except KeyboardInterrupt:  # Ctrl-C: the batch in hand is failed, the search stays resumable
+        _fail_trials(study, open_trials)
+        fail_search(storage, search_id, INTERRUPTED)
+        raise
+    finally:
+        sync(storage)  # everything this runner wrote is on disk
+    if finish:
+        _finish_when_done(study, space, budget)
+
+
+
+INTERRUPTED = "interrupted (Ctrl-C); finished trials are kept: run the search again to resume it"
+
+
+
+def _fail_trials(study: optuna.Study, trials: list[optuna.Trial]) -> None:
+    """Tell ``trials`` (asked, not told) failed: they are asked again when the search resumes."""
+    for t in list(trials):
+        try:
+            study.tell(t, state=TrialState.FAIL)
+        except ValueError:  # told already (the interrupt came between its tell and its removal here)
+            pass
+        trials.remove(t)
+
+
+
+def _finish_when_done(study: optuna.Study, space: SearchSpace, budget: int) -> None:
+    finished, running = trial_counts(study)
+    if finished >= budget and running == 0 and study.user_attrs.get("status") == "running":
+        _finish(study, space)
+
+
+
+def finish_search(storage: BaseStorage, search_id: str, *, catalog: Catalog | None = None) -> None:
+    """Rank a search whose budget is spent and assess its shortlist (status 'done'); nothing
+    while trials are still to run. What :func:`run_search` does at its end unless told not to."""
+    study, spec = load_study(storage, search_id)
+    _finish_when_done(study, SearchSpace.build(spec, catalog), int(study.user_attrs["budget"]))
+
+
+
+def completed_records(study: optuna.Study) -> list[dict]:
+    out = []
+    for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
+        record = trial_record(t)
+        if record:
+            out.append({**record, "trial": t.number})
+    return out
+
+
+
+def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *, tail: bool = True) -> dict:
+    """The shortlist and the front; with ``tail`` every other ranked design follows the
+    shortlist as a nominal candidate.
+
+    Ranked designs are assessed in full (worst case, FINAL_BUILDS builds) in rank order until
+    ``top`` of them meet the spec on its basis, or SHORTLIST_REACH designs have been assessed:
+    a design that passed the search's screen but misses on the full assessment drops below
+    every one that meets it."""
+    every = rank_records(completed_records(study))
+    ranked = fold_variants(space, every)
+    shortlist: list[dict] = []
+    for r in ranked[:max(top, SHORTLIST_REACH)]:
+        shortlist.append(shortlist_candidate(space, r, samples))
+        if len(shortlist) >= top and sum(c["feasible"] for c in shortlist) >= top:
+            break
+    shortlist.sort(key=lambda c: (not c["feasible"], -c["score"] if c["feasible"] else c["total_violation"]))
+    candidates = shortlist + [candidate_from_record(space, r) for r in ranked[len(shortlist):] if tail]
+    for rank, c in enumerate(candidates, 1):
+        c["rank"] = rank
+    points = front_records(space, ranked)
+    with_yield = set(np.linspace(0, len(points) - 1, min(len(points), FRONT_YIELD_POINTS)).round().astype(int))
+    front = []
+    for k, r in enumerate(points):
+        c = shortlist_candidate(space, r, samples) if k in with_yield else candidate_from_record(space, r)
+        c["objectives"] = r["objectives"]
+        front.append(c)
+    summary = {"candidates": candidates, "front": front, "evaluated": len(ranked)}
+    if not any(c["feasible"] for c in shortlist):
+        summary["infeasible"] = relax_one_limit(space.spec, every)
+    return summary
+
+
+
+def _finish(study: optuna.Study, space: SearchSpace) -> None:
+    summary = summarise(space, study, SHORTLIST_SIZE, SHORTLIST_SAMPLES, tail=False)
+    study.set_user_attr("ranking", {k: summary[k] for k in ("candidates", "front", "infeasible") if k in summary})
+    study.set_user_attr("finished", _now())
+    study.set_user_attr("elapsed", time.time() - float(study.user_attrs.get("started", time.time())))
+    study.set_user_attr("status", "done")
+
+
+
+def stored_attrs(storage: BaseStorage, search_id: str) -> tuple[int, dict]:
+    """(study id, user attrs) of a stored search, without reading its spec."""
+    try:
+        study_id = storage.get_study_id_from_name(search_id)
+    except KeyError:
+        raise InputError.single("search", search_id, "the id of an existing search",
+                                title="unknown search") from None
+    return study_id, storage.get_study_user_attrs(study_id)
+
+
+
+def fail_search(storage: BaseStorage, search_id: str, reason: str = "") -> None:
+    """Mark a search 'failed' with its ``reason`` (its runner hit an error, or it cannot run);
+    extend_search queues it again."""
+    study_id, _ = stored_attrs(storage, search_id)
+    storage.set_study_user_attr(study_id, "reason", reason[:2000] or "stopped by an unexpected error")
+    storage.set_study_user_attr(study_id, "status", "failed")
