@@ -27,6 +27,7 @@ key given in ``config`` (same names) wins:
 Every request and response body is JSON (errors: application/problem+json); the search
 state lives only in the Optuna storage, so a restarted server resumes what was running.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -89,7 +90,8 @@ class Settings:
         if queue_only not in ("", "0", "1", "true", "false", "yes", "no", "on", "off"):
             problems.append(InputError.single("STAGEFIT_QUEUE_ONLY", queue_only, "1 or 0").problems[0])
         settings = cls(
-            storage=storage, data_dir=data_dir,
+            storage=storage,
+            data_dir=data_dir,
             api_token=str(source["STAGEFIT_API_TOKEN"]) if source.get("STAGEFIT_API_TOKEN") else None,
             max_trials=number("STAGEFIT_MAX_TRIALS", cls.max_trials, int, 1, 10_000_000),
             max_body=number("STAGEFIT_MAX_BODY", cls.max_body, int, 1024, 64 * 1024 * 1024),
@@ -104,9 +106,14 @@ class Settings:
         if not settings.max_waiters:  # default: half the request threads, the rest stay free
             settings = dataclasses.replace(settings, max_waiters=max(1, settings.threads // 2))
         elif settings.max_waiters >= settings.threads:
-            problems.append(InputError.single("STAGEFIT_MAX_WAITERS", settings.max_waiters,
-                                              f"fewer than STAGEFIT_THREADS ({settings.threads}), so requests "
-                                              "that do not wait always find a thread").problems[0])
+            problems.append(
+                InputError.single(
+                    "STAGEFIT_MAX_WAITERS",
+                    settings.max_waiters,
+                    f"fewer than STAGEFIT_THREADS ({settings.threads}), so requests "
+                    "that do not wait always find a thread",
+                ).problems[0]
+            )
         if problems:
             raise InputError(problems, title="invalid service settings")
         return settings
@@ -158,9 +165,14 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     problems.register(app)
 
     storage = open_storage(settings.storage)
-    pool = jobs.JobPool(storage, workers=settings.workers, run=not settings.queue_only,
-                        stale_after=settings.stale_after, max_queue=settings.max_queue,
-                        max_waiters=settings.max_waiters)
+    pool = jobs.JobPool(
+        storage,
+        workers=settings.workers,
+        run=not settings.queue_only,
+        stale_after=settings.stale_after,
+        max_queue=settings.max_queue,
+        max_waiters=settings.max_waiters,
+    )
     app.extensions["stagefit"] = routes.Service(settings=settings, storage=storage, jobs=pool)
 
     @app.before_request
@@ -171,13 +183,23 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
         scheme, _, given = request.headers.get("Authorization", "").partition(" ")
         if scheme.lower() == "bearer" and hmac.compare_digest(given.strip().encode(), token.encode()):
             return None
-        raise problems.ApiProblem(401, "Unauthorized", problems.http_detail(401), kind="unauthorized",
-                                  headers={"WWW-Authenticate": 'Bearer realm="stagefit"'})
+        raise problems.ApiProblem(
+            401,
+            "Unauthorized",
+            problems.http_detail(401),
+            kind="unauthorized",
+            headers={"WWW-Authenticate": 'Bearer realm="stagefit"'},
+        )
 
     @app.get("/healthz")
     def healthz() -> Response:
-        return jsonify({"status": "ok", "queue_only": settings.queue_only,
-                        "workers": 0 if settings.queue_only else settings.workers})
+        return jsonify(
+            {
+                "status": "ok",
+                "queue_only": settings.queue_only,
+                "workers": 0 if settings.queue_only else settings.workers,
+            }
+        )
 
     app.register_blueprint(routes.blueprint, url_prefix="/v1")
     app.register_blueprint(pages.blueprint)  # the browser pages (api/pages.py)

@@ -14,6 +14,7 @@ requests waiting for a search to finish (``?wait=``) park on a condition the poo
 when a search stops, at most ``max_waiters`` of them, so request threads stay free for
 everyone else (``/healthz`` always answers).
 """
+
 from __future__ import annotations
 
 import logging
@@ -41,8 +42,16 @@ class JobPool:
     """``workers`` threads running stored searches; ``run=False`` only queues (external
     workers on the same storage run the trials)."""
 
-    def __init__(self, storage: Any, *, workers: int = 1, run: bool = True,
-                 stale_after: float | None = None, max_queue: int = 64, max_waiters: int = 4) -> None:
+    def __init__(
+        self,
+        storage: Any,
+        *,
+        workers: int = 1,
+        run: bool = True,
+        stale_after: float | None = None,
+        max_queue: int = 64,
+        max_waiters: int = 4,
+    ) -> None:
         self.storage = storage
         self.workers = workers
         self.run = run
@@ -179,8 +188,9 @@ class JobPool:
         study_id = self.storage.get_study_id_from_name(search_id)
         if self.storage.get_study_user_attrs(study_id).get("status") != "running":
             return None
-        freed, waiting = recover_stale_trials(self.storage, search_id,
-                                              STALE_AFTER if self.stale_after is None else self.stale_after)
+        freed, waiting = recover_stale_trials(
+            self.storage, search_id, STALE_AFTER if self.stale_after is None else self.stale_after
+        )
         if freed:
             return 0.0
         return RECHECK if waiting else None

@@ -13,6 +13,7 @@ Every figure comes from the functions the REST routes call (``api.routes`` helpe
 ``optimizer.scoring.limit_table``, ``optimizer.bom``, ``optimizer.netlist``); this module
 only lays them out, with units. Plots and downloads are the REST routes themselves.
 """
+
 from __future__ import annotations
 
 import math
@@ -27,13 +28,20 @@ from api.problems import ApiProblem
 from optimizer.bundled import example_names, example_path
 from optimizer.errors import Problem
 
-blueprint = Blueprint("pages", __name__, template_folder="templates", static_folder="static",
-                      static_url_path="/assets")
+blueprint = Blueprint("pages", __name__, template_folder="templates", static_folder="static", static_url_path="/assets")
 
 #: endpoints answered without the API token (they carry no data)
-PUBLIC_ENDPOINTS = frozenset({"pages.spec_page", "pages.searches_page", "pages.search_page",
-                              "pages.design_page", "pages.compare_page", "pages.static",
-                              "pages.palette_css"})
+PUBLIC_ENDPOINTS = frozenset(
+    {
+        "pages.spec_page",
+        "pages.searches_page",
+        "pages.search_page",
+        "pages.design_page",
+        "pages.compare_page",
+        "pages.static",
+        "pages.palette_css",
+    }
+)
 TABLE_ROWS = 50  # ranked designs in the search page's table
 FRONT_POINTS = 250  # designs drawn on the search page's front (the front's own points always are)
 LIST_ROWS = 30  # searches on the searches page
@@ -63,13 +71,28 @@ SPEC_FIELDS: tuple[tuple[str, str, str, str], ...] = (
 
 #: SI unit of each operating-point and rating quantity, by name
 _OP_UNITS = {"ic": "A", "ib": "A", "i_divider": "A", "supply_current": "A", "q_power": "W", "active": ""}
-KEY_FIGURES = (("gain", "Gain"), ("swing_vpp", "Output swing"), ("input_impedance", "Input impedance"),
-               ("supply_current", "Supply current"))
-TABLE_METRICS = ("gain", "swing_vpp", "input_impedance", "output_impedance", "supply_current",
-                 "noise_ein_v", "thd", "part_count", "cost", "yield")
+KEY_FIGURES = (
+    ("gain", "Gain"),
+    ("swing_vpp", "Output swing"),
+    ("input_impedance", "Input impedance"),
+    ("supply_current", "Supply current"),
+)
+TABLE_METRICS = (
+    "gain",
+    "swing_vpp",
+    "input_impedance",
+    "output_impedance",
+    "supply_current",
+    "noise_ein_v",
+    "thd",
+    "part_count",
+    "cost",
+    "yield",
+)
 
 
 # --- presentation helpers (units; no physics) ----------------------------------------------
+
 
 def _axis(metric: str) -> tuple[str, float, str]:
     from optimizer.plots import METRIC_AXES
@@ -131,13 +154,21 @@ for _filter in (metric_label, metric_text, quantity_text, basis_label):
 
 # --- page shells (public: no data) ---------------------------------------------------------
 
+
 @blueprint.get("/")
 def spec_page() -> str:
     from optimizer.catalog import list_catalogs
     from optimizer.spec import METRIC_DIRECTIONS
 
-    return render_template("spec.html", fields=SPEC_FIELDS, examples=example_names(), catalogs=list_catalogs(),
-                           series=SERIES, metrics=tuple(METRIC_DIRECTIONS), title="New search")
+    return render_template(
+        "spec.html",
+        fields=SPEC_FIELDS,
+        examples=example_names(),
+        catalogs=list_catalogs(),
+        series=SERIES,
+        metrics=tuple(METRIC_DIRECTIONS),
+        title="New search",
+    )
 
 
 @blueprint.get("/searches")
@@ -147,22 +178,28 @@ def searches_page() -> str:
 
 @blueprint.get("/searches/<search_id>")
 def search_page(search_id: str) -> str:
-    return render_template("search.html", title=f"Search {search_id}", search_id=search_id,
-                           status_url=url_for("v1.get_search", search_id=search_id),
-                           source=url_for("pages.results_fragment", search_id=search_id))
+    return render_template(
+        "search.html",
+        title=f"Search {search_id}",
+        search_id=search_id,
+        status_url=url_for("v1.get_search", search_id=search_id),
+        source=url_for("pages.results_fragment", search_id=search_id),
+    )
 
 
 @blueprint.get("/searches/<search_id>/designs/<int:rank>")
 def design_page(search_id: str, rank: int) -> str:
-    return render_template("shell.html", title=f"Design {rank} of {search_id}",
-                           source=url_for("pages.design_fragment", search_id=search_id, rank=rank))
+    return render_template(
+        "shell.html",
+        title=f"Design {rank} of {search_id}",
+        source=url_for("pages.design_fragment", search_id=search_id, rank=rank),
+    )
 
 
 @blueprint.get("/compare")
 def compare_page() -> str:
     chosen: dict[str, Any] = request.args.to_dict()  # the designs to compare, passed on to the fragment
-    return render_template("shell.html", title="Compare designs",
-                           source=url_for("pages.compare_fragment", **chosen))
+    return render_template("shell.html", title="Compare designs", source=url_for("pages.compare_fragment", **chosen))
 
 
 @blueprint.get("/palette.css")
@@ -180,6 +217,7 @@ def _palette_css() -> str:
 
 
 # --- fragments (behind the token) ------------------------------------------------------------
+
 
 def _html(text: str) -> Response:
     return Response(text, mimetype="text/html")
@@ -213,9 +251,19 @@ def results_fragment(search_id: str) -> Response:
     result = routes._result(search_id, status)
     objectives = result.spec.objective_directions
     metrics = list(dict.fromkeys([m for m, _ in objectives] + list(TABLE_METRICS)))
-    return _html(render_template("results.html", search_id=search_id, status=status, spec=result.spec,
-                                 rows=result.candidates[:TABLE_ROWS], total=len(result.candidates),
-                                 metrics=metrics, front=front_svg(search_id, result), objectives=objectives))
+    return _html(
+        render_template(
+            "results.html",
+            search_id=search_id,
+            status=status,
+            spec=result.spec,
+            rows=result.candidates[:TABLE_ROWS],
+            total=len(result.candidates),
+            metrics=metrics,
+            front=front_svg(search_id, result),
+            objectives=objectives,
+        )
+    )
 
 
 def front_svg(search_id: str, result: Any) -> dict:
@@ -224,8 +272,9 @@ def front_svg(search_id: str, result: Any) -> dict:
     objectives = result.spec.objective_directions
     rank_of = {c.get("trial"): c["rank"] for c in result.candidates if c.get("trial") is not None}
     on_front = {p.get("trial") for p in result.front}
-    shown = result.candidates[:FRONT_POINTS] + [c for c in result.candidates[FRONT_POINTS:]
-                                                if c.get("trial") in on_front]
+    shown = result.candidates[:FRONT_POINTS] + [
+        c for c in result.candidates[FRONT_POINTS:] if c.get("trial") in on_front
+    ]
     x_metric = objectives[0][0]
     y_metric = objectives[1][0] if len(objectives) > 1 else None
 
@@ -254,16 +303,34 @@ def front_svg(search_id: str, result: Any) -> dict:
         rank = rank_of.get(c.get("trial"), c.get("rank"))
         tip = [f"rank {rank}", "meets the spec" if c.get("feasible") else "misses the spec"]
         tip += [f"{_axis(m)[0]} {metric_text(m, c['metrics'].get(m))}" for m in (x_metric, y_metric) if m]
-        points.append({"x": round(sx(x), 1), "y": round(sy(y), 1), "rank": rank, "feasible": bool(c.get("feasible")),
-                       "front": c.get("trial") in on_front, "tip": " · ".join(tip),
-                       "url": url_for("pages.design_page", search_id=search_id, rank=rank)})
+        points.append(
+            {
+                "x": round(sx(x), 1),
+                "y": round(sy(y), 1),
+                "rank": rank,
+                "feasible": bool(c.get("feasible")),
+                "front": c.get("trial") in on_front,
+                "tip": " · ".join(tip),
+                "url": url_for("pages.design_page", search_id=search_id, rank=rank),
+            }
+        )
     points.sort(key=lambda p: (p["feasible"], p["front"], -p["rank"]))  # best drawn last, on top
     line = sorted((p for p in points if p["front"]), key=lambda p: p["x"])
-    return {"points": points, "front_line": " ".join(f"{p['x']},{p['y']}" for p in line), "outside": outside,
-            "width": width, "height": height, "left": left, "right": right, "top": top, "bottom": bottom,
-            "x_label": metric_label(x_metric), "y_label": metric_label(y_metric) if y_metric else "rank",
-            "x_ticks": [(round(sx(v), 1), f"{v:.4g}") for v in _ticks(x0, x1)],
-            "y_ticks": [(round(sy(v), 1), f"{v:.4g}") for v in _ticks(y0, y1)]}
+    return {
+        "points": points,
+        "front_line": " ".join(f"{p['x']},{p['y']}" for p in line),
+        "outside": outside,
+        "width": width,
+        "height": height,
+        "left": left,
+        "right": right,
+        "top": top,
+        "bottom": bottom,
+        "x_label": metric_label(x_metric),
+        "y_label": metric_label(y_metric) if y_metric else "rank",
+        "x_ticks": [(round(sx(v), 1), f"{v:.4g}") for v in _ticks(x0, x1)],
+        "y_ticks": [(round(sy(v), 1), f"{v:.4g}") for v in _ticks(y0, y1)],
+    }
 
 
 def _padded(low: float, high: float) -> tuple[float, float]:
@@ -287,15 +354,30 @@ def design_fragment(search_id: str, rank: int) -> Response:
 
     record, result = routes._candidate(search_id, rank)
     parts = {role: part["value"] for role, part in record["parts"].items()}
-    netlist = spice_netlist(record["topology"], parts, record["transistor"]["model"], result.spec,
-                            device_id=record["transistor"]["id"],
-                            title=f"stagefit search {search_id} rank {rank}: {record['topology']}")
+    netlist = spice_netlist(
+        record["topology"],
+        parts,
+        record["transistor"]["model"],
+        result.spec,
+        device_id=record["transistor"]["id"],
+        title=f"stagefit search {search_id} rank {rank}: {record['topology']}",
+    )
     base = f"/v1/searches/{search_id}/candidates/{rank}"
-    return _html(render_template(
-        "design.html", search_id=search_id, rank=rank, record=record, spec=result.spec,
-        key_figures=KEY_FIGURES, limits=limit_table(result.spec, record["metrics"]),
-        topology=get_topology(record["topology"]), netlist=netlist, base=base,
-        count=len(result.candidates)))
+    return _html(
+        render_template(
+            "design.html",
+            search_id=search_id,
+            rank=rank,
+            record=record,
+            spec=result.spec,
+            key_figures=KEY_FIGURES,
+            limits=limit_table(result.spec, record["metrics"]),
+            topology=get_topology(record["topology"]),
+            netlist=netlist,
+            base=base,
+            count=len(result.candidates),
+        )
+    )
 
 
 @blueprint.get("/ui/compare")
@@ -305,17 +387,24 @@ def compare_fragment() -> Response:
     given = [r.strip() for r in raw.split(",") if r.strip()]
     ranks = [int(r) for r in given] if all(routes._WHOLE.fullmatch(r) for r in given) else []  # ASCII digits only
     if not 2 <= len(ranks) <= COMPARE_MAX or len(set(ranks)) != len(ranks):
-        raise ApiProblem(400, "invalid query parameter", f"query.ranks: got {raw!r}; two or three different "
-                         "ranks separated by commas, e.g. 1,2", kind="invalid-query",
-                         errors=[Problem("query.ranks", raw, "two or three different ranks, e.g. 1,2")])
+        raise ApiProblem(
+            400,
+            "invalid query parameter",
+            f"query.ranks: got {raw!r}; two or three different ranks separated by commas, e.g. 1,2",
+            kind="invalid-query",
+            errors=[Problem("query.ranks", raw, "two or three different ranks, e.g. 1,2")],
+        )
     records = [routes._candidate(search_id, rank)[0] for rank in ranks]
     roles = list(dict.fromkeys(role for r in records for role in r["parts"]))
     metrics = list(dict.fromkeys(m for r in records for m in r["metrics"]))
-    rows = [("topology", "Topology", [r["topology"] for r in records]),
-            ("device", "Transistor", [r["transistor"]["id"] for r in records]),
-            ("basis", "Meets the spec", [basis_label(r) for r in records])]
-    rows += [(f"part-{role}", role, [r["parts"][role]["label"] if role in r["parts"] else "absent"
-                                     for r in records]) for role in roles]
-    rows += [(f"metric-{m}", metric_label(m), [metric_text(m, r["metrics"].get(m)) for r in records])
-             for m in metrics]
+    rows = [
+        ("topology", "Topology", [r["topology"] for r in records]),
+        ("device", "Transistor", [r["transistor"]["id"] for r in records]),
+        ("basis", "Meets the spec", [basis_label(r) for r in records]),
+    ]
+    rows += [
+        (f"part-{role}", role, [r["parts"][role]["label"] if role in r["parts"] else "absent" for r in records])
+        for role in roles
+    ]
+    rows += [(f"metric-{m}", metric_label(m), [metric_text(m, r["metrics"].get(m)) for r in records]) for m in metrics]
     return _html(render_template("compare.html", search_id=search_id, ranks=ranks, rows=rows))

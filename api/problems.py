@@ -6,6 +6,7 @@ path (``gain.target``, ``parts.r_top``, ``query.units``), the ``value`` given an
 would be ``expected``. A catch-all handler turns anything unexpected into a logged 500
 problem, so no response ever carries an HTML error page or a traceback.
 """
+
 from __future__ import annotations
 
 import json
@@ -26,8 +27,16 @@ log = logging.getLogger("api")
 class ApiProblem(Exception):
     """Raised by a route to answer with a problem document."""
 
-    def __init__(self, status: int, title: str, detail: str, *, kind: str | None = None,
-                 errors: Iterable[Problem] = (), headers: dict[str, str] | None = None) -> None:
+    def __init__(
+        self,
+        status: int,
+        title: str,
+        detail: str,
+        *,
+        kind: str | None = None,
+        errors: Iterable[Problem] = (),
+        headers: dict[str, str] | None = None,
+    ) -> None:
         super().__init__(detail)
         self.status, self.title, self.detail = status, title, detail
         self.kind = kind
@@ -35,8 +44,9 @@ class ApiProblem(Exception):
         self.headers = headers or {}
 
     @classmethod
-    def from_input(cls, error: InputError, status: int = 422, *, kind: str = "invalid-input",
-                   prefix: str = "") -> "ApiProblem":
+    def from_input(
+        cls, error: InputError, status: int = 422, *, kind: str = "invalid-input", prefix: str = ""
+    ) -> "ApiProblem":
         """An InputError as a problem; ``prefix`` is put before every field path."""
         problems = [Problem(_join(prefix, p.where), p.value, p.expected) for p in error.problems]
         return cls(status, error.title, _detail(error.title, problems), kind=kind, errors=problems)
@@ -75,26 +85,38 @@ def _shorten(text: str, most: int = 200) -> str:
     return text if len(text) <= most else f"{text[:most]}... ({len(text)} characters)"
 
 
-def problem_body(status: int, title: str, detail: str, *, kind: str | None = None,
-                 errors: Iterable[Problem] = ()) -> str:
+def problem_body(
+    status: int, title: str, detail: str, *, kind: str | None = None, errors: Iterable[Problem] = ()
+) -> str:
     """The problem document as JSON text (``instance`` is the request path, in a request)."""
-    body: dict[str, Any] = {"type": TYPE_PREFIX + kind if kind else "about:blank", "title": title,
-                            "status": status, "detail": detail}
+    body: dict[str, Any] = {
+        "type": TYPE_PREFIX + kind if kind else "about:blank",
+        "title": title,
+        "status": status,
+        "detail": detail,
+    }
     if _in_request():
         body["instance"] = request.path
     errors = list(errors)
     if errors:
-        body["errors"] = [{"field": p.where, "value": _plain(p.value), "expected": p.expected}
-                          for p in errors]
+        body["errors"] = [{"field": p.where, "value": _plain(p.value), "expected": p.expected} for p in errors]
     # ensure_ascii: a lone surrogate the user sent is echoed as an escape, never a UnicodeEncodeError
     return json.dumps(body)
 
 
-def problem_response(status: int, title: str, detail: str, *, kind: str | None = None,
-                     errors: Iterable[Problem] = (), headers: dict[str, str] | None = None) -> Response:
+def problem_response(
+    status: int,
+    title: str,
+    detail: str,
+    *,
+    kind: str | None = None,
+    errors: Iterable[Problem] = (),
+    headers: dict[str, str] | None = None,
+) -> Response:
     """Build the problem+json response (``kind`` None means ``about:blank``)."""
-    response = Response(problem_body(status, title, detail, kind=kind, errors=errors), status=status,
-                        mimetype=PROBLEM_JSON)
+    response = Response(
+        problem_body(status, title, detail, kind=kind, errors=errors), status=status, mimetype=PROBLEM_JSON
+    )
     for key, value in (headers or {}).items():
         response.headers[key] = value
     return response
@@ -125,8 +147,11 @@ def _http_problem(error: HTTPException) -> Response:
             headers["Allow"] = ", ".join(allowed)
     if status == 413:
         limit = request.max_content_length if _in_request() else None
-        detail = (f"the request body is larger than the {limit}-byte limit (STAGEFIT_MAX_BODY); "
-                  "send a smaller body" if limit else _HTTP_DETAIL[413])
+        detail = (
+            f"the request body is larger than the {limit}-byte limit (STAGEFIT_MAX_BODY); send a smaller body"
+            if limit
+            else _HTTP_DETAIL[413]
+        )
     else:
         detail = _HTTP_DETAIL.get(status) or (error.description or error.name)
     return problem_response(status, error.name, detail, headers=headers)
@@ -145,8 +170,9 @@ def register(app: Flask) -> None:
 
     @app.errorhandler(ApiProblem)
     def _api_problem(error: ApiProblem) -> Response:
-        return problem_response(error.status, error.title, error.detail, kind=error.kind,
-                                errors=error.errors, headers=error.headers)
+        return problem_response(
+            error.status, error.title, error.detail, kind=error.kind, errors=error.errors, headers=error.headers
+        )
 
     @app.errorhandler(InputError)
     def _input_error(error: InputError) -> Response:
@@ -156,8 +182,13 @@ def register(app: Flask) -> None:
     @app.errorhandler(StorageError)
     def _storage_error(error: StorageError) -> Response:
         log.error("storage error on %s %s: %s", request.method, request.path, error)
-        return problem_response(503, "Service Unavailable", f"the search storage is not available: {error}",
-                                kind="storage-unavailable", headers={"Retry-After": "30"})
+        return problem_response(
+            503,
+            "Service Unavailable",
+            f"the search storage is not available: {error}",
+            kind="storage-unavailable",
+            headers={"Retry-After": "30"},
+        )
 
     @app.errorhandler(HTTPException)
     def _http_error(error: HTTPException) -> Response:
@@ -166,7 +197,10 @@ def register(app: Flask) -> None:
     @app.errorhandler(Exception)
     def _unexpected(error: Exception) -> Response:
         log.exception("unexpected error on %s %s", request.method, request.path)
-        return problem_response(500, "Internal Server Error",
-                                "an unexpected error occurred; it has been logged. This is a bug "
-                                "in stagefit: please report it with the request you sent",
-                                kind="internal-error")
+        return problem_response(
+            500,
+            "Internal Server Error",
+            "an unexpected error occurred; it has been logged. This is a bug "
+            "in stagefit: please report it with the request you sent",
+            kind="internal-error",
+        )

@@ -5,6 +5,7 @@ SVG or plain text by the ``Accept`` header where a route offers more than one. E
 input is validated in full before anything is stored, so a rejected request never
 leaves a half-made search behind.
 """
+
 from __future__ import annotations
 
 import re
@@ -46,15 +47,20 @@ def service() -> Service:
 
 # --- request helpers ------------------------------------------------------------------
 
+
 def negotiate(offered: tuple[str, ...]) -> str:
     """The offered media type the Accept header prefers (406 if it allows none)."""
     if not request.headers.get("Accept", "").strip():
         return offered[0]
     best = request.accept_mimetypes.best_match(offered)
     if best is None:
-        raise ApiProblem(406, "Not Acceptable",
-                         f"this route produces {', '.join(offered)}; send an Accept header that allows "
-                         f"one of them (got {request.headers.get('Accept')!r})", kind="not-acceptable")
+        raise ApiProblem(
+            406,
+            "Not Acceptable",
+            f"this route produces {', '.join(offered)}; send an Accept header that allows "
+            f"one of them (got {request.headers.get('Accept')!r})",
+            kind="not-acceptable",
+        )
     return best
 
 
@@ -66,23 +72,32 @@ def read_body(*, yaml_ok: bool = False) -> dict:
     mimetype = request.mimetype
     accepted = (JSON,) + (YAML_TYPES if yaml_ok else ())
     if mimetype not in accepted and not (mimetype.startswith("application/") and mimetype.endswith("+json")):
-        raise ApiProblem(415, "Unsupported Media Type",
-                         f"send the body as {' or '.join(accepted[:2])} "
-                         f"(Content-Type was {request.headers.get('Content-Type') or 'not set'!r})",
-                         kind="unsupported-media-type")
+        raise ApiProblem(
+            415,
+            "Unsupported Media Type",
+            f"send the body as {' or '.join(accepted[:2])} "
+            f"(Content-Type was {request.headers.get('Content-Type') or 'not set'!r})",
+            kind="unsupported-media-type",
+        )
     raw = request.get_data(cache=True)  # 413 past MAX_CONTENT_LENGTH
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
-        raise ApiProblem(400, "Bad Request", f"the body is not UTF-8 text (byte {exc.start})",
-                         kind="malformed-body") from None
+        raise ApiProblem(
+            400, "Bad Request", f"the body is not UTF-8 text (byte {exc.start})", kind="malformed-body"
+        ) from None
     try:
         data = parse_yaml(text, "<body>") if mimetype in YAML_TYPES else parse_json(text, "<body>")
     except InputError as error:
         raise ApiProblem.from_input(error, 400, kind="malformed-body") from None
     if not isinstance(data, dict):
-        raise ApiProblem(422, "invalid request body", "the body must be a JSON object",
-                         kind="invalid-input", errors=[Problem("<body>", type(data).__name__, "an object")])
+        raise ApiProblem(
+            422,
+            "invalid request body",
+            "the body must be a JSON object",
+            kind="invalid-input",
+            errors=[Problem("<body>", type(data).__name__, "an object")],
+        )
     return data
 
 
@@ -90,8 +105,15 @@ _WHOLE = re.compile(r"-?[0-9]{1,12}")  # ASCII digits only: str.isdigit() also t
 _DECIMAL = re.compile(r"[0-9]{1,12}(\.[0-9]{0,9})?|\.[0-9]{1,9}")
 
 
-def _query_value(name: str, default: Any, pattern: re.Pattern[str], convert: Callable[[str], Any],
-                 low: float, high: float, expected: str) -> Any:
+def _query_value(
+    name: str,
+    default: Any,
+    pattern: re.Pattern[str],
+    convert: Callable[[str], Any],
+    low: float,
+    high: float,
+    expected: str,
+) -> Any:
     """Query parameter ``name`` written as ``pattern``, converted and in [low, high] (400 naming it and
     ``expected`` otherwise); ``default`` when absent."""
     raw = request.args.get(name)
@@ -126,8 +148,13 @@ def query_bool(name: str) -> bool | None:
 
 
 def _query_problem(name: str, value: Any, expected: str) -> ApiProblem:
-    return ApiProblem(400, "invalid query parameter", f"query.{name}: got {value!r}; {expected}",
-                      kind="invalid-query", errors=[Problem(f"query.{name}", value, expected)])
+    return ApiProblem(
+        400,
+        "invalid query parameter",
+        f"query.{name}: got {value!r}; {expected}",
+        kind="invalid-query",
+        errors=[Problem(f"query.{name}", value, expected)],
+    )
 
 
 def _input(error: InputError, prefix: str = "", status: int = 422) -> ApiProblem:
@@ -135,11 +162,17 @@ def _input(error: InputError, prefix: str = "", status: int = 422) -> ApiProblem
 
 
 def _not_found(what: str, value: Any, detail: str) -> ApiProblem:
-    return ApiProblem(404, f"unknown {what}", detail, kind=f"unknown-{what.replace(' ', '-')}",
-                      errors=[Problem(what.replace(" ", "_"), value, detail)])
+    return ApiProblem(
+        404,
+        f"unknown {what}",
+        detail,
+        kind=f"unknown-{what.replace(' ', '-')}",
+        errors=[Problem(what.replace(" ", "_"), value, detail)],
+    )
 
 
 # --- catalogs, topologies, spec schema -----------------------------------------------
+
 
 @blueprint.get("/topologies")
 def topologies() -> Response:
@@ -165,9 +198,15 @@ def catalogs() -> Response:
     items = []
     for name in list_catalogs():
         summary = _catalog(name).summary()
-        items.append({"name": name, "description": summary["description"],
-                      "currency": summary["currency"], "stock_tracked": summary["stock_tracked"],
-                      "url": url_for("v1.catalog", name=name)})
+        items.append(
+            {
+                "name": name,
+                "description": summary["description"],
+                "currency": summary["currency"],
+                "stock_tracked": summary["stock_tracked"],
+                "url": url_for("v1.catalog", name=name),
+            }
+        )
     return jsonify({"catalogs": items})
 
 
@@ -177,7 +216,8 @@ def catalog(name: str) -> Response:
     found = _catalog(name)
     summary = found.summary()
     summary["transistors"]["models"] = [
-        {k: v for k, v in row.items()} for row in found.transistors.to_dict(orient="records")]
+        {k: v for k, v in row.items()} for row in found.transistors.to_dict(orient="records")
+    ]
     return jsonify(summary)
 
 
@@ -213,11 +253,20 @@ def _spec_from(data: Any, prefix: str = "") -> tuple[Any, Any]:
     except InputError as error:
         raise _input(error, prefix) from None
     if spec.parts.catalog not in list_catalogs():
-        raise ApiProblem(422, "unknown parts catalog",
-                         f"{prefix + '.' if prefix else ''}parts.catalog: got {spec.parts.catalog!r}; one of "
-                         + ", ".join(list_catalogs()), kind="unknown-catalog",
-                         errors=[Problem(f"{prefix + '.' if prefix else ''}parts.catalog", spec.parts.catalog,
-                                         "one of " + ", ".join(list_catalogs()))])
+        raise ApiProblem(
+            422,
+            "unknown parts catalog",
+            f"{prefix + '.' if prefix else ''}parts.catalog: got {spec.parts.catalog!r}; one of "
+            + ", ".join(list_catalogs()),
+            kind="unknown-catalog",
+            errors=[
+                Problem(
+                    f"{prefix + '.' if prefix else ''}parts.catalog",
+                    spec.parts.catalog,
+                    "one of " + ", ".join(list_catalogs()),
+                )
+            ],
+        )
     found = load_catalog(spec.parts.catalog)
     try:
         validate_spec(spec, found)
@@ -234,13 +283,16 @@ def evaluate() -> Response:
 
     negotiate((JSON,))
     body = read_body()
-    problems = [Problem(key, body[key], "one of the keys " + ", ".join(EVALUATE_KEYS))
-                for key in body if key not in EVALUATE_KEYS]
-    problems += [Problem(key, None, "a value is required here") for key in ("spec", "topology", "parts")
-                 if key not in body]
+    problems = [
+        Problem(key, body[key], "one of the keys " + ", ".join(EVALUATE_KEYS))
+        for key in body
+        if key not in EVALUATE_KEYS
+    ]
+    problems += [
+        Problem(key, None, "a value is required here") for key in ("spec", "topology", "parts") if key not in body
+    ]
     if problems:
-        raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input",
-                         errors=problems)
+        raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input", errors=problems)
     spec = found = topology = None
     try:  # every problem of the request is reported at once: the spec's, the topology's, the parts'
         spec, found = _spec_from(body["spec"], "spec")
@@ -255,33 +307,43 @@ def evaluate() -> Response:
         problems.append(Problem("parts", raw_parts, 'a mapping role -> value, e.g. {"r_top": "68k", "c_in": "2.2u"}'))
         raw_parts = {}
     if topology is None:
-        raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input",
-                         errors=problems)
+        raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input", errors=problems)
     known = set(topology.resistors) | set(topology.capacitors)
     parts: dict[str, float] = {}
     for role, value in raw_parts.items():
         if role not in known:
-            problems.append(Problem(f"parts.{role}", value, f"a part of {topology.name}: "
-                                    + ", ".join(topology.resistors + topology.capacitors)))
+            problems.append(
+                Problem(
+                    f"parts.{role}",
+                    value,
+                    f"a part of {topology.name}: " + ", ".join(topology.resistors + topology.capacitors),
+                )
+            )
             continue
         try:
             parts[role] = parse_quantity(value, "F" if role.startswith("c_") else "ohm", where=f"parts.{role}")
         except InputError as error:
             problems += error.problems
     if raw_parts:
-        problems += [Problem(f"parts.{role}", None, f"every resistor of {topology.name} given: "
-                             + ", ".join(topology.resistors)) for role in topology.resistors if role not in raw_parts]
+        problems += [
+            Problem(f"parts.{role}", None, f"every resistor of {topology.name} given: " + ", ".join(topology.resistors))
+            for role in topology.resistors
+            if role not in raw_parts
+        ]
     device = body.get("device")
-    if device is not None and found is not None and (not isinstance(device, str)
-                                                     or device not in set(found.transistors["id"])):
-        problems.append(Problem("device", device, f"a transistor of catalog {found.name}: "
-                                + ", ".join(found.transistors["id"])))
+    if (
+        device is not None
+        and found is not None
+        and (not isinstance(device, str) or device not in set(found.transistors["id"]))
+    ):
+        problems.append(
+            Problem("device", device, f"a transistor of catalog {found.name}: " + ", ".join(found.transistors["id"]))
+        )
     samples = body.get("samples", 1000)
     if isinstance(samples, bool) or not isinstance(samples, int) or not 1 <= samples <= MAX_SAMPLES:
         problems.append(Problem("samples", samples, f"a whole number of Monte Carlo builds, 1 to {MAX_SAMPLES}"))
     if problems or spec is None or found is None:  # the spec's own problems are among them
-        raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input",
-                         errors=problems)
+        raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input", errors=problems)
     try:
         record = assess(spec, found, topology.name, parts, device, samples=samples)
     except InputError as error:  # a design the models cannot solve: still the user's input
@@ -294,6 +356,7 @@ def _summary(problems: list[Problem]) -> str:
 
 
 # --- searches ---------------------------------------------------------------------------
+
 
 def _search_url(search_id: str) -> str:
     return url_for("v1.get_search", search_id=search_id)
@@ -313,8 +376,7 @@ def _require(search_id: str) -> int:
     try:
         return service().storage.get_study_id_from_name(search_id)
     except KeyError:
-        raise _not_found("search", search_id,
-                         f"no search with id {search_id!r}; GET /v1/searches lists them") from None
+        raise _not_found("search", search_id, f"no search with id {search_id!r}; GET /v1/searches lists them") from None
 
 
 def _stored_status(search_id: str) -> str | None:
@@ -334,19 +396,26 @@ def create() -> Response | tuple[Response, int]:
     spec, found = _spec_from(body)
     limit = service().settings.max_trials
     if spec.search.trials > limit:
-        raise ApiProblem(422, "trial budget too large",
-                         f"search.trials: got {spec.search.trials}; at most {limit} on this service "
-                         "(STAGEFIT_MAX_TRIALS): ask for fewer trials",
-                         kind="budget-too-large",
-                         errors=[Problem("search.trials", spec.search.trials, f"at most {limit}")])
+        raise ApiProblem(
+            422,
+            "trial budget too large",
+            f"search.trials: got {spec.search.trials}; at most {limit} on this service "
+            "(STAGEFIT_MAX_TRIALS): ask for fewer trials",
+            kind="budget-too-large",
+            errors=[Problem("search.trials", spec.search.trials, f"at most {limit}")],
+        )
     pool = service().jobs
     try:
         pool.admit()
     except QueueFull as full:
-        raise ApiProblem(429, "Too Many Requests",
-                         f"{full.limit} searches are queued or running on this service (STAGEFIT_MAX_QUEUE); "
-                         f"try again in {full.retry_after} s", kind="queue-full",
-                         headers={"Retry-After": str(full.retry_after)}) from None
+        raise ApiProblem(
+            429,
+            "Too Many Requests",
+            f"{full.limit} searches are queued or running on this service (STAGEFIT_MAX_QUEUE); "
+            f"try again in {full.retry_after} s",
+            kind="queue-full",
+            headers={"Retry-After": str(full.retry_after)},
+        ) from None
     try:
         search_id = create_search(spec, service().storage, catalog=found)
     except InputError as error:
@@ -356,8 +425,7 @@ def create() -> Response | tuple[Response, int]:
         pool.release()
         raise
     pool.submit(search_id, reserved=True)
-    waited = pool.wait(search_id, min(wait, service().settings.max_wait),
-                       lambda: _stored_status(search_id) in TERMINAL)
+    waited = pool.wait(search_id, min(wait, service().settings.max_wait), lambda: _stored_status(search_id) in TERMINAL)
     status = _status(search_id)
     if status["status"] == "done" and wait > 0 and waited:
         return jsonify(_result_body(search_id, status, top, None)), 200
@@ -412,12 +480,18 @@ def searches() -> Response:
     limit = query_int("limit", 50, 1, MAX_PAGE)
     offset = query_int("offset", 0, 0, 10_000_000)
     everything = list_searches(service().storage)
-    page = everything[offset:offset + limit]
+    page = everything[offset : offset + limit]
     for item in page:
         item["url"] = _search_url(item["id"])
-    body = {"searches": page, "total": len(everything), "limit": limit, "offset": offset,
-            "next": (url_for("v1.searches", limit=limit, offset=offset + limit)
-                     if offset + limit < len(everything) else None)}
+    body = {
+        "searches": page,
+        "total": len(everything),
+        "limit": limit,
+        "offset": offset,
+        "next": (
+            url_for("v1.searches", limit=limit, offset=offset + limit) if offset + limit < len(everything) else None
+        ),
+    }
     return jsonify(body)
 
 
@@ -476,8 +550,12 @@ def _candidate(search_id: str, rank: int) -> tuple[dict, Any]:
     result = _result(search_id, _status(search_id))
     if not 1 <= rank <= len(result.candidates):
         count = len(result.candidates)
-        raise _not_found("rank", rank, f"no candidate of rank {rank}; this search has "
-                         + (f"ranks 1 to {count}" if count else "no candidates yet"))
+        raise _not_found(
+            "rank",
+            rank,
+            f"no candidate of rank {rank}; this search has "
+            + (f"ranks 1 to {count}" if count else "no candidates yet"),
+        )
     return result.candidates[rank - 1], result
 
 
@@ -517,8 +595,9 @@ def _plots() -> Any:
     try:
         from optimizer import plots
     except ImportError:
-        raise ApiProblem(501, "Not Implemented", "plots are not available in this version of stagefit",
-                         kind="not-implemented") from None
+        raise ApiProblem(
+            501, "Not Implemented", "plots are not available in this version of stagefit", kind="not-implemented"
+        ) from None
     return plots
 
 
@@ -533,8 +612,7 @@ def response_svg(search_id: str, rank: int) -> Response:
 def transfer_svg(search_id: str, rank: int) -> Response:
     negotiate((SVG,))
     record, result = _candidate(search_id, rank)
-    return Response(_plots().transfer_plot(record, fmt="svg", spec_swing=result.spec.limits.swing_min),
-                    mimetype=SVG)
+    return Response(_plots().transfer_plot(record, fmt="svg", spec_swing=result.spec.limits.swing_min), mimetype=SVG)
 
 
 @blueprint.get("/searches/<search_id>/front")
@@ -555,6 +633,11 @@ def front_svg(search_id: str) -> Response:
     plots = _plots()
     result = _result(search_id, _status(search_id))
     chosen = result.candidates[0] if result.candidates else None
-    svg = plots.front_plot(result.candidates, result.spec.objective_directions, chosen=chosen,
-                           front=result.front, title=f"search {search_id}: {result.spec.name}")
+    svg = plots.front_plot(
+        result.candidates,
+        result.spec.objective_directions,
+        chosen=chosen,
+        front=result.front,
+        title=f"search {search_id}: {result.spec.name}",
+    )
     return Response(svg, mimetype=SVG)

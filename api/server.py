@@ -1,6 +1,7 @@
 """`stagefit serve`: the app under waitress, a production WSGI server (pure Python,
 cross-platform, threads rather than forked workers, so the background search pool lives
 in the one server process with the routes)."""
+
 from __future__ import annotations
 
 import logging
@@ -57,8 +58,14 @@ def _health_first(threads: int) -> Any:
     return dispatcher
 
 
-def serve(host: str = "127.0.0.1", port: int = 8750, *, config: Mapping[str, Any] | None = None,
-          out: TextIO = sys.stderr, open_path: str | None = None) -> None:
+def serve(
+    host: str = "127.0.0.1",
+    port: int = 8750,
+    *,
+    config: Mapping[str, Any] | None = None,
+    out: TextIO = sys.stderr,
+    open_path: str | None = None,
+) -> None:
     """Serve until SIGINT or SIGTERM; the search pool finishes its batch in flight first.
     Port 0 picks a free port; the address actually bound is printed to ``out``. Request
     threads: STAGEFIT_THREADS (default 8). ``open_path`` (e.g. "/" or "/searches/ID"): open
@@ -71,12 +78,18 @@ def serve(host: str = "127.0.0.1", port: int = 8750, *, config: Mapping[str, Any
     app = create_app(config)
     service = app.extensions["stagefit"]
     threads = service.settings.threads
-    server = create_server(app, host=host, port=port, threads=threads, ident="stagefit",
-                           _dispatcher=_health_first(threads),  # waitress takes its dispatcher here (a test hook in its code)
-                           # the app answers 413 (problem+json) past STAGEFIT_MAX_BODY; waitress
-                           # buffers a body before the app sees it, so it stops far larger ones
-                           max_request_body_size=max(64 * service.settings.max_body, 16 * 2**20),
-                           clear_untrusted_proxy_headers=True)
+    server = create_server(
+        app,
+        host=host,
+        port=port,
+        threads=threads,
+        ident="stagefit",
+        _dispatcher=_health_first(threads),  # waitress takes its dispatcher here (a test hook in its code)
+        # the app answers 413 (problem+json) past STAGEFIT_MAX_BODY; waitress
+        # buffers a body before the app sees it, so it stops far larger ones
+        max_request_body_size=max(64 * service.settings.max_body, 16 * 2**20),
+        clear_untrusted_proxy_headers=True,
+    )
     server.channel_class = _problem_channel()  # waitress's own refusals as problem+json too
 
     def _stop(signum: int, frame: Any) -> None:
@@ -84,8 +97,12 @@ def serve(host: str = "127.0.0.1", port: int = 8750, *, config: Mapping[str, Any
 
     previous = signal.signal(signal.SIGTERM, _stop)
     mode = "queue only" if service.settings.queue_only else f"{service.settings.workers} search worker(s)"
-    print(f"stagefit serving on http://{server.effective_host}:{server.effective_port}/ "
-          f"(storage {service.settings.storage}; {mode})", file=out, flush=True)
+    print(
+        f"stagefit serving on http://{server.effective_host}:{server.effective_port}/ "
+        f"(storage {service.settings.storage}; {mode})",
+        file=out,
+        flush=True,
+    )
     if open_path is not None:
         import webbrowser
 

@@ -12,6 +12,7 @@ Measures (issue 5's targets):
   trials and none failed), p50/p95/p99 latency.
 Writes benchmarks/results/api.md.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -45,9 +46,24 @@ class Server:
         self.log = workdir / log
         environment = {k: v for k, v in os.environ.items() if not k.startswith("STAGEFIT_")} | env
         with open(self.log, "w") as out:
-            self.proc = subprocess.Popen([sys.executable, "-m", "optimizer.cli", "serve", "--port", "0",
-                                          "--threads", str(threads), "--storage", str(self.storage)],
-                                         cwd=ROOT, env=environment, stdout=out, stderr=subprocess.STDOUT)
+            self.proc = subprocess.Popen(
+                [
+                    sys.executable,
+                    "-m",
+                    "optimizer.cli",
+                    "serve",
+                    "--port",
+                    "0",
+                    "--threads",
+                    str(threads),
+                    "--storage",
+                    str(self.storage),
+                ],
+                cwd=ROOT,
+                env=environment,
+                stdout=out,
+                stderr=subprocess.STDOUT,
+            )
         deadline = time.monotonic() + 60
         while not (found := re.search(r"serving on http://([\d.]+):(\d+)/", self.log.read_text())):
             if self.proc.poll() is not None or time.monotonic() > deadline:
@@ -85,8 +101,9 @@ class Client:
 
 
 def post_spec(client: Client, spec: dict, wait: float = 0) -> tuple[int, dict, float]:
-    status, data, seconds, _ = client.call("POST", f"/v1/searches?wait={wait}", json.dumps(spec).encode(),
-                                           {"Content-Type": "application/json"})
+    status, data, seconds, _ = client.call(
+        "POST", f"/v1/searches?wait={wait}", json.dumps(spec).encode(), {"Content-Type": "application/json"}
+    )
     return status, json.loads(data), seconds
 
 
@@ -122,8 +139,10 @@ def bench_candidates(server: Server, search_id: str, repeats: int = 50) -> dict:
             times.append(seconds)
         times.sort()
         out[label] = {"first": first, "median": statistics.median(times), "p95": times[int(0.95 * len(times)) - 1]}
-        print(f"GET candidates ({label}) first {first * 1e3:.1f} ms, median {out[label]['median'] * 1e3:.1f} ms",
-              flush=True)
+        print(
+            f"GET candidates ({label}) first {first * 1e3:.1f} ms, median {out[label]['median'] * 1e3:.1f} ms",
+            flush=True,
+        )
     return out
 
 
@@ -131,9 +150,14 @@ def load_mix(done_id: str, running_id: str, small: dict, big: dict) -> list[tupl
     """(label, method, path, body, headers): good and bad requests, each expected 2xx or 4xx."""
     js = {"Content-Type": "application/json"}
     base = f"/v1/searches/{done_id}"
-    evaluate = json.dumps({"spec": small, "topology": "divider_ce", "samples": 200,
-                           "parts": {"r_top": "270k", "r_bottom": "51k", "r_collector": "11k",
-                                     "r_emitter": "1k3"}}).encode()
+    evaluate = json.dumps(
+        {
+            "spec": small,
+            "topology": "divider_ce",
+            "samples": 200,
+            "parts": {"r_top": "270k", "r_bottom": "51k", "r_collector": "11k", "r_emitter": "1k3"},
+        }
+    ).encode()
     return [
         ("good", "GET", "/healthz", None, {}),
         ("good", "GET", base, None, {}),
@@ -222,51 +246,86 @@ def bench_load(server: Server, done_id: str, clients: int, seconds: float) -> di
     kinds: dict[str, list[float]] = {}
     for _, _, took, kind in records:
         kinds.setdefault(kind, []).append(took)
-    result = {"requests": len(records), "rate": len(records) / seconds,
-              "statuses": dict(sorted(Counter(s for _, s, _, _ in records).items())),
-              "server_errors": sum(1 for _, s, _, _ in records if s >= 500),
-              "unexpected": sum(1 for lab, s, _, _ in records if (lab == "good") != (200 <= s < 300)),
-              "kinds": {k: (len(v), statistics.median(v)) for k, v in sorted(kinds.items())},
-              "p50": pct(0.5, times), "p95": pct(0.95, times), "p99": pct(0.99, times),
-              "p95_good": pct(0.95, by_label["good"]), "p95_bad": pct(0.95, by_label["bad"]),
-              "searches": len(posted), "lost_trials": lost}
-    print(f"load: {result['requests']} requests, statuses {result['statuses']}, 5xx {result['server_errors']}, "
-          f"p95 {result['p95'] * 1e3:.0f} ms, searches {len(posted)}, lost trials {lost}", flush=True)
+    result = {
+        "requests": len(records),
+        "rate": len(records) / seconds,
+        "statuses": dict(sorted(Counter(s for _, s, _, _ in records).items())),
+        "server_errors": sum(1 for _, s, _, _ in records if s >= 500),
+        "unexpected": sum(1 for lab, s, _, _ in records if (lab == "good") != (200 <= s < 300)),
+        "kinds": {k: (len(v), statistics.median(v)) for k, v in sorted(kinds.items())},
+        "p50": pct(0.5, times),
+        "p95": pct(0.95, times),
+        "p99": pct(0.99, times),
+        "p95_good": pct(0.95, by_label["good"]),
+        "p95_bad": pct(0.95, by_label["bad"]),
+        "searches": len(posted),
+        "lost_trials": lost,
+    }
+    print(
+        f"load: {result['requests']} requests, statuses {result['statuses']}, 5xx {result['server_errors']}, "
+        f"p95 {result['p95'] * 1e3:.0f} ms, searches {len(posted)}, lost trials {lost}",
+        flush=True,
+    )
     return result
 
 
 def write(post_rows: list[dict], candidates: dict, load: dict, args: argparse.Namespace) -> None:
     overall = statistics.median(r["median"] for r in post_rows)
-    lines = ["# REST service speed (`stagefit serve`, waitress, one search worker, loopback)", "",
-             f"Machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}. "
-             "Produced by `benchmarks/bench_api.py`; the clients run on the same machine as the server.", "",
-             f"## POST /v1/searches?wait= (each example spec {args.runs} times, its own trial budget)", "",
-             "| spec | trials | median (s) | slowest (s) |", "| --- | --- | --- | --- |"]
+    lines = [
+        "# REST service speed (`stagefit serve`, waitress, one search worker, loopback)",
+        "",
+        f"Machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}. "
+        "Produced by `benchmarks/bench_api.py`; the clients run on the same machine as the server.",
+        "",
+        f"## POST /v1/searches?wait= (each example spec {args.runs} times, its own trial budget)",
+        "",
+        "| spec | trials | median (s) | slowest (s) |",
+        "| --- | --- | --- | --- |",
+    ]
     lines += [f"| {r['spec']} | {r['budget']} | {r['median']:.2f} | {r['max']:.2f} |" for r in post_rows]
-    lines += ["", f"Median over the specs: {overall:.2f} s (target < 5 s: {'met' if overall < 5 else 'not met'}).", "",
-              "## GET /v1/searches/{id}/candidates?top=20 on a finished 5,000-trial search", "",
-              "| format | first call (ms) | median (ms) | p95 (ms) |", "| --- | --- | --- | --- |"]
-    lines += [f"| {k} | {v['first'] * 1e3:.1f} | {v['median'] * 1e3:.1f} | {v['p95'] * 1e3:.1f} |"
-              for k, v in candidates.items()]
+    lines += [
+        "",
+        f"Median over the specs: {overall:.2f} s (target < 5 s: {'met' if overall < 5 else 'not met'}).",
+        "",
+        "## GET /v1/searches/{id}/candidates?top=20 on a finished 5,000-trial search",
+        "",
+        "| format | first call (ms) | median (ms) | p95 (ms) |",
+        "| --- | --- | --- | --- |",
+    ]
+    lines += [
+        f"| {k} | {v['first'] * 1e3:.1f} | {v['median'] * 1e3:.1f} | {v['p95'] * 1e3:.1f} |"
+        for k, v in candidates.items()
+    ]
     met = candidates["JSON"]["median"] < 0.1
-    lines += ["", f"Target < 100 ms median: {'met' if met else 'not met'}. The first call ranks the stored "
-              "trials; a finished search's result is then kept in memory.", "",
-              f"## {args.clients} concurrent clients for {args.seconds:g} s, good and bad requests mixed", "",
-              "Good: status, candidates (JSON and CSV), BOM CSV, netlist, front, list, topologies, evaluate, "
-              "and small searches posted by two clients while a 3,000-trial search runs. Bad: malformed JSON, "
-              "a budget over the limit, a wrong content type, a body over the limit, unknown search and rank, "
-              "units=0, an unacceptable Accept, a wrong method, a path-like catalog name.", "",
-              "| what | value |", "| --- | --- |",
-              f"| requests | {load['requests']} ({load['rate']:.0f}/s) |",
-              f"| status codes | {', '.join(f'{k}: {v}' for k, v in load['statuses'].items())} |",
-              f"| 5xx responses | {load['server_errors']} |",
-              f"| responses of the wrong class (good not 2xx, bad not 4xx) | {load['unexpected']} |",
-              f"| latency p50 / p95 / p99 (ms) | {load['p50'] * 1e3:.0f} / {load['p95'] * 1e3:.0f} / "
-              f"{load['p99'] * 1e3:.0f} |",
-              f"| p95 good / bad (ms) | {load['p95_good'] * 1e3:.0f} / {load['p95_bad'] * 1e3:.0f} |",
-              f"| searches run during the load | {load['searches']} |",
-              f"| lost trials (budget minus finished, plus failed or left running) | {load['lost_trials']} |", "",
-              "Per request kind under the load:", "", "| request | count | median (ms) |", "| --- | --- | --- |"]
+    lines += [
+        "",
+        f"Target < 100 ms median: {'met' if met else 'not met'}. The first call ranks the stored "
+        "trials; a finished search's result is then kept in memory.",
+        "",
+        f"## {args.clients} concurrent clients for {args.seconds:g} s, good and bad requests mixed",
+        "",
+        "Good: status, candidates (JSON and CSV), BOM CSV, netlist, front, list, topologies, evaluate, "
+        "and small searches posted by two clients while a 3,000-trial search runs. Bad: malformed JSON, "
+        "a budget over the limit, a wrong content type, a body over the limit, unknown search and rank, "
+        "units=0, an unacceptable Accept, a wrong method, a path-like catalog name.",
+        "",
+        "| what | value |",
+        "| --- | --- |",
+        f"| requests | {load['requests']} ({load['rate']:.0f}/s) |",
+        f"| status codes | {', '.join(f'{k}: {v}' for k, v in load['statuses'].items())} |",
+        f"| 5xx responses | {load['server_errors']} |",
+        f"| responses of the wrong class (good not 2xx, bad not 4xx) | {load['unexpected']} |",
+        f"| latency p50 / p95 / p99 (ms) | {load['p50'] * 1e3:.0f} / {load['p95'] * 1e3:.0f} / "
+        f"{load['p99'] * 1e3:.0f} |",
+        f"| p95 good / bad (ms) | {load['p95_good'] * 1e3:.0f} / {load['p95_bad'] * 1e3:.0f} |",
+        f"| searches run during the load | {load['searches']} |",
+        f"| lost trials (budget minus finished, plus failed or left running) | {load['lost_trials']} |",
+        "",
+        "Per request kind under the load:",
+        "",
+        "| request | count | median (ms) |",
+        "| --- | --- | --- |",
+    ]
     lines += [f"| `{k}` | {n} | {m * 1e3:.0f} |" for k, (n, m) in load["kinds"].items()]
     lines += [""]
     RESULTS.write_text("\n".join(lines))
@@ -280,8 +339,9 @@ def main() -> None:
     parser.add_argument("--seconds", type=float, default=30.0)
     args = parser.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
-        server = Server(Path(tmp), {"STAGEFIT_MAX_TRIALS": "20000", "STAGEFIT_MAX_WAIT": "600",
-                                    "STAGEFIT_MAX_BODY": "262144"})
+        server = Server(
+            Path(tmp), {"STAGEFIT_MAX_TRIALS": "20000", "STAGEFIT_MAX_WAIT": "600", "STAGEFIT_MAX_BODY": "262144"}
+        )
         try:
             post_rows = bench_post_wait(server, args.runs)
             spec = example_specs()["contact_pickup_buffer"]

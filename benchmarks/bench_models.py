@@ -23,6 +23,7 @@ shared machine's other load does not count against it; the wall-clock rate is sh
 Peak memory is tracemalloc's peak over one run (numpy reports its buffers to it), with the
 solver's cached workspace dropped first so that it is counted.
 """
+
 from __future__ import annotations
 
 import os
@@ -51,12 +52,44 @@ from optimizer.topologies import TOPOLOGIES, get_topology  # noqa: E402
 from optimizer.topologies.base import Conditions  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
-DEVICE = Device(id="bench-npn", polarity="npn", hfe_min=100, hfe_typ=200, hfe_max=300,
-                IS=1e-14, BF=200, NF=1.0, VAF=100, RB=50, CJE=10e-12, CJC=4e-12, TF=0.4e-9,
-                vce_sat=0.2, vceo_max=45, p_max=0.5)
-JFET_DEVICE = JFET(id="bench-njf", polarity="njf", idss_min=2e-3, idss_max=6e-3, vp_min=0.5, vp_max=1.5,
-                   vds_max=30.0, p_max=0.3, BETA=4.44e-3, VTO=-0.9, LAMBDA=0.005, CGS=10e-12, CGD=4e-12,
-                   IS=5e-13, KF=1e-18, AF=1.0, TCV=0.0022, BEX=-1.5)
+DEVICE = Device(
+    id="bench-npn",
+    polarity="npn",
+    hfe_min=100,
+    hfe_typ=200,
+    hfe_max=300,
+    IS=1e-14,
+    BF=200,
+    NF=1.0,
+    VAF=100,
+    RB=50,
+    CJE=10e-12,
+    CJC=4e-12,
+    TF=0.4e-9,
+    vce_sat=0.2,
+    vceo_max=45,
+    p_max=0.5,
+)
+JFET_DEVICE = JFET(
+    id="bench-njf",
+    polarity="njf",
+    idss_min=2e-3,
+    idss_max=6e-3,
+    vp_min=0.5,
+    vp_max=1.5,
+    vds_max=30.0,
+    p_max=0.3,
+    BETA=4.44e-3,
+    VTO=-0.9,
+    LAMBDA=0.005,
+    CGS=10e-12,
+    CGD=4e-12,
+    IS=5e-13,
+    KF=1e-18,
+    AF=1.0,
+    TCV=0.0022,
+    BEX=-1.5,
+)
 CONDITIONS = Conditions(supply=12.0, source_impedance=600.0, load_impedance=47e3)
 REPEATS = 5
 # CPU rates of the rows in the run committed before the usable swing (10 % rule on the static
@@ -64,8 +97,14 @@ REPEATS = 5
 BEFORE_ISSUE_11 = {"core": 5_309_945, "full": 341_584, "mc1000": 5_678}
 # CPU rates of the rows at the start of issue 16 (kernel speed-ups), measured by this script with the
 # reference row in the same run (machine load 3.2): the figures the speed-ups are judged against.
-BEFORE_ISSUE_16 = {"reference": 5_498_775, "core": 393_310, "full": 120_266, "sizing": 3_665, "mc100": 3_987,
-                   "mc1000": 442}
+BEFORE_ISSUE_16 = {
+    "reference": 5_498_775,
+    "core": 393_310,
+    "full": 120_266,
+    "sizing": 3_665,
+    "mc100": 3_987,
+    "mc1000": 442,
+}
 # Issue 16's targets: (what, threshold) on the measured figure of :func:`measured`.
 TARGETS = {"core": ("0.8 of reference", 0.8), "full": ("2x before issue 16", 2.0)}
 
@@ -95,9 +134,14 @@ def pin_one_cpu() -> str:
 def random_divider_ce(n: int, seed: int = 1) -> dict[str, np.ndarray]:
     """n random divider_ce designs around workable values (ohm, F)."""
     rng = np.random.default_rng(seed)
-    return {"r_top": rng.uniform(30e3, 200e3, n), "r_bottom": rng.uniform(5e3, 30e3, n),
-            "r_collector": rng.uniform(2e3, 20e3, n), "r_emitter": rng.uniform(200, 3e3, n),
-            "c_in": np.full(n, 10e-6), "c_out": np.full(n, 10e-6)}
+    return {
+        "r_top": rng.uniform(30e3, 200e3, n),
+        "r_bottom": rng.uniform(5e3, 30e3, n),
+        "r_collector": rng.uniform(2e3, 20e3, n),
+        "r_emitter": rng.uniform(200, 3e3, n),
+        "c_in": np.full(n, 10e-6),
+        "c_out": np.full(n, 10e-6),
+    }
 
 
 def measure(label: str, work, n: int, repeats: int = REPEATS) -> dict:
@@ -126,48 +170,81 @@ def main() -> None:
     tolerances = {role: 0.05 for role in core_parts}
 
     def yield_of(samples: int):
-        return lambda: monte_carlo_yield(topology, mc_parts, DEVICE, CONDITIONS, tolerances, (0.0, 50.0),
-                                         lambda m, rows: np.abs(m["gain"]) > 1.0, samples=samples,
-                                         supply_range=(11.0, 13.0))
+        return lambda: monte_carlo_yield(
+            topology,
+            mc_parts,
+            DEVICE,
+            CONDITIONS,
+            tolerances,
+            (0.0, 50.0),
+            lambda m, rows: np.abs(m["gain"]) > 1.0,
+            samples=samples,
+            supply_range=(11.0, 13.0),
+        )
+
     rows = {
-        "reference": measure("reference kernel: plain numpy, core equations without the usable swing",
-                             lambda: reference_kernel.core_metrics(core_parts, DEVICE, CONDITIONS), core_n),
-        "core": measure("core metrics (bias, gain, impedances, usable swing and clip level, current)",
-                        lambda: topology.evaluate(core_parts, DEVICE, CONDITIONS, full=False), core_n),
-        "full": measure("full metrics (plus response, noise, supply rejection, thd, ratings)",
-                        lambda: topology.evaluate(full_parts, DEVICE, CONDITIONS, full=True), full_n),
-        "sizing": measure("capacitor sizing (E12 c_in, c_out for the low corner)",
-                          lambda: size_capacitors(topology, size_parts, DEVICE, CONDITIONS, e12_caps), size_n),
-        "mc100": measure("Monte Carlo yield, 100 builds each (as every search trial; 3 temperatures x 3 supplies)",
-                         yield_of(100), mc_n),
+        "reference": measure(
+            "reference kernel: plain numpy, core equations without the usable swing",
+            lambda: reference_kernel.core_metrics(core_parts, DEVICE, CONDITIONS),
+            core_n,
+        ),
+        "core": measure(
+            "core metrics (bias, gain, impedances, usable swing and clip level, current)",
+            lambda: topology.evaluate(core_parts, DEVICE, CONDITIONS, full=False),
+            core_n,
+        ),
+        "full": measure(
+            "full metrics (plus response, noise, supply rejection, thd, ratings)",
+            lambda: topology.evaluate(full_parts, DEVICE, CONDITIONS, full=True),
+            full_n,
+        ),
+        "sizing": measure(
+            "capacitor sizing (E12 c_in, c_out for the low corner)",
+            lambda: size_capacitors(topology, size_parts, DEVICE, CONDITIONS, e12_caps),
+            size_n,
+        ),
+        "mc100": measure(
+            "Monte Carlo yield, 100 builds each (as every search trial; 3 temperatures x 3 supplies)",
+            yield_of(100),
+            mc_n,
+        ),
         "mc1000": measure("Monte Carlo yield, 1,000 builds each", yield_of(1000), mc_n),
     }
     bound = rows["reference"]["rate"]
     load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
     max_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e3
-    lines = ["# Stage model speed (divider_ce, one core)", "",
-             f"Machine: {platform.machine()}, {os.cpu_count()} cores (process {pinned}), "
-             f"Python {platform.python_version()}, numpy {np.__version__}; load average {load:.1f} "
-             f"during the run. Produced by `benchmarks/bench_models.py`, every row in the same run.", "",
-             "Rates are candidates per CPU second of this process (best of "
-             f"{REPEATS}), so other load on a shared machine does not count against them; the",
-             "wall-clock rate of the same runs is beside it. Peak memory is tracemalloc's peak over one run. "
-             "'of reference' is the row's rate over the reference kernel's, measured in this run; 'speed-up' is "
-             "the rate over the start of issue 16, both taken relative to their own run's reference kernel.", "",
-             "| what | candidates | candidates/s (CPU) | of reference | before issue 16 (CPU /s) | speed-up "
-             "| before issue 11 (CPU /s) | wall-clock /s | peak memory (MB) |",
-             "| --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
+    lines = [
+        "# Stage model speed (divider_ce, one core)",
+        "",
+        f"Machine: {platform.machine()}, {os.cpu_count()} cores (process {pinned}), "
+        f"Python {platform.python_version()}, numpy {np.__version__}; load average {load:.1f} "
+        f"during the run. Produced by `benchmarks/bench_models.py`, every row in the same run.",
+        "",
+        "Rates are candidates per CPU second of this process (best of "
+        f"{REPEATS}), so other load on a shared machine does not count against them; the",
+        "wall-clock rate of the same runs is beside it. Peak memory is tracemalloc's peak over one run. "
+        "'of reference' is the row's rate over the reference kernel's, measured in this run; 'speed-up' is "
+        "the rate over the start of issue 16, both taken relative to their own run's reference kernel.",
+        "",
+        "| what | candidates | candidates/s (CPU) | of reference | before issue 16 (CPU /s) | speed-up "
+        "| before issue 11 (CPU /s) | wall-clock /s | peak memory (MB) |",
+        "| --- | --- | --- | --- | --- | --- | --- | --- | --- |",
+    ]
     for key, row in rows.items():
         before, earlier = BEFORE_ISSUE_16.get(key), BEFORE_ISSUE_11.get(key)
         gain = "-" if before is None or key == "reference" else f"{speedup(key, rows):.2f}x"
-        lines.append(f"| {row['label']} | {row['n']:,} | {row['rate']:,.0f} | {row['rate'] / bound:.3f} | "
-                     f"{'-' if before is None else f'{before:,}'} | {gain} | "
-                     f"{'-' if earlier is None else f'{earlier:,}'} | {row['wall_rate']:,.0f} | {row['peak_mb']:.0f} |")
+        lines.append(
+            f"| {row['label']} | {row['n']:,} | {row['rate']:,.0f} | {row['rate'] / bound:.3f} | "
+            f"{'-' if before is None else f'{before:,}'} | {gain} | "
+            f"{'-' if earlier is None else f'{earlier:,}'} | {row['wall_rate']:,.0f} | {row['peak_mb']:.0f} |"
+        )
     lines += ["", "| target (issue 16) | target | measured | met |", "| --- | --- | --- | --- |"]
     for key, (what, threshold) in TARGETS.items():
         value = measured(key, rows)
         shown = f"{value:.3f} of reference" if key == "core" else f"{value:.2f}x"
-        lines.append(f"| {rows[key]['label'].split(' (')[0]} | {what} | {shown} | {'yes' if value >= threshold else 'no'} |")
+        lines.append(
+            f"| {rows[key]['label'].split(' (')[0]} | {what} | {shown} | {'yes' if value >= threshold else 'no'} |"
+        )
     lines += ["", f"Process peak resident memory over the whole benchmark: {max_rss:.0f} MB."]
     text = "\n".join(lines) + "\n"
     (ROOT / "benchmarks" / "results" / "models.md").write_text(text, encoding="utf-8")
@@ -180,11 +257,22 @@ def random_around_hand(topology_name: str, n: int, seed: int = 1) -> tuple[dict[
     topology = get_topology(topology_name)
     device = JFET_DEVICE if topology.device_kind == "jfet" else DEVICE
     jfet = {"idss": device.idss_typ, "vp": -device.VTO, "vce_sat": 0.0} if topology.device_kind == "jfet" else {}
-    hand = topology.hand_design(HandRequirements(supply=12.0, gain=5.0, load_impedance=47e3, source_impedance=600.0,
-                                                 f_low=20.0, collector_current=1e-3, **jfet))
+    hand = topology.hand_design(
+        HandRequirements(
+            supply=12.0,
+            gain=5.0,
+            load_impedance=47e3,
+            source_impedance=600.0,
+            f_low=20.0,
+            collector_current=1e-3,
+            **jfet,
+        )
+    )
     rng = np.random.default_rng(seed)
-    parts = {role: hand.get(role, 0.0) * np.exp(rng.uniform(np.log(0.5), np.log(2.0), n))
-             for role in topology.resistors + topology.capacitors}
+    parts = {
+        role: hand.get(role, 0.0) * np.exp(rng.uniform(np.log(0.5), np.log(2.0), n))
+        for role in topology.resistors + topology.capacitors
+    }
     return parts, device
 
 
@@ -192,24 +280,31 @@ def topology_table(names: list[str], scale: float = 1.0) -> None:
     """Core and full rates (candidates per CPU second, one core) of the named registered topologies."""
     pinned = pin_one_cpu()
     core_n, full_n = max(1000, int(100_000 * scale)), max(100, int(20_000 * scale))
-    lines = ["# Stage model speed per topology (one core)", "",
-             f"Machine: {platform.machine()}, {os.cpu_count()} cores (process {pinned}), Python "
-             f"{platform.python_version()}, numpy {np.__version__}; load average "
-             f"{os.getloadavg()[0]:.1f} at the start. Produced by `benchmarks/bench_models.py --topologies`.", "",
-             "Designs: each part log-uniform within x0.5..x2 of the stage's hand design (12 V, |gain| 5, "
-             "1 mA, 600 ohm into 47k). Rates are candidates per CPU second, best of "
-             f"{REPEATS}; core = bias, gain, impedances, usable swing, clip, current; full adds the "
-             "response corners, noise, supply rejection and ratings.", "",
-             "| topology | device | core candidates/s (CPU) | full candidates/s (CPU) | core peak memory (MB) |",
-             "| --- | --- | --- | --- | --- |"]
+    lines = [
+        "# Stage model speed per topology (one core)",
+        "",
+        f"Machine: {platform.machine()}, {os.cpu_count()} cores (process {pinned}), Python "
+        f"{platform.python_version()}, numpy {np.__version__}; load average "
+        f"{os.getloadavg()[0]:.1f} at the start. Produced by `benchmarks/bench_models.py --topologies`.",
+        "",
+        "Designs: each part log-uniform within x0.5..x2 of the stage's hand design (12 V, |gain| 5, "
+        "1 mA, 600 ohm into 47k). Rates are candidates per CPU second, best of "
+        f"{REPEATS}; core = bias, gain, impedances, usable swing, clip, current; full adds the "
+        "response corners, noise, supply rejection and ratings.",
+        "",
+        "| topology | device | core candidates/s (CPU) | full candidates/s (CPU) | core peak memory (MB) |",
+        "| --- | --- | --- | --- | --- |",
+    ]
     for name in names:
         topology = get_topology(name)
         core_parts, device = random_around_hand(name, core_n)
         full_parts = {k: v[:full_n] for k, v in core_parts.items()}
-        core = measure("core", lambda t=topology, p=core_parts, d=device: t.evaluate(p, d, CONDITIONS, full=False),
-                       core_n)
-        full = measure("full", lambda t=topology, p=full_parts, d=device: t.evaluate(p, d, CONDITIONS, full=True),
-                       full_n)
+        core = measure(
+            "core", lambda t=topology, p=core_parts, d=device: t.evaluate(p, d, CONDITIONS, full=False), core_n
+        )
+        full = measure(
+            "full", lambda t=topology, p=full_parts, d=device: t.evaluate(p, d, CONDITIONS, full=True), full_n
+        )
         lines.append(f"| {name} | {device.id} | {core['rate']:,.0f} | {full['rate']:,.0f} | {core['peak_mb']:.0f} |")
     text = "\n".join(lines) + "\n"
     (ROOT / "benchmarks" / "results" / "models_topologies.md").write_text(text, encoding="utf-8")
@@ -218,8 +313,10 @@ def topology_table(names: list[str], scale: float = 1.0) -> None:
 
 if __name__ == "__main__":
     if "--topologies" in sys.argv[1:]:
-        args = sys.argv[sys.argv.index("--topologies") + 1:]
-        topology_table([a for a in args if a in TOPOLOGIES] or list(TOPOLOGIES),
-                       float(args[args.index("--scale") + 1]) if "--scale" in args else 1.0)
+        args = sys.argv[sys.argv.index("--topologies") + 1 :]
+        topology_table(
+            [a for a in args if a in TOPOLOGIES] or list(TOPOLOGIES),
+            float(args[args.index("--scale") + 1]) if "--scale" in args else 1.0,
+        )
     else:
         main()

@@ -16,6 +16,7 @@ Targets (from the issue): first paint under 300 ms on loopback; page + assets un
     .venv/bin/python benchmarks/bench_pages.py [--trials 20000] [--repeat 7]
 writes benchmarks/results/pages.md.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -52,8 +53,13 @@ def make_search(journal: Path, trials: int) -> tuple[str, float]:
 def server(journal: Path, log: Path):
     env = {k: v for k, v in os.environ.items() if not k.startswith("STAGEFIT_")}
     with open(log, "w") as out:
-        proc = subprocess.Popen([sys.executable, "-m", "optimizer.cli", "serve", "--port", "0",
-                                 "--storage", str(journal)], cwd=ROOT, env=env, stdout=out, stderr=subprocess.STDOUT)
+        proc = subprocess.Popen(
+            [sys.executable, "-m", "optimizer.cli", "serve", "--port", "0", "--storage", str(journal)],
+            cwd=ROOT,
+            env=env,
+            stdout=out,
+            stderr=subprocess.STDOUT,
+        )
     try:
         deadline = time.monotonic() + 120
         while not (found := re.search(r"serving on (http://127\.0\.0\.1:\d+)/", log.read_text())):
@@ -81,10 +87,16 @@ def http_figures(base: str, page: str, fragment: str, repeat: int) -> dict:
     shell = [fetch(base + page) for _ in range(repeat)]
     data = [fetch(base + fragment) for _ in range(repeat)]
     assets = sum(fetch(base + a, "*/*")[2] for a in ("/assets/pages.css", "/assets/pages.js", "/palette.css"))
-    return {"shell_ttfb": statistics.median(s[0] for s in shell), "shell_total": statistics.median(s[1] for s in shell),
-            "data_ttfb": statistics.median(d[0] for d in data), "data_total": statistics.median(d[1] for d in data),
-            "bytes": shell[0][2] + data[0][2] + assets, "shell_bytes": shell[0][2], "data_bytes": data[0][2],
-            "asset_bytes": assets}
+    return {
+        "shell_ttfb": statistics.median(s[0] for s in shell),
+        "shell_total": statistics.median(s[1] for s in shell),
+        "data_ttfb": statistics.median(d[0] for d in data),
+        "data_total": statistics.median(d[1] for d in data),
+        "bytes": shell[0][2] + data[0][2] + assets,
+        "shell_bytes": shell[0][2],
+        "data_bytes": data[0][2],
+        "asset_bytes": assets,
+    }
 
 
 def browser_figures(base: str, page: str, ready_selector: str, repeat: int) -> dict | None:
@@ -100,8 +112,16 @@ def browser_figures(base: str, page: str, ready_selector: str, repeat: int) -> d
     with tempfile.TemporaryDirectory() as profile:
         options = webdriver.ChromeOptions()
         options.binary_location = chromium
-        for flag in ("--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-                     "--disable-component-update", "--disable-sync", "--no-first-run", f"--user-data-dir={profile}"):
+        for flag in (
+            "--headless",
+            "--no-sandbox",
+            "--disable-gpu",
+            "--disable-background-networking",
+            "--disable-component-update",
+            "--disable-sync",
+            "--no-first-run",
+            f"--user-data-dir={profile}",
+        ):
             options.add_argument(flag)
         driver = webdriver.Chrome(options=options, service=Service(driver_path))
         try:
@@ -112,7 +132,8 @@ def browser_figures(base: str, page: str, ready_selector: str, repeat: int) -> d
                 ready = driver.execute_script("return performance.now()")
                 paint = driver.execute_script(
                     "var p = performance.getEntriesByName('first-contentful-paint')[0]"
-                    " || performance.getEntriesByName('first-paint')[0]; return p ? p.startTime : null")
+                    " || performance.getEntriesByName('first-paint')[0]; return p ? p.startTime : null"
+                )
                 if k:  # the first load warms the browser's cache of the assets
                     paints.append(paint)
                     readies.append(ready)
@@ -132,8 +153,11 @@ def main() -> None:
         print(f"stored search {search_id}: {args.trials} trials in {made:.1f} s")
         pages = {
             "search page": (f"/searches/{search_id}", f"/ui/searches/{search_id}/results", "#ranked tbody tr"),
-            "design page (rank 1)": (f"/searches/{search_id}/designs/1", f"/ui/searches/{search_id}/designs/1",
-                                     ".plots img"),
+            "design page (rank 1)": (
+                f"/searches/{search_id}/designs/1",
+                f"/ui/searches/{search_id}/designs/1",
+                ".plots img",
+            ),
         }
         rows = []
         with server(journal, Path(tmp) / "server.log") as base:
@@ -141,8 +165,10 @@ def main() -> None:
                 figures = http_figures(base, page, fragment, args.repeat)
                 figures.update(browser_figures(base, page, ready, args.repeat) or {})
                 if name.startswith("design"):
-                    figures["plot_bytes"] = sum(fetch(f"{base}/v1/searches/{search_id}/candidates/1/{p}", "image/svg+xml")[2]
-                                                for p in ("response.svg", "transfer.svg"))
+                    figures["plot_bytes"] = sum(
+                        fetch(f"{base}/v1/searches/{search_id}/candidates/1/{p}", "image/svg+xml")[2]
+                        for p in ("response.svg", "transfer.svg")
+                    )
                 rows.append((name, figures))
                 print(name, {k: round(v, 4) if isinstance(v, float) else v for k, v in figures.items()})
     write(rows, args, made)
@@ -151,23 +177,34 @@ def main() -> None:
 def write(rows: list[tuple[str, dict]], args: argparse.Namespace, made: float) -> None:
     ms = lambda v: f"{v * 1e3:.0f} ms" if v is not None else "n/a"  # noqa: E731
     kb = lambda v: f"{v / 1024:.0f} KB"  # noqa: E731
-    lines = ["# Browser pages: load time and size", "",
-             f"`benchmarks/bench_pages.py --trials {args.trials} --repeat {args.repeat}`: one finished "
-             f"{args.trials:,}-trial search of `specs/bench_stock_preamp.yaml` (made in {made:.0f} s) on a journal "
-             "file, the real server (waitress) on loopback, medians. Machine: 2 cores shared with other work.", "",
-             "Targets: first paint under 300 ms on loopback; page with its assets under 200 KB.", "",
-             "| page | shell TTFB | shell full | data TTFB | data full | first paint (Chromium) | data on screen (Chromium) "
-             "| shell + data + CSS/JS | plots (SVG, apart) |",
-             "| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: |"]
+    lines = [
+        "# Browser pages: load time and size",
+        "",
+        f"`benchmarks/bench_pages.py --trials {args.trials} --repeat {args.repeat}`: one finished "
+        f"{args.trials:,}-trial search of `specs/bench_stock_preamp.yaml` (made in {made:.0f} s) on a journal "
+        "file, the real server (waitress) on loopback, medians. Machine: 2 cores shared with other work.",
+        "",
+        "Targets: first paint under 300 ms on loopback; page with its assets under 200 KB.",
+        "",
+        "| page | shell TTFB | shell full | data TTFB | data full | first paint (Chromium) | data on screen (Chromium) "
+        "| shell + data + CSS/JS | plots (SVG, apart) |",
+        "| --- | ---: | ---: | ---: | ---: | ---: | ---: | ---: | ---: |",
+    ]
     for name, f in rows:
-        lines.append(f"| {name} | {ms(f['shell_ttfb'])} | {ms(f['shell_total'])} | {ms(f['data_ttfb'])} | "
-                     f"{ms(f['data_total'])} | {ms(f.get('first_paint'))} | {ms(f.get('data_shown'))} | "
-                     f"{kb(f['bytes'])} ({kb(f['shell_bytes'])} + {kb(f['data_bytes'])} + {kb(f['asset_bytes'])}) | "
-                     f"{kb(f['plot_bytes']) if 'plot_bytes' in f else '—'} |")
-    lines += ["", "The shell paints before any data arrives (it carries none: the data fragment is fetched with "
-              "the API token); \"data on screen\" is from navigation start until the ranked table (search page) or "
-              "both plots (design page) are in the page. The design page's plots are matplotlib SVGs drawn per request "
-              "by the REST routes and are listed apart from the page weight.", ""]
+        lines.append(
+            f"| {name} | {ms(f['shell_ttfb'])} | {ms(f['shell_total'])} | {ms(f['data_ttfb'])} | "
+            f"{ms(f['data_total'])} | {ms(f.get('first_paint'))} | {ms(f.get('data_shown'))} | "
+            f"{kb(f['bytes'])} ({kb(f['shell_bytes'])} + {kb(f['data_bytes'])} + {kb(f['asset_bytes'])}) | "
+            f"{kb(f['plot_bytes']) if 'plot_bytes' in f else '—'} |"
+        )
+    lines += [
+        "",
+        "The shell paints before any data arrives (it carries none: the data fragment is fetched with "
+        'the API token); "data on screen" is from navigation start until the ranked table (search page) or '
+        "both plots (design page) are in the page. The design page's plots are matplotlib SVGs drawn per request "
+        "by the REST routes and are listed apart from the page weight.",
+        "",
+    ]
     out = ROOT / "benchmarks" / "results" / "pages.md"
     out.write_text("\n".join(lines))
     print(f"wrote {out}")

@@ -20,6 +20,7 @@
 Writes benchmarks/results/reliability.md. Tests keep bounded versions of each
 (tests/test_reliability.py, tests/test_api_server.py); this script holds the full runs.
 """
+
 from __future__ import annotations
 
 import argparse
@@ -63,6 +64,7 @@ def environment(env: dict[str, str]) -> dict[str, str]:
 
 # --- chaos ------------------------------------------------------------------------------------
 
+
 def finished_trials(journal: Path) -> dict[tuple[str, int], tuple]:
     """Every COMPLETE trial in the journal, read as a new process would: (search, number) ->
     (values, params)."""
@@ -86,8 +88,7 @@ def _tear(journal: Path) -> int:
     return len(data) - cut
 
 
-def chaos(workdir: Path, *, kills: int, searches: int, trials: int, seed: int = 7,
-          log=print) -> dict:
+def chaos(workdir: Path, *, kills: int, searches: int, trials: int, seed: int = 7, log=print) -> dict:
     """SIGKILL the server or the worker ``kills`` times during searches, tear the journal once;
     returns the figures (trials lost must be 0, every search done)."""
     rng = random.Random(seed)
@@ -97,9 +98,13 @@ def chaos(workdir: Path, *, kills: int, searches: int, trials: int, seed: int = 
 
     def start_worker() -> subprocess.Popen:
         out = open(workdir / "worker.log", "a")
-        return subprocess.Popen([sys.executable, "-m", "optimizer.cli", "worker", "--storage", str(journal),
-                                 "--poll", "0.2"], cwd=ROOT, env=environment(env), stdout=out,
-                                stderr=subprocess.STDOUT)
+        return subprocess.Popen(
+            [sys.executable, "-m", "optimizer.cli", "worker", "--storage", str(journal), "--poll", "0.2"],
+            cwd=ROOT,
+            env=environment(env),
+            stdout=out,
+            stderr=subprocess.STDOUT,
+        )
 
     worker = start_worker()
     client = Client(server)
@@ -153,11 +158,19 @@ def chaos(workdir: Path, *, kills: int, searches: int, trials: int, seed: int = 
     final = finished_trials(journal)
     lost = [key for key, record in seen.items() if final.get(key) != record]
     per_search = {i: sum(1 for (name, _) in final if name == i) for i in ids}
-    return {"kills": killed, "torn_bytes": torn_bytes, "finished_seen": len(seen), "lost": len(lost),
-            "states": states, "per_search": per_search, "budget": trials}
+    return {
+        "kills": killed,
+        "torn_bytes": torn_bytes,
+        "finished_seen": len(seen),
+        "lost": len(lost),
+        "states": states,
+        "per_search": per_search,
+        "budget": trials,
+    }
 
 
 # --- load -------------------------------------------------------------------------------------
+
 
 def percentile(values: list[float], q: float) -> float:
     ordered = sorted(values)
@@ -196,9 +209,9 @@ def load(workdir: Path, *, clients: int, seconds: float, log=print) -> dict:
         while time.monotonic() < stop:
             pick = rng.random()
             if pick < 0.15:
-                status, body, elapsed, _ = client.call("POST", "/v1/searches?wait=5",
-                                                       json.dumps(small_spec(64, seed=rng.randrange(10**6))).encode(),
-                                                       JSON)
+                status, body, elapsed, _ = client.call(
+                    "POST", "/v1/searches?wait=5", json.dumps(small_spec(64, seed=rng.randrange(10**6))).encode(), JSON
+                )
                 record("POST /v1/searches?wait=5", status, elapsed)
                 if status in (200, 202):
                     data = json.loads(body)
@@ -230,16 +243,27 @@ def load(workdir: Path, *, clients: int, seconds: float, log=print) -> dict:
     for thread in threads:
         thread.join()
     server.close()
-    rows = {route: {"n": len(t), "p50": percentile(t, 0.50), "p95": percentile(t, 0.95),
-                    "p99": percentile(t, 0.99), "max": max(t), "codes": dict(codes[route])}
-            for route, t in sorted(timings.items())}
+    rows = {
+        route: {
+            "n": len(t),
+            "p50": percentile(t, 0.50),
+            "p95": percentile(t, 0.95),
+            "p99": percentile(t, 0.99),
+            "max": max(t),
+            "codes": dict(codes[route]),
+        }
+        for route, t in sorted(timings.items())
+    }
     for route, row in rows.items():
-        log(f"load: {route:<36} n={row['n']:>6} p50 {row['p50'] * 1e3:7.1f} ms  p95 {row['p95'] * 1e3:7.1f} ms  "
-            f"p99 {row['p99'] * 1e3:7.1f} ms  codes {row['codes']}")
+        log(
+            f"load: {route:<36} n={row['n']:>6} p50 {row['p50'] * 1e3:7.1f} ms  p95 {row['p95'] * 1e3:7.1f} ms  "
+            f"p99 {row['p99'] * 1e3:7.1f} ms  codes {row['codes']}"
+        )
     return rows
 
 
 # --- memory -----------------------------------------------------------------------------------
+
 
 def bomb(levels: int) -> str:
     lines = ["l0: &l0 [lol, lol, lol, lol, lol, lol, lol, lol, lol]"]
@@ -254,11 +278,22 @@ def _hwm(pid: int) -> float:
 
 
 def _cli_peak(args: list[str]) -> tuple[int, float, str]:
-    proc = subprocess.Popen([sys.executable, "-c", "import resource, sys\nfrom optimizer.cli import main\n"
-                             "code = main(sys.argv[1:])\n"
-                             "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, file=sys.stderr)\n"
-                             "sys.exit(code)", *args], cwd=ROOT, env=environment({}),
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    proc = subprocess.Popen(
+        [
+            sys.executable,
+            "-c",
+            "import resource, sys\nfrom optimizer.cli import main\n"
+            "code = main(sys.argv[1:])\n"
+            "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, file=sys.stderr)\n"
+            "sys.exit(code)",
+            *args,
+        ],
+        cwd=ROOT,
+        env=environment({}),
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+    )
     out, err = proc.communicate(timeout=300)
     lines = err.strip().splitlines()
     return proc.returncode, int(lines[-1]) / 1024, (lines[0] if len(lines) > 1 else "")
@@ -270,8 +305,9 @@ def memory(workdir: Path, log=print) -> list[dict]:
     path = workdir / "bomb.yaml"
     path.write_text(bomb(9))  # 9**9 = 387 million leaves if expanded
     code, peak, message = _cli_peak(["check", str(path)])
-    rows.append({"case": "CLI: alias bomb (9 levels, 9**9 leaves)", "answer": f"exit {code}", "peak": peak,
-                 "message": message})
+    rows.append(
+        {"case": "CLI: alias bomb (9 levels, 9**9 leaves)", "answer": f"exit {code}", "peak": peak, "message": message}
+    )
     huge = workdir / "huge.yaml"
     huge.write_text("name: " + "x" * (50 * 2**20) + "\n")
     code, peak, message = _cli_peak(["check", str(huge)])
@@ -280,29 +316,54 @@ def memory(workdir: Path, log=print) -> list[dict]:
     deep.write_text("[" * 200_000 + "]" * 200_000)
     code, peak, message = _cli_peak(["check", str(deep)])
     rows.append({"case": "CLI: JSON nested 200,000 deep", "answer": f"exit {code}", "peak": peak, "message": message})
-    code, peak, message = _cli_peak(["evaluate", "specs/contact_pickup_buffer.yaml", "--topology", "divider_ce",
-                                     "--set", "r_top=1M", "--samples", str(10**8)])
+    code, peak, message = _cli_peak(
+        [
+            "evaluate",
+            "specs/contact_pickup_buffer.yaml",
+            "--topology",
+            "divider_ce",
+            "--set",
+            "r_top=1M",
+            "--samples",
+            str(10**8),
+        ]
+    )
     rows.append({"case": "CLI: --samples 10**8", "answer": f"exit {code}", "peak": peak, "message": message})
 
     server = Server(workdir, {"STAGEFIT_QUEUE_ONLY": "1"}, threads=8, log="memory-server.log")
     client = Client(server)
     base = _hwm(server.proc.pid)
     for label, body, content_type in (
-            ("REST: alias bomb (9 levels)", bomb(9).encode(), "application/yaml"),
-            ("REST: JSON nested 100,000 deep", b"[" * 100_000 + b"]" * 100_000, "application/json"),
-            ("REST: 200 KB name", json.dumps({**small_spec(10), "name": "n" * 200_000}).encode(), "application/json")):
+        ("REST: alias bomb (9 levels)", bomb(9).encode(), "application/yaml"),
+        ("REST: JSON nested 100,000 deep", b"[" * 100_000 + b"]" * 100_000, "application/json"),
+        ("REST: 200 KB name", json.dumps({**small_spec(10), "name": "n" * 200_000}).encode(), "application/json"),
+    ):
         status, data, _, headers = client.call("POST", "/v1/searches", body, {"Content-Type": content_type})
-        rows.append({"case": label, "answer": f"{status} {headers.get('Content-Type')}",
-                     "peak": _hwm(server.proc.pid), "message": json.loads(data).get("detail", "")[:120]})
+        rows.append(
+            {
+                "case": label,
+                "answer": f"{status} {headers.get('Content-Type')}",
+                "peak": _hwm(server.proc.pid),
+                "message": json.loads(data).get("detail", "")[:120],
+            }
+        )
     # 20 MB body: waitress refuses it from the Content-Length, before reading it
     with socket.create_connection((server.host, server.port), timeout=30) as raw:
-        raw.sendall(b"POST /v1/searches HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
-                    b"Content-Length: 20971520\r\n\r\n" + b" " * 65536)
+        raw.sendall(
+            b"POST /v1/searches HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+            b"Content-Length: 20971520\r\n\r\n" + b" " * 65536
+        )
         reply = raw.recv(65536).decode("utf-8", "replace")
     head, _, text = reply.partition("\r\n\r\n")
     kind = re.search(r"(?i)content-type: ([^\r\n]+)", head)
-    rows.append({"case": "REST: 20 MB body", "answer": f"{head.split()[1]} {kind.group(1) if kind else '?'}",
-                 "peak": _hwm(server.proc.pid), "message": text[:120]})
+    rows.append(
+        {
+            "case": "REST: 20 MB body",
+            "answer": f"{head.split()[1]} {kind.group(1) if kind else '?'}",
+            "peak": _hwm(server.proc.pid),
+            "message": text[:120],
+        }
+    )
     server.close()
     for row in rows:
         log(f"memory: {row['case']:<42} {row['answer']:<40} peak {row['peak']:.0f} MB")
@@ -312,75 +373,127 @@ def memory(workdir: Path, log=print) -> list[dict]:
 
 # --- fuzz -------------------------------------------------------------------------------------
 
+
 def fuzz(examples: int, log=print) -> dict:
     started = time.monotonic()
-    proc = subprocess.run([sys.executable, "-m", "pytest", "-q", "-s", "-p", "no:cacheprovider",
-                           "tests/test_api_server.py", "-k", "fuzz"], cwd=ROOT,
-                          env=environment({"STAGEFIT_FUZZ_EXAMPLES": str(examples)}), capture_output=True, text=True)
+    proc = subprocess.run(
+        [
+            sys.executable,
+            "-m",
+            "pytest",
+            "-q",
+            "-s",
+            "-p",
+            "no:cacheprovider",
+            "tests/test_api_server.py",
+            "-k",
+            "fuzz",
+        ],
+        cwd=ROOT,
+        env=environment({"STAGEFIT_FUZZ_EXAMPLES": str(examples)}),
+        capture_output=True,
+        text=True,
+    )
     found = re.search(r"fuzz: (\d+) stateless \+ (\d+) stateful", proc.stdout)
     summary = proc.stdout.strip().splitlines()[-1] if proc.stdout.strip() else proc.stderr[-300:]
-    out = {"examples": examples, "stateless": int(found.group(1)) if found else 0,
-           "stateful": int(found.group(2)) if found else 0, "outcome": summary,
-           "passed": proc.returncode == 0, "seconds": time.monotonic() - started}
+    out = {
+        "examples": examples,
+        "stateless": int(found.group(1)) if found else 0,
+        "stateful": int(found.group(2)) if found else 0,
+        "outcome": summary,
+        "passed": proc.returncode == 0,
+        "seconds": time.monotonic() - started,
+    }
     log(f"fuzz: {out}")
     return out
 
 
 # --- report -------------------------------------------------------------------------------------
 
+
 def report(results: dict, args: argparse.Namespace) -> str:
-    lines = ["# Reliability: faults, load and hostile input", "",
-             f"Machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
-             f"Optuna {optuna.__version__}. Last command: `.venv/bin/python benchmarks/bench_reliability.py "
-             + " ".join(sys.argv[1:]) + "`.", ""]
+    lines = [
+        "# Reliability: faults, load and hostile input",
+        "",
+        f"Machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
+        f"Optuna {optuna.__version__}. Last command: `.venv/bin/python benchmarks/bench_reliability.py "
+        + " ".join(sys.argv[1:])
+        + "`.",
+        "",
+    ]
     if "fuzz" in results:
         f = results["fuzz"]
-        lines += ["## Fuzz (schemathesis against the served OpenAPI document)", "",
-                  f"{f['examples']} examples per operation: {f['stateless']} stateless cases and {f['stateful']} "
-                  f"stateful calls (create -> poll -> candidates / front / BOM / netlist / plot -> cancel or delete), "
-                  f"checks: no 5xx, status code, content type, response schema and headers conform, invalid "
-                  f"data rejected. Outcome: **{'passed' if f['passed'] else 'FAILED'}** ({f['outcome']}), "
-                  f"{f['seconds']:.0f} s. CI runs the same tests at 80 examples per operation "
-                  "(over 2,000 cases in about two minutes).", ""]
+        lines += [
+            "## Fuzz (schemathesis against the served OpenAPI document)",
+            "",
+            f"{f['examples']} examples per operation: {f['stateless']} stateless cases and {f['stateful']} "
+            f"stateful calls (create -> poll -> candidates / front / BOM / netlist / plot -> cancel or delete), "
+            f"checks: no 5xx, status code, content type, response schema and headers conform, invalid "
+            f"data rejected. Outcome: **{'passed' if f['passed'] else 'FAILED'}** ({f['outcome']}), "
+            f"{f['seconds']:.0f} s. CI runs the same tests at 80 examples per operation "
+            "(over 2,000 cases in about two minutes).",
+            "",
+        ]
     if "chaos" in results:
         c = results["chaos"]
-        lines += ["## Chaos (SIGKILL during searches, one torn journal line)", "",
-                  f"{len(c['states'])} searches of {c['budget']} trials on one journal file, run by the server's "
-                  f"search thread and a `stagefit worker` together. Kills: server {c['kills']['server']}, worker "
-                  f"{c['kills']['worker']} (at random moments, 0.2-1.5 s apart; each restarted at once); once both "
-                  f"were down and the journal was cut {c['torn_bytes']} bytes into its last line.", "",
-                  "| finished trials seen after the kills | trials lost | searches done | trials per search |",
-                  "| --- | --- | --- | --- |",
-                  f"| {c['finished_seen']} | **{c['lost']}** | "
-                  f"{sum(s == 'done' for s in c['states'].values())} of {len(c['states'])} | "
-                  f"{', '.join(str(n) for n in c['per_search'].values())} (budget {c['budget']}) |", ""]
+        lines += [
+            "## Chaos (SIGKILL during searches, one torn journal line)",
+            "",
+            f"{len(c['states'])} searches of {c['budget']} trials on one journal file, run by the server's "
+            f"search thread and a `stagefit worker` together. Kills: server {c['kills']['server']}, worker "
+            f"{c['kills']['worker']} (at random moments, 0.2-1.5 s apart; each restarted at once); once both "
+            f"were down and the journal was cut {c['torn_bytes']} bytes into its last line.",
+            "",
+            "| finished trials seen after the kills | trials lost | searches done | trials per search |",
+            "| --- | --- | --- | --- |",
+            f"| {c['finished_seen']} | **{c['lost']}** | "
+            f"{sum(s == 'done' for s in c['states'].values())} of {len(c['states'])} | "
+            f"{', '.join(str(n) for n in c['per_search'].values())} (budget {c['budget']}) |",
+            "",
+        ]
     if "load" in results:
         rows = results["load"]
         setup = results.get("load_setup", {})
-        lines += [f"## Load ({setup.get('clients')} clients, {setup.get('seconds')} s, loopback, 8 request threads)", "",
-                  "Each client loops: 15 % `POST /v1/searches?wait=5` (64-trial searches, run by one search "
-                  "thread), 40 % status polls, 40 % candidate reads of a finished search, 5 % /healthz; a "
-                  "prober opens a new connection for /healthz every 50 ms.", "",
-                  "| route | requests | p50 ms | p95 ms | p99 ms | max ms | status codes |",
-                  "| --- | --- | --- | --- | --- | --- | --- |"]
+        lines += [
+            f"## Load ({setup.get('clients')} clients, {setup.get('seconds')} s, loopback, 8 request threads)",
+            "",
+            "Each client loops: 15 % `POST /v1/searches?wait=5` (64-trial searches, run by one search "
+            "thread), 40 % status polls, 40 % candidate reads of a finished search, 5 % /healthz; a "
+            "prober opens a new connection for /healthz every 50 ms.",
+            "",
+            "| route | requests | p50 ms | p95 ms | p99 ms | max ms | status codes |",
+            "| --- | --- | --- | --- | --- | --- | --- |",
+        ]
         for route, r in rows.items():
-            lines.append(f"| {route} | {r['n']} | {r['p50'] * 1e3:.1f} | {r['p95'] * 1e3:.1f} | {r['p99'] * 1e3:.1f} "
-                         f"| {r['max'] * 1e3:.0f} | {', '.join(f'{k}: {v}' for k, v in sorted(r['codes'].items()))} |")
+            lines.append(
+                f"| {route} | {r['n']} | {r['p50'] * 1e3:.1f} | {r['p95'] * 1e3:.1f} | {r['p99'] * 1e3:.1f} "
+                f"| {r['max'] * 1e3:.0f} | {', '.join(f'{k}: {v}' for k, v in sorted(r['codes'].items()))} |"
+            )
         probe = rows.get("GET /healthz (prober)")
         fives = sum(v for r in rows.values() for k, v in r["codes"].items() if k >= 500)
-        lines += ["", f"/healthz p99 under load: **{probe['p99'] * 1e3:.0f} ms** (target < 200 ms); 5xx answers: "
-                  f"**{fives}**. 429s are the job-queue bound (STAGEFIT_MAX_QUEUE) at work; POSTs past "
-                  "STAGEFIT_MAX_WAITERS answer 202 at once instead of holding a request thread. The other "
-                  f"routes' latency is the queue: {setup.get('clients')} clients without pause, on 2 cores shared "
-                  f"with the clients themselves and a search thread, hold the server at about "
-                  f"{sum(r['n'] for r in rows.values()) / float(setup.get('seconds') or 1):.0f} requests/s, "
-                  "so each waits behind the others (tens of ms each when the server is not saturated: "
-                  "benchmarks/results/api.md).", ""]
+        lines += [
+            "",
+            f"/healthz p99 under load: **{probe['p99'] * 1e3:.0f} ms** (target < 200 ms); 5xx answers: "
+            f"**{fives}**. 429s are the job-queue bound (STAGEFIT_MAX_QUEUE) at work; POSTs past "
+            "STAGEFIT_MAX_WAITERS answer 202 at once instead of holding a request thread. The other "
+            f"routes' latency is the queue: {setup.get('clients')} clients without pause, on 2 cores shared "
+            f"with the clients themselves and a search thread, hold the server at about "
+            f"{sum(r['n'] for r in rows.values()) / float(setup.get('seconds') or 1):.0f} requests/s, "
+            "so each waits behind the others (tens of ms each when the server is not saturated: "
+            "benchmarks/results/api.md).",
+            "",
+        ]
     if "memory" in results:
-        lines += ["## Memory peak of hostile inputs (target under 200 MB)", "",
-                  "| case | answer | peak resident MB | message |", "| --- | --- | --- | --- |"]
-        lines += [f"| {r['case']} | {r['answer']} | {r['peak']:.0f} | {r['message'].replace('|', '/')} |"
-                  for r in results["memory"]]
+        lines += [
+            "## Memory peak of hostile inputs (target under 200 MB)",
+            "",
+            "| case | answer | peak resident MB | message |",
+            "| --- | --- | --- | --- |",
+        ]
+        lines += [
+            f"| {r['case']} | {r['answer']} | {r['peak']:.0f} | {r['message'].replace('|', '/')} |"
+            for r in results["memory"]
+        ]
         lines.append("")
     return "\n".join(lines)
 

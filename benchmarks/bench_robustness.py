@@ -11,6 +11,7 @@
    (``exhaustive.exhaustive`` scores through ``search.evaluate_group``, screen included): the
    best nominal score of 10 seeded searches within 1 % of the oracle's (target: 9 of 10).
 """
+
 from __future__ import annotations
 
 import os
@@ -55,14 +56,23 @@ def _rank_one_yield(spec, result) -> float | None:
         return None
     best = result.candidates[0]
     parts = {role: p["value"] for role, p in best["parts"].items()}
-    record = assess(spec.model_copy(update={"robustness": "yield"}), load_catalog(spec.parts.catalog),
-                    best["topology"], parts, best["transistor"]["id"], samples=2000)
+    record = assess(
+        spec.model_copy(update={"robustness": "yield"}),
+        load_catalog(spec.parts.catalog),
+        best["topology"],
+        parts,
+        best["transistor"]["id"],
+        samples=2000,
+    )
     return record["metrics"].get("yield")
 
 
 def cost_and_yield(repeats: int) -> list[str]:
-    rows = ["| spec | nominal CPU s (median) | yield CPU s (median) | ratio | rank-1 yield, nominal basis | "
-            "rank-1 yield, yield basis | rank-1 meets (yield basis) |", "| --- | --- | --- | --- | --- | --- | --- |"]
+    rows = [
+        "| spec | nominal CPU s (median) | yield CPU s (median) | ratio | rank-1 yield, nominal basis | "
+        "rank-1 yield, yield basis | rank-1 meets (yield basis) |",
+        "| --- | --- | --- | --- | --- | --- | --- |",
+    ]
     for path in sorted((ROOT / "specs").glob("*.yaml")):
         spec = load_spec(path)
         times = {"nominal": [], "yield": []}
@@ -75,8 +85,10 @@ def cost_and_yield(repeats: int) -> list[str]:
         yn, yy = _rank_one_yield(spec, results["nominal"]), _rank_one_yield(spec, results["yield"])
         best = results["yield"].candidates[0]
         fmt = lambda y: "—" if y is None else f"{100 * y:.1f} %"  # noqa: E731
-        rows.append(f"| {path.stem} | {tn:.2f} | {ty:.2f} | {ty / tn:.2f}x | {fmt(yn)} | {fmt(yy)} | "
-                    f"{best['basis']['label'] if best.get('basis') else '—'} |")
+        rows.append(
+            f"| {path.stem} | {tn:.2f} | {ty:.2f} | {ty / tn:.2f}x | {fmt(yn)} | {fmt(yy)} | "
+            f"{best['basis']['label'] if best.get('basis') else '—'} |"
+        )
         print(rows[-1], flush=True)
     return rows
 
@@ -91,8 +103,11 @@ def against_oracle(seeds: int) -> list[str]:
         best = []
         for seed in range(seeds):
             result = search(with_search(spec, seed=seed))
-            scores = [trial_record(t)["score"] for t in result.study.get_trials(
-                deepcopy=False, states=(optuna.trial.TrialState.COMPLETE,)) if trial_record(t)]
+            scores = [
+                trial_record(t)["score"]
+                for t in result.study.get_trials(deepcopy=False, states=(optuna.trial.TrialState.COMPLETE,))
+                if trial_record(t)
+            ]
             best.append(max(scores))
         target = oracle.best["score"]
         hits = sum(abs(b - target) <= 0.01 * abs(target) for b in best)
@@ -110,17 +125,34 @@ def main() -> None:
         print("\n".join(against_oracle(3 if args.quick else 10)))
         return
     load = os.getloadavg()[0]
-    head = [f"Machine: {platform.machine()}, {os.cpu_count()} cores (shared; load average {load:.2f} at the start), "
-            f"Python {platform.python_version()}, numpy {np.__version__}, Optuna {optuna.__version__}, one thread. "
-            "Produced by `.venv/bin/python benchmarks/bench_robustness.py` in one run.", ""]
+    head = [
+        f"Machine: {platform.machine()}, {os.cpu_count()} cores (shared; load average {load:.2f} at the start), "
+        f"Python {platform.python_version()}, numpy {np.__version__}, Optuna {optuna.__version__}, one thread. "
+        "Produced by `.venv/bin/python benchmarks/bench_robustness.py` in one run.",
+        "",
+    ]
     cost = cost_and_yield(1 if args.quick else 2)
     oracle = against_oracle(3 if args.quick else 10)
-    text = "\n".join(["# Robustness benchmark", "", *head,
-                      "## Cost of the robustness screen and the rank-1 yield (2,000 builds)", "",
-                      "CPU time of a whole `search()` (search, shortlist assessment, front), median of the runs; "
-                      "rank-1 yields are from a 2,000-build assessment on the yield basis for both.", "",
-                      *cost, "", "## Optimum under robustness against the exhaustive oracle (same screen)", "",
-                      *oracle, "", f"Load average at the end: {os.getloadavg()[0]:.2f}.", ""])
+    text = "\n".join(
+        [
+            "# Robustness benchmark",
+            "",
+            *head,
+            "## Cost of the robustness screen and the rank-1 yield (2,000 builds)",
+            "",
+            "CPU time of a whole `search()` (search, shortlist assessment, front), median of the runs; "
+            "rank-1 yields are from a 2,000-build assessment on the yield basis for both.",
+            "",
+            *cost,
+            "",
+            "## Optimum under robustness against the exhaustive oracle (same screen)",
+            "",
+            *oracle,
+            "",
+            f"Load average at the end: {os.getloadavg()[0]:.2f}.",
+            "",
+        ]
+    )
     if not args.quick:
         RESULTS.write_text(text)
     print(text)

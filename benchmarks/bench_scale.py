@@ -23,6 +23,7 @@ one spec, ``benchmarks/specs/bs_e96_feedback_line.yaml``, seed 0, the budget giv
 The machine is shared: wall times move with its load (printed with each run), CPU times
 much less; both are recorded.
 """
+
 from __future__ import annotations
 
 import os
@@ -48,8 +49,16 @@ SPEC = ROOT / "benchmarks" / "specs" / "bs_e96_feedback_line.yaml"
 RESULTS = ROOT / "benchmarks" / "results"
 QUICK_SIZES = (4000, 16000)
 FULL_SIZES = (4000, 16000, 20000, 64000, 100000)
-TARGETS = {"journal_ratio": 1.3, "flat": 0.20, "poll_ms": 10.0, "poll_at": 64000, "reopen_s": 1.0,
-           "reopen_at": 20000, "peak_mb": 300.0, "peak_at": 64000}
+TARGETS = {
+    "journal_ratio": 1.3,
+    "flat": 0.20,
+    "poll_ms": 10.0,
+    "poll_at": 64000,
+    "reopen_s": 1.0,
+    "reopen_at": 20000,
+    "peak_mb": 300.0,
+    "peak_at": 64000,
+}
 
 
 def _peak_mb() -> float:
@@ -82,8 +91,14 @@ def child_search(trials: int, storage: str | None) -> dict:
         status = search_status(store, search_id)
         polls.append(time.perf_counter() - start)
     assert status["trials_done"] == trials, status
-    return {"trials": trials, "wall": wall, "cpu": cpu, "poll_ms": 1000 * statistics.median(polls[1:]),
-            "first_poll_ms": 1000 * polls[0], "peak_mb": _peak_mb()}
+    return {
+        "trials": trials,
+        "wall": wall,
+        "cpu": cpu,
+        "poll_ms": 1000 * statistics.median(polls[1:]),
+        "first_poll_ms": 1000 * polls[0],
+        "peak_mb": _peak_mb(),
+    }
 
 
 def child_reopen(storage: str) -> dict:
@@ -113,22 +128,29 @@ def run(sizes: tuple[int, ...], out: Path, command: str) -> None:
         load = _load()
         memory = _child("--child", "4000")
         journal_4k = _child("--child", "4000", "--storage", f"{tmp}/ratio.journal")
-        print(f"4,000 trials: memory {memory['wall']:.2f} s wall / {memory['cpu']:.2f} s CPU, journal "
-              f"{journal_4k['wall']:.2f} s / {journal_4k['cpu']:.2f} s (load {load:.1f})", flush=True)
+        print(
+            f"4,000 trials: memory {memory['wall']:.2f} s wall / {memory['cpu']:.2f} s CPU, journal "
+            f"{journal_4k['wall']:.2f} s / {journal_4k['cpu']:.2f} s (load {load:.1f})",
+            flush=True,
+        )
         for n in sizes:
             load = _load()
             path = f"{tmp}/s{n}.journal"
             row = _child("--child", str(n), "--storage", path)
             row.update(_child("--reopen", path), load=load, size_mb=Path(path).stat().st_size / 1e6)
             rows.append(row)
-            print(f"{n:,} trials: {1000 * row['wall'] / n:.2f} s wall / {1000 * row['cpu'] / n:.2f} s CPU per 1,000, "
-                  f"poll {row['poll_ms']:.2f} ms, reopen {row['reopen_s']:.2f} s, peak {row['peak_mb']:.0f} MB "
-                  f"(load {load:.1f})", flush=True)
+            print(
+                f"{n:,} trials: {1000 * row['wall'] / n:.2f} s wall / {1000 * row['cpu'] / n:.2f} s CPU per 1,000, "
+                f"poll {row['poll_ms']:.2f} ms, reopen {row['reopen_s']:.2f} s, peak {row['peak_mb']:.0f} MB "
+                f"(load {load:.1f})",
+                flush=True,
+            )
             report(memory, journal_4k, rows, out, command, started, sizes)  # rewritten after each size
 
 
-def report(memory: dict, journal: dict, rows: list[dict], out: Path, command: str, started: str,
-           sizes: tuple[int, ...]) -> None:
+def report(
+    memory: dict, journal: dict, rows: list[dict], out: Path, command: str, started: str, sizes: tuple[int, ...]
+) -> None:
     import numpy
     import optuna
 
@@ -141,28 +163,37 @@ def report(memory: dict, journal: dict, rows: list[dict], out: Path, command: st
     per_k = {r["trials"]: (1000 * r["wall"] / r["trials"], 1000 * r["cpu"] / r["trials"]) for r in rows}
     first, last = per_k[rows[0]["trials"]], per_k[rows[-1]["trials"]]
     lines = [
-        "# Scale benchmark", "",
+        "# Scale benchmark",
+        "",
         f"Machine: {platform.machine()}, {os.cpu_count()} cores shared with other developers' runs; "
         f"Python {platform.python_version()}, numpy {numpy.__version__}, Optuna {optuna.__version__}; "
         f"started {started}. Command: `{command}`. Spec `benchmarks/specs/{SPEC.name}`, seed 0, one process, "
         "storage a journal file unless said. Wall times move with the machine's load (given per row); "
-        "CPU time (user + system of the searching process) much less.", "",
-        "## Time per 1,000 trials (journal file, search without its finishing step)", "",
+        "CPU time (user + system of the searching process) much less.",
+        "",
+        "## Time per 1,000 trials (journal file, search without its finishing step)",
+        "",
         "| trials | wall (s) | CPU (s) | wall per 1,000 (s) | CPU per 1,000 (s) | status poll (ms) | first poll (ms) "
         "| reopen (s) | peak memory (MB) | journal (MB) | load |",
-        "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
+        "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |",
+    ]
     for r in rows:
         w, c = per_k[r["trials"]]
-        lines.append(f"| {r['trials']:,} | {r['wall']:.1f} | {r['cpu']:.1f} | {w:.2f} | {c:.2f} | {r['poll_ms']:.2f} | "
-                     f"{r['first_poll_ms']:.1f} | {r['reopen_s']:.2f} | {r['peak_mb']:.0f} | {r['size_mb']:.0f} | "
-                     f"{r['load']:.1f} |")
+        lines.append(
+            f"| {r['trials']:,} | {r['wall']:.1f} | {r['cpu']:.1f} | {w:.2f} | {c:.2f} | {r['poll_ms']:.2f} | "
+            f"{r['first_poll_ms']:.1f} | {r['reopen_s']:.2f} | {r['peak_mb']:.0f} | {r['size_mb']:.0f} | "
+            f"{r['load']:.1f} |"
+        )
     ratio_wall, ratio_cpu = journal["wall"] / memory["wall"], journal["cpu"] / memory["cpu"]
     poll, reopen, peak = at(TARGETS["poll_at"]), at(TARGETS["reopen_at"]), at(TARGETS["peak_at"])
     growth_cpu = last[1] / first[1] - 1
     growth_wall = last[0] / first[0] - 1
     lines += [
-        "", "## Targets", "",
-        "| target | measured | met |", "| --- | --- | --- |",
+        "",
+        "## Targets",
+        "",
+        "| target | measured | met |",
+        "| --- | --- | --- |",
         f"| 4,000-trial search on the journal file at most {TARGETS['journal_ratio']}x the in-memory search | "
         f"CPU {ratio_cpu:.2f}x ({journal['cpu']:.2f} s / {memory['cpu']:.2f} s); wall {ratio_wall:.2f}x "
         f"({journal['wall']:.2f} s / {memory['wall']:.2f} s) | {met(ratio_cpu <= TARGETS['journal_ratio'])} (CPU) |",
@@ -172,8 +203,12 @@ def report(memory: dict, journal: dict, rows: list[dict], out: Path, command: st
         f"| status poll under {TARGETS['poll_ms']:.0f} ms at {TARGETS['poll_at']:,} trials | "
         + (f"{poll['poll_ms']:.2f} ms | {met(poll['poll_ms'] < TARGETS['poll_ms'])} |" if poll else "not run | n/a |"),
         f"| reopening a stored {TARGETS['reopen_at']:,}-trial search under {TARGETS['reopen_s']:.0f} s | "
-        + (f"{reopen['reopen_s']:.2f} s (open + status, imports apart: {reopen['import_s']:.2f} s) | "
-           f"{met(reopen['reopen_s'] < TARGETS['reopen_s'])} |" if reopen else "not run | n/a |"),
+        + (
+            f"{reopen['reopen_s']:.2f} s (open + status, imports apart: {reopen['import_s']:.2f} s) | "
+            f"{met(reopen['reopen_s'] < TARGETS['reopen_s'])} |"
+            if reopen
+            else "not run | n/a |"
+        ),
         f"| a {TARGETS['peak_at']:,}-trial search under {TARGETS['peak_mb']:.0f} MB peak | "
         + (f"{peak['peak_mb']:.0f} MB | {met(peak['peak_mb'] < TARGETS['peak_mb'])} |" if peak else "not run | n/a |"),
     ]

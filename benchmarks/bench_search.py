@@ -29,6 +29,7 @@ plus 10 % of its span on each axis). Plus the oracle alone on E24 ``divider_ce``
 10 ohm..1 Mohm, the peak memory of a 20,000-trial search (a child process's own VmHWM),
 and a cProfile of one search.
 """
+
 from __future__ import annotations
 
 import os
@@ -86,8 +87,7 @@ SPECS = ROOT / "benchmarks" / "specs"
 RESULTS = ROOT / "benchmarks" / "results" / "search.md"
 SEEDS = 10
 WITHIN = 0.01  # "optimum found": best score within 1 % of the oracle's
-TARGETS = {"hits": 9, "memory_s": 3.0, "journal_s": 10.0, "hypervolume": 0.98, "oracle_s": 60.0,
-           "peak_mb": 500.0}
+TARGETS = {"hits": 9, "memory_s": 3.0, "journal_s": 10.0, "hypervolume": 0.98, "oracle_s": 60.0, "peak_mb": 500.0}
 QUICK_SPECS = ("bs_e24_divider_sensor", "bs_e96_feedback_hv")
 ORACLE_SPEC = "bs_e24_divider_mic"  # its E24 divider_ce space, widened to 10 ohm..1 Mohm
 MEMORY_TRIALS = 20_000
@@ -95,6 +95,7 @@ QUICK_TRIALS = 500  # --quick: every method's budget capped here (Optuna's defau
 
 
 # ----------------------------------------------------------------------------- hypervolume
+
 
 def to_minimise(values: np.ndarray, directions: list[str]) -> np.ndarray:
     """Objective values (points, objectives) with every maximised axis negated."""
@@ -138,10 +139,14 @@ def reference_point(front: np.ndarray) -> np.ndarray:
 
 # ----------------------------------------------------------------------------- runs
 
+
 def completed_records(storage, search_id: str) -> list[dict]:
     study = optuna.load_study(study_name=search_id, storage=storage)
-    return [search_module.trial_record(t) for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
-            if "record" in t.user_attrs]
+    return [
+        search_module.trial_record(t)
+        for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,))
+        if "record" in t.user_attrs
+    ]
 
 
 def summarise(records: list[dict], oracle, directions: list[str], ref: np.ndarray | None) -> dict:
@@ -155,8 +160,13 @@ def summarise(records: list[dict], oracle, directions: list[str], ref: np.ndarra
         pts = to_minimise(feasible, directions)
         true = hypervolume_2d(to_minimise(oracle.front, directions), ref)
         hv = hypervolume_2d(pts[pareto_mask(pts, ["minimise"] * len(directions))], ref) / true if true > 0 else None
-    return {"best": float(best), "hit": bool(hit), "beats_oracle": bool(best > target + 1e-9), "hv": hv,
-            "trials": len(records)}
+    return {
+        "best": float(best),
+        "hit": bool(hit),
+        "beats_oracle": bool(best > target + 1e-9),
+        "hv": hv,
+        "trials": len(records),
+    }
 
 
 def run_ours(spec: Spec, seed: int, storage) -> tuple[list[dict], float, float, str]:
@@ -176,8 +186,9 @@ def run_random(spec: Spec, seed: int) -> tuple[list[dict], float]:
     storage = open_storage(None)
     start = time.perf_counter()
     search_id = create_search(spec, storage, seeds=False)
-    run_search(storage, search_id, sampler=lambda space, seed_offset=0: optuna.samplers.RandomSampler(seed=seed),
-               finish=False)
+    run_search(
+        storage, search_id, sampler=lambda space, seed_offset=0: optuna.samplers.RandomSampler(seed=seed), finish=False
+    )
     elapsed = time.perf_counter() - start
     return completed_records(storage, search_id), elapsed
 
@@ -220,12 +231,20 @@ def hand_record(spec: Spec) -> tuple[dict, list[str]]:
 
 # ----------------------------------------------------------------------------- benchmark
 
+
 def median(xs: list[float]) -> float:
     return float(statistics.median(xs)) if xs else float("nan")
 
 
-def bench_spec(path: Path, seeds: int, journal_seeds: int, default_seeds: int, random_seeds: int,
-               tmp: Path, budget: int | None = None) -> dict:
+def bench_spec(
+    path: Path,
+    seeds: int,
+    journal_seeds: int,
+    default_seeds: int,
+    random_seeds: int,
+    tmp: Path,
+    budget: int | None = None,
+) -> dict:
     spec = load_spec(path)
     if budget is not None:
         spec = with_search(spec, trials=min(budget, spec.search.trials))
@@ -234,16 +253,33 @@ def bench_spec(path: Path, seeds: int, journal_seeds: int, default_seeds: int, r
     oracle = exhaustive(spec)
     oracle_s = time.perf_counter() - start
     ref = reference_point(to_minimise(oracle.front, directions)) if len(oracle.front) and len(directions) == 2 else None
-    out = {"name": spec.name, "series": spec.parts.resistor_series, "topology": spec.topologies[0],
-           "device": spec.devices[0], "range": spec.parts.resistor_range, "budget": spec.search.trials,
-           "batch": spec.search.batch_size, "oracle": oracle, "oracle_s": oracle_s, "methods": {}}
-    print(f"\n{spec.name}: {spec.parts.resistor_series} {spec.topologies[0]} {spec.devices[0]}, "
-          f"{oracle.combinations:,} combinations, oracle {oracle_s:.1f} s, best {oracle.best['score']:.4f}, "
-          f"front {len(oracle.front)} points; budget {spec.search.trials}", flush=True)
+    out = {
+        "name": spec.name,
+        "series": spec.parts.resistor_series,
+        "topology": spec.topologies[0],
+        "device": spec.devices[0],
+        "range": spec.parts.resistor_range,
+        "budget": spec.search.trials,
+        "batch": spec.search.batch_size,
+        "oracle": oracle,
+        "oracle_s": oracle_s,
+        "methods": {},
+    }
+    print(
+        f"\n{spec.name}: {spec.parts.resistor_series} {spec.topologies[0]} {spec.devices[0]}, "
+        f"{oracle.combinations:,} combinations, oracle {oracle_s:.1f} s, best {oracle.best['score']:.4f}, "
+        f"front {len(oracle.front)} points; budget {spec.search.trials}",
+        flush=True,
+    )
 
     hand, notes = hand_record(spec)
-    out["methods"]["hand method"] = {"runs": [summarise([hand], oracle, directions, ref)], "times": [0.0],
-                                     "notes": notes, "feasible": hand["feasible"], "binding": hand["binding"]}
+    out["methods"]["hand method"] = {
+        "runs": [summarise([hand], oracle, directions, ref)],
+        "times": [0.0],
+        "notes": notes,
+        "feasible": hand["feasible"],
+        "binding": hand["binding"],
+    }
 
     ours, mem_search, mem_finish = [], [], []
     for seed in range(seeds):
@@ -251,9 +287,12 @@ def bench_spec(path: Path, seeds: int, journal_seeds: int, default_seeds: int, r
         ours.append(summarise(records, oracle, directions, ref))
         mem_search.append(t_search)
         mem_finish.append(t_finish)
-        print(f"  ours seed {seed}: best {ours[-1]['best']:.4f} hit {ours[-1]['hit']} "
-              f"hv {ours[-1]['hv'] if ours[-1]['hv'] is None else round(ours[-1]['hv'], 4)} "
-              f"search {t_search:.2f} s finish {t_finish:.2f} s", flush=True)
+        print(
+            f"  ours seed {seed}: best {ours[-1]['best']:.4f} hit {ours[-1]['hit']} "
+            f"hv {ours[-1]['hv'] if ours[-1]['hv'] is None else round(ours[-1]['hv'], 4)} "
+            f"search {t_search:.2f} s finish {t_finish:.2f} s",
+            flush=True,
+        )
     journal_search, journal_finish = [], []
     for seed in range(journal_seeds):
         storage = open_storage(tmp / f"{spec.name}-{seed}.journal")
@@ -262,8 +301,12 @@ def bench_spec(path: Path, seeds: int, journal_seeds: int, default_seeds: int, r
         journal_finish.append(t_finish)
         print(f"  ours journal seed {seed}: search {t_search:.2f} s finish {t_finish:.2f} s", flush=True)
     out["methods"]["our search"] = {"runs": ours, "times": mem_search}
-    out["timing"] = {"memory_search": mem_search, "memory_finish": mem_finish,
-                     "journal_search": journal_search, "journal_finish": journal_finish}
+    out["timing"] = {
+        "memory_search": mem_search,
+        "memory_finish": mem_finish,
+        "journal_search": journal_search,
+        "journal_finish": journal_finish,
+    }
 
     runs, times = [], []
     for seed in range(random_seeds):
@@ -292,10 +335,18 @@ def oracle_alone() -> dict:
     start = time.perf_counter()
     oracle = exhaustive(spec)
     elapsed = time.perf_counter() - start
-    print(f"\noracle alone, E24 divider_ce 10 ohm..1 Mohm: {elapsed:.1f} s, {oracle.combinations:,} combinations, "
-          f"{oracle.fully_evaluated:,} fully evaluated, best {oracle.best['score']:.4f}", flush=True)
-    return {"seconds": elapsed, "combinations": oracle.combinations, "fully_evaluated": oracle.fully_evaluated,
-            "feasible": oracle.feasible, "best": oracle.best["score"]}
+    print(
+        f"\noracle alone, E24 divider_ce 10 ohm..1 Mohm: {elapsed:.1f} s, {oracle.combinations:,} combinations, "
+        f"{oracle.fully_evaluated:,} fully evaluated, best {oracle.best['score']:.4f}",
+        flush=True,
+    )
+    return {
+        "seconds": elapsed,
+        "combinations": oracle.combinations,
+        "fully_evaluated": oracle.fully_evaluated,
+        "feasible": oracle.feasible,
+        "best": oracle.best["score"],
+    }
 
 
 def peak_rss_mb() -> float:
@@ -318,8 +369,14 @@ def memory_child(spec_path: str, trials: int) -> None:
 def peak_memory(trials: int) -> dict:
     """Peak resident memory (MB) of a ``trials``-trial search, run in a child process."""
     env = {**os.environ, "OMP_NUM_THREADS": "1", "OPENBLAS_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
-    done = subprocess.run([sys.executable, __file__, "--memory-child", str(SPECS / f"{ORACLE_SPEC}.yaml"),
-                           "--trials", str(trials)], capture_output=True, text=True, env=env, cwd=ROOT, check=True)
+    done = subprocess.run(
+        [sys.executable, __file__, "--memory-child", str(SPECS / f"{ORACLE_SPEC}.yaml"), "--trials", str(trials)],
+        capture_output=True,
+        text=True,
+        env=env,
+        cwd=ROOT,
+        check=True,
+    )
     child = json.loads(done.stdout.strip().splitlines()[-1])
     peak = child["peak_mb"]
     print(f"\npeak memory of a {trials:,}-trial search: {peak:.0f} MB ({child['seconds']:.1f} s)", flush=True)
@@ -353,37 +410,47 @@ def profile_search(spec_path: Path, budget: int | None = None, top: int = 14) ->
     print(f"\nprofile of {spec.name} (seed 0, profiled {total:.2f} s, finish {sum(spent):.2f} s):")
     for ct, tt, nc, where in by_tottime:
         print(f"  {tt:7.2f} s own  {ct:7.2f} s cum  {nc:>8} calls  {where}")
-    return {"spec": spec.name, "total": total, "finish": sum(spent), "cumulative": rows[:40],
-            "own": by_tottime}
+    return {"spec": spec.name, "total": total, "finish": sum(spent), "cumulative": rows[:40], "own": by_tottime}
 
 
 # ----------------------------------------------------------------------------- report
+
 
 def fmt(x: float | None, spec: str = ".4f") -> str:
     return "—" if x is None or (isinstance(x, float) and np.isnan(x)) else format(x, spec)
 
 
-def report(results: list[dict], oracle_big: dict | None, memory: dict | None, profile: dict | None,
-           seeds: int, facts: RunFacts) -> str:
-    lines = ["# Search benchmark", "", *facts.markdown(),
-             "Single-thread BLAS. Produced by `benchmarks/bench_search.py` in one run; figures are medians "
-             "with (min..max) over the runs. Every baseline runs at least 3 seeds.", "",
-             "Each spec (`benchmarks/specs/`) names one topology and one device, so the exhaustive oracle "
-             "covers exactly the space searched. \"Hits\" counts runs whose best nominal score (max over "
-             "trials of the trial record's `score`) is within 1 % of the oracle's best. Hypervolume (HV) is "
-             "the feasible front's 2-D hypervolume over the oracle front's (minimise-space, reference = "
-             "oracle nadir + 10 % of its span per axis). Every method gets the spec's budget of trials "
-             "(ours: synthesis seeds count toward it). Time for our search is the search itself "
-             "(create + run) without the finishing shortlist assessment, which is timed apart below.", "",
-             "## Quality", "",
-             "| spec | space | oracle best (time) | budget | method | runs | hits | median best score (min..max) | "
-             "median HV (min..max) | median time, s (min..max) |",
-             "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |"]
+def report(
+    results: list[dict], oracle_big: dict | None, memory: dict | None, profile: dict | None, seeds: int, facts: RunFacts
+) -> str:
+    lines = [
+        "# Search benchmark",
+        "",
+        *facts.markdown(),
+        "Single-thread BLAS. Produced by `benchmarks/bench_search.py` in one run; figures are medians "
+        "with (min..max) over the runs. Every baseline runs at least 3 seeds.",
+        "",
+        "Each spec (`benchmarks/specs/`) names one topology and one device, so the exhaustive oracle "
+        'covers exactly the space searched. "Hits" counts runs whose best nominal score (max over '
+        "trials of the trial record's `score`) is within 1 % of the oracle's best. Hypervolume (HV) is "
+        "the feasible front's 2-D hypervolume over the oracle front's (minimise-space, reference = "
+        "oracle nadir + 10 % of its span per axis). Every method gets the spec's budget of trials "
+        "(ours: synthesis seeds count toward it). Time for our search is the search itself "
+        "(create + run) without the finishing shortlist assessment, which is timed apart below.",
+        "",
+        "## Quality",
+        "",
+        "| spec | space | oracle best (time) | budget | method | runs | hits | median best score (min..max) | "
+        "median HV (min..max) | median time, s (min..max) |",
+        "| --- | --- | --- | --- | --- | --- | --- | --- | --- | --- |",
+    ]
     for r in results:
         o = r["oracle"]
-        head = (f"{r['name']} | {r['series']} {r['topology']} {r['device']}, "
-                f"{r['range'][0]:g}..{r['range'][1]:g} ohm, {o.combinations:,} | "
-                f"{o.best['score']:.4f} ({r['oracle_s']:.1f} s) | {r['budget']:,}")
+        head = (
+            f"{r['name']} | {r['series']} {r['topology']} {r['device']}, "
+            f"{r['range'][0]:g}..{r['range'][1]:g} ohm, {o.combinations:,} | "
+            f"{o.best['score']:.4f} ({r['oracle_s']:.1f} s) | {r['budget']:,}"
+        )
         for k, (method, m) in enumerate(r["methods"].items()):
             runs = m["runs"]
             hvs = [x["hv"] for x in runs if x["hv"] is not None]
@@ -397,63 +464,87 @@ def report(results: list[dict], oracle_big: dict | None, memory: dict | None, pr
             spread_best = f" ({min(bests):.4f}..{max(bests):.4f})" if len(runs) > 1 else ""
             spread_hv = f" ({100 * min(hvs):.1f}..{100 * max(hvs):.1f})" if len(hvs) > 1 else ""
             spread_t = f" ({min(m['times']):.2f}..{max(m['times']):.2f})" if len(m["times"]) > 1 else ""
-            cells = [head if k == 0 else " | | |", method, str(len(runs)),
-                     f"{sum(x['hit'] for x in runs)}/{len(runs)}", fmt(best) + spread_best + extra,
-                     f"{100 * median(hvs):.1f} %{spread_hv}" if hvs else "—",
-                     "—" if method == "hand method" else f"{median(m['times']):.2f}{spread_t}"]
+            cells = [
+                head if k == 0 else " | | |",
+                method,
+                str(len(runs)),
+                f"{sum(x['hit'] for x in runs)}/{len(runs)}",
+                fmt(best) + spread_best + extra,
+                f"{100 * median(hvs):.1f} %{spread_hv}" if hvs else "—",
+                "—" if method == "hand method" else f"{median(m['times']):.2f}{spread_t}",
+            ]
             lines.append("| " + " | ".join(cells) + " |")
     beaten = [r["name"] for r in results for m in r["methods"].values() for x in m["runs"] if x["beats_oracle"]]
     if beaten:
         lines += ["", f"**Oracle beaten** (a run scored above the oracle's best, an oracle bug): {sorted(set(beaten))}"]
 
-    lines += ["", "## Our search: wall time (s, median)", "",
-              "| spec | budget | in memory: search | finish | total | journal file: search | finish | total |",
-              "| --- | --- | --- | --- | --- | --- | --- | --- |"]
+    lines += [
+        "",
+        "## Our search: wall time (s, median)",
+        "",
+        "| spec | budget | in memory: search | finish | total | journal file: search | finish | total |",
+        "| --- | --- | --- | --- | --- | --- | --- | --- |",
+    ]
     for r in results:
         t = r["timing"]
-        ms, mf, js, jf = (median(t[k]) for k in ("memory_search", "memory_finish", "journal_search",
-                                                  "journal_finish"))
-        lines.append(f"| {r['name']} | {r['budget']:,} | {ms:.2f} | {mf:.2f} | "
-                     f"{median([a + b for a, b in zip(t['memory_search'], t['memory_finish'])]):.2f} | "
-                     f"{fmt(js, '.2f')} | {fmt(jf, '.2f')} | "
-                     f"{fmt(median([a + b for a, b in zip(t['journal_search'], t['journal_finish'])]), '.2f')} |")
+        ms, mf, js, jf = (median(t[k]) for k in ("memory_search", "memory_finish", "journal_search", "journal_finish"))
+        lines.append(
+            f"| {r['name']} | {r['budget']:,} | {ms:.2f} | {mf:.2f} | "
+            f"{median([a + b for a, b in zip(t['memory_search'], t['memory_finish'])]):.2f} | "
+            f"{fmt(js, '.2f')} | {fmt(jf, '.2f')} | "
+            f"{fmt(median([a + b for a, b in zip(t['journal_search'], t['journal_finish'])]), '.2f')} |"
+        )
 
     lines += ["", "## Targets", ""]
     hits = [sum(x["hit"] for x in r["methods"]["our search"]["runs"]) for r in results]
-    hv_ours = [median([x["hv"] for x in r["methods"]["our search"]["runs"] if x["hv"] is not None])
-               for r in results]
+    hv_ours = [median([x["hv"] for x in r["methods"]["our search"]["runs"] if x["hv"] is not None]) for r in results]
     mem = [median(r["timing"]["memory_search"]) for r in results]
-    mem_total = [median([a + b for a, b in zip(r["timing"]["memory_search"], r["timing"]["memory_finish"])])
-                 for r in results]
-    jour_total = [median([a + b for a, b in zip(r["timing"]["journal_search"], r["timing"]["journal_finish"])])
-                  for r in results]
+    mem_total = [
+        median([a + b for a, b in zip(r["timing"]["memory_search"], r["timing"]["memory_finish"])]) for r in results
+    ]
+    jour_total = [
+        median([a + b for a, b in zip(r["timing"]["journal_search"], r["timing"]["journal_finish"])]) for r in results
+    ]
     yes = lambda ok: "met" if ok else "**missed**"  # noqa: E731
     hit_text = ", ".join(f"{r['name']} {h}/{seeds}" for r, h in zip(results, hits))
-    lines += ["| target | measured | met |", "| --- | --- | --- |",
-              f"| optimum within 1 % in >= 9 of {seeds} seeds, every spec | "
-              f"{hit_text} | "
-              f"{yes(all(h >= TARGETS['hits'] * seeds / 10 for h in hits))} |",
-              f"| median wall time < 3 s in memory (search itself) | worst {max(mem):.2f} s | "
-              f"{yes(max(mem) < TARGETS['memory_s'])} |",
-              f"| median wall time < 3 s in memory (search + finishing step) | worst {max(mem_total):.2f} s | "
-              f"{yes(max(mem_total) < TARGETS['memory_s'])} |",
-              f"| median wall time < 10 s on the journal file (search + finishing step) | "
-              f"worst {fmt(max(jour_total), '.2f')} s | {yes(max(jour_total) < TARGETS['journal_s'])} |",
-              f"| hypervolume >= 98 % of the oracle front's (median per spec) | "
-              f"worst {100 * min(hv_ours):.1f} % | {yes(min(hv_ours) >= TARGETS['hypervolume'])} |"]
+    lines += [
+        "| target | measured | met |",
+        "| --- | --- | --- |",
+        f"| optimum within 1 % in >= 9 of {seeds} seeds, every spec | "
+        f"{hit_text} | "
+        f"{yes(all(h >= TARGETS['hits'] * seeds / 10 for h in hits))} |",
+        f"| median wall time < 3 s in memory (search itself) | worst {max(mem):.2f} s | "
+        f"{yes(max(mem) < TARGETS['memory_s'])} |",
+        f"| median wall time < 3 s in memory (search + finishing step) | worst {max(mem_total):.2f} s | "
+        f"{yes(max(mem_total) < TARGETS['memory_s'])} |",
+        f"| median wall time < 10 s on the journal file (search + finishing step) | "
+        f"worst {fmt(max(jour_total), '.2f')} s | {yes(max(jour_total) < TARGETS['journal_s'])} |",
+        f"| hypervolume >= 98 % of the oracle front's (median per spec) | "
+        f"worst {100 * min(hv_ours):.1f} % | {yes(min(hv_ours) >= TARGETS['hypervolume'])} |",
+    ]
     if oracle_big:
-        lines.append(f"| oracle alone < 60 s, E24 divider_ce 10 ohm..1 Mohm | {oracle_big['seconds']:.1f} s "
-                     f"({oracle_big['combinations']:,} combinations, {oracle_big['fully_evaluated']:,} fully "
-                     f"evaluated, {oracle_big['feasible']:,} meeting the core limits) | "
-                     f"{yes(oracle_big['seconds'] < TARGETS['oracle_s'])} |")
+        lines.append(
+            f"| oracle alone < 60 s, E24 divider_ce 10 ohm..1 Mohm | {oracle_big['seconds']:.1f} s "
+            f"({oracle_big['combinations']:,} combinations, {oracle_big['fully_evaluated']:,} fully "
+            f"evaluated, {oracle_big['feasible']:,} meeting the core limits) | "
+            f"{yes(oracle_big['seconds'] < TARGETS['oracle_s'])} |"
+        )
     if memory:
-        lines.append(f"| peak memory of a {memory['trials']:,}-trial search < 500 MB | {memory['peak_mb']:.0f} MB "
-                     f"(child's VmHWM; {memory['seconds']:.1f} s) | {yes(memory['peak_mb'] < TARGETS['peak_mb'])} |")
+        lines.append(
+            f"| peak memory of a {memory['trials']:,}-trial search < 500 MB | {memory['peak_mb']:.0f} MB "
+            f"(child's VmHWM; {memory['seconds']:.1f} s) | {yes(memory['peak_mb'] < TARGETS['peak_mb'])} |"
+        )
     if profile:
-        lines += ["", f"## Where the time goes (cProfile, {profile['spec']}, seed 0, in memory)", "",
-                  f"Profiled run {profile['total']:.2f} s, of which the finishing step {profile['finish']:.2f} s "
-                  "(profiling slows Python-heavy code more than numpy).", "",
-                  "| own time (s) | cumulative (s) | calls | function |", "| --- | --- | --- | --- |"]
+        lines += [
+            "",
+            f"## Where the time goes (cProfile, {profile['spec']}, seed 0, in memory)",
+            "",
+            f"Profiled run {profile['total']:.2f} s, of which the finishing step {profile['finish']:.2f} s "
+            "(profiling slows Python-heavy code more than numpy).",
+            "",
+            "| own time (s) | cumulative (s) | calls | function |",
+            "| --- | --- | --- | --- |",
+        ]
         lines += [f"| {tt:.2f} | {ct:.2f} | {nc:,} | `{where}` |" for ct, tt, nc, where in profile["own"]]
         lines += ["", "Largest cumulative:", "", "| cumulative (s) | calls | function |", "| --- | --- | --- |"]
         lines += [f"| {ct:.2f} | {nc:,} | `{where}` |" for ct, tt, nc, where in profile["cumulative"][:18]]
@@ -475,33 +566,51 @@ def only(names: list[str]) -> None:
             r = bench_spec(SPECS / f"{name}.yaml", SEEDS, 0, 0, 0, Path(tmp))
             runs, times = r["methods"]["our search"]["runs"], r["methods"]["our search"]["times"]
             hits = sum(x["hit"] for x in runs)
-            sections[name] = "\n".join([
-                f"## {name}", "",
-                f"{r['topology']}, {r['device']}, {r['series']} {r['range'][0]:g}..{r['range'][1]:g} ohm: "
-                f"{r['oracle'].combinations:,} combinations, oracle {r['oracle_s']:.1f} s, best score "
-                f"{r['oracle'].best['score']:.4f}. Our search, budget {r['budget']} trials: optimum (best nominal "
-                f"score within {WITHIN:.0%} of the oracle's) found in {hits} of {len(runs)} seeds (target "
-                f"{TARGETS['hits']}), median search {median(times):.2f} s; load average {os.getloadavg()[0]:.1f}.", "",
-                "| seed | best score | hit |", "| --- | --- | --- |",
-                *(f"| {i} | {x['best']:.4f} | {'yes' if x['hit'] else 'no'} |" for i, x in enumerate(runs))])
-    text = ("# Search against the oracle, one small space per topology added later\n\n"
-            "Produced by `benchmarks/bench_search.py --only SPEC ...` (one section per spec).\n\n"
-            + "\n\n".join(sections[k] for k in sorted(sections)) + "\n")
+            sections[name] = "\n".join(
+                [
+                    f"## {name}",
+                    "",
+                    f"{r['topology']}, {r['device']}, {r['series']} {r['range'][0]:g}..{r['range'][1]:g} ohm: "
+                    f"{r['oracle'].combinations:,} combinations, oracle {r['oracle_s']:.1f} s, best score "
+                    f"{r['oracle'].best['score']:.4f}. Our search, budget {r['budget']} trials: optimum (best nominal "
+                    f"score within {WITHIN:.0%} of the oracle's) found in {hits} of {len(runs)} seeds (target "
+                    f"{TARGETS['hits']}), median search {median(times):.2f} s; load average {os.getloadavg()[0]:.1f}.",
+                    "",
+                    "| seed | best score | hit |",
+                    "| --- | --- | --- |",
+                    *(f"| {i} | {x['best']:.4f} | {'yes' if x['hit'] else 'no'} |" for i, x in enumerate(runs)),
+                ]
+            )
+    text = (
+        "# Search against the oracle, one small space per topology added later\n\n"
+        "Produced by `benchmarks/bench_search.py --only SPEC ...` (one section per spec).\n\n"
+        + "\n\n".join(sections[k] for k in sorted(sections))
+        + "\n"
+    )
     TOPOLOGY_RESULTS.write_text(text)
     print(text)
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    parser.add_argument("--quick", action="store_true",
-                        help=f"smoke run: 2 specs, 3 seeds, {QUICK_TRIALS} trials, prints only")
+    parser.add_argument(
+        "--quick", action="store_true", help=f"smoke run: 2 specs, 3 seeds, {QUICK_TRIALS} trials, prints only"
+    )
     parser.add_argument("--memory-child", metavar="SPEC", help=argparse.SUPPRESS)
     parser.add_argument("--trials", type=int, default=MEMORY_TRIALS, help=argparse.SUPPRESS)
-    parser.add_argument("--out", type=Path, default=None, help="results file (default: results/search.md; "
-                        "--quick writes none unless given)")
-    parser.add_argument("--only", nargs="+", metavar="SPEC",
-                        help="only these benchmark specs: the oracle and our search over 10 seeds, no baselines; "
-                             "appends a section to results/search_topologies.md")
+    parser.add_argument(
+        "--out",
+        type=Path,
+        default=None,
+        help="results file (default: results/search.md; --quick writes none unless given)",
+    )
+    parser.add_argument(
+        "--only",
+        nargs="+",
+        metavar="SPEC",
+        help="only these benchmark specs: the oracle and our search over 10 seeds, no baselines; "
+        "appends a section to results/search_topologies.md",
+    )
     args = parser.parse_args()
     if args.memory_child:
         memory_child(args.memory_child, args.trials)

@@ -17,6 +17,7 @@ Every figure is a fresh process timed from outside (``subprocess``, monotonic cl
 Each is repeated (median, min..max); the search runs use seeds 0, 1, 2, ... Also the
 largest top-level imports of ``stagefit search`` (``python -X importtime``).
 """
+
 from __future__ import annotations
 
 import json
@@ -37,8 +38,10 @@ PYTHON = sys.executable
 STAGEFIT = [PYTHON, "-m", "optimizer.cli"]
 TARGETS = {"help": 0.3, "search_startup": 0.8, "end_to_end_4k": 5.0}
 TRIALS = 4000
-SPECS = {"quick": ["specs/contact_pickup_buffer.yaml"],
-         "full": ["specs/contact_pickup_buffer.yaml", "specs/bench_stock_preamp.yaml"]}
+SPECS = {
+    "quick": ["specs/contact_pickup_buffer.yaml"],
+    "full": ["specs/contact_pickup_buffer.yaml", "specs/bench_stock_preamp.yaml"],
+}
 REPEATS = {"quick": 3, "full": 5}
 
 
@@ -67,20 +70,39 @@ def spread(xs: list[float]) -> str:
 
 
 def library_child(spec: str, trials: int, seed: int) -> list[str]:
-    code = ("import time, json\nstart = time.monotonic()\n"
-            "from optimizer import load_spec, search\nfrom optimizer.search import with_search\n"
-            "imported = time.monotonic()\n"
-            f"result = search(with_search(load_spec({spec!r}), trials={trials}, seed={seed}))\n"
-            "print(json.dumps({'imports': imported - start, 'call': time.monotonic() - imported, "
-            "'best': result.candidates[0]['score']}))")
+    code = (
+        "import time, json\nstart = time.monotonic()\n"
+        "from optimizer import load_spec, search\nfrom optimizer.search import with_search\n"
+        "imported = time.monotonic()\n"
+        f"result = search(with_search(load_spec({spec!r}), trials={trials}, seed={seed}))\n"
+        "print(json.dumps({'imports': imported - start, 'call': time.monotonic() - imported, "
+        "'best': result.candidates[0]['score']}))"
+    )
     return [PYTHON, "-c", code]
 
 
 def top_imports(spec: str, storage: Path, count: int = 8) -> list[tuple[float, str]]:
     """The largest top-level imports (cumulative seconds) of one `stagefit search` run."""
-    done = subprocess.run([PYTHON, "-X", "importtime", "-m", "optimizer.cli", "search", spec, "--storage",
-                           str(storage), "--trials", "64", "--fresh", "--quiet"], cwd=ROOT,
-                          capture_output=True, text=True)
+    done = subprocess.run(
+        [
+            PYTHON,
+            "-X",
+            "importtime",
+            "-m",
+            "optimizer.cli",
+            "search",
+            spec,
+            "--storage",
+            str(storage),
+            "--trials",
+            "64",
+            "--fresh",
+            "--quiet",
+        ],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+    )
     rows = []
     for line in done.stderr.splitlines():
         if not line.startswith("import time:") or "|" not in line:
@@ -106,8 +128,20 @@ def main() -> int:
     for spec in SPECS[mode]:
         startups, totals, lib_totals, lib_calls, lib_imports = [], [], [], [], []
         for seed in range(repeats):
-            total, first, _ = timed([*STAGEFIT, "search", spec, "--storage", str(tmp / f"s{seed}.journal"),
-                                     "--trials", str(TRIALS), "--seed", str(seed), "--fresh"])
+            total, first, _ = timed(
+                [
+                    *STAGEFIT,
+                    "search",
+                    spec,
+                    "--storage",
+                    str(tmp / f"s{seed}.journal"),
+                    "--trials",
+                    str(TRIALS),
+                    "--seed",
+                    str(seed),
+                    "--fresh",
+                ]
+            )
             startups.append(first)
             totals.append(total)
             lib_total, _, out = timed(library_child(spec, TRIALS, seed))
@@ -115,43 +149,68 @@ def main() -> int:
             lib_totals.append(lib_total)
             lib_calls.append(child["call"])
             lib_imports.append(child["imports"])
-            print(f"  {spec} seed {seed}: CLI start-up {first:.2f} s, end to end {total:.2f} s; "
-                  f"library end to end {lib_total:.2f} s (call {child['call']:.2f} s)", flush=True)
+            print(
+                f"  {spec} seed {seed}: CLI start-up {first:.2f} s, end to end {total:.2f} s; "
+                f"library end to end {lib_total:.2f} s (call {child['call']:.2f} s)",
+                flush=True,
+            )
         rows.append((spec, startups, totals, lib_totals, lib_calls, lib_imports))
     imports = top_imports(SPECS[mode][0], tmp / "imports.journal")
 
     met = lambda ok: "met" if ok else "**missed**"  # noqa: E731
     worst_startup = max(statistics.median(r[1]) for r in rows)
     worst_total = max(statistics.median(r[2]) for r in rows)
-    lines = ["# Start-up and end-to-end wall time", "",
-             f"`benchmarks/bench_startup.py`, BENCH_MODE={mode}. Every time is a fresh process measured from "
-             "outside, process start to last byte; median (min..max, n runs). Searches: "
-             f"{TRIALS:,} trials, seeds 0..{repeats - 1}, the CLI on a new journal file (its default storage "
-             "kind) with `--fresh`, the library call `optimizer.search(spec)` in memory.", ""]
+    lines = [
+        "# Start-up and end-to-end wall time",
+        "",
+        f"`benchmarks/bench_startup.py`, BENCH_MODE={mode}. Every time is a fresh process measured from "
+        "outside, process start to last byte; median (min..max, n runs). Searches: "
+        f"{TRIALS:,} trials, seeds 0..{repeats - 1}, the CLI on a new journal file (its default storage "
+        "kind) with `--fresh`, the library call `optimizer.search(spec)` in memory.",
+        "",
+    ]
     lines += facts.markdown("pandas", "pydantic", "scipy")
-    lines += ["## Targets", "", "| target | measured (s) | met |", "| --- | --- | --- |",
-              f"| `stagefit --help` < {TARGETS['help']} s | {spread(helps)} | "
-              f"{met(statistics.median(helps) < TARGETS['help'])} |",
-              f"| `stagefit search` start-up < {TARGETS['search_startup']} s (worst spec's median) | "
-              f"{worst_startup:.2f} | {met(worst_startup < TARGETS['search_startup'])} |",
-              f"| {TRIALS:,}-trial answer end to end < {TARGETS['end_to_end_4k']} s on the default storage "
-              f"(`stagefit search`, worst spec's median) | {worst_total:.2f} | "
-              f"{met(worst_total < TARGETS['end_to_end_4k'])} |", "",
-              f"For scale: a bare `python -c pass` on this interpreter takes {spread(bare)} s.", "",
-              "## Per spec", "",
-              "| spec | `stagefit search` start-up | `stagefit search` end to end | library: imports | "
-              "library: search() call | library: process end to end |",
-              "| --- | --- | --- | --- | --- | --- |"]
+    lines += [
+        "## Targets",
+        "",
+        "| target | measured (s) | met |",
+        "| --- | --- | --- |",
+        f"| `stagefit --help` < {TARGETS['help']} s | {spread(helps)} | "
+        f"{met(statistics.median(helps) < TARGETS['help'])} |",
+        f"| `stagefit search` start-up < {TARGETS['search_startup']} s (worst spec's median) | "
+        f"{worst_startup:.2f} | {met(worst_startup < TARGETS['search_startup'])} |",
+        f"| {TRIALS:,}-trial answer end to end < {TARGETS['end_to_end_4k']} s on the default storage "
+        f"(`stagefit search`, worst spec's median) | {worst_total:.2f} | "
+        f"{met(worst_total < TARGETS['end_to_end_4k'])} |",
+        "",
+        f"For scale: a bare `python -c pass` on this interpreter takes {spread(bare)} s.",
+        "",
+        "## Per spec",
+        "",
+        "| spec | `stagefit search` start-up | `stagefit search` end to end | library: imports | "
+        "library: search() call | library: process end to end |",
+        "| --- | --- | --- | --- | --- | --- |",
+    ]
     for spec, startups, totals, lib_totals, lib_calls, lib_imports in rows:
-        lines.append(f"| {Path(spec).name} | {spread(startups)} | {spread(totals)} | {spread(lib_imports)} | "
-                     f"{spread(lib_calls)} | {spread(lib_totals)} |")
-    lines += ["", "## Largest top-level imports of `stagefit search` (`python -X importtime`, one run)", "",
-              "| cumulative s | module |", "| ---: | --- |"]
+        lines.append(
+            f"| {Path(spec).name} | {spread(startups)} | {spread(totals)} | {spread(lib_imports)} | "
+            f"{spread(lib_calls)} | {spread(lib_totals)} |"
+        )
+    lines += [
+        "",
+        "## Largest top-level imports of `stagefit search` (`python -X importtime`, one run)",
+        "",
+        "| cumulative s | module |",
+        "| ---: | --- |",
+    ]
     lines += [f"| {s:.3f} | {name} |" for s, name in imports]
-    lines += ["", "Plotting (matplotlib), the server (Flask, waitress) and SQLAlchemy are imported only by the "
-              "commands that use them; `--help` imports none of Optuna, SciPy, pandas or pydantic "
-              "(tests/test_cli.py checks it). A search needs numpy, pandas (the catalog), pydantic (the "
-              "spec) and Optuna."]
+    lines += [
+        "",
+        "Plotting (matplotlib), the server (Flask, waitress) and SQLAlchemy are imported only by the "
+        "commands that use them; `--help` imports none of Optuna, SciPy, pandas or pydantic "
+        "(tests/test_cli.py checks it). A search needs numpy, pandas (the catalog), pydantic (the "
+        "spec) and Optuna.",
+    ]
     text = "\n".join(lines) + "\n"
     print(text)
     RESULTS.write_text(text)  # the header names the mode

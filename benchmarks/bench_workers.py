@@ -20,6 +20,7 @@ durable shared engines: trials/s of the whole and per worker, and a scan of ever
 for a traceback. PostgreSQL: STAGEFIT_TEST_POSTGRES (a role that may create databases) or a
 throwaway cluster; Redis: a throwaway redis-server (Debian's package).
 """
+
 from __future__ import annotations
 
 import os
@@ -79,10 +80,13 @@ def _durable_postgres(admin_url: str) -> None:
 def _grpc_proxy(pg_url: str, logdir: Path) -> tuple[subprocess.Popen, str]:
     """Optuna's gRPC storage proxy in front of ``pg_url`` in a child process -> (process, URL)."""
     port = free_port()
-    code = ("import optuna\nfrom optimizer.storage import open_storage\n"
-            f"optuna.storages.run_grpc_proxy_server(open_storage({pg_url!r}), host='127.0.0.1', port={port})")
-    proc = subprocess.Popen([sys.executable, "-c", code], cwd=ROOT, stdout=(logdir / "grpc.log").open("w"),
-                            stderr=subprocess.STDOUT)
+    code = (
+        "import optuna\nfrom optimizer.storage import open_storage\n"
+        f"optuna.storages.run_grpc_proxy_server(open_storage({pg_url!r}), host='127.0.0.1', port={port})"
+    )
+    proc = subprocess.Popen(
+        [sys.executable, "-c", code], cwd=ROOT, stdout=(logdir / "grpc.log").open("w"), stderr=subprocess.STDOUT
+    )
     url = f"grpc://127.0.0.1:{port}"
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline:
@@ -102,8 +106,11 @@ def one_runner(storage, trials: int) -> dict:
     search_id = create_search(spec, storage)
     run_search(storage, search_id, finish=False)
     wall = time.perf_counter() - start
-    trials_done = [t for t in optuna.load_study(study_name=search_id, storage=storage).get_trials(deepcopy=False)
-                   if t.state == optuna.trial.TrialState.COMPLETE]
+    trials_done = [
+        t
+        for t in optuna.load_study(study_name=search_id, storage=storage).get_trials(deepcopy=False)
+        if t.state == optuna.trial.TrialState.COMPLETE
+    ]
     return {"wall": wall, "complete": len(trials_done)}
 
 
@@ -117,8 +124,14 @@ def workers(url: str, trials: int, count: int, logdir: Path, tag: str) -> dict:
     start = time.perf_counter()
     try:
         for log in logs:
-            procs.append(subprocess.Popen([*STAGEFIT, "worker", "--storage", url, "--once", "--poll", "0.2"],
-                                          cwd=ROOT, stdout=log.open("w"), stderr=subprocess.STDOUT))
+            procs.append(
+                subprocess.Popen(
+                    [*STAGEFIT, "worker", "--storage", url, "--once", "--poll", "0.2"],
+                    cwd=ROOT,
+                    stdout=log.open("w"),
+                    stderr=subprocess.STDOUT,
+                )
+            )
         for p in procs:
             p.wait(timeout=3600)
         wall = time.perf_counter() - start
@@ -126,8 +139,13 @@ def workers(url: str, trials: int, count: int, logdir: Path, tag: str) -> dict:
         stop_processes(procs, timeout=60)
     status = load_search(storage, search_id, top=1).status
     tracebacks = [log.name for log in logs if "Traceback" in log.read_text()]
-    return {"wall": wall, "complete": status["trials_done"], "status": status["status"],
-            "codes": [p.returncode for p in procs], "tracebacks": tracebacks}
+    return {
+        "wall": wall,
+        "complete": status["trials_done"],
+        "status": status["status"],
+        "codes": [p.returncode for p in procs],
+        "tracebacks": tracebacks,
+    }
 
 
 def main() -> int:
@@ -157,7 +175,8 @@ def main() -> int:
             "PostgreSQL, Optuna RDB": lambda k: open_storage(_new_database(admin)),
             "gRPC proxy -> PostgreSQL": lambda k: open_storage(grpc_url),
             "Redis, Optuna's JournalRedisBackend": lambda k: optuna.storages.journal.JournalStorage(
-                optuna.storages.journal.JournalRedisBackend(redis_url, prefix=f"optuna{k}")),
+                optuna.storages.journal.JournalRedisBackend(redis_url, prefix=f"optuna{k}")
+            ),
             "Redis, stagefit bulk backend": lambda k: open_storage(f"{redis_url[:-1]}{1 + k}"),
         }
         single: dict[str, list[dict]] = {}
@@ -175,15 +194,20 @@ def main() -> int:
         redis_client.config_set("appendfsync", "everysec")
 
         scaling: dict[str, list[tuple[int, dict]]] = {}
-        shared = {"Redis, stagefit bulk backend": lambda count: f"{redis_url[:-1]}{7 + count}",
-                  "PostgreSQL, Optuna RDB": lambda count: _new_database(admin)}
+        shared = {
+            "Redis, stagefit bulk backend": lambda count: f"{redis_url[:-1]}{7 + count}",
+            "PostgreSQL, Optuna RDB": lambda count: _new_database(admin),
+        }
         for name, url_of in shared.items():
             scaling[name] = []
             for count in (1, 2):
                 result = workers(url_of(count), trials, count, logdir, name.split(",")[0].lower())
                 scaling[name].append((count, result))
-                print(f"  {name}, {count} worker(s): {result['wall']:.2f} s, {result['complete']} trials, "
-                      f"exit codes {result['codes']}, tracebacks {result['tracebacks'] or 'none'}", flush=True)
+                print(
+                    f"  {name}, {count} worker(s): {result['wall']:.2f} s, {result['complete']} trials, "
+                    f"exit codes {result['codes']}, tracebacks {result['tracebacks'] or 'none'}",
+                    flush=True,
+                )
     finally:
         if proxy is not None:
             stop_processes([proxy], timeout=30)
@@ -196,43 +220,67 @@ def main() -> int:
     rng = lambda runs: f"{min(r['wall'] for r in runs):.2f}..{max(r['wall'] for r in runs):.2f}"  # noqa: E731
     memory = med(single["in memory (reference)"])
     overhead = {name: 1000 * (med(runs) - memory) / trials for name, runs in single.items()}
-    lines = ["# Shared deployments: Optuna's engines for many workers", "",
-             f"`benchmarks/bench_workers.py`, BENCH_MODE={mode}: {SPEC.name} (E96 divider_ce, Monte Carlo "
-             f"robustness screen on), {trials:,} trials, seed 0, batch 64; {repeats} run(s) per engine (PostgreSQL and "
-             "the gRPC proxy: 1), median (min..max). PostgreSQL with fsync and synchronous commit on; Redis with the append-only file on.", ""]
+    lines = [
+        "# Shared deployments: Optuna's engines for many workers",
+        "",
+        f"`benchmarks/bench_workers.py`, BENCH_MODE={mode}: {SPEC.name} (E96 divider_ce, Monte Carlo "
+        f"robustness screen on), {trials:,} trials, seed 0, batch 64; {repeats} run(s) per engine (PostgreSQL and "
+        "the gRPC proxy: 1), median (min..max). PostgreSQL with fsync and synchronous commit on; Redis with the append-only file on.",
+        "",
+    ]
     lines += facts.markdown("redis", "grpcio", "psycopg", "sqlalchemy")
-    lines += ["## One runner: per-trial cost of the storage", "",
-              "| engine | durable | wall s | trials/s | overhead over in memory, ms/trial |",
-              "| --- | --- | ---: | ---: | ---: |"]
-    durable = {"in memory (reference)": "no", "journal file": "fsync per batch",
-               "PostgreSQL, Optuna RDB": "every commit", "gRPC proxy -> PostgreSQL": "every commit",
-               "Redis, Optuna's JournalRedisBackend": "AOF, fsync every second",
-               "Redis, stagefit bulk backend": "AOF, fsync every second",
-               "Redis, stagefit bulk backend, appendfsync always": "AOF, fsync every write"}
+    lines += [
+        "## One runner: per-trial cost of the storage",
+        "",
+        "| engine | durable | wall s | trials/s | overhead over in memory, ms/trial |",
+        "| --- | --- | ---: | ---: | ---: |",
+    ]
+    durable = {
+        "in memory (reference)": "no",
+        "journal file": "fsync per batch",
+        "PostgreSQL, Optuna RDB": "every commit",
+        "gRPC proxy -> PostgreSQL": "every commit",
+        "Redis, Optuna's JournalRedisBackend": "AOF, fsync every second",
+        "Redis, stagefit bulk backend": "AOF, fsync every second",
+        "Redis, stagefit bulk backend, appendfsync always": "AOF, fsync every write",
+    }
     for name, runs in single.items():
-        lines.append(f"| {name} | {durable[name]} | {med(runs):.2f} ({rng(runs)}) | {trials / med(runs):.0f} | "
-                     f"{overhead[name]:.1f} |")
-    lines += ["", "## Workers (`stagefit worker --once` processes on one search)", "",
-              "| engine | workers | wall s | trials/s | trials/s per worker | speed-up | finished | tracebacks |",
-              "| --- | ---: | ---: | ---: | ---: | ---: | ---: | --- |"]
+        lines.append(
+            f"| {name} | {durable[name]} | {med(runs):.2f} ({rng(runs)}) | {trials / med(runs):.0f} | "
+            f"{overhead[name]:.1f} |"
+        )
+    lines += [
+        "",
+        "## Workers (`stagefit worker --once` processes on one search)",
+        "",
+        "| engine | workers | wall s | trials/s | trials/s per worker | speed-up | finished | tracebacks |",
+        "| --- | ---: | ---: | ---: | ---: | ---: | ---: | --- |",
+    ]
     for name, rows in scaling.items():
         one = rows[0][1]["wall"]
         for count, r in rows:
-            lines.append(f"| {name} | {count} | {r['wall']:.2f} | {trials / r['wall']:.0f} | "
-                         f"{trials / r['wall'] / count:.0f} | {one / r['wall']:.2f}x | {r['complete']} | "
-                         f"{', '.join(r['tracebacks']) or 'none'} |")
+            lines.append(
+                f"| {name} | {count} | {r['wall']:.2f} | {trials / r['wall']:.0f} | "
+                f"{trials / r['wall'] / count:.0f} | {one / r['wall']:.2f}x | {r['complete']} | "
+                f"{', '.join(r['tracebacks']) or 'none'} |"
+            )
     chosen = "Redis, stagefit bulk backend"
     speedup = scaling[chosen][0][1]["wall"] / scaling[chosen][1][1]["wall"]
     met = lambda ok: "met" if ok else "**missed**"  # noqa: E731
-    lines += ["", "## Targets (the chosen engine: Redis journal, stagefit bulk backend)", "",
-              "| target | measured | met |", "| --- | --- | --- |",
-              f"| per-trial shared-storage overhead < {TARGETS['overhead_ms']:g} ms | {overhead[chosen]:.1f} ms | "
-              f"{met(overhead[chosen] < TARGETS['overhead_ms'])} |",
-              f"| 2 workers >= {TARGETS['two_workers']}x one worker's trials/s | {speedup:.2f}x | "
-              f"{met(speedup >= TARGETS['two_workers'])} |",
-              f"| no traceback in any worker log | "
-              f"{sum(len(r['tracebacks']) for rows in scaling.values() for _, r in rows)} logs with one | "
-              f"{met(not any(r['tracebacks'] for rows in scaling.values() for _, r in rows))} |"]
+    lines += [
+        "",
+        "## Targets (the chosen engine: Redis journal, stagefit bulk backend)",
+        "",
+        "| target | measured | met |",
+        "| --- | --- | --- |",
+        f"| per-trial shared-storage overhead < {TARGETS['overhead_ms']:g} ms | {overhead[chosen]:.1f} ms | "
+        f"{met(overhead[chosen] < TARGETS['overhead_ms'])} |",
+        f"| 2 workers >= {TARGETS['two_workers']}x one worker's trials/s | {speedup:.2f}x | "
+        f"{met(speedup >= TARGETS['two_workers'])} |",
+        f"| no traceback in any worker log | "
+        f"{sum(len(r['tracebacks']) for rows in scaling.values() for _, r in rows)} logs with one | "
+        f"{met(not any(r['tracebacks'] for rows in scaling.values() for _, r in rows))} |",
+    ]
     text = "\n".join(lines) + "\n"
     print(text)
     RESULTS.write_text(text)  # the header names the mode

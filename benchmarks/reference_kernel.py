@@ -12,6 +12,7 @@ the model's rate both ways.
 
     .venv/bin/python benchmarks/reference_kernel.py   # checks itself against the model, prints its rate
 """
+
 from __future__ import annotations
 
 import math
@@ -29,12 +30,11 @@ def core_metrics(parts: dict[str, np.ndarray], device: Device, conditions: Condi
     """gain (V/V), input_impedance, output_impedance (ohm), clip_vpp (V), supply_current (A) and
     ic (A) of divider_ce designs (parts in ohm and F, one value per candidate)."""
     n = parts["r_top"].size
-    out = {k: np.empty(n) for k in ("gain", "input_impedance", "output_impedance", "clip_vpp",
-                                    "supply_current", "ic")}
+    out = {k: np.empty(n) for k in ("gain", "input_impedance", "output_impedance", "clip_vpp", "supply_current", "ic")}
     for i in range(0, n, BLOCK):
-        block = {k: v[i:i + BLOCK] for k, v in parts.items()}
+        block = {k: v[i : i + BLOCK] for k, v in parts.items()}
         for k, v in _block(block, device, conditions).items():
-            out[k][i:i + BLOCK] = v
+            out[k][i : i + BLOCK] = v
     return out
 
 
@@ -84,15 +84,21 @@ def _block(p: dict[str, np.ndarray], d: Device, c: Conditions) -> dict[str, np.n
     v_c = vcc - rc * ic
     v_base = v_e + v + d.RB * ib
     clip = 2.0 * np.minimum(ic * r_ac, np.maximum(v_c - v_e - d.vce_sat, 0.0) * r_ac / (r_ac + re))
-    return {"gain": gain, "input_impedance": np.hypot(z_in, 1.0 / (w * p["c_in"])),
-            "output_impedance": np.hypot(rc * z_coll / (rc + z_coll), 1.0 / (w * p["c_out"])),
-            "clip_vpp": clip, "supply_current": ic + (vcc - v_base) / rt, "ic": ic}
+    return {
+        "gain": gain,
+        "input_impedance": np.hypot(z_in, 1.0 / (w * p["c_in"])),
+        "output_impedance": np.hypot(rc * z_coll / (rc + z_coll), 1.0 / (w * p["c_out"])),
+        "clip_vpp": clip,
+        "supply_current": ic + (vcc - v_base) / rt,
+        "ic": ic,
+    }
 
 
 def check_against_model(parts: dict[str, np.ndarray], device: Device, conditions: Conditions) -> float:
     """Largest relative difference between this kernel and the model's core metrics (a check that
     both compute the same thing; the model is checked against ngspice in tests/)."""
     from optimizer.topologies import get_topology
+
     model = get_topology("divider_ce").evaluate(parts, device, conditions, full=False)
     ref = core_metrics(parts, device, conditions)
     active = model.operating_point["active"]
@@ -107,6 +113,7 @@ if __name__ == "__main__":
     import time
 
     from benchmarks.bench_models import CONDITIONS, DEVICE, random_divider_ce
+
     designs = random_divider_ce(1_000_000)
     print(f"largest relative difference to the model: {check_against_model(designs, DEVICE, CONDITIONS):.1e}")
     t0 = time.process_time()

@@ -7,6 +7,7 @@
 ``BENCH_MODE`` (quick | full) is read here too, so every benchmark agrees on it: quick
 fits a CI-sized machine in minutes, full runs the large sizes.
 """
+
 from __future__ import annotations
 
 import os
@@ -59,17 +60,22 @@ class RunFacts:
     def start(cls) -> "RunFacts":
         argv = [os.path.relpath(sys.argv[0])] + sys.argv[1:] if sys.argv and sys.argv[0] else sys.argv
         prefix = f"BENCH_MODE={os.environ['BENCH_MODE']} " if os.environ.get("BENCH_MODE") else ""
-        return cls(command=prefix + ".venv/bin/python " + shlex.join(argv),
-                   started=datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
-                   load_start=os.getloadavg()[0])
+        return cls(
+            command=prefix + ".venv/bin/python " + shlex.join(argv),
+            started=datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
+            load_start=os.getloadavg()[0],
+        )
 
     def markdown(self, *packages: str) -> list[str]:
         """A paragraph: command, date, machine, load at start and end, versions."""
         names = ("numpy", "optuna", *packages)
         versions = ", ".join(f"{n} {_version(n)}" for n in dict.fromkeys(names))
         minutes = (time.monotonic() - self.wall_start) / 60
-        return [f"Command: `{self.command}` ({self.started}, {minutes:.1f} min). "
-                f"Machine: {_cpu_model()}, {os.cpu_count()} cores, {platform.system()} {platform.release()}; "
-                f"load average {self.load_start:.2f} at the start and {os.getloadavg()[0]:.2f} at the end "
-                "(the cores are shared with other work: figures above about 1 per core are slowed by it). "
-                f"Python {platform.python_version()}, {versions}.", ""]
+        return [
+            f"Command: `{self.command}` ({self.started}, {minutes:.1f} min). "
+            f"Machine: {_cpu_model()}, {os.cpu_count()} cores, {platform.system()} {platform.release()}; "
+            f"load average {self.load_start:.2f} at the start and {os.getloadavg()[0]:.2f} at the end "
+            "(the cores are shared with other work: figures above about 1 per core are slowed by it). "
+            f"Python {platform.python_version()}, {versions}.",
+            "",
+        ]

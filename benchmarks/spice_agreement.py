@@ -11,6 +11,7 @@ designs (spice_designs.jfet_check_designs) follow the bipolar ones; their "ic" i
 simulates only that topology's designs and writes them as their own section at the end of the
 table (replacing an earlier section of that topology), leaving the other rows as they are.
 """
+
 from __future__ import annotations
 
 import sys
@@ -35,9 +36,11 @@ def all_designs() -> list:
 
 
 def _row(r: dict) -> str:
-    return (f"| {r['design']} | {r['metric']} | {_fmt(r['model'])} | {_fmt(r['simulator'])} | "
-            f"{r['error']:+.3g} | {r['tolerance']:g} | {'yes' if r['within'] else 'NO'} | "
-            f"{_fmt(r.get('hand'))} | {_fmt(r.get('hand_error'))} |")
+    return (
+        f"| {r['design']} | {r['metric']} | {_fmt(r['model'])} | {_fmt(r['simulator'])} | "
+        f"{r['error']:+.3g} | {r['tolerance']:g} | {'yes' if r['within'] else 'NO'} | "
+        f"{_fmt(r.get('hand'))} | {_fmt(r.get('hand_error'))} |"
+    )
 
 
 def topology_section(topology: str) -> int:
@@ -48,10 +51,17 @@ def topology_section(topology: str) -> int:
     text = out.read_text(encoding="utf-8")
     text = text.split(marker)[0].rstrip("\n") + "\n"
     failed = [r for r in rows if not r["within"]]
-    lines = [marker.strip(), "", f"Produced by `benchmarks/spice_agreement.py --topology {topology}`.", "",
-             "| design | metric | model | ngspice | error | tolerance | within | hand | hand error |",
-             "| --- | --- | --- | --- | --- | --- | --- | --- | --- |", *map(_row, rows), "",
-             f"Rows: {len(rows)}; outside tolerance: {len(failed)}."]
+    lines = [
+        marker.strip(),
+        "",
+        f"Produced by `benchmarks/spice_agreement.py --topology {topology}`.",
+        "",
+        "| design | metric | model | ngspice | error | tolerance | within | hand | hand error |",
+        "| --- | --- | --- | --- | --- | --- | --- | --- | --- |",
+        *map(_row, rows),
+        "",
+        f"Rows: {len(rows)}; outside tolerance: {len(failed)}.",
+    ]
     out.write_text(text + "\n" + "\n".join(lines) + "\n", encoding="utf-8")
     print(lines[-1])
     return 1 if failed else 0
@@ -75,9 +85,12 @@ def main() -> int:
     lines += map(_row, rows)
     failed = [r for r in rows if not r["within"]]
     gain_rows = [r for r in rows if r["metric"] == "gain"]
-    lines += ["", f"Rows: {len(rows)}; outside tolerance: {len(failed)}.",
-              f"Mean |gain error|: model {sum(abs(r['error']) for r in gain_rows) / len(gain_rows):.2%}, "
-              f"hand method {sum(abs(r['hand_error']) for r in gain_rows) / len(gain_rows):.2%}."]
+    lines += [
+        "",
+        f"Rows: {len(rows)}; outside tolerance: {len(failed)}.",
+        f"Mean |gain error|: model {sum(abs(r['error']) for r in gain_rows) / len(gain_rows):.2%}, "
+        f"hand method {sum(abs(r['hand_error']) for r in gain_rows) / len(gain_rows):.2%}.",
+    ]
     out.write_text("\n".join(lines) + "\n", encoding="utf-8")
     print("\n".join(lines[-2:]))
     print(f"written {out.relative_to(ROOT)}")

@@ -12,6 +12,7 @@ The names below are imported on first use (PEP 562), so that importing one light
 (``optimizer.cli`` for ``stagefit --help``, ``optimizer.errors``) does not pull in Optuna,
 SciPy, pandas and pydantic.
 """
+
 from __future__ import annotations
 
 import importlib
@@ -20,10 +21,16 @@ import types
 from typing import Any
 
 #: public name -> the module that defines it
-_EXPORTS = {"assess": "optimizer.candidates", "list_catalogs": "optimizer.catalog",
-            "load_catalog": "optimizer.catalog", "search": "optimizer.search", "load_spec": "optimizer.spec",
-            "parse_spec": "optimizer.spec", "TOPOLOGIES": "optimizer.topologies",
-            "get_topology": "optimizer.topologies"}
+_EXPORTS = {
+    "assess": "optimizer.candidates",
+    "list_catalogs": "optimizer.catalog",
+    "load_catalog": "optimizer.catalog",
+    "search": "optimizer.search",
+    "load_spec": "optimizer.spec",
+    "parse_spec": "optimizer.spec",
+    "TOPOLOGIES": "optimizer.topologies",
+    "get_topology": "optimizer.topologies",
+}
 
 __all__ = list(_EXPORTS)
 

@@ -23,6 +23,7 @@ Exports carry the design's identity (spec name and digest, catalog, topology, de
 its basis (the candidate's ``basis`` label, "basis not stated" without one) and its
 cautions: in the JSON as keys, in the CSV as leading ``#`` comment lines before the header.
 """
+
 from __future__ import annotations
 
 import io
@@ -44,15 +45,41 @@ from optimizer.topologies import get_topology
 from optimizer.units import format_value
 
 KIND_ORDER = ("resistor", "capacitor", "transistor")
-COLUMNS = ("designators", "kind", "roles", "part_id", "value", "label", "tolerance", "rating", "package",
-           "technology", "polarised", "orientation", "qty_per_unit", "qty_total", "stock", "short_by",
-           "unit_price", "line_price", "note")
+COLUMNS = (
+    "designators",
+    "kind",
+    "roles",
+    "part_id",
+    "value",
+    "label",
+    "tolerance",
+    "rating",
+    "package",
+    "technology",
+    "polarised",
+    "orientation",
+    "qty_per_unit",
+    "qty_total",
+    "stock",
+    "short_by",
+    "unit_price",
+    "line_price",
+    "note",
+)
 NO_BASIS = "basis not stated"
 BIAS_FLOOR = 0.1  # V: below this DC across an electrolytic, the bias does not set its orientation
 # What a node is, in words an assembler follows on the board.
-_NODE_WORDS = {"src": "the input (source side)", "out": "the output (load side)", "0": "ground",
-               "vcc": "the supply", "base": "Q1's base", "collector": "Q1's collector",
-               "emitter": "Q1's emitter", "e2": "the emitter resistors' junction", "emitter2": "Q2's emitter"}
+_NODE_WORDS = {
+    "src": "the input (source side)",
+    "out": "the output (load side)",
+    "0": "ground",
+    "vcc": "the supply",
+    "base": "Q1's base",
+    "collector": "Q1's collector",
+    "emitter": "Q1's emitter",
+    "e2": "the emitter resistors' junction",
+    "emitter2": "Q2's emitter",
+}
 _RATING = {"resistor": "power_rating", "capacitor": "voltage_rating"}
 
 
@@ -73,9 +100,11 @@ class Kit:
         ident = self.identity
         spec = f'spec "{ident["spec"]}" (digest {ident["spec_digest"]})' if ident.get("spec") else "spec not given"
         rank = f", rank {ident['rank']}" if ident.get("rank") is not None else ""
-        return [f"stagefit BOM: {spec}, catalog {ident.get('catalog')}, {ident.get('topology')} with "
-                f"{ident.get('device')}{rank}, {self.units} unit(s)",
-                f"basis: {self.basis}"] + [f"caution: {c}" for c in self.cautions]
+        return [
+            f"stagefit BOM: {spec}, catalog {ident.get('catalog')}, {ident.get('topology')} with "
+            f"{ident.get('device')}{rank}, {self.units} unit(s)",
+            f"basis: {self.basis}",
+        ] + [f"caution: {c}" for c in self.cautions]
 
     def to_csv(self, comments: bool = True) -> str:
         """The lines as CSV: with ``comments`` first the identity, basis and cautions as lines
@@ -90,9 +119,15 @@ class Kit:
     def to_dict(self) -> dict:
         """JSON-ready: {"design", "basis", "cautions", "units", "short", "totals", "lines": [...]},
         with null for unknown values."""
-        return {"design": dict(self.identity), "basis": self.basis, "cautions": list(self.cautions),
-                "units": self.units, "short": self.short, "totals": _plain(self.totals),
-                "lines": [_plain(row) for row in self.lines.to_dict(orient="records")]}
+        return {
+            "design": dict(self.identity),
+            "basis": self.basis,
+            "cautions": list(self.cautions),
+            "units": self.units,
+            "short": self.short,
+            "totals": _plain(self.totals),
+            "lines": [_plain(row) for row in self.lines.to_dict(orient="records")],
+        }
 
 
 def _plain(mapping: dict) -> dict:
@@ -128,6 +163,7 @@ def check_units(units: object) -> int:
 
 # ---- kitting ----------------------------------------------------------------------------
 
+
 def _same_value(frame: pd.DataFrame, value: float) -> pd.DataFrame:
     return frame[np.isclose(frame["value"].to_numpy(dtype=float), value, rtol=VALUE_RTOL, atol=0)]
 
@@ -148,7 +184,8 @@ def _choose_row(rows: pd.DataFrame, wanted_id: str | None, kind: str, qty: int) 
         ref = wanted.iloc[0]
         ok = rows[(rows["tolerance"] <= ref["tolerance"]) & (rows[_RATING[kind]] >= ref[_RATING[kind]])]
     ranked = ok.assign(_stock=ok["stock_qty"].astype("Float64").fillna(np.inf)).sort_values(
-        ["unit_price", "_stock", "part_id"], ascending=[True, False, True])
+        ["unit_price", "_stock", "part_id"], ascending=[True, False, True]
+    )
     covering = [row for _, row in ranked.iterrows() if _covers(row, qty)]
     if covering:
         chosen = covering[0].drop("_stock")
@@ -170,24 +207,43 @@ def _describe(kind: str, row: pd.Series | None) -> dict:
     if row is None:
         return {"tolerance": "", "rating": "", "package": "", "technology": "", "polarised": False}
     if kind == "transistor" and str(row["polarity"]).lower() == "njf":
-        return {"tolerance": f"IDSS {format_value(float(row['idss_min']), 'A')}..{format_value(float(row['idss_max']), 'A')}, "
-                             f"VP {format_value(float(row['vp_min']), 'V')}..{format_value(float(row['vp_max']), 'V')}",
-                "rating": f"Vds {format_value(float(row['vds_max']), 'V')}, {format_value(float(row['p_max']), 'W')}",
-                "package": "", "technology": "N-channel JFET", "polarised": True}
+        return {
+            "tolerance": f"IDSS {format_value(float(row['idss_min']), 'A')}..{format_value(float(row['idss_max']), 'A')}, "
+            f"VP {format_value(float(row['vp_min']), 'V')}..{format_value(float(row['vp_max']), 'V')}",
+            "rating": f"Vds {format_value(float(row['vds_max']), 'V')}, {format_value(float(row['p_max']), 'W')}",
+            "package": "",
+            "technology": "N-channel JFET",
+            "polarised": True,
+        }
     if kind == "transistor":
-        return {"tolerance": f"hFE {row['hfe_min']:g}..{row['hfe_max']:g}",
-                "rating": f"Vceo {format_value(float(row['vceo_max']), 'V')}, {format_value(float(row['p_max']), 'W')}",
-                "package": "", "technology": f"{str(row['polarity']).upper()} bipolar transistor", "polarised": True}
+        return {
+            "tolerance": f"hFE {row['hfe_min']:g}..{row['hfe_max']:g}",
+            "rating": f"Vceo {format_value(float(row['vceo_max']), 'V')}, {format_value(float(row['p_max']), 'W')}",
+            "package": "",
+            "technology": f"{str(row['polarity']).upper()} bipolar transistor",
+            "polarised": True,
+        }
     tolerance = f"{100 * float(row['tolerance']):g} %"
     if kind == "resistor":
-        return {"tolerance": tolerance, "rating": format_value(float(row["power_rating"]), "W"),
-                "package": str(row["package"]), "technology": "", "polarised": False}
-    return {"tolerance": tolerance, "rating": format_value(float(row["voltage_rating"]), "V"), "package": "",
-            "technology": str(row["dielectric"]), "polarised": bool(row["polarised"])}
+        return {
+            "tolerance": tolerance,
+            "rating": format_value(float(row["power_rating"]), "W"),
+            "package": str(row["package"]),
+            "technology": "",
+            "polarised": False,
+        }
+    return {
+        "tolerance": tolerance,
+        "rating": format_value(float(row["voltage_rating"]), "V"),
+        "package": "",
+        "technology": str(row["dielectric"]),
+        "polarised": bool(row["polarised"]),
+    }
 
 
-def _orientation(roles: list[str], nodes: dict[str, tuple[str, ...]], volts: dict[str, float],
-                 names: dict[str, str]) -> str:
+def _orientation(
+    roles: list[str], nodes: dict[str, tuple[str, ...]], volts: dict[str, float], names: dict[str, str]
+) -> str:
     """Which way round a polarised capacitor goes, from the DC voltage at its two nodes."""
     out = []
     for role in roles:
@@ -195,16 +251,31 @@ def _orientation(roles: list[str], nodes: dict[str, tuple[str, ...]], volts: dic
         high, low = (a, b) if volts[a] >= volts[b] else (b, a)
         drop = volts[high] - volts[low]
         if drop < BIAS_FLOOR:
-            out.append(f"{names[role]}: {drop:.2f} V DC across it, no bias to set its polarity: "
-                       "use a bipolar (non-polarised) part")
+            out.append(
+                f"{names[role]}: {drop:.2f} V DC across it, no bias to set its polarity: "
+                "use a bipolar (non-polarised) part"
+            )
         else:
-            out.append(f"{names[role]}: + toward {_NODE_WORDS.get(high, high)} ({volts[high]:.2f} V DC), "
-                       f"- toward {_NODE_WORDS.get(low, low)} ({volts[low]:.2f} V DC)")
+            out.append(
+                f"{names[role]}: + toward {_NODE_WORDS.get(high, high)} ({volts[high]:.2f} V DC), "
+                f"- toward {_NODE_WORDS.get(low, low)} ({volts[low]:.2f} V DC)"
+            )
     return "; ".join(out)
 
 
-def _line(kind: str, value: float | None, label: str, roles: list[str], names: dict[str, str], per_unit: int,
-          units: int, row: pd.Series | None, catalog: Catalog, note: str, orientation: str = "") -> dict:
+def _line(
+    kind: str,
+    value: float | None,
+    label: str,
+    roles: list[str],
+    names: dict[str, str],
+    per_unit: int,
+    units: int,
+    row: pd.Series | None,
+    catalog: Catalog,
+    note: str,
+    orientation: str = "",
+) -> dict:
     total = per_unit * units
     stock = _stock(row)
     short_by = 0 if stock is None else max(0, total - int(stock))
@@ -214,27 +285,41 @@ def _line(kind: str, value: float | None, label: str, roles: list[str], names: d
     elif short_by:
         note = "; ".join(n for n in (note, f"short by {short_by} (stock {stock})") if n)
     described = _describe(kind, row)
-    return {"designators": ",".join(names[r] for r in roles), "kind": kind, "roles": ",".join(roles),
-            "part_id": None if row is None else str(row[("id" if kind == "transistor" else "part_id")]),
-            "value": value, "label": label, **described,
-            "orientation": orientation if described["polarised"] and kind == "capacitor" else "",
-            "qty_per_unit": per_unit, "qty_total": total, "stock": stock, "short_by": short_by,
-            "unit_price": unit_price, "line_price": None if unit_price is None else round(unit_price * total, 6),
-            "note": note}
+    return {
+        "designators": ",".join(names[r] for r in roles),
+        "kind": kind,
+        "roles": ",".join(roles),
+        "part_id": None if row is None else str(row[("id" if kind == "transistor" else "part_id")]),
+        "value": value,
+        "label": label,
+        **described,
+        "orientation": orientation if described["polarised"] and kind == "capacitor" else "",
+        "qty_per_unit": per_unit,
+        "qty_total": total,
+        "stock": stock,
+        "short_by": short_by,
+        "unit_price": unit_price,
+        "line_price": None if unit_price is None else round(unit_price * total, 6),
+        "note": note,
+    }
 
 
 def _candidate_parts(candidate: dict) -> tuple[list[tuple[str, str, float, str | None]], dict, int]:
     """(role, kind, value, part_id) of every present passive, the transistor block and its count."""
     problems: list[Problem] = []
     if not isinstance(candidate, dict):
-        raise InputError.single("candidate", type(candidate).__name__, "a candidate record (a mapping)",
-                                title="incomplete candidate record")
+        raise InputError.single(
+            "candidate", type(candidate).__name__, "a candidate record (a mapping)", title="incomplete candidate record"
+        )
     parts, transistor = candidate.get("parts"), candidate.get("transistor")
     if not isinstance(parts, dict):
         problems.append(Problem("parts", parts, "a mapping role -> {value, label, part_id}"))
     if not isinstance(transistor, dict) or not transistor.get("id"):
-        problems.append(Problem("transistor.id", None if not isinstance(transistor, dict) else transistor.get("id"),
-                                "the transistor id"))
+        problems.append(
+            Problem(
+                "transistor.id", None if not isinstance(transistor, dict) else transistor.get("id"), "the transistor id"
+            )
+        )
     if "topology" not in candidate:
         problems.append(Problem("topology", None, "a topology name"))
     if problems or not isinstance(parts, dict) or not isinstance(transistor, dict):
@@ -246,8 +331,9 @@ def _candidate_parts(candidate: dict) -> tuple[list[tuple[str, str, float, str |
         try:
             value = float(given)
         except (TypeError, ValueError):
-            raise InputError.single(f"parts.{role}.value", given, "a number (ohm or F)",
-                                    title="incomplete candidate record") from None
+            raise InputError.single(
+                f"parts.{role}.value", given, "a number (ohm or F)", title="incomplete candidate record"
+            ) from None
         if value > 0:  # 0 = an optional part left out
             out.append((role, "capacitor" if role.startswith("c_") else "resistor", value, entry.get("part_id")))
     return out, transistor, topology.transistors
@@ -257,15 +343,23 @@ def _node_volts(candidate: dict) -> dict[str, float]:
     """DC voltage of every node of the candidate's stage, from its nominal operating point."""
     topology, parts, device, conditions = design_from_record(candidate)
     op = topology.operating_point(parts, device, conditions)
-    return dc_node_voltages(topology.name, {k: float(np.asarray(v).reshape(-1)[0]) for k, v in op.items()},
-                            conditions.supply, device.polarity, conditions.below_ground)
+    return dc_node_voltages(
+        topology.name,
+        {k: float(np.asarray(v).reshape(-1)[0]) for k, v in op.items()},
+        conditions.supply,
+        device.polarity,
+        conditions.below_ground,
+    )
 
 
 def _class2_cautions(frame: pd.DataFrame) -> list[str]:
     rows = frame[(frame["kind"] == "capacitor") & frame["technology"].map(is_class2).astype(bool)]
-    return [f"{r.designators} ({r.roles}) is a class-2 ceramic ({r.technology}) in the signal path, allowed by "
-            "parts.allow_class2_coupling: its capacitance falls with DC bias and it adds distortion; "
-            "film or C0G is the usual choice" for r in rows.itertuples()]
+    return [
+        f"{r.designators} ({r.roles}) is a class-2 ceramic ({r.technology}) in the signal path, allowed by "
+        "parts.allow_class2_coupling: its capacitance falls with DC bias and it adds distortion; "
+        "film or C0G is the usual choice"
+        for r in rows.itertuples()
+    ]
 
 
 def kit(candidate: dict, catalog: Catalog, units: int, spec: Spec | None = None) -> Kit:
@@ -282,8 +376,7 @@ def kit(candidate: dict, catalog: Catalog, units: int, spec: Spec | None = None)
     volts: dict[str, float] | None = None
     groups: dict[tuple[str, float], list[tuple[str, str | None]]] = {}
     for role, kind, value, part_id in passives:
-        key = next((k for k in groups if k[0] == kind and math.isclose(k[1], value, rel_tol=VALUE_RTOL)),
-                   (kind, value))
+        key = next((k for k in groups if k[0] == kind and math.isclose(k[1], value, rel_tol=VALUE_RTOL)), (kind, value))
         groups.setdefault(key, []).append((role, part_id))
     lines = []
     for (kind, value), members in groups.items():
@@ -298,25 +391,56 @@ def kit(candidate: dict, catalog: Catalog, units: int, spec: Spec | None = None)
         lines.append(_line(kind, value, label, roles, names, len(roles), units, row, catalog, note, orientation))
     rows = catalog.transistors[catalog.transistors["id"] == transistor["id"]]
     roles = [f"q{i + 1}" for i in range(n_q)]
-    lines.append(_line("transistor", None, str(transistor["id"]), roles, names, n_q, units,
-                       None if rows.empty else rows.iloc[0], catalog, ""))
+    lines.append(
+        _line(
+            "transistor",
+            None,
+            str(transistor["id"]),
+            roles,
+            names,
+            n_q,
+            units,
+            None if rows.empty else rows.iloc[0],
+            catalog,
+            "",
+        )
+    )
     frame = pd.DataFrame.from_records(lines, columns=list(COLUMNS))
     frame["_kind"] = frame["kind"].map(KIND_ORDER.index)
     frame["_first"] = frame["designators"].map(lambda d: int(d.split(",")[0][1:]))
     frame = frame.sort_values(["_kind", "_first"], kind="stable").drop(columns=["_kind", "_first"])
-    frame = frame.reset_index(drop=True).astype({"value": "float64", "stock": "Int64", "unit_price": "float64",
-                                                 "line_price": "float64"})
+    frame = frame.reset_index(drop=True).astype(
+        {"value": "float64", "stock": "Int64", "unit_price": "float64", "line_price": "float64"}
+    )
     short_lines = int((frame["short_by"] > 0).sum())
     priced = frame["line_price"].notna()
-    totals = {"parts_per_unit": int(frame["qty_per_unit"].sum()), "parts_total": int(frame["qty_total"].sum()),
-              "cost_per_unit": round(float((frame["unit_price"] * frame["qty_per_unit"])[priced].sum()), 6),
-              "cost_total": round(float(frame["line_price"][priced].sum()), 6),
-              "currency": catalog.currency, "lines": len(frame), "lines_short": short_lines,
-              "lines_unpriced": int((~priced).sum()), "catalog": catalog.name}
-    identity = {"spec": None if spec is None else spec.name, "spec_digest": None if spec is None else spec_digest(spec),
-                "catalog": catalog.name, "topology": candidate["topology"], "device": transistor["id"],
-                "rank": candidate.get("rank")}
+    totals = {
+        "parts_per_unit": int(frame["qty_per_unit"].sum()),
+        "parts_total": int(frame["qty_total"].sum()),
+        "cost_per_unit": round(float((frame["unit_price"] * frame["qty_per_unit"])[priced].sum()), 6),
+        "cost_total": round(float(frame["line_price"][priced].sum()), 6),
+        "currency": catalog.currency,
+        "lines": len(frame),
+        "lines_short": short_lines,
+        "lines_unpriced": int((~priced).sum()),
+        "catalog": catalog.name,
+    }
+    identity = {
+        "spec": None if spec is None else spec.name,
+        "spec_digest": None if spec is None else spec_digest(spec),
+        "catalog": catalog.name,
+        "topology": candidate["topology"],
+        "device": transistor["id"],
+        "rank": candidate.get("rank"),
+    }
     basis = (candidate.get("basis") or {}).get("label") or NO_BASIS
     cautions = [str(c) for c in candidate.get("cautions", [])] + _class2_cautions(frame)
-    return Kit(lines=frame, totals=totals, short=short_lines > 0, units=units, identity=identity, basis=basis,
-               cautions=cautions)
+    return Kit(
+        lines=frame,
+        totals=totals,
+        short=short_lines > 0,
+        units=units,
+        identity=identity,
+        basis=basis,
+        cautions=cautions,
+    )

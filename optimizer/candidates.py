@@ -6,6 +6,7 @@ Carlo, checks every hard limit and rating, and returns the candidate JSON (plain
 with cautions for anything near a limit, made by ``record.candidate_record``. Used by `stagefit evaluate`, the search's
 shortlist and the REST service alike.
 """
+
 from __future__ import annotations
 
 import math
@@ -30,8 +31,20 @@ DEFAULT_POWER_RATING = 0.125  # W, when a value is not in the catalog (common 08
 DEFAULT_CAP_VOLTAGE = 16.0  # V, likewise for a capacitor
 HIGH_SUPPLY = 30.0  # V: above this, the usual caution about hazardous voltages
 NEAR_LIMIT = 0.1  # a metric with less than 10 % margin to a spec limit gets a caution
-WORST_CASE_METRICS = ("gain", "swing_vpp", "clip_vpp", "input_impedance", "output_impedance", "supply_current",
-                      "f_low", "f_high", "thd", "noise_ein_v", "psrr_db", "ic")
+WORST_CASE_METRICS = (
+    "gain",
+    "swing_vpp",
+    "clip_vpp",
+    "input_impedance",
+    "output_impedance",
+    "supply_current",
+    "f_low",
+    "f_high",
+    "thd",
+    "noise_ein_v",
+    "psrr_db",
+    "ic",
+)
 
 
 def _check_parts(topology: Topology, parts: dict[str, float], split: bool = False) -> None:
@@ -40,12 +53,14 @@ def _check_parts(topology: Topology, parts: dict[str, float], split: bool = Fals
     known = set(topology.resistors) | set(topology.capacitors) | set(topology.supply_parts)
     unknown = [role for role in parts if role not in known]
     if unknown:
-        raise InputError.single(f"--set {unknown[0]}", parts[unknown[0]],
-                                f"a part of {topology.name}: " + ", ".join(sorted(known)))
+        raise InputError.single(
+            f"--set {unknown[0]}", parts[unknown[0]], f"a part of {topology.name}: " + ", ".join(sorted(known))
+        )
     missing = [r for r in topology.resistors if r not in parts and not (split and r == "r_top")]
     if missing:
-        raise InputError.single(f"--set {missing[0]}", None,
-                                f"every resistor of {topology.name} given: " + ", ".join(topology.resistors))
+        raise InputError.single(
+            f"--set {missing[0]}", None, f"every resistor of {topology.name} given: " + ", ".join(topology.resistors)
+        )
 
 
 def _part_record(catalog: Catalog, spec: Spec, role: str, value: float) -> dict:
@@ -63,8 +78,16 @@ def _part_record(catalog: Catalog, spec: Spec, role: str, value: float) -> dict:
     return record
 
 
-def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, float],
-           device_id: str | None = None, *, samples: int = FINAL_BUILDS, seed: int | None = None) -> dict:
+def assess(
+    spec: Spec,
+    catalog: Catalog,
+    topology_name: str,
+    parts: dict[str, float],
+    device_id: str | None = None,
+    *,
+    samples: int = FINAL_BUILDS,
+    seed: int | None = None,
+) -> dict:
     """The candidate record (DESIGN.md's candidate JSON plus operating point and its spread,
     ratings, worst case, yield, the basis it meets the spec on, cautions) of one design under
     ``spec``. Capacitors not in ``parts`` are sized."""
@@ -77,57 +100,80 @@ def assess(spec: Spec, catalog: Catalog, topology_name: str, parts: dict[str, fl
     decoupled = "r_decouple" in arrays
     missing_caps = [c for c in topology.capacitors + (("c_decouple",) if decoupled else ()) if c not in arrays]
     if missing_caps:
-        allowed = catalog.capacitor_values(spec.parts.capacitor_series, *spec.parts.capacitor_range,
-                                           in_stock_only=spec.parts.in_stock_only,
-                                           allow_class2=spec.parts.allow_class2_coupling)
+        allowed = catalog.capacitor_values(
+            spec.parts.capacitor_series,
+            *spec.parts.capacitor_range,
+            in_stock_only=spec.parts.in_stock_only,
+            allow_class2=spec.parts.allow_class2_coupling,
+        )
         tolerances = catalog.parts_for("capacitor", allowed)["tolerance"].to_numpy(dtype=float)
         held = {"c_decouple": arrays.get("c_decouple", np.array([allowed[-1]]))} if decoupled else {}
         stage = {r: arrays[r] for r in topology.resistors + topology.supply_parts if r in arrays}
-        sized = size_capacitors(topology, {**stage, **held}, device,
-                                conditions, allowed, f_low_target=scoring.sizing_target(spec, tolerances))
+        sized = size_capacitors(
+            topology,
+            {**stage, **held},
+            device,
+            conditions,
+            allowed,
+            f_low_target=scoring.sizing_target(spec, tolerances),
+        )
         arrays.update({c: sized[c] for c in missing_caps if c in sized})
         if "c_decouple" in missing_caps:
-            arrays["c_decouple"] = size_decoupling(topology, arrays, device, conditions, allowed,
-                                                   scoring.decoupling_target(spec, tolerances))
+            arrays["c_decouple"] = size_decoupling(
+                topology, arrays, device, conditions, allowed, scoring.decoupling_target(spec, tolerances)
+            )
 
     records = {role: _part_record(catalog, spec, role, float(v[0])) for role, v in arrays.items()}
-    limits = scoring.rating_limits(spec, {r: rec["rating"] for r, rec in records.items()
-                                          if not r.startswith("c_") and rec["value"] > 0},
-                                   {c: rec["rating"] for c, rec in records.items() if c.startswith("c_")}, device)
+    limits = scoring.rating_limits(
+        spec,
+        {r: rec["rating"] for r, rec in records.items() if not r.startswith("c_") and rec["value"] > 0},
+        {c: rec["rating"] for c, rec in records.items() if c.startswith("c_")},
+        device,
+    )
 
     result = topology.evaluate(arrays, device, conditions, full=True, thd_solve=True)
     metrics: dict[str, float | None] = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
     metrics["gain_error_db"] = float(scoring.gain_error_db(spec, np.array([metrics["gain"]]))[0])
     metrics.update({k: None for k, v in metrics.items() if v is None or not math.isfinite(v)})  # no figure (no loop)
-    nominal = scoring.limit_violations(spec, result.metrics, result.ratings, limits,
-                                       result.operating_point["active"])
+    nominal = scoring.limit_violations(spec, result.metrics, result.ratings, limits, result.operating_point["active"])
     tolerances = {role: rec["tolerance"] for role, rec in records.items()}
-    judged = judge(spec, topology, arrays, device, conditions, tolerances, limits, nominal,
-                   full=True, builds=samples, seed=seed)
-    spread = worst_case(topology, arrays, device, conditions, tolerances, tuple(spec.temperature),
-                        (spec.supply_min, spec.supply_max))
+    judged = judge(
+        spec, topology, arrays, device, conditions, tolerances, limits, nominal, full=True, builds=samples, seed=seed
+    )
+    spread = worst_case(
+        topology, arrays, device, conditions, tolerances, tuple(spec.temperature), (spec.supply_min, spec.supply_max)
+    )
     violations = judged.violations
     feasible = bool(scoring.total_violation(violations)[0] == 0)
     build_yield = float(judged.yield_fraction[0])
-    metrics.update({"yield": build_yield if np.isfinite(build_yield) else None,
-                    "ic_spread": float(judged.spread["ic_spread"][0])})
+    metrics.update(
+        {"yield": build_yield if np.isfinite(build_yield) else None, "ic_spread": float(judged.spread["ic_spread"][0])}
+    )
     op = {k: float(np.asarray(v)[0]) for k, v in result.operating_point.items()}
     return candidate_record(
-        topology=topology.name, feasible=feasible,
+        topology=topology.name,
+        feasible=feasible,
         basis=basis_label(spec, feasible, build_yield, judged.builds),
         conditions=record_conditions(spec),
         parts={role: {k: rec[k] for k in ("value", "label", "part_id")} for role, rec in records.items()},
-        transistor=device.record(), metrics=metrics, operating_point=op,
+        transistor=device.record(),
+        metrics=metrics,
+        operating_point=op,
         operating_point_spread={
             "ic": [float(judged.spread["ic_low"][0]), op["ic"], float(judged.spread["ic_high"][0])],
-            "v_out_q": [float(judged.spread["v_out_low"][0]), op["v_out_q"],
-                        float(judged.spread["v_out_high"][0])]},
-        ratings={k: {"value": float(np.asarray(result.metrics["q_power"] if k == "q_power"
-                                               else result.ratings[k])[0]), "limit": float(limit)}
-                 for k, limit in limits.items()},
+            "v_out_q": [float(judged.spread["v_out_low"][0]), op["v_out_q"], float(judged.spread["v_out_high"][0])],
+        },
+        ratings={
+            k: {
+                "value": float(np.asarray(result.metrics["q_power"] if k == "q_power" else result.ratings[k])[0]),
+                "limit": float(limit),
+            }
+            for k, limit in limits.items()
+        },
         worst_case={k: [float(spread[k][0][0]), float(spread[k][1][0])] for k in WORST_CASE_METRICS if k in spread},
         violations={k: float(v[0]) for k, v in violations.items() if v[0] > 0},
-        cautions=_cautions(spec, result, limits))
+        cautions=_cautions(spec, result, limits),
+    )
 
 
 def _cautions(spec: Spec, result: StageResult, rating_limits: dict[str, float | np.ndarray]) -> list[str]:
@@ -153,14 +199,20 @@ def hazard_cautions(spec: Spec) -> list[str]:
     highest = max(spec.supply, spec.supply_max)
     if highest > HIGH_SUPPLY:
         top, bottom = spec.rails
-        what = {"positive": f"supply {highest:g} V",
-                "negative": f"negative rail -{highest:g} V",
-                "split": f"split supply +{top:g} V / {bottom:g} V spans up to {highest:g} V in total, which"}
-        notes.append(f"{what[spec.supply_arrangement]} is above {HIGH_SUPPLY:g} V: treat it as a shock and energy "
-                     "hazard; follow local electrical codes and licensed practice")
+        what = {
+            "positive": f"supply {highest:g} V",
+            "negative": f"negative rail -{highest:g} V",
+            "split": f"split supply +{top:g} V / {bottom:g} V spans up to {highest:g} V in total, which",
+        }
+        notes.append(
+            f"{what[spec.supply_arrangement]} is above {HIGH_SUPPLY:g} V: treat it as a shock and energy "
+            "hazard; follow local electrical codes and licensed practice"
+        )
     if spec.mains_powered:
-        notes.append("mains-powered: the supply is derived from the mains; build and test it only under local "
-                     "electrical codes and licensed practice, with the mains side enclosed and isolated")
+        notes.append(
+            "mains-powered: the supply is derived from the mains; build and test it only under local "
+            "electrical codes and licensed practice, with the mains side enclosed and isolated"
+        )
     return notes
 
 
@@ -168,16 +220,23 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], A
     """Rebuild a candidate's design from its record alone (no spec, no catalog): the topology,
     its parts as 1-element float arrays by role, the device, and the conditions at the nominal
     temperature. InputError naming the missing or bad key if the record is incomplete."""
+
     def incomplete(problems: list[Problem]) -> InputError:
         return InputError(problems, title="incomplete candidate record")
 
     if not isinstance(record, dict):
         raise incomplete([Problem("candidate", type(record).__name__, "a candidate record (a mapping)")])
-    blocks = {"topology": (str, "a topology name"), "parts": (dict, "a mapping role -> {value, ...}"),
-              "transistor": (dict, "the transistor block with its model"),
-              "conditions": (dict, "supply, source_impedance, load_impedance and band")}
-    problems = [Problem(key, record.get(key), expected) for key, (kind, expected) in blocks.items()
-                if not isinstance(record.get(key), kind)]
+    blocks = {
+        "topology": (str, "a topology name"),
+        "parts": (dict, "a mapping role -> {value, ...}"),
+        "transistor": (dict, "the transistor block with its model"),
+        "conditions": (dict, "supply, source_impedance, load_impedance and band"),
+    }
+    problems = [
+        Problem(key, record.get(key), expected)
+        for key, (kind, expected) in blocks.items()
+        if not isinstance(record.get(key), kind)
+    ]
     if problems:
         raise incomplete(problems)
     topology = get_topology(record["topology"])
@@ -205,8 +264,13 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], A
         except (TypeError, ValueError):
             problems.append(Problem(f"parts.{role}.value", value, f"a number (ohm or F) for {topology.name}"))
     numbers: dict[str, float] = {}
-    for key, default in (("supply", None), ("source_impedance", None), ("load_impedance", None),
-                         ("load_capacitance", 0.0), ("signal_vpp", 1.0)):
+    for key, default in (
+        ("supply", None),
+        ("source_impedance", None),
+        ("load_impedance", None),
+        ("load_capacitance", 0.0),
+        ("signal_vpp", 1.0),
+    ):
         try:
             numbers[key] = float(cond.get(key, default))
         except (TypeError, ValueError):
@@ -219,5 +283,9 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], A
     if problems:
         raise incomplete(problems)
     device = device_from_record(record["transistor"])
-    return topology, parts, device, Conditions(band=band, temperature=NOMINAL_TEMPERATURE_C, below_ground=below,
-                                               **numbers)
+    return (
+        topology,
+        parts,
+        device,
+        Conditions(band=band, temperature=NOMINAL_TEMPERATURE_C, below_ground=below, **numbers),
+    )

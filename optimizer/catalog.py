@@ -6,6 +6,7 @@ units are documented in ``parts_catalogs/README.md``. Values are SI without pref
 (ohm, F, V, W, A, s); a value cell may use engineering notation ("4k7", "100n").
 Every malformed cell of a file is reported at once, each with file, line and column.
 """
+
 from __future__ import annotations
 
 import csv
@@ -31,8 +32,16 @@ VALUE_RTOL = 1e-6  # two part values closer than this (relative) are the same va
 
 #: Continuous rating (W at 70 °C) of a thick-film chip resistor by package (common practice);
 #: a resistor row with a blank power_rating takes its package's, and may not claim more.
-PACKAGE_POWER: dict[str, float] = {"0201": 0.05, "0402": 0.063, "0603": 0.1, "0805": 0.125, "1206": 0.25,
-                                   "1210": 0.5, "2010": 0.75, "2512": 1.0}
+PACKAGE_POWER: dict[str, float] = {
+    "0201": 0.05,
+    "0402": 0.063,
+    "0603": 0.1,
+    "0805": 0.125,
+    "1206": 0.25,
+    "1210": 0.5,
+    "2010": 0.75,
+    "2512": 1.0,
+}
 #: Class-2 ceramic dielectrics (EIA RS-198): capacitance moves with DC bias, temperature and age
 #: and the part adds distortion, so by default none sits where the signal develops voltage.
 CLASS2_DIELECTRICS: frozenset[str] = frozenset({"x5r", "x6s", "x7r", "x7s", "x8r", "y5v", "z5u"})
@@ -65,8 +74,9 @@ def _cell_optional_quantity(unit: str | None, *, positive: bool = False) -> Call
             return math.nan
         value = required(text, where)
         if value < 0 or (positive and value == 0):
-            raise InputError.single(where, text, f"{'a positive value' if positive else 'zero or a positive value'}"
-                                                 f", in {unit}, or empty")
+            raise InputError.single(
+                where, text, f"{'a positive value' if positive else 'zero or a positive value'}, in {unit}, or empty"
+            )
         return value
 
     return parse
@@ -177,6 +187,8 @@ _TRANSISTOR_COLUMNS: dict[str, Callable] = {
     "unit_price": _cell_quantity(None, positive=False),
     "stock_qty": _cell_stock,
 }
+
+
 def _cell_signed(unit: str) -> Callable[[str, str], float]:
     """Parser for a plain signed number in ``unit`` (SI, no prefix), e.g. a pinch-off voltage -0.9."""
 
@@ -230,12 +242,18 @@ def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) 
         header = [h.strip() for h in next(reader, [])]
         for name in header:
             if name not in columns:
-                problems.append(Problem(f"{label} line 1, column {name}", name,
-                                        "a known column: " + ", ".join(columns)))
+                problems.append(
+                    Problem(f"{label} line 1, column {name}", name, "a known column: " + ", ".join(columns))
+                )
         for name in columns:
             if name not in header and name not in _OPTIONAL_COLUMNS:
-                problems.append(Problem(f"{label} line 1, column {name}", None,
-                                        f"a column named {name!r} (required: {', '.join(columns)})"))
+                problems.append(
+                    Problem(
+                        f"{label} line 1, column {name}",
+                        None,
+                        f"a column named {name!r} (required: {', '.join(columns)})",
+                    )
+                )
         records: list[dict] = []
         first_line: dict[str, int] = {}
         for cells in reader:
@@ -243,8 +261,7 @@ def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) 
             if not any(c.strip() for c in cells):
                 continue
             if len(cells) != len(header):
-                problems.append(Problem(f"{label} line {line}", len(cells),
-                                        f"{len(header)} fields, as in the header"))
+                problems.append(Problem(f"{label} line {line}", len(cells), f"{len(header)} fields, as in the header"))
                 continue
             record: dict = {}
             for name, text in zip(header, cells):
@@ -256,21 +273,37 @@ def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) 
                     problems.extend(err.problems)
             if key in record:
                 if record[key] in first_line:
-                    problems.append(Problem(f"{label} line {line}, column {key}", record[key],
-                                            f"a {key} not used before (already on line {first_line[record[key]]})"))
+                    problems.append(
+                        Problem(
+                            f"{label} line {line}, column {key}",
+                            record[key],
+                            f"a {key} not used before (already on line {first_line[record[key]]})",
+                        )
+                    )
                 else:
                     first_line[record[key]] = line
             if {"hfe_min", "hfe_typ", "hfe_max"} <= record.keys():
                 lo, typ, hi = record["hfe_min"], record["hfe_typ"], record["hfe_max"]
                 if lo > hi:
-                    problems.append(Problem(f"{label} line {line}, column hfe_max", hi,
-                                            f"hfe_max >= hfe_min ({lo:g})"))
+                    problems.append(Problem(f"{label} line {line}, column hfe_max", hi, f"hfe_max >= hfe_min ({lo:g})"))
                 elif not lo <= typ <= hi:
-                    problems.append(Problem(f"{label} line {line}, column hfe_typ", typ,
-                                            f"hfe_typ between hfe_min ({lo:g}) and hfe_max ({hi:g})"))
-            if "series" in record and "value" in record and not _in_series(np.array([record["value"]]), record["series"])[0]:
-                problems.append(Problem(f"{label} line {line}, column value", record["value"],
-                                        f"a value of series {record['series']}"))
+                    problems.append(
+                        Problem(
+                            f"{label} line {line}, column hfe_typ",
+                            typ,
+                            f"hfe_typ between hfe_min ({lo:g}) and hfe_max ({hi:g})",
+                        )
+                    )
+            if (
+                "series" in record
+                and "value" in record
+                and not _in_series(np.array([record["value"]]), record["series"])[0]
+            ):
+                problems.append(
+                    Problem(
+                        f"{label} line {line}, column value", record["value"], f"a value of series {record['series']}"
+                    )
+                )
             if "package" in record and "power_rating" in columns:
                 problems += _package_power(record, f"{label} line {line}, column power_rating")
             records.append(record)
@@ -285,12 +318,24 @@ def _package_power(record: dict, where: str) -> list[Problem]:
     given = record.get("power_rating")
     if given is None or math.isnan(given):
         if customary is None:
-            return [Problem(where, "", f"a power rating in W: package {record['package']!r} has no customary "
-                                       f"rating (known: {', '.join(PACKAGE_POWER)})")]
+            return [
+                Problem(
+                    where,
+                    "",
+                    f"a power rating in W: package {record['package']!r} has no customary "
+                    f"rating (known: {', '.join(PACKAGE_POWER)})",
+                )
+            ]
         record["power_rating"] = customary
     elif customary is not None and given > customary * (1 + VALUE_RTOL):
-        return [Problem(where, given, f"at most {customary:g} W, the customary rating of a {record['package']} "
-                                      "chip resistor (common practice); leave it blank to use that")]
+        return [
+            Problem(
+                where,
+                given,
+                f"at most {customary:g} W, the customary rating of a {record['package']} "
+                "chip resistor (common practice); leave it blank to use that",
+            )
+        ]
     return []
 
 
@@ -315,8 +360,9 @@ class Catalog:
     stock_tracked: bool = False
     _picks: dict = field(default_factory=dict, compare=False, repr=False)
 
-    def _values(self, frame: pd.DataFrame, series: str | None, low: float | None,
-                high: float | None, in_stock_only: bool) -> np.ndarray:
+    def _values(
+        self, frame: pd.DataFrame, series: str | None, low: float | None, high: float | None, in_stock_only: bool
+    ) -> np.ndarray:
         rows = frame[_in_stock(frame)] if in_stock_only else frame
         values = np.unique(rows["value"].to_numpy(dtype=float))
         if low is not None:
@@ -327,16 +373,26 @@ class Catalog:
             values = values[_in_series(values, series.upper())]
         return values
 
-    def resistor_values(self, series: str | None = None, low: float | None = None,
-                        high: float | None = None, in_stock_only: bool = False) -> np.ndarray:
+    def resistor_values(
+        self,
+        series: str | None = None,
+        low: float | None = None,
+        high: float | None = None,
+        in_stock_only: bool = False,
+    ) -> np.ndarray:
         """Sorted unique resistor values (ohm), optionally members of ``series`` only
         (by value, so an E24 row of 4.7 kohm counts as E12), within [low, high] ohm,
         and only rows with stock (blank stock = unlimited)."""
         return self._values(self.resistors, series, low, high, in_stock_only)
 
-    def capacitor_values(self, series: str | None = None, low: float | None = None,
-                         high: float | None = None, in_stock_only: bool = False,
-                         allow_class2: bool = False) -> np.ndarray:
+    def capacitor_values(
+        self,
+        series: str | None = None,
+        low: float | None = None,
+        high: float | None = None,
+        in_stock_only: bool = False,
+        allow_class2: bool = False,
+    ) -> np.ndarray:
         """Sorted unique capacitor values (F); filters as :meth:`resistor_values`. Without
         ``allow_class2`` only values with a row that is not a class-2 ceramic count (every
         capacitor of the stages is in the signal path)."""
@@ -353,8 +409,12 @@ class Catalog:
         """The transistor row ``id`` as a dict (SI units)."""
         match = self.transistors[self.transistors["id"] == id]
         if match.empty:
-            raise InputError.single("transistor", id, "one of " + ", ".join(self.transistors["id"]),
-                                    title=f"unknown transistor in catalog {self.name}")
+            raise InputError.single(
+                "transistor",
+                id,
+                "one of " + ", ".join(self.transistors["id"]),
+                title=f"unknown transistor in catalog {self.name}",
+            )
         return _row_dict(match.iloc[0])
 
     def _cheapest_in_stock(self, kind: str, allow_class2: bool) -> pd.DataFrame:
@@ -367,9 +427,13 @@ class Catalog:
     def _cheapest(self, kind: str, allow_class2: bool) -> pd.DataFrame:
         frame = self.resistors if kind == "resistor" else self.signal_capacitors(allow_class2)
         stocked = frame[_in_stock(frame)]
-        return (stocked.assign(_stock=stocked["stock_qty"].fillna(np.iinfo(np.int64).max))
-                .sort_values(["value", "unit_price", "_stock", "part_id"], ascending=[True, True, False, True])
-                .drop_duplicates("value").drop(columns="_stock").reset_index(drop=True))
+        return (
+            stocked.assign(_stock=stocked["stock_qty"].fillna(np.iinfo(np.int64).max))
+            .sort_values(["value", "unit_price", "_stock", "part_id"], ascending=[True, True, False, True])
+            .drop_duplicates("value")
+            .drop(columns="_stock")
+            .reset_index(drop=True)
+        )
 
     def part_for(self, role_kind: str, value: float, *, allow_class2: bool = False) -> dict | None:
         """The cheapest in-stock row of ``role_kind`` ("resistor" or "capacitor") with
@@ -388,8 +452,11 @@ class Catalog:
         known = best["value"].to_numpy(dtype=float)
         if known.size == 0:
             return best.reindex(range(wanted.size))
-        i = np.clip(np.searchsorted(known, wanted), 1, max(known.size - 1, 1)) if known.size > 1 \
+        i = (
+            np.clip(np.searchsorted(known, wanted), 1, max(known.size - 1, 1))
+            if known.size > 1
             else np.zeros(wanted.size, dtype=int)
+        )
         below = np.maximum(i - 1, 0)
         nearer = np.where(np.abs(known[below] - wanted) <= np.abs(known[i] - wanted), below, i)
         match = np.isclose(known[nearer], wanted, rtol=VALUE_RTOL, atol=0)
@@ -397,6 +464,7 @@ class Catalog:
 
     def summary(self) -> dict:
         """Counts, value ranges (SI), series present, transistor ids and stock totals."""
+
         def stock_total(frame: pd.DataFrame) -> int | None:
             return None if frame["stock_qty"].isna().all() else int(frame["stock_qty"].sum())
 
@@ -408,16 +476,25 @@ class Catalog:
             "description": self.description,
             "currency": self.currency,
             "stock_tracked": self.stock_tracked,
-            "resistors": {"count": len(self.resistors), "unique_values": int(self.resistors["value"].nunique()),
-                          "range": value_range(self.resistors),
-                          "series": sorted(self.resistors["series"].unique(), key=lambda s: int(s[1:])),
-                          "stock_total": stock_total(self.resistors)},
-            "capacitors": {"count": len(self.capacitors), "unique_values": int(self.capacitors["value"].nunique()),
-                           "range": value_range(self.capacitors),
-                           "dielectrics": sorted(self.capacitors["dielectric"].unique()),
-                           "stock_total": stock_total(self.capacitors)},
-            "transistors": {"count": len(self.transistors), "devices": list(self.transistors["id"]),
-                            "stock_total": stock_total(self.transistors)},
+            "resistors": {
+                "count": len(self.resistors),
+                "unique_values": int(self.resistors["value"].nunique()),
+                "range": value_range(self.resistors),
+                "series": sorted(self.resistors["series"].unique(), key=lambda s: int(s[1:])),
+                "stock_total": stock_total(self.resistors),
+            },
+            "capacitors": {
+                "count": len(self.capacitors),
+                "unique_values": int(self.capacitors["value"].nunique()),
+                "range": value_range(self.capacitors),
+                "dielectrics": sorted(self.capacitors["dielectric"].unique()),
+                "stock_total": stock_total(self.capacitors),
+            },
+            "transistors": {
+                "count": len(self.transistors),
+                "devices": list(self.transistors["id"]),
+                "stock_total": stock_total(self.transistors),
+            },
         }
 
 
@@ -448,8 +525,9 @@ def _read_meta(path: Path, label: str) -> tuple[dict, list[Problem]]:
     if not isinstance(meta, dict):
         return {}, [Problem(label, meta, "a mapping with keys " + ", ".join(_META_KEYS))]
     problems = [Problem(f"{label} key {k}", None, "a value for this key") for k in _META_KEYS if k not in meta]
-    problems += [Problem(f"{label} key {k}", k, "one of the keys " + ", ".join(_META_KEYS))
-                 for k in meta if k not in _META_KEYS]
+    problems += [
+        Problem(f"{label} key {k}", k, "one of the keys " + ", ".join(_META_KEYS)) for k in meta if k not in _META_KEYS
+    ]
     if "stock_tracked" in meta and not isinstance(meta["stock_tracked"], bool):
         problems.append(Problem(f"{label} key stock_tracked", meta["stock_tracked"], "true or false"))
     return meta, problems
@@ -460,12 +538,18 @@ def load_catalog_dir(path: Path) -> Catalog:
     path = Path(path)
     prefix = f"parts_catalogs/{path.name}"
     problems: list[Problem] = []
-    files = {"catalog.yaml": None, "resistors.csv": ("part_id", _RESISTOR_COLUMNS),
-             "capacitors.csv": ("part_id", _CAPACITOR_COLUMNS), "transistors.csv": ("id", _TRANSISTOR_COLUMNS)}
+    files = {
+        "catalog.yaml": None,
+        "resistors.csv": ("part_id", _RESISTOR_COLUMNS),
+        "capacitors.csv": ("part_id", _CAPACITOR_COLUMNS),
+        "transistors.csv": ("id", _TRANSISTOR_COLUMNS),
+    }
     missing = [name for name in files if not (path / name).is_file()]
     if missing:
-        raise InputError([Problem(f"{prefix}/{name}", None, "this file must exist") for name in missing],
-                         title="incomplete parts catalog")
+        raise InputError(
+            [Problem(f"{prefix}/{name}", None, "this file must exist") for name in missing],
+            title="incomplete parts catalog",
+        )
     meta, meta_problems = _read_meta(path / "catalog.yaml", f"{prefix}/catalog.yaml")
     problems += meta_problems
     tables = {}
@@ -476,7 +560,7 @@ def load_catalog_dir(path: Path) -> Catalog:
     if (path / "jfets.csv").is_file():
         jfets, found = _read_table(path / "jfets.csv", f"{prefix}/jfets.csv", _JFET_COLUMNS, "id")
         problems += found
-        for row in ([] if found else jfets.to_dict(orient="records")):
+        for row in [] if found else jfets.to_dict(orient="records"):
             try:
                 JFET.from_row(row)  # the typical point inside the ranges, VTO negative
             except InputError as err:
@@ -487,10 +571,15 @@ def load_catalog_dir(path: Path) -> Catalog:
             transistors = pd.concat([transistors, jfets], ignore_index=True)
     if problems:
         raise InputError(problems, title=f"invalid parts catalog {path.name}")
-    return Catalog(name=str(meta["name"]), description=str(meta["description"]).strip(),
-                   resistors=tables["resistors.csv"], capacitors=tables["capacitors.csv"],
-                   transistors=transistors, currency=str(meta["currency"]),
-                   stock_tracked=meta["stock_tracked"])
+    return Catalog(
+        name=str(meta["name"]),
+        description=str(meta["description"]).strip(),
+        resistors=tables["resistors.csv"],
+        capacitors=tables["capacitors.csv"],
+        transistors=transistors,
+        currency=str(meta["currency"]),
+        stock_tracked=meta["stock_tracked"],
+    )
 
 
 def list_catalogs() -> list[str]:
@@ -504,8 +593,9 @@ def load_catalog(name: str) -> Catalog:
     """The catalog called ``name`` (a name from :func:`list_catalogs`, never a path)."""
     known = list_catalogs()
     if name not in known:
-        raise InputError.single("catalog", name, "one of " + (", ".join(known) or "(no catalogs found)"),
-                                title="unknown parts catalog")
+        raise InputError.single(
+            "catalog", name, "one of " + (", ".join(known) or "(no catalogs found)"), title="unknown parts catalog"
+        )
     return _load_cached(CATALOG_DIR / name)
 
 

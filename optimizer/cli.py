@@ -6,6 +6,7 @@ every limit (the nearest misses are printed, ranked), 2 bad input (one line sayi
 change), 4 environment or storage error (a file, the disk, the database, a search busy in
 another process), 1 internal error (a bug: please report it with the command you ran).
 """
+
 from __future__ import annotations
 
 import argparse
@@ -23,9 +24,11 @@ from optimizer.errors import InputError, StorageError
 from optimizer.metrics import METRICS
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT, EXIT_INFEASIBLE, EXIT_ENVIRONMENT = 0, 1, 2, 3, 4
-EXIT_CODES = ("exit codes: 0 done (search: a design meets every limit); 3 no design meets every limit "
-              "(the nearest misses are printed, ranked); 2 bad input; 4 environment or storage error "
-              "(file, disk, database, search busy elsewhere); 1 internal error (a bug)")
+EXIT_CODES = (
+    "exit codes: 0 done (search: a design meets every limit); 3 no design meets every limit "
+    "(the nearest misses are printed, ranked); 2 bad input; 4 environment or storage error "
+    "(file, disk, database, search busy elsewhere); 1 internal error (a bug)"
+)
 BUSY_WAIT = 120.0  # s a run waits for another process's trials in a search it joined
 SPEC_HELP = "path to a spec file (YAML or JSON), or the name of a bundled example (e.g. contact_pickup_buffer)"
 
@@ -69,7 +72,9 @@ def _cmd_catalogs(args: argparse.Namespace) -> int:
             facts = [f"{section['count']} parts"]
             if section.get("range"):
                 low, high = section["range"]
-                facts.append(f"{section['unique_values']} values {format_value(low, unit)} .. {format_value(high, unit)}")
+                facts.append(
+                    f"{section['unique_values']} values {format_value(low, unit)} .. {format_value(high, unit)}"
+                )
             if section.get("series"):
                 facts.append("series " + "/".join(section["series"]))
             if section.get("devices"):
@@ -105,10 +110,14 @@ def _cmd_topologies(args: argparse.Namespace) -> int:
         return EXIT_OK
     for t in described:
         print(f"{t['name']}: {t['description']}")
-        print(f"  {t['gain_sign']}; {'/'.join(t['polarities'])} transistors ({t['transistors']}); "
-              f"supplies: {', '.join(t['supplies'])}")
-        print("  roles: " + ", ".join(f"{r['name']} ({r['kind']}{', optional' if r['optional'] else ''})"
-                                      for r in t["roles"]))
+        print(
+            f"  {t['gain_sign']}; {'/'.join(t['polarities'])} transistors ({t['transistors']}); "
+            f"supplies: {', '.join(t['supplies'])}"
+        )
+        print(
+            "  roles: "
+            + ", ".join(f"{r['name']} ({r['kind']}{', optional' if r['optional'] else ''})" for r in t["roles"])
+        )
     return EXIT_OK
 
 
@@ -135,8 +144,7 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
     spec = load_spec(args.spec)
     catalog = load_catalog(spec.parts.catalog)
     validate_spec(spec, catalog)
-    record = assess(spec, catalog, args.topology, _parse_settings(args.set), args.device,
-                    samples=args.samples)
+    record = assess(spec, catalog, args.topology, _parse_settings(args.set), args.device, samples=args.samples)
     if args.format == "json":
         print(json.dumps(record, indent=2))
         return EXIT_OK
@@ -165,12 +173,14 @@ def _cmd_evaluate(args: argparse.Namespace) -> int:
 
 # ---- search and kitting -------------------------------------------------------------
 
+
 #: the ranked table's columns: name -> (heading, cell of a candidate record given the currency)
 def _metric_cell(metric: str) -> Callable[[dict, str], str]:
     def cell(c: dict, currency: str) -> str:
         from optimizer.report import show
 
         return show(metric, (c.get("metrics") or {}).get(metric), currency)
+
     return cell
 
 
@@ -207,8 +217,21 @@ COLUMNS: dict[str, tuple[str, Callable[[dict, str], str]]] = {
     "why": ("why (top score terms)", _why_cell),
     "verdict": ("verdict", _verdict),
 }
-DEFAULT_COLUMNS = ("rank", "topology", "device", "parts", "gain", "swing", "zin", "current", "noise", "yield",
-                   "cost", "why", "verdict")
+DEFAULT_COLUMNS = (
+    "rank",
+    "topology",
+    "device",
+    "parts",
+    "gain",
+    "swing",
+    "zin",
+    "current",
+    "noise",
+    "yield",
+    "cost",
+    "why",
+    "verdict",
+)
 PROGRESS_EVERY = 5.0  # s between progress lines when stderr is not a terminal
 
 
@@ -247,6 +270,7 @@ def _progress_printer(stream=sys.stderr, quiet: bool = False) -> Callable[[int, 
             last[0] = now
             stream.write(f"searching: {done}/{budget} trials, {now - started:.0f} s\n")
         stream.flush()
+
     return show
 
 
@@ -279,15 +303,19 @@ def _run_or_reuse(args: argparse.Namespace, spec):
         delete_search(storage, search_id)
         del known[search_id]
     if search_id not in known:
-        print(f"no stored search of this spec in {args.storage}: running one ({spec.search.trials} trials)",
-              file=sys.stderr)
+        print(
+            f"no stored search of this spec in {args.storage}: running one ({spec.search.trials} trials)",
+            file=sys.stderr,
+        )
         try:
             create_search(spec, storage, search_id=search_id)
         except DuplicatedStudyError:  # another stagefit run of this spec created it meanwhile
             print(f"another run is searching this spec ({search_id}); joining it", file=sys.stderr)
     elif known[search_id]["status"] == "done":
-        print(f"reusing the stored search {search_id} of this spec from {args.storage} (--fresh to run it again)",
-              file=sys.stderr)
+        print(
+            f"reusing the stored search {search_id} of this spec from {args.storage} (--fresh to run it again)",
+            file=sys.stderr,
+        )
     elif known[search_id]["status"] in ("cancelled", "failed"):
         print(f"resuming the interrupted search {search_id} of this spec from {args.storage}", file=sys.stderr)
         extend_search(storage, search_id, 0)  # queue it again; finished trials are kept
@@ -295,8 +323,9 @@ def _run_or_reuse(args: argparse.Namespace, spec):
     deadline = time.monotonic() + BUSY_WAIT
     while True:  # runs sharing a search split its budget; each waits for the others' last trials
         with _stop_on_ctrl_c() as interrupted:
-            run_search(storage, search_id, progress=_progress_printer(quiet=args.quiet or done),
-                       should_stop=interrupted.is_set)
+            run_search(
+                storage, search_id, progress=_progress_printer(quiet=args.quiet or done), should_stop=interrupted.is_set
+            )
         if interrupted.is_set():  # stopped after the batch in hand: no trial left running
             fail_search(storage, search_id, INTERRUPTED)
             raise KeyboardInterrupt
@@ -306,8 +335,10 @@ def _run_or_reuse(args: argparse.Namespace, spec):
         if recover_stale_trials(storage, search_id, stale_after_seconds())[0]:
             continue  # trials left running by a run that died: failed, asked again now
         if time.monotonic() > deadline:
-            raise StorageError(f"search {search_id} is busy: {status['trials_running']} of its trials are "
-                               "held by another process; try again when it has finished")
+            raise StorageError(
+                f"search {search_id} is busy: {status['trials_running']} of its trials are "
+                "held by another process; try again when it has finished"
+            )
         time.sleep(0.5)
     if status["status"] == "failed":
         raise StorageError(f"search {search_id} failed: {status.get('reason') or 'see the log'}")
@@ -344,8 +375,9 @@ def _table(rows: list[list[str]], markdown: bool = False) -> str:
     return "\n".join("  ".join(c.ljust(w) for c, w in zip(r, widths)).rstrip() for r in rows)
 
 
-def _candidate_rows(candidates: list[dict], columns: Sequence[str], first: str = "rank",
-                    currency: str = "") -> list[list[str]]:
+def _candidate_rows(
+    candidates: list[dict], columns: Sequence[str], first: str = "rank", currency: str = ""
+) -> list[list[str]]:
     heads = [first if name == "rank" else COLUMNS[name][0] for name in columns]
     return [heads] + [[COLUMNS[name][1](c, currency) for name in columns] for c in candidates]
 
@@ -377,11 +409,22 @@ def _cmd_search(args: argparse.Namespace) -> int:
     front = result.front
     best = shown[0] if shown else None
     if args.format == "json":
-        print(json.dumps({"search": result.id, "status": result.status["status"],
-                          "candidates": shown, "front": front if args.front else None}, indent=2))
+        print(
+            json.dumps(
+                {
+                    "search": result.id,
+                    "status": result.status["status"],
+                    "candidates": shown,
+                    "front": front if args.front else None,
+                },
+                indent=2,
+            )
+        )
     elif args.format == "csv":
-        print(f'# stagefit candidates: spec "{spec.name}" (digest {spec_digest(spec)}), search {result.id}, '
-              f"catalog {catalog.name}; values in SI units (ohm, F, V, A, Hz, W)")
+        print(
+            f'# stagefit candidates: spec "{spec.name}" (digest {spec_digest(spec)}), search {result.id}, '
+            f"catalog {catalog.name}; values in SI units (ohm, F, V, A, Hz, W)"
+        )
         if best:
             print(f"# rank 1 basis: {(best.get('basis') or {}).get('label') or 'basis not stated'}")
             for caution in best.get("cautions", []):
@@ -396,20 +439,31 @@ def _cmd_search(args: argparse.Namespace) -> int:
             print(result.infeasible["text"])
         print(_table(_candidate_rows(shown, columns, currency=catalog.currency), markdown))
         if args.explain:
-            print("\nwhy each ranks where it does: score = weighted geometric mean of these terms "
-                  "(each 1 at its ideal), times the yield of its builds")
+            print(
+                "\nwhy each ranks where it does: score = weighted geometric mean of these terms "
+                "(each 1 at its ideal), times the yield of its builds"
+            )
             for c in shown:
                 terms = c.get("score_terms") or {}
                 shown_terms = ", ".join(f"{k} {v:.3f}" for k, v in sorted(terms.items(), key=lambda kv: kv[1]))
                 print(f"  {c['rank']:>3}  score {c['score']:.4g}: {shown_terms or 'no score terms (misses a limit)'}")
         if args.front:
-            picked = sorted(set(np.linspace(0, len(front) - 1, min(len(front), max(args.top, 2))).round().astype(int))) \
-                if front else []
+            picked = (
+                sorted(set(np.linspace(0, len(front) - 1, min(len(front), max(args.top, 2))).round().astype(int)))
+                if front
+                else []
+            )
             note = f", {len(picked)} of them shown, evenly along it" if len(picked) < len(front) else ""
-            print(f"\nPareto front ({' vs '.join(f'{d} {m}' for m, d in spec.objective_directions)}): "
-                  f"{len(front)} designs{note}")
-            print(_table(_candidate_rows([{**front[i], "rank": i + 1} for i in picked], columns, "point",
-                                         catalog.currency), markdown))
+            print(
+                f"\nPareto front ({' vs '.join(f'{d} {m}' for m, d in spec.objective_directions)}): "
+                f"{len(front)} designs{note}"
+            )
+            print(
+                _table(
+                    _candidate_rows([{**front[i], "rank": i + 1} for i in picked], columns, "point", catalog.currency),
+                    markdown,
+                )
+            )
         if best:
             for caution in best.get("cautions", []):
                 print(f"caution: {caution}")
@@ -422,12 +476,15 @@ def _cmd_search(args: argparse.Namespace) -> int:
 
 
 _BASIS_TEXT = {
-    "yield": lambda spec: (f"a design meets the spec when every hard limit holds in at least "
-                           f"{100 * spec.limits.yield_min:.3g} % of Monte Carlo builds (part tolerances, hFE "
-                           f"spread, {spec.temperature[0]:g}..{spec.temperature[1]:g} °C, supply "
-                           f"{spec.supply_min:g}..{spec.supply_max:g} V); robustness: yield"),
-    "worst_case": lambda spec: "a design meets the spec when every hard limit holds at every corner; "
-                               "robustness: worst_case",
+    "yield": lambda spec: (
+        f"a design meets the spec when every hard limit holds in at least "
+        f"{100 * spec.limits.yield_min:.3g} % of Monte Carlo builds (part tolerances, hFE "
+        f"spread, {spec.temperature[0]:g}..{spec.temperature[1]:g} °C, supply "
+        f"{spec.supply_min:g}..{spec.supply_max:g} V); robustness: yield"
+    ),
+    "worst_case": lambda spec: (
+        "a design meets the spec when every hard limit holds at every corner; robustness: worst_case"
+    ),
     "nominal": lambda spec: "limits judged at nominal values only (robustness: nominal): spread is not checked",
 }
 
@@ -443,8 +500,11 @@ def _plot_kind(target: str) -> tuple[str, str]:
     fmt = path.suffix.lower().lstrip(".")
     kind = next((k for k in PLOT_KINDS if k in path.stem.lower()), None)
     if fmt not in ("svg", "png") or kind is None:
-        raise InputError.single("--plot", target, "a file named for what it shows: front.svg, response.svg or "
-                                "transfer.svg (or .png; e.g. runs/front.svg)")
+        raise InputError.single(
+            "--plot",
+            target,
+            "a file named for what it shows: front.svg, response.svg or transfer.svg (or .png; e.g. runs/front.svg)",
+        )
     return kind, fmt
 
 
@@ -459,8 +519,14 @@ def _write_plot(target: str, kind_fmt: tuple[str, str], result, rank: int) -> No
     chosen = result.candidate(rank)
     if kind == "front":
         points = [dict(c) for c in result.candidates]
-        plots.front_plot(points, [tuple(o) for o in result.spec.objective_directions], chosen=chosen,
-                         front=result.front, fmt=fmt, path=path)
+        plots.front_plot(
+            points,
+            [tuple(o) for o in result.spec.objective_directions],
+            chosen=chosen,
+            front=result.front,
+            fmt=fmt,
+            path=path,
+        )
     elif kind == "response":
         plots.response_plot(chosen, fmt=fmt, path=path)
     else:
@@ -487,21 +553,49 @@ def _cmd_bom(args: argparse.Namespace) -> int:
         print(json.dumps(bill.to_dict(), indent=2))
     else:
         t = bill.totals
-        print(f"kit for {args.units} x rank {args.rank} ({candidate['topology']}) of {spec.name}, "
-              f"catalog {spec.parts.catalog}")
+        print(
+            f"kit for {args.units} x rank {args.rank} ({candidate['topology']}) of {spec.name}, "
+            f"catalog {spec.parts.catalog}"
+        )
         print(f"basis: {bill.basis}")
-        rows = [["designators", "value", "tolerance", "rating", "technology", "part_id", "per unit", "total",
-                 "stock", "short by", "line price", "note"]]
+        rows = [
+            [
+                "designators",
+                "value",
+                "tolerance",
+                "rating",
+                "technology",
+                "part_id",
+                "per unit",
+                "total",
+                "stock",
+                "short by",
+                "line price",
+                "note",
+            ]
+        ]
         for line in bill.to_dict()["lines"]:
-            rows.append([line["designators"], line["label"], line["tolerance"], line["rating"],
-                         line["technology"] or line["package"], str(line["part_id"] or "-"), str(line["qty_per_unit"]),
-                         str(line["qty_total"]), "untracked" if line["stock"] is None else str(line["stock"]),
-                         str(line["short_by"] or ""),
-                         "-" if line["line_price"] is None else f"{line['line_price']:.2f} {t['currency']}",
-                         "; ".join(n for n in (line["orientation"], line.get("note") or "") if n)])
+            rows.append(
+                [
+                    line["designators"],
+                    line["label"],
+                    line["tolerance"],
+                    line["rating"],
+                    line["technology"] or line["package"],
+                    str(line["part_id"] or "-"),
+                    str(line["qty_per_unit"]),
+                    str(line["qty_total"]),
+                    "untracked" if line["stock"] is None else str(line["stock"]),
+                    str(line["short_by"] or ""),
+                    "-" if line["line_price"] is None else f"{line['line_price']:.2f} {t['currency']}",
+                    "; ".join(n for n in (line["orientation"], line.get("note") or "") if n),
+                ]
+            )
         print(_table(rows))
-        print(f"total {t['parts_total']} parts, {t['cost_total']:.2f} {t['currency']} "
-              f"({t['cost_per_unit']:.2f} {t['currency']} per unit)")
+        print(
+            f"total {t['parts_total']} parts, {t['cost_total']:.2f} {t['currency']} "
+            f"({t['cost_per_unit']:.2f} {t['currency']} per unit)"
+        )
         if bill.short:
             print(f"STOCK IS SHORT on {t['lines_short']} line(s): order before kitting")
         for caution in bill.cautions:
@@ -518,8 +612,9 @@ def _cmd_netlist(args: argparse.Namespace) -> int:
         try:
             candidate = json.loads(sys.stdin.read())
         except json.JSONDecodeError as error:
-            raise InputError.single("stdin", error.doc[error.pos:error.pos + 20],
-                                    f"a candidate record in JSON ({error.msg})") from None
+            raise InputError.single(
+                "stdin", error.doc[error.pos : error.pos + 20], f"a candidate record in JSON ({error.msg})"
+            ) from None
         title = f"stagefit candidate: {candidate.get('topology') if isinstance(candidate, dict) else '?'}"
     else:
         spec, _, candidate = _ranked(args)
@@ -552,8 +647,9 @@ def _cmd_report(args: argparse.Namespace) -> int:
 def _cmd_serve(args: argparse.Namespace) -> int:
     from api.server import serve  # Flask and waitress are imported only for this command
 
-    config = {k: v for k, v in (("STAGEFIT_WORKERS", args.workers), ("STAGEFIT_STORAGE", args.storage))
-              if v is not None}
+    config = {
+        k: v for k, v in (("STAGEFIT_WORKERS", args.workers), ("STAGEFIT_STORAGE", args.storage)) if v is not None
+    }
     if args.threads is not None:
         config["STAGEFIT_THREADS"] = args.threads
     open_path = None if args.open is None else ("/" if args.open == "" else f"/searches/{args.open}")
@@ -578,14 +674,18 @@ def _cmd_storage(args: argparse.Namespace) -> int:
         report = check_journal(args.file)
         print(report.describe())
         if not report.clean:
-            print(f"the service skips the damaged lines; `stagefit storage repair {args.file}` rewrites the "
-                  "file without them (stop the service first)", file=sys.stderr)
+            print(
+                f"the service skips the damaged lines; `stagefit storage repair {args.file}` rewrites the "
+                "file without them (stop the service first)",
+                file=sys.stderr,
+            )
         return EXIT_OK if report.clean else EXIT_ENVIRONMENT
     report = repair_journal(args.file)
     print(report.describe())
     if report.backup:
-        print(f"rewrote {report.path} with its {report.records} readable records; the original is kept as "
-              f"{report.backup}")
+        print(
+            f"rewrote {report.path} with its {report.records} readable records; the original is kept as {report.backup}"
+        )
     else:
         print("nothing to repair")
     return EXIT_OK
@@ -616,11 +716,18 @@ class _Parser(argparse.ArgumentParser):
 def _search_options(parser: argparse.ArgumentParser) -> None:
     from optimizer.limits import MAX_TRIALS
 
-    parser.add_argument("--storage", default="runs/stagefit.journal",
-                        help="where searches are kept: a journal file (default runs/stagefit.journal) "
-                             "or a database URL such as postgresql://user@host/db")
-    parser.add_argument("--trials", type=_whole(1, MAX_TRIALS), default=None,
-                        help=f"trial budget, 1 to {MAX_TRIALS} (default: the spec's)")
+    parser.add_argument(
+        "--storage",
+        default="runs/stagefit.journal",
+        help="where searches are kept: a journal file (default runs/stagefit.journal) "
+        "or a database URL such as postgresql://user@host/db",
+    )
+    parser.add_argument(
+        "--trials",
+        type=_whole(1, MAX_TRIALS),
+        default=None,
+        help=f"trial budget, 1 to {MAX_TRIALS} (default: the spec's)",
+    )
     parser.add_argument("--seed", type=_whole(0, 2**32 - 1), default=None, help="random seed (default: the spec's)")
     parser.add_argument("--fresh", action="store_true", help="run again even if this spec was searched before")
     parser.add_argument("--quiet", action="store_true", help="no progress report on stderr")
@@ -631,13 +738,14 @@ def build_parser() -> argparse.ArgumentParser:
     from optimizer.limits import MAX_SAMPLES, MAX_TOP, MAX_UNITS
 
     parser = _Parser(
-        prog="stagefit", formatter_class=argparse.RawDescriptionHelpFormatter,
+        prog="stagefit",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
         description=(
             "Choose the topology and every resistor and capacitor of a small-signal "
             "transistor stage from preferred values you can buy or have in stock."
         ),
-        epilog="Start with: stagefit check specs/contact_pickup_buffer.yaml\n\n" + EXIT_CODES.replace("; ", "\n  ")
-        .replace("exit codes: ", "exit codes:\n  "),
+        epilog="Start with: stagefit check specs/contact_pickup_buffer.yaml\n\n"
+        + EXIT_CODES.replace("; ", "\n  ").replace("exit codes: ", "exit codes:\n  "),
     )
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", required=True, parser_class=_Parser)
 
@@ -661,51 +769,83 @@ def build_parser() -> argparse.ArgumentParser:
     series.add_argument("--format", choices=("table", "json"), default="table")
     series.set_defaults(handler=_cmd_series)
 
-    topologies = sub.add_parser("topologies", help="list the stage topologies: description, roles, polarity, "
-                                "supply and gain sign")
+    topologies = sub.add_parser(
+        "topologies", help="list the stage topologies: description, roles, polarity, supply and gain sign"
+    )
     topologies.add_argument("--format", choices=("table", "json"), default="table")
     topologies.set_defaults(handler=_cmd_topologies)
 
     evaluate = sub.add_parser("evaluate", help="metrics, spread, yield and ratings of a design you already have")
     evaluate.add_argument("spec", help="the spec that sets supply, source, load, band and limits")
     evaluate.add_argument("--topology", required=True, help="a topology name, as `stagefit topologies` lists them")
-    evaluate.add_argument("--set", action="append", default=[], metavar="ROLE=VALUE",
-                          help="a part value, e.g. --set r_top=68k (repeat; capacitors left out are sized)")
+    evaluate.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="ROLE=VALUE",
+        help="a part value, e.g. --set r_top=68k (repeat; capacitors left out are sized)",
+    )
     evaluate.add_argument("--device", default=None, help="transistor id (default: the spec's first device)")
-    evaluate.add_argument("--samples", type=_whole(1, MAX_SAMPLES), default=1000,
-                          help=f"Monte Carlo builds for the yield, 1 to {MAX_SAMPLES} (default 1000)")
+    evaluate.add_argument(
+        "--samples",
+        type=_whole(1, MAX_SAMPLES),
+        default=1000,
+        help=f"Monte Carlo builds for the yield, 1 to {MAX_SAMPLES} (default 1000)",
+    )
     evaluate.add_argument("--format", choices=("table", "json"), default="table")
     evaluate.set_defaults(handler=_cmd_evaluate)
 
     search = sub.add_parser("search", help="search parts and topologies for a spec; ranked designs and the front")
     search.add_argument("spec", help=SPEC_HELP)
     _search_options(search)
-    search.add_argument("--top", type=_whole(1, MAX_TOP), default=10,
-                        help=f"how many ranked designs to show, 1 to {MAX_TOP} (default 10)")
+    search.add_argument(
+        "--top",
+        type=_whole(1, MAX_TOP),
+        default=10,
+        help=f"how many ranked designs to show, 1 to {MAX_TOP} (default 10)",
+    )
     search.add_argument("--format", choices=("table", "json", "csv", "markdown"), default="table")
     search.add_argument("--front", action="store_true", help="also print the Pareto front")
-    search.add_argument("--explain", action="store_true",
-                        help="print each shown design's score broken down term by term")
-    search.add_argument("--plot", action="append", default=[], metavar="FILE",
-                        help="write front.svg, response.svg or transfer.svg (or .png) of --rank; repeat")
+    search.add_argument(
+        "--explain", action="store_true", help="print each shown design's score broken down term by term"
+    )
+    search.add_argument(
+        "--plot",
+        action="append",
+        default=[],
+        metavar="FILE",
+        help="write front.svg, response.svg or transfer.svg (or .png) of --rank; repeat",
+    )
     search.add_argument("--rank", type=_whole(1, MAX_TOP), default=1, help="the design --plot draws (default 1)")
-    search.add_argument("--columns", default=None, metavar="LIST",
-                        help="table columns, comma-separated, from: " + ", ".join(COLUMNS)
-                             + " (default: " + ",".join(DEFAULT_COLUMNS) + ")")
+    search.add_argument(
+        "--columns",
+        default=None,
+        metavar="LIST",
+        help="table columns, comma-separated, from: "
+        + ", ".join(COLUMNS)
+        + " (default: "
+        + ",".join(DEFAULT_COLUMNS)
+        + ")",
+    )
     search.set_defaults(handler=_cmd_search)
 
     bom = sub.add_parser("bom", help="bill of materials and kitting of a ranked design against the catalog's stock")
     bom.add_argument("spec", help=SPEC_HELP)
     bom.add_argument("--rank", type=_whole(1, MAX_TOP), default=1, help="which ranked design (default 1)")
-    bom.add_argument("--units", type=_whole(1, MAX_UNITS), default=1,
-                     help=f"how many stages to kit, 1 to {MAX_UNITS} (default 1)")
+    bom.add_argument(
+        "--units", type=_whole(1, MAX_UNITS), default=1, help=f"how many stages to kit, 1 to {MAX_UNITS} (default 1)"
+    )
     bom.add_argument("--format", choices=("table", "csv", "json"), default="table")
     _search_options(bom)
     bom.set_defaults(handler=_cmd_bom)
 
     netlist = sub.add_parser("netlist", help="SPICE netlist of a ranked design (or of a candidate JSON on stdin)")
-    netlist.add_argument("spec", nargs="?", default=None,
-                         help="path to a spec file; '-' or none: read a candidate record (JSON) from stdin")
+    netlist.add_argument(
+        "spec",
+        nargs="?",
+        default=None,
+        help="path to a spec file; '-' or none: read a candidate record (JSON) from stdin",
+    )
     netlist.add_argument("--rank", type=_whole(1, MAX_TOP), default=1, help="which ranked design (default 1)")
     netlist.add_argument("--out", default=None, help="write the netlist to this file (default: stdout)")
     _search_options(netlist)
@@ -715,40 +855,71 @@ def build_parser() -> argparse.ArgumentParser:
     report.add_argument("spec", help=SPEC_HELP)
     report.add_argument("--rank", type=_whole(1, MAX_TOP), default=1, help="which ranked design (default 1)")
     report.add_argument("--out", required=True, help="directory to write rankN.html into")
-    report.add_argument("--units", type=_whole(1, MAX_UNITS), default=1,
-                        help=f"units the sheet's BOM is kitted for, 1 to {MAX_UNITS} (default 1)")
+    report.add_argument(
+        "--units",
+        type=_whole(1, MAX_UNITS),
+        default=1,
+        help=f"units the sheet's BOM is kitted for, 1 to {MAX_UNITS} (default 1)",
+    )
     _search_options(report)
     report.set_defaults(handler=_cmd_report)
 
     serve = sub.add_parser("serve", help="run the REST service (waitress; settings also from STAGEFIT_* variables)")
     serve.add_argument("--host", default="127.0.0.1", help="address to listen on (default 127.0.0.1)")
-    serve.add_argument("--open", nargs="?", const="", default=None, metavar="SEARCH",
-                       help="open the browser view once serving: the searches list, or the page of search SEARCH")
+    serve.add_argument(
+        "--open",
+        nargs="?",
+        const="",
+        default=None,
+        metavar="SEARCH",
+        help="open the browser view once serving: the searches list, or the page of search SEARCH",
+    )
     serve.add_argument("--port", type=_whole(0, 65535), default=8750, help="port (default 8750; 0 picks a free one)")
-    serve.add_argument("--workers", type=_whole(1, 64), default=None,
-                       help="searches run at once (STAGEFIT_WORKERS, default 1)")
-    serve.add_argument("--threads", type=_whole(2, 1024), default=None,
-                       help="request threads (STAGEFIT_THREADS, default 8); at most half of them wait on "
-                            "?wait= posts (STAGEFIT_MAX_WAITERS), the rest always serve other requests")
-    serve.add_argument("--storage", default=None,
-                       help="Optuna storage URL or journal file (STAGEFIT_STORAGE, default runs/stagefit.journal)")
+    serve.add_argument(
+        "--workers", type=_whole(1, 64), default=None, help="searches run at once (STAGEFIT_WORKERS, default 1)"
+    )
+    serve.add_argument(
+        "--threads",
+        type=_whole(2, 1024),
+        default=None,
+        help="request threads (STAGEFIT_THREADS, default 8); at most half of them wait on "
+        "?wait= posts (STAGEFIT_MAX_WAITERS), the rest always serve other requests",
+    )
+    serve.add_argument(
+        "--storage",
+        default=None,
+        help="Optuna storage URL or journal file (STAGEFIT_STORAGE, default runs/stagefit.journal)",
+    )
     serve.set_defaults(handler=_cmd_serve)
 
-    worker = sub.add_parser("worker", help="run the trials of searches queued in a shared storage (any number of "
-                            "workers on any number of machines; stops cleanly on SIGTERM/Ctrl-C)")
-    worker.add_argument("--storage", default=os.environ.get("STAGEFIT_STORAGE"),
-                        required=not os.environ.get("STAGEFIT_STORAGE"),
-                        help="storage URL shared with the API server, e.g. postgresql://user:pw@db/stagefit "
-                             "(STAGEFIT_STORAGE)")
-    worker.add_argument("--poll", type=float, default=2.0, help="seconds to wait when there is nothing to do (default 2)")
+    worker = sub.add_parser(
+        "worker",
+        help="run the trials of searches queued in a shared storage (any number of "
+        "workers on any number of machines; stops cleanly on SIGTERM/Ctrl-C)",
+    )
+    worker.add_argument(
+        "--storage",
+        default=os.environ.get("STAGEFIT_STORAGE"),
+        required=not os.environ.get("STAGEFIT_STORAGE"),
+        help="storage URL shared with the API server, e.g. postgresql://user:pw@db/stagefit (STAGEFIT_STORAGE)",
+    )
+    worker.add_argument(
+        "--poll", type=float, default=2.0, help="seconds to wait when there is nothing to do (default 2)"
+    )
     worker.add_argument("--once", action="store_true", help="exit when no stored search has budget left")
     worker.set_defaults(handler=_cmd_worker)
 
-    storage = sub.add_parser("storage", help="check a journal file for damaged records, or repair it "
-                             "(keeps a backup); exit 4 from check when damage is found")
-    storage.add_argument("action", choices=("check", "repair"),
-                         help="check: report damaged lines by byte offset; repair: rewrite the file "
-                              "without them, the original kept as FILE.bak-<time> (stop the service first)")
+    storage = sub.add_parser(
+        "storage",
+        help="check a journal file for damaged records, or repair it "
+        "(keeps a backup); exit 4 from check when damage is found",
+    )
+    storage.add_argument(
+        "action",
+        choices=("check", "repair"),
+        help="check: report damaged lines by byte offset; repair: rewrite the file "
+        "without them, the original kept as FILE.bak-<time> (stop the service first)",
+    )
     storage.add_argument("file", metavar="FILE", help="the journal file, e.g. runs/stagefit.journal")
     storage.set_defaults(handler=_cmd_storage)
     return parser
@@ -771,8 +942,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         sys.stderr.close()
         return EXIT_OK
     except KeyboardInterrupt:  # a search marks its running trials failed first (resumable)
-        print("interrupted" + (": the search is kept; run the same command again to resume it"
-                               if args.command == "search" else ""), file=sys.stderr)
+        print(
+            "interrupted"
+            + (": the search is kept; run the same command again to resume it" if args.command == "search" else ""),
+            file=sys.stderr,
+        )
         return EXIT_INTERNAL
     except Exception as error:
         if _environmental(error):  # the disk, a file, the database: not the user's input, not a bug
@@ -790,12 +964,21 @@ def main(argv: Sequence[str] | None = None) -> int:
 
 def _environmental(error: BaseException) -> bool:
     """A storage or operating-system failure, or an optional dependency not installed (exit code 4)."""
-    return isinstance(error, (StorageError, OSError, MemoryError)) or _extra_hint(error) != "" or \
-        type(error).__module__.split(".")[0] in ("sqlalchemy", "psycopg", "redis", "grpc")
+    return (
+        isinstance(error, (StorageError, OSError, MemoryError))
+        or _extra_hint(error) != ""
+        or type(error).__module__.split(".")[0] in ("sqlalchemy", "psycopg", "redis", "grpc")
+    )
 
 
 #: the optional extra (pyproject.toml) that installs each optional import
-OPTIONAL_EXTRAS = {"matplotlib": "plots", "flask": "server", "waitress": "server", "psycopg": "postgres", "redis": "redis"}
+OPTIONAL_EXTRAS = {
+    "matplotlib": "plots",
+    "flask": "server",
+    "waitress": "server",
+    "psycopg": "postgres",
+    "redis": "redis",
+}
 
 
 def _extra_hint(error: BaseException) -> str:

@@ -5,6 +5,7 @@ parameters that the analytic models use (IS, BF, NF, VAF, RB, CJE, CJC, TF, and 
 optional flicker-noise KF, AF; the others at their SPICE defaults). Temperatures are in
 degrees Celsius.
 """
+
 from __future__ import annotations
 
 import math
@@ -83,8 +84,13 @@ class Device:
                 if values[name] < 0:
                     problems.append(Problem(f"{where}.{name}", values[name], "zero or a positive number"))
             if not problems and not values["hfe_min"] <= values["hfe_typ"] <= values["hfe_max"]:
-                problems.append(Problem(f"{where}.hfe_typ", values["hfe_typ"],
-                                        f"between hfe_min {values['hfe_min']} and hfe_max {values['hfe_max']}"))
+                problems.append(
+                    Problem(
+                        f"{where}.hfe_typ",
+                        values["hfe_typ"],
+                        f"between hfe_min {values['hfe_min']} and hfe_max {values['hfe_max']}",
+                    )
+                )
         if problems:
             raise InputError(problems, title="invalid transistor")
         values["polarity"] = str(values["polarity"]).lower()
@@ -95,20 +101,22 @@ class Device:
         """Rebuild a device from a candidate record's "transistor" block (id, polarity, hfe_min,
         hfe_typ, hfe_max, vce_sat, vceo_max, p_max and model{IS..TF, optional KF, AF}), without the catalog."""
         if not isinstance(transistor, Mapping):
-            raise InputError.single("transistor", transistor, "a mapping (the candidate's transistor block)",
-                                    title="incomplete candidate")
+            raise InputError.single(
+                "transistor", transistor, "a mapping (the candidate's transistor block)", title="incomplete candidate"
+            )
         model = transistor.get("model")
         if not isinstance(model, Mapping):
-            raise InputError.single("transistor.model", model, "a mapping with " + ", ".join(SPICE_KEYS),
-                                    title="incomplete candidate")
+            raise InputError.single(
+                "transistor.model", model, "a mapping with " + ", ".join(SPICE_KEYS), title="incomplete candidate"
+            )
         top = [f.name for f in fields(cls) if f.name not in SPICE_KEYS + FLICKER_KEYS]
         missing = [Problem(f"transistor.{k}", None, "a value is required") for k in top if k not in transistor]
-        missing += [Problem(f"transistor.model.{k}", None, "a value is required")
-                    for k in SPICE_KEYS if k not in model]
+        missing += [Problem(f"transistor.model.{k}", None, "a value is required") for k in SPICE_KEYS if k not in model]
         if missing:
             raise InputError(missing, title="incomplete candidate")
-        return cls.from_row({**{k: transistor[k] for k in top},
-                             **{k: model[k] for k in SPICE_KEYS + FLICKER_KEYS if k in model}})
+        return cls.from_row(
+            {**{k: transistor[k] for k in top}, **{k: model[k] for k in SPICE_KEYS + FLICKER_KEYS if k in model}}
+        )
 
     def record(self) -> dict:
         """The candidate record's "transistor" block (what from_record reads back)."""
@@ -212,8 +220,10 @@ class JFET:
         """Build a JFET from a catalog row (or a record's flattened block); InputError naming each bad field."""
         where = f"jfet {row.get('id', '?')!s}"
         problems: list[Problem] = []
-        values: dict[str, Any] = {"id": str(row.get("id", "")).strip(),
-                                     "polarity": str(row.get("polarity", "")).strip().lower()}
+        values: dict[str, Any] = {
+            "id": str(row.get("id", "")).strip(),
+            "polarity": str(row.get("polarity", "")).strip().lower(),
+        }
         optional = {"KF": 0.0, "AF": 1.0, "TCV": 0.0, "BEX": 0.0}
         for name in cls._NUMBERS:
             raw = row.get(name)
@@ -241,12 +251,22 @@ class JFET:
         if not problems:
             idss, vp = values["BETA"] * values["VTO"] ** 2, -values["VTO"]
             if not values["idss_min"] <= idss <= values["idss_max"]:
-                problems.append(Problem(f"{where}.BETA", values["BETA"],
-                                        f"BETA*VTO^2 (the typical IDSS, now {idss:.4g} A) between idss_min "
-                                        f"{values['idss_min']} and idss_max {values['idss_max']}"))
+                problems.append(
+                    Problem(
+                        f"{where}.BETA",
+                        values["BETA"],
+                        f"BETA*VTO^2 (the typical IDSS, now {idss:.4g} A) between idss_min "
+                        f"{values['idss_min']} and idss_max {values['idss_max']}",
+                    )
+                )
             if not values["vp_min"] <= vp <= values["vp_max"]:
-                problems.append(Problem(f"{where}.VTO", values["VTO"],
-                                        f"-VTO between vp_min {values['vp_min']} and vp_max {values['vp_max']}"))
+                problems.append(
+                    Problem(
+                        f"{where}.VTO",
+                        values["VTO"],
+                        f"-VTO between vp_min {values['vp_min']} and vp_max {values['vp_max']}",
+                    )
+                )
         if problems:
             raise InputError(problems, title="invalid jfet")
         return cls(**values)
@@ -256,17 +276,28 @@ class JFET:
         """Rebuild from a candidate record's "transistor" block (ratings, ranges and model{BETA..BEX})."""
         model = transistor.get("model")
         if not isinstance(model, Mapping):
-            raise InputError.single("transistor.model", model, "a mapping with " + ", ".join(JFET_SPICE_KEYS),
-                                    title="incomplete candidate")
+            raise InputError.single(
+                "transistor.model", model, "a mapping with " + ", ".join(JFET_SPICE_KEYS), title="incomplete candidate"
+            )
         return cls.from_row({**{k: v for k, v in transistor.items() if k != "model"}, **model})
 
     def record(self) -> dict:
         """The candidate record's "transistor" block: ratings, ranges, the derived datasheet
         figures (idss_typ, vp_typ, gfs, ciss, crss in SI units) and the SPICE model."""
-        top = {k: getattr(self, k) for k in ("id", "polarity", "idss_min", "idss_max", "vp_min", "vp_max",
-                                             "vds_max", "p_max")}
-        return {**top, "kind": self.kind, "idss_typ": self.idss_typ, "vp_typ": -self.VTO, "gfs": self.gfs,
-                "ciss": self.CGS + self.CGD, "crss": self.CGD, "model": self.spice_model()}
+        top = {
+            k: getattr(self, k)
+            for k in ("id", "polarity", "idss_min", "idss_max", "vp_min", "vp_max", "vds_max", "p_max")
+        }
+        return {
+            **top,
+            "kind": self.kind,
+            "idss_typ": self.idss_typ,
+            "vp_typ": -self.VTO,
+            "gfs": self.gfs,
+            "ciss": self.CGS + self.CGD,
+            "crss": self.CGD,
+            "model": self.spice_model(),
+        }
 
     def spice_model(self) -> dict[str, float]:
         """SPICE NJF .model parameters (JFET_SPICE_KEYS)."""
@@ -275,7 +306,7 @@ class JFET:
     @property
     def idss_typ(self) -> float:
         """Typical IDSS (A): BETA*VTO^2."""
-        return self.BETA * self.VTO ** 2
+        return self.BETA * self.VTO**2
 
     @property
     def gfs(self) -> float:
@@ -308,7 +339,7 @@ class JFET:
         idss = idss_a * (idss_b / idss_a) ** w
         vp = vp_a * (vp_b / vp_a) ** w
         t, t_nom = np.asarray(temp_c, dtype=float) + KELVIN_OFFSET, SPICE_TNOM_C + KELVIN_OFFSET
-        beta = idss / vp ** 2 * (t / t_nom) ** self.BEX
+        beta = idss / vp**2 * (t / t_nom) ** self.BEX
         vto = -vp - self.TCV * (t - t_nom)
         return beta, vto
 

@@ -12,6 +12,7 @@ doors use (the CLI's spec files and the REST service's request bodies).
 
 Every refusal is an :class:`~optimizer.errors.InputError` naming where and what is allowed.
 """
+
 from __future__ import annotations
 
 import json
@@ -36,7 +37,8 @@ class _BoundedLoader(yaml.SafeLoader):
             if self._aliases > MAX_ALIASES:
                 event = self.peek_event()
                 raise yaml.composer.ComposerError(
-                    None, None, f"more than {MAX_ALIASES} YAML aliases (*name) in one document", event.start_mark)
+                    None, None, f"more than {MAX_ALIASES} YAML aliases (*name) in one document", event.start_mark
+                )
         return super().compose_node(parent, index)
 
 
@@ -57,8 +59,9 @@ def parse_yaml(text: str, where: str) -> Any:
         reason = getattr(exc, "problem", None) or str(exc).splitlines()[0]
         raise InputError.single(place, shown, f"valid YAML ({reason})", "unreadable document") from None
     except RecursionError:
-        raise InputError.single(where, "<deeply nested YAML>", f"at most {MAX_DEPTH} levels of nesting",
-                                "unreadable document") from None
+        raise InputError.single(
+            where, "<deeply nested YAML>", f"at most {MAX_DEPTH} levels of nesting", "unreadable document"
+        ) from None
     check_tree(data, where)
     return data
 
@@ -69,14 +72,20 @@ def parse_json(text: str, where: str) -> Any:
     try:
         data = json.loads(text, parse_constant=_reject_constant)
     except json.JSONDecodeError as exc:
-        raise InputError.single(f"{where}:{exc.lineno}:{exc.colno}", exc.doc[exc.pos:exc.pos + 20],
-                                f"valid JSON ({exc.msg})", "unreadable document") from None
+        raise InputError.single(
+            f"{where}:{exc.lineno}:{exc.colno}",
+            exc.doc[exc.pos : exc.pos + 20],
+            f"valid JSON ({exc.msg})",
+            "unreadable document",
+        ) from None
     except RecursionError:
-        raise InputError.single(where, "<deeply nested JSON>", f"at most {MAX_DEPTH} levels of nesting",
-                                "unreadable document") from None
+        raise InputError.single(
+            where, "<deeply nested JSON>", f"at most {MAX_DEPTH} levels of nesting", "unreadable document"
+        ) from None
     except ValueError as exc:  # NaN / Infinity, or an integer of more digits than Python converts
-        raise InputError.single(where, str(exc)[:120], "valid JSON with finite numbers of at most "
-                                "4300 digits", "unreadable document") from None
+        raise InputError.single(
+            where, str(exc)[:120], "valid JSON with finite numbers of at most 4300 digits", "unreadable document"
+        ) from None
     check_tree(data, where)
     return data
 
@@ -84,8 +93,9 @@ def parse_json(text: str, where: str) -> Any:
 def parse_document(text: str, where: str, *, yaml_ok: bool = True) -> Any:
     """A JSON document (text starting with ``{`` or ``[``) or, if ``yaml_ok``, YAML."""
     if len(text) > MAX_BYTES:
-        raise InputError.single(where, f"{len(text)} characters", f"a document of at most {MAX_BYTES} bytes",
-                                "document too large")
+        raise InputError.single(
+            where, f"{len(text)} characters", f"a document of at most {MAX_BYTES} bytes", "document too large"
+        )
     if not yaml_ok or text.lstrip()[:1] in ("{", "["):
         return parse_json(text, where)
     return parse_yaml(text, where)
@@ -100,12 +110,16 @@ def check_tree(data: Any, where: str = "<document>") -> None:
         value, depth, path = stack.pop()
         nodes += 1
         if nodes > MAX_NODES:
-            raise InputError.single(where, f"more than {MAX_NODES} values",
-                                    f"a document of at most {MAX_NODES} values (aliases expanded)",
-                                    "document too large")
+            raise InputError.single(
+                where,
+                f"more than {MAX_NODES} values",
+                f"a document of at most {MAX_NODES} values (aliases expanded)",
+                "document too large",
+            )
         if depth > MAX_DEPTH:
-            raise InputError.single(path or where, "<nested deeper>", f"at most {MAX_DEPTH} levels of nesting",
-                                    "document too deep")
+            raise InputError.single(
+                path or where, "<nested deeper>", f"at most {MAX_DEPTH} levels of nesting", "document too deep"
+            )
         if isinstance(value, str):
             _text(value, path or where)
         elif isinstance(value, dict):
@@ -121,6 +135,9 @@ def _text(value: str, where: str) -> None:
     try:
         value.encode("utf-8")
     except UnicodeEncodeError as exc:
-        raise InputError.single(where[:200], value[max(exc.start - 10, 0):exc.end + 10],
-                                "text of whole Unicode characters (a lone UTF-16 surrogate "
-                                f"\\u{ord(value[exc.start]):04x} cannot be stored)") from None
+        raise InputError.single(
+            where[:200],
+            value[max(exc.start - 10, 0) : exc.end + 10],
+            "text of whole Unicode characters (a lone UTF-16 surrogate "
+            f"\\u{ord(value[exc.start]):04x} cannot be stored)",
+        ) from None

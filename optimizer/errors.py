@@ -4,6 +4,7 @@ Every input error names *where* (a field path, or a file, line and column), the
 *value* that was given and *what would be valid*. The CLI turns any
 :class:`InputError` into exit code 2; the REST service into a 4xx problem+json.
 """
+
 from __future__ import annotations
 
 from dataclasses import dataclass, field
@@ -18,8 +19,11 @@ class Problem:
     expected: str
 
     def __str__(self) -> str:
-        shown = repr(self.value) if not isinstance(self.value, int) or abs(self.value) < 10**40 \
+        shown = (
+            repr(self.value)
+            if not isinstance(self.value, int) or abs(self.value) < 10**40
             else f"an integer of {len(str(abs(self.value)))} digits"
+        )
         if len(shown) > 120:  # a long value is named, not echoed: the message stays one line
             shown = f"{shown[:100]}... ({len(shown)} characters)"
         return f"{self.where}: got {shown}; {self.expected}"

@@ -24,6 +24,7 @@ window are combined with the other roles. When no design meets every limit, the 
 is scored again for the nearest miss (the best bounds kept, and a further pass if the bound
 cannot rule out the rest), so the answer stays exact.
 """
+
 from __future__ import annotations
 
 from dataclasses import dataclass
@@ -58,15 +59,18 @@ class _Enumeration:
     bound (and ``prune``), only the (r_collector, r_emitter) pairs that can reach the spec's
     gain window are combined with the other roles."""
 
-    def __init__(self, space: SearchSpace, spec: Spec, roles: tuple[str, ...], lows: dict[str, int],
-                 prune: bool, topology: str) -> None:
+    def __init__(
+        self, space: SearchSpace, spec: Spec, roles: tuple[str, ...], lows: dict[str, int], prune: bool, topology: str
+    ) -> None:
         n = space.resistors.values.size
         ranges = {r: np.arange(lows[r], n) for r in roles}
         bounded: tuple[str, ...] = ()
         model = get_topology(topology)
         if prune and model.gain_bound_roles:
             bounded = model.gain_bound_roles
-            grid = np.stack(np.meshgrid(*(ranges[r] for r in bounded), indexing="ij"), axis=-1).reshape(-1, len(bounded))
+            grid = np.stack(np.meshgrid(*(ranges[r] for r in bounded), indexing="ij"), axis=-1).reshape(
+                -1, len(bounded)
+            )
             values = {r: space.resistors.values[np.maximum(grid[:, j], 0)] for j, r in enumerate(bounded)}
             floor = spec.gain.target * 10 ** (-spec.gain.tolerance_db / 20)
             bound = model.gain_bound(values, spec.load_impedance)
@@ -97,8 +101,9 @@ class _Enumeration:
             yield out
 
 
-def exhaustive(spec: Spec, topology: str | None = None, device: str | None = None,
-               space: SearchSpace | None = None) -> OracleResult:
+def exhaustive(
+    spec: Spec, topology: str | None = None, device: str | None = None, space: SearchSpace | None = None
+) -> OracleResult:
     """Enumerate every resistor combination of ``topology`` and ``device`` (the spec's first
     by default) and return the best design by the search's score and the true front."""
     space = space or SearchSpace.build(spec)
@@ -109,8 +114,11 @@ def exhaustive(spec: Spec, topology: str | None = None, device: str | None = Non
     if device not in space.devices:
         raise InputError.single("device", device, f"one of the spec's devices: {', '.join(space.devices)}")
     if spec.search.capacitors != "sized":
-        raise InputError.single("search.capacitors", spec.search.capacitors,
-                                "'sized' (the oracle enumerates resistors and sizes the capacitors)")
+        raise InputError.single(
+            "search.capacitors",
+            spec.search.capacitors,
+            "'sized' (the oracle enumerates resistors and sizes the capacitors)",
+        )
     model = get_topology(topology)
     n = space.resistors.values.size
     roles = model.resistors
@@ -142,7 +150,7 @@ def exhaustive(spec: Spec, topology: str | None = None, device: str | None = Non
         nonlocal best_score, best, evaluated
         order = np.argsort(-optimistic, kind="stable")
         for start in range(0, order.size, FULL_CHUNK):
-            chunk = order[start:start + FULL_CHUNK]
+            chunk = order[start : start + FULL_CHUNK]
             if optimistic[chunk[0]] <= 0 and optimistic[chunk[0]] < best_score:
                 return True
             sub = idx[chunk]
@@ -174,16 +182,22 @@ def exhaustive(spec: Spec, topology: str | None = None, device: str | None = Non
         raise InputError.single("spec", spec.name, "a space with at least one combination", title="empty space")
     front = np.concatenate(front_values) if front_values else np.zeros((0, len(directions)))
     front = front[pareto_mask(front, directions)]
-    return OracleResult(best=_record(*best), front=front, combinations=total, fully_evaluated=evaluated,
-                        feasible=feasible)
+    return OracleResult(
+        best=_record(*best), front=front, combinations=total, fully_evaluated=evaluated, feasible=feasible
+    )
 
 
 def _record(g: dict, k: int) -> dict:
-    return {"parts": {**{r: float(v[k]) for r, v in g["resistors"].items()},
-                      **{c: float(v[k]) for c, v in g["caps"].items()}},
-            "metrics": {m: float(v[k]) for m, v in g["metrics"].items()},
-            "score": float(g["score"][k]), "feasible": bool(g["total"][k] == 0),
-            "total_violation": float(g["total"][k])}
+    return {
+        "parts": {
+            **{r: float(v[k]) for r, v in g["resistors"].items()},
+            **{c: float(v[k]) for c, v in g["caps"].items()},
+        },
+        "metrics": {m: float(v[k]) for m, v in g["metrics"].items()},
+        "score": float(g["score"][k]),
+        "feasible": bool(g["total"][k] == 0),
+        "total_violation": float(g["total"][k]),
+    }
 
 
 __all__ = ["exhaustive", "OracleResult"]

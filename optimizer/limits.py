@@ -3,6 +3,7 @@
 A module of plain numbers, so that the CLI's argument parser (``stagefit --help``) reads
 them without importing pydantic, pandas or the models.
 """
+
 MAX_TRIALS = 1_000_000  # trials in one search
 MAX_BATCH = 1024  # trials asked and evaluated together (memory grows with it)
 MAX_NAME = 200  # characters in a spec name

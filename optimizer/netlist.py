@@ -14,6 +14,7 @@ positive rail; a PNP stage, a negative rail or a split supply maps its rails (:f
 topology's own nodes, ``out`` (the load), ``0`` (ground), and with a supply decoupling RC
 ``vloc`` (the stage's local supply, behind ``r_decouple``).
 """
+
 from __future__ import annotations
 
 import math
@@ -38,6 +39,7 @@ def _model_form(stage: Topology) -> tuple[tuple[str, ...], tuple[str, ...], str,
     if stage.device_kind == "jfet":
         return JFET_MODEL_KEYS, JFET_OPTIONAL_MODEL_KEYS, "NJF", "J"
     return MODEL_KEYS, OPTIONAL_MODEL_KEYS, "NPN", "Q"
+
 
 # Stand-in for a zero source impedance (SPICE needs a finite resistor), ohm.
 ZERO_SOURCE_RESISTANCE = 1e-3
@@ -88,8 +90,9 @@ def rail_nodes(supply: float, polarity: str = "npn", below_ground: float = 0.0) 
     return {"vcc": (name(frame_top), frame_top), "0": (name(frame_bottom), frame_bottom)}
 
 
-def dc_node_voltages(topology: str, operating_point: Mapping[str, float], supply: float,
-                     polarity: str = "npn", below_ground: float = 0.0) -> dict[str, float]:
+def dc_node_voltages(
+    topology: str, operating_point: Mapping[str, float], supply: float, polarity: str = "npn", below_ground: float = 0.0
+) -> dict[str, float]:
     """DC voltage (V to ground) of every node of ``topology``'s template from a candidate's
     operating point (true volts, the keys of the topology's ``node_voltages``), the supply span
     (V), the transistor polarity and the supply's below-ground fraction; the template's rails
@@ -98,8 +101,9 @@ def dc_node_voltages(topology: str, operating_point: Mapping[str, float], supply
     keys = get_topology(topology).node_voltages
     rails = rail_nodes(supply, polarity, below_ground)
     nodes = {n for pair in element_nodes(topology).values() for n in pair} | {"vcc", "src", "out", "0"}
-    return {n: (rails[n][1] if n in rails else float(operating_point[keys[n]])
-                if n in keys else 0.0) for n in sorted(nodes)}
+    return {
+        n: (rails[n][1] if n in rails else float(operating_point[keys[n]]) if n in keys else 0.0) for n in sorted(nodes)
+    }
 
 
 def required_parts(topology: str) -> tuple[str, ...]:
@@ -113,8 +117,9 @@ def _check_parts(topology: str, parts: Mapping[str, float], split: bool = False)
     problems: list[Problem] = []
     for role in needed:
         if role not in parts:
-            problems.append(Problem(f"parts.{role}", None,
-                                    f"{topology} needs a value for {role}; needed: {', '.join(needed)}"))
+            problems.append(
+                Problem(f"parts.{role}", None, f"{topology} needs a value for {role}; needed: {', '.join(needed)}")
+            )
             continue
         value = parts[role]
         may_be_zero = role in get_topology(topology).optional_parts
@@ -130,17 +135,20 @@ def _check_parts(topology: str, parts: Mapping[str, float], split: bool = False)
         problems.append(Problem("parts.c_decouple", parts.get("c_decouple"), "a capacitance > 0 with r_decouple"))
     for role in parts:
         if role not in needed and role not in SUPPLY_ROLES:
-            problems.append(Problem(f"parts.{role}", parts[role],
-                                    f"not a part of {topology}; needed: {', '.join(needed)}"))
+            problems.append(
+                Problem(f"parts.{role}", parts[role], f"not a part of {topology}; needed: {', '.join(needed)}")
+            )
     if problems:
         raise InputError(problems, title=f"parts do not fit topology {topology}")
 
 
 def _check_model(model: Mapping[str, float], stage: Topology) -> None:
     required, optional, _, _ = _model_form(stage)
-    problems = [Problem(f"model.{key}", model.get(key), "a finite number")
-                for key in required + tuple(k for k in optional if k in model)
-                if not isinstance(model.get(key), (int, float)) or not math.isfinite(model[key])]
+    problems = [
+        Problem(f"model.{key}", model.get(key), "a finite number")
+        for key in required + tuple(k for k in optional if k in model)
+        if not isinstance(model.get(key), (int, float)) or not math.isfinite(model[key])
+    ]
     if problems:
         raise InputError(problems, title=f"device model needs {', '.join(required)}")
 
@@ -165,10 +173,20 @@ def _model_name(device_id: str) -> str:
     return name if name[:1].isalpha() else f"m_{name}"
 
 
-def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                  conditions: Any, *, device_id: str = "q", analyses: str = "",
-                  title: str | None = None, amplitude: float = 0.01,
-                  frequency: float | None = None, cautions: Sequence[str] = (), polarity: str = "npn") -> str:
+def spice_netlist(
+    topology: str,
+    parts: Mapping[str, float],
+    model: Mapping[str, float],
+    conditions: Any,
+    *,
+    device_id: str = "q",
+    analyses: str = "",
+    title: str | None = None,
+    amplitude: float = 0.01,
+    frequency: float | None = None,
+    cautions: Sequence[str] = (),
+    polarity: str = "npn",
+) -> str:
     """SPICE netlist of one stage.
 
     ``parts`` maps role -> value (ohm, F); ``model`` holds the Gummel-Poon keys of MODEL_KEYS
@@ -212,29 +230,35 @@ def spice_netlist(topology: str, parts: Mapping[str, float], model: Mapping[str,
         return rails[n][0] if n in rails else n
 
     names = designators(topology, parts)
-    lines = [title or f"stagefit {topology} stage, device {device_id}",
-             f"* topology: {topology}",
-             "* parts (designator role = designer label, netlist value in ohm or F):"]
+    lines = [
+        title or f"stagefit {topology} stage, device {device_id}",
+        f"* topology: {topology}",
+        "* parts (designator role = designer label, netlist value in ohm or F):",
+    ]
     for role, _, _ in elements:
         unit = "F" if role.startswith("c_") else "ohm"
         label = format_value(float(parts[role]), unit=unit, ascii=True)
-        lines.append(f"*   {names.get(role, '(none)'):<4} {role} = {label} ({float(parts[role])!r})"
-                     + ("" if role in names else ": left out, a short"))
+        lines.append(
+            f"*   {names.get(role, '(none)'):<4} {role} = {label} ({float(parts[role])!r})"
+            + ("" if role in names else ": left out, a short")
+        )
     lines += [f"*   {names[role]:<4} {role} = {device_id}" for role, *_ in stage.transistor_pins]
     lines += [
-              f"* conditions: supply {supply!r} V, source {source!r} ohm, load {load!r} ohm, "
-              f"load capacitance {load_c!r} F, {temp!r} degC, band {conditions.band[0]!r}.."
-              f"{conditions.band[1]!r} Hz",
-              f"* CAUTION: simulated, not built. Supply {supply!r} V DC"
-              + ("" if not below else f" in all (rails {rails_text})") + ": check every part's voltage",
-              "* and power rating (capacitors against the DC across them, resistors against I^2R,",
-              "* the transistor against Vceo and its dissipation) before applying power.",
-              *[f"* CAUTION: {note}" for note in cautions],
-              f".temp {temp!r}",
-              ".options TNOM=27",
-              *[f"V{name[1:]} {name} 0 DC {volts!r}" for name, volts in sorted(set(rails.values())) if name != "0"],
-              f"Vsig sig 0 DC 0 AC 1 SIN(0 {float(amplitude)!r} {freq!r})",
-              f"Rsource sig src {(source if source > 0 else ZERO_SOURCE_RESISTANCE)!r}"]
+        f"* conditions: supply {supply!r} V, source {source!r} ohm, load {load!r} ohm, "
+        f"load capacitance {load_c!r} F, {temp!r} degC, band {conditions.band[0]!r}.."
+        f"{conditions.band[1]!r} Hz",
+        f"* CAUTION: simulated, not built. Supply {supply!r} V DC"
+        + ("" if not below else f" in all (rails {rails_text})")
+        + ": check every part's voltage",
+        "* and power rating (capacitors against the DC across them, resistors against I^2R,",
+        "* the transistor against Vceo and its dissipation) before applying power.",
+        *[f"* CAUTION: {note}" for note in cautions],
+        f".temp {temp!r}",
+        ".options TNOM=27",
+        *[f"V{name[1:]} {name} 0 DC {volts!r}" for name, volts in sorted(set(rails.values())) if name != "0"],
+        f"Vsig sig 0 DC 0 AC 1 SIN(0 {float(amplitude)!r} {freq!r})",
+        f"Rsource sig src {(source if source > 0 else ZERO_SOURCE_RESISTANCE)!r}",
+    ]
     for role, a, b in elements:
         value = float(parts[role])
         nodes = f"{node(role, a)} {node(role, b)}"
@@ -266,14 +290,25 @@ def candidate_netlist(record: dict, *, title: str | None = None) -> str:
     topology, parts, device, conditions = design_from_record(record)
     low, high = conditions.band
     f_mid = mid_band_frequency(conditions)
-    tests = "\n".join([
-        "* Test analyses and sources (uncomment to run):",
-        "* .op",
-        f"* .ac dec 20 {low / 10!r} {high * 10!r}",
-        f"* .tran {1 / (50 * f_mid)!r} {5 / f_mid!r}",
-        f"* .noise v(out) Vsig dec 20 {low!r} {high!r}",
-        "* Output impedance: set Vsig's AC to 0, uncomment Itest, run .ac and read v(out) in ohm:",
-        "* Itest 0 out AC 1"])
-    return spice_netlist(topology.name, {r: float(v[0]) for r, v in parts.items()}, record["transistor"]["model"],
-                         conditions, device_id=device.id, title=title, analyses=tests,
-                         cautions=[str(c) for c in record.get("cautions", [])], polarity=device.polarity)
+    tests = "\n".join(
+        [
+            "* Test analyses and sources (uncomment to run):",
+            "* .op",
+            f"* .ac dec 20 {low / 10!r} {high * 10!r}",
+            f"* .tran {1 / (50 * f_mid)!r} {5 / f_mid!r}",
+            f"* .noise v(out) Vsig dec 20 {low!r} {high!r}",
+            "* Output impedance: set Vsig's AC to 0, uncomment Itest, run .ac and read v(out) in ohm:",
+            "* Itest 0 out AC 1",
+        ]
+    )
+    return spice_netlist(
+        topology.name,
+        {r: float(v[0]) for r, v in parts.items()},
+        record["transistor"]["model"],
+        conditions,
+        device_id=device.id,
+        title=title,
+        analyses=tests,
+        cautions=[str(c) for c in record.get("cautions", [])],
+        polarity=device.polarity,
+    )

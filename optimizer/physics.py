@@ -6,6 +6,7 @@ transistor is the SPICE Gummel-Poon model with only IS, BF, NF, VAF, RB, CJE, CJ
 TF and the flicker-noise KF, AF set (BR=1, IKF=inf, ISE=0, VAR=inf, RE=RC=0, VJ=0.75 V, MJ=0.33, FC=0.5), in the
 forward-active region; a candidate outside it is flagged, not modelled.
 """
+
 from __future__ import annotations
 
 import threading
@@ -32,7 +33,9 @@ NOISE_REFERENCE_K = 290.0  # K, standard source temperature of the noise figure
 NEWTON_ITERATIONS = 8
 THD_SAMPLES = 16  # samples per period of the quasi-static distortion solve (harmonics 2..7)
 THD_ITERATIONS = 6  # Newton steps per sample, warm-started at the quiescent Vbe
-THD_FREQUENCY = 1000.0  # Hz, where a frequency-dependent distortion term is judged (THD quoted at 1 kHz, common practice)
+THD_FREQUENCY = (
+    1000.0  # Hz, where a frequency-dependent distortion term is judged (THD quoted at 1 kHz, common practice)
+)
 SWING_TOLERANCE = 0.1  # usable swing: both peaks within 10 % of the linear gain times the drive
 SWING_GRID = (0.8, 1.0, 1.6)  # multiples of the clip-level drive scanned for the first deviation
 SWING_STEPS = 3  # Illinois false-position steps on the drive amplitude after the scan
@@ -43,11 +46,23 @@ NEWTON_TOL = 1e-7  # V, residual of the base-loop equation counted as converged
 
 # ----------------------------------------------------------------------------- bias
 
-def solve_junction(a: np.ndarray, r_base: np.ndarray, r_emit: np.ndarray, *, i_s: float,
-                   beta: np.ndarray, nvt: float, inv_vaf: float,
-                   vcb0: np.ndarray | float = 0.0, vcb_ic: np.ndarray | float = 0.0,
-                   vcb_ib: np.ndarray | float = 0.0, vcb_vbe: np.ndarray | float = 0.0,
-                   v_start: np.ndarray | None = None, iterations: int = NEWTON_ITERATIONS) -> dict[str, np.ndarray]:
+
+def solve_junction(
+    a: np.ndarray,
+    r_base: np.ndarray,
+    r_emit: np.ndarray,
+    *,
+    i_s: float,
+    beta: np.ndarray,
+    nvt: float,
+    inv_vaf: float,
+    vcb0: np.ndarray | float = 0.0,
+    vcb_ic: np.ndarray | float = 0.0,
+    vcb_ib: np.ndarray | float = 0.0,
+    vcb_vbe: np.ndarray | float = 0.0,
+    v_start: np.ndarray | None = None,
+    iterations: int = NEWTON_ITERATIONS,
+) -> dict[str, np.ndarray]:
     """Solve one forward-active transistor's base loop by vectorised damped Newton.
 
     The loop is ``a = Vbe + r_base*Ib + r_emit*(Ic+Ib)`` (V, ohm), with the Gummel-Poon
@@ -59,8 +74,9 @@ def solve_junction(a: np.ndarray, r_base: np.ndarray, r_emit: np.ndarray, *, i_s
     warm start near the root (e.g. the quiescent Vbe when solving around an operating point).
     """
     # float64 unless the arrays given are all float32 (the usable-swing search: see StageModel._static_fn)
-    dtype = np.result_type(*(np.asarray(x).dtype for x in (a, r_base, r_emit, beta)
-                             if np.asarray(x).dtype.kind == "f"), np.float32)
+    dtype = np.result_type(
+        *(np.asarray(x).dtype for x in (a, r_base, r_emit, beta) if np.asarray(x).dtype.kind == "f"), np.float32
+    )
     a, r_base, r_emit, beta = np.broadcast_arrays(*(np.asarray(x, dtype=dtype) for x in (a, r_base, r_emit, beta)))
     r_ib = r_base / beta + r_emit / beta  # loop resistance per unit If through the base current
     if v_start is None:
@@ -128,8 +144,14 @@ def solve_junction(a: np.ndarray, r_base: np.ndarray, r_emit: np.ndarray, *, i_s
     ic = e * early
     vbe, ib = v, e / beta
     vcb = vcb0 - vcb_ic * ic - vcb_ib * ib - vcb_vbe * vbe
-    return {"vbe": vbe, "vcb": vcb, "i_forward": e, "ic": ic, "ib": ib,
-            "converged": (np.abs(g) < NEWTON_TOL) & np.isfinite(e) & (e > 0)}
+    return {
+        "vbe": vbe,
+        "vcb": vcb,
+        "i_forward": e,
+        "ic": ic,
+        "ib": ib,
+        "converged": (np.abs(g) < NEWTON_TOL) & np.isfinite(e) & (e > 0),
+    }
 
 
 def is_active(vce: np.ndarray, ic: np.ndarray, vce_sat: float, converged: np.ndarray) -> np.ndarray:
@@ -138,6 +160,7 @@ def is_active(vce: np.ndarray, ic: np.ndarray, vce_sat: float, converged: np.nda
 
 
 # ----------------------------------------------------------------------------- small signal
+
 
 def depletion_capacitance(c0: float, v: np.ndarray) -> np.ndarray:
     """SPICE junction depletion capacitance (F) at forward voltage v (V), with FC linearisation."""
@@ -159,8 +182,9 @@ def depletion_charge(c0: float, v: np.ndarray) -> np.ndarray:
     return rev + f * ((1.0 - FC * (1.0 + MJ)) * d + MJ / (2.0 * VJ) * ((FC * VJ + d) ** 2 - (FC * VJ) ** 2))
 
 
-def small_signal(bias: dict[str, np.ndarray], device: AnyDevice, beta: np.ndarray, nvt: float,
-                 i_s: float) -> dict[str, np.ndarray]:
+def small_signal(
+    bias: dict[str, np.ndarray], device: AnyDevice, beta: np.ndarray, nvt: float, i_s: float
+) -> dict[str, np.ndarray]:
     """Hybrid-pi parameters at a bias point (from :func:`solve_junction`).
 
     gm (S, dIc/dVb'e at fixed Vce), gpi (S, dIb/dVb'e), go (S, dIc/dVce), cpi, cmu (F)
@@ -171,15 +195,22 @@ def small_signal(bias: dict[str, np.ndarray], device: AnyDevice, beta: np.ndarra
     inv_vaf = device.inv_vaf
     gbe = (e + i_s) / nvt
     go = e * inv_vaf
-    return {"gm": gbe * (1.0 + vcb * inv_vaf) - go, "gpi": gbe / beta, "go": go,
-            "ic": bias["ic"], "ib": bias["ib"], "flicker": device.KF * np.abs(bias["ib"]) ** device.AF,
-            "cpi": device.TF * gbe + depletion_capacitance(device.CJE, vbe),
-            "cmu": depletion_capacitance(device.CJC, -vcb),
-            "rb": np.full_like(e, device.RB)}
+    return {
+        "gm": gbe * (1.0 + vcb * inv_vaf) - go,
+        "gpi": gbe / beta,
+        "go": go,
+        "ic": bias["ic"],
+        "ib": bias["ib"],
+        "flicker": device.KF * np.abs(bias["ib"]) ** device.AF,
+        "cpi": device.TF * gbe + depletion_capacitance(device.CJE, vbe),
+        "cmu": depletion_capacitance(device.CJC, -vcb),
+        "rb": np.full_like(e, device.RB),
+    }
 
 
-def ce_midband(ss: dict[str, np.ndarray], r_emit: np.ndarray, r_coll: np.ndarray,
-               r_base_source: np.ndarray) -> dict[str, np.ndarray]:
+def ce_midband(
+    ss: dict[str, np.ndarray], r_emit: np.ndarray, r_coll: np.ndarray, r_base_source: np.ndarray
+) -> dict[str, np.ndarray]:
     """Closed-form mid-band hybrid-pi stage (exact for the network of the model, caps ignored).
 
     Emitter to ground through r_emit, collector to AC ground through r_coll (0 allowed),
@@ -197,10 +228,16 @@ def ce_midband(ss: dict[str, np.ndarray], r_emit: np.ndarray, r_coll: np.ndarray
         rpi = 1.0 / gpi
         r_b = r_base_source + rb
         r_p = r_emit * (rpi + r_b) / (r_emit + rpi + r_b)
-        return {"z_base": rb + (1.0 + alpha) * rpi, "gain_c": gain_x / vb_per_vx, "gain_e": alpha / vb_per_vx,
-                "gain_x": gain_x, "gain_x_e": alpha, "loop": 1.0 + alpha,
-                "z_coll": 1.0 / go + r_p + gm / go * r_p * rpi / (rpi + r_b),
-                "z_emit": 1.0 / ((1.0 + gm * rpi) / (rpi + r_b) + go)}
+        return {
+            "z_base": rb + (1.0 + alpha) * rpi,
+            "gain_c": gain_x / vb_per_vx,
+            "gain_e": alpha / vb_per_vx,
+            "gain_x": gain_x,
+            "gain_x_e": alpha,
+            "loop": 1.0 + alpha,
+            "z_coll": 1.0 / go + r_p + gm / go * r_p * rpi / (rpi + r_b),
+            "z_emit": 1.0 / ((1.0 + gm * rpi) / (rpi + r_b) + go),
+        }
 
 
 def parallel(*rs: np.ndarray) -> np.ndarray:
@@ -210,6 +247,7 @@ def parallel(*rs: np.ndarray) -> np.ndarray:
 
 
 # ----------------------------------------------------------------------------- nodal analysis
+
 
 class Network:
     """A linear network Y(s) = G + s*C for batched nodal analysis over (candidates, freqs).
@@ -496,8 +534,10 @@ def _workspace(slots: int, shape: tuple[int, ...], dtype: np.dtype) -> np.ndarra
 
 # ----------------------------------------------------------------------------- response
 
-def minus_3db_corners(response: Callable[[np.ndarray], np.ndarray],
-                      reference: np.ndarray, steps: int = REFINE_STEPS) -> tuple[np.ndarray, np.ndarray]:
+
+def minus_3db_corners(
+    response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray, steps: int = REFINE_STEPS
+) -> tuple[np.ndarray, np.ndarray]:
     """f_low, f_high (Hz) where |H| falls to |reference|/sqrt(2), one per candidate.
 
     ``response(f)`` maps frequencies (Hz) of shape (k, candidates) or (k, 1) to complex gains
@@ -518,8 +558,12 @@ def low_3db_corner(response: Callable[[np.ndarray], np.ndarray], reference: np.n
     return _corners(response, reference, (0,))[0]
 
 
-def _corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray,
-             sides: tuple[int, ...], steps: int = REFINE_STEPS) -> np.ndarray:
+def _corners(
+    response: Callable[[np.ndarray], np.ndarray],
+    reference: np.ndarray,
+    sides: tuple[int, ...],
+    steps: int = REFINE_STEPS,
+) -> np.ndarray:
     """The -3 dB crossings of :func:`minus_3db_corners` on ``sides`` (0 low, 1 high), shape (sides, candidates)."""
     grid = np.logspace(np.log10(SWEEP[0]), np.log10(SWEEP[1]), COARSE_POINTS)
     ref2 = _magnitude2(reference)
@@ -552,7 +596,7 @@ def _corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray
     for _ in range(steps):  # Illinois false position on the crossings at once
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
         xm = np.where(above_ref, 0.5 * (x0 + x1), np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1)))
-        dm = distance(response(10.0 ** xm))
+        dm = distance(response(10.0**xm))
         out_side = dm <= 0.0
         d1 = np.where(out_side & last & ~above_ref, 0.5 * d1, d1)  # an end kept twice: halve its value
         d0 = np.where(~out_side & ~last & ~above_ref, 0.5 * d0, d0)
@@ -561,13 +605,15 @@ def _corners(response: Callable[[np.ndarray], np.ndarray], reference: np.ndarray
         above_ref = np.where(out_side, above_ref, dm >= PEAK_DISTANCE)
         last = out_side
     xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
-    return np.where(inside, 10.0 ** xm, np.array(SWEEP)[rows, None])
+    return np.where(inside, 10.0**xm, np.array(SWEEP)[rows, None])
 
 
 # ----------------------------------------------------------------------------- noise
 
-def noise_integrals(network: Network, out_node: str, source_node: str,
-                    r_source: np.ndarray, band: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+
+def noise_integrals(
+    network: Network, out_node: str, source_node: str, r_source: np.ndarray, band: tuple[float, float]
+) -> tuple[np.ndarray, np.ndarray]:
     """Equivalent input noise (V rms over band, without the source's own noise) and NF (dB,
     referred to the standard 290 K source: 10*log10(1 + ein^2/(4k*290*r_source*B))).
 
@@ -584,7 +630,7 @@ def noise_integrals(network: Network, out_node: str, source_node: str,
     f = np.geomspace(band[0], band[1], NOISE_POINTS_FLICKER if flicker else NOISE_POINTS)[:, None]
     net = network.at(2j * np.pi * f)
     z = net.transposed().solve({out_node: np.ones(1)})
-    gain2 = _magnitude2(z[source_node]) / r_source ** 2
+    gain2 = _magnitude2(z[source_node]) / r_source**2
     out = 0.0
     for a, b, psd in net.noise_sources():
         h = (z[a] if a is not None else 0.0) - (z[b] if b is not None else 0.0)
@@ -611,6 +657,7 @@ def power_law_segments(f: np.ndarray, psd: np.ndarray, axis: int = -1) -> np.nda
 
     def part(a: np.ndarray, s: slice) -> np.ndarray:
         return a[(slice(None),) * (axis % a.ndim) + (s,)]
+
     f0, f1 = part(f, slice(None, -1)), part(f, slice(1, None))
     s0, s1 = part(psd, slice(None, -1)), part(psd, slice(1, None))
     # integral of s0 (f/f0)^k from f0 to f1 = (s1 f1 - s0 f0)/(k + 1), as (f1/f0)^k = s1/s0 (no power taken)
@@ -634,14 +681,20 @@ def shot_noise(i: np.ndarray) -> np.ndarray:
 
 # ----------------------------------------------------------------------------- swing, distortion
 
-def load_line_limits(ic: np.ndarray, vce: np.ndarray, vce_sat: float, r_ac: np.ndarray,
-                     re_ac: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+
+def load_line_limits(
+    ic: np.ndarray, vce: np.ndarray, vce_sat: float, r_ac: np.ndarray, re_ac: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
     """Peak output (V) before cutoff (Ic*Rac) and before saturation ((Vce-Vce_sat)*Rac/(Rac+Re_ac))."""
     return ic * r_ac, np.maximum(vce - vce_sat, 0.0) * r_ac / (r_ac + re_ac)
 
 
-def usable_swing(static_output: Callable[[np.ndarray], np.ndarray], gain: np.ndarray,
-                 clip_peak: np.ndarray, tolerance: float = SWING_TOLERANCE) -> np.ndarray:
+def usable_swing(
+    static_output: Callable[[np.ndarray], np.ndarray],
+    gain: np.ndarray,
+    clip_peak: np.ndarray,
+    tolerance: float = SWING_TOLERANCE,
+) -> np.ndarray:
     """Usable swing (V peak-to-peak at the load): the largest sine whose two peaks are both
     within ``tolerance`` (10 %) of the linear mid-band gain times the drive.
 
@@ -701,8 +754,9 @@ def usable_swing(static_output: Callable[[np.ndarray], np.ndarray], gain: np.nda
     return np.where(np.isfinite(swing) & (np.abs(gain) > 0), swing, 0.0)
 
 
-def thd_small_signal(v_x_peak: np.ndarray, suppression: np.ndarray, nvt: float,
-                     early_u: np.ndarray | float = 0.0) -> np.ndarray:
+def thd_small_signal(
+    v_x_peak: np.ndarray, suppression: np.ndarray, nvt: float, early_u: np.ndarray | float = 0.0
+) -> np.ndarray:
     """Second-harmonic estimate (fraction) of one transistor: v_x/(4 NF VT) * suppression * (1-u)/(1+u).
 
     v_x (V peak) is the intrinsic base-emitter signal at the output level. suppression
@@ -719,11 +773,15 @@ def harmonic_distortion(waveform: np.ndarray, harmonics: int = 9) -> np.ndarray:
     """THD (fraction) of one period of samples along the last axis: rms of harmonics 2..harmonics
     over the fundamental."""
     spectrum = np.abs(np.fft.rfft(waveform, axis=-1))
-    return np.sqrt(np.sum(spectrum[..., 2:harmonics + 1] ** 2, axis=-1)) / spectrum[..., 1]
+    return np.sqrt(np.sum(spectrum[..., 2 : harmonics + 1] ** 2, axis=-1)) / spectrum[..., 1]
 
 
-def thd_quasistatic(static_output: Callable[[np.ndarray], np.ndarray], source_peak: np.ndarray,
-                    samples: int = THD_SAMPLES, harmonics: int = 9) -> np.ndarray:
+def thd_quasistatic(
+    static_output: Callable[[np.ndarray], np.ndarray],
+    source_peak: np.ndarray,
+    samples: int = THD_SAMPLES,
+    harmonics: int = 9,
+) -> np.ndarray:
     """THD (fraction) of the static nonlinear stage over one sine period, per candidate.
 
     ``static_output(vs)`` maps source voltages (V, shape (candidates, samples)) to load

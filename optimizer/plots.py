@@ -6,6 +6,7 @@ it there. Figures are drawn with matplotlib's object interface on its Agg / SVG 
 Every candidate plot is rebuilt from the candidate record alone
 (:func:`optimizer.candidates.design_from_record`), so it needs neither spec nor catalog.
 """
+
 from __future__ import annotations
 
 import io
@@ -36,6 +37,7 @@ METRIC_AXES: dict[str, tuple[str, float, str]] = {m.key: m.axis for m in METRICS
 
 
 # ---- output ----------------------------------------------------------------------------
+
 
 def _check_format(fmt: object) -> str:
     name = str(fmt).lower().lstrip(".") if isinstance(fmt, str) else fmt
@@ -69,10 +71,13 @@ def _scaled(metric: str, values: np.ndarray) -> np.ndarray:
 
 # ---- Pareto front ----------------------------------------------------------------------
 
+
 def _check_objectives(objectives: object) -> list[tuple[str, str]]:
     expected = 'a list of (metric, direction) pairs, e.g. [("supply_current", "minimise")]'
     try:
-        pairs = [(str(m), DIRECTION_ALIASES[str(d).lower()]) for m, d in objectives]  # any input: a non-pair fails below
+        pairs = [
+            (str(m), DIRECTION_ALIASES[str(d).lower()]) for m, d in objectives
+        ]  # any input: a non-pair fails below
     except (TypeError, ValueError, KeyError):
         raise InputError.single("objectives", objectives, expected, title="invalid plot objectives") from None
     if not pairs:
@@ -92,9 +97,16 @@ def _metric_matrix(points: list[dict], metrics: list[str]) -> np.ndarray:
     return out
 
 
-def front_plot(points: list[dict], objectives: list[tuple[str, str]], *, chosen: dict | None = None,
-               front: list[dict] | None = None, fmt: str = "svg", path: str | Path | None = None,
-               title: str | None = None) -> bytes:
+def front_plot(
+    points: list[dict],
+    objectives: list[tuple[str, str]],
+    *,
+    chosen: dict | None = None,
+    front: list[dict] | None = None,
+    fmt: str = "svg",
+    path: str | Path | None = None,
+    title: str | None = None,
+) -> bytes:
     """Scatter of evaluated candidates over the first two objectives (one objective: against
     evaluation order): feasible and infeasible marked apart, the Pareto front joined (``front``
     records if given, else the non-dominated feasible points), the ``chosen`` design starred."""
@@ -121,8 +133,16 @@ def front_plot(points: list[dict], objectives: list[tuple[str, str]], *, chosen:
     for mask, key in ((~feasible, "infeasible"), (feasible, "feasible")):
         marker = MARKERS[key]
         if mask.any():
-            ax.scatter(xy[mask, 0], xy[mask, 1], s=14, marker=marker, c=COLOURS[key], alpha=0.7,
-                       label=f"{key} ({int(mask.sum())})", linewidths=1.0).set_gid(key)
+            ax.scatter(
+                xy[mask, 0],
+                xy[mask, 1],
+                s=14,
+                marker=marker,
+                c=COLOURS[key],
+                alpha=0.7,
+                label=f"{key} ({int(mask.sum())})",
+                linewidths=1.0,
+            ).set_gid(key)
     if front is not None and not single:
         fxy = to_xy(_metric_matrix(list(front), metrics), np.zeros(len(front)))
     else:
@@ -133,16 +153,40 @@ def front_plot(points: list[dict], objectives: list[tuple[str, str]], *, chosen:
     if len(fxy):
         order = np.argsort(fxy[:, 0], kind="stable")
         label = f"{'best feasible' if single else 'Pareto front'} ({len(fxy)})"
-        ax.plot(fxy[order, 0], fxy[order, 1], MARKERS["front"] if single else "-" + MARKERS["front"], color=COLOURS["front"], ms=5, lw=1.4,
-                label=label, zorder=3)[0].set_gid("front")
+        ax.plot(
+            fxy[order, 0],
+            fxy[order, 1],
+            MARKERS["front"] if single else "-" + MARKERS["front"],
+            color=COLOURS["front"],
+            ms=5,
+            lw=1.4,
+            label=label,
+            zorder=3,
+        )[0].set_gid("front")
     if chosen is not None:
-        index = next((i for i, p in enumerate(points) if p is chosen or (isinstance(p, dict) and isinstance(
-            chosen, dict) and p.get("metrics") == chosen.get("metrics"))), np.nan)
+        index = next(
+            (
+                i
+                for i, p in enumerate(points)
+                if p is chosen
+                or (isinstance(p, dict) and isinstance(chosen, dict) and p.get("metrics") == chosen.get("metrics"))
+            ),
+            np.nan,
+        )
         cxy = to_xy(_metric_matrix([chosen], metrics), np.array([float(index)]))[0]
         if np.all(np.isfinite(cxy)):
             rank = chosen.get("rank") if isinstance(chosen, dict) else None
-            ax.scatter([cxy[0]], [cxy[1]], s=180, marker=MARKERS["chosen"], c=COLOURS["chosen"], edgecolors="black", linewidths=0.8,
-                       zorder=4, label="chosen" + (f" (rank {rank})" if rank else "")).set_gid("chosen")
+            ax.scatter(
+                [cxy[0]],
+                [cxy[1]],
+                s=180,
+                marker=MARKERS["chosen"],
+                c=COLOURS["chosen"],
+                edgecolors="black",
+                linewidths=0.8,
+                zorder=4,
+                label="chosen" + (f" (rank {rank})" if rank else ""),
+            ).set_gid("chosen")
     if not len(points):
         ax.text(0.5, 0.5, "no candidates evaluated", ha="center", va="center", transform=ax.transAxes)
     _zoom_on_feasible(ax, xy, feasible, fxy, single)
@@ -171,11 +215,19 @@ def _zoom_on_feasible(ax, xy: np.ndarray, feasible: np.ndarray, fxy: np.ndarray,
     finite = xy[np.all(np.isfinite(xy), axis=1)]
     outside = int((np.any(finite < low, axis=1) | np.any(finite > high, axis=1)).sum())
     if outside:
-        ax.text(0.01, 0.01, f"{outside} infeasible designs lie outside this view", transform=ax.transAxes,
-                fontsize=7, color="0.4", va="bottom")
+        ax.text(
+            0.01,
+            0.01,
+            f"{outside} infeasible designs lie outside this view",
+            transform=ax.transAxes,
+            fontsize=7,
+            color="0.4",
+            va="bottom",
+        )
 
 
 # ---- frequency response ----------------------------------------------------------------
+
 
 def _crossing(freqs: np.ndarray, db: np.ndarray, level: float, index: np.ndarray) -> float | None:
     """Frequency (Hz) where db crosses ``level`` between index[0] (inside) and index[1]
@@ -185,7 +237,7 @@ def _crossing(freqs: np.ndarray, db: np.ndarray, level: float, index: np.ndarray
     if d_in == d_out:
         return None
     x = math.log10(freqs[i_in]) + (math.log10(freqs[i_out]) - math.log10(freqs[i_in])) * d_in / (d_in - d_out)
-    return 10.0 ** x
+    return 10.0**x
 
 
 def response_data(candidate: dict, *, points: int = RESPONSE_POINTS) -> dict:
@@ -207,9 +259,17 @@ def response_data(candidate: dict, *, points: int = RESPONSE_POINTS) -> dict:
     left, right = below[below < peak], below[below > peak]
     f_low = _crossing(freqs, db, level, np.array([left[-1] + 1, left[-1]])) if left.size else None
     f_high = _crossing(freqs, db, level, np.array([right[0] - 1, right[0]])) if right.size else None
-    return {"freqs": freqs, "gain_db": db, "reference_db": reference, "level_db": level,
-            "f_low": f_low, "f_high": f_high, "band": conditions.band, "topology": topology.name,
-            "gain": gain}
+    return {
+        "freqs": freqs,
+        "gain_db": db,
+        "reference_db": reference,
+        "level_db": level,
+        "f_low": f_low,
+        "f_high": f_high,
+        "band": conditions.band,
+        "topology": topology.name,
+        "gain": gain,
+    }
 
 
 def response_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None = None) -> bytes:
@@ -218,16 +278,22 @@ def response_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None 
     fmt = _check_format(fmt)
     data = response_data(candidate)
     if not (np.isfinite(data["gain_db"]).all() and math.isfinite(data["reference_db"])):
-        raise InputError.single("response", "not a finite number at some frequency",
-                                "a design whose small-signal response the model can compute "
-                                "(this one's bias or gain does not solve)", title="no response to plot")
+        raise InputError.single(
+            "response",
+            "not a finite number at some frequency",
+            "a design whose small-signal response the model can compute (this one's bias or gain does not solve)",
+            title="no response to plot",
+        )
     fig = Figure(figsize=FIGSIZE)
     ax = fig.add_subplot()
-    ax.axvspan(*data["band"], color=COLOURS["band"], alpha=0.12,
-               label=f"band {format_value(data['band'][0], 'Hz')} – {format_value(data['band'][1], 'Hz')}")
+    ax.axvspan(
+        *data["band"],
+        color=COLOURS["band"],
+        alpha=0.12,
+        label=f"band {format_value(data['band'][0], 'Hz')} – {format_value(data['band'][1], 'Hz')}",
+    )
     ax.semilogx(data["freqs"], data["gain_db"], color=COLOURS["model"], lw=1.8, label="|gain| source to load")
-    ax.axhline(data["level_db"], color=COLOURS["ideal"], ls="--", lw=0.9,
-               label=f"-3 dB ({data['level_db']:.1f} dB)")
+    ax.axhline(data["level_db"], color=COLOURS["ideal"], ls="--", lw=0.9, label=f"-3 dB ({data['level_db']:.1f} dB)")
     for key, align in (("f_low", "left"), ("f_high", "right")):
         f = data[key]
         if f is None:
@@ -235,21 +301,30 @@ def response_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None 
         marker = ax.plot([f], [data["level_db"]], MARKERS["limit"], color=COLOURS["limit"], ms=7, zorder=4)[0]
         marker.set_gid(f"{key}_marker")
         ax.axvline(f, color=COLOURS["limit"], lw=0.7, ls=":")
-        ax.annotate(f"{key} {format_value(f, 'Hz')}", (f, data["level_db"]), textcoords="offset points",
-                    xytext=(6 if align == "left" else -6, -16), ha=align, fontsize=9, color=COLOURS["limit"])
+        ax.annotate(
+            f"{key} {format_value(f, 'Hz')}",
+            (f, data["level_db"]),
+            textcoords="offset points",
+            xytext=(6 if align == "left" else -6, -16),
+            ha=align,
+            fontsize=9,
+            color=COLOURS["limit"],
+        )
     top = max(float(np.max(data["gain_db"])), data["reference_db"])
     ax.set_ylim(top - 40.0, top + 6.0)
     ax.set_xlim(data["freqs"][0], data["freqs"][-1])
     ax.set_xlabel("frequency (Hz)")
     ax.set_ylabel("|gain| (dB)")
-    ax.set_title(f"Frequency response: {data['topology']}, mid-band {data['gain']:.3g} V/V "
-                 f"({data['reference_db']:.1f} dB)")
+    ax.set_title(
+        f"Frequency response: {data['topology']}, mid-band {data['gain']:.3g} V/V ({data['reference_db']:.1f} dB)"
+    )
     ax.grid(True, which="both", alpha=0.25)
     ax.legend(loc="lower center", fontsize=8)
     return _render(fig, fmt, path)
 
 
 # ---- transfer curve --------------------------------------------------------------------
+
 
 def transfer_data(candidate: dict, *, spec_swing: float | None = None, points: int = TRANSFER_POINTS) -> dict:
     """The DC transfer behind :func:`transfer_plot`: source voltage sweep (V) and load voltage
@@ -269,14 +344,27 @@ def transfer_data(candidate: dict, *, spec_swing: float | None = None, points: i
     flat = np.abs(slope) < FLAT_SLOPE * abs(slope[centre])
     left = np.flatnonzero(flat[:centre])
     right = np.flatnonzero(flat[centre:]) + centre
-    clips = [(float(vs[i]), float(out[i])) for i in ((left[-1] if left.size else None),
-                                                     (right[0] if right.size else None)) if i is not None]
-    return {"source_v": vs, "output_v": out, "linear_v": gain * vs, "gain": gain, "swing_vpp": swing,
-            "clip_vpp": clip, "spec_swing": spec_swing, "clips": clips, "topology": topology.name}
+    clips = [
+        (float(vs[i]), float(out[i]))
+        for i in ((left[-1] if left.size else None), (right[0] if right.size else None))
+        if i is not None
+    ]
+    return {
+        "source_v": vs,
+        "output_v": out,
+        "linear_v": gain * vs,
+        "gain": gain,
+        "swing_vpp": swing,
+        "clip_vpp": clip,
+        "spec_swing": spec_swing,
+        "clips": clips,
+        "topology": topology.name,
+    }
 
 
-def transfer_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None = None,
-                  spec_swing: float | None = None) -> bytes:
+def transfer_plot(
+    candidate: dict, *, fmt: str = "svg", path: str | Path | None = None, spec_swing: float | None = None
+) -> bytes:
     """Load voltage against source voltage (quasi-static sweep) showing where the stage clips:
     the model's clip level (clip_vpp) and, if given, the spec's required swing (Vpp)."""
     fmt = _check_format(fmt)
@@ -290,20 +378,44 @@ def transfer_plot(candidate: dict, *, fmt: str = "svg", path: str | Path | None 
     ax = fig.add_subplot()
     half = data["clip_vpp"] / 2.0
     lim = 1.15 * max(np.max(np.abs(out)), half, (spec_swing or 0.0) / 2.0)
-    ax.plot(x, np.clip(data["linear_v"], -lim, lim), color=COLOURS["ideal"], ls=":", lw=1.0,
-            label=f"small-signal gain {data['gain']:.3g} V/V")
+    ax.plot(
+        x,
+        np.clip(data["linear_v"], -lim, lim),
+        color=COLOURS["ideal"],
+        ls=":",
+        lw=1.0,
+        label=f"small-signal gain {data['gain']:.3g} V/V",
+    )
     ax.plot(x, out, color=COLOURS["model"], lw=1.8, label="static transfer (model)")
     ax.axhspan(-half, half, color=COLOURS["model"], alpha=0.06)
     for sign in (1, -1):
-        ax.axhline(sign * half, color=COLOURS["limit"], ls="--", lw=0.9,
-                   label=f"clip level {data['clip_vpp']:.2f} Vpp (usable swing {data['swing_vpp']:.2f} Vpp)"
-                   if sign > 0 else None)
+        ax.axhline(
+            sign * half,
+            color=COLOURS["limit"],
+            ls="--",
+            lw=0.9,
+            label=f"clip level {data['clip_vpp']:.2f} Vpp (usable swing {data['swing_vpp']:.2f} Vpp)"
+            if sign > 0
+            else None,
+        )
         if spec_swing:
-            ax.axhline(sign * spec_swing / 2.0, color=COLOURS["spec"], ls="-.", lw=1.0,
-                       label=f"spec swing {spec_swing:.2f} Vpp" if sign > 0 else None)
+            ax.axhline(
+                sign * spec_swing / 2.0,
+                color=COLOURS["spec"],
+                ls="-.",
+                lw=1.0,
+                label=f"spec swing {spec_swing:.2f} Vpp" if sign > 0 else None,
+            )
     for i, (v, o) in enumerate(data["clips"]):
-        ax.plot([v * scale], [o], MARKERS["limit"], color=COLOURS["limit"], ms=6, zorder=4,
-                label=f"clips (slope < {FLAT_SLOPE:.0%})" if i == 0 else None)[0].set_gid(f"clip_{i}")
+        ax.plot(
+            [v * scale],
+            [o],
+            MARKERS["limit"],
+            color=COLOURS["limit"],
+            ms=6,
+            zorder=4,
+            label=f"clips (slope < {FLAT_SLOPE:.0%})" if i == 0 else None,
+        )[0].set_gid(f"clip_{i}")
     ax.set_ylim(-lim, lim)
     ax.set_xlim(x[0], x[-1])
     ax.set_xlabel(f"source voltage ({unit}, change from rest)")

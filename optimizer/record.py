@@ -7,6 +7,7 @@ search's nominal records (``search.candidate_from_record``) both go through it, 
 rank carries the same blocks; the optional ones are left out where a record has no figure
 for them. The REST service's OpenAPI schema for a candidate is generated from the type.
 """
+
 from __future__ import annotations
 
 from typing import Any, Literal
@@ -56,9 +57,13 @@ class RecordConditions(_Block):
     temperature: list[float] = Field(description="[low, high] °C")
     load_capacitance: float
     signal_vpp: float
-    rails: list[float] | None = Field(None, description=(
-        "[highest, lowest] rail, V, true (ground-referenced) volts: given for a negative rail or a split "
-        "supply; absent, the supply is a positive rail [supply, 0]"))
+    rails: list[float] | None = Field(
+        None,
+        description=(
+            "[highest, lowest] rail, V, true (ground-referenced) volts: given for a negative rail or a split "
+            "supply; absent, the supply is a positive rail [supply, 0]"
+        ),
+    )
 
 
 class Candidate(_Block):
@@ -71,12 +76,15 @@ class Candidate(_Block):
     conditions: RecordConditions
     parts: dict[str, PartEntry]
     transistor: dict[str, Any]
-    metrics: dict[str, float | None] = Field(description=(
-        "DESIGN.md metric names, SI units; null where the model has no figure (a transistor not active has no "
-        "small-signal figures). swing_vpp: usable swing, the largest sine at the load whose two peaks stay within "
-        "10 % of the linear gain times the drive (V p-p); clip_vpp: hard clip level of the AC load line (V p-p); "
-        "yield: fraction of Monte Carlo builds meeting every hard limit; ic_spread: max/min collector current "
-        "over the corners"))
+    metrics: dict[str, float | None] = Field(
+        description=(
+            "DESIGN.md metric names, SI units; null where the model has no figure (a transistor not active has no "
+            "small-signal figures). swing_vpp: usable swing, the largest sine at the load whose two peaks stay within "
+            "10 % of the linear gain times the drive (V p-p); clip_vpp: hard clip level of the AC load line (V p-p); "
+            "yield: fraction of Monte Carlo builds meeting every hard limit; ic_spread: max/min collector current "
+            "over the corners"
+        )
+    )
     violations: dict[str, float]
     basis: Basis | None = None
     rank: int | None = None
@@ -85,7 +93,8 @@ class Candidate(_Block):
     total_violation: float | None = None
     nominal_score: float | None = None
     score_terms: dict[str, float | None] | None = Field(
-        None, description="each term of the desirability score, 1 at its ideal")
+        None, description="each term of the desirability score, 1 at its ideal"
+    )
     operating_point: dict[str, float] | None = None
     operating_point_spread: dict[str, list[float]] | None = None
     ratings: dict[str, Rating] | None = None
@@ -101,10 +110,16 @@ def record_conditions(spec: Spec) -> dict:
     """The record's conditions block of ``spec`` (the signal level and load capacitance as
     the models see them)."""
     conditions = scoring.conditions_from_spec(spec)
-    out = {"supply": spec.supply, "supply_range": [spec.supply_min, spec.supply_max],
-           "source_impedance": spec.source_impedance, "load_impedance": spec.load_impedance,
-           "band": list(spec.band), "temperature": list(spec.temperature),
-           "load_capacitance": conditions.load_capacitance, "signal_vpp": conditions.signal_vpp}
+    out = {
+        "supply": spec.supply,
+        "supply_range": [spec.supply_min, spec.supply_max],
+        "source_impedance": spec.source_impedance,
+        "load_impedance": spec.load_impedance,
+        "band": list(spec.band),
+        "temperature": list(spec.temperature),
+        "load_capacitance": conditions.load_capacitance,
+        "signal_vpp": conditions.signal_vpp,
+    }
     if spec.supply_arrangement != "positive":
         out["rails"] = list(spec.rails)
     return out
@@ -133,5 +148,14 @@ def candidate_schema(ref_prefix: str) -> dict[str, dict]:
     return {"Candidate": schema, **defs}
 
 
-__all__ = ["Candidate", "PartEntry", "Rating", "Basis", "RecordConditions", "candidate_record", "record_conditions", "part_label",
-           "candidate_schema"]
+__all__ = [
+    "Candidate",
+    "PartEntry",
+    "Rating",
+    "Basis",
+    "RecordConditions",
+    "candidate_record",
+    "record_conditions",
+    "part_label",
+    "candidate_schema",
+]

@@ -16,6 +16,7 @@ acknowledged). ``scripts/try_cluster.sh`` starts it so.
 :func:`redis_claim` is the cross-machine claim of ``storage.claim_batch`` for this storage:
 a Redis lock with an expiry, so a killed holder frees it after ``CLAIM_TTL`` seconds.
 """
+
 from __future__ import annotations
 
 import json
@@ -135,7 +136,9 @@ class RunnerLiveness:
         if not trial_ids:
             return []
         holders = self._client.hmget(f"{self._prefix}:holder", [str(t) for t in trial_ids])
-        known = [(t, h.decode() if isinstance(h, bytes) else str(h)) for t, h in zip(trial_ids, holders) if h is not None]
+        known = [
+            (t, h.decode() if isinstance(h, bytes) else str(h)) for t, h in zip(trial_ids, holders) if h is not None
+        ]
         runners = sorted({h for _, h in known})
         alive = dict(zip(runners, self._client.mget([f"{self._prefix}:alive:{r}" for r in runners]))) if runners else {}
         return [t for t, h in known if alive.get(h) is None]

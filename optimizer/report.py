@@ -8,6 +8,7 @@ worst-case spread (min/typ/max over part tolerances, hFE spread and temperature,
 :func:`optimizer.tolerance.worst_case`), the metrics with units and margins to the spec's
 limits, the worst case, the yield, the ratings, the cautions and the plots (inline SVG).
 """
+
 from __future__ import annotations
 
 import html
@@ -90,6 +91,7 @@ def why(candidate: dict, count: int = 2) -> str:
 
 # ---- design sheet ----------------------------------------------------------------------
 
+
 def _full(candidate: dict, spec: Spec, catalog: Catalog) -> dict:
     """The candidate with its full assessment (operating point, ratings, worst case, yield)."""
     if all(k in candidate for k in ("operating_point", "ratings", "worst_case")):
@@ -110,9 +112,23 @@ def node_spread(candidate: dict, bill: Kit) -> dict[str, tuple[float, float, flo
                 tolerance[role] = float(str(line.tolerance).rstrip(" %")) / 100
     temperature = tuple(candidate["conditions"].get("temperature") or (conditions.temperature,) * 2)
     spread = worst_case(topology, parts, device, conditions, tolerance, (float(temperature[0]), float(temperature[1])))
-    typ = dc_node_voltages(topology.name, candidate["operating_point"], conditions.supply, device.polarity, conditions.below_ground)
-    low = dc_node_voltages(topology.name, {k: float(v[0][0]) for k, v in spread.items()}, conditions.supply, device.polarity, conditions.below_ground)
-    high = dc_node_voltages(topology.name, {k: float(v[1][0]) for k, v in spread.items()}, conditions.supply, device.polarity, conditions.below_ground)
+    typ = dc_node_voltages(
+        topology.name, candidate["operating_point"], conditions.supply, device.polarity, conditions.below_ground
+    )
+    low = dc_node_voltages(
+        topology.name,
+        {k: float(v[0][0]) for k, v in spread.items()},
+        conditions.supply,
+        device.polarity,
+        conditions.below_ground,
+    )
+    high = dc_node_voltages(
+        topology.name,
+        {k: float(v[1][0]) for k, v in spread.items()},
+        conditions.supply,
+        device.polarity,
+        conditions.below_ground,
+    )
     return {node: (low[node], typ[node], high[node]) for node in typ}
 
 
@@ -153,21 +169,28 @@ def design_sheet(candidate: dict, spec: Spec, catalog: Catalog, *, units: int = 
     verdict = "meets every limit" if record.get("feasible") else "MISSES: " + ", ".join(record.get("violations", {}))
     connections = []
     transistors = {role for role, *_ in topology.transistor_pins}
-    spread_words = ("IDSS and VP at both ends of their spread" if topology.device_kind == "jfet"
-                    else "hFE at its min and max")
+    spread_words = (
+        "IDSS and VP at both ends of their spread" if topology.device_kind == "jfet" else "hFE at its min and max"
+    )
     pins = ("D", "G", "S") if topology.device_kind == "jfet" else ("C", "B", "E")
     order = {"R": 0, "C": 1}  # then the transistors (Q.., or J.. for a JFET)
-    for role, name in sorted(names.items(), key=lambda kv: (2 if kv[0] in transistors else order[kv[1][0]],
-                                                             int(kv[1][1:]))):
+    for role, name in sorted(
+        names.items(), key=lambda kv: (2 if kv[0] in transistors else order[kv[1][0]], int(kv[1][1:]))
+    ):
         label = record["transistor"]["id"] if role in transistors else record["parts"][role]["label"]
-        ends = " / ".join(f"{pin} {node}" for pin, node in zip(pins, nodes[role])) \
-            if role in transistors else f"{nodes[role][0]} – {nodes[role][1]}"
+        ends = (
+            " / ".join(f"{pin} {node}" for pin, node in zip(pins, nodes[role]))
+            if role in transistors
+            else f"{nodes[role][0]} – {nodes[role][1]}"
+        )
         connections.append([name, role, label, ends])
     op_rows = [[node, f"{lo:.3f} V", f"{typ:.3f} V", f"{hi:.3f} V"] for node, (lo, typ, hi) in spread.items()]
     op_rows += [[k, "", show(k, v), ""] for k, v in record["operating_point"].items() if not k.startswith("v_")]
     worst = [[k, show(k, lo), show(k, hi)] for k, (lo, hi) in record.get("worst_case", {}).items()]
-    ratings = [[k, show(k, r["value"]), show(k, r["limit"]), f"{100 * r['value'] / r['limit']:.0f} %"]
-               for k, r in record.get("ratings", {}).items()]
+    ratings = [
+        [k, show(k, r["value"]), show(k, r["limit"]), f"{100 * r['value'] / r['limit']:.0f} %"]
+        for k, r in record.get("ratings", {}).items()
+    ]
     bom_rows = [[str("" if v is None else v) for v in line.values()] for line in bill.to_dict()["lines"]]
 
     response = plots.response_plot(record, fmt="svg").decode()
@@ -181,13 +204,13 @@ td,th{{border:1px solid #999;padding:.2em .5em;text-align:left;font-size:90%}}sv
 </head><body>
 <h1>{html.escape(title)}</h1>
 <p>Spec <b>{html.escape(spec.name)}</b> (digest {spec_digest(spec)}), catalog {html.escape(catalog.name)},
-rank {record.get('rank', '-')}. Verdict: {html.escape(verdict)}. Basis: {html.escape(basis)}.
-Yield: {show('yield', record['metrics'].get('yield'))} of builds meet every limit (Monte Carlo).</p>
+rank {record.get("rank", "-")}. Verdict: {html.escape(verdict)}. Basis: {html.escape(basis)}.
+Yield: {show("yield", record["metrics"].get("yield"))} of builds meet every limit (Monte Carlo).</p>
 <h2>Cautions</h2><ul>{cautions}</ul>
 <h2>Connections</h2>
 <p>Nodes: vcc the supply ({spec.supply:g} V), src the input after the source resistance, out the load, 0 ground.</p>
 {_table(["designator", "role", "value", "connects"], connections)}
-<h2>Bill of materials ({units} unit{'s' if units != 1 else ''})</h2>
+<h2>Bill of materials ({units} unit{"s" if units != 1 else ""})</h2>
 {_table(list(bill.lines.columns), bom_rows)}
 <h2>Operating point</h2>
 <p>DC node voltages to ground, typical and min/max over the worst-case corners (parts at their tolerance,

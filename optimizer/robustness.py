@@ -17,6 +17,7 @@ on what "meets the spec" means:
 The robustness shortfall is a limit like the others (``yield``, or the corner values of
 each limit), so the search is led toward robust designs by the same summed violation.
 """
+
 from __future__ import annotations
 
 from dataclasses import dataclass
@@ -50,23 +51,33 @@ def basis_label(spec: Spec, feasible: bool, yield_fraction: float | None, builds
     """The candidate's ``basis`` block: the kind, whether it is met, and a sentence saying so."""
     kind = spec.robustness
     if kind == "yield":
-        have = "" if yield_fraction is None or not np.isfinite(yield_fraction) else \
-            f"{100 * yield_fraction:.3g} % of {builds:,} builds"
+        have = (
+            ""
+            if yield_fraction is None or not np.isfinite(yield_fraction)
+            else f"{100 * yield_fraction:.3g} % of {builds:,} builds"
+        )
         if feasible:
             label = f"meets every limit in {have}"
         else:
-            label = (f"misses the spec: every limit holds in {have}, the spec asks "
-                     f"{100 * spec.limits.yield_min:.3g} %" if have else "misses the spec at nominal values")
+            label = (
+                f"misses the spec: every limit holds in {have}, the spec asks {100 * spec.limits.yield_min:.3g} %"
+                if have
+                else "misses the spec at nominal values"
+            )
     elif kind == "worst_case":
         label = "meets every limit at all corners" if feasible else "misses a limit at some corner"
     else:
-        label = ("meets every limit at nominal values only (robustness: nominal)" if feasible
-                 else "misses a limit at nominal values")
+        label = (
+            "meets every limit at nominal values only (robustness: nominal)"
+            if feasible
+            else "misses a limit at nominal values"
+        )
     return {"kind": kind, "met": bool(feasible), "label": label}
 
 
-def _corner_violations(spec: Spec, spread: dict[str, tuple[np.ndarray, np.ndarray]],
-                       limits: dict[str, float | np.ndarray], core_only: bool) -> dict[str, np.ndarray]:
+def _corner_violations(
+    spec: Spec, spread: dict[str, tuple[np.ndarray, np.ndarray]], limits: dict[str, float | np.ndarray], core_only: bool
+) -> dict[str, np.ndarray]:
     """Each limit judged at its adverse corner: minimum limits at the low end, maximum limits and
     ratings at the high end, the gain window at both."""
     low = {k: lo for k, (lo, _) in spread.items()}
@@ -78,10 +89,21 @@ def _corner_violations(spec: Spec, spread: dict[str, tuple[np.ndarray, np.ndarra
     return {k: np.maximum(a[k], b[k]) for k in a}
 
 
-def judge(spec: Spec, topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions,
-          tolerances: dict[str, Tolerance], limits: dict[str, float | np.ndarray],
-          nominal_violations: dict[str, np.ndarray], *, full: bool, builds: int,
-          basis: str | None = None, seed: int | None = None) -> Judgement:
+def judge(
+    spec: Spec,
+    topology: Topology,
+    parts: dict[str, np.ndarray],
+    device: AnyDevice,
+    conditions: Conditions,
+    tolerances: dict[str, Tolerance],
+    limits: dict[str, float | np.ndarray],
+    nominal_violations: dict[str, np.ndarray],
+    *,
+    full: bool,
+    builds: int,
+    basis: str | None = None,
+    seed: int | None = None,
+) -> Judgement:
     """Violations of ``parts`` (arrays over candidates) on the spec's robustness basis (or
     ``basis``), given the violations at nominal. ``full=False`` judges spread
     on the fast core metrics (the search's screen), ``full=True`` on every metric. The builds
@@ -93,20 +115,31 @@ def judge(spec: Spec, topology: Topology, parts: dict[str, np.ndarray], device: 
     violations = dict(nominal_violations)
     yield_fraction = np.full(n, np.nan)
     if basis == "yield":
+
         def passes(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:
             block_limits = {k: np.asarray(v)[rows, None] if np.ndim(v) else v for k, v in limits.items()}
             v = scoring.limit_violations(spec, sample, sample, block_limits, sample["active"], core_only=not full)
             return scoring.total_violation(v) == 0
 
-        yield_fraction = monte_carlo_yield(topology, parts, device, conditions, tolerances, temperature_range,
-                                           passes, samples=builds,
-                                           seed=BUILDS_SEED if seed is None else seed, full=full,
-                                           supply_range=supply_range)
+        yield_fraction = monte_carlo_yield(
+            topology,
+            parts,
+            device,
+            conditions,
+            tolerances,
+            temperature_range,
+            passes,
+            samples=builds,
+            seed=BUILDS_SEED if seed is None else seed,
+            full=full,
+            supply_range=supply_range,
+        )
         violations["yield"] = np.maximum(0.0, spec.limits.yield_min - yield_fraction) / spec.limits.yield_min
     elif basis == "worst_case":
         roles = None if full else tuple(r for r in topology.resistors if r in parts)
-        corners = worst_case(topology, parts, device, conditions, tolerances, temperature_range, supply_range,
-                             roles=roles, full=full)
+        corners = worst_case(
+            topology, parts, device, conditions, tolerances, temperature_range, supply_range, roles=roles, full=full
+        )
         at_corners = _corner_violations(spec, corners, limits, core_only=not full)
         violations = {k: np.maximum(v, at_corners.get(k, 0.0)) for k, v in violations.items() if k != "worst_case"}
         violations["worst_case"] = np.zeros(n)

@@ -28,6 +28,7 @@ Before any design is finished it samples at random; enqueued seeds are taken as 
 Seeded, so a search in one process is reproducible. Optuna's interface: one class, the
 plan of each trial made in ``before_trial`` and handed out in ``sample_independent``.
 """
+
 from __future__ import annotations
 
 import itertools
@@ -63,9 +64,13 @@ class NeighbourSampler(BaseSampler):
     parameter names of that group with their distributions.
     """
 
-    def __init__(self, rank_key: Callable[[FrozenTrial], tuple], directions: list[str],
-                 group_params: Callable[[dict[str, Any]], dict[str, BaseDistribution]],
-                 seed: int | None = None) -> None:
+    def __init__(
+        self,
+        rank_key: Callable[[FrozenTrial], tuple],
+        directions: list[str],
+        group_params: Callable[[dict[str, Any]], dict[str, BaseDistribution]],
+        seed: int | None = None,
+    ) -> None:
         self._py = random.Random(seed)
         self._random = RandomSampler(seed=seed)
         self._rank_of = rank_key
@@ -87,8 +92,9 @@ class NeighbourSampler(BaseSampler):
     def infer_relative_search_space(self, study: Study, trial: FrozenTrial) -> dict[str, BaseDistribution]:
         return {}
 
-    def sample_relative(self, study: Study, trial: FrozenTrial,
-                        search_space: dict[str, BaseDistribution]) -> dict[str, Any]:
+    def sample_relative(
+        self, study: Study, trial: FrozenTrial, search_space: dict[str, BaseDistribution]
+    ) -> dict[str, Any]:
         return {}
 
     def before_trial(self, study: Study, trial: FrozenTrial) -> None:
@@ -101,15 +107,15 @@ class NeighbourSampler(BaseSampler):
         if self._elite:
             self._plans[trial_id(trial)] = self._propose()
 
-    def sample_independent(self, study: Study, trial: FrozenTrial, param_name: str,
-                           param_distribution: BaseDistribution) -> Any:
+    def sample_independent(
+        self, study: Study, trial: FrozenTrial, param_name: str, param_distribution: BaseDistribution
+    ) -> Any:
         plan = self._plans.get(trial_id(trial), {})
         if param_name in plan and _fits(param_distribution, plan[param_name]):
             return plan[param_name]
         return self._random.sample_independent(study, trial, param_name, param_distribution)
 
-    def after_trial(self, study: Study, trial: FrozenTrial, state: TrialState,
-                    values: list[float] | None) -> None:
+    def after_trial(self, study: Study, trial: FrozenTrial, state: TrialState, values: list[float] | None) -> None:
         self._plans.pop(trial_id(trial), None)
         self._seen.add(self._key(trial.params))
 

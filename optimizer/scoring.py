@@ -5,6 +5,7 @@ band past its edge), so limits of different units can be compared and summed whe
 ranking designs that meet none of them. Ratings are hard limits too: a part run past its
 rating is never a silent pass. Arrays over candidates throughout.
 """
+
 from __future__ import annotations
 
 from typing import Mapping
@@ -34,12 +35,18 @@ NEAR_RATING = 0.5  # a part past half its rating gets a caution (common practice
 def conditions_from_spec(spec: Spec, temperature: float = 27.0) -> Conditions:
     """The operating conditions of a spec at one temperature (°C)."""
     level = spec.limits.thd_level if spec.limits.thd_level is not None else 1.0
-    return Conditions(supply=spec.supply, source_impedance=spec.source_impedance,
-                      load_impedance=spec.load_impedance, band=tuple(spec.band),
-                      temperature=temperature, load_capacitance=spec.load_capacitance,
-                      signal_vpp=level, supply_max=spec.supply_max,
-                      ripple_frequency=spec.supply_ripple.frequency if spec.supply_ripple else 100.0,
-                      below_ground=spec.supply_below_ground)
+    return Conditions(
+        supply=spec.supply,
+        source_impedance=spec.source_impedance,
+        load_impedance=spec.load_impedance,
+        band=tuple(spec.band),
+        temperature=temperature,
+        load_capacitance=spec.load_capacitance,
+        signal_vpp=level,
+        supply_max=spec.supply_max,
+        ripple_frequency=spec.supply_ripple.frequency if spec.supply_ripple else 100.0,
+        below_ground=spec.supply_below_ground,
+    )
 
 
 def sizing_target(spec: Spec, capacitor_tolerances: np.ndarray) -> float:
@@ -59,26 +66,35 @@ def decoupling_target(spec: Spec, capacitor_tolerances: np.ndarray) -> float | N
 
 def resistor_derating(ambient_c: float) -> float:
     """Fraction of a resistor's rated power usable at ``ambient_c`` (°C)."""
-    return float(np.clip((RESISTOR_ZERO_POWER_C - ambient_c) / (RESISTOR_ZERO_POWER_C - RESISTOR_FULL_POWER_C),
-                         0.0, 1.0))
+    return float(
+        np.clip((RESISTOR_ZERO_POWER_C - ambient_c) / (RESISTOR_ZERO_POWER_C - RESISTOR_FULL_POWER_C), 0.0, 1.0)
+    )
 
 
 def transistor_derating(ambient_c: float) -> float:
     """Fraction of a transistor's rated dissipation usable at ``ambient_c`` (°C)."""
-    return float(np.clip((TRANSISTOR_TJ_MAX_C - ambient_c) / (TRANSISTOR_TJ_MAX_C - TRANSISTOR_DERATE_FROM_C),
-                         0.0, 1.0))
+    return float(
+        np.clip((TRANSISTOR_TJ_MAX_C - ambient_c) / (TRANSISTOR_TJ_MAX_C - TRANSISTOR_DERATE_FROM_C), 0.0, 1.0)
+    )
 
 
-def rating_limits(spec: Spec, resistor_ratings: dict[str, float | np.ndarray],
-                  capacitor_ratings: dict[str, float | np.ndarray], device: AnyDevice) -> dict[str, float | np.ndarray]:
+def rating_limits(
+    spec: Spec,
+    resistor_ratings: dict[str, float | np.ndarray],
+    capacitor_ratings: dict[str, float | np.ndarray],
+    device: AnyDevice,
+) -> dict[str, float | np.ndarray]:
     """The derated limit of every rating a topology reports: p_<resistor> (W, the part's rating
     derated to the spec's highest ambient), v_<capacitor> (V, 80 % of the rated voltage),
     vce_max (V, the device's Vceo) and q_power (W, the device's dissipation derated to the
     highest ambient). Ratings of absent parts are left out by the caller."""
     ambient = float(spec.temperature[1])
-    out: dict[str, float | np.ndarray] = {f"p_{r}": np.asarray(v, dtype=float) * resistor_derating(ambient)
-                                          for r, v in resistor_ratings.items()}
-    out.update({f"v_{c}": np.asarray(v, dtype=float) * CAPACITOR_VOLTAGE_DERATING for c, v in capacitor_ratings.items()})
+    out: dict[str, float | np.ndarray] = {
+        f"p_{r}": np.asarray(v, dtype=float) * resistor_derating(ambient) for r, v in resistor_ratings.items()
+    }
+    out.update(
+        {f"v_{c}": np.asarray(v, dtype=float) * CAPACITOR_VOLTAGE_DERATING for c, v in capacitor_ratings.items()}
+    )
     out.update({"vce_max": device.vceo_max, "q_power": device.p_max * transistor_derating(ambient)})
     return out
 
@@ -96,10 +112,16 @@ def _below(value: np.ndarray, maximum: float | np.ndarray) -> np.ndarray:
     return np.maximum(0.0, (np.nan_to_num(value, nan=np.inf) - maximum) / maximum).clip(max=1e6)
 
 
-def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[str, np.ndarray],
-                     rating_limits: dict[str, float | np.ndarray],
-                     active: np.ndarray, *, core_only: bool = False,
-                     vce_headroom: np.ndarray | None = None) -> dict[str, np.ndarray]:
+def limit_violations(
+    spec: Spec,
+    metrics: dict[str, np.ndarray],
+    ratings: dict[str, np.ndarray],
+    rating_limits: dict[str, float | np.ndarray],
+    active: np.ndarray,
+    *,
+    core_only: bool = False,
+    vce_headroom: np.ndarray | None = None,
+) -> dict[str, np.ndarray]:
     """Normalised violation of every hard limit (name -> array, 0 where met).
 
     ``rating_limits`` maps each rating key of the topology (p_<resistor> W,
@@ -111,8 +133,7 @@ def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[s
     without it, or for any other reason a stage is not active, the violation is 1.
     """
     gain = np.asarray(metrics["gain"])
-    out = {"gain": np.maximum(0.0, np.abs(gain_error_db(spec, gain)) - spec.gain.tolerance_db)
-           / spec.gain.tolerance_db}
+    out = {"gain": np.maximum(0.0, np.abs(gain_error_db(spec, gain)) - spec.gain.tolerance_db) / spec.gain.tolerance_db}
     if spec.gain.inverting is not None:
         wrong_sign = (gain > 0) if spec.gain.inverting else (gain < 0)
         out["gain_polarity"] = wrong_sign.astype(float)
@@ -144,9 +165,23 @@ def limit_violations(spec: Spec, metrics: dict[str, np.ndarray], ratings: dict[s
 
 #: metrics that describe small-signal behaviour about an operating point: meaningless when the
 #: transistor is saturated or cut off there, so such a design reports none of them
-SMALL_SIGNAL_METRICS = ("gain", "gain_db", "gain_error_db", "input_impedance", "output_impedance", "swing_vpp",
-                        "clip_vpp", "thd", "f_low", "f_high", "noise_ein_v", "noise_figure_db", "psrr_db",
-                        "psrr_ripple_db", "psrr_mid_db")
+SMALL_SIGNAL_METRICS = (
+    "gain",
+    "gain_db",
+    "gain_error_db",
+    "input_impedance",
+    "output_impedance",
+    "swing_vpp",
+    "clip_vpp",
+    "thd",
+    "f_low",
+    "f_high",
+    "noise_ein_v",
+    "noise_figure_db",
+    "psrr_db",
+    "psrr_ripple_db",
+    "psrr_mid_db",
+)
 NOT_ACTIVE_NOTE = "transistor saturated or cut off at the operating point: no small-signal figures"
 
 
@@ -171,8 +206,9 @@ def binding_limit(violations: dict[str, np.ndarray]) -> np.ndarray:
     return np.where(stacked.max(axis=0) > 0, worst, "")
 
 
-def near_ratings(ratings: dict[str, np.ndarray], metrics: dict[str, np.ndarray],
-                 rating_limits: dict[str, float | np.ndarray]) -> dict[str, np.ndarray]:
+def near_ratings(
+    ratings: dict[str, np.ndarray], metrics: dict[str, np.ndarray], rating_limits: dict[str, float | np.ndarray]
+) -> dict[str, np.ndarray]:
     """Fraction of its rating each part runs at, where past NEAR_RATING (for cautions)."""
     out = {}
     for key, limit in rating_limits.items():
@@ -199,10 +235,15 @@ def near_ratings(ratings: dict[str, np.ndarray], metrics: dict[str, np.ndarray],
 
 #: metric -> (spec limit whose value is the reference, fallback reference in SI units)
 OBJECTIVE_REFERENCES = {
-    "supply_current": ("supply_current_max", 1e-3), "swing_vpp": ("swing_min", None),
-    "noise_ein_v": ("noise_ein_max", 1e-6), "thd": ("thd_max", 0.01), "cost": (None, 1.0),
-    "part_count": (None, 8.0), "input_impedance": ("input_impedance_min", None),
-    "output_impedance": ("output_impedance_max", None), "gain_error_db": (None, None),
+    "supply_current": ("supply_current_max", 1e-3),
+    "swing_vpp": ("swing_min", None),
+    "noise_ein_v": ("noise_ein_max", 1e-6),
+    "thd": ("thd_max", 0.01),
+    "cost": (None, 1.0),
+    "part_count": (None, 8.0),
+    "input_impedance": ("input_impedance_min", None),
+    "output_impedance": ("output_impedance_max", None),
+    "gain_error_db": (None, None),
 }
 WEIGHT_GAIN, WEIGHT_MARGIN, WEIGHT_OBJECTIVE = 2.0, 1.0, 2.0
 WEIGHT_PARTS, WEIGHT_COST = 0.5, 0.5
@@ -217,9 +258,12 @@ def _objective_reference(spec: Spec, metric: str) -> float:
         return float(limit)
     if fallback is not None:
         return fallback
-    return {"swing_vpp": 0.5 * spec.supply, "input_impedance": max(10.0 * spec.source_impedance, 1e4),
-            "output_impedance": max(0.1 * spec.load_impedance, 1.0),
-            "gain_error_db": spec.gain.tolerance_db}[metric]
+    return {
+        "swing_vpp": 0.5 * spec.supply,
+        "input_impedance": max(10.0 * spec.source_impedance, 1e4),
+        "output_impedance": max(0.1 * spec.load_impedance, 1.0),
+        "gain_error_db": spec.gain.tolerance_db,
+    }[metric]
 
 
 #: the requirements every spec sets: the gain window and the band (the rest are its optional limits)
@@ -229,14 +273,21 @@ BASE_REQUIREMENTS = ("gain_tolerance", "band_low", "band_high")
 def requirements(spec: Spec) -> list[tuple[str, str, int, float]]:
     """Each requirement the spec sets: (name, metric, +1 at least / -1 at most, limit in SI). The gain
     is judged by its error against the tolerance (|gain_error_db|, dB), the band by its -3 dB corners (Hz)."""
-    rows = [("gain_tolerance", "gain_error_db", -1, spec.gain.tolerance_db),
-            ("band_low", "f_low", -1, spec.band[0]), ("band_high", "f_high", +1, spec.band[1])]
-    return rows + [(name, metric, sign, getattr(spec.limits, name)) for name, metric, sign in LIMIT_METRICS
-                   if getattr(spec.limits, name) is not None]
+    rows = [
+        ("gain_tolerance", "gain_error_db", -1, spec.gain.tolerance_db),
+        ("band_low", "f_low", -1, spec.band[0]),
+        ("band_high", "f_high", +1, spec.band[1]),
+    ]
+    return rows + [
+        (name, metric, sign, getattr(spec.limits, name))
+        for name, metric, sign in LIMIT_METRICS
+        if getattr(spec.limits, name) is not None
+    ]
 
 
-def requirement_margins(spec: Spec, metrics: Mapping[str, object], *, limits_only: bool = False
-                        ) -> list[tuple[str, str, int, float, np.ndarray, np.ndarray]]:
+def requirement_margins(
+    spec: Spec, metrics: Mapping[str, object], *, limits_only: bool = False
+) -> list[tuple[str, str, int, float, np.ndarray, np.ndarray]]:
     """(name, metric, sign, limit, value, margin) of each requirement: the value judged (NaN where the
     design has no figure) and the relative margin, sign * (value - limit) / limit (>= 0: met). Arrays
     over candidates, or 0-d for one design. ``limits_only``: the spec's optional limits alone."""
@@ -267,22 +318,34 @@ def limit_margins(spec: Spec, metrics: Mapping[str, np.ndarray]) -> np.ndarray:
 def limit_table(spec: Spec, metrics: Mapping[str, float | None]) -> list[dict]:
     """Each requirement the spec sets, for one design: the metric, its value and the limit (SI),
     ``kind`` "min" or "max", and the relative ``margin`` (>= 0: met; None where there is no figure)."""
-    return [{"limit": name, "metric": metric, "kind": "min" if sign > 0 else "max", "limit_value": float(limit),
-             "value": float(value), "margin": float(margin) if np.isfinite(margin) else None}
-            for name, metric, sign, limit, value, margin in requirement_margins(spec, metrics)
-            if not (name in LOOP_LIMITS and np.all(np.isnan(value)))]  # no loop: not judged
+    return [
+        {
+            "limit": name,
+            "metric": metric,
+            "kind": "min" if sign > 0 else "max",
+            "limit_value": float(limit),
+            "value": float(value),
+            "margin": float(margin) if np.isfinite(margin) else None,
+        }
+        for name, metric, sign, limit, value, margin in requirement_margins(spec, metrics)
+        if not (name in LOOP_LIMITS and np.all(np.isnan(value)))
+    ]  # no loop: not judged
 
 
 def desirability_terms(spec: Spec, metrics: dict[str, np.ndarray]) -> dict[str, tuple[np.ndarray, float]]:
     """Each term of the documented score above: name -> (value in (0, 1] per candidate, weight).
     Objective terms are named after their metric."""
     gain_err = np.abs(np.asarray(metrics["gain_error_db"], dtype=float))
-    terms = {"gain": (1.0 - 0.5 * np.clip(gain_err / spec.gain.tolerance_db, 0.0, 1.0), WEIGHT_GAIN),
-             "margin": (0.5 + 0.5 * np.clip(limit_margins(spec, metrics) / MARGIN_FULL, 0.0, 1.0), WEIGHT_MARGIN),
-             "parts": (8.0 / (8.0 + np.asarray(metrics["part_count"], dtype=float)), WEIGHT_PARTS),
-             "reuse": (4.0 / (4.0 + np.asarray(metrics["unique_values"], dtype=float)),
-                       WEIGHT_REUSE_PREFERRED if spec.parts.prefer_reuse else WEIGHT_REUSE),
-             "cost": (1.0 / (1.0 + np.asarray(metrics["cost"], dtype=float)), WEIGHT_COST)}
+    terms = {
+        "gain": (1.0 - 0.5 * np.clip(gain_err / spec.gain.tolerance_db, 0.0, 1.0), WEIGHT_GAIN),
+        "margin": (0.5 + 0.5 * np.clip(limit_margins(spec, metrics) / MARGIN_FULL, 0.0, 1.0), WEIGHT_MARGIN),
+        "parts": (8.0 / (8.0 + np.asarray(metrics["part_count"], dtype=float)), WEIGHT_PARTS),
+        "reuse": (
+            4.0 / (4.0 + np.asarray(metrics["unique_values"], dtype=float)),
+            WEIGHT_REUSE_PREFERRED if spec.parts.prefer_reuse else WEIGHT_REUSE,
+        ),
+        "cost": (1.0 / (1.0 + np.asarray(metrics["cost"], dtype=float)), WEIGHT_COST),
+    }
     for metric, direction in spec.objective_directions:
         x = np.abs(np.nan_to_num(np.asarray(metrics[metric], dtype=float), nan=np.inf))
         ref = _objective_reference(spec, metric)
@@ -292,8 +355,12 @@ def desirability_terms(spec: Spec, metrics: dict[str, np.ndarray]) -> dict[str, 
     return terms
 
 
-def desirability(spec: Spec, metrics: dict[str, np.ndarray], violation: np.ndarray,
-                 terms: dict[str, tuple[np.ndarray, float]] | None = None) -> np.ndarray:
+def desirability(
+    spec: Spec,
+    metrics: dict[str, np.ndarray],
+    violation: np.ndarray,
+    terms: dict[str, tuple[np.ndarray, float]] | None = None,
+) -> np.ndarray:
     """The documented score above: in (0, 1] where ``violation`` is 0, else -violation."""
     terms = desirability_terms(spec, metrics) if terms is None else terms
     weights = sum(w for _, w in terms.values())
@@ -327,10 +394,10 @@ def pareto_mask(values: np.ndarray, directions: list[str], *, chunk: int = 512) 
     else:
         dominated = np.zeros(len(rows), dtype=bool)
         for i in range(0, len(rows), chunk):
-            block = rows[i:i + chunk]
+            block = rows[i : i + chunk]
             no_worse = np.all(rows[None, :, :] <= block[:, None, :], axis=2)
             better = np.any(rows[None, :, :] < block[:, None, :], axis=2)
-            dominated[i:i + chunk] = np.any(no_worse & better, axis=1)
+            dominated[i : i + chunk] = np.any(no_worse & better, axis=1)
         mask[ok] = ~dominated
     return mask
 

@@ -7,6 +7,7 @@ then scaled together, C_j = m * K_j / f_target, with the smallest common factor 
 still meets the target once every value is rounded up to the series; a last pass steps
 each capacitor down one value where the target still holds. All candidates at once.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -20,8 +21,7 @@ _PROBE_VALUES = (1e-6, 1e-8, 1e-10, 1e-4)  # F, tried in turn for each capacitor
 _SCALE_GRID = np.geomspace(1.0, 16.0, 25)  # common factors m tried, ascending
 
 
-def _f_low(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice,
-           conditions: Conditions) -> np.ndarray:
+def _f_low(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions) -> np.ndarray:
     """The stage's f_low (Hz), the same values as ``evaluate(full=True).metrics["f_low"]``, computed
     alone: the bias, the closed-form mid-band gain as the reference and the low crossing of the
     nodal response (no swing, f_high, noise, supply rejection or ratings), in evaluation chunks."""
@@ -31,13 +31,13 @@ def _f_low(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice,
     beta = topology._hfe_array(device, None, n)
     out = np.empty(n)
     for i in range(0, n, CHUNK_FULL):
-        chunk = {k: v[i:i + CHUNK_FULL] for k, v in p.items()}
-        chunk, b, _ = topology._solve(chunk, device, conditions, beta[i:i + CHUNK_FULL])
+        chunk = {k: v[i : i + CHUNK_FULL] for k, v in p.items()}
+        chunk, b, _ = topology._solve(chunk, device, conditions, beta[i : i + CHUNK_FULL])
         r_source = _source_resistance(b, conditions)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             gain = topology._midband(chunk, conditions, b, r_source)["gain"]
             net = topology._network(chunk, conditions, b.small_signal, True, r_source, True)
-            out[i:i + CHUNK_FULL] = low_3db_corner(topology._response(net, r_source), gain)
+            out[i : i + CHUNK_FULL] = low_3db_corner(topology._response(net, r_source), gain)
     return out
 
 
@@ -46,16 +46,22 @@ def _round_up(values: np.ndarray, allowed: np.ndarray) -> np.ndarray:
     return np.minimum(np.searchsorted(allowed, values * (1 - 1e-9)), allowed.size - 1)
 
 
-def _stacked_f_low(topology: Topology, variants: list[dict[str, np.ndarray]], device: AnyDevice,
-                   conditions: Conditions) -> np.ndarray:
+def _stacked_f_low(
+    topology: Topology, variants: list[dict[str, np.ndarray]], device: AnyDevice, conditions: Conditions
+) -> np.ndarray:
     """f_low of several variants of the same candidates in one vectorised call: shape (variants, n)."""
     stacked = {r: np.concatenate([v[r] for v in variants]) for r in variants[0]}
     return _f_low(topology, stacked, device, conditions).reshape(len(variants), -1)
 
 
-def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device: AnyDevice,
-                    conditions: Conditions, allowed: np.ndarray,
-                    f_low_target: float | None = None) -> dict[str, np.ndarray]:
+def size_capacitors(
+    topology: Topology,
+    resistors: dict[str, np.ndarray],
+    device: AnyDevice,
+    conditions: Conditions,
+    allowed: np.ndarray,
+    f_low_target: float | None = None,
+) -> dict[str, np.ndarray]:
     """Capacitor values (F) for every candidate, from the sorted ``allowed`` values.
 
     ``resistors`` maps role -> array over candidates. The target defaults to the low
@@ -76,13 +82,20 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
         pending = {c: rows for c, rows in pending.items() if rows.size}
         if not pending:
             break
-        variants = [{**{r: v[rows] for r, v in resistors.items()}, **{c: large[c][rows] for c in large},
-                     cap: np.full(rows.size, value)} for cap, rows in pending.items()]
-        f_probe = _f_low(topology, {r: np.concatenate([v[r] for v in variants]) for r in variants[0]},
-                         device, conditions)
+        variants = [
+            {
+                **{r: v[rows] for r, v in resistors.items()},
+                **{c: large[c][rows] for c in large},
+                cap: np.full(rows.size, value),
+            }
+            for cap, rows in pending.items()
+        ]
+        f_probe = _f_low(
+            topology, {r: np.concatenate([v[r] for v in variants]) for r in variants[0]}, device, conditions
+        )
         start = 0
         for cap, rows in pending.items():
-            f = f_probe[start:start + rows.size]
+            f = f_probe[start : start + rows.size]
             start += rows.size
             if value == min(_PROBE_VALUES):
                 f_smallest[cap][rows] = f
@@ -96,15 +109,19 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
         k[unmoved] = 0.0
     corner_constant = {c: np.nan_to_num(k, nan=allowed[-1] * target) for c, k in corner_constant.items()}
 
-    scaled = [{c: _round_up(m * corner_constant[c] / target, allowed) for c in topology.capacitors}
-              for m in _SCALE_GRID]
-    f_scaled = _stacked_f_low(topology, [{**resistors, **{c: allowed[i] for c, i in idx.items()}} for idx in scaled],
-                              device, conditions)
+    scaled = [
+        {c: _round_up(m * corner_constant[c] / target, allowed) for c in topology.capacitors} for m in _SCALE_GRID
+    ]
+    f_scaled = _stacked_f_low(
+        topology, [{**resistors, **{c: allowed[i] for c, i in idx.items()}} for idx in scaled], device, conditions
+    )
     meets = f_scaled <= target  # (scale factors, n)
     found = meets.any(axis=0)
     first = np.where(found, np.argmax(meets, axis=0), 0)
-    best = {c: np.where(found, np.stack([idx[c] for idx in scaled])[first, np.arange(first.size)], allowed.size - 1)
-            for c in topology.capacitors}
+    best = {
+        c: np.where(found, np.stack([idx[c] for idx in scaled])[first, np.arange(first.size)], allowed.size - 1)
+        for c in topology.capacitors
+    }
 
     # One step down each capacitor in turn, where the target still holds with the earlier steps
     # taken: every subset of capacitors stepped down is solved in one call, then the turns are
@@ -112,9 +129,15 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
     caps = topology.capacitors
     subsets = range(1, 1 << len(caps))  # bit j: capacitor j one value lower
     lower = {c: np.maximum(best[c] - 1, 0) for c in caps}
-    f_sub = _stacked_f_low(topology, [{**resistors, **{c: allowed[lower[c] if mask >> j & 1 else best[c]]
-                                                       for j, c in enumerate(caps)}} for mask in subsets],
-                           device, conditions)
+    f_sub = _stacked_f_low(
+        topology,
+        [
+            {**resistors, **{c: allowed[lower[c] if mask >> j & 1 else best[c]] for j, c in enumerate(caps)}}
+            for mask in subsets
+        ],
+        device,
+        conditions,
+    )
     taken = np.zeros(size, dtype=int)
     for j in range(len(caps)):
         trial = taken | (1 << j)
@@ -128,8 +151,14 @@ def size_capacitors(topology: Topology, resistors: dict[str, np.ndarray], device
 DECOUPLE_CORNER_DECADES = 1.0  # without a PSRR limit: r_decouple*c_decouple corner this many decades below the band
 
 
-def size_decoupling(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions,
-                    allowed: np.ndarray, psrr_min_db: float | None = None) -> np.ndarray:
+def size_decoupling(
+    topology: Topology,
+    parts: dict[str, np.ndarray],
+    device: AnyDevice,
+    conditions: Conditions,
+    allowed: np.ndarray,
+    psrr_min_db: float | None = None,
+) -> np.ndarray:
     """c_decouple (F) for every candidate, from the sorted ``allowed`` values; 0 where r_decouple is 0.
 
     ``parts`` holds the stage's resistors and capacitors and r_decouple (ohm, per candidate).
@@ -143,7 +172,7 @@ def size_decoupling(topology: Topology, parts: dict[str, np.ndarray], device: An
     r_dec = np.atleast_1d(np.asarray(parts["r_decouple"], dtype=float))
     size = np.broadcast(*parts.values()).shape
     r_dec = np.broadcast_to(r_dec, size)
-    corner = conditions.band[0] / 10.0 ** DECOUPLE_CORNER_DECADES
+    corner = conditions.band[0] / 10.0**DECOUPLE_CORNER_DECADES
     with np.errstate(divide="ignore"):
         idx = _round_up(1.0 / (2.0 * np.pi * r_dec * corner), allowed)
     if psrr_min_db is not None:
@@ -151,7 +180,9 @@ def size_decoupling(topology: Topology, parts: dict[str, np.ndarray], device: An
         lo, hi = np.zeros(size, dtype=int), np.full(size, allowed.size - 1)
         while np.any(lo < hi):  # smallest index meeting the limit (hi meets it or is the largest)
             mid = (lo + hi) // 2
-            ok = topology.psrr({**full, "c_decouple": allowed[mid]}, device, conditions)["psrr_ripple_db"] >= psrr_min_db
+            ok = (
+                topology.psrr({**full, "c_decouple": allowed[mid]}, device, conditions)["psrr_ripple_db"] >= psrr_min_db
+            )
             active = lo < hi
             hi, lo = np.where(active & ok, mid, hi), np.where(active & ~ok, mid + 1, lo)
         idx = lo

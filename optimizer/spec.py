@@ -6,6 +6,7 @@ frozen :class:`Spec` holding SI floats (temperatures in °C); every problem foun
 reported together in one :class:`~optimizer.errors.InputError` titled "invalid spec",
 each naming the dotted field path, the value given and what would be valid.
 """
+
 from __future__ import annotations
 
 import difflib
@@ -38,8 +39,14 @@ TOPOLOGY_NAMES = tuple(TOPOLOGIES)  # the registered topologies when the package
 
 #: Each objective metric with the direction that improves it (from the metrics table).
 METRIC_DIRECTIONS = {m.key: m.direction for m in METRICS if m.direction}
-DIRECTION_ALIASES = {"minimise": "minimise", "minimize": "minimise", "min": "minimise",
-                      "maximise": "maximise", "maximize": "maximise", "max": "maximise"}
+DIRECTION_ALIASES = {
+    "minimise": "minimise",
+    "minimize": "minimise",
+    "min": "minimise",
+    "maximise": "maximise",
+    "maximize": "maximise",
+    "max": "maximise",
+}
 NOMINAL_TEMPERATURE_C = 27.0
 DEFAULT_SUPPLY_TOLERANCE = 0.05  # a bare supply voltage is taken as +-5 % (common practice for a regulated rail)
 ROBUSTNESS_BASES = ("yield", "worst_case", "nominal")
@@ -50,6 +57,7 @@ _JSON_SCHEMA_DRAFT = "https://json-schema.org/draft/2020-12/schema"
 
 # --- field types ---------------------------------------------------------------------
 
+
 def _percent_or_fraction(value: object, where: str) -> float:
     """A fraction given as a number (0.01) or a percentage ("1 %")."""
     if isinstance(value, str) and value.strip().endswith("%"):
@@ -57,9 +65,17 @@ def _percent_or_fraction(value: object, where: str) -> float:
     return parse_quantity(value, None, where=where)
 
 
-def _quantity(unit: str | None, *, optional: bool = False, allow_negative: bool = False,
-              allow_zero: bool = False, maximum: float | None = None,
-              percent: bool = False, example: str = "", hint: str = "") -> Any:
+def _quantity(
+    unit: str | None,
+    *,
+    optional: bool = False,
+    allow_negative: bool = False,
+    allow_zero: bool = False,
+    maximum: float | None = None,
+    percent: bool = False,
+    example: str = "",
+    hint: str = "",
+) -> Any:
     """An annotated float field read from engineering notation in ``unit``."""
 
     def parse(value: object) -> float | None:
@@ -67,9 +83,11 @@ def _quantity(unit: str | None, *, optional: bool = False, allow_negative: bool 
             return None
         if isinstance(value, bool) or not isinstance(value, (str, int, float)):
             raise ValueError(f"a number or a quantity such as {example!r}")
-        number = (_percent_or_fraction(value, "") if percent else
-                  parse_quantity(value, unit, where="", allow_negative=allow_negative,
-                                 allow_zero=allow_zero))
+        number = (
+            _percent_or_fraction(value, "")
+            if percent
+            else parse_quantity(value, unit, where="", allow_negative=allow_negative, allow_zero=allow_zero)
+        )
         if not allow_zero and number == 0:
             raise ValueError(f"a value above 0, such as {example!r}")
         if maximum is not None and number > maximum:
@@ -80,10 +98,8 @@ def _quantity(unit: str | None, *, optional: bool = False, allow_negative: bool 
     alternatives: list[dict] = [{"type": "number"}, {"type": "string"}]
     if optional:
         alternatives.append({"type": "null"})
-    schema = {"anyOf": alternatives,
-              "description": f"{what}; engineering notation accepted, e.g. {example!r}"}
-    return Annotated[float | None if optional else float, BeforeValidator(parse),
-                     WithJsonSchema(schema)]
+    schema = {"anyOf": alternatives, "description": f"{what}; engineering notation accepted, e.g. {example!r}"}
+    return Annotated[float | None if optional else float, BeforeValidator(parse), WithJsonSchema(schema)]
 
 
 def _count(minimum: int, maximum: int, example: str) -> Any:
@@ -97,9 +113,10 @@ def _count(minimum: int, maximum: int, example: str) -> Any:
             raise ValueError(f"a whole number from {minimum} to {maximum}")
         return int(number)
 
-    schema = {"anyOf": [{"type": "integer", "minimum": minimum, "maximum": maximum},
-                        {"type": "string"}],
-              "description": f"whole number {minimum}..{maximum}, e.g. {example!r}"}
+    schema = {
+        "anyOf": [{"type": "integer", "minimum": minimum, "maximum": maximum}, {"type": "string"}],
+        "description": f"whole number {minimum}..{maximum}, e.g. {example!r}",
+    }
     return Annotated[int, BeforeValidator(parse), WithJsonSchema(schema)]
 
 
@@ -127,8 +144,11 @@ Ohm = _quantity("ohm", example="47k")
 Farad = _quantity("F", allow_zero=True, example="100p")
 Hertz = _quantity("Hz", example="20 kHz")
 Celsius = _quantity("°C", allow_negative=True, allow_zero=True, example="50 °C")
-Series = Annotated[str, BeforeValidator(_choice(SERIES, "preferred-number series")),
-                   WithJsonSchema({"enum": list(SERIES)})]
+Series = Annotated[
+    str, BeforeValidator(_choice(SERIES, "preferred-number series")), WithJsonSchema({"enum": list(SERIES)})
+]
+
+
 class _RegisteredTopologies:
     """JSON Schema of a topology name: an enum of the topologies registered when the schema is made."""
 
@@ -143,8 +163,10 @@ def _ordered(low: float, high: float, label: str, unit: str, strict: bool) -> No
     """Raise unless low < high (strict) or low <= high."""
     if low > high or (strict and low == high):
         word = "below" if strict else "at most"
-        raise ValueError(f"[low, high] with low {word} high ({label}, {unit}); "
-                         f"got {format_value(low, unit)} .. {format_value(high, unit)}")
+        raise ValueError(
+            f"[low, high] with low {word} high ({label}, {unit}); "
+            f"got {format_value(low, unit)} .. {format_value(high, unit)}"
+        )
 
 
 class _Section(BaseModel):
@@ -159,6 +181,7 @@ class _Section(BaseModel):
 
 
 # --- sections ------------------------------------------------------------------------
+
 
 class Gain(_Section):
     """Required voltage gain, source to load: magnitude (V/V), sign and tolerance (dB).
@@ -185,15 +208,17 @@ class Gain(_Section):
         data = dict(data)
         problems: list[Problem] = []
         if "tolerance" in data and "tolerance_db" in data:
-            problems.append(Problem("tolerance", data["tolerance"],
-                                    "either tolerance or tolerance_db, not both"))
+            problems.append(Problem("tolerance", data["tolerance"], "either tolerance or tolerance_db, not both"))
         elif "tolerance" in data or "tolerance_db" in data:
             key = "tolerance" if "tolerance" in data else "tolerance_db"
             try:
                 data["tolerance_db"] = _tolerance_db(data.pop(key), in_db=key == "tolerance_db")
             except (InputError, ValueError) as exc:
-                problems.append(Problem(key, exc.problems[0].value if isinstance(
-                    exc, InputError) else data.get(key), _expected(exc)))
+                problems.append(
+                    Problem(
+                        key, exc.problems[0].value if isinstance(exc, InputError) else data.get(key), _expected(exc)
+                    )
+                )
         if "target" in data:
             raw = data["target"]
             try:
@@ -201,9 +226,13 @@ class Gain(_Section):
                 if "inverting" not in data:
                     data["inverting"] = None if in_db else signed < 0
                 elif signed < 0 and data["inverting"] is not True:
-                    problems.append(Problem("inverting", data["inverting"],
-                                            "true, or omit it: a negative target already "
-                                            "means an inverting stage"))
+                    problems.append(
+                        Problem(
+                            "inverting",
+                            data["inverting"],
+                            "true, or omit it: a negative target already means an inverting stage",
+                        )
+                    )
                 data["target"] = abs(signed)
             except (InputError, ValueError) as exc:
                 problems.append(Problem("target", raw, _expected(exc)))
@@ -215,16 +244,21 @@ class Gain(_Section):
     def __get_pydantic_json_schema__(cls, core_schema: Any, handler: Any) -> dict:
         number_or_text = {"anyOf": [{"type": "number"}, {"type": "string"}]}
         written = {
-            "type": "object", "additionalProperties": False, "required": ["target"],
+            "type": "object",
+            "additionalProperties": False,
+            "required": ["target"],
             "properties": {
                 "target": {**number_or_text, "description": "signed V/V (-10) or dB ('20 dB')"},
-                "tolerance": {**number_or_text,
-                              "description": "'1 dB', or a fraction (0.1) or '10 %'"},
+                "tolerance": {**number_or_text, "description": "'1 dB', or a fraction (0.1) or '10 %'"},
                 "tolerance_db": {"type": "number", "description": "+- dB"},
                 "inverting": {"type": ["boolean", "null"]},
-            }}
-        return {"title": "Gain", "anyOf": [{"type": "number"}, {"type": "string"}, written],
-                "description": (cls.__doc__ or "").split("\n")[0]}
+            },
+        }
+        return {
+            "title": "Gain",
+            "anyOf": [{"type": "number"}, {"type": "string"}, written],
+            "description": (cls.__doc__ or "").split("\n")[0],
+        }
 
 
 def _gain_target(raw: object) -> tuple[float, bool]:
@@ -264,26 +298,38 @@ class Limits(_Section):
     input_impedance_min: _quantity("ohm", optional=True, example="100k") = None
     output_impedance_max: _quantity("ohm", optional=True, example="1k") = None
     swing_min: _quantity("V", optional=True, example="4 V") = Field(
-        None, description="V peak-to-peak at the load, judged on the usable swing: the largest sine whose "
-                          "two peaks stay within 10 % of the linear gain times the drive")
-    supply_current_max: _quantity("A", optional=True, maximum=SUPPLY_CURRENT_BOUND, example="2 mA",
-                                  hint=" (a small-signal stage draws mA; M is mega, m is milli)") = None
+        None,
+        description="V peak-to-peak at the load, judged on the usable swing: the largest sine whose "
+        "two peaks stay within 10 % of the linear gain times the drive",
+    )
+    supply_current_max: _quantity(
+        "A",
+        optional=True,
+        maximum=SUPPLY_CURRENT_BOUND,
+        example="2 mA",
+        hint=" (a small-signal stage draws mA; M is mega, m is milli)",
+    ) = None
     thd_max: _quantity(None, optional=True, percent=True, maximum=1.0, example="1 %") = None
     thd_level: _quantity("V", optional=True, example="2 V") = Field(
-        None, description="output V peak-to-peak at which THD is judged; "
-                          "default half of swing_min, else 1 V, and at most half the supply")
+        None,
+        description="output V peak-to-peak at which THD is judged; "
+        "default half of swing_min, else 1 V, and at most half the supply",
+    )
     noise_ein_max: _quantity("V", optional=True, example="2 uV") = Field(
-        None, description="equivalent input noise, V rms over the band")
+        None, description="equivalent input noise, V rms over the band"
+    )
     psrr_min_db: _quantity("dB", optional=True, example="40 dB") = Field(
-        None, description="least supply rejection (dB, supply ripple to load) at the ripple frequency "
-                          "and at mid-band")
+        None, description="least supply rejection (dB, supply ripple to load) at the ripple frequency and at mid-band"
+    )
     phase_margin_min_deg: _quantity("deg", optional=True, maximum=180.0, example="45 deg") = Field(
-        45.0, description="least phase margin (degrees) of a stage's overall feedback loop; 45 degrees is "
-                          "common practice (little peaking); null: not judged. Stages without such a loop "
-                          "are not judged")
+        45.0,
+        description="least phase margin (degrees) of a stage's overall feedback loop; 45 degrees is "
+        "common practice (little peaking); null: not judged. Stages without such a loop "
+        "are not judged",
+    )
     yield_min: _quantity(None, percent=True, maximum=1.0, example="95 %") = Field(
-        0.95, description="fraction of Monte Carlo builds that must meet every hard limit "
-                          "(robustness: yield)")
+        0.95, description="fraction of Monte Carlo builds that must meet every hard limit (robustness: yield)"
+    )
 
     @model_validator(mode="after")
     def _thd_level(self) -> "Limits":
@@ -291,9 +337,12 @@ class Limits(_Section):
             default = self.swing_min / 2 if self.swing_min is not None else 1.0
             object.__setattr__(self, "thd_level", default)
         elif self.swing_min is not None and self.thd_level > self.swing_min:
-            raise InputError.single("thd_level", self.thd_level,
-                                    f"at most swing_min ({format_value(self.swing_min, 'V')}"
-                                    " peak-to-peak)", _TITLE)
+            raise InputError.single(
+                "thd_level",
+                self.thd_level,
+                f"at most swing_min ({format_value(self.swing_min, 'V')} peak-to-peak)",
+                _TITLE,
+            )
         return self
 
 
@@ -315,8 +364,10 @@ class Parts(_Section):
     capacitor_range: tuple[Farad, Farad] = Field((10e-12, 1000e-6), description="[low, high] F")
     prefer_reuse: bool = False
     allow_class2_coupling: bool = Field(
-        False, description="true: class-2 ceramics (X7R, X5R, Y5V) may be chosen for capacitors in the signal "
-                           "path (the BOM then cautions); false: film, C0G or electrolytic only")
+        False,
+        description="true: class-2 ceramics (X7R, X5R, Y5V) may be chosen for capacitors in the signal "
+        "path (the BOM then cautions); false: film, C0G or electrolytic only",
+    )
 
     @field_validator("resistor_range", "capacitor_range")
     @classmethod
@@ -334,8 +385,9 @@ class Objective(_Section):
     """One objective: a metric name and its direction (implied by the metric if omitted)."""
 
     metric: Annotated[str, BeforeValidator(_choice(tuple(METRIC_DIRECTIONS), "metric"))]
-    direction: Annotated[str | None, BeforeValidator(
-        lambda v: v if v is None else _choice(tuple(DIRECTION_ALIASES), "direction")(v))] = None
+    direction: Annotated[
+        str | None, BeforeValidator(lambda v: v if v is None else _choice(tuple(DIRECTION_ALIASES), "direction")(v))
+    ] = None
 
     @model_validator(mode="after")
     def _direction(self) -> "Objective":
@@ -344,12 +396,26 @@ class Objective(_Section):
         return self
 
 
-ObjectiveItem = Annotated[Objective, BeforeValidator(_objective_input), WithJsonSchema({
-    "anyOf": [{"enum": list(METRIC_DIRECTIONS)},
-              {"type": "object", "additionalProperties": False, "required": ["metric"],
-               "properties": {"metric": {"enum": list(METRIC_DIRECTIONS)},
-                              "direction": {"enum": ["minimise", "maximise",
-                                                     "minimize", "maximize"]}}}]})]
+ObjectiveItem = Annotated[
+    Objective,
+    BeforeValidator(_objective_input),
+    WithJsonSchema(
+        {
+            "anyOf": [
+                {"enum": list(METRIC_DIRECTIONS)},
+                {
+                    "type": "object",
+                    "additionalProperties": False,
+                    "required": ["metric"],
+                    "properties": {
+                        "metric": {"enum": list(METRIC_DIRECTIONS)},
+                        "direction": {"enum": ["minimise", "maximise", "minimize", "maximize"]},
+                    },
+                },
+            ]
+        }
+    ),
+]
 
 
 class Search(_Section):
@@ -359,8 +425,10 @@ class Search(_Section):
     seed: _count(0, 2**32 - 1, "0") = 0
     batch_size: _count(1, MAX_BATCH, "64") = 64
     capacitors: Literal["sized", "searched"] = Field(
-        "sized", description="sized: the smallest series values meeting the band's low corner, chosen "
-                             "after the resistors; searched: capacitor values are search parameters too")
+        "sized",
+        description="sized: the smallest series values meeting the band's low corner, chosen "
+        "after the resistors; searched: capacitor values are search parameters too",
+    )
 
 
 def _unique(values: tuple, label: str) -> tuple:
@@ -374,8 +442,10 @@ def _unique(values: tuple, label: str) -> tuple:
 
 
 SUPPLY_INTERNAL = ("supply_min", "supply_max", "supply_range_assumed", "supply_arrangement", "supply_negative")
-_SUPPLY_FORMS = ("a positive rail ('12 V' or {nominal, min, max}), a negative rail ('-12 V' or {nominal: -12 V, "
-                 "min: -12.6 V, max: -11.4 V}) or a split supply ('+-12 V' or {positive: 12 V, negative: -12 V})")
+_SUPPLY_FORMS = (
+    "a positive rail ('12 V' or {nominal, min, max}), a negative rail ('-12 V' or {nominal: -12 V, "
+    "min: -12.6 V, max: -11.4 V}) or a split supply ('+-12 V' or {positive: 12 V, negative: -12 V})"
+)
 
 
 def _rail(raw: object, where: str) -> tuple[float, float | None, float | None]:
@@ -384,8 +454,9 @@ def _rail(raw: object, where: str) -> tuple[float, float | None, float | None]:
     if isinstance(raw, dict):
         unknown = [k for k in raw if k not in ("nominal", "min", "max")]
         if unknown or "nominal" not in raw:
-            raise InputError.single(where, raw, "a voltage or {nominal, min, max} with nominal given "
-                                    "(min and max default to -+5 %)", _TITLE)
+            raise InputError.single(
+                where, raw, "a voltage or {nominal, min, max} with nominal given (min and max default to -+5 %)", _TITLE
+            )
         values = [raw.get(k) for k in ("nominal", "min", "max")]
     else:
         values = [raw, None, None]
@@ -409,8 +480,13 @@ def _rail(raw: object, where: str) -> tuple[float, float | None, float | None]:
         if value is not None and (value > 0) != (nominal > 0):
             raise InputError.single(where + key, value, f"the same sign as the nominal {nominal:g} V", _TITLE)
     if not (low if low is not None else nominal) <= nominal <= (high if high is not None else nominal):
-        raise InputError.single(where, raw, "min <= nominal <= max in true volts (for a negative rail min is the "
-                                "most negative, e.g. {nominal: -12 V, min: -12.6 V, max: -11.4 V})", _TITLE)
+        raise InputError.single(
+            where,
+            raw,
+            "min <= nominal <= max in true volts (for a negative rail min is the "
+            "most negative, e.g. {nominal: -12 V, min: -12.6 V, max: -11.4 V})",
+            _TITLE,
+        )
     return nominal, low, high
 
 
@@ -429,7 +505,7 @@ def _read_supply(raw: object) -> dict[str, Any]:
     text = raw.strip() if isinstance(raw, str) else ""
     prefix = next((p for p in ("+/-", "+-", "±") if text.startswith(p)), None)
     if prefix:
-        text = text[len(prefix):]
+        text = text[len(prefix) :]
         magnitude = _rail(text.strip(), "supply")[0]
         if magnitude <= 0:
             raise InputError.single("supply", raw, "a split supply written '+-12 V' (a positive magnitude)", _TITLE)
@@ -437,8 +513,12 @@ def _read_supply(raw: object) -> dict[str, Any]:
     if isinstance(raw, dict) and ("positive" in raw or "negative" in raw):
         unknown = [k for k in raw if k not in ("positive", "negative")]
         if unknown or not {"positive", "negative"} <= set(raw):
-            raise InputError.single("supply", raw, "a split supply {positive: 12 V, negative: -12 V} with both "
-                                    "rails and no other key", _TITLE)
+            raise InputError.single(
+                "supply",
+                raw,
+                "a split supply {positive: 12 V, negative: -12 V} with both rails and no other key",
+                _TITLE,
+            )
         pos, neg = _rail(raw["positive"], "supply.positive"), _rail(raw["negative"], "supply.negative")
         if pos[0] < 0:
             raise InputError.single("supply.positive", raw["positive"], "a voltage above 0 V, e.g. '12 V'", _TITLE)
@@ -446,11 +526,22 @@ def _read_supply(raw: object) -> dict[str, Any]:
             raise InputError.single("supply.negative", raw["negative"], "a voltage below 0 V, e.g. '-12 V'", _TITLE)
         assumed = all(r[1] is None and r[2] is None for r in (pos, neg))
         tol = 1.0 - DEFAULT_SUPPLY_TOLERANCE, 1.0 + DEFAULT_SUPPLY_TOLERANCE
-        pos_range = (pos[1] if pos[1] is not None else pos[0] * tol[0], pos[2] if pos[2] is not None else pos[0] * tol[1])
-        neg_range = (neg[1] if neg[1] is not None else neg[0] * tol[1], neg[2] if neg[2] is not None else neg[0] * tol[0])
-        return {"supply": pos[0] - neg[0], "supply_min": pos_range[0] - neg_range[1],
-                "supply_max": pos_range[1] - neg_range[0], "supply_range_assumed": assumed,
-                "supply_arrangement": "split", "supply_negative": (neg[0], *neg_range)}
+        pos_range = (
+            pos[1] if pos[1] is not None else pos[0] * tol[0],
+            pos[2] if pos[2] is not None else pos[0] * tol[1],
+        )
+        neg_range = (
+            neg[1] if neg[1] is not None else neg[0] * tol[1],
+            neg[2] if neg[2] is not None else neg[0] * tol[0],
+        )
+        return {
+            "supply": pos[0] - neg[0],
+            "supply_min": pos_range[0] - neg_range[1],
+            "supply_max": pos_range[1] - neg_range[0],
+            "supply_range_assumed": assumed,
+            "supply_arrangement": "split",
+            "supply_negative": (neg[0], *neg_range),
+        }
     if isinstance(raw, (dict, str, int, float)) and not isinstance(raw, bool):
         try:
             nominal, low, high = _rail(raw, "supply")
@@ -459,11 +550,20 @@ def _read_supply(raw: object) -> dict[str, Any]:
                 raise InputError.single("supply", raw, _SUPPLY_FORMS, _TITLE) from None
             raise
         if nominal > 0:
-            return {"supply": nominal, "supply_min": low, "supply_max": high,
-                    "supply_range_assumed": low is None and high is None, "supply_arrangement": "positive"}
-        return {"supply": -nominal, "supply_min": None if high is None else -high,
-                "supply_max": None if low is None else -low, "supply_range_assumed": low is None and high is None,
-                "supply_arrangement": "negative"}
+            return {
+                "supply": nominal,
+                "supply_min": low,
+                "supply_max": high,
+                "supply_range_assumed": low is None and high is None,
+                "supply_arrangement": "positive",
+            }
+        return {
+            "supply": -nominal,
+            "supply_min": None if high is None else -high,
+            "supply_max": None if low is None else -low,
+            "supply_range_assumed": low is None and high is None,
+            "supply_arrangement": "negative",
+        }
     raise InputError.single("supply", raw, _SUPPLY_FORMS, _TITLE)
 
 
@@ -485,8 +585,9 @@ class Spec(_Section):
         data = dict(data)
         for key in SUPPLY_INTERNAL:
             if key in data:
-                raise InputError.single(key, data[key], "supply: {nominal, min, max} or {positive, negative} "
-                                        "instead", _TITLE)
+                raise InputError.single(
+                    key, data[key], "supply: {nominal, min, max} or {positive, negative} instead", _TITLE
+                )
         if data.get("supply") is not None:
             try:
                 data.update(_read_supply(data["supply"]))
@@ -498,47 +599,70 @@ class Spec(_Section):
     @classmethod
     def _supply_problem(cls, value: object) -> object:
         if isinstance(value, _SupplyProblem):
-            raise InputError([Problem(p.where.removeprefix("supply").lstrip("."), p.value, p.expected)
-                              for p in value.error.problems], _TITLE)
+            raise InputError(
+                [
+                    Problem(p.where.removeprefix("supply").lstrip("."), p.value, p.expected)
+                    for p in value.error.problems
+                ],
+                _TITLE,
+            )
         return value
 
     @model_validator(mode="after")
     def _supply_order(self) -> "Spec":
-        for key, factor in (("supply_min", 1.0 - DEFAULT_SUPPLY_TOLERANCE), ("supply_max", 1.0 + DEFAULT_SUPPLY_TOLERANCE)):
+        for key, factor in (
+            ("supply_min", 1.0 - DEFAULT_SUPPLY_TOLERANCE),
+            ("supply_max", 1.0 + DEFAULT_SUPPLY_TOLERANCE),
+        ):
             if getattr(self, key) is None:
                 object.__setattr__(self, key, self.supply * factor)
         if not self.supply_min <= self.supply <= self.supply_max:
-            raise InputError.single("supply", {"nominal": self.supply, "min": self.supply_min,
-                                               "max": self.supply_max},
-                                    "min <= nominal <= max", _TITLE)
+            raise InputError.single(
+                "supply",
+                {"nominal": self.supply, "min": self.supply_min, "max": self.supply_max},
+                "min <= nominal <= max",
+                _TITLE,
+            )
         return self
 
     name: str = Field(min_length=1, max_length=MAX_NAME)
     description: str | None = Field(None, max_length=MAX_DESCRIPTION)
     supply: _quantity("V", maximum=100.0, example="12 V") = Field(
         description="the supply: a positive rail ('12 V', or {nominal, min, max}; +-5 % assumed for a bare "
-                    "number), a negative rail ('-12 V', or {nominal: -12 V, min: -12.6 V, max: -11.4 V}) or a "
-                    "split supply ('+-12 V', or {positive: 12 V, negative: -12 V}, each rail a voltage or "
-                    "{nominal, min, max}). Internally: the span from the lowest to the highest rail, V, "
-                    "above 0, <= 100")
+        "number), a negative rail ('-12 V', or {nominal: -12 V, min: -12.6 V, max: -11.4 V}) or a "
+        "split supply ('+-12 V', or {positive: 12 V, negative: -12 V}, each rail a voltage or "
+        "{nominal, min, max}). Internally: the span from the lowest to the highest rail, V, "
+        "above 0, <= 100"
+    )
     supply_min: _quantity("V", optional=True, maximum=100.0, example="11.4 V") = Field(
-        None, description="lowest span, V (input: supply.min; default nominal -5 %)")
+        None, description="lowest span, V (input: supply.min; default nominal -5 %)"
+    )
     supply_max: _quantity("V", optional=True, maximum=100.0, example="12.6 V") = Field(
-        None, description="highest span, V (input: supply.max; default nominal +5 %)")
+        None, description="highest span, V (input: supply.max; default nominal +5 %)"
+    )
     supply_range_assumed: bool = Field(
-        False, description="true when the supply was a bare number and +-5 % was assumed")
+        False, description="true when the supply was a bare number and +-5 % was assumed"
+    )
     supply_arrangement: Literal["positive", "negative", "split"] = Field(
-        "positive", description="positive rail and ground, negative rail and ground, or split (+ and - rails "
-                                "around ground); from the supply's written form")
+        "positive",
+        description="positive rail and ground, negative rail and ground, or split (+ and - rails "
+        "around ground); from the supply's written form",
+    )
     supply_negative: tuple[float, float, float] | None = Field(
-        None, description="split supply: the negative rail (nominal, min, max), V, true (negative) volts")
+        None, description="split supply: the negative rail (nominal, min, max), V, true (negative) volts"
+    )
     supply_ripple: Ripple | None = None
     robustness: Literal["yield", "worst_case", "nominal"] = Field(
-        "yield", description="basis on which a design meets the spec: yield (every hard limit in at "
-                             "least limits.yield_min of Monte Carlo builds), worst_case (at every "
-                             "corner) or nominal (at nominal values only)")
-    mains_powered: bool = Field(False, description="true when the stage's supply is derived from the mains: "
-                                                   "its outputs then carry the high-voltage caution")
+        "yield",
+        description="basis on which a design meets the spec: yield (every hard limit in at "
+        "least limits.yield_min of Monte Carlo builds), worst_case (at every "
+        "corner) or nominal (at nominal values only)",
+    )
+    mains_powered: bool = Field(
+        False,
+        description="true when the stage's supply is derived from the mains: "
+        "its outputs then carry the high-voltage caution",
+    )
     gain: Gain
     source_impedance: _quantity("ohm", allow_zero=True, example="600") = 0.0
     load_impedance: Ohm
@@ -549,8 +673,7 @@ class Spec(_Section):
     parts: Parts = Field(default_factory=Parts)
     devices: tuple[str, ...] = ("npn-general",)
     topologies: tuple[Topology, ...] = TOPOLOGY_NAMES
-    objectives: tuple[ObjectiveItem, ...] = (Objective(metric="supply_current"),
-                                             Objective(metric="swing_vpp"))
+    objectives: tuple[ObjectiveItem, ...] = (Objective(metric="supply_current"), Objective(metric="swing_vpp"))
     search: Search = Field(default_factory=Search)
 
     @field_validator("band")
@@ -593,11 +716,15 @@ class Spec(_Section):
             # the default level (half of swing_min, else 1 V) judged against this supply too:
             # a low-voltage stage is judged at half its supply, never at a level it cannot reach
             object.__setattr__(limits, "thd_level", supply / 2)
-        problems = [Problem(key, value, f"at most the supply ({format_value(supply, 'V')}): "
-                                        "a stage cannot swing more than its supply")
-                    for key, value in (("swing_min", limits.swing_min),
-                                       ("thd_level", limits.thd_level))
-                    if value is not None and value > supply]
+        problems = [
+            Problem(
+                key,
+                value,
+                f"at most the supply ({format_value(supply, 'V')}): a stage cannot swing more than its supply",
+            )
+            for key, value in (("swing_min", limits.swing_min), ("thd_level", limits.thd_level))
+            if value is not None and value > supply
+        ]
         if problems:
             raise InputError(problems, _TITLE)
         return limits
@@ -628,6 +755,7 @@ class Spec(_Section):
 
 
 # --- errors --------------------------------------------------------------------------
+
 
 def _expected(exc: Exception) -> str:
     if isinstance(exc, InputError):
@@ -670,12 +798,16 @@ def _find_section(annotation: Any) -> type[_Section] | None:
 
 _BUILTIN_EXPECTED = {
     "missing": "a value is required here",
-    "bool_type": "true or false", "bool_parsing": "true or false",
-    "string_type": "text", "string_too_short": "non-empty text",
+    "bool_type": "true or false",
+    "bool_parsing": "true or false",
+    "string_type": "text",
+    "string_too_short": "non-empty text",
     "string_too_long": f"text of at most {MAX_NAME} characters (a description: {MAX_DESCRIPTION})",
-    "tuple_type": "a list", "list_type": "a list", "dict_type": "a mapping of keys to values",
-    "model_type": "a mapping of keys to values", "model_attributes_type":
-        "a mapping of keys to values",
+    "tuple_type": "a list",
+    "list_type": "a list",
+    "dict_type": "a mapping of keys to values",
+    "model_type": "a mapping of keys to values",
+    "model_attributes_type": "a mapping of keys to values",
     "too_short": "a list of exactly 2 values [low, high]",
     "too_long": "a list of exactly 2 values [low, high]",
 }
@@ -696,12 +828,17 @@ def _problems_from(error: ValidationError) -> list[Problem]:
         if kind == "extra_forbidden":
             section = _section_at(loc[:-1])
             allowed = list(section.input_keys()) if section else []
-            expected = (f"unknown key {loc[-1]!r}{_suggestion(loc[-1], allowed)}; "
-                        f"allowed keys here: {', '.join(allowed)}")
+            expected = (
+                f"unknown key {loc[-1]!r}{_suggestion(loc[-1], allowed)}; allowed keys here: {', '.join(allowed)}"
+            )
         elif cause is not None:
             expected = str(cause)
-        elif kind in ("too_short", "too_long") and "band" not in where and "range" not in where \
-                and "temperature" not in where:
+        elif (
+            kind in ("too_short", "too_long")
+            and "band" not in where
+            and "range" not in where
+            and "temperature" not in where
+        ):
             expected = "a longer list" if kind == "too_short" else "a shorter list"
         else:
             expected = _BUILTIN_EXPECTED.get(kind, err["msg"][:1].lower() + err["msg"][1:])
@@ -711,16 +848,15 @@ def _problems_from(error: ValidationError) -> list[Problem]:
 
 # --- public API ----------------------------------------------------------------------
 
+
 def parse_spec(data: dict, *, source: str = "<spec>") -> Spec:
     """Validate a spec mapping into a :class:`Spec`; raise InputError with every problem."""
     if not isinstance(data, dict):
-        raise InputError.single(source, type(data).__name__,
-                                "a mapping of spec keys (name, supply, gain, ...)", _TITLE)
+        raise InputError.single(source, type(data).__name__, "a mapping of spec keys (name, supply, gain, ...)", _TITLE)
     try:
         return Spec.model_validate(data)
     except ValidationError as exc:
-        raise InputError(_problems_from(exc), f"{_TITLE} ({source})" if source != "<spec>"
-                         else _TITLE) from None
+        raise InputError(_problems_from(exc), f"{_TITLE} ({source})" if source != "<spec>" else _TITLE) from None
 
 
 def load_spec(path: str | Path) -> Spec:
@@ -735,13 +871,21 @@ def load_spec(path: str | Path) -> Spec:
         path = example
     try:
         if path.stat().st_size > MAX_BYTES:
-            raise InputError.single(str(path), f"{path.stat().st_size} bytes",
-                                    f"a spec file of at most {MAX_BYTES} bytes", "cannot read spec")
+            raise InputError.single(
+                str(path),
+                f"{path.stat().st_size} bytes",
+                f"a spec file of at most {MAX_BYTES} bytes",
+                "cannot read spec",
+            )
         text = path.read_text(encoding="utf-8")
     except (OSError, UnicodeDecodeError) as exc:
-        raise InputError.single(str(path), str(path), f"a readable UTF-8 spec file ({exc}), or the name of a bundled "
-                                f"example: {', '.join(example_names()) or '(none installed)'}",
-                                "cannot read spec") from None
+        raise InputError.single(
+            str(path),
+            str(path),
+            f"a readable UTF-8 spec file ({exc}), or the name of a bundled "
+            f"example: {', '.join(example_names()) or '(none installed)'}",
+            "cannot read spec",
+        ) from None
     data = parse_document(text, str(path), yaml_ok=path.suffix.lower() != ".json")
     return parse_spec(data, source=str(path))
 
@@ -752,11 +896,19 @@ def check_against_catalog(spec: Spec, catalog: Any) -> None:
     known = [str(i) for i in catalog.transistors["id"]]
     for i, device in enumerate(spec.devices):
         if device not in known:
-            problems.append(Problem(f"devices[{i}]", device, f"a transistor id in catalog "
-                                    f"{spec.parts.catalog!r}: {', '.join(known)}"
-                                    f"{_suggestion(device, known)}"))
-    lookups = {"resistor_series": catalog.resistor_values,
-               "capacitor_series": getattr(catalog, "capacitor_values", None)}
+            problems.append(
+                Problem(
+                    f"devices[{i}]",
+                    device,
+                    f"a transistor id in catalog "
+                    f"{spec.parts.catalog!r}: {', '.join(known)}"
+                    f"{_suggestion(device, known)}",
+                )
+            )
+    lookups = {
+        "resistor_series": catalog.resistor_values,
+        "capacitor_series": getattr(catalog, "capacitor_values", None),
+    }
     for key, lookup in lookups.items():
         series = getattr(spec.parts, key)
         if lookup is None:
@@ -766,8 +918,7 @@ def check_against_catalog(spec: Spec, catalog: Any) -> None:
         except (KeyError, ValueError):
             empty = True
         if empty:
-            problems.append(Problem(f"parts.{key}", series, f"a series with values in catalog "
-                                    f"{spec.parts.catalog!r}"))
+            problems.append(Problem(f"parts.{key}", series, f"a series with values in catalog {spec.parts.catalog!r}"))
     if problems:
         raise InputError(problems, "spec does not fit the catalog")
 
@@ -779,19 +930,26 @@ def spec_to_dict(spec: Spec) -> dict:
         data.pop(key)
     if spec.supply_range_assumed and spec.supply_arrangement != "positive":
         top, bottom = spec.rails
-        data["supply"] = -spec.supply if spec.supply_arrangement == "negative" else {"positive": top,
-                                                                                      "negative": bottom}
+        data["supply"] = (
+            -spec.supply if spec.supply_arrangement == "negative" else {"positive": top, "negative": bottom}
+        )
     elif spec.supply_arrangement == "split" and spec.supply_negative is not None:
         neg = dict(zip(("nominal", "min", "max"), spec.supply_negative))
-        pos = {"nominal": spec.supply + neg["nominal"], "min": spec.supply_min + neg["max"],
-               "max": spec.supply_max + neg["min"]}
+        pos = {
+            "nominal": spec.supply + neg["nominal"],
+            "min": spec.supply_min + neg["max"],
+            "max": spec.supply_max + neg["min"],
+        }
         data["supply"] = {"positive": pos, "negative": neg}
     elif spec.supply_arrangement == "negative":
         data["supply"] = {"nominal": -spec.supply, "min": -spec.supply_max, "max": -spec.supply_min}
     elif not spec.supply_range_assumed:
         data["supply"] = {"nominal": spec.supply, "min": spec.supply_min, "max": spec.supply_max}
-    data["gain"] = {"target": spec.gain.target, "inverting": spec.gain.inverting,
-                    "tolerance_db": spec.gain.tolerance_db}
+    data["gain"] = {
+        "target": spec.gain.target,
+        "inverting": spec.gain.inverting,
+        "tolerance_db": spec.gain.tolerance_db,
+    }
     return data
 
 
@@ -809,12 +967,27 @@ def spec_json_schema() -> dict:
         schema["properties"].pop(key, None)
     schema["required"] = [k for k in schema.get("required", []) if k not in SUPPLY_INTERNAL]
     voltage = {"anyOf": [{"type": "number"}, {"type": "string"}]}
-    rail = {"anyOf": [*voltage["anyOf"], {"type": "object", "additionalProperties": False, "required": ["nominal"],
-                                          "properties": {"nominal": voltage, "min": voltage, "max": voltage}}]}
-    split = {"type": "object", "additionalProperties": False, "required": ["positive", "negative"],
-             "properties": {"positive": rail, "negative": rail}}
-    schema["properties"]["supply"] = {"description": schema["properties"]["supply"]["description"],
-                                      "anyOf": [*rail["anyOf"], split]}
+    rail = {
+        "anyOf": [
+            *voltage["anyOf"],
+            {
+                "type": "object",
+                "additionalProperties": False,
+                "required": ["nominal"],
+                "properties": {"nominal": voltage, "min": voltage, "max": voltage},
+            },
+        ]
+    }
+    split = {
+        "type": "object",
+        "additionalProperties": False,
+        "required": ["positive", "negative"],
+        "properties": {"positive": rail, "negative": rail},
+    }
+    schema["properties"]["supply"] = {
+        "description": schema["properties"]["supply"]["description"],
+        "anyOf": [*rail["anyOf"], split],
+    }
     return {"$schema": _JSON_SCHEMA_DRAFT, **schema}
 
 
@@ -822,7 +995,9 @@ def _supply_words(spec: Spec) -> str:
     """The supply as a designer says it: '12 V', '-12 V (negative rail)', '+12 V / -12 V (split, 24 V span)'."""
     top, bottom = spec.rails
     if spec.supply_arrangement == "split":
-        return f"+{format_value(top, 'V')} / -{format_value(-bottom, 'V')} (split, {format_value(spec.supply, 'V')} span)"
+        return (
+            f"+{format_value(top, 'V')} / -{format_value(-bottom, 'V')} (split, {format_value(spec.supply, 'V')} span)"
+        )
     if spec.supply_arrangement == "negative":
         return f"-{format_value(spec.supply, 'V')} (negative rail)"
     return format_value(spec.supply, "V")
@@ -833,47 +1008,68 @@ def describe_spec(spec: Spec) -> str:
     fv = format_value
     g = spec.gain
     sign = {True: "inverting", False: "non-inverting", None: "either sign"}[g.inverting]
-    lines = [f"spec {spec.name}" + (f": {spec.description.strip()}" if spec.description else ""),
-             f"  supply            {_supply_words(spec)} ({fv(spec.supply_min, 'V')} .. "
-             f"{fv(spec.supply_max, 'V')}" + (" span" if spec.supply_arrangement == "split" else "")
-             + (", +-5 % assumed" if spec.supply_range_assumed else "") + ")"
-             + (f", ripple {fv(spec.supply_ripple.vpp, 'V')} p-p at {fv(spec.supply_ripple.frequency, 'Hz')}"
-                if spec.supply_ripple else ""),
-             f"  gain              {g.target:.4g} V/V ({spec.gain_target_db:.2f} dB), {sign},"
-             f" +-{g.tolerance_db:.2f} dB",
-             f"  source impedance  {fv(spec.source_impedance, 'ohm')}",
-             f"  load              {fv(spec.load_impedance, 'ohm')} || "
-             f"{fv(spec.load_capacitance, 'F')}",
-             f"  band              {fv(spec.band[0], 'Hz')} .. {fv(spec.band[1], 'Hz')}",
-             f"  temperature       {fv(spec.temperature[0], '°C')} .. "
-             f"{fv(spec.temperature[1], '°C')} (nominal {fv(NOMINAL_TEMPERATURE_C, '°C')})"]
-    limit_units = {"input_impedance_min": ("ohm", ""), "output_impedance_max": ("ohm", ""),
-                   "swing_min": ("V", " peak-to-peak"), "supply_current_max": ("A", ""),
-                   "thd_max": ("%", ""), "thd_level": ("V", " peak-to-peak"),
-                   "noise_ein_max": ("V", " rms"), "psrr_min_db": ("dB", ""), "yield_min": ("%", ""),
-                   "phase_margin_min_deg": ("deg", "")}
+    lines = [
+        f"spec {spec.name}" + (f": {spec.description.strip()}" if spec.description else ""),
+        f"  supply            {_supply_words(spec)} ({fv(spec.supply_min, 'V')} .. "
+        f"{fv(spec.supply_max, 'V')}"
+        + (" span" if spec.supply_arrangement == "split" else "")
+        + (", +-5 % assumed" if spec.supply_range_assumed else "")
+        + ")"
+        + (
+            f", ripple {fv(spec.supply_ripple.vpp, 'V')} p-p at {fv(spec.supply_ripple.frequency, 'Hz')}"
+            if spec.supply_ripple
+            else ""
+        ),
+        f"  gain              {g.target:.4g} V/V ({spec.gain_target_db:.2f} dB), {sign}, +-{g.tolerance_db:.2f} dB",
+        f"  source impedance  {fv(spec.source_impedance, 'ohm')}",
+        f"  load              {fv(spec.load_impedance, 'ohm')} || {fv(spec.load_capacitance, 'F')}",
+        f"  band              {fv(spec.band[0], 'Hz')} .. {fv(spec.band[1], 'Hz')}",
+        f"  temperature       {fv(spec.temperature[0], '°C')} .. "
+        f"{fv(spec.temperature[1], '°C')} (nominal {fv(NOMINAL_TEMPERATURE_C, '°C')})",
+    ]
+    limit_units = {
+        "input_impedance_min": ("ohm", ""),
+        "output_impedance_max": ("ohm", ""),
+        "swing_min": ("V", " peak-to-peak"),
+        "supply_current_max": ("A", ""),
+        "thd_max": ("%", ""),
+        "thd_level": ("V", " peak-to-peak"),
+        "noise_ein_max": ("V", " rms"),
+        "psrr_min_db": ("dB", ""),
+        "yield_min": ("%", ""),
+        "phase_margin_min_deg": ("deg", ""),
+    }
     set_limits = [(k, v) for k, v in spec.limits.model_dump().items() if v is not None]
     lines.append("  limits" + ("" if set_limits else "            none"))
     for key, value in set_limits:
         unit, suffix = limit_units[key]
-        shown = (f"{100 * value:.3g} %" if unit == "%" else f"{value:.3g} dB" if unit == "dB"
-                 else f"{value:.3g}°" if unit == "deg"
-                 else fv(value, unit) + suffix)
+        shown = (
+            f"{100 * value:.3g} %"
+            if unit == "%"
+            else f"{value:.3g} dB"
+            if unit == "dB"
+            else f"{value:.3g}°"
+            if unit == "deg"
+            else fv(value, unit) + suffix
+        )
         lines.append(f"    {key:<22}{shown}")
     p = spec.parts
-    lines += [f"  parts             catalog {p.catalog}, resistors {p.resistor_series} "
-              f"{fv(p.resistor_range[0], 'ohm')} .. {fv(p.resistor_range[1], 'ohm')}, "
-              f"capacitors {p.capacitor_series} {fv(p.capacitor_range[0], 'F')} .. "
-              f"{fv(p.capacitor_range[1], 'F')}"
-              + (", in stock only" if p.in_stock_only else "")
-              + (", prefer reuse" if p.prefer_reuse else ""),
-              f"  devices           {', '.join(spec.devices)}",
-              f"  topologies        {', '.join(spec.topologies)}",
-              "  robustness        " + {"yield": f"yield: every hard limit in at least "
-                                                  f"{100 * spec.limits.yield_min:.3g} % of Monte Carlo builds",
-                                         "worst_case": "worst case: every hard limit at every corner",
-                                         "nominal": "nominal: limits judged at nominal values only"}[spec.robustness],
-              "  objectives        " + ", ".join(f"{d} {m}" for m, d in spec.objective_directions),
-              f"  search            {spec.search.trials} trials, seed {spec.search.seed}, "
-              f"batch {spec.search.batch_size}"]
+    lines += [
+        f"  parts             catalog {p.catalog}, resistors {p.resistor_series} "
+        f"{fv(p.resistor_range[0], 'ohm')} .. {fv(p.resistor_range[1], 'ohm')}, "
+        f"capacitors {p.capacitor_series} {fv(p.capacitor_range[0], 'F')} .. "
+        f"{fv(p.capacitor_range[1], 'F')}"
+        + (", in stock only" if p.in_stock_only else "")
+        + (", prefer reuse" if p.prefer_reuse else ""),
+        f"  devices           {', '.join(spec.devices)}",
+        f"  topologies        {', '.join(spec.topologies)}",
+        "  robustness        "
+        + {
+            "yield": f"yield: every hard limit in at least {100 * spec.limits.yield_min:.3g} % of Monte Carlo builds",
+            "worst_case": "worst case: every hard limit at every corner",
+            "nominal": "nominal: limits judged at nominal values only",
+        }[spec.robustness],
+        "  objectives        " + ", ".join(f"{d} {m}" for m, d in spec.objective_directions),
+        f"  search            {spec.search.trials} trials, seed {spec.search.seed}, batch {spec.search.batch_size}",
+    ]
     return "\n".join(lines)

@@ -22,6 +22,7 @@ retry callback, at most 3 retries; :func:`recover_stale_trials`, which also fail
 trial of a storage without heartbeats once it is ``STAGEFIT_STALE_AFTER`` seconds old). :func:`claim_batch` makes "count the trials, ask the
 next batch" one step across every process sharing a search, so a budget is met exactly.
 """
+
 from __future__ import annotations
 
 import fcntl
@@ -67,6 +68,7 @@ def _rdb_models():
     are found by one SQL query on the trials table; the public API would read every trial of
     the study. Imported late: SQLAlchemy is slow to import."""
     from optuna.storages._rdb import models
+
     return models
 
 
@@ -94,6 +96,7 @@ def unwrapped(storage: BaseStorage) -> BaseStorage:
     RDB storage's engine and heartbeat settings are only on the wrapped storage."""
     return getattr(storage, "_backend", storage)
 
+
 DEFAULT_JOURNAL = Path("runs") / "stagefit.journal"
 _RDB_SCHEMES = ("sqlite", "postgresql", "postgres", "mysql")
 _cache: dict[str, BaseStorage] = {}
@@ -114,10 +117,15 @@ def quiet_optuna() -> None:
     warnings. Called when a search runs (never at import: a program importing stagefit keeps
     its own logging settings until it runs one)."""
     optuna.logging.set_verbosity(optuna.logging.WARNING)
+
+
 # Heartbeats and their retry callback are marked experimental in Optuna; we rely on them
 # knowingly (tests/test_workers.py checks them), so their warnings are noise here.
-warnings.filterwarnings("ignore", category=optuna.exceptions.ExperimentalWarning,
-                        message=r".*(heartbeat|Retry\w*Callback|fail_stale_trials)")
+warnings.filterwarnings(
+    "ignore",
+    category=optuna.exceptions.ExperimentalWarning,
+    message=r".*(heartbeat|Retry\w*Callback|fail_stale_trials)",
+)
 # Study.ask warns that heartbeats belong to Study.optimize: our batches record them (TrialHeartbeat).
 warnings.filterwarnings("ignore", message="Heartbeat of storage is supposed to be used with Study.optimize")
 
@@ -152,8 +160,12 @@ def _valid_record(line: bytes) -> dict | None:
         record = json.loads(line)
     except (ValueError, RecursionError):  # JSONDecodeError, bad UTF-8, absurd nesting
         return None
-    if (isinstance(record, dict) and isinstance(record.get("op_code"), int)
-            and not isinstance(record.get("op_code"), bool) and isinstance(record.get("worker_id"), str)):
+    if (
+        isinstance(record, dict)
+        and isinstance(record.get("op_code"), int)
+        and not isinstance(record.get("op_code"), bool)
+        and isinstance(record.get("worker_id"), str)
+    ):
         return record
     return None
 
@@ -208,9 +220,14 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
                 if record is None:
                     if start not in self._warned:
                         self._warned.add(start)
-                        log.warning("journal %s: damaged record at byte offset %d (%d bytes) skipped; "
-                                    "`stagefit storage repair %s` rewrites the file without it",
-                                    self._path, start, len(line), self._path)
+                        log.warning(
+                            "journal %s: damaged record at byte offset %d (%d bytes) skipped; "
+                            "`stagefit storage repair %s` rewrites the file without it",
+                            self._path,
+                            start,
+                            len(line),
+                            self._path,
+                        )
                     continue
                 number += 1
                 yield number, offset, record
@@ -218,7 +235,7 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
     def read_logs(self, log_number_from: int) -> Generator[dict[str, Any], None, None]:
         with self._batch_lock:  # a batch's records not read yet (all of them if the file is not read to its end)
             held, base = self._held is not None, self._base
-            pending = self._pending[max(log_number_from - base, 0):] if held else []
+            pending = self._pending[max(log_number_from - base, 0) :] if held else []
         if held and log_number_from >= base:  # the file is read already
             for _, record in pending:
                 yield self._seen({**record})
@@ -318,8 +335,9 @@ class _WaitingIndex:
     def _waiting_made(self, study_id: int) -> int:
         raise NotImplementedError
 
-    def get_all_trials(self, study_id: int, deepcopy: bool = True,
-                       states: "Container[TrialState] | None" = None) -> list[optuna.trial.FrozenTrial]:
+    def get_all_trials(
+        self, study_id: int, deepcopy: bool = True, states: "Container[TrialState] | None" = None
+    ) -> list[optuna.trial.FrozenTrial]:
         if states is None or tuple(states) != (TrialState.WAITING,):
             return super().get_all_trials(study_id, deepcopy, states)  # type: ignore[misc]
         made = self._waiting_made(study_id)
@@ -430,16 +448,20 @@ class TrialTally:
         if self.key is None:
             return
         key = self.key(trial)
-        if self.best is None or key < self._best_key or (
-                key == self._best_key and self.same is not None and self.same(trial, self.best)):
+        if (
+            self.best is None
+            or key < self._best_key
+            or (key == self._best_key and self.same is not None and self.same(trial, self.best))
+        ):
             self.best, self._best_key = trial, key
 
 
 _tallies: "weakref.WeakKeyDictionary[BaseStorage, dict[tuple, TrialTally]]" = weakref.WeakKeyDictionary()
 
 
-def tally(storage: BaseStorage, study_id_: int, key: "Callable | None" = None,
-          same: "Callable | None" = None) -> TrialTally:
+def tally(
+    storage: BaseStorage, study_id_: int, key: "Callable | None" = None, same: "Callable | None" = None
+) -> TrialTally:
     """The up-to-date :class:`TrialTally` of a study, kept per storage in this process, so
     repeated status polls read only what changed since the last one."""
     with _lock:
@@ -470,16 +492,19 @@ class JournalReport:
 
     def describe(self) -> str:
         """One line per finding, for the CLI."""
-        lines = [f"{self.path}: {self.size} bytes, {self.records} readable records, "
-                 + ("no damage" if self.clean else
-                    f"{len(self.damaged) + (self.torn_tail is not None)} damaged line(s)")]
+        lines = [
+            f"{self.path}: {self.size} bytes, {self.records} readable records, "
+            + ("no damage" if self.clean else f"{len(self.damaged) + (self.torn_tail is not None)} damaged line(s)")
+        ]
         lines += [f"  damaged record at byte offset {o} ({n} bytes)" for o, n in self.damaged]
         if self.torn_tail:
             lines.append(f"  unfinished last line at byte offset {self.torn_tail[0]} ({self.torn_tail[1]} bytes)")
         return "\n".join(lines)
 
 
-def _scan(handle: IO[bytes], keep: IO[bytes] | None = None) -> tuple[int, list[tuple[int, int]], tuple[int, int] | None]:
+def _scan(
+    handle: IO[bytes], keep: IO[bytes] | None = None
+) -> tuple[int, list[tuple[int, int]], tuple[int, int] | None]:
     """(records, damaged lines, unfinished tail) of a journal; good records copied to ``keep``."""
     records, damaged, tail, offset = 0, [], None, 0
     for line in handle:
@@ -496,7 +521,7 @@ def _scan(handle: IO[bytes], keep: IO[bytes] | None = None) -> tuple[int, list[t
 
 
 def _journal_file(path: str | Path) -> Path:
-    found = Path(str(path)[len("journal://"):] if str(path).startswith("journal://") else path)
+    found = Path(str(path)[len("journal://") :] if str(path).startswith("journal://") else path)
     if not found.is_file():
         raise InputError.single("FILE", str(path), "an existing journal file (e.g. runs/stagefit.journal)")
     return found
@@ -629,21 +654,30 @@ def _rdb(url: str) -> BaseStorage:
     interval = _seconds("STAGEFIT_HEARTBEAT_INTERVAL", HEARTBEAT_INTERVAL)
     grace = _seconds("STAGEFIT_GRACE_PERIOD", max(GRACE_PERIOD, 3 * interval))
     if grace <= interval:
-        raise InputError.single("STAGEFIT_GRACE_PERIOD", grace,
-                                f"more seconds than STAGEFIT_HEARTBEAT_INTERVAL ({interval})")
+        raise InputError.single(
+            "STAGEFIT_GRACE_PERIOD", grace, f"more seconds than STAGEFIT_HEARTBEAT_INTERVAL ({interval})"
+        )
     # Optuna 4.9 renamed the retry callback and its keyword; accept both.
-    retry_cls = getattr(optuna.storages, "RetryHeartbeatStaleTrialCallback", None) \
-        or optuna.storages.RetryFailedTrialCallback
-    keyword = ("heartbeat_stale_trial_callback"
-               if "heartbeat_stale_trial_callback" in inspect.signature(optuna.storages.RDBStorage).parameters
-               else "failed_trial_callback")
-    return optuna.storages.RDBStorage(url, engine_kwargs={"pool_pre_ping": True},
-                                      heartbeat_interval=interval, grace_period=grace,
-                                      **{keyword: retry_cls(max_retry=MAX_RETRY)})
+    retry_cls = (
+        getattr(optuna.storages, "RetryHeartbeatStaleTrialCallback", None) or optuna.storages.RetryFailedTrialCallback
+    )
+    keyword = (
+        "heartbeat_stale_trial_callback"
+        if "heartbeat_stale_trial_callback" in inspect.signature(optuna.storages.RDBStorage).parameters
+        else "failed_trial_callback"
+    )
+    return optuna.storages.RDBStorage(
+        url,
+        engine_kwargs={"pool_pre_ping": True},
+        heartbeat_interval=interval,
+        grace_period=grace,
+        **{keyword: retry_cls(max_retry=MAX_RETRY)},
+    )
 
 
-def recover_stale_trials(storage: BaseStorage, search: "str | optuna.Study",
-                         stale_after: float | None = None) -> tuple[int, int]:
+def recover_stale_trials(
+    storage: BaseStorage, search: "str | optuna.Study", stale_after: float | None = None
+) -> tuple[int, int]:
     """Fail the running trials of runners that died, so the budget is met by new trials; the
     one place this is done (run_search between batches, and the CLI, the server's job pool
     and the workers when a search waits on running trials). Returns (trials failed now,
@@ -661,8 +695,11 @@ def recover_stale_trials(storage: BaseStorage, search: "str | optuna.Study",
     asked more than ``stale_after`` seconds ago belongs to a process that died (nothing is
     failed when ``stale_after`` is None: between batches a slow runner cannot be told from a
     dead one). ``search``: the study, or its name."""
-    study = search if isinstance(search, optuna.Study) else optuna.load_study(
-        study_name=search, storage=storage, sampler=optuna.samplers.RandomSampler())
+    study = (
+        search
+        if isinstance(search, optuna.Study)
+        else optuna.load_study(study_name=search, storage=storage, sampler=optuna.samplers.RandomSampler())
+    )
     liveness = _liveness(storage)
     if liveness is not None:  # journal on Redis: runners' liveness kept on the server
         running = _running(storage, study)
@@ -703,8 +740,11 @@ def recover_stale_trials(storage: BaseStorage, search: "str | optuna.Study",
 
 def _log_failed(study: optuna.Study, failed: int) -> None:
     if failed:
-        log.warning("search %s: %d trial(s) left running by a stopped process were failed and will be "
-                    "asked again", study.study_name, failed)
+        log.warning(
+            "search %s: %d trial(s) left running by a stopped process were failed and will be asked again",
+            study.study_name,
+            failed,
+        )
 
 
 def _running(storage: BaseStorage, study: optuna.Study) -> list[optuna.trial.FrozenTrial]:
@@ -719,12 +759,15 @@ def _fail_unbeaten(study: optuna.Study, rdb: optuna.storages.RDBStorage) -> None
     models = _rdb_models()
     cutoff = datetime.now() - timedelta(seconds=rdb.grace_period)
     with Session(rdb.engine) as session:
-        running = (session.query(models.TrialModel)
-                   .outerjoin(models.TrialHeartbeatModel,
-                              models.TrialHeartbeatModel.trial_id == models.TrialModel.trial_id)
-                   .filter(models.TrialModel.study_id == study_id(study),
-                           models.TrialModel.state == optuna.trial.TrialState.RUNNING,
-                           models.TrialHeartbeatModel.trial_id.is_(None)))
+        running = (
+            session.query(models.TrialModel)
+            .outerjoin(models.TrialHeartbeatModel, models.TrialHeartbeatModel.trial_id == models.TrialModel.trial_id)
+            .filter(
+                models.TrialModel.study_id == study_id(study),
+                models.TrialModel.state == optuna.trial.TrialState.RUNNING,
+                models.TrialHeartbeatModel.trial_id.is_(None),
+            )
+        )
         # datetime_start: this machine's local time (however the Optuna version stores it)
         unbeaten = [t.trial_id for t in running if t.datetime_start is not None and t.datetime_start < cutoff]
     for number in unbeaten:
@@ -867,13 +910,14 @@ def open_storage(url: str | Path | None) -> BaseStorage:
         return _MemoryStorage()
     text = str(url).strip()
     if not text:
-        raise InputError.single("storage", text, "a journal file path, journal:///path, or a database URL "
-                                "such as postgresql://user@host/db")
+        raise InputError.single(
+            "storage", text, "a journal file path, journal:///path, or a database URL such as postgresql://user@host/db"
+        )
     with _lock:
         if text not in _cache:
             scheme = text.split(":", 1)[0].split("+", 1)[0].lower() if "://" in text else ""
             if scheme == "journal":
-                _cache[text] = _journal(Path(text[len("journal://"):]))
+                _cache[text] = _journal(Path(text[len("journal://") :]))
             elif scheme in _RDB_SCHEMES:
                 _cache[text] = _rdb(text)
             elif scheme in ("redis", "rediss"):
@@ -881,8 +925,12 @@ def open_storage(url: str | Path | None) -> BaseStorage:
             elif scheme == "grpc":
                 _cache[text] = _grpc(text)
             elif scheme:
-                raise InputError.single("storage", text, "a journal file path, journal:///path, sqlite:///path, "
-                                        "postgresql://user@host/db, redis://host:port/db or grpc://host:port")
+                raise InputError.single(
+                    "storage",
+                    text,
+                    "a journal file path, journal:///path, sqlite:///path, "
+                    "postgresql://user@host/db, redis://host:port/db or grpc://host:port",
+                )
             else:
                 _cache[text] = _journal(Path(text))
         return _cache[text]

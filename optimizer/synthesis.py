@@ -7,6 +7,7 @@ coupling capacitor sized alone for the band's low corner (common practice). They
 the search and are the baseline every benchmark reports beside it. Each topology composes
 its own hand design from these blocks (``Topology.hand_design``).
 """
+
 from __future__ import annotations
 
 import itertools
@@ -62,7 +63,8 @@ def centred_collector_resistor(req: HandRequirements, r_emitter_dc: float = 0.0)
     upper = req.supply / ic
     if centre(1.0) > 0 or centre(upper) < 0:
         raise InputError.single(
-            "supply", req.supply,
+            "supply",
+            req.supply,
             f"a supply that can bias {req.collector_current * 1e3:.3g} mA at the centre of the load line",
             title="hand method has no solution",
         )
@@ -90,10 +92,12 @@ def coupling_capacitor(resistance: float, f_low: float) -> float:
     return 1.0 / (2.0 * math.pi * f_low * resistance)
 
 
-def rounded_designs(parts: dict[str, float], resistor_series: str, capacitor_series: str,
-                    limit: int = 16) -> list[dict[str, float]]:
+def rounded_designs(
+    parts: dict[str, float], resistor_series: str, capacitor_series: str, limit: int = 16
+) -> list[dict[str, float]]:
     """The hand design rounded to the series: nearest first, then resistors rounded
     both ways (next-down / next-up), capacitors always up. At most ``limit`` designs."""
+
     def options(role: str, value: float) -> list[float]:
         series = capacitor_series if role.startswith("c_") else resistor_series
         if role.startswith("c_"):
@@ -125,9 +129,14 @@ def hand_requirements(spec: "Spec", device: "AnyDevice") -> HandRequirements:
     """The hand method's inputs from a spec: collector current half the current budget
     (1 mA when the spec sets none), the device's typical hFE (a JFET's typical IDSS and VP)."""
     budget = spec.limits.supply_current_max
-    common = dict(supply=spec.supply, gain=spec.gain.target, load_impedance=spec.load_impedance,
-                  source_impedance=spec.source_impedance, f_low=spec.band[0],
-                  collector_current=0.5 * budget if budget else 1e-3)
+    common = dict(
+        supply=spec.supply,
+        gain=spec.gain.target,
+        load_impedance=spec.load_impedance,
+        source_impedance=spec.source_impedance,
+        f_low=spec.band[0],
+        collector_current=0.5 * budget if budget else 1e-3,
+    )
     if isinstance(device, JFET):
         return HandRequirements(**common, idss=device.idss_typ, vp=-device.VTO, vce_sat=0.0)
     return HandRequirements(**common, hfe=device.hfe_typ, vce_sat=device.vce_sat)

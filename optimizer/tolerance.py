@@ -17,6 +17,7 @@ supply, hFE position and, per part role, the same position within the tolerance 
 (:class:`Builds`). So a design's yield does not depend on which other designs it was judged
 with, and two designs are compared on the same builds.
 """
+
 from __future__ import annotations
 
 import itertools
@@ -51,13 +52,19 @@ class Builds:
     hfe_position: np.ndarray
 
     @classmethod
-    def draw(cls, samples: int, seed: int, temperature_range: tuple[float, float],
-             supply_range: tuple[float, float]) -> "Builds":
+    def draw(
+        cls, samples: int, seed: int, temperature_range: tuple[float, float], supply_range: tuple[float, float]
+    ) -> "Builds":
         rng = np.random.default_rng([seed, 0x5EED])
         t_levels = np.linspace(*temperature_range, TEMPERATURE_BINS)
         s_levels = np.linspace(*supply_range, SUPPLY_BINS)
-        return cls(samples, seed, t_levels[rng.integers(0, TEMPERATURE_BINS, samples)],
-                   s_levels[rng.integers(0, SUPPLY_BINS, samples)], rng.uniform(0.0, 1.0, samples))
+        return cls(
+            samples,
+            seed,
+            t_levels[rng.integers(0, TEMPERATURE_BINS, samples)],
+            s_levels[rng.integers(0, SUPPLY_BINS, samples)],
+            rng.uniform(0.0, 1.0, samples),
+        )
 
     def part_position(self, role: str) -> np.ndarray:
         """Position of part ``role`` within its tolerance band in each build, in [-1, 1]."""
@@ -76,12 +83,19 @@ class Builds:
 
 
 def _at(conditions: Conditions, temperature: float, supply: float | None = None) -> Conditions:
-    return replace(conditions, temperature=float(temperature),
-                   supply=float(conditions.supply if supply is None else supply))
+    return replace(
+        conditions, temperature=float(temperature), supply=float(conditions.supply if supply is None else supply)
+    )
 
 
-def _flat_result(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions,
-                 hfe: np.ndarray, full: bool) -> dict[str, np.ndarray]:
+def _flat_result(
+    topology: Topology,
+    parts: dict[str, np.ndarray],
+    device: AnyDevice,
+    conditions: Conditions,
+    hfe: np.ndarray,
+    full: bool,
+) -> dict[str, np.ndarray]:
     """Evaluate arrays of shape (candidates, samples) flattened; metrics, ratings, 'active' and
     the operating point's 'ic' come back in the same 2-D shape."""
     shape = hfe.shape
@@ -90,8 +104,9 @@ def _flat_result(topology: Topology, parts: dict[str, np.ndarray], device: AnyDe
     out = {k: np.asarray(v).reshape(shape) for k, v in result.metrics.items()}
     out.update({k: np.asarray(v).reshape(shape) for k, v in result.ratings.items()})
     op = result.operating_point
-    out.update({k: np.asarray(v).reshape(shape) for k, v in op.items()
-                if k.startswith("v_") and k not in out})  # DC node voltages (v_out_q among them), for their spread
+    out.update(
+        {k: np.asarray(v).reshape(shape) for k, v in op.items() if k.startswith("v_") and k not in out}
+    )  # DC node voltages (v_out_q among them), for their spread
     out["active"] = np.asarray(op["active"]).reshape(shape)
     out["ic"] = np.asarray(op["ic"]).reshape(shape)
     return out
@@ -103,11 +118,18 @@ def _column(tolerance: Tolerance, rows: slice | None = None) -> np.ndarray:
     return (t if t.ndim == 0 or rows is None else t[rows]).reshape(-1, 1) if t.ndim else t.reshape(1, 1)
 
 
-def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice,
-               conditions: Conditions, tolerances: dict[str, Tolerance],
-               temperature_range: tuple[float, float], supply_range: tuple[float, float] | None = None,
-               *, roles: tuple[str, ...] | None = None, full: bool = True
-               ) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+def worst_case(
+    topology: Topology,
+    parts: dict[str, np.ndarray],
+    device: AnyDevice,
+    conditions: Conditions,
+    tolerances: dict[str, Tolerance],
+    temperature_range: tuple[float, float],
+    supply_range: tuple[float, float] | None = None,
+    *,
+    roles: tuple[str, ...] | None = None,
+    full: bool = True,
+) -> dict[str, tuple[np.ndarray, np.ndarray]]:
     """(low, high) of every metric, rating, 'ic' and DC node voltage (v_base, v_out_q, ...) over all corners: each part in
     ``roles`` (default: all) at +-tolerance, the device's spread at both ends (hFE min and max, a
     JFET's lowest and highest IDSS/VP), temperature and supply at
@@ -122,8 +144,9 @@ def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevi
     active_all = np.ones(n, dtype=bool)
     for temperature, supply in itertools.product(temperature_range, supplies):
         at = _at(conditions, temperature, supply)
-        corner_parts = {role: np.asarray(v, dtype=float).reshape(-1, 1) * np.ones((1, signs.shape[0]))
-                        for role, v in parts.items()}
+        corner_parts = {
+            role: np.asarray(v, dtype=float).reshape(-1, 1) * np.ones((1, signs.shape[0])) for role, v in parts.items()
+        }
         for j, role in enumerate(roles):
             corner_parts[role] = corner_parts[role] * (1.0 + signs[None, :, j] * _column(tolerances.get(role, 0.0)))
         for hfe_edge in device.spread_edges(float(temperature)):
@@ -134,19 +157,32 @@ def worst_case(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevi
                 if value.dtype == bool:
                     continue
                 with np.errstate(invalid="ignore"):
-                    lo, hi = np.nanmin(np.where(np.isnan(value), np.inf, value), axis=1), \
-                        np.nanmax(np.where(np.isnan(value), -np.inf, value), axis=1)
+                    lo, hi = (
+                        np.nanmin(np.where(np.isnan(value), np.inf, value), axis=1),
+                        np.nanmax(np.where(np.isnan(value), -np.inf, value), axis=1),
+                    )
                 lows[key] = lo if key not in lows else np.minimum(lows[key], lo)
                 highs[key] = hi if key not in highs else np.maximum(highs[key], hi)
-    out = {key: (np.where(np.isfinite(lows[key]), lows[key], np.nan),
-                 np.where(np.isfinite(highs[key]), highs[key], np.nan)) for key in lows}
+    out = {
+        key: (
+            np.where(np.isfinite(lows[key]), lows[key], np.nan),
+            np.where(np.isfinite(highs[key]), highs[key], np.nan),
+        )
+        for key in lows
+    }
     out["active_all"] = (active_all, active_all)
     return out
 
 
-def bias_spread(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions,
-                tolerances: dict[str, Tolerance], temperature_range: tuple[float, float],
-                supply_range: tuple[float, float]) -> dict[str, np.ndarray]:
+def bias_spread(
+    topology: Topology,
+    parts: dict[str, np.ndarray],
+    device: AnyDevice,
+    conditions: Conditions,
+    tolerances: dict[str, Tolerance],
+    temperature_range: tuple[float, float],
+    supply_range: tuple[float, float],
+) -> dict[str, np.ndarray]:
     """Spread of the operating point, per candidate: ``ic_low``, ``ic_high`` (A), ``ic_spread``
     (max/min Ic) and ``v_out_low``, ``v_out_high`` (V, the quiescent output).
 
@@ -158,15 +194,20 @@ def bias_spread(topology: Topology, parts: dict[str, np.ndarray], device: AnyDev
     n = next(iter(p.values())).size
     resistors = [r for r in topology.resistors if r in p]
     nominal = topology.operating_point(p, device, conditions)["ic"]
-    probes = {r: {**p, r: p[r] * (1.0 + np.maximum(np.asarray(tolerances.get(r, 0.0), dtype=float), 1e-3))}
-              for r in resistors}
+    probes = {
+        r: {**p, r: p[r] * (1.0 + np.maximum(np.asarray(tolerances.get(r, 0.0), dtype=float), 1e-3))} for r in resistors
+    }
     stacked = {role: np.concatenate([probes[r][role] for r in resistors]) for role in p}
     raised = topology.operating_point(stacked, device, conditions)["ic"].reshape(len(resistors), n)
     direction = {r: np.sign(np.nan_to_num(raised[k] - nominal)) for k, r in enumerate(resistors)}
-    up = {role: v * (1.0 + direction[role] * np.asarray(tolerances.get(role, 0.0))) if role in direction else v
-          for role, v in p.items()}
-    down = {role: v * (1.0 - direction[role] * np.asarray(tolerances.get(role, 0.0))) if role in direction else v
-            for role, v in p.items()}
+    up = {
+        role: v * (1.0 + direction[role] * np.asarray(tolerances.get(role, 0.0))) if role in direction else v
+        for role, v in p.items()
+    }
+    down = {
+        role: v * (1.0 - direction[role] * np.asarray(tolerances.get(role, 0.0))) if role in direction else v
+        for role, v in p.items()
+    }
     both = {role: np.concatenate([up[role], down[role]]) for role in p}
     ic_low = np.full(n, np.inf)
     ic_high = np.full(n, -np.inf)
@@ -186,12 +227,19 @@ def bias_spread(topology: Topology, parts: dict[str, np.ndarray], device: AnyDev
     return {"ic_low": ic_low, "ic_high": ic_high, "ic_spread": spread, "v_out_low": v_low, "v_out_high": v_high}
 
 
-def monte_carlo_yield(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice,
-                      conditions: Conditions, tolerances: dict[str, Tolerance],
-                      temperature_range: tuple[float, float],
-                      passes: Callable[[dict[str, np.ndarray], slice], np.ndarray],
-                      samples: int = 1000, seed: int = 0, full: bool = False,
-                      supply_range: tuple[float, float] | None = None) -> np.ndarray:
+def monte_carlo_yield(
+    topology: Topology,
+    parts: dict[str, np.ndarray],
+    device: AnyDevice,
+    conditions: Conditions,
+    tolerances: dict[str, Tolerance],
+    temperature_range: tuple[float, float],
+    passes: Callable[[dict[str, np.ndarray], slice], np.ndarray],
+    samples: int = 1000,
+    seed: int = 0,
+    full: bool = False,
+    supply_range: tuple[float, float] | None = None,
+) -> np.ndarray:
     """Fraction of ``samples`` random builds (:class:`Builds`) of each candidate for which
     ``passes(sample, rows)`` holds (``sample``: metrics and ratings of shape (block rows,
     samples) for the candidates ``rows``, a slice; returns a bool array of that shape) and
@@ -214,13 +262,15 @@ def monte_carlo_yield(topology: Topology, parts: dict[str, np.ndarray], device: 
         rows = max(1, (CHUNK_FULL if full else CHUNK_FAST) // idx.size)
         for i in range(0, n, rows):
             block = slice(i, min(i + rows, n))
-            drawn = {role: v[block, None] * (1.0 + _column(tolerances.get(role, 0.0), block)
-                                             * positions[role][None, idx])
-                     for role, v in values.items()}
+            drawn = {
+                role: v[block, None] * (1.0 + _column(tolerances.get(role, 0.0), block) * positions[role][None, idx])
+                for role, v in values.items()
+            }
             shape = (block.stop - block.start, idx.size)
             hfe = np.broadcast_to(hfe_all[None, idx], shape)
-            at = replace(conditions, temperature=temperature,
-                         supply=np.broadcast_to(builds.supply[None, idx], shape).reshape(-1))
+            at = replace(
+                conditions, temperature=temperature, supply=np.broadcast_to(builds.supply[None, idx], shape).reshape(-1)
+            )
             sample = _flat_result(topology, drawn, device, at, np.ascontiguousarray(hfe), full)
             passed[block] += np.count_nonzero(passes(sample, block) & sample["active"], axis=1)
     return passed / samples

@@ -5,6 +5,7 @@ letter, or R for ohms, stands for the decimal point: "4k7" = 4700, "4R7" = 4.7,
 "R47" = 0.47, "2u2" = 2.2e-6) and an optional unit. Formatting writes values the way a
 designer does: "68k", "4.7 µF", "10.5 mA".
 """
+
 from __future__ import annotations
 
 import math
@@ -12,30 +13,58 @@ import re
 
 from optimizer.errors import InputError
 
-PREFIXES = {"p": 1e-12, "n": 1e-9, "u": 1e-6, "µ": 1e-6, "μ": 1e-6, "m": 1e-3, "": 1.0,
-            "k": 1e3, "K": 1e3, "M": 1e6, "meg": 1e6, "G": 1e9}
+PREFIXES = {
+    "p": 1e-12,
+    "n": 1e-9,
+    "u": 1e-6,
+    "µ": 1e-6,
+    "μ": 1e-6,
+    "m": 1e-3,
+    "": 1.0,
+    "k": 1e3,
+    "K": 1e3,
+    "M": 1e6,
+    "meg": 1e6,
+    "G": 1e9,
+}
 # unit name -> spellings accepted after the number
-UNITS = {"V": ("V",), "A": ("A",), "Hz": ("Hz", "hz"), "ohm": ("Ω", "ohm", "ohms", "Ohm", "R"),
-         "F": ("F",), "W": ("W",), "s": ("s",), "dB": ("dB", "db"), "°C": ("°C", "degC", "C"),
-         "V/V": ("V/V",), "deg": ("deg", "°")}
-_KIND = {"V": "a voltage such as \"12 V\"", "A": "a current such as \"10 mA\"",
-         "Hz": "a frequency such as \"20 kHz\"", "ohm": "a resistance such as \"4k7\", \"47k\" or \"1M\"",
-         "F": "a capacitance such as \"100n\" or \"2.2u\"", "W": "a power such as \"0.25 W\"",
-         "s": "a time such as \"10 ms\"", "dB": "a level in dB such as \"-3 dB\"",
-         "°C": "a temperature such as \"25 °C\"", "V/V": "a ratio such as 10",
-         "deg": "an angle such as \"45 deg\""}
+UNITS = {
+    "V": ("V",),
+    "A": ("A",),
+    "Hz": ("Hz", "hz"),
+    "ohm": ("Ω", "ohm", "ohms", "Ohm", "R"),
+    "F": ("F",),
+    "W": ("W",),
+    "s": ("s",),
+    "dB": ("dB", "db"),
+    "°C": ("°C", "degC", "C"),
+    "V/V": ("V/V",),
+    "deg": ("deg", "°"),
+}
+_KIND = {
+    "V": 'a voltage such as "12 V"',
+    "A": 'a current such as "10 mA"',
+    "Hz": 'a frequency such as "20 kHz"',
+    "ohm": 'a resistance such as "4k7", "47k" or "1M"',
+    "F": 'a capacitance such as "100n" or "2.2u"',
+    "W": 'a power such as "0.25 W"',
+    "s": 'a time such as "10 ms"',
+    "dB": 'a level in dB such as "-3 dB"',
+    "°C": 'a temperature such as "25 °C"',
+    "V/V": "a ratio such as 10",
+    "deg": 'an angle such as "45 deg"',
+}
 _PREFIX_RE = "meg|[pnuµμmkKMG]"
 # re.ASCII: digits are 0-9 only (float() would also take Arabic-Indic or full-width digits)
 _PLAIN = re.compile(rf"^([+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?)\s*({_PREFIX_RE})?\s*(.*)$", re.ASCII)
 _RKM = re.compile(rf"^([+-]?)(\d*)({_PREFIX_RE}|R)(\d+)\s*(.*)$", re.ASCII)
-_FORMAT_PREFIXES = [(1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"), (1e-6, "µ"),
-                    (1e-9, "n"), (1e-12, "p")]
+_FORMAT_PREFIXES = [(1e9, "G"), (1e6, "M"), (1e3, "k"), (1.0, ""), (1e-3, "m"), (1e-6, "µ"), (1e-9, "n"), (1e-12, "p")]
 _SYMBOL = {"ohm": "Ω", "°C": "°C"}
 _ASCII_SYMBOL = {"ohm": "ohm", "°C": "degC"}
 
 
 def _expected(unit: str | None) -> str:
-    return _KIND.get(unit or "", "a number such as 4700, \"4k7\", \"2.2u\" or \"10 mA\"")
+    return _KIND.get(unit or "", 'a number such as 4700, "4k7", "2.2u" or "10 mA"')
 
 
 def _unit_matches(text: str, unit: str | None, rkm_r: bool) -> bool:
@@ -49,8 +78,14 @@ def _unit_matches(text: str, unit: str | None, rkm_r: bool) -> bool:
 MILLI_OHM_HINT = "milli-ohm? write 1M or 1meg for megohm"
 
 
-def parse_quantity(text: object, unit: str | None = None, *, where: str = "value",
-                   allow_negative: bool = False, allow_zero: bool = True) -> float:
+def parse_quantity(
+    text: object,
+    unit: str | None = None,
+    *,
+    where: str = "value",
+    allow_negative: bool = False,
+    allow_zero: bool = True,
+) -> float:
     """The SI value of ``text`` (e.g. "4k7" -> 4700.0, "10 mA" -> 0.01 with unit "A").
 
     A unit in the text must be ``unit`` when that is given; dB values come back as the
@@ -58,6 +93,7 @@ def parse_quantity(text: object, unit: str | None = None, *, where: str = "value
     milliohm, and the writer almost always meant mega. Raises InputError naming ``where``,
     the text and what would be valid.
     """
+
     def fail(extra: str = "") -> InputError:
         return InputError.single(where, text, _expected(unit) + extra)
 

@@ -14,6 +14,7 @@ the search space holds only the eligible topologies, each paired only with its d
 service's spec check, so all refuse the same specs) refuses a spec no topology can meet,
 reporting every problem at once, each naming the field, the value and what would be valid.
 """
+
 from __future__ import annotations
 
 from dataclasses import dataclass
@@ -79,8 +80,10 @@ def eligibility(spec: Spec, catalog: Catalog) -> list[Verdict]:
             reasons.append(f"no {spec.supply_arrangement} supply: runs on {', '.join(t.supplies)}")
         devices = tuple(d for d, tr in traits.items() if builds_with(t, tr))
         if not devices:
-            reasons.append(f"built with {_traits_words(t.polarities, t.device_kind)} devices; the spec's are "
-                           + ", ".join(f"{d} ({_traits_words((tr[0],), tr[1])})" for d, tr in traits.items()))
+            reasons.append(
+                f"built with {_traits_words(t.polarities, t.device_kind)} devices; the spec's are "
+                + ", ".join(f"{d} ({_traits_words((tr[0],), tr[1])})" for d, tr in traits.items())
+            )
         verdicts.append(Verdict(name, devices, tuple(reasons)))
     return verdicts
 
@@ -94,8 +97,12 @@ def eligibility_text(spec: Spec, verdicts: list[Verdict]) -> str:
     shown = f"{-g.target:g}" if g.inverting else f"+{g.target:g}" if g.inverting is False else f"{g.target:g}"
     can = [v.topology for v in verdicts if v.eligible]
     cannot = [f"{v.topology} cannot ({'; '.join(v.reasons)})" for v in verdicts if not v.eligible]
-    return (f"gain {shown} is {sign}, {spec.supply_arrangement} supply: "
-            + (f"{', '.join(can)} can" if can else "no topology can") + ("; " if cannot else "") + "; ".join(cannot))
+    return (
+        f"gain {shown} is {sign}, {spec.supply_arrangement} supply: "
+        + (f"{', '.join(can)} can" if can else "no topology can")
+        + ("; " if cannot else "")
+        + "; ".join(cannot)
+    )
 
 
 def eligible_topologies(spec: Spec, catalog: Catalog) -> tuple[str, ...]:
@@ -108,18 +115,30 @@ def _problems(spec: Spec, verdicts: list[Verdict]) -> list[Problem]:
     topology out, else the whole verdict on ``topologies``."""
     if any(v.eligible for v in verdicts):
         return []
-    if all(v.reasons == ("inverting" if get_topology(v.topology).inverting else "non-inverting",)
-           for v in verdicts):
+    if all(v.reasons == ("inverting" if get_topology(v.topology).inverting else "non-inverting",) for v in verdicts):
         wanted = spec.gain.inverting
         sign = "an inverting" if wanted else "a non-inverting"
         shown = -spec.gain.target if wanted else spec.gain.target
-        other = ("write a negative target (e.g. -10) or set gain.inverting: null to accept either sign"
-                 if not wanted else "set gain.inverting: null to accept either sign")
-        return [Problem("gain.target", f"{shown:g}",
-                        f"a gain sign some topology of the spec gives: no topology in the spec "
-                        f"({', '.join(spec.topologies)}) gives {sign} gain; {other}")]
-    return [Problem("topologies", list(spec.topologies),
-                    f"at least one topology that can meet the spec: {eligibility_text(spec, verdicts)}")]
+        other = (
+            "write a negative target (e.g. -10) or set gain.inverting: null to accept either sign"
+            if not wanted
+            else "set gain.inverting: null to accept either sign"
+        )
+        return [
+            Problem(
+                "gain.target",
+                f"{shown:g}",
+                f"a gain sign some topology of the spec gives: no topology in the spec "
+                f"({', '.join(spec.topologies)}) gives {sign} gain; {other}",
+            )
+        ]
+    return [
+        Problem(
+            "topologies",
+            list(spec.topologies),
+            f"at least one topology that can meet the spec: {eligibility_text(spec, verdicts)}",
+        )
+    ]
 
 
 def validate_spec(spec: Spec, catalog: Catalog) -> list[Verdict]:
@@ -135,13 +154,22 @@ def validate_spec(spec: Spec, catalog: Catalog) -> list[Verdict]:
     used = {d for v in verdicts if v.eligible for d in v.devices}
     if used:  # a device none of the eligible topologies is built with
         known = set(str(i) for i in catalog.transistors["id"])
-        problems += [Problem(f"devices[{i}]", d, f"a device some eligible topology is built with: {d} is "
-                             f"{_traits_words((device_traits(catalog, d)[0],), device_traits(catalog, d)[1])}, and "
-                             + ", ".join(f"{v.topology} is built with "
-                                         + _traits_words(get_topology(v.topology).polarities,
-                                                         get_topology(v.topology).device_kind)
-                                         for v in verdicts if v.eligible))
-                     for i, d in enumerate(spec.devices) if d in known and d not in used]
+        problems += [
+            Problem(
+                f"devices[{i}]",
+                d,
+                f"a device some eligible topology is built with: {d} is "
+                f"{_traits_words((device_traits(catalog, d)[0],), device_traits(catalog, d)[1])}, and "
+                + ", ".join(
+                    f"{v.topology} is built with "
+                    + _traits_words(get_topology(v.topology).polarities, get_topology(v.topology).device_kind)
+                    for v in verdicts
+                    if v.eligible
+                ),
+            )
+            for i, d in enumerate(spec.devices)
+            if d in known and d not in used
+        ]
     if problems:
         raise InputError(problems, title=TITLE)
     return verdicts

@@ -9,6 +9,7 @@ the heartbeat check and retried by another worker (see ``optimizer/storage.py``)
 
 A worker stops cleanly (after the batch in hand) on SIGTERM or SIGINT.
 """
+
 from __future__ import annotations
 
 import logging
@@ -49,8 +50,13 @@ def work_once(storage, *, should_stop: Callable[[], bool], seed_offset: int = 0)
             continue
         seen: list[int] = []  # finished-trial counts at the start of each batch
         try:
-            run_search(storage, status["id"], should_stop=should_stop, seed_offset=seed_offset,
-                       progress=lambda finished, budget: seen.append(finished))  # noqa: B023 (called within this run)
+            run_search(
+                storage,
+                status["id"],
+                should_stop=should_stop,
+                seed_offset=seed_offset,
+                progress=lambda finished, budget: seen.append(finished),  # noqa: B023 (called within this run)
+            )
         except InputError as exc:  # a search deleted meanwhile, or a stored spec that no longer fits
             log.warning("search %s skipped: %s", status["id"], exc)
             continue
@@ -62,8 +68,7 @@ def work_once(storage, *, should_stop: Callable[[], bool], seed_offset: int = 0)
     return done
 
 
-def run_worker(storage_url: str, *, poll: float = 2.0, once: bool = False,
-               stop: threading.Event | None = None) -> int:
+def run_worker(storage_url: str, *, poll: float = 2.0, once: bool = False, stop: threading.Event | None = None) -> int:
     """Work until stopped (SIGTERM/SIGINT, or ``stop`` set); with ``once``, until no stored
     search has budget left. Idle passes sleep ``poll`` seconds. Returns the trials finished."""
     from optimizer.search import list_searches

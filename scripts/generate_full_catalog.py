@@ -5,6 +5,7 @@ aluminium electrolytics 10 pF..1000 uF, no stock tracking, nominal prices.
 Deterministic: running it again reproduces the committed files byte for byte.
 Usage: python3 scripts/generate_full_catalog.py [OUT_DIR]
 """
+
 from __future__ import annotations
 
 import csv
@@ -40,8 +41,18 @@ def resistor_rows() -> list[list[str]]:
     for series, digits, price in (("E24", 2, "0.008"), ("E96", 3, "0.012")):
         for value in series_values(series, 1.0, 10e6):
             code = format_rkm(value)
-            rows.append([f"R-{series}-{code}", number(value, digits), series,
-                         repr(customary_tolerance(series)), "0.1", "0603", price, ""])
+            rows.append(
+                [
+                    f"R-{series}-{code}",
+                    number(value, digits),
+                    series,
+                    repr(customary_tolerance(series)),
+                    "0.1",
+                    "0603",
+                    price,
+                    "",
+                ]
+            )
     return rows
 
 
@@ -55,8 +66,18 @@ def capacitor_rows() -> list[list[str]]:
             continue
         film_price = "0.10" if value <= 1.0001e-8 else "0.16" if value <= 1.0001e-7 else "0.30"
         rows.append([f"C-FLM-{code}", number(value, 2), "0.05", "63", "film", "false", film_price, ""])
-        rows.append([f"C-X7R-{code}", number(value, 2), "0.1", "50", "X7R", "false",
-                     "0.02" if value <= 1.0001e-7 else "0.05", ""])
+        rows.append(
+            [
+                f"C-X7R-{code}",
+                number(value, 2),
+                "0.1",
+                "50",
+                "X7R",
+                "false",
+                "0.02" if value <= 1.0001e-7 else "0.05",
+                "",
+            ]
+        )
     for value in series_values("E6", 1.01e-6, 1000e-6):
         code = format_rkm(value, ohms=False)
         volts = "35" if value <= 1.0001e-4 else "25"
@@ -70,7 +91,7 @@ def transistor_rows() -> tuple[list[str], list[list[str]]]:
     with (CATALOGS / "bench_stock" / "transistors.csv").open(newline="", encoding="utf-8") as handle:
         header, *rows = list(csv.reader(handle))
     stock = header.index("stock_qty")
-    return header, [row[:stock] + [""] + row[stock + 1:] for row in rows]
+    return header, [row[:stock] + [""] + row[stock + 1 :] for row in rows]
 
 
 def generate(out_dir: Path) -> None:
@@ -78,10 +99,14 @@ def generate(out_dir: Path) -> None:
     out_dir.mkdir(parents=True, exist_ok=True)
     header, transistors = transistor_rows()
     tables = {
-        "resistors.csv": (["part_id", "value", "series", "tolerance", "power_rating", "package",
-                           "unit_price", "stock_qty"], resistor_rows()),
-        "capacitors.csv": (["part_id", "value", "tolerance", "voltage_rating", "dielectric", "polarised",
-                            "unit_price", "stock_qty"], capacitor_rows()),
+        "resistors.csv": (
+            ["part_id", "value", "series", "tolerance", "power_rating", "package", "unit_price", "stock_qty"],
+            resistor_rows(),
+        ),
+        "capacitors.csv": (
+            ["part_id", "value", "tolerance", "voltage_rating", "dielectric", "polarised", "unit_price", "stock_qty"],
+            capacitor_rows(),
+        ),
         "transistors.csv": (header, transistors),
     }
     for name, (columns, rows) in tables.items():

@@ -1,5 +1,6 @@
 """Test-suite set-up: the helpers beside the tests (ngspice harness, design sets)
 are importable as plain modules."""
+
 import sys
 from pathlib import Path
 

@@ -1,5 +1,6 @@
 """Checks shared by the two JFET stages' test modules: ngspice agreement on the stage's
 designs of spice_designs.jfet_check_designs, and the IDSS/VP corners simulated in ngspice."""
+
 from __future__ import annotations
 
 import dataclasses
@@ -22,9 +23,12 @@ def designs_of(topology: str) -> list[CheckDesign]:
 
 def outside_tolerance(design: CheckDesign) -> list[str]:
     """Every metric of ``design`` outside its ngspice tolerance (empty when all agree)."""
-    return [f"{r['metric']}: model {r['model']:.4g}, ngspice {r['simulator']:.4g}, "
-            f"error {r['error']:+.3g} (tolerance {r['tolerance']:g} {r['kind']})"
-            for r in agreement_rows(design) if not r["within"]]
+    return [
+        f"{r['metric']}: model {r['model']:.4g}, ngspice {r['simulator']:.4g}, "
+        f"error {r['error']:+.3g} (tolerance {r['tolerance']:g} {r['kind']})"
+        for r in agreement_rows(design)
+        if not r["within"]
+    ]
 
 
 def corner_model(device: JFET, u: float) -> dict[str, float]:
@@ -50,6 +54,7 @@ def corner_errors(design: CheckDesign, temperatures: tuple[float, ...] = (0.0, 2
             vto = card["VTO"] - card["TCV"] * (temperature - 27.0)  # ngspice's VTO(T)
             saturated = spice["v_drain"] - spice["v_source"] > spice["v_gate"] - spice["v_source"] - vto
             model = float(op["ic"][0])
-            out.append((temperature, u, model, spice["ic"], model / spice["ic"] - 1.0, bool(op["active"][0]),
-                        bool(saturated)))
+            out.append(
+                (temperature, u, model, spice["ic"], model / spice["ic"] - 1.0, bool(op["active"][0]), bool(saturated))
+            )
     return out

@@ -13,6 +13,7 @@ Where the server comes from, in order:
 Fixtures: ``postgres_server`` (session; the admin URL) and ``postgres_url`` (module; the URL
 of a new, empty database, dropped afterwards).
 """
+
 from __future__ import annotations
 
 import glob
@@ -74,8 +75,7 @@ class ThrowawayCluster:
     def __init__(self) -> None:
         self.bindir = _pg_bindir()
         if self.bindir is None:
-            raise RuntimeError("no PostgreSQL server binaries (initdb) found; "
-                               "install Debian's postgresql package")
+            raise RuntimeError("no PostgreSQL server binaries (initdb) found; install Debian's postgresql package")
         self.as_user: list[str] = []
         if os.geteuid() == 0:
             runuser = shutil.which("runuser")
@@ -96,22 +96,29 @@ class ThrowawayCluster:
             shutil.chown(self.root, user="postgres")
 
     def _run(self, *args: str, timeout: float = 120) -> None:
-        subprocess.run([*self.as_user, *args], check=True, timeout=timeout,
-                       stdout=subprocess.PIPE, stderr=subprocess.STDOUT, cwd=self.root)
+        subprocess.run(
+            [*self.as_user, *args],
+            check=True,
+            timeout=timeout,
+            stdout=subprocess.PIPE,
+            stderr=subprocess.STDOUT,
+            cwd=self.root,
+        )
 
     def start(self) -> str:
-        self._run(f"{self.bindir}/initdb", "-D", str(self.data), "-U", "postgres",
-                  "--auth=trust", "-E", "UTF8", "--locale=C")
+        self._run(
+            f"{self.bindir}/initdb", "-D", str(self.data), "-U", "postgres", "--auth=trust", "-E", "UTF8", "--locale=C"
+        )
         options = f"-c listen_addresses=127.0.0.1 -p {self.port} -k {self.root} -c fsync=off"
-        self._run(f"{self.bindir}/pg_ctl", "-D", str(self.data), "-l", str(self.log),
-                  "-o", options, "-w", "-t", "60", "start")
+        self._run(
+            f"{self.bindir}/pg_ctl", "-D", str(self.data), "-l", str(self.log), "-o", options, "-w", "-t", "60", "start"
+        )
         return f"postgresql://postgres@127.0.0.1:{self.port}/postgres"
 
     def stop(self) -> None:
         try:
             if (self.data / "postmaster.pid").exists():
-                self._run(f"{self.bindir}/pg_ctl", "-D", str(self.data), "-m", "fast", "-w", "stop",
-                          timeout=60)
+                self._run(f"{self.bindir}/pg_ctl", "-D", str(self.data), "-m", "fast", "-w", "stop", timeout=60)
         finally:
             shutil.rmtree(self.root, ignore_errors=True)
 
@@ -162,8 +169,10 @@ def postgres_server():
         detail = getattr(exc, "stdout", b"") or b""
         log = cluster.log.read_text(errors="replace")[-500:] if cluster.log.exists() else ""
         cluster.stop()
-        _unavailable(f"{ENV_URL} is not set and a throwaway cluster did not start: {exc} "
-                     f"{detail.decode(errors='replace')[-500:]} {log}")
+        _unavailable(
+            f"{ENV_URL} is not set and a throwaway cluster did not start: {exc} "
+            f"{detail.decode(errors='replace')[-500:]} {log}"
+        )
     try:
         yield url
     finally:

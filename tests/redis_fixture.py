@@ -4,6 +4,7 @@ The server runs on a free loopback port with its data in a temporary folder, the
 append-only file on (``appendfsync`` as given: everysec by default), and is stopped by its
 own process id. Tests skip (saying why) where redis-server is absent, unless CI is set.
 """
+
 from __future__ import annotations
 
 import shutil
@@ -34,10 +35,28 @@ class ThrowawayRedis:
         if self.binary is None:
             raise RuntimeError("redis-server not found (Debian: apt-get install redis-server)")
         self.proc = subprocess.Popen(
-            [self.binary, "--port", str(self.port), "--bind", "127.0.0.1", "--dir", str(self.root),
-             "--appendonly", "yes", "--appendfsync", self.appendfsync, "--save", "", "--daemonize", "no",
-             "--logfile", str(self.root / "redis.log")],
-            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            [
+                self.binary,
+                "--port",
+                str(self.port),
+                "--bind",
+                "127.0.0.1",
+                "--dir",
+                str(self.root),
+                "--appendonly",
+                "yes",
+                "--appendfsync",
+                self.appendfsync,
+                "--save",
+                "",
+                "--daemonize",
+                "no",
+                "--logfile",
+                str(self.root / "redis.log"),
+            ],
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+        )
         deadline = time.monotonic() + 30
         while time.monotonic() < deadline:
             try:

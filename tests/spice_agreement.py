@@ -3,6 +3,7 @@
 Shared by tests/test_spice_agreement.py (asserts every row is within tolerance) and
 benchmarks/spice_agreement.py (writes the committed table).
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -58,21 +59,22 @@ def agreement_rows(design: CheckDesign) -> list[dict]:
     model_card = {**design.device.spice_model(), "polarity": design.device.polarity}
     args = (design.topology, design.parts, model_card, design.conditions)
     simulated = {"ic": spice_operating_point(*args)["ic"]}
-    simulated.update({k: v for k, v in spice_midband(*args).items()
-                      if k in ("gain", "input_impedance", "output_impedance")})
+    simulated.update(
+        {k: v for k, v in spice_midband(*args).items() if k in ("gain", "input_impedance", "output_impedance")}
+    )
     simulated.update(spice_response(*args))
     v_in, v_out, h = held_transfer(*args)
     simulated["swing_vpp"] = swing_of(design.topology, v_in, v_out, h)
     simulated["clip_vpp"] = clip_of(design.topology, v_in, v_out, float(design.conditions.supply))
     simulated["noise_ein_v"] = spice_noise(*args)
     simulated["noise_figure_db"] = spice_noise_figure(*args)
-    frequencies = (design.conditions.ripple_frequency,
-                   math.sqrt(design.conditions.band[0] * design.conditions.band[1]))
+    frequencies = (design.conditions.ripple_frequency, math.sqrt(design.conditions.band[0] * design.conditions.band[1]))
     simulated["psrr_ripple_db"], simulated["psrr_mid_db"] = spice_psrr(*args, frequencies)
     flicker = dataclasses.replace(design.device, KF=FLICKER_KF, AF=1.0)
     metrics["noise_ein_flicker"] = float(topology.evaluate(parts, flicker, design.conditions).metrics["noise_ein_v"][0])
-    simulated["noise_ein_flicker"] = spice_noise(design.topology, design.parts, {**flicker.spice_model(), "polarity": flicker.polarity},
-                                                 design.conditions)
+    simulated["noise_ein_flicker"] = spice_noise(
+        design.topology, design.parts, {**flicker.spice_model(), "polarity": flicker.polarity}, design.conditions
+    )
     level = THD_FRACTION_OF_CLIP * metrics["clip_vpp"]
     thd_conditions = type(design.conditions)(**{**design.conditions.__dict__, "signal_vpp": level})
     thd_result = topology.evaluate(parts, design.device, thd_conditions, full=False, thd_solve=True)
@@ -91,9 +93,16 @@ def agreement_rows(design: CheckDesign) -> list[dict]:
         if metric not in simulated:  # no overall loop: nothing to compare
             continue
         error = _error(metrics[metric], simulated[metric], kind)
-        row = {"design": design.name, "metric": metric, "model": metrics[metric],
-               "simulator": simulated[metric], "error": error, "tolerance": tolerance,
-               "kind": kind, "within": abs(error) <= tolerance}
+        row = {
+            "design": design.name,
+            "metric": metric,
+            "model": metrics[metric],
+            "simulator": simulated[metric],
+            "error": error,
+            "tolerance": tolerance,
+            "kind": kind,
+            "within": abs(error) <= tolerance,
+        }
         if metric in hand:
             row["hand"] = hand[metric]
             row["hand_error"] = _error(hand[metric], simulated[metric], kind)
@@ -103,6 +112,9 @@ def agreement_rows(design: CheckDesign) -> list[dict]:
 
 def outside_tolerance(rows: list[dict]) -> list[str]:
     """A line per row of :func:`agreement_rows` outside its tolerance (empty: all agree)."""
-    return [f"{r['metric']}: model {r['model']:.4g}, ngspice {r['simulator']:.4g}, "
-            f"error {r['error']:+.3g} (tolerance {r['tolerance']:g} {r['kind']})"
-            for r in rows if not r["within"]]
+    return [
+        f"{r['metric']}: model {r['model']:.4g}, ngspice {r['simulator']:.4g}, "
+        f"error {r['error']:+.3g} (tolerance {r['tolerance']:g} {r['kind']})"
+        for r in rows
+        if not r["within"]
+    ]

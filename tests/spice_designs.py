@@ -5,6 +5,7 @@ Hand-method designs (optimizer.synthesis, unrounded) over the topologies, suppli
 loads: varied enough to exercise every term of the models, and the same designs show
 how far the textbook estimate itself lands from the simulator.
 """
+
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
@@ -34,9 +35,24 @@ class CheckDesign:
 
 def check_device(hfe: float) -> Device:
     """An invented small-signal NPN with typical parameters (from memory), BF = hfe."""
-    return Device(id=f"check-npn-{hfe:g}", polarity="npn", hfe_min=hfe, hfe_typ=hfe, hfe_max=hfe,
-                  IS=1e-14, BF=hfe, NF=1.0, VAF=100.0, RB=50.0, CJE=10e-12, CJC=4e-12, TF=0.4e-9,
-                  vce_sat=0.2, vceo_max=45.0, p_max=0.5)
+    return Device(
+        id=f"check-npn-{hfe:g}",
+        polarity="npn",
+        hfe_min=hfe,
+        hfe_typ=hfe,
+        hfe_max=hfe,
+        IS=1e-14,
+        BF=hfe,
+        NF=1.0,
+        VAF=100.0,
+        RB=50.0,
+        CJE=10e-12,
+        CJC=4e-12,
+        TF=0.4e-9,
+        vce_sat=0.2,
+        vceo_max=45.0,
+        p_max=0.5,
+    )
 
 
 # (topology, supply V, |gain| V/V, Ic A, hFE, source ohm, load ohm)
@@ -86,22 +102,29 @@ def check_designs() -> list[CheckDesign]:
     """All bipolar designs of the ngspice agreement set (60, every bipolar topology; 4 with a decoupling RC)."""
     designs = []
     for topology, supply, gain, ic, hfe, rs, rl in _CASES:
-        req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
-                               f_low=20.0, collector_current=ic, hfe=hfe)
+        req = HandRequirements(
+            supply=supply, gain=gain, load_impedance=rl, source_impedance=rs, f_low=20.0, collector_current=ic, hfe=hfe
+        )
         parts = get_topology(topology).hand_design(req)
-        conditions = Conditions(supply=supply, source_impedance=float(rs), load_impedance=float(rl),
-                                band=(20.0, 20000.0), temperature=27.0)
+        conditions = Conditions(
+            supply=supply, source_impedance=float(rs), load_impedance=float(rl), band=(20.0, 20000.0), temperature=27.0
+        )
         name = f"{topology}-{supply:g}V-A{gain:g}-hfe{hfe}"
-        designs.append(CheckDesign(name, topology, parts, check_device(hfe), conditions,
-                                   hand_gain=-gain, hand_ic=ic))
+        designs.append(CheckDesign(name, topology, parts, check_device(hfe), conditions, hand_gain=-gain, hand_ic=ic))
     for d in (designs[i] for i in _DECOUPLED):
         r_dec = _DECOUPLE_DROP * d.conditions.supply / (1.1 * d.hand_ic)
         parts = {**d.parts, "r_decouple": r_dec}
         allowed = np.geomspace(1e-6, 1e-2, 41)
-        parts["c_decouple"] = float(size_decoupling(get_topology(d.topology), {k: np.array([v]) for k, v in parts.items()},
-                                                    d.device, d.conditions, allowed)[0])
-        designs.append(CheckDesign(f"{d.name}-rc", d.topology, parts, d.device, d.conditions,
-                                   hand_gain=d.hand_gain, hand_ic=d.hand_ic))
+        parts["c_decouple"] = float(
+            size_decoupling(
+                get_topology(d.topology), {k: np.array([v]) for k, v in parts.items()}, d.device, d.conditions, allowed
+            )[0]
+        )
+        designs.append(
+            CheckDesign(
+                f"{d.name}-rc", d.topology, parts, d.device, d.conditions, hand_gain=d.hand_gain, hand_ic=d.hand_ic
+            )
+        )
     return designs + pair_designs() + follower_designs()
 
 
@@ -125,14 +148,22 @@ def pair_designs() -> list[CheckDesign]:
     """The feedback_pair designs of the agreement set (8; hand gain +target, hand Ic q1's half)."""
     designs = []
     for supply, gain, ic, hfe, rs, rl, cl in _PAIR_CASES:
-        req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
-                               f_low=20.0, collector_current=ic, hfe=hfe)
+        req = HandRequirements(
+            supply=supply, gain=gain, load_impedance=rl, source_impedance=rs, f_low=20.0, collector_current=ic, hfe=hfe
+        )
         parts = get_topology("feedback_pair").hand_design(req)
-        conditions = Conditions(supply=supply, source_impedance=float(rs), load_impedance=float(rl),
-                                band=(20.0, 20000.0), temperature=27.0, load_capacitance=cl)
+        conditions = Conditions(
+            supply=supply,
+            source_impedance=float(rs),
+            load_impedance=float(rl),
+            band=(20.0, 20000.0),
+            temperature=27.0,
+            load_capacitance=cl,
+        )
         name = f"feedback_pair-{supply:g}V-A{gain:g}-hfe{hfe}" + (f"-CL{cl * 1e9:g}n" if cl else "")
-        designs.append(CheckDesign(name, "feedback_pair", parts, check_device(hfe), conditions,
-                                   hand_gain=gain, hand_ic=0.5 * ic))
+        designs.append(
+            CheckDesign(name, "feedback_pair", parts, check_device(hfe), conditions, hand_gain=gain, hand_ic=0.5 * ic)
+        )
     return designs
 
 
@@ -170,16 +201,28 @@ def jfet_check_designs() -> list[CheckDesign]:
     designs = []
     for topology, supply, gain, i_d, device_id, rs, rl in _JFET_CASES:
         device = device_from_row(catalog.transistor(device_id))
-        req = HandRequirements(supply=supply, gain=gain, load_impedance=rl, source_impedance=rs,
-                               f_low=20.0, collector_current=i_d, idss=device.idss_typ, vp=-device.VTO,
-                               vce_sat=0.0)
+        req = HandRequirements(
+            supply=supply,
+            gain=gain,
+            load_impedance=rl,
+            source_impedance=rs,
+            f_low=20.0,
+            collector_current=i_d,
+            idss=device.idss_typ,
+            vp=-device.VTO,
+            vce_sat=0.0,
+        )
         parts = get_topology(topology).hand_design(req)
-        conditions = Conditions(supply=supply, source_impedance=float(rs), load_impedance=float(rl),
-                                band=(20.0, 20000.0), temperature=27.0)
+        conditions = Conditions(
+            supply=supply, source_impedance=float(rs), load_impedance=float(rl), band=(20.0, 20000.0), temperature=27.0
+        )
         name = f"{topology}-{supply:g}V-A{gain:g}-{device_id}-rs{rs:g}"
         hand_gain = -gain if get_topology(topology).inverting else gain
-        designs.append(CheckDesign(name, topology, parts, device, conditions, hand_gain=hand_gain,
-                                   hand_ic=min(i_d, 0.25 * device.idss_typ)))
+        designs.append(
+            CheckDesign(
+                name, topology, parts, device, conditions, hand_gain=hand_gain, hand_ic=min(i_d, 0.25 * device.idss_typ)
+            )
+        )
     return designs
 
 
@@ -213,13 +256,28 @@ def follower_designs() -> list[CheckDesign]:
     hand gain is the textbook's unity."""
     designs = []
     for topology, supply, ie, hfe, rs, rl, cl in _FOLLOWER_CASES:
-        req = HandRequirements(supply=supply, gain=1.0, load_impedance=rl, source_impedance=rs,
-                               f_low=20.0, collector_current=ie, hfe=hfe)
-        conditions = Conditions(supply=supply, source_impedance=float(rs), load_impedance=float(rl),
-                                band=(20.0, 20000.0), temperature=27.0, load_capacitance=cl)
-        designs.append(CheckDesign(f"{topology}-{supply:g}V-I{ie * 1e3:g}mA-hfe{hfe}-rs{rs:g}", topology,
-                                   get_topology(topology).hand_design(req), check_device(hfe), conditions,
-                                   hand_gain=1.0, hand_ic=ie))
+        req = HandRequirements(
+            supply=supply, gain=1.0, load_impedance=rl, source_impedance=rs, f_low=20.0, collector_current=ie, hfe=hfe
+        )
+        conditions = Conditions(
+            supply=supply,
+            source_impedance=float(rs),
+            load_impedance=float(rl),
+            band=(20.0, 20000.0),
+            temperature=27.0,
+            load_capacitance=cl,
+        )
+        designs.append(
+            CheckDesign(
+                f"{topology}-{supply:g}V-I{ie * 1e3:g}mA-hfe{hfe}-rs{rs:g}",
+                topology,
+                get_topology(topology).hand_design(req),
+                check_device(hfe),
+                conditions,
+                hand_gain=1.0,
+                hand_ic=ie,
+            )
+        )
     return designs
 
 
@@ -245,8 +303,17 @@ _SPLIT_CASES = [
 _VBE_HAND, _BASE_DROP = 0.65, 0.1  # V: the hand method's Vbe and the drop of Ib across r_bottom
 
 
-def split_hand_design(topology: str, v_pos: float, v_neg: float, gain: float, ic: float, hfe: float,
-                      rs: float, rl: float, f_low: float = 20.0) -> tuple[dict[str, float], float]:
+def split_hand_design(
+    topology: str,
+    v_pos: float,
+    v_neg: float,
+    gain: float,
+    ic: float,
+    hfe: float,
+    rs: float,
+    rl: float,
+    f_low: float = 20.0,
+) -> tuple[dict[str, float], float]:
     """The hand method on a split supply (parts in ohm and F, and the signed gain it predicts):
     the base at ground through r_bottom (Ib dropping _BASE_DROP across it), the emitter
     resistors carrying Ic from -Vbe to the negative rail, the collector centred between the
@@ -257,13 +324,18 @@ def split_hand_design(topology: str, v_pos: float, v_neg: float, gain: float, ic
     rc = v_pos / (2.0 * ic)
     rac = rc * rl / (rc + rl)
     re = re_total if topology == "divider_ce" else rac / gain
-    parts = {"r_bottom": r_bottom, "r_collector": rc, "r_emitter": re,
-             "c_in": coupling_capacitor(r_bottom * hfe * re / (r_bottom + hfe * re) + rs, f_low),
-             "c_out": coupling_capacitor(rc + rl, f_low)}
+    parts = {
+        "r_bottom": r_bottom,
+        "r_collector": rc,
+        "r_emitter": re,
+        "c_in": coupling_capacitor(r_bottom * hfe * re / (r_bottom + hfe * re) + rs, f_low),
+        "c_out": coupling_capacitor(rc + rl, f_low),
+    }
     if topology == "divider_ce_split":
         parts["r_emitter_dc"] = re_total - re
-        parts["c_emitter"] = coupling_capacitor(parts["r_emitter_dc"] * (re + 0.026 / ic)
-                                                / (parts["r_emitter_dc"] + re + 0.026 / ic), f_low)
+        parts["c_emitter"] = coupling_capacitor(
+            parts["r_emitter_dc"] * (re + 0.026 / ic) / (parts["r_emitter_dc"] + re + 0.026 / ic), f_low
+        )
     return parts, -rac / re
 
 
@@ -277,8 +349,14 @@ def polarity_designs() -> list[CheckDesign]:
     for i, d in enumerate(base):
         pnp = replace(d.device, id=d.device.id.replace("npn", "pnp"), polarity="pnp")
         below = float(i % 2)
-        designs.append(replace(d, name=f"{d.name}-pnp-{'negative' if below else 'positive'}", device=pnp,
-                               conditions=replace(d.conditions, below_ground=below)))
+        designs.append(
+            replace(
+                d,
+                name=f"{d.name}-pnp-{'negative' if below else 'positive'}",
+                device=pnp,
+                conditions=replace(d.conditions, below_ground=below),
+            )
+        )
         designs.append(replace(d, name=f"{d.name}-npn-negative", conditions=replace(d.conditions, below_ground=1.0)))
     for topology in POLARITY_TOPOLOGIES:
         for i, (v_pos, v_neg_bypassed, v_neg_unbypassed, gain, ic, hfe, rs, rl) in enumerate(_SPLIT_CASES):
@@ -289,10 +367,25 @@ def polarity_designs() -> list[CheckDesign]:
             if i % 2:  # the PNP stage is the mirror image: its emitter side is the positive rail
                 device = replace(device, id=device.id.replace("npn", "pnp"), polarity="pnp")
                 v_pos, v_neg = -v_neg, -v_pos
-            conditions = Conditions(supply=span, source_impedance=float(rs), load_impedance=float(rl),
-                                    band=(20.0, 20000.0), temperature=27.0, below_ground=-v_neg / span)
-            designs.append(CheckDesign(f"{topology}-split+{v_pos:g}/{v_neg:g}V-hfe{hfe}-{device.polarity}", topology,
-                                       parts, device, conditions, hand_gain=hand_gain, hand_ic=ic))
+            conditions = Conditions(
+                supply=span,
+                source_impedance=float(rs),
+                load_impedance=float(rl),
+                band=(20.0, 20000.0),
+                temperature=27.0,
+                below_ground=-v_neg / span,
+            )
+            designs.append(
+                CheckDesign(
+                    f"{topology}-split+{v_pos:g}/{v_neg:g}V-hfe{hfe}-{device.polarity}",
+                    topology,
+                    parts,
+                    device,
+                    conditions,
+                    hand_gain=hand_gain,
+                    hand_ic=ic,
+                )
+            )
     return designs
 
 
@@ -313,16 +406,31 @@ def later_polarity_designs() -> list[CheckDesign]:
         for d in [d for d in pair_designs() + follower_designs() if d.topology == topology][:2]:
             pnp = replace(d.device, id=d.device.id.replace("npn", "pnp"), polarity="pnp")
             designs.append(replace(d, name=f"{d.name}-pnp-positive", device=pnp))
-            designs.append(replace(d, name=f"{d.name}-npn-negative", conditions=replace(d.conditions, below_ground=1.0)))
+            designs.append(
+                replace(d, name=f"{d.name}-npn-negative", conditions=replace(d.conditions, below_ground=1.0))
+            )
             c = d.conditions
             if "split" not in get_topology(topology).supplies:
                 continue
-            req = HandRequirements(supply=c.supply, gain=1.0, load_impedance=c.load_impedance,
-                                   source_impedance=c.source_impedance, f_low=c.band[0],
-                                   collector_current=d.hand_ic, hfe=d.device.hfe_typ)
+            req = HandRequirements(
+                supply=c.supply,
+                gain=1.0,
+                load_impedance=c.load_impedance,
+                source_impedance=c.source_impedance,
+                f_low=c.band[0],
+                collector_current=d.hand_ic,
+                hfe=d.device.hfe_typ,
+            )
             for device, below in ((d.device, 0.5), (pnp, 1.0 / 3.0)):
                 parts = on_split_supply(d.parts, req, below if device.polarity == "npn" else 1.0 - below)
                 assert parts is not None
-                designs.append(replace(d, name=f"{d.name}-{device.polarity}-split{below:.2f}", parts=parts,
-                                       device=device, conditions=replace(c, below_ground=below)))
+                designs.append(
+                    replace(
+                        d,
+                        name=f"{d.name}-{device.polarity}-split{below:.2f}",
+                        parts=parts,
+                        device=device,
+                        conditions=replace(c, below_ground=below),
+                    )
+                )
     return designs

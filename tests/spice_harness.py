@@ -6,6 +6,7 @@ netlist from optimizer.netlist with a ``.control`` block that prints scalars (``
 lines, 12 digits) or writes waveforms with ``wrdata`` into a temporary directory.
 A failed run raises SpiceError carrying the netlist and ngspice's output.
 """
+
 from __future__ import annotations
 
 import math
@@ -24,8 +25,11 @@ from optimizer.netlist import mid_band_frequency, nominal_temperature, rail_node
 
 NGSPICE = shutil.which("ngspice")
 TIMEOUT_S = 60.0
-_FAILED = re.compile(r"^\s*error|simulation interrupted|could not find|singular matrix|"
-                     r"timestep too small", re.IGNORECASE | re.MULTILINE)
+_FAILED = re.compile(
+    r"^\s*error|simulation interrupted|could not find|singular matrix|"
+    r"timestep too small",
+    re.IGNORECASE | re.MULTILINE,
+)
 _SCALAR = re.compile(r"^\s*([A-Za-z_][\w]*)\s*=\s*([-+0-9.eE]+|nan|inf)\s*$", re.MULTILINE)
 
 
@@ -33,8 +37,9 @@ class SpiceError(RuntimeError):
     """ngspice failed or did not print what the harness asked for."""
 
 
-def _netlist(topology: str, parts: Mapping[str, float], model: Mapping[str, Any], conditions: Any,
-             **kwargs: Any) -> str:
+def _netlist(
+    topology: str, parts: Mapping[str, float], model: Mapping[str, Any], conditions: Any, **kwargs: Any
+) -> str:
     """spice_netlist of the stage; ``model`` may carry the device's "polarity" ("npn" when absent)
     beside its SPICE keys, so a PNP stage is written with a PNP model and mirrored rails."""
     card = {k: v for k, v in model.items() if k != "polarity"}
@@ -43,8 +48,9 @@ def _netlist(topology: str, parts: Mapping[str, float], model: Mapping[str, Any]
 
 def _rails(model: Mapping[str, Any], conditions: Any) -> list[str]:
     """The supply sources of the netlist (not ground): 'vcc' (positive rail) and/or 'vee' (negative)."""
-    found = rail_nodes(float(conditions.supply), str(model.get("polarity", "npn")),
-                       float(getattr(conditions, "below_ground", 0.0))).values()
+    found = rail_nodes(
+        float(conditions.supply), str(model.get("polarity", "npn")), float(getattr(conditions, "below_ground", 0.0))
+    ).values()
     return sorted({name for name, _ in found if name != "0"})
 
 
@@ -53,11 +59,19 @@ def ngspice_available() -> bool:
     return NGSPICE is not None
 
 
-def _simulate(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-              conditions: Any, control: str, *, elements: str = "", waveforms: tuple[str, ...] = (),
-              amplitude: float = 0.01, frequency: float | None = None,
-              transform: Callable[[str], str] | None = None,
-              ) -> tuple[dict[str, float], dict[str, np.ndarray]]:
+def _simulate(
+    topology: str,
+    parts: Mapping[str, float],
+    model: Mapping[str, float],
+    conditions: Any,
+    control: str,
+    *,
+    elements: str = "",
+    waveforms: tuple[str, ...] = (),
+    amplitude: float = 0.01,
+    frequency: float | None = None,
+    transform: Callable[[str], str] | None = None,
+) -> tuple[dict[str, float], dict[str, np.ndarray]]:
     """Run one netlist with ``control`` (``{dir}`` = output directory) in ngspice.
 
     ``transform`` (netlist text -> netlist text) edits the circuit before the run. Returns
@@ -68,15 +82,15 @@ def _simulate(topology: str, parts: Mapping[str, float], model: Mapping[str, flo
     with tempfile.TemporaryDirectory(prefix="stagefit-spice-") as tmp:
         body = control.replace("{dir}", tmp)
         analyses = f"{elements}\n.control\nset noaskquit\nset numdgt=12\n{body}\nquit\n.endc"
-        netlist = _netlist(topology, parts, model, conditions, analyses=analyses,
-                           amplitude=amplitude, frequency=frequency)
+        netlist = _netlist(
+            topology, parts, model, conditions, analyses=analyses, amplitude=amplitude, frequency=frequency
+        )
         if transform is not None:
             netlist = transform(netlist)
         path = Path(tmp) / "stage.cir"
         path.write_text(netlist)
         try:
-            run = subprocess.run([NGSPICE, "-b", str(path)], capture_output=True, text=True,
-                                 timeout=TIMEOUT_S, cwd=tmp)
+            run = subprocess.run([NGSPICE, "-b", str(path)], capture_output=True, text=True, timeout=TIMEOUT_S, cwd=tmp)
         except subprocess.TimeoutExpired as exc:
             raise SpiceError(f"ngspice timed out after {TIMEOUT_S} s\n{netlist}") from exc
         if run.returncode != 0 or _FAILED.search(run.stdout + run.stderr):
@@ -90,8 +104,10 @@ def _simulate(topology: str, parts: Mapping[str, float], model: Mapping[str, flo
 
 
 def _failure(run: subprocess.CompletedProcess, netlist: str, why: str) -> str:
-    return (f"ngspice failed ({why})\n--- stderr ---\n{run.stderr[-3000:]}\n"
-            f"--- stdout ---\n{run.stdout[-3000:]}\n--- netlist ---\n{netlist}")
+    return (
+        f"ngspice failed ({why})\n--- stderr ---\n{run.stderr[-3000:]}\n"
+        f"--- stdout ---\n{run.stdout[-3000:]}\n--- netlist ---\n{netlist}"
+    )
 
 
 def _need(scalars: Mapping[str, float], *names: str) -> list[float]:
@@ -117,8 +133,9 @@ def _ammeters(netlist: str) -> str:
     return "\n".join(lines) + "\n"
 
 
-def spice_operating_point(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                          conditions: Any) -> dict[str, float]:
+def spice_operating_point(
+    topology: str, parts: Mapping[str, float], model: Mapping[str, float], conditions: Any
+) -> dict[str, float]:
     """DC operating point: ic (A, q1; ic2 for q2 of a two-transistor stage, each read by an
     ammeter in the collector), v_base, v_collector, v_emitter (V to ground, those of the stage's
     nodes) and supply_current (A drawn from the positive rail, or sunk by the negative rail when there
@@ -130,36 +147,47 @@ def spice_operating_point(topology: str, parts: Mapping[str, float], model: Mapp
     drawn = "-i(vcc)" if "vcc" in _rails(model, conditions) else "i(vee)"  # a negative rail alone: what it sinks
     if stage.device_kind == "jfet":  # id of j1 as "ic", its nodes by their own names
         drain = next(d for role, d, _, _ in stage.transistor_pins if role == "q1")
-        control = ("op\nlet ic = @j1[id]\nlet v_gate = v(gate)\nlet v_source = v(source)\n"
-                   f"let v_drain = v({drain})\nlet supply_current = -i(vcc)\n"
-                   "print ic v_gate v_source v_drain supply_current")
+        control = (
+            "op\nlet ic = @j1[id]\nlet v_gate = v(gate)\nlet v_source = v(source)\n"
+            f"let v_drain = v({drain})\nlet supply_current = -i(vcc)\n"
+            "print ic v_gate v_source v_drain supply_current"
+        )
         scalars, _ = _simulate(topology, parts, model, conditions, control)
         names = ("ic", "v_gate", "v_source", "v_drain", "supply_current")
         return dict(zip(names, _need(scalars, *names)))
     follower = stage.transistors == 2
-    nodes = tuple(n for n in ("base", "collector", "emitter") if n in stage.node_voltages)  # a follower has no collector
-    control = ("op\nlet ic = abs(i(vam_q1))\n" + "".join(f"let v_{n} = v({n})\n" for n in nodes)
-               + f"let supply_current = {drawn}\n"
-               + ("let ic2 = abs(i(vam_q2))\nprint ic2\n" if follower else "")
-               + f"print ic {' '.join(f'v_{n}' for n in nodes)} supply_current")
+    nodes = tuple(
+        n for n in ("base", "collector", "emitter") if n in stage.node_voltages
+    )  # a follower has no collector
+    control = (
+        "op\nlet ic = abs(i(vam_q1))\n"
+        + "".join(f"let v_{n} = v({n})\n" for n in nodes)
+        + f"let supply_current = {drawn}\n"
+        + ("let ic2 = abs(i(vam_q2))\nprint ic2\n" if follower else "")
+        + f"print ic {' '.join(f'v_{n}' for n in nodes)} supply_current"
+    )
     scalars, _ = _simulate(topology, parts, model, conditions, control, transform=_ammeters)
     names = ("ic", *(f"v_{n}" for n in nodes), "supply_current") + (("ic2",) if follower else ())
     return dict(zip(names, _need(scalars, *names)))
 
 
-def _complex_gain(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                  conditions: Any, frequency: float) -> tuple[complex, float]:
+def _complex_gain(
+    topology: str, parts: Mapping[str, float], model: Mapping[str, float], conditions: Any, frequency: float
+) -> tuple[complex, float]:
     """V(out)/V(sig) and |V(src)/I(Rs)| (ohm) from a one-point .ac at ``frequency`` Hz."""
-    control = (f"ac lin 1 {frequency!r} {frequency!r}\nlet h = v(out)/v(sig)\n"
-               "let g_re = real(h)\nlet g_im = imag(h)\nlet zin = mag(v(src)/(-i(vsig)))\n"
-               "print g_re g_im zin")
+    control = (
+        f"ac lin 1 {frequency!r} {frequency!r}\nlet h = v(out)/v(sig)\n"
+        "let g_re = real(h)\nlet g_im = imag(h)\nlet zin = mag(v(src)/(-i(vsig)))\n"
+        "print g_re g_im zin"
+    )
     scalars, _ = _simulate(topology, parts, model, conditions, control)
     g_re, g_im, zin = _need(scalars, "g_re", "g_im", "zin")
     return complex(g_re, g_im), zin
 
 
-def spice_midband(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                  conditions: Any) -> dict[str, float]:
+def spice_midband(
+    topology: str, parts: Mapping[str, float], model: Mapping[str, float], conditions: Any
+) -> dict[str, float]:
     """Mid-band (band's geometric mean) small-signal figures from .ac.
 
     gain: V(out)/V(sig) as a signed real, |H| with the sign of Re(H) (V/V);
@@ -169,12 +197,16 @@ def spice_midband(topology: str, parts: Mapping[str, float], model: Mapping[str,
     """
     frequency = mid_band_frequency(conditions)
     h, zin = _complex_gain(topology, parts, model, conditions, frequency)
-    unloaded = SimpleNamespace(supply=conditions.supply, source_impedance=conditions.source_impedance,
-                               load_impedance=math.inf, load_capacitance=0.0,
-                               temperature=conditions.temperature, band=conditions.band,
-                               below_ground=getattr(conditions, "below_ground", 0.0))
-    control = (f"alter @vsig[acmag] = 0\nac lin 1 {frequency!r} {frequency!r}\n"
-               "let zout = mag(v(out))\nprint zout")
+    unloaded = SimpleNamespace(
+        supply=conditions.supply,
+        source_impedance=conditions.source_impedance,
+        load_impedance=math.inf,
+        load_capacitance=0.0,
+        temperature=conditions.temperature,
+        band=conditions.band,
+        below_ground=getattr(conditions, "below_ground", 0.0),
+    )
+    control = f"alter @vsig[acmag] = 0\nac lin 1 {frequency!r} {frequency!r}\nlet zout = mag(v(out))\nprint zout"
     scalars, _ = _simulate(topology, parts, model, unloaded, control, elements="Itest 0 out DC 0 AC 1")
     (zout,) = _need(scalars, "zout")
     return {"gain": math.copysign(abs(h), h.real), "input_impedance": zin, "output_impedance": zout}
@@ -193,8 +225,9 @@ def _crossing(f: np.ndarray, mag: np.ndarray, level: float) -> float:
     return float(np.exp(x0 + (np.log(level) - y0) * (x1 - x0) / (y1 - y0)))
 
 
-def spice_response(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                   conditions: Any) -> dict[str, float]:
+def spice_response(
+    topology: str, parts: Mapping[str, float], model: Mapping[str, float], conditions: Any
+) -> dict[str, float]:
     """-3 dB corners f_low, f_high (Hz) of |V(out)/V(sig)| relative to its value at the band's
     geometric mean, from .ac dec 100 over 0.01 Hz..1 GHz (nan if no corner in that range)."""
     control = "ac dec 100 0.01 1e9\nlet h = mag(v(out)/v(sig))\nwrdata {dir}/h.txt h"
@@ -204,8 +237,10 @@ def spice_response(topology: str, parts: Mapping[str, float], model: Mapping[str
     ref = float(np.exp(np.interp(np.log(fm), np.log(f), np.log(mag))))
     above, below = f >= fm, f <= fm
     level = ref / math.sqrt(2.0)
-    return {"f_low": _crossing(f[below][::-1], mag[below][::-1], level),
-            "f_high": _crossing(f[above], mag[above], level)}
+    return {
+        "f_low": _crossing(f[below][::-1], mag[below][::-1], level),
+        "f_high": _crossing(f[above], mag[above], level),
+    }
 
 
 # Swing: the clip level as DESIGN.md defines it (the AC load line, coupling and bypass
@@ -242,12 +277,14 @@ def _hold_capacitors(netlist: str, node_voltages: Mapping[str, float]) -> str:
 
 
 def _capacitor_nodes(netlist: str) -> set[str]:
-    return {node for line in netlist.splitlines() if (f := line.split()) and _held(f[0])
-            for node in f[1:3] if node != "0"}
+    return {
+        node for line in netlist.splitlines() if (f := line.split()) and _held(f[0]) for node in f[1:3] if node != "0"
+    }
 
 
-def held_transfer(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                   conditions: Any) -> tuple[np.ndarray, np.ndarray, complex]:
+def held_transfer(
+    topology: str, parts: Mapping[str, float], model: Mapping[str, float], conditions: Any
+) -> tuple[np.ndarray, np.ndarray, complex]:
     """Static transfer curve (source EMF V, load V) with the capacitors holding their DC, and
     the mid-band .ac gain.
 
@@ -263,15 +300,20 @@ def held_transfer(topology: str, parts: Mapping[str, float], model: Mapping[str,
     voltages = dict(zip(nodes, _need(scalars, *(f"n_{n}" for n in nodes))))
     h, _ = _complex_gain(topology, parts, model, conditions, mid_band_frequency(conditions))
     span = 1.5 * float(conditions.supply) / abs(h)
-    control = (f"dc vsig {-span!r} {span!r} {2.0 * span / (_SWEEP_POINTS - 1)!r}\n"
-               "wrdata {dir}/d.txt v(out)")
-    _, arrays = _simulate(topology, parts, model, conditions, control, waveforms=("d",),
-                          transform=lambda text: _hold_capacitors(text, voltages))
+    control = f"dc vsig {-span!r} {span!r} {2.0 * span / (_SWEEP_POINTS - 1)!r}\nwrdata {{dir}}/d.txt v(out)"
+    _, arrays = _simulate(
+        topology,
+        parts,
+        model,
+        conditions,
+        control,
+        waveforms=("d",),
+        transform=lambda text: _hold_capacitors(text, voltages),
+    )
     return arrays["d"][:, 0], arrays["d"][:, 1], h
 
 
-def spice_clip(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-               conditions: Any) -> float:
+def spice_clip(topology: str, parts: Mapping[str, float], model: Mapping[str, float], conditions: Any) -> float:
     """Hard clip level at the load, V peak-to-peak, on the static transfer curve (:func:`clip_of`)."""
     v_in, v_out, _ = held_transfer(topology, parts, model, conditions)
     return clip_of(topology, v_in, v_out, float(conditions.supply))
@@ -291,15 +333,14 @@ def clip_of(topology: str, v_in: np.ndarray, v_out: np.ndarray, supply: float) -
     centre = int(np.argmin(np.abs(v_in)))
     clipped = slope / slope[centre] < _CLIP_GAIN_FRACTION
     right = np.nonzero(clipped[centre:])[0]
-    left = np.nonzero(clipped[:centre + 1])[0]
+    left = np.nonzero(clipped[: centre + 1])[0]
     if right.size == 0 or left.size == 0:
         raise SpiceError(f"{topology}: no clipping found up to an output of {supply} V")
     amplitude = min(v_in[centre + right[0]], -v_in[left[-1]])
     return float(abs(np.interp(amplitude, v_in, v_out) - np.interp(-amplitude, v_in, v_out)))
 
 
-def spice_swing(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                conditions: Any) -> float:
+def spice_swing(topology: str, parts: Mapping[str, float], model: Mapping[str, float], conditions: Any) -> float:
     """Usable swing at the load, V peak-to-peak, by the 10 % rule (:func:`swing_of`)."""
     v_in, v_out, h = held_transfer(topology, parts, model, conditions)
     return swing_of(topology, v_in, v_out, h)
@@ -316,7 +357,7 @@ def swing_of(topology: str, v_in: np.ndarray, v_out: np.ndarray, h: complex, tol
     gain = math.copysign(abs(h), h.real)
     centre = int(np.argmin(np.abs(v_in)))
     q = np.interp(0.0, v_in, v_out)
-    a = v_in[centre + 1:]
+    a = v_in[centre + 1 :]
     up = np.interp(a, v_in, v_out) - q
     down = np.interp(-a, v_in, v_out) - q
     dev = np.maximum(np.abs(up / (gain * a) - 1.0), np.abs(down / (-gain * a) - 1.0)) - tolerance
@@ -330,14 +371,17 @@ def swing_of(topology: str, v_in: np.ndarray, v_out: np.ndarray, h: complex, tol
     return float(pp[i - 1] + w * (pp[i] - pp[i - 1]))
 
 
-def spice_noise(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                conditions: Any, elements: str = "") -> float:
+def spice_noise(
+    topology: str, parts: Mapping[str, float], model: Mapping[str, float], conditions: Any, elements: str = ""
+) -> float:
     """Equivalent input noise over the band, V rms, referred to the source EMF (Vsig), without
     the source resistance's own noise (Rsource made noiseless), from .noise dec 50; ``elements``
     are added to the netlist."""
     low, high = conditions.band
-    control = (f"alter @rsource[noisy] = 0\nnoise v(out) vsig dec 50 {float(low)!r} {float(high)!r}\n"
-               "let ein = inoise_total\nprint ein")
+    control = (
+        f"alter @rsource[noisy] = 0\nnoise v(out) vsig dec 50 {float(low)!r} {float(high)!r}\n"
+        "let ein = inoise_total\nprint ein"
+    )
     scalars, _ = _simulate(topology, parts, model, conditions, control, elements=elements)
     (ein,) = _need(scalars, "ein")
     return ein
@@ -346,27 +390,40 @@ def spice_noise(topology: str, parts: Mapping[str, float], model: Mapping[str, f
 _THD_SETTLE, _THD_CYCLES, _THD_SAMPLES, _THD_HARMONICS = 4, 8, 256, 9
 
 
-def _thd_run(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-             conditions: Any, amplitude: float, frequency: float) -> tuple[float, float]:
+def _thd_run(
+    topology: str,
+    parts: Mapping[str, float],
+    model: Mapping[str, float],
+    conditions: Any,
+    amplitude: float,
+    frequency: float,
+) -> tuple[float, float]:
     """(output Vpp, THD fraction of harmonics 2..9) of the last _THD_CYCLES cycles."""
     period = 1.0 / frequency
     step = period / _THD_SAMPLES
     stop = (_THD_SETTLE + _THD_CYCLES) * period
-    control = (f"option reltol=1e-5\n"
-               f"tran {step!r} {stop!r} 0 {step!r}\nlinearize v(out)\nwrdata {{dir}}/o.txt v(out)")
-    _, arrays = _simulate(topology, parts, model, conditions, control, waveforms=("o",),
-                          amplitude=amplitude, frequency=frequency)
-    v = arrays["o"][-_THD_CYCLES * _THD_SAMPLES:, 1]
+    control = f"option reltol=1e-5\ntran {step!r} {stop!r} 0 {step!r}\nlinearize v(out)\nwrdata {{dir}}/o.txt v(out)"
+    _, arrays = _simulate(
+        topology, parts, model, conditions, control, waveforms=("o",), amplitude=amplitude, frequency=frequency
+    )
+    v = arrays["o"][-_THD_CYCLES * _THD_SAMPLES :, 1]
     # Hann window over whole cycles: each harmonic sits on bins n*C-1..n*C+1, and the
     # slow settling of the coupling capacitors stays in bins 0..1.
     spectrum = np.abs(np.fft.rfft((v - v.mean()) * np.hanning(v.size + 1)[:-1])) ** 2
     c = _THD_CYCLES
-    power = [spectrum[n * c - 1:n * c + 2].sum() for n in range(1, _THD_HARMONICS + 1)]
+    power = [spectrum[n * c - 1 : n * c + 2].sum() for n in range(1, _THD_HARMONICS + 1)]
     return float(v.max() - v.min()), float(math.sqrt(sum(power[1:]) / power[0]))
 
 
-def spice_thd(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-              conditions: Any, vpp_out: float, *, frequency: float = 1000.0) -> float:
+def spice_thd(
+    topology: str,
+    parts: Mapping[str, float],
+    model: Mapping[str, float],
+    conditions: Any,
+    vpp_out: float,
+    *,
+    frequency: float = 1000.0,
+) -> float:
     """THD (fraction, harmonics 2..9) of the load voltage at ~``vpp_out`` V peak-to-peak at
     ``frequency`` Hz: a transient from the operating point, 4 settling then 8 measured cycles;
     the input is set from the .ac gain, then rescaled once from the measured output Vpp."""
@@ -378,8 +435,13 @@ def spice_thd(topology: str, parts: Mapping[str, float], model: Mapping[str, flo
     return thd
 
 
-def spice_psrr(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-               conditions: Any, frequencies: tuple[float, ...]) -> list[float]:
+def spice_psrr(
+    topology: str,
+    parts: Mapping[str, float],
+    model: Mapping[str, float],
+    conditions: Any,
+    frequencies: tuple[float, ...],
+) -> list[float]:
     """Supply rejection 20*log10(1/|V(out)/V(rail)|) (dB) at each frequency (Hz), from .ac with
     AC 1 on one supply source (Vcc, or Vee on a negative rail) and the signal source's AC set to 0
     (its resistance stays); with two rails (a split supply) each in turn, the worse counting."""
@@ -387,8 +449,7 @@ def spice_psrr(topology: str, parts: Mapping[str, float], model: Mapping[str, fl
     for rail in _rails(model, conditions):
         control = f"alter @vsig[acmag] = 0\nalter @v{rail[1:]}[acmag] = 1\n"
         for i, f in enumerate(frequencies):
-            control += (f"ac lin 1 {float(f)!r} {float(f)!r}\nlet r{i} = -20*log10(mag(v(out)/v({rail})))\n"
-                        f"print r{i}\n")
+            control += f"ac lin 1 {float(f)!r} {float(f)!r}\nlet r{i} = -20*log10(mag(v(out)/v({rail})))\nprint r{i}\n"
         scalars, _ = _simulate(topology, parts, model, conditions, control)
         found = _need(scalars, *(f"r{i}" for i in range(len(frequencies))))
         worst = found if worst is None else [min(a, b) for a, b in zip(worst, found)]
@@ -398,8 +459,7 @@ def spice_psrr(topology: str, parts: Mapping[str, float], model: Mapping[str, fl
 NF_REFERENCE_K = 290.0  # K, the standard noise-figure source temperature
 
 
-def spice_noise_figure(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                       conditions: Any) -> float:
+def spice_noise_figure(topology: str, parts: Mapping[str, float], model: Mapping[str, float], conditions: Any) -> float:
     """Noise figure (dB) over the band referred to a source at the standard 290 K, the stage at
     the circuit temperature T: 10*log10(1 + stage/(source * 290 K/T)) of input-referred noise
     powers integrated by .noise, the source's own from a run with Rsource noisy (total - stage;
@@ -407,20 +467,26 @@ def spice_noise_figure(topology: str, parts: Mapping[str, float], model: Mapping
     instance ``temp``, so the source's power, exactly proportional to T, is scaled to 290 K),
     the stage alone from :func:`spice_noise` (Rsource noiseless)."""
     low, high = conditions.band
-    control = (f"noise v(out) vsig dec 50 {float(low)!r} {float(high)!r}\n"
-               "let total = inoise_total\nprint total")
+    control = f"noise v(out) vsig dec 50 {float(low)!r} {float(high)!r}\nlet total = inoise_total\nprint total"
     scalars, _ = _simulate(topology, parts, model, conditions, control)
     (total,) = _need(scalars, "total")
     stage = spice_noise(topology, parts, model, conditions)
-    source_290k = (total ** 2 - stage ** 2) * NF_REFERENCE_K / (nominal_temperature(conditions) + 273.15)
-    return 10.0 * math.log10(1.0 + stage ** 2 / source_290k)
+    source_290k = (total**2 - stage**2) * NF_REFERENCE_K / (nominal_temperature(conditions) + 273.15)
+    return 10.0 * math.log10(1.0 + stage**2 / source_290k)
 
 
 # ---- loop gain of an overall feedback loop (feedback_pair) --------------------------------
 
-def spice_loop_gain(topology: str, parts: Mapping[str, float], model: Mapping[str, float],
-                    conditions: Any, feedback_role: str = "r_feedback", node: str = "emitter",
-                    points_per_decade: int = 50) -> tuple[np.ndarray, np.ndarray]:
+
+def spice_loop_gain(
+    topology: str,
+    parts: Mapping[str, float],
+    model: Mapping[str, float],
+    conditions: Any,
+    feedback_role: str = "r_feedback",
+    node: str = "emitter",
+    points_per_decade: int = 50,
+) -> tuple[np.ndarray, np.ndarray]:
     """Loop gain T(f) (complex) by double injection (voltage and current, after Middlebrook),
     at the end of ``feedback_role`` that meets ``node``; frequencies (Hz) 1 Hz..10 GHz.
 
@@ -445,10 +511,14 @@ def spice_loop_gain(topology: str, parts: Mapping[str, float], model: Mapping[st
         return "\n".join(lines) + "\n"
 
     sweep = f"ac dec {points_per_decade} 1 1e10\n"
-    control = ("alter @vsig[acmag] = 0\n" + sweep
-               + f"let tv = -v(fbk)/v({node})\nlet tvr = real(tv)\nlet tvi = imag(tv)\nwrdata {{dir}}/tv.txt tvr tvi\n"
-               "alter @vinj[acmag] = 0\nalter @iinj[acmag] = 1\n" + sweep
-               + "let ti = i(vinj)/(1 - i(vinj))\nlet tir = real(ti)\nlet tii = imag(ti)\nwrdata {dir}/ti.txt tir tii")
+    control = (
+        "alter @vsig[acmag] = 0\n"
+        + sweep
+        + f"let tv = -v(fbk)/v({node})\nlet tvr = real(tv)\nlet tvi = imag(tv)\nwrdata {{dir}}/tv.txt tvr tvi\n"
+        "alter @vinj[acmag] = 0\nalter @iinj[acmag] = 1\n"
+        + sweep
+        + "let ti = i(vinj)/(1 - i(vinj))\nlet tir = real(ti)\nlet tii = imag(ti)\nwrdata {dir}/ti.txt tir tii"
+    )
     _, arrays = _simulate(topology, parts, model, conditions, control, waveforms=("tv", "ti"), transform=split)
     tv, ti = arrays["tv"], arrays["ti"]
     f = tv[:, 0]

@@ -4,6 +4,7 @@ External references: RFC 9457 (problem details: application/problem+json with ty
 status, detail), RFC 9110 (405 carries Allow, 401 carries WWW-Authenticate, 406/413/415
 semantics), OpenAPI 3.1 checked by the openapi-spec-validator package.
 """
+
 from __future__ import annotations
 
 import csv
@@ -56,8 +57,13 @@ def wait_until(predicate, timeout: float = 60.0) -> None:
 
 @pytest.fixture(scope="module")
 def app(tmp_path_factory):
-    app = create_app({"STAGEFIT_DATA_DIR": str(tmp_path_factory.mktemp("runs")), "STAGEFIT_MAX_TRIALS": "300",
-                      "STAGEFIT_MAX_BODY": "65536"})
+    app = create_app(
+        {
+            "STAGEFIT_DATA_DIR": str(tmp_path_factory.mktemp("runs")),
+            "STAGEFIT_MAX_TRIALS": "300",
+            "STAGEFIT_MAX_BODY": "65536",
+        }
+    )
     yield app
     stop(app)
 
@@ -77,6 +83,7 @@ def done(client) -> dict:
 
 
 # --- plain routes ---------------------------------------------------------------------
+
 
 def test_healthz(client):
     response = client.get("/healthz")
@@ -130,8 +137,10 @@ def test_openapi_is_valid_and_lists_every_route(client, app):
             continue  # the browser pages (HTML) are not part of the REST API
         path = rule.rule.replace("<int(signed=True):", "{").replace("<", "{").replace(">", "}")
         routes.setdefault(path, set()).update(m.lower() for m in rule.methods - {"HEAD", "OPTIONS"})
-    documented = {path: {m for m in item if m in ("get", "post", "delete", "put", "patch")}
-                  for path, item in document["paths"].items()}
+    documented = {
+        path: {m for m in item if m in ("get", "post", "delete", "put", "patch")}
+        for path, item in document["paths"].items()
+    }
     assert routes == documented
     # the spec body is the spec module's own schema
     assert document["components"]["schemas"]["Spec"]["properties"].keys() == spec_json_schema()["properties"].keys()
@@ -154,9 +163,11 @@ def test_not_acceptable(client):
 
 # --- auth -----------------------------------------------------------------------------
 
+
 def test_bearer_token(tmp_path):
-    app = create_app({"STAGEFIT_DATA_DIR": str(tmp_path), "STAGEFIT_API_TOKEN": "s3cret-token",
-                      "STAGEFIT_QUEUE_ONLY": "1"})
+    app = create_app(
+        {"STAGEFIT_DATA_DIR": str(tmp_path), "STAGEFIT_API_TOKEN": "s3cret-token", "STAGEFIT_QUEUE_ONLY": "1"}
+    )
     client = app.test_client()
     assert client.get("/healthz").status_code == 200  # always open
     response = client.get("/v1/topologies")
@@ -178,13 +189,17 @@ def test_evaluate_matches_assess(client):
     from optimizer.candidates import assess
 
     spec = pickup_spec()
-    response = client.post("/v1/evaluate", json={"spec": spec, "topology": "divider_ce", "parts": HAND,
-                                                 "samples": 200})
+    response = client.post("/v1/evaluate", json={"spec": spec, "topology": "divider_ce", "parts": HAND, "samples": 200})
     assert response.status_code == 200 and response.mimetype == "application/json"
     record = response.get_json()
     parsed = parse_spec(spec)
-    direct = assess(parsed, load_catalog(parsed.parts.catalog), "divider_ce",
-                    {"r_top": 270e3, "r_bottom": 51e3, "r_collector": 11e3, "r_emitter": 1.3e3}, samples=200)
+    direct = assess(
+        parsed,
+        load_catalog(parsed.parts.catalog),
+        "divider_ce",
+        {"r_top": 270e3, "r_bottom": 51e3, "r_collector": 11e3, "r_emitter": 1.3e3},
+        samples=200,
+    )
     assert record["parts"]["r_top"]["label"] == "270k"
     assert record["metrics"]["gain"] == pytest.approx(direct["metrics"]["gain"])
     assert record["feasible"] == direct["feasible"]
@@ -192,34 +207,45 @@ def test_evaluate_matches_assess(client):
 
 
 def test_evaluate_reports_every_problem_with_field_paths(client):
-    body = {"spec": pickup_spec(), "topology": "divider_ce",
-            "parts": {"r_top": "lots", "r_bottom": "51k", "r_collector": "11k", "c_oops": "1u"},
-            "device": "no-such-device", "samples": 0}
+    body = {
+        "spec": pickup_spec(),
+        "topology": "divider_ce",
+        "parts": {"r_top": "lots", "r_bottom": "51k", "r_collector": "11k", "c_oops": "1u"},
+        "device": "no-such-device",
+        "samples": 0,
+    }
     problem = assert_problem(client.post("/v1/evaluate", json=body), 422)
     fields = {e["field"] for e in problem["errors"]}
     assert {"parts.r_top", "parts.c_oops", "parts.r_emitter", "device", "samples"} <= fields
     bad_spec = {**pickup_spec(), "supply": "twelve"}
-    problem = assert_problem(client.post("/v1/evaluate", json={"spec": bad_spec, "topology": "divider_ce",
-                                                               "parts": HAND}), 422)
+    problem = assert_problem(
+        client.post("/v1/evaluate", json={"spec": bad_spec, "topology": "divider_ce", "parts": HAND}), 422
+    )
     assert [e["field"] for e in problem["errors"]] == ["spec.supply"]
-    problem = assert_problem(client.post("/v1/evaluate", json={"spec": bad_spec, "topology": "divider_ce",
-                                                               "parts": {**HAND, "r_top": "-"}}), 422)
+    problem = assert_problem(
+        client.post("/v1/evaluate", json={"spec": bad_spec, "topology": "divider_ce", "parts": {**HAND, "r_top": "-"}}),
+        422,
+    )
     assert [e["field"] for e in problem["errors"]] == ["spec.supply", "parts.r_top"]  # all at once
-    problem = assert_problem(client.post("/v1/evaluate", json={"spec": pickup_spec(), "topology": "tube",
-                                                               "parts": HAND}), 422)
+    problem = assert_problem(
+        client.post("/v1/evaluate", json={"spec": pickup_spec(), "topology": "tube", "parts": HAND}), 422
+    )
     assert problem["errors"][0]["field"] == "topology"
     problem = assert_problem(client.post("/v1/evaluate", json={"topology": "divider_ce", "extra": 1}), 422)
     assert {"spec", "parts", "extra"} <= {e["field"] for e in problem["errors"]}
 
 
-@pytest.mark.parametrize("data, content_type, status", [
-    ("{not json", "application/json", 400),
-    ('{"spec": NaN}', "application/json", 400),
-    (b"\xff\xfe", "application/json", 400),
-    ("[1, 2]", "application/json", 422),
-    ("spec: {}", "text/plain", 415),
-    ("{}", None, 415),
-])
+@pytest.mark.parametrize(
+    "data, content_type, status",
+    [
+        ("{not json", "application/json", 400),
+        ('{"spec": NaN}', "application/json", 400),
+        (b"\xff\xfe", "application/json", 400),
+        ("[1, 2]", "application/json", 422),
+        ("spec: {}", "text/plain", 415),
+        ("{}", None, 415),
+    ],
+)
 def test_evaluate_body_errors(client, data, content_type, status):
     assert_problem(client.post("/v1/evaluate", data=data, content_type=content_type), status)
 
@@ -231,6 +257,7 @@ def test_body_over_the_limit(client):
 
 
 # --- searches ---------------------------------------------------------------------------
+
 
 def test_post_with_wait_returns_the_ranked_result(done):
     status = done["search"]
@@ -255,15 +282,17 @@ def test_post_without_wait_is_202_with_location(tmp_path):
     response = client.post("/v1/searches?wait=0.3", json=pickup_spec())
     assert response.status_code == 202
     # YAML body, as the spec files are written
-    response = client.post("/v1/searches", data=(ROOT / "specs" / "contact_pickup_buffer.yaml").read_text(),
-                           content_type="application/yaml")
+    response = client.post(
+        "/v1/searches",
+        data=(ROOT / "specs" / "contact_pickup_buffer.yaml").read_text(),
+        content_type="application/yaml",
+    )
     assert response.status_code == 202
     assert client.get(response.headers["Location"]).get_json()["name"] == "contact_pickup_buffer"
 
 
 def test_rejected_posts_store_nothing(tmp_path):
-    app = create_app({"STAGEFIT_DATA_DIR": str(tmp_path), "STAGEFIT_QUEUE_ONLY": "1",
-                      "STAGEFIT_MAX_TRIALS": "500"})
+    app = create_app({"STAGEFIT_DATA_DIR": str(tmp_path), "STAGEFIT_QUEUE_ONLY": "1", "STAGEFIT_MAX_TRIALS": "500"})
     client = app.test_client()
     problem = assert_problem(client.post("/v1/searches", json=pickup_spec(trials=501)), 422)
     assert problem["errors"][0]["field"] == "search.trials" and "500" in problem["detail"]
@@ -275,12 +304,12 @@ def test_rejected_posts_store_nothing(tmp_path):
     spec["devices"] = ["no-such-device"]
     problem = assert_problem(client.post("/v1/searches", json=spec), 422)
     assert problem["errors"][0]["field"] == "devices[0]"
-    problem = assert_problem(client.post("/v1/searches", json={**pickup_spec(), "gain": "loud",
-                                                                 "band": [20]}), 422)
+    problem = assert_problem(client.post("/v1/searches", json={**pickup_spec(), "gain": "loud", "band": [20]}), 422)
     assert {"gain", "band"} <= {e["field"].split(".")[0].split("[")[0] for e in problem["errors"]}
     assert_problem(client.post("/v1/searches", data="a: &x [1]\nb: *x\n", content_type="application/yaml"), 422)
     bomb = "a: &a [x,x,x,x,x,x,x,x,x]\n" + "".join(
-        f"{chr(98 + i)}: &{chr(98 + i)} [{', '.join(['*' + chr(97 + i)] * 9)}]\n" for i in range(8))
+        f"{chr(98 + i)}: &{chr(98 + i)} [{', '.join(['*' + chr(97 + i)] * 9)}]\n" for i in range(8)
+    )
     assert_problem(client.post("/v1/searches", data=bomb, content_type="application/yaml"), 400)
     assert_problem(client.post("/v1/searches", data="a: [", content_type="application/yaml"), 400)
     assert_problem(client.post("/v1/searches?wait=soon", json=pickup_spec()), 400)
@@ -451,8 +480,16 @@ def test_trials_left_running_by_a_dead_process_are_asked_again(tmp_path):
 
 # --- settings and the catch-all -----------------------------------------------------------
 
-@pytest.mark.parametrize("key, value", [("STAGEFIT_MAX_TRIALS", "lots"), ("STAGEFIT_WORKERS", "0"),
-                                        ("STAGEFIT_MAX_BODY", "12"), ("STAGEFIT_QUEUE_ONLY", "perhaps")])
+
+@pytest.mark.parametrize(
+    "key, value",
+    [
+        ("STAGEFIT_MAX_TRIALS", "lots"),
+        ("STAGEFIT_WORKERS", "0"),
+        ("STAGEFIT_MAX_BODY", "12"),
+        ("STAGEFIT_QUEUE_ONLY", "perhaps"),
+    ],
+)
 def test_bad_settings_name_the_variable(key, value):
     with pytest.raises(InputError) as error:
         Settings.load({key: value, "STAGEFIT_STORAGE": ":memory:"})
@@ -474,8 +511,10 @@ def test_unexpected_errors_are_logged_problems(tmp_path, caplog):
 
 def test_json_out_is_strict(client, app):
     with app.test_request_context():
-        assert json.loads(app.json.dumps({"a": float("nan"), "b": [float("inf"), 1.5]})) == {"a": None,
-                                                                                              "b": [None, 1.5]}
+        assert json.loads(app.json.dumps({"a": float("nan"), "b": [float("inf"), 1.5]})) == {
+            "a": None,
+            "b": [None, 1.5],
+        }
 
 
 def test_openapi_document_is_a_fresh_copy():
@@ -511,8 +550,10 @@ def test_served_candidates_match_the_schema_generated_from_the_record_type(clien
     search_id = done["search"]["id"]
     served = client.get(f"/v1/searches/{search_id}/candidates?top=1000").get_json()["candidates"]
     served += client.get(f"/v1/searches/{search_id}/front").get_json()["front"]
-    served += [client.get(f"/v1/searches/{search_id}/candidates/{len(served) and 1}").get_json(),
-               client.get(f"/v1/searches/{search_id}").get_json()["best"]]
+    served += [
+        client.get(f"/v1/searches/{search_id}/candidates/{len(served) and 1}").get_json(),
+        client.get(f"/v1/searches/{search_id}").get_json()["best"],
+    ]
     assert len(served) > 4
     for record in served:
         errors = [e.message for e in validator.iter_errors(record)]

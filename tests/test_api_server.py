@@ -3,6 +3,7 @@ loopback port): HTTP round trips, the README's standard-library script, a restar
 SIGKILL mid-search, and a bounded property-based fuzz (schemathesis) against the OpenAPI
 document (OpenAPI 3.1; zero 5xx and every response conforming to the document).
 """
+
 from __future__ import annotations
 
 import contextlib
@@ -32,8 +33,13 @@ def live_server(tmp_path: Path, storage: Path, *, env: dict[str, str] | None = N
     environment = {k: v for k, v in os.environ.items() if not k.startswith("STAGEFIT_")}
     environment.update(env or {})
     with open(log, "w") as out:
-        proc = subprocess.Popen([*STAGEFIT, "serve", "--host", "127.0.0.1", "--port", "0", "--storage", str(storage)],
-                                cwd=ROOT, env=environment, stdout=out, stderr=subprocess.STDOUT)
+        proc = subprocess.Popen(
+            [*STAGEFIT, "serve", "--host", "127.0.0.1", "--port", "0", "--storage", str(storage)],
+            cwd=ROOT,
+            env=environment,
+            stdout=out,
+            stderr=subprocess.STDOUT,
+        )
     try:
         deadline = time.monotonic() + 60
         while True:
@@ -50,8 +56,14 @@ def live_server(tmp_path: Path, storage: Path, *, env: dict[str, str] | None = N
         proc.wait(30)
 
 
-def http(method: str, url: str, body: bytes | None = None, *, content_type: str | None = None,
-         accept: str = "application/json") -> tuple[int, dict, bytes]:
+def http(
+    method: str,
+    url: str,
+    body: bytes | None = None,
+    *,
+    content_type: str | None = None,
+    accept: str = "application/json",
+) -> tuple[int, dict, bytes]:
     request = urllib.request.Request(url, data=body, method=method, headers={"Accept": accept})
     if content_type:
         request.add_header("Content-Type", content_type)
@@ -72,8 +84,12 @@ def test_round_trip_through_a_real_server(tmp_path):
     with live_server(tmp_path, tmp_path / "s.journal") as (base, _):
         status, headers, body = http("GET", f"{base}/healthz")
         assert status == 200 and headers["Content-Type"].startswith("application/json")
-        status, headers, body = http("POST", f"{base}/v1/searches?wait=120",
-                                     yaml.safe_dump(small_spec(64)).encode(), content_type="application/yaml")
+        status, headers, body = http(
+            "POST",
+            f"{base}/v1/searches?wait=120",
+            yaml.safe_dump(small_spec(64)).encode(),
+            content_type="application/yaml",
+        )
         assert status == 200, body
         result = json.loads(body)
         assert result["search"]["status"] == "done" and result["search"]["trials_done"] == 64
@@ -94,8 +110,8 @@ def test_round_trip_through_a_real_server(tmp_path):
 
 def readme_script() -> str:
     text = (ROOT / "README.md").read_text()
-    section = text[text.index("## REST service"):]
-    section = section[:section.index("\n## ", 1)] if "\n## " in section[1:] else section
+    section = text[text.index("## REST service") :]
+    section = section[: section.index("\n## ", 1)] if "\n## " in section[1:] else section
     return re.search(r"```python\n(.*?)```", section, re.S).group(1)
 
 
@@ -108,8 +124,13 @@ def test_readme_script_posts_polls_and_saves_the_bom(tmp_path):
     spec.write_text(yaml.safe_dump(small_spec(64)))
     out = tmp_path / "bom.csv"
     with live_server(tmp_path, tmp_path / "s.journal") as (base, _):
-        done = subprocess.run([sys.executable, "-I", str(script), base, str(spec), str(out)], cwd=tmp_path,
-                              capture_output=True, text=True, timeout=180)
+        done = subprocess.run(
+            [sys.executable, "-I", str(script), base, str(spec), str(out)],
+            cwd=tmp_path,
+            capture_output=True,
+            text=True,
+            timeout=180,
+        )
     assert done.returncode == 0, done.stderr
     lines = [line for line in out.read_text().splitlines() if not line.startswith("#")]  # identity, cautions
     assert lines[0].startswith("designators,kind,roles,part_id,value")
@@ -118,18 +139,25 @@ def test_readme_script_posts_polls_and_saves_the_bom(tmp_path):
 
 def _finished(storage_path: Path, search_id: str) -> dict[int, tuple]:
     storage = optuna.storages.journal.JournalStorage(  # read afresh, not through a process cache
-        optuna.storages.journal.JournalFileBackend(str(storage_path)))
+        optuna.storages.journal.JournalFileBackend(str(storage_path))
+    )
     study = optuna.load_study(study_name=search_id, storage=storage)
-    return {t.number: (tuple(t.values), tuple(sorted(t.params.items())))
-            for t in study.get_trials(states=(optuna.trial.TrialState.COMPLETE,))}
+    return {
+        t.number: (tuple(t.values), tuple(sorted(t.params.items())))
+        for t in study.get_trials(states=(optuna.trial.TrialState.COMPLETE,))
+    }
 
 
 def test_restart_after_sigkill_resumes_and_keeps_finished_trials(tmp_path):
     storage = tmp_path / "s.journal"
     env = {"STAGEFIT_STALE_AFTER": "0"}
     with live_server(tmp_path, storage, env=env, name="first") as (base, proc):
-        status, headers, body = http("POST", f"{base}/v1/searches", json.dumps(small_spec(300, batch_size=16)).encode(),
-                                     content_type="application/json")
+        status, headers, body = http(
+            "POST",
+            f"{base}/v1/searches",
+            json.dumps(small_spec(300, batch_size=16)).encode(),
+            content_type="application/json",
+        )
         assert status == 202
         url = base + headers["Location"]
         deadline = time.monotonic() + 120
@@ -159,9 +187,14 @@ from hypothesis import HealthCheck, Phase, settings  # noqa: E402  (after the im
 from api.openapi import openapi_document  # noqa: E402
 
 SCHEMA = schemathesis.openapi.from_dict(openapi_document())
-CHECKS = [schemathesis.checks.not_a_server_error, schemathesis.checks.status_code_conformance,
-          schemathesis.checks.content_type_conformance, schemathesis.checks.response_schema_conformance,
-          schemathesis.checks.response_headers_conformance, schemathesis.checks.negative_data_rejection]
+CHECKS = [
+    schemathesis.checks.not_a_server_error,
+    schemathesis.checks.status_code_conformance,
+    schemathesis.checks.content_type_conformance,
+    schemathesis.checks.response_schema_conformance,
+    schemathesis.checks.response_headers_conformance,
+    schemathesis.checks.negative_data_rejection,
+]
 
 
 FUZZ_EXAMPLES = int(os.environ.get("STAGEFIT_FUZZ_EXAMPLES", "80"))  # per operation; `make fuzz` raises it
@@ -179,8 +212,13 @@ def fuzz_server(tmp_path_factory):
 
 
 @SCHEMA.parametrize()
-@settings(max_examples=FUZZ_EXAMPLES, deadline=None, phases=[Phase.explicit, Phase.generate],
-          suppress_health_check=list(HealthCheck), derandomize=True)
+@settings(
+    max_examples=FUZZ_EXAMPLES,
+    deadline=None,
+    phases=[Phase.explicit, Phase.generate],
+    suppress_health_check=list(HealthCheck),
+    derandomize=True,
+)
 def test_fuzz_against_the_openapi_document(case, fuzz_server):
     CASES["stateless"] += 1
     case.call_and_validate(base_url=fuzz_server, checks=CHECKS, timeout=30)
@@ -198,8 +236,15 @@ def test_fuzz_stateful_create_poll_candidates_delete(fuzz_server):
             CASES["stateful"] += 1
             case.validate_response(response, checks=CHECKS)
 
-    Workflow.run(settings=settings(max_examples=max(FUZZ_EXAMPLES // 2, 10), stateful_step_count=8,
-                                   deadline=None, suppress_health_check=list(HealthCheck), derandomize=True))
+    Workflow.run(
+        settings=settings(
+            max_examples=max(FUZZ_EXAMPLES // 2, 10),
+            stateful_step_count=8,
+            deadline=None,
+            suppress_health_check=list(HealthCheck),
+            derandomize=True,
+        )
+    )
     assert CASES["stateful"] > 0
 
 

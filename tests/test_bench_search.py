@@ -1,4 +1,5 @@
 """The search benchmark's 2-D hypervolume, checked on a staircase computed by hand."""
+
 from __future__ import annotations
 
 import importlib.util

@@ -5,6 +5,7 @@ unit x units, short by = max(0, quantity - on hand), line price = unit price x q
 stock and prices are read straight from the catalog's CSV files with the csv module (not
 through optimizer.catalog).
 """
+
 from __future__ import annotations
 
 import csv
@@ -31,8 +32,16 @@ SHARED = {"r_top": 100e3, "r_bottom": 10e3, "r_collector": 10e3, "r_emitter": 1e
 # divider_ce_split: 180 ohm is in no drawer, 1k5's drawer (DR-R030) is empty, 8k2 holds 3.
 # Capacitors given, so the lines do not move with the sizing: c_in and c_emitter electrolytics,
 # c_out film.
-SPLIT = {"r_top": 220e3, "r_bottom": 47e3, "r_collector": 8.2e3, "r_emitter": 180, "r_emitter_dc": 1.5e3,
-         "c_in": 2.2e-6, "c_emitter": 100e-6, "c_out": 1e-6}
+SPLIT = {
+    "r_top": 220e3,
+    "r_bottom": 47e3,
+    "r_collector": 8.2e3,
+    "r_emitter": 180,
+    "r_emitter_dc": 1.5e3,
+    "c_in": 2.2e-6,
+    "c_emitter": 100e-6,
+    "c_out": 1e-6,
+}
 
 
 def _csv_rows(name: str, key: str = "part_id") -> dict[str, dict[str, str]]:
@@ -128,8 +137,13 @@ def test_bench_stock_preamp_short_and_missing_parts(split: dict, bench) -> None:
 
 
 def test_two_transistors_of_ce_follower_are_one_line(spec, bench) -> None:
-    record = assess(spec, bench, "ce_follower", {"r_top": 270e3, "r_bottom": 18e3, "r_collector": 6.8e3,
-                                                 "r_emitter": 220, "r_follower": 3.9e3}, samples=20)
+    record = assess(
+        spec,
+        bench,
+        "ce_follower",
+        {"r_top": 270e3, "r_bottom": 18e3, "r_collector": 6.8e3, "r_emitter": 220, "r_follower": 3.9e3},
+        samples=20,
+    )
     line = _line(kit(record, bench, 4), "q1,q2")
     assert (line["kind"], line["part_id"]) == ("transistor", "npn-general")
     assert (line["qty_per_unit"], line["qty_total"]) == (2, 8)
@@ -153,7 +167,7 @@ def test_csv_has_comments_then_the_header_and_one_row_per_line(split: dict, benc
     k = kit(split, bench, 25, spec)
     text = k.to_csv()
     comments = [line for line in text.splitlines() if line.startswith("#")]
-    assert text.splitlines()[:len(comments)] == comments  # the comments lead
+    assert text.splitlines()[: len(comments)] == comments  # the comments lead
     assert comments[0].startswith(f'# stagefit BOM: spec "{spec.name}" (digest ')
     assert f"# basis: {split['basis']['label']}" in comments
     unstated = kit({k: v for k, v in split.items() if k != "basis"}, bench, 25, spec).to_csv()
@@ -198,12 +212,18 @@ def test_incomplete_candidate_is_bad_input(shared: dict, bench) -> None:
 
 
 def test_unique_values_counts_distinct_passives() -> None:
-    assert unique_values({"r_top": 100e3, "r_bottom": 10e3, "r_collector": 10e3, "r_emitter": 1e3,
-                          "c_in": 1e-6, "c_out": 1e-6}) == 4
-    assert unique_values({"r_feedback": 1e6, "r_collector": 1e4, "r_emitter": 0.0, "c_in": 1e-6,
-                          "c_out": 4.7e-7}) == 4  # an absent optional part is no value
-    counts = unique_values_array({"r_top": np.array([1e3, 1e3]), "r_bottom": np.array([1e3, 2e3]),
-                                  "c_in": np.array([1e-6, 1e-6])})
+    assert (
+        unique_values(
+            {"r_top": 100e3, "r_bottom": 10e3, "r_collector": 10e3, "r_emitter": 1e3, "c_in": 1e-6, "c_out": 1e-6}
+        )
+        == 4
+    )
+    assert (
+        unique_values({"r_feedback": 1e6, "r_collector": 1e4, "r_emitter": 0.0, "c_in": 1e-6, "c_out": 4.7e-7}) == 4
+    )  # an absent optional part is no value
+    counts = unique_values_array(
+        {"r_top": np.array([1e3, 1e3]), "r_bottom": np.array([1e3, 2e3]), "c_in": np.array([1e-6, 1e-6])}
+    )
     assert counts.tolist() == [2, 3]
 
 
@@ -213,8 +233,14 @@ def test_designators_follow_the_netlist_and_lines_are_ordered(split: dict, bench
     lines = kit(split, bench, 1).to_dict()["lines"]
     assert [line["designators"] for line in lines] == ["R1", "R2", "R3", "R4", "R5", "C1", "C2", "C3", "Q1"]
     assert [line["roles"] for line in lines][:5] == ["r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter_dc"]
-    shared_line = _line(kit(assess(load_spec(ROOT / "specs" / "bench_stock_preamp.yaml"), bench, "divider_ce",
-                                   SHARED, samples=20), bench, 1), "r_bottom,r_collector")
+    shared_line = _line(
+        kit(
+            assess(load_spec(ROOT / "specs" / "bench_stock_preamp.yaml"), bench, "divider_ce", SHARED, samples=20),
+            bench,
+            1,
+        ),
+        "r_bottom,r_collector",
+    )
     assert shared_line["designators"] == "R2,R3" and shared_line["qty_per_unit"] == 2
 
 
@@ -229,7 +255,9 @@ def test_electrolytic_plus_side_follows_the_dc_bias(split: dict, bench) -> None:
     assert f"({op['v_base']:.2f} V DC)" in lines["c_in"]["orientation"]
     assert lines["c_emitter"]["orientation"].startswith("C2: + toward the emitter resistors' junction")
     assert lines["c_out"]["orientation"] == ""  # film: not polarised
-    assert all(line["rating"] for line in lines.values() if line["part_id"]) and any(line["part_id"] for line in lines.values())
+    assert all(line["rating"] for line in lines.values() if line["part_id"]) and any(
+        line["part_id"] for line in lines.values()
+    )
 
 
 def test_class2_only_when_the_spec_allows_it_and_then_cautioned(bench, spec) -> None:
@@ -239,8 +267,9 @@ def test_class2_only_when_the_spec_allows_it_and_then_cautioned(bench, spec) -> 
 
     assert bench.part_for("capacitor", 100e-9)["dielectric"] == "film"
     assert bench.part_for("capacitor", 100e-9, allow_class2=True)["dielectric"] == "X7R"
-    allowing = parse_spec({**spec_to_dict(spec), "parts": {**spec_to_dict(spec)["parts"],
-                                                          "allow_class2_coupling": True}})
+    allowing = parse_spec(
+        {**spec_to_dict(spec), "parts": {**spec_to_dict(spec)["parts"], "allow_class2_coupling": True}}
+    )
     parts = {**SHARED, "c_in": 100e-9, "c_out": 100e-9}
     default = kit(assess(spec, bench, "divider_ce", parts, samples=20), bench, 1, spec)
     assert set(default.lines[default.lines["kind"] == "capacitor"]["technology"]) == {"film"}

@@ -1,5 +1,6 @@
 """bootstrap_follower: megohm input impedance, the bootstrap's own low-frequency behaviour, sizing
 of c_bootstrap, bias; each check names its reference."""
+
 from __future__ import annotations
 
 import math
@@ -15,17 +16,34 @@ from optimizer.synthesis import HandRequirements
 from optimizer.topologies import Conditions, get_topology
 
 # invented high-gain device (hFE 400), typical small-signal parameters
-DEVICE = Device(id="npn-follow-b", polarity="npn", hfe_min=300, hfe_typ=400, hfe_max=500, IS=2e-14, BF=400,
-                NF=1.0, VAF=60.0, RB=120.0, CJE=6e-12, CJC=3e-12, TF=3.5e-10, vce_sat=0.12, vceo_max=30.0,
-                p_max=0.35)
+DEVICE = Device(
+    id="npn-follow-b",
+    polarity="npn",
+    hfe_min=300,
+    hfe_typ=400,
+    hfe_max=500,
+    IS=2e-14,
+    BF=400,
+    NF=1.0,
+    VAF=60.0,
+    RB=120.0,
+    CJE=6e-12,
+    CJC=3e-12,
+    TF=3.5e-10,
+    vce_sat=0.12,
+    vceo_max=30.0,
+    p_max=0.35,
+)
 # our own numbers: 9 V, 2.2M/1.8M divider, 1M bootstrap, 82k emitter, a 4.7 Mohm piezo source into 1M
-PARTS = dict(r_top=2.2e6, r_bottom=1.8e6, r_bootstrap=1e6, r_follower=82e3, c_in=2.2e-9, c_bootstrap=100e-9,
-             c_out=22e-9)
+PARTS = dict(
+    r_top=2.2e6, r_bottom=1.8e6, r_bootstrap=1e6, r_follower=82e3, c_in=2.2e-9, c_bootstrap=100e-9, c_out=22e-9
+)
 PIEZO = Conditions(supply=9.0, source_impedance=4.7e6, load_impedance=1e6, band=(20.0, 20e3))
 TOPO = get_topology("bootstrap_follower")
-E6 = np.array(sorted(m * 10.0 ** d for d in range(-12, -2) for m in (1.0, 1.5, 2.2, 3.3, 4.7, 6.8)))
-needs_ngspice = pytest.mark.skipif(shutil.which("ngspice") is None,
-                                   reason="ngspice not installed: apt-get install ngspice")
+E6 = np.array(sorted(m * 10.0**d for d in range(-12, -2) for m in (1.0, 1.5, 2.2, 3.3, 4.7, 6.8)))
+needs_ngspice = pytest.mark.skipif(
+    shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice"
+)
 
 
 def one(result, key):
@@ -99,8 +117,15 @@ def test_sizing_sizes_c_bootstrap_for_the_low_corner():
 
 
 def test_hand_design_is_active_and_bootstrapped():
-    req = HandRequirements(supply=9.0, gain=1.0, load_impedance=1e6, source_impedance=4.7e6, f_low=20.0,
-                           collector_current=0.1e-3, hfe=400.0)
+    req = HandRequirements(
+        supply=9.0,
+        gain=1.0,
+        load_impedance=1e6,
+        source_impedance=4.7e6,
+        f_low=20.0,
+        collector_current=0.1e-3,
+        hfe=400.0,
+    )
     hand = TOPO.hand_design(req)
     r = TOPO.evaluate(hand, DEVICE, PIEZO)
     assert r.operating_point["active"][0]
@@ -110,7 +135,8 @@ def test_hand_design_is_active_and_bootstrapped():
 def test_ratings_include_the_bootstrap_parts():
     r = TOPO.evaluate(PARTS, DEVICE, PIEZO)
     assert r.ratings["p_r_bootstrap"][0] == pytest.approx(
-        (r.operating_point["v_mid"][0] - r.operating_point["v_base"][0]) ** 2 / 1e6)
+        (r.operating_point["v_mid"][0] - r.operating_point["v_base"][0]) ** 2 / 1e6
+    )
     assert r.ratings["v_c_bootstrap"][0] == pytest.approx(9.0 * 1.8 / 4.0)  # the tap's open-circuit voltage
 
 
@@ -130,7 +156,8 @@ def test_megohm_input_impedance_against_ngspice(source):
     assert one(r, "gain") == pytest.approx(mid["gain"], rel=0.03)
     assert one(r, "f_low") == pytest.approx(spice_response("bootstrap_follower", PARTS, model, c)["f_low"], rel=0.10)
     assert r.operating_point["ic"][0] == pytest.approx(
-        spice_operating_point("bootstrap_follower", PARTS, model, c)["ic"], rel=0.01)
+        spice_operating_point("bootstrap_follower", PARTS, model, c)["ic"], rel=0.01
+    )
 
 
 PIEZO_SPEC = Path(__file__).resolve().parent.parent / "specs" / "piezo_bridge_buffer.yaml"
@@ -168,7 +195,8 @@ def test_piezo_search_over_every_topology_ranks_a_follower_first() -> None:
     mid = spice_midband(best["topology"], values, model, conditions)
     assert best["metrics"]["gain"] == pytest.approx(mid["gain"], rel=TOLERANCES["gain"][0])
     assert mid["input_impedance"] >= 10e6
-    assert best["metrics"]["input_impedance"] == pytest.approx(mid["input_impedance"],
-                                                               rel=TOLERANCES["input_impedance"][0])
+    assert best["metrics"]["input_impedance"] == pytest.approx(
+        mid["input_impedance"], rel=TOLERANCES["input_impedance"][0]
+    )
     op = spice_operating_point(best["topology"], values, model, conditions)
     assert best["metrics"]["supply_current"] == pytest.approx(op["supply_current"], rel=TOLERANCES["ic"][0])

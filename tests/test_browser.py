@@ -11,6 +11,7 @@ Screenshots go to test-artifacts/screenshots/ (a CI artefact).
 
 Skipped, saying why, only where Chromium or its driver is absent and CI is not set.
 """
+
 from __future__ import annotations
 
 import json
@@ -34,10 +35,16 @@ CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 DRIVER = shutil.which("chromedriver")
 if not (CHROMIUM and DRIVER):
     if os.environ.get("CI") == "true":
-        pytest.fail("the browser tests must run under CI, but chromium or chromedriver is missing "
-                    "(.ci/run installs Debian's chromium and chromium-driver)", pytrace=False)
-    pytest.skip("chromium and chromium-driver are not installed (apt-get install chromium chromium-driver); "
-                "CI installs them and runs these tests", allow_module_level=True)
+        pytest.fail(
+            "the browser tests must run under CI, but chromium or chromedriver is missing "
+            "(.ci/run installs Debian's chromium and chromium-driver)",
+            pytrace=False,
+        )
+    pytest.skip(
+        "chromium and chromium-driver are not installed (apt-get install chromium chromium-driver); "
+        "CI installs them and runs these tests",
+        allow_module_level=True,
+    )
 
 from selenium import webdriver  # noqa: E402
 from selenium.webdriver.chrome.service import Service  # noqa: E402
@@ -50,6 +57,7 @@ UNIT_TO_SI = {"V/V": 1.0, "Vpp": 1.0, "mA": 1e-3, "kΩ": 1e3, "Ω": 1.0, "dB": 1
 
 
 # --- fixtures -----------------------------------------------------------------------------
+
 
 @pytest.fixture(scope="module")
 def server(tmp_path_factory):
@@ -67,12 +75,21 @@ def downloads(tmp_path_factory):
 def browser(tmp_path_factory, downloads):
     options = webdriver.ChromeOptions()
     options.binary_location = CHROMIUM
-    for flag in ("--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
-                 "--disable-component-update", "--disable-sync", "--no-first-run", "--window-size=1280,1000",
-                 f"--user-data-dir={tmp_path_factory.mktemp('chromium-profile')}"):
+    for flag in (
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--no-first-run",
+        "--window-size=1280,1000",
+        f"--user-data-dir={tmp_path_factory.mktemp('chromium-profile')}",
+    ):
         options.add_argument(flag)
-    options.add_experimental_option("prefs", {"download.default_directory": str(downloads),
-                                              "download.prompt_for_download": False})
+    options.add_experimental_option(
+        "prefs", {"download.default_directory": str(downloads), "download.prompt_for_download": False}
+    )
     options.set_capability("goog:loggingPrefs", {"browser": "ALL", "performance": "ALL"})
     driver = webdriver.Chrome(options=options, service=Service(DRIVER))
     driver.execute_cdp_cmd("Browser.setDownloadBehavior", {"behavior": "allow", "downloadPath": str(downloads)})
@@ -82,13 +99,15 @@ def browser(tmp_path_factory, downloads):
 
 
 def api_json(base: str, path: str) -> dict:
-    request = urllib.request.Request(base + path, headers={"Accept": "application/json",
-                                                          "Authorization": f"Bearer {TOKEN}"})
+    request = urllib.request.Request(
+        base + path, headers={"Accept": "application/json", "Authorization": f"Bearer {TOKEN}"}
+    )
     with urllib.request.urlopen(request, timeout=60) as response:
         return json.loads(response.read())
 
 
 # --- per-page checks ------------------------------------------------------------------------
+
 
 def wait(driver, seconds: float = 60):
     return WebDriverWait(driver, seconds)
@@ -96,8 +115,11 @@ def wait(driver, seconds: float = 60):
 
 def page_problems(driver, allowed: tuple[str, ...] = ()) -> list[str]:
     """Console errors and 5xx responses since the last call (the logs are read once)."""
-    problems = [e["message"] for e in driver.get_log("browser")
-                if e["level"] == "SEVERE" and not any(a in e["message"] for a in allowed)]
+    problems = [
+        e["message"]
+        for e in driver.get_log("browser")
+        if e["level"] == "SEVERE" and not any(a in e["message"] for a in allowed)
+    ]
     for entry in driver.get_log("performance"):
         message = json.loads(entry["message"])["message"]
         if message["method"] == "Network.responseReceived":
@@ -148,8 +170,11 @@ def check_page(driver, name: str, allowed: tuple[str, ...] = ()) -> None:
     driver.set_window_size(1280, 1000)
     unlabelled, texts = driver.execute_script(ACCESSIBILITY_PROBE)
     assert not unlabelled, f"{name}: form controls without a label: {unlabelled}"
-    low = [(tag, text, fg, bg, round(contrast_ratio(rgb_hex(fg), rgb_hex(bg)), 2))
-           for fg, bg, tag, text in texts if contrast_ratio(rgb_hex(fg), rgb_hex(bg)) < 4.5]
+    low = [
+        (tag, text, fg, bg, round(contrast_ratio(rgb_hex(fg), rgb_hex(bg)), 2))
+        for fg, bg, tag, text in texts
+        if contrast_ratio(rgb_hex(fg), rgb_hex(bg)) < 4.5
+    ]
     assert texts and not low, f"{name}: text below 4.5:1 contrast: {low[:5]}"
     assert not page_problems(driver, allowed), f"{name}: {page_problems(driver, allowed)}"
 
@@ -161,6 +186,7 @@ def shown_si(text: str) -> float:
 
 
 # --- the walk -------------------------------------------------------------------------------
+
 
 def test_design_desk_in_a_browser(server, browser, downloads):
     base, log = server
@@ -223,8 +249,11 @@ def test_design_desk_in_a_browser(server, browser, downloads):
         assert float(figure.get_attribute("data-si")) == record["metrics"][metric]
         assert shown_si(figure.text) == pytest.approx(record["metrics"][metric], rel=6e-4), (metric, figure.text)
     wait(driver).until(lambda d: len(d.find_elements(By.CSS_SELECTOR, ".plots img")) == 2)
-    wait(driver).until(lambda d: d.execute_script(
-        "return Array.from(document.querySelectorAll('.plots img')).every(i => i.complete && i.naturalWidth > 0)"))
+    wait(driver).until(
+        lambda d: d.execute_script(
+            "return Array.from(document.querySelectorAll('.plots img')).every(i => i.complete && i.naturalWidth > 0)"
+        )
+    )
 
     # the BOM CSV download is the kit of that very record
     from optimizer.bom import kit
@@ -249,14 +278,23 @@ def test_design_desk_in_a_browser(server, browser, downloads):
     wait(driver).until(EC.presence_of_element_located((By.CSS_SELECTOR, "#compare tbody tr")))
     one, two = (api_json(base, f"/v1/searches/{search_id}/candidates/{r}") for r in (1, 2))
     differs = {row.get_attribute("data-key") for row in driver.find_elements(By.CSS_SELECTOR, "#compare tr.diff")}
-    assert ("metric-supply_current" in differs) == (one["metrics"]["supply_current"] != two["metrics"]["supply_current"])
+    assert ("metric-supply_current" in differs) == (
+        one["metrics"]["supply_current"] != two["metrics"]["supply_current"]
+    )
     assert differs, "two distinct designs differ somewhere"
     check_page(driver, "compare")
 
     # the searches list, and a delete
-    spare = json.loads(urllib.request.urlopen(urllib.request.Request(
-        base + "/v1/searches?wait=60", data=json.dumps({**spec, "name": "spare", "search": {"trials": 64}}).encode(),
-        headers={"Content-Type": "application/json", "Authorization": f"Bearer {TOKEN}"}), timeout=90).read())
+    spare = json.loads(
+        urllib.request.urlopen(
+            urllib.request.Request(
+                base + "/v1/searches?wait=60",
+                data=json.dumps({**spec, "name": "spare", "search": {"trials": 64}}).encode(),
+                headers={"Content-Type": "application/json", "Authorization": f"Bearer {TOKEN}"},
+            ),
+            timeout=90,
+        ).read()
+    )
     spare_id = spare["search"]["id"]
     driver.get(f"{base}/searches")
     wait(driver).until(EC.presence_of_element_located((By.CSS_SELECTOR, f"tr[data-id='{spare_id}']")))
@@ -282,9 +320,12 @@ def test_design_desk_in_a_browser(server, browser, downloads):
     assert field.find_element(By.TAG_NAME, "input").get_attribute("name") == "gain.target"
     assert gain.get_attribute("aria-invalid") == "true"
     # the very words of the API's validator for that field
-    request = urllib.request.Request(base + "/v1/searches", method="POST",
-                                     data=json.dumps({**spec, "gain": {**spec["gain"], "target": "loud"}}).encode(),
-                                     headers={"Content-Type": "application/json", "Authorization": f"Bearer {TOKEN}"})
+    request = urllib.request.Request(
+        base + "/v1/searches",
+        method="POST",
+        data=json.dumps({**spec, "gain": {**spec["gain"], "target": "loud"}}).encode(),
+        headers={"Content-Type": "application/json", "Authorization": f"Bearer {TOKEN}"},
+    )
     with pytest.raises(urllib.error.HTTPError) as rejected:
         urllib.request.urlopen(request, timeout=60)
     assert rejected.value.code == 422

@@ -5,6 +5,7 @@ References: ngspice (Debian) runs the exported netlist; the SPICE element-name c
 (first letter R, C, Q) and the DC node voltages ngspice reports; common practice for which way
 an electrolytic goes; the class-2 dielectric codes of EIA RS-198.
 """
+
 from __future__ import annotations
 
 import io
@@ -58,6 +59,7 @@ def searched() -> dict:
 
 # ---- 6: first contact ---------------------------------------------------------------------
 
+
 def test_there_are_example_specs_including_the_readme_one() -> None:
     assert len(SPECS) >= 5 and any(label.startswith("README") for label, _ in EXAMPLES)
 
@@ -69,7 +71,8 @@ def test_every_example_is_feasible_or_marked_infeasible_in_its_comment(label: st
     best = searched[label].candidates[0]
     assert best["feasible"] is not marked, (
         f"{label}: {'marked infeasible but a design meets every limit' if marked else 'no feasible design'}"
-        f" (binding: {best.get('binding')})")
+        f" (binding: {best.get('binding')})"
+    )
 
 
 @pytest.mark.parametrize("label", [label for label, _ in EXAMPLES])
@@ -84,6 +87,7 @@ def test_no_class2_ceramic_in_a_signal_role_by_default(label: str, searched: dic
 
 
 # ---- 1 and 3: netlist and BOM agree one for one; ngspice runs the netlist ------------------
+
 
 def _elements(netlist: str) -> dict[str, float | str]:
     """Designator -> value (R, C) or model (Q) of the stage's elements (not source or load)."""
@@ -114,8 +118,9 @@ def test_searched_design_netlist_runs_in_ngspice_and_matches_the_bom(searched: d
             assert value == pytest.approx(from_bom[name], rel=1e-9), name
     # ngspice: the netlist runs as written once its commented .op is enabled; the base sits at
     # the model's DC operating point
-    runnable = netlist.replace("* .op\n", ".op\n").replace(".end\n", ".control\nrun\nprint v(base) v(collector)\n"
-                                                                       ".endc\n.end\n")
+    runnable = netlist.replace("* .op\n", ".op\n").replace(
+        ".end\n", ".control\nrun\nprint v(base) v(collector)\n.endc\n.end\n"
+    )
     path = tmp_path / "design.cir"
     path.write_text(runnable)
     done = subprocess.run([NGSPICE, "-b", str(path)], capture_output=True, text=True, timeout=60)
@@ -145,12 +150,30 @@ def test_netlist_command_from_a_spec_and_from_a_candidate_on_stdin(tmp_path: Pat
 
 def test_report_writes_one_self_contained_sheet(tmp_path: Path) -> None:
     storage = str(tmp_path / "s.journal")
-    code, _, err = run_cli("report", str(ROOT / "specs" / "bench_stock_preamp.yaml"), "--storage", storage,
-                           "--trials", "200", "--out", str(tmp_path / "sheet"), "--quiet")
+    code, _, err = run_cli(
+        "report",
+        str(ROOT / "specs" / "bench_stock_preamp.yaml"),
+        "--storage",
+        storage,
+        "--trials",
+        "200",
+        "--out",
+        str(tmp_path / "sheet"),
+        "--quiet",
+    )
     assert code == 0, err
     page = (tmp_path / "sheet" / "rank1.html").read_text(encoding="utf-8")
-    for heading in ("Connections", "Bill of materials", "Operating point", "Metrics and margins", "Worst case",
-                    "Ratings", "Cautions", "Frequency response", "Transfer curve"):
+    for heading in (
+        "Connections",
+        "Bill of materials",
+        "Operating point",
+        "Metrics and margins",
+        "Worst case",
+        "Ratings",
+        "Cautions",
+        "Frequency response",
+        "Transfer curve",
+    ):
         assert f"<h2>{heading}" in page, heading
     assert page.count("<svg") == 2 and "src=" not in page  # plots inline, nothing fetched
     # each node's min <= typ <= max, in volts
@@ -160,10 +183,24 @@ def test_report_writes_one_self_contained_sheet(tmp_path: Path) -> None:
 
 # ---- 4: units ----------------------------------------------------------------------------
 
+
 def test_evaluate_prints_every_figure_with_its_unit() -> None:
-    code, out, _ = run_cli("evaluate", str(ROOT / "specs" / "contact_pickup_buffer.yaml"), "--topology",
-                           "divider_ce", "--set", "r_top=270k", "--set", "r_bottom=51k", "--set",
-                           "r_collector=11k", "--set", "r_emitter=1k3", "--samples", "50")
+    code, out, _ = run_cli(
+        "evaluate",
+        str(ROOT / "specs" / "contact_pickup_buffer.yaml"),
+        "--topology",
+        "divider_ce",
+        "--set",
+        "r_top=270k",
+        "--set",
+        "r_bottom=51k",
+        "--set",
+        "r_collector=11k",
+        "--set",
+        "r_emitter=1k3",
+        "--samples",
+        "50",
+    )
     assert code == 0
     section = None
     for line in out.splitlines():
@@ -179,13 +216,25 @@ def test_evaluate_prints_every_figure_with_its_unit() -> None:
 
 def test_search_table_has_device_noise_why_and_columns(tmp_path: Path) -> None:
     spec = str(ROOT / "specs" / "bench_stock_preamp.yaml")
-    code, out, _ = run_cli("search", spec, "--storage", str(tmp_path / "s.journal"), "--trials", "200", "--top",
-                           "3", "--quiet")
+    code, out, _ = run_cli(
+        "search", spec, "--storage", str(tmp_path / "s.journal"), "--trials", "200", "--top", "3", "--quiet"
+    )
     header = next(line for line in out.splitlines() if line.startswith("rank "))
     for column in ("device", "noise", "why"):
         assert column in header
-    code, out, _ = run_cli("search", spec, "--storage", str(tmp_path / "s.journal"), "--trials", "200", "--top",
-                           "3", "--columns", "rank,current,noise", "--quiet")
+    code, out, _ = run_cli(
+        "search",
+        spec,
+        "--storage",
+        str(tmp_path / "s.journal"),
+        "--trials",
+        "200",
+        "--top",
+        "3",
+        "--columns",
+        "rank,current,noise",
+        "--quiet",
+    )
     rows = [line.split("  ")[0] for line in out.splitlines()]
     header = next(line for line in out.splitlines() if line.startswith("rank "))
     assert header.split() == ["rank", "current", "noise"]
@@ -193,6 +242,7 @@ def test_search_table_has_device_noise_why_and_columns(tmp_path: Path) -> None:
 
 
 # ---- 5: mistakes caught before the search ------------------------------------------------
+
 
 def _spec_file(tmp_path: Path, **changes: object) -> str:
     data = yaml.safe_load((ROOT / "specs" / "bench_stock_preamp.yaml").read_text())
@@ -220,42 +270,74 @@ def _refused(tmp_path: Path, argv: list[str], *needles: str) -> None:
 
 def test_positive_gain_with_only_inverting_topologies_is_refused(tmp_path: Path) -> None:
     inverting = ["divider_ce", "divider_ce_split", "feedback_ce", "ce_follower"]  # the followers are not
-    _refused(tmp_path, [_spec_file(tmp_path, gain={"target": 30, "tolerance": "1 dB"}, topologies=inverting)],
-             "gain.target", "'30'", "no topology in the spec", "non-inverting")
+    _refused(
+        tmp_path,
+        [_spec_file(tmp_path, gain={"target": 30, "tolerance": "1 dB"}, topologies=inverting)],
+        "gain.target",
+        "'30'",
+        "no topology in the spec",
+        "non-inverting",
+    )
 
 
 def test_split_supply_is_refused_by_a_collector_biased_stage_alone(tmp_path: Path) -> None:
     # eligibility (optimizer/validation.py): feedback_ce declares no split supply
-    _refused(tmp_path, [_spec_file(tmp_path, supply="+-12 V", topologies=["feedback_ce"])],
-             "topologies", "feedback_ce cannot", "no split supply: runs on positive, negative")
+    _refused(
+        tmp_path,
+        [_spec_file(tmp_path, supply="+-12 V", topologies=["feedback_ce"])],
+        "topologies",
+        "feedback_ce cannot",
+        "no split supply: runs on positive, negative",
+    )
 
 
 def test_pnp_device_is_refused_by_npn_only_topologies(tmp_path: Path, monkeypatch) -> None:
     monkeypatch.setattr(DividerCE, "polarities", ("npn",))  # as if divider_ce were drawn for npn alone
-    _refused(tmp_path, [_spec_file(tmp_path, devices=["SF-P1"], topologies=["divider_ce"])],
-             "topologies", "divider_ce cannot", "built with npn devices; the spec's are SF-P1 (pnp)")
+    _refused(
+        tmp_path,
+        [_spec_file(tmp_path, devices=["SF-P1"], topologies=["divider_ce"])],
+        "topologies",
+        "divider_ce cannot",
+        "built with npn devices; the spec's are SF-P1 (pnp)",
+    )
 
 
 def test_one_milli_ohm_is_refused_with_the_megohm_hint(tmp_path: Path) -> None:
-    _refused(tmp_path, [_spec_file(tmp_path, load_impedance="1m")], "load_impedance", "'1m'",
-             "milli-ohm? write 1M or 1meg for megohm")
+    _refused(
+        tmp_path,
+        [_spec_file(tmp_path, load_impedance="1m")],
+        "load_impedance",
+        "'1m'",
+        "milli-ohm? write 1M or 1meg for megohm",
+    )
     assert load_spec(_spec_file(tmp_path, load_capacitance="1m")).load_capacitance == pytest.approx(1e-3)
 
 
 def test_supply_current_of_mega_amps_is_refused(tmp_path: Path) -> None:
-    _refused(tmp_path, [_spec_file(tmp_path, limits={"supply_current_max": "3 MA"})],
-             "limits.supply_current_max", "'3 MA'", "at most 1 A")
+    _refused(
+        tmp_path,
+        [_spec_file(tmp_path, limits={"supply_current_max": "3 MA"})],
+        "limits.supply_current_max",
+        "'3 MA'",
+        "at most 1 A",
+    )
     assert load_spec(_spec_file(tmp_path, limits={"supply_current_max": "3 mA"})).limits.supply_current_max == 3e-3
 
 
 def test_unknown_plot_name_and_column_are_refused_before_the_search(tmp_path: Path) -> None:
     spec = str(ROOT / "specs" / "bench_stock_preamp.yaml")
-    _refused(tmp_path, [spec, "--plot", str(tmp_path / "pareto.svg")], "--plot", "pareto.svg",
-             "front.svg, response.svg or transfer.svg")
+    _refused(
+        tmp_path,
+        [spec, "--plot", str(tmp_path / "pareto.svg")],
+        "--plot",
+        "pareto.svg",
+        "front.svg, response.svg or transfer.svg",
+    )
     _refused(tmp_path, [spec, "--columns", "rank,colour"], "--columns", "rank,colour", "noise")
 
 
 # ---- 6: cautions where called for --------------------------------------------------------
+
 
 def test_mains_caution_only_where_the_scenario_or_supply_calls_for_it(tmp_path: Path) -> None:
     from optimizer.candidates import assess

@@ -1,4 +1,5 @@
 """Parts catalogs: the shipped catalogs, row validation and part choice."""
+
 from __future__ import annotations
 
 import importlib.util
@@ -34,7 +35,9 @@ def test_full_catalog_values_belong_to_their_series() -> None:
 
 
 def test_generated_catalog_is_reproducible(tmp_path: Path) -> None:
-    spec = importlib.util.spec_from_file_location("generate_full_catalog", ROOT / "scripts" / "generate_full_catalog.py")
+    spec = importlib.util.spec_from_file_location(
+        "generate_full_catalog", ROOT / "scripts" / "generate_full_catalog.py"
+    )
     module = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(module)
     module.generate(tmp_path / "eseries_full")
@@ -71,14 +74,18 @@ def _broken_copy(tmp_path: Path, file: str, line: int, old: str, new: str) -> Pa
     return target
 
 
-@pytest.mark.parametrize(("file", "old", "new", "column"), [
-    ("resistors.csv", ",5%,", ",55%,", "tolerance"),
-    ("resistors.csv", ",0.125,", ",lots,", "power_rating"),
-    ("transistors.csv", "npn-general,npn", "npn-general,nqn", "polarity"),
-    ("capacitors.csv", ",50,", ",-50,", "voltage_rating"),
-])
-def test_malformed_rows_name_file_line_column_and_value(tmp_path: Path, file: str, old: str, new: str,
-                                                         column: str) -> None:
+@pytest.mark.parametrize(
+    ("file", "old", "new", "column"),
+    [
+        ("resistors.csv", ",5%,", ",55%,", "tolerance"),
+        ("resistors.csv", ",0.125,", ",lots,", "power_rating"),
+        ("transistors.csv", "npn-general,npn", "npn-general,nqn", "polarity"),
+        ("capacitors.csv", ",50,", ",-50,", "voltage_rating"),
+    ],
+)
+def test_malformed_rows_name_file_line_column_and_value(
+    tmp_path: Path, file: str, old: str, new: str, column: str
+) -> None:
     directory = _broken_copy(tmp_path, file, 2, old, new)
     with pytest.raises(InputError) as caught:
         load_catalog_dir(directory)

@@ -1,4 +1,5 @@
 """The `stagefit` command: exit codes and what a newcomer sees."""
+
 from __future__ import annotations
 
 import json
@@ -46,7 +47,19 @@ def test_series_prints_one_decade_of_e12(capsys: pytest.CaptureFixture[str]) -> 
     # IEC 60063 E12 (from memory): 1.0 1.2 1.5 1.8 2.2 2.7 3.3 3.9 4.7 5.6 6.8 8.2
     assert main(["series", "E12", "--decade", "1k"]) == EXIT_OK
     assert capsys.readouterr().out.split() == [
-        "1k", "1.2k", "1.5k", "1.8k", "2.2k", "2.7k", "3.3k", "3.9k", "4.7k", "5.6k", "6.8k", "8.2k"]
+        "1k",
+        "1.2k",
+        "1.5k",
+        "1.8k",
+        "2.2k",
+        "2.7k",
+        "3.3k",
+        "3.9k",
+        "4.7k",
+        "5.6k",
+        "6.8k",
+        "8.2k",
+    ]
 
 
 def test_series_unknown_name_is_bad_input(capsys: pytest.CaptureFixture[str]) -> None:
@@ -95,10 +108,17 @@ def test_help_imports_none_of_the_heavy_libraries() -> None:
     import sys
 
     heavy = ("optuna", "scipy", "pandas", "pydantic", "matplotlib", "flask", "sqlalchemy")
-    code = ("import sys\nfrom optimizer.cli import build_parser\nbuild_parser().format_help()\n"
-            f"print(','.join(m for m in {heavy!r} if m in sys.modules))")
-    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
-                          cwd=Path(__file__).resolve().parent.parent)
+    code = (
+        "import sys\nfrom optimizer.cli import build_parser\nbuild_parser().format_help()\n"
+        f"print(','.join(m for m in {heavy!r} if m in sys.modules))"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", code],
+        capture_output=True,
+        text=True,
+        check=True,
+        cwd=Path(__file__).resolve().parent.parent,
+    )
     assert done.stdout.strip() == "", f"imported for --help: {done.stdout.strip()}"
 
 
@@ -112,13 +132,15 @@ def test_package_names_are_the_api_functions_after_lazy_import() -> None:
     module = importlib.import_module("optimizer.search")
     assert optimizer.search is module.search and callable(optimizer.search)
     from optimizer import assess, load_spec  # noqa: F401  (each resolves to its module's function)
+
     assert optimizer.assess is importlib.import_module("optimizer.candidates").assess
     with pytest.raises(AttributeError):
         optimizer.no_such_name  # noqa: B018
 
 
-def test_check_takes_a_bundled_example_by_name(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
-                                                capsys: pytest.CaptureFixture[str]) -> None:
+def test_check_takes_a_bundled_example_by_name(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
+) -> None:
     monkeypatch.chdir(tmp_path)  # no such file here: the name is the bundled example's
     assert main(["check", "contact_pickup_buffer"]) == EXIT_OK
     assert "valid" in capsys.readouterr().out
@@ -126,8 +148,10 @@ def test_check_takes_a_bundled_example_by_name(tmp_path: Path, monkeypatch: pyte
 
 def test_a_missing_extra_is_named(tmp_path: Path) -> None:
     # flask made unimportable in a fresh interpreter: `stagefit serve` says which extra brings it (exit 4)
-    code = ("import sys; sys.modules['flask'] = None\n"
-            "from optimizer.cli import main; sys.exit(main(['serve', '--port', '0']))")
+    code = (
+        "import sys; sys.modules['flask'] = None\n"
+        "from optimizer.cli import main; sys.exit(main(['serve', '--port', '0']))"
+    )
     done = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True, timeout=120)
     assert done.returncode == 4, done.stderr
     assert "stagefit[server]" in done.stderr and "Traceback" not in done.stderr

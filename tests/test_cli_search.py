@@ -1,4 +1,5 @@
 """`stagefit search` and `stagefit bom`: formats, reuse of a stored search, plots, errors."""
+
 from __future__ import annotations
 
 import csv
@@ -11,11 +12,18 @@ import yaml
 
 from optimizer.cli import EXIT_BAD_INPUT, EXIT_OK, main
 
-SPEC = {"name": "cli search", "supply": "15 V", "gain": {"target": -30, "tolerance": "2 dB"},
-        "source_impedance": "2k2", "load_impedance": "22k", "band": ["20 Hz", "20 kHz"],
-        "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
-        "parts": {"catalog": "bench_stock", "in_stock_only": True, "resistor_series": "E12"},
-        "topologies": ["feedback_ce", "divider_ce"], "search": {"trials": 256, "seed": 5}}
+SPEC = {
+    "name": "cli search",
+    "supply": "15 V",
+    "gain": {"target": -30, "tolerance": "2 dB"},
+    "source_impedance": "2k2",
+    "load_impedance": "22k",
+    "band": ["20 Hz", "20 kHz"],
+    "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
+    "parts": {"catalog": "bench_stock", "in_stock_only": True, "resistor_series": "E12"},
+    "topologies": ["feedback_ce", "divider_ce"],
+    "search": {"trials": 256, "seed": 5},
+}
 
 
 @pytest.fixture(scope="module")
@@ -27,7 +35,9 @@ def workspace(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return root
 
 
-def _run(workspace: Path, capsys: pytest.CaptureFixture[str], *extra: str, command: str = "search") -> tuple[int, str, str]:
+def _run(
+    workspace: Path, capsys: pytest.CaptureFixture[str], *extra: str, command: str = "search"
+) -> tuple[int, str, str]:
     code = main([command, str(workspace / "spec.yaml"), "--storage", str(workspace / "s.journal"), *extra])
     out = capsys.readouterr()
     return code, out.out, out.err
@@ -46,8 +56,18 @@ def test_json_candidates_follow_the_documented_shape(workspace: Path, capsys) ->
     assert code == EXIT_OK
     data = json.loads(out)
     first = data["candidates"][0]
-    for key in ("rank", "topology", "feasible", "score", "conditions", "parts", "transistor", "metrics",
-                "worst_case", "violations"):
+    for key in (
+        "rank",
+        "topology",
+        "feasible",
+        "score",
+        "conditions",
+        "parts",
+        "transistor",
+        "metrics",
+        "worst_case",
+        "violations",
+    ):
         assert key in first
     assert first["rank"] == 1 and set(first["transistor"]["model"]) >= {"IS", "BF", "VAF"}
     assert first["parts"] and all(set(p) >= {"value", "label", "part_id"} for p in first["parts"].values())
@@ -104,8 +124,23 @@ def test_ctrl_c_fails_the_running_trials_and_the_search_resumes(tmp_path) -> Non
 
     journal = tmp_path / "runs.journal"
     spec_file = Path(__file__).resolve().parents[1] / "specs" / "line_driver_24v.yaml"
-    command = [sys.executable, "-m", "optimizer.cli", "search", str(spec_file), "--storage", str(journal),
-               "--trials", "1500", "--seed", "4", "--top", "1", "--format", "json"]
+    command = [
+        sys.executable,
+        "-m",
+        "optimizer.cli",
+        "search",
+        str(spec_file),
+        "--storage",
+        str(journal),
+        "--trials",
+        "1500",
+        "--seed",
+        "4",
+        "--top",
+        "1",
+        "--format",
+        "json",
+    ]
     search_id = spec_search_id(with_search(load_spec(spec_file), trials=1500, seed=4))
     run = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:

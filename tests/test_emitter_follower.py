@@ -1,4 +1,5 @@
 """emitter_follower: bias, mid-band, swing, distortion, hand design; each check names its reference."""
+
 from __future__ import annotations
 
 import math
@@ -12,13 +13,30 @@ from optimizer.devices import Device, thermal_voltage
 from optimizer.synthesis import HandRequirements, rounded_designs
 from optimizer.topologies import Conditions, get_topology
 
-DEVICE = Device(id="npn-follow-a", polarity="npn", hfe_min=100, hfe_typ=200, hfe_max=300, IS=1e-14, BF=200,
-                NF=1.0, VAF=100.0, RB=10.0, CJE=8e-12, CJC=4e-12, TF=4e-10, vce_sat=0.2, vceo_max=40.0, p_max=0.5)
+DEVICE = Device(
+    id="npn-follow-a",
+    polarity="npn",
+    hfe_min=100,
+    hfe_typ=200,
+    hfe_max=300,
+    IS=1e-14,
+    BF=200,
+    NF=1.0,
+    VAF=100.0,
+    RB=10.0,
+    CJE=8e-12,
+    CJC=4e-12,
+    TF=4e-10,
+    vce_sat=0.2,
+    vceo_max=40.0,
+    p_max=0.5,
+)
 # our own numbers: 12 V, 100k/120k divider, 5.6k emitter, 1 uF in, 10 uF out
 PARTS = dict(r_top=100e3, r_bottom=120e3, r_follower=5.6e3, c_in=1e-6, c_out=10e-6)
 TOPO = get_topology("emitter_follower")
-needs_ngspice = pytest.mark.skipif(shutil.which("ngspice") is None,
-                                   reason="ngspice not installed: apt-get install ngspice")
+needs_ngspice = pytest.mark.skipif(
+    shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice"
+)
 
 
 def one(result, key):
@@ -106,8 +124,9 @@ def test_thd_from_a_low_source_is_the_static_fft():
 
 
 def test_hand_design_rounds_to_the_series_and_is_active():
-    req = HandRequirements(supply=9.0, gain=1.0, load_impedance=10e3, source_impedance=1e3, f_low=20.0,
-                           collector_current=1e-3, hfe=200.0)
+    req = HandRequirements(
+        supply=9.0, gain=1.0, load_impedance=10e3, source_impedance=1e3, f_low=20.0, collector_current=1e-3, hfe=200.0
+    )
     hand = TOPO.hand_design(req)
     assert hand["r_follower"] == pytest.approx(4.5e3)  # emitter at half the supply at 1 mA
     for design in rounded_designs(hand, "E24", "E6")[:4]:
@@ -121,8 +140,13 @@ def test_gain_bound_prunes_gains_above_one():
     bound = TOPO.gain_bound({"r_follower": np.array([1e3, 100e3])}, 10e3)
     assert np.all(bound == 1.0)
     rng = np.random.default_rng(3)
-    parts = {"r_top": rng.uniform(10e3, 1e6, 200), "r_bottom": rng.uniform(10e3, 1e6, 200),
-             "r_follower": rng.uniform(1e3, 50e3, 200), "c_in": 1e-6, "c_out": 10e-6}
+    parts = {
+        "r_top": rng.uniform(10e3, 1e6, 200),
+        "r_bottom": rng.uniform(10e3, 1e6, 200),
+        "r_follower": rng.uniform(1e3, 50e3, 200),
+        "c_in": 1e-6,
+        "c_out": 10e-6,
+    }
     gain = TOPO.evaluate(parts, DEVICE, Conditions(12.0, 600.0, 10e3), full=False).metrics["gain"]
     assert np.all(np.abs(gain) < 1.0)
 

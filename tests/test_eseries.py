@@ -1,4 +1,5 @@
 """Preferred-number series against IEC 60063 and the `eseries` reference package."""
+
 from __future__ import annotations
 
 import numpy as np
@@ -8,8 +9,32 @@ from optimizer import eseries
 from optimizer.errors import InputError
 
 # IEC 60063 (from memory): E24 with its historical values, and the E192 oddity 9.20.
-E24_IEC = [1.0, 1.1, 1.2, 1.3, 1.5, 1.6, 1.8, 2.0, 2.2, 2.4, 2.7, 3.0,
-           3.3, 3.6, 3.9, 4.3, 4.7, 5.1, 5.6, 6.2, 6.8, 7.5, 8.2, 9.1]
+E24_IEC = [
+    1.0,
+    1.1,
+    1.2,
+    1.3,
+    1.5,
+    1.6,
+    1.8,
+    2.0,
+    2.2,
+    2.4,
+    2.7,
+    3.0,
+    3.3,
+    3.6,
+    3.9,
+    4.3,
+    4.7,
+    5.1,
+    5.6,
+    6.2,
+    6.8,
+    7.5,
+    8.2,
+    9.1,
+]
 E12_IEC = [1.0, 1.2, 1.5, 1.8, 2.2, 2.7, 3.3, 3.9, 4.7, 5.6, 6.8, 8.2]
 E6_IEC = [1.0, 1.5, 2.2, 3.3, 4.7, 6.8]
 E3_IEC = [1.0, 2.2, 4.7]

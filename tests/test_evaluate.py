@@ -1,4 +1,5 @@
 """`stagefit evaluate` on every example spec, with the hand method's design."""
+
 from __future__ import annotations
 
 import json
@@ -51,14 +52,20 @@ def test_evaluate_every_example_spec(path: Path, capsys: pytest.CaptureFixture[s
 
 def test_evaluate_table_shows_cautions(capsys: pytest.CaptureFixture[str]) -> None:
     topology, settings = _hand_settings(SPECS[0])
-    assert main(["evaluate", str(SPECS[0]), "--topology", topology, "--samples", "100"]
-                + [a for s in settings for a in ("--set", s)]) == EXIT_OK
+    assert (
+        main(
+            ["evaluate", str(SPECS[0]), "--topology", topology, "--samples", "100"]
+            + [a for s in settings for a in ("--set", s)]
+        )
+        == EXIT_OK
+    )
     out = capsys.readouterr().out
     assert "caution:" in out and "worst case" in out
 
 
-@pytest.mark.parametrize(("setting", "named"), [("r_top=12 Q", "r_top"), ("r_nowhere=1k", "r_nowhere"),
-                                                ("r_top", "ROLE=VALUE")])
+@pytest.mark.parametrize(
+    ("setting", "named"), [("r_top=12 Q", "r_top"), ("r_nowhere=1k", "r_nowhere"), ("r_top", "ROLE=VALUE")]
+)
 def test_evaluate_bad_settings_are_bad_input(setting: str, named: str, capsys: pytest.CaptureFixture[str]) -> None:
     code = main(["evaluate", str(SPECS[0]), "--topology", "divider_ce", "--set", setting])
     assert code == EXIT_BAD_INPUT
@@ -76,17 +83,25 @@ def test_a_metric_close_to_its_limit_gets_a_caution() -> None:
     catalog = load_catalog(spec.parts.catalog)
     swing = assess(spec, catalog, topology, parts, samples=50)["metrics"]["swing_vpp"]
     data = spec_to_dict(spec)
-    data["limits"] = {**{k: v for k, v in data["limits"].items() if v is not None and k != "thd_level"},
-                      "swing_min": 0.95 * swing}
+    data["limits"] = {
+        **{k: v for k, v in data["limits"].items() if v is not None and k != "thd_level"},
+        "swing_min": 0.95 * swing,
+    }
     near = assess(parse_spec(data), catalog, topology, parts, samples=50)
     assert any("swing_vpp is within" in note for note in near["cautions"])
 
 
-@pytest.mark.parametrize("supply,gain,load,current,r_emitter_dc", [
-    (12.0, 10.0, 47e3, 1e-3, 0.0), (9.0, 3.0, 10e3, 0.5e-3, 470.0), (24.0, 40.0, 2.2e3, 2e-3, 1e3),
-    (5.0, 1.5, 100e3, 0.1e-3, 0.0), (15.0, 20.0, 600.0, 5e-3, 100.0)])
-def test_centred_collector_resistor_matches_a_bracketing_root_finder(supply, gain, load, current,
-                                                                     r_emitter_dc) -> None:
+@pytest.mark.parametrize(
+    "supply,gain,load,current,r_emitter_dc",
+    [
+        (12.0, 10.0, 47e3, 1e-3, 0.0),
+        (9.0, 3.0, 10e3, 0.5e-3, 470.0),
+        (24.0, 40.0, 2.2e3, 2e-3, 1e3),
+        (5.0, 1.5, 100e3, 0.1e-3, 0.0),
+        (15.0, 20.0, 600.0, 5e-3, 100.0),
+    ],
+)
+def test_centred_collector_resistor_matches_a_bracketing_root_finder(supply, gain, load, current, r_emitter_dc) -> None:
     """The closed-form centre of the AC load line equals the root scipy.optimize.brentq (a
     general-purpose reference library) finds of the same centre condition."""
     from scipy.optimize import brentq

@@ -9,6 +9,7 @@ r_feedback's end on q1's emitter, after Middlebrook), with the loop closed and b
 model's phase margin comes from its two dominant poles. Every other metric of the same designs
 is checked in tests/test_spice_agreement.py.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -32,8 +33,9 @@ from spice_harness import phase_margin_of, spice_loop_gain, spice_midband, spice
 TOPOLOGY = get_topology("feedback_pair")
 DESIGNS = pair_designs()
 SPEC_LEVEL_VPP = 2.0 * math.sqrt(2.0)  # 1 V rms at the load
-needs_spice = pytest.mark.skipif(shutil.which("ngspice") is None,
-                                 reason="ngspice not installed: apt-get install ngspice")
+needs_spice = pytest.mark.skipif(
+    shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice"
+)
 
 
 def _arrays(parts: dict[str, float]) -> dict[str, np.ndarray]:
@@ -58,8 +60,9 @@ def test_gain_thd_loop_gain_and_phase_margin_agree_with_ngspice(design) -> None:
     # THD reduced by the loop, at the spec's 1 V rms where the design swings it (else 30 % of its clip)
     level = SPEC_LEVEL_VPP if m["swing_vpp"] > 2.0 * SPEC_LEVEL_VPP else 0.3 * m["clip_vpp"]
     at_level = dataclasses.replace(design.conditions, signal_vpp=level)
-    thd = float(TOPOLOGY.evaluate(_arrays(design.parts), design.device, at_level, full=False,
-                                  thd_solve=True).metrics["thd"][0])
+    thd = float(
+        TOPOLOGY.evaluate(_arrays(design.parts), design.device, at_level, full=False, thd_solve=True).metrics["thd"][0]
+    )
     assert thd == pytest.approx(spice_thd(*args, vpp_out=level), rel=0.30)
 
 
@@ -107,8 +110,9 @@ def test_gain_bound_holds_over_random_designs() -> None:
     rng = np.random.default_rng(5)
     base = DESIGNS[0]
     n = 4000
-    parts = {k: v * np.exp(rng.uniform(-1.0, 1.0, n)) if k.startswith("r_") else np.full(n, v)
-             for k, v in base.parts.items()}
+    parts = {
+        k: v * np.exp(rng.uniform(-1.0, 1.0, n)) if k.startswith("r_") else np.full(n, v) for k, v in base.parts.items()
+    }
     result = TOPOLOGY.evaluate(parts, base.device, base.conditions, full=False)
     ok = result.operating_point["active"].astype(bool)
     bound = TOPOLOGY.gain_bound(parts, base.conditions.load_impedance)
@@ -117,8 +121,9 @@ def test_gain_bound_holds_over_random_designs() -> None:
 
 
 def test_hand_design_rounds_to_an_active_stage_near_its_gain() -> None:
-    req = HandRequirements(supply=15.0, gain=10.0, load_impedance=47e3, source_impedance=1e3,
-                           collector_current=2e-3, hfe=400)
+    req = HandRequirements(
+        supply=15.0, gain=10.0, load_impedance=47e3, source_impedance=1e3, collector_current=2e-3, hfe=400
+    )
     device = check_device(400)
     conditions = Conditions(supply=15.0, source_impedance=1e3, load_impedance=47e3)
     for parts in rounded_designs(TOPOLOGY.hand_design(req), "E24", "E6", limit=4):
@@ -133,19 +138,37 @@ def test_a_design_below_the_phase_margin_limit_is_infeasible_with_that_reason() 
     design = next(d for d in DESIGNS if "CL1n" in d.name and "A3" in d.name)  # about 27 degrees
     r = TOPOLOGY.evaluate(_arrays(design.parts), design.device, design.conditions, full=False)
     assert float(r.metrics["phase_margin_deg"][0]) < 45.0
-    spec = parse_spec({"name": "pm", "supply": "15 V", "gain": {"target": 3, "tolerance": "3 dB"},
-                       "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"]})
+    spec = parse_spec(
+        {
+            "name": "pm",
+            "supply": "15 V",
+            "gain": {"target": 3, "tolerance": "3 dB"},
+            "source_impedance": 600,
+            "load_impedance": "47k",
+            "band": ["20 Hz", "20 kHz"],
+        }
+    )
     assert spec.limits.phase_margin_min_deg == 45.0  # default, common practice
     v = scoring.limit_violations(spec, r.metrics, r.ratings, {}, r.operating_point["active"], core_only=True)
     assert v["phase_margin_min_deg"][0] > 0 and scoring.binding_limit(v)[0] == "phase_margin_min_deg"
     # a stage without an overall loop reports no phase margin, and the limit does not judge it
     other = get_topology("divider_ce").evaluate(
-        {"r_top": np.array([68e3]), "r_bottom": np.array([10e3]), "r_collector": np.array([10e3]),
-         "r_emitter": np.array([1e3]), "c_in": np.array([1e-6]), "c_out": np.array([1e-6])},
-        design.device, design.conditions, full=False)
+        {
+            "r_top": np.array([68e3]),
+            "r_bottom": np.array([10e3]),
+            "r_collector": np.array([10e3]),
+            "r_emitter": np.array([1e3]),
+            "c_in": np.array([1e-6]),
+            "c_out": np.array([1e-6]),
+        },
+        design.device,
+        design.conditions,
+        full=False,
+    )
     assert np.isnan(other.metrics["phase_margin_deg"][0])
-    v = scoring.limit_violations(spec, other.metrics, other.ratings, {}, other.operating_point["active"],
-                                 core_only=True)
+    v = scoring.limit_violations(
+        spec, other.metrics, other.ratings, {}, other.operating_point["active"], core_only=True
+    )
     assert v["phase_margin_min_deg"][0] == 0.0
 
 

@@ -6,6 +6,7 @@ External references: RFC 9457 (problem details as application/problem+json), RFC
 (the "billion laughs" expansion is common practice in fuzzing parsers), Unicode (a lone
 UTF-16 surrogate is not a character and cannot be encoded as UTF-8).
 """
+
 from __future__ import annotations
 
 import importlib
@@ -50,6 +51,7 @@ def app(tmp_path):
         settings = {"STAGEFIT_DATA_DIR": str(tmp_path), **{k: str(v) for k, v in config.items()}}
         made.append(create_app(settings))
         return made[-1]
+
     yield build
     for one in made:
         one.extensions["stagefit"].jobs.stop()
@@ -64,6 +66,7 @@ def bomb(levels: int) -> str:
 
 
 # --- F1: a torn journal line ---------------------------------------------------------------
+
 
 def _journal_with_trials(path: Path, trials: int) -> None:
     from optimizer.storage import open_storage
@@ -93,7 +96,7 @@ def test_torn_journal_line_is_skipped_with_its_offset_and_later_records_stay_rea
     caplog.set_level(logging.WARNING, logger="stagefit.storage")
     after = _fresh_trials(path)
     finished = [t.params for t in after if t.state == optuna.trial.TrialState.COMPLETE]
-    assert finished[:len(before)] == before and len(finished) == len(before) + 3
+    assert finished[: len(before)] == before and len(finished) == len(before) + 3
     offset = data.rfind(b"\n", 0, torn_at) + 1
     assert any(f"byte offset {offset}" in r.getMessage() for r in caplog.records)
 
@@ -130,6 +133,7 @@ def test_storage_check_and_repair_report_the_offset_and_keep_a_backup(tmp_path, 
 
 # --- F2: no half-made searches ---------------------------------------------------------------
 
+
 def test_default_thd_level_is_judged_against_a_low_supply():
     data = pickup(supply="0.5 V")
     data.pop("limits")
@@ -160,8 +164,16 @@ def _plant(storage, name: str, attrs: dict) -> None:
 def test_unreadable_or_half_made_search_is_failed_with_its_reason_and_deletable(app):
     client_app = app(STAGEFIT_QUEUE_ONLY=1)
     storage = client_app.extensions["stagefit"].storage
-    _plant(storage, "bad-spec", {"spec": {"name": "x", "supply": "lots"}, "budget": 10, "status": "queued",
-                                 "created": "2026-01-01T00:00:00+00:00"})
+    _plant(
+        storage,
+        "bad-spec",
+        {
+            "spec": {"name": "x", "supply": "lots"},
+            "budget": 10,
+            "status": "queued",
+            "created": "2026-01-01T00:00:00+00:00",
+        },
+    )
     _plant(storage, "half-made", {"spec": pickup(), "budget": 10})  # creation cut short: no status
     client = client_app.test_client()
     listed = {s["id"]: s["status"] for s in client.get("/v1/searches").get_json()["searches"]}
@@ -180,14 +192,23 @@ def test_a_search_that_cannot_run_is_stored_failed_with_its_reason(tmp_path):
     from optimizer.worker import work_once
 
     storage = open_storage(tmp_path / "s.journal")
-    _plant(storage, "cannot-run", {"spec": {"name": "x", "supply": "lots"}, "budget": 10, "status": "queued",
-                                   "created": "2026-01-01T00:00:00+00:00"})
+    _plant(
+        storage,
+        "cannot-run",
+        {
+            "spec": {"name": "x", "supply": "lots"},
+            "budget": 10,
+            "status": "queued",
+            "created": "2026-01-01T00:00:00+00:00",
+        },
+    )
     work_once(storage, should_stop=lambda: False)
     assert [s["status"] for s in list_searches(storage)] == ["failed"]
     assert "cannot run" in search_status(storage, "cannot-run")["reason"]
 
 
 # --- F3: ?wait= must not take every request thread ------------------------------------------
+
 
 def test_waiters_are_capped_below_the_request_threads(app):
     client_app = app(STAGEFIT_QUEUE_ONLY=1, STAGEFIT_THREADS=4, STAGEFIT_MAX_WAIT=30)
@@ -219,14 +240,17 @@ def test_waiters_are_capped_below_the_request_threads(app):
 
 # --- F4: one safe loader on both doors -------------------------------------------------------
 
+
 def test_cli_refuses_a_yaml_alias_bomb_like_the_service(app, tmp_path, capsys):
     path = tmp_path / "bomb.yaml"
     path.write_text(bomb(6))  # 531,441 leaves from 300 bytes
     assert main(["check", str(path)]) == EXIT_BAD_INPUT
     err = capsys.readouterr().err
     assert "alias" in err and len(err.strip().splitlines()) == 1, err
-    body = problem(app(STAGEFIT_QUEUE_ONLY=1).test_client().post(
-        "/v1/searches", data=bomb(6), content_type="application/yaml"), 400)
+    body = problem(
+        app(STAGEFIT_QUEUE_ONLY=1).test_client().post("/v1/searches", data=bomb(6), content_type="application/yaml"),
+        400,
+    )
     assert "alias" in body["detail"]
 
 
@@ -241,6 +265,7 @@ def test_a_few_yaml_anchors_are_still_read(tmp_path):
 
 # --- F5: hostile JSON gets a 4xx, never a 500 --------------------------------------------------
 
+
 def test_deep_json_nesting_is_a_400_not_a_500(app):
     client = app(STAGEFIT_QUEUE_ONLY=1).test_client()
     problem(client.post("/v1/searches", data="[" * 60_000 + "]" * 60_000, content_type="application/json"), 400)
@@ -254,8 +279,12 @@ def test_deep_json_nesting_is_a_400_not_a_500(app):
 
 def test_huge_integer_is_a_422_not_a_500(app):
     client = app(STAGEFIT_QUEUE_ONLY=1).test_client()
-    body = problem(client.post("/v1/searches", data=json.dumps(pickup()).replace('"9 V"', "1" + "0" * 400),
-                               content_type="application/json"), 422)
+    body = problem(
+        client.post(
+            "/v1/searches", data=json.dumps(pickup()).replace('"9 V"', "1" + "0" * 400), content_type="application/json"
+        ),
+        422,
+    )
     assert body["errors"][0]["field"] == "supply" and len(body["detail"]) < 400
 
 
@@ -269,9 +298,18 @@ def test_lone_surrogate_is_a_400_not_a_500(app):
 @pytest.mark.parametrize("device", [["npn-general"], {"id": "npn-general"}, 7])
 def test_unhashable_or_odd_device_is_a_422_not_a_500(app, device):
     client = app(STAGEFIT_QUEUE_ONLY=1).test_client()
-    body = problem(client.post("/v1/evaluate", json={
-        "spec": pickup(), "topology": "divider_ce", "device": device,
-        "parts": {"r_top": "1M", "r_bottom": "330k", "r_collector": "10k", "r_emitter": "2k2"}}), 422)
+    body = problem(
+        client.post(
+            "/v1/evaluate",
+            json={
+                "spec": pickup(),
+                "topology": "divider_ce",
+                "device": device,
+                "parts": {"r_top": "1M", "r_bottom": "330k", "r_collector": "10k", "r_emitter": "2k2"},
+            },
+        ),
+        422,
+    )
     assert [e["field"] for e in body["errors"]] == ["device"]
 
 
@@ -294,32 +332,67 @@ def test_nan_in_a_response_plot_is_a_422_not_a_500(app, monkeypatch):
     assert done.status_code == 200, done.data[:300]
     search_id = done.get_json()["search"]["id"]
     for topology in TOPOLOGIES.values():
-        monkeypatch.setattr(type(topology), "frequency_response",
-                            lambda self, parts, device, conditions, freqs: np.full((1, len(freqs)), np.nan + 0j))
+        monkeypatch.setattr(
+            type(topology),
+            "frequency_response",
+            lambda self, parts, device, conditions, freqs: np.full((1, len(freqs)), np.nan + 0j),
+        )
     problem(client.get(f"/v1/searches/{search_id}/candidates/1/response.svg"), 422)
 
 
 # --- F6: CLI exit codes and bounded options ---------------------------------------------------
 
+
 @pytest.mark.parametrize("option", [["--top", "0"], ["--top", "-5"], ["--top", "٣"], ["--trials", "0"]])
 def test_cli_search_options_are_bounded(tmp_path, capsys, option):
-    assert main(["search", str(ROOT / "specs" / "contact_pickup_buffer.yaml"),
-                 "--storage", str(tmp_path / "s.journal"), *option]) == EXIT_BAD_INPUT
+    assert (
+        main(
+            [
+                "search",
+                str(ROOT / "specs" / "contact_pickup_buffer.yaml"),
+                "--storage",
+                str(tmp_path / "s.journal"),
+                *option,
+            ]
+        )
+        == EXIT_BAD_INPUT
+    )
     err = capsys.readouterr().err
     assert len(err.strip().splitlines()) == 1 and option[0] in err
 
 
 def test_cli_samples_are_bounded(capsys):
-    assert main(["evaluate", str(ROOT / "specs" / "contact_pickup_buffer.yaml"), "--topology", "divider_ce",
-                 "--set", "r_top=1M", "--samples", str(10**8)]) == EXIT_BAD_INPUT
+    assert (
+        main(
+            [
+                "evaluate",
+                str(ROOT / "specs" / "contact_pickup_buffer.yaml"),
+                "--topology",
+                "divider_ce",
+                "--set",
+                "r_top=1M",
+                "--samples",
+                str(10**8),
+            ]
+        )
+        == EXIT_BAD_INPUT
+    )
     assert "--samples" in capsys.readouterr().err
 
 
 def test_cli_exit_code_4_for_a_storage_it_cannot_write(tmp_path, capsys):
     blocker = tmp_path / "file"
     blocker.write_text("not a directory")
-    code = main(["search", str(ROOT / "specs" / "contact_pickup_buffer.yaml"), "--trials", "8",
-                 "--storage", str(blocker / "s.journal")])
+    code = main(
+        [
+            "search",
+            str(ROOT / "specs" / "contact_pickup_buffer.yaml"),
+            "--trials",
+            "8",
+            "--storage",
+            str(blocker / "s.journal"),
+        ]
+    )
     assert code == EXIT_ENVIRONMENT and "Traceback" not in capsys.readouterr().err
 
 
@@ -334,6 +407,7 @@ def test_cli_exit_code_3_for_an_infeasible_spec_with_ranked_misses(tmp_path, cap
 
 
 # --- F7: bounded batch and queue; concurrent CLI runs share a search ---------------------------
+
 
 def test_batch_size_is_bounded():
     with pytest.raises(InputError) as error:
@@ -370,6 +444,7 @@ def test_a_cli_run_that_finds_its_search_just_created_joins_it(tmp_path, capsys,
 
 # --- F8: 413, double slashes, foreign digits, long names ------------------------------------
 
+
 def test_double_slash_path_is_a_404_problem_not_a_redirect(app):
     client = app(STAGEFIT_QUEUE_ONLY=1).test_client()
     problem(client.get("/v1/searches//candidates"), 404)
@@ -383,8 +458,7 @@ def test_arabic_indic_digits_are_not_numbers(app):
 
 
 def test_long_search_name_is_refused(app):
-    body = problem(app(STAGEFIT_QUEUE_ONLY=1).test_client().post(
-        "/v1/searches", json=pickup(name="n" * 200_000)), 422)
+    body = problem(app(STAGEFIT_QUEUE_ONLY=1).test_client().post("/v1/searches", json=pickup(name="n" * 200_000)), 422)
     assert body["errors"][0]["field"] == "name" and len(body["detail"]) < 500
 
 

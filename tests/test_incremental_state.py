@@ -1,6 +1,7 @@
 """Incremental state against a from-scratch recomputation on the same trials: the sampler's
 elite and front, and the trial tally behind the status (counts and best so far), each
 checked against a reference computed here from every trial of the study."""
+
 from __future__ import annotations
 
 import json
@@ -61,8 +62,11 @@ def test_sampler_elite_and_front_match_a_recomputation_from_every_trial(store) -
     # the front: every feasible trial no other feasible trial dominates (brute force)
     directions = [d for _, d in spec.objective_directions]
     feasible = [t for t in done if trial_record(t)["feasible"]]
-    front = {t.number for t in feasible
-             if not any(_dominates(np.array(o.values), np.array(t.values), directions) for o in feasible)}
+    front = {
+        t.number
+        for t in feasible
+        if not any(_dominates(np.array(o.values), np.array(t.values), directions) for o in feasible)
+    }
     assert front and {t.number for t in sampler._front} == front
 
 
@@ -96,9 +100,12 @@ def _from_scratch(study: optuna.Study) -> tuple[int, int, int, int | None]:
     done = [t for t in trials if t.state == TrialState.COMPLETE]
     records = [{**trial_record(t), "trial": t.number} for t in done if trial_record(t)]
     ranked = rank_records(records)
-    return (len(done), sum(t.state == TrialState.RUNNING for t in trials),
-            sum(t.system_attrs.get("constraints:violation", 1.0) <= 0 for t in done),
-            ranked[0]["trial"] if ranked else None)
+    return (
+        len(done),
+        sum(t.state == TrialState.RUNNING for t in trials),
+        sum(t.system_attrs.get("constraints:violation", 1.0) <= 0 for t in done),
+        ranked[0]["trial"] if ranked else None,
+    )
 
 
 def test_tally_and_status_match_a_recomputation_after_every_batch(store) -> None:

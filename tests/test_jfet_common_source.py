@@ -1,5 +1,6 @@
 """jfet_common_source: the self-biased JFET common source against ngspice (Debian) and the
 square law's own relations."""
+
 from __future__ import annotations
 
 import shutil
@@ -15,7 +16,9 @@ from optimizer.topologies import Conditions, get_topology
 
 TOPOLOGY = get_topology("jfet_common_source")
 DESIGNS = designs_of("jfet_common_source")
-needs_ngspice = pytest.mark.skipif(shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice")
+needs_ngspice = pytest.mark.skipif(
+    shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice"
+)
 J1 = device_from_row(load_catalog("eseries_full").transistor("SF-J1"))
 
 
@@ -51,9 +54,15 @@ def test_self_bias_is_the_square_law_root() -> None:
     solved point (the defining equations, written out here)."""
     rng = np.random.default_rng(3)
     n = 200
-    parts = {"r_gate": np.full(n, 1e6), "r_drain": rng.uniform(1e3, 10e3, n), "r_source": rng.uniform(0, 500, n),
-             "r_source_dc": rng.uniform(100, 2e3, n), "c_in": np.full(n, 1e-7), "c_out": np.full(n, 1e-5),
-             "c_source": np.full(n, 1e-4)}
+    parts = {
+        "r_gate": np.full(n, 1e6),
+        "r_drain": rng.uniform(1e3, 10e3, n),
+        "r_source": rng.uniform(0, 500, n),
+        "r_source_dc": rng.uniform(100, 2e3, n),
+        "c_in": np.full(n, 1e-7),
+        "c_out": np.full(n, 1e-5),
+        "c_source": np.full(n, 1e-4),
+    }
     u = rng.uniform(0, 1, n)
     op = TOPOLOGY.operating_point(parts, J1, Conditions(supply=15.0, source_impedance=1e3, load_impedance=47e3), u)
     beta, vto = J1.params(u, 27.0)
@@ -62,8 +71,9 @@ def test_self_bias_is_the_square_law_root() -> None:
     ok = op["active"]
     assert ok.sum() > 150
     np.testing.assert_allclose(op["id"][ok], law[ok], rtol=1e-6)
-    np.testing.assert_allclose(op["vds"], 15.0 - op["id"] * (parts["r_drain"] + parts["r_source"]
-                                                             + parts["r_source_dc"]), rtol=1e-9)
+    np.testing.assert_allclose(
+        op["vds"], 15.0 - op["id"] * (parts["r_drain"] + parts["r_source"] + parts["r_source_dc"]), rtol=1e-9
+    )
 
 
 def test_gain_bound_holds() -> None:
@@ -71,11 +81,18 @@ def test_gain_bound_holds() -> None:
     bound the exhaustive oracle prunes with)."""
     rng = np.random.default_rng(5)
     n = 500
-    parts = {"r_gate": np.full(n, 1e6), "r_drain": rng.uniform(500, 20e3, n), "r_source": rng.uniform(10, 2e3, n),
-             "r_source_dc": rng.uniform(50, 2e3, n), "c_in": np.full(n, 1e-6), "c_out": np.full(n, 1e-4),
-             "c_source": np.full(n, 1e-3)}
-    metrics = TOPOLOGY.evaluate(parts, J1, Conditions(supply=12.0, source_impedance=600, load_impedance=22e3),
-                                full=False).metrics
+    parts = {
+        "r_gate": np.full(n, 1e6),
+        "r_drain": rng.uniform(500, 20e3, n),
+        "r_source": rng.uniform(10, 2e3, n),
+        "r_source_dc": rng.uniform(50, 2e3, n),
+        "c_in": np.full(n, 1e-6),
+        "c_out": np.full(n, 1e-4),
+        "c_source": np.full(n, 1e-3),
+    }
+    metrics = TOPOLOGY.evaluate(
+        parts, J1, Conditions(supply=12.0, source_impedance=600, load_impedance=22e3), full=False
+    ).metrics
     bound = TOPOLOGY.gain_bound({k: v for k, v in parts.items() if k.startswith("r_")}, 22e3)
     finite = np.isfinite(metrics["gain"])
     assert finite.sum() > 400
@@ -87,11 +104,24 @@ def test_hand_design_lands_near_its_target() -> None:
     in the right region: gain within 30 % and
     the drain current within 30 % of the aim (the model is the reference for the seed; the
     seed's own error is what the search removes)."""
-    req = HandRequirements(supply=12.0, gain=10.0, load_impedance=47e3, source_impedance=1e3, f_low=20.0,
-                           collector_current=1e-3, idss=J1.idss_typ, vp=-J1.VTO, vce_sat=0.0)
+    req = HandRequirements(
+        supply=12.0,
+        gain=10.0,
+        load_impedance=47e3,
+        source_impedance=1e3,
+        f_low=20.0,
+        collector_current=1e-3,
+        idss=J1.idss_typ,
+        vp=-J1.VTO,
+        vce_sat=0.0,
+    )
     parts = TOPOLOGY.hand_design(req)
-    result = TOPOLOGY.evaluate({k: np.array([v]) for k, v in parts.items()}, J1,
-                               Conditions(supply=12.0, source_impedance=1e3, load_impedance=47e3), full=False)
+    result = TOPOLOGY.evaluate(
+        {k: np.array([v]) for k, v in parts.items()},
+        J1,
+        Conditions(supply=12.0, source_impedance=1e3, load_impedance=47e3),
+        full=False,
+    )
     assert abs(-result.metrics["gain"][0] / 10.0 - 1) < 0.3
     assert abs(result.operating_point["id"][0] / min(1e-3, 0.25 * J1.idss_typ) - 1) < 0.3
 
@@ -102,8 +132,18 @@ def test_worst_case_and_monte_carlo_draw_the_jfets_own_spread() -> None:
     builds' currents stay between the two ends at each temperature)."""
     from optimizer.tolerance import Builds, worst_case
 
-    parts = {k: np.array([v]) for k, v in {"r_gate": 1e6, "r_drain": 4.7e3, "r_source": 330.0, "r_source_dc": 330.0,
-                                            "c_in": 1e-7, "c_out": 1e-5, "c_source": 1e-4}.items()}
+    parts = {
+        k: np.array([v])
+        for k, v in {
+            "r_gate": 1e6,
+            "r_drain": 4.7e3,
+            "r_source": 330.0,
+            "r_source_dc": 330.0,
+            "c_in": 1e-7,
+            "c_out": 1e-5,
+            "c_source": 1e-4,
+        }.items()
+    }
     conditions = Conditions(supply=12.0, source_impedance=1e3, load_impedance=47e3)
     ends = [float(TOPOLOGY.operating_point(parts, J1, conditions, u)["id"][0]) for u in J1.spread_edges(27.0)]
     low, high = worst_case(TOPOLOGY, parts, J1, conditions, {}, (27.0, 27.0))["ic"]

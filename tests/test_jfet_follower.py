@@ -1,5 +1,6 @@
 """jfet_follower: the self-biased, bootstrapped JFET source follower against ngspice (Debian);
 the search pairs JFET stages only with JFETs; a 10 Mohm sensor spec finds a feasible JFET buffer."""
+
 from __future__ import annotations
 
 import dataclasses
@@ -24,7 +25,9 @@ from spice_harness import spice_midband, spice_noise, spice_operating_point
 TOPOLOGY = get_topology("jfet_follower")
 DESIGNS = designs_of("jfet_follower")
 SPEC = Path(__file__).resolve().parent.parent / "specs" / "geophone_jfet_buffer.yaml"
-needs_ngspice = pytest.mark.skipif(shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice")
+needs_ngspice = pytest.mark.skipif(
+    shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice"
+)
 
 
 @needs_ngspice
@@ -66,8 +69,10 @@ def test_gate_current_shot_noise_agrees_with_ngspice() -> None:
     leaky = dataclasses.replace(design.device, IS=2.5e-9, KF=0.0)
     ig = float(leaky.gate_leakage(27.0))
     r_eq = 4 * BOLTZMANN * (27.0 + KELVIN_OFFSET) / (ELEMENTARY_CHARGE * ig)
-    extra = "\n".join(f"Rshot{i} gate {node} {r_eq!r}\nRcancel{i} gate {node} {-r_eq!r} noisy=0"
-                      for i, node in ((1, "source"), (2, "vcc")))
+    extra = "\n".join(
+        f"Rshot{i} gate {node} {r_eq!r}\nRcancel{i} gate {node} {-r_eq!r} noisy=0"
+        for i, node in ((1, "source"), (2, "vcc"))
+    )
     parts = {k: np.array([v]) for k, v in design.parts.items()}
     model = float(TOPOLOGY.evaluate(parts, leaky, design.conditions).metrics["noise_ein_v"][0])
     quiet = float(TOPOLOGY.evaluate(parts, design.device, design.conditions).metrics["noise_ein_v"][0])
@@ -95,13 +100,23 @@ def test_search_pairs_jfet_stages_only_with_jfets() -> None:
 
 def test_jfet_stages_without_a_jfet_are_refused() -> None:
     """A spec naming only JFET stages and only bipolar devices is refused before any trial, naming the devices."""
-    spec = parse_spec({"name": "x", "supply": "12 V", "gain": {"target": 0.9, "tolerance": "1 dB"},
-                       "source_impedance": "10M", "load_impedance": "10k", "band": ["5 Hz", "5 kHz"],
-                       "devices": ["npn-general"], "topologies": ["jfet_follower"]})
+    spec = parse_spec(
+        {
+            "name": "x",
+            "supply": "12 V",
+            "gain": {"target": 0.9, "tolerance": "1 dB"},
+            "source_impedance": "10M",
+            "load_impedance": "10k",
+            "band": ["5 Hz", "5 kHz"],
+            "devices": ["npn-general"],
+            "topologies": ["jfet_follower"],
+        }
+    )
     with pytest.raises(InputError) as caught:
         SearchSpace.build(spec)
-    assert any(p.where == "topologies" and "jfet" in p.expected and "npn-general" in p.expected
-               for p in caught.value.problems)  # names the stage's device kind and the spec's devices
+    assert any(
+        p.where == "topologies" and "jfet" in p.expected and "npn-general" in p.expected for p in caught.value.problems
+    )  # names the stage's device kind and the spec's devices
 
 
 @needs_ngspice

@@ -1,5 +1,6 @@
 """The metrics table is the one source: every metric a candidate carries has a row, and the
 tables that used to restate it (limits, objectives, units, axes, columns, OpenAPI, docs) read it."""
+
 from __future__ import annotations
 
 from pathlib import Path
@@ -10,10 +11,17 @@ from optimizer.search import search
 from optimizer.spec import Limits, parse_spec
 from optimizer.topologies.base import METRICS as MODEL_METRICS
 
-SPEC = {"name": "metrics", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"},
-        "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
-        "topologies": ["divider_ce"], "parts": {"resistor_series": "E6", "resistor_range": ["1k", "100k"]},
-        "search": {"trials": 32, "seed": 1}}
+SPEC = {
+    "name": "metrics",
+    "supply": "12 V",
+    "gain": {"target": -8, "tolerance": "1 dB"},
+    "source_impedance": 600,
+    "load_impedance": "47k",
+    "band": ["20 Hz", "20 kHz"],
+    "topologies": ["divider_ce"],
+    "parts": {"resistor_series": "E6", "resistor_range": ["1k", "100k"]},
+    "search": {"trials": 32, "seed": 1},
+}
 
 
 def test_every_metric_of_a_candidate_has_one_row() -> None:
@@ -26,10 +34,15 @@ def test_every_metric_of_a_candidate_has_one_row() -> None:
 def test_every_limit_of_the_spec_reads_a_metric() -> None:
     # hand-built: the spec's optional per-metric limits (DESIGN.md), each with its sense
     assert dict((name, (metric, sign)) for name, metric, sign in LIMIT_METRICS) == {
-        "input_impedance_min": ("input_impedance", 1), "output_impedance_max": ("output_impedance", -1),
-        "swing_min": ("swing_vpp", 1), "supply_current_max": ("supply_current", -1), "thd_max": ("thd", -1),
-        "noise_ein_max": ("noise_ein_v", -1), "psrr_min_db": ("psrr_db", 1),
-        "phase_margin_min_deg": ("phase_margin_deg", 1)}
+        "input_impedance_min": ("input_impedance", 1),
+        "output_impedance_max": ("output_impedance", -1),
+        "swing_min": ("swing_vpp", 1),
+        "supply_current_max": ("supply_current", -1),
+        "thd_max": ("thd", -1),
+        "noise_ein_max": ("noise_ein_v", -1),
+        "psrr_min_db": ("psrr_db", 1),
+        "phase_margin_min_deg": ("phase_margin_deg", 1),
+    }
     assert {name for name, _, _ in LIMIT_METRICS} <= set(Limits.model_fields)
 
 

@@ -2,6 +2,7 @@
 
 Each check names what it is checked against, beside it.
 """
+
 from __future__ import annotations
 
 import dataclasses
@@ -19,16 +20,41 @@ from optimizer.errors import InputError
 from optimizer.topologies import TOPOLOGIES, Conditions, get_topology
 from spice_designs import check_designs
 
-DEVICE = Device(id="npn-bench-a", polarity="npn", hfe_min=100, hfe_typ=200, hfe_max=300, IS=1e-14, BF=200,
-                NF=1.0, VAF=100.0, RB=10.0, CJE=8e-12, CJC=4e-12, TF=4e-10, vce_sat=0.2, vceo_max=40.0, p_max=0.5)
+DEVICE = Device(
+    id="npn-bench-a",
+    polarity="npn",
+    hfe_min=100,
+    hfe_typ=200,
+    hfe_max=300,
+    IS=1e-14,
+    BF=200,
+    NF=1.0,
+    VAF=100.0,
+    RB=10.0,
+    CJE=8e-12,
+    CJC=4e-12,
+    TF=4e-10,
+    vce_sat=0.2,
+    vceo_max=40.0,
+    p_max=0.5,
+)
 NINE_VOLT = dict(r_top=75e3, r_bottom=10e3, r_collector=10e3, r_emitter=1e3, c_in=10e-6, c_out=10e-6)
 DESIGNS = {
     "divider_ce": NINE_VOLT,
-    "divider_ce_split": dict(r_top=47e3, r_bottom=10e3, r_collector=4.7e3, r_emitter=220, r_emitter_dc=820,
-                             c_in=2.2e-6, c_out=2.2e-6, c_emitter=47e-6),
+    "divider_ce_split": dict(
+        r_top=47e3,
+        r_bottom=10e3,
+        r_collector=4.7e3,
+        r_emitter=220,
+        r_emitter_dc=820,
+        c_in=2.2e-6,
+        c_out=2.2e-6,
+        c_emitter=47e-6,
+    ),
     "feedback_ce": dict(r_feedback=220e3, r_collector=4.7e3, r_emitter=470, c_in=1e-6, c_out=1e-6),
-    "ce_follower": dict(r_top=68e3, r_bottom=10e3, r_collector=10e3, r_emitter=1e3, r_follower=2.2e3,
-                        c_in=1e-6, c_out=10e-6),
+    "ce_follower": dict(
+        r_top=68e3, r_bottom=10e3, r_collector=10e3, r_emitter=1e3, r_follower=2.2e3, c_in=1e-6, c_out=10e-6
+    ),
 }
 
 
@@ -60,8 +86,11 @@ def test_degenerated_bias_point_against_an_independent_solve():
 
     vcc, rt, rb, rc, re, hfe = 15.0, 47e3, 8.2e3, 6.8e3, 1.0e3, 180.0
     vt, vth, rth = thermal_voltage(27.0), vcc * rb / (rt + rb), rt * rb / (rt + rb)
-    ic_ref = brentq(lambda ic: vth - ic / hfe * (rth + DEVICE.RB) - vt * math.log(ic / DEVICE.IS)
-                    - ic * (1 + 1 / hfe) * re, 1e-9, vcc / re)
+    ic_ref = brentq(
+        lambda ic: vth - ic / hfe * (rth + DEVICE.RB) - vt * math.log(ic / DEVICE.IS) - ic * (1 + 1 / hfe) * re,
+        1e-9,
+        vcc / re,
+    )
     vce_ref = vcc - ic_ref * rc - ic_ref * (1 + 1 / hfe) * re
     parts = dict(r_top=rt, r_bottom=rb, r_collector=rc, r_emitter=re, c_in=10e-6, c_out=10e-6)
     op = get_topology("divider_ce").operating_point(parts, DEVICE, Conditions(vcc, 0.0, math.inf), hfe=hfe)
@@ -115,8 +144,10 @@ def test_threads_evaluating_at_once_get_the_serial_results(name):
 
     topo = get_topology(name)
     c = Conditions(9.0, 600.0, 47e3)
-    batches = [{k: v * np.random.default_rng(seed).uniform(0.8, 1.25, 3000) for k, v in DESIGNS[name].items()}
-               for seed in range(4)]
+    batches = [
+        {k: v * np.random.default_rng(seed).uniform(0.8, 1.25, 3000) for k, v in DESIGNS[name].items()}
+        for seed in range(4)
+    ]
     serial = [topo.evaluate(b, DEVICE, c).metrics for b in batches]
     with ThreadPoolExecutor(max_workers=4) as pool:
         threaded = list(pool.map(lambda b: topo.evaluate(b, DEVICE, c).metrics, batches * 2))
@@ -130,8 +161,11 @@ def test_two_equal_coupling_poles_stack_to_31_hz():
     topo = get_topology("divider_ce")
     c = Conditions(supply=9.0, source_impedance=600.0, load_impedance=47e3)
     mid = topo.evaluate(NINE_VOLT, DEVICE, c, full=False).metrics
-    parts = dict(NINE_VOLT, c_in=1 / (2 * math.pi * 20 * (600 + mid["input_impedance"][0])),
-                 c_out=1 / (2 * math.pi * 20 * (47e3 + mid["output_impedance"][0])))
+    parts = dict(
+        NINE_VOLT,
+        c_in=1 / (2 * math.pi * 20 * (600 + mid["input_impedance"][0])),
+        c_out=1 / (2 * math.pi * 20 * (47e3 + mid["output_impedance"][0])),
+    )
     f_low = one(topo.evaluate(parts, DEVICE, c), "f_low")
     assert f_low == pytest.approx(20 * math.sqrt(1 + math.sqrt(2)), rel=0.01)  # about 31.1 Hz
 
@@ -187,8 +221,16 @@ def test_second_harmonic_of_nearly_plain_junction():
     # here the emitter is almost fully bypassed, so it is close to the plain-junction v_be/(4 VT).
     # No Early effect here: the formula is for the bare exponential.
     device = dataclasses.replace(DEVICE, VAF=0.0)
-    parts = dict(r_top=47e3, r_bottom=10e3, r_collector=4.7e3, r_emitter=2.2, r_emitter_dc=1e3,
-                 c_in=10e-6, c_out=10e-6, c_emitter=1e-3)
+    parts = dict(
+        r_top=47e3,
+        r_bottom=10e3,
+        r_collector=4.7e3,
+        r_emitter=2.2,
+        r_emitter_dc=1e3,
+        c_in=10e-6,
+        c_out=10e-6,
+        c_emitter=1e-3,
+    )
     topo = get_topology("divider_ce_split")
     c = Conditions(supply=12.0, source_impedance=0.0, load_impedance=math.inf, signal_vpp=0.2)
     r = topo.evaluate(parts, device, c, full=False)
@@ -231,8 +273,10 @@ def test_thd_solve_opts_into_the_quasistatic_solve():
 def test_noise_figure_rises_as_source_impedance_falls():
     # common practice: with a bipolar input, NF is lowest near Rs_opt = en/in and rises for a low Rs
     topo = get_topology("divider_ce_split")
-    nf = [one(topo.evaluate(DESIGNS["divider_ce_split"], DEVICE, Conditions(12.0, rs, 10e3)), "noise_figure_db")
-          for rs in (10.0, 1e3)]
+    nf = [
+        one(topo.evaluate(DESIGNS["divider_ce_split"], DEVICE, Conditions(12.0, rs, 10e3)), "noise_figure_db")
+        for rs in (10.0, 1e3)
+    ]
     assert nf[0] > nf[1] + 6.0
 
 
@@ -373,11 +417,16 @@ def test_per_candidate_supply_matches_one_supply_at_a_time(name):
     # supply corners arrive as one supply per candidate: each must give what that supply alone gives
     topo = get_topology(name)
     supplies = np.array([8.5, 9.0, 9.5])
-    parts = {**{k: np.full(3, v) for k, v in DESIGNS[name].items()}, "r_decouple": np.array([0.0, 330.0, 330.0]),
-             "c_decouple": np.full(3, 220e-6)}
+    parts = {
+        **{k: np.full(3, v) for k, v in DESIGNS[name].items()},
+        "r_decouple": np.array([0.0, 330.0, 330.0]),
+        "c_decouple": np.full(3, 220e-6),
+    }
     batch = topo.evaluate(parts, DEVICE, Conditions(supplies, 600.0, 10e3, supply_max=9.5))
     for i, s in enumerate(supplies):
-        alone = topo.evaluate({k: v[i:i + 1] for k, v in parts.items()}, DEVICE, Conditions(s, 600.0, 10e3, supply_max=9.5))
+        alone = topo.evaluate(
+            {k: v[i : i + 1] for k, v in parts.items()}, DEVICE, Conditions(s, 600.0, 10e3, supply_max=9.5)
+        )
         for k in ("swing_vpp", "gain", "psrr_db", "noise_figure_db", "emitter_voltage"):
             # rel 1e-6: a batch holding a decoupling RC puts r_decouple = 0 in as physics.G_SHORT
             assert batch.metrics[k][i] == pytest.approx(alone.metrics[k][0], rel=1e-6)
@@ -398,6 +447,7 @@ def test_single_precision_swing_search_keeps_half_a_percent(design):
         up = topo.static_transfer(design.parts, design.device, design.conditions, a)[0]
         down = topo.static_transfer(design.parts, design.device, design.conditions, -a)[0]
         return np.maximum(np.abs(up / (gain * a) - 1.0), np.abs(down / (-gain * a) - 1.0)), np.abs(up - down)
+
     a = np.linspace(0.05, 3.0, 1001) * clip / abs(gain)
     over = deviation(a)[0] > 0.1
     assert over.any()
@@ -413,7 +463,9 @@ def test_power_law_segments_integrate_power_laws_exactly():
     # f0^(k+1))/(k+1), and c*ln(f1/f0) at k = -1), over the band's log-spaced points
     f = np.geomspace(20.0, 20e3, 6)[:, None]
     for k in (-2.0, -1.0, -0.5, 0.0, 1.0, 2.0):
-        psd = 3e-18 * f ** k + 0.0 * np.ones((1, 2))
+        psd = 3e-18 * f**k + 0.0 * np.ones((1, 2))
         got = physics.power_law_segments(f, psd, axis=0).sum(axis=0)
-        exact = 3e-18 * (math.log(f[-1, 0] / f[0, 0]) if k == -1.0 else (f[-1, 0] ** (k + 1) - f[0, 0] ** (k + 1)) / (k + 1))
+        exact = 3e-18 * (
+            math.log(f[-1, 0] / f[0, 0]) if k == -1.0 else (f[-1, 0] ** (k + 1) - f[0, 0] ** (k + 1)) / (k + 1)
+        )
         assert got == pytest.approx(np.full(2, exact), rel=1e-9)

@@ -3,6 +3,7 @@
 The harness checks use a 9 V divider-biased common-emitter stage whose numbers are worked by
 hand in any transistor-circuits text; none of them depends on stagefit's own models.
 """
+
 from __future__ import annotations
 
 import math
@@ -16,16 +17,20 @@ import spice_harness as sh
 from optimizer.errors import InputError
 from optimizer.netlist import MODEL_KEYS, spice_netlist
 
-MODEL = {"IS": 1e-14, "BF": 200.0, "NF": 1.0, "VAF": 100.0, "RB": 10.0,
-         "CJE": 8e-12, "CJC": 4e-12, "TF": 4e-10}
-PARTS = {"r_top": 75e3, "r_bottom": 10e3, "r_collector": 10e3, "r_emitter": 1e3,
-         "c_in": 10e-6, "c_out": 10e-6}
+MODEL = {"IS": 1e-14, "BF": 200.0, "NF": 1.0, "VAF": 100.0, "RB": 10.0, "CJE": 8e-12, "CJC": 4e-12, "TF": 4e-10}
+PARTS = {"r_top": 75e3, "r_bottom": 10e3, "r_collector": 10e3, "r_emitter": 1e3, "c_in": 10e-6, "c_out": 10e-6}
 K_B, Q_E = 1.380649e-23, 1.602176634e-19
 
 
 def conditions(**changes: object) -> SimpleNamespace:
-    base = {"supply": 9.0, "source_impedance": 0.0, "load_impedance": 100e3,
-            "load_capacitance": 0.0, "temperature": 27.0, "band": (20.0, 20000.0)}
+    base = {
+        "supply": 9.0,
+        "source_impedance": 0.0,
+        "load_impedance": 100e3,
+        "load_capacitance": 0.0,
+        "temperature": 27.0,
+        "band": (20.0, 20000.0),
+    }
     return SimpleNamespace(**{**base, **changes})
 
 
@@ -34,12 +39,20 @@ def conditions(**changes: object) -> SimpleNamespace:
 
 def test_every_part_appears_with_its_value_on_its_role_element() -> None:
     text = spice_netlist("divider_ce", PARTS, MODEL, conditions())
-    for line in ("R1 vcc base 75000.0", "R2 base 0 10000.0",
-                 "R3 vcc collector 10000.0", "R4 emitter 0 1000.0",
-                 "C1 src base 1e-05", "C2 collector out 1e-05",
-                 "Q1 collector base emitter q", "Rload out 0 100000.0",
-                 "Vcc vcc 0 DC 9.0", ".temp 27.0", ".options TNOM=27",
-                 "Rsource sig src 0.001"):  # Rs 0 -> 1 milliohm stand-in
+    for line in (
+        "R1 vcc base 75000.0",
+        "R2 base 0 10000.0",
+        "R3 vcc collector 10000.0",
+        "R4 emitter 0 1000.0",
+        "C1 src base 1e-05",
+        "C2 collector out 1e-05",
+        "Q1 collector base emitter q",
+        "Rload out 0 100000.0",
+        "Vcc vcc 0 DC 9.0",
+        ".temp 27.0",
+        ".options TNOM=27",
+        "Rsource sig src 0.001",
+    ):  # Rs 0 -> 1 milliohm stand-in
         assert line in text.splitlines(), line
     assert re.search(r"^Vsig sig 0 DC 0 AC 1 SIN\(0 0\.01 632\.455\d*\)$", text, re.MULTILINE)
     assert "Cload" not in text
@@ -58,8 +71,14 @@ def test_model_line_carries_every_key_and_value() -> None:
 
 
 def test_caution_and_analyses_placement() -> None:
-    text = spice_netlist("divider_ce", PARTS, MODEL, conditions(load_capacitance=1e-10),
-                         analyses=".op", cautions=["supply 48 V is above 30 V: treat it as hazardous"])
+    text = spice_netlist(
+        "divider_ce",
+        PARTS,
+        MODEL,
+        conditions(load_capacitance=1e-10),
+        analyses=".op",
+        cautions=["supply 48 V is above 30 V: treat it as hazardous"],
+    )
     assert "* CAUTION: supply 48 V is above 30 V: treat it as hazardous" in text.splitlines()
     assert "simulated, not built" in text.lower()
     assert "Supply 9.0 V" in text
@@ -72,16 +91,20 @@ def test_caution_and_analyses_placement() -> None:
 def test_other_topologies_wire_their_parts() -> None:
     split = {**PARTS, "r_emitter": 330.0, "r_emitter_dc": 680.0, "c_emitter": 1e-4}
     text = spice_netlist("divider_ce_split", split, MODEL, conditions())
-    assert {"R4 emitter e2 330.0", "R5 e2 0 680.0", "C2 e2 0 0.0001", "C3 collector out 1e-05"} \
-        <= set(text.splitlines())
+    assert {"R4 emitter e2 330.0", "R5 e2 0 680.0", "C2 e2 0 0.0001", "C3 collector out 1e-05"} <= set(
+        text.splitlines()
+    )
     fb = {"r_feedback": 470e3, "r_collector": 4.7e3, "r_emitter": 0.0, "c_in": 1e-5, "c_out": 1e-5}
     text = spice_netlist("feedback_ce", fb, MODEL, conditions())
-    assert {"R1 collector base 470000.0", "R2 vcc collector 4700.0", "Vshort_r_emitter emitter 0 DC 0",
-            "C2 collector out 1e-05"} <= set(text.splitlines())
+    assert {
+        "R1 collector base 470000.0",
+        "R2 vcc collector 4700.0",
+        "Vshort_r_emitter emitter 0 DC 0",
+        "C2 collector out 1e-05",
+    } <= set(text.splitlines())
     follower = {**PARTS, "r_follower": 4.7e3}
     text = spice_netlist("ce_follower", follower, MODEL, conditions())
-    assert {"Q2 vcc collector emitter2 q", "R5 emitter2 0 4700.0",
-            "C2 emitter2 out 1e-05"} <= set(text.splitlines())
+    assert {"Q2 vcc collector emitter2 q", "R5 emitter2 0 4700.0", "C2 emitter2 out 1e-05"} <= set(text.splitlines())
 
 
 def test_bad_topology_and_missing_part_are_named() -> None:
@@ -102,8 +125,7 @@ def test_bad_topology_and_missing_part_are_named() -> None:
 
 # ---------------------------------------------------------------- ngspice harness
 
-needs_ngspice = pytest.mark.skipif(not sh.ngspice_available(),
-                                   reason="ngspice not installed: apt-get install ngspice")
+needs_ngspice = pytest.mark.skipif(not sh.ngspice_available(), reason="ngspice not installed: apt-get install ngspice")
 
 
 @pytest.fixture(scope="module")
@@ -111,8 +133,10 @@ def textbook() -> dict[str, object]:
     if not sh.ngspice_available():
         pytest.skip("ngspice not installed: apt-get install ngspice")
     c = conditions()
-    return {"op": sh.spice_operating_point("divider_ce", PARTS, MODEL, c),
-            "mid": sh.spice_midband("divider_ce", PARTS, MODEL, c)}
+    return {
+        "op": sh.spice_operating_point("divider_ce", PARTS, MODEL, c),
+        "mid": sh.spice_midband("divider_ce", PARTS, MODEL, c),
+    }
 
 
 @needs_ngspice
@@ -207,8 +231,7 @@ def test_harness_reports_a_failed_run(monkeypatch: pytest.MonkeyPatch) -> None:
 #: the parts of the four stages, written out from their circuit descriptions (the design notes' role names)
 STAGE_PARTS = {
     "divider_ce": {"r_top", "r_bottom", "r_collector", "r_emitter", "c_in", "c_out"},
-    "divider_ce_split": {"r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter_dc", "c_in", "c_out",
-                         "c_emitter"},
+    "divider_ce_split": {"r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter_dc", "c_in", "c_out", "c_emitter"},
     "feedback_ce": {"r_feedback", "r_collector", "r_emitter", "c_in", "c_out"},
     "ce_follower": {"r_top", "r_bottom", "r_collector", "r_emitter", "r_follower", "c_in", "c_out"},
 }

@@ -1,5 +1,6 @@
 """The browser pages through Flask's test client: shells open without the token, data behind
 it, the palette's text contrast (WCAG 2.x), the transfer.svg route and its problem+json."""
+
 from __future__ import annotations
 
 import re
@@ -66,21 +67,34 @@ class _Controls(HTMLParser):
 def unlabelled(html: str) -> list[dict]:
     parser = _Controls()
     parser.feed(html)
-    return [c for c in parser.controls
-            if c.get("id") not in parser.labelled and not c.get("aria-label") and not c.get("aria-labelledby")]
+    return [
+        c
+        for c in parser.controls
+        if c.get("id") not in parser.labelled and not c.get("aria-label") and not c.get("aria-labelledby")
+    ]
 
 
 def test_shells_open_data_behind_the_token(client, search_id):
-    for url in ("/", "/searches", f"/searches/{search_id}", f"/searches/{search_id}/designs/1",
-                f"/compare?search={search_id}&ranks=1,2"):
+    for url in (
+        "/",
+        "/searches",
+        f"/searches/{search_id}",
+        f"/searches/{search_id}/designs/1",
+        f"/compare?search={search_id}&ranks=1,2",
+    ):
         response = client.get(url)
         assert response.status_code == 200 and response.mimetype == "text/html", url
         assert not unlabelled(response.get_data(as_text=True)), url
     for url in ("/assets/pages.js", "/assets/pages.css", "/palette.css"):
         assert client.get(url).status_code == 200, url
     assert PALETTE["teal"] in client.get("/palette.css").get_data(as_text=True)
-    for url in ("/ui/searches", f"/ui/searches/{search_id}/results", f"/ui/searches/{search_id}/designs/1",
-                f"/ui/compare?search={search_id}&ranks=1,2", "/ui/examples/bench_stock_preamp"):
+    for url in (
+        "/ui/searches",
+        f"/ui/searches/{search_id}/results",
+        f"/ui/searches/{search_id}/designs/1",
+        f"/ui/compare?search={search_id}&ranks=1,2",
+        "/ui/examples/bench_stock_preamp",
+    ):
         assert client.get(url).status_code == 401, url
         response = client.get(url, headers=AUTH)
         assert response.status_code == 200, url
@@ -105,11 +119,13 @@ def test_transfer_svg_route_and_its_problems(client, search_id):
     response = client.get(f"/v1/searches/{search_id}/candidates/1/transfer.svg", headers=AUTH)
     assert response.status_code == 200 and response.mimetype == "image/svg+xml"
     assert b"<svg" in response.data
-    for url, status in ((f"/v1/searches/{search_id}/candidates/999/transfer.svg", 404),
-                        ("/v1/searches/nothing/candidates/1/transfer.svg", 404),
-                        (f"/ui/searches/{search_id}/designs/999", 404),
-                        ("/ui/examples/..%2Fpyproject", 404),
-                        (f"/ui/compare?search={search_id}&ranks=1", 400)):
+    for url, status in (
+        (f"/v1/searches/{search_id}/candidates/999/transfer.svg", 404),
+        ("/v1/searches/nothing/candidates/1/transfer.svg", 404),
+        (f"/ui/searches/{search_id}/designs/999", 404),
+        ("/ui/examples/..%2Fpyproject", 404),
+        (f"/ui/compare?search={search_id}&ranks=1", 400),
+    ):
         response = client.get(url, headers=AUTH)
         assert response.status_code == status and response.mimetype == "application/problem+json", url
     # a design beyond the shortlist plots too (its record carries the full transistor block)

@@ -6,6 +6,7 @@ which are themselves checked against ngspice in the model tests. Non-domination 
 against a brute-force pairwise comparison. SVG is parsed with xml.etree; PNG is recognised
 by its signature (PNG specification, ISO/IEC 15948).
 """
+
 from __future__ import annotations
 
 import json
@@ -31,8 +32,10 @@ DESIGNS = [  # (topology, resistors) on the bench-stock preamp spec, feasible an
     ("divider_ce", {"r_top": 270e3, "r_bottom": 18e3, "r_collector": 8.2e3, "r_emitter": 220}),
     ("feedback_ce", {"r_feedback": 1.2e6, "r_collector": 8.2e3, "r_emitter": 220}),
     ("ce_follower", {"r_top": 270e3, "r_bottom": 18e3, "r_collector": 6.8e3, "r_emitter": 220, "r_follower": 3.9e3}),
-    ("divider_ce_split", {"r_top": 150e3, "r_bottom": 33e3, "r_collector": 4.7e3, "r_emitter": 100,
-                          "r_emitter_dc": 1e3}),
+    (
+        "divider_ce_split",
+        {"r_top": 150e3, "r_bottom": 33e3, "r_collector": 4.7e3, "r_emitter": 100, "r_emitter_dc": 1e3},
+    ),
 ]
 OBJECTIVES = [("supply_current", "minimise"), ("swing_vpp", "maximise")]
 
@@ -58,6 +61,7 @@ def _svg_ids(data: bytes) -> set[str]:
 
 # ---- rebuilding from the record ---------------------------------------------------------
 
+
 @pytest.mark.parametrize("index", range(len(DESIGNS)))
 def test_record_rebuilds_its_own_metrics(records: list[dict], index: int) -> None:
     record = records[index]
@@ -74,11 +78,16 @@ def test_device_from_record_equals_the_catalog_row(record: dict) -> None:
     assert Device.from_record(record["transistor"]) == Device.from_row(row)
 
 
-@pytest.mark.parametrize(("path", "named"), [(("parts", "r_top"), "parts.r_top.value"),
-                                            (("transistor", "hfe_typ"), "transistor.hfe_typ"),
-                                            (("transistor", "model", "IS"), "transistor.model.IS"),
-                                            (("conditions", "supply"), "conditions.supply"),
-                                            (("conditions",), "conditions")])
+@pytest.mark.parametrize(
+    ("path", "named"),
+    [
+        (("parts", "r_top"), "parts.r_top.value"),
+        (("transistor", "hfe_typ"), "transistor.hfe_typ"),
+        (("transistor", "model", "IS"), "transistor.model.IS"),
+        (("conditions", "supply"), "conditions.supply"),
+        (("conditions",), "conditions"),
+    ],
+)
 def test_incomplete_record_names_the_missing_key(record: dict, path: tuple[str, ...], named: str) -> None:
     broken = json.loads(json.dumps(record))
     holder = broken
@@ -91,6 +100,7 @@ def test_incomplete_record_names_the_missing_key(record: dict, path: tuple[str, 
 
 
 # ---- formats --------------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("plot", ["response", "transfer", "front"])
 def test_svg_parses_and_png_has_its_signature(records: list[dict], plot: str, tmp_path: Path) -> None:
@@ -108,14 +118,18 @@ def test_svg_parses_and_png_has_its_signature(records: list[dict], plot: str, tm
 
 @pytest.mark.parametrize("fmt", ["pdf", "jpg", "", None, 3])
 def test_bad_format_names_the_field(record: dict, fmt: object) -> None:
-    for call in (lambda: plots.response_plot(record, fmt=fmt), lambda: plots.transfer_plot(record, fmt=fmt),
-                 lambda: plots.front_plot([record], OBJECTIVES, fmt=fmt)):
+    for call in (
+        lambda: plots.response_plot(record, fmt=fmt),
+        lambda: plots.transfer_plot(record, fmt=fmt),
+        lambda: plots.front_plot([record], OBJECTIVES, fmt=fmt),
+    ):
         with pytest.raises(InputError) as err:
             call()
         assert err.value.problems[0].where == "format"
 
 
 # ---- frequency response ---------------------------------------------------------------
+
 
 @pytest.mark.parametrize("index", range(len(DESIGNS)))
 def test_response_markers_are_the_model_corners(records: list[dict], index: int) -> None:
@@ -135,6 +149,7 @@ def test_response_svg_marks_both_corners(record: dict) -> None:
 
 
 # ---- transfer curve -------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("index", range(len(DESIGNS)))
 def test_transfer_curve_slope_and_clip_level(records: list[dict], index: int) -> None:
@@ -163,12 +178,17 @@ def test_transfer_svg_marks_clipping_and_rejects_a_bad_spec_swing(record: dict) 
 
 # ---- Pareto front ---------------------------------------------------------------------
 
+
 def _brute_front(values: np.ndarray, directions: list[str]) -> np.ndarray:
     s = values * np.array([1.0 if d == "minimise" else -1.0 for d in directions])
     n = len(s)
-    return np.array([np.isfinite(s[i]).all() and not any(
-        np.isfinite(s[j]).all() and np.all(s[j] <= s[i]) and np.any(s[j] < s[i]) for j in range(n))
-        for i in range(n)])
+    return np.array(
+        [
+            np.isfinite(s[i]).all()
+            and not any(np.isfinite(s[j]).all() and np.all(s[j] <= s[i]) and np.any(s[j] < s[i]) for j in range(n))
+            for i in range(n)
+        ]
+    )
 
 
 @pytest.mark.parametrize("objectives", [1, 2, 3])
@@ -214,7 +234,7 @@ def test_palette_reads_in_greyscale_and_is_used_by_every_plot(records: list[dict
     from optimizer.palette import MARKERS, PLOT_COLOURS as COLOURS
 
     def luminance(hex_colour: str) -> float:
-        channels = [int(hex_colour[i:i + 2], 16) / 255 for i in (1, 3, 5)]
+        channels = [int(hex_colour[i : i + 2], 16) / 255 for i in (1, 3, 5)]
         linear = [c / 12.92 if c <= 0.04045 else ((c + 0.055) / 1.055) ** 2.4 for c in channels]
         return 0.2126 * linear[0] + 0.7152 * linear[1] + 0.0722 * linear[2]
 

@@ -1,6 +1,7 @@
 """PNP stages, negative rails and split supplies: the polarity layer, eligibility and the
 outputs that follow polarity (netlist, BOM orientation, cautions). The models themselves are
 checked against ngspice in tests/test_spice_agreement.py (its polarity block)."""
+
 from __future__ import annotations
 
 from dataclasses import replace
@@ -25,8 +26,15 @@ from optimizer.topologies.divider_ce import DividerCE
 from optimizer.validation import eligibility, validate_spec
 
 PARTS = {"r_top": 68e3, "r_bottom": 12e3, "r_collector": 4.7e3, "r_emitter": 470.0, "c_in": 1e-6, "c_out": 10e-6}
-SPEC = {"name": "t", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"}, "source_impedance": 600,
-        "load_impedance": "47k", "band": ["20 Hz", "20 kHz"], "robustness": "nominal"}
+SPEC = {
+    "name": "t",
+    "supply": "12 V",
+    "gain": {"target": -8, "tolerance": "1 dB"},
+    "source_impedance": 600,
+    "load_impedance": "47k",
+    "band": ["20 Hz", "20 kHz"],
+    "robustness": "nominal",
+}
 CATALOG = load_catalog("eseries_full")
 NPN = Device.from_row(CATALOG.transistor("npn-general"))
 PNP = replace(NPN, id="mirror", polarity="pnp")  # the same parameters, the other polarity
@@ -44,8 +52,17 @@ def test_mirror_and_shift_keep_every_metric_and_move_the_node_voltages() -> None
     npn = _evaluate(NPN, 0.0)
     for device, below in ((PNP, 1.0), (NPN, 1.0), (PNP, 0.0)):
         other = _evaluate(device, below)
-        for key in ("gain", "swing_vpp", "input_impedance", "output_impedance", "f_low", "f_high", "noise_ein_v",
-                    "thd", "supply_current"):
+        for key in (
+            "gain",
+            "swing_vpp",
+            "input_impedance",
+            "output_impedance",
+            "f_low",
+            "f_high",
+            "noise_ein_v",
+            "thd",
+            "supply_current",
+        ):
             assert other.metrics[key] == pytest.approx(npn.metrics[key], rel=1e-12), (device.polarity, below, key)
         sign = -1.0 if device.polarity == "pnp" else 1.0
         shift = -12.0 * below if device.polarity == "npn" else 12.0 * (1.0 - below)
@@ -64,14 +81,17 @@ def test_followers_and_pair_mirror_and_shift_like_the_other_stages(name: str, ga
     # carries the ripple changes with the shift) equal to 1e-9, every node voltage moved as
     # true_volts says; ngspice checks PNP and negative-rail designs in test_spice_agreement.py.
     topology = get_topology(name)
-    req = HandRequirements(supply=12.0, gain=gain, load_impedance=47e3, source_impedance=10e3, f_low=20.0,
-                           collector_current=1e-3, hfe=200)
+    req = HandRequirements(
+        supply=12.0, gain=gain, load_impedance=47e3, source_impedance=10e3, f_low=20.0, collector_current=1e-3, hfe=200
+    )
     parts = {k: np.array([v]) for k, v in topology.hand_design(req).items()}
 
     def evaluate(device: Device, below: float):
-        c = Conditions(supply=12.0, source_impedance=10e3, load_impedance=47e3, load_capacitance=1e-9,
-                       below_ground=below)
+        c = Conditions(
+            supply=12.0, source_impedance=10e3, load_impedance=47e3, load_capacitance=1e-9, below_ground=below
+        )
         return topology.evaluate(parts, device, c, thd_solve=True)
+
     npn = evaluate(NPN, 0.0)
     for device, below in ((PNP, 1.0), (NPN, 1.0), (PNP, 0.0)):
         other = evaluate(device, below)
@@ -120,7 +140,7 @@ def test_followers_on_a_split_supply_return_the_divider_tap_to_ground() -> None:
         assert op["v_base"] == pytest.approx(tap - op["ib"] * extra.get("r_bootstrap", 0.0), rel=1e-6), name
         assert op["v_emitter"] == pytest.approx(-6.0 + op["ic"] * (1 + 1 / NPN.hfe_typ) * 27e3, rel=0.01), name
         assert float(r.ratings["p_r_top"][0]) == 0.0
-        assert float(r.ratings["p_r_bottom"][0]) == pytest.approx(tap ** 2 / 100e3, rel=1e-6)
+        assert float(r.ratings["p_r_bottom"][0]) == pytest.approx(tap**2 / 100e3, rel=1e-6)
     floors = get_topology("bootstrap_follower").capacitor_floors({"r_bottom": np.array([100e3])}, c, 20.0)
     assert floors["c_bootstrap"] == pytest.approx(1.0 / (2 * np.pi * 20.0 * 100e3))
 
@@ -144,13 +164,15 @@ def test_electrolytic_plus_side_flips_with_the_rail() -> None:
     # common practice: + toward the more positive DC node. On a positive rail c_in's + goes to
     # the base (above ground); on a negative rail the base is below ground, so + goes to the source.
     spec = parse_spec({**SPEC, "supply": "-12 V"})
-    record = assess(spec, CATALOG, "divider_ce", {k: v for k, v in PARTS.items() if k.startswith("r_")}, "npn-general",
-                    samples=20)
+    record = assess(
+        spec, CATALOG, "divider_ce", {k: v for k, v in PARTS.items() if k.startswith("r_")}, "npn-general", samples=20
+    )
     assert record["conditions"]["rails"] == [0.0, -12.0] and record["operating_point"]["v_base"] < 0
     lines = {ln["roles"]: ln for ln in kit(record, CATALOG, 1).to_dict()["lines"]}
     assert lines["c_in"]["polarised"]
-    assert lines["c_in"]["orientation"].startswith("C1: + toward the input (source side) (0.00 V DC), - toward "
-                                                   "Q1's base"), lines["c_in"]["orientation"]
+    assert lines["c_in"]["orientation"].startswith(
+        "C1: + toward the input (source side) (0.00 V DC), - toward Q1's base"
+    ), lines["c_in"]["orientation"]
 
 
 def test_split_supply_span_above_30_v_is_cautioned() -> None:
@@ -169,10 +191,14 @@ def test_eligibility_names_who_can_and_why_the_others_cannot(capsys: pytest.Capt
     path.write_text(yaml.safe_dump({**SPEC, "supply": "+-12 V"}))
     assert main(["check", str(path)]) == EXIT_OK
     out = capsys.readouterr().out
-    assert "gain -8 is inverting, split supply: divider_ce, divider_ce_split, ce_follower can; feedback_ce cannot" in out
+    assert (
+        "gain -8 is inverting, split supply: divider_ce, divider_ce_split, ce_follower can; feedback_ce cannot" in out
+    )
     # a positive gain fails check at once, naming the sign (no non-inverting stage in this set)
     with pytest.raises(InputError) as err:
-        validate_spec(parse_spec({**SPEC, "gain": {"target": 10}, "topologies": ["divider_ce", "feedback_ce"]}), CATALOG)
+        validate_spec(
+            parse_spec({**SPEC, "gain": {"target": 10}, "topologies": ["divider_ce", "feedback_ce"]}), CATALOG
+        )
     assert err.value.problems[0].where == "gain.target" and "non-inverting" in err.value.problems[0].expected
 
 
@@ -183,17 +209,21 @@ def test_search_space_pairs_each_topology_with_its_polarity(monkeypatch: pytest.
     assert space.devices_of("divider_ce") == ("npn-general",)
     assert space.devices_of("feedback_ce") == ("npn-general", "pnp-general")
     assert "device" not in space.distributions({"topology": "divider_ce"})
-    assert space.distributions({"topology": "feedback_ce"})["device:feedback_ce"].choices == ("npn-general",
-                                                                                            "pnp-general")
+    assert space.distributions({"topology": "feedback_ce"})["device:feedback_ce"].choices == (
+        "npn-general",
+        "pnp-general",
+    )
     assert all(d.device == "npn-general" for d in space.seeds() if d.topology == "divider_ce")
     assert {d.device for d in space.seeds() if d.topology == "feedback_ce"} == {"npn-general", "pnp-general"}
 
 
 # ---- the example specs: a +-12 V stage and a -9 V rail stage -------------------------------
 
+
 @pytest.mark.skipif(not __import__("shutil").which("ngspice"), reason="ngspice not installed: apt-get install ngspice")
-@pytest.mark.parametrize("name, arrangement", [("split_rail_synth_input", "split"),
-                                               ("negative_rail_sensor_amp", "negative")])
+@pytest.mark.parametrize(
+    "name, arrangement", [("split_rail_synth_input", "split"), ("negative_rail_sensor_amp", "negative")]
+)
 def test_example_spec_searches_to_a_feasible_rank_1_that_ngspice_confirms(name: str, arrangement: str) -> None:
     import sys
     from pathlib import Path
@@ -219,8 +249,9 @@ def test_example_spec_searches_to_a_feasible_rank_1_that_ngspice_confirms(name: 
     op = spice_operating_point(topology.name, values, card, conditions)
     assert best["operating_point"]["ic"] == pytest.approx(op["ic"], rel=0.03)
     assert best["operating_point"]["v_base"] == pytest.approx(op["v_base"], abs=0.05)
-    assert best["metrics"]["gain"] == pytest.approx(spice_midband(topology.name, values, card, conditions)["gain"],
-                                                    rel=0.03)
+    assert best["metrics"]["gain"] == pytest.approx(
+        spice_midband(topology.name, values, card, conditions)["gain"], rel=0.03
+    )
     model_psrr = topology.psrr(parts, device, conditions)
     ripple, mid = spice_psrr(topology.name, values, card, conditions, (100.0, 632.4555320336759))
     assert float(model_psrr["psrr_ripple_db"][0]) == pytest.approx(ripple, abs=2.0)

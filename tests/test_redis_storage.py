@@ -4,6 +4,7 @@ References outside the project: Optuna's own ``JournalRedisBackend`` reads what 
 the other way round (same key layout), and a search on Redis ranks exactly as the same search
 in memory. Skipped where Debian's redis-server is absent, unless CI is set (.ci/run installs it).
 """
+
 from __future__ import annotations
 
 import os
@@ -22,11 +23,18 @@ from redis_fixture import ThrowawayRedis
 
 ROOT = Path(__file__).resolve().parent.parent
 pytestmark = pytest.mark.filterwarnings("ignore::optuna.exceptions.ExperimentalWarning")
-SPEC = {"name": "redis storage check", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"},
-        "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
-        "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
-        "topologies": ["divider_ce"], "parts": {"resistor_series": "E3", "resistor_range": ["1k", "100k"]},
-        "search": {"trials": 96, "seed": 3, "batch_size": 16}}
+SPEC = {
+    "name": "redis storage check",
+    "supply": "12 V",
+    "gain": {"target": -8, "tolerance": "1 dB"},
+    "source_impedance": 600,
+    "load_impedance": "47k",
+    "band": ["20 Hz", "20 kHz"],
+    "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
+    "topologies": ["divider_ce"],
+    "parts": {"resistor_series": "E3", "resistor_range": ["1k", "100k"]},
+    "search": {"trials": 96, "seed": 3, "batch_size": 16},
+}
 
 
 @pytest.fixture(scope="module")
@@ -52,14 +60,14 @@ def test_records_read_back_by_optuna_s_own_backend_and_the_other_way(redis_url):
 
     ours = RedisJournal(_db(redis_url, 1), prefix="t")
     theirs = optuna.storages.journal.JournalRedisBackend(_db(redis_url, 1), prefix="t")
-    batch = [{"op_code": 0, "worker_id": "w", "n": i, "text": "é\n\"quoted\""} for i in range(READ_CHUNK + 5)]
+    batch = [{"op_code": 0, "worker_id": "w", "n": i, "text": 'é\n"quoted"'} for i in range(READ_CHUNK + 5)]
     ours.append_logs(batch[:3])
     ours.append_logs(batch[3:])  # two appends, more records than one read chunk
     theirs.append_logs([{"op_code": 1, "worker_id": "x", "n": -1}])
     expected = batch + [{"op_code": 1, "worker_id": "x", "n": -1}]
     assert list(theirs.read_logs(0)) == expected
     assert list(ours.read_logs(0)) == expected
-    assert list(ours.read_logs(READ_CHUNK + 4)) == expected[READ_CHUNK + 4:]
+    assert list(ours.read_logs(READ_CHUNK + 4)) == expected[READ_CHUNK + 4 :]
     assert list(ours.read_logs(len(expected))) == []
     assert list(RedisJournal(_db(redis_url, 1), prefix="empty").read_logs(0)) == []
 
@@ -71,8 +79,10 @@ def test_a_search_on_redis_ranks_as_the_same_search_in_memory(redis_url):
         storage = open_storage(url)
         search_id = create_search(spec, storage)
         run_search(storage, search_id)
-        ranked[name] = [(c["topology"], {r: p["value"] for r, p in c["parts"].items()}, round(c["score"], 9),
-                         c["feasible"]) for c in load_search(storage, search_id).candidates]
+        ranked[name] = [
+            (c["topology"], {r: p["value"] for r, p in c["parts"].items()}, round(c["score"], 9), c["feasible"])
+            for c in load_search(storage, search_id).candidates
+        ]
     assert ranked["memory"] and ranked["memory"] == ranked["redis"]
 
 
@@ -92,9 +102,16 @@ def test_two_worker_processes_finish_exactly_the_budget(redis_url, tmp_path):
     spec = parse_spec({**SPEC, "search": {**SPEC["search"], "trials": 128, "batch_size": 8}})
     search_id = create_search(spec, open_storage(url))
     logs = [tmp_path / f"worker-{i}.log" for i in (1, 2)]
-    procs = [subprocess.Popen([sys.executable, "-m", "optimizer.cli", "worker", "--storage", url, "--once",
-                               "--poll", "0.2"], cwd=ROOT, stdout=log.open("w"), stderr=subprocess.STDOUT,
-                              env={**os.environ, "PYTHONPATH": str(ROOT)}) for log in logs]
+    procs = [
+        subprocess.Popen(
+            [sys.executable, "-m", "optimizer.cli", "worker", "--storage", url, "--once", "--poll", "0.2"],
+            cwd=ROOT,
+            stdout=log.open("w"),
+            stderr=subprocess.STDOUT,
+            env={**os.environ, "PYTHONPATH": str(ROOT)},
+        )
+        for log in logs
+    ]
     try:
         codes = [p.wait(timeout=600) for p in procs]
     finally:
@@ -130,12 +147,20 @@ def test_a_killed_worker_s_trials_are_failed_and_the_budget_still_met(redis_url,
     search_id = create_search(spec, storage)
     study = optuna.load_study(study_name=search_id, storage=storage)
     # a runner that asks a batch, is recorded as its holder, and dies before telling it
-    code = ("import os, optuna\nfrom optimizer.storage import open_storage, TrialHeartbeat\n"
-            f"s = open_storage({url!r})\nst = optuna.load_study(study_name={search_id!r}, storage=s)\n"
-            "hb = TrialHeartbeat(s)\n[hb.add(st.ask()) for _ in range(8)]\nprint('asked', flush=True)\n"
-            "os.kill(os.getpid(), 9)")
-    done = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True,
-                          env={**os.environ, "PYTHONPATH": str(ROOT)}, timeout=300)
+    code = (
+        "import os, optuna\nfrom optimizer.storage import open_storage, TrialHeartbeat\n"
+        f"s = open_storage({url!r})\nst = optuna.load_study(study_name={search_id!r}, storage=s)\n"
+        "hb = TrialHeartbeat(s)\n[hb.add(st.ask()) for _ in range(8)]\nprint('asked', flush=True)\n"
+        "os.kill(os.getpid(), 9)"
+    )
+    done = subprocess.run(
+        [sys.executable, "-c", code],
+        cwd=ROOT,
+        capture_output=True,
+        text=True,
+        env={**os.environ, "PYTHONPATH": str(ROOT)},
+        timeout=300,
+    )
     assert done.returncode == -signal.SIGKILL and "asked" in done.stdout, done.stderr[-2000:]
     assert sum(t.state == TrialState.RUNNING for t in study.get_trials(deepcopy=False)) == 8
     time.sleep(4)  # the dead runner's liveness key lapses

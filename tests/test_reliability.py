@@ -4,6 +4,7 @@ SIGKILL of the server and a worker during searches with one torn journal line, /
 while ?wait= posts would fill every request thread, waitress's own 413 as problem+json,
 and a short load mix with no 5xx. No assertion here is on time.
 """
+
 from __future__ import annotations
 
 import importlib.util
@@ -35,8 +36,9 @@ def test_healthz_answers_while_wait_posts_would_fill_every_request_thread(tmp_pa
 
         def post() -> None:
             client = bench.Client(server)
-            answers.append(client.call("POST", "/v1/searches?wait=20", json.dumps(bench.small_spec(16)).encode(),
-                                       bench.JSON)[0])
+            answers.append(
+                client.call("POST", "/v1/searches?wait=20", json.dumps(bench.small_spec(16)).encode(), bench.JSON)[0]
+            )
 
         posts = [threading.Thread(target=post) for _ in range(8)]  # twice the request threads
         for thread in posts:
@@ -56,8 +58,10 @@ def test_waitress_refuses_an_oversized_body_with_a_problem_document(tmp_path):
     server = bench.Server(tmp_path, {"STAGEFIT_QUEUE_ONLY": "1"}, threads=4)
     try:
         with socket.create_connection((server.host, server.port), timeout=30) as raw:
-            raw.sendall(b"POST /v1/searches HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
-                        b"Content-Length: 20971520\r\n\r\n")
+            raw.sendall(
+                b"POST /v1/searches HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+                b"Content-Length: 20971520\r\n\r\n"
+            )
             reply = b""
             while b"\r\n\r\n" not in reply or not reply.rstrip().endswith(b"}"):
                 chunk = raw.recv(65536)

@@ -1,4 +1,5 @@
 """Robustness as a limit, bias spread, derated ratings, distinct ranking and honest infeasibility."""
+
 from __future__ import annotations
 
 import itertools
@@ -15,9 +16,17 @@ from optimizer.spec import parse_spec
 from optimizer.tolerance import bias_spread
 from optimizer.topologies import get_topology
 
-BASE = {"name": "robust", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"},
-        "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
-        "limits": {"swing_min": "3 V"}, "topologies": ["divider_ce"], "search": {"trials": 600}}
+BASE = {
+    "name": "robust",
+    "supply": "12 V",
+    "gain": {"target": -8, "tolerance": "1 dB"},
+    "source_impedance": 600,
+    "load_impedance": "47k",
+    "band": ["20 Hz", "20 kHz"],
+    "limits": {"swing_min": "3 V"},
+    "topologies": ["divider_ce"],
+    "search": {"trials": 600},
+}
 
 
 def _spec(**changes):
@@ -66,11 +75,17 @@ def test_bias_spread_matches_brute_force_corner_enumeration() -> None:
     sign patterns at each of the 8 hFE/temperature/supply corners (brute force, written here)."""
     topology = get_topology("divider_ce")
     device = SearchSpace.build(_spec()).devices["npn-general"]
-    parts = {"r_top": np.array([82e3, 100e3]), "r_bottom": np.array([15e3, 22e3]),
-             "r_collector": np.array([4.7e3, 3.3e3]), "r_emitter": np.array([1e3, 1e3])}
+    parts = {
+        "r_top": np.array([82e3, 100e3]),
+        "r_bottom": np.array([15e3, 22e3]),
+        "r_collector": np.array([4.7e3, 3.3e3]),
+        "r_emitter": np.array([1e3, 1e3]),
+    }
     caps = {"c_in": np.full(2, 1e-6), "c_out": np.full(2, 10e-6)}
     conditions = scoring.conditions_from_spec(_spec())
-    spread = bias_spread(topology, {**parts, **caps}, device, conditions, {r: 0.05 for r in parts}, (0.0, 50.0), (11.4, 12.6))
+    spread = bias_spread(
+        topology, {**parts, **caps}, device, conditions, {r: 0.05 for r in parts}, (0.0, 50.0), (11.4, 12.6)
+    )
     ics = []
     for signs in itertools.product((-1, 1), repeat=4):
         varied = {r: v * (1 + 0.05 * s) for (r, v), s in zip(parts.items(), signs)}
@@ -98,9 +113,17 @@ def test_derated_limits_follow_the_ambient() -> None:
 
 
 def _record(topology: str, parts: dict[str, float], score: float, violations: dict | None = None) -> dict:
-    return {"topology": topology, "device": "npn-general", "parts": parts, "score": score,
-            "feasible": not violations, "violations": violations or {},
-            "total_violation": sum((violations or {}).values()), "binding": "", "metrics": {}}
+    return {
+        "topology": topology,
+        "device": "npn-general",
+        "parts": parts,
+        "score": score,
+        "feasible": not violations,
+        "violations": violations or {},
+        "total_violation": sum((violations or {}).values()),
+        "binding": "",
+        "metrics": {},
+    }
 
 
 def test_near_identical_designs_fold_into_the_best() -> None:
@@ -111,9 +134,13 @@ def test_near_identical_designs_fold_into_the_best() -> None:
     one_step_everywhere = {r: float(e24[i[v] + 1]) for r, v in base.items()}
     two_steps_in_one = {**base, "r_top": float(e24[i[47e3] + 2])}
     two_steps_in_two = {**base, "r_top": float(e24[i[47e3] + 2]), "r_emitter": float(e24[i[1e3] - 2])}
-    ranked = [_record("divider_ce", base, 0.9), _record("divider_ce", one_step_everywhere, 0.89),
-              _record("divider_ce", two_steps_in_one, 0.88), _record("divider_ce", two_steps_in_two, 0.87),
-              _record("divider_ce_split", {**base, "r_emitter_dc": 1e3}, 0.86)]
+    ranked = [
+        _record("divider_ce", base, 0.9),
+        _record("divider_ce", one_step_everywhere, 0.89),
+        _record("divider_ce", two_steps_in_one, 0.88),
+        _record("divider_ce", two_steps_in_two, 0.87),
+        _record("divider_ce_split", {**base, "r_emitter_dc": 1e3}, 0.86),
+    ]
     folded = fold_variants(space, ranked)
     assert [r["score"] for r in folded] == [0.9, 0.87, 0.86]
     assert [r["variants"] for r in folded] == [3, 1, 1]
@@ -121,9 +148,11 @@ def test_near_identical_designs_fold_into_the_best() -> None:
 
 def test_relaxing_one_limit_names_the_limit_and_the_value_reached() -> None:
     spec = _spec(limits={"swing_min": "8 V", "supply_current_max": "1 mA"})
-    ranked = [_record("divider_ce", {}, -0.3, {"swing_min": 0.2, "supply_current_max": 0.1}),
-              _record("divider_ce", {}, -0.4, {"swing_min": 0.4}),
-              _record("divider_ce", {}, -0.25, {"supply_current_max": 0.25, "yield": 0.5})]
+    ranked = [
+        _record("divider_ce", {}, -0.3, {"swing_min": 0.2, "supply_current_max": 0.1}),
+        _record("divider_ce", {}, -0.4, {"swing_min": 0.4}),
+        _record("divider_ce", {}, -0.25, {"supply_current_max": 0.25, "yield": 0.5}),
+    ]
     ranked[1]["metrics"] = {"swing_vpp": 4.8}
     ranked[2]["metrics"] = {"supply_current": 1.25e-3}
     answer = relax_one_limit(spec, ranked)
@@ -134,12 +163,24 @@ def test_relaxing_one_limit_names_the_limit_and_the_value_reached() -> None:
 
 IMPOSSIBLE = {
     # a 5 V rail cannot swing 4.7 V p-p into the load with margin for spread
-    "swing": {**BASE, "supply": "5 V", "gain": {"target": -10}, "limits": {"swing_min": "4.7 V"},
-              "topologies": ["divider_ce", "divider_ce_split", "feedback_ce"], "search": {"trials": 500}},
+    "swing": {
+        **BASE,
+        "supply": "5 V",
+        "gain": {"target": -10},
+        "limits": {"swing_min": "4.7 V"},
+        "topologies": ["divider_ce", "divider_ce_split", "feedback_ce"],
+        "search": {"trials": 500},
+    },
     # gain 200 from a 50 kohm source to 200 kHz: the Miller pole sits far below the band edge
-    "miller": {**BASE, "gain": {"target": -200, "tolerance": "1 dB"}, "source_impedance": "50k",
-               "band": ["20 Hz", "200 kHz"], "limits": {}, "topologies": ["divider_ce_split", "feedback_ce"],
-               "search": {"trials": 500}},
+    "miller": {
+        **BASE,
+        "gain": {"target": -200, "tolerance": "1 dB"},
+        "source_impedance": "50k",
+        "band": ["20 Hz", "200 kHz"],
+        "limits": {},
+        "topologies": ["divider_ce_split", "feedback_ce"],
+        "search": {"trials": 500},
+    },
 }
 
 
@@ -154,8 +195,9 @@ def test_an_infeasible_spec_names_the_same_binding_limit_for_every_seed(case: st
 
 def test_a_saturated_design_reports_no_small_signal_gain() -> None:
     catalog = load_catalog("eseries_full")
-    record = assess(_spec(), catalog, "divider_ce",
-                    {"r_top": 10e3, "r_bottom": 10e3, "r_collector": 47e3, "r_emitter": 100.0})
+    record = assess(
+        _spec(), catalog, "divider_ce", {"r_top": 10e3, "r_bottom": 10e3, "r_collector": 47e3, "r_emitter": 100.0}
+    )
     assert record["metrics"]["gain"] is None and record["metrics"]["swing_vpp"] is None
     assert "saturated" in record["note"] and not record["feasible"]
 

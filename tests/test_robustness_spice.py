@@ -6,6 +6,7 @@ corner values; the model's Monte Carlo yield with ngspice judging the same build
 its headroom limit must fail at the spec's lowest supply in both. Skipped only where ngspice is
 absent.
 """
+
 from __future__ import annotations
 
 import shutil
@@ -22,8 +23,9 @@ from optimizer.topologies import get_topology
 from spice_designs import check_designs
 from spice_harness import spice_midband, spice_operating_point, spice_swing
 
-pytestmark = pytest.mark.skipif(shutil.which("ngspice") is None,
-                                reason="ngspice not installed: apt-get install ngspice")
+pytestmark = pytest.mark.skipif(
+    shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice"
+)
 
 TOLERANCE = 0.05  # every resistor and capacitor at +-5 %
 CORNER_AGREEMENT = 0.03  # gain and Ic within 3 % of ngspice at each corner (the issue's bound)
@@ -75,7 +77,10 @@ def test_corner_figures_agree_with_ngspice(design) -> None:
         model = {**device.spice_model(), "BF": hfe}
         ic = spice_operating_point(design.topology, values, model, conditions)["ic"]
         gain = spice_midband(design.topology, values, model, conditions)["gain"]
-        for name, ours, theirs in (("ic", result.operating_point["ic"][0], ic), ("gain", result.metrics["gain"][0], gain)):
+        for name, ours, theirs in (
+            ("ic", result.operating_point["ic"][0], ic),
+            ("gain", result.metrics["gain"][0], gain),
+        ):
             if abs(ours - theirs) > CORNER_AGREEMENT * abs(theirs):
                 off.append((name, temperature, supply, hfe, ours, theirs))
     assert not off, f"{design.name}: model vs ngspice at corners {off}"
@@ -88,11 +93,24 @@ def test_bias_spread_brackets_the_simulated_corners() -> None:
     device = _spread_device(design.device.BF)
     parts = {k: np.array([v]) for k, v in design.parts.items()}
     supply = design.conditions.supply
-    spread = bias_spread(topology, parts, device, design.conditions, {k: TOLERANCE for k in parts},
-                         (0.0, 50.0), (0.9 * supply, 1.1 * supply))
-    simulated = [spice_operating_point(design.topology, values, {**device.spice_model(), "BF": hfe},
-                                       replace(design.conditions, temperature=t, supply=s))["ic"]
-                 for hfe, t, s, values in _corners(design)]
+    spread = bias_spread(
+        topology,
+        parts,
+        device,
+        design.conditions,
+        {k: TOLERANCE for k in parts},
+        (0.0, 50.0),
+        (0.9 * supply, 1.1 * supply),
+    )
+    simulated = [
+        spice_operating_point(
+            design.topology,
+            values,
+            {**device.spice_model(), "BF": hfe},
+            replace(design.conditions, temperature=t, supply=s),
+        )["ic"]
+        for hfe, t, s, values in _corners(design)
+    ]
     assert spread["ic_low"][0] <= min(simulated) * (1 + 1e-3)
     assert spread["ic_high"][0] >= max(simulated) * (1 - 1e-3)
     assert spread["ic_spread"][0] == pytest.approx(max(simulated) / min(simulated), rel=0.03)
@@ -100,11 +118,17 @@ def test_bias_spread_brackets_the_simulated_corners() -> None:
 
 def _mc_spec(design, gain_tolerance_db: float, zin_min: float) -> object:
     c = design.conditions
-    return parse_spec({"name": "mc check", "supply": {"nominal": c.supply, "min": 0.95 * c.supply,
-                                                      "max": 1.05 * c.supply},
-                       "gain": {"target": design.hand_gain * 0.9, "tolerance_db": gain_tolerance_db},
-                       "source_impedance": c.source_impedance, "load_impedance": c.load_impedance,
-                       "band": list(c.band), "limits": {"input_impedance_min": zin_min}})
+    return parse_spec(
+        {
+            "name": "mc check",
+            "supply": {"nominal": c.supply, "min": 0.95 * c.supply, "max": 1.05 * c.supply},
+            "gain": {"target": design.hand_gain * 0.9, "tolerance_db": gain_tolerance_db},
+            "source_impedance": c.source_impedance,
+            "load_impedance": c.load_impedance,
+            "band": list(c.band),
+            "limits": {"input_impedance_min": zin_min},
+        }
+    )
 
 
 @pytest.mark.parametrize("index", [0, 19])
@@ -120,8 +144,9 @@ def test_monte_carlo_yield_agrees_with_ngspice(index: int) -> None:
     spec = _mc_spec(design, 0.6, 0.93 * float(nominal.metrics["input_impedance"][0]))
     target = abs(float(nominal.metrics["gain"][0]))
     spec = spec.model_copy(update={"gain": spec.gain.model_copy(update={"target": target})})
-    builds = Builds.draw(100, seed=5, temperature_range=tuple(spec.temperature),
-                         supply_range=(spec.supply_min, spec.supply_max))
+    builds = Builds.draw(
+        100, seed=5, temperature_range=tuple(spec.temperature), supply_range=(spec.supply_min, spec.supply_max)
+    )
     hfe = builds.hfe(device)
     ours = theirs = 0
     for k in range(builds.samples):
@@ -129,17 +154,22 @@ def test_monte_carlo_yield_agrees_with_ngspice(index: int) -> None:
         at = replace(conditions, temperature=float(builds.temperature[k]), supply=float(builds.supply[k]))
         result = topology.evaluate({r: np.array([v]) for r, v in values.items()}, device, at, hfe=hfe[k])
         metrics = {m: np.asarray(v) for m, v in result.metrics.items()}
-        v = scoring.limit_violations(spec, metrics, result.ratings, {}, result.operating_point["active"],
-                                     core_only=True)
+        v = scoring.limit_violations(
+            spec, metrics, result.ratings, {}, result.operating_point["active"], core_only=True
+        )
         ours += int(scoring.total_violation(v)[0] == 0)
         model = {**device.spice_model(), "BF": float(hfe[k])}
         op = spice_operating_point(design.topology, values, model, at)
         mid = spice_midband(design.topology, values, model, at)
-        simulated = {**metrics,  # each (1,): the model's, where ngspice does not replace it
-                     "gain": np.array([mid["gain"]]), "input_impedance": np.array([mid["input_impedance"]]),
-                     "supply_current": np.array([op["supply_current"]])}
-        vs = scoring.limit_violations(spec, simulated, result.ratings, {}, result.operating_point["active"],
-                                      core_only=True)
+        simulated = {
+            **metrics,  # each (1,): the model's, where ngspice does not replace it
+            "gain": np.array([mid["gain"]]),
+            "input_impedance": np.array([mid["input_impedance"]]),
+            "supply_current": np.array([op["supply_current"]]),
+        }
+        vs = scoring.limit_violations(
+            spec, simulated, result.ratings, {}, result.operating_point["active"], core_only=True
+        )
         theirs += int(scoring.total_violation(vs)[0] == 0)
     assert 0 < ours < builds.samples or 0 < theirs < builds.samples, "the limits should make the yield partial"
     assert abs(ours - theirs) <= 7, f"model yield {ours} % vs ngspice {theirs} % of 100 builds"
@@ -182,33 +212,66 @@ def test_rank_one_yield_agrees_with_ngspice_monte_carlo(name: str) -> None:
     best = search(spec, trials=400, seed=3, top=1).candidates[0]
     topology, parts, device, conditions = design_from_record(best)
     catalog = load_catalog(spec.parts.catalog)
-    tolerance = {role: float(catalog.part_for("capacitor" if role.startswith("c_") else "resistor",
-                                              float(v[0]))["tolerance"]) for role, v in parts.items() if v[0] > 0}
-    measured = {k: v for k, v in spec.limits.model_dump().items()
-                if k in ("input_impedance_min", "output_impedance_max", "supply_current_max")}
-    judged = spec.model_copy(update={"limits": spec.limits.model_copy(update={
-        k: (v if k in measured else None) for k, v in spec.limits.model_dump().items()
-        if k not in ("yield_min", "thd_level")})})
-    builds = Builds.draw(100, seed=9, temperature_range=tuple(spec.temperature),
-                         supply_range=(spec.supply_min, spec.supply_max))
+    tolerance = {
+        role: float(catalog.part_for("capacitor" if role.startswith("c_") else "resistor", float(v[0]))["tolerance"])
+        for role, v in parts.items()
+        if v[0] > 0
+    }
+    measured = {
+        k: v
+        for k, v in spec.limits.model_dump().items()
+        if k in ("input_impedance_min", "output_impedance_max", "supply_current_max")
+    }
+    judged = spec.model_copy(
+        update={
+            "limits": spec.limits.model_copy(
+                update={
+                    k: (v if k in measured else None)
+                    for k, v in spec.limits.model_dump().items()
+                    if k not in ("yield_min", "thd_level")
+                }
+            )
+        }
+    )
+    builds = Builds.draw(
+        100, seed=9, temperature_range=tuple(spec.temperature), supply_range=(spec.supply_min, spec.supply_max)
+    )
     hfe = builds.hfe(device)
     ours = theirs = 0
     for k in range(builds.samples):
-        values = {role: float(v[0]) * (1 + tolerance.get(role, 0.0) * builds.part_position(role)[k])
-                  for role, v in parts.items()}
+        values = {
+            role: float(v[0]) * (1 + tolerance.get(role, 0.0) * builds.part_position(role)[k])
+            for role, v in parts.items()
+        }
         at = replace(conditions, temperature=float(builds.temperature[k]), supply=float(builds.supply[k]))
         result = topology.evaluate({r: np.array([v]) for r, v in values.items()}, device, at, hfe=hfe[k])
         metrics = {m: np.asarray(v) for m, v in result.metrics.items()}
-        ok = scoring.total_violation(scoring.limit_violations(judged, metrics, result.ratings, {},
-                                                              result.operating_point["active"], core_only=True))[0] == 0
+        ok = (
+            scoring.total_violation(
+                scoring.limit_violations(
+                    judged, metrics, result.ratings, {}, result.operating_point["active"], core_only=True
+                )
+            )[0]
+            == 0
+        )
         ours += int(ok)
         model = {**device.spice_model(), "BF": float(hfe[k])}
         spice_values = {r: v for r, v in values.items() if v > 0}
         op = spice_operating_point(topology.name, spice_values, model, at)
         mid = spice_midband(topology.name, spice_values, model, at)
-        simulated = {**metrics, "gain": np.array([mid["gain"]]), "input_impedance": np.array([mid["input_impedance"]]),
-                     "output_impedance": np.array([mid["output_impedance"]]),
-                     "supply_current": np.array([op["supply_current"]])}
-        theirs += int(scoring.total_violation(scoring.limit_violations(
-            judged, simulated, result.ratings, {}, result.operating_point["active"], core_only=True))[0] == 0)
+        simulated = {
+            **metrics,
+            "gain": np.array([mid["gain"]]),
+            "input_impedance": np.array([mid["input_impedance"]]),
+            "output_impedance": np.array([mid["output_impedance"]]),
+            "supply_current": np.array([op["supply_current"]]),
+        }
+        theirs += int(
+            scoring.total_violation(
+                scoring.limit_violations(
+                    judged, simulated, result.ratings, {}, result.operating_point["active"], core_only=True
+                )
+            )[0]
+            == 0
+        )
     assert abs(ours - theirs) <= 7, f"{name}: model yield {ours} % vs ngspice {theirs} % of 100 builds"

@@ -1,4 +1,5 @@
 """Hard limits as normalised violations: gain window, limits, ratings never silently pass."""
+
 from __future__ import annotations
 
 import numpy as np
@@ -6,21 +7,38 @@ import numpy as np
 from optimizer.scoring import binding_limit, limit_margins, limit_table, limit_violations, total_violation
 from optimizer.spec import parse_spec
 
-SPEC = parse_spec({"name": "t", "supply": "12 V", "gain": {"target": -10, "tolerance": "1 dB"},
-                   "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
-                   "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"}})
+SPEC = parse_spec(
+    {
+        "name": "t",
+        "supply": "12 V",
+        "gain": {"target": -10, "tolerance": "1 dB"},
+        "source_impedance": 600,
+        "load_impedance": "47k",
+        "band": ["20 Hz", "20 kHz"],
+        "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
+    }
+)
 
 
 def _metrics(gain: float, swing: float, current: float) -> dict[str, np.ndarray]:
-    return {"gain": np.array([gain]), "swing_vpp": np.array([swing]), "supply_current": np.array([current]),
-            "f_low": np.array([10.0]), "f_high": np.array([1e6]), "input_impedance": np.array([1e4]),
-            "output_impedance": np.array([1e3]), "thd": np.array([1e-3]), "noise_ein_v": np.array([1e-6]),
-            "q_power": np.array([0.01])}
+    return {
+        "gain": np.array([gain]),
+        "swing_vpp": np.array([swing]),
+        "supply_current": np.array([current]),
+        "f_low": np.array([10.0]),
+        "f_high": np.array([1e6]),
+        "input_impedance": np.array([1e4]),
+        "output_impedance": np.array([1e3]),
+        "thd": np.array([1e-3]),
+        "noise_ein_v": np.array([1e-6]),
+        "q_power": np.array([0.01]),
+    }
 
 
 def _violations(metrics, power=0.01, rating=0.25):
-    return limit_violations(SPEC, metrics, {"p_r_collector": np.array([power])},
-                            {"p_r_collector": rating, "q_power": 0.5}, np.array([True]))
+    return limit_violations(
+        SPEC, metrics, {"p_r_collector": np.array([power])}, {"p_r_collector": rating, "q_power": 0.5}, np.array([True])
+    )
 
 
 def test_a_design_inside_every_limit_is_feasible() -> None:
@@ -46,9 +64,13 @@ def test_limit_table_and_margins_against_a_hand_worked_design() -> None:
     # worked by hand for SPEC (-10 V/V +- 1 dB, band 20 Hz..20 kHz, swing >= 4 V, current <= 2 mA):
     # margin = (value - limit)/limit for an "at least", (limit - value)/limit for an "at most"
     one = {"gain_error_db": -0.5, "f_low": 10.0, "f_high": 1e5, "swing_vpp": 6.0, "supply_current": 1.5e-3}
-    expected = {"gain_tolerance": ("max", 1.0, 0.5, 0.5), "band_low": ("max", 20.0, 10.0, 0.5),
-                "band_high": ("min", 2e4, 1e5, 4.0), "swing_min": ("min", 4.0, 6.0, 0.5),
-                "supply_current_max": ("max", 2e-3, 1.5e-3, 0.25)}
+    expected = {
+        "gain_tolerance": ("max", 1.0, 0.5, 0.5),
+        "band_low": ("max", 20.0, 10.0, 0.5),
+        "band_high": ("min", 2e4, 1e5, 4.0),
+        "swing_min": ("min", 4.0, 6.0, 0.5),
+        "supply_current_max": ("max", 2e-3, 1.5e-3, 0.25),
+    }
     table = {row["limit"]: row for row in limit_table(SPEC, one)}
     assert set(table) == set(expected)
     for name, (kind, limit, value, margin) in expected.items():
@@ -59,6 +81,8 @@ def test_limit_table_and_margins_against_a_hand_worked_design() -> None:
     table = {row["limit"]: row for row in limit_table(SPEC, {**one, "swing_vpp": None, "gain_error_db": None})}
     assert table["swing_min"]["margin"] is None and table["gain_tolerance"]["margin"] is None
     # the score's margin term: the smallest over the optional limits only (swing 0.1, current 0.25 here)
-    arrays = {k: np.array([v, v]) for k, v in one.items()} | {"gain": np.array([-10.0, -10.0]),
-                                                               "swing_vpp": np.array([4.4, 6.0])}
+    arrays = {k: np.array([v, v]) for k, v in one.items()} | {
+        "gain": np.array([-10.0, -10.0]),
+        "swing_vpp": np.array([4.4, 6.0]),
+    }
     assert np.allclose(limit_margins(SPEC, arrays), [0.1, 0.25], rtol=1e-12)

@@ -1,4 +1,5 @@
 """The search: Optuna over ordered part indices, batched vectorised evaluation, ranking."""
+
 from __future__ import annotations
 
 import itertools
@@ -26,11 +27,18 @@ from optimizer.spec import load_spec, parse_spec
 from optimizer.synthesis import hand_requirements
 from optimizer.topologies import get_topology
 
-SMALL = {"name": "small", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"},
-         "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
-         "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
-         "topologies": ["divider_ce"], "parts": {"resistor_series": "E6", "resistor_range": ["1k", "100k"]},
-         "search": {"trials": 256, "seed": 3, "batch_size": 64}}
+SMALL = {
+    "name": "small",
+    "supply": "12 V",
+    "gain": {"target": -8, "tolerance": "1 dB"},
+    "source_impedance": 600,
+    "load_impedance": "47k",
+    "band": ["20 Hz", "20 kHz"],
+    "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
+    "topologies": ["divider_ce"],
+    "parts": {"resistor_series": "E6", "resistor_range": ["1k", "100k"]},
+    "search": {"trials": 256, "seed": 3, "batch_size": 64},
+}
 
 
 E6_IEC = (1.0, 1.5, 2.2, 3.3, 4.7, 6.8)  # IEC 60063
@@ -39,17 +47,26 @@ E6_IEC = (1.0, 1.5, 2.2, 3.3, 4.7, 6.8)  # IEC 60063
 def test_seeds_are_the_hand_design_rounded_both_ways() -> None:
     spec = parse_spec(SMALL)
     space = SearchSpace.build(spec)
-    (device_id, device), = space.devices.items()
+    ((device_id, device),) = space.devices.items()
     hand = get_topology("divider_ce").hand_design(hand_requirements(spec, device))
     roles = ("r_top", "r_bottom", "r_collector", "r_emitter")  # divider_ce's resistors (capacitors are sized)
     # reference: each resistor's E6 neighbours below and above it (IEC 60063 values over the decades),
     # held inside the spec's resistor_range (1k..100k), every distinct combination, written out here
     # rather than taken from the series code
-    ladder = sorted(v * 10.0 ** k for v in E6_IEC for k in range(8))
+    ladder = sorted(v * 10.0**k for v in E6_IEC for k in range(8))
     low, high = spec.parts.resistor_range
-    choices = [sorted({min(max(v, low), high) for v in (max(v for v in ladder if v <= hand[r] * (1 + 1e-12)),
-                                                       min(v for v in ladder if v >= hand[r] * (1 - 1e-12)))})
-               for r in roles]
+    choices = [
+        sorted(
+            {
+                min(max(v, low), high)
+                for v in (
+                    max(v for v in ladder if v <= hand[r] * (1 + 1e-12)),
+                    min(v for v in ladder if v >= hand[r] * (1 - 1e-12)),
+                )
+            }
+        )
+        for r in roles
+    ]
     expected = [dict(zip(roles, combo)) for combo in itertools.product(*choices)]
     seeds = space.seeds()
     assert {(d.topology, d.device) for d in seeds} == {("divider_ce", device_id)}
@@ -167,7 +184,7 @@ def test_search_finds_the_exhaustive_optimum_and_its_front_is_the_true_front() -
 
     spec = parse_spec({**SMALL, "search": {"trials": 1024, "seed": 1, "batch_size": 64}})
     oracle = exhaustive(spec)
-    assert oracle.best["feasible"] and oracle.combinations == 13 ** 4
+    assert oracle.best["feasible"] and oracle.combinations == 13**4
     result = search(spec, top=1)
     best_found = max(c.get("nominal_score", c["score"]) for c in result.candidates)
     assert best_found >= 0.99 * oracle.best["score"]
@@ -179,8 +196,13 @@ def test_search_finds_the_exhaustive_optimum_and_its_front_is_the_true_front() -
 
 
 def test_capacitors_can_be_searched_instead_of_sized() -> None:
-    spec = parse_spec({**SMALL, "search": {"trials": 128, "seed": 2, "capacitors": "searched"},
-                       "parts": {**SMALL["parts"], "capacitor_series": "E3", "capacitor_range": ["10n", "100u"]}})
+    spec = parse_spec(
+        {
+            **SMALL,
+            "search": {"trials": 128, "seed": 2, "capacitors": "searched"},
+            "parts": {**SMALL["parts"], "capacitor_series": "E3", "capacitor_range": ["10n", "100u"]},
+        }
+    )
     space = SearchSpace.build(spec)
     assert {"divider_ce.c_in", "divider_ce.c_out"} <= set(space.distributions({}))
     result = search(spec, top=1)

@@ -6,6 +6,7 @@ tolerances of the stage models' ngspice agreement (tests/spice_agreement.TOLERAN
 supply current is held to the operating-point tolerance). Skipped only where ngspice is
 absent.
 """
+
 from __future__ import annotations
 
 import shutil
@@ -19,8 +20,9 @@ from optimizer.spec import load_spec
 from spice_agreement import TOLERANCES
 from spice_harness import spice_midband, spice_operating_point, spice_psrr, spice_swing
 
-pytestmark = pytest.mark.skipif(shutil.which("ngspice") is None,
-                                reason="ngspice not installed: apt-get install ngspice")
+pytestmark = pytest.mark.skipif(
+    shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice"
+)
 
 SPECS = sorted(Path(__file__).resolve().parent.parent.joinpath("specs").glob("*.yaml"))
 
@@ -32,13 +34,19 @@ def test_rank_one_agrees_with_ngspice(path: Path) -> None:
     values = {role: float(v[0]) for role, v in parts.items()}
     model = {**best["transistor"]["model"], "polarity": best["transistor"]["polarity"]}  # a PNP's card and rails
     mid = spice_midband(best["topology"], values, model, conditions)
-    simulated = {"gain": mid["gain"], "input_impedance": mid["input_impedance"],
-                 "swing_vpp": spice_swing(best["topology"], values, model, conditions),
-                 "supply_current": spice_operating_point(best["topology"], values, model, conditions)["supply_current"]}
-    tolerance = {**{k: TOLERANCES[k][0] for k in ("gain", "input_impedance", "swing_vpp")},
-                 "supply_current": TOLERANCES["ic"][0]}
-    off = {k: (best["metrics"][k], v) for k, v in simulated.items()
-           if abs(best["metrics"][k] - v) > tolerance[k] * abs(v)}
+    simulated = {
+        "gain": mid["gain"],
+        "input_impedance": mid["input_impedance"],
+        "swing_vpp": spice_swing(best["topology"], values, model, conditions),
+        "supply_current": spice_operating_point(best["topology"], values, model, conditions)["supply_current"],
+    }
+    tolerance = {
+        **{k: TOLERANCES[k][0] for k in ("gain", "input_impedance", "swing_vpp")},
+        "supply_current": TOLERANCES["ic"][0],
+    }
+    off = {
+        k: (best["metrics"][k], v) for k, v in simulated.items() if abs(best["metrics"][k] - v) > tolerance[k] * abs(v)
+    }
     assert not off, f"{best['topology']} {values}: model vs ngspice {off}"
     # supply rejection at the ripple frequency and at mid-band, within 2 dB (ngspice AC on each rail)
     mid_f = (conditions.band[0] * conditions.band[1]) ** 0.5

@@ -1,4 +1,5 @@
 """Tests for the requirements spec layer (optimizer/spec.py)."""
+
 from __future__ import annotations
 
 import math
@@ -11,8 +12,7 @@ from optimizer.spec import TOPOLOGY_NAMES, Spec, describe_spec, load_spec, parse
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLES = sorted((ROOT / "specs").glob("*.yaml"))
-BASE = {"name": "t", "supply": "12 V", "gain": {"target": -10}, "load_impedance": "47k",
-        "band": ["20 Hz", "20 kHz"]}
+BASE = {"name": "t", "supply": "12 V", "gain": {"target": -10}, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"]}
 
 
 def spec_with(**changes) -> dict:
@@ -29,8 +29,13 @@ def problems(data: dict) -> dict:
 
 def test_at_least_five_examples_load():
     names = {p.stem for p in EXAMPLES}
-    assert {"hydrophone_frontend", "battery_sensor_3v3", "line_driver_24v",
-            "contact_pickup_buffer", "bench_stock_preamp"} <= names
+    assert {
+        "hydrophone_frontend",
+        "battery_sensor_3v3",
+        "line_driver_24v",
+        "contact_pickup_buffer",
+        "bench_stock_preamp",
+    } <= names
     for path in EXAMPLES:
         spec = load_spec(path)
         assert isinstance(spec, Spec)
@@ -39,13 +44,21 @@ def test_at_least_five_examples_load():
 
 
 def test_engineering_notation_everywhere():
-    spec = parse_spec(spec_with(source_impedance="4k7", load_capacitance="100p",
-                                limits={"input_impedance_min": "1M", "supply_current_max": "2 mA",
-                                        "noise_ein_max": "2 uV", "thd_max": "1 %",
-                                        "swing_min": "4 V"},
-                                parts={"resistor_range": ["100", "470k"],
-                                       "capacitor_range": ["1n", "220u"]},
-                                search={"trials": "2k"}))
+    spec = parse_spec(
+        spec_with(
+            source_impedance="4k7",
+            load_capacitance="100p",
+            limits={
+                "input_impedance_min": "1M",
+                "supply_current_max": "2 mA",
+                "noise_ein_max": "2 uV",
+                "thd_max": "1 %",
+                "swing_min": "4 V",
+            },
+            parts={"resistor_range": ["100", "470k"], "capacitor_range": ["1n", "220u"]},
+            search={"trials": "2k"},
+        )
+    )
     # "4k7" = 4.7 kohm (IEC 60062 RKM code, common practice)
     assert spec.source_impedance == pytest.approx(4700)
     assert spec.load_impedance == pytest.approx(47e3)
@@ -78,23 +91,26 @@ def test_gain_forms():
     assert parse_spec(spec_with(gain="26 dB")).gain_target_db == pytest.approx(26)
 
 
-@pytest.mark.parametrize("changes, where", [
-    ({"band": ["20 kHz", "20 Hz"]}, "band"),
-    ({"band": ["20 Hz", "20 V"]}, "band[1]"),
-    ({"temperature": [50, 0]}, "temperature"),
-    ({"gain": {"target": -10, "tolerance": "25 dB"}}, "gain.tolerance"),
-    ({"gain": {"target": -10, "tolerance": 1.5}}, "gain.tolerance"),
-    ({"gain": {"target": -10, "inverting": False}}, "gain.inverting"),
-    ({"limits": {"swing_min": "15 V"}}, "limits.swing_min"),
-    ({"limits": {"swing_min": "4 V", "thd_level": "6 V"}}, "limits.thd_level"),
-    ({"parts": {"resistor_range": ["1M", "10"]}}, "parts.resistor_range"),
-    ({"load_impedance": "47 V"}, "load_impedance"),
-    ({"supply": "120 V"}, "supply"),
-    ({"limits": {"swing_mn": "4 V"}}, "limits.swing_mn"),
-    ({"topologies": ["divider_cee"]}, "topologies[0]"),
-    ({"objectives": ["noise"]}, "objectives[0].metric"),
-    ({"search": {"trials": 0}}, "search.trials"),
-])
+@pytest.mark.parametrize(
+    "changes, where",
+    [
+        ({"band": ["20 kHz", "20 Hz"]}, "band"),
+        ({"band": ["20 Hz", "20 V"]}, "band[1]"),
+        ({"temperature": [50, 0]}, "temperature"),
+        ({"gain": {"target": -10, "tolerance": "25 dB"}}, "gain.tolerance"),
+        ({"gain": {"target": -10, "tolerance": 1.5}}, "gain.tolerance"),
+        ({"gain": {"target": -10, "inverting": False}}, "gain.inverting"),
+        ({"limits": {"swing_min": "15 V"}}, "limits.swing_min"),
+        ({"limits": {"swing_min": "4 V", "thd_level": "6 V"}}, "limits.thd_level"),
+        ({"parts": {"resistor_range": ["1M", "10"]}}, "parts.resistor_range"),
+        ({"load_impedance": "47 V"}, "load_impedance"),
+        ({"supply": "120 V"}, "supply"),
+        ({"limits": {"swing_mn": "4 V"}}, "limits.swing_mn"),
+        ({"topologies": ["divider_cee"]}, "topologies[0]"),
+        ({"objectives": ["noise"]}, "objectives[0].metric"),
+        ({"search": {"trials": 0}}, "search.trials"),
+    ],
+)
 def test_error_paths(changes, where):
     found = problems(spec_with(**changes))
     assert where in found, found
@@ -134,6 +150,7 @@ def test_round_trip():
 def test_json_schema_accepts_examples():
     jsonschema = pytest.importorskip("jsonschema")
     import yaml
+
     schema = spec_json_schema()
     jsonschema.Draft202012Validator.check_schema(schema)
     validator = jsonschema.Draft202012Validator(schema)
@@ -151,8 +168,13 @@ def test_supply_range_bare_number_assumes_five_percent():
 
 
 def test_supply_range_written_out_round_trips():
-    spec = parse_spec({**BASE, "supply": {"nominal": "9 V", "min": "6.5 V", "max": "9.6 V"},
-                       "supply_ripple": {"vpp": "20 mV", "frequency": "120 Hz"}})
+    spec = parse_spec(
+        {
+            **BASE,
+            "supply": {"nominal": "9 V", "min": "6.5 V", "max": "9.6 V"},
+            "supply_ripple": {"vpp": "20 mV", "frequency": "120 Hz"},
+        }
+    )
     assert (spec.supply_min, spec.supply, spec.supply_max) == (6.5, 9.0, 9.6)
     assert not spec.supply_range_assumed
     assert spec.supply_ripple.frequency == 120.0
@@ -175,15 +197,23 @@ def test_robustness_defaults_to_yield_at_95_percent():
 
 # --- supply arrangements (positive, negative, split) --------------------------------------
 
-@pytest.mark.parametrize("written, arrangement, span, rails", [
-    ("12 V", "positive", (11.4, 12.0, 12.6), (12.0, 0.0)),
-    ("-12 V", "negative", (11.4, 12.0, 12.6), (0.0, -12.0)),
-    ({"nominal": "-12 V", "min": "-12.6 V", "max": "-11 V"}, "negative", (11.0, 12.0, 12.6), (0.0, -12.0)),
-    ("+-12 V", "split", (22.8, 24.0, 25.2), (12.0, -12.0)),
-    ("±15 V", "split", (28.5, 30.0, 31.5), (15.0, -15.0)),
-    ({"positive": "12 V", "negative": {"nominal": -5, "min": -5.5, "max": -4.5}}, "split", (15.9, 17.0, 18.1),
-     (12.0, -5.0)),
-])
+
+@pytest.mark.parametrize(
+    "written, arrangement, span, rails",
+    [
+        ("12 V", "positive", (11.4, 12.0, 12.6), (12.0, 0.0)),
+        ("-12 V", "negative", (11.4, 12.0, 12.6), (0.0, -12.0)),
+        ({"nominal": "-12 V", "min": "-12.6 V", "max": "-11 V"}, "negative", (11.0, 12.0, 12.6), (0.0, -12.0)),
+        ("+-12 V", "split", (22.8, 24.0, 25.2), (12.0, -12.0)),
+        ("±15 V", "split", (28.5, 30.0, 31.5), (15.0, -15.0)),
+        (
+            {"positive": "12 V", "negative": {"nominal": -5, "min": -5.5, "max": -4.5}},
+            "split",
+            (15.9, 17.0, 18.1),
+            (12.0, -5.0),
+        ),
+    ],
+)
 def test_supply_forms_give_span_arrangement_and_rails(written, arrangement, span, rails):
     # the span's range: both rails at their lowest magnitude together, then at their highest
     spec = parse_spec({**BASE, "supply": written})
@@ -193,15 +223,18 @@ def test_supply_forms_give_span_arrangement_and_rails(written, arrangement, span
     assert parse_spec(spec_to_dict(spec)) == spec  # the canonical form reads back
 
 
-@pytest.mark.parametrize("written, where, expected", [
-    ({"nominal": -12, "min": -11}, "supply", "for a negative rail min is the most negative"),
-    ({"positive": -3, "negative": -12}, "supply.positive", "above 0 V"),
-    ({"positive": 12, "negative": 5}, "supply.negative", "below 0 V"),
-    ({"positive": 12}, "supply", "both rails"),
-    ({"positive": 12, "negative": {"nominal": -12, "min": 3}}, "supply.negative.min", "same sign"),
-    ("abc", "supply", "a split supply ('+-12 V'"),
-    ("0 V", "supply", "a negative rail ('-12 V'"),
-])
+@pytest.mark.parametrize(
+    "written, where, expected",
+    [
+        ({"nominal": -12, "min": -11}, "supply", "for a negative rail min is the most negative"),
+        ({"positive": -3, "negative": -12}, "supply.positive", "above 0 V"),
+        ({"positive": 12, "negative": 5}, "supply.negative", "below 0 V"),
+        ({"positive": 12}, "supply", "both rails"),
+        ({"positive": 12, "negative": {"nominal": -12, "min": 3}}, "supply.negative.min", "same sign"),
+        ("abc", "supply", "a split supply ('+-12 V'"),
+        ("0 V", "supply", "a negative rail ('-12 V'"),
+    ],
+)
 def test_supply_form_errors_name_the_field(written, where, expected):
     with pytest.raises(InputError) as err:
         parse_spec({**BASE, "supply": written})

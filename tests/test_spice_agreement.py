@@ -12,6 +12,7 @@ negative-rail (and for the followers split-supply) versions of the followers and
 pair. Skipped only
 where ngspice is absent.
 """
+
 from __future__ import annotations
 
 import shutil
@@ -24,8 +25,9 @@ from spice_agreement import agreement_rows, outside_tolerance
 from spice_designs import check_designs, later_polarity_designs, polarity_designs
 from spice_harness import spice_operating_point
 
-pytestmark = pytest.mark.skipif(shutil.which("ngspice") is None,
-                                reason="ngspice not installed: apt-get install ngspice")
+pytestmark = pytest.mark.skipif(
+    shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice"
+)
 
 DESIGNS = check_designs()
 #  The polarity layer: PNP, negative-rail and split-supply versions of two stages (see below).
@@ -72,10 +74,14 @@ NODE_DESIGNS = POLARITY_DESIGNS[::6] + LATER_POLARITY_DESIGNS
 def test_node_voltages_are_true_volts_with_their_sign(design) -> None:
     # ngspice's .op of the netlist with its true rails (ground at 0 V) against the model's
     # reported operating point: within 20 mV or 1 % of the span at base, collector and emitter
-    op = get_topology(design.topology).operating_point({k: np.array([v]) for k, v in design.parts.items()},
-                                                       design.device, design.conditions)
-    simulated = spice_operating_point(design.topology, design.parts,
-                                      {**design.device.spice_model(), "polarity": design.device.polarity},
-                                      design.conditions)
+    op = get_topology(design.topology).operating_point(
+        {k: np.array([v]) for k, v in design.parts.items()}, design.device, design.conditions
+    )
+    simulated = spice_operating_point(
+        design.topology,
+        design.parts,
+        {**design.device.spice_model(), "polarity": design.device.polarity},
+        design.conditions,
+    )
     for key in [k for k in ("v_base", "v_collector", "v_emitter") if k in simulated]:  # a follower has no collector
         assert float(op[key][0]) == pytest.approx(simulated[key], abs=max(0.02, 0.01 * design.conditions.supply)), key

@@ -1,5 +1,6 @@
 """Capacitor sizing (joint, not one corner each), worst case and Monte Carlo yield,
 and the hand method used as seeds and baseline."""
+
 from __future__ import annotations
 
 import numpy as np
@@ -13,11 +14,31 @@ from optimizer.tolerance import monte_carlo_yield, worst_case
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
 
-DEVICE = Device(id="t-npn", polarity="npn", hfe_min=100, hfe_typ=200, hfe_max=300, IS=1e-14, BF=200,
-                NF=1.0, VAF=100, RB=10, CJE=8e-12, CJC=4e-12, TF=4e-10, vce_sat=0.2, vceo_max=45, p_max=0.5)
+DEVICE = Device(
+    id="t-npn",
+    polarity="npn",
+    hfe_min=100,
+    hfe_typ=200,
+    hfe_max=300,
+    IS=1e-14,
+    BF=200,
+    NF=1.0,
+    VAF=100,
+    RB=10,
+    CJE=8e-12,
+    CJC=4e-12,
+    TF=4e-10,
+    vce_sat=0.2,
+    vceo_max=45,
+    p_max=0.5,
+)
 # The common-practice 9 V stage: 75k/10k divider, Rc 10k, Re 1k unbypassed.
-STAGE = {"r_top": np.array([75e3]), "r_bottom": np.array([10e3]), "r_collector": np.array([10e3]),
-         "r_emitter": np.array([1e3])}
+STAGE = {
+    "r_top": np.array([75e3]),
+    "r_bottom": np.array([10e3]),
+    "r_collector": np.array([10e3]),
+    "r_emitter": np.array([1e3]),
+}
 CONDITIONS = Conditions(supply=9.0, source_impedance=600.0, load_impedance=100e3, band=(20.0, 20e3))
 E6_CAPS = eseries.series_values("E6", 1e-9, 1e-3)
 
@@ -48,7 +69,7 @@ def test_sizing_is_vectorised_over_candidates() -> None:
     many = {role: np.repeat(v, 3) * np.array([1.0, 1.5, 2.0]) for role, v in STAGE.items()}
     together = size_capacitors(topology, many, DEVICE, CONDITIONS, E6_CAPS)
     for k in range(3):
-        one = size_capacitors(topology, {r: v[k:k + 1] for r, v in many.items()}, DEVICE, CONDITIONS, E6_CAPS)
+        one = size_capacitors(topology, {r: v[k : k + 1] for r, v in many.items()}, DEVICE, CONDITIONS, E6_CAPS)
         for cap in topology.capacitors:
             assert together[cap][k] == one[cap][0]
 

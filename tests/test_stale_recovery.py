@@ -1,6 +1,7 @@
 """Stale-trial recovery has one home (optimizer/storage.py: recover_stale_trials), and the
 CLI and the workers use it as the server's job pool does: a trial left running by a
 process that died is failed and asked again, so a resumed search finishes its budget."""
+
 from __future__ import annotations
 
 import optuna
@@ -15,11 +16,18 @@ from optimizer.spec import parse_spec
 from optimizer.storage import open_storage, recover_stale_trials, stale_after_seconds
 from optimizer.worker import work_once
 
-SPEC = {"name": "stale check", "supply": "15 V", "gain": {"target": -30, "tolerance": "2 dB"},
-        "source_impedance": "2k2", "load_impedance": "22k", "band": ["20 Hz", "20 kHz"],
-        "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
-        "parts": {"catalog": "bench_stock", "in_stock_only": True, "resistor_series": "E12"},
-        "topologies": ["divider_ce"], "search": {"trials": 96, "seed": 2, "batch_size": 32}}
+SPEC = {
+    "name": "stale check",
+    "supply": "15 V",
+    "gain": {"target": -30, "tolerance": "2 dB"},
+    "source_impedance": "2k2",
+    "load_impedance": "22k",
+    "band": ["20 Hz", "20 kHz"],
+    "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
+    "parts": {"catalog": "bench_stock", "in_stock_only": True, "resistor_series": "E12"},
+    "topologies": ["divider_ce"],
+    "search": {"trials": 96, "seed": 2, "batch_size": 32},
+}
 
 
 def _orphaned(storage, search_id: str) -> int:
@@ -72,4 +80,3 @@ def test_a_bad_stale_age_names_the_variable(monkeypatch) -> None:
     with pytest.raises(InputError) as error:
         stale_after_seconds()
     assert error.value.problems[0].where == "STAGEFIT_STALE_AFTER"
-

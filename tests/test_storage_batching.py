@@ -1,5 +1,6 @@
 """Storage bookkeeping off the hot path: a journal file written in one append per batch
 stays the file Optuna itself reads, and the waiting-trial look answers from its count."""
+
 from __future__ import annotations
 
 import json
@@ -24,8 +25,9 @@ def _plain_optuna(path: Path) -> optuna.storages.BaseStorage:
 
 def _trials(store: optuna.storages.BaseStorage, name: str) -> list[tuple]:
     study = optuna.load_study(study_name=name, storage=store)
-    return [(t.number, t.state, t.params, t.values, t.user_attrs, t.system_attrs)
-            for t in study.get_trials(deepcopy=False)]
+    return [
+        (t.number, t.state, t.params, t.values, t.user_attrs, t.system_attrs) for t in study.get_trials(deepcopy=False)
+    ]
 
 
 def test_batched_search_reads_back_the_same_in_optuna_and_in_memory(tmp_path, monkeypatch) -> None:
@@ -87,8 +89,9 @@ def test_a_batch_cut_short_by_an_error_still_writes_what_this_process_saw(tmp_pa
         with batched_writes(store):
             study.ask().set_user_attr("k", 1)
             raise RuntimeError("evaluation failed")
-    assert [t.user_attrs for t in optuna.load_study(study_name="e", storage=_plain_optuna(path)).get_trials()] \
-        == [{"k": 1}]
+    assert [t.user_attrs for t in optuna.load_study(study_name="e", storage=_plain_optuna(path)).get_trials()] == [
+        {"k": 1}
+    ]
     study.ask()  # the lock was released: plain writes go on
     assert len(optuna.load_study(study_name="e", storage=_plain_optuna(path)).get_trials()) == 2
 

@@ -1,5 +1,6 @@
 """The Optuna boundary: the installed Optuna is inside the range pyproject.toml pins, and
 every private name optimizer/storage.py relies on exists in it."""
+
 from __future__ import annotations
 
 import sys

@@ -1,5 +1,6 @@
 """A topology is one module: defining a Topology subclass registers it, and the spec, the
 search, the netlist and `stagefit topologies` all take it from the registry."""
+
 from __future__ import annotations
 
 import json
@@ -15,11 +16,18 @@ from optimizer.topologies import TOPOLOGIES, get_topology, unregister
 from optimizer.topologies.base import Topology
 from optimizer.topologies.divider_ce import DividerCE
 
-SPEC = {"name": "toy", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"},
-        "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
-        "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
-        "parts": {"resistor_series": "E6", "resistor_range": ["1k", "100k"]},
-        "robustness": "nominal", "search": {"trials": 128, "seed": 5, "batch_size": 64}}
+SPEC = {
+    "name": "toy",
+    "supply": "12 V",
+    "gain": {"target": -8, "tolerance": "1 dB"},
+    "source_impedance": 600,
+    "load_impedance": "47k",
+    "band": ["20 Hz", "20 kHz"],
+    "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
+    "parts": {"resistor_series": "E6", "resistor_range": ["1k", "100k"]},
+    "robustness": "nominal",
+    "search": {"trials": 128, "seed": 5, "batch_size": 64},
+}
 
 
 @pytest.fixture
@@ -32,8 +40,14 @@ def toy() -> Iterator[type[Topology]]:
         name = "toy_ce"
         description = "toy: divider_ce under another name, for the registry test"
         order = 999
-        elements = (("c_in", "src", "b"), ("r_top", "vcc", "b"), ("r_bottom", "b", "0"),
-                    ("r_collector", "vcc", "c"), ("r_emitter", "e", "0"), ("c_out", "c", "out"))
+        elements = (
+            ("c_in", "src", "b"),
+            ("r_top", "vcc", "b"),
+            ("r_bottom", "b", "0"),
+            ("r_collector", "vcc", "c"),
+            ("r_emitter", "e", "0"),
+            ("c_out", "c", "out"),
+        )
         transistor_pins = (("q1", "c", "b", "e"),)
         node_voltages = {"b": "v_base", "c": "v_collector", "e": "v_emitter"}
 
@@ -45,7 +59,8 @@ def toy() -> Iterator[type[Topology]]:
 
 
 def test_a_topology_defined_in_a_test_is_registered_searched_netlisted_and_listed(
-        toy: type[Topology], capsys: pytest.CaptureFixture[str]) -> None:
+    toy: type[Topology], capsys: pytest.CaptureFixture[str]
+) -> None:
     assert isinstance(get_topology("toy_ce"), toy)
     assert list(TOPOLOGIES)[-1] == "toy_ce"  # listed after the others (order 999)
 
@@ -90,10 +105,12 @@ def test_an_unknown_topology_names_the_registered_ones(toy: type[Topology]) -> N
 
 def test_a_template_that_misses_a_role_is_refused_when_defined() -> None:
     with pytest.raises(TypeError, match="r_emitter"):
+
         class Broken(DividerCE):  # noqa: F841 (defining it is the test)
             name = "broken_ce"
             description = "a netlist template without r_emitter"
             elements = tuple(e for e in DividerCE.elements if e[0] != "r_emitter")
+
     assert "broken_ce" not in TOPOLOGIES
 
 

@@ -14,6 +14,7 @@ Heartbeats every second and a 3 s grace period keep the waits short. Every wait 
 deadline and every process is killed in ``finally``. Needs PostgreSQL (tests/pg_fixture.py:
 skipped, saying why, where none can be started).
 """
+
 from __future__ import annotations
 
 import contextlib
@@ -40,17 +41,26 @@ from pg_fixture import stop_processes
 ROOT = Path(__file__).resolve().parent.parent
 STAGEFIT = [sys.executable, "-m", "optimizer.cli"]
 FAST_HEARTBEAT = {"STAGEFIT_HEARTBEAT_INTERVAL": "1", "STAGEFIT_GRACE_PERIOD": "3"}
-pytestmark = [pytest.mark.filterwarnings("ignore::optuna.exceptions.ExperimentalWarning"),
-              pytest.mark.filterwarnings("ignore:Heartbeat of storage is supposed")]
+pytestmark = [
+    pytest.mark.filterwarnings("ignore::optuna.exceptions.ExperimentalWarning"),
+    pytest.mark.filterwarnings("ignore:Heartbeat of storage is supposed"),
+]
 DEADLINE = 240.0  # s: the longest any wait below may take before the test fails
 
 # A small space (E3 resistors over two decades: 7 values a part) in which any sampler stream
 # reaches the same best design within the budget, so runs that interleave differently agree.
-SPEC = {"name": "shared storage check", "supply": "12 V", "gain": {"target": -8, "tolerance": "1 dB"},
-        "source_impedance": 600, "load_impedance": "47k", "band": ["20 Hz", "20 kHz"],
-        "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
-        "topologies": ["divider_ce"], "parts": {"resistor_series": "E3", "resistor_range": ["1k", "100k"]},
-        "search": {"trials": 192, "seed": 3, "batch_size": 16}}
+SPEC = {
+    "name": "shared storage check",
+    "supply": "12 V",
+    "gain": {"target": -8, "tolerance": "1 dB"},
+    "source_impedance": 600,
+    "load_impedance": "47k",
+    "band": ["20 Hz", "20 kHz"],
+    "limits": {"swing_min": "4 V", "supply_current_max": "2 mA"},
+    "topologies": ["divider_ce"],
+    "parts": {"resistor_series": "E3", "resistor_range": ["1k", "100k"]},
+    "search": {"trials": 192, "seed": 3, "batch_size": 16},
+}
 
 
 @pytest.fixture(autouse=True)
@@ -70,8 +80,14 @@ def _env() -> dict:
 
 
 def _worker(url: str, log: Path) -> subprocess.Popen:
-    return subprocess.Popen([*STAGEFIT, "worker", "--storage", url, "--poll", "0.3"], cwd=ROOT, env=_env(),
-                            stdout=log.open("w"), stderr=subprocess.STDOUT, start_new_session=True)
+    return subprocess.Popen(
+        [*STAGEFIT, "worker", "--storage", url, "--poll", "0.3"],
+        cwd=ROOT,
+        env=_env(),
+        stdout=log.open("w"),
+        stderr=subprocess.STDOUT,
+        start_new_session=True,
+    )
 
 
 def _trials(url: str, search_id: str) -> list[optuna.trial.FrozenTrial]:
@@ -105,15 +121,22 @@ def _best_score_single_process(spec) -> float:
 def _api_server(url: str, log: Path):
     """`stagefit serve --storage URL` queueing only (STAGEFIT_QUEUE_ONLY=1); yields its base URL."""
     env = {**_env(), "STAGEFIT_QUEUE_ONLY": "1"}
-    proc = subprocess.Popen([*STAGEFIT, "serve", "--host", "127.0.0.1", "--port", "0", "--storage", url],
-                            cwd=ROOT, env=env, stdout=log.open("w"), stderr=subprocess.STDOUT,
-                            start_new_session=True)
+    proc = subprocess.Popen(
+        [*STAGEFIT, "serve", "--host", "127.0.0.1", "--port", "0", "--storage", url],
+        cwd=ROOT,
+        env=env,
+        stdout=log.open("w"),
+        stderr=subprocess.STDOUT,
+        start_new_session=True,
+    )
     try:
+
         def address():
             if proc.poll() is not None:
                 pytest.fail(f"the API server exited: {log.read_text()[-2000:]}")
             found = re.search(r"serving on (http://127\.0\.0\.1:\d+)/", log.read_text())
             return found and found.group(1)
+
         yield _wait(address, "the API server to listen", timeout=60)
     finally:
         stop_processes([proc])
@@ -123,8 +146,12 @@ def test_two_workers_and_a_queue_only_server_finish_exactly_the_budget(postgres_
     spec = _spec()
     procs = []
     with _api_server(postgres_url, tmp_path / "api.log") as base:
-        request = urllib.request.Request(f"{base}/v1/searches", data=json.dumps(spec_to_dict(spec)).encode(),
-                                         headers={"Content-Type": "application/json"}, method="POST")
+        request = urllib.request.Request(
+            f"{base}/v1/searches",
+            data=json.dumps(spec_to_dict(spec)).encode(),
+            headers={"Content-Type": "application/json"},
+            method="POST",
+        )
         with urllib.request.urlopen(request, timeout=30) as response:
             assert response.status == 202
             search_id = json.load(response)["id"]
@@ -162,15 +189,20 @@ def test_a_killed_worker_s_trials_are_failed_and_retried(postgres_url, tmp_path)
         def victim_mid_batch():
             trials = _trials(postgres_url, search_id)
             done = sum(t.state == TrialState.COMPLETE for t in trials)
-            held = [t for t in trials if t.state == TrialState.RUNNING
-                    and t.system_attrs.get("runner") == victim_runner]
+            held = [
+                t for t in trials if t.state == TrialState.RUNNING and t.system_attrs.get("runner") == victim_runner
+            ]
             return done >= 32 and bool(held)
+
         _wait(victim_mid_batch, "the victim worker to hold running trials mid-search", procs)
         victim.send_signal(signal.SIGKILL)
         victim.wait(timeout=10)
         after_kill = _trials(postgres_url, search_id)
-        orphans = {t.number for t in after_kill
-                   if t.state == TrialState.RUNNING and t.system_attrs.get("runner") == victim_runner}
+        orphans = {
+            t.number
+            for t in after_kill
+            if t.state == TrialState.RUNNING and t.system_attrs.get("runner") == victim_runner
+        }
         finished_before = {t.number: t.values for t in after_kill if t.state == TrialState.COMPLETE}
         assert orphans, "the victim held running trials when it was killed"
         _wait(lambda: _status(postgres_url, search_id) == "done", "the search to finish after the kill", [other])
@@ -200,8 +232,10 @@ def test_journal_and_postgres_give_the_same_ranked_result(postgres_url, tmp_path
         search_id = create_search(spec, storage)
         run_search(storage, search_id)
         result = load_search(storage, search_id)
-        ranked[name] = [(c["topology"], {r: p["value"] for r, p in c["parts"].items()}, round(c["score"], 9),
-                         c["feasible"]) for c in result.candidates]
+        ranked[name] = [
+            (c["topology"], {r: p["value"] for r, p in c["parts"].items()}, round(c["score"], 9), c["feasible"])
+            for c in result.candidates
+        ]
     assert ranked["journal"] and ranked["journal"] == ranked["postgres"]
 
 
@@ -220,6 +254,7 @@ def test_a_trial_whose_heartbeat_stopped_or_never_started_is_failed_and_queued_a
     def both_failed():
         recover_stale_trials(storage, study)
         return all(study.get_trials(deepcopy=False)[t.number].state == TrialState.FAIL for t in (beaten, unbeaten))
+
     _wait(both_failed, "both trials to be failed", timeout=3 * storage.grace_period + 30)
     retries = study.get_trials(deepcopy=False, states=(TrialState.WAITING,))
     assert sorted(t.system_attrs["failed_trial"] for t in retries) == [beaten.number, unbeaten.number]

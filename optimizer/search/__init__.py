@@ -14,6 +14,7 @@ the same spec, seed and budget give the same trials in a single process.
 
 Submodules, in the order of the flow: space, evaluation, ranking, study, results, run.
 """
+
 from optimizer.scoring import pareto_mask
 from optimizer.search.evaluation import evaluate_designs, evaluate_group
 from optimizer.search.ranking import fold_variants, rank_key, rank_records, relax_one_limit, trial_record
@@ -40,4 +41,35 @@ from optimizer.search.study import (
 )
 from optimizer.storage import open_storage
 
-__all__ = ['SearchSpace', 'SearchResult', 'open_storage', 'create_search', 'run_search', 'finish_search', 'neighbour_sampler', 'SamplerFactory', 'load_search', 'search_status', 'list_searches', 'cancel_search', 'delete_search', 'extend_search', 'fail_search', 'search', 'evaluate_designs', 'evaluate_group', 'rank_records', 'pareto_mask', 'trial_record', 'candidates_frame', 'INTERRUPTED', 'spec_search_id', 'with_search', 'ABSENT', 'rank_key', 'fold_variants', 'relax_one_limit', 'Design']
+__all__ = [
+    "SearchSpace",
+    "SearchResult",
+    "open_storage",
+    "create_search",
+    "run_search",
+    "finish_search",
+    "neighbour_sampler",
+    "SamplerFactory",
+    "load_search",
+    "search_status",
+    "list_searches",
+    "cancel_search",
+    "delete_search",
+    "extend_search",
+    "fail_search",
+    "search",
+    "evaluate_designs",
+    "evaluate_group",
+    "rank_records",
+    "pareto_mask",
+    "trial_record",
+    "candidates_frame",
+    "INTERRUPTED",
+    "spec_search_id",
+    "with_search",
+    "ABSENT",
+    "rank_key",
+    "fold_variants",
+    "relax_one_limit",
+    "Design",
+]

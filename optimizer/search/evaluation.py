@@ -1,5 +1,6 @@
 """Evaluating designs of the search space: one vectorised call per (topology, device) group,
 capacitors sized after the resistors, hard limits as violations, the robustness screen."""
+
 from __future__ import annotations
 
 import math
@@ -15,17 +16,21 @@ from optimizer.topologies import get_topology
 BAD_OBJECTIVE = 1e12  # stand-in for a metric the model cannot give (e.g. a stage that is not active)
 
 
-
 SCREEN_WITHIN = 0.5  # designs within this summed violation at nominal get the robustness screen
-
 
 
 FULL_ONLY_OPTIMISTIC = {"f_low": 0.0, "f_high": np.inf, "noise_ein_v": 0.0, "noise_figure_db": 0.0}
 
 
-
-def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index: dict[str, np.ndarray],
-                   *, full: bool = True, robust: bool | None = None) -> dict:
+def evaluate_group(
+    space: SearchSpace,
+    topology_name: str,
+    device_id: str,
+    index: dict[str, np.ndarray],
+    *,
+    full: bool = True,
+    robust: bool | None = None,
+) -> dict:
     """Metrics, violations, score and objective values of designs of one topology and device,
     given as part indices by role (arrays; ABSENT = optional part left out). Capacitors
     not given are sized after the resistors.
@@ -54,43 +59,72 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
         caps = given_caps
     elif full:
         held = {"c_decouple": np.full(n, ct.values[-1])} if decoupled else {}  # a short while the others are sized
-        caps = size_capacitors(topology, {**resistors, **held}, device, conditions, ct.values,
-                               f_low_target=space.sizing_target)
+        caps = size_capacitors(
+            topology, {**resistors, **held}, device, conditions, ct.values, f_low_target=space.sizing_target
+        )
     else:
         caps = {c: np.full(n, ct.values[0] if c == "c_in" else ct.values[-1]) for c in topology.capacitors}
     if decoupled and "c_decouple" not in caps:
-        caps["c_decouple"] = (size_decoupling(topology, {**resistors, **caps}, device, conditions, ct.values,
-                                              scoring.decoupling_target(spec, ct.tolerance)) if full
-                              else np.where(resistors["r_decouple"] > 0, ct.values[-1], 0.0))
+        caps["c_decouple"] = (
+            size_decoupling(
+                topology,
+                {**resistors, **caps},
+                device,
+                conditions,
+                ct.values,
+                scoring.decoupling_target(spec, ct.tolerance),
+            )
+            if full
+            else np.where(resistors["r_decouple"] > 0, ct.values[-1], 0.0)
+        )
     cap_present = {c: v > 0 for c, v in caps.items()}
     cap_index = {c: ct.index_of(np.where(cap_present[c], v, ct.values[0])) for c, v in caps.items()}
     parts = {**resistors, **caps}
     result = topology.evaluate(parts, device, conditions, full=full)
 
     limits = scoring.rating_limits(
-        spec, {r: np.where(present[r], rt.rating[np.maximum(i, 0)], ABSENT_RATING) for r, i in index.items()},
-        {c: np.where(cap_present[c], ct.rating[i], ABSENT_RATING) if full else ABSENT_RATING
-         for c, i in cap_index.items()}, device)
+        spec,
+        {r: np.where(present[r], rt.rating[np.maximum(i, 0)], ABSENT_RATING) for r, i in index.items()},
+        {
+            c: np.where(cap_present[c], ct.rating[i], ABSENT_RATING) if full else ABSENT_RATING
+            for c, i in cap_index.items()
+        },
+        device,
+    )
     metrics = {k: np.asarray(v, dtype=float) for k, v in result.metrics.items()}
     if not full:
         metrics.update({k: np.full(n, v) for k, v in FULL_ONLY_OPTIMISTIC.items()})
     op = result.operating_point
     headroom = topology.headroom(op, device.vce_sat)
-    nominal = scoring.limit_violations(spec, metrics, result.ratings, limits, op["active"],
-                                       core_only=not full, vce_headroom=headroom)
+    nominal = scoring.limit_violations(
+        spec, metrics, result.ratings, limits, op["active"], core_only=not full, vce_headroom=headroom
+    )
     violations = dict(nominal)
     metrics["yield"], metrics["ic_spread"] = np.full(n, np.nan), np.full(n, np.nan)
-    near = np.flatnonzero(np.nan_to_num(scoring.total_violation(nominal), nan=np.inf) <= SCREEN_WITHIN) \
-        if robust else np.zeros(0, dtype=int)
+    near = (
+        np.flatnonzero(np.nan_to_num(scoring.total_violation(nominal), nan=np.inf) <= SCREEN_WITHIN)
+        if robust
+        else np.zeros(0, dtype=int)
+    )
     if robust and spec.robustness != "nominal":  # not screened: counted as failing every build
         violations["yield" if spec.robustness == "yield" else "worst_case"] = np.ones(n)
     if near.size:  # designs far outside a limit at nominal are not screened
-        tolerances = {**{r: rt.tolerance[np.maximum(i, 0)][near] for r, i in index.items()},
-                      **{c: ct.tolerance[i][near] for c, i in cap_index.items()}}
-        judged = robustness.judge(spec, topology, {k: v[near] for k, v in parts.items()}, device, conditions,
-                                  tolerances, {k: v[near] if np.ndim(v) else v for k, v in limits.items()},
-                                  {k: v[near] for k, v in nominal.items()}, full=False,
-                                  builds=robustness.SCREEN_BUILDS)
+        tolerances = {
+            **{r: rt.tolerance[np.maximum(i, 0)][near] for r, i in index.items()},
+            **{c: ct.tolerance[i][near] for c, i in cap_index.items()},
+        }
+        judged = robustness.judge(
+            spec,
+            topology,
+            {k: v[near] for k, v in parts.items()},
+            device,
+            conditions,
+            tolerances,
+            {k: v[near] if np.ndim(v) else v for k, v in limits.items()},
+            {k: v[near] for k, v in nominal.items()},
+            full=False,
+            builds=robustness.SCREEN_BUILDS,
+        )
         for k, v in judged.violations.items():
             violations.setdefault(k, np.zeros(n))[near] = v
         metrics["yield"][near] = judged.yield_fraction
@@ -98,10 +132,16 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
     total = np.nan_to_num(scoring.total_violation(violations), nan=1e6)
 
     metrics["gain_error_db"] = scoring.gain_error_db(spec, metrics["gain"])
-    cap_prices = [np.where(cap_present[c], ct.unit_price[i], 0.0) for c, i in cap_index.items()] if full else \
-        [np.full(n, np.nanmin(ct.unit_price))] * len(caps)
-    metrics["cost"] = (sum(np.where(present[r], rt.unit_price[np.maximum(i, 0)], 0.0) for r, i in index.items())
-                       + sum(cap_prices) + topology.transistors * space.device_price[device_id])
+    cap_prices = (
+        [np.where(cap_present[c], ct.unit_price[i], 0.0) for c, i in cap_index.items()]
+        if full
+        else [np.full(n, np.nanmin(ct.unit_price))] * len(caps)
+    )
+    metrics["cost"] = (
+        sum(np.where(present[r], rt.unit_price[np.maximum(i, 0)], 0.0) for r, i in index.items())
+        + sum(cap_prices)
+        + topology.transistors * space.device_price[device_id]
+    )
     metrics["unique_values"] = unique_values_array({**resistors, **(caps if full else {})}).astype(float)
     terms = scoring.desirability_terms(spec, metrics)
     score = scoring.desirability(spec, metrics, total, terms)
@@ -111,16 +151,23 @@ def evaluate_group(space: SearchSpace, topology_name: str, device_id: str, index
         v = np.abs(metrics[metric]) if metric == "gain_error_db" else metrics[metric]
         bad = BAD_OBJECTIVE if direction == "minimise" else -BAD_OBJECTIVE
         objective_values.append(np.where(np.isfinite(v) & active, v, bad))
-    return {"n": n, "resistors": resistors, "caps": caps, "metrics": metrics, "violations": violations,
-            "total": total, "binding": scoring.binding_limit(violations), "score": score,
-            "score_terms": {name: d for name, (d, _) in terms.items()}, "active": active,
-            "objective_values": objective_values}
-
+    return {
+        "n": n,
+        "resistors": resistors,
+        "caps": caps,
+        "metrics": metrics,
+        "violations": violations,
+        "total": total,
+        "binding": scoring.binding_limit(violations),
+        "score": score,
+        "score_terms": {name: d for name, (d, _) in terms.items()},
+        "active": active,
+        "objective_values": objective_values,
+    }
 
 
 def _finite(x: float) -> float | None:
     return float(x) if math.isfinite(x) else None
-
 
 
 def evaluate_designs(space: SearchSpace, designs: list[Design]) -> list[dict]:
@@ -142,17 +189,22 @@ def evaluate_designs(space: SearchSpace, designs: list[Design]) -> list[dict]:
             metrics = {m: _finite(v[j]) for m, v in g["metrics"].items()}
             feasible = bool(g["total"][j] == 0)
             record = {
-                "topology": topology, "device": device_id,
-                "parts": {**{r: float(v[j]) for r, v in g["resistors"].items()},
-                          **{c: float(v[j]) for c, v in g["caps"].items()}},
+                "topology": topology,
+                "device": device_id,
+                "parts": {
+                    **{r: float(v[j]) for r, v in g["resistors"].items()},
+                    **{c: float(v[j]) for c, v in g["caps"].items()},
+                },
                 "metrics": metrics,
                 "violations": {name: float(v[j]) for name, v in g["violations"].items() if v[j] > 0},
-                "total_violation": float(g["total"][j]), "binding": str(g["binding"][j]),
-                "feasible": feasible, "score": float(g["score"][j]),
+                "total_violation": float(g["total"][j]),
+                "binding": str(g["binding"][j]),
+                "feasible": feasible,
+                "score": float(g["score"][j]),
                 "score_terms": {name: round(float(v[j]), 4) for name, v in g["score_terms"].items()},
-                "basis": robustness.basis_label(space.spec, feasible, metrics.get("yield"),
-                                                robustness.SCREEN_BUILDS),
-                "objectives": [float(v[j]) for v in g["objective_values"]]}
+                "basis": robustness.basis_label(space.spec, feasible, metrics.get("yield"), robustness.SCREEN_BUILDS),
+                "objectives": [float(v[j]) for v in g["objective_values"]],
+            }
             if not g["active"][j]:
                 scoring.withhold_small_signal(record)
             out[k] = record

@@ -1,5 +1,6 @@
 """Ranking designs, folding near-duplicates, the Pareto front, the binding limit of an infeasible
 search and the shortlist's full assessment."""
+
 from __future__ import annotations
 
 import json
@@ -19,22 +20,17 @@ from optimizer.units import format_value
 SHORTLIST_SAMPLES = robustness.FINAL_BUILDS  # Monte Carlo builds for each shortlisted design's yield
 
 
-
 SHORTLIST_SIZE = 12  # designs given the full assessment (worst case, yield) when a search finishes
-
 
 
 SHORTLIST_REACH = 24  # most designs assessed in full while looking for SHORTLIST_SIZE that meet the spec
 
 
-
 FRONT_YIELD_POINTS = 8  # front points (evenly spread along it) that carry a yield figure
-
 
 
 def _design_key(record: dict) -> tuple:
     return (record["topology"], record["device"], tuple(sorted(record["parts"].items())))
-
 
 
 def rank_records(records: list[dict]) -> list[dict]:
@@ -44,13 +40,10 @@ def rank_records(records: list[dict]) -> list[dict]:
     return sorted(unique, key=lambda r: (not r["feasible"], -r["score"] if r["feasible"] else r["total_violation"]))
 
 
-
 NEAR_STEPS = 2  # a role whose value differs by fewer series steps is the same choice
 
 
-
 DISTINCT_ROLES = 2  # designs differing by NEAR_STEPS or more in this many roles are distinct
-
 
 
 def fold_variants(space: SearchSpace, ranked: list[dict]) -> list[dict]:
@@ -88,7 +81,6 @@ def fold_variants(space: SearchSpace, ranked: list[dict]) -> list[dict]:
     return kept
 
 
-
 def _limit_metric(limit: str) -> tuple[str | None, str]:
     """The metric a limit judges and its unit (for saying what relaxing it would take)."""
     table = {name: metric for name, metric, _ in LIMIT_METRICS}
@@ -97,9 +89,7 @@ def _limit_metric(limit: str) -> tuple[str | None, str]:
     return metric, metric_unit(metric or "")
 
 
-
 ROBUSTNESS_LIMITS = ("yield", "worst_case")
-
 
 
 def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
@@ -114,8 +104,9 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
     value (SI) or None}, unit: {limit: unit}, text}."""
     best: dict[tuple[str, ...], tuple[float, dict]] = {}
     for r in ranked:
-        missed = tuple(sorted(k for k in r["violations"] if k not in ROBUSTNESS_LIMITS)) \
-            or tuple(sorted(r["violations"]))  # spread fails what nominal fails: name the limit
+        missed = tuple(sorted(k for k in r["violations"] if k not in ROBUSTNESS_LIMITS)) or tuple(
+            sorted(r["violations"])
+        )  # spread fails what nominal fails: name the limit
         amount = sum(r["violations"][k] for k in missed)
         if 1 <= len(missed) <= 2 and (missed not in best or amount < best[missed][0]):
             best[missed] = (amount, r)
@@ -132,7 +123,8 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
     units: dict[str, str] = {}
     for limit in limits:
         metric, units[limit] = _limit_metric(limit)
-        reached[limit] = (record["metrics"].get(metric) if record and metric else None)
+        reached[limit] = record["metrics"].get(metric) if record and metric else None
+
     def show(value: float | None, limit: str) -> str | None:
         if value is None:
             return None
@@ -148,19 +140,22 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
             wanted = f"{spec.gain_target_db:.3g} dB +- {spec.gain.tolerance_db:.2g} dB"
         else:
             wanted = show(asked.get(limit), limit)
-        facts = [f"the spec asks {wanted}" if wanted else "", f"the nearest design reaches {show(reached[limit], limit)}"
-                 if reached[limit] is not None else ""]
+        facts = [
+            f"the spec asks {wanted}" if wanted else "",
+            f"the nearest design reaches {show(reached[limit], limit)}" if reached[limit] is not None else "",
+        ]
         facts = [f for f in facts if f]
         parts.append(f"{limit} ({'; '.join(facts)})" if facts else limit)
     if not limits:
         text = "no design was evaluated"
     elif len(limits) == 1:
-        text = (f"no design meets every limit; {parts[0]} binds: relaxing it alone (with a margin for spread) "
-                "would give an answer")
+        text = (
+            f"no design meets every limit; {parts[0]} binds: relaxing it alone (with a margin for spread) "
+            "would give an answer"
+        )
     else:
         text = f"no design meets every limit, and no single limit is to blame: {' and '.join(parts)} bind together"
     return {"binding": list(limits), "reached": reached, "unit": units, "text": text}
-
 
 
 def candidate_from_record(space: SearchSpace, record: dict) -> dict:
@@ -174,12 +169,18 @@ def candidate_from_record(space: SearchSpace, record: dict) -> dict:
         part_id = table.part_id[int(table.index_of(np.array([value]))[0])] if value > 0 else None
         parts[role] = {"value": value, "label": part_label(role, value), "part_id": part_id}
     return candidate_record(
-        topology=record["topology"], feasible=record["feasible"], score=record["score"], binding=record["binding"],
-        conditions=record_conditions(space.spec), parts=parts, transistor=space.devices[record["device"]].record(),
-        metrics=dict(record["metrics"]), violations=dict(record["violations"]),
+        topology=record["topology"],
+        feasible=record["feasible"],
+        score=record["score"],
+        binding=record["binding"],
+        conditions=record_conditions(space.spec),
+        parts=parts,
+        transistor=space.devices[record["device"]].record(),
+        metrics=dict(record["metrics"]),
+        violations=dict(record["violations"]),
         **{k: record[k] for k in ("basis", "score_terms", "note", "variants") if k in record},
-        trial=record.get("trial"))
-
+        trial=record.get("trial"),
+    )
 
 
 def shortlist_candidate(space: SearchSpace, record: dict, samples: int) -> dict:
@@ -187,8 +188,9 @@ def shortlist_candidate(space: SearchSpace, record: dict, samples: int) -> dict:
     is the record's times the yield of its builds (on the yield basis)."""
     from optimizer.candidates import assess  # the single place a design is judged in full
 
-    full = assess(space.spec, space.catalog, record["topology"], dict(record["parts"]), record["device"],
-                  samples=samples)
+    full = assess(
+        space.spec, space.catalog, record["topology"], dict(record["parts"]), record["device"], samples=samples
+    )
     full["metrics"].update({k: record["metrics"][k] for k in ("cost", "unique_values") if k in record["metrics"]})
     build_yield = full["metrics"].get("yield")
     terms = dict(record.get("score_terms") or {})
@@ -196,12 +198,16 @@ def shortlist_candidate(space: SearchSpace, record: dict, samples: int) -> dict:
         terms["yield"] = round(build_yield, 4)
     violations = full["violations"]
     total = float(sum(violations.values()))
-    full.update(score=record["score"] * (1.0 if build_yield is None else build_yield) if full["feasible"] else -total,
-                total_violation=total, binding=max(violations, key=violations.get) if violations else "",
-                nominal_score=record["score"], score_terms=terms, trial=record.get("trial"),
-                variants=record.get("variants", 1))
+    full.update(
+        score=record["score"] * (1.0 if build_yield is None else build_yield) if full["feasible"] else -total,
+        total_violation=total,
+        binding=max(violations, key=violations.get) if violations else "",
+        nominal_score=record["score"],
+        score_terms=terms,
+        trial=record.get("trial"),
+        variants=record.get("variants", 1),
+    )
     return candidate_record(**full)
-
 
 
 def trial_record(trial: optuna.trial.FrozenTrial) -> dict | None:
@@ -211,14 +217,12 @@ def trial_record(trial: optuna.trial.FrozenTrial) -> dict | None:
     return json.loads(record) if isinstance(record, str) else record
 
 
-
 def rank_key(trial: optuna.trial.FrozenTrial) -> tuple[int, float]:
     """Best first: feasible by score, then infeasible by summed violation."""
     record = trial_record(trial)
     if not record:
         return (2, 0.0)
     return (0, -record["score"]) if record["feasible"] else (1, record["total_violation"])
-
 
 
 def front_records(space: SearchSpace, ranked: list[dict]) -> list[dict]:

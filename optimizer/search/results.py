@@ -1,4 +1,5 @@
 """Stored searches read back: status, the ranked result, listing, cancelling, extending, deleting."""
+
 from __future__ import annotations
 
 import time
@@ -32,7 +33,6 @@ from optimizer.spec import Spec
 STATUSES = ("queued", "running", "done", "failed", "cancelled")
 
 
-
 @dataclass
 class SearchResult:
     """A search's ranked candidates (rank 1 first), Pareto front, status and the study."""
@@ -48,14 +48,12 @@ class SearchResult:
     def candidate(self, rank: int) -> dict:
         """The candidate at ``rank`` (1 = best); InputError if there is none."""
         if not isinstance(rank, int) or not 1 <= rank <= len(self.candidates):
-            raise InputError.single("rank", rank, f"a rank from 1 to {len(self.candidates)}",
-                                    title="no such candidate")
+            raise InputError.single("rank", rank, f"a rank from 1 to {len(self.candidates)}", title="no such candidate")
         return self.candidates[rank - 1]
 
     def dataframe(self) -> pd.DataFrame:
         """One row per ranked candidate: rank, topology, device, part values (SI), metrics."""
         return candidates_frame(self.candidates)
-
 
 
 def candidates_frame(candidates: list[dict], *, labels: bool = False) -> pd.DataFrame:
@@ -64,14 +62,18 @@ def candidates_frame(candidates: list[dict], *, labels: bool = False) -> pd.Data
     ``labels``) and each metric (SI). The CLI's and the REST service's CSV."""
     rows = []
     for c in candidates:
-        row = {"rank": c.get("rank"), "feasible": c.get("feasible"), "score": c.get("score"),
-               "binding": c.get("binding", ""), "topology": c.get("topology"),
-               "device": (c.get("transistor") or {}).get("id")}
+        row = {
+            "rank": c.get("rank"),
+            "feasible": c.get("feasible"),
+            "score": c.get("score"),
+            "binding": c.get("binding", ""),
+            "topology": c.get("topology"),
+            "device": (c.get("transistor") or {}).get("id"),
+        }
         row.update({role: p["label" if labels else "value"] for role, p in c.get("parts", {}).items()})
         row.update(c.get("metrics", {}))
         rows.append(row)
     return pd.DataFrame(rows)
-
 
 
 def search_status(storage: BaseStorage, search_id: str) -> dict:
@@ -92,23 +94,33 @@ def search_status(storage: BaseStorage, search_id: str) -> dict:
         top = counted.best
         if top is not None and counted.memo.get("best", (None,))[0] != top.number:  # a new best: its record
             record = trial_record(top)
-            counted.memo["best"] = (top.number, {**candidate_from_record(SearchSpace.build(spec), {
-                **record, "trial": top.number}), "rank": 1} if record else None)
+            counted.memo["best"] = (
+                top.number,
+                {**candidate_from_record(SearchSpace.build(spec), {**record, "trial": top.number}), "rank": 1}
+                if record
+                else None,
+            )
         best = counted.memo["best"][1] if top is not None else None
     return _status(study, spec, best)
-
 
 
 def _unreadable_status(storage: BaseStorage, search_id: str, why: str) -> dict:
     attrs = storage.get_study_user_attrs(storage.get_study_id_from_name(search_id))
     name = attrs.get("spec", {}).get("name") if isinstance(attrs.get("spec"), dict) else None
     budget = attrs.get("budget")
-    return {"id": search_id, "name": name if isinstance(name, str) else None, "status": "failed",
-            "reason": attrs.get("reason") or f"the stored search cannot be read: {why}",
-            "trials_done": 0, "trials_running": 0, "trials_feasible": 0,
-            "budget": budget if isinstance(budget, int) and not isinstance(budget, bool) else 0,
-            "elapsed": 0.0, "created": attrs.get("created"), "best": None}
-
+    return {
+        "id": search_id,
+        "name": name if isinstance(name, str) else None,
+        "status": "failed",
+        "reason": attrs.get("reason") or f"the stored search cannot be read: {why}",
+        "trials_done": 0,
+        "trials_running": 0,
+        "trials_feasible": 0,
+        "budget": budget if isinstance(budget, int) and not isinstance(budget, bool) else 0,
+        "elapsed": 0.0,
+        "created": attrs.get("created"),
+        "best": None,
+    }
 
 
 def _status(study: optuna.Study, spec: Spec, best: dict | None) -> dict:
@@ -116,16 +128,24 @@ def _status(study: optuna.Study, spec: Spec, best: dict | None) -> dict:
     finished, running = trial_counts(study)
     started = attrs.get("started")
     elapsed = attrs.get("elapsed") if attrs.get("status") == "done" else (time.time() - started if started else 0.0)
-    return {"id": study.study_name, "name": spec.name, "status": attrs.get("status") or "failed",
-            "reason": attrs.get("reason") if attrs.get("status") else "its creation was cut short",
-            "trials_done": finished, "trials_running": running, "trials_feasible": trial_tally(study).feasible,
-            "budget": int(attrs["budget"]),
-            "elapsed": float(elapsed or 0.0), "created": attrs.get("created"), "best": best}
+    return {
+        "id": study.study_name,
+        "name": spec.name,
+        "status": attrs.get("status") or "failed",
+        "reason": attrs.get("reason") if attrs.get("status") else "its creation was cut short",
+        "trials_done": finished,
+        "trials_running": running,
+        "trials_feasible": trial_tally(study).feasible,
+        "budget": int(attrs["budget"]),
+        "elapsed": float(elapsed or 0.0),
+        "created": attrs.get("created"),
+        "best": best,
+    }
 
 
-
-def load_search(storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SIZE,
-                samples: int = SHORTLIST_SAMPLES) -> SearchResult:
+def load_search(
+    storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SIZE, samples: int = SHORTLIST_SAMPLES
+) -> SearchResult:
     """The ranked candidates and front of a stored search (finished or not)."""
     study, spec = load_study(storage, search_id)
     space = SearchSpace.build(spec)
@@ -134,17 +154,26 @@ def load_search(storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SI
         summary = {k: ranking[k] for k in ("front", "infeasible") if k in ranking}
         summary["candidates"] = list(ranking["candidates"])
         shortlisted = {c.get("trial") for c in summary["candidates"]}
-        tail = [candidate_from_record(space, r) for r in fold_variants(space, rank_records(completed_records(study)))
-                if r["trial"] not in shortlisted]
+        tail = [
+            candidate_from_record(space, r)
+            for r in fold_variants(space, rank_records(completed_records(study)))
+            if r["trial"] not in shortlisted
+        ]
         for rank, c in enumerate(tail, len(summary["candidates"]) + 1):
             c["rank"] = rank
         summary["candidates"] += tail
     else:
         summary = summarise(space, study, top, samples)
     best = summary["candidates"][0] if summary["candidates"] else None
-    return SearchResult(search_id, spec, study, summary["candidates"], summary["front"], _status(study, spec, best),
-                        summary.get("infeasible"))
-
+    return SearchResult(
+        search_id,
+        spec,
+        study,
+        summary["candidates"],
+        summary["front"],
+        _status(study, spec, best),
+        summary.get("infeasible"),
+    )
 
 
 def list_searches(storage: BaseStorage) -> list[dict]:
@@ -156,10 +185,16 @@ def list_searches(storage: BaseStorage) -> list[dict]:
         if "spec" not in attrs:
             continue  # not a stagefit search
         spec = attrs["spec"] if isinstance(attrs["spec"], dict) else {}
-        out.append({"id": s.study_name, "name": spec.get("name"), "status": attrs.get("status") or "failed",
-                    "budget": attrs.get("budget"), "created": attrs.get("created")})
+        out.append(
+            {
+                "id": s.study_name,
+                "name": spec.get("name"),
+                "status": attrs.get("status") or "failed",
+                "budget": attrs.get("budget"),
+                "created": attrs.get("created"),
+            }
+        )
     return sorted(out, key=lambda s: s.get("created") or "", reverse=True)
-
 
 
 def cancel_search(storage: BaseStorage, search_id: str) -> None:
@@ -170,7 +205,6 @@ def cancel_search(storage: BaseStorage, search_id: str) -> None:
         storage.set_study_user_attr(study_id, "status", "cancelled")
 
 
-
 def extend_search(storage: BaseStorage, search_id: str, trials: int) -> None:
     """Raise a search's budget by ``trials`` (0: as it was) and queue it again (resume or extend)."""
     if not isinstance(trials, int) or isinstance(trials, bool) or trials < 0:
@@ -179,7 +213,6 @@ def extend_search(storage: BaseStorage, search_id: str, trials: int) -> None:
     study.set_user_attr("budget", int(study.user_attrs["budget"]) + trials)
     study.set_user_attr("reason", None)
     study.set_user_attr("status", "queued")
-
 
 
 def delete_search(storage: BaseStorage, search_id: str) -> None:

@@ -1,4 +1,5 @@
 """The one-call search of the Python API and the CLI: create, run and load a search on a storage."""
+
 from __future__ import annotations
 
 from typing import Callable
@@ -23,7 +24,6 @@ def spec_search_id(spec: Spec) -> str:
     return f"{slug}-{digest}"
 
 
-
 def with_search(spec: Spec, **overrides: object) -> Spec:
     """``spec`` with fields of its search section replaced (None leaves a field as it is)."""
     changed = {k: v for k, v in overrides.items() if v is not None}
@@ -34,11 +34,17 @@ def with_search(spec: Spec, **overrides: object) -> Spec:
     return parse_spec(data)
 
 
-
-def search(spec: Spec, *, storage: BaseStorage | str | None = None, trials: int | None = None,
-           seed: int | None = None, progress: Callable[[int, int], None] | None = None,
-           top: int = SHORTLIST_SIZE, catalog: Catalog | None = None,
-           sampler: SamplerFactory = neighbour_sampler) -> SearchResult:
+def search(
+    spec: Spec,
+    *,
+    storage: BaseStorage | str | None = None,
+    trials: int | None = None,
+    seed: int | None = None,
+    progress: Callable[[int, int], None] | None = None,
+    top: int = SHORTLIST_SIZE,
+    catalog: Catalog | None = None,
+    sampler: SamplerFactory = neighbour_sampler,
+) -> SearchResult:
     """Run a whole search in this process and return its ranked result (the Python API).
     ``storage`` defaults to memory; ``trials`` and ``seed`` override the spec's; ``sampler``
     makes the sampler from the space and a seed offset (default: the neighbour sampler)."""

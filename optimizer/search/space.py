@@ -1,4 +1,5 @@
 """The search space: ordered indices into each role's allowed values, the topology and the device."""
+
 from __future__ import annotations
 
 from dataclasses import dataclass, field
@@ -18,9 +19,7 @@ from optimizer.validation import validate_spec
 ABSENT_RATING = 1e30  # W: the rating of a part left out (never binds)
 
 
-
 ABSENT = -1  # index of an optional part left out (feedback_ce without an emitter resistor)
-
 
 
 @dataclass(frozen=True)
@@ -34,14 +33,16 @@ class PartTable:
     unit_price: np.ndarray
 
     @classmethod
-    def from_catalog(cls, catalog: Catalog, kind: str, values: np.ndarray,
-                     allow_class2: bool = False) -> "PartTable":
+    def from_catalog(cls, catalog: Catalog, kind: str, values: np.ndarray, allow_class2: bool = False) -> "PartTable":
         rows = catalog.parts_for(kind, values, allow_class2=allow_class2)
         rating_key = "power_rating" if kind == "resistor" else "voltage_rating"
-        return cls(values=np.asarray(values, dtype=float), part_id=rows["part_id"].to_numpy(dtype=object),
-                   tolerance=rows["tolerance"].to_numpy(dtype=float),
-                   rating=rows[rating_key].to_numpy(dtype=float),
-                   unit_price=rows["unit_price"].to_numpy(dtype=float))
+        return cls(
+            values=np.asarray(values, dtype=float),
+            part_id=rows["part_id"].to_numpy(dtype=object),
+            tolerance=rows["tolerance"].to_numpy(dtype=float),
+            rating=rows[rating_key].to_numpy(dtype=float),
+            unit_price=rows["unit_price"].to_numpy(dtype=float),
+        )
 
     def index_of(self, values: np.ndarray) -> np.ndarray:
         """Index of the nearest allowed value (by ratio) for each of ``values``."""
@@ -49,7 +50,6 @@ class PartTable:
         i = np.clip(np.searchsorted(self.values, v), 1, self.values.size - 1)
         lower_closer = np.abs(np.log(v / self.values[i - 1])) <= np.abs(np.log(self.values[i] / v))
         return np.where(lower_closer, i - 1, i) if self.values.size > 1 else np.zeros_like(i)
-
 
 
 @dataclass(frozen=True)
@@ -60,7 +60,6 @@ class Design:
     topology: str
     device: str
     parts: tuple[tuple[str, int], ...]
-
 
 
 @dataclass
@@ -103,22 +102,36 @@ class SearchSpace:
         verdicts = [v for v in validate_spec(spec, catalog) if v.eligible]  # only topologies that can meet it
         p = spec.parts
         r_values = catalog.resistor_values(p.resistor_series, *p.resistor_range, in_stock_only=p.in_stock_only)
-        c_values = catalog.capacitor_values(p.capacitor_series, *p.capacitor_range, in_stock_only=p.in_stock_only,
-                                            allow_class2=p.allow_class2_coupling)
+        c_values = catalog.capacitor_values(
+            p.capacitor_series, *p.capacitor_range, in_stock_only=p.in_stock_only, allow_class2=p.allow_class2_coupling
+        )
         stock_note = " in stock" if p.in_stock_only else ""
         if r_values.size < 2:
-            raise InputError.single("parts.resistor_range", list(p.resistor_range),
-                                    f"a range holding at least two {p.resistor_series} resistors{stock_note} "
-                                    f"in catalog {catalog.name!r}", title="empty search space")
+            raise InputError.single(
+                "parts.resistor_range",
+                list(p.resistor_range),
+                f"a range holding at least two {p.resistor_series} resistors{stock_note} in catalog {catalog.name!r}",
+                title="empty search space",
+            )
         if c_values.size < 1:
-            raise InputError.single("parts.capacitor_range", list(p.capacitor_range),
-                                    f"a range holding at least one {p.capacitor_series} capacitor{stock_note} "
-                                    f"in catalog {catalog.name!r}", title="empty search space")
+            raise InputError.single(
+                "parts.capacitor_range",
+                list(p.capacitor_range),
+                f"a range holding at least one {p.capacitor_series} capacitor{stock_note} in catalog {catalog.name!r}",
+                title="empty search space",
+            )
         devices = {d: device_from_row(catalog.transistor(d)) for d in spec.devices}
         prices = {d: float(catalog.transistor(d).get("unit_price") or 0.0) for d in spec.devices}
-        return cls(spec, catalog, PartTable.from_catalog(catalog, "resistor", r_values),
-                   PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling), devices, prices,
-                   tuple(v.topology for v in verdicts), {v.topology: v.devices for v in verdicts})
+        return cls(
+            spec,
+            catalog,
+            PartTable.from_catalog(catalog, "resistor", r_values),
+            PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling),
+            devices,
+            prices,
+            tuple(v.topology for v in verdicts),
+            {v.topology: v.devices for v in verdicts},
+        )
 
     @property
     def offers_decoupling(self) -> bool:
@@ -136,13 +149,20 @@ class SearchSpace:
     # ---- trials <-> designs ----------------------------------------------------------
     def suggest(self, trial: optuna.Trial) -> Design:
         """Ask ``trial`` for a design (parameters: topology, device, <topology>.<role> indices)."""
-        topology = (trial.suggest_categorical("topology", list(self.topologies)) if len(self.topologies) > 1
-                    else self.topologies[0])
+        topology = (
+            trial.suggest_categorical("topology", list(self.topologies))
+            if len(self.topologies) > 1
+            else self.topologies[0]
+        )
         name = self.device_param(topology)
-        device = (trial.suggest_categorical(name, list(self.devices_of(topology))) if name
-                  else self.devices_of(topology)[0])
-        chosen = tuple((name.split(".", 1)[1], trial.suggest_int(name, d.low, d.high))
-                       for name, d in self.distributions({"topology": topology}).items() if "." in name)
+        device = (
+            trial.suggest_categorical(name, list(self.devices_of(topology))) if name else self.devices_of(topology)[0]
+        )
+        chosen = tuple(
+            (name.split(".", 1)[1], trial.suggest_int(name, d.low, d.high))
+            for name, d in self.distributions({"topology": topology}).items()
+            if "." in name
+        )
         return Design(topology, device, chosen)
 
     def distributions(self, params: dict[str, object]) -> dict[str, optuna.distributions.BaseDistribution]:
@@ -165,7 +185,8 @@ class SearchSpace:
             if role == "r_top" and self.spec.supply_arrangement == "split":
                 continue  # a split supply's base returns to ground through r_bottom alone
             out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(
-                ABSENT if role in model.optional_parts else 0, top)
+                ABSENT if role in model.optional_parts else 0, top
+            )
         if self.offers_decoupling:  # a supply decoupling RC when the spec asks for rejection
             out[f"{topology}.r_decouple"] = optuna.distributions.IntDistribution(ABSENT, top)
         if self.spec.search.capacitors == "searched":
@@ -204,9 +225,24 @@ class SearchSpace:
                 chosen = {r: v for r, v in hand.items() if r in roles}
                 if set(chosen) != set(roles) or not all(np.isfinite(v) and v > 0 for v in chosen.values()):
                     continue
-                for rounded in rounded_designs(chosen, self.spec.parts.resistor_series,
-                                               self.spec.parts.capacitor_series, limit=16):
-                    out.append(Design(topology, device_id, tuple(
-                        (r, int((self.capacitors if r.startswith("c_") else self.resistors).index_of(
-                            np.array([rounded[r]]))[0])) for r in roles)))
+                for rounded in rounded_designs(
+                    chosen, self.spec.parts.resistor_series, self.spec.parts.capacitor_series, limit=16
+                ):
+                    out.append(
+                        Design(
+                            topology,
+                            device_id,
+                            tuple(
+                                (
+                                    r,
+                                    int(
+                                        (self.capacitors if r.startswith("c_") else self.resistors).index_of(
+                                            np.array([rounded[r]])
+                                        )[0]
+                                    ),
+                                )
+                                for r in roles
+                            ),
+                        )
+                    )
         return list(dict.fromkeys(out))

@@ -1,4 +1,5 @@
 """The Optuna study: creating a search, running it in batches (ask, evaluate, tell), finishing it."""
+
 from __future__ import annotations
 
 import json
@@ -51,18 +52,19 @@ def _now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
 
-
 #: makes a search's sampler from its space and a seed offset (each runner of a shared search its own)
 SamplerFactory = Callable[[SearchSpace, int], optuna.samplers.BaseSampler]
-
 
 
 def neighbour_sampler(space: SearchSpace, seed_offset: int = 0) -> optuna.samplers.BaseSampler:
     """The search's own sampler: neighbour moves along the ordered indices from the best and
     the front designs."""
-    return NeighbourSampler(rank_key, [d for _, d in space.spec.objective_directions], space.distributions,
-                            seed=space.spec.search.seed + seed_offset)
-
+    return NeighbourSampler(
+        rank_key,
+        [d for _, d in space.spec.objective_directions],
+        space.distributions,
+        seed=space.spec.search.seed + seed_offset,
+    )
 
 
 def study_attrs(study: optuna.Study) -> dict:
@@ -71,23 +73,30 @@ def study_attrs(study: optuna.Study) -> dict:
     return study_storage(study).get_study_user_attrs(study_id(study))
 
 
-
 def load_study(storage: BaseStorage, search_id: str) -> tuple[optuna.Study, Spec]:
     try:
         study = optuna.load_study(study_name=search_id, storage=storage, sampler=optuna.samplers.RandomSampler())
     except KeyError:
-        raise InputError.single("search", search_id, "the id of an existing search",
-                                title="unknown search") from None
+        raise InputError.single("search", search_id, "the id of an existing search", title="unknown search") from None
     attrs = study_attrs(study)
     if not isinstance(attrs.get("spec"), dict) or not isinstance(attrs.get("budget"), int):
-        raise InputError.single("search", search_id, "a search whose record was written in full "
-                                "(its creation was cut short; delete it)", title="incomplete search")
+        raise InputError.single(
+            "search",
+            search_id,
+            "a search whose record was written in full (its creation was cut short; delete it)",
+            title="incomplete search",
+        )
     return study, parse_spec(attrs["spec"])
 
 
-
-def create_search(spec: Spec, storage: BaseStorage, *, search_id: str | None = None,
-                  catalog: Catalog | None = None, seeds: bool = True) -> str:
+def create_search(
+    spec: Spec,
+    storage: BaseStorage,
+    *,
+    search_id: str | None = None,
+    catalog: Catalog | None = None,
+    seeds: bool = True,
+) -> str:
     """Create the study for ``spec`` (status 'queued'), the hand method's seeds enqueued
     (unless ``seeds`` is False: a baseline without them); returns its id.
 
@@ -109,8 +118,12 @@ def create_search(spec: Spec, storage: BaseStorage, *, search_id: str | None = N
         except KeyError:
             pass
         study = optuna.create_study(study_name=search_id, storage=storage, directions=directions)
-        for key, value in (("spec", stored), ("budget", spec.search.trials), ("created", _now()),
-                           ("objectives", [list(o) for o in spec.objective_directions])):
+        for key, value in (
+            ("spec", stored),
+            ("budget", spec.search.trials),
+            ("created", _now()),
+            ("objectives", [list(o) for o in spec.objective_directions]),
+        ):
             study.set_user_attr(key, value)
         for design in (space.seeds() if seeds else [])[: spec.search.trials]:
             study.enqueue_trial(space.params_of(design), skip_if_exists=True)
@@ -118,10 +131,8 @@ def create_search(spec: Spec, storage: BaseStorage, *, search_id: str | None = N
     return search_id
 
 
-
 def _same_design(a: optuna.trial.FrozenTrial, b: optuna.trial.FrozenTrial) -> bool:
     return a.params == b.params
-
 
 
 def trial_tally(study: optuna.Study, *, best: bool = False) -> TrialTally:
@@ -130,18 +141,24 @@ def trial_tally(study: optuna.Study, *, best: bool = False) -> TrialTally:
     return tally(study_storage(study), study_id(study), *((rank_key, _same_design) if best else ()))
 
 
-
 def trial_counts(study: optuna.Study) -> tuple[int, int]:
     """(finished, running) trials."""
     counted = trial_tally(study)
     return counted.complete, counted.running
 
 
-
-def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[], bool] | None = None,
-               progress: Callable[[int, int], None] | None = None, max_batches: int | None = None,
-               seed_offset: int = 0, catalog: Catalog | None = None,
-               sampler: SamplerFactory = neighbour_sampler, finish: bool = True) -> None:
+def run_search(
+    storage: BaseStorage,
+    search_id: str,
+    *,
+    should_stop: Callable[[], bool] | None = None,
+    progress: Callable[[int, int], None] | None = None,
+    max_batches: int | None = None,
+    seed_offset: int = 0,
+    catalog: Catalog | None = None,
+    sampler: SamplerFactory = neighbour_sampler,
+    finish: bool = True,
+) -> None:
     """Run batches (ask, evaluate in one vectorised call, tell) until the budget is met, the
     search is cancelled or ``should_stop()`` is true; then, with ``finish``, rank and assess
     the shortlist (:func:`finish_search`). ``sampler(space, seed_offset)`` makes the sampler
@@ -188,8 +205,10 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
                     designs = [space.suggest(t) for t in trials]
                 try:
                     fresh = list(dict.fromkeys(d for d in designs if d not in known))
-                    known.update((d, (json.dumps(r), r["total_violation"], r["objectives"]))
-                                 for d, r in zip(fresh, evaluate_designs(space, fresh)))
+                    known.update(
+                        (d, (json.dumps(r), r["total_violation"], r["objectives"]))
+                        for d, r in zip(fresh, evaluate_designs(space, fresh))
+                    )
                     records = [known[d] for d in designs]
                 except Exception as error:
                     _fail_trials(study, open_trials)
@@ -213,9 +232,7 @@ def run_search(storage: BaseStorage, search_id: str, *, should_stop: Callable[[]
         _finish_when_done(study, space, budget)
 
 
-
 INTERRUPTED = "interrupted (Ctrl-C); finished trials are kept: run the search again to resume it"
-
 
 
 def _fail_trials(study: optuna.Study, trials: list[optuna.Trial]) -> None:
@@ -228,12 +245,10 @@ def _fail_trials(study: optuna.Study, trials: list[optuna.Trial]) -> None:
         trials.remove(t)
 
 
-
 def _finish_when_done(study: optuna.Study, space: SearchSpace, budget: int) -> None:
     finished, running = trial_counts(study)
     if finished >= budget and running == 0 and study.user_attrs.get("status") == "running":
         _finish(study, space)
-
 
 
 def finish_search(storage: BaseStorage, search_id: str, *, catalog: Catalog | None = None) -> None:
@@ -243,7 +258,6 @@ def finish_search(storage: BaseStorage, search_id: str, *, catalog: Catalog | No
     _finish_when_done(study, SearchSpace.build(spec, catalog), int(study.user_attrs["budget"]))
 
 
-
 def completed_records(study: optuna.Study) -> list[dict]:
     out = []
     for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
@@ -251,7 +265,6 @@ def completed_records(study: optuna.Study) -> list[dict]:
         if record:
             out.append({**record, "trial": t.number})
     return out
-
 
 
 def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *, tail: bool = True) -> dict:
@@ -265,12 +278,12 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     every = rank_records(completed_records(study))
     ranked = fold_variants(space, every)
     shortlist: list[dict] = []
-    for r in ranked[:max(top, SHORTLIST_REACH)]:
+    for r in ranked[: max(top, SHORTLIST_REACH)]:
         shortlist.append(shortlist_candidate(space, r, samples))
         if len(shortlist) >= top and sum(c["feasible"] for c in shortlist) >= top:
             break
     shortlist.sort(key=lambda c: (not c["feasible"], -c["score"] if c["feasible"] else c["total_violation"]))
-    candidates = shortlist + [candidate_from_record(space, r) for r in ranked[len(shortlist):] if tail]
+    candidates = shortlist + [candidate_from_record(space, r) for r in ranked[len(shortlist) :] if tail]
     for rank, c in enumerate(candidates, 1):
         c["rank"] = rank
     points = front_records(space, ranked)
@@ -286,7 +299,6 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     return summary
 
 
-
 def _finish(study: optuna.Study, space: SearchSpace) -> None:
     summary = summarise(space, study, SHORTLIST_SIZE, SHORTLIST_SAMPLES, tail=False)
     study.set_user_attr("ranking", {k: summary[k] for k in ("candidates", "front", "infeasible") if k in summary})
@@ -295,16 +307,13 @@ def _finish(study: optuna.Study, space: SearchSpace) -> None:
     study.set_user_attr("status", "done")
 
 
-
 def stored_attrs(storage: BaseStorage, search_id: str) -> tuple[int, dict]:
     """(study id, user attrs) of a stored search, without reading its spec."""
     try:
         study_id = storage.get_study_id_from_name(search_id)
     except KeyError:
-        raise InputError.single("search", search_id, "the id of an existing search",
-                                title="unknown search") from None
+        raise InputError.single("search", search_id, "the id of an existing search", title="unknown search") from None
     return study_id, storage.get_study_user_attrs(study_id)
-
 
 
 def fail_search(storage: BaseStorage, search_id: str, reason: str = "") -> None:

@@ -4,6 +4,7 @@ Every module of this package is imported here, and every :class:`Topology` subcl
 sets ``name`` registers itself when defined (:func:`base.register`): adding a stage is one
 new module in this folder (docs/adding_a_topology.md), nothing else to edit.
 """
+
 from __future__ import annotations
 
 import importlib
@@ -23,8 +24,7 @@ def get_topology(name: str) -> Topology:
     try:
         return TOPOLOGIES[name]
     except (KeyError, TypeError):
-        raise InputError.single("topology", name, f"one of {', '.join(TOPOLOGIES)}",
-                                title="unknown topology") from None
+        raise InputError.single("topology", name, f"one of {', '.join(TOPOLOGIES)}", title="unknown topology") from None
 
 
 __all__ = ["TOPOLOGIES", "Conditions", "Role", "StageResult", "Topology", "get_topology", "register", "unregister"]

@@ -3,6 +3,7 @@
 A topology maps arrays of part values (leading candidate axis, SI units) plus a device
 and the operating conditions to an operating point, metrics and ratings.
 """
+
 from __future__ import annotations
 
 import math
@@ -25,9 +26,28 @@ Parts = dict[str, np.ndarray]
 CHUNK_FAST = 16384  # candidates per block (keeps the working set in cache)
 CHUNK_FULL = 4096  # the full path's nodal solves run over (frequencies, candidates): fewer, longer calls
 SWING_FLOAT32_FLOOR = 0.1  # V peak-to-peak: usable swings below it are re-solved in double precision
-METRICS = ("gain", "gain_db", "swing_vpp", "clip_vpp", "input_impedance", "output_impedance", "supply_current",
-           "f_low", "f_high", "thd", "noise_ein_v", "noise_figure_db", "q_power", "part_count",
-           "psrr_db", "psrr_ripple_db", "psrr_mid_db", "emitter_voltage", "loop_gain", "phase_margin_deg")
+METRICS = (
+    "gain",
+    "gain_db",
+    "swing_vpp",
+    "clip_vpp",
+    "input_impedance",
+    "output_impedance",
+    "supply_current",
+    "f_low",
+    "f_high",
+    "thd",
+    "noise_ein_v",
+    "noise_figure_db",
+    "q_power",
+    "part_count",
+    "psrr_db",
+    "psrr_ripple_db",
+    "psrr_mid_db",
+    "emitter_voltage",
+    "loop_gain",
+    "phase_margin_deg",
+)
 SUPPLY_PARTS = ("r_decouple", "c_decouple")  # optional supply decoupling RC of every stage (0 = direct rail)
 # The supply decoupling RC's netlist elements, the same in every stage: (role, node a, node b).
 # With r_decouple > 0 every element of the stage that returns to ``vcc`` moves to ``vloc``.
@@ -206,19 +226,29 @@ class Topology(ABC):
         roles = set(cls.resistors) | set(cls.capacitors)
         wired = {role for role, _, _ in cls.elements}
         if wired != roles or len(wired) != len(cls.elements):
-            raise TypeError(f"topology {cls.name}: elements must list each of {sorted(roles)} once, "
-                            f"got {[r for r, _, _ in cls.elements]}")
+            raise TypeError(
+                f"topology {cls.name}: elements must list each of {sorted(roles)} once, "
+                f"got {[r for r, _, _ in cls.elements]}"
+            )
         if len(cls.transistor_pins) != cls.transistors:
-            raise TypeError(f"topology {cls.name}: {cls.transistors} transistors but "
-                            f"{len(cls.transistor_pins)} transistor_pins")
-        if not set(cls.supplies) <= set(SUPPLIES) or not set(cls.polarities) <= set(POLARITIES) or (
-                "split" in cls.supplies and not {"r_top", "r_bottom"} <= set(cls.resistors)):
-            raise TypeError(f"topology {cls.name}: supplies from {SUPPLIES} ('split' with r_top and r_bottom) and "
-                            f"polarities from {POLARITIES}; got {cls.supplies}, {cls.polarities}")
+            raise TypeError(
+                f"topology {cls.name}: {cls.transistors} transistors but {len(cls.transistor_pins)} transistor_pins"
+            )
+        if (
+            not set(cls.supplies) <= set(SUPPLIES)
+            or not set(cls.polarities) <= set(POLARITIES)
+            or ("split" in cls.supplies and not {"r_top", "r_bottom"} <= set(cls.resistors))
+        ):
+            raise TypeError(
+                f"topology {cls.name}: supplies from {SUPPLIES} ('split' with r_top and r_bottom) and "
+                f"polarities from {POLARITIES}; got {cls.supplies}, {cls.polarities}"
+            )
         bad = [r for r in roles | set(cls.optional_parts) if r[:1] not in KINDS or r[1:2] != "_"]
         if bad or not set(cls.optional_parts) <= roles:
-            raise TypeError(f"topology {cls.name}: roles are named r_... or c_... and optional_parts "
-                            f"are among them; check {bad or sorted(set(cls.optional_parts) - roles)}")
+            raise TypeError(
+                f"topology {cls.name}: roles are named r_... or c_... and optional_parts "
+                f"are among them; check {bad or sorted(set(cls.optional_parts) - roles)}"
+            )
 
     @property
     def roles(self) -> tuple[Role, ...]:
@@ -235,8 +265,9 @@ class Topology(ABC):
         load (ohm), for pruning an exhaustive enumeration; None: no bound known."""
         return None
 
-    def capacitor_floors(self, resistors: dict[str, np.ndarray], conditions: Conditions,
-                         f_low: float) -> dict[str, np.ndarray]:
+    def capacitor_floors(
+        self, resistors: dict[str, np.ndarray], conditions: Conditions, f_low: float
+    ) -> dict[str, np.ndarray]:
         """Least values (F) some capacitors keep whatever the stage's low corner needs (capacitor
         role -> array over candidates), for a capacitor that does other work in band; {}: none."""
         return {}
@@ -244,30 +275,46 @@ class Topology(ABC):
     def hand_design(self, req: HandRequirements) -> dict[str, float]:
         """The unrounded textbook design (role -> ohm or F) that seeds the search and is the
         benchmarks' baseline; InputError when the hand method has no answer (no seed)."""
-        raise InputError.single("topology", self.name, "a topology with a hand method",
-                                title="no hand design")
+        raise InputError.single("topology", self.name, "a topology with a hand method", title="no hand design")
 
     def describe(self) -> dict:
         """JSON-ready summary: description, roles, polarities, supplies, device kind and gain sign."""
-        return {"name": self.name, "description": self.description,
-                "roles": [{"name": r.name, "kind": r.kind, "unit": r.unit, "series": r.series_field,
-                           "optional": r.optional} for r in self.roles],
-                "resistors": list(self.resistors), "capacitors": list(self.capacitors),
-                "optional_parts": list(self.optional_parts), "transistors": self.transistors,
-                "polarities": list(self.polarities), "supplies": list(self.supplies), "device_kind": self.device_kind,
-                "gain_sign": "inverting" if self.inverting else "non-inverting"}
+        return {
+            "name": self.name,
+            "description": self.description,
+            "roles": [
+                {"name": r.name, "kind": r.kind, "unit": r.unit, "series": r.series_field, "optional": r.optional}
+                for r in self.roles
+            ],
+            "resistors": list(self.resistors),
+            "capacitors": list(self.capacitors),
+            "optional_parts": list(self.optional_parts),
+            "transistors": self.transistors,
+            "polarities": list(self.polarities),
+            "supplies": list(self.supplies),
+            "device_kind": self.device_kind,
+            "gain_sign": "inverting" if self.inverting else "non-inverting",
+        }
 
     @abstractmethod
-    def operating_point(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-                        hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
+    def operating_point(
+        self, parts: Parts, device: AnyDevice, conditions: Conditions, hfe: np.ndarray | float | None = None
+    ) -> dict[str, np.ndarray]:
         """DC node voltages (V), currents (A), vce (V), active flag, supply_current (A),
         v_supply_local (V, the stage's supply node after r_decouple) and v_out_q (V, the
         quiescent DC of the output node: the collector, or the follower's emitter)."""
 
     @abstractmethod
-    def evaluate(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-                 hfe: np.ndarray | float | None = None, *, full: bool = True,
-                 thd_solve: bool = False) -> StageResult:
+    def evaluate(
+        self,
+        parts: Parts,
+        device: AnyDevice,
+        conditions: Conditions,
+        hfe: np.ndarray | float | None = None,
+        *,
+        full: bool = True,
+        thd_solve: bool = False,
+    ) -> StageResult:
         """Metrics, operating point and ratings.
 
         full=False: the fast core; f_low, f_high and the noise figures are NaN. full=True adds
@@ -295,8 +342,7 @@ class StageModel(Topology):
 
     # ---- hooks -------------------------------------------------------------------------
     @abstractmethod
-    def _bias(self, p: Parts, device: AnyDevice, c: Conditions, beta: np.ndarray, nvt: float,
-              i_s: float) -> Bias:
+    def _bias(self, p: Parts, device: AnyDevice, c: Conditions, beta: np.ndarray, nvt: float, i_s: float) -> Bias:
         """Solve the DC operating point."""
 
     @abstractmethod
@@ -308,14 +354,23 @@ class StageModel(Topology):
         """
 
     @abstractmethod
-    def _swing(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias,
-               mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    def _swing(
+        self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, mid: dict[str, np.ndarray]
+    ) -> tuple[np.ndarray, np.ndarray]:
         """clip_vpp (V, the hard clip level at the load: 2*min of the AC load line's cutoff and
         saturation limits) and the largest Vce in operation (V)."""
 
     @abstractmethod
-    def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
+    def _network(
+        self,
+        p: Parts,
+        c: Conditions,
+        ss: list[dict[str, np.ndarray]],
+        ac: bool,
+        r_source: np.ndarray | None,
+        load: bool,
+        supply: bool = False,
+    ) -> physics.Network:
         """Small-signal network with nodes 'in' (after the source impedance) and 'out' (the load).
 
         ac False: mid-band (coupling and bypass capacitors short, device and load capacitances
@@ -326,8 +381,9 @@ class StageModel(Topology):
         """
 
     @staticmethod
-    def _new_network(nodes: tuple[str, ...], p: Parts, c: Conditions, ac: bool,
-                     supply: bool) -> tuple[physics.Network, str | None]:
+    def _new_network(
+        nodes: tuple[str, ...], p: Parts, c: Conditions, ac: bool, supply: bool
+    ) -> tuple[physics.Network, str | None]:
         """A network over ``nodes`` plus the supply nodes, and the node the stage returns to.
 
         The rail 'vcc' is tied to ground by the supply source's G_SHORT (a current G_SHORT
@@ -344,8 +400,9 @@ class StageModel(Topology):
         if not (decoupled or supply):
             return physics.Network(nodes, c.temperature), None
         split = supply and 0 < c.below_ground < 1
-        net = physics.Network(nodes + (("vloc", "vcc") if decoupled else ("vcc",)) + (("gnd",) if split else ()),
-                              c.temperature)
+        net = physics.Network(
+            nodes + (("vloc", "vcc") if decoupled else ("vcc",)) + (("gnd",) if split else ()), c.temperature
+        )
         net.admittance("vcc", None, np.full_like(p["r_decouple"], physics.G_SHORT))
         if split:
             net.admittance("gnd", None, np.full_like(p["r_decouple"], physics.G_SHORT))
@@ -383,16 +440,25 @@ class StageModel(Topology):
         the base to ground."""
         split = conditions is not None and arrangement(conditions.below_ground) == "split"
         if split and "split" not in self.supplies:
-            raise InputError.single("supply", "split", f"one of {', '.join(self.supplies)} for {self.name}",
-                                    title=f"{self.name} does not run on a split supply")
+            raise InputError.single(
+                "supply",
+                "split",
+                f"one of {', '.join(self.supplies)} for {self.name}",
+                title=f"{self.name} does not run on a split supply",
+            )
         if split:
             parts = {"r_top": np.zeros(1), **parts}
             if np.any(np.asarray(parts["r_top"], dtype=float) != 0):
-                raise InputError.single("parts.r_top", parts["r_top"], "absent (0) on a split supply: the base "
-                                        "returns to ground through r_bottom alone", title=f"invalid part value for {self.name}")
+                raise InputError.single(
+                    "parts.r_top",
+                    parts["r_top"],
+                    "absent (0) on a split supply: the base returns to ground through r_bottom alone",
+                    title=f"invalid part value for {self.name}",
+                )
         needed = self.resistors + self.capacitors
-        problems = [Problem(f"parts.{r}", None, f"{self.name} needs {', '.join(needed)}")
-                    for r in needed if r not in parts]
+        problems = [
+            Problem(f"parts.{r}", None, f"{self.name} needs {', '.join(needed)}") for r in needed if r not in parts
+        ]
         if problems:
             raise InputError(problems, title=f"parts do not fit topology {self.name}")
         roles = needed + self.supply_parts
@@ -402,9 +468,12 @@ class StageModel(Topology):
             optional = r in self.optional_parts or r in self.supply_parts or (split and r == "r_top")
             bad = ~(a >= 0) if optional else ~(a > 0)
             if np.any(bad):
-                raise InputError.single(f"parts.{r}", float(a[bad][0]),
-                                        "a value >= 0" if optional else "a value > 0",
-                                        title=f"invalid part value for {self.name}")
+                raise InputError.single(
+                    f"parts.{r}",
+                    float(a[bad][0]),
+                    "a value >= 0" if optional else "a value > 0",
+                    title=f"invalid part value for {self.name}",
+                )
         return out
 
     @staticmethod
@@ -413,8 +482,9 @@ class StageModel(Topology):
         typical device where none is given)."""
         return np.broadcast_to(np.asarray(device.spread_typ if hfe is None else hfe, dtype=float), (n,))
 
-    def _checked_solve(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-                       hfe: np.ndarray | float | None) -> tuple[Parts, Bias, float, Conditions]:
+    def _checked_solve(
+        self, parts: Parts, device: AnyDevice, conditions: Conditions, hfe: np.ndarray | float | None
+    ) -> tuple[Parts, Bias, float, Conditions]:
         """Check the parts, then solve the bias (the entry of the public single-call methods);
         the frame's parts, bias and conditions (:func:`frame_conditions`)."""
         frame = frame_conditions(conditions, device)
@@ -428,15 +498,20 @@ class StageModel(Topology):
         of the span: the same DC and, with every rail an AC ground, the same signal and noise."""
         g = conditions.below_ground
         if g > 0 and np.any(p["r_decouple"] > 0):
-            raise InputError.single("parts.r_decouple", float(np.max(p["r_decouple"])),
-                                    "0 (absent): a supply decoupling RC is drawn for an NPN stage on a positive "
-                                    "rail or a PNP stage on a negative rail", title=f"invalid part value for {self.name}")
+            raise InputError.single(
+                "parts.r_decouple",
+                float(np.max(p["r_decouple"])),
+                "0 (absent): a supply decoupling RC is drawn for an NPN stage on a positive "
+                "rail or a PNP stage on a negative rail",
+                title=f"invalid part value for {self.name}",
+            )
         if not 0 < g < 1:
             return p
         return {**p, "r_top": p["r_bottom"] / g, "r_bottom": p["r_bottom"] / (1.0 - g)}
 
-    def _solve(self, p: Parts, device: AnyDevice, conditions: Conditions,
-               beta: np.ndarray) -> tuple[Parts, Bias, float]:
+    def _solve(
+        self, p: Parts, device: AnyDevice, conditions: Conditions, beta: np.ndarray
+    ) -> tuple[Parts, Bias, float]:
         """Bias of checked parts ``p`` with hFE ``beta`` (one value per candidate), in the frame
         of ``conditions`` (:func:`frame_conditions`); the frame's parts (:meth:`_frame_parts`)."""
         p = self._frame_parts(p, conditions)
@@ -463,13 +538,15 @@ class StageModel(Topology):
             # split: no r_top; the base current comes from ground through r_bottom, and the supply
             # current is what the collector-side rail gives (the divider equivalent's share removed)
             b.op["supply_current"] = b.op["supply_current"] - b.op["i_divider"]
-            b.op["i_divider"] = (conditions.below_ground * conditions.supply - b.op[self.divider_tap]) \
-                * (1.0 / p["r_top"] + 1.0 / p["r_bottom"])
+            b.op["i_divider"] = (conditions.below_ground * conditions.supply - b.op[self.divider_tap]) * (
+                1.0 / p["r_top"] + 1.0 / p["r_bottom"]
+            )
         b.beta = beta
         return p, b, nvt
 
-    def operating_point(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-                        hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
+    def operating_point(
+        self, parts: Parts, device: AnyDevice, conditions: Conditions, hfe: np.ndarray | float | None = None
+    ) -> dict[str, np.ndarray]:
         _, b, _, frame = self._checked_solve(parts, device, conditions, hfe)
         return self._true_op(b.op, device, frame)
 
@@ -481,9 +558,16 @@ class StageModel(Topology):
         keys = {*self.node_voltages.values(), "v_supply_local", "v_out_q"}
         return {k: true_volts(v, device, frame) if k in keys else v for k, v in op.items()}
 
-    def evaluate(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-                 hfe: np.ndarray | float | None = None, *, full: bool = True,
-                 thd_solve: bool = False) -> StageResult:
+    def evaluate(
+        self,
+        parts: Parts,
+        device: AnyDevice,
+        conditions: Conditions,
+        hfe: np.ndarray | float | None = None,
+        *,
+        full: bool = True,
+        thd_solve: bool = False,
+    ) -> StageResult:
         conditions = frame_conditions(conditions, device)
         p = self.check_parts(parts, conditions)
         n = next(iter(p.values())).size
@@ -493,19 +577,28 @@ class StageModel(Topology):
             return self._evaluate(p, device, conditions, h, full, thd_solve)
         out: StageResult | None = None
         for i in range(0, n, step):
-            r = self._evaluate({k: v[i:i + step] for k, v in p.items()}, device, conditions, h[i:i + step], full,
-                               thd_solve)
+            r = self._evaluate(
+                {k: v[i : i + step] for k, v in p.items()}, device, conditions, h[i : i + step], full, thd_solve
+            )
             if out is None:
-                out = StageResult(*({k: np.empty(n, dtype=v.dtype) for k, v in d.items()}
-                                    for d in (r.metrics, r.operating_point, r.ratings)))
-            for whole, part in ((out.metrics, r.metrics), (out.operating_point, r.operating_point),
-                                (out.ratings, r.ratings)):
+                out = StageResult(
+                    *(
+                        {k: np.empty(n, dtype=v.dtype) for k, v in d.items()}
+                        for d in (r.metrics, r.operating_point, r.ratings)
+                    )
+                )
+            for whole, part in (
+                (out.metrics, r.metrics),
+                (out.operating_point, r.operating_point),
+                (out.ratings, r.ratings),
+            ):
                 for k, v in part.items():
-                    whole[k][i:i + step] = v
+                    whole[k][i : i + step] = v
         return out
 
-    def _evaluate(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-                  hfe: np.ndarray, full: bool, thd_solve: bool) -> StageResult:
+    def _evaluate(
+        self, parts: Parts, device: AnyDevice, conditions: Conditions, hfe: np.ndarray, full: bool, thd_solve: bool
+    ) -> StageResult:
         """:meth:`evaluate` of one chunk of checked ``parts`` in the frame's ``conditions``."""
         p, b, nvt = self._solve(parts, device, conditions, hfe)
         r_source = _source_resistance(b, conditions)
@@ -521,16 +614,33 @@ class StageModel(Topology):
             gain = mid["gain"]
             swing = self._usable_swing(p, device, conditions, b, nvt, gain, 0.5 * clip)
             m: dict[str, np.ndarray] = {
-                "gain": gain, "gain_db": 20.0 * np.log10(np.abs(gain)), "swing_vpp": swing, "clip_vpp": clip,
-                "input_impedance": z_in, "output_impedance": z_out,
+                "gain": gain,
+                "gain_db": 20.0 * np.log10(np.abs(gain)),
+                "swing_vpp": swing,
+                "clip_vpp": clip,
+                "input_impedance": z_in,
+                "output_impedance": z_out,
                 "supply_current": b.op["supply_current"],
-                "thd": np.abs(sum(sign * physics.thd_small_signal(0.5 * conditions.signal_vpp * vx, sup, nvt, u)
-                                  for vx, sup, u, sign in mid["hd2_terms"])),
-                "q_power": b.op["q_power"], "emitter_voltage": b.op["v_emitter"],
-                "part_count": self.part_count(parts)}
+                "thd": np.abs(
+                    sum(
+                        sign * physics.thd_small_signal(0.5 * conditions.signal_vpp * vx, sup, nvt, u)
+                        for vx, sup, u, sign in mid["hd2_terms"]
+                    )
+                ),
+                "q_power": b.op["q_power"],
+                "emitter_voltage": b.op["v_emitter"],
+                "part_count": self.part_count(parts),
+            }
             nan = np.full_like(gain, np.nan)
-            m.update(f_low=nan, f_high=nan, noise_ein_v=nan, noise_figure_db=nan, psrr_db=nan, psrr_ripple_db=nan,
-                     psrr_mid_db=nan)
+            m.update(
+                f_low=nan,
+                f_high=nan,
+                noise_ein_v=nan,
+                noise_figure_db=nan,
+                psrr_db=nan,
+                psrr_ripple_db=nan,
+                psrr_mid_db=nan,
+            )
             m.update(self._loop_metrics(p, conditions, b, r_source))
             if full:
                 m.update(self._full_metrics(p, conditions, b, r_source, gain))
@@ -539,8 +649,9 @@ class StageModel(Topology):
             ratings = self._ratings(p, conditions, b)
             if 0 < conditions.below_ground < 1:  # split: r_bottom alone, from the base to ground
                 ratings["p_r_top"] = np.zeros_like(gain)
-                ratings["p_r_bottom"] = (b.op[self.divider_tap] - conditions.below_ground * conditions.supply) ** 2 \
-                    / parts["r_bottom"]
+                ratings["p_r_bottom"] = (
+                    b.op[self.divider_tap] - conditions.below_ground * conditions.supply
+                ) ** 2 / parts["r_bottom"]
             ratings["p_r_decouple"] = b.op["supply_current"] ** 2 * p["r_decouple"]
             ratings["v_c_decouple"] = np.where(p["c_decouple"] > 0, conditions.rail_max, 0.0) + 0.0 * gain
         ratings["vce_max"] = vce_max
@@ -552,16 +663,22 @@ class StageModel(Topology):
         nan = np.full_like(r_source, np.nan)
         return {"loop_gain": nan, "phase_margin_deg": nan}
 
-    def _full_metrics(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray,
-                      gain: np.ndarray) -> dict[str, np.ndarray]:
+    def _full_metrics(
+        self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray, gain: np.ndarray
+    ) -> dict[str, np.ndarray]:
         # Element values stay 1-D over candidates and frequencies run along a leading axis, so
         # every array of the nodal solve is (frequencies, candidates) with the candidates
         # contiguous: numpy's inner loops then run over thousands of values, not a few frequencies.
         net = self._network(p, c, b.small_signal, True, r_source, True)
         f_low, f_high = physics.minus_3db_corners(self._response(net, r_source), gain, self.corner_steps)
         ein, nf = physics.noise_integrals(net, "out", "in", r_source, c.band)
-        return {"f_low": f_low, "f_high": f_high, "noise_ein_v": ein, "noise_figure_db": nf,
-                **self._psrr(p, c, b, r_source)}
+        return {
+            "f_low": f_low,
+            "f_high": f_high,
+            "noise_ein_v": ein,
+            "noise_figure_db": nf,
+            **self._psrr(p, c, b, r_source),
+        }
 
     def _psrr(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
         """psrr_ripple_db, psrr_mid_db and psrr_db (the smaller), dB: 20*log10(1/|H|) of the
@@ -574,14 +691,28 @@ class StageModel(Topology):
         supply r_bottom returns to ground itself here, not through the span-divider equivalent."""
         g = c.below_ground
         if 0 < g < 1:
-            p = {**p, "r_top": np.full_like(p["r_top"], np.inf), "r_bottom": physics.parallel(p["r_top"], p["r_bottom"])}
+            p = {
+                **p,
+                "r_top": np.full_like(p["r_top"], np.inf),
+                "r_bottom": physics.parallel(p["r_top"], p["r_bottom"]),
+            }
         net = self._network(p, c, b.small_signal, True, r_source, True, supply=True)
         f = np.array([[c.ripple_frequency], [math.sqrt(c.band[0] * c.band[1])]])
         at = net.at(2j * np.pi * f)
         ground = net.ground
-        drives = ([({"vcc": np.full(1, physics.G_SHORT)}, "vcc")] if g < 1 else []) + \
-                 ([({"vcc": np.full(1, -physics.G_SHORT), **({ground: np.full(1, -physics.G_SHORT)} if ground != "vcc"
-                                                            else {})}, None)] if g > 0 else [])
+        drives = ([({"vcc": np.full(1, physics.G_SHORT)}, "vcc")] if g < 1 else []) + (
+            [
+                (
+                    {
+                        "vcc": np.full(1, -physics.G_SHORT),
+                        **({ground: np.full(1, -physics.G_SHORT)} if ground != "vcc" else {}),
+                    },
+                    None,
+                )
+            ]
+            if g > 0
+            else []
+        )
         rejection = None
         for drive, rail in drives:
             v = at.solve(drive, ["out", "vcc"] + ([ground] if ground and ground != "vcc" else []))
@@ -590,11 +721,15 @@ class StageModel(Topology):
             r = -20.0 * np.log10(np.abs((v["out"] - v_ground) / ripple))
             rejection = r if rejection is None else np.minimum(rejection, r)
         assert rejection is not None  # every arrangement has a rail that is not ground
-        return {"psrr_ripple_db": rejection[0], "psrr_mid_db": rejection[1],
-                "psrr_db": np.minimum(rejection[0], rejection[1])}
+        return {
+            "psrr_ripple_db": rejection[0],
+            "psrr_mid_db": rejection[1],
+            "psrr_db": np.minimum(rejection[0], rejection[1]),
+        }
 
-    def psrr(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-             hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
+    def psrr(
+        self, parts: Parts, device: AnyDevice, conditions: Conditions, hfe: np.ndarray | float | None = None
+    ) -> dict[str, np.ndarray]:
         """Supply rejection alone (dB): psrr_ripple_db, psrr_mid_db, psrr_db per candidate (see
         :meth:`evaluate`); the bias and one small network solve, for sizing c_decouple."""
         p, b, _, frame = self._checked_solve(parts, device, conditions, hfe)
@@ -608,10 +743,17 @@ class StageModel(Topology):
 
         def h(f: np.ndarray) -> np.ndarray:
             return net.at(2j * np.pi * f).solve(drive, ["out"])["out"]
+
         return h
 
-    def frequency_response(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-                           freqs: np.ndarray, hfe: np.ndarray | float | None = None) -> np.ndarray:
+    def frequency_response(
+        self,
+        parts: Parts,
+        device: AnyDevice,
+        conditions: Conditions,
+        freqs: np.ndarray,
+        hfe: np.ndarray | float | None = None,
+    ) -> np.ndarray:
         """Complex gain source->load (V/V) at freqs (Hz), shape (candidates, freqs), by full nodal solve."""
         p, b, _, frame = self._checked_solve(parts, device, conditions, hfe)
         rs = _source_resistance(b, frame)
@@ -619,8 +761,9 @@ class StageModel(Topology):
         h = self._response(self._network(p, frame, b.small_signal, True, rs, True), rs)(f)
         return np.ascontiguousarray(np.broadcast_to(h, (f.shape[0], rs.size)).T)
 
-    def midband_network(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-                        hfe: np.ndarray | float | None = None) -> dict[str, np.ndarray]:
+    def midband_network(
+        self, parts: Parts, device: AnyDevice, conditions: Conditions, hfe: np.ndarray | float | None = None
+    ) -> dict[str, np.ndarray]:
         """gain (V/V), input_impedance and output_impedance (|Z|, ohm) by full nodal solve at the
         band's geometric-mean frequency (a check of the closed forms)."""
         p, b, _, c = self._checked_solve(parts, device, conditions, hfe)
@@ -630,8 +773,11 @@ class StageModel(Topology):
         h = self._network(p, c, ss, True, rs, True).at(s).solve({"in": 1.0 / rs}, ["out"])["out"]
         z_in = self._network(p, c, ss, True, None, True).at(s).solve({"in": one}, ["in"])["in"]
         z_out = self._network(p, c, ss, True, rs, False).at(s).solve({"out": one}, ["out"])["out"]
-        return {"gain": np.copysign(np.abs(h), h.real), "input_impedance": np.abs(z_in),
-                "output_impedance": np.abs(z_out)}
+        return {
+            "gain": np.copysign(np.abs(h), h.real),
+            "input_impedance": np.abs(z_in),
+            "output_impedance": np.abs(z_out),
+        }
 
     def part_count(self, p: Parts) -> np.ndarray:
         """Resistors and capacitors present (value non-zero: an optional part, or r_top on a split
@@ -643,13 +789,22 @@ class StageModel(Topology):
         return count
 
     @abstractmethod
-    def static_output(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float,
-                      i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    def static_output(
+        self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, i_s: float, beta: np.ndarray
+    ) -> Callable[[np.ndarray], np.ndarray]:
         """Map source voltages (V, (candidates, samples)) to load voltages (V) by the static
         nonlinear stage equations around the operating point (capacitors hold their DC)."""
 
-    def _static_fn(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float,
-                   beta: np.ndarray, dtype: type = np.float64) -> Callable[[np.ndarray], np.ndarray]:
+    def _static_fn(
+        self,
+        p: Parts,
+        device: AnyDevice,
+        c: Conditions,
+        b: Bias,
+        nvt: float,
+        beta: np.ndarray,
+        dtype: type = np.float64,
+    ) -> Callable[[np.ndarray], np.ndarray]:
         """:meth:`static_output` of solved candidates, their arrays as columns (candidates, 1).
 
         dtype np.float32 runs the static solves in single precision (about twice as fast; the
@@ -657,15 +812,20 @@ class StageModel(Topology):
         i_s = float(saturation_current(device.IS, c.temperature))
 
         def col(d: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-            return {k: (np.asarray(v, dtype=dtype) if np.asarray(v).dtype.kind == "f" else np.asarray(v))[:, None]
-                    for k, v in d.items()}
+            return {
+                k: (np.asarray(v, dtype=dtype) if np.asarray(v).dtype.kind == "f" else np.asarray(v))[:, None]
+                for k, v in d.items()
+            }
+
         local = replace(c, supply=np.asarray(b.op["v_supply_local"], dtype=dtype)[:, None])  # c_decouple holds it
-        fn = self.static_output(col(p), device, local, Bias(col(b.op), b.small_signal), nvt, i_s,
-                                np.asarray(beta, dtype=dtype)[:, None])
+        fn = self.static_output(
+            col(p), device, local, Bias(col(b.op), b.small_signal), nvt, i_s, np.asarray(beta, dtype=dtype)[:, None]
+        )
         return lambda vs, **options: fn(np.asarray(vs, dtype=dtype), **options)  # options: a stage's own (waves=)
 
-    def _usable_swing(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, gain: np.ndarray,
-                      clip_peak: np.ndarray) -> np.ndarray:
+    def _usable_swing(
+        self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, gain: np.ndarray, clip_peak: np.ndarray
+    ) -> np.ndarray:
         """swing_vpp (V peak-to-peak at the load) by :func:`physics.usable_swing`, its static solves in
         single precision, then again in double precision for active candidates whose swing is under
         SWING_FLOAT32_FLOOR or whose |gain| is under 1: single precision leaves microvolts of noise on the
@@ -676,19 +836,35 @@ class StageModel(Topology):
         swing = physics.usable_swing(self._static_fn(p, device, c, b, nvt, b.beta, np.float32), gain, clip_peak)
         rows = np.flatnonzero(b.op["active"] & ~((swing >= SWING_FLOAT32_FLOOR) & (np.abs(gain) >= 1.0)))
         if rows.size:
-            sub = Bias({k: v[rows] for k, v in b.op.items()},
-                       [{k: v[rows] for k, v in ss.items()} for ss in b.small_signal])
+            sub = Bias(
+                {k: v[rows] for k, v in b.op.items()}, [{k: v[rows] for k, v in ss.items()} for ss in b.small_signal]
+            )
             fn = self._static_fn({k: v[rows] for k, v in p.items()}, device, c, sub, nvt, b.beta[rows])
             swing[rows] = physics.usable_swing(fn, gain[rows], clip_peak[rows])
         return swing
 
-    def _thd_static(self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float,
-                    beta: np.ndarray, gain: np.ndarray, samples: int = physics.THD_SAMPLES) -> np.ndarray:
+    def _thd_static(
+        self,
+        p: Parts,
+        device: AnyDevice,
+        c: Conditions,
+        b: Bias,
+        nvt: float,
+        beta: np.ndarray,
+        gain: np.ndarray,
+        samples: int = physics.THD_SAMPLES,
+    ) -> np.ndarray:
         fn = self._static_fn(p, device, c, b, nvt, beta)
         return physics.thd_quasistatic(fn, 0.5 * c.signal_vpp / np.abs(gain), samples)
 
-    def static_transfer(self, parts: Parts, device: AnyDevice, conditions: Conditions, source_v: np.ndarray,
-                        hfe: np.ndarray | float | None = None) -> np.ndarray:
+    def static_transfer(
+        self,
+        parts: Parts,
+        device: AnyDevice,
+        conditions: Conditions,
+        source_v: np.ndarray,
+        hfe: np.ndarray | float | None = None,
+    ) -> np.ndarray:
         """Load voltage (V, change from quiescent) at each source voltage of ``source_v`` (V, a
         1-D sweep), per candidate, shape (candidates, samples): the static transfer curve behind
         the quasi-static THD, clipping included (capacitors hold their DC). A PNP stage's curve
@@ -699,8 +875,14 @@ class StageModel(Topology):
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             return sign * self._static_fn(p, device, frame, b, nvt, b.beta)(vs) + 0.0 * b.beta[:, None]
 
-    def thd_quasistatic(self, parts: Parts, device: AnyDevice, conditions: Conditions,
-                        hfe: np.ndarray | float | None = None, samples: int = 256) -> np.ndarray:
+    def thd_quasistatic(
+        self,
+        parts: Parts,
+        device: AnyDevice,
+        conditions: Conditions,
+        hfe: np.ndarray | float | None = None,
+        samples: int = 256,
+    ) -> np.ndarray:
         """THD (fraction) at conditions.signal_vpp at the load, by static solve + FFT (per candidate)."""
         p, b, nvt, frame = self._checked_solve(parts, device, conditions, hfe)
         rs = _source_resistance(b, frame)

@@ -14,6 +14,7 @@ c_bootstrap with the other capacitors, so f_low, the response plot and the capac
 all include it, and the mid-band figures are taken with c_bootstrap's admittance at the band's
 geometric mean (not as a short: the input impedance depends on it to first order).
 """
+
 from __future__ import annotations
 
 import math
@@ -32,9 +33,15 @@ class BootstrapFollower(EmitterFollower):
     order = 60
     resistors = ("r_top", "r_bottom", "r_bootstrap", "r_follower")
     capacitors = ("c_in", "c_bootstrap", "c_out")
-    elements = (("c_in", "src", "base"), ("r_top", "vcc", "mid"), ("r_bottom", "mid", "0"),
-                ("r_bootstrap", "mid", "base"), ("c_bootstrap", "emitter", "mid"),
-                ("r_follower", "emitter", "0"), ("c_out", "emitter", "out"))
+    elements = (
+        ("c_in", "src", "base"),
+        ("r_top", "vcc", "mid"),
+        ("r_bottom", "mid", "0"),
+        ("r_bootstrap", "mid", "base"),
+        ("c_bootstrap", "emitter", "mid"),
+        ("r_follower", "emitter", "0"),
+        ("c_out", "emitter", "out"),
+    )
     node_voltages = {"base": "v_base", "mid": "v_mid", "emitter": "v_emitter"}
     divider_tap = "v_mid"  # r_top and r_bottom meet at the mid node, r_bootstrap feeds the base from it
 
@@ -45,17 +52,23 @@ class BootstrapFollower(EmitterFollower):
         # r_bootstrap as large as the divider's own resistance (common practice); the tap's
         # capacitor for the band's low corner with the resistance it drives
         z_in = req.hfe * parallel(r_load, r_tap)
-        return {**parts, "r_bootstrap": r_tap, "c_bootstrap": coupling_capacitor(r_tap, req.f_low),
-                "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low)}
+        return {
+            **parts,
+            "r_bootstrap": r_tap,
+            "c_bootstrap": coupling_capacitor(r_tap, req.f_low),
+            "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low),
+        }
 
-    def capacitor_floors(self, resistors: dict[str, np.ndarray], conditions: Conditions,
-                         f_low: float) -> dict[str, np.ndarray]:
+    def capacitor_floors(
+        self, resistors: dict[str, np.ndarray], conditions: Conditions, f_low: float
+    ) -> dict[str, np.ndarray]:
         # The bootstrap lifts the input impedance, which the low corner judges only where the
         # source is high: c_bootstrap keeps at least its own corner with the divider at the
         # band's low edge (common practice), so it still works there with any source.
         # On a split supply r_top is absent (0 or left out): the tap is r_bottom alone.
-        r_top, r_bottom = np.broadcast_arrays(np.asarray(resistors.get("r_top", 0.0), dtype=float),
-                                              np.asarray(resistors["r_bottom"], dtype=float))
+        r_top, r_bottom = np.broadcast_arrays(
+            np.asarray(resistors.get("r_top", 0.0), dtype=float), np.asarray(resistors["r_bottom"], dtype=float)
+        )
         g_top = np.divide(1.0, r_top, out=np.zeros(r_top.shape), where=r_top > 0)
         r_tap = 1.0 / (g_top + 1.0 / r_bottom)
         return {"c_bootstrap": coupling_capacitor(r_tap, f_low)}
@@ -72,15 +85,24 @@ class BootstrapFollower(EmitterFollower):
         g_t, g_b, g_bs = 1.0 / p["r_top"], 1.0 / p["r_bottom"], 1.0 / p["r_bootstrap"]
         g_l = 1.0 / c.load_impedance
         v_h = op["v_emitter"] - op["v_mid"]
-        return (g_s + g_bs, -g_bs, g_bs + g_t + g_b + 1.0 / p["r_follower"] + g_l,
-                g_s * (vs + op["v_base"]) - g_bs * v_h,
-                (g_bs + g_b) * v_h + g_t * (c.supply + v_h) + g_l * op["v_emitter"] + 0.0 * vs)
+        return (
+            g_s + g_bs,
+            -g_bs,
+            g_bs + g_t + g_b + 1.0 / p["r_follower"] + g_l,
+            g_s * (vs + op["v_base"]) - g_bs * v_h,
+            (g_bs + g_b) * v_h + g_t * (c.supply + v_h) + g_l * op["v_emitter"] + 0.0 * vs,
+        )
 
     def _mid_admittances(self, p: Parts, c: Conditions) -> tuple:
         w = 2.0 * math.pi * math.sqrt(c.band[0] * c.band[1])
         g_bs = 1.0 / p["r_bootstrap"]
-        return 0.0 * g_bs, g_bs, 1.0 / p["r_top"] + 1.0 / p["r_bottom"], 1j * w * p["c_bootstrap"], \
-            1.0 / p["r_follower"]
+        return (
+            0.0 * g_bs,
+            g_bs,
+            1.0 / p["r_top"] + 1.0 / p["r_bottom"],
+            1j * w * p["c_bootstrap"],
+            1.0 / p["r_follower"],
+        )
 
     def _divider_op(self, p: Parts, v_base: np.ndarray, ib: np.ndarray, vcc: np.ndarray | float) -> dict:
         v_mid = v_base + p["r_bootstrap"] * ib
@@ -98,5 +120,7 @@ class BootstrapFollower(EmitterFollower):
     def _extra_ratings(self, p: Parts, c: Conditions, op: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
         # the tap never rises above the divider's open-circuit voltage at the highest rail, and
         # at power-up the emitter side may still be at ground
-        return {"p_r_bootstrap": (op["v_mid"] - op["v_base"]) ** 2 / p["r_bootstrap"],
-                "v_c_bootstrap": c.rail_max * p["r_bottom"] / (p["r_top"] + p["r_bottom"])}
+        return {
+            "p_r_bootstrap": (op["v_mid"] - op["v_base"]) ** 2 / p["r_bootstrap"],
+            "v_c_bootstrap": c.rail_max * p["r_bottom"] / (p["r_top"] + p["r_bottom"]),
+        }

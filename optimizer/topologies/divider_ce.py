@@ -3,6 +3,7 @@
 Nodes: r_top vcc-base, r_bottom base-gnd, r_collector vcc-collector, r_emitter
 emitter-gnd, c_in source-base, c_out collector-out, load out-gnd.
 """
+
 from __future__ import annotations
 
 from typing import Callable
@@ -29,8 +30,13 @@ def divider_hand_design(req: HandRequirements, stage_load: float) -> dict[str, f
     rc, re = centred_collector_resistor(first)
     r_top, r_bottom = divider(req, req.collector_current * re + VBE_HAND)
     z_in = parallel(parallel(r_top, r_bottom), req.hfe * re)
-    return {"r_top": r_top, "r_bottom": r_bottom, "r_collector": rc, "r_emitter": re,
-            "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low)}
+    return {
+        "r_top": r_top,
+        "r_bottom": r_bottom,
+        "r_collector": rc,
+        "r_emitter": re,
+        "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low),
+    }
 
 
 class DividerCE(StageModel):
@@ -43,8 +49,14 @@ class DividerCE(StageModel):
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter")
     capacitors = ("c_in", "c_out")
     transistors = 1
-    elements = (("c_in", "src", "base"), ("r_top", "vcc", "base"), ("r_bottom", "base", "0"),
-                ("r_collector", "vcc", "collector"), ("r_emitter", "emitter", "0"), ("c_out", "collector", "out"))
+    elements = (
+        ("c_in", "src", "base"),
+        ("r_top", "vcc", "base"),
+        ("r_bottom", "base", "0"),
+        ("r_collector", "vcc", "collector"),
+        ("r_emitter", "emitter", "0"),
+        ("c_out", "collector", "out"),
+    )
     transistor_pins = (("q1", "collector", "base", "emitter"),)
     node_voltages = {"base": "v_base", "collector": "v_collector", "emitter": "v_emitter"}
     gain_bound_roles = ("r_collector", "r_emitter")
@@ -72,23 +84,42 @@ class DividerCE(StageModel):
     def _nodes(self) -> tuple[str, ...]:
         return ("in", "base", "bint", "emitter", "collector", "out")
 
-    def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float,
-              i_s: float) -> Bias:
+    def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float, i_s: float) -> Bias:
         rt, rb, rc, re = p["r_top"], p["r_bottom"], p["r_collector"], self._re_dc(p)
         vcc = c.supply
         vth, rth = vcc * rb / (rt + rb), rt * rb / (rt + rb)
-        q = physics.solve_junction(vth, rth + device.RB, re, i_s=i_s, beta=beta, nvt=nvt,
-                                   inv_vaf=device.inv_vaf, vcb0=vcc, vcb_ic=rc + re, vcb_ib=re, vcb_vbe=1.0)
+        q = physics.solve_junction(
+            vth,
+            rth + device.RB,
+            re,
+            i_s=i_s,
+            beta=beta,
+            nvt=nvt,
+            inv_vaf=device.inv_vaf,
+            vcb0=vcc,
+            vcb_ic=rc + re,
+            vcb_ib=re,
+            vcb_vbe=1.0,
+        )
         ic, ib = q["ic"], q["ib"]
         v_e = re * (ic + ib)
         v_base = v_e + q["vbe"] + device.RB * ib
         v_c = vcc - rc * ic
         vce = v_c - v_e
         i_div = (vcc - v_base) / rt
-        op = {"v_base": v_base, "v_collector": v_c, "v_emitter": v_e, "ic": ic, "ib": ib,
-              "i_divider": i_div, "vce": vce, "vbe": q["vbe"],
-              "active": physics.is_active(vce, ic, device.vce_sat, q["converged"]),
-              "supply_current": ic + i_div, "q_power": vce * ic}
+        op = {
+            "v_base": v_base,
+            "v_collector": v_c,
+            "v_emitter": v_e,
+            "ic": ic,
+            "ib": ib,
+            "i_divider": i_div,
+            "vce": vce,
+            "vbe": q["vbe"],
+            "active": physics.is_active(vce, ic, device.vce_sat, q["converged"]),
+            "supply_current": ic + i_div,
+            "q_power": vce * ic,
+        }
         op.update(self._extra_op(p, ic + ib))
         return Bias(op, [physics.small_signal(q, device, beta, nvt, i_s)])
 
@@ -103,21 +134,33 @@ class DividerCE(StageModel):
         r_load = physics.parallel(p["r_collector"], np.full_like(rth, c.load_impedance))
         m = physics.ce_midband(b.small_signal[0], self._re_ac(p), r_load, physics.parallel(r_source, rth))
         z_in = physics.parallel(rth, m["z_base"])
-        return {"gain": z_in / (z_in + r_source) * m["gain_c"], "input_impedance": z_in,
-                "output_impedance": physics.parallel(p["r_collector"], m["z_coll"]),
-                "hd2_terms": [(1.0 / np.abs(m["gain_x"]), 1.0 / m["loop"],
-                               b.small_signal[0]["go"] * r_load, 1.0)],
-                "gain_c": m["gain_c"], "r_ac": r_load}
+        return {
+            "gain": z_in / (z_in + r_source) * m["gain_c"],
+            "input_impedance": z_in,
+            "output_impedance": physics.parallel(p["r_collector"], m["z_coll"]),
+            "hd2_terms": [(1.0 / np.abs(m["gain_x"]), 1.0 / m["loop"], b.small_signal[0]["go"] * r_load, 1.0)],
+            "gain_c": m["gain_c"],
+            "r_ac": r_load,
+        }
 
-    def _swing(self, p: Parts, device: Device, c: Conditions, b: Bias,
-               mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    def _swing(
+        self, p: Parts, device: Device, c: Conditions, b: Bias, mid: dict[str, np.ndarray]
+    ) -> tuple[np.ndarray, np.ndarray]:
         op = b.op
         cut, sat = physics.load_line_limits(op["ic"], op["vce"], device.vce_sat, mid["r_ac"], self._re_ac(p))
         vce_max = np.minimum(c.supply, op["v_collector"] + cut) - op.get("v_e2", 0.0)
         return 2.0 * np.minimum(cut, sat), vce_max
 
-    def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
+    def _network(
+        self,
+        p: Parts,
+        c: Conditions,
+        ss: list[dict[str, np.ndarray]],
+        ac: bool,
+        r_source: np.ndarray | None,
+        load: bool,
+        supply: bool = False,
+    ) -> physics.Network:
         net, rail = self._new_network(self._nodes(), p, c, ac, supply)
         add_divider_stage(net, p, ss, ac, r_source, rail)
         self._emitter_network(net, p, ac)
@@ -132,12 +175,14 @@ class DividerCE(StageModel):
         r.update(self._extra_ratings(p, c, op, ie))
         return r
 
-    def _extra_ratings(self, p: Parts, c: Conditions, op: dict[str, np.ndarray],
-                       ie: np.ndarray) -> dict[str, np.ndarray]:
+    def _extra_ratings(
+        self, p: Parts, c: Conditions, op: dict[str, np.ndarray], ie: np.ndarray
+    ) -> dict[str, np.ndarray]:
         return {}
 
-    def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
-                      i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    def static_output(
+        self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float, i_s: float, beta: np.ndarray
+    ) -> Callable[[np.ndarray], np.ndarray]:
         """Load voltage (V) against source voltage (V): the base loop solved at every sample.
 
         Coupling capacitors hold their DC voltages over the period; the emitter bypass (if
@@ -156,12 +201,25 @@ class DividerCE(StageModel):
 
         def out(vs: np.ndarray) -> np.ndarray:
             a = (vth * rs + (vs + op["v_base"]) * rth) / (rs + rth) - v_hold
-            q = physics.solve_junction(a, r_t + device.RB, re, i_s=i_s, beta=beta, nvt=nvt, inv_vaf=device.inv_vaf,
-                                       vcb0=vc_q + ic_q * r_ac - v_hold, vcb_ic=r_ac + re, vcb_ib=re, vcb_vbe=1.0,
-                                       v_start=op["vbe"], iterations=physics.THD_ITERATIONS)
+            q = physics.solve_junction(
+                a,
+                r_t + device.RB,
+                re,
+                i_s=i_s,
+                beta=beta,
+                nvt=nvt,
+                inv_vaf=device.inv_vaf,
+                vcb0=vc_q + ic_q * r_ac - v_hold,
+                vcb_ic=r_ac + re,
+                vcb_ib=re,
+                vcb_vbe=1.0,
+                v_start=op["vbe"],
+                iterations=physics.THD_ITERATIONS,
+            )
             v_e = v_hold + re * (q["ic"] + q["ib"])
             v_c = np.maximum(vc_q - (q["ic"] - ic_q) * r_ac, v_e + device.vce_sat)
             return v_c - vc_q
+
         return out
 
 
@@ -174,8 +232,14 @@ def add_load(net: physics.Network, c: Conditions, ac: bool, load: bool) -> None:
         net.capacitor("out", net.ground, np.asarray(c.load_capacitance, dtype=float), ac, False)
 
 
-def add_divider_stage(net: physics.Network, p: Parts, ss: list[dict[str, np.ndarray]], ac: bool,
-                      r_source: np.ndarray | None, rail: str | None) -> None:
+def add_divider_stage(
+    net: physics.Network,
+    p: Parts,
+    ss: list[dict[str, np.ndarray]],
+    ac: bool,
+    r_source: np.ndarray | None,
+    rail: str | None,
+) -> None:
     """The source, c_in, the bias divider, q1 and r_collector (r_top and r_collector return to
     ``rail``, None = AC ground, r_bottom to the network's bias ground); the emitter side is the caller's."""
     if r_source is not None:
@@ -192,7 +256,10 @@ def divider_ratings(p: Parts, c: Conditions, op: dict[str, np.ndarray]) -> dict[
     """Resistor powers (W) of the divider stage and the largest voltage on c_in (V, the rail at
     its maximum: see StageModel._ratings)."""
     vcc = op["v_supply_local"]
-    return {"p_r_top": (vcc - op["v_base"]) ** 2 / p["r_top"], "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
-            "p_r_collector": (vcc - op["v_collector"]) ** 2 / p["r_collector"],
-            "p_r_emitter": (op["ic"] + op["ib"]) ** 2 * p["r_emitter"],
-            "v_c_in": np.full_like(vcc, c.rail_max)}
+    return {
+        "p_r_top": (vcc - op["v_base"]) ** 2 / p["r_top"],
+        "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
+        "p_r_collector": (vcc - op["v_collector"]) ** 2 / p["r_collector"],
+        "p_r_emitter": (op["ic"] + op["ib"]) ** 2 * p["r_emitter"],
+        "v_c_in": np.full_like(vcc, c.rail_max),
+    }

@@ -9,6 +9,7 @@ base-loop Newton then solves the bias (capacitors open), and the same loop solve
 transfer (capacitors holding their DC), so the bootstrapped stage (bootstrap_follower, whose
 bias network couples base and emitter) reuses the whole flow with its own two-port.
 """
+
 from __future__ import annotations
 
 import math
@@ -25,8 +26,9 @@ from optimizer.topologies.divider_ce import add_load
 Ports = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]  # y11, y12, y22, j1, j2
 
 
-def two_port(y11: np.ndarray, y12: np.ndarray, y22: np.ndarray, j1: np.ndarray,
-             j2: np.ndarray) -> tuple[np.ndarray, ...]:
+def two_port(
+    y11: np.ndarray, y12: np.ndarray, y22: np.ndarray, j1: np.ndarray, j2: np.ndarray
+) -> tuple[np.ndarray, ...]:
     """Open-circuit voltages V1, V2 (V) and impedances z11, z12, z22 (ohm) of a linear network
     given by its nodal admittances y (S, symmetric) and injected currents j (A) at the base (1)
     and the emitter (2) terminals: V = Z j with Z = Y^-1."""
@@ -35,25 +37,51 @@ def two_port(y11: np.ndarray, y12: np.ndarray, y22: np.ndarray, j1: np.ndarray,
     return z11 * j1 + z12 * j2, z12 * j1 + z22 * j2, z11, z12, z22
 
 
-def follower_loop(ports: tuple[np.ndarray, ...], device: Device, vcc: np.ndarray | float, beta: np.ndarray,
-                  nvt: float, i_s: float, **kw: object) -> dict[str, np.ndarray]:
+def follower_loop(
+    ports: tuple[np.ndarray, ...],
+    device: Device,
+    vcc: np.ndarray | float,
+    beta: np.ndarray,
+    nvt: float,
+    i_s: float,
+    **kw: object,
+) -> dict[str, np.ndarray]:
     """q1 (collector on the rail ``vcc``, V) in the two-port (V1, V2, z11, z12, z22) of
     :func:`two_port`: base current ib out of terminal 1, emitter current ie into terminal 2,
     vB = V1 - z11*ib + z12*ie, vE = V2 - z12*ib + z22*ie. Returns :func:`physics.solve_junction`'s
     result plus v_base and v_emitter (V)."""
     v1, v2, z11, z12, z22 = ports
-    q = physics.solve_junction(v1 - v2, z11 - z12 + device.RB, z22 - z12, i_s=i_s, beta=beta, nvt=nvt,
-                               inv_vaf=device.inv_vaf, vcb0=vcc - v2, vcb_ic=z22, vcb_ib=z22 - z12,
-                               vcb_vbe=1.0, **kw)
+    q = physics.solve_junction(
+        v1 - v2,
+        z11 - z12 + device.RB,
+        z22 - z12,
+        i_s=i_s,
+        beta=beta,
+        nvt=nvt,
+        inv_vaf=device.inv_vaf,
+        vcb0=vcc - v2,
+        vcb_ic=z22,
+        vcb_ib=z22 - z12,
+        vcb_vbe=1.0,
+        **kw,
+    )
     ie = q["ic"] + q["ib"]
     q["v_base"] = v1 - z11 * q["ib"] + z12 * ie
     q["v_emitter"] = v2 - z12 * q["ib"] + z22 * ie
     return q
 
 
-def follower_midband(ss: dict[str, np.ndarray], s: complex, z_source: np.ndarray, g_shunt: np.ndarray,
-                     g_bootstrap: np.ndarray, g_mid: np.ndarray, y_c: np.ndarray | complex,
-                     g_emitter: np.ndarray, g_load: np.ndarray) -> dict[str, np.ndarray]:
+def follower_midband(
+    ss: dict[str, np.ndarray],
+    s: complex,
+    z_source: np.ndarray,
+    g_shunt: np.ndarray,
+    g_bootstrap: np.ndarray,
+    g_mid: np.ndarray,
+    y_c: np.ndarray | complex,
+    g_emitter: np.ndarray,
+    g_load: np.ndarray,
+) -> dict[str, np.ndarray]:
     """Closed-form small-signal follower at complex frequency s (rad/s), exact for the
     network of the model (hybrid-pi with rb, Cpi, Cmu).
 
@@ -78,12 +106,25 @@ def follower_midband(ss: dict[str, np.ndarray], s: complex, z_source: np.ndarray
     z_in = 1.0 / (g_p * (1.0 - a) + g_bootstrap * (1.0 - a_m - c_m * a) + g_shunt)
     k = (g_p + g_bootstrap * c_m) / (g_p + g_bootstrap * (1.0 - a_m) + g_shunt + 1.0 / z_source)  # vB/vE
     y_out = g_e + y_t * (1.0 - k) + y_c * (1.0 - a_m * k - c_m)
-    return {"a": a, "gain": a * z_in / (z_in + z_source), "z_in": z_in, "z_out": 1.0 / y_out,
-            "vx_per_out": ((1.0 - a) / a - rb * y_mu) / d_b}
+    return {
+        "a": a,
+        "gain": a * z_in / (z_in + z_source),
+        "z_in": z_in,
+        "z_out": 1.0 / y_out,
+        "vx_per_out": ((1.0 - a) / a - rb * y_mu) / d_b,
+    }
 
 
-def add_follower(net: physics.Network, p: Parts, c: Conditions, ss: dict[str, np.ndarray], ac: bool, load: bool,
-                 rail: str | None, nodes: tuple[str, str, str]) -> None:
+def add_follower(
+    net: physics.Network,
+    p: Parts,
+    c: Conditions,
+    ss: dict[str, np.ndarray],
+    ac: bool,
+    load: bool,
+    rail: str | None,
+    nodes: tuple[str, str, str],
+) -> None:
     """A follower transistor (small signal ``ss``) from its base node through rb to its
     internal base, collector on ``rail`` (None = AC ground), r_follower from its emitter to
     ground, c_out to 'out' and the load; ``nodes`` = (base, internal base, emitter)."""
@@ -104,15 +145,24 @@ class EmitterFollower(StageModel):
     name = "emitter_follower"
     inverting = False
     polarities = ("npn", "pnp")
-    supplies = ("positive", "negative", "split")  # drawn NPN on a positive rail; the polarity layer mirrors or shifts it
+    supplies = (
+        "positive",
+        "negative",
+        "split",
+    )  # drawn NPN on a positive rail; the polarity layer mirrors or shifts it
     device_kind = "bjt"
     description = "divider-biased emitter follower: gain just under +1, low output impedance"
     order = 50
     resistors = ("r_top", "r_bottom", "r_follower")
     capacitors = ("c_in", "c_out")
     transistors = 1
-    elements = (("c_in", "src", "base"), ("r_top", "vcc", "base"), ("r_bottom", "base", "0"),
-                ("r_follower", "emitter", "0"), ("c_out", "emitter", "out"))
+    elements = (
+        ("c_in", "src", "base"),
+        ("r_top", "vcc", "base"),
+        ("r_bottom", "base", "0"),
+        ("r_follower", "emitter", "0"),
+        ("c_out", "emitter", "out"),
+    )
     transistor_pins = (("q1", "vcc", "base", "emitter"),)
     node_voltages = {"base": "v_base", "emitter": "v_emitter"}
     gain_bound_roles = ("r_follower",)
@@ -138,8 +188,13 @@ class EmitterFollower(StageModel):
         g_s = 1.0 / max(c.source_impedance, physics.R_FLOOR)
         g_t, g_b = 1.0 / p["r_top"], 1.0 / p["r_bottom"]
         g_l = 1.0 / c.load_impedance
-        return (g_t + g_b + g_s, 0.0 * g_t, 1.0 / p["r_follower"] + g_l,
-                g_t * c.supply + g_s * (vs + op["v_base"]), g_l * op["v_emitter"] + 0.0 * vs)
+        return (
+            g_t + g_b + g_s,
+            0.0 * g_t,
+            1.0 / p["r_follower"] + g_l,
+            g_t * c.supply + g_s * (vs + op["v_base"]),
+            g_l * op["v_emitter"] + 0.0 * vs,
+        )
 
     def _mid_admittances(self, p: Parts, c: Conditions) -> tuple:
         """g_shunt, g_bootstrap, g_mid, y_c, g_emitter (S) of :func:`follower_midband` at the
@@ -152,14 +207,21 @@ class EmitterFollower(StageModel):
         return {"i_divider": (vcc - v_base) / p["r_top"]}
 
     # ---- the models --------------------------------------------------------------------------
-    def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float,
-              i_s: float) -> Bias:
+    def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float, i_s: float) -> Bias:
         q = follower_loop(two_port(*self._dc_ports(p, c)), device, c.supply, beta, nvt, i_s)
         ic, ib, v_e = q["ic"], q["ib"], q["v_emitter"]
         vce = c.supply - v_e
-        op = {"v_base": q["v_base"], "v_emitter": v_e, "ic": ic, "ib": ib, "vce": vce, "vbe": q["vbe"],
-              "active": physics.is_active(vce, ic, device.vce_sat, q["converged"]), "q_power": vce * ic,
-              **self._divider_op(p, q["v_base"], ib, c.supply)}
+        op = {
+            "v_base": q["v_base"],
+            "v_emitter": v_e,
+            "ic": ic,
+            "ib": ib,
+            "vce": vce,
+            "vbe": q["vbe"],
+            "active": physics.is_active(vce, ic, device.vce_sat, q["converged"]),
+            "q_power": vce * ic,
+            **self._divider_op(p, q["v_base"], ib, c.supply),
+        }
         op["supply_current"] = ic + op["i_divider"]
         return Bias(op, [physics.small_signal(q, device, beta, nvt, i_s)])
 
@@ -175,8 +237,9 @@ class EmitterFollower(StageModel):
         y_load = 1.0 / c.load_impedance + s * c.load_capacitance
         y_out = s * p["c_out"]
         z_source = r_source + 1.0 / (s * p["c_in"])
-        m = follower_midband(b.small_signal[0], s, z_source, *self._mid_admittances(p, c),
-                             y_load * y_out / (y_load + y_out))
+        m = follower_midband(
+            b.small_signal[0], s, z_source, *self._mid_admittances(p, c), y_load * y_out / (y_load + y_out)
+        )
         m["gain_c"] = m["gain"] * y_out / (y_load + y_out)
         return m
 
@@ -184,11 +247,16 @@ class EmitterFollower(StageModel):
         m = self._follower(p, c, b, r_source)
         vx = np.abs(m["vx_per_out"])
         # the follower compresses (the emitter's own current feedback, loop 1 + v_e/v_x)
-        return {"gain": real_signed(m["gain_c"]), "input_impedance": m["z_in"], "output_impedance": m["z_out"],
-                "hd2_terms": [(vx, vx / (1.0 + vx), 0.0, -1.0)]}
+        return {
+            "gain": real_signed(m["gain_c"]),
+            "input_impedance": m["z_in"],
+            "output_impedance": m["z_out"],
+            "hd2_terms": [(vx, vx / (1.0 + vx), 0.0, -1.0)],
+        }
 
-    def _swing(self, p: Parts, device: Device, c: Conditions, b: Bias,
-               mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    def _swing(
+        self, p: Parts, device: Device, c: Conditions, b: Bias, mid: dict[str, np.ndarray]
+    ) -> tuple[np.ndarray, np.ndarray]:
         op = b.op
         # cutoff: the emitter falls to where its own network holds it without q1's current
         z22 = two_port(*self._held_ports(p, c, op, 0.0))[4]
@@ -197,8 +265,16 @@ class EmitterFollower(StageModel):
         vce_max = c.supply - np.maximum(op["v_emitter"] - cut, 0.0)
         return 2.0 * np.minimum(cut, sat), vce_max
 
-    def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
+    def _network(
+        self,
+        p: Parts,
+        c: Conditions,
+        ss: list[dict[str, np.ndarray]],
+        ac: bool,
+        r_source: np.ndarray | None,
+        load: bool,
+        supply: bool = False,
+    ) -> physics.Network:
         net, rail = self._new_network(self._nodes(), p, c, ac, supply)
         if r_source is not None:
             net.admittance("in", net.ground, 1.0 / r_source)
@@ -218,17 +294,31 @@ class EmitterFollower(StageModel):
         op = b.op
         vcc = op["v_supply_local"]
         v_div = op[self.divider_tap]
-        r = {"p_r_top": (vcc - v_div) ** 2 / p["r_top"], "p_r_bottom": v_div ** 2 / p["r_bottom"],
-             "p_r_follower": op["v_emitter"] ** 2 / p["r_follower"], "p_q1": op["vce"] * op["ic"],
-             "v_c_in": np.full_like(vcc, c.rail_max), "v_c_out": np.full_like(vcc, c.rail_max)}
+        r = {
+            "p_r_top": (vcc - v_div) ** 2 / p["r_top"],
+            "p_r_bottom": v_div**2 / p["r_bottom"],
+            "p_r_follower": op["v_emitter"] ** 2 / p["r_follower"],
+            "p_q1": op["vce"] * op["ic"],
+            "v_c_in": np.full_like(vcc, c.rail_max),
+            "v_c_out": np.full_like(vcc, c.rail_max),
+        }
         r.update(self._extra_ratings(p, c, op))
         return r
 
     def _extra_ratings(self, p: Parts, c: Conditions, op: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
         return {}
 
-    def _thd_static(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
-                    beta: np.ndarray, gain: np.ndarray, samples: int = physics.THD_SAMPLES) -> np.ndarray:
+    def _thd_static(
+        self,
+        p: Parts,
+        device: Device,
+        c: Conditions,
+        b: Bias,
+        nvt: float,
+        beta: np.ndarray,
+        gain: np.ndarray,
+        samples: int = physics.THD_SAMPLES,
+    ) -> np.ndarray:
         """THD (fraction) at c.signal_vpp by the nonlinear-current method at physics.THD_FREQUENCY.
 
         The static solve over one period (capacitors holding their DC) gives q1's waveforms;
@@ -251,7 +341,7 @@ class EmitterFollower(StageModel):
         i_c = q["ic"] - col("ic") - ss["gm"][:, None] * d_vbe + ss["go"][:, None] * d_ve
         i_b = q["ib"] - col("ib") - ss["gpi"][:, None] * d_vbe
         charge = physics.depletion_charge(device.CJC, q["v_emitter"] + q["vbe"] - col("v_supply_local"))
-        spectra = [np.fft.rfft(w, axis=-1)[:, 2:harmonics + 1].T for w in (i_c, i_b, charge)]
+        spectra = [np.fft.rfft(w, axis=-1)[:, 2 : harmonics + 1].T for w in (i_c, i_b, charge)]
         fundamental = np.abs(np.fft.rfft(fn(vs), axis=-1)[:, 1])
         f = physics.THD_FREQUENCY * np.arange(2, harmonics + 1)[:, None]
         s = 2j * math.pi * f
@@ -264,8 +354,9 @@ class EmitterFollower(StageModel):
         out = net.at(s).solve(rhs, ["out"])["out"]  # (harmonics, candidates)
         return np.sqrt(np.sum(np.abs(out) ** 2, axis=0)) / fundamental
 
-    def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
-                      i_s: float, beta: np.ndarray) -> Callable[..., np.ndarray]:
+    def static_output(
+        self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float, i_s: float, beta: np.ndarray
+    ) -> Callable[..., np.ndarray]:
         """Load voltage (V) against source voltage (V): q1's base loop in the held-capacitor
         two-port at every sample. Past cutoff q1 passes no current and the emitter rests where
         its network holds it; at the other end the emitter stops vce_sat below the rail.
@@ -274,9 +365,18 @@ class EmitterFollower(StageModel):
         vce_sat = device.vce_sat
 
         def out(vs: np.ndarray, waves: bool = False) -> np.ndarray | dict[str, np.ndarray]:
-            q = follower_loop(two_port(*self._held_ports(p, c, op, vs)), device, c.supply, beta, nvt, i_s,
-                              v_start=op["vbe"], iterations=physics.THD_ITERATIONS)
+            q = follower_loop(
+                two_port(*self._held_ports(p, c, op, vs)),
+                device,
+                c.supply,
+                beta,
+                nvt,
+                i_s,
+                v_start=op["vbe"],
+                iterations=physics.THD_ITERATIONS,
+            )
             return q if waves else np.minimum(q["v_emitter"], c.supply - vce_sat) - op["v_emitter"]
+
         return out
 
 
@@ -288,6 +388,10 @@ def follower_hand_design(req: HandRequirements) -> dict[str, float]:
     r_follower = 0.5 * req.supply / ie
     r_top, r_bottom = divider(req, 0.5 * req.supply + VBE_HAND)
     z_in = parallel(parallel(r_top, r_bottom), req.hfe * parallel(r_follower, req.load_impedance))
-    return {"r_top": r_top, "r_bottom": r_bottom, "r_follower": r_follower,
-            "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low),
-            "c_out": coupling_capacitor(req.load_impedance, req.f_low)}
+    return {
+        "r_top": r_top,
+        "r_bottom": r_bottom,
+        "r_follower": r_follower,
+        "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low),
+        "c_out": coupling_capacitor(req.load_impedance, req.f_low),
+    }

@@ -10,6 +10,7 @@ collector2-collector-emitter2, r_emitter2 emitter2-gnd, c_emitter2 emitter2-gnd 
 r_collector2 vcc-collector2, r_feedback collector2-emitter, c_out collector2-out, load out-gnd.
 Same device for q1 and q2, drawn NPN on a positive rail.
 """
+
 from __future__ import annotations
 
 import math
@@ -30,11 +31,26 @@ HAND_EMITTER_MAX = 0.3  # the hand method's highest q1 emitter voltage, a share 
 NO_CROSSOVER_MARGIN = 180.0  # degrees: a loop gain below 1 at every frequency cannot ring
 
 
-def solve_pair(a1: np.ndarray, r_base1: np.ndarray, vcc: np.ndarray | float, rc1: np.ndarray,
-               re: np.ndarray, rf: np.ndarray, g_c2: np.ndarray, j_c2: np.ndarray,
-               v_e2_0: np.ndarray | float, r_e2: np.ndarray | float, *, rb: float, i_s: float,
-               beta: np.ndarray, nvt: float, inv_vaf: float, v_start: tuple[np.ndarray, np.ndarray] | None = None,
-               iterations: int = PAIR_ITERATIONS) -> dict[str, np.ndarray]:
+def solve_pair(
+    a1: np.ndarray,
+    r_base1: np.ndarray,
+    vcc: np.ndarray | float,
+    rc1: np.ndarray,
+    re: np.ndarray,
+    rf: np.ndarray,
+    g_c2: np.ndarray,
+    j_c2: np.ndarray,
+    v_e2_0: np.ndarray | float,
+    r_e2: np.ndarray | float,
+    *,
+    rb: float,
+    i_s: float,
+    beta: np.ndarray,
+    nvt: float,
+    inv_vaf: float,
+    v_start: tuple[np.ndarray, np.ndarray] | None = None,
+    iterations: int = PAIR_ITERATIONS,
+) -> dict[str, np.ndarray]:
     """Both forward-active junctions of the pair solved together by damped 2-D Newton (V, A, ohm, S).
 
     The loops: ``a1 = Vbe1 + r_base1*Ib1 + Ve1`` (q1's base Thevenin, RB included in r_base1),
@@ -52,8 +68,7 @@ def solve_pair(a1: np.ndarray, r_base1: np.ndarray, vcc: np.ndarray | float, rc1
     k_e = 1.0 / g_e
     k_c = k_e / (rf * g_c2)
     v0 = k_c * j_c2
-    shape = np.broadcast_shapes(*(np.shape(x) for x in (a1, r_base1, vcc, rc1, re, rf, g_c2, j_c2, v_e2_0,
-                                                        r_e2, beta)))
+    shape = np.broadcast_shapes(*(np.shape(x) for x in (a1, r_base1, vcc, rc1, re, rf, g_c2, j_c2, v_e2_0, r_e2, beta)))
     if v_start is None:
         x1 = np.full(shape, nvt * math.log(1e-3 / i_s))
         x2 = x1.copy()
@@ -104,15 +119,35 @@ def solve_pair(a1: np.ndarray, r_base1: np.ndarray, vcc: np.ndarray | float, rc1
     f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = state(x1, x2)
     r1 = a1 - x1 - r_base1 * ib1 - v_e1
     r2 = v_c1 - x2 - rb * ib2 - v_e2
-    converged = ((np.abs(r1) < physics.NEWTON_TOL) & (np.abs(r2) < physics.NEWTON_TOL)
-                 & np.isfinite(f1) & np.isfinite(f2) & (f1 > 0) & (f2 > 0))
-    return {"q1": {"vbe": x1, "vcb": v_c1 - v_e1 - x1, "i_forward": f1, "ic": ic1, "ib": ib1},
-            "q2": {"vbe": x2, "vcb": v_c2 - v_e2 - x2, "i_forward": f2, "ic": ic2, "ib": ib2},
-            "v_e1": v_e1, "v_c1": v_c1, "v_e2": v_e2, "v_c2": v_c2, "converged": converged}
+    converged = (
+        (np.abs(r1) < physics.NEWTON_TOL)
+        & (np.abs(r2) < physics.NEWTON_TOL)
+        & np.isfinite(f1)
+        & np.isfinite(f2)
+        & (f1 > 0)
+        & (f2 > 0)
+    )
+    return {
+        "q1": {"vbe": x1, "vcb": v_c1 - v_e1 - x1, "i_forward": f1, "ic": ic1, "ib": ib1},
+        "q2": {"vbe": x2, "vcb": v_c2 - v_e2 - x2, "i_forward": f2, "ic": ic2, "ib": ib2},
+        "v_e1": v_e1,
+        "v_c1": v_c1,
+        "v_e2": v_e2,
+        "v_c2": v_c2,
+        "converged": converged,
+    }
 
 
-def loop_phase_margin(t0: np.ndarray, r1: np.ndarray, c1: np.ndarray, r2: np.ndarray, c2: np.ndarray,
-                      c_mu: np.ndarray, gm: np.ndarray, f3: np.ndarray) -> np.ndarray:
+def loop_phase_margin(
+    t0: np.ndarray,
+    r1: np.ndarray,
+    c1: np.ndarray,
+    r2: np.ndarray,
+    c2: np.ndarray,
+    c_mu: np.ndarray,
+    gm: np.ndarray,
+    f3: np.ndarray,
+) -> np.ndarray:
     """Phase margin (degrees) of T(s) = t0*(1 - s*c_mu/gm) / ((1 + s*b1 + s^2*b2)*(1 + s/(2 pi f3))).
 
     The two dominant poles are those of q2's common-emitter stage with c_mu bridging its input
@@ -139,7 +174,7 @@ def loop_phase_margin(t0: np.ndarray, r1: np.ndarray, c1: np.ndarray, r2: np.nda
     for _ in range(CROSSOVER_STEPS):  # d ln|T| / d ln w by a small central difference
         slope = (log_mag(w * 1.01) - log_mag(w / 1.01)) / (2.0 * math.log(1.01))
         w = w * np.exp(-log_mag(w) / np.where(slope < -1e-3, slope, -1e-3))
-    lag = (np.arctan2(w * b1, 1.0 - w * w * b2) + np.arctan(w * tz) + np.arctan(w / w3))
+    lag = np.arctan2(w * b1, 1.0 - w * w * b2) + np.arctan(w * tz) + np.arctan(w / w3)
     margin = 180.0 - np.degrees(lag)
     return np.where(t0 > 1.0, margin, NO_CROSSOVER_MARGIN)
 
@@ -157,14 +192,26 @@ class FeedbackPair(StageModel):
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter2", "r_collector2", "r_feedback")
     capacitors = ("c_in", "c_emitter2", "c_out")
     transistors = 2
-    elements = (("c_in", "src", "base"), ("r_top", "vcc", "base"), ("r_bottom", "base", "0"),
-                ("r_collector", "vcc", "collector"), ("r_emitter", "emitter", "0"),
-                ("r_emitter2", "emitter2", "0"), ("c_emitter2", "emitter2", "0"),
-                ("r_collector2", "vcc", "collector2"), ("r_feedback", "collector2", "emitter"),
-                ("c_out", "collector2", "out"))
+    elements = (
+        ("c_in", "src", "base"),
+        ("r_top", "vcc", "base"),
+        ("r_bottom", "base", "0"),
+        ("r_collector", "vcc", "collector"),
+        ("r_emitter", "emitter", "0"),
+        ("r_emitter2", "emitter2", "0"),
+        ("c_emitter2", "emitter2", "0"),
+        ("r_collector2", "vcc", "collector2"),
+        ("r_feedback", "collector2", "emitter"),
+        ("c_out", "collector2", "out"),
+    )
     transistor_pins = (("q1", "collector", "base", "emitter"), ("q2", "collector2", "collector", "emitter2"))
-    node_voltages = {"base": "v_base", "collector": "v_collector", "emitter": "v_emitter",
-                     "emitter2": "v_emitter2", "collector2": "v_collector2"}
+    node_voltages = {
+        "base": "v_base",
+        "collector": "v_collector",
+        "emitter": "v_emitter",
+        "emitter2": "v_emitter2",
+        "collector2": "v_collector2",
+    }
     vce_keys = ("vce", "vce2")
     gain_bound_roles = ("r_feedback", "r_emitter")
     corner_steps = 8  # a small phase margin peaks the response inside f_high's bracket
@@ -190,9 +237,13 @@ class FeedbackPair(StageModel):
             v_e1 = min(max(0.1 * vcc, 3.0 * (v_c2 - v_e1) / (gain - 1.0)), HAND_EMITTER_MAX * vcc)
         r_emitter = (v_e1 - (v_c2 - v_e1) / (gain - 1.0)) / ic1
         if not r_emitter > 0 or not v_c2 > v_e1:
-            raise InputError.single("gain.target", req.gain,
-                                    f"a gain the hand method can bias on {vcc:g} V (r_feedback's current would "
-                                    "exceed q1's emitter current)", title="hand method has no solution")
+            raise InputError.single(
+                "gain.target",
+                req.gain,
+                f"a gain the hand method can bias on {vcc:g} V (r_feedback's current would "
+                "exceed q1's emitter current)",
+                title="hand method has no solution",
+            )
         r_feedback = (gain - 1.0) * r_emitter
         i_feedback = (v_c2 - v_e1) / r_feedback
         r_collector2 = (vcc - v_c2) / (ic2 + i_feedback)
@@ -202,35 +253,73 @@ class FeedbackPair(StageModel):
         r_top, r_bottom = divider(first, v_e1 + VBE_HAND)
         z_in = parallel(parallel(r_top, r_bottom), req.hfe * r_emitter)
         r_bypass = parallel(r_emitter2, 0.026 / ic2 + r_collector / req.hfe)
-        return {"r_top": r_top, "r_bottom": r_bottom, "r_collector": r_collector, "r_emitter": r_emitter,
-                "r_emitter2": r_emitter2, "r_collector2": r_collector2, "r_feedback": r_feedback,
-                "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low),
-                "c_emitter2": coupling_capacitor(r_bypass, req.f_low),
-                "c_out": coupling_capacitor(parallel(r_collector2, r_feedback) + req.load_impedance, req.f_low)}
+        return {
+            "r_top": r_top,
+            "r_bottom": r_bottom,
+            "r_collector": r_collector,
+            "r_emitter": r_emitter,
+            "r_emitter2": r_emitter2,
+            "r_collector2": r_collector2,
+            "r_feedback": r_feedback,
+            "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low),
+            "c_emitter2": coupling_capacitor(r_bypass, req.f_low),
+            "c_out": coupling_capacitor(parallel(r_collector2, r_feedback) + req.load_impedance, req.f_low),
+        }
 
-    def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float,
-              i_s: float) -> Bias:
+    def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float, i_s: float) -> Bias:
         rt, rb_, rc1, re, rf = p["r_top"], p["r_bottom"], p["r_collector"], p["r_emitter"], p["r_feedback"]
         rc2, re2 = p["r_collector2"], p["r_emitter2"]
         vcc = c.supply
         vth, rth = vcc * rb_ / (rt + rb_), rt * rb_ / (rt + rb_)
-        q = solve_pair(vth, rth + device.RB, vcc, rc1, re, rf, 1.0 / rc2 + 1.0 / rf, vcc / rc2, 0.0, re2,
-                       rb=device.RB, i_s=i_s, beta=beta, nvt=nvt, inv_vaf=device.inv_vaf)
+        q = solve_pair(
+            vth,
+            rth + device.RB,
+            vcc,
+            rc1,
+            re,
+            rf,
+            1.0 / rc2 + 1.0 / rf,
+            vcc / rc2,
+            0.0,
+            re2,
+            rb=device.RB,
+            i_s=i_s,
+            beta=beta,
+            nvt=nvt,
+            inv_vaf=device.inv_vaf,
+        )
         q1, q2 = q["q1"], q["q2"]
         v_e1, v_c1, v_e2, v_c2 = q["v_e1"], q["v_c1"], q["v_e2"], q["v_c2"]
         v_base = v_e1 + q1["vbe"] + device.RB * q1["ib"]
         vce, vce2 = v_c1 - v_e1, v_c2 - v_e2
         i_div = (vcc - v_base) / rt
-        active = (physics.is_active(vce, q1["ic"], device.vce_sat, q["converged"])
-                  & physics.is_active(vce2, q2["ic"], device.vce_sat, q["converged"]))
+        active = physics.is_active(vce, q1["ic"], device.vce_sat, q["converged"]) & physics.is_active(
+            vce2, q2["ic"], device.vce_sat, q["converged"]
+        )
         i_rc2 = (vcc - v_c2) / rc2
-        op = {"v_base": v_base, "v_collector": v_c1, "v_emitter": v_e1, "v_emitter2": v_e2, "v_collector2": v_c2,
-              "ic": q1["ic"], "ib": q1["ib"], "ic2": q2["ic"], "ib2": q2["ib"], "i_divider": i_div,
-              "i_feedback": (v_c2 - v_e1) / rf, "vce": vce, "vce2": vce2, "vbe": q1["vbe"], "vbe2": q2["vbe"],
-              "active": active, "supply_current": i_div + (vcc - v_c1) / rc1 + i_rc2,
-              "q_power": np.maximum(vce * q1["ic"], vce2 * q2["ic"])}
-        return Bias(op, [physics.small_signal(q1, device, beta, nvt, i_s),
-                         physics.small_signal(q2, device, beta, nvt, i_s)])
+        op = {
+            "v_base": v_base,
+            "v_collector": v_c1,
+            "v_emitter": v_e1,
+            "v_emitter2": v_e2,
+            "v_collector2": v_c2,
+            "ic": q1["ic"],
+            "ib": q1["ib"],
+            "ic2": q2["ic"],
+            "ib2": q2["ib"],
+            "i_divider": i_div,
+            "i_feedback": (v_c2 - v_e1) / rf,
+            "vce": vce,
+            "vce2": vce2,
+            "vbe": q1["vbe"],
+            "vbe2": q2["vbe"],
+            "active": active,
+            "supply_current": i_div + (vcc - v_c1) / rc1 + i_rc2,
+            "q_power": np.maximum(vce * q1["ic"], vce2 * q2["ic"]),
+        }
+        return Bias(
+            op, [physics.small_signal(q1, device, beta, nvt, i_s), physics.small_signal(q2, device, beta, nvt, i_s)]
+        )
 
     def _output_q(self, op: dict[str, np.ndarray]) -> np.ndarray:
         return op["v_collector2"]
@@ -241,17 +330,19 @@ class FeedbackPair(StageModel):
         drive = self._network(p, c, ss, False, r_source, True)
         v = drive.solve({"in": 1.0 / r_source})
         hd2 = []
-        for k, (bint, coll, emit) in enumerate((("bint", "collector", "emitter"),
-                                                ("bint2", "collector2", "emitter2"))):
+        for k, (bint, coll, emit) in enumerate((("bint", "collector", "emitter"), ("bint2", "collector2", "emitter2"))):
             hd2.append(self._hd2_term(ss[k], drive, v, bint, coll, emit))
-        return {"gain": v["out"],
-                "input_impedance": self._network(p, c, ss, False, None, True).solve({"in": one}, ["in"])["in"],
-                "output_impedance": self._network(p, c, ss, False, r_source, False).solve({"out": one}, ["out"])["out"],
-                "hd2_terms": hd2}
+        return {
+            "gain": v["out"],
+            "input_impedance": self._network(p, c, ss, False, None, True).solve({"in": one}, ["in"])["in"],
+            "output_impedance": self._network(p, c, ss, False, r_source, False).solve({"out": one}, ["out"])["out"],
+            "hd2_terms": hd2,
+        }
 
     @staticmethod
-    def _hd2_term(ss: dict[str, np.ndarray], drive: physics.Network, v: dict[str, np.ndarray], bint: str,
-                  coll: str, emit: str) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    def _hd2_term(
+        ss: dict[str, np.ndarray], drive: physics.Network, v: dict[str, np.ndarray], bint: str, coll: str, emit: str
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """One transistor's second harmonic at the load per volt of output amplitude, as the
         (v_x, suppression, Early u, sign) term :func:`physics.thd_small_signal` reads (u = 0: the
         Early effect is inside the suppression).
@@ -268,12 +359,12 @@ class FeedbackPair(StageModel):
         y = (v[coll] - v[bint]) / v["out"]
         z = drive.solve({coll: -one, emit: one}, ["out"])["out"]
         z_b = drive.solve({bint: -one, emit: one}, ["out"])["out"]
-        h = np.real(x * x / (4.0 * nvt) * ((ss["gm"] + ss["go"]) * z + ss["gpi"] * z_b)
-                    + x * y * ss["go"] / (2.0 * nvt) * z)
+        h = np.real(
+            x * x / (4.0 * nvt) * ((ss["gm"] + ss["go"]) * z + ss["gpi"] * z_b) + x * y * ss["go"] / (2.0 * nvt) * z
+        )
         return np.abs(x), 4.0 * nvt * np.abs(h) / np.abs(x), np.zeros_like(h), np.sign(h)
 
-    def loop_gain(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]],
-                  r_source: np.ndarray) -> np.ndarray:
+    def loop_gain(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], r_source: np.ndarray) -> np.ndarray:
         """Mid-band loop gain T (V/V): the return ratio of q2's gm (its source replaced by a unit
         current, T = -gm2 * the control voltage that current produces), source and load in place."""
         ss2 = {**ss[1], "gm": np.zeros_like(ss[1]["gm"])}
@@ -298,23 +389,33 @@ class FeedbackPair(StageModel):
         r2 = physics.parallel(p["r_collector2"], load, p["r_feedback"] + r_e1, 1.0 / ss2["go"])
         c2 = np.full_like(t0, c.load_capacitance)
         f3 = 1.0 / (2.0 * np.pi * r_e1 * ss1["cpi"])
-        return {"loop_gain": t0,
-                "phase_margin_deg": loop_phase_margin(t0, r1, c1, r2, c2, ss2["cmu"], ss2["gm"], f3)}
+        return {"loop_gain": t0, "phase_margin_deg": loop_phase_margin(t0, r1, c1, r2, c2, ss2["cmu"], ss2["gm"], f3)}
 
-    def _swing(self, p: Parts, device: Device, c: Conditions, b: Bias,
-               mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    def _swing(
+        self, p: Parts, device: Device, c: Conditions, b: Bias, mid: dict[str, np.ndarray]
+    ) -> tuple[np.ndarray, np.ndarray]:
         op = b.op
         load = np.full_like(op["ic2"], c.load_impedance)
         r_ac = physics.parallel(p["r_collector2"], load, p["r_feedback"] + p["r_emitter"])
         cut, sat = physics.load_line_limits(op["ic2"], op["vce2"], device.vce_sat, r_ac, np.zeros_like(r_ac))
-        vce_max = np.maximum(op["vce"] + np.abs(op["v_emitter"]),
-                             np.minimum(c.supply, op["v_collector2"] + cut) - op["v_emitter2"])
+        vce_max = np.maximum(
+            op["vce"] + np.abs(op["v_emitter"]), np.minimum(c.supply, op["v_collector2"] + cut) - op["v_emitter2"]
+        )
         return 2.0 * np.minimum(cut, sat), vce_max
 
-    def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool, supply: bool = False) -> physics.Network:
-        net, rail = self._new_network(("in", "base", "bint", "emitter", "collector", "bint2", "emitter2",
-                                       "collector2", "out"), p, c, ac, supply)
+    def _network(
+        self,
+        p: Parts,
+        c: Conditions,
+        ss: list[dict[str, np.ndarray]],
+        ac: bool,
+        r_source: np.ndarray | None,
+        load: bool,
+        supply: bool = False,
+    ) -> physics.Network:
+        net, rail = self._new_network(
+            ("in", "base", "bint", "emitter", "collector", "bint2", "emitter2", "collector2", "out"), p, c, ac, supply
+        )
         add_divider_stage(net, p, ss, ac, r_source, rail)
         net.resistor("emitter", None, p["r_emitter"])
         net.resistor("collector", "bint2", ss[1]["rb"])
@@ -332,15 +433,19 @@ class FeedbackPair(StageModel):
         vcc = op["v_supply_local"]
         rail = np.full_like(op["ic"], c.rail_max)
         # at power-up with q1 off, r_collector lifts q2's base (and emitter2) towards the rail
-        return {**divider_ratings(p, c, op),
-                "p_r_emitter": op["v_emitter"] ** 2 / p["r_emitter"],
-                "p_r_emitter2": op["v_emitter2"] ** 2 / p["r_emitter2"],
-                "p_r_collector2": (vcc - op["v_collector2"]) ** 2 / p["r_collector2"],
-                "p_r_feedback": (op["v_collector2"] - op["v_emitter"]) ** 2 / p["r_feedback"],
-                "v_c_emitter2": rail, "v_c_out": rail}
+        return {
+            **divider_ratings(p, c, op),
+            "p_r_emitter": op["v_emitter"] ** 2 / p["r_emitter"],
+            "p_r_emitter2": op["v_emitter2"] ** 2 / p["r_emitter2"],
+            "p_r_collector2": (vcc - op["v_collector2"]) ** 2 / p["r_collector2"],
+            "p_r_feedback": (op["v_collector2"] - op["v_emitter"]) ** 2 / p["r_feedback"],
+            "v_c_emitter2": rail,
+            "v_c_out": rail,
+        }
 
-    def static_output(self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float,
-                      i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    def static_output(
+        self, p: Parts, device: Device, c: Conditions, b: Bias, nvt: float, i_s: float, beta: np.ndarray
+    ) -> Callable[[np.ndarray], np.ndarray]:
         """Load voltage (V) against source voltage (V): the pair's two loops solved together at
         every sample; c_in, c_emitter2 and c_out hold their DC (emitter2 held, the load returns
         to collector2's quiescent voltage); collector2 flattens at emitter2 + vce_sat."""
@@ -355,9 +460,22 @@ class FeedbackPair(StageModel):
 
         def out(vs: np.ndarray) -> np.ndarray:
             a = (vth * rs + (vs + op["v_base"]) * rth) / (rs + rth)
-            q = solve_pair(a, physics.parallel(rth, rs) + device.RB, c.supply, p["r_collector"], p["r_emitter"], rf,
-                           g_c2, j_c2, op["v_emitter2"], 0.0, v_start=(op["vbe"], op["vbe2"]),
-                           iterations=2 * physics.THD_ITERATIONS, **kw)
+            q = solve_pair(
+                a,
+                physics.parallel(rth, rs) + device.RB,
+                c.supply,
+                p["r_collector"],
+                p["r_emitter"],
+                rf,
+                g_c2,
+                j_c2,
+                op["v_emitter2"],
+                0.0,
+                v_start=(op["vbe"], op["vbe2"]),
+                iterations=2 * physics.THD_ITERATIONS,
+                **kw,
+            )
             v_c2 = np.maximum(q["v_c2"], op["v_emitter2"] + device.vce_sat)
             return v_c2 - op["v_collector2"]
+
         return out

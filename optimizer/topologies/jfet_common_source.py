@@ -5,6 +5,7 @@ Nodes: c_in src-gate, r_gate gate-gnd, q1 (JFET: drain, gate, source), r_source 
 by c_source s2-gnd, r_drain vcc-drain, c_out drain-out, load out-gnd. The DC bias sees
 r_source + r_source_dc: Vgs = Ig*r_gate - Id*(r_source + r_source_dc).
 """
+
 from __future__ import annotations
 
 import math
@@ -25,9 +26,15 @@ class JFETCommonSource(JFETStage):
     resistors = ("r_gate", "r_drain", "r_source", "r_source_dc")
     capacitors = ("c_in", "c_out", "c_source")
     optional_parts = ("r_source",)
-    elements = (("c_in", "src", "gate"), ("r_gate", "gate", "0"), ("r_drain", "vcc", "drain"),
-                ("r_source", "source", "s2"), ("r_source_dc", "s2", "0"), ("c_source", "s2", "0"),
-                ("c_out", "drain", "out"))
+    elements = (
+        ("c_in", "src", "gate"),
+        ("r_gate", "gate", "0"),
+        ("r_drain", "vcc", "drain"),
+        ("r_source", "source", "s2"),
+        ("r_source_dc", "s2", "0"),
+        ("c_source", "s2", "0"),
+        ("c_out", "drain", "out"),
+    )
     transistor_pins = (("q1", "drain", "gate", "source"),)
     node_voltages = {"gate": "v_gate", "source": "v_source", "s2": "v_s2", "drain": "v_drain"}
     gain_bound_roles = ("r_drain", "r_source")
@@ -48,10 +55,14 @@ class JFETCommonSource(JFETStage):
         r_source = max(r_ac / req.gain - 1.0 / gm, 0.0)  # gm*Rac/(1 + gm*Rs) = gain
         r_source = min(r_source, 0.9 * r_bias)
         r_source_dc = r_bias - r_source
-        parts = {"r_gate": r_gate, "r_drain": r_drain, "r_source_dc": r_source_dc,
-                 "c_in": coupling_capacitor(r_gate + req.source_impedance, req.f_low),
-                 "c_out": coupling_capacitor(r_drain + req.load_impedance, req.f_low),
-                 "c_source": coupling_capacitor(parallel(r_source_dc, r_source + 1.0 / gm), req.f_low)}
+        parts = {
+            "r_gate": r_gate,
+            "r_drain": r_drain,
+            "r_source_dc": r_source_dc,
+            "c_in": coupling_capacitor(r_gate + req.source_impedance, req.f_low),
+            "c_out": coupling_capacitor(r_drain + req.load_impedance, req.f_low),
+            "c_source": coupling_capacitor(parallel(r_source_dc, r_source + 1.0 / gm), req.f_low),
+        }
         if r_source > 0:
             parts["r_source"] = r_source
         return parts
@@ -77,8 +88,15 @@ class JFETCommonSource(JFETStage):
     def _early_u(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]]) -> np.ndarray:
         return ss[0]["gds"] * physics.parallel(p["r_drain"], np.full_like(ss[0]["gds"], c.load_impedance))
 
-    def _stage_network(self, net: physics.Network, p: Parts, ss: list[dict[str, np.ndarray]], ac: bool,
-                       rail: str | None, device_caps: bool) -> None:
+    def _stage_network(
+        self,
+        net: physics.Network,
+        p: Parts,
+        ss: list[dict[str, np.ndarray]],
+        ac: bool,
+        rail: str | None,
+        device_caps: bool,
+    ) -> None:
         net.resistor("gate", None, p["r_gate"])
         net.jfet("gate", "drain", "source", ss[0], device_caps)
         net.resistor("source", "s2", p["r_source"])
@@ -89,8 +107,9 @@ class JFETCommonSource(JFETStage):
     def _r_out_dc(self, p: Parts) -> np.ndarray:
         return p["r_drain"]
 
-    def _limits(self, p: Parts, c: Conditions, op: dict[str, np.ndarray],
-                r_ac: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def _limits(
+        self, p: Parts, c: Conditions, op: dict[str, np.ndarray], r_ac: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
         # the triode edge: the current rises by dI until Vds_q - dI*(Rac + Rs) meets the
         # overdrive sqrt((Id + dI)/BETA'), which rises with it (BETA' = Id/x^2 at the operating
         # point): BETA'*R*y^2 + y - (Vds_q + Id*R) = 0 in y; the cutoff side: square_law_clip
@@ -102,8 +121,13 @@ class JFETCommonSource(JFETStage):
         clip = square_law_clip(op["id"], op["vdsat"], p["r_source"], r_ac, di_sat)
         v_dg_max = np.minimum(c.supply, op["v_drain"] + 0.5 * clip) - op["v_gate"]  # drain-gate: the larger of Vds, Vdg
         return clip, v_dg_max
+
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         i_d = b.op["id"]
         # the bypassed node never rises above the rail at its maximum
-        return {**self._common_ratings(p, c, b), "p_r_drain": i_d ** 2 * p["r_drain"],
-                "p_r_source_dc": i_d ** 2 * p["r_source_dc"], "v_c_source": np.full_like(i_d, c.rail_max)}
+        return {
+            **self._common_ratings(p, c, b),
+            "p_r_drain": i_d**2 * p["r_drain"],
+            "p_r_source_dc": i_d**2 * p["r_source_dc"],
+            "v_c_source": np.full_like(i_d, c.rail_max),
+        }

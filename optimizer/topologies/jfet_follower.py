@@ -5,6 +5,7 @@ r_source source-tap (sets Vgs = -Id*r_source), r_follower tap-gnd (sets the outp
 c_out source-out, load out-gnd. r_gate returns to the tap, which follows the output, so the
 input impedance in band is r_gate divided by 1 minus the tap's gain: megohms from a 1 Mohm part.
 """
+
 from __future__ import annotations
 
 import numpy as np
@@ -22,8 +23,13 @@ class JFETFollower(JFETStage):
     order = 70
     resistors = ("r_gate", "r_source", "r_follower")
     capacitors = ("c_in", "c_out")
-    elements = (("c_in", "src", "gate"), ("r_gate", "gate", "tap"), ("r_source", "source", "tap"),
-                ("r_follower", "tap", "0"), ("c_out", "source", "out"))
+    elements = (
+        ("c_in", "src", "gate"),
+        ("r_gate", "gate", "tap"),
+        ("r_source", "source", "tap"),
+        ("r_follower", "tap", "0"),
+        ("c_out", "source", "out"),
+    )
     transistor_pins = (("q1", "vcc", "gate", "source"),)
     node_voltages = {"gate": "v_gate", "source": "v_source", "tap": "v_tap"}
     gain_bound_roles = ("r_follower",)
@@ -38,9 +44,13 @@ class JFETFollower(JFETStage):
         vdsat = req.vp * (i_d / req.idss) ** 0.5
         v_source = 0.5 * (req.supply - vdsat)  # output centred in the room left (common practice)
         r_follower = max(v_source / i_d - r_bias, 0.1 * r_bias)
-        return {"r_gate": r_gate, "r_source": r_bias, "r_follower": r_follower,
-                "c_in": coupling_capacitor(r_gate + req.source_impedance, req.f_low),
-                "c_out": coupling_capacitor(req.load_impedance + 1.0 / gm, req.f_low)}
+        return {
+            "r_gate": r_gate,
+            "r_source": r_bias,
+            "r_follower": r_follower,
+            "c_in": coupling_capacitor(r_gate + req.source_impedance, req.f_low),
+            "c_out": coupling_capacitor(req.load_impedance + 1.0 / gm, req.f_low),
+        }
 
     def _r_bias(self, p: Parts) -> np.ndarray:
         return p["r_source"]
@@ -57,8 +67,15 @@ class JFETFollower(JFETStage):
     def _nodes(self) -> tuple[str, ...]:
         return ("in", "gate", "source", "tap", "out")
 
-    def _stage_network(self, net: physics.Network, p: Parts, ss: list[dict[str, np.ndarray]], ac: bool,
-                       rail: str | None, device_caps: bool) -> None:
+    def _stage_network(
+        self,
+        net: physics.Network,
+        p: Parts,
+        ss: list[dict[str, np.ndarray]],
+        ac: bool,
+        rail: str | None,
+        device_caps: bool,
+    ) -> None:
         net.resistor("gate", "tap", p["r_gate"])
         net.jfet("gate", rail, "source", ss[0], device_caps)
         net.resistor("source", "tap", p["r_source"])
@@ -67,8 +84,9 @@ class JFETFollower(JFETStage):
     def _r_out_dc(self, p: Parts) -> np.ndarray:
         return p["r_source"] + p["r_follower"]
 
-    def _limits(self, p: Parts, c: Conditions, op: dict[str, np.ndarray],
-                r_ac: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def _limits(
+        self, p: Parts, c: Conditions, op: dict[str, np.ndarray], r_ac: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
         # the source rises until the channel leaves saturation, falls toward cutoff (square_law_clip)
         di_sat = np.maximum(op["vds"] - op["vdsat"], 0.0) / r_ac
         clip = square_law_clip(op["id"], op["vdsat"], r_ac, r_ac, di_sat)

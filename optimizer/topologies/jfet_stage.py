@@ -11,6 +11,7 @@ Vgs = Ig*r_gate - Id*R_bias, with Ig the gate leakage flowing out of the gate. W
 overdrive x = Vgs - VTO this is the quadratic R_bias*BETA*k*x^2 + x - a = 0 (a = Ig*r_gate -
 VTO, k = 1 + LAMBDA*Vds), solved in closed form and iterated on k (Vds falls with Id).
 """
+
 from __future__ import annotations
 
 import math
@@ -27,8 +28,9 @@ BIAS_ITERATIONS = 6  # fixed-point steps on the channel-length factor k = 1 + LA
 STATIC_ITERATIONS = 12  # Newton steps per sample of the static (swing, distortion) solve
 
 
-def drain_current(beta: np.ndarray, vto: np.ndarray, lam: float, vgs: np.ndarray,
-                  vds: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def drain_current(
+    beta: np.ndarray, vto: np.ndarray, lam: float, vgs: np.ndarray, vds: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """SPICE level-1 drain current (A) and its gm, gds (S) at Vgs, Vds (V; Vds >= 0)."""
     x = np.maximum(vgs - vto, 0.0)
     vds = np.maximum(vds, 0.0)
@@ -41,8 +43,9 @@ def drain_current(beta: np.ndarray, vto: np.ndarray, lam: float, vgs: np.ndarray
     return i, gm, gds
 
 
-def self_bias(a: np.ndarray, r_bias: np.ndarray, r_total: np.ndarray, supply: np.ndarray,
-              beta: np.ndarray, lam: float) -> dict[str, np.ndarray]:
+def self_bias(
+    a: np.ndarray, r_bias: np.ndarray, r_total: np.ndarray, supply: np.ndarray, beta: np.ndarray, lam: float
+) -> dict[str, np.ndarray]:
     """Saturation operating point of Vgs = a + VTO - Id*r_bias, Vds = supply - Id*r_total:
     the overdrive x (V), id (A), vds (V). a = Vg - VTO (V); a <= 0 is a pinched-off part (Id 0)."""
     a = np.maximum(a, 0.0)
@@ -83,8 +86,9 @@ def _current(i_d: np.ndarray, x: np.ndarray, r_degeneration: np.ndarray, v: np.n
     return k_beta * u * u - i_d
 
 
-def square_law_clip(i_d: np.ndarray, x: np.ndarray, r_degeneration: np.ndarray, r_out: np.ndarray,
-                    di_sat: np.ndarray) -> np.ndarray:
+def square_law_clip(
+    i_d: np.ndarray, x: np.ndarray, r_degeneration: np.ndarray, r_out: np.ndarray, di_sat: np.ndarray
+) -> np.ndarray:
     """clip_vpp (V) of a degenerated square-law stage: the output's peak-to-peak at the gate
     drive where one side clips, the cutoff side when the incremental gain has halved
     (:func:`cutoff_drop`), the other at the triode edge (a current rise of di_sat, A); the
@@ -129,29 +133,46 @@ class JFETStage(StageModel):
         """Vds above the saturation edge Vgs - VTO and the active margin (V)."""
         return op["vds"] - op["vdsat"] - physics.ACTIVE_MARGIN
 
-    def _bias(self, p: Parts, device: JFET, c: Conditions, beta: np.ndarray, nvt: float,
-              i_s: float) -> Bias:
+    def _bias(self, p: Parts, device: JFET, c: Conditions, beta: np.ndarray, nvt: float, i_s: float) -> Bias:
         # beta here is the shared flow's spread variable: the part's IDSS/VP position u
         k_beta, vto = device.params(beta, c.temperature)
         ig = device.gate_leakage(c.temperature) + 0.0 * k_beta
         vdd = np.broadcast_to(np.asarray(c.supply, dtype=float), k_beta.shape)
         r_ground = self._r_ground(p)
-        q = self_bias(ig * p["r_gate"] - vto, self._r_bias(p), r_ground + self._r_rail(p), vdd, k_beta,
-                      device.LAMBDA)
+        q = self_bias(ig * p["r_gate"] - vto, self._r_bias(p), r_ground + self._r_rail(p), vdd, k_beta, device.LAMBDA)
         i_d, x, vds = q["id"], q["x"], q["vds"]
         v_source = i_d * r_ground
         v_gate = self._gate_return(p, i_d) + ig * p["r_gate"]
         vgs = v_gate - v_source
         k = 1.0 + device.LAMBDA * np.maximum(vds, 0.0)
         flicker = device.KF * np.abs(i_d) ** device.AF
-        ss = {"gm": 2.0 * k_beta * x * k, "gds": device.LAMBDA * k_beta * x * x,
-              "cgs": _junction_capacitance(device.CGS, vgs), "cgd": _junction_capacitance(device.CGD, vgs - vds),
-              "ig": ig, "id": i_d, "flicker": flicker, "x": x}
-        op = {"v_gate": v_gate, "v_source": v_source, "v_drain": v_source + vds, "id": i_d, "ic": i_d,
-              "ig": ig, "vgs": vgs, "vds": vds, "vdsat": x, "v_emitter": v_source,
-              "beta_jfet": k_beta, "vto": vto,
-              "active": (vds > x + physics.ACTIVE_MARGIN) & (x > 0) & np.isfinite(i_d),
-              "supply_current": i_d, "q_power": vds * i_d}
+        ss = {
+            "gm": 2.0 * k_beta * x * k,
+            "gds": device.LAMBDA * k_beta * x * x,
+            "cgs": _junction_capacitance(device.CGS, vgs),
+            "cgd": _junction_capacitance(device.CGD, vgs - vds),
+            "ig": ig,
+            "id": i_d,
+            "flicker": flicker,
+            "x": x,
+        }
+        op = {
+            "v_gate": v_gate,
+            "v_source": v_source,
+            "v_drain": v_source + vds,
+            "id": i_d,
+            "ic": i_d,
+            "ig": ig,
+            "vgs": vgs,
+            "vds": vds,
+            "vdsat": x,
+            "v_emitter": v_source,
+            "beta_jfet": k_beta,
+            "vto": vto,
+            "active": (vds > x + physics.ACTIVE_MARGIN) & (x > 0) & np.isfinite(i_d),
+            "supply_current": i_d,
+            "q_power": vds * i_d,
+        }
         op.update(self._extra_op(p, i_d))
         return Bias(op, [ss])
 
@@ -162,8 +183,16 @@ class JFETStage(StageModel):
         return op[f"v_{self.output_node}"]
 
     # ---- mid-band ----------------------------------------------------------------------
-    def _solve_mid(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], r_source: np.ndarray | None,
-                   load: bool, rhs: dict[str, np.ndarray], want: list[str]) -> dict[str, np.ndarray]:
+    def _solve_mid(
+        self,
+        p: Parts,
+        c: Conditions,
+        ss: list[dict[str, np.ndarray]],
+        r_source: np.ndarray | None,
+        load: bool,
+        rhs: dict[str, np.ndarray],
+        want: list[str],
+    ) -> dict[str, np.ndarray]:
         return self._network(p, c, ss, False, r_source, load).solve(rhs, want)
 
     def _midband(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
@@ -178,11 +207,17 @@ class JFETStage(StageModel):
         ss = b.small_signal
         one = np.ones_like(r_source)
         s = np.array(2j * np.pi * math.sqrt(c.band[0] * c.band[1]))
-        h = self._network(p, c, ss, False, r_source, True, device_caps=True).at(s).solve(
-            {"in": 1.0 / r_source}, ["out"])["out"]
+        h = (
+            self._network(p, c, ss, False, r_source, True, device_caps=True)
+            .at(s)
+            .solve({"in": 1.0 / r_source}, ["out"])["out"]
+        )
         z_in = self._network(p, c, ss, False, None, True, device_caps=True).at(s).solve({"gate": one}, ["gate"])["gate"]
-        z_out = self._network(p, c, ss, False, r_source, False, device_caps=True).at(s).solve(
-            {self.output_node: one}, [self.output_node])[self.output_node]
+        z_out = (
+            self._network(p, c, ss, False, r_source, False, device_caps=True)
+            .at(s)
+            .solve({self.output_node: one}, [self.output_node])[self.output_node]
+        )
         v = self._solve_mid(p, c, ss, r_source, True, {"in": 1.0 / r_source}, ["out", "gate", "source"])
         # the channel's own current (d -> s) to the load: the transimpedance the distortion current sees
         z_ds = self._solve_mid(p, c, ss, r_source, True, self._channel_rhs(one), ["out"])["out"]
@@ -190,9 +225,12 @@ class JFETStage(StageModel):
         suppression = ss[0]["gm"] * np.abs(z_ds) * vgs_per_out
         # thd_small_signal's v_x/(4 NF VT) is the square law's v_gs/(4 x): v_x scaled by NF*VT/x (NF = 1)
         nvt = float(thermal_voltage(c.temperature))
-        return {"gain": np.copysign(np.abs(h), h.real), "input_impedance": np.abs(z_in),
-                "output_impedance": np.abs(z_out),
-                "hd2_terms": [(vgs_per_out * nvt / ss[0]["x"], suppression, self._early_u(p, c, ss), 1.0)]}
+        return {
+            "gain": np.copysign(np.abs(h), h.real),
+            "input_impedance": np.abs(z_in),
+            "output_impedance": np.abs(z_out),
+            "hd2_terms": [(vgs_per_out * nvt / ss[0]["x"], suppression, self._early_u(p, c, ss), 1.0)],
+        }
 
     def _channel_rhs(self, one: np.ndarray) -> dict[str, np.ndarray]:
         """Injections (A) of a unit current through the channel, drain to source."""
@@ -206,8 +244,15 @@ class JFETStage(StageModel):
         """The network's nodes: 'in', 'gate', 'source', the stage's own, 'out' last."""
         raise NotImplementedError
 
-    def _stage_network(self, net: physics.Network, p: Parts, ss: list[dict[str, np.ndarray]], ac: bool,
-                       rail: str | None, device_caps: bool) -> None:
+    def _stage_network(
+        self,
+        net: physics.Network,
+        p: Parts,
+        ss: list[dict[str, np.ndarray]],
+        ac: bool,
+        rail: str | None,
+        device_caps: bool,
+    ) -> None:
         """The gate return, the JFET (its capacitances with ``device_caps``) and the source and
         drain networks (``rail``: see _new_network)."""
         raise NotImplementedError
@@ -216,14 +261,23 @@ class JFETStage(StageModel):
         """Resistance (ohm) from the output node (the one c_out couples) to AC ground, the JFET aside."""
         raise NotImplementedError
 
-    def _limits(self, p: Parts, c: Conditions, op: dict[str, np.ndarray],
-                r_ac: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def _limits(
+        self, p: Parts, c: Conditions, op: dict[str, np.ndarray], r_ac: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
         """clip_vpp (V) with the output node's AC load r_ac (ohm), and the largest drain-gate voltage (V)."""
         raise NotImplementedError
 
-    def _network(self, p: Parts, c: Conditions, ss: list[dict[str, np.ndarray]], ac: bool,
-                 r_source: np.ndarray | None, load: bool, supply: bool = False,
-                 device_caps: bool | None = None) -> physics.Network:
+    def _network(
+        self,
+        p: Parts,
+        c: Conditions,
+        ss: list[dict[str, np.ndarray]],
+        ac: bool,
+        r_source: np.ndarray | None,
+        load: bool,
+        supply: bool = False,
+        device_caps: bool | None = None,
+    ) -> physics.Network:
         """As StageModel._network; ``device_caps`` True with ac False: coupling and bypass
         capacitors short, the JFET's Cgs and Cgd in place (the mid-band of a megohm stage)."""
         net, rail = self._new_network(self._nodes(), p, c, ac, supply)
@@ -235,14 +289,16 @@ class JFETStage(StageModel):
         add_load(net, c, ac, load)
         return net
 
-    def _swing(self, p: Parts, device: JFET, c: Conditions, b: Bias,
-               mid: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    def _swing(
+        self, p: Parts, device: JFET, c: Conditions, b: Bias, mid: dict[str, np.ndarray]
+    ) -> tuple[np.ndarray, np.ndarray]:
         r_ac = physics.parallel(self._r_out_dc(p), np.full_like(b.op["id"], c.load_impedance))
         return self._limits(p, c, b.op, r_ac)
 
     # ---- static (swing and distortion) -------------------------------------------------
-    def static_output(self, p: Parts, device: JFET, c: Conditions, b: Bias, nvt: float,
-                      i_s: float, beta: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    def static_output(
+        self, p: Parts, device: JFET, c: Conditions, b: Bias, nvt: float, i_s: float, beta: np.ndarray
+    ) -> Callable[[np.ndarray], np.ndarray]:
         """Load voltage change (V) against source voltage (V): the level-1 channel (saturation
         and triode) solved at every sample against the stage's linear network, capacitors
         holding their DC: node changes are linear in the source voltage and in the channel
@@ -267,6 +323,7 @@ class JFETStage(StageModel):
                 s = col["source"][0] * vs + col["source"][1] * di
                 d = col["drain"][0] * vs + col["drain"][1] * di
                 return vgs_q + g - s, vds_q + d - s
+
             di = np.zeros(np.broadcast_shapes(vs.shape, i_q.shape))
             dg_di = col["gate"][1] - col["source"][1]
             dd_di = col["drain"][1] - col["source"][1]
@@ -277,6 +334,7 @@ class JFETStage(StageModel):
                 slope = 1.0 - gm * dg_di - gds * dd_di  # >= 1: the network feeds the change back
                 di = np.maximum(di - f / slope, -i_q)
             return col["out"][0] * vs + col["out"][1] * di
+
         return out
 
     # ---- ratings -----------------------------------------------------------------------
@@ -285,9 +343,12 @@ class JFETStage(StageModel):
         see StageModel._ratings) and the gate resistor's."""
         op = b.op
         i_d = op["id"]
-        return {"p_r_gate": (op["ig"] * p["r_gate"]) ** 2 / p["r_gate"],
-                "p_r_source": i_d ** 2 * p["r_source"],
-                "v_c_in": np.full_like(i_d, c.rail_max), "v_c_out": np.full_like(i_d, c.rail_max)}
+        return {
+            "p_r_gate": (op["ig"] * p["r_gate"]) ** 2 / p["r_gate"],
+            "p_r_source": i_d**2 * p["r_source"],
+            "v_c_in": np.full_like(i_d, c.rail_max),
+            "v_c_out": np.full_like(i_d, c.rail_max),
+        }
 
 
 def _junction_capacitance(c0: float, v: np.ndarray) -> np.ndarray:
@@ -298,4 +359,3 @@ def _junction_capacitance(c0: float, v: np.ndarray) -> np.ndarray:
     lin = c0 / (1.0 - fc) ** (1.0 + JFET_M) * (1.0 - fc * (1.0 + JFET_M) + JFET_M * v / JFET_PB)
     rev = c0 / (1.0 - np.minimum(v, fc * JFET_PB) / JFET_PB) ** JFET_M
     return np.where(v < fc * JFET_PB, rev, lin)
-
