@@ -10,6 +10,10 @@ designs (spice_designs.jfet_check_designs) follow the bipolar ones; their "ic" i
 
 simulates only that topology's designs and writes them as their own section at the end of the
 table (replacing an earlier section of that topology), leaving the other rows as they are.
+
+    .venv/bin/python benchmarks/spice_agreement.py --direct
+
+does the same for the direct-coupled inputs on split supplies (spice_designs.direct_coupled_designs).
 """
 
 from __future__ import annotations
@@ -21,7 +25,13 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "tests"))
 
 from spice_agreement import agreement_rows  # noqa: E402
-from spice_designs import check_designs, jfet_check_designs, later_polarity_designs, polarity_designs  # noqa: E402
+from spice_designs import (  # noqa: E402
+    check_designs,
+    direct_coupled_designs,
+    jfet_check_designs,
+    later_polarity_designs,
+    polarity_designs,
+)
 
 
 def _fmt(value: float | None) -> str:
@@ -31,8 +41,14 @@ def _fmt(value: float | None) -> str:
 def all_designs() -> list:
     """Every check design: the bipolar stages', the JFET stages', then the PNP, negative-rail and
     split-supply versions of two bipolar stages, and the PNP, negative-rail (and the followers'
-    split-supply) versions of the followers and the feedback pair."""
-    return check_designs() + jfet_check_designs() + polarity_designs() + later_polarity_designs()
+    split-supply) versions of the followers and the feedback pair, and the direct-coupled inputs."""
+    return (
+        check_designs()
+        + jfet_check_designs()
+        + polarity_designs()
+        + later_polarity_designs()
+        + direct_coupled_designs()
+    )
 
 
 def _row(r: dict) -> str:
@@ -43,18 +59,19 @@ def _row(r: dict) -> str:
     )
 
 
-def topology_section(topology: str) -> int:
-    """Simulate ``topology``'s designs only; their rows replace its section of the table."""
-    rows = [row for design in all_designs() if design.topology == topology for row in agreement_rows(design)]
+def topology_section(title: str, designs: list, option: str) -> int:
+    """Simulate ``designs`` only; their rows replace the table's section ``title`` (written by
+    the benchmark's ``option``)."""
+    rows = [row for design in designs for row in agreement_rows(design)]
     out = ROOT / "benchmarks" / "results" / "spice_agreement.md"
-    marker = f"\n## {topology}\n"
+    marker = f"\n## {title}\n"
     text = out.read_text(encoding="utf-8")
     text = text.split(marker)[0].rstrip("\n") + "\n"
     failed = [r for r in rows if not r["within"]]
     lines = [
         marker.strip(),
         "",
-        f"Produced by `benchmarks/spice_agreement.py --topology {topology}`.",
+        f"Produced by `benchmarks/spice_agreement.py {option}`.",
         "",
         "| design | metric | model | ngspice | error | tolerance | within | hand | hand error |",
         "| --- | --- | --- | --- | --- | --- | --- | --- | --- |",
@@ -69,7 +86,12 @@ def topology_section(topology: str) -> int:
 
 def main() -> int:
     if "--topology" in sys.argv:
-        return topology_section(sys.argv[sys.argv.index("--topology") + 1])
+        topology = sys.argv[sys.argv.index("--topology") + 1]
+        return topology_section(
+            topology, [d for d in all_designs() if d.topology == topology], f"--topology {topology}"
+        )
+    if "--direct" in sys.argv:
+        return topology_section("direct-coupled inputs", direct_coupled_designs(), "--direct")
     rows = [row for design in all_designs() for row in agreement_rows(design)]
     out = ROOT / "benchmarks" / "results" / "spice_agreement.md"
     lines = [

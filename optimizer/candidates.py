@@ -97,6 +97,8 @@ def assess(
     device = device_from_row(catalog.transistor(device_id))
     conditions = scoring.conditions_from_spec(spec)
     arrays = {role: np.array([float(v)]) for role, v in parts.items() if float(v) > 0 or role in topology.resistors}
+    if topology.couples_directly(spec.supply_arrangement, spec.input_coupling) and "c_in" not in arrays:
+        arrays["c_in"] = np.zeros(1)  # a direct-coupled input: the source wired to the base
     decoupled = "r_decouple" in arrays
     missing_caps = [c for c in topology.capacitors + (("c_decouple",) if decoupled else ()) if c not in arrays]
     if missing_caps:
@@ -108,6 +110,7 @@ def assess(
         )
         tolerances = catalog.parts_for("capacitor", allowed)["tolerance"].to_numpy(dtype=float)
         held = {"c_decouple": arrays.get("c_decouple", np.array([allowed[-1]]))} if decoupled else {}
+        held.update({"c_in": arrays["c_in"]} if "c_in" in arrays and arrays["c_in"][0] == 0 else {})
         stage = {r: arrays[r] for r in topology.resistors + topology.supply_parts if r in arrays}
         sized = size_capacitors(
             topology,

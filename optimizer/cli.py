@@ -36,7 +36,7 @@ SPEC_HELP = "path to a spec file (YAML or JSON), or the name of a bundled exampl
 def _cmd_check(args: argparse.Namespace) -> int:
     from optimizer.catalog import load_catalog
     from optimizer.spec import describe_spec, load_spec, spec_to_dict
-    from optimizer.validation import eligibility_text, validate_spec
+    from optimizer.validation import eligibility_text, input_coupling_text, validate_spec
 
     spec = load_spec(args.spec)
     verdicts = validate_spec(spec, load_catalog(spec.parts.catalog))
@@ -46,6 +46,9 @@ def _cmd_check(args: argparse.Namespace) -> int:
         print(f"{args.spec}: valid")
         print(describe_spec(spec))
         print(f"  eligible          {eligibility_text(spec, verdicts)}")
+        coupling = input_coupling_text(spec, verdicts)
+        if coupling:
+            print(f"  input coupling    {coupling}")
     return EXIT_OK
 
 

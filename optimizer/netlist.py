@@ -122,7 +122,9 @@ def _check_parts(topology: str, parts: Mapping[str, float], split: bool = False)
             )
             continue
         value = parts[role]
-        may_be_zero = role in get_topology(topology).optional_parts
+        stage = get_topology(topology)
+        # c_in may be left out (a wire) where the stage's base sits at ground: a direct-coupled input
+        may_be_zero = role in stage.optional_parts or (split and stage.direct_input and role == "c_in")
         floor_ok = value >= 0 if may_be_zero else value > 0
         if not (isinstance(value, (int, float)) and math.isfinite(value) and floor_ok):
             bound = ">= 0" if may_be_zero else "> 0"

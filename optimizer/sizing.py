@@ -64,7 +64,8 @@ def size_capacitors(
 ) -> dict[str, np.ndarray]:
     """Capacitor values (F) for every candidate, from the sorted ``allowed`` values.
 
-    ``resistors`` maps role -> array over candidates. The target defaults to the low
+    ``resistors`` maps role -> array over candidates (a capacitor given there is held at its
+    value, not sized: c_in 0 of a direct-coupled input). The target defaults to the low
     edge of ``conditions.band``. Where even the largest values miss the target, the
     largest are returned (the scoring then reports the low corner as violated). Few
     batches of vectorised model calls: the corner probes, the common factors, one step-down per capacitor.
@@ -73,10 +74,11 @@ def size_capacitors(
     allowed = np.sort(np.asarray(allowed, dtype=float))
     size = np.broadcast(*resistors.values()).shape
     resistors = {r: np.broadcast_to(np.asarray(v, dtype=float), size) for r, v in resistors.items()}
-    large = {c: np.full(size, _LARGE_CAPACITANCE) for c in topology.capacitors}
+    caps = tuple(c for c in topology.capacitors if c not in resistors)
+    large = {c: np.full(size, _LARGE_CAPACITANCE) for c in caps}
 
-    corner_constant = {c: np.full(size, np.nan) for c in topology.capacitors}
-    f_smallest = {c: np.full(size, np.inf) for c in topology.capacitors}  # f_low with the smallest probe (Hz)
+    corner_constant = {c: np.full(size, np.nan) for c in caps}
+    f_smallest = {c: np.full(size, np.inf) for c in caps}  # f_low with the smallest probe (Hz)
     for value in _PROBE_VALUES:  # each capacitor's first probe whose corner lies inside the sweep
         pending = {c: np.flatnonzero(np.isnan(k)) for c, k in corner_constant.items()}
         pending = {c: rows for c, rows in pending.items() if rows.size}
@@ -109,9 +111,7 @@ def size_capacitors(
         k[unmoved] = 0.0
     corner_constant = {c: np.nan_to_num(k, nan=allowed[-1] * target) for c, k in corner_constant.items()}
 
-    scaled = [
-        {c: _round_up(m * corner_constant[c] / target, allowed) for c in topology.capacitors} for m in _SCALE_GRID
-    ]
+    scaled = [{c: _round_up(m * corner_constant[c] / target, allowed) for c in caps} for m in _SCALE_GRID]
     f_scaled = _stacked_f_low(
         topology, [{**resistors, **{c: allowed[i] for c, i in idx.items()}} for idx in scaled], device, conditions
     )
@@ -120,13 +120,12 @@ def size_capacitors(
     first = np.where(found, np.argmax(meets, axis=0), 0)
     best = {
         c: np.where(found, np.stack([idx[c] for idx in scaled])[first, np.arange(first.size)], allowed.size - 1)
-        for c in topology.capacitors
+        for c in caps
     }
 
     # One step down each capacitor in turn, where the target still holds with the earlier steps
     # taken: every subset of capacitors stepped down is solved in one call, then the turns are
     # played on the results (the same outcome as one call per capacitor).
-    caps = topology.capacitors
     subsets = range(1, 1 << len(caps))  # bit j: capacitor j one value lower
     lower = {c: np.maximum(best[c] - 1, 0) for c in caps}
     f_sub = _stacked_f_low(

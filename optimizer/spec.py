@@ -665,6 +665,13 @@ class Spec(_Section):
     )
     gain: Gain
     source_impedance: _quantity("ohm", allow_zero=True, example="600") = 0.0
+    input_coupling: Literal["capacitor", "direct"] = Field(
+        "capacitor",
+        description="capacitor: the source reaches the stage through c_in (its DC is blocked); direct: the "
+        "source is ground-referenced and passes DC (e.g. a DC-coupled sensor or a preceding stage at 0 V), "
+        "so on a split supply a stage whose base sits at ground takes it without c_in (the source's "
+        "resistance then joins the bias path); other stages keep c_in and `stagefit check` says why",
+    )
     load_impedance: Ohm
     load_capacitance: Farad = 0.0
     band: tuple[Hertz, Hertz] = Field(description="[low, high] Hz")

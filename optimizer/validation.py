@@ -105,6 +105,34 @@ def eligibility_text(spec: Spec, verdicts: list[Verdict]) -> str:
     )
 
 
+def input_coupling_text(spec: Spec, verdicts: list[Verdict]) -> str | None:
+    """One line on a source that passes DC (``input_coupling: direct``): which eligible
+    topologies take it without c_in and why each other keeps its capacitor; None when the spec
+    keeps the default coupling capacitor."""
+    if spec.input_coupling != "direct":
+        return None
+    eligible = [get_topology(v.topology) for v in verdicts if v.eligible]
+    direct = [t.name for t in eligible if t.couples_directly(spec.supply_arrangement, spec.input_coupling)]
+    if spec.supply_arrangement != "split":
+        return (
+            f"direct: every topology keeps c_in: on a {spec.supply_arrangement} supply the input sits at "
+            "the bias divider's DC, not at 0 V (a split supply lets a ground-referenced base take the source "
+            "directly)"
+        )
+    kept = [f"{t.name} keeps c_in ({t.direct_input_note})" for t in eligible if t.name not in direct]
+    return "direct: " + "; ".join(
+        (
+            [
+                f"{', '.join(direct)} take the source without c_in (the base sits at 0 V; the source's DC "
+                "resistance joins the bias path and carries the base current)"
+            ]
+            if direct
+            else []
+        )
+        + kept
+    )
+
+
 def eligible_topologies(spec: Spec, catalog: Catalog) -> tuple[str, ...]:
     """The spec's topologies that can meet it, in the spec's order."""
     return tuple(v.topology for v in eligibility(spec, catalog) if v.eligible)

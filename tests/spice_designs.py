@@ -339,6 +339,30 @@ def split_hand_design(
     return parts, -rac / re
 
 
+def split_stage(
+    hfe: float, v_pos: float, v_neg: float, pnp: bool, rs: float, rl: float, cl: float = 0.0
+) -> tuple[Device, Conditions, str]:
+    """The check device (hFE ``hfe``) and the conditions of a stage drawn as NPN on the rails
+    v_pos/v_neg (V) with source ``rs``, load ``rl`` (ohm) and load capacitance ``cl`` (F), and the
+    rails' label ("+12/-3V"). ``pnp``: the PNP stage, its mirror image (the emitter side on the
+    positive rail, the rails negated)."""
+    device = check_device(hfe)
+    span = v_pos - v_neg
+    if pnp:
+        device = replace(device, id=device.id.replace("npn", "pnp"), polarity="pnp")
+        v_pos, v_neg = -v_neg, -v_pos
+    conditions = Conditions(
+        supply=span,
+        source_impedance=float(rs),
+        load_impedance=float(rl),
+        band=(20.0, 20000.0),
+        temperature=27.0,
+        load_capacitance=cl,
+        below_ground=-v_neg / span,
+    )
+    return device, conditions, f"+{v_pos:g}/{v_neg:g}V"
+
+
 def polarity_designs() -> list[CheckDesign]:
     """Designs of the two POLARITY_TOPOLOGIES in each arrangement, 8 per topology and kind:
     PNP (the positive-rail designs of _CASES, on a positive rail and on a negative one in
@@ -362,22 +386,10 @@ def polarity_designs() -> list[CheckDesign]:
         for i, (v_pos, v_neg_bypassed, v_neg_unbypassed, gain, ic, hfe, rs, rl) in enumerate(_SPLIT_CASES):
             v_neg = v_neg_unbypassed if topology == "divider_ce" else v_neg_bypassed
             parts, hand_gain = split_hand_design(topology, v_pos, v_neg, gain, ic, hfe, rs, rl)
-            device = check_device(hfe)
-            span = v_pos - v_neg
-            if i % 2:  # the PNP stage is the mirror image: its emitter side is the positive rail
-                device = replace(device, id=device.id.replace("npn", "pnp"), polarity="pnp")
-                v_pos, v_neg = -v_neg, -v_pos
-            conditions = Conditions(
-                supply=span,
-                source_impedance=float(rs),
-                load_impedance=float(rl),
-                band=(20.0, 20000.0),
-                temperature=27.0,
-                below_ground=-v_neg / span,
-            )
+            device, conditions, rails = split_stage(hfe, v_pos, v_neg, bool(i % 2), rs, rl)
             designs.append(
                 CheckDesign(
-                    f"{topology}-split+{v_pos:g}/{v_neg:g}V-hfe{hfe}-{device.polarity}",
+                    f"{topology}-split{rails}-hfe{hfe}-{device.polarity}",
                     topology,
                     parts,
                     device,
@@ -433,4 +445,62 @@ def later_polarity_designs() -> list[CheckDesign]:
                         conditions=replace(c, below_ground=below),
                     )
                 )
+    return designs
+
+
+# ---- direct-coupled inputs on a split supply ------------------------------------------------
+# A ground-referenced source that passes DC (spec input_coupling: direct) wired to the base of a
+# stage whose base sits at ground on its split supply: no c_in, the source's resistance in the
+# base's DC path beside r_bottom (the base current through it shifts the bias). divider_ce,
+# divider_ce_split and emitter_follower on +-12 V and +-15 V, NPN and PNP in turn; divider_ce
+# (its r_emitter the whole emitter resistance, so a gain above one needs a small negative rail)
+# on +12/-2.5 V and +15/-3 V.
+DIRECT_TOPOLOGIES = ("divider_ce", "divider_ce_split", "emitter_follower")
+# (positive rail V, divider_ce's negative rail V, |gain| for divider_ce_split, Ic A, hFE, source
+# ohm, load ohm, load capacitance F: a cable, which brings the follower's f_high into the sweep)
+_DIRECT_CASES = [
+    (12.0, -2.5, 10.0, 1.0e-3, 200, 600, 47e3, 1e-9),
+    (15.0, -3.0, 15.0, 0.5e-3, 300, 2.2e3, 100e3, 470e-12),
+    (12.0, -2.5, 6.0, 2.0e-3, 100, 10e3, 22e3, 2.2e-9),
+    (15.0, -3.0, 20.0, 1.0e-3, 400, 1e3, 47e3, 1e-9),
+]
+
+
+def direct_coupled_designs() -> list[CheckDesign]:
+    """4 designs per DIRECT_TOPOLOGIES stage on a split supply with c_in left out (0, the source
+    wired to the base), NPN and PNP in turn (a PNP's rails mirrored): 12 in all. The
+    common-emitter stages by the split hand method, the follower by the hand method moved to the
+    split supply by the search's seed rule (synthesis.on_split_supply)."""
+    designs = []
+    for topology in DIRECT_TOPOLOGIES:
+        for i, (v_pos, v_neg_ce, gain, ic, hfe, rs, rl, cl) in enumerate(_DIRECT_CASES):
+            v_neg = v_neg_ce if topology == "divider_ce" else -v_pos
+            span = v_pos - v_neg
+            if topology == "emitter_follower":
+                req = HandRequirements(
+                    supply=span,
+                    gain=1.0,
+                    load_impedance=rl,
+                    source_impedance=rs,
+                    f_low=20.0,
+                    collector_current=ic,
+                    hfe=hfe,
+                )
+                parts = on_split_supply(get_topology(topology).hand_design(req), req, -v_neg / span)
+                assert parts is not None
+                hand_gain = 1.0
+            else:
+                parts, hand_gain = split_hand_design(topology, v_pos, v_neg, gain, ic, hfe, rs, rl)
+            device, conditions, rails = split_stage(hfe, v_pos, v_neg, bool(i % 2), rs, rl, cl)
+            designs.append(
+                CheckDesign(
+                    f"{topology}-direct{rails}-hfe{hfe}-rs{rs:g}-{device.polarity}",
+                    topology,
+                    {**parts, "c_in": 0.0},
+                    device,
+                    conditions,
+                    hand_gain=hand_gain,
+                    hand_ic=ic,
+                )
+            )
     return designs

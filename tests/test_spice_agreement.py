@@ -22,7 +22,7 @@ import pytest
 
 from optimizer.topologies import get_topology
 from spice_agreement import agreement_rows, outside_tolerance
-from spice_designs import check_designs, later_polarity_designs, polarity_designs
+from spice_designs import check_designs, direct_coupled_designs, later_polarity_designs, polarity_designs
 from spice_harness import spice_operating_point
 
 pytestmark = pytest.mark.skipif(
@@ -36,7 +36,11 @@ POLARITY_DESIGNS = polarity_designs()
 LATER_POLARITY_DESIGNS = later_polarity_designs()
 
 
-ALL_DESIGNS = DESIGNS + POLARITY_DESIGNS + LATER_POLARITY_DESIGNS
+#  Direct-coupled inputs on split supplies: no c_in, the source in the base's DC path (see below).
+DIRECT_DESIGNS = direct_coupled_designs()
+
+
+ALL_DESIGNS = DESIGNS + POLARITY_DESIGNS + LATER_POLARITY_DESIGNS + DIRECT_DESIGNS
 
 
 @pytest.mark.parametrize("design", ALL_DESIGNS, ids=[d.name for d in ALL_DESIGNS])
@@ -67,7 +71,7 @@ def test_hand_method_is_further_off_than_the_model() -> None:
 # run the same checks on 20 designs of their own (spice_designs.later_polarity_designs).
 
 
-NODE_DESIGNS = POLARITY_DESIGNS[::6] + LATER_POLARITY_DESIGNS
+NODE_DESIGNS = POLARITY_DESIGNS[::6] + LATER_POLARITY_DESIGNS + DIRECT_DESIGNS
 
 
 @pytest.mark.parametrize("design", NODE_DESIGNS, ids=[d.name for d in NODE_DESIGNS])
@@ -85,3 +89,30 @@ def test_node_voltages_are_true_volts_with_their_sign(design) -> None:
     )
     for key in [k for k in ("v_base", "v_collector", "v_emitter") if k in simulated]:  # a follower has no collector
         assert float(op[key][0]) == pytest.approx(simulated[key], abs=max(0.02, 0.01 * design.conditions.supply)), key
+
+
+# ---- direct-coupled inputs on split supplies -------------------------------------------------
+# A ground-referenced source wired to the base (c_in 0): 12 designs of divider_ce,
+# divider_ce_split and emitter_follower on +-12/+-15 V (divider_ce on +12/-2.5 and +15/-3 V),
+# NPN and PNP, run through every check above (spice_designs.direct_coupled_designs). Here: the
+# source's resistance really is in the bias path. ngspice (Debian) is the reference.
+
+
+@pytest.mark.parametrize("index", [2, 10], ids=["divider_ce-rs10k", "emitter_follower-rs10k"])
+def test_direct_coupled_bias_carries_the_base_current_through_the_source(index) -> None:
+    design = DIRECT_DESIGNS[index]
+    topology = get_topology(design.topology)
+    parts = {k: np.array([v]) for k, v in design.parts.items()}
+    model_card = {**design.device.spice_model(), "polarity": design.device.polarity}
+    simulated = spice_operating_point(design.topology, design.parts, model_card, design.conditions)
+    direct = topology.operating_point(parts, design.device, design.conditions)
+    # the same parts with a coupling capacitor: the source's DC path gone, the base current all in r_bottom
+    coupled = topology.operating_point({**parts, "c_in": np.array([1e-6])}, design.device, design.conditions)
+    base_shift = abs(float(coupled["v_base"][0]) - simulated["v_base"])
+    assert base_shift > 0.02  # V: the source's 10 k beside r_bottom moves the base visibly
+    assert float(direct["v_base"][0]) == pytest.approx(simulated["v_base"], abs=0.02 * base_shift)
+    assert float(direct["ic"][0]) == pytest.approx(simulated["ic"], rel=0.003)
+    # the DC the base draws through the source: (0 V - v_base) / R_source, by ngspice's base voltage
+    i_source = float(direct["i_source"][0])
+    sign = -1.0 if design.device.polarity == "pnp" else 1.0
+    assert i_source == pytest.approx(sign * -simulated["v_base"] / design.conditions.source_impedance, rel=0.01)

@@ -55,15 +55,25 @@ def evaluate_group(
     resistors = {r: np.where(present[r], rt.values[np.maximum(i, 0)], 0.0) for r, i in index.items()}
     n = next(iter(resistors.values())).size
     decoupled = "r_decouple" in resistors
+    direct = {"c_in": np.zeros(n)} if space.direct_input(topology_name) else {}  # the source wired to the base
     if given_caps:
-        caps = given_caps
+        caps = {**direct, **given_caps}
     elif full:
         held = {"c_decouple": np.full(n, ct.values[-1])} if decoupled else {}  # a short while the others are sized
-        caps = size_capacitors(
-            topology, {**resistors, **held}, device, conditions, ct.values, f_low_target=space.sizing_target
-        )
+        caps = {
+            **direct,
+            **size_capacitors(
+                topology,
+                {**resistors, **held, **direct},
+                device,
+                conditions,
+                ct.values,
+                f_low_target=space.sizing_target,
+            ),
+        }
     else:
         caps = {c: np.full(n, ct.values[0] if c == "c_in" else ct.values[-1]) for c in topology.capacitors}
+        caps.update(direct)
     if decoupled and "c_decouple" not in caps:
         caps["c_decouple"] = (
             size_decoupling(

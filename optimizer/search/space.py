@@ -141,6 +141,12 @@ class SearchSpace:
         wanted = {"positive": "npn", "negative": "pnp"}.get(self.spec.supply_arrangement)
         return self.spec.limits.psrr_min_db is not None and all(d.polarity == wanted for d in self.devices.values())
 
+    def direct_input(self, topology: str) -> bool:
+        """Whether ``topology``'s designs take the source without c_in (c_in 0, not searched or
+        sized): the spec's source passes DC and the stage's base sits at ground on its split
+        supply (Topology.couples_directly)."""
+        return get_topology(topology).couples_directly(self.spec.supply_arrangement, self.spec.input_coupling)
+
     @property
     def sizing_target(self) -> float:
         """Low corner (Hz) capacitors are sized for (scoring.sizing_target)."""
@@ -191,6 +197,8 @@ class SearchSpace:
             out[f"{topology}.r_decouple"] = optuna.distributions.IntDistribution(ABSENT, top)
         if self.spec.search.capacitors == "searched":
             for role in model.capacitors:
+                if role == "c_in" and self.direct_input(topology):
+                    continue  # the source is wired to the base
                 out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(0, self.capacitors.values.size - 1)
         return out
 

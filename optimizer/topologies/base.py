@@ -153,6 +153,26 @@ def _source_resistance(b: Bias, conditions: Conditions) -> np.ndarray:
     return np.maximum(np.full_like(b.op["ic"], conditions.source_impedance), physics.R_FLOOR)
 
 
+def input_reactance(c_in: np.ndarray, s: complex | np.ndarray) -> np.ndarray:
+    """Series impedance of c_in (ohm, complex) at complex frequency s (rad/s); 0 where c_in is
+    absent (0): a direct-coupled input (:attr:`Topology.direct_input`)."""
+    present = c_in > 0
+    return np.where(present, 1.0 / (s * np.where(present, c_in, 1.0)), 0.0)
+
+
+def couple_input(net: physics.Network, p: Parts, ac: bool) -> None:
+    """c_in from the source node 'in' to 'base'; a wire where c_in is absent (0, direct-coupled)."""
+    net.capacitor("in", "base", p["c_in"], ac, True)
+    if np.any(p["c_in"] == 0):
+        net.admittance("in", "base", np.where(p["c_in"] > 0, 0.0, physics.G_SHORT))
+
+
+def input_hold(p: Parts, c: Conditions, op: dict[str, np.ndarray]) -> np.ndarray:
+    """The DC (V, frame) the source's side of the base holds over a period: the base's own
+    (c_in holds it), or the signal ground's where the source is direct-coupled (c_in 0)."""
+    return np.where(p["c_in"] > 0, op["v_base"], c.below_ground * c.supply)
+
+
 def register(cls: type["Topology"]) -> type["Topology"]:
     """Add a concrete topology class to :data:`REGISTRY` (called for every subclass that sets
     ``name``; a later class of the same name replaces the earlier) and keep the registry in
@@ -192,6 +212,12 @@ class Topology(ABC):
     # r_bottom returns the base to ground
     supplies: ClassVar[tuple[str, ...]] = ("positive", "negative")
     device_kind: ClassVar[str] = "bjt"  # the kind of device the stage is built with ("bjt", "jfet")
+    # True: on a split supply the input (the base) is the bias tap r_bottom alone returns to
+    # ground, so it sits at 0 V by design and a ground-referenced source that passes DC may
+    # drive it without c_in (spec input_coupling: direct; c_in then 0, a wire)
+    direct_input: ClassVar[bool] = False
+    # why a stage without direct_input keeps c_in on a split supply (for `stagefit check`)
+    direct_input_note: ClassVar[str] = "its input does not sit at ground on a split supply"
     optional_parts: ClassVar[tuple[str, ...]] = ()  # may be 0 (absent)
     supply_parts: ClassVar[tuple[str, ...]] = SUPPLY_PARTS  # optional everywhere: absent or 0 = direct rail
     # SPICE netlist template: every resistor and capacitor as (role, node a, node b) in signal
@@ -243,6 +269,8 @@ class Topology(ABC):
                 f"topology {cls.name}: supplies from {SUPPLIES} ('split' with r_top and r_bottom) and "
                 f"polarities from {POLARITIES}; got {cls.supplies}, {cls.polarities}"
             )
+        if cls.direct_input and not ("split" in cls.supplies and "c_in" in cls.capacitors):
+            raise TypeError(f"topology {cls.name}: direct_input needs a split supply and c_in")
         bad = [r for r in roles | set(cls.optional_parts) if r[:1] not in KINDS or r[1:2] != "_"]
         if bad or not set(cls.optional_parts) <= roles:
             raise TypeError(
@@ -254,6 +282,12 @@ class Topology(ABC):
     def roles(self) -> tuple[Role, ...]:
         """Every part role of the stage, resistors then capacitors (supply decoupling not included)."""
         return tuple(Role(r, KINDS[r[0]], r in self.optional_parts) for r in self.resistors + self.capacitors)
+
+    def couples_directly(self, supply_arrangement: str, input_coupling: str) -> bool:
+        """Whether the stage takes the source without c_in: a split supply, a stage whose base
+        sits at ground (:attr:`direct_input`) and a source that passes DC (``input_coupling``
+        "direct")."""
+        return self.direct_input and supply_arrangement == "split" and input_coupling == "direct"
 
     def headroom(self, op: dict[str, np.ndarray], vce_sat: float) -> np.ndarray:
         """The least Vce of the stage's transistors above saturation and the active margin (V)."""
@@ -293,6 +327,7 @@ class Topology(ABC):
             "polarities": list(self.polarities),
             "supplies": list(self.supplies),
             "device_kind": self.device_kind,
+            "direct_input": self.direct_input,
             "gain_sign": "inverting" if self.inverting else "non-inverting",
         }
 
@@ -437,7 +472,8 @@ class StageModel(Topology):
 
         The supply decoupling parts (r_decouple, c_decouple) may be left out: then 0 (absent).
         On a split supply (``conditions``) r_top is absent (0 or left out): r_bottom alone returns
-        the base to ground."""
+        the base to ground; a stage with :attr:`direct_input` may leave c_in out (0): the source
+        is then wired to the base."""
         split = conditions is not None and arrangement(conditions.below_ground) == "split"
         if split and "split" not in self.supplies:
             raise InputError.single(
@@ -465,7 +501,12 @@ class StageModel(Topology):
         arrays = np.broadcast_arrays(*(np.atleast_1d(np.asarray(parts.get(r, 0.0), dtype=float)) for r in roles))
         out = dict(zip(roles, (a.ravel() for a in arrays)))
         for r, a in out.items():
-            optional = r in self.optional_parts or r in self.supply_parts or (split and r == "r_top")
+            optional = (
+                r in self.optional_parts
+                or r in self.supply_parts
+                or (split and r == "r_top")
+                or (split and self.direct_input and r == "c_in")
+            )
             bad = ~(a >= 0) if optional else ~(a > 0)
             if np.any(bad):
                 raise InputError.single(
@@ -513,12 +554,28 @@ class StageModel(Topology):
         self, p: Parts, device: AnyDevice, conditions: Conditions, beta: np.ndarray
     ) -> tuple[Parts, Bias, float]:
         """Bias of checked parts ``p`` with hFE ``beta`` (one value per candidate), in the frame
-        of ``conditions`` (:func:`frame_conditions`); the frame's parts (:meth:`_frame_parts`)."""
+        of ``conditions`` (:func:`frame_conditions`); the frame's parts (:meth:`_frame_parts`).
+
+        A direct-coupled input (c_in 0) adds the source's resistance to the base's DC path: it
+        returns the base to the signal ground beside r_bottom, so the bias solves with r_bottom
+        parallel to it and the base current flowing in it shifts the base (op ``i_source``, A, the
+        DC the base draws through the source, in the device's direction)."""
+        direct = p["c_in"] == 0 if self.direct_input else np.zeros(1, dtype=bool)
+        r_dc_source = max(conditions.source_impedance, physics.R_FLOOR)
+        p_dc = (
+            self._frame_parts(
+                {**p, "r_bottom": np.where(direct, physics.parallel(p["r_bottom"], r_dc_source), p["r_bottom"])},
+                conditions,
+            )
+            if np.any(direct)
+            else None
+        )
         p = self._frame_parts(p, conditions)
+        p_dc = p if p_dc is None else p_dc
         nvt = device.NF * float(thermal_voltage(conditions.temperature))
         i_s = float(saturation_current(device.IS, conditions.temperature))
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            b = self._bias(p, device, conditions, beta, nvt, i_s)
+            b = self._bias(p_dc, device, conditions, beta, nvt, i_s)
             v_local = np.broadcast_to(np.asarray(conditions.supply, dtype=float), beta.shape).copy()
             r_dec = p["r_decouple"]
             if np.any(r_dec > 0):
@@ -527,11 +584,11 @@ class StageModel(Topology):
                 # step and one secant step land on the root: three bias solves in all.
                 i0 = b.op["supply_current"]
                 v1 = conditions.supply - r_dec * i0
-                i1 = self._bias(p, device, replace(conditions, supply=v1), beta, nvt, i_s).op["supply_current"]
+                i1 = self._bias(p_dc, device, replace(conditions, supply=v1), beta, nvt, i_s).op["supply_current"]
                 dv = v1 - v_local
                 slope = np.where(dv != 0, (i1 - i0) / np.where(dv != 0, dv, 1.0), 0.0)
                 v_local = (conditions.supply - r_dec * i1 + r_dec * slope * v1) / (1.0 + r_dec * slope)
-                b = self._bias(p, device, replace(conditions, supply=v_local), beta, nvt, i_s)
+                b = self._bias(p_dc, device, replace(conditions, supply=v_local), beta, nvt, i_s)
         b.op["v_supply_local"] = v_local
         b.op["v_out_q"] = self._output_q(b.op)
         if 0 < conditions.below_ground < 1 and "i_divider" in b.op:
@@ -541,6 +598,10 @@ class StageModel(Topology):
             b.op["i_divider"] = (conditions.below_ground * conditions.supply - b.op[self.divider_tap]) * (
                 1.0 / p["r_top"] + 1.0 / p["r_bottom"]
             )
+            if self.direct_input:
+                b.op["i_source"] = np.where(
+                    direct, (conditions.below_ground * conditions.supply - b.op["v_base"]) / r_dc_source, 0.0
+                )
         b.beta = beta
         return p, b, nvt
 
@@ -608,7 +669,7 @@ class StageModel(Topology):
             # impedances are seen through the coupling capacitors at the band's geometric mean
             # (complex where a stage gives its mid-band impedance at that frequency: a bootstrap)
             w_mid = 2.0 * np.pi * math.sqrt(conditions.band[0] * conditions.band[1])
-            z_in = np.abs(mid["input_impedance"] + 1.0 / (1j * w_mid * p["c_in"]))
+            z_in = np.abs(mid["input_impedance"] + input_reactance(p["c_in"], 1j * w_mid))
             z_out = np.abs(mid["output_impedance"] + 1.0 / (1j * w_mid * p["c_out"]))
             clip, vce_max = self._swing(p, device, local, b, mid)
             gain = mid["gain"]

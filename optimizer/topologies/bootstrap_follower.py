@@ -44,6 +44,8 @@ class BootstrapFollower(EmitterFollower):
     )
     node_voltages = {"base": "v_base", "mid": "v_mid", "emitter": "v_emitter"}
     divider_tap = "v_mid"  # r_top and r_bottom meet at the mid node, r_bootstrap feeds the base from it
+    direct_input = False  # the base is fed through r_bootstrap from the tap, not returned to ground by r_bottom
+    direct_input_note = "its base is fed through r_bootstrap from the bias tap, not returned to ground by r_bottom"
 
     def hand_design(self, req: HandRequirements) -> dict[str, float]:
         parts = follower_hand_design(req)

@@ -13,7 +13,7 @@ import numpy as np
 from optimizer import physics
 from optimizer.devices import Device
 from optimizer.synthesis import HandRequirements, coupling_capacitor, parallel
-from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
+from optimizer.topologies.base import Bias, Conditions, Parts, StageModel, input_hold
 from optimizer.topologies.divider_ce import add_divider_stage, divider_hand_design, divider_ratings
 from optimizer.topologies.emitter_follower import add_follower
 
@@ -25,6 +25,7 @@ class CEFollower(StageModel):
     inverting = True
     polarities = ("npn", "pnp")
     supplies = ("positive", "negative", "split")
+    direct_input = True  # on a split supply the base sits at ground: a DC source may drive it directly
     description = "divider-biased common emitter direct-coupled into an emitter follower"
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter", "r_follower")
     capacitors = ("c_in", "c_out")
@@ -193,7 +194,7 @@ class CEFollower(StageModel):
         kw = {"i_s": i_s, "beta": beta, "nvt": nvt, "inv_vaf": device.inv_vaf}
 
         def out(vs: np.ndarray) -> np.ndarray:
-            a = (vth * rs + (vs + op["v_base"]) * rth) / (rs + rth)
+            a = (vth * rs + (vs + input_hold(p, c, op)) * rth) / (rs + rth)
             q1 = physics.solve_junction(
                 a,
                 physics.parallel(rth, rs) + device.RB,

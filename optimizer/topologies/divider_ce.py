@@ -20,7 +20,7 @@ from optimizer.synthesis import (
     divider,
     parallel,
 )
-from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
+from optimizer.topologies.base import Bias, Conditions, Parts, StageModel, couple_input, input_hold
 
 
 def divider_hand_design(req: HandRequirements, stage_load: float) -> dict[str, float]:
@@ -44,6 +44,7 @@ class DividerCE(StageModel):
     inverting = True
     polarities = ("npn", "pnp")
     supplies = ("positive", "negative", "split")
+    direct_input = True  # on a split supply the base sits at ground: a DC source may drive it directly
     description = "common emitter, voltage-divider bias, emitter resistor unbypassed"
     order = 10
     resistors = ("r_top", "r_bottom", "r_collector", "r_emitter")
@@ -200,7 +201,7 @@ class DividerCE(StageModel):
         ic_q, vc_q = op["ic"], op["v_collector"]
 
         def out(vs: np.ndarray) -> np.ndarray:
-            a = (vth * rs + (vs + op["v_base"]) * rth) / (rs + rth) - v_hold
+            a = (vth * rs + (vs + input_hold(p, c, op)) * rth) / (rs + rth) - v_hold
             q = physics.solve_junction(
                 a,
                 r_t + device.RB,
@@ -244,7 +245,7 @@ def add_divider_stage(
     ``rail``, None = AC ground, r_bottom to the network's bias ground); the emitter side is the caller's."""
     if r_source is not None:
         net.admittance("in", net.ground, 1.0 / r_source)
-    net.capacitor("in", "base", p["c_in"], ac, True)
+    couple_input(net, p, ac)
     net.resistor("base", rail, p["r_top"])
     net.resistor("base", net.bias_ground, p["r_bottom"])
     net.resistor("base", "bint", ss[0]["rb"])
@@ -254,12 +255,12 @@ def add_divider_stage(
 
 def divider_ratings(p: Parts, c: Conditions, op: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
     """Resistor powers (W) of the divider stage and the largest voltage on c_in (V, the rail at
-    its maximum: see StageModel._ratings)."""
+    its maximum: see StageModel._ratings; 0 without c_in)."""
     vcc = op["v_supply_local"]
     return {
         "p_r_top": (vcc - op["v_base"]) ** 2 / p["r_top"],
         "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
         "p_r_collector": (vcc - op["v_collector"]) ** 2 / p["r_collector"],
         "p_r_emitter": (op["ic"] + op["ib"]) ** 2 * p["r_emitter"],
-        "v_c_in": np.full_like(vcc, c.rail_max),
+        "v_c_in": np.where(p["c_in"] > 0, c.rail_max, 0.0) + 0.0 * vcc,
     }

@@ -20,7 +20,16 @@ import numpy as np
 from optimizer import physics
 from optimizer.devices import Device
 from optimizer.synthesis import VBE_HAND, HandRequirements, coupling_capacitor, divider, parallel
-from optimizer.topologies.base import Bias, Conditions, Parts, StageModel, _source_resistance
+from optimizer.topologies.base import (
+    Bias,
+    Conditions,
+    Parts,
+    StageModel,
+    _source_resistance,
+    couple_input,
+    input_hold,
+    input_reactance,
+)
 from optimizer.topologies.divider_ce import add_load
 
 Ports = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]  # y11, y12, y22, j1, j2
@@ -150,6 +159,7 @@ class EmitterFollower(StageModel):
         "negative",
         "split",
     )  # drawn NPN on a positive rail; the polarity layer mirrors or shifts it
+    direct_input = True  # on a split supply the base sits at ground: a DC source may drive it directly
     device_kind = "bjt"
     description = "divider-biased emitter follower: gain just under +1, low output impedance"
     order = 50
@@ -184,7 +194,8 @@ class EmitterFollower(StageModel):
 
     def _held_ports(self, p: Parts, c: Conditions, op: dict[str, np.ndarray], vs: np.ndarray) -> Ports:
         """The network around q1 with the capacitors holding their DC, driven by the source EMF
-        vs (V, change from quiescent): c_in holds the base's DC, c_out the emitter's."""
+        vs (V, change from quiescent): c_in holds the base's DC (none: the source is wired to the
+        base, its DC the ground's), c_out the emitter's."""
         g_s = 1.0 / max(c.source_impedance, physics.R_FLOOR)
         g_t, g_b = 1.0 / p["r_top"], 1.0 / p["r_bottom"]
         g_l = 1.0 / c.load_impedance
@@ -192,7 +203,7 @@ class EmitterFollower(StageModel):
             g_t + g_b + g_s,
             0.0 * g_t,
             1.0 / p["r_follower"] + g_l,
-            g_t * c.supply + g_s * (vs + op["v_base"]),
+            g_t * c.supply + g_s * (vs + input_hold(p, c, op)),
             g_l * op["v_emitter"] + 0.0 * vs,
         )
 
@@ -236,7 +247,7 @@ class EmitterFollower(StageModel):
         s = 2j * math.pi * math.sqrt(c.band[0] * c.band[1])
         y_load = 1.0 / c.load_impedance + s * c.load_capacitance
         y_out = s * p["c_out"]
-        z_source = r_source + 1.0 / (s * p["c_in"])
+        z_source = r_source + input_reactance(p["c_in"], s)
         m = follower_midband(
             b.small_signal[0], s, z_source, *self._mid_admittances(p, c), y_load * y_out / (y_load + y_out)
         )
@@ -278,7 +289,7 @@ class EmitterFollower(StageModel):
         net, rail = self._new_network(self._nodes(), p, c, ac, supply)
         if r_source is not None:
             net.admittance("in", net.ground, 1.0 / r_source)
-        net.capacitor("in", "base", p["c_in"], ac, True)
+        couple_input(net, p, ac)
         self._bias_network(net, p, ac, rail)
         add_follower(net, p, c, ss[0], ac, load, rail, ("base", "bint", "emitter"))
         return net
@@ -299,7 +310,7 @@ class EmitterFollower(StageModel):
             "p_r_bottom": v_div**2 / p["r_bottom"],
             "p_r_follower": op["v_emitter"] ** 2 / p["r_follower"],
             "p_q1": op["vce"] * op["ic"],
-            "v_c_in": np.full_like(vcc, c.rail_max),
+            "v_c_in": np.where(p["c_in"] > 0, c.rail_max, 0.0) + 0.0 * vcc,
             "v_c_out": np.full_like(vcc, c.rail_max),
         }
         r.update(self._extra_ratings(p, c, op))
