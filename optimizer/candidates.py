@@ -26,6 +26,7 @@ from optimizer.spec import NOMINAL_TEMPERATURE_C, Spec
 from optimizer.tolerance import worst_case
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions, StageResult, Topology
+from optimizer.units import format_value
 
 DEFAULT_POWER_RATING = 0.125  # W, when a value is not in the catalog (common 0805 rating)
 DEFAULT_CAP_VOLTAGE = 16.0  # V, likewise for a capacitor
@@ -143,9 +144,7 @@ def assess(
     judged = judge(
         spec, topology, arrays, device, conditions, tolerances, limits, nominal, full=True, builds=samples, seed=seed
     )
-    spread = worst_case(
-        topology, arrays, device, conditions, tolerances, tuple(spec.temperature), (spec.supply_min, spec.supply_max)
-    )
+    spread = worst_case(topology, arrays, device, conditions, tolerances, tuple(spec.temperature), spec.supply_spread)
     violations = judged.violations
     feasible = bool(scoring.total_violation(violations)[0] == 0)
     build_yield = float(judged.yield_fraction[0])
@@ -191,8 +190,24 @@ def _cautions(spec: Spec, result: StageResult, rating_limits: dict[str, float | 
         margin = sign * (metrics[metric] - limit) / limit
         if 0 <= margin < NEAR_LIMIT:
             notes.append(f"{metric} is within {margin:.0%} of its limit {limit_name} = {limit:g}")
+    notes += direct_input_notes(spec, result.operating_point)
     notes.append("predicted, not measured: verify the built stage before relying on it")
     return notes + hazard_cautions(spec)
+
+
+def direct_input_notes(spec: Spec, op: dict[str, np.ndarray]) -> list[str]:
+    """Where the source is wired to the base (a direct-coupled input: op ``i_source`` non-zero),
+    the DC the source then sees: the base's voltage (V, at its terminals) and the base current
+    through it (A), which shift the bias by that current times the source's resistance."""
+    i_source = float(np.asarray(op.get("i_source", [0.0]))[0])
+    if i_source == 0:
+        return []
+    v_base = float(np.asarray(op["v_base"])[0])
+    return [
+        f"direct-coupled input: the base current, {format_value(abs(i_source), 'A')} DC, flows in the source's "
+        f"{format_value(spec.source_impedance, 'Ω')}: the source sees {format_value(v_base, 'V')} at its "
+        "terminals (the input offset); check the source tolerates it"
+    ]
 
 
 def hazard_cautions(spec: Spec) -> list[str]:

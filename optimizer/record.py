@@ -126,7 +126,10 @@ def record_conditions(spec: Spec) -> dict:
 
 
 def part_label(role: str, value: float) -> str:
-    """The designer's label of a part value ("68k", "2.2 µF"): capacitors in F, resistors bare."""
+    """The designer's label of a part value ("68k", "2.2 µF"): capacitors in F, resistors bare;
+    "direct" for c_in left out (0: the source wired to the base, a direct-coupled input)."""
+    if role == "c_in" and value == 0:
+        return "direct"
     return format_value(value, "F" if role.startswith("c_") else "")
 
 

@@ -110,7 +110,7 @@ def judge(
     come from ``seed`` (default BUILDS_SEED, the same whatever the search's seed)."""
     basis = basis or spec.robustness
     temperature_range = tuple(spec.temperature)
-    supply_range = (spec.supply_min, spec.supply_max)
+    supply_range = spec.supply_spread
     n = next(iter(parts.values())).shape[0]
     violations = dict(nominal_violations)
     yield_fraction = np.full(n, np.nan)

@@ -755,6 +755,16 @@ class Spec(_Section):
         return 1.0 if self.supply_arrangement == "negative" else 0.0
 
     @property
+    def supply_spread(self) -> tuple[float, float] | tuple[tuple[float, float], tuple[float, float]]:
+        """How the supply moves over builds and corners (tolerance.SupplyRange): the span's
+        (min, max), V; on a split supply each rail over its own range, independently:
+        ((V+ min, V+ max), (|V-| min, |V-| max)), V."""
+        if self.supply_arrangement != "split" or self.supply_negative is None:
+            return (self.supply_min, self.supply_max)
+        _, neg_low, neg_high = self.supply_negative  # true volts: neg_low the most negative
+        return ((self.supply_min + neg_high, self.supply_max + neg_low), (-neg_high, -neg_low))
+
+    @property
     def rails(self) -> tuple[float, float]:
         """(highest rail, lowest rail), nominal, V, true (ground-referenced) volts."""
         below = self.supply_below_ground * self.supply

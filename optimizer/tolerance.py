@@ -7,7 +7,9 @@ bipolar transistor's hFE anywhere in its min..max, rising with temperature
 (``devices.hfe_temperature_factor``), a JFET's IDSS and VP together along the line from
 their minima to their maxima (``devices.JFET``); the temperature over the spec's range, with
 Vbe falling about 2 mV/K (carried by the device's saturation-current temperature law) or a
-JFET's VTO and BETA moving by its SPICE TCV and BEX; and the supply over its min..max. Monte
+JFET's VTO and BETA moving by its SPICE TCV and BEX; and the supply over its min..max (a split
+supply's two rails each over its own min..max, independently: the span and the ground's place
+in it move per build, :data:`SupplyRange`). Monte
 Carlo draws parts uniformly within tolerance (the conservative choice for parts binned by
 tolerance), hFE log-uniformly within min..max (a JFET uniformly along its line), and the
 temperature and the supply uniformly over a few levels of their ranges.
@@ -33,14 +35,41 @@ from optimizer.topologies.base import CHUNK_FAST, CHUNK_FULL, Conditions, Topolo
 TEMPERATURE_BINS = 3  # Monte Carlo temperatures are drawn from this many levels (ends and middle)
 SUPPLY_BINS = 3  # and supplies from this many (min, middle, max)
 Tolerance = float | np.ndarray  # fraction, one for all candidates or one per candidate
+# The supply's spread: the span's (low, high) in V, or a split supply's two rails each over its
+# own range, ((V+ low, V+ high), (|V-| low, |V-| high)) in V (Spec.supply_spread)
+SupplyRange = tuple[float, float] | tuple[tuple[float, float], tuple[float, float]]
+
+
+def supply_points(
+    supply_range: SupplyRange | None, conditions: Conditions | None, levels: int = 2
+) -> list[tuple[float, float, tuple[int, int]]]:
+    """(span V, below-ground fraction, (level of V+, level of |V-|)) at ``levels`` evenly spaced
+    points of each rail's range: every combination for a split supply's independent rails (the
+    corners at levels=2: V+ and V- each at its min and max), the span's points with the ground's
+    place of ``conditions`` otherwise (its |V-| level 0). None: the nominal supply alone."""
+    if supply_range is None:
+        assert conditions is not None
+        return [(float(conditions.supply), conditions.below_ground, (0, 0))]
+    low, high = supply_range
+    if not isinstance(low, tuple):
+        assert conditions is not None
+        return [(float(v), conditions.below_ground, (i, 0)) for i, v in enumerate(np.linspace(low, high, levels))]
+    assert isinstance(high, tuple)
+    return [
+        (float(p + n), float(n / (p + n)), (i, j))
+        for (i, p), (j, n) in itertools.product(
+            enumerate(np.linspace(*low, levels)), enumerate(np.linspace(*high, levels))
+        )
+    ]
 
 
 @dataclass(frozen=True)
 class Builds:
     """``samples`` seeded random builds, the same for every candidate.
 
-    temperature (°C) and supply (V) per build, taken from TEMPERATURE_BINS and SUPPLY_BINS
-    levels; hfe_position in [0, 1] (the device's spread position: log position between hFE min
+    temperature (°C), supply (V, the span) and below_ground (the ground's fraction of the span) per
+    build, taken from TEMPERATURE_BINS levels and SUPPLY_BINS levels of each rail (a split
+    supply's rails drawn independently, :func:`supply_points`); hfe_position in [0, 1] (the device's spread position: log position between hFE min
     and max, or a JFET's position along its IDSS/VP line);
     :meth:`part_position` gives each role's position in [-1, 1] within its tolerance band.
     """
@@ -50,20 +79,37 @@ class Builds:
     temperature: np.ndarray
     supply: np.ndarray
     hfe_position: np.ndarray
+    below_ground: np.ndarray | None = None  # None: the conditions' own (a single rail's span moving)
 
     @classmethod
     def draw(
-        cls, samples: int, seed: int, temperature_range: tuple[float, float], supply_range: tuple[float, float]
+        cls,
+        samples: int,
+        seed: int,
+        temperature_range: tuple[float, float],
+        supply_range: SupplyRange,
+        conditions: Conditions | None = None,
     ) -> "Builds":
+        """``samples`` builds from ``seed``; a split supply's rails (``supply_range`` as rail
+        ranges, ``conditions`` giving the nominal ground) each drawn on its own."""
         rng = np.random.default_rng([seed, 0x5EED])
         t_levels = np.linspace(*temperature_range, TEMPERATURE_BINS)
-        s_levels = np.linspace(*supply_range, SUPPLY_BINS)
+        temperature = t_levels[rng.integers(0, TEMPERATURE_BINS, samples)]
+        positive = rng.integers(0, SUPPLY_BINS, samples)
+        hfe_position = rng.uniform(0.0, 1.0, samples)
+        if not isinstance(supply_range[0], tuple):
+            s_levels = np.linspace(*supply_range, SUPPLY_BINS)
+            return cls(samples, seed, temperature, s_levels[positive], hfe_position)
+        negative = rng.integers(0, SUPPLY_BINS, samples)  # drawn after the others: their streams unchanged
+        grid = {levels: (span, g) for span, g, levels in supply_points(supply_range, conditions, SUPPLY_BINS)}
+        points = [grid[(int(i), int(j))] for i, j in zip(positive, negative)]
         return cls(
             samples,
             seed,
-            t_levels[rng.integers(0, TEMPERATURE_BINS, samples)],
-            s_levels[rng.integers(0, SUPPLY_BINS, samples)],
-            rng.uniform(0.0, 1.0, samples),
+            temperature,
+            np.array([p[0] for p in points]),
+            hfe_position,
+            np.array([p[1] for p in points]),
         )
 
     def part_position(self, role: str) -> np.ndarray:
@@ -76,16 +122,21 @@ class Builds:
         transistor, the IDSS/VP position for a JFET: ``device.spread_draw``)."""
         return device.spread_draw(self.hfe_position, self.temperature)
 
-    def groups(self) -> list[tuple[float, np.ndarray]]:
-        """(temperature, build indices) for each temperature that occurs (the supply varies within a
-        group: the models take it per candidate)."""
-        return [(float(t), np.flatnonzero(self.temperature == t)) for t in np.unique(self.temperature)]
+    def groups(self) -> list[tuple[float, float | None, np.ndarray]]:
+        """(temperature, below_ground, build indices) for each temperature and ground's place that
+        occur (None: the conditions' own; the span varies within a group: the models take it per
+        candidate)."""
+        if self.below_ground is None:
+            return [(float(t), None, np.flatnonzero(self.temperature == t)) for t in np.unique(self.temperature)]
+        keys = np.stack([self.temperature, self.below_ground])
+        return [
+            (float(t), float(g), np.flatnonzero((self.temperature == t) & (self.below_ground == g)))
+            for t, g in np.unique(keys, axis=1).T
+        ]
 
 
-def _at(conditions: Conditions, temperature: float, supply: float | None = None) -> Conditions:
-    return replace(
-        conditions, temperature=float(temperature), supply=float(conditions.supply if supply is None else supply)
-    )
+def _at(conditions: Conditions, temperature: float, supply: float, below_ground: float) -> Conditions:
+    return replace(conditions, temperature=float(temperature), supply=float(supply), below_ground=below_ground)
 
 
 def _flat_result(
@@ -125,7 +176,7 @@ def worst_case(
     conditions: Conditions,
     tolerances: dict[str, Tolerance],
     temperature_range: tuple[float, float],
-    supply_range: tuple[float, float] | None = None,
+    supply_range: SupplyRange | None = None,
     *,
     roles: tuple[str, ...] | None = None,
     full: bool = True,
@@ -133,17 +184,18 @@ def worst_case(
     """(low, high) of every metric, rating, 'ic' and DC node voltage (v_base, v_out_q, ...) over all corners: each part in
     ``roles`` (default: all) at +-tolerance, the device's spread at both ends (hFE min and max, a
     JFET's lowest and highest IDSS/VP), temperature and supply at
-    both ends. Arrays over candidates. Metrics NaN at a corner (a stage that is not active)
+    both ends (a split supply's rails each at both ends: four supply corners). Arrays over candidates. Metrics NaN at a corner (a stage that is not active)
     are left out of that corner's range; 'active_all' (bool) says whether every corner is active."""
     roles = tuple(parts) if roles is None else roles
     signs = np.array(list(itertools.product((-1.0, 1.0), repeat=len(roles))))  # (corners, roles)
     n = np.asarray(next(iter(parts.values()))).shape[0]
-    supplies = (conditions.supply,) if supply_range is None else tuple(supply_range)
     lows: dict[str, np.ndarray] = {}
     highs: dict[str, np.ndarray] = {}
     active_all = np.ones(n, dtype=bool)
-    for temperature, supply in itertools.product(temperature_range, supplies):
-        at = _at(conditions, temperature, supply)
+    for temperature, (supply, below, _) in itertools.product(
+        temperature_range, supply_points(supply_range, conditions)
+    ):
+        at = _at(conditions, temperature, supply, below)
         corner_parts = {
             role: np.asarray(v, dtype=float).reshape(-1, 1) * np.ones((1, signs.shape[0])) for role, v in parts.items()
         }
@@ -181,12 +233,13 @@ def bias_spread(
     conditions: Conditions,
     tolerances: dict[str, Tolerance],
     temperature_range: tuple[float, float],
-    supply_range: tuple[float, float],
+    supply_range: SupplyRange,
 ) -> dict[str, np.ndarray]:
     """Spread of the operating point, per candidate: ``ic_low``, ``ic_high`` (A), ``ic_spread``
     (max/min Ic) and ``v_out_low``, ``v_out_high`` (V, the quiescent output).
 
-    Corners: hFE, temperature and supply at their ends (8), each with the resistors at the
+    Corners: hFE, temperature and supply at their ends (8; a split supply's rails each at
+    both ends: 16), each with the resistors at the
     tolerance edge that raises Ic and at the one that lowers it (the sign of dIc/dR at
     nominal, one probe per resistor): the classical sensitivity-directed worst case, exact
     where Ic is monotone in each resistor. 8 + 16 operating points per candidate."""
@@ -212,8 +265,10 @@ def bias_spread(
     ic_low = np.full(n, np.inf)
     ic_high = np.full(n, -np.inf)
     v_low, v_high = ic_low.copy(), ic_high.copy()
-    for temperature, supply in itertools.product(temperature_range, supply_range):
-        at = _at(conditions, temperature, supply)
+    for temperature, (supply, below, _) in itertools.product(
+        temperature_range, supply_points(supply_range, conditions)
+    ):
+        at = _at(conditions, temperature, supply, below)
         for hfe_edge in device.spread_edges(float(temperature)):
             op = topology.operating_point(both, device, at, hfe_edge)
             ic = np.where(op["active"], op["ic"], np.nan).reshape(2, n)
@@ -238,7 +293,7 @@ def monte_carlo_yield(
     samples: int = 1000,
     seed: int = 0,
     full: bool = False,
-    supply_range: tuple[float, float] | None = None,
+    supply_range: SupplyRange | None = None,
 ) -> np.ndarray:
     """Fraction of ``samples`` random builds (:class:`Builds`) of each candidate for which
     ``passes(sample, rows)`` holds (``sample``: metrics and ratings of shape (block rows,
@@ -252,13 +307,17 @@ def monte_carlo_yield(
     whatever the count and a block is one model call.
     """
     supply_range = (conditions.supply, conditions.supply) if supply_range is None else supply_range
-    builds = Builds.draw(samples, seed, temperature_range, supply_range)
+    builds = Builds.draw(samples, seed, temperature_range, supply_range, conditions)
     values = {role: np.asarray(value, dtype=float).reshape(-1) for role, value in parts.items()}
     n = next(iter(values.values())).shape[0]
     positions = {role: builds.part_position(role) for role in values}
     hfe_all = builds.hfe(device)
     passed = np.zeros(n)
-    for temperature, idx in builds.groups():  # one call per block of a temperature, the supply per build
+    for (
+        temperature,
+        below,
+        idx,
+    ) in builds.groups():  # one call per block of a temperature and ground, the span per build
         rows = max(1, (CHUNK_FULL if full else CHUNK_FAST) // idx.size)
         for i in range(0, n, rows):
             block = slice(i, min(i + rows, n))
@@ -269,7 +328,10 @@ def monte_carlo_yield(
             shape = (block.stop - block.start, idx.size)
             hfe = np.broadcast_to(hfe_all[None, idx], shape)
             at = replace(
-                conditions, temperature=temperature, supply=np.broadcast_to(builds.supply[None, idx], shape).reshape(-1)
+                conditions,
+                temperature=temperature,
+                supply=np.broadcast_to(builds.supply[None, idx], shape).reshape(-1),
+                below_ground=conditions.below_ground if below is None else below,
             )
             sample = _flat_result(topology, drawn, device, at, np.ascontiguousarray(hfe), full)
             passed[block] += np.count_nonzero(passes(sample, block) & sample["active"], axis=1)
