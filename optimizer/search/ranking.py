@@ -9,11 +9,13 @@ import numpy as np
 import optuna
 
 from optimizer import robustness
+from optimizer.catalog import load_catalog
 from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
 from optimizer.record import candidate_record, part_label, record_conditions
 from optimizer.scoring import pareto_mask
 from optimizer.search.space import SearchSpace
 from optimizer.spec import Spec
+from optimizer.topologies import get_topology
 from optimizer.topologies.base import SUPPLY_PARTS
 from optimizer.units import format_value
 
@@ -92,6 +94,32 @@ def _limit_metric(limit: str) -> tuple[str | None, str]:
 ROBUSTNESS_LIMITS = ("yield", "worst_case")
 
 
+JFET_FOLLOWER = "jfet_follower"  # the JFET input stage a bipolar follower's input-impedance limit points to
+
+
+def jfet_hint(spec: Spec, limits: tuple[str, ...], record: dict | None) -> str:
+    """A suggestion when a bipolar follower's input impedance limit binds and the spec lists no
+    JFET: name the catalog's JFETs that would let the JFET follower compete (its gate draws no
+    base current, so its input is the gate resistor's megohms); "" otherwise."""
+    if record is None or "input_impedance_min" not in limits:
+        return ""
+    stage = get_topology(record["topology"])
+    if stage.device_kind != "bjt" or stage.inverting or stage.transistors != 1:
+        return ""  # not a bipolar follower
+    rows = load_catalog(spec.parts.catalog).transistors
+    jfets = [str(i) for i, p in zip(rows["id"], rows["polarity"]) if str(p).lower() == "njf"]
+    if not jfets or set(jfets) & set(spec.devices):
+        return ""
+    follower = get_topology(JFET_FOLLOWER)
+    needs = [] if JFET_FOLLOWER in spec.topologies else [f"{JFET_FOLLOWER} in topologies"]
+    if spec.supply_arrangement not in follower.supplies:
+        needs.append(f"a {' or '.join(follower.supplies)} supply ({JFET_FOLLOWER} runs on no other)")
+    return (
+        f"; a bipolar follower's input impedance binds and the spec lists no JFET: list {' or '.join(jfets)} in "
+        f"devices to let {JFET_FOLLOWER} compete" + (f" (it also needs {' and '.join(needs)})" if needs else "")
+    )
+
+
 def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
     """Why a spec has no answer: the limit whose relaxation alone would give one.
 
@@ -100,7 +128,8 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
     nominal) is what the limit would have to be relaxed to, with a margin for spread. A design
     missing a limit at nominal also misses the robustness limit; that one is named only
     when nothing else is missed. Where no design misses only one limit, the pair
-    missed together by the smallest amount binds. Returns {binding: [limits], reached: {limit:
+    missed together by the smallest amount binds. Where a bipolar follower's input impedance binds
+    and the spec lists no JFET, the text names the catalog's JFETs (:func:`jfet_hint`). Returns {binding: [limits], reached: {limit:
     value (SI) or None}, unit: {limit: unit}, text}."""
     best: dict[tuple[str, ...], tuple[float, dict]] = {}
     for r in ranked:
@@ -155,6 +184,7 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
         )
     else:
         text = f"no design meets every limit, and no single limit is to blame: {' and '.join(parts)} bind together"
+    text += jfet_hint(spec, tuple(limits), record)
     return {"binding": list(limits), "reached": reached, "unit": units, "text": text}
 
 
