@@ -18,10 +18,13 @@ import signal
 import sys
 import threading
 import time
-from typing import Callable, Iterator, Sequence
+from typing import TYPE_CHECKING, Callable, Iterator, Sequence
 
 from optimizer.errors import InputError, StorageError
 from optimizer.metrics import METRICS
+
+if TYPE_CHECKING:  # the parser stays light: pydantic is imported by the commands that read a spec
+    from optimizer.spec import Spec
 
 EXIT_OK, EXIT_INTERNAL, EXIT_BAD_INPUT, EXIT_INFEASIBLE, EXIT_ENVIRONMENT = 0, 1, 2, 3, 4
 EXIT_CODES = (
@@ -478,12 +481,21 @@ def _cmd_search(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _supply_spread_text(spec: Spec) -> str:
+    """How the supply moves in the builds: "supply 11.4..12.6 V", or a split supply's rails each on
+    its own ("V+ 11.4..12.6 V and V- -12.6..-11.4 V, each on its own")."""
+    spread = spec.supply_spread
+    if isinstance(spread[0], tuple) and isinstance(spread[1], tuple):
+        (p_lo, p_hi), (n_lo, n_hi) = spread
+        return f"V+ {p_lo:.4g}..{p_hi:.4g} V and V- {-n_hi:.4g}..{-n_lo:.4g} V, each on its own"
+    return f"supply {spec.supply_min:.4g}..{spec.supply_max:.4g} V"
+
+
 _BASIS_TEXT = {
     "yield": lambda spec: (
         f"a design meets the spec when every hard limit holds in at least "
         f"{100 * spec.limits.yield_min:.3g} % of Monte Carlo builds (part tolerances, hFE "
-        f"spread, {spec.temperature[0]:g}..{spec.temperature[1]:g} °C, supply "
-        f"{spec.supply_min:g}..{spec.supply_max:g} V); robustness: yield"
+        f"spread, {spec.temperature[0]:g}..{spec.temperature[1]:g} °C, {_supply_spread_text(spec)}); robustness: yield"
     ),
     "worst_case": lambda spec: (
         "a design meets the spec when every hard limit holds at every corner; robustness: worst_case"
