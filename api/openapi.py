@@ -211,6 +211,10 @@ def _schemas() -> dict[str, Any]:
                             "polarities": {"type": "array", "items": {"enum": list(POLARITIES)}},
                             "supplies": {"type": "array", "items": {"enum": list(SUPPLIES)}},
                             "device_kind": {"type": "string"},
+                            "direct_input": {
+                                "type": "boolean",
+                                "description": "on a split supply, takes a DC-passing source without c_in",
+                            },
                             "gain_sign": {"enum": ["inverting", "non-inverting"]},
                         },
                     },
