@@ -26,6 +26,7 @@ SWEEP = (0.1, 1e8)  # Hz, span of the frequency-response search
 COARSE_POINTS = 10  # log-spaced points over SWEEP (one per decade)
 REFINE_STEPS = 4  # false-position steps per -3 dB crossing (see minus_3db_corners)
 PEAK_STEPS = 6  # more steps where a crossing's inside end peaks above the reference (bisected first)
+CORNER_XTOL = 1e-4  # decades: a corner whose next false-position step would move it less has converged
 PEAK_DISTANCE = 60.0  # the corner distance at its clamp: |H| within 1e-26 of, or above, the reference
 NOISE_POINTS = 6  # log-spaced frequencies for the in-band noise integral
 NOISE_POINTS_FLICKER = 12  # the same where a 1/f source bends the input noise inside the band
@@ -368,6 +369,19 @@ class Network:
         n.noise, n.y, n.cap, n.s = self.noise, self.y, self.cap, np.asarray(s)
         return n
 
+    def take(self, cols: np.ndarray, n: int) -> "Network":
+        """The network of the candidates at indices ``cols`` alone (element values with a last
+        axis of ``n`` candidates are sliced, others kept; no noise sources)."""
+        t = Network(self.nodes, self.temp_c)
+        t.ground, t.bias_ground = self.ground, self.bias_ground
+
+        def part(v: np.ndarray) -> np.ndarray:
+            return v[..., cols] if np.ndim(v) and np.shape(v)[-1] == n else v
+
+        t.y = {k: part(v) for k, v in self.y.items()}
+        t.cap = {k: part(v) for k, v in self.cap.items()}
+        return t
+
     def transposed(self) -> "Network":
         """The adjoint network (Y transposed), for all transfers to one node in one solve."""
         t = Network(self.nodes, self.temp_c)
@@ -568,8 +582,8 @@ def _corners(
     grid = np.logspace(np.log10(SWEEP[0]), np.log10(SWEEP[1]), COARSE_POINTS)
     ref2 = _magnitude2(reference)
 
-    def distance(h: np.ndarray) -> np.ndarray:  # > 0 inside the band, <= 0 beyond the corner
-        return -np.log(np.maximum(ref2 / (_magnitude2(h) + 1e-300) - 1.0, 1e-30))
+    def distance(h: np.ndarray, r2: np.ndarray | None = None) -> np.ndarray:  # > 0 in band, <= 0 beyond the corner
+        return -np.log(np.maximum((ref2 if r2 is None else r2) / (_magnitude2(h) + 1e-300) - 1.0, 1e-30))
 
     db = distance(response(grid[:, None]))  # (k, n)
     n = db.shape[1]
@@ -590,13 +604,46 @@ def _corners(
     last = np.zeros((len(rows), n), dtype=bool)
     # An inside end at or above the reference (a response peaking near its corner, as a
     # bootstrap's) has d at its clamp, where false position would crawl: such a bracket is
-    # bisected in log f until its inside end lies below the reference, with PEAK_STEPS more steps.
+    # bisected in log f until its inside end lies below the reference, and its candidate takes
+    # PEAK_STEPS more steps (those candidates alone, through ``response.take`` when it has one).
     above_ref = d1 >= PEAK_DISTANCE
-    steps = steps + (PEAK_STEPS if np.any(above_ref & inside) else 0)
+    state = [x0, x1, d0, d1, last, above_ref, np.zeros_like(x0)]
+    _false_position(response, distance, state, steps)
+    if not hasattr(response, "take"):  # a plain callable: every candidate takes the peak steps
+        if np.any(above_ref & inside):
+            _false_position(response, distance, state, PEAK_STEPS)
+    else:  # the candidates whose estimate still moves, or that peaked, alone
+        for _ in range(PEAK_STEPS):
+            x0, x1, d0, d1, _, above_ref, moved = state
+            more = np.flatnonzero(((moved > CORNER_XTOL) | above_ref) & inside)
+            more = np.unique(more % n) if more.size else more
+            if not more.size:
+                break
+            part = [v[:, more] for v in state]
+            _false_position(response.take(more), distance, part, 1, ref2[..., more])
+            for whole, v in zip(state, part):
+                whole[:, more] = v
+    x0, x1, d0, d1 = state[:4]
+    xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
+    return np.where(inside, 10.0**xm, np.array(SWEEP)[rows, None])
+
+
+def _false_position(
+    response: Callable[[np.ndarray], np.ndarray],
+    distance: Callable[..., np.ndarray],
+    state: list[np.ndarray],
+    steps: int,
+    ref2: np.ndarray | None = None,
+) -> None:
+    """``steps`` Illinois false-position steps of :func:`_corners` on the brackets in ``state``
+    ([x0, x1, d0, d1, last, above_ref, moved], each (sides, candidates), replaced in place;
+    moved: how far the last step moved the estimate, decades); ``ref2``: the squared reference
+    of these candidates when not the distance's own."""
+    x0, x1, d0, d1, last, above_ref, moved = state
     for _ in range(steps):  # Illinois false position on the crossings at once
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
         xm = np.where(above_ref, 0.5 * (x0 + x1), np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1)))
-        dm = distance(response(10.0**xm))
+        dm = distance(response(10.0**xm), ref2)
         out_side = dm <= 0.0
         d1 = np.where(out_side & last & ~above_ref, 0.5 * d1, d1)  # an end kept twice: halve its value
         d0 = np.where(~out_side & ~last & ~above_ref, 0.5 * d0, d0)
@@ -604,8 +651,25 @@ def _corners(
         x1, d1 = np.where(out_side, x1, xm), np.where(out_side, d1, dm)
         above_ref = np.where(out_side, above_ref, dm >= PEAK_DISTANCE)
         last = out_side
-    xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
-    return np.where(inside, 10.0**xm, np.array(SWEEP)[rows, None])
+        moved = np.abs(x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1) - xm)  # the next step's move
+    state[:] = [x0, x1, d0, d1, last, above_ref, moved]
+
+
+class Response:
+    """The complex gain source -> ``out`` of a network (V/V) at frequencies f (Hz, shape (k,
+    candidates) or (k, 1)), shape (k, candidates), driven by the Norton current ``drive`` (A,
+    one per candidate) into node ``source``; :meth:`take` restricts it to some candidates."""
+
+    def __init__(self, network: "Network", source: str, drive: np.ndarray, out: str = "out") -> None:
+        self.network, self.source, self.drive, self.out = network, source, np.asarray(drive), out
+
+    def __call__(self, f: np.ndarray) -> np.ndarray:
+        return self.network.at(2j * np.pi * f).solve({self.source: self.drive}, [self.out])[self.out]
+
+    def take(self, cols: np.ndarray) -> "Response":
+        """The same response for the candidates at indices ``cols`` alone."""
+        n = self.drive.shape[-1]
+        return Response(self.network.take(cols, n), self.source, self.drive[..., cols], self.out)
 
 
 # ----------------------------------------------------------------------------- noise

@@ -469,3 +469,28 @@ def test_power_law_segments_integrate_power_laws_exactly():
             math.log(f[-1, 0] / f[0, 0]) if k == -1.0 else (f[-1, 0] ** (k + 1) - f[0, 0] ** (k + 1)) / (k + 1)
         )
         assert got == pytest.approx(np.full(2, exact), rel=1e-9)
+
+
+@pytest.mark.parametrize("name", sorted(DESIGNS))
+def test_corners_do_not_depend_on_the_batch_and_are_converged(name):
+    # A design's corners are the same evaluated alone or beside designs that need more refinement
+    # steps (a peaking response, a slowly converging bracket), and lie within 1e-4 of the crossing
+    # that 40 false-position steps on every candidate find (the definition: |H| = |gain|/sqrt(2);
+    # ngspice agreement of the corners: tests/spice_agreement.py)
+    topo = get_topology(name)
+    c = Conditions(supply=12.0, source_impedance=600.0, load_impedance=10e3)
+    rng = np.random.default_rng(5)
+    batch = {k: v * np.exp(rng.uniform(-0.7, 0.7, 64)) for k, v in DESIGNS[name].items()}
+    together = topo.evaluate(batch, DEVICE, c).metrics
+    alone = topo.evaluate({k: v[:1] for k, v in batch.items()}, DEVICE, c).metrics
+    for k in ("f_low", "f_high"):
+        assert alone[k][0] == pytest.approx(together[k][0], rel=1e-12)
+    p, b, _, frame = topo._checked_solve(batch, DEVICE, c, None)
+    rs = np.maximum(np.full(64, c.source_impedance), physics.R_FLOOR)
+    gain = topo.evaluate(batch, DEVICE, c, full=False).metrics["gain"]
+    net = topo._network(p, frame, b.small_signal, True, rs, True)
+    plain = topo._response(net, rs).__call__  # a plain callable: every candidate takes every step
+    f_low, f_high = physics.minus_3db_corners(plain, gain, 40)
+    active = b.op["active"]
+    assert together["f_low"][active] == pytest.approx(f_low[active], rel=1e-4)
+    assert together["f_high"][active] == pytest.approx(f_high[active], rel=1e-4)

@@ -798,14 +798,9 @@ class StageModel(Topology):
             return self._psrr(p, frame, b, _source_resistance(b, frame))
 
     @staticmethod
-    def _response(net: physics.Network, r_source: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+    def _response(net: physics.Network, r_source: np.ndarray) -> physics.Response:
         """Complex gain source->load at frequencies f (Hz, shape (k, candidates) or (k, 1)), shape (k, candidates)."""
-        drive = {"in": 1.0 / r_source}
-
-        def h(f: np.ndarray) -> np.ndarray:
-            return net.at(2j * np.pi * f).solve(drive, ["out"])["out"]
-
-        return h
+        return physics.Response(net, "in", 1.0 / r_source)
 
     def frequency_response(
         self,
