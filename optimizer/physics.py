@@ -268,12 +268,16 @@ class Network:
         self.noise: list[tuple[str | None, str | None, str, np.ndarray]] = []  # (a, b, kind, R or I)
         self.temp_c = temp_c
         self.s: np.ndarray | None = None  # complex frequencies set by :meth:`at`
+        # solve's structure per (injected nodes, wanted nodes, with capacitances): the plan and
+        # the entries to fill; shared with the networks :meth:`at` makes, dropped on any new element
+        self._plans: dict[tuple, tuple] = {}
         # where the signal source and the load return (None: the reference node), and where a
         # ground-referenced bias resistor returns; set by the stage when they differ from it
         self.ground: str | None = None
         self.bias_ground: str | None = None
 
     def _stamp(self, part: dict, a: str | None, b: str | None, v: np.ndarray) -> None:
+        self._plans = {}
         # entries are never changed in place (solve copies them), so a new key may share v
         ia, ib = (None if n is None else self.index[n] for n in (a, b))
         neg = None
@@ -308,6 +312,7 @@ class Network:
     def vccs(self, p: str | None, n: str | None, cp: str | None, cn: str | None, g: np.ndarray) -> None:
         """Current g*(v_cp - v_cn) (A) flowing from node p through the source to node n."""
         neg = -np.asarray(g)
+        self._plans = {}
         for row, sign in ((p, 1.0), (n, -1.0)):
             for col, s2 in ((cp, 1.0), (cn, -1.0)):
                 if row is not None and col is not None:
@@ -366,7 +371,7 @@ class Network:
         (candidates,) gives (frequencies, candidates)).
         """
         n = Network(self.nodes, self.temp_c)
-        n.noise, n.y, n.cap, n.s = self.noise, self.y, self.cap, np.asarray(s)
+        n.noise, n.y, n.cap, n.s, n._plans = self.noise, self.y, self.cap, np.asarray(s), self._plans
         return n
 
     def take(self, cols: np.ndarray, n: int) -> "Network":
@@ -399,26 +404,37 @@ class Network:
         in a per-thread workspace, so a solve allocates little beyond the voltages it returns.
         Capacitances count only after :meth:`at` (before it they are open).
         """
-        caps = self.cap if self.s is not None else {}
-        entries = {k: (self.y.get(k), caps.get(k)) for k in set(self.y) | set(caps)}
-        rhs_idx = {self.index[k]: np.asarray(v) for k, v in rhs.items()}
-        targets = frozenset(range(len(self.nodes)) if want is None else (self.index[w] for w in want))
-        plan = _elimination_plan(len(self.nodes), frozenset(entries), frozenset(rhs_idx), targets)
         s = self.s
+        structure = (frozenset(rhs), None if want is None else tuple(want), s is not None)
+        known = self._plans.get(structure)
+        if known is None:
+            caps = self.cap if s is not None else {}
+            entries = {k: (self.y.get(k), caps.get(k)) for k in set(self.y) | set(caps)}
+            rhs_nodes = frozenset(self.index[k] for k in rhs)
+            targets = frozenset(range(len(self.nodes)) if want is None else (self.index[w] for w in want))
+            plan = _elimination_plan(len(self.nodes), frozenset(entries), rhs_nodes, targets)
+            values = [v for pair in entries.values() for v in pair if v is not None]
+            fills = [(plan.slot[key], g, c) for key, (g, c) in entries.items()]
+            known = self._plans[structure] = (
+                plan,
+                fills,
+                targets,
+                np.broadcast_shapes(*(np.shape(v) for v in values)),
+                np.result_type(*values),
+                bool(caps),
+            )
+        plan, fills, targets, shape, dtype, has_caps = known
+        rhs_idx = {plan.slot[("b", self.index[k])]: np.asarray(v) for k, v in rhs.items()}
         imaginary = s is not None and np.iscomplexobj(s) and not np.any(s.real)
-        shapes = [np.shape(v) for pair in entries.values() for v in pair if v is not None]
-        shapes += [np.shape(v) for v in rhs_idx.values()]
-        if caps and s is not None:
-            shapes.append(s.shape)
-            dtype = np.result_type(s, *(v for pair in entries.values() for v in pair if v is not None))
-        else:
-            dtype = np.result_type(*(v for pair in entries.values() for v in pair if v is not None))
+        shape = np.broadcast_shapes(shape, *(np.shape(v) for v in rhs_idx.values()))
+        if has_caps and s is not None:
+            shape = np.broadcast_shapes(shape, s.shape)
+            dtype = np.result_type(dtype, s)
         dtype = np.result_type(dtype, *rhs_idx.values())
-        shape = np.broadcast_shapes(*shapes)
         work = _workspace(plan.slots + 1, shape, dtype)
         scratch = work[plan.slots]
-        for key, (g, c) in entries.items():  # fill the matrix entries: G + s*C
-            w = work[plan.slot[key]]
+        for slot, g, c in fills:  # fill the matrix entries: G + s*C
+            w = work[slot]
             if c is None:
                 w[...] = g
             elif imaginary:
@@ -428,8 +444,8 @@ class Network:
                 np.multiply(s, c, out=w)
                 if g is not None:
                     w += g
-        for i, v in rhs_idx.items():
-            work[plan.slot[("b", i)]] = v
+        for slot, v in rhs_idx.items():
+            work[slot] = v
         for op, target, a, b in plan.ops:  # run the plan in place
             t = work[target]
             if op == "inv":
