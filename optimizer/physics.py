@@ -78,7 +78,9 @@ def solve_junction(
     dtype = np.result_type(
         *(np.asarray(x).dtype for x in (a, r_base, r_emit, beta) if np.asarray(x).dtype.kind == "f"), np.float32
     )
-    a, r_base, r_emit, beta = np.broadcast_arrays(*(np.asarray(x, dtype=dtype) for x in (a, r_base, r_emit, beta)))
+    a, r_base, r_emit, beta = (np.asarray(x, dtype=dtype) for x in (a, r_base, r_emit, beta))
+    if not a.shape == r_base.shape == r_emit.shape == beta.shape:
+        a, r_base, r_emit, beta = np.broadcast_arrays(a, r_base, r_emit, beta)
     r_ib = r_base / beta + r_emit / beta  # loop resistance per unit If through the base current
     if v_start is None:
         # The residual is concave and falling in Vbe, so Newton from above never overshoots the root:
@@ -122,7 +124,8 @@ def solve_junction(
         np.multiply(den, inv_nvt, out=den)
         np.add(den, 1.0, out=den)
         np.divide(g, den, out=g)
-        np.clip(g, -MAX_STEP, MAX_STEP, out=g)
+        np.minimum(g, MAX_STEP, out=g)  # the ufuncs, not np.clip: no dispatch overhead on small groups
+        np.maximum(g, -MAX_STEP, out=g)
         if only is not None:
             g[~only] = 0.0
         np.add(v, g, out=v)
