@@ -494,3 +494,18 @@ def test_corners_do_not_depend_on_the_batch_and_are_converged(name):
     active = b.op["active"]
     assert together["f_low"][active] == pytest.approx(f_low[active], rel=1e-4)
     assert together["f_high"][active] == pytest.approx(f_high[active], rel=1e-4)
+
+
+def test_network_solve_reuses_its_plan_only_while_the_network_is_unchanged():
+    # Ohm's law on a divider (2k over 1k from a 1 mA injection): 1 mA into node a through 2k to b,
+    # b to ground through 1k; a second 1k from b to ground after the first solve must count
+    net = physics.Network(["a", "b"])
+    net.resistor("a", "b", np.array([2e3, 4e3]))
+    net.resistor("b", None, np.array([1e3, 1e3]))
+    assert net.solve({"a": np.full(2, 1e-3)}, ["a", "b"])["a"] == pytest.approx([3.0, 5.0])
+    net.resistor("b", None, np.array([1e3, 1e3]))
+    v = net.solve({"a": np.full(2, 1e-3)}, ["a", "b"])
+    assert v["a"] == pytest.approx([2.5, 4.5])
+    assert v["b"] == pytest.approx([0.5, 0.5])
+    # the network of the second candidate alone gives its voltages
+    assert net.take(np.array([1]), 2).solve({"a": np.full(1, 1e-3)}, ["a"])["a"] == pytest.approx([4.5])
