@@ -10,6 +10,7 @@ shortlist and the REST service alike.
 from __future__ import annotations
 
 import math
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -25,7 +26,7 @@ from optimizer.sizing import size_capacitors, size_decoupling
 from optimizer.spec import NOMINAL_TEMPERATURE_C, Spec
 from optimizer.tolerance import worst_case
 from optimizer.topologies import get_topology
-from optimizer.topologies.base import Conditions, StageResult, Topology
+from optimizer.topologies.base import Conditions, Topology
 from optimizer.units import format_value
 
 DEFAULT_POWER_RATING = 0.125  # W, when a value is not in the catalog (common 0805 rating)
@@ -92,14 +93,51 @@ def assess(
     """The candidate record (DESIGN.md's candidate JSON plus operating point and its spread,
     ratings, worst case, yield, the basis it meets the spec on, cautions) of one design under
     ``spec``. Capacitors not in ``parts`` are sized."""
+    return assess_many(spec, catalog, [(topology_name, parts, device_id)], samples=samples, seed=seed)[0]
+
+
+Design = tuple[str, dict[str, float], "str | None"]  # (topology, part values by role in ohm or F, device id)
+
+
+def assess_many(
+    spec: Spec, catalog: Catalog, designs: list[Design], *, samples: int = FINAL_BUILDS, seed: int | None = None
+) -> list[dict]:
+    """:func:`assess` of each of ``designs``, in order. Designs of one topology, device and set
+    of parts are judged together, one vectorised model call per step (sizing, nominal, Monte
+    Carlo builds, worst-case corners, bias spread) instead of one per design: the figures are
+    the same as one at a time, since every step is per design and the Monte Carlo builds are
+    common random numbers (tolerance.Builds)."""
+    groups: dict[tuple[str, str, tuple[str, ...]], list[int]] = {}
+    for k, (topology_name, parts, device_id) in enumerate(designs):
+        topology = get_topology(topology_name)
+        _check_parts(topology, parts, spec.supply_arrangement == "split")
+        # the roles evaluated, and which of them are present (an optional part left out is 0)
+        roles = tuple((role, float(v) > 0) for role, v in parts.items() if float(v) > 0 or role in topology.resistors)
+        groups.setdefault((topology_name, device_id or spec.devices[0], roles), []).append(k)
+    out: list[dict] = [{}] * len(designs)
+    for (topology_name, device_id, roles), members in groups.items():
+        values = {role: np.array([float(designs[k][1][role]) for k in members]) for role, _ in roles}
+        for k, record in zip(members, _assess_group(spec, catalog, topology_name, values, device_id, samples, seed)):
+            out[k] = record
+    return out
+
+
+def _assess_group(
+    spec: Spec,
+    catalog: Catalog,
+    topology_name: str,
+    arrays: dict[str, np.ndarray],
+    device_id: str,
+    samples: int,
+    seed: int | None,
+) -> list[dict]:
+    """The candidate records of designs of one topology and device, part values as arrays by role."""
     topology = get_topology(topology_name)
-    _check_parts(topology, parts, spec.supply_arrangement == "split")
-    device_id = device_id or spec.devices[0]
     device = device_from_row(catalog.transistor(device_id))
     conditions = scoring.conditions_from_spec(spec)
-    arrays = {role: np.array([float(v)]) for role, v in parts.items() if float(v) > 0 or role in topology.resistors}
+    n = next(iter(arrays.values())).size
     if topology.couples_directly(spec.supply_arrangement, spec.input_coupling) and "c_in" not in arrays:
-        arrays["c_in"] = np.zeros(1)  # a direct-coupled input: the source wired to the base
+        arrays["c_in"] = np.zeros(n)  # a direct-coupled input: the source wired to the base
     decoupled = "r_decouple" in arrays
     missing_caps = [c for c in topology.capacitors + (("c_decouple",) if decoupled else ()) if c not in arrays]
     if missing_caps:
@@ -110,8 +148,8 @@ def assess(
             allow_class2=spec.parts.allow_class2_coupling,
         )
         tolerances = catalog.parts_for("capacitor", allowed)["tolerance"].to_numpy(dtype=float)
-        held = {"c_decouple": arrays.get("c_decouple", np.array([allowed[-1]]))} if decoupled else {}
-        held.update({"c_in": arrays["c_in"]} if "c_in" in arrays and arrays["c_in"][0] == 0 else {})
+        held = {"c_decouple": arrays.get("c_decouple", np.full(n, allowed[-1]))} if decoupled else {}
+        held.update({"c_in": arrays["c_in"]} if "c_in" in arrays and not np.any(arrays["c_in"]) else {})
         stage = {r: arrays[r] for r in topology.resistors + topology.supply_parts if r in arrays}
         sized = size_capacitors(
             topology,
@@ -127,82 +165,111 @@ def assess(
                 topology, arrays, device, conditions, allowed, scoring.decoupling_target(spec, tolerances)
             )
 
-    records = {role: _part_record(catalog, spec, role, float(v[0])) for role, v in arrays.items()}
+    records = [{role: _part_record(catalog, spec, role, float(v[j])) for role, v in arrays.items()} for j in range(n)]
+
+    def column(role: str, key: str) -> np.ndarray:
+        return np.array([r[role][key] for r in records])
+
     limits = scoring.rating_limits(
         spec,
-        {r: rec["rating"] for r, rec in records.items() if not r.startswith("c_") and rec["value"] > 0},
-        {c: rec["rating"] for c, rec in records.items() if c.startswith("c_")},
+        {r: column(r, "rating") for r in arrays if not r.startswith("c_") and records[0][r]["value"] > 0},
+        {c: column(c, "rating") for c in arrays if c.startswith("c_")},
         device,
     )
-
     result = topology.evaluate(arrays, device, conditions, full=True, thd_solve=True)
-    metrics: dict[str, float | None] = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
-    metrics["gain_error_db"] = float(scoring.gain_error_db(spec, np.array([metrics["gain"]]))[0])
-    metrics.update({k: None for k, v in metrics.items() if v is None or not math.isfinite(v)})  # no figure (no loop)
     nominal = scoring.limit_violations(spec, result.metrics, result.ratings, limits, result.operating_point["active"])
-    tolerances = {role: rec["tolerance"] for role, rec in records.items()}
+    tolerances = {role: column(role, "tolerance") for role in arrays}
     judged = judge(
         spec, topology, arrays, device, conditions, tolerances, limits, nominal, full=True, builds=samples, seed=seed
     )
     spread = worst_case(topology, arrays, device, conditions, tolerances, tuple(spec.temperature), spec.supply_spread)
     violations = judged.violations
-    feasible = bool(scoring.total_violation(violations)[0] == 0)
-    build_yield = float(judged.yield_fraction[0])
-    metrics.update(
-        {"yield": build_yield if np.isfinite(build_yield) else None, "ic_spread": float(judged.spread["ic_spread"][0])}
-    )
-    op = {k: float(np.asarray(v)[0]) for k, v in result.operating_point.items()}
-    return candidate_record(
-        topology=topology.name,
-        feasible=feasible,
-        basis=basis_label(spec, feasible, build_yield, judged.builds),
-        conditions=record_conditions(spec),
-        parts={role: {k: rec[k] for k in ("value", "label", "part_id")} for role, rec in records.items()},
-        transistor=device.record(),
-        metrics=metrics,
-        operating_point=op,
-        operating_point_spread={
-            "ic": [float(judged.spread["ic_low"][0]), op["ic"], float(judged.spread["ic_high"][0])],
-            "v_out_q": [float(judged.spread["v_out_low"][0]), op["v_out_q"], float(judged.spread["v_out_high"][0])],
-        },
-        ratings={
-            k: {
-                "value": float(np.asarray(result.metrics["q_power"] if k == "q_power" else result.ratings[k])[0]),
-                "limit": float(limit),
+    feasible = scoring.total_violation(violations) == 0
+    gain_error = scoring.gain_error_db(spec, np.asarray(result.metrics["gain"], dtype=float))
+    near = scoring.near_ratings(result.ratings, result.metrics, limits)
+    out = []
+    for j in range(n):
+        at = partial(_entry, j=j)
+        metrics: dict[str, float | None] = {k: at(v) for k, v in result.metrics.items()}
+        metrics["gain_error_db"] = float(gain_error[j])
+        metrics.update(
+            {k: None for k, v in metrics.items() if v is None or not math.isfinite(v)}
+        )  # no figure (no loop)
+        build_yield = float(judged.yield_fraction[j])
+        metrics.update(
+            {
+                "yield": build_yield if np.isfinite(build_yield) else None,
+                "ic_spread": float(judged.spread["ic_spread"][j]),
             }
-            for k, limit in limits.items()
-        },
-        worst_case={k: [float(spread[k][0][0]), float(spread[k][1][0])] for k in WORST_CASE_METRICS if k in spread},
-        violations={k: float(v[0]) for k, v in violations.items() if v[0] > 0},
-        cautions=_cautions(spec, result, limits),
-    )
+        )
+        op = {k: at(v) for k, v in result.operating_point.items()}
+        out.append(
+            candidate_record(
+                topology=topology.name,
+                feasible=bool(feasible[j]),
+                basis=basis_label(spec, bool(feasible[j]), build_yield, judged.builds),
+                conditions=record_conditions(spec),
+                parts={role: {k: rec[k] for k in ("value", "label", "part_id")} for role, rec in records[j].items()},
+                transistor=device.record(),
+                metrics=metrics,
+                operating_point=op,
+                operating_point_spread={
+                    "ic": [float(judged.spread["ic_low"][j]), op["ic"], float(judged.spread["ic_high"][j])],
+                    "v_out_q": [
+                        float(judged.spread["v_out_low"][j]),
+                        op["v_out_q"],
+                        float(judged.spread["v_out_high"][j]),
+                    ],
+                },
+                ratings={
+                    k: {
+                        "value": at(result.metrics["q_power"] if k == "q_power" else result.ratings[k]),
+                        "limit": at(limit),
+                    }
+                    for k, limit in limits.items()
+                },
+                worst_case={k: [at(spread[k][0]), at(spread[k][1])] for k in WORST_CASE_METRICS if k in spread},
+                violations={k: at(v) for k, v in violations.items() if at(v) > 0},
+                cautions=_cautions(spec, {k: at(v) for k, v in near.items()}, metrics, op),
+            )
+        )
+    return out
 
 
-def _cautions(spec: Spec, result: StageResult, rating_limits: dict[str, float | np.ndarray]) -> list[str]:
+def _entry(value: object, j: int) -> float:
+    """Entry ``j`` of an array over designs (a scalar is every design's)."""
+    return float(np.asarray(value).reshape(-1)[j] if np.ndim(value) else value)  # type: ignore[arg-type]
+
+
+def _cautions(spec: Spec, near: dict[str, float], metrics: dict[str, float | None], op: dict[str, float]) -> list[str]:
+    """Cautions of one design: the ratings it runs near (``near``: fraction of each rating,
+    scoring.near_ratings), the limits it meets by less than NEAR_LIMIT, a direct-coupled input's
+    DC at the source (``op``: its operating point), and the usual ones."""
     notes = []
-    for key, fraction in scoring.near_ratings(result.ratings, result.metrics, rating_limits).items():
-        notes.append(f"{key} runs at {fraction[0]:.0%} of its rating; check the part before building")
-    metrics = {k: float(np.asarray(v)[0]) for k, v in result.metrics.items()}
+    for key, fraction in near.items():
+        if fraction > scoring.NEAR_RATING:
+            notes.append(f"{key} runs at {fraction:.0%} of its rating; check the part before building")
     for limit_name, metric, sign in LIMIT_METRICS:
         limit = getattr(spec.limits, limit_name)
-        if limit is None or not np.isfinite(metrics[metric]):
+        value = metrics[metric]
+        if limit is None or value is None or not np.isfinite(value):
             continue
-        margin = sign * (metrics[metric] - limit) / limit
+        margin = sign * (value - limit) / limit
         if 0 <= margin < NEAR_LIMIT:
             notes.append(f"{metric} is within {margin:.0%} of its limit {limit_name} = {limit:g}")
-    notes += direct_input_notes(spec, result.operating_point)
+    notes += direct_input_notes(spec, op)
     notes.append("predicted, not measured: verify the built stage before relying on it")
     return notes + hazard_cautions(spec)
 
 
-def direct_input_notes(spec: Spec, op: dict[str, np.ndarray]) -> list[str]:
+def direct_input_notes(spec: Spec, op: dict[str, float]) -> list[str]:
     """Where the source is wired to the base (a direct-coupled input: op ``i_source`` non-zero),
     the DC the source then sees: the base's voltage (V, at its terminals) and the base current
     through it (A), which shift the bias by that current times the source's resistance."""
-    i_source = float(np.asarray(op.get("i_source", [0.0]))[0])
+    i_source = float(op.get("i_source", 0.0))
     if i_source == 0:
         return []
-    v_base = float(np.asarray(op["v_base"])[0])
+    v_base = float(op["v_base"])
     return [
         f"direct-coupled input: the base current, {format_value(abs(i_source), 'A')} DC, flows in the source's "
         f"{format_value(spec.source_impedance, 'Ω')}: the source sees {format_value(v_base, 'V')} at its "

@@ -46,3 +46,31 @@ def test_the_private_names_storage_uses_exist() -> None:
     from optuna.storages.journal._storage import JournalOperation
 
     assert storage._CREATE_TRIAL == JournalOperation.CREATE_TRIAL
+
+
+def test_tell_stores_what_study_tell_stores() -> None:
+    """storage.tell (no returned deep copy) against Optuna's own Study.tell on twin studies:
+    the same state, values and constraint stored, and the sampler's after_trial called."""
+    import optuna
+
+    from optimizer import storage
+
+    calls: list[int] = []
+
+    class Recording(optuna.samplers.RandomSampler):
+        def after_trial(self, study, trial, state, values):  # type: ignore[no-untyped-def]
+            calls.append(trial.number)
+            super().after_trial(study, trial, state, values)
+
+    stored = []
+    for finish in (lambda s, t, v: s.tell(t, v), storage.tell):
+        study = optuna.create_study(directions=["minimize", "maximize"], sampler=Recording(seed=3))
+        trial = study.ask()
+        trial.suggest_int("x", 0, 9)
+        trial.set_constraint("violation", 0.25)
+        finish(study, trial, [1.5, 2])
+        frozen = study.get_trials(deepcopy=False)[0]
+        stored.append((frozen.state, frozen.values, frozen.params, frozen.system_attrs))
+    assert stored[0] == stored[1]
+    assert stored[0][0] == optuna.trial.TrialState.COMPLETE and stored[0][1] == [1.5, 2.0]
+    assert calls == [0, 0]

@@ -31,14 +31,15 @@ SHORTLIST_REACH = 24  # most designs assessed in full while looking for SHORTLIS
 FRONT_YIELD_POINTS = 8  # front points (evenly spread along it) that carry a yield figure
 
 
-def _design_key(record: dict) -> tuple:
+def design_key(record: dict) -> tuple:
+    """What tells designs apart: topology, device and part values."""
     return (record["topology"], record["device"], tuple(sorted(record["parts"].items())))
 
 
 def rank_records(records: list[dict]) -> list[dict]:
     """Distinct designs ranked: feasible by score (high first), then infeasible by total
     violation (small first); duplicates collapsed."""
-    unique = list({_design_key(r): r for r in records}.values())
+    unique = list({design_key(r): r for r in records}.values())
     return sorted(unique, key=lambda r: (not r["feasible"], -r["score"] if r["feasible"] else r["total_violation"]))
 
 
@@ -213,14 +214,22 @@ def candidate_from_record(space: SearchSpace, record: dict) -> dict:
     )
 
 
-def shortlist_candidate(space: SearchSpace, record: dict, samples: int) -> dict:
-    """The full assessment (worst case, yield, ratings, cautions) of a ranked design; its score
-    is the record's times the yield of its builds (on the yield basis)."""
-    from optimizer.candidates import assess  # the single place a design is judged in full
+def shortlist_candidates(space: SearchSpace, records: list[dict], samples: int) -> list[dict]:
+    """The full assessment (worst case, yield, ratings, cautions) of ranked designs, judged
+    together (candidates.assess_many); each score is the record's times the yield of its
+    builds (on the yield basis)."""
+    from optimizer.candidates import assess_many  # the single place a design is judged in full
 
-    full = assess(
-        space.spec, space.catalog, record["topology"], dict(record["parts"]), record["device"], samples=samples
+    assessed = assess_many(
+        space.spec,
+        space.catalog,
+        [(r["topology"], dict(r["parts"]), r["device"]) for r in records],
+        samples=samples,
     )
+    return [_shortlisted(record, full) for record, full in zip(records, assessed)]
+
+
+def _shortlisted(record: dict, full: dict) -> dict:
     full["metrics"].update({k: record["metrics"][k] for k in ("cost", "unique_values") if k in record["metrics"]})
     build_yield = full["metrics"].get("yield")
     terms = dict(record.get("score_terms") or {})

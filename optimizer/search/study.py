@@ -23,12 +23,13 @@ from optimizer.search.ranking import (
     SHORTLIST_SAMPLES,
     SHORTLIST_SIZE,
     candidate_from_record,
+    design_key,
     fold_variants,
     front_records,
     rank_key,
     rank_records,
     relax_one_limit,
-    shortlist_candidate,
+    shortlist_candidates,
     trial_record,
 )
 from optimizer.search.space import Design, SearchSpace
@@ -45,6 +46,7 @@ from optimizer.storage import (
     study_storage,
     sync,
     tally,
+    tell,
 )
 
 
@@ -185,7 +187,7 @@ def run_search(
     open_trials: list[optuna.Trial] = []  # asked and not yet told (failed if the run is interrupted)
     try:
         while True:
-            if study.user_attrs.get("status") == "cancelled" or (should_stop and should_stop()):
+            if study_attrs(study).get("status") == "cancelled" or (should_stop and should_stop()):
                 return
             recover_stale_trials(storage, study)  # a dead runner's trials (heartbeats): failed, queued again
             with TrialHeartbeat(storage) as heartbeat:
@@ -218,7 +220,7 @@ def run_search(
                     for t, (record, violation, objectives) in zip(trials, records):
                         t.set_user_attr("record", record)
                         t.set_constraint("violation", violation)
-                        study.tell(t, objectives)
+                        tell(study, t, objectives)
                         open_trials.remove(t)
             sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
             batches += 1
@@ -277,20 +279,28 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     every one that meets it."""
     every = rank_records(completed_records(study))
     ranked = fold_variants(space, every)
+    reach = ranked[: max(top, SHORTLIST_REACH)]
     shortlist: list[dict] = []
-    for r in ranked[: max(top, SHORTLIST_REACH)]:
-        shortlist.append(shortlist_candidate(space, r, samples))
-        if len(shortlist) >= top and sum(c["feasible"] for c in shortlist) >= top:
+    # in rank order until `top` of them meet the spec: assessed together, as many at a time as
+    # could still be needed, which stops exactly where one at a time would
+    while len(shortlist) < len(reach):
+        feasible = sum(c["feasible"] for c in shortlist)
+        if len(shortlist) >= top and feasible >= top:
             break
+        wanted = max(top - len(shortlist), top - feasible)
+        shortlist += shortlist_candidates(space, reach[len(shortlist) : len(shortlist) + wanted], samples)
+    assessed = {design_key(r): dict(c) for r, c in zip(reach, shortlist)}  # copied before ranks are set
     shortlist.sort(key=lambda c: (not c["feasible"], -c["score"] if c["feasible"] else c["total_violation"]))
     candidates = shortlist + [candidate_from_record(space, r) for r in ranked[len(shortlist) :] if tail]
     for rank, c in enumerate(candidates, 1):
         c["rank"] = rank
     points = front_records(space, ranked)
     with_yield = set(np.linspace(0, len(points) - 1, min(len(points), FRONT_YIELD_POINTS)).round().astype(int))
+    to_assess = [r for k, r in enumerate(points) if k in with_yield and design_key(r) not in assessed]
+    assessed.update((design_key(r), c) for r, c in zip(to_assess, shortlist_candidates(space, to_assess, samples)))
     front = []
     for k, r in enumerate(points):
-        c = shortlist_candidate(space, r, samples) if k in with_yield else candidate_from_record(space, r)
+        c = dict(assessed[design_key(r)]) if k in with_yield else candidate_from_record(space, r)
         c["objectives"] = r["objectives"]
         front.append(c)
     summary = {"candidates": candidates, "front": front, "evaluated": len(ranked)}

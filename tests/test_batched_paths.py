@@ -1,0 +1,80 @@
+"""The batched paths of the search against their plain one-at-a-time counterparts: the same
+figures whichever way they are computed (no timing here; speed lives in benchmarks/)."""
+
+from __future__ import annotations
+
+import optuna
+
+from optimizer.candidates import assess, assess_many
+from optimizer.catalog import load_catalog
+from optimizer.search import SearchSpace, create_search, open_storage, run_search
+from optimizer.search.ranking import SHORTLIST_REACH, fold_variants, rank_records, shortlist_candidates
+from optimizer.search.study import completed_records, load_study, summarise
+from optimizer.spec import load_spec
+
+SAMPLES = 40  # Monte Carlo builds per design: enough to tell designs apart, quick
+
+# The band's -3 dB corners are found by a refinement whose step count is set per model call
+# (physics._corners adds steps to every design of a call when one of them peaks near its
+# corner), so a corner agrees to that refinement's tolerance, not to the last bit; every
+# other figure, verdict and part agrees exactly.
+REL = 1e-4
+
+
+def same(a: object, b: object, path: str = "") -> list[str]:
+    """Where two records differ: numbers beyond REL (relative), anything else at all."""
+    if isinstance(a, dict) and isinstance(b, dict):
+        return [d for k in a.keys() | b.keys() for d in same(a.get(k), b.get(k), f"{path}.{k}")]
+    if isinstance(a, list) and isinstance(b, list) and len(a) == len(b):
+        return [d for k, (x, y) in enumerate(zip(a, b)) for d in same(x, y, f"{path}[{k}]")]
+    if isinstance(a, float) and isinstance(b, float):
+        close = a == b or (a != a and b != b) or abs(a - b) <= REL * max(abs(a), abs(b))
+        return [] if close else [f"{path}: {a} != {b}"]
+    return [] if a == b else [f"{path}: {a!r} != {b!r}"]
+
+
+def _designs(spec, count: int) -> list[tuple[str, dict[str, float], str]]:
+    """The first ``count`` ranked designs of a short seeded search of ``spec``: several
+    topologies and devices, some meeting the spec and some not."""
+    storage = open_storage(None)
+    search_id = create_search(spec, storage)
+    run_search(storage, search_id, finish=False)
+    study, _ = load_study(storage, search_id)
+    ranked = rank_records(completed_records(study))
+    picked = ranked[: count // 2] + ranked[-(count - count // 2) :]  # best and worst
+    return [(r["topology"], dict(r["parts"]), r["device"]) for r in picked]
+
+
+def test_assess_many_gives_each_design_what_assess_gives_it_alone() -> None:
+    spec = load_spec("specs/bench_stock_preamp.yaml")
+    spec = spec.model_copy(update={"search": spec.search.model_copy(update={"trials": 256})})
+    catalog = load_catalog(spec.parts.catalog)
+    designs = _designs(spec, 10)
+    assert len({(t, d) for t, _, d in designs}) > 1  # more than one group: grouping is exercised
+    together = assess_many(spec, catalog, designs, samples=SAMPLES)
+    alone = [assess(spec, catalog, t, parts, d, samples=SAMPLES) for t, parts, d in designs]
+    assert same(together, alone) == []
+    assert {c["feasible"] for c in alone} == {True, False}  # both verdicts compared
+
+
+def test_the_shortlist_stops_where_one_at_a_time_stops() -> None:
+    """summarise assesses several ranked designs per call; the plain loop (one design per
+    call, stop once `top` meet the spec or SHORTLIST_REACH were tried) picks the same ones."""
+    spec = load_spec("specs/bench_stock_preamp.yaml")
+    spec = spec.model_copy(update={"search": spec.search.model_copy(update={"trials": 256})})
+    storage = open_storage(None)
+    search_id = create_search(spec, storage)
+    run_search(storage, search_id, finish=False)
+    study, _ = load_study(storage, search_id)
+    space = SearchSpace.build(spec)
+    ranked = fold_variants(space, rank_records(completed_records(study)))
+    for top in (1, 4):
+        plain: list[dict] = []
+        for r in ranked[: max(top, SHORTLIST_REACH)]:
+            plain += shortlist_candidates(space, [r], SAMPLES)
+            if len(plain) >= top and sum(c["feasible"] for c in plain) >= top:
+                break
+        plain.sort(key=lambda c: (not c["feasible"], -c["score"] if c["feasible"] else c["total_violation"]))
+        summary = summarise(space, study, top, SAMPLES, tail=False)
+        assert same([{**c, "rank": None} for c in summary["candidates"]], [{**c, "rank": None} for c in plain]) == []
+    assert isinstance(study, optuna.Study)
