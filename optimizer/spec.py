@@ -423,7 +423,11 @@ class Search(_Section):
 
     trials: _count(1, MAX_TRIALS, "2k") = 2000
     seed: _count(0, 2**32 - 1, "0") = 0
-    batch_size: _count(1, MAX_BATCH, "64") = 64
+    batch_size: _count(1, MAX_BATCH, "64") = Field(
+        64,
+        description="designs per model call: a batch asks this many trials for each topology-device "
+        "pair the search offers, at most a thirty-second of the trials and never fewer than this",
+    )
     capacitors: Literal["sized", "searched"] = Field(
         "sized",
         description="sized: the smallest series values meeting the band's low corner, chosen "

@@ -78,3 +78,27 @@ def test_the_shortlist_stops_where_one_at_a_time_stops() -> None:
         summary = summarise(space, study, top, SAMPLES, tail=False)
         assert same([{**c, "rank": None} for c in summary["candidates"]], [{**c, "rank": None} for c in plain]) == []
     assert isinstance(study, optuna.Study)
+
+
+def test_a_batch_asks_batch_size_for_each_topology_device_pair_within_the_cap() -> None:
+    """batch_trials against its rule worked out by hand here, and run_search asking exactly
+    that many trials per batch (the finished count at each batch, via progress) until the
+    budget is met."""
+    from optimizer.search.study import MIN_BATCHES, batch_trials
+
+    spec = load_spec("specs/contact_pickup_buffer.yaml")
+    space = SearchSpace.build(spec)
+    pairs = sum(len(space.devices_of(t)) for t in space.topologies)
+    assert pairs > 1
+    size = spec.search.batch_size
+    assert batch_trials(space, 100 * size * pairs * MIN_BATCHES) == size * pairs  # plenty of budget
+    assert batch_trials(space, size * MIN_BATCHES) == size  # capped, never below batch_size
+    budget = 24 * MIN_BATCHES + 5  # small: batch_size 8 per pair would be 8 * pairs, capped at 24
+    small = spec.model_copy(update={"search": spec.search.model_copy(update={"trials": budget, "batch_size": 8})})
+    per_batch = batch_trials(SearchSpace.build(small), budget)
+    assert per_batch == min(8 * pairs, 24) and per_batch > 8
+    seen: list[int] = []
+    storage = open_storage(None)
+    search_id = create_search(small, storage)
+    run_search(storage, search_id, progress=lambda done, _: seen.append(done), finish=False)
+    assert seen == list(range(0, budget, per_batch)) + [budget]

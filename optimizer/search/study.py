@@ -149,6 +149,20 @@ def trial_counts(study: optuna.Study) -> tuple[int, int]:
     return counted.complete, counted.running
 
 
+MIN_BATCHES = 32  # a search runs at least this many batches (budget allowing): the sampler learns between them
+
+
+def batch_trials(space: SearchSpace, budget: int) -> int:
+    """Trials asked per batch: the spec's ``batch_size`` for each (topology, device) pair of the
+    space, at most ``budget`` / MIN_BATCHES and never fewer than ``batch_size``. Each pair is
+    one vectorised model call per batch, and below some 64 designs a call costs mostly its
+    fixed overhead: a spec offering several pairs would otherwise pay that overhead on a few
+    designs each (benchmarks/results/startup.md)."""
+    size = space.spec.search.batch_size
+    pairs = sum(len(space.devices_of(t)) for t in space.topologies)
+    return max(size, min(size * pairs, budget // MIN_BATCHES))
+
+
 def run_search(
     storage: BaseStorage,
     search_id: str,
@@ -181,6 +195,7 @@ def run_search(
     if study.user_attrs.get("status") in ("queued", "failed"):
         study.set_user_attr("status", "running")
         study.set_user_attr("started", time.time())
+    per_batch = batch_trials(space, budget)
     batches = 0
     # designs this runner has evaluated (samplers revisit them): (record as stored, violation, objectives)
     known: dict[Design, tuple[str, float, list[float]]] = {}
@@ -195,7 +210,7 @@ def run_search(
                     finished, running = trial_counts(study)
                     if progress:
                         progress(finished, budget)
-                    wanted = min(spec.search.batch_size, budget - finished - running)
+                    wanted = min(per_batch, budget - finished - running)
                     if wanted <= 0 or (max_batches is not None and batches >= max_batches):
                         break
                     open_trials = []
