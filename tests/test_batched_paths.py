@@ -14,10 +14,9 @@ from optimizer.spec import load_spec
 
 SAMPLES = 40  # Monte Carlo builds per design: enough to tell designs apart, quick
 
-# The band's -3 dB corners are found by a refinement whose step count is set per model call
-# (physics._corners adds steps to every design of a call when one of them peaks near its
-# corner), so a corner agrees to that refinement's tolerance, not to the last bit; every
-# other figure, verdict and part agrees exactly.
+# A -3 dB corner is refined by iteration until it stops moving (physics._corners), so whether a
+# design is solved alone or among others can move it within that tolerance, not beyond;
+# every other figure, verdict and part agrees exactly.
 REL = 1e-4
 
 
