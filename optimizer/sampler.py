@@ -18,10 +18,15 @@ sampling them independently:
   which keeps their ratios (a divider's bias point, a gain set by Rc/Re) while scaling the
   impedance level and so the current, a move single steps cannot make without passing
   through infeasible designs;
-- whenever the best design changes, and for the front's two ends and one other front point
-  per batch, every neighbour one step away (each index, each pair, and all indices together,
-  +-1) is queued and tried first, so the search does not stop one step short of a local
-  optimum or of the front's next point (a pattern search around the incumbents);
+- whenever the best design changes, for the front's two ends, for every design new on the
+  front and for every new design that misses the front by less than NEAR_FRONT of its span,
+  every neighbour one step away (each index, each pair both ways and one up one down, each
+  group of three, and all indices together, +-1) is queued and tried first, newest centre
+  first, so the search does not stop one step short of a local optimum or of the front's
+  next point (a pattern search around the incumbents). The near-front designs carry the
+  front along ridges that single steps leave: in the split-emitter stage the swing peaks
+  where r_emitter_dc centres the bias, and that peak moves three or four steps of
+  r_emitter_dc for each step of the divider, through designs just behind the front;
 - designs already proposed are not proposed again while an untried neighbour is found.
 
 Before any design is finished it samples at random; enqueued seeds are taken as given.
@@ -54,6 +59,8 @@ REFRESH_EVERY = 8  # trials between looks at the finished trials (a batch finish
 P_SCALE = 0.1  # share of moves that step every index together (gain and bias ratios kept, current scaled)
 P_COUPLED = 0.5  # share of multi-parameter moves that step every chosen index by the same amount
 P_QUEUED = 0.5  # share of proposals taken from the queue of incumbents' neighbours while it lasts
+SWEEP_SAME_SIGN = 3  # a sweep steps every group of up to this many indices together (and all of them)
+NEAR_FRONT = 0.03  # designs missing the front by less than this share of its span per objective are swept too
 
 
 class NeighbourSampler(BaseSampler):
@@ -147,30 +154,52 @@ class NeighbourSampler(BaseSampler):
         keep = pareto_mask(np.array([t.values for t in feasible]), self._directions) if feasible else []
         self._front = [t for t, k in zip(feasible, keep) if k]
         self._crowding = _crowding_distance(np.array([t.values for t in self._front]))
+        fresh = {trial_id(t) for t in new}
         centres = self._elite[:1]
-        if self._front:  # the front's two ends (they bound its hypervolume) and a random point
+        if self._front:  # the front's two ends (they bound its hypervolume) and every point new on it
             ends = sorted(self._front, key=lambda t: t.values[0])
-            centres += [ends[0], ends[-1], self._front[self._py.randrange(len(self._front))]]
-        for centre in centres:
+            on_front = {trial_id(t) for t in self._front}
+            off = [t for t in feasible if trial_id(t) in fresh and trial_id(t) not in on_front]
+            near = [t for t, k in zip(off, self._near_front(off)) if k] if off else []
+            centres += near + [ends[0], ends[-1]] + [t for t in self._front if trial_id(t) in fresh]
+        for centre in reversed(centres):  # queued first: the best design's, then the front's, then near it
             self._sweep(dict(centre.params))
 
+    def _near_front(self, trials: list[FrozenTrial]) -> np.ndarray:
+        """Which of ``trials`` (feasible, off the front) miss it by less than NEAR_FRONT of
+        the front's span on every objective: the path to the front's next stretch often
+        runs through such designs."""
+        sign = np.array([1.0 if d == "minimise" else -1.0 for d in self._directions])
+        front = np.array([t.values for t in self._front]) * sign
+        span = front.max(axis=0) - front.min(axis=0)
+        shifted = np.array([t.values for t in trials]) * sign - NEAR_FRONT * span
+        return ~np.any(np.all(front[None, :, :] <= shifted[:, None, :], axis=2), axis=1)
+
     def _sweep(self, params: dict[str, Any]) -> None:
-        """Queue every untried neighbour of ``params`` one step away along each index, each
-        pair of indices and all of them together (+-1), once per centre."""
+        """Queue every untried neighbour of ``params`` one step away (+-1) along each index,
+        each pair of indices (both ways, or one up and one down), each SWEEP_SAME_SIGN group
+        stepped together and all of them together, once per centre, ahead of the queue:
+        the newest centres are followed first (a front's moving end is chased, not left
+        behind a backlog)."""
         key = self._key(params)
         if key in self._swept:
             return
         self._swept.add(key)
         ints = [(n, d) for n, d in self._group_params(params).items() if isinstance(d, IntDistribution)]
         names = [n for n, _ in ints]
-        groups = [(n,) for n in names] + list(itertools.combinations(names, 2)) + [tuple(names)]
         bounds = dict(ints)
-        for group in groups:
-            for step in (-1, 1):
-                neighbour = {**params, **{n: params.get(n, bounds[n].low) + step for n in group}}
-                inside = all(bounds[n].low <= neighbour[n] <= bounds[n].high for n in group)
-                if inside and self._key(neighbour) not in self._seen:
-                    self._queue.append(neighbour)
+        groups = [g for size in range(1, SWEEP_SAME_SIGN + 1) for g in itertools.combinations(names, size)]
+        if len(names) > SWEEP_SAME_SIGN:
+            groups.append(tuple(names))
+        moves = [{n: s for n in group} for group in groups for s in (-1, 1)]
+        moves += [{a: s, b: -s} for a, b in itertools.combinations(names, 2) for s in (-1, 1)]
+        queued = []
+        for move in moves:
+            neighbour = {**params, **{n: params.get(n, bounds[n].low) + step for n, step in move.items()}}
+            inside = all(bounds[n].low <= neighbour[n] <= bounds[n].high for n in move)
+            if inside and self._key(neighbour) not in self._seen:
+                queued.append(neighbour)
+        self._queue[:0] = queued
 
     def _propose(self) -> dict[str, Any]:
         while self._queue and self._py.random() < P_QUEUED:

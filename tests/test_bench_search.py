@@ -36,3 +36,24 @@ def test_maximised_axes_are_negated_and_the_reference_is_nadir_plus_a_tenth_of_t
     assert ref == pytest.approx([2.1e-3, -3.8])
     # slabs: [1, 2] mA x [-4, -3.8] V and [2, 2.1] mA x [-6, -3.8] V
     assert bench_search.hypervolume_2d(points, ref) == pytest.approx(1e-3 * 0.2 + 0.1e-3 * 2.2)
+
+
+def test_front_rows_read_back_and_replace_only_their_specs() -> None:
+    # the front table of results/search.md is rebuilt from rows kept per (spec, screen mode):
+    # a run of one spec replaces that spec's rows and keeps the others and the rest of the file
+    rows = {("a", "off"): "| a | off | x |", ("a", "on"): "| a | on | x |", ("b", "on"): "| b | on | y |"}
+    text = bench_search.with_front_section("# Search benchmark\n\n## Quality\n\nbody\n", rows)
+    assert bench_search.stored_front_rows(text) == rows
+    again = bench_search.with_front_section(text + "\n## Later\n\nkept\n", {**rows, ("a", "on"): "| a | on | z |"})
+    assert bench_search.stored_front_rows(again)[("a", "on")] == "| a | on | z |"
+    assert bench_search.stored_front_rows(again)[("b", "on")] == "| b | on | y |"
+    assert again.count(bench_search.FRONT_HEADING) == 1 and "## Quality\n\nbody" in again and "## Later\n\nkept" in again
+
+
+def test_screen_modes_change_only_the_robustness_basis() -> None:
+    spec = bench_search.load_spec(bench_search.SPECS / "bs_e24_split_guitar.yaml")
+    off, on = bench_search.screened(spec, "off"), bench_search.screened(spec, "on")
+    assert (off.robustness, on.robustness) == ("nominal", spec.robustness)
+    assert bench_search.screen_mode(off) == "off" and bench_search.screen_mode(on) == "on"
+    assert bench_search.screened(off, "on").robustness == "yield"
+    assert bench_search.spec_to_dict(off) | {"robustness": spec.robustness} == bench_search.spec_to_dict(spec)

@@ -309,7 +309,7 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     candidates = shortlist + [candidate_from_record(space, r) for r in ranked[len(shortlist) :] if tail]
     for rank, c in enumerate(candidates, 1):
         c["rank"] = rank
-    points = front_records(space, ranked)
+    points = front_records(space, every)  # every feasible design: a folded variant can be on the front
     with_yield = set(np.linspace(0, len(points) - 1, min(len(points), FRONT_YIELD_POINTS)).round().astype(int))
     to_assess = [r for k, r in enumerate(points) if k in with_yield and design_key(r) not in assessed]
     assessed.update((design_key(r), c) for r, c in zip(to_assess, shortlist_candidates(space, to_assess, samples)))

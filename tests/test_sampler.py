@@ -1,0 +1,94 @@
+"""NeighbourSampler's front-following proposals: the sweep of a centre (which neighbours,
+in bounds, untried, once, newest first), the near-front test, and a whole search that keeps
+its budget and its parameter ranges. Expected sets are written out here by brute force."""
+
+from __future__ import annotations
+
+import itertools
+from pathlib import Path
+
+import optuna
+from optuna.distributions import IntDistribution
+from optuna.trial import TrialState
+
+from optimizer.sampler import NEAR_FRONT, NeighbourSampler
+from optimizer.search import SearchSpace, create_search, run_search, with_search
+from optimizer.spec import load_spec
+from optimizer.storage import open_storage
+
+SPEC = Path(__file__).resolve().parents[1] / "benchmarks" / "specs" / "bs_e24_split_guitar.yaml"
+DISTRIBUTIONS = {n: IntDistribution(0, 5) for n in ("r_a", "r_b", "r_c", "r_d")}
+
+
+def _sampler(directions: list[str] | None = None) -> NeighbourSampler:
+    return NeighbourSampler(lambda t: (0,), directions or ["minimise", "maximise"], lambda p: DISTRIBUTIONS, seed=0)
+
+
+def _expected_neighbours(centre: dict[str, int], tried: set[tuple[int, ...]]) -> set[tuple[int, ...]]:
+    """Every design one step (+-1) away along: up to three indices moved the same way, all four
+    moved the same way, or two moved opposite ways; inside 0..5 and not tried."""
+    out = set()
+    for delta in itertools.product((-1, 0, 1), repeat=4):
+        moved = [d for d in delta if d]
+        same = len(set(moved)) == 1
+        if not moved or not (same or len(moved) == 2):
+            continue
+        point = tuple(v + d for v, d in zip(centre.values(), delta))
+        if all(0 <= v <= 5 for v in point) and point not in tried:
+            out.add(point)
+    return out
+
+
+def test_a_sweep_queues_each_untried_neighbour_in_bounds_once_newest_centre_first() -> None:
+    sampler = _sampler()
+    centre = {"r_a": 0, "r_b": 3, "r_c": 5, "r_d": 2}  # at both ends of the range on two indices
+    tried = {(0, 4, 5, 2), (1, 2, 4, 3)}  # one single step and one mixed step already tried
+    for point in tried:
+        sampler._seen.add(sampler._key(dict(zip(DISTRIBUTIONS, point))))
+    sampler._sweep(centre)
+    queued = [tuple(q[n] for n in DISTRIBUTIONS) for q in sampler._queue]
+    assert len(queued) == len(set(queued))
+    assert set(queued) == _expected_neighbours(centre, tried)
+    sampler._sweep(dict(centre))  # a centre is swept once
+    assert len(sampler._queue) == len(queued)
+    other = {"r_a": 2, "r_b": 2, "r_c": 2, "r_d": 2}
+    sampler._sweep(other)  # the newer centre's neighbours go ahead of the older ones
+    ahead = [tuple(q[n] for n in DISTRIBUTIONS) for q in sampler._queue[: len(sampler._queue) - len(queued)]]
+    assert set(ahead) == _expected_neighbours(other, set())
+    assert sampler._queue[len(ahead) :] == [dict(zip(DISTRIBUTIONS, p)) for p in queued]
+
+
+def _trial(values: list[float]) -> optuna.trial.FrozenTrial:
+    return optuna.trial.create_trial(values=values, params={"r_a": 0}, distributions={"r_a": DISTRIBUTIONS["r_a"]})
+
+
+def test_near_front_means_within_a_share_of_the_span_on_every_objective() -> None:
+    # minimise current, maximise swing; the front spans 2 (current) by 3 (swing)
+    sampler = _sampler()
+    sampler._front = [_trial([1.0, 3.0]), _trial([2.0, 5.0]), _trial([3.0, 6.0])]
+    margin = (NEAR_FRONT * 2.0, NEAR_FRONT * 3.0)
+    # just behind (2, 5): worse by half the margin on both axes -> near
+    close = _trial([2.0 + margin[0] / 2, 5.0 - margin[1] / 2])
+    # behind (2, 5) by twice the margin on both axes -> not near
+    far = _trial([2.0 + 2 * margin[0], 5.0 - 2 * margin[1]])
+    # as much swing as (2, 5) at twice the margin more current: dominated, but no front point
+    # has more swing by the margin at less current -> near
+    side = _trial([2.0 + 2 * margin[0], 5.0])
+    assert sampler._near_front([close, far, side]).tolist() == [True, False, True]
+
+
+def test_a_search_keeps_its_budget_and_proposes_designs_in_range() -> None:
+    spec = with_search(load_spec(SPEC), trials=256, seed=3)
+    store = open_storage(None)
+    search_id = create_search(spec, store)
+    run_search(store, search_id, finish=False)
+    trials = optuna.load_study(study_name=search_id, storage=store).get_trials(deepcopy=False)
+    assert len(trials) == 256 and all(t.state == TrialState.COMPLETE for t in trials)
+    space = SearchSpace.build(spec)
+    designs = set()
+    for t in trials:
+        for name, d in space.distributions(t.params).items():
+            value = t.params[name]
+            assert d.low <= value <= d.high if isinstance(d, IntDistribution) else value in d.choices
+        designs.add(tuple(sorted(t.params.items())))
+    assert len(designs) >= 0.99 * len(trials)  # proposals are untried designs (a rare fallback aside)
