@@ -28,6 +28,7 @@ from spice_agreement import agreement_rows  # noqa: E402
 from spice_designs import (  # noqa: E402
     check_designs,
     direct_coupled_designs,
+    fb_split_designs,
     jfet_check_designs,
     later_polarity_designs,
     polarity_designs,
@@ -41,13 +42,15 @@ def _fmt(value: float | None) -> str:
 def all_designs() -> list:
     """Every check design: the bipolar stages', the JFET stages', then the PNP, negative-rail and
     split-supply versions of two bipolar stages, and the PNP, negative-rail (and the followers'
-    split-supply) versions of the followers and the feedback pair, and the direct-coupled inputs."""
+    split-supply) versions of the followers and the feedback pair, the direct-coupled inputs, and the
+    feedback pair and feedback_ce on split supplies."""
     return (
         check_designs()
         + jfet_check_designs()
         + polarity_designs()
         + later_polarity_designs()
         + direct_coupled_designs()
+        + fb_split_designs()
     )
 
 

@@ -6,8 +6,9 @@ within 3 %, THD at the spec's level (1 V rms where the design swings it, else 30
 level) within 30 %, loop gain within 5 % and phase margin within 10 degrees. ngspice's loop
 gain is measured by double injection (a series voltage source and a shunt current source at
 r_feedback's end on q1's emitter, after Middlebrook), with the loop closed and biased; the
-model's phase margin comes from its two dominant poles. Every other metric of the same designs
-is checked in tests/test_spice_agreement.py.
+model's phase margin comes from its two dominant poles. The same checks run on 8 split-supply
+designs (+-12 V and +-15 V, NPN and PNP: q1's base at ground through r_bottom alone, loop gains
+0.2-36). Every other metric of the same designs is checked in tests/test_spice_agreement.py.
 """
 
 from __future__ import annotations
@@ -27,11 +28,13 @@ from optimizer.search import search
 from optimizer.spec import load_spec, parse_spec
 from optimizer.synthesis import HandRequirements, rounded_designs
 from optimizer.topologies import Conditions, get_topology
-from spice_designs import check_device, pair_designs
+from spice_designs import check_device, fb_split_designs, pair_designs
 from spice_harness import phase_margin_of, spice_loop_gain, spice_midband, spice_thd
 
 TOPOLOGY = get_topology("feedback_pair")
 DESIGNS = pair_designs()
+# the pair on split supplies (+-12 V, +-15 V; NPN and PNP), by its own split hand rule
+SPLIT_DESIGNS = [d for d in fb_split_designs() if d.topology == "feedback_pair"]
 SPEC_LEVEL_VPP = 2.0 * math.sqrt(2.0)  # 1 V rms at the load
 needs_spice = pytest.mark.skipif(
     shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice"
@@ -43,9 +46,9 @@ def _arrays(parts: dict[str, float]) -> dict[str, np.ndarray]:
 
 
 @needs_spice
-@pytest.mark.parametrize("design", DESIGNS, ids=[d.name for d in DESIGNS])
+@pytest.mark.parametrize("design", DESIGNS + SPLIT_DESIGNS, ids=[d.name for d in DESIGNS + SPLIT_DESIGNS])
 def test_gain_thd_loop_gain_and_phase_margin_agree_with_ngspice(design) -> None:
-    model = design.device.spice_model()
+    model = {**design.device.spice_model(), "polarity": design.device.polarity}
     args = ("feedback_pair", design.parts, model, design.conditions)
     nominal = TOPOLOGY.evaluate(_arrays(design.parts), design.device, design.conditions)
     m = {k: float(v[0]) for k, v in nominal.metrics.items()}

@@ -184,15 +184,21 @@ def test_split_supply_span_above_30_v_is_cautioned() -> None:
 def test_eligibility_names_who_can_and_why_the_others_cannot(capsys: pytest.CaptureFixture[str], tmp_path) -> None:
     spec = parse_spec({**SPEC, "supply": "+-12 V"})
     verdicts = {v.topology: v for v in eligibility(spec, CATALOG)}
-    assert not verdicts["feedback_ce"].eligible and "no split supply" in verdicts["feedback_ce"].reasons[0]
+    reasons = verdicts["jfet_common_source"].reasons
+    assert not verdicts["jfet_common_source"].eligible and "no split supply: runs on positive" in reasons[0]
     assert verdicts["divider_ce"].eligible and verdicts["divider_ce"].devices == ("npn-general",)
-    assert "feedback_ce" not in SearchSpace.build(spec, CATALOG).topologies  # the space holds eligible ones only
+    # feedback_ce spans the two rails as it is (split_bias "span")
+    assert verdicts["feedback_ce"].eligible and get_topology("feedback_ce").split_omitted() == ()
+    space = SearchSpace.build(spec, CATALOG)
+    assert "jfet_common_source" not in space.topologies  # the space holds eligible ones only
+    assert "feedback_ce.r_feedback" in space.distributions({"topology": "feedback_ce"})
     path = tmp_path / "s.yaml"
     path.write_text(yaml.safe_dump({**SPEC, "supply": "+-12 V"}))
     assert main(["check", str(path)]) == EXIT_OK
     out = capsys.readouterr().out
     assert (
-        "gain -8 is inverting, split supply: divider_ce, divider_ce_split, ce_follower can; feedback_ce cannot" in out
+        "gain -8 is inverting, split supply: divider_ce, divider_ce_split, feedback_ce, ce_follower can; "
+        "emitter_follower cannot (non-inverting)" in out
     )
     # a positive gain fails check at once, naming the sign (no non-inverting stage in this set)
     with pytest.raises(InputError) as err:

@@ -12,7 +12,7 @@ from optimizer.catalog import Catalog, load_catalog
 from optimizer.devices import AnyDevice, device_from_row
 from optimizer.errors import InputError
 from optimizer.spec import Spec
-from optimizer.synthesis import hand_requirements, on_split_supply, rounded_designs
+from optimizer.synthesis import hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.validation import validate_spec
 
@@ -188,7 +188,7 @@ class SearchSpace:
         if name:
             out[name] = optuna.distributions.CategoricalDistribution(list(self.devices_of(topology)))
         for role in model.resistors:
-            if role == "r_top" and self.spec.supply_arrangement == "split":
+            if role in model.split_omitted() and self.spec.supply_arrangement == "split":
                 continue  # a split supply's base returns to ground through r_bottom alone
             out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(
                 ABSENT if role in model.optional_parts else 0, top
@@ -219,16 +219,19 @@ class SearchSpace:
         for topology in self.topologies:
             for device_id in self.devices_of(topology):
                 device = self.devices[device_id]
+                below = self.spec.supply_below_ground
                 try:
                     req = hand_requirements(self.spec, device)
-                    hand = get_topology(topology).hand_design(req)
+                    model = get_topology(topology)
+                    hand = (
+                        model.split_hand_design(req, below if device.polarity == "npn" else 1.0 - below)
+                        if self.spec.supply_arrangement == "split"
+                        else model.hand_design(req)
+                    )
                 except (InputError, ValueError, ZeroDivisionError):
                     continue  # the hand method has no answer for this spec: no seed
-                if self.spec.supply_arrangement == "split":
-                    below = self.spec.supply_below_ground
-                    hand = on_split_supply(hand, req, below if device.polarity == "npn" else 1.0 - below)
-                    if hand is None:
-                        continue
+                if hand is None:
+                    continue
                 roles = [name.split(".", 1)[1] for name in self.distributions({"topology": topology}) if "." in name]
                 chosen = {r: v for r, v in hand.items() if r in roles}
                 if set(chosen) != set(roles) or not all(np.isfinite(v) and v > 0 for v in chosen.values()):
