@@ -22,7 +22,6 @@ from optimizer import physics
 from optimizer.devices import Device
 from optimizer.errors import InputError
 from optimizer.synthesis import (
-    DIVIDER_TO_BASE_CURRENT,
     VBE_HAND,
     HandRequirements,
     coupling_capacitor,
@@ -36,6 +35,8 @@ PAIR_ITERATIONS = 40  # damped 2-D Newton steps of the pair's bias (both junctio
 CROSSOVER_STEPS = 4  # Newton steps in log frequency refining the loop gain's unity crossing (|T| = 1)
 HAND_EMITTER_MAX = 0.3  # the hand method's highest q1 emitter voltage, a share of the supply
 VT_HAND = 0.026  # V, the hand method's thermal voltage (room temperature)
+SPLIT_CURRENT_SHARE = 0.75  # the split rule's q1 and q2 each at this share of the hand current
+SPLIT_BASE_DROP = 0.5  # share of Vbe the split rule lets q1's base current drop across r_bottom
 HAND_LOOP_STEPS = 6  # fixed-point steps of the split hand rule's r_feedback for the finite loop gain
 NO_CROSSOVER_MARGIN = 180.0  # degrees: a loop gain below 1 at every frequency cannot ring
 
@@ -301,18 +302,21 @@ class FeedbackPair(StageModel):
 
     def split_hand_design(self, req: HandRequirements, ground: float) -> dict[str, float]:
         """The pair on a split supply (span req.supply, ground ``ground`` of it above the
-        emitter-side rail): q1's base at ground through r_bottom alone, sized so its base current
-        drops a tenth of Vbe there (common practice: the input's offset stays well under Vbe), so
-        q1's emitter sits at -Vbe and r_emitter returns it to the emitter-side rail. r_emitter
-        then drops most of that rail, so r_emitter and r_feedback come out large and the loop
-        gain small: q1 runs at q2's current (not half) and r_feedback is raised for the loop
-        gain's shortfall (:func:`_hand_pair`'s finite_loop). q1 gets max(1 V, a fifth of the
-        span above its emitter) of Vce; q2 as :meth:`hand_design`."""
-        ic1 = req.collector_current
-        ib1 = ic1 / req.hfe
-        r_bottom = VBE_HAND / (DIVIDER_TO_BASE_CURRENT * ib1)
+        emitter-side rail): q1's base at ground through r_bottom alone, its base current dropping
+        half of Vbe there (no DC reaches the source through c_in; the hFE spread moves q1's
+        current by a few percent), so q1's emitter sits near -Vbe and r_emitter returns it to the
+        emitter-side rail. r_emitter then drops most of that rail, so r_emitter and r_feedback
+        come out large and the loop gain small; the rule wins it back where it can: q1 runs at
+        q2's current, both at SPLIT_CURRENT_SHARE of the hand current (the pair's total stays
+        where the positive rule has it), q1 gets only max(1 V, a tenth of the span above its
+        emitter) of Vce (a larger r_collector), and r_feedback is raised for the loop gain's
+        shortfall (:func:`_hand_pair`'s finite_loop); q2 as :meth:`hand_design`."""
+        ic = SPLIT_CURRENT_SHARE * req.collector_current
+        ib1 = ic / req.hfe
+        r_bottom = SPLIT_BASE_DROP * VBE_HAND / ib1
         v_e1 = ground * req.supply - VBE_HAND - ib1 * r_bottom
-        parts = _hand_pair(req, v_e1, v_e1 + max(1.0, 0.2 * (req.supply - v_e1)), ic1, finite_loop=True)
+        pair_req = HandRequirements(**{**req.__dict__, "collector_current": ic})
+        parts = _hand_pair(pair_req, v_e1, v_e1 + max(1.0, 0.1 * (req.supply - v_e1)), ic, finite_loop=True)
         z_in = parallel(r_bottom, req.hfe * parts["r_emitter"])
         return {"r_bottom": r_bottom, **parts, "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low)}
 
