@@ -14,6 +14,10 @@ table (replacing an earlier section of that topology), leaving the other rows as
     .venv/bin/python benchmarks/spice_agreement.py --direct
 
 does the same for the direct-coupled inputs on split supplies (spice_designs.direct_coupled_designs).
+
+    .venv/bin/python benchmarks/spice_agreement.py --fb-split
+
+does the same for the feedback pair and feedback_ce on split supplies (spice_designs.fb_split_designs).
 """
 
 from __future__ import annotations
@@ -95,6 +99,8 @@ def main() -> int:
         )
     if "--direct" in sys.argv:
         return topology_section("direct-coupled inputs", direct_coupled_designs(), "--direct")
+    if "--fb-split" in sys.argv:
+        return topology_section("split-supply feedback stages", fb_split_designs(), "--fb-split")
     rows = [row for design in all_designs() for row in agreement_rows(design)]
     out = ROOT / "benchmarks" / "results" / "spice_agreement.md"
     lines = [

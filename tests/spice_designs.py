@@ -17,6 +17,7 @@ from optimizer.sizing import size_decoupling
 from optimizer.synthesis import HandRequirements, coupling_capacitor, on_split_supply
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
+from optimizer.topologies.feedback_pair import SPLIT_CURRENT_SHARE
 
 
 @dataclass(frozen=True)
@@ -555,7 +556,7 @@ def fb_split_designs() -> list[CheckDesign]:
                     device,
                     conditions,
                     hand_gain=-gain if inverting else gain,
-                    hand_ic=ic,
+                    hand_ic=ic * (SPLIT_CURRENT_SHARE if topology == "feedback_pair" else 1.0),
                 )
             )
     return designs
