@@ -14,7 +14,7 @@ from typing import Any
 from api.problems import PROBLEM_JSON
 from optimizer.metrics import METRICS
 from optimizer.spec import MAX_SAMPLES, MAX_TOP
-from optimizer.topologies.base import POLARITIES, SUPPLIES
+from optimizer.topologies.base import POLARITIES, SPLIT_BIASES, SUPPLIES
 
 VERSION = "1.0.0"
 STATUSES = ["queued", "running", "done", "failed", "cancelled"]
@@ -210,6 +210,7 @@ def _schemas() -> dict[str, Any]:
                             },
                             "polarities": {"type": "array", "items": {"enum": list(POLARITIES)}},
                             "supplies": {"type": "array", "items": {"enum": list(SUPPLIES)}},
+                            "split_bias": {"enum": list(SPLIT_BIASES)},
                             "device_kind": {"type": "string"},
                             "direct_input": {
                                 "type": "boolean",

@@ -75,6 +75,7 @@ from run_facts import RunFacts, bench_mode  # noqa: E402
 import optimizer.search  # noqa: E402, F401  (the module is read from sys.modules below)
 
 search_module = sys.modules["optimizer.search"]  # the module (optimizer.search is also the API function)
+from optimizer.errors import InputError  # noqa: E402
 from optimizer.exhaustive import exhaustive  # noqa: E402
 from optimizer.scoring import pareto_mask  # noqa: E402
 from optimizer.search import (  # noqa: E402
@@ -88,8 +89,7 @@ from optimizer.search import (  # noqa: E402
     with_search,
 )
 from optimizer.spec import Spec, load_spec, parse_spec, spec_to_dict  # noqa: E402
-from optimizer.synthesis import hand_requirements, rounded_designs  # noqa: E402
-from optimizer.topologies import get_topology  # noqa: E402
+from optimizer.synthesis import rounded_designs  # noqa: E402
 
 optuna.logging.set_verbosity(optuna.logging.WARNING)
 
@@ -283,14 +283,16 @@ def hand_record(spec: Spec) -> tuple[dict, list[str]]:
     fell outside the spec's range (taken to the range's nearest end)."""
     space = SearchSpace.build(spec)
     topology, device = spec.topologies[0], spec.devices[0]
-    model = get_topology(topology)
-    raw = get_topology(topology).hand_design(hand_requirements(spec, space.devices[device]))
-    resistors = {r: raw[r] for r in model.resistors}
+    roles = space.resistor_roles(topology)
+    raw = space.hand_parts(topology, device)
+    if raw is None:
+        raise InputError.single("spec", spec.name, "a spec the hand method has an answer for", title="no hand design")
+    resistors = {r: raw[r] for r in roles}
     nearest = rounded_designs(resistors, spec.parts.resistor_series, spec.parts.capacitor_series, limit=1)[0]
     low, high = space.resistors.values[0], space.resistors.values[-1]
     notes = [f"{r} {v:.4g} ohm outside the range" for r, v in nearest.items() if not low <= v <= high]
-    idx = space.resistors.index_of(np.array([nearest[r] for r in model.resistors]))
-    design = Design(topology, device, tuple(zip(model.resistors, (int(i) for i in idx))))
+    idx = space.resistors.index_of(np.array([nearest[r] for r in roles]))
+    design = Design(topology, device, tuple(zip(roles, (int(i) for i in idx))))
     return evaluate_designs(space, [design])[0], notes
 
 

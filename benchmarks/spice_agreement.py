@@ -14,6 +14,10 @@ table (replacing an earlier section of that topology), leaving the other rows as
     .venv/bin/python benchmarks/spice_agreement.py --direct
 
 does the same for the direct-coupled inputs on split supplies (spice_designs.direct_coupled_designs).
+
+    .venv/bin/python benchmarks/spice_agreement.py --fb-split
+
+does the same for the feedback pair and feedback_ce on split supplies (spice_designs.fb_split_designs).
 """
 
 from __future__ import annotations
@@ -28,6 +32,7 @@ from spice_agreement import agreement_rows  # noqa: E402
 from spice_designs import (  # noqa: E402
     check_designs,
     direct_coupled_designs,
+    fb_split_designs,
     jfet_check_designs,
     later_polarity_designs,
     polarity_designs,
@@ -41,13 +46,15 @@ def _fmt(value: float | None) -> str:
 def all_designs() -> list:
     """Every check design: the bipolar stages', the JFET stages', then the PNP, negative-rail and
     split-supply versions of two bipolar stages, and the PNP, negative-rail (and the followers'
-    split-supply) versions of the followers and the feedback pair, and the direct-coupled inputs."""
+    split-supply) versions of the followers and the feedback pair, the direct-coupled inputs, and the
+    feedback pair and feedback_ce on split supplies."""
     return (
         check_designs()
         + jfet_check_designs()
         + polarity_designs()
         + later_polarity_designs()
         + direct_coupled_designs()
+        + fb_split_designs()
     )
 
 
@@ -92,6 +99,8 @@ def main() -> int:
         )
     if "--direct" in sys.argv:
         return topology_section("direct-coupled inputs", direct_coupled_designs(), "--direct")
+    if "--fb-split" in sys.argv:
+        return topology_section("split-supply feedback stages", fb_split_designs(), "--fb-split")
     rows = [row for design in all_designs() for row in agreement_rows(design)]
     out = ROOT / "benchmarks" / "results" / "spice_agreement.md"
     lines = [

@@ -58,7 +58,7 @@ def _check_parts(topology: Topology, parts: dict[str, float], split: bool = Fals
         raise InputError.single(
             f"--set {unknown[0]}", parts[unknown[0]], f"a part of {topology.name}: " + ", ".join(sorted(known))
         )
-    missing = [r for r in topology.resistors if r not in parts and not (split and r == "r_top")]
+    missing = [r for r in topology.resistors if r not in parts and not (split and r in topology.split_omitted())]
     if missing:
         raise InputError.single(
             f"--set {missing[0]}", None, f"every resistor of {topology.name} given: " + ", ".join(topology.resistors)
@@ -340,7 +340,7 @@ def design_from_record(record: dict) -> tuple[Topology, dict[str, np.ndarray], A
     for role in topology.resistors + topology.capacitors + topology.supply_parts:
         if role in topology.supply_parts and role not in record["parts"]:
             continue  # no decoupling RC: the stage is on the rail
-        if role == "r_top" and 0 < below < 1 and role not in record["parts"]:
+        if role in topology.split_omitted() and 0 < below < 1 and role not in record["parts"]:
             continue  # a split supply's base returns to ground through r_bottom alone
         entry = record["parts"].get(role)
         value: Any = entry.get("value") if isinstance(entry, dict) else None  # checked by float() below

@@ -121,7 +121,7 @@ def exhaustive(
         )
     model = get_topology(topology)
     n = space.resistors.values.size
-    roles = model.resistors
+    roles = space.resistor_roles(topology)
     lows = {r: (ABSENT if r in model.optional_parts else 0) for r in roles}
     total = int(np.prod([n - lows[r] for r in roles], dtype=np.int64))
     best_score, evaluated = -np.inf, 0  # the best fully evaluated design so far, and how many were evaluated

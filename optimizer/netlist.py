@@ -113,7 +113,8 @@ def required_parts(topology: str) -> tuple[str, ...]:
 
 def _check_parts(topology: str, parts: Mapping[str, float], split: bool = False) -> None:
     """InputError unless ``parts`` holds every role of the template (r_top absent on a split supply)."""
-    needed = tuple(r for r in required_parts(topology) if not (split and r == "r_top"))
+    omitted = get_topology(topology).split_omitted() if split else ()
+    needed = tuple(r for r in required_parts(topology) if r not in omitted)
     problems: list[Problem] = []
     for role in needed:
         if role not in parts:
@@ -207,7 +208,9 @@ def spice_netlist(
     """
     below = float(getattr(conditions, "below_ground", 0.0))
     split = 0 < below < 1
-    _check_parts(topology, {r: v for r, v in parts.items() if not (split and r == "r_top" and not v)}, split)
+    stage = get_topology(topology)
+    omitted = stage.split_omitted() if split else ()
+    _check_parts(topology, {r: v for r, v in parts.items() if not (r in omitted and not v)}, split)
     _check_model(model, get_topology(topology))
     supply = float(conditions.supply)
     source = float(conditions.source_impedance)
@@ -217,15 +220,14 @@ def spice_netlist(
     freq = mid_band_frequency(conditions) if frequency is None else float(frequency)
     model_name = _model_name(device_id)
     decoupled = float(parts.get("r_decouple", 0.0)) > 0
-    stage = get_topology(topology)
-    elements = tuple(e for e in _elements(stage, decoupled) if not (split and e[0] == "r_top"))
+    elements = tuple(e for e in _elements(stage, decoupled) if e[0] not in omitted)
     rails = rail_nodes(supply, polarity, below)
     rails_text = ", ".join(f"{name} {volts!r} V" for name, volts in sorted(set(rails.values())) if name != "0")
     rail = "vloc" if decoupled else rails["vcc"][0]
 
     def node(role: str, n: str) -> str:
         """The true node of template node ``n`` of element ``role``."""
-        if split and role == "r_bottom" and n == "0":
+        if omitted and role == "r_bottom" and n == "0":
             return "0"  # the ground-referenced base
         if n == "vcc" and role not in SUPPLY_ROLES:  # the stage returns to its local supply node
             return rail

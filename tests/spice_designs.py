@@ -17,6 +17,7 @@ from optimizer.sizing import size_decoupling
 from optimizer.synthesis import HandRequirements, coupling_capacitor, on_split_supply
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
+from optimizer.topologies.feedback_pair import SPLIT_CURRENT_SHARE
 
 
 @dataclass(frozen=True)
@@ -422,8 +423,8 @@ def later_polarity_designs() -> list[CheckDesign]:
                 replace(d, name=f"{d.name}-npn-negative", conditions=replace(d.conditions, below_ground=1.0))
             )
             c = d.conditions
-            if "split" not in get_topology(topology).supplies:
-                continue
+            if topology == "feedback_pair":
+                continue  # its split designs follow its own split hand rule: fb_split_designs
             req = HandRequirements(
                 supply=c.supply,
                 gain=1.0,
@@ -501,6 +502,61 @@ def direct_coupled_designs() -> list[CheckDesign]:
                     conditions,
                     hand_gain=hand_gain,
                     hand_ic=ic,
+                )
+            )
+    return designs
+
+
+# ---- split supplies for the feedback pair and the collector-fed common emitter ----------------
+# feedback_pair on +-12 V and +-15 V by its own split hand rule (FeedbackPair.split_hand_design:
+# q1's base at ground through r_bottom alone, r_emitter to the negative rail, r_feedback raised
+# for the finite loop gain), and feedback_ce across the two rails as it is (split_bias "span":
+# r_feedback from the collector, r_emitter to the negative rail, source and load at ground);
+# NPN and PNP in turn (a PNP's rails mirrored, so its emitter side is the positive rail).
+
+# (rail magnitude V, |gain| V/V, Ic A, hFE, source ohm, load ohm, load capacitance F)
+_FB_SPLIT_CASES = [
+    (12.0, 6.0, 1.0e-3, 200, 600, 10e3, 0.0),
+    (15.0, 6.0, 1.0e-3, 300, 600, 10e3, 0.0),
+    (15.0, 10.0, 2.0e-3, 200, 50, 2.2e3, 0.0),
+    (12.0, 3.0, 0.5e-3, 500, 1e3, 47e3, 1e-9),
+    (15.0, 4.0, 1.0e-3, 100, 10e3, 100e3, 0.0),
+    (12.0, 10.0, 2.0e-3, 300, 50, 10e3, 330e-12),
+    (15.0, 3.0, 0.5e-3, 250, 600, 22e3, 2.2e-9),
+    (12.0, 5.0, 1.5e-3, 150, 1e3, 4.7e3, 0.0),
+]
+FB_SPLIT_TOPOLOGIES = ("feedback_pair", "feedback_ce")
+
+
+def fb_split_designs() -> list[CheckDesign]:
+    """8 designs per FB_SPLIT_TOPOLOGIES stage on +-12 V and +-15 V, NPN and PNP in turn, each
+    the stage's own split hand design (Topology.split_hand_design), unrounded (16 in all)."""
+    designs = []
+    for topology in FB_SPLIT_TOPOLOGIES:
+        for i, (rail, gain, ic, hfe, rs, rl, cl) in enumerate(_FB_SPLIT_CASES):
+            req = HandRequirements(
+                supply=2.0 * rail,
+                gain=gain,
+                load_impedance=rl,
+                source_impedance=rs,
+                f_low=20.0,
+                collector_current=ic,
+                hfe=hfe,
+            )
+            device, conditions, _ = split_stage(hfe, rail, -rail, bool(i % 2), rs, rl, cl)
+            parts = get_topology(topology).split_hand_design(req, 0.5)
+            assert parts is not None
+            inverting = get_topology(topology).inverting
+            designs.append(
+                CheckDesign(
+                    f"{topology}-split+-{rail:g}V-A{gain:g}-hfe{hfe}-{device.polarity}"
+                    + (f"-CL{cl * 1e9:g}n" if cl else ""),
+                    topology,
+                    parts,
+                    device,
+                    conditions,
+                    hand_gain=-gain if inverting else gain,
+                    hand_ic=ic * (SPLIT_CURRENT_SHARE if topology == "feedback_pair" else 1.0),
                 )
             )
     return designs

@@ -11,7 +11,7 @@ from optimizer.catalog import load_catalog
 from optimizer.cli import EXIT_BAD_INPUT, EXIT_OK, main
 from optimizer.devices import Device
 from optimizer.spec import load_spec
-from optimizer.synthesis import hand_requirements, on_split_supply, rounded_designs
+from optimizer.synthesis import hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.units import format_rkm, parse_quantity
 
@@ -25,10 +25,13 @@ def _hand_settings(path: Path) -> tuple[str, list[str]]:
     if spec.supply_arrangement == "split" and "divider_ce_split" in spec.topologies:
         topology = "divider_ce_split"  # its bypassed r_emitter_dc carries the negative rail's DC
     req = hand_requirements(spec, device)
-    parts = get_topology(topology).hand_design(req)
-    if spec.supply_arrangement == "split":  # the base returns to ground through r_bottom alone
-        below = spec.supply_below_ground
-        parts = on_split_supply(parts, req, below if device.polarity == "npn" else 1.0 - below)
+    below = spec.supply_below_ground
+    parts = (
+        get_topology(topology).split_hand_design(req, below if device.polarity == "npn" else 1.0 - below)
+        if spec.supply_arrangement == "split"
+        else get_topology(topology).hand_design(req)
+    )
+    assert parts is not None
     resistors = {role: v for role, v in parts.items() if not role.startswith("c_")}
     design = rounded_designs(resistors, spec.parts.resistor_series, spec.parts.capacitor_series)[0]
     return topology, [f"{role}={format_rkm(value)}" for role, value in design.items()]

@@ -6,8 +6,10 @@ within 3 %, THD at the spec's level (1 V rms where the design swings it, else 30
 level) within 30 %, loop gain within 5 % and phase margin within 10 degrees. ngspice's loop
 gain is measured by double injection (a series voltage source and a shunt current source at
 r_feedback's end on q1's emitter, after Middlebrook), with the loop closed and biased; the
-model's phase margin comes from its two dominant poles. Every other metric of the same designs
-is checked in tests/test_spice_agreement.py.
+model's phase margin comes from its two dominant poles. The same checks run on 8 split-supply
+designs (+-12 V and +-15 V, NPN and PNP: q1's base at ground through r_bottom alone, loop gains
+1.6-42, phase margins 51-128 degrees). Every other metric of the same designs is checked in
+tests/test_spice_agreement.py.
 """
 
 from __future__ import annotations
@@ -27,11 +29,13 @@ from optimizer.search import search
 from optimizer.spec import load_spec, parse_spec
 from optimizer.synthesis import HandRequirements, rounded_designs
 from optimizer.topologies import Conditions, get_topology
-from spice_designs import check_device, pair_designs
-from spice_harness import phase_margin_of, spice_loop_gain, spice_midband, spice_thd
+from spice_designs import check_device, fb_split_designs, pair_designs
+from spice_harness import phase_margin_of, spice_loop_gain, spice_midband, spice_operating_point, spice_thd
 
 TOPOLOGY = get_topology("feedback_pair")
 DESIGNS = pair_designs()
+# the pair on split supplies (+-12 V, +-15 V; NPN and PNP), by its own split hand rule
+SPLIT_DESIGNS = [d for d in fb_split_designs() if d.topology == "feedback_pair"]
 SPEC_LEVEL_VPP = 2.0 * math.sqrt(2.0)  # 1 V rms at the load
 needs_spice = pytest.mark.skipif(
     shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice"
@@ -43,9 +47,9 @@ def _arrays(parts: dict[str, float]) -> dict[str, np.ndarray]:
 
 
 @needs_spice
-@pytest.mark.parametrize("design", DESIGNS, ids=[d.name for d in DESIGNS])
+@pytest.mark.parametrize("design", DESIGNS + SPLIT_DESIGNS, ids=[d.name for d in DESIGNS + SPLIT_DESIGNS])
 def test_gain_thd_loop_gain_and_phase_margin_agree_with_ngspice(design) -> None:
-    model = design.device.spice_model()
+    model = {**design.device.spice_model(), "polarity": design.device.polarity}
     args = ("feedback_pair", design.parts, model, design.conditions)
     nominal = TOPOLOGY.evaluate(_arrays(design.parts), design.device, design.conditions)
     m = {k: float(v[0]) for k, v in nominal.metrics.items()}
@@ -173,20 +177,66 @@ def test_a_design_below_the_phase_margin_limit_is_infeasible_with_that_reason() 
 
 
 @needs_spice
-def test_search_on_the_non_inverting_example_spec_ranks_a_feasible_pair_that_ngspice_confirms() -> None:
-    """specs/synth_line_boost.yaml (+10, THD < 0.05 % at 1 V rms) over every topology: rank 1 is a
-    feasible feedback_pair (the one-loop stages all invert); ngspice agrees on its gain (3 %),
-    its THD at the spec's 1 V rms (30 %, and under the limit) and its phase margin (10 degrees)."""
-    spec = load_spec(Path(__file__).resolve().parent.parent / "specs" / "synth_line_boost.yaml")
+@pytest.mark.parametrize("name", ["synth_line_boost", "split_rail_send_amp"])
+def test_search_on_a_non_inverting_example_spec_ranks_a_feasible_pair_that_ngspice_confirms(name: str) -> None:
+    """specs/synth_line_boost.yaml (+10, THD < 0.05 % at 1 V rms on 24 V) and
+    specs/split_rail_send_amp.yaml (+6 on +-12 V, THD < 0.3 % at 1 V rms) over every topology:
+    rank 1 is a feasible feedback_pair (the one-loop stages all invert; on the split supply its
+    base at ground, r_top left out); ngspice (the netlist with its true rails) agrees on its bias
+    (3 %), gain (3 %), its THD at the spec's 1 V rms (30 %, and under the limit) and its phase
+    margin (10 degrees)."""
+    spec = load_spec(Path(__file__).resolve().parent.parent / "specs" / f"{name}.yaml")
     best = search(spec, trials=800, seed=11, top=1).candidates[0]
     assert best["topology"] == "feedback_pair" and best["feasible"], best.get("violations")
-    _, parts, _, conditions = design_from_record(best)
+    _, parts, device, conditions = design_from_record(best)
+    if spec.supply_arrangement == "split":
+        assert "r_top" not in parts and 0 < conditions.below_ground < 1
     values = {role: float(v[0]) for role, v in parts.items()}
-    args = ("feedback_pair", values, best["transistor"]["model"], conditions)
+    args = ("feedback_pair", values, {**device.spice_model(), "polarity": device.polarity}, conditions)
     metrics = best["metrics"]
+    assert best["operating_point"]["ic"] == pytest.approx(spice_operating_point(*args)["ic"], rel=0.03)
     assert metrics["gain"] == pytest.approx(spice_midband(*args)["gain"], rel=0.03)
     simulated_thd = spice_thd(*args, vpp_out=spec.limits.thd_level)
     assert metrics["thd"] == pytest.approx(simulated_thd, rel=0.30) and simulated_thd < spec.limits.thd_max
     f, loop = spice_loop_gain(*args)
     mid = math.sqrt(spec.band[0] * spec.band[1])
     assert abs(metrics["phase_margin_deg"] - phase_margin_of(f, loop, mid)) <= 10.0
+
+
+def test_split_hand_seeds_are_feasible_and_the_oracle_leaves_r_top_out() -> None:
+    """On specs/split_rail_send_amp.yaml (+6 on +-12 V) the pair's seeds come from its own split
+    rule (no r_top; q1's emitter near -Vbe in true volts) and the rounded hand design already
+    meets the spec's limits at nominal; the exhaustive oracle of a split space enumerates the six
+    resistors the design chooses (r_top left out), 4^6 combinations on E3 4.7k..47k."""
+    from optimizer.exhaustive import exhaustive
+    from optimizer.search import SearchSpace, evaluate_designs
+
+    spec = load_spec(Path(__file__).resolve().parent.parent / "specs" / "split_rail_send_amp.yaml")
+    space = SearchSpace.build(spec)
+    assert space.resistor_roles("feedback_pair") == TOPOLOGY.resistors[1:]
+    seeds = [d for d in space.seeds() if d.topology == "feedback_pair"]
+    assert seeds and all("r_top" not in dict(d.parts) for d in seeds)
+    records = evaluate_designs(space, seeds)
+    assert any(r["feasible"] for r in records), [r["violations"] for r in records][:3]
+    hand = space.hand_parts("feedback_pair", "SF-N2")
+    assert hand is not None and "r_top" not in hand
+    device = space.devices["SF-N2"]
+    conditions = scoring.conditions_from_spec(spec)
+    op = TOPOLOGY.operating_point(_arrays(hand), device, conditions)
+    # q1's emitter at -Vbe less the base current's drop across r_bottom (half of Vbe by the rule)
+    assert -1.1 < float(op["v_emitter"][0]) < -0.6 and bool(op["active"][0])
+
+    small = parse_spec(
+        {
+            **{k: v for k, v in spec.model_dump().items() if k in ("name", "gain", "band", "limits", "devices")},
+            "supply": "+-12 V",
+            "source_impedance": 600,
+            "load_impedance": "47k",
+            "topologies": ["feedback_pair"],
+            "devices": ["SF-N2"],
+            "parts": {"resistor_series": "E3", "resistor_range": ["4.7k", "47k"]},
+            "robustness": "nominal",
+        }
+    )
+    oracle = exhaustive(small)
+    assert oracle.combinations == 4**6 and "r_top" not in oracle.best["parts"]

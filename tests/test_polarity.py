@@ -184,15 +184,21 @@ def test_split_supply_span_above_30_v_is_cautioned() -> None:
 def test_eligibility_names_who_can_and_why_the_others_cannot(capsys: pytest.CaptureFixture[str], tmp_path) -> None:
     spec = parse_spec({**SPEC, "supply": "+-12 V"})
     verdicts = {v.topology: v for v in eligibility(spec, CATALOG)}
-    assert not verdicts["feedback_ce"].eligible and "no split supply" in verdicts["feedback_ce"].reasons[0]
+    reasons = verdicts["jfet_common_source"].reasons
+    assert not verdicts["jfet_common_source"].eligible and "no split supply: runs on positive" in reasons[0]
     assert verdicts["divider_ce"].eligible and verdicts["divider_ce"].devices == ("npn-general",)
-    assert "feedback_ce" not in SearchSpace.build(spec, CATALOG).topologies  # the space holds eligible ones only
+    # feedback_ce spans the two rails as it is (split_bias "span")
+    assert verdicts["feedback_ce"].eligible and get_topology("feedback_ce").split_omitted() == ()
+    space = SearchSpace.build(spec, CATALOG)
+    assert "jfet_common_source" not in space.topologies  # the space holds eligible ones only
+    assert "feedback_ce.r_feedback" in space.distributions({"topology": "feedback_ce"})
     path = tmp_path / "s.yaml"
     path.write_text(yaml.safe_dump({**SPEC, "supply": "+-12 V"}))
     assert main(["check", str(path)]) == EXIT_OK
     out = capsys.readouterr().out
     assert (
-        "gain -8 is inverting, split supply: divider_ce, divider_ce_split, ce_follower can; feedback_ce cannot" in out
+        "gain -8 is inverting, split supply: divider_ce, divider_ce_split, feedback_ce, ce_follower can; "
+        "emitter_follower cannot (non-inverting)" in out
     )
     # a positive gain fails check at once, naming the sign (no non-inverting stage in this set)
     with pytest.raises(InputError) as err:
@@ -256,3 +262,19 @@ def test_example_spec_searches_to_a_feasible_rank_1_that_ngspice_confirms(name: 
     ripple, mid = spice_psrr(topology.name, values, card, conditions, (100.0, 632.4555320336759))
     assert float(model_psrr["psrr_ripple_db"][0]) == pytest.approx(ripple, abs=2.0)
     assert float(model_psrr["psrr_mid_db"][0]) == pytest.approx(mid, abs=2.0)
+
+
+def test_feedback_ce_spans_a_split_supply_with_its_emitter_on_the_negative_rail() -> None:
+    # split_bias "span": nothing is left out; r_emitter returns to Vee, r_collector to Vcc, the
+    # source and the load to ground; the base and emitter sit near the negative rail (true volts)
+    parts = {"r_feedback": 330e3, "r_collector": 5.6e3, "r_emitter": 470.0, "c_in": 1e-6, "c_out": 10e-6}
+    c = Conditions(supply=24.0, source_impedance=600.0, load_impedance=47e3, below_ground=0.5)
+    text = spice_netlist("feedback_ce", parts, NPN.spice_model(), c).splitlines()
+    assert "Vcc vcc 0 DC 12.0" in text and "Vee vee 0 DC -12.0" in text
+    assert any(ln.startswith("R3 emitter vee ") for ln in text) and any(
+        ln.startswith("R2 vcc collector ") for ln in text
+    )
+    spec = parse_spec({**SPEC, "supply": "+-12 V", "topologies": ["feedback_ce"]})
+    record = assess(spec, CATALOG, "feedback_ce", {k: v for k, v in parts.items() if k.startswith("r_")}, "npn-general")
+    assert record["operating_point"]["v_emitter"] < -10.0 and record["operating_point"]["v_base"] < -9.0
+    assert any(d.topology == "feedback_ce" for d in SearchSpace.build(spec, CATALOG).seeds())  # the span's hand seed

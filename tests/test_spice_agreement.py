@@ -22,7 +22,13 @@ import pytest
 
 from optimizer.topologies import get_topology
 from spice_agreement import agreement_rows, outside_tolerance
-from spice_designs import check_designs, direct_coupled_designs, later_polarity_designs, polarity_designs
+from spice_designs import (
+    check_designs,
+    direct_coupled_designs,
+    fb_split_designs,
+    later_polarity_designs,
+    polarity_designs,
+)
 from spice_harness import spice_operating_point
 
 pytestmark = pytest.mark.skipif(
@@ -34,13 +40,15 @@ DESIGNS = check_designs()
 POLARITY_DESIGNS = polarity_designs()
 #  ... and of the followers and the feedback pair (PNP on a positive rail, NPN on a negative one).
 LATER_POLARITY_DESIGNS = later_polarity_designs()
+#  ... and split-supply versions of the feedback pair and feedback_ce (+-12 V, +-15 V; NPN and PNP).
+FB_SPLIT_DESIGNS = fb_split_designs()
 
 
 #  Direct-coupled inputs on split supplies: no c_in, the source in the base's DC path (see below).
 DIRECT_DESIGNS = direct_coupled_designs()
 
 
-ALL_DESIGNS = DESIGNS + POLARITY_DESIGNS + LATER_POLARITY_DESIGNS + DIRECT_DESIGNS
+ALL_DESIGNS = DESIGNS + POLARITY_DESIGNS + LATER_POLARITY_DESIGNS + FB_SPLIT_DESIGNS + DIRECT_DESIGNS
 
 
 @pytest.mark.parametrize("design", ALL_DESIGNS, ids=[d.name for d in ALL_DESIGNS])
@@ -68,10 +76,12 @@ def test_hand_method_is_further_off_than_the_model() -> None:
 # figure, THD, and supply rejection with the ripple on each rail that carries it, the worse of
 # two on a split supply) must agree within spice_agreement.TOLERANCES. The operating point is
 # compared in true volts: node voltages with their sign. The followers and the feedback pair
-# run the same checks on 20 designs of their own (spice_designs.later_polarity_designs).
+# run the same checks on 20 designs of their own (spice_designs.later_polarity_designs), and the
+# feedback pair and feedback_ce on split supplies (+-12 V and +-15 V, NPN and PNP) on 16 more
+# (spice_designs.fb_split_designs: the pair's base ground-referenced, feedback_ce across the rails).
 
 
-NODE_DESIGNS = POLARITY_DESIGNS[::6] + LATER_POLARITY_DESIGNS + DIRECT_DESIGNS
+NODE_DESIGNS = POLARITY_DESIGNS[::6] + LATER_POLARITY_DESIGNS + FB_SPLIT_DESIGNS + DIRECT_DESIGNS
 
 
 @pytest.mark.parametrize("design", NODE_DESIGNS, ids=[d.name for d in NODE_DESIGNS])

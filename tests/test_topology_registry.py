@@ -124,3 +124,20 @@ def test_headroom_is_the_least_vce_of_the_stage() -> None:
     expected = np.array([2.0, 1.0]) - 0.2 - physics.ACTIVE_MARGIN
     assert get_topology("ce_follower").headroom(op, 0.2) == pytest.approx(expected)
     assert get_topology("divider_ce").headroom(op, 0.2) == pytest.approx(op["vce"] - 0.2 - physics.ACTIVE_MARGIN)
+
+
+def test_a_split_supply_needs_a_declared_way_to_bias() -> None:
+    # "ground_base" (r_top left out, r_bottom to ground) needs both divider roles; "span" runs the
+    # stage across the rails as it is and leaves nothing out (feedback_ce, biased from its collector)
+    with pytest.raises(TypeError, match="split_bias"):
+
+        class NoDivider(DividerCE):  # noqa: F841 (defining it is the test)
+            name = "no_divider_ce"
+            description = "a split supply without a divider"
+            resistors = ("r_collector", "r_emitter")
+            elements = tuple(e for e in DividerCE.elements if e[0] not in ("r_top", "r_bottom"))
+
+    assert "no_divider_ce" not in TOPOLOGIES
+    assert get_topology("feedback_ce").split_bias == "span" and get_topology("feedback_ce").split_omitted() == ()
+    assert get_topology("feedback_pair").split_omitted() == ("r_top",)
+    assert get_topology("feedback_ce").describe()["split_bias"] == "span"

@@ -12,7 +12,7 @@ from optimizer.catalog import Catalog, load_catalog
 from optimizer.devices import AnyDevice, device_from_row
 from optimizer.errors import InputError
 from optimizer.spec import Spec
-from optimizer.synthesis import hand_requirements, on_split_supply, rounded_designs
+from optimizer.synthesis import hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
 from optimizer.validation import validate_spec
 
@@ -187,9 +187,7 @@ class SearchSpace:
         name = self.device_param(topology)
         if name:
             out[name] = optuna.distributions.CategoricalDistribution(list(self.devices_of(topology)))
-        for role in model.resistors:
-            if role == "r_top" and self.spec.supply_arrangement == "split":
-                continue  # a split supply's base returns to ground through r_bottom alone
+        for role in self.resistor_roles(topology):
             out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(
                 ABSENT if role in model.optional_parts else 0, top
             )
@@ -201,6 +199,28 @@ class SearchSpace:
                     continue  # the source is wired to the base
                 out[f"{topology}.{role}"] = optuna.distributions.IntDistribution(0, self.capacitors.values.size - 1)
         return out
+
+    def resistor_roles(self, topology: str) -> tuple[str, ...]:
+        """The resistor roles of ``topology`` a design chooses on the spec's supply (a split
+        supply leaves out the topology's :meth:`~Topology.split_omitted`, e.g. r_top)."""
+        model = get_topology(topology)
+        omitted = model.split_omitted() if self.spec.supply_arrangement == "split" else ()
+        return tuple(r for r in model.resistors if r not in omitted)
+
+    def hand_parts(self, topology: str, device_id: str) -> dict[str, float] | None:
+        """The hand method's unrounded design (role -> ohm or F) of ``topology`` with the
+        device ``device_id`` on the spec's supply (the topology's split rule on a split
+        supply); None when the hand method has no answer."""
+        device = self.devices[device_id]
+        below = self.spec.supply_below_ground
+        try:
+            req = hand_requirements(self.spec, device)
+            model = get_topology(topology)
+            if self.spec.supply_arrangement == "split":
+                return model.split_hand_design(req, below if device.polarity == "npn" else 1.0 - below)
+            return model.hand_design(req)
+        except (InputError, ValueError, ZeroDivisionError):
+            return None  # the hand method has no answer for this spec
 
     def params_of(self, design: Design) -> dict[str, object]:
         """Trial parameters that reproduce ``design`` (for enqueueing seeds)."""
@@ -218,17 +238,9 @@ class SearchSpace:
         out: list[Design] = []
         for topology in self.topologies:
             for device_id in self.devices_of(topology):
-                device = self.devices[device_id]
-                try:
-                    req = hand_requirements(self.spec, device)
-                    hand = get_topology(topology).hand_design(req)
-                except (InputError, ValueError, ZeroDivisionError):
-                    continue  # the hand method has no answer for this spec: no seed
-                if self.spec.supply_arrangement == "split":
-                    below = self.spec.supply_below_ground
-                    hand = on_split_supply(hand, req, below if device.polarity == "npn" else 1.0 - below)
-                    if hand is None:
-                        continue
+                hand = self.hand_parts(topology, device_id)
+                if hand is None:
+                    continue  # no seed
                 roles = [name.split(".", 1)[1] for name in self.distributions({"topology": topology}) if "." in name]
                 chosen = {r: v for r, v in hand.items() if r in roles}
                 if set(chosen) != set(roles) or not all(np.isfinite(v) and v > 0 for v in chosen.values()):

@@ -16,7 +16,7 @@ import numpy as np
 from optimizer import physics
 from optimizer.devices import AnyDevice, saturation_current, thermal_voltage
 from optimizer.errors import InputError, Problem
-from optimizer.synthesis import HandRequirements
+from optimizer.synthesis import HandRequirements, on_split_supply
 
 #: the registry: topology name -> model instance, in listing order (see :func:`register`).
 #: Filled by importing the modules of this package (optimizer/topologies/__init__.py).
@@ -105,6 +105,11 @@ class Conditions:
 
 
 SUPPLIES = ("positive", "negative", "split")  # supply arrangements (Topology.supplies)
+# how a stage is biased on a split supply (Topology.split_bias): "ground_base" leaves r_top out
+# and returns the base to ground through r_bottom alone; "span" keeps the stage's own bias
+# network across the two rails (it does not see where ground sits: only the source and the
+# load return there)
+SPLIT_BIASES = ("ground_base", "span")
 POLARITIES = ("npn", "pnp", "njf")
 
 
@@ -208,9 +213,11 @@ class Topology(ABC):
     # mirror image (the polarity layer of StageModel)
     polarities: ClassVar[tuple[str, ...]]
     # supply arrangements the stage runs on, from SUPPLIES: drawn on a positive rail, a negative
-    # rail shifts it; "split" needs the bias divider (r_top, r_bottom): r_top is left out and
-    # r_bottom returns the base to ground
+    # rail shifts it; on "split" the stage is biased as split_bias says
     supplies: ClassVar[tuple[str, ...]] = ("positive", "negative")
+    # from SPLIT_BIASES: "ground_base" needs the bias divider (r_top, r_bottom), r_top is left out
+    # and r_bottom returns the base to ground; "span" runs the stage across both rails unchanged
+    split_bias: ClassVar[str] = "ground_base"
     device_kind: ClassVar[str] = "bjt"  # the kind of device the stage is built with ("bjt", "jfet")
     # True: on a split supply the input (the base) is the bias tap r_bottom alone returns to
     # ground, so it sits at 0 V by design and a ground-referenced source that passes DC may
@@ -263,11 +270,17 @@ class Topology(ABC):
         if (
             not set(cls.supplies) <= set(SUPPLIES)
             or not set(cls.polarities) <= set(POLARITIES)
-            or ("split" in cls.supplies and not {"r_top", "r_bottom"} <= set(cls.resistors))
+            or cls.split_bias not in SPLIT_BIASES
+            or (
+                "split" in cls.supplies
+                and cls.split_bias == "ground_base"
+                and not {"r_top", "r_bottom"} <= set(cls.resistors)
+            )
         ):
             raise TypeError(
-                f"topology {cls.name}: supplies from {SUPPLIES} ('split' with r_top and r_bottom) and "
-                f"polarities from {POLARITIES}; got {cls.supplies}, {cls.polarities}"
+                f"topology {cls.name}: supplies from {SUPPLIES} ('split' with a split_bias from {SPLIT_BIASES}, "
+                f"'ground_base' with r_top and r_bottom) and polarities from {POLARITIES}; got {cls.supplies}, "
+                f"{cls.split_bias!r}, {cls.polarities}"
             )
         if cls.direct_input and not ("split" in cls.supplies and "c_in" in cls.capacitors):
             raise TypeError(f"topology {cls.name}: direct_input needs a split supply and c_in")
@@ -277,6 +290,20 @@ class Topology(ABC):
                 f"topology {cls.name}: roles are named r_... or c_... and optional_parts "
                 f"are among them; check {bad or sorted(set(cls.optional_parts) - roles)}"
             )
+
+    @classmethod
+    def split_omitted(cls) -> tuple[str, ...]:
+        """The roles a split supply leaves out (absent, value 0): r_top of a ground-referenced base."""
+        return ("r_top",) if cls.split_bias == "ground_base" else ()
+
+    def split_hand_design(self, req: HandRequirements, ground: float) -> dict[str, float] | None:
+        """The hand design on a split supply of span ``req.supply`` whose ground sits ``ground``
+        of the span above the stage's emitter-side rail (ohm, F; the roles of
+        :meth:`split_omitted` left out); None when the hand method has no answer there. By
+        default the positive-rail design, moved to a ground-referenced base by
+        :func:`synthesis.on_split_supply`, or as it is when the stage spans the rails."""
+        hand = self.hand_design(req)
+        return on_split_supply(hand, req, ground) if self.split_bias == "ground_base" else hand
 
     @property
     def roles(self) -> tuple[Role, ...]:
@@ -326,6 +353,7 @@ class Topology(ABC):
             "transistors": self.transistors,
             "polarities": list(self.polarities),
             "supplies": list(self.supplies),
+            "split_bias": self.split_bias,
             "device_kind": self.device_kind,
             "direct_input": self.direct_input,
             "gain_sign": "inverting" if self.inverting else "non-inverting",
@@ -482,12 +510,13 @@ class StageModel(Topology):
                 f"one of {', '.join(self.supplies)} for {self.name}",
                 title=f"{self.name} does not run on a split supply",
             )
-        if split:
-            parts = {"r_top": np.zeros(1), **parts}
-            if np.any(np.asarray(parts["r_top"], dtype=float) != 0):
+        omitted = self.split_omitted() if split else ()
+        for r in omitted:
+            parts = {r: np.zeros(1), **parts}
+            if np.any(np.asarray(parts[r], dtype=float) != 0):
                 raise InputError.single(
-                    "parts.r_top",
-                    parts["r_top"],
+                    f"parts.{r}",
+                    parts[r],
                     "absent (0) on a split supply: the base returns to ground through r_bottom alone",
                     title=f"invalid part value for {self.name}",
                 )
@@ -504,7 +533,7 @@ class StageModel(Topology):
             optional = (
                 r in self.optional_parts
                 or r in self.supply_parts
-                or (split and r == "r_top")
+                or r in omitted
                 or (split and self.direct_input and r == "c_in")
             )
             bad = ~(a >= 0) if optional else ~(a > 0)
@@ -546,7 +575,7 @@ class StageModel(Topology):
                 "rail or a PNP stage on a negative rail",
                 title=f"invalid part value for {self.name}",
             )
-        if not 0 < g < 1:
+        if not 0 < g < 1 or self.split_bias != "ground_base":
             return p
         return {**p, "r_top": p["r_bottom"] / g, "r_bottom": p["r_bottom"] / (1.0 - g)}
 
@@ -591,7 +620,7 @@ class StageModel(Topology):
                 b = self._bias(p_dc, device, replace(conditions, supply=v_local), beta, nvt, i_s)
         b.op["v_supply_local"] = v_local
         b.op["v_out_q"] = self._output_q(b.op)
-        if 0 < conditions.below_ground < 1 and "i_divider" in b.op:
+        if 0 < conditions.below_ground < 1 and self.split_bias == "ground_base" and "i_divider" in b.op:
             # split: no r_top; the base current comes from ground through r_bottom, and the supply
             # current is what the collector-side rail gives (the divider equivalent's share removed)
             b.op["supply_current"] = b.op["supply_current"] - b.op["i_divider"]
@@ -708,7 +737,7 @@ class StageModel(Topology):
             if thd_solve:
                 m["thd"] = self._thd_static(p, device, conditions, b, nvt, b.beta, gain)
             ratings = self._ratings(p, conditions, b)
-            if 0 < conditions.below_ground < 1:  # split: r_bottom alone, from the base to ground
+            if 0 < conditions.below_ground < 1 and self.split_bias == "ground_base":  # r_bottom alone, base-ground
                 ratings["p_r_top"] = np.zeros_like(gain)
                 ratings["p_r_bottom"] = (
                     b.op[self.divider_tap] - conditions.below_ground * conditions.supply
@@ -751,7 +780,7 @@ class StageModel(Topology):
         emitter side), each rail of a split supply in turn, the worse one counting. On a split
         supply r_bottom returns to ground itself here, not through the span-divider equivalent."""
         g = c.below_ground
-        if 0 < g < 1:
+        if 0 < g < 1 and self.split_bias == "ground_base":
             p = {
                 **p,
                 "r_top": np.full_like(p["r_top"], np.inf),

@@ -21,7 +21,10 @@ class FeedbackCE(StageModel):
     name = "feedback_ce"
     inverting = True
     polarities = ("npn", "pnp")
-    supplies = ("positive", "negative")  # biased from its own collector: no ground-referenced base
+    # biased from its own collector, so on a split supply it spans the two rails as it is: the
+    # emitter side returns to the negative rail, and only the source and the load see ground
+    supplies = ("positive", "negative", "split")
+    split_bias = "span"
     description = "common emitter biased by a collector-to-base feedback resistor"
     resistors = ("r_feedback", "r_collector", "r_emitter")
     capacitors = ("c_in", "c_out")

@@ -21,13 +21,23 @@ import numpy as np
 from optimizer import physics
 from optimizer.devices import Device
 from optimizer.errors import InputError
-from optimizer.synthesis import VBE_HAND, HandRequirements, coupling_capacitor, divider, parallel
+from optimizer.synthesis import (
+    VBE_HAND,
+    HandRequirements,
+    coupling_capacitor,
+    divider,
+    parallel,
+)
 from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
 from optimizer.topologies.divider_ce import add_divider_stage, add_load, divider_ratings
 
 PAIR_ITERATIONS = 40  # damped 2-D Newton steps of the pair's bias (both junctions at once, from 1 mA)
 CROSSOVER_STEPS = 4  # Newton steps in log frequency refining the loop gain's unity crossing (|T| = 1)
 HAND_EMITTER_MAX = 0.3  # the hand method's highest q1 emitter voltage, a share of the supply
+VT_HAND = 0.026  # V, the hand method's thermal voltage (room temperature)
+SPLIT_CURRENT_SHARE = 0.75  # the split rule's q1 and q2 each at this share of the hand current
+SPLIT_BASE_DROP = 0.5  # share of Vbe the split rule lets q1's base current drop across r_bottom
+HAND_LOOP_STEPS = 6  # fixed-point steps of the split hand rule's r_feedback for the finite loop gain
 NO_CROSSOVER_MARGIN = 180.0  # degrees: a loop gain below 1 at every frequency cannot ring
 
 
@@ -179,13 +189,59 @@ def loop_phase_margin(
     return np.where(t0 > 1.0, margin, NO_CROSSOVER_MARGIN)
 
 
+def _hand_pair(
+    req: HandRequirements, v_e1: float, v_c1: float, ic1: float, finite_loop: bool = False
+) -> dict[str, float]:
+    """The hand method's pair below q1's base (ohm, F), NPN on a positive rail of req.supply V:
+    q2 at the hand current and q1 at ``ic1`` A, q1's emitter at ``v_e1`` V and its collector
+    at ``v_c1`` V, q2's collector midway between its emitter (plus Vce_sat) and the rail,
+    r_emitter carrying q1's emitter current and the feedback current, r_feedback =
+    (gain - 1)*r_emitter. ``finite_loop``: r_feedback raised for the loop gain's shortfall,
+    A = (1 + r_feedback/r_emitter)*T/(1 + T) with the hand loop gain T = gm2*(r_collector2 ||
+    load)*(r_collector || r_pi2)/r_feedback (q1's emitter taken as a virtual ground; the
+    asymptotic-gain relation). InputError when r_feedback's current would exceed q1's emitter
+    current (the gain too low for where the emitter sits), or the loop too weak for the gain."""
+    ic2 = req.collector_current
+    vcc, gain = req.supply, max(req.gain, 1.5)
+    v_e2 = v_c1 - VBE_HAND
+    v_c2 = 0.5 * (vcc + v_e2 + req.vce_sat)
+    gm2 = ic2 / VT_HAND
+    ratio = gain - 1.0  # r_feedback / r_emitter
+    for _ in range(HAND_LOOP_STEPS if finite_loop else 1):
+        r_emitter = (v_e1 - (v_c2 - v_e1) / ratio) / ic1
+        if not r_emitter > 0 or not v_c2 > v_e1 or not ratio > 0:
+            raise InputError.single(
+                "gain.target",
+                req.gain,
+                f"a gain the hand method can bias on {vcc:g} V (r_feedback's current would exceed q1's "
+                "emitter current, or the loop gain falls short of it)",
+                title="hand method has no solution",
+            )
+        r_feedback = ratio * r_emitter
+        i_feedback = (v_c2 - v_e1) / r_feedback
+        r_collector = (vcc - v_c1) / (ic1 + ic2 / req.hfe)
+        r_collector2 = (vcc - v_c2) / (ic2 + i_feedback)
+        k = gm2 * parallel(r_collector2, req.load_impedance) * parallel(r_collector, req.hfe / gm2)
+        ratio = (gain - 1.0) / (1.0 - gain * r_emitter / k)  # T = k/r_feedback in the relation above
+    r_emitter2 = v_e2 / ic2
+    r_bypass = parallel(r_emitter2, VT_HAND / ic2 + r_collector / req.hfe)
+    return {
+        "r_collector": r_collector,
+        "r_emitter": r_emitter,
+        "r_emitter2": r_emitter2,
+        "r_collector2": r_collector2,
+        "r_feedback": r_feedback,
+        "c_emitter2": coupling_capacitor(r_bypass, req.f_low),
+        "c_out": coupling_capacitor(parallel(r_collector2, r_feedback) + req.load_impedance, req.f_low),
+    }
+
+
 class FeedbackPair(StageModel):
     name = "feedback_pair"
     inverting = False
     polarities = ("npn", "pnp")
-    # no split supply: its ground-referenced base puts q1's emitter near ground, far above the hand
-    # method's place for it, and neither the hand seed nor a 500-trial search finds an active pair there
-    supplies = ("positive", "negative")
+    # on a split supply q1's base is ground-referenced (r_top left out), its emitter near -Vbe
+    supplies = ("positive", "negative", "split")
     device_kind = "bjt"
     description = "series-shunt feedback pair: two direct-coupled common emitters, gain 1 + r_feedback/r_emitter"
     order = 50
@@ -226,45 +282,43 @@ class FeedbackPair(StageModel):
         q1 given max(1 V, a fifth of the supply) of Vce, q2's collector midway between its
         emitter (plus Vce_sat) and the rail; r_feedback = (gain - 1)*r_emitter. InputError when
         the emitter would have to sit above 30 % of the supply (a gain too low for the rail)."""
-        ic2 = req.collector_current
-        ic1 = 0.5 * ic2
         vcc, gain = req.supply, max(req.gain, 1.5)
+        vce1 = max(1.0, 0.2 * vcc)
         v_e1 = 0.1 * vcc
-        for _ in range(3):
-            v_c1 = v_e1 + max(1.0, 0.2 * vcc)
-            v_e2 = v_c1 - VBE_HAND
-            v_c2 = 0.5 * (vcc + v_e2 + req.vce_sat)
+        for _ in range(3):  # q1's collector kept from the step before the emitter's last move
+            v_c1 = v_e1 + vce1
+            v_c2 = 0.5 * (vcc + v_c1 - VBE_HAND + req.vce_sat)
             v_e1 = min(max(0.1 * vcc, 3.0 * (v_c2 - v_e1) / (gain - 1.0)), HAND_EMITTER_MAX * vcc)
-        r_emitter = (v_e1 - (v_c2 - v_e1) / (gain - 1.0)) / ic1
-        if not r_emitter > 0 or not v_c2 > v_e1:
-            raise InputError.single(
-                "gain.target",
-                req.gain,
-                f"a gain the hand method can bias on {vcc:g} V (r_feedback's current would "
-                "exceed q1's emitter current)",
-                title="hand method has no solution",
-            )
-        r_feedback = (gain - 1.0) * r_emitter
-        i_feedback = (v_c2 - v_e1) / r_feedback
-        r_collector2 = (vcc - v_c2) / (ic2 + i_feedback)
-        r_collector = (vcc - v_c1) / (ic1 + ic2 / req.hfe)
-        r_emitter2 = v_e2 / ic2
-        first = HandRequirements(**{**req.__dict__, "collector_current": ic1})
+        parts = _hand_pair(req, v_e1, v_c1, 0.5 * req.collector_current)
+        first = HandRequirements(**{**req.__dict__, "collector_current": 0.5 * req.collector_current})
         r_top, r_bottom = divider(first, v_e1 + VBE_HAND)
-        z_in = parallel(parallel(r_top, r_bottom), req.hfe * r_emitter)
-        r_bypass = parallel(r_emitter2, 0.026 / ic2 + r_collector / req.hfe)
+        z_in = parallel(parallel(r_top, r_bottom), req.hfe * parts["r_emitter"])
         return {
             "r_top": r_top,
             "r_bottom": r_bottom,
-            "r_collector": r_collector,
-            "r_emitter": r_emitter,
-            "r_emitter2": r_emitter2,
-            "r_collector2": r_collector2,
-            "r_feedback": r_feedback,
+            **parts,
             "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low),
-            "c_emitter2": coupling_capacitor(r_bypass, req.f_low),
-            "c_out": coupling_capacitor(parallel(r_collector2, r_feedback) + req.load_impedance, req.f_low),
         }
+
+    def split_hand_design(self, req: HandRequirements, ground: float) -> dict[str, float]:
+        """The pair on a split supply (span req.supply, ground ``ground`` of it above the
+        emitter-side rail): q1's base at ground through r_bottom alone, its base current dropping
+        half of Vbe there (no DC reaches the source through c_in; the hFE spread moves q1's
+        current by a few percent), so q1's emitter sits near -Vbe and r_emitter returns it to the
+        emitter-side rail. r_emitter then drops most of that rail, so r_emitter and r_feedback
+        come out large and the loop gain small; the rule wins it back where it can: q1 runs at
+        q2's current, both at SPLIT_CURRENT_SHARE of the hand current (the pair's total stays
+        where the positive rule has it), q1 gets only max(1 V, a tenth of the span above its
+        emitter) of Vce (a larger r_collector), and r_feedback is raised for the loop gain's
+        shortfall (:func:`_hand_pair`'s finite_loop); q2 as :meth:`hand_design`."""
+        ic = SPLIT_CURRENT_SHARE * req.collector_current
+        ib1 = ic / req.hfe
+        r_bottom = SPLIT_BASE_DROP * VBE_HAND / ib1
+        v_e1 = ground * req.supply - VBE_HAND - ib1 * r_bottom
+        pair_req = HandRequirements(**{**req.__dict__, "collector_current": ic})
+        parts = _hand_pair(pair_req, v_e1, v_e1 + max(1.0, 0.1 * (req.supply - v_e1)), ic, finite_loop=True)
+        z_in = parallel(r_bottom, req.hfe * parts["r_emitter"])
+        return {"r_bottom": r_bottom, **parts, "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low)}
 
     def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float, i_s: float) -> Bias:
         rt, rb_, rc1, re, rf = p["r_top"], p["r_bottom"], p["r_collector"], p["r_emitter"], p["r_feedback"]
