@@ -107,7 +107,7 @@ def assess_many(
     Carlo builds, worst-case corners, bias spread) instead of one per design: the figures are
     the same as one at a time, since every step is per design and the Monte Carlo builds are
     common random numbers (tolerance.Builds)."""
-    groups: dict[tuple[str, str, tuple[str, ...]], list[int]] = {}
+    groups: dict[tuple[str, str, tuple[tuple[str, bool], ...]], list[int]] = {}
     for k, (topology_name, parts, device_id) in enumerate(designs):
         topology = get_topology(topology_name)
         _check_parts(topology, parts, spec.supply_arrangement == "split")

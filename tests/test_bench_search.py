@@ -47,7 +47,9 @@ def test_front_rows_read_back_and_replace_only_their_specs() -> None:
     again = bench_search.with_front_section(text + "\n## Later\n\nkept\n", {**rows, ("a", "on"): "| a | on | z |"})
     assert bench_search.stored_front_rows(again)[("a", "on")] == "| a | on | z |"
     assert bench_search.stored_front_rows(again)[("b", "on")] == "| b | on | y |"
-    assert again.count(bench_search.FRONT_HEADING) == 1 and "## Quality\n\nbody" in again and "## Later\n\nkept" in again
+    assert (
+        again.count(bench_search.FRONT_HEADING) == 1 and "## Quality\n\nbody" in again and "## Later\n\nkept" in again
+    )
 
 
 def test_screen_modes_change_only_the_robustness_basis() -> None:
