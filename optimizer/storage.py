@@ -109,7 +109,7 @@ _lock = threading.Lock()
 _claim_files: "weakref.WeakKeyDictionary[BaseStorage, Path]" = weakref.WeakKeyDictionary()
 _journal_backends: "weakref.WeakKeyDictionary[BaseStorage, _BatchSyncedJournal]" = weakref.WeakKeyDictionary()
 _claim_locks: dict[str, threading.Lock] = {}
-_redis_backends: "weakref.WeakKeyDictionary[BaseStorage, object]" = weakref.WeakKeyDictionary()
+_redis_backends: "weakref.WeakKeyDictionary[BaseStorage, Any]" = weakref.WeakKeyDictionary()
 HEARTBEAT_INTERVAL = 10  # s between heartbeats of a running trial (STAGEFIT_HEARTBEAT_INTERVAL)
 GRACE_PERIOD = 30  # s without a heartbeat before a running trial is failed (STAGEFIT_GRACE_PERIOD)
 MAX_RETRY = 3  # times a failed (stale) trial is queued again
@@ -257,10 +257,8 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
             yield self._seen({**record})
 
     def _seen(self, record: dict) -> dict:
-        """``record``, counted in :attr:`waiting_made` if it creates a waiting trial (the
-        journal's CREATE_TRIAL record with a WAITING state: an enqueued trial)."""
-        if record["op_code"] == _CREATE_TRIAL and record.get("state") == TrialState.WAITING:
-            self.waiting_made += 1
+        """``record``, counted in :attr:`waiting_made` if it creates a waiting trial."""
+        self.waiting_made += creates_waiting_trial(record)
         return record
 
     def _write(self, lines: list[bytes]) -> int:
@@ -330,6 +328,12 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
 _CREATE_TRIAL = 4  # the journal's record code for a new trial (its file format)
 
 
+def creates_waiting_trial(record: dict) -> bool:
+    """Whether a journal record creates a waiting (enqueued) trial: a CREATE_TRIAL record with
+    a WAITING state (a file or a Redis journal alike)."""
+    return record["op_code"] == _CREATE_TRIAL and record.get("state") == TrialState.WAITING
+
+
 class _WaitingIndex:
     """Optuna looks for waiting (enqueued) trials at every ask by reading every trial of the
     study, which makes a search quadratic in its trials. Waiting trials are made only by
@@ -355,10 +359,11 @@ class _WaitingIndex:
 
 
 class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
-    """Optuna's journal storage on :class:`_BatchSyncedJournal`, with the waiting-trial look
-    answered from the records read (another process's enqueued trials count too)."""
+    """Optuna's journal storage on :class:`_BatchSyncedJournal` or a
+    :class:`~optimizer.redis_journal.RedisJournal`, with the waiting-trial look answered from
+    the records read (another process's enqueued trials count too)."""
 
-    def __init__(self, backend: _BatchSyncedJournal) -> None:
+    def __init__(self, backend: Any) -> None:
         self._journal = backend
         self._none_waiting: dict[int, int] = {}
         super().__init__(backend)
@@ -598,7 +603,7 @@ def _redis(url: str) -> BaseStorage:
     from optimizer.redis_journal import RedisJournal
 
     backend = RedisJournal(url)
-    storage = optuna.storages.journal.JournalStorage(backend)
+    storage = _JournalStorage(backend)
     _redis_backends[storage] = backend
     return storage
 
@@ -620,9 +625,10 @@ def _grpc(url: str) -> BaseStorage:
 def batched_writes(storage: BaseStorage) -> Iterator[None]:
     """Within the block, a journal file's records are appended in one write when it ends
     (the block holds the journal's write lock; reads in this process see the records at
-    once). Databases and memory write as before. Keep the block short: other processes
-    wait for the lock to write."""
-    backend = _journal_backends.get(storage)
+    once); a Redis journal's records of this process's trials are sent in one append when it
+    ends (no lock: :mod:`optimizer.redis_journal`). Databases and memory write as before.
+    Keep the block short: other processes wait for a journal file's lock to write."""
+    backend = _journal_backends.get(storage) or _redis_backends.get(storage)
     if backend is None:
         yield
         return

@@ -195,3 +195,53 @@ def test_recovery_on_redis_goes_by_the_runners_liveness_not_by_age(redis_url):
         states = [t.state for t in study.get_trials(deepcopy=False)]
     assert [states[n] for n in live] == [TrialState.RUNNING] * 2
     assert [states[t.number] for t in dead] == [TrialState.FAIL] * 3
+
+
+def _trials(storage: optuna.storages.BaseStorage, name: str) -> list[tuple]:
+    study_id = storage.get_study_id_from_name(name)
+    return [
+        (t._trial_id, t.number, t.state, t.values, t.params, t.user_attrs)
+        for t in storage.get_all_trials(study_id, deepcopy=False)
+    ]
+
+
+def test_a_batch_defers_its_trial_records_and_every_reader_replays_the_same_trials(redis_url):
+    """Inside batched_writes a runner's records of its own trials (parameters, attributes,
+    results) are sent in one append when the batch closes, and nothing is read from the server
+    meanwhile, while another process creates and finishes trials in between. Reference outside
+    the project: Optuna's own JournalRedisBackend, replaying the server's journal afresh in the
+    server's order, sees the same trials (ids, numbers, states, values, parameters, attributes)
+    as this runner and as the other process."""
+    from optimizer.redis_journal import RedisJournal
+    from optimizer.storage import _redis_backends, batched_writes, trial_id
+
+    url = _db(redis_url, 7)
+    ours = open_storage(url)
+    journal = _redis_backends[ours]
+    theirs = optuna.storages.journal.JournalStorage(RedisJournal(url))  # another process's view
+    study = optuna.create_study(study_name="defer", storage=ours, directions=["minimize"])
+    rival = optuna.load_study(study_name="defer", storage=theirs)
+    with batched_writes(ours):
+        mine = [study.ask() for _ in range(2)]  # each creation is sent at once
+        other = rival.ask()  # the other process creates a trial and finishes it meanwhile
+        other.suggest_int("x", 0, 9)
+        rival.tell(other, 5.0)
+        before = journal.round_trips
+        for k, trial in enumerate(mine):
+            trial.suggest_int("x", 0, 9)
+            trial.set_user_attr("record", {"k": k})
+            study.tell(trial, float(k))
+        assert journal.round_trips == before  # deferred: nothing sent, nothing read
+        assert [t.state for t in study.get_trials(deepcopy=False)[:2]] == [TrialState.COMPLETE] * 2
+        mine.append(study.ask())  # a creation after deferred records: they go with it, in one append
+        assert journal.round_trips == before + 1
+        rival.tell(rival.ask(), 7.0)  # more of the other process's records before the batch closes
+        mine[2].suggest_int("x", 0, 9)
+        study.tell(mine[2], 2.0)
+    assert journal.round_trips == before + 2  # the batch's close: one append
+    fresh = optuna.storages.journal.JournalStorage(optuna.storages.journal.JournalRedisBackend(url))
+    expected = _trials(fresh, "defer")
+    assert [t[2] for t in expected] == [TrialState.COMPLETE] * 5
+    assert _trials(ours, "defer") == expected
+    assert _trials(theirs, "defer") == expected
+    assert [trial_id(t) for t in mine] == [expected[n][0] for n in (0, 1, 3)]
