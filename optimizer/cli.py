@@ -916,7 +916,8 @@ def build_parser() -> argparse.ArgumentParser:
         "--storage",
         default=os.environ.get("STAGEFIT_STORAGE"),
         required=not os.environ.get("STAGEFIT_STORAGE"),
-        help="storage URL shared with the API server, e.g. postgresql://user:pw@db/stagefit (STAGEFIT_STORAGE)",
+        help="storage URL shared with the API server, e.g. redis://:secret@host:6379/0 or "
+        "postgresql://user:pw@db/stagefit (STAGEFIT_STORAGE)",
     )
     worker.add_argument(
         "--poll", type=float, default=2.0, help="seconds to wait when there is nothing to do (default 2)"

@@ -72,17 +72,21 @@ pids=()
 end=$(date +%s.%N)
 
 "$BIN/python" - "$STORAGE" "$SEARCH" "$start" "$end" "$WORKERS" "$status" <<'PY'
-import pathlib, sys
+import optuna, pathlib, re, sys
 from optimizer.search import open_storage, search_status
 storage, search, start, end, workers, status = sys.argv[1], sys.argv[2], float(sys.argv[3]), float(sys.argv[4]), int(sys.argv[5]), int(sys.argv[6])
 state = search_status(open_storage(storage), search)
-wall = end - start
-done = state["trials_done"]
-logs = sorted(pathlib.Path("runs").glob("worker-*.log"))[:workers]
+told = optuna.load_study(study_name=search, storage=open_storage(storage)).get_trials(
+    deepcopy=False, states=(optuna.trial.TrialState.COMPLETE,))
+phase = (max(t.datetime_complete for t in told) - min(t.datetime_start for t in told)).total_seconds() if told else 0.0
+wall, done = end - start, state["trials_done"]
+print(f"search {search}: {state['status']}, {done} trials; trial phase {phase:.1f} s: {done / (phase or 1):.1f} trials/s "
+      f"with {workers} workers; {wall:.1f} s in all (worker start-up and ranking the search included)")
+logs = [pathlib.Path(f"runs/worker-{i}.log") for i in range(1, workers + 1)]
+for log in logs:  # each worker's own figures, from the line it logs when it stops
+    found = re.search(r"stopping: (.*)", log.read_text())
+    print(f"  {log}: " + (found[1] if found else "no summary line (did it stop cleanly?)"))
 bad = [str(p) for p in logs if "Traceback" in p.read_text()]
-print(f"search {search}: {state['status']}, {done} trials in {wall:.1f} s (worker start-up and the "
-      f"finishing step included): {done / wall:.1f} trials/s with {workers} workers, "
-      f"{done / wall / workers:.1f} trials/s per worker")
 print("worker logs: " + ("no traceback" if not bad else "TRACEBACK in " + ", ".join(bad)))
 sys.exit(1 if bad or status or state["status"] != "done" else 0)
 PY

@@ -80,3 +80,24 @@ def test_a_bad_stale_age_names_the_variable(monkeypatch) -> None:
     with pytest.raises(InputError) as error:
         stale_after_seconds()
     assert error.value.problems[0].where == "STAGEFIT_STALE_AFTER"
+
+
+def test_one_worker_ranks_a_search_whose_trials_ran_out_for_several(tmp_path) -> None:
+    """Workers that run out of trials together do not all rank the search (seconds each): the
+    first to mark it under the search's claim does; a search extended since is marked anew."""
+    from optimizer.search import extend_search, finish_search
+    from optimizer.worker import _take_finishing
+
+    storage = open_storage(tmp_path / "f.journal")
+    search_id = create_search(parse_spec(SPEC), storage)
+    assert not _take_finishing(storage, search_id)  # queued, nothing told yet
+    assert run_search(storage, search_id, finish=False) == 96  # the trials this runner told
+    assert _take_finishing(storage, search_id)
+    assert not _take_finishing(storage, search_id)  # a second worker leaves it
+    assert search_status(storage, search_id)["status"] == "running"
+    finish_search(storage, search_id)
+    assert search_status(storage, search_id)["status"] == "done"
+    assert not _take_finishing(storage, search_id)
+    extend_search(storage, search_id, 32)
+    assert run_search(storage, search_id, finish=False) == 32
+    assert _take_finishing(storage, search_id)  # the earlier mark was for the smaller budget

@@ -174,14 +174,15 @@ def run_search(
     catalog: Catalog | None = None,
     sampler: SamplerFactory = neighbour_sampler,
     finish: bool = True,
-) -> None:
+) -> int:
     """Run batches (ask, evaluate in one vectorised call, tell) until the budget is met, the
     search is cancelled or ``should_stop()`` is true; then, with ``finish``, rank and assess
     the shortlist (:func:`finish_search`). ``sampler(space, seed_offset)`` makes the sampler
     (the benchmarks pass their baselines in). Several processes may share a search:
     counting and asking is one claimed step (storage.claim_batch), so together they finish
     exactly the budget; running trials carry heartbeats and a dead runner's trials are failed
-    and retried at the next batch of any runner (storage.TrialHeartbeat)."""
+    and retried at the next batch of any runner (storage.TrialHeartbeat). Returns the trials
+    this runner told."""
     try:
         study, spec = load_study(storage, search_id)
         space = SearchSpace.build(spec, catalog)
@@ -196,14 +197,14 @@ def run_search(
         study.set_user_attr("status", "running")
         study.set_user_attr("started", time.time())
     per_batch = batch_trials(space, budget)
-    batches = 0
+    batches = told = 0
     # designs this runner has evaluated (samplers revisit them): (record as stored, violation, objectives)
     known: dict[Design, tuple[str, float, list[float]]] = {}
     open_trials: list[optuna.Trial] = []  # asked and not yet told (failed if the run is interrupted)
     try:
         while True:
             if study_attrs(study).get("status") == "cancelled" or (should_stop and should_stop()):
-                return
+                return told
             recover_stale_trials(storage, study)  # a dead runner's trials (heartbeats): failed, queued again
             with TrialHeartbeat(storage) as heartbeat:
                 with claim_batch(storage, search_id):
@@ -237,6 +238,7 @@ def run_search(
                         t.set_constraint("violation", violation)
                         tell(study, t, objectives)
                         open_trials.remove(t)
+                told += len(trials)
             sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
             batches += 1
     except KeyboardInterrupt:  # Ctrl-C: the batch in hand is failed, the search stays resumable
@@ -247,6 +249,7 @@ def run_search(
         sync(storage)  # everything this runner wrote is on disk
     if finish:
         _finish_when_done(study, space, budget)
+    return told
 
 
 INTERRUPTED = "interrupted (Ctrl-C); finished trials are kept: run the search again to resume it"
