@@ -44,7 +44,8 @@ from optuna.storages.journal import BaseJournalBackend
 
 READ_CHUNK = 1000  # records fetched by one MGET
 CLAIM_TTL = 60  # s a claim is held at most (a killed holder's claim lapses then)
-CLAIM_POLL = 0.002  # s between tries of a claim another runner holds (redis-py's default, 0.1 s, idles a worker)
+CLAIM_POLL = 0.002  # s before the first try again of a claim another runner holds (redis-py's 0.1 s idles a worker)
+CLAIM_POLL_MAX = 0.02  # s between tries at most (each try is a round trip: polling every 2 ms cost CPU)
 # The journal's record codes (its format: Optuna's JournalOperation) for the records a batch defers:
 # a trial's parameter, state and values, intermediate value, user and system attribute.
 _SET_TRIAL_PARAM, _SET_TRIAL_STATE_VALUES, _SET_TRIAL_ATTRS = 5, 6, (7, 8, 9)
@@ -228,11 +229,16 @@ class RedisJournal(BaseJournalBackend):
 
 @contextmanager
 def redis_claim(journal: RedisJournal, name: str) -> Iterator[None]:
-    """Hold the lock ``<prefix>:claim:<name>`` on the journal's server (waits for it)."""
+    """Hold the lock ``<prefix>:claim:<name>`` on the journal's server (waits for it, trying
+    again after CLAIM_POLL seconds, doubled after each miss up to CLAIM_POLL_MAX: a short first
+    wait, since claims are short, and few tries, each a round trip, while a long one lasts)."""
     from redis.exceptions import LockError
 
-    lock = journal.client.lock(f"{journal.prefix}:claim:{name}", timeout=CLAIM_TTL, sleep=CLAIM_POLL, blocking=True)
-    lock.acquire()
+    lock = journal.client.lock(f"{journal.prefix}:claim:{name}", timeout=CLAIM_TTL)
+    wait = CLAIM_POLL
+    while not lock.acquire(blocking=False):
+        time.sleep(wait)
+        wait = min(2 * wait, CLAIM_POLL_MAX)
     try:
         yield
     finally:
