@@ -142,7 +142,11 @@ class RedisJournal(BaseJournalBackend):
         """Append the deferred records and ``texts`` in one round trip, taking back the
         records from the read position on (under ``_lock``)."""
         deferred, self._pending = self._pending, []
-        values = self._append(args=[self.prefix, self._next, READ_CHUNK, *deferred, *texts])
+        try:
+            values = self._append(args=[self.prefix, self._next, READ_CHUNK, *deferred, *texts])
+        except Exception:  # the server away: the deferred records, handed over already, go with the next append
+            self._pending = deferred + self._pending
+            raise
         self.round_trips += 1
         first = int(values[0])
         if deferred:  # handed over already: skipped when read back
@@ -206,7 +210,11 @@ class RedisJournal(BaseJournalBackend):
                 return
             later, self._later = self._later, []
             if later:
-                self._pipeline(later)
+                try:
+                    self._pipeline(later)
+                except Exception:  # the server away: sent when the next batch closes
+                    self._later = later + self._later
+                    raise
             if self._pending:
                 self._send([])
 

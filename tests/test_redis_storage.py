@@ -245,3 +245,35 @@ def test_a_batch_defers_its_trial_records_and_every_reader_replays_the_same_tria
     assert _trials(ours, "defer") == expected
     assert _trials(theirs, "defer") == expected
     assert [trial_id(t) for t in mine] == [expected[n][0] for n in (0, 1, 3)]
+
+
+def test_a_batch_the_server_missed_goes_with_the_next_append(redis_url, monkeypatch):
+    """The server away when a batch closes: the error reaches the runner, and the deferred
+    records (already in this runner's view) are sent with its next append, so the server's
+    journal (read afresh by Optuna's own JournalRedisBackend) catches up with that view."""
+    from redis.exceptions import ConnectionError as RedisConnectionError
+
+    from optimizer.storage import _redis_backends, batched_writes
+
+    url = _db(redis_url, 8)
+    storage = open_storage(url)
+    journal = _redis_backends[storage]
+    study = optuna.create_study(study_name="missed", storage=storage, directions=["minimize"])
+    with pytest.raises(RedisConnectionError):
+        with batched_writes(storage):
+            trial = study.ask()
+            trial.suggest_int("x", 0, 9)
+            study.tell(trial, 1.0)
+            sent = journal._append
+
+            def away(*args, **kwargs):
+                raise RedisConnectionError("server away")
+
+            monkeypatch.setattr(journal, "_append", away)
+    monkeypatch.setattr(journal, "_append", sent)
+    fresh = optuna.storages.journal.JournalStorage(optuna.storages.journal.JournalRedisBackend(url))
+    assert [t[2] for t in _trials(fresh, "missed")] == [TrialState.RUNNING]  # the server missed the result
+    study.set_user_attr("note", "next append")
+    fresh = optuna.storages.journal.JournalStorage(optuna.storages.journal.JournalRedisBackend(url))
+    assert _trials(fresh, "missed") == _trials(storage, "missed")
+    assert [t[2] for t in _trials(fresh, "missed")] == [TrialState.COMPLETE]
