@@ -103,6 +103,12 @@ class Conditions:
         """Highest supply voltage the parts can see (V; per candidate when supply is an array)."""
         return self.supply if self.supply_max is None else np.maximum(self.supply, self.supply_max)
 
+    @property
+    def ground_rail_max(self) -> float | np.ndarray:
+        """Highest voltage between signal ground and either rail (V): rail_max on a single rail, the
+        larger rail's magnitude on a split supply (what a capacitor returned to ground can see)."""
+        return self.rail_max * np.maximum(self.below_ground, 1.0 - self.below_ground)
+
 
 SUPPLIES = ("positive", "negative", "split")  # supply arrangements (Topology.supplies)
 # how a stage is biased on a split supply (Topology.split_bias): "ground_base" leaves r_top out
@@ -483,9 +489,10 @@ class StageModel(Topology):
         """p_<resistor> (W, I^2 R at the evaluated supply) and v_<capacitor> (V, the largest
         voltage the capacitor can see: at c.rail_max, at power-up, with the output shorted).
 
-        The rule per role: a coupling capacitor (c_in, c_out) and c_decouple can see the
-        full rail (at power-up, uncharged, one side at a node that may sit at the rail, the
-        other shorted or at ground); a bypass capacitor (c_emitter) sees its node's DC, and
+        The rule per role: a coupling capacitor (c_in, c_out) can see the whole of the larger
+        rail against ground (c.ground_rail_max: at power-up, uncharged, one side at a node that
+        may sit at a rail, the other at ground through the source or the load; on a split supply
+        that is the larger rail's magnitude, not the span) and c_decouple the full rail; a bypass capacitor (c_emitter) sees its node's DC, and
         the emitter node never rises above the base, whose highest voltage is the bias
         divider's open-circuit voltage at rail_max (the transistor only pulls the base down).
         """

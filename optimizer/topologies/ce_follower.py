@@ -177,7 +177,7 @@ class CEFollower(StageModel):
             "p_r_follower": op["v_emitter2"] ** 2 / p["r_follower"],
             "p_q1": op["vce"] * op["ic"],
             "p_q2": op["vce2"] * op["ic2"],
-            "v_c_out": np.full_like(op["ic"], c.rail_max),
+            "v_c_out": np.full_like(op["ic"], c.ground_rail_max),
         }
 
     def static_output(

@@ -172,7 +172,7 @@ class DividerCE(StageModel):
     def _ratings(self, p: Parts, c: Conditions, b: Bias) -> dict[str, np.ndarray]:
         op = b.op
         ie = op["ic"] + op["ib"]
-        r = {**divider_ratings(p, c, op), "v_c_out": np.full_like(ie, c.rail_max)}
+        r = {**divider_ratings(p, c, op), "v_c_out": np.full_like(ie, c.ground_rail_max)}
         r.update(self._extra_ratings(p, c, op, ie))
         return r
 
@@ -254,13 +254,13 @@ def add_divider_stage(
 
 
 def divider_ratings(p: Parts, c: Conditions, op: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-    """Resistor powers (W) of the divider stage and the largest voltage on c_in (V, the rail at
-    its maximum: see StageModel._ratings; 0 without c_in)."""
+    """Resistor powers (W) of the divider stage and the largest voltage on c_in (V, the larger
+    rail against ground at its maximum: see StageModel._ratings; 0 without c_in)."""
     vcc = op["v_supply_local"]
     return {
         "p_r_top": (vcc - op["v_base"]) ** 2 / p["r_top"],
         "p_r_bottom": op["v_base"] ** 2 / p["r_bottom"],
         "p_r_collector": (vcc - op["v_collector"]) ** 2 / p["r_collector"],
         "p_r_emitter": (op["ic"] + op["ib"]) ** 2 * p["r_emitter"],
-        "v_c_in": np.where(p["c_in"] > 0, c.rail_max, 0.0) + 0.0 * vcc,
+        "v_c_in": np.where(p["c_in"] > 0, c.ground_rail_max, 0.0) + 0.0 * vcc,
     }

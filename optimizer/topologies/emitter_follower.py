@@ -310,8 +310,8 @@ class EmitterFollower(StageModel):
             "p_r_bottom": v_div**2 / p["r_bottom"],
             "p_r_follower": op["v_emitter"] ** 2 / p["r_follower"],
             "p_q1": op["vce"] * op["ic"],
-            "v_c_in": np.where(p["c_in"] > 0, c.rail_max, 0.0) + 0.0 * vcc,
-            "v_c_out": np.full_like(vcc, c.rail_max),
+            "v_c_in": np.where(p["c_in"] > 0, c.ground_rail_max, 0.0) + 0.0 * vcc,
+            "v_c_out": np.full_like(vcc, c.ground_rail_max),
         }
         r.update(self._extra_ratings(p, c, op))
         return r

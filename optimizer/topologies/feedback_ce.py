@@ -154,8 +154,8 @@ class FeedbackCE(StageModel):
             "p_r_feedback": op["ib"] ** 2 * p["r_feedback"],
             "p_r_collector": ie**2 * p["r_collector"],
             "p_r_emitter": ie**2 * p["r_emitter"],
-            "v_c_in": np.full_like(ie, c.rail_max),
-            "v_c_out": np.full_like(ie, c.rail_max),
+            "v_c_in": np.full_like(ie, c.ground_rail_max),
+            "v_c_out": np.full_like(ie, c.ground_rail_max),
         }
 
     def static_output(

@@ -494,7 +494,7 @@ class FeedbackPair(StageModel):
             "p_r_collector2": (vcc - op["v_collector2"]) ** 2 / p["r_collector2"],
             "p_r_feedback": (op["v_collector2"] - op["v_emitter"]) ** 2 / p["r_feedback"],
             "v_c_emitter2": rail,
-            "v_c_out": rail,
+            "v_c_out": np.full_like(op["ic"], c.ground_rail_max),
         }
 
     def static_output(

@@ -346,8 +346,8 @@ class JFETStage(StageModel):
         return {
             "p_r_gate": (op["ig"] * p["r_gate"]) ** 2 / p["r_gate"],
             "p_r_source": i_d**2 * p["r_source"],
-            "v_c_in": np.full_like(i_d, c.rail_max),
-            "v_c_out": np.full_like(i_d, c.rail_max),
+            "v_c_in": np.full_like(i_d, c.ground_rail_max),
+            "v_c_out": np.full_like(i_d, c.ground_rail_max),
         }
 
 
