@@ -37,6 +37,7 @@ import math
 import os
 import shutil
 import socket
+import sys
 import threading
 import time
 import warnings
@@ -61,6 +62,14 @@ from optuna.storages._heartbeat import is_heartbeat_enabled
 # (released when its holder dies) instead of Optuna's lock files; the public
 # JournalFileBackend accepts a lock object but the base class to write one is private.
 from optuna.storages.journal._file import BaseJournalFileLock
+
+# JournalStorageReplayResult (the journal's replayed state; its _trials, _apply_set_trial_param)
+# and JournalStorage's _replay_result, _thread_lock, _sync_with_backend, _worker_id_prefix: the
+# replay shares equal distributions (:class:`_SharedDistributions`), reads only the trials
+# after a number (:func:`trials_from`), starts on first use rather than when opened, and a
+# snapshot is taken of its state at a known record (:func:`save_snapshot`); the public API
+# copies every trial of a study on each read and has no hook for any of these.
+from optuna.storages.journal._storage import JournalStorageReplayResult
 from optuna.trial import TrialState
 
 from optimizer.errors import InputError, StorageError
@@ -256,9 +265,17 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
 
     def _seen(self, record: dict) -> dict:
         """``record``, counted in :attr:`waiting_made` if it creates a waiting trial (the
-        journal's CREATE_TRIAL record with a WAITING state: an enqueued trial)."""
-        if record["op_code"] == _CREATE_TRIAL and record.get("state") == TrialState.WAITING:
+        journal's CREATE_TRIAL record with a WAITING state: an enqueued trial), its parameter
+        or attribute name interned: the replay keeps each in every trial's dicts, and each
+        record read from the file brings its own copy (0.3 KB a trial)."""
+        op = record["op_code"]
+        if op == _CREATE_TRIAL and record.get("state") == TrialState.WAITING:
             self.waiting_made += 1
+        elif op == _SET_TRIAL_PARAM:
+            record["param_name"] = sys.intern(record["param_name"])
+        elif op in _SET_TRIAL_ATTRS:
+            field_ = _SET_TRIAL_ATTRS[op]
+            record[field_] = {sys.intern(k): v for k, v in record[field_].items()}
         return record
 
     def _write(self, lines: list[bytes]) -> int:
@@ -326,6 +343,8 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
 
 
 _CREATE_TRIAL = 4  # the journal's record code for a new trial (its file format)
+_SET_TRIAL_PARAM = 5  # ... for a trial's parameter
+_SET_TRIAL_ATTRS = {8: "user_attr", 9: "system_attr"}  # ... for a trial's attributes, and the field holding them
 
 
 class _WaitingIndex:
@@ -352,6 +371,23 @@ class _WaitingIndex:
         return found
 
 
+class _SharedDistributions(JournalStorageReplayResult):
+    """Optuna's replay of a journal, with equal parameter distributions shared: the replay
+    builds a new distribution object for every parameter of every trial (0.1 KB each, three
+    per trial of a one-topology search: 20 MB of a 64,000-trial search's memory)."""
+
+    def __init__(self, worker_id_prefix: str) -> None:
+        super().__init__(worker_id_prefix)
+        self._shared: dict[optuna.distributions.BaseDistribution, optuna.distributions.BaseDistribution] = {}
+
+    def _apply_set_trial_param(self, log: dict[str, Any]) -> None:
+        super()._apply_set_trial_param(log)
+        trial = self._trials.get(log["trial_id"])
+        name = log["param_name"]
+        if trial is not None and name in trial.distributions:
+            trial.distributions[name] = self._shared.setdefault(trial.distributions[name], trial.distributions[name])
+
+
 class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
     """Optuna's journal storage on :class:`_BatchSyncedJournal`, with the waiting-trial look
     answered from the records read (another process's enqueued trials count too)."""
@@ -364,6 +400,7 @@ class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
             False  # read on first use, not when opened: a status answered from the snapshot reads only its tail
         )
         super().__init__(backend)
+        self._replay_result = _SharedDistributions(self._worker_id_prefix)  # nothing replayed yet
         self._opening = False
 
     def _sync_with_backend(self) -> None:
