@@ -148,6 +148,68 @@ def child_reopen(storage: str, replay: bool = False) -> dict:
     return {f"{key}_s": wall, f"{key}_cpu_s": cpu, "import_s": imported - start, "trials": status["trials_done"]}
 
 
+def child_held(storage: str, trials: int) -> dict:
+    """In a child: replay a stored search's journal under tracemalloc and group what the
+    replayed state holds by the source file that allocated it, in bytes per trial."""
+    import gc
+    import tracemalloc
+
+    from optimizer.storage import open_storage
+
+    tracemalloc.start()
+    open_storage(storage).get_all_studies()  # the full replay, as a searching process holds it
+    gc.collect()
+    stats = tracemalloc.take_snapshot().statistics("filename")
+    total = sum(s.size for s in stats)
+    top = [
+        (
+            str(s.traceback[0].filename).split("site-packages/")[-1].split("lib/python3.11/")[-1],
+            s.size / trials,
+            s.count,
+        )
+        for s in stats[:6]
+    ]
+    return {"total_per_trial": total / trials, "top": top}
+
+
+HELD = {  # what the replayed state's allocations are, by the file that made them
+    "json/decoder.py": "values parsed from the journal and kept: each trial's record text (about 1.4 kB), its values",
+    "optuna/storages/journal/_storage.py": "the replay's trial dicts (params, distributions, user and system attrs), "
+    "datetimes, the trial lists",
+    "copyreg.py": "the FrozenTrial objects (copied on each update by the replay)",
+    "optuna/trial/_frozen.py": "each FrozenTrial's values",
+    "copy.py": "FrozenTrial copies' attribute dicts",
+}
+
+
+def held(trials: int, out: Path, command: str) -> None:
+    """What a replayed journal holds per trial (tracemalloc), written to ``out``."""
+    import optuna
+
+    started = time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime())
+    with tempfile.TemporaryDirectory() as tmp:
+        path = f"{tmp}/held.journal"
+        _child("--child", str(trials), "--storage", path)
+        found = _child("--held", path, "--trials", str(trials))
+    lines = [
+        "# Scale benchmark: what a replayed journal holds",
+        "",
+        f"Machine: {platform.machine()}, {os.cpu_count()} cores; Python {platform.python_version()}, "
+        f"Optuna {optuna.__version__}; started {started}. Command: `{command}`. A {trials:,}-trial search "
+        f"(`benchmarks/specs/{SPEC.name}`, seed 0) on a journal file, replayed in a new process under "
+        "tracemalloc (the state a searching or serving process keeps of it; the process's imports apart).",
+        "",
+        f"Held: {found['total_per_trial']:,.0f} bytes per trial. By the source file that allocated it:",
+        "",
+        "| allocated in | what it is | bytes per trial | objects |",
+        "| --- | --- | --- | --- |",
+    ]
+    lines += [f"| `{name}` | {HELD.get(name, '')} | {size:,.0f} | {count:,} |" for name, size, count in found["top"]]
+    text = "\n".join(lines) + "\n"
+    out.write_text(text, encoding="utf-8")
+    print(text + f"\nwritten {out.relative_to(ROOT)}")
+
+
 def _child(*args: str) -> dict:
     out = subprocess.run([sys.executable, __file__, *args], capture_output=True, text=True, cwd=ROOT, check=True)
     return json.loads(out.stdout.strip().splitlines()[-1])
@@ -295,9 +357,22 @@ def main() -> None:
     parser.add_argument("--storage", help=argparse.SUPPRESS)
     parser.add_argument("--reopen", help=argparse.SUPPRESS)
     parser.add_argument("--replay", action="store_true", help=argparse.SUPPRESS)
+    parser.add_argument("--held", help=argparse.SUPPRESS)
+    parser.add_argument("--trials", type=int, help=argparse.SUPPRESS)
+    parser.add_argument(
+        "--memory-held", type=int, metavar="TRIALS", help="what a replayed journal of TRIALS holds -> scale-memory.md"
+    )
     args = parser.parse_args()
     if args.child:
         print(json.dumps(child_search(args.child, args.storage)))
+    elif args.held:
+        print(json.dumps(child_held(args.held, args.trials)))
+    elif args.memory_held:
+        held(
+            args.memory_held,
+            RESULTS / "scale-memory.md",
+            f"python benchmarks/bench_scale.py --memory-held {args.memory_held}",
+        )
     elif args.reopen:
         print(json.dumps(child_reopen(args.reopen, args.replay)))
     else:
