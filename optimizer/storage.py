@@ -631,7 +631,8 @@ class JournalSummary:
             self.best.pop(log["study_id"], None)
             self.open = {i: t for i, t in self.open.items() if t["study"] != log["study_id"]}
         else:
-            found["user_attrs" if op == 2 else "system_attrs"].update(log["user_attr" if op == 2 else "system_attr"])
+            field_ = "user_attrs" if op == 2 else "system_attrs"  # replaced, not changed: a reader may hold the old
+            found[field_] = {**found[field_], **log["user_attr" if op == 2 else "system_attr"]}
 
     def _create_trial(self, log: dict) -> None:
         study = self.studies.get(log["study_id"])

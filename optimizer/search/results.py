@@ -214,7 +214,7 @@ def list_searches(storage: BaseStorage) -> list[dict]:
     out = []
     summary = journal_summary(storage, rank_key, same_design)  # a journal not replayed here: from its snapshot
     studies = (
-        [(s["name"], s["user_attrs"]) for s in summary.studies.values()]
+        [(s["name"], s["user_attrs"]) for s in list(summary.studies.values())]  # copied at once: polls may add
         if summary is not None
         else [(s.study_name, s.user_attrs) for s in storage.get_all_studies()]  # study records only, no trials read
     )
