@@ -9,6 +9,7 @@ Every malformed cell of a file is reported at once, each with file, line and col
 
 from __future__ import annotations
 
+import bisect
 import csv
 import functools
 import math
@@ -294,11 +295,7 @@ def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) 
                             f"hfe_typ between hfe_min ({lo:g}) and hfe_max ({hi:g})",
                         )
                     )
-            if (
-                "series" in record
-                and "value" in record
-                and not _in_series(np.array([record["value"]]), record["series"])[0]
-            ):
+            if "series" in record and "value" in record and not _value_in_series(record["value"], record["series"]):
                 problems.append(
                     Problem(
                         f"{label} line {line}, column value", record["value"], f"a value of series {record['series']}"
@@ -339,12 +336,24 @@ def _package_power(record: dict, where: str) -> list[Problem]:
     return []
 
 
+@functools.lru_cache(maxsize=None)
+def _series_members(series: str) -> list[float]:
+    """Every value of E-series ``series`` from 1e-15 to 1e15 (SI), ascending: computed once,
+    since a catalog checks each row's value against its series."""
+    return eseries.series_values(series, 1e-15, 1e15).tolist()
+
+
+def _value_in_series(value: float, series: str) -> bool:
+    """Whether ``value`` is a member of E-series ``series``: within VALUE_RTOL of one (as
+    np.isclose with atol 0); only the two members around it can be."""
+    members = _series_members(series)
+    at = bisect.bisect_left(members, value)
+    return any(abs(value - m) <= VALUE_RTOL * m for m in members[max(at - 1, 0) : at + 1])
+
+
 def _in_series(values: np.ndarray, series: str) -> np.ndarray:
     """Boolean mask: which ``values`` are members of E-series ``series``."""
-    if values.size == 0:
-        return np.zeros(0, dtype=bool)
-    members = eseries.series_values(series, values.min() * 0.9, values.max() * 1.1)
-    return np.isclose(values[:, None], members[None, :], rtol=VALUE_RTOL, atol=0).any(axis=1)
+    return np.array([_value_in_series(float(v), series) for v in values], dtype=bool)
 
 
 @dataclass(frozen=True)

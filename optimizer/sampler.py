@@ -89,7 +89,7 @@ class NeighbourSampler(BaseSampler):
         self._next_refresh = 0
         self._elite: list[FrozenTrial] = []
         self._front: list[FrozenTrial] = []
-        self._crowding: list[float] = []  # parent weights along the front: its gaps and ends first
+        self._crowding: list[float] = []  # cumulative parent weights along the front: its gaps and ends first
         self._queue: list[dict[str, Any]] = []
         self._low = 0  # every trial numbered below is finished and folded in (or not complete)
         self._counted: set[int] = set()  # completed trials numbered _low and up, folded in already
@@ -153,7 +153,8 @@ class NeighbourSampler(BaseSampler):
         feasible = self._front + [t for t in new if self._rank_key(t)[0] == 0]
         keep = pareto_mask(np.array([t.values for t in feasible]), self._directions) if feasible else []
         self._front = [t for t, k in zip(feasible, keep) if k]
-        self._crowding = _crowding_distance(np.array([t.values for t in self._front]))
+        # cumulative weights, as random.choices would sum them on every draw (the same draws)
+        self._crowding = list(itertools.accumulate(_crowding_distance(np.array([t.values for t in self._front]))))
         fresh = {trial_id(t) for t in new}
         centres = self._elite[:1]
         if self._front:  # the front's two ends (they bound its hypervolume) and every point new on it
@@ -218,7 +219,7 @@ class NeighbourSampler(BaseSampler):
 
     def _parent(self) -> FrozenTrial:
         if self._front and self._py.random() < PARENT_FROM_FRONT:
-            return self._py.choices(self._front, self._crowding)[0]
+            return self._py.choices(self._front, cum_weights=self._crowding)[0]
         # a tournament of two among the elite, biased to the better
         i, j = self._py.randrange(len(self._elite)), self._py.randrange(len(self._elite))
         return self._elite[min(i, j)]

@@ -74,3 +74,40 @@ def test_tell_stores_what_study_tell_stores() -> None:
     assert stored[0] == stored[1]
     assert stored[0][0] == optuna.trial.TrialState.COMPLETE and stored[0][1] == [1.5, 2.0]
     assert calls == [0, 0]
+
+
+def test_the_journal_replay_names_the_snapshot_and_memory_savings_use_exist(tmp_path) -> None:
+    """The journal's record codes the snapshot's summary and the name interning read, and the
+    replay internals the shared distributions and the snapshot of a replayed state use."""
+    import optuna
+    from optuna.storages.journal._storage import JournalOperation, JournalStorageReplayResult
+
+    from optimizer import storage
+
+    assert storage._STUDY_OPS == (
+        JournalOperation.CREATE_STUDY,
+        JournalOperation.DELETE_STUDY,
+        JournalOperation.SET_STUDY_USER_ATTR,
+        JournalOperation.SET_STUDY_SYSTEM_ATTR,
+    )
+    assert storage._TRIAL_OPS == (
+        JournalOperation.CREATE_TRIAL,
+        JournalOperation.SET_TRIAL_PARAM,
+        JournalOperation.SET_TRIAL_STATE_VALUES,
+        JournalOperation.SET_TRIAL_USER_ATTR,
+        JournalOperation.SET_TRIAL_SYSTEM_ATTR,
+    )
+    assert storage._SET_TRIAL_PARAM == JournalOperation.SET_TRIAL_PARAM
+    assert set(storage._SET_TRIAL_ATTRS) == {
+        JournalOperation.SET_TRIAL_USER_ATTR,
+        JournalOperation.SET_TRIAL_SYSTEM_ATTR,
+    }
+    assert callable(JournalStorageReplayResult._apply_set_trial_param)
+    journal = storage.open_storage(tmp_path / "c.journal")
+    study = optuna.create_study(storage=journal)
+    study.ask({"x": optuna.distributions.IntDistribution(0, 9)})
+    replay = journal._replay_result
+    assert isinstance(replay, storage._SharedDistributions) and replay.log_number_read > 0
+    assert isinstance(replay._trials, dict) and isinstance(replay._study_id_to_trial_ids, dict)
+    assert isinstance(replay._next_study_id, int) and isinstance(journal._worker_id_prefix, str)
+    assert hasattr(journal, "_thread_lock") and callable(journal._sync_with_backend)

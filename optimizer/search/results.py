@@ -15,6 +15,7 @@ from optimizer.search.ranking import (
     SHORTLIST_SIZE,
     candidate_from_record,
     fold_variants,
+    rank_key,
     rank_records,
     trial_record,
 )
@@ -22,13 +23,16 @@ from optimizer.search.space import SearchSpace
 from optimizer.search.study import (
     completed_records,
     load_study,
+    same_design,
     stored_attrs,
+    stored_spec,
     study_attrs,
     summarise,
     trial_counts,
     trial_tally,
 )
 from optimizer.spec import Spec
+from optimizer.storage import TrialTally, journal_summary
 
 STATUSES = ("queued", "running", "done", "failed", "cancelled")
 
@@ -79,33 +83,59 @@ def candidates_frame(candidates: list[dict], *, labels: bool = False) -> pd.Data
 def search_status(storage: BaseStorage, search_id: str) -> dict:
     """Status, progress and best so far of a search (JSON-ready). A stored search that can
     no longer be read (its creation cut short, or a spec this version rejects) is reported
-    as failed with its reason rather than raising, so it can still be seen and deleted."""
+    as failed with its reason rather than raising, so it can still be seen and deleted.
+
+    A journal file this process has not replayed is answered from its snapshot and the
+    records after it (storage.journal_summary), without replaying the journal."""
+    summary = journal_summary(storage, rank_key, same_design)
+    if summary is not None:
+        found = summary.study_id(search_id)
+        if found is None:
+            raise InputError.single("search", search_id, "the id of an existing search", title="unknown search")
+        attrs = summary.studies[found]["user_attrs"]
+        try:
+            spec = stored_spec(search_id, attrs)
+        except InputError as error:
+            return _unreadable_status(search_id, attrs, str(error))
+        counted = summary.tallies[found]
+        return _status(search_id, attrs, spec, summary.counts(found), _best_so_far(attrs, spec, counted))
     try:
         study, spec = load_study(storage, search_id)
     except InputError as error:
         if error.title == "unknown search":
             raise
-        return _unreadable_status(storage, search_id, str(error))
-    ranking = study_attrs(study).get("ranking")
+        return _unreadable_status(
+            search_id, storage.get_study_user_attrs(storage.get_study_id_from_name(search_id)), str(error)
+        )
+    attrs = study_attrs(study)
+    finished, running = trial_counts(study)
+    best = _best_so_far(attrs, spec, None if attrs.get("ranking") else trial_tally(study, best=True))
+    return _status(search_id, attrs, spec, (finished, running, trial_tally(study).feasible), best)
+
+
+def _best_so_far(attrs: dict, spec: Spec, counted: TrialTally | None) -> dict | None:
+    """The stored ranking's first candidate; before the ranking, the best so far kept on the
+    tally ``counted`` (the first of rank_records over every finished trial), its candidate
+    made once per new best."""
+    ranking = attrs.get("ranking")
     if ranking:
-        best = ranking["candidates"][0] if ranking["candidates"] else None
-    else:  # the best so far, kept incrementally: the first of rank_records over every finished trial
-        counted = trial_tally(study, best=True)
-        top = counted.best
-        if top is not None and counted.memo.get("best", (None,))[0] != top.number:  # a new best: its record
-            record = trial_record(top)
-            counted.memo["best"] = (
-                top.number,
-                {**candidate_from_record(SearchSpace.build(spec), {**record, "trial": top.number}), "rank": 1}
-                if record
-                else None,
-            )
-        best = counted.memo["best"][1] if top is not None else None
-    return _status(study, spec, best)
+        return ranking["candidates"][0] if ranking["candidates"] else None
+    assert counted is not None, "a search without its ranking needs its tally"
+    top = counted.best
+    if top is None:
+        return None
+    if counted.memo.get("best", (None,))[0] != top.number:  # a new best: its record
+        record = trial_record(top)
+        counted.memo["best"] = (
+            top.number,
+            {**candidate_from_record(SearchSpace.build(spec), {**record, "trial": top.number}), "rank": 1}
+            if record
+            else None,
+        )
+    return counted.memo["best"][1]
 
 
-def _unreadable_status(storage: BaseStorage, search_id: str, why: str) -> dict:
-    attrs = storage.get_study_user_attrs(storage.get_study_id_from_name(search_id))
+def _unreadable_status(search_id: str, attrs: dict, why: str) -> dict:
     name = attrs.get("spec", {}).get("name") if isinstance(attrs.get("spec"), dict) else None
     budget = attrs.get("budget")
     return {
@@ -123,19 +153,19 @@ def _unreadable_status(storage: BaseStorage, search_id: str, why: str) -> dict:
     }
 
 
-def _status(study: optuna.Study, spec: Spec, best: dict | None) -> dict:
-    attrs = study_attrs(study)
-    finished, running = trial_counts(study)
+def _status(search_id: str, attrs: dict, spec: Spec, counts: tuple[int, int, int], best: dict | None) -> dict:
+    """The status document; ``counts``: (finished, running, feasible) trials."""
+    finished, running, feasible = counts
     started = attrs.get("started")
     elapsed = attrs.get("elapsed") if attrs.get("status") == "done" else (time.time() - started if started else 0.0)
     return {
-        "id": study.study_name,
+        "id": search_id,
         "name": spec.name,
         "status": attrs.get("status") or "failed",
         "reason": attrs.get("reason") if attrs.get("status") else "its creation was cut short",
         "trials_done": finished,
         "trials_running": running,
-        "trials_feasible": trial_tally(study).feasible,
+        "trials_feasible": feasible,
         "budget": int(attrs["budget"]),
         "elapsed": float(elapsed or 0.0),
         "created": attrs.get("created"),
@@ -165,13 +195,15 @@ def load_search(
     else:
         summary = summarise(space, study, top, samples)
     best = summary["candidates"][0] if summary["candidates"] else None
+    finished, running = trial_counts(study)
+    status = _status(search_id, study_attrs(study), spec, (finished, running, trial_tally(study).feasible), best)
     return SearchResult(
         search_id,
         spec,
         study,
         summary["candidates"],
         summary["front"],
-        _status(study, spec, best),
+        status,
         summary.get("infeasible"),
     )
 
@@ -180,14 +212,19 @@ def list_searches(storage: BaseStorage) -> list[dict]:
     """Status of every search in ``storage``, newest first (without the best design). A
     search whose creation was cut short (no status yet) is listed as failed."""
     out = []
-    for s in storage.get_all_studies():  # study records only, no trials read
-        attrs = s.user_attrs
+    summary = journal_summary(storage, rank_key, same_design)  # a journal not replayed here: from its snapshot
+    studies = (
+        [(s["name"], s["user_attrs"]) for s in list(summary.studies.values())]  # copied at once: polls may add
+        if summary is not None
+        else [(s.study_name, s.user_attrs) for s in storage.get_all_studies()]  # study records only, no trials read
+    )
+    for name, attrs in studies:
         if "spec" not in attrs:
             continue  # not a stagefit search
         spec = attrs["spec"] if isinstance(attrs["spec"], dict) else {}
         out.append(
             {
-                "id": s.study_name,
+                "id": name,
                 "name": spec.get("name"),
                 "status": attrs.get("status") or "failed",
                 "budget": attrs.get("budget"),

@@ -35,6 +35,7 @@ from optimizer.search.ranking import (
 from optimizer.search.space import Design, SearchSpace
 from optimizer.spec import Spec, parse_spec, spec_to_dict
 from optimizer.storage import (
+    SNAPSHOT_EVERY,
     SYNC_EVERY,
     TrialHeartbeat,
     TrialTally,
@@ -42,6 +43,7 @@ from optimizer.storage import (
     claim_batch,
     quiet_optuna,
     recover_stale_trials,
+    save_snapshot,
     study_id,
     study_storage,
     sync,
@@ -80,7 +82,12 @@ def load_study(storage: BaseStorage, search_id: str) -> tuple[optuna.Study, Spec
         study = optuna.load_study(study_name=search_id, storage=storage, sampler=optuna.samplers.RandomSampler())
     except KeyError:
         raise InputError.single("search", search_id, "the id of an existing search", title="unknown search") from None
-    attrs = study_attrs(study)
+    return study, stored_spec(search_id, study_attrs(study))
+
+
+def stored_spec(search_id: str, attrs: dict) -> Spec:
+    """The spec of a stored search from its study user attrs; InputError if its record was
+    not written in full or the spec no longer parses."""
     if not isinstance(attrs.get("spec"), dict) or not isinstance(attrs.get("budget"), int):
         raise InputError.single(
             "search",
@@ -88,7 +95,7 @@ def load_study(storage: BaseStorage, search_id: str) -> tuple[optuna.Study, Spec
             "a search whose record was written in full (its creation was cut short; delete it)",
             title="incomplete search",
         )
-    return study, parse_spec(attrs["spec"])
+    return parse_spec(attrs["spec"])
 
 
 def create_search(
@@ -133,14 +140,15 @@ def create_search(
     return search_id
 
 
-def _same_design(a: optuna.trial.FrozenTrial, b: optuna.trial.FrozenTrial) -> bool:
+def same_design(a: optuna.trial.FrozenTrial, b: optuna.trial.FrozenTrial) -> bool:
+    """Two trials of one design (equal parameters)."""
     return a.params == b.params
 
 
 def trial_tally(study: optuna.Study, *, best: bool = False) -> TrialTally:
     """Finished (failed ones do not count: they are retried), running and feasible trials,
     and with ``best`` the best so far (by rank_key), read incrementally (storage.tally)."""
-    return tally(study_storage(study), study_id(study), *((rank_key, _same_design) if best else ()))
+    return tally(study_storage(study), study_id(study), *((rank_key, same_design) if best else ()))
 
 
 def trial_counts(study: optuna.Study) -> tuple[int, int]:
@@ -240,6 +248,7 @@ def run_search(
                         open_trials.remove(t)
                 told += len(trials)
             sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
+            save_snapshot(storage, rank_key, same_design, every=SNAPSHOT_EVERY)  # reopening reads a short tail
             batches += 1
     except KeyboardInterrupt:  # Ctrl-C: the batch in hand is failed, the search stays resumable
         _fail_trials(study, open_trials)
@@ -249,6 +258,7 @@ def run_search(
         sync(storage)  # everything this runner wrote is on disk
     if finish:
         _finish_when_done(study, space, budget)
+    save_snapshot(storage, rank_key, same_design)
     return told
 
 
