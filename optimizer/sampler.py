@@ -89,6 +89,7 @@ class NeighbourSampler(BaseSampler):
         self._next_refresh = 0
         self._elite: list[FrozenTrial] = []
         self._front: list[FrozenTrial] = []
+        self._front_values = np.empty((0, len(self._directions)))  # the front's objective values, row per trial
         self._crowding: list[float] = []  # cumulative parent weights along the front: its gaps and ends first
         self._queue: list[dict[str, Any]] = []
         self._low = 0  # every trial numbered below is finished and folded in (or not complete)
@@ -150,19 +151,24 @@ class NeighbourSampler(BaseSampler):
         for t in new:
             self._seen.add(self._key(t.params))
         self._elite = sorted(self._elite + new, key=self._rank_key)[:ELITE_SIZE]
-        feasible = self._front + [t for t in new if self._rank_key(t)[0] == 0]
-        keep = pareto_mask(np.array([t.values for t in feasible]), self._directions) if feasible else []
-        self._front = [t for t, k in zip(feasible, keep) if k]
-        # cumulative weights, as random.choices would sum them on every draw (the same draws)
-        self._crowding = list(itertools.accumulate(_crowding_distance(np.array([t.values for t in self._front]))))
-        fresh = {trial_id(t) for t in new}
+        joined = [t for t in new if self._rank_key(t)[0] == 0]  # feasible designs new this refresh
         centres = self._elite[:1]
+        if joined:  # the front's values are kept as an array beside it: no pass over the front's trials
+            values = np.vstack([self._front_values, np.array([t.values for t in joined], dtype=float)])
+            keep = pareto_mask(values, self._directions)
+            kept_new = keep[len(self._front) :]
+            if not keep[: len(self._front)].all() or kept_new.any():  # the front changed
+                self._front = [t for t, k in zip(self._front + joined, keep) if k]
+                self._front_values = values[keep]
+                # cumulative weights, as random.choices would sum them on every draw (the same draws)
+                self._crowding = list(itertools.accumulate(_crowding_distance(self._front_values)))
         if self._front:  # the front's two ends (they bound its hypervolume) and every point new on it
-            ends = sorted(self._front, key=lambda t: t.values[0])
-            on_front = {trial_id(t) for t in self._front}
-            off = [t for t in feasible if trial_id(t) in fresh and trial_id(t) not in on_front]
+            first = self._front_values[:, 0]
+            low, high = int(np.argmin(first)), len(first) - 1 - int(np.argmax(first[::-1]))  # as a stable sort's ends
+            off = [t for t, k in zip(joined, kept_new) if not k] if joined else []
             near = [t for t, k in zip(off, self._near_front(off)) if k] if off else []
-            centres += near + [ends[0], ends[-1]] + [t for t in self._front if trial_id(t) in fresh]
+            on_front_new = [t for t, k in zip(joined, kept_new) if k] if joined else []
+            centres += near + [self._front[low], self._front[high]] + on_front_new
         for centre in reversed(centres):  # queued first: the best design's, then the front's, then near it
             self._sweep(dict(centre.params))
 
@@ -171,7 +177,7 @@ class NeighbourSampler(BaseSampler):
         the front's span on every objective: the path to the front's next stretch often
         runs through such designs."""
         sign = np.array([1.0 if d == "minimise" else -1.0 for d in self._directions])
-        front = np.array([t.values for t in self._front]) * sign
+        front = self._front_values * sign
         span = front.max(axis=0) - front.min(axis=0)
         shifted = np.array([t.values for t in trials]) * sign - NEAR_FRONT * span
         return ~np.any(np.all(front[None, :, :] <= shifted[:, None, :], axis=2), axis=1)

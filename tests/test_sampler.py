@@ -7,6 +7,7 @@ from __future__ import annotations
 import itertools
 from pathlib import Path
 
+import numpy as np
 import optuna
 from optuna.distributions import IntDistribution
 from optuna.trial import TrialState
@@ -66,6 +67,7 @@ def test_near_front_means_within_a_share_of_the_span_on_every_objective() -> Non
     # minimise current, maximise swing; the front spans 2 (current) by 3 (swing)
     sampler = _sampler()
     sampler._front = [_trial([1.0, 3.0]), _trial([2.0, 5.0]), _trial([3.0, 6.0])]
+    sampler._front_values = np.array([t.values for t in sampler._front])  # kept beside the front
     margin = (NEAR_FRONT * 2.0, NEAR_FRONT * 3.0)
     # just behind (2, 5): worse by half the margin on both axes -> near
     close = _trial([2.0 + margin[0] / 2, 5.0 - margin[1] / 2])
