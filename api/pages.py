@@ -272,9 +272,13 @@ def front_svg(search_id: str, result: Any) -> dict:
     objectives = result.spec.objective_directions
     rank_of = {c.get("trial"): c["rank"] for c in result.candidates if c.get("trial") is not None}
     on_front = {p.get("trial") for p in result.front}
-    shown = result.candidates[:FRONT_POINTS] + [
-        c for c in result.candidates[FRONT_POINTS:] if c.get("trial") in on_front
-    ]
+    # the front's points that a ranked design stands for (near-identical variants folded into it) are
+    # drawn from the front itself, unranked
+    shown = (
+        result.candidates[:FRONT_POINTS]
+        + [c for c in result.candidates[FRONT_POINTS:] if c.get("trial") in on_front]
+        + [p for p in result.front if p.get("trial") not in rank_of]
+    )
     x_metric = objectives[0][0]
     y_metric = objectives[1][0] if len(objectives) > 1 else None
 
@@ -301,7 +305,8 @@ def front_svg(search_id: str, result: Any) -> dict:
             outside += 1
             continue
         rank = rank_of.get(c.get("trial"), c.get("rank"))
-        tip = [f"rank {rank}", "meets the spec" if c.get("feasible") else "misses the spec"]
+        tip = [f"rank {rank}" if rank is not None else f"trial {c.get('trial')} (a variant of a ranked design)"]
+        tip += ["meets the spec" if c.get("feasible") else "misses the spec"]
         tip += [f"{_axis(m)[0]} {metric_text(m, c['metrics'].get(m))}" for m in (x_metric, y_metric) if m]
         points.append(
             {
@@ -311,10 +316,12 @@ def front_svg(search_id: str, result: Any) -> dict:
                 "feasible": bool(c.get("feasible")),
                 "front": c.get("trial") in on_front,
                 "tip": " · ".join(tip),
-                "url": url_for("pages.design_page", search_id=search_id, rank=rank),
+                "url": url_for("pages.design_page", search_id=search_id, rank=rank)
+                if rank is not None
+                else url_for("pages.search_page", search_id=search_id) + "#front",
             }
         )
-    points.sort(key=lambda p: (p["feasible"], p["front"], -p["rank"]))  # best drawn last, on top
+    points.sort(key=lambda p: (p["feasible"], p["front"], -(p["rank"] or 0)))  # best drawn last, on top
     line = sorted((p for p in points if p["front"]), key=lambda p: p["x"])
     return {
         "points": points,

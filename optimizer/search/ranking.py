@@ -4,6 +4,7 @@ search and the shortlist's full assessment."""
 from __future__ import annotations
 
 import json
+from typing import Container
 
 import numpy as np
 import optuna
@@ -49,11 +50,12 @@ NEAR_STEPS = 2  # a role whose value differs by fewer series steps is the same c
 DISTINCT_ROLES = 2  # designs differing by NEAR_STEPS or more in this many roles are distinct
 
 
-def fold_variants(space: SearchSpace, ranked: list[dict]) -> list[dict]:
+def fold_variants(space: SearchSpace, ranked: list[dict], keep: Container[tuple] = ()) -> list[dict]:
     """``ranked`` with near-identical designs folded into the best of them (which gains a
     ``variants`` count, itself included). Two designs are distinct when their topology or
     device differ, or when at least DISTINCT_ROLES roles differ by NEAR_STEPS or more steps
-    of the allowed values; otherwise the later one is a variant of the earlier."""
+    of the allowed values; otherwise the later one is a variant of the earlier. A design whose
+    :func:`design_key` is in ``keep`` (the front's) is never folded into another."""
     groups: dict[tuple[str, str], list[int]] = {}
     for k, r in enumerate(ranked):
         groups.setdefault((r["topology"], r["device"]), []).append(k)
@@ -72,7 +74,7 @@ def fold_variants(space: SearchSpace, ranked: list[dict]) -> list[dict]:
     for k, r in enumerate(ranked):
         key = (r["topology"], r["device"])
         positions, rows = kept_steps.setdefault(key, ([], []))
-        if rows:
+        if rows and design_key(r) not in keep:
             far = np.count_nonzero(np.abs(np.asarray(rows) - steps[k]) >= NEAR_STEPS, axis=1)
             near = np.flatnonzero(far < DISTINCT_ROLES)
             if near.size:

@@ -297,6 +297,9 @@ def completed_records(study: optuna.Study) -> list[dict]:
     return out
 
 
+FRONT_ROUNDS = 4  # times the front is re-formed after points that miss the full assessment leave it
+
+
 def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *, tail: bool = True) -> dict:
     """The shortlist and the front; with ``tail`` every other ranked design follows the
     shortlist as a nominal candidate.
@@ -304,9 +307,10 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     Ranked designs are assessed in full (worst case, FINAL_BUILDS builds) in rank order until
     ``top`` of them meet the spec on its basis, or SHORTLIST_REACH designs have been assessed:
     a design that passed the search's screen but misses on the full assessment drops below
-    every one that meets it."""
+    every one that meets it. The front holds only designs that meet the spec: a point assessed
+    in full that misses there is left off it, and the designs it dominated are looked at again."""
     every = rank_records(completed_records(study))
-    ranked = fold_variants(space, every)
+    ranked = fold_variants(space, every, keep={design_key(r) for r in front_records(space, every)})
     reach = ranked[: max(top, SHORTLIST_REACH)]
     shortlist: list[dict] = []
     # in rank order until `top` of them meet the spec: assessed together, as many at a time as
@@ -322,15 +326,25 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     candidates = shortlist + [candidate_from_record(space, r) for r in ranked[len(shortlist) :] if tail]
     for rank, c in enumerate(candidates, 1):
         c["rank"] = rank
-    points = front_records(space, every)  # every feasible design: a folded variant can be on the front
-    with_yield = set(np.linspace(0, len(points) - 1, min(len(points), FRONT_YIELD_POINTS)).round().astype(int))
-    to_assess = [r for k, r in enumerate(points) if k in with_yield and design_key(r) not in assessed]
-    assessed.update((design_key(r), c) for r, c in zip(to_assess, shortlist_candidates(space, to_assess, samples)))
+    # the front of every feasible design (none of them folded away above); a point assessed in full that
+    # misses the spec there leaves it, and the designs it hid are looked at again (FRONT_ROUNDS at most)
+    missed: set = set()
+    for _ in range(FRONT_ROUNDS):
+        points = front_records(space, [r for r in every if design_key(r) not in missed])
+        with_yield = set(np.linspace(0, len(points) - 1, min(len(points), FRONT_YIELD_POINTS)).round().astype(int))
+        to_assess = [r for k, r in enumerate(points) if k in with_yield and design_key(r) not in assessed]
+        assessed.update((design_key(r), c) for r, c in zip(to_assess, shortlist_candidates(space, to_assess, samples)))
+        now_missed = {design_key(r) for k, r in enumerate(points) if k in with_yield}
+        now_missed = {key for key in now_missed if not assessed[key]["feasible"]}
+        if not now_missed:
+            break
+        missed |= now_missed
     front = []
     for k, r in enumerate(points):
         c = dict(assessed[design_key(r)]) if k in with_yield else candidate_from_record(space, r)
-        c["objectives"] = r["objectives"]
-        front.append(c)
+        if c["feasible"]:
+            c["objectives"] = r["objectives"]
+            front.append(c)
     summary = {"candidates": candidates, "front": front, "evaluated": len(ranked)}
     if not any(c["feasible"] for c in shortlist):
         summary["infeasible"] = relax_one_limit(space.spec, every)
