@@ -27,6 +27,7 @@ from optimizer.netlist import candidate_netlist
 from optimizer.search import search
 from optimizer.spec import load_spec, parse_spec
 from optimizer.topologies.divider_ce import DividerCE
+from optimizer.topologies.feedback_ce import FeedbackCE
 
 ROOT = Path(__file__).resolve().parent.parent
 SPECS = sorted((ROOT / "specs").glob("*.yaml"))
@@ -280,8 +281,9 @@ def test_positive_gain_with_only_inverting_topologies_is_refused(tmp_path: Path)
     )
 
 
-def test_split_supply_is_refused_by_a_collector_biased_stage_alone(tmp_path: Path) -> None:
-    # eligibility (optimizer/validation.py): feedback_ce declares no split supply
+def test_split_supply_is_refused_by_a_single_rail_stage_alone(tmp_path: Path, monkeypatch) -> None:
+    # eligibility (optimizer/validation.py): a stage that declares no split supply
+    monkeypatch.setattr(FeedbackCE, "supplies", ("positive", "negative"))  # as if drawn for single rails alone
     _refused(
         tmp_path,
         [_spec_file(tmp_path, supply="+-12 V", topologies=["feedback_ce"])],
