@@ -8,29 +8,13 @@ import shutil
 import numpy as np
 import pytest
 
+from check_devices import check_npn
 from optimizer import eseries, physics
-from optimizer.devices import Device, thermal_voltage
+from optimizer.devices import thermal_voltage
 from optimizer.synthesis import HandRequirements, rounded_designs
 from optimizer.topologies import Conditions, get_topology
 
-DEVICE = Device(
-    id="npn-follow-a",
-    polarity="npn",
-    hfe_min=100,
-    hfe_typ=200,
-    hfe_max=300,
-    IS=1e-14,
-    BF=200,
-    NF=1.0,
-    VAF=100.0,
-    RB=10.0,
-    CJE=8e-12,
-    CJC=4e-12,
-    TF=4e-10,
-    vce_sat=0.2,
-    vceo_max=40.0,
-    p_max=0.5,
-)
+DEVICE = check_npn("npn-follow-a")
 # our own numbers: 12 V, 100k/120k divider, 5.6k emitter, 1 uF in, 10 uF out
 PARTS = dict(r_top=100e3, r_bottom=120e3, r_follower=5.6e3, c_in=1e-6, c_out=10e-6)
 TOPO = get_topology("emitter_follower")

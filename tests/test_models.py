@@ -14,30 +14,14 @@ import subprocess
 import numpy as np
 import pytest
 
+from check_devices import check_npn
 from optimizer import physics
 from optimizer.devices import Device, hfe_temperature_factor, saturation_current, thermal_voltage
 from optimizer.errors import InputError
 from optimizer.topologies import TOPOLOGIES, Conditions, get_topology
 from spice_designs import check_designs
 
-DEVICE = Device(
-    id="npn-bench-a",
-    polarity="npn",
-    hfe_min=100,
-    hfe_typ=200,
-    hfe_max=300,
-    IS=1e-14,
-    BF=200,
-    NF=1.0,
-    VAF=100.0,
-    RB=10.0,
-    CJE=8e-12,
-    CJC=4e-12,
-    TF=4e-10,
-    vce_sat=0.2,
-    vceo_max=40.0,
-    p_max=0.5,
-)
+DEVICE = check_npn("npn-bench-a")
 NINE_VOLT = dict(r_top=75e3, r_bottom=10e3, r_collector=10e3, r_emitter=1e3, c_in=10e-6, c_out=10e-6)
 DESIGNS = {
     "divider_ce": NINE_VOLT,

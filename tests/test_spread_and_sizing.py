@@ -6,32 +6,15 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from check_devices import check_npn
 from optimizer import eseries
-from optimizer.devices import Device
 from optimizer.sizing import size_capacitors
 from optimizer.synthesis import HandRequirements, rounded_designs
 from optimizer.tolerance import monte_carlo_yield, worst_case
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions
 
-DEVICE = Device(
-    id="t-npn",
-    polarity="npn",
-    hfe_min=100,
-    hfe_typ=200,
-    hfe_max=300,
-    IS=1e-14,
-    BF=200,
-    NF=1.0,
-    VAF=100,
-    RB=10,
-    CJE=8e-12,
-    CJC=4e-12,
-    TF=4e-10,
-    vce_sat=0.2,
-    vceo_max=45,
-    p_max=0.5,
-)
+DEVICE = check_npn("t-npn", vceo_max=45)
 # The common-practice 9 V stage: 75k/10k divider, Rc 10k, Re 1k unbypassed.
 STAGE = {
     "r_top": np.array([75e3]),
