@@ -3,13 +3,20 @@
     .venv/bin/python benchmarks/bench_models.py
     .venv/bin/python benchmarks/bench_models.py --per-topology   # the per-topology section alone
 
-Prints candidates per second and peak memory for: nominal core metrics of divider_ce, the
-plain-numpy reference kernel of the same core equations without the usable swing
-(benchmarks/reference_kernel.py, the speed bound; the core's rate is reported as a fraction of
-it, measured in the same run), the full metric set with frequency response and noise, the same
-in small groups of 16 designs per call (a search's groups, where per-call overhead counts), the
-capacitor sizing, and Monte Carlo yield, then issue 16's targets as target / measured / met;
-writes benchmarks/results/models.md.
+Prints candidates per second and peak memory for: the plain-numpy reference kernel of
+divider_ce's core equations (benchmarks/reference_kernel.py, the speed bound) with the usable
+swing's search (static solves in double precision, and again in single precision as the model
+runs them) and without it; the model's nominal core metrics, the same without the usable swing
+(its _usable_swing left out), and the core in small groups of 16 designs per call; the full
+metric set with frequency response and noise, the same in small groups (a search's groups,
+where per-call overhead counts), the capacitor sizing, and Monte Carlo yield, then issue 16's
+targets as target / measured / met; writes benchmarks/results/models.md. Every row is measured
+in the same run; each row's 'of reference' is over the reference of the same equations (with or
+without the swing).
+
+    .venv/bin/python benchmarks/bench_models.py --only core core_noswing reference reference_swing
+
+measures the named rows alone and prints them (the results file is left as it is).
 
     .venv/bin/python benchmarks/bench_models.py --topologies [NAME ...] [--scale F]
 
@@ -50,7 +57,7 @@ from optimizer.sizing import size_capacitors  # noqa: E402
 from optimizer.synthesis import HandRequirements  # noqa: E402
 from optimizer.tolerance import monte_carlo_yield  # noqa: E402
 from optimizer.topologies import TOPOLOGIES, get_topology  # noqa: E402
-from optimizer.topologies.base import Conditions  # noqa: E402
+from optimizer.topologies.base import Conditions, StageModel  # noqa: E402
 
 ROOT = Path(__file__).resolve().parent.parent
 DEVICE = Device(
@@ -108,7 +115,20 @@ BEFORE_ISSUE_16 = {
     "mc1000": 442,
 }
 # Issue 16's targets: (what, threshold) on the measured figure of :func:`measured`.
-TARGETS = {"core": ("0.8 of reference", 0.8), "full": ("2x before issue 16", 2.0)}
+TARGETS = {
+    "core": ("0.8 of reference with the swing", 0.8),
+    "core_noswing": ("0.8 of reference without the swing", 0.8),
+    "full": ("2x before issue 16", 2.0),
+}
+# The reference row each model row is measured against: the same equations (the core with its
+# usable swing against the reference kernel with the same swing search; the rest against the
+# reference without it, as before).
+BOUND = {"core": "reference_swing", "core_noswing": "reference", "core_small": "reference_swing"}
+
+
+def of_reference(key: str, rows: dict) -> float:
+    """A row's rate over its reference's (:data:`BOUND`), both measured in this run."""
+    return rows[key]["rate"] / rows[BOUND.get(key, "reference")]["rate"]
 
 
 def speedup(key: str, rows: dict) -> float:
@@ -119,9 +139,9 @@ def speedup(key: str, rows: dict) -> float:
 
 
 def measured(key: str, rows: dict) -> float:
-    """The figure a row's target is judged on: the core's rate over the reference kernel's (same
-    run); for the others :func:`speedup`."""
-    return rows[key]["rate"] / rows["reference"]["rate"] if key == "core" else speedup(key, rows)
+    """The figure a row's target is judged on: a core row's rate over its reference's (same run,
+    :func:`of_reference`); for the others :func:`speedup`."""
+    return of_reference(key, rows) if key.startswith("core") else speedup(key, rows)
 
 
 def pin_one_cpu() -> str:
@@ -162,7 +182,8 @@ def measure(label: str, work, n: int, repeats: int = REPEATS) -> dict:
     return {"label": label, "n": n, "rate": n / cpu, "wall_rate": n / wall, "peak_mb": peak}
 
 
-def main() -> None:
+def main(only: list[str] | None = None) -> None:
+    """Measure every row (or the rows named in ``only``, printed alone) and write the results file."""
     pinned = pin_one_cpu()
     topology = get_topology("divider_ce")
     core_n, full_n, size_n, mc_n, small_n = 1_000_000, 100_000, 2_000, 1_000, 4_096
@@ -184,43 +205,82 @@ def main() -> None:
             supply_range=(11.0, 13.0),
         )
 
-    rows = {
-        "reference": measure(
+    def in_groups(full: bool):
+        return lambda: [
+            topology.evaluate(
+                {k: v[i : i + SMALL_GROUP] for k, v in small_parts.items()}, DEVICE, CONDITIONS, full=full
+            )
+            for i in range(0, small_n, SMALL_GROUP)
+        ]
+
+    def without_swing():
+        """The core with the model's usable swing left out (StageModel._usable_swing replaced by zeros
+        for this call alone): the model's cost of the reference's equations without the swing."""
+        swing = StageModel._usable_swing
+        StageModel._usable_swing = lambda self, p, *args: np.zeros(next(iter(p.values())).size)
+        try:
+            topology.evaluate(core_parts, DEVICE, CONDITIONS, full=False)
+        finally:
+            StageModel._usable_swing = swing
+
+    plans = {
+        "reference": (
             "reference kernel: plain numpy, core equations without the usable swing",
             lambda: reference_kernel.core_metrics(core_parts, DEVICE, CONDITIONS),
             core_n,
         ),
-        "core": measure(
+        "reference_swing": (
+            "reference kernel with the usable swing (the same search; static solves in double precision)",
+            lambda: reference_kernel.core_metrics(core_parts, DEVICE, CONDITIONS, swing=True),
+            core_n,
+        ),
+        "reference_swing32": (
+            "reference kernel with the usable swing, static solves in single precision (as the model's)",
+            lambda: reference_kernel.core_metrics(core_parts, DEVICE, CONDITIONS, swing=True, static_dtype=np.float32),
+            core_n,
+        ),
+        "core": (
             "core metrics (bias, gain, impedances, usable swing and clip level, current)",
             lambda: topology.evaluate(core_parts, DEVICE, CONDITIONS, full=False),
             core_n,
         ),
-        "full": measure(
+        "core_noswing": ("core metrics without the usable swing", without_swing, core_n),
+        "core_small": (f"core metrics in small groups ({SMALL_GROUP} designs per call)", in_groups(False), small_n),
+        "full": (
             "full metrics (plus response, noise, supply rejection, thd, ratings)",
             lambda: topology.evaluate(full_parts, DEVICE, CONDITIONS, full=True),
             full_n,
         ),
-        "small": measure(
+        "small": (
             f"full metrics in small groups ({SMALL_GROUP} designs per call, as a search's groups)",
-            lambda: [
-                topology.evaluate({k: v[i : i + SMALL_GROUP] for k, v in small_parts.items()}, DEVICE, CONDITIONS)
-                for i in range(0, small_n, SMALL_GROUP)
-            ],
+            in_groups(True),
             small_n,
         ),
-        "sizing": measure(
+        "sizing": (
             "capacitor sizing (E12 c_in, c_out for the low corner)",
             lambda: size_capacitors(topology, size_parts, DEVICE, CONDITIONS, e12_caps),
             size_n,
         ),
-        "mc100": measure(
+        "mc100": (
             "Monte Carlo yield, 100 builds each (as every search trial; 3 temperatures x 3 supplies)",
             yield_of(100),
             mc_n,
         ),
-        "mc1000": measure("Monte Carlo yield, 1,000 builds each", yield_of(1000), mc_n),
+        "mc1000": ("Monte Carlo yield, 1,000 builds each", yield_of(1000), mc_n),
     }
-    bound = rows["reference"]["rate"]
+    if only:
+        unknown = sorted(set(only) - set(plans))
+        if unknown:
+            raise SystemExit(f"--only: unknown rows {unknown}; valid: {', '.join(plans)}")
+        load = os.getloadavg()[0]
+        rows = {key: measure(*plans[key]) for key in only}
+        for key, row in rows.items():
+            bound = BOUND.get(key, "reference")
+            ratio = f", {of_reference(key, rows):.3f} of {bound}" if bound in rows and key != bound else ""
+            print(f"{key}: {row['rate']:,.0f} /s CPU, {row['wall_rate']:,.0f} /s wall, {row['peak_mb']:.0f} MB{ratio}")
+        print(f"load average {load:.1f} at the start, {os.getloadavg()[0]:.1f} at the end")
+        return
+    rows = {key: measure(*plan) for key, plan in plans.items()}
     load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
     max_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e3
     lines = [
@@ -233,8 +293,12 @@ def main() -> None:
         "Rates are candidates per CPU second of this process (best of "
         f"{REPEATS}), so other load on a shared machine does not count against them; the",
         "wall-clock rate of the same runs is beside it. Peak memory is tracemalloc's peak over one run. "
-        "'of reference' is the row's rate over the reference kernel's, measured in this run; 'speed-up' is "
-        "the rate over the start of issue 16, both taken relative to their own run's reference kernel.",
+        "'of reference' is the row's rate over the reference kernel of the same equations, measured in this "
+        "run: the core (with its usable swing) and the core in small groups over the reference with the same "
+        "swing search in double precision, every other row over the reference without the swing (bias, "
+        "closed-form mid-band gain and impedances, coupling reactances, clip level, current); 'speed-up' is "
+        "the rate over the start of issue 16, both taken relative to their own run's reference kernel without "
+        "the swing.",
         "",
         "| what | candidates | candidates/s (CPU) | of reference | before issue 16 (CPU /s) | speed-up "
         "| before issue 11 (CPU /s) | wall-clock /s | peak memory (MB) |",
@@ -244,14 +308,14 @@ def main() -> None:
         before, earlier = BEFORE_ISSUE_16.get(key), BEFORE_ISSUE_11.get(key)
         gain = "-" if before is None or key == "reference" else f"{speedup(key, rows):.2f}x"
         lines.append(
-            f"| {row['label']} | {row['n']:,} | {row['rate']:,.0f} | {row['rate'] / bound:.3f} | "
+            f"| {row['label']} | {row['n']:,} | {row['rate']:,.0f} | {of_reference(key, rows):.3f} | "
             f"{'-' if before is None else f'{before:,}'} | {gain} | "
             f"{'-' if earlier is None else f'{earlier:,}'} | {row['wall_rate']:,.0f} | {row['peak_mb']:.0f} |"
         )
     lines += ["", "| target (issue 16) | target | measured | met |", "| --- | --- | --- | --- |"]
     for key, (what, threshold) in TARGETS.items():
         value = measured(key, rows)
-        shown = f"{value:.3f} of reference" if key == "core" else f"{value:.2f}x"
+        shown = f"{value:.3f} of {BOUND[key].replace('_', ' ')}" if key in BOUND else f"{value:.2f}x"
         lines.append(
             f"| {rows[key]['label'].split(' (')[0]} | {what} | {shown} | {'yes' if value >= threshold else 'no'} |"
         )
@@ -264,7 +328,10 @@ def main() -> None:
     )
     lines += ["", f"Process peak resident memory over the whole benchmark: {max_rss:.0f} MB."]
     text = "\n".join(lines) + "\n"
-    (ROOT / "benchmarks" / "results" / "models.md").write_text(text, encoding="utf-8")
+    results = ROOT / "benchmarks" / "results" / "models.md"
+    old = results.read_text(encoding="utf-8") if results.exists() else ""
+    notes = old[old.index("\n## ") :] if "\n## " in old else ""  # the notes written below the table stay
+    results.write_text(text + notes, encoding="utf-8")
     print(text)
 
 
@@ -335,5 +402,7 @@ if __name__ == "__main__":
             [a for a in args if a in TOPOLOGIES] or list(TOPOLOGIES),
             float(args[args.index("--scale") + 1]) if "--scale" in args else 1.0,
         )
+    elif "--only" in sys.argv[1:]:
+        main(sys.argv[sys.argv.index("--only") + 1 :])
     else:
         main()
