@@ -63,6 +63,7 @@ def solve_junction(
     vcb_vbe: np.ndarray | float = 0.0,
     v_start: np.ndarray | None = None,
     iterations: int = NEWTON_ITERATIONS,
+    currents_only: bool = False,
 ) -> dict[str, np.ndarray]:
     """Solve one forward-active transistor's base loop by vectorised damped Newton.
 
@@ -73,14 +74,16 @@ def solve_junction(
     Returns vbe, vcb, i_forward (If), ic, ib (A, V) and a boolean ``converged``.
     A fixed number of iterations is run for every candidate at once; v_start (V) is a
     warm start near the root (e.g. the quiescent Vbe when solving around an operating point).
+    The arguments broadcast against each other (a static transfer's drives as columns against
+    per-candidate columns); currents_only=True returns vbe, i_forward, ic and ib alone (a static
+    transfer's solves, which use no more).
     """
     # float64 unless the arrays given are all float32 (the usable-swing search: see StageModel._static_fn)
     dtype = np.result_type(
         *(np.asarray(x).dtype for x in (a, r_base, r_emit, beta) if np.asarray(x).dtype.kind == "f"), np.float32
     )
+    # each at its own shape (per-candidate columns stay columns): the ufuncs below broadcast
     a, r_base, r_emit, beta = (np.asarray(x, dtype=dtype) for x in (a, r_base, r_emit, beta))
-    if not a.shape == r_base.shape == r_emit.shape == beta.shape:
-        a, r_base, r_emit, beta = np.broadcast_arrays(a, r_base, r_emit, beta)
     r_ib = r_base / beta + r_emit / beta  # loop resistance per unit If through the base current
     if v_start is None:
         # The residual is concave and falling in Vbe, so Newton from above never overshoots the root:
@@ -94,7 +97,7 @@ def solve_junction(
     c_ib, c_vbe, c_ic = vcb_ib * inv_vaf / beta, vcb_vbe * inv_vaf, vcb_ic * inv_vaf
 
     # Work arrays made once and written in place (out=): an iteration allocates nothing.
-    shape = np.broadcast_shapes(np.shape(v), *(np.shape(x) for x in (c0, c_ib, c_vbe, c_ic)))
+    shape = np.broadcast_shapes(np.shape(v), *(np.shape(x) for x in (a, r_emit, r_ib, c0, c_ib, c_vbe, c_ic)))
     v = np.array(np.broadcast_to(v, shape), dtype=dtype)
     e, den, early, g, t = (np.empty_like(v) for _ in range(5))
 
@@ -147,6 +150,8 @@ def solve_junction(
         currents(v)
     ic = e * early
     vbe, ib = v, e / beta
+    if currents_only:
+        return {"vbe": vbe, "i_forward": e, "ic": ic, "ib": ib}
     vcb = vcb0 - vcb_ic * ic - vcb_ib * ib - vcb_vbe * vbe
     return {
         "vbe": vbe,

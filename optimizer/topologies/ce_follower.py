@@ -205,6 +205,7 @@ class CEFollower(StageModel):
                 vcb_vbe=1.0,
                 v_start=op["vbe"],
                 iterations=physics.THD_ITERATIONS,
+                currents_only=True,
                 **kw,
             )
             v_e1 = re * (q1["ic"] + q1["ib"])
@@ -218,6 +219,7 @@ class CEFollower(StageModel):
                 vcb_ib=-(rc + device.RB),
                 v_start=op["vbe2"],
                 iterations=physics.THD_ITERATIONS,
+                currents_only=True,
                 **kw,
             )
             v_c1 = np.maximum(c.supply - rc * (q1["ic"] + q2["ib"]), v_e1 + device.vce_sat)

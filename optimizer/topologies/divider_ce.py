@@ -216,6 +216,7 @@ class DividerCE(StageModel):
                 vcb_vbe=1.0,
                 v_start=op["vbe"],
                 iterations=physics.THD_ITERATIONS,
+                currents_only=True,
             )
             v_e = v_hold + re * (q["ic"] + q["ib"])
             v_c = np.maximum(vc_q - (q["ic"] - ic_q) * r_ac, v_e + device.vce_sat)

@@ -191,6 +191,7 @@ class FeedbackCE(StageModel):
                 vcb_vbe=1.0 - u,
                 v_start=op["vbe"],
                 iterations=physics.THD_ITERATIONS,
+                currents_only=True,
                 **kw,
             )
             ie = q["ic"] + q["ib"]
