@@ -78,10 +78,7 @@ def solve_junction(
     per-candidate columns); currents_only=True returns vbe, i_forward, ic and ib alone (a static
     transfer's solves, which use no more).
     """
-    # float64 unless the arrays given are all float32 (the usable-swing search: see StageModel._static_fn)
-    dtype = np.result_type(
-        *(np.asarray(x).dtype for x in (a, r_base, r_emit, beta) if np.asarray(x).dtype.kind == "f"), np.float32
-    )
+    dtype = np.float64
     # each at its own shape (per-candidate columns stay columns): the ufuncs below broadcast
     a, r_base, r_emit, beta = (np.asarray(x, dtype=dtype) for x in (a, r_base, r_emit, beta))
     r_ib = r_base / beta + r_emit / beta  # loop resistance per unit If through the base current

@@ -418,11 +418,11 @@ def test_per_candidate_supply_matches_one_supply_at_a_time(name):
 
 
 @pytest.mark.parametrize("design", check_designs(), ids=lambda d: d.name)
-def test_single_precision_swing_search_keeps_half_a_percent(design):
-    # The usable-swing search runs its static solves in float32 (speed); on every ngspice check design
-    # it must stay within 0.5 % of the definition applied in float64 by brute force: a dense drive sweep
-    # of the static transfer (static_transfer solves in float64), the first amplitude whose peaks leave
-    # the 10 % band, refined by bisection (DESIGN.md's rule; ngspice agreement: tests/spice_agreement.py)
+def test_swing_search_keeps_half_a_percent_of_the_brute_force_point(design):
+    # The usable-swing search (a scan and a few false-position steps) must stay within 0.5 % of the
+    # definition applied by brute force on every ngspice check design: a dense drive sweep of the
+    # static transfer, the first amplitude whose peaks leave the 10 % band, refined by bisection
+    # (DESIGN.md's rule; ngspice agreement: tests/spice_agreement.py)
     topo = get_topology(design.topology)
     r = topo.evaluate(design.parts, design.device, design.conditions, full=False)
     gain, clip = one(r, "gain"), one(r, "clip_vpp")

@@ -25,7 +25,6 @@ REGISTRY: dict[str, "Topology"] = {}
 Parts = dict[str, np.ndarray]
 CHUNK_FAST = 16384  # candidates per block (keeps the working set in cache)
 CHUNK_FULL = 4096  # the full path's nodal solves run over (frequencies, candidates): fewer, longer calls
-SWING_FLOAT32_FLOOR = 0.1  # V peak-to-peak: usable swings below it are re-solved in double precision
 METRICS = (
     "gain",
     "gain_db",
@@ -895,45 +894,23 @@ class StageModel(Topology):
         b: Bias,
         nvt: float,
         beta: np.ndarray,
-        dtype: type = np.float64,
     ) -> Callable[[np.ndarray], np.ndarray]:
-        """:meth:`static_output` of solved candidates, their arrays as columns (candidates, 1).
-
-        dtype np.float32 runs the static solves in single precision (about twice as fast; the
-        usable-swing search, whose 0.5 % budget it keeps with room: tests/test_models.py)."""
+        """:meth:`static_output` of solved candidates, their arrays as columns (candidates, 1):
+        views, no copies."""
         i_s = float(saturation_current(device.IS, c.temperature))
-
-        def col(d: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
-            return {
-                k: (np.asarray(v, dtype=dtype) if np.asarray(v).dtype.kind == "f" else np.asarray(v))[:, None]
-                for k, v in d.items()
-            }
-
-        local = replace(c, supply=np.asarray(b.op["v_supply_local"], dtype=dtype)[:, None])  # c_decouple holds it
-        fn = self.static_output(
-            col(p), device, local, Bias(col(b.op), b.small_signal), nvt, i_s, np.asarray(beta, dtype=dtype)[:, None]
+        local = replace(c, supply=b.op["v_supply_local"][:, None])  # c_decouple holds it
+        op = {k: v[:, None] for k, v in b.op.items()}
+        return self.static_output(
+            {k: v[:, None] for k, v in p.items()}, device, local, Bias(op, b.small_signal), nvt, i_s, beta[:, None]
         )
-        return lambda vs, **options: fn(np.asarray(vs, dtype=dtype), **options)  # options: a stage's own (waves=)
 
     def _usable_swing(
         self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, gain: np.ndarray, clip_peak: np.ndarray
     ) -> np.ndarray:
-        """swing_vpp (V peak-to-peak at the load) by :func:`physics.usable_swing`, its static solves in
-        single precision, then again in double precision for active candidates whose swing is under
-        SWING_FLOAT32_FLOOR or whose |gain| is under 1: single precision leaves microvolts of noise on the
-        nodes, below 0.5 % of the swing only for swings above that floor driven by a smaller drive (an
-        attenuating stage's drive of volts carries its rounding to the output); tests/test_models.py
-        checks the 0.5 % against float64. A candidate outside the active region is flagged, not
-        modelled, and keeps its single-precision value."""
-        swing = physics.usable_swing(self._static_fn(p, device, c, b, nvt, b.beta, np.float32), gain, clip_peak)
-        rows = np.flatnonzero(b.op["active"] & ~((swing >= SWING_FLOAT32_FLOOR) & (np.abs(gain) >= 1.0)))
-        if rows.size:
-            sub = Bias(
-                {k: v[rows] for k, v in b.op.items()}, [{k: v[rows] for k, v in ss.items()} for ss in b.small_signal]
-            )
-            fn = self._static_fn({k: v[rows] for k, v in p.items()}, device, c, sub, nvt, b.beta[rows])
-            swing[rows] = physics.usable_swing(fn, gain[rows], clip_peak[rows])
-        return swing
+        """swing_vpp (V peak-to-peak at the load) by :func:`physics.usable_swing`, in double precision
+        (single precision, with the small swings it leaves noisy solved again, was no faster at the
+        search's groups of 16-64 designs and 1.1x at 16,384: benchmarks/results/models.md)."""
+        return physics.usable_swing(self._static_fn(p, device, c, b, nvt, b.beta), gain, clip_peak)
 
     def _thd_static(
         self,
