@@ -5,8 +5,7 @@
 
 Prints candidates per second and peak memory for: the plain-numpy reference kernel of
 divider_ce's core equations (benchmarks/reference_kernel.py, the speed bound) with the usable
-swing's search (static solves in double precision, and again in single precision as the model
-runs them) and without it; the model's nominal core metrics, the same without the usable swing
+swing's search and without it; the model's nominal core metrics, the same without the usable swing
 (its _usable_swing left out), and the core in small groups of 16 designs per call; the full
 metric set with frequency response and noise, the same in small groups (a search's groups,
 where per-call overhead counts), the capacitor sizing, and Monte Carlo yield, then issue 16's
@@ -230,13 +229,8 @@ def main(only: list[str] | None = None) -> None:
             core_n,
         ),
         "reference_swing": (
-            "reference kernel with the usable swing (the same search; static solves in double precision)",
+            "reference kernel: plain numpy, core equations with the usable swing (the same search)",
             lambda: reference_kernel.core_metrics(core_parts, DEVICE, CONDITIONS, swing=True),
-            core_n,
-        ),
-        "reference_swing32": (
-            "reference kernel with the usable swing, static solves in single precision (as the model's)",
-            lambda: reference_kernel.core_metrics(core_parts, DEVICE, CONDITIONS, swing=True, static_dtype=np.float32),
             core_n,
         ),
         "core": (
@@ -295,7 +289,7 @@ def main(only: list[str] | None = None) -> None:
         "wall-clock rate of the same runs is beside it. Peak memory is tracemalloc's peak over one run. "
         "'of reference' is the row's rate over the reference kernel of the same equations, measured in this "
         "run: the core (with its usable swing) and the core in small groups over the reference with the same "
-        "swing search in double precision, every other row over the reference without the swing (bias, "
+        "swing search, every other row over the reference without the swing (bias, "
         "closed-form mid-band gain and impedances, coupling reactances, clip level, current); 'speed-up' is "
         "the rate over the start of issue 16, both taken relative to their own run's reference kernel without "
         "the swing.",

@@ -82,21 +82,19 @@ def solve_junction(
     # each at its own shape (per-candidate columns stay columns): the ufuncs below broadcast
     a, r_base, r_emit, beta = (np.asarray(x, dtype=dtype) for x in (a, r_base, r_emit, beta))
     r_ib = r_base / beta + r_emit / beta  # loop resistance per unit If through the base current
-    if v_start is None:
-        # The residual is concave and falling in Vbe, so Newton from above never overshoots the root:
-        # start at the smaller of two points above it (Vbe = a, or the Vbe of the largest current a/k).
-        v = np.minimum(a, nvt * np.log1p(np.maximum(a, 0.0) / np.maximum(r_ib + r_emit, 1e-3) / i_s))
-    else:
-        v = v_start + 0.0 * a
-
     inv_nvt = 1.0 / nvt
     c0 = 1.0 + np.asarray(vcb0, dtype=dtype) * inv_vaf  # Early factor terms, per unit If or Vbe
     c_ib, c_vbe, c_ic = vcb_ib * inv_vaf / beta, vcb_vbe * inv_vaf, vcb_ic * inv_vaf
 
     # Work arrays made once and written in place (out=): an iteration allocates nothing.
-    shape = np.broadcast_shapes(np.shape(v), *(np.shape(x) for x in (a, r_emit, r_ib, c0, c_ib, c_vbe, c_ic)))
-    v = np.array(np.broadcast_to(v, shape), dtype=dtype)
-    e, den, early, g, t = (np.empty_like(v) for _ in range(5))
+    shape = np.broadcast_shapes(np.shape(v_start), *(np.shape(x) for x in (a, r_emit, r_ib, c0, c_ib, c_vbe, c_ic)))
+    v, e, den, early, g, t = (np.empty(shape, dtype=dtype) for _ in range(6))
+    if v_start is None:
+        # The residual is concave and falling in Vbe, so Newton from above never overshoots the root:
+        # start at the smaller of two points above it (Vbe = a, or the Vbe of the largest current a/k).
+        v[...] = np.minimum(a, nvt * np.log1p(np.maximum(a, 0.0) / np.maximum(r_ib + r_emit, 1e-3) / i_s))
+    else:
+        v[...] = v_start
 
     def currents(v: np.ndarray) -> None:
         """e = If, early = Ic/If, t = r_ib + r_emit*early and g = the loop residual, at Vbe = v."""

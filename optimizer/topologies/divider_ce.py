@@ -199,11 +199,14 @@ class DividerCE(StageModel):
         re = self._re_ac(p)
         v_hold = op.get("v_e2", np.zeros_like(rth))
         ic_q, vc_q = op["ic"], op["v_collector"]
+        # the loop's drive a0 + k_a*vs (V): the Thevenin of source and divider, c_in holding the base
+        k_a = rth / (rs + rth)
+        a0 = (vth * rs + input_hold(p, c, op) * rth) / (rs + rth) - v_hold
+        floor = v_hold + device.vce_sat - vc_q  # the output's floor less v_e (V): vce_sat above the emitter
 
         def out(vs: np.ndarray) -> np.ndarray:
-            a = (vth * rs + (vs + input_hold(p, c, op)) * rth) / (rs + rth) - v_hold
             q = physics.solve_junction(
-                a,
+                a0 + k_a * vs,
                 r_t + device.RB,
                 re,
                 i_s=i_s,
@@ -218,9 +221,7 @@ class DividerCE(StageModel):
                 iterations=physics.THD_ITERATIONS,
                 currents_only=True,
             )
-            v_e = v_hold + re * (q["ic"] + q["ib"])
-            v_c = np.maximum(vc_q - (q["ic"] - ic_q) * r_ac, v_e + device.vce_sat)
-            return v_c - vc_q
+            return np.maximum((ic_q - q["ic"]) * r_ac, re * (q["ic"] + q["ib"]) + floor)  # v_c - vc_q
 
         return out
 
