@@ -417,53 +417,63 @@ class Network:
             targets = frozenset(range(len(self.nodes)) if want is None else (self.index[w] for w in want))
             plan = _elimination_plan(len(self.nodes), frozenset(entries), rhs_nodes, targets)
             values = [v for pair in entries.values() for v in pair if v is not None]
-            fills = [(plan.slot[key], g, c) for key, (g, c) in entries.items()]
+            shape = np.broadcast_shapes(*(np.shape(v) for v in values))
+            # the entries' G and C stacked in slot order (the entries hold the plan's first slots),
+            # zero where absent: the matrix is filled by two array operations, not two per entry
+            stack_g, stack_c = np.zeros((2, len(entries), *shape), dtype=np.result_type(*values))
+            for key, (g, c) in entries.items():
+                if g is not None:
+                    stack_g[plan.slot[key]] = g
+                if c is not None:
+                    stack_c[plan.slot[key]] = c
             known = self._plans[structure] = (
                 plan,
-                fills,
+                (stack_g, stack_c if caps else None),
                 targets,
-                np.broadcast_shapes(*(np.shape(v) for v in values)),
+                shape,
                 np.result_type(*values),
-                bool(caps),
             )
-        plan, fills, targets, shape, dtype, has_caps = known
+        plan, (stack_g, stack_c), targets, shape, dtype = known
         rhs_idx = {plan.slot[("b", self.index[k])]: np.asarray(v) for k, v in rhs.items()}
-        imaginary = s is not None and np.iscomplexobj(s) and not np.any(s.real)
+        values_shape = shape
         shape = np.broadcast_shapes(shape, *(np.shape(v) for v in rhs_idx.values()))
-        if has_caps and s is not None:
+        if stack_c is not None:
             shape = np.broadcast_shapes(shape, s.shape)
             dtype = np.result_type(dtype, s)
         dtype = np.result_type(dtype, *rhs_idx.values())
         work = _workspace(plan.slots + 1, shape, dtype)
-        scratch = work[plan.slots]
-        for slot, g, c in fills:  # fill the matrix entries: G + s*C
-            w = work[slot]
-            if c is None:
-                w[...] = g
-            elif imaginary:
-                w.real = 0.0 if g is None else g
-                np.multiply(s.imag, c, out=w.imag)
-            else:
-                np.multiply(s, c, out=w)
-                if g is not None:
-                    w += g
+        # fill the matrix entries, G + s*C, in one go (element values broadcast to the solve's shape)
+        m = stack_g.shape[0]
+        expand = (m,) + (1,) * (len(shape) - len(values_shape)) + values_shape
+        filled = work[:m]
+        if stack_c is None:
+            filled[...] = stack_g.reshape(expand)
+        elif np.iscomplexobj(s) and not np.any(s.real):  # s = j*omega: real part G, imaginary omega*C
+            filled.real = stack_g.reshape(expand)
+            np.multiply(s.imag, stack_c.reshape(expand), out=filled.imag)
+        else:
+            np.multiply(s, stack_c.reshape(expand), out=filled)
+            filled += stack_g.reshape(expand)
         for slot, v in rhs_idx.items():
             work[slot] = v
+        w = list(work)  # one view per slot, made once
+        scratch = w[plan.slots]
+        multiply, subtract = np.multiply, np.subtract
         for op, target, a, b in plan.ops:  # run the plan in place
-            t = work[target]
-            if op == "inv":
-                np.reciprocal(t, out=t)
+            t = w[target]
+            if op == "sub":  # t -= a*b
+                multiply(w[a], w[b], out=scratch)
+                subtract(t, scratch, out=t)
             elif op == "scale":
-                t *= work[a]
-            elif op == "sub":  # t -= a*b
-                np.multiply(work[a], work[b], out=scratch)
-                t -= scratch
+                multiply(t, w[a], out=t)
+            elif op == "inv":
+                np.reciprocal(t, out=t)
             elif op == "zero":
                 t[...] = 0.0
             else:  # "neg": t = -a*b (a fill-in, or the first term of a node without injection)
-                np.multiply(work[a], work[b], out=t)
+                multiply(w[a], w[b], out=t)
                 np.negative(t, out=t)
-        return {self.nodes[k]: work[plan.slot[("x", k)]].copy() for k in targets}
+        return {self.nodes[k]: w[plan.slot[("x", k)]].copy() for k in targets}
 
 
 class _Plan:
@@ -472,13 +482,11 @@ class _Plan:
     def __init__(self) -> None:
         self.slot: dict = {}
         self.ops: list[tuple[str, int, int, int]] = []
-
-    @property
-    def slots(self) -> int:
-        return len(set(self.slot.values()))
+        self.slots = 0  # slots in use (several keys may share one: x[k] is held in b[k]'s)
 
     def new(self, key: object) -> int:
         self.slot[key] = self.slots
+        self.slots += 1
         return self.slot[key]
 
 

@@ -14,44 +14,55 @@ import numpy as np
 
 from optimizer.devices import AnyDevice
 from optimizer.physics import SWEEP, low_3db_corner
-from optimizer.topologies.base import CHUNK_FULL, Conditions, Topology, _source_resistance, frame_conditions
+from optimizer.topologies.base import CHUNK_FULL, Bias, Conditions, Topology, _source_resistance, frame_conditions
 
 _LARGE_CAPACITANCE = 1.0  # F: "a short" at audio frequencies for the corner probe
 _PROBE_VALUES = (1e-6, 1e-8, 1e-10, 1e-4)  # F, tried in turn for each capacitor's own corner
 _SCALE_GRID = np.geomspace(1.0, 16.0, 25)  # common factors m tried, ascending
 
 
-def _f_low(topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions) -> np.ndarray:
-    """The stage's f_low (Hz), the same values as ``evaluate(full=True).metrics["f_low"]``, computed
-    alone: the bias, the closed-form mid-band gain as the reference and the low crossing of the
-    nodal response (no swing, f_high, noise, supply rejection or ratings), in evaluation chunks."""
-    conditions = frame_conditions(conditions, device)
-    p = topology.check_parts(parts, conditions)
-    n = next(iter(p.values())).size
-    beta = topology._hfe_array(device, None, n)
-    out = np.empty(n)
-    for i in range(0, n, CHUNK_FULL):
-        chunk = {k: v[i : i + CHUNK_FULL] for k, v in p.items()}
-        chunk, b, _ = topology._solve(chunk, device, conditions, beta[i : i + CHUNK_FULL])
-        r_source = _source_resistance(b, conditions)
-        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            gain = topology._midband(chunk, conditions, b, r_source)["gain"]
-            net = topology._network(chunk, conditions, b.small_signal, True, r_source, True)
-            out[i : i + CHUNK_FULL] = low_3db_corner(topology._response(net, r_source), gain)
-    return out
+class _LowCorner:
+    """The stage's f_low (Hz) for capacitor variants of fixed candidates: the same values as
+    ``evaluate(full=True).metrics["f_low"]`` of each variant, computed alone. The capacitors
+    leave the bias alone (open at DC; a held c_in keeps its value in every variant), so it is
+    solved once for the candidates; each variant takes its candidate's bias, then the mid-band
+    gain as the reference (closed form; a follower's depends on its capacitors) and the low
+    crossing of the nodal response (no swing, f_high, noise, supply rejection or ratings)."""
+
+    def __init__(
+        self, topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions
+    ) -> None:
+        self.topology, self.conditions = topology, frame_conditions(conditions, device)
+        p = topology.check_parts(parts, self.conditions)
+        beta = topology._hfe_array(device, None, next(iter(p.values())).size)
+        self.parts, self.bias, _ = topology._solve(p, device, self.conditions, beta)
+
+    def __call__(self, rows: np.ndarray, caps: dict[str, np.ndarray]) -> np.ndarray:
+        """f_low (Hz) of the variants: candidate ``rows[k]`` with the capacitor values (F) ``caps[c][k]``."""
+        t, c, b = self.topology, self.conditions, self.bias
+        out = np.empty(rows.size)
+        for i in range(0, rows.size, CHUNK_FULL):
+            at = rows[i : i + CHUNK_FULL]
+            p = {**{k: v[at] for k, v in self.parts.items()}, **{k: v[i : i + CHUNK_FULL] for k, v in caps.items()}}
+            chunk = Bias({k: v[at] for k, v in b.op.items()}, [{k: v[at] for k, v in ss.items()} for ss in b.small_signal])
+            r_source = _source_resistance(chunk, c)
+            with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+                gain = t._midband(p, c, chunk, r_source)["gain"]
+                net = t._network(p, c, chunk.small_signal, True, r_source, True)
+                out[i : i + CHUNK_FULL] = low_3db_corner(t._response(net, r_source), gain)
+        return out
+
+    def stacked(self, variants: list[dict[str, np.ndarray]]) -> np.ndarray:
+        """f_low of several capacitor variants of all the candidates: shape (variants, candidates)."""
+        n = self.bias.op["ic"].size
+        rows = np.tile(np.arange(n), len(variants))
+        caps = {c: np.concatenate([np.broadcast_to(v[c], (n,)) for v in variants]) for c in variants[0]}
+        return self(rows, caps).reshape(len(variants), n)
 
 
 def _round_up(values: np.ndarray, allowed: np.ndarray) -> np.ndarray:
     """Index of the smallest allowed value >= each value (clipped to the largest)."""
     return np.minimum(np.searchsorted(allowed, values * (1 - 1e-9)), allowed.size - 1)
-
-
-def _stacked_f_low(
-    topology: Topology, variants: list[dict[str, np.ndarray]], device: AnyDevice, conditions: Conditions
-) -> np.ndarray:
-    """f_low of several variants of the same candidates in one vectorised call: shape (variants, n)."""
-    stacked = {r: np.concatenate([v[r] for v in variants]) for r in variants[0]}
-    return _f_low(topology, stacked, device, conditions).reshape(len(variants), -1)
 
 
 def size_capacitors(
@@ -75,7 +86,7 @@ def size_capacitors(
     size = np.broadcast(*resistors.values()).shape
     resistors = {r: np.broadcast_to(np.asarray(v, dtype=float), size) for r, v in resistors.items()}
     caps = tuple(c for c in topology.capacitors if c not in resistors)
-    large = {c: np.full(size, _LARGE_CAPACITANCE) for c in caps}
+    f_low = _LowCorner(topology, {**resistors, **{c: _LARGE_CAPACITANCE for c in caps}}, device, conditions)
 
     corner_constant = {c: np.full(size, np.nan) for c in caps}
     f_smallest = {c: np.full(size, np.inf) for c in caps}  # f_low with the smallest probe (Hz)
@@ -84,16 +95,16 @@ def size_capacitors(
         pending = {c: rows for c, rows in pending.items() if rows.size}
         if not pending:
             break
-        variants = [
+        # one variant per pending (capacitor, candidate): that capacitor at the probe, the others large
+        rows = np.concatenate(list(pending.values()))
+        f_probe = f_low(
+            rows,
             {
-                **{r: v[rows] for r, v in resistors.items()},
-                **{c: large[c][rows] for c in large},
-                cap: np.full(rows.size, value),
-            }
-            for cap, rows in pending.items()
-        ]
-        f_probe = _f_low(
-            topology, {r: np.concatenate([v[r] for v in variants]) for r in variants[0]}, device, conditions
+                c: np.concatenate(
+                    [np.full(r.size, value if cap == c else _LARGE_CAPACITANCE) for cap, r in pending.items()]
+                )
+                for c in caps
+            },
         )
         start = 0
         for cap, rows in pending.items():
@@ -112,9 +123,7 @@ def size_capacitors(
     corner_constant = {c: np.nan_to_num(k, nan=allowed[-1] * target) for c, k in corner_constant.items()}
 
     scaled = [{c: _round_up(m * corner_constant[c] / target, allowed) for c in caps} for m in _SCALE_GRID]
-    f_scaled = _stacked_f_low(
-        topology, [{**resistors, **{c: allowed[i] for c, i in idx.items()}} for idx in scaled], device, conditions
-    )
+    f_scaled = f_low.stacked([{c: allowed[i] for c, i in idx.items()} for idx in scaled])
     meets = f_scaled <= target  # (scale factors, n)
     found = meets.any(axis=0)
     first = np.where(found, np.argmax(meets, axis=0), 0)
@@ -128,14 +137,8 @@ def size_capacitors(
     # played on the results (the same outcome as one call per capacitor).
     subsets = range(1, 1 << len(caps))  # bit j: capacitor j one value lower
     lower = {c: np.maximum(best[c] - 1, 0) for c in caps}
-    f_sub = _stacked_f_low(
-        topology,
-        [
-            {**resistors, **{c: allowed[lower[c] if mask >> j & 1 else best[c]] for j, c in enumerate(caps)}}
-            for mask in subsets
-        ],
-        device,
-        conditions,
+    f_sub = f_low.stacked(
+        [{c: allowed[lower[c] if mask >> j & 1 else best[c]] for j, c in enumerate(caps)} for mask in subsets]
     )
     taken = np.zeros(size, dtype=int)
     for j in range(len(caps)):
