@@ -373,8 +373,9 @@ class Network:
         workspace (s broadcasts with the element values, e.g. (frequencies, 1) against
         (candidates,) gives (frequencies, candidates)).
         """
-        n = Network(self.nodes, self.temp_c)
-        n.noise, n.y, n.cap, n.s, n._plans = self.noise, self.y, self.cap, np.asarray(s), self._plans
+        n = object.__new__(Network)  # the same elements, noise sources and plans (no copies)
+        n.__dict__.update(self.__dict__)
+        n.s = np.asarray(s)
         return n
 
     def take(self, cols: np.ndarray, n: int) -> "Network":
@@ -436,10 +437,11 @@ class Network:
         plan, (stack_g, stack_c), targets, shape, dtype = known
         rhs_idx = {plan.slot[("b", self.index[k])]: np.asarray(v) for k, v in rhs.items()}
         values_shape = shape
-        shape = np.broadcast_shapes(shape, *(np.shape(v) for v in rhs_idx.values()))
+        shapes = [v.shape for v in rhs_idx.values()]
         if stack_c is not None:
-            shape = np.broadcast_shapes(shape, s.shape)
+            shapes.append(s.shape)
             dtype = np.result_type(dtype, s)
+        shape = np.broadcast_shapes(shape, *shapes)
         dtype = np.result_type(dtype, *rhs_idx.values())
         work = _workspace(plan.slots + 1, shape, dtype)
         # fill the matrix entries, G + s*C, in one go (element values broadcast to the solve's shape)
@@ -448,7 +450,7 @@ class Network:
         filled = work[:m]
         if stack_c is None:
             filled[...] = stack_g.reshape(expand)
-        elif np.iscomplexobj(s) and not np.any(s.real):  # s = j*omega: real part G, imaginary omega*C
+        elif s.dtype.kind == "c" and not s.real.any():  # s = j*omega: real part G, imaginary omega*C
             filled.real = stack_g.reshape(expand)
             np.multiply(s.imag, stack_c.reshape(expand), out=filled.imag)
         else:
@@ -599,6 +601,10 @@ def low_3db_corner(response: Callable[[np.ndarray], np.ndarray], reference: np.n
     return _corners(response, reference, (0,))[0]
 
 
+_GRID = np.logspace(np.log10(SWEEP[0]), np.log10(SWEEP[1]), COARSE_POINTS)  # Hz, the corners' coarse grid
+_LOG_GRID = np.log10(_GRID)
+
+
 def _corners(
     response: Callable[[np.ndarray], np.ndarray],
     reference: np.ndarray,
@@ -606,11 +612,18 @@ def _corners(
     steps: int = REFINE_STEPS,
 ) -> np.ndarray:
     """The -3 dB crossings of :func:`minus_3db_corners` on ``sides`` (0 low, 1 high), shape (sides, candidates)."""
-    grid = np.logspace(np.log10(SWEEP[0]), np.log10(SWEEP[1]), COARSE_POINTS)
+    grid = _GRID
     ref2 = _magnitude2(reference)
 
     def distance(h: np.ndarray, r2: np.ndarray | None = None) -> np.ndarray:  # > 0 in band, <= 0 beyond the corner
-        return -np.log(np.maximum((ref2 if r2 is None else r2) / (_magnitude2(h) + 1e-300) - 1.0, 1e-30))
+        # -ln(max(ref2/(|h|^2 + 1e-300) - 1, 1e-30)), in place on one array
+        d = _magnitude2(h)
+        d += 1e-300
+        np.divide(ref2 if r2 is None else r2, d, out=d)
+        d -= 1.0
+        np.maximum(d, 1e-30, out=d)
+        np.log(d, out=d)
+        return np.negative(d, out=d)
 
     db = distance(response(grid[:, None]))  # (k, n)
     n = db.shape[1]
@@ -625,34 +638,41 @@ def _corners(
     i0 = np.clip(i_out, 0, grid.size - 1)
     i1 = np.clip(i0 + np.array([[1], [-1]])[rows], 0, grid.size - 1)
     cols = np.arange(n)
-    log_grid = np.log10(grid)
-    x0, x1 = log_grid[i0], log_grid[i1]
+    x0, x1 = _LOG_GRID[i0], _LOG_GRID[i1]
     d0, d1 = db[i0, cols], db[i1, cols]
-    last = np.zeros((len(rows), n), dtype=bool)
     # An inside end at or above the reference (a response peaking near its corner, as a
     # bootstrap's) has d at its clamp, where false position would crawl: such a bracket is
     # bisected in log f until its inside end lies below the reference, and its candidate takes
     # PEAK_STEPS more steps (those candidates alone, through ``response.take`` when it has one).
     above_ref = d1 >= PEAK_DISTANCE
-    state = [x0, x1, d0, d1, last, above_ref, np.zeros_like(x0)]
+    state = [x0, x1, d0, d1, np.zeros((len(rows), n), dtype=bool), above_ref, np.zeros_like(x0), _estimate(x0, x1, d0, d1)]
     _false_position(response, distance, state, steps)
     if not hasattr(response, "take"):  # a plain callable: every candidate takes the peak steps
-        if np.any(above_ref & inside):
+        if (above_ref & inside).any():
             _false_position(response, distance, state, PEAK_STEPS)
     else:  # the candidates whose estimate still moves, or that peaked, alone
         for _ in range(PEAK_STEPS):
-            x0, x1, d0, d1, _, above_ref, moved = state
+            moved, above_ref = state[6], state[5]
             more = np.flatnonzero(((moved > CORNER_XTOL) | above_ref) & inside)
-            more = np.unique(more % n) if more.size else more
             if not more.size:
                 break
+            more = np.unique(more % n)
             part = [v[:, more] for v in state]
             _false_position(response.take(more), distance, part, 1, ref2[..., more])
             for whole, v in zip(state, part):
                 whole[:, more] = v
-    x0, x1, d0, d1 = state[:4]
-    xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
-    return np.where(inside, 10.0**xm, np.array(SWEEP)[rows, None])
+    return np.where(inside, np.power(10.0, state[7]), np.array(SWEEP)[rows, None])
+
+
+def _estimate(x0: np.ndarray, x1: np.ndarray, d0: np.ndarray, d1: np.ndarray) -> np.ndarray:
+    """The false-position point (log10 Hz) of brackets x0 (outside, d0 <= 0) to x1 (inside, d1 > 0)."""
+    den = d0 - d1
+    den[d0 == d1] = 1.0
+    xm = x1 - x0
+    xm *= d0
+    xm /= den
+    xm += x0
+    return xm
 
 
 def _false_position(
@@ -663,23 +683,34 @@ def _false_position(
     ref2: np.ndarray | None = None,
 ) -> None:
     """``steps`` Illinois false-position steps of :func:`_corners` on the brackets in ``state``
-    ([x0, x1, d0, d1, last, above_ref, moved], each (sides, candidates), replaced in place;
-    moved: how far the last step moved the estimate, decades); ``ref2``: the squared reference
-    of these candidates when not the distance's own."""
-    x0, x1, d0, d1, last, above_ref, moved = state
+    ([x0, x1, d0, d1, last, above_ref, moved, next], each (sides, candidates), updated in place;
+    moved: how far the last step moved the estimate, decades; next: the next step's point,
+    log10 Hz); ``ref2``: the squared reference of these candidates when not the distance's own."""
+    x0, x1, d0, d1, last, above_ref, _, xm = state
     for _ in range(steps):  # Illinois false position on the crossings at once
-        xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1)
-        xm = np.where(above_ref, 0.5 * (x0 + x1), np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1)))
-        dm = distance(response(10.0**xm), ref2)
+        lo, hi = np.minimum(x0, x1), np.maximum(x0, x1)
+        np.maximum(xm, lo, out=xm)
+        np.minimum(xm, hi, out=xm)
+        if above_ref.any():  # bisected
+            lo += hi
+            lo *= 0.5
+            np.copyto(xm, lo, where=above_ref)
+        dm = distance(response(np.power(10.0, xm)), ref2)
         out_side = dm <= 0.0
-        d1 = np.where(out_side & last & ~above_ref, 0.5 * d1, d1)  # an end kept twice: halve its value
-        d0 = np.where(~out_side & ~last & ~above_ref, 0.5 * d0, d0)
-        x0, d0 = np.where(out_side, xm, x0), np.where(out_side, dm, d0)
-        x1, d1 = np.where(out_side, x1, xm), np.where(out_side, d1, dm)
-        above_ref = np.where(out_side, above_ref, dm >= PEAK_DISTANCE)
-        last = out_side
-        moved = np.abs(x0 + (x1 - x0) * d0 / np.where(d0 == d1, 1.0, d0 - d1) - xm)  # the next step's move
-    state[:] = [x0, x1, d0, d1, last, above_ref, moved]
+        in_side = ~out_side
+        keep = ~above_ref
+        np.multiply(d1, 0.5, out=d1, where=out_side & last & keep)  # an end kept twice: halve its value
+        np.multiply(d0, 0.5, out=d0, where=in_side & ~last & keep)
+        np.copyto(x0, xm, where=out_side)
+        np.copyto(d0, dm, where=out_side)
+        np.copyto(x1, xm, where=in_side)
+        np.copyto(d1, dm, where=in_side)
+        np.copyto(above_ref, dm >= PEAK_DISTANCE, where=in_side)
+        last[...] = out_side
+        nxt = _estimate(x0, x1, d0, d1)
+        moved = np.abs(nxt - xm)  # the next step's move
+        xm = nxt
+    state[6:] = [moved, xm]
 
 
 class Response:

@@ -122,15 +122,22 @@ def size_capacitors(
         k[unmoved] = 0.0
     corner_constant = {c: np.nan_to_num(k, nan=allowed[-1] * target) for c, k in corner_constant.items()}
 
-    scaled = [{c: _round_up(m * corner_constant[c] / target, allowed) for c in caps} for m in _SCALE_GRID]
-    f_scaled = f_low.stacked([{c: allowed[i] for c, i in idx.items()} for idx in scaled])
+    # the values of every common factor (factors, n) per capacitor; where a factor rounds every
+    # capacitor to the same values as the factor before it, its f_low is that one's (not solved again)
+    scaled = {c: _round_up(_SCALE_GRID[:, None] * corner_constant[c] / target, allowed) for c in caps}
+    new = np.zeros(scaled[caps[0]].shape, dtype=bool)
+    new[0] = True
+    for idx in scaled.values():
+        new[1:] |= idx[1:] != idx[:-1]
+    which = np.flatnonzero(new)  # flat (factor, candidate) of the variants solved
+    f_scaled = np.empty(new.shape)
+    f_scaled.flat[which] = f_low(which % new.shape[1], {c: allowed[idx.flat[which]] for c, idx in scaled.items()})
+    for k in range(1, new.shape[0]):
+        f_scaled[k] = np.where(new[k], f_scaled[k], f_scaled[k - 1])
     meets = f_scaled <= target  # (scale factors, n)
     found = meets.any(axis=0)
     first = np.where(found, np.argmax(meets, axis=0), 0)
-    best = {
-        c: np.where(found, np.stack([idx[c] for idx in scaled])[first, np.arange(first.size)], allowed.size - 1)
-        for c in caps
-    }
+    best = {c: np.where(found, idx[first, np.arange(first.size)], allowed.size - 1) for c, idx in scaled.items()}
 
     # One step down each capacitor in turn, where the target still holds with the earlier steps
     # taken: every subset of capacitors stepped down is solved in one call, then the turns are
