@@ -9,6 +9,7 @@ forward-active region; a candidate outside it is flagged, not modelled.
 
 from __future__ import annotations
 
+import functools
 import threading
 from collections.abc import Callable, Iterable, Sequence
 
@@ -645,7 +646,16 @@ def _corners(
     # bisected in log f until its inside end lies below the reference, and its candidate takes
     # PEAK_STEPS more steps (those candidates alone, through ``response.take`` when it has one).
     above_ref = d1 >= PEAK_DISTANCE
-    state = [x0, x1, d0, d1, np.zeros((len(rows), n), dtype=bool), above_ref, np.zeros_like(x0), _estimate(x0, x1, d0, d1)]
+    state = [
+        x0,
+        x1,
+        d0,
+        d1,
+        np.zeros((len(rows), n), dtype=bool),
+        above_ref,
+        np.zeros_like(x0),
+        _estimate(x0, x1, d0, d1),
+    ]
     _false_position(response, distance, state, steps)
     if not hasattr(response, "take"):  # a plain callable: every candidate takes the peak steps
         if (above_ref & inside).any():
@@ -749,7 +759,7 @@ def noise_integrals(
     grid. Matches SPICE .noise input-referred total.
     """
     flicker = any(kind == "flicker" for _, _, kind, _ in network.noise)
-    f = np.geomspace(band[0], band[1], NOISE_POINTS_FLICKER if flicker else NOISE_POINTS)[:, None]
+    f = _noise_frequencies(band[0], band[1], NOISE_POINTS_FLICKER if flicker else NOISE_POINTS)
     net = network.at(2j * np.pi * f)
     z = net.transposed().solve({out_node: np.ones(1)})
     gain2 = _magnitude2(z[source_node]) / r_source**2
@@ -761,6 +771,14 @@ def noise_integrals(
     ein2 = np.sum(power_law_segments(f, in_psd, axis=0), axis=0)
     source2 = 4.0 * BOLTZMANN * NOISE_REFERENCE_K * r_source * (band[1] - band[0])
     return np.sqrt(ein2), 10.0 * np.log10(1.0 + ein2 / source2)
+
+
+@functools.lru_cache(maxsize=64)
+def _noise_frequencies(f_low: float, f_high: float, points: int) -> np.ndarray:
+    """Log-spaced frequencies (Hz) over a band, shape (points, 1); made once per band (read-only)."""
+    f = np.geomspace(f_low, f_high, points)[:, None]
+    f.flags.writeable = False
+    return f
 
 
 def _magnitude2(h: np.ndarray | float) -> np.ndarray:

@@ -44,7 +44,9 @@ class _LowCorner:
         for i in range(0, rows.size, CHUNK_FULL):
             at = rows[i : i + CHUNK_FULL]
             p = {**{k: v[at] for k, v in self.parts.items()}, **{k: v[i : i + CHUNK_FULL] for k, v in caps.items()}}
-            chunk = Bias({k: v[at] for k, v in b.op.items()}, [{k: v[at] for k, v in ss.items()} for ss in b.small_signal])
+            chunk = Bias(
+                {k: v[at] for k, v in b.op.items()}, [{k: v[at] for k, v in ss.items()} for ss in b.small_signal]
+            )
             r_source = _source_resistance(chunk, c)
             with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
                 gain = t._midband(p, c, chunk, r_source)["gain"]
@@ -86,7 +88,9 @@ def size_capacitors(
     size = np.broadcast(*resistors.values()).shape
     resistors = {r: np.broadcast_to(np.asarray(v, dtype=float), size) for r, v in resistors.items()}
     caps = tuple(c for c in topology.capacitors if c not in resistors)
-    f_low = _LowCorner(topology, {**resistors, **{c: _LARGE_CAPACITANCE for c in caps}}, device, conditions)
+    f_low = _LowCorner(
+        topology, {**resistors, **{c: np.full(size, _LARGE_CAPACITANCE) for c in caps}}, device, conditions
+    )
 
     corner_constant = {c: np.full(size, np.nan) for c in caps}
     f_smallest = {c: np.full(size, np.inf) for c in caps}  # f_low with the smallest probe (Hz)
@@ -125,15 +129,16 @@ def size_capacitors(
     # the values of every common factor (factors, n) per capacitor; where a factor rounds every
     # capacitor to the same values as the factor before it, its f_low is that one's (not solved again)
     scaled = {c: _round_up(_SCALE_GRID[:, None] * corner_constant[c] / target, allowed) for c in caps}
-    new = np.zeros(scaled[caps[0]].shape, dtype=bool)
+    n = int(np.prod(size))
+    new = np.zeros((_SCALE_GRID.size, n), dtype=bool)
     new[0] = True
     for idx in scaled.values():
         new[1:] |= idx[1:] != idx[:-1]
     which = np.flatnonzero(new)  # flat (factor, candidate) of the variants solved
     f_scaled = np.empty(new.shape)
-    f_scaled.flat[which] = f_low(which % new.shape[1], {c: allowed[idx.flat[which]] for c, idx in scaled.items()})
-    for k in range(1, new.shape[0]):
-        f_scaled[k] = np.where(new[k], f_scaled[k], f_scaled[k - 1])
+    f_scaled.flat[which] = f_low(which % n, {c: allowed[idx.flat[which]] for c, idx in scaled.items()})
+    for i in range(1, _SCALE_GRID.size):
+        f_scaled[i] = np.where(new[i], f_scaled[i], f_scaled[i - 1])
     meets = f_scaled <= target  # (scale factors, n)
     found = meets.any(axis=0)
     first = np.where(found, np.argmax(meets, axis=0), 0)

@@ -8,7 +8,7 @@ import pytest
 
 from check_devices import check_npn
 from optimizer import eseries
-from optimizer.sizing import size_capacitors
+from optimizer.sizing import _LowCorner, size_capacitors
 from optimizer.synthesis import HandRequirements, rounded_designs
 from optimizer.tolerance import monte_carlo_yield, worst_case
 from optimizer.topologies import get_topology
@@ -55,6 +55,31 @@ def test_sizing_is_vectorised_over_candidates() -> None:
         one = size_capacitors(topology, {r: v[k : k + 1] for r, v in many.items()}, DEVICE, CONDITIONS, E6_CAPS)
         for cap in topology.capacitors:
             assert together[cap][k] == one[cap][0]
+
+
+@pytest.mark.parametrize("name", ["divider_ce", "emitter_follower", "bootstrap_follower"])
+def test_sizing_low_corner_matches_the_full_evaluation(name: str) -> None:
+    # The sizing solves each candidate's bias once and reuses it for every capacitor variant
+    # (and takes the low crossing alone): the f_low of evaluate(full=True) on the same parts.
+    topology = get_topology(name)
+    rng = np.random.default_rng(5)
+    hand = topology.hand_design(
+        HandRequirements(
+            supply=9.0,
+            gain=1.0 if "follower" in name else 5.0,
+            load_impedance=100e3,
+            source_impedance=600.0,
+            f_low=20.0,
+            collector_current=1e-3,
+        )
+    )
+    resistors = {r: hand[r] * rng.uniform(0.7, 1.4, 4) for r in topology.resistors}
+    rows = np.array([0, 1, 2, 3, 3, 1, 0, 2, 2])
+    caps = {c: rng.choice(E6_CAPS[(E6_CAPS > 1e-8) & (E6_CAPS < 1e-4)], rows.size) for c in topology.capacitors}
+    sized = _LowCorner(topology, {**resistors, **{c: 1.0 for c in caps}}, DEVICE, CONDITIONS)(rows, caps)
+    full = topology.evaluate({**{r: v[rows] for r, v in resistors.items()}, **caps}, DEVICE, CONDITIONS)
+    np.testing.assert_allclose(sized, full.metrics["f_low"], rtol=1e-12)
+    assert np.all((sized > 0.1) & (sized < 1e8))  # crossings found inside the sweep, not its ends
 
 
 def _parts_with_caps() -> dict[str, np.ndarray]:
