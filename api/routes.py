@@ -216,7 +216,7 @@ def catalog(name: str) -> Response:
     found = _catalog(name)
     summary = found.summary()
     summary["transistors"]["models"] = [
-        {k: v for k, v in row.items()} for row in found.transistors.to_dict(orient="records")
+        {k: v for k, v in row.items()} for row in found.transistors.frame().to_dict(orient="records")
     ]
     return jsonify(summary)
 

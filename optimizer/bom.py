@@ -369,7 +369,7 @@ def kit(candidate: dict, catalog: Catalog, units: int, spec: Spec | None = None)
     units = check_units(units)
     passives, transistor, n_q = _candidate_parts(candidate)
     allow_class2 = bool(spec is not None and spec.parts.allow_class2_coupling)
-    frames = {"resistor": catalog.resistors, "capacitor": catalog.signal_capacitors(allow_class2)}
+    frames = {"resistor": catalog.resistors.frame(), "capacitor": catalog.signal_capacitors(allow_class2).frame()}
     values = {role: value for role, _, value, _ in passives}
     names = designators(candidate["topology"], values)
     nodes = element_nodes(candidate["topology"])
@@ -389,7 +389,8 @@ def kit(candidate: dict, catalog: Catalog, units: int, spec: Spec | None = None)
             volts = volts or _node_volts(candidate)
             orientation = _orientation(roles, nodes, volts, names)
         lines.append(_line(kind, value, label, roles, names, len(roles), units, row, catalog, note, orientation))
-    rows = catalog.transistors[catalog.transistors["id"] == transistor["id"]]
+    transistors = catalog.transistors.frame()
+    rows = transistors[transistors["id"] == transistor["id"]]
     roles = [f"q{i + 1}" for i in range(n_q)]
     lines.append(
         _line(

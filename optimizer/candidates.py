@@ -147,7 +147,7 @@ def _assess_group(
             in_stock_only=spec.parts.in_stock_only,
             allow_class2=spec.parts.allow_class2_coupling,
         )
-        tolerances = catalog.parts_for("capacitor", allowed)["tolerance"].to_numpy(dtype=float)
+        tolerances = catalog.parts_for("capacitor", allowed)["tolerance"]
         held = {"c_decouple": arrays.get("c_decouple", np.full(n, allowed[-1]))} if decoupled else {}
         held.update({"c_in": arrays["c_in"]} if "c_in" in arrays and not np.any(arrays["c_in"]) else {})
         stage = {r: arrays[r] for r in topology.resistors + topology.supply_parts if r in arrays}

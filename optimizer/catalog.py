@@ -5,6 +5,10 @@ A catalog is a directory ``parts_catalogs/<name>/`` holding ``resistors.csv``,
 units are documented in ``parts_catalogs/README.md``. Values are SI without prefixes
 (ohm, F, V, W, A, s); a value cell may use engineering notation ("4k7", "100n").
 Every malformed cell of a file is reported at once, each with file, line and column.
+
+The files are read with the stdlib csv module into :class:`Table` (numpy columns), so a
+search does not import pandas; :meth:`Table.frame` gives a table as a pandas DataFrame for
+the tools that want one (the BOM, the REST service's catalog listing).
 """
 
 from __future__ import annotations
@@ -15,10 +19,9 @@ import functools
 import math
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Callable
+from typing import TYPE_CHECKING, Callable, Iterable
 
 import numpy as np
-import pandas as pd
 import yaml
 
 from optimizer import eseries
@@ -26,6 +29,9 @@ from optimizer.bundled import catalog_dir
 from optimizer.devices import JFET
 from optimizer.errors import InputError, Problem
 from optimizer.units import parse_quantity
+
+if TYPE_CHECKING:  # pandas is imported by Table.frame only
+    import pandas as pd
 
 CATALOG_DIR: Path = catalog_dir()  # the checkout's parts_catalogs/ or the installed package's
 
@@ -235,8 +241,86 @@ _META_KEYS = ("name", "description", "currency", "stock_tracked")
 _OPTIONAL_COLUMNS = frozenset({"KF", "AF"})  # may be left out of the header
 
 
-def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) -> tuple[pd.DataFrame, list[Problem]]:
-    """Read one CSV file; return its rows as a DataFrame and every problem found."""
+@dataclass(frozen=True)
+class Table:
+    """The rows of one catalog file, column by column, in file order: a numpy array per
+    column, float64 for a quantity (NaN where blank or absent) and object for text, flags
+    and stock counts (None where blank: stock not tracked). Shared through the catalog
+    cache: do not modify the arrays."""
+
+    columns: dict[str, np.ndarray]
+
+    @classmethod
+    def from_records(cls, records: list[dict], names: Iterable[str]) -> "Table":
+        """A table of ``records`` (dicts of parsed cells; a key left out is a blank cell) with
+        the columns ``names`` in that order; a column is float64 when it has cells given and
+        every one is a float (an all-blank column, such as untracked stock, is object)."""
+        columns = {}
+        for name in names:
+            cells = [r.get(name) for r in records]
+            given = [c for c in cells if c is not None]
+            if given and all(isinstance(c, float) for c in given):
+                columns[name] = np.array([math.nan if c is None else c for c in cells], dtype=float)
+            else:
+                column = np.empty(len(cells), dtype=object)
+                column[:] = cells
+                columns[name] = column
+        return cls(columns)
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        return self.columns[name]
+
+    def __len__(self) -> int:
+        return next(iter(self.columns.values())).size if self.columns else 0
+
+    def where(self, mask: np.ndarray) -> "Table":
+        """The rows where the boolean ``mask`` holds, in order."""
+        return Table({name: column[mask] for name, column in self.columns.items()})
+
+    def take(self, index: np.ndarray) -> "Table":
+        """The rows at ``index`` (a negative index: a row with every cell blank)."""
+        index = np.asarray(index, dtype=int)
+        missing = index < 0
+        out = {}
+        for name, column in self.columns.items():
+            picked = column[np.where(missing, 0, index)] if column.size else np.empty(index.size, column.dtype)
+            picked[missing] = math.nan if column.dtype == float else None
+            out[name] = picked
+        return Table(out)
+
+    def row(self, i: int) -> dict:
+        """Row ``i`` as plain Python values, a blank cell as None."""
+        out: dict[str, object] = {}
+        for name, column in self.columns.items():
+            value = column[i]
+            if value is None or (isinstance(value, float) and math.isnan(value)):
+                out[name] = None
+            else:
+                out[name] = value.item() if isinstance(value, np.generic) else value
+        return out
+
+    def rows(self) -> list[dict]:
+        """Every row as :meth:`row` gives it."""
+        return [self.row(i) for i in range(len(self))]
+
+    def joined(self, other: "Table") -> "Table":
+        """This table's rows, then ``other``'s; the columns of both (this one's first), a
+        column one of them lacks blank in its rows."""
+        names = list(self.columns) + [n for n in other.columns if n not in self.columns]
+        return Table.from_records(self.rows() + other.rows(), names)
+
+    def frame(self) -> "pd.DataFrame":
+        """The table as a pandas DataFrame (imports pandas): stock_qty as nullable Int64."""
+        import pandas as pd
+
+        frame = pd.DataFrame.from_records(self.rows(), columns=list(self.columns))
+        if "stock_qty" in frame:
+            frame["stock_qty"] = frame["stock_qty"].astype("Int64")
+        return frame
+
+
+def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) -> tuple[Table, list[Problem]]:
+    """Read one CSV file; return its rows as a :class:`Table` and every problem found."""
     problems: list[Problem] = []
     with path.open(newline="", encoding="utf-8") as handle:
         reader = csv.reader(handle)
@@ -304,9 +388,7 @@ def _read_table(path: Path, label: str, columns: dict[str, Callable], key: str) 
             if "package" in record and "power_rating" in columns:
                 problems += _package_power(record, f"{label} line {line}, column power_rating")
             records.append(record)
-    frame = pd.DataFrame.from_records(records, columns=list(columns))
-    frame["stock_qty"] = frame["stock_qty"].astype("Int64")
-    return frame, problems
+    return Table.from_records(records, columns), problems
 
 
 def _package_power(record: dict, where: str) -> list[Problem]:
@@ -358,22 +440,22 @@ def _in_series(values: np.ndarray, series: str) -> np.ndarray:
 
 @dataclass(frozen=True)
 class Catalog:
-    """A loaded parts catalog. Shared through a cache: do not modify the frames."""
+    """A loaded parts catalog. Shared through a cache: do not modify the tables."""
 
     name: str
     description: str
-    resistors: pd.DataFrame
-    capacitors: pd.DataFrame
-    transistors: pd.DataFrame
+    resistors: Table
+    capacitors: Table
+    transistors: Table
     currency: str = "EUR"
     stock_tracked: bool = False
     _picks: dict = field(default_factory=dict, compare=False, repr=False)
 
     def _values(
-        self, frame: pd.DataFrame, series: str | None, low: float | None, high: float | None, in_stock_only: bool
+        self, table: Table, series: str | None, low: float | None, high: float | None, in_stock_only: bool
     ) -> np.ndarray:
-        rows = frame[_in_stock(frame)] if in_stock_only else frame
-        values = np.unique(rows["value"].to_numpy(dtype=float))
+        rows = table.where(_in_stock(table)) if in_stock_only else table
+        values = np.unique(rows["value"])
         if low is not None:
             values = values[values >= low * (1 - VALUE_RTOL)]
         if high is not None:
@@ -407,60 +489,61 @@ class Catalog:
         capacitor of the stages is in the signal path)."""
         return self._values(self.signal_capacitors(allow_class2), series, low, high, in_stock_only)
 
-    def signal_capacitors(self, allow_class2: bool = False) -> pd.DataFrame:
+    def signal_capacitors(self, allow_class2: bool = False) -> Table:
         """The capacitor rows that may sit in the signal path: all of them with
         ``allow_class2``, else every row but the class-2 ceramics."""
         if allow_class2:
             return self.capacitors
-        return self.capacitors[~self.capacitors["dielectric"].map(is_class2).astype(bool)]
+        return self.capacitors.where(np.array([not is_class2(d) for d in self.capacitors["dielectric"]], dtype=bool))
 
     def transistor(self, id: str) -> dict:
-        """The transistor row ``id`` as a dict (SI units)."""
-        match = self.transistors[self.transistors["id"] == id]
-        if match.empty:
+        """The transistor row ``id`` as a dict (SI units; a blank cell None)."""
+        match = np.flatnonzero(self.transistors["id"] == id)
+        if match.size == 0:
             raise InputError.single(
                 "transistor",
                 id,
                 "one of " + ", ".join(self.transistors["id"]),
                 title=f"unknown transistor in catalog {self.name}",
             )
-        return _row_dict(match.iloc[0])
+        return self.transistors.row(int(match[0]))
 
-    def _cheapest_in_stock(self, kind: str, allow_class2: bool) -> pd.DataFrame:
+    def _cheapest_in_stock(self, kind: str, allow_class2: bool) -> Table:
         """The row part_for picks for each value in stock (sorted by value); cached."""
         key = (kind, allow_class2 or kind == "resistor")
         if key not in self._picks:
             self._picks[key] = self._cheapest(kind, allow_class2)
         return self._picks[key]
 
-    def _cheapest(self, kind: str, allow_class2: bool) -> pd.DataFrame:
-        frame = self.resistors if kind == "resistor" else self.signal_capacitors(allow_class2)
-        stocked = frame[_in_stock(frame)]
-        return (
-            stocked.assign(_stock=stocked["stock_qty"].fillna(np.iinfo(np.int64).max))
-            .sort_values(["value", "unit_price", "_stock", "part_id"], ascending=[True, True, False, True])
-            .drop_duplicates("value")
-            .drop(columns="_stock")
-            .reset_index(drop=True)
+    def _cheapest(self, kind: str, allow_class2: bool) -> Table:
+        table = self.resistors if kind == "resistor" else self.signal_capacitors(allow_class2)
+        stocked = np.flatnonzero(_in_stock(table))
+        value, price, stock, part_id = (table[c] for c in ("value", "unit_price", "stock_qty", "part_id"))
+        # by value, then price, then the larger stock (blank = unlimited: largest), then part id
+        order = sorted(
+            stocked,
+            key=lambda i: (value[i], price[i], -(math.inf if stock[i] is None else stock[i]), part_id[i]),
         )
+        first = [i for n, i in enumerate(order) if n == 0 or value[i] != value[order[n - 1]]]
+        return table.take(np.array(first, dtype=int))
 
     def part_for(self, role_kind: str, value: float, *, allow_class2: bool = False) -> dict | None:
         """The cheapest in-stock row of ``role_kind`` ("resistor" or "capacitor") with
         ``value`` (ohm or F); ties go to the larger stock. No class-2 ceramic unless
         ``allow_class2``. None if none is in stock."""
-        rows = self.parts_for(role_kind, np.array([value]), allow_class2=allow_class2)
-        return None if rows.iloc[0].isna()["part_id"] else _row_dict(rows.iloc[0])
+        row = self.parts_for(role_kind, np.array([value]), allow_class2=allow_class2).row(0)
+        return None if row["part_id"] is None else row
 
-    def parts_for(self, role_kind: str, values: np.ndarray, *, allow_class2: bool = False) -> pd.DataFrame:
-        """The row :meth:`part_for` picks for each of ``values``, one frame row per value
-        (all columns missing where no row with that value is in stock)."""
+    def parts_for(self, role_kind: str, values: np.ndarray, *, allow_class2: bool = False) -> Table:
+        """The row :meth:`part_for` picks for each of ``values``, one table row per value
+        (every cell blank where no row with that value is in stock)."""
         if role_kind not in ("resistor", "capacitor"):
             raise InputError.single("role_kind", role_kind, "resistor or capacitor")
         best = self._cheapest_in_stock(role_kind, bool(allow_class2))
         wanted = np.asarray(values, dtype=float)
-        known = best["value"].to_numpy(dtype=float)
+        known = best["value"]
         if known.size == 0:
-            return best.reindex(range(wanted.size))
+            return best.take(np.full(wanted.size, -1))
         i = (
             np.clip(np.searchsorted(known, wanted), 1, max(known.size - 1, 1))
             if known.size > 1
@@ -469,16 +552,17 @@ class Catalog:
         below = np.maximum(i - 1, 0)
         nearer = np.where(np.abs(known[below] - wanted) <= np.abs(known[i] - wanted), below, i)
         match = np.isclose(known[nearer], wanted, rtol=VALUE_RTOL, atol=0)
-        return best.reindex(np.where(match, nearer, -1)).reset_index(drop=True)
+        return best.take(np.where(match, nearer, -1))
 
     def summary(self) -> dict:
         """Counts, value ranges (SI), series present, transistor ids and stock totals."""
 
-        def stock_total(frame: pd.DataFrame) -> int | None:
-            return None if frame["stock_qty"].isna().all() else int(frame["stock_qty"].sum())
+        def stock_total(table: Table) -> int | None:
+            counts = [s for s in table["stock_qty"] if s is not None]
+            return int(sum(counts)) if counts else None
 
-        def value_range(frame: pd.DataFrame) -> list[float] | None:
-            return None if frame.empty else [float(frame["value"].min()), float(frame["value"].max())]
+        def value_range(table: Table) -> list[float] | None:
+            return [float(table["value"].min()), float(table["value"].max())] if len(table) else None
 
         return {
             "name": self.name,
@@ -487,16 +571,16 @@ class Catalog:
             "stock_tracked": self.stock_tracked,
             "resistors": {
                 "count": len(self.resistors),
-                "unique_values": int(self.resistors["value"].nunique()),
+                "unique_values": int(np.unique(self.resistors["value"]).size),
                 "range": value_range(self.resistors),
-                "series": sorted(self.resistors["series"].unique(), key=lambda s: int(s[1:])),
+                "series": sorted(set(self.resistors["series"]), key=lambda s: int(s[1:])),
                 "stock_total": stock_total(self.resistors),
             },
             "capacitors": {
                 "count": len(self.capacitors),
-                "unique_values": int(self.capacitors["value"].nunique()),
+                "unique_values": int(np.unique(self.capacitors["value"]).size),
                 "range": value_range(self.capacitors),
-                "dielectrics": sorted(self.capacitors["dielectric"].unique()),
+                "dielectrics": sorted(set(self.capacitors["dielectric"])),
                 "stock_total": stock_total(self.capacitors),
             },
             "transistors": {
@@ -507,23 +591,9 @@ class Catalog:
         }
 
 
-def _in_stock(frame: pd.DataFrame) -> np.ndarray:
+def _in_stock(table: Table) -> np.ndarray:
     """Rows with stock above zero or stock not tracked (blank = unlimited)."""
-    stock = frame["stock_qty"]
-    return (stock.isna() | (stock.fillna(0) > 0)).to_numpy(dtype=bool)
-
-
-def _row_dict(row: pd.Series) -> dict:
-    """A DataFrame row as plain Python values (missing stock -> None)."""
-    out: dict[str, object] = {}
-    for key, value in row.items():
-        if pd.isna(value):
-            out[key] = None
-        elif isinstance(value, np.generic):
-            out[key] = value.item()
-        else:
-            out[key] = value
-    return out
+    return np.array([s is None or s > 0 for s in table["stock_qty"]], dtype=bool)
 
 
 def _read_meta(path: Path, label: str) -> tuple[dict, list[Problem]]:
@@ -569,7 +639,7 @@ def load_catalog_dir(path: Path) -> Catalog:
     if (path / "jfets.csv").is_file():
         jfets, found = _read_table(path / "jfets.csv", f"{prefix}/jfets.csv", _JFET_COLUMNS, "id")
         problems += found
-        for row in [] if found else jfets.to_dict(orient="records"):
+        for row in [] if found else jfets.rows():
             try:
                 JFET.from_row(row)  # the typical point inside the ranges, VTO negative
             except InputError as err:
@@ -577,7 +647,7 @@ def load_catalog_dir(path: Path) -> Catalog:
         if transistors is not None:
             clash = set(jfets["id"]) & set(transistors["id"])
             problems += [Problem(f"{prefix}/jfets.csv id", i, "an id not used in transistors.csv") for i in clash]
-            transistors = pd.concat([transistors, jfets], ignore_index=True)
+            transistors = transistors.joined(jfets)
     if problems:
         raise InputError(problems, title=f"invalid parts catalog {path.name}")
     return Catalog(

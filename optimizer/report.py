@@ -13,8 +13,8 @@ from __future__ import annotations
 
 import html
 import math
+from typing import TYPE_CHECKING
 
-from optimizer.bom import NO_BASIS, Kit, kit
 from optimizer.candidates import assess, design_from_record
 from optimizer.catalog import Catalog
 from optimizer.metrics import LIMIT_METRICS, METRICS
@@ -22,6 +22,9 @@ from optimizer.netlist import dc_node_voltages, designators, element_nodes
 from optimizer.spec import Spec, spec_digest
 from optimizer.tolerance import Tolerance, worst_case
 from optimizer.units import format_value
+
+if TYPE_CHECKING:  # the BOM (pandas) is imported by the design sheet only: the search's tables run without it
+    from optimizer.bom import Kit
 
 #: metric -> how it is written (optimizer/metrics.py ``Metric.shown``)
 METRIC_UNITS: dict[str, str] = {m.key: m.shown for m in METRICS}
@@ -157,6 +160,7 @@ def _margins(candidate: dict, spec: Spec, currency: str) -> list[list[str]]:
 def design_sheet(candidate: dict, spec: Spec, catalog: Catalog, *, units: int = 1) -> str:
     """The self-contained HTML design sheet of ``candidate`` (inline SVG plots)."""
     from optimizer import plots  # matplotlib is the optional [plots] extra: imported only here
+    from optimizer.bom import NO_BASIS, kit
 
     record = _full(candidate, spec, catalog)
     bill = kit(record, catalog, units, spec)

@@ -19,7 +19,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import pandas as pd
 
 from optimizer.catalog import Catalog
 from optimizer.errors import InputError, Problem
@@ -47,12 +46,12 @@ class Verdict:
 def device_traits(catalog: Catalog, device: str) -> tuple[str, str]:
     """(polarity, kind) of a catalog device: polarity "npn", "pnp" (or a JFET's channel), kind
     "bjt" unless the catalog row says otherwise, "jfet" for an n-channel JFET (polarity njf)."""
-    row = catalog.transistors.set_index("id").loc[device]
+    row = catalog.transistor(device)
     polarity = str(row["polarity"]).lower()
     if polarity == "njf":  # the JFETs of jfets.csv join the table with their channel as polarity
         return polarity, "jfet"
-    kind = row.get("kind", "bjt")
-    return polarity, "bjt" if pd.isna(kind) or not str(kind).strip() else str(kind).lower()
+    kind = row.get("kind")
+    return polarity, "bjt" if kind is None or not str(kind).strip() else str(kind).lower()
 
 
 def builds_with(topology: Topology, traits: tuple[str, str]) -> bool:

@@ -79,7 +79,7 @@ def test_every_example_is_feasible_or_marked_infeasible_in_its_comment(label: st
 @pytest.mark.parametrize("label", [label for label, _ in EXAMPLES])
 def test_no_class2_ceramic_in_a_signal_role_by_default(label: str, searched: dict) -> None:
     result = searched[label]
-    rows = load_catalog(result.spec.parts.catalog).capacitors.set_index("part_id")
+    rows = load_catalog(result.spec.parts.catalog).capacitors.frame().set_index("part_id")
     assert not result.spec.parts.allow_class2_coupling
     for candidate in result.candidates + result.front:
         for role, part in candidate["parts"].items():

@@ -104,14 +104,17 @@ def test_help_imports_none_of_the_heavy_libraries() -> None:
     """`stagefit --help` builds the whole parser without Optuna, SciPy, pandas, pydantic,
     matplotlib or Flask (start-up time: benchmarks/bench_startup.py). Checked in a fresh
     interpreter, since this one has imported them already."""
-    import subprocess
-    import sys
-
     heavy = ("optuna", "scipy", "pandas", "pydantic", "matplotlib", "flask", "sqlalchemy")
     code = (
         "import sys\nfrom optimizer.cli import build_parser\nbuild_parser().format_help()\n"
         f"print(','.join(m for m in {heavy!r} if m in sys.modules))"
     )
+    imported = _fresh_python(code)
+    assert imported == "", f"imported for --help: {imported}"
+
+
+def _fresh_python(code: str) -> str:
+    """The last line ``code`` prints, run in a fresh interpreter from the checkout."""
     done = subprocess.run(
         [sys.executable, "-c", code],
         capture_output=True,
@@ -119,7 +122,23 @@ def test_help_imports_none_of_the_heavy_libraries() -> None:
         check=True,
         cwd=Path(__file__).resolve().parent.parent,
     )
-    assert done.stdout.strip() == "", f"imported for --help: {done.stdout.strip()}"
+    return (done.stdout.strip().splitlines() or [""])[-1]
+
+
+def test_search_imports_no_pandas_plotting_or_server(tmp_path: Path) -> None:
+    """A whole `stagefit search` (spec and catalog read, trials, ranked table with the why and
+    verdict columns) imports neither pandas nor matplotlib nor Flask: the catalog is read with
+    the stdlib csv module, the BOM and plots load only for the commands that make them.
+    Checked in a fresh interpreter after the command has run."""
+    code = (
+        "import sys\nfrom optimizer.cli import main\n"
+        f"code = main(['search', 'specs/contact_pickup_buffer.yaml', '--trials', '64', '--quiet', "
+        f"'--storage', {str(tmp_path / 's.journal')!r}, '--columns', 'rank,topology,parts,gain,why,verdict'])\n"
+        "print(code, ','.join(m for m in ('pandas', 'matplotlib', 'flask') if m in sys.modules))"
+    )
+    status, _, imported = _fresh_python(code).partition(" ")
+    assert status in ("0", "3"), status  # 3: answered, nothing meets every limit
+    assert imported == "", f"imported by stagefit search: {imported}"
 
 
 def test_package_names_are_the_api_functions_after_lazy_import() -> None:

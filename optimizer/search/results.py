@@ -4,9 +4,9 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import optuna
-import pandas as pd
 from optuna.storages import BaseStorage
 
 from optimizer.errors import InputError
@@ -33,6 +33,9 @@ from optimizer.search.study import (
 )
 from optimizer.spec import Spec
 from optimizer.storage import TrialTally, journal_summary
+
+if TYPE_CHECKING:  # pandas is imported by candidates_frame only: a search runs without it
+    import pandas as pd
 
 STATUSES = ("queued", "running", "done", "failed", "cancelled")
 
@@ -64,6 +67,8 @@ def candidates_frame(candidates: list[dict], *, labels: bool = False) -> pd.Data
     """Ranked candidate records as a flat table, one row each: rank, feasible, score,
     binding, topology, device, then each part (SI value, or its label such as "68k" with
     ``labels``) and each metric (SI). The CLI's and the REST service's CSV."""
+    import pandas as pd
+
     rows = []
     for c in candidates:
         row = {

@@ -38,10 +38,10 @@ class PartTable:
         rating_key = "power_rating" if kind == "resistor" else "voltage_rating"
         return cls(
             values=np.asarray(values, dtype=float),
-            part_id=rows["part_id"].to_numpy(dtype=object),
-            tolerance=rows["tolerance"].to_numpy(dtype=float),
-            rating=rows[rating_key].to_numpy(dtype=float),
-            unit_price=rows["unit_price"].to_numpy(dtype=float),
+            part_id=rows["part_id"],
+            tolerance=rows["tolerance"],
+            rating=rows[rating_key],
+            unit_price=rows["unit_price"],
         )
 
     def index_of(self, values: np.ndarray) -> np.ndarray:
