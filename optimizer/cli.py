@@ -941,6 +941,22 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+class _OptunaWithoutRedis:
+    """An import finder that refuses the Redis client to Optuna's own Redis journal backend
+    (``optuna.storages.journal._redis``), and to nothing else. Optuna imports that backend,
+    and with it the Redis client and its asyncio stack (about 0.1 s CPU), whenever redis is
+    installed; stagefit never uses it (a redis:// storage is optimizer/redis_journal.py, which
+    imports redis itself). Optuna defers the refused import's error to a use of its backend."""
+
+    BACKEND = "optuna.storages.journal._redis"
+
+    def find_spec(self, name: str, path: object = None, target: object = None) -> None:
+        backend = sys.modules.get(self.BACKEND)
+        if name.split(".")[0] == "redis" and getattr(getattr(backend, "__spec__", None), "_initializing", False):
+            raise ModuleNotFoundError(f"No module named {name!r} (not imported for Optuna: see stagefit.cli)", name=name)
+        return None
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the process exit code."""
     parser = build_parser()
@@ -949,6 +965,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     except SystemExit as done:  # --help (0) or a bad argument (2, one line printed)
         return done.code if isinstance(done.code, int) else EXIT_BAD_INPUT
     handler: Callable[[argparse.Namespace], int] = args.handler
+    if "optuna" not in sys.modules and not any(isinstance(f, _OptunaWithoutRedis) for f in sys.meta_path):
+        sys.meta_path.insert(0, _OptunaWithoutRedis())
     try:
         return handler(args)
     except InputError as error:

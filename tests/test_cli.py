@@ -128,13 +128,15 @@ def _fresh_python(code: str) -> str:
 def test_search_imports_no_pandas_plotting_or_server(tmp_path: Path) -> None:
     """A whole `stagefit search` (spec and catalog read, trials, ranked table with the why and
     verdict columns) imports neither pandas nor matplotlib nor Flask: the catalog is read with
-    the stdlib csv module, the BOM and plots load only for the commands that make them.
+    the stdlib csv module, the BOM and plots load only for the commands that make them; nor the
+    Redis client, which Optuna would import for its own Redis backend (cli._OptunaWithoutRedis;
+    the redis:// storage itself, which imports it, is run by test_redis_storage's CLI workers).
     Checked in a fresh interpreter after the command has run."""
     code = (
         "import sys\nfrom optimizer.cli import main\n"
         f"code = main(['search', 'specs/contact_pickup_buffer.yaml', '--trials', '64', '--quiet', "
         f"'--storage', {str(tmp_path / 's.journal')!r}, '--columns', 'rank,topology,parts,gain,why,verdict'])\n"
-        "print(code, ','.join(m for m in ('pandas', 'matplotlib', 'flask') if m in sys.modules))"
+        "print(code, ','.join(m for m in ('pandas', 'matplotlib', 'flask', 'redis') if m in sys.modules))"
     )
     status, _, imported = _fresh_python(code).partition(" ")
     assert status in ("0", "3"), status  # 3: answered, nothing meets every limit
