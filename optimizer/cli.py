@@ -957,6 +957,14 @@ class _OptunaWithoutRedis:
         return None
 
 
+def defer_unused_imports() -> None:
+    """What the command does before it imports anything heavy: Optuna, when it is imported
+    later, comes without the Redis client (:class:`_OptunaWithoutRedis`). Nothing once Optuna
+    is imported."""
+    if "optuna" not in sys.modules and not any(isinstance(f, _OptunaWithoutRedis) for f in sys.meta_path):
+        sys.meta_path.insert(0, _OptunaWithoutRedis())
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the process exit code."""
     parser = build_parser()
@@ -965,8 +973,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     except SystemExit as done:  # --help (0) or a bad argument (2, one line printed)
         return done.code if isinstance(done.code, int) else EXIT_BAD_INPUT
     handler: Callable[[argparse.Namespace], int] = args.handler
-    if "optuna" not in sys.modules and not any(isinstance(f, _OptunaWithoutRedis) for f in sys.meta_path):
-        sys.meta_path.insert(0, _OptunaWithoutRedis())
+    defer_unused_imports()
     try:
         return handler(args)
     except InputError as error:
