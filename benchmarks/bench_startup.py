@@ -102,7 +102,18 @@ def first_line(cmd: list[str]) -> tuple[float, float]:
 
 
 def search_command(spec: str, storage: Path, seed: int) -> list[str]:
-    return [*STAGEFIT, "search", spec, "--storage", str(storage), "--trials", str(TRIALS), "--seed", str(seed), "--fresh"]
+    return [
+        *STAGEFIT,
+        "search",
+        spec,
+        "--storage",
+        str(storage),
+        "--trials",
+        str(TRIALS),
+        "--seed",
+        str(seed),
+        "--fresh",
+    ]
 
 
 def spread(xs: list[float]) -> str:
@@ -216,7 +227,8 @@ def main() -> int:
     other = SPECS[mode][0]
     crowded_spec = next(s for s in startup_specs if s != other)
     crowded = [
-        first_line(search_command(crowded_spec, tmp / f"{Path(other).stem}-s0.journal", 100 + k)) for k in range(repeats)
+        first_line(search_command(crowded_spec, tmp / f"{Path(other).stem}-s0.journal", 100 + k))
+        for k in range(repeats)
     ]
     print(
         "start-up alone: "

@@ -147,7 +147,7 @@ def _assess_group(
             in_stock_only=spec.parts.in_stock_only,
             allow_class2=spec.parts.allow_class2_coupling,
         )
-        tolerances = catalog.parts_for("capacitor", allowed)["tolerance"]
+        cap_tolerances = catalog.parts_for("capacitor", allowed)["tolerance"]
         held = {"c_decouple": arrays.get("c_decouple", np.full(n, allowed[-1]))} if decoupled else {}
         held.update({"c_in": arrays["c_in"]} if "c_in" in arrays and not np.any(arrays["c_in"]) else {})
         stage = {r: arrays[r] for r in topology.resistors + topology.supply_parts if r in arrays}
@@ -157,12 +157,12 @@ def _assess_group(
             device,
             conditions,
             allowed,
-            f_low_target=scoring.sizing_target(spec, tolerances),
+            f_low_target=scoring.sizing_target(spec, cap_tolerances),
         )
         arrays.update({c: sized[c] for c in missing_caps if c in sized})
         if "c_decouple" in missing_caps:
             arrays["c_decouple"] = size_decoupling(
-                topology, arrays, device, conditions, allowed, scoring.decoupling_target(spec, tolerances)
+                topology, arrays, device, conditions, allowed, scoring.decoupling_target(spec, cap_tolerances)
             )
 
     records = [{role: _part_record(catalog, spec, role, float(v[j])) for role, v in arrays.items()} for j in range(n)]
@@ -178,7 +178,7 @@ def _assess_group(
     )
     result = topology.evaluate(arrays, device, conditions, full=True, thd_solve=True)
     nominal = scoring.limit_violations(spec, result.metrics, result.ratings, limits, result.operating_point["active"])
-    tolerances = {role: column(role, "tolerance") for role in arrays}
+    tolerances: dict[str, float | np.ndarray] = {role: column(role, "tolerance") for role in arrays}
     judged = judge(
         spec, topology, arrays, device, conditions, tolerances, limits, nominal, full=True, builds=samples, seed=seed
     )

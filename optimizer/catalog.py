@@ -635,7 +635,7 @@ def load_catalog_dir(path: Path) -> Catalog:
     for name, (key, columns) in ((n, spec) for n, spec in files.items() if spec):
         tables[name], found = _read_table(path / name, f"{prefix}/{name}", columns, key)
         problems += found
-    transistors = tables.get("transistors.csv")
+    transistors = tables["transistors.csv"]
     if (path / "jfets.csv").is_file():
         jfets, found = _read_table(path / "jfets.csv", f"{prefix}/jfets.csv", _JFET_COLUMNS, "id")
         problems += found
@@ -644,10 +644,9 @@ def load_catalog_dir(path: Path) -> Catalog:
                 JFET.from_row(row)  # the typical point inside the ranges, VTO negative
             except InputError as err:
                 problems += [replace(p, where=f"{prefix}/jfets.csv {p.where}") for p in err.problems]
-        if transistors is not None:
-            clash = set(jfets["id"]) & set(transistors["id"])
-            problems += [Problem(f"{prefix}/jfets.csv id", i, "an id not used in transistors.csv") for i in clash]
-            transistors = transistors.joined(jfets)
+        clash = set(jfets["id"]) & set(transistors["id"])
+        problems += [Problem(f"{prefix}/jfets.csv id", i, "an id not used in transistors.csv") for i in clash]
+        transistors = transistors.joined(jfets)
     if problems:
         raise InputError(problems, title=f"invalid parts catalog {path.name}")
     return Catalog(

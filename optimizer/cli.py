@@ -953,7 +953,7 @@ class _OptunaWithoutRedis:
     def find_spec(self, name: str, path: object = None, target: object = None) -> None:
         backend = sys.modules.get(self.BACKEND)
         if name.split(".")[0] == "redis" and getattr(getattr(backend, "__spec__", None), "_initializing", False):
-            raise ModuleNotFoundError(f"No module named {name!r} (not imported for Optuna: see stagefit.cli)", name=name)
+            raise ModuleNotFoundError(f"{name} is not imported for Optuna's own Redis backend", name=name)
         return None
 
 

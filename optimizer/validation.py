@@ -19,7 +19,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-
 from optimizer.catalog import Catalog
 from optimizer.errors import InputError, Problem
 from optimizer.spec import Spec, check_against_catalog

@@ -152,7 +152,8 @@ def test_every_shipped_catalog_matches_pandas_read_csv(name: str) -> None:
                     want = float(text[:-1]) / 100 if text.endswith("%") else float(text)
                     assert got == pytest.approx(want, rel=1e-12), (file, column)
                 elif table[column].dtype == float:
-                    assert got == pytest.approx(parse_quantity(text, None, allow_negative=True), rel=1e-12), (file, column, text)
+                    want = parse_quantity(text, None, allow_negative=True)
+                    assert got == pytest.approx(want, rel=1e-12), (file, column, text)
                 else:
                     assert got.lower() == text.lower(), (file, column)
 
