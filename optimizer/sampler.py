@@ -38,13 +38,15 @@ from __future__ import annotations
 
 import itertools
 import random
+from bisect import bisect_right
+from dataclasses import dataclass
 from typing import Any, Callable
 
 import numpy as np
 from optuna.distributions import BaseDistribution, CategoricalDistribution, IntDistribution
 from optuna.samplers import BaseSampler, RandomSampler
 from optuna.study import Study
-from optuna.trial import FrozenTrial, TrialState
+from optuna.trial import FrozenTrial, TrialState, create_trial
 
 from optimizer.scoring import pareto_mask
 from optimizer.storage import study_id, study_storage, trial_id, trials_from
@@ -54,6 +56,9 @@ PARENT_FROM_FRONT = 0.5
 P_RANDOM, P_SWITCH, P_CROSSOVER = 0.05, 0.08, 0.15
 MOVE_COUNTS, MOVE_COUNT_P = (1, 2, 3), (0.5, 0.3, 0.2)
 STEPS, STEP_P = (1, 2, 3, 4, 5, 6), (0.55, 0.25, 0.08, 0.05, 0.04, 0.03)
+# cumulative weights, summed as random.choices sums them on every draw: the same draws, summed once
+_MOVE_COUNT_CUM, _STEP_CUM = list(itertools.accumulate(MOVE_COUNT_P)), list(itertools.accumulate(STEP_P))
+SIGNS = (-1, 1)
 RETRIES = 12
 REFRESH_EVERY = 8  # trials between looks at the finished trials (a batch finishes together anyway)
 P_SCALE = 0.1  # share of moves that step every index together (gain and bias ratios kept, current scaled)
@@ -95,6 +100,9 @@ class NeighbourSampler(BaseSampler):
         self._low = 0  # every trial numbered below is finished and folded in (or not complete)
         self._counted: set[int] = set()  # completed trials numbered _low and up, folded in already
         self._swept: set[tuple] = set()
+        self._shapes: dict[tuple[str, ...], _Shape] = {}
+        self._groups: dict[int, tuple[str, ...]] = {}  # a finished trial's group (parameter names), by trial id
+        self._with: dict[tuple[str, Any], FrozenTrial | None] = {}  # _best_with, until the next refresh
 
     # ---- Optuna's interface --------------------------------------------------------------
     def infer_relative_search_space(self, study: Study, trial: FrozenTrial) -> dict[str, BaseDistribution]:
@@ -109,11 +117,35 @@ class NeighbourSampler(BaseSampler):
         if "fixed_params" in trial.system_attrs:
             self._seen.add(self._key(trial.system_attrs["fixed_params"]))
             return
-        if trial.number >= self._next_refresh:
-            self._refresh(study)
-            self._next_refresh = trial.number + REFRESH_EVERY
-        if self._elite:
-            self._plans[trial_id(trial)] = self._propose()
+        if trial.params:  # made with every parameter given (next_trial): nothing left to plan
+            return
+        plan = self._plan(study, trial.number)
+        if plan:
+            self._plans[trial_id(trial)] = plan
+
+    def next_trial(self, study: Study, number: int) -> FrozenTrial:
+        """The trial to be numbered ``number``, not made yet (state RUNNING, every parameter
+        and its distribution given): the plan :meth:`before_trial` would make for it, the
+        rest drawn as :meth:`sample_independent` draws them, in the order the search space
+        asks for them (a group's parameters in order, the one that picks the group first). The
+        search makes it in one storage write (a journal's one record, not one per parameter);
+        :meth:`before_trial` then leaves it be. The same parameters as the trial would get
+        asked without them, for the same sampler state and number."""
+        plan = self._plan(study, number)
+        made = create_trial(state=TrialState.RUNNING)
+        params, distributions = made.params, made.distributions
+        while True:
+            group = self._group_params(params)
+            name = next((n for n in group if n not in params), None)
+            if name is None:
+                return made
+            d = distributions[name] = group[name]
+            if d.single():  # as Optuna's trial does: its one value, the sampler not asked
+                params[name] = d.low if isinstance(d, IntDistribution) else d.choices[0]
+            elif name in plan and _fits(d, plan[name]):
+                params[name] = plan[name]
+            else:
+                params[name] = self._random.sample_independent(study, made, name, d)
 
     def sample_independent(
         self, study: Study, trial: FrozenTrial, param_name: str, param_distribution: BaseDistribution
@@ -126,6 +158,13 @@ class NeighbourSampler(BaseSampler):
     def after_trial(self, study: Study, trial: FrozenTrial, state: TrialState, values: list[float] | None) -> None:
         self._plans.pop(trial_id(trial), None)
         self._seen.add(self._key(trial.params))
+
+    def _plan(self, study: Study, number: int) -> dict[str, Any]:
+        """The parameters proposed for trial ``number`` ({}: all drawn at random)."""
+        if number >= self._next_refresh:
+            self._refresh(study)
+            self._next_refresh = number + REFRESH_EVERY
+        return self._propose() if self._elite else {}
 
     # ---- the elite and the front ---------------------------------------------------------
     def _finished_since(self, study: Study) -> list[FrozenTrial]:
@@ -150,6 +189,7 @@ class NeighbourSampler(BaseSampler):
             return
         for t in new:
             self._seen.add(self._key(t.params))
+        self._with.clear()
         self._elite = sorted(self._elite + new, key=self._rank_key)[:ELITE_SIZE]
         joined = [t for t in new if self._rank_key(t)[0] == 0]  # feasible designs new this refresh
         centres = self._elite[:1]
@@ -211,15 +251,17 @@ class NeighbourSampler(BaseSampler):
     def _propose(self) -> dict[str, Any]:
         while self._queue and self._py.random() < P_QUEUED:
             plan = self._queue.pop(0)
-            if self._key(plan) not in self._seen:
-                self._seen.add(self._key(plan))
+            key = self._key(plan)
+            if key not in self._seen:
+                self._seen.add(key)
                 return plan
         if self._py.random() < P_RANDOM:
             return {}
         for attempt in range(RETRIES):  # steps grow with each try, out of a well-trodden neighbourhood
             plan = self._mutate(dict(self._parent().params), reach=1 + attempt // 3)
-            if self._key(plan) not in self._seen:
-                self._seen.add(self._key(plan))
+            key = self._key(plan)
+            if key not in self._seen:
+                self._seen.add(key)
                 return plan
         return plan
 
@@ -230,46 +272,60 @@ class NeighbourSampler(BaseSampler):
         i, j = self._py.randrange(len(self._elite)), self._py.randrange(len(self._elite))
         return self._elite[min(i, j)]
 
+    def _draw(self, population: tuple, cum_weights: list[float]) -> Any:
+        """``random.choices(population, cum_weights=cum_weights)[0]``: the same draw, without
+        its checks of the weights on every call."""
+        return population[bisect_right(cum_weights, self._py.random() * cum_weights[-1], 0, len(population) - 1)]
+
     def _step(self, reach: int) -> int:
-        return self._py.choices(STEPS, STEP_P)[0] * reach * self._py.choice((-1, 1))
+        return self._draw(STEPS, _STEP_CUM) * reach * self._py.choice(SIGNS)
+
+    def _shape(self, space: dict[str, BaseDistribution]) -> "_Shape":
+        """What a move needs of a group's parameters, worked out once per group (a group's
+        parameter names fix their distributions)."""
+        names = tuple(space)
+        shape = self._shapes.get(names)
+        if shape is None:
+            shape = self._shapes[names] = _Shape.of(space)
+        return shape
 
     def _mutate(self, params: dict[str, Any], reach: int = 1) -> dict[str, Any]:
         space = self._group_params(params)
+        shape = self._shape(space)
         r = self._py.random()
         if r < P_SWITCH:
-            switchable = [n for n, d in space.items() if isinstance(d, CategoricalDistribution) and len(d.choices) > 1]
+            switchable = shape.switchable
             if switchable:
                 name = switchable[self._py.randrange(len(switchable))]
                 choices = [c for c in space[name].choices if c != params[name]]
                 params[name] = choices[self._py.randrange(len(choices))]
-                same = [t for t in self._elite_all() if t.params.get(name) == params[name]]
-                if same:  # carry over the best design known with that choice
-                    params = {**dict(same[0].params), name: params[name]}
+                same = self._best_with(name, params[name])
+                if same is not None:  # carry over the best design known with that choice
+                    params = {**dict(same.params), name: params[name]}
                 return params
         elif r < P_SWITCH + P_CROSSOVER:
-            mates = [t for t in self._elite if self._group_params(t.params).keys() == space.keys()]
+            mates = [t for t in self._elite if self._group_of(t) == shape.names]
             if len(mates) > 1:
                 mate = mates[self._py.randrange(len(mates))]
                 for name in space:
                     if self._py.random() < 0.5 and name in mate.params:
                         params[name] = mate.params[name]
                 return params
-        steppable = [n for n, d in space.items() if isinstance(d, IntDistribution) and d.high > d.low]
+        steppable, low, high = shape.steppable, shape.low, shape.high
         if not steppable:
             return params
         if self._py.random() < P_SCALE:  # every index stepped together: the impedance level scaled
             step = self._step(reach)
             for name in steppable:
-                params[name] = min(max(params.get(name, space[name].low) + step, space[name].low), space[name].high)
+                params[name] = min(max(params.get(name, low[name]) + step, low[name]), high[name])
             return params
-        count = min(self._py.choices(MOVE_COUNTS, MOVE_COUNT_P)[0], len(steppable))
+        count = min(self._draw(MOVE_COUNTS, _MOVE_COUNT_CUM), len(steppable))
         coupled = count > 1 and self._py.random() < P_COUPLED
         step = self._step(reach)
         for name in self._py.sample(steppable, count):
-            d = space[name]
             if not coupled:
                 step = self._step(reach)
-            params[name] = min(max(params.get(name, d.low) + step, d.low), d.high)
+            params[name] = min(max(params.get(name, low[name]) + step, low[name]), high[name])
         return params
 
     def _rank_key(self, trial: FrozenTrial) -> tuple:
@@ -278,12 +334,47 @@ class NeighbourSampler(BaseSampler):
             self._ranks[trial_id(trial)] = self._rank_of(trial)
         return self._ranks[trial_id(trial)]
 
-    def _elite_all(self) -> list[FrozenTrial]:
-        return self._elite + self._front
+    def _best_with(self, name: str, value: Any) -> FrozenTrial | None:
+        """The first trial of the elite, then the front, whose parameter ``name`` is ``value``
+        (looked up once per refresh)."""
+        if (name, value) not in self._with:
+            self._with[name, value] = next(
+                (t for t in self._elite + self._front if t.params.get(name) == value), None
+            )
+        return self._with[name, value]
+
+    def _group_of(self, trial: FrozenTrial) -> tuple[str, ...]:
+        """The parameter names of a finished trial's group, worked out once per trial."""
+        if trial_id(trial) not in self._groups:
+            self._groups[trial_id(trial)] = tuple(self._group_params(trial.params))
+        return self._groups[trial_id(trial)]
 
     @staticmethod
     def _key(params: dict[str, Any]) -> tuple:
         return tuple(sorted(params.items()))
+
+
+@dataclass(frozen=True)
+class _Shape:
+    """A group's parameters as moves see them: the integer ones with more than one value
+    (steppable, with their bounds) and the categorical ones with more than one choice."""
+
+    names: tuple[str, ...]
+    steppable: list[str]
+    low: dict[str, int]
+    high: dict[str, int]
+    switchable: list[str]
+
+    @classmethod
+    def of(cls, space: dict[str, BaseDistribution]) -> "_Shape":
+        ints = {n: d for n, d in space.items() if isinstance(d, IntDistribution) and d.high > d.low}
+        return cls(
+            tuple(space),
+            list(ints),
+            {n: d.low for n, d in ints.items()},
+            {n: d.high for n, d in ints.items()},
+            [n for n, d in space.items() if isinstance(d, CategoricalDistribution) and len(d.choices) > 1],
+        )
 
 
 def _crowding_distance(values: np.ndarray) -> list[float]:

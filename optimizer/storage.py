@@ -46,7 +46,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import IO, Any, Callable, Container, Generator, Iterator
+from typing import IO, Any, Callable, Container, Generator, Iterable, Iterator
 
 import optuna
 from optuna.storages import BaseStorage
@@ -384,18 +384,27 @@ class _WaitingIndex:
 class _SharedDistributions(JournalStorageReplayResult):
     """Optuna's replay of a journal, with equal parameter distributions shared: the replay
     builds a new distribution object for every parameter of every trial (0.1 KB each, three
-    per trial of a one-topology search: 20 MB of a 64,000-trial search's memory)."""
+    per trial of a one-topology search: 20 MB of a 64,000-trial search's memory), whether
+    the trial was made with its parameters or they were set one by one."""
 
     def __init__(self, worker_id_prefix: str) -> None:
         super().__init__(worker_id_prefix)
         self._shared: dict[optuna.distributions.BaseDistribution, optuna.distributions.BaseDistribution] = {}
 
+    def _share(self, trial: "optuna.trial.FrozenTrial | None", names: "Iterable[str]") -> None:
+        for name in names:
+            if trial is not None and name in trial.distributions:
+                d = trial.distributions[name]
+                trial.distributions[name] = self._shared.setdefault(d, d)
+
+    def _apply_create_trial(self, log: dict[str, Any]) -> None:  # a trial made with its parameters
+        super()._apply_create_trial(log)
+        if log.get("distributions"):
+            self._share(self._trials.get(len(self._trials) - 1), log["distributions"])
+
     def _apply_set_trial_param(self, log: dict[str, Any]) -> None:
         super()._apply_set_trial_param(log)
-        trial = self._trials.get(log["trial_id"])
-        name = log["param_name"]
-        if trial is not None and name in trial.distributions:
-            trial.distributions[name] = self._shared.setdefault(trial.distributions[name], trial.distributions[name])
+        self._share(self._trials.get(log["trial_id"]), (log["param_name"],))
 
 
 class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
@@ -435,9 +444,19 @@ class _MemoryStorage(_WaitingIndex, optuna.storages.InMemoryStorage):
         self._made = 0
 
     def create_new_trial(self, study_id: int, template_trial: "optuna.trial.FrozenTrial | None" = None) -> int:
-        if template_trial is not None and template_trial.state == TrialState.WAITING:
-            self._made += 1
-        return super().create_new_trial(study_id, template_trial)
+        """As Optuna's, but a running trial made with its parameters (the search's planned
+        trials) takes its parameters, distributions and attributes as given (the dicts
+        copied, not their contents): Optuna deep-copies the template, every distribution with
+        it, which cost as much as the rest of asking for a trial."""
+        if template_trial is None or template_trial.state != TrialState.RUNNING or template_trial.intermediate_values:
+            self._made += template_trial is not None and template_trial.state == TrialState.WAITING
+            return super().create_new_trial(study_id, template_trial)
+        made = super().create_new_trial(study_id)  # running, nothing given yet
+        with self._lock:
+            stored = self.get_trial(made)  # this storage's own trial, not a copy: no one has read it yet
+            stored.params, stored.distributions = dict(template_trial.params), dict(template_trial.distributions)
+            stored.user_attrs, stored.system_attrs = dict(template_trial.user_attrs), dict(template_trial.system_attrs)
+        return made
 
     def _waiting_made(self, study_id: int) -> int:
         return self._made
@@ -466,6 +485,15 @@ def trials_from(storage: BaseStorage, study_id_: int, number: int) -> list[optun
         with storage._lock:
             return storage._studies[study_id_].trials[number:]
     return storage.get_all_trials(study_id_, deepcopy=False)[number:]
+
+
+def trial_count(storage: BaseStorage, study_id_: int, known: int = 0) -> int:
+    """The number of trials of a study, of which at least ``known`` are known to exist: a
+    journal or memory counts only the trials from ``known`` on (:func:`trials_from`), any
+    other storage answers its own count."""
+    if isinstance(storage, (optuna.storages.journal.JournalStorage, _MemoryStorage)):
+        return known + len(trials_from(storage, study_id_, known))
+    return storage.get_n_trials(study_id_)
 
 
 @dataclass

@@ -9,11 +9,13 @@ from pathlib import Path
 
 import numpy as np
 import optuna
+import pytest
 from optuna.distributions import IntDistribution
 from optuna.trial import TrialState
 
 from optimizer.sampler import NEAR_FRONT, NeighbourSampler
 from optimizer.search import SearchSpace, create_search, run_search, with_search
+from optimizer.search import study as study_module
 from optimizer.spec import load_spec
 from optimizer.storage import open_storage
 
@@ -94,3 +96,40 @@ def test_a_search_keeps_its_budget_and_proposes_designs_in_range() -> None:
             assert d.low <= value <= d.high if isinstance(d, IntDistribution) else value in d.choices
         designs.add(tuple(sorted(t.params.items())))
     assert len(designs) >= 0.99 * len(trials)  # proposals are untried designs (a rare fallback aside)
+
+
+@pytest.mark.parametrize("where", ["memory", "journal"])
+def test_trials_made_with_their_parameters_are_the_trials_asked_one_parameter_at_a_time(
+    where: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # the planned path (study.ask: the sampler's next_trial, one storage write per trial)
+    # against Optuna's own ask with each parameter suggested and stored on its own, on a
+    # spec of three topologies (the topology parameter first, each topology's own group)
+    spec = with_search(load_spec(Path(__file__).resolve().parents[1] / "specs" / "contact_pickup_buffer.yaml"), trials=320, seed=5)
+
+    def searched(name: str) -> list[tuple]:
+        store = open_storage(None if where == "memory" else tmp_path / f"{name}.journal")
+        search_id = create_search(spec, store)
+        run_search(store, search_id, finish=False)
+        trials = optuna.load_study(study_name=search_id, storage=store).get_trials(deepcopy=False)
+        return [(t.number, t.state, t.params, t.distributions, t.user_attrs["record"]) for t in trials]
+
+    planned = searched("planned")
+    monkeypatch.setattr(study_module, "ask", lambda study, number: (study.ask(), None))
+    asked = searched("asked")
+    assert len(planned) == 320 and planned == asked
+    assert len({t[0] for t in planned if len(t[2]) > 0}) == 320
+    assert len({t[2].get("topology") for t in planned}) == 3  # every topology was proposed
+
+
+def test_a_draw_from_summed_weights_is_random_choices_draw() -> None:
+    # the sampler's weighted draw against the standard library's random.choices, same seed
+    import random
+
+    from optimizer.sampler import _STEP_CUM, STEP_P, STEPS
+
+    sampler, reference = _sampler(), random.Random(0)
+    sampler._py = random.Random(0)
+    assert [sampler._draw(STEPS, _STEP_CUM) for _ in range(2000)] == [
+        reference.choices(STEPS, STEP_P)[0] for _ in range(2000)
+    ]

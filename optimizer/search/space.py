@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import optuna
@@ -154,22 +155,30 @@ class SearchSpace:
 
     # ---- trials <-> designs ----------------------------------------------------------
     def suggest(self, trial: optuna.Trial) -> Design:
-        """Ask ``trial`` for a design (parameters: topology, device, <topology>.<role> indices)."""
-        topology = (
-            trial.suggest_categorical("topology", list(self.topologies))
-            if len(self.topologies) > 1
-            else self.topologies[0]
-        )
+        """Ask ``trial`` for a design (parameters: topology, device, <topology>.<role> indices,
+        each asked in the order of :meth:`distributions`, the topology first)."""
+        params: dict[str, Any] = {}
+        if len(self.topologies) > 1:
+            params["topology"] = trial.suggest_categorical("topology", list(self.topologies))
+        for name, d in self.distributions(params).items():
+            if name not in params:
+                params[name] = (
+                    trial.suggest_categorical(name, d.choices)
+                    if isinstance(d, optuna.distributions.CategoricalDistribution)
+                    else trial.suggest_int(name, d.low, d.high)
+                )
+        return self.design_of(params)
+
+    def design_of(self, params: dict[str, Any]) -> Design:
+        """The design that trial parameters ``params`` (all of its topology's) choose."""
+        topology = str(params.get("topology", self.topologies[0]))
         name = self.device_param(topology)
-        device = (
-            trial.suggest_categorical(name, list(self.devices_of(topology))) if name else self.devices_of(topology)[0]
+        device = str(params[name]) if name else self.devices_of(topology)[0]
+        return Design(
+            topology,
+            device,
+            tuple((n.split(".", 1)[1], int(params[n])) for n in self.distributions(params) if "." in n),
         )
-        chosen = tuple(
-            (name.split(".", 1)[1], trial.suggest_int(name, d.low, d.high))
-            for name, d in self.distributions({"topology": topology}).items()
-            if "." in name
-        )
-        return Design(topology, device, chosen)
 
     def distributions(self, params: dict[str, object]) -> dict[str, optuna.distributions.BaseDistribution]:
         """The parameters (with their distributions) of the topology that ``params`` chose."""

@@ -6,7 +6,7 @@ import json
 import time
 import uuid
 from datetime import datetime, timezone
-from typing import Callable
+from typing import Any, Callable
 
 import numpy as np
 import optuna
@@ -49,6 +49,7 @@ from optimizer.storage import (
     sync,
     tally,
     tell,
+    trial_count,
 )
 
 
@@ -205,7 +206,7 @@ def run_search(
         study.set_user_attr("status", "running")
         study.set_user_attr("started", time.time())
     per_batch = batch_trials(space, budget)
-    batches = told = 0
+    batches = told = number = 0  # number: of the next trial to be made (at least)
     # designs this runner has evaluated (samplers revisit them): (record as stored, violation, objectives)
     known: dict[Design, tuple[str, float, list[float]]] = {}
     open_trials: list[optuna.Trial] = []  # asked and not yet told (failed if the run is interrupted)
@@ -222,13 +223,17 @@ def run_search(
                     wanted = min(per_batch, budget - finished - running)
                     if wanted <= 0 or (max_batches is not None and batches >= max_batches):
                         break
-                    open_trials = []
+                    open_trials, given = [], []  # given: the parameters each trial was made with (or None)
                     with batched_writes(storage):  # a journal file: one append for the batch's new trials
+                        number = trial_count(storage, study_id(study), number)
                         for _ in range(wanted):
-                            open_trials.append(heartbeat.add(study.ask()))
+                            trial, params = ask(study, number)
+                            open_trials.append(heartbeat.add(trial))
+                            given.append(params)
+                            number = max(number, trial.number + 1)
                 trials = list(open_trials)
-                with batched_writes(storage):  # ... one for their parameters
-                    designs = [space.suggest(t) for t in trials]
+                with batched_writes(storage):  # ... one for the parameters asked (the seeds')
+                    designs = [space.design_of(p) if p else space.suggest(t) for t, p in zip(trials, given)]
                 try:
                     fresh = list(dict.fromkeys(d for d in designs if d not in known))
                     known.update(
@@ -260,6 +265,21 @@ def run_search(
         _finish_when_done(study, space, budget)
     save_snapshot(storage, rank_key, same_design)
     return told
+
+
+def ask(study: optuna.Study, number: int) -> tuple[optuna.Trial, dict[str, Any] | None]:
+    """The study's next trial, as ``study.ask()`` makes it, and the parameters it was made
+    with (None: to be asked, :meth:`SearchSpace.suggest`); ``number``: the number it will
+    have if it is made here. With the search's own sampler and no trial waiting, it is made
+    with every parameter in one storage write (the sampler's next_trial; a journal's one
+    record, not one per parameter), so a shared storage shows it running with them at once."""
+    storage, sampler = study_storage(study), study.sampler
+    if not isinstance(sampler, NeighbourSampler) or storage.get_all_trials(
+        study_id(study), deepcopy=False, states=(TrialState.WAITING,)
+    ):
+        return study.ask(), None  # an enqueued trial (a seed, a retry) is taken as given
+    made = sampler.next_trial(study, number)
+    return optuna.Trial(study, storage.create_new_trial(study_id(study), template_trial=made)), made.params
 
 
 INTERRUPTED = "interrupted (Ctrl-C); finished trials are kept: run the search again to resume it"
