@@ -46,7 +46,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import IO, Any, Callable, Container, Generator, Iterable, Iterator
+from typing import IO, Any, Callable, Container, Generator, Iterator
 
 import optuna
 from optuna.storages import BaseStorage
@@ -385,26 +385,39 @@ class _SharedDistributions(JournalStorageReplayResult):
     """Optuna's replay of a journal, with equal parameter distributions shared: the replay
     builds a new distribution object for every parameter of every trial (0.1 KB each, three
     per trial of a one-topology search: 20 MB of a 64,000-trial search's memory), whether
-    the trial was made with its parameters or they were set one by one."""
+    the trial was made with its parameters or they were set one by one. A trial made with
+    its parameters has them read here, each distribution's JSON parsed once per search
+    rather than once per trial (a quarter of the cost of replaying the search's own trials)."""
 
     def __init__(self, worker_id_prefix: str) -> None:
         super().__init__(worker_id_prefix)
         self._shared: dict[optuna.distributions.BaseDistribution, optuna.distributions.BaseDistribution] = {}
+        self._parsed: dict[str, optuna.distributions.BaseDistribution] = {}  # by its JSON
 
-    def _share(self, trial: "optuna.trial.FrozenTrial | None", names: "Iterable[str]") -> None:
-        for name in names:
-            if trial is not None and name in trial.distributions:
-                d = trial.distributions[name]
-                trial.distributions[name] = self._shared.setdefault(d, d)
+    def _distribution(self, text: str) -> optuna.distributions.BaseDistribution:
+        if text not in self._parsed:
+            d = optuna.distributions.json_to_distribution(text)
+            self._parsed[text] = self._shared.setdefault(d, d)
+        return self._parsed[text]
 
-    def _apply_create_trial(self, log: dict[str, Any]) -> None:  # a trial made with its parameters
-        super()._apply_create_trial(log)
-        if log.get("distributions"):
-            self._share(self._trials.get(len(self._trials) - 1), log["distributions"])
+    def _apply_create_trial(self, log: dict[str, Any]) -> None:
+        given = log.get("distributions")
+        if not given:
+            super()._apply_create_trial(log)
+            return
+        made = len(self._trials)
+        super()._apply_create_trial({**log, "distributions": {}, "params": {}})
+        if len(self._trials) > made:  # made (its study exists): its parameters as Optuna's replay reads them
+            trial = self._trials[made]
+            trial.distributions = {k: self._distribution(v) for k, v in given.items()}
+            trial.params = {k: trial.distributions[k].to_external_repr(v) for k, v in log["params"].items()}
 
     def _apply_set_trial_param(self, log: dict[str, Any]) -> None:
         super()._apply_set_trial_param(log)
-        self._share(self._trials.get(log["trial_id"]), (log["param_name"],))
+        trial = self._trials.get(log["trial_id"])
+        name = log["param_name"]
+        if trial is not None and name in trial.distributions:
+            trial.distributions[name] = self._shared.setdefault(trial.distributions[name], trial.distributions[name])
 
 
 class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):

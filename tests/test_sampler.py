@@ -115,6 +115,12 @@ def test_trials_made_with_their_parameters_are_the_trials_asked_one_parameter_at
         return [(t.number, t.state, t.params, t.distributions, t.user_attrs["record"]) for t in trials]
 
     planned = searched("planned")
+    if where == "journal":  # the file as Optuna's own journal storage reads it back
+        plain = optuna.storages.JournalStorage(
+            optuna.storages.journal.JournalFileBackend(str(tmp_path / "planned.journal"))
+        )
+        read = optuna.load_study(study_name=plain.get_all_studies()[0].study_name, storage=plain).get_trials()
+        assert [(t.number, t.state, t.params, t.distributions, t.user_attrs["record"]) for t in read] == planned
     monkeypatch.setattr(study_module, "ask", lambda study, number: (study.ask(), None))
     asked = searched("asked")
     assert len(planned) == 320 and planned == asked
