@@ -338,9 +338,7 @@ class NeighbourSampler(BaseSampler):
         """The first trial of the elite, then the front, whose parameter ``name`` is ``value``
         (looked up once per refresh)."""
         if (name, value) not in self._with:
-            self._with[name, value] = next(
-                (t for t in self._elite + self._front if t.params.get(name) == value), None
-            )
+            self._with[name, value] = next((t for t in self._elite + self._front if t.params.get(name) == value), None)
         return self._with[name, value]
 
     def _group_of(self, trial: FrozenTrial) -> tuple[str, ...]:

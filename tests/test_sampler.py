@@ -14,8 +14,7 @@ from optuna.distributions import IntDistribution
 from optuna.trial import TrialState
 
 from optimizer.sampler import NEAR_FRONT, NeighbourSampler
-from optimizer.search import SearchSpace, create_search, run_search, with_search
-from optimizer.search import study as study_module
+from optimizer.search import SearchSpace, create_search, run_search, study as study_module, with_search
 from optimizer.spec import load_spec
 from optimizer.storage import open_storage
 
@@ -105,7 +104,9 @@ def test_trials_made_with_their_parameters_are_the_trials_asked_one_parameter_at
     # the planned path (study.ask: the sampler's next_trial, one storage write per trial)
     # against Optuna's own ask with each parameter suggested and stored on its own, on a
     # spec of three topologies (the topology parameter first, each topology's own group)
-    spec = with_search(load_spec(Path(__file__).resolve().parents[1] / "specs" / "contact_pickup_buffer.yaml"), trials=320, seed=5)
+    spec = with_search(
+        load_spec(Path(__file__).resolve().parents[1] / "specs" / "contact_pickup_buffer.yaml"), trials=320, seed=5
+    )
 
     def searched(name: str) -> list[tuple]:
         store = open_storage(None if where == "memory" else tmp_path / f"{name}.journal")
