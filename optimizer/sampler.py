@@ -31,7 +31,9 @@ sampling them independently:
 
 Before any design is finished it samples at random; enqueued seeds are taken as given.
 Seeded, so a search in one process is reproducible. Optuna's interface: one class, the
-plan of each trial made in ``before_trial`` and handed out in ``sample_independent``.
+plan of each trial made in ``before_trial`` and handed out in ``sample_independent``; the
+search's own loop asks :meth:`NeighbourSampler.next_trial` for a whole trial before making it
+(the same plan and draws, one storage write).
 """
 
 from __future__ import annotations

@@ -203,9 +203,9 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
     process holds the journal's write lock and keeps its records in memory: this process's
     reads see them after the file's records (numbered as if appended, which they will be:
     nobody else can append meanwhile), and they are appended in one write when the batch
-    closes. A search writes about eight records per trial (its creation, each parameter,
-    the record, the constraint, the result); one open, lock and write each was most of a
-    journal search's time. Other threads of this process writing meanwhile join the open
+    closes. A search writes four records per trial (its creation with its parameters, the
+    record, the constraint, the result; a seed's parameters one each); one open, lock and
+    write each was most of a journal search's time. Other threads of this process writing meanwhile join the open
     batch (waiting for the lock instead would deadlock on Optuna's storage lock), so their
     records too reach the file when it closes. A file left ending mid-line by a crash gets
     a newline first, so the torn fragment never swallows the next record."""
