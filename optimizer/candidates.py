@@ -65,19 +65,41 @@ def _check_parts(topology: Topology, parts: dict[str, float], split: bool = Fals
         )
 
 
-def _part_record(catalog: Catalog, spec: Spec, role: str, value: float) -> dict:
-    kind = "capacitor" if role.startswith("c_") else "resistor"
-    row = catalog.part_for(kind, value, allow_class2=spec.parts.allow_class2_coupling)
-    record = {"value": float(value), "label": part_label(role, value), "part_id": None}
-    series = spec.parts.capacitor_series if kind == "capacitor" else spec.parts.resistor_series
-    record["tolerance"] = eseries.customary_tolerance(series)
-    record["rating"] = DEFAULT_CAP_VOLTAGE if kind == "capacitor" else DEFAULT_POWER_RATING
-    if row is not None:
-        record["part_id"] = row["part_id"]
-        record["tolerance"] = float(row["tolerance"])
-        record["rating"] = float(row["voltage_rating"] if kind == "capacitor" else row["power_rating"])
-        record["unit_price"] = float(row["unit_price"])
-    return record
+def _part_records(catalog: Catalog, spec: Spec, arrays: dict[str, np.ndarray]) -> list[dict[str, dict]]:
+    """Each design's part records by role (value, label, catalog part id, tolerance, rating and
+    price of the row ``Catalog.parts_for`` picks; the series' customary tolerance and a default
+    rating where the value is not in the catalog), for part values as arrays by role. One
+    catalog look-up per kind of part for all designs and roles."""
+    n = next(iter(arrays.values())).size
+    found: dict[str, list[dict]] = {}
+    for kind, series, rating_column, default_rating in (
+        ("resistor", spec.parts.resistor_series, "power_rating", DEFAULT_POWER_RATING),
+        ("capacitor", spec.parts.capacitor_series, "voltage_rating", DEFAULT_CAP_VOLTAGE),
+    ):
+        roles = [role for role in arrays if role.startswith("c_") == (kind == "capacitor")]
+        if not roles:
+            continue
+        values = np.concatenate([np.asarray(arrays[role], dtype=float) for role in roles])
+        rows = catalog.parts_for(kind, values, allow_class2=spec.parts.allow_class2_coupling)
+        in_catalog = rows["part_id"].notna().to_numpy()
+        part_id = rows["part_id"].to_numpy(dtype=object)
+        tolerance, rating, price = (rows[c].to_numpy(dtype=float) for c in ("tolerance", rating_column, "unit_price"))
+        customary = eseries.customary_tolerance(series)
+        for k, role in enumerate(roles):
+            found[role] = []
+            for i in range(k * n, (k + 1) * n):
+                record = {"value": float(values[i]), "label": part_label(role, float(values[i])), "part_id": None}
+                record["tolerance"] = customary
+                record["rating"] = default_rating
+                if in_catalog[i]:
+                    record.update(
+                        part_id=part_id[i],
+                        tolerance=float(tolerance[i]),
+                        rating=float(rating[i]),
+                        unit_price=float(price[i]),
+                    )
+                found[role].append(record)
+    return [{role: found[role][j] for role in arrays} for j in range(n)]
 
 
 def assess(
@@ -165,7 +187,7 @@ def _assess_group(
                 topology, arrays, device, conditions, allowed, scoring.decoupling_target(spec, cap_tolerances)
             )
 
-    records = [{role: _part_record(catalog, spec, role, float(v[j])) for role, v in arrays.items()} for j in range(n)]
+    records = _part_records(catalog, spec, arrays)
 
     def column(role: str, key: str) -> np.ndarray:
         return np.array([r[role][key] for r in records])

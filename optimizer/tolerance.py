@@ -24,13 +24,13 @@ from __future__ import annotations
 
 import itertools
 import zlib
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, fields, replace
 from typing import Callable
 
 import numpy as np
 
 from optimizer.devices import AnyDevice
-from optimizer.topologies.base import CHUNK_FAST, CHUNK_FULL, Conditions, Topology
+from optimizer.topologies.base import CHUNK_FAST, CHUNK_FULL, Conditions, StageResult, Topology
 
 TEMPERATURE_BINS = 3  # Monte Carlo temperatures are drawn from this many levels (ends and middle)
 SUPPLY_BINS = 3  # and supplies from this many (min, middle, max)
@@ -151,7 +151,27 @@ def _flat_result(
     the operating point's 'ic' come back in the same 2-D shape."""
     shape = hfe.shape
     flat = {role: np.broadcast_to(v, shape).reshape(-1) for role, v in parts.items()}
-    result = topology.evaluate(flat, device, conditions, hfe=hfe.reshape(-1), full=full)
+    h = hfe.reshape(-1)
+    step = CHUNK_FULL if full else CHUNK_FAST
+    if np.ndim(conditions.supply) == 0 or h.size <= step:
+        result = topology.evaluate(flat, device, conditions, hfe=h, full=full)
+    else:  # a supply per candidate: the model's own chunks would not slice it, so chunked here
+        pieces = [
+            topology.evaluate(
+                {k: v[i : i + step] for k, v in flat.items()},
+                device,
+                replace(conditions, supply=np.asarray(conditions.supply)[i : i + step]),
+                hfe=h[i : i + step],
+                full=full,
+            )
+            for i in range(0, h.size, step)
+        ]
+        result = StageResult(
+            *(
+                {k: np.concatenate([getattr(r, d)[k] for r in pieces]) for k in getattr(pieces[0], d)}
+                for d in (f.name for f in fields(StageResult))
+            )
+        )
     out = {k: np.asarray(v).reshape(shape) for k, v in result.metrics.items()}
     out.update({k: np.asarray(v).reshape(shape) for k, v in result.ratings.items()})
     op = result.operating_point
@@ -167,6 +187,30 @@ def _column(tolerance: Tolerance, rows: slice | None = None) -> np.ndarray:
     """A tolerance as a column (candidates, 1) for broadcasting against samples."""
     t = np.asarray(tolerance, dtype=float)
     return (t if t.ndim == 0 or rows is None else t[rows]).reshape(-1, 1) if t.ndim else t.reshape(1, 1)
+
+
+def _corner_conditions(
+    device: AnyDevice,
+    conditions: Conditions,
+    temperature_range: tuple[float, float],
+    supply_range: SupplyRange | None,
+) -> list[tuple[Conditions, np.ndarray, np.ndarray]]:
+    """The corners of temperature, supply and the device's spread (both ends of each; a split
+    supply's rails each at both ends) as one entry per temperature and ground's place: the
+    conditions there and, per (supply, device edge) pair, the supply span (V) and the device's
+    spread value. The models take the supply and the spread per candidate, the temperature and
+    the ground's place per call."""
+    out = []
+    for temperature in temperature_range:
+        edges = device.spread_edges(float(temperature))
+        by_ground: dict[float, list[float]] = {}
+        for supply, below, _ in supply_points(supply_range, conditions):
+            by_ground.setdefault(below, []).append(supply)
+        for below, supplies in by_ground.items():
+            at = _at(conditions, temperature, supplies[0], below)
+            pairs = list(itertools.product(supplies, edges))
+            out.append((at, np.array([s for s, _ in pairs]), np.array([e for _, e in pairs], dtype=float)))
+    return out
 
 
 def worst_case(
@@ -189,32 +233,33 @@ def worst_case(
     roles = tuple(parts) if roles is None else roles
     signs = np.array(list(itertools.product((-1.0, 1.0), repeat=len(roles))))  # (corners, roles)
     n = np.asarray(next(iter(parts.values()))).shape[0]
+    corner_parts = {
+        role: np.asarray(v, dtype=float).reshape(-1, 1) * np.ones((1, signs.shape[0])) for role, v in parts.items()
+    }
+    for j, role in enumerate(roles):
+        corner_parts[role] = corner_parts[role] * (1.0 + signs[None, :, j] * _column(tolerances.get(role, 0.0)))
     lows: dict[str, np.ndarray] = {}
     highs: dict[str, np.ndarray] = {}
     active_all = np.ones(n, dtype=bool)
-    for temperature, (supply, below, _) in itertools.product(
-        temperature_range, supply_points(supply_range, conditions)
-    ):
-        at = _at(conditions, temperature, supply, below)
-        corner_parts = {
-            role: np.asarray(v, dtype=float).reshape(-1, 1) * np.ones((1, signs.shape[0])) for role, v in parts.items()
-        }
-        for j, role in enumerate(roles):
-            corner_parts[role] = corner_parts[role] * (1.0 + signs[None, :, j] * _column(tolerances.get(role, 0.0)))
-        for hfe_edge in device.spread_edges(float(temperature)):
-            hfe = np.full((n, signs.shape[0]), hfe_edge)
-            values = _flat_result(topology, corner_parts, device, at, hfe, full)
-            active_all &= np.all(values["active"], axis=1)
-            for key, value in values.items():
-                if value.dtype == bool:
-                    continue
-                with np.errstate(invalid="ignore"):
-                    lo, hi = (
-                        np.nanmin(np.where(np.isnan(value), np.inf, value), axis=1),
-                        np.nanmax(np.where(np.isnan(value), -np.inf, value), axis=1),
-                    )
-                lows[key] = lo if key not in lows else np.minimum(lows[key], lo)
-                highs[key] = hi if key not in highs else np.maximum(highs[key], hi)
+    for at, supply, hfe_edges in _corner_conditions(device, conditions, temperature_range, supply_range):
+        # every corner of one temperature and ground's place in one model call: the parts' corners
+        # repeated for each (supply, device edge) pair, the supply and the device's spread per column
+        pairs = len(hfe_edges)
+        stacked = {role: np.tile(v, (1, pairs)) for role, v in corner_parts.items()}
+        hfe = np.broadcast_to(np.repeat(hfe_edges, signs.shape[0])[None, :], (n, pairs * signs.shape[0]))
+        at = replace(at, supply=np.broadcast_to(np.repeat(supply, signs.shape[0])[None, :], hfe.shape).reshape(-1))
+        values = _flat_result(topology, stacked, device, at, np.ascontiguousarray(hfe), full)
+        active_all &= np.all(values["active"], axis=1)
+        for key, value in values.items():
+            if value.dtype == bool:
+                continue
+            with np.errstate(invalid="ignore"):
+                lo, hi = (
+                    np.nanmin(np.where(np.isnan(value), np.inf, value), axis=1),
+                    np.nanmax(np.where(np.isnan(value), -np.inf, value), axis=1),
+                )
+            lows[key] = lo if key not in lows else np.minimum(lows[key], lo)
+            highs[key] = hi if key not in highs else np.maximum(highs[key], hi)
     out = {
         key: (
             np.where(np.isfinite(lows[key]), lows[key], np.nan),
@@ -265,18 +310,21 @@ def bias_spread(
     ic_low = np.full(n, np.inf)
     ic_high = np.full(n, -np.inf)
     v_low, v_high = ic_low.copy(), ic_high.copy()
-    for temperature, (supply, below, _) in itertools.product(
-        temperature_range, supply_points(supply_range, conditions)
-    ):
-        at = _at(conditions, temperature, supply, below)
-        for hfe_edge in device.spread_edges(float(temperature)):
-            op = topology.operating_point(both, device, at, hfe_edge)
-            ic = np.where(op["active"], op["ic"], np.nan).reshape(2, n)
-            v_out = np.asarray(op["v_out_q"]).reshape(2, n)
-            with np.errstate(invalid="ignore"):
-                ic_low = np.fmin(ic_low, np.nanmin(np.where(np.isnan(ic), np.inf, ic), axis=0))
-                ic_high = np.fmax(ic_high, np.nanmax(np.where(np.isnan(ic), -np.inf, ic), axis=0))
-            v_low, v_high = np.minimum(v_low, v_out.min(axis=0)), np.maximum(v_high, v_out.max(axis=0))
+    for at, supply, hfe_edges in _corner_conditions(device, conditions, temperature_range, supply_range):
+        # the (supply, device edge) pairs of one temperature and ground's place in one call
+        pairs = hfe_edges.size
+        op = topology.operating_point(
+            {role: np.tile(v, pairs) for role, v in both.items()},
+            device,
+            replace(at, supply=np.repeat(supply, 2 * n)),
+            np.repeat(hfe_edges, 2 * n),
+        )
+        ic = np.where(op["active"], op["ic"], np.nan).reshape(2 * pairs, n)
+        v_out = np.asarray(op["v_out_q"]).reshape(2 * pairs, n)
+        with np.errstate(invalid="ignore"):
+            ic_low = np.fmin(ic_low, np.nanmin(np.where(np.isnan(ic), np.inf, ic), axis=0))
+            ic_high = np.fmax(ic_high, np.nanmax(np.where(np.isnan(ic), -np.inf, ic), axis=0))
+        v_low, v_high = np.minimum(v_low, v_out.min(axis=0)), np.maximum(v_high, v_out.max(axis=0))
     with np.errstate(divide="ignore", invalid="ignore"):
         spread = np.where((ic_low > 0) & np.isfinite(ic_high), ic_high / ic_low, np.inf)
     return {"ic_low": ic_low, "ic_high": ic_high, "ic_spread": spread, "v_out_low": v_low, "v_out_high": v_high}
