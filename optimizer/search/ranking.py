@@ -70,18 +70,23 @@ def fold_variants(space: SearchSpace, ranked: list[dict], keep: Container[tuple]
         for k, row in zip(members, np.stack(columns, axis=1) if columns else np.zeros((len(members), 0))):
             steps[k] = row
     kept: list[dict] = []
-    kept_steps: dict[tuple[str, str], tuple[list[int], list[np.ndarray]]] = {}
+    # per topology and device: the positions in `kept` and the step rows of the designs kept, the
+    # rows in an array filled in order (no list re-stacked per design)
+    kept_steps: dict[tuple[str, str], tuple[list[int], np.ndarray]] = {
+        key: ([], np.empty((len(members), steps[members[0]].size), dtype=steps[members[0]].dtype))
+        for key, members in groups.items()
+    }
     for k, r in enumerate(ranked):
         key = (r["topology"], r["device"])
-        positions, rows = kept_steps.setdefault(key, ([], []))
-        if rows and design_key(r) not in keep:
-            far = np.count_nonzero(np.abs(np.asarray(rows) - steps[k]) >= NEAR_STEPS, axis=1)
+        positions, rows = kept_steps[key]
+        if positions and design_key(r) not in keep:
+            far = np.count_nonzero(np.abs(rows[: len(positions)] - steps[k]) >= NEAR_STEPS, axis=1)
             near = np.flatnonzero(far < DISTINCT_ROLES)
             if near.size:
                 kept[positions[near[0]]]["variants"] += 1
                 continue
+        rows[len(positions)] = steps[k]
         positions.append(len(kept))
-        rows.append(steps[k])
         kept.append({**r, "variants": 1})
     return kept
 

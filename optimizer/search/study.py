@@ -332,15 +332,14 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     every = rank_records(completed_records(study))
     ranked = fold_variants(space, every, keep={design_key(r) for r in front_records(space, every)})
     reach = ranked[: max(top, SHORTLIST_REACH)]
-    shortlist: list[dict] = []
-    # in rank order until `top` of them meet the spec: assessed together, as many at a time as
-    # could still be needed, which stops exactly where one at a time would
-    while len(shortlist) < len(reach):
-        feasible = sum(c["feasible"] for c in shortlist)
-        if len(shortlist) >= top and feasible >= top:
-            break
-        wanted = max(top - len(shortlist), top - feasible)
-        shortlist += shortlist_candidates(space, reach[len(shortlist) : len(shortlist) + wanted], samples)
+    # in rank order until `top` of them meet the spec: the first `top` assessed together, and if
+    # fewer meet it, the rest of the reach in one more call (fewer, larger model calls), cut
+    # after the design that makes `top`: the same designs as one at a time
+    shortlist = shortlist_candidates(space, reach[:top], samples)
+    if sum(c["feasible"] for c in shortlist) < top:
+        shortlist += shortlist_candidates(space, reach[top:], samples)
+        meeting = np.cumsum([c["feasible"] for c in shortlist])
+        shortlist = shortlist[: int(np.searchsorted(meeting, top)) + 1]
     assessed = {design_key(r): dict(c) for r, c in zip(reach, shortlist)}  # copied before ranks are set
     shortlist.sort(key=lambda c: (not c["feasible"], -c["score"] if c["feasible"] else c["total_violation"]))
     candidates = shortlist + [candidate_from_record(space, r) for r in ranked[len(shortlist) :] if tail]
