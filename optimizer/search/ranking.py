@@ -4,7 +4,7 @@ search and the shortlist's full assessment."""
 from __future__ import annotations
 
 import json
-from typing import Container
+from typing import Collection
 
 import numpy as np
 import optuna
@@ -50,7 +50,7 @@ NEAR_STEPS = 2  # a role whose value differs by fewer series steps is the same c
 DISTINCT_ROLES = 2  # designs differing by NEAR_STEPS or more in this many roles are distinct
 
 
-def fold_variants(space: SearchSpace, ranked: list[dict], keep: Container[tuple] = ()) -> list[dict]:
+def fold_variants(space: SearchSpace, ranked: list[dict], keep: Collection[tuple] = ()) -> list[dict]:
     """``ranked`` with near-identical designs folded into the best of them (which gains a
     ``variants`` count, itself included). Two designs are distinct when their topology or
     device differ, or when at least DISTINCT_ROLES roles differ by NEAR_STEPS or more steps
@@ -79,7 +79,7 @@ def fold_variants(space: SearchSpace, ranked: list[dict], keep: Container[tuple]
     for k, r in enumerate(ranked):
         key = (r["topology"], r["device"])
         positions, rows = kept_steps[key]
-        if positions and design_key(r) not in keep:
+        if positions and not (keep and design_key(r) in keep):
             far = np.count_nonzero(np.abs(rows[: len(positions)] - steps[k]) >= NEAR_STEPS, axis=1)
             near = np.flatnonzero(far < DISTINCT_ROLES)
             if near.size:
@@ -199,26 +199,47 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
 def candidate_from_record(space: SearchSpace, record: dict) -> dict:
     """The candidate record of a trial record (nominal figures; no spread): the ranked tail
     and the front points that are not assessed in full. A part left out keeps its role at 0."""
-    parts = {}
-    for role, value in record["parts"].items():
-        if value <= 0 and role in SUPPLY_PARTS:
-            continue  # no decoupling RC: the stage sits on the rail
-        table = space.capacitors if role.startswith("c_") else space.resistors
-        part_id = table.part_id[int(table.index_of(np.array([value]))[0])] if value > 0 else None
-        parts[role] = {"value": value, "label": part_label(role, value), "part_id": part_id}
-    return candidate_record(
-        topology=record["topology"],
-        feasible=record["feasible"],
-        score=record["score"],
-        binding=record["binding"],
-        conditions=record_conditions(space.spec),
-        parts=parts,
-        transistor=space.devices[record["device"]].record(),
-        metrics=dict(record["metrics"]),
-        violations=dict(record["violations"]),
-        **{k: record[k] for k in ("basis", "score_terms", "note", "variants") if k in record},
-        trial=record.get("trial"),
-    )
+    return candidates_from_records(space, [record])[0]
+
+
+def candidates_from_records(space: SearchSpace, records: list[dict]) -> list[dict]:
+    """:func:`candidate_from_record` of each of ``records``, in order; each kind of part's
+    catalog ids looked up for every record at once."""
+    tables = {"c": space.capacitors, "r": space.resistors}
+    wanted: dict[str, list[float]] = {"c": [], "r": []}
+    for record in records:
+        for role, value in record["parts"].items():
+            if value > 0:
+                wanted["c" if role.startswith("c_") else "r"].append(value)
+    part_ids = {
+        kind: iter(tables[kind].part_id[tables[kind].index_of(np.array(values))]) if values else iter(())
+        for kind, values in wanted.items()
+    }
+    conditions = record_conditions(space.spec)
+    out = []
+    for record in records:
+        parts = {}
+        for role, value in record["parts"].items():
+            if value <= 0 and role in SUPPLY_PARTS:
+                continue  # no decoupling RC: the stage sits on the rail
+            part_id = next(part_ids["c" if role.startswith("c_") else "r"]) if value > 0 else None
+            parts[role] = {"value": value, "label": part_label(role, value), "part_id": part_id}
+        out.append(
+            candidate_record(
+                topology=record["topology"],
+                feasible=record["feasible"],
+                score=record["score"],
+                binding=record["binding"],
+                conditions=conditions,
+                parts=parts,
+                transistor=space.devices[record["device"]].record(),
+                metrics=dict(record["metrics"]),
+                violations=dict(record["violations"]),
+                **{k: record[k] for k in ("basis", "score_terms", "note", "variants") if k in record},
+                trial=record.get("trial"),
+            )
+        )
+    return out
 
 
 def shortlist_candidates(space: SearchSpace, records: list[dict], samples: int) -> list[dict]:

@@ -14,6 +14,7 @@ from optimizer.search.ranking import (
     SHORTLIST_SAMPLES,
     SHORTLIST_SIZE,
     candidate_from_record,
+    candidates_from_records,
     fold_variants,
     rank_key,
     rank_records,
@@ -189,11 +190,10 @@ def load_search(
         summary = {k: ranking[k] for k in ("front", "infeasible") if k in ranking}
         summary["candidates"] = list(ranking["candidates"])
         shortlisted = {c.get("trial") for c in summary["candidates"]}
-        tail = [
-            candidate_from_record(space, r)
-            for r in fold_variants(space, rank_records(completed_records(study)))
-            if r["trial"] not in shortlisted
-        ]
+        tail = candidates_from_records(
+            space,
+            [r for r in fold_variants(space, rank_records(completed_records(study))) if r["trial"] not in shortlisted],
+        )
         for rank, c in enumerate(tail, len(summary["candidates"]) + 1):
             c["rank"] = rank
         summary["candidates"] += tail
