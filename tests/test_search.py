@@ -241,3 +241,46 @@ def test_oracle_answers_an_impossible_spec_with_the_nearest_miss() -> None:
     found = search(spec, trials=1024, top=1).candidates[0]["score"]
     assert found <= oracle.best["score"] + 1e-12  # nothing beats the oracle's nearest miss
     assert found >= oracle.best["score"] - 0.05  # and the search comes near it
+
+
+def test_the_shortlist_is_what_assessing_one_design_at_a_time_takes(monkeypatch) -> None:
+    """summarise assesses the first `top` ranked designs together and, when fewer meet the spec,
+    the rest of the reach in one more call, cut after the design that makes `top`: against the
+    plain rule, one design at a time in rank order until `top` of them meet the spec. The full
+    assessment is stood in for by a fixed verdict per design (seeded), so that designs missing
+    on it come at many places in the ranking."""
+    from optimizer.search import study
+    from optimizer.search.ranking import (
+        SHORTLIST_REACH,
+        candidate_from_record,
+        design_key,
+        fold_variants,
+        front_records,
+    )
+
+    result = search(parse_spec(SMALL), top=2)
+    space = SearchSpace.build(result.spec)
+    every = rank_records(study.completed_records(result.study))
+    ranked = fold_variants(space, every, keep={design_key(r) for r in front_records(space, every)})
+    assert len(ranked) > SHORTLIST_REACH
+    meets: dict[tuple, bool] = {}
+
+    def assessed(space: SearchSpace, records: list[dict], samples: int) -> list[dict]:
+        return [
+            {**candidate_from_record(space, r), "feasible": meets[design_key(r)], "total_violation": 1.0}
+            for r in records
+        ]
+
+    monkeypatch.setattr(study, "shortlist_candidates", assessed)
+    rng = np.random.default_rng(5)
+    for chance in (0.3, 0.6, 0.9):
+        meets.update({design_key(r): bool(rng.random() < chance) for r in every})
+        for top in range(1, SHORTLIST_REACH + 1):
+            taken, meeting = [], 0
+            for r in ranked[: max(top, SHORTLIST_REACH)]:  # one at a time
+                if len(taken) >= top and meeting >= top:
+                    break
+                taken.append(r["trial"])
+                meeting += meets[design_key(r)]
+            shortlist = study.summarise(space, result.study, top, 1, tail=False)["candidates"]
+            assert sorted(c["trial"] for c in shortlist) == sorted(taken), (chance, top)
