@@ -81,9 +81,11 @@ def _part_records(catalog: Catalog, spec: Spec, arrays: dict[str, np.ndarray]) -
             continue
         values = np.concatenate([np.asarray(arrays[role], dtype=float) for role in roles])
         rows = catalog.parts_for(kind, values, allow_class2=spec.parts.allow_class2_coupling)
-        in_catalog = rows["part_id"].notna().to_numpy()
-        part_id = rows["part_id"].to_numpy(dtype=object)
-        tolerance, rating, price = (rows[c].to_numpy(dtype=float) for c in ("tolerance", rating_column, "unit_price"))
+        part_id = np.asarray(rows["part_id"], dtype=object)  # blank (None or NaN) where none is in stock
+        in_catalog = [p is not None and p == p for p in part_id]
+        tolerance, rating, price = (
+            np.asarray(rows[c], dtype=float) for c in ("tolerance", rating_column, "unit_price")
+        )
         customary = eseries.customary_tolerance(series)
         for k, role in enumerate(roles):
             found[role] = []
