@@ -40,7 +40,7 @@ from optimizer.storage import open_storage  # noqa: E402
 
 RESULTS = ROOT / "benchmarks" / "results" / "finish.md"
 TRIALS = 4000
-SPECS = ["bench_stock_preamp", "contact_pickup_buffer", "split_rail_send_amp"]
+SPECS = ["bench_stock_preamp", "contact_pickup_buffer", "dc_coupled_sensor_split"]
 REPEATS = {"quick": 3, "full": 7}
 TARGET_CPU = 0.5  # s, the finish of bench_stock_preamp
 
