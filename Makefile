@@ -50,7 +50,7 @@ typecheck: $(STAMP)
 # (bench_scale runs in the full list; its quick mode, 4k and 16k trials: make bench BENCH_MODE=quick BENCHES=bench_scale)
 # One alone: make bench BENCHES=bench_models
 BENCH_MODE ?= full
-BENCHES_full := bench_startup bench_models spice_agreement bench_search bench_loop bench_scale bench_robustness bench_workers bench_api \
+BENCHES_full := bench_startup bench_finish bench_models spice_agreement bench_search bench_loop bench_scale bench_robustness bench_workers bench_api \
     bench_pages bench_reliability
 BENCHES_quick := bench_startup bench_search bench_loop bench_workers
 BENCHES ?= $(BENCHES_$(BENCH_MODE))
