@@ -338,7 +338,7 @@ def desirability_terms(spec: Spec, metrics: dict[str, np.ndarray]) -> dict[str, 
     gain_err = np.abs(np.asarray(metrics["gain_error_db"], dtype=float))
     terms = {
         "gain": (1.0 - 0.5 * np.clip(gain_err / spec.gain.tolerance_db, 0.0, 1.0), WEIGHT_GAIN),
-        "margin": (0.5 + 0.5 * np.clip(limit_margins(spec, metrics) / MARGIN_FULL, 0.0, 1.0), WEIGHT_MARGIN),
+        "margin": (0.5 + 0.5 * np.clip(limit_margins(spec, metrics), 0.0, MARGIN_FULL) / MARGIN_FULL, WEIGHT_MARGIN),
         "parts": (8.0 / (8.0 + np.asarray(metrics["part_count"], dtype=float)), WEIGHT_PARTS),
         "reuse": (
             4.0 / (4.0 + np.asarray(metrics["unique_values"], dtype=float)),
