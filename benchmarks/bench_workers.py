@@ -57,7 +57,8 @@ RESULTS = {
 SPEC = ROOT / "benchmarks" / "specs" / "bs_e96_divider_buffer.yaml"
 STAGEFIT = [sys.executable, "-m", "optimizer.cli"]
 TRIALS = {"quick": 512, "full": 512}  # one runner
-WORKER_TRIALS = {"quick": 8192, "full": 16384}  # the workers' search: long enough that ranking it and the workers' start are a small part
+# the workers' search: long enough that ranking it and the workers' start are a small part
+WORKER_TRIALS = {"quick": 8192, "full": 16384}
 REPEATS = {"quick": 3, "full": 3}
 SLOW = ("PostgreSQL, Optuna RDB", "gRPC proxy -> PostgreSQL")  # run once: tens of times slower per trial
 TARGETS = {"overhead_ms": 3.0, "two_workers": 1.7}
