@@ -10,6 +10,7 @@ forward-active region; a candidate outside it is flagged, not modelled.
 from __future__ import annotations
 
 import functools
+import math
 import threading
 from collections.abc import Callable, Iterable, Sequence
 
@@ -413,38 +414,16 @@ class Network:
         structure = (frozenset(rhs), None if want is None else tuple(want), s is not None)
         known = self._plans.get(structure)
         if known is None:
-            caps = self.cap if s is not None else {}
-            entries = {k: (self.y.get(k), caps.get(k)) for k in set(self.y) | set(caps)}
-            rhs_nodes = frozenset(self.index[k] for k in rhs)
-            targets = frozenset(range(len(self.nodes)) if want is None else (self.index[w] for w in want))
-            plan = _elimination_plan(len(self.nodes), frozenset(entries), rhs_nodes, targets)
-            values = [v for pair in entries.values() for v in pair if v is not None]
-            shape = np.broadcast_shapes(*(np.shape(v) for v in values))
-            # the entries' G and C stacked in slot order (the entries hold the plan's first slots),
-            # zero where absent: the matrix is filled by two array operations, not two per entry
-            stack_g, stack_c = np.zeros((2, len(entries), *shape), dtype=np.result_type(*values))
-            for key, (g, c) in entries.items():
-                if g is not None:
-                    stack_g[plan.slot[key]] = g
-                if c is not None:
-                    stack_c[plan.slot[key]] = c
-            known = self._plans[structure] = (
-                plan,
-                (stack_g, stack_c if caps else None),
-                targets,
-                shape,
-                np.result_type(*values),
-            )
-        plan, (stack_g, stack_c), targets, shape, dtype = known
-        rhs_idx = {plan.slot[("b", self.index[k])]: np.asarray(v) for k, v in rhs.items()}
-        values_shape = shape
-        shapes = [v.shape for v in rhs_idx.values()]
+            known = self._plans[structure] = self._prepare(rhs, want, s is not None)
+        plan, stack_g, stack_c, outputs, values_shape, dtype = known
+        rhs_idx = [(plan.slot[("b", self.index[k])], np.asarray(v)) for k, v in rhs.items()]
+        shapes = [values_shape, *(v.shape for _, v in rhs_idx)]
+        dtypes = [dtype, *(v.dtype for _, v in rhs_idx)]
         if stack_c is not None:
             shapes.append(s.shape)
-            dtype = np.result_type(dtype, s)
-        shape = np.broadcast_shapes(shape, *shapes)
-        dtype = np.result_type(dtype, *rhs_idx.values())
-        work = _workspace(plan.slots + 1, shape, dtype)
+            dtypes.append(s.dtype)
+        shape = _broadcast_shape(shapes)
+        work = _workspace(plan.slots + 1, shape, np.result_type(*dtypes))
         # fill the matrix entries, G + s*C, in one go (element values broadcast to the solve's shape)
         m = stack_g.shape[0]
         expand = (m,) + (1,) * (len(shape) - len(values_shape)) + values_shape
@@ -457,26 +436,48 @@ class Network:
         else:
             np.multiply(s, stack_c.reshape(expand), out=filled)
             filled += stack_g.reshape(expand)
-        for slot, v in rhs_idx.items():
+        for slot, v in rhs_idx:
             work[slot] = v
         w = list(work)  # one view per slot, made once
         scratch = w[plan.slots]
-        multiply, subtract = np.multiply, np.subtract
-        for op, target, a, b in plan.ops:  # run the plan in place
+        multiply, subtract, reciprocal, negative = np.multiply, np.subtract, np.reciprocal, np.negative
+        for op, target, a, b in plan.codes:  # run the plan in place (op codes: see _Plan.codes)
             t = w[target]
-            if op == "sub":  # t -= a*b
-                multiply(w[a], w[b], out=scratch)
-                subtract(t, scratch, out=t)
-            elif op == "scale":
-                multiply(t, w[a], out=t)
-            elif op == "inv":
-                np.reciprocal(t, out=t)
-            elif op == "zero":
+            if op == 0:  # "sub": t -= a*b
+                multiply(w[a], w[b], scratch)
+                subtract(t, scratch, t)
+            elif op == 1:  # "scale"
+                multiply(t, w[a], t)
+            elif op == 2:  # "inv"
+                reciprocal(t, t)
+            elif op == 3:  # "neg": t = -a*b (a fill-in, or the first term of a node without injection)
+                multiply(w[a], w[b], t)
+                negative(t, t)
+            else:  # "zero"
                 t[...] = 0.0
-            else:  # "neg": t = -a*b (a fill-in, or the first term of a node without injection)
-                multiply(w[a], w[b], out=t)
-                np.negative(t, out=t)
-        return {self.nodes[k]: w[plan.slot[("x", k)]].copy() for k in targets}
+        return {name: w[slot].copy() for name, slot in outputs}
+
+    def _prepare(self, rhs: dict[str, np.ndarray], want: Iterable[str] | None, with_caps: bool) -> tuple:
+        """What :meth:`solve` keeps per structure: the plan, the entries' G and C stacked in slot
+        order (the entries hold the plan's first slots; zero where absent, so the matrix is filled
+        by two array operations, not two per entry; C None before :meth:`at`), the (node, slot) of
+        each wanted voltage, and the entries' broadcast shape and dtype."""
+        caps = self.cap if with_caps else {}
+        entries = {k: (self.y.get(k), caps.get(k)) for k in set(self.y) | set(caps)}
+        rhs_nodes = frozenset(self.index[k] for k in rhs)
+        targets = frozenset(range(len(self.nodes)) if want is None else (self.index[w] for w in want))
+        plan = _elimination_plan(len(self.nodes), frozenset(entries), rhs_nodes, targets)
+        values = [v for pair in entries.values() for v in pair if v is not None]
+        shape = np.broadcast_shapes(*(np.shape(v) for v in values))
+        dtype = np.result_type(*values)
+        stack_g, stack_c = np.zeros((2, len(entries), *shape), dtype=dtype)
+        for key, (g, c) in entries.items():
+            if g is not None:
+                stack_g[plan.slot[key]] = g
+            if c is not None:
+                stack_c[plan.slot[key]] = c
+        outputs = [(self.nodes[k], plan.slot[("x", k)]) for k in targets]
+        return plan, stack_g, stack_c if caps else None, outputs, shape, dtype
 
 
 class _Plan:
@@ -486,11 +487,21 @@ class _Plan:
         self.slot: dict = {}
         self.ops: list[tuple[str, int, int, int]] = []
         self.slots = 0  # slots in use (several keys may share one: x[k] is held in b[k]'s)
+        self._codes: list[tuple[int, int, int, int]] | None = None
 
     def new(self, key: object) -> int:
         self.slot[key] = self.slots
         self.slots += 1
         return self.slot[key]
+
+    @property
+    def codes(self) -> list[tuple[int, int, int, int]]:
+        """The operations with their names as small integers (0 sub, 1 scale, 2 inv, 3 neg, 4 zero), as
+        :meth:`Network.solve` runs them (made once)."""
+        if self._codes is None:
+            names = ("sub", "scale", "inv", "neg", "zero")
+            self._codes = [(names.index(op), t, a, b) for op, t, a, b in self.ops]
+        return self._codes
 
 
 _PLANS: dict[tuple, _Plan] = {}
@@ -561,9 +572,25 @@ def clear_workspace() -> None:
     _WORK.__dict__.pop("buffers", None)
 
 
+def _broadcast_shape(shapes: list[tuple[int, ...]]) -> tuple[int, ...]:
+    """numpy's broadcast of array shapes (ValueError where they do not broadcast), without its
+    per-call cost on the few short shapes of a solve."""
+    out = [1] * max(len(sh) for sh in shapes)
+    for sh in shapes:
+        offset = len(out) - len(sh)
+        for i, d in enumerate(sh):
+            o = out[offset + i]
+            if d != o:
+                if o == 1:
+                    out[offset + i] = d
+                elif d != 1:
+                    raise ValueError(f"shapes {shapes} do not broadcast")
+    return tuple(out)
+
+
 def _workspace(slots: int, shape: tuple[int, ...], dtype: np.dtype) -> np.ndarray:
     """Arrays work[0..slots-1] of the given shape: a per-thread buffer reused between solves."""
-    size = slots * int(np.prod(shape, dtype=np.int64))
+    size = slots * math.prod(shape)
     nbytes = size * np.dtype(dtype).itemsize
     buffers = getattr(_WORK, "buffers", None)
     if buffers is None:
@@ -668,10 +695,30 @@ def _corners(
                 break
             more = np.unique(more % n)
             part = [v[:, more] for v in state]
-            _false_position(response.take(more), distance, part, 1, ref2[..., more])
+            _false_position(_columns(response, more, n, len(rows)), distance, part, 1, ref2[..., more])
             for whole, v in zip(state, part):
                 whole[:, more] = v
     return np.where(inside, np.power(10.0, state[7]), np.array(SWEEP)[rows, None])
+
+
+WHOLE_BATCH = 1024  # candidates up to which a corner's further steps solve the whole batch (see _columns)
+
+
+def _columns(response: "Response", cols: np.ndarray, n: int, rows: int) -> Callable[[np.ndarray], np.ndarray]:
+    """``response`` for the candidates at indices ``cols`` of its ``n`` alone, f of shape (rows,
+    cols.size). A batch of up to WHOLE_BATCH candidates is solved whole, the others at a
+    placeholder 1 kHz, and the wanted columns kept: there a smaller network (``response.take``)
+    costs more to set up than the columns it saves; the values are the same (every column's solve
+    is its own)."""
+    if n > WHOLE_BATCH:
+        return response.take(cols)
+    f_all = np.full((rows, n), 1.0e3)
+
+    def columns(f: np.ndarray) -> np.ndarray:
+        f_all[:, cols] = f
+        return response(f_all)[:, cols]
+
+    return columns
 
 
 def _estimate(x0: np.ndarray, x1: np.ndarray, d0: np.ndarray, d1: np.ndarray) -> np.ndarray:

@@ -493,3 +493,25 @@ def test_network_solve_reuses_its_plan_only_while_the_network_is_unchanged():
     assert v["b"] == pytest.approx([0.5, 0.5])
     # the network of the second candidate alone gives its voltages
     assert net.take(np.array([1]), 2).solve({"a": np.full(1, 1e-3)}, ["a"])["a"] == pytest.approx([4.5])
+
+
+@pytest.mark.parametrize("name", ["divider_ce_split", "ce_follower"])
+def test_corner_steps_on_the_whole_batch_match_the_steps_on_a_taken_network(name, monkeypatch):
+    # The corners' further steps solve a small batch whole and keep the wanted columns, a large one
+    # on a network of those candidates alone (Network.take): both ways give the same values (every
+    # column's solve is its own), so a design's corners do not depend on its batch's size. The
+    # capacitors span 0.1 nF..1 F (as the sizing's probes), where some corners need further steps.
+    topo = get_topology(name)
+    c = Conditions(supply=12.0, source_impedance=600.0, load_impedance=10e3)
+    rng = np.random.default_rng(7)
+    batch = {k: v * np.exp(rng.uniform(-0.7, 0.7, 48)) for k, v in DESIGNS[name].items()}
+    batch.update({cap: np.exp(rng.uniform(np.log(1e-10), 0.0, 48)) for cap in topo.capacitors})
+    whole = topo.evaluate(batch, DEVICE, c).metrics
+    monkeypatch.setattr(physics, "WHOLE_BATCH", 0)
+    taken_columns = []
+    take = physics.Response.take
+    monkeypatch.setattr(physics.Response, "take", lambda self, cols: taken_columns.append(cols) or take(self, cols))
+    taken = topo.evaluate(batch, DEVICE, c).metrics
+    assert taken_columns  # the further steps ran, on taken networks
+    for k in ("f_low", "f_high"):
+        np.testing.assert_allclose(taken[k], whole[k], rtol=1e-12)
