@@ -14,11 +14,20 @@ import numpy as np
 
 from optimizer.devices import AnyDevice
 from optimizer.physics import SWEEP, low_3db_corner
-from optimizer.topologies.base import CHUNK_FULL, Bias, Conditions, Topology, _source_resistance, frame_conditions
+from optimizer.topologies.base import (
+    CHUNK_FULL,
+    Bias,
+    Conditions,
+    Parts,
+    Topology,
+    _source_resistance,
+    frame_conditions,
+)
 
 _LARGE_CAPACITANCE = 1.0  # F: "a short" at audio frequencies for the corner probe
 _PROBE_VALUES = (1e-6, 1e-8, 1e-10, 1e-4)  # F, tried in turn for each capacitor's own corner
 _SCALE_GRID = np.geomspace(1.0, 16.0, 25)  # common factors m tried, ascending
+PROBE_BATCH = 1024  # variants up to which every probe left is solved in one call (a search's small groups)
 
 
 class _LowCorner:
@@ -26,8 +35,10 @@ class _LowCorner:
     ``evaluate(full=True).metrics["f_low"]`` of each variant, computed alone. The capacitors
     leave the bias alone (open at DC; a held c_in keeps its value in every variant), so it is
     solved once for the candidates; each variant takes its candidate's bias, then the mid-band
-    gain as the reference (closed form; a follower's depends on its capacitors) and the low
-    crossing of the nodal response (no swing, f_high, noise, supply rejection or ratings)."""
+    gain as the reference and the low crossing of the nodal response (no swing, f_high, noise,
+    supply rejection or ratings). The mid-band gain of a stage whose mid-band figures do not see
+    its capacitors (``Topology.core_is_bound``; a follower's see c_in and c_out at the band's
+    centre) is solved once for the candidates too, each variant taking its candidate's."""
 
     def __init__(
         self, topology: Topology, parts: dict[str, np.ndarray], device: AnyDevice, conditions: Conditions
@@ -36,20 +47,34 @@ class _LowCorner:
         p = topology.check_parts(parts, self.conditions)
         beta = topology._hfe_array(device, None, next(iter(p.values())).size)
         self.parts, self.bias, _ = topology._solve(p, device, self.conditions, beta)
+        self.gain: np.ndarray | None = None  # V/V, per candidate where the capacitors leave it alone
+        if topology.core_is_bound:
+            every = np.arange(beta.size)
+            self.gain = np.concatenate(
+                [self._chunk(every[i : i + CHUNK_FULL], {})[0] for i in range(0, beta.size, CHUNK_FULL)]
+            )
+
+    def _chunk(self, at: np.ndarray, caps: dict[str, np.ndarray]) -> tuple[np.ndarray, Parts, Bias, np.ndarray]:
+        """Mid-band gain (V/V, taken from :attr:`gain` where solved), parts, bias and source resistance
+        (ohm) of the candidates ``at`` with the capacitor values ``caps`` (F, one per variant)."""
+        t, c, b = self.topology, self.conditions, self.bias
+        p = {**{k: v[at] for k, v in self.parts.items()}, **caps}
+        chunk = Bias({k: v[at] for k, v in b.op.items()}, [{k: v[at] for k, v in ss.items()} for ss in b.small_signal])
+        r_source = _source_resistance(chunk, c)
+        if self.gain is not None:
+            return self.gain[at], p, chunk, r_source
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            return t._midband(p, c, chunk, r_source)["gain"], p, chunk, r_source
 
     def __call__(self, rows: np.ndarray, caps: dict[str, np.ndarray]) -> np.ndarray:
         """f_low (Hz) of the variants: candidate ``rows[k]`` with the capacitor values (F) ``caps[c][k]``."""
-        t, c, b = self.topology, self.conditions, self.bias
+        t, c = self.topology, self.conditions
         out = np.empty(rows.size)
         for i in range(0, rows.size, CHUNK_FULL):
-            at = rows[i : i + CHUNK_FULL]
-            p = {**{k: v[at] for k, v in self.parts.items()}, **{k: v[i : i + CHUNK_FULL] for k, v in caps.items()}}
-            chunk = Bias(
-                {k: v[at] for k, v in b.op.items()}, [{k: v[at] for k, v in ss.items()} for ss in b.small_signal]
+            gain, p, chunk, r_source = self._chunk(
+                rows[i : i + CHUNK_FULL], {k: v[i : i + CHUNK_FULL] for k, v in caps.items()}
             )
-            r_source = _source_resistance(chunk, c)
             with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-                gain = t._midband(p, c, chunk, r_source)["gain"]
                 net = t._network(p, c, chunk.small_signal, True, r_source, True)
                 out[i : i + CHUNK_FULL] = low_3db_corner(t._response(net, r_source), gain)
         return out
@@ -94,30 +119,42 @@ def size_capacitors(
 
     corner_constant = {c: np.full(size, np.nan) for c in caps}
     f_smallest = {c: np.full(size, np.inf) for c in caps}  # f_low with the smallest probe (Hz)
-    for value in _PROBE_VALUES:  # each capacitor's first probe whose corner lies inside the sweep
+    probes = list(_PROBE_VALUES)
+    while probes:  # each capacitor's first probe whose corner lies inside the sweep
         pending = {c: np.flatnonzero(np.isnan(k)) for c, k in corner_constant.items()}
         pending = {c: rows for c, rows in pending.items() if rows.size}
         if not pending:
             break
-        # one variant per pending (capacitor, candidate): that capacitor at the probe, the others large
+        # one variant per pending (probe, capacitor, candidate): that capacitor at the probe, the others
+        # large; a few variants take every probe left in one call, the values of the later probes then
+        # counting only where the earlier ones found no corner (the same values as a call per probe)
         rows = np.concatenate(list(pending.values()))
+        batch = probes if rows.size * len(probes) <= PROBE_BATCH else probes[:1]
+        probes = probes[len(batch) :]
         f_probe = f_low(
-            rows,
+            np.tile(rows, len(batch)),
             {
                 c: np.concatenate(
-                    [np.full(r.size, value if cap == c else _LARGE_CAPACITANCE) for cap, r in pending.items()]
+                    [
+                        np.full(r.size, value if cap == c else _LARGE_CAPACITANCE)
+                        for value in batch
+                        for cap, r in pending.items()
+                    ]
                 )
                 for c in caps
             },
         )
         start = 0
-        for cap, rows in pending.items():
-            f = f_probe[start : start + rows.size]
-            start += rows.size
-            if value == min(_PROBE_VALUES):
-                f_smallest[cap][rows] = f
-            inside = (f > 2.0 * SWEEP[0]) & (f < 0.5 * SWEEP[1])
-            corner_constant[cap][rows[inside]] = f[inside] * value
+        for value in batch:
+            for cap, rows in pending.items():
+                f = f_probe[start : start + rows.size]
+                start += rows.size
+                open_ = np.isnan(corner_constant[cap][rows])  # still without a corner at the earlier probes
+                f, rows = f[open_], rows[open_]
+                if value == min(_PROBE_VALUES):
+                    f_smallest[cap][rows] = f
+                inside = (f > 2.0 * SWEEP[0]) & (f < 0.5 * SWEEP[1])
+                corner_constant[cap][rows[inside]] = f[inside] * value
     # no corner inside the sweep at any probe: a capacitor that does not move the stage's low
     # corner (below the sweep even at the smallest probe) takes the smallest value, one whose
     # corner stays above it the largest

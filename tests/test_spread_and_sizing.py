@@ -12,7 +12,7 @@ from optimizer.sizing import _LowCorner, size_capacitors
 from optimizer.synthesis import HandRequirements, rounded_designs
 from optimizer.tolerance import monte_carlo_yield, worst_case
 from optimizer.topologies import get_topology
-from optimizer.topologies.base import Conditions
+from optimizer.topologies.base import Conditions, _source_resistance, frame_conditions
 
 DEVICE = check_npn("t-npn", vceo_max=45)
 # The common-practice 9 V stage: 75k/10k divider, Rc 10k, Re 1k unbypassed.
@@ -128,3 +128,43 @@ def test_hand_design_rounds_to_the_series(topology: str) -> None:
         for role, value in design.items():
             series = "E6" if role.startswith("c_") else "E24"
             assert eseries.nearest(series, value) == value
+
+
+def _one_design_per_topology() -> list:
+    """One ngspice check design of each topology the check sets cover (tests/spice_designs.py)."""
+    import spice_designs
+
+    sets = (
+        spice_designs.check_designs,
+        spice_designs.pair_designs,
+        spice_designs.jfet_check_designs,
+        spice_designs.follower_designs,
+    )
+    return list({d.topology: d for make in sets for d in make()}.values())
+
+
+@pytest.mark.parametrize("design", _one_design_per_topology(), ids=lambda d: d.topology)
+def test_the_sizing_solves_the_midband_gain_once_only_where_the_capacitors_leave_it_alone(design, monkeypatch) -> None:
+    # _LowCorner takes each candidate's mid-band gain from one solve for every capacitor variant
+    # where Topology.core_is_bound says the mid-band figures do not see the capacitors: there the
+    # gain is the same at any capacitor values, and the f_low of the variants is the plain path's
+    # (the gain solved per variant; to rounding: a network's mid-band solve runs on other batch sizes)
+    topology = get_topology(design.topology)
+    sized = [c for c in topology.capacitors if design.parts[c] > 0]
+    scales = np.array([0.01, 1.0, 100.0])
+    varied = {k: v * scales if k in sized else np.full(3, v) for k, v in design.parts.items()}
+    frame = frame_conditions(design.conditions, design.device)
+    p, b, _, _ = topology._checked_solve(varied, design.device, design.conditions, None)
+    with np.errstate(all="ignore"):
+        gain = topology._midband(p, frame, b, _source_resistance(b, frame))["gain"]
+    if topology.core_is_bound:
+        assert np.all(gain == gain[1])
+
+    def f_low() -> np.ndarray:
+        held = {k: v for k, v in design.parts.items() if k not in sized}
+        low = _LowCorner(topology, {**held, **{c: 1.0 for c in sized}}, design.device, design.conditions)
+        return low(np.zeros(3, dtype=int), {c: varied[c] for c in sized})
+
+    once = f_low()
+    monkeypatch.setattr(type(topology), "core_is_bound", False)
+    np.testing.assert_allclose(once, f_low(), rtol=1e-12)
