@@ -27,7 +27,7 @@ from optimizer.topologies.base import (
 _LARGE_CAPACITANCE = 1.0  # F: "a short" at audio frequencies for the corner probe
 _PROBE_VALUES = (1e-6, 1e-8, 1e-10, 1e-4)  # F, tried in turn for each capacitor's own corner
 _SCALE_GRID = np.geomspace(1.0, 16.0, 25)  # common factors m tried, ascending
-PROBE_BATCH = 1024  # variants up to which every probe left is solved in one call (a search's small groups)
+PROBE_BATCH = 1024  # variants up to which every probe left after the first is solved in one call
 
 
 class _LowCorner:
@@ -126,10 +126,12 @@ def size_capacitors(
         if not pending:
             break
         # one variant per pending (probe, capacitor, candidate): that capacitor at the probe, the others
-        # large; a few variants take every probe left in one call, the values of the later probes then
-        # counting only where the earlier ones found no corner (the same values as a call per probe)
+        # large. The first probe finds most corners; the few variants left then take every probe left
+        # in one call, the later probes' values counting only where the earlier ones found no corner
+        # (the same values as a call per probe)
         rows = np.concatenate(list(pending.values()))
-        batch = probes if rows.size * len(probes) <= PROBE_BATCH else probes[:1]
+        first = len(probes) == len(_PROBE_VALUES)
+        batch = probes[:1] if first or rows.size * len(probes) > PROBE_BATCH else probes
         probes = probes[len(batch) :]
         f_probe = f_low(
             np.tile(rows, len(batch)),
