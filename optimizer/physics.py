@@ -89,7 +89,7 @@ def solve_junction(
     c_ib, c_vbe, c_ic = vcb_ib * inv_vaf / beta, vcb_vbe * inv_vaf, vcb_ic * inv_vaf
 
     # Work arrays made once and written in place (out=): an iteration allocates nothing.
-    shape = np.broadcast_shapes(np.shape(v_start), *(np.shape(x) for x in (a, r_emit, r_ib, c0, c_ib, c_vbe, c_ic)))
+    shape = _broadcast_shape([np.shape(v_start), *(np.shape(x) for x in (a, r_emit, r_ib, c0, c_ib, c_vbe, c_ic))])
     v, e, den, early, g, t = (np.empty(shape, dtype=dtype) for _ in range(6))
     if v_start is None:
         # The residual is concave and falling in Vbe, so Newton from above never overshoots the root:
@@ -574,7 +574,7 @@ def clear_workspace() -> None:
 
 def _broadcast_shape(shapes: list[tuple[int, ...]]) -> tuple[int, ...]:
     """numpy's broadcast of array shapes (ValueError where they do not broadcast), without its
-    per-call cost on the few short shapes of a solve."""
+    per-call cost on the few short shapes of a nodal solve or a base-loop Newton solve."""
     out = [1] * max(len(sh) for sh in shapes)
     for sh in shapes:
         offset = len(out) - len(sh)
