@@ -130,8 +130,8 @@ def size_capacitors(
         # in one call, the later probes' values counting only where the earlier ones found no corner
         # (the same values as a call per probe)
         rows = np.concatenate(list(pending.values()))
-        first = len(probes) == len(_PROBE_VALUES)
-        batch = probes[:1] if first or rows.size * len(probes) > PROBE_BATCH else probes
+        first_probe = len(probes) == len(_PROBE_VALUES)
+        batch = probes[:1] if first_probe or rows.size * len(probes) > PROBE_BATCH else probes
         probes = probes[len(batch) :]
         f_probe = f_low(
             np.tile(rows, len(batch)),
