@@ -187,6 +187,10 @@ def _valid_record(line: bytes) -> dict | None:
     return None
 
 
+# json.dumps(record, separators=(",", ":")), the journal's encoding, without a new encoder made per record
+_encode = json.JSONEncoder(separators=(",", ":")).encode
+
+
 class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
     """Optuna's journal file, made to survive a crash and to write faster.
 
@@ -294,7 +298,7 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
             return handle.tell()
 
     def append_logs(self, logs: list[dict]) -> None:
-        lines = [json.dumps(log, separators=(",", ":")).encode("utf-8") + b"\n" for log in logs]
+        lines = [_encode(log).encode("utf-8") + b"\n" for log in logs]
         with self._batch_lock:
             if self._held is not None:  # read back as given, not parsed again: as Optuna's in-memory storage does
                 self._pending.extend(zip(lines, logs))
@@ -428,6 +432,7 @@ class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
     def __init__(self, backend: Any) -> None:
         self._journal = backend
         self._none_waiting: dict[int, int] = {}
+        self._distribution_json: dict[int, tuple[optuna.distributions.BaseDistribution, str]] = {}
         self._opening = True
         self.replayed = (
             False  # read on first use, not when opened: a status answered from the snapshot reads only its tail
@@ -445,6 +450,49 @@ class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
     def _waiting_made(self, study_id: int) -> int:
         self.get_study_directions(study_id)  # a read: the records other processes wrote meanwhile are read in
         return self._journal.waiting_made
+
+    def create_new_trial(self, study_id: int, template_trial: "optuna.trial.FrozenTrial | None" = None) -> int:
+        """As Optuna's, but a running trial made with its parameters (the search's planned
+        trials) has each distribution's JSON encoded once per storage, not once per trial
+        (Optuna encodes every distribution of every trial: a fifth of making one). The
+        record is the one Optuna writes, field for field."""
+        if (
+            template_trial is None
+            or template_trial.state != TrialState.RUNNING
+            or template_trial.values is not None
+            or template_trial.datetime_complete is not None
+        ):
+            return super().create_new_trial(study_id, template_trial)
+        start = template_trial.datetime_start
+        log: dict[str, Any] = {
+            "study_id": study_id,
+            "datetime_start": start.astimezone(timezone.utc).isoformat(timespec="microseconds") if start else None,
+            "state": template_trial.state,
+            "value": None,
+            "values": None,
+            "distributions": {k: self._json_of(d) for k, d in template_trial.distributions.items()},
+            "params": {
+                k: template_trial.distributions[k].to_internal_repr(v) for k, v in template_trial.params.items()
+            },
+            "user_attrs": template_trial.user_attrs,
+            "system_attrs": template_trial.system_attrs,
+            "intermediate_values": template_trial.intermediate_values,
+        }
+        with self._thread_lock:
+            self._write_log(_CREATE_TRIAL, log)
+            self._sync_with_backend()
+            return self._replay_result._last_created_trial_id_by_this_process
+
+    def _json_of(self, distribution: optuna.distributions.BaseDistribution) -> str:
+        """``distribution_to_json(distribution)``, kept per distribution object (the search
+        space's objects are made once per search)."""
+        kept = self._distribution_json.get(id(distribution))
+        if kept is None or kept[0] is not distribution:
+            kept = self._distribution_json[id(distribution)] = (
+                distribution,
+                optuna.distributions.distribution_to_json(distribution),
+            )
+        return kept[1]
 
 
 class _MemoryStorage(_WaitingIndex, optuna.storages.InMemoryStorage):
