@@ -42,13 +42,13 @@ from optimizer.storage import (
     batched_writes,
     claim_batch,
     quiet_optuna,
+    record_trial,
     recover_stale_trials,
     save_snapshot,
     study_id,
     study_storage,
     sync,
     tally,
-    tell,
     trial_count,
 )
 
@@ -288,9 +288,7 @@ def run_search(
                     raise
                 with batched_writes(storage):  # ... and one for their records and results
                     for t, (record, violation, objectives) in zip(trials, records):
-                        t.set_user_attr("record", record)
-                        t.set_constraint("violation", violation)
-                        tell(study, t, objectives)
+                        record_trial(study, t, {"record": record}, {"violation": violation}, objectives)
                         open_trials.remove(t)
                 told += len(trials)
             sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
