@@ -61,6 +61,7 @@ STEPS, STEP_P = (1, 2, 3, 4, 5, 6), (0.55, 0.25, 0.08, 0.05, 0.04, 0.03)
 # cumulative weights, summed as random.choices sums them on every draw: the same draws, summed once
 _MOVE_COUNT_CUM, _STEP_CUM = list(itertools.accumulate(MOVE_COUNT_P)), list(itertools.accumulate(STEP_P))
 SIGNS = (-1, 1)
+SAMPLE_POOL = 21  # random.sample picks from a pool (its draws as _sample makes them) for a population this short
 RETRIES = 12
 REFRESH_EVERY = 8  # trials between looks at the finished trials (a batch finishes together anyway)
 P_SCALE = 0.1  # share of moves that step every index together (gain and bias ratios kept, current scaled)
@@ -92,7 +93,7 @@ class NeighbourSampler(BaseSampler):
         self._directions = directions
         self._group_params = group_params
         self._plans: dict[int, dict[str, Any]] = {}
-        self._seen: set[tuple] = set()
+        self._seen: set[frozenset] = set()
         self._next_refresh = 0
         self._elite: list[FrozenTrial] = []
         self._front: list[FrozenTrial] = []
@@ -101,10 +102,11 @@ class NeighbourSampler(BaseSampler):
         self._queue: list[dict[str, Any]] = []
         self._low = 0  # every trial numbered below is finished and folded in (or not complete)
         self._counted: set[int] = set()  # completed trials numbered _low and up, folded in already
-        self._swept: set[tuple] = set()
+        self._swept: set[frozenset] = set()
         self._shapes: dict[tuple[str, ...], _Shape] = {}
         self._groups: dict[int, tuple[str, ...]] = {}  # a finished trial's group (parameter names), by trial id
         self._with: dict[tuple[str, Any], FrozenTrial | None] = {}  # _best_with, until the next refresh
+        self._mates: dict[tuple[str, ...], list[FrozenTrial]] = {}  # the elite of each group, until the next refresh
 
     # ---- Optuna's interface --------------------------------------------------------------
     def infer_relative_search_space(self, study: Study, trial: FrozenTrial) -> dict[str, BaseDistribution]:
@@ -136,18 +138,22 @@ class NeighbourSampler(BaseSampler):
         plan = self._plan(study, number)
         made = create_trial(state=TrialState.RUNNING)
         params, distributions = made.params, made.distributions
-        while True:
+        while True:  # each time the group's first parameter not given yet, until none is left
             group = self._group_params(params)
-            name = next((n for n in group if n not in params), None)
-            if name is None:
-                return made
-            d = distributions[name] = group[name]
-            if d.single():  # as Optuna's trial does: its one value, the sampler not asked
-                params[name] = d.low if isinstance(d, IntDistribution) else d.choices[0]
-            elif name in plan and _fits(d, plan[name]):
-                params[name] = plan[name]
+            for name, d in group.items():
+                if name in params:
+                    continue
+                distributions[name] = d
+                if d.single():  # as Optuna's trial does: its one value, the sampler not asked
+                    params[name] = d.low if isinstance(d, IntDistribution) else d.choices[0]
+                elif name in plan and _fits(d, plan[name]):
+                    params[name] = plan[name]
+                else:
+                    params[name] = self._random.sample_independent(study, made, name, d)
+                if self._group_params(params) is not group:  # the value chose another group
+                    break
             else:
-                params[name] = self._random.sample_independent(study, made, name, d)
+                return made
 
     def sample_independent(
         self, study: Study, trial: FrozenTrial, param_name: str, param_distribution: BaseDistribution
@@ -192,6 +198,7 @@ class NeighbourSampler(BaseSampler):
         for t in new:
             self._seen.add(self._key(t.params))
         self._with.clear()
+        self._mates.clear()
         self._elite = sorted(self._elite + new, key=self._rank_key)[:ELITE_SIZE]
         joined = [t for t in new if self._rank_key(t)[0] == 0]  # feasible designs new this refresh
         centres = self._elite[:1]
@@ -269,18 +276,36 @@ class NeighbourSampler(BaseSampler):
 
     def _parent(self) -> FrozenTrial:
         if self._front and self._py.random() < PARENT_FROM_FRONT:
-            return self._py.choices(self._front, cum_weights=self._crowding)[0]
+            return self._draw(self._front, self._crowding)
         # a tournament of two among the elite, biased to the better
-        i, j = self._py.randrange(len(self._elite)), self._py.randrange(len(self._elite))
+        i, j = self._below(len(self._elite)), self._below(len(self._elite))
         return self._elite[min(i, j)]
 
-    def _draw(self, population: tuple, cum_weights: list[float]) -> Any:
+    def _draw(self, population: "tuple | list", cum_weights: list[float]) -> Any:
         """``random.choices(population, cum_weights=cum_weights)[0]``: the same draw, without
         its checks of the weights on every call."""
         return population[bisect_right(cum_weights, self._py.random() * cum_weights[-1], 0, len(population) - 1)]
 
     def _step(self, reach: int) -> int:
-        return self._draw(STEPS, _STEP_CUM) * reach * self._py.choice(SIGNS)
+        return self._draw(STEPS, _STEP_CUM) * reach * SIGNS[self._below(2)]  # random.choice(SIGNS)'s draw
+
+    def _below(self, n: int) -> int:
+        """``random.randrange(n)`` (n > 0), the draw random.choice also makes: the same draw,
+        without its argument checks on every call (a proposal makes some fifty)."""
+        return self._py._randbelow(n)
+
+    def _sample(self, names: list[str], count: int) -> list[str]:
+        """``random.sample(names, count)`` for up to SAMPLE_POOL names: the same draws (the
+        standard library's pool selection for a short population), without its checks."""
+        n = len(names)
+        if n > SAMPLE_POOL or count > 5:  # (a larger count widens the standard library's pool rule)
+            return self._py.sample(names, count)
+        pool, out = list(names), []
+        for i in range(count):
+            j = self._py._randbelow(n - i)
+            out.append(pool[j])
+            pool[j] = pool[n - i - 1]
+        return out
 
     def _shape(self, space: dict[str, BaseDistribution]) -> "_Shape":
         """What a move needs of a group's parameters, worked out once per group (a group's
@@ -298,17 +323,19 @@ class NeighbourSampler(BaseSampler):
         if r < P_SWITCH:
             switchable = shape.switchable
             if switchable:
-                name = switchable[self._py.randrange(len(switchable))]
+                name = switchable[self._below(len(switchable))]
                 choices = [c for c in space[name].choices if c != params[name]]
-                params[name] = choices[self._py.randrange(len(choices))]
+                params[name] = choices[self._below(len(choices))]
                 same = self._best_with(name, params[name])
                 if same is not None:  # carry over the best design known with that choice
                     params = {**dict(same.params), name: params[name]}
                 return params
         elif r < P_SWITCH + P_CROSSOVER:
-            mates = [t for t in self._elite if self._group_of(t) == shape.names]
+            mates = self._mates.get(shape.names)
+            if mates is None:
+                mates = self._mates[shape.names] = [t for t in self._elite if self._group_of(t) == shape.names]
             if len(mates) > 1:
-                mate = mates[self._py.randrange(len(mates))]
+                mate = mates[self._below(len(mates))]
                 for name in space:
                     if self._py.random() < 0.5 and name in mate.params:
                         params[name] = mate.params[name]
@@ -324,7 +351,7 @@ class NeighbourSampler(BaseSampler):
         count = min(self._draw(MOVE_COUNTS, _MOVE_COUNT_CUM), len(steppable))
         coupled = count > 1 and self._py.random() < P_COUPLED
         step = self._step(reach)
-        for name in self._py.sample(steppable, count):
+        for name in self._sample(steppable, count):
             if not coupled:
                 step = self._step(reach)
             params[name] = min(max(params.get(name, low[name]) + step, low[name]), high[name])
@@ -350,8 +377,9 @@ class NeighbourSampler(BaseSampler):
         return self._groups[trial_id(trial)]
 
     @staticmethod
-    def _key(params: dict[str, Any]) -> tuple:
-        return tuple(sorted(params.items()))
+    def _key(params: dict[str, Any]) -> frozenset:
+        """A design's parameters, whatever their order (equal sets of name and value pairs)."""
+        return frozenset(params.items())
 
 
 @dataclass(frozen=True)

@@ -140,3 +140,23 @@ def test_a_draw_from_summed_weights_is_random_choices_draw() -> None:
     assert [sampler._draw(STEPS, _STEP_CUM) for _ in range(2000)] == [
         reference.choices(STEPS, STEP_P)[0] for _ in range(2000)
     ]
+
+
+def test_the_samplers_short_draws_are_the_standard_librarys_draws() -> None:
+    # randrange, choice and sample of the standard library's random.Random, same seed, against
+    # the sampler's _below, _step's sign and _sample (a short population: the pool rule; and
+    # a long one handed on), in one interleaved sequence
+    import random
+
+    from optimizer.sampler import SIGNS
+
+    sampler, reference = _sampler(), random.Random(11)
+    sampler._py = random.Random(11)
+    names = [f"r{k}" for k in range(30)]
+    ours, theirs = [], []
+    for k in range(3000):
+        n, population = 1 + k % 17, names[: 2 + k % 29]
+        count = 1 + k % min(6, len(population))
+        ours.append((sampler._below(n), SIGNS[sampler._below(2)], sampler._sample(population, count)))
+        theirs.append((reference.randrange(n), reference.choice(SIGNS), reference.sample(population, count)))
+    assert ours == theirs

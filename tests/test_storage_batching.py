@@ -123,3 +123,65 @@ def test_a_journal_written_by_plain_optuna_is_read_and_extended(tmp_path) -> Non
         trial = study.ask()
         study.tell(trial, float(trial.suggest_int("x", 0, 9)))
     assert len(optuna.load_study(study_name="old", storage=_plain_optuna(path)).get_trials()) == 4
+
+
+def test_a_trial_made_with_its_parameters_is_written_as_optuna_writes_it(tmp_path) -> None:
+    # our journal's create_new_trial (each distribution's JSON kept per distribution object)
+    # against Optuna's own JournalStorage writing the same template trial: the same record
+    from optuna.distributions import CategoricalDistribution, IntDistribution
+    from optuna.trial import create_trial
+
+    distributions = {"topology": CategoricalDistribution(["a", "b"]), "a.r_top": IntDistribution(-1, 40)}
+    made = []
+    for name, store in (
+        ("ours", open_storage(tmp_path / "ours.journal")),
+        ("optuna", _plain_optuna(tmp_path / "optuna.journal")),
+    ):
+        study = optuna.create_study(study_name="t", storage=store)
+        for values in ({"topology": "a", "a.r_top": 7}, {"topology": "b", "a.r_top": -1}):
+            template = create_trial(state=TrialState.RUNNING, params=values, distributions=distributions)
+            template.datetime_start = template.datetime_start.replace(microsecond=5)  # the same time in both
+            store.create_new_trial(storage_module.study_id(study), template_trial=template)
+        lines = [json.loads(line) for line in (tmp_path / f"{name}.journal").read_bytes().splitlines()]
+        made.append(
+            [{k: v for k, v in record.items() if k != "worker_id"} for record in lines if record["op_code"] == 4]
+        )
+        trials = optuna.load_study(study_name="t", storage=store).get_trials()
+        assert [(t.params, t.distributions, t.state) for t in trials] == [
+            ({"topology": "a", "a.r_top": 7}, distributions, TrialState.RUNNING),
+            ({"topology": "b", "a.r_top": -1}, distributions, TrialState.RUNNING),
+        ]
+    assert made[0] == made[1] and len(made[0]) == 2
+    assert list(made[0][0]) == list(made[1][0])  # field for field, in Optuna's order
+
+
+@pytest.mark.parametrize("batched", [True, False])
+def test_a_trial_recorded_in_one_step_reads_back_as_the_calls_one_by_one(tmp_path, batched) -> None:
+    # record_trial (attributes in one journal step) against set_user_attr, set_constraint and
+    # tell called one by one on Optuna's own journal storage, both read by Optuna's reader
+    import contextlib
+
+    from optimizer.storage import record_trial
+
+    seen = []
+    for name, store in (("ours", open_storage(tmp_path / "ours.journal")), ("optuna", _plain_optuna(tmp_path / "o.j"))):
+        study = optuna.create_study(study_name="r", storage=store, directions=["minimize", "maximize"])
+        with batched_writes(store) if batched else contextlib.nullcontext():
+            for k in range(3):
+                trial = study.ask()
+                trial.suggest_int("x", 0, 9)
+                if name == "ours":
+                    record_trial(study, trial, {"record": f'{{"k": {k}}}'}, {"violation": 0.5 * k}, [k, 2.0 * k])
+                else:
+                    trial.set_user_attr("record", f'{{"k": {k}}}')
+                    trial.set_constraint("violation", 0.5 * k)
+                    study.tell(trial, [k, 2.0 * k])
+        path = tmp_path / ("ours.journal" if name == "ours" else "o.j")
+        seen.append(_trials(_plain_optuna(path), "r"))
+        assert [json.loads(line)["op_code"] for line in path.read_bytes().splitlines()][-3:] == [8, 9, 6]
+    assert [t[:2] + t[3:] for t in seen[0]] == [t[:2] + t[3:] for t in seen[1]]  # parameters drawn apart
+    assert [t[1] for t in seen[0]] == [TrialState.COMPLETE] * 3
+    store = open_storage(tmp_path / "nan.journal")
+    study = optuna.create_study(study_name="n", storage=store)
+    with pytest.raises(ValueError, match="NaN"):
+        record_trial(study, study.ask(), {}, {"violation": float("nan")}, [1.0])

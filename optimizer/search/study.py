@@ -42,13 +42,13 @@ from optimizer.storage import (
     batched_writes,
     claim_batch,
     quiet_optuna,
+    record_trial,
     recover_stale_trials,
     save_snapshot,
     study_id,
     study_storage,
     sync,
     tally,
-    tell,
     trial_count,
 )
 
@@ -56,6 +56,48 @@ from optimizer.storage import (
 def _now() -> str:
     return datetime.now(timezone.utc).isoformat(timespec="seconds")
 
+
+class _Recorded:
+    """A stand-in for a finished trial that carries its record parsed (what rank_key reads)."""
+
+    def __init__(self, record: dict) -> None:
+        self.user_attrs = {"record": record}
+
+
+class RankMemo:
+    """``rank_key(trial)`` kept by the text of the trial's record: the sampler ranks every
+    finished trial and the snapshot's tally ranks them again, each parsing the record's JSON
+    (a third of the sampler's refresh); a search's repeated designs carry the same text. The
+    search remembers each record it makes as it makes it (:meth:`remember`), so its own
+    trials are ranked without parsing. Cleared when it holds LIMIT texts (a long-lived
+    process runs many searches)."""
+
+    LIMIT = 1 << 16
+
+    def __init__(self, key: Callable[[Any], tuple]) -> None:
+        self._key = key
+        self._by_text: dict[str, tuple] = {}
+
+    def __call__(self, trial: optuna.trial.FrozenTrial) -> tuple:
+        text = trial.user_attrs.get("record")
+        if not isinstance(text, str):
+            return self._key(trial)
+        found = self._by_text.get(text)
+        return found if found is not None else self._keep(text, self._key(trial))
+
+    def remember(self, text: str, record: dict) -> None:
+        """The rank of a trial whose record is ``record``, stored as ``text``."""
+        self._keep(text, self._key(_Recorded(record)))
+
+    def _keep(self, text: str, key: tuple) -> tuple:
+        if len(self._by_text) >= self.LIMIT:
+            self._by_text.clear()
+        self._by_text[text] = key
+        return key
+
+
+#: rank_key of the search's own trials (the sampler's, the tallies' and the snapshots' one key)
+ranked = RankMemo(rank_key)
 
 #: makes a search's sampler from its space and a seed offset (each runner of a shared search its own)
 SamplerFactory = Callable[[SearchSpace, int], optuna.samplers.BaseSampler]
@@ -65,7 +107,7 @@ def neighbour_sampler(space: SearchSpace, seed_offset: int = 0) -> optuna.sample
     """The search's own sampler: neighbour moves along the ordered indices from the best and
     the front designs."""
     return NeighbourSampler(
-        rank_key,
+        ranked,
         [d for _, d in space.spec.objective_directions],
         space.distributions,
         seed=space.spec.search.seed + seed_offset,
@@ -149,7 +191,7 @@ def same_design(a: optuna.trial.FrozenTrial, b: optuna.trial.FrozenTrial) -> boo
 def trial_tally(study: optuna.Study, *, best: bool = False) -> TrialTally:
     """Finished (failed ones do not count: they are retried), running and feasible trials,
     and with ``best`` the best so far (by rank_key), read incrementally (storage.tally)."""
-    return tally(study_storage(study), study_id(study), *((rank_key, same_design) if best else ()))
+    return tally(study_storage(study), study_id(study), *((ranked, same_design) if best else ()))
 
 
 def trial_counts(study: optuna.Study) -> tuple[int, int]:
@@ -236,10 +278,9 @@ def run_search(
                     designs = [space.design_of(p) if p else space.suggest(t) for t, p in zip(trials, given)]
                 try:
                     fresh = list(dict.fromkeys(d for d in designs if d not in known))
-                    known.update(
-                        (d, (json.dumps(r), r["total_violation"], r["objectives"]))
-                        for d, r in zip(fresh, evaluate_designs(space, fresh))
-                    )
+                    for d, r in zip(fresh, evaluate_designs(space, fresh)):
+                        known[d] = (json.dumps(r), r["total_violation"], r["objectives"])
+                        ranked.remember(known[d][0], r)
                     records = [known[d] for d in designs]
                 except Exception as error:
                     _fail_trials(study, open_trials)
@@ -247,13 +288,11 @@ def run_search(
                     raise
                 with batched_writes(storage):  # ... and one for their records and results
                     for t, (record, violation, objectives) in zip(trials, records):
-                        t.set_user_attr("record", record)
-                        t.set_constraint("violation", violation)
-                        tell(study, t, objectives)
+                        record_trial(study, t, {"record": record}, {"violation": violation}, objectives)
                         open_trials.remove(t)
                 told += len(trials)
             sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
-            save_snapshot(storage, rank_key, same_design, every=SNAPSHOT_EVERY)  # reopening reads a short tail
+            save_snapshot(storage, ranked, same_design, every=SNAPSHOT_EVERY)  # reopening reads a short tail
             batches += 1
     except KeyboardInterrupt:  # Ctrl-C: the batch in hand is failed, the search stays resumable
         _fail_trials(study, open_trials)
@@ -263,7 +302,7 @@ def run_search(
         sync(storage)  # everything this runner wrote is on disk
     if finish:
         _finish_when_done(study, space, budget)
-    save_snapshot(storage, rank_key, same_design)
+    save_snapshot(storage, ranked, same_design)
     return told
 
 
