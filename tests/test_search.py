@@ -168,6 +168,13 @@ def test_journal_storage_resume_extend_and_cancel(tmp_path) -> None:
     run_search(storage, sid2)
     assert search_status(storage, sid2)["trials_done"] == 0
     assert load_search(storage, sid, top=3).candidates[0]["rank"] == 1
+    # a limited read (the command line's: the stored shortlist alone, or the tail cut short) is
+    # the head of the plain one, whatever the limit falls on
+    every = load_search(storage, sid)
+    assert len(every.candidates) > 13
+    for limit in (1, 12, 13, len(every.candidates) + 5):
+        cut = load_search(storage, sid, limit=limit)
+        assert cut.candidates == every.candidates[:limit] and cut.front == every.front
 
 
 def test_unknown_search_and_bad_rank_are_input_errors(tmp_path) -> None:

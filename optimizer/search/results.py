@@ -180,25 +180,35 @@ def _status(search_id: str, attrs: dict, spec: Spec, counts: tuple[int, int, int
 
 
 def load_search(
-    storage: BaseStorage, search_id: str, *, top: int = SHORTLIST_SIZE, samples: int = SHORTLIST_SAMPLES
+    storage: BaseStorage,
+    search_id: str,
+    *,
+    top: int = SHORTLIST_SIZE,
+    samples: int = SHORTLIST_SAMPLES,
+    limit: int | None = None,
 ) -> SearchResult:
-    """The ranked candidates and front of a stored search (finished or not)."""
+    """The ranked candidates and front of a stored search (finished or not): at least ``top``
+    candidates assessed in full, and with ``limit`` at most that many candidates (None: every
+    ranked design). A finished search whose stored shortlist holds ``limit`` candidates is
+    answered from it alone: the trials' records are not read back, nor the tail re-ranked
+    (what the command line does after a search: it shows --top of them)."""
     study, spec = load_study(storage, search_id)
     space = SearchSpace.build(spec)
     ranking = study.user_attrs.get("ranking")
     if ranking and top <= len(ranking["candidates"]):
         summary = {k: ranking[k] for k in ("front", "infeasible") if k in ranking}
         summary["candidates"] = list(ranking["candidates"])
-        shortlisted = {c.get("trial") for c in summary["candidates"]}
-        tail = candidates_from_records(
-            space,
-            [r for r in fold_variants(space, rank_records(completed_records(study))) if r["trial"] not in shortlisted],
-        )
-        for rank, c in enumerate(tail, len(summary["candidates"]) + 1):
-            c["rank"] = rank
-        summary["candidates"] += tail
+        if limit is None or limit > len(summary["candidates"]):
+            shortlisted = {c.get("trial") for c in summary["candidates"]}
+            ranked = fold_variants(space, rank_records(completed_records(study)))
+            wanted = None if limit is None else limit - len(summary["candidates"])
+            tail = candidates_from_records(space, [r for r in ranked if r["trial"] not in shortlisted][:wanted])
+            for rank, c in enumerate(tail, len(summary["candidates"]) + 1):
+                c["rank"] = rank
+            summary["candidates"] += tail
     else:
         summary = summarise(space, study, top, samples)
+    summary["candidates"] = summary["candidates"][:limit]
     best = summary["candidates"][0] if summary["candidates"] else None
     finished, running = trial_counts(study)
     status = _status(search_id, study_attrs(study), spec, (finished, running, trial_tally(study).feasible), best)
