@@ -12,7 +12,8 @@ on what "meets the spec" means:
 - ``yield`` (default): every hard limit at nominal, and all of them together in at least
   ``limits.yield_min`` of the seeded Monte Carlo builds (tolerance.Builds). Inside the search
   the builds are judged on the fast core metrics; a ranked design's full assessment judges
-  them on every metric (band corners, noise and supply rejection included).
+  them on every limited metric (band corners included, noise and supply rejection where the
+  spec limits them).
 
 The robustness shortfall is a limit like the others (``yield``, or the corner values of
 each limit), so the search is led toward robust designs by the same summed violation.
@@ -133,6 +134,8 @@ def judge(
             seed=BUILDS_SEED if seed is None else seed,
             full=full,
             supply_range=supply_range,
+            # the builds' noise and supply-rejection passes only where the spec limits them
+            noise=any(getattr(spec.limits, name) is not None for name in scoring.FULL_MODEL_LIMITS),
         )
         violations["yield"] = np.maximum(0.0, spec.limits.yield_min - yield_fraction) / spec.limits.yield_min
     elif basis == "worst_case":

@@ -146,15 +146,17 @@ def _flat_result(
     conditions: Conditions,
     hfe: np.ndarray,
     full: bool,
+    noise: bool = True,
 ) -> dict[str, np.ndarray]:
     """Evaluate arrays of shape (candidates, samples) flattened; metrics, ratings, 'active' and
-    the operating point's 'ic' come back in the same 2-D shape."""
+    the operating point's 'ic' come back in the same 2-D shape (``full``, ``noise``: as
+    Topology.evaluate's)."""
     shape = hfe.shape
     flat = {role: np.broadcast_to(v, shape).reshape(-1) for role, v in parts.items()}
     h = hfe.reshape(-1)
     step = CHUNK_FULL if full else CHUNK_FAST
     if np.ndim(conditions.supply) == 0 or h.size <= step:
-        result = topology.evaluate(flat, device, conditions, hfe=h, full=full)
+        result = topology.evaluate(flat, device, conditions, hfe=h, full=full, noise=noise)
     else:  # a supply per candidate: the model's own chunks would not slice it, so chunked here
         pieces = [
             topology.evaluate(
@@ -163,6 +165,7 @@ def _flat_result(
                 replace(conditions, supply=np.asarray(conditions.supply)[i : i + step]),
                 hfe=h[i : i + step],
                 full=full,
+                noise=noise,
             )
             for i in range(0, h.size, step)
         ]
@@ -342,6 +345,7 @@ def monte_carlo_yield(
     seed: int = 0,
     full: bool = False,
     supply_range: SupplyRange | None = None,
+    noise: bool = True,
 ) -> np.ndarray:
     """Fraction of ``samples`` random builds (:class:`Builds`) of each candidate for which
     ``passes(sample, rows)`` holds (``sample``: metrics and ratings of shape (block rows,
@@ -349,7 +353,8 @@ def monte_carlo_yield(
     the transistors are active.
 
     ``full=False`` judges the builds on the fast core metrics (bias, gain, impedances, swing,
-    current, ratings); ``full=True`` adds the band corners, noise and supply rejection.
+    current, ratings); ``full=True`` adds the band corners, noise and supply rejection (the
+    corners alone with ``noise=False``: for a ``passes`` that judges neither).
     The builds of one temperature (the supply varies per build within it) are evaluated in
     blocks of candidate rows that fit one evaluation chunk, so the working set stays small
     whatever the count and a block is one model call.
@@ -381,6 +386,6 @@ def monte_carlo_yield(
                 supply=np.broadcast_to(builds.supply[None, idx], shape).reshape(-1),
                 below_ground=conditions.below_ground if below is None else below,
             )
-            sample = _flat_result(topology, drawn, device, at, np.ascontiguousarray(hfe), full)
+            sample = _flat_result(topology, drawn, device, at, np.ascontiguousarray(hfe), full, noise)
             passed[block] += np.count_nonzero(passes(sample, block) & sample["active"], axis=1)
     return passed / samples

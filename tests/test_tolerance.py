@@ -75,3 +75,43 @@ def test_stacked_corners_match_one_call_per_corner(parts: dict, conditions: Cond
     for metric in METRICS:
         np.testing.assert_allclose(stacked[metric][0], plain[metric][0], rtol=1e-12, err_msg=metric)
         np.testing.assert_allclose(stacked[metric][1], plain[metric][1], rtol=1e-12, err_msg=metric)
+
+
+@pytest.mark.parametrize("parts, conditions, supply_range", [SINGLE, SPLIT], ids=["single", "split"])
+def test_builds_without_the_noise_pass_keep_every_other_figure(
+    parts: dict, conditions: Conditions, supply_range
+) -> None:
+    """evaluate(noise=False), what a spec's Monte Carlo builds run on when it limits neither noise
+    nor supply rejection, against the plain full evaluation: the same corners, core metrics,
+    operating point and ratings; only the noise and PSRR figures left NaN. And the yield judged
+    on a limit those passes do not touch is the same with and without them."""
+    from optimizer.tolerance import monte_carlo_yield
+
+    topology = get_topology("divider_ce")
+    at = replace(conditions, supply=np.full(2, conditions.supply))
+    plain = topology.evaluate(parts, DEVICE, at, full=True)
+    lean = topology.evaluate(parts, DEVICE, at, full=True, noise=False)
+    skipped = {"noise_ein_v", "noise_figure_db", "psrr_db", "psrr_ripple_db", "psrr_mid_db"}
+    assert np.all(np.isfinite(plain.metrics["noise_ein_v"])) and np.all(np.isfinite(plain.metrics["psrr_db"]))
+    for key, value in plain.metrics.items():
+        if key in skipped:
+            assert np.all(np.isnan(lean.metrics[key])), key
+        else:
+            np.testing.assert_array_equal(lean.metrics[key], value, err_msg=key)
+    for got, want in ((lean.operating_point, plain.operating_point), (lean.ratings, plain.ratings)):
+        for key, value in want.items():
+            np.testing.assert_array_equal(got[key], value, err_msg=key)
+    tolerances = {"r_top": 0.05, "r_bottom": 0.01, "r_collector": 0.05, "r_emitter": 0.01, "c_in": 0.2, "c_out": 0.1}
+    low, _ = worst_case(topology, parts, DEVICE, conditions, tolerances, (0.0, 50.0), supply_range)["f_low"]
+
+    def passes(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:  # a band limit in between the corners
+        return sample["f_low"] < 1.05 * low[rows, None]
+
+    yields = [
+        monte_carlo_yield(
+            topology, parts, DEVICE, conditions, tolerances, (0.0, 50.0), passes, 400, 7, True, supply_range, noise
+        )
+        for noise in (True, False)
+    ]
+    assert np.all((yields[0] > 0) & (yields[0] < 1))  # the limit splits the builds: the comparison means something
+    np.testing.assert_array_equal(yields[0], yields[1])

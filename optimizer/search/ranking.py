@@ -246,15 +246,39 @@ def shortlist_candidates(space: SearchSpace, records: list[dict], samples: int) 
     """The full assessment (worst case, yield, ratings, cautions) of ranked designs, judged
     together (candidates.assess_many); each score is the record's times the yield of its
     builds (on the yield basis)."""
-    from optimizer.candidates import assess_many  # the single place a design is judged in full
+    full = FullAssessments(space, samples)
+    full.assess(records)
+    return [full.candidate(r) for r in records]
 
-    assessed = assess_many(
-        space.spec,
-        space.catalog,
-        [(r["topology"], dict(r["parts"]), r["device"]) for r in records],
-        samples=samples,
-    )
-    return [_shortlisted(record, full) for record, full in zip(records, assessed)]
+
+class FullAssessments:
+    """Full assessments (candidates.assess_many, ``samples`` builds) of designs by
+    :func:`design_key`: the designs asked for in one :meth:`assess` are judged together, each
+    design once however often it is asked for; :meth:`candidate` makes a record's shortlist
+    candidate from its design's assessment (the same as :func:`shortlist_candidates` of it)."""
+
+    def __init__(self, space: SearchSpace, samples: int) -> None:
+        self.space, self.samples = space, samples
+        self.done: dict[tuple, dict] = {}  # design_key -> assess_many's record (never changed here)
+
+    def assess(self, records: list[dict]) -> None:
+        """Assess the designs of ``records`` not assessed yet, in one assess_many call."""
+        from optimizer.candidates import assess_many  # the single place a design is judged in full
+
+        new = list({design_key(r): r for r in records if design_key(r) not in self.done}.items())
+        if new:
+            assessed = assess_many(
+                self.space.spec,
+                self.space.catalog,
+                [(r["topology"], dict(r["parts"]), r["device"]) for _, r in new],
+                samples=self.samples,
+            )
+            self.done.update((key, full) for (key, _), full in zip(new, assessed))
+
+    def candidate(self, record: dict) -> dict:
+        """The shortlist candidate of ``record``, whose design has been assessed."""
+        full = self.done[design_key(record)]
+        return _shortlisted(record, {**full, "metrics": dict(full["metrics"])})
 
 
 def _shortlisted(record: dict, full: dict) -> dict:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import math
 import time
 import uuid
 from datetime import datetime, timezone
@@ -22,6 +23,7 @@ from optimizer.search.ranking import (
     SHORTLIST_REACH,
     SHORTLIST_SAMPLES,
     SHORTLIST_SIZE,
+    FullAssessments,
     candidate_from_record,
     design_key,
     fold_variants,
@@ -29,7 +31,6 @@ from optimizer.search.ranking import (
     rank_key,
     rank_records,
     relax_one_limit,
-    shortlist_candidates,
     trial_record,
 )
 from optimizer.search.space import Design, SearchSpace
@@ -348,9 +349,17 @@ def finish_search(storage: BaseStorage, search_id: str, *, catalog: Catalog | No
 
 
 def completed_records(study: optuna.Study) -> list[dict]:
+    """The design record of every finished trial, with its trial number. A design the sampler
+    asked for again carries the very record text of its first trial: each distinct text is
+    decoded once (the records of one design share their inner dicts; none is changed here)."""
     out = []
+    decoded: dict[str, dict | None] = {}
     for t in study.get_trials(deepcopy=False, states=(TrialState.COMPLETE,)):
-        record = trial_record(t)
+        text = t.user_attrs.get("record")
+        if isinstance(text, str):
+            record = decoded.get(text) or decoded.setdefault(text, trial_record(t))
+        else:
+            record = trial_record(t)
         if record:
             out.append({**record, "trial": t.number})
     return out
@@ -369,16 +378,27 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     every one that meets it. The front holds only designs that meet the spec: a point assessed
     in full that misses there is left off it, and the designs it dominated are looked at again."""
     every = rank_records(completed_records(study))
-    ranked = fold_variants(space, every, keep={design_key(r) for r in front_records(space, every)})
+    points = front_records(space, every)
+    ranked = fold_variants(space, every, keep={design_key(r) for r in points})
     reach = ranked[: max(top, SHORTLIST_REACH)]
-    # in rank order until `top` of them meet the spec: the first `top` assessed together, and if
-    # fewer meet it, the rest of the reach in one more call (fewer, larger model calls), cut
-    # after the design that makes `top`: the same designs as one at a time
-    shortlist = shortlist_candidates(space, reach[:top], samples)
-    if sum(c["feasible"] for c in shortlist) < top:
-        shortlist += shortlist_candidates(space, reach[top:], samples)
-        meeting = np.cumsum([c["feasible"] for c in shortlist])
-        shortlist = shortlist[: int(np.searchsorted(meeting, top)) + 1]
+    full = FullAssessments(space, samples)
+    # the first `top` and the front's yield points in one call; if fewer than `top` meet the spec,
+    # the next designs of the reach, as many as the rate met so far says will make `top`, and if
+    # still fewer, the rest of the reach (each call costs some 50 ms besides its designs' ~15 ms);
+    # cut after the design that makes `top`: the same designs as one at a time
+    full.assess(reach[:top] + [r for k, r in enumerate(points) if k in _yield_points(points)])
+    shortlist = [full.candidate(r) for r in reach[:top]]
+    meeting = sum(c["feasible"] for c in shortlist)
+    while meeting < top and len(shortlist) < len(reach):
+        rate_says = len(shortlist) == top  # the first more: the rate's estimate; then the rest
+        step = math.ceil((top - meeting) * len(shortlist) / max(meeting, 1)) if rate_says else len(reach)
+        more = reach[len(shortlist) : len(shortlist) + step]
+        full.assess(more)
+        for r in more:
+            shortlist.append(full.candidate(r))
+            meeting += shortlist[-1]["feasible"]
+            if meeting == top:
+                break
     assessed = {design_key(r): dict(c) for r, c in zip(reach, shortlist)}  # copied before ranks are set
     shortlist.sort(key=lambda c: (not c["feasible"], -c["score"] if c["feasible"] else c["total_violation"]))
     candidates = shortlist + [candidate_from_record(space, r) for r in ranked[len(shortlist) :] if tail]
@@ -387,11 +407,13 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     # the front of every feasible design (none of them folded away above); a point assessed in full that
     # misses the spec there leaves it, and the designs it hid are looked at again (FRONT_ROUNDS at most)
     missed: set = set()
-    for _ in range(FRONT_ROUNDS):
-        points = front_records(space, [r for r in every if design_key(r) not in missed])
-        with_yield = set(np.linspace(0, len(points) - 1, min(len(points), FRONT_YIELD_POINTS)).round().astype(int))
+    for round_ in range(FRONT_ROUNDS):
+        if round_:
+            points = front_records(space, [r for r in every if design_key(r) not in missed])
+        with_yield = _yield_points(points)
         to_assess = [r for k, r in enumerate(points) if k in with_yield and design_key(r) not in assessed]
-        assessed.update((design_key(r), c) for r, c in zip(to_assess, shortlist_candidates(space, to_assess, samples)))
+        full.assess(to_assess)
+        assessed.update((design_key(r), full.candidate(r)) for r in to_assess)
         now_missed = {design_key(r) for k, r in enumerate(points) if k in with_yield}
         now_missed = {key for key in now_missed if not assessed[key]["feasible"]}
         if not now_missed:
@@ -407,6 +429,11 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     if not any(c["feasible"] for c in shortlist):
         summary["infeasible"] = relax_one_limit(space.spec, every)
     return summary
+
+
+def _yield_points(points: list[dict]) -> set[int]:
+    """Positions of the front points (in objective order) that carry a yield figure: FRONT_YIELD_POINTS evenly spread."""
+    return set(np.linspace(0, len(points) - 1, min(len(points), FRONT_YIELD_POINTS)).round().astype(int))
 
 
 def _finish(study: optuna.Study, space: SearchSpace) -> None:

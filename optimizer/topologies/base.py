@@ -382,11 +382,14 @@ class Topology(ABC):
         *,
         full: bool = True,
         thd_solve: bool = False,
+        noise: bool = True,
     ) -> StageResult:
         """Metrics, operating point and ratings.
 
         full=False: the fast core; f_low, f_high and the noise figures are NaN. full=True adds
-        the corners and noise from the nodal network. thd is the small-signal second-harmonic
+        the corners and noise from the nodal network (with noise=False the corners alone: the
+        noise and supply-rejection figures stay NaN, for builds judged on a spec that limits
+        neither). thd is the small-signal second-harmonic
         estimate unless thd_solve=True, which takes it from the quasi-static solve over one
         period (for the report of a chosen design; about as costly as the rest of full).
 
@@ -663,6 +666,7 @@ class StageModel(Topology):
         *,
         full: bool = True,
         thd_solve: bool = False,
+        noise: bool = True,
     ) -> StageResult:
         conditions = frame_conditions(conditions, device)
         p = self.check_parts(parts, conditions)
@@ -670,11 +674,17 @@ class StageModel(Topology):
         h = self._hfe_array(device, hfe, n)
         step = CHUNK_FULL if full else CHUNK_FAST
         if n <= step:
-            return self._evaluate(p, device, conditions, h, full, thd_solve)
+            return self._evaluate(p, device, conditions, h, full, thd_solve, noise)
         out: StageResult | None = None
         for i in range(0, n, step):
             r = self._evaluate(
-                {k: v[i : i + step] for k, v in p.items()}, device, conditions, h[i : i + step], full, thd_solve
+                {k: v[i : i + step] for k, v in p.items()},
+                device,
+                conditions,
+                h[i : i + step],
+                full,
+                thd_solve,
+                noise,
             )
             if out is None:
                 out = StageResult(
@@ -693,7 +703,14 @@ class StageModel(Topology):
         return out
 
     def _evaluate(
-        self, parts: Parts, device: AnyDevice, conditions: Conditions, hfe: np.ndarray, full: bool, thd_solve: bool
+        self,
+        parts: Parts,
+        device: AnyDevice,
+        conditions: Conditions,
+        hfe: np.ndarray,
+        full: bool,
+        thd_solve: bool,
+        noise: bool = True,
     ) -> StageResult:
         """:meth:`evaluate` of one chunk of checked ``parts`` in the frame's ``conditions``."""
         p, b, nvt = self._solve(parts, device, conditions, hfe)
@@ -739,7 +756,7 @@ class StageModel(Topology):
             )
             m.update(self._loop_metrics(p, conditions, b, r_source))
             if full:
-                m.update(self._full_metrics(p, conditions, b, r_source, gain))
+                m.update(self._full_metrics(p, conditions, b, r_source, gain, noise))
             if thd_solve:
                 m["thd"] = self._thd_static(p, device, conditions, b, nvt, b.beta, gain)
             ratings = self._ratings(p, conditions, b)
@@ -760,13 +777,15 @@ class StageModel(Topology):
         return {"loop_gain": nan, "phase_margin_deg": nan}
 
     def _full_metrics(
-        self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray, gain: np.ndarray
+        self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray, gain: np.ndarray, noise: bool = True
     ) -> dict[str, np.ndarray]:
         # Element values stay 1-D over candidates and frequencies run along a leading axis, so
         # every array of the nodal solve is (frequencies, candidates) with the candidates
         # contiguous: numpy's inner loops then run over thousands of values, not a few frequencies.
         net = self._network(p, c, b.small_signal, True, r_source, True)
         f_low, f_high = physics.minus_3db_corners(self._response(net, r_source), gain, self.corner_steps)
+        if not noise:  # the corners alone (evaluate's noise=False)
+            return {"f_low": f_low, "f_high": f_high}
         ein, nf = physics.noise_integrals(net, "out", "in", r_source, c.band)
         return {
             "f_low": f_low,
