@@ -535,9 +535,9 @@ def candidates(search_id: str) -> Response:
 
 def candidates_csv(records: list[dict]) -> str:
     """Ranked candidates as CSV: part labels and SI metrics as columns."""
-    from optimizer.search import candidates_frame
+    from optimizer.search import candidates_csv as as_csv
 
-    return candidates_frame(records, labels=True).to_csv(index=False, lineterminator="\n")
+    return as_csv(records, labels=True)
 
 
 def _csv_response(text: str, filename: str) -> Response:

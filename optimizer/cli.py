@@ -408,7 +408,7 @@ def _checked_spec(args: argparse.Namespace):
 def _cmd_search(args: argparse.Namespace) -> int:
     import numpy as np
 
-    from optimizer.search import candidates_frame
+    from optimizer.search import candidates_csv
     from optimizer.spec import spec_digest
 
     columns = _columns(args.columns)
@@ -439,7 +439,7 @@ def _cmd_search(args: argparse.Namespace) -> int:
             print(f"# rank 1 basis: {(best.get('basis') or {}).get('label') or 'basis not stated'}")
             for caution in best.get("cautions", []):
                 print(f"# caution: {caution}")
-        print(candidates_frame(shown, labels=True).to_csv(index=False), end="")
+        print(candidates_csv(shown), end="")
     else:
         markdown = args.format == "markdown"
         status = result.status

@@ -11,6 +11,8 @@ from optimizer.errors import InputError
 from optimizer.search import (
     SearchSpace,
     cancel_search,
+    candidates_csv,
+    candidates_frame,
     create_search,
     evaluate_designs,
     extend_search,
@@ -99,6 +101,18 @@ def test_a_seeded_search_is_reproducible_and_ranked() -> None:
     assert a.status["trials_done"] == 256 and a.status["status"] == "done"
     frame = a.dataframe()
     assert list(frame["rank"][:3]) == [1, 2, 3] and "supply_current" in frame
+    # the CSV written without pandas is the text pandas writes of the same table (reference:
+    # pandas' DataFrame.to_csv), for the ranked candidates (a not-active design's metrics are
+    # None) and for rows with gaps, whole numbers, flags and text mixed in a column
+    odd = [
+        {"rank": 1, "feasible": True, "metrics": {"a": 1, "b": 2.5, "c": None, "d": True}},
+        {"rank": 2, "feasible": None, "metrics": {"a": None, "b": 3, "e": 4, "d": 1}, "binding": 'x, "y"'},
+        {"rank": 3, "metrics": {"a": float("nan"), "b": 1e-07, "e": 5, "d": None}},
+    ]
+    for rows in (a.candidates, a.candidates[:1], odd, []):
+        for labels in (True, False):
+            want = candidates_frame(rows, labels=labels).to_csv(index=False, lineterminator="\n")
+            assert candidates_csv(rows, labels=labels) == want
 
 
 def test_the_front_is_the_brute_force_front_of_every_feasible_trial() -> None:

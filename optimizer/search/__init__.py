@@ -21,6 +21,7 @@ from optimizer.search.ranking import fold_variants, rank_key, rank_records, rela
 from optimizer.search.results import (
     SearchResult,
     cancel_search,
+    candidates_csv,
     candidates_frame,
     delete_search,
     extend_search,
@@ -63,6 +64,7 @@ __all__ = [
     "rank_records",
     "pareto_mask",
     "trial_record",
+    "candidates_csv",
     "candidates_frame",
     "INTERRUPTED",
     "spec_search_id",
