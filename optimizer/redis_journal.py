@@ -11,6 +11,9 @@ machine) per record was most of a shared search's time. Here:
 - a list of records is appended by one server-side script (numbered atomically: concurrent
   writers never interleave inside a list), which in the same round trip returns the records
   from this process's read position on, so a write and the read after it cost one round trip;
+- a read (after an append, or alone) returns the new records as one text, a JSON array's body,
+  parsed by one ``json.loads``; the records this process handed over already (a batch's, below)
+  are left out by the server, not sent back and parsed again;
 - inside a batch (:meth:`open_batch` ... :meth:`close_batch`, ``storage.batched_writes``) the
   records that only change a trial this process created (its parameters, attributes,
   intermediate values and its final state) are handed to this process's reader at once and
@@ -50,37 +53,69 @@ CLAIM_POLL_MAX = 0.02  # s between tries at most (each try is a round trip: poll
 # a trial's parameter, state and values, intermediate value, user and system attribute.
 _SET_TRIAL_PARAM, _SET_TRIAL_STATE_VALUES, _SET_TRIAL_ATTRS = 5, 6, (7, 8, 9)
 _RUNNING, _WAITING = 0, 4  # trial states that are not final (Optuna's TrialState)
-# number the records ARGV[4].. one by one after the counter, then return the first number
-# and the records from ARGV[2] on (at most ARGV[3] of them), all in one step
-_APPEND = """
+# The records numbered ``from`` on (at most ``count``, up to the first one numbered but not
+# written yet), but those in the skip ranges [a, b) (this process's own, handed over already),
+# as one JSON array's body: the records joined by commas. Returns {next, text, more}: the number
+# after the last record read, the text, and 0 (read to the end), 1 (``count`` read: more may
+# follow) or 2 (stopped at a record not written yet). One bulk reply, parsed by one json.loads:
+# a reply of one value per record cost redis-py's parser and json.loads a call per record, most
+# of what reading another worker's trials cost.
+_READ_ON = """
+local function read_on(prefix, from, count, skips)
+    local last = tonumber(redis.call('get', prefix .. ':log_number'))
+    if last == nil then return {from, '', 0} end
+    local more = 0
+    if last > from + count - 1 then last, more = from + count - 1, 1 end
+    if last < from then return {from, '', 0} end
+    local keys = {}
+    for n = from, last do keys[#keys + 1] = prefix .. ':log:' .. n end
+    local kept, n = {}, from
+    for _, value in ipairs(redis.call('mget', unpack(keys))) do
+        if not value then return {n, table.concat(kept, ','), 2} end
+        local skip = false
+        for _, range in ipairs(skips) do
+            if n >= range[1] and n < range[2] then skip = true end
+        end
+        if not skip then kept[#kept + 1] = value end
+        n = n + 1
+    end
+    return {n, table.concat(kept, ','), more}
+end
+local function skips_at(first)  -- ARGV[4]: the count of skip ranges, then their bounds from ARGV[5] on
+    local skips = {}
+    for i = 0, tonumber(ARGV[4]) - 1 do
+        skips[#skips + 1] = {tonumber(ARGV[first + 2 * i]), tonumber(ARGV[first + 2 * i + 1])}
+    end
+    return skips
+end
+"""
+# ARGV: prefix, from, count, k, k skip ranges (a, b), the number of deferred records d, the records:
+# number the records one by one after the counter, then return the first number and what
+# read_on returns (the d deferred records, at the head of the records, skipped), all in one step
+_APPEND = (
+    _READ_ON
+    + """
 local counter = ARGV[1] .. ':log_number'
 if redis.call('exists', counter) == 0 then redis.call('set', counter, -1) end
 local first = tonumber(redis.call('get', counter)) + 1
-for i = 4, #ARGV do
+local k = tonumber(ARGV[4])
+for i = 6 + 2 * k, #ARGV do
     local n = redis.call('incr', counter)
     redis.call('set', ARGV[1] .. ':log:' .. n, ARGV[i])
 end
-local out = {first}
-local from = tonumber(ARGV[2])
-local last = math.min(tonumber(redis.call('get', counter)), from + tonumber(ARGV[3]) - 1)
-if last >= from then
-    local keys = {}
-    for n = from, last do keys[#keys + 1] = ARGV[1] .. ':log:' .. n end
-    for _, value in ipairs(redis.call('mget', unpack(keys))) do out[#out + 1] = value end
-end
-return out
+local skips = skips_at(5)
+skips[#skips + 1] = {first, first + tonumber(ARGV[5 + 2 * k])}
+local out = read_on(ARGV[1], tonumber(ARGV[2]), tonumber(ARGV[3]), skips)
+return {first, out[1], out[2], out[3]}
 """
-# the records numbered ARGV[2] .. at most ARGV[3] of them, in one round trip
-_READ = """
-local last = tonumber(redis.call('get', ARGV[1] .. ':log_number'))
-if last == nil then return {} end
-local first = tonumber(ARGV[2])
-last = math.min(last, first + tonumber(ARGV[3]) - 1)
-if last < first then return {} end
-local keys = {}
-for n = first, last do keys[#keys + 1] = ARGV[1] .. ':log:' .. n end
-return redis.call('mget', unpack(keys))
+)
+# ARGV: prefix, from, count, k, k skip ranges (a, b): what read_on returns, in one round trip
+_READ = (
+    _READ_ON
+    + """
+return read_on(ARGV[1], tonumber(ARGV[2]), tonumber(ARGV[3]), skips_at(5))
 """
+)
 
 
 def deferrable(record: dict[str, Any]) -> bool:
@@ -143,40 +178,41 @@ class RedisJournal(BaseJournalBackend):
         records from the read position on (under ``_lock``)."""
         deferred, self._pending = self._pending, []
         try:
-            values = self._append(args=[self.prefix, self._next, READ_CHUNK, *deferred, *texts])
+            first, *read = self._append(args=[*self._read_args(), len(deferred), *deferred, *texts])
         except Exception:  # the server away: the deferred records, handed over already, go with the next append
             self._pending = deferred + self._pending
             raise
         self.round_trips += 1
-        first = int(values[0])
         if deferred:  # handed over already: skipped when read back
-            self._skip.append((first, first + len(deferred)))
-        self._read_on(values[1:])  # to the end: a record this sent (a new trial's) is read back at once
+            self._skip.append((int(first), int(first) + len(deferred)))
+        self._read_on(read)  # to the end: a record this sent (a new trial's) is read back at once
 
-    def _read_on(self, values: list[bytes | None]) -> None:
-        """Queue ``values`` (read from ``_next``) and whatever the server holds after them."""
+    def _read_args(self) -> list[Any]:
+        """The read scripts' arguments: prefix, read position, chunk, the skip ranges."""
+        return [self.prefix, self._next, READ_CHUNK, len(self._skip), *(n for r in self._skip for n in r)]
+
+    def _read_on(self, read: list[Any]) -> None:
+        """Queue the records of ``read`` (a read script's answer from ``_next`` on) and
+        whatever the server holds after them."""
         while True:
-            complete = self._take(values)
-            if complete and len(values) < READ_CHUNK:
+            more = self._take(*read)
+            if not more:
                 return
-            if not complete:
+            if more == 2:  # numbered by a writer not done yet (Optuna's own writer, which sets after its incr)
                 time.sleep(0.05)
-            values = self._read(args=[self.prefix, self._next, READ_CHUNK])
+            read = self._read(args=self._read_args())
             self.round_trips += 1
 
-    def _take(self, values: list[bytes | None]) -> bool:
-        """Queue the server's records ``values`` (numbered from ``_next``) for the reader, but
-        those handed over already; False if one is numbered but not written yet."""
-        for value in values:
-            if value is None:  # numbered by a writer not done yet (Optuna's own writer, which sets after its incr)
-                return False
-            number = self._next
-            self._next += 1
-            while self._skip and self._skip[0][1] <= number:
-                self._skip.pop(0)
-            if not (self._skip and self._skip[0][0] <= number):
-                self._ready.append(json.loads(value))
-        return True
+    def _take(self, after: int, text: bytes, more: int) -> int:
+        """Queue the records in ``text`` (the server's records from ``_next`` to ``after``, but
+        those in the skip ranges, joined by commas) for the reader; returns the script's
+        ``more``."""
+        if text:
+            self._ready.extend(json.loads(b"[" + text + b"]"))
+        self._next = int(after)
+        while self._skip and self._skip[0][1] <= self._next:
+            self._skip.pop(0)
+        return int(more)
 
     def read_logs(self, log_number_from: int) -> Iterator[dict[str, Any]]:
         with self._lock:
@@ -185,7 +221,7 @@ class RedisJournal(BaseJournalBackend):
                 self._ready.clear()
                 self._skip.clear()
             if not self._depth:  # in a batch, nothing is read from the server
-                self._read_on(self._read(args=[self.prefix, self._next, READ_CHUNK]))
+                self._read_on(self._read(args=self._read_args()))
                 self.round_trips += 1
         while True:
             with self._lock:

@@ -72,6 +72,53 @@ def test_records_read_back_by_optuna_s_own_backend_and_the_other_way(redis_url):
     assert list(RedisJournal(_db(redis_url, 1), prefix="empty").read_logs(0)) == []
 
 
+def test_deferred_records_beyond_one_read_chunk_are_skipped_and_the_rest_read_in_server_order(redis_url):
+    """A batch that defers more records than one read returns: the records it handed over
+    already are skipped across both reads, another writer's record numbered before them is
+    read, and a fresh reader (Optuna's own JournalRedisBackend, the reference) sees every
+    record once, in the server's order."""
+    from optimizer.redis_journal import READ_CHUNK, RedisJournal
+
+    url = _db(redis_url, 9)
+    ours, theirs = RedisJournal(url, prefix="c"), RedisJournal(url, prefix="c")
+    mine = [{"op_code": 8, "worker_id": "w", "trial_id": 0, "user_attr": {"k": i}} for i in range(READ_CHUNK + 10)]
+    other = [{"op_code": 8, "worker_id": "x", "trial_id": 1, "user_attr": {"k": -1}}]
+    ours.open_batch()
+    ours.append_logs(mine)
+    assert list(ours.read_logs(0)) == mine  # handed over at once, nothing read from the server
+    theirs.append_logs(other)  # numbered 0 on the server, before the batch's records
+    ours.close_batch()
+    assert list(ours.read_logs(len(mine))) == other  # read once, the batch's records not again
+    later = [{"op_code": 9, "worker_id": "x", "trial_id": 1, "system_attr": {"s": 'é,"]'}}]
+    theirs.append_logs(later)
+    assert list(ours.read_logs(len(mine) + 1)) == later
+    expected = other + mine + later
+    assert list(optuna.storages.journal.JournalRedisBackend(url, prefix="c").read_logs(0)) == expected
+    assert list(theirs.read_logs(0)) == expected
+
+
+def test_a_record_numbered_but_not_written_yet_is_waited_for(redis_url):
+    """Optuna's own writer numbers a record (INCR) before it writes it (SET): a read that
+    reaches the number first waits for the record rather than skipping it."""
+    import threading
+
+    from optimizer.redis_journal import RedisJournal
+
+    url = _db(redis_url, 10)
+    ours = RedisJournal(url, prefix="g")
+    ours.append_logs([{"op_code": 0, "worker_id": "w", "n": 0}])
+    assert ours.client.incr("g:log_number") == 1  # numbered, its value not set yet
+    writer = threading.Timer(0.2, lambda: ours.client.set("g:log:1", '{"op_code":1,"worker_id":"x","n":1}'))
+    writer.start()
+    try:
+        assert list(RedisJournal(url, prefix="g").read_logs(0)) == [
+            {"op_code": 0, "worker_id": "w", "n": 0},
+            {"op_code": 1, "worker_id": "x", "n": 1},
+        ]
+    finally:
+        writer.join()
+
+
 def test_a_search_on_redis_ranks_as_the_same_search_in_memory(redis_url):
     spec = parse_spec(SPEC)
     ranked = {}
