@@ -185,3 +185,42 @@ def test_a_trial_recorded_in_one_step_reads_back_as_the_calls_one_by_one(tmp_pat
     study = optuna.create_study(study_name="n", storage=store)
     with pytest.raises(ValueError, match="NaN"):
         record_trial(study, study.ask(), {}, {"violation": float("nan")}, [1.0])
+
+
+def test_replaying_a_read_in_place_gives_the_trials_optuna_s_own_replay_gives(tmp_path) -> None:
+    """Another writer's trials arrive with their attributes and results in one read, and the
+    replay applies those to a trial it created in the same read in place (no copy per
+    record). Reference outside the project: Optuna's own replay of the same records, one copy
+    per record. Every trial is the same (ids, numbers, states, values, times, parameters,
+    distributions, attributes) whether the records come in one read, one by one, or in reads
+    of a few; a record on a trial finished already (another writer's, late) changes nothing."""
+    from optuna.storages.journal._storage import JournalStorageReplayResult
+
+    path = tmp_path / "r.journal"
+    store = open_storage(path)
+    search_id = create_search(with_search(load_spec(SPEC), trials=96, seed=2), store)  # seeds: enqueued, popped
+    run_search(store, search_id, finish=False)
+    study = optuna.load_study(study_name=search_id, storage=store)
+    running, failed = study.ask(), study.ask()
+    running.set_user_attr("record", "{}")
+    study.tell(failed, state=TrialState.FAIL)
+    with open(path, "a") as handle:  # late records of another writer on a finished trial
+        for late in (
+            {"op_code": 8, "trial_id": 0, "user_attr": {"record": "late"}},
+            {"op_code": 6, "trial_id": 0, "state": 2, "values": None, "datetime_complete": "2026-01-01T00:00:00"},
+        ):
+            handle.write(json.dumps({**late, "worker_id": "elsewhere"}) + "\n")
+    lines = path.read_bytes().splitlines()
+
+    def replayed(kind: type, size: int) -> list[optuna.trial.FrozenTrial]:
+        replay = kind("reader-")
+        records = [json.loads(line) for line in lines]
+        for start in range(0, len(records), size):
+            replay.apply_logs(iter(records[start : start + size]))
+        return [replay._trials[t] for t in sorted(replay._trials)]
+
+    expected = replayed(JournalStorageReplayResult, len(lines))
+    assert len(expected) == 98 and expected[0].user_attrs["record"] != "late"
+    assert {t.state for t in expected} == {TrialState.COMPLETE, TrialState.RUNNING, TrialState.FAIL}
+    for size in (len(lines), 1, 3, 7):
+        assert replayed(storage_module._SharedDistributions, size) == expected

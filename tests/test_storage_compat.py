@@ -102,7 +102,15 @@ def test_the_journal_replay_names_the_snapshot_and_memory_savings_use_exist(tmp_
         JournalOperation.SET_TRIAL_USER_ATTR,
         JournalOperation.SET_TRIAL_SYSTEM_ATTR,
     }
-    assert callable(JournalStorageReplayResult._apply_set_trial_param)
+    for name in (
+        "_apply_create_trial",
+        "_apply_set_trial_param",
+        "_apply_set_trial_state_values",
+        "_apply_set_trial_user_attr",
+        "_apply_set_trial_system_attr",
+        "_trial_exists_and_updatable",
+    ):
+        assert callable(getattr(JournalStorageReplayResult, name)), name
     journal = storage.open_storage(tmp_path / "c.journal")
     study = optuna.create_study(storage=journal)
     study.ask({"x": optuna.distributions.IntDistribution(0, 9)})
