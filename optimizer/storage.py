@@ -1381,7 +1381,24 @@ def _log_failed(study: optuna.Study, failed: int) -> None:
 
 
 def _running(storage: BaseStorage, study: optuna.Study) -> list[optuna.trial.FrozenTrial]:
-    return storage.get_all_trials(study_id(study), deepcopy=False, states=(optuna.trial.TrialState.RUNNING,))
+    """The study's running trials. A journal or memory reads only the trials from the first
+    one not finished at the last look on (:func:`trials_from`; a finished trial never runs
+    again), so the look before every batch does not grow with the search; any other storage
+    answers from its own query."""
+    sid = study_id(study)
+    if not isinstance(storage, (optuna.storages.journal.JournalStorage, _MemoryStorage)):
+        return storage.get_all_trials(sid, deepcopy=False, states=(optuna.trial.TrialState.RUNNING,))
+    with _lock:
+        lows = _running_lows.setdefault(storage, {})
+    low = lows.get(sid, 0)
+    trials = trials_from(storage, sid, low)
+    settled = next((k for k, t in enumerate(trials) if not t.state.is_finished()), len(trials))
+    lows[sid] = max(lows.get(sid, 0), low + settled)  # threads may race: a lower mark is only slower
+    return [t for t in trials[settled:] if t.state == optuna.trial.TrialState.RUNNING]
+
+
+# per storage and study id: every trial numbered below is finished (the look for running trials starts there)
+_running_lows: "weakref.WeakKeyDictionary[BaseStorage, dict[int, int]]" = weakref.WeakKeyDictionary()
 
 
 def _fail_unbeaten(study: optuna.Study, rdb: optuna.storages.RDBStorage) -> None:

@@ -129,3 +129,35 @@ def test_tally_and_status_match_a_recomputation_after_every_batch(store) -> None
         if done >= 320 - running:
             break
     assert checked >= 5
+
+
+def test_running_trials_match_a_recomputation_as_trials_finish_out_of_order(store) -> None:
+    """The look for running trials before every batch (storage._running, which reads from the
+    first trial not finished at its last look) against every trial's state read afresh, while
+    trials are asked, enqueued, popped, told and failed in any order."""
+    from optimizer.storage import _running
+
+    study = optuna.create_study(storage=store, directions=["minimize"])
+
+    def check() -> None:
+        expected = [t.number for t in study.get_trials(deepcopy=False) if t.state == TrialState.RUNNING]
+        assert [t.number for t in _running(store, study)] == expected
+
+    check()
+    asked = [study.ask() for _ in range(5)]
+    check()
+    study.enqueue_trial({"x": 1})  # waiting: not running, and not finished either
+    study.tell(asked[0], 1.0)
+    study.tell(asked[3], 1.0)
+    check()
+    study.tell(asked[1], state=TrialState.FAIL)
+    check()
+    popped = study.ask()  # the waiting trial, now running
+    asked += [popped, study.ask()]
+    check()
+    for t in (asked[2], asked[4], popped):
+        study.tell(t, 2.0)
+        check()
+    study.tell(asked[-1], 3.0)
+    check()
+    assert _running(store, study) == []
