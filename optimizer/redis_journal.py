@@ -39,6 +39,7 @@ from __future__ import annotations
 import json
 import threading
 import time
+import uuid
 from collections import deque
 from contextlib import contextmanager
 from typing import Any, Callable, Iterator
@@ -47,8 +48,7 @@ from optuna.storages.journal import BaseJournalBackend
 
 READ_CHUNK = 1000  # records fetched by one MGET
 CLAIM_TTL = 60  # s a claim is held at most (a killed holder's claim lapses then)
-CLAIM_POLL = 0.002  # s before the first try again of a claim another runner holds (redis-py's 0.1 s idles a worker)
-CLAIM_POLL_MAX = 0.02  # s between tries at most (each try is a round trip: polling every 2 ms cost CPU)
+CLAIM_WAIT = 0.5  # s a runner waits for a held claim's release before trying again anyway
 # The journal's record codes (its format: Optuna's JournalOperation) for the records a batch defers:
 # a trial's parameter, state and values, intermediate value, user and system attribute.
 _SET_TRIAL_PARAM, _SET_TRIAL_STATE_VALUES, _SET_TRIAL_ATTRS = 5, 6, (7, 8, 9)
@@ -117,6 +117,15 @@ return read_on(ARGV[1], tonumber(ARGV[2]), tonumber(ARGV[3]), skips_at(5))
 """
 )
 
+# a claim let go: deleted if it still holds this runner's token, and one token (at most) put in
+# its wake-up list for a runner waiting on it (the list expires with the claim's lifetime)
+_RELEASE = """
+if redis.call('get', KEYS[1]) == ARGV[1] then redis.call('del', KEYS[1]) end
+redis.call('lpush', KEYS[2], 1)
+redis.call('ltrim', KEYS[2], 0, 0)
+redis.call('expire', KEYS[2], ARGV[2])
+"""
+
 
 def deferrable(record: dict[str, Any]) -> bool:
     """Whether a batch may send ``record`` later: it changes one existing trial and does not
@@ -144,6 +153,7 @@ class RedisJournal(BaseJournalBackend):
         self.client = redis.Redis.from_url(url)
         self._append = self.client.register_script(_APPEND)
         self._read = self.client.register_script(_READ)
+        self._release = self.client.register_script(_RELEASE)
         self._creates_waiting = creates_waiting_trial
         self._lock = threading.Lock()  # the state below (threads of this process share the backend)
         self._next = 0  # the first record number on the server not read yet
@@ -273,23 +283,21 @@ class RedisJournal(BaseJournalBackend):
 
 @contextmanager
 def redis_claim(journal: RedisJournal, name: str) -> Iterator[None]:
-    """Hold the lock ``<prefix>:claim:<name>`` on the journal's server (waits for it, trying
-    again after CLAIM_POLL seconds, doubled after each miss up to CLAIM_POLL_MAX: a short first
-    wait, since claims are short, and few tries, each a round trip, while a long one lasts)."""
-    from redis.exceptions import LockError
-
-    lock = journal.client.lock(f"{journal.prefix}:claim:{name}", timeout=CLAIM_TTL)
-    wait = CLAIM_POLL
-    while not lock.acquire(blocking=False):
-        time.sleep(wait)
-        wait = min(2 * wait, CLAIM_POLL_MAX)
+    """Hold the lock ``<prefix>:claim:<name>`` on the journal's server (a key set if absent,
+    with an expiry: a killed holder's claim lapses after CLAIM_TTL seconds). A runner that
+    finds it held blocks on the list ``<prefix>:claim:<name>:free`` (BLPOP), into which the
+    holder puts a token when it lets go, so the waiter tries again at once, in one round trip
+    per wait: polling (a try every few milliseconds, each a round trip) woke up to 20 ms
+    late, and two workers take the claim in turn every batch. A wait lasts CLAIM_WAIT at most
+    before another try (a holder that died puts no token)."""
+    key, token = f"{journal.prefix}:claim:{name}", uuid.uuid4().hex
+    client = journal.client
+    while not client.set(key, token, nx=True, ex=CLAIM_TTL):
+        client.blpop([f"{key}:free"], timeout=CLAIM_WAIT)
     try:
         yield
-    finally:
-        try:
-            lock.release()
-        except LockError:  # lapsed after CLAIM_TTL (the holder stalled): another runner may hold it now
-            pass
+    finally:  # let go only if still this runner's (it lapses after CLAIM_TTL if the holder stalled), and wake a waiter
+        journal._release(keys=[key, f"{key}:free"], args=[token, CLAIM_TTL])
 
 
 class RunnerLiveness:

@@ -144,6 +144,38 @@ def test_the_claim_excludes_a_second_holder_until_released(redis_url):
     rival.release()
 
 
+def test_a_waiting_claim_is_taken_when_released_and_a_dead_holder_s_claim_lapses(redis_url):
+    """A runner waiting on a held claim (blocked on its wake-up list) takes it once the holder
+    lets go, never before; the wake-up list keeps one token at most; a claim whose holder died
+    (no token put) is taken once it expires."""
+    import threading
+
+    from optimizer.redis_journal import RedisJournal, redis_claim
+
+    one, other = RedisJournal(_db(redis_url, 11)), RedisJournal(_db(redis_url, 11))
+    order: list[str] = []
+
+    def wait() -> None:
+        with redis_claim(other, "s2"):
+            order.append("other")
+
+    with redis_claim(one, "s2"):
+        waiter = threading.Thread(target=wait)
+        waiter.start()
+        waiter.join(0.3)  # a chance to block on the held claim
+        order.append("one")
+    waiter.join()
+    assert order == ["one", "other"]
+    for _ in range(3):
+        with redis_claim(one, "s2"):
+            pass
+    assert one.client.llen(":claim:s2:free") == 1
+    one.client.set(":claim:s3", "a runner that died", px=300)
+    with redis_claim(other, "s3"):
+        assert other.client.get(":claim:s3") != b"a runner that died"
+    assert other.client.get(":claim:s3") is None
+
+
 def test_two_worker_processes_finish_exactly_the_budget(redis_url, tmp_path):
     url = _db(redis_url, 4)
     spec = parse_spec({**SPEC, "search": {**SPEC["search"], "trials": 128, "batch_size": 8}})
