@@ -23,6 +23,13 @@ worker's trials and CPU time per trial (its log), the ranking step apart, and a 
 worker log for a traceback. PostgreSQL: STAGEFIT_TEST_POSTGRES (a role that may create
 databases) or a throwaway cluster; Redis: a throwaway redis-server (Debian's package). Run it
 niced on a shared machine; the load average is recorded beside every figure.
+
+Where a second worker's CPU goes: ``BENCH_PROFILE=DIR`` runs every worker under cProfile with
+the CPU clock (``time.process_time``: waiting for the claim or for a core costs nothing) and
+writes ``DIR/<engine>-w<workers>-<i>.prof``; compare one worker of the 2-worker run with the
+1-worker run, per trial told (each log's "stopping" line gives its trials), e.g.
+``python -c "import pstats; pstats.Stats('DIR/redis-w2-0.prof').sort_stats('cumulative').print_stats(40)"``.
+The profiler itself costs several times a trial's CPU: compare shares and calls per trial, not ms.
 """
 
 from __future__ import annotations
@@ -56,6 +63,18 @@ RESULTS = {
 }
 SPEC = ROOT / "benchmarks" / "specs" / "bs_e96_divider_buffer.yaml"
 STAGEFIT = [sys.executable, "-m", "optimizer.cli"]
+# the CLI under cProfile with the CPU clock, the profile written to the first argument (BENCH_PROFILE)
+PROFILED = (
+    "import cProfile, runpy, sys, time\n"
+    "out = sys.argv.pop(1)\n"
+    "profile = cProfile.Profile(time.process_time)\n"
+    "profile.enable()\n"
+    "try:\n"
+    "    runpy.run_module('optimizer.cli', run_name='__main__')\n"
+    "finally:\n"
+    "    profile.disable()\n"
+    "    profile.dump_stats(out)\n"
+)
 TRIALS = {"quick": 512, "full": 512}  # one runner
 # the workers' search: long enough that ranking it and the workers' start are a small part
 WORKER_TRIALS = {"quick": 8192, "full": 16384}
@@ -157,11 +176,15 @@ def workers(url: str, trials: int, count: int, logdir: Path, tag: str) -> dict:
     procs = []
     load = os.getloadavg()[0]
     start = time.perf_counter()
+    profiles = os.environ.get("BENCH_PROFILE")
     try:
         for log in logs:
+            command = (
+                [sys.executable, "-c", PROFILED, str(Path(profiles) / f"{log.stem}.prof")] if profiles else STAGEFIT
+            )
             procs.append(
                 subprocess.Popen(
-                    [*STAGEFIT, "worker", "--storage", url, "--once", "--poll", "0.2"],
+                    [*command, "worker", "--storage", url, "--once", "--poll", "0.2"],
                     cwd=ROOT,
                     stdout=log.open("w"),
                     stderr=subprocess.STDOUT,
@@ -202,6 +225,8 @@ def main() -> int:
     facts = RunFacts.start()
     trials, repeats, worker_trials = TRIALS[mode], REPEATS[mode], WORKER_TRIALS[mode]
     logdir = Path(tempfile.mkdtemp(prefix="bench-workers-"))
+    if os.environ.get("BENCH_PROFILE"):
+        Path(os.environ["BENCH_PROFILE"]).mkdir(parents=True, exist_ok=True)
     cluster = redis_server = proxy = None
     admin = os.environ.get("STAGEFIT_TEST_POSTGRES")
     try:
