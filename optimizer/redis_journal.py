@@ -48,7 +48,8 @@ from optuna.storages.journal import BaseJournalBackend
 
 READ_CHUNK = 1000  # records fetched by one MGET
 CLAIM_TTL = 60  # s a claim is held at most (a killed holder's claim lapses then)
-CLAIM_WAIT = 0.5  # s a runner waits for a held claim's release before trying again anyway
+# s a runner waits for a held claim's release before it tries again anyway (whole: Redis 5 takes no fraction)
+CLAIM_WAIT = 1
 # The journal's record codes (its format: Optuna's JournalOperation) for the records a batch defers:
 # a trial's parameter, state and values, intermediate value, user and system attribute.
 _SET_TRIAL_PARAM, _SET_TRIAL_STATE_VALUES, _SET_TRIAL_ATTRS = 5, 6, (7, 8, 9)
