@@ -1,9 +1,12 @@
 """The search loop's own shortcuts against the plain path they stand for: the rank kept by a
-record's text against ranking.rank_key parsing the record."""
+record's text against ranking.rank_key parsing the record; the garbage collector's threshold
+raised while a search runs and given back after."""
 
 from __future__ import annotations
 
+import gc
 import json
+import threading
 from pathlib import Path
 
 import optuna
@@ -36,3 +39,35 @@ def test_the_rank_memo_ranks_every_trial_as_rank_key(limit: int, monkeypatch: py
     assert study_module.RankMemo(rank_key)(optuna.trial.create_trial(value=1.0)) == rank_key(
         optuna.trial.create_trial(value=1.0)
     )  # a trial without a record
+
+
+def test_the_collector_passes_less_often_while_searches_run_and_its_threshold_comes_back() -> None:
+    before = gc.get_threshold()
+    seen = []
+
+    def sampler(space, seed_offset):  # made inside run_search
+        seen.append(gc.get_threshold())
+        return study_module.neighbour_sampler(space, seed_offset)
+
+    store = open_storage(None)
+    search_id = create_search(with_search(load_spec(SPEC), trials=40, seed=0), store)
+    run_search(store, search_id, finish=False, sampler=sampler)
+    assert seen == [(max(before[0], study_module.LOOP_GC_THRESHOLD), *before[1:])]
+    assert gc.get_threshold() == before
+    # searches overlapping in threads: raised while any runs, the first one's value back after the last
+    entered, leave = threading.Barrier(3), threading.Event()
+
+    def search() -> None:
+        with study_module.fewer_collections():
+            entered.wait()
+            leave.wait()
+
+    threads = [threading.Thread(target=search) for _ in range(2)]
+    for th in threads:
+        th.start()
+    entered.wait()
+    assert gc.get_threshold()[0] == max(before[0], study_module.LOOP_GC_THRESHOLD)
+    leave.set()
+    for th in threads:
+        th.join()
+    assert gc.get_threshold() == before
