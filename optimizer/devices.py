@@ -151,16 +151,20 @@ class Device:
 
 
 def thermal_voltage(temp_c: float | np.ndarray) -> float | np.ndarray:
-    """kT/q in V at a temperature in degrees Celsius."""
-    return BOLTZMANN * (np.asarray(temp_c, dtype=float) + KELVIN_OFFSET) / ELEMENTARY_CHARGE
+    """kT/q in V at a temperature in degrees Celsius: a float for a scalar temperature, an array
+    of its shape for an array (a temperature per element: the Monte Carlo builds)."""
+    vt = BOLTZMANN * (np.asarray(temp_c, dtype=float) + KELVIN_OFFSET) / ELEMENTARY_CHARGE
+    return float(vt) if vt.ndim == 0 else vt
 
 
 def saturation_current(IS: float, temp_c: float | np.ndarray) -> float | np.ndarray:
-    """SPICE IS(T) in A: IS*(T/Tnom)^XTI*exp(EG/VT(T)*(T/Tnom-1)), XTI=3, EG=1.11 eV, Tnom=27 C."""
+    """SPICE IS(T) in A: IS*(T/Tnom)^XTI*exp(EG/VT(T)*(T/Tnom-1)), XTI=3, EG=1.11 eV, Tnom=27 C;
+    a float for a scalar temperature, an array of its shape for an array."""
     t = np.asarray(temp_c, dtype=float) + KELVIN_OFFSET
     t_nom = SPICE_TNOM_C + KELVIN_OFFSET
     ratio = t / t_nom
-    return IS * np.exp((ratio - 1.0) * SPICE_EG / thermal_voltage(temp_c) + SPICE_XTI * np.log(ratio))
+    i_s = IS * np.exp((ratio - 1.0) * SPICE_EG / thermal_voltage(temp_c) + SPICE_XTI * np.log(ratio))
+    return float(i_s) if i_s.ndim == 0 else i_s
 
 
 def hfe_temperature_factor(temp_c: float | np.ndarray, ref_c: float = SPICE_TNOM_C) -> float | np.ndarray:

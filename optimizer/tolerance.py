@@ -122,21 +122,14 @@ class Builds:
         transistor, the IDSS/VP position for a JFET: ``device.spread_draw``)."""
         return device.spread_draw(self.hfe_position, self.temperature)
 
-    def groups(self) -> list[tuple[float, float | None, np.ndarray]]:
-        """(temperature, below_ground, build indices) for each temperature and ground's place that
-        occur (None: the conditions' own; the span varies within a group: the models take it per
-        candidate)."""
+    def groups(self) -> list[tuple[float | None, np.ndarray]]:
+        """(below_ground, build indices) for each ground's place that occurs (None: the
+        conditions' own, every build). The ground's place changes the network's structure, so
+        it is a model call's own; the temperature and the span vary within a group (the models
+        take them per element)."""
         if self.below_ground is None:
-            return [(float(t), None, np.flatnonzero(self.temperature == t)) for t in np.unique(self.temperature)]
-        keys = np.stack([self.temperature, self.below_ground])
-        return [
-            (float(t), float(g), np.flatnonzero((self.temperature == t) & (self.below_ground == g)))
-            for t, g in np.unique(keys, axis=1).T
-        ]
-
-
-def _at(conditions: Conditions, temperature: float, supply: float, below_ground: float) -> Conditions:
-    return replace(conditions, temperature=float(temperature), supply=float(supply), below_ground=below_ground)
+            return [(None, np.arange(self.samples))]
+        return [(float(g), np.flatnonzero(self.below_ground == g)) for g in np.unique(self.below_ground)]
 
 
 def _flat_result(
@@ -150,19 +143,21 @@ def _flat_result(
 ) -> dict[str, np.ndarray]:
     """Evaluate arrays of shape (candidates, samples) flattened; metrics, ratings, 'active' and
     the operating point's 'ic' come back in the same 2-D shape (``full``, ``noise``: as
-    Topology.evaluate's)."""
+    Topology.evaluate's). The conditions' supply and temperature are scalars or flattened
+    arrays of the same size."""
     shape = hfe.shape
     flat = {role: np.broadcast_to(v, shape).reshape(-1) for role, v in parts.items()}
     h = hfe.reshape(-1)
     step = CHUNK_FULL if full else CHUNK_FAST
-    if np.ndim(conditions.supply) == 0 or h.size <= step:
+    per_element = [name for name in ("supply", "temperature") if np.ndim(getattr(conditions, name))]
+    if not per_element or h.size <= step:
         result = topology.evaluate(flat, device, conditions, hfe=h, full=full, noise=noise)
-    else:  # a supply per candidate: the model's own chunks would not slice it, so chunked here
+    else:  # a supply or temperature per element: the model's own chunks would not slice it, so chunked here
         pieces = [
             topology.evaluate(
                 {k: v[i : i + step] for k, v in flat.items()},
                 device,
-                replace(conditions, supply=np.asarray(conditions.supply)[i : i + step]),
+                replace(conditions, **{name: getattr(conditions, name)[i : i + step] for name in per_element}),
                 hfe=h[i : i + step],
                 full=full,
                 noise=noise,
@@ -197,22 +192,24 @@ def _corner_conditions(
     conditions: Conditions,
     temperature_range: tuple[float, float],
     supply_range: SupplyRange | None,
-) -> list[tuple[Conditions, np.ndarray, np.ndarray]]:
+) -> list[tuple[Conditions, np.ndarray, np.ndarray, np.ndarray]]:
     """The corners of temperature, supply and the device's spread (both ends of each; a split
-    supply's rails each at both ends) as one entry per temperature and ground's place: the
-    conditions there and, per (supply, device edge) pair, the supply span (V) and the device's
-    spread value. The models take the supply and the spread per candidate, the temperature and
-    the ground's place per call."""
+    supply's rails each at both ends) as one entry per ground's place: the conditions there and,
+    per (temperature, supply, device edge) corner, the temperature (degC), the supply span (V)
+    and the device's spread value. The models take the temperature, the supply and the spread
+    per element, the ground's place per call (it changes the network's structure)."""
+    by_ground: dict[float, list[float]] = {}
+    for span, below, _ in supply_points(supply_range, conditions):
+        by_ground.setdefault(below, []).append(span)
     out = []
-    for temperature in temperature_range:
-        edges = device.spread_edges(float(temperature))
-        by_ground: dict[float, list[float]] = {}
-        for supply, below, _ in supply_points(supply_range, conditions):
-            by_ground.setdefault(below, []).append(supply)
-        for below, supplies in by_ground.items():
-            at = _at(conditions, temperature, supplies[0], below)
-            pairs = list(itertools.product(supplies, edges))
-            out.append((at, np.array([s for s, _ in pairs]), np.array([e for _, e in pairs], dtype=float)))
+    for below, supplies in by_ground.items():
+        corners = [
+            (float(t), s, e)
+            for t in temperature_range
+            for s, e in itertools.product(supplies, device.spread_edges(float(t)))
+        ]
+        temperature, supply, edge = (np.array(column, dtype=float) for column in zip(*corners))
+        out.append((replace(conditions, below_ground=below), temperature, supply, edge))
     return out
 
 
@@ -244,13 +241,17 @@ def worst_case(
     lows: dict[str, np.ndarray] = {}
     highs: dict[str, np.ndarray] = {}
     active_all = np.ones(n, dtype=bool)
-    for at, supply, hfe_edges in _corner_conditions(device, conditions, temperature_range, supply_range):
-        # every corner of one temperature and ground's place in one model call: the parts' corners
-        # repeated for each (supply, device edge) pair, the supply and the device's spread per column
+    for at, temperature, supply, hfe_edges in _corner_conditions(device, conditions, temperature_range, supply_range):
+        # every corner of one ground's place in one model call: the parts' corners repeated for
+        # each (temperature, supply, device edge) corner, those three per column
         pairs = len(hfe_edges)
         stacked = {role: np.tile(v, (1, pairs)) for role, v in corner_parts.items()}
         hfe = np.broadcast_to(np.repeat(hfe_edges, signs.shape[0])[None, :], (n, pairs * signs.shape[0]))
-        at = replace(at, supply=np.broadcast_to(np.repeat(supply, signs.shape[0])[None, :], hfe.shape).reshape(-1))
+        at = replace(
+            at,
+            supply=np.broadcast_to(np.repeat(supply, signs.shape[0])[None, :], hfe.shape).reshape(-1),
+            temperature=np.broadcast_to(np.repeat(temperature, signs.shape[0])[None, :], hfe.shape).reshape(-1),
+        )
         values = _flat_result(topology, stacked, device, at, np.ascontiguousarray(hfe), full)
         active_all &= np.all(values["active"], axis=1)
         for key, value in values.items():
@@ -290,16 +291,16 @@ def bias_spread(
     both ends: 16), each with the resistors at the
     tolerance edge that raises Ic and at the one that lowers it (the sign of dIc/dR at
     nominal, one probe per resistor): the classical sensitivity-directed worst case, exact
-    where Ic is monotone in each resistor. 8 + 16 operating points per candidate."""
+    where Ic is monotone in each resistor. 8 + 16 operating points per candidate, in two model
+    calls per ground's place (the nominal and the probes in one, then every corner)."""
     p = {role: np.asarray(v, dtype=float).reshape(-1) for role, v in parts.items()}
     n = next(iter(p.values())).size
     resistors = [r for r in topology.resistors if r in p]
-    nominal = topology.operating_point(p, device, conditions)["ic"]
-    probes = {
-        r: {**p, r: p[r] * (1.0 + np.maximum(np.asarray(tolerances.get(r, 0.0), dtype=float), 1e-3))} for r in resistors
-    }
-    stacked = {role: np.concatenate([probes[r][role] for r in resistors]) for role in p}
-    raised = topology.operating_point(stacked, device, conditions)["ic"].reshape(len(resistors), n)
+    probes = [p] + [
+        {**p, r: p[r] * (1.0 + np.maximum(np.asarray(tolerances.get(r, 0.0), dtype=float), 1e-3))} for r in resistors
+    ]
+    stacked = {role: np.concatenate([probe[role] for probe in probes]) for role in p}
+    nominal, *raised = topology.operating_point(stacked, device, conditions)["ic"].reshape(len(probes), n)
     direction = {r: np.sign(np.nan_to_num(raised[k] - nominal)) for k, r in enumerate(resistors)}
     up = {
         role: v * (1.0 + direction[role] * np.asarray(tolerances.get(role, 0.0))) if role in direction else v
@@ -313,13 +314,13 @@ def bias_spread(
     ic_low = np.full(n, np.inf)
     ic_high = np.full(n, -np.inf)
     v_low, v_high = ic_low.copy(), ic_high.copy()
-    for at, supply, hfe_edges in _corner_conditions(device, conditions, temperature_range, supply_range):
-        # the (supply, device edge) pairs of one temperature and ground's place in one call
+    for at, temperature, supply, hfe_edges in _corner_conditions(device, conditions, temperature_range, supply_range):
+        # the (temperature, supply, device edge) corners of one ground's place in one call
         pairs = hfe_edges.size
         op = topology.operating_point(
             {role: np.tile(v, pairs) for role, v in both.items()},
             device,
-            replace(at, supply=np.repeat(supply, 2 * n)),
+            replace(at, supply=np.repeat(supply, 2 * n), temperature=np.repeat(temperature, 2 * n)),
             np.repeat(hfe_edges, 2 * n),
         )
         ic = np.where(op["active"], op["ic"], np.nan).reshape(2 * pairs, n)
@@ -355,9 +356,10 @@ def monte_carlo_yield(
     ``full=False`` judges the builds on the fast core metrics (bias, gain, impedances, swing,
     current, ratings); ``full=True`` adds the band corners, noise and supply rejection (the
     corners alone with ``noise=False``: for a ``passes`` that judges neither).
-    The builds of one temperature (the supply varies per build within it) are evaluated in
-    blocks of candidate rows that fit one evaluation chunk, so the working set stays small
-    whatever the count and a block is one model call.
+    The builds of one ground's place (the temperature and the supply vary per build within it:
+    the models take them per element) are evaluated in blocks of candidate rows that fit one
+    evaluation chunk, so the working set stays small whatever the count and a block is one
+    model call.
     """
     supply_range = (conditions.supply, conditions.supply) if supply_range is None else supply_range
     builds = Builds.draw(samples, seed, temperature_range, supply_range, conditions)
@@ -366,11 +368,7 @@ def monte_carlo_yield(
     positions = {role: builds.part_position(role) for role in values}
     hfe_all = builds.hfe(device)
     passed = np.zeros(n)
-    for (
-        temperature,
-        below,
-        idx,
-    ) in builds.groups():  # one call per block of a temperature and ground, the span per build
+    for below, idx in builds.groups():  # one call per block of a ground's place
         rows = max(1, (CHUNK_FULL if full else CHUNK_FAST) // idx.size)
         for i in range(0, n, rows):
             block = slice(i, min(i + rows, n))
@@ -382,7 +380,7 @@ def monte_carlo_yield(
             hfe = np.broadcast_to(hfe_all[None, idx], shape)
             at = replace(
                 conditions,
-                temperature=temperature,
+                temperature=np.broadcast_to(builds.temperature[None, idx], shape).reshape(-1),
                 supply=np.broadcast_to(builds.supply[None, idx], shape).reshape(-1),
                 below_ground=conditions.below_ground if below is None else below,
             )

@@ -87,7 +87,9 @@ class Conditions:
     source_impedance: float
     load_impedance: float
     band: tuple[float, float] = (20.0, 20000.0)
-    temperature: float = 27.0
+    # degC; an array gives each candidate its own (the Monte Carlo builds and corners of all
+    # temperatures in one call), as supply may be
+    temperature: float | np.ndarray = 27.0
     load_capacitance: float = 0.0
     signal_vpp: float = 1.0  # output level at which thd is given
     supply_max: float | None = None  # V, highest rail (capacitor ratings at power-up); None: supply
@@ -610,8 +612,9 @@ class StageModel(Topology):
         )
         p = self._frame_parts(p, conditions)
         p_dc = p if p_dc is None else p_dc
-        nvt = device.NF * float(thermal_voltage(conditions.temperature))
-        i_s = float(saturation_current(device.IS, conditions.temperature))
+        # floats at one temperature, arrays over the candidates at a temperature per candidate
+        nvt = device.NF * thermal_voltage(conditions.temperature)
+        i_s = saturation_current(device.IS, conditions.temperature)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             b = self._bias(p_dc, device, conditions, beta, nvt, i_s)
             v_local = np.broadcast_to(np.asarray(conditions.supply, dtype=float), beta.shape).copy()
@@ -915,8 +918,10 @@ class StageModel(Topology):
         beta: np.ndarray,
     ) -> Callable[[np.ndarray], np.ndarray]:
         """:meth:`static_output` of solved candidates, their arrays as columns (candidates, 1):
-        views, no copies."""
-        i_s = float(saturation_current(device.IS, c.temperature))
+        views, no copies (nvt and IS too, where the temperature is per candidate)."""
+        i_s = saturation_current(device.IS, c.temperature)
+        if np.ndim(nvt):
+            nvt, i_s = nvt[:, None], i_s[:, None]
         local = replace(c, supply=b.op["v_supply_local"][:, None])  # c_decouple holds it
         op = {k: v[:, None] for k, v in b.op.items()}
         return self.static_output(

@@ -80,7 +80,7 @@ def solve_pair(
     v0 = k_c * j_c2
     shape = np.broadcast_shapes(*(np.shape(x) for x in (a1, r_base1, vcc, rc1, re, rf, g_c2, j_c2, v_e2_0, r_e2, beta)))
     if v_start is None:
-        x1 = np.full(shape, nvt * math.log(1e-3 / i_s))
+        x1 = np.full(shape, nvt * (math.log(1e-3 / i_s) if np.ndim(i_s) == 0 else np.log(1e-3 / i_s)))
         x2 = x1.copy()
     else:
         x1 = np.broadcast_to(v_start[0], shape).astype(float)

@@ -224,7 +224,7 @@ class JFETStage(StageModel):
         vgs_per_out = np.abs((v["gate"] - v["source"]) / v["out"])
         suppression = ss[0]["gm"] * np.abs(z_ds) * vgs_per_out
         # thd_small_signal's v_x/(4 NF VT) is the square law's v_gs/(4 x): v_x scaled by NF*VT/x (NF = 1)
-        nvt = float(thermal_voltage(c.temperature))
+        nvt = thermal_voltage(c.temperature)  # per candidate where the temperature is
         return {
             "gain": np.copysign(np.abs(h), h.real),
             "input_impedance": np.abs(z_in),
