@@ -22,6 +22,7 @@ with, and two designs are compared on the same builds.
 
 from __future__ import annotations
 
+import functools
 import itertools
 import zlib
 from dataclasses import dataclass, fields, replace
@@ -140,17 +141,22 @@ def _flat_result(
     hfe: np.ndarray,
     full: bool,
     noise: bool = True,
+    swing_where: Callable[[dict[str, np.ndarray]], np.ndarray] | None = None,
 ) -> dict[str, np.ndarray]:
     """Evaluate arrays of shape (candidates, samples) flattened; metrics, ratings, 'active' and
     the operating point's 'ic' come back in the same 2-D shape (``full``, ``noise``: as
     Topology.evaluate's). The conditions' supply and temperature are scalars or flattened
-    arrays of the same size."""
+    arrays of the same size. ``swing_where``: Topology.evaluate's, on this 2-D form (taken
+    where the arrays fit one evaluation chunk; the swing solved everywhere otherwise)."""
     shape = hfe.shape
     flat = {role: np.broadcast_to(v, shape).reshape(-1) for role, v in parts.items()}
     h = hfe.reshape(-1)
     step = CHUNK_FULL if full else CHUNK_FAST
     per_element = [name for name in ("supply", "temperature") if np.ndim(getattr(conditions, name))]
-    if not per_element or h.size <= step:
+    if h.size <= step:
+        where = None if swing_where is None else lambda r: swing_where(_sample(r, shape)).reshape(-1)
+        result = topology.evaluate(flat, device, conditions, hfe=h, full=full, noise=noise, swing_where=where)
+    elif not per_element:
         result = topology.evaluate(flat, device, conditions, hfe=h, full=full, noise=noise)
     else:  # a supply or temperature per element: the model's own chunks would not slice it, so chunked here
         pieces = [
@@ -170,6 +176,11 @@ def _flat_result(
                 for d in (f.name for f in fields(StageResult))
             )
         )
+    return _sample(result, shape)
+
+
+def _sample(result: StageResult, shape: tuple[int, ...]) -> dict[str, np.ndarray]:
+    """Metrics, ratings, DC node voltages, 'active' and 'ic' of a flattened result, in ``shape``."""
     out = {k: np.asarray(v).reshape(shape) for k, v in result.metrics.items()}
     out.update({k: np.asarray(v).reshape(shape) for k, v in result.ratings.items()})
     op = result.operating_point
@@ -334,6 +345,19 @@ def bias_spread(
     return {"ic_low": ic_low, "ic_high": ic_high, "ic_spread": spread, "v_out_low": v_low, "v_out_high": v_high}
 
 
+def _passes_unbounded(
+    passes: Callable[[dict[str, np.ndarray], slice], np.ndarray],
+    rows: slice,
+    record: list[np.ndarray],
+    sample: dict[str, np.ndarray],
+) -> np.ndarray:
+    """Where builds pass and are active with an unbounded swing (``passes`` as monte_carlo_yield's,
+    ``sample`` without its swing), appended to ``record``."""
+    verdict = passes({**sample, "swing_vpp": np.full(sample["active"].shape, np.inf)}, rows) & sample["active"]
+    record.append(verdict)
+    return verdict
+
+
 def monte_carlo_yield(
     topology: Topology,
     parts: dict[str, np.ndarray],
@@ -347,6 +371,7 @@ def monte_carlo_yield(
     full: bool = False,
     supply_range: SupplyRange | None = None,
     noise: bool = True,
+    swing_last: bool = False,
 ) -> np.ndarray:
     """Fraction of ``samples`` random builds (:class:`Builds`) of each candidate for which
     ``passes(sample, rows)`` holds (``sample``: metrics and ratings of shape (block rows,
@@ -356,6 +381,10 @@ def monte_carlo_yield(
     ``full=False`` judges the builds on the fast core metrics (bias, gain, impedances, swing,
     current, ratings); ``full=True`` adds the band corners, noise and supply rejection (the
     corners alone with ``noise=False``: for a ``passes`` that judges neither).
+    ``swing_last=True`` solves the usable swing (the costliest core figure) only for the builds
+    that pass with an unbounded swing (swing_vpp NaN in the others' sample): for a ``passes``
+    that a larger swing never fails (a spec limits the swing from below only); the yield is
+    the same.
     The builds of one ground's place (the temperature and the supply vary per build within it:
     the models take them per element) are evaluated in blocks of candidate rows that fit one
     evaluation chunk, so the working set stays small whatever the count and a block is one
@@ -384,6 +413,9 @@ def monte_carlo_yield(
                 supply=np.broadcast_to(builds.supply[None, idx], shape).reshape(-1),
                 below_ground=conditions.below_ground if below is None else below,
             )
-            sample = _flat_result(topology, drawn, device, at, np.ascontiguousarray(hfe), full, noise)
-            passed[block] += np.count_nonzero(passes(sample, block) & sample["active"], axis=1)
+            needed: list[np.ndarray] = []  # where the swing was solved (swing_last)
+            unbounded = functools.partial(_passes_unbounded, passes, block, needed) if swing_last else None
+            sample = _flat_result(topology, drawn, device, at, np.ascontiguousarray(hfe), full, noise, unbounded)
+            verdict = passes(sample, block) & sample["active"]
+            passed[block] += np.count_nonzero(verdict & needed[0] if needed else verdict, axis=1)
     return passed / samples

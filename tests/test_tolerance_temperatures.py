@@ -169,15 +169,21 @@ def test_judge_of_all_temperatures_matches_one_range_per_temperature(monkeypatch
 
     def judged(temperature: tuple[float, float]) -> tuple[robustness.Judgement, np.ndarray]:
         """judge at ``temperature``, with every build's verdict (candidates, builds) recorded."""
-        verdicts = np.zeros((2, builds), dtype=bool)
+        verdicts = np.ones((2, builds), dtype=bool)
         groups = iter(Builds.draw(builds, robustness.BUILDS_SEED, temperature, spec.supply_spread, at).groups())
+        idx = np.zeros(0, dtype=int)
 
         def recording(*args, **kwargs):
             passes = args[6]
 
             def recorded(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:
+                # judge solves the swing last: each group's builds are first judged with an
+                # unbounded swing (every swing_vpp infinite), then the swing solved where they pass
+                nonlocal idx
+                if np.all(np.isinf(sample["swing_vpp"])):
+                    idx = next(groups)[1]
                 verdict = passes(sample, rows)
-                verdicts[rows, next(groups)[1]] = verdict & sample["active"]
+                verdicts[rows, idx] &= verdict & sample["active"]
                 return verdict
 
             return real(*args[:6], recorded, *args[7:], **kwargs)
@@ -196,3 +202,47 @@ def test_judge_of_all_temperatures_matches_one_range_per_temperature(monkeypatch
     np.testing.assert_array_equal(verdicts, plain)
     np.testing.assert_array_equal(merged.yield_fraction, plain.mean(axis=1))
     assert 0.05 < merged.yield_fraction[0] < 0.95  # the limit splits the builds
+
+
+def test_swing_solved_last_gives_the_same_builds_and_yield() -> None:
+    """monte_carlo_yield with swing_last (the usable swing solved only for the builds that pass
+    with an unbounded one) against the plain path that solves it for every build: the same
+    yield, the same swing wherever it was solved, NaN elsewhere; and evaluate's swing_where
+    against the plain evaluate."""
+    topology = get_topology("divider_ce")
+    parts, conditions, supply_range = SINGLE
+    nominal = topology.evaluate(parts, DEVICE, replace(conditions, supply=np.full(2, conditions.supply))).metrics
+    gain_max, swing_min = np.abs(nominal["gain"]), 0.97 * nominal["swing_vpp"]
+
+    def passes(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:  # a gain and a swing limit
+        return (np.abs(sample["gain"]) < gain_max[rows, None]) & (sample["swing_vpp"] > swing_min[rows, None])
+
+    seen: list[dict[str, np.ndarray]] = []
+
+    def recorded(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:
+        seen.append(sample)
+        return passes(sample, rows)
+
+    args = (topology, parts, DEVICE, conditions, TOLERANCES, (0.0, 50.0), recorded, 400, 3, False, supply_range)
+    plain = monte_carlo_yield(*args)
+    last = monte_carlo_yield(*args, swing_last=True)
+    np.testing.assert_array_equal(last, plain)
+    assert np.all((plain > 0.05) & (plain < 0.95))
+    every, unbounded, lean = seen  # one call of the plain path, two of swing_last's
+    assert np.all(np.isinf(unbounded["swing_vpp"]))
+    solved = (np.abs(every["gain"]) < gain_max[:, None]) & every["active"]
+    assert 0 < solved.mean() < 1  # the gain limit alone fails some builds: their swing is skipped
+    np.testing.assert_array_equal(np.isfinite(lean["swing_vpp"]), solved)
+    np.testing.assert_array_equal(lean["swing_vpp"][solved], every["swing_vpp"][solved])
+    for key in every:
+        if key != "swing_vpp":
+            np.testing.assert_array_equal(lean[key], every[key], err_msg=key)
+    for design in _one_per_kind():  # evaluate's hook on every stage model
+        stage = get_topology(design.topology)
+        k = TEMPERATURES.size
+        at = replace(design.conditions, temperature=TEMPERATURES)
+        three = {role: np.full(k, float(v)) for role, v in design.parts.items()}
+        whole = stage.evaluate(three, design.device, at, full=False)
+        some = stage.evaluate(three, design.device, at, full=False, swing_where=lambda r: np.array([True, False, True]))
+        np.testing.assert_array_equal(some.metrics["swing_vpp"][[0, 2]], whole.metrics["swing_vpp"][[0, 2]])
+        assert np.isnan(some.metrics["swing_vpp"][1])

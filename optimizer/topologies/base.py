@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 from abc import ABC, abstractmethod
 from dataclasses import dataclass, field, replace
-from typing import Callable, ClassVar
+from typing import Any, Callable, ClassVar
 
 import numpy as np
 
@@ -158,6 +158,24 @@ class Bias:
     op: dict[str, np.ndarray]
     small_signal: list[dict[str, np.ndarray]]
     beta: np.ndarray | None = None  # hFE used (SPICE BF)
+
+
+def _rows_of(
+    rows: np.ndarray, n: int, p: Parts, c: Conditions, b: Bias, nvt: float | np.ndarray
+) -> tuple[Parts, Conditions, Bias, float | np.ndarray]:
+    """The parts, conditions (a per-candidate supply and temperature), bias and NF*VT of the
+    candidates at ``rows`` of ``n``: every array over the candidates taken at those rows."""
+
+    def take(v: Any) -> Any:
+        return v[rows] if np.ndim(v) and np.shape(v)[0] == n else v
+
+    sub = replace(c, supply=take(c.supply), temperature=take(c.temperature))
+    bias = Bias(
+        {k: take(v) for k, v in b.op.items()},
+        [{k: take(v) for k, v in ss.items()} for ss in b.small_signal],
+        take(b.beta),
+    )
+    return {k: take(v) for k, v in p.items()}, sub, bias, take(nvt)
 
 
 def _source_resistance(b: Bias, conditions: Conditions) -> np.ndarray:
@@ -385,6 +403,7 @@ class Topology(ABC):
         full: bool = True,
         thd_solve: bool = False,
         noise: bool = True,
+        swing_where: Callable[[StageResult], np.ndarray] | None = None,
     ) -> StageResult:
         """Metrics, operating point and ratings.
 
@@ -397,7 +416,10 @@ class Topology(ABC):
 
         swing_vpp (V peak-to-peak at the load) is the usable swing: the largest sine at the load
         whose two peaks are both within 10 % of the linear mid-band gain times the drive, found
-        on the stage's static nonlinear transfer (:func:`physics.usable_swing`). clip_vpp (V
+        on the stage's static nonlinear transfer (:func:`physics.usable_swing`), its costliest
+        figure: given ``swing_where`` (called once with every other figure of the candidates,
+        swing_vpp NaN, returning a bool per candidate; for at most one chunk of candidates), it is
+        solved only where that is True and left NaN elsewhere. clip_vpp (V
         peak-to-peak) is the hard clip level of the AC load line, 2*min(cutoff, saturation).
         psrr_ripple_db and psrr_mid_db (dB) are 20*log10(1/|H|) of the small-signal transfer
         from the supply rail to the load at conditions.ripple_frequency and at the band's
@@ -670,6 +692,7 @@ class StageModel(Topology):
         full: bool = True,
         thd_solve: bool = False,
         noise: bool = True,
+        swing_where: Callable[[StageResult], np.ndarray] | None = None,
     ) -> StageResult:
         conditions = frame_conditions(conditions, device)
         p = self.check_parts(parts, conditions)
@@ -677,7 +700,9 @@ class StageModel(Topology):
         h = self._hfe_array(device, hfe, n)
         step = CHUNK_FULL if full else CHUNK_FAST
         if n <= step:
-            return self._evaluate(p, device, conditions, h, full, thd_solve, noise)
+            return self._evaluate(p, device, conditions, h, full, thd_solve, noise, swing_where)
+        if swing_where is not None:
+            raise ValueError(f"swing_where takes at most one chunk of candidates ({step}), not {n}")
         out: StageResult | None = None
         for i in range(0, n, step):
             r = self._evaluate(
@@ -714,6 +739,7 @@ class StageModel(Topology):
         full: bool,
         thd_solve: bool,
         noise: bool = True,
+        swing_where: Callable[[StageResult], np.ndarray] | None = None,
     ) -> StageResult:
         """:meth:`evaluate` of one chunk of checked ``parts`` in the frame's ``conditions``."""
         p, b, nvt = self._solve(parts, device, conditions, hfe)
@@ -728,11 +754,10 @@ class StageModel(Topology):
             z_out = np.abs(mid["output_impedance"] + 1.0 / (1j * w_mid * p["c_out"]))
             clip, vce_max = self._swing(p, device, local, b, mid)
             gain = mid["gain"]
-            swing = self._usable_swing(p, device, conditions, b, nvt, gain, 0.5 * clip)
             m: dict[str, np.ndarray] = {
                 "gain": gain,
                 "gain_db": 20.0 * np.log10(np.abs(gain)),
-                "swing_vpp": swing,
+                "swing_vpp": np.full_like(gain, np.nan),  # solved last (swing_where)
                 "clip_vpp": clip,
                 "input_impedance": z_in,
                 "output_impedance": z_out,
@@ -771,7 +796,18 @@ class StageModel(Topology):
             ratings["p_r_decouple"] = b.op["supply_current"] ** 2 * p["r_decouple"]
             ratings["v_c_decouple"] = np.where(p["c_decouple"] > 0, conditions.rail_max, 0.0) + 0.0 * gain
         ratings["vce_max"] = vce_max
-        return StageResult({k: m[k] for k in METRICS}, self._true_op(b.op, device, conditions), ratings)
+        result = StageResult({k: m[k] for k in METRICS}, self._true_op(b.op, device, conditions), ratings)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            if swing_where is None:
+                result.metrics["swing_vpp"] = self._usable_swing(p, device, conditions, b, nvt, gain, 0.5 * clip)
+            else:
+                rows = np.flatnonzero(swing_where(result))
+                if rows.size:
+                    sub_p, sub_c, sub_b, sub_nvt = _rows_of(rows, gain.size, p, conditions, b, nvt)
+                    result.metrics["swing_vpp"][rows] = self._usable_swing(
+                        sub_p, device, sub_c, sub_b, sub_nvt, gain[rows], 0.5 * clip[rows]
+                    )
+        return result
 
     def _loop_metrics(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
         """loop_gain (V/V, mid-band) and phase_margin_deg (degrees) of a stage with an overall
