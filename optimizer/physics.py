@@ -265,7 +265,7 @@ class Network:
     (their PSDs are formed only when asked for, by :meth:`noise_sources`).
     """
 
-    def __init__(self, nodes: Sequence[str], temp_c: float = 27.0) -> None:
+    def __init__(self, nodes: Sequence[str], temp_c: float | np.ndarray = 27.0) -> None:
         self.nodes = list(nodes)
         self.index = {n: i for i, n in enumerate(self.nodes)}
         self.y: dict[tuple[int, int], np.ndarray] = {}  # S, frequency independent part
@@ -856,8 +856,8 @@ def power_law_segments(f: np.ndarray, psd: np.ndarray, axis: int = -1) -> np.nda
     return np.where(np.abs(k1) < 1e-6, s0f0 * log_step, general)
 
 
-def thermal_noise(r: np.ndarray, temp_c: float) -> np.ndarray:
-    """Thermal-noise current PSD 4kT/R (A^2/Hz) of a resistor r (ohm)."""
+def thermal_noise(r: np.ndarray, temp_c: float | np.ndarray) -> np.ndarray:
+    """Thermal-noise current PSD 4kT/R (A^2/Hz) of a resistor r (ohm) at temp_c (degC, or per candidate)."""
     return 4.0 * BOLTZMANN * (temp_c + KELVIN_OFFSET) / r
 
 

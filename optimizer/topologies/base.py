@@ -437,7 +437,15 @@ class StageModel(Topology):
 
     # ---- hooks -------------------------------------------------------------------------
     @abstractmethod
-    def _bias(self, p: Parts, device: AnyDevice, c: Conditions, beta: np.ndarray, nvt: float, i_s: float) -> Bias:
+    def _bias(
+        self,
+        p: Parts,
+        device: AnyDevice,
+        c: Conditions,
+        beta: np.ndarray,
+        nvt: float | np.ndarray,
+        i_s: float | np.ndarray,
+    ) -> Bias:
         """Solve the DC operating point."""
 
     @abstractmethod
@@ -939,7 +947,14 @@ class StageModel(Topology):
 
     @abstractmethod
     def static_output(
-        self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, i_s: float, beta: np.ndarray
+        self,
+        p: Parts,
+        device: AnyDevice,
+        c: Conditions,
+        b: Bias,
+        nvt: float | np.ndarray,
+        i_s: float | np.ndarray,
+        beta: np.ndarray,
     ) -> Callable[[np.ndarray], np.ndarray]:
         """Map source voltages (V, (candidates, samples)) to load voltages (V) by the static
         nonlinear stage equations around the operating point (capacitors hold their DC)."""
@@ -950,7 +965,7 @@ class StageModel(Topology):
         device: AnyDevice,
         c: Conditions,
         b: Bias,
-        nvt: float,
+        nvt: float | np.ndarray,
         beta: np.ndarray,
     ) -> Callable[[np.ndarray], np.ndarray]:
         """:meth:`static_output` of solved candidates, their arrays as columns (candidates, 1):
@@ -965,7 +980,14 @@ class StageModel(Topology):
         )
 
     def _usable_swing(
-        self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, gain: np.ndarray, clip_peak: np.ndarray
+        self,
+        p: Parts,
+        device: AnyDevice,
+        c: Conditions,
+        b: Bias,
+        nvt: float | np.ndarray,
+        gain: np.ndarray,
+        clip_peak: np.ndarray,
     ) -> np.ndarray:
         """swing_vpp (V peak-to-peak at the load) by :func:`physics.usable_swing`, in double precision
         (single precision, with the small swings it leaves noisy solved again, was no faster at the
@@ -978,7 +1000,7 @@ class StageModel(Topology):
         device: AnyDevice,
         c: Conditions,
         b: Bias,
-        nvt: float,
+        nvt: float | np.ndarray,
         beta: np.ndarray,
         gain: np.ndarray,
         samples: int = physics.THD_SAMPLES,
