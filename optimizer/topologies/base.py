@@ -437,16 +437,9 @@ class StageModel(Topology):
 
     # ---- hooks -------------------------------------------------------------------------
     @abstractmethod
-    def _bias(
-        self,
-        p: Parts,
-        device: AnyDevice,
-        c: Conditions,
-        beta: np.ndarray,
-        nvt: float | np.ndarray,
-        i_s: float | np.ndarray,
-    ) -> Bias:
-        """Solve the DC operating point."""
+    def _bias(self, p: Parts, device: AnyDevice, c: Conditions, beta: np.ndarray, nvt: float, i_s: float) -> Bias:
+        """Solve the DC operating point (nvt, NF*VT in V, and i_s, IS(T) in A: floats, or arrays
+        over the candidates where the temperature is per candidate)."""
 
     @abstractmethod
     def _midband(self, p: Parts, c: Conditions, b: Bias, r_source: np.ndarray) -> dict[str, np.ndarray]:
@@ -947,17 +940,11 @@ class StageModel(Topology):
 
     @abstractmethod
     def static_output(
-        self,
-        p: Parts,
-        device: AnyDevice,
-        c: Conditions,
-        b: Bias,
-        nvt: float | np.ndarray,
-        i_s: float | np.ndarray,
-        beta: np.ndarray,
+        self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, i_s: float, beta: np.ndarray
     ) -> Callable[[np.ndarray], np.ndarray]:
         """Map source voltages (V, (candidates, samples)) to load voltages (V) by the static
-        nonlinear stage equations around the operating point (capacitors hold their DC)."""
+        nonlinear stage equations around the operating point (capacitors hold their DC; nvt and
+        i_s columns like the other arrays where the temperature is per candidate)."""
 
     def _static_fn(
         self,
@@ -980,14 +967,7 @@ class StageModel(Topology):
         )
 
     def _usable_swing(
-        self,
-        p: Parts,
-        device: AnyDevice,
-        c: Conditions,
-        b: Bias,
-        nvt: float | np.ndarray,
-        gain: np.ndarray,
-        clip_peak: np.ndarray,
+        self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, gain: np.ndarray, clip_peak: np.ndarray
     ) -> np.ndarray:
         """swing_vpp (V peak-to-peak at the load) by :func:`physics.usable_swing`, in double precision
         (single precision, with the small swings it leaves noisy solved again, was no faster at the
