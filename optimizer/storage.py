@@ -63,13 +63,16 @@ from optuna.storages._heartbeat import is_heartbeat_enabled
 # JournalFileBackend accepts a lock object but the base class to write one is private.
 from optuna.storages.journal._file import BaseJournalFileLock
 
-# JournalStorageReplayResult (the journal's replayed state; its _trials, _trial_exists_and_updatable
-# and the _apply_* methods of trial records) and JournalStorage's _replay_result, _thread_lock,
-# _sync_with_backend, _worker_id_prefix: the replay shares equal distributions
-# (:class:`_SharedDistributions`) and copies a trial a record changes field by field, reads
-# only the trials after a number (:func:`trials_from`), starts on first use rather than when
-# opened, and a snapshot is taken of its state at a known record (:func:`save_snapshot`); the
-# public API copies every trial of a study on each read and has no hook for any of these.
+# JournalStorageReplayResult (the journal's replayed state; its _trials, _studies,
+# _study_id_to_trial_ids, _trial_id_to_study_id, _next_study_id, log_number_read,
+# _trial_exists_and_updatable and the _apply_* methods of study and trial records) and
+# JournalStorage's _replay_result, _thread_lock, _sync_with_backend, _worker_id_prefix: the
+# replay shares equal distributions (:class:`_SharedDistributions`), copies a trial a record
+# changes field by field and drops a deleted study's trials, reads only the trials after a
+# number (:func:`trials_from`), starts on first use rather than when opened (from the replay
+# snapshot if there is one: :func:`save_replay`), and a snapshot is taken of its state at a
+# known record (:func:`save_snapshot`); the public API copies every trial of a study on each
+# read and has no hook for any of these.
 from optuna.storages.journal._storage import JournalStorageReplayResult
 
 # _CONSTRAINTS_KEY: the prefix of the system attr a constraint is stored under (Trial.set_constraint's
@@ -232,6 +235,7 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
         self._base = 0  # records on file when the batch opened
         self.waiting_made = 0  # records read that create a waiting (enqueued) trial
         self._synced = -math.inf  # time.monotonic() of the last fsync
+        self.records_read = 0  # records read from the file for the replay (its snapshot's not counted)
 
     def _scan(self, number: int, offset: int) -> Iterator[tuple[int, int, dict]]:
         """(record number, byte offset after it, record) of every readable record after
@@ -271,6 +275,7 @@ class _BatchSyncedJournal(optuna.storages.journal.JournalFileBackend):
             for number, offset, record in self._scan(*position):
                 position = (number, offset)
                 if number > log_number_from:
+                    self.records_read += 1
                     yield self._seen(record)
         finally:
             self._resume = position
@@ -391,6 +396,17 @@ class _WaitingIndex:
         return found
 
 
+class _TrialsById(dict):
+    """The replay's trials by id. Optuna numbers a new trial ``len(trials)``: every trial ever
+    made in a study that existed then, deleted studies' included; ``dropped`` counts the
+    trials of deleted studies left out, so the ids go on as Optuna's own replay gives them."""
+
+    dropped = 0
+
+    def __len__(self) -> int:
+        return dict.__len__(self) + self.dropped
+
+
 class _SharedDistributions(JournalStorageReplayResult):
     """Optuna's replay of a journal, with equal parameter distributions shared: the replay
     builds a new distribution object for every parameter of every trial (0.1 KB each, three
@@ -407,8 +423,24 @@ class _SharedDistributions(JournalStorageReplayResult):
 
     def __init__(self, worker_id_prefix: str) -> None:
         super().__init__(worker_id_prefix)
+        self._trials = _TrialsById()
         self._shared: dict[optuna.distributions.BaseDistribution, optuna.distributions.BaseDistribution] = {}
         self._parsed: dict[str, optuna.distributions.BaseDistribution] = {}  # by its JSON
+
+    def _apply_delete_study(self, log: dict[str, Any]) -> None:
+        """As Optuna's replay deletes a study, and its trials with it: Optuna keeps them (they
+        count for the ids of later trials, which :class:`_TrialsById` still counts), so a
+        journal that held many deleted searches kept every one of their trials in memory, and
+        its replay snapshot (:func:`save_replay`) would have to carry them."""
+        study_id_ = log["study_id"]
+        existed = study_id_ in self._studies
+        super()._apply_delete_study(log)
+        if existed:
+            dropped = self._study_id_to_trial_ids.pop(study_id_, [])
+            for t in dropped:
+                del self._trials[t]
+                self._trial_id_to_study_id.pop(t, None)
+            self._trials.dropped += len(dropped)
 
     def _changed(self, log: dict[str, Any]) -> "optuna.trial.FrozenTrial | None":
         """A copy of the trial ``log`` changes, put in its place, if it exists and is not
@@ -492,8 +524,20 @@ class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
     def _sync_with_backend(self) -> None:
         if self._opening:
             return
+        if (
+            not self.replayed
+            and self._replay_result.log_number_read == 0
+            and isinstance(self._journal, _BatchSyncedJournal)
+        ):
+            _restored_replay(self, self._journal)  # a journal file's replay snapshot, if it has one
         self.replayed = True
         super()._sync_with_backend()
+
+    def delete_study(self, study_id: int) -> None:
+        """As Optuna's; on a journal file the replay snapshot is written then (:func:`save_replay`),
+        so later processes replay none of the deleted study's records."""
+        super().delete_study(study_id)
+        save_replay(self)
 
     def _waiting_made(self, study_id: int) -> int:
         self.get_study_directions(study_id)  # a read: the records other processes wrote meanwhile are read in
@@ -933,22 +977,26 @@ def _digest(path: str, start: int, end: int) -> str:
 
 
 def _write_snapshot(backend: "_BatchSyncedJournal", summary: JournalSummary) -> int:
-    """Write the snapshot beside the journal: a header line (what it covers, the journal's
-    bytes it was taken against, the payload's length and SHA-256), then the payload; to a
-    temporary file first, then os.replace, so a reader sees the old snapshot or the new one.
-    Returns its size in bytes."""
+    """Write the snapshot beside the journal (:func:`_write_cache`); returns its size in bytes."""
     payload = json.dumps(summary.to_json(), separators=(",", ":")).encode("utf-8")
+    return _write_cache(backend, snapshot_path(backend._path), summary.records, summary.offset, payload)
+
+
+def _write_cache(backend: "_BatchSyncedJournal", target: Path, records: int, offset: int, payload: bytes) -> int:
+    """Write a cache of the journal's state at record ``records`` (byte ``offset``) to
+    ``target``: a header line (what it covers, the journal's bytes it was taken against, the
+    payload's length and SHA-256), then the payload; to a temporary file first, then
+    os.replace, so a reader sees the old file or the new one. Returns its size in bytes."""
     header = {
         "format": _SNAPSHOT_FORMAT,
         "version": _SNAPSHOT_VERSION,
-        "records": summary.records,
-        "offset": summary.offset,
-        "head": _digest(backend._path, 0, min(summary.offset, _MARK)),
-        "mark": _digest(backend._path, max(summary.offset - _MARK, 0), summary.offset),
+        "records": records,
+        "offset": offset,
+        "head": _digest(backend._path, 0, min(offset, _MARK)),
+        "mark": _digest(backend._path, max(offset - _MARK, 0), offset),
         "length": len(payload),
         "sha256": hashlib.sha256(payload).hexdigest(),
     }
-    target = snapshot_path(backend._path)
     temporary = target.with_name(f".{target.name}.{os.getpid()}.{threading.get_ident()}.tmp")
     with open(temporary, "wb") as handle:
         size = handle.write(json.dumps(header).encode("utf-8") + b"\n" + payload)
@@ -956,12 +1004,10 @@ def _write_snapshot(backend: "_BatchSyncedJournal", summary: JournalSummary) -> 
     return size
 
 
-def _read_snapshot(
-    backend: "_BatchSyncedJournal", key: "Callable | None", same: "Callable | None"
-) -> JournalSummary | None:
-    """The journal's snapshot, or None if it is missing, damaged, half-written, or taken of
-    other bytes than the journal now holds (rewritten by a repair, or another journal)."""
-    target = snapshot_path(backend._path)
+def _read_cache(backend: "_BatchSyncedJournal", target: Path) -> tuple[dict, Any] | None:
+    """(header, parsed payload) of a cache :func:`_write_cache` wrote, or None if it is
+    missing, damaged, half-written, or taken of other bytes than the journal now holds
+    (rewritten by a repair, or another journal)."""
     try:
         data = target.read_bytes()
     except FileNotFoundError:
@@ -995,11 +1041,28 @@ def _read_snapshot(
         log.info("journal snapshot %s was taken of other journal bytes: ignored", target)
         return None
     try:
-        summary = JournalSummary.from_json(json.loads(payload), key, same)
-    except (ValueError, TypeError, KeyError, AttributeError):
+        return header, json.loads(payload)
+    except ValueError:
         log.warning("journal snapshot %s unreadable: ignored, the journal is replayed in full", target)
         return None
-    return summary if (summary.records, summary.offset) == (header["records"], offset) else None
+
+
+def _read_snapshot(
+    backend: "_BatchSyncedJournal", key: "Callable | None", same: "Callable | None"
+) -> JournalSummary | None:
+    """The journal's snapshot (:func:`_read_cache`), or None if there is no usable one."""
+    found = _read_cache(backend, snapshot_path(backend._path))
+    if found is None:
+        return None
+    header, data = found
+    try:
+        summary = JournalSummary.from_json(data, key, same)
+    except (ValueError, TypeError, KeyError, AttributeError):
+        log.warning(
+            "journal snapshot %s unreadable: ignored, the journal is replayed in full", snapshot_path(backend._path)
+        )
+        return None
+    return summary if (summary.records, summary.offset) == (header["records"], header["offset"]) else None
 
 
 def journal_summary(
@@ -1105,6 +1168,125 @@ def _summary_of(
     return summary
 
 
+def replay_path(journal: str | Path) -> Path:
+    """The replay snapshot beside a journal file (:func:`save_replay`)."""
+    return Path(f"{journal}.replay")
+
+
+def save_replay(storage: BaseStorage) -> bool:
+    """Write the replay snapshot of a journal file: this process's replayed state (every
+    study and every trial of it, at the record its backend has read to, in the journal's
+    encodings), so that a process opening the journal later restores it and replays only the
+    records after it. A deleted study is in it no more (the replay drops its trials): opening
+    a journal then costs what its live searches hold, however many searches were deleted
+    from it (a journal used for many ``--fresh`` runs). Written when a search is deleted
+    (:meth:`_JournalStorage.delete_study`); a cache, never the record, checked against the
+    journal's bytes as the snapshot is (:func:`_read_cache`). Returns whether it was written
+    (not while a batch of this process is open, nor for other storages)."""
+    backend = _journal_backends.get(storage)
+    if backend is None:
+        return False
+    with storage._thread_lock:
+        storage._sync_with_backend()
+        replay = storage._replay_result
+        if backend._held is not None or backend._resume[0] != replay.log_number_read:
+            return False
+        records, offset = backend._resume
+        encoded: dict[int, str] = {}  # distribution_to_json by the distribution object's id (shared ones)
+
+        def form(trial: optuna.trial.FrozenTrial) -> dict:
+            distributions = {}
+            for k, d in trial.distributions.items():
+                if id(d) not in encoded:
+                    encoded[id(d)] = optuna.distributions.distribution_to_json(d)
+                distributions[k] = encoded[id(d)]
+            return {
+                "id": trial._trial_id,
+                "state": trial.state.value,
+                "params": {k: trial.distributions[k].to_internal_repr(v) for k, v in trial.params.items()},
+                "distributions": distributions,
+                "user_attrs": trial.user_attrs,
+                "system_attrs": trial.system_attrs,
+                "values": trial.values,
+                "intermediate_values": {str(k): v for k, v in trial.intermediate_values.items()},
+                "datetime_start": trial.datetime_start.isoformat() if trial.datetime_start else None,
+                "datetime_complete": trial.datetime_complete.isoformat() if trial.datetime_complete else None,
+            }
+
+        data = {
+            "next_study": replay._next_study_id,
+            "next_trial": len(replay._trials),
+            "studies": [
+                {
+                    "id": sid,
+                    "name": study.study_name,
+                    "directions": [d.value for d in study.directions],
+                    "user_attrs": study.user_attrs,
+                    "system_attrs": study.system_attrs,
+                    "trials": [form(replay._trials[t]) for t in replay._study_id_to_trial_ids[sid]],
+                }
+                for sid, study in replay._studies.items()
+            ],
+        }
+        payload = json.dumps(data, separators=(",", ":")).encode("utf-8")
+    _write_cache(backend, replay_path(backend._path), records, offset, payload)
+    return True
+
+
+def _restored_replay(storage: "_JournalStorage", backend: _BatchSyncedJournal) -> bool:
+    """Restore a journal storage's replayed state from its replay snapshot (:func:`save_replay`)
+    before its first replay; the backend then reads on from the record after it. False (nothing
+    changed) without a usable snapshot."""
+    found = _read_cache(backend, replay_path(backend._path))
+    if found is None:
+        return False
+    header, data = found
+    replay = _SharedDistributions(storage._worker_id_prefix)
+    try:
+        trials = []
+        for study in data["studies"]:
+            sid = int(study["id"])
+            replay._next_study_id = sid  # made as its creation record makes it, under its own id
+            replay._apply_create_study(
+                {"study_name": study["name"], "directions": study["directions"], "worker_id": ""}
+            )
+            made = replay._studies[sid]
+            made.user_attrs, made.system_attrs = study["user_attrs"], study["system_attrs"]
+            ids = replay._study_id_to_trial_ids[sid]
+            for number, t in enumerate(study["trials"]):
+                distributions = {k: replay._distribution(v) for k, v in t["distributions"].items()}
+                trial = optuna.trial.FrozenTrial(
+                    number=number,
+                    state=TrialState(t["state"]),
+                    value=None,
+                    values=t["values"],
+                    datetime_start=datetime.fromisoformat(t["datetime_start"]) if t["datetime_start"] else None,
+                    datetime_complete=(
+                        datetime.fromisoformat(t["datetime_complete"]) if t["datetime_complete"] else None
+                    ),
+                    params={k: distributions[k].to_external_repr(v) for k, v in t["params"].items()},
+                    distributions=distributions,
+                    user_attrs=t["user_attrs"],
+                    system_attrs=t["system_attrs"],
+                    intermediate_values={int(k): v for k, v in t["intermediate_values"].items()},
+                    trial_id=int(t["id"]),
+                )
+                trials.append(trial)
+                ids.append(trial._trial_id)
+                replay._trial_id_to_study_id[trial._trial_id] = sid
+        for trial in sorted(trials, key=lambda t: t._trial_id):  # in id order, as the replay makes them
+            replay._trials[trial._trial_id] = trial
+        replay._next_study_id = int(data["next_study"])
+        replay._trials.dropped = int(data["next_trial"]) - dict.__len__(replay._trials)
+        replay.log_number_read = int(header["records"])
+    except (ValueError, TypeError, KeyError, AttributeError):
+        log.warning("journal replay snapshot %s unreadable: ignored, the journal is replayed in full", backend._path)
+        return False
+    storage._replay_result = replay
+    backend._resume = (replay.log_number_read, int(header["offset"]))
+    return True
+
+
 @dataclass
 class JournalReport:
     """What :func:`check_journal` found in a journal file: the readable records, each damaged
@@ -1200,6 +1382,7 @@ def repair_journal(path: str | Path) -> JournalReport:
     finally:
         lock.release()
     snapshot_path(found).unlink(missing_ok=True)  # taken of the bytes before the repair
+    replay_path(found).unlink(missing_ok=True)
     with _lock:
         for key in [k for k, v in _cache.items() if _claim_files.get(v) == found.with_name(found.name + ".claim")]:
             del _cache[key]  # replayed afresh on next open

@@ -109,6 +109,8 @@ def test_the_journal_replay_names_the_snapshot_and_memory_savings_use_exist(tmp_
         "_apply_set_trial_user_attr",
         "_apply_set_trial_system_attr",
         "_trial_exists_and_updatable",
+        "_apply_create_study",
+        "_apply_delete_study",
     ):
         assert callable(getattr(JournalStorageReplayResult, name)), name
     journal = storage.open_storage(tmp_path / "c.journal")
@@ -117,5 +119,6 @@ def test_the_journal_replay_names_the_snapshot_and_memory_savings_use_exist(tmp_
     replay = journal._replay_result
     assert isinstance(replay, storage._SharedDistributions) and replay.log_number_read > 0
     assert isinstance(replay._trials, dict) and isinstance(replay._study_id_to_trial_ids, dict)
+    assert isinstance(replay._trial_id_to_study_id, dict) and isinstance(replay._studies, dict)
     assert isinstance(replay._next_study_id, int) and isinstance(journal._worker_id_prefix, str)
     assert hasattr(journal, "_thread_lock") and callable(journal._sync_with_backend)

@@ -1,0 +1,139 @@
+"""The journal's replay snapshot: a journal used for many ``--fresh`` runs (each deleting the
+last run's search) opens replaying as many records as after one run, and its live searches
+come back as Optuna's own JournalStorage replays them from the file (the reference: the same
+trials, ids, numbers, states, parameters, values, attributes and times), also while another
+process holding the journal open keeps writing; a damaged or stale replay snapshot is not used."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import optuna
+import pytest
+
+from optimizer.search import create_search, delete_search, run_search, spec_search_id, with_search
+from optimizer.spec import load_spec
+from optimizer.storage import _journal, replay_path
+
+SPEC = Path(__file__).resolve().parents[1] / "benchmarks" / "specs" / "bs_e24_split_guitar.yaml"
+TRIALS = 48
+
+
+def _plain(path: Path) -> optuna.storages.JournalStorage:
+    """Optuna's own journal storage on the file, replayed from its first record."""
+    return optuna.storages.JournalStorage(optuna.storages.journal.JournalFileBackend(str(path)))
+
+
+def _state(storage: optuna.storages.BaseStorage) -> list:
+    """Every live study with every trial (id, number, state, parameters and their
+    distributions, values, attributes, times), as the storage answers them."""
+    out = []
+    for study in sorted(storage.get_all_studies(), key=lambda s: s._study_id):
+        trials = [
+            (
+                t._trial_id,
+                t.number,
+                t.state,
+                t.params,
+                t.distributions,
+                t.values,
+                t.user_attrs,
+                t.system_attrs,
+                t.intermediate_values,
+                t.datetime_start,
+                t.datetime_complete,
+            )
+            for t in storage.get_all_trials(study._study_id, deepcopy=False)
+        ]
+        out.append((study._study_id, study.study_name, study.directions, study.user_attrs, study.system_attrs, trials))
+    return out
+
+
+def _fresh_runs(path: Path, runs: int) -> None:
+    """A search that stays (seed 1) and ``runs`` runs of another spec, each deleting the last
+    (as ``stagefit search --fresh`` does), each in a process of its own (a new storage)."""
+    kept = with_search(load_spec(SPEC), trials=TRIALS, seed=1)
+    storage = _journal(path)
+    run_search(storage, create_search(kept, storage), finish=False)
+    again = with_search(load_spec(SPEC), trials=TRIALS, seed=0)
+    for _ in range(runs):
+        storage = _journal(path)
+        search_id = spec_search_id(again)
+        if any(s.study_name == search_id for s in storage.get_all_studies()):
+            delete_search(storage, search_id)
+        create_search(again, storage, search_id=search_id)
+        run_search(storage, search_id, finish=False)
+
+
+def _opened(path: Path):
+    """The journal as a new process opens and replays it."""
+    storage = _journal(path)
+    storage.get_all_studies()
+    return storage
+
+
+def test_a_journal_after_many_fresh_runs_replays_as_many_records_as_after_one(tmp_path) -> None:
+    """One run, two (the second deletes the first) and five: from the second on, opening the
+    journal reads the same records (those after the last deletion), never more than a journal
+    that only ever held the live searches."""
+    once, twice, often = tmp_path / "once.journal", tmp_path / "twice.journal", tmp_path / "often.journal"
+    _fresh_runs(once, 1)
+    _fresh_runs(twice, 2)
+    _fresh_runs(often, 5)
+    assert not replay_path(once).exists()  # nothing deleted: no replay snapshot
+    one, two, many = _opened(once), _opened(twice), _opened(often)
+    assert many._journal.records_read == two._journal.records_read <= one._journal.records_read
+    assert many._replay_result.log_number_read > two._replay_result.log_number_read  # the file holds more
+    assert dict.__len__(many._replay_result._trials) == dict.__len__(one._replay_result._trials) == 2 * TRIALS
+    for path, storage in ((once, one), (twice, two), (often, many)):
+        assert _state(storage) == _state(_plain(path))  # the live searches intact
+        assert len(_state(storage)) == 2
+
+
+def test_a_trial_made_after_the_restore_gets_the_id_optunas_replay_gives(tmp_path) -> None:
+    """Trial ids count the deleted searches' trials too (Optuna's replay numbers a trial by
+    every trial made before it): a restored replay makes the next trial with the same id."""
+    path = tmp_path / "ids.journal"
+    _fresh_runs(path, 2)
+    storage = _opened(path)
+    study = optuna.load_study(study_name=storage.get_all_studies()[0].study_name, storage=storage)
+    made = study.ask({"x": optuna.distributions.IntDistribution(0, 9)})
+    study.tell(made, [1.0] * len(study.directions))
+    plain = _plain(path)
+    assert made._trial_id == plain.get_all_trials(study._study_id)[-1]._trial_id
+    assert _state(_opened(path)) == _state(plain)
+
+
+def test_a_process_holding_the_journal_keeps_writing_while_another_deletes(tmp_path) -> None:
+    """A runner that replayed the journal before the deletion goes on writing its trials; a
+    process opening the journal afterwards restores the snapshot and reads the runner's records
+    after it, and agrees with Optuna's replay of the whole file."""
+    path = tmp_path / "shared.journal"
+    holder = _journal(path)
+    kept = create_search(with_search(load_spec(SPEC), trials=4 * TRIALS, seed=2), holder)
+    run_search(holder, kept, max_batches=1, finish=False)
+    other = _journal(path)
+    gone = create_search(with_search(load_spec(SPEC), trials=TRIALS, seed=3), other)
+    run_search(other, gone, finish=False)
+    delete_search(other, gone)
+    assert replay_path(path).is_file()
+    run_search(holder, kept, finish=False)  # its replay made before the deletion
+    later = _opened(path)
+    assert 0 < later._journal.records_read < later._replay_result.log_number_read
+    assert _state(later) == _state(_plain(path)) == _state(holder)
+
+
+@pytest.mark.parametrize("damage", ["flipped", "stale"])
+def test_a_damaged_or_stale_replay_snapshot_is_not_used(tmp_path, damage) -> None:
+    path = tmp_path / "d.journal"
+    _fresh_runs(path, 2)
+    data = replay_path(path).read_bytes()
+    if damage == "flipped":
+        at = len(data) - 10
+        replay_path(path).write_bytes(data[:at] + bytes([data[at] ^ 0x01]) + data[at + 1 :])
+    else:  # the journal rewritten under it (its first record changed)
+        journal = path.read_bytes()
+        path.write_bytes(journal.replace(b'"op_code":0', b'"op_code": 0', 1))
+    storage = _opened(path)
+    assert storage._journal.records_read == storage._replay_result.log_number_read  # replayed in full
+    assert _state(storage) == _state(_plain(path))
