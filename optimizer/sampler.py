@@ -74,9 +74,9 @@ NEAR_FRONT = 0.03  # designs missing the front by less than this share of its sp
 class NeighbourSampler(BaseSampler):
     """Propose neighbours (along ordered indices) of the best and the front designs.
 
-    ``rank_key(trial)`` orders finished trials best first; ``group_of(params)`` names the
-    conditional group of a parameter set (the topology), ``group_params(group)`` the
-    parameter names of that group with their distributions.
+    ``rank_key(trial)`` orders finished trials best first; ``group_params(params)`` gives the
+    parameters (with their distributions) of the conditional group that ``params`` chose (the
+    topology): the same dict for the same group, and chosen by categorical parameters only.
     """
 
     def __init__(
@@ -104,6 +104,7 @@ class NeighbourSampler(BaseSampler):
         self._counted: set[int] = set()  # completed trials numbered _low and up, folded in already
         self._swept: set[frozenset] = set()
         self._shapes: dict[tuple[str, ...], _Shape] = {}
+        self._shapes_of: dict[int, tuple[dict[str, BaseDistribution], _Shape]] = {}  # by id of a group's space
         self._groups: dict[int, tuple[str, ...]] = {}  # a finished trial's group (parameter names), by trial id
         self._with: dict[tuple[str, Any], FrozenTrial | None] = {}  # _best_with, until the next refresh
         self._mates: dict[tuple[str, ...], list[FrozenTrial]] = {}  # the elite of each group, until the next refresh
@@ -150,8 +151,8 @@ class NeighbourSampler(BaseSampler):
                     params[name] = plan[name]
                 else:
                     params[name] = self._random.sample_independent(study, made, name, d)
-                if self._group_params(params) is not group:  # the value chose another group
-                    break
+                if isinstance(d, CategoricalDistribution) and self._group_params(params) is not group:
+                    break  # the value chose another group (only a choice among categories chooses one)
             else:
                 return made
 
@@ -309,11 +310,16 @@ class NeighbourSampler(BaseSampler):
 
     def _shape(self, space: dict[str, BaseDistribution]) -> "_Shape":
         """What a move needs of a group's parameters, worked out once per group (a group's
-        parameter names fix their distributions)."""
+        parameter names fix their distributions), found by the space's dict itself (the search
+        space hands out one per group) before its names."""
+        kept = self._shapes_of.get(id(space))
+        if kept is not None and kept[0] is space:
+            return kept[1]
         names = tuple(space)
         shape = self._shapes.get(names)
         if shape is None:
             shape = self._shapes[names] = _Shape.of(space)
+        self._shapes_of[id(space)] = (space, shape)
         return shape
 
     def _mutate(self, params: dict[str, Any], reach: int = 1) -> dict[str, Any]:

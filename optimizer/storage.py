@@ -511,6 +511,7 @@ class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
 
     def __init__(self, backend: Any) -> None:
         self._journal = backend
+        self._file = isinstance(backend, _BatchSyncedJournal)
         self._none_waiting: dict[int, int] = {}
         self._distribution_json: dict[int, tuple[optuna.distributions.BaseDistribution, str]] = {}
         self._opening = True
@@ -522,14 +523,17 @@ class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
         self._opening = False
 
     def _sync_with_backend(self) -> None:
+        """Optuna's (apply the records not read yet), returning at once inside this process's
+        batch on a journal file once every record of it is read: nobody else can append while the
+        batch holds the write lock (the search's per-trial steps each sync, some six a trial)."""
         if self._opening:
             return
-        if (
-            not self.replayed
-            and self._replay_result.log_number_read == 0
-            and isinstance(self._journal, _BatchSyncedJournal)
-        ):
-            _restored_replay(self, self._journal)  # a journal file's replay snapshot, if it has one
+        backend = self._journal
+        if self._file and backend._held is not None:
+            if self._replay_result.log_number_read == backend._base + len(backend._pending):
+                return
+        if not self.replayed and self._file and self._replay_result.log_number_read == 0:
+            _restored_replay(self, backend)  # a journal file's replay snapshot, if it has one
         self.replayed = True
         super()._sync_with_backend()
 

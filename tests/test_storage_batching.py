@@ -4,6 +4,7 @@ stays the file Optuna itself reads, and the waiting-trial look answers from its 
 from __future__ import annotations
 
 import json
+import threading
 from pathlib import Path
 
 import optuna
@@ -79,6 +80,28 @@ def test_records_in_a_batch_are_seen_here_at_once_and_on_file_when_it_ends(tmp_p
     assert [json.loads(line)["op_code"] for line in lines][:3] == [4, 5, 8]  # trial, parameter, attribute
     seen = optuna.load_study(study_name="b", storage=_plain_optuna(path)).get_trials()
     assert [(t.params, t.user_attrs, t.values) for t in seen] == [({"x": trial.params["x"]}, {"note": "held"}, [1.0])]
+
+
+def test_reads_inside_a_batch_see_each_record_of_it_as_it_is_made_another_threads_too(tmp_path) -> None:
+    """Inside a batch a read that finds every record of the batch applied returns at once (no
+    other process can append meanwhile); a record made since, by this thread or another of the
+    process (it joins the batch), is read in as without that shortcut: the same trials as
+    Optuna's own replay of the file once the batch is written."""
+    path = tmp_path / "t.journal"
+    store = open_storage(path)
+    study = optuna.create_study(study_name="t", storage=store)
+    with batched_writes(store):
+        first = study.ask()
+        assert store.get_trial(storage_module.trial_id(first)).user_attrs == {}  # read to the batch's end
+        assert store.get_trial(storage_module.trial_id(first)).user_attrs == {}  # nothing new: the shortcut
+        worker = threading.Thread(target=lambda: study.ask().set_user_attr("by", "thread"))
+        worker.start()
+        worker.join()
+        first.set_user_attr("by", "main")
+        seen = [(t.number, t.user_attrs) for t in store.get_all_trials(study._study_id, deepcopy=False)]
+        assert seen == [(0, {"by": "main"}), (1, {"by": "thread"})]
+    on_file = optuna.load_study(study_name="t", storage=_plain_optuna(path)).get_trials()
+    assert [(t.number, t.user_attrs) for t in on_file] == seen
 
 
 def test_a_batch_cut_short_by_an_error_still_writes_what_this_process_saw(tmp_path) -> None:
