@@ -945,28 +945,26 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
-class _OptunaWithoutRedis:
-    """An import finder that refuses the Redis client to Optuna's own Redis journal backend
-    (``optuna.storages.journal._redis``), and to nothing else. Optuna imports that backend,
-    and with it the Redis client and its asyncio stack (about 0.1 s CPU), whenever redis is
-    installed; stagefit never uses it (a redis:// storage is optimizer/redis_journal.py, which
-    imports redis itself). Optuna defers the refused import's error to a use of its backend."""
-
-    BACKEND = "optuna.storages.journal._redis"
+class _RedisForItsStorageOnly:
+    """An import finder that refuses the Redis client until stagefit's own Redis journal
+    (:mod:`optimizer.redis_journal`, the redis:// storage) is loaded. Optuna imports its own
+    Redis journal backend, and with it the Redis client and its asyncio stack (about 0.1 s
+    CPU), whenever redis is installed; a command never uses that backend, and Optuna defers
+    the refused import's error to a use of it. Only public names: the import system's finders
+    and ``sys.modules``."""
 
     def find_spec(self, name: str, path: object = None, target: object = None) -> None:
-        backend = sys.modules.get(self.BACKEND)
-        if name.split(".")[0] == "redis" and getattr(getattr(backend, "__spec__", None), "_initializing", False):
-            raise ModuleNotFoundError(f"{name} is not imported for Optuna's own Redis backend", name=name)
+        if name.split(".")[0] == "redis" and "optimizer.redis_journal" not in sys.modules:
+            raise ModuleNotFoundError(f"{name} is imported by the redis:// storage only", name=name)
         return None
 
 
 def defer_unused_imports() -> None:
-    """What the command does before it imports anything heavy: Optuna, when it is imported
-    later, comes without the Redis client (:class:`_OptunaWithoutRedis`). Nothing once Optuna
-    is imported."""
-    if "optuna" not in sys.modules and not any(isinstance(f, _OptunaWithoutRedis) for f in sys.meta_path):
-        sys.meta_path.insert(0, _OptunaWithoutRedis())
+    """What the command does before it imports anything heavy: the Redis client is left
+    unimported unless the redis:// storage is used (:class:`_RedisForItsStorageOnly`). Nothing
+    once Optuna is imported."""
+    if "optuna" not in sys.modules and not any(isinstance(f, _RedisForItsStorageOnly) for f in sys.meta_path):
+        sys.meta_path.insert(0, _RedisForItsStorageOnly())
 
 
 def main(argv: Sequence[str] | None = None) -> int:

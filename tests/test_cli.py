@@ -129,7 +129,7 @@ def test_search_imports_no_pandas_plotting_or_server(tmp_path: Path) -> None:
     """A whole `stagefit search` (spec and catalog read, trials, ranked table with the why and
     verdict columns) imports neither pandas nor matplotlib nor Flask: the catalog is read with
     the stdlib csv module, the BOM and plots load only for the commands that make them; nor the
-    Redis client, which Optuna would import for its own Redis backend (cli._OptunaWithoutRedis;
+    Redis client, which Optuna would import for its own Redis backend (cli._RedisForItsStorageOnly;
     the redis:// storage itself, which imports it, is run by test_redis_storage's CLI workers).
     Checked in a fresh interpreter after the command has run."""
     code = (
