@@ -42,7 +42,7 @@ import itertools
 import random
 from bisect import bisect_right
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import Any, Callable, Iterator
 
 import numpy as np
 from optuna.distributions import BaseDistribution, CategoricalDistribution, IntDistribution
@@ -139,22 +139,15 @@ class NeighbourSampler(BaseSampler):
         plan = self._plan(study, number)
         made = create_trial(state=TrialState.RUNNING)
         params, distributions = made.params, made.distributions
-        while True:  # each time the group's first parameter not given yet, until none is left
-            group = self._group_params(params)
-            for name, d in group.items():
-                if name in params:
-                    continue
-                distributions[name] = d
-                if d.single():  # as Optuna's trial does: its one value, the sampler not asked
-                    params[name] = d.low if isinstance(d, IntDistribution) else d.choices[0]
-                elif name in plan and _fits(d, plan[name]):
-                    params[name] = plan[name]
-                else:
-                    params[name] = self._random.sample_independent(study, made, name, d)
-                if isinstance(d, CategoricalDistribution) and self._group_params(params) is not group:
-                    break  # the value chose another group (only a choice among categories chooses one)
+        for name, d in asked_in_order(self._group_params, params):
+            distributions[name] = d
+            if d.single():  # as Optuna's trial does: its one value, the sampler not asked
+                params[name] = d.low if isinstance(d, IntDistribution) else d.choices[0]
+            elif name in plan and _fits(d, plan[name]):
+                params[name] = plan[name]
             else:
-                return made
+                params[name] = self._random.sample_independent(study, made, name, d)
+        return made
 
     def sample_independent(
         self, study: Study, trial: FrozenTrial, param_name: str, param_distribution: BaseDistribution
@@ -386,6 +379,26 @@ class NeighbourSampler(BaseSampler):
     def _key(params: dict[str, Any]) -> frozenset:
         """A design's parameters, whatever their order (equal sets of name and value pairs)."""
         return frozenset(params.items())
+
+
+def asked_in_order(
+    group_params: Callable[[dict[str, Any]], dict[str, BaseDistribution]], params: dict[str, Any]
+) -> Iterator[tuple[str, BaseDistribution]]:
+    """(name, distribution) of each parameter a trial asks for, in the order every trial of a
+    search asks them (:meth:`NeighbourSampler.next_trial` and SearchSpace.suggest alike): the
+    parameters of the group ``params`` chose, in its order, skipping those given; the caller
+    puts each value in ``params`` before taking the next. After a categorical value (only a
+    choice among categories chooses a group) the group is looked up again and walked afresh."""
+    while True:  # each time the group's first parameter not given yet, until none is left
+        group = group_params(params)
+        for name, d in group.items():
+            if name in params:
+                continue
+            yield name, d
+            if isinstance(d, CategoricalDistribution) and group_params(params) is not group:
+                break  # the value chose another group
+        else:
+            return
 
 
 @dataclass(frozen=True)

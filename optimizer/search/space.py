@@ -12,6 +12,7 @@ from optimizer import scoring
 from optimizer.catalog import Catalog, load_catalog
 from optimizer.devices import AnyDevice, device_from_row
 from optimizer.errors import InputError
+from optimizer.sampler import asked_in_order
 from optimizer.spec import Spec
 from optimizer.synthesis import hand_requirements, rounded_designs
 from optimizer.topologies import get_topology
@@ -156,17 +157,15 @@ class SearchSpace:
     # ---- trials <-> designs ----------------------------------------------------------
     def suggest(self, trial: optuna.Trial) -> Design:
         """Ask ``trial`` for a design (parameters: topology, device, <topology>.<role> indices,
-        each asked in the order of :meth:`distributions`, the topology first)."""
+        each asked in the order of :meth:`distributions`, the topology first: the search's one
+        order, :func:`~optimizer.sampler.asked_in_order`)."""
         params: dict[str, Any] = {}
-        if len(self.topologies) > 1:
-            params["topology"] = trial.suggest_categorical("topology", list(self.topologies))
-        for name, d in self.distributions(params).items():
-            if name not in params:
-                params[name] = (
-                    trial.suggest_categorical(name, d.choices)
-                    if isinstance(d, optuna.distributions.CategoricalDistribution)
-                    else trial.suggest_int(name, d.low, d.high)
-                )
+        for name, d in asked_in_order(self.distributions, params):
+            params[name] = (
+                trial.suggest_categorical(name, d.choices)
+                if isinstance(d, optuna.distributions.CategoricalDistribution)
+                else trial.suggest_int(name, d.low, d.high)
+            )
         return self.design_of(params)
 
     def design_of(self, params: dict[str, Any]) -> Design:
