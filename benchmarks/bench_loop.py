@@ -3,9 +3,10 @@ proposals, the storage's writes, the records' JSON), in memory and on a journal 
 
     .venv/bin/python benchmarks/bench_loop.py                     # -> benchmarks/results/loop.md
     .venv/bin/python benchmarks/bench_loop.py --against ../main   # the same runs of another checkout beside
+    .venv/bin/python benchmarks/bench_loop.py --spec specs/contact_pickup_buffer.yaml  # another spec, printed only
     BENCH_MODE=quick .venv/bin/python benchmarks/bench_loop.py    # fewer trials, prints only
 
-Each measurement runs ``run_search`` (no finishing step) on bench_stock_preamp in a process of
+Each measurement runs ``run_search`` (no finishing step) on bench_stock_preamp (or ``--spec``) in a process of
 its own, once in memory and once on a fresh journal file, for seeds 0 and 1, each repeated;
 the CPU time (``time.process_time``) of the whole loop and of its model evaluation
 (``evaluate_designs``, timed by wrapping it) are taken, and the loop's overhead is the
@@ -41,7 +42,7 @@ SEEDS = (0, 1)
 WHERE = ("journal file", "memory")
 
 
-def overhead(trials: int, seed: int, storage_path: Path | None) -> tuple[float, float]:
+def overhead(spec_path: Path, trials: int, seed: int, storage_path: Path | None) -> tuple[float, float]:
     """(CPU s of the whole loop, CPU s of its model evaluation) of one search, in this process."""
     from optimizer.search import study as study_module
     from optimizer.search.run import with_search
@@ -60,7 +61,7 @@ def overhead(trials: int, seed: int, storage_path: Path | None) -> tuple[float, 
 
     study_module.evaluate_designs = timed
     try:
-        spec = with_search(load_spec(SPEC), trials=trials, seed=seed)
+        spec = with_search(load_spec(spec_path), trials=trials, seed=seed)
         storage = open_storage(storage_path)
         search_id = study_module.create_search(spec, storage)
         start = time.process_time()
@@ -70,13 +71,13 @@ def overhead(trials: int, seed: int, storage_path: Path | None) -> tuple[float, 
         study_module.evaluate_designs = evaluate
 
 
-def measured(code: Path | None, trials: int, seed: int, where: str) -> tuple[float, float]:
+def measured(code: Path | None, spec_path: Path, trials: int, seed: int, where: str) -> tuple[float, float]:
     """One measurement in a process of its own, with the code of ``code`` (None: this tree's)."""
     env = dict(os.environ)
     if code is not None:
         env["PYTHONPATH"] = str(code)
     out = subprocess.run(
-        [sys.executable, __file__, "--measure", str(trials), str(seed), where],
+        [sys.executable, __file__, "--spec", str(spec_path), "--measure", str(trials), str(seed), where],
         env=env,
         capture_output=True,
         text=True,
@@ -89,12 +90,14 @@ def measured(code: Path | None, trials: int, seed: int, where: str) -> tuple[flo
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--against", type=Path, help="another checkout measured beside this one (e.g. main's)")
+    parser.add_argument("--spec", type=Path, default=SPEC, help="the spec searched (results file: the default only)")
     parser.add_argument("--measure", nargs=3, metavar=("TRIALS", "SEED", "WHERE"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.measure:  # a child: one measurement, printed as JSON
         trials, seed, where = int(args.measure[0]), int(args.measure[1]), args.measure[2]
         with tempfile.TemporaryDirectory(prefix="stagefit-loop-") as tmp:
-            print(json.dumps(overhead(trials, seed, Path(tmp) / "loop.journal" if where == "journal file" else None)))
+            journal = Path(tmp) / "loop.journal" if where == "journal file" else None
+            print(json.dumps(overhead(args.spec.resolve(), trials, seed, journal)))
         return
     mode = bench_mode()
     facts = RunFacts.start()
@@ -107,7 +110,9 @@ def main() -> None:
         for where in WHERE:
             for seed in SEEDS:
                 for name, code in codes.items():
-                    runs.setdefault((name, where, seed), []).append(measured(code, trials, seed, where))
+                    runs.setdefault((name, where, seed), []).append(
+                        measured(code, args.spec.resolve(), trials, seed, where)
+                    )
 
     def cell(name: str, where: str, seed: int) -> tuple[str, float]:
         got = runs[name, where, seed]
@@ -139,7 +144,7 @@ def main() -> None:
     lines = [
         "# The search loop's own cost",
         "",
-        f"bench_stock_preamp, {trials} trials, no finishing step; median of {repeats} (min..max), CPU seconds, "
+        f"{args.spec.stem}, {trials} trials, no finishing step; median of {repeats} (min..max), CPU seconds, "
         "each run a process of its own. Overhead: the loop's CPU less its model evaluation's (Optuna's ask and "
         "tell, the sampler, the storage's writes, the records' JSON)"
         + (f"; beside it the same runs of {args.against}, alternating." if args.against else "."),
@@ -152,7 +157,7 @@ def main() -> None:
     ]
     text = "\n".join(lines)
     print(text)
-    if mode == "full":
+    if mode == "full" and args.spec.resolve() == SPEC:
         RESULTS.write_text(text)
 
 
