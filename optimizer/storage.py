@@ -396,6 +396,9 @@ class _WaitingIndex:
         return found
 
 
+REPLAY_WORTH = 4  # a replay snapshot is written once the deleted trials not in one are a quarter of the live ones
+
+
 class _TrialsById(dict):
     """The replay's trials by id. Optuna numbers a new trial ``len(trials)``: every trial ever
     made in a study that existed then, deleted studies' included; ``dropped`` counts the
@@ -424,6 +427,7 @@ class _SharedDistributions(JournalStorageReplayResult):
     def __init__(self, worker_id_prefix: str) -> None:
         super().__init__(worker_id_prefix)
         self._trials = _TrialsById()
+        self.dead_since_snapshot = 0  # trials of studies deleted since the replay snapshot (or the first record)
         self._shared: dict[optuna.distributions.BaseDistribution, optuna.distributions.BaseDistribution] = {}
         self._parsed: dict[str, optuna.distributions.BaseDistribution] = {}  # by its JSON
 
@@ -437,6 +441,7 @@ class _SharedDistributions(JournalStorageReplayResult):
         super()._apply_delete_study(log)
         if existed:
             dropped = self._study_id_to_trial_ids.pop(study_id_, [])
+            self.dead_since_snapshot += len(dropped)
             for t in dropped:
                 del self._trials[t]
                 self._trial_id_to_study_id.pop(t, None)
@@ -539,9 +544,15 @@ class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
 
     def delete_study(self, study_id: int) -> None:
         """As Optuna's; on a journal file the replay snapshot is written then (:func:`save_replay`),
-        so later processes replay none of the deleted study's records."""
+        so later processes replay none of the deleted studies' records, once the trials deleted
+        since the last snapshot are at least 1/REPLAY_WORTH of the live ones (a snapshot costs
+        what the live trials hold: it is not rewritten for every small deletion)."""
         super().delete_study(study_id)
-        save_replay(self)
+        replay = self._replay_result
+        if isinstance(replay, _SharedDistributions) and REPLAY_WORTH * replay.dead_since_snapshot >= dict.__len__(
+            replay._trials
+        ):
+            save_replay(self)
 
     def _waiting_made(self, study_id: int) -> int:
         self.get_study_directions(study_id)  # a read: the records other processes wrote meanwhile are read in
@@ -1233,6 +1244,7 @@ def save_replay(storage: BaseStorage) -> bool:
             ],
         }
         payload = json.dumps(data, separators=(",", ":")).encode("utf-8")
+        replay.dead_since_snapshot = 0
     _write_cache(backend, replay_path(backend._path), records, offset, payload)
     return True
 

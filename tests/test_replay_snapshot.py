@@ -137,3 +137,19 @@ def test_a_damaged_or_stale_replay_snapshot_is_not_used(tmp_path, damage) -> Non
     storage = _opened(path)
     assert storage._journal.records_read == storage._replay_result.log_number_read  # replayed in full
     assert _state(storage) == _state(_plain(path))
+
+
+def test_the_replay_snapshot_is_written_once_the_deleted_trials_are_a_quarter_of_the_live_ones(tmp_path) -> None:
+    path = tmp_path / "q.journal"
+    storage = _journal(path)
+    run_search(storage, create_search(with_search(load_spec(SPEC), trials=4 * TRIALS, seed=1), storage), finish=False)
+    written = []
+    for seed in (2, 3, 4):  # 16 trials each against 192 live: a snapshot once 48 are deleted
+        small = create_search(with_search(load_spec(SPEC), trials=16, seed=seed), storage)
+        run_search(storage, small, finish=False)
+        delete_search(storage, small)
+        written.append(replay_path(path).is_file())
+    assert written == [False, False, True]
+    later = _opened(path)
+    assert later._journal.records_read < later._replay_result.log_number_read
+    assert _state(later) == _state(_plain(path))
