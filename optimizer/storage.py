@@ -1194,8 +1194,9 @@ def save_replay(storage: BaseStorage) -> bool:
     encodings), so that a process opening the journal later restores it and replays only the
     records after it. A deleted study is in it no more (the replay drops its trials): opening
     a journal then costs what its live searches hold, however many searches were deleted
-    from it (a journal used for many ``--fresh`` runs). Written when a search is deleted
-    (:meth:`_JournalStorage.delete_study`); a cache, never the record, checked against the
+    from it (a journal used for many ``--fresh`` runs). Written when a search is deleted and
+    the deleted trials since the last one are worth it (:meth:`_JournalStorage.delete_study`);
+    a cache, never the record, checked against the
     journal's bytes as the snapshot is (:func:`_read_cache`). Returns whether it was written
     (not while a batch of this process is open, nor for other storages)."""
     backend = _journal_backends.get(storage)
