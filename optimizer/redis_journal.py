@@ -22,7 +22,9 @@ machine) per record was most of a shared search's time. Here:
   keeps the true order, which every other reader replays). Changing the order of such
   records changes nothing: Optuna numbers studies and trials by the order of the records
   that create them, and those (and a waiting trial's pop, a study's attributes and
-  deletion) are never deferred: each is sent at once with the deferred records before it.
+  deletion) are never deferred: each is sent at once with the deferred records before it (a
+  batch's new trials together, in one append: ``storage.create_trials``, their numbers one
+  after another).
   A trial failed by another runner (its holder taken for dead) while this one finishes it
   stays finished in this runner's view only: the liveness grace (30 s) makes that rare.
 

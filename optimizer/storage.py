@@ -430,6 +430,8 @@ class _SharedDistributions(JournalStorageReplayResult):
         self.dead_since_snapshot = 0  # trials of studies deleted since the replay snapshot (or the first record)
         self._shared: dict[optuna.distributions.BaseDistribution, optuna.distributions.BaseDistribution] = {}
         self._parsed: dict[str, optuna.distributions.BaseDistribution] = {}  # by its JSON
+        # while armed (a list: _JournalStorage.create_new_trials), the ids of the trials this thread's records create
+        self.created_here: list[int] | None = None
 
     def _apply_delete_study(self, log: dict[str, Any]) -> None:
         """As Optuna's replay deletes a study, and its trials with it: Optuna keeps them (they
@@ -491,15 +493,16 @@ class _SharedDistributions(JournalStorageReplayResult):
 
     def _apply_create_trial(self, log: dict[str, Any]) -> None:
         given = log.get("distributions")
-        if not given:
-            super()._apply_create_trial(log)
+        made = len(self._trials)  # the id Optuna's replay gives the trial, if it is made (its study exists)
+        super()._apply_create_trial({**log, "distributions": {}, "params": {}} if given else log)
+        if len(self._trials) == made:
             return
-        made = len(self._trials)
-        super()._apply_create_trial({**log, "distributions": {}, "params": {}})
-        if len(self._trials) > made:  # made (its study exists): its parameters as Optuna's replay reads them
+        if given:  # its parameters as Optuna's replay reads them
             trial = self._trials[made]
             trial.distributions = {k: self._distribution(v) for k, v in given.items()}
             trial.params = {k: trial.distributions[k].to_external_repr(v) for k, v in log["params"].items()}
+        if self.created_here is not None and self._is_issued_by_this_worker(log):
+            self.created_here.append(made)
 
     def _apply_set_trial_param(self, log: dict[str, Any]) -> None:
         super()._apply_set_trial_param(log)
@@ -507,6 +510,17 @@ class _SharedDistributions(JournalStorageReplayResult):
         name = log["param_name"]
         if trial is not None and name in trial.distributions:
             trial.distributions[name] = self._shared.setdefault(trial.distributions[name], trial.distributions[name])
+
+
+def _planned(template_trial: "optuna.trial.FrozenTrial | None") -> bool:
+    """A running trial template, not finished (the search's planned trials, made with their
+    parameters): what :meth:`_JournalStorage.create_new_trial` writes itself."""
+    return (
+        template_trial is not None
+        and template_trial.state == TrialState.RUNNING
+        and template_trial.values is None
+        and template_trial.datetime_complete is None
+    )
 
 
 class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
@@ -563,15 +577,43 @@ class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
         trials) has each distribution's JSON encoded once per storage, not once per trial
         (Optuna encodes every distribution of every trial: a fifth of making one). The
         record is the one Optuna writes, field for field."""
-        if (
-            template_trial is None
-            or template_trial.state != TrialState.RUNNING
-            or template_trial.values is not None
-            or template_trial.datetime_complete is not None
-        ):
+        if not _planned(template_trial):
             return super().create_new_trial(study_id, template_trial)
+        with self._thread_lock:
+            self._write_log(_CREATE_TRIAL, self._creation(study_id, template_trial))
+            self._sync_with_backend()
+            return self._replay_result._last_created_trial_id_by_this_process
+
+    def create_new_trials(self, study_id: int, templates: "list[optuna.trial.FrozenTrial]") -> list[int]:
+        """:meth:`create_new_trial` for each of ``templates`` (running trials made with their
+        parameters), their records appended in one step and read back once; returns the new
+        trials' ids in the order of ``templates``. On a Redis journal that is one round trip
+        for a batch's trials (numbered one after another by the server's script: no other
+        writer's record falls between them), where one per trial, made while the search's
+        claim was held, kept the other runners waiting; on a journal file one write. The
+        records are the ones :meth:`create_new_trial` writes, in the same order."""
+        if not all(_planned(t) for t in templates):
+            return [self.create_new_trial(study_id, t) for t in templates]
+        if not templates:
+            return []
+        with self._thread_lock:
+            replay = self._replay_result
+            logs = [
+                {"op_code": _CREATE_TRIAL, "worker_id": replay.worker_id, **self._creation(study_id, t)}
+                for t in templates
+            ]
+            made = replay.created_here = []
+            try:  # (a study deleted meanwhile: the replay of this process's record raises KeyError, as Optuna's)
+                self._backend.append_logs(logs)
+                self._sync_with_backend()
+            finally:
+                replay.created_here = None
+        return made
+
+    def _creation(self, study_id: int, template_trial: optuna.trial.FrozenTrial) -> dict[str, Any]:
+        """The fields of the CREATE_TRIAL record of a planned trial (as Optuna writes them)."""
         start = template_trial.datetime_start
-        log: dict[str, Any] = {
+        return {
             "study_id": study_id,
             "datetime_start": start.astimezone(timezone.utc).isoformat(timespec="microseconds") if start else None,
             "state": template_trial.state,
@@ -585,10 +627,6 @@ class _JournalStorage(_WaitingIndex, optuna.storages.journal.JournalStorage):
             "system_attrs": template_trial.system_attrs,
             "intermediate_values": template_trial.intermediate_values,
         }
-        with self._thread_lock:
-            self._write_log(_CREATE_TRIAL, log)
-            self._sync_with_backend()
-            return self._replay_result._last_created_trial_id_by_this_process
 
     def set_trial_attrs(self, trial_id: int, user_attrs: dict[str, Any], system_attrs: dict[str, Any]) -> None:
         """Set a trial's user and system attributes in one step: one record each, as Optuna's
@@ -644,6 +682,15 @@ def tell(study: optuna.Study, trial: optuna.Trial, values: list[float]) -> None:
     """Finish ``trial`` with ``values`` as ``study.tell`` does (the sampler's after_trial, the
     state and values stored), without making the deep copy of the trial it returns."""
     _tell_with_warning(study=study, trial=trial, value_or_values=values)
+
+
+def create_trials(storage: BaseStorage, study_id_: int, templates: list[optuna.trial.FrozenTrial]) -> list[int]:
+    """``storage.create_new_trial(study_id_, template_trial=t)`` for each of ``templates`` in
+    turn; a journal (file or Redis) writes them in one step
+    (:meth:`_JournalStorage.create_new_trials`). Returns their trial ids in order."""
+    if isinstance(storage, _JournalStorage):
+        return storage.create_new_trials(study_id_, templates)
+    return [storage.create_new_trial(study_id_, template_trial=t) for t in templates]
 
 
 def record_trial(

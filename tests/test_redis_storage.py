@@ -16,7 +16,8 @@ import optuna
 import pytest
 from optuna.trial import TrialState
 
-from optimizer.search import create_search, load_search, open_storage, run_search
+from optimizer.search import create_search, load_search, open_storage, rank_key, run_search
+from optimizer.search.study import RANK_KEY_ATTR
 from optimizer.spec import parse_spec
 from pg_fixture import stop_processes
 from redis_fixture import ThrowawayRedis
@@ -203,6 +204,12 @@ def test_two_worker_processes_finish_exactly_the_budget(redis_url, tmp_path):
     assert states.count(TrialState.COMPLETE) == spec.search.trials  # exactly the budget, never more
     assert TrialState.RUNNING not in states
     assert study.user_attrs["status"] == "done"
+    # the rank key each worker stored beside a trial's record, as read by another process (Optuna's own
+    # JournalRedisBackend here): the key rank_key computes from the record itself
+    fresh = optuna.storages.journal.JournalStorage(optuna.storages.journal.JournalRedisBackend(url))
+    done = [t for t in fresh.get_all_trials(study._study_id) if t.state == TrialState.COMPLETE]
+    assert {t.system_attrs.get("fixed_params") is None for t in done} == {True, False}  # seeds and planned trials
+    assert [tuple(t.user_attrs[RANK_KEY_ATTR]) for t in done] == [rank_key(t) for t in done]
 
 
 def test_a_storage_url_without_a_port_names_the_field():
@@ -356,3 +363,55 @@ def test_a_batch_the_server_missed_goes_with_the_next_append(redis_url, monkeypa
     fresh = optuna.storages.journal.JournalStorage(optuna.storages.journal.JournalRedisBackend(url))
     assert _trials(fresh, "missed") == _trials(storage, "missed")
     assert [t[2] for t in _trials(fresh, "missed")] == [TrialState.COMPLETE]
+
+
+def _planned(x: int) -> optuna.trial.FrozenTrial:
+    """A running trial made with its parameter, as the search's sampler plans it (next_trial)."""
+    from optuna.distributions import IntDistribution
+    from optuna.trial import create_trial
+
+    return create_trial(state=TrialState.RUNNING, params={"x": x}, distributions={"x": IntDistribution(0, 99)})
+
+
+def test_two_runners_batches_of_trials_made_in_one_round_trip_each_replay_as_optuna_replays_them(redis_url):
+    """Two runners (two storages on one server, as two processes) make their batches' trials
+    with storage.create_trials, interleaved, each in its batch (batched_writes) and between
+    records of the other's trials (deferred results sent when its batch closes): each batch's
+    trials in one round trip, the ids returned naming the trials made with the given
+    parameters, in order. Reference outside the project: Optuna's own JournalStorage on its
+    own JournalRedisBackend, replaying the server's journal afresh, sees the same trials
+    (ids, numbers unique and in order, states, parameters, values) as both runners."""
+    from optimizer.storage import _redis, _redis_backends, batched_writes, create_trials
+
+    url = _db(redis_url, 11)
+    a, b = open_storage(url), _redis(url)  # b: another process's storage (open_storage keeps one per URL)
+    journals = {id(a): _redis_backends[a], id(b): _redis_backends[b]}
+    study_a = optuna.create_study(study_name="made", storage=a, directions=["minimize"])
+    study_b = optuna.load_study(study_name="made", storage=b)
+    sid = study_a._study_id
+    made: dict[int, int] = {}  # trial id -> the x it was planned with
+    pending = []  # (storage, trial id, value) told at the start of its runner's next batch
+    for round_, (store, count) in enumerate([(a, 5), (b, 4), (a, 3), (b, 6), (a, 1)]):
+        study = study_a if store is a else study_b
+        with batched_writes(store):
+            for other, tid, value in [p for p in pending if p[0] is store]:
+                other.set_trial_state_values(tid, TrialState.COMPLETE, [value])  # deferred to the batch's close
+            pending = [p for p in pending if p[0] is not store]
+            xs = [10 * round_ + k for k in range(count)]
+            before = journals[id(store)].round_trips
+            ids = create_trials(store, sid, [_planned(x) for x in xs])
+            assert journals[id(store)].round_trips == before + 1  # the batch's trials: one round trip
+            assert [store.get_trial(t).params for t in ids] == [{"x": x} for x in xs]
+            made.update(zip(ids, xs))
+            pending += [(store, t, float(x)) for t, x in zip(ids, xs)]
+        assert [t.state for t in study.get_trials(deepcopy=False) if t._trial_id in ids] == [TrialState.RUNNING] * count
+    for store in (a, b):
+        with batched_writes(store):
+            for _, tid, value in [p for p in pending if p[0] is store]:
+                store.set_trial_state_values(tid, TrialState.COMPLETE, [value])
+    fresh = optuna.storages.journal.JournalStorage(optuna.storages.journal.JournalRedisBackend(url))
+    expected = _trials(fresh, "made")
+    assert [t[1] for t in expected] == list(range(19))  # numbered once each, in the journal's order
+    assert {t[0]: t[4]["x"] for t in expected} == made
+    assert all(t[2] == TrialState.COMPLETE and t[3] == [float(t[4]["x"])] for t in expected)
+    assert _trials(a, "made") == _trials(b, "made") == expected

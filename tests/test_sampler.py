@@ -101,7 +101,7 @@ def test_a_search_keeps_its_budget_and_proposes_designs_in_range() -> None:
 def test_trials_made_with_their_parameters_are_the_trials_asked_one_parameter_at_a_time(
     where: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    # the planned path (study.ask: the sampler's next_trial, one storage write per trial)
+    # the planned path (study.ask: the sampler's next_trial, the batch's trials in one storage write)
     # against Optuna's own ask with each parameter suggested and stored on its own, on a
     # spec of three topologies (the topology parameter first, each topology's own group)
     spec = with_search(
@@ -122,7 +122,7 @@ def test_trials_made_with_their_parameters_are_the_trials_asked_one_parameter_at
         )
         read = optuna.load_study(study_name=plain.get_all_studies()[0].study_name, storage=plain).get_trials()
         assert [(t.number, t.state, t.params, t.distributions, t.user_attrs["record"]) for t in read] == planned
-    monkeypatch.setattr(study_module, "ask", lambda study, number: (study.ask(), None))
+    monkeypatch.setattr(study_module, "ask", lambda study, number, count: [(study.ask(), None) for _ in range(count)])
     asked = searched("asked")
     assert len(planned) == 320 and planned == asked
     assert len({t[0] for t in planned if len(t[2]) > 0}) == 320

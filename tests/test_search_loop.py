@@ -1,6 +1,7 @@
-"""The search loop's own shortcuts against the plain path they stand for: the rank kept by a
-record's text against ranking.rank_key parsing the record; the garbage collector's threshold
-raised while a search runs and given back after."""
+"""The search loop's own shortcuts against the plain path they stand for: the rank stored beside
+a trial's record and the rank kept by a record's text against ranking.rank_key parsing the
+record; a batch's trials asked together against asked one by one; the garbage collector's
+threshold raised while a search runs and given back after."""
 
 from __future__ import annotations
 
@@ -8,6 +9,7 @@ import gc
 import json
 import threading
 from pathlib import Path
+from types import SimpleNamespace
 
 import optuna
 import pytest
@@ -33,12 +35,45 @@ def test_the_rank_memo_ranks_every_trial_as_rank_key(limit: int, monkeypatch: py
     for t in done[::2]:
         remembered.remember(t.user_attrs["record"], json.loads(t.user_attrs["record"]))
     for t in done:
-        assert study_module.ranked(t) == fresh(t) == remembered(t) == fresh(t) == rank_key(t)  # twice: kept
+        assert tuple(t.user_attrs[study_module.RANK_KEY_ATTR]) == rank_key(t)  # stored beside the record
+        unkeyed = SimpleNamespace(user_attrs={"record": t.user_attrs["record"]})  # stored without it (older)
+        assert study_module.ranked(t) == fresh(unkeyed) == remembered(unkeyed) == fresh(unkeyed) == rank_key(t)
     feasible = {rank_key(t)[0] for t in done}
     assert feasible == {0, 1}  # both kinds of key met (feasible by score, infeasible by violation)
     assert study_module.RankMemo(rank_key)(optuna.trial.create_trial(value=1.0)) == rank_key(
         optuna.trial.create_trial(value=1.0)
     )  # a trial without a record
+    stored = optuna.trial.create_trial(
+        value=1.0, user_attrs={"record": "not JSON", study_module.RANK_KEY_ATTR: [1, 2.5]}
+    )
+    assert study_module.ranked(stored) == (1, 2.5)  # the stored key: the record is not parsed
+
+
+@pytest.mark.parametrize("where", ["memory", "journal"])
+def test_a_batch_asked_together_makes_the_trials_asked_one_by_one(where: str, tmp_path: Path, monkeypatch) -> None:
+    """study.ask(study, number, count), the planned trials made in one storage step, against
+    the same search asking one trial at a time (count 1, the plain path): the same trials
+    (numbers, states, parameters, values, attributes), the seeds (waiting trials) among them."""
+    one_at_a_time = study_module.ask
+
+    def one_by_one(study, number, count=1):
+        asked = []
+        for _ in range(count):
+            asked += one_at_a_time(study, number, 1)
+            number = max(number, asked[-1][0].number + 1)
+        return asked
+
+    seen = []
+    for plain in (False, True):
+        if plain:
+            monkeypatch.setattr(study_module, "ask", one_by_one)
+        store = open_storage(None if where == "memory" else tmp_path / f"{plain}.journal")
+        search_id = create_search(with_search(load_spec(SPEC), trials=300, seed=1), store)
+        run_search(store, search_id, finish=False)
+        trials = optuna.load_study(study_name=search_id, storage=store).get_trials(deepcopy=False)
+        seen.append([(t.number, t.state, t.params, t.values, t.user_attrs) for t in trials])
+        assert any("fixed_params" in t.system_attrs for t in trials)  # seeds were asked too
+    assert len(seen[0]) == 300 and seen[0] == seen[1]
 
 
 def test_the_collector_passes_less_often_while_searches_run_and_its_threshold_comes_back() -> None:

@@ -148,11 +148,15 @@ def test_a_journal_written_by_plain_optuna_is_read_and_extended(tmp_path) -> Non
     assert len(optuna.load_study(study_name="old", storage=_plain_optuna(path)).get_trials()) == 4
 
 
-def test_a_trial_made_with_its_parameters_is_written_as_optuna_writes_it(tmp_path) -> None:
-    # our journal's create_new_trial (each distribution's JSON kept per distribution object)
-    # against Optuna's own JournalStorage writing the same template trial: the same record
+@pytest.mark.parametrize("together", [False, True])
+def test_a_trial_made_with_its_parameters_is_written_as_optuna_writes_it(tmp_path, together) -> None:
+    # our journal's create_new_trial (each distribution's JSON kept per distribution object),
+    # and its create_new_trials (the trials of a batch in one append, here in a batch and not),
+    # against Optuna's own JournalStorage writing the same template trials one by one: the same records
     from optuna.distributions import CategoricalDistribution, IntDistribution
     from optuna.trial import create_trial
+
+    from optimizer.storage import create_trials
 
     distributions = {"topology": CategoricalDistribution(["a", "b"]), "a.r_top": IntDistribution(-1, 40)}
     made = []
@@ -161,20 +165,30 @@ def test_a_trial_made_with_its_parameters_is_written_as_optuna_writes_it(tmp_pat
         ("optuna", _plain_optuna(tmp_path / "optuna.journal")),
     ):
         study = optuna.create_study(study_name="t", storage=store)
-        for values in ({"topology": "a", "a.r_top": 7}, {"topology": "b", "a.r_top": -1}):
-            template = create_trial(state=TrialState.RUNNING, params=values, distributions=distributions)
+        templates = []
+        for values in ({"topology": "a", "a.r_top": 7}, {"topology": "b", "a.r_top": -1}, {"topology": "a"}):
+            given = {k: distributions[k] for k in values}
+            template = create_trial(state=TrialState.RUNNING, params=values, distributions=given)
             template.datetime_start = template.datetime_start.replace(microsecond=5)  # the same time in both
-            store.create_new_trial(storage_module.study_id(study), template_trial=template)
+            templates.append(template)
+        if name == "ours" and together:
+            with batched_writes(store):
+                ids = create_trials(store, storage_module.study_id(study), templates[:2])
+            ids += create_trials(store, storage_module.study_id(study), templates[2:])
+        else:
+            ids = [store.create_new_trial(storage_module.study_id(study), template_trial=t) for t in templates]
+        assert [store.get_trial(t).params for t in ids] == [t.params for t in templates]
         lines = [json.loads(line) for line in (tmp_path / f"{name}.journal").read_bytes().splitlines()]
         made.append(
             [{k: v for k, v in record.items() if k != "worker_id"} for record in lines if record["op_code"] == 4]
         )
-        trials = optuna.load_study(study_name="t", storage=store).get_trials()
-        assert [(t.params, t.distributions, t.state) for t in trials] == [
-            ({"topology": "a", "a.r_top": 7}, distributions, TrialState.RUNNING),
-            ({"topology": "b", "a.r_top": -1}, distributions, TrialState.RUNNING),
+        trials = optuna.load_study(study_name="t", storage=_plain_optuna(tmp_path / f"{name}.journal")).get_trials()
+        assert [(t.number, t.params, t.distributions, t.state) for t in trials] == [
+            (0, {"topology": "a", "a.r_top": 7}, distributions, TrialState.RUNNING),
+            (1, {"topology": "b", "a.r_top": -1}, distributions, TrialState.RUNNING),
+            (2, {"topology": "a"}, {"topology": distributions["topology"]}, TrialState.RUNNING),
         ]
-    assert made[0] == made[1] and len(made[0]) == 2
+    assert made[0] == made[1] and len(made[0]) == 3
     assert list(made[0][0]) == list(made[1][0])  # field for field, in Optuna's order
 
 

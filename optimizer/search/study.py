@@ -45,6 +45,7 @@ from optimizer.storage import (
     TrialTally,
     batched_writes,
     claim_batch,
+    create_trials,
     quiet_optuna,
     record_trial,
     recover_stale_trials,
@@ -68,12 +69,19 @@ class _Recorded:
         self.user_attrs = {"record": record}
 
 
+#: a finished trial's user attr holding its rank key (a list), written beside its record
+RANK_KEY_ATTR = "rank_key"
+
+
 class RankMemo:
-    """``rank_key(trial)`` kept by the text of the trial's record: the sampler ranks every
-    finished trial and the snapshot's tally ranks them again, each parsing the record's JSON
-    (a third of the sampler's refresh); a search's repeated designs carry the same text. The
-    search remembers each record it makes as it makes it (:meth:`remember`), so its own
-    trials are ranked without parsing. Cleared when it holds LIMIT texts (a long-lived
+    """``rank_key(trial)``, read from the key stored beside the trial's record (user attr
+    RANK_KEY_ATTR, written by :func:`run_search` with the record) or else kept by the text of
+    the record: the sampler ranks every finished trial and the snapshot's tally ranks them
+    again, and parsing the record's JSON for it was a third of the sampler's refresh, and in a
+    shared search most of what reading another runner's trial cost (25 us or more each).
+    Trials stored without the key (by an older version) are ranked from their record; a
+    search's repeated designs carry the same text, and the search remembers each record it
+    makes as it makes it (:meth:`remember`). Cleared when it holds LIMIT texts (a long-lived
     process runs many searches)."""
 
     LIMIT = 1 << 16
@@ -83,15 +91,19 @@ class RankMemo:
         self._by_text: dict[str, tuple] = {}
 
     def __call__(self, trial: optuna.trial.FrozenTrial) -> tuple:
+        stored = trial.user_attrs.get(RANK_KEY_ATTR)
+        if stored is not None:
+            return tuple(stored)
         text = trial.user_attrs.get("record")
         if not isinstance(text, str):
             return self._key(trial)
         found = self._by_text.get(text)
         return found if found is not None else self._keep(text, self._key(trial))
 
-    def remember(self, text: str, record: dict) -> None:
-        """The rank of a trial whose record is ``record``, stored as ``text``."""
-        self._keep(text, self._key(_Recorded(record)))
+    def remember(self, text: str, record: dict) -> list:
+        """The rank of a trial whose record is ``record``, stored as ``text``; returns it as
+        the list stored beside the record (RANK_KEY_ATTR)."""
+        return list(self._keep(text, self._key(_Recorded(record))))
 
     def _keep(self, text: str, key: tuple) -> tuple:
         if len(self._by_text) >= self.LIMIT:
@@ -283,8 +295,8 @@ def run_search(
         study.set_user_attr("started", time.time())
     per_batch = batch_trials(space, budget)
     batches = told = number = 0  # number: of the next trial to be made (at least)
-    # designs this runner has evaluated (samplers revisit them): (record as stored, violation, objectives)
-    known: dict[Design, tuple[str, float, list[float]]] = {}
+    # designs this runner has evaluated (samplers revisit them): (record as stored, violation, objectives, rank key)
+    known: dict[Design, tuple[str, float, list[float], list]] = {}
     open_trials: list[optuna.Trial] = []  # asked and not yet told (failed if the run is interrupted)
     try:
         while True:
@@ -302,8 +314,7 @@ def run_search(
                     open_trials, given = [], []  # given: the parameters each trial was made with (or None)
                     with batched_writes(storage):  # a journal file: one append for the batch's new trials
                         number = trial_count(storage, study_id(study), number)
-                        for _ in range(wanted):
-                            trial, params = ask(study, number)
+                        for trial, params in ask(study, number, wanted):
                             open_trials.append(heartbeat.add(trial))
                             given.append(params)
                             number = max(number, trial.number + 1)
@@ -313,16 +324,18 @@ def run_search(
                 try:
                     fresh = list(dict.fromkeys(d for d in designs if d not in known))
                     for d, r in zip(fresh, evaluate_designs(space, fresh)):
-                        known[d] = (json.dumps(r), r["total_violation"], r["objectives"])
-                        ranked.remember(known[d][0], r)
+                        text = json.dumps(r)
+                        known[d] = (text, r["total_violation"], r["objectives"], ranked.remember(text, r))
                     records = [known[d] for d in designs]
                 except Exception as error:
                     _fail_trials(study, open_trials)
                     fail_search(storage, search_id, f"evaluation failed: {type(error).__name__}: {error}")
                     raise
                 with batched_writes(storage):  # ... and one for their records and results
-                    for t, (record, violation, objectives) in zip(trials, records):
-                        record_trial(study, t, {"record": record}, {"violation": violation}, objectives)
+                    for t, (record, violation, objectives, key) in zip(trials, records):
+                        record_trial(
+                            study, t, {"record": record, RANK_KEY_ATTR: key}, {"violation": violation}, objectives
+                        )
                         open_trials.remove(t)
                 told += len(trials)
             sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
@@ -340,19 +353,33 @@ def run_search(
     return told
 
 
-def ask(study: optuna.Study, number: int) -> tuple[optuna.Trial, dict[str, Any] | None]:
-    """The study's next trial, as ``study.ask()`` makes it, and the parameters it was made
-    with (None: to be asked, :meth:`SearchSpace.suggest`); ``number``: the number it will
-    have if it is made here. With the search's own sampler and no trial waiting, it is made
-    with every parameter in one storage write (the sampler's next_trial; a journal's one
-    record, not one per parameter), so a shared storage shows it running with them at once."""
-    storage, sampler = study_storage(study), study.sampler
-    if not isinstance(sampler, NeighbourSampler) or storage.get_all_trials(
-        study_id(study), deepcopy=False, states=(TrialState.WAITING,)
-    ):
-        return study.ask(), None  # an enqueued trial (a seed, a retry) is taken as given
-    made = sampler.next_trial(study, number)
-    return optuna.Trial(study, storage.create_new_trial(study_id(study), template_trial=made)), made.params
+def ask(study: optuna.Study, number: int, count: int = 1) -> list[tuple[optuna.Trial, dict[str, Any] | None]]:
+    """The study's next ``count`` trials, each as ``study.ask()`` makes it, and the
+    parameters each was made with (None: to be asked, :meth:`SearchSpace.suggest`);
+    ``number``: the number the first will have if it is made here. With the search's own
+    sampler, a trial is taken from the waiting ones (a seed, a retry: as given) while there
+    are any, else planned whole (the sampler's next_trial), in the order ``study.ask()``
+    would make them; the planned ones are then made together with every parameter in one
+    storage step (storage.create_trials: a journal's one record per trial, not one per
+    parameter, and one append, on Redis one round trip for the batch, not one per trial,
+    while the search's claim is held), so a shared storage shows them running with their
+    parameters at once."""
+    storage, sampler, sid = study_storage(study), study.sampler, study_id(study)
+    slots: list[tuple[optuna.Trial, None] | optuna.trial.FrozenTrial] = []
+    for _ in range(count):
+        if not isinstance(sampler, NeighbourSampler) or storage.get_all_trials(
+            sid, deepcopy=False, states=(TrialState.WAITING,)
+        ):
+            trial = study.ask()  # an enqueued trial is taken as given
+            slots.append((trial, None))
+            number = max(number, trial.number + 1)  # (made new if another runner took the waiting one first)
+        else:
+            slots.append(sampler.next_trial(study, number))
+            number += 1
+    made = iter(create_trials(storage, sid, [s for s in slots if isinstance(s, optuna.trial.FrozenTrial)]))
+    return [
+        (optuna.Trial(study, next(made)), s.params) if isinstance(s, optuna.trial.FrozenTrial) else s for s in slots
+    ]
 
 
 INTERRUPTED = "interrupted (Ctrl-C); finished trials are kept: run the search again to resume it"
