@@ -129,6 +129,21 @@ redis.call('ltrim', KEYS[2], 0, 0)
 redis.call('expire', KEYS[2], ARGV[2])
 """
 
+# KEYS[1]: the holders' hash; ARGV: the liveness keys' prefix, the trial ids joined by commas (one
+# argument: a batch's worth of ids each its own argument cost the client more than the look itself).
+# Returns the ids whose holder is recorded and has no liveness key, each holder looked up once.
+_DEAD = """
+local dead, alive = {}, {}
+for id in string.gmatch(ARGV[2], '[^,]+') do
+    local holder = redis.call('hget', KEYS[1], id)
+    if holder then
+        if alive[holder] == nil then alive[holder] = redis.call('exists', ARGV[1] .. holder) == 1 end
+        if not alive[holder] then dead[#dead + 1] = tonumber(id) end
+    end
+end
+return dead
+"""
+
 
 def deferrable(record: dict[str, Any]) -> bool:
     """Whether a batch may send ``record`` later: it changes one existing trial and does not
@@ -157,6 +172,7 @@ class RedisJournal(BaseJournalBackend):
         self._append = self.client.register_script(_APPEND)
         self._read = self.client.register_script(_READ)
         self._release = self.client.register_script(_RELEASE)
+        self.dead_held = self.client.register_script(_DEAD)
         self._creates_waiting = creates_waiting_trial
         self._lock = threading.Lock()  # the state below (threads of this process share the backend)
         self._next = 0  # the first record number on the server not read yet
@@ -331,13 +347,14 @@ class RunnerLiveness:
         self._client.set(f"{self._prefix}:alive:{self._runner}", 1, ex=self._grace)
 
     def dead(self, trial_ids: list[int]) -> list[int]:
-        """The trials among ``trial_ids`` whose recorded holder is no longer alive."""
+        """The trials among ``trial_ids`` whose recorded holder is no longer alive, looked up
+        by one server-side script (one round trip: before every batch a runner looks at the
+        other runners' running trials)."""
         if not trial_ids:
             return []
-        holders = self._client.hmget(f"{self._prefix}:holder", [str(t) for t in trial_ids])
-        known = [
-            (t, h.decode() if isinstance(h, bytes) else str(h)) for t, h in zip(trial_ids, holders) if h is not None
+        return [
+            int(t)
+            for t in self._journal.dead_held(
+                keys=[f"{self._prefix}:holder"], args=[f"{self._prefix}:alive:", ",".join(map(str, trial_ids))]
+            )
         ]
-        runners = sorted({h for _, h in known})
-        alive = dict(zip(runners, self._client.mget([f"{self._prefix}:alive:{r}" for r in runners]))) if runners else {}
-        return [t for t, h in known if alive.get(h) is None]

@@ -260,7 +260,8 @@ def test_a_killed_worker_s_trials_are_failed_and_the_budget_still_met(redis_url,
 def test_recovery_on_redis_goes_by_the_runners_liveness_not_by_age(redis_url):
     """storage.recover_stale_trials, as the CLI, the server and the workers call it (with an
     age, here 0 s): on Redis a live runner's trials are kept however old, and a dead runner's
-    (its liveness key lapsed, 1 s here) are failed; it returns (failed, still running)."""
+    (its liveness key lapsed, 1 s here) are failed, and one whose holder is not recorded is
+    kept; it returns (failed, still running)."""
     import time
 
     from optimizer.redis_journal import RedisJournal, RunnerLiveness
@@ -276,11 +277,13 @@ def test_recovery_on_redis_goes_by_the_runners_liveness_not_by_age(redis_url):
         dead = [study.ask() for _ in range(3)]
         for trial in dead:
             gone.hold(trial_id(trial))
+        unheld = study.ask()  # no holder recorded (yet): kept
         time.sleep(1.5)
-        assert recover_stale_trials(storage, search_id, 0.0) == (3, 2)
+        assert recover_stale_trials(storage, search_id, 0.0) == (3, 3)
         states = [t.state for t in study.get_trials(deepcopy=False)]
     assert [states[n] for n in live] == [TrialState.RUNNING] * 2
     assert [states[t.number] for t in dead] == [TrialState.FAIL] * 3
+    assert states[unheld.number] == TrialState.RUNNING
 
 
 def _trials(storage: optuna.storages.BaseStorage, name: str) -> list[tuple]:
