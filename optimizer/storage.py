@@ -46,7 +46,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
-from typing import IO, Any, Callable, Container, Generator, Iterator
+from typing import IO, Any, Callable, Container, Generator, Iterable, Iterator
 
 import optuna
 from optuna.storages import BaseStorage
@@ -421,8 +421,10 @@ class _SharedDistributions(JournalStorageReplayResult):
     A record that changes a trial (its attributes, its final state) is applied as Optuna's
     replay applies it, to a copy of the trial (a trial handed to a reader never changes under
     it), but a copy made by copying its fields: Optuna's ``copy.copy`` of a trial goes through
-    the generic pickling protocol, and three such copies per trial (another writer's trials
-    arrive with a user attribute, a constraint and a result) were a third of applying them."""
+    the generic pickling protocol, and four such copies per trial (another writer's trials
+    arrive with two user attributes, a constraint and a result) were a third of applying them.
+    A trial copied or created by the same read (one :meth:`apply_logs`) is not copied again:
+    no reader has it yet (readers take trials under the storage's lock, after the read)."""
 
     def __init__(self, worker_id_prefix: str) -> None:
         super().__init__(worker_id_prefix)
@@ -432,6 +434,14 @@ class _SharedDistributions(JournalStorageReplayResult):
         self._parsed: dict[str, optuna.distributions.BaseDistribution] = {}  # by its JSON
         # while armed (a list: _JournalStorage.create_new_trials), the ids of the trials this thread's records create
         self.created_here: list[int] | None = None
+        self._unread: set[int] = set()  # trials copied or created by the read being applied (no reader has them)
+
+    def apply_logs(self, logs: Iterable[dict[str, Any]]) -> None:
+        self._unread.clear()
+        try:
+            super().apply_logs(logs)
+        finally:
+            self._unread.clear()
 
     def _apply_delete_study(self, log: dict[str, Any]) -> None:
         """As Optuna's replay deletes a study, and its trials with it: Optuna keeps them (they
@@ -450,15 +460,19 @@ class _SharedDistributions(JournalStorageReplayResult):
             self._trials.dropped += len(dropped)
 
     def _changed(self, log: dict[str, Any]) -> "optuna.trial.FrozenTrial | None":
-        """A copy of the trial ``log`` changes, put in its place, if it exists and is not
-        finished (Optuna's check: a record of this process on a finished trial raises, another's
-        is ignored), else None. ``copy.copy`` of a trial, made as fast as its fields allow."""
+        """A copy of the trial ``log`` changes, put in its place (the trial itself if this
+        read copied or created it), if it exists and is not finished (Optuna's check: a record
+        of this process on a finished trial raises, another's is ignored), else None.
+        ``copy.copy`` of a trial, made as fast as its fields allow."""
         trial_id_ = log["trial_id"]
         if not self._trial_exists_and_updatable(trial_id_, log):
             return None
+        if trial_id_ in self._unread:
+            return self._trials[trial_id_]
         old = self._trials[trial_id_]
         trial = self._trials[trial_id_] = object.__new__(type(old))
         trial.__dict__.update(old.__dict__)
+        self._unread.add(trial_id_)
         return trial
 
     def _apply_set_trial_user_attr(self, log: dict[str, Any]) -> None:
@@ -497,6 +511,7 @@ class _SharedDistributions(JournalStorageReplayResult):
         super()._apply_create_trial({**log, "distributions": {}, "params": {}} if given else log)
         if len(self._trials) == made:
             return
+        self._unread.add(made)
         if given:  # its parameters as Optuna's replay reads them
             trial = self._trials[made]
             trial.distributions = {k: self._distribution(v) for k, v in given.items()}

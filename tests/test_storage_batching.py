@@ -226,8 +226,8 @@ def test_a_trial_recorded_in_one_step_reads_back_as_the_calls_one_by_one(tmp_pat
 
 def test_replaying_a_read_in_place_gives_the_trials_optuna_s_own_replay_gives(tmp_path) -> None:
     """Another writer's trials arrive with their attributes and results in one read, and the
-    replay applies those to a trial it created in the same read in place (no copy per
-    record). Reference outside the project: Optuna's own replay of the same records, one copy
+    replay applies those to a trial it created or copied in the same read in place (no copy per
+    record), while a trial a reader holds from an earlier read never changes. Reference outside the project: Optuna's own replay of the same records, one copy
     per record. Every trial is the same (ids, numbers, states, values, times, parameters,
     distributions, attributes) whether the records come in one read, one by one, or in reads
     of a few; a record on a trial finished already (another writer's, late) changes nothing."""
@@ -252,8 +252,13 @@ def test_replaying_a_read_in_place_gives_the_trials_optuna_s_own_replay_gives(tm
     def replayed(kind: type, size: int) -> list[optuna.trial.FrozenTrial]:
         replay = kind("reader-")
         records = [json.loads(line) for line in lines]
+        handed = []  # trials as a reader got them between reads, with what they held then
         for start in range(0, len(records), size):
             replay.apply_logs(iter(records[start : start + size]))
+            for t in list(replay._trials.values())[-3:]:
+                handed.append((t, (t.state, t.values, dict(t.user_attrs), dict(t.system_attrs), dict(t.params))))
+        for t, held in handed:  # a later read changed copies of them, never them
+            assert (t.state, t.values, t.user_attrs, t.system_attrs, t.params) == held
         return [replay._trials[t] for t in sorted(replay._trials)]
 
     expected = replayed(JournalStorageReplayResult, len(lines))
