@@ -35,6 +35,7 @@ from optimizer.topologies.base import CHUNK_FAST, CHUNK_FULL, Conditions, StageR
 
 TEMPERATURE_BINS = 3  # Monte Carlo temperatures are drawn from this many levels (ends and middle)
 SUPPLY_BINS = 3  # and supplies from this many (min, middle, max)
+MERGED_CALLS = 1  # Monte Carlo builds filling up to this many model calls are evaluated every temperature at once
 Tolerance = float | np.ndarray  # fraction, one for all candidates or one per candidate
 # The supply's spread: the span's (low, high) in V, or a split supply's two rails each over its
 # own range, ((V+ low, V+ high), (|V-| low, |V-| high)) in V (Spec.supply_spread)
@@ -123,14 +124,22 @@ class Builds:
         transistor, the IDSS/VP position for a JFET: ``device.spread_draw``)."""
         return device.spread_draw(self.hfe_position, self.temperature)
 
-    def groups(self) -> list[tuple[float | None, np.ndarray]]:
-        """(below_ground, build indices) for each ground's place that occurs (None: the
-        conditions' own, every build). The ground's place changes the network's structure, so
-        it is a model call's own; the temperature and the span vary within a group (the models
-        take them per element)."""
-        if self.below_ground is None:
-            return [(None, np.arange(self.samples))]
-        return [(float(g), np.flatnonzero(self.below_ground == g)) for g in np.unique(self.below_ground)]
+    def groups(self, by_temperature: bool = False) -> list[tuple[float | None, float | None, np.ndarray]]:
+        """(temperature, below_ground, build indices) for each ground's place that occurs (None:
+        the conditions' own), and with ``by_temperature`` each temperature too (None: every
+        temperature of the group). The ground's place changes the network's structure, so it is
+        a model call's own; the span, and the temperature unless ``by_temperature``, vary within
+        a group (the models take them per element)."""
+        below = np.zeros(self.samples) if self.below_ground is None else self.below_ground
+        temperature = self.temperature if by_temperature else np.zeros(self.samples)
+        return [
+            (
+                float(t) if by_temperature else None,
+                None if self.below_ground is None else float(g),
+                np.flatnonzero((temperature == t) & (below == g)),
+            )
+            for t, g in np.unique(np.stack([temperature, below]), axis=1).T
+        ]
 
 
 def _flat_result(
@@ -385,9 +394,10 @@ def monte_carlo_yield(
     that pass with an unbounded swing (swing_vpp NaN in the others' sample): for a ``passes``
     that a larger swing never fails (a spec limits the swing from below only); the yield is
     the same.
-    The builds of one ground's place (the temperature and the supply vary per build within it:
-    the models take them per element) are evaluated in blocks of candidate rows that fit one
-    evaluation chunk, so the working set stays small whatever the count and a block is one
+    The builds of one ground's place (the supply varies per build within it, and so does the
+    temperature where every build fits MERGED_CALLS model calls; past that, one temperature per
+    call: the models take them per element) are evaluated in blocks of candidate rows that fit
+    one evaluation chunk, so the working set stays small whatever the count and a block is one
     model call.
     """
     supply_range = (conditions.supply, conditions.supply) if supply_range is None else supply_range
@@ -397,8 +407,13 @@ def monte_carlo_yield(
     positions = {role: builds.part_position(role) for role in values}
     hfe_all = builds.hfe(device)
     passed = np.zeros(n)
-    for below, idx in builds.groups():  # one call per block of a ground's place
-        rows = max(1, (CHUNK_FULL if full else CHUNK_FAST) // idx.size)
+    step = CHUNK_FULL if full else CHUNK_FAST
+    # Builds that fit one model call take every temperature in it (a small call's cost is mostly
+    # fixed); more take a call per temperature, as a temperature per element costs more per
+    # element (NF*VT and IS as arrays in every Newton step: benchmarks/results/models.md)
+    by_temperature = n * samples > step * MERGED_CALLS
+    for temperature, below, idx in builds.groups(by_temperature):  # one call per block of a group
+        rows = max(1, step // idx.size)
         for i in range(0, n, rows):
             block = slice(i, min(i + rows, n))
             drawn = {
@@ -409,7 +424,11 @@ def monte_carlo_yield(
             hfe = np.broadcast_to(hfe_all[None, idx], shape)
             at = replace(
                 conditions,
-                temperature=np.broadcast_to(builds.temperature[None, idx], shape).reshape(-1),
+                temperature=(
+                    np.broadcast_to(builds.temperature[None, idx], shape).reshape(-1)
+                    if temperature is None
+                    else temperature
+                ),
                 supply=np.broadcast_to(builds.supply[None, idx], shape).reshape(-1),
                 below_ground=conditions.below_ground if below is None else below,
             )

@@ -64,7 +64,7 @@ def test_monte_carlo_draws_the_rails_independently() -> None:
     assert len(pairs) == SUPPLY_BINS**2  # every level of V+ with every level of V-
     assert abs(np.corrcoef(v_pos, v_neg)[0, 1]) < 0.1  # independent, not one span scaled
     # the builds are grouped by the ground's place, and cover every build once
-    assert sorted(np.concatenate([idx for _, idx in builds.groups()])) == list(range(2000))
+    assert sorted(np.concatenate([idx for *_, idx in builds.groups()])) == list(range(2000))
 
 
 def test_rail_ratio_spreads_the_collector_wider_than_the_span_alone() -> None:

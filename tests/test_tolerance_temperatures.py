@@ -9,7 +9,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from optimizer import robustness, scoring
+from optimizer import robustness, scoring, tolerance
 from optimizer.spec import parse_spec
 from optimizer.tolerance import TEMPERATURE_BINS, Builds, bias_spread, monte_carlo_yield
 from optimizer.topologies import get_topology
@@ -73,7 +73,7 @@ def _recorded_builds(topology, parts, conditions, temperatures, supply_range, fu
 
     def passes(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:
         assert rows == slice(0, n)
-        _, idx = next(groups)
+        *_, idx = next(groups)
         for key, value in sample.items():
             seen.setdefault(key, np.zeros((n, samples), dtype=value.dtype))[:, idx] = value
         return sample["supply_current"] < threshold[:, None]
@@ -115,6 +115,48 @@ def test_monte_carlo_builds_of_all_temperatures_match_one_range_per_temperature(
     np.testing.assert_array_equal(fraction, passed.mean(axis=1))
     assert np.all((fraction > 0.05) & (fraction < 0.95))  # the limit splits the builds
     assert np.ptp(merged["ic"][0, temperature == levels[0]]) > 0  # and the temperature moves them
+
+
+@pytest.mark.parametrize("full", [False, True], ids=["core", "full"])
+@pytest.mark.parametrize("parts, conditions, supply_range", [SINGLE, SPLIT], ids=["single", "split"])
+def test_monte_carlo_call_per_temperature_gives_the_merged_yield(
+    monkeypatch, parts: dict, conditions, supply_range, full: bool
+) -> None:
+    """Builds filling more than tolerance.MERGED_CALLS model calls take a call per temperature
+    (the temperature a scalar): the same yield as every temperature in one call."""
+    topology = get_topology("divider_ce")
+    threshold = topology.evaluate(parts, DEVICE, replace(conditions, supply=np.full(2, conditions.supply))).metrics[
+        "supply_current"
+    ]
+    calls: list[object] = []
+
+    def passes(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:
+        return sample["supply_current"] < threshold[rows, None]
+
+    def yield_with(merged_calls: float) -> np.ndarray:
+        monkeypatch.setattr(tolerance, "MERGED_CALLS", merged_calls)
+        real = topology.evaluate
+
+        def counted(parts, device, at, **kwargs):
+            calls.append(at.temperature)
+            return real(parts, device, at, **kwargs)
+
+        monkeypatch.setattr(topology, "evaluate", counted)
+        try:
+            return monte_carlo_yield(
+                topology, parts, DEVICE, conditions, TOLERANCES, (0.0, 50.0), passes, 300, 5, full, supply_range
+            )
+        finally:
+            monkeypatch.setattr(topology, "evaluate", real)
+
+    merged = yield_with(np.inf)
+    assert all(np.ndim(t) == 1 for t in calls)  # a temperature per element
+    calls.clear()
+    by_temperature = yield_with(0)
+    assert calls and all(np.ndim(t) == 0 for t in calls)  # one temperature per call
+    assert len({float(t) for t in calls}) == TEMPERATURE_BINS
+    np.testing.assert_array_equal(by_temperature, merged)
+    assert np.all((merged > 0.05) & (merged < 0.95))  # the limit splits the builds
 
 
 def test_bias_spread_of_both_temperatures_matches_each_alone() -> None:
@@ -181,7 +223,7 @@ def test_judge_of_all_temperatures_matches_one_range_per_temperature(monkeypatch
                 # unbounded swing (every swing_vpp infinite), then the swing solved where they pass
                 nonlocal idx
                 if np.all(np.isinf(sample["swing_vpp"])):
-                    idx = next(groups)[1]
+                    idx = next(groups)[-1]
                 verdict = passes(sample, rows)
                 verdicts[rows, idx] &= verdict & sample["active"]
                 return verdict
