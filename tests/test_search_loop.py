@@ -15,7 +15,8 @@ import optuna
 import pytest
 from optuna.trial import TrialState
 
-from optimizer.search import create_search, rank_key, run_search, study as study_module, with_search
+from optimizer.errors import StorageError
+from optimizer.search import create_search, delete_search, rank_key, run_search, study as study_module, with_search
 from optimizer.spec import load_spec
 from optimizer.storage import open_storage
 
@@ -106,3 +107,30 @@ def test_the_collector_passes_less_often_while_searches_run_and_its_threshold_co
     for th in threads:
         th.join()
     assert gc.get_threshold() == before
+
+
+@pytest.mark.parametrize("recreated", [False, True], ids=["deleted", "deleted-and-made-again"])
+def test_a_search_deleted_by_another_process_while_it_runs_stops_with_a_storage_error(
+    recreated: bool, tmp_path: Path
+) -> None:
+    """Another process deletes the search after the runner's first batch (and, as a `--fresh`
+    run does, makes a search of the same id again): the runner stops with a StorageError that
+    names the search, not a bare KeyError (the CLI's 'internal error')."""
+    journal = tmp_path / "s.journal"
+    spec = with_search(load_spec(SPEC), trials=600, seed=1)
+    runner = open_storage(journal)
+    search_id = create_search(spec, runner)
+
+    batches = []
+
+    def another_process_deletes() -> bool:  # asked before each batch, outside its claim and writes
+        batches.append(len(batches))
+        if len(batches) == 2:
+            other = open_storage(journal)  # its own replay of the file, as another process's
+            delete_search(other, search_id)
+            if recreated:
+                create_search(spec, other, search_id=search_id)
+        return False
+
+    with pytest.raises(StorageError, match=f"search {search_id} was deleted by another process"):
+        run_search(runner, search_id, should_stop=another_process_deletes)

@@ -18,7 +18,7 @@ from optuna.storages import BaseStorage
 from optuna.trial import TrialState
 
 from optimizer.catalog import Catalog
-from optimizer.errors import InputError
+from optimizer.errors import InputError, StorageError
 from optimizer.sampler import NeighbourSampler
 from optimizer.search.evaluation import evaluate_designs
 from optimizer.search.ranking import (
@@ -293,64 +293,86 @@ def run_search(
     if study.user_attrs.get("status") in ("queued", "failed"):
         study.set_user_attr("status", "running")
         study.set_user_attr("started", time.time())
-    per_batch = batch_trials(space, budget)
-    batches = told = number = 0  # number: of the next trial to be made (at least)
-    # designs this runner has evaluated (samplers revisit them): (record as stored, violation, objectives, rank key)
-    known: dict[Design, tuple[str, float, list[float], list]] = {}
-    open_trials: list[optuna.Trial] = []  # asked and not yet told (failed if the run is interrupted)
-    try:
-        while True:
-            if study_attrs(study).get("status") == "cancelled" or (should_stop and should_stop()):
-                return told
-            recover_stale_trials(storage, study)  # a dead runner's trials (heartbeats): failed, queued again
-            with TrialHeartbeat(storage) as heartbeat:
-                with claim_batch(storage, search_id):
-                    finished, running = trial_counts(study)
-                    if progress:
-                        progress(finished, budget)
-                    wanted = min(per_batch, budget - finished - running)
-                    if wanted <= 0 or (max_batches is not None and batches >= max_batches):
-                        break
-                    open_trials, given = [], []  # given: the parameters each trial was made with (or None)
-                    with batched_writes(storage):  # a journal file: one append for the batch's new trials
-                        number = trial_count(storage, study_id(study), number)
-                        for trial, params in ask(study, number, wanted):
-                            open_trials.append(heartbeat.add(trial))
-                            given.append(params)
-                            number = max(number, trial.number + 1)
-                trials = list(open_trials)
-                with batched_writes(storage):  # ... one for the parameters asked (the seeds')
-                    designs = [space.design_of(p) if p else space.suggest(t) for t, p in zip(trials, given)]
-                try:
-                    fresh = list(dict.fromkeys(d for d in designs if d not in known))
-                    for d, r in zip(fresh, evaluate_designs(space, fresh)):
-                        text = json.dumps(r)
-                        known[d] = (text, r["total_violation"], r["objectives"], ranked.remember(text, r))
-                    records = [known[d] for d in designs]
-                except Exception as error:
-                    _fail_trials(study, open_trials)
-                    fail_search(storage, search_id, f"evaluation failed: {type(error).__name__}: {error}")
-                    raise
-                with batched_writes(storage):  # ... and one for their records and results
-                    for t, (record, violation, objectives, key) in zip(trials, records):
-                        record_trial(
-                            study, t, {"record": record, RANK_KEY_ATTR: key}, {"violation": violation}, objectives
-                        )
-                        open_trials.remove(t)
-                told += len(trials)
-            sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
-            save_snapshot(storage, ranked, same_design, every=SNAPSHOT_EVERY)  # reopening reads a short tail
-            batches += 1
-    except KeyboardInterrupt:  # Ctrl-C: the batch in hand is failed, the search stays resumable
-        _fail_trials(study, open_trials)
-        fail_search(storage, search_id, INTERRUPTED)
-        raise
-    finally:
-        sync(storage)  # everything this runner wrote is on disk
-    if finish:
-        _finish_when_done(study, space, budget)
-    save_snapshot(storage, ranked, same_design)
+    with _deleted_meanwhile(storage, study, search_id):
+        per_batch = batch_trials(space, budget)
+        batches = told = number = 0  # number: of the next trial to be made (at least)
+        # designs this runner has evaluated (samplers revisit them): (record as stored, violation, objectives, rank key)
+        known: dict[Design, tuple[str, float, list[float], list]] = {}
+        open_trials: list[optuna.Trial] = []  # asked and not yet told (failed if the run is interrupted)
+        try:
+            while True:
+                if study_attrs(study).get("status") == "cancelled" or (should_stop and should_stop()):
+                    return told
+                recover_stale_trials(storage, study)  # a dead runner's trials (heartbeats): failed, queued again
+                with TrialHeartbeat(storage) as heartbeat:
+                    with claim_batch(storage, search_id):
+                        finished, running = trial_counts(study)
+                        if progress:
+                            progress(finished, budget)
+                        wanted = min(per_batch, budget - finished - running)
+                        if wanted <= 0 or (max_batches is not None and batches >= max_batches):
+                            break
+                        open_trials, given = [], []  # given: the parameters each trial was made with (or None)
+                        with batched_writes(storage):  # a journal file: one append for the batch's new trials
+                            number = trial_count(storage, study_id(study), number)
+                            for trial, params in ask(study, number, wanted):
+                                open_trials.append(heartbeat.add(trial))
+                                given.append(params)
+                                number = max(number, trial.number + 1)
+                    trials = list(open_trials)
+                    with batched_writes(storage):  # ... one for the parameters asked (the seeds')
+                        designs = [space.design_of(p) if p else space.suggest(t) for t, p in zip(trials, given)]
+                    try:
+                        fresh = list(dict.fromkeys(d for d in designs if d not in known))
+                        for d, r in zip(fresh, evaluate_designs(space, fresh)):
+                            text = json.dumps(r)
+                            known[d] = (text, r["total_violation"], r["objectives"], ranked.remember(text, r))
+                        records = [known[d] for d in designs]
+                    except Exception as error:
+                        _fail_trials(study, open_trials)
+                        fail_search(storage, search_id, f"evaluation failed: {type(error).__name__}: {error}")
+                        raise
+                    with batched_writes(storage):  # ... and one for their records and results
+                        for t, (record, violation, objectives, key) in zip(trials, records):
+                            record_trial(
+                                study, t, {"record": record, RANK_KEY_ATTR: key}, {"violation": violation}, objectives
+                            )
+                            open_trials.remove(t)
+                    told += len(trials)
+                sync(storage, SYNC_EVERY)  # the batches of the last second are on disk
+                save_snapshot(storage, ranked, same_design, every=SNAPSHOT_EVERY)  # reopening reads a short tail
+                batches += 1
+        except KeyboardInterrupt:  # Ctrl-C: the batch in hand is failed, the search stays resumable
+            _fail_trials(study, open_trials)
+            fail_search(storage, search_id, INTERRUPTED)
+            raise
+        finally:
+            sync(storage)  # everything this runner wrote is on disk
+        if finish:
+            _finish_when_done(study, space, budget)
+        save_snapshot(storage, ranked, same_design)
     return told
+
+
+@contextlib.contextmanager
+def _deleted_meanwhile(storage: BaseStorage, study: optuna.Study, search_id: str) -> Iterator[None]:
+    """A run's storage lookups fail with KeyError once another process deleted its search (a
+    ``stagefit search --fresh`` of the same spec, the service's purge): said as a StorageError
+    that names the search, not as an internal error. Other KeyErrors pass as they are."""
+    try:
+        yield
+    except KeyError as error:
+        try:
+            gone = storage.get_study_id_from_name(search_id) != study_id(study)
+        except KeyError:
+            gone = True
+        if gone:
+            raise StorageError(
+                f"search {search_id} was deleted by another process while this run was at it "
+                "(a `stagefit search --fresh` of the same spec, or the service's purge): its trials are gone; "
+                "run the command again to search afresh"
+            ) from error
+        raise
 
 
 def ask(study: optuna.Study, number: int, count: int = 1) -> list[tuple[optuna.Trial, dict[str, Any] | None]]:
