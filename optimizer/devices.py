@@ -9,8 +9,8 @@ degrees Celsius.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, fields
-from typing import Any, ClassVar, Mapping
+from dataclasses import dataclass, fields, replace
+from typing import Any, ClassVar, Mapping, Sequence, TypeVar
 
 import numpy as np
 
@@ -128,8 +128,12 @@ class Device:
         return {k: float(getattr(self, k)) for k in SPICE_KEYS + FLICKER_KEYS}
 
     @property
-    def inv_vaf(self) -> float:
-        """1/VAF in 1/V (0 when VAF is 0 or infinite, as in SPICE)."""
+    def inv_vaf(self) -> float | np.ndarray:
+        """1/VAF in 1/V (0 when VAF is 0 or infinite, as in SPICE; per candidate for a :func:`stack_devices`)."""
+        if np.ndim(self.VAF):
+            vaf = np.asarray(self.VAF)
+            with np.errstate(divide="ignore"):
+                return np.where((vaf <= 0) | np.isinf(vaf), 0.0, 1.0 / vaf)
         return 0.0 if self.VAF <= 0 or math.isinf(self.VAF) else 1.0 / self.VAF
 
     # ---- the device's own spread (tolerance.py draws it; the models take it as ``hfe``) ----
@@ -354,6 +358,52 @@ class JFET:
 
 
 AnyDevice = Device | JFET
+D = TypeVar("D", bound=AnyDevice)  # one kind of device, kept through stacking and slicing
+
+
+def _numbers(device: AnyDevice) -> list[str]:
+    """The device's numeric fields (every field but id and polarity)."""
+    return [f.name for f in fields(device) if f.name not in ("id", "polarity")]
+
+
+def stack_key(device: AnyDevice) -> tuple[str, str, bool]:
+    """What devices that share a model call (:func:`stack_devices`) have in common: kind,
+    polarity and whether they have flicker noise (a network with a flicker source integrates
+    its noise on a denser grid, for every candidate of the call)."""
+    return device.kind, device.polarity, bool(device.KF > 0)
+
+
+def stack_devices(devices: Sequence[D], which: np.ndarray) -> D:
+    """One device whose every numeric field is an array over candidates: candidate k takes
+    ``devices[which[k]]``'s value. The models work on it as on one device (their arrays run
+    along the candidates), so candidates of several devices of one :func:`stack_key` are one
+    model call with the figures of a call per device. Its id is the devices' ids joined by '+'."""
+    first = devices[0]
+    if any(stack_key(d) != stack_key(first) for d in devices):
+        raise ValueError("stack_devices takes devices of one kind, polarity and flicker noise (stack_key)")
+    which = np.asarray(which)
+    values = {name: np.array([getattr(d, name) for d in devices], dtype=float)[which] for name in _numbers(first)}
+    return replace(first, id="+".join(d.id for d in devices), **values)
+
+
+def is_stacked(device: AnyDevice) -> bool:
+    """Whether ``device`` carries a value per candidate (:func:`stack_devices`)."""
+    return bool(np.ndim(device.p_max))
+
+
+def device_rows(device: D, rows: np.ndarray | slice) -> D:
+    """A stacked device's candidates at ``rows`` (the device itself when it is not stacked)."""
+    if not is_stacked(device):
+        return device
+    return replace(device, **{name: getattr(device, name)[rows] for name in _numbers(device)})
+
+
+def device_columns(device: D) -> D:
+    """A stacked device's values as columns (candidates, 1), beside parts made columns (the
+    static transfer's samples run along the second axis); the device itself when it is not stacked."""
+    if not is_stacked(device):
+        return device
+    return replace(device, **{name: getattr(device, name)[:, None] for name in _numbers(device)})
 
 
 def device_from_row(row: Mapping) -> AnyDevice:

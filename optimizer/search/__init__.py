@@ -2,7 +2,7 @@
 
 Flow: :class:`SearchSpace` (ordered indices into each resistor's allowed values, the
 topology, the device) -> a batch of trials asked from Optuna -> one vectorised evaluation
-per (topology, device) group (:func:`evaluate_designs`: capacitors sized after the
+per topology, its devices stacked (:func:`evaluate_designs`: capacitors sized after the
 resistors, every metric, hard limits and ratings as normalised violations, the
 desirability score) -> told back with the spec's objectives and one constraint (the summed
 violation, 0 = feasible) -> ranking and Pareto front.

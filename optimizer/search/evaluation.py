@@ -1,13 +1,15 @@
-"""Evaluating designs of the search space: one vectorised call per (topology, device) group,
+"""Evaluating designs of the search space: one vectorised call per topology (its devices stacked),
 capacitors sized after the resistors, hard limits as violations, the robustness screen."""
 
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 
 import numpy as np
 
 from optimizer import robustness, scoring
+from optimizer.devices import stack_devices, stack_key
 from optimizer.scoring import unique_values_array
 from optimizer.search.space import ABSENT, ABSENT_RATING, Design, SearchSpace
 from optimizer.sizing import size_capacitors, size_decoupling
@@ -25,7 +27,7 @@ FULL_ONLY_OPTIMISTIC = {"f_low": 0.0, "f_high": np.inf, "noise_ein_v": 0.0, "noi
 def evaluate_group(
     space: SearchSpace,
     topology_name: str,
-    device_id: str,
+    device_id: str | Sequence[str],
     index: dict[str, np.ndarray],
     *,
     full: bool = True,
@@ -33,7 +35,8 @@ def evaluate_group(
 ) -> dict:
     """Metrics, violations, score and objective values of designs of one topology and device,
     given as part indices by role (arrays; ABSENT = optional part left out). Capacitors
-    not given are sized after the resistors.
+    not given are sized after the resistors. ``device_id`` may give each design its own device
+    (devices of one kind and polarity: devices.stack_devices; the same figures as a call per device).
 
     ``full=False`` is the optimistic bound the exhaustive oracle prunes with: no capacitor
     sizing (``c_in`` the smallest allowed value, which maximises the input impedance seen
@@ -46,7 +49,10 @@ def evaluate_group(
     bias spread (``ic_spread``) and the screened ``yield``; the screen only adds violations,
     so leaving it out keeps the bound optimistic."""
     robust = full if robust is None else robust
-    spec, topology, device = space.spec, get_topology(topology_name), space.devices[device_id]
+    spec, topology = space.spec, get_topology(topology_name)
+    ids = [device_id] if isinstance(device_id, str) else list(dict.fromkeys(device_id))
+    which = np.zeros(1, dtype=int) if isinstance(device_id, str) else np.array([ids.index(d) for d in device_id])
+    device = space.devices[ids[0]] if len(ids) == 1 else stack_devices([space.devices[d] for d in ids], which)
     rt, ct = space.resistors, space.capacitors
     conditions = scoring.conditions_from_spec(spec)
     given_caps = {c: ct.values[i] for c, i in index.items() if c.startswith("c_")}
@@ -118,27 +124,30 @@ def evaluate_group(
     )
     if robust and spec.robustness != "nominal":  # not screened: counted as failing every build
         violations["yield" if spec.robustness == "yield" else "worst_case"] = np.ones(n)
-    if near.size:  # designs far outside a limit at nominal are not screened
+    for position, judged_id in enumerate(ids if near.size else []):  # designs far outside a limit are not screened
+        rows = near if len(ids) == 1 else near[which[near] == position]  # one device at a time
+        if not rows.size:
+            continue
         tolerances = {
-            **{r: rt.tolerance[np.maximum(i, 0)][near] for r, i in index.items()},
-            **{c: ct.tolerance[i][near] for c, i in cap_index.items()},
+            **{r: rt.tolerance[np.maximum(i, 0)][rows] for r, i in index.items()},
+            **{c: ct.tolerance[i][rows] for c, i in cap_index.items()},
         }
         judged = robustness.judge(
             spec,
             topology,
-            {k: v[near] for k, v in parts.items()},
-            device,
+            {k: v[rows] for k, v in parts.items()},
+            space.devices[judged_id],
             conditions,
             tolerances,
-            {k: v[near] if np.ndim(v) else v for k, v in limits.items()},
-            {k: v[near] for k, v in nominal.items()},
+            {k: v[rows] if np.ndim(v) else v for k, v in limits.items()},
+            {k: v[rows] for k, v in nominal.items()},
             full=False,
             builds=robustness.SCREEN_BUILDS,
         )
         for k, v in judged.violations.items():
-            violations.setdefault(k, np.zeros(n))[near] = v
-        metrics["yield"][near] = judged.yield_fraction
-        metrics["ic_spread"][near] = judged.spread["ic_spread"]
+            violations.setdefault(k, np.zeros(n))[rows] = v
+        metrics["yield"][rows] = judged.yield_fraction
+        metrics["ic_spread"][rows] = judged.spread["ic_spread"]
     total = np.nan_to_num(scoring.total_violation(violations), nan=1e6)
 
     metrics["gain_error_db"] = scoring.gain_error_db(spec, metrics["gain"])
@@ -150,7 +159,7 @@ def evaluate_group(
     metrics["cost"] = (
         sum(np.where(present[r], rt.unit_price[np.maximum(i, 0)], 0.0) for r, i in index.items())
         + sum(cap_prices)
-        + topology.transistors * space.device_price[device_id]
+        + topology.transistors * np.array([space.device_price[d] for d in ids])[which]
     )
     metrics["unique_values"] = unique_values_array({**resistors, **(caps if full else {})}).astype(float)
     terms = scoring.desirability_terms(spec, metrics)
@@ -181,26 +190,27 @@ def _finite(x: float) -> float | None:
 
 
 def evaluate_designs(space: SearchSpace, designs: list[Design]) -> list[dict]:
-    """Evaluate ``designs`` in one vectorised call per (topology, device) group.
+    """Evaluate ``designs`` in one vectorised call per topology and :func:`~optimizer.devices.stack_key`
+    (its devices stacked: devices.stack_devices; the same figures as a call per device).
 
     Returns one JSON-ready record per design: topology, device, parts (role -> value in ohm
     or F), metrics (DESIGN.md names, SI; None where the model has no figure), violations
     (limit -> normalised excess, only those > 0), total_violation, binding, feasible, score,
     objectives (the spec's objective values, finite)."""
     out: list[dict | None] = [None] * len(designs)
-    groups: dict[tuple[str, str], list[int]] = {}
+    groups: dict[tuple[str, tuple], list[int]] = {}
     for k, d in enumerate(designs):
-        groups.setdefault((d.topology, d.device), []).append(k)
-    for (topology, device_id), members in groups.items():
+        groups.setdefault((d.topology, stack_key(space.devices[d.device])), []).append(k)
+    for (topology, _), members in groups.items():
         roles = [r for r, _ in designs[members[0]].parts]
         index = {r: np.array([dict(designs[k].parts)[r] for k in members]) for r in roles}
-        g = evaluate_group(space, topology, device_id, index)
+        g = evaluate_group(space, topology, [designs[k].device for k in members], index)
         for j, k in enumerate(members):
             metrics = {m: _finite(v[j]) for m, v in g["metrics"].items()}
             feasible = bool(g["total"][j] == 0)
             record = {
                 "topology": topology,
-                "device": device_id,
+                "device": designs[k].device,
                 "parts": {
                     **{r: float(v[j]) for r, v in g["resistors"].items()},
                     **{c: float(v[j]) for c, v in g["caps"].items()},

@@ -14,7 +14,7 @@ from typing import Any, Callable, ClassVar
 import numpy as np
 
 from optimizer import physics
-from optimizer.devices import AnyDevice, saturation_current, thermal_voltage
+from optimizer.devices import AnyDevice, device_columns, device_rows, saturation_current, thermal_voltage
 from optimizer.errors import InputError, Problem
 from optimizer.synthesis import HandRequirements, on_split_supply
 
@@ -708,7 +708,7 @@ class StageModel(Topology):
         for i in range(0, n, step):
             r = self._evaluate(
                 {k: v[i : i + step] for k, v in p.items()},
-                device,
+                device_rows(device, slice(i, i + step)),
                 conditions,
                 h[i : i + step],
                 full,
@@ -806,7 +806,7 @@ class StageModel(Topology):
                 if rows.size:
                     sub_p, sub_c, sub_b, sub_nvt = _rows_of(rows, gain.size, p, conditions, b, nvt)
                     result.metrics["swing_vpp"][rows] = self._usable_swing(
-                        sub_p, device, sub_c, sub_b, sub_nvt, gain[rows], 0.5 * clip[rows]
+                        sub_p, device_rows(device, rows), sub_c, sub_b, sub_nvt, gain[rows], 0.5 * clip[rows]
                     )
         return result
 
@@ -963,7 +963,13 @@ class StageModel(Topology):
         local = replace(c, supply=b.op["v_supply_local"][:, None])  # c_decouple holds it
         op = {k: v[:, None] for k, v in b.op.items()}
         return self.static_output(
-            {k: v[:, None] for k, v in p.items()}, device, local, Bias(op, b.small_signal), nvt, i_s, beta[:, None]
+            {k: v[:, None] for k, v in p.items()},
+            device_columns(device),
+            local,
+            Bias(op, b.small_signal),
+            nvt,
+            i_s,
+            beta[:, None],
         )
 
     def _usable_swing(

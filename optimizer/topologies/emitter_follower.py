@@ -18,7 +18,7 @@ from typing import Callable
 import numpy as np
 
 from optimizer import physics
-from optimizer.devices import Device
+from optimizer.devices import Device, device_columns
 from optimizer.synthesis import VBE_HAND, HandRequirements, coupling_capacitor, divider, parallel
 from optimizer.topologies.base import (
     Bias,
@@ -351,7 +351,7 @@ class EmitterFollower(StageModel):
         d_vbe, d_ve = q["vbe"] - col("vbe"), q["v_emitter"] - col("v_emitter")
         i_c = q["ic"] - col("ic") - ss["gm"][:, None] * d_vbe + ss["go"][:, None] * d_ve
         i_b = q["ib"] - col("ib") - ss["gpi"][:, None] * d_vbe
-        charge = physics.depletion_charge(device.CJC, q["v_emitter"] + q["vbe"] - col("v_supply_local"))
+        charge = physics.depletion_charge(device_columns(device).CJC, q["v_emitter"] + q["vbe"] - col("v_supply_local"))
         spectra = [np.fft.rfft(w, axis=-1)[:, 2 : harmonics + 1].T for w in (i_c, i_b, charge)]
         fundamental = np.abs(np.fft.rfft(fn(vs), axis=-1)[:, 1])
         f = physics.THD_FREQUENCY * np.arange(2, harmonics + 1)[:, None]
