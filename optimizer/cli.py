@@ -302,7 +302,7 @@ def _run_or_reuse(args: argparse.Namespace, spec, *, every: bool = False):
         spec_search_id,
         with_search,
     )
-    from optimizer.storage import recover_stale_trials, stale_after_seconds
+    from optimizer.storage import recover_stale_trials, save_replay_when_worth, stale_after_seconds
 
     spec = with_search(spec, trials=args.trials, seed=args.seed)
     storage = open_storage(args.storage)
@@ -351,6 +351,8 @@ def _run_or_reuse(args: argparse.Namespace, spec, *, every: bool = False):
         time.sleep(0.5)
     if status["status"] == "failed":
         raise StorageError(f"search {search_id} failed: {status.get('reason') or 'see the log'}")
+    if not done:
+        save_replay_when_worth(storage)  # the next command on this journal restores this search, not replays it
     wanted = max(args.top, getattr(args, "rank", 1), 1)
     return load_search(storage, search_id, top=max(args.top, 1), limit=None if every else wanted)
 

@@ -2,7 +2,9 @@
 last run's search) opens replaying as many records as after one run, and its live searches
 come back as Optuna's own JournalStorage replays them from the file (the reference: the same
 trials, ids, numbers, states, parameters, values, attributes and times), also while another
-process holding the journal open keeps writing; a damaged or stale replay snapshot is not used."""
+process holding the journal open keeps writing; a damaged or stale replay snapshot is not used.
+A restored search's trials are built only when first read: a process that runs or deletes one
+search builds none of the others', and still writes them back (and lists them) as they are."""
 
 from __future__ import annotations
 
@@ -11,9 +13,19 @@ from pathlib import Path
 import optuna
 import pytest
 
-from optimizer.search import create_search, delete_search, run_search, spec_search_id, with_search
+from optimizer import storage as storage_module
+from optimizer.search import (
+    create_search,
+    delete_search,
+    list_searches,
+    run_search,
+    search_status,
+    spec_search_id,
+    with_search,
+)
 from optimizer.spec import load_spec
-from optimizer.storage import _journal, replay_path
+from optimizer.storage import _journal, replay_path, save_replay, save_replay_when_worth
+from test_snapshot import _without_clock
 
 SPEC = Path(__file__).resolve().parents[1] / "benchmarks" / "specs" / "bs_e24_split_guitar.yaml"
 TRIALS = 48
@@ -84,7 +96,7 @@ def test_a_journal_after_many_fresh_runs_replays_as_many_records_as_after_one(tm
     one, two, many = _opened(once), _opened(twice), _opened(often)
     assert many._journal.records_read == two._journal.records_read <= one._journal.records_read
     assert many._replay_result.log_number_read > two._replay_result.log_number_read  # the file holds more
-    assert dict.__len__(many._replay_result._trials) == dict.__len__(one._replay_result._trials) == 2 * TRIALS
+    assert many._replay_result._trials.live() == one._replay_result._trials.live() == 2 * TRIALS
     for path, storage in ((once, one), (twice, two), (often, many)):
         assert _state(storage) == _state(_plain(path))  # the live searches intact
         assert len(_state(storage)) == 2
@@ -152,4 +164,83 @@ def test_the_replay_snapshot_is_written_once_the_deleted_trials_are_a_quarter_of
     assert written == [False, False, True]
     later = _opened(path)
     assert later._journal.records_read < later._replay_result.log_number_read
+    assert _state(later) == _state(_plain(path))
+
+
+def _built(storage) -> set[int]:
+    """The studies whose trials the storage's replay has built (not deferred)."""
+    replay = storage._replay_result
+    return {sid for sid, ids in replay._study_id_to_trial_ids.items() if ids and sid not in replay._trials.deferred}
+
+
+def test_a_restored_search_is_built_only_when_read(tmp_path) -> None:
+    """Opening a journal restored from its replay snapshot builds no search's trials; reading
+    one search (as a run of it does) builds that one alone; the state then agrees with Optuna's
+    replay, and a deferred search deleted unbuilt leaves the next trial ids as Optuna gives them."""
+    path = tmp_path / "lazy.journal"
+    _fresh_runs(path, 2)
+    assert save_replay(_opened(path))  # the snapshot now holds both live searches
+    storage = _opened(path)
+    assert _built(storage) == set() and len(storage._replay_result._trials.deferred) == 2
+    first, second = sorted(storage._replay_result._studies)
+    assert len(storage.get_all_trials(first, deepcopy=False)) == TRIALS
+    assert _built(storage) == {first}
+    assert _state(storage) == _state(_plain(path))  # reading every search builds the other one too
+    assert _built(storage) == {first, second}
+
+    unread = _opened(path)
+    delete_search(unread, unread.get_study_name_from_id(second))  # deferred, deleted unbuilt
+    assert _built(unread) == set()
+    study = optuna.load_study(study_name=unread.get_study_name_from_id(first), storage=unread)
+    made = study.ask({"x": optuna.distributions.IntDistribution(0, 9)})
+    study.tell(made, [1.0] * len(study.directions))
+    plain = _plain(path)
+    assert made._trial_id == plain.get_all_trials(first)[-1]._trial_id
+    assert _state(_opened(path)) == _state(plain)
+
+
+def test_a_run_beside_a_deferred_search_writes_it_back_as_it_was(tmp_path) -> None:
+    """A process that restores a journal and runs a new search (writing the listing snapshot as
+    it goes) and then deletes it (writing the replay snapshot) builds none of the other
+    search's trials: the listing counts it as the full replay does, and the new replay snapshot
+    carries its trials' text unchanged."""
+    path = tmp_path / "beside.journal"
+    _fresh_runs(path, 2)
+    assert save_replay(_opened(path))
+    before = _opened(path)
+    kept = sorted(before._replay_result._studies)[0]
+    text = before._replay_result._trials.deferred[kept][0]
+    storage = _journal(path)
+    listed = [s["id"] for s in list_searches(storage)]  # as `stagefit search` lists them first
+    extra = create_search(with_search(load_spec(SPEC), trials=TRIALS, seed=7), storage)
+    run_search(storage, extra, finish=False)
+    delete_search(storage, extra)
+    assert kept not in _built(storage)
+    after = _opened(path)
+    assert after._replay_result._trials.deferred[kept][0] == text
+    assert _state(after) == _state(_plain(path))
+    for search_id in listed:  # each search's status from the listing snapshot, as the full replay gives it
+        from_snapshot = search_status(_journal(path), search_id)
+        assert _without_clock(from_snapshot) == _without_clock(search_status(_plain(path), search_id))
+
+
+def test_a_journal_kept_for_several_searches_gets_a_replay_snapshot_when_a_search_is_done(
+    tmp_path, monkeypatch
+) -> None:
+    """save_replay_when_worth (what `stagefit search` calls when its search is done): not on a
+    journal holding one search, nor with few records past the last snapshot; on a journal
+    holding two it writes one, and the next process reads none of their records again."""
+    monkeypatch.setattr(storage_module, "REPLAY_TAIL", 100)
+    path = tmp_path / "kept.journal"
+    first = _journal(path)
+    run_search(first, create_search(with_search(load_spec(SPEC), trials=TRIALS, seed=1), first), finish=False)
+    assert not save_replay_when_worth(first) and not replay_path(path).exists()  # one search: left as it is
+    second = _journal(path)
+    run_search(second, create_search(with_search(load_spec(SPEC), trials=TRIALS, seed=2), second), finish=False)
+    monkeypatch.setattr(storage_module, "REPLAY_TAIL", 10**6)
+    assert not save_replay_when_worth(second)  # too few records past the last snapshot
+    monkeypatch.setattr(storage_module, "REPLAY_TAIL", 100)
+    assert save_replay_when_worth(second)
+    later = _opened(path)
+    assert later._journal.records_read == 0 and _built(later) == set()
     assert _state(later) == _state(_plain(path))

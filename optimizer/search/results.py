@@ -19,7 +19,6 @@ from optimizer.search.ranking import (
     candidate_from_record,
     candidates_from_records,
     fold_variants,
-    rank_key,
     rank_records,
     trial_record,
 )
@@ -27,6 +26,7 @@ from optimizer.search.space import SearchSpace
 from optimizer.search.study import (
     completed_records,
     load_study,
+    ranked,
     same_design,
     stored_attrs,
     stored_spec,
@@ -136,7 +136,7 @@ def search_status(storage: BaseStorage, search_id: str) -> dict:
 
     A journal file this process has not replayed is answered from its snapshot and the
     records after it (storage.journal_summary), without replaying the journal."""
-    summary = journal_summary(storage, rank_key, same_design)
+    summary = journal_summary(storage, ranked, same_design)
     if summary is not None:
         found = summary.study_id(search_id)
         if found is None:
@@ -270,7 +270,7 @@ def list_searches(storage: BaseStorage) -> list[dict]:
     """Status of every search in ``storage``, newest first (without the best design). A
     search whose creation was cut short (no status yet) is listed as failed."""
     out = []
-    summary = journal_summary(storage, rank_key, same_design)  # a journal not replayed here: from its snapshot
+    summary = journal_summary(storage, ranked, same_design)  # a journal not replayed here: from its snapshot
     studies = (
         [(s["name"], s["user_attrs"]) for s in list(summary.studies.values())]  # copied at once: polls may add
         if summary is not None
