@@ -8,6 +8,8 @@ search builds none of the others', and still writes them back (and lists them) a
 
 from __future__ import annotations
 
+import json
+import logging
 from pathlib import Path
 
 import optuna
@@ -244,3 +246,19 @@ def test_a_journal_kept_for_several_searches_gets_a_replay_snapshot_when_a_searc
     later = _opened(path)
     assert later._journal.records_read == 0 and _built(later) == set()
     assert _state(later) == _state(_plain(path))
+
+
+def test_a_replay_snapshot_of_the_earlier_layout_is_replayed_in_full(tmp_path, caplog) -> None:
+    """A replay snapshot written by an earlier version (one JSON document: no index line) is
+    not used and warns nothing: the journal is read in full, and the next snapshot is this layout."""
+    path = tmp_path / "old.journal"
+    _fresh_runs(path, 2)
+    header, _, _ = replay_path(path).read_bytes().partition(b"\n")
+    records, offset = json.loads(header)["records"], json.loads(header)["offset"]
+    earlier = json.dumps({"next_study": 0, "next_trial": 0, "studies": []}).encode()
+    storage_module._write_cache(_journal(path)._journal, replay_path(path), records, offset, earlier)
+    with caplog.at_level(logging.WARNING):
+        storage = _opened(path)
+    assert storage._journal.records_read == storage._replay_result.log_number_read  # read in full
+    assert not caplog.records
+    assert _state(storage) == _state(_plain(path))
