@@ -105,6 +105,22 @@ def first_line(cmd: list[str]) -> tuple[float, float]:
     return seconds, _children_cpu() - cpu
 
 
+CALIBRATION = (
+    "import time\nfrom optimizer import load_spec, search\nfrom optimizer.search import with_search\n"
+    "spec = with_search(load_spec('specs/bench_stock_preamp.yaml'), trials=1000, seed=0)\n"
+    "start = time.process_time()\nsearch(spec)\nprint(time.process_time() - start)"
+)
+
+
+def host_speed() -> float:
+    """CPU seconds of a fixed piece of work (a 1,000-trial in-memory search, seeded) in a fresh
+    process: run at the start and the end of the benchmark, it shows how quick the host's cores
+    were then (on a shared virtual machine the same code's CPU time moves 30 % or more between
+    spells), so runs on different days can be compared."""
+    done = subprocess.run([PYTHON, "-c", CALIBRATION], cwd=ROOT, capture_output=True, text=True, check=True)
+    return float(done.stdout.strip().splitlines()[-1])
+
+
 def search_command(spec: str, storage: Path, seed: int) -> list[str]:
     return [
         *STAGEFIT,
@@ -196,6 +212,7 @@ def main() -> int:
     repeats = REPEATS[mode]
     tmp = Path(tempfile.mkdtemp(prefix="bench-startup-"))
     subprocess.run([PYTHON, "-m", "compileall", "-q", "optimizer", "api"], cwd=ROOT, check=True, capture_output=True)
+    speed_start = host_speed()
     bare = [timed([PYTHON, "-c", "pass"])[0] for _ in range(repeats + 2)]
     helps = [timed([*STAGEFIT, "--help"])[0] for _ in range(repeats + 2)]
     print(f"python -c pass {spread(bare)} s; stagefit --help {spread(helps)} s", flush=True)
@@ -252,6 +269,7 @@ def main() -> int:
             kept.append((timed(command)[0], CPU[tuple(command)]))
         print(f"{Path(kept_spec).name} on a journal kept for three other searches: {spread([w for w, _ in kept])} s")
     imports = top_imports(SPECS[mode][0], tmp / "imports.journal")
+    speed_end = host_speed()
     stages = import_cpu()
 
     met = lambda ok: "met" if ok else "**missed**"  # noqa: E731
@@ -293,7 +311,10 @@ def main() -> int:
         )
     lines += [
         "",
-        f"For scale: a bare `python -c pass` on this interpreter takes {spread(bare)} s.",
+        f"For scale: a bare `python -c pass` on this interpreter takes {spread(bare)} s. The host's speed: a "
+        f"fixed piece of work (a seeded 1,000-trial in-memory search of bench_stock_preamp) took "
+        f"{speed_start:.2f} s CPU at the start of this run and {speed_end:.2f} s at its end (compare runs by it: "
+        "the same code's CPU time moves 30 % or more between spells on this shared host).",
         "",
         "## `stagefit search` start-up alone",
         "",
