@@ -262,3 +262,23 @@ def test_a_replay_snapshot_of_the_earlier_layout_is_replayed_in_full(tmp_path, c
     assert storage._journal.records_read == storage._replay_result.log_number_read  # read in full
     assert not caplog.records
     assert _state(storage) == _state(_plain(path))
+
+
+def test_a_deferred_search_another_process_goes_on_with_is_read_whole(tmp_path) -> None:
+    """A process that restored a search unbuilt, while another process goes on running it (new
+    trials, and its earlier trials' records), reads it whole when it first reads it: the
+    snapshot's trials built, then the other process's records applied after them."""
+    path = tmp_path / "shared.journal"
+    holder = _journal(path)
+    kept = create_search(with_search(load_spec(SPEC), trials=4 * TRIALS, seed=2), holder)
+    run_search(holder, kept, max_batches=1, finish=False)
+    other = create_search(with_search(load_spec(SPEC), trials=TRIALS, seed=3), holder)
+    run_search(holder, other, finish=False)
+    assert save_replay(holder)
+    reader = _opened(path)
+    kept_id = reader.get_study_id_from_name(kept)
+    assert kept_id not in _built(reader)
+    run_search(holder, kept, finish=False)  # the rest of its budget, written by the other process
+    trials = reader.get_all_trials(kept_id, deepcopy=False)
+    assert len(trials) == 4 * TRIALS
+    assert _state(reader) == _state(_plain(path)) == _state(holder)
