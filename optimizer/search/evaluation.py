@@ -33,10 +33,11 @@ def evaluate_group(
     full: bool = True,
     robust: bool | None = None,
 ) -> dict:
-    """Metrics, violations, score and objective values of designs of one topology and device,
-    given as part indices by role (arrays; ABSENT = optional part left out). Capacitors
-    not given are sized after the resistors. ``device_id`` may give each design its own device
-    (devices of one kind and polarity: devices.stack_devices; the same figures as a call per device).
+    """Metrics, violations, score and objective values of designs of one topology, given as
+    part indices by role (arrays; ABSENT = optional part left out), with one device
+    (``device_id``) or each its own (a sequence of ids of one devices.stack_key: the devices
+    stacked into one call, devices.stack_devices, with the figures of a call per device).
+    Capacitors not given are sized after the resistors.
 
     ``full=False`` is the optimistic bound the exhaustive oracle prunes with: no capacitor
     sizing (``c_in`` the smallest allowed value, which maximises the input impedance seen
