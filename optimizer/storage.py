@@ -413,10 +413,10 @@ class _TrialsById(dict):
 
     def __init__(self) -> None:
         super().__init__()
-        self.deferred: dict[int, tuple[bytes, int]] = {}  # study id -> (its trials' JSON text, how many)
+        self.deferred: dict[int, tuple[memoryview, int]] = {}  # study id -> (its trials' JSON text, how many)
         self.deferred_count = 0
         self.owner: dict[int, int] = {}
-        self.build: "Callable[[int, bytes], None] | None" = None  # builds a deferred study's trials from its text
+        self.build: "Callable[[int, memoryview], None] | None" = None  # builds a deferred study's trials from its text
 
     def __len__(self) -> int:
         return dict.__len__(self) + self.dropped + self.deferred_count
@@ -425,7 +425,7 @@ class _TrialsById(dict):
         """Trials of the live studies, built or deferred."""
         return dict.__len__(self) + self.deferred_count
 
-    def defer(self, study_id_: int, text: bytes, count: int) -> None:
+    def defer(self, study_id_: int, text: memoryview, count: int) -> None:
         self.deferred[study_id_] = (text, count)
         self.deferred_count += count
 
@@ -558,10 +558,12 @@ class _SharedDistributions(JournalStorageReplayResult):
             if log["values"] is not None:
                 trial.values = log["values"]
 
-    def _build_deferred(self, study_id_: int, text: bytes) -> None:
+    def _build_deferred(self, study_id_: int, text: memoryview) -> None:
         """Build a study's trials from its replay snapshot text (:func:`save_replay`), under the
         ids its study lists, numbered in its order."""
-        for number, (trial_id_, form) in enumerate(zip(self._study_id_to_trial_ids[study_id_], json.loads(text))):
+        for number, (trial_id_, form) in enumerate(
+            zip(self._study_id_to_trial_ids[study_id_], json.loads(bytes(text)))
+        ):
             dict.__setitem__(self._trials, trial_id_, self._trial_of_form(number, trial_id_, form))
 
     def _trial_of_form(self, number: int, trial_id_: int, t: dict) -> optuna.trial.FrozenTrial:
@@ -1465,6 +1467,7 @@ def _restored_replay(storage: "_JournalStorage", backend: _BatchSyncedJournal) -
     header, payload = found
     replay = _SharedDistributions(storage._worker_id_prefix)
     head, _, texts = payload.partition(b"\n")
+    chunks = memoryview(texts)
     try:
         index = json.loads(head)
         if not isinstance(index, dict) or index.get("layout") != REPLAY_LAYOUT:  # an earlier version's: rewritten later
@@ -1486,7 +1489,7 @@ def _restored_replay(storage: "_JournalStorage", backend: _BatchSyncedJournal) -
             if end > len(texts):
                 raise ValueError("a study's trials run past the payload")
             if ids:
-                replay._trials.defer(sid, texts[start:end], len(ids))
+                replay._trials.defer(sid, chunks[start:end], len(ids))  # a view: the text is not copied
             start = end
         replay._next_study_id = int(index["next_study"])
         replay._trials.dropped = int(index["next_trial"]) - replay._trials.live()
