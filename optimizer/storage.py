@@ -458,6 +458,7 @@ class _TrialsById(dict):
         return dict.__contains__(self, trial_id_) or self._deferred_owner(trial_id_) is not None
 
     def get(self, trial_id_: int, default: Any = None) -> Any:
+        """``self[trial_id_]`` (building a deferred study's trials), or ``default``."""
         try:
             return self[trial_id_]
         except KeyError:
@@ -591,9 +592,8 @@ class _SharedDistributions(JournalStorageReplayResult):
         return self._parsed[text]
 
     def _apply_create_trial(self, log: dict[str, Any]) -> None:
-        self._trials.built(
-            log["study_id"]
-        )  # a deferred study's trials first (a new one may take a waiting one's place)
+        # a deferred study's trials first (a new one may take a waiting one's place)
+        self._trials.built(log["study_id"])
         given = log.get("distributions")
         made = len(self._trials)  # the id Optuna's replay gives the trial, if it is made (its study exists)
         super()._apply_create_trial({**log, "distributions": {}, "params": {}} if given else log)
