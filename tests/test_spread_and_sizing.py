@@ -168,3 +168,23 @@ def test_the_sizing_solves_the_midband_gain_once_only_where_the_capacitors_leave
     once = f_low()
     monkeypatch.setattr(type(topology), "core_is_bound", False)
     np.testing.assert_allclose(once, f_low(), rtol=1e-12)
+
+
+@pytest.mark.parametrize("design", _one_design_per_topology(), ids=lambda d: d.topology)
+def test_the_sizing_reads_whether_a_variant_meets_the_target_from_the_response_there(design) -> None:
+    # The common factors and the step-downs only ask whether f_low <= target: _LowCorner.meets
+    # answers from the response at the target frequency alone. It must give the answer of the
+    # crossing's search (evaluate(full=True)'s f_low) wherever that f_low is not within the
+    # search's tolerance of the target; the capacitors scaled together over 400x span the target.
+    topology = get_topology(design.topology)
+    sized = [c for c in topology.capacitors if design.parts[c] > 0]
+    scales = np.geomspace(0.05, 20.0, 25)
+    varied = {k: v * scales if k in sized else np.full(scales.size, v) for k, v in design.parts.items()}
+    target = design.conditions.band[0]
+    f_low = topology.evaluate(varied, design.device, design.conditions, full=True).metrics["f_low"]
+    held = {k: v for k, v in design.parts.items() if k not in sized}
+    low = _LowCorner(topology, {**held, **{c: 1.0 for c in sized}}, design.device, design.conditions)
+    meets = low.meets(np.zeros(scales.size, dtype=int), {c: varied[c] for c in sized}, target)
+    clear = np.abs(np.log10(f_low / target)) > 1e-3
+    np.testing.assert_array_equal(meets[clear], (f_low <= target)[clear])
+    assert meets.any() and not meets.all()
