@@ -194,7 +194,7 @@ def size_capacitors(
     corner_constant = {c: np.nan_to_num(k, nan=allowed[-1] * target) for c, k in corner_constant.items()}
 
     # the values of every common factor (factors, n) per capacitor; where a factor rounds every
-    # capacitor to the same values as the factor before it, its f_low is that one's (not solved again)
+    # capacitor to the same values as the factor before it takes that one's answer (not solved again)
     scaled = {c: _round_up(_SCALE_GRID[:, None] * corner_constant[c] / target, allowed) for c in caps}
     n = int(np.prod(size))
     new = np.zeros((_SCALE_GRID.size, n), dtype=bool)
