@@ -89,22 +89,27 @@ def solve_pair(
     eps2 = np.ones(shape)
     inv_b = 1.0 / beta
 
-    def state(x1: np.ndarray, x2: np.ndarray) -> tuple[np.ndarray, ...]:
-        f1 = i_s * np.expm1(x1 / nvt)
-        f2 = i_s * np.expm1(x2 / nvt)
+    def forward(x1: np.ndarray, x2: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The junctions' forward currents (A) at Vbe x1, x2."""
+        return i_s * np.expm1(x1 / nvt), i_s * np.expm1(x2 / nvt)
+
+    def nodes(f1: np.ndarray, f2: np.ndarray) -> tuple[np.ndarray, ...]:
+        """The terminal currents (A) and node voltages (V) from the forward currents, with the
+        Early factors eps1, eps2 as they stand."""
         ic1, ib1, ic2, ib2 = eps1 * f1, f1 * inv_b, eps2 * f2, f2 * inv_b
         v_e1 = v0 + k_e * (ic1 + ib1) - k_c * ic2
         v_c1 = vcc - rc1 * (ic1 + ib2)
         v_e2 = v_e2_0 + r_e2 * (ic2 + ib2)
         v_c2 = (j_c2 + v_e1 / rf - ic2) / g_c2
-        return f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2
+        return ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2
 
     for _ in range(iterations):
         # Early factors from the node voltages at this step (Vcb to the internal base), then the residuals
-        f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = state(x1, x2)
+        f1, f2 = forward(x1, x2)
+        ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = nodes(f1, f2)
         eps1 = 1.0 + (v_c1 - v_e1 - x1) * inv_vaf
         eps2 = 1.0 + (v_c2 - v_e2 - x2) * inv_vaf
-        f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = state(x1, x2)
+        ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = nodes(f1, f2)
         r1 = a1 - x1 - r_base1 * ib1 - v_e1
         r2 = v_c1 - x2 - rb * ib2 - v_e2
         # Jacobian of (r1, r2) in (x1, x2), the Early factors' own dependence on the nodes included
@@ -126,7 +131,8 @@ def solve_pair(
         d2 = (-r2 * j11 + r1 * j21) / det
         x1 = x1 + np.clip(d1, -physics.MAX_STEP, physics.MAX_STEP)
         x2 = x2 + np.clip(d2, -physics.MAX_STEP, physics.MAX_STEP)
-    f1, f2, ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = state(x1, x2)
+    f1, f2 = forward(x1, x2)
+    ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = nodes(f1, f2)
     r1 = a1 - x1 - r_base1 * ib1 - v_e1
     r2 = v_c1 - x2 - rb * ib2 - v_e2
     converged = (
