@@ -151,10 +151,11 @@ def _flat_result(
     full: bool,
     noise: bool = True,
     swing_where: Callable[[dict[str, np.ndarray]], np.ndarray] | None = None,
+    swing: bool = True,
 ) -> dict[str, np.ndarray]:
     """Evaluate arrays of shape (candidates, samples) flattened; metrics, ratings, 'active' and
-    the operating point's 'ic' come back in the same 2-D shape (``full``, ``noise``: as
-    Topology.evaluate's). The conditions' supply and temperature are scalars or flattened
+    the operating point's 'ic' come back in the same 2-D shape (``full``, ``noise``, ``swing``:
+    as Topology.evaluate's). The conditions' supply and temperature are scalars or flattened
     arrays of the same size. ``swing_where``: Topology.evaluate's, on this 2-D form (taken
     where the arrays fit one evaluation chunk; the swing solved everywhere otherwise)."""
     shape = hfe.shape
@@ -164,9 +165,11 @@ def _flat_result(
     per_element = [name for name in ("supply", "temperature") if np.ndim(getattr(conditions, name))]
     if h.size <= step:
         where = None if swing_where is None else lambda r: swing_where(_sample(r, shape)).reshape(-1)
-        result = topology.evaluate(flat, device, conditions, hfe=h, full=full, noise=noise, swing_where=where)
+        result = topology.evaluate(
+            flat, device, conditions, hfe=h, full=full, noise=noise, swing_where=where, swing=swing
+        )
     elif not per_element:
-        result = topology.evaluate(flat, device, conditions, hfe=h, full=full, noise=noise)
+        result = topology.evaluate(flat, device, conditions, hfe=h, full=full, noise=noise, swing=swing)
     else:  # a supply or temperature per element: the model's own chunks would not slice it, so chunked here
         pieces = [
             topology.evaluate(
@@ -176,6 +179,7 @@ def _flat_result(
                 hfe=h[i : i + step],
                 full=full,
                 noise=noise,
+                swing=swing,
             )
             for i in range(0, h.size, step)
         ]
@@ -251,28 +255,22 @@ def worst_case(
     both ends (a split supply's rails each at both ends: four supply corners). Arrays over candidates. Metrics NaN at a corner (a stage that is not active)
     are left out of that corner's range; 'active_all' (bool) says whether every corner is active."""
     roles = tuple(parts) if roles is None else roles
-    signs = np.array(list(itertools.product((-1.0, 1.0), repeat=len(roles))))  # (corners, roles)
     n = np.asarray(next(iter(parts.values()))).shape[0]
-    corner_parts = {
-        role: np.asarray(v, dtype=float).reshape(-1, 1) * np.ones((1, signs.shape[0])) for role, v in parts.items()
-    }
-    for j, role in enumerate(roles):
-        corner_parts[role] = corner_parts[role] * (1.0 + signs[None, :, j] * _column(tolerances.get(role, 0.0)))
+    # The usable swing (the costliest figure) does not see the capacitors' values in a stage
+    # whose core does not (Topology.core_is_bound): there it is solved on the corners of the
+    # other roles alone, the capacitors at their values, 2**capacitors times fewer solves
+    # (the same figures: tests/test_spread_and_sizing.py)
+    capacitors = {r for r in roles if r in topology.capacitors} if topology.core_is_bound else set()
     lows: dict[str, np.ndarray] = {}
     highs: dict[str, np.ndarray] = {}
     active_all = np.ones(n, dtype=bool)
     for at, temperature, supply, hfe_edges in _corner_conditions(device, conditions, temperature_range, supply_range):
-        # every corner of one ground's place in one model call: the parts' corners repeated for
-        # each (temperature, supply, device edge) corner, those three per column
-        pairs = len(hfe_edges)
-        stacked = {role: np.tile(v, (1, pairs)) for role, v in corner_parts.items()}
-        hfe = np.broadcast_to(np.repeat(hfe_edges, signs.shape[0])[None, :], (n, pairs * signs.shape[0]))
-        at = replace(
-            at,
-            supply=np.broadcast_to(np.repeat(supply, signs.shape[0])[None, :], hfe.shape).reshape(-1),
-            temperature=np.broadcast_to(np.repeat(temperature, signs.shape[0])[None, :], hfe.shape).reshape(-1),
+        corner = functools.partial(
+            _corner_result, topology, parts, tolerances, device, at, temperature, supply, hfe_edges
         )
-        values = _flat_result(topology, stacked, device, at, np.ascontiguousarray(hfe), full)
+        values = corner(roles, full, swing=not capacitors)
+        if capacitors:
+            values["swing_vpp"] = corner(tuple(r for r in roles if r not in capacitors), False)["swing_vpp"]
         active_all &= np.all(values["active"], axis=1)
         for key, value in values.items():
             if value.dtype == bool:
@@ -293,6 +291,40 @@ def worst_case(
     }
     out["active_all"] = (active_all, active_all)
     return out
+
+
+def _corner_result(
+    topology: Topology,
+    parts: dict[str, np.ndarray],
+    tolerances: dict[str, Tolerance],
+    device: AnyDevice,
+    at: Conditions,
+    temperature: np.ndarray,
+    supply: np.ndarray,
+    hfe_edges: np.ndarray,
+    roles: tuple[str, ...],
+    full: bool,
+    swing: bool = True,
+) -> dict[str, np.ndarray]:
+    """:func:`_flat_result` of every corner of one ground's place: each of ``roles`` at
+    +-tolerance (the other parts at their values), repeated for each (temperature, supply,
+    device edge) corner, those three per column; shape (candidates, corners)."""
+    signs = np.array(list(itertools.product((-1.0, 1.0), repeat=len(roles))))  # (corners, roles)
+    n = np.asarray(next(iter(parts.values()))).shape[0]
+    corner_parts = {
+        role: np.asarray(v, dtype=float).reshape(-1, 1) * np.ones((1, signs.shape[0])) for role, v in parts.items()
+    }
+    for j, role in enumerate(roles):
+        corner_parts[role] = corner_parts[role] * (1.0 + signs[None, :, j] * _column(tolerances.get(role, 0.0)))
+    pairs = len(hfe_edges)
+    stacked = {role: np.tile(v, (1, pairs)) for role, v in corner_parts.items()}
+    hfe = np.broadcast_to(np.repeat(hfe_edges, signs.shape[0])[None, :], (n, pairs * signs.shape[0]))
+    at = replace(
+        at,
+        supply=np.broadcast_to(np.repeat(supply, signs.shape[0])[None, :], hfe.shape).reshape(-1),
+        temperature=np.broadcast_to(np.repeat(temperature, signs.shape[0])[None, :], hfe.shape).reshape(-1),
+    )
+    return _flat_result(topology, stacked, device, at, np.ascontiguousarray(hfe), full, swing=swing)
 
 
 def bias_spread(

@@ -188,3 +188,25 @@ def test_the_sizing_reads_whether_a_variant_meets_the_target_from_the_response_t
     clear = np.abs(np.log10(f_low / target)) > 1e-3
     np.testing.assert_array_equal(meets[clear], (f_low <= target)[clear])
     assert meets.any() and not meets.all()
+
+
+@pytest.mark.parametrize("design", _one_design_per_topology(), ids=lambda d: d.topology)
+def test_the_worst_case_solves_the_swing_once_per_corner_of_the_other_parts(design, monkeypatch) -> None:
+    # In a stage whose core does not see its capacitors (core_is_bound), worst_case solves the
+    # usable swing on the corners of the resistors alone (the capacitors at their values), not
+    # on every capacitor corner too: every figure must be the one the whole enumeration gives
+    topology = get_topology(design.topology)
+    parts = {k: np.array([v, v * 1.1]) for k, v in design.parts.items()}
+    tolerances = {k: 0.2 if k in topology.capacitors else 0.05 for k in parts}
+
+    def spread() -> dict:
+        return worst_case(topology, parts, design.device, design.conditions, tolerances, (0.0, 50.0))
+
+    fewer = spread()
+    monkeypatch.setattr(type(topology), "core_is_bound", False)
+    every = spread()
+    assert fewer.keys() == every.keys()
+    for key in every:
+        for a, b in zip(fewer[key], every[key]):
+            np.testing.assert_array_equal(a, b, err_msg=key)
+    assert np.all(np.isfinite(fewer["swing_vpp"][0]))

@@ -404,6 +404,7 @@ class Topology(ABC):
         thd_solve: bool = False,
         noise: bool = True,
         swing_where: Callable[[StageResult], np.ndarray] | None = None,
+        swing: bool = True,
     ) -> StageResult:
         """Metrics, operating point and ratings.
 
@@ -419,7 +420,8 @@ class Topology(ABC):
         on the stage's static nonlinear transfer (:func:`physics.usable_swing`), its costliest
         figure: given ``swing_where`` (called once with every other figure of the candidates,
         swing_vpp NaN, returning a bool per candidate; for at most one chunk of candidates), it is
-        solved only where that is True and left NaN elsewhere. clip_vpp (V
+        solved only where that is True and left NaN elsewhere; with ``swing=False`` it is not
+        solved at all (for a caller that has it from another call). clip_vpp (V
         peak-to-peak) is the hard clip level of the AC load line, 2*min(cutoff, saturation).
         psrr_ripple_db and psrr_mid_db (dB) are 20*log10(1/|H|) of the small-signal transfer
         from the supply rail to the load at conditions.ripple_frequency and at the band's
@@ -694,6 +696,7 @@ class StageModel(Topology):
         thd_solve: bool = False,
         noise: bool = True,
         swing_where: Callable[[StageResult], np.ndarray] | None = None,
+        swing: bool = True,
     ) -> StageResult:
         conditions = frame_conditions(conditions, device)
         p = self.check_parts(parts, conditions)
@@ -701,7 +704,7 @@ class StageModel(Topology):
         h = self._hfe_array(device, hfe, n)
         step = CHUNK_FULL if full else CHUNK_FAST
         if n <= step:
-            return self._evaluate(p, device, conditions, h, full, thd_solve, noise, swing_where)
+            return self._evaluate(p, device, conditions, h, full, thd_solve, noise, swing_where, swing)
         if swing_where is not None:
             raise ValueError(f"swing_where takes at most one chunk of candidates ({step}), not {n}")
         out: StageResult | None = None
@@ -714,6 +717,7 @@ class StageModel(Topology):
                 full,
                 thd_solve,
                 noise,
+                swing=swing,
             )
             if out is None:
                 out = StageResult(
@@ -741,6 +745,7 @@ class StageModel(Topology):
         thd_solve: bool,
         noise: bool = True,
         swing_where: Callable[[StageResult], np.ndarray] | None = None,
+        swing: bool = True,
     ) -> StageResult:
         """:meth:`evaluate` of one chunk of checked ``parts`` in the frame's ``conditions``."""
         p, b, nvt = self._solve(parts, device, conditions, hfe)
@@ -798,6 +803,8 @@ class StageModel(Topology):
             ratings["v_c_decouple"] = np.where(p["c_decouple"] > 0, conditions.rail_max, 0.0) + 0.0 * gain
         ratings["vce_max"] = vce_max
         result = StageResult({k: m[k] for k in METRICS}, self._true_op(b.op, device, conditions), ratings)
+        if not swing:
+            return result
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             if swing_where is None:
                 result.metrics["swing_vpp"] = self._usable_swing(p, device, conditions, b, nvt, gain, 0.5 * clip)
