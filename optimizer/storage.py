@@ -1148,11 +1148,18 @@ def _write_snapshot(backend: "_BatchSyncedJournal", summary: JournalSummary) -> 
     return _write_cache(backend, snapshot_path(backend._path), summary.records, summary.offset, payload)
 
 
-def _write_cache(backend: "_BatchSyncedJournal", target: Path, records: int, offset: int, payload: bytes) -> int:
+def _write_cache(
+    backend: "_BatchSyncedJournal", target: Path, records: int, offset: int, payload: bytes | list[bytes]
+) -> int:
     """Write a cache of the journal's state at record ``records`` (byte ``offset``) to
     ``target``: a header line (what it covers, the journal's bytes it was taken against, the
-    payload's length and SHA-256), then the payload; to a temporary file first, then
-    os.replace, so a reader sees the old file or the new one. Returns its size in bytes."""
+    payload's length and SHA-256), then the payload (bytes, or its pieces in order: written
+    one after another, never joined into a copy); to a temporary file first, then os.replace,
+    so a reader sees the old file or the new one. Returns its size in bytes."""
+    pieces = [payload] if isinstance(payload, bytes) else payload
+    digest = hashlib.sha256()
+    for piece in pieces:
+        digest.update(piece)
     header = {
         "format": _SNAPSHOT_FORMAT,
         "version": _SNAPSHOT_VERSION,
@@ -1160,12 +1167,14 @@ def _write_cache(backend: "_BatchSyncedJournal", target: Path, records: int, off
         "offset": offset,
         "head": _digest(backend._path, 0, min(offset, _MARK)),
         "mark": _digest(backend._path, max(offset - _MARK, 0), offset),
-        "length": len(payload),
-        "sha256": hashlib.sha256(payload).hexdigest(),
+        "length": sum(len(piece) for piece in pieces),
+        "sha256": digest.hexdigest(),
     }
     temporary = target.with_name(f".{target.name}.{os.getpid()}.{threading.get_ident()}.tmp")
     with open(temporary, "wb") as handle:
-        size = handle.write(json.dumps(header).encode("utf-8") + b"\n" + payload)
+        size = handle.write(json.dumps(header).encode("utf-8") + b"\n")
+        for piece in pieces:
+            size += handle.write(piece)
     os.replace(temporary, target)
     return size
 
@@ -1403,7 +1412,7 @@ def save_replay(storage: BaseStorage) -> bool:
             )
         index = {"layout": REPLAY_LAYOUT, "next_study": replay._next_study_id, "next_trial": len(replay._trials)}
         index["studies"] = studies
-        payload = b"".join([json.dumps(index, separators=(",", ":")).encode("utf-8"), b"\n", *texts])
+        payload = [json.dumps(index, separators=(",", ":")).encode("utf-8"), b"\n", *texts]
         replay.dead_since_snapshot, replay.snapshot_records = 0, records
     _write_cache(backend, replay_path(backend._path), records, offset, payload)
     return True
