@@ -129,8 +129,9 @@ def solve_pair(
         det = j11 * j22 - j12 * j21
         d1 = (-r1 * j22 + r2 * j12) / det
         d2 = (-r2 * j11 + r1 * j21) / det
-        x1 = x1 + np.clip(d1, -physics.MAX_STEP, physics.MAX_STEP)
-        x2 = x2 + np.clip(d2, -physics.MAX_STEP, physics.MAX_STEP)
+        # the step limit by the ufuncs, not np.clip (the same values, without its dispatch on every step)
+        x1 = x1 + np.minimum(np.maximum(d1, -physics.MAX_STEP), physics.MAX_STEP)
+        x2 = x2 + np.minimum(np.maximum(d2, -physics.MAX_STEP), physics.MAX_STEP)
     f1, f2 = forward(x1, x2)
     ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = nodes(f1, f2)
     r1 = a1 - x1 - r_base1 * ib1 - v_e1
