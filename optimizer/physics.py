@@ -423,7 +423,41 @@ class Network:
             shapes.append(s.shape)
             dtypes.append(s.dtype)
         shape = _broadcast_shape(shapes)
-        work = _workspace(plan.slots + 1, shape, np.result_type(*dtypes))
+        dtype = np.result_type(*dtypes)
+        blocked = len(shape) > max(len(values_shape), 1)  # a leading frequency axis beyond the element values'
+        rows = max(1, SOLVE_BLOCK // math.prod(shape[1:])) if blocked else 0
+        if not blocked or rows >= shape[0]:
+            return {name: v.copy() for name, v in self._run(known, rhs_idx, s, shape, dtype).items()}
+        # Many frequencies (a leading axis beyond the element values'): solved a few rows at a
+        # time, so the workspace stays in cache (every element's solve is its own: the same values)
+        out = {name: np.empty(shape, dtype) for name, _ in outputs}
+
+        def rows_of(v: np.ndarray, i: int) -> np.ndarray:
+            return v[i : i + rows] if v.ndim == len(shape) and v.shape[0] == shape[0] else v
+
+        for i in range(0, shape[0], rows):
+            block = self._run(
+                known,
+                [(slot, rows_of(v, i)) for slot, v in rhs_idx],
+                None if s is None else rows_of(s, i),
+                (min(rows, shape[0] - i), *shape[1:]),
+                dtype,
+            )
+            for name, v in block.items():
+                out[name][i : i + rows] = v
+        return out
+
+    @staticmethod
+    def _run(
+        known: tuple,
+        rhs_idx: list[tuple[int, np.ndarray]],
+        s: np.ndarray | None,
+        shape: tuple[int, ...],
+        dtype: np.dtype,
+    ) -> dict[str, np.ndarray]:
+        """One elimination over ``shape`` in the per-thread workspace: the wanted voltages as views of it."""
+        plan, stack_g, stack_c, outputs, values_shape, _ = known
+        work = _workspace(plan.slots + 1, shape, dtype)
         # fill the matrix entries, G + s*C, in one go (element values broadcast to the solve's shape)
         m = stack_g.shape[0]
         expand = (m,) + (1,) * (len(shape) - len(values_shape)) + values_shape
@@ -452,10 +486,13 @@ class Network:
                 reciprocal(t, t)
             elif op == 3:  # "neg": t = -a*b (a fill-in, or the first term of a node without injection)
                 multiply(w[a], w[b], t)
+                # on the float view: numpy's complex negative has no fast loop (about 5x a complex
+                # multiply), and flipping both parts' signs as floats is the same operation
+                t = t.view(np.float64)
                 negative(t, t)
             else:  # "zero"
                 t[...] = 0.0
-        return {name: w[slot].copy() for name, slot in outputs}
+        return {name: w[slot] for name, slot in outputs}
 
     def _prepare(self, rhs: dict[str, np.ndarray], want: Iterable[str] | None, with_caps: bool) -> tuple:
         """What :meth:`solve` keeps per structure: the plan, the entries' G and C stacked in slot
@@ -506,6 +543,7 @@ class _Plan:
 
 _PLANS: dict[tuple, _Plan] = {}
 _WORK = threading.local()
+SOLVE_BLOCK = 8192  # elements (frequencies x candidates) per elimination: the workspace stays in cache
 WORKSPACE_KEEP = 1 << 25  # bytes of solver workspace a thread keeps between solves (larger ones are dropped)
 
 

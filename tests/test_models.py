@@ -495,6 +495,31 @@ def test_network_solve_reuses_its_plan_only_while_the_network_is_unchanged():
     assert net.take(np.array([1]), 2).solve({"a": np.full(1, 1e-3)}, ["a"])["a"] == pytest.approx([4.5])
 
 
+@pytest.mark.parametrize("name", sorted(DESIGNS))
+def test_network_solve_in_frequency_blocks_equals_one_frequency_at_a_time(name, monkeypatch):
+    # A solve over many frequencies runs a few rows at a time (physics.SOLVE_BLOCK elements), so its
+    # workspace stays in cache: every element's elimination is its own, so the values are the same
+    # bit for bit as solving each frequency alone, whatever the block
+    topo = get_topology(name)
+    c = Conditions(supply=12.0, source_impedance=600.0, load_impedance=10e3)
+    rng = np.random.default_rng(11)
+    batch = {k: v * np.exp(rng.uniform(-0.7, 0.7, 300)) for k, v in DESIGNS[name].items()}
+    p, b, _, frame = topo._checked_solve(batch, DEVICE, c, None)
+    rs = np.maximum(np.full(300, c.source_impedance), physics.R_FLOOR)
+    net = topo._network(p, frame, b.small_signal, True, rs, True)
+    f = np.geomspace(0.1, 1e8, 10)
+    one_by_one = np.concatenate([topo._response(net, rs)(f[i : i + 1, None]) for i in range(f.size)])
+    for block in (300, 700, 1 << 20):  # one row, two rows (the last block shorter), all rows at once
+        monkeypatch.setattr(physics, "SOLVE_BLOCK", block)
+        np.testing.assert_array_equal(topo._response(net, rs)(f[:, None]), one_by_one)
+        # the adjoint solve of every node (the noise integral's), frequencies per candidate
+        s = 2j * np.pi * np.broadcast_to(f[:, None], (10, 300))
+        z = net.at(s).transposed().solve({"out": np.ones(1)})
+        z1 = [net.at(s[i : i + 1]).transposed().solve({"out": np.ones(1)}) for i in range(10)]
+        for node in z:
+            np.testing.assert_array_equal(z[node], np.concatenate([v[node] for v in z1]))
+
+
 @pytest.mark.parametrize("name", ["divider_ce_split", "ce_follower"])
 def test_corner_steps_on_the_whole_batch_match_the_steps_on_a_taken_network(name, monkeypatch):
     # The corners' further steps solve a small batch whole and keep the wanted columns, a large one
