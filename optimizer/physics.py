@@ -933,7 +933,9 @@ def usable_swing(
     brackets the crossing with the one before it (d(0) = 0), and Illinois false position
     on d - tolerance refines it; the swing is out(+a) - out(-a) there, interpolated between
     the bracket's ends. Where no scanned amplitude deviates (a stage that does not clip
-    within its clip-level drive), the peak-to-peak at the last one is returned.
+    within its clip-level drive), the peak-to-peak at the last one is returned. A drive whose
+    output is not finite (``static_output`` gives NaN where its solve did not settle) counts
+    as deviating, and the swing is not interpolated towards it.
     """
     gain = np.asarray(gain, dtype=float)
     g = gain[:, None]
@@ -975,7 +977,10 @@ def usable_swing(
         x0, d0, p0 = (np.where(out_side, old, new) for new, old in ((xm, x0), (dm, d0), (pm, p0)))
         side = np.where(out_side, 1.0, -1.0)
     w = d0 / np.where(d0 == d1, -1.0, d0 - d1)  # where d crosses zero between the ends
-    swing = np.where(found, p0 + np.clip(w, 0.0, 1.0) * (p1 - p0), p1)
+    # an outside end without an output (a transfer's solve that did not settle: NaN) is no
+    # figure to interpolate towards: the swing is then the inside end's, a drive that passed
+    inside = np.where(np.isfinite(p1), p0 + np.clip(w, 0.0, 1.0) * (p1 - p0), p0)
+    swing = np.where(found, inside, p1)
     return np.where(np.isfinite(swing) & (np.abs(gain) > 0), swing, 0.0)
 
 

@@ -442,6 +442,20 @@ def test_swing_search_keeps_half_a_percent_of_the_brute_force_point(design):
     assert one(r, "swing_vpp") == pytest.approx(deviation(np.array([hi]))[1][0], rel=5e-3)
 
 
+def test_usable_swing_takes_no_figure_from_a_transfer_without_an_output():
+    # A static transfer that is linear (gain 2) up to 0.9 of the clip-level drive and has no output
+    # beyond (NaN: a solve that did not settle) must give the swing of a drive that passed, between
+    # 0.8 and 0.9 of the clip-level drive, not a figure interpolated towards the NaN (nor zero)
+    gain, clip_peak = np.array([2.0]), np.array([1.8])
+    a_clip = clip_peak / (0.9 * gain)
+
+    def transfer(vs: np.ndarray) -> np.ndarray:
+        return np.where(np.abs(vs) <= 0.9 * a_clip[:, None], gain[:, None] * vs, np.nan)
+
+    swing = physics.usable_swing(transfer, gain, clip_peak)
+    assert 2.0 * gain * 0.8 * a_clip <= swing <= 2.0 * gain * 0.9 * a_clip
+
+
 def test_power_law_segments_integrate_power_laws_exactly():
     # the noise integral's segments against the closed-form integral of c*f^k (calculus: c*(f1^(k+1) -
     # f0^(k+1))/(k+1), and c*ln(f1/f0) at k = -1), over the band's log-spaced points

@@ -31,7 +31,10 @@ from optimizer.synthesis import (
 from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
 from optimizer.topologies.divider_ce import add_divider_stage, add_load, divider_ratings
 
-PAIR_ITERATIONS = 40  # damped 2-D Newton steps of the pair's bias (both junctions at once, from 1 mA)
+PAIR_ITERATIONS = 40  # most damped 2-D Newton steps of the pair's bias (both junctions at once, from 1 mA)
+STEP_TOL = 1e-12  # V: a pair whose Newton steps in both Vbe are smaller has converged and is not moved again
+STEP_DOWN = 2.0  # V, largest fall of a Vbe in one Newton step (a rise is held to physics.MAX_STEP: from
+# above, the residual is concave and Newton does not overshoot, so a falling junction may move fast)
 CROSSOVER_STEPS = 4  # Newton steps in log frequency refining the loop gain's unity crossing (|T| = 1)
 HAND_EMITTER_MAX = 0.3  # the hand method's highest q1 emitter voltage, a share of the supply
 VT_HAND = 0.026  # V, the hand method's thermal voltage (room temperature)
@@ -68,12 +71,18 @@ def solve_pair(
     the emitter node (re to ground, rf to the collector2 node) and the collector2 node
     (``g_c2*Vc2 = j_c2 + Ve1/rf - Ic2``: rc2, rf and in the static solve the load, as one
     conductance and current) are linear and are eliminated: ``Ve1 = v0 + k_e*Ie1 - k_c*Ic2``.
-    Gummel-Poon currents as :func:`physics.solve_junction`, Vcb to the internal base; each step
-    takes the Early factors from the nodes at its start and its Jacobian includes their
-    dependence on the nodes (left out, the loop's gain slows Newton to linear convergence). Returns per transistor
-    the keys small_signal needs (``q1``, ``q2``: vbe, vcb, i_forward, ic, ib) and the node
-    voltages v_e1, v_c1, v_e2, v_c2, with ``converged``.
-    """
+    Gummel-Poon currents as :func:`physics.solve_junction`, Vcb to the internal base.
+
+    The unknowns are the two Vbe. At each, the collector currents are solved exactly with their
+    Early factors (``Ic = If*(1 + Vcb/VAF)`` and each Vcb linear in both Ic: a 2x2 system), so
+    the residuals and their Jacobian (the same 2x2 system, differentiated) are exact and Newton
+    converges quadratically. A step may raise a Vbe by at most physics.MAX_STEP and lower it by
+    at most STEP_DOWN; an element whose step falls below STEP_TOL is done and not moved again,
+    so its values do not depend on the other elements of its call, and the loop ends when every
+    element is done (at most ``iterations`` steps). Returns per transistor the keys small_signal
+    needs (``q1``, ``q2``: vbe, vcb, i_forward, ic, ib) and the node voltages v_e1, v_c1, v_e2,
+    v_c2, with ``settled`` (both residuals under physics.NEWTON_TOL) and ``converged`` (settled,
+    both junctions conducting)."""
     g_e = 1.0 / re + 1.0 / rf - 1.0 / (rf * rf * g_c2)
     k_e = 1.0 / g_e
     k_c = k_e / (rf * g_c2)
@@ -85,65 +94,59 @@ def solve_pair(
     else:
         x1 = np.broadcast_to(v_start[0], shape).astype(float)
         x2 = np.broadcast_to(v_start[1], shape).astype(float)
-    eps1 = np.ones(shape)
-    eps2 = np.ones(shape)
     inv_b = 1.0 / beta
+    # Vcb1 = vcb1_0 - m11*Ic1 + m12*Ic2 and Vcb2 = vcb2_0 + m21*Ic1 - m22*Ic2 (the nodes eliminated),
+    # with vcb1_0, vcb2_0 the terms of the base currents and the Vbe (:func:`state`)
+    m11, m12 = rc1 + k_e, k_c
+    m21 = k_e / (rf * g_c2)
+    m22 = m12 / (rf * g_c2) + 1.0 / g_c2 + r_e2
+    c1, c2 = vcc - v0, (j_c2 + v0 / rf) / g_c2 - v_e2_0
 
-    def forward(x1: np.ndarray, x2: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """The junctions' forward currents (A) at Vbe x1, x2."""
-        return i_s * np.expm1(x1 / nvt), i_s * np.expm1(x2 / nvt)
-
-    def nodes(f1: np.ndarray, f2: np.ndarray) -> tuple[np.ndarray, ...]:
-        """The terminal currents (A) and node voltages (V) from the forward currents, with the
-        Early factors eps1, eps2 as they stand."""
-        ic1, ib1, ic2, ib2 = eps1 * f1, f1 * inv_b, eps2 * f2, f2 * inv_b
+    def state(x1: np.ndarray, x2: np.ndarray) -> tuple:
+        """At Vbe x1, x2: the forward and base currents, the collector currents and node
+        voltages, and the 2x2 system K (Ic1, Ic2) = rhs of the Early factors (A, V)."""
+        f1, f2 = i_s * np.expm1(x1 / nvt), i_s * np.expm1(x2 / nvt)
+        ib1, ib2 = f1 * inv_b, f2 * inv_b
+        e1, e2 = f1 * inv_vaf, f2 * inv_vaf  # dIc/dVcb
+        vcb1_0 = c1 - rc1 * ib2 - k_e * ib1 - x1
+        vcb2_0 = c2 + m21 * ib1 - r_e2 * ib2 - x2
+        k = (1.0 + e1 * m11, -e1 * m12, -e2 * m21, 1.0 + e2 * m22)
+        det = k[0] * k[3] - k[1] * k[2]
+        ic1, ic2 = _solve2(k, det, f1 + e1 * vcb1_0, f2 + e2 * vcb2_0)
         v_e1 = v0 + k_e * (ic1 + ib1) - k_c * ic2
         v_c1 = vcc - rc1 * (ic1 + ib2)
         v_e2 = v_e2_0 + r_e2 * (ic2 + ib2)
         v_c2 = (j_c2 + v_e1 / rf - ic2) / g_c2
-        return ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2
+        return f1, f2, ib1, ib2, e1, e2, ic1, ic2, v_e1, v_c1, v_e2, v_c2, k, det
 
+    moving = np.ones(shape, dtype=bool)
     for _ in range(iterations):
-        # Early factors from the node voltages at this step (Vcb to the internal base), then the residuals
-        f1, f2 = forward(x1, x2)
-        ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = nodes(f1, f2)
-        eps1 = 1.0 + (v_c1 - v_e1 - x1) * inv_vaf
-        eps2 = 1.0 + (v_c2 - v_e2 - x2) * inv_vaf
-        ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = nodes(f1, f2)
+        f1, f2, ib1, ib2, e1, e2, ic1, ic2, v_e1, v_c1, v_e2, v_c2, k, det = state(x1, x2)
         r1 = a1 - x1 - r_base1 * ib1 - v_e1
         r2 = v_c1 - x2 - rb * ib2 - v_e2
-        # Jacobian of (r1, r2) in (x1, x2), the Early factors' own dependence on the nodes included
+        # the Jacobian: dIf/dVbe, dIb/dVbe, the Early factors, then dIc/dVbe from K
         g1, g2 = (f1 + i_s) / nvt, (f2 + i_s) / nvt
-        a11, a22, b1, b2 = eps1 * g1, eps2 * g2, g1 * inv_b, g2 * inv_b
-        dve1 = (k_e * (a11 + b1), -k_c * a22)
-        dvc2 = (dve1[0] / (rf * g_c2), (dve1[1] / rf - a22) / g_c2)
-        dvcb1 = (-rc1 * a11 - dve1[0] - 1.0, -rc1 * b2 - dve1[1])
-        dvcb2 = (dvc2[0], dvc2[1] - r_e2 * (a22 + b2) - 1.0)
-        e1, e2 = f1 * inv_vaf, f2 * inv_vaf
-        dic1 = (a11 + e1 * dvcb1[0], e1 * dvcb1[1])
-        dic2 = (e2 * dvcb2[0], a22 + e2 * dvcb2[1])
-        j11 = -1.0 - r_base1 * b1 - k_e * (dic1[0] + b1) + k_c * dic2[0]
-        j12 = -k_e * dic1[1] + k_c * dic2[1]
-        j21 = -rc1 * dic1[0] - r_e2 * dic2[0]
-        j22 = -rc1 * (dic1[1] + b2) - 1.0 - rb * b2 - r_e2 * (dic2[1] + b2)
-        det = j11 * j22 - j12 * j21
-        d1 = (-r1 * j22 + r2 * j12) / det
-        d2 = (-r2 * j11 + r1 * j21) / det
-        # the step limit by the ufuncs, not np.clip (the same values, without its dispatch on every step)
-        x1 = x1 + np.minimum(np.maximum(d1, -physics.MAX_STEP), physics.MAX_STEP)
-        x2 = x2 + np.minimum(np.maximum(d2, -physics.MAX_STEP), physics.MAX_STEP)
-    f1, f2 = forward(x1, x2)
-    ic1, ib1, ic2, ib2, v_e1, v_c1, v_e2, v_c2 = nodes(f1, f2)
+        b1, b2 = g1 * inv_b, g2 * inv_b
+        a11 = g1 * (1.0 + (v_c1 - v_e1 - x1) * inv_vaf)
+        a22 = g2 * (1.0 + (v_c2 - v_e2 - x2) * inv_vaf)
+        dic1_dx1, dic2_dx1 = _solve2(k, det, a11 - e1 * (k_e * b1 + 1.0), e2 * m21 * b1)
+        dic1_dx2, dic2_dx2 = _solve2(k, det, -e1 * rc1 * b2, a22 - e2 * (r_e2 * b2 + 1.0))
+        j11 = -1.0 - r_base1 * b1 - k_e * (dic1_dx1 + b1) + k_c * dic2_dx1
+        j12 = -k_e * dic1_dx2 + k_c * dic2_dx2
+        j21 = -rc1 * dic1_dx1 - r_e2 * dic2_dx1
+        j22 = -rc1 * (dic1_dx2 + b2) - 1.0 - rb * b2 - r_e2 * (dic2_dx2 + b2)
+        d1, d2 = _solve2((j11, j12, j21, j22), j11 * j22 - j12 * j21, -r1, -r2)
+        d1 = np.where(moving, np.minimum(np.maximum(d1, -STEP_DOWN), physics.MAX_STEP), 0.0)
+        d2 = np.where(moving, np.minimum(np.maximum(d2, -STEP_DOWN), physics.MAX_STEP), 0.0)
+        x1 = x1 + d1
+        x2 = x2 + d2
+        moving &= ~((np.abs(d1) < STEP_TOL) & (np.abs(d2) < STEP_TOL)) & np.isfinite(d1) & np.isfinite(d2)
+        if not moving.any():
+            break
+    f1, f2, ib1, ib2, _, _, ic1, ic2, v_e1, v_c1, v_e2, v_c2, _, _ = state(x1, x2)
     r1 = a1 - x1 - r_base1 * ib1 - v_e1
     r2 = v_c1 - x2 - rb * ib2 - v_e2
-    converged = (
-        (np.abs(r1) < physics.NEWTON_TOL)
-        & (np.abs(r2) < physics.NEWTON_TOL)
-        & np.isfinite(f1)
-        & np.isfinite(f2)
-        & (f1 > 0)
-        & (f2 > 0)
-    )
+    settled = (np.abs(r1) < physics.NEWTON_TOL) & (np.abs(r2) < physics.NEWTON_TOL) & np.isfinite(f1) & np.isfinite(f2)
     return {
         "q1": {"vbe": x1, "vcb": v_c1 - v_e1 - x1, "i_forward": f1, "ic": ic1, "ib": ib1},
         "q2": {"vbe": x2, "vcb": v_c2 - v_e2 - x2, "i_forward": f2, "ic": ic2, "ib": ib2},
@@ -151,8 +154,14 @@ def solve_pair(
         "v_c1": v_c1,
         "v_e2": v_e2,
         "v_c2": v_c2,
-        "converged": converged,
+        "settled": settled,
+        "converged": settled & (f1 > 0) & (f2 > 0),
     }
+
+
+def _solve2(m: tuple, det: np.ndarray, y1: np.ndarray, y2: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(x1, x2) of the 2x2 system ((m11, m12), (m21, m22)) x = y, by Cramer's rule (det its determinant)."""
+    return (y1 * m[3] - m[1] * y2) / det, (m[0] * y2 - m[2] * y1) / det
 
 
 def loop_phase_margin(
@@ -509,7 +518,8 @@ class FeedbackPair(StageModel):
     ) -> Callable[[np.ndarray], np.ndarray]:
         """Load voltage (V) against source voltage (V): the pair's two loops solved together at
         every sample; c_in, c_emitter2 and c_out hold their DC (emitter2 held, the load returns
-        to collector2's quiescent voltage); collector2 flattens at emitter2 + vce_sat."""
+        to collector2's quiescent voltage); collector2 flattens at emitter2 + vce_sat. NaN where
+        the pair's solve did not settle within its steps."""
         op = b.op
         rth = physics.parallel(p["r_top"], p["r_bottom"])
         vth = c.supply * p["r_bottom"] / (p["r_top"] + p["r_bottom"])
@@ -537,6 +547,7 @@ class FeedbackPair(StageModel):
                 **kw,
             )
             v_c2 = np.maximum(q["v_c2"], op["v_emitter2"] + device.vce_sat)
-            return v_c2 - op["v_collector2"]
+            # a sample whose solve did not settle has no output (the swing counts it as deviating)
+            return np.where(q["settled"], v_c2 - op["v_collector2"], np.nan)
 
         return out
