@@ -9,7 +9,9 @@ swing's search and without it; the model's nominal core metrics, the same withou
 (its _usable_swing left out), and the core in small groups of 16 designs per call; the full
 metric set with frequency response and noise, the same in small groups (a search's groups,
 where per-call overhead counts), the capacitor sizing, and Monte Carlo yield, then issue 16's
-targets as target / measured / met; writes benchmarks/results/models.md. Every row is measured
+targets as target / measured / met, with the full metrics (at once and in groups of 16) also
+measured side by side with the code at the start of issue 16 (ISSUE_16_START, exported from git
+history), which is what their targets are judged on; writes benchmarks/results/models.md. Every row is measured
 in the same run; each row's 'of reference' is over the reference of the same equations (with or
 without the swing).
 
@@ -38,9 +40,16 @@ import os
 for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ[_var] = "1"  # one core, as the targets are stated
 
+import dataclasses  # noqa: E402
+import io  # noqa: E402
+import json  # noqa: E402
 import platform  # noqa: E402
 import resource  # noqa: E402
+import statistics  # noqa: E402
+import subprocess  # noqa: E402
 import sys  # noqa: E402
+import tarfile  # noqa: E402
+import tempfile  # noqa: E402
 import time  # noqa: E402
 import tracemalloc  # noqa: E402
 from pathlib import Path  # noqa: E402
@@ -140,6 +149,90 @@ def measured(key: str, rows: dict) -> float:
     """The figure a row's target is judged on: a core row's rate over its reference's (same run,
     :func:`of_reference`); for the others :func:`speedup`."""
     return of_reference(key, rows) if key.startswith("core") else speedup(key, rows)
+
+
+# The commit before issue 16's first change: the full metrics are measured against its code side
+# by side in the same run (SIDE_BY_SIDE_ROUNDS alternating rounds, each tree a fresh process pinned
+# to one CPU, the same designs), the honest form of the 'speed-up' column for these rows.
+ISSUE_16_START = "baf1a15"
+SIDE_BY_SIDE_ROUNDS = 3
+SIDE_BY_SIDE_ROWS = {"full": 0, "small": SMALL_GROUP}  # row -> designs per model call (0: all at once)
+# Run with PYTHONPATH at one tree: the designs (an .npz), the device's and conditions' fields
+# (JSON; fields a tree's Device does not know are left out) and the group size in argv[1]; prints
+# the best of REPEATS CPU rates of evaluate(full=True), designs per CPU second.
+_CHILD = """
+import dataclasses, json, os, sys, time
+import numpy as np
+from optimizer.devices import Device
+from optimizer.topologies import get_topology
+from optimizer.topologies.base import Conditions
+if hasattr(os, "sched_setaffinity"):
+    os.sched_setaffinity(0, {min(os.sched_getaffinity(0))})
+setup = json.loads(sys.argv[1])
+known = {f.name for f in dataclasses.fields(Device)}
+device = Device(**{k: v for k, v in setup["device"].items() if k in known})
+conditions = Conditions(**setup["conditions"])
+parts = dict(np.load(setup["parts"]))
+n = len(next(iter(parts.values())))
+group = setup["group"] or n
+topology = get_topology("divider_ce")
+def run():
+    for i in range(0, n, group):
+        topology.evaluate({k: v[i : i + group] for k, v in parts.items()}, device, conditions, full=True)
+run()
+best = float("inf")
+for _ in range(setup["repeats"]):
+    t0 = time.process_time()
+    run()
+    best = min(best, time.process_time() - t0)
+print(n / best)
+"""
+
+
+def side_by_side(commit: str = ISSUE_16_START, rounds: int = SIDE_BY_SIDE_ROUNDS) -> dict | None:
+    """Full-metric rates (designs per CPU second) of this tree and of ``commit``'s optimizer package
+    (exported by ``git archive``), alternating in ``rounds`` rounds: per row the medians, the
+    median ratio and the rounds' ratios; None where the commit cannot be exported (no git history)."""
+    export = subprocess.run(["git", "-C", str(ROOT), "archive", commit, "optimizer"], capture_output=True)
+    if export.returncode != 0:
+        print(f"side by side: commit {commit} not available ({export.stderr.decode().strip()}); skipped")
+        return None
+    with tempfile.TemporaryDirectory() as tmp:
+        before_tree = Path(tmp) / "before"
+        with tarfile.open(fileobj=io.BytesIO(export.stdout)) as archive:
+            archive.extractall(before_tree, filter="data")
+        sizes = {"full": 100_000, "small": 4_096}
+        rates: dict[str, dict[str, list[float]]] = {row: {"before": [], "now": []} for row in SIDE_BY_SIDE_ROWS}
+        for row, group in SIDE_BY_SIDE_ROWS.items():
+            designs = Path(tmp) / f"{row}.npz"
+            np.savez(designs, **random_divider_ce(sizes[row]))
+            setup = json.dumps(
+                {
+                    "device": dataclasses.asdict(DEVICE),
+                    "conditions": {k: getattr(CONDITIONS, k) for k in ("supply", "source_impedance", "load_impedance")},
+                    "parts": str(designs),
+                    "group": group,
+                    "repeats": REPEATS,
+                }
+            )
+            for _ in range(rounds):
+                for label, tree in (("before", before_tree), ("now", ROOT)):
+                    env = {**os.environ, "PYTHONPATH": str(tree)}
+                    out = subprocess.run(
+                        [sys.executable, "-c", _CHILD, setup], cwd=tree, env=env, capture_output=True, text=True
+                    )
+                    if out.returncode != 0:
+                        raise SystemExit(f"side by side ({label}, {row}) failed:\n{out.stderr}")
+                    rates[row][label].append(float(out.stdout.strip().splitlines()[-1]))
+    return {
+        row: {
+            "before": statistics.median(r["before"]),
+            "now": statistics.median(r["now"]),
+            "ratio": statistics.median(r["now"]) / statistics.median(r["before"]),
+            "ratios": [a / b for a, b in zip(r["now"], r["before"])],
+        }
+        for row, r in rates.items()
+    }
 
 
 def pin_one_cpu() -> str:
@@ -274,6 +367,7 @@ def main(only: list[str] | None = None) -> None:
         print(f"load average {load:.1f} at the start, {os.getloadavg()[0]:.1f} at the end")
         return
     rows = {key: measure(*plan) for key, plan in plans.items()}
+    compared = side_by_side()
     load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
     max_rss = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e3
     lines = [
@@ -305,20 +399,41 @@ def main(only: list[str] | None = None) -> None:
             f"{'-' if before is None else f'{before:,}'} | {gain} | "
             f"{'-' if earlier is None else f'{earlier:,}'} | {row['wall_rate']:,.0f} | {row['peak_mb']:.0f} |"
         )
+    if compared:
+        lines += [
+            "",
+            f"Side by side with the code at the start of issue 16 (commit {ISSUE_16_START}, its optimizer "
+            f"package exported by `git archive`), in this run: {SIDE_BY_SIDE_ROUNDS} alternating rounds, each "
+            f"tree a fresh process pinned to one CPU, the same designs, best of {REPEATS} CPU rates per round; "
+            "the medians, and the ratio's range over the rounds.",
+            "",
+            f"| what | {ISSUE_16_START} (CPU /s) | now (CPU /s) | ratio (rounds) |",
+            "| --- | --- | --- | --- |",
+        ]
+        for key, c in compared.items():
+            lines.append(
+                f"| {rows[key]['label']} | {c['before']:,.0f} | {c['now']:,.0f} | {c['ratio']:.2f}x "
+                f"({min(c['ratios']):.2f}..{max(c['ratios']):.2f}) |"
+            )
     lines += ["", "| target (issue 16) | target | measured | met |", "| --- | --- | --- | --- |"]
     for key, (what, threshold) in TARGETS.items():
-        value = measured(key, rows)
-        bound = "the reference with the swing" if BOUND.get(key) == "reference_swing" else "the reference"
-        shown = f"{value:.3f} of {bound}" if key in BOUND else f"{value:.2f}x"
+        if compared and key in compared:  # judged side by side where that was measured
+            value = compared[key]["ratio"]
+            shown = f"{value:.2f}x side by side"
+        else:
+            value = measured(key, rows)
+            bound = "the reference with the swing" if BOUND.get(key) == "reference_swing" else "the reference"
+            shown = f"{value:.3f} of {bound}" if key in BOUND else f"{value:.2f}x (relative to the reference kernel)"
         lines.append(
             f"| {rows[key]['label'].split(' (')[0]} | {what} | {shown} | {'yes' if value >= threshold else 'no'} |"
         )
     # A small group's rate is per-call overhead, not array work: the vectorised reference does not
-    # scale it, so it is shown as measured (designs per CPU second) and compared side by side.
+    # scale it, so it is judged side by side with the code before.
+    small = f"{compared['small']['ratio']:.2f}x side by side" if compared else "not measured side by side"
     lines.append(
         f"| {rows['small']['label'].split(' (')[0]} at {SMALL_GROUP} designs per call | higher than before "
-        f"(issue 16: improve small groups too) | {rows['small']['rate']:,.0f} designs/s | "
-        "see the notes (side by side with the code before) |"
+        f"(issue 16: improve small groups too) | {small} | "
+        f"{'yes' if compared and compared['small']['ratio'] > 1.0 else 'no'} |"
     )
     lines += ["", f"Process peak resident memory over the whole benchmark: {max_rss:.0f} MB."]
     text = "\n".join(lines) + "\n"
