@@ -29,6 +29,7 @@ from optimizer.topologies.base import (
 )
 
 _LARGE_CAPACITANCE = 1.0  # F: "a short" at audio frequencies for the corner probe
+MIDBAND_LOSS = 0.01  # the capacitors together may cost at most this share of |H| at the band's centre
 _PROBE_VALUES = (1e-6, 1e-8, 1e-10, 1e-4)  # F, tried in turn for each capacitor's own corner
 _SCALE_GRID = np.geomspace(1.0, 16.0, 25)  # common factors m tried, ascending
 PROBE_BATCH = 1024  # variants up to which every probe left after the first is solved in one call
@@ -52,6 +53,7 @@ class _LowCorner:
         beta = topology._hfe_array(device, None, next(iter(p.values())).size)
         self.parts, self.bias, _ = topology._solve(p, device, self.conditions, beta)
         self.gain: np.ndarray | None = None  # V/V, per candidate where the capacitors leave it alone
+        self.midband_large: np.ndarray | None = None  # |H| at the band's centre with large capacitors (V/V)
         if topology.core_is_bound:
             every = np.arange(beta.size)
             self.gain = np.concatenate(
@@ -105,6 +107,26 @@ class _LowCorner:
             for part, gain, response in self._responses(rows, caps):
                 h = response(at_target)[0]
                 out[part] = ~(2.0 * (h.real**2 + h.imag**2) < gain**2)
+        return out
+
+    def midband_ratio(self, rows: np.ndarray, caps: dict[str, np.ndarray]) -> np.ndarray:
+        """|H| at the band's centre (the geometric mean of its edges) of each variant (as
+        :meth:`__call__`'s) over the same with every capacitor being sized at _LARGE_CAPACITANCE
+        (the candidate's own response, solved once): 1 where the capacitors are shorts there, NaN
+        where the model has no figure."""
+        if self.midband_large is None:
+            every = np.arange(self.bias.op["ic"].size)
+            self.midband_large = np.abs(self._at_centre(every, {}))
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.abs(self._at_centre(rows, caps)) / self.midband_large[rows]
+
+    def _at_centre(self, rows: np.ndarray, caps: dict[str, np.ndarray]) -> np.ndarray:
+        """The complex response (V/V) at the band's centre of each variant."""
+        centre = np.array([[np.sqrt(self.conditions.band[0] * self.conditions.band[1])]])
+        out = np.empty(rows.size, dtype=complex)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            for part, _, response in self._responses(rows, caps):
+                out[part] = response(centre)[0]
         return out
 
     def meets_stacked(self, variants: list[dict[str, np.ndarray]], target: float) -> np.ndarray:
@@ -224,8 +246,38 @@ def size_capacitors(
         ok = found & np.take_along_axis(meets_sub, (trial - 1)[None], axis=0)[0]
         taken = np.where(ok, trial, taken)
     chosen = {c: allowed[np.where(taken >> j & 1, lower[c], best[c])] for j, c in enumerate(caps)}
+    chosen = _midband_floors(f_low, chosen, allowed)
     floors = topology.capacitor_floors(resistors, conditions, target)
     return {c: np.maximum(v, allowed[_round_up(floors[c], allowed)]) if c in floors else v for c, v in chosen.items()}
+
+
+def _midband_floors(f_low: _LowCorner, chosen: dict[str, np.ndarray], allowed: np.ndarray) -> dict[str, np.ndarray]:
+    """``chosen`` (F) with each capacitor raised, where it must be, to the smallest allowed value
+    that alone (the others large) costs at most MIDBAND_LOSS / (capacitors) of |H| at the band's
+    centre: the mid-band figures (gain, swing, distortion) take every coupling and bypass
+    capacitor as a short there. A capacitor that does not set the low corner can still miss that:
+    an emitter bypass inside a feedback loop whose removal costs the closed-loop gain less than
+    3 dB has no -3 dB corner of its own, so the low corner alone would give it the smallest value.
+    A bisection over the allowed values, for the capacitors and candidates that need it alone."""
+    n = next(iter(chosen.values())).size
+    every = np.arange(n)
+    least = 1.0 - MIDBAND_LOSS / len(chosen)
+    out = dict(chosen)
+    for cap, values in chosen.items():
+        ratio = f_low.midband_ratio(every, {cap: values})
+        short = np.flatnonzero(ratio < least)  # NaN (no figure): left as chosen
+        if not short.size:
+            continue
+        lo = _round_up(values[short], allowed)
+        hi = np.full(short.size, allowed.size - 1)
+        while np.any(lo < hi):  # the smallest index meeting the share (hi meets it or is the largest)
+            mid = (lo + hi) // 2
+            ok = f_low.midband_ratio(short, {cap: allowed[mid]}) >= least
+            active = lo < hi
+            hi, lo = np.where(active & ok, mid, hi), np.where(active & ~ok, mid + 1, lo)
+        out[cap] = values.copy()
+        out[cap][short] = allowed[hi]
+    return out
 
 
 DECOUPLE_CORNER_DECADES = 1.0  # without a PSRR limit: r_decouple*c_decouple corner this many decades below the band

@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from optimizer import scoring
+from optimizer import eseries, scoring
 from optimizer.candidates import design_from_record
 from optimizer.errors import InputError
 from optimizer.search import search
@@ -30,7 +30,14 @@ from optimizer.spec import load_spec, parse_spec
 from optimizer.synthesis import HandRequirements, rounded_designs
 from optimizer.topologies import Conditions, get_topology
 from spice_designs import check_device, fb_split_designs, pair_designs
-from spice_harness import phase_margin_of, spice_loop_gain, spice_midband, spice_operating_point, spice_thd
+from spice_harness import (
+    phase_margin_of,
+    spice_loop_gain,
+    spice_midband,
+    spice_operating_point,
+    spice_swing,
+    spice_thd,
+)
 
 TOPOLOGY = get_topology("feedback_pair")
 DESIGNS = pair_designs()
@@ -170,6 +177,91 @@ def test_a_pairs_solve_does_not_depend_on_its_batch() -> None:
         assert alone.metrics[key][0] == together.metrics[key][0], key
 
 
+@needs_spice
+def test_the_emitter2_bypass_is_sized_to_be_a_short_at_the_band_centre() -> None:
+    # Inside the loop, leaving emitter2 unbypassed costs the closed-loop gain less than 3 dB, so
+    # the bypass has no -3 dB corner of its own and the low corner alone sized it at the smallest
+    # value (10 pF): the model, which takes it as a short at mid-band, then read +11.85 where
+    # ngspice gives +9.09. The sizing now keeps each capacitor's cost at the band's centre within
+    # MIDBAND_LOSS / 3, and the mid-band gain agrees with ngspice (15 V, 2.2k source, 22k load)
+    from optimizer.sizing import MIDBAND_LOSS, size_capacitors
+
+    resistors = {
+        "r_top": 470e3,
+        "r_bottom": 82e3,
+        "r_collector": 18e3,
+        "r_emitter": 1.3e3,
+        "r_emitter2": 680.0,
+        "r_collector2": 2.4e3,
+        "r_feedback": 15e3,
+    }
+    device = check_device(400)
+    conditions = Conditions(supply=15.0, source_impedance=2.2e3, load_impedance=22e3, band=(25.0, 25e3))
+    allowed = np.array(sorted(v for v in eseries.series_values("E6", 1e-11, 1e-2)))
+    caps = size_capacitors(TOPOLOGY, _arrays(resistors), device, conditions, allowed)
+    parts = {**resistors, **{c: float(v[0]) for c, v in caps.items()}}
+    assert parts["c_emitter2"] > 1e-6
+    model = float(TOPOLOGY.evaluate(_arrays(parts), device, conditions).metrics["gain"][0])
+    simulated = spice_midband("feedback_pair", parts, {**device.spice_model(), "polarity": "npn"}, conditions)
+    assert model == pytest.approx(simulated["gain"], rel=MIDBAND_LOSS)
+
+
+@needs_spice
+@pytest.mark.parametrize(
+    "resistors, vce1",
+    [
+        (
+            {
+                "r_bottom": 24e3,
+                "r_collector": 4.7e3,
+                "r_emitter": 3.6e3,
+                "r_emitter2": 4.7e3,
+                "r_collector2": 2.7e3,
+                "r_feedback": 13e3,
+            },
+            0.49,
+        ),
+        (
+            {
+                "r_bottom": 16e3,
+                "r_collector": 4.7e3,
+                "r_emitter": 3.9e3,
+                "r_emitter2": 4.3e3,
+                "r_collector2": 2.2e3,
+                "r_feedback": 15e3,
+            },
+            1.31,
+        ),
+    ],
+    ids=["q1-at-0.49-V", "q1-at-1.31-V"],
+)
+def test_the_swing_ends_where_q1_saturates(resistors, vce1) -> None:
+    # On +-15 V (the bundled catalog's PNP, a +4 insert return into 10k: a scenario of our own) q1's
+    # emitter follows the fed-back output, so a large swing takes q1's collector below its emitter,
+    # where the forward-active solve no longer holds: the swing stops there. Before, these read
+    # 11.6 and 11.9 V p-p against ngspice's 2.8 and 10.0; now within 10 % of ngspice
+    spec = parse_spec(
+        {
+            "name": "insert_return",
+            "supply": "+-15 V",
+            "gain": {"target": 4, "tolerance": "1 dB"},
+            "source_impedance": 600,
+            "load_impedance": "10k",
+            "band": ["20 Hz", "40 kHz"],
+            "devices": ["SF-P1"],
+        }
+    )
+    from optimizer.search import SearchSpace
+
+    device = SearchSpace.build(spec).devices["SF-P1"]
+    conditions = scoring.conditions_from_spec(spec)
+    parts = {**resistors, "c_in": 1.5e-6, "c_emitter2": 47e-6, "c_out": 2.2e-6}
+    result = TOPOLOGY.evaluate(_arrays(parts), device, conditions)
+    assert float(result.operating_point["vce"][0]) == pytest.approx(vce1, abs=0.01)
+    simulated = spice_swing("feedback_pair", parts, {**device.spice_model(), "polarity": "pnp"}, conditions)
+    assert float(result.metrics["swing_vpp"][0]) == pytest.approx(simulated, rel=0.10)
+
+
 def test_small_signal_thd_is_the_quasi_static_one_at_low_level() -> None:
     """Second-order perturbation theory is exact as the level goes to zero: the estimate (nonlinear
     collector and base currents and the Early product, through the closed loop) meets the
@@ -276,7 +368,7 @@ def test_search_on_a_non_inverting_example_spec_ranks_a_feasible_pair_that_ngspi
 
 def test_split_hand_seeds_are_feasible_and_the_oracle_leaves_r_top_out() -> None:
     """On specs/split_rail_send_amp.yaml (+6 on +-12 V) the pair's seeds come from its own split
-    rule (no r_top; q1's emitter near -Vbe in true volts) and the rounded hand design already
+    rule (no r_top; q1's emitter near -Vbe in true volts) and a rounded hand design already
     meets the spec's limits at nominal; the exhaustive oracle of a split space enumerates the six
     resistors the design chooses (r_top left out), 4^6 combinations on E3 4.7k..47k."""
     from optimizer.exhaustive import exhaustive
@@ -288,7 +380,10 @@ def test_split_hand_seeds_are_feasible_and_the_oracle_leaves_r_top_out() -> None
     seeds = [d for d in space.seeds() if d.topology == "feedback_pair"]
     assert seeds and all("r_top" not in dict(d.parts) for d in seeds)
     records = evaluate_designs(space, seeds)
-    assert any(r["feasible"] for r in records), [r["violations"] for r in records][:3]
+    # every limit met at nominal (the Monte Carlo builds' yield aside: where hFE and the tolerances
+    # take q1's collector below its emitter over the swing, some builds fall short of swing_min,
+    # as ngspice confirms on such builds)
+    assert any(not set(r["violations"]) - {"yield"} for r in records), [r["violations"] for r in records][:3]
     hand = space.hand_parts("feedback_pair", "SF-N2")
     assert hand is not None and "r_top" not in hand
     device = space.devices["SF-N2"]

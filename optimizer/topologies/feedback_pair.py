@@ -519,7 +519,7 @@ class FeedbackPair(StageModel):
         """Load voltage (V) against source voltage (V): the pair's two loops solved together at
         every sample; c_in, c_emitter2 and c_out hold their DC (emitter2 held, the load returns
         to collector2's quiescent voltage); collector2 flattens at emitter2 + vce_sat. NaN where
-        the pair's solve did not settle within its steps."""
+        the pair's solve did not settle within its steps or q1's collector is below its emitter."""
         op = b.op
         rth = physics.parallel(p["r_top"], p["r_bottom"])
         vth = c.supply * p["r_bottom"] / (p["r_top"] + p["r_bottom"])
@@ -547,7 +547,15 @@ class FeedbackPair(StageModel):
                 **kw,
             )
             v_c2 = np.maximum(q["v_c2"], op["v_emitter2"] + device.vce_sat)
-            # a sample whose solve did not settle has no output (the swing counts it as deviating)
-            return np.where(q["settled"], v_c2 - op["v_collector2"], np.nan)
+            # No output (NaN: the swing counts it as deviating) where the solve did not settle, or
+            # where q1's collector falls below its emitter. Its emitter follows the fed-back output
+            # while its collector, q2's base, stays a Vbe above the held emitter2, so a large swing
+            # drives q1 into saturation; below Vce = 0 its base-collector junction is forward biased
+            # by a full Vbe and takes the current the loop needs, which the forward-active
+            # junctions do not model. (Between vce_sat and 0 V the loop weakens gradually, and
+            # that is not modelled either: there the swing still reads high, see the note in
+            # DEVELOPERS.md.)
+            held = q["settled"] & (q["v_c1"] >= q["v_e1"])
+            return np.where(held, v_c2 - op["v_collector2"], np.nan)
 
         return out
