@@ -260,11 +260,19 @@ def _midband_floors(f_low: _LowCorner, chosen: dict[str, np.ndarray], allowed: n
     3 dB has no -3 dB corner of its own, so the low corner alone would give it the smallest value.
     A bisection over the allowed values, for the capacitors and candidates that need it alone."""
     n = next(iter(chosen.values())).size
-    every = np.arange(n)
     least = 1.0 - MIDBAND_LOSS / len(chosen)
     out = dict(chosen)
-    for cap, values in chosen.items():
-        ratio = f_low.midband_ratio(every, {cap: values})
+    # one call: each capacitor alone at its value (the others large) and the all-large reference
+    every = np.tile(np.arange(n), len(chosen) + 1)
+    alone = {
+        cap: np.concatenate([values if j == k else np.full(n, _LARGE_CAPACITANCE) for k in range(len(chosen) + 1)])
+        for j, (cap, values) in enumerate(chosen.items())
+    }
+    h = np.abs(f_low._at_centre(every, alone)).reshape(len(chosen) + 1, n)
+    f_low.midband_large = h[-1]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratios = h[:-1] / h[-1]
+    for (cap, values), ratio in zip(chosen.items(), ratios):
         short = np.flatnonzero(ratio < least)  # NaN (no figure): left as chosen
         if not short.size:
             continue
