@@ -7,7 +7,9 @@ then scaled together, C_j = m * K_j / f_target, with the smallest common factor 
 still meets the target once every value is rounded up to the series; a last pass steps
 each capacitor down one value where the target still holds. Whether a set of values meets
 the target is read from the response at the target frequency alone (within 3 dB of the
-mid-band gain), not from the crossing's search. All candidates at once.
+mid-band gain), not from the crossing's search. Last, a capacitor that alone costs more than
+MIDBAND_LOSS / (capacitors) of |H| at the band's centre is raised to the smallest value that
+does not (the mid-band figures take every capacitor as a short there). All candidates at once.
 """
 
 from __future__ import annotations
@@ -53,7 +55,6 @@ class _LowCorner:
         beta = topology._hfe_array(device, None, next(iter(p.values())).size)
         self.parts, self.bias, _ = topology._solve(p, device, self.conditions, beta)
         self.gain: np.ndarray | None = None  # V/V, per candidate where the capacitors leave it alone
-        self.midband_large: np.ndarray | None = None  # |H| at the band's centre with large capacitors (V/V)
         if topology.core_is_bound:
             every = np.arange(beta.size)
             self.gain = np.concatenate(
@@ -109,24 +110,14 @@ class _LowCorner:
                 out[part] = ~(2.0 * (h.real**2 + h.imag**2) < gain**2)
         return out
 
-    def midband_ratio(self, rows: np.ndarray, caps: dict[str, np.ndarray]) -> np.ndarray:
-        """|H| at the band's centre (the geometric mean of its edges) of each variant (as
-        :meth:`__call__`'s) over the same with every capacitor being sized at _LARGE_CAPACITANCE
-        (the candidate's own response, solved once): 1 where the capacitors are shorts there, NaN
-        where the model has no figure."""
-        if self.midband_large is None:
-            every = np.arange(self.bias.op["ic"].size)
-            self.midband_large = np.abs(self._at_centre(every, {}))
-        with np.errstate(divide="ignore", invalid="ignore"):
-            return np.abs(self._at_centre(rows, caps)) / self.midband_large[rows]
-
-    def _at_centre(self, rows: np.ndarray, caps: dict[str, np.ndarray]) -> np.ndarray:
-        """The complex response (V/V) at the band's centre of each variant."""
+    def at_centre(self, rows: np.ndarray, caps: dict[str, np.ndarray]) -> np.ndarray:
+        """|H| (V/V) at the band's centre (the geometric mean of its edges) of each variant (as
+        :meth:`__call__`'s); NaN where the model has no figure."""
         centre = np.array([[np.sqrt(self.conditions.band[0] * self.conditions.band[1])]])
-        out = np.empty(rows.size, dtype=complex)
+        out = np.empty(rows.size)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             for part, _, response in self._responses(rows, caps):
-                out[part] = response(centre)[0]
+                out[part] = np.abs(response(centre)[0])
         return out
 
     def meets_stacked(self, variants: list[dict[str, np.ndarray]], target: float) -> np.ndarray:
@@ -268,19 +259,21 @@ def _midband_floors(f_low: _LowCorner, chosen: dict[str, np.ndarray], allowed: n
         cap: np.concatenate([values if j == k else np.full(n, _LARGE_CAPACITANCE) for k in range(len(chosen) + 1)])
         for j, (cap, values) in enumerate(chosen.items())
     }
-    h = np.abs(f_low._at_centre(every, alone)).reshape(len(chosen) + 1, n)
-    f_low.midband_large = h[-1]
+    h = f_low.at_centre(every, alone).reshape(len(chosen) + 1, n)
+    large = h[-1]
     with np.errstate(divide="ignore", invalid="ignore"):
-        ratios = h[:-1] / h[-1]
+        ratios = h[:-1] / large
     for (cap, values), ratio in zip(chosen.items(), ratios):
         short = np.flatnonzero(ratio < least)  # NaN (no figure): left as chosen
         if not short.size:
             continue
-        lo = _round_up(values[short], allowed)
+        lo = _round_up(values[short], allowed) + 1  # the chosen value misses the share
         hi = np.full(short.size, allowed.size - 1)
+        lo = np.minimum(lo, hi)
         while np.any(lo < hi):  # the smallest index meeting the share (hi meets it or is the largest)
             mid = (lo + hi) // 2
-            ok = f_low.midband_ratio(short, {cap: allowed[mid]}) >= least
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ok = f_low.at_centre(short, {cap: allowed[mid]}) / large[short] >= least
             active = lo < hi
             hi, lo = np.where(active & ok, mid, hi), np.where(active & ~ok, mid + 1, lo)
         out[cap] = values.copy()
