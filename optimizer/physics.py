@@ -42,6 +42,7 @@ THD_FREQUENCY = (
 SWING_TOLERANCE = 0.1  # usable swing: both peaks within 10 % of the linear gain times the drive
 SWING_GRID = (0.8, 1.0, 1.6)  # multiples of the clip-level drive scanned for the first deviation
 SWING_STEPS = 3  # Illinois false-position steps on the drive amplitude after the scan
+SWING_DOUBLINGS = 3  # further scan points, each twice the last, for a stage that has not deviated by SWING_GRID's end
 MAX_STEP = 0.1  # V, largest Newton step in Vbe (a guard; steps from above are about NF*VT)
 SLOW_ITERATIONS = 8  # further Newton steps, only for candidates not yet converged (see solve_junction)
 NEWTON_TOL = 1e-7  # V, residual of the base-loop equation counted as converged
@@ -932,8 +933,9 @@ def usable_swing(
     whose static curve clips later), the first scanned amplitude with d > tolerance
     brackets the crossing with the one before it (d(0) = 0), and Illinois false position
     on d - tolerance refines it; the swing is out(+a) - out(-a) there, interpolated between
-    the bracket's ends. Where no scanned amplitude deviates (a stage that does not clip
-    within its clip-level drive), the peak-to-peak at the last one is returned. A drive whose
+    the bracket's ends. Where no scanned amplitude deviates (a stage whose static curve clips
+    later than its AC load line), the scan goes on at doubling amplitudes (SWING_DOUBLINGS);
+    where none of those deviates either, the peak-to-peak at the last one is returned. A drive whose
     output is not finite (``static_output`` gives NaN where its solve did not settle) counts
     as deviating, and the swing is not interpolated towards it.
     """
@@ -964,6 +966,19 @@ def usable_swing(
     d0 = np.where(start, -tolerance, d_grid[rows, prev])
     p0 = np.where(start, 0.0, pp_grid[rows, prev])
     d1 = np.minimum(d1, 1.0)  # a non-finite or huge deviation past a hard clip: keep the secant sane
+    # A stage whose static curve clips later than its AC load line says (a follower whose bootstrap
+    # or load lifts the clip) has not deviated by the scan's end: its scan goes on at twice the last
+    # amplitude (those candidates alone count; the others are solved again at their own outside end
+    # and left as they are)
+    for _ in range(SWING_DOUBLINGS):
+        more = ~found & np.isfinite(x1) & (x1 > 0)
+        if not more.any():
+            break
+        a = np.where(more, 2.0 * x1, x1)
+        dm, pm = (v[:, 0] for v in measure(a[:, None]))
+        x0, d0, p0 = (np.where(more, new, old) for new, old in ((x1, x0), (d1, d0), (p1, p0)))
+        x1, d1, p1 = (np.where(more, new, old) for new, old in ((a, x1), (np.minimum(dm, 1.0), d1), (pm, p1)))
+        found |= more & (dm > 0.0)
     side = np.zeros(n)  # +1: the last step moved x1, -1: it moved x0
     for _ in range(SWING_STEPS):  # Illinois false position, x0 inside (d < 0), x1 outside
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, -1.0, d0 - d1)

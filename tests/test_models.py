@@ -456,6 +456,20 @@ def test_usable_swing_takes_no_figure_from_a_transfer_without_an_output():
     assert 2.0 * gain * 0.8 * a_clip <= swing <= 2.0 * gain * 0.9 * a_clip
 
 
+def test_usable_swing_scans_on_where_the_static_curve_clips_after_the_load_line():
+    # A stage whose static curve clips at 3 V peak while its AC load line says 1 V (a follower whose
+    # bootstrap lifts the clip): the scan (to 1.6x the clip-level drive) sees no deviation, so it
+    # goes on at doubling drives and finds the 10 % point, 6 V p-p; it used to stop at the scan's
+    # end (3.56 V p-p). The same search in ngspice terms: a 30 V bootstrap follower read 19.2
+    # against ngspice's 24.1 V p-p; now 23.8
+    gain, clip_peak = np.array([1.0]), np.array([1.0])
+
+    def transfer(vs: np.ndarray) -> np.ndarray:
+        return np.clip(vs, -3.0, 3.0)
+
+    assert physics.usable_swing(transfer, gain, clip_peak) == pytest.approx(6.0, rel=0.01)
+
+
 def test_power_law_segments_integrate_power_laws_exactly():
     # the noise integral's segments against the closed-form integral of c*f^k (calculus: c*(f1^(k+1) -
     # f0^(k+1))/(k+1), and c*ln(f1/f0) at k = -1), over the band's log-spaced points
