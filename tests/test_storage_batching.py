@@ -169,7 +169,10 @@ def test_a_trial_made_with_its_parameters_is_written_as_optuna_writes_it(tmp_pat
         for values in ({"topology": "a", "a.r_top": 7}, {"topology": "b", "a.r_top": -1}, {"topology": "a"}):
             given = {k: distributions[k] for k in values}
             template = create_trial(state=TrialState.RUNNING, params=values, distributions=given)
-            template.datetime_start = template.datetime_start.replace(microsecond=5)  # the same time in both
+            # the same time in both runs (a fixed instant: the runs may straddle a second's boundary)
+            template.datetime_start = template.datetime_start.replace(
+                year=2026, month=1, day=2, hour=3, minute=4, second=5, microsecond=5
+            )
             templates.append(template)
         if name == "ours" and together:
             with batched_writes(store):
