@@ -80,12 +80,17 @@ def finished_trials(journal: Path) -> dict[tuple[str, int], tuple]:
 
 
 def _tear(journal: Path) -> int:
-    """Cut the journal in the middle of its last line (a crash mid-write); returns the bytes cut."""
+    """Leave a record half-written at the journal's end, as a crash in the middle of an append
+    does (the first half of a copy of the last record); returns its bytes. The records before it
+    were written whole, and may already have been read as finished, so they stay as they are:
+    cutting the last record itself would undo a write that had completed, once the searches are
+    quick enough to have finished before the tear."""
     data = journal.read_bytes()
     start = data.rfind(b"\n", 0, len(data) - 1) + 1
-    cut = start + max(1, (len(data) - start) // 2)
-    journal.write_bytes(data[:cut])
-    return len(data) - cut
+    torn = data[start : start + max(1, (len(data) - start) // 2)]
+    with open(journal, "ab") as f:
+        f.write(torn)
+    return len(torn)
 
 
 def chaos(workdir: Path, *, kills: int, searches: int, trials: int, seed: int = 7, log=print) -> dict:
