@@ -281,6 +281,14 @@ def _cautions(spec: Spec, near: dict[str, float], metrics: dict[str, float | Non
         margin = sign * (value - limit) / limit
         if 0 <= margin < NEAR_LIMIT:
             notes.append(f"{metric} is within {margin:.0%} of its limit {limit_name} = {limit:g}")
+    deviation = metrics.get("midband_deviation")
+    if deviation is not None and np.isfinite(deviation) and deviation > scoring.MIDBAND_DEVIATION_MAX:
+        notes.append(
+            f"the mid-band figures do not hold: |gain| at the band's centre "
+            f"({format_value(scoring.conditions_from_spec(spec).band_centre, 'Hz')}) is {deviation:.0%} off the "
+            "mid-band gain, which (like the swing, distortion and impedances) takes the coupling and bypass "
+            "capacitors as shorts; raise the capacitors (or, if the high corner is near, lower the impedances)"
+        )
     notes += direct_input_notes(spec, op)
     notes.append("predicted, not measured: verify the built stage before relying on it")
     return notes + hazard_cautions(spec)

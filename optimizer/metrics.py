@@ -138,6 +138,13 @@ METRICS: tuple[Metric, ...] = (
     Metric("psrr_mid_db", "dB", "dB", "supply rejection at the band's geometric mean", spice=(2.0, "diff")),
     Metric("f_low", "Hz", "Hz", "low -3 dB corner", ("low -3 dB corner", 1.0, "Hz"), spice=(0.10, "rel")),
     Metric("f_high", "Hz", "Hz", "high -3 dB corner", ("high -3 dB corner", 1e-3, "kHz"), spice=(0.25, "rel")),
+    Metric(
+        "midband_deviation",
+        "",
+        "%",
+        "how far |gain| at the band's centre (the whole response: capacitors as chosen, junction and load"
+        " capacitances) is from the mid-band gain (limit 'midband': 2 %)",
+    ),
     Metric("q_power", "W", "W", "largest transistor dissipation", ("transistor dissipation", 1e3, "mW")),
     Metric("emitter_voltage", "V", "V", "DC across the first stage's emitter resistor(s)"),
     Metric(

@@ -30,6 +30,12 @@ CAPACITOR_VOLTAGE_DERATING = 0.8
 TRANSISTOR_DERATE_FROM_C, TRANSISTOR_TJ_MAX_C = 25.0, 150.0
 SATURATION_FLOOR = 0.1  # least violation of a saturated stage (graded up by its Vce shortfall)
 NEAR_RATING = 0.5  # a part past half its rating gets a caution (common practice derating)
+# The mid-band figures (gain, impedances, swing, distortion) take the coupling and bypass capacitors
+# as shorts and the junction capacitances as open. The sizing keeps the capacitors' cost at the
+# band's centre within 1 % (sizing.MIDBAND_LOSS); a design whose whole response there is further
+# than this from its mid-band gain (capacitors searched or given too small, or a high corner too
+# near) violates the "midband" limit.
+MIDBAND_DEVIATION_MAX = 0.02
 
 
 def conditions_from_spec(spec: Spec, temperature: float = 27.0) -> Conditions:
@@ -148,6 +154,11 @@ def limit_violations(
     if not core_only:
         out["band_low"] = _below(metrics["f_low"], spec.band[0])
         out["band_high"] = _above(metrics["f_high"], spec.band[1])
+        # a design without the figure, or not active (whose small-signal figures mean nothing), is
+        # judged by the other limits
+        deviation = np.nan_to_num(np.asarray(metrics.get("midband_deviation", np.nan), dtype=float), nan=0.0)
+        deviation = np.where(inactive, 0.0, deviation)
+        out["midband"] = _below(deviation, MIDBAND_DEVIATION_MAX)
     limits = spec.limits
     for limit_name, metric, sign in LIMIT_METRICS:
         judge = _above if sign > 0 else _below
@@ -176,6 +187,7 @@ SMALL_SIGNAL_METRICS = (
     "thd",
     "f_low",
     "f_high",
+    "midband_deviation",
     "noise_ein_v",
     "noise_figure_db",
     "psrr_db",

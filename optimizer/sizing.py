@@ -113,7 +113,7 @@ class _LowCorner:
     def at_centre(self, rows: np.ndarray, caps: dict[str, np.ndarray]) -> np.ndarray:
         """|H| (V/V) at the band's centre (the geometric mean of its edges) of each variant (as
         :meth:`__call__`'s); NaN where the model has no figure."""
-        centre = np.array([[np.sqrt(self.conditions.band[0] * self.conditions.band[1])]])
+        centre = np.array([[self.conditions.band_centre]])
         out = np.empty(rows.size)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             for part, _, response in self._responses(rows, caps):

@@ -21,7 +21,13 @@ BAD_OBJECTIVE = 1e12  # stand-in for a metric the model cannot give (e.g. a stag
 SCREEN_WITHIN = 0.5  # designs within this summed violation at nominal get the robustness screen
 
 
-FULL_ONLY_OPTIMISTIC = {"f_low": 0.0, "f_high": np.inf, "noise_ein_v": 0.0, "noise_figure_db": 0.0}
+FULL_ONLY_OPTIMISTIC = {
+    "f_low": 0.0,
+    "f_high": np.inf,
+    "midband_deviation": 0.0,
+    "noise_ein_v": 0.0,
+    "noise_figure_db": 0.0,
+}
 
 
 def evaluate_group(

@@ -13,7 +13,7 @@ from optimizer import robustness
 from optimizer.catalog import load_catalog
 from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
 from optimizer.record import candidate_record, part_label, record_conditions
-from optimizer.scoring import pareto_mask
+from optimizer.scoring import MIDBAND_DEVIATION_MAX, pareto_mask
 from optimizer.search.space import SearchSpace
 from optimizer.spec import Spec
 from optimizer.topologies import get_topology
@@ -94,7 +94,15 @@ def fold_variants(space: SearchSpace, ranked: list[dict], keep: Collection[tuple
 def _limit_metric(limit: str) -> tuple[str | None, str]:
     """The metric a limit judges and its unit (for saying what relaxing it would take)."""
     table = {name: metric for name, metric, _ in LIMIT_METRICS}
-    table.update({"gain": "gain_db", "band_low": "f_low", "band_high": "f_high", "yield": "yield"})
+    table.update(
+        {
+            "gain": "gain_db",
+            "band_low": "f_low",
+            "band_high": "f_high",
+            "midband": "midband_deviation",
+            "yield": "yield",
+        }
+    )
     metric = table.get(limit)
     return metric, metric_unit(metric or "")
 
@@ -165,12 +173,19 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
     def show(value: float | None, limit: str) -> str | None:
         if value is None:
             return None
-        if limit in ("yield", "thd_max"):
+        if limit in ("yield", "thd_max", "midband"):
             return f"{100 * value:.3g} %"
         return f"{value:.3g} dB" if units[limit] == "dB" else format_value(value, units[limit])
 
     asked = {name: getattr(spec.limits, name) for name, _, _ in LIMIT_METRICS}
-    asked.update({"yield": spec.limits.yield_min, "band_low": spec.band[0], "band_high": spec.band[1]})
+    asked.update(
+        {
+            "yield": spec.limits.yield_min,
+            "band_low": spec.band[0],
+            "band_high": spec.band[1],
+            "midband": MIDBAND_DEVIATION_MAX,
+        }
+    )
     parts = []
     for limit in limits:
         if limit == "gain":

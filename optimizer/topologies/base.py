@@ -35,6 +35,7 @@ METRICS = (
     "supply_current",
     "f_low",
     "f_high",
+    "midband_deviation",
     "thd",
     "noise_ein_v",
     "noise_figure_db",
@@ -98,6 +99,11 @@ class Conditions:
     # between: a split supply (spec.supply_below_ground). The public methods take it in true
     # terms; inside the models it is the stage's frame's (see :func:`frame_conditions`).
     below_ground: float = 0.0
+
+    @property
+    def band_centre(self) -> float:
+        """The band's centre (Hz): the geometric mean of its edges, where the mid-band figures are judged."""
+        return math.sqrt(self.band[0] * self.band[1])
 
     @property
     def rail_max(self) -> float | np.ndarray:
@@ -755,7 +761,7 @@ class StageModel(Topology):
             mid = self._midband(p, conditions, b, r_source)
             # impedances are seen through the coupling capacitors at the band's geometric mean
             # (complex where a stage gives its mid-band impedance at that frequency: a bootstrap)
-            w_mid = 2.0 * np.pi * math.sqrt(conditions.band[0] * conditions.band[1])
+            w_mid = 2.0 * np.pi * conditions.band_centre
             z_in = np.abs(mid["input_impedance"] + input_reactance(p["c_in"], 1j * w_mid))
             z_out = np.abs(mid["output_impedance"] + 1.0 / (1j * w_mid * p["c_out"]))
             clip, vce_max = self._swing(p, device, local, b, mid)
@@ -782,6 +788,7 @@ class StageModel(Topology):
             m.update(
                 f_low=nan,
                 f_high=nan,
+                midband_deviation=nan,
                 noise_ein_v=nan,
                 noise_figure_db=nan,
                 psrr_db=nan,
@@ -830,13 +837,18 @@ class StageModel(Topology):
         # every array of the nodal solve is (frequencies, candidates) with the candidates
         # contiguous: numpy's inner loops then run over thousands of values, not a few frequencies.
         net = self._network(p, c, b.small_signal, True, r_source, True)
-        f_low, f_high = physics.minus_3db_corners(self._response(net, r_source), gain, self.corner_steps)
+        response = self._response(net, r_source)
+        f_low, f_high = physics.minus_3db_corners(response, gain, self.corner_steps)
+        # the mid-band figures take the coupling and bypass capacitors as shorts (the followers' see
+        # c_in and c_out, the bootstrap's its c_bootstrap) and the junction and load capacitances as
+        # open: how far the whole response at the band's centre is from them
+        centre = np.abs(response(np.array([[c.band_centre]]))[0])
+        corners = {"f_low": f_low, "f_high": f_high, "midband_deviation": np.abs(centre / np.abs(gain) - 1.0)}
         if not noise:  # the corners alone (evaluate's noise=False)
-            return {"f_low": f_low, "f_high": f_high}
+            return corners
         ein, nf = physics.noise_integrals(net, "out", "in", r_source, c.band)
         return {
-            "f_low": f_low,
-            "f_high": f_high,
+            **corners,
             "noise_ein_v": ein,
             "noise_figure_db": nf,
             **self._psrr(p, c, b, r_source),
@@ -859,7 +871,7 @@ class StageModel(Topology):
                 "r_bottom": physics.parallel(p["r_top"], p["r_bottom"]),
             }
         net = self._network(p, c, b.small_signal, True, r_source, True, supply=True)
-        f = np.array([[c.ripple_frequency], [math.sqrt(c.band[0] * c.band[1])]])
+        f = np.array([[c.ripple_frequency], [c.band_centre]])
         at = net.at(2j * np.pi * f)
         ground = net.ground
         drives = ([({"vcc": np.full(1, physics.G_SHORT)}, "vcc")] if g < 1 else []) + (
@@ -925,7 +937,7 @@ class StageModel(Topology):
         band's geometric-mean frequency (a check of the closed forms)."""
         p, b, _, c = self._checked_solve(parts, device, conditions, hfe)
         rs = _source_resistance(b, c)
-        s = np.array(2j * np.pi * math.sqrt(c.band[0] * c.band[1]))
+        s = np.array(2j * np.pi * c.band_centre)
         ss, one = b.small_signal, np.ones_like(rs)
         h = self._network(p, c, ss, True, rs, True).at(s).solve({"in": 1.0 / rs}, ["out"])["out"]
         z_in = self._network(p, c, ss, True, None, True).at(s).solve({"in": one}, ["in"])["in"]

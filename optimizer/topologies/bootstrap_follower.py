@@ -96,7 +96,7 @@ class BootstrapFollower(EmitterFollower):
         )
 
     def _mid_admittances(self, p: Parts, c: Conditions) -> tuple:
-        w = 2.0 * math.pi * math.sqrt(c.band[0] * c.band[1])
+        w = 2.0 * math.pi * c.band_centre
         g_bs = 1.0 / p["r_bootstrap"]
         return (
             0.0 * g_bs,

@@ -244,7 +244,7 @@ class EmitterFollower(StageModel):
         are judged: the source reaches the base through c_in (whose reactance the output
         impedance sees), the load (with its capacitance) hangs on the emitter through c_out.
         Adds gain_c (V/V, complex): source to load."""
-        s = 2j * math.pi * math.sqrt(c.band[0] * c.band[1])
+        s = 2j * math.pi * c.band_centre
         y_load = 1.0 / c.load_impedance + s * c.load_capacitance
         y_out = s * p["c_out"]
         z_source = r_source + input_reactance(p["c_in"], s)

@@ -14,7 +14,6 @@ VTO, k = 1 + LAMBDA*Vds), solved in closed form and iterated on k (Vds falls wit
 
 from __future__ import annotations
 
-import math
 from typing import Any, Callable
 
 import numpy as np
@@ -206,7 +205,7 @@ class JFETStage(StageModel):
         (sign of its real part). The distortion term comes from the resistive network."""
         ss = b.small_signal
         one = np.ones_like(r_source)
-        s = np.array(2j * np.pi * math.sqrt(c.band[0] * c.band[1]))
+        s = np.array(2j * np.pi * c.band_centre)
         h = (
             self._network(p, c, ss, False, r_source, True, device_caps=True)
             .at(s)
