@@ -42,6 +42,8 @@ THD_FREQUENCY = (
 SWING_TOLERANCE = 0.1  # usable swing: both peaks within 10 % of the linear gain times the drive
 SWING_GRID = (0.8, 1.0, 1.6)  # multiples of the clip-level drive scanned for the first deviation
 SWING_STEPS = 3  # Illinois false-position steps on the drive amplitude after the scan
+SWING_MORE_STEPS = 6  # further steps, only for candidates whose swing estimate still moves (see usable_swing)
+SWING_RTOL = 5e-3  # a swing estimate that the last step moved by more than this share has not converged
 SWING_DOUBLINGS = 3  # further scan points, each twice the last, for a stage that has not deviated by SWING_GRID's end
 MAX_STEP = 0.1  # V, largest Newton step in Vbe (a guard; steps from above are about NF*VT)
 SLOW_ITERATIONS = 8  # further Newton steps, only for candidates not yet converged (see solve_junction)
@@ -920,6 +922,8 @@ def usable_swing(
     gain: np.ndarray,
     clip_peak: np.ndarray,
     tolerance: float = SWING_TOLERANCE,
+    rows_output: Callable[[np.ndarray], Callable[[np.ndarray], np.ndarray]] | None = None,
+    refine: np.ndarray | None = None,
 ) -> np.ndarray:
     """Usable swing (V peak-to-peak at the load): the largest sine whose two peaks are both
     within ``tolerance`` (10 %) of the linear mid-band gain times the drive.
@@ -938,20 +942,19 @@ def usable_swing(
     where none of those deviates either, the peak-to-peak at the last one is returned. A drive whose
     output is not finite (``static_output`` gives NaN where its solve did not settle) counts
     as deviating, and the swing is not interpolated towards it.
+
+    After SWING_STEPS steps, the candidates whose estimate the last step moved by more than
+    SWING_RTOL (a transfer that folds back, as the feedback pair's once q1 saturates, where the
+    peak-to-peak is far from linear across the bracket) take up to SWING_MORE_STEPS more, each
+    until its estimate moves by no more than that (then it is not moved again, so it does not
+    depend on the others of its call), through
+    ``rows_output(rows)``, the same transfer for the candidates at ``rows`` alone (without it,
+    none do); ``refine`` (bool per candidate, e.g. the active ones: a transfer about a
+    saturated or cut-off stage's bias means nothing) limits them further.
     """
     gain = np.asarray(gain, dtype=float)
-    g = gain[:, None]
     a_clip = np.asarray(clip_peak, dtype=float) / ((1.0 - tolerance) * np.abs(gain))
-
-    def measure(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """(d - tolerance, peak-to-peak) at drive amplitudes a (V, shape (n, k))."""
-        out = static_output(np.concatenate([a, -a], axis=1))
-        k = a.shape[1]
-        lin = g * a
-        up, down = out[:, :k], out[:, k:]
-        dev = np.maximum(np.abs(up / lin - 1.0), np.abs(down / lin + 1.0))
-        return np.where(np.isfinite(dev), dev, np.inf) - tolerance, np.abs(up - down)
-
+    measure = _swing_measure(static_output, gain, tolerance)
     n = gain.size
     rows = np.arange(n)
     grid = a_clip[:, None] * np.asarray(SWING_GRID)[None, :]
@@ -979,8 +982,58 @@ def usable_swing(
         x0, d0, p0 = (np.where(more, new, old) for new, old in ((x1, x0), (d1, d0), (p1, p0)))
         x1, d1, p1 = (np.where(more, new, old) for new, old in ((a, x1), (np.minimum(dm, 1.0), d1), (pm, p1)))
         found |= more & (dm > 0.0)
-    side = np.zeros(n)  # +1: the last step moved x1, -1: it moved x0
-    for _ in range(SWING_STEPS):  # Illinois false position, x0 inside (d < 0), x1 outside
+    state = [x0, d0, p0, x1, d1, p1, np.zeros(n)]
+    _swing_steps(measure, state, SWING_STEPS - 1)
+    before = _swing_estimate(state)
+    _swing_steps(measure, state, 1)
+    estimate = _swing_estimate(state)
+    moving = found & ~(np.abs(estimate - before) <= SWING_RTOL * np.abs(estimate))
+    moving = np.flatnonzero(moving if refine is None else moving & refine)
+    if rows_output is not None and moving.size:
+        part = [v[moving] for v in state]
+        measure = _swing_measure(rows_output(moving), gain[moving], tolerance)
+        before = estimate[moving]
+        done = np.zeros(moving.size, dtype=bool)
+        for _ in range(SWING_MORE_STEPS):  # each until its estimate moves by no more than SWING_RTOL
+            kept = [v[done] for v in part]
+            _swing_steps(measure, part, 1)
+            for v, old in zip(part, kept):  # a converged estimate is not moved again (nor by its batch)
+                v[done] = old
+            now = _swing_estimate(part)
+            done |= np.abs(now - before) <= SWING_RTOL * np.abs(now)
+            before = now
+            if done.all():
+                break
+        estimate[moving] = before
+    swing = np.where(found, estimate, state[5])
+    return np.where(np.isfinite(swing) & (np.abs(gain) > 0), swing, 0.0)
+
+
+def _swing_measure(
+    static_output: Callable[[np.ndarray], np.ndarray], gain: np.ndarray, tolerance: float
+) -> Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]:
+    """The measure of :func:`usable_swing`: (d - tolerance, peak-to-peak (V)) at drive amplitudes a (V, shape (n, k))."""
+    g = gain[:, None]
+
+    def measure(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        out = static_output(np.concatenate([a, -a], axis=1))
+        k = a.shape[1]
+        lin = g * a
+        up, down = out[:, :k], out[:, k:]
+        dev = np.maximum(np.abs(up / lin - 1.0), np.abs(down / lin + 1.0))
+        return np.where(np.isfinite(dev), dev, np.inf) - tolerance, np.abs(up - down)
+
+    return measure
+
+
+def _swing_steps(
+    measure: Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]], state: list[np.ndarray], steps: int
+) -> None:
+    """``steps`` Illinois false-position steps of :func:`usable_swing` on the brackets in ``state``
+    ([x0, d0, p0, x1, d1, p1, side], updated in place: x0 inside (d < 0), x1 outside, p the
+    peak-to-peak at each end; side +1 where the last step moved x1, -1 where it moved x0)."""
+    x0, d0, p0, x1, d1, p1, side = state
+    for _ in range(steps):
         xm = x0 + (x1 - x0) * d0 / np.where(d0 == d1, -1.0, d0 - d1)
         xm = np.clip(xm, np.minimum(x0, x1), np.maximum(x0, x1))
         dm, pm = (v[:, 0] for v in measure(xm[:, None]))
@@ -991,12 +1044,17 @@ def usable_swing(
         x1, d1, p1 = (np.where(out_side, new, old) for new, old in ((xm, x1), (dm, d1), (pm, p1)))
         x0, d0, p0 = (np.where(out_side, old, new) for new, old in ((xm, x0), (dm, d0), (pm, p0)))
         side = np.where(out_side, 1.0, -1.0)
-    w = d0 / np.where(d0 == d1, -1.0, d0 - d1)  # where d crosses zero between the ends
-    # an outside end without an output (a transfer's solve that did not settle: NaN) is no
-    # figure to interpolate towards: the swing is then the inside end's, a drive that passed
-    inside = np.where(np.isfinite(p1), p0 + np.clip(w, 0.0, 1.0) * (p1 - p0), p0)
-    swing = np.where(found, inside, p1)
-    return np.where(np.isfinite(swing) & (np.abs(gain) > 0), swing, 0.0)
+    state[:] = [x0, d0, p0, x1, d1, p1, side]
+
+
+def _swing_estimate(state: list[np.ndarray]) -> np.ndarray:
+    """The swing (V peak-to-peak) where d crosses zero in the brackets of ``state``, interpolated
+    between the ends' peak-to-peak. An outside end without an output (a transfer's solve that
+    did not settle: NaN) is no figure to interpolate towards: the swing is then the inside end's,
+    a drive that passed."""
+    _, d0, p0, _, d1, p1, _ = state
+    w = d0 / np.where(d0 == d1, -1.0, d0 - d1)
+    return np.where(np.isfinite(p1), p0 + np.clip(w, 0.0, 1.0) * (p1 - p0), p0)
 
 
 def thd_small_signal(

@@ -997,7 +997,18 @@ class StageModel(Topology):
         """swing_vpp (V peak-to-peak at the load) by :func:`physics.usable_swing`, in double precision
         (single precision, with the small swings it leaves noisy solved again, was no faster at the
         search's groups of 16-64 designs and 1.1x at 16,384: benchmarks/results/models.md)."""
-        return physics.usable_swing(self._static_fn(p, device, c, b, nvt, b.beta), gain, clip_peak)
+
+        def rows_output(rows: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
+            sub_p, sub_c, sub_b, sub_nvt = _rows_of(rows, gain.size, p, c, b, nvt)
+            return self._static_fn(sub_p, device_rows(device, rows), sub_c, sub_b, sub_nvt, sub_b.beta)
+
+        return physics.usable_swing(
+            self._static_fn(p, device, c, b, nvt, b.beta),
+            gain,
+            clip_peak,
+            rows_output=rows_output,
+            refine=b.op["active"].astype(bool),
+        )
 
     def _thd_static(
         self,

@@ -61,28 +61,33 @@ def solve_pair(
     beta: np.ndarray,
     nvt: float,
     inv_vaf: float,
-    v_start: tuple[np.ndarray, np.ndarray] | None = None,
+    v_start: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
     iterations: int = PAIR_ITERATIONS,
 ) -> dict[str, np.ndarray]:
-    """Both forward-active junctions of the pair solved together by damped 2-D Newton (V, A, ohm, S).
+    """Both junctions of q1 and q2's base-emitter junction, solved together by damped 3-D Newton (V, A, ohm, S).
 
     The loops: ``a1 = Vbe1 + r_base1*Ib1 + Ve1`` (q1's base Thevenin, RB included in r_base1),
     ``Vc1 = Vbe2 + RB*Ib2 + Ve2`` with ``Vc1 = vcc - rc1*(Ic1 + Ib2)``, ``Ve2 = v_e2_0 + r_e2*Ie2``;
     the emitter node (re to ground, rf to the collector2 node) and the collector2 node
     (``g_c2*Vc2 = j_c2 + Ve1/rf - Ic2``: rc2, rf and in the static solve the load, as one
     conductance and current) are linear and are eliminated: ``Ve1 = v0 + k_e*Ie1 - k_c*Ic2``.
-    Gummel-Poon currents as :func:`physics.solve_junction`, Vcb to the internal base.
 
-    The unknowns are the two Vbe. At each, the collector currents are solved exactly with their
-    Early factors (``Ic = If*(1 + Vcb/VAF)`` and each Vcb linear in both Ic: a 2x2 system), so
-    the residuals and their Jacobian (the same 2x2 system, differentiated) are exact and Newton
-    converges quadratically. A step may raise a Vbe by at most physics.MAX_STEP and lower it by
-    at most STEP_DOWN; an element whose step falls below STEP_TOL is done and not moved again,
-    so its values do not depend on the other elements of its call, and the loop ends when every
-    element is done (at most ``iterations`` steps). Returns per transistor the keys small_signal
-    needs (``q1``, ``q2``: vbe, vcb, i_forward, ic, ib) and the node voltages v_e1, v_c1, v_e2,
-    v_c2, with ``settled`` (both residuals under physics.NEWTON_TOL) and ``converged`` (settled,
-    both junctions conducting)."""
+    The unknowns are Vbe1, Vbe2 and q1's Vbc (all at the internal base). The Gummel-Poon
+    currents (BR = 1, VAR infinite, as :mod:`optimizer.physics`): ``If = IS*(exp(Vbe/NF VT) - 1)``,
+    ``Ir = IS*(exp(Vbc/NF VT) - 1)``, ``Ic = (If - Ir)*(1 - Vbc/VAF) - Ir``, ``Ib = If/BF + Ir``. q1's
+    reverse current carries it into saturation, where a large swing takes its collector down to
+    its emitter (which follows the fed-back output); q2's Vbc is linear in the unknowns, so its
+    Early factor is solved exactly at each step and its saturation is left to the caller. The
+    Jacobian is exact and Newton converges quadratically. A step may raise a Vbe by at most
+    physics.MAX_STEP and lower it by at most STEP_DOWN; q1's Vbc may rise at once to the
+    junction's critical voltage (NF VT ln(NF VT/(sqrt 2 IS)), where its current turns steep) and
+    by physics.MAX_STEP above it. An element whose steps all fall below STEP_TOL is done and not
+    moved again, so its values do not depend on the other elements of its call, and the loop ends
+    when every element is done (at most ``iterations`` steps). ``v_start``: Vbe1, Vbe2, Vbc1 to
+    start from. Returns per transistor the keys small_signal needs (``q1``, ``q2``: vbe, vcb,
+    i_forward, ic, ib) and the node voltages v_e1, v_c1, v_e2, v_c2, with ``settled`` (the three
+    residuals under physics.NEWTON_TOL) and ``converged`` (settled, both base-emitter junctions
+    conducting)."""
     g_e = 1.0 / re + 1.0 / rf - 1.0 / (rf * rf * g_c2)
     k_e = 1.0 / g_e
     k_c = k_e / (rf * g_c2)
@@ -91,62 +96,70 @@ def solve_pair(
     if v_start is None:
         x1 = np.full(shape, nvt * (math.log(1e-3 / i_s) if np.ndim(i_s) == 0 else np.log(1e-3 / i_s)))
         x2 = x1.copy()
+        x3 = np.full(shape, -1.0)  # q1's base-collector junction off
     else:
-        x1 = np.broadcast_to(v_start[0], shape).astype(float)
-        x2 = np.broadcast_to(v_start[1], shape).astype(float)
+        x1, x2, x3 = (np.broadcast_to(v, shape).astype(float) for v in v_start)
     inv_b = 1.0 / beta
-    # Vcb1 = vcb1_0 - m11*Ic1 + m12*Ic2 and Vcb2 = vcb2_0 + m21*Ic1 - m22*Ic2 (the nodes eliminated),
-    # with vcb1_0, vcb2_0 the terms of the base currents and the Vbe (:func:`state`)
-    m11, m12 = rc1 + k_e, k_c
+    # q2's Vcb = c2 + m21*Ie1 - r_e2*Ib2 - Vbe2 - m22*Ic2 (the nodes eliminated)
     m21 = k_e / (rf * g_c2)
-    m22 = m12 / (rf * g_c2) + 1.0 / g_c2 + r_e2
-    c1, c2 = vcc - v0, (j_c2 + v0 / rf) / g_c2 - v_e2_0
+    m22 = (k_c / rf + 1.0) / g_c2 + r_e2
+    c2 = (j_c2 + v0 / rf) / g_c2 - v_e2_0
+    v_critical = nvt * np.log(nvt / (math.sqrt(2.0) * i_s))
 
-    def state(x1: np.ndarray, x2: np.ndarray) -> tuple:
-        """At Vbe x1, x2: the forward and base currents, the collector currents and node
-        voltages, and the 2x2 system K (Ic1, Ic2) = rhs of the Early factors (A, V)."""
-        f1, f2 = i_s * np.expm1(x1 / nvt), i_s * np.expm1(x2 / nvt)
-        ib1, ib2 = f1 * inv_b, f2 * inv_b
-        e1, e2 = f1 * inv_vaf, f2 * inv_vaf  # dIc/dVcb
-        vcb1_0 = c1 - rc1 * ib2 - k_e * ib1 - x1
-        vcb2_0 = c2 + m21 * ib1 - r_e2 * ib2 - x2
-        k = (1.0 + e1 * m11, -e1 * m12, -e2 * m21, 1.0 + e2 * m22)
-        det = k[0] * k[3] - k[1] * k[2]
-        ic1, ic2 = _solve2(k, det, f1 + e1 * vcb1_0, f2 + e2 * vcb2_0)
+    def state(x1: np.ndarray, x2: np.ndarray, x3: np.ndarray) -> tuple:
+        """At Vbe1 x1, Vbe2 x2 and Vbc1 x3: the junction currents, q1's Early factor, q2's Vcb
+        terms, the collector and base currents, the node voltages and the three residuals (A, V)."""
+        f1, f2, fr = i_s * np.expm1(x1 / nvt), i_s * np.expm1(x2 / nvt), i_s * np.expm1(x3 / nvt)
+        early1 = 1.0 - x3 * inv_vaf
+        ic1 = (f1 - fr) * early1 - fr
+        ib1, ib2 = f1 * inv_b + fr, f2 * inv_b
+        vcb2_0 = c2 + m21 * (ic1 + ib1) - r_e2 * ib2 - x2
+        den2 = 1.0 + f2 * m22 * inv_vaf
+        ic2 = f2 * (1.0 + vcb2_0 * inv_vaf) / den2
         v_e1 = v0 + k_e * (ic1 + ib1) - k_c * ic2
         v_c1 = vcc - rc1 * (ic1 + ib2)
         v_e2 = v_e2_0 + r_e2 * (ic2 + ib2)
         v_c2 = (j_c2 + v_e1 / rf - ic2) / g_c2
-        return f1, f2, ib1, ib2, e1, e2, ic1, ic2, v_e1, v_c1, v_e2, v_c2, k, det
+        residuals = (a1 - x1 - r_base1 * ib1 - v_e1, v_c1 - x2 - rb * ib2 - v_e2, x3 - x1 - v_e1 + v_c1)
+        return f1, f2, fr, early1, ic1, ib1, ib2, vcb2_0, den2, ic2, v_e1, v_c1, v_e2, v_c2, residuals
 
     moving = np.ones(shape, dtype=bool)
     for _ in range(iterations):
-        f1, f2, ib1, ib2, e1, e2, ic1, ic2, v_e1, v_c1, v_e2, v_c2, k, det = state(x1, x2)
-        r1 = a1 - x1 - r_base1 * ib1 - v_e1
-        r2 = v_c1 - x2 - rb * ib2 - v_e2
-        # the Jacobian: dIf/dVbe, dIb/dVbe, the Early factors, then dIc/dVbe from K
-        g1, g2 = (f1 + i_s) / nvt, (f2 + i_s) / nvt
-        b1, b2 = g1 * inv_b, g2 * inv_b
-        a11 = g1 * (1.0 + (v_c1 - v_e1 - x1) * inv_vaf)
-        a22 = g2 * (1.0 + (v_c2 - v_e2 - x2) * inv_vaf)
-        dic1_dx1, dic2_dx1 = _solve2(k, det, a11 - e1 * (k_e * b1 + 1.0), e2 * m21 * b1)
-        dic1_dx2, dic2_dx2 = _solve2(k, det, -e1 * rc1 * b2, a22 - e2 * (r_e2 * b2 + 1.0))
-        j11 = -1.0 - r_base1 * b1 - k_e * (dic1_dx1 + b1) + k_c * dic2_dx1
-        j12 = -k_e * dic1_dx2 + k_c * dic2_dx2
-        j21 = -rc1 * dic1_dx1 - r_e2 * dic2_dx1
-        j22 = -rc1 * (dic1_dx2 + b2) - 1.0 - rb * b2 - r_e2 * (dic2_dx2 + b2)
-        d1, d2 = _solve2((j11, j12, j21, j22), j11 * j22 - j12 * j21, -r1, -r2)
-        d1 = np.where(moving, np.minimum(np.maximum(d1, -STEP_DOWN), physics.MAX_STEP), 0.0)
-        d2 = np.where(moving, np.minimum(np.maximum(d2, -STEP_DOWN), physics.MAX_STEP), 0.0)
-        x1 = x1 + d1
-        x2 = x2 + d2
-        moving &= ~((np.abs(d1) < STEP_TOL) & (np.abs(d2) < STEP_TOL)) & np.isfinite(d1) & np.isfinite(d2)
+        f1, f2, fr, early1, ic1, ib1, ib2, vcb2_0, den2, ic2, v_e1, v_c1, v_e2, v_c2, residuals = state(x1, x2, x3)
+        g1, g2, gr = (f1 + i_s) / nvt, (f2 + i_s) / nvt, (fr + i_s) / nvt
+        # The exact Jacobian. Vbe1 and Vbc1 move q2's current only through Ie1 (its Vcb's m21*Ie1
+        # term): per unit of Ie1, Ve1 moves k_ie and Ve2 l_ie
+        q2_early = f2 * inv_vaf / den2  # dIc2/dVcb2
+        k_ie = k_e - k_c * m21 * q2_early
+        l_ie = r_e2 * m21 * q2_early
+        dic1_1, dic1_3 = g1 * early1, -gr * (early1 + 1.0) - (f1 - fr) * inv_vaf
+        die1_1, die1_3 = dic1_1 + g1 * inv_b, dic1_3 + gr
+        dib2_2 = g2 * inv_b
+        dic2_2 = g2 * (1.0 + (vcb2_0 - ic2 * m22) * inv_vaf) / den2 - q2_early * (r_e2 * dib2_2 + 1.0)
+        dve1_2, dvc1_2 = -k_c * dic2_2, -rc1 * dib2_2
+        jacobian = [
+            (
+                -1.0 - r_base1 * g1 * inv_b - die1_1 * k_ie,
+                -rc1 * dic1_1 - die1_1 * l_ie,
+                -1.0 - die1_1 * k_ie - rc1 * dic1_1,
+            ),
+            (-dve1_2, dvc1_2 - 1.0 - rb * dib2_2 - r_e2 * (dic2_2 + dib2_2), dvc1_2 - dve1_2),
+            (-r_base1 * gr - die1_3 * k_ie, -rc1 * dic1_3 - die1_3 * l_ie, 1.0 - die1_3 * k_ie - rc1 * dic1_3),
+        ]
+        steps = _solve3(jacobian, [-r for r in residuals])
+        d1, d2, d3 = (
+            np.where(moving, np.minimum(np.maximum(d, -STEP_DOWN), up), 0.0)
+            for d, up in zip(steps, (physics.MAX_STEP, physics.MAX_STEP, np.maximum(physics.MAX_STEP, v_critical - x3)))
+        )
+        x1, x2, x3 = x1 + d1, x2 + d2, x3 + d3
+        moving &= ~((np.abs(d1) < STEP_TOL) & (np.abs(d2) < STEP_TOL) & (np.abs(d3) < STEP_TOL))
+        moving &= np.isfinite(d1) & np.isfinite(d2) & np.isfinite(d3)
         if not moving.any():
             break
-    f1, f2, ib1, ib2, _, _, ic1, ic2, v_e1, v_c1, v_e2, v_c2, _, _ = state(x1, x2)
-    r1 = a1 - x1 - r_base1 * ib1 - v_e1
-    r2 = v_c1 - x2 - rb * ib2 - v_e2
-    settled = (np.abs(r1) < physics.NEWTON_TOL) & (np.abs(r2) < physics.NEWTON_TOL) & np.isfinite(f1) & np.isfinite(f2)
+    f1, f2, _, _, ic1, ib1, ib2, _, _, ic2, v_e1, v_c1, v_e2, v_c2, residuals = state(x1, x2, x3)
+    settled = np.isfinite(f1) & np.isfinite(f2)
+    for r in residuals:
+        settled &= np.abs(r) < physics.NEWTON_TOL
     return {
         "q1": {"vbe": x1, "vcb": v_c1 - v_e1 - x1, "i_forward": f1, "ic": ic1, "ib": ib1},
         "q2": {"vbe": x2, "vcb": v_c2 - v_e2 - x2, "i_forward": f2, "ic": ic2, "ib": ib2},
@@ -159,9 +172,17 @@ def solve_pair(
     }
 
 
-def _solve2(m: tuple, det: np.ndarray, y1: np.ndarray, y2: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """(x1, x2) of the 2x2 system ((m11, m12), (m21, m22)) x = y, by Cramer's rule (det its determinant)."""
-    return (y1 * m[3] - m[1] * y2) / det, (m[0] * y2 - m[2] * y1) / det
+def _solve3(columns: list[tuple], y: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """x of the 3x3 system M x = y, M given by its ``columns`` (each a tuple of three rows), by Cramer's rule."""
+    (a, d, g), (b, e, h), (c, f, k) = columns
+    co0, co1, co2 = e * k - f * h, f * g - d * k, d * h - e * g
+    det = a * co0 + b * co1 + c * co2
+    y0, y1, y2 = y
+    return (
+        (y0 * co0 + b * (f * y2 - y1 * k) + c * (y1 * h - e * y2)) / det,
+        (a * (y1 * k - f * y2) + y0 * co1 + c * (d * y2 - y1 * g)) / det,
+        (a * (e * y2 - y1 * h) + b * (y1 * g - d * y2) + y0 * co2) / det,
+    )
 
 
 def loop_phase_margin(
@@ -518,8 +539,10 @@ class FeedbackPair(StageModel):
     ) -> Callable[[np.ndarray], np.ndarray]:
         """Load voltage (V) against source voltage (V): the pair's two loops solved together at
         every sample; c_in, c_emitter2 and c_out hold their DC (emitter2 held, the load returns
-        to collector2's quiescent voltage); collector2 flattens at emitter2 + vce_sat. NaN where
-        the pair's solve did not settle within its steps or q1's collector is below its emitter."""
+        to collector2's quiescent voltage); collector2 flattens at emitter2 + vce_sat. q1 saturates
+        through its base-collector junction (:func:`solve_pair`): its emitter follows the fed-back
+        output, so a large swing takes its collector down to its emitter, the loop breaks and the
+        output folds back. NaN where the pair's solve did not settle within its steps."""
         op = b.op
         rth = physics.parallel(p["r_top"], p["r_bottom"])
         vth = c.supply * p["r_bottom"] / (p["r_top"] + p["r_bottom"])
@@ -542,20 +565,12 @@ class FeedbackPair(StageModel):
                 j_c2,
                 op["v_emitter2"],
                 0.0,
-                v_start=(op["vbe"], op["vbe2"]),
+                v_start=(op["vbe"], op["vbe2"], op["v_emitter"] + op["vbe"] - op["v_collector"]),
                 iterations=2 * physics.THD_ITERATIONS,
                 **kw,
             )
             v_c2 = np.maximum(q["v_c2"], op["v_emitter2"] + device.vce_sat)
-            # No output (NaN: the swing counts it as deviating) where the solve did not settle, or
-            # where q1's collector falls below its emitter. Its emitter follows the fed-back output
-            # while its collector, q2's base, stays a Vbe above the held emitter2, so a large swing
-            # drives q1 into saturation; below Vce = 0 its base-collector junction is forward biased
-            # by a full Vbe and takes the current the loop needs, which the forward-active
-            # junctions do not model. (Between vce_sat and 0 V the loop weakens gradually, and
-            # that is not modelled either: there the swing still reads high, see the note in
-            # DEVELOPERS.md.)
-            held = q["settled"] & (q["v_c1"] >= q["v_e1"])
-            return np.where(held, v_c2 - op["v_collector2"], np.nan)
+            # no output (NaN: the swing counts it as deviating) where the solve did not settle
+            return np.where(q["settled"], v_c2 - op["v_collector2"], np.nan)
 
         return out
