@@ -43,6 +43,7 @@ SWING_TOLERANCE = 0.1  # usable swing: both peaks within 10 % of the linear gain
 SWING_GRID = (0.8, 1.0, 1.6)  # multiples of the clip-level drive scanned for the first deviation
 SWING_STEPS = 3  # Illinois false-position steps on the drive amplitude after the scan
 SWING_MORE_STEPS = 6  # further steps, only for candidates whose swing estimate still moves (see usable_swing)
+WHOLE_SWING_BATCH = 64  # candidates up to which the swing's further steps solve the whole batch (see usable_swing)
 SWING_RTOL = 5e-3  # a swing estimate that the last step moved by more than this share has not converged
 SWING_DOUBLINGS = 3  # further scan points, each twice the last, for a stage that has not deviated by SWING_GRID's end
 MAX_STEP = 0.1  # V, largest Newton step in Vbe (a guard; steps from above are about NF*VT)
@@ -948,9 +949,11 @@ def usable_swing(
     peak-to-peak is far from linear across the bracket) take up to SWING_MORE_STEPS more, each
     until its estimate moves by no more than that (then it is not moved again, so it does not
     depend on the others of its call), through
-    ``rows_output(rows)``, the same transfer for the candidates at ``rows`` alone (without it,
-    none do); ``refine`` (bool per candidate, e.g. the active ones: a transfer about a
-    saturated or cut-off stage's bias means nothing) limits them further.
+    ``rows_output(rows)``, the same transfer for the candidates at ``rows`` alone, when the batch
+    has more than WHOLE_SWING_BATCH (a smaller one steps whole, the others held: there a
+    subset's transfer costs more to set up than the rows it saves); ``refine`` (bool per
+    candidate, e.g. the active ones: a transfer about a saturated or cut-off stage's bias means
+    nothing) limits the candidates that take them.
     """
     gain = np.asarray(gain, dtype=float)
     a_clip = np.asarray(clip_peak, dtype=float) / ((1.0 - tolerance) * np.abs(gain))
@@ -988,15 +991,20 @@ def usable_swing(
     _swing_steps(measure, state, 1)
     estimate = _swing_estimate(state)
     moving = found & ~(np.abs(estimate - before) <= SWING_RTOL * np.abs(estimate))
-    moving = np.flatnonzero(moving if refine is None else moving & refine)
-    if rows_output is not None and moving.size:
-        part = [v[moving] for v in state]
-        measure = _swing_measure(rows_output(moving), gain[moving], tolerance)
-        before = estimate[moving]
-        done = np.zeros(moving.size, dtype=bool)
+    if refine is not None:
+        moving &= refine
+    if moving.any():
+        if rows_output is None or n <= WHOLE_SWING_BATCH:  # the whole batch steps, the others held
+            at: np.ndarray | slice = slice(None)
+            part, part_measure = state, measure
+        else:  # the moving rows alone
+            at = np.flatnonzero(moving)
+            part = [v[at] for v in state]
+            part_measure = _swing_measure(rows_output(at), gain[at], tolerance)
+        before, done = estimate[at], ~moving[at]
         for _ in range(SWING_MORE_STEPS):  # each until its estimate moves by no more than SWING_RTOL
             kept = [v[done] for v in part]
-            _swing_steps(measure, part, 1)
+            _swing_steps(part_measure, part, 1)
             for v, old in zip(part, kept):  # a converged estimate is not moved again (nor by its batch)
                 v[done] = old
             now = _swing_estimate(part)
@@ -1004,7 +1012,7 @@ def usable_swing(
             before = now
             if done.all():
                 break
-        estimate[moving] = before
+        estimate[at] = before
     swing = np.where(found, estimate, state[5])
     return np.where(np.isfinite(swing) & (np.abs(gain) > 0), swing, 0.0)
 
