@@ -94,6 +94,24 @@ def test_stacked_devices_give_each_candidate_its_own_devices_figures(design) -> 
     assert not np.allclose(stacked.operating_point["ic"][which == 0][0], stacked.operating_point["ic"][which == 1][0])
 
 
+def test_a_large_stacked_pair_batch() -> None:
+    """The feedback pair's solves go on with their unsettled elements alone once those are few
+    (feedback_pair.COMPACT_SHARE): with two devices stacked, each element keeps its own device's
+    figures there too (400 designs spread x0.5..x2 around a hand design, devices alternating)."""
+    design = pair_designs()[0]
+    topology = get_topology(design.topology)
+    devices = [design.device, _other(design.device)]
+    rng = np.random.default_rng(5)
+    which = np.arange(400) % 2
+    parts = {r: float(v) * np.exp(rng.uniform(-0.7, 0.7, which.size)) for r, v in design.parts.items()}
+    stacked = topology.evaluate(parts, stack_devices(devices, which), design.conditions, thd_solve=True)
+    for k, device in enumerate(devices):
+        rows = np.flatnonzero(which == k)
+        one = topology.evaluate({r: v[rows] for r, v in parts.items()}, device, design.conditions, thd_solve=True)
+        for key in ("gain", "swing_vpp", "thd"):
+            _close(stacked.metrics[key][rows], one.metrics[key], f"{key} with {device.id}")
+
+
 def test_stacked_devices_across_chunks(monkeypatch) -> None:
     """A stacked device is cut with the candidates when a call runs in chunks."""
     design = check_designs()[0]

@@ -14,7 +14,7 @@ Same device for q1 and q2, drawn NPN on a positive rail.
 from __future__ import annotations
 
 import math
-from typing import Callable
+from typing import Any, Callable
 
 import numpy as np
 
@@ -31,6 +31,8 @@ from optimizer.synthesis import (
 from optimizer.topologies.base import Bias, Conditions, Parts, StageModel
 from optimizer.topologies.divider_ce import add_divider_stage, add_load, divider_ratings
 
+COMPACT_MIN, COMPACT_SHARE = 256, 0.25  # a solve of at least this many elements goes on with those still
+# moving alone once they are fewer than this share
 PAIR_ITERATIONS = 40  # most damped 2-D Newton steps of the pair's bias (both junctions at once, from 1 mA)
 STEP_TOL = 1e-12  # V: a pair whose Newton steps in both Vbe are smaller has converged and is not moved again
 STEP_DOWN = 2.0  # V, largest fall of a Vbe in one Newton step (a rise is held to physics.MAX_STEP: from
@@ -83,8 +85,9 @@ def solve_pair(
     junction's critical voltage (NF VT ln(NF VT/(sqrt 2 IS)), where its current turns steep) and
     by physics.MAX_STEP above it. An element whose steps all fall below STEP_TOL is done and not
     moved again, so its values do not depend on the other elements of its call, and the loop ends
-    when every element is done (at most ``iterations`` steps). ``v_start``: Vbe1, Vbe2, Vbc1 to
-    start from. Returns per transistor the keys small_signal needs (``q1``, ``q2``: vbe, vcb,
+    when every element is done (at most ``iterations`` steps); a large solve goes on with the
+    elements still moving alone once they are few (COMPACT_SHARE). ``v_start``: Vbe1, Vbe2, Vbc1 to
+    start from (``unknowns`` in the result: where this solve ended). Returns per transistor the keys small_signal needs (``q1``, ``q2``: vbe, vcb,
     i_forward, ic, ib) and the node voltages v_e1, v_c1, v_e2, v_c2, with ``settled`` (the three
     residuals under physics.NEWTON_TOL) and ``converged`` (settled, both base-emitter junctions
     conducting)."""
@@ -124,7 +127,7 @@ def solve_pair(
         return f1, f2, fr, early1, ic1, ib1, ib2, vcb2_0, den2, ic2, v_e1, v_c1, v_e2, v_c2, residuals
 
     moving = np.ones(shape, dtype=bool)
-    for _ in range(iterations):
+    for step in range(iterations):
         f1, f2, fr, early1, ic1, ib1, ib2, vcb2_0, den2, ic2, v_e1, v_c1, v_e2, v_c2, residuals = state(x1, x2, x3)
         g1, g2, gr = (f1 + i_s) / nvt, (f2 + i_s) / nvt, (fr + i_s) / nvt
         # The exact Jacobian. Vbe1 and Vbc1 move q2's current only through Ie1 (its Vcb's m21*Ie1
@@ -154,7 +157,24 @@ def solve_pair(
         x1, x2, x3 = x1 + d1, x2 + d2, x3 + d3
         moving &= ~((np.abs(d1) < STEP_TOL) & (np.abs(d2) < STEP_TOL) & (np.abs(d3) < STEP_TOL))
         moving &= np.isfinite(d1) & np.isfinite(d2) & np.isfinite(d3)
-        if not moving.any():
+        left = np.count_nonzero(moving)
+        if not left:
+            break
+        if moving.size >= COMPACT_MIN and left < COMPACT_SHARE * moving.size and step + 1 < iterations:
+            # the elements still moving go on alone (their steps are their own: the same values)
+            at = np.flatnonzero(moving)
+            rest = solve_pair(
+                *(_elements(v, shape, at) for v in (a1, r_base1, vcc, rc1, re, rf, g_c2, j_c2, v_e2_0, r_e2)),
+                rb=_elements(rb, shape, at),  # the device's figures too: per element where devices are stacked
+                i_s=_elements(i_s, shape, at),
+                beta=_elements(beta, shape, at),
+                nvt=_elements(nvt, shape, at),
+                inv_vaf=_elements(inv_vaf, shape, at),
+                v_start=(x1.reshape(-1)[at], x2.reshape(-1)[at], x3.reshape(-1)[at]),
+                iterations=iterations - step - 1,
+            )
+            for x, y in zip((x1, x2, x3), rest["unknowns"]):
+                x.reshape(-1)[at] = y
             break
     f1, f2, _, _, ic1, ib1, ib2, _, _, ic2, v_e1, v_c1, v_e2, v_c2, residuals = state(x1, x2, x3)
     settled = np.isfinite(f1) & np.isfinite(f2)
@@ -169,7 +189,13 @@ def solve_pair(
         "v_c2": v_c2,
         "settled": settled,
         "converged": settled & (f1 > 0) & (f2 > 0),
+        "unknowns": (x1, x2, x3),
     }
+
+
+def _elements(v: Any, shape: tuple[int, ...], at: np.ndarray) -> Any:
+    """The elements at flat indices ``at`` of ``v`` broadcast to ``shape`` (a scalar as it is)."""
+    return np.broadcast_to(v, shape).reshape(-1)[at] if np.ndim(v) else v
 
 
 def _solve3(columns: list[tuple], y: list[np.ndarray]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
