@@ -86,11 +86,11 @@ def solve_pair(
     by physics.MAX_STEP above it. An element whose steps all fall below STEP_TOL is done and not
     moved again, so its values do not depend on the other elements of its call, and the loop ends
     when every element is done (at most ``iterations`` steps); a large solve goes on with the
-    elements still moving alone once they are few (COMPACT_SHARE). ``v_start``: Vbe1, Vbe2, Vbc1 to
-    start from (``unknowns`` in the result: where this solve ended). Returns per transistor the keys small_signal needs (``q1``, ``q2``: vbe, vcb,
-    i_forward, ic, ib) and the node voltages v_e1, v_c1, v_e2, v_c2, with ``settled`` (the three
-    residuals under physics.NEWTON_TOL) and ``converged`` (settled, both base-emitter junctions
-    conducting)."""
+    elements still moving alone once they are few (COMPACT_SHARE). ``v_start``: Vbe1, Vbe2, Vbc1
+    to start from. Returns per transistor the keys small_signal needs (``q1``, ``q2``: vbe, vcb,
+    i_forward, ic, ib), the node voltages v_e1, v_c1, v_e2, v_c2, ``settled`` (the three
+    residuals under physics.NEWTON_TOL), ``converged`` (settled, both base-emitter junctions
+    conducting) and ``unknowns`` (Vbe1, Vbe2, Vbc1 where the solve ended)."""
     g_e = 1.0 / re + 1.0 / rf - 1.0 / (rf * rf * g_c2)
     k_e = 1.0 / g_e
     k_c = k_e / (rf * g_c2)
