@@ -136,14 +136,18 @@ def limit_violations(
     noise), for metrics from the fast core path. ``vce_headroom`` (V, the smallest Vce less
     the saturation voltage and active margin, negative when saturated) grades the violation
     of a saturated stage by how far it is from active, so a search is led out of saturation;
-    without it, or for any other reason a stage is not active, the violation is 1.
+    without it, or for any other reason a stage is not active, the violation is 1. A stage
+    that is not active has no gain: its gain limit is judged at a gain of zero (the small-signal
+    figure about a saturated or cut-off bias means nothing), so it ranks below every active
+    design, however far that one misses the gain, and a search's nearest misses are stages that
+    amplify.
     """
-    gain = np.asarray(metrics["gain"])
+    inactive = ~np.asarray(active, dtype=bool)
+    gain = np.where(inactive, 0.0, np.asarray(metrics["gain"]))
     out = {"gain": np.maximum(0.0, np.abs(gain_error_db(spec, gain)) - spec.gain.tolerance_db) / spec.gain.tolerance_db}
     if spec.gain.inverting is not None:
         wrong_sign = (gain > 0) if spec.gain.inverting else (gain < 0)
         out["gain_polarity"] = wrong_sign.astype(float)
-    inactive = ~np.asarray(active, dtype=bool)
     if vce_headroom is None:
         out["active"] = inactive.astype(float)
     else:

@@ -35,9 +35,13 @@ def _metrics(gain: float, swing: float, current: float) -> dict[str, np.ndarray]
     }
 
 
-def _violations(metrics, power=0.01, rating=0.25):
+def _violations(metrics, power=0.01, rating=0.25, active=True):
     return limit_violations(
-        SPEC, metrics, {"p_r_collector": np.array([power])}, {"p_r_collector": rating, "q_power": 0.5}, np.array([True])
+        SPEC,
+        metrics,
+        {"p_r_collector": np.array([power])},
+        {"p_r_collector": rating, "q_power": 0.5},
+        np.array([active]),
     )
 
 
@@ -51,6 +55,17 @@ def test_gain_outside_its_window_is_normalised_to_the_tolerance() -> None:
     v = _violations(_metrics(-13.3, 6.0, 1e-3))
     assert np.isclose(v["gain"][0], 20 * np.log10(1.33) - 1.0, rtol=1e-6)
     assert binding_limit(v)[0] == "gain"
+
+
+def test_a_stage_that_is_not_active_misses_by_more_than_any_that_amplifies() -> None:
+    # a saturated stage whose small-signal gain about its bias happens to sit in the window has no
+    # gain at all: it ranks below an active stage that misses the gain by 40 dB
+    dead = _violations(_metrics(-10.0, 6.0, 1e-3), active=False)
+    far = _violations(_metrics(-0.1, 6.0, 1e-3))
+    assert dead["gain"][0] > far["gain"][0] > 0
+    assert total_violation(dead)[0] > total_violation(far)[0]
+    # the gain judged at zero: 20*log10(1e-12/10) dB from the target, less the 1 dB window
+    assert np.isclose(dead["gain"][0], 20 * np.log10(10 / 1e-12) - 1.0)
 
 
 def test_wrong_polarity_swing_current_and_rating_are_each_violations() -> None:

@@ -125,10 +125,10 @@ def test_the_front_is_the_brute_force_front_of_every_feasible_trial() -> None:
     from optimizer.search.ranking import SHORTLIST_SAMPLES, shortlist_candidates
     from optimizer.search.space import SearchSpace
 
-    result = search(parse_spec(SMALL), top=2)
+    result = search(parse_spec(SMALL), top=2, trials=512)  # (few of the E6 designs pass the yield screen)
     records = [trial_record(t) for t in result.study.get_trials(states=(TrialState.COMPLETE,))]
     feasible = [r for r in records if r and r["feasible"]]
-    assert feasible, "the small spec has feasible designs"
+    assert len(feasible) > 1, "the small spec has feasible designs"
 
     def dominated(p: tuple, q: tuple) -> bool:  # q dominates p
         return q[0] <= p[0] and q[1] >= p[1] and (q[0] < p[0] or q[1] > p[1])
@@ -259,7 +259,7 @@ def test_oracle_answers_an_impossible_spec_with_the_nearest_miss() -> None:
     spec = parse_spec({**SMALL, "supply": "3.3 V", "limits": {"swing_min": "3 V"}})
     oracle = exhaustive(spec)
     assert not oracle.best["feasible"] and len(oracle.front) == 0 and oracle.best["score"] < 0
-    found = search(spec, trials=1024, top=1).candidates[0]["score"]
+    found = search(spec, trials=2048, top=1).candidates[0]["score"]
     assert found <= oracle.best["score"] + 1e-12  # nothing beats the oracle's nearest miss
     assert found >= oracle.best["score"] - 0.05  # and the search comes near it
 
