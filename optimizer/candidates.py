@@ -265,14 +265,26 @@ def _entry(value: object, j: int) -> float:
     return float(np.asarray(value).reshape(-1)[j] if np.ndim(value) else value)  # type: ignore[arg-type]
 
 
+NOT_ACTIVE_CAUTION = (
+    "not active at its bias (a transistor saturated or cut off): the operating point, currents, dissipation and "
+    "part stresses shown are the active-region model carried past where it holds, not what the circuit does; "
+    "move the bias before reading them"
+)
+
+
 def _cautions(spec: Spec, near: dict[str, float], metrics: dict[str, float | None], op: dict[str, float]) -> list[str]:
     """Cautions of one design: the ratings it runs near (``near``: fraction of each rating,
-    scoring.near_ratings), the limits it meets by less than NEAR_LIMIT, a direct-coupled input's
+    scoring.near_ratings; a design not active at its bias gets NOT_ACTIVE_CAUTION instead), the limits it meets by less than NEAR_LIMIT, a direct-coupled input's
     DC at the source (``op``: its operating point), and the usual ones."""
     notes = []
-    for key, fraction in near.items():
-        if fraction > scoring.NEAR_RATING:
-            notes.append(f"{key} runs at {fraction:.0%} of its rating; check the part before building")
+    if op.get("active", 1.0) == 0.0:  # the ratings' stresses come from that bias too
+        notes.append(NOT_ACTIVE_CAUTION)
+    else:
+        notes += [
+            f"{key} runs at {fraction:.0%} of its rating; check the part before building"
+            for key, fraction in near.items()
+            if fraction > scoring.NEAR_RATING
+        ]
     for limit_name, metric, sign in LIMIT_METRICS:
         limit = getattr(spec.limits, limit_name)
         value = metrics[metric]

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import shutil
 from pathlib import Path
 
 import pytest
@@ -92,6 +93,28 @@ def test_a_metric_close_to_its_limit_gets_a_caution() -> None:
     }
     near = assess(parse_spec(data), catalog, topology, parts, samples=50)
     assert any("swing_vpp is within" in note for note in near["cautions"])
+
+
+@pytest.mark.skipif(shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice")
+def test_a_saturated_design_gets_no_rating_cautions_from_its_extrapolated_bias() -> None:
+    """A divider too stiff for its collector resistor: ngspice (Debian) finds q1 saturated
+    (Vce under 0.2 V, the collector current held by r_collector to a fifth of the model's
+    active-region figure), so the model's 'not active' is right and the ratings it would run
+    near (r_collector at several times its power rating) are figures of a bias the circuit
+    does not have: the design says so instead of cautioning about them."""
+    from optimizer.candidates import NOT_ACTIVE_CAUTION, assess, design_from_record
+    from spice_harness import spice_operating_point
+
+    spec = load_spec(SPECS[0])
+    parts = {"r_top": 27e3, "r_bottom": 18e3, "r_collector": 8.2e3, "r_emitter": 220.0}
+    record = assess(spec, load_catalog(spec.parts.catalog), "divider_ce", parts, samples=50)
+    _, values, _, conditions = design_from_record(record)
+    model = {**record["transistor"]["model"], "polarity": record["transistor"]["polarity"]}
+    simulated = spice_operating_point("divider_ce", {r: float(v[0]) for r, v in values.items()}, model, conditions)
+    assert simulated["v_collector"] - simulated["v_emitter"] < 0.2  # saturated in the simulator
+    assert record["operating_point"]["active"] == 0.0 and record["operating_point"]["ic"] > 3 * simulated["ic"]
+    assert NOT_ACTIVE_CAUTION in record["cautions"]
+    assert not any("of its rating" in note for note in record["cautions"])
 
 
 @pytest.mark.parametrize(
