@@ -8,7 +8,7 @@
 #   CLUSTER_WORKERS=4 CLUSTER_TRIALS=4000 CLUSTER_SPEC=specs/bench_stock_preamp.yaml scripts/try_cluster.sh
 #   CLUSTER_KEEP=1 scripts/try_cluster.sh   # leave Redis running afterwards (for more workers, the API server)
 #
-# Needs .venv (make demo) and redis-server (Debian: apt-get install redis-server).
+# Needs .venv (make demo) and redis-server (Debian's package; installed here when run as root with apt-get).
 # Workers on other machines: DEVELOPERS.md, "Shared deployments".
 set -euo pipefail
 cd "$(dirname "$0")/.."
@@ -22,7 +22,18 @@ RUN=$ROOT/runs/redis
 BIN=$ROOT/.venv/bin
 
 [ -x "$BIN/stagefit" ] || { echo "no .venv/bin/stagefit: run 'make demo' first" >&2; exit 1; }
-command -v redis-server >/dev/null || { echo "no redis-server: apt-get install redis-server" >&2; exit 1; }
+if ! command -v redis-server >/dev/null; then
+    # as root on a Debian machine (a fresh CI-like box), install it as .ci/run does; otherwise say how
+    if [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null; then
+        echo "redis-server not found: installing Debian's redis-server (apt-get)"
+        export DEBIAN_FRONTEND=noninteractive
+        apt-get update -qq && apt-get install -y -qq redis-server >/dev/null \
+            || { echo "apt-get could not install redis-server" >&2; exit 1; }
+    else
+        echo "no redis-server: install Debian's package (sudo apt-get install redis-server), then run this again" >&2
+        exit 1
+    fi
+fi
 
 mkdir -p "$RUN"
 pids=()
