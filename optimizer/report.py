@@ -19,6 +19,7 @@ from optimizer.candidates import assess, design_from_record
 from optimizer.catalog import Catalog
 from optimizer.metrics import LIMIT_METRICS, METRICS
 from optimizer.netlist import dc_node_voltages, designators, element_nodes
+from optimizer.physics import SWEEP
 from optimizer.spec import Spec, spec_digest
 from optimizer.tolerance import Tolerance, worst_case
 from optimizer.units import format_value
@@ -44,7 +45,9 @@ def _unit_of(key: str) -> str:
 
 
 def show(key: str, value: float | None, currency: str = "") -> str:
-    """``value`` of ``key`` written with its unit ("68 kΩ", "1.2 mA", "0.42 %", "-20.1 V/V")."""
+    """``value`` of ``key`` written with its unit ("68 kΩ", "1.2 mA", "0.42 %", "-20.1 V/V"); a -3 dB
+    corner found at an end of the response search's span (physics.SWEEP, where corners beyond it
+    are reported) as "above 100 MHz" or "below 100 mHz"."""
     if value is None or (isinstance(value, float) and math.isnan(value)):
         return "-"
     unit = _unit_of(key)
@@ -58,6 +61,8 @@ def show(key: str, value: float | None, currency: str = "") -> str:
         return f"{value:.2f} {currency}".rstrip()
     if not math.isfinite(value):
         return f"{value} {unit}"
+    if key in ("f_low", "f_high") and not SWEEP[0] < value < SWEEP[1]:  # a corner past the response search's span
+        return f"below {format_value(SWEEP[0], unit)}" if value <= SWEEP[0] else f"above {format_value(SWEEP[1], unit)}"
     if unit.endswith(" p-p") or unit.endswith(" rms"):
         base, suffix = unit.split(" ", 1)
         return f"{format_value(value, base)} {suffix}"

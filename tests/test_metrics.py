@@ -55,3 +55,13 @@ def test_openapi_describes_every_metric() -> None:
 def test_the_docs_page_is_the_table() -> None:
     page = (Path(__file__).resolve().parents[1] / "docs" / "metrics.md").read_text(encoding="utf-8")
     assert page.endswith(markdown_table())
+
+
+def test_a_corner_at_the_end_of_the_response_search_is_shown_as_beyond_it() -> None:
+    # corners past physics.SWEEP are reported at its ends: 1e8 Hz means "somewhere above", not 100 MHz
+    from optimizer.physics import SWEEP
+    from optimizer.report import show
+
+    assert show("f_high", SWEEP[1]) == "above 100 MHz"
+    assert show("f_low", SWEEP[0]) == "below 100 mHz"
+    assert show("f_high", 2e4) == "20 kHz" and show("f_low", 19.9) == "19.9 Hz"
