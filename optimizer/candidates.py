@@ -274,8 +274,9 @@ NOT_ACTIVE_CAUTION = (
 
 def _cautions(spec: Spec, near: dict[str, float], metrics: dict[str, float | None], op: dict[str, float]) -> list[str]:
     """Cautions of one design: the ratings it runs near (``near``: fraction of each rating,
-    scoring.near_ratings; a design not active at its bias gets NOT_ACTIVE_CAUTION instead), the limits it meets by less than NEAR_LIMIT, a direct-coupled input's
-    DC at the source (``op``: its operating point), and the usual ones."""
+    scoring.near_ratings; a design not active at its bias gets NOT_ACTIVE_CAUTION instead), the
+    limits it meets by less than NEAR_LIMIT, a direct-coupled input's DC at the source (``op``:
+    its operating point), and the usual ones."""
     notes = []
     if op.get("active", 1.0) == 0.0:  # the ratings' stresses come from that bias too
         notes.append(NOT_ACTIVE_CAUTION)

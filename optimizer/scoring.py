@@ -215,10 +215,14 @@ def total_violation(violations: dict[str, np.ndarray]) -> np.ndarray:
 
 
 def binding_limit(violations: dict[str, np.ndarray]) -> np.ndarray:
-    """Name of the most violated limit per candidate ('' where all are met)."""
+    """Name of the most violated limit per candidate ('' where all are met); 'active' wherever
+    the stage is not active, whatever else it misses (its gain, judged at zero, is then the
+    largest violation, but the bias is what to mend first)."""
     names = np.array(list(violations))
-    stacked = np.stack(list(violations.values()))
+    stacked = np.stack([np.asarray(v, dtype=float) for v in violations.values()])
     worst = names[np.argmax(stacked, axis=0)]
+    if "active" in violations:
+        worst = np.where(np.asarray(violations["active"]) > 0, "active", worst)
     return np.where(stacked.max(axis=0) > 0, worst, "")
 
 

@@ -66,6 +66,8 @@ def test_a_stage_that_is_not_active_misses_by_more_than_any_that_amplifies() -> 
     assert total_violation(dead)[0] > total_violation(far)[0]
     # the gain judged at zero: 20*log10(1e-12/10) dB from the target, less the 1 dB window
     assert np.isclose(dead["gain"][0], 20 * np.log10(10 / 1e-12) - 1.0)
+    # what binds is the bias, not the gain it leaves the stage without
+    assert binding_limit(dead)[0] == "active" and binding_limit(far)[0] == "gain"
 
 
 def test_wrong_polarity_swing_current_and_rating_are_each_violations() -> None:

@@ -13,7 +13,7 @@ from optimizer import robustness
 from optimizer.catalog import load_catalog
 from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
 from optimizer.record import candidate_record, part_label, record_conditions
-from optimizer.scoring import MIDBAND_DEVIATION_MAX, pareto_mask
+from optimizer.scoring import MIDBAND_DEVIATION_MAX, binding_limit, pareto_mask
 from optimizer.search.space import SearchSpace
 from optimizer.spec import Spec
 from optimizer.topologies import get_topology
@@ -307,7 +307,7 @@ def _shortlisted(record: dict, full: dict) -> dict:
     full.update(
         score=record["score"] * (1.0 if build_yield is None else build_yield) if full["feasible"] else -total,
         total_violation=total,
-        binding=max(violations, key=violations.get) if violations else "",
+        binding=str(binding_limit(violations)) if violations else "",
         nominal_score=record["score"],
         score_terms=terms,
         trial=record.get("trial"),
