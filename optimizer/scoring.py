@@ -136,18 +136,14 @@ def limit_violations(
     noise), for metrics from the fast core path. ``vce_headroom`` (V, the smallest Vce less
     the saturation voltage and active margin, negative when saturated) grades the violation
     of a saturated stage by how far it is from active, so a search is led out of saturation;
-    without it, or for any other reason a stage is not active, the violation is 1. A stage
-    that is not active has no gain: its gain limit is judged at a gain of zero (the small-signal
-    figure about a saturated or cut-off bias means nothing), so it ranks below every active
-    design, however far that one misses the gain, and a search's nearest misses are stages that
-    amplify.
+    without it, or for any other reason a stage is not active, the violation is 1.
     """
-    inactive = ~np.asarray(active, dtype=bool)
-    gain = np.where(inactive, 0.0, np.asarray(metrics["gain"]))
+    gain = np.asarray(metrics["gain"])
     out = {"gain": np.maximum(0.0, np.abs(gain_error_db(spec, gain)) - spec.gain.tolerance_db) / spec.gain.tolerance_db}
     if spec.gain.inverting is not None:
         wrong_sign = (gain > 0) if spec.gain.inverting else (gain < 0)
         out["gain_polarity"] = wrong_sign.astype(float)
+    inactive = ~np.asarray(active, dtype=bool)
     if vce_headroom is None:
         out["active"] = inactive.astype(float)
     else:
@@ -216,8 +212,8 @@ def total_violation(violations: dict[str, np.ndarray]) -> np.ndarray:
 
 def binding_limit(violations: dict[str, np.ndarray]) -> np.ndarray:
     """Name of the most violated limit per candidate ('' where all are met); 'active' wherever
-    the stage is not active, whatever else it misses (its gain, judged at zero, is then the
-    largest violation, but the bias is what to mend first)."""
+    the stage is not active, whatever else it misses (figures about a saturated or cut-off bias
+    mean nothing: the bias is what to mend first)."""
     names = np.array(list(violations))
     stacked = np.stack([np.asarray(v, dtype=float) for v in violations.values()])
     worst = names[np.argmax(stacked, axis=0)]

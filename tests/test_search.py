@@ -125,10 +125,10 @@ def test_the_front_is_the_brute_force_front_of_every_feasible_trial() -> None:
     from optimizer.search.ranking import SHORTLIST_SAMPLES, shortlist_candidates
     from optimizer.search.space import SearchSpace
 
-    result = search(parse_spec(SMALL), top=2, trials=512)  # (few of the E6 designs pass the yield screen)
+    result = search(parse_spec(SMALL), top=2)
     records = [trial_record(t) for t in result.study.get_trials(states=(TrialState.COMPLETE,))]
     feasible = [r for r in records if r and r["feasible"]]
-    assert len(feasible) > 1, "the small spec has feasible designs"
+    assert feasible, "the small spec has feasible designs"
 
     def dominated(p: tuple, q: tuple) -> bool:  # q dominates p
         return q[0] <= p[0] and q[1] >= p[1] and (q[0] < p[0] or q[1] > p[1])
@@ -202,8 +202,16 @@ def test_unknown_search_and_bad_rank_are_input_errors(tmp_path) -> None:
 
 def test_rank_records_collapses_duplicates() -> None:
     a = {"topology": "t", "device": "d", "parts": {"r": 1.0}, "feasible": True, "score": 0.5, "total_violation": 0}
+    a["violations"] = {}
     b = {**a, "parts": {"r": 2.0}, "score": 0.7}
-    c = {**a, "parts": {"r": 3.0}, "feasible": False, "score": -0.1, "total_violation": 0.1}
+    c = {
+        **a,
+        "parts": {"r": 3.0},
+        "feasible": False,
+        "score": -0.1,
+        "total_violation": 0.1,
+        "violations": {"gain": 0.1},
+    }
     assert [r["parts"]["r"] for r in rank_records([a, c, b, a])] == [2.0, 1.0, 3.0]
 
 
@@ -259,7 +267,7 @@ def test_oracle_answers_an_impossible_spec_with_the_nearest_miss() -> None:
     spec = parse_spec({**SMALL, "supply": "3.3 V", "limits": {"swing_min": "3 V"}})
     oracle = exhaustive(spec)
     assert not oracle.best["feasible"] and len(oracle.front) == 0 and oracle.best["score"] < 0
-    found = search(spec, trials=2048, top=1).candidates[0]["score"]
+    found = search(spec, trials=1024, top=1).candidates[0]["score"]
     assert found <= oracle.best["score"] + 1e-12  # nothing beats the oracle's nearest miss
     assert found >= oracle.best["score"] - 0.05  # and the search comes near it
 

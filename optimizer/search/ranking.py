@@ -38,10 +38,21 @@ def design_key(record: dict) -> tuple:
 
 
 def rank_records(records: list[dict]) -> list[dict]:
-    """Distinct designs ranked: feasible by score (high first), then infeasible by total
-    violation (small first); duplicates collapsed."""
+    """Distinct designs ranked as a designer reads them: feasible by score (high first), then the
+    infeasible ones that amplify (active at their bias) by total violation (small first), then
+    those that do not; duplicates collapsed. A stage saturated or cut off has no figures to
+    compare, so it follows every working near miss however small its own summed violation (its
+    gain is judged on the small-signal gain about a bias it does not hold). The search's own
+    order (:func:`rank_key`: by summed violation alone, which leads it out of saturation
+    gradually) leaves that distinction out."""
     unique = list({design_key(r): r for r in records}.values())
-    return sorted(unique, key=lambda r: (not r["feasible"], -r["score"] if r["feasible"] else r["total_violation"]))
+    return sorted(
+        unique,
+        key=lambda r: (
+            not r["feasible"],
+            (-r["score"], False) if r["feasible"] else (r["violations"].get("active", 0.0) > 0, r["total_violation"]),
+        ),
+    )
 
 
 NEAR_STEPS = 2  # a role whose value differs by fewer series steps is the same choice
