@@ -194,7 +194,15 @@ def test_a_killed_worker_s_trials_are_failed_and_retried(postgres_url, tmp_path)
             ]
             return done >= 32 and bool(held)
 
-        _wait(victim_mid_batch, "the victim worker to hold running trials mid-search", procs)
+        def victim_frozen_mid_batch():
+            # looked at while stopped (SIGSTOP), so it cannot tell its batch between the look and the kill
+            victim.send_signal(signal.SIGSTOP)
+            if victim_mid_batch():
+                return True
+            victim.send_signal(signal.SIGCONT)
+            return False
+
+        _wait(victim_frozen_mid_batch, "the victim worker to hold running trials mid-search", procs)
         victim.send_signal(signal.SIGKILL)
         victim.wait(timeout=10)
         after_kill = _trials(postgres_url, search_id)
