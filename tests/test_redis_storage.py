@@ -286,6 +286,41 @@ def test_recovery_on_redis_goes_by_the_runners_liveness_not_by_age(redis_url):
     assert states[unheld.number] == TrialState.RUNNING
 
 
+def test_a_batch_s_held_trials_are_recorded_together_when_it_closes(redis_url):
+    """RunnerLiveness.hold inside a batch sends nothing until the batch closes; then every
+    trial held in it has this runner as its holder, and the runner's liveness key is set with
+    the grace as its expiry, in two commands whatever the batch's size; trials held after that
+    go with the next batch, and a hold outside a batch is recorded at once."""
+    from optimizer.redis_journal import RedisJournal, RunnerLiveness
+
+    journal = RedisJournal(_db(redis_url, 12), prefix="h")
+    client = journal.client
+    here = RunnerLiveness(journal, "here:1", 30)
+    sent = []
+    journal.open_batch()
+    for trial_id_ in (11, 12, 13):
+        here.hold(trial_id_)
+    assert client.hgetall("h:holder") == {} and client.get("h:alive:here:1") is None
+    pipeline = client.pipeline
+
+    def counted(**kwargs):  # the commands of the batch's pipeline, as sent
+        pipe = pipeline(**kwargs)
+        execute = pipe.execute
+        pipe.execute = lambda: (sent.extend(pipe.command_stack), execute())[1]
+        return pipe
+
+    client.pipeline = counted
+    journal.close_batch()
+    assert client.hgetall("h:holder") == {b"11": b"here:1", b"12": b"here:1", b"13": b"here:1"}
+    assert 0 < client.ttl("h:alive:here:1") <= 30
+    assert len(sent) == 2
+    journal.open_batch()
+    here.hold(14)
+    journal.close_batch()
+    here.hold(15)  # outside a batch
+    assert set(client.hgetall("h:holder")) == {b"11", b"12", b"13", b"14", b"15"}
+
+
 def _trials(storage: optuna.storages.BaseStorage, name: str) -> list[tuple]:
     study_id = storage.get_study_id_from_name(name)
     return [
