@@ -80,6 +80,13 @@ def test_a_stage_that_is_not_active_follows_every_near_miss_that_amplifies() -> 
         for value, v in ((1.0, dead), (2.0, far))
     ]
     assert [r["parts"]["r_collector"] for r in rank_records(records)] == [2.0, 1.0]
+    # the shortlist's candidates (a transistor record, no device name) go in the same order
+    from optimizer.search.ranking import designer_order
+
+    candidates = [{**{k: v for k, v in r.items() if k != "device"}, "transistor": {"name": "q"}} for r in records]
+    feasible = {**candidates[0], "feasible": True, "score": 0.2, "violations": {}, "total_violation": 0.0}
+    ordered = sorted([*candidates, feasible], key=designer_order)
+    assert [(c["feasible"], c["parts"]["r_collector"]) for c in ordered] == [(True, 1.0), (False, 2.0), (False, 1.0)]
 
 
 def test_wrong_polarity_swing_current_and_rating_are_each_violations() -> None:

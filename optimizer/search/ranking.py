@@ -46,13 +46,15 @@ def rank_records(records: list[dict]) -> list[dict]:
     order (:func:`rank_key`: by summed violation alone, which leads it out of saturation
     gradually) leaves that distinction out."""
     unique = list({design_key(r): r for r in records}.values())
-    return sorted(
-        unique,
-        key=lambda r: (
-            not r["feasible"],
-            (-r["score"], False) if r["feasible"] else (r["violations"].get("active", 0.0) > 0, r["total_violation"]),
-        ),
-    )
+    return sorted(unique, key=designer_order)
+
+
+def designer_order(record: dict) -> tuple:
+    """:func:`rank_records`' sort key of a trial's record or a shortlist candidate (both carry
+    ``feasible``, ``score``, ``violations`` and ``total_violation``)."""
+    if record["feasible"]:
+        return (False, -record["score"])
+    return (True, record["violations"].get("active", 0.0) > 0, record["total_violation"])
 
 
 NEAR_STEPS = 2  # a role whose value differs by fewer series steps is the same choice

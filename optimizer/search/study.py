@@ -29,6 +29,7 @@ from optimizer.search.ranking import (
     FullAssessments,
     candidate_from_record,
     design_key,
+    designer_order,
     fold_variants,
     front_records,
     rank_key,
@@ -484,7 +485,7 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
             if meeting == top:
                 break
     assessed = {design_key(r): dict(c) for r, c in zip(reach, shortlist)}  # copied before ranks are set
-    shortlist.sort(key=lambda c: (not c["feasible"], -c["score"] if c["feasible"] else c["total_violation"]))
+    shortlist.sort(key=designer_order)
     candidates = shortlist + [candidate_from_record(space, r) for r in ranked[len(shortlist) :] if tail]
     for rank, c in enumerate(candidates, 1):
         c["rank"] = rank
