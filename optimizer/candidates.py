@@ -182,6 +182,8 @@ def _assess_group(
             conditions,
             allowed,
             f_low_target=scoring.sizing_target(spec, cap_tolerances),
+            output_impedance_max=spec.limits.output_impedance_max,
+            capacitor_low_edge=scoring.capacitor_low_edge(cap_tolerances),
         )
         arrays.update({c: sized[c] for c in missing_caps if c in sized})
         if "c_decouple" in missing_caps:

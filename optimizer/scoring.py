@@ -55,10 +55,16 @@ def conditions_from_spec(spec: Spec, temperature: float = 27.0) -> Conditions:
     )
 
 
+def capacitor_low_edge(capacitor_tolerances: np.ndarray) -> float:
+    """A capacitor's value at its low tolerance edge, as a share of its value: 1 less the
+    largest tolerance of the allowed capacitors (the margin the sizing keeps)."""
+    return 1.0 - float(np.max(capacitor_tolerances, initial=0.0))
+
+
 def sizing_target(spec: Spec, capacitor_tolerances: np.ndarray) -> float:
     """Low corner (Hz) the capacitors are sized for: the band's low edge less the largest
     capacitor tolerance, so the corner stays in band with every capacitor at its low edge."""
-    return float(spec.band[0] * (1.0 - float(np.max(capacitor_tolerances, initial=0.0))))
+    return float(spec.band[0] * capacitor_low_edge(capacitor_tolerances))
 
 
 def decoupling_target(spec: Spec, capacitor_tolerances: np.ndarray) -> float | None:
@@ -66,7 +72,7 @@ def decoupling_target(spec: Spec, capacitor_tolerances: np.ndarray) -> float | N
     that keeps it with the capacitor at its low edge (rejection above the RC corner grows with C)."""
     if spec.limits.psrr_min_db is None:
         return None
-    low_edge = 1.0 - float(np.max(capacitor_tolerances, initial=0.0))
+    low_edge = capacitor_low_edge(capacitor_tolerances)
     return float(spec.limits.psrr_min_db - 20.0 * np.log10(max(low_edge, 1e-3)))
 
 

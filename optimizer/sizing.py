@@ -9,7 +9,11 @@ each capacitor down one value where the target still holds. Whether a set of val
 the target is read from the response at the target frequency alone (within 3 dB of the
 mid-band gain), not from the crossing's search. Last, a capacitor that alone costs more than
 MIDBAND_LOSS / (capacitors) of |H| at the band's centre is raised to the smallest value that
-does not (the mid-band figures take every capacitor as a short there). All candidates at once.
+does not (the mid-band figures take every capacitor as a short there), and where the spec limits
+the output impedance, c_out is raised until its reactance at the band's centre (at its low
+tolerance edge) keeps the impedance the load sees within the limit: into a high-impedance load
+the low corner alone leaves c_out small, its reactance then the larger part of the output
+impedance. All candidates at once.
 """
 
 from __future__ import annotations
@@ -120,6 +124,19 @@ class _LowCorner:
                 out[part] = np.abs(response(centre)[0])
         return out
 
+    def output_impedance(self, caps: dict[str, np.ndarray]) -> np.ndarray:
+        """The mid-band output impedance (ohm; complex where the stage gives it at the band's
+        centre) of every candidate with the capacitor values ``caps`` (F, per candidate), c_out's
+        own reactance left out (Topology._evaluate adds it for the metric)."""
+        n = self.bias.op["ic"].size
+        out = np.empty(n, dtype=complex)
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            for i in range(0, n, CHUNK_FULL):
+                at = np.arange(i, min(i + CHUNK_FULL, n))
+                _, p, chunk, r_source = self._chunk(at, {k: v[at] for k, v in caps.items()})
+                out[at] = self.topology._midband(p, self.conditions, chunk, r_source)["output_impedance"]
+        return out
+
     def meets_stacked(self, variants: list[dict[str, np.ndarray]], target: float) -> np.ndarray:
         """:meth:`meets` of several capacitor variants of all the candidates: shape (variants, candidates)."""
         n = self.bias.op["ic"].size
@@ -140,6 +157,8 @@ def size_capacitors(
     conditions: Conditions,
     allowed: np.ndarray,
     f_low_target: float | None = None,
+    output_impedance_max: float | None = None,
+    capacitor_low_edge: float = 1.0,
 ) -> dict[str, np.ndarray]:
     """Capacitor values (F) for every candidate, from the sorted ``allowed`` values.
 
@@ -148,6 +167,8 @@ def size_capacitors(
     edge of ``conditions.band``. Where even the largest values miss the target, the
     largest are returned (the scoring then reports the low corner as violated). Few
     batches of vectorised model calls: the corner probes, the common factors, one step-down per capacitor.
+    ``output_impedance_max`` (ohm, the spec's limit at the band's centre): c_out at least the
+    value that keeps it at ``capacitor_low_edge`` times its value (1 less its tolerance).
     """
     target = conditions.band[0] if f_low_target is None else f_low_target
     allowed = np.sort(np.asarray(allowed, dtype=float))
@@ -239,7 +260,25 @@ def size_capacitors(
     chosen = {c: allowed[np.where(taken >> j & 1, lower[c], best[c])] for j, c in enumerate(caps)}
     chosen = _midband_floors(f_low, chosen, allowed)
     floors = topology.capacitor_floors(resistors, conditions, target)
+    if output_impedance_max is not None and "c_out" in chosen:
+        floors["c_out"] = np.maximum(
+            floors.get("c_out", 0.0), _output_floor(f_low, chosen, output_impedance_max, capacitor_low_edge)
+        )
     return {c: np.maximum(v, allowed[_round_up(floors[c], allowed)]) if c in floors else v for c, v in chosen.items()}
+
+
+def _output_floor(f_low: _LowCorner, chosen: dict[str, np.ndarray], limit: float, low_edge: float) -> np.ndarray:
+    """Least c_out (F) per candidate for which the output impedance at the band's centre,
+    |Z + 1/(j w C)| with Z the stage's own (a + jb), stays within ``limit`` (ohm) with c_out at
+    ``low_edge`` times its value: a reactance X = 1/(w C) up to b + sqrt(limit^2 - a^2). 0 (no
+    floor) where no value can do it (|a| at or above the limit, or a capacitive Z beyond it)."""
+    z = f_low.output_impedance(chosen)
+    room = limit**2 - z.real**2
+    reactance = z.imag + np.sqrt(np.maximum(room, 0.0))
+    w = 2.0 * np.pi * f_low.conditions.band_centre
+    with np.errstate(divide="ignore", invalid="ignore"):
+        least = 1.0 / (w * reactance * low_edge)
+    return np.where((room > 0) & (reactance > 0), least, 0.0)
 
 
 def _midband_floors(f_low: _LowCorner, chosen: dict[str, np.ndarray], allowed: np.ndarray) -> dict[str, np.ndarray]:

@@ -3,6 +3,8 @@ and the hand method used as seeds and baseline."""
 
 from __future__ import annotations
 
+import shutil
+
 import numpy as np
 import pytest
 
@@ -210,3 +212,53 @@ def test_the_worst_case_solves_the_swing_once_per_corner_of_the_other_parts(desi
         for a, b in zip(fewer[key], every[key]):
             np.testing.assert_array_equal(a, b, err_msg=key)
     assert np.all(np.isfinite(fewer["swing_vpp"][0]))
+
+
+# An emitter follower (hand design: 9 V, 2 mA) driving a 100k load: its own output impedance is
+# some tens of ohms, but c_out sized for the low corner alone is some 0.1 uF, a reactance of
+# kilohms at the band's centre (632 Hz) that the load sees in series.
+FOLLOWER = {"r_top": np.array([33e3]), "r_bottom": np.array([51e3]), "r_follower": np.array([2.2e3])}
+ZOUT_LIMIT = 100.0  # ohm
+LOW_EDGE = 0.8  # c_out at its low tolerance edge (20 %)
+
+
+def _z_out(parts: dict[str, np.ndarray]) -> float:
+    return float(get_topology("emitter_follower").evaluate(parts, DEVICE, CONDITIONS).metrics["output_impedance"][0])
+
+
+def test_an_output_impedance_limit_raises_c_out_to_the_least_value_that_keeps_it() -> None:
+    topology = get_topology("emitter_follower")
+    plain = size_capacitors(topology, FOLLOWER, DEVICE, CONDITIONS, E6_CAPS)
+    limited = size_capacitors(
+        topology, FOLLOWER, DEVICE, CONDITIONS, E6_CAPS, output_impedance_max=ZOUT_LIMIT, capacitor_low_edge=LOW_EDGE
+    )
+    assert _z_out({**FOLLOWER, **plain}) > 10 * ZOUT_LIMIT  # the low corner alone: c_out's reactance dominates
+    assert limited["c_in"][0] == plain["c_in"][0]  # only c_out moves
+    assert _z_out({**FOLLOWER, **limited, "c_out": LOW_EDGE * limited["c_out"]}) <= ZOUT_LIMIT
+    lower = E6_CAPS[np.searchsorted(E6_CAPS, limited["c_out"][0] * (1 - 1e-9)) - 1]
+    assert _z_out({**FOLLOWER, **limited, "c_out": np.array([LOW_EDGE * lower])}) > ZOUT_LIMIT  # the least that does
+    # a limit no capacitor can meet (below the stage's own output impedance): c_out as the corner sizes it
+    own = size_capacitors(
+        topology, FOLLOWER, DEVICE, CONDITIONS, E6_CAPS, output_impedance_max=1.0, capacitor_low_edge=LOW_EDGE
+    )
+    assert own["c_out"][0] == plain["c_out"][0]
+
+
+@pytest.mark.skipif(shutil.which("ngspice") is None, reason="ngspice not installed: apt-get install ngspice")
+def test_the_sized_follower_s_output_impedance_holds_in_ngspice() -> None:
+    """Reference: ngspice (Debian), a 1 A AC test current into the output node behind c_out at
+    the band's centre (tests/spice_harness.spice_midband), with c_out at its low edge."""
+    from spice_agreement import TOLERANCES
+    from spice_harness import spice_midband
+
+    topology = get_topology("emitter_follower")
+    limited = size_capacitors(
+        topology, FOLLOWER, DEVICE, CONDITIONS, E6_CAPS, output_impedance_max=ZOUT_LIMIT, capacitor_low_edge=LOW_EDGE
+    )
+    values = {role: float(v[0]) for role, v in {**FOLLOWER, **limited}.items()}
+    values["c_out"] *= LOW_EDGE
+    model = {**DEVICE.spice_model(), "polarity": "npn"}
+    simulated = spice_midband("emitter_follower", values, model, CONDITIONS)["output_impedance"]
+    tolerance, _ = TOLERANCES["output_impedance"]
+    assert simulated <= ZOUT_LIMIT * (1 + tolerance)
+    assert abs(_z_out({k: np.array([v]) for k, v in values.items()}) / simulated - 1) <= tolerance

@@ -82,6 +82,8 @@ def evaluate_group(
                 conditions,
                 ct.values,
                 f_low_target=space.sizing_target,
+                output_impedance_max=spec.limits.output_impedance_max,
+                capacitor_low_edge=scoring.capacitor_low_edge(ct.tolerance),
             ),
         }
     else:
