@@ -24,7 +24,9 @@ REGISTRY: dict[str, "Topology"] = {}
 
 Parts = dict[str, np.ndarray]
 CHUNK_FAST = 16384  # candidates per block (keeps the working set in cache)
-CHUNK_FULL = 4096  # the full path's nodal solves run over (frequencies, candidates): fewer, longer calls
+# the full path's nodal solves run over (frequencies, candidates): fewer, longer calls (8192 against 4096:
+# 1.03-1.12x the full-metric rate of every topology, the same figures, a third more memory)
+CHUNK_FULL = 8192
 METRICS = (
     "gain",
     "gain_db",
