@@ -125,16 +125,18 @@ class _LowCorner:
         return out
 
     def output_impedance(self, caps: dict[str, np.ndarray]) -> np.ndarray:
-        """The mid-band output impedance (ohm; complex where the stage gives it at the band's
-        centre) of every candidate with the capacitor values ``caps`` (F, per candidate), c_out's
-        own reactance left out (Topology._evaluate adds it for the metric)."""
+        """The output impedance (ohm, complex) the load sees at the band's centre of every
+        candidate with the capacitor values ``caps`` (F, per candidate) but c_out a short: the
+        stage's own, to which c_out's reactance adds in series (as the full metrics solve it)."""
         n = self.bias.op["ic"].size
         out = np.empty(n, dtype=complex)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             for i in range(0, n, CHUNK_FULL):
                 at = np.arange(i, min(i + CHUNK_FULL, n))
-                _, p, chunk, r_source = self._chunk(at, {k: v[at] for k, v in caps.items()})
-                out[at] = self.topology._midband(p, self.conditions, chunk, r_source)["output_impedance"]
+                shorted = {**{k: v[at] for k, v in caps.items()}, "c_out": np.full(at.size, _LARGE_CAPACITANCE)}
+                _, p, chunk, r_source = self._chunk(at, shorted)
+                net = self.topology._network(p, self.conditions, chunk.small_signal, True, r_source, True)
+                out[at] = self.topology.at_centre(net, self.conditions, r_source)[2]
         return out
 
     def meets_stacked(self, variants: list[dict[str, np.ndarray]], target: float) -> np.ndarray:

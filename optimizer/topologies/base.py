@@ -843,10 +843,18 @@ class StageModel(Topology):
         f_low, f_high = physics.minus_3db_corners(response, gain, self.corner_steps)
         # the mid-band figures take the coupling and bypass capacitors as shorts (the followers' see
         # c_in and c_out, the bootstrap's its c_bootstrap) and the junction and load capacitances as
-        # open: how far the whole response at the band's centre is from them
-        centre = np.abs(response(np.array([[c.band_centre]]))[0])
-        corners = {"f_low": f_low, "f_high": f_high, "midband_deviation": np.abs(centre / np.abs(gain) - 1.0)}
-        if not noise:  # the corners alone (evaluate's noise=False)
+        # open: how far the whole response at the band's centre is from them. The impedances are
+        # taken there too, every capacitor as it is: a feedback stage's loop sees the source
+        # through c_in, which the closed forms leave out (its output impedance moved up to 18 %)
+        h_centre, z_in, z_out = self.at_centre(net, c, r_source)
+        corners = {
+            "f_low": f_low,
+            "f_high": f_high,
+            "midband_deviation": np.abs(np.abs(h_centre) / np.abs(gain) - 1.0),
+            "input_impedance": np.abs(z_in),
+            "output_impedance": np.abs(z_out),
+        }
+        if not noise:  # the corners and impedances alone (evaluate's noise=False)
             return corners
         ein, nf = physics.noise_integrals(net, "out", "in", r_source, c.band)
         return {
@@ -931,6 +939,24 @@ class StageModel(Topology):
         f = np.asarray(freqs, dtype=float).reshape(-1, 1)
         h = self._response(self._network(p, frame, b.small_signal, True, rs, True), rs)(f)
         return np.ascontiguousarray(np.broadcast_to(h, (f.shape[0], rs.size)).T)
+
+    @staticmethod
+    def at_centre(
+        net: physics.Network, c: Conditions, r_source: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Gain (V/V) and input and output impedance (ohm), all complex, at the band's centre with
+        every capacitor at its value, from one nodal solve of ``net`` (the source-and-load network
+        of :meth:`_network`) with three excitations: the source's drive, 1 A into 'in', 1 A into
+        'out'. The impedances are the nodes' less what the network holds there: the source
+        resistance from 'in' and the load (resistance and capacitance) from 'out'; the same as
+        :meth:`midband_network` reads with the source and load taken out (tests/test_models.py)."""
+        s = 2j * np.pi * c.band_centre
+        one, zero = np.ones_like(r_source), np.zeros_like(r_source)
+        v = net.at(np.full((3, 1), s)).solve(
+            {"in": np.stack([1.0 / r_source, one, zero]), "out": np.stack([zero, zero, one])}, ["in", "out"]
+        )
+        y_load = (1.0 / c.load_impedance if np.isfinite(c.load_impedance) else 0.0) + s * c.load_capacitance
+        return v["out"][0], 1.0 / (1.0 / v["in"][1] - 1.0 / r_source), 1.0 / (1.0 / v["out"][2] - y_load)
 
     def midband_network(
         self, parts: Parts, device: AnyDevice, conditions: Conditions, hfe: np.ndarray | float | None = None
