@@ -509,7 +509,7 @@ class Network:
         targets = frozenset(range(len(self.nodes)) if want is None else (self.index[w] for w in want))
         plan = _elimination_plan(len(self.nodes), frozenset(entries), rhs_nodes, targets)
         values = [v for pair in entries.values() for v in pair if v is not None]
-        shape = np.broadcast_shapes(*(np.shape(v) for v in values))
+        shape = _broadcast_shape([getattr(v, "shape", ()) for v in values])
         dtype = np.result_type(*values)
         stack_g, stack_c = np.zeros((2, len(entries), *shape), dtype=dtype)
         for key, (g, c) in entries.items():
