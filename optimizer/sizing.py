@@ -129,14 +129,11 @@ class _LowCorner:
         candidate with the capacitor values ``caps`` (F, per candidate) but c_out a short: the
         stage's own, to which c_out's reactance adds in series (as the full metrics solve it)."""
         n = self.bias.op["ic"].size
+        shorted = {**caps, "c_out": np.full(n, _LARGE_CAPACITANCE)}
         out = np.empty(n, dtype=complex)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            for i in range(0, n, CHUNK_FULL):
-                at = np.arange(i, min(i + CHUNK_FULL, n))
-                shorted = {**{k: v[at] for k, v in caps.items()}, "c_out": np.full(at.size, _LARGE_CAPACITANCE)}
-                _, p, chunk, r_source = self._chunk(at, shorted)
-                net = self.topology._network(p, self.conditions, chunk.small_signal, True, r_source, True)
-                out[at] = self.topology.at_centre(net, self.conditions, r_source)[2]
+            for part, _, response in self._responses(np.arange(n), shorted):
+                out[part] = self.topology.at_centre(response.network, self.conditions, 1.0 / response.drive)[2]
         return out
 
     def meets_stacked(self, variants: list[dict[str, np.ndarray]], target: float) -> np.ndarray:
