@@ -32,7 +32,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from optimizer.errors import InputError
-from optimizer.search import ABSENT, SearchSpace, evaluate_group, pareto_mask
+from optimizer.search import SearchSpace, evaluate_group, pareto_mask
+from optimizer.search.enumeration import Enumeration
 from optimizer.spec import Spec
 from optimizer.topologies import get_topology
 
@@ -54,53 +55,6 @@ class OracleResult:
     feasible: int  # combinations meeting every core limit
 
 
-class _Enumeration:
-    """Every combination of the roles' indices, in chunks; where the topology has a gain
-    bound (and ``prune``), only the (r_collector, r_emitter) pairs that can reach the spec's
-    gain window are combined with the other roles."""
-
-    def __init__(
-        self, space: SearchSpace, spec: Spec, roles: tuple[str, ...], lows: dict[str, int], prune: bool, topology: str
-    ) -> None:
-        n = space.resistors.values.size
-        ranges = {r: np.arange(lows[r], n) for r in roles}
-        bounded: tuple[str, ...] = ()
-        model = get_topology(topology)
-        if prune and model.gain_bound_roles:
-            bounded = model.gain_bound_roles
-            grid = np.stack(np.meshgrid(*(ranges[r] for r in bounded), indexing="ij"), axis=-1).reshape(
-                -1, len(bounded)
-            )
-            values = {r: space.resistors.values[np.maximum(grid[:, j], 0)] for j, r in enumerate(bounded)}
-            floor = spec.gain.target * 10 ** (-spec.gain.tolerance_db / 20)
-            bound = model.gain_bound(values, spec.load_impedance)
-            if bound is None:  # a developer's slip in the topology's module, not the user's
-                raise TypeError(f"topology {topology} declares gain_bound_roles but its gain_bound() gives no bound")
-            self._pairs = grid[bound >= floor]
-        else:
-            self._pairs = np.zeros((1, 0), dtype=int)
-        self.roles, self._bounded = roles, bounded
-        self._free = tuple(r for r in roles if r not in bounded)
-        self._free_lows = np.array([lows[r] for r in self._free], dtype=int)
-        self._free_shape = tuple(n - lows[r] for r in self._free)
-        self._free_count = int(np.prod(self._free_shape, dtype=np.int64))
-        self.size = len(self._pairs) * self._free_count
-
-    def chunks(self, chunk: int):
-        """Index arrays (combinations, roles) in the order of ``roles``."""
-        column = {r: j for j, r in enumerate(self.roles)}
-        for start in range(0, self.size, chunk):
-            linear = np.arange(start, min(start + chunk, self.size))
-            out = np.empty((linear.size, len(self.roles)), dtype=int)
-            pair, free = np.divmod(linear, self._free_count)
-            for j, r in enumerate(self._bounded):
-                out[:, column[r]] = self._pairs[pair, j]
-            if self._free:
-                for j, idx in enumerate(np.unravel_index(free, self._free_shape)):
-                    out[:, column[self._free[j]]] = idx + self._free_lows[j]
-            yield out
-
-
 def exhaustive(
     spec: Spec, topology: str | None = None, device: str | None = None, space: SearchSpace | None = None
 ) -> OracleResult:
@@ -120,10 +74,8 @@ def exhaustive(
             "'sized' (the oracle enumerates resistors and sizes the capacitors)",
         )
     model = get_topology(topology)
-    n = space.resistors.values.size
-    roles = space.resistor_roles(topology)
-    lows = {r: (ABSENT if r in model.optional_parts else 0) for r in roles}
-    total = int(np.prod([n - lows[r] for r in roles], dtype=np.int64))
+    whole = Enumeration(space, topology, prune=False)
+    roles = whole.roles
     best_score, evaluated = -np.inf, 0  # the best fully evaluated design so far, and how many were evaluated
     best: tuple[dict, int] | None = None  # (evaluate_group's result, index in it)
 
@@ -132,7 +84,7 @@ def exhaustive(
         exceeds ``threshold``, at most ``limit`` of them (the best), and the count meeting
         every core limit."""
         kept, optimistic, feasible = np.zeros((0, len(roles)), dtype=int), np.zeros(0), 0
-        for idx in _Enumeration(space, spec, roles, lows, prune, topology).chunks(CHUNK):
+        for idx in Enumeration(space, topology, prune).chunks(CHUNK):
             g = evaluate_group(space, topology, device, {r: idx[:, j] for j, r in enumerate(roles)}, full=False)
             feasible += int((g["total"] == 0).sum())
             keep = g["score"] > threshold
@@ -183,7 +135,7 @@ def exhaustive(
     front = np.concatenate(front_values) if front_values else np.zeros((0, len(directions)))
     front = front[pareto_mask(front, directions)]
     return OracleResult(
-        best=_record(*best), front=front, combinations=total, fully_evaluated=evaluated, feasible=feasible
+        best=_record(*best), front=front, combinations=whole.combinations, fully_evaluated=evaluated, feasible=feasible
     )
 
 

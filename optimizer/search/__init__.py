@@ -12,7 +12,8 @@ every design's metrics, violations and score are the trial's user attr ``record`
 CLI, the REST service and remote workers read the same storage. Reproducible with a seed:
 the same spec, seed and budget give the same trials in a single process.
 
-Submodules, in the order of the flow: space, evaluation, ranking, study, results, run.
+Submodules, in the order of the flow: space, evaluation, enumeration (seeds of a small space), ranking,
+study, results, run.
 """
 
 from optimizer.scoring import pareto_mask

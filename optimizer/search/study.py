@@ -20,6 +20,7 @@ from optuna.trial import TrialState
 from optimizer.catalog import Catalog
 from optimizer.errors import InputError, StorageError
 from optimizer.sampler import NeighbourSampler
+from optimizer.search.enumeration import bound_seeds
 from optimizer.search.evaluation import evaluate_designs
 from optimizer.search.ranking import (
     FRONT_YIELD_POINTS,
@@ -166,8 +167,9 @@ def create_search(
     catalog: Catalog | None = None,
     seeds: bool = True,
 ) -> str:
-    """Create the study for ``spec`` (status 'queued'), the hand method's seeds enqueued
-    (unless ``seeds`` is False: a baseline without them); returns its id.
+    """Create the study for ``spec`` (status 'queued'), the hand method's seeds and, for a small
+    space, the best designs by the core bound (enumeration.bound_seeds) enqueued (unless
+    ``seeds`` is False: a baseline without them); returns its id.
 
     Everything is checked before anything is stored: the space is built (the spec fits its
     catalog) and the spec as it will be stored reads back. The status is written last: it is
@@ -194,7 +196,7 @@ def create_search(
             ("objectives", [list(o) for o in spec.objective_directions]),
         ):
             study.set_user_attr(key, value)
-        for design in (space.seeds() if seeds else [])[: spec.search.trials]:
+        for design in (space.seeds() + bound_seeds(space, spec.search.trials) if seeds else [])[: spec.search.trials]:
             study.enqueue_trial(space.params_of(design), skip_if_exists=True)
         study.set_user_attr("status", "queued")  # the commit mark
     return search_id
