@@ -80,7 +80,12 @@ def _part_records(catalog: Catalog, spec: Spec, arrays: dict[str, np.ndarray]) -
         if not roles:
             continue
         values = np.concatenate([np.asarray(arrays[role], dtype=float) for role in roles])
-        rows = catalog.parts_for(kind, values, allow_class2=spec.parts.allow_class2_coupling)
+        rows = catalog.parts_for(
+            kind,
+            values,
+            allow_class2=spec.parts.allow_class2_coupling,
+            voltage_min=scoring.capacitor_rating_wanted(spec) if kind == "capacitor" else 0.0,
+        )
         part_id = np.asarray(rows["part_id"], dtype=object)  # blank (None or NaN) where none is in stock
         in_catalog = [p is not None and p == p for p in part_id]
         tolerance, rating, price = (
@@ -171,7 +176,12 @@ def _assess_group(
             in_stock_only=spec.parts.in_stock_only,
             allow_class2=spec.parts.allow_class2_coupling,
         )
-        cap_tolerances = catalog.parts_for("capacitor", allowed)["tolerance"]
+        cap_tolerances = catalog.parts_for(
+            "capacitor",
+            allowed,
+            allow_class2=spec.parts.allow_class2_coupling,
+            voltage_min=scoring.capacitor_rating_wanted(spec),
+        )["tolerance"]
         held = {"c_decouple": arrays.get("c_decouple", np.full(n, allowed[-1]))} if decoupled else {}
         held.update({"c_in": arrays["c_in"]} if "c_in" in arrays and not np.any(arrays["c_in"]) else {})
         stage = {r: arrays[r] for r in topology.resistors + topology.supply_parts if r in arrays}

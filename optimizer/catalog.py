@@ -508,38 +508,49 @@ class Catalog:
             )
         return self.transistors.row(int(match[0]))
 
-    def _cheapest_in_stock(self, kind: str, allow_class2: bool) -> Table:
+    def _cheapest_in_stock(self, kind: str, allow_class2: bool, voltage_min: float = 0.0) -> Table:
         """The row part_for picks for each value in stock (sorted by value); cached."""
-        key = (kind, allow_class2 or kind == "resistor")
+        key = (kind, allow_class2 or kind == "resistor", voltage_min if kind == "capacitor" else 0.0)
         if key not in self._picks:
-            self._picks[key] = self._cheapest(kind, allow_class2)
+            self._picks[key] = self._cheapest(kind, allow_class2, key[2])
         return self._picks[key]
 
-    def _cheapest(self, kind: str, allow_class2: bool) -> Table:
+    def _cheapest(self, kind: str, allow_class2: bool, voltage_min: float) -> Table:
         table = self.resistors if kind == "resistor" else self.signal_capacitors(allow_class2)
         stocked = np.flatnonzero(_in_stock(table))
         value, price, stock, part_id = (table[c] for c in ("value", "unit_price", "stock_qty", "part_id"))
-        # by value, then price, then the larger stock (blank = unlimited: largest), then part id
+        rating = table["voltage_rating"] if kind == "capacitor" else np.full(len(table), math.inf)
+
+        def short_of(i: np.integer) -> float:  # V below voltage_min (0: rated for it); a blank rating counts as 0 V
+            return max(0.0, voltage_min - (rating[i] if rating[i] is not None else 0.0))
+
+        # by value, then rated for voltage_min before not (the higher rated first among those that
+        # are not), then price, then the larger stock (blank = unlimited: largest), then part id
         order = sorted(
             stocked,
-            key=lambda i: (value[i], price[i], -(math.inf if stock[i] is None else stock[i]), part_id[i]),
+            key=lambda i: (value[i], short_of(i), price[i], -(math.inf if stock[i] is None else stock[i]), part_id[i]),
         )
         first = [i for n, i in enumerate(order) if n == 0 or value[i] != value[order[n - 1]]]
         return table.take(np.array(first, dtype=int))
 
-    def part_for(self, role_kind: str, value: float, *, allow_class2: bool = False) -> dict | None:
+    def part_for(
+        self, role_kind: str, value: float, *, allow_class2: bool = False, voltage_min: float = 0.0
+    ) -> dict | None:
         """The cheapest in-stock row of ``role_kind`` ("resistor" or "capacitor") with
         ``value`` (ohm or F); ties go to the larger stock. No class-2 ceramic unless
-        ``allow_class2``. None if none is in stock."""
-        row = self.parts_for(role_kind, np.array([value]), allow_class2=allow_class2).row(0)
+        ``allow_class2``. A capacitor rated at least ``voltage_min`` (V) where the value has one
+        in stock, else the highest rated of the value. None if none is in stock."""
+        row = self.parts_for(role_kind, np.array([value]), allow_class2=allow_class2, voltage_min=voltage_min).row(0)
         return None if row["part_id"] is None else row
 
-    def parts_for(self, role_kind: str, values: np.ndarray, *, allow_class2: bool = False) -> Table:
+    def parts_for(
+        self, role_kind: str, values: np.ndarray, *, allow_class2: bool = False, voltage_min: float = 0.0
+    ) -> Table:
         """The row :meth:`part_for` picks for each of ``values``, one table row per value
         (every cell blank where no row with that value is in stock)."""
         if role_kind not in ("resistor", "capacitor"):
             raise InputError.single("role_kind", role_kind, "resistor or capacitor")
-        best = self._cheapest_in_stock(role_kind, bool(allow_class2))
+        best = self._cheapest_in_stock(role_kind, bool(allow_class2), float(voltage_min))
         wanted = np.asarray(values, dtype=float)
         known = best["value"]
         if known.size == 0:

@@ -38,6 +38,14 @@ NEAR_RATING = 0.5  # a part past half its rating gets a caution (common practice
 MIDBAND_DEVIATION_MAX = 0.02
 
 
+def capacitor_rating_wanted(spec: Spec) -> float:
+    """The least voltage rating (V) that keeps a capacitor across the spec's highest supply
+    within its derated limit (CAPACITOR_VOLTAGE_DERATING). Each capacitor value's catalog part
+    is the cheapest rated for it where the catalog stocks one (one rating covering the board's
+    highest rail: common practice), not the cheapest of any rating."""
+    return max(spec.supply, spec.supply_max or 0.0) / CAPACITOR_VOLTAGE_DERATING
+
+
 def conditions_from_spec(spec: Spec, temperature: float = 27.0) -> Conditions:
     """The operating conditions of a spec at one temperature (°C)."""
     level = spec.limits.thd_level if spec.limits.thd_level is not None else 1.0

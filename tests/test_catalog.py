@@ -58,6 +58,40 @@ def test_in_stock_filter_and_cheapest_part() -> None:
     assert part["unit_price"] == stocked["unit_price"].min()
 
 
+def test_a_capacitor_value_takes_the_cheapest_part_rated_for_the_highest_rail() -> None:
+    # bench_stock (its capacitors.csv read here): 10 uF as DR-C019 (25 V, 0.10) and DR-C020 (50 V,
+    # 0.14); 220 uF only as DR-C024 (16 V)
+    bench = load_catalog("bench_stock")
+    assert bench.part_for("capacitor", 10e-6)["part_id"] == "DR-C019"  # no need stated: the cheapest
+    assert bench.part_for("capacitor", 10e-6, voltage_min=25.0)["part_id"] == "DR-C019"  # 25 V covers 25 V
+    assert bench.part_for("capacitor", 10e-6, voltage_min=31.5)["part_id"] == "DR-C020"  # the 50 V one
+    assert bench.part_for("capacitor", 220e-6, voltage_min=31.5)["part_id"] == "DR-C024"  # none rated: the best
+    # 1 uF: DR-C015 film 63 V has no stock, DR-C016 is class 2: with class 2 allowed, the X7R one
+    assert bench.part_for("capacitor", 1e-6, allow_class2=True, voltage_min=31.5)["part_id"] == "DR-C016"
+
+
+def test_the_search_prices_and_rates_a_capacitor_as_the_part_rated_for_the_supply() -> None:
+    from optimizer.scoring import capacitor_rating_wanted
+    from optimizer.search import SearchSpace
+    from optimizer.spec import parse_spec
+
+    spec = parse_spec(
+        {
+            "name": "rail",
+            "supply": "24 V",
+            "gain": {"target": -5},
+            "source_impedance": 600,
+            "load_impedance": "10k",
+            "band": ["20 Hz", "20 kHz"],
+            "parts": {"catalog": "bench_stock"},
+        }
+    )
+    assert capacitor_rating_wanted(spec) == pytest.approx(25.2 / 0.8)  # 24 V +5 %, capacitors at 80 % of rating
+    space = SearchSpace.build(spec)
+    ten = int(np.flatnonzero(np.isclose(space.capacitors.values, 10e-6))[0])
+    assert space.capacitors.part_id[ten] == "DR-C020" and space.capacitors.rating[ten] == 50.0
+
+
 _FIXTURE = {
     "catalog.yaml": "name: tiny\ndescription: three resistors\ncurrency: EUR\nstock_tracked: true\n",
     "resistors.csv": (

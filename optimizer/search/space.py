@@ -35,8 +35,11 @@ class PartTable:
     unit_price: np.ndarray
 
     @classmethod
-    def from_catalog(cls, catalog: Catalog, kind: str, values: np.ndarray, allow_class2: bool = False) -> "PartTable":
-        rows = catalog.parts_for(kind, values, allow_class2=allow_class2)
+    def from_catalog(
+        cls, catalog: Catalog, kind: str, values: np.ndarray, allow_class2: bool = False, voltage_min: float = 0.0
+    ) -> "PartTable":
+        """The catalog's pick (Catalog.parts_for) for each of ``values`` (ohm or F)."""
+        rows = catalog.parts_for(kind, values, allow_class2=allow_class2, voltage_min=voltage_min)
         rating_key = "power_rating" if kind == "resistor" else "voltage_rating"
         return cls(
             values=np.asarray(values, dtype=float),
@@ -128,7 +131,9 @@ class SearchSpace:
             spec,
             catalog,
             PartTable.from_catalog(catalog, "resistor", r_values),
-            PartTable.from_catalog(catalog, "capacitor", c_values, p.allow_class2_coupling),
+            PartTable.from_catalog(
+                catalog, "capacitor", c_values, p.allow_class2_coupling, scoring.capacitor_rating_wanted(spec)
+            ),
             devices,
             prices,
             tuple(v.topology for v in verdicts),
