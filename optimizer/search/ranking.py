@@ -13,8 +13,8 @@ from optimizer import robustness
 from optimizer.catalog import load_catalog
 from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
 from optimizer.record import candidate_record, part_label, record_conditions
-from optimizer.scoring import MIDBAND_DEVIATION_MAX, binding_limit, pareto_mask
-from optimizer.search.space import SearchSpace
+from optimizer.scoring import CAPACITOR_VOLTAGE_DERATING, MIDBAND_DEVIATION_MAX, binding_limit, pareto_mask
+from optimizer.search.space import PartTable, SearchSpace
 from optimizer.spec import Spec
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import SUPPLY_PARTS
@@ -149,7 +149,31 @@ def jfet_hint(spec: Spec, limits: tuple[str, ...], record: dict | None) -> str:
     )
 
 
-def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
+def capacitor_rating_hint(limits: tuple[str, ...], record: dict | None, capacitors: PartTable | None) -> str:
+    """What a capacitor's voltage rating binding asks of the catalog: the part its value takes
+    is rated too low for the voltage across it, and a rating is no limit a spec relaxes ("" when
+    no capacitor's rating binds alone)."""
+    if record is None or capacitors is None or len(limits) != 1 or not limits[0].startswith("rating:v_c_"):
+        return ""
+    role = limits[0].removeprefix("rating:v_")
+    value = record["parts"].get(role, 0.0)
+    if value <= 0:
+        return ""
+    k = int(capacitors.index_of(np.array([value]))[0])
+    rated = capacitors.rating[k]
+    if not np.isfinite(rated) or rated <= 0:
+        return ""
+    derated = CAPACITOR_VOLTAGE_DERATING * float(rated)
+    seen = derated * (1.0 + record["violations"][limits[0]])  # the violation is (seen - derated) / derated
+    label = format_value(value, "F")
+    return (
+        f"; {role} ({label}) sees {seen:.3g} V and its part {capacitors.part_id[k]} is rated {float(rated):.3g} V, "
+        f"{derated:.3g} V at the {100 * CAPACITOR_VOLTAGE_DERATING:.0f} % derating: a {label} part rated "
+        f"{seen / CAPACITOR_VOLTAGE_DERATING:.3g} V or more in the catalog would give an answer"
+    )
+
+
+def relax_one_limit(spec: Spec, ranked: list[dict], capacitors: PartTable | None = None) -> dict:
     """Why a spec has no answer: the limit whose relaxation alone would give one.
 
     Among the evaluated designs, those that miss exactly one limit name it; the limit missed
@@ -158,8 +182,10 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
     missing a limit at nominal also misses the robustness limit; that one is named only
     when nothing else is missed. Where no design misses only one limit, the pair
     missed together by the smallest amount binds. Where a bipolar follower's input impedance binds
-    and the spec lists no JFET, the text names the catalog's JFETs (:func:`jfet_hint`). Returns {binding: [limits], reached: {limit:
-    value (SI) or None}, unit: {limit: unit}, text}."""
+    and the spec lists no JFET, the text names the catalog's JFETs (:func:`jfet_hint`); where a
+    capacitor's voltage rating binds alone, the rating its value's part would need
+    (:func:`capacitor_rating_hint`, given the search space's ``capacitors``). Returns {binding:
+    [limits], reached: {limit: value (SI) or None}, unit: {limit: unit}, text}."""
     best: dict[tuple[str, ...], tuple[float, dict]] = {}
     for r in ranked:
         missed = tuple(sorted(k for k in r["violations"] if k not in ROBUSTNESS_LIMITS)) or tuple(
@@ -211,8 +237,11 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
         ]
         facts = [f for f in facts if f]
         parts.append(f"{limit} ({'; '.join(facts)})" if facts else limit)
+    rating = capacitor_rating_hint(tuple(limits), record, capacitors)
     if not limits:
         text = "no design was evaluated"
+    elif rating:  # a part's rating, not a limit of the spec's to relax
+        text = f"no design meets every limit; {parts[0]} binds"
     elif len(limits) == 1:
         text = (
             f"no design meets every limit; {parts[0]} binds: relaxing it alone (with a margin for spread) "
@@ -220,7 +249,7 @@ def relax_one_limit(spec: Spec, ranked: list[dict]) -> dict:
         )
     else:
         text = f"no design meets every limit, and no single limit is to blame: {' and '.join(parts)} bind together"
-    text += jfet_hint(spec, tuple(limits), record)
+    text += jfet_hint(spec, tuple(limits), record) + rating
     return {"binding": list(limits), "reached": reached, "unit": units, "text": text}
 
 
