@@ -13,7 +13,8 @@ With ``swing=True`` (the bound the model's core is measured against) it adds the
 mid-band gain times the drive) by the same search on the same static equations: the stage's
 static transfer (the base loop with c_in and c_out holding their DC, the collector on
 r_collector || load, flattened at vce_sat) solved at +a and -a by 6 Newton steps from the
-quiescent Vbe, a scan at 0.8, 1.0 and 1.6 of the clip-level drive, then 3 Illinois
+quiescent Vbe (where Vce falls under 0.35 V but not under -1 V, again with the base-collector junction by 8 steps
+of 2-D Newton from the saturated stage's estimate, as physics.solve_junction's ``saturation``), a scan at 0.8, 1.0 and 1.6 of the clip-level drive, then 3 Illinois
 false-position steps on the peak deviation, in double precision as the model. Without it, the kernel is the
 bound for the core without the swing; bench_models.py reports both.
 
@@ -32,6 +33,10 @@ from optimizer.topologies.base import Conditions
 BLOCK = 16384  # candidates per block, as the model's core chunk
 NEWTON_STEPS = 8
 STATIC_STEPS = 6  # Newton steps per static solve of the swing search, from the quiescent Vbe
+SATURATION_ONSET = 0.35  # V: a static sample with Vce below this is solved with the base-collector junction too,
+SATURATION_DEEP = -1.0  # V: unless its one-junction Vce is below this (past the collector's floor either way)
+SATURATED_VCE = 0.15  # V: the Vce of that solve's estimated start
+SATURATED_STEPS = 8  # its 2-D Newton steps
 SCAN = (0.8, 1.0, 1.6)  # multiples of the clip-level drive scanned first
 FALSE_POSITION_STEPS = 3
 TOLERANCE = 0.1  # both peaks within 10 % of the linear gain times the drive
@@ -118,6 +123,10 @@ def _block(p: dict[str, np.ndarray], d: Device, c: Conditions, swing: bool) -> d
     c0, c_ib, c_ic = col(1.0 + k * (v_c + ic * r_ac)), col(re * k / beta), col((r_ac + re) * k)
     k_a, re_c, r_ac_c, vbe_q, ic_q = col(k_a), col(re), col(r_ac), col(v), col(ic)
 
+    vcb0, vcb_ic = col(v_c + ic * r_ac), col(r_ac + re)
+    r_base = col(rth * rs / (rs + rth) + d.RB)
+    v_critical = nvt * math.log(nvt / (math.sqrt(2.0) * i_s))
+
     def transfer(vs: np.ndarray) -> np.ndarray:
         """Change of the load voltage (V) at source voltages vs (V, (candidates, drives))."""
         a = a0 + k_a * vs
@@ -128,7 +137,44 @@ def _block(p: dict[str, np.ndarray], d: Device, c: Conditions, swing: bool) -> d
             x = x + np.clip((a - x - f * t) / (1.0 + (f + i_s) / nvt * t), -0.1, 0.1)
         f = i_s * np.expm1(x / nvt)
         i_c = f * (c0 - c_ib * f - k * x) / (1.0 + c_ic * f)
-        return np.maximum(-(i_c - ic_q) * r_ac_c, re_c * (i_c + f / beta) + d.vce_sat - col(v_c))
+        i_b = f / beta
+        # Vce under SATURATION_ONSET: the base-collector junction too, by 2-D Newton in (Vbe, Vbc) from
+        # the saturated stage at Vce SATURATED_VCE (Ic = If - 2 Ir, Ib = If/BF + Ir, BR = 1)
+        vce = vcb0 - vcb_ic * i_c - re_c * i_b  # Vcb + Vbe
+        soft = (vce < SATURATION_ONSET) & (vce > SATURATION_DEEP)
+        if soft.any():
+            rows = np.nonzero(soft)[0]
+            aa, rb_, re_, c0_, cic, v1 = (
+                a[soft],
+                r_base[rows, 0],
+                re_c[rows, 0],
+                vcb0[rows, 0],
+                vcb_ic[rows, 0],
+                x[soft],
+            )
+            p_c, q_b = c0_ - SATURATED_VCE, aa - v1  # the collector loop at Vce SATURATED_VCE, the base loop
+            det = cic * (rb_ + re_) - re_ * re_
+            ic_s = (p_c * (rb_ + re_) - re_ * q_b) / det
+            ir_s = ((cic * q_b - re_ * p_c) / det - ic_s / beta) / (1.0 + 2.0 / beta)
+            fits = (ir_s > 0) & (ic_s + 2.0 * ir_s > 0)
+            v = np.where(fits, nvt * np.log1p(np.where(fits, ic_s + 2.0 * ir_s, 0.0) / i_s), v1)
+            u = np.minimum(np.where(fits, nvt * np.log1p(np.where(fits, ir_s, 0.0) / i_s), v1 - vce[soft]), v_critical)
+            for _ in range(SATURATED_STEPS):
+                ff, fr = i_s * np.expm1(v / nvt), i_s * np.expm1(u / nvt)
+                g, gr, e = (ff + i_s) / nvt, (fr + i_s) / nvt, 1.0 - u * k
+                icc, ibb = (ff - fr) * e - fr, ff / beta + fr
+                r1 = aa - v - rb_ * ibb - re_ * (icc + ibb)
+                r2 = u + c0_ - cic * icc - re_ * ibb - v
+                dic_v, dic_u, dib_v = g * e, -gr * (e + 1.0) - (ff - fr) * k, g / beta
+                j11, j12 = -1.0 - rb_ * dib_v - re_ * (dic_v + dib_v), -rb_ * gr - re_ * (dic_u + gr)
+                j21, j22 = -cic * dic_v - re_ * dib_v - 1.0, 1.0 - cic * dic_u - re_ * gr
+                det = j11 * j22 - j12 * j21
+                v = v + np.clip((-r1 * j22 + r2 * j12) / det, -0.5, 0.1)
+                u = u + np.clip((-r2 * j11 + r1 * j21) / det, -0.5, np.maximum(0.1, v_critical - u))
+            ff, fr = i_s * np.expm1(v / nvt), i_s * np.expm1(u / nvt)
+            i_c, i_b = i_c.copy(), i_b.copy()
+            i_c[soft], i_b[soft] = (ff - fr) * (1.0 - u * k) - fr, ff / beta + fr
+        return np.maximum(-(i_c - ic_q) * r_ac_c, re_c * (i_c + i_b) + d.vce_sat - col(v_c))
 
     g = gain[:, None]
 

@@ -206,6 +206,7 @@ class CEFollower(StageModel):
                 v_start=op["vbe"],
                 iterations=physics.THD_ITERATIONS,
                 currents_only=True,
+                saturation=True,
                 **kw,
             )
             v_e1 = re * (q1["ic"] + q1["ib"])

@@ -220,6 +220,7 @@ class DividerCE(StageModel):
                 v_start=op["vbe"],
                 iterations=physics.THD_ITERATIONS,
                 currents_only=True,
+                saturation=True,
             )
             return np.maximum((ic_q - q["ic"]) * r_ac, re * (q["ic"] + q["ib"]) + floor)  # v_c - vc_q
 

@@ -192,6 +192,7 @@ class FeedbackCE(StageModel):
                 v_start=op["vbe"],
                 iterations=physics.THD_ITERATIONS,
                 currents_only=True,
+                saturation=True,
                 **kw,
             )
             ie = q["ic"] + q["ib"]
