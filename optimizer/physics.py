@@ -188,15 +188,13 @@ def solve_junction(
                 lead = len(shape) - x.ndim
                 return x[tuple(c if n > 1 else 0 for c, n in zip(coords[lead:], x.shape))]
 
-            loop = tuple(at(x) for x in (a, r_base, r_emit, vcb0, vcb_ic, vcb_ib, vcb_vbe, beta))
-            i_s_at, nvt_at = at(i_s), at(nvt)
             sat = _saturated_base_loop(
-                *loop,
-                i_s=i_s_at,
-                nvt=nvt_at,
+                *(at(x) for x in (a, r_base, r_emit, vcb0, vcb_ic, vcb_ib, vcb_vbe, beta)),
+                i_s=at(i_s),
+                nvt=at(nvt),
                 inv_vaf=at(inv_vaf),
                 v_start=vbe.reshape(-1)[soft],
-                w_start=vbe.reshape(-1)[soft] - (vcb + vbe).reshape(-1)[soft],
+                w_start=-vcb.reshape(-1)[soft],  # Vbc
                 estimate=True,
             )
             for x, y in zip((vbe, e, ic, ib, vcb), sat):
@@ -244,7 +242,7 @@ def _saturated_base_loop(
     from (v_start, w_start) (with ``estimate``, from the saturated stage at Vce SATURATED_VCE
     where the two loops give it a positive Ir: some 5 steps instead of 10), w starting no higher
     than the junction's critical voltage (where its current turns steep) and rising by at most
-    MAX_STEP above it. An element whose steps fall
+    MAX_STEP above it, either falling by at most 5 MAX_STEP a step. An element whose steps fall
     below 1e-12 V is not moved again (once few are left they go on alone, as in
     feedback_pair.solve_pair). The arguments are 1-D over elements, or scalars. Returns vbe, If,
     Ic, Ib and Vcb (V, A)."""
@@ -265,7 +263,7 @@ def _saturated_base_loop(
     v, w = v_start.astype(float), np.minimum(w_start, v_critical)
     moving = np.ones(v.shape, dtype=bool)
     inv_nvt, r_be = 1.0 / nvt, r_base + r_emit
-    floor_w, ceil_v = -5.0 * MAX_STEP, MAX_STEP
+    step_down = -5.0 * MAX_STEP  # V, the largest fall of either junction's voltage in one step
     for step in range(iterations):
         f, fr = np.expm1(v * inv_nvt), np.expm1(w * inv_nvt)
         f *= i_s
@@ -282,10 +280,10 @@ def _saturated_base_loop(
         j21 = -vcb_ic * dic_v - vcb_ib * dib_v - vcb_vbe
         j22 = 1.0 - vcb_ic * dic_w - vcb_ib * gr
         det = j11 * j22 - j12 * j21
-        dv = np.where(moving, np.minimum(np.maximum((r2 * j12 - r1 * j22) / det, floor_w), ceil_v), 0.0)
+        dv = np.where(moving, np.minimum(np.maximum((r2 * j12 - r1 * j22) / det, step_down), MAX_STEP), 0.0)
         dw = np.where(
             moving,
-            np.minimum(np.maximum((r1 * j21 - r2 * j11) / det, floor_w), np.maximum(MAX_STEP, v_critical - w)),
+            np.minimum(np.maximum((r1 * j21 - r2 * j11) / det, step_down), np.maximum(MAX_STEP, v_critical - w)),
             0.0,
         )
         v, w = v + dv, w + dw
