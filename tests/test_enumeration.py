@@ -8,9 +8,9 @@ import itertools
 import numpy as np
 
 from optimizer.exhaustive import exhaustive
-from optimizer.search import SearchSpace, evaluate_group, search
+from optimizer.search import SearchSpace, evaluate_group, search, with_search
 from optimizer.search.enumeration import BOUND_SEEDS, ENUMERATED_PER_TRIAL, Enumeration, bound_seeds
-from optimizer.spec import load_spec, parse_spec
+from optimizer.spec import load_spec
 
 PAIR_SPLIT = "benchmarks/specs/bs_e3_feedback_pair_split.yaml"  # 6**6 = 46,656 combinations
 ISLAND = "benchmarks/specs/bs_e3_feedback_pair.yaml"  # optimum no one- or two-step move reaches
@@ -58,20 +58,8 @@ def test_a_space_too_large_for_the_budget_gets_no_bound_seeds() -> None:
 
 
 def test_searched_capacitors_leave_the_space_to_the_search() -> None:
-    spec = load_spec(PAIR_SPLIT)
-    data = {
-        "name": spec.name,
-        "supply": "+-12 V",
-        "gain": {"target": 10, "tolerance": "1.5 dB"},
-        "source_impedance": "1k",
-        "load_impedance": "47k",
-        "band": ["20 Hz", "20 kHz"],
-        "topologies": ["feedback_pair"],
-        "devices": ["SF-N1"],
-        "parts": {"resistor_series": "E3", "resistor_range": ["2.2k", "100k"], "capacitor_series": "E3"},
-        "search": {"trials": 2000, "capacitors": "searched"},
-    }
-    assert bound_seeds(SearchSpace.build(parse_spec(data)), budget=2000) == []
+    spec = with_search(load_spec(PAIR_SPLIT), capacitors="searched")
+    assert bound_seeds(SearchSpace.build(spec), budget=2000) == []
 
 
 def test_a_short_search_finds_an_optimum_that_stands_apart() -> None:
