@@ -27,6 +27,11 @@ sampling them independently:
   front along ridges that single steps leave: in the split-emitter stage the swing peaks
   where r_emitter_dc centres the bias, and that peak moves three or four steps of
   r_emitter_dc for each step of the divider, through designs just behind the front;
+- once the best design has stood for STALLED trials, it is swept wider, once: each pair of
+  indices with one stepped +-1 and the other UNEVEN_STEPS the other way. A step of a bias
+  divider moves the current by several steps' worth of the collector resistor, so the design
+  that keeps the bias point after it is several steps away, and where the feasible designs
+  form a thin band (gain on one side, swing on the other) every one-step neighbour of it fails;
 - designs already proposed are not proposed again while an untried neighbour is found.
 
 Before any design is finished it samples at random; enqueued seeds are taken as given.
@@ -69,6 +74,8 @@ P_COUPLED = 0.5  # share of multi-parameter moves that step every chosen index b
 P_QUEUED = 0.5  # share of proposals taken from the queue of incumbents' neighbours while it lasts
 SWEEP_SAME_SIGN = 3  # a sweep steps every group of up to this many indices together (and all of them)
 NEAR_FRONT = 0.03  # designs missing the front by less than this share of its span per objective are swept too
+STALLED = 800  # trials the best design stands before it is swept wider (_sweep_wide)
+UNEVEN_STEPS = (2, 3, 4)  # the wide sweep's longer step of a pair (the other index steps 1 the other way)
 
 
 class NeighbourSampler(BaseSampler):
@@ -103,6 +110,9 @@ class NeighbourSampler(BaseSampler):
         self._low = 0  # every trial numbered below is finished and folded in (or not complete)
         self._counted: set[int] = set()  # completed trials numbered _low and up, folded in already
         self._swept: set[frozenset] = set()
+        self._swept_wide: set[frozenset] = set()
+        self._best_key: frozenset | None = None  # the best design's key, and the trial number it was first best at
+        self._best_since = 0
         self._shapes: dict[tuple[str, ...], _Shape] = {}
         self._shapes_of: dict[int, tuple[dict[str, BaseDistribution], _Shape]] = {}  # by id of a group's space
         self._groups: dict[int, tuple[str, ...]] = {}  # a finished trial's group (parameter names), by trial id
@@ -166,6 +176,8 @@ class NeighbourSampler(BaseSampler):
         if number >= self._next_refresh:
             self._refresh(study)
             self._next_refresh = number + REFRESH_EVERY
+            if self._elite:
+                self._watch_best(number)
         return self._propose() if self._elite else {}
 
     # ---- the elite and the front ---------------------------------------------------------
@@ -235,14 +247,42 @@ class NeighbourSampler(BaseSampler):
         if key in self._swept:
             return
         self._swept.add(key)
-        ints = [(n, d) for n, d in self._group_params(params).items() if isinstance(d, IntDistribution)]
-        names = [n for n, _ in ints]
-        bounds = dict(ints)
+        names = list(self._steppable(params))
         groups = [g for size in range(1, SWEEP_SAME_SIGN + 1) for g in itertools.combinations(names, size)]
         if len(names) > SWEEP_SAME_SIGN:
             groups.append(tuple(names))
         moves = [{n: s for n in group} for group in groups for s in (-1, 1)]
         moves += [{a: s, b: -s} for a, b in itertools.combinations(names, 2) for s in (-1, 1)]
+        self._queue_moves(params, moves)
+
+    def _watch_best(self, number: int) -> None:
+        """Note when the best design changes; once it has stood for STALLED trials (at trial
+        ``number``), sweep it wider."""
+        best = self._key(self._elite[0].params)
+        if best != self._best_key:
+            self._best_key, self._best_since = best, number
+        elif number - self._best_since >= STALLED:
+            self._sweep_wide(dict(self._elite[0].params))
+
+    def _sweep_wide(self, params: dict[str, Any]) -> None:
+        """Queue, once per centre and ahead of the queue, every untried design with one index
+        of ``params`` stepped +-1 and another UNEVEN_STEPS the other way (each ordered pair)."""
+        key = self._key(params)
+        if key in self._swept_wide:
+            return
+        self._swept_wide.add(key)
+        names = self._steppable(params)
+        moves = [{a: s, b: -s * k} for a, b in itertools.permutations(names, 2) for s in (-1, 1) for k in UNEVEN_STEPS]
+        self._queue_moves(params, moves)
+
+    def _steppable(self, params: dict[str, Any]) -> dict[str, IntDistribution]:
+        """The ordered-index parameters of ``params``'s group, with their ranges."""
+        return {n: d for n, d in self._group_params(params).items() if isinstance(d, IntDistribution)}
+
+    def _queue_moves(self, params: dict[str, Any], moves: list[dict[str, int]]) -> None:
+        """Queue ahead of the others the designs ``params`` + each move (index steps) that stay
+        in range and are untried, in the moves' order."""
+        bounds = self._steppable(params)
         queued = []
         for move in moves:
             neighbour = {**params, **{n: params.get(n, bounds[n].low) + step for n, step in move.items()}}

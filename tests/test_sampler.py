@@ -5,6 +5,7 @@ its budget and its parameter ranges. Expected sets are written out here by brute
 from __future__ import annotations
 
 import itertools
+from collections.abc import Iterable
 from pathlib import Path
 
 import numpy as np
@@ -13,7 +14,7 @@ import pytest
 from optuna.distributions import IntDistribution
 from optuna.trial import TrialState
 
-from optimizer.sampler import NEAR_FRONT, NeighbourSampler
+from optimizer.sampler import NEAR_FRONT, STALLED, UNEVEN_STEPS, NeighbourSampler
 from optimizer.search import SearchSpace, create_search, run_search, study as study_module, with_search
 from optimizer.spec import load_spec
 from optimizer.storage import open_storage
@@ -26,30 +27,39 @@ def _sampler(directions: list[str] | None = None) -> NeighbourSampler:
     return NeighbourSampler(lambda t: (0,), directions or ["minimise", "maximise"], lambda p: DISTRIBUTIONS, seed=0)
 
 
+def _designs_at(centre: dict[str, int], tried: set[tuple[int, ...]], deltas: Iterable[tuple[int, ...]]) -> set:
+    """The designs ``centre`` + each delta that lie inside 0..5 and are not tried."""
+    points = (tuple(v + d for v, d in zip(centre.values(), delta)) for delta in deltas)
+    return {p for p in points if all(0 <= v <= 5 for v in p) and p not in tried}
+
+
+def _one_step(delta: tuple[int, ...]) -> bool:
+    """One step (+-1) along: up to three indices moved the same way, all four moved the same way,
+    or two moved opposite ways."""
+    moved = [d for d in delta if d]
+    return bool(moved) and (len(set(moved)) == 1 or len(moved) == 2)
+
+
 def _expected_neighbours(centre: dict[str, int], tried: set[tuple[int, ...]]) -> set[tuple[int, ...]]:
-    """Every design one step (+-1) away along: up to three indices moved the same way, all four
-    moved the same way, or two moved opposite ways; inside 0..5 and not tried."""
-    out = set()
-    for delta in itertools.product((-1, 0, 1), repeat=4):
-        moved = [d for d in delta if d]
-        same = len(set(moved)) == 1
-        if not moved or not (same or len(moved) == 2):
-            continue
-        point = tuple(v + d for v, d in zip(centre.values(), delta))
-        if all(0 <= v <= 5 for v in point) and point not in tried:
-            out.add(point)
-    return out
+    return _designs_at(centre, tried, filter(_one_step, itertools.product((-1, 0, 1), repeat=4)))
+
+
+def _swept(sweep: str, centre: dict[str, int], tried: set[tuple[int, ...]]) -> tuple[NeighbourSampler, list]:
+    """A new sampler that has tried ``tried`` and run its ``sweep`` of ``centre``: it, and the
+    designs queued (tuples in DISTRIBUTIONS' order; none twice)."""
+    sampler = _sampler()
+    for point in tried:
+        sampler._seen.add(sampler._key(dict(zip(DISTRIBUTIONS, point))))
+    getattr(sampler, sweep)(centre)
+    queued = [tuple(q[n] for n in DISTRIBUTIONS) for q in sampler._queue]
+    assert len(queued) == len(set(queued))
+    return sampler, queued
 
 
 def test_a_sweep_queues_each_untried_neighbour_in_bounds_once_newest_centre_first() -> None:
-    sampler = _sampler()
     centre = {"r_a": 0, "r_b": 3, "r_c": 5, "r_d": 2}  # at both ends of the range on two indices
     tried = {(0, 4, 5, 2), (1, 2, 4, 3)}  # one single step and one mixed step already tried
-    for point in tried:
-        sampler._seen.add(sampler._key(dict(zip(DISTRIBUTIONS, point))))
-    sampler._sweep(centre)
-    queued = [tuple(q[n] for n in DISTRIBUTIONS) for q in sampler._queue]
-    assert len(queued) == len(set(queued))
+    sampler, queued = _swept("_sweep", centre, tried)
     assert set(queued) == _expected_neighbours(centre, tried)
     sampler._sweep(dict(centre))  # a centre is swept once
     assert len(sampler._queue) == len(queued)
@@ -58,6 +68,47 @@ def test_a_sweep_queues_each_untried_neighbour_in_bounds_once_newest_centre_firs
     ahead = [tuple(q[n] for n in DISTRIBUTIONS) for q in sampler._queue[: len(sampler._queue) - len(queued)]]
     assert set(ahead) == _expected_neighbours(other, set())
     assert sampler._queue[len(ahead) :] == [dict(zip(DISTRIBUTIONS, p)) for p in queued]
+
+
+def _uneven_pair(delta: tuple[int, ...]) -> bool:
+    """Exactly two indices moved, opposite ways, one by 1 and the other by 2 to 4."""
+    moved = sorted((abs(d), d) for d in delta if d)
+    return len(moved) == 2 and moved[0][0] == 1 and 2 <= moved[1][0] <= 4 and moved[0][1] * moved[1][1] < 0
+
+
+def _expected_wide(centre: dict[str, int], tried: set[tuple[int, ...]]) -> set[tuple[int, ...]]:
+    return _designs_at(centre, tried, filter(_uneven_pair, itertools.product(range(-4, 5), repeat=4)))
+
+
+def test_a_wide_sweep_queues_the_uneven_pairs_once() -> None:
+    assert UNEVEN_STEPS == (2, 3, 4)  # as _expected_wide writes them out
+    centre = {"r_a": 1, "r_b": 3, "r_c": 5, "r_d": 0}
+    tried = {(2, 0, 5, 0), (1, 4, 1, 0)}  # (+1, -3) on r_a, r_b; (+1, -4) on r_b, r_c
+    sampler, queued = _swept("_sweep_wide", centre, tried)
+    assert set(queued) == _expected_wide(centre, tried)
+    sampler._sweep_wide(dict(centre))
+    assert len(sampler._queue) == len(queued)
+
+
+def test_the_best_design_is_swept_wide_once_it_has_stood_for_the_stall() -> None:
+    sampler = _sampler()
+    best = optuna.trial.create_trial(
+        values=[1.0, 1.0], params={"r_a": 2, "r_b": 2, "r_c": 2, "r_d": 2}, distributions=DISTRIBUTIONS
+    )
+    sampler._elite = [best]
+    sampler._watch_best(100)
+    sampler._watch_best(100 + STALLED - 1)
+    assert sampler._queue == []
+    sampler._watch_best(100 + STALLED)
+    assert {tuple(q[n] for n in DISTRIBUTIONS) for q in sampler._queue} == _expected_wide(best.params, set())
+    newer = optuna.trial.create_trial(
+        values=[2.0, 2.0], params={"r_a": 3, "r_b": 2, "r_c": 2, "r_d": 2}, distributions=DISTRIBUTIONS
+    )
+    sampler._queue.clear()
+    sampler._elite = [newer]  # a new best design starts its own count
+    sampler._watch_best(100 + STALLED + 8)
+    sampler._watch_best(100 + 2 * STALLED)
+    assert sampler._queue == []
 
 
 def _trial(values: list[float]) -> optuna.trial.FrozenTrial:
