@@ -777,6 +777,13 @@ def main() -> None:
         help="only these benchmark specs: the oracle and our search over 10 seeds, no baselines; "
         "appends a section to results/search_topologies.md",
     )
+    parser.add_argument(
+        "--table",
+        nargs="+",
+        metavar="SPEC",
+        help="the full run (baselines, timings, profile, memory) over these benchmark specs only; "
+        "written to --out if given, else printed only (results/search.md keeps its other sections)",
+    )
     args = parser.parse_args()
     if args.memory_child:
         memory_child(args.memory_child, args.trials)
@@ -795,6 +802,11 @@ def main() -> None:
         seeds, journal_seeds, default_seeds, random_seeds, budget = 3, 1, 3, 3, QUICK_TRIALS
     else:
         seeds, journal_seeds, default_seeds, random_seeds, budget = SEEDS, 3, 3, 5, None
+    if args.table:
+        unknown = sorted(set(args.table) - {p.stem for p in paths})
+        if unknown:
+            parser.error(f"--table: no benchmark spec {', '.join(unknown)} in {SPECS}")
+        paths = [p for p in paths if p.stem in args.table]
     results = []
     with tempfile.TemporaryDirectory(prefix="bench-search-") as tmp:
         for path in paths:
@@ -805,7 +817,7 @@ def main() -> None:
     oracle_big = None if args.quick else oracle_alone()
     text = report(results, oracle_big, memory, profile, seeds, facts)
     print("\n" + text)
-    out = args.out or (None if args.quick or args.only else RESULTS)
+    out = args.out or (None if args.quick or args.table else RESULTS)
     if out:
         out.parent.mkdir(parents=True, exist_ok=True)
         out.write_text(text)
