@@ -796,17 +796,17 @@ def main() -> None:
         return
     facts = RunFacts.start()
     paths = sorted(SPECS.glob("*.yaml"))
-    args.quick = args.quick or bench_mode() == "quick"
-    if args.quick:
-        paths = [p for p in paths if p.stem in QUICK_SPECS]
-        seeds, journal_seeds, default_seeds, random_seeds, budget = 3, 1, 3, 3, QUICK_TRIALS
-    else:
-        seeds, journal_seeds, default_seeds, random_seeds, budget = SEEDS, 3, 3, 5, None
-    if args.table:
+    if args.table:  # these specs, in either mode (--quick otherwise runs QUICK_SPECS)
         unknown = sorted(set(args.table) - {p.stem for p in paths})
         if unknown:
             parser.error(f"--table: no benchmark spec {', '.join(unknown)} in {SPECS}")
         paths = [p for p in paths if p.stem in args.table]
+    args.quick = args.quick or bench_mode() == "quick"
+    if args.quick:
+        paths = paths if args.table else [p for p in paths if p.stem in QUICK_SPECS]
+        seeds, journal_seeds, default_seeds, random_seeds, budget = 3, 1, 3, 3, QUICK_TRIALS
+    else:
+        seeds, journal_seeds, default_seeds, random_seeds, budget = SEEDS, 3, 3, 5, None
     results = []
     with tempfile.TemporaryDirectory(prefix="bench-search-") as tmp:
         for path in paths:
