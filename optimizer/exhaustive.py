@@ -5,9 +5,10 @@ judged by the very same evaluation and score as the search (``search.evaluate_gr
 Vectorised and chunked. Capacitor sizing needs the full model and is the costly step, so
 the enumeration is a branch and bound that stays exact:
 
-1. every combination gets the fast core metrics (bias, gain, impedances, swing, current,
-   ratings) and an optimistic score: the limits that need the full model (band corners,
-   noise) counted as met, the capacitors as the cheapest allowed and adding no new value,
+1. every combination gets the fast core metrics (bias, gain, impedances, current, ratings,
+   and the usable swing, the costliest, only where the score could pass the pass's threshold
+   whatever the swing: ``evaluate_group(swing_above=...)``) and an optimistic score: the limits that need the full
+   model (band corners, noise) counted as met, the capacitors as the cheapest allowed and adding no new value,
    and any objective the core cannot give (noise) as ideal. The capacitors can only lower
    the score, so this bounds it from above (and the core violation bounds the total
    violation from below);
@@ -82,10 +83,11 @@ def exhaustive(
     def bounds(prune: bool, threshold: float, limit: int | None) -> tuple[np.ndarray, np.ndarray, int]:
         """One streaming pass of the core model: the combinations whose optimistic score
         exceeds ``threshold``, at most ``limit`` of them (the best), and the count meeting
-        every core limit."""
+        every core limit. The swing is solved only where the score could pass ``threshold``."""
         kept, optimistic, feasible = np.zeros((0, len(roles)), dtype=int), np.zeros(0), 0
         for idx in Enumeration(space, topology, prune).chunks(CHUNK):
-            g = evaluate_group(space, topology, device, {r: idx[:, j] for j, r in enumerate(roles)}, full=False)
+            parts = {r: idx[:, j] for j, r in enumerate(roles)}
+            g = evaluate_group(space, topology, device, parts, full=False, swing_above=threshold)
             feasible += int((g["total"] == 0).sum())
             keep = g["score"] > threshold
             kept, optimistic = np.concatenate([kept, idx[keep]]), np.concatenate([optimistic, g["score"][keep]])

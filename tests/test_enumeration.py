@@ -6,6 +6,7 @@ from __future__ import annotations
 import itertools
 
 import numpy as np
+import pytest
 
 from optimizer.exhaustive import exhaustive
 from optimizer.search import SearchSpace, evaluate_group, search, with_search
@@ -28,6 +29,24 @@ def test_the_pruned_enumeration_keeps_every_combination_that_can_reach_the_gain(
     g = evaluate_group(space, "feedback_pair", space.spec.devices[0], dict(zip(whole.roles, every.T)), full=False)
     left_out = np.array([tuple(r) not in kept for r in every])
     assert not np.any(g["violations"]["gain"][left_out] == 0)  # none left out meets the gain window
+
+
+@pytest.mark.parametrize("threshold", [0.0, -0.5])
+def test_the_swing_solved_only_where_the_score_could_pass_keeps_every_design_above_the_same(threshold: float) -> None:
+    # reference: the same combinations scored with the swing solved everywhere
+    space = SearchSpace.build(load_spec(ISLAND))
+    whole_space = Enumeration(space, "feedback_pair", prune=False)
+    index = dict(zip(whole_space.roles, np.concatenate(list(whole_space.chunks(100_000))).T))
+    whole = evaluate_group(space, "feedback_pair", "SF-N1", index, full=False)
+    lazy = evaluate_group(space, "feedback_pair", "SF-N1", index, full=False, swing_above=threshold)
+    above = whole["score"] > threshold
+    assert 0 < above.sum() < above.size and np.array_equal(lazy["score"] > threshold, above)
+    np.testing.assert_array_equal(lazy["score"][above], whole["score"][above])
+    np.testing.assert_array_equal(lazy["total"] == 0, whole["total"] == 0)
+    others = sum(v for k, v in whole["violations"].items() if k != "swing_min")
+    solved = ~np.isnan(lazy["metrics"]["swing_vpp"])  # where the other limits leave the score room to pass
+    assert np.array_equal(solved, (others == 0) | (-others > threshold)) and solved.sum() < solved.size
+    np.testing.assert_array_equal(lazy["metrics"]["swing_vpp"][solved], whole["metrics"]["swing_vpp"][solved])
 
 
 def test_bound_seeds_are_the_best_of_the_whole_space_by_the_core_score() -> None:

@@ -9,7 +9,7 @@ from collections.abc import Sequence
 import numpy as np
 
 from optimizer import robustness, scoring
-from optimizer.devices import stack_devices, stack_key
+from optimizer.devices import device_rows, stack_devices, stack_key
 from optimizer.scoring import unique_values_array
 from optimizer.search.space import ABSENT, ABSENT_RATING, Design, SearchSpace
 from optimizer.sizing import size_capacitors, size_decoupling
@@ -38,6 +38,7 @@ def evaluate_group(
     *,
     full: bool = True,
     robust: bool | None = None,
+    swing_above: float | None = None,
 ) -> dict:
     """Metrics, violations, score and objective values of designs of one topology, given as
     part indices by role (arrays; ABSENT = optional part left out), with one device
@@ -54,7 +55,14 @@ def evaluate_group(
     ``robust`` (default: with ``full``) adds the spec's robustness screen
     (robustness.judge on the core metrics with SCREEN_BUILDS builds, or every corner), the
     bias spread (``ic_spread``) and the screened ``yield``; the screen only adds violations,
-    so leaving it out keeps the bound optimistic."""
+    so leaving it out keeps the bound optimistic.
+
+    ``swing_above`` (a score) solves the usable swing (the costliest core figure) only for the
+    designs whose score could exceed it whatever their swing: the spec bounds the swing from
+    below only, so a design whose other violations already sum past -``swing_above`` (or, for
+    ``swing_above`` >= 0, miss any limit) scores at most that. Those get no swing figure and a
+    total violation of inf: for a caller that keeps only the designs scoring above it (the
+    oracle's passes)."""
     robust = full if robust is None else robust
     spec, topology = space.spec, get_topology(topology_name)
     ids = [device_id] if isinstance(device_id, str) else list(dict.fromkeys(device_id))
@@ -105,7 +113,7 @@ def evaluate_group(
     cap_present = {c: v > 0 for c, v in caps.items()}
     cap_index = {c: ct.index_of(np.where(cap_present[c], v, ct.values[0])) for c, v in caps.items()}
     parts = {**resistors, **caps}
-    result = topology.evaluate(parts, device, conditions, full=full)
+    result = topology.evaluate(parts, device, conditions, full=full, swing=swing_above is None)
 
     limits = scoring.rating_limits(
         spec,
@@ -121,9 +129,22 @@ def evaluate_group(
         metrics.update({k: np.full(n, v) for k, v in FULL_ONLY_OPTIMISTIC.items()})
     op = result.operating_point
     headroom = topology.headroom(op, device.vce_sat)
-    nominal = scoring.limit_violations(
-        spec, metrics, result.ratings, limits, op["active"], core_only=not full, vce_headroom=headroom
-    )
+
+    def judge(figures: dict[str, np.ndarray]) -> dict[str, np.ndarray]:
+        return scoring.limit_violations(
+            spec, figures, result.ratings, limits, op["active"], core_only=not full, vce_headroom=headroom
+        )
+
+    unsolved = np.zeros(n, dtype=bool)
+    if swing_above is not None:
+        others = scoring.total_violation(judge({**metrics, "swing_vpp": np.full(n, np.inf)}))
+        unsolved = (others > 0) & (-others <= swing_above)  # NaN: solved
+        rows = np.flatnonzero(~unsolved)
+        if rows.size:
+            metrics["swing_vpp"][rows] = topology.evaluate(
+                {k: v[rows] for k, v in parts.items()}, device_rows(device, rows), conditions, full=full
+            ).metrics["swing_vpp"]
+    nominal = judge(metrics)
     violations = dict(nominal)
     metrics["yield"], metrics["ic_spread"] = np.full(n, np.nan), np.full(n, np.nan)
     near = (
@@ -157,7 +178,7 @@ def evaluate_group(
             violations.setdefault(k, np.zeros(n))[rows] = v
         metrics["yield"][rows] = judged.yield_fraction
         metrics["ic_spread"][rows] = judged.spread["ic_spread"]
-    total = np.nan_to_num(scoring.total_violation(violations), nan=1e6)
+    total = np.where(unsolved, np.inf, np.nan_to_num(scoring.total_violation(violations), nan=1e6))
 
     metrics["gain_error_db"] = scoring.gain_error_db(spec, metrics["gain"])
     cap_prices = (
