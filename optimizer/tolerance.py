@@ -254,7 +254,9 @@ def worst_case(
     JFET's lowest and highest IDSS/VP), temperature and supply at
     both ends (a split supply's rails each at both ends: four supply corners). Arrays over candidates. Metrics NaN at a corner (a stage that is not active)
     are left out of that corner's range; 'active_all' (bool) says whether every corner is active."""
-    roles = tuple(parts) if roles is None else roles
+    # a part that is 0 in every candidate (a direct-coupled input's c_in) has no tolerance to
+    # spread: its corners would repeat the others
+    roles = tuple(r for r in (tuple(parts) if roles is None else roles) if np.any(np.asarray(parts[r]) != 0))
     n = np.asarray(next(iter(parts.values()))).shape[0]
     # The usable swing (the costliest figure) does not see the capacitors' values in a stage
     # whose core does not (Topology.core_is_bound): there it is solved on the corners of the

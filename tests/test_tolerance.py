@@ -77,6 +77,26 @@ def test_stacked_corners_match_one_call_per_corner(parts: dict, conditions: Cond
         np.testing.assert_allclose(stacked[metric][1], plain[metric][1], rtol=1e-12, err_msg=metric)
 
 
+def test_a_part_absent_from_every_candidate_adds_no_corners(monkeypatch) -> None:
+    """SPLIT's r_top is 0 in both designs (absent): its tolerance corners would repeat the others,
+    so the stacked calls leave it out, with the same figures as one call per corner over it."""
+    import optimizer.tolerance as tolerance
+
+    parts, conditions, supply_range = SPLIT
+    topology = get_topology("divider_ce")
+    tolerances = {"r_top": 0.05, "r_bottom": 0.01, "r_collector": 0.05, "r_emitter": 0.01, "c_in": 0.2, "c_out": 0.1}
+    roles = ("r_top", "r_bottom", "c_in")
+    spread: list[tuple[str, ...]] = []
+    corner_result = tolerance._corner_result
+    monkeypatch.setattr(tolerance, "_corner_result", lambda *a, **k: spread.append(a[8]) or corner_result(*a, **k))
+    stacked = worst_case(topology, parts, DEVICE, conditions, tolerances, (0.0, 50.0), supply_range, roles=roles)
+    assert spread and all("r_top" not in r and "r_bottom" in r for r in spread)
+    plain = corner_by_corner(topology, parts, roles, tolerances, conditions, (0.0, 50.0), supply_range)
+    for metric in METRICS:
+        np.testing.assert_allclose(stacked[metric][0], plain[metric][0], rtol=1e-12, err_msg=metric)
+        np.testing.assert_allclose(stacked[metric][1], plain[metric][1], rtol=1e-12, err_msg=metric)
+
+
 @pytest.mark.parametrize("parts, conditions, supply_range", [SINGLE, SPLIT], ids=["single", "split"])
 def test_builds_without_the_noise_pass_keep_every_other_figure(
     parts: dict, conditions: Conditions, supply_range
