@@ -716,11 +716,17 @@ TOPOLOGY_RESULTS = ROOT / "benchmarks" / "results" / "search_topologies.md"
 
 def only(names: list[str]) -> None:
     """The oracle and our search (SEEDS seeds, in memory) on the named benchmark specs; each
-    spec's figures replace its section of results/search_topologies.md."""
-    sections = {}
+    spec's figures replace its section of results/search_topologies.md (the notes written below
+    a section's table, and above the first section, are kept)."""
+    sections, notes, preamble = {}, {}, ""
     if TOPOLOGY_RESULTS.exists():
-        for block in TOPOLOGY_RESULTS.read_text().split("\n## ")[1:]:
-            sections[block.split("\n", 1)[0]] = "## " + block.rstrip("\n")
+        head, *blocks = TOPOLOGY_RESULTS.read_text().split("\n## ")
+        preamble = head.split("\n\n", 2)[2].strip() + "\n\n" if head.count("\n\n") >= 2 else ""
+        for block in blocks:
+            lines = block.rstrip("\n").split("\n")
+            sections[lines[0]] = "## " + "\n".join(lines)
+            last_row = max(k for k, line in enumerate(lines) if line.startswith("|") or k == 0)
+            notes[lines[0]] = "\n".join(lines[last_row + 1 :]).strip()
     with tempfile.TemporaryDirectory(prefix="bench-search-") as tmp:
         for name in names:
             r = bench_spec(SPECS / f"{name}.yaml", SEEDS, 0, 0, 0, Path(tmp))
@@ -739,11 +745,13 @@ def only(names: list[str]) -> None:
                     "| seed | best score | hit |",
                     "| --- | --- | --- |",
                     *(f"| {i} | {x['best']:.4f} | {'yes' if x['hit'] else 'no'} |" for i, x in enumerate(runs)),
+                    *(["", notes[name]] if notes.get(name) else []),
                 ]
             )
     text = (
         "# Search against the oracle, one small space per topology added later\n\n"
         "Produced by `benchmarks/bench_search.py --only SPEC ...` (one section per spec).\n\n"
+        + preamble
         + "\n\n".join(sections[k] for k in sorted(sections))
         + "\n"
     )
