@@ -87,7 +87,8 @@ def exhaustive(
         kept, optimistic, feasible = np.zeros((0, len(roles)), dtype=int), np.zeros(0), 0
         for idx in Enumeration(space, topology, prune).chunks(CHUNK):
             parts = {r: idx[:, j] for j, r in enumerate(roles)}
-            g = evaluate_group(space, topology, device, parts, full=False, swing_above=threshold)
+            above = threshold if threshold > -np.inf else None  # None: the swing solved everywhere, in one call
+            g = evaluate_group(space, topology, device, parts, full=False, swing_above=above)
             feasible += int((g["total"] == 0).sum())
             keep = g["score"] > threshold
             kept, optimistic = np.concatenate([kept, idx[keep]]), np.concatenate([optimistic, g["score"][keep]])
