@@ -40,7 +40,7 @@ from typing import Callable
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
-from run_facts import RunFacts, bench_mode  # noqa: E402
+from run_facts import RunFacts, bench_mode, write_keeping_notes  # noqa: E402
 
 from optimizer.search.ranking import SHORTLIST_SAMPLES, SHORTLIST_SIZE  # noqa: E402
 from optimizer.search.results import load_search  # noqa: E402
@@ -210,7 +210,7 @@ def main() -> None:
         *cli,
         "",
     ]
-    RESULTS.write_text("\n".join(lines), encoding="utf-8")
+    write_keeping_notes(RESULTS, "\n".join(lines))
     print(f"wrote {RESULTS.relative_to(ROOT)}")
 
 

@@ -58,6 +58,7 @@ import numpy as np  # noqa: E402
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))  # the benchmarks package, run as a script
 from benchmarks import reference_kernel  # noqa: E402
+from benchmarks.run_facts import write_keeping_notes  # noqa: E402
 from optimizer import physics  # noqa: E402
 from optimizer.devices import JFET, Device  # noqa: E402
 from optimizer.eseries import series_values  # noqa: E402
@@ -437,10 +438,7 @@ def main(only: list[str] | None = None) -> None:
     )
     lines += ["", f"Process peak resident memory over the whole benchmark: {max_rss:.0f} MB."]
     text = "\n".join(lines) + "\n"
-    results = ROOT / "benchmarks" / "results" / "models.md"
-    old = results.read_text(encoding="utf-8") if results.exists() else ""
-    notes = old[old.index("\n## ") :] if "\n## " in old else ""  # the notes written below the table stay
-    results.write_text(text + notes, encoding="utf-8")
+    write_keeping_notes(ROOT / "benchmarks" / "results" / "models.md", text)
     print(text)
 
 

@@ -18,8 +18,17 @@ import time
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from importlib import metadata
+from pathlib import Path
 
 MODES = ("quick", "full")
+
+
+def write_keeping_notes(path: Path, text: str) -> None:
+    """Write a results file's generated ``text`` (no ``## `` headings of its own), keeping the
+    notes written by hand below the old file's tables: everything from its first ``## `` heading."""
+    old = path.read_text(encoding="utf-8") if path.exists() else ""
+    notes = old[old.index("\n## ") :] if "\n## " in old else ""
+    path.write_text(text + notes, encoding="utf-8")
 
 
 def bench_mode(default: str = "full") -> str:
