@@ -31,7 +31,7 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
-from run_facts import RunFacts, bench_mode  # noqa: E402
+from run_facts import RunFacts, bench_mode, write_keeping_notes  # noqa: E402
 
 RESULTS = ROOT / "benchmarks" / "results" / "loop.md"
 SPEC = ROOT / "specs" / "bench_stock_preamp.yaml"
@@ -158,7 +158,7 @@ def main() -> None:
     text = "\n".join(lines)
     print(text)
     if mode == "full" and args.spec.resolve() == SPEC:
-        RESULTS.write_text(text)
+        write_keeping_notes(RESULTS, text + "\n")
 
 
 if __name__ == "__main__":

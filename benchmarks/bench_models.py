@@ -498,7 +498,7 @@ def topology_table(names: list[str], scale: float = 1.0) -> None:
         )
         lines.append(f"| {name} | {device.id} | {core['rate']:,.0f} | {full['rate']:,.0f} | {core['peak_mb']:.0f} |")
     text = "\n".join(lines) + "\n"
-    (ROOT / "benchmarks" / "results" / "models_topologies.md").write_text(text, encoding="utf-8")
+    write_keeping_notes(ROOT / "benchmarks" / "results" / "models_topologies.md", text)
     print(text)
 
 

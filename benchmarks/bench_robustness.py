@@ -34,6 +34,7 @@ if str(ROOT) not in sys.path:
 import numpy as np  # noqa: E402
 import optuna  # noqa: E402
 
+from benchmarks.run_facts import write_keeping_notes  # noqa: E402
 from optimizer.candidates import assess  # noqa: E402
 from optimizer.catalog import load_catalog  # noqa: E402
 from optimizer.exhaustive import exhaustive  # noqa: E402
@@ -154,7 +155,7 @@ def main() -> None:
         ]
     )
     if not args.quick:
-        RESULTS.write_text(text)
+        write_keeping_notes(RESULTS, text)
     print(text)
 
 

@@ -44,7 +44,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT / "benchmarks"))
 sys.path.insert(0, str(ROOT))
 
-from run_facts import RunFacts, bench_mode  # noqa: E402
+from run_facts import RunFacts, bench_mode, write_keeping_notes  # noqa: E402
 
 from optimizer.bundled import example_names, example_path  # noqa: E402
 from optimizer.spec import load_spec  # noqa: E402
@@ -408,7 +408,7 @@ def main() -> int:
     ]
     text = "\n".join(lines) + "\n"
     print(text)
-    RESULTS.write_text(text)  # the header names the mode
+    write_keeping_notes(RESULTS, text)  # the header names the mode
     print(f"wrote {RESULTS}")
     return 0
 

@@ -55,7 +55,7 @@ sys.path.insert(0, str(ROOT / "tests"))
 sys.path.insert(0, str(ROOT / "benchmarks"))
 
 import optuna  # noqa: E402
-from run_facts import RunFacts, bench_mode  # noqa: E402
+from run_facts import RunFacts, bench_mode, write_keeping_notes  # noqa: E402
 
 from optimizer.search import create_search, load_search, open_storage, run_search, with_search  # noqa: E402
 from optimizer.spec import load_spec  # noqa: E402
@@ -308,7 +308,7 @@ def main() -> int:
             cluster.stop()
     text = _report(mode, facts, trials, repeats, worker_trials, single, scaling)
     print(text)
-    RESULTS[mode].write_text(text)
+    write_keeping_notes(RESULTS[mode], text)
     print(f"wrote {RESULTS[mode]}")
     return 0
 

@@ -24,10 +24,10 @@ MODES = ("quick", "full")
 
 
 def write_keeping_notes(path: Path, text: str) -> None:
-    """Write a results file's generated ``text`` (no ``## `` headings of its own), keeping the
-    notes written by hand below the old file's tables: everything from its first ``## `` heading."""
+    """Write a results file's generated ``text``, keeping the notes written by hand below it in
+    the old file: everything from its first ``## Notes`` heading (generated text has none)."""
     old = path.read_text(encoding="utf-8") if path.exists() else ""
-    notes = old[old.index("\n## ") :] if "\n## " in old else ""
+    notes = old[old.index("\n## Notes") :] if "\n## Notes" in old else ""
     path.write_text(text + notes, encoding="utf-8")
 
 

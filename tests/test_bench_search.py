@@ -59,3 +59,34 @@ def test_screen_modes_change_only_the_robustness_basis() -> None:
     assert bench_search.screen_mode(off) == "off" and bench_search.screen_mode(on) == "on"
     assert bench_search.screened(off, "on").robustness == "yield"
     assert bench_search.spec_to_dict(off) | {"robustness": spec.robustness} == bench_search.spec_to_dict(spec)
+
+
+def test_a_results_file_rewritten_keeps_the_notes_below_its_tables(tmp_path) -> None:
+    from benchmarks.run_facts import write_keeping_notes
+
+    path = tmp_path / "r.md"
+    write_keeping_notes(path, "# R\n\n| a |\n")  # no old file: the text alone
+    assert path.read_text() == "# R\n\n| a |\n"
+    path.write_text("# R\n\n## Section\n\n| old |\n\n## Notes to this run\n\nwhy it moved\n")
+    write_keeping_notes(path, "# R\n\n## Section\n\n| new |\n")
+    assert path.read_text() == "# R\n\n## Section\n\n| new |\n\n## Notes to this run\n\nwhy it moved\n"
+
+
+def test_only_keeps_the_notes_under_a_section_and_above_the_first(tmp_path, monkeypatch) -> None:
+    path = tmp_path / "topologies.md"
+    path.write_text(
+        "# Search against the oracle\n\nProduced by ...\n\nA preamble.\n\n"
+        "## bs_a\n\nold figures\n\n| seed | best score | hit |\n| --- | --- | --- |\n| 0 | 0.1000 | no |\n\n"
+        "A note on bs_a.\n\n## bs_b\n\nb figures\n"
+    )
+    oracle = type("Oracle", (), {"combinations": 5, "best": {"score": 0.5}})
+    run = {"runs": [{"best": 0.5, "hit": True}], "times": [1.0]}
+    figures = {"topology": "t", "device": "d", "series": "E3", "range": (1, 2), "oracle_s": 1.0, "budget": 10}
+    monkeypatch.setattr(bench_search, "TOPOLOGY_RESULTS", path)
+    monkeypatch.setattr(
+        bench_search, "bench_spec", lambda *a, **k: {**figures, "methods": {"our search": run}, "oracle": oracle()}
+    )
+    bench_search.only(["bs_a"])
+    text = path.read_text()
+    assert "A preamble." in text and "A note on bs_a." in text and "## bs_b\n\nb figures" in text
+    assert "| 0 | 0.5000 | yes |" in text and "0.1000" not in text and "old figures" not in text
