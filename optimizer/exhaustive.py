@@ -7,11 +7,11 @@ the enumeration is a branch and bound that stays exact:
 
 1. every combination gets the fast core metrics (bias, gain, impedances, current, ratings,
    and the usable swing, the costliest, only where the score could pass the pass's threshold
-   whatever the swing: ``evaluate_group(swing_above=...)``) and an optimistic score: the limits that need the full
-   model (band corners, noise) counted as met, the capacitors as the cheapest allowed and adding no new value,
-   and any objective the core cannot give (noise) as ideal. The capacitors can only lower
-   the score, so this bounds it from above (and the core violation bounds the total
-   violation from below);
+   whatever the swing: ``evaluate_group(swing_above=...)``) and an optimistic score: the
+   limits that need the full model (band corners, noise) counted as met, the capacitors as
+   the cheapest allowed and adding no new value, and any objective the core cannot give
+   (noise) as ideal. The capacitors can only lower the score, so this bounds it from above
+   (and the core violation bounds the total violation from below);
 2. combinations are then fully evaluated (capacitors sized) in order of that bound, until
    the next bound cannot beat the best full score found.
 
