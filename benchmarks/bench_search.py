@@ -70,7 +70,7 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 
 import optuna  # noqa: E402
 from optuna.trial import TrialState  # noqa: E402
-from run_facts import RunFacts, bench_mode  # noqa: E402
+from run_facts import RunFacts, bench_mode, write_keeping_notes  # noqa: E402
 
 import optimizer.search  # noqa: E402, F401  (the module is read from sys.modules below)
 
@@ -711,6 +711,13 @@ def front(names: list[str]) -> None:
     print("\n" + front_section(rows))
 
 
+def write_results(path: Path, text: str) -> None:
+    """Write a full run's ``text`` to ``path``, keeping the old file's front-quality table
+    (``--front`` writes it) and its notes (everything from its first ``## Notes`` heading)."""
+    rows = stored_front_rows(path.read_text()) if path.exists() else {}
+    write_keeping_notes(path, with_front_section(text, rows) if rows else text)
+
+
 TOPOLOGY_RESULTS = ROOT / "benchmarks" / "results" / "search_topologies.md"
 
 
@@ -828,7 +835,7 @@ def main() -> None:
     out = args.out or (None if args.quick or args.table else RESULTS)
     if out:
         out.parent.mkdir(parents=True, exist_ok=True)
-        out.write_text(text)
+        write_results(out, text)
         print(f"wrote {out}")
 
 

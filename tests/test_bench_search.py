@@ -90,3 +90,18 @@ def test_only_keeps_the_notes_under_a_section_and_above_the_first(tmp_path, monk
     text = path.read_text()
     assert "A preamble." in text and "A note on bs_a." in text and "## bs_b\n\nb figures" in text
     assert "| 0 | 0.5000 | yes |" in text and "0.1000" not in text and "old figures" not in text
+
+
+def test_a_full_run_keeps_the_front_table_and_the_notes(tmp_path) -> None:
+    path = tmp_path / "search.md"
+    row = "| bs_a | off | 3 points, best 0.5 (1.0 s) | 10/10 | 99.0 % (98.0..100.0) | met | 1.0 |"
+    path.write_text(
+        "# Search benchmark\n\n## Quality\n\nold table\n\n"
+        + bench_search.front_section({("bs_a", "off"): row})
+        + "\n\n## Notes to this run\n\nwhy\n"
+    )
+    bench_search.write_results(path, "# Search benchmark\n\n## Quality\n\nnew table\n")
+    text = path.read_text()
+    assert "new table" in text and "old table" not in text
+    assert text.index("## Quality") < text.index(bench_search.FRONT_HEADING) < text.index("## Notes to this run")
+    assert row in text and text.count(bench_search.FRONT_HEADING) == 1 and text.endswith("why\n")
