@@ -44,7 +44,7 @@ import tempfile  # noqa: E402
 import time  # noqa: E402
 from pathlib import Path  # noqa: E402
 
-from run_facts import bench_mode  # noqa: E402
+from run_facts import bench_mode, write_keeping_notes  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[1]
 SPEC = ROOT / "benchmarks" / "specs" / "bs_e96_feedback_line.yaml"
@@ -206,7 +206,7 @@ def held(trials: int, out: Path, command: str) -> None:
     ]
     lines += [f"| `{name}` | {HELD.get(name, '')} | {size:,.0f} | {count:,} |" for name, size, count in found["top"]]
     text = "\n".join(lines) + "\n"
-    out.write_text(text, encoding="utf-8")
+    write_keeping_notes(out, text)
     print(text + f"\nwritten {out.relative_to(ROOT)}")
 
 
@@ -342,7 +342,7 @@ def report(
     if missing:
         lines += ["", f"Not run (yet): {', '.join(f'{n:,}' for n in missing)} trials."]
     text = "\n".join(lines) + "\n"
-    out.write_text(text, encoding="utf-8")
+    write_keeping_notes(out, text)
     print("\n" + text + f"\nwritten {out.relative_to(ROOT)}")
 
 
