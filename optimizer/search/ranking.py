@@ -173,7 +173,28 @@ def capacitor_rating_hint(limits: tuple[str, ...], record: dict | None, capacito
     )
 
 
-def relax_one_limit(spec: Spec, ranked: list[dict], capacitors: PartTable | None = None) -> dict:
+def resistor_range_hint(spec: Spec, limits: tuple[str, ...], resistors: PartTable | None) -> str:
+    """A suggestion when the input impedance limit binds above the largest resistor the search
+    may choose (the top of parts.resistor_range, or of the catalog's values in it): a stage's
+    input impedance is mostly its bias resistors' (the divider's, the gate resistor's), so no
+    choice of parts reaches it; "" otherwise."""
+    asked = spec.limits.input_impedance_min
+    if "input_impedance_min" not in limits or asked is None:
+        return ""
+    top = float(np.max(resistors.values)) if resistors is not None else spec.parts.resistor_range[1]
+    if asked <= top:
+        return ""
+    return (
+        f"; the input impedance asked ({format_value(asked, 'ohm')}) is above the largest resistor the search may "
+        f"choose ({format_value(top, 'ohm')}): a stage's input impedance is mostly its bias resistors' (a "
+        "bootstrapped follower's excepted), so a wider parts.resistor_range, or a catalog with larger values, "
+        "may give an answer"
+    )
+
+
+def relax_one_limit(
+    spec: Spec, ranked: list[dict], capacitors: PartTable | None = None, resistors: PartTable | None = None
+) -> dict:
     """Why a spec has no answer: the limit whose relaxation alone would give one.
 
     Among the evaluated designs, those that miss exactly one limit name it; the limit missed
@@ -184,13 +205,19 @@ def relax_one_limit(spec: Spec, ranked: list[dict], capacitors: PartTable | None
     missed together by the smallest amount binds. Where a bipolar follower's input impedance binds
     and the spec lists no JFET, the text names the catalog's JFETs (:func:`jfet_hint`); where a
     capacitor's voltage rating binds alone, the rating its value's part would need
-    (:func:`capacitor_rating_hint`, given the search space's ``capacitors``). Returns {binding:
+    (:func:`capacitor_rating_hint`, given the search space's ``capacitors``); where the input
+    impedance binds above the largest resistor, that (:func:`resistor_range_hint`, given its
+    ``resistors``). Where every design misses three limits or more, no relaxation of one or two
+    is claimed: the nearest design's missed limits are named, the largest miss first. A value
+    reached is shown with the digits that tell it from the value asked. Returns {binding:
     [limits], reached: {limit: value (SI) or None}, unit: {limit: unit}, text}."""
+
+    def missed_by(r: dict) -> tuple[str, ...]:  # spread fails what nominal fails: name the limit
+        return tuple(sorted(k for k in r["violations"] if k not in ROBUSTNESS_LIMITS)) or tuple(sorted(r["violations"]))
+
     best: dict[tuple[str, ...], tuple[float, dict]] = {}
     for r in ranked:
-        missed = tuple(sorted(k for k in r["violations"] if k not in ROBUSTNESS_LIMITS)) or tuple(
-            sorted(r["violations"])
-        )  # spread fails what nominal fails: name the limit
+        missed = missed_by(r)
         amount = sum(r["violations"][k] for k in missed)
         if 1 <= len(missed) <= 2 and (missed not in best or amount < best[missed][0]):
             best[missed] = (amount, r)
@@ -200,21 +227,28 @@ def relax_one_limit(spec: Spec, ranked: list[dict], capacitors: PartTable | None
             limits = min(options, key=lambda k: options[k][0])
             record = options[limits][1]
             break
-    else:
+    else:  # every design misses three limits or more: the nearest one's, the largest miss first
         record = ranked[0] if ranked else None
-        limits = (record["binding"],) if record and record["binding"] else ()
+        limits = tuple(sorted(missed_by(record), key=lambda k: -record["violations"][k])) if record else ()
     reached: dict[str, float | None] = {}
     units: dict[str, str] = {}
     for limit in limits:
         metric, units[limit] = _limit_metric(limit)
         reached[limit] = record["metrics"].get(metric) if record and metric else None
 
-    def show(value: float | None, limit: str) -> str | None:
+    def show(value: float | None, limit: str, digits: int = 3) -> str | None:
         if value is None:
             return None
         if limit in ("yield", "thd_max", "midband"):
-            return f"{100 * value:.3g} %"
-        return f"{value:.3g} dB" if units[limit] == "dB" else format_value(value, units[limit])
+            return f"{100 * value:.{digits}g} %"
+        return f"{value:.{digits}g} dB" if units[limit] == "dB" else format_value(value, units[limit], digits=digits)
+
+    def show_reached(value: float, limit: str, asked: str | None) -> str | None:
+        """``value`` with the digits (3 to 6) that tell it from the value asked."""
+        digits = 3
+        while digits < 6 and show(value, limit, digits) == asked:
+            digits += 1
+        return show(value, limit, digits)
 
     asked = {name: getattr(spec.limits, name) for name, _, _ in LIMIT_METRICS}
     asked.update(
@@ -233,7 +267,9 @@ def relax_one_limit(spec: Spec, ranked: list[dict], capacitors: PartTable | None
             wanted = show(asked.get(limit), limit)
         facts = [
             f"the spec asks {wanted}" if wanted else "",
-            f"the nearest design reaches {show(reached[limit], limit)}" if reached[limit] is not None else "",
+            f"the nearest design reaches {show_reached(reached[limit], limit, wanted)}"
+            if reached[limit] is not None
+            else "",
         ]
         facts = [f for f in facts if f]
         parts.append(f"{limit} ({'; '.join(facts)})" if facts else limit)
@@ -247,9 +283,14 @@ def relax_one_limit(spec: Spec, ranked: list[dict], capacitors: PartTable | None
             f"no design meets every limit; {parts[0]} binds: relaxing it alone (with a margin for spread) "
             "would give an answer"
         )
-    else:
+    elif len(limits) == 2:
         text = f"no design meets every limit, and no single limit is to blame: {' and '.join(parts)} bind together"
-    text += jfet_hint(spec, tuple(limits), record) + rating
+    else:
+        text = (
+            "no design meets every limit, and every design evaluated misses three or more at once: the nearest "
+            f"misses {', '.join(parts[:-1])} and {parts[-1]}"
+        )
+    text += jfet_hint(spec, tuple(limits), record) + resistor_range_hint(spec, tuple(limits), resistors) + rating
     return {"binding": list(limits), "reached": reached, "unit": units, "text": text}
 
 

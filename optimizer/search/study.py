@@ -514,7 +514,7 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
             front.append(c)
     summary = {"candidates": candidates, "front": front, "evaluated": len(ranked)}
     if not any(c["feasible"] for c in shortlist):
-        summary["infeasible"] = relax_one_limit(space.spec, every, space.capacitors)
+        summary["infeasible"] = relax_one_limit(space.spec, every, space.capacitors, space.resistors)
     return summary
 
 
