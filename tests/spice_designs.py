@@ -528,21 +528,21 @@ _FB_SPLIT_CASES = [
 FB_SPLIT_TOPOLOGIES = ("feedback_pair", "feedback_ce")
 
 
+def hand_requirements(supply: float, gain: float, ic: float, hfe: float, rs: float, rl: float) -> HandRequirements:
+    """The hand method's requirements of a check design (V, V/V, A, -, ohm, ohm; the band's low
+    edge at 20 Hz)."""
+    return HandRequirements(
+        supply=supply, gain=gain, load_impedance=rl, source_impedance=rs, f_low=20.0, collector_current=ic, hfe=hfe
+    )
+
+
 def fb_split_designs() -> list[CheckDesign]:
     """8 designs per FB_SPLIT_TOPOLOGIES stage on +-12 V and +-15 V, NPN and PNP in turn, each
     the stage's own split hand design (Topology.split_hand_design), unrounded (16 in all)."""
     designs = []
     for topology in FB_SPLIT_TOPOLOGIES:
         for i, (rail, gain, ic, hfe, rs, rl, cl) in enumerate(_FB_SPLIT_CASES):
-            req = HandRequirements(
-                supply=2.0 * rail,
-                gain=gain,
-                load_impedance=rl,
-                source_impedance=rs,
-                f_low=20.0,
-                collector_current=ic,
-                hfe=hfe,
-            )
+            req = hand_requirements(2.0 * rail, gain, ic, hfe, rs, rl)
             device, conditions, _ = split_stage(hfe, rail, -rail, bool(i % 2), rs, rl, cl)
             parts = get_topology(topology).split_hand_design(req, 0.5)
             assert parts is not None
@@ -559,4 +559,41 @@ def fb_split_designs() -> list[CheckDesign]:
                     hand_ic=ic * (SPLIT_CURRENT_SHARE if topology == "feedback_pair" else 1.0),
                 )
             )
+    return designs
+
+
+# ---- feedback_pair_ac (the pair with its feedback leg AC-coupled) ------------------------------
+# Hand designs of optimizer/topologies/feedback_pair_ac.py (the plain pair's bias at its DC gain,
+# then r_emitter and c_feedback for the gain): on positive rails, and on +-12 V and +-15 V (NPN
+# and PNP in turn) at the gains the plain pair's split rule cannot reach (20-40 V/V).
+# (rails V: (positive, negative), gain V/V, q2's hand Ic A, hFE, source ohm, load ohm, load capacitance F)
+_PAIR_AC_CASES = [
+    ((15.0, 0.0), 20.0, 1.0e-3, 200, 600, 10e3, 0.0),
+    ((24.0, 0.0), 30.0, 2.0e-3, 300, 150, 2.2e3, 0.0),
+    ((12.0, 0.0), 8.0, 1.0e-3, 100, 1e3, 47e3, 1e-9),
+    ((9.0, 0.0), 10.0, 0.5e-3, 500, 50, 22e3, 0.0),
+    ((15.0, -15.0), 30.0, 3.0e-3, 200, 2.2e3, 2e3, 0.0),
+    ((12.0, -12.0), 20.0, 2.0e-3, 300, 600, 10e3, 0.0),
+    ((15.0, -15.0), 40.0, 2.0e-3, 150, 150, 47e3, 330e-12),
+    ((12.0, -12.0), 10.0, 1.0e-3, 500, 10e3, 10e3, 0.0),
+]
+
+
+def pair_ac_designs() -> list[CheckDesign]:
+    """The feedback_pair_ac designs of the agreement set (8: four on a positive rail, four on a
+    split supply, NPN and PNP in turn; hand gain +target, hand Ic q1's: half of q2's on a
+    positive rail, SPLIT_CURRENT_SHARE of the hand current on a split supply)."""
+    topology = get_topology("feedback_pair_ac")
+    designs = []
+    for i, ((v_pos, v_neg), gain, ic, hfe, rs, rl, cl) in enumerate(_PAIR_AC_CASES):
+        req = hand_requirements(v_pos - v_neg, gain, ic, hfe, rs, rl)
+        device, conditions, rails = split_stage(hfe, v_pos, v_neg, v_neg < 0 and bool(i % 2), rs, rl, cl)
+        if v_neg < 0:
+            parts, hand_ic = topology.split_hand_design(req, 0.5), SPLIT_CURRENT_SHARE * ic
+        else:
+            parts, hand_ic = topology.hand_design(req), 0.5 * ic
+        name = f"feedback_pair_ac-{rails}-A{gain:g}-hfe{hfe}-{device.polarity}" + (f"-CL{cl * 1e9:g}n" if cl else "")
+        designs.append(
+            CheckDesign(name, "feedback_pair_ac", parts, device, conditions, hand_gain=gain, hand_ic=hand_ic)
+        )
     return designs

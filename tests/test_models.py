@@ -19,7 +19,7 @@ from optimizer import physics
 from optimizer.devices import Device, hfe_temperature_factor, saturation_current, thermal_voltage
 from optimizer.errors import InputError
 from optimizer.topologies import TOPOLOGIES, Conditions, get_topology
-from spice_designs import check_designs, follower_designs, jfet_check_designs, pair_designs
+from spice_designs import check_designs, follower_designs, jfet_check_designs, pair_ac_designs, pair_designs
 
 DEVICE = check_npn("npn-bench-a")
 NINE_VOLT = dict(r_top=75e3, r_bottom=10e3, r_collector=10e3, r_emitter=1e3, c_in=10e-6, c_out=10e-6)
@@ -180,7 +180,10 @@ def test_impedances_include_coupling_capacitors_at_mid_band():
 # one design of every topology (the ngspice agreement's), first of each in their lists
 EVERY_TOPOLOGY = list(
     {
-        d.topology: d for d in reversed(check_designs() + pair_designs() + jfet_check_designs() + follower_designs())
+        d.topology: d
+        for d in reversed(
+            check_designs() + pair_designs() + jfet_check_designs() + follower_designs() + pair_ac_designs()
+        )
     }.values()
 )
 

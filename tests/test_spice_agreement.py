@@ -9,8 +9,8 @@ flicker noise, noise figure at 290 K, supply rejection at 100 Hz and mid-band, T
 agree within the tolerances in spice_agreement.TOLERANCES. The same checks run on PNP,
 negative-rail and split-supply versions of two stages (the block at the end), and on PNP,
 negative-rail (and for the followers split-supply) versions of the followers and the feedback
-pair. Skipped only
-where ngspice is absent.
+pair, and on 8 designs of the pair with its feedback leg AC-coupled (positive rails and split
+supplies, NPN and PNP). Skipped only where ngspice is absent.
 """
 
 from __future__ import annotations
@@ -27,6 +27,7 @@ from spice_designs import (
     direct_coupled_designs,
     fb_split_designs,
     later_polarity_designs,
+    pair_ac_designs,
     polarity_designs,
 )
 from spice_harness import spice_operating_point
@@ -46,9 +47,11 @@ FB_SPLIT_DESIGNS = fb_split_designs()
 
 #  Direct-coupled inputs on split supplies: no c_in, the source in the base's DC path (see below).
 DIRECT_DESIGNS = direct_coupled_designs()
+#  The feedback pair with its feedback leg AC-coupled, on positive rails and split supplies (NPN, PNP).
+PAIR_AC_DESIGNS = pair_ac_designs()
 
 
-ALL_DESIGNS = DESIGNS + POLARITY_DESIGNS + LATER_POLARITY_DESIGNS + FB_SPLIT_DESIGNS + DIRECT_DESIGNS
+ALL_DESIGNS = DESIGNS + POLARITY_DESIGNS + LATER_POLARITY_DESIGNS + FB_SPLIT_DESIGNS + DIRECT_DESIGNS + PAIR_AC_DESIGNS
 
 
 @pytest.mark.parametrize("design", ALL_DESIGNS, ids=[d.name for d in ALL_DESIGNS])
@@ -81,7 +84,7 @@ def test_hand_method_is_further_off_than_the_model() -> None:
 # (spice_designs.fb_split_designs: the pair's base ground-referenced, feedback_ce across the rails).
 
 
-NODE_DESIGNS = POLARITY_DESIGNS[::6] + LATER_POLARITY_DESIGNS + FB_SPLIT_DESIGNS + DIRECT_DESIGNS
+NODE_DESIGNS = POLARITY_DESIGNS[::6] + LATER_POLARITY_DESIGNS + FB_SPLIT_DESIGNS + DIRECT_DESIGNS + PAIR_AC_DESIGNS[4:]
 
 
 @pytest.mark.parametrize("design", NODE_DESIGNS, ids=[d.name for d in NODE_DESIGNS])

@@ -14,7 +14,7 @@ Same device for q1 and q2, drawn NPN on a positive rail.
 from __future__ import annotations
 
 import math
-from typing import Any, Callable
+from typing import Any, Callable, ClassVar
 
 import numpy as np
 
@@ -65,12 +65,14 @@ def solve_pair(
     inv_vaf: float,
     v_start: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None,
     iterations: int = PAIR_ITERATIONS,
+    j_e: np.ndarray | float = 0.0,
 ) -> dict[str, np.ndarray]:
     """Both junctions of q1 and q2's base-emitter junction, solved together by damped 3-D Newton (V, A, ohm, S).
 
     The loops: ``a1 = Vbe1 + r_base1*Ib1 + Ve1`` (q1's base Thevenin, RB included in r_base1),
     ``Vc1 = Vbe2 + RB*Ib2 + Ve2`` with ``Vc1 = vcc - rc1*(Ic1 + Ib2)``, ``Ve2 = v_e2_0 + r_e2*Ie2``;
-    the emitter node (re to ground, rf to the collector2 node) and the collector2 node
+    the emitter node (re to ground, rf to the collector2 node, and ``j_e`` A injected: a branch
+    to a held voltage, its conductance inside re) and the collector2 node
     (``g_c2*Vc2 = j_c2 + Ve1/rf - Ic2``: rc2, rf and in the static solve the load, as one
     conductance and current) are linear and are eliminated: ``Ve1 = v0 + k_e*Ie1 - k_c*Ic2``.
 
@@ -95,6 +97,8 @@ def solve_pair(
     k_e = 1.0 / g_e
     k_c = k_e / (rf * g_c2)
     v0 = k_c * j_c2
+    if np.any(j_e):
+        v0 = v0 + k_e * j_e
     shape = np.broadcast_shapes(*(np.shape(x) for x in (a1, r_base1, vcc, rc1, re, rf, g_c2, j_c2, v_e2_0, r_e2, beta)))
     if v_start is None:
         x1 = np.full(shape, nvt * (math.log(1e-3 / i_s) if np.ndim(i_s) == 0 else np.log(1e-3 / i_s)))
@@ -172,6 +176,7 @@ def solve_pair(
                 inv_vaf=_elements(inv_vaf, shape, at),
                 v_start=(x1.reshape(-1)[at], x2.reshape(-1)[at], x3.reshape(-1)[at]),
                 iterations=iterations - step - 1,
+                j_e=_elements(j_e, shape, at),
             )
             for x, y in zip((x1, x2, x3), rest["unknowns"]):
                 x.reshape(-1)[at] = y
@@ -308,10 +313,19 @@ class FeedbackPair(StageModel):
     device_kind = "bjt"
     description = "series-shunt feedback pair: two direct-coupled common emitters, gain 1 + r_feedback/r_emitter"
     order = 50
-    resistors = ("r_top", "r_bottom", "r_collector", "r_emitter", "r_emitter2", "r_collector2", "r_feedback")
-    capacitors = ("c_in", "c_emitter2", "c_out")
+    # (annotated as the base declares them: feedback_pair_ac extends them)
+    resistors: ClassVar[tuple[str, ...]] = (
+        "r_top",
+        "r_bottom",
+        "r_collector",
+        "r_emitter",
+        "r_emitter2",
+        "r_collector2",
+        "r_feedback",
+    )
+    capacitors: ClassVar[tuple[str, ...]] = ("c_in", "c_emitter2", "c_out")
     transistors = 2
-    elements = (
+    elements: ClassVar[tuple[tuple[str, str, str], ...]] = (
         ("c_in", "src", "base"),
         ("r_top", "vcc", "base"),
         ("r_bottom", "base", "0"),
@@ -332,7 +346,7 @@ class FeedbackPair(StageModel):
         "collector2": "v_collector2",
     }
     vce_keys = ("vce", "vce2")
-    gain_bound_roles = ("r_feedback", "r_emitter")
+    gain_bound_roles: ClassVar[tuple[str, ...]] = ("r_feedback", "r_emitter")
     corner_steps = 8  # a small phase margin peaks the response inside f_high's bracket
 
     def gain_bound(self, resistors: dict[str, np.ndarray], load: float) -> np.ndarray:
@@ -383,8 +397,29 @@ class FeedbackPair(StageModel):
         z_in = parallel(r_bottom, req.hfe * parts["r_emitter"])
         return {"r_bottom": r_bottom, **parts, "c_in": coupling_capacitor(z_in + req.source_impedance, req.f_low)}
 
+    def _re_dc(self, p: Parts) -> np.ndarray:
+        """Resistance (ohm) from q1's emitter to the rail at DC."""
+        return p["r_emitter"]
+
+    def _re_ac(self, p: Parts) -> np.ndarray:
+        """The feedback network's shunt leg at mid-band (ohm): q1's emitter to AC ground."""
+        return p["r_emitter"]
+
+    def _emitter_leg(self, net: physics.Network, p: Parts, ac: bool) -> None:
+        """q1's emitter to AC ground in the nodal network."""
+        net.resistor("emitter", None, p["r_emitter"])
+
+    def _emitter_hold(self, p: Parts, op: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray | float]:
+        """q1's emitter node to ground in the quasi-static transfer, its capacitors holding their
+        DC: the resistance (ohm) and the current it injects (A, a branch to a held voltage)."""
+        return p["r_emitter"], 0.0
+
+    def _nodes(self) -> tuple[str, ...]:
+        """The nodal network's nodes."""
+        return ("in", "base", "bint", "emitter", "collector", "bint2", "emitter2", "collector2", "out")
+
     def _bias(self, p: Parts, device: Device, c: Conditions, beta: np.ndarray, nvt: float, i_s: float) -> Bias:
-        rt, rb_, rc1, re, rf = p["r_top"], p["r_bottom"], p["r_collector"], p["r_emitter"], p["r_feedback"]
+        rt, rb_, rc1, re, rf = p["r_top"], p["r_bottom"], p["r_collector"], self._re_dc(p), p["r_feedback"]
         rc2, re2 = p["r_collector2"], p["r_emitter2"]
         vcc = c.supply
         vth, rth = vcc * rb_ / (rt + rb_), rt * rb_ / (rt + rb_)
@@ -498,7 +533,7 @@ class FeedbackPair(StageModel):
         # q1 as seen by the loop (driven at its emitter, base at AC ground through the source and
         # divider): its emitter resistance and its collector's output resistance
         r_into_e1 = (r_base_src + 1.0 / ss1["gpi"]) / (1.0 + ss1["gm"] / ss1["gpi"])
-        r_e1 = physics.parallel(p["r_emitter"], r_into_e1)
+        r_e1 = physics.parallel(self._re_ac(p), r_into_e1)
         # input node of q2: its intrinsic base, fed by r_collector (q1's collector) through RB
         r1 = physics.parallel(p["r_collector"] + ss2["rb"], 1.0 / ss2["gpi"])
         c1 = ss2["cpi"] + ss1["cmu"] * p["r_collector"] / (p["r_collector"] + ss2["rb"])
@@ -513,7 +548,7 @@ class FeedbackPair(StageModel):
     ) -> tuple[np.ndarray, np.ndarray]:
         op = b.op
         load = np.full_like(op["ic2"], c.load_impedance)
-        r_ac = physics.parallel(p["r_collector2"], load, p["r_feedback"] + p["r_emitter"])
+        r_ac = physics.parallel(p["r_collector2"], load, p["r_feedback"] + self._re_ac(p))
         cut, sat = physics.load_line_limits(op["ic2"], op["vce2"], device.vce_sat, r_ac, np.zeros_like(r_ac))
         vce_max = np.maximum(
             op["vce"] + np.abs(op["v_emitter"]), np.minimum(c.supply, op["v_collector2"] + cut) - op["v_emitter2"]
@@ -530,11 +565,9 @@ class FeedbackPair(StageModel):
         load: bool,
         supply: bool = False,
     ) -> physics.Network:
-        net, rail = self._new_network(
-            ("in", "base", "bint", "emitter", "collector", "bint2", "emitter2", "collector2", "out"), p, c, ac, supply
-        )
+        net, rail = self._new_network(self._nodes(), p, c, ac, supply)
         add_divider_stage(net, p, ss, ac, r_source, rail)
-        net.resistor("emitter", None, p["r_emitter"])
+        self._emitter_leg(net, p, ac)
         net.resistor("collector", "bint2", ss[1]["rb"])
         net.transistor("bint2", "collector2", "emitter2", ss[1], ac)
         net.resistor("emitter2", None, p["r_emitter2"])
@@ -577,6 +610,7 @@ class FeedbackPair(StageModel):
         g_c2 = 1.0 / rc2 + 1.0 / rf + 1.0 / c.load_impedance
         j_c2 = c.supply / rc2 + op["v_collector2"] / c.load_impedance
         kw = {"rb": device.RB, "i_s": i_s, "beta": beta, "nvt": nvt, "inv_vaf": device.inv_vaf}
+        re, j_e = self._emitter_hold(p, op)
 
         def out(vs: np.ndarray) -> np.ndarray:
             a = (vth * rs + (vs + op["v_base"]) * rth) / (rs + rth)
@@ -585,7 +619,7 @@ class FeedbackPair(StageModel):
                 physics.parallel(rth, rs) + device.RB,
                 c.supply,
                 p["r_collector"],
-                p["r_emitter"],
+                re,
                 rf,
                 g_c2,
                 j_c2,
@@ -593,6 +627,7 @@ class FeedbackPair(StageModel):
                 0.0,
                 v_start=(op["vbe"], op["vbe2"], op["v_emitter"] + op["vbe"] - op["v_collector"]),
                 iterations=2 * physics.THD_ITERATIONS,
+                j_e=j_e,
                 **kw,
             )
             v_c2 = np.maximum(q["v_c2"], op["v_emitter2"] + device.vce_sat)
