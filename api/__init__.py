@@ -40,6 +40,7 @@ from typing import Any, Mapping
 
 from flask import Flask, Response, jsonify, request
 from flask.json.provider import DefaultJSONProvider
+from werkzeug.routing import IntegerConverter
 
 from optimizer.errors import InputError
 
@@ -148,6 +149,14 @@ def _finite(obj: Any) -> Any:
     return obj
 
 
+class _AsciiInteger(IntegerConverter):
+    """Werkzeug's integer path converter, matching ASCII digits only (its own ``\\d`` also takes
+    '１' and '٣', which int() reads as 1 and 3)."""
+
+    regex = r"[0-9]+"
+    signed_regex = r"-?[0-9]+"
+
+
 def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     """The stagefit REST app. ``config`` keys are the environment names above.
 
@@ -160,6 +169,7 @@ def create_app(config: Mapping[str, Any] | None = None) -> Flask:
     settings = Settings.load(config)
     app = Flask("api", static_folder=None)  # the pages blueprint serves its own assets
     app.url_map.merge_slashes = False  # /v1/searches//candidates is a 404, not a redirect
+    app.url_map.converters["int"] = _AsciiInteger  # a rank in a path is ASCII digits, as every number we read
     app.json = _JSONProvider(app)
     app.config["MAX_CONTENT_LENGTH"] = settings.max_body
     problems.register(app)

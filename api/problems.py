@@ -17,7 +17,7 @@ from typing import Any, Iterable
 from flask import Flask, Response, request
 from werkzeug.exceptions import HTTPException
 
-from optimizer.errors import InputError, Problem, StorageError
+from optimizer.errors import MISSING, InputError, Problem, StorageError
 
 PROBLEM_JSON = "application/problem+json"
 TYPE_PREFIX = "urn:stagefit:problem:"
@@ -65,7 +65,9 @@ def _detail(title: str, problems: list[Problem]) -> str:
 
 
 def _plain(value: Any) -> Any:
-    """A JSON-safe rendition of a value the user sent (or a repr of it)."""
+    """A JSON-safe rendition of a value the user sent (or a repr of it; null where none was sent)."""
+    if value is MISSING:
+        return None
     if value is None or isinstance(value, bool):
         return value
     if isinstance(value, int):

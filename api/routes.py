@@ -277,7 +277,7 @@ def _spec_from(data: Any, prefix: str = "") -> tuple[Any, Any]:
 
 @blueprint.post("/evaluate")
 def evaluate() -> Response:
-    from optimizer.candidates import assess
+    from optimizer.candidates import assess, missing_resistors
     from optimizer.topologies import get_topology
     from optimizer.units import parse_quantity
 
@@ -325,10 +325,10 @@ def evaluate() -> Response:
         except InputError as error:
             problems += error.problems
     if raw_parts:
+        split = spec is not None and spec.supply_arrangement == "split"
         problems += [
             Problem(f"parts.{role}", None, f"every resistor of {topology.name} given: " + ", ".join(topology.resistors))
-            for role in topology.resistors
-            if role not in raw_parts
+            for role in missing_resistors(topology, raw_parts, split)
         ]
     device = body.get("device")
     if (

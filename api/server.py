@@ -6,8 +6,11 @@ from __future__ import annotations
 
 import logging
 import signal
+import socket
 import sys
 from typing import Any, Mapping, TextIO
+
+from optimizer.errors import InputError
 
 
 def _problem_channel() -> type:
@@ -78,18 +81,26 @@ def serve(
     app = create_app(config)
     service = app.extensions["stagefit"]
     threads = service.settings.threads
-    server = create_server(
-        app,
-        host=host,
-        port=port,
-        threads=threads,
-        ident="stagefit",
-        _dispatcher=_health_first(threads),  # waitress takes its dispatcher here (a test hook in its code)
-        # the app answers 413 (problem+json) past STAGEFIT_MAX_BODY; waitress
-        # buffers a body before the app sees it, so it stops far larger ones
-        max_request_body_size=max(64 * service.settings.max_body, 16 * 2**20),
-        clear_untrusted_proxy_headers=True,
-    )
+    try:
+        server = create_server(
+            app,
+            host=host,
+            port=port,
+            threads=threads,
+            ident="stagefit",
+            _dispatcher=_health_first(threads),  # waitress takes its dispatcher here (a test hook in its code)
+            # the app answers 413 (problem+json) past STAGEFIT_MAX_BODY; waitress
+            # buffers a body before the app sees it, so it stops far larger ones
+            max_request_body_size=max(64 * service.settings.max_body, 16 * 2**20),
+            clear_untrusted_proxy_headers=True,
+        )
+    except (ValueError, socket.gaierror):  # a host that is no address and resolves to none
+        service.jobs.stop()
+        raise InputError.single(
+            "--host",
+            host,
+            "an address of this machine to listen on, e.g. 127.0.0.1, 0.0.0.0 or a host name it resolves",
+        ) from None
     server.channel_class = _problem_channel()  # waitress's own refusals as problem+json too
 
     def _stop(signum: int, frame: Any) -> None:

@@ -18,7 +18,7 @@ import numpy as np
 from optimizer import eseries, scoring
 from optimizer.catalog import Catalog
 from optimizer.devices import AnyDevice, device_from_record, device_from_row
-from optimizer.errors import InputError, Problem
+from optimizer.errors import MISSING, InputError, Problem
 from optimizer.metrics import LIMIT_METRICS
 from optimizer.record import candidate_record, part_label, record_conditions
 from optimizer.robustness import FINAL_BUILDS, basis_label, judge
@@ -28,6 +28,7 @@ from optimizer.tolerance import worst_case
 from optimizer.topologies import get_topology
 from optimizer.topologies.base import Conditions, Topology
 from optimizer.units import format_value
+from optimizer.validation import builds_with, device_traits
 
 DEFAULT_POWER_RATING = 0.125  # W, when a value is not in the catalog (common 0805 rating)
 DEFAULT_CAP_VOLTAGE = 16.0  # V, likewise for a capacitor
@@ -58,11 +59,54 @@ def _check_parts(topology: Topology, parts: dict[str, float], split: bool = Fals
         raise InputError.single(
             f"--set {unknown[0]}", parts[unknown[0]], f"a part of {topology.name}: " + ", ".join(sorted(known))
         )
-    missing = [r for r in topology.resistors if r not in parts and not (split and r in topology.split_omitted())]
+    missing = missing_resistors(topology, parts, split)
     if missing:
         raise InputError.single(
             f"--set {missing[0]}", None, f"every resistor of {topology.name} given: " + ", ".join(topology.resistors)
         )
+    for role, value in parts.items():
+        low, high = PART_VALUE_RANGE["c" if role.startswith("c_") else "r"]
+        if value != 0 and not low <= value <= high:
+            unit = "F" if role.startswith("c_") else "ohm"
+            raise InputError.single(
+                f"--set {role}", value, f"a value from {format_value(low, unit)} to {format_value(high, unit)}"
+            )
+
+
+PART_VALUE_RANGE = {"r": (1e-2, 1e9), "c": (1e-13, 10.0)}  # ohm, F: the values a design of ours can take
+
+
+def missing_resistors(topology: Topology, parts: dict[str, float], split: bool = False) -> list[str]:
+    """The resistors of ``topology`` that ``parts`` leaves out and a design needs: every one but
+    its optional parts (left out: absent, 0) and, on a split supply, those the stage omits there."""
+    return [
+        r
+        for r in topology.resistors
+        if r not in parts and r not in topology.optional_parts and not (split and r in topology.split_omitted())
+    ]
+
+
+def device_for(spec: Spec, catalog: Catalog, topology: Topology, device_id: str | None) -> str:
+    """The transistor a design of ``topology`` is built with: ``device_id``, or the first of the
+    spec's devices that builds the stage. InputError naming the device and the catalog's that
+    would do, where it is of the wrong kind or polarity for the stage (a JFET for a bipolar stage)."""
+    fits = [str(d) for d in catalog.transistors["id"] if builds_with(topology, device_traits(catalog, str(d)))]
+    if device_id is None:
+        device_id = next((d for d in spec.devices if d in fits), None)
+        if device_id is None:
+            raise InputError.single(
+                "device",
+                MISSING,
+                f"one that builds {topology.name}: the spec lists {', '.join(spec.devices)}; the catalog's that do: "
+                + (", ".join(fits) or "none"),
+            )
+    elif device_id not in fits:
+        raise InputError.single(
+            "device",
+            device_id,
+            f"one that builds {topology.name}; the catalog's that do: " + (", ".join(fits) or "none"),
+        )
+    return device_id
 
 
 def _part_records(catalog: Catalog, spec: Spec, arrays: dict[str, np.ndarray]) -> list[dict[str, dict]]:
@@ -137,15 +181,19 @@ def assess_many(
     the same as one at a time, since every step is per design and the Monte Carlo builds are
     common random numbers (tolerance.Builds)."""
     groups: dict[tuple[str, str, tuple[tuple[str, bool], ...]], list[int]] = {}
+    given: list[dict[str, float]] = []
     for k, (topology_name, parts, device_id) in enumerate(designs):
         topology = get_topology(topology_name)
         _check_parts(topology, parts, spec.supply_arrangement == "split")
+        # an optional resistor left out is absent (0)
+        parts = {**{r: 0.0 for r in topology.optional_parts if r in topology.resistors}, **parts}
+        given.append(parts)
         # the roles evaluated, and which of them are present (an optional part left out is 0)
         roles = tuple((role, float(v) > 0) for role, v in parts.items() if float(v) > 0 or role in topology.resistors)
-        groups.setdefault((topology_name, device_id or spec.devices[0], roles), []).append(k)
+        groups.setdefault((topology_name, device_for(spec, catalog, topology, device_id), roles), []).append(k)
     out: list[dict] = [{}] * len(designs)
     for (topology_name, device_id, roles), members in groups.items():
-        values = {role: np.array([float(designs[k][1][role]) for k in members]) for role, _ in roles}
+        values = {role: np.array([float(given[k][role]) for k in members]) for role, _ in roles}
         for k, record in zip(members, _assess_group(spec, catalog, topology_name, values, device_id, samples, seed)):
             out[k] = record
     return out
@@ -295,6 +343,9 @@ def _cautions(spec: Spec, near: dict[str, float], metrics: dict[str, float | Non
     else:
         notes += [
             f"{key} runs at {fraction:.0%} of its rating; check the part before building"
+            if np.isfinite(fraction)
+            else f"{key}: the part's rating is derated to nothing at the spec's highest ambient, "
+            f"{spec.temperature[1]:g} °C; no part of this kind can be used there"
             for key, fraction in near.items()
             if fraction > scoring.NEAR_RATING
         ]

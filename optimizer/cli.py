@@ -92,12 +92,20 @@ def _cmd_catalogs(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+SERIES_SPAN = (1e-12, 1e12)  # the values `stagefit series` lists from and up to
+
+
 def _cmd_series(args: argparse.Namespace) -> int:
     from optimizer.eseries import series_values
     from optimizer.units import format_value, parse_quantity
 
     low = parse_quantity(args.decade, where="--decade", allow_zero=False)
     high = low * 10 if args.upto is None else parse_quantity(args.upto, where="--upto", allow_zero=False)
+    for where, value in (("--decade", low), ("--upto", high)):
+        if not SERIES_SPAN[0] <= value <= SERIES_SPAN[1]:
+            raise InputError.single(where, value, "a value from 1 p to 1 T (twelve decades either side of 1)")
+    if high < low:
+        raise InputError.single("--upto", high, f"a value at or above --decade ({format_value(low)})")
     values = series_values(args.series, low, high)
     if high == low * 10:
         values = values[values < high]  # one decade: 1k..8k2, not 10k again

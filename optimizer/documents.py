@@ -20,16 +20,18 @@ from typing import Any
 
 import yaml
 
-from optimizer.errors import InputError
+from optimizer.errors import InputError, Problem
 
 MAX_ALIASES = 32  # alias references (*name) in one YAML document
 MAX_NODES = 50_000  # values in a document, aliases expanded (a spec has about 60)
 MAX_DEPTH = 32  # levels of nesting (a spec has 3)
 MAX_BYTES = 1024 * 1024  # a spec file (the REST service has its own, smaller body limit)
+MAX_INT_DIGITS = 4300  # the longest integer text int() converts (Python's default limit)
 
 
 class _BoundedLoader(yaml.SafeLoader):
-    """PyYAML's safe loader counting alias references."""
+    """PyYAML's safe loader counting alias references, refusing a key given twice in one
+    mapping and an integer of more digits than Python converts (:data:`MAX_INT_DIGITS`)."""
 
     def compose_node(self, parent: Any, index: Any) -> Any:
         if self.check_event(yaml.events.AliasEvent):
@@ -40,6 +42,60 @@ class _BoundedLoader(yaml.SafeLoader):
                     None, None, f"more than {MAX_ALIASES} YAML aliases (*name) in one document", event.start_mark
                 )
         return super().compose_node(parent, index)
+
+    def construct_mapping(self, node: Any, deep: bool = False) -> Any:
+        if isinstance(node, yaml.MappingNode):
+            first: dict[Any, Any] = {}  # key -> the mark where it was first given
+            for key_node, _ in node.value:
+                if key_node.tag == "tag:yaml.org,2002:merge":
+                    continue  # a merged mapping's keys may be overridden: that is what << is for
+                key = self.construct_object(key_node, deep=deep)
+                try:
+                    mark = first.setdefault(key, key_node.start_mark)
+                except TypeError:
+                    continue  # an unhashable key: the base class refuses it
+                if mark is not key_node.start_mark:
+                    raise yaml.constructor.ConstructorError(
+                        None,
+                        None,
+                        f"key {_shorten(key)!r} given twice (first on line {mark.line + 1}); give each key once",
+                        key_node.start_mark,
+                    )
+        return super().construct_mapping(node, deep=deep)
+
+    def construct_yaml_int(self, node: Any) -> int:
+        try:
+            return super().construct_yaml_int(node)
+        except ValueError:  # more digits than int() converts
+            raise yaml.constructor.ConstructorError(
+                None,
+                None,
+                f"a number of at most {MAX_INT_DIGITS} digits (this integer has {len(node.value)} characters)",
+                node.start_mark,
+            ) from None
+
+
+_BoundedLoader.add_constructor("tag:yaml.org,2002:int", _BoundedLoader.construct_yaml_int)
+
+
+def _shorten(key: object) -> object:
+    """A mapping key to name in a message: text of at most 40 characters."""
+    return key if not isinstance(key, str) or len(key) <= 40 else f"{key[:40]}..."
+
+
+def _unique_keys(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
+    """A JSON object from its (key, value) pairs; InputError if a key is given twice."""
+    data: dict[str, Any] = {}
+    for key, value in pairs:
+        if key in data:
+            raise InputError.single(
+                str(_shorten(key)),
+                key,
+                "each key once in a JSON object; this key is given twice",
+                "unreadable document",
+            )
+        data[key] = value
+    return data
 
 
 def _reject_constant(name: str) -> Any:
@@ -70,7 +126,7 @@ def parse_json(text: str, where: str) -> Any:
     """The JSON document in ``text`` (strict: no NaN or Infinity); InputError if it is not
     valid or not within bounds."""
     try:
-        data = json.loads(text, parse_constant=_reject_constant)
+        data = json.loads(text, parse_constant=_reject_constant, object_pairs_hook=_unique_keys)
     except json.JSONDecodeError as exc:
         raise InputError.single(
             f"{where}:{exc.lineno}:{exc.colno}",
@@ -82,9 +138,16 @@ def parse_json(text: str, where: str) -> Any:
         raise InputError.single(
             where, "<deeply nested JSON>", f"at most {MAX_DEPTH} levels of nesting", "unreadable document"
         ) from None
+    except InputError as exc:  # a key given twice
+        raise InputError(
+            [Problem(f"{where}: {p.where}", p.value, p.expected) for p in exc.problems], exc.title
+        ) from None
     except ValueError as exc:  # NaN / Infinity, or an integer of more digits than Python converts
         raise InputError.single(
-            where, str(exc)[:120], "valid JSON with finite numbers of at most 4300 digits", "unreadable document"
+            where,
+            str(exc)[:120],
+            f"valid JSON with finite numbers of at most {MAX_INT_DIGITS} digits",
+            "unreadable document",
         ) from None
     check_tree(data, where)
     return data

@@ -10,6 +10,17 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 
+class _Missing:
+    """The value of a :class:`Problem` whose field was not given at all (unlike a null the
+    user wrote, which is the value None)."""
+
+    def __repr__(self) -> str:
+        return "<missing>"
+
+
+MISSING = _Missing()
+
+
 @dataclass(frozen=True)
 class Problem:
     """One thing wrong with an input: where, the value given, and what is valid."""
@@ -19,6 +30,8 @@ class Problem:
     expected: str
 
     def __str__(self) -> str:
+        if isinstance(self.value, _Missing):
+            return f"{self.where}: missing; {self.expected}"
         shown = (
             repr(self.value)
             if not isinstance(self.value, int) or abs(self.value) < 10**40

@@ -129,7 +129,11 @@ def _above(value: np.ndarray, minimum: float | np.ndarray) -> np.ndarray:
 
 
 def _below(value: np.ndarray, maximum: float | np.ndarray) -> np.ndarray:
-    return np.maximum(0.0, (np.nan_to_num(value, nan=np.inf) - maximum) / maximum).clip(max=1e6)
+    # a maximum of 0 (a rating derated to nothing at the spec's highest ambient) is violated by
+    # any value above it, as far as a violation goes (1e6), and met by 0
+    with np.errstate(divide="ignore", invalid="ignore"):
+        excess = (np.nan_to_num(value, nan=np.inf) - maximum) / maximum
+    return np.maximum(0.0, np.nan_to_num(excess, nan=0.0)).clip(max=1e6)
 
 
 def limit_violations(
@@ -243,7 +247,8 @@ def near_ratings(
     out = {}
     for key, limit in rating_limits.items():
         value = metrics["q_power"] if key == "q_power" else ratings[key]
-        fraction = np.abs(np.asarray(value)) / limit
+        with np.errstate(divide="ignore", invalid="ignore"):  # a limit of 0: inf (derated to nothing)
+            fraction = np.abs(np.asarray(value)) / limit
         if np.any(fraction > NEAR_RATING):
             out[key] = fraction
     return out

@@ -28,7 +28,7 @@ from pydantic import (
     model_validator,
 )
 
-from optimizer.errors import InputError, Problem
+from optimizer.errors import MISSING, InputError, Problem
 from optimizer.eseries import SERIES
 from optimizer.limits import MAX_BATCH, MAX_DESCRIPTION, MAX_NAME, MAX_SAMPLES, MAX_TOP, MAX_TRIALS  # noqa: F401 (re-exported)
 from optimizer.metrics import METRICS
@@ -211,14 +211,11 @@ class Gain(_Section):
             problems.append(Problem("tolerance", data["tolerance"], "either tolerance or tolerance_db, not both"))
         elif "tolerance" in data or "tolerance_db" in data:
             key = "tolerance" if "tolerance" in data else "tolerance_db"
+            written = data.pop(key)
             try:
-                data["tolerance_db"] = _tolerance_db(data.pop(key), in_db=key == "tolerance_db")
+                data["tolerance_db"] = _tolerance_db(written, in_db=key == "tolerance_db")
             except (InputError, ValueError) as exc:
-                problems.append(
-                    Problem(
-                        key, exc.problems[0].value if isinstance(exc, InputError) else data.get(key), _expected(exc)
-                    )
-                )
+                problems.append(Problem(key, written, _expected(exc)))
         if "target" in data:
             raw = data["target"]
             try:
@@ -277,17 +274,21 @@ def _gain_target(raw: object) -> tuple[float, bool]:
 
 def _tolerance_db(raw: object, *, in_db: bool) -> float:
     """Gain tolerance in dB from '1 dB', a number of dB, or a fraction (0.1, '10 %')."""
-    expected = "a tolerance above 0 and below 20 dB ('1 dB'), or a fraction below 1 (0.1)"
+    expected = "a tolerance above 0 and below 20 dB ('1 dB'), or a fraction above 0 and below 1 (0.1)"
     if isinstance(raw, bool) or not isinstance(raw, (str, int, float)):
         raise ValueError(expected)
     if in_db or (isinstance(raw, str) and raw.strip().lower().endswith("db")):
         tol = parse_quantity(raw, "dB", where="", allow_negative=True)
     else:
         fraction = _percent_or_fraction(raw, "")
-        if not 0 < fraction < 1:
+        if fraction <= 0:
+            raise ValueError(f"{expected}; a tolerance must be above 0")
+        if fraction >= 1:
             raise ValueError(f"{expected}; a fraction of 1 or more lets the gain reach 0")
         tol = 20 * math.log10(1 + fraction)
-    if not 0 < tol < 20:
+    if tol <= 0:
+        raise ValueError(f"{expected}; a tolerance must be above 0 dB")
+    if tol >= 20:
         raise ValueError(f"{expected}; 20 dB or more excludes nothing")
     return tol
 
@@ -550,7 +551,10 @@ def _read_supply(raw: object) -> dict[str, Any]:
         try:
             nominal, low, high = _rail(raw, "supply")
         except InputError as exc:
-            if exc.problems[0].where == "supply" and not isinstance(raw, dict):
+            problem = exc.problems[0]
+            # a reason after "; " is the reader's (a unit that is no voltage, a number not
+            # finite) and stands; a value not read at all, or 0 V, is told the supply's forms
+            if problem.where == "supply" and not isinstance(raw, dict) and "; " not in problem.expected:
                 raise InputError.single("supply", raw, _SUPPLY_FORMS, _TITLE) from None
             raise
         if nominal > 0:
@@ -817,6 +821,15 @@ def _find_section(annotation: Any) -> type[_Section] | None:
     return None
 
 
+#: What each required spec key holds, named when the key is missing.
+_REQUIRED_FORMS = {
+    "name": "a name for the spec, e.g. 'line_driver'",
+    "supply": _SUPPLY_FORMS,
+    "gain": "a gain in V/V (e.g. -10) or in dB (e.g. '20 dB'), or {target, tolerance, inverting}",
+    "load_impedance": "a resistance such as '47k'",
+    "band": "[low, high] in Hz, e.g. [20 Hz, 20 kHz]",
+}
+
 _BUILTIN_EXPECTED = {
     "missing": "a value is required here",
     "bool_type": "true or false",
@@ -844,7 +857,9 @@ def _problems_from(error: ValidationError) -> list[Problem]:
         if isinstance(cause, InputError):
             for p in cause.problems:
                 sub = f"{where}.{p.where}" if where and p.where else (where or p.where)
-                problems.append(Problem(sub, p.value if p.where else given, p.expected))
+                # a supply that could not be read carries the value written in its problem
+                written = p.value if p.where or isinstance(given, _SupplyProblem) else given
+                problems.append(Problem(sub, written, p.expected))
             continue
         if kind == "extra_forbidden":
             section = _section_at(loc[:-1])
@@ -852,6 +867,9 @@ def _problems_from(error: ValidationError) -> list[Problem]:
             expected = (
                 f"unknown key {loc[-1]!r}{_suggestion(loc[-1], allowed)}; allowed keys here: {', '.join(allowed)}"
             )
+        elif kind == "missing":
+            given = MISSING  # pydantic gives the whole enclosing mapping
+            expected = _BUILTIN_EXPECTED[kind] + (f": {_REQUIRED_FORMS[where]}" if where in _REQUIRED_FORMS else "")
         elif cause is not None:
             expected = str(cause)
         elif (

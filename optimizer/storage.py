@@ -1584,6 +1584,10 @@ def repair_journal(path: str | Path) -> JournalReport:
     if report.clean:
         return report
     found = report.path
+    if not report.records:  # nothing of a journal to keep: another kind of file, left as it is
+        raise InputError.single(
+            "FILE", str(path), "a journal file with readable records (this one has none: it is left as it is)"
+        )
     lock = _FlockLock(found.with_name(found.name + ".lock"))
     lock.acquire()
     try:
@@ -1613,7 +1617,36 @@ def repair_journal(path: str | Path) -> JournalReport:
     return JournalReport(found, report.size, records, damaged, tail, backup)
 
 
+JOURNAL_PROBE_LINES = 8  # lines read from an existing file's head to tell a journal from another file
+
+
+def _refuse_other_files(path: Path) -> None:
+    """InputError when ``path`` is an existing file that is not a journal: none of its first
+    JOURNAL_PROBE_LINES lines is a journal record (an empty file, or one whose only line is a
+    first record still being written, starts a journal). Appending to it would mix journal
+    records into the user's file."""
+    try:
+        with open(path, "rb") as handle:
+            head = [line for _, line in zip(range(JOURNAL_PROBE_LINES), handle)]
+    except FileNotFoundError:
+        return
+    except OSError as exc:
+        raise StorageError(f"cannot read the journal {path}: {exc}") from None
+    complete = [line for line in head if line.endswith(b"\n")]
+    if any(_valid_record(line) is not None for line in complete):
+        return
+    if not head or (not complete and head[0].startswith(b'{"op_code"')):
+        return
+    raise InputError.single(
+        "storage",
+        str(path),
+        "a journal file of stagefit (this file holds no journal record in its first lines: another kind of "
+        "file, left as it is), or a path where none exists yet",
+    )
+
+
 def _journal(path: Path) -> BaseStorage:
+    _refuse_other_files(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     backend = _BatchSyncedJournal(str(path), str(path.with_name(path.name + ".lock")))
     storage = _JournalStorage(backend)

@@ -13,7 +13,13 @@ from optimizer import robustness
 from optimizer.catalog import load_catalog
 from optimizer.metrics import LIMIT_METRICS, unit as metric_unit
 from optimizer.record import candidate_record, part_label, record_conditions
-from optimizer.scoring import CAPACITOR_VOLTAGE_DERATING, MIDBAND_DEVIATION_MAX, binding_limit, pareto_mask
+from optimizer.scoring import (
+    CAPACITOR_VOLTAGE_DERATING,
+    MIDBAND_DEVIATION_MAX,
+    binding_limit,
+    pareto_mask,
+    transistor_derating,
+)
 from optimizer.search.space import PartTable, SearchSpace
 from optimizer.spec import Spec
 from optimizer.topologies import get_topology
@@ -274,6 +280,11 @@ def relax_one_limit(
         facts = [f for f in facts if f]
         parts.append(f"{limit} ({'; '.join(facts)})" if facts else limit)
     rating = capacitor_rating_hint(tuple(limits), record, capacitors)
+    if tuple(limits) == ("rating:q_power",) and transistor_derating(spec.temperature[1]) == 0.0:
+        rating = (
+            f"; at the spec's highest ambient, {spec.temperature[1]:g} °C, a transistor may dissipate nothing "
+            "(its junction's limit): a lower top of the temperature range would give an answer"
+        )
     if not limits:
         text = "no design was evaluated"
     elif rating:  # a part's rating, not a limit of the spec's to relax
