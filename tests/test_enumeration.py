@@ -3,6 +3,7 @@ by the core model's optimistic score (optimizer.search.enumeration)."""
 
 from __future__ import annotations
 
+import importlib
 import itertools
 
 import numpy as np
@@ -12,6 +13,7 @@ from optimizer.exhaustive import exhaustive
 from optimizer.search import SearchSpace, evaluate_group, search, with_search
 from optimizer.search.enumeration import BOUND_SEEDS, ENUMERATED_PER_TRIAL, Enumeration, bound_seeds
 from optimizer.spec import load_spec
+from optimizer.topologies import get_topology
 
 PAIR_SPLIT = "benchmarks/specs/bs_e3_feedback_pair_split.yaml"  # 6**6 = 46,656 combinations
 ISLAND = "benchmarks/specs/bs_e3_feedback_pair.yaml"  # optimum no one- or two-step move reaches
@@ -92,3 +94,29 @@ def test_a_short_search_finds_an_optimum_that_stands_apart() -> None:
     best = max(c.get("nominal_score", c["score"]) for c in found.candidates)
     assert best >= 0.99 * oracle.best["score"]
     assert best > 0.6912 / 0.99
+
+
+def test_the_gain_bound_grid_in_chunks_is_the_whole_grid(monkeypatch) -> None:
+    # three gain-bound roles (feedback_pair_ac: r_feedback, r_emitter, r_emitter_dc), judged a
+    # few hundred at a time, keep the same combinations in the same order as in one call
+    spec = load_spec(PAIR_SPLIT).model_copy(update={"topologies": ("feedback_pair_ac",)})
+    space = SearchSpace.build(spec)
+    whole = Enumeration(space, "feedback_pair_ac", prune=True).pairs
+    monkeypatch.setattr(importlib.import_module("optimizer.search.enumeration"), "GRID_CHUNK", 100)
+    chunked = Enumeration(space, "feedback_pair_ac", prune=True).pairs
+    assert whole.shape[1] == 3 and 0 < len(whole) < 6**3
+    assert np.array_equal(whole, chunked)
+
+
+def test_a_group_too_large_by_its_other_roles_alone_is_not_pruned_for_seeds(monkeypatch) -> None:
+    # E192 over five decades: 961**3 gain-bound combinations of feedback_pair_ac (10**9, 21 GB as
+    # one grid); its other roles alone exceed the seeds' room, so the bound is never computed
+    spec = load_spec(ISLAND).model_copy(update={"topologies": ("feedback_pair_ac",)})
+    spec = spec.model_copy(update={"parts": spec.parts.model_copy(update={"resistor_series": "E192"})})
+    space = SearchSpace.build(spec)
+
+    def no_bound(*args: object) -> None:
+        raise AssertionError("the gain bound was computed for a group too large to seed from")
+
+    monkeypatch.setattr(type(get_topology("feedback_pair_ac")), "gain_bound", no_bound)
+    assert bound_seeds(space, 4000) == []

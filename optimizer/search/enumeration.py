@@ -26,42 +26,61 @@ from optimizer.topologies import get_topology
 BOUND_SEEDS = 16  # designs per (topology, device) group enqueued from the bound ranking
 ENUMERATED_PER_TRIAL = 32  # the groups enumerated hold at most this many combinations per trial of the budget
 CHUNK = 65_536  # combinations per vectorised core call
+GRID_CHUNK = 1 << 20  # gain-bound combinations judged per call when pruning
 
 
 class Enumeration:
     """Every combination of ``topology``'s resistor indices on ``space`` (ABSENT included for
     an optional part), in chunks; with ``prune`` and a topology that has a gain bound, only
-    the (r_collector, r_emitter) pairs that can reach the spec's gain window are combined
-    with the other roles (the rest cannot meet the gain limit)."""
+    the combinations of its gain-bound roles (e.g. r_collector, r_emitter) that can reach the
+    spec's gain window are combined with the other roles (the rest cannot meet the gain limit).
+    The gain-bound combinations are found on first use of :attr:`size` or :meth:`chunks`, in
+    chunks of GRID_CHUNK (three roles of E96 over five decades are 10^8 combinations);
+    :attr:`free_count`, the other roles' combinations, costs nothing."""
 
     def __init__(self, space: SearchSpace, topology: str, prune: bool) -> None:
-        model = get_topology(topology)
+        self._space, self._model = space, get_topology(topology)
         n = space.resistors.values.size
         self.roles = space.resistor_roles(topology)
-        self.lows = {r: (ABSENT if r in model.optional_parts else 0) for r in self.roles}
+        self.lows = {r: (ABSENT if r in self._model.optional_parts else 0) for r in self.roles}
         self.combinations = int(np.prod([n - self.lows[r] for r in self.roles], dtype=np.int64))  # unpruned
-        ranges = {r: np.arange(self.lows[r], n) for r in self.roles}
-        bounded: tuple[str, ...] = ()
-        if prune and model.gain_bound_roles:
-            bounded = model.gain_bound_roles
-            grid = np.stack(np.meshgrid(*(ranges[r] for r in bounded), indexing="ij"), axis=-1).reshape(
-                -1, len(bounded)
-            )
-            values = {r: space.resistors.values[np.maximum(grid[:, j], 0)] for j, r in enumerate(bounded)}
-            spec = space.spec
-            floor = spec.gain.target * 10 ** (-spec.gain.tolerance_db / 20)
-            bound = model.gain_bound(values, spec.load_impedance)
-            if bound is None:  # a developer's slip in the topology's module, not the user's
-                raise TypeError(f"topology {topology} declares gain_bound_roles but its gain_bound() gives no bound")
-            self._pairs = grid[bound >= floor]
-        else:
-            self._pairs = np.zeros((1, 0), dtype=int)
-        self._bounded = bounded
-        self._free = tuple(r for r in self.roles if r not in bounded)
+        self._bounded: tuple[str, ...] = self._model.gain_bound_roles if prune else ()
+        self._free = tuple(r for r in self.roles if r not in self._bounded)
         self._free_lows = np.array([self.lows[r] for r in self._free], dtype=int)
         self._free_shape = tuple(n - self.lows[r] for r in self._free)
-        self._free_count = int(np.prod(self._free_shape, dtype=np.int64))
-        self.size = len(self._pairs) * self._free_count  # combinations enumerated (after pruning)
+        self.free_count = int(np.prod(self._free_shape, dtype=np.int64))  # combinations of the roles not pruned
+        self._pairs: np.ndarray | None = None if self._bounded else np.zeros((1, 0), dtype=int)
+
+    @property
+    def pairs(self) -> np.ndarray:
+        """The gain-bound roles' index combinations that can reach the gain window (rows, in
+        their nested order: the last role fastest)."""
+        if self._pairs is None:
+            ranges = [np.arange(self.lows[r], self._space.resistors.values.size) for r in self._bounded]
+            shape = tuple(len(r) for r in ranges)
+            total = int(np.prod(shape, dtype=np.int64))
+            spec = self._space.spec
+            floor = spec.gain.target * 10 ** (-spec.gain.tolerance_db / 20)
+            kept = []
+            for start in range(0, total, GRID_CHUNK):
+                at = np.unravel_index(np.arange(start, min(start + GRID_CHUNK, total)), shape)
+                grid = np.stack([r[i] for r, i in zip(ranges, at)], axis=-1)
+                values = {
+                    r: self._space.resistors.values[np.maximum(grid[:, j], 0)] for j, r in enumerate(self._bounded)
+                }
+                bound = self._model.gain_bound(values, spec.load_impedance)
+                if bound is None:  # a developer's slip in the topology's module, not the user's
+                    raise TypeError(
+                        f"topology {self._model.name} declares gain_bound_roles but its gain_bound() gives no bound"
+                    )
+                kept.append(grid[bound >= floor])
+            self._pairs = np.concatenate(kept)
+        return self._pairs
+
+    @property
+    def size(self) -> int:
+        """Combinations enumerated (after pruning)."""
+        return len(self.pairs) * self.free_count
 
     def chunks(self, chunk: int) -> Iterator[np.ndarray]:
         """Index arrays (combinations, roles) in the order of ``roles``."""
@@ -69,9 +88,9 @@ class Enumeration:
         for start in range(0, self.size, chunk):
             linear = np.arange(start, min(start + chunk, self.size))
             out = np.empty((linear.size, len(self.roles)), dtype=int)
-            pair, free = np.divmod(linear, self._free_count)
+            pair, free = np.divmod(linear, self.free_count)
             for j, r in enumerate(self._bounded):
-                out[:, column[r]] = self._pairs[pair, j]
+                out[:, column[r]] = self.pairs[pair, j]
             if self._free:
                 for j, idx in enumerate(np.unravel_index(free, self._free_shape)):
                     out[:, column[self._free[j]]] = idx + self._free_lows[j]
@@ -88,6 +107,7 @@ def bound_seeds(space: SearchSpace, budget: int) -> list[Design]:
     resistors (searched capacitors, a decoupling RC) are left to the search. Ties keep the
     enumeration's order, so the seeds are the same on every run."""
     groups = []
+    room = ENUMERATED_PER_TRIAL * budget
     for topology in space.topologies:
         if not get_topology(topology).core_is_bound:
             continue
@@ -95,9 +115,10 @@ def bound_seeds(space: SearchSpace, budget: int) -> list[Design]:
         if set(roles) != set(space.resistor_roles(topology)):
             continue
         enumeration = Enumeration(space, topology, prune=True)
+        if enumeration.free_count > room:
+            continue  # a single gain-bound combination would already make the group too large
         groups += [(enumeration.size, topology, device, enumeration) for device in space.devices_of(topology)]
     seeds: list[Design] = []
-    room = ENUMERATED_PER_TRIAL * budget
     for size, topology, device, enumeration in sorted(groups, key=lambda g: g[0]):
         if size == 0 or size > room:
             continue
