@@ -13,6 +13,7 @@ import difflib
 import hashlib
 import json
 import math
+import re
 from pathlib import Path
 from typing import Annotated, Any, Callable, Literal
 
@@ -691,6 +692,23 @@ class Spec(_Section):
     objectives: tuple[ObjectiveItem, ...] = (Objective(metric="supply_current"), Objective(metric="swing_vpp"))
     search: Search = Field(default_factory=Search)
 
+    @field_validator("name", "description", mode="before")
+    @classmethod
+    def _plain_text(cls, value: object, info: ValidationInfo) -> object:
+        """Text that prints as written: no control character (a description may hold tabs and
+        line breaks) and no direction override, which would make a terminal or a page show
+        other text than the stored one; bytes (YAML's !!binary) are no text."""
+        if value is None and info.field_name == "description":
+            return value
+        if not isinstance(value, str):
+            raise ValueError("text (a YAML or JSON string)")
+        found = _UNPRINTABLE.search(value if info.field_name == "name" else value.replace("\t", "").replace("\n", ""))
+        if found:
+            raise ValueError(
+                f"text without control characters or direction overrides (found U+{ord(found.group()):04X})"
+            )
+        return value
+
     @field_validator("band")
     @classmethod
     def _band_order(cls, value: tuple[float, float]) -> tuple[float, float]:
@@ -820,6 +838,10 @@ def _find_section(annotation: Any) -> type[_Section] | None:
             return found
     return None
 
+
+#: Characters a name or description may not hold: C0 and C1 controls, DEL, and the Unicode
+#: direction overrides and isolates (U+202A..U+202E, U+2066..U+2069).
+_UNPRINTABLE = re.compile("[\x00-\x1f\x7f-\x9f\u202a-\u202e\u2066-\u2069]")
 
 #: What each required spec key holds, named when the key is missing.
 _REQUIRED_FORMS = {

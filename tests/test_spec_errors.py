@@ -87,3 +87,24 @@ def test_key_given_twice_is_bad_input(
 ) -> None:
     err = check(tmp_path, text, capsys, suffix)
     assert "'supply'" in err and "twice" in err and where in err, err
+
+
+@pytest.mark.parametrize(
+    "name, shown",
+    [
+        ("bad\u202eman", "U+202E"),
+        ("nul\x00here", "U+0000"),
+        ("bell\x07", "U+0007"),
+        (b"hello", "a YAML or JSON string"),
+    ],
+)
+def test_a_name_that_would_not_print_as_written_is_refused(name: object, shown: str) -> None:
+    # a direction override (U+202E) would show other text than the stored one; a NUL is refused by
+    # databases; YAML's !!binary gives bytes, no text
+    with pytest.raises(InputError) as err:
+        parse_spec({**BASE, "name": name})
+    assert err.value.problems[0].where == "name" and shown in str(err.value)
+
+
+def test_a_description_keeps_its_tabs_and_line_breaks() -> None:
+    assert parse_spec({**BASE, "description": "two\nlines\tand a tab"}).description == "two\nlines\tand a tab"
