@@ -182,15 +182,18 @@ def assess_many(
     common random numbers (tolerance.Builds)."""
     groups: dict[tuple[str, str, tuple[tuple[str, bool], ...]], list[int]] = {}
     given: list[dict[str, float]] = []
+    devices: dict[tuple[str, str | None], str] = {}  # (topology, device asked) -> device built with
     for k, (topology_name, parts, device_id) in enumerate(designs):
         topology = get_topology(topology_name)
         _check_parts(topology, parts, spec.supply_arrangement == "split")
+        if (topology_name, device_id) not in devices:
+            devices[topology_name, device_id] = device_for(spec, catalog, topology, device_id)
         # an optional resistor left out is absent (0)
         parts = {**{r: 0.0 for r in topology.optional_parts if r in topology.resistors}, **parts}
         given.append(parts)
         # the roles evaluated, and which of them are present (an optional part left out is 0)
         roles = tuple((role, float(v) > 0) for role, v in parts.items() if float(v) > 0 or role in topology.resistors)
-        groups.setdefault((topology_name, device_for(spec, catalog, topology, device_id), roles), []).append(k)
+        groups.setdefault((topology_name, devices[topology_name, device_id], roles), []).append(k)
     out: list[dict] = [{}] * len(designs)
     for (topology_name, device_id, roles), members in groups.items():
         values = {role: np.array([float(given[k][role]) for k in members]) for role, _ in roles}
