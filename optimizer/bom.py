@@ -72,13 +72,19 @@ BIAS_FLOOR = 0.1  # V: below this DC across an electrolytic, the bias does not s
 _NODE_WORDS = {
     "src": "the input (source side)",
     "out": "the output (load side)",
-    "0": "ground",
-    "vcc": "the supply",
     "base": "Q1's base",
     "collector": "Q1's collector",
     "emitter": "Q1's emitter",
     "e2": "the emitter resistors' junction",
     "emitter2": "Q2's emitter",
+    "collector2": "Q2's collector",
+    "efb": "the junction of r_emitter and c_feedback",
+    "mid": "the bias divider's midpoint",
+    "gate": "Q1's gate",
+    "drain": "Q1's drain",
+    "source": "Q1's source",
+    "s2": "the source resistors' junction",
+    "tap": "the junction of r_source and r_follower",
 }
 _RATING = {"resistor": "power_rating", "capacitor": "voltage_rating"}
 
@@ -244,7 +250,10 @@ def _describe(kind: str, row: pd.Series | None) -> dict:
 def _orientation(
     roles: list[str], nodes: dict[str, tuple[str, ...]], volts: dict[str, float], names: dict[str, str]
 ) -> str:
-    """Which way round a polarised capacitor goes, from the DC voltage at its two nodes."""
+    """Which way round a polarised capacitor goes, from the DC voltage at its two nodes. The
+    template's rails (``vcc`` and ``0``, the stage drawn as NPN on a positive rail) are named by
+    their true voltage: ground, the positive rail or the negative rail."""
+    words = {**_NODE_WORDS, **{rail: _rail_word(volts[rail]) for rail in ("vcc", "0")}}
     out = []
     for role in roles:
         a, b = nodes[role][:2]
@@ -257,10 +266,15 @@ def _orientation(
             )
         else:
             out.append(
-                f"{names[role]}: + toward {_NODE_WORDS.get(high, high)} ({volts[high]:.2f} V DC), "
-                f"- toward {_NODE_WORDS.get(low, low)} ({volts[low]:.2f} V DC)"
+                f"{names[role]}: + toward {words.get(high, high)} ({volts[high]:.2f} V DC), "
+                f"- toward {words.get(low, low)} ({volts[low]:.2f} V DC)"
             )
     return "; ".join(out)
+
+
+def _rail_word(volts: float) -> str:
+    """A rail as an assembler names it, from its true DC voltage (V)."""
+    return "ground" if volts == 0 else "the positive rail" if volts > 0 else "the negative rail"
 
 
 def _line(

@@ -279,3 +279,13 @@ def test_class2_only_when_the_spec_allows_it_and_then_cautioned(bench, spec) -> 
     assert any("class-2 ceramic (X7R)" in c for c in allowed.cautions)
     assert any("class-2" in line for line in allowed.to_csv().splitlines() if line.startswith("# caution"))
     assert any("class-2" in c for c in allowed.to_dict()["cautions"])
+
+
+def test_every_node_of_every_template_has_words_for_the_assembler() -> None:
+    # an orientation note names both ends of a polarised capacitor: no template node left as its
+    # netlist name (the rails are named by their true voltage: ground, the positive or negative rail)
+    from optimizer.bom import _NODE_WORDS
+    from optimizer.topologies import TOPOLOGIES
+
+    nodes = {n for t in TOPOLOGIES.values() for _, a, b in t.elements for n in (a, b)}
+    assert nodes - set(_NODE_WORDS) == {"vcc", "0"}

@@ -278,3 +278,19 @@ def test_feedback_ce_spans_a_split_supply_with_its_emitter_on_the_negative_rail(
     record = assess(spec, CATALOG, "feedback_ce", {k: v for k, v in parts.items() if k.startswith("r_")}, "npn-general")
     assert record["operating_point"]["v_emitter"] < -10.0 and record["operating_point"]["v_base"] < -9.0
     assert any(d.topology == "feedback_ce" for d in SearchSpace.build(spec, CATALOG).seeds())  # the span's hand seed
+
+
+@pytest.mark.parametrize(
+    "supply, device, rail",
+    [("+-12 V", "npn-general", "the negative rail"), ("12 V", "pnp-general", "the positive rail")],
+)
+def test_a_bypass_capacitor_names_the_rail_it_returns_to(supply: str, device: str, rail: str) -> None:
+    # c_emitter returns to the emitter-side rail of the stage as drawn: on +-12 V that is -12 V, not
+    # ground; for a PNP stage on +12 V it is the positive rail
+    spec = parse_spec({**SPEC, "supply": supply})
+    resistors = {"r_top": 56e3, "r_bottom": 10e3, "r_collector": 4.7e3, "r_emitter": 220.0, "r_emitter_dc": 820.0}
+    if supply.startswith("+-"):
+        resistors = {k: v for k, v in resistors.items() if k != "r_top"}
+    record = assess(spec, CATALOG, "divider_ce_split", resistors, device, samples=20)
+    note = {ln["roles"]: ln for ln in kit(record, CATALOG, 1).to_dict()["lines"]}["c_emitter"]["orientation"]
+    assert f"toward {rail} (" in note and "ground (-" not in note and "ground (12" not in note, note
