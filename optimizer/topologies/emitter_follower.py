@@ -370,10 +370,12 @@ class EmitterFollower(StageModel):
     ) -> Callable[..., np.ndarray]:
         """Load voltage (V) against source voltage (V): q1's base loop in the held-capacitor
         two-port at every sample. Past cutoff q1 passes no current and the emitter rests where
-        its network holds it; at the other end the emitter stops vce_sat below the rail.
+        its network holds it; at the other end q1 saturates through its base-collector junction
+        (physics.solve_junction's ``saturation``: a base driven above the rail, as a bootstrap or
+        a large drive does, lifts the emitter to within tens of millivolts of it, as ngspice has
+        it), and a sample past that solve's reach (deep saturation) rests at the rail.
         ``waves=True``: q1's solution instead (vbe, ic, ib, v_emitter ... per sample)."""
         op = b.op
-        vce_sat = device.vce_sat
 
         def out(vs: np.ndarray, waves: bool = False) -> np.ndarray | dict[str, np.ndarray]:
             q = follower_loop(
@@ -385,8 +387,9 @@ class EmitterFollower(StageModel):
                 i_s,
                 v_start=op["vbe"],
                 iterations=physics.THD_ITERATIONS,
+                saturation=True,
             )
-            return q if waves else np.minimum(q["v_emitter"], c.supply - vce_sat) - op["v_emitter"]
+            return q if waves else np.minimum(q["v_emitter"], c.supply) - op["v_emitter"]
 
         return out
 
