@@ -55,3 +55,20 @@ def test_a_search_short_of_input_impedance_suggests_a_jfet() -> None:
     result = search(spec, top=1)
     assert not result.candidates[0]["feasible"]
     assert "to let jfet_follower compete (it also needs jfet_follower in topologies)" in result.infeasible["text"]
+
+
+def test_a_gain_lost_to_a_high_impedance_source_points_to_the_jfet_common_source() -> None:
+    # -5 V/V from a 1 Mohm source on 5 V: a bipolar stage's 60 kohm input takes 94 % of the signal
+    spec = parse_spec({**SPEC, "supply": "5 V", "gain": -5, "limits": {}, "topologies": ["divider_ce"]})
+    lost = {
+        "topology": "divider_ce",
+        "violations": {"gain": 12.0},
+        "metrics": {"input_impedance": 60e3, "gain_db": -1.2},
+        "binding": "gain",
+    }
+    text = relax_one_limit(spec, [lost])["text"]
+    assert "the 1 MΩ source against the nearest design's 60 kΩ input impedance costs most of the gain" in text
+    assert "to let jfet_common_source compete (it also needs jfet_common_source in topologies)" in text
+    # a stage whose input is well above the source: the gain is its own doing, no hint
+    stiff = {**lost, "metrics": {"input_impedance": 5e6, "gain_db": -1.2}}
+    assert "SF-J" not in relax_one_limit(spec, [stiff])["text"]

@@ -130,28 +130,43 @@ ROBUSTNESS_LIMITS = ("yield", "worst_case")
 
 
 JFET_FOLLOWER = "jfet_follower"  # the JFET input stage a bipolar follower's input-impedance limit points to
+JFET_COMMON_SOURCE = "jfet_common_source"  # the inverting one a gain lost to a high source impedance points to
 
 
 def jfet_hint(spec: Spec, limits: tuple[str, ...], record: dict | None) -> str:
-    """A suggestion when a bipolar follower's input impedance limit binds and the spec lists no
-    JFET: name the catalog's JFETs that would let the JFET follower compete (its gate draws no
-    base current, so its input is the gate resistor's megohms); "" otherwise."""
-    if record is None or "input_impedance_min" not in limits:
+    """A suggestion when a bipolar stage cannot take the source and the spec lists no JFET: a
+    follower's input impedance limit binds, or the gain binds where the source's impedance is
+    above the nearest design's input impedance (the divider they make costs more than half the
+    gain). It names the catalog's JFETs that would let a JFET stage compete (its gate draws no
+    base current, so its input is the gate resistor's megohms): jfet_follower for a
+    non-inverting spec, jfet_common_source for an inverting one; "" otherwise."""
+    if record is None:
         return ""
     stage = get_topology(record["topology"])
-    if stage.device_kind != "bjt" or stage.inverting or stage.transistors != 1:
-        return ""  # not a bipolar follower
+    if stage.device_kind != "bjt":
+        return ""
+    z_in = (record.get("metrics") or {}).get("input_impedance")
+    follower = "input_impedance_min" in limits and not stage.inverting and stage.transistors == 1
+    loaded = "gain" in limits and z_in is not None and spec.source_impedance > z_in
+    if not (follower or loaded):
+        return ""
     rows = load_catalog(spec.parts.catalog).transistors
     jfets = [str(i) for i, p in zip(rows["id"], rows["polarity"]) if str(p).lower() == "njf"]
     if not jfets or set(jfets) & set(spec.devices):
         return ""
-    follower = get_topology(JFET_FOLLOWER)
-    needs = [] if JFET_FOLLOWER in spec.topologies else [f"{JFET_FOLLOWER} in topologies"]
-    if spec.supply_arrangement not in follower.supplies:
-        needs.append(f"a {' or '.join(follower.supplies)} supply ({JFET_FOLLOWER} runs on no other)")
-    return (
-        f"; a bipolar follower's input impedance binds and the spec lists no JFET: list {' or '.join(jfets)} in "
-        f"devices to let {JFET_FOLLOWER} compete" + (f" (it also needs {' and '.join(needs)})" if needs else "")
+    name = JFET_COMMON_SOURCE if spec.gain.inverting else JFET_FOLLOWER
+    jfet_stage = get_topology(name)
+    needs = [] if name in spec.topologies else [f"{name} in topologies"]
+    if spec.supply_arrangement not in jfet_stage.supplies:
+        needs.append(f"a {' or '.join(jfet_stage.supplies)} supply ({name} runs on no other)")
+    why = (
+        "a bipolar follower's input impedance binds"
+        if follower
+        else f"the {format_value(spec.source_impedance, 'ohm')} source against the nearest design's "
+        f"{format_value(z_in, 'ohm')} input impedance costs most of the gain"
+    )
+    return f"; {why} and the spec lists no JFET: list {' or '.join(jfets)} in devices to let {name} compete" + (
+        f" (it also needs {' and '.join(needs)})" if needs else ""
     )
 
 
