@@ -18,7 +18,7 @@ from flask import Blueprint, Response, current_app, jsonify, request, url_for
 
 from api.jobs import JobPool, QueueFull
 from api.problems import ApiProblem
-from optimizer.errors import InputError, Problem
+from optimizer.errors import MISSING, InputError, Problem
 from optimizer.spec import MAX_SAMPLES, MAX_TOP
 
 blueprint = Blueprint("v1", __name__)
@@ -289,7 +289,7 @@ def evaluate() -> Response:
         if key not in EVALUATE_KEYS
     ]
     problems += [
-        Problem(key, None, "a value is required here") for key in ("spec", "topology", "parts") if key not in body
+        Problem(key, MISSING, "a value is required here") for key in ("spec", "topology", "parts") if key not in body
     ]
     if problems:
         raise ApiProblem(422, "invalid evaluate request", _summary(problems), kind="invalid-input", errors=problems)
@@ -327,7 +327,9 @@ def evaluate() -> Response:
     if raw_parts:
         split = spec is not None and spec.supply_arrangement == "split"
         problems += [
-            Problem(f"parts.{role}", None, f"every resistor of {topology.name} given: " + ", ".join(topology.resistors))
+            Problem(
+                f"parts.{role}", MISSING, f"every resistor of {topology.name} given: " + ", ".join(topology.resistors)
+            )
             for role in missing_resistors(topology, raw_parts, split)
         ]
     device = body.get("device")

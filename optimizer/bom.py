@@ -37,7 +37,7 @@ import pandas as pd
 
 from optimizer.candidates import design_from_record
 from optimizer.catalog import VALUE_RTOL, Catalog, is_class2
-from optimizer.errors import InputError, Problem
+from optimizer.errors import MISSING, InputError, Problem
 from optimizer.limits import MAX_UNITS
 from optimizer.netlist import dc_node_voltages, designators, element_nodes
 from optimizer.spec import Spec, spec_digest
@@ -335,7 +335,7 @@ def _candidate_parts(candidate: dict) -> tuple[list[tuple[str, str, float, str |
             )
         )
     if "topology" not in candidate:
-        problems.append(Problem("topology", None, "a topology name"))
+        problems.append(Problem("topology", MISSING, "a topology name"))
     if problems or not isinstance(parts, dict) or not isinstance(transistor, dict):
         raise InputError(problems, title="incomplete candidate record")
     topology = get_topology(candidate["topology"])

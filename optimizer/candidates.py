@@ -62,7 +62,7 @@ def _check_parts(topology: Topology, parts: dict[str, float], split: bool = Fals
     missing = missing_resistors(topology, parts, split)
     if missing:
         raise InputError.single(
-            f"--set {missing[0]}", None, f"every resistor of {topology.name} given: " + ", ".join(topology.resistors)
+            f"--set {missing[0]}", MISSING, f"every resistor of {topology.name} given: " + ", ".join(topology.resistors)
         )
     for role, value in parts.items():
         low, high = PART_VALUE_RANGE["c" if role.startswith("c_") else "r"]

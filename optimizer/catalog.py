@@ -27,7 +27,7 @@ import yaml
 from optimizer import eseries
 from optimizer.bundled import catalog_dir
 from optimizer.devices import JFET
-from optimizer.errors import InputError, Problem
+from optimizer.errors import MISSING, InputError, Problem
 from optimizer.units import parse_quantity
 
 if TYPE_CHECKING:  # pandas is imported by Table.frame only
@@ -614,7 +614,7 @@ def _read_meta(path: Path, label: str) -> tuple[dict, list[Problem]]:
         return {}, [Problem(label, str(err).splitlines()[0], "valid YAML")]
     if not isinstance(meta, dict):
         return {}, [Problem(label, meta, "a mapping with keys " + ", ".join(_META_KEYS))]
-    problems = [Problem(f"{label} key {k}", None, "a value for this key") for k in _META_KEYS if k not in meta]
+    problems = [Problem(f"{label} key {k}", MISSING, "a value for this key") for k in _META_KEYS if k not in meta]
     problems += [
         Problem(f"{label} key {k}", k, "one of the keys " + ", ".join(_META_KEYS)) for k in meta if k not in _META_KEYS
     ]
@@ -637,7 +637,7 @@ def load_catalog_dir(path: Path) -> Catalog:
     missing = [name for name in files if not (path / name).is_file()]
     if missing:
         raise InputError(
-            [Problem(f"{prefix}/{name}", None, "this file must exist") for name in missing],
+            [Problem(f"{prefix}/{name}", MISSING, "this file must exist") for name in missing],
             title="incomplete parts catalog",
         )
     meta, meta_problems = _read_meta(path / "catalog.yaml", f"{prefix}/catalog.yaml")

@@ -14,7 +14,7 @@ from typing import Any, ClassVar, Mapping, Sequence, TypeVar
 
 import numpy as np
 
-from optimizer.errors import InputError, Problem
+from optimizer.errors import MISSING, InputError, Problem
 
 BOLTZMANN = 1.380649e-23  # J/K
 ELEMENTARY_CHARGE = 1.602176634e-19  # C
@@ -110,8 +110,10 @@ class Device:
                 "transistor.model", model, "a mapping with " + ", ".join(SPICE_KEYS), title="incomplete candidate"
             )
         top = [f.name for f in fields(cls) if f.name not in SPICE_KEYS + FLICKER_KEYS]
-        missing = [Problem(f"transistor.{k}", None, "a value is required") for k in top if k not in transistor]
-        missing += [Problem(f"transistor.model.{k}", None, "a value is required") for k in SPICE_KEYS if k not in model]
+        missing = [Problem(f"transistor.{k}", MISSING, "a value is required") for k in top if k not in transistor]
+        missing += [
+            Problem(f"transistor.model.{k}", MISSING, "a value is required") for k in SPICE_KEYS if k not in model
+        ]
         if missing:
             raise InputError(missing, title="incomplete candidate")
         return cls.from_row(

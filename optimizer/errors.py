@@ -33,7 +33,9 @@ class Problem:
         if isinstance(self.value, _Missing):
             return f"{self.where}: missing; {self.expected}"
         shown = (
-            repr(self.value)
+            "null"  # what the user wrote in YAML or JSON
+            if self.value is None
+            else repr(self.value)
             if not isinstance(self.value, int) or abs(self.value) < 10**40
             else f"an integer of {len(str(abs(self.value)))} digits"
         )

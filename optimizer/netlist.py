@@ -22,7 +22,7 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
-from optimizer.errors import InputError, Problem
+from optimizer.errors import MISSING, InputError, Problem
 from optimizer.topologies import Topology, get_topology
 from optimizer.topologies.base import SUPPLY_ELEMENTS
 from optimizer.units import format_value
@@ -119,7 +119,7 @@ def _check_parts(topology: str, parts: Mapping[str, float], split: bool = False)
     for role in needed:
         if role not in parts:
             problems.append(
-                Problem(f"parts.{role}", None, f"{topology} needs a value for {role}; needed: {', '.join(needed)}")
+                Problem(f"parts.{role}", MISSING, f"{topology} needs a value for {role}; needed: {', '.join(needed)}")
             )
             continue
         value = parts[role]

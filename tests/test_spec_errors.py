@@ -108,3 +108,16 @@ def test_a_name_that_would_not_print_as_written_is_refused(name: object, shown: 
 
 def test_a_description_keeps_its_tabs_and_line_breaks() -> None:
     assert parse_spec({**BASE, "description": "two\nlines\tand a tab"}).description == "two\nlines\tand a tab"
+
+
+def test_a_null_written_reads_null_and_a_part_left_out_reads_missing() -> None:
+    # what the user wrote in YAML or JSON (null), and a part not given at all (missing), each named so
+    with pytest.raises(InputError) as err:
+        parse_spec({**BASE, "supply": None})
+    assert "supply: got null;" in str(err.value)
+    from optimizer.catalog import load_catalog
+    from optimizer.candidates import assess
+
+    with pytest.raises(InputError) as err:
+        assess(parse_spec(BASE), load_catalog("eseries_full"), "divider_ce", {"r_top": 47e3, "r_bottom": 10e3})
+    assert "--set r_collector: missing;" in str(err.value)

@@ -15,7 +15,7 @@ import numpy as np
 
 from optimizer import physics
 from optimizer.devices import AnyDevice, device_columns, device_rows, saturation_current, thermal_voltage
-from optimizer.errors import InputError, Problem
+from optimizer.errors import MISSING, InputError, Problem
 from optimizer.synthesis import HandRequirements, on_split_supply
 
 #: the registry: topology name -> model instance, in listing order (see :func:`register`).
@@ -566,7 +566,7 @@ class StageModel(Topology):
                 )
         needed = self.resistors + self.capacitors
         problems = [
-            Problem(f"parts.{r}", None, f"{self.name} needs {', '.join(needed)}") for r in needed if r not in parts
+            Problem(f"parts.{r}", MISSING, f"{self.name} needs {', '.join(needed)}") for r in needed if r not in parts
         ]
         if problems:
             raise InputError(problems, title=f"parts do not fit topology {self.name}")
