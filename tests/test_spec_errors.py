@@ -7,6 +7,8 @@ from pathlib import Path
 
 import pytest
 
+from optimizer.candidates import assess
+from optimizer.catalog import load_catalog
 from optimizer.cli import EXIT_BAD_INPUT, main
 from optimizer.errors import InputError
 from optimizer.spec import parse_spec
@@ -115,9 +117,6 @@ def test_a_null_written_reads_null_and_a_part_left_out_reads_missing() -> None:
     with pytest.raises(InputError) as err:
         parse_spec({**BASE, "supply": None})
     assert "supply: got null;" in str(err.value)
-    from optimizer.catalog import load_catalog
-    from optimizer.candidates import assess
-
     with pytest.raises(InputError) as err:
         assess(parse_spec(BASE), load_catalog("eseries_full"), "divider_ce", {"r_top": 47e3, "r_bottom": 10e3})
     assert "--set r_collector: missing;" in str(err.value)
