@@ -194,6 +194,18 @@ def capacitor_rating_hint(limits: tuple[str, ...], record: dict | None, capacito
     )
 
 
+def dissipation_hint(spec: Spec, limits: tuple[str, ...]) -> str:
+    """What the transistor's dissipation binding alone asks of the spec where its highest ambient
+    leaves the junction no dissipation at all (the rating derated to 0 W): no part has one; ""
+    otherwise."""
+    if limits != ("rating:q_power",) or transistor_derating(spec.temperature[1]) > 0.0:
+        return ""
+    return (
+        f"; at the spec's highest ambient, {spec.temperature[1]:g} °C, a transistor may dissipate nothing "
+        "(its junction's limit): a lower top of the temperature range would give an answer"
+    )
+
+
 def resistor_range_hint(spec: Spec, limits: tuple[str, ...], resistors: PartTable | None) -> str:
     """A suggestion when the input impedance limit binds above the largest resistor the search
     may choose (the top of parts.resistor_range, or of the catalog's values in it): a stage's
@@ -294,12 +306,7 @@ def relax_one_limit(
         ]
         facts = [f for f in facts if f]
         parts.append(f"{limit} ({'; '.join(facts)})" if facts else limit)
-    rating = capacitor_rating_hint(tuple(limits), record, capacitors)
-    if tuple(limits) == ("rating:q_power",) and transistor_derating(spec.temperature[1]) == 0.0:
-        rating = (
-            f"; at the spec's highest ambient, {spec.temperature[1]:g} °C, a transistor may dissipate nothing "
-            "(its junction's limit): a lower top of the temperature range would give an answer"
-        )
+    rating = capacitor_rating_hint(tuple(limits), record, capacitors) or dissipation_hint(spec, tuple(limits))
     if not limits:
         text = "no design was evaluated"
     elif rating:  # a part's rating, not a limit of the spec's to relax
