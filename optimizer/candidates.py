@@ -269,7 +269,10 @@ def _assess_group(
     judged = judge(
         spec, topology, arrays, device, conditions, tolerances, limits, nominal, full=True, builds=samples, seed=seed
     )
-    spread = worst_case(topology, arrays, device, conditions, tolerances, tuple(spec.temperature), spec.supply_spread)
+    # every corner's ranges, for the record: those the worst-case basis judged on, or found here
+    spread = judged.corners or worst_case(
+        topology, arrays, device, conditions, tolerances, tuple(spec.temperature), spec.supply_spread
+    )
     violations = judged.violations
     feasible = scoring.total_violation(violations) == 0
     gain_error = scoring.gain_error_db(spec, np.asarray(result.metrics["gain"], dtype=float))

@@ -39,13 +39,15 @@ FINAL_BUILDS = 2000  # builds of a ranked design's full assessment
 @dataclass
 class Judgement:
     """Violations (limit -> normalised excess over candidates, robustness included), the
-    yield (fraction; NaN unless the basis is yield) with its number of builds, and the bias
-    spread (tolerance.bias_spread)."""
+    yield (fraction; NaN unless the basis is yield) with its number of builds, the bias
+    spread (tolerance.bias_spread) and, where the basis judged every corner of every part
+    (worst_case, ``full``), those corners' ranges (tolerance.worst_case's; None otherwise)."""
 
     violations: dict[str, np.ndarray]
     yield_fraction: np.ndarray
     builds: int
     spread: dict[str, np.ndarray]
+    corners: dict[str, tuple[np.ndarray, np.ndarray]] | None = None
 
 
 def basis_label(spec: Spec, feasible: bool, yield_fraction: float | None, builds: int) -> dict:
@@ -115,6 +117,7 @@ def judge(
     n = next(iter(parts.values())).shape[0]
     violations = dict(nominal_violations)
     yield_fraction = np.full(n, np.nan)
+    corners = None
     if basis == "yield":
 
         def passes(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:
@@ -148,4 +151,5 @@ def judge(
         violations = {k: np.maximum(v, at_corners.get(k, 0.0)) for k, v in violations.items() if k != "worst_case"}
         violations["worst_case"] = np.zeros(n)
     spread = bias_spread(topology, parts, device, conditions, tolerances, temperature_range, supply_range)
-    return Judgement(violations, yield_fraction, builds if basis == "yield" else 0, spread)
+    # the corners of every part (full) are the record's ranges too (candidates.assess_many)
+    return Judgement(violations, yield_fraction, builds if basis == "yield" else 0, spread, corners if full else None)

@@ -70,6 +70,30 @@ def test_worst_case_basis_judges_every_corner() -> None:
     assert not corners["feasible"] and corners["basis"]["label"] == "misses a limit at some corner"
 
 
+def test_worst_case_basis_solves_the_corners_once_and_records_them(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The corners the worst-case basis judges on are the record's ranges: one enumeration per
+    assessment, not one to judge and a second to report (the finish's costliest step)."""
+    from optimizer import candidates, robustness, tolerance
+
+    catalog = load_catalog("eseries_full")
+    parts = {"r_top": 82e3, "r_bottom": 15e3, "r_collector": 8.2e3, "r_emitter": 1e3}
+    spec = parse_spec({**BASE, "robustness": "worst_case", "limits": {}})
+    calls = []
+
+    def counted(*args, **kwargs):
+        calls.append(kwargs.get("full", True))
+        return tolerance.worst_case(*args, **kwargs)
+
+    monkeypatch.setattr(robustness, "worst_case", counted)
+    monkeypatch.setattr(candidates, "worst_case", counted)
+    record = assess(spec, catalog, "divider_ce", parts)
+    assert calls == [True]
+    monkeypatch.undo()
+    on_yield = assess(parse_spec({**BASE, "limits": {}}), catalog, "divider_ce", parts)
+    assert record["worst_case"] == on_yield["worst_case"]  # the same enumeration either way
+    assert record["worst_case"]["gain"][0] < record["metrics"]["gain"] < record["worst_case"]["gain"][1] < 0
+
+
 def test_bias_spread_matches_brute_force_corner_enumeration() -> None:
     """The sensitivity-directed corners give the same Ic range as enumerating all 2^4 resistor
     sign patterns at each of the 8 hFE/temperature/supply corners (brute force, written here)."""
