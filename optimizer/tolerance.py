@@ -124,22 +124,14 @@ class Builds:
         transistor, the IDSS/VP position for a JFET: ``device.spread_draw``)."""
         return device.spread_draw(self.hfe_position, self.temperature)
 
-    def groups(self, by_temperature: bool = False) -> list[tuple[float | None, float | None, np.ndarray]]:
-        """(temperature, below_ground, build indices) for each ground's place that occurs (None:
-        the conditions' own), and with ``by_temperature`` each temperature too (None: every
-        temperature of the group). The ground's place changes the network's structure, so it is
-        a model call's own; the span, and the temperature unless ``by_temperature``, vary within
-        a group (the models take them per element)."""
-        below = np.zeros(self.samples) if self.below_ground is None else self.below_ground
-        temperature = self.temperature if by_temperature else np.zeros(self.samples)
-        return [
-            (
-                float(t) if by_temperature else None,
-                None if self.below_ground is None else float(g),
-                np.flatnonzero((temperature == t) & (below == g)),
-            )
-            for t, g in np.unique(np.stack([temperature, below]), axis=1).T
-        ]
+    def groups(self, by_temperature: bool = False) -> list[tuple[float | None, np.ndarray]]:
+        """(temperature, build indices): every build in one group (temperature None), or with
+        ``by_temperature`` one group per temperature. The span, the ground's place and the
+        temperature unless ``by_temperature`` vary within a group (the models take them per
+        element; a split supply's builds are all of one arrangement)."""
+        if not by_temperature:
+            return [(None, np.arange(self.samples))]
+        return [(float(t), np.flatnonzero(self.temperature == t)) for t in np.unique(self.temperature)]
 
 
 def _flat_result(
@@ -155,14 +147,14 @@ def _flat_result(
 ) -> dict[str, np.ndarray]:
     """Evaluate arrays of shape (candidates, samples) flattened; metrics, ratings, 'active' and
     the operating point's 'ic' come back in the same 2-D shape (``full``, ``noise``, ``swing``:
-    as Topology.evaluate's). The conditions' supply and temperature are scalars or flattened
-    arrays of the same size. ``swing_where``: Topology.evaluate's, on this 2-D form (taken
+    as Topology.evaluate's). The conditions' supply, temperature and ground's place are scalars
+    or flattened arrays of the same size. ``swing_where``: Topology.evaluate's, on this 2-D form (taken
     where the arrays fit one evaluation chunk; the swing solved everywhere otherwise)."""
     shape = hfe.shape
     flat = {role: np.broadcast_to(v, shape).reshape(-1) for role, v in parts.items()}
     h = hfe.reshape(-1)
     step = CHUNK_FULL if full else CHUNK_FAST
-    per_element = [name for name in ("supply", "temperature") if np.ndim(getattr(conditions, name))]
+    per_element = [name for name in ("supply", "temperature", "below_ground") if np.ndim(getattr(conditions, name))]
     if h.size <= step:
         where = None if swing_where is None else lambda r: swing_where(_sample(r, shape)).reshape(-1)
         result = topology.evaluate(
@@ -170,7 +162,7 @@ def _flat_result(
         )
     elif not per_element:
         result = topology.evaluate(flat, device, conditions, hfe=h, full=full, noise=noise, swing=swing)
-    else:  # a supply or temperature per element: the model's own chunks would not slice it, so chunked here
+    else:  # conditions per element: the model's own chunks would not slice them, so chunked here
         pieces = [
             topology.evaluate(
                 {k: v[i : i + step] for k, v in flat.items()},
@@ -216,25 +208,32 @@ def _corner_conditions(
     conditions: Conditions,
     temperature_range: tuple[float, float],
     supply_range: SupplyRange | None,
-) -> list[tuple[Conditions, np.ndarray, np.ndarray, np.ndarray]]:
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | float]:
     """The corners of temperature, supply and the device's spread (both ends of each; a split
-    supply's rails each at both ends) as one entry per ground's place: the conditions there and,
-    per (temperature, supply, device edge) corner, the temperature (degC), the supply span (V)
-    and the device's spread value. The models take the temperature, the supply and the spread
-    per element, the ground's place per call (it changes the network's structure)."""
-    by_ground: dict[float, list[float]] = {}
-    for span, below, _ in supply_points(supply_range, conditions):
-        by_ground.setdefault(below, []).append(span)
-    out = []
-    for below, supplies in by_ground.items():
-        corners = [
-            (float(t), s, e)
-            for t in temperature_range
-            for s, e in itertools.product(supplies, device.spread_edges(float(t)))
-        ]
-        temperature, supply, edge = (np.array(column, dtype=float) for column in zip(*corners))
-        out.append((replace(conditions, below_ground=below), temperature, supply, edge))
-    return out
+    supply's rails each at both ends), per (temperature, supply, device edge) corner: the
+    temperature (degC), the supply span (V), the device's spread value and the ground's place
+    (the conditions' own where the supply has one place; the models take each per element)."""
+    corners = [
+        (float(t), span, below, e)
+        for t in temperature_range
+        for (span, below, _), e in itertools.product(
+            supply_points(supply_range, conditions), device.spread_edges(float(t))
+        )
+    ]
+    temperature, supply, below, edge = (np.array(column, dtype=float) for column in zip(*corners))
+    return temperature, supply, edge, (below if np.any(below != conditions.below_ground) else conditions.below_ground)
+
+
+def _per_corner(conditions: Conditions, corners: tuple, repeat: int, shape: tuple[int, ...]) -> Conditions:
+    """``conditions`` with the temperature, supply and ground's place of :func:`_corner_conditions`'
+    corners, each repeated ``repeat`` times and broadcast to ``shape`` (the corners along its
+    last axis), flattened: one per element of the model call."""
+    temperature, supply, _, below = corners
+
+    def spread(v: np.ndarray | float) -> np.ndarray | float:
+        return np.broadcast_to(np.repeat(v, repeat), shape).reshape(-1) if np.ndim(v) else v
+
+    return replace(conditions, supply=spread(supply), temperature=spread(temperature), below_ground=spread(below))
 
 
 def worst_case(
@@ -257,40 +256,32 @@ def worst_case(
     # a part that is 0 in every candidate (a direct-coupled input's c_in) has no tolerance to
     # spread: its corners would repeat the others
     roles = tuple(r for r in (tuple(parts) if roles is None else roles) if np.any(np.asarray(parts[r]) != 0))
-    n = np.asarray(next(iter(parts.values()))).shape[0]
     # The usable swing (the costliest figure) does not see the capacitors' values in a stage
     # whose core does not (Topology.core_is_bound): there it is solved on the corners of the
     # other roles alone, the capacitors at their values, 2**capacitors times fewer solves
     # (the same figures: tests/test_spread_and_sizing.py)
     capacitors = {r for r in roles if r in topology.capacitors} if topology.core_is_bound else set()
-    lows: dict[str, np.ndarray] = {}
-    highs: dict[str, np.ndarray] = {}
-    active_all = np.ones(n, dtype=bool)
-    for at, temperature, supply, hfe_edges in _corner_conditions(device, conditions, temperature_range, supply_range):
-        corner = functools.partial(
-            _corner_result, topology, parts, tolerances, device, at, temperature, supply, hfe_edges
-        )
-        values = corner(roles, full, swing=not capacitors)
-        if capacitors:
-            values["swing_vpp"] = corner(tuple(r for r in roles if r not in capacitors), False)["swing_vpp"]
-        active_all &= np.all(values["active"], axis=1)
-        for key, value in values.items():
-            if value.dtype == bool:
-                continue
-            with np.errstate(invalid="ignore"):
-                lo, hi = (
-                    np.nanmin(np.where(np.isnan(value), np.inf, value), axis=1),
-                    np.nanmax(np.where(np.isnan(value), -np.inf, value), axis=1),
-                )
-            lows[key] = lo if key not in lows else np.minimum(lows[key], lo)
-            highs[key] = hi if key not in highs else np.maximum(highs[key], hi)
-    out = {
-        key: (
-            np.where(np.isfinite(lows[key]), lows[key], np.nan),
-            np.where(np.isfinite(highs[key]), highs[key], np.nan),
-        )
-        for key in lows
-    }
+    corner = functools.partial(
+        _corner_result,
+        topology,
+        parts,
+        tolerances,
+        device,
+        conditions,
+        _corner_conditions(device, conditions, temperature_range, supply_range),
+    )
+    values = corner(roles, full, swing=not capacitors)
+    if capacitors:
+        values["swing_vpp"] = corner(tuple(r for r in roles if r not in capacitors), False)["swing_vpp"]
+    active_all = np.all(values["active"], axis=1)
+    out = {}
+    for key, value in values.items():
+        if value.dtype == bool:
+            continue
+        with np.errstate(invalid="ignore"):  # a corner that is not active has NaN figures: left out
+            low = np.nanmin(np.where(np.isnan(value), np.inf, value), axis=1)
+            high = np.nanmax(np.where(np.isnan(value), -np.inf, value), axis=1)
+        out[key] = (np.where(np.isfinite(low), low, np.nan), np.where(np.isfinite(high), high, np.nan))
     out["active_all"] = (active_all, active_all)
     return out
 
@@ -300,17 +291,15 @@ def _corner_result(
     parts: dict[str, np.ndarray],
     tolerances: dict[str, Tolerance],
     device: AnyDevice,
-    at: Conditions,
-    temperature: np.ndarray,
-    supply: np.ndarray,
-    hfe_edges: np.ndarray,
+    conditions: Conditions,
+    corners: tuple,
     roles: tuple[str, ...],
     full: bool,
     swing: bool = True,
 ) -> dict[str, np.ndarray]:
-    """:func:`_flat_result` of every corner of one ground's place: each of ``roles`` at
-    +-tolerance (the other parts at their values), repeated for each (temperature, supply,
-    device edge) corner, those three per column; shape (candidates, corners)."""
+    """:func:`_flat_result` of every corner: each of ``roles`` at +-tolerance (the other parts at
+    their values), repeated for each (temperature, supply, device edge, ground's place) corner of
+    :func:`_corner_conditions` (``corners``), those per column; shape (candidates, corners)."""
     signs = np.array(list(itertools.product((-1.0, 1.0), repeat=len(roles))))  # (corners, roles)
     n = np.asarray(next(iter(parts.values()))).shape[0]
     corner_parts = {
@@ -318,14 +307,10 @@ def _corner_result(
     }
     for j, role in enumerate(roles):
         corner_parts[role] = corner_parts[role] * (1.0 + signs[None, :, j] * _column(tolerances.get(role, 0.0)))
-    pairs = len(hfe_edges)
-    stacked = {role: np.tile(v, (1, pairs)) for role, v in corner_parts.items()}
-    hfe = np.broadcast_to(np.repeat(hfe_edges, signs.shape[0])[None, :], (n, pairs * signs.shape[0]))
-    at = replace(
-        at,
-        supply=np.broadcast_to(np.repeat(supply, signs.shape[0])[None, :], hfe.shape).reshape(-1),
-        temperature=np.broadcast_to(np.repeat(temperature, signs.shape[0])[None, :], hfe.shape).reshape(-1),
-    )
+    hfe_edges = corners[2]
+    stacked = {role: np.tile(v, (1, hfe_edges.size)) for role, v in corner_parts.items()}
+    hfe = np.broadcast_to(np.repeat(hfe_edges, signs.shape[0])[None, :], (n, hfe_edges.size * signs.shape[0]))
+    at = _per_corner(conditions, corners, signs.shape[0], hfe.shape)
     return _flat_result(topology, stacked, device, at, np.ascontiguousarray(hfe), full, swing=swing)
 
 
@@ -346,7 +331,7 @@ def bias_spread(
     tolerance edge that raises Ic and at the one that lowers it (the sign of dIc/dR at
     nominal, one probe per resistor): the classical sensitivity-directed worst case, exact
     where Ic is monotone in each resistor. 8 + 16 operating points per candidate, in two model
-    calls per ground's place (the nominal and the probes in one, then every corner)."""
+    calls (the nominal and the probes in one, then every corner)."""
     p = {role: np.asarray(v, dtype=float).reshape(-1) for role, v in parts.items()}
     n = next(iter(p.values())).size
     resistors = [r for r in topology.resistors if r in p]
@@ -368,21 +353,21 @@ def bias_spread(
     ic_low = np.full(n, np.inf)
     ic_high = np.full(n, -np.inf)
     v_low, v_high = ic_low.copy(), ic_high.copy()
-    for at, temperature, supply, hfe_edges in _corner_conditions(device, conditions, temperature_range, supply_range):
-        # the (temperature, supply, device edge) corners of one ground's place in one call
-        pairs = hfe_edges.size
-        op = topology.operating_point(
-            {role: np.tile(v, pairs) for role, v in both.items()},
-            device,
-            replace(at, supply=np.repeat(supply, 2 * n), temperature=np.repeat(temperature, 2 * n)),
-            np.repeat(hfe_edges, 2 * n),
-        )
-        ic = np.where(op["active"], op["ic"], np.nan).reshape(2 * pairs, n)
-        v_out = np.asarray(op["v_out_q"]).reshape(2 * pairs, n)
-        with np.errstate(invalid="ignore"):
-            ic_low = np.fmin(ic_low, np.nanmin(np.where(np.isnan(ic), np.inf, ic), axis=0))
-            ic_high = np.fmax(ic_high, np.nanmax(np.where(np.isnan(ic), -np.inf, ic), axis=0))
-        v_low, v_high = np.minimum(v_low, v_out.min(axis=0)), np.maximum(v_high, v_out.max(axis=0))
+    # every (temperature, supply, device edge, ground's place) corner in one call
+    corners = _corner_conditions(device, conditions, temperature_range, supply_range)
+    pairs = corners[2].size
+    op = topology.operating_point(
+        {role: np.tile(v, pairs) for role, v in both.items()},
+        device,
+        _per_corner(conditions, corners, 2 * n, (2 * n * pairs,)),
+        np.repeat(corners[2], 2 * n),
+    )
+    ic = np.where(op["active"], op["ic"], np.nan).reshape(2 * pairs, n)
+    v_out = np.asarray(op["v_out_q"]).reshape(2 * pairs, n)
+    with np.errstate(invalid="ignore"):
+        ic_low = np.fmin(ic_low, np.nanmin(np.where(np.isnan(ic), np.inf, ic), axis=0))
+        ic_high = np.fmax(ic_high, np.nanmax(np.where(np.isnan(ic), -np.inf, ic), axis=0))
+    v_low, v_high = np.minimum(v_low, v_out.min(axis=0)), np.maximum(v_high, v_out.max(axis=0))
     with np.errstate(divide="ignore", invalid="ignore"):
         spread = np.where((ic_low > 0) & np.isfinite(ic_high), ic_high / ic_low, np.inf)
     return {"ic_low": ic_low, "ic_high": ic_high, "ic_spread": spread, "v_out_low": v_low, "v_out_high": v_high}
@@ -428,7 +413,7 @@ def monte_carlo_yield(
     that pass with an unbounded swing (swing_vpp NaN in the others' sample): for a ``passes``
     that a larger swing never fails (a spec limits the swing from below only); the yield is
     the same.
-    The builds of one ground's place (the supply varies per build within it, and so does the
+    The builds (the supply and a split supply's ground's place vary per build, and so does the
     temperature where every build fits MERGED_CALLS model calls; past that, one temperature per
     call: the models take them per element) are evaluated in blocks of candidate rows that fit
     one evaluation chunk, so the working set stays small whatever the count and a block is one
@@ -446,7 +431,7 @@ def monte_carlo_yield(
     # fixed); more take a call per temperature, as a temperature per element costs more per
     # element (NF*VT and IS as arrays in every Newton step: benchmarks/results/models.md)
     by_temperature = n * samples > step * MERGED_CALLS
-    for temperature, below, idx in builds.groups(by_temperature):  # one call per block of a group
+    for temperature, idx in builds.groups(by_temperature):  # one call per block of a group
         rows = max(1, step // idx.size)
         for i in range(0, n, rows):
             block = slice(i, min(i + rows, n))
@@ -464,7 +449,11 @@ def monte_carlo_yield(
                     else temperature
                 ),
                 supply=np.broadcast_to(builds.supply[None, idx], shape).reshape(-1),
-                below_ground=conditions.below_ground if below is None else below,
+                below_ground=(
+                    conditions.below_ground
+                    if builds.below_ground is None
+                    else np.broadcast_to(builds.below_ground[None, idx], shape).reshape(-1)
+                ),
             )
             needed: list[np.ndarray] = []  # where the swing was solved (swing_last)
             unbounded = functools.partial(_passes_unbounded, passes, block, needed) if swing_last else None

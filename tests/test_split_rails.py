@@ -63,8 +63,27 @@ def test_monte_carlo_draws_the_rails_independently() -> None:
     pairs = set(zip(np.round(v_pos, 6), np.round(v_neg, 6)))
     assert len(pairs) == SUPPLY_BINS**2  # every level of V+ with every level of V-
     assert abs(np.corrcoef(v_pos, v_neg)[0, 1]) < 0.1  # independent, not one span scaled
-    # the builds are grouped by the ground's place, and cover every build once
-    assert sorted(np.concatenate([idx for *_, idx in builds.groups()])) == list(range(2000))
+    # the builds are in one group (the ground's place is per element), or one per temperature
+    assert sorted(np.concatenate([idx for _, idx in builds.groups()])) == list(range(2000))
+    assert sorted(np.concatenate([idx for _, idx in builds.groups(by_temperature=True)])) == list(range(2000))
+
+
+def test_the_grounds_place_per_element_gives_each_place_its_own_figures() -> None:
+    """The builds and corners of a split supply go to the models in one call, the span and the
+    ground's place per element: every figure (the supply rejection of each rail and the usable
+    swing among them) equals that of a call at each place alone."""
+    stage = get_topology("divider_ce_split")
+    points = [(24.0, 0.5), (24.4, 11.4 / 24.4), (23.6, 12.6 / 23.6), (25.6, 12.6 / 25.6)]
+    spans, places = (np.array(column) for column in zip(*points))
+    parts = {k: np.repeat(v, len(points)) for k, v in PARTS.items()}
+    at_once = stage.evaluate(parts, DEVICE, replace(CONDITIONS, supply=spans, below_ground=places), thd_solve=True)
+    for k, (span, place) in enumerate(points):
+        alone = stage.evaluate(PARTS, DEVICE, replace(CONDITIONS, supply=span, below_ground=place), thd_solve=True)
+        for key, value in {**alone.metrics, **alone.ratings, **alone.operating_point}.items():
+            whole = {**at_once.metrics, **at_once.ratings, **at_once.operating_point}[key]
+            np.testing.assert_allclose(whole[k], value[0], rtol=1e-12, err_msg=key)
+    with pytest.raises(ValueError, match="one supply arrangement"):  # a positive rail beside a split one
+        stage.evaluate(parts, DEVICE, replace(CONDITIONS, supply=spans, below_ground=np.array([0.0, 0.5, 0.5, 0.5])))
 
 
 def test_rail_ratio_spreads_the_collector_wider_than_the_span_alone() -> None:

@@ -88,7 +88,7 @@ def test_a_part_absent_from_every_candidate_adds_no_corners(monkeypatch) -> None
     roles = ("r_top", "r_bottom", "c_in")
     spread: list[tuple[str, ...]] = []
     corner_result = tolerance._corner_result
-    monkeypatch.setattr(tolerance, "_corner_result", lambda *a, **k: spread.append(a[8]) or corner_result(*a, **k))
+    monkeypatch.setattr(tolerance, "_corner_result", lambda *a, **k: spread.append(a[6]) or corner_result(*a, **k))
     stacked = worst_case(topology, parts, DEVICE, conditions, tolerances, (0.0, 50.0), supply_range, roles=roles)
     assert spread and all("r_top" not in r and "r_bottom" in r for r in spread)
     plain = corner_by_corner(topology, parts, roles, tolerances, conditions, (0.0, 50.0), supply_range)

@@ -99,7 +99,9 @@ class Conditions:
     ripple_frequency: float = 100.0  # Hz, where psrr_db is judged besides mid-band
     # fraction of the supply span below the signal ground: 0 a positive rail, 1 a negative rail,
     # between: a split supply (spec.supply_below_ground). The public methods take it in true
-    # terms; inside the models it is the stage's frame's (see :func:`frame_conditions`).
+    # terms; inside the models it is the stage's frame's (see :func:`frame_conditions`). Like
+    # the supply, it may be an array, one per candidate (a split supply's builds and corners),
+    # when every element is of one arrangement (:func:`arrangement`)
     below_ground: float = 0.0
 
     @property
@@ -128,9 +130,14 @@ SPLIT_BIASES = ("ground_base", "span")
 POLARITIES = ("npn", "pnp", "njf")
 
 
-def arrangement(below_ground: float) -> str:
-    """The supply arrangement of a below-ground fraction: "positive", "negative" or "split"."""
-    return "positive" if below_ground <= 0 else "negative" if below_ground >= 1 else "split"
+def arrangement(below_ground: float | np.ndarray) -> str:
+    """The supply arrangement of a below-ground fraction (or of every element of an array of
+    them, ValueError where they differ): "positive", "negative" or "split"."""
+    g = np.asarray(below_ground)
+    kinds = {"positive" if x <= 0 else "negative" if x >= 1 else "split" for x in (g.flat if g.ndim else (g,))}
+    if len(kinds) != 1:
+        raise ValueError(f"one model call takes one supply arrangement, not {sorted(kinds)}")
+    return kinds.pop()
 
 
 def frame_conditions(conditions: Conditions, device: AnyDevice) -> Conditions:
@@ -146,7 +153,7 @@ def frame_conditions(conditions: Conditions, device: AnyDevice) -> Conditions:
 def true_volts(v_frame: np.ndarray, device: AnyDevice, frame: Conditions) -> np.ndarray:
     """A DC node voltage of the frame (V above its lowest rail) in true, ground-referenced
     volts: shifted by the ground's place, negated for a PNP stage."""
-    shifted = v_frame - frame.below_ground * np.asarray(frame.supply) if frame.below_ground else v_frame
+    shifted = v_frame - frame.below_ground * np.asarray(frame.supply) if np.any(frame.below_ground) else v_frame
     return -shifted if device.polarity == "pnp" else shifted
 
 
@@ -177,7 +184,7 @@ def _rows_of(
     def take(v: Any) -> Any:
         return v[rows] if np.ndim(v) and np.shape(v)[0] == n else v
 
-    sub = replace(c, supply=take(c.supply), temperature=take(c.temperature))
+    sub = replace(c, supply=take(c.supply), temperature=take(c.temperature), below_ground=take(c.below_ground))
     bias = Bias(
         {k: take(v) for k, v in b.op.items()},
         [{k: take(v) for k, v in ss.items()} for ss in b.small_signal],
@@ -505,7 +512,7 @@ class StageModel(Topology):
         decoupled = bool(np.any(p["r_decouple"] > 0))
         if not (decoupled or supply):
             return physics.Network(nodes, c.temperature), None
-        split = supply and 0 < c.below_ground < 1
+        split = supply and arrangement(c.below_ground) == "split"
         net = physics.Network(
             nodes + (("vloc", "vcc") if decoupled else ("vcc",)) + (("gnd",) if split else ()), c.temperature
         )
@@ -513,7 +520,7 @@ class StageModel(Topology):
         if split:
             net.admittance("gnd", None, np.full_like(p["r_decouple"], physics.G_SHORT))
             net.ground = net.bias_ground = "gnd"
-        elif supply and c.below_ground >= 1:
+        elif supply and arrangement(c.below_ground) == "negative":
             net.ground = "vcc"
         if not decoupled:
             return net, "vcc"
@@ -611,7 +618,8 @@ class StageModel(Topology):
         place, r_bottom), r_top = r_bottom/g, r_bottom = r_bottom/(1-g), g the ground's fraction
         of the span: the same DC and, with every rail an AC ground, the same signal and noise."""
         g = conditions.below_ground
-        if g > 0 and np.any(p["r_decouple"] > 0):
+        kind = arrangement(g)
+        if kind != "positive" and np.any(p["r_decouple"] > 0):
             raise InputError.single(
                 "parts.r_decouple",
                 float(np.max(p["r_decouple"])),
@@ -619,7 +627,7 @@ class StageModel(Topology):
                 "rail or a PNP stage on a negative rail",
                 title=f"invalid part value for {self.name}",
             )
-        if not 0 < g < 1 or self.split_bias != "ground_base":
+        if kind != "split" or self.split_bias != "ground_base":
             return p
         return {**p, "r_top": p["r_bottom"] / g, "r_bottom": p["r_bottom"] / (1.0 - g)}
 
@@ -665,7 +673,7 @@ class StageModel(Topology):
                 b = self._bias(p_dc, device, replace(conditions, supply=v_local), beta, nvt, i_s)
         b.op["v_supply_local"] = v_local
         b.op["v_out_q"] = self._output_q(b.op)
-        if 0 < conditions.below_ground < 1 and self.split_bias == "ground_base" and "i_divider" in b.op:
+        if arrangement(conditions.below_ground) == "split" and self.split_bias == "ground_base" and "i_divider" in b.op:
             # split: no r_top; the base current comes from ground through r_bottom, and the supply
             # current is what the collector-side rail gives (the divider equivalent's share removed)
             b.op["supply_current"] = b.op["supply_current"] - b.op["i_divider"]
@@ -688,7 +696,7 @@ class StageModel(Topology):
     def _true_op(self, op: dict[str, np.ndarray], device: AnyDevice, frame: Conditions) -> dict[str, np.ndarray]:
         """The operating point with its node voltages (and v_supply_local, v_out_q) in true,
         ground-referenced volts (:func:`true_volts`); vce, vbe and currents stay magnitudes."""
-        if not frame.below_ground and device.polarity != "pnp":
+        if not np.any(frame.below_ground) and device.polarity != "pnp":
             return op
         keys = {*self.node_voltages.values(), "v_supply_local", "v_out_q"}
         return {k: true_volts(v, device, frame) if k in keys else v for k, v in op.items()}
@@ -803,7 +811,7 @@ class StageModel(Topology):
             if thd_solve:
                 m["thd"] = self._thd_static(p, device, conditions, b, nvt, b.beta, gain)
             ratings = self._ratings(p, conditions, b)
-            if 0 < conditions.below_ground < 1 and self.split_bias == "ground_base":  # r_bottom alone, base-ground
+            if arrangement(conditions.below_ground) == "split" and self.split_bias == "ground_base":  # r_bottom alone
                 ratings["p_r_top"] = np.zeros_like(gain)
                 ratings["p_r_bottom"] = (
                     b.op[self.divider_tap] - conditions.below_ground * conditions.supply
@@ -873,8 +881,8 @@ class StageModel(Topology):
         lowest rail of one grounded at its top (a negative NPN or positive PNP stage: the
         emitter side), each rail of a split supply in turn, the worse one counting. On a split
         supply r_bottom returns to ground itself here, not through the span-divider equivalent."""
-        g = c.below_ground
-        if 0 < g < 1 and self.split_bias == "ground_base":
+        kind = arrangement(c.below_ground)
+        if kind == "split" and self.split_bias == "ground_base":
             p = {
                 **p,
                 "r_top": np.full_like(p["r_top"], np.inf),
@@ -884,7 +892,7 @@ class StageModel(Topology):
         f = np.array([[c.ripple_frequency], [c.band_centre]])
         at = net.at(2j * np.pi * f)
         ground = net.ground
-        drives = ([({"vcc": np.full(1, physics.G_SHORT)}, "vcc")] if g < 1 else []) + (
+        drives = ([({"vcc": np.full(1, physics.G_SHORT)}, "vcc")] if kind != "negative" else []) + (
             [
                 (
                     {
@@ -894,7 +902,7 @@ class StageModel(Topology):
                     None,
                 )
             ]
-            if g > 0
+            if kind != "positive"
             else []
         )
         rejection = None
@@ -1007,7 +1015,11 @@ class StageModel(Topology):
         i_s = saturation_current(device.IS, c.temperature)
         if np.ndim(nvt):
             nvt, i_s = nvt[:, None], i_s[:, None]
-        local = replace(c, supply=b.op["v_supply_local"][:, None])  # c_decouple holds it
+        local = replace(  # c_decouple holds the supply
+            c,
+            supply=b.op["v_supply_local"][:, None],
+            below_ground=c.below_ground[:, None] if np.ndim(c.below_ground) else c.below_ground,
+        )
         op = {k: v[:, None] for k, v in b.op.items()}
         return self.static_output(
             {k: v[:, None] for k, v in p.items()},
