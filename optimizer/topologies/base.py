@@ -1036,14 +1036,22 @@ class StageModel(Topology):
     ) -> np.ndarray:
         """swing_vpp (V peak-to-peak at the load) by :func:`physics.usable_swing`, in double precision
         (single precision, with the small swings it leaves noisy solved again, was no faster at the
-        search's groups of 16-64 designs and 1.1x at 16,384: benchmarks/results/models.md)."""
+        search's groups of 16-64 designs and 1.1x at 16,384: benchmarks/results/models.md).
+        A static output that keeps a warm start between its calls (its ``warm_start``: arrays with
+        a row per candidate) hands the rows of the candidates a subset's transfer solves to it, so
+        their solves start where the whole batch's would: the same figures alone or in a batch."""
+        whole = self._static_fn(p, device, c, b, nvt, b.beta)
 
         def rows_output(rows: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
             sub_p, sub_c, sub_b, sub_nvt = _rows_of(rows, gain.size, p, c, b, nvt)
-            return self._static_fn(sub_p, device_rows(device, rows), sub_c, sub_b, sub_nvt, sub_b.beta)
+            part = self._static_fn(sub_p, device_rows(device, rows), sub_c, sub_b, sub_nvt, sub_b.beta)
+            kept = getattr(whole, "warm_start", None)
+            if kept:
+                part.warm_start[:] = [v[rows] for v in kept]  # type: ignore[attr-defined]
+            return part
 
         return physics.usable_swing(
-            self._static_fn(p, device, c, b, nvt, b.beta),
+            whole,
             gain,
             clip_peak,
             rows_output=rows_output,

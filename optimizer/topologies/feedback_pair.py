@@ -37,6 +37,7 @@ PAIR_ITERATIONS = 40  # most damped 2-D Newton steps of the pair's bias (both ju
 STEP_TOL = 1e-12  # V: a pair whose Newton steps in both Vbe are smaller has converged and is not moved again
 STEP_DOWN = 2.0  # V, largest fall of a Vbe in one Newton step (a rise is held to physics.MAX_STEP: from
 # above, the residual is concave and Newton does not overshoot, so a falling junction may move fast)
+STATIC_ITERATIONS = 20  # most Newton steps of a static transfer's drive (it stops once settled)
 CROSSOVER_STEPS = 4  # Newton steps in log frequency refining the loop gain's unity crossing (|T| = 1)
 HAND_EMITTER_MAX = 0.3  # the hand method's highest q1 emitter voltage, a share of the supply
 VT_HAND = 0.026  # V, the hand method's thermal voltage (room temperature)
@@ -601,7 +602,9 @@ class FeedbackPair(StageModel):
         to collector2's quiescent voltage); collector2 flattens at emitter2 + vce_sat. q1 saturates
         through its base-collector junction (:func:`solve_pair`): its emitter follows the fed-back
         output, so a large swing takes its collector down to its emitter, the loop breaks and the
-        output folds back. NaN where the pair's solve did not settle within its steps."""
+        output folds back. A drive's solve starts from the last call's solution at the nearest
+        drive of its candidate (a warm start: the swing's later drives lie between solved ones) and
+        stops once settled; NaN where it did not settle within STATIC_ITERATIONS steps."""
         op = b.op
         rth = physics.parallel(p["r_top"], p["r_bottom"])
         vth = c.supply * p["r_bottom"] / (p["r_top"] + p["r_bottom"])
@@ -611,6 +614,21 @@ class FeedbackPair(StageModel):
         j_c2 = c.supply / rc2 + op["v_collector2"] / c.load_impedance
         kw = {"rb": device.RB, "i_s": i_s, "beta": beta, "nvt": nvt, "inv_vaf": device.inv_vaf}
         re, j_e = self._emitter_hold(p, op)
+        quiescent = (op["vbe"], op["vbe2"], op["v_emitter"] + op["vbe"] - op["v_collector"])
+        last: list[np.ndarray] = []  # the last call's drives and unknowns (V), where the next call starts
+
+        def start(vs: np.ndarray) -> tuple[np.ndarray, ...]:
+            """Where the solve of each drive starts: the unknowns of the last call's nearest drive of
+            the same candidate, where that drive is nearer than the quiescent point's zero (the
+            usable swing's steps fall inside brackets whose ends were solved), else the quiescent point."""
+            if not last or last[0].shape[0] != vs.shape[0]:
+                return quiescent
+            before, *unknowns = last
+            gap = np.abs(vs[:, :, None] - before[:, None, :])
+            nearest = np.argmin(gap, axis=2)
+            near = np.take_along_axis(gap, nearest[:, :, None], axis=2)[:, :, 0] < np.abs(vs)
+            picked = (np.take_along_axis(u, nearest, axis=1) for u in unknowns)
+            return tuple(np.where(near & np.isfinite(u), u, q) for u, q in zip(picked, quiescent))
 
         def out(vs: np.ndarray) -> np.ndarray:
             a = (vth * rs + (vs + op["v_base"]) * rth) / (rs + rth)
@@ -625,13 +643,16 @@ class FeedbackPair(StageModel):
                 j_c2,
                 op["v_emitter2"],
                 0.0,
-                v_start=(op["vbe"], op["vbe2"], op["v_emitter"] + op["vbe"] - op["v_collector"]),
-                iterations=2 * physics.THD_ITERATIONS,
+                v_start=start(vs),
+                iterations=STATIC_ITERATIONS,
                 j_e=j_e,
                 **kw,
             )
+            shape = np.broadcast_shapes(np.shape(vs), np.shape(q["v_c2"]))
+            last[:] = [np.broadcast_to(vs, shape), *(np.broadcast_to(u, shape) for u in q["unknowns"])]
             v_c2 = np.maximum(q["v_c2"], op["v_emitter2"] + device.vce_sat)
             # no output (NaN: the swing counts it as deviating) where the solve did not settle
             return np.where(q["settled"], v_c2 - op["v_collector2"], np.nan)
 
+        out.warm_start = last  # type: ignore[attr-defined]  # a subset's transfer takes its rows (Topology._usable_swing)
         return out
