@@ -133,11 +133,15 @@ POLARITIES = ("npn", "pnp", "njf")
 def arrangement(below_ground: float | np.ndarray) -> str:
     """The supply arrangement of a below-ground fraction (or of every element of an array of
     them, ValueError where they differ): "positive", "negative" or "split"."""
+    if not np.ndim(below_ground):
+        return "positive" if below_ground <= 0 else "negative" if below_ground >= 1 else "split"
     g = np.asarray(below_ground)
-    kinds = {"positive" if x <= 0 else "negative" if x >= 1 else "split" for x in (g.flat if g.ndim else (g,))}
-    if len(kinds) != 1:
-        raise ValueError(f"one model call takes one supply arrangement, not {sorted(kinds)}")
-    return kinds.pop()
+    low, high = bool(np.any(g <= 0)), bool(np.any(g >= 1))
+    split = bool(np.any((g > 0) & (g < 1)))
+    if low + high + split != 1:
+        kinds = [k for k, present in (("positive", low), ("negative", high), ("split", split)) if present]
+        raise ValueError(f"one model call takes one supply arrangement, not {kinds}")
+    return "positive" if low else "negative" if high else "split"
 
 
 def frame_conditions(conditions: Conditions, device: AnyDevice) -> Conditions:
