@@ -35,6 +35,7 @@ from spice_designs import (  # noqa: E402
     fb_split_designs,
     jfet_check_designs,
     later_polarity_designs,
+    pair_ac_designs,
     polarity_designs,
 )
 
@@ -46,8 +47,8 @@ def _fmt(value: float | None) -> str:
 def all_designs() -> list:
     """Every check design: the bipolar stages', the JFET stages', then the PNP, negative-rail and
     split-supply versions of two bipolar stages, and the PNP, negative-rail (and the followers'
-    split-supply) versions of the followers and the feedback pair, the direct-coupled inputs, and the
-    feedback pair and feedback_ce on split supplies."""
+    split-supply) versions of the followers and the feedback pair, the direct-coupled inputs, the
+    feedback pair and feedback_ce on split supplies, and the feedback pair with its leg AC-coupled."""
     return (
         check_designs()
         + jfet_check_designs()
@@ -55,6 +56,7 @@ def all_designs() -> list:
         + later_polarity_designs()
         + direct_coupled_designs()
         + fb_split_designs()
+        + pair_ac_designs()
     )
 
 
