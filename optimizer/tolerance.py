@@ -26,7 +26,7 @@ import functools
 import itertools
 import zlib
 from dataclasses import dataclass, fields, replace
-from typing import Callable
+from typing import Callable, NamedTuple
 
 import numpy as np
 
@@ -203,16 +203,24 @@ def _column(tolerance: Tolerance, rows: slice | None = None) -> np.ndarray:
     return (t if t.ndim == 0 or rows is None else t[rows]).reshape(-1, 1) if t.ndim else t.reshape(1, 1)
 
 
+class Corners(NamedTuple):
+    """The corners of temperature, supply and the device's spread, one entry each (the models
+    take every field per element)."""
+
+    temperature: np.ndarray  # degC
+    supply: np.ndarray  # V, the span
+    spread: np.ndarray  # the device's spread variable at its edge (hFE; a JFET's position)
+    below_ground: np.ndarray | float  # the ground's place in the span (the conditions' own where it has one)
+
+
 def _corner_conditions(
     device: AnyDevice,
     conditions: Conditions,
     temperature_range: tuple[float, float],
     supply_range: SupplyRange | None,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | float]:
-    """The corners of temperature, supply and the device's spread (both ends of each; a split
-    supply's rails each at both ends), per (temperature, supply, device edge) corner: the
-    temperature (degC), the supply span (V), the device's spread value and the ground's place
-    (the conditions' own where the supply has one place; the models take each per element)."""
+) -> Corners:
+    """The corners of temperature, supply and the device's spread: both ends of each, a split
+    supply's rails each at both ends."""
     corners = [
         (float(t), span, below, e)
         for t in temperature_range
@@ -221,19 +229,24 @@ def _corner_conditions(
         )
     ]
     temperature, supply, below, edge = (np.array(column, dtype=float) for column in zip(*corners))
-    return temperature, supply, edge, (below if np.any(below != conditions.below_ground) else conditions.below_ground)
+    place = below if np.any(below != conditions.below_ground) else conditions.below_ground
+    return Corners(temperature, supply, edge, place)
 
 
-def _per_corner(conditions: Conditions, corners: tuple, repeat: int, shape: tuple[int, ...]) -> Conditions:
-    """``conditions`` with the temperature, supply and ground's place of :func:`_corner_conditions`'
-    corners, each repeated ``repeat`` times and broadcast to ``shape`` (the corners along its
-    last axis), flattened: one per element of the model call."""
-    temperature, supply, _, below = corners
+def _per_corner(conditions: Conditions, corners: Corners, repeat: int, shape: tuple[int, ...]) -> Conditions:
+    """``conditions`` with the temperature, supply and ground's place of ``corners``, each
+    repeated ``repeat`` times and broadcast to ``shape`` (the corners along its last axis),
+    flattened: one per element of the model call."""
 
-    def spread(v: np.ndarray | float) -> np.ndarray | float:
+    def each(v: np.ndarray | float) -> np.ndarray | float:
         return np.broadcast_to(np.repeat(v, repeat), shape).reshape(-1) if np.ndim(v) else v
 
-    return replace(conditions, supply=spread(supply), temperature=spread(temperature), below_ground=spread(below))
+    return replace(
+        conditions,
+        supply=each(corners.supply),
+        temperature=each(corners.temperature),
+        below_ground=each(corners.below_ground),
+    )
 
 
 def worst_case(
@@ -292,7 +305,7 @@ def _corner_result(
     tolerances: dict[str, Tolerance],
     device: AnyDevice,
     conditions: Conditions,
-    corners: tuple,
+    corners: Corners,
     roles: tuple[str, ...],
     full: bool,
     swing: bool = True,
@@ -307,9 +320,8 @@ def _corner_result(
     }
     for j, role in enumerate(roles):
         corner_parts[role] = corner_parts[role] * (1.0 + signs[None, :, j] * _column(tolerances.get(role, 0.0)))
-    hfe_edges = corners[2]
-    stacked = {role: np.tile(v, (1, hfe_edges.size)) for role, v in corner_parts.items()}
-    hfe = np.broadcast_to(np.repeat(hfe_edges, signs.shape[0])[None, :], (n, hfe_edges.size * signs.shape[0]))
+    stacked = {role: np.tile(v, (1, corners.spread.size)) for role, v in corner_parts.items()}
+    hfe = np.broadcast_to(np.repeat(corners.spread, signs.shape[0])[None, :], (n, corners.spread.size * signs.shape[0]))
     at = _per_corner(conditions, corners, signs.shape[0], hfe.shape)
     return _flat_result(topology, stacked, device, at, np.ascontiguousarray(hfe), full, swing=swing)
 
@@ -355,12 +367,12 @@ def bias_spread(
     v_low, v_high = ic_low.copy(), ic_high.copy()
     # every (temperature, supply, device edge, ground's place) corner in one call
     corners = _corner_conditions(device, conditions, temperature_range, supply_range)
-    pairs = corners[2].size
+    pairs = corners.spread.size
     op = topology.operating_point(
         {role: np.tile(v, pairs) for role, v in both.items()},
         device,
         _per_corner(conditions, corners, 2 * n, (2 * n * pairs,)),
-        np.repeat(corners[2], 2 * n),
+        np.repeat(corners.spread, 2 * n),
     )
     ic = np.where(op["active"], op["ic"], np.nan).reshape(2 * pairs, n)
     v_out = np.asarray(op["v_out_q"]).reshape(2 * pairs, n)
