@@ -3,6 +3,8 @@ figures whichever way they are computed (no timing here; speed lives in benchmar
 
 from __future__ import annotations
 
+import json
+
 import optuna
 
 from optimizer.candidates import assess, assess_many
@@ -66,12 +68,7 @@ def test_assess_many_gives_each_design_what_assess_gives_it_alone() -> None:
 def test_the_shortlist_stops_where_one_at_a_time_stops() -> None:
     """summarise assesses several ranked designs per call; the plain loop (one design per
     call, stop once `top` meet the spec or SHORTLIST_REACH were tried) picks the same ones."""
-    spec = load_spec("specs/bench_stock_preamp.yaml")
-    spec = spec.model_copy(update={"search": spec.search.model_copy(update={"trials": 256})})
-    storage = open_storage(None)
-    search_id = create_search(spec, storage)
-    run_search(storage, search_id, finish=False)
-    study, _ = load_study(storage, search_id)
+    spec, study, _ = _searched("specs/bench_stock_preamp.yaml", 256)
     space = SearchSpace.build(spec)
     every = rank_records(completed_records(study))
     ranked = fold_variants(space, every, keep={design_key(r) for r in front_records(space, every)})  # as summarise
@@ -85,6 +82,47 @@ def test_the_shortlist_stops_where_one_at_a_time_stops() -> None:
         summary = summarise(space, study, top, SAMPLES, tail=False)
         assert same([{**c, "rank": None} for c in summary["candidates"]], [{**c, "rank": None} for c in plain]) == []
     assert isinstance(study, optuna.Study)
+
+
+def test_the_records_a_search_made_here_are_those_its_journal_gives() -> None:
+    """completed_records takes the records this process made from study.made_records rather
+    than decoding their JSON again: the same records, type for type, as the journal's text
+    decodes to; the finishing step leaves none behind."""
+    from optimizer.search.study import made_records
+
+    _, study, (storage, search_id) = _searched("specs/contact_pickup_buffer.yaml", 200)
+    remembered = completed_records(study)
+    made = study.get_trials(deepcopy=False)[-1].user_attrs["record"]
+    assert made_records.get(made) is not None
+    assert remembered[-1]["metrics"] is made_records.get(made)["metrics"]  # taken, not decoded
+    made_records.clear()
+    decoded = completed_records(study)
+    assert remembered[-1]["metrics"] is not decoded[-1]["metrics"]
+    assert [json.dumps(r) for r in remembered] == [json.dumps(r) for r in decoded]
+    assert [_types(r) for r in remembered] == [_types(r) for r in decoded]
+    run_search(storage, search_id)  # the budget is met: the finishing step alone
+    assert made_records.get(made) is None
+
+
+def _searched(path: str, trials: int) -> tuple:
+    """The spec at ``path`` with a budget of ``trials``, its study searched in memory (not
+    finished) and (storage, search id)."""
+    spec = load_spec(path)
+    spec = spec.model_copy(update={"search": spec.search.model_copy(update={"trials": trials})})
+    storage = open_storage(None)
+    search_id = create_search(spec, storage)
+    run_search(storage, search_id, finish=False)
+    study, _ = load_study(storage, search_id)
+    return spec, study, (storage, search_id)
+
+
+def _types(x: object) -> object:
+    """The type of every leaf of a record, in its shape."""
+    if isinstance(x, dict):
+        return {k: _types(v) for k, v in x.items()}
+    if isinstance(x, list):
+        return [_types(v) for v in x]
+    return type(x).__name__
 
 
 def test_a_batch_asks_batch_size_for_each_topology_device_pair_within_the_cap() -> None:
