@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import itertools
+from functools import partial
+from unittest.mock import patch
 
 import numpy as np
 import pytest
@@ -11,7 +13,8 @@ from optimizer import scoring
 from optimizer.candidates import assess
 from optimizer.catalog import load_catalog
 from optimizer.devices import hfe_temperature_factor
-from optimizer.search import SearchSpace, fold_variants, relax_one_limit, search
+from optimizer.search import SearchSpace, fold_variants, ranking, relax_one_limit, search
+from optimizer.search.ranking import DISTINCT_ROLES, NEAR_STEPS, design_key
 from optimizer.spec import parse_spec
 from optimizer.tolerance import bias_spread
 from optimizer.topologies import get_topology
@@ -168,6 +171,48 @@ def test_near_identical_designs_fold_into_the_best() -> None:
     folded = fold_variants(space, ranked)
     assert [r["score"] for r in folded] == [0.9, 0.87, 0.86]
     assert [r["variants"] for r in folded] == [3, 1, 1]
+
+
+def test_folding_in_blocks_keeps_what_one_design_at_a_time_keeps() -> None:
+    """fold_variants compares FOLD_BLOCK designs at a time (and the kept ones in slices);
+    the plain rule, one design at a time against every design kept before it, written out
+    here, folds the same designs into the same ones: 700 random designs of two topologies
+    on a narrow grid of values (many near one another), some kept whatever they are near."""
+    space = SearchSpace.build(_spec())
+    e24 = space.resistors.values
+    rng = np.random.default_rng(4)
+    roles = ("r_top", "r_bottom", "r_collector", "r_emitter")
+    ranked = [
+        _record(
+            str(rng.choice(["divider_ce", "divider_ce_split"])),
+            {r: float(e24[30 + rng.integers(0, 6)]) for r in roles},
+            1.0 - k / 700,
+        )
+        for k in range(700)
+    ]
+    keep = {design_key(ranked[k]) for k in rng.choice(700, 40, replace=False)}
+
+    def plain() -> list[tuple[float, int]]:
+        kept: list[dict] = []
+        for r in ranked:
+            steps = np.array([np.argmin(abs(e24 - r["parts"][role])) for role in roles])
+            near = [
+                c
+                for c in kept
+                if c["topology"] == r["topology"]
+                and np.count_nonzero(np.abs(c["steps"] - steps) >= NEAR_STEPS) < DISTINCT_ROLES
+            ]
+            if near and design_key(r) not in keep:
+                near[0]["variants"] += 1
+            else:
+                kept.append({**r, "steps": steps, "variants": 1})
+        return [(c["score"], c["variants"]) for c in kept]
+
+    expected = plain()
+    assert 50 < len(expected) < 650  # folding both ways: many folded, many kept
+    assert [(c["score"], c["variants"]) for c in fold_variants(space, ranked, keep=keep)] == expected
+    with patch.object(ranking, "_first_near", partial(ranking._first_near, rows=7)):  # kept rows in slices of 7
+        assert [(c["score"], c["variants"]) for c in fold_variants(space, ranked, keep=keep)] == expected
 
 
 def test_relaxing_one_limit_names_the_limit_and_the_value_reached() -> None:

@@ -69,45 +69,86 @@ NEAR_STEPS = 2  # a role whose value differs by fewer series steps is the same c
 DISTINCT_ROLES = 2  # designs differing by NEAR_STEPS or more in this many roles are distinct
 
 
+FOLD_BLOCK = 64  # designs of a topology and device compared with the kept ones in one step (fold_variants)
+
+
 def fold_variants(space: SearchSpace, ranked: list[dict], keep: Collection[tuple] = ()) -> list[dict]:
     """``ranked`` with near-identical designs folded into the best of them (which gains a
     ``variants`` count, itself included). Two designs are distinct when their topology or
     device differ, or when at least DISTINCT_ROLES roles differ by NEAR_STEPS or more steps
     of the allowed values; otherwise the later one is a variant of the earlier. A design whose
-    :func:`design_key` is in ``keep`` (the front's) is never folded into another."""
+    :func:`design_key` is in ``keep`` (the front's) is never folded into another.
+
+    In rank order each design joins the first kept design it is near, or is kept. Per topology
+    and device, FOLD_BLOCK designs at a time are compared with every design kept before them
+    and with each other in one array step each; only the order within a block is walked."""
     groups: dict[tuple[str, str], list[int]] = {}
     for k, r in enumerate(ranked):
         groups.setdefault((r["topology"], r["device"]), []).append(k)
-    steps: dict[int, np.ndarray] = {}
+    into = list(range(len(ranked)))  # the design each folds into (itself where kept)
     for members in groups.values():
-        roles = sorted(ranked[members[0]]["parts"])
-        columns = []
-        for role in roles:
-            table = space.capacitors if role.startswith("c_") else space.resistors
-            v = np.array([ranked[k]["parts"].get(role, 0.0) for k in members])
-            columns.append(np.where(v > 0, table.index_of(np.where(v > 0, v, 1.0)), -10 * NEAR_STEPS))
-        for k, row in zip(members, np.stack(columns, axis=1) if columns else np.zeros((len(members), 0))):
-            steps[k] = row
-    kept: list[dict] = []
-    # per topology and device: the positions in `kept` and the step rows of the designs kept, the
-    # rows in an array filled in order (no list re-stacked per design)
-    kept_steps: dict[tuple[str, str], tuple[list[int], np.ndarray]] = {
-        key: ([], np.empty((len(members), steps[members[0]].size), dtype=steps[members[0]].dtype))
-        for key, members in groups.items()
-    }
+        steps = _role_steps(space, [ranked[k] for k in members])
+        kept_rows = np.empty_like(steps)
+        kept: list[int] = []  # positions in members, in rank order
+        for start in range(0, len(members), FOLD_BLOCK):
+            block = steps[start : start + FOLD_BLOCK]
+            prior = _first_near(kept_rows[: len(kept)], block)  # -1: near no design kept before the block
+            within = _near(block, block).tolist()
+            block_kept: list[int] = []
+            for i, first in enumerate(prior.tolist()):
+                k = members[start + i]
+                if not (keep and design_key(ranked[k]) in keep):
+                    if first >= 0:
+                        into[k] = members[kept[first]]
+                        continue
+                    earlier = next((j for j in block_kept if within[j][i]), None)
+                    if earlier is not None:
+                        into[k] = members[start + earlier]
+                        continue
+                kept_rows[len(kept)] = block[i]
+                kept.append(start + i)
+                block_kept.append(i)
+    out: list[dict] = []
+    at: dict[int, int] = {}  # a kept design's place in out
     for k, r in enumerate(ranked):
-        key = (r["topology"], r["device"])
-        positions, rows = kept_steps[key]
-        if positions and not (keep and design_key(r) in keep):
-            far = np.count_nonzero(np.abs(rows[: len(positions)] - steps[k]) >= NEAR_STEPS, axis=1)
-            near = np.flatnonzero(far < DISTINCT_ROLES)
-            if near.size:
-                kept[positions[near[0]]]["variants"] += 1
-                continue
-        rows[len(positions)] = steps[k]
-        positions.append(len(kept))
-        kept.append({**r, "variants": 1})
-    return kept
+        if into[k] == k:
+            at[k] = len(out)
+            out.append({**r, "variants": 1})
+        else:
+            out[at[into[k]]]["variants"] += 1
+    return out
+
+
+def _role_steps(space: SearchSpace, records: list[dict]) -> np.ndarray:
+    """The index of each record's part values in its series (one row per record, a column per
+    role; an absent part far from any value)."""
+    roles = sorted(records[0]["parts"])
+    columns = []
+    for role in roles:
+        table = space.capacitors if role.startswith("c_") else space.resistors
+        v = np.array([r["parts"].get(role, 0.0) for r in records])
+        columns.append(np.where(v > 0, table.index_of(np.where(v > 0, v, 1.0)), -10 * NEAR_STEPS))
+    return np.stack(columns, axis=1).astype(np.int32) if columns else np.zeros((len(records), 0), dtype=np.int32)
+
+
+def _near(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """(len(a), len(b)) bool: rows of ``a`` and ``b`` that are not distinct (fewer than
+    DISTINCT_ROLES roles NEAR_STEPS or more apart)."""
+    far = np.zeros((len(a), len(b)), dtype=np.int8)
+    for role in range(a.shape[1]):  # a pass per role over 2-D arrays (a reduction along roles costs more)
+        far += np.abs(a[:, None, role] - b[None, :, role]) >= NEAR_STEPS
+    return far < DISTINCT_ROLES
+
+
+def _first_near(kept: np.ndarray, block: np.ndarray, rows: int = 4096) -> np.ndarray:
+    """For each row of ``block``, the first row of ``kept`` near it (-1 where none), compared
+    ``rows`` kept rows at a time (a bounded working set)."""
+    first = np.full(len(block), -1)
+    for start in range(0, len(kept), rows):
+        near = _near(kept[start : start + rows], block)
+        found = (first < 0) & near.any(axis=0)
+        first[found] = start + near.argmax(axis=0)[found]
+    return first
 
 
 def _limit_metric(limit: str) -> tuple[str | None, str]:
