@@ -28,6 +28,7 @@ next batch" one step across every process sharing a search, so a budget is met e
 
 from __future__ import annotations
 
+import copy
 import fcntl
 import hashlib
 import inspect
@@ -781,6 +782,18 @@ class _MemoryStorage(_WaitingIndex, optuna.storages.InMemoryStorage):
     def _waiting_made(self, study_id: int) -> int:
         return self._made
 
+    def set_trial_attrs(self, trial_id: int, user_attrs: dict[str, Any], system_attrs: dict[str, Any]) -> None:
+        """Set a trial's user and system attributes in one step: what Optuna's
+        set_trial_user_attr and set_trial_system_attr do one attribute at a time (each a copy
+        of the trial and of its attribute dict), with one copy of each."""
+        with self._lock:
+            trial = self._get_trial(trial_id)
+            self.check_trial_is_updatable(trial_id, trial.state)
+            trial = copy.copy(trial)
+            trial.user_attrs = {**trial.user_attrs, **user_attrs}
+            trial.system_attrs = {**trial.system_attrs, **system_attrs}
+            self._set_trial(trial_id, trial)
+
 
 def tell(study: optuna.Study, trial: optuna.Trial, values: list[float]) -> None:
     """Finish ``trial`` with ``values`` as ``study.tell`` does (the sampler's after_trial, the
@@ -810,7 +823,7 @@ def record_trial(
     (:meth:`_JournalStorage.set_trial_attrs`): the same records, without a read-back per
     attribute and a read of the trial before each constraint."""
     storage = study_storage(study)
-    if not isinstance(storage, _JournalStorage):
+    if not isinstance(storage, (_JournalStorage, _MemoryStorage)):
         for key, value in user_attrs.items():
             trial.set_user_attr(key, value)
         for key, value in constraints.items():

@@ -227,6 +227,40 @@ def test_a_trial_recorded_in_one_step_reads_back_as_the_calls_one_by_one(tmp_pat
         record_trial(study, study.ask(), {}, {"violation": float("nan")}, [1.0])
 
 
+def test_a_trial_recorded_in_one_step_in_memory_is_the_calls_one_by_one() -> None:
+    # record_trial on the default (in-memory) storage, its attributes in one step
+    # (_MemoryStorage.set_trial_attrs), against set_user_attr, set_constraint and tell called
+    # one by one on Optuna's own in-memory storage: the same trials, attributes and constraints
+    from optimizer.storage import record_trial
+
+    seen = []
+    for name, store in (("ours", open_storage(None)), ("optuna", optuna.storages.InMemoryStorage())):
+        study = optuna.create_study(study_name="m", storage=store, directions=["minimize", "maximize"])
+        for k in range(3):
+            trial = study.ask()
+            trial.suggest_int("x", 0, 9)
+            trial.set_user_attr("given", k)  # kept beside the attributes recorded in one step
+            if name == "ours":
+                record_trial(
+                    study, trial, {"record": f'{{"k": {k}}}', "rank": [k]}, {"violation": 0.5 * k}, [k, 2.0 * k]
+                )
+            else:
+                trial.set_user_attr("record", f'{{"k": {k}}}')
+                trial.set_user_attr("rank", [k])
+                trial.set_constraint("violation", 0.5 * k)
+                study.tell(trial, [k, 2.0 * k])
+        seen.append([(t.number, t.state, t.values, t.user_attrs, t.system_attrs) for t in study.get_trials()])
+    assert seen[0] == seen[1]
+    assert seen[0][2][4]["constraints:violation"] == 1.0 and seen[0][2][3]["rank"] == [2]
+    study = optuna.create_study(storage=open_storage(None))
+    trial = study.ask()
+    with pytest.raises(ValueError, match="NaN"):
+        record_trial(study, trial, {}, {"violation": float("nan")}, [1.0])
+    study.tell(trial, 1.0)
+    with pytest.raises(RuntimeError):  # a finished trial takes no more attributes, as in Optuna's own
+        study._storage.set_trial_attrs(trial._trial_id, {"late": 1}, {})
+
+
 def test_replaying_a_read_in_place_gives_the_trials_optuna_s_own_replay_gives(tmp_path) -> None:
     """Another writer's trials arrive with their attributes and results in one read, and the
     replay applies those to a trial it created or copied in the same read in place (no copy per
