@@ -124,16 +124,25 @@ def gain_error_db(spec: Spec, gain: np.ndarray) -> np.ndarray:
     return 20.0 * np.log10(np.maximum(np.abs(gain), 1e-12) / spec.gain.target)
 
 
+VIOLATION_CAP = 1e6  # the largest normalised violation of one limit (a missing figure's)
+
+
 def _above(value: np.ndarray, minimum: float | np.ndarray) -> np.ndarray:
-    return np.maximum(0.0, (minimum - np.nan_to_num(value, nan=-np.inf)) / minimum).clip(max=1e6)
+    """The normalised shortfall of ``value`` under ``minimum`` (0 where met, VIOLATION_CAP where
+    there is no figure: NaN)."""
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        short = (minimum - value) / minimum
+    return np.minimum(np.maximum(np.where(np.isnan(value), VIOLATION_CAP, short), 0.0), VIOLATION_CAP)
 
 
 def _below(value: np.ndarray, maximum: float | np.ndarray) -> np.ndarray:
-    # a maximum of 0 (a rating derated to nothing at the spec's highest ambient) is violated by
-    # any value above it, as far as a violation goes (1e6), and met by 0
-    with np.errstate(divide="ignore", invalid="ignore"):
-        excess = (np.nan_to_num(value, nan=np.inf) - maximum) / maximum
-    return np.maximum(0.0, np.nan_to_num(excess, nan=0.0)).clip(max=1e6)
+    """The normalised excess of ``value`` over ``maximum`` (0 where met, VIOLATION_CAP where there
+    is no figure: NaN). A maximum of 0 (a rating derated to nothing at the spec's highest
+    ambient) is violated by any value above it, as far as a violation goes, and met by 0."""
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        excess = (value - maximum) / maximum
+    excess = np.where(np.isnan(value), VIOLATION_CAP, excess)  # 0/0 (a 0 against a maximum of 0): met
+    return np.minimum(np.fmax(excess, 0.0, out=excess), VIOLATION_CAP, out=excess)
 
 
 def limit_violations(

@@ -122,3 +122,32 @@ def test_limit_table_and_margins_against_a_hand_worked_design() -> None:
         "swing_vpp": np.array([4.4, 6.0]),
     }
     assert np.allclose(limit_margins(SPEC, arrays), [0.1, 0.25], rtol=1e-12)
+
+
+def test_violations_of_missing_infinite_and_zero_figures_follow_the_plain_rules() -> None:
+    """_below and _above against their rules applied one value at a time: the normalised
+    excess (shortfall) past the limit, none where met, VIOLATION_CAP (1e6) at most and where
+    there is no figure (NaN); a maximum of 0 met by 0 and violated by anything above it."""
+    from optimizer.scoring import VIOLATION_CAP, _above, _below
+
+    values = np.array([0.0, -0.0, 1.0, 2.5, -3.0, 1e300, -1e300, np.inf, -np.inf, np.nan, 5e-324, 0.2499])
+
+    def plain_below(x: float, m: float) -> float:
+        if x != x:
+            return VIOLATION_CAP
+        if m == 0:
+            return VIOLATION_CAP if x > 0 else 0.0
+        return min(max((x - m) / m, 0.0), VIOLATION_CAP) if abs(x) != np.inf else (VIOLATION_CAP if x > 0 else 0.0)
+
+    def plain_above(x: float, m: float) -> float:
+        if x != x:
+            return VIOLATION_CAP
+        return min(max((m - x) / m, 0.0), VIOLATION_CAP) if abs(x) != np.inf else (VIOLATION_CAP if x < 0 else 0.0)
+
+    with np.errstate(over="ignore"):  # the plain rules' 1e300 / 1e-9
+        for limit in (0.0, 0.25, 1.0, 3.3, 1e-9, 2e6):
+            assert list(_below(values, limit)) == [plain_below(float(x), limit) for x in values]
+            per_element = np.resize([limit, 1.0, 0.0], values.size)
+            assert list(_below(values, per_element)) == [plain_below(float(x), m) for x, m in zip(values, per_element)]
+            if limit > 0:
+                assert list(_above(values, limit)) == [plain_above(float(x), limit) for x in values]
