@@ -215,8 +215,9 @@ def evaluate_group(
     }
 
 
-def _finite(x: float) -> float | None:
-    return float(x) if math.isfinite(x) else None
+def _lists(arrays: dict[str, np.ndarray]) -> dict[str, list[float]]:
+    """Each array (one value per design) as a list of Python floats."""
+    return {name: np.asarray(v, dtype=float).tolist() for name, v in arrays.items()}
 
 
 def evaluate_designs(space: SearchSpace, designs: list[Design]) -> list[dict]:
@@ -233,27 +234,32 @@ def evaluate_designs(space: SearchSpace, designs: list[Design]) -> list[dict]:
         groups.setdefault((d.topology, stack_key(space.devices[d.device])), []).append(k)
     for (topology, _), members in groups.items():
         roles = [r for r, _ in designs[members[0]].parts]
-        index = {r: np.array([dict(designs[k].parts)[r] for k in members]) for r in roles}
+        given = [dict(designs[k].parts) for k in members]
+        index = {r: np.array([p[r] for p in given]) for r in roles}
         g = evaluate_group(space, topology, [designs[k].device for k in members], index)
+        # each figure of the group as a list of Python floats (what float() of each element gives),
+        # made once per group rather than an array element read per design and figure
+        parts = _lists({**g["resistors"], **g["caps"]})
+        metrics_of = {m: [x if math.isfinite(x) else None for x in v] for m, v in _lists(g["metrics"]).items()}
+        violations, terms = _lists(g["violations"]), _lists(g["score_terms"])
+        objectives = [np.asarray(v, dtype=float).tolist() for v in g["objective_values"]]
+        total, score = (np.asarray(g[k], dtype=float).tolist() for k in ("total", "score"))
         for j, k in enumerate(members):
-            metrics = {m: _finite(v[j]) for m, v in g["metrics"].items()}
-            feasible = bool(g["total"][j] == 0)
+            metrics = {m: v[j] for m, v in metrics_of.items()}
+            feasible = total[j] == 0
             record = {
                 "topology": topology,
                 "device": designs[k].device,
-                "parts": {
-                    **{r: float(v[j]) for r, v in g["resistors"].items()},
-                    **{c: float(v[j]) for c, v in g["caps"].items()},
-                },
+                "parts": {r: v[j] for r, v in parts.items()},
                 "metrics": metrics,
-                "violations": {name: float(v[j]) for name, v in g["violations"].items() if v[j] > 0},
-                "total_violation": float(g["total"][j]),
+                "violations": {name: v[j] for name, v in violations.items() if v[j] > 0},
+                "total_violation": total[j],
                 "binding": str(g["binding"][j]),
                 "feasible": feasible,
-                "score": float(g["score"][j]),
-                "score_terms": {name: round(float(v[j]), 4) for name, v in g["score_terms"].items()},
+                "score": score[j],
+                "score_terms": {name: round(v[j], 4) for name, v in terms.items()},
                 "basis": robustness.basis_label(space.spec, feasible, metrics.get("yield"), robustness.SCREEN_BUILDS),
-                "objectives": [float(v[j]) for v in g["objective_values"]],
+                "objectives": [v[j] for v in objectives],
             }
             if not g["active"][j]:
                 scoring.withhold_small_signal(record)
