@@ -526,7 +526,7 @@ def summarise(space: SearchSpace, study: optuna.Study, top: int, samples: int, *
     missed: set = set()
     for round_ in range(FRONT_ROUNDS):
         if round_:
-            points = front_records(space, [r for r in every if design_key(r) not in missed])
+            points = front_records(space, [r for r in every if r["feasible"] and design_key(r) not in missed])
         with_yield = _yield_points(points)
         to_assess = [r for k, r in enumerate(points) if k in with_yield and design_key(r) not in assessed]
         full.assess(to_assess)
