@@ -105,3 +105,34 @@ def test_a_full_run_keeps_the_front_table_and_the_notes(tmp_path) -> None:
     assert "new table" in text and "old table" not in text
     assert text.index("## Quality") < text.index(bench_search.FRONT_HEADING) < text.index("## Notes to this run")
     assert row in text and text.count(bench_search.FRONT_HEADING) == 1 and text.endswith("why\n")
+
+
+def test_wall_replaces_its_specs_rows_and_judges_the_targets_over_every_row(tmp_path, monkeypatch) -> None:
+    path = tmp_path / "search.md"
+    head = "| spec | budget | in memory: search | finish | total | journal file: search | finish | total |\n"
+    path.write_text(
+        "# Search benchmark\n\n## Quality\n\nquality table\n\n## Our search: wall time (s, median)\n\n"
+        + head
+        + "| --- | --- | --- | --- | --- | --- | --- | --- |\n"
+        "| bs_a | 4,000 | 2.50 | 0.90 | 3.40 | 2.60 | 0.90 | 3.50 |\n"
+        "| bs_b | 4,000 | 1.00 | 0.50 | 1.50 | 1.20 | 0.50 | 1.70 |\n\n"
+        "## Targets\n\n| target | measured | met |\n| --- | --- | --- |\n"
+        "| optimum within 1 % in >= 9 of 10 seeds, every spec | bs_a 10/10 | met |\n"
+        "| median wall time < 3 s in memory (search itself) | worst 2.50 s | met |\n"
+        "| median wall time < 3 s in memory (search + finishing step) | worst 3.40 s | **missed** |\n"
+        "| median wall time < 10 s on the journal file (search + finishing step) | worst 3.50 s | met |\n\n"
+        "## Notes to this run\n\nwhy\n"
+    )
+    monkeypatch.setattr(bench_search, "RESULTS", path)
+    spec = bench_search.load_spec(bench_search.SPECS / "bs_e24_split_guitar.yaml")  # a budget of 4,000
+    monkeypatch.setattr(bench_search, "load_spec", lambda p: spec)
+    monkeypatch.setattr(bench_search, "run_ours", lambda spec, seed, storage: ([], 2.0, 0.25, "id"))
+    bench_search.wall(["bs_a"], bench_search.RunFacts.start())
+    text = path.read_text()
+    assert "| bs_a | 4,000 | 2.00 | 0.25 | 2.25 | 2.00 | 0.25 | 2.25 |" in text
+    assert "| bs_b | 4,000 | 1.00 | 0.50 | 1.50 | 1.20 | 0.50 | 1.70 |" in text  # the other spec's row kept
+    assert "| median wall time < 3 s in memory (search + finishing step) | worst 2.25 s | met |" in text
+    assert "| median wall time < 3 s in memory (search itself) | worst 2.00 s | met |" in text
+    assert "| optimum within 1 % in >= 9 of 10 seeds, every spec | bs_a 10/10 | met |" in text  # not a wall row
+    assert "quality table" in text and text.endswith("## Notes to this run\n\nwhy\n")
+    assert text.index("## Notes to a wall-time run") < text.index("## Notes to this run")
