@@ -130,6 +130,7 @@ VIOLATION_CAP = 1e6  # the largest normalised violation of one limit (a missing 
 def _above(value: np.ndarray, minimum: float | np.ndarray) -> np.ndarray:
     """The normalised shortfall of ``value`` under ``minimum`` (0 where met, VIOLATION_CAP where
     there is no figure: NaN)."""
+    value = np.asarray(value, dtype=float)  # numpy's division (a Python float would raise at 0)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         short = (minimum - value) / minimum
     return np.minimum(np.maximum(np.where(np.isnan(value), VIOLATION_CAP, short), 0.0), VIOLATION_CAP)
@@ -139,6 +140,7 @@ def _below(value: np.ndarray, maximum: float | np.ndarray) -> np.ndarray:
     """The normalised excess of ``value`` over ``maximum`` (0 where met, VIOLATION_CAP where there
     is no figure: NaN). A maximum of 0 (a rating derated to nothing at the spec's highest
     ambient) is violated by any value above it, as far as a violation goes, and met by 0."""
+    value = np.asarray(value, dtype=float)  # numpy's division (a Python float would raise at 0)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         excess = (value - maximum) / maximum
     excess = np.where(np.isnan(value), VIOLATION_CAP, excess)  # 0/0 (a 0 against a maximum of 0): met

@@ -151,3 +151,5 @@ def test_violations_of_missing_infinite_and_zero_figures_follow_the_plain_rules(
             assert list(_below(values, per_element)) == [plain_below(float(x), m) for x, m in zip(values, per_element)]
             if limit > 0:
                 assert list(_above(values, limit)) == [plain_above(float(x), limit) for x in values]
+            for x in (0.0, 2.5, float("nan"), float("inf")):  # a figure as a Python float
+                assert float(_below(x, limit)) == plain_below(x, limit)
