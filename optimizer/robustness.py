@@ -123,7 +123,7 @@ def judge(
         def passes(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:
             block_limits = {k: np.asarray(v)[rows, None] if np.ndim(v) else v for k, v in limits.items()}
             v = scoring.limit_violations(spec, sample, sample, block_limits, sample["active"], core_only=not full)
-            return scoring.total_violation(v) == 0
+            return scoring.meets_every_limit(v)
 
         yield_fraction = monte_carlo_yield(
             topology,

@@ -239,6 +239,16 @@ def total_violation(violations: dict[str, np.ndarray]) -> np.ndarray:
     return np.sum(np.stack(list(violations.values())), axis=0)
 
 
+def meets_every_limit(violations: dict[str, np.ndarray]) -> np.ndarray:
+    """True where every violation is 0: ``total_violation(violations) == 0`` (each violation is 0
+    or more, or NaN), without stacking them (a Monte Carlo screen asks it of every build)."""
+    values = iter(violations.values())
+    worst = np.array(next(values), dtype=float)
+    for v in values:
+        np.maximum(worst, v, out=worst)  # NaN kept: it meets nothing, as in the sum
+    return worst == 0
+
+
 def binding_limit(violations: dict[str, np.ndarray]) -> np.ndarray:
     """Name of the most violated limit per candidate ('' where all are met); 'active' wherever
     the stage is not active, whatever else it misses (figures about a saturated or cut-off bias

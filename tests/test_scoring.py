@@ -153,3 +153,17 @@ def test_violations_of_missing_infinite_and_zero_figures_follow_the_plain_rules(
                 assert list(_above(values, limit)) == [plain_above(float(x), limit) for x in values]
             for x in (0.0, 2.5, float("nan"), float("inf")):  # a figure as a Python float
                 assert float(_below(x, limit)) == plain_below(x, limit)
+
+
+def test_meeting_every_limit_is_a_summed_violation_of_zero() -> None:
+    """meets_every_limit against total_violation(...) == 0 on violations of 0, small, large,
+    infinite and NaN (no figure), one or several per build."""
+    from optimizer.scoring import meets_every_limit
+
+    rng = np.random.default_rng(3)
+    pool = np.array([0.0, 0.0, 0.0, 0.0, 1e-300, 0.25, 1e6, np.inf, np.nan])
+    violations = {f"limit{k}": rng.choice(pool, size=(40, 25)) for k in range(6)}
+    expected = total_violation(violations) == 0
+    assert 0 < np.count_nonzero(expected) < expected.size  # both verdicts
+    assert np.array_equal(meets_every_limit(violations), expected)
+    assert np.array_equal(meets_every_limit({"one": violations["limit0"]}), violations["limit0"] == 0)
