@@ -819,9 +819,10 @@ def record_trial(
 ) -> None:
     """Give ``trial`` its user attrs and constraints, then tell it ``values``: what
     ``trial.set_user_attr``, ``trial.set_constraint`` (a value as float, NaN refused) and
-    :func:`tell` do, call by call. On a journal the attributes are set in one storage step
-    (:meth:`_JournalStorage.set_trial_attrs`): the same records, without a read-back per
-    attribute and a read of the trial before each constraint."""
+    :func:`tell` do, call by call. On a journal and in memory the attributes are set in one
+    storage step (:meth:`_JournalStorage.set_trial_attrs`, :meth:`_MemoryStorage.set_trial_attrs`):
+    the same records, without a read-back or a copy of the trial per attribute and a read of the
+    trial before each constraint."""
     storage = study_storage(study)
     if not isinstance(storage, (_JournalStorage, _MemoryStorage)):
         for key, value in user_attrs.items():

@@ -75,6 +75,28 @@ class _Recorded:
 RANK_KEY_ATTR = "rank_key"
 
 
+class TextMemo:
+    """Values kept by the text of a trial's record, at most ``limit`` of them (cleared whole
+    when full: a long-lived process runs many searches)."""
+
+    def __init__(self, limit: int) -> None:
+        self.limit = limit
+        self._by_text: dict[str, Any] = {}
+
+    def keep(self, text: str, value: Any) -> Any:
+        """Keep ``value`` for ``text``; returns it."""
+        if len(self._by_text) >= self.limit:
+            self._by_text.clear()
+        self._by_text[text] = value
+        return value
+
+    def get(self, text: str) -> Any:
+        return self._by_text.get(text)
+
+    def clear(self) -> None:
+        self._by_text.clear()
+
+
 class RankMemo:
     """``rank_key(trial)``, read from the key stored beside the trial's record (user attr
     RANK_KEY_ATTR, written by :func:`run_search` with the record) or else kept by the text of
@@ -83,14 +105,13 @@ class RankMemo:
     shared search most of what reading another runner's trial cost (25 us or more each).
     Trials stored without the key (by an older version) are ranked from their record; a
     search's repeated designs carry the same text, and the search remembers each record it
-    makes as it makes it (:meth:`remember`). Cleared when it holds LIMIT texts (a long-lived
-    process runs many searches)."""
+    makes as it makes it (:meth:`remember`). At most LIMIT texts are kept (:class:`TextMemo`)."""
 
     LIMIT = 1 << 16
 
     def __init__(self, key: Callable[[Any], tuple]) -> None:
         self._key = key
-        self._by_text: dict[str, tuple] = {}
+        self._by_text = TextMemo(self.LIMIT)
 
     def __call__(self, trial: optuna.trial.FrozenTrial) -> tuple:
         stored = trial.user_attrs.get(RANK_KEY_ATTR)
@@ -100,50 +121,24 @@ class RankMemo:
         if not isinstance(text, str):
             return self._key(trial)
         found = self._by_text.get(text)
-        return found if found is not None else self._keep(text, self._key(trial))
+        return found if found is not None else self._by_text.keep(text, self._key(trial))
 
     def remember(self, text: str, record: dict) -> list:
         """The rank of a trial whose record is ``record``, stored as ``text``; returns it as
         the list stored beside the record (RANK_KEY_ATTR)."""
-        return list(self._keep(text, self._key(_Recorded(record))))
-
-    def _keep(self, text: str, key: tuple) -> tuple:
-        if len(self._by_text) >= self.LIMIT:
-            self._by_text.clear()
-        self._by_text[text] = key
-        return key
+        return list(self._by_text.keep(text, self._key(_Recorded(record))))
 
 
 #: rank_key of the search's own trials (the sampler's, the tallies' and the snapshots' one key)
 ranked = RankMemo(rank_key)
 
 
-class RecordMemo:
-    """The design records this process made, by the text stored for each: the finishing step
-    reads every trial's record, and decoding the JSON of 4,000 records took some 0.13 s of a
-    search whose records were all made here moments before. A record is kept as it was
-    made (JSON-ready: it decodes from its text to an equal record) and never changed. Cleared
-    when it holds LIMIT records (some 6 kB each) and when a search's finishing step is done."""
-
-    LIMIT = 1 << 13
-
-    def __init__(self) -> None:
-        self._by_text: dict[str, dict] = {}
-
-    def remember(self, text: str, record: dict) -> None:
-        if len(self._by_text) >= self.LIMIT:
-            self._by_text.clear()
-        self._by_text[text] = record
-
-    def get(self, text: str) -> dict | None:
-        return self._by_text.get(text)
-
-    def clear(self) -> None:
-        self._by_text.clear()
-
-
-#: the records of the searches run in this process (their finishing step reads them from here)
-made_records = RecordMemo()
+#: the design records this process made, by the text stored for each: the finishing step reads
+#: every trial's record, and decoding the JSON of 4,000 records took some 0.13 s of a search whose
+#: records were all made here moments before. A record is kept as it was made (JSON-ready: it
+#: decodes from its text to an equal record) and never changed; at most 8,192 (some 6 kB each),
+#: and none past a search's finishing step
+made_records = TextMemo(1 << 13)
 
 #: makes a search's sampler from its space and a seed offset (each runner of a shared search its own)
 SamplerFactory = Callable[[SearchSpace, int], optuna.samplers.BaseSampler]
@@ -359,7 +354,7 @@ def run_search(
                         fresh = list(dict.fromkeys(d for d in designs if d not in known))
                         for d, r in zip(fresh, evaluate_designs(space, fresh)):
                             text = json.dumps(r)
-                            made_records.remember(text, r)
+                            made_records.keep(text, r)
                             known[d] = (text, r["total_violation"], r["objectives"], ranked.remember(text, r))
                         records = [known[d] for d in designs]
                     except Exception as error:
