@@ -291,12 +291,18 @@ def worst_case(
     for key, value in values.items():
         if value.dtype == bool:
             continue
-        with np.errstate(invalid="ignore"):  # a corner that is not active has NaN figures: left out
-            low = np.nanmin(np.where(np.isnan(value), np.inf, value), axis=1)
-            high = np.nanmax(np.where(np.isnan(value), -np.inf, value), axis=1)
+        low, high = _range(value, axis=1)  # a corner that is not active has NaN figures: left out
         out[key] = (np.where(np.isfinite(low), low, np.nan), np.where(np.isfinite(high), high, np.nan))
     out["active_all"] = (active_all, active_all)
     return out
+
+
+def _range(value: np.ndarray, axis: int) -> tuple[np.ndarray, np.ndarray]:
+    """The lowest and highest of ``value`` along ``axis``, NaN (no figure) left out: +inf and
+    -inf where no element has one."""
+    return np.min(np.where(np.isnan(value), np.inf, value), axis=axis), np.max(
+        np.where(np.isnan(value), -np.inf, value), axis=axis
+    )
 
 
 def _corner_result(
@@ -362,9 +368,6 @@ def bias_spread(
         for role, v in p.items()
     }
     both = {role: np.concatenate([up[role], down[role]]) for role in p}
-    ic_low = np.full(n, np.inf)
-    ic_high = np.full(n, -np.inf)
-    v_low, v_high = ic_low.copy(), ic_high.copy()
     # every (temperature, supply, device edge, ground's place) corner in one call
     corners = _corner_conditions(device, conditions, temperature_range, supply_range)
     pairs = corners.spread.size
@@ -376,10 +379,8 @@ def bias_spread(
     )
     ic = np.where(op["active"], op["ic"], np.nan).reshape(2 * pairs, n)
     v_out = np.asarray(op["v_out_q"]).reshape(2 * pairs, n)
-    with np.errstate(invalid="ignore"):
-        ic_low = np.fmin(ic_low, np.nanmin(np.where(np.isnan(ic), np.inf, ic), axis=0))
-        ic_high = np.fmax(ic_high, np.nanmax(np.where(np.isnan(ic), -np.inf, ic), axis=0))
-    v_low, v_high = np.minimum(v_low, v_out.min(axis=0)), np.maximum(v_high, v_out.max(axis=0))
+    ic_low, ic_high = _range(ic, axis=0)
+    v_low, v_high = v_out.min(axis=0), v_out.max(axis=0)
     with np.errstate(divide="ignore", invalid="ignore"):
         spread = np.where((ic_low > 0) & np.isfinite(ic_high), ic_high / ic_low, np.inf)
     return {"ic_low": ic_low, "ic_high": ic_high, "ic_spread": spread, "v_out_low": v_low, "v_out_high": v_high}
