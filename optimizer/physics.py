@@ -1163,6 +1163,49 @@ def usable_swing(
     return np.where(np.isfinite(swing) & (np.abs(gain) > 0), swing, 0.0)
 
 
+def swing_reaches(
+    static_output: Callable[[np.ndarray], np.ndarray],
+    gain: np.ndarray,
+    clip_peak: np.ndarray,
+    floor: float,
+    tolerance: float = SWING_TOLERANCE,
+    rows_output: Callable[[np.ndarray], Callable[[np.ndarray], np.ndarray]] | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Whether the usable swing of :func:`usable_swing` reaches ``floor`` (V peak-to-peak),
+    told from the transfer at one or two drives where that is certain, without solving the swing.
+
+    A drive ``a`` whose deviation d(a) is within ``tolerance`` has both output peaks within it
+    of the linear gain, so its peak-to-peak is at least 2(1 - tolerance)|gain| a; one past it
+    has crossed, and the swing at the crossing is at most 2(1 + tolerance)|gain| times the
+    crossing's drive. With a = floor/(2|gain|): d(a/(1 - tolerance)) within the tolerance means
+    the crossing lies beyond a drive whose peak-to-peak is already the floor (reached, as far as
+    :func:`usable_swing`'s scan reaches; its peak-to-peak there is returned, at least the floor);
+    for the others, d(a/(1 + tolerance)) past it means the crossing comes before a drive that
+    could give the floor (short). Returns (verdict: +1 reached, -1 short, 0 undecided: a swing
+    between (1 - tolerance)/(1 + tolerance) and (1 + tolerance)/(1 - tolerance) of the floor,
+    for :func:`usable_swing` to solve; that lower bound, V). Both rest, as :func:`usable_swing` does, on the deviation rising with the drive. The
+    second drive is solved for the candidates not yet reached alone, through ``rows_output``
+    as :func:`usable_swing`'s, when the batch has more than WHOLE_SWING_BATCH."""
+    gain = np.asarray(gain, dtype=float)
+    n = gain.size
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        a_floor = floor / (2.0 * np.abs(gain))
+        a_high, a_low = a_floor / (1.0 - tolerance), a_floor / (1.0 + tolerance)
+        scan_end = clip_peak / ((1.0 - tolerance) * np.abs(gain)) * SWING_GRID[-1] * 2.0**SWING_DOUBLINGS
+        d_high, pp_high = (v[:, 0] for v in _swing_measure(static_output, gain, tolerance)(a_high[:, None]))
+        reached = (d_high <= 0.0) & (a_high <= scan_end)
+        verdict = np.where(reached, 1, 0)
+        rest = np.flatnonzero(~reached)
+        if rest.size:
+            if rows_output is None or n <= WHOLE_SWING_BATCH:  # the whole batch, the reached ones too
+                rest, transfer = np.arange(n), static_output
+            else:
+                transfer = rows_output(rest)
+            d_low = _swing_measure(transfer, gain[rest], tolerance)(a_low[rest, None])[0][:, 0]
+            verdict[rest[(d_low > 0.0) & ~reached[rest]]] = -1
+    return verdict, np.maximum(pp_high, floor)  # (rounding aside, the peak-to-peak is the floor or more)
+
+
 def _swing_measure(
     static_output: Callable[[np.ndarray], np.ndarray], gain: np.ndarray, tolerance: float
 ) -> Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]:

@@ -139,7 +139,8 @@ def judge(
             supply_range=supply_range,
             # the builds' noise and supply-rejection passes only where the spec limits them
             noise=any(getattr(spec.limits, name) is not None for name in scoring.FULL_MODEL_LIMITS),
-            swing_last=True,  # the spec limits the swing from below only (swing_min)
+            # the spec limits the swing from below only (swing_min), or not at all
+            swing_floor=0.0 if spec.limits.swing_min is None else spec.limits.swing_min,
         )
         violations["yield"] = np.maximum(0.0, spec.limits.yield_min - yield_fraction) / spec.limits.yield_min
     elif basis == "worst_case":

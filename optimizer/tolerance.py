@@ -144,10 +144,11 @@ def _flat_result(
     noise: bool = True,
     swing_where: Callable[[dict[str, np.ndarray]], np.ndarray] | None = None,
     swing: bool = True,
+    swing_floor: float | None = None,
 ) -> dict[str, np.ndarray]:
     """Evaluate arrays of shape (candidates, samples) flattened; metrics, ratings, 'active' and
-    the operating point's 'ic' come back in the same 2-D shape (``full``, ``noise``, ``swing``:
-    as Topology.evaluate's). The conditions' supply, temperature and ground's place are scalars
+    the operating point's 'ic' come back in the same 2-D shape (``full``, ``noise``, ``swing``,
+    ``swing_floor``: as Topology.evaluate's). The conditions' supply, temperature and ground's place are scalars
     or flattened arrays of the same size. ``swing_where``: Topology.evaluate's, on this 2-D form (taken
     where the arrays fit one evaluation chunk; the swing solved everywhere otherwise)."""
     shape = hfe.shape
@@ -155,13 +156,19 @@ def _flat_result(
     h = hfe.reshape(-1)
     step = CHUNK_FULL if full else CHUNK_FAST
     per_element = [name for name in ("supply", "temperature", "below_ground") if np.ndim(getattr(conditions, name))]
-    if h.size <= step:
-        where = None if swing_where is None else lambda r: swing_where(_sample(r, shape)).reshape(-1)
+    if h.size <= step or not per_element:
+        where = None if swing_where is None or h.size > step else lambda r: swing_where(_sample(r, shape)).reshape(-1)
         result = topology.evaluate(
-            flat, device, conditions, hfe=h, full=full, noise=noise, swing_where=where, swing=swing
+            flat,
+            device,
+            conditions,
+            hfe=h,
+            full=full,
+            noise=noise,
+            swing_where=where,
+            swing=swing,
+            swing_floor=swing_floor,
         )
-    elif not per_element:
-        result = topology.evaluate(flat, device, conditions, hfe=h, full=full, noise=noise, swing=swing)
     else:  # conditions per element: the model's own chunks would not slice them, so chunked here
         pieces = [
             topology.evaluate(
@@ -172,6 +179,7 @@ def _flat_result(
                 full=full,
                 noise=noise,
                 swing=swing,
+                swing_floor=swing_floor,
             )
             for i in range(0, h.size, step)
         ]
@@ -412,7 +420,7 @@ def monte_carlo_yield(
     full: bool = False,
     supply_range: SupplyRange | None = None,
     noise: bool = True,
-    swing_last: bool = False,
+    swing_floor: float | None = None,
 ) -> np.ndarray:
     """Fraction of ``samples`` random builds (:class:`Builds`) of each candidate for which
     ``passes(sample, rows)`` holds (``sample``: metrics and ratings of shape (block rows,
@@ -422,10 +430,12 @@ def monte_carlo_yield(
     ``full=False`` judges the builds on the fast core metrics (bias, gain, impedances, swing,
     current, ratings); ``full=True`` adds the band corners, noise and supply rejection (the
     corners alone with ``noise=False``: for a ``passes`` that judges neither).
-    ``swing_last=True`` solves the usable swing (the costliest core figure) only for the builds
-    that pass with an unbounded swing (swing_vpp NaN in the others' sample): for a ``passes``
-    that a larger swing never fails (a spec limits the swing from below only); the yield is
-    the same.
+    ``swing_floor`` (V peak-to-peak) is for a ``passes`` that reads the swing only against that
+    floor (a spec's swing_min; 0: not at all): the usable swing (the costliest core figure) is
+    then solved only for the builds that pass with an unbounded swing (swing_vpp NaN in the
+    others' sample), and there only as far as telling whether it reaches the floor
+    (Topology.evaluate's swing_floor: a lower bound at or above it where it surely does, NaN
+    where it surely does not, the swing itself where two drives cannot tell); the yield is the same.
     The builds (the supply and a split supply's ground's place vary per build, and so does the
     temperature where every build fits MERGED_CALLS model calls; past that, one temperature per
     call: the models take them per element) are evaluated in blocks of candidate rows that fit
@@ -468,9 +478,20 @@ def monte_carlo_yield(
                     else np.broadcast_to(builds.below_ground[None, idx], shape).reshape(-1)
                 ),
             )
-            needed: list[np.ndarray] = []  # where the swing was solved (swing_last)
-            unbounded = functools.partial(_passes_unbounded, passes, block, needed) if swing_last else None
-            sample = _flat_result(topology, drawn, device, at, np.ascontiguousarray(hfe), full, noise, unbounded)
+            needed: list[np.ndarray] = []  # where the swing was solved (a swing_floor)
+            unbounded = functools.partial(_passes_unbounded, passes, block, needed) if swing_floor else None
+            sample = _flat_result(
+                topology,
+                drawn,
+                device,
+                at,
+                np.ascontiguousarray(hfe),
+                full,
+                noise,
+                unbounded,
+                swing=swing_floor != 0.0,  # a floor of 0: passes reads no swing
+                swing_floor=swing_floor or None,
+            )
             verdict = passes(sample, block) & sample["active"]
             passed[block] += np.count_nonzero(verdict & needed[0] if needed else verdict, axis=1)
     return passed / samples

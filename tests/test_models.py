@@ -490,6 +490,59 @@ def test_swing_search_keeps_half_a_percent_of_the_brute_force_point(design):
     assert one(r, "swing_vpp") == pytest.approx(deviation(np.array([hi]))[1][0], rel=5e-3)
 
 
+def _one_per_topology() -> list:
+    """The first ngspice check design of every registered topology."""
+    designs: dict = {}
+    for d in check_designs() + follower_designs() + jfet_check_designs() + pair_designs() + pair_ac_designs():
+        designs.setdefault(d.topology, d)
+    assert sorted(designs) == sorted(TOPOLOGIES)
+    return list(designs.values())
+
+
+@pytest.mark.parametrize("design", _one_per_topology(), ids=lambda d: d.topology)
+def test_a_swing_floor_tells_reached_and_short_as_the_solved_swing_does(design):
+    # evaluate's swing_floor (the Monte Carlo builds judged against a spec's swing_min) against the
+    # solved swing of the same designs: on which side of the floor each lies must agree; where the
+    # floor decides it the figure is a lower bound at or above the floor (reached: the peak-to-peak
+    # of a drive within 10 %, no more than the solved swing within its 0.5 %) or NaN (short); the
+    # others (two drives cannot tell: a swing near the floor) keep the solved figure. 300 random
+    # designs around each topology's ngspice check design (more than physics.WHOLE_SWING_BATCH: the
+    # subset paths) at floors across the spread of their swings
+    topo, c = get_topology(design.topology), design.conditions
+    rng = np.random.default_rng(7)
+    parts = {k: float(v) * np.exp(rng.uniform(np.log(0.7), np.log(1.4), 300)) for k, v in design.parts.items()}
+    solved = topo.evaluate(parts, design.device, c, full=False).metrics["swing_vpp"]
+    kept = 0
+    for floor in np.quantile(solved[solved > 0.1], [0.1, 0.5, 0.9]):  # the active designs' swings
+        judged = topo.evaluate(parts, design.device, c, full=False, swing_floor=float(floor)).metrics["swing_vpp"]
+        np.testing.assert_array_equal(judged >= floor, solved >= floor)
+        same = judged == solved
+        kept += np.count_nonzero(same)
+        bound = ~same & (judged >= floor)
+        assert np.all(judged[bound] <= solved[bound] * 1.005)
+        assert np.all(np.isnan(judged[~same & ~bound]))
+    assert 0 < kept < 900  # some solved, some told by the floor
+
+
+def test_swing_reaches_a_floor_by_hand_on_a_hard_clip():
+    # A transfer of gain 1 that clips hard at +-3 V: its usable swing is 6 V p-p (the drive of 3.33 V
+    # where the clipped peak falls 10 % short). By hand, at the two drives floor/(2*0.9) and
+    # floor/(2*1.1): a 5 V floor is reached (its upper drive, 2.78 V, is still linear: 5.56 V p-p),
+    # 6.5 V is left to the solve (upper drive 3.61 V deviates 17 %, lower 2.95 V none), 8 V falls
+    # short (even the lower drive, 3.64 V, deviates 17.5 %)
+    gain, clip_peak = np.ones(3), np.full(3, 3.0)
+
+    def transfer(vs: np.ndarray) -> np.ndarray:
+        return np.clip(vs, -3.0, 3.0)
+
+    assert physics.usable_swing(transfer, gain[:1], clip_peak[:1]) == pytest.approx(6.0, rel=5e-3)
+    for floor, verdict, at_least in ((5.0, 1, 5.0 / 0.9), (6.5, 0, None), (8.0, -1, None)):
+        got, bound = physics.swing_reaches(transfer, gain, clip_peak, floor)
+        assert list(got) == [verdict] * 3
+        if at_least:
+            assert bound == pytest.approx(np.full(3, at_least), rel=1e-12)
+
+
 def test_usable_swing_takes_no_figure_from_a_transfer_without_an_output():
     # A static transfer that is linear (gain 2) up to 0.9 of the clip-level drive and has no output
     # beyond (NaN: a solve that did not settle) must give the swing of a drive that passed, between

@@ -176,10 +176,14 @@ def test_bias_spread_of_both_temperatures_matches_each_alone() -> None:
         assert np.all(both["ic_high"] > np.maximum(ends[0]["ic_high"], ends[1]["ic_low"]))
 
 
+@pytest.mark.parametrize("swing_limit", [False, True], ids=["no-swing-min", "swing-min"])
 @pytest.mark.parametrize("full", [False, True], ids=["screen", "final"])
-def test_judge_of_all_temperatures_matches_one_range_per_temperature(monkeypatch, full: bool) -> None:
+def test_judge_of_all_temperatures_matches_one_range_per_temperature(
+    monkeypatch, full: bool, swing_limit: bool
+) -> None:
     """robustness.judge's yield (the search's screen, and a ranked design's full assessment)
-    build by build against judge run once per temperature level with a one-temperature range."""
+    build by build against judge run once per temperature level with a one-temperature range;
+    on a spec without a swing limit (no swing solved) and with one (judged against it)."""
     parts, conditions, _ = SINGLE
     topology = get_topology("divider_ce")
     nominal_at = replace(conditions, supply=np.full(2, conditions.supply))
@@ -194,7 +198,11 @@ def test_judge_of_all_temperatures_matches_one_range_per_temperature(monkeypatch
             "band": ["20 Hz", "20 kHz"],
             "temperature": ["0 °C", "50 °C"],
             # between the two designs' currents, near the first's: it splits the first's builds
-            "limits": {"supply_current_max": f"{1e3 * 1.03 * float(first['supply_current'][0]):.5f} mA"},
+            "limits": {
+                "supply_current_max": f"{1e3 * 1.03 * float(first['supply_current'][0]):.5f} mA",
+                # near the first design's swing: it splits some of the builds that pass the current limit
+                **({"swing_min": f"{0.97 * float(first['swing_vpp'][0]):.4f} V"} if swing_limit else {}),
+            },
         }
     )
     at = scoring.conditions_from_spec(spec)
@@ -213,17 +221,21 @@ def test_judge_of_all_temperatures_matches_one_range_per_temperature(monkeypatch
         """judge at ``temperature``, with every build's verdict (candidates, builds) recorded."""
         verdicts = np.ones((2, builds), dtype=bool)
         groups = iter(Builds.draw(builds, robustness.BUILDS_SEED, temperature, spec.supply_spread, at).groups())
-        idx = np.zeros(0, dtype=int)
+        idx, calls = np.zeros(0, dtype=int), 0
 
         def recording(*args, **kwargs):
             passes = args[6]
 
             def recorded(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:
-                # judge solves the swing last: each group's builds are first judged with an
-                # unbounded swing (every swing_vpp infinite), then the swing solved where they pass
-                nonlocal idx
-                if np.all(np.isinf(sample["swing_vpp"])):
+                # one call per group of builds (both designs in one block) where the spec does not
+                # limit the swing; where it does, judge solves the swing last: each group's builds
+                # are first judged with an unbounded swing (every swing_vpp infinite), then the
+                # swing judged where they pass
+                nonlocal idx, calls
+                if calls % (2 if swing_limit else 1) == 0:
+                    assert np.all(np.isinf(sample["swing_vpp"])) == swing_limit
                     idx = next(groups)[-1]
+                calls += 1
                 verdict = passes(sample, rows)
                 verdicts[rows, idx] &= verdict & sample["active"]
                 return verdict
@@ -247,17 +259,18 @@ def test_judge_of_all_temperatures_matches_one_range_per_temperature(monkeypatch
 
 
 def test_swing_solved_last_gives_the_same_builds_and_yield() -> None:
-    """monte_carlo_yield with swing_last (the usable swing solved only for the builds that pass
-    with an unbounded one) against the plain path that solves it for every build: the same
-    yield, the same swing wherever it was solved, NaN elsewhere; and evaluate's swing_where
-    against the plain evaluate."""
+    """monte_carlo_yield with a swing_floor (the usable swing solved only for the builds that pass
+    with an unbounded one, and there only as far as telling its side of the floor) against the
+    plain path that solves it for every build: the same yield, the same side of the floor
+    wherever it was judged, NaN where it was not; and evaluate's swing_where against the plain
+    evaluate."""
     topology = get_topology("divider_ce")
     parts, conditions, supply_range = SINGLE
     nominal = topology.evaluate(parts, DEVICE, replace(conditions, supply=np.full(2, conditions.supply))).metrics
-    gain_max, swing_min = np.abs(nominal["gain"]), 0.97 * nominal["swing_vpp"]
+    gain_max, swing_min = np.abs(nominal["gain"]), 0.97 * float(nominal["swing_vpp"].min())
 
     def passes(sample: dict[str, np.ndarray], rows: slice) -> np.ndarray:  # a gain and a swing limit
-        return (np.abs(sample["gain"]) < gain_max[rows, None]) & (sample["swing_vpp"] > swing_min[rows, None])
+        return (np.abs(sample["gain"]) < gain_max[rows, None]) & (sample["swing_vpp"] >= swing_min)
 
     seen: list[dict[str, np.ndarray]] = []
 
@@ -267,15 +280,17 @@ def test_swing_solved_last_gives_the_same_builds_and_yield() -> None:
 
     args = (topology, parts, DEVICE, conditions, TOLERANCES, (0.0, 50.0), recorded, 400, 3, False, supply_range)
     plain = monte_carlo_yield(*args)
-    last = monte_carlo_yield(*args, swing_last=True)
+    last = monte_carlo_yield(*args, swing_floor=swing_min)
     np.testing.assert_array_equal(last, plain)
-    assert np.all((plain > 0.05) & (plain < 0.95))
-    every, unbounded, lean = seen  # one call of the plain path, two of swing_last's
+    assert np.any((plain > 0.05) & (plain < 0.95))
+    every, unbounded, lean = seen  # one call of the plain path, two of the swing floor's
     assert np.all(np.isinf(unbounded["swing_vpp"]))
     solved = (np.abs(every["gain"]) < gain_max[:, None]) & every["active"]
     assert 0 < solved.mean() < 1  # the gain limit alone fails some builds: their swing is skipped
-    np.testing.assert_array_equal(np.isfinite(lean["swing_vpp"]), solved)
-    np.testing.assert_array_equal(lean["swing_vpp"][solved], every["swing_vpp"][solved])
+    short = np.isnan(lean["swing_vpp"]) & solved  # told short of the floor, not solved
+    assert short.any() and np.all(every["swing_vpp"][short] < swing_min)
+    assert np.all(np.isnan(lean["swing_vpp"][~solved]))
+    np.testing.assert_array_equal(lean["swing_vpp"][solved] >= swing_min, every["swing_vpp"][solved] >= swing_min)
     for key in every:
         if key != "swing_vpp":
             np.testing.assert_array_equal(lean[key], every[key], err_msg=key)

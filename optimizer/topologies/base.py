@@ -424,6 +424,7 @@ class Topology(ABC):
         noise: bool = True,
         swing_where: Callable[[StageResult], np.ndarray] | None = None,
         swing: bool = True,
+        swing_floor: float | None = None,
     ) -> StageResult:
         """Metrics, operating point and ratings.
 
@@ -440,7 +441,13 @@ class Topology(ABC):
         figure: given ``swing_where`` (called once with every other figure of the candidates,
         swing_vpp NaN, returning a bool per candidate; for at most one chunk of candidates), it is
         solved only where that is True and left NaN elsewhere; with ``swing=False`` it is not
-        solved at all (for a caller that has it from another call). clip_vpp (V
+        solved at all (for a caller that has it from another call). Given ``swing_floor`` (V
+        peak-to-peak: for a caller that judges the swing against that floor alone, as the Monte
+        Carlo builds against a spec's swing_min), it is solved only where two drives about the
+        floor's cannot tell its side (a swing between about 0.8 and 1.2 times the floor);
+        elsewhere swing_vpp is a lower bound at or above the floor where the swing surely
+        reaches it, NaN where it surely falls short (:func:`physics.swing_reaches`).
+        clip_vpp (V
         peak-to-peak) is the hard clip level of the AC load line, 2*min(cutoff, saturation).
         psrr_ripple_db and psrr_mid_db (dB) are 20*log10(1/|H|) of the small-signal transfer
         from the supply rail to the load at conditions.ripple_frequency and at the band's
@@ -717,6 +724,7 @@ class StageModel(Topology):
         noise: bool = True,
         swing_where: Callable[[StageResult], np.ndarray] | None = None,
         swing: bool = True,
+        swing_floor: float | None = None,
     ) -> StageResult:
         conditions = frame_conditions(conditions, device)
         p = self.check_parts(parts, conditions)
@@ -724,7 +732,7 @@ class StageModel(Topology):
         h = self._hfe_array(device, hfe, n)
         step = CHUNK_FULL if full else CHUNK_FAST
         if n <= step:
-            return self._evaluate(p, device, conditions, h, full, thd_solve, noise, swing_where, swing)
+            return self._evaluate(p, device, conditions, h, full, thd_solve, noise, swing_where, swing, swing_floor)
         if swing_where is not None:
             raise ValueError(f"swing_where takes at most one chunk of candidates ({step}), not {n}")
         out: StageResult | None = None
@@ -738,6 +746,7 @@ class StageModel(Topology):
                 thd_solve,
                 noise,
                 swing=swing,
+                swing_floor=swing_floor,
             )
             if out is None:
                 out = StageResult(
@@ -766,6 +775,7 @@ class StageModel(Topology):
         noise: bool = True,
         swing_where: Callable[[StageResult], np.ndarray] | None = None,
         swing: bool = True,
+        swing_floor: float | None = None,
     ) -> StageResult:
         """:meth:`evaluate` of one chunk of checked ``parts`` in the frame's ``conditions``."""
         p, b, nvt = self._solve(parts, device, conditions, hfe)
@@ -828,13 +838,22 @@ class StageModel(Topology):
             return result
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             if swing_where is None:
-                result.metrics["swing_vpp"] = self._usable_swing(p, device, conditions, b, nvt, gain, 0.5 * clip)
+                result.metrics["swing_vpp"] = self._usable_swing(
+                    p, device, conditions, b, nvt, gain, 0.5 * clip, swing_floor
+                )
             else:
                 rows = np.flatnonzero(swing_where(result))
                 if rows.size:
                     sub_p, sub_c, sub_b, sub_nvt = _rows_of(rows, gain.size, p, conditions, b, nvt)
                     result.metrics["swing_vpp"][rows] = self._usable_swing(
-                        sub_p, device_rows(device, rows), sub_c, sub_b, sub_nvt, gain[rows], 0.5 * clip[rows]
+                        sub_p,
+                        device_rows(device, rows),
+                        sub_c,
+                        sub_b,
+                        sub_nvt,
+                        gain[rows],
+                        0.5 * clip[rows],
+                        swing_floor,
                     )
         return result
 
@@ -1036,14 +1055,26 @@ class StageModel(Topology):
         )
 
     def _usable_swing(
-        self, p: Parts, device: AnyDevice, c: Conditions, b: Bias, nvt: float, gain: np.ndarray, clip_peak: np.ndarray
+        self,
+        p: Parts,
+        device: AnyDevice,
+        c: Conditions,
+        b: Bias,
+        nvt: float,
+        gain: np.ndarray,
+        clip_peak: np.ndarray,
+        floor: float | None = None,
     ) -> np.ndarray:
         """swing_vpp (V peak-to-peak at the load) by :func:`physics.usable_swing`, in double precision
         (single precision, with the small swings it leaves noisy solved again, was no faster at the
         search's groups of 16-64 designs and 1.1x at 16,384: benchmarks/results/models.md).
         A static output that keeps a warm start between its calls (its ``warm_start``: arrays with
         a row per candidate) hands the rows of the candidates a subset's transfer solves to it, so
-        their solves start where the whole batch's would: the same figures alone or in a batch."""
+        their solves start where the whole batch's would: the same figures alone or in a batch.
+        Given a ``floor`` (V, :meth:`evaluate`'s swing_floor): solved only where
+        :func:`physics.swing_reaches` leaves it undecided, on a transfer of those candidates alone
+        (so the same figures as without the floor); a lower bound where it surely reaches the
+        floor, NaN where it surely falls short."""
         whole = self._static_fn(p, device, c, b, nvt, b.beta)
 
         def rows_output(rows: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
@@ -1053,6 +1084,17 @@ class StageModel(Topology):
             if kept:
                 part.warm_start[:] = [v[rows] for v in kept]  # type: ignore[attr-defined]
             return part
+
+        if floor is not None:
+            verdict, at_least = physics.swing_reaches(whole, gain, clip_peak, floor, rows_output=rows_output)
+            swing = np.where(verdict > 0, at_least, np.nan)
+            rows = np.flatnonzero(verdict == 0)
+            if rows.size:
+                sub_p, sub_c, sub_b, sub_nvt = _rows_of(rows, gain.size, p, c, b, nvt)
+                swing[rows] = self._usable_swing(
+                    sub_p, device_rows(device, rows), sub_c, sub_b, sub_nvt, gain[rows], clip_peak[rows]
+                )
+            return swing
 
         return physics.usable_swing(
             whole,
