@@ -46,6 +46,8 @@ SWING_STEPS = 3  # Illinois false-position steps on the drive amplitude after th
 SWING_MORE_STEPS = 6  # further steps, only for candidates whose swing estimate still moves (see usable_swing)
 WHOLE_SWING_BATCH = 64  # candidates up to which the swing's further steps solve the whole batch (see usable_swing)
 SWING_RTOL = 5e-3  # a swing estimate that the last step moved by more than this share has not converged
+SWING_FLOOR_MARGIN = 0.01  # share past a floor by which a peak-to-peak tells the swing's side of it (see swing_reaches)
+SWING_FLOOR_STEPS = 2  # false-position steps for a swing the first two drives leave open (see swing_reaches)
 SWING_DOUBLINGS = 3  # further scan points, each twice the last, for a stage that has not deviated by SWING_GRID's end
 MAX_STEP = 0.1  # V, largest Newton step in Vbe (a guard; steps from above are about NF*VT)
 SLOW_ITERATIONS = 8  # further Newton steps, only for candidates not yet converged (see solve_junction)
@@ -1170,40 +1172,85 @@ def swing_reaches(
     floor: float,
     tolerance: float = SWING_TOLERANCE,
     rows_output: Callable[[np.ndarray], Callable[[np.ndarray], np.ndarray]] | None = None,
+    steps: int = SWING_FLOOR_STEPS,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Whether the usable swing of :func:`usable_swing` reaches ``floor`` (V peak-to-peak),
-    told from the transfer at one or two drives where that is certain, without solving the swing.
+    told from the transfer at a few drives where that is certain, without solving the swing.
 
-    A drive ``a`` whose deviation d(a) is within ``tolerance`` has both output peaks within it
-    of the linear gain, so its peak-to-peak is at least 2(1 - tolerance)|gain| a; one past it
-    has crossed, and the swing at the crossing is at most 2(1 + tolerance)|gain| times the
-    crossing's drive. With a = floor/(2|gain|): d(a/(1 - tolerance)) within the tolerance means
-    the crossing lies beyond a drive whose peak-to-peak is already the floor (reached, as far as
-    :func:`usable_swing`'s scan reaches; its peak-to-peak there is returned, at least the floor);
-    for the others, d(a/(1 + tolerance)) past it means the crossing comes before a drive that
-    could give the floor (short). Returns (verdict: +1 reached, -1 short, 0 undecided: a swing
-    between (1 - tolerance)/(1 + tolerance) and (1 + tolerance)/(1 - tolerance) of the floor,
-    for :func:`usable_swing` to solve; that lower bound, V). Both rest, as :func:`usable_swing` does, on the deviation rising with the drive. The
-    second drive is solved for the candidates not yet reached alone, through ``rows_output``
-    as :func:`usable_swing`'s, when the batch has more than WHOLE_SWING_BATCH."""
+    As :func:`usable_swing` does, this rests on the deviation d and the peak-to-peak rising
+    with the drive: a drive within ``tolerance`` lies before the crossing, so the swing is at
+    least its peak-to-peak, and one past it lies beyond, so the swing is at most its
+    peak-to-peak. A peak-to-peak SWING_FLOOR_MARGIN above the floor at a drive within the
+    tolerance tells reached (as far as :func:`usable_swing`'s scan reaches), one the margin
+    below it at a drive past the tolerance tells short; the margin, twice the solved swing's own
+    accuracy, gives the same side as :func:`usable_swing`'s figure would. The drives:
+    floor/(2|gain|)/(1 - tolerance) (its peak-to-peak is the floor or more where within the
+    tolerance), then floor/(2|gain|)/(1 + tolerance) for the others (past the tolerance, its
+    peak-to-peak is the floor or less), then, where those two bracket the crossing, ``steps``
+    of :func:`usable_swing`'s false-position steps (none for a transfer whose solves start from
+    its earlier ones, as the feedback pair's: where it folds back, the solution its steps reach
+    can depend on the drives solved before them). Returns (verdict: +1
+    reached, -1 short, 0 undecided: a swing near the floor, for :func:`usable_swing` to solve;
+    the peak-to-peak (V) that told reached, NaN elsewhere). The drives after the first are
+    solved for the candidates still open alone, through ``rows_output`` as
+    :func:`usable_swing`'s, when the batch has more than WHOLE_SWING_BATCH."""
     gain = np.asarray(gain, dtype=float)
     n = gain.size
+    verdict, at_least = np.zeros(n, dtype=int), np.full(n, np.nan)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
         a_floor = floor / (2.0 * np.abs(gain))
-        a_high, a_low = a_floor / (1.0 - tolerance), a_floor / (1.0 + tolerance)
         scan_end = clip_peak / ((1.0 - tolerance) * np.abs(gain)) * SWING_GRID[-1] * 2.0**SWING_DOUBLINGS
-        d_high, pp_high = (v[:, 0] for v in _swing_measure(static_output, gain, tolerance)(a_high[:, None]))
-        reached = (d_high <= 0.0) & (a_high <= scan_end)
-        verdict = np.where(reached, 1, 0)
-        rest = np.flatnonzero(~reached)
-        if rest.size:
-            if rows_output is None or n <= WHOLE_SWING_BATCH:  # the whole batch, the reached ones too
-                rest, transfer = np.arange(n), static_output
-            else:
-                transfer = rows_output(rest)
-            d_low = _swing_measure(transfer, gain[rest], tolerance)(a_low[rest, None])[0][:, 0]
-            verdict[rest[(d_low > 0.0) & ~reached[rest]]] = -1
-    return verdict, np.maximum(pp_high, floor)  # (rounding aside, the peak-to-peak is the floor or more)
+        whole = _swing_measure(static_output, gain, tolerance)
+
+        def measure_of(rows: np.ndarray) -> Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]:
+            """The measure of the candidates at ``rows`` (drives (rows, k))."""
+            if rows_output is not None and n > WHOLE_SWING_BATCH:
+                return _swing_measure(rows_output(rows), gain[rows], tolerance)
+
+            def on_whole(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:  # the others at their floor drive
+                drives = np.repeat(a_floor[:, None], a.shape[1], axis=1)
+                drives[rows] = a
+                d, pp = whole(drives)
+                return d[rows], pp[rows]
+
+            return on_whole
+
+        def tell(rows: np.ndarray, a: np.ndarray, d: np.ndarray, pp: np.ndarray) -> np.ndarray:
+            """Record the sides the drives ``a`` of ``rows`` tell; the rows left open."""
+            undecided = verdict[rows] == 0
+            reached = undecided & (d <= 0.0) & (pp >= floor * (1.0 + SWING_FLOOR_MARGIN)) & (a <= scan_end[rows])
+            short = undecided & (d > 0.0) & (pp <= floor * (1.0 - SWING_FLOOR_MARGIN))
+            verdict[rows[reached]], at_least[rows[reached]] = 1, pp[reached]
+            verdict[rows[short]] = -1
+            return ~(reached | short)
+
+        rows = np.arange(n)
+        a_high = a_floor / (1.0 - tolerance)
+        d_high, pp_high = (v[:, 0] for v in whole(a_high[:, None]))
+        rows = rows[tell(rows, a_high, d_high, pp_high)]
+        if rows.size:
+            a_low = a_floor[rows] / (1.0 + tolerance)
+            d_low, pp_low = (v[:, 0] for v in measure_of(rows)(a_low[:, None]))
+            bracket = tell(rows, a_low, d_low, pp_low) & (d_low <= 0.0) & (d_high[rows] > 0.0)
+            rows, at = rows[bracket], np.flatnonzero(bracket)
+            if rows.size and steps:  # the crossing between the two drives: false position on it
+                state = [
+                    a_low[at],
+                    d_low[at],
+                    pp_low[at],
+                    a_high[rows],
+                    d_high[rows],
+                    pp_high[rows],
+                    np.zeros(rows.size),
+                ]
+                measure = measure_of(rows)
+                for _ in range(steps):
+                    _swing_steps(measure, state, 1)
+                    x0, d0, p0, x1, d1, p1, _ = state
+                    open_ = tell(rows, x0, d0, p0) & tell(rows, x1, d1, p1)
+                    if not open_.any():
+                        break
+    return verdict, at_least
 
 
 def _swing_measure(

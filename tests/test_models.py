@@ -526,21 +526,24 @@ def test_a_swing_floor_tells_reached_and_short_as_the_solved_swing_does(design):
 
 def test_swing_reaches_a_floor_by_hand_on_a_hard_clip():
     # A transfer of gain 1 that clips hard at +-3 V: its usable swing is 6 V p-p (the drive of 3.33 V
-    # where the clipped peak falls 10 % short). By hand, at the two drives floor/(2*0.9) and
-    # floor/(2*1.1): a 5 V floor is reached (its upper drive, 2.78 V, is still linear: 5.56 V p-p),
-    # 6.5 V is left to the solve (upper drive 3.61 V deviates 17 %, lower 2.95 V none), 8 V falls
-    # short (even the lower drive, 3.64 V, deviates 17.5 %)
+    # where the clipped peak falls 10 % short). By hand, at the drives floor/(2*0.9) and floor/(2*1.1):
+    # a 5 V floor is reached (the first drive, 2.78 V, is still linear: 5.56 V p-p, over 1.01 x 5 V);
+    # 6.5 V falls short (the first drive, 3.61 V, deviates 17 % and gives 6 V p-p, under 0.99 x 6.5 V),
+    # and so does 8 V; 6 V itself is left to the solve (no drive gives more than 6 V p-p within the
+    # tolerance, none past it less)
     gain, clip_peak = np.ones(3), np.full(3, 3.0)
 
     def transfer(vs: np.ndarray) -> np.ndarray:
         return np.clip(vs, -3.0, 3.0)
 
     assert physics.usable_swing(transfer, gain[:1], clip_peak[:1]) == pytest.approx(6.0, rel=5e-3)
-    for floor, verdict, at_least in ((5.0, 1, 5.0 / 0.9), (6.5, 0, None), (8.0, -1, None)):
-        got, bound = physics.swing_reaches(transfer, gain, clip_peak, floor)
+    for floor, verdict in ((5.0, 1), (6.0, 0), (6.5, -1), (8.0, -1)):
+        got, at_least = physics.swing_reaches(transfer, gain, clip_peak, floor)
         assert list(got) == [verdict] * 3
-        if at_least:
-            assert bound == pytest.approx(np.full(3, at_least), rel=1e-12)
+        if verdict > 0:
+            assert at_least == pytest.approx(np.full(3, 5.0 / 0.9), rel=1e-12)
+        else:
+            assert np.all(np.isnan(at_least))
 
 
 def test_usable_swing_takes_no_figure_from_a_transfer_without_an_output():

@@ -1086,8 +1086,14 @@ class StageModel(Topology):
             return part
 
         if floor is not None:
-            verdict, at_least = physics.swing_reaches(whole, gain, clip_peak, floor, rows_output=rows_output)
-            swing = np.where(verdict > 0, at_least, np.nan)
+            verdict, swing = physics.swing_reaches(
+                whole,
+                gain,
+                clip_peak,
+                floor,
+                rows_output=rows_output,
+                steps=0 if getattr(whole, "warm_start", None) is not None else physics.SWING_FLOOR_STEPS,
+            )
             rows = np.flatnonzero(verdict == 0)
             if rows.size:
                 sub_p, sub_c, sub_b, sub_nvt = _rows_of(rows, gain.size, p, c, b, nvt)
