@@ -156,30 +156,17 @@ def _flat_result(
     h = hfe.reshape(-1)
     step = CHUNK_FULL if full else CHUNK_FAST
     per_element = [name for name in ("supply", "temperature", "below_ground") if np.ndim(getattr(conditions, name))]
+    evaluate = functools.partial(topology.evaluate, full=full, noise=noise, swing=swing, swing_floor=swing_floor)
     if h.size <= step or not per_element:
         where = None if swing_where is None or h.size > step else lambda r: swing_where(_sample(r, shape)).reshape(-1)
-        result = topology.evaluate(
-            flat,
-            device,
-            conditions,
-            hfe=h,
-            full=full,
-            noise=noise,
-            swing_where=where,
-            swing=swing,
-            swing_floor=swing_floor,
-        )
+        result = evaluate(flat, device, conditions, hfe=h, swing_where=where)
     else:  # conditions per element: the model's own chunks would not slice them, so chunked here
         pieces = [
-            topology.evaluate(
+            evaluate(
                 {k: v[i : i + step] for k, v in flat.items()},
                 device,
                 replace(conditions, **{name: getattr(conditions, name)[i : i + step] for name in per_element}),
                 hfe=h[i : i + step],
-                full=full,
-                noise=noise,
-                swing=swing,
-                swing_floor=swing_floor,
             )
             for i in range(0, h.size, step)
         ]
