@@ -422,7 +422,7 @@ def monte_carlo_yield(
     then solved only for the builds that pass with an unbounded swing (swing_vpp NaN in the
     others' sample), and there only as far as telling whether it reaches the floor
     (Topology.evaluate's swing_floor: a lower bound at or above it where it surely does, NaN
-    where it surely does not, the swing itself where two drives cannot tell); the yield is the same.
+    where it surely does not, the swing itself where the drives cannot tell); the yield is the same.
     The builds (the supply and a split supply's ground's place vary per build, and so does the
     temperature where every build fits MERGED_CALLS model calls; past that, one temperature per
     call: the models take them per element) are evaluated in blocks of candidate rows that fit

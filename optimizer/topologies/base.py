@@ -443,10 +443,10 @@ class Topology(ABC):
         solved only where that is True and left NaN elsewhere; with ``swing=False`` it is not
         solved at all (for a caller that has it from another call). Given ``swing_floor`` (V
         peak-to-peak: for a caller that judges the swing against that floor alone, as the Monte
-        Carlo builds against a spec's swing_min), it is solved only where two drives about the
-        floor's cannot tell its side (a swing between about 0.8 and 1.2 times the floor);
-        elsewhere swing_vpp is a lower bound at or above the floor where the swing surely
-        reaches it, NaN where it surely falls short (:func:`physics.swing_reaches`).
+        Carlo builds against a spec's swing_min), it is solved only where a few drives about the
+        floor's cannot tell its side (a swing near the floor); elsewhere swing_vpp is a lower
+        bound at or above the floor where the swing surely reaches it, NaN where it surely falls
+        short (:func:`physics.swing_reaches`).
         clip_vpp (V
         peak-to-peak) is the hard clip level of the AC load line, 2*min(cutoff, saturation).
         psrr_ripple_db and psrr_mid_db (dB) are 20*log10(1/|H|) of the small-signal transfer
@@ -844,16 +844,8 @@ class StageModel(Topology):
             else:
                 rows = np.flatnonzero(swing_where(result))
                 if rows.size:
-                    sub_p, sub_c, sub_b, sub_nvt = _rows_of(rows, gain.size, p, conditions, b, nvt)
                     result.metrics["swing_vpp"][rows] = self._usable_swing(
-                        sub_p,
-                        device_rows(device, rows),
-                        sub_c,
-                        sub_b,
-                        sub_nvt,
-                        gain[rows],
-                        0.5 * clip[rows],
-                        swing_floor,
+                        p, device, conditions, b, nvt, gain, 0.5 * clip, swing_floor, rows=rows
                     )
         return result
 
@@ -1064,6 +1056,7 @@ class StageModel(Topology):
         gain: np.ndarray,
         clip_peak: np.ndarray,
         floor: float | None = None,
+        rows: np.ndarray | None = None,
     ) -> np.ndarray:
         """swing_vpp (V peak-to-peak at the load) by :func:`physics.usable_swing`, in double precision
         (single precision, with the small swings it leaves noisy solved again, was no faster at the
@@ -1074,7 +1067,13 @@ class StageModel(Topology):
         Given a ``floor`` (V, :meth:`evaluate`'s swing_floor): solved only where
         :func:`physics.swing_reaches` leaves it undecided, on a transfer of those candidates alone
         (so the same figures as without the floor); a lower bound where it surely reaches the
-        floor, NaN where it surely falls short."""
+        floor, NaN where it surely falls short. Given ``rows``, the swing of the candidates at
+        those indices alone (the other arguments the whole batch's)."""
+        if rows is not None:
+            sub_p, sub_c, sub_b, sub_nvt = _rows_of(rows, gain.size, p, c, b, nvt)
+            return self._usable_swing(
+                sub_p, device_rows(device, rows), sub_c, sub_b, sub_nvt, gain[rows], clip_peak[rows], floor
+            )
         whole = self._static_fn(p, device, c, b, nvt, b.beta)
 
         def rows_output(rows: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
@@ -1096,10 +1095,7 @@ class StageModel(Topology):
             )
             rows = np.flatnonzero(verdict == 0)
             if rows.size:
-                sub_p, sub_c, sub_b, sub_nvt = _rows_of(rows, gain.size, p, c, b, nvt)
-                swing[rows] = self._usable_swing(
-                    sub_p, device_rows(device, rows), sub_c, sub_b, sub_nvt, gain[rows], clip_peak[rows]
-                )
+                swing[rows] = self._usable_swing(p, device, c, b, nvt, gain, clip_peak, rows=rows)
             return swing
 
         return physics.usable_swing(
